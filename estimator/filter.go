@@ -1,0 +1,373 @@
+package estimator
+
+import (
+	"fmt"
+	"math"
+
+	"gonum.org/v1/gonum/mat"
+)
+
+// Indices of the state vector.
+const (
+	IX      = 0 // field x, metres
+	IY      = 1 // field y, metres
+	IHead   = 2 // heading, radians
+	IOffset = 3 // IMU heading zero relative to the field, radians
+)
+
+// State is a copy of a filter's estimate: mean and covariance. It is a plain
+// value (fixed-size arrays), cheap to copy, which is what the fusion layer's
+// history window stores as checkpoints.
+type State struct {
+	// N is the state size, 3 or 4.
+	N int
+	// X is the mean; entries past N are zero.
+	X [4]float64
+	// P is the N x N covariance, row-major with stride 4.
+	P [16]float64
+}
+
+// Pose returns the pose part of the state.
+func (s *State) Pose() Pose { return Pose{s.X[IX], s.X[IY], s.X[IHead]} }
+
+// Var returns the variance of state component i.
+func (s *State) Var(i int) float64 { return s.P[i*4+i] }
+
+// At returns covariance entry (i, j).
+func (s *State) At(i, j int) float64 { return s.P[i*4+j] }
+
+// Mean returns the mean as a gonum vector of length N.
+func (s *State) Mean() *mat.VecDense {
+	return mat.NewVecDense(s.N, append([]float64(nil), s.X[:s.N]...))
+}
+
+// Covariance returns the covariance as a gonum symmetric matrix.
+func (s *State) Covariance() *mat.SymDense {
+	c := mat.NewSymDense(s.N, nil)
+	for i := 0; i < s.N; i++ {
+		for j := i; j < s.N; j++ {
+			c.SetSym(i, j, s.P[i*4+j])
+		}
+	}
+	return c
+}
+
+// Outcome says what became of one Update.
+type Outcome struct {
+	// NIS is the normalised innovation squared v^T S^-1 v.
+	NIS float64
+	// Dim is the measurement's dimension (the NIS degrees of freedom).
+	Dim int
+	// Gated is true when NIS exceeded the gate and nothing changed.
+	Gated bool
+}
+
+// Filter is the extended Kalman filter. The zero value is not usable; make
+// one with NewFilter.
+type Filter struct {
+	st State
+
+	// Scratch, reused by every call.
+	fx, fu  [9]float64
+	a       [16]float64
+	h       [12]float64
+	s, l    [9]float64
+	k       [12]float64
+	ikh, p2 [16]float64
+	chol    [16]float64
+	saved   State
+}
+
+// NewFilter returns a filter with n states (3, or 4 with the IMU offset)
+// at mean x and covariance p (n x n row-major). It panics on a wrong n or
+// lengths and returns an error if p is not a valid covariance.
+func NewFilter(n int, x, p []float64) (*Filter, error) {
+	if n != 3 && n != 4 {
+		panic(fmt.Sprintf("estimator: state size %d, want 3 or 4", n))
+	}
+	if len(x) != n || len(p) != n*n {
+		panic(fmt.Sprintf("estimator: mean of length %d and covariance of length %d for %d states", len(x), len(p), n))
+	}
+	for _, v := range x {
+		if !finite(v) {
+			return nil, fmt.Errorf("initial state: %w", ErrNotFinite)
+		}
+	}
+	if err := CheckCovariance(p, n); err != nil {
+		return nil, fmt.Errorf("initial covariance: %w", err)
+	}
+	f := &Filter{}
+	f.st.N = n
+	copy(f.st.X[:], x)
+	f.st.X[IHead] = Wrap(f.st.X[IHead])
+	if n == 4 {
+		f.st.X[IOffset] = Wrap(f.st.X[IOffset])
+	}
+	for i := 0; i < n; i++ {
+		copy(f.st.P[i*4:i*4+n], p[i*n:(i+1)*n])
+	}
+	return f, nil
+}
+
+// N returns the state size.
+func (f *Filter) N() int { return f.st.N }
+
+// State returns a copy of the estimate.
+func (f *Filter) State() State { return f.st }
+
+// SetState replaces the estimate by a copy of s (a checkpoint taken with
+// State). It panics if s has another state size.
+func (f *Filter) SetState(s *State) {
+	if s.N != f.st.N {
+		panic(fmt.Sprintf("estimator: state of size %d set on a filter of size %d", s.N, f.st.N))
+	}
+	f.st = *s
+}
+
+// Pose returns the pose part of the mean.
+func (f *Filter) Pose() Pose { return f.st.Pose() }
+
+// Predict moves the estimate by the body step u with 3x3 row-major step
+// covariance cu, and adds q (length N, variances) to the diagonal: the
+// time-driven process noise (heading random walk, IMU offset random walk).
+//
+//	x' = f(x, u),  P' = Fx P Fx^T + Fu cu Fu^T + diag(q)
+func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
+	n := f.st.N
+	p := f.st.Pose()
+	ArcJacobians(p, u, &f.fx, &f.fu)
+	np := Advance(p, u)
+	f.st.X[IX], f.st.X[IY], f.st.X[IHead] = np.X, np.Y, np.Heading
+
+	P := &f.st.P
+	A := &f.a
+	// A = F P, where F is fx on the pose block and identity on the offset.
+	for i := 0; i < 3; i++ {
+		for j := 0; j < n; j++ {
+			A[i*4+j] = f.fx[i*3+0]*P[0*4+j] + f.fx[i*3+1]*P[1*4+j] + f.fx[i*3+2]*P[2*4+j]
+		}
+	}
+	if n == 4 {
+		copy(A[12:16], P[12:16])
+	}
+	// P = A F^T.
+	for i := 0; i < n; i++ {
+		for j := 0; j < 3; j++ {
+			P[i*4+j] = A[i*4+0]*f.fx[j*3+0] + A[i*4+1]*f.fx[j*3+1] + A[i*4+2]*f.fx[j*3+2]
+		}
+		if n == 4 {
+			P[i*4+3] = A[i*4+3]
+		}
+	}
+	// P += Fu cu Fu^T on the pose block.
+	var b [9]float64
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			b[i*3+j] = f.fu[i*3+0]*cu[0*3+j] + f.fu[i*3+1]*cu[1*3+j] + f.fu[i*3+2]*cu[2*3+j]
+		}
+	}
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			P[i*4+j] += b[i*3+0]*f.fu[j*3+0] + b[i*3+1]*f.fu[j*3+1] + b[i*3+2]*f.fu[j*3+2]
+		}
+	}
+	for i := 0; i < n; i++ {
+		P[i*4+i] += q[i]
+	}
+	symmetrise(P[:], n, 4)
+}
+
+// Update applies measurement m unless its NIS exceeds gate (gate <= 0 means
+// no gate). It returns the NIS. A gated measurement, or one that fails with an
+// error, leaves the filter unchanged. The update is in Joseph form,
+//
+//	P' = (I - K H) P (I - K H)^T + K R K^T,
+//
+// symmetrised and checked by Cholesky (Bar-Shalom, Li and Kirubarajan, 2001,
+// eq. 5.2.3-18 for the Joseph form; DESIGN.md).
+func (f *Filter) Update(m *Measurement, gate float64) (Outcome, error) {
+	n := f.st.N
+	d := m.Kind.Dim()
+	out := Outcome{Dim: d}
+	for i := 0; i < d; i++ {
+		if !finite(m.Z[i]) {
+			return out, fmt.Errorf("measurement %s component %d: %w", m.Kind, i, ErrNotFinite)
+		}
+	}
+	var z [3]float64
+	if err := m.predict(f.st.X[:], n, &z, &f.h); err != nil {
+		return out, err
+	}
+	var v [3]float64
+	for i := 0; i < d; i++ {
+		v[i] = m.Z[i] - z[i]
+		if m.Kind.isAngle(i) {
+			v[i] = Wrap(v[i])
+		}
+	}
+	P := &f.st.P
+	H := &f.h
+	// PHt = P H^T (n x d, stride 3) kept in f.k until K is formed.
+	for i := 0; i < n; i++ {
+		for j := 0; j < d; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += P[i*4+k] * H[j*4+k]
+			}
+			f.k[i*3+j] = acc
+		}
+	}
+	// S = H P H^T + R.
+	for i := 0; i < d; i++ {
+		for j := 0; j < d; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += H[i*4+k] * f.k[k*3+j]
+			}
+			f.s[i*3+j] = acc + m.R[i*3+j]
+		}
+	}
+	symmetrise(f.s[:], d, measStride)
+	if !cholesky(f.s[:], f.l[:], d, measStride) {
+		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+	}
+	var y [3]float64
+	cholForward(f.l[:], d, measStride, v[:], y[:])
+	for i := 0; i < d; i++ {
+		out.NIS += y[i] * y[i]
+	}
+	if gate > 0 && !(out.NIS <= gate) {
+		out.Gated = true
+		return out, nil
+	}
+	// K = PHt S^-1: solve S K_i^T = PHt_i^T row by row.
+	for i := 0; i < n; i++ {
+		var row, sol [3]float64
+		copy(row[:d], f.k[i*3:i*3+d])
+		cholSolveVec(f.l[:], d, measStride, row[:], sol[:])
+		copy(f.k[i*3:i*3+d], sol[:d])
+	}
+	f.saved = f.st
+	for i := 0; i < n; i++ {
+		var acc float64
+		for j := 0; j < d; j++ {
+			acc += f.k[i*3+j] * v[j]
+		}
+		f.st.X[i] += acc
+	}
+	f.st.X[IHead] = Wrap(f.st.X[IHead])
+	if n == 4 {
+		f.st.X[IOffset] = Wrap(f.st.X[IOffset])
+	}
+	f.joseph(m, n, d)
+	if !cholesky(P[:], f.chol[:], n, 4) {
+		f.st = f.saved
+		return out, fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
+	}
+	return out, nil
+}
+
+// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T.
+func (f *Filter) joseph(m *Measurement, n, d int) {
+	P := &f.st.P
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var kh float64
+			for k := 0; k < d; k++ {
+				kh += f.k[i*3+k] * f.h[k*4+j]
+			}
+			id := 0.0
+			if i == j {
+				id = 1
+			}
+			f.ikh[i*4+j] = id - kh
+		}
+	}
+	// A = (I-KH) P
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += f.ikh[i*4+k] * P[k*4+j]
+			}
+			f.a[i*4+j] = acc
+		}
+	}
+	// KR = K R (n x d) into p2 with stride 4.
+	for i := 0; i < n; i++ {
+		for j := 0; j < d; j++ {
+			var acc float64
+			for k := 0; k < d; k++ {
+				acc += f.k[i*3+k] * m.R[k*3+j]
+			}
+			f.p2[i*4+j] = acc
+		}
+	}
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += f.a[i*4+k] * f.ikh[j*4+k]
+			}
+			for k := 0; k < d; k++ {
+				acc += f.p2[i*4+k] * f.k[j*3+k]
+			}
+			P[i*4+j] = acc
+		}
+	}
+	symmetrise(P[:], n, 4)
+}
+
+// InitOffset initialises the IMU offset from an absolute IMU heading z with
+// variance r (DESIGN.md, "State"): offset = wrap(z - heading), with variance
+// P_hh + r and covariance -P_h,s with every other state s, because the
+// offset is z - heading and inherits heading's correlations with the
+// opposite sign. It panics on a 3-state filter.
+func (f *Filter) InitOffset(z, r float64) error {
+	if f.st.N != 4 {
+		panic("estimator: InitOffset on a filter without an IMU offset state")
+	}
+	if !finite(z) || !finite(r) || !(r > 0) {
+		return fmt.Errorf("IMU heading %v with variance %v: %w", z, r, ErrNotFinite)
+	}
+	P := &f.st.P
+	f.st.X[IOffset] = Wrap(z - f.st.X[IHead])
+	for s := 0; s < 3; s++ {
+		P[IOffset*4+s] = -P[IHead*4+s]
+		P[s*4+IOffset] = -P[IHead*4+s]
+	}
+	P[IOffset*4+IOffset] = P[IHead*4+IHead] + r
+	return nil
+}
+
+// Reset sets the pose part of the estimate to pose with 3x3 covariance c
+// (row-major), clearing its correlation with the IMU offset, whose own
+// variance is kept. The caller re-initialises the offset on the next IMU
+// sample.
+func (f *Filter) Reset(pose Pose, c *[9]float64) error {
+	if !finite(pose.X) || !finite(pose.Y) || !finite(pose.Heading) {
+		return fmt.Errorf("pose: %w", ErrNotFinite)
+	}
+	if err := CheckCovariance(c[:], 3); err != nil {
+		return fmt.Errorf("pose covariance: %w", err)
+	}
+	f.st.X[IX], f.st.X[IY], f.st.X[IHead] = pose.X, pose.Y, Wrap(pose.Heading)
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			f.st.P[i*4+j] = c[i*3+j]
+		}
+		if f.st.N == 4 {
+			f.st.P[i*4+3], f.st.P[3*4+i] = 0, 0
+		}
+	}
+	return nil
+}
+
+// Position95 returns the radius in metres of the 95% position ellipse's major
+// semi-axis: sqrt(chi2_2(0.95) * largest eigenvalue of the position block).
+func (s *State) Position95() float64 {
+	a, b, c := s.P[0], s.P[1], s.P[5]
+	lmax := (a+c)/2 + math.Sqrt(((a-c)/2)*((a-c)/2)+b*b)
+	// chi-square 2 dof, 0.95 quantile = -2 ln(0.05) (closed form for 2 dof).
+	return math.Sqrt(-2 * math.Log(0.05) * lmax)
+}

@@ -1,0 +1,54 @@
+package estimator
+
+import (
+	"math"
+	"testing"
+)
+
+// FuzzUpdate drives Predict and Update with arbitrary numbers. The oracle is
+// the invariants: no panic, and after every call that returns without error
+// the state is finite and its covariance symmetric positive definite.
+func FuzzUpdate(f *testing.F) {
+	f.Add(uint8(1), 0.1, 0.2, 0.3, 0.01, 0.005, 0.0, 0.001)
+	f.Add(uint8(4), 2.0, 0.1, 0.0, 0.01, 0.01, 1e-9, 0.0)
+	f.Add(uint8(7), 3.1, 0.0, 0.0, 1e-6, 0.0, 0.5, math.Pi)
+	f.Fuzz(func(t *testing.T, kind uint8, z0, z1, z2, r, fwd, left, turn float64) {
+		flt, err := NewFilter(4, []float64{0.5, -0.2, 0.1, 0}, []float64{0.01, 0, 0, 0, 0, 0.01, 0, 0, 0, 0, 0.01, 0, 0, 0, 0, 0.01})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if finite(fwd) && finite(left) && finite(turn) && math.Abs(fwd)+math.Abs(left)+math.Abs(turn) < 1e3 {
+			cu := [9]float64{math.Abs(fwd) * 1e-4, 0, 0, 0, math.Abs(fwd) * 1e-4, 0, 0, 0, math.Abs(turn) * 1e-4}
+			q := [4]float64{0, 0, 1e-8, 1e-8}
+			flt.Predict(Step{fwd, left, turn}, &cu, &q)
+			checkState(t, flt)
+		}
+		m := Measurement{Kind: Kinds[int(kind)%len(Kinds)], Mount: Pose{0.1, 0, 0.2}, LandmarkX: 4, LandmarkY: 1}
+		m.Z = [3]float64{z0, z1, z2}
+		d := m.Kind.Dim()
+		for i := 0; i < d; i++ {
+			m.R[i*3+i] = r
+		}
+		before := flt.State()
+		if _, err := flt.Update(&m, 0); err != nil {
+			if flt.State() != before {
+				t.Fatalf("failed update (%v) changed the state", err)
+			}
+			return
+		}
+		checkState(t, flt)
+	})
+}
+
+func checkState(t *testing.T, f *Filter) {
+	t.Helper()
+	st := f.State()
+	for i := 0; i < st.N; i++ {
+		if !finite(st.X[i]) {
+			t.Fatalf("state %d is %v", i, st.X[i])
+		}
+	}
+	if err := CheckCovariance(flatP(&st), st.N); err != nil {
+		t.Fatalf("covariance %v: %v", st.P, err)
+	}
+}

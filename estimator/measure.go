@@ -1,0 +1,169 @@
+package estimator
+
+import (
+	"fmt"
+	"math"
+)
+
+// Kind says what a Measurement measures and so its dimension.
+type Kind uint8
+
+// The measurement kinds (DESIGN.md, "Measurement updates"). A sensor is
+// mounted at body pose Mount; z is what the sensor reports.
+const (
+	// KindPose: the sensor's field pose (x, y, heading) = pose (+) Mount.
+	KindPose Kind = iota + 1
+	// KindPosition: the field position (x, y) of the mounted point.
+	KindPosition
+	// KindHeading: the sensor's field heading = heading + Mount.Heading.
+	KindHeading
+	// KindRangeBearing: range (m) and bearing (rad, from the sensor's +x,
+	// counter-clockwise) from the sensor to the landmark at Landmark.
+	KindRangeBearing
+	// KindRange: range alone.
+	KindRange
+	// KindBearing: bearing alone.
+	KindBearing
+	// KindIMUHeading: the IMU's absolute heading = heading + imu_offset.
+	KindIMUHeading
+)
+
+// Kinds lists every measurement kind, for tests and conformance suites.
+var Kinds = []Kind{KindPose, KindPosition, KindHeading, KindRangeBearing, KindRange, KindBearing, KindIMUHeading}
+
+// Dim returns the dimension of the kind's measurement vector.
+func (k Kind) Dim() int {
+	switch k {
+	case KindPose:
+		return 3
+	case KindPosition, KindRangeBearing:
+		return 2
+	case KindHeading, KindRange, KindBearing, KindIMUHeading:
+		return 1
+	}
+	panic(fmt.Sprintf("estimator: unknown measurement kind %d", k))
+}
+
+// isAngle reports whether component i of the kind's vector is an angle, whose
+// innovation is wrapped.
+func (k Kind) isAngle(i int) bool {
+	switch k {
+	case KindPose:
+		return i == 2
+	case KindHeading, KindBearing, KindIMUHeading:
+		return true
+	case KindRangeBearing:
+		return i == 1
+	}
+	return false
+}
+
+// String names the kind.
+func (k Kind) String() string {
+	switch k {
+	case KindPose:
+		return "pose"
+	case KindPosition:
+		return "position"
+	case KindHeading:
+		return "heading"
+	case KindRangeBearing:
+		return "range-bearing"
+	case KindRange:
+		return "range"
+	case KindBearing:
+		return "bearing"
+	case KindIMUHeading:
+		return "imu-heading"
+	}
+	return fmt.Sprintf("kind(%d)", uint8(k))
+}
+
+// Measurement is one absolute measurement of the state.
+type Measurement struct {
+	Kind Kind
+	// Mount is the sensor's pose in the body frame (unused by KindIMUHeading).
+	Mount Pose
+	// LandmarkX, LandmarkY are the landmark's field position in metres for
+	// the range and bearing kinds.
+	LandmarkX, LandmarkY float64
+	// Z holds the Dim() measured values, in the order of the kind's doc.
+	Z [3]float64
+	// R is the Dim() x Dim() measurement covariance, row-major with stride 3.
+	R [9]float64
+}
+
+// measStride is the stride of measurement-sized matrices.
+const measStride = 3
+
+// predict writes h(x) into z and the Dim() x n Jacobian into H (stride 4).
+func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[12]float64) error {
+	*H = [12]float64{}
+	th := x[2]
+	st, ct := math.Sincos(th)
+	mx, my := m.Mount.X, m.Mount.Y
+	// Derivative of the mounted point p + R(th) m_xy with respect to th.
+	dsx := -st*mx - ct*my
+	dsy := ct*mx - st*my
+	switch m.Kind {
+	case KindPose, KindPosition:
+		z[0] = x[0] + ct*mx - st*my
+		z[1] = x[1] + st*mx + ct*my
+		H[0*4+0], H[0*4+2] = 1, dsx
+		H[1*4+1], H[1*4+2] = 1, dsy
+		if m.Kind == KindPose {
+			z[2] = Wrap(th + m.Mount.Heading)
+			H[2*4+2] = 1
+		}
+	case KindHeading:
+		z[0] = Wrap(th + m.Mount.Heading)
+		H[2] = 1
+	case KindRangeBearing, KindRange, KindBearing:
+		dx := m.LandmarkX - (x[0] + ct*mx - st*my)
+		dy := m.LandmarkY - (x[1] + st*mx + ct*my)
+		r2 := dx*dx + dy*dy
+		if r2 < 1e-12 {
+			return ErrDegenerate
+		}
+		r := math.Sqrt(r2)
+		row := 0
+		if m.Kind != KindBearing {
+			z[0] = r
+			H[0], H[1], H[2] = -dx/r, -dy/r, -(dx*dsx+dy*dsy)/r
+			row = 1
+		}
+		if m.Kind != KindRange {
+			z[row] = Wrap(math.Atan2(dy, dx) - th - m.Mount.Heading)
+			H[row*4+0] = dy / r2
+			H[row*4+1] = -dx / r2
+			H[row*4+2] = (dy*dsx-dx*dsy)/r2 - 1
+		}
+	case KindIMUHeading:
+		if n < 4 {
+			panic("estimator: IMU heading measurement on a filter without an IMU offset state")
+		}
+		z[0] = Wrap(th + x[3])
+		H[2], H[3] = 1, 1
+	default:
+		panic(fmt.Sprintf("estimator: unknown measurement kind %d", m.Kind))
+	}
+	return nil
+}
+
+// Predicted returns h(x), the measurement the state x (length 3 or 4)
+// predicts, and its Jacobian (Dim() x len(x), row-major). It allocates and is
+// meant for tests and tools; the filter uses the same code without allocating.
+func (m *Measurement) Predicted(x []float64) (z []float64, H []float64, err error) {
+	var zz [3]float64
+	var hh [12]float64
+	n := len(x)
+	if err := m.predict(x, n, &zz, &hh); err != nil {
+		return nil, nil, err
+	}
+	d := m.Kind.Dim()
+	H = make([]float64, d*n)
+	for i := 0; i < d; i++ {
+		copy(H[i*n:(i+1)*n], hh[i*4:i*4+n])
+	}
+	return append([]float64(nil), zz[:d]...), H, nil
+}

@@ -201,7 +201,7 @@ func (f *Filter) Update(m *Measurement, gate float64) (Outcome, error) {
 	var v [3]float64
 	for i := 0; i < d; i++ {
 		v[i] = m.Z[i] - z[i]
-		if m.Kind.isAngle(i) {
+		if m.Kind.IsAngle(i) {
 			v[i] = Wrap(v[i])
 		}
 	}

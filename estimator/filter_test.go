@@ -139,7 +139,7 @@ func TestMeasurementConformance(t *testing.T) {
 					z, _, _ := m.Predicted(v)
 					for i := range dst {
 						dst[i] = z0[i] + Wrap(z[i]-z0[i])
-						if !m.Kind.isAngle(i) {
+						if !m.Kind.IsAngle(i) {
 							dst[i] = z[i]
 						}
 					}
@@ -190,7 +190,7 @@ func TestUpdateMatchesGonum(t *testing.T) {
 				R.Set(i, j, m.R[i*3+j])
 			}
 			v.SetVec(i, m.Z[i]-z0[i])
-			if m.Kind.isAngle(i) {
+			if m.Kind.IsAngle(i) {
 				v.SetVec(i, Wrap(v.AtVec(i)))
 			}
 		}

@@ -44,9 +44,9 @@ func (k Kind) Dim() int {
 	panic(fmt.Sprintf("estimator: unknown measurement kind %d", k))
 }
 
-// isAngle reports whether component i of the kind's vector is an angle, whose
+// IsAngle reports whether component i of the kind's vector is an angle, whose
 // innovation is wrapped.
-func (k Kind) isAngle(i int) bool {
+func (k Kind) IsAngle(i int) bool {
 	switch k {
 	case KindPose:
 		return i == 2

@@ -1,0 +1,486 @@
+// Package sim simulates a small cart driving the aisles of a greenhouse, with
+// ground truth: encoder wheels of three layouts with distance-proportional
+// noise and occasional slip, an IMU whose heading zero drifts, and a camera
+// that sees pose markers with latency, jitter and a fraction of outliers.
+// It is deterministic for a seed and has no I/O; the demo, the tests and the
+// benchmarks use it.
+package sim
+
+import (
+	"container/heap"
+	"fmt"
+	"math"
+	"math/rand/v2"
+
+	"reckon/estimator"
+	"reckon/fusion"
+)
+
+// Layout is a wheel layout.
+type Layout uint8
+
+const (
+	// TwoParallelOneLateral: two forward-rolling wheels and one lateral wheel
+	// (the wheels alone determine the motion), absolute IMU optional.
+	TwoParallelOneLateral Layout = iota
+	// ParallelLateralIMU: one forward wheel, one lateral wheel and an IMU
+	// whose heading difference is the turn row (IMU rotation mode).
+	ParallelLateralIMU
+	// Differential: the two driven wheels' encoders, no side slip.
+	Differential
+)
+
+// String names the layout.
+func (l Layout) String() string {
+	switch l {
+	case TwoParallelOneLateral:
+		return "two-parallel-one-lateral"
+	case ParallelLateralIMU:
+		return "parallel-lateral-imu"
+	case Differential:
+		return "differential"
+	}
+	return fmt.Sprintf("layout(%d)", uint8(l))
+}
+
+// Bump moves the cart by hand at AtS seconds without its wheels turning.
+type Bump struct {
+	AtS            float64
+	DXM, DYM, DRad float64
+}
+
+// Scenario configures a simulated run. Zero fields take the defaults given.
+type Scenario struct {
+	Layout Layout
+	Seed   uint64
+	// DurationS is the length of the run (60 s).
+	DurationS float64
+	// OdometryHz (200), IMUHz (100; 0 with IMU false), CameraHz (10).
+	OdometryHz, IMUHz, CameraHz float64
+	// IMU adds an absolute IMU to the layouts that do not need one.
+	IMU bool
+	// Counts sends cumulative 16-bit encoder counts instead of travel.
+	Counts bool
+	// LatencyMinS and LatencyMaxS bound the camera's delay (0.05 to 0.2 s).
+	LatencyMinS, LatencyMaxS float64
+	// OutlierFraction of camera fixes are wrong by metres.
+	OutlierFraction float64
+	// SlipPerS is the rate of wheel slip episodes.
+	SlipPerS float64
+	// Markers makes the camera report range and bearing to the greenhouse's
+	// post markers instead of its own pose.
+	Markers bool
+	// NoiseFree turns off every noise source (outliers and slip too).
+	NoiseFree bool
+	// Bump, if set, moves the cart by hand.
+	Bump *Bump
+	// SpeedMPerS is the cruising speed (0.4).
+	SpeedMPerS float64
+}
+
+func (s *Scenario) defaults() {
+	def := func(v *float64, d float64) {
+		if *v == 0 {
+			*v = d
+		}
+	}
+	def(&s.DurationS, 60)
+	def(&s.OdometryHz, 200)
+	def(&s.CameraHz, 10)
+	def(&s.LatencyMinS, 0.05)
+	def(&s.LatencyMaxS, 0.2)
+	def(&s.SpeedMPerS, 0.4)
+	if s.IMUHz == 0 && (s.IMU || s.Layout == ParallelLateralIMU) {
+		s.IMUHz = 100
+	}
+	if s.NoiseFree {
+		s.OutlierFraction, s.SlipPerS = 0, 0
+	}
+}
+
+// Camera mount on the cart: 0.15 m ahead of the reference point, facing forward.
+var CameraMount = estimator.Pose{X: 0.15, Y: 0, Heading: 0}
+
+// Camera noise: 3 cm per axis and 0.02 rad for pose fixes; 2 cm and 0.01 rad
+// for range and bearing.
+const (
+	cameraStdM, cameraStdRad   = 0.03, 0.02
+	rangeStdM, bearingStdRad   = 0.02, 0.01
+	countsPerM, counterBits    = 40000, 16
+	imuHeadingStdRad           = 0.005
+	imuOffsetVarRad2PerS       = 1e-7
+	initialStdM, initialStdRad = 0.05, 0.035
+)
+
+// Markers are the greenhouse's post markers: a row at each end of the aisles.
+func Markers() []fusion.Landmark {
+	var out []fusion.Landmark
+	for i := 0; i < 5; i++ {
+		y := float64(i) * 1.5
+		out = append(out,
+			fusion.Landmark{ID: fmt.Sprintf("post-w%d", i), XM: -1.2, YM: y},
+			fusion.Landmark{ID: fmt.Sprintf("post-e%d", i), XM: 9.2, YM: y})
+	}
+	return out
+}
+
+// Config returns the fusion configuration that matches the scenario: its
+// wheel layout, IMU mode and noise (the simulator draws its noise from the
+// same model), with move recovery on.
+func (s Scenario) Config() fusion.Config {
+	s.defaults()
+	n := fusion.DefaultNoise
+	n.IMUHeadingVarRad2 = imuHeadingStdRad * imuHeadingStdRad
+	n.IMUOffsetVarRad2PerS = imuOffsetVarRad2PerS
+	c := fusion.Config{
+		Noise:      n,
+		Recovery:   fusion.Recovery{Enabled: true},
+		InitialCov: []float64{initialStdM * initialStdM, 0, 0, 0, initialStdM * initialStdM, 0, 0, 0, initialStdRad * initialStdRad},
+		Landmarks:  Markers(),
+	}
+	cpm, bits := 0.0, 0
+	if s.Counts {
+		cpm, bits = countsPerM, counterBits
+	}
+	w := func(name string, x, y, dir float64) fusion.Wheel {
+		return fusion.Wheel{Name: name, XM: x, YM: y, DirectionRad: dir, CountsPerM: cpm, CounterBits: bits}
+	}
+	switch s.Layout {
+	case TwoParallelOneLateral:
+		c.Wheels = []fusion.Wheel{w("left", 0, 0.12, 0), w("right", 0, -0.12, 0), w("lateral", -0.08, 0, math.Pi/2)}
+	case ParallelLateralIMU:
+		c.Wheels = []fusion.Wheel{w("forward", 0, 0.10, 0), w("lateral", -0.08, 0, math.Pi/2)}
+		c.IMU = fusion.IMURotation
+	case Differential:
+		c.Wheels = []fusion.Wheel{w("left", 0, 0.2, 0), w("right", 0, -0.2, 0)}
+		c.NoSideSlip = true
+	}
+	if s.IMU && s.Layout != ParallelLateralIMU {
+		c.IMU = fusion.IMUAbsolute
+	}
+	return c
+}
+
+// Input is one sample in arrival order, with the truth at its stamp.
+type Input struct {
+	ArrivalNs int64
+	Odometry  *fusion.Odometry
+	Heading   *fusion.Heading
+	Fix       *fusion.Fix
+	// Truth is the cart's true pose at the sample's stamp.
+	Truth estimator.Pose
+	// Outlier marks a camera fix that the simulator made wrong on purpose.
+	Outlier bool
+	// Bumped is true from the bump on.
+	Bumped bool
+}
+
+// StampNs returns the sample's own stamp.
+func (in *Input) StampNs() int64 {
+	switch {
+	case in.Odometry != nil:
+		return in.Odometry.StampNs
+	case in.Heading != nil:
+		return in.Heading.StampNs
+	default:
+		return in.Fix.StampNs
+	}
+}
+
+// segment is a stretch of constant body velocity.
+type segment struct {
+	durNs   int64
+	v, u, w float64 // forward m/s, left m/s, turn rad/s
+}
+
+// Sim generates a scenario's samples one at a time, in arrival order, with
+// memory bounded by the camera's latency.
+type Sim struct {
+	s     Scenario
+	cfg   fusion.Config
+	rng   *rand.Rand
+	route []segment
+	seg   int
+	left  int64 // ns left in the current segment
+
+	t     int64
+	truth estimator.Pose
+	endNs int64
+
+	nextOdo, nextIMU, nextCam, startOdo int64
+	travel                              []float64 // true travel since the last odometry sample
+	pos                                 []float64 // noisy cumulative wheel positions, m
+	slipWheel                           int
+	slipUntil                           int64
+	imuOffset                           float64
+	bumped                              bool
+
+	queue queue
+	seq   int64
+	done  bool
+}
+
+// New returns a simulator for the scenario.
+func New(s Scenario) *Sim {
+	s.defaults()
+	sm := &Sim{s: s, cfg: s.Config(), rng: rand.New(rand.NewPCG(s.Seed, s.Seed^0x9e3779b97f4a7c15))}
+	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != Differential)
+	sm.left = sm.route[0].durNs
+	sm.endNs = int64(s.DurationS * 1e9)
+	sm.truth = estimator.Pose{X: 0, Y: 0, Heading: 0}
+	sm.travel = make([]float64, len(sm.cfg.Wheels))
+	sm.pos = make([]float64, len(sm.cfg.Wheels))
+	sm.slipWheel = -1
+	sm.nextOdo = 0
+	sm.nextIMU = 3e6 // the IMU's own clock phase: 3 ms off the encoders'
+	sm.nextCam = 50e6
+	sm.imuOffset = 0.7 // the IMU zeroed at power-on, facing elsewhere
+	return sm
+}
+
+// Config returns the fusion configuration matching the simulator, with the
+// initial pose drawn around the truth from the initial covariance (so that
+// the filter's initial error is consistent with its covariance).
+func (sm *Sim) Config() fusion.Config {
+	c := sm.cfg
+	r := rand.New(rand.NewPCG(sm.s.Seed+1, 7))
+	if !sm.s.NoiseFree {
+		c.InitialPose = estimator.Pose{X: r.NormFloat64() * initialStdM, Y: r.NormFloat64() * initialStdM, Heading: r.NormFloat64() * initialStdRad}
+	}
+	return c
+}
+
+// greenhouseRoute drives up an aisle, turns round the bed's end into the
+// next aisle, drives back, and so on; a holonomic cart sidesteps at the ends.
+// Durations are multiples of 20 ms so that segments start on both the 50 Hz
+// and the 500 Hz sample grids.
+func greenhouseRoute(speed float64, holonomic bool) []segment {
+	grid := func(s float64) int64 { return int64(math.Round(s/0.02)) * 20e6 }
+	const aisle, radius = 8.0, 0.75
+	straight := segment{durNs: grid(aisle / speed), v: speed}
+	turnDur := grid(math.Pi * radius / speed)
+	w := math.Pi / (float64(turnDur) * 1e-9)
+	v := w * radius
+	route := []segment{{durNs: grid(1)}, straight, {durNs: turnDur, v: v, w: w}}
+	if holonomic {
+		route = append(route, segment{durNs: grid(1), u: -0.2}, segment{durNs: grid(1), u: 0.2})
+	}
+	route = append(route, straight, segment{durNs: turnDur, v: v, w: -w})
+	if holonomic {
+		route = append(route, segment{durNs: grid(1.5), v: 0.1, u: 0.15, w: 0.2}, segment{durNs: grid(1.5), v: 0.1, u: -0.15, w: -0.2})
+	}
+	return route // it starts and repeats with a pause to pick tomatoes
+}
+
+// advance moves the truth to time t, adding the true wheel travels.
+func (sm *Sim) advance(t int64) {
+	for sm.t < t {
+		dt := t - sm.t
+		if dt > sm.left {
+			dt = sm.left
+		}
+		seg := sm.route[sm.seg]
+		f := float64(dt) * 1e-9
+		step := estimator.Step{ForwardM: seg.v * f, LeftM: seg.u * f, TurnRad: seg.w * f}
+		for i, w := range sm.cfg.Wheels {
+			c := estimator.WheelCoef(w.XM, w.YM, w.DirectionRad)
+			sm.travel[i] += c[0]*step.ForwardM + c[1]*step.LeftM + c[2]*step.TurnRad
+		}
+		sm.truth = estimator.Advance(sm.truth, step)
+		sm.t += dt
+		sm.left -= dt
+		if sm.left == 0 {
+			sm.seg = (sm.seg + 1) % len(sm.route)
+			sm.left = sm.route[sm.seg].durNs
+		}
+	}
+	if b := sm.s.Bump; b != nil && !sm.bumped && float64(t)*1e-9 >= b.AtS {
+		sm.bumped = true
+		sm.truth = estimator.Pose{X: sm.truth.X + b.DXM, Y: sm.truth.Y + b.DYM, Heading: estimator.Wrap(sm.truth.Heading + b.DRad)}
+	}
+}
+
+func (sm *Sim) gauss(std float64) float64 {
+	if sm.s.NoiseFree {
+		return 0
+	}
+	return sm.rng.NormFloat64() * std
+}
+
+// Next returns the next input in arrival order, or false at the end.
+func (sm *Sim) Next() (Input, bool) {
+	for {
+		if sm.queue.Len() > 0 && (sm.done || sm.queue[0].ArrivalNs <= sm.t) {
+			return heap.Pop(&sm.queue).(item).Input, true
+		}
+		if sm.done {
+			return Input{}, false
+		}
+		sm.generate()
+	}
+}
+
+// generate produces the samples at the next event time.
+func (sm *Sim) generate() {
+	t := sm.nextOdo
+	if sm.s.IMUHz > 0 && sm.cfg.IMU == fusion.IMUAbsolute && sm.nextIMU < t {
+		t = sm.nextIMU
+	}
+	if sm.nextCam < t {
+		t = sm.nextCam
+	}
+	if t > sm.endNs {
+		sm.done = true
+		return
+	}
+	prevT, prev := sm.t, sm.truth
+	sm.advance(t)
+	if t > prevT && !sm.s.NoiseFree {
+		// Rotation the wheels do not see: scrub in turns and a heading random
+		// walk, drawn from the filter's own model.
+		turn := math.Abs(estimator.Wrap(sm.truth.Heading - prev.Heading))
+		v := sm.cfg.Noise.TurnVarRad2PerRad*turn + sm.cfg.Noise.HeadingVarRad2PerS*float64(t-prevT)*1e-9
+		if sm.cfg.NoSideSlip {
+			// Sideways slip of a differential drive, per metre driven.
+			d := math.Hypot(sm.truth.X-prev.X, sm.truth.Y-prev.Y)
+			side := sm.rng.NormFloat64() * math.Sqrt(sm.cfg.Noise.LateralSlipVarM2PerM*d)
+			sh, ch := math.Sincos(sm.truth.Heading)
+			sm.truth.X -= sh * side
+			sm.truth.Y += ch * side
+		}
+		sm.truth.Heading = estimator.Wrap(sm.truth.Heading + sm.rng.NormFloat64()*math.Sqrt(v))
+	}
+	if !sm.s.NoiseFree && t > prevT {
+		sm.imuOffset += sm.rng.NormFloat64() * math.Sqrt(imuOffsetVarRad2PerS*float64(t-prevT)*1e-9)
+	}
+	if t == sm.nextOdo {
+		sm.emitOdometry(t)
+		sm.nextOdo = t + int64(math.Round(1e9/sm.s.OdometryHz))
+	}
+	if sm.s.IMUHz > 0 && sm.cfg.IMU == fusion.IMUAbsolute && t == sm.nextIMU {
+		h := estimator.Wrap(sm.truth.Heading + sm.imuOffset + sm.gauss(imuHeadingStdRad))
+		jitter := int64(1e6 + sm.rng.Float64()*4e6)
+		sm.push(Input{ArrivalNs: t + jitter, Heading: &fusion.Heading{StampNs: t, HeadingRad: h}, Truth: sm.truth, Bumped: sm.bumped})
+		sm.nextIMU = t + int64(math.Round(1e9/sm.s.IMUHz))
+	}
+	if t == sm.nextCam {
+		sm.emitCamera(t)
+		sm.nextCam = t + int64(math.Round(1e9/sm.s.CameraHz))
+	}
+}
+
+func (sm *Sim) emitOdometry(t int64) {
+	noise := sm.cfg.Noise.WheelVarM2PerM
+	if t > sm.startOdo && !sm.s.NoiseFree && sm.s.SlipPerS > 0 && sm.rng.Float64() < sm.s.SlipPerS/sm.s.OdometryHz {
+		sm.slipWheel, sm.slipUntil = sm.rng.IntN(len(sm.travel)), t+300e6
+	}
+	travel := make([]float64, len(sm.travel))
+	for i, tr := range sm.travel {
+		travel[i] = tr + sm.gauss(math.Sqrt(noise*math.Abs(tr)))
+		if i == sm.slipWheel && t < sm.slipUntil {
+			travel[i] *= 0.5
+		}
+		sm.pos[i] += travel[i]
+		sm.travel[i] = 0
+	}
+	o := &fusion.Odometry{StampNs: t}
+	if sm.s.Counts {
+		o.Counts = make([]int64, len(travel))
+		for i, p := range sm.pos {
+			c := int64(math.Floor(p * countsPerM))
+			o.Counts[i] = c & (1<<counterBits - 1) // the counter's own width
+		}
+	} else {
+		if t == 0 {
+			return // travel needs an interval; the first tick starts it
+		}
+		o.StartNs, o.TravelM = sm.startOdo, travel
+	}
+	if sm.cfg.IMU == fusion.IMURotation {
+		h := estimator.Wrap(sm.truth.Heading + sm.imuOffset + sm.gauss(imuHeadingStdRad*0.2))
+		o.IMUHeadingRad = &h
+	}
+	sm.startOdo = t
+	sm.push(Input{ArrivalNs: t + 1e6, Odometry: o, Truth: sm.truth, Bumped: sm.bumped})
+}
+
+func (sm *Sim) emitCamera(t int64) {
+	lat := sm.s.LatencyMinS + sm.rng.Float64()*(sm.s.LatencyMaxS-sm.s.LatencyMinS)
+	in := Input{ArrivalNs: t + int64(lat*1e9), Truth: sm.truth, Bumped: sm.bumped}
+	cam := estimator.Compose(sm.truth, CameraMount)
+	outlier := !sm.s.NoiseFree && sm.rng.Float64() < sm.s.OutlierFraction
+	if sm.s.Markers {
+		best, bestR := -1, 5.0
+		marks := Markers()
+		for i, m := range marks {
+			dx, dy := m.XM-cam.X, m.YM-cam.Y
+			r := math.Hypot(dx, dy)
+			if b := estimator.Wrap(math.Atan2(dy, dx) - cam.Heading); r < bestR && math.Abs(b) < 1 {
+				best, bestR = i, r
+			}
+		}
+		if best < 0 {
+			return
+		}
+		m := marks[best]
+		r := math.Hypot(m.XM-cam.X, m.YM-cam.Y) + sm.gauss(rangeStdM)
+		b := estimator.Wrap(math.Atan2(m.YM-cam.Y, m.XM-cam.X) - cam.Heading + sm.gauss(bearingStdRad))
+		if outlier {
+			r += 1 + 2*sm.rng.Float64()
+		}
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, Mount: CameraMount, LandmarkID: m.ID,
+			RangeM: &r, BearingRad: &b, Cov: []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}}
+	} else {
+		x, y, h := cam.X+sm.gauss(cameraStdM), cam.Y+sm.gauss(cameraStdM), cam.Heading+sm.gauss(cameraStdRad)
+		if outlier {
+			a := sm.rng.Float64() * 2 * math.Pi
+			d := 1 + 2*sm.rng.Float64()
+			x, y, h = x+d*math.Cos(a), y+d*math.Sin(a), h+sm.rng.Float64()*2-1
+		}
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, Mount: CameraMount, XM: x, YM: y, HeadingRad: estimator.Wrap(h),
+			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
+	}
+	in.Outlier = outlier
+	sm.push(in)
+}
+
+func (sm *Sim) push(in Input) {
+	sm.seq++
+	heap.Push(&sm.queue, item{in, sm.seq})
+}
+
+type item struct {
+	Input
+	seq int64
+}
+
+// queue orders inputs by arrival, then by generation order.
+type queue []item
+
+func (q queue) Len() int { return len(q) }
+func (q queue) Less(i, j int) bool {
+	if q[i].ArrivalNs != q[j].ArrivalNs {
+		return q[i].ArrivalNs < q[j].ArrivalNs
+	}
+	return q[i].seq < q[j].seq
+}
+func (q queue) Swap(i, j int) { q[i], q[j] = q[j], q[i] }
+func (q *queue) Push(x any)   { *q = append(*q, x.(item)) }
+func (q *queue) Pop() any {
+	old := *q
+	it := old[len(old)-1]
+	*q = old[:len(old)-1]
+	return it
+}
+
+// Feed passes an input to the robot and returns its result.
+func Feed(r *fusion.Robot, in *Input) fusion.Result {
+	switch {
+	case in.Odometry != nil:
+		return r.AddOdometry(*in.Odometry)
+	case in.Heading != nil:
+		return r.AddHeading(*in.Heading)
+	default:
+		return r.AddFix(*in.Fix)
+	}
+}

@@ -1,0 +1,211 @@
+package fusion
+
+import (
+	"errors"
+	"math"
+	"testing"
+
+	"reckon/estimator"
+)
+
+func threeWheels() Config {
+	return Config{
+		Wheels:    []Wheel{{YM: 0.12, CountsPerM: 1000, CounterBits: 16}, {YM: -0.12, CountsPerM: 1000, CounterBits: 16}, {XM: -0.08, DirectionRad: math.Pi / 2, CountsPerM: 1000, CounterBits: 16}},
+		IMU:       IMUAbsolute,
+		Landmarks: []Landmark{{ID: "post-1", XM: 3, YM: 1}},
+	}
+}
+
+// busyRobot returns a robot with a full window, a held fix and an
+// initialised IMU offset.
+func busyRobot(t *testing.T) *Robot {
+	r, err := New(threeWheels())
+	if err != nil {
+		t.Fatal(err)
+	}
+	for k := int64(0); k < 300; k++ {
+		res := r.AddOdometry(Odometry{StartNs: k * 5e6, StampNs: (k + 1) * 5e6, TravelM: []float64{0.002, 0.0021, 0.0001}})
+		if res.Verdict != VerdictApplied {
+			t.Fatal(res.Err)
+		}
+		if k%2 == 0 {
+			r.AddHeading(Heading{StampNs: k*5e6 + 2e6, HeadingRad: 0.3 + float64(k)*0.00004})
+		}
+		if k%20 == 0 {
+			r.AddFix(Fix{StampNs: k * 5e6, Kind: FixPosition, XM: float64(k) * 0.002, YM: 0, Cov: []float64{0.01, 0, 0, 0.01}})
+		}
+	}
+	if res := r.AddFix(Fix{StampNs: 301 * 5e6, Kind: FixHeading, HeadingRad: 0.03, Cov: []float64{0.01}}); res.Verdict != VerdictHeld {
+		t.Fatalf("future fix: %v", res.Verdict)
+	}
+	return r
+}
+
+// TestBadInputChangesNothing: every kind of bad input is refused with an
+// error that names what was wrong, and the robot is exactly as it was.
+func TestBadInputChangesNothing(t *testing.T) {
+	nan := math.NaN()
+	inf := math.Inf(1)
+	f := func(v float64) *float64 { return &v }
+	newest := int64(300 * 5e6)
+	cases := []struct {
+		name    string
+		do      func(r *Robot) Result
+		want    error
+		verdict Verdict
+	}{
+		{"NaN travel", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{nan, 0, 0}})
+		}, ErrBadSample, VerdictInvalid},
+		{"infinite travel", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0, inf, 0}})
+		}, ErrBadSample, VerdictInvalid},
+		{"wrong wheel count", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0, 0}})
+		}, ErrBadSample, VerdictInvalid},
+		{"two kinds at once", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0, 0, 0}, Step: &estimator.Step{}})
+		}, ErrBadSample, VerdictInvalid},
+		{"stamp backwards", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest - 10e6, StampNs: newest - 5e6, TravelM: []float64{0, 0, 0}})
+		}, ErrTimeBackwards, VerdictInvalid},
+		{"overlapping interval", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest - 1e6, StampNs: newest + 5e6, TravelM: []float64{0, 0, 0}})
+		}, ErrTimeBackwards, VerdictInvalid},
+		{"empty interval", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest + 5e6, StampNs: newest + 5e6, TravelM: []float64{0, 0, 0}})
+		}, ErrTimeBackwards, VerdictInvalid},
+		{"absurd jump", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{3, 3, 0}})
+		}, ErrAbsurdJump, VerdictInvalid},
+		{"absurd turn", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0.3, -0.3, 0}})
+		}, ErrAbsurdJump, VerdictInvalid},
+		{"NaN IMU on odometry", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0, 0, 0}, IMUHeadingRad: f(nan)})
+		}, ErrBadSample, VerdictInvalid},
+		{"NaN step", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, Step: &estimator.Step{ForwardM: nan}})
+		}, ErrBadSample, VerdictInvalid},
+		{"NaN heading", func(r *Robot) Result { return r.AddHeading(Heading{StampNs: newest - 1e6, HeadingRad: nan}) }, ErrBadSample, VerdictInvalid},
+		{"negative heading variance", func(r *Robot) Result {
+			return r.AddHeading(Heading{StampNs: newest - 1e6, HeadingRad: 0.3, VarRad2: -1})
+		}, ErrBadSample, VerdictInvalid},
+		{"NaN fix", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPose, XM: nan, Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}})
+		}, ErrBadSample, VerdictInvalid},
+		{"fix cov wrong size", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPose, Cov: []float64{1, 0, 0, 1}})
+		}, ErrBadSample, VerdictInvalid},
+		{"fix cov not positive definite", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPosition, Cov: []float64{1, 2, 2, 1}})
+		}, ErrBadSample, VerdictInvalid},
+		{"fix cov asymmetric", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPosition, Cov: []float64{1, 0.5, 0.2, 1}})
+		}, ErrBadSample, VerdictInvalid},
+		{"fix cov NaN", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixHeading, Cov: []float64{nan}})
+		}, ErrBadSample, VerdictInvalid},
+		{"unknown landmark", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-9", RangeM: f(2), Cov: []float64{0.01}})
+		}, ErrUnknownLandmark, VerdictInvalid},
+		{"landmark without range or bearing", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"negative range", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", RangeM: f(-2), Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"landmark at the sensor", func(r *Robot) Result {
+			st, _ := r.PoseAt(newest - 100e6)
+			s, c := math.Sincos(st.Pose.Heading)
+			dx, dy := 3-st.Pose.X, 1-st.Pose.Y
+			m := estimator.Pose{X: c*dx + s*dy, Y: -s*dx + c*dy}
+			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Mount: m, RangeM: f(1), Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"unknown fix kind", func(r *Robot) Result { return r.AddFix(Fix{StampNs: newest - 1e6, Kind: 42, Cov: []float64{1}}) }, ErrBadSample, VerdictInvalid},
+		{"fix too old", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: 10e6, Kind: FixHeading, HeadingRad: 0, Cov: []float64{0.01}})
+		}, ErrTooOld, VerdictTooOld},
+		{"fix too far ahead", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest + 5e9, Kind: FixHeading, Cov: []float64{0.01}})
+		}, ErrTooFarAhead, VerdictInvalid},
+		{"set pose NaN", func(r *Robot) Result {
+			return r.SetPose(newest-1e6, estimator.Pose{X: nan}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
+		}, ErrBadSample, VerdictInvalid},
+		{"set pose bad cov", func(r *Robot) Result {
+			return r.SetPose(newest-1e6, estimator.Pose{}, []float64{1, 0, 0, 0, -1, 0, 0, 0, 1})
+		}, ErrBadSample, VerdictInvalid},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r := busyRobot(t)
+			before := snap(r)
+			res := c.do(r)
+			if res.Verdict != c.verdict || !errors.Is(res.Err, c.want) {
+				t.Fatalf("verdict %v, err %v; want %v with %v", res.Verdict, res.Err, c.verdict, c.want)
+			}
+			sameSnapshot(t, c.name, before, snap(r))
+			// The robot goes on working.
+			if res := r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0.002, 0.002, 0}}); res.Verdict != VerdictApplied {
+				t.Errorf("next odometry: %v %v", res.Verdict, res.Err)
+			}
+			checkFinitePD(t, r)
+		})
+	}
+}
+
+// TestHeldFull: held samples are bounded.
+func TestHeldFull(t *testing.T) {
+	cfg := threeWheels()
+	cfg.MaxHeld = 3
+	r, _ := New(cfg)
+	for i := 0; i < 3; i++ {
+		if res := r.AddHeading(Heading{StampNs: int64(i+1) * 1e6, HeadingRad: 0}); res.Verdict != VerdictHeld {
+			t.Fatalf("heading %d: %v", i, res.Verdict)
+		}
+	}
+	before := snap(r)
+	if res := r.AddHeading(Heading{StampNs: 5e6, HeadingRad: 0}); !errors.Is(res.Err, ErrHeldFull) {
+		t.Errorf("fourth held sample: %v", res.Err)
+	}
+	sameSnapshot(t, "a sample past max_held", before, snap(r))
+	res := r.AddOdometry(Odometry{StartNs: 0, StampNs: 10e6, TravelM: []float64{0, 0, 0}})
+	if len(res.Resolved) != 3 {
+		t.Errorf("odometry resolved %d held samples, want 3", len(res.Resolved))
+	}
+}
+
+// TestCountsWrap: cumulative 16-bit counts that wrap give the same estimate
+// as the travel they stand for.
+func TestCountsWrap(t *testing.T) {
+	cfg := threeWheels()
+	cfg.IMU = IMUNone
+	a, _ := New(cfg)
+	b, _ := New(cfg)
+	counts := []int64{65000, 100, 30}
+	a.AddOdometry(Odometry{StampNs: 0, Counts: append([]int64(nil), counts...)})
+	for k := int64(0); k < 200; k++ {
+		step := []int64{7, 8, 1}
+		tr := make([]float64, 3)
+		for i := range counts {
+			counts[i] = (counts[i] + step[i]) & 0xffff
+			tr[i] = float64(step[i]) / 1000
+		}
+		if res := a.AddOdometry(Odometry{StampNs: (k + 1) * 5e6, Counts: append([]int64(nil), counts...)}); res.Verdict != VerdictApplied {
+			t.Fatal(res.Err)
+		}
+		b.AddOdometry(Odometry{StartNs: k * 5e6, StampNs: (k + 1) * 5e6, TravelM: tr})
+	}
+	pa, pb := a.Pose(), b.Pose()
+	if pa.Pose != pb.Pose || pa.Cov != pb.Cov {
+		t.Errorf("counts %+v, travel %+v", pa.Pose, pb.Pose)
+	}
+	// A counter reset is refused and re-references the counts.
+	res := a.AddOdometry(Odometry{StampNs: 2000e6, Counts: []int64{30000, 0, 0}})
+	if !errors.Is(res.Err, ErrAbsurdJump) {
+		t.Errorf("counter reset: %v", res.Err)
+	}
+	if res := a.AddOdometry(Odometry{StampNs: 2005e6, Counts: []int64{30002, 2, 0}}); res.Verdict != VerdictApplied {
+		t.Errorf("after the reset: %v", res.Err)
+	}
+}

@@ -1,0 +1,91 @@
+package fusion_test
+
+import (
+	"math"
+	"testing"
+
+	"reckon/clients/sim"
+	"reckon/estimator"
+	"reckon/fusion"
+)
+
+// benchRobot returns a robot with a full window at 200 Hz odometry and the
+// travel of one 5 ms sample.
+func benchRobot(b *testing.B) (*fusion.Robot, []float64) {
+	cfg := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true}.Config()
+	r, err := fusion.New(cfg)
+	if err != nil {
+		b.Fatal(err)
+	}
+	tr := []float64{0.002, 0.0021, 0.00005}
+	return r, tr
+}
+
+// BenchmarkLateFix: at 200 Hz odometry (and 100 Hz IMU), one camera fix
+// arriving 150 ms late, inserted and replayed. Each iteration also appends
+// the 5 ms of odometry (and every other iteration the IMU sample) that keep
+// the window moving; BenchmarkOdometry measures those alone.
+func BenchmarkLateFix(b *testing.B) {
+	r, tr := benchRobot(b)
+	var k int64
+	feed := func() {
+		r.AddOdometry(fusion.Odometry{StartNs: k * 5e6, StampNs: (k + 1) * 5e6, TravelM: tr})
+		if k%2 == 0 {
+			r.AddHeading(fusion.Heading{StampNs: (k+1)*5e6 + 2e6, HeadingRad: 0.7})
+		}
+		k++
+	}
+	for k < 400 {
+		feed()
+	}
+	b.ReportAllocs()
+	for b.Loop() {
+		feed()
+		p, _ := r.PoseAt((k - 30) * 5e6)
+		cam := estimator.Compose(p.Pose, sim.CameraMount)
+		r.AddFix(fusion.Fix{StampNs: (k-30)*5e6 + 1e6, Kind: fusion.FixPose, Mount: sim.CameraMount, XM: cam.X, YM: cam.Y, HeadingRad: cam.Heading,
+			Cov: []float64{9e-4, 0, 0, 0, 9e-4, 0, 0, 0, 4e-4}})
+	}
+}
+
+// BenchmarkOdometry: one 200 Hz odometry sample and half an IMU sample, the
+// per-iteration overhead of BenchmarkLateFix.
+func BenchmarkOdometry(b *testing.B) {
+	r, tr := benchRobot(b)
+	var k int64
+	b.ReportAllocs()
+	for b.Loop() {
+		r.AddOdometry(fusion.Odometry{StartNs: k * 5e6, StampNs: (k + 1) * 5e6, TravelM: tr})
+		if k%2 == 0 {
+			r.AddHeading(fusion.Heading{StampNs: (k+1)*5e6 + 2e6, HeadingRad: 0.7})
+		}
+		k++
+	}
+}
+
+// BenchmarkHour runs one hour of the greenhouse cart (200 Hz odometry,
+// 100 Hz IMU, 10 Hz camera fixes 50 to 200 ms late, 5% outliers) through
+// fusion; the samples are generated beforehand, outside the timing.
+func BenchmarkHour(b *testing.B) {
+	s := sim.New(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 9, DurationS: 3600, OutlierFraction: 0.05})
+	cfg := s.Config()
+	var ins []sim.Input
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		ins = append(ins, in)
+	}
+	b.ReportAllocs()
+	for b.Loop() {
+		r, _ := fusion.New(cfg)
+		for i := range ins {
+			sim.Feed(r, &ins[i])
+		}
+		if p := r.Pose(); math.IsNaN(p.Pose.X) {
+			b.Fatal("NaN")
+		}
+	}
+	b.ReportMetric(float64(len(ins)), "samples/op")
+}

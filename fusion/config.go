@@ -1,0 +1,384 @@
+package fusion
+
+import (
+	"errors"
+	"fmt"
+	"math"
+
+	"gonum.org/v1/gonum/mat"
+
+	"reckon/estimator"
+)
+
+// IMUMode says how a robot uses its IMU's heading.
+type IMUMode uint8
+
+const (
+	// IMUNone: no IMU; the state is (x, y, heading).
+	IMUNone IMUMode = iota
+	// IMUAbsolute: the IMU's heading updates the estimate through the
+	// IMU offset state (x, y, heading, imu_offset). The default choice when
+	// the wheels determine rotation.
+	IMUAbsolute
+	// IMURotation: the IMU's heading difference over each odometry interval
+	// is the turn row of the body step (for layouts whose wheels cannot see
+	// rotation). The IMU heading must come with each odometry sample.
+	IMURotation
+)
+
+// String names the mode as the configuration file spells it.
+func (m IMUMode) String() string {
+	switch m {
+	case IMUNone:
+		return "none"
+	case IMUAbsolute:
+		return "absolute"
+	case IMURotation:
+		return "rotation"
+	}
+	return fmt.Sprintf("imu_mode(%d)", uint8(m))
+}
+
+// Wheel is an encoder wheel's mounting on the robot.
+type Wheel struct {
+	// Name labels the wheel in messages.
+	Name string
+	// XM and YM are the contact point's body position in metres.
+	XM, YM float64
+	// DirectionRad is the rolling direction in the body frame (0 rolls
+	// forward, pi/2 rolls left).
+	DirectionRad float64
+	// CountsPerM converts cumulative counts to metres; needed only when
+	// odometry samples carry counts.
+	CountsPerM float64
+	// CounterBits is the encoder counter's width for wrap-around (0 means
+	// the counter does not wrap within int64).
+	CounterBits int
+}
+
+// Noise holds the noise model. Every variance is a rate per distance, per
+// angle or per second, so that it adds over sub-intervals (DESIGN.md,
+// "Process noise"). Zero fields take the defaults in DefaultNoise.
+type Noise struct {
+	// WheelVarM2PerM: variance of a wheel's reading per metre it rolls.
+	WheelVarM2PerM float64
+	// LateralSlipVarM2PerM: variance of sideways slip per metre driven, for
+	// the no-side-slip row.
+	LateralSlipVarM2PerM float64
+	// TurnVarRad2PerRad: extra heading variance per radian turned (wheel
+	// scrub in turns).
+	TurnVarRad2PerRad float64
+	// HeadingVarRad2PerS: heading random walk per second.
+	HeadingVarRad2PerS float64
+	// StepForwardVarM2PerM, StepLeftVarM2PerM, StepTurnVarRad2PerRad: noise
+	// of body steps that the robot computed itself, per metre and per radian.
+	StepForwardVarM2PerM  float64
+	StepLeftVarM2PerM     float64
+	StepTurnVarRad2PerRad float64
+	// IMUHeadingVarRad2: variance of one absolute IMU heading reading.
+	IMUHeadingVarRad2 float64
+	// IMUTurnVarRad2PerRad: variance of an IMU turn row per radian turned.
+	IMUTurnVarRad2PerRad float64
+	// IMUOffsetVarRad2PerS: random walk of the IMU's heading zero per second.
+	IMUOffsetVarRad2PerS float64
+}
+
+// DefaultNoise is the noise model used where a Noise field is zero. It
+// suits small robots with free-rolling encoder wheels and a MEMS gyro
+// (common practice: about half a percent of travel, a few milliradians of
+// IMU heading noise).
+var DefaultNoise = Noise{
+	WheelVarM2PerM:        2.5e-5,
+	LateralSlipVarM2PerM:  1e-4,
+	TurnVarRad2PerRad:     1e-5,
+	HeadingVarRad2PerS:    1e-7,
+	StepForwardVarM2PerM:  1e-4,
+	StepLeftVarM2PerM:     1e-4,
+	StepTurnVarRad2PerRad: 1e-4,
+	IMUHeadingVarRad2:     2.5e-5,
+	IMUTurnVarRad2PerRad:  1e-6,
+	IMUOffsetVarRad2PerS:  1e-7,
+}
+
+// Recovery is the move-recovery policy: Count consecutive refused pose
+// fixes that agree with one another re-initialise the pose from the last
+// of them.
+type Recovery struct {
+	// Enabled turns move recovery on.
+	Enabled bool
+	// Count is how many consecutive refused pose fixes it takes (default 3).
+	Count int
+	// AgreeProbability is the chi-square probability within which the
+	// fixes must agree with one another (default 0.99).
+	AgreeProbability float64
+}
+
+// TrustLimits say when the estimate must not be trusted. Zero fields take
+// the defaults in parentheses.
+type TrustLimits struct {
+	// MaxPosition95M: largest 95% position radius (0.5 m).
+	MaxPosition95M float64
+	// MaxHeadingStdRad: largest heading standard deviation (0.1 rad).
+	MaxHeadingStdRad float64
+	// NISWindow: how many recent applied fixes the consistency check sums (20).
+	NISWindow int
+	// ConsistencyProbability: the chi-square probability that the windowed
+	// NIS sum must stay below (0.999).
+	ConsistencyProbability float64
+	// RefusedInARow: consecutive refused fixes that raise distrust (5).
+	RefusedInARow int
+}
+
+// Landmark is a mapped marker at a field position.
+type Landmark struct {
+	ID     string
+	XM, YM float64
+}
+
+// Config is one robot's configuration. The zero value of every field except
+// Wheels means its documented default; Validate names the field at fault.
+type Config struct {
+	// Wheels is the encoder wheel layout, in the order of odometry samples.
+	// A robot without wheels accepts only body-step odometry.
+	Wheels []Wheel
+	// NoSideSlip adds the row "leftward travel is zero" (differential drive).
+	NoSideSlip bool
+	// IMU is how the IMU's heading is used.
+	IMU   IMUMode
+	Noise Noise
+	// GateProbability is the chi-square probability of the fix gate (0.99).
+	GateProbability float64
+	// GateIMU gates IMU headings too. Off by default: the wheels, not the
+	// IMU, are what slips, and an ungated IMU pulls a slipped heading back
+	// (the disagreement still shows in the IMU's NIS statistics).
+	GateIMU bool
+	// WindowNs is the history window for late samples (1 s).
+	WindowNs int64
+	// MaxHeld bounds the samples held waiting for odometry (256).
+	MaxHeld int
+	// MaxHoldAheadNs bounds how far past the newest odometry a held sample
+	// may be stamped (1 s).
+	MaxHoldAheadNs int64
+	// MaxExtrapolationNs bounds PoseAt past the newest odometry (250 ms).
+	MaxExtrapolationNs int64
+	// MaxSpeedMPerS and MaxTurnRateRadPerS refuse absurd odometry (5 m/s, 20 rad/s).
+	MaxSpeedMPerS      float64
+	MaxTurnRateRadPerS float64
+	Recovery           Recovery
+	Trust              TrustLimits
+	// InitialPose and InitialCov (3x3 row-major, m^2 and rad^2) seed the
+	// estimate (default covariance diag(0.0025, 0.0025, 0.0012)).
+	InitialPose estimator.Pose
+	InitialCov  []float64
+	Landmarks   []Landmark
+}
+
+// ErrConfig marks every configuration error.
+var ErrConfig = errors.New("invalid configuration")
+
+func cfgErr(field, format string, args ...any) error {
+	return fmt.Errorf("%w: %s: %s", ErrConfig, field, fmt.Sprintf(format, args...))
+}
+
+// withDefaults returns a copy of c with zero fields set to their defaults.
+func (c Config) withDefaults() Config {
+	def := func(v *float64, d float64) {
+		if *v == 0 {
+			*v = d
+		}
+	}
+	n, d := &c.Noise, DefaultNoise
+	def(&n.WheelVarM2PerM, d.WheelVarM2PerM)
+	def(&n.LateralSlipVarM2PerM, d.LateralSlipVarM2PerM)
+	def(&n.TurnVarRad2PerRad, d.TurnVarRad2PerRad)
+	def(&n.HeadingVarRad2PerS, d.HeadingVarRad2PerS)
+	def(&n.StepForwardVarM2PerM, d.StepForwardVarM2PerM)
+	def(&n.StepLeftVarM2PerM, d.StepLeftVarM2PerM)
+	def(&n.StepTurnVarRad2PerRad, d.StepTurnVarRad2PerRad)
+	def(&n.IMUHeadingVarRad2, d.IMUHeadingVarRad2)
+	def(&n.IMUTurnVarRad2PerRad, d.IMUTurnVarRad2PerRad)
+	def(&n.IMUOffsetVarRad2PerS, d.IMUOffsetVarRad2PerS)
+	def(&c.GateProbability, 0.99)
+	if c.WindowNs == 0 {
+		c.WindowNs = 1e9
+	}
+	if c.MaxHeld == 0 {
+		c.MaxHeld = 256
+	}
+	if c.MaxHoldAheadNs == 0 {
+		c.MaxHoldAheadNs = 1e9
+	}
+	if c.MaxExtrapolationNs == 0 {
+		c.MaxExtrapolationNs = 250e6
+	}
+	def(&c.MaxSpeedMPerS, 5)
+	def(&c.MaxTurnRateRadPerS, 20)
+	if c.Recovery.Count == 0 {
+		c.Recovery.Count = 3
+	}
+	def(&c.Recovery.AgreeProbability, 0.99)
+	def(&c.Trust.MaxPosition95M, 0.5)
+	def(&c.Trust.MaxHeadingStdRad, 0.1)
+	if c.Trust.NISWindow == 0 {
+		c.Trust.NISWindow = 20
+	}
+	def(&c.Trust.ConsistencyProbability, 0.999)
+	if c.Trust.RefusedInARow == 0 {
+		c.Trust.RefusedInARow = 5
+	}
+	if c.InitialCov == nil {
+		c.InitialCov = []float64{0.0025, 0, 0, 0, 0.0025, 0, 0, 0, 0.0012}
+	}
+	return c
+}
+
+// Validate checks the configuration (after defaults) and returns an error
+// wrapping ErrConfig that names the offending field.
+func (c Config) Validate() error {
+	c = c.withDefaults()
+	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	for i, w := range c.Wheels {
+		f := fmt.Sprintf("wheels[%d]", i)
+		if !finite(w.XM) || !finite(w.YM) || !finite(w.DirectionRad) {
+			return cfgErr(f, "position and direction must be finite")
+		}
+		if w.CountsPerM < 0 || !finite(w.CountsPerM) {
+			return cfgErr(f+".counts_per_m", "%v must be positive (or 0 when samples carry metres)", w.CountsPerM)
+		}
+		if w.CounterBits < 0 || w.CounterBits > 64 || (w.CounterBits > 0 && w.CounterBits < 8) {
+			return cfgErr(f+".counter_bits", "%d must be 0 (no wrap) or 8 to 64", w.CounterBits)
+		}
+	}
+	noise := []struct {
+		name string
+		v    float64
+	}{
+		{"noise.wheel_var_m2_per_m", c.Noise.WheelVarM2PerM},
+		{"noise.lateral_slip_var_m2_per_m", c.Noise.LateralSlipVarM2PerM},
+		{"noise.turn_var_rad2_per_rad", c.Noise.TurnVarRad2PerRad},
+		{"noise.heading_var_rad2_per_s", c.Noise.HeadingVarRad2PerS},
+		{"noise.step_forward_var_m2_per_m", c.Noise.StepForwardVarM2PerM},
+		{"noise.step_left_var_m2_per_m", c.Noise.StepLeftVarM2PerM},
+		{"noise.step_turn_var_rad2_per_rad", c.Noise.StepTurnVarRad2PerRad},
+		{"noise.imu_heading_var_rad2", c.Noise.IMUHeadingVarRad2},
+		{"noise.imu_turn_var_rad2_per_rad", c.Noise.IMUTurnVarRad2PerRad},
+		{"noise.imu_offset_var_rad2_per_s", c.Noise.IMUOffsetVarRad2PerS},
+	}
+	for _, n := range noise {
+		if !(n.v > 0) || !finite(n.v) {
+			return cfgErr(n.name, "%v must be a positive finite variance rate", n.v)
+		}
+	}
+	if c.IMU > IMURotation {
+		return cfgErr("imu_mode", "%d is not none, absolute or rotation", c.IMU)
+	}
+	probs := []struct {
+		name string
+		v    float64
+	}{
+		{"gate_probability", c.GateProbability},
+		{"recovery.agree_probability", c.Recovery.AgreeProbability},
+		{"trust.consistency_probability", c.Trust.ConsistencyProbability},
+	}
+	for _, p := range probs {
+		if !(p.v > 0 && p.v < 1) {
+			return cfgErr(p.name, "%v must be inside (0, 1)", p.v)
+		}
+	}
+	ints := []struct {
+		name string
+		v    int64
+	}{
+		{"window_ns", c.WindowNs}, {"max_held", int64(c.MaxHeld)}, {"max_hold_ahead_ns", c.MaxHoldAheadNs},
+		{"max_extrapolation_ns", c.MaxExtrapolationNs}, {"recovery.count", int64(c.Recovery.Count)},
+		{"trust.nis_window", int64(c.Trust.NISWindow)}, {"trust.refused_in_a_row", int64(c.Trust.RefusedInARow)},
+	}
+	for _, n := range ints {
+		if n.v <= 0 {
+			return cfgErr(n.name, "%d must be positive", n.v)
+		}
+	}
+	if c.Recovery.Count < 2 {
+		return cfgErr("recovery.count", "%d must be at least 2: one refused fix proves nothing", c.Recovery.Count)
+	}
+	for _, p := range []struct {
+		name string
+		v    float64
+	}{{"max_speed_m_per_s", c.MaxSpeedMPerS}, {"max_turn_rate_rad_per_s", c.MaxTurnRateRadPerS},
+		{"trust.max_position95_m", c.Trust.MaxPosition95M}, {"trust.max_heading_std_rad", c.Trust.MaxHeadingStdRad}} {
+		if !(p.v > 0) || !finite(p.v) {
+			return cfgErr(p.name, "%v must be positive", p.v)
+		}
+	}
+	if !finite(c.InitialPose.X) || !finite(c.InitialPose.Y) || !finite(c.InitialPose.Heading) {
+		return cfgErr("initial_pose", "must be finite")
+	}
+	if err := estimator.CheckCovariance(c.InitialCov, 3); err != nil {
+		return cfgErr("initial_cov", "%v", err)
+	}
+	if err := checkVariances(c.InitialCov, 3, poseAngle); err != nil {
+		return cfgErr("initial_cov", "%v", err)
+	}
+	seen := map[string]bool{}
+	for i, l := range c.Landmarks {
+		f := fmt.Sprintf("landmarks[%d]", i)
+		if l.ID == "" {
+			return cfgErr(f+".id", "must not be empty")
+		}
+		if seen[l.ID] {
+			return cfgErr(f+".id", "%q appears twice", l.ID)
+		}
+		seen[l.ID] = true
+		if !finite(l.XM) || !finite(l.YM) {
+			return cfgErr(f, "position must be finite")
+		}
+	}
+	return c.checkLayout()
+}
+
+// layoutRows returns the structural rows of the layout (coefficients only).
+func (c *Config) layoutRows() [][3]float64 {
+	var rows [][3]float64
+	for _, w := range c.Wheels {
+		rows = append(rows, estimator.WheelCoef(w.XM, w.YM, w.DirectionRad))
+	}
+	if c.IMU == IMURotation {
+		rows = append(rows, estimator.TurnCoef)
+	}
+	if c.NoSideSlip {
+		rows = append(rows, estimator.LeftCoef)
+	}
+	return rows
+}
+
+// checkLayout checks, by the singular values of the row matrix (gonum mat),
+// that the wheel rows and the optional IMU and no-side-slip rows determine
+// forward, left and turn.
+func (c *Config) checkLayout() error {
+	if len(c.Wheels) == 0 {
+		if c.NoSideSlip {
+			return cfgErr("no_side_slip", "needs wheels")
+		}
+		if c.IMU == IMURotation {
+			return cfgErr("imu_mode", "rotation needs wheels; a robot without wheels sends body steps")
+		}
+		return nil
+	}
+	rows := c.layoutRows()
+	if len(rows) < 3 {
+		return cfgErr("wheels", "%d rows (wheels plus IMU and no-side-slip rows) cannot determine forward, left and turn; need 3", len(rows))
+	}
+	a := mat.NewDense(len(rows), 3, nil)
+	for i, r := range rows {
+		a.SetRow(i, r[:])
+	}
+	var svd mat.SVD
+	if !svd.Factorize(a, mat.SVDNone) {
+		return cfgErr("wheels", "layout could not be analysed")
+	}
+	sv := svd.Values(nil)
+	if sv[2] < 1e-6*sv[0] {
+		return cfgErr("wheels", "layout does not determine forward, left and turn (singular values %.3g); add a lateral wheel, set imu_mode rotation or no_side_slip", sv)
+	}
+	return nil
+}

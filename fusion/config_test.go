@@ -1,0 +1,82 @@
+package fusion
+
+import (
+	"errors"
+	"math"
+	"strings"
+	"testing"
+)
+
+func TestConfigValidate(t *testing.T) {
+	good := func() Config {
+		return Config{Wheels: []Wheel{{XM: 0, YM: 0.12}, {XM: 0, YM: -0.12}, {XM: -0.08, DirectionRad: math.Pi / 2}}}
+	}
+	cases := []struct {
+		name  string
+		edit  func(*Config)
+		field string
+	}{
+		{"parallel wheels only", func(c *Config) { c.Wheels = c.Wheels[:2] }, "wheels"},
+		{"two wheels no slip row", func(c *Config) { c.Wheels = c.Wheels[:2]; c.Wheels = append(c.Wheels, Wheel{XM: 0.3}) }, "wheels"},
+		{"NaN wheel", func(c *Config) { c.Wheels[1].YM = math.NaN() }, "wheels[1]"},
+		{"negative counts", func(c *Config) { c.Wheels[2].CountsPerM = -1 }, "wheels[2].counts_per_m"},
+		{"counter bits", func(c *Config) { c.Wheels[0].CounterBits = 4 }, "wheels[0].counter_bits"},
+		{"negative noise", func(c *Config) { c.Noise.WheelVarM2PerM = -1 }, "noise.wheel_var_m2_per_m"},
+		{"gate", func(c *Config) { c.GateProbability = 1.5 }, "gate_probability"},
+		{"window", func(c *Config) { c.WindowNs = -5 }, "window_ns"},
+		{"recovery count", func(c *Config) { c.Recovery.Count = 1 }, "recovery.count"},
+		{"initial cov", func(c *Config) { c.InitialCov = []float64{1, 2, 0, 2, 1, 0, 0, 0, 1} }, "initial_cov"},
+		{"initial cov size", func(c *Config) { c.InitialCov = []float64{1} }, "initial_cov"},
+		{"landmark twice", func(c *Config) { c.Landmarks = []Landmark{{ID: "a"}, {ID: "a"}} }, "landmarks[1].id"},
+		{"imu mode", func(c *Config) { c.IMU = 9 }, "imu_mode"},
+		{"rotation without wheels", func(c *Config) { c.Wheels = nil; c.IMU = IMURotation }, "imu_mode"},
+	}
+	if err := good().Validate(); err != nil {
+		t.Fatalf("good config: %v", err)
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			cfg := good()
+			c.edit(&cfg)
+			err := cfg.Validate()
+			if !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field+":") {
+				t.Errorf("error %v, want one naming %q", err, c.field)
+			}
+			if _, nerr := New(cfg); nerr == nil {
+				t.Errorf("New accepted the config")
+			}
+		})
+	}
+	// One parallel and one lateral wheel need the IMU's turn row.
+	cfg := Config{Wheels: []Wheel{{YM: 0.1}, {XM: -0.08, DirectionRad: math.Pi / 2}}}
+	if err := cfg.Validate(); err == nil {
+		t.Errorf("two wheels without IMU accepted")
+	}
+	cfg.IMU = IMURotation
+	if err := cfg.Validate(); err != nil {
+		t.Errorf("two wheels with IMU rotation: %v", err)
+	}
+}
+
+// TestCountDelta: wrap-around of a counter of a given width (two's
+// complement arithmetic, common practice).
+func TestCountDelta(t *testing.T) {
+	cases := []struct {
+		cur, prev int64
+		bits      int
+		want      int64
+	}{
+		{10, 5, 16, 5},
+		{5, 10, 16, -5},
+		{3, 65533, 16, 6},
+		{65533, 3, 16, -6},
+		{0, 255, 8, 1},
+		{-3, 4, 0, -7},
+		{-2, 1, 64, -3},
+	}
+	for _, c := range cases {
+		if got := countDelta(c.cur, c.prev, c.bits); got != c.want {
+			t.Errorf("countDelta(%d, %d, %d) = %d, want %d", c.cur, c.prev, c.bits, got, c.want)
+		}
+	}
+}

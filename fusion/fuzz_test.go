@@ -1,0 +1,106 @@
+package fusion
+
+import (
+	"encoding/binary"
+	"math"
+	"testing"
+
+	"reckon/estimator"
+)
+
+// reader hands out fuzz bytes as numbers, zeros when they run out.
+type reader struct{ b []byte }
+
+func (r *reader) byte() byte {
+	if len(r.b) == 0 {
+		return 0
+	}
+	v := r.b[0]
+	r.b = r.b[1:]
+	return v
+}
+
+func (r *reader) f64() float64 {
+	if len(r.b) < 8 {
+		r.b = nil
+		return 0
+	}
+	v := math.Float64frombits(binary.LittleEndian.Uint64(r.b))
+	r.b = r.b[8:]
+	return v
+}
+
+// small returns a plausible number most of the time and raw bits otherwise.
+func (r *reader) small() float64 {
+	if k := r.byte(); k < 200 {
+		return (float64(k) - 100) / 1000
+	}
+	return r.f64()
+}
+
+// FuzzSamples drives a robot with an arbitrary sequence of odometry, IMU,
+// fixes, pose sets and queries. The oracle is the invariants: no panic; the
+// state stays finite with a symmetric positive-definite covariance; a refused
+// input changes nothing.
+func FuzzSamples(f *testing.F) {
+	f.Add([]byte{0, 5, 10, 20, 0, 1, 3, 50, 0, 2, 4, 100, 100, 3, 2, 0, 5, 5})
+	f.Add([]byte{0, 5, 1, 1, 1, 2, 250, 1, 2, 3, 4, 5, 6, 7, 8, 0, 255, 255, 255})
+	f.Add([]byte{4, 0, 0, 1, 9, 9, 9, 2, 200, 3, 0, 1, 1, 0, 0, 6, 7})
+	f.Fuzz(func(t *testing.T, data []byte) { fuzzSamples(t, data) })
+}
+
+func fuzzSamples(t *testing.T, data []byte) {
+	{
+		cfg := threeWheels()
+		cfg.Recovery.Enabled = true
+		cfg.MaxHeld = 8
+		r, err := New(cfg)
+		if err != nil {
+			t.Fatal(err)
+		}
+		in := &reader{b: data}
+		var stamp int64
+		for steps := 0; len(in.b) > 0 && steps < 200; steps++ {
+			op := in.byte() % 7
+			dt := (int64(in.byte()) - 20) * 1e6
+			before := snap(r)
+			var res Result
+			switch op {
+			case 0, 1:
+				tr := []float64{in.small(), in.small(), in.small()}
+				res = r.AddOdometry(Odometry{StartNs: stamp, StampNs: stamp + dt, TravelM: tr})
+				if res.Verdict == VerdictApplied {
+					stamp += dt
+				}
+			case 2:
+				res = r.AddHeading(Heading{StampNs: stamp + dt, HeadingRad: in.small() * 10, VarRad2: math.Abs(in.small())})
+			case 3:
+				res = r.AddFix(Fix{StampNs: stamp + dt, Kind: FixKind(in.byte()%5 + 1), XM: in.small() * 100, YM: in.small(), HeadingRad: in.small(),
+					LandmarkID: "post-1", RangeM: ptr(in.small() * 10), Cov: []float64{math.Abs(in.small()) + 1e-4, 0, 0, 0, 0.01, 0, 0, 0, 0.01}[:in.byte()%10]})
+			case 4:
+				res = r.SetPose(stamp+dt, estimator.Pose{X: in.small(), Y: in.small(), Heading: in.small()}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, math.Abs(in.small()) + 1e-6})
+			case 5:
+				res = r.AddOdometry(Odometry{StampNs: stamp + dt, Counts: []int64{int64(in.byte()), int64(in.byte()) * 300, int64(in.byte())}})
+				if res.Verdict == VerdictApplied {
+					stamp += dt
+				}
+			case 6:
+				p, err := r.PoseAt(stamp + dt)
+				if err == nil && (math.IsNaN(p.Pose.X) || math.IsNaN(p.Cov[0])) {
+					t.Fatalf("PoseAt gave NaN: %+v", p)
+				}
+				sameSnapshot(t, "PoseAt", before, snap(r))
+				continue
+			}
+			if res.Verdict == VerdictInvalid && res.Err == nil {
+				t.Fatalf("invalid without a reason")
+			}
+			if (res.Verdict == VerdictInvalid || res.Verdict == VerdictTooOld) && op != 5 {
+				sameSnapshot(t, "a refused input", before, snap(r))
+			}
+			checkFinitePD(t, r)
+		}
+	}
+}
+
+func ptr(v float64) *float64 { return &v }

@@ -1,0 +1,236 @@
+package fusion
+
+import (
+	"fmt"
+	"math"
+
+	"reckon/estimator"
+)
+
+// weightFloor keeps weighted least-squares weights finite for rows whose
+// variance is zero because their wheel did not move: (1 micrometre)^2.
+const weightFloor = 1e-12
+
+// odoResult is an odometry sample turned into a history entry.
+type odoResult struct {
+	e        *entry // nil for a reference sample that carries no motion
+	imu      *float64
+	gapNs    int64
+	slipChi2 float64
+	slipDOF  int
+}
+
+func finiteAll(v ...float64) bool {
+	for _, x := range v {
+		if math.IsNaN(x) || math.IsInf(x, 0) {
+			return false
+		}
+	}
+	return true
+}
+
+func badf(format string, args ...any) error {
+	return fmt.Errorf("%w: %s", ErrBadSample, fmt.Sprintf(format, args...))
+}
+
+// countDelta returns cur - prev for a counter of the given width, wrapping
+// around, as a signed difference.
+func countDelta(cur, prev int64, bits int) int64 {
+	if bits == 0 || bits == 64 {
+		return cur - prev
+	}
+	d := uint64(cur-prev) & (1<<bits - 1)
+	if d >= 1<<(bits-1) {
+		return int64(d) - 1<<bits
+	}
+	return int64(d)
+}
+
+// odometryEntry validates o and turns it into a body step. It changes
+// nothing on error, with one exception: an implausible jump in cumulative
+// counts (an encoder controller restarted) re-references the counts, so
+// that the following samples are usable; the travel of that interval is lost.
+func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
+	var res odoResult
+	set := 0
+	for _, b := range []bool{o.TravelM != nil, o.Counts != nil, o.Step != nil} {
+		if b {
+			set++
+		}
+	}
+	if set != 1 {
+		return res, badf("odometry needs exactly one of travel_m, counts and step, got %d", set)
+	}
+	if r.started && o.StampNs <= r.newest {
+		return res, fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d", ErrTimeBackwards, o.StampNs, r.newest)
+	}
+	if o.IMUHeadingRad != nil {
+		if r.cfg.IMU == IMUNone {
+			return res, fmt.Errorf("%w: imu_heading_rad given but imu_mode is none", ErrNoIMU)
+		}
+		if !finiteAll(*o.IMUHeadingRad) {
+			return res, badf("imu_heading_rad is %v", *o.IMUHeadingRad)
+		}
+		res.imu = o.IMUHeadingRad
+	}
+	rotation := r.cfg.IMU == IMURotation
+	if rotation && o.IMUHeadingRad == nil && o.Step == nil {
+		return res, badf("imu_heading_rad is required with wheel odometry in imu_mode rotation")
+	}
+	nw := len(r.cfg.Wheels)
+	if cap(r.travel) < nw {
+		r.travel = make([]float64, nw)
+	}
+	travel := r.travel[:nw]
+	var t0, dtNs int64
+	switch {
+	case o.Counts != nil:
+		if len(o.Counts) != nw {
+			return res, badf("counts has %d entries for %d wheels", len(o.Counts), nw)
+		}
+		for i, w := range r.cfg.Wheels {
+			if w.CountsPerM == 0 {
+				return res, badf("counts given but wheels[%d].counts_per_m is not set", i)
+			}
+		}
+		if r.lastCounts == nil {
+			if !r.started {
+				r.start(o.StampNs)
+			} else {
+				r.newest = o.StampNs
+			}
+			r.lastCounts = append([]int64(nil), o.Counts...)
+			r.noteIMU(o)
+			return res, nil
+		}
+		for i, w := range r.cfg.Wheels {
+			travel[i] = float64(countDelta(o.Counts[i], r.lastCounts[i], w.CounterBits)) / w.CountsPerM
+		}
+		t0, dtNs = r.newest, o.StampNs-r.newest
+	case o.TravelM != nil:
+		if len(o.TravelM) != nw {
+			return res, badf("travel_m has %d entries for %d wheels", len(o.TravelM), nw)
+		}
+		if !finiteAll(o.TravelM...) {
+			return res, badf("travel_m %v is not finite", o.TravelM)
+		}
+		copy(travel, o.TravelM)
+		fallthrough
+	default:
+		if o.Step != nil && !finiteAll(o.Step.ForwardM, o.Step.LeftM, o.Step.TurnRad) {
+			return res, badf("step %+v is not finite", *o.Step)
+		}
+		if o.Step == nil && nw == 0 {
+			return res, badf("travel_m given but the robot has no wheels")
+		}
+		if o.StartNs >= o.StampNs {
+			return res, fmt.Errorf("%w: start_ns %d is not before stamp_ns %d", ErrTimeBackwards, o.StartNs, o.StampNs)
+		}
+		t0, dtNs = o.StartNs, o.StampNs-o.StartNs
+		if r.started {
+			if o.StartNs < r.newest {
+				return res, fmt.Errorf("%w: interval starts at %d, before the newest odometry %d", ErrTimeBackwards, o.StartNs, r.newest)
+			}
+			res.gapNs = o.StartNs - r.newest
+			t0 = r.newest
+		}
+	}
+	if rotation && o.Step == nil && r.lastIMU == nil {
+		// The first IMU heading in rotation mode is the reference for the
+		// next interval; this interval's motion cannot be resolved.
+		if o.Counts != nil {
+			copy(r.lastCounts, o.Counts)
+		}
+		if !r.started {
+			r.start(o.StampNs)
+		} else {
+			res.gapNs = o.StampNs - r.newest
+			r.newest = o.StampNs
+		}
+		r.noteIMU(o)
+		return res, nil
+	}
+	e := entry{kind: entOdo, t0: t0, t1: o.StampNs}
+	var err error
+	if o.Step != nil {
+		e.step = *o.Step
+		d := math.Hypot(e.step.ForwardM, e.step.LeftM)
+		n := &r.cfg.Noise
+		e.cov = [9]float64{n.StepForwardVarM2PerM * d, 0, 0, 0, n.StepLeftVarM2PerM * d, 0, 0, 0, n.StepTurnVarRad2PerRad * math.Abs(e.step.TurnRad)}
+	} else if err = r.solveWheels(o, travel, &e, &res); err != nil {
+		return res, err
+	}
+	dt := float64(dtNs) * 1e-9
+	if v := math.Hypot(e.step.ForwardM, e.step.LeftM) / dt; v > r.cfg.MaxSpeedMPerS {
+		if o.Counts != nil {
+			copy(r.lastCounts, o.Counts)
+		}
+		return res, fmt.Errorf("%w: %.2f m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
+	}
+	if w := math.Abs(e.step.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
+		if o.Counts != nil {
+			copy(r.lastCounts, o.Counts)
+		}
+		return res, fmt.Errorf("%w: %.2f rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
+	}
+	if o.Counts != nil {
+		copy(r.lastCounts, o.Counts)
+	}
+	r.noteIMU(o)
+	res.e = &e
+	return res, nil
+}
+
+func (r *Robot) noteIMU(o *Odometry) {
+	if r.cfg.IMU == IMURotation && o.IMUHeadingRad != nil {
+		v := *o.IMUHeadingRad
+		r.lastIMU = &v
+	}
+}
+
+// solveWheels builds the rows of DESIGN.md for the wheel travels and solves
+// them for the body step.
+func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoResult) error {
+	n := &r.cfg.Noise
+	r.rows = r.rows[:0]
+	var dist float64
+	for i, w := range r.cfg.Wheels {
+		r.rows = append(r.rows, estimator.Row{
+			Coef:  estimator.WheelCoef(w.XM, w.YM, w.DirectionRad),
+			Value: travel[i],
+			Var:   n.WheelVarM2PerM * math.Abs(travel[i]),
+		})
+		dist += math.Abs(travel[i])
+	}
+	if len(travel) > 0 {
+		dist /= float64(len(travel))
+	}
+	if r.cfg.IMU == IMURotation {
+		turn := estimator.Wrap(*o.IMUHeadingRad - *r.lastIMU)
+		r.rows = append(r.rows, estimator.Row{Coef: estimator.TurnCoef, Value: turn, Var: n.IMUTurnVarRad2PerRad * math.Abs(turn)})
+	}
+	if r.cfg.NoSideSlip {
+		r.rows = append(r.rows, estimator.Row{Coef: estimator.LeftCoef, Value: 0, Var: n.LateralSlipVarM2PerM * dist})
+	}
+	var sol estimator.StepSolution
+	if err := estimator.SolveStep(r.rows, weightFloor, &sol); err != nil {
+		return badf("wheel travels %v: %v", travel, err)
+	}
+	e.step, e.cov = sol.Step, sol.Cov
+	if sol.DOF > 0 {
+		if g, err := estimator.GateThreshold(r.cfg.GateProbability, sol.DOF); err == nil && sol.ChiSquare > g {
+			// The rows disagree: a wheel slipped. Scale the covariance by the
+			// residual variance factor so the step is trusted less
+			// (common practice for weighted least squares with a poor fit).
+			f := sol.ChiSquare / float64(sol.DOF)
+			for k := range e.cov {
+				e.cov[k] *= f
+			}
+			res.slipChi2, res.slipDOF = sol.ChiSquare, sol.DOF
+		}
+	}
+	if r.cfg.IMU != IMURotation {
+		e.cov[8] += n.TurnVarRad2PerRad * math.Abs(e.step.TurnRad)
+	}
+	return nil
+}

@@ -1,0 +1,204 @@
+package fusion
+
+import (
+	"errors"
+	"fmt"
+
+	"reckon/estimator"
+)
+
+// Odometry is one odometry sample. Exactly one of TravelM, Counts and Step
+// is set.
+type Odometry struct {
+	// StampNs is when the wheels were read: the end of the interval.
+	StampNs int64
+	// StartNs is the start of the interval for TravelM and Step; an interval
+	// that does not start where the previous one ended is a gap.
+	StartNs int64
+	// TravelM is each wheel's travel over [StartNs, StampNs] in metres, in
+	// the order of Config.Wheels.
+	TravelM []float64
+	// Counts is each wheel's cumulative count at StampNs. The first sample
+	// sets the reference; a lost sample loses nothing.
+	Counts []int64
+	// Step is a body step the robot computed itself over the interval.
+	Step *estimator.Step
+	// IMUHeadingRad is the IMU's heading at StampNs, if read with the
+	// wheels: an absolute heading update in IMUAbsolute mode, the source of
+	// the turn row in IMURotation mode.
+	IMUHeadingRad *float64
+}
+
+// Heading is one IMU heading sample (IMUAbsolute mode).
+type Heading struct {
+	StampNs    int64
+	HeadingRad float64
+	// VarRad2 is the reading's variance; 0 takes Noise.IMUHeadingVarRad2.
+	VarRad2 float64
+}
+
+// FixKind says what a Fix measures.
+type FixKind uint8
+
+const (
+	// FixPose: the sensor's field pose XM, YM, HeadingRad; Cov is 3x3.
+	FixPose FixKind = iota + 1
+	// FixPosition: the mounted point's field position XM, YM; Cov is 2x2.
+	FixPosition
+	// FixHeading: the sensor's field heading HeadingRad; Cov is 1x1.
+	FixHeading
+	// FixLandmark: range and/or bearing from the sensor to a mapped
+	// landmark; Cov is 2x2 for both, 1x1 for one.
+	FixLandmark
+)
+
+// String names the kind.
+func (k FixKind) String() string {
+	switch k {
+	case FixPose:
+		return "pose"
+	case FixPosition:
+		return "position"
+	case FixHeading:
+		return "heading"
+	case FixLandmark:
+		return "landmark"
+	}
+	return fmt.Sprintf("fix_kind(%d)", uint8(k))
+}
+
+// Fix is one absolute fix, typically from a camera seeing a marker.
+type Fix struct {
+	// StampNs is the capture time, on the robot's time base.
+	StampNs int64
+	// SensorID names the sensor for statistics.
+	SensorID string
+	Kind     FixKind
+	// Mount is the sensor's pose in the body frame.
+	Mount estimator.Pose
+	// XM, YM, HeadingRad are the measured field pose, position or heading.
+	XM, YM, HeadingRad float64
+	// LandmarkID, RangeM, BearingRad are the landmark fix: at least one of
+	// range and bearing (radians from the sensor's +x, counter-clockwise).
+	LandmarkID string
+	RangeM     *float64
+	BearingRad *float64
+	// Cov is the row-major covariance in the order above.
+	Cov []float64
+}
+
+// Verdict says what became of an input.
+type Verdict uint8
+
+const (
+	// VerdictApplied: the input is in the estimate.
+	VerdictApplied Verdict = iota + 1
+	// VerdictHeld: stamped after the newest odometry; it waits, and a later
+	// Result reports it in Resolved.
+	VerdictHeld
+	// VerdictGated: a fix whose NIS exceeded its gate; nothing changed.
+	VerdictGated
+	// VerdictTooOld: stamped before the history window; nothing changed.
+	VerdictTooOld
+	// VerdictInvalid: a bad value; nothing changed; Err says what.
+	VerdictInvalid
+)
+
+// String names the verdict.
+func (v Verdict) String() string {
+	switch v {
+	case VerdictApplied:
+		return "applied"
+	case VerdictHeld:
+		return "held"
+	case VerdictGated:
+		return "gated"
+	case VerdictTooOld:
+		return "too-old"
+	case VerdictInvalid:
+		return "invalid"
+	}
+	return fmt.Sprintf("verdict(%d)", uint8(v))
+}
+
+// Errors that Results carry; test them with errors.Is.
+var (
+	ErrTooOld          = errors.New("stamped before the history window")
+	ErrTimeBackwards   = errors.New("time runs backwards")
+	ErrTooFarAhead     = errors.New("stamped too far past the newest odometry")
+	ErrHeldFull        = errors.New("too many samples already wait for odometry")
+	ErrAbsurdJump      = errors.New("implausible motion")
+	ErrBadSample       = errors.New("malformed sample")
+	ErrUnknownLandmark = errors.New("unknown landmark")
+	ErrNoIMU           = errors.New("robot's imu_mode does not take this sample")
+)
+
+// Resolution is the final verdict of an input that was held.
+type Resolution struct {
+	Seq     uint64
+	Verdict Verdict
+	NIS     float64
+	Err     error
+}
+
+// Result is what became of one input.
+type Result struct {
+	// Seq is the input's arrival sequence number on this robot, from 1.
+	Seq     uint64
+	Verdict Verdict
+	// NIS and Dim are a fix's normalised innovation squared and dimension.
+	NIS float64
+	Dim int
+	// Err says why an input was Invalid or TooOld.
+	Err error
+	// Resolved lists held inputs decided while processing this one.
+	Resolved []Resolution
+	// Events lists notable moments this input caused.
+	Events []Event
+}
+
+// EventKind names a notable moment.
+type EventKind uint8
+
+const (
+	EventFixRefused EventKind = iota + 1
+	EventSlipSuspected
+	EventOdometryGap
+	EventMoveRecovered
+	EventTrustLost
+	EventTrustRegained
+	EventPoseSet
+)
+
+// String names the event kind.
+func (k EventKind) String() string {
+	switch k {
+	case EventFixRefused:
+		return "fix-refused"
+	case EventSlipSuspected:
+		return "slip-suspected"
+	case EventOdometryGap:
+		return "odometry-gap"
+	case EventMoveRecovered:
+		return "move-recovered"
+	case EventTrustLost:
+		return "trust-lost"
+	case EventTrustRegained:
+		return "trust-regained"
+	case EventPoseSet:
+		return "pose-set"
+	}
+	return fmt.Sprintf("event(%d)", uint8(k))
+}
+
+// Event is a notable moment: a fix refused (Value is its NIS), a suspected
+// slip (Value is the residual chi-square), a gap in odometry (Value is its
+// length in seconds), a move recovered (Value is the correction's length in
+// metres), trust lost or regained (Detail lists the reasons), a pose set.
+type Event struct {
+	Kind     EventKind
+	StampNs  int64
+	SensorID string
+	Value    float64
+	Detail   string
+}

@@ -1,0 +1,243 @@
+package fusion
+
+import (
+	"fmt"
+	"math"
+	"strings"
+
+	"gonum.org/v1/gonum/stat/distuv"
+)
+
+// VerdictCounts counts inputs by verdict.
+type VerdictCounts struct {
+	Applied, Held, Gated, TooOld, Invalid uint64
+}
+
+func (c *VerdictCounts) add(v Verdict) {
+	switch v {
+	case VerdictApplied:
+		c.Applied++
+	case VerdictHeld:
+		c.Held++
+	case VerdictGated:
+		c.Gated++
+	case VerdictTooOld:
+		c.TooOld++
+	case VerdictInvalid:
+		c.Invalid++
+	}
+}
+
+// SensorStats is one sensor's consistency record. The IMU is "imu".
+type SensorStats struct {
+	ID string
+	VerdictCounts
+	// NISSum and DOFSum add the NIS and dimensions of applied fixes.
+	NISSum float64
+	DOFSum int
+}
+
+// Consistency compares the sensor's mean NIS over applied fixes with its
+// two-sided 95% chi-square band: the sum of N NIS values of dimension d is
+// chi-square with N*d degrees of freedom when the filter is consistent
+// (Bar-Shalom, Li and Kirubarajan, 2001, section 5.4.2). The verdict is
+// "consistent", "overconfident" (NIS too large: the covariance is too small),
+// "underconfident" or "too few fixes" (fewer than 5).
+func (s SensorStats) Consistency() (mean, lo, hi float64, verdict string) {
+	n := float64(s.Applied)
+	if s.Applied < 5 || s.DOFSum == 0 {
+		return 0, 0, 0, "too few fixes"
+	}
+	mean = s.NISSum / n
+	dist := distuv.ChiSquared{K: float64(s.DOFSum)}
+	lo, hi = dist.Quantile(0.025)/n, dist.Quantile(0.975)/n
+	switch {
+	case mean > hi:
+		verdict = "overconfident"
+	case mean < lo:
+		verdict = "underconfident"
+	default:
+		verdict = "consistent"
+	}
+	return mean, lo, hi, verdict
+}
+
+// Stats is the robot's running statistics.
+type Stats struct {
+	// Odometry and Measurements count inputs by their verdict on arrival
+	// (held inputs are counted again when they are decided).
+	Odometry, Measurements VerdictCounts
+	Sensors                []SensorStats
+	Slips, Gaps, Recoveries uint64
+	// Distrust is why the estimate is not to be trusted now (0: trusted).
+	Distrust TrustReason
+	// Held and WindowEntries are the sizes of the hold queue and the window.
+	Held, WindowEntries int
+}
+
+type statsState struct {
+	odo, meas                VerdictCounts
+	sensors                  []SensorStats
+	index                    map[string]int
+	slips, gaps, recoveries  uint64
+}
+
+func (s *statsState) init() { s.index = map[string]int{} }
+
+func (s *statsState) count(v Verdict, odometry bool) {
+	if odometry {
+		s.odo.add(v)
+	} else {
+		s.meas.add(v)
+	}
+}
+
+// sensor returns the index of the named sensor, adding it if new.
+func (s *statsState) sensor(id string) int {
+	if i, ok := s.index[id]; ok {
+		return i
+	}
+	s.index[id] = len(s.sensors)
+	s.sensors = append(s.sensors, SensorStats{ID: id})
+	return len(s.sensors) - 1
+}
+
+func (s *statsState) sensorVerdict(i int, v Verdict, nis float64, dim int) {
+	if i < 0 || i >= len(s.sensors) {
+		return
+	}
+	ss := &s.sensors[i]
+	ss.add(v)
+	if v == VerdictApplied && dim > 0 {
+		ss.NISSum += nis
+		ss.DOFSum += dim
+	}
+}
+
+// Stats returns a copy of the running statistics.
+func (r *Robot) Stats() Stats {
+	return Stats{
+		Odometry:      r.stats.odo,
+		Measurements:  r.stats.meas,
+		Sensors:       append([]SensorStats(nil), r.stats.sensors...),
+		Slips:         r.stats.slips,
+		Gaps:          r.stats.gaps,
+		Recoveries:    r.stats.recoveries,
+		Distrust:      r.trust.reasons,
+		Held:          len(r.held),
+		WindowEntries: len(r.live()),
+	}
+}
+
+// TrustReason is a set of reasons not to trust the estimate.
+type TrustReason uint16
+
+const (
+	// TrustNoOdometry: no odometry has arrived yet.
+	TrustNoOdometry TrustReason = 1 << iota
+	// TrustPositionUncertain: the 95% position radius is above
+	// trust.max_position95_m.
+	TrustPositionUncertain
+	// TrustHeadingUncertain: the heading standard deviation is above
+	// trust.max_heading_std_rad.
+	TrustHeadingUncertain
+	// TrustInconsistent: the recent fixes' NIS sum is above its chi-square
+	// quantile: the covariance claims more than the fixes bear out.
+	TrustInconsistent
+	// TrustFixesRefused: trust.refused_in_a_row fixes in a row were gated:
+	// the robot may have been moved.
+	TrustFixesRefused
+	// TrustNumericalFault: the last update failed numerically.
+	TrustNumericalFault
+)
+
+var trustNames = []string{"no-odometry", "position-uncertain", "heading-uncertain", "inconsistent", "fixes-refused", "numerical-fault"}
+
+// String lists the reasons, comma separated ("trusted" for none).
+func (t TrustReason) String() string {
+	if t == 0 {
+		return "trusted"
+	}
+	var parts []string
+	for i, n := range trustNames {
+		if t&(1<<i) != 0 {
+			parts = append(parts, n)
+		}
+	}
+	return strings.Join(parts, ",")
+}
+
+type trustState struct {
+	reasons    TrustReason
+	refusedRun int
+	fault      bool
+
+	// A ring of the NIS and dimension of recent applied fixes.
+	nis       []float64
+	dims      []int
+	pos, fill int
+	quantiles map[int]float64
+}
+
+func (t *trustState) addNIS(nis float64, dim int) {
+	if t.nis == nil {
+		return
+	}
+	t.nis[t.pos], t.dims[t.pos] = nis, dim
+	t.pos = (t.pos + 1) % len(t.nis)
+	if t.fill < len(t.nis) {
+		t.fill++
+	}
+}
+
+// evaluate recomputes the reasons and reports transitions as events.
+func (t *trustState) evaluate(r *Robot, res *Result) {
+	if t.nis == nil {
+		t.nis = make([]float64, r.cfg.Trust.NISWindow)
+		t.dims = make([]int, r.cfg.Trust.NISWindow)
+		t.quantiles = map[int]float64{}
+	}
+	var now TrustReason
+	st := r.f.State()
+	if !r.started {
+		now |= TrustNoOdometry
+	}
+	if st.Position95() > r.cfg.Trust.MaxPosition95M {
+		now |= TrustPositionUncertain
+	}
+	if math.Sqrt(st.Var(2)) > r.cfg.Trust.MaxHeadingStdRad {
+		now |= TrustHeadingUncertain
+	}
+	if t.fill == len(t.nis) {
+		var sum float64
+		var dof int
+		for i := range t.nis {
+			sum += t.nis[i]
+			dof += t.dims[i]
+		}
+		q, ok := t.quantiles[dof]
+		if !ok {
+			q = distuv.ChiSquared{K: float64(dof)}.Quantile(r.cfg.Trust.ConsistencyProbability)
+			t.quantiles[dof] = q
+		}
+		if sum > q {
+			now |= TrustInconsistent
+		}
+	}
+	if t.refusedRun >= r.cfg.Trust.RefusedInARow {
+		now |= TrustFixesRefused
+	}
+	if t.fault {
+		now |= TrustNumericalFault
+	}
+	stamp := r.newest
+	switch {
+	case now != 0 && t.reasons == 0:
+		res.Events = append(res.Events, Event{Kind: EventTrustLost, StampNs: stamp, Detail: now.String()})
+	case now == 0 && t.reasons != 0:
+		res.Events = append(res.Events, Event{Kind: EventTrustRegained, StampNs: stamp})
+	case now != t.reasons && now != 0:
+		res.Events = append(res.Events, Event{Kind: EventTrustLost, StampNs: stamp, Detail: fmt.Sprintf("%s (was %s)", now, t.reasons)})
+	}
+	t.reasons = now
+}

@@ -1,0 +1,212 @@
+package fusion
+
+import (
+	"slices"
+	"sort"
+
+	"reckon/estimator"
+)
+
+// checkpoint is the filter's estimate after an input, plus whether the IMU
+// offset has been initialised since the pose was last set.
+type checkpoint struct {
+	est         estimator.State
+	offsetReady bool
+}
+
+type entryKind uint8
+
+const (
+	entOdo entryKind = iota + 1
+	entMeas
+	entReset
+)
+
+// entry is one input in the history window, kept in stamp order: odometry
+// intervals by their end, measurements and resets at their stamp (after the
+// odometry that ends there). Odometry entries are contiguous: each starts
+// where the previous one ended.
+type entry struct {
+	kind   entryKind
+	t0, t1 int64
+	seq    uint64
+
+	// entOdo: the body step over [t0, t1] and its covariance.
+	step estimator.Step
+	cov  [9]float64
+
+	// entMeas.
+	meas   estimator.Measurement
+	imu    bool
+	sensor int
+
+	// entReset.
+	pose    estimator.Pose
+	poseCov [9]float64
+
+	// The estimate after this entry and what the update made of it.
+	after checkpoint
+	out   estimator.Outcome
+	err   error
+	// initialised: this IMU sample initialised the offset (no NIS).
+	initialised bool
+}
+
+// live returns the entries in the window.
+func (r *Robot) live() []entry { return r.ents[r.head:] }
+
+// locate returns the index of the first live entry ending after t.
+func (r *Robot) locate(t int64) int {
+	live := r.live()
+	return sort.Search(len(live), func(i int) bool { return live[i].t1 > t })
+}
+
+// before returns the checkpoint before live entry i.
+func (r *Robot) before(i int) *checkpoint {
+	if i == 0 {
+		return &r.base
+	}
+	return &r.live()[i-1].after
+}
+
+// apply applies e to the filter and stores the checkpoint after it.
+func (r *Robot) apply(e *entry) {
+	switch e.kind {
+	case entOdo:
+		r.predict(r.f, e)
+	case entMeas:
+		e.out, e.err = estimator.Outcome{Dim: e.meas.Kind.Dim()}, nil
+		e.initialised = e.imu && !r.ready
+		if e.initialised {
+			e.err = r.f.InitOffset(e.meas.Z[0], e.meas.R[0])
+			r.ready = e.err == nil
+		} else {
+			gate := r.gates.For(e.meas.Kind.Dim())
+			if e.imu && !r.cfg.GateIMU {
+				gate = 0
+			}
+			e.out, e.err = r.f.Update(&e.meas, gate)
+		}
+	case entReset:
+		e.err = r.f.Reset(e.pose, &e.poseCov)
+		if e.err == nil {
+			r.ready = false
+		}
+	}
+	e.after = checkpoint{r.f.State(), r.ready}
+}
+
+// predict moves filter f by odometry entry e with its time-driven noise.
+func (r *Robot) predict(f *estimator.Filter, e *entry) {
+	dt := float64(e.t1-e.t0) * 1e-9
+	q := [4]float64{0, 0, r.cfg.Noise.HeadingVarRad2PerS * dt}
+	if r.n == 4 {
+		q[3] = r.cfg.Noise.IMUOffsetVarRad2PerS * dt
+	}
+	f.Predict(e.step, &e.cov, &q)
+}
+
+// replayFrom rewinds the filter to the checkpoint before live entry i and
+// applies every entry from i on.
+func (r *Robot) replayFrom(i int) {
+	cp := r.before(i)
+	r.f.SetState(&cp.est)
+	r.ready = cp.offsetReady
+	live := r.live()
+	for j := i; j < len(live); j++ {
+		r.apply(&live[j])
+	}
+}
+
+// appendOdo appends an odometry entry ending after every live entry.
+func (r *Robot) appendOdo(e entry) {
+	r.ents = append(r.ents, e)
+	live := r.live()
+	r.apply(&live[len(live)-1])
+	r.newest = e.t1
+}
+
+// insertion records how a measurement was inserted, so that it can be
+// taken back exactly.
+type insertion struct {
+	at       int // index of the new entry
+	split    bool
+	original entry // the odometry entry that was split
+}
+
+// insert puts e (entMeas or entReset, t0 == t1 == stamp) at its stamp,
+// splitting the odometry interval that contains it by twist fractions, and
+// replays from there. The stamp must lie in [baseT, newest].
+func (r *Robot) insert(e entry) insertion {
+	t := e.t1
+	i := r.locate(t)
+	live := r.live()
+	if i < len(live) && live[i].kind == entOdo && live[i].t0 < t {
+		orig := live[i]
+		a, b := splitOdo(orig, t)
+		live[i] = a
+		r.ents = slices.Insert(r.ents, r.head+i+1, e, b)
+		r.replayFrom(i)
+		return insertion{at: i + 1, split: true, original: orig}
+	}
+	r.ents = slices.Insert(r.ents, r.head+i, e)
+	r.replayFrom(i)
+	return insertion{at: i}
+}
+
+// takeBack removes an inserted entry, merges the interval it split and
+// replays, which restores every checkpoint bit for bit.
+func (r *Robot) takeBack(ins insertion) {
+	if ins.split {
+		r.live()[ins.at-1] = ins.original
+		r.ents = slices.Delete(r.ents, r.head+ins.at, r.head+ins.at+2)
+		r.replayFrom(ins.at - 1)
+		return
+	}
+	r.ents = slices.Delete(r.ents, r.head+ins.at, r.head+ins.at+1)
+	r.replayFrom(ins.at)
+}
+
+// splitOdo splits odometry entry e at t0 < t < t1 into two entries whose
+// steps are the twist fractions of e's step and whose covariances are the
+// same fractions of e's (noise is additive over sub-intervals).
+func splitOdo(e entry, t int64) (a, b entry) {
+	f := float64(t-e.t0) / float64(e.t1-e.t0)
+	a, b = e, e
+	a.t1, b.t0 = t, t
+	a.step, b.step = e.step.Scale(f), e.step.Scale(1-f)
+	for k := range e.cov {
+		a.cov[k] = e.cov[k] * f
+		b.cov[k] = e.cov[k] * (1 - f)
+	}
+	return a, b
+}
+
+// trim folds entries that ended before the window into the base checkpoint.
+func (r *Robot) trim() {
+	cutoff := r.newest - r.cfg.WindowNs
+	live := r.live()
+	k := 0
+	for k < len(live)-1 && live[k].t1 < cutoff {
+		k++
+	}
+	r.dropFront(k)
+}
+
+// dropFront folds the first k live entries into the base checkpoint.
+func (r *Robot) dropFront(k int) {
+	if k == 0 {
+		return
+	}
+	live := r.live()
+	r.base = live[k-1].after
+	r.baseT = live[k-1].t1
+	clear(live[:k]) // release errors for the collector
+	r.head += k
+	if r.head > 1024 && r.head > len(r.ents)/2 {
+		n := copy(r.ents, r.ents[r.head:])
+		clear(r.ents[n:])
+		r.ents = r.ents[:n]
+		r.head = 0
+	}
+}

@@ -66,8 +66,8 @@ func (s SensorStats) Consistency() (mean, lo, hi float64, verdict string) {
 type Stats struct {
 	// Odometry and Measurements count inputs by their verdict on arrival
 	// (held inputs are counted again when they are decided).
-	Odometry, Measurements VerdictCounts
-	Sensors                []SensorStats
+	Odometry, Measurements  VerdictCounts
+	Sensors                 []SensorStats
 	Slips, Gaps, Recoveries uint64
 	// Distrust is why the estimate is not to be trusted now (0: trusted).
 	Distrust TrustReason
@@ -76,10 +76,10 @@ type Stats struct {
 }
 
 type statsState struct {
-	odo, meas                VerdictCounts
-	sensors                  []SensorStats
-	index                    map[string]int
-	slips, gaps, recoveries  uint64
+	odo, meas               VerdictCounts
+	sensors                 []SensorStats
+	index                   map[string]int
+	slips, gaps, recoveries uint64
 }
 
 func (s *statsState) init() { s.index = map[string]int{} }

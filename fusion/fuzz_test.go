@@ -51,24 +51,39 @@ func FuzzSamples(f *testing.F) {
 
 func fuzzSamples(t *testing.T, data []byte) {
 	{
+		in := &reader{b: data}
 		cfg := threeWheels()
+		switch in.byte() % 4 {
+		case 1: // one forward and one lateral wheel, IMU as the turn row
+			cfg.Wheels = cfg.Wheels[1:]
+			cfg.IMU = IMURotation
+		case 2:
+			cfg.IMU = IMUNone
+			cfg.NoSideSlip = true
+		case 3: // a robot that sends body steps
+			cfg.Wheels = nil
+		}
 		cfg.Recovery.Enabled = true
 		cfg.MaxHeld = 8
 		r, err := New(cfg)
 		if err != nil {
 			t.Fatal(err)
 		}
-		in := &reader{b: data}
+		nw := len(cfg.Wheels)
 		var stamp int64
 		for steps := 0; len(in.b) > 0 && steps < 200; steps++ {
-			op := in.byte() % 7
+			op := in.byte() % 8
 			dt := (int64(in.byte()) - 20) * 1e6
 			before := snap(r)
 			var res Result
 			switch op {
 			case 0, 1:
-				tr := []float64{in.small(), in.small(), in.small()}
-				res = r.AddOdometry(Odometry{StartNs: stamp, StampNs: stamp + dt, TravelM: tr})
+				tr := []float64{in.small(), in.small(), in.small()}[:nw]
+				var h *float64
+				if in.byte()%2 == 0 {
+					h = ptr(in.small() * 5)
+				}
+				res = r.AddOdometry(Odometry{StartNs: stamp, StampNs: stamp + dt, TravelM: tr, IMUHeadingRad: h})
 				if res.Verdict == VerdictApplied {
 					stamp += dt
 				}
@@ -80,7 +95,12 @@ func fuzzSamples(t *testing.T, data []byte) {
 			case 4:
 				res = r.SetPose(stamp+dt, estimator.Pose{X: in.small(), Y: in.small(), Heading: in.small()}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, math.Abs(in.small()) + 1e-6})
 			case 5:
-				res = r.AddOdometry(Odometry{StampNs: stamp + dt, Counts: []int64{int64(in.byte()), int64(in.byte()) * 300, int64(in.byte())}})
+				res = r.AddOdometry(Odometry{StampNs: stamp + dt, Counts: []int64{int64(in.byte()), int64(in.byte()) * 300, int64(in.byte())}[:nw]})
+				if res.Verdict == VerdictApplied {
+					stamp += dt
+				}
+			case 7:
+				res = r.AddOdometry(Odometry{StartNs: stamp, StampNs: stamp + dt, Step: &estimator.Step{ForwardM: in.small(), LeftM: in.small(), TurnRad: in.small()}})
 				if res.Verdict == VerdictApplied {
 					stamp += dt
 				}

@@ -314,10 +314,10 @@ func (c Config) Validate() error {
 		return cfgErr("initial_pose", "must be finite")
 	}
 	if err := estimator.CheckCovariance(c.InitialCov, 3); err != nil {
-		return cfgErr("initial_cov", "%v", err)
+		return cfgErr("initial_covariance", "%v", err)
 	}
 	if err := checkVariances(c.InitialCov, 3, poseAngle); err != nil {
-		return cfgErr("initial_cov", "%v", err)
+		return cfgErr("initial_covariance", "%v", err)
 	}
 	seen := map[string]bool{}
 	for i, l := range c.Landmarks {

@@ -52,47 +52,18 @@ func countDelta(cur, prev int64, bits int) int64 {
 // that the following samples are usable; the travel of that interval is lost.
 func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 	var res odoResult
-	set := 0
-	for _, b := range []bool{o.TravelM != nil, o.Counts != nil, o.Step != nil} {
-		if b {
-			set++
-		}
+	if err := r.CheckOdometry(o); err != nil {
+		return res, err
 	}
-	if set != 1 {
-		return res, badf("odometry needs exactly one of travel_m, counts and step, got %d", set)
-	}
-	if r.started && o.StampNs <= r.newest {
-		return res, fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d", ErrTimeBackwards, o.StampNs, r.newest)
-	}
-	if o.IMUHeadingRad != nil {
-		if r.cfg.IMU == IMUNone {
-			return res, fmt.Errorf("%w: imu_heading_rad given but imu_mode is none", ErrNoIMU)
-		}
-		if !finiteAll(*o.IMUHeadingRad) {
-			return res, badf("imu_heading_rad is %v", *o.IMUHeadingRad)
-		}
-		res.imu = o.IMUHeadingRad
-	}
+	res.imu = o.IMUHeadingRad
 	rotation := r.cfg.IMU == IMURotation
-	if rotation && o.IMUHeadingRad == nil && o.Step == nil {
-		return res, badf("imu_heading_rad is required with wheel odometry in imu_mode rotation")
-	}
 	nw := len(r.cfg.Wheels)
 	if cap(r.travel) < nw {
 		r.travel = make([]float64, nw)
 	}
 	travel := r.travel[:nw]
 	var t0, dtNs int64
-	switch {
-	case o.Counts != nil:
-		if len(o.Counts) != nw {
-			return res, badf("counts has %d entries for %d wheels", len(o.Counts), nw)
-		}
-		for i, w := range r.cfg.Wheels {
-			if w.CountsPerM == 0 {
-				return res, badf("counts given but wheels[%d].counts_per_m is not set", i)
-			}
-		}
+	if o.Counts != nil {
 		if r.lastCounts == nil {
 			if !r.started {
 				r.start(o.StampNs)
@@ -107,30 +78,10 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 			travel[i] = float64(countDelta(o.Counts[i], r.lastCounts[i], w.CounterBits)) / w.CountsPerM
 		}
 		t0, dtNs = r.newest, o.StampNs-r.newest
-	case o.TravelM != nil:
-		if len(o.TravelM) != nw {
-			return res, badf("travel_m has %d entries for %d wheels", len(o.TravelM), nw)
-		}
-		if !finiteAll(o.TravelM...) {
-			return res, badf("travel_m %v is not finite", o.TravelM)
-		}
+	} else {
 		copy(travel, o.TravelM)
-		fallthrough
-	default:
-		if o.Step != nil && !finiteAll(o.Step.ForwardM, o.Step.LeftM, o.Step.TurnRad) {
-			return res, badf("step %+v is not finite", *o.Step)
-		}
-		if o.Step == nil && nw == 0 {
-			return res, badf("travel_m given but the robot has no wheels")
-		}
-		if o.StartNs >= o.StampNs {
-			return res, fmt.Errorf("%w: start_ns %d is not before stamp_ns %d", ErrTimeBackwards, o.StartNs, o.StampNs)
-		}
 		t0, dtNs = o.StartNs, o.StampNs-o.StartNs
 		if r.started {
-			if o.StartNs < r.newest {
-				return res, fmt.Errorf("%w: interval starts at %d, before the newest odometry %d", ErrTimeBackwards, o.StartNs, r.newest)
-			}
 			res.gapNs = o.StartNs - r.newest
 			t0 = r.newest
 		}
@@ -151,34 +102,94 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 		return res, nil
 	}
 	e := entry{kind: entOdo, t0: t0, t1: o.StampNs}
-	var err error
 	if o.Step != nil {
 		e.step = *o.Step
 		d := math.Hypot(e.step.ForwardM, e.step.LeftM)
 		n := &r.cfg.Noise
 		e.cov = [9]float64{n.StepForwardVarM2PerM * d, 0, 0, 0, n.StepLeftVarM2PerM * d, 0, 0, 0, n.StepTurnVarRad2PerRad * math.Abs(e.step.TurnRad)}
-	} else if err = r.solveWheels(o, travel, &e, &res); err != nil {
+	} else if err := r.solveWheels(o, travel, &e, &res); err != nil {
 		return res, err
 	}
 	dt := float64(dtNs) * 1e-9
+	var jump error
 	if v := math.Hypot(e.step.ForwardM, e.step.LeftM) / dt; v > r.cfg.MaxSpeedMPerS {
-		if o.Counts != nil {
-			copy(r.lastCounts, o.Counts)
-		}
-		return res, fmt.Errorf("%w: %.2f m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
-	}
-	if w := math.Abs(e.step.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
-		if o.Counts != nil {
-			copy(r.lastCounts, o.Counts)
-		}
-		return res, fmt.Errorf("%w: %.2f rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
+		jump = fmt.Errorf("%w: %.2f m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
+	} else if w := math.Abs(e.step.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
+		jump = fmt.Errorf("%w: %.2f rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
 	}
 	if o.Counts != nil {
 		copy(r.lastCounts, o.Counts)
 	}
+	if jump != nil {
+		return res, jump
+	}
 	r.noteIMU(o)
 	res.e = &e
 	return res, nil
+}
+
+// CheckOdometry reports what is wrong with o without taking it: the
+// checks that do not need the estimate (shape, finite values, the
+// configuration's needs) and time running backwards. AddOdometry refuses
+// what CheckOdometry refuses, and also implausible motion.
+func (r *Robot) CheckOdometry(o *Odometry) error {
+	set := 0
+	for _, b := range []bool{o.TravelM != nil, o.Counts != nil, o.Step != nil} {
+		if b {
+			set++
+		}
+	}
+	if set != 1 {
+		return badf("odometry needs exactly one of travel_m, counts and step, got %d", set)
+	}
+	if r.started && o.StampNs <= r.newest {
+		return fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d", ErrTimeBackwards, o.StampNs, r.newest)
+	}
+	if o.IMUHeadingRad != nil {
+		if r.cfg.IMU == IMUNone {
+			return fmt.Errorf("%w: imu_heading_rad given but imu_mode is none", ErrNoIMU)
+		}
+		if !finiteAll(*o.IMUHeadingRad) {
+			return badf("imu_heading_rad is %v", *o.IMUHeadingRad)
+		}
+	}
+	if r.cfg.IMU == IMURotation && o.IMUHeadingRad == nil && o.Step == nil {
+		return badf("imu_heading_rad is required with wheel odometry in imu_mode rotation")
+	}
+	nw := len(r.cfg.Wheels)
+	switch {
+	case o.Counts != nil:
+		if len(o.Counts) != nw {
+			return badf("counts has %d entries for %d wheels", len(o.Counts), nw)
+		}
+		for i, w := range r.cfg.Wheels {
+			if w.CountsPerM == 0 {
+				return badf("counts given but wheels[%d].counts_per_m is not set", i)
+			}
+		}
+		return nil
+	case o.TravelM != nil:
+		if nw == 0 {
+			return badf("travel_m given but the robot has no wheels")
+		}
+		if len(o.TravelM) != nw {
+			return badf("travel_m has %d entries for %d wheels", len(o.TravelM), nw)
+		}
+		if !finiteAll(o.TravelM...) {
+			return badf("travel_m %v is not finite", o.TravelM)
+		}
+	default:
+		if !finiteAll(o.Step.ForwardM, o.Step.LeftM, o.Step.TurnRad) {
+			return badf("step %+v is not finite", *o.Step)
+		}
+	}
+	if o.StartNs >= o.StampNs {
+		return fmt.Errorf("%w: start_ns %d is not before stamp_ns %d", ErrTimeBackwards, o.StartNs, o.StampNs)
+	}
+	if r.started && o.StartNs < r.newest {
+		return fmt.Errorf("%w: interval starts at %d, before the newest odometry %d", ErrTimeBackwards, o.StartNs, r.newest)
+	}
+	return nil
 }
 
 func (r *Robot) noteIMU(o *Odometry) {

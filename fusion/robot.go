@@ -69,7 +69,7 @@ func New(cfg Config) (*Robot, error) {
 		p[15] = 1 // replaced when the first IMU sample initialises the offset
 	}
 	if r.f, err = estimator.NewFilter(r.n, x, p); err != nil {
-		return nil, cfgErr("initial_cov", "%v", err)
+		return nil, cfgErr("initial_covariance", "%v", err)
 	}
 	r.scratch, _ = estimator.NewFilter(r.n, x, p)
 	r.base = checkpoint{est: r.f.State()}
@@ -156,9 +156,9 @@ func (r *Robot) start(t int64) {
 // AddHeading takes one absolute IMU heading sample.
 func (r *Robot) AddHeading(h Heading) Result {
 	res := r.next()
-	if r.cfg.IMU != IMUAbsolute {
+	if err := r.CheckHeading(&h); err != nil {
 		r.stats.count(VerdictInvalid, false)
-		return r.finish(invalid(res, fmt.Errorf("%w: heading sample for imu_mode %s (send the IMU heading with odometry in rotation mode)", ErrNoIMU, r.cfg.IMU)))
+		return r.finish(invalid(res, err))
 	}
 	m, err := r.imuMeasurement(h.HeadingRad, h.VarRad2)
 	if err != nil {
@@ -294,16 +294,10 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 func (r *Robot) SetPose(stampNs int64, pose estimator.Pose, cov []float64) Result {
 	res := r.next()
 	e := entry{kind: entReset, t0: stampNs, t1: stampNs, seq: res.Seq, pose: pose}
-	if err := estimator.CheckCovariance(cov, 3); err != nil {
-		return r.finish(invalid(res, fmt.Errorf("%w: cov: %v", ErrBadSample, err)))
-	}
-	if err := checkVariances(cov, 3, poseAngle); err != nil {
-		return r.finish(invalid(res, fmt.Errorf("%w: cov: %v", ErrBadSample, err)))
+	if err := CheckPose(pose, cov); err != nil {
+		return r.finish(invalid(res, err))
 	}
 	copy(e.poseCov[:], cov)
-	if !finiteAll(pose.X, pose.Y, pose.Heading) {
-		return r.finish(invalid(res, fmt.Errorf("%w: pose is not finite", ErrBadSample)))
-	}
 	e.pose.Heading = estimator.Wrap(pose.Heading)
 	switch {
 	case !r.started:
@@ -340,3 +334,6 @@ func (r *Robot) finish(res Result) Result {
 	r.trust.evaluate(r, &res)
 	return res
 }
+
+// Sequence returns the arrival sequence number of the last input taken.
+func (r *Robot) Sequence() uint64 { return r.seq }

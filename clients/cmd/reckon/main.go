@@ -1,8 +1,11 @@
 // Command reckon is the command-line tool of the reckon pose estimator.
 //
-//	reckon demo [flags]   run the simulated greenhouse cart through the estimator
+//	reckon demo     a simulated greenhouse cart and camera feeding a real server, live
+//	reckon feed     stream a JSON Lines file of samples to a robot
+//	reckon watch    print a robot's fused poses as a table, CSV or JSON Lines
+//	reckon replay   run a journal, or a configuration and samples, through the estimator offline
 //
-// Run "reckon help" for the commands and "reckon demo -h" for their flags.
+// Run "reckon help" for the commands and "reckon <command> -h" for flags.
 package main
 
 import (
@@ -11,10 +14,11 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"syscall"
 )
 
 func main() {
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt)
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	if err := run(ctx, os.Args[1:], os.Stdout, os.Stderr); err != nil {
 		fmt.Fprintln(os.Stderr, "reckon:", err)
@@ -25,9 +29,13 @@ func main() {
 const usage = `usage: reckon <command> [flags]
 
 commands:
-  demo    run the simulated greenhouse cart through the estimator and print
-          its fused track, uncertainty and error against the simulator's truth
-  help    print this text
+  demo     start a server on loopback, a simulated greenhouse cart and its camera
+           as two gRPC clients, and show the live estimate; leaves the journal
+  feed     stream a JSON Lines file of samples to a robot (-create makes it)
+  watch    print a robot's fused poses as a table, CSV or JSON Lines
+  replay   run a journal, or a robot configuration and a JSON Lines file, through
+           the estimator offline and write the track and every verdict
+  help     print this text
 `
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -35,10 +43,13 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		fmt.Fprint(stderr, usage)
 		return fmt.Errorf("no command given")
 	}
-	switch args[0] {
-	case "demo":
-		return runDemo(ctx, args[1:], stdout, stderr)
-	case "help", "-h", "--help":
+	cmds := map[string]func(context.Context, []string, io.Writer, io.Writer) error{
+		"demo": runDemo, "feed": runFeed, "watch": runWatch, "replay": runReplay,
+	}
+	if f, ok := cmds[args[0]]; ok {
+		return f(ctx, args[1:], stdout, stderr)
+	}
+	if args[0] == "help" || args[0] == "-h" || args[0] == "--help" {
 		fmt.Fprint(stdout, usage)
 		return nil
 	}

@@ -1,0 +1,168 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+
+	"google.golang.org/protobuf/proto"
+
+	"reckon/fusion"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
+	robot := fs.String("robot", "", "robot id or name in the journal")
+	config := fs.String("config", "", "YAML robot configuration: replaces the journal's, or configures -samples")
+	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
+	format := fs.String("format", "csv", "csv or jsonl (table also works)")
+	out := fs.String("out", "", "output file (default standard output)")
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: reckon replay -journal DIR -robot NAME [-config OTHER.yaml] [flags]\n       reckon replay -config ROBOT.yaml -samples SAMPLES.jsonl [flags]")
+		fs.PrintDefaults()
+	}
+	if err := fs.Parse(args); err != nil {
+		return err
+	}
+	var w io.Writer = stdout
+	if *out != "" {
+		f, err := os.Create(*out)
+		if err != nil {
+			return err
+		}
+		defer f.Close()
+		w = f
+	}
+	pw, err := newPoseWriter(*format, w)
+	if err != nil {
+		return err
+	}
+	var override *pb.RobotConfig
+	if *config != "" {
+		b, err := os.ReadFile(*config)
+		if err != nil {
+			return err
+		}
+		if override, _, err = wire.LoadConfigYAML(b); err != nil {
+			return fmt.Errorf("%s: %w", *config, err)
+		}
+	}
+	switch {
+	case *journal != "" && *robot != "":
+		return replayJournal(ctx, *journal, *robot, override, pw, stderr)
+	case *samples != "" && override != nil:
+		return replaySamples(ctx, *samples, override, pw, stderr)
+	}
+	fs.Usage()
+	return errors.New("replay needs -journal and -robot, or -config and -samples")
+}
+
+// replayer runs inputs through a robot as the service would: edge checks,
+// then the robot.
+type replayer struct {
+	name string
+	fr   *fusion.Robot
+	pw   *poseWriter
+}
+
+func (rp *replayer) input(s *pb.Sample) (*pb.IngestResponse, error) {
+	resp, _ := wire.Take(rp.fr, s, 0)
+	return resp, rp.pw.pose(wire.PoseToProto(rp.name, rp.fr.Pose(), rp.fr.Sequence()), resp)
+}
+
+func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
+	id := robot
+	if n, err := wire.ID(robot); err == nil {
+		id = n
+	}
+	rp := &replayer{name: "robots/" + id, pw: pw}
+	same, differ := 0, 0
+	scan, err := wire.ScanJournal(dir, id, func(op *pb.JournalOpening) error {
+		c := op.GetConfig()
+		if override != nil {
+			c = override
+		}
+		cfg, err := wire.ConfigFromProto(c)
+		if err != nil {
+			return err
+		}
+		rp.fr, err = fusion.New(cfg)
+		return err
+	}, func(in *pb.JournalInput, out *pb.JournalOutput) error {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		resp, err := rp.input(in.GetSample())
+		if err != nil {
+			return err
+		}
+		resp.ClientSequence = out.GetResponse().GetClientSequence()
+		if proto.Equal(resp, out.GetResponse()) {
+			same++
+		} else {
+			differ++
+		}
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(stderr, "replayed %d inputs of %s", scan.Pairs, rp.name)
+	if override == nil {
+		fmt.Fprintf(stderr, ": %d verdicts as recorded, %d different", same, differ)
+	} else {
+		fmt.Fprintf(stderr, " with the other configuration: %d verdicts as recorded, %d different", same, differ)
+	}
+	fmt.Fprintln(stderr)
+	if scan.Torn != nil {
+		fmt.Fprintf(stderr, "note: the journal is truncated: %v (everything before it was replayed)\n", scan.Torn)
+	}
+	if override == nil && differ > 0 {
+		return fmt.Errorf("replay differs from the journal in %d verdicts", differ)
+	}
+	return nil
+}
+
+func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
+	cfg, err := wire.ConfigFromProto(cfgProto)
+	if err != nil {
+		return err
+	}
+	fr, err := fusion.New(cfg)
+	if err != nil {
+		return err
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		return err
+	}
+	defer f.Close()
+	rp := &replayer{name: "robots/replay", fr: fr, pw: pw}
+	sr := wire.NewSampleReader(f)
+	n := 0
+	for {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		s, err := sr.Next()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			return fmt.Errorf("%s: %w", path, err)
+		}
+		if _, err := rp.input(s); err != nil {
+			return err
+		}
+		n++
+	}
+	fmt.Fprintf(stderr, "replayed %d samples from %s\n", n, path)
+	return nil
+}

@@ -1,0 +1,78 @@
+package server
+
+import (
+	"net/http"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"google.golang.org/grpc/codes"
+
+	pb "reckon/proto/reckon/v1"
+)
+
+// Metrics are the server's Prometheus metrics on a registry of their own.
+// A nil *Metrics records nothing.
+type Metrics struct {
+	reg      *prometheus.Registry
+	inputs   *prometheus.CounterVec
+	refusals *prometheus.CounterVec
+	latency  prometheus.Histogram
+	watching prometheus.Gauge
+	count    prometheus.Gauge
+	torn     prometheus.Counter
+}
+
+// NewMetrics makes the metrics.
+func NewMetrics() *Metrics {
+	m := &Metrics{
+		reg: prometheus.NewRegistry(),
+		inputs: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_inputs_total",
+			Help: "Inputs taken by the robots, by verdict."}, []string{"verdict"}),
+		refusals: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_inputs_refused_total",
+			Help: "Inputs refused at the edge before reaching a robot, by status code."}, []string{"code"}),
+		latency: prometheus.NewHistogram(prometheus.HistogramOpts{Name: "reckon_ingest_seconds",
+			Help: "Time from receiving an input to its verdict, journal included.", Buckets: prometheus.ExponentialBuckets(5e-6, 2, 16)}),
+		watching: prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_watchers", Help: "Open watch streams."}),
+		count:    prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_robots", Help: "Robots served."}),
+		torn:     prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_journal_torn_total", Help: "Torn journal tails dropped on restore."}),
+	}
+	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn,
+		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
+	return m
+}
+
+// Handler serves the metrics in the Prometheus text format.
+func (m *Metrics) Handler() http.Handler { return promhttp.HandlerFor(m.reg, promhttp.HandlerOpts{}) }
+
+func (m *Metrics) verdict(v pb.Verdict, d time.Duration) {
+	if m == nil {
+		return
+	}
+	m.inputs.WithLabelValues(v.String()).Inc()
+	m.latency.Observe(d.Seconds())
+}
+
+func (m *Metrics) refused(c codes.Code) {
+	if m != nil {
+		m.refusals.WithLabelValues(c.String()).Inc()
+	}
+}
+
+func (m *Metrics) watchers(d float64) {
+	if m != nil {
+		m.watching.Add(d)
+	}
+}
+
+func (m *Metrics) robots(n int) {
+	if m != nil {
+		m.count.Set(float64(n))
+	}
+}
+
+func (m *Metrics) tornTail() {
+	if m != nil {
+		m.torn.Inc()
+	}
+}

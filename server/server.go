@@ -1,0 +1,391 @@
+// Package server is the gRPC FusionService: a registry of robots, each a
+// fusion.Robot behind a mutex, fed by any number of ingest streams, read by
+// watchers that never slow ingest, recorded in a crash-safe journal and
+// restored from it on start.
+//
+// # Invariants
+//
+//   - A robot's inputs are serialised by its mutex, in arrival order.
+//   - A verdict is sent only after its input and output are in the journal
+//     (written to the operating system, and fsynced when SyncEach is set;
+//     otherwise at most SyncInterval later).
+//   - An input refused at the edge (malformed, non-finite, bad covariance,
+//     time backwards, unknown robot) reaches neither the robot nor the
+//     journal.
+//   - A watcher holds at most one pose and MaxWatchEvents events.
+package server
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+	"sort"
+	"sync"
+	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"reckon/fusion"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+// Options configure a Server. The zero value keeps no journal.
+type Options struct {
+	// JournalDir holds the robots' journals ("" keeps none: memory only).
+	JournalDir string
+	// SyncEach fsyncs the journal before every verdict; otherwise the
+	// journal is fsynced every SyncInterval (default 100 ms).
+	SyncEach     bool
+	SyncInterval time.Duration
+	// SegmentBytes rotates journal segments past this size (64 MiB).
+	SegmentBytes int64
+	// MaxWatchEvents bounds the events a slow watcher keeps (256).
+	MaxWatchEvents int
+	// Logger receives the server's log (default: discard).
+	Logger *slog.Logger
+	// Metrics, if set, is updated as the server works.
+	Metrics *Metrics
+}
+
+// Server implements pb.FusionServiceServer.
+type Server struct {
+	pb.UnimplementedFusionServiceServer
+	opt Options
+	log *slog.Logger
+
+	mu     sync.RWMutex // protects robots
+	robots map[string]*robot
+
+	stopSync chan struct{}
+	syncDone chan struct{}
+}
+
+// robot is one robot and everything attached to it.
+type robot struct {
+	name string
+	id   string
+	cfg  *pb.RobotConfig
+
+	mu      sync.Mutex // protects fr, journal, broken, deleted
+	fr      *fusion.Robot
+	journal *wire.JournalWriter
+	broken  error // a journal failure: the robot takes no more input
+	deleted bool
+
+	hub hub
+}
+
+// New returns a server. Call Restore before serving to bring back robots
+// from the journal directory, and Close when done.
+func New(opt Options) (*Server, error) {
+	if opt.SyncInterval <= 0 {
+		opt.SyncInterval = 100 * time.Millisecond
+	}
+	if opt.MaxWatchEvents <= 0 {
+		opt.MaxWatchEvents = 256
+	}
+	if opt.Logger == nil {
+		opt.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
+	}
+	if opt.JournalDir != "" {
+		if err := os.MkdirAll(opt.JournalDir, 0o755); err != nil {
+			return nil, fmt.Errorf("journal directory: %w", err)
+		}
+	}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
+	go s.syncLoop()
+	return s, nil
+}
+
+// syncLoop fsyncs the journals every SyncInterval.
+func (s *Server) syncLoop() {
+	defer close(s.syncDone)
+	t := time.NewTicker(s.opt.SyncInterval)
+	defer t.Stop()
+	for {
+		select {
+		case <-s.stopSync:
+			return
+		case <-t.C:
+			s.SyncJournals()
+		}
+	}
+}
+
+// SyncJournals fsyncs every robot's journal now.
+func (s *Server) SyncJournals() {
+	for _, r := range s.list() {
+		r.mu.Lock()
+		if r.journal != nil && r.broken == nil {
+			if err := r.journal.Sync(); err != nil {
+				r.broken = err
+				s.log.Error("journal sync failed; the robot takes no more input", "robot", r.name, "err", err)
+			}
+		}
+		r.mu.Unlock()
+	}
+}
+
+// EndWatches ends every open watch stream (before a graceful stop, which
+// would otherwise wait for them).
+func (s *Server) EndWatches() {
+	for _, r := range s.list() {
+		r.hub.close()
+	}
+}
+
+// Close syncs and closes every journal and ends every watch.
+func (s *Server) Close() error {
+	close(s.stopSync)
+	<-s.syncDone
+	var errs []error
+	for _, r := range s.list() {
+		r.mu.Lock()
+		if r.journal != nil {
+			errs = append(errs, r.journal.Close())
+			r.journal = nil
+		}
+		r.mu.Unlock()
+		r.hub.close()
+	}
+	return errors.Join(errs...)
+}
+
+func (s *Server) list() []*robot {
+	s.mu.RLock()
+	defer s.mu.RUnlock()
+	out := make([]*robot, 0, len(s.robots))
+	for _, r := range s.robots {
+		out = append(out, r)
+	}
+	sort.Slice(out, func(i, j int) bool { return out[i].name < out[j].name })
+	return out
+}
+
+func (s *Server) lookup(name string) (*robot, error) {
+	if _, err := wire.ID(name); err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
+	}
+	s.mu.RLock()
+	r := s.robots[name]
+	s.mu.RUnlock()
+	if r == nil {
+		return nil, status.Errorf(codes.NotFound, "robot: %s does not exist", name)
+	}
+	return r, nil
+}
+
+func (r *robot) proto() *pb.Robot {
+	return &pb.Robot{Name: r.name, Config: r.cfg, NewestStampNs: r.fr.NewestNs(), InputCount: r.fr.Sequence()}
+}
+
+// CreateRobot creates robots/{robot_id}.
+func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*pb.CreateRobotResponse, error) {
+	if !wire.ValidID(req.GetRobotId()) {
+		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be 1 to 63 lower-case letters, digits and hyphens, starting with a letter", req.GetRobotId())
+	}
+	cfg, err := wire.ConfigFromProto(req.GetConfig())
+	if err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
+	}
+	fr, err := fusion.New(cfg)
+	if err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
+	}
+	name := "robots/" + req.GetRobotId()
+	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr}
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.robots[name] != nil {
+		return nil, status.Errorf(codes.AlreadyExists, "robot_id: %s exists", name)
+	}
+	if s.opt.JournalDir != "" {
+		j, err := wire.CreateJournal(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano()}, s.journalOptions())
+		if err != nil {
+			return nil, status.Errorf(codes.Internal, "journal: %v", err)
+		}
+		r.journal = j
+	}
+	s.robots[name] = r
+	s.opt.Metrics.robots(len(s.robots))
+	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
+	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
+}
+
+func (s *Server) journalOptions() wire.JournalOptions {
+	return wire.JournalOptions{SyncEach: s.opt.SyncEach, SegmentBytes: s.opt.SegmentBytes}
+}
+
+// GetRobot gets a robot.
+func (s *Server) GetRobot(ctx context.Context, req *pb.GetRobotRequest) (*pb.GetRobotResponse, error) {
+	r, err := s.lookup(req.GetName())
+	if err != nil {
+		return nil, err
+	}
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	return &pb.GetRobotResponse{Robot: r.proto()}, nil
+}
+
+// ListRobots lists robots in name order; the page token is the last name.
+func (s *Server) ListRobots(ctx context.Context, req *pb.ListRobotsRequest) (*pb.ListRobotsResponse, error) {
+	size := int(req.GetPageSize())
+	if size < 0 {
+		return nil, status.Errorf(codes.InvalidArgument, "page_size: %d is negative", size)
+	}
+	if size == 0 || size > 1000 {
+		size = 1000
+	}
+	out := &pb.ListRobotsResponse{}
+	for _, r := range s.list() {
+		if r.name <= req.GetPageToken() {
+			continue
+		}
+		if len(out.Robots) == size {
+			out.NextPageToken = out.Robots[len(out.Robots)-1].Name
+			break
+		}
+		r.mu.Lock()
+		out.Robots = append(out.Robots, r.proto())
+		r.mu.Unlock()
+	}
+	return out, nil
+}
+
+// DeleteRobot deletes a robot; its journal is closed and set aside.
+func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*pb.DeleteRobotResponse, error) {
+	r, err := s.lookup(req.GetName())
+	if err != nil {
+		return nil, err
+	}
+	s.mu.Lock()
+	delete(s.robots, r.name)
+	s.opt.Metrics.robots(len(s.robots))
+	s.mu.Unlock()
+	r.mu.Lock()
+	r.deleted = true
+	if r.journal != nil {
+		err = r.journal.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Closing{Closing: &pb.JournalClosing{DeleteTimeUnixNs: time.Now().UnixNano()}}})
+		if err == nil {
+			err = r.journal.Remove()
+		}
+		r.journal = nil
+	}
+	r.mu.Unlock()
+	r.hub.close()
+	if err != nil {
+		return nil, status.Errorf(codes.Internal, "journal: %v", err)
+	}
+	s.log.Info("robot deleted", "robot", r.name)
+	return &pb.DeleteRobotResponse{}, nil
+}
+
+// Ingest takes a stream of samples and answers each in order.
+func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
+	for {
+		req, err := stream.Recv()
+		if err == io.EOF {
+			return nil
+		}
+		if err != nil {
+			return err
+		}
+		if err := stream.Send(s.ingest(req.GetRobot(), req.GetClientSequence(), req.GetSample())); err != nil {
+			return err
+		}
+	}
+}
+
+func refused(clientSeq uint64, code codes.Code, reason string) *pb.IngestResponse {
+	return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: reason, StatusCode: int32(code)}
+}
+
+// ingest applies one sample: edge checks, the robot, the journal, the
+// watchers, in that order.
+func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
+	start := time.Now()
+	r, err := s.lookup(name)
+	if err != nil {
+		st := status.Convert(err)
+		s.opt.Metrics.refused(st.Code())
+		return refused(clientSeq, st.Code(), st.Message())
+	}
+	r.mu.Lock()
+	if r.deleted {
+		r.mu.Unlock()
+		return refused(clientSeq, codes.NotFound, "robot: "+name+" was deleted")
+	}
+	if r.broken != nil {
+		r.mu.Unlock()
+		return refused(clientSeq, codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
+	}
+	resp, taken := wire.Take(r.fr, sample, clientSeq)
+	if !taken {
+		r.mu.Unlock()
+		s.opt.Metrics.refused(codes.Code(resp.StatusCode))
+		return resp
+	}
+	pose := wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+	if r.journal != nil {
+		err := r.journal.Append(
+			&pb.JournalRecord{Entry: &pb.JournalRecord_Input{Input: &pb.JournalInput{Sequence: resp.Sequence, Sample: sample, ArrivalUnixNs: start.UnixNano()}}},
+			&pb.JournalRecord{Entry: &pb.JournalRecord_Output{Output: &pb.JournalOutput{Response: resp, Pose: pose}}})
+		if err != nil {
+			r.broken = err
+			r.mu.Unlock()
+			s.log.Error("journal write failed; the robot takes no more input", "robot", name, "err", err)
+			return refused(clientSeq, codes.Unavailable, "journal: "+err.Error())
+		}
+	}
+	r.mu.Unlock()
+	r.hub.publish(pose, resp.Events, s.opt.MaxWatchEvents)
+	s.opt.Metrics.verdict(resp.Verdict, time.Since(start))
+	return resp
+}
+
+// GetPoseAt gets the estimate at a stamp.
+func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.GetPoseAtResponse, error) {
+	r, err := s.lookup(req.GetRobot())
+	if err != nil {
+		return nil, err
+	}
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	p, err := r.fr.PoseAt(req.GetStampNs())
+	if err != nil {
+		return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %v", err)
+	}
+	return &pb.GetPoseAtResponse{Pose: wire.PoseToProto(r.name, p, r.fr.Sequence())}, nil
+}
+
+// SetPose re-seeds a robot's pose; it is journaled like any input.
+func (s *Server) SetPose(ctx context.Context, req *pb.SetPoseRequest) (*pb.SetPoseResponse, error) {
+	if req.GetSetting() == nil {
+		return nil, status.Errorf(codes.InvalidArgument, "setting: missing")
+	}
+	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_PoseSetting{PoseSetting: req.GetSetting()}})
+	if resp.StatusCode != 0 && resp.Sequence == 0 {
+		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+	}
+	return &pb.SetPoseResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+}
+
+// GetStatistics gets a robot's statistics.
+func (s *Server) GetStatistics(ctx context.Context, req *pb.GetStatisticsRequest) (*pb.GetStatisticsResponse, error) {
+	r, err := s.lookup(req.GetRobot())
+	if err != nil {
+		return nil, err
+	}
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	return &pb.GetStatisticsResponse{Statistics: wire.StatsToProto(r.fr.Stats())}, nil
+}
+
+func poseNow(r *robot) *pb.FusedPose {
+	return wire.PoseToProto(r.name, r.fr.Pose(), r.fr.Sequence())
+}

@@ -1,0 +1,153 @@
+package server
+
+import (
+	"sync"
+	"time"
+
+	pb "reckon/proto/reckon/v1"
+)
+
+// watcher is one Watch stream's mailbox: the newest pose and the events
+// since the last send. Publishing overwrites, so a slow watcher conflates.
+type watcher struct {
+	mu      sync.Mutex // protects the fields below
+	pose    *pb.FusedPose
+	events  []*pb.FusionEvent
+	skipped uint64
+	dropped uint64
+
+	notify chan struct{} // capacity 1
+}
+
+// take empties the mailbox.
+func (w *watcher) take() *pb.WatchResponse {
+	w.mu.Lock()
+	defer w.mu.Unlock()
+	if w.pose == nil {
+		return nil
+	}
+	resp := &pb.WatchResponse{Pose: w.pose, Events: w.events, Skipped: w.skipped, EventsDropped: w.dropped}
+	w.pose, w.events, w.skipped, w.dropped = nil, nil, 0, 0
+	return resp
+}
+
+// hub fans a robot's poses out to its watchers.
+type hub struct {
+	mu       sync.Mutex // protects watchers, closed, done
+	watchers map[*watcher]struct{}
+	closed   bool
+	done     chan struct{}
+}
+
+func (h *hub) doneChan() chan struct{} {
+	if h.done == nil {
+		h.done = make(chan struct{})
+	}
+	return h.done
+}
+
+func (h *hub) add() (*watcher, <-chan struct{}) {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	w := &watcher{notify: make(chan struct{}, 1)}
+	if h.watchers == nil {
+		h.watchers = map[*watcher]struct{}{}
+	}
+	h.watchers[w] = struct{}{}
+	return w, h.doneChan()
+}
+
+func (h *hub) remove(w *watcher) {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	delete(h.watchers, w)
+}
+
+func (h *hub) count() int {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	return len(h.watchers)
+}
+
+// publish hands every watcher the newest pose; it never blocks.
+func (h *hub) publish(pose *pb.FusedPose, events []*pb.FusionEvent, maxEvents int) {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	for w := range h.watchers {
+		w.mu.Lock()
+		if w.pose != nil {
+			w.skipped++
+		}
+		w.pose = pose
+		for _, e := range events {
+			if len(w.events) >= maxEvents {
+				w.events = w.events[1:]
+				w.dropped++
+			}
+			w.events = append(w.events, e)
+		}
+		w.mu.Unlock()
+		select {
+		case w.notify <- struct{}{}:
+		default:
+		}
+	}
+}
+
+// close ends every watch of the robot.
+func (h *hub) close() {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	if !h.closed {
+		h.closed = true
+		close(h.doneChan())
+	}
+}
+
+// Watch streams a robot's poses, conflated for slow readers and rate
+// limited by min_interval_ns.
+func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer) error {
+	r, err := s.lookup(req.GetRobot())
+	if err != nil {
+		return err
+	}
+	w, done := r.hub.add()
+	defer r.hub.remove(w)
+	s.opt.Metrics.watchers(1)
+	defer s.opt.Metrics.watchers(-1)
+	// Start with the current estimate.
+	r.mu.Lock()
+	first := &pb.WatchResponse{Pose: poseNow(r)}
+	r.mu.Unlock()
+	if err := stream.Send(first); err != nil {
+		return err
+	}
+	interval := time.Duration(req.GetMinIntervalNs())
+	ctx := stream.Context()
+	for {
+		select {
+		case <-ctx.Done():
+			return nil
+		case <-done:
+			return nil
+		case <-w.notify:
+		}
+		if resp := w.take(); resp != nil {
+			if err := stream.Send(resp); err != nil {
+				return err
+			}
+		}
+		if interval > 0 {
+			t := time.NewTimer(interval)
+			select {
+			case <-ctx.Done():
+				t.Stop()
+				return nil
+			case <-done:
+				t.Stop()
+				return nil
+			case <-t.C:
+			}
+		}
+	}
+}

@@ -1,0 +1,133 @@
+package wire
+
+import (
+	"fmt"
+
+	"reckon/estimator"
+	"reckon/fusion"
+	pb "reckon/proto/reckon/v1"
+)
+
+// ConfigFromProto converts a wire configuration and validates it. Errors
+// wrap fusion.ErrConfig and name the field as the proto spells it.
+func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
+	var cfg fusion.Config
+	if c == nil {
+		return cfg, fmt.Errorf("%w: config: missing", fusion.ErrConfig)
+	}
+	for _, w := range c.GetWheels() {
+		cfg.Wheels = append(cfg.Wheels, fusion.Wheel{Name: w.GetName(), XM: w.GetXM(), YM: w.GetYM(), DirectionRad: w.GetDirectionRad(),
+			CountsPerM: w.GetCountsPerM(), CounterBits: int(w.GetCounterBits())})
+	}
+	cfg.NoSideSlip = c.GetNoSideSlip()
+	switch c.GetImuMode() {
+	case pb.ImuMode_IMU_MODE_UNSPECIFIED, pb.ImuMode_IMU_MODE_NONE:
+		cfg.IMU = fusion.IMUNone
+	case pb.ImuMode_IMU_MODE_ABSOLUTE:
+		cfg.IMU = fusion.IMUAbsolute
+	case pb.ImuMode_IMU_MODE_ROTATION:
+		cfg.IMU = fusion.IMURotation
+	default:
+		return cfg, fmt.Errorf("%w: imu_mode: %d is not a known mode", fusion.ErrConfig, c.GetImuMode())
+	}
+	n := c.GetNoise()
+	cfg.Noise = fusion.Noise{
+		WheelVarM2PerM:        n.GetWheelVarM2PerM(),
+		LateralSlipVarM2PerM:  n.GetLateralSlipVarM2PerM(),
+		TurnVarRad2PerRad:     n.GetTurnVarRad2PerRad(),
+		HeadingVarRad2PerS:    n.GetHeadingVarRad2PerS(),
+		StepForwardVarM2PerM:  n.GetStepForwardVarM2PerM(),
+		StepLeftVarM2PerM:     n.GetStepLeftVarM2PerM(),
+		StepTurnVarRad2PerRad: n.GetStepTurnVarRad2PerRad(),
+		IMUHeadingVarRad2:     n.GetImuHeadingVarRad2(),
+		IMUTurnVarRad2PerRad:  n.GetImuTurnVarRad2PerRad(),
+		IMUOffsetVarRad2PerS:  n.GetImuOffsetVarRad2PerS(),
+	}
+	cfg.GateProbability = c.GetGateProbability()
+	cfg.GateIMU = c.GetGateImu()
+	cfg.WindowNs = c.GetWindowNs()
+	cfg.MaxHeld = int(c.GetMaxHeld())
+	cfg.MaxHoldAheadNs = c.GetMaxHoldAheadNs()
+	cfg.MaxExtrapolationNs = c.GetMaxExtrapolationNs()
+	cfg.MaxSpeedMPerS = c.GetMaxSpeedMPerS()
+	cfg.MaxTurnRateRadPerS = c.GetMaxTurnRateRadPerS()
+	cfg.Recovery = fusion.Recovery{Enabled: c.GetRecovery().GetEnabled(), Count: int(c.GetRecovery().GetCount()), AgreeProbability: c.GetRecovery().GetAgreeProbability()}
+	t := c.GetTrust()
+	cfg.Trust = fusion.TrustLimits{MaxPosition95M: t.GetMaxPosition95M(), MaxHeadingStdRad: t.GetMaxHeadingStdRad(), NISWindow: int(t.GetNisWindow()),
+		ConsistencyProbability: t.GetConsistencyProbability(), RefusedInARow: int(t.GetRefusedInARow())}
+	cfg.InitialPose = poseFromProto(c.GetInitialPose())
+	if ic := c.GetInitialCovariance(); ic != nil {
+		v, err := covFromProto(ic, 3)
+		if err != nil {
+			return cfg, fmt.Errorf("%w: initial_covariance: %v", fusion.ErrConfig, err)
+		}
+		cfg.InitialCov = v
+	}
+	for _, l := range c.GetLandmarks() {
+		cfg.Landmarks = append(cfg.Landmarks, fusion.Landmark{ID: l.GetId(), XM: l.GetXM(), YM: l.GetYM()})
+	}
+	if err := cfg.Validate(); err != nil {
+		return cfg, err
+	}
+	return cfg, nil
+}
+
+// ConfigToProto converts a configuration to the wire.
+func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
+	c := &pb.RobotConfig{
+		NoSideSlip:         cfg.NoSideSlip,
+		GateProbability:    cfg.GateProbability,
+		GateImu:            cfg.GateIMU,
+		WindowNs:           cfg.WindowNs,
+		MaxHeld:            int32(cfg.MaxHeld),
+		MaxHoldAheadNs:     cfg.MaxHoldAheadNs,
+		MaxExtrapolationNs: cfg.MaxExtrapolationNs,
+		MaxSpeedMPerS:      cfg.MaxSpeedMPerS,
+		MaxTurnRateRadPerS: cfg.MaxTurnRateRadPerS,
+		Recovery:           &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},
+		Trust: &pb.TrustLimits{MaxPosition95M: cfg.Trust.MaxPosition95M, MaxHeadingStdRad: cfg.Trust.MaxHeadingStdRad, NisWindow: int32(cfg.Trust.NISWindow),
+			ConsistencyProbability: cfg.Trust.ConsistencyProbability, RefusedInARow: int32(cfg.Trust.RefusedInARow)},
+		InitialPose: poseToProto(cfg.InitialPose),
+	}
+	for _, w := range cfg.Wheels {
+		c.Wheels = append(c.Wheels, &pb.EncoderWheel{Name: w.Name, XM: w.XM, YM: w.YM, DirectionRad: w.DirectionRad, CountsPerM: w.CountsPerM, CounterBits: int32(w.CounterBits)})
+	}
+	c.ImuMode = map[fusion.IMUMode]pb.ImuMode{fusion.IMUNone: pb.ImuMode_IMU_MODE_NONE, fusion.IMUAbsolute: pb.ImuMode_IMU_MODE_ABSOLUTE, fusion.IMURotation: pb.ImuMode_IMU_MODE_ROTATION}[cfg.IMU]
+	n := cfg.Noise
+	c.Noise = &pb.NoiseModel{WheelVarM2PerM: n.WheelVarM2PerM, LateralSlipVarM2PerM: n.LateralSlipVarM2PerM, TurnVarRad2PerRad: n.TurnVarRad2PerRad,
+		HeadingVarRad2PerS: n.HeadingVarRad2PerS, StepForwardVarM2PerM: n.StepForwardVarM2PerM, StepLeftVarM2PerM: n.StepLeftVarM2PerM,
+		StepTurnVarRad2PerRad: n.StepTurnVarRad2PerRad, ImuHeadingVarRad2: n.IMUHeadingVarRad2, ImuTurnVarRad2PerRad: n.IMUTurnVarRad2PerRad,
+		ImuOffsetVarRad2PerS: n.IMUOffsetVarRad2PerS}
+	if cfg.InitialCov != nil {
+		c.InitialCovariance = &pb.Covariance{Dimension: 3, Values: append([]float64(nil), cfg.InitialCov...)}
+	}
+	for _, l := range cfg.Landmarks {
+		c.Landmarks = append(c.Landmarks, &pb.Landmark{Id: l.ID, XM: l.XM, YM: l.YM})
+	}
+	return c
+}
+
+func poseFromProto(p *pb.Pose2D) estimator.Pose {
+	return estimator.Pose{X: p.GetXM(), Y: p.GetYM(), Heading: p.GetHeadingRad()}
+}
+
+func poseToProto(p estimator.Pose) *pb.Pose2D {
+	return &pb.Pose2D{XM: p.X, YM: p.Y, HeadingRad: p.Heading}
+}
+
+// covFromProto checks a covariance's stated dimension and size.
+func covFromProto(c *pb.Covariance, want int) ([]float64, error) {
+	if c == nil {
+		return nil, fmt.Errorf("missing (want %dx%d)", want, want)
+	}
+	if int(c.GetDimension()) != want {
+		return nil, fmt.Errorf("dimension %d, want %d", c.GetDimension(), want)
+	}
+	if len(c.GetValues()) != want*want {
+		return nil, fmt.Errorf("%d values for dimension %d, want %d", len(c.GetValues()), want, want*want)
+	}
+	if err := estimator.CheckCovariance(c.GetValues(), want); err != nil {
+		return nil, err
+	}
+	return c.GetValues(), nil
+}

@@ -1,0 +1,331 @@
+package wire
+
+import (
+	"bufio"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"hash/crc32"
+	"io"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+
+	"google.golang.org/protobuf/proto"
+
+	pb "reckon/proto/reckon/v1"
+)
+
+// The journal file format (DESIGN.md, "Recording"): a 16-byte header, the
+// magic "RECKONJ1", a little-endian uint32 version and four reserved zero
+// bytes; then records, each a little-endian uint32 length, a little-endian
+// uint32 CRC-32C of the payload and the payload, a JournalRecord message.
+const (
+	journalMagic   = "RECKONJ1"
+	journalVersion = 1
+	headerSize     = 16
+	frameSize      = 8
+	// MaxRecordBytes bounds one record; a longer length is corruption.
+	MaxRecordBytes = 4 << 20
+	// JournalExt is the extension of journal segment files.
+	JournalExt = ".rjl"
+)
+
+var castagnoli = crc32.MakeTable(crc32.Castagnoli)
+
+// ErrBadHeader reports a file that is not a journal of a version we read.
+var ErrBadHeader = errors.New("not a reckon journal")
+
+// TornError reports a journal whose tail is truncated or corrupt: every
+// record before Offset is good.
+type TornError struct {
+	Offset int64
+	Reason string
+}
+
+func (e *TornError) Error() string {
+	return fmt.Sprintf("journal torn at byte %d: %s", e.Offset, e.Reason)
+}
+
+func header() []byte {
+	h := make([]byte, headerSize)
+	copy(h, journalMagic)
+	binary.LittleEndian.PutUint32(h[8:], journalVersion)
+	return h
+}
+
+// JournalReader reads records from a journal file.
+type JournalReader struct {
+	r    *bufio.Reader
+	good int64 // offset just past the last good record
+	buf  []byte
+}
+
+// NewJournalReader checks the header and returns a reader of the records.
+func NewJournalReader(r io.Reader) (*JournalReader, error) {
+	br := bufio.NewReaderSize(r, 1<<16)
+	h := make([]byte, headerSize)
+	if _, err := io.ReadFull(br, h); err != nil {
+		return nil, fmt.Errorf("%w: header: %v", ErrBadHeader, err)
+	}
+	if string(h[:8]) != journalMagic {
+		return nil, fmt.Errorf("%w: magic %q", ErrBadHeader, h[:8])
+	}
+	if v := binary.LittleEndian.Uint32(h[8:]); v != journalVersion {
+		return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrBadHeader, v, journalVersion)
+	}
+	return &JournalReader{r: br, good: headerSize}, nil
+}
+
+// Offset returns the offset just past the last good record.
+func (jr *JournalReader) Offset() int64 { return jr.good }
+
+// Next returns the next record, io.EOF at a clean end, or a *TornError.
+func (jr *JournalReader) Next() (*pb.JournalRecord, error) {
+	var fr [frameSize]byte
+	n, err := io.ReadFull(jr.r, fr[:])
+	if err == io.EOF {
+		return nil, io.EOF
+	}
+	if err != nil {
+		return nil, &TornError{jr.good, fmt.Sprintf("frame cut after %d of %d bytes", n, frameSize)}
+	}
+	size := binary.LittleEndian.Uint32(fr[:4])
+	sum := binary.LittleEndian.Uint32(fr[4:])
+	if size > MaxRecordBytes {
+		return nil, &TornError{jr.good, fmt.Sprintf("record length %d exceeds %d", size, MaxRecordBytes)}
+	}
+	if cap(jr.buf) < int(size) {
+		jr.buf = make([]byte, size)
+	}
+	b := jr.buf[:size]
+	if n, err := io.ReadFull(jr.r, b); err != nil {
+		return nil, &TornError{jr.good, fmt.Sprintf("record cut after %d of %d bytes", n, size)}
+	}
+	if crc32.Checksum(b, castagnoli) != sum {
+		return nil, &TornError{jr.good, "CRC-32C mismatch"}
+	}
+	rec := &pb.JournalRecord{}
+	if err := proto.Unmarshal(b, rec); err != nil {
+		return nil, &TornError{jr.good, fmt.Sprintf("record does not decode: %v", err)}
+	}
+	jr.good += frameSize + int64(size)
+	return rec, nil
+}
+
+// AppendFrame appends the framed encoding of rec to dst.
+func AppendFrame(dst []byte, rec *pb.JournalRecord) ([]byte, error) {
+	start := len(dst)
+	dst = append(dst, make([]byte, frameSize)...)
+	dst, err := proto.MarshalOptions{Deterministic: true}.MarshalAppend(dst, rec)
+	if err != nil {
+		return dst[:start], err
+	}
+	payload := dst[start+frameSize:]
+	if len(payload) > MaxRecordBytes {
+		return dst[:start], fmt.Errorf("journal record of %d bytes exceeds %d", len(payload), MaxRecordBytes)
+	}
+	binary.LittleEndian.PutUint32(dst[start:], uint32(len(payload)))
+	binary.LittleEndian.PutUint32(dst[start+4:], crc32.Checksum(payload, castagnoli))
+	return dst, nil
+}
+
+// JournalOptions configure a journal writer.
+type JournalOptions struct {
+	// SyncEach fsyncs after every append; otherwise the owner calls Sync.
+	SyncEach bool
+	// SegmentBytes starts a new segment file past this size (0: 64 MiB).
+	SegmentBytes int64
+}
+
+// JournalWriter appends records to a robot's journal segments
+// dir/{robot}.{n}.rjl. It is not safe for concurrent use.
+type JournalWriter struct {
+	dir, robot string
+	opt        JournalOptions
+	f          *os.File
+	seg        int
+	size       int64
+	buf        []byte
+	dirty      bool
+}
+
+// SegmentPath returns the path of segment n of a robot's journal.
+func SegmentPath(dir, robot string, n int) string {
+	return filepath.Join(dir, fmt.Sprintf("%s.%06d%s", robot, n, JournalExt))
+}
+
+// Segments lists a robot's journal segments in order.
+func Segments(dir, robot string) ([]string, error) {
+	m, err := filepath.Glob(filepath.Join(dir, robot+".[0-9][0-9][0-9][0-9][0-9][0-9]"+JournalExt))
+	if err != nil {
+		return nil, err
+	}
+	sort.Strings(m)
+	return m, nil
+}
+
+// Robots lists the robot ids that have journals in dir.
+func Robots(dir string) ([]string, error) {
+	m, err := filepath.Glob(filepath.Join(dir, "*.[0-9][0-9][0-9][0-9][0-9][0-9]"+JournalExt))
+	if err != nil {
+		return nil, err
+	}
+	seen := map[string]bool{}
+	var out []string
+	for _, p := range m {
+		b := filepath.Base(p)
+		id := b[:len(b)-len(JournalExt)-7]
+		if !seen[id] {
+			seen[id] = true
+			out = append(out, id)
+		}
+	}
+	sort.Strings(out)
+	return out, nil
+}
+
+// CreateJournal starts a new journal for robot with its opening record. It
+// fails if the robot already has one.
+func CreateJournal(dir, robot string, opening *pb.JournalOpening, opt JournalOptions) (*JournalWriter, error) {
+	if segs, _ := Segments(dir, robot); len(segs) > 0 {
+		return nil, fmt.Errorf("journal for %s already exists in %s", robot, dir)
+	}
+	w := &JournalWriter{dir: dir, robot: robot, opt: opt}
+	if err := w.openSegment(0, true); err != nil {
+		return nil, err
+	}
+	if err := w.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Opening{Opening: opening}}); err != nil {
+		w.Close()
+		return nil, err
+	}
+	return w, w.Sync()
+}
+
+// ResumeJournal reopens the last segment for appending at offset good (the
+// end of its last good record), truncating anything after it.
+func ResumeJournal(dir, robot string, seg int, good int64, opt JournalOptions) (*JournalWriter, error) {
+	w := &JournalWriter{dir: dir, robot: robot, opt: opt, seg: seg}
+	f, err := os.OpenFile(SegmentPath(dir, robot, seg), os.O_RDWR, 0)
+	if err != nil {
+		return nil, err
+	}
+	if err := f.Truncate(good); err != nil {
+		f.Close()
+		return nil, err
+	}
+	if _, err := f.Seek(good, io.SeekStart); err != nil {
+		f.Close()
+		return nil, err
+	}
+	if err := f.Sync(); err != nil {
+		f.Close()
+		return nil, err
+	}
+	w.f, w.size = f, good
+	return w, nil
+}
+
+func (w *JournalWriter) openSegment(n int, exclusive bool) error {
+	flags := os.O_WRONLY | os.O_CREATE
+	if exclusive {
+		flags |= os.O_EXCL
+	}
+	f, err := os.OpenFile(SegmentPath(w.dir, w.robot, n), flags, 0o644)
+	if err != nil {
+		return err
+	}
+	if _, err := f.Write(header()); err != nil {
+		f.Close()
+		return err
+	}
+	w.f, w.seg, w.size = f, n, headerSize
+	return syncDir(w.dir)
+}
+
+func syncDir(dir string) error {
+	d, err := os.Open(dir)
+	if err != nil {
+		return err
+	}
+	defer d.Close()
+	return d.Sync()
+}
+
+// Append writes the records with one write, and fsyncs if SyncEach. When it
+// returns nil the records are in the operating system's hands (and on disk
+// with SyncEach): a crash of the process loses none of them.
+func (w *JournalWriter) Append(recs ...*pb.JournalRecord) error {
+	w.buf = w.buf[:0]
+	var err error
+	for _, r := range recs {
+		if w.buf, err = AppendFrame(w.buf, r); err != nil {
+			return err
+		}
+	}
+	if _, err := w.f.Write(w.buf); err != nil {
+		return fmt.Errorf("journal %s: %w", w.f.Name(), err)
+	}
+	w.size += int64(len(w.buf))
+	w.dirty = true
+	if w.opt.SyncEach {
+		if err := w.Sync(); err != nil {
+			return err
+		}
+	}
+	limit := w.opt.SegmentBytes
+	if limit <= 0 {
+		limit = 64 << 20
+	}
+	if w.size >= limit {
+		if err := w.Sync(); err != nil {
+			return err
+		}
+		if err := w.f.Close(); err != nil {
+			return err
+		}
+		return w.openSegment(w.seg+1, true)
+	}
+	return nil
+}
+
+// Sync flushes the current segment to disk if anything was written.
+func (w *JournalWriter) Sync() error {
+	if !w.dirty {
+		return nil
+	}
+	w.dirty = false
+	return w.f.Sync()
+}
+
+// Close syncs and closes the journal.
+func (w *JournalWriter) Close() error {
+	if w.f == nil {
+		return nil
+	}
+	err := w.Sync()
+	if cerr := w.f.Close(); err == nil {
+		err = cerr
+	}
+	w.f = nil
+	return err
+}
+
+// Remove closes the journal and renames its segments to *.deleted, so that
+// a deleted robot's record stays for review but is not restored.
+func (w *JournalWriter) Remove() error {
+	if err := w.Close(); err != nil {
+		return err
+	}
+	segs, err := Segments(w.dir, w.robot)
+	if err != nil {
+		return err
+	}
+	for _, s := range segs {
+		if err := os.Rename(s, strings.TrimSuffix(s, JournalExt)+".deleted"); err != nil {
+			return err
+		}
+	}
+	return syncDir(w.dir)
+}

@@ -1,0 +1,115 @@
+package wire
+
+import (
+	"bufio"
+	"bytes"
+	"errors"
+	"fmt"
+	"io"
+
+	"google.golang.org/protobuf/encoding/protojson"
+	"google.golang.org/protobuf/proto"
+
+	"reckon/fusion"
+	pb "reckon/proto/reckon/v1"
+)
+
+// MaxLineBytes bounds one JSON Lines record.
+const MaxLineBytes = 1 << 20
+
+// ErrJSONL marks an error in a JSON Lines file.
+var ErrJSONL = errors.New("JSON Lines")
+
+// SampleReader reads samples from JSON Lines: one protojson Sample per
+// line; blank lines and lines starting with # are skipped.
+type SampleReader struct {
+	sc   *bufio.Scanner
+	line int
+}
+
+// NewSampleReader returns a reader of r.
+func NewSampleReader(r io.Reader) *SampleReader {
+	sc := bufio.NewScanner(r)
+	sc.Buffer(make([]byte, 64<<10), MaxLineBytes)
+	return &SampleReader{sc: sc}
+}
+
+// Line returns the line number of the last sample read.
+func (sr *SampleReader) Line() int { return sr.line }
+
+// Next returns the next sample, or io.EOF. Errors name the line.
+func (sr *SampleReader) Next() (*pb.Sample, error) {
+	for sr.sc.Scan() {
+		sr.line++
+		b := bytes.TrimSpace(sr.sc.Bytes())
+		if len(b) == 0 || b[0] == '#' {
+			continue
+		}
+		s := &pb.Sample{}
+		if err := protojson.Unmarshal(b, s); err != nil {
+			return nil, fmt.Errorf("%w: line %d: %v", ErrJSONL, sr.line, err)
+		}
+		if s.GetSample() == nil {
+			return nil, fmt.Errorf("%w: line %d: none of odometry, heading, fix and pose_setting is set", ErrJSONL, sr.line)
+		}
+		return s, nil
+	}
+	if err := sr.sc.Err(); err != nil {
+		return nil, fmt.Errorf("%w: after line %d: %v", ErrJSONL, sr.line, err)
+	}
+	return nil, io.EOF
+}
+
+// WriteJSONLine writes m as one line of protojson.
+func WriteJSONLine(w io.Writer, m proto.Message) error {
+	b, err := protojson.MarshalOptions{UseProtoNames: true}.Marshal(m)
+	if err != nil {
+		return err
+	}
+	b = append(b, '\n')
+	_, err = w.Write(b)
+	return err
+}
+
+// OdometryToProto converts an odometry sample to the wire.
+func OdometryToProto(o *fusion.Odometry) *pb.Sample {
+	s := &pb.OdometrySample{StampNs: o.StampNs, StartNs: o.StartNs, ImuHeadingRad: o.IMUHeadingRad}
+	switch {
+	case o.Counts != nil:
+		s.Motion = &pb.OdometrySample_Counts{Counts: &pb.WheelCounts{Counts: o.Counts}}
+	case o.Step != nil:
+		s.Motion = &pb.OdometrySample_Step{Step: &pb.BodyStep{ForwardM: o.Step.ForwardM, LeftM: o.Step.LeftM, TurnRad: o.Step.TurnRad}}
+	default:
+		s.Motion = &pb.OdometrySample_Travel{Travel: &pb.WheelTravel{TravelM: o.TravelM}}
+	}
+	return &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: s}}
+}
+
+// HeadingToProto converts an IMU heading sample to the wire.
+func HeadingToProto(h *fusion.Heading) *pb.Sample {
+	return &pb.Sample{Sample: &pb.Sample_Heading{Heading: &pb.HeadingSample{StampNs: h.StampNs, HeadingRad: h.HeadingRad, VarianceRad2: h.VarRad2}}}
+}
+
+// FixToProto converts a fix to the wire.
+func FixToProto(f *fusion.Fix) *pb.Sample {
+	x := &pb.Fix{StampNs: f.StampNs, SensorId: f.SensorID, Mount: poseToProto(f.Mount)}
+	dim := 0
+	switch f.Kind {
+	case fusion.FixPose:
+		x.Measurement, dim = &pb.Fix_Pose{Pose: &pb.PoseFix{XM: f.XM, YM: f.YM, HeadingRad: f.HeadingRad}}, 3
+	case fusion.FixPosition:
+		x.Measurement, dim = &pb.Fix_Position{Position: &pb.PositionFix{XM: f.XM, YM: f.YM}}, 2
+	case fusion.FixHeading:
+		x.Measurement, dim = &pb.Fix_Heading{Heading: &pb.HeadingFix{HeadingRad: f.HeadingRad}}, 1
+	case fusion.FixLandmark:
+		x.Measurement = &pb.Fix_Landmark{Landmark: &pb.LandmarkFix{LandmarkId: f.LandmarkID, RangeM: f.RangeM, BearingRad: f.BearingRad}}
+		if f.RangeM != nil {
+			dim++
+		}
+		if f.BearingRad != nil {
+			dim++
+		}
+	}
+	x.Covariance = &pb.Covariance{Dimension: uint32(dim), Values: f.Cov}
+	return &pb.Sample{Sample: &pb.Sample_Fix{Fix: x}}
+}

@@ -1,0 +1,292 @@
+package wire
+
+import (
+	"errors"
+	"fmt"
+
+	"google.golang.org/grpc/codes"
+
+	"reckon/estimator"
+	"reckon/fusion"
+	pb "reckon/proto/reckon/v1"
+)
+
+// ErrSample marks a sample refused at the edge: malformed, or refused by the
+// robot's checks before it reaches the estimate and the journal.
+var ErrSample = errors.New("bad sample")
+
+// Input is a decoded sample, ready for a robot.
+type Input struct {
+	Odometry *fusion.Odometry
+	Heading  *fusion.Heading
+	Fix      *fusion.Fix
+	Pose     *PoseSetting
+}
+
+// PoseSetting is a decoded pose set by hand.
+type PoseSetting struct {
+	StampNs int64
+	Pose    estimator.Pose
+	Cov     []float64
+}
+
+func sampleErr(field string, err error) error {
+	return fmt.Errorf("%w: %s: %w", ErrSample, field, err)
+}
+
+func sampleErrf(field, format string, args ...any) error {
+	return fmt.Errorf("%w: %s: %s", ErrSample, field, fmt.Sprintf(format, args...))
+}
+
+// Decode converts a wire sample and runs the robot's edge checks on it
+// (shape, finite values, covariance, landmark, time running backwards), so
+// that a sample that passes can be journaled and then applied. The error
+// names the field; it wraps ErrSample and the fusion sentinel.
+func Decode(r *fusion.Robot, s *pb.Sample) (Input, error) {
+	var in Input
+	switch v := s.GetSample().(type) {
+	case *pb.Sample_Odometry:
+		o, err := decodeOdometry(v.Odometry)
+		if err != nil {
+			return in, err
+		}
+		if err := r.CheckOdometry(o); err != nil {
+			return in, sampleErr("sample.odometry", err)
+		}
+		in.Odometry = o
+	case *pb.Sample_Heading:
+		h := &fusion.Heading{StampNs: v.Heading.GetStampNs(), HeadingRad: v.Heading.GetHeadingRad(), VarRad2: v.Heading.GetVarianceRad2()}
+		if err := r.CheckHeading(h); err != nil {
+			return in, sampleErr("sample.heading", err)
+		}
+		in.Heading = h
+	case *pb.Sample_Fix:
+		f, err := decodeFix(v.Fix)
+		if err != nil {
+			return in, err
+		}
+		if err := r.CheckFix(f); err != nil {
+			return in, sampleErr("sample.fix", err)
+		}
+		in.Fix = f
+	case *pb.Sample_PoseSetting:
+		ps := v.PoseSetting
+		if ps.GetPose() == nil {
+			return in, sampleErrf("sample.pose_setting.pose", "missing")
+		}
+		cov, err := covFromProto(ps.GetCovariance(), 3)
+		if err != nil {
+			return in, sampleErr("sample.pose_setting.covariance", err)
+		}
+		p := &PoseSetting{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
+		if err := fusion.CheckPose(p.Pose, p.Cov); err != nil {
+			return in, sampleErr("sample.pose_setting", err)
+		}
+		in.Pose = p
+	default:
+		return in, sampleErrf("sample", "none of odometry, heading, fix and pose_setting is set")
+	}
+	return in, nil
+}
+
+func decodeOdometry(o *pb.OdometrySample) (*fusion.Odometry, error) {
+	out := &fusion.Odometry{StampNs: o.GetStampNs(), StartNs: o.GetStartNs()}
+	switch m := o.GetMotion().(type) {
+	case *pb.OdometrySample_Travel:
+		out.TravelM = m.Travel.GetTravelM()
+		if out.TravelM == nil {
+			out.TravelM = []float64{}
+		}
+	case *pb.OdometrySample_Counts:
+		out.Counts = m.Counts.GetCounts()
+		if out.Counts == nil {
+			out.Counts = []int64{}
+		}
+	case *pb.OdometrySample_Step:
+		out.Step = &estimator.Step{ForwardM: m.Step.GetForwardM(), LeftM: m.Step.GetLeftM(), TurnRad: m.Step.GetTurnRad()}
+	default:
+		return nil, sampleErrf("sample.odometry", "none of travel, counts and step is set")
+	}
+	if o.ImuHeadingRad != nil {
+		v := o.GetImuHeadingRad()
+		out.IMUHeadingRad = &v
+	}
+	return out, nil
+}
+
+func decodeFix(f *pb.Fix) (*fusion.Fix, error) {
+	out := &fusion.Fix{StampNs: f.GetStampNs(), SensorID: f.GetSensorId(), Mount: poseFromProto(f.GetMount())}
+	var dim int
+	switch m := f.GetMeasurement().(type) {
+	case *pb.Fix_Pose:
+		out.Kind, dim = fusion.FixPose, 3
+		out.XM, out.YM, out.HeadingRad = m.Pose.GetXM(), m.Pose.GetYM(), m.Pose.GetHeadingRad()
+	case *pb.Fix_Position:
+		out.Kind, dim = fusion.FixPosition, 2
+		out.XM, out.YM = m.Position.GetXM(), m.Position.GetYM()
+	case *pb.Fix_Heading:
+		out.Kind, dim = fusion.FixHeading, 1
+		out.HeadingRad = m.Heading.GetHeadingRad()
+	case *pb.Fix_Landmark:
+		out.Kind = fusion.FixLandmark
+		out.LandmarkID = m.Landmark.GetLandmarkId()
+		if m.Landmark.RangeM != nil {
+			v := m.Landmark.GetRangeM()
+			out.RangeM = &v
+			dim++
+		}
+		if m.Landmark.BearingRad != nil {
+			v := m.Landmark.GetBearingRad()
+			out.BearingRad = &v
+			dim++
+		}
+		if dim == 0 {
+			return nil, sampleErrf("sample.fix.landmark", "neither range_m nor bearing_rad is set")
+		}
+	default:
+		return nil, sampleErrf("sample.fix", "none of pose, position, heading and landmark is set")
+	}
+	cov, err := covFromProto(f.GetCovariance(), dim)
+	if err != nil {
+		return nil, sampleErr("sample.fix.covariance", err)
+	}
+	out.Cov = cov
+	return out, nil
+}
+
+// Apply gives a decoded input to the robot.
+func Apply(r *fusion.Robot, in Input) fusion.Result {
+	switch {
+	case in.Odometry != nil:
+		return r.AddOdometry(*in.Odometry)
+	case in.Heading != nil:
+		return r.AddHeading(*in.Heading)
+	case in.Fix != nil:
+		return r.AddFix(*in.Fix)
+	default:
+		return r.SetPose(in.Pose.StampNs, in.Pose.Pose, in.Pose.Cov)
+	}
+}
+
+// Code returns the gRPC status code for an edge error.
+func Code(err error) codes.Code {
+	switch {
+	case err == nil:
+		return codes.OK
+	case errors.Is(err, fusion.ErrTimeBackwards), errors.Is(err, fusion.ErrTooOld):
+		return codes.OutOfRange
+	case errors.Is(err, fusion.ErrNoIMU):
+		return codes.FailedPrecondition
+	case errors.Is(err, fusion.ErrUnknownLandmark):
+		return codes.NotFound
+	}
+	return codes.InvalidArgument
+}
+
+var verdicts = map[fusion.Verdict]pb.Verdict{
+	fusion.VerdictApplied: pb.Verdict_VERDICT_APPLIED,
+	fusion.VerdictHeld:    pb.Verdict_VERDICT_HELD,
+	fusion.VerdictGated:   pb.Verdict_VERDICT_GATED,
+	fusion.VerdictTooOld:  pb.Verdict_VERDICT_TOO_OLD,
+	fusion.VerdictInvalid: pb.Verdict_VERDICT_INVALID,
+}
+
+var eventKinds = map[fusion.EventKind]pb.EventKind{
+	fusion.EventFixRefused:    pb.EventKind_EVENT_KIND_FIX_REFUSED,
+	fusion.EventSlipSuspected: pb.EventKind_EVENT_KIND_SLIP_SUSPECTED,
+	fusion.EventOdometryGap:   pb.EventKind_EVENT_KIND_ODOMETRY_GAP,
+	fusion.EventMoveRecovered: pb.EventKind_EVENT_KIND_MOVE_RECOVERED,
+	fusion.EventTrustLost:     pb.EventKind_EVENT_KIND_TRUST_LOST,
+	fusion.EventTrustRegained: pb.EventKind_EVENT_KIND_TRUST_REGAINED,
+	fusion.EventPoseSet:       pb.EventKind_EVENT_KIND_POSE_SET,
+}
+
+func reason(err error) string {
+	if err == nil {
+		return ""
+	}
+	return err.Error()
+}
+
+// ResultToProto converts a robot's result to the wire.
+func ResultToProto(res fusion.Result, clientSeq uint64) *pb.IngestResponse {
+	out := &pb.IngestResponse{ClientSequence: clientSeq, Sequence: res.Seq, Verdict: verdicts[res.Verdict], Reason: reason(res.Err),
+		Nis: res.NIS, NisDimension: int32(res.Dim), Events: EventsToProto(res.Events)}
+	for _, r := range res.Resolved {
+		out.Resolved = append(out.Resolved, &pb.Resolution{Sequence: r.Seq, Verdict: verdicts[r.Verdict], Nis: r.NIS, Reason: reason(r.Err)})
+	}
+	return out
+}
+
+// EventsToProto converts events.
+func EventsToProto(evs []fusion.Event) []*pb.FusionEvent {
+	var out []*pb.FusionEvent
+	for _, e := range evs {
+		out = append(out, &pb.FusionEvent{Kind: eventKinds[e.Kind], StampNs: e.StampNs, SensorId: e.SensorID, Value: e.Value, Detail: e.Detail})
+	}
+	return out
+}
+
+// DistrustToProto lists the reasons.
+func DistrustToProto(t fusion.TrustReason) []pb.DistrustReason {
+	var out []pb.DistrustReason
+	for i := 0; i < 16; i++ {
+		if t&(1<<i) != 0 {
+			out = append(out, pb.DistrustReason(i+1))
+		}
+	}
+	return out
+}
+
+// PoseToProto converts a fused pose.
+func PoseToProto(robot string, p fusion.FusedPose, seq uint64) *pb.FusedPose {
+	return &pb.FusedPose{
+		Robot: robot, StampNs: p.StampNs, Pose: poseToProto(p.Pose),
+		Covariance:   &pb.Covariance{Dimension: 3, Values: append([]float64(nil), p.Cov[:]...)},
+		ImuOffsetRad: p.IMUOffsetRad, ImuOffsetVarianceRad2: p.IMUOffsetVarRad2, ImuOffsetReady: p.IMUOffsetReady,
+		Velocity:    &pb.BodyVelocity{ForwardMPerS: p.Velocity.ForwardMPerS, LeftMPerS: p.Velocity.LeftMPerS, TurnRadPerS: p.Velocity.TurnRadPerS},
+		Position95M: p.Position95M, HeadingStdRad: p.HeadingStdRad,
+		Distrust: DistrustToProto(p.Distrust), Trusted: p.Distrust == 0, Extrapolated: p.Extrapolated, Sequence: seq,
+	}
+}
+
+func countsToProto(c fusion.VerdictCounts) *pb.VerdictCounts {
+	return &pb.VerdictCounts{Applied: c.Applied, Held: c.Held, Gated: c.Gated, TooOld: c.TooOld, Invalid: c.Invalid}
+}
+
+// StatsToProto converts a robot's statistics.
+func StatsToProto(s fusion.Stats) *pb.RobotStatistics {
+	out := &pb.RobotStatistics{Odometry: countsToProto(s.Odometry), Measurements: countsToProto(s.Measurements),
+		Slips: s.Slips, Gaps: s.Gaps, Recoveries: s.Recoveries, Distrust: DistrustToProto(s.Distrust),
+		Held: int32(s.Held), WindowEntries: int32(s.WindowEntries)}
+	for _, ss := range s.Sensors {
+		mean, lo, hi, v := ss.Consistency()
+		out.Sensors = append(out.Sensors, &pb.SensorConsistency{SensorId: ss.ID, Counts: countsToProto(ss.VerdictCounts), MeanNis: mean, BandLow: lo, BandHigh: hi, Assessment: v})
+	}
+	return out
+}
+
+// VerdictCode returns the status code of a robot's result.
+func VerdictCode(res fusion.Result) codes.Code {
+	switch res.Verdict {
+	case fusion.VerdictInvalid:
+		return Code(res.Err)
+	case fusion.VerdictTooOld:
+		return codes.OutOfRange
+	}
+	return codes.OK
+}
+
+// Take runs one sample through the robot as the service does: the edge
+// checks, then the robot. taken is false when the edge refused the sample,
+// which then reached neither the robot nor (in the service) the journal.
+func Take(r *fusion.Robot, s *pb.Sample, clientSeq uint64) (resp *pb.IngestResponse, taken bool) {
+	in, err := Decode(r, s)
+	if err != nil {
+		return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: err.Error(), StatusCode: int32(Code(err))}, false
+	}
+	res := Apply(r, in)
+	resp = ResultToProto(res, clientSeq)
+	resp.StatusCode = int32(VerdictCode(res))
+	return resp, true
+}

@@ -264,7 +264,9 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	return nil
 }
 
-func verdictName(v pb.Verdict) string { return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_")) }
+func verdictName(v pb.Verdict) string {
+	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
+}
 
 func printLine(w io.Writer, p *pb.FusedPose, truth estimator.Pose) {
 	c := p.GetCovariance().GetValues()

@@ -1,0 +1,167 @@
+package server
+
+import (
+	"context"
+	"errors"
+	"io"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"syscall"
+	"testing"
+	"time"
+
+	"google.golang.org/protobuf/proto"
+
+	"reckon/clients/sim"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+// TestMain lets the test binary run as the daemon in a child process.
+func TestMain(m *testing.M) {
+	if dir := os.Getenv("RECKON_TEST_DAEMON_JOURNAL"); dir != "" {
+		ready := os.Getenv("RECKON_TEST_DAEMON_READY")
+		err := Serve(context.Background(), DaemonConfig{Listen: "127.0.0.1:0", Options: Options{JournalDir: dir},
+			Ready: func(addr, _ string) { os.WriteFile(ready+".tmp", []byte(addr), 0o644); os.Rename(ready+".tmp", ready) }})
+		if err != nil {
+			os.Stderr.WriteString(err.Error() + "\n")
+			os.Exit(2)
+		}
+		os.Exit(0)
+	}
+	os.Exit(m.Run())
+}
+
+func startChild(t *testing.T, dir string) (*exec.Cmd, string) {
+	t.Helper()
+	ready := filepath.Join(t.TempDir(), "addr")
+	cmd := exec.Command(os.Args[0], "-test.run=^$")
+	cmd.Env = append(os.Environ(), "RECKON_TEST_DAEMON_JOURNAL="+dir, "RECKON_TEST_DAEMON_READY="+ready)
+	cmd.Stderr = os.Stderr
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	for i := 0; i < 500; i++ {
+		if b, err := os.ReadFile(ready); err == nil {
+			return cmd, strings.TrimSpace(string(b))
+		}
+		time.Sleep(10 * time.Millisecond)
+	}
+	cmd.Process.Kill()
+	t.Fatal("child daemon did not start")
+	return nil, ""
+}
+
+// TestCrashSafety kills the daemon (SIGKILL, a child process) in the middle
+// of ingest, restarts it on the same journal, and checks that every
+// acknowledged sample is in the journal with the verdict that was sent, that
+// the robot resumes at the pose a replay of the journal gives, and that it
+// goes on taking samples.
+func TestCrashSafety(t *testing.T) {
+	dir := t.TempDir()
+	cmd, addr := startChild(t, dir)
+	defer cmd.Process.Kill()
+	c := dial(t, addr, clientOpts())
+	ctx := context.Background()
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 8, DurationS: 60, OutlierFraction: 0.05})
+	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
+		t.Fatal(err)
+	}
+	sess, err := c.OpenIngest(ctx, "robots/cart")
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Pipeline: send everything; collect verdicts; kill after 3000.
+	acked := map[uint64]*pb.IngestResponse{}
+	killed := make(chan struct{})
+	go func() {
+		for _, s := range samp {
+			if _, err := sess.Send(s); err != nil {
+				return
+			}
+		}
+	}()
+	for {
+		resp, err := sess.Recv()
+		if err != nil {
+			if len(acked) < 3000 {
+				t.Fatalf("stream ended after %d verdicts: %v", len(acked), err)
+			}
+			break
+		}
+		acked[resp.GetSequence()] = resp
+		if len(acked) == 3000 {
+			cmd.Process.Signal(syscall.SIGKILL)
+			close(killed)
+		}
+	}
+	<-killed
+	cmd.Wait()
+	if len(acked) >= len(samp) {
+		t.Fatalf("all %d samples were acknowledged before the kill", len(samp))
+	}
+	// Every acknowledged verdict is in the journal, as sent.
+	journaled := map[uint64]*pb.IngestResponse{}
+	_, err = wire.ScanJournal(dir, "cart", func(*pb.JournalOpening) error { return nil }, func(in *pb.JournalInput, out *pb.JournalOutput) error {
+		journaled[in.GetSequence()] = out.GetResponse()
+		return nil
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	var maxAck uint64
+	for seq, resp := range acked {
+		if !proto.Equal(journaled[seq], resp) {
+			t.Fatalf("acknowledged sample %d is not in the journal as sent", seq)
+		}
+		maxAck = max(maxAck, seq)
+	}
+	t.Logf("%d acknowledged before the kill, %d in the journal", len(acked), len(journaled))
+
+	// Restart on the same journal.
+	want, _, err := Replay(dir, "cart")
+	if err != nil {
+		t.Fatal(err)
+	}
+	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
+	defer srv.stop()
+	c2 := dial(t, srv.addr, clientOpts())
+	got, err := c2.API().GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	n := got.GetRobot().GetInputCount()
+	if n < maxAck {
+		t.Fatalf("restored robot has %d inputs; %d were acknowledged", n, maxAck)
+	}
+	p, err := c2.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: want.NewestNs()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if wp := want.Pose().Pose; p.GetPose().GetPose().GetXM() != wp.X || p.GetPose().GetPose().GetYM() != wp.Y {
+		t.Errorf("restored pose %v, journal replay %+v", p.GetPose().GetPose(), wp)
+	}
+	// It resumes: the rest of the run goes in, every sample taken.
+	sess2, err := c2.OpenIngest(ctx, "robots/cart")
+	if err != nil {
+		t.Fatal(err)
+	}
+	applied := 0
+	for _, s := range samp[n:] {
+		resp, err := sess2.Apply(s)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if v := resp.GetVerdict(); v != pb.Verdict_VERDICT_INVALID && v != pb.Verdict_VERDICT_TOO_OLD {
+			applied++
+		}
+	}
+	if applied != len(samp[n:]) {
+		t.Errorf("after restart %d of %d samples taken", applied, len(samp[n:]))
+	}
+	if err := sess2.Close(); err != nil && !errors.Is(err, io.EOF) {
+		t.Fatal(err)
+	}
+}

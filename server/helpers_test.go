@@ -1,0 +1,88 @@
+package server
+
+import (
+	"context"
+	"log/slog"
+	"os"
+	"testing"
+	"time"
+
+	"reckon/clients/client"
+	"reckon/clients/sim"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+// running is a service started by a test on a loopback port.
+type running struct {
+	addr, metrics string
+	stop          func()
+}
+
+func start(t testing.TB, dc DaemonConfig) *running {
+	t.Helper()
+	ctx, cancel := context.WithCancel(context.Background())
+	ready := make(chan [2]string, 1)
+	done := make(chan error, 1)
+	dc.Listen = "127.0.0.1:0"
+	dc.Ready = func(a, m string) { ready <- [2]string{a, m} }
+	if dc.Logger == nil {
+		dc.Logger = slog.New(slog.NewTextHandler(os.Stderr, &slog.HandlerOptions{Level: slog.LevelWarn}))
+	}
+	go func() { done <- Serve(ctx, dc) }()
+	select {
+	case a := <-ready:
+		r := &running{addr: a[0], metrics: a[1]}
+		r.stop = func() {
+			cancel()
+			if err := <-done; err != nil {
+				t.Errorf("Serve: %v", err)
+			}
+		}
+		return r
+	case err := <-done:
+		t.Fatalf("Serve: %v", err)
+	case <-time.After(10 * time.Second):
+		t.Fatal("service did not start")
+	}
+	return nil
+}
+
+func dial(t testing.TB, addr string, opt client.Options) *client.Client {
+	t.Helper()
+	c, err := client.Dial(addr, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { c.Close() })
+	return c
+}
+
+// toProto turns a simulator input into a wire sample.
+func toProto(in *sim.Input) *pb.Sample {
+	switch {
+	case in.Odometry != nil:
+		return wire.OdometryToProto(in.Odometry)
+	case in.Heading != nil:
+		return wire.HeadingToProto(in.Heading)
+	default:
+		return wire.FixToProto(in.Fix)
+	}
+}
+
+// samples returns a scenario's inputs as wire samples in arrival order, and
+// the robot configuration.
+func samples(sc sim.Scenario) ([]*pb.Sample, []sim.Input, *pb.RobotConfig) {
+	s := sim.New(sc)
+	cfg := wire.ConfigToProto(s.Config())
+	var out []*pb.Sample
+	var ins []sim.Input
+	for {
+		in, ok := s.Next()
+		if !ok {
+			return out, ins, cfg
+		}
+		out = append(out, toProto(&in))
+		ins = append(ins, in)
+	}
+}

@@ -9,6 +9,7 @@ import (
 
 	"reckon/clients/client"
 	"reckon/clients/sim"
+	"reckon/fusion"
 	pb "reckon/proto/reckon/v1"
 	"reckon/server/wire"
 )
@@ -41,10 +42,13 @@ func start(t testing.TB, dc DaemonConfig) *running {
 		}
 		return r
 	case err := <-done:
+		cancel()
 		t.Fatalf("Serve: %v", err)
 	case <-time.After(10 * time.Second):
+		cancel()
 		t.Fatal("service did not start")
 	}
+	cancel()
 	return nil
 }
 
@@ -86,3 +90,5 @@ func samples(sc sim.Scenario) ([]*pb.Sample, []sim.Input, *pb.RobotConfig) {
 		ins = append(ins, in)
 	}
 }
+
+func wireConfig(c fusion.Config) *pb.RobotConfig { return wire.ConfigToProto(c) }

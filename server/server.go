@@ -285,18 +285,59 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	return &pb.DeleteRobotResponse{}, nil
 }
 
-// Ingest takes a stream of samples and answers each in order.
+// maxBatch bounds a group commit: the samples of one stream taken under one
+// lock and one journal write.
+const maxBatch = 64
+
+// Ingest takes a stream of samples and answers each in order. Samples that
+// are already waiting when one is taken are taken with it, journaled with
+// one write (group commit) and then answered.
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
+	ctx := stream.Context()
+	reqs := make(chan *pb.IngestRequest, maxBatch)
+	errc := make(chan error, 1)
+	go func() {
+		defer close(reqs)
+		for {
+			req, err := stream.Recv()
+			if err != nil {
+				errc <- err
+				return
+			}
+			select {
+			case reqs <- req:
+			case <-ctx.Done():
+				errc <- ctx.Err()
+				return
+			}
+		}
+	}()
+	batch := make([]*pb.IngestRequest, 0, maxBatch)
 	for {
-		req, err := stream.Recv()
-		if err == io.EOF {
+		req, ok := <-reqs
+		if !ok {
+			if err := <-errc; err != io.EOF {
+				return err
+			}
 			return nil
 		}
-		if err != nil {
-			return err
+		batch = append(batch[:0], req)
+	drain:
+		for len(batch) < maxBatch {
+			select {
+			case r, ok := <-reqs:
+				if !ok {
+					break drain
+				}
+				batch = append(batch, r)
+			default:
+				break drain
+			}
 		}
-		if err := stream.Send(s.ingest(req.GetRobot(), req.GetClientSequence(), req.GetSample())); err != nil {
-			return err
+		for _, resp := range s.ingestBatch(batch) {
+			if err := stream.Send(resp); err != nil {
+				return err
+			}
 		}
 	}
 }
@@ -305,47 +346,99 @@ func refused(clientSeq uint64, code codes.Code, reason string) *pb.IngestRespons
 	return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: reason, StatusCode: int32(code)}
 }
 
-// ingest applies one sample: edge checks, the robot, the journal, the
-// watchers, in that order.
+// ingest applies one sample (SetPose and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
+	return s.ingestBatch([]*pb.IngestRequest{{Robot: name, ClientSequence: clientSeq, Sample: sample}})[0]
+}
+
+// ingestBatch applies samples in order: per run of samples for one robot,
+// the edge checks and the robot under its lock, one journal write, then the
+// watchers.
+func (s *Server) ingestBatch(batch []*pb.IngestRequest) []*pb.IngestResponse {
+	out := make([]*pb.IngestResponse, 0, len(batch))
+	for i := 0; i < len(batch); {
+		j := i + 1
+		for j < len(batch) && batch[j].GetRobot() == batch[i].GetRobot() {
+			j++
+		}
+		out = append(out, s.ingestRun(batch[i:j])...)
+		i = j
+	}
+	return out
+}
+
+func (s *Server) ingestRun(run []*pb.IngestRequest) []*pb.IngestResponse {
 	start := time.Now()
+	out := make([]*pb.IngestResponse, len(run))
+	name := run[0].GetRobot()
 	r, err := s.lookup(name)
 	if err != nil {
 		st := status.Convert(err)
-		s.opt.Metrics.refused(st.Code())
-		return refused(clientSeq, st.Code(), st.Message())
+		for k, req := range run {
+			s.opt.Metrics.refused(st.Code())
+			out[k] = refused(req.GetClientSequence(), st.Code(), st.Message())
+		}
+		return out
 	}
+	var pose *pb.FusedPose
+	var events []*pb.FusionEvent
+	taken := make([]bool, len(run))
 	r.mu.Lock()
-	if r.deleted {
-		r.mu.Unlock()
-		return refused(clientSeq, codes.NotFound, "robot: "+name+" was deleted")
-	}
-	if r.broken != nil {
-		r.mu.Unlock()
-		return refused(clientSeq, codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
-	}
-	resp, taken := wire.Take(r.fr, sample, clientSeq)
-	if !taken {
-		r.mu.Unlock()
-		s.opt.Metrics.refused(codes.Code(resp.StatusCode))
-		return resp
-	}
-	pose := wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
-	if r.journal != nil {
-		err := r.journal.Append(
-			&pb.JournalRecord{Entry: &pb.JournalRecord_Input{Input: &pb.JournalInput{Sequence: resp.Sequence, Sample: sample, ArrivalUnixNs: start.UnixNano()}}},
-			&pb.JournalRecord{Entry: &pb.JournalRecord_Output{Output: &pb.JournalOutput{Response: resp, Pose: pose}}})
-		if err != nil {
-			r.broken = err
-			r.mu.Unlock()
-			s.log.Error("journal write failed; the robot takes no more input", "robot", name, "err", err)
-			return refused(clientSeq, codes.Unavailable, "journal: "+err.Error())
+	for k, req := range run {
+		switch {
+		case r.deleted:
+			out[k] = refused(req.GetClientSequence(), codes.NotFound, "robot: "+name+" was deleted")
+			continue
+		case r.broken != nil:
+			out[k] = refused(req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
+			continue
+		}
+		resp, ok := wire.Take(r.fr, req.GetSample(), req.GetClientSequence())
+		out[k] = resp
+		if !ok {
+			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
+			continue
+		}
+		taken[k] = true
+		pose = wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+		events = append(events, resp.Events...)
+		if r.journal != nil {
+			if err := r.journal.Add(
+				&pb.JournalRecord{Entry: &pb.JournalRecord_Input{Input: &pb.JournalInput{Sequence: resp.Sequence, Sample: req.GetSample(), ArrivalUnixNs: start.UnixNano()}}},
+				&pb.JournalRecord{Entry: &pb.JournalRecord_Output{Output: &pb.JournalOutput{Response: resp, Pose: pose}}}); err != nil {
+				r.broken = err
+			}
 		}
 	}
+	if r.journal != nil && r.broken == nil {
+		if err := r.journal.Flush(); err != nil {
+			r.broken = err
+		}
+	}
+	broken := r.broken
 	r.mu.Unlock()
-	r.hub.publish(pose, resp.Events, s.opt.MaxWatchEvents)
-	s.opt.Metrics.verdict(resp.Verdict, time.Since(start))
-	return resp
+	if broken != nil && pose != nil {
+		// Nothing taken in this run may be acknowledged: it is not (all) in
+		// the journal. The robot takes no more input until a restart
+		// restores it from what the journal holds.
+		s.log.Error("journal write failed; the robot takes no more input", "robot", name, "err", broken)
+		for k, req := range run {
+			if taken[k] {
+				out[k] = refused(req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())
+			}
+		}
+		return out
+	}
+	if pose != nil {
+		r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	}
+	d := time.Since(start)
+	for k := range run {
+		if taken[k] {
+			s.opt.Metrics.verdict(out[k].Verdict, d)
+		}
+	}
+	return out
 }
 
 // GetPoseAt gets the estimate at a stamp.

@@ -257,17 +257,38 @@ func syncDir(dir string) error {
 // returns nil the records are in the operating system's hands (and on disk
 // with SyncEach): a crash of the process loses none of them.
 func (w *JournalWriter) Append(recs ...*pb.JournalRecord) error {
-	w.buf = w.buf[:0]
+	if err := w.Add(recs...); err != nil {
+		return err
+	}
+	return w.Flush()
+}
+
+// Add frames records into the writer's buffer without writing them; Flush
+// writes what was added (group commit).
+func (w *JournalWriter) Add(recs ...*pb.JournalRecord) error {
+	n := len(w.buf)
 	var err error
 	for _, r := range recs {
 		if w.buf, err = AppendFrame(w.buf, r); err != nil {
+			w.buf = w.buf[:n]
 			return err
 		}
 	}
-	if _, err := w.f.Write(w.buf); err != nil {
+	return nil
+}
+
+// Flush writes the added records with one write, fsyncs if SyncEach, and
+// rotates the segment if it is full.
+func (w *JournalWriter) Flush() error {
+	if len(w.buf) == 0 {
+		return nil
+	}
+	_, err := w.f.Write(w.buf)
+	w.size += int64(len(w.buf))
+	w.buf = w.buf[:0]
+	if err != nil {
 		return fmt.Errorf("journal %s: %w", w.f.Name(), err)
 	}
-	w.size += int64(len(w.buf))
 	w.dirty = true
 	if w.opt.SyncEach {
 		if err := w.Sync(); err != nil {

@@ -1,0 +1,153 @@
+package server
+
+import (
+	"context"
+	"math"
+	"os"
+	"strings"
+	"testing"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
+
+	"reckon/clients/sim"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+// TestBadInputOverTheWire: bad samples get the right status code and a
+// message naming the field; the robot and its journal are unchanged.
+func TestBadInputOverTheWire(t *testing.T) {
+	dir := t.TempDir()
+	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}, MaxMessageBytes: 16 << 10})
+	defer srv.stop()
+	c := dial(t, srv.addr, clientOpts())
+	ctx := context.Background()
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 9, DurationS: 2})
+	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
+		t.Fatal(err)
+	}
+	sess, _ := c.OpenIngest(ctx, "robots/cart")
+	var newest int64
+	for _, s := range samp {
+		if _, err := sess.Apply(s); err != nil {
+			t.Fatal(err)
+		}
+		if o := s.GetOdometry(); o != nil {
+			newest = o.GetStampNs()
+		}
+	}
+	sess.Close()
+	odo := func(start, stamp int64, travel ...float64) *pb.Sample {
+		return &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StartNs: start, StampNs: stamp,
+			Motion: &pb.OdometrySample_Travel{Travel: &pb.WheelTravel{TravelM: travel}}}}}
+	}
+	fix := func(cov *pb.Covariance, x float64) *pb.Sample {
+		return &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{StampNs: newest - 50e6, SensorId: "camera",
+			Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{XM: x, YM: 0}}, Covariance: cov}}}
+	}
+	cov3 := func(v ...float64) *pb.Covariance { return &pb.Covariance{Dimension: 3, Values: v} }
+	good := cov3(1e-3, 0, 0, 0, 1e-3, 0, 0, 0, 1e-3)
+	cases := []struct {
+		name   string
+		robot  string
+		sample *pb.Sample
+		code   codes.Code
+		field  string
+	}{
+		{"NaN travel", "robots/cart", odo(newest, newest+5e6, math.NaN(), 0, 0), codes.InvalidArgument, "travel_m"},
+		{"infinite fix", "robots/cart", fix(good, math.Inf(1)), codes.InvalidArgument, "sample.fix"},
+		{"covariance size", "robots/cart", fix(cov3(1, 0, 0, 1), 0), codes.InvalidArgument, "sample.fix.covariance"},
+		{"covariance dimension", "robots/cart", fix(&pb.Covariance{Dimension: 2, Values: []float64{1, 0, 0, 1}}, 0), codes.InvalidArgument, "sample.fix.covariance: dimension 2, want 3"},
+		{"covariance not positive definite", "robots/cart", fix(cov3(1, 2, 0, 2, 1, 0, 0, 0, 1), 0), codes.InvalidArgument, "sample.fix.covariance"},
+		{"unknown robot", "robots/tractor", odo(newest, newest+5e6, 0, 0, 0), codes.NotFound, "robot"},
+		{"bad robot name", "tractor", odo(newest, newest+5e6, 0, 0, 0), codes.InvalidArgument, "robot"},
+		{"stamp backwards", "robots/cart", odo(newest-20e6, newest-10e6, 0, 0, 0), codes.OutOfRange, "stamp_ns"},
+		{"no motion", "robots/cart", &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StampNs: newest + 5e6}}}, codes.InvalidArgument, "sample.odometry"},
+		{"empty sample", "robots/cart", &pb.Sample{}, codes.InvalidArgument, "sample"},
+		{"wrong wheel count", "robots/cart", odo(newest, newest+5e6, 0.001), codes.InvalidArgument, "travel_m has 1 entries for 3 wheels"},
+		{"unknown landmark", "robots/cart", &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{StampNs: newest - 50e6,
+			Measurement: &pb.Fix_Landmark{Landmark: &pb.LandmarkFix{LandmarkId: "post-x9", RangeM: proto.Float64(2)}}, Covariance: &pb.Covariance{Dimension: 1, Values: []float64{0.01}}}}}, codes.NotFound, "landmark_id"},
+	}
+	journalSize := func() int64 {
+		st, err := os.Stat(wire.SegmentPath(dir, "cart", 0))
+		if err != nil {
+			t.Fatal(err)
+		}
+		return st.Size()
+	}
+	robotNow := func() (*pb.Robot, *pb.FusedPose) {
+		r, err := c.API().GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		p, err := c.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: newest})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return r.GetRobot(), p.GetPose()
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			size := journalSize()
+			r0, p0 := robotNow()
+			s2, err := c.OpenIngest(ctx, tc.robot)
+			if err != nil {
+				t.Fatal(err)
+			}
+			resp, err := s2.Apply(tc.sample)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if codes.Code(resp.GetStatusCode()) != tc.code || resp.GetVerdict() != pb.Verdict_VERDICT_INVALID || !strings.Contains(resp.GetReason(), tc.field) {
+				t.Errorf("code %v verdict %v reason %q; want %v naming %q", codes.Code(resp.GetStatusCode()), resp.GetVerdict(), resp.GetReason(), tc.code, tc.field)
+			}
+			// The stream stays usable after a bad sample.
+			if _, err := s2.Apply(&pb.Sample{}); err != nil {
+				t.Errorf("stream ended after a bad sample: %v", err)
+			}
+			s2.Close()
+			r1, p1 := robotNow()
+			if !proto.Equal(r0, r1) || !proto.Equal(p0, p1) {
+				t.Errorf("robot changed: %v -> %v", r0.GetInputCount(), r1.GetInputCount())
+			}
+			if journalSize() != size {
+				t.Errorf("journal grew from %d to %d bytes", size, journalSize())
+			}
+		})
+	}
+	// An oversized message ends the stream with RESOURCE_EXHAUSTED and
+	// changes nothing.
+	size := journalSize()
+	r0, _ := robotNow()
+	big, _ := c.OpenIngest(ctx, "robots/cart")
+	_, err := big.Apply(odo(newest, newest+5e6, make([]float64, 5000)...))
+	if status.Code(err) != codes.ResourceExhausted {
+		t.Errorf("oversized message: %v", err)
+	}
+	if r1, _ := robotNow(); !proto.Equal(r0, r1) || journalSize() != size {
+		t.Errorf("oversized message changed the robot or journal")
+	}
+	// Unary calls name the field too.
+	_, err = c.API().SetPose(ctx, &pb.SetPoseRequest{Robot: "robots/cart", Setting: &pb.PoseSetting{StampNs: newest, Pose: &pb.Pose2D{XM: math.NaN()}, Covariance: good}})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "pose") {
+		t.Errorf("SetPose NaN: %v", err)
+	}
+	_, err = c.CreateRobot(ctx, "Bad_Name", cfg)
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "robot_id") {
+		t.Errorf("bad robot id: %v", err)
+	}
+	bad := proto.Clone(cfg).(*pb.RobotConfig)
+	bad.Wheels[1].CountsPerM = -3
+	_, err = c.CreateRobot(ctx, "cart2", bad)
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "wheels[1].counts_per_m") {
+		t.Errorf("bad config: %v", err)
+	}
+	if _, err := c.CreateRobot(ctx, "cart", cfg); status.Code(err) != codes.AlreadyExists {
+		t.Errorf("duplicate robot: %v", err)
+	}
+	if _, err := c.API().GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: "robots/none"}); status.Code(err) != codes.NotFound {
+		t.Errorf("statistics of an unknown robot: %v", err)
+	}
+}

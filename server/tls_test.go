@@ -1,0 +1,146 @@
+package server
+
+import (
+	"context"
+	"crypto/ecdsa"
+	"crypto/elliptic"
+	"crypto/rand"
+	"crypto/tls"
+	"crypto/x509"
+	"crypto/x509/pkix"
+	"encoding/pem"
+	"math/big"
+	"net"
+	"os"
+	"path/filepath"
+	"testing"
+	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"reckon/clients/client"
+	"reckon/clients/sim"
+	pb "reckon/proto/reckon/v1"
+)
+
+// pki is a CA with certificates it signed, written as PEM files.
+type pki struct {
+	dir    string
+	ca     *x509.Certificate
+	caKey  *ecdsa.PrivateKey
+	caPool *x509.CertPool
+}
+
+func newPKI(t *testing.T, name string) *pki {
+	key, _ := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
+	tmpl := &x509.Certificate{SerialNumber: big.NewInt(1), Subject: pkix.Name{CommonName: name}, NotBefore: time.Now().Add(-time.Hour),
+		NotAfter: time.Now().Add(time.Hour), IsCA: true, BasicConstraintsValid: true, KeyUsage: x509.KeyUsageCertSign}
+	der, err := x509.CreateCertificate(rand.Reader, tmpl, tmpl, &key.PublicKey, key)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ca, _ := x509.ParseCertificate(der)
+	p := &pki{dir: t.TempDir(), ca: ca, caKey: key, caPool: x509.NewCertPool()}
+	p.caPool.AddCert(ca)
+	writePEM(t, filepath.Join(p.dir, "ca.pem"), "CERTIFICATE", der)
+	return p
+}
+
+func writePEM(t *testing.T, path, typ string, der []byte) {
+	if err := os.WriteFile(path, pem.EncodeToMemory(&pem.Block{Type: typ, Bytes: der}), 0o600); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// issue writes name.pem and name-key.pem signed by the CA.
+func (p *pki) issue(t *testing.T, name string, server bool) (cert, key string) {
+	k, _ := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
+	tmpl := &x509.Certificate{SerialNumber: big.NewInt(time.Now().UnixNano()), Subject: pkix.Name{CommonName: name},
+		NotBefore: time.Now().Add(-time.Hour), NotAfter: time.Now().Add(time.Hour), KeyUsage: x509.KeyUsageDigitalSignature}
+	if server {
+		tmpl.ExtKeyUsage = []x509.ExtKeyUsage{x509.ExtKeyUsageServerAuth}
+		tmpl.IPAddresses = []net.IP{net.ParseIP("127.0.0.1")}
+	} else {
+		tmpl.ExtKeyUsage = []x509.ExtKeyUsage{x509.ExtKeyUsageClientAuth}
+	}
+	der, err := x509.CreateCertificate(rand.Reader, tmpl, p.ca, &k.PublicKey, p.caKey)
+	if err != nil {
+		t.Fatal(err)
+	}
+	kd, _ := x509.MarshalECPrivateKey(k)
+	cert, key = filepath.Join(p.dir, name+".pem"), filepath.Join(p.dir, name+"-key.pem")
+	writePEM(t, cert, "CERTIFICATE", der)
+	writePEM(t, key, "EC PRIVATE KEY", kd)
+	return cert, key
+}
+
+func tryCall(t *testing.T, addr string, opt client.Options) error {
+	c := dial(t, addr, opt)
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	defer cancel()
+	_, err := c.API().ListRobots(ctx, &pb.ListRobotsRequest{})
+	return err
+}
+
+func TestTLSAndToken(t *testing.T) {
+	p := newPKI(t, "reckon test CA")
+	cert, key := p.issue(t, "reckond", true)
+	srv := start(t, DaemonConfig{TLSCert: cert, TLSKey: key, Token: "greenhouse-7", Options: Options{JournalDir: t.TempDir(), SyncEach: true}})
+	defer srv.stop()
+	tc := &tls.Config{RootCAs: p.caPool, MinVersion: tls.VersionTLS12}
+	if err := tryCall(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"}); err != nil {
+		t.Fatalf("TLS with the token: %v", err)
+	}
+	if err := tryCall(t, srv.addr, client.Options{TLS: tc}); status.Code(err) != codes.Unauthenticated {
+		t.Errorf("no token: %v", err)
+	}
+	if err := tryCall(t, srv.addr, client.Options{TLS: tc, Token: "guess"}); status.Code(err) != codes.Unauthenticated {
+		t.Errorf("wrong token: %v", err)
+	}
+	if err := tryCall(t, srv.addr, client.Options{Token: "greenhouse-7"}); status.Code(err) != codes.Unavailable {
+		t.Errorf("plain text to a TLS server: %v", err)
+	}
+	other := newPKI(t, "some other CA")
+	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: other.caPool}, Token: "greenhouse-7"}); status.Code(err) != codes.Unavailable {
+		t.Errorf("server certificate from an unknown CA: %v", err)
+	}
+	// A stream needs the token too, and works with it (fsync on each).
+	c := dial(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.Differential, IMU: true, Seed: 2, DurationS: 0.2})
+	ctx := context.Background()
+	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
+		t.Fatal(err)
+	}
+	sess, _ := c.OpenIngest(ctx, "robots/cart")
+	for _, s := range samp {
+		if _, err := sess.Apply(s); err != nil {
+			t.Fatal(err)
+		}
+	}
+	sess.Close()
+}
+
+func TestMutualTLS(t *testing.T) {
+	p := newPKI(t, "reckon test CA")
+	cert, key := p.issue(t, "reckond", true)
+	ccert, ckey := p.issue(t, "vision-process", false)
+	srv := start(t, DaemonConfig{TLSCert: cert, TLSKey: key, TLSClientCA: filepath.Join(p.dir, "ca.pem")})
+	defer srv.stop()
+	pair, err := tls.LoadX509KeyPair(ccert, ckey)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: p.caPool, Certificates: []tls.Certificate{pair}}}); err != nil {
+		t.Fatalf("with a client certificate: %v", err)
+	}
+	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: p.caPool}}); err == nil {
+		t.Errorf("a client without a certificate was let in")
+	}
+	rogue := newPKI(t, "rogue CA")
+	rc, rk := rogue.issue(t, "intruder", false)
+	rpair, _ := tls.LoadX509KeyPair(rc, rk)
+	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: p.caPool, Certificates: []tls.Certificate{rpair}}}); err == nil {
+		t.Errorf("a client with a certificate from another CA was let in")
+	}
+}

@@ -104,10 +104,10 @@ func TestCrashSafety(t *testing.T) {
 	}
 	// Every acknowledged verdict is in the journal, as sent.
 	journaled := map[uint64]*pb.IngestResponse{}
-	_, err = wire.ScanJournal(dir, "cart", func(*pb.JournalOpening) error { return nil }, func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	_, err = wire.ScanJournal(dir, "cart", wire.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		journaled[in.GetSequence()] = out.GetResponse()
 		return nil
-	})
+	}})
 	if err != nil {
 		t.Fatal(err)
 	}

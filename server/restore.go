@@ -24,17 +24,38 @@ type RestoreReport struct {
 // every verdict and pose equals the one recorded. It returns the robot and
 // the scan.
 func Replay(dir, id string) (*fusion.Robot, wire.JournalScan, error) {
+	return replay(dir, id, false)
+}
+
+// replay replays a journal; fromSnapshot starts from its last snapshot
+// (what a restart does) instead of the first input.
+func replay(dir, id string, fromSnapshot bool) (*fusion.Robot, wire.JournalScan, error) {
 	var fr *fusion.Robot
-	scan, err := wire.ScanJournal(dir, id, func(op *pb.JournalOpening) error {
-		cfg, err := wire.ConfigFromProto(op.GetConfig())
-		if err != nil {
+	var cfg fusion.Config
+	v := wire.Visitor{Opening: func(op *pb.JournalOpening) error {
+		var err error
+		if cfg, err = wire.ConfigFromProto(op.GetConfig()); err != nil {
 			return fmt.Errorf("opening record: %w", err)
 		}
 		fr, err = fusion.New(cfg)
 		return err
-	}, func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	}, Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		return replayOne(fr, in, out)
-	})
+	}}
+	if fromSnapshot {
+		v.Snapshot = func(s *pb.JournalSnapshot) error {
+			r, err := fusion.RestoreSnapshot(cfg, s.GetState())
+			if err != nil {
+				return err
+			}
+			if r.Sequence() != s.GetSequence() {
+				return fmt.Errorf("snapshot at sequence %d holds sequence %d", s.GetSequence(), r.Sequence())
+			}
+			fr = r
+			return nil
+		}
+	}
+	scan, err := wire.ScanJournal(dir, id, v)
 	if err != nil {
 		return nil, scan, err
 	}
@@ -70,7 +91,7 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 	}
 	var reports []RestoreReport
 	for _, id := range ids {
-		fr, scan, err := Replay(s.opt.JournalDir, id)
+		fr, scan, err := replay(s.opt.JournalDir, id, true)
 		if err != nil {
 			return reports, fmt.Errorf("restore %s: %w", id, err)
 		}

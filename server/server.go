@@ -46,6 +46,9 @@ type Options struct {
 	SegmentBytes int64
 	// MaxWatchEvents bounds the events a slow watcher keeps (256).
 	MaxWatchEvents int
+	// SnapshotEvery writes the robot's state into its journal after this
+	// many inputs (20000), so that a restart replays only what follows.
+	SnapshotEvery int
 	// Logger receives the server's log (default: discard).
 	Logger *slog.Logger
 	// Metrics, if set, is updated as the server works.
@@ -71,11 +74,12 @@ type robot struct {
 	id   string
 	cfg  *pb.RobotConfig
 
-	mu      sync.Mutex // protects fr, journal, broken, deleted
-	fr      *fusion.Robot
-	journal *wire.JournalWriter
-	broken  error // a journal failure: the robot takes no more input
-	deleted bool
+	mu            sync.Mutex // protects fr, journal, broken, deleted
+	fr            *fusion.Robot
+	journal       *wire.JournalWriter
+	broken        error // a journal failure: the robot takes no more input
+	deleted       bool
+	sinceSnapshot int // inputs journaled since the last snapshot
 
 	hub hub
 }
@@ -88,6 +92,9 @@ func New(opt Options) (*Server, error) {
 	}
 	if opt.MaxWatchEvents <= 0 {
 		opt.MaxWatchEvents = 256
+	}
+	if opt.SnapshotEvery <= 0 {
+		opt.SnapshotEvery = 20000
 	}
 	if opt.Logger == nil {
 		opt.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
@@ -413,6 +420,8 @@ func (s *Server) ingestRun(run []*pb.IngestRequest) []*pb.IngestResponse {
 	if r.journal != nil && r.broken == nil {
 		if err := r.journal.Flush(); err != nil {
 			r.broken = err
+		} else if r.sinceSnapshot += len(run); r.sinceSnapshot >= s.opt.SnapshotEvery {
+			s.snapshot(r)
 		}
 	}
 	broken := r.broken
@@ -477,6 +486,21 @@ func (s *Server) GetStatistics(ctx context.Context, req *pb.GetStatisticsRequest
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	return &pb.GetStatisticsResponse{Statistics: wire.StatsToProto(r.fr.Stats())}, nil
+}
+
+// snapshot writes the robot's state into its journal; the caller holds r.mu.
+// A snapshot that cannot be encoded costs only restart time and is logged; a
+// failed write breaks the robot like any journal write.
+func (s *Server) snapshot(r *robot) {
+	r.sinceSnapshot = 0
+	b, err := r.fr.Snapshot()
+	if err != nil {
+		s.log.Warn("snapshot not taken", "robot", r.name, "err", err)
+		return
+	}
+	if err := r.journal.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: r.fr.Sequence(), State: b}}}); err != nil {
+		r.broken = err
+	}
 }
 
 func poseNow(r *robot) *pb.FusedPose {

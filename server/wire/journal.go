@@ -83,6 +83,31 @@ func (jr *JournalReader) Offset() int64 { return jr.good }
 
 // Next returns the next record, io.EOF at a clean end, or a *TornError.
 func (jr *JournalReader) Next() (*pb.JournalRecord, error) {
+	b, err := jr.NextRaw()
+	if err != nil {
+		return nil, err
+	}
+	rec := &pb.JournalRecord{}
+	if err := proto.Unmarshal(b, rec); err != nil {
+		jr.good -= frameSize + int64(len(b))
+		return nil, &TornError{jr.good, fmt.Sprintf("record does not decode: %v", err)}
+	}
+	return rec, nil
+}
+
+// Record kinds as the first byte of a record's payload: the protobuf tag of
+// the one JournalRecord field that is set (field number << 3 | 2).
+const (
+	KindOpening  = 1<<3 | 2
+	KindInput    = 2<<3 | 2
+	KindOutput   = 3<<3 | 2
+	KindClosing  = 4<<3 | 2
+	KindSnapshot = 5<<3 | 2
+)
+
+// NextRaw returns the next record's payload, checked against its CRC but
+// not decoded; it is valid until the next call.
+func (jr *JournalReader) NextRaw() ([]byte, error) {
 	var fr [frameSize]byte
 	n, err := io.ReadFull(jr.r, fr[:])
 	if err == io.EOF {
@@ -106,12 +131,11 @@ func (jr *JournalReader) Next() (*pb.JournalRecord, error) {
 	if crc32.Checksum(b, castagnoli) != sum {
 		return nil, &TornError{jr.good, "CRC-32C mismatch"}
 	}
-	rec := &pb.JournalRecord{}
-	if err := proto.Unmarshal(b, rec); err != nil {
-		return nil, &TornError{jr.good, fmt.Sprintf("record does not decode: %v", err)}
+	if len(b) == 0 {
+		return nil, &TornError{jr.good, "empty record"}
 	}
 	jr.good += frameSize + int64(size)
-	return rec, nil
+	return b, nil
 }
 
 // AppendFrame appends the framed encoding of rec to dst.

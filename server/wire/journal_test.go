@@ -39,13 +39,13 @@ func writeJournal(t *testing.T, dir string, n int, opt JournalOptions) {
 func scanCount(t *testing.T, dir string) (JournalScan, []uint64) {
 	t.Helper()
 	var seqs []uint64
-	sc, err := ScanJournal(dir, "cart", func(*pb.JournalOpening) error { return nil }, func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	sc, err := ScanJournal(dir, "cart", Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		if in.GetSequence() != out.GetResponse().GetSequence() {
 			t.Errorf("input %d paired with output %d", in.GetSequence(), out.GetResponse().GetSequence())
 		}
 		seqs = append(seqs, in.GetSequence())
 		return nil
-	})
+	}})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -9,6 +9,8 @@ import (
 	"strconv"
 	"strings"
 
+	"google.golang.org/protobuf/proto"
+
 	pb "reckon/proto/reckon/v1"
 )
 
@@ -28,18 +30,40 @@ type JournalScan struct {
 	// it was never acknowledged and is dropped with the tail.
 	Unanswered bool
 	Closed     bool
-	Pairs      int
+	// Pairs counts the inputs with their outputs in the journal; Replayed
+	// those passed to Visitor.Pair (fewer when a snapshot was used).
+	Pairs, Replayed int
+	// SnapshotSequence is the sequence of the snapshot used (0: none).
+	SnapshotSequence uint64
+}
+
+// Visitor receives what ScanJournal reads.
+type Visitor struct {
+	// Opening is called with the opening record before anything else.
+	Opening func(*pb.JournalOpening) error
+	// Snapshot, if set, makes the scan start from the journal's last
+	// snapshot: it is called with that snapshot, and Pair only for the
+	// inputs after it. Without it, Pair sees every input.
+	Snapshot func(*pb.JournalSnapshot) error
+	// Pair is called for every input with the output recorded after it.
+	Pair func(in *pb.JournalInput, out *pb.JournalOutput) error
 }
 
 var segNum = regexp.MustCompile(`\.([0-9]{6})` + regexp.QuoteMeta(JournalExt) + `$`)
 
-// ScanJournal reads a robot's journal segments in order and calls fn for
-// every input with the output recorded after it. It stops at a torn or
-// corrupt record and reports it; nothing before it is lost. An error from fn
-// stops the scan and is returned.
-//
-// open is called with the opening record before any input.
-func ScanJournal(dir, robot string, open func(*pb.JournalOpening) error, fn func(in *pb.JournalInput, out *pb.JournalOutput) error) (JournalScan, error) {
+// scanState carries a scan across segments.
+type scanState struct {
+	sc      *JournalScan
+	v       Visitor
+	pending []byte   // an input's payload waiting for its output
+	kept    [][]byte // with a Snapshot visitor: payloads since the last snapshot
+	snap    []byte
+}
+
+// ScanJournal reads a robot's journal segments in order and hands the
+// records to v. It stops at a torn or corrupt record and reports it; nothing
+// before it is lost. An error from v stops the scan and is returned.
+func ScanJournal(dir, robot string, v Visitor) (JournalScan, error) {
 	var sc JournalScan
 	segs, err := Segments(dir, robot)
 	if err != nil {
@@ -48,11 +72,12 @@ func ScanJournal(dir, robot string, open func(*pb.JournalOpening) error, fn func
 	if len(segs) == 0 {
 		return sc, fmt.Errorf("no journal for %s in %s", robot, dir)
 	}
+	st := &scanState{sc: &sc, v: v}
 	for i, path := range segs {
 		m := segNum.FindStringSubmatch(path)
 		n, _ := strconv.Atoi(m[1])
 		sc.Segment = n
-		stop, err := scanSegment(path, i == 0, &sc, open, fn)
+		stop, err := st.segment(path, i == 0)
 		if err != nil {
 			return sc, err
 		}
@@ -64,10 +89,41 @@ func ScanJournal(dir, robot string, open func(*pb.JournalOpening) error, fn func
 	if sc.Opening == nil {
 		return sc, fmt.Errorf("journal for %s has no opening record", robot)
 	}
+	if v.Snapshot != nil {
+		if st.snap != nil {
+			var s pb.JournalSnapshot
+			if err := proto.Unmarshal(st.snap, &s); err != nil {
+				return sc, fmt.Errorf("snapshot: %w", err)
+			}
+			sc.SnapshotSequence = s.GetSequence()
+			if err := v.Snapshot(&s); err != nil {
+				return sc, err
+			}
+		}
+		for i := 0; i+1 < len(st.kept); i += 2 {
+			if err := st.pair(st.kept[i], st.kept[i+1]); err != nil {
+				return sc, err
+			}
+		}
+	}
 	return sc, nil
 }
 
-func scanSegment(path string, first bool, sc *JournalScan, open func(*pb.JournalOpening) error, fn func(*pb.JournalInput, *pb.JournalOutput) error) (stop bool, err error) {
+// pair decodes an input and its output and hands them to the visitor.
+func (st *scanState) pair(inB, outB []byte) error {
+	var rin, rout pb.JournalRecord
+	if err := proto.Unmarshal(inB, &rin); err != nil {
+		return fmt.Errorf("journal input: %w", err)
+	}
+	if err := proto.Unmarshal(outB, &rout); err != nil {
+		return fmt.Errorf("journal output: %w", err)
+	}
+	st.sc.Replayed++
+	return st.v.Pair(rin.GetInput(), rout.GetOutput())
+}
+
+func (st *scanState) segment(path string, first bool) (stop bool, err error) {
+	sc := st.sc
 	f, err := os.Open(path)
 	if err != nil {
 		return false, err
@@ -83,57 +139,81 @@ func scanSegment(path string, first bool, sc *JournalScan, open func(*pb.Journal
 		return true, nil
 	}
 	sc.Good = jr.Offset()
-	var pending *pb.JournalInput
 	for {
-		rec, err := jr.Next()
+		b, err := jr.NextRaw()
 		if errors.Is(err, io.EOF) {
 			break
 		}
 		var torn *TornError
 		if errors.As(err, &torn) {
 			sc.Torn, sc.TornSegment = torn, path
-			sc.Unanswered = pending != nil
+			sc.Unanswered = st.pending != nil
+			st.pending = nil
 			return true, nil
 		}
 		if err != nil {
 			return false, err
 		}
-		switch e := rec.GetEntry().(type) {
-		case *pb.JournalRecord_Opening:
+		switch b[0] {
+		case KindOpening:
 			if !first || sc.Opening != nil {
 				return false, fmt.Errorf("%s: an opening record inside the journal", path)
 			}
-			sc.Opening = e.Opening
-			sc.Good = jr.Offset()
-			if err := open(e.Opening); err != nil {
-				return false, err
+			var rec pb.JournalRecord
+			if err := proto.Unmarshal(b, &rec); err != nil {
+				return false, fmt.Errorf("%s: opening record: %w", path, err)
 			}
-		case *pb.JournalRecord_Input:
+			sc.Opening = rec.GetOpening()
+			sc.Good = jr.Offset()
+			if st.v.Opening != nil {
+				if err := st.v.Opening(sc.Opening); err != nil {
+					return false, err
+				}
+			}
+		case KindInput:
 			if sc.Opening == nil {
 				return false, fmt.Errorf("%s: an input before the opening record", path)
 			}
-			if pending != nil {
-				return false, fmt.Errorf("%s: input %d has no output", path, pending.GetSequence())
+			if st.pending != nil {
+				return false, fmt.Errorf("%s: an input without its output", path)
 			}
-			pending = e.Input
-		case *pb.JournalRecord_Output:
-			if pending == nil {
+			st.pending = append([]byte(nil), b...)
+		case KindOutput:
+			if st.pending == nil {
 				return false, fmt.Errorf("%s: an output without its input", path)
 			}
-			if err := fn(pending, e.Output); err != nil {
-				return false, err
-			}
-			pending = nil
 			sc.Pairs++
 			sc.Good = jr.Offset()
-		case *pb.JournalRecord_Closing:
+			if st.v.Snapshot != nil {
+				st.kept = append(st.kept, st.pending, append([]byte(nil), b...))
+			} else if err := st.pair(st.pending, b); err != nil {
+				return false, err
+			}
+			st.pending = nil
+		case KindSnapshot:
+			if st.pending != nil {
+				return false, fmt.Errorf("%s: a snapshot between an input and its output", path)
+			}
+			sc.Good = jr.Offset()
+			if st.v.Snapshot != nil {
+				var rec pb.JournalRecord
+				if err := proto.Unmarshal(b, &rec); err != nil {
+					return false, fmt.Errorf("%s: snapshot record: %w", path, err)
+				}
+				st.snap, _ = proto.Marshal(rec.GetSnapshot())
+				st.kept = st.kept[:0]
+			}
+		case KindClosing:
 			sc.Closed = true
 			sc.Good = jr.Offset()
+		default:
+			return false, fmt.Errorf("%s: record of unknown kind 0x%02x at byte %d", path, b[0], jr.Offset())
 		}
 	}
-	if pending != nil {
+	if st.pending != nil {
 		sc.Unanswered = true
 		sc.Torn, sc.TornSegment = &TornError{sc.Good, "input without its output at the end"}, path
+		st.pending = nil
 		return true, nil
 	}
 	return false, nil

@@ -3,44 +3,89 @@ package main
 import (
 	"bytes"
 	"context"
+	"encoding/csv"
+	"os"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
 	"testing"
 )
 
-// TestDemo runs the demo as a user would and checks that it reports a
-// sensible estimate: small error, the move recovered, every fix decided.
+func runCmd(t *testing.T, args ...string) (string, string, error) {
+	t.Helper()
+	var out, errb bytes.Buffer
+	err := run(context.Background(), args, &out, &errb)
+	return out.String(), errb.String(), err
+}
+
+// TestDemo runs the demo over real gRPC as a user would (as fast as
+// possible) and checks that it reports a sensible estimate and leaves a
+// journal that replays to the same verdicts.
 func TestDemo(t *testing.T) {
 	for _, layout := range []string{"two-parallel-one-lateral", "parallel-lateral-imu", "differential"} {
 		t.Run(layout, func(t *testing.T) {
-			var out, errb bytes.Buffer
-			if err := run(context.Background(), []string{"demo", "-layout", layout, "-duration", "70"}, &out, &errb); err != nil {
-				t.Fatalf("demo: %v\n%s", err, errb.String())
+			dir := filepath.Join(t.TempDir(), "journal")
+			out, errs, err := runCmd(t, "demo", "-layout", layout, "-duration", "60", "-speed", "0", "-view", "lines", "-journal", dir)
+			if err != nil {
+				t.Fatalf("demo: %v\n%s", err, errs)
 			}
-			s := out.String()
-			m := regexp.MustCompile(`RMS position error against truth: ([0-9.]+) m`).FindStringSubmatch(s)
+			m := regexp.MustCompile(`RMS position error of the watched estimate against truth: ([0-9.]+) m`).FindStringSubmatch(out)
 			if m == nil {
-				t.Fatalf("no RMS line in\n%s", s)
+				t.Fatalf("no RMS line in\n%s", out)
 			}
 			if rms, _ := strconv.ParseFloat(m[1], 64); rms > 0.25 {
-				t.Errorf("RMS error %.3f m", rms)
+				t.Errorf("RMS error %.3f m\n%s", rms, out)
 			}
-			for _, want := range []string{"move-recovered", "fix gated", "sensor camera"} {
-				if !strings.Contains(s, want) {
-					t.Errorf("output lacks %q:\n%s", want, s)
+			for _, want := range []string{"recoveries 1", "gated", "sensor camera", "move_recovered"} {
+				if !strings.Contains(out, want) {
+					t.Errorf("output lacks %q:\n%s", want, out)
 				}
+			}
+			// The journal the demo left replays to the same verdicts.
+			csvPath := filepath.Join(t.TempDir(), "track.csv")
+			_, errs, err = runCmd(t, "replay", "-journal", dir, "-robot", "greenhouse-cart", "-out", csvPath)
+			if err != nil || !strings.Contains(errs, ", 0 different") {
+				t.Fatalf("replay: %v\n%s", err, errs)
+			}
+			f, _ := os.Open(csvPath)
+			defer f.Close()
+			rows, err := csv.NewReader(f).ReadAll()
+			if err != nil || len(rows) < 10000 || rows[0][0] != "stamp_ns" {
+				t.Errorf("track CSV: %d rows, %v", len(rows), err)
 			}
 		})
 	}
 }
 
-func TestUnknownCommand(t *testing.T) {
-	var out, errb bytes.Buffer
-	if err := run(context.Background(), []string{"fly"}, &out, &errb); err == nil || !strings.Contains(errb.String(), "usage") {
-		t.Errorf("unknown command: err %v, stderr %q", err, errb.String())
+// TestReplaySamples runs the example configuration and JSON Lines file
+// offline, and again with another gate probability.
+func TestReplaySamples(t *testing.T) {
+	cfg := "../../../testdata/robots/two-parallel-one-lateral.yaml"
+	samples := "../../../testdata/samples/greenhouse-10s.jsonl"
+	out, errs, err := runCmd(t, "replay", "-config", cfg, "-samples", samples, "-format", "jsonl")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
 	}
-	if err := run(context.Background(), []string{"demo", "-layout", "tricycle"}, &out, &errb); err == nil {
+	lines := strings.Count(out, "\n")
+	if lines < 500 || !strings.Contains(out, `"verdict":"VERDICT_APPLIED"`) {
+		t.Errorf("%d lines of output", lines)
+	}
+	bad := filepath.Join(t.TempDir(), "bad.yaml")
+	os.WriteFile(bad, []byte("imu_mode: absolute\nwheels:\n  - {y_m: 0.1, spokes: 3}\n"), 0o644)
+	if _, _, err := runCmd(t, "replay", "-config", bad, "-samples", samples); err == nil || !strings.Contains(err.Error(), "line 3") {
+		t.Errorf("bad configuration: %v", err)
+	}
+}
+
+func TestUnknownCommand(t *testing.T) {
+	if _, errs, err := runCmd(t, "fly"); err == nil || !strings.Contains(errs, "usage") {
+		t.Errorf("unknown command: err %v, stderr %q", err, errs)
+	}
+	if _, _, err := runCmd(t, "demo", "-layout", "tricycle"); err == nil {
 		t.Errorf("unknown layout accepted")
+	}
+	if _, _, err := runCmd(t, "replay"); err == nil {
+		t.Errorf("replay without arguments accepted")
 	}
 }

@@ -84,7 +84,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	}
 	rp := &replayer{name: "robots/" + id, pw: pw}
 	same, differ := 0, 0
-	scan, err := wire.ScanJournal(dir, id, func(op *pb.JournalOpening) error {
+	scan, err := wire.ScanJournal(dir, id, wire.Visitor{Opening: func(op *pb.JournalOpening) error {
 		c := op.GetConfig()
 		if override != nil {
 			c = override
@@ -95,7 +95,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 		}
 		rp.fr, err = fusion.New(cfg)
 		return err
-	}, func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	}, Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		if err := ctx.Err(); err != nil {
 			return err
 		}
@@ -110,7 +110,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 			differ++
 		}
 		return nil
-	})
+	}})
 	if err != nil {
 		return err
 	}

@@ -35,6 +35,7 @@ type JournalRecord struct {
 	//	*JournalRecord_Input
 	//	*JournalRecord_Output
 	//	*JournalRecord_Closing
+	//	*JournalRecord_Snapshot
 	Entry         isJournalRecord_Entry `protobuf_oneof:"entry"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -113,6 +114,15 @@ func (x *JournalRecord) GetClosing() *JournalClosing {
 	return nil
 }
 
+func (x *JournalRecord) GetSnapshot() *JournalSnapshot {
+	if x != nil {
+		if x, ok := x.Entry.(*JournalRecord_Snapshot); ok {
+			return x.Snapshot
+		}
+	}
+	return nil
+}
+
 type isJournalRecord_Entry interface {
 	isJournalRecord_Entry()
 }
@@ -137,6 +147,12 @@ type JournalRecord_Closing struct {
 	Closing *JournalClosing `protobuf:"bytes,4,opt,name=closing,proto3,oneof"`
 }
 
+type JournalRecord_Snapshot struct {
+	// The robot's complete state after an input, so that a restart replays
+	// only what follows the last snapshot.
+	Snapshot *JournalSnapshot `protobuf:"bytes,5,opt,name=snapshot,proto3,oneof"`
+}
+
 func (*JournalRecord_Opening) isJournalRecord_Entry() {}
 
 func (*JournalRecord_Input) isJournalRecord_Entry() {}
@@ -144,6 +160,63 @@ func (*JournalRecord_Input) isJournalRecord_Entry() {}
 func (*JournalRecord_Output) isJournalRecord_Entry() {}
 
 func (*JournalRecord_Closing) isJournalRecord_Entry() {}
+
+func (*JournalRecord_Snapshot) isJournalRecord_Entry() {}
+
+// JournalSnapshot is a robot's complete estimator state.
+type JournalSnapshot struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The sequence number of the last input included.
+	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
+	// The state, in the estimator's own versioned encoding.
+	State         []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *JournalSnapshot) Reset() {
+	*x = JournalSnapshot{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[1]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *JournalSnapshot) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*JournalSnapshot) ProtoMessage() {}
+
+func (x *JournalSnapshot) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[1]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use JournalSnapshot.ProtoReflect.Descriptor instead.
+func (*JournalSnapshot) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{1}
+}
+
+func (x *JournalSnapshot) GetSequence() uint64 {
+	if x != nil {
+		return x.Sequence
+	}
+	return 0
+}
+
+func (x *JournalSnapshot) GetState() []byte {
+	if x != nil {
+		return x.State
+	}
+	return nil
+}
 
 // JournalOpening starts a robot's journal.
 type JournalOpening struct {
@@ -160,7 +233,7 @@ type JournalOpening struct {
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[1]
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -172,7 +245,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[1]
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -185,7 +258,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{1}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -224,7 +297,7 @@ type JournalInput struct {
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -236,7 +309,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -249,7 +322,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -286,7 +359,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -298,7 +371,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -311,7 +384,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -339,7 +412,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -351,7 +424,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -364,7 +437,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -378,13 +451,17 @@ var File_reckon_v1_journal_proto protoreflect.FileDescriptor
 
 const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\n" +
-	"\x17reckon/v1/journal.proto\x12\treckon.v1\x1a\x1ereckon/v1/fusion_service.proto\x1a\x15reckon/v1/robot.proto\x1a\x17reckon/v1/samples.proto\"\xeb\x01\n" +
+	"\x17reckon/v1/journal.proto\x12\treckon.v1\x1a\x1ereckon/v1/fusion_service.proto\x1a\x15reckon/v1/robot.proto\x1a\x17reckon/v1/samples.proto\"\xa5\x02\n" +
 	"\rJournalRecord\x125\n" +
 	"\aopening\x18\x01 \x01(\v2\x19.reckon.v1.JournalOpeningH\x00R\aopening\x12/\n" +
 	"\x05input\x18\x02 \x01(\v2\x17.reckon.v1.JournalInputH\x00R\x05input\x122\n" +
 	"\x06output\x18\x03 \x01(\v2\x18.reckon.v1.JournalOutputH\x00R\x06output\x125\n" +
-	"\aclosing\x18\x04 \x01(\v2\x19.reckon.v1.JournalClosingH\x00R\aclosingB\a\n" +
-	"\x05entry\"\x85\x01\n" +
+	"\aclosing\x18\x04 \x01(\v2\x19.reckon.v1.JournalClosingH\x00R\aclosing\x128\n" +
+	"\bsnapshot\x18\x05 \x01(\v2\x1a.reckon.v1.JournalSnapshotH\x00R\bsnapshotB\a\n" +
+	"\x05entry\"C\n" +
+	"\x0fJournalSnapshot\x12\x1a\n" +
+	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\"\x85\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12-\n" +
@@ -411,32 +488,34 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 5)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 6)
 var file_reckon_v1_journal_proto_goTypes = []any{
-	(*JournalRecord)(nil),  // 0: reckon.v1.JournalRecord
-	(*JournalOpening)(nil), // 1: reckon.v1.JournalOpening
-	(*JournalInput)(nil),   // 2: reckon.v1.JournalInput
-	(*JournalOutput)(nil),  // 3: reckon.v1.JournalOutput
-	(*JournalClosing)(nil), // 4: reckon.v1.JournalClosing
-	(*RobotConfig)(nil),    // 5: reckon.v1.RobotConfig
-	(*Sample)(nil),         // 6: reckon.v1.Sample
-	(*IngestResponse)(nil), // 7: reckon.v1.IngestResponse
-	(*FusedPose)(nil),      // 8: reckon.v1.FusedPose
+	(*JournalRecord)(nil),   // 0: reckon.v1.JournalRecord
+	(*JournalSnapshot)(nil), // 1: reckon.v1.JournalSnapshot
+	(*JournalOpening)(nil),  // 2: reckon.v1.JournalOpening
+	(*JournalInput)(nil),    // 3: reckon.v1.JournalInput
+	(*JournalOutput)(nil),   // 4: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),  // 5: reckon.v1.JournalClosing
+	(*RobotConfig)(nil),     // 6: reckon.v1.RobotConfig
+	(*Sample)(nil),          // 7: reckon.v1.Sample
+	(*IngestResponse)(nil),  // 8: reckon.v1.IngestResponse
+	(*FusedPose)(nil),       // 9: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	1, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	2, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	3, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	4, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
-	5, // 4: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	6, // 5: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	7, // 6: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	8, // 7: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	8, // [8:8] is the sub-list for method output_type
-	8, // [8:8] is the sub-list for method input_type
-	8, // [8:8] is the sub-list for extension type_name
-	8, // [8:8] is the sub-list for extension extendee
-	0, // [0:8] is the sub-list for field type_name
+	2, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	3, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	4, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	5, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	1, // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
+	6, // 5: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	7, // 6: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	8, // 7: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	9, // 8: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	9, // [9:9] is the sub-list for method output_type
+	9, // [9:9] is the sub-list for method input_type
+	9, // [9:9] is the sub-list for extension type_name
+	9, // [9:9] is the sub-list for extension extendee
+	0, // [0:9] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -452,6 +531,7 @@ func file_reckon_v1_journal_proto_init() {
 		(*JournalRecord_Input)(nil),
 		(*JournalRecord_Output)(nil),
 		(*JournalRecord_Closing)(nil),
+		(*JournalRecord_Snapshot)(nil),
 	}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
@@ -459,7 +539,7 @@ func file_reckon_v1_journal_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   5,
+			NumMessages:   6,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

@@ -1,0 +1,55 @@
+package main
+
+import (
+	"context"
+	"io"
+	"log/slog"
+	"net/http"
+	"strings"
+	"testing"
+
+	"reckon/server"
+)
+
+// TestFeedAndWatch: reckon feed creates a robot from the example YAML file
+// and streams the example JSON Lines into a real service; reckon watch reads
+// its pose back as CSV; the service's metrics count the inputs.
+func TestFeedAndWatch(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	ready := make(chan [2]string, 1)
+	done := make(chan error, 1)
+	go func() {
+		done <- server.Serve(ctx, server.DaemonConfig{Listen: "127.0.0.1:0", MetricsListen: "127.0.0.1:0", Ready: func(a, m string) { ready <- [2]string{a, m} },
+			Options: server.Options{JournalDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+	}()
+	addrs := <-ready
+	defer func() { cancel(); <-done }()
+	out, errs, err := runCmd(t, "feed", "-addr", addrs[0], "-robot", "robots/cart", "-create", "../../../testdata/robots/two-parallel-one-lateral.yaml",
+		"../../../testdata/samples/greenhouse-10s.jsonl")
+	if err != nil {
+		t.Fatalf("feed: %v\n%s", err, errs)
+	}
+	if !strings.Contains(out, "samples sent to robots/cart: applied") || strings.Contains(out, "invalid 1") {
+		t.Errorf("feed output:\n%s", out)
+	}
+	out, errs, err = runCmd(t, "watch", "-addr", addrs[0], "-robot", "robots/cart", "-format", "csv", "-count", "1")
+	if err != nil {
+		t.Fatalf("watch: %v\n%s", err, errs)
+	}
+	lines := strings.Split(strings.TrimSpace(out), "\n")
+	if len(lines) != 2 || !strings.HasPrefix(lines[0], "stamp_ns,sequence,x_m") || !strings.HasPrefix(lines[1], "10000000000,") {
+		t.Errorf("watch output:\n%s", out)
+	}
+	resp, err := http.Get("http://" + addrs[1] + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	body, _ := io.ReadAll(resp.Body)
+	if !strings.Contains(string(body), `reckon_inputs_total{verdict="VERDICT_APPLIED"}`) || !strings.Contains(string(body), "reckon_robots 1") {
+		t.Errorf("metrics lack the input counts:\n%.2000s", body)
+	}
+	if _, _, err := runCmd(t, "feed", "-addr", addrs[0], "-robot", "robots/cart", "/nonexistent.jsonl"); err == nil {
+		t.Errorf("feeding a missing file succeeded")
+	}
+}

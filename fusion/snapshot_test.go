@@ -1,0 +1,49 @@
+package fusion_test
+
+import (
+	"reflect"
+	"testing"
+
+	"reckon/clients/sim"
+	"reckon/fusion"
+)
+
+// TestSnapshotContinuesExactly: a robot restored from a snapshot taken in
+// the middle of a run gives bit for bit the same results as the original
+// for the rest of the run.
+func TestSnapshotContinuesExactly(t *testing.T) {
+	for _, sc := range []sim.Scenario{
+		{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 25, DXM: 1}},
+		{Layout: sim.ParallelLateralIMU, Seed: 52, DurationS: 20, Counts: true},
+		{Layout: sim.Differential, IMU: true, Markers: true, Seed: 53, DurationS: 20},
+	} {
+		_, ins := collect(sc)
+		cfg := sim.New(sc).Config()
+		a, _ := fusion.New(cfg)
+		mid := len(ins) * 3 / 5
+		for i := 0; i < mid; i++ {
+			sim.Feed(a, &ins[i])
+		}
+		snap, err := a.Snapshot()
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := fusion.RestoreSnapshot(cfg, snap)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !reflect.DeepEqual(a.Stats(), b.Stats()) || a.Pose() != b.Pose() {
+			t.Fatalf("%v: restored robot differs at once", sc.Layout)
+		}
+		for i := mid; i < len(ins); i++ {
+			ra, rb := sim.Feed(a, &ins[i]), sim.Feed(b, &ins[i])
+			if !reflect.DeepEqual(ra, rb) || a.Pose() != b.Pose() {
+				t.Fatalf("%v: input %d: %+v vs %+v", sc.Layout, i, ra, rb)
+			}
+		}
+		if !reflect.DeepEqual(a.Stats(), b.Stats()) {
+			t.Errorf("%v: statistics differ at the end", sc.Layout)
+		}
+		t.Logf("%v: snapshot of %d bytes", sc.Layout, len(snap))
+	}
+}

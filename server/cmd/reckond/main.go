@@ -1,0 +1,103 @@
+// Command reckond is the reckon pose estimation service: FusionService over
+// gRPC, with a journal per robot, restored on start.
+//
+//	reckond [-listen 127.0.0.1:7460] [-journal DIR] [-robot ID=CONFIG.yaml ...] [flags]
+package main
+
+import (
+	"context"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+	"os/signal"
+	"strings"
+	"syscall"
+	"time"
+
+	pb "reckon/proto/reckon/v1"
+	"reckon/server"
+	"reckon/server/wire"
+)
+
+func main() {
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	if err := run(ctx, os.Args[1:], os.Stdout, os.Stderr); err != nil {
+		fmt.Fprintln(os.Stderr, "reckond:", err)
+		os.Exit(1)
+	}
+}
+
+// robotFlags collects -robot ID=FILE.
+type robotFlags map[string]string
+
+func (r robotFlags) String() string { return fmt.Sprint(map[string]string(r)) }
+func (r robotFlags) Set(v string) error {
+	id, file, ok := strings.Cut(v, "=")
+	if !ok || !wire.ValidID(id) {
+		return fmt.Errorf("want ID=CONFIG.yaml with ID of lower-case letters, digits and hyphens, got %q", v)
+	}
+	r[id] = file
+	return nil
+}
+
+func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := flag.NewFlagSet("reckond", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	listen := fs.String("listen", "127.0.0.1:7460", "gRPC listen address (loopback by default)")
+	journal := fs.String("journal", "reckon-journal", "journal directory (empty: keep no journal)")
+	fsync := fs.String("fsync", "interval", "journal fsync policy: each (before every verdict) or interval")
+	syncEvery := fs.Duration("fsync-interval", 100*time.Millisecond, "fsync interval for -fsync interval")
+	segment := fs.Int64("segment-bytes", 64<<20, "rotate journal segments past this size")
+	snapshotEvery := fs.Int("snapshot-every", 20000, "write a robot's state into its journal every this many inputs")
+	cert := fs.String("tls-cert", "", "server certificate PEM file (turns TLS on)")
+	key := fs.String("tls-key", "", "server key PEM file")
+	clientCA := fs.String("tls-client-ca", "", "CA PEM file; clients must present a certificate it signed (mutual TLS)")
+	tokenFile := fs.String("token-file", "", "file holding the bearer token every client must send")
+	metrics := fs.String("metrics-listen", "", "serve Prometheus metrics on this address at /metrics (off by default)")
+	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted")
+	level := fs.String("log-level", "info", "debug, info, warn or error")
+	robots := robotFlags{}
+	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it (repeatable)")
+	if err := fs.Parse(args); err != nil {
+		return err
+	}
+	var lv slog.Level
+	if err := lv.UnmarshalText([]byte(*level)); err != nil {
+		return fmt.Errorf("log-level: %w", err)
+	}
+	dc := server.DaemonConfig{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, MaxMessageBytes: *maxMsg,
+		Options: server.Options{JournalDir: *journal, SyncInterval: *syncEvery, SegmentBytes: *segment, SnapshotEvery: *snapshotEvery,
+			Logger: slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))},
+		Robots: map[string]*pb.RobotConfig{}}
+	switch *fsync {
+	case "each":
+		dc.SyncEach = true
+	case "interval":
+	default:
+		return fmt.Errorf("fsync: %q is not each or interval", *fsync)
+	}
+	if *tokenFile != "" {
+		b, err := os.ReadFile(*tokenFile)
+		if err != nil {
+			return fmt.Errorf("token-file: %w", err)
+		}
+		if dc.Token = strings.TrimSpace(string(b)); dc.Token == "" {
+			return fmt.Errorf("token-file: %s is empty", *tokenFile)
+		}
+	}
+	for id, file := range robots {
+		b, err := os.ReadFile(file)
+		if err != nil {
+			return fmt.Errorf("robot %s: %w", id, err)
+		}
+		c, _, err := wire.LoadConfigYAML(b)
+		if err != nil {
+			return fmt.Errorf("robot %s: %s: %w", id, file, err)
+		}
+		dc.Robots[id] = c
+	}
+	return server.Serve(ctx, dc)
+}

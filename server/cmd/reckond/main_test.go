@@ -1,0 +1,85 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"os"
+	"path/filepath"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+)
+
+func TestFlagErrors(t *testing.T) {
+	dir := t.TempDir()
+	bad := filepath.Join(dir, "bad.yaml")
+	os.WriteFile(bad, []byte("wheels:\n  - {y_m: 0.1}\n"), 0o644)
+	cases := []struct {
+		args []string
+		want string
+	}{
+		{[]string{"-fsync", "sometimes"}, "fsync"},
+		{[]string{"-robot", "Cart=x.yaml"}, "ID=CONFIG.yaml"},
+		{[]string{"-robot", "cart=" + filepath.Join(dir, "missing.yaml")}, "robot cart"},
+		{[]string{"-robot", "cart=" + bad}, "wheels"},
+		{[]string{"-log-level", "loud"}, "log-level"},
+		{[]string{"-token-file", filepath.Join(dir, "none")}, "token-file"},
+		{[]string{"-journal", dir, "-listen", "127.0.0.1:0", "-tls-client-ca", bad}, "tls-client-ca needs tls-cert"},
+	}
+	for _, c := range cases {
+		var out, errb bytes.Buffer
+		err := run(context.Background(), c.args, &out, &errb)
+		if err == nil || !strings.Contains(err.Error()+errb.String(), c.want) {
+			t.Errorf("%v: error %v, want one naming %q", c.args, err, c.want)
+		}
+	}
+}
+
+// TestStartAndStop: the daemon starts with a robot from a YAML file and
+// stops cleanly when its context ends (as on SIGINT or SIGTERM), leaving
+// the robot's journal.
+func TestStartAndStop(t *testing.T) {
+	dir := t.TempDir()
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan error, 1)
+	errb := &lockedBuffer{}
+	go func() {
+		done <- run(ctx, []string{"-listen", "127.0.0.1:0", "-journal", dir, "-robot", "cart=../../../testdata/robots/differential.yaml"}, &bytes.Buffer{}, errb)
+	}()
+	for i := 0; i < 500 && !strings.Contains(errb.String(), "serving"); i++ {
+		select {
+		case err := <-done:
+			t.Fatalf("daemon stopped: %v\n%s", err, errb.String())
+		default:
+		}
+		waitABit()
+	}
+	cancel()
+	if err := <-done; err != nil {
+		t.Fatalf("stop: %v", err)
+	}
+	if _, err := os.Stat(filepath.Join(dir, "cart.000000.rjl")); err != nil {
+		t.Errorf("no journal left: %v", err)
+	}
+}
+
+func waitABit() { <-time.After(10 * time.Millisecond) }
+
+// lockedBuffer is a buffer that the daemon's logger and the test share.
+type lockedBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (l *lockedBuffer) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+func (l *lockedBuffer) String() string {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.String()
+}

@@ -13,7 +13,8 @@ const weightFloor = 1e-12
 
 // odoResult is an odometry sample turned into a history entry.
 type odoResult struct {
-	e        *entry // nil for a reference sample that carries no motion
+	e        entry
+	has      bool // false for a reference sample that carries no motion
 	imu      *float64
 	gapNs    int64
 	slipChi2 float64
@@ -124,7 +125,7 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 		return res, jump
 	}
 	r.noteIMU(o)
-	res.e = &e
+	res.e, res.has = e, true
 	return res, nil
 }
 

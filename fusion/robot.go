@@ -104,12 +104,12 @@ func invalid(res Result, err error) Result {
 func (r *Robot) AddOdometry(o Odometry) Result {
 	res := r.next()
 	od, err := r.odometryEntry(&o)
-	e, imu, gapNs := od.e, od.imu, od.gapNs
+	e, imu, gapNs := &od.e, od.imu, od.gapNs
 	if err != nil {
 		r.stats.count(VerdictInvalid, true)
 		return r.finish(invalid(res, err))
 	}
-	if e == nil { // a reference sample: counts or IMU heading noted
+	if !od.has { // a reference sample: counts or IMU heading noted
 		res.Verdict = VerdictApplied
 		if gapNs > 0 {
 			res.Events = append(res.Events, Event{Kind: EventOdometryGap, StampNs: o.StampNs, Value: float64(gapNs) * 1e-9})
@@ -227,10 +227,9 @@ func (r *Robot) hold(e entry) {
 func (r *Robot) releaseHeld(res *Result) {
 	for len(r.held) > 0 && r.held[0].t1 <= r.newest {
 		e := r.held[0]
-		r.held = r.held[1:]
-		if len(r.held) == 0 {
-			r.held = nil
-		}
+		n := copy(r.held, r.held[1:])
+		r.held[n] = entry{}
+		r.held = r.held[:n]
 		sub := Result{Seq: e.seq}
 		if e.t1 < r.baseT {
 			sub.Verdict = VerdictTooOld

@@ -137,3 +137,30 @@ func BenchmarkRestoreHour(b *testing.B) {
 	}
 	b.ReportMetric(float64(n), "inputs")
 }
+
+// BenchmarkIngestCore is the server's own work per sample without gRPC:
+// edge checks, the robot, the journal (group commit of 64) and the watchers.
+func BenchmarkIngestCore(b *testing.B) {
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
+	s, err := New(Options{JournalDir: b.TempDir()})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer s.Close()
+	s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	batch := make([]*pb.IngestRequest, 0, 64)
+	i := 0
+	b.ReportAllocs()
+	for b.Loop() {
+		batch = append(batch, &pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(i), Sample: samp[i%len(samp)]})
+		i++
+		if len(batch) == cap(batch) {
+			s.ingestBatch(batch)
+			batch = batch[:0]
+		}
+		if i == len(samp) {
+			b.StopTimer()
+			break
+		}
+	}
+}

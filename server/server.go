@@ -319,6 +319,31 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 			}
 		}
 	}()
+	// A third goroutine sends the verdicts, so that taking the next batch
+	// overlaps with sending the last one's verdicts.
+	out := make(chan []*pb.IngestResponse, 4)
+	sendErr := make(chan error, 1)
+	go func() {
+		var err error
+		for resps := range out {
+			for _, resp := range resps {
+				if err == nil {
+					err = stream.Send(resp)
+				}
+			}
+		}
+		sendErr <- err
+	}()
+	err := s.takeBatches(ctx, reqs, errc, out)
+	close(out)
+	if serr := <-sendErr; err == nil {
+		err = serr
+	}
+	return err
+}
+
+// takeBatches takes requests as they come, in batches of what is waiting.
+func (s *Server) takeBatches(ctx context.Context, reqs <-chan *pb.IngestRequest, errc <-chan error, out chan<- []*pb.IngestResponse) error {
 	batch := make([]*pb.IngestRequest, 0, maxBatch)
 	for {
 		req, ok := <-reqs
@@ -341,10 +366,10 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 				break drain
 			}
 		}
-		for _, resp := range s.ingestBatch(batch) {
-			if err := stream.Send(resp); err != nil {
-				return err
-			}
+		select {
+		case out <- s.ingestBatch(batch):
+		case <-ctx.Done():
+			return ctx.Err()
 		}
 	}
 }
@@ -390,6 +415,7 @@ func (s *Server) ingestRun(run []*pb.IngestRequest) []*pb.IngestResponse {
 	var pose *pb.FusedPose
 	var events []*pb.FusionEvent
 	taken := make([]bool, len(run))
+	anyTaken := false
 	r.mu.Lock()
 	for k, req := range run {
 		switch {
@@ -407,15 +433,20 @@ func (s *Server) ingestRun(run []*pb.IngestRequest) []*pb.IngestResponse {
 			continue
 		}
 		taken[k] = true
-		pose = wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+		anyTaken = true
 		events = append(events, resp.Events...)
 		if r.journal != nil {
-			if err := r.journal.Add(
-				&pb.JournalRecord{Entry: &pb.JournalRecord_Input{Input: &pb.JournalInput{Sequence: resp.Sequence, Sample: req.GetSample(), ArrivalUnixNs: start.UnixNano()}}},
-				&pb.JournalRecord{Entry: &pb.JournalRecord_Output{Output: &pb.JournalOutput{Response: resp, Pose: pose}}}); err != nil {
+			out := &pb.JournalOutput{Response: resp}
+			if resp.Sequence%wire.PoseEvery == 0 {
+				out.Pose = wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+			}
+			if err := r.journal.AddPair(&pb.JournalInput{Sequence: resp.Sequence, Sample: req.GetSample(), ArrivalUnixNs: start.UnixNano()}, out); err != nil {
 				r.broken = err
 			}
 		}
+	}
+	if anyTaken {
+		pose = poseNow(r)
 	}
 	if r.journal != nil && r.broken == nil {
 		if err := r.journal.Flush(); err != nil {

@@ -166,3 +166,18 @@ func FuzzJournalReader(f *testing.F) {
 		}
 	})
 }
+
+// TestAddPairMatchesRecords: the wrapper-free framing writes the same bytes
+// as framing the JournalRecord messages.
+func TestAddPairMatchesRecords(t *testing.T) {
+	recs := pair(7)
+	want, _ := AppendFrame(nil, recs[0])
+	want, _ = AppendFrame(want, recs[1])
+	w := &JournalWriter{}
+	if err := w.AddPair(recs[0].GetInput(), recs[1].GetOutput()); err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(w.buf, want) {
+		t.Errorf("AddPair wrote\n%x\nwant\n%x", w.buf, want)
+	}
+}

@@ -351,7 +351,8 @@ type JournalOutput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The verdict as sent.
 	Response *IngestResponse `protobuf:"bytes,1,opt,name=response,proto3" json:"response,omitempty"`
-	// The pose after the input.
+	// The pose after the input, on every 50th input (sequence a multiple of
+	// 50); the poses in between follow from replaying the inputs.
 	Pose          *FusedPose `protobuf:"bytes,2,opt,name=pose,proto3" json:"pose,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

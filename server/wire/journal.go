@@ -2,6 +2,7 @@ package wire
 
 import (
 	"bufio"
+	"bytes"
 	"encoding/binary"
 	"errors"
 	"fmt"
@@ -64,7 +65,7 @@ func header() []byte {
 type JournalReader struct {
 	r    *bufio.Reader
 	good int64 // offset just past the last good record
-	buf  []byte
+	rb   bytes.Buffer
 }
 
 // NewJournalReader checks the header and returns a reader of the records.
@@ -126,13 +127,13 @@ func (jr *JournalReader) NextRaw() ([]byte, error) {
 	if size > MaxRecordBytes {
 		return nil, &TornError{jr.good, fmt.Sprintf("record length %d exceeds %d", size, MaxRecordBytes)}
 	}
-	if cap(jr.buf) < int(size) {
-		jr.buf = make([]byte, size)
-	}
-	b := jr.buf[:size]
-	if n, err := io.ReadFull(jr.r, b); err != nil {
+	// Grow the buffer as bytes arrive, so that a corrupt length does not
+	// allocate megabytes for a record that is not there.
+	jr.rb.Reset()
+	if n, err := io.CopyN(&jr.rb, jr.r, int64(size)); err != nil {
 		return nil, &TornError{jr.good, fmt.Sprintf("record cut after %d of %d bytes", n, size)}
 	}
+	b := jr.rb.Bytes()
 	if crc32.Checksum(b, castagnoli) != sum {
 		return nil, &TornError{jr.good, "CRC-32C mismatch"}
 	}

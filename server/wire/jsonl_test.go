@@ -125,3 +125,31 @@ func FuzzSampleReader(f *testing.F) {
 		}
 	})
 }
+
+// TestReadmeExamples: the JSON Lines shown in the README parse as samples.
+func TestReadmeExamples(t *testing.T) {
+	b, err := os.ReadFile("../../README.md")
+	if err != nil {
+		t.Fatal(err)
+	}
+	parts := strings.Split(string(b), "```json\n")
+	if len(parts) < 2 {
+		t.Fatal("no JSON example in the README")
+	}
+	block := strings.SplitN(parts[1], "```", 2)[0]
+	sr := NewSampleReader(strings.NewReader(block))
+	n := 0
+	for {
+		_, err := sr.Next()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			t.Fatalf("README example: %v", err)
+		}
+		n++
+	}
+	if n < 3 {
+		t.Errorf("%d README example lines", n)
+	}
+}

@@ -303,6 +303,9 @@ func drawLive(w io.Writer, v *demoView, nowNs int64, duration float64) {
 	}
 	fmt.Fprintf(&b, "  camera fixes: %s\n\n  recent events:\n", joinCounts(v.verdicts))
 	for _, l := range v.events[max(0, len(v.events)-8):] {
+		if len(l) > 100 {
+			l = l[:97] + "..."
+		}
 		fmt.Fprintf(&b, "  %s\n", l)
 	}
 	io.WriteString(w, b.String())

@@ -328,3 +328,10 @@ func TestPoseAt(t *testing.T) {
 		t.Errorf("before the window: %v", err)
 	}
 }
+
+// chiBand returns the two-sided 95% band of the mean of n values whose sum
+// is chi-square with dof degrees of freedom.
+func chiBand(dof, n int) (lo, hi float64) {
+	d := distuv.ChiSquared{K: float64(dof)}
+	return d.Quantile(0.025) / float64(n), d.Quantile(0.975) / float64(n)
+}

@@ -33,6 +33,7 @@ type Robot struct {
 	travel     []float64
 
 	seq   uint64
+	steps *stepCollector // nil unless CollectSteps was called
 	stats statsState
 	trust trustState
 	cands []candidate

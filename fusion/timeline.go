@@ -199,6 +199,9 @@ func (r *Robot) dropFront(k int) {
 		return
 	}
 	live := r.live()
+	if r.steps != nil {
+		r.steps.collect(r, k)
+	}
 	r.base = live[k-1].after
 	r.baseT = live[k-1].t1
 	clear(live[:k]) // release errors for the collector

@@ -1,0 +1,228 @@
+package fusion_test
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"gonum.org/v1/gonum/mat"
+
+	"reckon/clients/sim"
+	"reckon/estimator"
+	"reckon/fusion"
+)
+
+// TestSmootherEqualsBatch: on a linear-Gaussian case the Rauch-Tung-
+// Striebel smoother equals the batch weighted least-squares solution of the
+// whole problem, solved independently with gonum mat normal equations, to
+// 1e-9 in the mean and the covariance. The case: a robot standing still
+// (the motion model is then the identity) whose heading and IMU offset
+// are random walks, with IMU headings (heading + offset), heading fixes and
+// position fixes; every measurement is linear.
+func TestSmootherEqualsBatch(t *testing.T) {
+	const (
+		steps = 60
+		dtNs  = int64(10e6)
+		qh    = 1e-4 // heading random walk, rad^2/s
+		qo    = 4e-5 // IMU offset random walk, rad^2/s
+		rImu  = 1e-4
+		rHead = 4e-3
+		rPos  = 1e-2
+	)
+	cfg := fusion.Config{
+		Wheels:     []fusion.Wheel{{YM: 0.1}, {YM: -0.1}, {XM: -0.1, DirectionRad: math.Pi / 2}},
+		IMU:        fusion.IMUAbsolute,
+		Noise:      fusion.Noise{HeadingVarRad2PerS: qh, IMUOffsetVarRad2PerS: qo, IMUHeadingVarRad2: rImu},
+		InitialCov: []float64{0.04, 0, 0, 0, 0.09, 0, 0, 0, 0.01},
+		WindowNs:   int64(steps) * dtNs * 2,
+	}
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	r.CollectSteps()
+	rng := rand.New(rand.NewPCG(61, 61))
+	type meas struct {
+		k    int
+		kind int // 0 IMU, 1 heading, 2 position
+		z    [2]float64
+	}
+	var ms []meas
+	// The IMU's first sample at the start initialises the offset.
+	for k := 0; k <= steps; k++ {
+		stamp := int64(k) * dtNs
+		if k > 0 {
+			if res := r.AddOdometry(fusion.Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0, 0}}); res.Verdict != fusion.VerdictApplied {
+				t.Fatal(res.Err)
+			}
+		}
+		if k%2 == 0 {
+			z := 0.3 + 0.05*rng.NormFloat64()
+			r.AddHeading(fusion.Heading{StampNs: stamp, HeadingRad: z})
+			ms = append(ms, meas{k, 0, [2]float64{z}})
+		}
+		if k%7 == 3 {
+			z := 0.02 * rng.NormFloat64()
+			r.AddFix(fusion.Fix{StampNs: stamp, Kind: fusion.FixHeading, HeadingRad: z, Cov: []float64{rHead}})
+			ms = append(ms, meas{k, 1, [2]float64{z}})
+		}
+		if k%11 == 5 {
+			z := [2]float64{0.1 * rng.NormFloat64(), 0.1 * rng.NormFloat64()}
+			r.AddFix(fusion.Fix{StampNs: stamp, Kind: fusion.FixPosition, XM: z[0], YM: z[1], Cov: []float64{rPos, 0, 0, rPos}})
+			ms = append(ms, meas{k, 2, z})
+		}
+	}
+	stepsOut := fusion.MemSteps(r.FinishSteps())
+	if len(stepsOut) != steps+1 {
+		t.Fatalf("%d steps, want %d", len(stepsOut), steps+1)
+	}
+	sm := make(fusion.MemStates, len(stepsOut))
+	if err := fusion.Smooth(stepsOut, sm); err != nil {
+		t.Fatal(err)
+	}
+
+	// Batch: unknowns x, y, heading_0..N, offset_0..N.
+	N := steps + 1
+	nu := 2 + 2*N
+	ih := func(k int) int { return 2 + k }
+	io := func(k int) int { return 2 + N + k }
+	info := mat.NewSymDense(nu, nil)
+	rhs := mat.NewVecDense(nu, nil)
+	add := func(row map[int]float64, z, v float64) {
+		for i, a := range row {
+			for j, b := range row {
+				if j >= i {
+					info.SetSym(i, j, info.At(i, j)+a*b/v)
+				}
+			}
+			rhs.SetVec(i, rhs.AtVec(i)+a*z/v)
+		}
+	}
+	add(map[int]float64{0: 1}, 0, 0.04)
+	add(map[int]float64{1: 1}, 0, 0.09)
+	add(map[int]float64{ih(0): 1}, 0, 0.01)
+	dt := float64(dtNs) * 1e-9
+	for k := 0; k+1 < N; k++ {
+		add(map[int]float64{ih(k + 1): 1, ih(k): -1}, 0, qh*dt)
+		add(map[int]float64{io(k + 1): 1, io(k): -1}, 0, qo*dt)
+	}
+	for _, m := range ms {
+		switch m.kind {
+		case 0:
+			add(map[int]float64{ih(m.k): 1, io(m.k): 1}, m.z[0], rImu)
+		case 1:
+			add(map[int]float64{ih(m.k): 1}, m.z[0], rHead)
+		case 2:
+			add(map[int]float64{0: 1}, m.z[0], rPos)
+			add(map[int]float64{1: 1}, m.z[1], rPos)
+		}
+	}
+	var ch mat.Cholesky
+	if !ch.Factorize(info) {
+		t.Fatal("batch information matrix is singular")
+	}
+	var sol mat.VecDense
+	if err := ch.SolveVecTo(&sol, rhs); err != nil {
+		t.Fatal(err)
+	}
+	var cov mat.SymDense
+	if err := ch.InverseTo(&cov); err != nil {
+		t.Fatal(err)
+	}
+	for k := 0; k < N; k++ {
+		s := sm[k]
+		idx := []int{0, 1, ih(k), io(k)}
+		for a := 0; a < 4; a++ {
+			if d := math.Abs(s.X[a] - sol.AtVec(idx[a])); d > 1e-9 {
+				t.Errorf("step %d state %d: smoothed %.12f, batch %.12f", k, a, s.X[a], sol.AtVec(idx[a]))
+			}
+			for b := 0; b < 4; b++ {
+				if d := math.Abs(s.P[a*4+b] - cov.At(idx[a], idx[b])); d > 1e-9 {
+					t.Errorf("step %d covariance (%d,%d): smoothed %.3g, batch %.3g", k, a, b, s.P[a*4+b], cov.At(idx[a], idx[b]))
+				}
+			}
+		}
+	}
+	// Smoothing never leaves the last step, and shrinks the first.
+	if sm[N-1] != stepsOut[N-1].Post {
+		t.Errorf("the last step changed")
+	}
+	if sm[0].P[2*4+2] >= stepsOut[0].Post.P[2*4+2] {
+		t.Errorf("smoothing did not shrink the first heading variance")
+	}
+}
+
+// TestSmootherBeatsFilter: on the simulated cart with ground truth the
+// smoothed error is below the filtered error, and the smoothed estimate is
+// consistent: its average NEES over Monte Carlo runs lies in the 95% band
+// (Bar-Shalom, Li and Kirubarajan, 2001, section 5.4.2).
+func TestSmootherBeatsFilter(t *testing.T) {
+	const runs = 20
+	var filtSq, smSq float64
+	var count int
+	nees := map[int64]float64{} // checkpoint stamp -> sum over runs
+	for run := 0; run < runs; run++ {
+		sc := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: uint64(300 + run), DurationS: 20, CameraHz: 2}
+		s := sim.New(sc)
+		r, _ := fusion.New(s.Config())
+		r.CollectSteps()
+		truth := map[int64]estimator.Pose{}
+		var all []fusion.Step
+		for {
+			in, ok := s.Next()
+			if !ok {
+				break
+			}
+			sim.Feed(r, &in)
+			if in.Odometry != nil {
+				truth[in.Odometry.StampNs] = in.Truth
+			}
+			all = append(all, r.TakeSteps()...)
+		}
+		all = append(all, r.FinishSteps()...)
+		sm := make(fusion.MemStates, len(all))
+		if err := fusion.Smooth(fusion.MemSteps(all), sm); err != nil {
+			t.Fatal(err)
+		}
+		for i, st := range all {
+			tr, ok := truth[st.StampNs]
+			if !ok || st.StampNs%int64(500e6) != 0 {
+				continue
+			}
+			filtSq += sq(st.Post.X[0]-tr.X) + sq(st.Post.X[1]-tr.Y)
+			smSq += sq(sm[i].X[0]-tr.X) + sq(sm[i].X[1]-tr.Y)
+			fp := fusion.FusedPose{Pose: sm[i].Pose()}
+			for a := 0; a < 3; a++ {
+				for b := 0; b < 3; b++ {
+					fp.Cov[a*3+b] = sm[i].At(a, b)
+				}
+			}
+			nees[st.StampNs] += poseNEES(t, fp, tr)
+			count++
+		}
+	}
+	filt, smooth := math.Sqrt(filtSq/float64(count)), math.Sqrt(smSq/float64(count))
+	if smooth >= filt {
+		t.Errorf("smoothed error %.4f m is not below filtered %.4f m", smooth, filt)
+	}
+	// At each checkpoint the average NEES over the runs lies in the band of
+	// the chi-square with 3*runs degrees of freedom, for about 95% of them.
+	lo, hi := chiBand(3*runs, runs)
+	inside := 0
+	var total float64
+	for _, sum := range nees {
+		avg := sum / runs
+		total += avg
+		if avg >= lo && avg <= hi {
+			inside++
+		}
+	}
+	mean := total / float64(len(nees))
+	t.Logf("RMS position error: filtered %.4f m, smoothed %.4f m; smoothed NEES mean %.2f, %d of %d checkpoints in [%.2f, %.2f]",
+		filt, smooth, mean, inside, len(nees), lo, hi)
+	if len(nees) < 30 || float64(inside) < 0.85*float64(len(nees)) || mean < lo || mean > hi {
+		t.Errorf("smoothed estimate inconsistent: mean NEES %.2f, %d of %d checkpoints in [%.2f, %.2f]", mean, inside, len(nees), lo, hi)
+	}
+}
+
+func sq(v float64) float64 { return v * v }

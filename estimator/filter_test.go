@@ -356,3 +356,41 @@ func TestNoAllocations(t *testing.T) {
 		t.Errorf("Predict and Update allocate %v times per run", allocs)
 	}
 }
+
+// TestSolveSPD checks the fixed-size solver against gonum's.
+func TestSolveSPD(t *testing.T) {
+	rng := rand.New(rand.NewPCG(14, 14))
+	for _, n := range []int{3, 4} {
+		f := randomFilter(t, rng, n)
+		st := f.State()
+		a := st.P
+		var b [16]float64
+		for i := range b {
+			b[i] = rng.NormFloat64()
+		}
+		B := mat.NewDense(n, n, nil)
+		for i := 0; i < n; i++ {
+			for j := 0; j < n; j++ {
+				B.Set(i, j, b[i*4+j])
+			}
+		}
+		var want mat.Dense
+		if err := want.Solve(stateDense(&st), B); err != nil {
+			t.Fatal(err)
+		}
+		if !SolveSPD(&a, n, &b, n) {
+			t.Fatal("not positive definite")
+		}
+		got := make([]float64, 0, n*n)
+		for i := 0; i < n; i++ {
+			got = append(got, b[i*4:i*4+n]...)
+		}
+		compareMat(t, "SolveSPD", float64(n), got, &want, 1e-9)
+	}
+	var notPD [16]float64
+	notPD[0], notPD[5], notPD[10] = 1, -1, 1
+	var b [16]float64
+	if SolveSPD(&notPD, 3, &b, 1) {
+		t.Error("an indefinite matrix was solved")
+	}
+}

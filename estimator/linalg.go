@@ -109,3 +109,25 @@ type errAsymmetric struct{ i, j int }
 func (e errAsymmetric) Error() string {
 	return fmt.Sprintf("covariance is not symmetric at (%d,%d)", e.i, e.j)
 }
+
+// SolveSPD solves a x = b for the n x n symmetric positive-definite a
+// (row-major, stride 4) and the n x m right-hand side b (stride 4), writing
+// x into b. It reports false, leaving b unchanged, if a is not positive
+// definite. n and m are at most 4; it allocates nothing.
+func SolveSPD(a *[16]float64, n int, b *[16]float64, m int) bool {
+	var l [16]float64
+	if !cholesky(a[:], l[:], n, 4) {
+		return false
+	}
+	for j := 0; j < m; j++ {
+		var col, x [4]float64
+		for i := 0; i < n; i++ {
+			col[i] = b[i*4+j]
+		}
+		cholSolveVec(l[:], n, 4, col[:], x[:])
+		for i := 0; i < n; i++ {
+			b[i*4+j] = x[i]
+		}
+	}
+	return true
+}

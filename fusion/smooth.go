@@ -3,8 +3,6 @@ package fusion
 import (
 	"fmt"
 
-	"gonum.org/v1/gonum/mat"
-
 	"reckon/estimator"
 )
 
@@ -181,55 +179,69 @@ func Smooth(src StepStore, dst StateSink) error {
 }
 
 // rtsStep smooths the filtered estimate f through the next step's
-// prediction and smoothed estimate s.
+// prediction and smoothed estimate s, on fixed-size arrays (stride 4).
 func rtsStep(f *estimator.State, next *Step, s *estimator.State) (estimator.State, error) {
 	n := f.N
-	pf := denseOf(f)
-	pp := denseOf(&next.Pred)
-	F := mat.NewDense(n, n, nil)
+	pp := next.Pred.P
+	for i := 0; i < n; i++ {
+		for j := i + 1; j < n; j++ {
+			v := (pp[i*4+j] + pp[j*4+i]) / 2
+			pp[i*4+j], pp[j*4+i] = v, v
+		}
+	}
+	// ct = P_p^-1 F P_f, the transpose of the gain C.
+	var ct [16]float64
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			F.Set(i, j, next.F[i*4+j])
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += next.F[i*4+k] * f.P[k*4+j]
+			}
+			ct[i*4+j] = acc
 		}
 	}
-	sym := mat.NewSymDense(n, nil)
-	for i := 0; i < n; i++ {
-		for j := i; j < n; j++ {
-			sym.SetSym(i, j, (pp.At(i, j)+pp.At(j, i))/2)
-		}
-	}
-	var ch mat.Cholesky
-	if !ch.Factorize(sym) {
+	if !estimator.SolveSPD(&pp, n, &ct, n) {
 		return estimator.State{}, estimator.ErrNotPositiveDefinite
 	}
-	// C^T = P_p^-1 F P_f.
-	var fpf, ct mat.Dense
-	fpf.Mul(F, pf)
-	if err := ch.SolveTo(&ct, &fpf); err != nil {
-		return estimator.State{}, err
-	}
-	d := mat.NewVecDense(n, nil)
+	var d [4]float64
 	for i := 0; i < n; i++ {
-		v := s.X[i] - next.Pred.X[i]
+		d[i] = s.X[i] - next.Pred.X[i]
 		if i >= estimator.IHead {
-			v = estimator.Wrap(v)
+			d[i] = estimator.Wrap(d[i])
 		}
-		d.SetVec(i, v)
 	}
-	var dx mat.VecDense
-	dx.MulVec(ct.T(), d)
-	var dp, cdp, corr mat.Dense
-	dp.Sub(denseOf(s), pp)
-	cdp.Mul(ct.T(), &dp)
-	corr.Mul(&cdp, &ct)
+	// dp = P_s - P_p; out.P = P_f + C dp C^T with C = ct^T.
+	var dp, cdp [16]float64
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			dp[i*4+j] = s.P[i*4+j] - next.Pred.P[i*4+j]
+		}
+	}
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += ct[k*4+i] * dp[k*4+j]
+			}
+			cdp[i*4+j] = acc
+		}
+	}
 	out := estimator.State{N: n}
 	for i := 0; i < n; i++ {
-		out.X[i] = f.X[i] + dx.AtVec(i)
+		var dx float64
+		for k := 0; k < n; k++ {
+			dx += ct[k*4+i] * d[k]
+		}
+		out.X[i] = f.X[i] + dx
 		if i >= estimator.IHead {
 			out.X[i] = estimator.Wrap(out.X[i])
 		}
 		for j := 0; j < n; j++ {
-			out.P[i*4+j] = pf.At(i, j) + corr.At(i, j)
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += cdp[i*4+k] * ct[k*4+j]
+			}
+			out.P[i*4+j] = f.P[i*4+j] + acc
 		}
 	}
 	for i := 0; i < n; i++ {
@@ -239,14 +251,4 @@ func rtsStep(f *estimator.State, next *Step, s *estimator.State) (estimator.Stat
 		}
 	}
 	return out, nil
-}
-
-func denseOf(s *estimator.State) *mat.Dense {
-	d := mat.NewDense(s.N, s.N, nil)
-	for i := 0; i < s.N; i++ {
-		for j := 0; j < s.N; j++ {
-			d.Set(i, j, s.P[i*4+j])
-		}
-	}
-	return d
 }

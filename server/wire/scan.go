@@ -47,6 +47,9 @@ type Visitor struct {
 	Snapshot func(*pb.JournalSnapshot) error
 	// Pair is called for every input with the output recorded after it.
 	Pair func(in *pb.JournalInput, out *pb.JournalOutput) error
+	// Input, if set instead of Pair, is called for every input that has
+	// its output; the outputs are then not decoded.
+	Input func(in *pb.JournalInput) error
 }
 
 var segNum = regexp.MustCompile(`\.([0-9]{6})` + regexp.QuoteMeta(JournalExt) + `$`)
@@ -114,6 +117,10 @@ func (st *scanState) pair(inB, outB []byte) error {
 	var rin, rout pb.JournalRecord
 	if err := proto.Unmarshal(inB, &rin); err != nil {
 		return fmt.Errorf("journal input: %w", err)
+	}
+	if st.v.Input != nil {
+		st.sc.Replayed++
+		return st.v.Input(rin.GetInput())
 	}
 	if err := proto.Unmarshal(outB, &rout); err != nil {
 		return fmt.Errorf("journal output: %w", err)

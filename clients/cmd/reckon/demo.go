@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bufio"
 	"context"
 	"errors"
 	"flag"
@@ -159,6 +160,18 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if !live {
 		fmt.Fprintf(stdout, "%7s %8s %8s %8s %7s %7s %7s %8s %7s  %s\n", "t_s", "x_m", "y_m", "head_deg", "sx_m", "sy_m", "sh_deg", "r95_m", "err_m", "trust")
 	}
+	// The simulator's truth, for review and compare.
+	if err := os.MkdirAll(*journal, 0o755); err != nil {
+		return err
+	}
+	truthFile, err := os.Create(filepath.Join(*journal, "truth.csv"))
+	if err != nil {
+		return err
+	}
+	defer truthFile.Close()
+	truthCSV := bufio.NewWriter(truthFile)
+	defer truthCSV.Flush()
+	fmt.Fprintln(truthCSV, "stamp_ns,x_m,y_m,heading_rad")
 	start := time.Now()
 	heldFixes := map[uint64]bool{}
 	var nextLine, nextDraw int64
@@ -183,6 +196,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		var resp *pb.IngestResponse
 		switch {
 		case in.Odometry != nil:
+			fmt.Fprintf(truthCSV, "%d,%g,%g,%g\n", in.Odometry.StampNs, in.Truth.X, in.Truth.Y, in.Truth.Heading)
 			v.mu.Lock()
 			v.truth[in.Odometry.StampNs] = in.Truth
 			delete(v.truth, in.Odometry.StampNs-3e9)
@@ -260,7 +274,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if err := <-srvErr; err != nil && !errors.Is(err, context.Canceled) {
 		return fmt.Errorf("server: %w", err)
 	}
-	fmt.Fprintf(stdout, "\nthe journal is in %s; try: reckon replay -journal %s -robot greenhouse-cart -format csv\n", *journal, *journal)
+	fmt.Fprintf(stdout, "\nthe journal (and the simulator's truth.csv) is in %s; try:\n  reckon review -journal %s -robot greenhouse-cart\n", *journal, *journal)
 	return nil
 }
 

@@ -4,6 +4,8 @@
 //	reckon feed     stream a JSON Lines file of samples to a robot
 //	reckon watch    print a robot's fused poses as a table, CSV or JSON Lines
 //	reckon replay   run a journal, or a configuration and samples, through the estimator offline
+//	reckon review   smoothed track, summary, HTML report with figures and CSV exports of a run
+//	reckon compare  the same run under two configurations, side by side
 //
 // Run "reckon help" for the commands and "reckon <command> -h" for flags.
 package main
@@ -35,6 +37,9 @@ commands:
   watch    print a robot's fused poses as a table, CSV or JSON Lines
   replay   run a journal, or a robot configuration and a JSON Lines file, through
            the estimator offline and write the track and every verdict
+  review   replay a recorded run with the smoother: a text summary, an HTML report
+           with figures, and CSV exports of the filtered and smoothed tracks
+  compare  review a run under two configurations side by side
   help     print this text
 `
 
@@ -44,7 +49,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return fmt.Errorf("no command given")
 	}
 	cmds := map[string]func(context.Context, []string, io.Writer, io.Writer) error{
-		"demo": runDemo, "feed": runFeed, "watch": runWatch, "replay": runReplay,
+		"demo": runDemo, "feed": runFeed, "watch": runWatch, "replay": runReplay, "review": runReview, "compare": runCompare,
 	}
 	if f, ok := cmds[args[0]]; ok {
 		return f(ctx, args[1:], stdout, stderr)

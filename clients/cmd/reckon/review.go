@@ -1,0 +1,183 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"strings"
+
+	"github.com/schollz/progressbar/v3"
+
+	"reckon/clients/review"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+// sourceFlags name a recorded run.
+type sourceFlags struct {
+	journal, robot, config, samples, truth, out *string
+}
+
+func addSourceFlags(fs *flag.FlagSet) sourceFlags {
+	return sourceFlags{
+		journal: fs.String("journal", "", "journal directory (with -robot)"),
+		robot:   fs.String("robot", "", "robot id or name in the journal"),
+		config:  fs.String("config", "", "YAML robot configuration, for -samples"),
+		samples: fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)"),
+		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),
+		out:     fs.String("out", "", "directory for the report and the exports (default review-<robot>)"),
+	}
+}
+
+func loadYAML(path string) (*pb.RobotConfig, error) {
+	b, err := os.ReadFile(path)
+	if err != nil {
+		return nil, err
+	}
+	c, _, err := wire.LoadConfigYAML(b)
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", path, err)
+	}
+	return c, nil
+}
+
+func (sf sourceFlags) source() (review.Source, error) {
+	src := review.Source{JournalDir: *sf.journal, Robot: *sf.robot, Samples: *sf.samples, Truth: *sf.truth}
+	switch {
+	case *sf.journal != "" && *sf.robot != "":
+		if *sf.truth == "" {
+			if _, err := os.Stat(filepath.Join(*sf.journal, "truth.csv")); err == nil {
+				src.Truth = filepath.Join(*sf.journal, "truth.csv")
+			}
+		}
+	case *sf.samples != "" && *sf.config != "":
+		c, err := loadYAML(*sf.config)
+		if err != nil {
+			return src, err
+		}
+		src.Config = c
+	default:
+		return src, errors.New("name a run: -journal DIR -robot NAME, or -config ROBOT.yaml -samples SAMPLES.jsonl")
+	}
+	return src, nil
+}
+
+func (sf sourceFlags) outDir(label string) string {
+	if *sf.out != "" {
+		return *sf.out
+	}
+	return "review-" + label
+}
+
+func progress(stderr io.Writer, what string) (func(int), func()) {
+	if !isTerminal(stderr) {
+		return nil, func() {}
+	}
+	bar := progressbar.NewOptions(-1, progressbar.OptionSetWriter(stderr), progressbar.OptionSetDescription(what),
+		progressbar.OptionShowCount(), progressbar.OptionSpinnerType(14), progressbar.OptionClearOnFinish())
+	return func(n int) { bar.Set(n) }, func() { bar.Finish() }
+}
+
+func runReview(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := flag.NewFlagSet("review", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	sf := addSourceFlags(fs)
+	other := fs.String("with", "", "replay the run with this YAML configuration instead of its own")
+	if err := fs.Parse(args); err != nil {
+		return err
+	}
+	src, err := sf.source()
+	if err != nil {
+		return err
+	}
+	if *other != "" {
+		if src.Override, err = loadYAML(*other); err != nil {
+			return err
+		}
+	}
+	label := labelOf(src)
+	dir := sf.outDir(label)
+	prog, done := progress(stderr, "replaying and smoothing")
+	run, err := review.Analyze(src, dir, review.Options{Progress: prog})
+	done()
+	if err != nil {
+		return err
+	}
+	return writeReports(stdout, dir, "Review of "+run.Robot+" ("+run.Label+")", run)
+}
+
+func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := flag.NewFlagSet("compare", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	sf := addSourceFlags(fs)
+	a := fs.String("a", "", "first YAML configuration (default: the run's own)")
+	b := fs.String("b", "", "second YAML configuration")
+	if err := fs.Parse(args); err != nil {
+		return err
+	}
+	if *b == "" {
+		return errors.New("compare needs -b OTHER.yaml (and -a, or the run's own configuration)")
+	}
+	src, err := sf.source()
+	if err != nil {
+		return err
+	}
+	dir := sf.outDir(labelOf(src) + "-compare")
+	var runs []*review.Run
+	for i, path := range []string{*a, *b} {
+		s := src
+		s.Label = fmt.Sprintf("%c-%s", 'a'+i, "own")
+		if path != "" {
+			if s.Override, err = loadYAML(path); err != nil {
+				return err
+			}
+			s.Label = fmt.Sprintf("%c-%s", 'a'+i, strings.TrimSuffix(filepath.Base(path), filepath.Ext(path)))
+		}
+		prog, done := progress(stderr, "replaying "+s.Label)
+		run, err := review.Analyze(s, dir, review.Options{Progress: prog})
+		done()
+		if err != nil {
+			return fmt.Errorf("%s: %w", s.Label, err)
+		}
+		runs = append(runs, run)
+	}
+	return writeReports(stdout, dir, "Comparison: "+runs[0].Label+" and "+runs[1].Label, runs...)
+}
+
+func labelOf(src review.Source) string {
+	if src.Robot != "" {
+		if id, err := wire.ID(src.Robot); err == nil {
+			return id
+		}
+		return src.Robot
+	}
+	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
+}
+
+func writeReports(stdout io.Writer, dir, title string, runs ...*review.Run) error {
+	if err := review.WriteText(stdout, runs...); err != nil {
+		return err
+	}
+	var txt strings.Builder
+	review.WriteText(&txt, runs...)
+	if err := os.WriteFile(filepath.Join(dir, "summary.txt"), []byte(txt.String()), 0o644); err != nil {
+		return err
+	}
+	f, err := os.Create(filepath.Join(dir, "report.html"))
+	if err != nil {
+		return err
+	}
+	if err := review.WriteHTML(f, title, runs...); err != nil {
+		f.Close()
+		return err
+	}
+	if err := f.Close(); err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "\nreport: %s\n", filepath.Join(dir, "report.html"))
+	return nil
+}

@@ -1,0 +1,208 @@
+package review
+
+import (
+	"bytes"
+	"encoding/csv"
+	"fmt"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"regexp"
+	"strconv"
+	"strings"
+	"testing"
+
+	"reckon/clients/sim"
+	"reckon/fusion"
+	pb "reckon/proto/reckon/v1"
+	"reckon/server/wire"
+)
+
+// writeRun records a simulated run as a journal (as the service writes it)
+// and a truth CSV, and returns the journal directory and the truth path.
+func writeRun(t testing.TB, sc sim.Scenario) (string, string) {
+	dir := t.TempDir()
+	s := sim.New(sc)
+	cfg := s.Config()
+	fr, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	j, err := wire.CreateJournal(dir, "cart", &pb.JournalOpening{Robot: "robots/cart", Config: wire.ConfigToProto(cfg)}, wire.JournalOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	var truth bytes.Buffer
+	truth.WriteString("stamp_ns,x_m,y_m,heading_rad\n")
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		var sample *pb.Sample
+		switch {
+		case in.Odometry != nil:
+			sample = wire.OdometryToProto(in.Odometry)
+			fmt.Fprintf(&truth, "%d,%g,%g,%g\n", in.Odometry.StampNs, in.Truth.X, in.Truth.Y, in.Truth.Heading)
+		case in.Heading != nil:
+			sample = wire.HeadingToProto(in.Heading)
+		default:
+			sample = wire.FixToProto(in.Fix)
+		}
+		resp, taken := wire.Take(fr, sample, 0)
+		if !taken {
+			continue
+		}
+		if err := j.AddPair(&pb.JournalInput{Sequence: resp.GetSequence(), Sample: sample}, &pb.JournalOutput{Response: resp}); err != nil {
+			t.Fatal(err)
+		}
+		if resp.GetSequence()%512 == 0 {
+			if err := j.Flush(); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if err := j.Close(); err != nil {
+		t.Fatal(err)
+	}
+	tp := filepath.Join(dir, "truth.csv")
+	os.WriteFile(tp, truth.Bytes(), 0o644)
+	return dir, tp
+}
+
+func TestReviewOfASimulatedRun(t *testing.T) {
+	dir, truth := writeRun(t, sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 71, DurationS: 40, OutlierFraction: 0.05, CameraHz: 4})
+	out := t.TempDir()
+	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := run.Summary
+	t.Logf("RMS filtered %.4f m, smoothed %.4f m; NEES median %.2f / %.2f", s.FilteredRMSM, s.SmoothedRMSM, s.FilteredNEESMedian, s.SmoothedNEESMedian)
+	if !s.HasTruth || s.SmoothedRMSM >= s.FilteredRMSM {
+		t.Errorf("smoothed RMS %.4f m is not below filtered %.4f m", s.SmoothedRMSM, s.FilteredRMSM)
+	}
+	if s.DistanceM < 10 || s.Fixes["applied"] < 100 || s.Fixes["gated"] == 0 || s.Inputs < 10000 {
+		t.Errorf("summary %+v", s)
+	}
+	if s.Truncated != "" {
+		t.Errorf("an intact journal reported as truncated: %s", s.Truncated)
+	}
+	for _, p := range []string{run.FilteredCSV, run.SmoothedCSV} {
+		f, _ := os.Open(p)
+		rows, err := csv.NewReader(f).ReadAll()
+		f.Close()
+		if err != nil || len(rows) < 8000 || rows[0][0] != "stamp_ns" || len(rows[1]) != len(csvHeader) {
+			t.Errorf("%s: %d rows, %v", p, len(rows), err)
+		}
+	}
+	var txt bytes.Buffer
+	WriteText(&txt, run)
+	for _, want := range []string{"distance:", "NIS of camera:", "95% position radius:", "do-not-trust intervals:", "error against truth:"} {
+		if !strings.Contains(txt.String(), want) {
+			t.Errorf("summary lacks %q:\n%s", want, txt.String())
+		}
+	}
+}
+
+// TestReviewOfATruncatedJournal: a journal cut by a crash gives a report of
+// what was recovered and says so.
+func TestReviewOfATruncatedJournal(t *testing.T) {
+	dir, _ := writeRun(t, sim.Scenario{Layout: sim.Differential, IMU: true, Seed: 72, DurationS: 10})
+	seg := wire.SegmentPath(dir, "cart", 0)
+	b, _ := os.ReadFile(seg)
+	os.WriteFile(seg, b[:len(b)*2/3+5], 0o644)
+	run, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(run.Summary.Truncated, "truncated") || run.Summary.Inputs == 0 {
+		t.Fatalf("truncation not reported: %+v", run.Summary)
+	}
+	var html bytes.Buffer
+	if err := WriteHTML(&html, "truncated", run); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(html.String(), "class=\"note\"") || !strings.Contains(html.String(), "truncated") {
+		t.Errorf("the report does not say the journal was truncated")
+	}
+}
+
+// TestReportInABrowser opens the HTML report in headless Chromium (Debian's
+// package, which .ci/run installs), checks that every figure is present and
+// drawn with a non-zero size, and saves a screenshot in testdata/out.
+func TestReportInABrowser(t *testing.T) {
+	browser, err := exec.LookPath("chromium")
+	if err != nil {
+		if os.Getenv("CI") != "" {
+			t.Fatal("chromium is not installed; .ci/run installs it")
+		}
+		t.Skip("chromium is not installed")
+	}
+	dir, truth := writeRun(t, sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 73, DurationS: 30, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 18, DXM: 0.8}})
+	out := t.TempDir()
+	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	report := filepath.Join(out, "report.html")
+	f, _ := os.Create(report)
+	if err := WriteHTML(f, "Review of robots/cart", run); err != nil {
+		t.Fatal(err)
+	}
+	f.Close()
+	args := []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
+		"--disable-component-update", "--disable-sync", "--user-data-dir=" + t.TempDir(), "--window-size=1300,2400"}
+	dom, err := exec.Command(browser, append(args, "--dump-dom", "file://"+report)...).Output()
+	if err != nil {
+		t.Fatalf("chromium --dump-dom: %v", err)
+	}
+	m := regexp.MustCompile(`data-figures="([^"]*)"`).FindSubmatch(dom)
+	if m == nil {
+		t.Fatalf("the page did not mark its figures; DOM starts %.300s", dom)
+	}
+	sizes := map[string][2]int{}
+	for _, f := range strings.Fields(string(m[1])) {
+		id, wh, _ := strings.Cut(f, ":")
+		w, h, _ := strings.Cut(wh, "x")
+		wi, _ := strconv.Atoi(w)
+		hi, _ := strconv.Atoi(h)
+		sizes[id] = [2]int{wi, hi}
+	}
+	for _, id := range []string{"fig-track-0", "fig-position-std-0", "fig-heading-std-0", "fig-nis-camera-0", "fig-nis-imu-0", "fig-imu-offset-0"} {
+		if s, ok := sizes[id]; !ok || s[0] < 100 || s[1] < 50 {
+			t.Errorf("figure %s: size %v in the browser (all: %v)", id, s, sizes)
+		}
+	}
+	shot, _ := filepath.Abs("../../testdata/out/review-report.png")
+	os.MkdirAll(filepath.Dir(shot), 0o755)
+	if err := exec.Command(browser, append(args, "--screenshot="+shot, "file://"+report)...).Run(); err != nil {
+		t.Fatalf("chromium --screenshot: %v", err)
+	}
+	if st, err := os.Stat(shot); err != nil || st.Size() < 10000 {
+		t.Fatalf("screenshot %s: %v", shot, err)
+	}
+	t.Logf("screenshot of the report: %s", shot)
+}
+
+// TestSpillToDisk: a review whose steps exceed the memory budget keeps them
+// on disk and gives the same result as one in memory.
+func TestSpillToDisk(t *testing.T) {
+	dir, truth := writeRun(t, sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 75, DurationS: 20, OutlierFraction: 0.05})
+	mem, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	disk, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{MemoryBytes: 100 * stepMemBytes, TempDir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	a, _ := os.ReadFile(mem.SmoothedCSV)
+	b, _ := os.ReadFile(disk.SmoothedCSV)
+	if len(a) < 1000 || !bytes.Equal(a, b) {
+		t.Errorf("smoothed tracks differ between memory and disk (%d and %d bytes)", len(a), len(b))
+	}
+	if mem.Summary.SmoothedRMSM != disk.Summary.SmoothedRMSM {
+		t.Errorf("RMS %v vs %v", mem.Summary.SmoothedRMSM, disk.Summary.SmoothedRMSM)
+	}
+}

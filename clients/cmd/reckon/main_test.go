@@ -89,3 +89,42 @@ func TestUnknownCommand(t *testing.T) {
 		t.Errorf("replay without arguments accepted")
 	}
 }
+
+// TestReviewAndCompare: the demo's journal (with the truth it leaves)
+// reviewed, and compared under another gate probability.
+func TestReviewAndCompare(t *testing.T) {
+	dir := filepath.Join(t.TempDir(), "journal")
+	if _, errs, err := runCmd(t, "demo", "-duration", "30", "-bump-at", "15", "-speed", "0", "-view", "lines", "-journal", dir); err != nil {
+		t.Fatalf("demo: %v\n%s", err, errs)
+	}
+	out := filepath.Join(t.TempDir(), "review")
+	txt, errs, err := runCmd(t, "review", "-journal", dir, "-robot", "greenhouse-cart", "-out", out)
+	if err != nil {
+		t.Fatalf("review: %v\n%s", err, errs)
+	}
+	for _, want := range []string{"move recoveries:", "error against truth:", "report: " + filepath.Join(out, "report.html")} {
+		if !strings.Contains(txt, want) {
+			t.Errorf("review output lacks %q:\n%s", want, txt)
+		}
+	}
+	for _, f := range []string{"report.html", "summary.txt", "greenhouse-cart-filtered.csv", "greenhouse-cart-smoothed.csv"} {
+		if st, err := os.Stat(filepath.Join(out, f)); err != nil || st.Size() == 0 {
+			t.Errorf("%s: %v", f, err)
+		}
+	}
+	strict := filepath.Join(t.TempDir(), "strict.yaml")
+	b, _ := os.ReadFile("../../../testdata/robots/two-parallel-one-lateral.yaml")
+	os.WriteFile(strict, []byte(strings.Replace(string(b), "gate_probability: 0.99", "gate_probability: 0.9", 1)), 0o644)
+	cmp := filepath.Join(t.TempDir(), "compare")
+	txt, errs, err = runCmd(t, "compare", "-journal", dir, "-robot", "greenhouse-cart", "-b", strict, "-out", cmp)
+	if err != nil {
+		t.Fatalf("compare: %v\n%s", err, errs)
+	}
+	if !strings.Contains(txt, "review of a-own") || !strings.Contains(txt, "review of b-strict") || !strings.Contains(txt, "gate probability 0.9\n") {
+		t.Errorf("compare output:\n%s", txt)
+	}
+	html, _ := os.ReadFile(filepath.Join(cmp, "report.html"))
+	if !strings.Contains(string(html), "fig-track-1") {
+		t.Errorf("the comparison report lacks the second run's figures")
+	}
+}

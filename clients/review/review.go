@@ -217,7 +217,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	defer ff.Close()
 	batches := make(chan []fusion.Step, 64)
 	written := make(chan error, 1)
-	go func() {
+	go func(batches <-chan []fusion.Step) {
 		w := bufio.NewWriterSize(ff, 1<<20)
 		_, err := w.WriteString(strings.Join(csvHeader, ",") + "\n")
 		var row []byte
@@ -236,7 +236,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 			err = ferr
 		}
 		written <- err
-	}()
+	}(batches)
 	var pending []fusion.Step
 	flushSteps := func(force bool) {
 		if len(pending) >= 4096 || (force && len(pending) > 0) {
@@ -244,8 +244,9 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 			pending = nil
 		}
 	}
+	closed := false
 	defer func() {
-		if batches != nil {
+		if !closed {
 			close(batches)
 			<-written
 		}
@@ -313,7 +314,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	pending = append(pending, fr.FinishSteps()...)
 	flushSteps(true)
 	close(batches)
-	batches = nil
+	closed = true
 	if err := <-written; err != nil {
 		return nil, err
 	}

@@ -149,6 +149,12 @@ func AppendFrame(dst []byte, rec *pb.JournalRecord) ([]byte, error) {
 	start := len(dst)
 	dst = append(dst, make([]byte, frameSize)...)
 	dst, err := proto.MarshalOptions{Deterministic: true}.MarshalAppend(dst, rec)
+	return sealFrame(dst, start, err)
+}
+
+// sealFrame fills in the length and CRC of the frame that starts at start,
+// or takes it back after a marshalling error.
+func sealFrame(dst []byte, start int, err error) ([]byte, error) {
 	if err != nil {
 		return dst[:start], err
 	}
@@ -332,16 +338,7 @@ func appendWrapped(dst []byte, kind byte, m proto.Message) ([]byte, error) {
 	dst = append(dst, kind)
 	dst = binary.AppendUvarint(dst, uint64(size))
 	dst, err := opts.MarshalAppend(dst, m)
-	if err != nil {
-		return dst[:start], err
-	}
-	payload := dst[start+frameSize:]
-	if len(payload) > MaxRecordBytes {
-		return dst[:start], fmt.Errorf("journal record of %d bytes exceeds %d", len(payload), MaxRecordBytes)
-	}
-	binary.LittleEndian.PutUint32(dst[start:], uint32(len(payload)))
-	binary.LittleEndian.PutUint32(dst[start+4:], crc32.Checksum(payload, castagnoli))
-	return dst, nil
+	return sealFrame(dst, start, err)
 }
 
 // Flush writes the added records with one write, fsyncs if SyncEach, and

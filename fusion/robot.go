@@ -138,7 +138,7 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 	if imu != nil && r.cfg.IMU == IMUAbsolute {
 		m, merr := r.imuMeasurement(*imu, 0)
 		if merr == nil {
-			ins := r.insert(entry{kind: entMeas, t0: e.t1, t1: e.t1, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor)})
+			ins := r.insert(entry{kind: entMeas, t0: e.t1, t1: e.t1, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())})
 			r.decideMeas(&res, ins, imuSensor)
 		}
 	}
@@ -166,7 +166,7 @@ func (r *Robot) AddHeading(h Heading) Result {
 		r.stats.count(VerdictInvalid, false)
 		return r.finish(invalid(res, err))
 	}
-	e := entry{kind: entMeas, t0: h.StampNs, t1: h.StampNs, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor)}
+	e := entry{kind: entMeas, t0: h.StampNs, t1: h.StampNs, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
 	return r.finish(r.addMeasurement(res, e, imuSensor))
 }
 
@@ -182,7 +182,7 @@ func (r *Robot) AddFix(fx Fix) Result {
 	if id == "" {
 		id = "fix"
 	}
-	e := entry{kind: entMeas, t0: fx.StampNs, t1: fx.StampNs, seq: res.Seq, meas: m, sensor: r.stats.sensor(id)}
+	e := entry{kind: entMeas, t0: fx.StampNs, t1: fx.StampNs, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
 	return r.finish(r.addMeasurement(res, e, id))
 }
 
@@ -337,3 +337,11 @@ func (r *Robot) finish(res Result) Result {
 
 // Sequence returns the arrival sequence number of the last input taken.
 func (r *Robot) Sequence() uint64 { return r.seq }
+
+// imuGate is the gate probability IMU headings pass (1: not gated).
+func (r *Robot) imuGate() float64 {
+	if r.cfg.GateIMU {
+		return r.cfg.GateProbability
+	}
+	return 1
+}

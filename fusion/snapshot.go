@@ -126,7 +126,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	r.lastCounts, r.lastIMU, r.seq = s.LastCounts, s.LastIMU, s.Seq
 	r.stats.odo, r.stats.meas, r.stats.slips, r.stats.gaps, r.stats.recoveries = s.Odo, s.Meas, s.Slips, s.Gaps, s.Recoveries
 	for _, ss := range s.Sensors {
-		r.stats.sensor(ss.ID)
+		r.stats.sensor(ss.ID, ss.GateProbability)
 	}
 	copy(r.stats.sensors, s.Sensors)
 	r.trust.reasons, r.trust.refusedRun, r.trust.fault = s.Reasons, s.RefusedRun, s.Fault

@@ -35,22 +35,39 @@ type SensorStats struct {
 	// NISSum and DOFSum add the NIS and dimensions of applied fixes.
 	NISSum float64
 	DOFSum int
+	// GateProbability is the gate its inputs passed (1: not gated).
+	GateProbability float64
 }
 
 // Consistency compares the sensor's mean NIS over applied fixes with its
-// two-sided 95% chi-square band: the sum of N NIS values of dimension d is
+// two-sided 95% band and gives a verdict: "consistent", "overconfident"
+// (NIS too large: the covariance claims too much), "underconfident" or
+// "too few fixes" (fewer than 5).
+//
+// For an ungated sensor the sum of N NIS values of dimension d is
 // chi-square with N*d degrees of freedom when the filter is consistent
-// (Bar-Shalom, Li and Kirubarajan, 2001, section 5.4.2). The verdict is
-// "consistent", "overconfident" (NIS too large: the covariance is too small),
-// "underconfident" or "too few fixes" (fewer than 5).
+// (Bar-Shalom, Li and Kirubarajan, 2001, section 5.4.2). A gated sensor's
+// applied fixes are those below the gate q, so their NIS follows the
+// chi-square truncated at q, whose mean and second moment are
+// d F_{d+2}(q)/p and d(d+2) F_{d+4}(q)/p, with F_k the chi-square
+// distribution function and p = F_d(q), from x f_k(x) = k f_{k+2}(x)
+// (closed form, common practice); the band is then the normal approximation
+// of the mean of N of them.
 func (s SensorStats) Consistency() (mean, lo, hi float64, verdict string) {
 	n := float64(s.Applied)
 	if s.Applied < 5 || s.DOFSum == 0 {
 		return 0, 0, 0, "too few fixes"
 	}
 	mean = s.NISSum / n
-	dist := distuv.ChiSquared{K: float64(s.DOFSum)}
-	lo, hi = dist.Quantile(0.025)/n, dist.Quantile(0.975)/n
+	p := s.GateProbability
+	d := float64(s.DOFSum) / n
+	if p <= 0 || p >= 1 || d != math.Trunc(d) {
+		dist := distuv.ChiSquared{K: float64(s.DOFSum)}
+		lo, hi = dist.Quantile(0.025)/n, dist.Quantile(0.975)/n
+	} else {
+		mu, sd := TruncatedChiSquare(int(d), p)
+		lo, hi = mu-1.96*sd/math.Sqrt(n), mu+1.96*sd/math.Sqrt(n)
+	}
 	switch {
 	case mean > hi:
 		verdict = "overconfident"
@@ -60,6 +77,16 @@ func (s SensorStats) Consistency() (mean, lo, hi float64, verdict string) {
 		verdict = "consistent"
 	}
 	return mean, lo, hi, verdict
+}
+
+// TruncatedChiSquare returns the mean and standard deviation of a
+// chi-square variable with d degrees of freedom, given that it lies below
+// its quantile at probability p (a fix that passed a gate at p).
+func TruncatedChiSquare(d int, p float64) (mean, sd float64) {
+	q := distuv.ChiSquared{K: float64(d)}.Quantile(p)
+	m1 := float64(d) * distuv.ChiSquared{K: float64(d + 2)}.CDF(q) / p
+	m2 := float64(d*(d+2)) * distuv.ChiSquared{K: float64(d + 4)}.CDF(q) / p
+	return m1, math.Sqrt(math.Max(m2-m1*m1, 0))
 }
 
 // Stats is the robot's running statistics.
@@ -93,12 +120,12 @@ func (s *statsState) count(v Verdict, odometry bool) {
 }
 
 // sensor returns the index of the named sensor, adding it if new.
-func (s *statsState) sensor(id string) int {
+func (s *statsState) sensor(id string, gateProbability float64) int {
 	if i, ok := s.index[id]; ok {
 		return i
 	}
 	s.index[id] = len(s.sensors)
-	s.sensors = append(s.sensors, SensorStats{ID: id})
+	s.sensors = append(s.sensors, SensorStats{ID: id, GateProbability: gateProbability})
 	return len(s.sensors) - 1
 }
 

@@ -25,6 +25,7 @@ var (
 	colAccepted = color.RGBA{R: 40, G: 150, B: 70, A: 200}
 	colRefused  = color.RGBA{R: 200, G: 30, B: 45, A: 255}
 	colEllipse  = color.RGBA{R: 31, G: 94, B: 160, A: 110}
+	colEllipseS = color.RGBA{R: 214, G: 120, B: 20, A: 110}
 	colBand     = color.RGBA{R: 120, G: 120, B: 120, A: 255}
 )
 
@@ -130,7 +131,9 @@ func (run *Run) Figures() ([]Figure, error) {
 	every := max(1, len(run.Filtered)/60)
 	for i := 0; i < len(run.Filtered); i += every {
 		s := &run.Filtered[i].State
-		line(p, ellipse95(s.X[0], s.X[1], s.At(0, 0), s.At(0, 1), s.At(1, 1)), colEllipse, vg.Points(0.6), ternary(i == 0, "95% ellipse", ""), false)
+		line(p, ellipse95(s.X[0], s.X[1], s.At(0, 0), s.At(0, 1), s.At(1, 1)), colEllipse, vg.Points(0.6), ternary(i == 0, "95% ellipse, filtered", ""), false)
+		m := &run.Smoothed[i].State
+		line(p, ellipse95(m.X[0], m.X[1], m.At(0, 0), m.At(0, 1), m.At(1, 1)), colEllipseS, vg.Points(0.6), ternary(i == 0, "95% ellipse, smoothed", ""), false)
 	}
 	var acc, ref plotter.XYs
 	for _, f := range run.Fixes {
@@ -151,7 +154,7 @@ func (run *Run) Figures() ([]Figure, error) {
 	line(p, smooth, colSmoothed, vg.Points(1.2), "smoothed", false)
 	p.Legend.Top = true
 	equalAspect(p, append(append(filt, smooth...), acc...), 760, 560)
-	if err := add("fig-track", "The track in the field frame. Ellipses hold 95% of the filtered position's probability; crosses are refused fixes.", p, vg.Points(760), vg.Points(560)); err != nil {
+	if err := add("fig-track", "The track in the field frame. Ellipses hold 95% of the position's probability (filtered in blue, smoothed in orange); dots are accepted fixes, crosses refused ones.", p, vg.Points(760), vg.Points(560)); err != nil {
 		return nil, err
 	}
 	// Standard deviations over time.

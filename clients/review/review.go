@@ -268,12 +268,53 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 			id = n
 		}
 		run.Robot, run.Label = "robots/"+id, label
-		scan, err := wire.ScanJournal(src.JournalDir, id, wire.Visitor{
-			Opening: func(op *pb.JournalOpening) error { return makeRobot(op.GetConfig()) },
-			Input:   func(in *pb.JournalInput) error { return take(in.GetSample()) },
-		})
-		if err != nil {
+		// The journal is read and decoded in a goroutine of its own, while
+		// this one replays; the robot is made from the opening first.
+		opened := make(chan error, 1)
+		inputs := make(chan *pb.Sample, 1024)
+		stop := make(chan struct{})
+		var scan wire.JournalScan
+		var scanErr error
+		go func() {
+			defer close(inputs)
+			scan, scanErr = wire.ScanJournal(src.JournalDir, id, wire.Visitor{
+				Opening: func(op *pb.JournalOpening) error {
+					err := makeRobot(op.GetConfig())
+					opened <- err
+					return err
+				},
+				Input: func(in *pb.JournalInput) error {
+					select {
+					case inputs <- in.GetSample():
+						return nil
+					case <-stop:
+						return errors.New("review stopped")
+					}
+				},
+			})
+			if scan.Opening == nil {
+				opened <- scanErr
+			}
+		}()
+		if err := <-opened; err != nil {
+			close(stop)
+			for range inputs {
+			}
 			return nil, err
+		}
+		var takeErr error
+		for s := range inputs {
+			if takeErr == nil {
+				if takeErr = take(s); takeErr != nil {
+					close(stop)
+				}
+			}
+		}
+		if takeErr != nil {
+			return nil, takeErr
+		}
+		if scanErr != nil {
+			return nil, scanErr
 		}
 		if scan.Torn != nil {
 			run.Summary.Truncated = fmt.Sprintf("the journal is truncated: %v in %s; this report covers the %d inputs before it", scan.Torn, filepath.Base(scan.TornSegment), scan.Pairs)

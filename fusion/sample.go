@@ -160,6 +160,7 @@ type Result struct {
 // EventKind names a notable moment.
 type EventKind uint8
 
+// The event kinds; Event says what Value holds for each.
 const (
 	EventFixRefused EventKind = iota + 1
 	EventSlipSuspected

@@ -50,6 +50,7 @@ type TornError struct {
 	Reason string
 }
 
+// Error says where the journal tears and why.
 func (e *TornError) Error() string {
 	return fmt.Sprintf("journal torn at byte %d: %s", e.Offset, e.Reason)
 }

@@ -139,7 +139,8 @@ func BenchmarkRestoreHour(b *testing.B) {
 }
 
 // BenchmarkIngestCore is the server's own work per sample without gRPC:
-// edge checks, the robot, the journal (group commit of 64) and the watchers.
+// edge checks, the robot, the journal (group commit of 64) and the
+// watchers. One op is one sample.
 func BenchmarkIngestCore(b *testing.B) {
 	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
 	s, err := New(Options{JournalDir: b.TempDir()})
@@ -148,19 +149,18 @@ func BenchmarkIngestCore(b *testing.B) {
 	}
 	defer s.Close()
 	s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
-	batch := make([]*pb.IngestRequest, 0, 64)
+	batch := make([]*pb.IngestRequest, 0, maxBatch)
 	i := 0
 	b.ReportAllocs()
 	for b.Loop() {
-		batch = append(batch, &pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(i), Sample: samp[i%len(samp)]})
+		batch = append(batch, &pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(i), Sample: samp[i]})
 		i++
-		if len(batch) == cap(batch) {
+		if len(batch) == cap(batch) || i == len(samp) {
 			s.ingestBatch(batch)
 			batch = batch[:0]
 		}
 		if i == len(samp) {
-			b.StopTimer()
-			break
+			b.Fatalf("ran out of samples after %d", i)
 		}
 	}
 }

@@ -129,7 +129,8 @@ func TestArcJacobians(t *testing.T) {
 }
 
 // TestArcFactorsSeries: the series and the closed form of sin(h)/h and its
-// derivative agree where they meet (series error below h^4/120).
+// derivative agree where they meet (the truncated Taylor series errs by
+// less than h^4/120; common practice).
 func TestArcFactorsSeries(t *testing.T) {
 	h := seriesBelow
 	s1, d1 := arcFactors(2 * h * (1 - 1e-9))

@@ -215,8 +215,8 @@ func TestMoveRecovery(t *testing.T) {
 		for _, e := range res.Events {
 			if e.Kind == fusion.EventMoveRecovered {
 				recovered = true
-				if math.Abs(e.Value-1.26) > 0.3 {
-					t.Errorf("recovered a jump of %.2f m, moved %.2f m", e.Value, math.Hypot(1.2, 0.4))
+				if moved := math.Hypot(sc.Bump.DXM, sc.Bump.DYM); math.Abs(e.Value-moved) > 0.3 {
+					t.Errorf("recovered a jump of %.2f m, moved %.2f m", e.Value, moved)
 				}
 			}
 		}

@@ -25,7 +25,10 @@
 //     I/O. Time enters only with the samples' stamps, so a recorded run
 //     replays bit for bit. A Robot is not safe for concurrent use.
 //   - A sample that is refused (Invalid or TooOld) leaves the estimate, the
-//     history window and the held samples exactly as they were.
+//     history window and the held samples exactly as they were. One that
+//     fails its checks is not taken at all: its Result has Seq 0 and the
+//     robot, statistics included, does not change, so a service can journal
+//     exactly the inputs that were taken and replay them to the same state.
 //   - Process noise depends only on distance travelled, angle turned and
 //     elapsed time, and adds over sub-intervals: the estimate does not depend
 //     on the rate at which the controller samples its encoders.

@@ -118,25 +118,8 @@ func checkVariances(cov []float64, d int, angle func(i int) bool) error {
 
 func poseAngle(i int) bool { return i == 2 }
 
-// CheckFix reports what is wrong with a fix without taking it (shape, finite
-// values, covariance, landmark id). AddFix refuses what CheckFix refuses.
-func (r *Robot) CheckFix(f *Fix) error {
-	_, err := r.fixMeasurement(f)
-	return err
-}
-
-// CheckHeading reports what is wrong with an IMU heading sample without
-// taking it.
-func (r *Robot) CheckHeading(h *Heading) error {
-	if r.cfg.IMU != IMUAbsolute {
-		return fmt.Errorf("%w: heading sample for imu_mode %s (send the IMU heading with odometry in rotation mode)", ErrNoIMU, r.cfg.IMU)
-	}
-	_, err := r.imuMeasurement(h.HeadingRad, h.VarRad2)
-	return err
-}
-
-// CheckPose reports what is wrong with a pose setting without taking it.
-func CheckPose(pose estimator.Pose, cov []float64) error {
+// checkPose reports what is wrong with a pose setting before it is taken.
+func checkPose(pose estimator.Pose, cov []float64) error {
 	if !finiteAll(pose.X, pose.Y, pose.Heading) {
 		return fmt.Errorf("%w: pose is not finite", ErrBadSample)
 	}

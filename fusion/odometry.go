@@ -47,15 +47,13 @@ func countDelta(cur, prev int64, bits int) int64 {
 	return int64(d)
 }
 
-// odometryEntry validates o and turns it into a body step. It changes
-// nothing on error, with one exception: an implausible jump in cumulative
-// counts (an encoder controller restarted) re-references the counts, so
-// that the following samples are usable; the travel of that interval is lost.
+// odometryEntry turns o, which passed checkOdometry, into a body step. It
+// changes nothing on error, with one exception: an implausible jump in
+// cumulative counts (an encoder controller restarted) re-references the
+// counts, so that the following samples are usable; the travel of that
+// interval is lost.
 func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 	var res odoResult
-	if err := r.CheckOdometry(o); err != nil {
-		return res, err
-	}
 	res.imu = o.IMUHeadingRad
 	rotation := r.cfg.IMU == IMURotation
 	nw := len(r.cfg.Wheels)
@@ -129,11 +127,9 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 	return res, nil
 }
 
-// CheckOdometry reports what is wrong with o without taking it: the
-// checks that do not need the estimate (shape, finite values, the
-// configuration's needs) and time running backwards. AddOdometry refuses
-// what CheckOdometry refuses, and also implausible motion.
-func (r *Robot) CheckOdometry(o *Odometry) error {
+// checkOdometry reports what is wrong with o before it is taken: shape,
+// finite values, the configuration's needs, and time running backwards.
+func (r *Robot) checkOdometry(o *Odometry) error {
 	set := 0
 	for _, b := range []bool{o.TravelM != nil, o.Counts != nil, o.Step != nil} {
 		if b {

@@ -101,8 +101,17 @@ func invalid(res Result, err error) Result {
 	return res
 }
 
+// refused is the result of an input that failed its checks: it is not
+// taken, gets no sequence number, and changes nothing, statistics included.
+func refused(err error) Result {
+	return Result{Verdict: VerdictInvalid, Err: err}
+}
+
 // AddOdometry takes one odometry sample.
 func (r *Robot) AddOdometry(o Odometry) Result {
+	if err := r.checkOdometry(&o); err != nil {
+		return refused(err)
+	}
 	res := r.next()
 	od, err := r.odometryEntry(&o)
 	e, imu, gapNs := &od.e, od.imu, od.gapNs
@@ -156,28 +165,25 @@ func (r *Robot) start(t int64) {
 
 // AddHeading takes one absolute IMU heading sample.
 func (r *Robot) AddHeading(h Heading) Result {
-	res := r.next()
-	if err := r.CheckHeading(&h); err != nil {
-		r.stats.count(VerdictInvalid, false)
-		return r.finish(invalid(res, err))
+	if r.cfg.IMU != IMUAbsolute {
+		return refused(fmt.Errorf("%w: heading sample for imu_mode %s (send the IMU heading with odometry in rotation mode)", ErrNoIMU, r.cfg.IMU))
 	}
 	m, err := r.imuMeasurement(h.HeadingRad, h.VarRad2)
 	if err != nil {
-		r.stats.count(VerdictInvalid, false)
-		return r.finish(invalid(res, err))
+		return refused(err)
 	}
+	res := r.next()
 	e := entry{kind: entMeas, t0: h.StampNs, t1: h.StampNs, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
 	return r.finish(r.addMeasurement(res, e, imuSensor))
 }
 
 // AddFix takes one absolute fix.
 func (r *Robot) AddFix(fx Fix) Result {
-	res := r.next()
 	m, err := r.fixMeasurement(&fx)
 	if err != nil {
-		r.stats.count(VerdictInvalid, false)
-		return r.finish(invalid(res, err))
+		return refused(err)
 	}
+	res := r.next()
 	id := fx.SensorID
 	if id == "" {
 		id = "fix"
@@ -254,7 +260,7 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 	res.NIS, res.Dim = e.out.NIS, e.out.Dim
 	switch {
 	case e.err != nil:
-		err := fmt.Errorf("%w: %v", ErrBadSample, e.err)
+		err := fmt.Errorf("%w: %w", ErrBadSample, e.err)
 		idx := e.sensor
 		r.takeBack(ins)
 		res.Verdict, res.Err = VerdictInvalid, err
@@ -292,11 +298,11 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 // Inputs stamped before it are no longer accepted; the IMU offset is
 // re-initialised from the next IMU sample.
 func (r *Robot) SetPose(stampNs int64, pose estimator.Pose, cov []float64) Result {
+	if err := checkPose(pose, cov); err != nil {
+		return refused(err)
+	}
 	res := r.next()
 	e := entry{kind: entReset, t0: stampNs, t1: stampNs, seq: res.Seq, pose: pose}
-	if err := CheckPose(pose, cov); err != nil {
-		return r.finish(invalid(res, err))
-	}
 	copy(e.poseCov[:], cov)
 	e.pose.Heading = estimator.Wrap(pose.Heading)
 	switch {

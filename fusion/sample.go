@@ -143,7 +143,9 @@ type Resolution struct {
 
 // Result is what became of one input.
 type Result struct {
-	// Seq is the input's arrival sequence number on this robot, from 1.
+	// Seq is the input's arrival sequence number on this robot, from 1;
+	// 0 for an input refused by its checks (shape, finite values,
+	// covariance, landmark, time running backwards), which is not taken.
 	Seq     uint64
 	Verdict Verdict
 	// NIS and Dim are a fix's normalised innovation squared and dimension.

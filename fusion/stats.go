@@ -91,8 +91,9 @@ func TruncatedChiSquare(d int, p float64) (mean, sd float64) {
 
 // Stats is the robot's running statistics.
 type Stats struct {
-	// Odometry and Measurements count inputs by their verdict on arrival
-	// (held inputs are counted again when they are decided).
+	// Odometry and Measurements count the inputs taken by their verdict on
+	// arrival (held inputs are counted again when they are decided); inputs
+	// refused by their checks are not taken and not counted.
 	Odometry, Measurements  VerdictCounts
 	Sensors                 []SensorStats
 	Slips, Gaps, Recoveries uint64

@@ -11,7 +11,9 @@ import (
 
 func secs(ns int64) float64 { return float64(ns) * 1e-9 }
 
-func counts(m map[string]int) string {
+// FormatCounts lists non-zero counts as "name n, ..." in name order
+// ("none" for none).
+func FormatCounts(m map[string]int) string {
 	keys := make([]string, 0, len(m))
 	for k, v := range m {
 		if v > 0 {
@@ -37,8 +39,8 @@ func (run *Run) lines() [][2]string {
 		{"configuration", fmt.Sprintf("%d wheels, imu %s, gate probability %g", len(run.Config.Wheels), run.Config.IMU, run.Config.GateProbability)},
 		{"duration", fmt.Sprintf("%.1f s (%.3f to %.3f s), %d inputs", secs(s.EndNs-s.StartNs), secs(s.StartNs), secs(s.EndNs), s.Inputs)},
 		{"distance", fmt.Sprintf("%.2f m", s.DistanceM)},
-		{"fixes", counts(s.Fixes)},
-		{"refusals by reason", counts(s.Reasons)},
+		{"fixes", FormatCounts(s.Fixes)},
+		{"refusals by reason", FormatCounts(s.Reasons)},
 		{"95% position radius", fmt.Sprintf("largest %.3f m (at %.2f s), final %.3f m", s.Max95M, secs(s.Max95AtNs), s.Final95M)},
 		{"heading standard deviation", fmt.Sprintf("largest %.2f deg, final %.2f deg", s.MaxHeadingStd*180/math.Pi, s.FinalHeadingSt*180/math.Pi)},
 	}

@@ -207,7 +207,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	}
 	label := src.Label
 	if label == "" {
-		label = defaultLabel(src)
+		label = Label(src)
 	}
 	run.FilteredCSV = filepath.Join(outDir, label+"-filtered.csv")
 	ff, err := os.Create(run.FilteredCSV)
@@ -388,10 +388,6 @@ type accumulator struct {
 	lastStamp int64
 }
 
-func verdictName(v pb.Verdict) string {
-	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
-}
-
 func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	sum := &a.run.Summary
 	sum.Inputs++
@@ -452,7 +448,7 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 
 func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, reason string) {
 	sum := &a.run.Summary
-	sum.Fixes[verdictName(v)]++
+	sum.Fixes[wire.VerdictName(v)]++
 	if reason != "" {
 		r := reason
 		if i := strings.Index(r, ": "); i > 0 && (v == pb.Verdict_VERDICT_INVALID || v == pb.Verdict_VERDICT_TOO_OLD) {
@@ -478,7 +474,9 @@ func (a *accumulator) finish(fr *fusion.Robot) {
 	sum.Fixes["held"] += len(a.fixAt)
 }
 
-func defaultLabel(src Source) string {
+// Label is the name a run gets in reports and export file names unless
+// Source.Label says otherwise: the robot's id, or the samples file's name.
+func Label(src Source) string {
 	if src.JournalDir != "" {
 		if id, err := wire.ID(src.Robot); err == nil {
 			return id

@@ -3,6 +3,7 @@ package wire
 import (
 	"errors"
 	"fmt"
+	"strings"
 
 	"google.golang.org/grpc/codes"
 
@@ -11,20 +12,22 @@ import (
 	pb "reckon/proto/reckon/v1"
 )
 
-// ErrSample marks a sample refused at the edge: malformed, or refused by the
-// robot's checks before it reaches the estimate and the journal.
+// ErrSample marks a sample refused before a robot took it: malformed on the
+// wire, or failing the robot's checks; it reaches neither the estimate nor the journal.
 var ErrSample = errors.New("bad sample")
 
-// Input is a decoded sample, ready for a robot.
-type Input struct {
+// input is a decoded sample, ready for a robot; field names the sample's
+// kind in error messages.
+type input struct {
+	field    string
 	Odometry *fusion.Odometry
 	Heading  *fusion.Heading
 	Fix      *fusion.Fix
-	Pose     *PoseSetting
+	Pose     *poseSetting
 }
 
-// PoseSetting is a decoded pose set by hand.
-type PoseSetting struct {
+// poseSetting is a decoded pose set by hand.
+type poseSetting struct {
 	StampNs int64
 	Pose    estimator.Pose
 	Cov     []float64
@@ -38,37 +41,27 @@ func sampleErrf(field, format string, args ...any) error {
 	return fmt.Errorf("%w: %s: %s", ErrSample, field, fmt.Sprintf(format, args...))
 }
 
-// Decode converts a wire sample and runs the robot's edge checks on it
-// (shape, finite values, covariance, landmark, time running backwards), so
-// that a sample that passes can be journaled and then applied. The error
-// names the field; it wraps ErrSample and the fusion sentinel.
-func Decode(r *fusion.Robot, s *pb.Sample) (Input, error) {
-	var in Input
+// decode converts a wire sample, refusing what is malformed on the wire
+// (no oneof set, a covariance whose stated dimension does not fit). The
+// robot checks the values when it is handed the input.
+func decode(s *pb.Sample) (input, error) {
+	var in input
 	switch v := s.GetSample().(type) {
 	case *pb.Sample_Odometry:
 		o, err := decodeOdometry(v.Odometry)
 		if err != nil {
 			return in, err
 		}
-		if err := r.CheckOdometry(o); err != nil {
-			return in, sampleErr("sample.odometry", err)
-		}
-		in.Odometry = o
+		in.field, in.Odometry = "sample.odometry", o
 	case *pb.Sample_Heading:
-		h := &fusion.Heading{StampNs: v.Heading.GetStampNs(), HeadingRad: v.Heading.GetHeadingRad(), VarRad2: v.Heading.GetVarianceRad2()}
-		if err := r.CheckHeading(h); err != nil {
-			return in, sampleErr("sample.heading", err)
-		}
-		in.Heading = h
+		in.field = "sample.heading"
+		in.Heading = &fusion.Heading{StampNs: v.Heading.GetStampNs(), HeadingRad: v.Heading.GetHeadingRad(), VarRad2: v.Heading.GetVarianceRad2()}
 	case *pb.Sample_Fix:
 		f, err := decodeFix(v.Fix)
 		if err != nil {
 			return in, err
 		}
-		if err := r.CheckFix(f); err != nil {
-			return in, sampleErr("sample.fix", err)
-		}
-		in.Fix = f
+		in.field, in.Fix = "sample.fix", f
 	case *pb.Sample_PoseSetting:
 		ps := v.PoseSetting
 		if ps.GetPose() == nil {
@@ -78,11 +71,8 @@ func Decode(r *fusion.Robot, s *pb.Sample) (Input, error) {
 		if err != nil {
 			return in, sampleErr("sample.pose_setting.covariance", err)
 		}
-		p := &PoseSetting{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
-		if err := fusion.CheckPose(p.Pose, p.Cov); err != nil {
-			return in, sampleErr("sample.pose_setting", err)
-		}
-		in.Pose = p
+		in.field = "sample.pose_setting"
+		in.Pose = &poseSetting{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
 	default:
 		return in, sampleErrf("sample", "none of odometry, heading, fix and pose_setting is set")
 	}
@@ -154,8 +144,8 @@ func decodeFix(f *pb.Fix) (*fusion.Fix, error) {
 	return out, nil
 }
 
-// Apply gives a decoded input to the robot.
-func Apply(r *fusion.Robot, in Input) fusion.Result {
+// apply gives a decoded input to the robot.
+func apply(r *fusion.Robot, in input) fusion.Result {
 	switch {
 	case in.Odometry != nil:
 		return r.AddOdometry(*in.Odometry)
@@ -266,6 +256,11 @@ func StatsToProto(s fusion.Stats) *pb.RobotStatistics {
 	return out
 }
 
+// VerdictName returns a verdict's short name for people ("applied", "too_old").
+func VerdictName(v pb.Verdict) string {
+	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
+}
+
 // VerdictCode returns the status code of a robot's result.
 func VerdictCode(res fusion.Result) codes.Code {
 	switch res.Verdict {
@@ -277,16 +272,22 @@ func VerdictCode(res fusion.Result) codes.Code {
 	return codes.OK
 }
 
-// Take runs one sample through the robot as the service does: the edge
-// checks, then the robot. taken is false when the edge refused the sample,
-// which then reached neither the robot nor (in the service) the journal.
+// Take runs one sample through the robot as the service does. taken is
+// false when the sample was refused before the robot took it (malformed on
+// the wire, or failing the robot's checks: then the result has no sequence
+// number and the robot is unchanged); the service journals only what was
+// taken. The reason names the field; it wraps ErrSample and the fusion
+// sentinel.
 func Take(r *fusion.Robot, s *pb.Sample, clientSeq uint64) (resp *pb.IngestResponse, taken bool) {
-	in, err := Decode(r, s)
-	if err != nil {
-		return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: err.Error(), StatusCode: int32(Code(err))}, false
+	in, err := decode(s)
+	if err == nil {
+		res := apply(r, in)
+		if res.Seq != 0 {
+			resp = ResultToProto(res, clientSeq)
+			resp.StatusCode = int32(VerdictCode(res))
+			return resp, true
+		}
+		err = sampleErr(in.field, res.Err)
 	}
-	res := Apply(r, in)
-	resp = ResultToProto(res, clientSeq)
-	resp.StatusCode = int32(VerdictCode(res))
-	return resp, true
+	return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: err.Error(), StatusCode: int32(Code(err))}, false
 }

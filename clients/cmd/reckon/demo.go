@@ -11,12 +11,12 @@ import (
 	"math"
 	"os"
 	"path/filepath"
-	"sort"
 	"strings"
 	"sync"
 	"time"
 
 	"reckon/clients/client"
+	"reckon/clients/review"
 	"reckon/clients/sim"
 	"reckon/estimator"
 	pb "reckon/proto/reckon/v1"
@@ -215,13 +215,13 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 			if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 				heldFixes[resp.GetSequence()] = true
 			} else {
-				v.verdicts[verdictName(resp.GetVerdict())]++
+				v.verdicts[wire.VerdictName(resp.GetVerdict())]++
 			}
 		}
 		for _, r := range resp.GetResolved() {
 			if heldFixes[r.GetSequence()] {
 				delete(heldFixes, r.GetSequence())
-				v.verdicts[verdictName(r.GetVerdict())]++
+				v.verdicts[wire.VerdictName(r.GetVerdict())]++
 			}
 		}
 		v.mu.Unlock()
@@ -257,7 +257,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	defer v.mu.Unlock()
 	fmt.Fprintf(stdout, "\nRMS position error of the watched estimate against truth: %.3f m (largest %.3f m) over %d poses; watcher skipped %d\n",
 		math.Sqrt(v.sumSq/float64(max(v.n, 1))), v.maxErr, v.n, v.skipped)
-	fmt.Fprintf(stdout, "fix verdicts: %s\n", joinCounts(v.verdicts))
+	fmt.Fprintf(stdout, "fix verdicts: %s\n", review.FormatCounts(v.verdicts))
 	stats := st.GetStatistics()
 	fmt.Fprintf(stdout, "recoveries %d, slips suspected %d, odometry gaps %d\n", stats.GetRecoveries(), stats.GetSlips(), stats.GetGaps())
 	for _, ss := range stats.GetSensors() {
@@ -276,10 +276,6 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	}
 	fmt.Fprintf(stdout, "\nthe journal (and the simulator's truth.csv) is in %s; try:\n  reckon review -journal %s -robot greenhouse-cart\n", *journal, *journal)
 	return nil
-}
-
-func verdictName(v pb.Verdict) string {
-	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
 }
 
 func printLine(w io.Writer, p *pb.FusedPose, truth estimator.Pose) {
@@ -315,7 +311,7 @@ func drawLive(w io.Writer, v *demoView, nowNs int64, duration float64) {
 		fmt.Fprintf(&b, "  error       %.3f m against the simulator's truth\n", e)
 		fmt.Fprintf(&b, "  trust       %s\n\n", trust)
 	}
-	fmt.Fprintf(&b, "  camera fixes: %s\n\n  recent events:\n", joinCounts(v.verdicts))
+	fmt.Fprintf(&b, "  camera fixes: %s\n\n  recent events:\n", review.FormatCounts(v.verdicts))
 	for _, l := range v.events[max(0, len(v.events)-8):] {
 		if len(l) > 100 {
 			l = l[:97] + "..."
@@ -332,17 +328,4 @@ func isTerminal(w io.Writer) bool {
 	}
 	st, err := f.Stat()
 	return err == nil && st.Mode()&os.ModeCharDevice != 0
-}
-
-func joinCounts(m map[string]int) string {
-	keys := make([]string, 0, len(m))
-	for k := range m {
-		keys = append(keys, k)
-	}
-	sort.Strings(keys)
-	parts := make([]string, len(keys))
-	for i, k := range keys {
-		parts[i] = fmt.Sprintf("%s %d", k, m[k])
-	}
-	return strings.Join(parts, ", ")
 }

@@ -116,7 +116,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	t := <-done
 	var parts []string
 	for _, v := range []pb.Verdict{pb.Verdict_VERDICT_APPLIED, pb.Verdict_VERDICT_HELD, pb.Verdict_VERDICT_GATED, pb.Verdict_VERDICT_TOO_OLD, pb.Verdict_VERDICT_INVALID} {
-		parts = append(parts, fmt.Sprintf("%s %d", strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_")), t.counts[v]))
+		parts = append(parts, fmt.Sprintf("%s %d", wire.VerdictName(v), t.counts[v]))
 	}
 	fmt.Fprintf(stdout, "%d samples sent to %s: %s\n", sent, *robot, strings.Join(parts, ", "))
 	for _, r := range t.reasons {

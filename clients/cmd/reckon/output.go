@@ -56,7 +56,7 @@ func (pw *poseWriter) pose(p *pb.FusedPose, resp *pb.IngestResponse) error {
 	}
 	verdict := ""
 	if resp != nil {
-		verdict = strings.ToLower(strings.TrimPrefix(resp.GetVerdict().String(), "VERDICT_"))
+		verdict = wire.VerdictName(resp.GetVerdict())
 	}
 	switch pw.format {
 	case "jsonl":

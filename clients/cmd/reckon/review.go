@@ -99,7 +99,7 @@ func runReview(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			return err
 		}
 	}
-	label := labelOf(src)
+	label := review.Label(src)
 	dir := sf.outDir(label)
 	prog, done := progress(stderr, "replaying and smoothing")
 	run, err := review.Analyze(src, dir, review.Options{Progress: prog})
@@ -126,7 +126,7 @@ func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) er
 	if err != nil {
 		return err
 	}
-	dir := sf.outDir(labelOf(src) + "-compare")
+	dir := sf.outDir(review.Label(src) + "-compare")
 	var runs []*review.Run
 	for i, path := range []string{*a, *b} {
 		s := src
@@ -146,16 +146,6 @@ func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) er
 		runs = append(runs, run)
 	}
 	return writeReports(stdout, dir, "Comparison: "+runs[0].Label+" and "+runs[1].Label, runs...)
-}
-
-func labelOf(src review.Source) string {
-	if src.Robot != "" {
-		if id, err := wire.ID(src.Robot); err == nil {
-			return id
-		}
-		return src.Robot
-	}
-	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
 }
 
 func writeReports(stdout io.Writer, dir, title string, runs ...*review.Run) error {

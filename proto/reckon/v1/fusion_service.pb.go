@@ -684,7 +684,9 @@ type IngestResponse struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The request's client_sequence.
 	ClientSequence uint64 `protobuf:"varint,1,opt,name=client_sequence,json=clientSequence,proto3" json:"client_sequence,omitempty"`
-	// The robot's arrival sequence number for the sample, from 1.
+	// The robot's arrival sequence number for the sample, from 1; 0 when the
+	// sample was refused before the robot took it (VERDICT_INVALID), in which
+	// case it is in neither the estimate nor the journal.
 	Sequence uint64 `protobuf:"varint,2,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// What became of the sample.
 	Verdict Verdict `protobuf:"varint,3,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`

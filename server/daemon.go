@@ -105,6 +105,9 @@ func Serve(ctx context.Context, dc DaemonConfig) error {
 	}
 	opts := []grpc.ServerOption{
 		grpc.MaxRecvMsgSize(dc.MaxMessageBytes),
+		// Ingest keeps the bytes a sample arrived as for the journal and
+		// sends verdicts as the bytes it journaled (codec.go).
+		grpc.ForceServerCodecV2(newCodec()),
 		grpc.MaxConcurrentStreams(1024),
 		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),

@@ -28,6 +28,7 @@ import (
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
 
 	"reckon/fusion"
 	pb "reckon/proto/reckon/v1"
@@ -301,13 +302,14 @@ const maxBatch = 64
 // one write (group commit) and then answered.
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	ctx := stream.Context()
-	reqs := make(chan *pb.IngestRequest, maxBatch)
+	reqs := make(chan *arrivedRequest, maxBatch)
 	errc := make(chan error, 1)
 	go func() {
 		defer close(reqs)
+		sl := &slab{}
 		for {
-			req, err := stream.Recv()
-			if err != nil {
+			req := &arrivedRequest{IngestRequest: new(pb.IngestRequest), slab: sl}
+			if err := stream.RecvMsg(req); err != nil {
 				errc <- err
 				return
 			}
@@ -321,14 +323,14 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	}()
 	// A third goroutine sends the verdicts, so that taking the next batch
 	// overlaps with sending the last one's verdicts.
-	out := make(chan []*pb.IngestResponse, 4)
+	out := make(chan []encodedResponse, 4)
 	sendErr := make(chan error, 1)
 	go func() {
 		var err error
 		for resps := range out {
-			for _, resp := range resps {
+			for k := range resps {
 				if err == nil {
-					err = stream.Send(resp)
+					err = stream.SendMsg(&resps[k])
 				}
 			}
 		}
@@ -343,8 +345,8 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 }
 
 // takeBatches takes requests as they come, in batches of what is waiting.
-func (s *Server) takeBatches(ctx context.Context, reqs <-chan *pb.IngestRequest, errc <-chan error, out chan<- []*pb.IngestResponse) error {
-	batch := make([]*pb.IngestRequest, 0, maxBatch)
+func (s *Server) takeBatches(ctx context.Context, reqs <-chan *arrivedRequest, errc <-chan error, out chan<- []encodedResponse) error {
+	batch := make([]*arrivedRequest, 0, maxBatch)
 	for {
 		req, ok := <-reqs
 		if !ok {
@@ -380,69 +382,90 @@ func refused(clientSeq uint64, code codes.Code, reason string) *pb.IngestRespons
 
 // ingest applies one sample (SetPose and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
-	return s.ingestBatch([]*pb.IngestRequest{{Robot: name, ClientSequence: clientSeq, Sample: sample}})[0]
+	req := &arrivedRequest{IngestRequest: &pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
+	return s.ingestBatch([]*arrivedRequest{req})[0].IngestResponse
 }
 
 // ingestBatch applies samples in order: per run of samples for one robot,
 // the edge checks and the robot under its lock, one journal write, then the
 // watchers.
-func (s *Server) ingestBatch(batch []*pb.IngestRequest) []*pb.IngestResponse {
-	out := make([]*pb.IngestResponse, 0, len(batch))
+func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
+	out := make([]encodedResponse, len(batch))
 	for i := 0; i < len(batch); {
 		j := i + 1
 		for j < len(batch) && batch[j].GetRobot() == batch[i].GetRobot() {
 			j++
 		}
-		out = append(out, s.ingestRun(batch[i:j])...)
+		s.ingestRun(batch[i:j], out[i:j])
 		i = j
 	}
 	return out
 }
 
-func (s *Server) ingestRun(run []*pb.IngestRequest) []*pb.IngestResponse {
+// ingestRun takes a run of samples for one robot. Each taken sample is
+// journaled with the bytes it arrived as (encoded here when it came without
+// them) and its verdict with the bytes that will be sent.
+func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 	start := time.Now()
-	out := make([]*pb.IngestResponse, len(run))
 	name := run[0].GetRobot()
 	r, err := s.lookup(name)
 	if err != nil {
 		st := status.Convert(err)
 		for k, req := range run {
 			s.opt.Metrics.refused(st.Code())
-			out[k] = refused(req.GetClientSequence(), st.Code(), st.Message())
+			out[k].IngestResponse = refused(req.GetClientSequence(), st.Code(), st.Message())
 		}
-		return out
+		return
 	}
 	var pose *pb.FusedPose
 	var events []*pb.FusionEvent
-	taken := make([]bool, len(run))
 	anyTaken := false
+	// The encoded verdicts of the run, one buffer; each verdict's piece is
+	// capped so that later appends never write into it.
+	enc := make([]byte, 0, 48*len(run))
 	r.mu.Lock()
 	for k, req := range run {
 		switch {
 		case r.deleted:
-			out[k] = refused(req.GetClientSequence(), codes.NotFound, "robot: "+name+" was deleted")
+			out[k].IngestResponse = refused(req.GetClientSequence(), codes.NotFound, "robot: "+name+" was deleted")
 			continue
 		case r.broken != nil:
-			out[k] = refused(req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
+			out[k].IngestResponse = refused(req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
 			continue
 		}
 		resp, ok := wire.Take(r.fr, req.GetSample(), req.GetClientSequence())
-		out[k] = resp
+		out[k].IngestResponse = resp
 		if !ok {
 			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
 			continue
 		}
-		taken[k] = true
 		anyTaken = true
 		events = append(events, resp.Events...)
-		if r.journal != nil {
-			out := &pb.JournalOutput{Response: resp}
-			if resp.Sequence%wire.PoseEvery == 0 {
-				out.Pose = wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+		mark := len(enc)
+		if enc, err = (proto.MarshalOptions{}).MarshalAppend(enc, resp); err != nil {
+			// Cannot happen for a message built here; the verdict goes out
+			// through the standard codec and the journal is marked broken.
+			r.broken = fmt.Errorf("encoding verdict %d: %w", resp.Sequence, err)
+			enc = enc[:mark]
+			continue
+		}
+		out[k].wire = enc[mark:len(enc):len(enc)]
+		if r.journal == nil {
+			continue
+		}
+		sample := wire.RequestSample(req.wire)
+		if sample == nil {
+			if sample, err = (proto.MarshalOptions{Deterministic: true}).Marshal(req.GetSample()); err != nil {
+				r.broken = fmt.Errorf("encoding sample %d: %w", resp.Sequence, err)
+				continue
 			}
-			if err := r.journal.AddPair(&pb.JournalInput{Sequence: resp.Sequence, Sample: req.GetSample(), ArrivalUnixNs: start.UnixNano()}, out); err != nil {
-				r.broken = err
-			}
+		}
+		var p *pb.FusedPose
+		if resp.Sequence%wire.PoseEvery == 0 {
+			p = wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+		}
+		if err := r.journal.AddEncodedPair(resp.Sequence, sample, start.UnixNano(), out[k].wire, p); err != nil {
+			r.broken = err
 		}
 	}
 	if anyTaken {
@@ -463,22 +486,21 @@ func (s *Server) ingestRun(run []*pb.IngestRequest) []*pb.IngestResponse {
 		// restores it from what the journal holds.
 		s.log.Error("journal write failed; the robot takes no more input", "robot", name, "err", broken)
 		for k, req := range run {
-			if taken[k] {
-				out[k] = refused(req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())
+			if out[k].Sequence != 0 {
+				out[k] = encodedResponse{IngestResponse: refused(req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())}
 			}
 		}
-		return out
+		return
 	}
 	if pose != nil {
 		r.hub.publish(pose, events, s.opt.MaxWatchEvents)
 	}
 	d := time.Since(start)
 	for k := range run {
-		if taken[k] {
+		if out[k].Sequence != 0 {
 			s.opt.Metrics.verdict(out[k].Verdict, d)
 		}
 	}
-	return out
 }
 
 // GetPoseAt gets the estimate at a stamp.

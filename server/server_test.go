@@ -115,6 +115,28 @@ func TestEndToEnd(t *testing.T) {
 	if a, b := fr2.Pose(), fr.Pose(); a.Pose != b.Pose || a.Cov != b.Cov {
 		t.Errorf("replayed pose %+v, offline %+v", a.Pose, b.Pose)
 	}
+	// The journal holds each sample as sent (kept as it arrived, not encoded
+	// again) and each verdict as answered (sent as it was journaled).
+	bySeq := map[uint64]int{}
+	for i, r := range responses {
+		bySeq[r.GetSequence()] = i
+	}
+	n := 0
+	if _, err := wire.ScanJournal(dir, "cart", wire.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+		i, ok := bySeq[in.GetSequence()]
+		switch {
+		case !ok:
+			t.Errorf("journal input with sequence %d was never answered", in.GetSequence())
+		case !proto.Equal(in.GetSample(), samp[i]):
+			t.Errorf("journal input %d is %v, the sample sent was %v", in.GetSequence(), in.GetSample(), samp[i])
+		case !proto.Equal(out.GetResponse(), responses[i]):
+			t.Errorf("journal output %d is %v, the verdict received was %v", in.GetSequence(), out.GetResponse(), responses[i])
+		}
+		n++
+		return nil
+	}}); err != nil || n != len(samp) {
+		t.Errorf("journal scan: %d pairs, %v", n, err)
+	}
 	// And a restarted service restores the robot where it was.
 	srv2 := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	defer srv2.stop()

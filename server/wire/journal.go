@@ -13,6 +13,7 @@ import (
 	"sort"
 	"strings"
 
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon/proto/reckon/v1"
@@ -329,6 +330,68 @@ func (w *JournalWriter) AddPair(in *pb.JournalInput, out *pb.JournalOutput) erro
 	return err
 }
 
+// AddEncodedPair frames an input and its output from parts already in wire
+// form: the sample as it arrived and the response as it will be sent, so
+// that neither is encoded again. It writes the same bytes as AddPair with
+// the decoded messages, provided sample and response are the deterministic
+// encodings; other encodings of the same messages decode to the same
+// records. pose may be nil.
+func (w *JournalWriter) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
+	n := len(w.buf)
+	// JournalInput{sequence = 1, sample = 2, arrival_unix_ns = 3}.
+	size := protowire.SizeTag(2) + protowire.SizeBytes(len(sample))
+	if seq != 0 {
+		size += protowire.SizeTag(1) + protowire.SizeVarint(seq)
+	}
+	if arrivalUnixNs != 0 {
+		size += protowire.SizeTag(3) + protowire.SizeVarint(uint64(arrivalUnixNs))
+	}
+	start := len(w.buf)
+	b := append(w.buf, make([]byte, frameSize)...)
+	b = append(b, KindInput)
+	b = protowire.AppendVarint(b, uint64(size))
+	if seq != 0 {
+		b = protowire.AppendTag(b, 1, protowire.VarintType)
+		b = protowire.AppendVarint(b, seq)
+	}
+	b = protowire.AppendTag(b, 2, protowire.BytesType)
+	b = protowire.AppendBytes(b, sample)
+	if arrivalUnixNs != 0 {
+		b = protowire.AppendTag(b, 3, protowire.VarintType)
+		b = protowire.AppendVarint(b, uint64(arrivalUnixNs))
+	}
+	b, err := sealFrame(b, start, nil)
+	if err == nil {
+		// JournalOutput{response = 1, pose = 2}.
+		opts := proto.MarshalOptions{Deterministic: true}
+		size = protowire.SizeTag(1) + protowire.SizeBytes(len(response))
+		poseSize := 0
+		if pose != nil {
+			poseSize = opts.Size(pose)
+			size += protowire.SizeTag(2) + protowire.SizeBytes(poseSize)
+		}
+		start = len(b)
+		b = append(b, make([]byte, frameSize)...)
+		b = append(b, KindOutput)
+		b = protowire.AppendVarint(b, uint64(size))
+		b = protowire.AppendTag(b, 1, protowire.BytesType)
+		b = protowire.AppendBytes(b, response)
+		if pose != nil {
+			b = protowire.AppendTag(b, 2, protowire.BytesType)
+			b = protowire.AppendVarint(b, uint64(poseSize))
+			opts.UseCachedSize = true
+			b, err = opts.MarshalAppend(b, pose)
+		}
+		b, err = sealFrame(b, start, err)
+	}
+	if err != nil {
+		w.buf = b[:n]
+		return err
+	}
+	w.buf = b
+	return nil
+}
+
 // appendWrapped appends the frame of a JournalRecord whose one set field,
 // with tag kind, holds m: the tag, the length of m and m itself.
 func appendWrapped(dst []byte, kind byte, m proto.Message) ([]byte, error) {
@@ -338,6 +401,8 @@ func appendWrapped(dst []byte, kind byte, m proto.Message) ([]byte, error) {
 	dst = append(dst, make([]byte, frameSize)...)
 	dst = append(dst, kind)
 	dst = binary.AppendUvarint(dst, uint64(size))
+	// The size of every nested message was cached by Size just above.
+	opts.UseCachedSize = true
 	dst, err := opts.MarshalAppend(dst, m)
 	return sealFrame(dst, start, err)
 }

@@ -1,0 +1,82 @@
+package server
+
+import (
+	"fmt"
+
+	"google.golang.org/grpc/encoding"
+	_ "google.golang.org/grpc/encoding/proto" // registers the protobuf codec that codec wraps
+	"google.golang.org/grpc/mem"
+	"google.golang.org/protobuf/proto"
+
+	pb "reckon/proto/reckon/v1"
+)
+
+// codec is the service's gRPC codec: protobuf, except on the ingest path,
+// where a request keeps the bytes it arrived as (the journal records its
+// sample as it came, without encoding it again) and a verdict already
+// encoded for the journal is sent as those bytes. Every other message goes
+// through the standard protobuf codec. Serve installs it; a Server
+// registered on a gRPC server without it works the same, only with an
+// encoding more per sample.
+type codec struct{ std encoding.CodecV2 }
+
+func newCodec() codec { return codec{std: encoding.GetCodecV2("proto")} }
+
+// Name is the content subtype: the codec speaks plain protobuf.
+func (codec) Name() string { return "proto" }
+
+func (c codec) Marshal(v any) (mem.BufferSlice, error) {
+	if e, ok := v.(*encodedResponse); ok && e.wire != nil {
+		return mem.BufferSlice{mem.SliceBuffer(e.wire)}, nil
+	}
+	return c.std.Marshal(v)
+}
+
+func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
+	r, ok := v.(*arrivedRequest)
+	if !ok {
+		return c.std.Unmarshal(data, v)
+	}
+	b := r.slab.take(data.Len())
+	data.CopyTo(b)
+	if err := proto.Unmarshal(b, r.IngestRequest); err != nil {
+		return fmt.Errorf("ingest request: %w", err)
+	}
+	r.wire = b
+	return nil
+}
+
+// arrivedRequest is an ingest request and, under codec, the bytes it
+// arrived as. It is a proto.Message through the embedded request, so the
+// standard codec decodes it too (and leaves wire nil).
+type arrivedRequest struct {
+	*pb.IngestRequest
+	wire []byte
+	slab *slab
+}
+
+// encodedResponse is a verdict and, when it was journaled, its encoding;
+// codec sends the encoding, the standard codec encodes the message.
+type encodedResponse struct {
+	*pb.IngestResponse
+	wire []byte
+}
+
+// slab hands out pieces of large buffers for arriving requests, one
+// allocation per many requests. A buffer is never written again once
+// handed out; it is freed when no request refers to it any more.
+type slab struct{ buf []byte }
+
+const slabBytes = 64 << 10
+
+func (s *slab) take(n int) []byte {
+	if s == nil {
+		return make([]byte, n)
+	}
+	if cap(s.buf)-len(s.buf) < n {
+		s.buf = make([]byte, 0, max(slabBytes, n))
+	}
+	b := s.buf[len(s.buf) : len(s.buf)+n : len(s.buf)+n]
+	s.buf = s.buf[:len(s.buf)+n]
+	return b
+}

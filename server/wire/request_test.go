@@ -1,0 +1,68 @@
+package wire
+
+import (
+	"os"
+	"testing"
+
+	"google.golang.org/protobuf/encoding/protowire"
+	"google.golang.org/protobuf/proto"
+
+	pb "reckon/proto/reckon/v1"
+)
+
+func TestRequestSample(t *testing.T) {
+	s := &pb.Sample{Sample: &pb.Sample_Heading{Heading: &pb.HeadingSample{StampNs: 10, HeadingRad: 0.5, VarianceRad2: 1e-4}}}
+	req, _ := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: 3, Sample: s})
+	got := RequestSample(req)
+	var back pb.Sample
+	if err := proto.Unmarshal(got, &back); err != nil || !proto.Equal(&back, s) {
+		t.Fatalf("RequestSample gave %x (%v), want the encoding of %v", got, err, s)
+	}
+	// The sample twice (decoders merge the two): no bytes, the caller encodes.
+	twice := protowire.AppendTag(append([]byte(nil), req...), 3, protowire.BytesType)
+	twice = protowire.AppendBytes(twice, got)
+	if RequestSample(twice) != nil {
+		t.Error("a request holding the sample twice gave bytes")
+	}
+	for name, b := range map[string][]byte{"no sample": req[:len(req)-len(got)-2], "cut": req[:len(req)-1], "empty": nil} {
+		if RequestSample(b) != nil {
+			t.Errorf("%s: gave bytes", name)
+		}
+	}
+}
+
+// FuzzRequestSample: whenever RequestSample finds a sample in bytes that
+// decode as an IngestRequest, those bytes decode to the request's sample.
+func FuzzRequestSample(f *testing.F) {
+	fh, err := os.Open(exampleSamples)
+	if err != nil {
+		f.Fatal(err)
+	}
+	defer fh.Close()
+	sr := NewSampleReader(fh)
+	for i := 0; i < 40; i++ {
+		s, err := sr.Next()
+		if err != nil {
+			break
+		}
+		b, _ := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(i), Sample: s})
+		f.Add(b)
+	}
+	f.Fuzz(func(t *testing.T, b []byte) {
+		got := RequestSample(b)
+		var req pb.IngestRequest
+		if err := proto.Unmarshal(b, &req); err != nil {
+			return
+		}
+		if got == nil {
+			return
+		}
+		var s pb.Sample
+		if err := proto.Unmarshal(got, &s); err != nil {
+			t.Fatalf("sample bytes %x do not decode: %v", got, err)
+		}
+		if !proto.Equal(&s, req.GetSample()) {
+			t.Fatalf("sample bytes decode to %v, the request holds %v", &s, req.GetSample())
+		}
+	})
+}

@@ -68,7 +68,7 @@ type Filter struct {
 	st State
 
 	// Scratch, reused by every call.
-	fx, fu  [9]float64
+	fu      [9]float64
 	a       [16]float64
 	h       [12]float64
 	s, l    [9]float64
@@ -135,40 +135,41 @@ func (f *Filter) Pose() Pose { return f.st.Pose() }
 func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
 	n := f.st.N
 	p := f.st.Pose()
-	ArcJacobians(p, u, &f.fx, &f.fu)
-	np := Advance(p, u)
-	f.st.X[IX], f.st.X[IY], f.st.X[IHead] = np.X, np.Y, np.Heading
+	// Advance and ArcJacobians, sharing the trigonometry.
+	k, dk := arcFactors(u.TurnRad)
+	sc, cc := math.Sincos(p.Heading + u.TurnRad/2)
+	cx := cc*u.ForwardM - sc*u.LeftM
+	cy := sc*u.ForwardM + cc*u.LeftM
+	f.st.X[IX], f.st.X[IY], f.st.X[IHead] = p.X+k*cx, p.Y+k*cy, Wrap(p.Heading+u.TurnRad)
+	fu := &f.fu
+	*fu = [9]float64{
+		k * cc, -k * sc, dk*cx - 0.5*k*cy,
+		k * sc, k * cc, dk*cy + 0.5*k*cx,
+		0, 0, 1,
+	}
 
+	// P = F P F^T, where F is the identity except for the heading column of
+	// the position rows (a, b): the rows first, then the columns.
 	P := &f.st.P
-	A := &f.a
-	// A = F P, where F is fx on the pose block and identity on the offset.
-	for i := 0; i < 3; i++ {
-		for j := 0; j < n; j++ {
-			A[i*4+j] = f.fx[i*3+0]*P[0*4+j] + f.fx[i*3+1]*P[1*4+j] + f.fx[i*3+2]*P[2*4+j]
-		}
+	a, b := -k*cy, k*cx
+	for j := 0; j < n; j++ {
+		P[0*4+j] += a * P[2*4+j]
+		P[1*4+j] += b * P[2*4+j]
 	}
-	if n == 4 {
-		copy(A[12:16], P[12:16])
-	}
-	// P = A F^T.
 	for i := 0; i < n; i++ {
-		for j := 0; j < 3; j++ {
-			P[i*4+j] = A[i*4+0]*f.fx[j*3+0] + A[i*4+1]*f.fx[j*3+1] + A[i*4+2]*f.fx[j*3+2]
-		}
-		if n == 4 {
-			P[i*4+3] = A[i*4+3]
-		}
+		P[i*4+0] += a * P[i*4+2]
+		P[i*4+1] += b * P[i*4+2]
 	}
 	// P += Fu cu Fu^T on the pose block.
-	var b [9]float64
+	var g [9]float64
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			b[i*3+j] = f.fu[i*3+0]*cu[0*3+j] + f.fu[i*3+1]*cu[1*3+j] + f.fu[i*3+2]*cu[2*3+j]
+			g[i*3+j] = fu[i*3+0]*cu[0*3+j] + fu[i*3+1]*cu[1*3+j] + fu[i*3+2]*cu[2*3+j]
 		}
 	}
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			P[i*4+j] += b[i*3+0]*f.fu[j*3+0] + b[i*3+1]*f.fu[j*3+1] + b[i*3+2]*f.fu[j*3+2]
+			P[i*4+j] += g[i*3+0]*fu[j*3+0] + g[i*3+1]*fu[j*3+1] + g[i*3+2]*fu[j*3+2]
 		}
 	}
 	for i := 0; i < n; i++ {

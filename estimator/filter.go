@@ -68,14 +68,14 @@ type Filter struct {
 	st State
 
 	// Scratch, reused by every call.
-	fu      [9]float64
-	a       [16]float64
-	h       [12]float64
-	s, l    [9]float64
-	k       [12]float64
-	ikh, p2 [16]float64
-	chol    [16]float64
-	saved   State
+	fu    [9]float64
+	a     [16]float64
+	h     [12]float64
+	s, l  [9]float64
+	k     [12]float64
+	pht   [12]float64
+	chol  [16]float64
+	saved State
 }
 
 // NewFilter returns a filter with n states (3, or 4 with the IMU offset)
@@ -241,6 +241,7 @@ func (f *Filter) Update(m *Measurement, gate float64) (Outcome, error) {
 		out.Gated = true
 		return out, nil
 	}
+	f.pht = f.k
 	// K = PHt S^-1: solve S K_i^T = PHt_i^T row by row.
 	for i := 0; i < n; i++ {
 		var row, sol [3]float64
@@ -268,50 +269,48 @@ func (f *Filter) Update(m *Measurement, gate float64) (Outcome, error) {
 	return out, nil
 }
 
-// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T.
+// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T, formed as rank-d
+// corrections instead of n x n products:
+//
+//	A  = (I-KH) P = P - K (H P)
+//	P' = A (I-KH)^T + K R K^T = A + (K R - A H^T) K^T
+//
+// which is the same expression, regrouped (3dn^2 + nd^2 products instead of
+// 2n^3 + 2dn^2 + nd^2). H P is the transpose of P H^T, which Update kept in
+// f.pht (P is symmetric).
 func (f *Filter) joseph(m *Measurement, n, d int) {
 	P := &f.st.P
+	K, H := &f.k, &f.h
+	// A = P - K (H P), with (H P)[a][j] = pht[j][a].
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			var kh float64
-			for k := 0; k < d; k++ {
-				kh += f.k[i*3+k] * f.h[k*4+j]
-			}
-			id := 0.0
-			if i == j {
-				id = 1
-			}
-			f.ikh[i*4+j] = id - kh
-		}
-	}
-	// A = (I-KH) P
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			var acc float64
-			for k := 0; k < n; k++ {
-				acc += f.ikh[i*4+k] * P[k*4+j]
+			acc := P[i*4+j]
+			for a := 0; a < d; a++ {
+				acc -= K[i*3+a] * f.pht[j*3+a]
 			}
 			f.a[i*4+j] = acc
 		}
 	}
-	// KR = K R (n x d) into p2 with stride 4.
+	// C = K R - A H^T (n x d, stride 3).
+	var c [12]float64
 	for i := 0; i < n; i++ {
-		for j := 0; j < d; j++ {
-			var acc float64
-			for k := 0; k < d; k++ {
-				acc += f.k[i*3+k] * m.R[k*3+j]
+		for a := 0; a < d; a++ {
+			var kr, ah float64
+			for b := 0; b < d; b++ {
+				kr += K[i*3+b] * m.R[b*3+a]
 			}
-			f.p2[i*4+j] = acc
+			for k := 0; k < n; k++ {
+				ah += f.a[i*4+k] * H[a*4+k]
+			}
+			c[i*3+a] = kr - ah
 		}
 	}
+	// P' = A + C K^T.
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			var acc float64
-			for k := 0; k < n; k++ {
-				acc += f.a[i*4+k] * f.ikh[j*4+k]
-			}
-			for k := 0; k < d; k++ {
-				acc += f.p2[i*4+k] * f.k[j*3+k]
+			acc := f.a[i*4+j]
+			for a := 0; a < d; a++ {
+				acc += c[i*3+a] * K[j*3+a]
 			}
 			P[i*4+j] = acc
 		}

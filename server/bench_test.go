@@ -168,7 +168,7 @@ func BenchmarkIngestCore(b *testing.B) {
 	i := 0
 	b.ReportAllocs()
 	for b.Loop() {
-		req := &arrivedRequest{IngestRequest: new(pb.IngestRequest), slab: sl}
+		req := &arrivedRequest{slab: sl}
 		if err := cd.Unmarshal(reqs[i], req); err != nil {
 			b.Fatal(err)
 		}

@@ -39,7 +39,7 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	}
 	b := r.slab.take(data.Len())
 	data.CopyTo(b)
-	if err := proto.Unmarshal(b, r.IngestRequest); err != nil {
+	if err := proto.Unmarshal(b, &r.IngestRequest); err != nil {
 		return fmt.Errorf("ingest request: %w", err)
 	}
 	r.wire = b
@@ -50,7 +50,7 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 // arrived as. It is a proto.Message through the embedded request, so the
 // standard codec decodes it too (and leaves wire nil).
 type arrivedRequest struct {
-	*pb.IngestRequest
+	pb.IngestRequest
 	wire []byte
 	slab *slab
 }
@@ -58,7 +58,7 @@ type arrivedRequest struct {
 // encodedResponse is a verdict and, when it was journaled, its encoding;
 // codec sends the encoding, the standard codec encodes the message.
 type encodedResponse struct {
-	*pb.IngestResponse
+	pb.IngestResponse
 	wire []byte
 }
 

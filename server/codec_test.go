@@ -22,17 +22,20 @@ func TestCodec(t *testing.T) {
 	rb, _ := proto.Marshal(resp)
 
 	for name, c := range map[string]encoding.CodecV2{"service": newCodec(), "standard": encoding.GetCodecV2("proto")} {
-		got := &arrivedRequest{IngestRequest: new(pb.IngestRequest), slab: &slab{}}
+		got := &arrivedRequest{slab: &slab{}}
 		if err := c.Unmarshal(mem.BufferSlice{mem.SliceBuffer(b)}, got); err != nil {
 			t.Fatalf("%s: %v", name, err)
 		}
-		if !proto.Equal(got.IngestRequest, req) {
-			t.Errorf("%s: decoded %v, want %v", name, got.IngestRequest, req)
+		if !proto.Equal(&got.IngestRequest, req) {
+			t.Errorf("%s: decoded %v, want %v", name, &got.IngestRequest, req)
 		}
 		if keeps := got.wire != nil; keeps != (name == "service") || (keeps && !bytes.Equal(got.wire, b)) {
 			t.Errorf("%s: kept bytes %x", name, got.wire)
 		}
-		for _, e := range []*encodedResponse{{IngestResponse: resp, wire: rb}, {IngestResponse: resp}} {
+		withBytes, without := &encodedResponse{wire: rb}, &encodedResponse{}
+		proto.Merge(&withBytes.IngestResponse, resp)
+		proto.Merge(&without.IngestResponse, resp)
+		for _, e := range []*encodedResponse{withBytes, without} {
 			out, err := c.Marshal(e)
 			if err != nil {
 				t.Fatalf("%s: %v", name, err)
@@ -44,7 +47,7 @@ func TestCodec(t *testing.T) {
 		}
 	}
 	// A request that does not decode is an error, and is not kept.
-	got := &arrivedRequest{IngestRequest: new(pb.IngestRequest), slab: &slab{}}
+	got := &arrivedRequest{slab: &slab{}}
 	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b[:len(b)-1])}, got); err == nil || got.wire != nil {
 		t.Errorf("a cut request: err %v, kept %x", err, got.wire)
 	}

@@ -308,7 +308,7 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 		defer close(reqs)
 		sl := &slab{}
 		for {
-			req := &arrivedRequest{IngestRequest: new(pb.IngestRequest), slab: sl}
+			req := &arrivedRequest{slab: sl}
 			if err := stream.RecvMsg(req); err != nil {
 				errc <- err
 				return
@@ -376,14 +376,17 @@ func (s *Server) takeBatches(ctx context.Context, reqs <-chan *arrivedRequest, e
 	}
 }
 
-func refused(clientSeq uint64, code codes.Code, reason string) *pb.IngestResponse {
-	return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: reason, StatusCode: int32(code)}
+// refuse makes out the refusal of a sample, whatever it held before.
+func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason string) {
+	out.wire = nil
+	out.IngestResponse.Reset()
+	out.ClientSequence, out.Verdict, out.Reason, out.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, reason, int32(code)
 }
 
 // ingest applies one sample (SetPose and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
-	req := &arrivedRequest{IngestRequest: &pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
-	return s.ingestBatch([]*arrivedRequest{req})[0].IngestResponse
+	req := &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
+	return &s.ingestBatch([]*arrivedRequest{req})[0].IngestResponse
 }
 
 // ingestBatch applies samples in order: per run of samples for one robot,
@@ -413,7 +416,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 		st := status.Convert(err)
 		for k, req := range run {
 			s.opt.Metrics.refused(st.Code())
-			out[k].IngestResponse = refused(req.GetClientSequence(), st.Code(), st.Message())
+			refuse(&out[k], req.GetClientSequence(), st.Code(), st.Message())
 		}
 		return
 	}
@@ -427,15 +430,14 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 	for k, req := range run {
 		switch {
 		case r.deleted:
-			out[k].IngestResponse = refused(req.GetClientSequence(), codes.NotFound, "robot: "+name+" was deleted")
+			refuse(&out[k], req.GetClientSequence(), codes.NotFound, "robot: "+name+" was deleted")
 			continue
 		case r.broken != nil:
-			out[k].IngestResponse = refused(req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
+			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
 			continue
 		}
-		resp, ok := wire.Take(r.fr, req.GetSample(), req.GetClientSequence())
-		out[k].IngestResponse = resp
-		if !ok {
+		resp := &out[k].IngestResponse
+		if !wire.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {
 			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
 			continue
 		}
@@ -487,7 +489,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 		s.log.Error("journal write failed; the robot takes no more input", "robot", name, "err", broken)
 		for k, req := range run {
 			if out[k].Sequence != 0 {
-				out[k] = encodedResponse{IngestResponse: refused(req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())}
+				refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())
 			}
 		}
 		return

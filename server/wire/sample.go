@@ -16,14 +16,15 @@ import (
 // wire, or failing the robot's checks; it reaches neither the estimate nor the journal.
 var ErrSample = errors.New("bad sample")
 
-// input is a decoded sample, ready for a robot; field names the sample's
-// kind in error messages.
+// input is a decoded sample, ready for a robot: the one of Odometry,
+// Heading, Fix and Pose that field names (it also names the sample's kind
+// in error messages).
 type input struct {
 	field    string
-	Odometry *fusion.Odometry
-	Heading  *fusion.Heading
-	Fix      *fusion.Fix
-	Pose     *poseSetting
+	Odometry fusion.Odometry
+	Heading  fusion.Heading
+	Fix      fusion.Fix
+	Pose     poseSetting
 }
 
 // poseSetting is a decoded pose set by hand.
@@ -48,20 +49,18 @@ func decode(s *pb.Sample) (input, error) {
 	var in input
 	switch v := s.GetSample().(type) {
 	case *pb.Sample_Odometry:
-		o, err := decodeOdometry(v.Odometry)
-		if err != nil {
+		if err := decodeOdometry(v.Odometry, &in.Odometry); err != nil {
 			return in, err
 		}
-		in.field, in.Odometry = "sample.odometry", o
+		in.field = "sample.odometry"
 	case *pb.Sample_Heading:
 		in.field = "sample.heading"
-		in.Heading = &fusion.Heading{StampNs: v.Heading.GetStampNs(), HeadingRad: v.Heading.GetHeadingRad(), VarRad2: v.Heading.GetVarianceRad2()}
+		in.Heading = fusion.Heading{StampNs: v.Heading.GetStampNs(), HeadingRad: v.Heading.GetHeadingRad(), VarRad2: v.Heading.GetVarianceRad2()}
 	case *pb.Sample_Fix:
-		f, err := decodeFix(v.Fix)
-		if err != nil {
+		if err := decodeFix(v.Fix, &in.Fix); err != nil {
 			return in, err
 		}
-		in.field, in.Fix = "sample.fix", f
+		in.field = "sample.fix"
 	case *pb.Sample_PoseSetting:
 		ps := v.PoseSetting
 		if ps.GetPose() == nil {
@@ -72,15 +71,15 @@ func decode(s *pb.Sample) (input, error) {
 			return in, sampleErr("sample.pose_setting.covariance", err)
 		}
 		in.field = "sample.pose_setting"
-		in.Pose = &poseSetting{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
+		in.Pose = poseSetting{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
 	default:
 		return in, sampleErrf("sample", "none of odometry, heading, fix and pose_setting is set")
 	}
 	return in, nil
 }
 
-func decodeOdometry(o *pb.OdometrySample) (*fusion.Odometry, error) {
-	out := &fusion.Odometry{StampNs: o.GetStampNs(), StartNs: o.GetStartNs()}
+func decodeOdometry(o *pb.OdometrySample, out *fusion.Odometry) error {
+	*out = fusion.Odometry{StampNs: o.GetStampNs(), StartNs: o.GetStartNs()}
 	switch m := o.GetMotion().(type) {
 	case *pb.OdometrySample_Travel:
 		out.TravelM = m.Travel.GetTravelM()
@@ -95,17 +94,16 @@ func decodeOdometry(o *pb.OdometrySample) (*fusion.Odometry, error) {
 	case *pb.OdometrySample_Step:
 		out.Step = &estimator.Step{ForwardM: m.Step.GetForwardM(), LeftM: m.Step.GetLeftM(), TurnRad: m.Step.GetTurnRad()}
 	default:
-		return nil, sampleErrf("sample.odometry", "none of travel, counts and step is set")
+		return sampleErrf("sample.odometry", "none of travel, counts and step is set")
 	}
 	if o.ImuHeadingRad != nil {
-		v := o.GetImuHeadingRad()
-		out.IMUHeadingRad = &v
+		out.IMUHeadingRad = o.ImuHeadingRad
 	}
-	return out, nil
+	return nil
 }
 
-func decodeFix(f *pb.Fix) (*fusion.Fix, error) {
-	out := &fusion.Fix{StampNs: f.GetStampNs(), SensorID: f.GetSensorId(), Mount: poseFromProto(f.GetMount())}
+func decodeFix(f *pb.Fix, out *fusion.Fix) error {
+	*out = fusion.Fix{StampNs: f.GetStampNs(), SensorID: f.GetSensorId(), Mount: poseFromProto(f.GetMount())}
 	var dim int
 	switch m := f.GetMeasurement().(type) {
 	case *pb.Fix_Pose:
@@ -131,28 +129,28 @@ func decodeFix(f *pb.Fix) (*fusion.Fix, error) {
 			dim++
 		}
 		if dim == 0 {
-			return nil, sampleErrf("sample.fix.landmark", "neither range_m nor bearing_rad is set")
+			return sampleErrf("sample.fix.landmark", "neither range_m nor bearing_rad is set")
 		}
 	default:
-		return nil, sampleErrf("sample.fix", "none of pose, position, heading and landmark is set")
+		return sampleErrf("sample.fix", "none of pose, position, heading and landmark is set")
 	}
 	cov, err := covFromProto(f.GetCovariance(), dim)
 	if err != nil {
-		return nil, sampleErr("sample.fix.covariance", err)
+		return sampleErr("sample.fix.covariance", err)
 	}
 	out.Cov = cov
-	return out, nil
+	return nil
 }
 
 // apply gives a decoded input to the robot.
-func apply(r *fusion.Robot, in input) fusion.Result {
-	switch {
-	case in.Odometry != nil:
-		return r.AddOdometry(*in.Odometry)
-	case in.Heading != nil:
-		return r.AddHeading(*in.Heading)
-	case in.Fix != nil:
-		return r.AddFix(*in.Fix)
+func apply(r *fusion.Robot, in *input) fusion.Result {
+	switch in.field {
+	case "sample.odometry":
+		return r.AddOdometry(in.Odometry)
+	case "sample.heading":
+		return r.AddHeading(in.Heading)
+	case "sample.fix":
+		return r.AddFix(in.Fix)
 	default:
 		return r.SetPose(in.Pose.StampNs, in.Pose.Pose, in.Pose.Cov)
 	}
@@ -200,12 +198,18 @@ func reason(err error) string {
 
 // ResultToProto converts a robot's result to the wire.
 func ResultToProto(res fusion.Result, clientSeq uint64) *pb.IngestResponse {
-	out := &pb.IngestResponse{ClientSequence: clientSeq, Sequence: res.Seq, Verdict: verdicts[res.Verdict], Reason: reason(res.Err),
-		Nis: res.NIS, NisDimension: int32(res.Dim), Events: EventsToProto(res.Events)}
+	out := new(pb.IngestResponse)
+	resultInto(out, res, clientSeq)
+	return out
+}
+
+// resultInto fills out, which must be empty, with a robot's result.
+func resultInto(out *pb.IngestResponse, res fusion.Result, clientSeq uint64) {
+	out.ClientSequence, out.Sequence, out.Verdict, out.Reason = clientSeq, res.Seq, verdicts[res.Verdict], reason(res.Err)
+	out.Nis, out.NisDimension, out.Events = res.NIS, int32(res.Dim), EventsToProto(res.Events)
 	for _, r := range res.Resolved {
 		out.Resolved = append(out.Resolved, &pb.Resolution{Sequence: r.Seq, Verdict: verdicts[r.Verdict], Nis: r.NIS, Reason: reason(r.Err)})
 	}
-	return out
 }
 
 // EventsToProto converts events.
@@ -279,15 +283,23 @@ func VerdictCode(res fusion.Result) codes.Code {
 // taken. The reason names the field; it wraps ErrSample and the fusion
 // sentinel.
 func Take(r *fusion.Robot, s *pb.Sample, clientSeq uint64) (resp *pb.IngestResponse, taken bool) {
+	resp = new(pb.IngestResponse)
+	return resp, TakeInto(resp, r, s, clientSeq)
+}
+
+// TakeInto is Take answering into resp, which must be empty, so that a
+// caller can allocate the answers of many samples at once.
+func TakeInto(resp *pb.IngestResponse, r *fusion.Robot, s *pb.Sample, clientSeq uint64) (taken bool) {
 	in, err := decode(s)
 	if err == nil {
-		res := apply(r, in)
+		res := apply(r, &in)
 		if res.Seq != 0 {
-			resp = ResultToProto(res, clientSeq)
+			resultInto(resp, res, clientSeq)
 			resp.StatusCode = int32(VerdictCode(res))
-			return resp, true
+			return true
 		}
 		err = sampleErr(in.field, res.Err)
 	}
-	return &pb.IngestResponse{ClientSequence: clientSeq, Verdict: pb.Verdict_VERDICT_INVALID, Reason: err.Error(), StatusCode: int32(Code(err))}, false
+	resp.ClientSequence, resp.Verdict, resp.Reason, resp.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, err.Error(), int32(Code(err))
+	return false
 }

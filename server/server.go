@@ -294,29 +294,29 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 }
 
 // maxBatch bounds a group commit: the samples of one stream taken under one
-// lock and one journal write.
-const maxBatch = 64
+// lock and one journal write, which is also how many may wait to be taken.
+// A batch is what has arrived while the last one was taken, so at a robot's
+// own rates it holds one sample; under a backlog, 256 rather than 64 raised
+// one stream's throughput by about 15 % (BenchmarkIngestThroughput) and
+// holds a verdict back by at most the batch's work, about half a millisecond.
+const maxBatch = 256
 
 // Ingest takes a stream of samples and answers each in order. Samples that
 // are already waiting when one is taken are taken with it, journaled with
 // one write (group commit) and then answered.
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	ctx := stream.Context()
-	reqs := make(chan *arrivedRequest, maxBatch)
-	errc := make(chan error, 1)
+	in := newInbox()
 	go func() {
-		defer close(reqs)
 		sl := &slab{}
 		for {
 			req := &arrivedRequest{slab: sl}
-			if err := stream.RecvMsg(req); err != nil {
-				errc <- err
-				return
+			err := stream.RecvMsg(req)
+			if err == nil {
+				err = in.put(ctx, req)
 			}
-			select {
-			case reqs <- req:
-			case <-ctx.Done():
-				errc <- ctx.Err()
+			if err != nil {
+				in.end(err)
 				return
 			}
 		}
@@ -336,7 +336,7 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 		}
 		sendErr <- err
 	}()
-	err := s.takeBatches(ctx, reqs, errc, out)
+	err := s.takeBatches(ctx, in, out)
 	close(out)
 	if serr := <-sendErr; err == nil {
 		err = serr
@@ -345,28 +345,15 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 }
 
 // takeBatches takes requests as they come, in batches of what is waiting.
-func (s *Server) takeBatches(ctx context.Context, reqs <-chan *arrivedRequest, errc <-chan error, out chan<- []encodedResponse) error {
-	batch := make([]*arrivedRequest, 0, maxBatch)
+func (s *Server) takeBatches(ctx context.Context, in *inbox, out chan<- []encodedResponse) error {
+	var batch []*arrivedRequest
 	for {
-		req, ok := <-reqs
-		if !ok {
-			if err := <-errc; err != io.EOF {
-				return err
+		var err error
+		if batch, err = in.take(ctx, batch); err != nil {
+			if err == io.EOF {
+				return nil
 			}
-			return nil
-		}
-		batch = append(batch[:0], req)
-	drain:
-		for len(batch) < maxBatch {
-			select {
-			case r, ok := <-reqs:
-				if !ok {
-					break drain
-				}
-				batch = append(batch, r)
-			default:
-				break drain
-			}
+			return err
 		}
 		select {
 		case out <- s.ingestBatch(batch):

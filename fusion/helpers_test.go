@@ -58,3 +58,29 @@ func checkFinitePD(t *testing.T, r *Robot) {
 		t.Fatalf("covariance: %v", err)
 	}
 }
+
+// TestEntryHoldsNoPointers: the history window is a slice of entries that
+// the garbage collector need not scan and that moves without write
+// barriers; an entry must not gain a pointer (errors live in Robot.errs).
+func TestEntryHoldsNoPointers(t *testing.T) {
+	var walk func(reflect.Type) bool
+	walk = func(ty reflect.Type) bool {
+		switch ty.Kind() {
+		case reflect.Pointer, reflect.Interface, reflect.Slice, reflect.Map, reflect.String, reflect.Chan, reflect.Func, reflect.UnsafePointer:
+			return true
+		case reflect.Array:
+			return walk(ty.Elem())
+		case reflect.Struct:
+			for i := 0; i < ty.NumField(); i++ {
+				if walk(ty.Field(i).Type) {
+					t.Logf("field %s.%s", ty.Name(), ty.Field(i).Name)
+					return true
+				}
+			}
+		}
+		return false
+	}
+	if walk(reflect.TypeFor[entry]()) {
+		t.Error("fusion.entry holds a pointer")
+	}
+}

@@ -25,7 +25,8 @@ type Robot struct {
 	newest  int64 // end of the newest odometry interval
 	ents    []entry
 	head    int
-	held    []entry // waiting for odometry, in stamp order
+	errs    []entryErr // of the failed entries in ents
+	held    []entry    // waiting for odometry, in stamp order
 
 	lastCounts []int64
 	lastIMU    *float64 // IMU heading at newest, IMURotation mode
@@ -259,8 +260,8 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 	e := &r.live()[ins.at]
 	res.NIS, res.Dim = e.out.NIS, e.out.Dim
 	switch {
-	case e.err != nil:
-		err := fmt.Errorf("%w: %w", ErrBadSample, e.err)
+	case e.failed:
+		err := fmt.Errorf("%w: %w", ErrBadSample, r.errOf(e.seq))
 		idx := e.sensor
 		r.takeBack(ins)
 		res.Verdict, res.Err = VerdictInvalid, err

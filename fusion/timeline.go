@@ -44,10 +44,13 @@ type entry struct {
 	pose    estimator.Pose
 	poseCov [9]float64
 
-	// The estimate after this entry and what the update made of it.
-	after checkpoint
-	out   estimator.Outcome
-	err   error
+	// The estimate after this entry and what the update made of it;
+	// failed: the update or reset failed, with the error in Robot.errs (so
+	// that entries hold no pointers: the window is neither scanned by the
+	// garbage collector nor moved under write barriers).
+	after  checkpoint
+	out    estimator.Outcome
+	failed bool
 	// initialised: this IMU sample initialised the offset (no NIS).
 	initialised bool
 }
@@ -71,29 +74,68 @@ func (r *Robot) before(i int) *checkpoint {
 
 // apply applies e to the filter and stores the checkpoint after it.
 func (r *Robot) apply(e *entry) {
+	var err error
 	switch e.kind {
 	case entOdo:
 		r.predict(r.f, e)
 	case entMeas:
-		e.out, e.err = estimator.Outcome{Dim: e.meas.Kind.Dim()}, nil
+		e.out = estimator.Outcome{Dim: e.meas.Kind.Dim()}
 		e.initialised = e.imu && !r.ready
 		if e.initialised {
-			e.err = r.f.InitOffset(e.meas.Z[0], e.meas.R[0])
-			r.ready = e.err == nil
+			err = r.f.InitOffset(e.meas.Z[0], e.meas.R[0])
+			r.ready = err == nil
 		} else {
 			gate := r.gates.For(e.meas.Kind.Dim())
 			if e.imu && !r.cfg.GateIMU {
 				gate = 0
 			}
-			e.out, e.err = r.f.Update(&e.meas, gate)
+			e.out, err = r.f.Update(&e.meas, gate)
 		}
 	case entReset:
-		e.err = r.f.Reset(e.pose, &e.poseCov)
-		if e.err == nil {
+		err = r.f.Reset(e.pose, &e.poseCov)
+		if err == nil {
 			r.ready = false
 		}
 	}
+	if err != nil || e.failed {
+		r.setErr(e.seq, err)
+	}
+	e.failed = err != nil
 	e.after = checkpoint{r.f.State(), r.ready}
+}
+
+// entryErr is the error of a failed entry, by its input's sequence number.
+type entryErr struct {
+	seq uint64
+	err error
+}
+
+// setErr records the error of entry seq, or forgets it if err is nil.
+// Failures are rare, so the list is short.
+func (r *Robot) setErr(seq uint64, err error) {
+	for i := range r.errs {
+		if r.errs[i].seq == seq {
+			if err != nil {
+				r.errs[i].err = err
+				return
+			}
+			r.errs = slices.Delete(r.errs, i, i+1)
+			return
+		}
+	}
+	if err != nil {
+		r.errs = append(r.errs, entryErr{seq, err})
+	}
+}
+
+// errOf returns the recorded error of entry seq.
+func (r *Robot) errOf(seq uint64) error {
+	for _, e := range r.errs {
+		if e.seq == seq {
+			return e.err
+		}
+	}
+	return nil
 }
 
 // predict moves filter f by odometry entry e with its time-driven noise.
@@ -157,6 +199,9 @@ func (r *Robot) insert(e entry) insertion {
 // takeBack removes an inserted entry, merges the interval it split and
 // replays, which restores every checkpoint bit for bit.
 func (r *Robot) takeBack(ins insertion) {
+	if e := &r.live()[ins.at]; e.failed {
+		r.setErr(e.seq, nil)
+	}
 	if ins.split {
 		r.live()[ins.at-1] = ins.original
 		r.ents = slices.Delete(r.ents, r.head+ins.at, r.head+ins.at+2)
@@ -202,9 +247,13 @@ func (r *Robot) dropFront(k int) {
 	if r.steps != nil {
 		r.steps.collect(r, k)
 	}
+	for i := range live[:k] {
+		if live[i].failed {
+			r.setErr(live[i].seq, nil)
+		}
+	}
 	r.base = live[k-1].after
 	r.baseT = live[k-1].t1
-	clear(live[:k]) // release errors for the collector
 	r.head += k
 	if r.head > 1024 && r.head > len(r.ents)/2 {
 		n := copy(r.ents, r.ents[r.head:])

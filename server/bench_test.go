@@ -76,11 +76,12 @@ func pump(b *testing.B, addr, robot string, samp []*pb.Sample) time.Duration {
 // BenchmarkIngestThroughput compares one ingest stream over loopback into
 // the service with its journal on (fsync every 100 ms) against the same
 // messages sent over a bare gRPC stream that does nothing; the target is a
-// ratio of at least 0.7. Each iteration streams one minute of samples
-// (18,600) both ways, one after the other; the rates are over all
-// iterations, which evens out the noise of a shared machine.
+// ratio of at least 0.7. Each iteration streams two minutes of samples
+// (37,200, so the journaled run includes a snapshot) both ways, one after
+// the other; the rates are over all iterations, which evens out the noise
+// of a shared machine.
 func BenchmarkIngestThroughput(b *testing.B) {
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 60, OutlierFraction: 0.05})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 120, OutlierFraction: 0.05})
 	lis, _ := net.Listen("tcp", "127.0.0.1:0")
 	gs := grpc.NewServer()
 	pb.RegisterFusionServiceServer(gs, bare{})

@@ -287,7 +287,9 @@ type JournalInput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The robot's arrival sequence number.
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
-	// The sample.
+	// The sample, written as the bytes it arrived in over the wire (it
+	// decodes to the sample the robot took; field order and unknown fields
+	// are the sender's).
 	Sample *Sample `protobuf:"bytes,2,opt,name=sample,proto3" json:"sample,omitempty"`
 	// Wall time it arrived, Unix nanoseconds (information only).
 	ArrivalUnixNs int64 `protobuf:"varint,3,opt,name=arrival_unix_ns,json=arrivalUnixNs,proto3" json:"arrival_unix_ns,omitempty"`

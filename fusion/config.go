@@ -120,10 +120,13 @@ type TrustLimits struct {
 	MaxPosition95M float64
 	// MaxHeadingStdRad: largest heading standard deviation (0.1 rad).
 	MaxHeadingStdRad float64
-	// NISWindow: how many recent applied fixes the consistency check sums (20).
+	// NISWindow: how many recent applied fixes the consistency check sums
+	// (20); the IMU headings' window holds five times as many.
 	NISWindow int
 	// ConsistencyProbability: the chi-square probability that the windowed
-	// NIS sum must stay below (0.999).
+	// NIS sum must stay below (0.999; for the IMU window, whose headings come
+	// ten times as often, a tenth of the rest: 0.9999). Once above, the
+	// inconsistent flag stands until the sum is back to its median.
 	ConsistencyProbability float64
 	// RefusedInARow: consecutive refused fixes that raise distrust (5).
 	RefusedInARow int

@@ -285,7 +285,11 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 			r.stats.sensorVerdict(e.sensor, VerdictApplied, 0, 0)
 		} else {
 			r.stats.sensorVerdict(e.sensor, VerdictApplied, e.out.NIS, e.out.Dim)
-			r.trust.addNIS(e.out.NIS, e.out.Dim)
+			if e.imu {
+				r.trust.imu.add(e.out.NIS, e.out.Dim)
+			} else {
+				r.trust.fixes.add(e.out.NIS, e.out.Dim)
+			}
 		}
 		if !e.imu {
 			r.trust.refusedRun = 0

@@ -56,7 +56,17 @@ type snapState struct {
 	NIS            []float64
 	Dims           []int
 	Pos, Fill      int
+	FixesRaised    bool
+	IMU            snapWindow
 	Cands          []snapCandidate
+}
+
+// snapWindow is a trust window (nisWindow).
+type snapWindow struct {
+	NIS       []float64
+	Dims      []int
+	Pos, Fill int
+	Raised    bool
 }
 
 const snapVersion = 1
@@ -80,7 +90,8 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		Base: snapCheckpoint{r.base.est, r.base.offsetReady}, BaseT: r.baseT, Newest: r.newest,
 		LastCounts: r.lastCounts, LastIMU: r.lastIMU, Seq: r.seq,
 		Odo: r.stats.odo, Meas: r.stats.meas, Sensors: r.stats.sensors, Slips: r.stats.slips, Gaps: r.stats.gaps, Recoveries: r.stats.recoveries,
-		Reasons: r.trust.reasons, RefusedRun: r.trust.refusedRun, Fault: r.trust.fault, NIS: r.trust.nis, Dims: r.trust.dims, Pos: r.trust.pos, Fill: r.trust.fill}
+		Reasons: r.trust.reasons, RefusedRun: r.trust.refusedRun, Fault: r.trust.fault, NIS: r.trust.fixes.nis, Dims: r.trust.fixes.dims, Pos: r.trust.fixes.pos, Fill: r.trust.fixes.fill, FixesRaised: r.trust.fixes.raised,
+		IMU: snapWindow{r.trust.imu.nis, r.trust.imu.dims, r.trust.imu.pos, r.trust.imu.fill, r.trust.imu.raised}}
 	for i := range r.live() {
 		s.Ents = append(s.Ents, toSnap(&r.live()[i]))
 	}
@@ -131,8 +142,12 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	copy(r.stats.sensors, s.Sensors)
 	r.trust.reasons, r.trust.refusedRun, r.trust.fault = s.Reasons, s.RefusedRun, s.Fault
 	if s.NIS != nil {
-		r.trust.nis, r.trust.dims, r.trust.pos, r.trust.fill = s.NIS, s.Dims, s.Pos, s.Fill
-		r.trust.quantiles = map[int]float64{}
+		w := &r.trust.fixes
+		w.nis, w.dims, w.pos, w.fill, w.raised = s.NIS, s.Dims, s.Pos, s.Fill, s.FixesRaised
+	}
+	if s.IMU.NIS != nil {
+		w := &r.trust.imu
+		w.nis, w.dims, w.pos, w.fill, w.raised = s.IMU.NIS, s.IMU.Dims, s.IMU.Pos, s.IMU.Fill, s.IMU.Raised
 	}
 	for _, c := range s.Cands {
 		r.cands = append(r.cands, candidate{c.Stamp, c.Implied, c.Corr, c.Cov})

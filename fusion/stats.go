@@ -169,8 +169,11 @@ const (
 	// TrustHeadingUncertain: the heading standard deviation is above
 	// trust.max_heading_std_rad.
 	TrustHeadingUncertain
-	// TrustInconsistent: the recent fixes' NIS sum is above its chi-square
-	// quantile: the covariance claims more than the fixes bear out.
+	// TrustInconsistent: the NIS sum of the last trust.nis_window applied
+	// fixes, or of the last trust.nis_window IMU headings, rose above its
+	// trust.consistency_probability chi-square quantile and has not yet
+	// fallen back to its median: the covariance claims more than the
+	// sensors bear out.
 	TrustInconsistent
 	// TrustFixesRefused: trust.refused_in_a_row fixes in a row were gated:
 	// the robot may have been moved.
@@ -200,30 +203,82 @@ type trustState struct {
 	refusedRun int
 	fault      bool
 
-	// A ring of the NIS and dimension of recent applied fixes.
+	// The NIS of recent applied fixes and, apart (they come ten times as
+	// often and would fill one window), of recent IMU headings.
+	fixes, imu nisWindow
+	quantiles  map[int]bounds
+}
+
+// The IMU window holds imuWindowFactor times as many headings as the fix
+// window holds fixes and tests at a false-alarm probability imuRateFactor
+// times smaller, because IMU headings come about ten times as often (100 Hz
+// against 10 Hz): that keeps its false alarms per second near the fix
+// window's, while a heading jump (the robot turned by hand, a wheel
+// slipping) still stands out of it at once (TestTrustInconsistent).
+const (
+	imuWindowFactor = 5
+	imuRateFactor   = 10
+)
+
+// nisWindow is a ring of recent NIS values with their dimensions, and
+// whether it has raised inconsistent.
+type nisWindow struct {
 	nis       []float64
 	dims      []int
 	pos, fill int
-	quantiles map[int]float64
+	raised    bool
 }
 
-func (t *trustState) addNIS(nis float64, dim int) {
-	if t.nis == nil {
+func (w *nisWindow) add(nis float64, dim int) {
+	if w.nis == nil {
 		return
 	}
-	t.nis[t.pos], t.dims[t.pos] = nis, dim
-	t.pos = (t.pos + 1) % len(t.nis)
-	if t.fill < len(t.nis) {
-		t.fill++
+	w.nis[w.pos], w.dims[w.pos] = nis, dim
+	w.pos = (w.pos + 1) % len(w.nis)
+	if w.fill < len(w.nis) {
+		w.fill++
 	}
+}
+
+// bounds are the chi-square quantiles of a window's NIS sum: above hi it
+// raises inconsistent, at or below lo (the median) it clears it.
+type bounds struct{ hi, lo float64 }
+
+// check tests a full window's sum against its quantiles, with hysteresis:
+// once raised, the window holds inconsistent until its sum is back to a
+// typical value, so that the flag does not flap at the threshold.
+func (t *trustState) check(w *nisWindow, p float64) bool {
+	if w.nis == nil || w.fill < len(w.nis) {
+		return w.raised
+	}
+	var sum float64
+	var dof int
+	for i := range w.nis {
+		sum += w.nis[i]
+		dof += w.dims[i]
+	}
+	q, ok := t.quantiles[dof]
+	if !ok {
+		c := distuv.ChiSquared{K: float64(dof)}
+		q = bounds{hi: c.Quantile(p), lo: c.Quantile(0.5)}
+		t.quantiles[dof] = q
+	}
+	w.raised = sum > q.hi || (w.raised && sum > q.lo)
+	return w.raised
+}
+
+func (w *nisWindow) init(n int) {
+	w.nis, w.dims = make([]float64, n), make([]int, n)
 }
 
 // evaluate recomputes the reasons and reports transitions as events.
 func (t *trustState) evaluate(r *Robot, res *Result) {
-	if t.nis == nil {
-		t.nis = make([]float64, r.cfg.Trust.NISWindow)
-		t.dims = make([]int, r.cfg.Trust.NISWindow)
-		t.quantiles = map[int]float64{}
+	if t.quantiles == nil {
+		t.quantiles = map[int]bounds{}
+	}
+	if t.fixes.nis == nil {
+		t.fixes.init(r.cfg.Trust.NISWindow)
+		t.imu.init(imuWindowFactor * r.cfg.Trust.NISWindow)
 	}
 	var now TrustReason
 	st := r.f.State()
@@ -236,21 +291,9 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 	if math.Sqrt(st.Var(2)) > r.cfg.Trust.MaxHeadingStdRad {
 		now |= TrustHeadingUncertain
 	}
-	if t.fill == len(t.nis) {
-		var sum float64
-		var dof int
-		for i := range t.nis {
-			sum += t.nis[i]
-			dof += t.dims[i]
-		}
-		q, ok := t.quantiles[dof]
-		if !ok {
-			q = distuv.ChiSquared{K: float64(dof)}.Quantile(r.cfg.Trust.ConsistencyProbability)
-			t.quantiles[dof] = q
-		}
-		if sum > q {
-			now |= TrustInconsistent
-		}
+	p := r.cfg.Trust.ConsistencyProbability
+	if fix, imu := t.check(&t.fixes, p), t.check(&t.imu, 1-(1-p)/imuRateFactor); fix || imu {
+		now |= TrustInconsistent
 	}
 	if t.refusedRun >= r.cfg.Trust.RefusedInARow {
 		now |= TrustFixesRefused

@@ -172,7 +172,8 @@ const (
 	DistrustReason_DISTRUST_REASON_POSITION_UNCERTAIN DistrustReason = 2
 	// The heading standard deviation is above trust.max_heading_std_rad.
 	DistrustReason_DISTRUST_REASON_HEADING_UNCERTAIN DistrustReason = 3
-	// Recent fixes disagree with the covariance.
+	// Recent fixes or IMU headings disagree with the covariance (see
+	// TrustLimits.consistency_probability); stands until they agree again.
 	DistrustReason_DISTRUST_REASON_INCONSISTENT DistrustReason = 4
 	// Several fixes in a row were refused: the robot may have been moved.
 	DistrustReason_DISTRUST_REASON_FIXES_REFUSED DistrustReason = 5

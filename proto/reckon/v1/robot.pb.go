@@ -641,9 +641,13 @@ type TrustLimits struct {
 	MaxPosition95M float64 `protobuf:"fixed64,1,opt,name=max_position95_m,json=maxPosition95M,proto3" json:"max_position95_m,omitempty"`
 	// Largest heading standard deviation, radians (default 0.1).
 	MaxHeadingStdRad float64 `protobuf:"fixed64,2,opt,name=max_heading_std_rad,json=maxHeadingStdRad,proto3" json:"max_heading_std_rad,omitempty"`
-	// Recent applied fixes the consistency check sums (default 20).
+	// Recent applied fixes the consistency check sums (default 20); the IMU
+	// headings' window holds five times as many.
 	NisWindow int32 `protobuf:"varint,3,opt,name=nis_window,json=nisWindow,proto3" json:"nis_window,omitempty"`
-	// Probability the windowed NIS sum must stay below (default 0.999).
+	// Probability the windowed NIS sum must stay below (default 0.999; for
+	// the IMU window a tenth of the rest, 0.9999, because IMU headings come
+	// about ten times as often). Once above, DISTRUST_REASON_INCONSISTENT
+	// stands until the sum is back to its chi-square median.
 	ConsistencyProbability float64 `protobuf:"fixed64,4,opt,name=consistency_probability,json=consistencyProbability,proto3" json:"consistency_probability,omitempty"`
 	// Consecutive refused fixes that raise distrust (default 5).
 	RefusedInARow int32 `protobuf:"varint,5,opt,name=refused_in_a_row,json=refusedInARow,proto3" json:"refused_in_a_row,omitempty"`

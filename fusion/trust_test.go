@@ -1,0 +1,102 @@
+package fusion_test
+
+import (
+	"testing"
+
+	"reckon/clients/sim"
+	"reckon/fusion"
+)
+
+// trustCount is what a run did with the inconsistent flag.
+type trustCount struct {
+	raised           int   // times raised
+	applied, flagged int   // applied camera fixes, and those it stood on
+	firstNs          int64 // stamp of the first raise, -1 if none
+}
+
+// trustRun feeds a simulated run to a robot, with every camera fix's stated
+// covariance multiplied by fixScale and the configured IMU heading variance
+// by imuScale, and counts what the inconsistent flag did.
+func trustRun(t *testing.T, sc sim.Scenario, gate, fixScale, imuScale float64) trustCount {
+	t.Helper()
+	s := sim.New(sc)
+	cfg := s.Config()
+	cfg.GateProbability = gate
+	cfg.Noise.IMUHeadingVarRad2 *= imuScale
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c := trustCount{firstNs: -1}
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		if in.Fix != nil {
+			f := *in.Fix
+			f.Cov = append([]float64(nil), f.Cov...)
+			for i := range f.Cov {
+				f.Cov[i] *= fixScale
+			}
+			in.Fix = &f
+		}
+		res := sim.Feed(r, &in)
+		for _, e := range res.Events {
+			if e.Kind == fusion.EventTrustLost && r.Pose().Distrust&fusion.TrustInconsistent != 0 {
+				if c.raised == 0 {
+					c.firstNs = e.StampNs
+				}
+				c.raised++
+			}
+		}
+		if in.Fix != nil && res.Verdict == fusion.VerdictApplied {
+			c.applied++
+			if r.Pose().Distrust&fusion.TrustInconsistent != 0 {
+				c.flagged++
+			}
+		}
+	}
+	return c
+}
+
+// TestTrustInconsistent: the inconsistent flag is raised when fixes or IMU
+// headings disagree with the covariance, stands while they do, and stays
+// down while they do not.
+//
+// Honest sensors: each test of the fix window (20 fixes) exceeds its 0.999
+// chi-square quantile with probability at most 0.001 (less, since applied
+// fixes passed the gate), so ten minutes at 10 Hz give about 6 exceedances
+// at most; the IMU window tests at a tenth of that probability, ten times as
+// often. A raise needs an exceedance; the test allows 6. A camera or an IMU
+// that claims half its real standard deviation (NIS four times its
+// dimension) raises the flag once, and it stands on at least 90% of the
+// fixes after it: no flapping, because it clears only when the window's sum
+// is back to its median. A cart turned by hand raises it within 20 ms,
+// before the pose is recovered.
+func TestTrustInconsistent(t *testing.T) {
+	sc := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 21, DurationS: 600}
+	c := trustRun(t, sc, 0.99, 1, 1)
+	t.Logf("honest sensors: raised %d times, on %d of %d applied fixes", c.raised, c.flagged, c.applied)
+	if c.applied < 5000 || c.raised > 6 || c.flagged > c.applied/50 {
+		t.Errorf("honest sensors: inconsistent raised %d times, standing on %d of %d applied fixes", c.raised, c.flagged, c.applied)
+	}
+	sc.DurationS = 120
+	for _, k := range []struct {
+		name               string
+		fixScale, imuScale float64
+	}{{"overconfident camera", 0.25, 1}, {"overconfident IMU", 1, 0.25}} {
+		// Nothing gated, so that the fix window sees the full NIS.
+		c := trustRun(t, sc, 1-1e-12, k.fixScale, k.imuScale)
+		t.Logf("%s: raised %d times, on %d of %d applied fixes", k.name, c.raised, c.flagged, c.applied)
+		if c.raised != 1 || c.flagged < c.applied*9/10 {
+			t.Errorf("%s: inconsistent raised %d times, standing on %d of %d applied fixes", k.name, c.raised, c.flagged, c.applied)
+		}
+	}
+	bump := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 1, DurationS: 50, OutlierFraction: 0.05,
+		Bump: &sim.Bump{AtS: 45, DXM: 0.8, DYM: 0.6, DRad: 0.35}}
+	c = trustRun(t, bump, 0.99, 1, 1)
+	if at := float64(c.firstNs) * 1e-9; c.raised != 1 || at < 45 || at > 45.02 {
+		t.Errorf("turned by hand at 45 s: inconsistent raised %d times, first at %.3f s", c.raised, at)
+	}
+}

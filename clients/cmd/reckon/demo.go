@@ -264,6 +264,9 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		fmt.Fprintf(stdout, "sensor %-7s applied %5d gated %4d  mean NIS %.2f (95%% band %.2f-%.2f): %s\n", ss.GetSensorId(),
 			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), ss.GetAssessment())
 	}
+	if *bump > 0 && *bump < *duration {
+		fmt.Fprintf(stdout, "(the cart was lifted aside and turned by hand at %g s: the means include the moments the IMU saw it turn and the wheels did not)\n", *bump)
+	}
 	if !live && len(v.events) > 0 {
 		fmt.Fprintln(stdout, "\nevents:")
 		for _, l := range v.events {

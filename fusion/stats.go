@@ -227,6 +227,7 @@ type nisWindow struct {
 	dims      []int
 	pos, fill int
 	raised    bool
+	changed   bool // since the last check
 }
 
 func (w *nisWindow) add(nis float64, dim int) {
@@ -238,6 +239,7 @@ func (w *nisWindow) add(nis float64, dim int) {
 	if w.fill < len(w.nis) {
 		w.fill++
 	}
+	w.changed = true
 }
 
 // bounds are the chi-square quantiles of a window's NIS sum: above hi it
@@ -248,9 +250,10 @@ type bounds struct{ hi, lo float64 }
 // once raised, the window holds inconsistent until its sum is back to a
 // typical value, so that the flag does not flap at the threshold.
 func (t *trustState) check(w *nisWindow, p float64) bool {
-	if w.nis == nil || w.fill < len(w.nis) {
+	if !w.changed || w.fill < len(w.nis) {
 		return w.raised
 	}
+	w.changed = false
 	var sum float64
 	var dof int
 	for i := range w.nis {

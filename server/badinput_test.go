@@ -151,3 +151,13 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Errorf("statistics of an unknown robot: %v", err)
 	}
 }
+
+// TestServeRefusesMessagesLargerThanRecords: a message limit under which a
+// sample could outgrow a journal record (which would stop its robot) is a
+// configuration error, named before anything listens.
+func TestServeRefusesMessagesLargerThanRecords(t *testing.T) {
+	err := Serve(context.Background(), DaemonConfig{Listen: "127.0.0.1:0", MaxMessageBytes: wire.MaxRecordBytes})
+	if err == nil || !strings.Contains(err.Error(), "max message bytes") {
+		t.Fatalf("Serve with max message bytes %d: %v", wire.MaxRecordBytes, err)
+	}
+}

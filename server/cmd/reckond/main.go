@@ -57,7 +57,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	clientCA := fs.String("tls-client-ca", "", "CA PEM file; clients must present a certificate it signed (mutual TLS)")
 	tokenFile := fs.String("token-file", "", "file holding the bearer token every client must send")
 	metrics := fs.String("metrics-listen", "", "serve Prometheus metrics on this address at /metrics (off by default)")
-	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted")
+	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
 	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it (repeatable)")

@@ -40,38 +40,56 @@ func arcFactors(turn float64) (s, ds float64) {
 	return sh / h, (h*ch - sh) / (2 * h * h)
 }
 
+// chord holds what Advance and ArcJacobians share for one step from one
+// heading: k = sin(h)/h and its derivative dk (h = turn/2), the sine and
+// cosine of the chord's direction (heading + turn/2), and the chord
+// direction components before scaling by k.
+type chord struct{ k, dk, sc, cc, cx, cy float64 }
+
+func (c *chord) set(heading float64, s Step) {
+	c.k, c.dk = arcFactors(s.TurnRad)
+	c.sc, c.cc = math.Sincos(heading + s.TurnRad/2)
+	c.cx, c.cy = c.cc*s.ForwardM-c.sc*s.LeftM, c.sc*s.ForwardM+c.cc*s.LeftM
+}
+
+// advance is Advance with the chord given.
+func (c *chord) advance(p Pose, s Step) Pose {
+	return Pose{X: p.X + c.k*c.cx, Y: p.Y + c.k*c.cy, Heading: Wrap(p.Heading + s.TurnRad)}
+}
+
+// jacobians are ArcJacobians with the chord given; fx is the identity
+// except for fx[2] = -k*cy and fx[5] = k*cx.
+func (c *chord) jacobians(fx, fu *[9]float64) {
+	if fx != nil {
+		*fx = [9]float64{
+			1, 0, -c.k * c.cy,
+			0, 1, c.k * c.cx,
+			0, 0, 1,
+		}
+	}
+	*fu = [9]float64{
+		c.k * c.cc, -c.k * c.sc, c.dk*c.cx - 0.5*c.k*c.cy,
+		c.k * c.sc, c.k * c.cc, c.dk*c.cy + 0.5*c.k*c.cx,
+		0, 0, 1,
+	}
+}
+
 // Advance returns the pose reached from p by moving with constant twist s.
 // The position moves along the chord of the arc: length 2*sin(turn/2)*radius,
 // pointing at half the turn, which is exact for constant-curvature motion.
 func Advance(p Pose, s Step) Pose {
-	k, _ := arcFactors(s.TurnRad)
-	sc, cc := math.Sincos(p.Heading + s.TurnRad/2)
-	return Pose{
-		X:       p.X + k*(cc*s.ForwardM-sc*s.LeftM),
-		Y:       p.Y + k*(sc*s.ForwardM+cc*s.LeftM),
-		Heading: Wrap(p.Heading + s.TurnRad),
-	}
+	var c chord
+	c.set(p.Heading, s)
+	return c.advance(p, s)
 }
 
 // ArcJacobians writes the Jacobians of Advance(p, s) with respect to the pose
 // (x, y, heading) into fx and with respect to the step (forward, left, turn)
 // into fu, both 3x3 row-major.
 func ArcJacobians(p Pose, s Step, fx, fu *[9]float64) {
-	k, dk := arcFactors(s.TurnRad)
-	sc, cc := math.Sincos(p.Heading + s.TurnRad/2)
-	// Chord direction components before scaling by k.
-	cx := cc*s.ForwardM - sc*s.LeftM
-	cy := sc*s.ForwardM + cc*s.LeftM
-	*fx = [9]float64{
-		1, 0, -k * cy,
-		0, 1, k * cx,
-		0, 0, 1,
-	}
-	*fu = [9]float64{
-		k * cc, -k * sc, dk*cx - 0.5*k*cy,
-		k * sc, k * cc, dk*cy + 0.5*k*cx,
-		0, 0, 1,
-	}
+	var c chord
+	c.set(p.Heading, s)
+	c.jacobians(fx, fu)
 }
 
 // Compose returns the pose b expressed in a's frame composed onto a (a (+) b):

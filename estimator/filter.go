@@ -136,22 +136,18 @@ func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
 	n := f.st.N
 	p := f.st.Pose()
 	// Advance and ArcJacobians, sharing the trigonometry.
-	k, dk := arcFactors(u.TurnRad)
-	sc, cc := math.Sincos(p.Heading + u.TurnRad/2)
-	cx := cc*u.ForwardM - sc*u.LeftM
-	cy := sc*u.ForwardM + cc*u.LeftM
-	f.st.X[IX], f.st.X[IY], f.st.X[IHead] = p.X+k*cx, p.Y+k*cy, Wrap(p.Heading+u.TurnRad)
+	var c chord
+	c.set(p.Heading, u)
+	np := c.advance(p, u)
+	f.st.X[IX], f.st.X[IY], f.st.X[IHead] = np.X, np.Y, np.Heading
 	fu := &f.fu
-	*fu = [9]float64{
-		k * cc, -k * sc, dk*cx - 0.5*k*cy,
-		k * sc, k * cc, dk*cy + 0.5*k*cx,
-		0, 0, 1,
-	}
+	c.jacobians(nil, fu)
 
 	// P = F P F^T, where F is the identity except for the heading column of
-	// the position rows (a, b): the rows first, then the columns.
+	// the position rows (fx[2] = a, fx[5] = b): the rows first, then the
+	// columns.
 	P := &f.st.P
-	a, b := -k*cy, k*cx
+	a, b := -c.k*c.cy, c.k*c.cx
 	for j := 0; j < n; j++ {
 		P[0*4+j] += a * P[2*4+j]
 		P[1*4+j] += b * P[2*4+j]

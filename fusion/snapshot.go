@@ -53,11 +53,7 @@ type snapState struct {
 	Reasons        TrustReason
 	RefusedRun     int
 	Fault          bool
-	NIS            []float64
-	Dims           []int
-	Pos, Fill      int
-	FixesRaised    bool
-	IMU            snapWindow
+	Fixes, IMU     snapWindow
 	Cands          []snapCandidate
 }
 
@@ -69,7 +65,17 @@ type snapWindow struct {
 	Raised    bool
 }
 
-const snapVersion = 1
+func toSnapWindow(w *nisWindow) snapWindow { return snapWindow{w.nis, w.dims, w.pos, w.fill, w.raised} }
+
+func fromSnapWindow(s *snapWindow, w *nisWindow) {
+	if s.NIS != nil {
+		w.nis, w.dims, w.pos, w.fill, w.raised = s.NIS, s.Dims, s.Pos, s.Fill, s.Raised
+	}
+}
+
+// snapVersion 2: the trust state holds a window of fixes and one of IMU
+// headings (version 1 had one window of both).
+const snapVersion = 2
 
 func toSnap(e *entry) snapEntry {
 	return snapEntry{Kind: uint8(e.kind), T0: e.t0, T1: e.t1, Seq: e.seq, Step: e.step, Cov: e.cov, Meas: e.meas, IMU: e.imu, Sensor: e.sensor,
@@ -90,8 +96,7 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		Base: snapCheckpoint{r.base.est, r.base.offsetReady}, BaseT: r.baseT, Newest: r.newest,
 		LastCounts: r.lastCounts, LastIMU: r.lastIMU, Seq: r.seq,
 		Odo: r.stats.odo, Meas: r.stats.meas, Sensors: r.stats.sensors, Slips: r.stats.slips, Gaps: r.stats.gaps, Recoveries: r.stats.recoveries,
-		Reasons: r.trust.reasons, RefusedRun: r.trust.refusedRun, Fault: r.trust.fault, NIS: r.trust.fixes.nis, Dims: r.trust.fixes.dims, Pos: r.trust.fixes.pos, Fill: r.trust.fixes.fill, FixesRaised: r.trust.fixes.raised,
-		IMU: snapWindow{r.trust.imu.nis, r.trust.imu.dims, r.trust.imu.pos, r.trust.imu.fill, r.trust.imu.raised}}
+		Reasons: r.trust.reasons, RefusedRun: r.trust.refusedRun, Fault: r.trust.fault, Fixes: toSnapWindow(&r.trust.fixes), IMU: toSnapWindow(&r.trust.imu)}
 	for i := range r.live() {
 		s.Ents = append(s.Ents, toSnap(&r.live()[i]))
 	}
@@ -141,14 +146,8 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	}
 	copy(r.stats.sensors, s.Sensors)
 	r.trust.reasons, r.trust.refusedRun, r.trust.fault = s.Reasons, s.RefusedRun, s.Fault
-	if s.NIS != nil {
-		w := &r.trust.fixes
-		w.nis, w.dims, w.pos, w.fill, w.raised = s.NIS, s.Dims, s.Pos, s.Fill, s.FixesRaised
-	}
-	if s.IMU.NIS != nil {
-		w := &r.trust.imu
-		w.nis, w.dims, w.pos, w.fill, w.raised = s.IMU.NIS, s.IMU.Dims, s.IMU.Pos, s.IMU.Fill, s.IMU.Raised
-	}
+	fromSnapWindow(&s.Fixes, &r.trust.fixes)
+	fromSnapWindow(&s.IMU, &r.trust.imu)
 	for _, c := range s.Cands {
 		r.cands = append(r.cands, candidate{c.Stamp, c.Implied, c.Corr, c.Cov})
 	}

@@ -206,7 +206,6 @@ type trustState struct {
 	// The NIS of recent applied fixes and, apart (they come ten times as
 	// often and would fill one window), of recent IMU headings.
 	fixes, imu nisWindow
-	quantiles  map[int]bounds
 }
 
 // The IMU window holds imuWindowFactor times as many headings as the fix
@@ -227,7 +226,12 @@ type nisWindow struct {
 	dims      []int
 	pos, fill int
 	raised    bool
-	changed   bool // since the last check
+	changed   bool           // since the last check
+	bounds    map[int]bounds // by the window's total dimension
+}
+
+func (w *nisWindow) init(n int) {
+	w.nis, w.dims = make([]float64, n), make([]int, n)
 }
 
 func (w *nisWindow) add(nis float64, dim int) {
@@ -246,10 +250,11 @@ func (w *nisWindow) add(nis float64, dim int) {
 // raises inconsistent, at or below lo (the median) it clears it.
 type bounds struct{ hi, lo float64 }
 
-// check tests a full window's sum against its quantiles, with hysteresis:
-// once raised, the window holds inconsistent until its sum is back to a
-// typical value, so that the flag does not flap at the threshold.
-func (t *trustState) check(w *nisWindow, p float64) bool {
+// check tests a full window's sum against the chi-square quantile at p of
+// its total dimension, with hysteresis: once raised, the window holds
+// inconsistent until its sum is back to the median, so that the flag does
+// not flap at the threshold.
+func (w *nisWindow) check(p float64) bool {
 	if !w.changed || w.fill < len(w.nis) {
 		return w.raised
 	}
@@ -260,25 +265,21 @@ func (t *trustState) check(w *nisWindow, p float64) bool {
 		sum += w.nis[i]
 		dof += w.dims[i]
 	}
-	q, ok := t.quantiles[dof]
+	q, ok := w.bounds[dof]
 	if !ok {
 		c := distuv.ChiSquared{K: float64(dof)}
 		q = bounds{hi: c.Quantile(p), lo: c.Quantile(0.5)}
-		t.quantiles[dof] = q
+		if w.bounds == nil {
+			w.bounds = map[int]bounds{}
+		}
+		w.bounds[dof] = q
 	}
 	w.raised = sum > q.hi || (w.raised && sum > q.lo)
 	return w.raised
 }
 
-func (w *nisWindow) init(n int) {
-	w.nis, w.dims = make([]float64, n), make([]int, n)
-}
-
 // evaluate recomputes the reasons and reports transitions as events.
 func (t *trustState) evaluate(r *Robot, res *Result) {
-	if t.quantiles == nil {
-		t.quantiles = map[int]bounds{}
-	}
 	if t.fixes.nis == nil {
 		t.fixes.init(r.cfg.Trust.NISWindow)
 		t.imu.init(imuWindowFactor * r.cfg.Trust.NISWindow)
@@ -295,7 +296,7 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 		now |= TrustHeadingUncertain
 	}
 	p := r.cfg.Trust.ConsistencyProbability
-	if fix, imu := t.check(&t.fixes, p), t.check(&t.imu, 1-(1-p)/imuRateFactor); fix || imu {
+	if fix, imu := t.fixes.check(p), t.imu.check(1-(1-p)/imuRateFactor); fix || imu {
 		now |= TrustInconsistent
 	}
 	if t.refusedRun >= r.cfg.Trust.RefusedInARow {

@@ -65,10 +65,13 @@ func trustRun(t *testing.T, sc sim.Scenario, gate, fixScale, imuScale float64) t
 // down while they do not.
 //
 // Honest sensors: each test of the fix window (20 fixes) exceeds its 0.999
-// chi-square quantile with probability at most 0.001 (less, since applied
-// fixes passed the gate), so ten minutes at 10 Hz give about 6 exceedances
-// at most; the IMU window tests at a tenth of that probability, ten times as
-// often. A raise needs an exceedance; the test allows 6. A camera or an IMU
+// chi-square quantile (gonum stat/distuv) with probability at most 0.001
+// (less, since applied fixes passed the gate), so ten minutes at 10 Hz give
+// at most about 6 exceedances in expectation; the IMU window tests at a
+// tenth of that probability, ten times as often, so about 6 more. A raise
+// needs an exceedance, and exceedances come in runs (consecutive windows
+// share all but one value) that raise the flag once; the test allows 6
+// raises. A camera or an IMU
 // that claims half its real standard deviation (NIS four times its
 // dimension) raises the flag once, and it stands on at least 90% of the
 // fixes after it: no flapping, because it clears only when the window's sum

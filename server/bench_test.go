@@ -145,9 +145,9 @@ func BenchmarkRestoreHour(b *testing.B) {
 }
 
 // BenchmarkIngestCore is the server's own work per sample without the gRPC
-// transport: decoding the request, edge checks, the robot, the journal
-// (group commit of maxBatch), encoding the verdict and the watchers. One op is one
-// sample.
+// transport: decoding the request, the robot with its checks, the journal
+// (group commit of maxBatch), encoding the verdict and the watchers. One op
+// is one sample.
 func BenchmarkIngestCore(b *testing.B) {
 	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
 	s, err := New(Options{JournalDir: b.TempDir()})

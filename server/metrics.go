@@ -30,7 +30,7 @@ func NewMetrics() *Metrics {
 		inputs: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_inputs_total",
 			Help: "Inputs taken by the robots, by verdict."}, []string{"verdict"}),
 		refusals: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_inputs_refused_total",
-			Help: "Inputs refused at the edge before reaching a robot, by status code."}, []string{"code"}),
+			Help: "Inputs refused before a robot took them (malformed, failing its checks, unknown robot), by status code."}, []string{"code"}),
 		latency: prometheus.NewHistogram(prometheus.HistogramOpts{Name: "reckon_ingest_seconds",
 			Help: "Time from receiving an input to its verdict, journal included.", Buckets: prometheus.ExponentialBuckets(5e-6, 2, 16)}),
 		watching: prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_watchers", Help: "Open watch streams."}),

@@ -9,9 +9,9 @@
 //   - A verdict is sent only after its input and output are in the journal
 //     (written to the operating system, and fsynced when SyncEach is set;
 //     otherwise at most SyncInterval later).
-//   - An input refused at the edge (malformed, non-finite, bad covariance,
-//     time backwards, unknown robot) reaches neither the robot nor the
-//     journal.
+//   - An input refused before a robot took it (malformed, non-finite, bad
+//     covariance, time backwards, unknown robot) changes neither the robot
+//     nor the journal.
 //   - A watcher holds at most one pose and MaxWatchEvents events.
 package server
 
@@ -377,8 +377,8 @@ func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.In
 }
 
 // ingestBatch applies samples in order: per run of samples for one robot,
-// the edge checks and the robot under its lock, one journal write, then the
-// watchers.
+// the robot (which checks each input first) under its lock, one journal
+// write, then the watchers.
 func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
 	out := make([]encodedResponse, len(batch))
 	for i := 0; i < len(batch); {
@@ -432,8 +432,10 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 		events = append(events, resp.Events...)
 		mark := len(enc)
 		if enc, err = (proto.MarshalOptions{}).MarshalAppend(enc, resp); err != nil {
-			// Cannot happen for a message built here; the verdict goes out
-			// through the standard codec and the journal is marked broken.
+			// Not expected: every string in a verdict comes from decoded,
+			// hence valid, input or from our own messages. Should it
+			// happen, the input cannot be journaled with its output, so the
+			// robot stops as on a failed journal write (below).
 			r.broken = fmt.Errorf("encoding verdict %d: %w", resp.Sequence, err)
 			enc = enc[:mark]
 			continue

@@ -316,29 +316,53 @@ func (w *JournalWriter) Add(recs ...*pb.JournalRecord) error {
 }
 
 // AddPair frames an input and its output as two records, with the same
-// bytes as JournalRecord messages holding them, without allocating the
-// wrappers.
+// bytes as JournalRecord messages holding them (AddEncodedPair with their
+// deterministic encodings).
 func (w *JournalWriter) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
-	n := len(w.buf)
-	var err error
-	if w.buf, err = appendWrapped(w.buf, KindInput, in); err == nil {
-		w.buf, err = appendWrapped(w.buf, KindOutput, out)
-	}
+	opts := proto.MarshalOptions{Deterministic: true}
+	sample, err := opts.Marshal(in.GetSample())
 	if err != nil {
-		w.buf = w.buf[:n]
+		return err
 	}
-	return err
+	resp, err := opts.Marshal(out.GetResponse())
+	if err != nil {
+		return err
+	}
+	return w.AddEncodedPair(in.GetSequence(), sample, in.GetArrivalUnixNs(), resp, out.GetPose())
 }
 
 // AddEncodedPair frames an input and its output from parts already in wire
 // form: the sample as it arrived and the response as it will be sent, so
-// that neither is encoded again. It writes the same bytes as AddPair with
-// the decoded messages, provided sample and response are the deterministic
-// encodings; other encodings of the same messages decode to the same
-// records. pose may be nil.
+// that neither is encoded again. It writes the same bytes as framing the
+// JournalRecord messages, provided sample and response are the
+// deterministic encodings; other encodings of the same messages decode to
+// the same records. pose may be nil. On error the buffer keeps what it
+// held.
 func (w *JournalWriter) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
-	n := len(w.buf)
-	// JournalInput{sequence = 1, sample = 2, arrival_unix_ns = 3}.
+	b, err := appendInput(w.buf, seq, sample, arrivalUnixNs)
+	if err == nil {
+		b, err = appendOutput(b, response, pose)
+	}
+	if err != nil {
+		return err // w.buf is untouched: b only appended past its length
+	}
+	w.buf = b
+	return nil
+}
+
+// openFrame appends a frame's header (filled in by sealFrame), the record
+// kind and the length of the record's one field; it returns the frame's
+// start.
+func openFrame(dst []byte, kind byte, size int) ([]byte, int) {
+	start := len(dst)
+	dst = append(dst, make([]byte, frameSize)...)
+	dst = append(dst, kind)
+	return protowire.AppendVarint(dst, uint64(size)), start
+}
+
+// appendInput appends the record of JournalInput{sequence = 1, sample = 2,
+// arrival_unix_ns = 3}, leaving out zero scalars as protobuf does.
+func appendInput(dst []byte, seq uint64, sample []byte, arrivalUnixNs int64) ([]byte, error) {
 	size := protowire.SizeTag(2) + protowire.SizeBytes(len(sample))
 	if seq != 0 {
 		size += protowire.SizeTag(1) + protowire.SizeVarint(seq)
@@ -346,10 +370,7 @@ func (w *JournalWriter) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs 
 	if arrivalUnixNs != 0 {
 		size += protowire.SizeTag(3) + protowire.SizeVarint(uint64(arrivalUnixNs))
 	}
-	start := len(w.buf)
-	b := append(w.buf, make([]byte, frameSize)...)
-	b = append(b, KindInput)
-	b = protowire.AppendVarint(b, uint64(size))
+	b, start := openFrame(dst, KindInput, size)
 	if seq != 0 {
 		b = protowire.AppendTag(b, 1, protowire.VarintType)
 		b = protowire.AppendVarint(b, seq)
@@ -360,51 +381,30 @@ func (w *JournalWriter) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs 
 		b = protowire.AppendTag(b, 3, protowire.VarintType)
 		b = protowire.AppendVarint(b, uint64(arrivalUnixNs))
 	}
-	b, err := sealFrame(b, start, nil)
-	if err == nil {
-		// JournalOutput{response = 1, pose = 2}.
-		opts := proto.MarshalOptions{Deterministic: true}
-		size = protowire.SizeTag(1) + protowire.SizeBytes(len(response))
-		poseSize := 0
-		if pose != nil {
-			poseSize = opts.Size(pose)
-			size += protowire.SizeTag(2) + protowire.SizeBytes(poseSize)
-		}
-		start = len(b)
-		b = append(b, make([]byte, frameSize)...)
-		b = append(b, KindOutput)
-		b = protowire.AppendVarint(b, uint64(size))
-		b = protowire.AppendTag(b, 1, protowire.BytesType)
-		b = protowire.AppendBytes(b, response)
-		if pose != nil {
-			b = protowire.AppendTag(b, 2, protowire.BytesType)
-			b = protowire.AppendVarint(b, uint64(poseSize))
-			opts.UseCachedSize = true
-			b, err = opts.MarshalAppend(b, pose)
-		}
-		b, err = sealFrame(b, start, err)
-	}
-	if err != nil {
-		w.buf = b[:n]
-		return err
-	}
-	w.buf = b
-	return nil
+	return sealFrame(b, start, nil)
 }
 
-// appendWrapped appends the frame of a JournalRecord whose one set field,
-// with tag kind, holds m: the tag, the length of m and m itself.
-func appendWrapped(dst []byte, kind byte, m proto.Message) ([]byte, error) {
+// appendOutput appends the record of JournalOutput{response = 1, pose = 2}.
+func appendOutput(dst []byte, response []byte, pose *pb.FusedPose) ([]byte, error) {
 	opts := proto.MarshalOptions{Deterministic: true}
-	size := opts.Size(m)
-	start := len(dst)
-	dst = append(dst, make([]byte, frameSize)...)
-	dst = append(dst, kind)
-	dst = binary.AppendUvarint(dst, uint64(size))
-	// The size of every nested message was cached by Size just above.
-	opts.UseCachedSize = true
-	dst, err := opts.MarshalAppend(dst, m)
-	return sealFrame(dst, start, err)
+	size := protowire.SizeTag(1) + protowire.SizeBytes(len(response))
+	poseSize := 0
+	if pose != nil {
+		poseSize = opts.Size(pose)
+		size += protowire.SizeTag(2) + protowire.SizeBytes(poseSize)
+	}
+	b, start := openFrame(dst, KindOutput, size)
+	b = protowire.AppendTag(b, 1, protowire.BytesType)
+	b = protowire.AppendBytes(b, response)
+	var err error
+	if pose != nil {
+		b = protowire.AppendTag(b, 2, protowire.BytesType)
+		b = protowire.AppendVarint(b, uint64(poseSize))
+		// Size above cached the size of every nested message.
+		opts.UseCachedSize = true
+		b, err = opts.MarshalAppend(b, pose)
+	}
+	return sealFrame(b, start, err)
 }
 
 // Flush writes the added records with one write, fsyncs if SyncEach, and

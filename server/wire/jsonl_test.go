@@ -102,8 +102,8 @@ func TestSampleReaderErrors(t *testing.T) {
 }
 
 // FuzzSampleReader: any bytes give samples or an error naming a line, and
-// every sample read goes through the edge checks and a robot without a
-// panic or a NaN.
+// every sample read goes through Take (decoding and the robot's checks)
+// without a panic or a NaN.
 func FuzzSampleReader(f *testing.F) {
 	if b, err := os.ReadFile(exampleSamples); err == nil {
 		f.Add(b[:min(len(b), 4000)])

@@ -156,7 +156,7 @@ func apply(r *fusion.Robot, in *input) fusion.Result {
 	}
 }
 
-// Code returns the gRPC status code for an edge error.
+// Code returns the gRPC status code for the error that refused a sample.
 func Code(err error) codes.Code {
 	switch {
 	case err == nil:

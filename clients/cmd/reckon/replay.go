@@ -46,12 +46,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}
 	var override *pb.RobotConfig
 	if *config != "" {
-		b, err := os.ReadFile(*config)
-		if err != nil {
+		if override, err = loadYAML(*config); err != nil {
 			return err
-		}
-		if override, _, err = wire.LoadConfigYAML(b); err != nil {
-			return fmt.Errorf("%s: %w", *config, err)
 		}
 	}
 	switch {
@@ -64,8 +60,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	return errors.New("replay needs -journal and -robot, or -config and -samples")
 }
 
-// replayer runs inputs through a robot as the service would: edge checks,
-// then the robot.
+// replayer runs inputs through a robot as the service would (wire.Take:
+// decoding, then the robot, which checks each input first).
 type replayer struct {
 	name string
 	fr   *fusion.Robot

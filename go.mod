@@ -1,4 +1,4 @@
-module reckon
+module reckon.example
 
 go 1.26.0
 

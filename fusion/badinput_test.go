@@ -5,7 +5,7 @@ import (
 	"math"
 	"testing"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 func threeWheels() Config {
@@ -129,11 +129,11 @@ func TestBadInputChangesNothing(t *testing.T) {
 		{"fix too far ahead", func(r *Robot) Result {
 			return r.AddFix(Fix{StampNs: newest + 5e9, Kind: FixHeading, Cov: []float64{0.01}})
 		}, ErrTooFarAhead, VerdictInvalid},
-		{"set pose NaN", func(r *Robot) Result {
-			return r.SetPose(newest-1e6, estimator.Pose{X: nan}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
+		{"reseed NaN", func(r *Robot) Result {
+			return r.Reseed(newest-1e6, estimator.Pose{X: nan}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
 		}, ErrBadSample, VerdictInvalid},
-		{"set pose bad cov", func(r *Robot) Result {
-			return r.SetPose(newest-1e6, estimator.Pose{}, []float64{1, 0, 0, 0, -1, 0, 0, 0, 1})
+		{"reseed bad cov", func(r *Robot) Result {
+			return r.Reseed(newest-1e6, estimator.Pose{}, []float64{1, 0, 0, 0, -1, 0, 0, 0, 1})
 		}, ErrBadSample, VerdictInvalid},
 	}
 	for _, c := range cases {

@@ -4,15 +4,15 @@ import (
 	"math"
 	"testing"
 
-	"reckon/clients/sim"
-	"reckon/estimator"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
 )
 
 // benchRobot returns a robot with a full window at 200 Hz odometry and the
 // travel of one 5 ms sample.
 func benchRobot(b *testing.B) (*fusion.Robot, []float64) {
-	cfg := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true}.Config()
+	cfg := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true}.Config()
 	r, err := fusion.New(cfg)
 	if err != nil {
 		b.Fatal(err)
@@ -67,7 +67,7 @@ func BenchmarkOdometry(b *testing.B) {
 // 100 Hz IMU, 10 Hz camera fixes 50 to 200 ms late, 5% outliers) through
 // fusion; the samples are generated beforehand, outside the timing.
 func BenchmarkHour(b *testing.B) {
-	s := sim.New(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 9, DurationS: 3600, OutlierFraction: 0.05})
+	s := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 3600, OutlierFraction: 0.05})
 	cfg := s.Config()
 	var ins []sim.Input
 	for {

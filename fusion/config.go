@@ -7,7 +7,7 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // IMUMode says how a robot uses its IMU's heading.
@@ -169,10 +169,10 @@ type Config struct {
 	MaxTurnRateRadPerS float64
 	Recovery           Recovery
 	Trust              TrustLimits
-	// InitialPose and InitialCov (3x3 row-major, m^2 and rad^2) seed the
+	// StartPose and StartCov (3x3 row-major, m^2 and rad^2) seed the
 	// estimate (default covariance diag(0.0025, 0.0025, 0.0012)).
-	InitialPose estimator.Pose
-	InitialCov  []float64
+	StartPose estimator.Pose
+	StartCov  []float64
 	Landmarks   []Landmark
 }
 
@@ -229,8 +229,8 @@ func (c Config) withDefaults() Config {
 	if c.Trust.RefusedInARow == 0 {
 		c.Trust.RefusedInARow = 5
 	}
-	if c.InitialCov == nil {
-		c.InitialCov = []float64{0.0025, 0, 0, 0, 0.0025, 0, 0, 0, 0.0012}
+	if c.StartCov == nil {
+		c.StartCov = []float64{0.0025, 0, 0, 0, 0.0025, 0, 0, 0, 0.0012}
 	}
 	return c
 }
@@ -313,14 +313,14 @@ func (c Config) Validate() error {
 			return cfgErr(p.name, "%v must be positive", p.v)
 		}
 	}
-	if !finite(c.InitialPose.X) || !finite(c.InitialPose.Y) || !finite(c.InitialPose.Heading) {
-		return cfgErr("initial_pose", "must be finite")
+	if !finite(c.StartPose.X) || !finite(c.StartPose.Y) || !finite(c.StartPose.Heading) {
+		return cfgErr("start_pose", "must be finite")
 	}
-	if err := estimator.CheckCovariance(c.InitialCov, 3); err != nil {
-		return cfgErr("initial_covariance", "%v", err)
+	if err := estimator.CheckCovariance(c.StartCov, 3); err != nil {
+		return cfgErr("start_covariance", "%v", err)
 	}
-	if err := checkVariances(c.InitialCov, 3, poseAngle); err != nil {
-		return cfgErr("initial_covariance", "%v", err)
+	if err := checkVariances(c.StartCov, 3, poseAngle); err != nil {
+		return cfgErr("start_covariance", "%v", err)
 	}
 	seen := map[string]bool{}
 	for i, l := range c.Landmarks {

@@ -8,9 +8,9 @@ import (
 	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat/distuv"
 
-	"reckon/clients/sim"
-	"reckon/estimator"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
 )
 
 // poseNEES returns the normalised estimation error squared of the pose part:
@@ -45,9 +45,9 @@ func poseNEES(t *testing.T, p fusion.FusedPose, truth estimator.Pose) float64 {
 func TestNEESConsistency(t *testing.T) {
 	const runs, duration, every = 40, 30.0, int64(500e6)
 	for _, sc := range []sim.Scenario{
-		{Layout: sim.TwoParallelOneLateral, IMU: true},
-		{Layout: sim.ParallelLateralIMU},
-		{Layout: sim.Differential, IMU: true, Markers: true},
+		{Layout: sim.FreeWheelTurn, IMU: true},
+		{Layout: sim.GyroTurn},
+		{Layout: sim.DriveWheelTurn, IMU: true, Markers: true},
 	} {
 		t.Run(sc.Layout.String(), func(t *testing.T) {
 			checkpoints := int(duration*1e9/float64(every)) + 1
@@ -152,7 +152,7 @@ func rmsError(t *testing.T, sc sim.Scenario, withFixes bool) (float64, *fusion.R
 // gate refuses nearly all of them and keeps nearly all good ones, and the
 // fused error is well below odometry alone.
 func TestGatingRejectsOutliers(t *testing.T) {
-	sc := sim.Scenario{Layout: sim.TwoParallelOneLateral, Seed: 31, OutlierFraction: 0.1, DurationS: 120, SlipPerS: 0.02}
+	sc := sim.Scenario{Layout: sim.FreeWheelTurn, Seed: 31, OutlierFraction: 0.1, DurationS: 120, SlipPerS: 0.02}
 	fused, _, results, ins := rmsError(t, sc, true)
 	odo, _, _, _ := rmsError(t, sc, false)
 	verdicts := map[int]fusion.Verdict{}
@@ -201,7 +201,7 @@ func TestGatingRejectsOutliers(t *testing.T) {
 // camera's fixes are refused, agree with one another, and re-initialise the
 // pose, after which the error is small again.
 func TestMoveRecovery(t *testing.T) {
-	sc := sim.Scenario{Layout: sim.TwoParallelOneLateral, Seed: 41, DurationS: 40, Bump: &sim.Bump{AtS: 20, DXM: 1.2, DYM: -0.4, DRad: 0.4}}
+	sc := sim.Scenario{Layout: sim.FreeWheelTurn, Seed: 41, DurationS: 40, Bump: &sim.Bump{AtS: 20, DXM: 1.2, DYM: -0.4, DRad: 0.4}}
 	s := sim.New(sc)
 	r, _ := fusion.New(s.Config())
 	recovered := false
@@ -284,7 +284,7 @@ func TestSlipSuspected(t *testing.T) {
 // interval split by its twist fraction); past the newest odometry it
 // extrapolates, bounded.
 func TestPoseAt(t *testing.T) {
-	cfg := sim.Scenario{Layout: sim.TwoParallelOneLateral}.Config()
+	cfg := sim.Scenario{Layout: sim.FreeWheelTurn}.Config()
 	r, _ := fusion.New(cfg)
 	coef := func(w fusion.Wheel, s estimator.Step) float64 {
 		c := estimator.WheelCoef(w.XM, w.YM, w.DirectionRad)

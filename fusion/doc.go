@@ -6,7 +6,7 @@
 // # Overview
 //
 // A Robot is made from a Config with New. Samples go in through
-// AddOdometry, AddHeading, AddFix and SetPose; each returns a Result with
+// AddOdometry, AddHeading, AddFix and Reseed; each returns a Result with
 // the sample's arrival sequence number, its Verdict and the events it caused.
 // Pose, PoseAt and Stats read the estimate back.
 //

@@ -3,7 +3,7 @@ package fusion
 import (
 	"fmt"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // imuSensor is the statistics name of the IMU.
@@ -118,7 +118,7 @@ func checkVariances(cov []float64, d int, angle func(i int) bool) error {
 
 func poseAngle(i int) bool { return i == 2 }
 
-// checkPose reports what is wrong with a pose setting before it is taken.
+// checkPose reports what is wrong with a reseed before it is taken.
 func checkPose(pose estimator.Pose, cov []float64) error {
 	if !finiteAll(pose.X, pose.Y, pose.Heading) {
 		return fmt.Errorf("%w: pose is not finite", ErrBadSample)

@@ -5,7 +5,7 @@ import (
 	"math"
 	"testing"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // reader hands out fuzz bytes as numbers, zeros when they run out.
@@ -39,7 +39,7 @@ func (r *reader) small() float64 {
 }
 
 // FuzzSamples drives a robot with an arbitrary sequence of odometry, IMU,
-// fixes, pose sets and queries. The oracle is the invariants: no panic; the
+// fixes, reseeds and queries. The oracle is the invariants: no panic; the
 // state stays finite with a symmetric positive-definite covariance; a refused
 // input changes nothing.
 func FuzzSamples(f *testing.F) {
@@ -93,7 +93,7 @@ func fuzzSamples(t *testing.T, data []byte) {
 				res = r.AddFix(Fix{StampNs: stamp + dt, Kind: FixKind(in.byte()%5 + 1), XM: in.small() * 100, YM: in.small(), HeadingRad: in.small(),
 					LandmarkID: "post-1", RangeM: ptr(in.small() * 10), Cov: []float64{math.Abs(in.small()) + 1e-4, 0, 0, 0, 0.01, 0, 0, 0, 0.01}[:in.byte()%10]})
 			case 4:
-				res = r.SetPose(stamp+dt, estimator.Pose{X: in.small(), Y: in.small(), Heading: in.small()}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, math.Abs(in.small()) + 1e-6})
+				res = r.Reseed(stamp+dt, estimator.Pose{X: in.small(), Y: in.small(), Heading: in.small()}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, math.Abs(in.small()) + 1e-6})
 			case 5:
 				res = r.AddOdometry(Odometry{StampNs: stamp + dt, Counts: []int64{int64(in.byte()), int64(in.byte()) * 300, int64(in.byte())}[:nw]})
 				if res.Verdict == VerdictApplied {

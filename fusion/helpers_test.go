@@ -5,7 +5,7 @@ import (
 	"reflect"
 	"testing"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // snapshot is everything that makes up a robot's estimate.

@@ -4,7 +4,7 @@ import (
 	"fmt"
 	"math"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // weightFloor keeps weighted least-squares weights finite for rows whose

@@ -5,9 +5,9 @@ import (
 	"slices"
 	"testing"
 
-	"reckon/clients/sim"
-	"reckon/estimator"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
 )
 
 // runOdometry feeds only the odometry of a scenario and returns the robot.
@@ -37,9 +37,9 @@ func runOdometry(t *testing.T, sc sim.Scenario) *fusion.Robot {
 // within 1e-9 m in position and 0.1% in covariance (DESIGN.md, "Process
 // noise"; the noise model adds over sub-intervals).
 func TestRateInvariance(t *testing.T) {
-	for _, layout := range []sim.Layout{sim.TwoParallelOneLateral, sim.Differential, sim.ParallelLateralIMU} {
+	for _, layout := range []sim.Layout{sim.FreeWheelTurn, sim.DriveWheelTurn, sim.GyroTurn} {
 		t.Run(layout.String(), func(t *testing.T) {
-			base := sim.Scenario{Layout: layout, NoiseFree: true, DurationS: 40, IMU: layout != sim.ParallelLateralIMU}
+			base := sim.Scenario{Layout: layout, NoiseFree: true, DurationS: 40, IMU: layout != sim.GyroTurn}
 			slow, fast := base, base
 			slow.OdometryHz, fast.OdometryHz = 50, 500
 			a := runOdometry(t, slow).Pose()
@@ -71,8 +71,8 @@ func TestRateInvariance(t *testing.T) {
 // is sampled.
 func TestStandingStill(t *testing.T) {
 	for _, hz := range []int64{10, 1000} {
-		cfg := sim.Scenario{Layout: sim.TwoParallelOneLateral}.Config()
-		cfg.InitialPose = estimator.Pose{}
+		cfg := sim.Scenario{Layout: sim.FreeWheelTurn}.Config()
+		cfg.StartPose = estimator.Pose{}
 		r, err := fusion.New(cfg)
 		if err != nil {
 			t.Fatal(err)
@@ -116,9 +116,9 @@ func collect(sc sim.Scenario) (*sim.Sim, []sim.Input) {
 // same samples delivered in stamp order (DESIGN.md, "Time ordering"), to 1e-9.
 func TestLateEqualsStampOrder(t *testing.T) {
 	for _, sc := range []sim.Scenario{
-		{Layout: sim.TwoParallelOneLateral, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30},
-		{Layout: sim.Differential, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
-		{Layout: sim.ParallelLateralIMU, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
+		{Layout: sim.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30},
+		{Layout: sim.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
+		{Layout: sim.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
 	} {
 		t.Run(sc.Layout.String(), func(t *testing.T) {
 			s, arrival := collect(sc)

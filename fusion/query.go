@@ -4,11 +4,11 @@ import (
 	"fmt"
 	"math"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
-// Twist is a body-frame velocity.
-type Twist struct {
+// BodyVelocity is a body-frame velocity.
+type BodyVelocity struct {
 	ForwardMPerS, LeftMPerS, TurnRadPerS float64
 }
 
@@ -23,7 +23,7 @@ type FusedPose struct {
 	IMUOffsetRad, IMUOffsetVarRad2 float64
 	IMUOffsetReady                 bool
 	// Velocity is the mean body velocity over the last 50 ms of odometry.
-	Velocity Twist
+	Velocity BodyVelocity
 	// Position95M is the 95% position ellipse's major semi-axis, metres;
 	// HeadingStdRad the heading standard deviation.
 	Position95M, HeadingStdRad float64
@@ -109,7 +109,7 @@ func (r *Robot) PoseAt(stampNs int64) (FusedPose, error) {
 
 // velocity returns the mean body velocity over at least the last 50 ms of
 // odometry in the window (or all of it).
-func (r *Robot) velocity() Twist {
+func (r *Robot) velocity() BodyVelocity {
 	live := r.live()
 	var a, b, th float64
 	var dt int64
@@ -124,8 +124,8 @@ func (r *Robot) velocity() Twist {
 		dt += e.t1 - e.t0
 	}
 	if dt == 0 {
-		return Twist{}
+		return BodyVelocity{}
 	}
 	s := 1e9 / float64(dt)
-	return Twist{a * s, b * s, th * s}
+	return BodyVelocity{a * s, b * s, th * s}
 }

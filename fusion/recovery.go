@@ -6,7 +6,7 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // candidate is a refused pose fix kept as evidence that the robot was moved.

@@ -3,7 +3,7 @@ package fusion
 import (
 	"fmt"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // Robot is one robot's estimator. Make it with New; it is not safe for
@@ -63,15 +63,15 @@ func New(cfg Config) (*Robot, error) {
 	}
 	x := make([]float64, r.n)
 	p := make([]float64, r.n*r.n)
-	x[0], x[1], x[2] = cfg.InitialPose.X, cfg.InitialPose.Y, cfg.InitialPose.Heading
+	x[0], x[1], x[2] = cfg.StartPose.X, cfg.StartPose.Y, cfg.StartPose.Heading
 	for i := 0; i < 3; i++ {
-		copy(p[i*r.n:i*r.n+3], cfg.InitialCov[i*3:i*3+3])
+		copy(p[i*r.n:i*r.n+3], cfg.StartCov[i*3:i*3+3])
 	}
 	if r.n == 4 {
 		p[15] = 1 // replaced when the first IMU sample initialises the offset
 	}
 	if r.f, err = estimator.NewFilter(r.n, x, p); err != nil {
-		return nil, cfgErr("initial_covariance", "%v", err)
+		return nil, cfgErr("start_covariance", "%v", err)
 	}
 	r.scratch, _ = estimator.NewFilter(r.n, x, p)
 	r.base = checkpoint{est: r.f.State()}
@@ -241,7 +241,7 @@ func (r *Robot) releaseHeld(res *Result) {
 		sub := Result{Seq: e.seq}
 		if e.t1 < r.baseT {
 			sub.Verdict = VerdictTooOld
-			sub.Err = fmt.Errorf("%w: stamp_ns %d precedes the first odometry or the last pose set at %d", ErrTooOld, e.t1, r.baseT)
+			sub.Err = fmt.Errorf("%w: stamp_ns %d precedes the first odometry or the last reseed at %d", ErrTooOld, e.t1, r.baseT)
 			r.stats.count(VerdictTooOld, false)
 		} else if e.kind == entReset {
 			r.insertReset(e, &sub)
@@ -299,10 +299,10 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 	}
 }
 
-// SetPose re-seeds the pose at stampNs with covariance cov (3x3 row-major).
+// Reseed restarts the filter from pose at stampNs with covariance cov (3x3 row-major).
 // Inputs stamped before it are no longer accepted; the IMU offset is
 // re-initialised from the next IMU sample.
-func (r *Robot) SetPose(stampNs int64, pose estimator.Pose, cov []float64) Result {
+func (r *Robot) Reseed(stampNs int64, pose estimator.Pose, cov []float64) Result {
 	if err := checkPose(pose, cov); err != nil {
 		return refused(err)
 	}
@@ -318,7 +318,7 @@ func (r *Robot) SetPose(stampNs int64, pose estimator.Pose, cov []float64) Resul
 		r.ready = false
 		r.base = checkpoint{est: r.f.State()}
 		res.Verdict = VerdictApplied
-		res.Events = append(res.Events, Event{Kind: EventPoseSet, StampNs: stampNs})
+		res.Events = append(res.Events, Event{Kind: EventReseeded, StampNs: stampNs})
 	case stampNs < r.baseT:
 		res.Verdict = VerdictTooOld
 		res.Err = fmt.Errorf("%w: stamp_ns %d before the window start %d", ErrTooOld, stampNs, r.baseT)
@@ -337,7 +337,7 @@ func (r *Robot) insertReset(e entry, res *Result) {
 	r.cands = r.cands[:0]
 	r.trust.refusedRun = 0
 	res.Verdict = VerdictApplied
-	res.Events = append(res.Events, Event{Kind: EventPoseSet, StampNs: e.t1})
+	res.Events = append(res.Events, Event{Kind: EventReseeded, StampNs: e.t1})
 }
 
 // finish evaluates trust after an input and appends its transitions.

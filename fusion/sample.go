@@ -4,7 +4,7 @@ import (
 	"errors"
 	"fmt"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // Odometry is one odometry sample. Exactly one of TravelM, Counts and Step
@@ -170,7 +170,7 @@ const (
 	EventMoveRecovered
 	EventTrustLost
 	EventTrustRegained
-	EventPoseSet
+	EventReseeded
 )
 
 // String names the event kind.
@@ -188,8 +188,8 @@ func (k EventKind) String() string {
 		return "trust-lost"
 	case EventTrustRegained:
 		return "trust-regained"
-	case EventPoseSet:
-		return "pose-set"
+	case EventReseeded:
+		return "reseeded"
 	}
 	return fmt.Sprintf("event(%d)", uint8(k))
 }
@@ -197,7 +197,7 @@ func (k EventKind) String() string {
 // Event is a notable moment: a fix refused (Value is its NIS), a suspected
 // slip (Value is the residual chi-square), a gap in odometry (Value is its
 // length in seconds), a move recovered (Value is the correction's length in
-// metres), trust lost or regained (Detail lists the reasons), a pose set.
+// metres), trust lost or regained (Detail lists the reasons), a reseed.
 type Event struct {
 	Kind     EventKind
 	StampNs  int64

@@ -3,7 +3,7 @@ package fusion
 import (
 	"fmt"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // Step is one finished step of a run as the filter saw it, the input of

@@ -7,9 +7,9 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"reckon/clients/sim"
-	"reckon/estimator"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
 )
 
 // TestSmootherEqualsBatch: on a linear-Gaussian case the Rauch-Tung-
@@ -33,7 +33,7 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		Wheels:     []fusion.Wheel{{YM: 0.1}, {YM: -0.1}, {XM: -0.1, DirectionRad: math.Pi / 2}},
 		IMU:        fusion.IMUAbsolute,
 		Noise:      fusion.Noise{HeadingVarRad2PerS: qh, IMUOffsetVarRad2PerS: qo, IMUHeadingVarRad2: rImu},
-		InitialCov: []float64{0.04, 0, 0, 0, 0.09, 0, 0, 0, 0.01},
+		StartCov: []float64{0.04, 0, 0, 0, 0.09, 0, 0, 0, 0.01},
 		WindowNs:   int64(steps) * dtNs * 2,
 	}
 	r, err := fusion.New(cfg)
@@ -162,7 +162,7 @@ func TestSmootherBeatsFilter(t *testing.T) {
 	var count int
 	nees := map[int64]float64{} // checkpoint stamp -> sum over runs
 	for run := 0; run < runs; run++ {
-		sc := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: uint64(300 + run), DurationS: 20, CameraHz: 2}
+		sc := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: uint64(300 + run), DurationS: 20, CameraHz: 2}
 		s := sim.New(sc)
 		r, _ := fusion.New(s.Config())
 		r.CollectSteps()

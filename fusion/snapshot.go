@@ -5,7 +5,7 @@ import (
 	"encoding/gob"
 	"fmt"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // The snapshot mirrors the robot's state with exported fields for gob.

@@ -4,8 +4,8 @@ import (
 	"reflect"
 	"testing"
 
-	"reckon/clients/sim"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/fusion"
 )
 
 // TestSnapshotContinuesExactly: a robot restored from a snapshot taken in
@@ -13,9 +13,9 @@ import (
 // for the rest of the run.
 func TestSnapshotContinuesExactly(t *testing.T) {
 	for _, sc := range []sim.Scenario{
-		{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 25, DXM: 1}},
-		{Layout: sim.ParallelLateralIMU, Seed: 52, DurationS: 20, Counts: true},
-		{Layout: sim.Differential, IMU: true, Markers: true, Seed: 53, DurationS: 20},
+		{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 25, DXM: 1}},
+		{Layout: sim.GyroTurn, Seed: 52, DurationS: 20, Counts: true},
+		{Layout: sim.DriveWheelTurn, IMU: true, Markers: true, Seed: 53, DurationS: 20},
 	} {
 		_, ins := collect(sc)
 		cfg := sim.New(sc).Config()

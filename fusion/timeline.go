@@ -4,7 +4,7 @@ import (
 	"slices"
 	"sort"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // checkpoint is the filter's estimate after an input, plus whether the IMU

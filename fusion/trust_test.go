@@ -3,8 +3,8 @@ package fusion_test
 import (
 	"testing"
 
-	"reckon/clients/sim"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/fusion"
 )
 
 // trustCount is what a run did with the inconsistent flag.
@@ -78,7 +78,7 @@ func trustRun(t *testing.T, sc sim.Scenario, gate, fixScale, imuScale float64) t
 // is back to its median. A cart turned by hand raises it within 20 ms,
 // before the pose is recovered.
 func TestTrustInconsistent(t *testing.T) {
-	sc := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 21, DurationS: 600}
+	sc := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 21, DurationS: 600}
 	c := trustRun(t, sc, 0.99, 1, 1)
 	t.Logf("honest sensors: raised %d times, on %d of %d applied fixes", c.raised, c.flagged, c.applied)
 	if c.applied < 5000 || c.raised > 6 || c.flagged > c.applied/50 {
@@ -96,7 +96,7 @@ func TestTrustInconsistent(t *testing.T) {
 			t.Errorf("%s: inconsistent raised %d times, standing on %d of %d applied fixes", k.name, c.raised, c.flagged, c.applied)
 		}
 	}
-	bump := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 1, DurationS: 50, OutlierFraction: 0.05,
+	bump := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 1, DurationS: 50, OutlierFraction: 0.05,
 		Bump: &sim.Bump{AtS: 45, DXM: 0.8, DYM: 0.6, DRad: 0.35}}
 	c = trustRun(t, bump, 0.99, 1, 1)
 	if at := float64(c.firstNs) * 1e-9; c.raised != 1 || at < 45 || at > 45.02 {

@@ -11,9 +11,9 @@ import (
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
-	"reckon/clients/sim"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/clients/sim"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // TestBadInputOverTheWire: bad samples get the right status code and a
@@ -24,7 +24,7 @@ func TestBadInputOverTheWire(t *testing.T) {
 	defer srv.stop()
 	c := dial(t, srv.addr, clientOpts())
 	ctx := context.Background()
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 9, DurationS: 2})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 2})
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
 	}
@@ -130,9 +130,9 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Errorf("oversized message changed the robot or journal")
 	}
 	// Unary calls name the field too.
-	_, err = c.API().SetPose(ctx, &pb.SetPoseRequest{Robot: "robots/cart", Setting: &pb.PoseSetting{StampNs: newest, Pose: &pb.Pose2D{XM: math.NaN()}, Covariance: good}})
+	_, err = c.API().ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: "robots/cart", Reseed: &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{XM: math.NaN()}, Covariance: good}})
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "pose") {
-		t.Errorf("SetPose NaN: %v", err)
+		t.Errorf("ReseedRobot NaN: %v", err)
 	}
 	_, err = c.CreateRobot(ctx, "Bad_Name", cfg)
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "robot_id") {

@@ -11,9 +11,9 @@ import (
 	"google.golang.org/grpc/mem"
 	"google.golang.org/protobuf/proto"
 
-	"reckon/clients/client"
-	"reckon/clients/sim"
-	pb "reckon/proto/reckon/v1"
+	"reckon.example/clients/client"
+	"reckon.example/clients/sim"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // bare is a FusionService whose Ingest answers every sample and does
@@ -81,7 +81,7 @@ func pump(b *testing.B, addr, robot string, samp []*pb.Sample) time.Duration {
 // the other; the rates are over all iterations, which evens out the noise
 // of a shared machine.
 func BenchmarkIngestThroughput(b *testing.B) {
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 120, OutlierFraction: 0.05})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 120, OutlierFraction: 0.05})
 	lis, _ := net.Listen("tcp", "127.0.0.1:0")
 	gs := grpc.NewServer()
 	pb.RegisterFusionServiceServer(gs, bare{})
@@ -114,7 +114,7 @@ func BenchmarkRestoreHour(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	sm := sim.New(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 3600, OutlierFraction: 0.05})
+	sm := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 3600, OutlierFraction: 0.05})
 	cfg := sm.Config()
 	if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: wireConfig(cfg)}); err != nil {
 		b.Fatal(err)
@@ -149,7 +149,7 @@ func BenchmarkRestoreHour(b *testing.B) {
 // (group commit of maxBatch), encoding the verdict and the watchers. One op
 // is one sample.
 func BenchmarkIngestCore(b *testing.B) {
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
 	s, err := New(Options{JournalDir: b.TempDir()})
 	if err != nil {
 		b.Fatal(err)

@@ -8,7 +8,7 @@ import (
 	"google.golang.org/grpc/mem"
 	"google.golang.org/protobuf/proto"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // TestCodec: the service's codec keeps an ingest request's bytes and sends

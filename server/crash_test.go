@@ -14,9 +14,9 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon/clients/sim"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/clients/sim"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // TestMain lets the test binary run as the daemon in a child process.
@@ -65,7 +65,7 @@ func TestCrashSafety(t *testing.T) {
 	defer cmd.Process.Kill()
 	c := dial(t, addr, clientOpts())
 	ctx := context.Background()
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 8, DurationS: 60, OutlierFraction: 0.05})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 60, OutlierFraction: 0.05})
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
 	}

@@ -24,8 +24,8 @@ import (
 	"google.golang.org/grpc/reflection"
 	"google.golang.org/grpc/status"
 
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // DaemonConfig configures Serve. Zero fields take the defaults given.

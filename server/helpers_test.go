@@ -7,11 +7,11 @@ import (
 	"testing"
 	"time"
 
-	"reckon/clients/client"
-	"reckon/clients/sim"
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/clients/client"
+	"reckon.example/clients/sim"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // running is a service started by a test on a loopback port.

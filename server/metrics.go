@@ -8,7 +8,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 	"google.golang.org/grpc/codes"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // Metrics are the server's Prometheus metrics on a registry of their own.

@@ -7,9 +7,9 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // RestoreReport says what Restore found for one robot.

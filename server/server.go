@@ -30,9 +30,9 @@ import (
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // Options configure a Server. The zero value keeps no journal.
@@ -370,7 +370,7 @@ func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason stri
 	out.ClientSequence, out.Verdict, out.Reason, out.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, reason, int32(code)
 }
 
-// ingest applies one sample (SetPose and tests).
+// ingest applies one sample (ReseedRobot and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
 	req := &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
 	return &s.ingestBatch([]*arrivedRequest{req})[0].IngestResponse
@@ -509,16 +509,16 @@ func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.G
 	return &pb.GetPoseAtResponse{Pose: wire.PoseToProto(r.name, p, r.fr.Sequence())}, nil
 }
 
-// SetPose re-seeds a robot's pose; it is journaled like any input.
-func (s *Server) SetPose(ctx context.Context, req *pb.SetPoseRequest) (*pb.SetPoseResponse, error) {
-	if req.GetSetting() == nil {
-		return nil, status.Errorf(codes.InvalidArgument, "setting: missing")
+// ReseedRobot restarts a robot's filter from a given pose; it is journaled like any input.
+func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*pb.ReseedRobotResponse, error) {
+	if req.GetReseed() == nil {
+		return nil, status.Errorf(codes.InvalidArgument, "reseed: missing")
 	}
-	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_PoseSetting{PoseSetting: req.GetSetting()}})
+	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: req.GetReseed()}})
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
 		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
 	}
-	return &pb.SetPoseResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
 }
 
 // GetStatistics gets a robot's statistics.

@@ -10,11 +10,11 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon/clients/client"
-	"reckon/clients/sim"
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/clients/client"
+	"reckon.example/clients/sim"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // TestEndToEnd: over a real gRPC connection on loopback, the cart's
@@ -27,7 +27,7 @@ func TestEndToEnd(t *testing.T) {
 	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	ctx := context.Background()
 	cart, camera, watcher := dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts())
-	samp, ins, cfg := samples(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 5, DurationS: 20, OutlierFraction: 0.05})
+	samp, ins, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 5, DurationS: 20, OutlierFraction: 0.05})
 	if _, err := cart.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
 	}
@@ -163,7 +163,7 @@ func TestRestoreTornTail(t *testing.T) {
 	dir := t.TempDir()
 	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	c := dial(t, srv.addr, clientOpts())
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.Differential, IMU: true, Seed: 6, DurationS: 2})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.DriveWheelTurn, IMU: true, Seed: 6, DurationS: 2})
 	ctx := context.Background()
 	c.CreateRobot(ctx, "cart", cfg)
 	sess, _ := c.OpenIngest(ctx, "robots/cart")

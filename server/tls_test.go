@@ -19,9 +19,9 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
-	"reckon/clients/client"
-	"reckon/clients/sim"
-	pb "reckon/proto/reckon/v1"
+	"reckon.example/clients/client"
+	"reckon.example/clients/sim"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // pki is a CA with certificates it signed, written as PEM files.
@@ -107,7 +107,7 @@ func TestTLSAndToken(t *testing.T) {
 	}
 	// A stream needs the token too, and works with it (fsync on each).
 	c := dial(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"})
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.Differential, IMU: true, Seed: 2, DurationS: 0.2})
+	samp, _, cfg := samples(sim.Scenario{Layout: sim.DriveWheelTurn, IMU: true, Seed: 2, DurationS: 0.2})
 	ctx := context.Background()
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)

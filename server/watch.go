@@ -4,7 +4,7 @@ import (
 	"sync"
 	"time"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // watcher is one Watch stream's mailbox: the newest pose and the events

@@ -18,7 +18,7 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/grpc/keepalive"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // Options configure Dial. The zero value connects in plain text without a

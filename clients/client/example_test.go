@@ -7,9 +7,9 @@ import (
 	"log/slog"
 	"math"
 
-	"reckon/clients/client"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server"
+	"reckon.example/clients/client"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
 )
 
 // startService runs a service on a loopback port for the examples.

@@ -14,7 +14,7 @@ import (
 	"gonum.org/v1/plot/vg"
 	"gonum.org/v1/plot/vg/draw"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // Colours of the figures (our own palette).

@@ -19,10 +19,10 @@ import (
 	"strconv"
 	"strings"
 
-	"reckon/estimator"
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // Source names a recorded run.
@@ -494,8 +494,8 @@ func sampleStamp(s *pb.Sample) int64 {
 		return v.Heading.GetStampNs()
 	case *pb.Sample_Fix:
 		return v.Fix.GetStampNs()
-	case *pb.Sample_PoseSetting:
-		return v.PoseSetting.GetStampNs()
+	case *pb.Sample_Reseed:
+		return v.Reseed.GetStampNs()
 	}
 	return 0
 }

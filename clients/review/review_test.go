@@ -12,10 +12,10 @@ import (
 	"strings"
 	"testing"
 
-	"reckon/clients/sim"
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/clients/sim"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // writeRun records a simulated run as a journal (as the service writes it)
@@ -71,7 +71,7 @@ func writeRun(t testing.TB, sc sim.Scenario) (string, string) {
 }
 
 func TestReviewOfASimulatedRun(t *testing.T) {
-	dir, truth := writeRun(t, sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 71, DurationS: 40, OutlierFraction: 0.05, CameraHz: 4})
+	dir, truth := writeRun(t, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 71, DurationS: 40, OutlierFraction: 0.05, CameraHz: 4})
 	out := t.TempDir()
 	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
 	if err != nil {
@@ -108,7 +108,7 @@ func TestReviewOfASimulatedRun(t *testing.T) {
 // TestReviewOfATruncatedJournal: a journal cut by a crash gives a report of
 // what was recovered and says so.
 func TestReviewOfATruncatedJournal(t *testing.T) {
-	dir, _ := writeRun(t, sim.Scenario{Layout: sim.Differential, IMU: true, Seed: 72, DurationS: 10})
+	dir, _ := writeRun(t, sim.Scenario{Layout: sim.DriveWheelTurn, IMU: true, Seed: 72, DurationS: 10})
 	seg := wire.SegmentPath(dir, "cart", 0)
 	b, _ := os.ReadFile(seg)
 	os.WriteFile(seg, b[:len(b)*2/3+5], 0o644)
@@ -139,7 +139,7 @@ func TestReportInABrowser(t *testing.T) {
 		}
 		t.Skip("chromium is not installed")
 	}
-	dir, truth := writeRun(t, sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 73, DurationS: 30, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 18, DXM: 0.8}})
+	dir, truth := writeRun(t, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 73, DurationS: 30, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 18, DXM: 0.8}})
 	out := t.TempDir()
 	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
 	if err != nil {
@@ -188,7 +188,7 @@ func TestReportInABrowser(t *testing.T) {
 // TestSpillToDisk: a review whose steps exceed the memory budget keeps them
 // on disk and gives the same result as one in memory.
 func TestSpillToDisk(t *testing.T) {
-	dir, truth := writeRun(t, sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Seed: 75, DurationS: 20, OutlierFraction: 0.05})
+	dir, truth := writeRun(t, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 75, DurationS: 20, OutlierFraction: 0.05})
 	mem, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{})
 	if err != nil {
 		t.Fatal(err)

@@ -7,8 +7,8 @@ import (
 	"math"
 	"os"
 
-	"reckon/estimator"
-	"reckon/fusion"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
 )
 
 // Fixed-size little-endian records keep a long run's steps and smoothed

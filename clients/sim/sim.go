@@ -12,33 +12,35 @@ import (
 	"math"
 	"math/rand/v2"
 
-	"reckon/estimator"
-	"reckon/fusion"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
 )
 
-// Layout is a wheel layout.
+// Layout is a wheel layout, named by what determines the turn.
 type Layout uint8
 
 const (
-	// TwoParallelOneLateral: two forward-rolling wheels and one lateral wheel
-	// (the wheels alone determine the motion), absolute IMU optional.
-	TwoParallelOneLateral Layout = iota
-	// ParallelLateralIMU: one forward wheel, one lateral wheel and an IMU
-	// whose heading difference is the turn row (IMU rotation mode).
-	ParallelLateralIMU
-	// Differential: the two driven wheels' encoders, no side slip.
-	Differential
+	// FreeWheelTurn: the turn comes from the difference of two free-rolling
+	// forward wheels; a lateral wheel gives sideways travel; an absolute IMU
+	// is optional.
+	FreeWheelTurn Layout = iota
+	// GyroTurn: the turn comes from the IMU's heading difference (IMU
+	// rotation mode); one forward and one lateral wheel give the travel.
+	GyroTurn
+	// DriveWheelTurn: the turn comes from the difference of the two driven
+	// wheels' encoders (a differential drive, no side slip).
+	DriveWheelTurn
 )
 
 // String names the layout.
 func (l Layout) String() string {
 	switch l {
-	case TwoParallelOneLateral:
-		return "two-parallel-one-lateral"
-	case ParallelLateralIMU:
-		return "parallel-lateral-imu"
-	case Differential:
-		return "differential"
+	case FreeWheelTurn:
+		return "free-wheel-turn"
+	case GyroTurn:
+		return "gyro-turn"
+	case DriveWheelTurn:
+		return "drive-wheel-turn"
 	}
 	return fmt.Sprintf("layout(%d)", uint8(l))
 }
@@ -90,7 +92,7 @@ func (s *Scenario) defaults() {
 	def(&s.LatencyMinS, 0.05)
 	def(&s.LatencyMaxS, 0.2)
 	def(&s.SpeedMPerS, 0.4)
-	if s.IMUHz == 0 && (s.IMU || s.Layout == ParallelLateralIMU) {
+	if s.IMUHz == 0 && (s.IMU || s.Layout == GyroTurn) {
 		s.IMUHz = 100
 	}
 	if s.NoiseFree {
@@ -109,7 +111,7 @@ const (
 	countsPerM, counterBits    = 40000, 16
 	imuHeadingStdRad           = 0.005
 	imuOffsetVarRad2PerS       = 1e-7
-	initialStdM, initialStdRad = 0.05, 0.035
+	startStdM, startStdRad = 0.05, 0.035
 )
 
 // Markers are the greenhouse's post markers: a row at each end of the aisles.
@@ -135,7 +137,7 @@ func (s Scenario) Config() fusion.Config {
 	c := fusion.Config{
 		Noise:      n,
 		Recovery:   fusion.Recovery{Enabled: true},
-		InitialCov: []float64{initialStdM * initialStdM, 0, 0, 0, initialStdM * initialStdM, 0, 0, 0, initialStdRad * initialStdRad},
+		StartCov: []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
 		Landmarks:  Markers(),
 	}
 	cpm, bits := 0.0, 0
@@ -146,16 +148,16 @@ func (s Scenario) Config() fusion.Config {
 		return fusion.Wheel{Name: name, XM: x, YM: y, DirectionRad: dir, CountsPerM: cpm, CounterBits: bits}
 	}
 	switch s.Layout {
-	case TwoParallelOneLateral:
+	case FreeWheelTurn:
 		c.Wheels = []fusion.Wheel{w("left", 0, 0.12, 0), w("right", 0, -0.12, 0), w("lateral", -0.08, 0, math.Pi/2)}
-	case ParallelLateralIMU:
+	case GyroTurn:
 		c.Wheels = []fusion.Wheel{w("forward", 0, 0.10, 0), w("lateral", -0.08, 0, math.Pi/2)}
 		c.IMU = fusion.IMURotation
-	case Differential:
+	case DriveWheelTurn:
 		c.Wheels = []fusion.Wheel{w("left", 0, 0.2, 0), w("right", 0, -0.2, 0)}
 		c.NoSideSlip = true
 	}
-	if s.IMU && s.Layout != ParallelLateralIMU {
+	if s.IMU && s.Layout != GyroTurn {
 		c.IMU = fusion.IMUAbsolute
 	}
 	return c
@@ -224,7 +226,7 @@ type Sim struct {
 func New(s Scenario) *Sim {
 	s.defaults()
 	sm := &Sim{s: s, cfg: s.Config(), rng: rand.New(rand.NewPCG(s.Seed, s.Seed^0x9e3779b97f4a7c15))}
-	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != Differential)
+	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != DriveWheelTurn)
 	sm.left = sm.route[0].durNs
 	sm.endNs = int64(s.DurationS * 1e9)
 	sm.truth = estimator.Pose{X: 0, Y: 0, Heading: 0}
@@ -239,13 +241,13 @@ func New(s Scenario) *Sim {
 }
 
 // Config returns the fusion configuration matching the simulator, with the
-// initial pose drawn around the truth from the initial covariance (so that
+// starting pose drawn around the truth from the starting covariance (so that
 // the filter's initial error is consistent with its covariance).
 func (sm *Sim) Config() fusion.Config {
 	c := sm.cfg
 	r := rand.New(rand.NewPCG(sm.s.Seed+1, 7))
 	if !sm.s.NoiseFree {
-		c.InitialPose = estimator.Pose{X: r.NormFloat64() * initialStdM, Y: r.NormFloat64() * initialStdM, Heading: r.NormFloat64() * initialStdRad}
+		c.StartPose = estimator.Pose{X: r.NormFloat64() * startStdM, Y: r.NormFloat64() * startStdM, Heading: r.NormFloat64() * startStdRad}
 	}
 	return c
 }

@@ -5,12 +5,12 @@ import (
 	"reflect"
 	"testing"
 
-	"reckon/estimator"
+	"reckon.example/estimator"
 )
 
 // TestDeterministic: a seed gives the same run.
 func TestDeterministic(t *testing.T) {
-	sc := Scenario{Layout: TwoParallelOneLateral, IMU: true, Seed: 5, DurationS: 10, OutlierFraction: 0.1, SlipPerS: 0.5}
+	sc := Scenario{Layout: FreeWheelTurn, IMU: true, Seed: 5, DurationS: 10, OutlierFraction: 0.1, SlipPerS: 0.5}
 	a, b := New(sc), New(sc)
 	for n := 0; ; n++ {
 		x, okx := a.Next()
@@ -28,7 +28,7 @@ func TestDeterministic(t *testing.T) {
 // wheel travels, solved and composed, reproduce the truth exactly (the
 // simulator and the estimator share the arc model).
 func TestArrivalOrderAndTruth(t *testing.T) {
-	for _, l := range []Layout{TwoParallelOneLateral, ParallelLateralIMU, Differential} {
+	for _, l := range []Layout{FreeWheelTurn, GyroTurn, DriveWheelTurn} {
 		s := New(Scenario{Layout: l, NoiseFree: true, DurationS: 60, IMU: true})
 		cfg := s.Config()
 		var last int64

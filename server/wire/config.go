@@ -3,9 +3,9 @@ package wire
 import (
 	"fmt"
 
-	"reckon/estimator"
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // ConfigFromProto converts a wire configuration and validates it. Errors
@@ -55,13 +55,13 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	t := c.GetTrust()
 	cfg.Trust = fusion.TrustLimits{MaxPosition95M: t.GetMaxPosition95M(), MaxHeadingStdRad: t.GetMaxHeadingStdRad(), NISWindow: int(t.GetNisWindow()),
 		ConsistencyProbability: t.GetConsistencyProbability(), RefusedInARow: int(t.GetRefusedInARow())}
-	cfg.InitialPose = poseFromProto(c.GetInitialPose())
-	if ic := c.GetInitialCovariance(); ic != nil {
+	cfg.StartPose = poseFromProto(c.GetStartPose())
+	if ic := c.GetStartCovariance(); ic != nil {
 		v, err := covFromProto(ic, 3)
 		if err != nil {
-			return cfg, fmt.Errorf("%w: initial_covariance: %v", fusion.ErrConfig, err)
+			return cfg, fmt.Errorf("%w: start_covariance: %v", fusion.ErrConfig, err)
 		}
-		cfg.InitialCov = v
+		cfg.StartCov = v
 	}
 	for _, l := range c.GetLandmarks() {
 		cfg.Landmarks = append(cfg.Landmarks, fusion.Landmark{ID: l.GetId(), XM: l.GetXM(), YM: l.GetYM()})
@@ -87,7 +87,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		Recovery:           &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},
 		Trust: &pb.TrustLimits{MaxPosition95M: cfg.Trust.MaxPosition95M, MaxHeadingStdRad: cfg.Trust.MaxHeadingStdRad, NisWindow: int32(cfg.Trust.NISWindow),
 			ConsistencyProbability: cfg.Trust.ConsistencyProbability, RefusedInARow: int32(cfg.Trust.RefusedInARow)},
-		InitialPose: poseToProto(cfg.InitialPose),
+		StartPose: poseToProto(cfg.StartPose),
 	}
 	for _, w := range cfg.Wheels {
 		c.Wheels = append(c.Wheels, &pb.EncoderWheel{Name: w.Name, XM: w.XM, YM: w.YM, DirectionRad: w.DirectionRad, CountsPerM: w.CountsPerM, CounterBits: int32(w.CounterBits)})
@@ -98,8 +98,8 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		HeadingVarRad2PerS: n.HeadingVarRad2PerS, StepForwardVarM2PerM: n.StepForwardVarM2PerM, StepLeftVarM2PerM: n.StepLeftVarM2PerM,
 		StepTurnVarRad2PerRad: n.StepTurnVarRad2PerRad, ImuHeadingVarRad2: n.IMUHeadingVarRad2, ImuTurnVarRad2PerRad: n.IMUTurnVarRad2PerRad,
 		ImuOffsetVarRad2PerS: n.IMUOffsetVarRad2PerS}
-	if cfg.InitialCov != nil {
-		c.InitialCovariance = &pb.Covariance{Dimension: 3, Values: append([]float64(nil), cfg.InitialCov...)}
+	if cfg.StartCov != nil {
+		c.StartCovariance = &pb.Covariance{Dimension: 3, Values: append([]float64(nil), cfg.StartCov...)}
 	}
 	for _, l := range cfg.Landmarks {
 		c.Landmarks = append(c.Landmarks, &pb.Landmark{Id: l.ID, XM: l.XM, YM: l.YM})
@@ -107,12 +107,12 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 	return c
 }
 
-func poseFromProto(p *pb.Pose2D) estimator.Pose {
+func poseFromProto(p *pb.FloorPose) estimator.Pose {
 	return estimator.Pose{X: p.GetXM(), Y: p.GetYM(), Heading: p.GetHeadingRad()}
 }
 
-func poseToProto(p estimator.Pose) *pb.Pose2D {
-	return &pb.Pose2D{XM: p.X, YM: p.Y, HeadingRad: p.Heading}
+func poseToProto(p estimator.Pose) *pb.FloorPose {
+	return &pb.FloorPose{XM: p.X, YM: p.Y, HeadingRad: p.Heading}
 }
 
 // covFromProto checks a covariance's stated dimension and size.

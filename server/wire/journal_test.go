@@ -10,7 +10,7 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 func pair(seq uint64) []*pb.JournalRecord {
@@ -174,7 +174,7 @@ func FuzzJournalReader(f *testing.F) {
 func TestAddPairMatchesRecords(t *testing.T) {
 	odo := &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StampNs: 5e6, StartNs: 0,
 		Motion: &pb.OdometrySample_Travel{Travel: &pb.WheelTravel{TravelM: []float64{0.01, 0.012, -0.001}}}}}}
-	pose := &pb.FusedPose{Robot: "robots/cart", StampNs: 5e6, Pose: &pb.Pose2D{XM: 1, YM: -2, HeadingRad: 0.3},
+	pose := &pb.FusedPose{Robot: "robots/cart", StampNs: 5e6, Pose: &pb.FloorPose{XM: 1, YM: -2, HeadingRad: 0.3},
 		Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1e-4, 0, 0, 0, 1e-4, 0, 0, 0, 1e-3}}, Trusted: true, Sequence: 50}
 	cases := []struct {
 		name string

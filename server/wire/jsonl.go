@@ -10,8 +10,8 @@ import (
 	"google.golang.org/protobuf/encoding/protojson"
 	"google.golang.org/protobuf/proto"
 
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // MaxLineBytes bounds one JSON Lines record.
@@ -50,7 +50,7 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 			return nil, fmt.Errorf("%w: line %d: %v", ErrJSONL, sr.line, err)
 		}
 		if s.GetSample() == nil {
-			return nil, fmt.Errorf("%w: line %d: none of odometry, heading, fix and pose_setting is set", ErrJSONL, sr.line)
+			return nil, fmt.Errorf("%w: line %d: none of odometry, heading, fix and reseed is set", ErrJSONL, sr.line)
 		}
 		return s, nil
 	}

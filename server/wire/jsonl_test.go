@@ -11,8 +11,8 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon/clients/sim"
-	"reckon/fusion"
+	"reckon.example/clients/sim"
+	"reckon.example/fusion"
 )
 
 var rewrite = flag.Bool("rewrite", false, "rewrite golden files in testdata")
@@ -24,8 +24,8 @@ const exampleSamples = "../../testdata/samples/greenhouse-10s.jsonl"
 // back and run through the estimator.
 func TestExampleSamples(t *testing.T) {
 	var buf bytes.Buffer
-	buf.WriteString("# Ten seconds of the simulated greenhouse cart (reckon's simulator, seed 3, layout\n# two-parallel-one-lateral with IMU): one reckon.v1.Sample in protojson per line, in arrival order.\n# Use with testdata/robots/two-parallel-one-lateral.yaml. Simulated data, for examples only.\n")
-	s := sim.New(sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true, Counts: true, Seed: 3, DurationS: 10, OutlierFraction: 0.05, OdometryHz: 50, IMUHz: 25})
+	buf.WriteString("# Ten seconds of the simulated greenhouse cart (reckon's simulator, seed 3, layout\n# free-wheel-turn with IMU): one reckon.v1.Sample in protojson per line, in arrival order.\n# Use with testdata/robots/free-wheel-turn.yaml. Simulated data, for examples only.\n")
+	s := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 3, DurationS: 10, OutlierFraction: 0.05, OdometryHz: 50, IMUHz: 25})
 	for {
 		in, ok := s.Next()
 		if !ok {
@@ -51,7 +51,7 @@ func TestExampleSamples(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer f.Close()
-	b, _ := os.ReadFile("../../testdata/robots/two-parallel-one-lateral.yaml")
+	b, _ := os.ReadFile("../../testdata/robots/free-wheel-turn.yaml")
 	_, cfg, err := LoadConfigYAML(b)
 	if err != nil {
 		t.Fatal(err)
@@ -110,7 +110,7 @@ func FuzzSampleReader(f *testing.F) {
 	}
 	f.Add([]byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"))
 	f.Fuzz(func(t *testing.T, b []byte) {
-		cfg := sim.Scenario{Layout: sim.TwoParallelOneLateral, IMU: true}.Config()
+		cfg := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true}.Config()
 		r, _ := fusion.New(cfg)
 		sr := NewSampleReader(bytes.NewReader(b))
 		for {

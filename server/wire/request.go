@@ -3,7 +3,7 @@ package wire
 import (
 	"google.golang.org/protobuf/encoding/protowire"
 
-	pb "reckon/proto/reckon/v1"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // sampleField is the field number of IngestRequest.sample.

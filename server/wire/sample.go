@@ -7,9 +7,9 @@ import (
 
 	"google.golang.org/grpc/codes"
 
-	"reckon/estimator"
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // ErrSample marks a sample refused before a robot took it: malformed on the
@@ -24,11 +24,11 @@ type input struct {
 	Odometry fusion.Odometry
 	Heading  fusion.Heading
 	Fix      fusion.Fix
-	Pose     poseSetting
+	Pose     reseedInput
 }
 
-// poseSetting is a decoded pose set by hand.
-type poseSetting struct {
+// reseedInput is a decoded reseed.
+type reseedInput struct {
 	StampNs int64
 	Pose    estimator.Pose
 	Cov     []float64
@@ -61,19 +61,19 @@ func decode(s *pb.Sample) (input, error) {
 			return in, err
 		}
 		in.field = "sample.fix"
-	case *pb.Sample_PoseSetting:
-		ps := v.PoseSetting
+	case *pb.Sample_Reseed:
+		ps := v.Reseed
 		if ps.GetPose() == nil {
-			return in, sampleErrf("sample.pose_setting.pose", "missing")
+			return in, sampleErrf("sample.reseed.pose", "missing")
 		}
 		cov, err := covFromProto(ps.GetCovariance(), 3)
 		if err != nil {
-			return in, sampleErr("sample.pose_setting.covariance", err)
+			return in, sampleErr("sample.reseed.covariance", err)
 		}
-		in.field = "sample.pose_setting"
-		in.Pose = poseSetting{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
+		in.field = "sample.reseed"
+		in.Pose = reseedInput{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
 	default:
-		return in, sampleErrf("sample", "none of odometry, heading, fix and pose_setting is set")
+		return in, sampleErrf("sample", "none of odometry, heading, fix and reseed is set")
 	}
 	return in, nil
 }
@@ -152,7 +152,7 @@ func apply(r *fusion.Robot, in *input) fusion.Result {
 	case "sample.fix":
 		return r.AddFix(in.Fix)
 	default:
-		return r.SetPose(in.Pose.StampNs, in.Pose.Pose, in.Pose.Cov)
+		return r.Reseed(in.Pose.StampNs, in.Pose.Pose, in.Pose.Cov)
 	}
 }
 
@@ -186,7 +186,7 @@ var eventKinds = map[fusion.EventKind]pb.EventKind{
 	fusion.EventMoveRecovered: pb.EventKind_EVENT_KIND_MOVE_RECOVERED,
 	fusion.EventTrustLost:     pb.EventKind_EVENT_KIND_TRUST_LOST,
 	fusion.EventTrustRegained: pb.EventKind_EVENT_KIND_TRUST_REGAINED,
-	fusion.EventPoseSet:       pb.EventKind_EVENT_KIND_POSE_SET,
+	fusion.EventReseeded:       pb.EventKind_EVENT_KIND_RESEEDED,
 }
 
 func reason(err error) string {

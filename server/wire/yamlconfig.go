@@ -12,8 +12,8 @@ import (
 	"google.golang.org/protobuf/encoding/protojson"
 	"google.golang.org/protobuf/reflect/protoreflect"
 
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // ErrConfigFile marks an error in a robot configuration file.

@@ -7,7 +7,7 @@ import (
 	"strings"
 	"testing"
 
-	"reckon/fusion"
+	"reckon.example/fusion"
 )
 
 func TestExampleConfigs(t *testing.T) {
@@ -59,7 +59,7 @@ func TestConfigYAMLErrors(t *testing.T) {
 // FuzzConfigYAML: any bytes give a configuration that validates or an
 // error; never a panic.
 func FuzzConfigYAML(f *testing.F) {
-	for _, p := range []string{"two-parallel-one-lateral", "differential"} {
+	for _, p := range []string{"free-wheel-turn", "drive-wheel-turn"} {
 		b, _ := os.ReadFile("../../testdata/robots/" + p + ".yaml")
 		f.Add(b)
 	}

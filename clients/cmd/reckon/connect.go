@@ -8,7 +8,7 @@ import (
 	"os"
 	"strings"
 
-	"reckon/clients/client"
+	"reckon.example/clients/client"
 )
 
 // connFlags are the flags every command that talks to the service shares.

@@ -15,22 +15,22 @@ import (
 	"sync"
 	"time"
 
-	"reckon/clients/client"
-	"reckon/clients/review"
-	"reckon/clients/sim"
-	"reckon/estimator"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server"
-	"reckon/server/wire"
+	"reckon.example/clients/client"
+	"reckon.example/clients/review"
+	"reckon.example/clients/sim"
+	"reckon.example/estimator"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
+	"reckon.example/server/wire"
 )
 
 func parseLayout(s string) (sim.Layout, error) {
-	for _, l := range []sim.Layout{sim.TwoParallelOneLateral, sim.ParallelLateralIMU, sim.Differential} {
+	for _, l := range []sim.Layout{sim.FreeWheelTurn, sim.GyroTurn, sim.DriveWheelTurn} {
 		if l.String() == s {
 			return l, nil
 		}
 	}
-	return 0, fmt.Errorf("unknown layout %q (two-parallel-one-lateral, parallel-lateral-imu, differential)", s)
+	return 0, fmt.Errorf("unknown layout %q (free-wheel-turn, gyro-turn, drive-wheel-turn)", s)
 }
 
 // demoView is what the watcher saw last, shared with the screen.
@@ -57,7 +57,7 @@ func (v *demoView) errAt(p *pb.FusedPose) (float64, bool) {
 func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := flag.NewFlagSet("demo", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	layout := fs.String("layout", "two-parallel-one-lateral", "wheel layout: two-parallel-one-lateral, parallel-lateral-imu or differential")
+	layout := fs.String("layout", "free-wheel-turn", "wheel layout: free-wheel-turn, gyro-turn or drive-wheel-turn")
 	seed := fs.Uint64("seed", 1, "simulator seed")
 	duration := fs.Float64("duration", 70, "simulated seconds")
 	speed := fs.Float64("speed", 2, "simulated seconds per wall second (0: as fast as possible)")
@@ -79,7 +79,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	}
 	live := *view == "live" || (*view == "auto" && isTerminal(stdout))
 	sc := sim.Scenario{Layout: lay, Seed: *seed, DurationS: *duration, OutlierFraction: *outliers, SlipPerS: 0.02,
-		IMU: lay != sim.ParallelLateralIMU, Counts: true, Markers: *markers}
+		IMU: lay != sim.GyroTurn, Counts: true, Markers: *markers}
 	if *bump > 0 {
 		sc.Bump = &sim.Bump{AtS: *bump, DXM: 0.8, DYM: 0.6, DRad: 0.35}
 	}

@@ -12,8 +12,8 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error {

@@ -8,7 +8,7 @@ import (
 	"strings"
 	"testing"
 
-	"reckon/server"
+	"reckon.example/server"
 )
 
 // TestFeedAndWatch: reckon feed creates a robot from the example YAML file
@@ -24,7 +24,7 @@ func TestFeedAndWatch(t *testing.T) {
 	}()
 	addrs := <-ready
 	defer func() { cancel(); <-done }()
-	out, errs, err := runCmd(t, "feed", "-addr", addrs[0], "-robot", "robots/cart", "-create", "../../../testdata/robots/two-parallel-one-lateral.yaml",
+	out, errs, err := runCmd(t, "feed", "-addr", addrs[0], "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml",
 		"../../../testdata/samples/greenhouse-10s.jsonl")
 	if err != nil {
 		t.Fatalf("feed: %v\n%s", err, errs)

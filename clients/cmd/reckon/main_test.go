@@ -24,7 +24,7 @@ func runCmd(t *testing.T, args ...string) (string, string, error) {
 // possible) and checks that it reports a sensible estimate and leaves a
 // journal that replays to the same verdicts.
 func TestDemo(t *testing.T) {
-	for _, layout := range []string{"two-parallel-one-lateral", "parallel-lateral-imu", "differential"} {
+	for _, layout := range []string{"free-wheel-turn", "gyro-turn", "drive-wheel-turn"} {
 		t.Run(layout, func(t *testing.T) {
 			dir := filepath.Join(t.TempDir(), "journal")
 			out, errs, err := runCmd(t, "demo", "-layout", layout, "-duration", "60", "-speed", "0", "-view", "lines", "-journal", dir)
@@ -74,7 +74,7 @@ func TestDemo(t *testing.T) {
 // TestReplaySamples runs the example configuration and JSON Lines file
 // offline, and again with another gate probability.
 func TestReplaySamples(t *testing.T) {
-	cfg := "../../../testdata/robots/two-parallel-one-lateral.yaml"
+	cfg := "../../../testdata/robots/free-wheel-turn.yaml"
 	samples := "../../../testdata/samples/greenhouse-10s.jsonl"
 	out, errs, err := runCmd(t, "replay", "-config", cfg, "-samples", samples, "-format", "jsonl")
 	if err != nil {
@@ -126,7 +126,7 @@ func TestReviewAndCompare(t *testing.T) {
 		}
 	}
 	strict := filepath.Join(t.TempDir(), "strict.yaml")
-	b, _ := os.ReadFile("../../../testdata/robots/two-parallel-one-lateral.yaml")
+	b, _ := os.ReadFile("../../../testdata/robots/free-wheel-turn.yaml")
 	os.WriteFile(strict, []byte(strings.Replace(string(b), "gate_probability: 0.99", "gate_probability: 0.9", 1)), 0o644)
 	cmp := filepath.Join(t.TempDir(), "compare")
 	txt, errs, err = runCmd(t, "compare", "-journal", dir, "-robot", "greenhouse-cart", "-b", strict, "-out", cmp)

@@ -8,8 +8,8 @@ import (
 	"strconv"
 	"strings"
 
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // poseWriter writes fused poses (and, for replay, verdicts) in a format.

@@ -10,9 +10,9 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon/fusion"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {

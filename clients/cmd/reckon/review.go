@@ -12,9 +12,9 @@ import (
 
 	"github.com/schollz/progressbar/v3"
 
-	"reckon/clients/review"
-	pb "reckon/proto/reckon/v1"
-	"reckon/server/wire"
+	"reckon.example/clients/review"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/wire"
 )
 
 // sourceFlags name a recorded run.

@@ -105,8 +105,8 @@ const (
 	EventKind_EVENT_KIND_TRUST_LOST EventKind = 5
 	// The estimate is trusted again.
 	EventKind_EVENT_KIND_TRUST_REGAINED EventKind = 6
-	// The pose was set by hand or by recovery.
-	EventKind_EVENT_KIND_POSE_SET EventKind = 7
+	// The filter restarted from a given pose (ReseedRobot, or move recovery).
+	EventKind_EVENT_KIND_RESEEDED EventKind = 7
 )
 
 // Enum value maps for EventKind.
@@ -119,7 +119,7 @@ var (
 		4: "EVENT_KIND_MOVE_RECOVERED",
 		5: "EVENT_KIND_TRUST_LOST",
 		6: "EVENT_KIND_TRUST_REGAINED",
-		7: "EVENT_KIND_POSE_SET",
+		7: "EVENT_KIND_RESEEDED",
 	}
 	EventKind_value = map[string]int32{
 		"EVENT_KIND_UNSPECIFIED":    0,
@@ -129,7 +129,7 @@ var (
 		"EVENT_KIND_MOVE_RECOVERED": 4,
 		"EVENT_KIND_TRUST_LOST":     5,
 		"EVENT_KIND_TRUST_REGAINED": 6,
-		"EVENT_KIND_POSE_SET":       7,
+		"EVENT_KIND_RESEEDED":       7,
 	}
 )
 
@@ -968,7 +968,7 @@ type FusedPose struct {
 	// The stamp, nanoseconds.
 	StampNs int64 `protobuf:"varint,2,opt,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
 	// The pose in the field frame.
-	Pose *Pose2D `protobuf:"bytes,3,opt,name=pose,proto3" json:"pose,omitempty"`
+	Pose *FloorPose `protobuf:"bytes,3,opt,name=pose,proto3" json:"pose,omitempty"`
 	// Covariance of (x, y, heading), 3x3.
 	Covariance *Covariance `protobuf:"bytes,4,opt,name=covariance,proto3" json:"covariance,omitempty"`
 	// The IMU's heading zero in the field frame, radians.
@@ -1039,7 +1039,7 @@ func (x *FusedPose) GetStampNs() int64 {
 	return 0
 }
 
-func (x *FusedPose) GetPose() *Pose2D {
+func (x *FusedPose) GetPose() *FloorPose {
 	if x != nil {
 		return x.Pose
 	}
@@ -1416,31 +1416,31 @@ func (x *GetPoseAtResponse) GetPose() *FusedPose {
 	return nil
 }
 
-// SetPoseRequest re-seeds a robot's pose.
-type SetPoseRequest struct {
+// ReseedRobotRequest puts a robot at a known pose.
+type ReseedRobotRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// "robots/{robot}".
 	Robot string `protobuf:"bytes,1,opt,name=robot,proto3" json:"robot,omitempty"`
 	// The pose and its covariance.
-	Setting       *PoseSetting `protobuf:"bytes,2,opt,name=setting,proto3" json:"setting,omitempty"`
+	Reseed        *Reseed `protobuf:"bytes,2,opt,name=reseed,proto3" json:"reseed,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
-func (x *SetPoseRequest) Reset() {
-	*x = SetPoseRequest{}
+func (x *ReseedRobotRequest) Reset() {
+	*x = ReseedRobotRequest{}
 	mi := &file_reckon_v1_fusion_service_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
 
-func (x *SetPoseRequest) String() string {
+func (x *ReseedRobotRequest) String() string {
 	return protoimpl.X.MessageStringOf(x)
 }
 
-func (*SetPoseRequest) ProtoMessage() {}
+func (*ReseedRobotRequest) ProtoMessage() {}
 
-func (x *SetPoseRequest) ProtoReflect() protoreflect.Message {
+func (x *ReseedRobotRequest) ProtoReflect() protoreflect.Message {
 	mi := &file_reckon_v1_fusion_service_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
@@ -1452,27 +1452,27 @@ func (x *SetPoseRequest) ProtoReflect() protoreflect.Message {
 	return mi.MessageOf(x)
 }
 
-// Deprecated: Use SetPoseRequest.ProtoReflect.Descriptor instead.
-func (*SetPoseRequest) Descriptor() ([]byte, []int) {
+// Deprecated: Use ReseedRobotRequest.ProtoReflect.Descriptor instead.
+func (*ReseedRobotRequest) Descriptor() ([]byte, []int) {
 	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{18}
 }
 
-func (x *SetPoseRequest) GetRobot() string {
+func (x *ReseedRobotRequest) GetRobot() string {
 	if x != nil {
 		return x.Robot
 	}
 	return ""
 }
 
-func (x *SetPoseRequest) GetSetting() *PoseSetting {
+func (x *ReseedRobotRequest) GetReseed() *Reseed {
 	if x != nil {
-		return x.Setting
+		return x.Reseed
 	}
 	return nil
 }
 
-// SetPoseResponse is the verdict.
-type SetPoseResponse struct {
+// ReseedRobotResponse is the verdict.
+type ReseedRobotResponse struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The input's sequence number.
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
@@ -1484,20 +1484,20 @@ type SetPoseResponse struct {
 	sizeCache     protoimpl.SizeCache
 }
 
-func (x *SetPoseResponse) Reset() {
-	*x = SetPoseResponse{}
+func (x *ReseedRobotResponse) Reset() {
+	*x = ReseedRobotResponse{}
 	mi := &file_reckon_v1_fusion_service_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
 
-func (x *SetPoseResponse) String() string {
+func (x *ReseedRobotResponse) String() string {
 	return protoimpl.X.MessageStringOf(x)
 }
 
-func (*SetPoseResponse) ProtoMessage() {}
+func (*ReseedRobotResponse) ProtoMessage() {}
 
-func (x *SetPoseResponse) ProtoReflect() protoreflect.Message {
+func (x *ReseedRobotResponse) ProtoReflect() protoreflect.Message {
 	mi := &file_reckon_v1_fusion_service_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
@@ -1509,26 +1509,26 @@ func (x *SetPoseResponse) ProtoReflect() protoreflect.Message {
 	return mi.MessageOf(x)
 }
 
-// Deprecated: Use SetPoseResponse.ProtoReflect.Descriptor instead.
-func (*SetPoseResponse) Descriptor() ([]byte, []int) {
+// Deprecated: Use ReseedRobotResponse.ProtoReflect.Descriptor instead.
+func (*ReseedRobotResponse) Descriptor() ([]byte, []int) {
 	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{19}
 }
 
-func (x *SetPoseResponse) GetSequence() uint64 {
+func (x *ReseedRobotResponse) GetSequence() uint64 {
 	if x != nil {
 		return x.Sequence
 	}
 	return 0
 }
 
-func (x *SetPoseResponse) GetVerdict() Verdict {
+func (x *ReseedRobotResponse) GetVerdict() Verdict {
 	if x != nil {
 		return x.Verdict
 	}
 	return Verdict_VERDICT_UNSPECIFIED
 }
 
-func (x *SetPoseResponse) GetReason() string {
+func (x *ReseedRobotResponse) GetReason() string {
 	if x != nil {
 		return x.Reason
 	}
@@ -1805,7 +1805,7 @@ type RobotStatistics struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Odometry verdicts.
 	Odometry *VerdictCounts `protobuf:"bytes,1,opt,name=odometry,proto3" json:"odometry,omitempty"`
-	// Verdicts of IMU headings, fixes and pose settings.
+	// Verdicts of IMU headings, fixes and reseeds.
 	Measurements *VerdictCounts `protobuf:"bytes,2,opt,name=measurements,proto3" json:"measurements,omitempty"`
 	// Per sensor.
 	Sensors []*SensorConsistency `protobuf:"bytes,3,rep,name=sensors,proto3" json:"sensors,omitempty"`
@@ -1968,11 +1968,11 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\bstamp_ns\x18\x02 \x01(\x03R\astampNs\x12\x1b\n" +
 	"\tsensor_id\x18\x03 \x01(\tR\bsensorId\x12\x14\n" +
 	"\x05value\x18\x04 \x01(\x01R\x05value\x12\x16\n" +
-	"\x06detail\x18\x05 \x01(\tR\x06detail\"\xb4\x04\n" +
+	"\x06detail\x18\x05 \x01(\tR\x06detail\"\xb7\x04\n" +
 	"\tFusedPose\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12\x19\n" +
-	"\bstamp_ns\x18\x02 \x01(\x03R\astampNs\x12%\n" +
-	"\x04pose\x18\x03 \x01(\v2\x11.reckon.v1.Pose2DR\x04pose\x125\n" +
+	"\bstamp_ns\x18\x02 \x01(\x03R\astampNs\x12(\n" +
+	"\x04pose\x18\x03 \x01(\v2\x14.reckon.v1.FloorPoseR\x04pose\x125\n" +
 	"\n" +
 	"covariance\x18\x04 \x01(\v2\x15.reckon.v1.CovarianceR\n" +
 	"covariance\x12$\n" +
@@ -2003,11 +2003,11 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12\x19\n" +
 	"\bstamp_ns\x18\x02 \x01(\x03R\astampNs\"=\n" +
 	"\x11GetPoseAtResponse\x12(\n" +
-	"\x04pose\x18\x01 \x01(\v2\x14.reckon.v1.FusedPoseR\x04pose\"X\n" +
-	"\x0eSetPoseRequest\x12\x14\n" +
-	"\x05robot\x18\x01 \x01(\tR\x05robot\x120\n" +
-	"\asetting\x18\x02 \x01(\v2\x16.reckon.v1.PoseSettingR\asetting\"s\n" +
-	"\x0fSetPoseResponse\x12\x1a\n" +
+	"\x04pose\x18\x01 \x01(\v2\x14.reckon.v1.FusedPoseR\x04pose\"U\n" +
+	"\x12ReseedRobotRequest\x12\x14\n" +
+	"\x05robot\x18\x01 \x01(\tR\x05robot\x12)\n" +
+	"\x06reseed\x18\x02 \x01(\v2\x11.reckon.v1.ReseedR\x06reseed\"w\n" +
+	"\x13ReseedRobotResponse\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
 	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x16\n" +
 	"\x06reason\x18\x03 \x01(\tR\x06reason\",\n" +
@@ -2059,7 +2059,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x19EVENT_KIND_MOVE_RECOVERED\x10\x04\x12\x19\n" +
 	"\x15EVENT_KIND_TRUST_LOST\x10\x05\x12\x1d\n" +
 	"\x19EVENT_KIND_TRUST_REGAINED\x10\x06\x12\x17\n" +
-	"\x13EVENT_KIND_POSE_SET\x10\a*\x8b\x02\n" +
+	"\x13EVENT_KIND_RESEEDED\x10\a*\x8b\x02\n" +
 	"\x0eDistrustReason\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_NO_ODOMETRY\x10\x01\x12&\n" +
@@ -2067,7 +2067,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"!DISTRUST_REASON_HEADING_UNCERTAIN\x10\x03\x12 \n" +
 	"\x1cDISTRUST_REASON_INCONSISTENT\x10\x04\x12!\n" +
 	"\x1dDISTRUST_REASON_FIXES_REFUSED\x10\x05\x12#\n" +
-	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x062\x9a\x05\n" +
+	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x062\xa6\x05\n" +
 	"\rFusionService\x12L\n" +
 	"\vCreateRobot\x12\x1d.reckon.v1.CreateRobotRequest\x1a\x1e.reckon.v1.CreateRobotResponse\x12C\n" +
 	"\bGetRobot\x12\x1a.reckon.v1.GetRobotRequest\x1a\x1b.reckon.v1.GetRobotResponse\x12I\n" +
@@ -2076,9 +2076,9 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\vDeleteRobot\x12\x1d.reckon.v1.DeleteRobotRequest\x1a\x1e.reckon.v1.DeleteRobotResponse\x12A\n" +
 	"\x06Ingest\x12\x18.reckon.v1.IngestRequest\x1a\x19.reckon.v1.IngestResponse(\x010\x01\x12<\n" +
 	"\x05Watch\x12\x17.reckon.v1.WatchRequest\x1a\x18.reckon.v1.WatchResponse0\x01\x12F\n" +
-	"\tGetPoseAt\x12\x1b.reckon.v1.GetPoseAtRequest\x1a\x1c.reckon.v1.GetPoseAtResponse\x12@\n" +
-	"\aSetPose\x12\x19.reckon.v1.SetPoseRequest\x1a\x1a.reckon.v1.SetPoseResponse\x12R\n" +
-	"\rGetStatistics\x12\x1f.reckon.v1.GetStatisticsRequest\x1a .reckon.v1.GetStatisticsResponseB!Z\x1freckon/proto/reckon/v1;reckonv1b\x06proto3"
+	"\tGetPoseAt\x12\x1b.reckon.v1.GetPoseAtRequest\x1a\x1c.reckon.v1.GetPoseAtResponse\x12L\n" +
+	"\vReseedRobot\x12\x1d.reckon.v1.ReseedRobotRequest\x1a\x1e.reckon.v1.ReseedRobotResponse\x12R\n" +
+	"\rGetStatistics\x12\x1f.reckon.v1.GetStatisticsRequest\x1a .reckon.v1.GetStatisticsResponseB)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_fusion_service_proto_rawDescOnce sync.Once
@@ -2116,8 +2116,8 @@ var file_reckon_v1_fusion_service_proto_goTypes = []any{
 	(*WatchResponse)(nil),         // 18: reckon.v1.WatchResponse
 	(*GetPoseAtRequest)(nil),      // 19: reckon.v1.GetPoseAtRequest
 	(*GetPoseAtResponse)(nil),     // 20: reckon.v1.GetPoseAtResponse
-	(*SetPoseRequest)(nil),        // 21: reckon.v1.SetPoseRequest
-	(*SetPoseResponse)(nil),       // 22: reckon.v1.SetPoseResponse
+	(*ReseedRobotRequest)(nil),    // 21: reckon.v1.ReseedRobotRequest
+	(*ReseedRobotResponse)(nil),   // 22: reckon.v1.ReseedRobotResponse
 	(*GetStatisticsRequest)(nil),  // 23: reckon.v1.GetStatisticsRequest
 	(*GetStatisticsResponse)(nil), // 24: reckon.v1.GetStatisticsResponse
 	(*VerdictCounts)(nil),         // 25: reckon.v1.VerdictCounts
@@ -2126,9 +2126,9 @@ var file_reckon_v1_fusion_service_proto_goTypes = []any{
 	(*RobotConfig)(nil),           // 28: reckon.v1.RobotConfig
 	(*Robot)(nil),                 // 29: reckon.v1.Robot
 	(*Sample)(nil),                // 30: reckon.v1.Sample
-	(*Pose2D)(nil),                // 31: reckon.v1.Pose2D
+	(*FloorPose)(nil),             // 31: reckon.v1.FloorPose
 	(*Covariance)(nil),            // 32: reckon.v1.Covariance
-	(*PoseSetting)(nil),           // 33: reckon.v1.PoseSetting
+	(*Reseed)(nil),                // 33: reckon.v1.Reseed
 }
 var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
 	28, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
@@ -2141,15 +2141,15 @@ var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
 	14, // 7: reckon.v1.IngestResponse.events:type_name -> reckon.v1.FusionEvent
 	0,  // 8: reckon.v1.Resolution.verdict:type_name -> reckon.v1.Verdict
 	1,  // 9: reckon.v1.FusionEvent.kind:type_name -> reckon.v1.EventKind
-	31, // 10: reckon.v1.FusedPose.pose:type_name -> reckon.v1.Pose2D
+	31, // 10: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
 	32, // 11: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
 	16, // 12: reckon.v1.FusedPose.velocity:type_name -> reckon.v1.BodyVelocity
 	2,  // 13: reckon.v1.FusedPose.distrust:type_name -> reckon.v1.DistrustReason
 	15, // 14: reckon.v1.WatchResponse.pose:type_name -> reckon.v1.FusedPose
 	14, // 15: reckon.v1.WatchResponse.events:type_name -> reckon.v1.FusionEvent
 	15, // 16: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
-	33, // 17: reckon.v1.SetPoseRequest.setting:type_name -> reckon.v1.PoseSetting
-	0,  // 18: reckon.v1.SetPoseResponse.verdict:type_name -> reckon.v1.Verdict
+	33, // 17: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
+	0,  // 18: reckon.v1.ReseedRobotResponse.verdict:type_name -> reckon.v1.Verdict
 	27, // 19: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
 	25, // 20: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
 	25, // 21: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
@@ -2163,7 +2163,7 @@ var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
 	11, // 29: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
 	17, // 30: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
 	19, // 31: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
-	21, // 32: reckon.v1.FusionService.SetPose:input_type -> reckon.v1.SetPoseRequest
+	21, // 32: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
 	23, // 33: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
 	4,  // 34: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
 	6,  // 35: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
@@ -2172,7 +2172,7 @@ var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
 	12, // 38: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
 	18, // 39: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
 	20, // 40: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
-	22, // 41: reckon.v1.FusionService.SetPose:output_type -> reckon.v1.SetPoseResponse
+	22, // 41: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
 	24, // 42: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
 	34, // [34:43] is the sub-list for method output_type
 	25, // [25:34] is the sub-list for method input_type

@@ -26,7 +26,7 @@ const (
 	FusionService_Ingest_FullMethodName        = "/reckon.v1.FusionService/Ingest"
 	FusionService_Watch_FullMethodName         = "/reckon.v1.FusionService/Watch"
 	FusionService_GetPoseAt_FullMethodName     = "/reckon.v1.FusionService/GetPoseAt"
-	FusionService_SetPose_FullMethodName       = "/reckon.v1.FusionService/SetPose"
+	FusionService_ReseedRobot_FullMethodName   = "/reckon.v1.FusionService/ReseedRobot"
 	FusionService_GetStatistics_FullMethodName = "/reckon.v1.FusionService/GetStatistics"
 )
 
@@ -57,7 +57,7 @@ type FusionServiceClient interface {
 	// past the newest odometry (extrapolated).
 	GetPoseAt(ctx context.Context, in *GetPoseAtRequest, opts ...grpc.CallOption) (*GetPoseAtResponse, error)
 	// Re-seeds a robot's pose by hand.
-	SetPose(ctx context.Context, in *SetPoseRequest, opts ...grpc.CallOption) (*SetPoseResponse, error)
+	ReseedRobot(ctx context.Context, in *ReseedRobotRequest, opts ...grpc.CallOption) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	GetStatistics(ctx context.Context, in *GetStatisticsRequest, opts ...grpc.CallOption) (*GetStatisticsResponse, error)
 }
@@ -152,10 +152,10 @@ func (c *fusionServiceClient) GetPoseAt(ctx context.Context, in *GetPoseAtReques
 	return out, nil
 }
 
-func (c *fusionServiceClient) SetPose(ctx context.Context, in *SetPoseRequest, opts ...grpc.CallOption) (*SetPoseResponse, error) {
+func (c *fusionServiceClient) ReseedRobot(ctx context.Context, in *ReseedRobotRequest, opts ...grpc.CallOption) (*ReseedRobotResponse, error) {
 	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
-	out := new(SetPoseResponse)
-	err := c.cc.Invoke(ctx, FusionService_SetPose_FullMethodName, in, out, cOpts...)
+	out := new(ReseedRobotResponse)
+	err := c.cc.Invoke(ctx, FusionService_ReseedRobot_FullMethodName, in, out, cOpts...)
 	if err != nil {
 		return nil, err
 	}
@@ -199,7 +199,7 @@ type FusionServiceServer interface {
 	// past the newest odometry (extrapolated).
 	GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error)
 	// Re-seeds a robot's pose by hand.
-	SetPose(context.Context, *SetPoseRequest) (*SetPoseResponse, error)
+	ReseedRobot(context.Context, *ReseedRobotRequest) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	GetStatistics(context.Context, *GetStatisticsRequest) (*GetStatisticsResponse, error)
 	mustEmbedUnimplementedFusionServiceServer()
@@ -233,8 +233,8 @@ func (UnimplementedFusionServiceServer) Watch(*WatchRequest, grpc.ServerStreamin
 func (UnimplementedFusionServiceServer) GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method GetPoseAt not implemented")
 }
-func (UnimplementedFusionServiceServer) SetPose(context.Context, *SetPoseRequest) (*SetPoseResponse, error) {
-	return nil, status.Error(codes.Unimplemented, "method SetPose not implemented")
+func (UnimplementedFusionServiceServer) ReseedRobot(context.Context, *ReseedRobotRequest) (*ReseedRobotResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method ReseedRobot not implemented")
 }
 func (UnimplementedFusionServiceServer) GetStatistics(context.Context, *GetStatisticsRequest) (*GetStatisticsResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method GetStatistics not implemented")
@@ -368,20 +368,20 @@ func _FusionService_GetPoseAt_Handler(srv interface{}, ctx context.Context, dec 
 	return interceptor(ctx, in, info, handler)
 }
 
-func _FusionService_SetPose_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
-	in := new(SetPoseRequest)
+func _FusionService_ReseedRobot_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(ReseedRobotRequest)
 	if err := dec(in); err != nil {
 		return nil, err
 	}
 	if interceptor == nil {
-		return srv.(FusionServiceServer).SetPose(ctx, in)
+		return srv.(FusionServiceServer).ReseedRobot(ctx, in)
 	}
 	info := &grpc.UnaryServerInfo{
 		Server:     srv,
-		FullMethod: FusionService_SetPose_FullMethodName,
+		FullMethod: FusionService_ReseedRobot_FullMethodName,
 	}
 	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
-		return srv.(FusionServiceServer).SetPose(ctx, req.(*SetPoseRequest))
+		return srv.(FusionServiceServer).ReseedRobot(ctx, req.(*ReseedRobotRequest))
 	}
 	return interceptor(ctx, in, info, handler)
 }
@@ -432,8 +432,8 @@ var FusionService_ServiceDesc = grpc.ServiceDesc{
 			Handler:    _FusionService_GetPoseAt_Handler,
 		},
 		{
-			MethodName: "SetPose",
-			Handler:    _FusionService_SetPose_Handler,
+			MethodName: "ReseedRobot",
+			Handler:    _FusionService_ReseedRobot_Handler,
 		},
 		{
 			MethodName: "GetStatistics",

@@ -477,7 +477,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\bresponse\x18\x01 \x01(\v2\x19.reckon.v1.IngestResponseR\bresponse\x12(\n" +
 	"\x04pose\x18\x02 \x01(\v2\x14.reckon.v1.FusedPoseR\x04pose\"?\n" +
 	"\x0eJournalClosing\x12-\n" +
-	"\x13delete_time_unix_ns\x18\x01 \x01(\x03R\x10deleteTimeUnixNsB!Z\x1freckon/proto/reckon/v1;reckonv1b\x06proto3"
+	"\x13delete_time_unix_ns\x18\x01 \x01(\x03R\x10deleteTimeUnixNsB)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_journal_proto_rawDescOnce sync.Once

@@ -155,7 +155,7 @@ func (x *Robot) GetInputCount() uint64 {
 }
 
 // RobotConfig is a robot's configuration: its wheel layout, noise model, IMU
-// use, gates, history window and initial pose. Zero fields take the
+// use, gates, history window and starting pose. Zero fields take the
 // defaults stated beside them.
 type RobotConfig struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -190,11 +190,11 @@ type RobotConfig struct {
 	Recovery *MoveRecovery `protobuf:"bytes,13,opt,name=recovery,proto3" json:"recovery,omitempty"`
 	// When the estimate is not to be trusted.
 	Trust *TrustLimits `protobuf:"bytes,14,opt,name=trust,proto3" json:"trust,omitempty"`
-	// The initial pose in the field frame.
-	InitialPose *Pose2D `protobuf:"bytes,15,opt,name=initial_pose,json=initialPose,proto3" json:"initial_pose,omitempty"`
-	// Covariance of the initial pose, 3x3 (m^2, rad^2; default
+	// The pose the filter starts from, in the field frame.
+	StartPose *FloorPose `protobuf:"bytes,15,opt,name=start_pose,json=startPose,proto3" json:"start_pose,omitempty"`
+	// Covariance of start_pose, 3x3 (m^2, rad^2; default
 	// diag(0.0025, 0.0025, 0.0012)).
-	InitialCovariance *Covariance `protobuf:"bytes,16,opt,name=initial_covariance,json=initialCovariance,proto3" json:"initial_covariance,omitempty"`
+	StartCovariance *Covariance `protobuf:"bytes,16,opt,name=start_covariance,json=startCovariance,proto3" json:"start_covariance,omitempty"`
 	// Mapped landmarks for landmark fixes.
 	Landmarks     []*Landmark `protobuf:"bytes,17,rep,name=landmarks,proto3" json:"landmarks,omitempty"`
 	unknownFields protoimpl.UnknownFields
@@ -329,16 +329,16 @@ func (x *RobotConfig) GetTrust() *TrustLimits {
 	return nil
 }
 
-func (x *RobotConfig) GetInitialPose() *Pose2D {
+func (x *RobotConfig) GetStartPose() *FloorPose {
 	if x != nil {
-		return x.InitialPose
+		return x.StartPose
 	}
 	return nil
 }
 
-func (x *RobotConfig) GetInitialCovariance() *Covariance {
+func (x *RobotConfig) GetStartCovariance() *Covariance {
 	if x != nil {
-		return x.InitialCovariance
+		return x.StartCovariance
 	}
 	return nil
 }
@@ -720,9 +720,9 @@ func (x *TrustLimits) GetRefusedInARow() int32 {
 	return 0
 }
 
-// Pose2D is a planar pose: in the field frame for a robot, in the body frame
+// FloorPose is a pose on the floor plane: in the field frame for a robot, in the body frame
 // for a sensor mount.
-type Pose2D struct {
+type FloorPose struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// x, metres.
 	XM float64 `protobuf:"fixed64,1,opt,name=x_m,json=xM,proto3" json:"x_m,omitempty"`
@@ -734,20 +734,20 @@ type Pose2D struct {
 	sizeCache     protoimpl.SizeCache
 }
 
-func (x *Pose2D) Reset() {
-	*x = Pose2D{}
+func (x *FloorPose) Reset() {
+	*x = FloorPose{}
 	mi := &file_reckon_v1_robot_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
 
-func (x *Pose2D) String() string {
+func (x *FloorPose) String() string {
 	return protoimpl.X.MessageStringOf(x)
 }
 
-func (*Pose2D) ProtoMessage() {}
+func (*FloorPose) ProtoMessage() {}
 
-func (x *Pose2D) ProtoReflect() protoreflect.Message {
+func (x *FloorPose) ProtoReflect() protoreflect.Message {
 	mi := &file_reckon_v1_robot_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
@@ -759,26 +759,26 @@ func (x *Pose2D) ProtoReflect() protoreflect.Message {
 	return mi.MessageOf(x)
 }
 
-// Deprecated: Use Pose2D.ProtoReflect.Descriptor instead.
-func (*Pose2D) Descriptor() ([]byte, []int) {
+// Deprecated: Use FloorPose.ProtoReflect.Descriptor instead.
+func (*FloorPose) Descriptor() ([]byte, []int) {
 	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{6}
 }
 
-func (x *Pose2D) GetXM() float64 {
+func (x *FloorPose) GetXM() float64 {
 	if x != nil {
 		return x.XM
 	}
 	return 0
 }
 
-func (x *Pose2D) GetYM() float64 {
+func (x *FloorPose) GetYM() float64 {
 	if x != nil {
 		return x.YM
 	}
 	return 0
 }
 
-func (x *Pose2D) GetHeadingRad() float64 {
+func (x *FloorPose) GetHeadingRad() float64 {
 	if x != nil {
 		return x.HeadingRad
 	}
@@ -915,7 +915,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12&\n" +
 	"\x0fnewest_stamp_ns\x18\x03 \x01(\x03R\rnewestStampNs\x12\x1f\n" +
 	"\vinput_count\x18\x04 \x01(\x04R\n" +
-	"inputCount\"\x88\x06\n" +
+	"inputCount\"\x83\x06\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +
@@ -932,9 +932,10 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x11max_speed_m_per_s\x18\v \x01(\x01R\rmaxSpeedMPerS\x123\n" +
 	"\x17max_turn_rate_rad_per_s\x18\f \x01(\x01R\x12maxTurnRateRadPerS\x123\n" +
 	"\brecovery\x18\r \x01(\v2\x17.reckon.v1.MoveRecoveryR\brecovery\x12,\n" +
-	"\x05trust\x18\x0e \x01(\v2\x16.reckon.v1.TrustLimitsR\x05trust\x124\n" +
-	"\finitial_pose\x18\x0f \x01(\v2\x11.reckon.v1.Pose2DR\vinitialPose\x12D\n" +
-	"\x12initial_covariance\x18\x10 \x01(\v2\x15.reckon.v1.CovarianceR\x11initialCovariance\x121\n" +
+	"\x05trust\x18\x0e \x01(\v2\x16.reckon.v1.TrustLimitsR\x05trust\x123\n" +
+	"\n" +
+	"start_pose\x18\x0f \x01(\v2\x14.reckon.v1.FloorPoseR\tstartPose\x12@\n" +
+	"\x10start_covariance\x18\x10 \x01(\v2\x15.reckon.v1.CovarianceR\x0fstartCovariance\x121\n" +
 	"\tlandmarks\x18\x11 \x03(\v2\x13.reckon.v1.LandmarkR\tlandmarks\"\xae\x01\n" +
 	"\fEncoderWheel\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x0f\n" +
@@ -967,8 +968,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\n" +
 	"nis_window\x18\x03 \x01(\x05R\tnisWindow\x127\n" +
 	"\x17consistency_probability\x18\x04 \x01(\x01R\x16consistencyProbability\x12'\n" +
-	"\x10refused_in_a_row\x18\x05 \x01(\x05R\rrefusedInARow\"K\n" +
-	"\x06Pose2D\x12\x0f\n" +
+	"\x10refused_in_a_row\x18\x05 \x01(\x05R\rrefusedInARow\"N\n" +
+	"\tFloorPose\x12\x0f\n" +
 	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
 	"\x03y_m\x18\x02 \x01(\x01R\x02yM\x12\x1f\n" +
 	"\vheading_rad\x18\x03 \x01(\x01R\n" +
@@ -985,7 +986,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x14IMU_MODE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rIMU_MODE_NONE\x10\x01\x12\x15\n" +
 	"\x11IMU_MODE_ABSOLUTE\x10\x02\x12\x15\n" +
-	"\x11IMU_MODE_ROTATION\x10\x03B!Z\x1freckon/proto/reckon/v1;reckonv1b\x06proto3"
+	"\x11IMU_MODE_ROTATION\x10\x03B)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_robot_proto_rawDescOnce sync.Once
@@ -1009,7 +1010,7 @@ var file_reckon_v1_robot_proto_goTypes = []any{
 	(*NoiseModel)(nil),   // 4: reckon.v1.NoiseModel
 	(*MoveRecovery)(nil), // 5: reckon.v1.MoveRecovery
 	(*TrustLimits)(nil),  // 6: reckon.v1.TrustLimits
-	(*Pose2D)(nil),       // 7: reckon.v1.Pose2D
+	(*FloorPose)(nil),    // 7: reckon.v1.FloorPose
 	(*Covariance)(nil),   // 8: reckon.v1.Covariance
 	(*Landmark)(nil),     // 9: reckon.v1.Landmark
 }
@@ -1020,8 +1021,8 @@ var file_reckon_v1_robot_proto_depIdxs = []int32{
 	4, // 3: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
 	5, // 4: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
 	6, // 5: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
-	7, // 6: reckon.v1.RobotConfig.initial_pose:type_name -> reckon.v1.Pose2D
-	8, // 7: reckon.v1.RobotConfig.initial_covariance:type_name -> reckon.v1.Covariance
+	7, // 6: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
+	8, // 7: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
 	9, // 8: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
 	9, // [9:9] is the sub-list for method output_type
 	9, // [9:9] is the sub-list for method input_type

@@ -385,7 +385,7 @@ type Fix struct {
 	// Names the sensor for statistics.
 	SensorId string `protobuf:"bytes,2,opt,name=sensor_id,json=sensorId,proto3" json:"sensor_id,omitempty"`
 	// The sensor's pose in the body frame.
-	Mount *Pose2D `protobuf:"bytes,3,opt,name=mount,proto3" json:"mount,omitempty"`
+	Mount *FloorPose `protobuf:"bytes,3,opt,name=mount,proto3" json:"mount,omitempty"`
 	// What was measured.
 	//
 	// Types that are valid to be assigned to Measurement:
@@ -445,7 +445,7 @@ func (x *Fix) GetSensorId() string {
 	return ""
 }
 
-func (x *Fix) GetMount() *Pose2D {
+func (x *Fix) GetMount() *FloorPose {
 	if x != nil {
 		return x.Mount
 	}
@@ -774,7 +774,7 @@ type Sample struct {
 	//	*Sample_Odometry
 	//	*Sample_Heading
 	//	*Sample_Fix
-	//	*Sample_PoseSetting
+	//	*Sample_Reseed
 	Sample        isSample_Sample `protobuf_oneof:"sample"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -844,10 +844,10 @@ func (x *Sample) GetFix() *Fix {
 	return nil
 }
 
-func (x *Sample) GetPoseSetting() *PoseSetting {
+func (x *Sample) GetReseed() *Reseed {
 	if x != nil {
-		if x, ok := x.Sample.(*Sample_PoseSetting); ok {
-			return x.PoseSetting
+		if x, ok := x.Sample.(*Sample_Reseed); ok {
+			return x.Reseed
 		}
 	}
 	return nil
@@ -872,9 +872,9 @@ type Sample_Fix struct {
 	Fix *Fix `protobuf:"bytes,3,opt,name=fix,proto3,oneof"`
 }
 
-type Sample_PoseSetting struct {
-	// A pose set by hand.
-	PoseSetting *PoseSetting `protobuf:"bytes,4,opt,name=pose_setting,json=poseSetting,proto3,oneof"`
+type Sample_Reseed struct {
+	// A pose given by hand (ReseedRobot).
+	Reseed *Reseed `protobuf:"bytes,4,opt,name=reseed,proto3,oneof"`
 }
 
 func (*Sample_Odometry) isSample_Sample() {}
@@ -883,35 +883,35 @@ func (*Sample_Heading) isSample_Sample() {}
 
 func (*Sample_Fix) isSample_Sample() {}
 
-func (*Sample_PoseSetting) isSample_Sample() {}
+func (*Sample_Reseed) isSample_Sample() {}
 
-// PoseSetting re-seeds a robot's pose by hand.
-type PoseSetting struct {
+// Reseed puts a robot at a known pose by hand: the filter restarts from it.
+type Reseed struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// When the pose holds, nanoseconds; earlier inputs are no longer taken.
 	StampNs int64 `protobuf:"varint,1,opt,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
 	// The pose.
-	Pose *Pose2D `protobuf:"bytes,2,opt,name=pose,proto3" json:"pose,omitempty"`
+	Pose *FloorPose `protobuf:"bytes,2,opt,name=pose,proto3" json:"pose,omitempty"`
 	// Its covariance, 3x3.
 	Covariance    *Covariance `protobuf:"bytes,3,opt,name=covariance,proto3" json:"covariance,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
-func (x *PoseSetting) Reset() {
-	*x = PoseSetting{}
+func (x *Reseed) Reset() {
+	*x = Reseed{}
 	mi := &file_reckon_v1_samples_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
 
-func (x *PoseSetting) String() string {
+func (x *Reseed) String() string {
 	return protoimpl.X.MessageStringOf(x)
 }
 
-func (*PoseSetting) ProtoMessage() {}
+func (*Reseed) ProtoMessage() {}
 
-func (x *PoseSetting) ProtoReflect() protoreflect.Message {
+func (x *Reseed) ProtoReflect() protoreflect.Message {
 	mi := &file_reckon_v1_samples_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
@@ -923,26 +923,26 @@ func (x *PoseSetting) ProtoReflect() protoreflect.Message {
 	return mi.MessageOf(x)
 }
 
-// Deprecated: Use PoseSetting.ProtoReflect.Descriptor instead.
-func (*PoseSetting) Descriptor() ([]byte, []int) {
+// Deprecated: Use Reseed.ProtoReflect.Descriptor instead.
+func (*Reseed) Descriptor() ([]byte, []int) {
 	return file_reckon_v1_samples_proto_rawDescGZIP(), []int{11}
 }
 
-func (x *PoseSetting) GetStampNs() int64 {
+func (x *Reseed) GetStampNs() int64 {
 	if x != nil {
 		return x.StampNs
 	}
 	return 0
 }
 
-func (x *PoseSetting) GetPose() *Pose2D {
+func (x *Reseed) GetPose() *FloorPose {
 	if x != nil {
 		return x.Pose
 	}
 	return nil
 }
 
-func (x *PoseSetting) GetCovariance() *Covariance {
+func (x *Reseed) GetCovariance() *Covariance {
 	if x != nil {
 		return x.Covariance
 	}
@@ -975,11 +975,11 @@ const file_reckon_v1_samples_proto_rawDesc = "" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x1f\n" +
 	"\vheading_rad\x18\x02 \x01(\x01R\n" +
 	"headingRad\x12#\n" +
-	"\rvariance_rad2\x18\x03 \x01(\x01R\fvarianceRad2\"\xf5\x02\n" +
+	"\rvariance_rad2\x18\x03 \x01(\x01R\fvarianceRad2\"\xf8\x02\n" +
 	"\x03Fix\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x1b\n" +
-	"\tsensor_id\x18\x02 \x01(\tR\bsensorId\x12'\n" +
-	"\x05mount\x18\x03 \x01(\v2\x11.reckon.v1.Pose2DR\x05mount\x12(\n" +
+	"\tsensor_id\x18\x02 \x01(\tR\bsensorId\x12*\n" +
+	"\x05mount\x18\x03 \x01(\v2\x14.reckon.v1.FloorPoseR\x05mount\x12(\n" +
 	"\x04pose\x18\x04 \x01(\v2\x12.reckon.v1.PoseFixH\x00R\x04pose\x124\n" +
 	"\bposition\x18\x05 \x01(\v2\x16.reckon.v1.PositionFixH\x00R\bposition\x121\n" +
 	"\aheading\x18\x06 \x01(\v2\x15.reckon.v1.HeadingFixH\x00R\aheading\x124\n" +
@@ -1008,19 +1008,19 @@ const file_reckon_v1_samples_proto_rawDesc = "" +
 	"bearingRad\x88\x01\x01B\n" +
 	"\n" +
 	"\b_range_mB\x0e\n" +
-	"\f_bearing_rad\"\xe2\x01\n" +
+	"\f_bearing_rad\"\xd2\x01\n" +
 	"\x06Sample\x127\n" +
 	"\bodometry\x18\x01 \x01(\v2\x19.reckon.v1.OdometrySampleH\x00R\bodometry\x124\n" +
 	"\aheading\x18\x02 \x01(\v2\x18.reckon.v1.HeadingSampleH\x00R\aheading\x12\"\n" +
-	"\x03fix\x18\x03 \x01(\v2\x0e.reckon.v1.FixH\x00R\x03fix\x12;\n" +
-	"\fpose_setting\x18\x04 \x01(\v2\x16.reckon.v1.PoseSettingH\x00R\vposeSettingB\b\n" +
-	"\x06sample\"\x86\x01\n" +
-	"\vPoseSetting\x12\x19\n" +
-	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12%\n" +
-	"\x04pose\x18\x02 \x01(\v2\x11.reckon.v1.Pose2DR\x04pose\x125\n" +
+	"\x03fix\x18\x03 \x01(\v2\x0e.reckon.v1.FixH\x00R\x03fix\x12+\n" +
+	"\x06reseed\x18\x04 \x01(\v2\x11.reckon.v1.ReseedH\x00R\x06reseedB\b\n" +
+	"\x06sample\"\x84\x01\n" +
+	"\x06Reseed\x12\x19\n" +
+	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12(\n" +
+	"\x04pose\x18\x02 \x01(\v2\x14.reckon.v1.FloorPoseR\x04pose\x125\n" +
 	"\n" +
 	"covariance\x18\x03 \x01(\v2\x15.reckon.v1.CovarianceR\n" +
-	"covarianceB!Z\x1freckon/proto/reckon/v1;reckonv1b\x06proto3"
+	"covarianceB)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_samples_proto_rawDescOnce sync.Once
@@ -1047,15 +1047,15 @@ var file_reckon_v1_samples_proto_goTypes = []any{
 	(*HeadingFix)(nil),     // 8: reckon.v1.HeadingFix
 	(*LandmarkFix)(nil),    // 9: reckon.v1.LandmarkFix
 	(*Sample)(nil),         // 10: reckon.v1.Sample
-	(*PoseSetting)(nil),    // 11: reckon.v1.PoseSetting
-	(*Pose2D)(nil),         // 12: reckon.v1.Pose2D
+	(*Reseed)(nil),         // 11: reckon.v1.Reseed
+	(*FloorPose)(nil),      // 12: reckon.v1.FloorPose
 	(*Covariance)(nil),     // 13: reckon.v1.Covariance
 }
 var file_reckon_v1_samples_proto_depIdxs = []int32{
 	1,  // 0: reckon.v1.OdometrySample.travel:type_name -> reckon.v1.WheelTravel
 	2,  // 1: reckon.v1.OdometrySample.counts:type_name -> reckon.v1.WheelCounts
 	3,  // 2: reckon.v1.OdometrySample.step:type_name -> reckon.v1.BodyStep
-	12, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.Pose2D
+	12, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
 	6,  // 4: reckon.v1.Fix.pose:type_name -> reckon.v1.PoseFix
 	7,  // 5: reckon.v1.Fix.position:type_name -> reckon.v1.PositionFix
 	8,  // 6: reckon.v1.Fix.heading:type_name -> reckon.v1.HeadingFix
@@ -1064,9 +1064,9 @@ var file_reckon_v1_samples_proto_depIdxs = []int32{
 	0,  // 9: reckon.v1.Sample.odometry:type_name -> reckon.v1.OdometrySample
 	4,  // 10: reckon.v1.Sample.heading:type_name -> reckon.v1.HeadingSample
 	5,  // 11: reckon.v1.Sample.fix:type_name -> reckon.v1.Fix
-	11, // 12: reckon.v1.Sample.pose_setting:type_name -> reckon.v1.PoseSetting
-	12, // 13: reckon.v1.PoseSetting.pose:type_name -> reckon.v1.Pose2D
-	13, // 14: reckon.v1.PoseSetting.covariance:type_name -> reckon.v1.Covariance
+	11, // 12: reckon.v1.Sample.reseed:type_name -> reckon.v1.Reseed
+	12, // 13: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
+	13, // 14: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
 	15, // [15:15] is the sub-list for method output_type
 	15, // [15:15] is the sub-list for method input_type
 	15, // [15:15] is the sub-list for extension type_name
@@ -1096,7 +1096,7 @@ func file_reckon_v1_samples_proto_init() {
 		(*Sample_Odometry)(nil),
 		(*Sample_Heading)(nil),
 		(*Sample_Fix)(nil),
-		(*Sample_PoseSetting)(nil),
+		(*Sample_Reseed)(nil),
 	}
 	type x struct{}
 	out := protoimpl.TypeBuilder{

@@ -16,9 +16,9 @@ import (
 	"syscall"
 	"time"
 
-	pb "reckon/proto/reckon/v1"
-	"reckon/server"
-	"reckon/server/wire"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
+	"reckon.example/server/wire"
 )
 
 func main() {

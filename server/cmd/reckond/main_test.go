@@ -45,7 +45,7 @@ func TestStartAndStop(t *testing.T) {
 	done := make(chan error, 1)
 	errb := &lockedBuffer{}
 	go func() {
-		done <- run(ctx, []string{"-listen", "127.0.0.1:0", "-journal", dir, "-robot", "cart=../../../testdata/robots/differential.yaml"}, &bytes.Buffer{}, errb)
+		done <- run(ctx, []string{"-listen", "127.0.0.1:0", "-journal", dir, "-robot", "cart=../../../testdata/robots/drive-wheel-turn.yaml"}, &bytes.Buffer{}, errb)
 	}()
 	for i := 0; i < 500 && !strings.Contains(errb.String(), "serving"); i++ {
 		select {

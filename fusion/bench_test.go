@@ -4,15 +4,15 @@ import (
 	"math"
 	"testing"
 
-	"reckon.example/clients/sim"
 	"reckon.example/estimator"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 // benchRobot returns a robot with a full window at 200 Hz odometry and the
 // travel of one 5 ms sample.
 func benchRobot(b *testing.B) (*fusion.Robot, []float64) {
-	cfg := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true}.Config()
+	cfg := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true}.Config()
 	r, err := fusion.New(cfg)
 	if err != nil {
 		b.Fatal(err)
@@ -42,8 +42,8 @@ func BenchmarkLateFix(b *testing.B) {
 	for b.Loop() {
 		feed()
 		p, _ := r.PoseAt((k - 30) * 5e6)
-		cam := estimator.Compose(p.Pose, sim.CameraMount)
-		r.AddFix(fusion.Fix{StampNs: (k-30)*5e6 + 1e6, Kind: fusion.FixPose, Mount: sim.CameraMount, XM: cam.X, YM: cam.Y, HeadingRad: cam.Heading,
+		cam := estimator.Compose(p.Pose, fusiontest.CameraMount)
+		r.AddFix(fusion.Fix{StampNs: (k-30)*5e6 + 1e6, Kind: fusion.FixPose, Mount: fusiontest.CameraMount, XM: cam.X, YM: cam.Y, HeadingRad: cam.Heading,
 			Cov: []float64{9e-4, 0, 0, 0, 9e-4, 0, 0, 0, 4e-4}})
 	}
 }
@@ -67,9 +67,9 @@ func BenchmarkOdometry(b *testing.B) {
 // 100 Hz IMU, 10 Hz camera fixes 50 to 200 ms late, 5% outliers) through
 // fusion; the samples are generated beforehand, outside the timing.
 func BenchmarkHour(b *testing.B) {
-	s := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 3600, OutlierFraction: 0.05})
+	s := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 3600, OutlierFraction: 0.05})
 	cfg := s.Config()
-	var ins []sim.Input
+	var ins []fusiontest.Input
 	for {
 		in, ok := s.Next()
 		if !ok {
@@ -81,7 +81,7 @@ func BenchmarkHour(b *testing.B) {
 	for b.Loop() {
 		r, _ := fusion.New(cfg)
 		for i := range ins {
-			sim.Feed(r, &ins[i])
+			fusiontest.Feed(r, &ins[i])
 		}
 		if p := r.Pose(); math.IsNaN(p.Pose.X) {
 			b.Fatal("NaN")

@@ -173,7 +173,7 @@ type Config struct {
 	// estimate (default covariance diag(0.0025, 0.0025, 0.0012)).
 	StartPose estimator.Pose
 	StartCov  []float64
-	Landmarks   []Landmark
+	Landmarks []Landmark
 }
 
 // ErrConfig marks every configuration error.

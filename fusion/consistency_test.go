@@ -8,9 +8,9 @@ import (
 	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat/distuv"
 
-	"reckon.example/clients/sim"
 	"reckon.example/estimator"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 // poseNEES returns the normalised estimation error squared of the pose part:
@@ -44,10 +44,10 @@ func poseNEES(t *testing.T, p fusion.FusedPose, truth estimator.Pose) float64 {
 // the band too.
 func TestNEESConsistency(t *testing.T) {
 	const runs, duration, every = 40, 30.0, int64(500e6)
-	for _, sc := range []sim.Scenario{
-		{Layout: sim.FreeWheelTurn, IMU: true},
-		{Layout: sim.GyroTurn},
-		{Layout: sim.DriveWheelTurn, IMU: true, Markers: true},
+	for _, sc := range []fusiontest.Scenario{
+		{Layout: fusiontest.FreeWheelTurn, IMU: true},
+		{Layout: fusiontest.GyroTurn},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true},
 	} {
 		t.Run(sc.Layout.String(), func(t *testing.T) {
 			checkpoints := int(duration*1e9/float64(every)) + 1
@@ -57,7 +57,7 @@ func TestNEESConsistency(t *testing.T) {
 			for run := 0; run < runs; run++ {
 				sc := sc
 				sc.Seed, sc.DurationS = uint64(100+run), duration
-				s := sim.New(sc)
+				s := fusiontest.New(sc)
 				r, err := fusion.New(s.Config())
 				if err != nil {
 					t.Fatal(err)
@@ -69,7 +69,7 @@ func TestNEESConsistency(t *testing.T) {
 					if !ok {
 						break
 					}
-					sim.Feed(r, &in)
+					fusiontest.Feed(r, &in)
 					if in.Odometry != nil && in.Odometry.StampNs%every == 0 {
 						truth[in.Odometry.StampNs] = in.Truth
 					}
@@ -118,8 +118,8 @@ func TestNEESConsistency(t *testing.T) {
 
 // rmsError runs a scenario and returns the RMS position error at odometry
 // stamps, and the robot.
-func rmsError(t *testing.T, sc sim.Scenario, withFixes bool) (float64, *fusion.Robot, []fusion.Result, []sim.Input) {
-	s := sim.New(sc)
+func rmsError(t *testing.T, sc fusiontest.Scenario, withFixes bool) (float64, *fusion.Robot, []fusion.Result, []fusiontest.Input) {
+	s := fusiontest.New(sc)
 	r, err := fusion.New(s.Config())
 	if err != nil {
 		t.Fatal(err)
@@ -127,7 +127,7 @@ func rmsError(t *testing.T, sc sim.Scenario, withFixes bool) (float64, *fusion.R
 	var se float64
 	var n int
 	var results []fusion.Result
-	var ins []sim.Input
+	var ins []fusiontest.Input
 	for {
 		in, ok := s.Next()
 		if !ok {
@@ -136,7 +136,7 @@ func rmsError(t *testing.T, sc sim.Scenario, withFixes bool) (float64, *fusion.R
 		if in.Fix != nil && !withFixes {
 			continue
 		}
-		res := sim.Feed(r, &in)
+		res := fusiontest.Feed(r, &in)
 		results = append(results, res)
 		ins = append(ins, in)
 		if in.Odometry != nil {
@@ -152,7 +152,7 @@ func rmsError(t *testing.T, sc sim.Scenario, withFixes bool) (float64, *fusion.R
 // gate refuses nearly all of them and keeps nearly all good ones, and the
 // fused error is well below odometry alone.
 func TestGatingRejectsOutliers(t *testing.T) {
-	sc := sim.Scenario{Layout: sim.FreeWheelTurn, Seed: 31, OutlierFraction: 0.1, DurationS: 120, SlipPerS: 0.02}
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 31, OutlierFraction: 0.1, DurationS: 120, SlipPerS: 0.02}
 	fused, _, results, ins := rmsError(t, sc, true)
 	odo, _, _, _ := rmsError(t, sc, false)
 	verdicts := map[int]fusion.Verdict{}
@@ -201,8 +201,8 @@ func TestGatingRejectsOutliers(t *testing.T) {
 // camera's fixes are refused, agree with one another, and re-initialise the
 // pose, after which the error is small again.
 func TestMoveRecovery(t *testing.T) {
-	sc := sim.Scenario{Layout: sim.FreeWheelTurn, Seed: 41, DurationS: 40, Bump: &sim.Bump{AtS: 20, DXM: 1.2, DYM: -0.4, DRad: 0.4}}
-	s := sim.New(sc)
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 41, DurationS: 40, Bump: &fusiontest.Bump{AtS: 20, DXM: 1.2, DYM: -0.4, DRad: 0.4}}
+	s := fusiontest.New(sc)
 	r, _ := fusion.New(s.Config())
 	recovered := false
 	var after []float64
@@ -211,7 +211,7 @@ func TestMoveRecovery(t *testing.T) {
 		if !ok {
 			break
 		}
-		res := sim.Feed(r, &in)
+		res := fusiontest.Feed(r, &in)
 		for _, e := range res.Events {
 			if e.Kind == fusion.EventMoveRecovered {
 				recovered = true
@@ -238,13 +238,13 @@ func TestMoveRecovery(t *testing.T) {
 	cfg := s.Config()
 	cfg.Recovery.Enabled = false
 	r2, _ := fusion.New(cfg)
-	s2 := sim.New(sc)
+	s2 := fusiontest.New(sc)
 	for {
 		in, ok := s2.Next()
 		if !ok {
 			break
 		}
-		sim.Feed(r2, &in)
+		fusiontest.Feed(r2, &in)
 	}
 	if d := r2.Pose().Distrust; d&fusion.TrustFixesRefused == 0 {
 		t.Errorf("without recovery: distrust %v, want fixes-refused", d)
@@ -284,7 +284,7 @@ func TestSlipSuspected(t *testing.T) {
 // interval split by its twist fraction); past the newest odometry it
 // extrapolates, bounded.
 func TestPoseAt(t *testing.T) {
-	cfg := sim.Scenario{Layout: sim.FreeWheelTurn}.Config()
+	cfg := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn}.Config()
 	r, _ := fusion.New(cfg)
 	coef := func(w fusion.Wheel, s estimator.Step) float64 {
 		c := estimator.WheelCoef(w.XM, w.YM, w.DirectionRad)

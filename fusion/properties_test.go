@@ -5,15 +5,15 @@ import (
 	"slices"
 	"testing"
 
-	"reckon.example/clients/sim"
 	"reckon.example/estimator"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 // runOdometry feeds only the odometry of a scenario and returns the robot.
-func runOdometry(t *testing.T, sc sim.Scenario) *fusion.Robot {
+func runOdometry(t *testing.T, sc fusiontest.Scenario) *fusion.Robot {
 	t.Helper()
-	s := sim.New(sc)
+	s := fusiontest.New(sc)
 	r, err := fusion.New(s.Config())
 	if err != nil {
 		t.Fatal(err)
@@ -37,9 +37,9 @@ func runOdometry(t *testing.T, sc sim.Scenario) *fusion.Robot {
 // within 1e-9 m in position and 0.1% in covariance (DESIGN.md, "Process
 // noise"; the noise model adds over sub-intervals).
 func TestRateInvariance(t *testing.T) {
-	for _, layout := range []sim.Layout{sim.FreeWheelTurn, sim.DriveWheelTurn, sim.GyroTurn} {
+	for _, layout := range []fusiontest.Layout{fusiontest.FreeWheelTurn, fusiontest.DriveWheelTurn, fusiontest.GyroTurn} {
 		t.Run(layout.String(), func(t *testing.T) {
-			base := sim.Scenario{Layout: layout, NoiseFree: true, DurationS: 40, IMU: layout != sim.GyroTurn}
+			base := fusiontest.Scenario{Layout: layout, NoiseFree: true, DurationS: 40, IMU: layout != fusiontest.GyroTurn}
 			slow, fast := base, base
 			slow.OdometryHz, fast.OdometryHz = 50, 500
 			a := runOdometry(t, slow).Pose()
@@ -71,7 +71,7 @@ func TestRateInvariance(t *testing.T) {
 // is sampled.
 func TestStandingStill(t *testing.T) {
 	for _, hz := range []int64{10, 1000} {
-		cfg := sim.Scenario{Layout: sim.FreeWheelTurn}.Config()
+		cfg := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn}.Config()
 		cfg.StartPose = estimator.Pose{}
 		r, err := fusion.New(cfg)
 		if err != nil {
@@ -99,9 +99,9 @@ func TestStandingStill(t *testing.T) {
 }
 
 // collect returns a scenario's inputs in arrival order.
-func collect(sc sim.Scenario) (*sim.Sim, []sim.Input) {
-	s := sim.New(sc)
-	var ins []sim.Input
+func collect(sc fusiontest.Scenario) (*fusiontest.Sim, []fusiontest.Input) {
+	s := fusiontest.New(sc)
+	var ins []fusiontest.Input
 	for {
 		in, ok := s.Next()
 		if !ok {
@@ -115,15 +115,15 @@ func collect(sc sim.Scenario) (*sim.Sim, []sim.Input) {
 // samples arriving out of order with odometry, give the same estimate as the
 // same samples delivered in stamp order (DESIGN.md, "Time ordering"), to 1e-9.
 func TestLateEqualsStampOrder(t *testing.T) {
-	for _, sc := range []sim.Scenario{
-		{Layout: sim.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30},
-		{Layout: sim.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
-		{Layout: sim.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
+	for _, sc := range []fusiontest.Scenario{
+		{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30},
+		{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
+		{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
 	} {
 		t.Run(sc.Layout.String(), func(t *testing.T) {
 			s, arrival := collect(sc)
 			stamped := slices.Clone(arrival)
-			slices.SortStableFunc(stamped, func(a, b sim.Input) int {
+			slices.SortStableFunc(stamped, func(a, b fusiontest.Input) int {
 				sa, sb := a.StampNs(), b.StampNs()
 				switch {
 				case sa < sb:
@@ -145,11 +145,11 @@ func TestLateEqualsStampOrder(t *testing.T) {
 			inOrder, _ := fusion.New(s.Config())
 			var lateFixes int
 			for i := range arrival {
-				res := sim.Feed(late, &arrival[i])
+				res := fusiontest.Feed(late, &arrival[i])
 				if arrival[i].Fix != nil && res.Verdict != fusion.VerdictHeld {
 					lateFixes++
 				}
-				sim.Feed(inOrder, &stamped[i])
+				fusiontest.Feed(inOrder, &stamped[i])
 			}
 			if lateFixes < 100 {
 				t.Fatalf("only %d fixes were inserted late", lateFixes)

@@ -7,9 +7,9 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"reckon.example/clients/sim"
 	"reckon.example/estimator"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 // TestSmootherEqualsBatch: on a linear-Gaussian case the Rauch-Tung-
@@ -30,11 +30,11 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		rPos  = 1e-2
 	)
 	cfg := fusion.Config{
-		Wheels:     []fusion.Wheel{{YM: 0.1}, {YM: -0.1}, {XM: -0.1, DirectionRad: math.Pi / 2}},
-		IMU:        fusion.IMUAbsolute,
-		Noise:      fusion.Noise{HeadingVarRad2PerS: qh, IMUOffsetVarRad2PerS: qo, IMUHeadingVarRad2: rImu},
+		Wheels:   []fusion.Wheel{{YM: 0.1}, {YM: -0.1}, {XM: -0.1, DirectionRad: math.Pi / 2}},
+		IMU:      fusion.IMUAbsolute,
+		Noise:    fusion.Noise{HeadingVarRad2PerS: qh, IMUOffsetVarRad2PerS: qo, IMUHeadingVarRad2: rImu},
 		StartCov: []float64{0.04, 0, 0, 0, 0.09, 0, 0, 0, 0.01},
-		WindowNs:   int64(steps) * dtNs * 2,
+		WindowNs: int64(steps) * dtNs * 2,
 	}
 	r, err := fusion.New(cfg)
 	if err != nil {
@@ -162,8 +162,8 @@ func TestSmootherBeatsFilter(t *testing.T) {
 	var count int
 	nees := map[int64]float64{} // checkpoint stamp -> sum over runs
 	for run := 0; run < runs; run++ {
-		sc := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: uint64(300 + run), DurationS: 20, CameraHz: 2}
-		s := sim.New(sc)
+		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: uint64(300 + run), DurationS: 20, CameraHz: 2}
+		s := fusiontest.New(sc)
 		r, _ := fusion.New(s.Config())
 		r.CollectSteps()
 		truth := map[int64]estimator.Pose{}
@@ -173,7 +173,7 @@ func TestSmootherBeatsFilter(t *testing.T) {
 			if !ok {
 				break
 			}
-			sim.Feed(r, &in)
+			fusiontest.Feed(r, &in)
 			if in.Odometry != nil {
 				truth[in.Odometry.StampNs] = in.Truth
 			}

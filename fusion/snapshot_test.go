@@ -4,25 +4,25 @@ import (
 	"reflect"
 	"testing"
 
-	"reckon.example/clients/sim"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 // TestSnapshotContinuesExactly: a robot restored from a snapshot taken in
 // the middle of a run gives bit for bit the same results as the original
 // for the rest of the run.
 func TestSnapshotContinuesExactly(t *testing.T) {
-	for _, sc := range []sim.Scenario{
-		{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 25, DXM: 1}},
-		{Layout: sim.GyroTurn, Seed: 52, DurationS: 20, Counts: true},
-		{Layout: sim.DriveWheelTurn, IMU: true, Markers: true, Seed: 53, DurationS: 20},
+	for _, sc := range []fusiontest.Scenario{
+		{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &fusiontest.Bump{AtS: 25, DXM: 1}},
+		{Layout: fusiontest.GyroTurn, Seed: 52, DurationS: 20, Counts: true},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Seed: 53, DurationS: 20},
 	} {
 		_, ins := collect(sc)
-		cfg := sim.New(sc).Config()
+		cfg := fusiontest.New(sc).Config()
 		a, _ := fusion.New(cfg)
 		mid := len(ins) * 3 / 5
 		for i := 0; i < mid; i++ {
-			sim.Feed(a, &ins[i])
+			fusiontest.Feed(a, &ins[i])
 		}
 		snap, err := a.Snapshot()
 		if err != nil {
@@ -36,7 +36,7 @@ func TestSnapshotContinuesExactly(t *testing.T) {
 			t.Fatalf("%v: restored robot differs at once", sc.Layout)
 		}
 		for i := mid; i < len(ins); i++ {
-			ra, rb := sim.Feed(a, &ins[i]), sim.Feed(b, &ins[i])
+			ra, rb := fusiontest.Feed(a, &ins[i]), fusiontest.Feed(b, &ins[i])
 			if !reflect.DeepEqual(ra, rb) || a.Pose() != b.Pose() {
 				t.Fatalf("%v: input %d: %+v vs %+v", sc.Layout, i, ra, rb)
 			}

@@ -3,8 +3,8 @@ package fusion_test
 import (
 	"testing"
 
-	"reckon.example/clients/sim"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 // trustCount is what a run did with the inconsistent flag.
@@ -17,9 +17,9 @@ type trustCount struct {
 // trustRun feeds a simulated run to a robot, with every camera fix's stated
 // covariance multiplied by fixScale and the configured IMU heading variance
 // by imuScale, and counts what the inconsistent flag did.
-func trustRun(t *testing.T, sc sim.Scenario, gate, fixScale, imuScale float64) trustCount {
+func trustRun(t *testing.T, sc fusiontest.Scenario, gate, fixScale, imuScale float64) trustCount {
 	t.Helper()
-	s := sim.New(sc)
+	s := fusiontest.New(sc)
 	cfg := s.Config()
 	cfg.GateProbability = gate
 	cfg.Noise.IMUHeadingVarRad2 *= imuScale
@@ -41,7 +41,7 @@ func trustRun(t *testing.T, sc sim.Scenario, gate, fixScale, imuScale float64) t
 			}
 			in.Fix = &f
 		}
-		res := sim.Feed(r, &in)
+		res := fusiontest.Feed(r, &in)
 		for _, e := range res.Events {
 			if e.Kind == fusion.EventTrustLost && r.Pose().Distrust&fusion.TrustInconsistent != 0 {
 				if c.raised == 0 {
@@ -78,7 +78,7 @@ func trustRun(t *testing.T, sc sim.Scenario, gate, fixScale, imuScale float64) t
 // is back to its median. A cart turned by hand raises it within 20 ms,
 // before the pose is recovered.
 func TestTrustInconsistent(t *testing.T) {
-	sc := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 21, DurationS: 600}
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 21, DurationS: 600}
 	c := trustRun(t, sc, 0.99, 1, 1)
 	t.Logf("honest sensors: raised %d times, on %d of %d applied fixes", c.raised, c.flagged, c.applied)
 	if c.applied < 5000 || c.raised > 6 || c.flagged > c.applied/50 {
@@ -96,8 +96,8 @@ func TestTrustInconsistent(t *testing.T) {
 			t.Errorf("%s: inconsistent raised %d times, standing on %d of %d applied fixes", k.name, c.raised, c.flagged, c.applied)
 		}
 	}
-	bump := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 1, DurationS: 50, OutlierFraction: 0.05,
-		Bump: &sim.Bump{AtS: 45, DXM: 0.8, DYM: 0.6, DRad: 0.35}}
+	bump := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 1, DurationS: 50, OutlierFraction: 0.05,
+		Bump: &fusiontest.Bump{AtS: 45, DXM: 0.8, DYM: 0.6, DRad: 0.35}}
 	c = trustRun(t, bump, 0.99, 1, 1)
 	if at := float64(c.firstNs) * 1e-9; c.raised != 1 || at < 45 || at > 45.02 {
 		t.Errorf("turned by hand at 45 s: inconsistent raised %d times, first at %.3f s", c.raised, at)

@@ -11,9 +11,9 @@ import (
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
-	"reckon.example/clients/sim"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/journal"
 )
 
 // TestBadInputOverTheWire: bad samples get the right status code and a
@@ -24,7 +24,7 @@ func TestBadInputOverTheWire(t *testing.T) {
 	defer srv.stop()
 	c := dial(t, srv.addr, clientOpts())
 	ctx := context.Background()
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 2})
+	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 2})
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
 	}
@@ -71,7 +71,7 @@ func TestBadInputOverTheWire(t *testing.T) {
 			Measurement: &pb.Fix_Landmark{Landmark: &pb.LandmarkFix{LandmarkId: "post-x9", RangeM: proto.Float64(2)}}, Covariance: &pb.Covariance{Dimension: 1, Values: []float64{0.01}}}}}, codes.NotFound, "landmark_id"},
 	}
 	journalSize := func() int64 {
-		st, err := os.Stat(wire.SegmentPath(dir, "cart", 0))
+		st, err := os.Stat(journal.SegmentPath(dir, "cart", 0))
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -156,8 +156,8 @@ func TestBadInputOverTheWire(t *testing.T) {
 // sample could outgrow a journal record (which would stop its robot) is a
 // configuration error, named before anything listens.
 func TestServeRefusesMessagesLargerThanRecords(t *testing.T) {
-	err := Serve(context.Background(), DaemonConfig{Listen: "127.0.0.1:0", MaxMessageBytes: wire.MaxRecordBytes})
+	err := Serve(context.Background(), DaemonConfig{Listen: "127.0.0.1:0", MaxMessageBytes: journal.MaxRecordBytes})
 	if err == nil || !strings.Contains(err.Error(), "max message bytes") {
-		t.Fatalf("Serve with max message bytes %d: %v", wire.MaxRecordBytes, err)
+		t.Fatalf("Serve with max message bytes %d: %v", journal.MaxRecordBytes, err)
 	}
 }

@@ -12,7 +12,7 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	"reckon.example/clients/client"
-	"reckon.example/clients/sim"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 )
 
@@ -81,7 +81,7 @@ func pump(b *testing.B, addr, robot string, samp []*pb.Sample) time.Duration {
 // the other; the rates are over all iterations, which evens out the noise
 // of a shared machine.
 func BenchmarkIngestThroughput(b *testing.B) {
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 120, OutlierFraction: 0.05})
+	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 120, OutlierFraction: 0.05})
 	lis, _ := net.Listen("tcp", "127.0.0.1:0")
 	gs := grpc.NewServer()
 	pb.RegisterFusionServiceServer(gs, bare{})
@@ -114,7 +114,7 @@ func BenchmarkRestoreHour(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	sm := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 3600, OutlierFraction: 0.05})
+	sm := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 3600, OutlierFraction: 0.05})
 	cfg := sm.Config()
 	if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: wireConfig(cfg)}); err != nil {
 		b.Fatal(err)
@@ -149,7 +149,7 @@ func BenchmarkRestoreHour(b *testing.B) {
 // (group commit of maxBatch), encoding the verdict and the watchers. One op
 // is one sample.
 func BenchmarkIngestCore(b *testing.B) {
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
+	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 4, DurationS: 600, OutlierFraction: 0.05})
 	s, err := New(Options{JournalDir: b.TempDir()})
 	if err != nil {
 		b.Fatal(err)

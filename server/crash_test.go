@@ -14,9 +14,9 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon.example/clients/sim"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/journal"
 )
 
 // TestMain lets the test binary run as the daemon in a child process.
@@ -65,7 +65,7 @@ func TestCrashSafety(t *testing.T) {
 	defer cmd.Process.Kill()
 	c := dial(t, addr, clientOpts())
 	ctx := context.Background()
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 60, OutlierFraction: 0.05})
+	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 60, OutlierFraction: 0.05})
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
 	}
@@ -104,7 +104,7 @@ func TestCrashSafety(t *testing.T) {
 	}
 	// Every acknowledged verdict is in the journal, as sent.
 	journaled := map[uint64]*pb.IngestResponse{}
-	_, err = wire.ScanJournal(dir, "cart", wire.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	_, err = journal.Read(dir, "cart", journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		journaled[in.GetSequence()] = out.GetResponse()
 		return nil
 	}})

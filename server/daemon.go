@@ -25,7 +25,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/journal"
 )
 
 // DaemonConfig configures Serve. Zero fields take the defaults given.
@@ -44,7 +44,7 @@ type DaemonConfig struct {
 	// MetricsListen serves Prometheus metrics at /metrics ("" = off).
 	MetricsListen string
 	// MaxMessageBytes bounds one received message (default 64 KiB, at most
-	// half of wire.MaxRecordBytes, so that a sample always fits its journal
+	// half of journal.MaxRecordBytes, so that a sample always fits its journal
 	// record).
 	MaxMessageBytes int
 	// ShutdownGrace bounds the graceful stop before a hard stop (5 s).
@@ -98,7 +98,7 @@ func Serve(ctx context.Context, dc DaemonConfig) error {
 	if dc.MaxMessageBytes <= 0 {
 		dc.MaxMessageBytes = 64 << 10
 	}
-	if limit := wire.MaxRecordBytes / 2; dc.MaxMessageBytes > limit {
+	if limit := journal.MaxRecordBytes / 2; dc.MaxMessageBytes > limit {
 		// A sample must fit a journal record, or taking it would stop the
 		// robot (its input could not be journaled).
 		return fmt.Errorf("max message bytes %d exceeds %d, half the journal's record limit", dc.MaxMessageBytes, limit)

@@ -8,10 +8,10 @@ import (
 	"time"
 
 	"reckon.example/clients/client"
-	"reckon.example/clients/sim"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
 )
 
 // running is a service started by a test on a loopback port.
@@ -63,24 +63,24 @@ func dial(t testing.TB, addr string, opt client.Options) *client.Client {
 }
 
 // toProto turns a simulator input into a wire sample.
-func toProto(in *sim.Input) *pb.Sample {
+func toProto(in *fusiontest.Input) *pb.Sample {
 	switch {
 	case in.Odometry != nil:
-		return wire.OdometryToProto(in.Odometry)
+		return convert.OdometryToProto(in.Odometry)
 	case in.Heading != nil:
-		return wire.HeadingToProto(in.Heading)
+		return convert.HeadingToProto(in.Heading)
 	default:
-		return wire.FixToProto(in.Fix)
+		return convert.FixToProto(in.Fix)
 	}
 }
 
 // samples returns a scenario's inputs as wire samples in arrival order, and
 // the robot configuration.
-func samples(sc sim.Scenario) ([]*pb.Sample, []sim.Input, *pb.RobotConfig) {
-	s := sim.New(sc)
-	cfg := wire.ConfigToProto(s.Config())
+func samples(sc fusiontest.Scenario) ([]*pb.Sample, []fusiontest.Input, *pb.RobotConfig) {
+	s := fusiontest.New(sc)
+	cfg := convert.ConfigToProto(s.Config())
 	var out []*pb.Sample
-	var ins []sim.Input
+	var ins []fusiontest.Input
 	for {
 		in, ok := s.Next()
 		if !ok {
@@ -91,4 +91,4 @@ func samples(sc sim.Scenario) ([]*pb.Sample, []sim.Input, *pb.RobotConfig) {
 	}
 }
 
-func wireConfig(c fusion.Config) *pb.RobotConfig { return wire.ConfigToProto(c) }
+func wireConfig(c fusion.Config) *pb.RobotConfig { return convert.ConfigToProto(c) }

@@ -11,7 +11,7 @@ import (
 	"time"
 
 	"reckon.example/clients/client"
-	"reckon.example/clients/sim"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 )
 
@@ -43,7 +43,7 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 	readers := dial(t, srv.addr, client.Options{})
 	for r := 0; r < robots; r++ {
 		id := fmt.Sprintf("cart-%02d", r)
-		samp, _, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: uint64(r), DurationS: dur.Seconds(), OutlierFraction: 0.05})
+		samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: uint64(r), DurationS: dur.Seconds(), OutlierFraction: 0.05})
 		if _, err := feeders.CreateRobot(ctx, id, cfg); err != nil {
 			t.Fatal(err)
 		}
@@ -81,7 +81,7 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 				t.Error(err)
 				return
 			}
-			ins := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: uint64(r), DurationS: dur.Seconds(), OutlierFraction: 0.05})
+			ins := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: uint64(r), DurationS: dur.Seconds(), OutlierFraction: 0.05})
 			arrival := make([]int64, 0, len(samp))
 			for {
 				in, ok := ins.Next()

@@ -9,7 +9,8 @@ import (
 
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // RestoreReport says what Restore found for one robot.
@@ -23,18 +24,18 @@ type RestoreReport struct {
 // Replay runs a journal's inputs through a new fusion robot and checks that
 // every verdict and pose equals the one recorded. It returns the robot and
 // the scan.
-func Replay(dir, id string) (*fusion.Robot, wire.JournalScan, error) {
+func Replay(dir, id string) (*fusion.Robot, journal.Scan, error) {
 	return replay(dir, id, false)
 }
 
 // replay replays a journal; fromSnapshot starts from its last snapshot
 // (what a restart does) instead of the first input.
-func replay(dir, id string, fromSnapshot bool) (*fusion.Robot, wire.JournalScan, error) {
+func replay(dir, id string, fromSnapshot bool) (*fusion.Robot, journal.Scan, error) {
 	var fr *fusion.Robot
 	var cfg fusion.Config
-	v := wire.Visitor{Opening: func(op *pb.JournalOpening) error {
+	v := journal.Visitor{Opening: func(op *pb.JournalOpening) error {
 		var err error
-		if cfg, err = wire.ConfigFromProto(op.GetConfig()); err != nil {
+		if cfg, err = convert.ConfigFromProto(op.GetConfig()); err != nil {
 			return fmt.Errorf("opening record: %w", err)
 		}
 		fr, err = fusion.New(cfg)
@@ -55,7 +56,7 @@ func replay(dir, id string, fromSnapshot bool) (*fusion.Robot, wire.JournalScan,
 			return nil
 		}
 	}
-	scan, err := wire.ScanJournal(dir, id, v)
+	scan, err := journal.Read(dir, id, v)
 	if err != nil {
 		return nil, scan, err
 	}
@@ -64,7 +65,7 @@ func replay(dir, id string, fromSnapshot bool) (*fusion.Robot, wire.JournalScan,
 
 // replayOne applies one journaled input and compares the outcome.
 func replayOne(fr *fusion.Robot, in *pb.JournalInput, out *pb.JournalOutput) error {
-	got, taken := wire.Take(fr, in.GetSample(), out.GetResponse().GetClientSequence())
+	got, taken := convert.Take(fr, in.GetSample(), out.GetResponse().GetClientSequence())
 	if !taken {
 		return fmt.Errorf("journal input %d is refused on replay: %s", in.GetSequence(), got.GetReason())
 	}
@@ -74,7 +75,7 @@ func replayOne(fr *fusion.Robot, in *pb.JournalInput, out *pb.JournalOutput) err
 	if out.GetPose() == nil {
 		return nil
 	}
-	pose := wire.PoseToProto(out.GetPose().GetRobot(), fr.Pose(), got.GetSequence())
+	pose := convert.PoseToProto(out.GetPose().GetRobot(), fr.Pose(), got.GetSequence())
 	if !proto.Equal(pose, out.GetPose()) {
 		return fmt.Errorf("journal replay diverged at input %d: pose %v, recorded %v", in.GetSequence(), pose.GetPose(), out.GetPose().GetPose())
 	}
@@ -88,7 +89,7 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 	if s.opt.JournalDir == "" {
 		return nil, nil
 	}
-	ids, err := wire.Robots(s.opt.JournalDir)
+	ids, err := journal.Robots(s.opt.JournalDir)
 	if err != nil {
 		return nil, err
 	}
@@ -105,14 +106,14 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 				rep.Torn += fmt.Sprintf("; set aside %d later segments", len(scan.DroppedSegments))
 			}
 			for _, d := range scan.DroppedSegments {
-				if err := os.Rename(d, strings.TrimSuffix(d, wire.JournalExt)+".torn"); err != nil {
+				if err := os.Rename(d, strings.TrimSuffix(d, journal.Ext)+".torn"); err != nil {
 					return reports, err
 				}
 			}
 			s.opt.Metrics.tornTail()
 			s.log.Warn("journal tail dropped", "robot", rep.Robot, "torn", rep.Torn)
 		}
-		j, err := wire.ResumeJournal(s.opt.JournalDir, id, scan.Segment, scan.Good, s.journalOptions())
+		j, err := journal.Resume(s.opt.JournalDir, id, scan.Segment, scan.Good, s.journalOptions())
 		if err != nil {
 			return reports, fmt.Errorf("restore %s: %w", id, err)
 		}

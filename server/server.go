@@ -32,7 +32,8 @@ import (
 
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // Options configure a Server. The zero value keeps no journal.
@@ -77,7 +78,7 @@ type robot struct {
 
 	mu            sync.Mutex // protects fr, journal, broken, deleted
 	fr            *fusion.Robot
-	journal       *wire.JournalWriter
+	journal       *journal.Writer
 	broken        error // a journal failure: the robot takes no more input
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
@@ -176,7 +177,7 @@ func (s *Server) list() []*robot {
 }
 
 func (s *Server) lookup(name string) (*robot, error) {
-	if _, err := wire.ID(name); err != nil {
+	if _, err := journal.ID(name); err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
 	}
 	s.mu.RLock()
@@ -194,10 +195,10 @@ func (r *robot) proto() *pb.Robot {
 
 // CreateRobot creates robots/{robot_id}.
 func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*pb.CreateRobotResponse, error) {
-	if !wire.ValidID(req.GetRobotId()) {
+	if !journal.ValidID(req.GetRobotId()) {
 		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be 1 to 63 lower-case letters, digits and hyphens, starting with a letter", req.GetRobotId())
 	}
-	cfg, err := wire.ConfigFromProto(req.GetConfig())
+	cfg, err := convert.ConfigFromProto(req.GetConfig())
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
@@ -213,7 +214,7 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		return nil, status.Errorf(codes.AlreadyExists, "robot_id: %s exists", name)
 	}
 	if s.opt.JournalDir != "" {
-		j, err := wire.CreateJournal(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano()}, s.journalOptions())
+		j, err := journal.Create(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano()}, s.journalOptions())
 		if err != nil {
 			return nil, status.Errorf(codes.Internal, "journal: %v", err)
 		}
@@ -225,8 +226,8 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
 
-func (s *Server) journalOptions() wire.JournalOptions {
-	return wire.JournalOptions{SyncEach: s.opt.SyncEach, SegmentBytes: s.opt.SegmentBytes}
+func (s *Server) journalOptions() journal.Options {
+	return journal.Options{SyncEach: s.opt.SyncEach, SegmentBytes: s.opt.SegmentBytes}
 }
 
 // GetRobot gets a robot.
@@ -424,7 +425,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 			continue
 		}
 		resp := &out[k].IngestResponse
-		if !wire.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {
+		if !convert.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {
 			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
 			continue
 		}
@@ -444,7 +445,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 		if r.journal == nil {
 			continue
 		}
-		sample := wire.RequestSample(req.wire)
+		sample := requestSample(req.wire)
 		if sample == nil {
 			if sample, err = (proto.MarshalOptions{Deterministic: true}).Marshal(req.GetSample()); err != nil {
 				r.broken = fmt.Errorf("encoding sample %d: %w", resp.Sequence, err)
@@ -452,8 +453,8 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 			}
 		}
 		var p *pb.FusedPose
-		if resp.Sequence%wire.PoseEvery == 0 {
-			p = wire.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+		if resp.Sequence%journal.PoseEvery == 0 {
+			p = convert.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
 		}
 		if err := r.journal.AddEncodedPair(resp.Sequence, sample, start.UnixNano(), out[k].wire, p); err != nil {
 			r.broken = err
@@ -506,7 +507,7 @@ func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.G
 	if err != nil {
 		return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %v", err)
 	}
-	return &pb.GetPoseAtResponse{Pose: wire.PoseToProto(r.name, p, r.fr.Sequence())}, nil
+	return &pb.GetPoseAtResponse{Pose: convert.PoseToProto(r.name, p, r.fr.Sequence())}, nil
 }
 
 // ReseedRobot restarts a robot's filter from a given pose; it is journaled like any input.
@@ -529,7 +530,7 @@ func (s *Server) GetStatistics(ctx context.Context, req *pb.GetStatisticsRequest
 	}
 	r.mu.Lock()
 	defer r.mu.Unlock()
-	return &pb.GetStatisticsResponse{Statistics: wire.StatsToProto(r.fr.Stats())}, nil
+	return &pb.GetStatisticsResponse{Statistics: convert.StatsToProto(r.fr.Stats())}, nil
 }
 
 // snapshot writes the robot's state into its journal; the caller holds r.mu.
@@ -548,5 +549,5 @@ func (s *Server) snapshot(r *robot) {
 }
 
 func poseNow(r *robot) *pb.FusedPose {
-	return wire.PoseToProto(r.name, r.fr.Pose(), r.fr.Sequence())
+	return convert.PoseToProto(r.name, r.fr.Pose(), r.fr.Sequence())
 }

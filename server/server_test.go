@@ -11,10 +11,11 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	"reckon.example/clients/client"
-	"reckon.example/clients/sim"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // TestEndToEnd: over a real gRPC connection on loopback, the cart's
@@ -27,7 +28,7 @@ func TestEndToEnd(t *testing.T) {
 	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	ctx := context.Background()
 	cart, camera, watcher := dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts())
-	samp, ins, cfg := samples(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 5, DurationS: 20, OutlierFraction: 0.05})
+	samp, ins, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 5, DurationS: 20, OutlierFraction: 0.05})
 	if _, err := cart.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
 	}
@@ -75,18 +76,18 @@ func TestEndToEnd(t *testing.T) {
 	wg.Wait()
 
 	// Offline, the same samples in the same order.
-	fcfg, err := wire.ConfigFromProto(cfg)
+	fcfg, err := convert.ConfigFromProto(cfg)
 	if err != nil {
 		t.Fatal(err)
 	}
 	fr, _ := fusion.New(fcfg)
-	offline := map[uint64]*pb.FusedPose{0: wire.PoseToProto("robots/cart", fr.Pose(), 0)}
+	offline := map[uint64]*pb.FusedPose{0: convert.PoseToProto("robots/cart", fr.Pose(), 0)}
 	for i, s := range samp {
-		resp, _ := wire.Take(fr, s, responses[i].GetClientSequence())
+		resp, _ := convert.Take(fr, s, responses[i].GetClientSequence())
 		if !proto.Equal(resp, responses[i]) {
 			t.Fatalf("sample %d: served verdict %v, offline %v", i, responses[i], resp)
 		}
-		offline[resp.GetSequence()] = wire.PoseToProto("robots/cart", fr.Pose(), resp.GetSequence())
+		offline[resp.GetSequence()] = convert.PoseToProto("robots/cart", fr.Pose(), resp.GetSequence())
 	}
 	if len(watched) < 2 {
 		t.Fatalf("watched %d poses", len(watched))
@@ -122,7 +123,7 @@ func TestEndToEnd(t *testing.T) {
 		bySeq[r.GetSequence()] = i
 	}
 	n := 0
-	if _, err := wire.ScanJournal(dir, "cart", wire.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	if _, err := journal.Read(dir, "cart", journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		i, ok := bySeq[in.GetSequence()]
 		switch {
 		case !ok:
@@ -152,7 +153,7 @@ func TestEndToEnd(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if want := wire.PoseToProto("robots/cart", fr.Pose(), fr.Sequence()); !proto.Equal(p.GetPose().GetPose(), want.GetPose()) {
+	if want := convert.PoseToProto("robots/cart", fr.Pose(), fr.Sequence()); !proto.Equal(p.GetPose().GetPose(), want.GetPose()) {
 		t.Errorf("restored pose %v, want %v", p.GetPose().GetPose(), want.GetPose())
 	}
 }
@@ -163,7 +164,7 @@ func TestRestoreTornTail(t *testing.T) {
 	dir := t.TempDir()
 	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	c := dial(t, srv.addr, clientOpts())
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.DriveWheelTurn, IMU: true, Seed: 6, DurationS: 2})
+	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 6, DurationS: 2})
 	ctx := context.Background()
 	c.CreateRobot(ctx, "cart", cfg)
 	sess, _ := c.OpenIngest(ctx, "robots/cart")
@@ -174,7 +175,7 @@ func TestRestoreTornTail(t *testing.T) {
 	}
 	sess.Close()
 	srv.stop()
-	path := wire.SegmentPath(dir, "cart", 0)
+	path := journal.SegmentPath(dir, "cart", 0)
 	b, _ := os.ReadFile(path)
 	for _, damage := range []string{"truncate", "corrupt"} {
 		bad := append([]byte(nil), b...)
@@ -204,7 +205,7 @@ func clientOpts() client.Options { return client.Options{} }
 
 // The journal directory layout is documented; a test pins it.
 func TestJournalFileName(t *testing.T) {
-	if got := filepath.Base(wire.SegmentPath("/j", "cart", 3)); got != "cart.000003.rjl" {
+	if got := filepath.Base(journal.SegmentPath("/j", "cart", 3)); got != "cart.000003.rjl" {
 		t.Errorf("segment name %q", got)
 	}
 }

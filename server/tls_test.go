@@ -20,7 +20,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	"reckon.example/clients/client"
-	"reckon.example/clients/sim"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 )
 
@@ -107,7 +107,7 @@ func TestTLSAndToken(t *testing.T) {
 	}
 	// A stream needs the token too, and works with it (fsync on each).
 	c := dial(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"})
-	samp, _, cfg := samples(sim.Scenario{Layout: sim.DriveWheelTurn, IMU: true, Seed: 2, DurationS: 0.2})
+	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 2, DurationS: 0.2})
 	ctx := context.Background()
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)

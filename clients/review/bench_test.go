@@ -7,7 +7,7 @@ import (
 	"strings"
 	"testing"
 
-	"reckon.example/clients/sim"
+	"reckon.example/fusion/fusiontest"
 )
 
 // peakRSS returns the process's peak resident set (VmHWM) in MiB, from
@@ -31,7 +31,7 @@ func peakRSS() float64 {
 // and the HTML report. The journal is written once, outside the timing.
 // It reports the peak resident memory of the process as well.
 func BenchmarkReviewHour(b *testing.B) {
-	dir, truth := writeRun(b, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 74, DurationS: 3600, OutlierFraction: 0.05})
+	dir, truth := writeRun(b, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 74, DurationS: 3600, OutlierFraction: 0.05})
 	runtime.GC()
 	b.ResetTimer()
 	for b.Loop() {

@@ -22,7 +22,8 @@ import (
 	"reckon.example/estimator"
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // Source names a recorded run.
@@ -188,7 +189,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		if src.Override != nil {
 			c = src.Override
 		}
-		cfg, err := wire.ConfigFromProto(c)
+		cfg, err := convert.ConfigFromProto(c)
 		if err != nil {
 			return err
 		}
@@ -252,7 +253,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		}
 	}()
 	take := func(s *pb.Sample) error {
-		resp, _ := wire.Take(fr, s, 0)
+		resp, _ := convert.Take(fr, s, 0)
 		a.input(s, resp)
 		pending = append(pending, fr.TakeSteps()...)
 		flushSteps(false)
@@ -264,7 +265,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	switch {
 	case src.JournalDir != "":
 		id := src.Robot
-		if n, err := wire.ID(src.Robot); err == nil {
+		if n, err := journal.ID(src.Robot); err == nil {
 			id = n
 		}
 		run.Robot, run.Label = "robots/"+id, label
@@ -273,11 +274,11 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		opened := make(chan error, 1)
 		inputs := make(chan *pb.Sample, 1024)
 		stop := make(chan struct{})
-		var scan wire.JournalScan
+		var scan journal.Scan
 		var scanErr error
 		go func() {
 			defer close(inputs)
-			scan, scanErr = wire.ScanJournal(src.JournalDir, id, wire.Visitor{
+			scan, scanErr = journal.Read(src.JournalDir, id, journal.Visitor{
 				Opening: func(op *pb.JournalOpening) error {
 					err := makeRobot(op.GetConfig())
 					opened <- err
@@ -332,7 +333,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 			return nil, err
 		}
 		defer f.Close()
-		sr := wire.NewSampleReader(f)
+		sr := convert.NewSampleReader(f)
 		for {
 			s, err := sr.Next()
 			if errors.Is(err, io.EOF) {
@@ -448,7 +449,7 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 
 func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, reason string) {
 	sum := &a.run.Summary
-	sum.Fixes[wire.VerdictName(v)]++
+	sum.Fixes[convert.VerdictName(v)]++
 	if reason != "" {
 		r := reason
 		if i := strings.Index(r, ": "); i > 0 && (v == pb.Verdict_VERDICT_INVALID || v == pb.Verdict_VERDICT_TOO_OLD) {
@@ -469,7 +470,7 @@ func (a *accumulator) finish(fr *fusion.Robot) {
 	if a.lost {
 		sum.Distrust = append(sum.Distrust, Interval{a.lostAt, fr.NewestNs(), a.lostWhy + " (until the end)"})
 	}
-	sum.Sensors = wire.StatsToProto(fr.Stats()).GetSensors()
+	sum.Sensors = convert.StatsToProto(fr.Stats()).GetSensors()
 	// Held fixes that never resolved.
 	sum.Fixes["held"] += len(a.fixAt)
 }
@@ -478,7 +479,7 @@ func (a *accumulator) finish(fr *fusion.Robot) {
 // Source.Label says otherwise: the robot's id, or the samples file's name.
 func Label(src Source) string {
 	if src.JournalDir != "" {
-		if id, err := wire.ID(src.Robot); err == nil {
+		if id, err := journal.ID(src.Robot); err == nil {
 			return id
 		}
 		return src.Robot

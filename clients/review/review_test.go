@@ -12,23 +12,24 @@ import (
 	"strings"
 	"testing"
 
-	"reckon.example/clients/sim"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // writeRun records a simulated run as a journal (as the service writes it)
 // and a truth CSV, and returns the journal directory and the truth path.
-func writeRun(t testing.TB, sc sim.Scenario) (string, string) {
+func writeRun(t testing.TB, sc fusiontest.Scenario) (string, string) {
 	dir := t.TempDir()
-	s := sim.New(sc)
+	s := fusiontest.New(sc)
 	cfg := s.Config()
 	fr, err := fusion.New(cfg)
 	if err != nil {
 		t.Fatal(err)
 	}
-	j, err := wire.CreateJournal(dir, "cart", &pb.JournalOpening{Robot: "robots/cart", Config: wire.ConfigToProto(cfg)}, wire.JournalOptions{})
+	j, err := journal.Create(dir, "cart", &pb.JournalOpening{Robot: "robots/cart", Config: convert.ConfigToProto(cfg)}, journal.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -42,14 +43,14 @@ func writeRun(t testing.TB, sc sim.Scenario) (string, string) {
 		var sample *pb.Sample
 		switch {
 		case in.Odometry != nil:
-			sample = wire.OdometryToProto(in.Odometry)
+			sample = convert.OdometryToProto(in.Odometry)
 			fmt.Fprintf(&truth, "%d,%g,%g,%g\n", in.Odometry.StampNs, in.Truth.X, in.Truth.Y, in.Truth.Heading)
 		case in.Heading != nil:
-			sample = wire.HeadingToProto(in.Heading)
+			sample = convert.HeadingToProto(in.Heading)
 		default:
-			sample = wire.FixToProto(in.Fix)
+			sample = convert.FixToProto(in.Fix)
 		}
-		resp, taken := wire.Take(fr, sample, 0)
+		resp, taken := convert.Take(fr, sample, 0)
 		if !taken {
 			continue
 		}
@@ -71,7 +72,7 @@ func writeRun(t testing.TB, sc sim.Scenario) (string, string) {
 }
 
 func TestReviewOfASimulatedRun(t *testing.T) {
-	dir, truth := writeRun(t, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 71, DurationS: 40, OutlierFraction: 0.05, CameraHz: 4})
+	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 71, DurationS: 40, OutlierFraction: 0.05, CameraHz: 4})
 	out := t.TempDir()
 	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
 	if err != nil {
@@ -108,8 +109,8 @@ func TestReviewOfASimulatedRun(t *testing.T) {
 // TestReviewOfATruncatedJournal: a journal cut by a crash gives a report of
 // what was recovered and says so.
 func TestReviewOfATruncatedJournal(t *testing.T) {
-	dir, _ := writeRun(t, sim.Scenario{Layout: sim.DriveWheelTurn, IMU: true, Seed: 72, DurationS: 10})
-	seg := wire.SegmentPath(dir, "cart", 0)
+	dir, _ := writeRun(t, fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 72, DurationS: 10})
+	seg := journal.SegmentPath(dir, "cart", 0)
 	b, _ := os.ReadFile(seg)
 	os.WriteFile(seg, b[:len(b)*2/3+5], 0o644)
 	run, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{})
@@ -139,7 +140,7 @@ func TestReportInABrowser(t *testing.T) {
 		}
 		t.Skip("chromium is not installed")
 	}
-	dir, truth := writeRun(t, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 73, DurationS: 30, OutlierFraction: 0.1, Bump: &sim.Bump{AtS: 18, DXM: 0.8}})
+	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 73, DurationS: 30, OutlierFraction: 0.1, Bump: &fusiontest.Bump{AtS: 18, DXM: 0.8}})
 	out := t.TempDir()
 	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
 	if err != nil {
@@ -188,7 +189,7 @@ func TestReportInABrowser(t *testing.T) {
 // TestSpillToDisk: a review whose steps exceed the memory budget keeps them
 // on disk and gives the same result as one in memory.
 func TestSpillToDisk(t *testing.T) {
-	dir, truth := writeRun(t, sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Seed: 75, DurationS: 20, OutlierFraction: 0.05})
+	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 75, DurationS: 20, OutlierFraction: 0.05})
 	mem, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{})
 	if err != nil {
 		t.Fatal(err)

@@ -17,15 +17,15 @@ import (
 
 	"reckon.example/clients/client"
 	"reckon.example/clients/review"
-	"reckon.example/clients/sim"
 	"reckon.example/estimator"
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
 )
 
-func parseLayout(s string) (sim.Layout, error) {
-	for _, l := range []sim.Layout{sim.FreeWheelTurn, sim.GyroTurn, sim.DriveWheelTurn} {
+func parseLayout(s string) (fusiontest.Layout, error) {
+	for _, l := range []fusiontest.Layout{fusiontest.FreeWheelTurn, fusiontest.GyroTurn, fusiontest.DriveWheelTurn} {
 		if l.String() == s {
 			return l, nil
 		}
@@ -78,12 +78,12 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		*journal = filepath.Join("reckon-demo", time.Now().Format("run-20060102-150405"))
 	}
 	live := *view == "live" || (*view == "auto" && isTerminal(stdout))
-	sc := sim.Scenario{Layout: lay, Seed: *seed, DurationS: *duration, OutlierFraction: *outliers, SlipPerS: 0.02,
-		IMU: lay != sim.GyroTurn, Counts: true, Markers: *markers}
+	sc := fusiontest.Scenario{Layout: lay, Seed: *seed, DurationS: *duration, OutlierFraction: *outliers, SlipPerS: 0.02,
+		IMU: lay != fusiontest.GyroTurn, Counts: true, Markers: *markers}
 	if *bump > 0 {
-		sc.Bump = &sim.Bump{AtS: *bump, DXM: 0.8, DYM: 0.6, DRad: 0.35}
+		sc.Bump = &fusiontest.Bump{AtS: *bump, DXM: 0.8, DYM: 0.6, DRad: 0.35}
 	}
-	s := sim.New(sc)
+	s := fusiontest.New(sc)
 
 	// The server, on loopback, with its journal.
 	srvCtx, stopSrv := context.WithCancel(context.Background())
@@ -117,7 +117,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	}
 	defer watcher.Close()
 	const name = "robots/greenhouse-cart"
-	if _, err := cart.CreateRobot(ctx, "greenhouse-cart", wire.ConfigToProto(s.Config())); err != nil {
+	if _, err := cart.CreateRobot(ctx, "greenhouse-cart", convert.ConfigToProto(s.Config())); err != nil {
 		return err
 	}
 	odo, err := cart.OpenIngest(ctx, name)
@@ -201,11 +201,11 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 			v.truth[in.Odometry.StampNs] = in.Truth
 			delete(v.truth, in.Odometry.StampNs-3e9)
 			v.mu.Unlock()
-			resp, err = odo.Apply(wire.OdometryToProto(in.Odometry))
+			resp, err = odo.Apply(convert.OdometryToProto(in.Odometry))
 		case in.Heading != nil:
-			resp, err = odo.Apply(wire.HeadingToProto(in.Heading))
+			resp, err = odo.Apply(convert.HeadingToProto(in.Heading))
 		default:
-			resp, err = cam.Apply(wire.FixToProto(in.Fix))
+			resp, err = cam.Apply(convert.FixToProto(in.Fix))
 		}
 		if err != nil {
 			return err
@@ -215,13 +215,13 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 			if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 				heldFixes[resp.GetSequence()] = true
 			} else {
-				v.verdicts[wire.VerdictName(resp.GetVerdict())]++
+				v.verdicts[convert.VerdictName(resp.GetVerdict())]++
 			}
 		}
 		for _, r := range resp.GetResolved() {
 			if heldFixes[r.GetSequence()] {
 				delete(heldFixes, r.GetSequence())
-				v.verdicts[wire.VerdictName(r.GetVerdict())]++
+				v.verdicts[convert.VerdictName(r.GetVerdict())]++
 			}
 		}
 		v.mu.Unlock()

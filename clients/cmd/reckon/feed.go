@@ -13,7 +13,8 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -33,7 +34,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		fs.Usage()
 		return errors.New("feed needs -robot and one JSON Lines file")
 	}
-	id, err := wire.ID(*robot)
+	id, err := journal.ID(*robot)
 	if err != nil {
 		return err
 	}
@@ -52,7 +53,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		if err != nil {
 			return err
 		}
-		cfg, _, err := wire.LoadConfigYAML(b)
+		cfg, _, err := convert.LoadConfigYAML(b)
 		if err != nil {
 			return fmt.Errorf("%s: %w", *create, err)
 		}
@@ -92,7 +93,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 			}
 		}
 	}()
-	sr := wire.NewSampleReader(f)
+	sr := convert.NewSampleReader(f)
 	sent := 0
 	var readErr error
 	for {
@@ -116,7 +117,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	t := <-done
 	var parts []string
 	for _, v := range []pb.Verdict{pb.Verdict_VERDICT_APPLIED, pb.Verdict_VERDICT_HELD, pb.Verdict_VERDICT_GATED, pb.Verdict_VERDICT_TOO_OLD, pb.Verdict_VERDICT_INVALID} {
-		parts = append(parts, fmt.Sprintf("%s %d", wire.VerdictName(v), t.counts[v]))
+		parts = append(parts, fmt.Sprintf("%s %d", convert.VerdictName(v), t.counts[v]))
 	}
 	fmt.Fprintf(stdout, "%d samples sent to %s: %s\n", sent, *robot, strings.Join(parts, ", "))
 	for _, r := range t.reasons {

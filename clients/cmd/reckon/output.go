@@ -9,7 +9,7 @@ import (
 	"strings"
 
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
 )
 
 // poseWriter writes fused poses (and, for replay, verdicts) in a format.
@@ -56,14 +56,14 @@ func (pw *poseWriter) pose(p *pb.FusedPose, resp *pb.IngestResponse) error {
 	}
 	verdict := ""
 	if resp != nil {
-		verdict = wire.VerdictName(resp.GetVerdict())
+		verdict = convert.VerdictName(resp.GetVerdict())
 	}
 	switch pw.format {
 	case "jsonl":
 		if resp != nil {
-			return wire.WriteJSONLine(pw.w, &pb.JournalOutput{Response: resp, Pose: p})
+			return convert.WriteJSONLine(pw.w, &pb.JournalOutput{Response: resp, Pose: p})
 		}
-		return wire.WriteJSONLine(pw.w, p)
+		return convert.WriteJSONLine(pw.w, p)
 	case "csv":
 		if pw.rows == 1 {
 			if err := pw.csv.Write(csvHeader); err != nil {

@@ -12,7 +12,8 @@ import (
 
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -60,7 +61,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	return errors.New("replay needs -journal and -robot, or -config and -samples")
 }
 
-// replayer runs inputs through a robot as the service would (wire.Take:
+// replayer runs inputs through a robot as the service would (convert.Take:
 // decoding, then the robot, which checks each input first).
 type replayer struct {
 	name string
@@ -69,23 +70,23 @@ type replayer struct {
 }
 
 func (rp *replayer) input(s *pb.Sample) (*pb.IngestResponse, error) {
-	resp, _ := wire.Take(rp.fr, s, 0)
-	return resp, rp.pw.pose(wire.PoseToProto(rp.name, rp.fr.Pose(), rp.fr.Sequence()), resp)
+	resp, _ := convert.Take(rp.fr, s, 0)
+	return resp, rp.pw.pose(convert.PoseToProto(rp.name, rp.fr.Pose(), rp.fr.Sequence()), resp)
 }
 
 func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
 	id := robot
-	if n, err := wire.ID(robot); err == nil {
+	if n, err := journal.ID(robot); err == nil {
 		id = n
 	}
 	rp := &replayer{name: "robots/" + id, pw: pw}
 	same, differ := 0, 0
-	scan, err := wire.ScanJournal(dir, id, wire.Visitor{Opening: func(op *pb.JournalOpening) error {
+	scan, err := journal.Read(dir, id, journal.Visitor{Opening: func(op *pb.JournalOpening) error {
 		c := op.GetConfig()
 		if override != nil {
 			c = override
 		}
-		cfg, err := wire.ConfigFromProto(c)
+		cfg, err := convert.ConfigFromProto(c)
 		if err != nil {
 			return err
 		}
@@ -127,7 +128,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 }
 
 func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
-	cfg, err := wire.ConfigFromProto(cfgProto)
+	cfg, err := convert.ConfigFromProto(cfgProto)
 	if err != nil {
 		return err
 	}
@@ -141,7 +142,7 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, p
 	}
 	defer f.Close()
 	rp := &replayer{name: "robots/replay", fr: fr, pw: pw}
-	sr := wire.NewSampleReader(f)
+	sr := convert.NewSampleReader(f)
 	n := 0
 	for {
 		if err := ctx.Err(); err != nil {

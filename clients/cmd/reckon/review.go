@@ -14,7 +14,7 @@ import (
 
 	"reckon.example/clients/review"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
 )
 
 // sourceFlags name a recorded run.
@@ -38,7 +38,7 @@ func loadYAML(path string) (*pb.RobotConfig, error) {
 	if err != nil {
 		return nil, err
 	}
-	c, _, err := wire.LoadConfigYAML(b)
+	c, _, err := convert.LoadConfigYAML(b)
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", path, err)
 	}

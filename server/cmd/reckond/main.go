@@ -18,7 +18,8 @@ import (
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
-	"reckon.example/server/wire"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 func main() {
@@ -36,7 +37,7 @@ type robotFlags map[string]string
 func (r robotFlags) String() string { return fmt.Sprint(map[string]string(r)) }
 func (r robotFlags) Set(v string) error {
 	id, file, ok := strings.Cut(v, "=")
-	if !ok || !wire.ValidID(id) {
+	if !ok || !journal.ValidID(id) {
 		return fmt.Errorf("want ID=CONFIG.yaml with ID of lower-case letters, digits and hyphens, got %q", v)
 	}
 	r[id] = file
@@ -93,7 +94,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		if err != nil {
 			return fmt.Errorf("robot %s: %w", id, err)
 		}
-		c, _, err := wire.LoadConfigYAML(b)
+		c, _, err := convert.LoadConfigYAML(b)
 		if err != nil {
 			return fmt.Errorf("robot %s: %s: %w", id, file, err)
 		}

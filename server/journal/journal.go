@@ -1,4 +1,4 @@
-package wire
+package journal
 
 import (
 	"bufio"
@@ -30,8 +30,8 @@ const (
 	frameSize      = 8
 	// MaxRecordBytes bounds one record; a longer length is corruption.
 	MaxRecordBytes = 4 << 20
-	// JournalExt is the extension of journal segment files.
-	JournalExt = ".rjl"
+	// Ext is the extension of journal segment files.
+	Ext = ".rjl"
 )
 
 var castagnoli = crc32.MakeTable(crc32.Castagnoli)
@@ -63,15 +63,15 @@ func header() []byte {
 	return h
 }
 
-// JournalReader reads records from a journal file.
-type JournalReader struct {
+// Reader reads records from a journal file.
+type Reader struct {
 	r    *bufio.Reader
 	good int64 // offset just past the last good record
 	rb   bytes.Buffer
 }
 
-// NewJournalReader checks the header and returns a reader of the records.
-func NewJournalReader(r io.Reader) (*JournalReader, error) {
+// NewReader checks the header and returns a reader of the records.
+func NewReader(r io.Reader) (*Reader, error) {
 	br := bufio.NewReaderSize(r, 1<<16)
 	h := make([]byte, headerSize)
 	if _, err := io.ReadFull(br, h); err != nil {
@@ -83,14 +83,14 @@ func NewJournalReader(r io.Reader) (*JournalReader, error) {
 	if v := binary.LittleEndian.Uint32(h[8:]); v != journalVersion {
 		return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrBadHeader, v, journalVersion)
 	}
-	return &JournalReader{r: br, good: headerSize}, nil
+	return &Reader{r: br, good: headerSize}, nil
 }
 
 // Offset returns the offset just past the last good record.
-func (jr *JournalReader) Offset() int64 { return jr.good }
+func (jr *Reader) Offset() int64 { return jr.good }
 
 // Next returns the next record, io.EOF at a clean end, or a *TornError.
-func (jr *JournalReader) Next() (*pb.JournalRecord, error) {
+func (jr *Reader) Next() (*pb.JournalRecord, error) {
 	b, err := jr.NextRaw()
 	if err != nil {
 		return nil, err
@@ -115,7 +115,7 @@ const (
 
 // NextRaw returns the next record's payload, checked against its CRC but
 // not decoded; it is valid until the next call.
-func (jr *JournalReader) NextRaw() ([]byte, error) {
+func (jr *Reader) NextRaw() ([]byte, error) {
 	var fr [frameSize]byte
 	n, err := io.ReadFull(jr.r, fr[:])
 	if err == io.EOF {
@@ -169,19 +169,19 @@ func sealFrame(dst []byte, start int, err error) ([]byte, error) {
 	return dst, nil
 }
 
-// JournalOptions configure a journal writer.
-type JournalOptions struct {
+// Options configure a journal writer.
+type Options struct {
 	// SyncEach fsyncs after every append; otherwise the owner calls Sync.
 	SyncEach bool
 	// SegmentBytes starts a new segment file past this size (0: 64 MiB).
 	SegmentBytes int64
 }
 
-// JournalWriter appends records to a robot's journal segments
+// Writer appends records to a robot's journal segments
 // dir/{robot}.{n}.rjl. It is not safe for concurrent use.
-type JournalWriter struct {
+type Writer struct {
 	dir, robot string
-	opt        JournalOptions
+	opt        Options
 	f          *os.File
 	seg        int
 	size       int64
@@ -191,12 +191,12 @@ type JournalWriter struct {
 
 // SegmentPath returns the path of segment n of a robot's journal.
 func SegmentPath(dir, robot string, n int) string {
-	return filepath.Join(dir, fmt.Sprintf("%s.%06d%s", robot, n, JournalExt))
+	return filepath.Join(dir, fmt.Sprintf("%s.%06d%s", robot, n, Ext))
 }
 
 // Segments lists a robot's journal segments in order.
 func Segments(dir, robot string) ([]string, error) {
-	m, err := filepath.Glob(filepath.Join(dir, robot+".[0-9][0-9][0-9][0-9][0-9][0-9]"+JournalExt))
+	m, err := filepath.Glob(filepath.Join(dir, robot+".[0-9][0-9][0-9][0-9][0-9][0-9]"+Ext))
 	if err != nil {
 		return nil, err
 	}
@@ -206,7 +206,7 @@ func Segments(dir, robot string) ([]string, error) {
 
 // Robots lists the robot ids that have journals in dir.
 func Robots(dir string) ([]string, error) {
-	m, err := filepath.Glob(filepath.Join(dir, "*.[0-9][0-9][0-9][0-9][0-9][0-9]"+JournalExt))
+	m, err := filepath.Glob(filepath.Join(dir, "*.[0-9][0-9][0-9][0-9][0-9][0-9]"+Ext))
 	if err != nil {
 		return nil, err
 	}
@@ -214,7 +214,7 @@ func Robots(dir string) ([]string, error) {
 	var out []string
 	for _, p := range m {
 		b := filepath.Base(p)
-		id := b[:len(b)-len(JournalExt)-7]
+		id := b[:len(b)-len(Ext)-7]
 		if !seen[id] {
 			seen[id] = true
 			out = append(out, id)
@@ -224,13 +224,13 @@ func Robots(dir string) ([]string, error) {
 	return out, nil
 }
 
-// CreateJournal starts a new journal for robot with its opening record. It
+// Create starts a new journal for robot with its opening record. It
 // fails if the robot already has one.
-func CreateJournal(dir, robot string, opening *pb.JournalOpening, opt JournalOptions) (*JournalWriter, error) {
+func Create(dir, robot string, opening *pb.JournalOpening, opt Options) (*Writer, error) {
 	if segs, _ := Segments(dir, robot); len(segs) > 0 {
 		return nil, fmt.Errorf("journal for %s already exists in %s", robot, dir)
 	}
-	w := &JournalWriter{dir: dir, robot: robot, opt: opt}
+	w := &Writer{dir: dir, robot: robot, opt: opt}
 	if err := w.openSegment(0, true); err != nil {
 		return nil, err
 	}
@@ -241,10 +241,10 @@ func CreateJournal(dir, robot string, opening *pb.JournalOpening, opt JournalOpt
 	return w, w.Sync()
 }
 
-// ResumeJournal reopens the last segment for appending at offset good (the
+// Resume reopens the last segment for appending at offset good (the
 // end of its last good record), truncating anything after it.
-func ResumeJournal(dir, robot string, seg int, good int64, opt JournalOptions) (*JournalWriter, error) {
-	w := &JournalWriter{dir: dir, robot: robot, opt: opt, seg: seg}
+func Resume(dir, robot string, seg int, good int64, opt Options) (*Writer, error) {
+	w := &Writer{dir: dir, robot: robot, opt: opt, seg: seg}
 	f, err := os.OpenFile(SegmentPath(dir, robot, seg), os.O_RDWR, 0)
 	if err != nil {
 		return nil, err
@@ -265,7 +265,7 @@ func ResumeJournal(dir, robot string, seg int, good int64, opt JournalOptions) (
 	return w, nil
 }
 
-func (w *JournalWriter) openSegment(n int, exclusive bool) error {
+func (w *Writer) openSegment(n int, exclusive bool) error {
 	flags := os.O_WRONLY | os.O_CREATE
 	if exclusive {
 		flags |= os.O_EXCL
@@ -294,7 +294,7 @@ func syncDir(dir string) error {
 // Append writes the records with one write, and fsyncs if SyncEach. When it
 // returns nil the records are in the operating system's hands (and on disk
 // with SyncEach): a crash of the process loses none of them.
-func (w *JournalWriter) Append(recs ...*pb.JournalRecord) error {
+func (w *Writer) Append(recs ...*pb.JournalRecord) error {
 	if err := w.Add(recs...); err != nil {
 		return err
 	}
@@ -303,7 +303,7 @@ func (w *JournalWriter) Append(recs ...*pb.JournalRecord) error {
 
 // Add frames records into the writer's buffer without writing them; Flush
 // writes what was added (group commit).
-func (w *JournalWriter) Add(recs ...*pb.JournalRecord) error {
+func (w *Writer) Add(recs ...*pb.JournalRecord) error {
 	n := len(w.buf)
 	var err error
 	for _, r := range recs {
@@ -318,7 +318,7 @@ func (w *JournalWriter) Add(recs ...*pb.JournalRecord) error {
 // AddPair frames an input and its output as two records, with the same
 // bytes as JournalRecord messages holding them (AddEncodedPair with their
 // deterministic encodings).
-func (w *JournalWriter) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
+func (w *Writer) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
 	opts := proto.MarshalOptions{Deterministic: true}
 	sample, err := opts.Marshal(in.GetSample())
 	if err != nil {
@@ -338,7 +338,7 @@ func (w *JournalWriter) AddPair(in *pb.JournalInput, out *pb.JournalOutput) erro
 // deterministic encodings; other encodings of the same messages decode to
 // the same records. pose may be nil. On error the buffer keeps what it
 // held.
-func (w *JournalWriter) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
+func (w *Writer) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
 	b, err := appendInput(w.buf, seq, sample, arrivalUnixNs)
 	if err == nil {
 		b, err = appendOutput(b, response, pose)
@@ -409,7 +409,7 @@ func appendOutput(dst []byte, response []byte, pose *pb.FusedPose) ([]byte, erro
 
 // Flush writes the added records with one write, fsyncs if SyncEach, and
 // rotates the segment if it is full.
-func (w *JournalWriter) Flush() error {
+func (w *Writer) Flush() error {
 	if len(w.buf) == 0 {
 		return nil
 	}
@@ -442,7 +442,7 @@ func (w *JournalWriter) Flush() error {
 }
 
 // Sync flushes the current segment to disk if anything was written.
-func (w *JournalWriter) Sync() error {
+func (w *Writer) Sync() error {
 	if !w.dirty {
 		return nil
 	}
@@ -451,7 +451,7 @@ func (w *JournalWriter) Sync() error {
 }
 
 // Close syncs and closes the journal.
-func (w *JournalWriter) Close() error {
+func (w *Writer) Close() error {
 	if w.f == nil {
 		return nil
 	}
@@ -465,7 +465,7 @@ func (w *JournalWriter) Close() error {
 
 // Remove closes the journal and renames its segments to *.deleted, so that
 // a deleted robot's record stays for review but is not restored.
-func (w *JournalWriter) Remove() error {
+func (w *Writer) Remove() error {
 	if err := w.Close(); err != nil {
 		return err
 	}
@@ -474,7 +474,7 @@ func (w *JournalWriter) Remove() error {
 		return err
 	}
 	for _, s := range segs {
-		if err := os.Rename(s, strings.TrimSuffix(s, JournalExt)+".deleted"); err != nil {
+		if err := os.Rename(s, strings.TrimSuffix(s, Ext)+".deleted"); err != nil {
 			return err
 		}
 	}

@@ -1,4 +1,4 @@
-package wire
+package journal
 
 import (
 	"errors"
@@ -14,8 +14,8 @@ import (
 	pb "reckon.example/proto/reckon/v1"
 )
 
-// JournalScan describes what ScanJournal found.
-type JournalScan struct {
+// Scan describes what Read found.
+type Scan struct {
 	Opening *pb.JournalOpening
 	// Segment and Good are the last segment read and the offset just past
 	// its last complete input and output: where appending resumes.
@@ -37,7 +37,7 @@ type JournalScan struct {
 	SnapshotSequence uint64
 }
 
-// Visitor receives what ScanJournal reads.
+// Visitor receives what Read reads.
 type Visitor struct {
 	// Opening is called with the opening record before anything else.
 	Opening func(*pb.JournalOpening) error
@@ -52,22 +52,22 @@ type Visitor struct {
 	Input func(in *pb.JournalInput) error
 }
 
-var segNum = regexp.MustCompile(`\.([0-9]{6})` + regexp.QuoteMeta(JournalExt) + `$`)
+var segNum = regexp.MustCompile(`\.([0-9]{6})` + regexp.QuoteMeta(Ext) + `$`)
 
 // scanState carries a scan across segments.
 type scanState struct {
-	sc      *JournalScan
+	sc      *Scan
 	v       Visitor
 	pending []byte   // an input's payload waiting for its output
 	kept    [][]byte // with a Snapshot visitor: payloads since the last snapshot
 	snap    []byte
 }
 
-// ScanJournal reads a robot's journal segments in order and hands the
+// Read reads a robot's journal segments in order and hands the
 // records to v. It stops at a torn or corrupt record and reports it; nothing
 // before it is lost. An error from v stops the scan and is returned.
-func ScanJournal(dir, robot string, v Visitor) (JournalScan, error) {
-	var sc JournalScan
+func Read(dir, robot string, v Visitor) (Scan, error) {
+	var sc Scan
 	segs, err := Segments(dir, robot)
 	if err != nil {
 		return sc, err
@@ -136,7 +136,7 @@ func (st *scanState) segment(path string, first bool) (stop bool, err error) {
 		return false, err
 	}
 	defer f.Close()
-	jr, err := NewJournalReader(f)
+	jr, err := NewReader(f)
 	if err != nil {
 		if first {
 			return false, fmt.Errorf("%s: %w", path, err)

@@ -1,4 +1,4 @@
-package wire
+package server
 
 import (
 	"google.golang.org/protobuf/encoding/protowire"
@@ -9,12 +9,12 @@ import (
 // sampleField is the field number of IngestRequest.sample.
 var sampleField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("sample").Number()
 
-// RequestSample returns the bytes of the sample inside an encoded
+// requestSample returns the bytes of the sample inside an encoded
 // IngestRequest, so that the journal can keep the sample as it arrived
 // without encoding it again. It returns nil when the request does not parse
 // or does not hold the sample exactly once (a repeated message field is
 // merged by decoders; the caller then encodes the decoded sample instead).
-func RequestSample(req []byte) []byte {
+func requestSample(req []byte) []byte {
 	var out []byte
 	n := 0
 	for len(req) > 0 {

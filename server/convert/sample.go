@@ -1,4 +1,4 @@
-package wire
+package convert
 
 import (
 	"errors"
@@ -186,7 +186,7 @@ var eventKinds = map[fusion.EventKind]pb.EventKind{
 	fusion.EventMoveRecovered: pb.EventKind_EVENT_KIND_MOVE_RECOVERED,
 	fusion.EventTrustLost:     pb.EventKind_EVENT_KIND_TRUST_LOST,
 	fusion.EventTrustRegained: pb.EventKind_EVENT_KIND_TRUST_REGAINED,
-	fusion.EventReseeded:       pb.EventKind_EVENT_KIND_RESEEDED,
+	fusion.EventReseeded:      pb.EventKind_EVENT_KIND_RESEEDED,
 }
 
 func reason(err error) string {

@@ -1,4 +1,4 @@
-package wire
+package server
 
 import (
 	"os"
@@ -8,38 +8,39 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
 )
 
 func TestRequestSample(t *testing.T) {
 	s := &pb.Sample{Sample: &pb.Sample_Heading{Heading: &pb.HeadingSample{StampNs: 10, HeadingRad: 0.5, VarianceRad2: 1e-4}}}
 	req, _ := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: 3, Sample: s})
-	got := RequestSample(req)
+	got := requestSample(req)
 	var back pb.Sample
 	if err := proto.Unmarshal(got, &back); err != nil || !proto.Equal(&back, s) {
-		t.Fatalf("RequestSample gave %x (%v), want the encoding of %v", got, err, s)
+		t.Fatalf("requestSample gave %x (%v), want the encoding of %v", got, err, s)
 	}
 	// The sample twice (decoders merge the two): no bytes, the caller encodes.
 	twice := protowire.AppendTag(append([]byte(nil), req...), 3, protowire.BytesType)
 	twice = protowire.AppendBytes(twice, got)
-	if RequestSample(twice) != nil {
+	if requestSample(twice) != nil {
 		t.Error("a request holding the sample twice gave bytes")
 	}
 	for name, b := range map[string][]byte{"no sample": req[:len(req)-len(got)-2], "cut": req[:len(req)-1], "empty": nil} {
-		if RequestSample(b) != nil {
+		if requestSample(b) != nil {
 			t.Errorf("%s: gave bytes", name)
 		}
 	}
 }
 
-// FuzzRequestSample: whenever RequestSample finds a sample in bytes that
+// FuzzRequestSample: whenever requestSample finds a sample in bytes that
 // decode as an IngestRequest, those bytes decode to the request's sample.
 func FuzzRequestSample(f *testing.F) {
-	fh, err := os.Open(exampleSamples)
+	fh, err := os.Open("../testdata/samples/greenhouse-10s.jsonl")
 	if err != nil {
 		f.Fatal(err)
 	}
 	defer fh.Close()
-	sr := NewSampleReader(fh)
+	sr := convert.NewSampleReader(fh)
 	for i := 0; i < 40; i++ {
 		s, err := sr.Next()
 		if err != nil {
@@ -49,7 +50,7 @@ func FuzzRequestSample(f *testing.F) {
 		f.Add(b)
 	}
 	f.Fuzz(func(t *testing.T, b []byte) {
-		got := RequestSample(b)
+		got := requestSample(b)
 		var req pb.IngestRequest
 		if err := proto.Unmarshal(b, &req); err != nil {
 			return

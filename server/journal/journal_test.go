@@ -1,4 +1,4 @@
-package wire
+package journal
 
 import (
 	"bytes"
@@ -20,9 +20,9 @@ func pair(seq uint64) []*pb.JournalRecord {
 	}
 }
 
-func writeJournal(t *testing.T, dir string, n int, opt JournalOptions) {
+func writeJournal(t *testing.T, dir string, n int, opt Options) {
 	t.Helper()
-	w, err := CreateJournal(dir, "cart", &pb.JournalOpening{Robot: "robots/cart", Config: &pb.RobotConfig{}}, opt)
+	w, err := Create(dir, "cart", &pb.JournalOpening{Robot: "robots/cart", Config: &pb.RobotConfig{}}, opt)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -36,10 +36,10 @@ func writeJournal(t *testing.T, dir string, n int, opt JournalOptions) {
 	}
 }
 
-func scanCount(t *testing.T, dir string) (JournalScan, []uint64) {
+func scanCount(t *testing.T, dir string) (Scan, []uint64) {
 	t.Helper()
 	var seqs []uint64
-	sc, err := ScanJournal(dir, "cart", Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	sc, err := Read(dir, "cart", Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		if in.GetSequence() != out.GetResponse().GetSequence() {
 			t.Errorf("input %d paired with output %d", in.GetSequence(), out.GetResponse().GetSequence())
 		}
@@ -54,7 +54,7 @@ func scanCount(t *testing.T, dir string) (JournalScan, []uint64) {
 
 func TestJournalRoundTripAndRotation(t *testing.T) {
 	dir := t.TempDir()
-	writeJournal(t, dir, 500, JournalOptions{SegmentBytes: 4096})
+	writeJournal(t, dir, 500, Options{SegmentBytes: 4096})
 	segs, _ := Segments(dir, "cart")
 	if len(segs) < 3 {
 		t.Fatalf("%d segments, want rotation", len(segs))
@@ -73,10 +73,10 @@ func TestJournalRoundTripAndRotation(t *testing.T) {
 // corrupted, gives every complete input and output before the damage.
 func TestJournalTornTail(t *testing.T) {
 	dir := t.TempDir()
-	writeJournal(t, dir, 20, JournalOptions{})
+	writeJournal(t, dir, 20, Options{})
 	path := SegmentPath(dir, "cart", 0)
 	whole, _ := os.ReadFile(path)
-	jr, _ := NewJournalReader(bytes.NewReader(whole))
+	jr, _ := NewReader(bytes.NewReader(whole))
 	jr.Next() // the opening
 	start := jr.Offset()
 	pairSize := (int64(len(whole)) - start) / 20 // all 20 pairs encode to the same size
@@ -103,7 +103,7 @@ func TestJournalTornTail(t *testing.T) {
 		t.Errorf("corrupt last record: torn %v, %d pairs", sc.Torn, len(seqs))
 	}
 	// Resuming truncates the damage and appends after the last good pair.
-	w, err := ResumeJournal(dir, "cart", sc.Segment, sc.Good, JournalOptions{})
+	w, err := Resume(dir, "cart", sc.Segment, sc.Good, Options{})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -115,12 +115,12 @@ func TestJournalTornTail(t *testing.T) {
 }
 
 func TestJournalBadHeader(t *testing.T) {
-	if _, err := NewJournalReader(strings.NewReader("NOTAJOURNAL12345")); !errors.Is(err, ErrBadHeader) {
+	if _, err := NewReader(strings.NewReader("NOTAJOURNAL12345")); !errors.Is(err, ErrBadHeader) {
 		t.Errorf("bad magic: %v", err)
 	}
 	h := header()
 	h[8] = 9
-	if _, err := NewJournalReader(bytes.NewReader(h)); !errors.Is(err, ErrBadHeader) {
+	if _, err := NewReader(bytes.NewReader(h)); !errors.Is(err, ErrBadHeader) {
 		t.Errorf("bad version: %v", err)
 	}
 }
@@ -138,7 +138,7 @@ func FuzzJournalReader(f *testing.F) {
 	f.Add(seed[:len(seed)-4])
 	f.Add(header())
 	f.Fuzz(func(t *testing.T, b []byte) {
-		jr, err := NewJournalReader(bytes.NewReader(b))
+		jr, err := NewReader(bytes.NewReader(b))
 		if err != nil {
 			return
 		}
@@ -193,14 +193,14 @@ func TestAddPairMatchesRecords(t *testing.T) {
 		want, _ = AppendFrame(want, &pb.JournalRecord{Entry: &pb.JournalRecord_Output{Output: c.out}})
 		sample, _ := proto.MarshalOptions{Deterministic: true}.Marshal(c.in.GetSample())
 		resp, _ := proto.MarshalOptions{Deterministic: true}.Marshal(c.out.GetResponse())
-		w := &JournalWriter{buf: []byte("kept")}
+		w := &Writer{buf: []byte("kept")}
 		if err := w.AddEncodedPair(c.in.GetSequence(), sample, c.in.GetArrivalUnixNs(), resp, c.out.GetPose()); err != nil {
 			t.Fatal(c.name, err)
 		}
 		if !bytes.Equal(w.buf, append([]byte("kept"), want...)) {
 			t.Errorf("%s: AddEncodedPair wrote\n%x\nwant\n%x", c.name, w.buf[4:], want)
 		}
-		w = &JournalWriter{}
+		w = &Writer{}
 		if err := w.AddPair(c.in, c.out); err != nil || !bytes.Equal(w.buf, want) {
 			t.Errorf("%s: AddPair wrote\n%x (%v)\nwant\n%x", c.name, w.buf, err, want)
 		}
@@ -210,7 +210,7 @@ func TestAddPairMatchesRecords(t *testing.T) {
 // TestAddEncodedPairTooLarge: a record over the limit is refused and the
 // buffer keeps what it held.
 func TestAddEncodedPairTooLarge(t *testing.T) {
-	w := &JournalWriter{buf: []byte("kept")}
+	w := &Writer{buf: []byte("kept")}
 	err := w.AddEncodedPair(1, make([]byte, MaxRecordBytes), 1, nil, nil)
 	if err == nil || !strings.Contains(err.Error(), "exceeds") {
 		t.Fatalf("err = %v, want a size error", err)

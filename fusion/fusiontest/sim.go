@@ -1,10 +1,12 @@
-// Package sim simulates a small cart driving the aisles of a greenhouse, with
+// Package fusiontest is the test harness of package fusion: it simulates a
+// small cart driving the aisles of a greenhouse, with
 // ground truth: encoder wheels of three layouts with distance-proportional
 // noise and occasional slip, an IMU whose heading zero drifts, and a camera
 // that sees pose markers with latency, jitter and a fraction of outliers.
-// It is deterministic for a seed and has no I/O; the demo, the tests and the
-// benchmarks use it.
-package sim
+// It is deterministic for a seed and has no I/O; the tests of every layer,
+// the benchmarks and the demo use it. Its draws are its own: it imports fusion
+// only for the configuration it describes and to feed a robot.
+package fusiontest
 
 import (
 	"container/heap"
@@ -106,12 +108,12 @@ var CameraMount = estimator.Pose{X: 0.15, Y: 0, Heading: 0}
 // Camera noise: 3 cm per axis and 0.02 rad for pose fixes; 2 cm and 0.01 rad
 // for range and bearing.
 const (
-	cameraStdM, cameraStdRad   = 0.03, 0.02
-	rangeStdM, bearingStdRad   = 0.02, 0.01
-	countsPerM, counterBits    = 40000, 16
-	imuHeadingStdRad           = 0.005
-	imuOffsetVarRad2PerS       = 1e-7
-	startStdM, startStdRad = 0.05, 0.035
+	cameraStdM, cameraStdRad = 0.03, 0.02
+	rangeStdM, bearingStdRad = 0.02, 0.01
+	countsPerM, counterBits  = 40000, 16
+	imuHeadingStdRad         = 0.005
+	imuOffsetVarRad2PerS     = 1e-7
+	startStdM, startStdRad   = 0.05, 0.035
 )
 
 // Markers are the greenhouse's post markers: a row at each end of the aisles.
@@ -135,10 +137,10 @@ func (s Scenario) Config() fusion.Config {
 	n.IMUHeadingVarRad2 = imuHeadingStdRad * imuHeadingStdRad
 	n.IMUOffsetVarRad2PerS = imuOffsetVarRad2PerS
 	c := fusion.Config{
-		Noise:      n,
-		Recovery:   fusion.Recovery{Enabled: true},
-		StartCov: []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
-		Landmarks:  Markers(),
+		Noise:     n,
+		Recovery:  fusion.Recovery{Enabled: true},
+		StartCov:  []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
+		Landmarks: Markers(),
 	}
 	cpm, bits := 0.0, 0
 	if s.Counts {

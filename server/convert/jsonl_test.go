@@ -1,4 +1,4 @@
-package wire
+package convert
 
 import (
 	"bytes"
@@ -11,8 +11,8 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon.example/clients/sim"
 	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
 )
 
 var rewrite = flag.Bool("rewrite", false, "rewrite golden files in testdata")
@@ -25,7 +25,7 @@ const exampleSamples = "../../testdata/samples/greenhouse-10s.jsonl"
 func TestExampleSamples(t *testing.T) {
 	var buf bytes.Buffer
 	buf.WriteString("# Ten seconds of the simulated greenhouse cart (reckon's simulator, seed 3, layout\n# free-wheel-turn with IMU): one reckon.v1.Sample in protojson per line, in arrival order.\n# Use with testdata/robots/free-wheel-turn.yaml. Simulated data, for examples only.\n")
-	s := sim.New(sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true, Counts: true, Seed: 3, DurationS: 10, OutlierFraction: 0.05, OdometryHz: 50, IMUHz: 25})
+	s := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 3, DurationS: 10, OutlierFraction: 0.05, OdometryHz: 50, IMUHz: 25})
 	for {
 		in, ok := s.Next()
 		if !ok {
@@ -110,7 +110,7 @@ func FuzzSampleReader(f *testing.F) {
 	}
 	f.Add([]byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"))
 	f.Fuzz(func(t *testing.T, b []byte) {
-		cfg := sim.Scenario{Layout: sim.FreeWheelTurn, IMU: true}.Config()
+		cfg := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true}.Config()
 		r, _ := fusion.New(cfg)
 		sr := NewSampleReader(bytes.NewReader(b))
 		for {

@@ -180,7 +180,7 @@ type Config struct {
 var ErrConfig = errors.New("invalid configuration")
 
 func cfgErr(field, format string, args ...any) error {
-	return fmt.Errorf("%w: %s: %s", ErrConfig, field, fmt.Sprintf(format, args...))
+	return fieldErr(ErrConfig, field, format, args...)
 }
 
 // withDefaults returns a copy of c with zero fields set to their defaults.

@@ -1,0 +1,38 @@
+package fusion
+
+import (
+	"errors"
+	"fmt"
+)
+
+// FieldError says which field of a configuration or an input was wrong. Path
+// is the snake_case field path of the wire API and the configuration file
+// (for instance "wheels[1].counts_per_m"); Err says what was wrong and wraps
+// the kind of error (ErrConfig, ErrBadSample, ...), so that errors.Is sees
+// the kind and errors.As finds the field.
+type FieldError struct {
+	Path string
+	Err  error
+}
+
+// Error renders "kind: path: what".
+func (e *FieldError) Error() string {
+	return e.Err.Error()
+}
+
+// Unwrap returns the cause.
+func (e *FieldError) Unwrap() error { return e.Err }
+
+// fieldErr makes a FieldError of the given kind: "kind: path: message".
+func fieldErr(kind error, path, format string, args ...any) error {
+	return &FieldError{Path: path, Err: fmt.Errorf("%w: %s: %s", kind, path, fmt.Sprintf(format, args...))}
+}
+
+// FieldOf returns the field path carried by err, or "" if none.
+func FieldOf(err error) string {
+	var fe *FieldError
+	if errors.As(err, &fe) {
+		return fe.Path
+	}
+	return ""
+}

@@ -23,9 +23,14 @@ func (e *FieldError) Error() string {
 // Unwrap returns the cause.
 func (e *FieldError) Unwrap() error { return e.Err }
 
-// fieldErr makes a FieldError of the given kind: "kind: path: message".
-func fieldErr(kind error, path, format string, args ...any) error {
+// FieldErrorf makes a FieldError of the given kind (a sentinel such as
+// ErrConfig) whose text is "kind: path: message".
+func FieldErrorf(kind error, path, format string, args ...any) error {
 	return &FieldError{Path: path, Err: fmt.Errorf("%w: %s: %s", kind, path, fmt.Sprintf(format, args...))}
+}
+
+func fieldErr(kind error, path, format string, args ...any) error {
+	return FieldErrorf(kind, path, format, args...)
 }
 
 // FieldOf returns the field path carried by err, or "" if none.

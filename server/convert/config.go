@@ -13,7 +13,7 @@ import (
 func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	var cfg fusion.Config
 	if c == nil {
-		return cfg, fmt.Errorf("%w: config: missing", fusion.ErrConfig)
+		return cfg, fusion.FieldErrorf(fusion.ErrConfig, "config", "missing")
 	}
 	for _, w := range c.GetWheels() {
 		cfg.Wheels = append(cfg.Wheels, fusion.Wheel{Name: w.GetName(), XM: w.GetXM(), YM: w.GetYM(), DirectionRad: w.GetDirectionRad(),
@@ -28,7 +28,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	case pb.ImuMode_IMU_MODE_ROTATION:
 		cfg.IMU = fusion.IMURotation
 	default:
-		return cfg, fmt.Errorf("%w: imu_mode: %d is not a known mode", fusion.ErrConfig, c.GetImuMode())
+		return cfg, fusion.FieldErrorf(fusion.ErrConfig, "imu_mode", "%d is not a known mode", c.GetImuMode())
 	}
 	n := c.GetNoise()
 	cfg.Noise = fusion.Noise{
@@ -59,7 +59,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	if ic := c.GetStartCovariance(); ic != nil {
 		v, err := covFromProto(ic, 3)
 		if err != nil {
-			return cfg, fmt.Errorf("%w: start_covariance: %v", fusion.ErrConfig, err)
+			return cfg, fusion.FieldErrorf(fusion.ErrConfig, "start_covariance", "%v", err)
 		}
 		cfg.StartCov = v
 	}

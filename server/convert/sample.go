@@ -35,11 +35,11 @@ type reseedInput struct {
 }
 
 func sampleErr(field string, err error) error {
-	return fmt.Errorf("%w: %s: %w", ErrSample, field, err)
+	return &fusion.FieldError{Path: field, Err: fmt.Errorf("%w: %s: %w", ErrSample, field, err)}
 }
 
 func sampleErrf(field, format string, args ...any) error {
-	return fmt.Errorf("%w: %s: %s", ErrSample, field, fmt.Sprintf(format, args...))
+	return fusion.FieldErrorf(ErrSample, field, format, args...)
 }
 
 // decode converts a wire sample, refusing what is malformed on the wire

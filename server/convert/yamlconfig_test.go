@@ -2,12 +2,14 @@ package convert
 
 import (
 	"errors"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
 
 	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 func TestExampleConfigs(t *testing.T) {
@@ -34,25 +36,67 @@ func TestExampleConfigs(t *testing.T) {
 	}
 }
 
+// TestConfigYAMLErrors: every error names the YAML file's line and the
+// snake_case field (read with errors.As, not from the text), whatever its
+// kind: YAML syntax, unknown field, wrong type, a value with a unit written
+// into it, or a value the robot refuses.
 func TestConfigYAMLErrors(t *testing.T) {
+	const wheels = "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12}\n  - {x_m: -0.08, direction_rad: 1.57}\n"
 	cases := []struct {
-		name, yaml, want string
+		name, yaml string
+		line       int
+		field      string
+		want       string
 	}{
-		{"unknown top-level field", "wheels: []\nimu_mode: absolute\nspeed_limit: 3\n", "line 3: unknown field \"speed_limit\""},
-		{"unknown nested field", "wheels:\n  - {x_m: 0, y_m: 0.1}\n  - {x_m: 0, y_m: -0.1, diameter_m: 0.05}\n", "line 3: unknown field \"diameter_m\" in wheels[1]"},
-		{"bad enum", "imu_mode: sideways\n", "line 1: imu_mode: \"sideways\" is not one of none, absolute, rotation"},
-		{"out of range", "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12}\n  - {x_m: -0.08, direction_rad: 1.57}\nnoise:\n  wheel_var_m2_per_m: -1\n", "line 6: invalid configuration: noise.wheel_var_m2_per_m"},
-		{"out of range in a list", "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12, counter_bits: 3}\n  - {x_m: -0.08, direction_rad: 1.57}\n", "line 3: invalid configuration: wheels[1].counter_bits"},
-		{"not a mapping", "- 1\n- 2\n", "must be a mapping"},
-		{"broken yaml", "wheels: [\n", "robot configuration file"},
+		{"unknown top-level field", "wheels: []\nimu_mode: absolute\nspeed_limit: 3\n", 3, "", `unknown field "speed_limit" in the configuration`},
+		{"unknown nested field", "wheels:\n  - {x_m: 0, y_m: 0.1}\n  - {x_m: 0, y_m: -0.1, diameter_m: 0.05}\n", 3, "wheels[1]", `unknown field "diameter_m" in wheels[1]`},
+		{"camelCase name", "noSideSlip: true\n", 1, "", `unknown field "noSideSlip"`},
+		{"bad enum", "imu_mode: sideways\n", 1, "imu_mode", `"sideways" is not one of none, absolute, rotation`},
+		{"enum as a number", "imu_mode: 2\n", 1, "imu_mode", `"2" is not one of`},
+		{"yes for a boolean", "# a comment\nno_side_slip: yes\n", 2, "no_side_slip", `"yes" is not true or false`},
+		{"number for a boolean", wheels + "gate_imu: 1\n", 5, "gate_imu", `"1" is not true or false`},
+		{"unit in a number", wheels + "max_speed_m_per_s: 2 m/s\n", 5, "max_speed_m_per_s", `"2 m/s" is not a number`},
+		{"quoted number", wheels + "max_speed_m_per_s: \"2\"\n", 5, "max_speed_m_per_s", `"2" is not a number`},
+		{"unit in a nested number", "wheels:\n  - {y_m: 12cm}\n", 2, "wheels[0].y_m", `"12cm" is not a number`},
+		{"fraction for an integer", wheels + "max_held: 2.5\n", 5, "max_held", `"2.5" is not a whole number`},
+		{"integer out of range", wheels + "max_held: 99999999999\n", 5, "max_held", `is not a whole number`},
+		{"negative counter width", "wheels:\n  - {y_m: 0.12, counter_bits: -16}\n", 2, "wheels[0].counter_bits", "-16 must be 0 (no wrap) or 8 to 64"},
+		{"list for a number", wheels + "window_ns: [1, 2]\n", 5, "window_ns", "must be a single value"},
+		{"scalar for a list", "wheels: 3\n", 1, "wheels", "must be a list"},
+		{"scalar for a message", wheels + "noise: high\n", 5, "noise", "must be a mapping"},
+		{"number for a name", "wheels:\n  - {name: 7, y_m: 0.1}\n", 2, "wheels[0].name", `"7" is not text`},
+		{"out of range", wheels + "noise:\n  wheel_var_m2_per_m: -1\n", 6, "noise.wheel_var_m2_per_m", "invalid configuration: noise.wheel_var_m2_per_m"},
+		{"out of range in a list", "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12, counter_bits: 3}\n  - {x_m: -0.08, direction_rad: 1.57}\n", 3, "wheels[1].counter_bits", "invalid configuration: wheels[1].counter_bits"},
+		{"bad covariance", wheels + "start_covariance:\n  dimension: 3\n  values: [1, 0, 0, 0, -1, 0, 0, 0, 1]\n", 5, "start_covariance", "start_covariance"},
+		{"not a mapping", "- 1\n- 2\n", 1, "", "must be a mapping"},
+		{"broken yaml", "wheels: [\n", 0, "", "robot configuration file"},
+		{"field given twice", "no_side_slip: true\nno_side_slip: false\n", 2, "no_side_slip", "given twice (first on line 1)"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			_, _, err := LoadConfigYAML([]byte(c.yaml))
-			if err == nil || !errors.Is(err, ErrConfigFile) || !strings.Contains(err.Error(), c.want) {
-				t.Errorf("error %v, want one containing %q", err, c.want)
+			var fe *ConfigFileError
+			if !errors.As(err, &fe) || !errors.Is(err, ErrConfigFile) {
+				t.Fatalf("error %v (%T), want a *ConfigFileError", err, err)
+			}
+			if fe.Field != c.field || (c.line > 0 && fe.Line != c.line) || !strings.Contains(err.Error(), c.want) {
+				t.Errorf("error %q at line %d, field %q; want line %d, field %q, text containing %q", err, fe.Line, fe.Field, c.line, c.field, c.want)
+			}
+			if c.line > 0 && !strings.Contains(err.Error(), fmt.Sprintf("line %d: ", c.line)) {
+				t.Errorf("error %q does not say line %d", err, c.line)
 			}
 		})
+	}
+}
+
+// TestConfigYAMLValues: YAML's own spellings of numbers decode as such.
+func TestConfigYAMLValues(t *testing.T) {
+	c, _, err := LoadConfigYAML([]byte("wheels:\n  - {y_m: 0.12}\n  - {y_m: -1.2e-1}\n  - {x_m: -0.08, direction_rad: 1.57, counter_bits: 16}\nno_side_slip: false\nmax_speed_m_per_s: 3\nimu_mode: IMU_MODE_ABSOLUTE\nnoise:\n"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if c.GetWheels()[1].GetYM() != -0.12 || c.GetMaxSpeedMPerS() != 3 || c.GetWheels()[2].GetCounterBits() != 16 || c.GetImuMode() != pb.ImuMode_IMU_MODE_ABSOLUTE {
+		t.Errorf("decoded %v", c)
 	}
 }
 

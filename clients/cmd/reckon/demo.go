@@ -231,9 +231,9 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		}
 		if !live && in.Odometry != nil && in.Odometry.StampNs >= nextLine {
 			nextLine += int64(*every * 1e9)
-			p, err := cart.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: name, StampNs: in.Odometry.StampNs})
+			p, err := cart.PoseAt(ctx, name, in.Odometry.StampNs)
 			if err == nil {
-				printLine(stdout, p.GetPose(), in.Truth)
+				printLine(stdout, p, in.Truth)
 			}
 		}
 	}
@@ -249,7 +249,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if live {
 		drawLive(stdout, v, int64(*duration*1e9), *duration)
 	}
-	st, err := cart.API().GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: name})
+	stats, err := cart.Statistics(ctx, name)
 	if err != nil {
 		return err
 	}
@@ -258,7 +258,6 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	fmt.Fprintf(stdout, "\nRMS position error of the watched estimate against truth: %.3f m (largest %.3f m) over %d poses; watcher skipped %d\n",
 		math.Sqrt(v.sumSq/float64(max(v.n, 1))), v.maxErr, v.n, v.skipped)
 	fmt.Fprintf(stdout, "fix verdicts: %s\n", review.FormatCounts(v.verdicts))
-	stats := st.GetStatistics()
 	fmt.Fprintf(stdout, "recoveries %d, slips suspected %d, odometry gaps %d\n", stats.GetRecoveries(), stats.GetSlips(), stats.GetGaps())
 	for _, ss := range stats.GetSensors() {
 		fmt.Fprintf(stdout, "sensor %-7s applied %5d gated %4d  mean NIS %.2f (95%% band %.2f-%.2f): %s\n", ss.GetSensorId(),

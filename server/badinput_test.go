@@ -78,15 +78,15 @@ func TestBadInputOverTheWire(t *testing.T) {
 		return st.Size()
 	}
 	robotNow := func() (*pb.Robot, *pb.FusedPose) {
-		r, err := c.API().GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
+		r, err := c.GetRobot(ctx, "robots/cart")
 		if err != nil {
 			t.Fatal(err)
 		}
-		p, err := c.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: newest})
+		p, err := c.PoseAt(ctx, "robots/cart", newest)
 		if err != nil {
 			t.Fatal(err)
 		}
-		return r.GetRobot(), p.GetPose()
+		return r, p
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -130,7 +130,7 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Errorf("oversized message changed the robot or journal")
 	}
 	// Unary calls name the field too.
-	_, err = c.API().ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: "robots/cart", Reseed: &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{XM: math.NaN()}, Covariance: good}})
+	_, err = c.Reseed(ctx, "robots/cart", newest, &pb.FloorPose{XM: math.NaN()}, good.GetValues())
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "pose") {
 		t.Errorf("ReseedRobot NaN: %v", err)
 	}
@@ -147,7 +147,7 @@ func TestBadInputOverTheWire(t *testing.T) {
 	if _, err := c.CreateRobot(ctx, "cart", cfg); status.Code(err) != codes.AlreadyExists {
 		t.Errorf("duplicate robot: %v", err)
 	}
-	if _, err := c.API().GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: "robots/none"}); status.Code(err) != codes.NotFound {
+	if _, err := c.Statistics(ctx, "robots/none"); status.Code(err) != codes.NotFound {
 		t.Errorf("statistics of an unknown robot: %v", err)
 	}
 }

@@ -66,7 +66,7 @@ func pump(b *testing.B, addr, robot string, samp []*pb.Sample) time.Duration {
 			b.Fatal(err)
 		}
 	}
-	sess.Stream().CloseSend()
+	sess.CloseSend()
 	if n := <-done; n != len(samp) {
 		b.Fatalf("%d verdicts for %d samples", n, len(samp))
 	}

@@ -128,20 +128,20 @@ func TestCrashSafety(t *testing.T) {
 	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	defer srv.stop()
 	c2 := dial(t, srv.addr, clientOpts())
-	got, err := c2.API().GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
+	got, err := c2.GetRobot(ctx, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
 	}
-	n := got.GetRobot().GetInputCount()
+	n := got.GetInputCount()
 	if n < maxAck {
 		t.Fatalf("restored robot has %d inputs; %d were acknowledged", n, maxAck)
 	}
-	p, err := c2.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: want.NewestNs()})
+	p, err := c2.PoseAt(ctx, "robots/cart", want.NewestNs())
 	if err != nil {
 		t.Fatal(err)
 	}
-	if wp := want.Pose().Pose; p.GetPose().GetPose().GetXM() != wp.X || p.GetPose().GetPose().GetYM() != wp.Y {
-		t.Errorf("restored pose %v, journal replay %+v", p.GetPose().GetPose(), wp)
+	if wp := want.Pose().Pose; p.GetPose().GetXM() != wp.X || p.GetPose().GetYM() != wp.Y {
+		t.Errorf("restored pose %v, journal replay %+v", p.GetPose(), wp)
 	}
 	// It resumes: the rest of the run goes in, every sample taken.
 	sess2, err := c2.OpenIngest(ctx, "robots/cart")

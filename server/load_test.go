@@ -3,6 +3,7 @@ package server
 import (
 	"context"
 	"fmt"
+	"iter"
 	"runtime"
 	"sort"
 	"sync"
@@ -12,7 +13,6 @@ import (
 
 	"reckon.example/clients/client"
 	"reckon.example/fusion/fusiontest"
-	pb "reckon.example/proto/reckon/v1"
 )
 
 // loadResult is what runLoad measured.
@@ -50,8 +50,10 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 		name := "robots/" + id
 		for w := 0; w < watchers; w++ {
 			if w == 0 {
-				// A stuck watcher: it opens the stream and never reads.
-				if _, err := readers.API().Watch(wctx, &pb.WatchRequest{Robot: name}); err != nil {
+				// A stuck watcher: it takes the first pose and never reads again.
+				next, stop := iter.Pull2(readers.Watch(wctx, name, 0))
+				defer stop()
+				if _, err, _ := next(); err != nil {
 					t.Fatal(err)
 				}
 				continue
@@ -118,7 +120,7 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 				}
 				atomic.AddInt64(&res.sent, 1)
 			}
-			sess.Stream().CloseSend()
+			sess.CloseSend()
 			atomic.AddInt64(&res.answered, <-recvDone)
 		}(r)
 	}

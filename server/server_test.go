@@ -142,19 +142,19 @@ func TestEndToEnd(t *testing.T) {
 	srv2 := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
 	defer srv2.stop()
 	c := dial(t, srv2.addr, clientOpts())
-	got, err := c.API().GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
+	got, err := c.GetRobot(ctx, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
 	}
-	if got.GetRobot().GetInputCount() != uint64(len(samp)) {
-		t.Errorf("restored robot has %d inputs, want %d", got.GetRobot().GetInputCount(), len(samp))
+	if got.GetInputCount() != uint64(len(samp)) {
+		t.Errorf("restored robot has %d inputs, want %d", got.GetInputCount(), len(samp))
 	}
-	p, err := c.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: fr.NewestNs()})
+	p, err := c.PoseAt(ctx, "robots/cart", fr.NewestNs())
 	if err != nil {
 		t.Fatal(err)
 	}
-	if want := convert.PoseToProto("robots/cart", fr.Pose(), fr.Sequence()); !proto.Equal(p.GetPose().GetPose(), want.GetPose()) {
-		t.Errorf("restored pose %v, want %v", p.GetPose().GetPose(), want.GetPose())
+	if want := convert.PoseToProto("robots/cart", fr.Pose(), fr.Sequence()); !proto.Equal(p.GetPose(), want.GetPose()) {
+		t.Errorf("restored pose %v, want %v", p.GetPose(), want.GetPose())
 	}
 }
 

@@ -21,7 +21,6 @@ import (
 
 	"reckon.example/clients/client"
 	"reckon.example/fusion/fusiontest"
-	pb "reckon.example/proto/reckon/v1"
 )
 
 // pki is a CA with certificates it signed, written as PEM files.
@@ -79,8 +78,12 @@ func tryCall(t *testing.T, addr string, opt client.Options) error {
 	c := dial(t, addr, opt)
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
 	defer cancel()
-	_, err := c.API().ListRobots(ctx, &pb.ListRobotsRequest{})
-	return err
+	for _, err := range c.ListRobots(ctx, 0) {
+		if err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 func TestTLSAndToken(t *testing.T) {

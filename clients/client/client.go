@@ -1,6 +1,22 @@
 // Package client is the Go client library of the reckon FusionService:
-// connect, create robots, feed samples through an ingest session, and
-// iterate over a robot's fused poses.
+// connect, create, look up, list and delete robots, feed samples through an
+// ingest session, iterate over a robot's fused poses, read the estimate at a
+// stamp and the running statistics, and re-seed a robot that was moved.
+// Robots are named by their resource name, "robots/{id}"; stamps are
+// nanoseconds on the robot's time base.
+//
+// # Using the library from another module
+//
+// The module path is reckon.example. No module proxy serves it, so another
+// module requires it at a placeholder version and replaces it with a
+// checkout of the repository (here at ../reckon):
+//
+//	go mod edit -require reckon.example@v0.0.0 -replace reckon.example=../reckon
+//	go mod tidy
+//
+// or lists both modules in a go.work file (go work init . ../reckon). It
+// then imports reckon.example/clients/client and the wire types,
+// reckon.example/proto/reckon/v1.
 package client
 
 import (
@@ -71,9 +87,6 @@ func Dial(addr string, opt Options) (*Client, error) {
 	return &Client{conn: conn, api: pb.NewFusionServiceClient(conn)}, nil
 }
 
-// API returns the generated client for calls without a helper here.
-func (c *Client) API() pb.FusionServiceClient { return c.api }
-
 // Close closes the connection.
 func (c *Client) Close() error { return c.conn.Close() }
 
@@ -84,6 +97,78 @@ func (c *Client) CreateRobot(ctx context.Context, id string, cfg *pb.RobotConfig
 		return nil, err
 	}
 	return resp.GetRobot(), nil
+}
+
+// GetRobot returns the robot named name ("robots/{id}").
+func (c *Client) GetRobot(ctx context.Context, name string) (*pb.Robot, error) {
+	resp, err := c.api.GetRobot(ctx, &pb.GetRobotRequest{Name: name})
+	if err != nil {
+		return nil, err
+	}
+	return resp.GetRobot(), nil
+}
+
+// ListRobots iterates over every robot, in the server's order, fetching
+// pageSize robots per call (0: the server's default). An error is yielded
+// once, as the last element.
+func (c *Client) ListRobots(ctx context.Context, pageSize int) iter.Seq2[*pb.Robot, error] {
+	return func(yield func(*pb.Robot, error) bool) {
+		req := &pb.ListRobotsRequest{PageSize: int32(pageSize)}
+		for {
+			resp, err := c.api.ListRobots(ctx, req)
+			if err != nil {
+				yield(nil, err)
+				return
+			}
+			for _, r := range resp.GetRobots() {
+				if !yield(r, nil) {
+					return
+				}
+			}
+			if resp.GetNextPageToken() == "" {
+				return
+			}
+			req.PageToken = resp.GetNextPageToken()
+		}
+	}
+}
+
+// DeleteRobot deletes the robot named name ("robots/{id}"); the service
+// closes its journal and sets it aside.
+func (c *Client) DeleteRobot(ctx context.Context, name string) error {
+	_, err := c.api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: name})
+	return err
+}
+
+// PoseAt returns robot's ("robots/{id}") fused pose at stampNs, on the
+// robot's time base in nanoseconds: the filtered estimate inside the
+// robot's history window, extrapolated a little past its newest odometry.
+func (c *Client) PoseAt(ctx context.Context, robot string, stampNs int64) (*pb.FusedPose, error) {
+	resp, err := c.api.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: robot, StampNs: stampNs})
+	if err != nil {
+		return nil, err
+	}
+	return resp.GetPose(), nil
+}
+
+// Statistics returns robot's ("robots/{id}") running statistics: inputs by
+// verdict, each sensor's consistency, slips, gaps, recoveries and trust.
+func (c *Client) Statistics(ctx context.Context, robot string) (*pb.RobotStatistics, error) {
+	resp, err := c.api.GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: robot})
+	if err != nil {
+		return nil, err
+	}
+	return resp.GetStatistics(), nil
+}
+
+// Reseed restarts robot's ("robots/{id}") estimate from pose (field frame:
+// metres, radians) at stampNs with cov, its 3x3 row-major covariance
+// (m^2, m*rad, rad^2). Samples stamped before stampNs are no longer taken.
+// The response carries the reseed's sequence number and verdict; a refused
+// reseed is a response with its reason, not an error.
+func (c *Client) Reseed(ctx context.Context, robot string, stampNs int64, pose *pb.FloorPose, cov []float64) (*pb.ReseedRobotResponse, error) {
+	return c.api.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: robot, Reseed: &pb.Reseed{
+		StampNs: stampNs, Pose: pose, Covariance: &pb.Covariance{Dimension: 3, Values: cov}}})
 }
 
 // Session is one ingest stream for one robot. Send and Recv may be used
@@ -132,6 +217,11 @@ func (s *Session) Apply(sample *pb.Sample) (*pb.IngestResponse, error) {
 	return resp, nil
 }
 
+// CloseSend tells the server that no more samples follow, without waiting:
+// another goroutine may keep calling Recv until it returns io.EOF, after the
+// verdict of every sample sent.
+func (s *Session) CloseSend() error { return s.stream.CloseSend() }
+
 // Close ends the stream after the server has answered everything sent.
 func (s *Session) Close() error {
 	if err := s.stream.CloseSend(); err != nil {
@@ -171,7 +261,3 @@ func (c *Client) Watch(ctx context.Context, robot string, minInterval time.Durat
 		}
 	}
 }
-
-// Stream returns the underlying gRPC stream (for CloseSend while another
-// goroutine keeps receiving).
-func (s *Session) Stream() pb.FusionService_IngestClient { return s.stream }

@@ -7,6 +7,8 @@ import (
 	"log/slog"
 	"math"
 
+	"google.golang.org/grpc/status"
+
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
@@ -67,12 +69,12 @@ func Example() {
 		}
 	}
 	sess.Close()
-	p, err := c.API().GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: 1e9})
+	p, err := c.PoseAt(ctx, "robots/cart", 1e9)
 	if err != nil {
 		fmt.Println(err)
 		return
 	}
-	fmt.Printf("x %.3f m, y %.3f m, heading %.1f deg\n", p.GetPose().GetPose().GetXM(), p.GetPose().GetPose().GetYM(), p.GetPose().GetPose().GetHeadingRad()*180/math.Pi)
+	fmt.Printf("x %.3f m, y %.3f m, heading %.1f deg\n", p.GetPose().GetXM(), p.GetPose().GetYM(), p.GetPose().GetHeadingRad()*180/math.Pi)
 	// Output: x 0.000 m, y 0.000 m, heading 90.0 deg
 }
 
@@ -105,4 +107,157 @@ func ExampleClient_Watch() {
 		}
 	}
 	// Output: at 1.0 s: x 1.00 m, trusted true
+}
+
+// driveStraight feeds robot 1 m straight ahead in ten 100 ms intervals.
+func driveStraight(ctx context.Context, c *client.Client, robot string) error {
+	sess, err := c.OpenIngest(ctx, robot)
+	if err != nil {
+		return err
+	}
+	for k := int64(0); k < 10; k++ {
+		if _, err := sess.Apply(travel(k*100e6, (k+1)*100e6, 0.1, 0.1)); err != nil {
+			return err
+		}
+	}
+	return sess.Close()
+}
+
+// Read the estimate at a stamp inside the run: half way, the cart was
+// half a metre along.
+func ExampleClient_PoseAt() {
+	addr, stop := startService()
+	defer stop()
+	c, _ := client.Dial(addr, client.Options{})
+	defer c.Close()
+	ctx := context.Background()
+	c.CreateRobot(ctx, "cart", cartConfig())
+	if err := driveStraight(ctx, c, "robots/cart"); err != nil {
+		fmt.Println(err)
+		return
+	}
+	p, err := c.PoseAt(ctx, "robots/cart", 500e6)
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	fmt.Printf("at %.1f s: x %.2f m, y %.2f m\n", float64(p.GetStampNs())*1e-9, p.GetPose().GetXM(), p.GetPose().GetYM())
+	// Output: at 0.5 s: x 0.50 m, y 0.00 m
+}
+
+// Count a robot's inputs by verdict.
+func ExampleClient_Statistics() {
+	addr, stop := startService()
+	defer stop()
+	c, _ := client.Dial(addr, client.Options{})
+	defer c.Close()
+	ctx := context.Background()
+	c.CreateRobot(ctx, "cart", cartConfig())
+	if err := driveStraight(ctx, c, "robots/cart"); err != nil {
+		fmt.Println(err)
+		return
+	}
+	st, err := c.Statistics(ctx, "robots/cart")
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	fmt.Printf("odometry applied %d, gated %d\n", st.GetOdometry().GetApplied(), st.GetOdometry().GetGated())
+	// Output: odometry applied 10, gated 0
+}
+
+// Put a cart that was carried to the potting bench back on the map.
+func ExampleClient_Reseed() {
+	addr, stop := startService()
+	defer stop()
+	c, _ := client.Dial(addr, client.Options{})
+	defer c.Close()
+	ctx := context.Background()
+	c.CreateRobot(ctx, "cart", cartConfig())
+	if err := driveStraight(ctx, c, "robots/cart"); err != nil {
+		fmt.Println(err)
+		return
+	}
+	cov := []float64{1e-4, 0, 0, 0, 1e-4, 0, 0, 0, 1e-4}
+	resp, err := c.Reseed(ctx, "robots/cart", 1e9, &pb.FloorPose{XM: 4, YM: 2.5, HeadingRad: math.Pi / 2}, cov)
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	p, _ := c.PoseAt(ctx, "robots/cart", 1e9)
+	fmt.Printf("%s: x %.2f m, y %.2f m, heading %.1f deg\n", resp.GetVerdict(), p.GetPose().GetXM(), p.GetPose().GetYM(), p.GetPose().GetHeadingRad()*180/math.Pi)
+	// Output: VERDICT_APPLIED: x 4.00 m, y 2.50 m, heading 90.0 deg
+}
+
+// Create, look up, list and delete robots; ListRobots fetches the pages
+// as the loop goes.
+func ExampleClient_ListRobots() {
+	addr, stop := startService()
+	defer stop()
+	c, _ := client.Dial(addr, client.Options{})
+	defer c.Close()
+	ctx := context.Background()
+	for _, id := range []string{"cart-a", "cart-b", "cart-c"} {
+		if _, err := c.CreateRobot(ctx, id, cartConfig()); err != nil {
+			fmt.Println(err)
+			return
+		}
+	}
+	if err := c.DeleteRobot(ctx, "robots/cart-b"); err != nil {
+		fmt.Println(err)
+		return
+	}
+	if _, err := c.GetRobot(ctx, "robots/cart-b"); err != nil {
+		fmt.Println("cart-b:", status.Code(err))
+	}
+	for r, err := range c.ListRobots(ctx, 1) {
+		if err != nil {
+			fmt.Println(err)
+			return
+		}
+		fmt.Println(r.GetName())
+	}
+	// Output:
+	// cart-b: NotFound
+	// robots/cart-a
+	// robots/cart-c
+}
+
+// Send samples from one goroutine while another reads the verdicts, then
+// say that no more follow.
+func ExampleSession_CloseSend() {
+	addr, stop := startService()
+	defer stop()
+	c, _ := client.Dial(addr, client.Options{})
+	defer c.Close()
+	ctx := context.Background()
+	c.CreateRobot(ctx, "cart", cartConfig())
+	sess, err := c.OpenIngest(ctx, "robots/cart")
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	done := make(chan int)
+	go func() {
+		applied := 0
+		for {
+			resp, err := sess.Recv()
+			if err != nil { // io.EOF once every verdict has come
+				done <- applied
+				return
+			}
+			if resp.GetVerdict() == pb.Verdict_VERDICT_APPLIED {
+				applied++
+			}
+		}
+	}()
+	for k := int64(0); k < 20; k++ {
+		sess.Send(travel(k*50e6, (k+1)*50e6, 0.05, 0.05))
+	}
+	if err := sess.CloseSend(); err != nil {
+		fmt.Println(err)
+		return
+	}
+	fmt.Println("applied", <-done)
+	// Output: applied 20
 }

@@ -111,7 +111,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		}
 		sent++
 	}
-	if err := sess.Stream().CloseSend(); err != nil && readErr == nil {
+	if err := sess.CloseSend(); err != nil && readErr == nil {
 		readErr = err
 	}
 	t := <-done

@@ -121,7 +121,7 @@ func TestCrashSafety(t *testing.T) {
 	t.Logf("%d acknowledged before the kill, %d in the journal", len(acked), len(journaled))
 
 	// Restart on the same journal.
-	want, _, err := Replay(dir, "cart")
+	want, _, err := journal.Replay(dir, "cart", journal.ReplayOptions{Check: true})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -157,7 +157,7 @@ func Serve(ctx context.Context, dc DaemonConfig) error {
 		return err
 	}
 	for id, cfg := range dc.Robots {
-		if _, err := srv.lookup("robots/" + id); err == nil {
+		if _, err := srv.lookup(RobotName(id)); err == nil {
 			continue
 		}
 		if _, err := srv.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {

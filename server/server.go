@@ -177,7 +177,7 @@ func (s *Server) list() []*robot {
 }
 
 func (s *Server) lookup(name string) (*robot, error) {
-	if _, err := journal.ID(name); err != nil {
+	if _, err := RobotID(name); err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
 	}
 	s.mu.RLock()
@@ -206,7 +206,7 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
-	name := "robots/" + req.GetRobotId()
+	name := RobotName(req.GetRobotId())
 	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr}
 	s.mu.Lock()
 	defer s.mu.Unlock()

@@ -106,7 +106,7 @@ func TestEndToEnd(t *testing.T) {
 	srv.stop()
 
 	// The journal replays to exactly the recorded outputs.
-	fr2, scan, err := Replay(dir, "cart")
+	fr2, scan, err := journal.Replay(dir, "cart", journal.ReplayOptions{Check: true})
 	if err != nil {
 		t.Fatal(err)
 	}

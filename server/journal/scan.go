@@ -7,7 +7,6 @@ import (
 	"os"
 	"regexp"
 	"strconv"
-	"strings"
 
 	"google.golang.org/protobuf/proto"
 
@@ -226,17 +225,9 @@ func (st *scanState) segment(path string, first bool) (stop bool, err error) {
 	return false, nil
 }
 
-// ID returns the {robot} part of "robots/{robot}".
-func ID(name string) (string, error) {
-	id, ok := strings.CutPrefix(name, "robots/")
-	if !ok || !ValidID(id) {
-		return "", fmt.Errorf("%q is not a robot name of the form robots/{robot}", name)
-	}
-	return id, nil
-}
-
 var idPattern = regexp.MustCompile(`^[a-z][a-z0-9-]{0,62}$`)
 
 // ValidID reports whether id is 1 to 63 lower-case letters, digits and
-// hyphens, starting with a letter.
+// hyphens, starting with a letter: safe as the start of a file name on
+// every file system, and what the service accepts as a robot id.
 func ValidID(id string) bool { return idPattern.MatchString(id) }

@@ -22,6 +22,7 @@ import (
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
 	"reckon.example/server/convert"
+	"reckon.example/server/daemon"
 )
 
 func parseLayout(s string) (fusiontest.Layout, error) {
@@ -91,7 +92,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	addrc := make(chan string, 1)
 	srvErr := make(chan error, 1)
 	go func() {
-		srvErr <- server.Serve(srvCtx, server.DaemonConfig{Listen: "127.0.0.1:0", Options: server.Options{JournalDir: *journal,
+		srvErr <- daemon.Serve(srvCtx, daemon.Config{Listen: "127.0.0.1:0", Options: server.Options{JournalDir: *journal,
 			Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}, Ready: func(a, _ string) { addrc <- a }})
 	}()
 	var addr string

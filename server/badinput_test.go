@@ -20,7 +20,7 @@ import (
 // message naming the field; the robot and its journal are unchanged.
 func TestBadInputOverTheWire(t *testing.T) {
 	dir := t.TempDir()
-	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}, MaxMessageBytes: 16 << 10})
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}, MaxMessageBytes: 16 << 10})
 	defer srv.stop()
 	c := dial(t, srv.addr, clientOpts())
 	ctx := context.Background()
@@ -149,15 +149,5 @@ func TestBadInputOverTheWire(t *testing.T) {
 	}
 	if _, err := c.Statistics(ctx, "robots/none"); status.Code(err) != codes.NotFound {
 		t.Errorf("statistics of an unknown robot: %v", err)
-	}
-}
-
-// TestServeRefusesMessagesLargerThanRecords: a message limit under which a
-// sample could outgrow a journal record (which would stop its robot) is a
-// configuration error, named before anything listens.
-func TestServeRefusesMessagesLargerThanRecords(t *testing.T) {
-	err := Serve(context.Background(), DaemonConfig{Listen: "127.0.0.1:0", MaxMessageBytes: journal.MaxRecordBytes})
-	if err == nil || !strings.Contains(err.Error(), "max message bytes") {
-		t.Fatalf("Serve with max message bytes %d: %v", journal.MaxRecordBytes, err)
 	}
 }

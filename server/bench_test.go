@@ -90,7 +90,7 @@ func BenchmarkIngestThroughput(b *testing.B) {
 	var bareTime, fullTime time.Duration
 	for b.Loop() {
 		bareTime += pump(b, lis.Addr().String(), "robots/cart", samp)
-		srv := start(b, DaemonConfig{Options: Options{JournalDir: b.TempDir()}})
+		srv := start(b, testConfig{Options: Options{JournalDir: b.TempDir()}})
 		c, _ := client.Dial(srv.addr, client.Options{})
 		if _, err := c.CreateRobot(context.Background(), "cart", cfg); err != nil {
 			b.Fatal(err)

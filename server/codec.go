@@ -15,7 +15,7 @@ import (
 // where a request keeps the bytes it arrived as (the journal records its
 // sample as it came, without encoding it again) and a verdict already
 // encoded for the journal is sent as those bytes. Every other message goes
-// through the standard protobuf codec. Serve installs it; a Server
+// through the standard protobuf codec. ServiceOptions installs it; a Server
 // registered on a gRPC server without it works the same, only with an
 // encoding more per sample.
 type codec struct{ std encoding.CodecV2 }

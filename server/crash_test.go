@@ -23,13 +23,14 @@ import (
 func TestMain(m *testing.M) {
 	if dir := os.Getenv("RECKON_TEST_DAEMON_JOURNAL"); dir != "" {
 		ready := os.Getenv("RECKON_TEST_DAEMON_READY")
-		err := Serve(context.Background(), DaemonConfig{Listen: "127.0.0.1:0", Options: Options{JournalDir: dir},
-			Ready: func(addr, _ string) { os.WriteFile(ready+".tmp", []byte(addr), 0o644); os.Rename(ready+".tmp", ready) }})
+		addr, _, err := serveLoopback(testConfig{Options: Options{JournalDir: dir}})
 		if err != nil {
 			os.Stderr.WriteString(err.Error() + "\n")
 			os.Exit(2)
 		}
-		os.Exit(0)
+		os.WriteFile(ready+".tmp", []byte(addr), 0o644)
+		os.Rename(ready+".tmp", ready)
+		select {} // until the test kills it
 	}
 	os.Exit(m.Run())
 }
@@ -121,11 +122,11 @@ func TestCrashSafety(t *testing.T) {
 	t.Logf("%d acknowledged before the kill, %d in the journal", len(acked), len(journaled))
 
 	// Restart on the same journal.
-	want, _, err := Replay(dir, "cart")
+	want, _, err := journal.Replay(dir, "cart", journal.ReplayOptions{Check: true})
 	if err != nil {
 		t.Fatal(err)
 	}
-	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
 	defer srv.stop()
 	c2 := dial(t, srv.addr, clientOpts())
 	got, err := c2.GetRobot(ctx, "robots/cart")

@@ -1,11 +1,13 @@
 package server
 
 import (
-	"context"
+	"errors"
 	"log/slog"
+	"net"
 	"os"
 	"testing"
-	"time"
+
+	"google.golang.org/grpc"
 
 	"reckon.example/clients/client"
 	"reckon.example/fusion"
@@ -14,42 +16,64 @@ import (
 	"reckon.example/server/convert"
 )
 
-// running is a service started by a test on a loopback port.
-type running struct {
-	addr, metrics string
-	stop          func()
+// testConfig is what a test starts a service with.
+type testConfig struct {
+	Options
+	MaxMessageBytes int
 }
 
-func start(t testing.TB, dc DaemonConfig) *running {
+// running is a service started by a test on a loopback port.
+type running struct {
+	addr string
+	stop func()
+}
+
+// serveLoopback serves a new Server, restored from its journal directory,
+// on a loopback port with the service's gRPC options (what the daemon adds
+// around it, package daemon, is not needed here). stop ends it gracefully.
+func serveLoopback(tc testConfig) (addr string, stop func() error, err error) {
+	opts, err := ServiceOptions(tc.MaxMessageBytes)
+	if err != nil {
+		return "", nil, err
+	}
+	srv, err := New(tc.Options)
+	if err != nil {
+		return "", nil, err
+	}
+	if _, err := srv.Restore(); err != nil {
+		srv.Close()
+		return "", nil, err
+	}
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		srv.Close()
+		return "", nil, err
+	}
+	gs := grpc.NewServer(opts...)
+	pb.RegisterFusionServiceServer(gs, srv)
+	served := make(chan error, 1)
+	go func() { served <- gs.Serve(lis) }()
+	return lis.Addr().String(), func() error {
+		srv.EndWatches()
+		gs.GracefulStop()
+		return errors.Join(<-served, srv.Close())
+	}, nil
+}
+
+func start(t testing.TB, tc testConfig) *running {
 	t.Helper()
-	ctx, cancel := context.WithCancel(context.Background())
-	ready := make(chan [2]string, 1)
-	done := make(chan error, 1)
-	dc.Listen = "127.0.0.1:0"
-	dc.Ready = func(a, m string) { ready <- [2]string{a, m} }
-	if dc.Logger == nil {
-		dc.Logger = slog.New(slog.NewTextHandler(os.Stderr, &slog.HandlerOptions{Level: slog.LevelWarn}))
+	if tc.Logger == nil {
+		tc.Logger = slog.New(slog.NewTextHandler(os.Stderr, &slog.HandlerOptions{Level: slog.LevelWarn}))
 	}
-	go func() { done <- Serve(ctx, dc) }()
-	select {
-	case a := <-ready:
-		r := &running{addr: a[0], metrics: a[1]}
-		r.stop = func() {
-			cancel()
-			if err := <-done; err != nil {
-				t.Errorf("Serve: %v", err)
-			}
+	addr, stop, err := serveLoopback(tc)
+	if err != nil {
+		t.Fatalf("serve: %v", err)
+	}
+	return &running{addr: addr, stop: func() {
+		if err := stop(); err != nil {
+			t.Errorf("serve: %v", err)
 		}
-		return r
-	case err := <-done:
-		cancel()
-		t.Fatalf("Serve: %v", err)
-	case <-time.After(10 * time.Second):
-		cancel()
-		t.Fatal("service did not start")
-	}
-	cancel()
-	return nil
+	}}
 }
 
 func dial(t testing.TB, addr string, opt client.Options) *client.Client {

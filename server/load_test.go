@@ -27,7 +27,7 @@ type loadResult struct {
 // late fixes each) for dur, with watchers per robot of which one never
 // reads. Request loops are bounded by dur; everything is on loopback.
 func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
-	srv := start(t, DaemonConfig{Options: Options{JournalDir: t.TempDir()}})
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
 	defer srv.stop()
 	ctx, cancel := context.WithTimeout(context.Background(), dur+30*time.Second)
 	defer cancel()

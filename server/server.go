@@ -177,7 +177,7 @@ func (s *Server) list() []*robot {
 }
 
 func (s *Server) lookup(name string) (*robot, error) {
-	if _, err := journal.ID(name); err != nil {
+	if _, err := RobotID(name); err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
 	}
 	s.mu.RLock()
@@ -206,7 +206,7 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
-	name := "robots/" + req.GetRobotId()
+	name := RobotName(req.GetRobotId())
 	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr}
 	s.mu.Lock()
 	defer s.mu.Unlock()
@@ -393,13 +393,11 @@ func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
 	return out
 }
 
-// ingestRun takes a run of samples for one robot. Each taken sample is
-// journaled with the bytes it arrived as (encoded here when it came without
-// them) and its verdict with the bytes that will be sent.
+// ingestRun takes a run of samples for one robot: under its lock, the
+// samples and one journal write; then the watchers and the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 	start := time.Now()
-	name := run[0].GetRobot()
-	r, err := s.lookup(name)
+	r, err := s.lookup(run[0].GetRobot())
 	if err != nil {
 		st := status.Convert(err)
 		for k, req := range run {
@@ -409,74 +407,19 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 		return
 	}
 	var pose *pb.FusedPose
-	var events []*pb.FusionEvent
-	anyTaken := false
-	// The encoded verdicts of the run, one buffer; each verdict's piece is
-	// capped so that later appends never write into it.
-	enc := make([]byte, 0, 48*len(run))
 	r.mu.Lock()
-	for k, req := range run {
-		switch {
-		case r.deleted:
-			refuse(&out[k], req.GetClientSequence(), codes.NotFound, "robot: "+name+" was deleted")
-			continue
-		case r.broken != nil:
-			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
-			continue
-		}
-		resp := &out[k].IngestResponse
-		if !convert.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {
-			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
-			continue
-		}
-		anyTaken = true
-		events = append(events, resp.Events...)
-		mark := len(enc)
-		if enc, err = (proto.MarshalOptions{}).MarshalAppend(enc, resp); err != nil {
-			// Not expected: every string in a verdict comes from decoded,
-			// hence valid, input or from our own messages. Should it
-			// happen, the input cannot be journaled with its output, so the
-			// robot stops as on a failed journal write (below).
-			r.broken = fmt.Errorf("encoding verdict %d: %w", resp.Sequence, err)
-			enc = enc[:mark]
-			continue
-		}
-		out[k].wire = enc[mark:len(enc):len(enc)]
-		if r.journal == nil {
-			continue
-		}
-		sample := requestSample(req.wire)
-		if sample == nil {
-			if sample, err = (proto.MarshalOptions{Deterministic: true}).Marshal(req.GetSample()); err != nil {
-				r.broken = fmt.Errorf("encoding sample %d: %w", resp.Sequence, err)
-				continue
-			}
-		}
-		var p *pb.FusedPose
-		if resp.Sequence%journal.PoseEvery == 0 {
-			p = convert.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
-		}
-		if err := r.journal.AddEncodedPair(resp.Sequence, sample, start.UnixNano(), out[k].wire, p); err != nil {
-			r.broken = err
-		}
-	}
+	events, anyTaken := s.takeRun(r, run, out, start)
 	if anyTaken {
 		pose = poseNow(r)
 	}
-	if r.journal != nil && r.broken == nil {
-		if err := r.journal.Flush(); err != nil {
-			r.broken = err
-		} else if r.sinceSnapshot += len(run); r.sinceSnapshot >= s.opt.SnapshotEvery {
-			s.snapshot(r)
-		}
-	}
+	s.flushJournal(r, len(run))
 	broken := r.broken
 	r.mu.Unlock()
 	if broken != nil && pose != nil {
 		// Nothing taken in this run may be acknowledged: it is not (all) in
 		// the journal. The robot takes no more input until a restart
 		// restores it from what the journal holds.
-		s.log.Error("journal write failed; the robot takes no more input", "robot", name, "err", broken)
+		s.log.Error("journal write failed; the robot takes no more input", "robot", r.name, "err", broken)
 		for k, req := range run {
 			if out[k].Sequence != 0 {
 				refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())
@@ -492,6 +435,84 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 		if out[k].Sequence != 0 {
 			s.opt.Metrics.verdict(out[k].Verdict, d)
 		}
+	}
+}
+
+// takeRun gives the samples to the robot in order and adds those it takes,
+// with their verdicts, to the journal's buffer; it returns their events and
+// whether any was taken. The caller holds r.mu.
+func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse, arrival time.Time) (events []*pb.FusionEvent, anyTaken bool) {
+	// The encoded verdicts of the run, one buffer; each verdict's piece is
+	// capped so that later appends never write into it.
+	enc := make([]byte, 0, 48*len(run))
+	for k, req := range run {
+		switch {
+		case r.deleted:
+			refuse(&out[k], req.GetClientSequence(), codes.NotFound, "robot: "+r.name+" was deleted")
+			continue
+		case r.broken != nil:
+			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
+			continue
+		}
+		resp := &out[k].IngestResponse
+		if !convert.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {
+			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
+			continue
+		}
+		anyTaken = true
+		events = append(events, resp.Events...)
+		enc = r.record(req, &out[k], enc, arrival)
+	}
+	return events, anyTaken
+}
+
+// record encodes a taken sample's verdict at the end of enc (out keeps its
+// piece) and adds the sample, as the bytes it arrived as (encoded here
+// when it came without them), and the verdict to the journal's buffer. A
+// failure breaks the robot. The caller holds r.mu.
+func (r *robot) record(req *arrivedRequest, out *encodedResponse, enc []byte, arrival time.Time) []byte {
+	resp := &out.IngestResponse
+	mark := len(enc)
+	enc, err := (proto.MarshalOptions{}).MarshalAppend(enc, resp)
+	if err != nil {
+		// Not expected: every string in a verdict comes from decoded,
+		// hence valid, input or from our own messages. Should it
+		// happen, the input cannot be journaled with its output, so the
+		// robot stops as on a failed journal write.
+		r.broken = fmt.Errorf("encoding verdict %d: %w", resp.Sequence, err)
+		return enc[:mark]
+	}
+	out.wire = enc[mark:len(enc):len(enc)]
+	if r.journal == nil {
+		return enc
+	}
+	sample := requestSample(req.wire)
+	if sample == nil {
+		if sample, err = (proto.MarshalOptions{Deterministic: true}).Marshal(req.GetSample()); err != nil {
+			r.broken = fmt.Errorf("encoding sample %d: %w", resp.Sequence, err)
+			return enc
+		}
+	}
+	var p *pb.FusedPose
+	if resp.Sequence%journal.PoseEvery == 0 {
+		p = convert.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
+	}
+	if err := r.journal.AddEncodedPair(resp.Sequence, sample, arrival.UnixNano(), out.wire, p); err != nil {
+		r.broken = err
+	}
+	return enc
+}
+
+// flushJournal writes what the run added to the journal, and a snapshot
+// when one is due. The caller holds r.mu.
+func (s *Server) flushJournal(r *robot, n int) {
+	if r.journal == nil || r.broken != nil {
+		return
+	}
+	if err := r.journal.Flush(); err != nil {
+		r.broken = err
+	} else if r.sinceSnapshot += n; r.sinceSnapshot >= s.opt.SnapshotEvery {
+		s.snapshot(r)
 	}
 }
 

@@ -25,7 +25,7 @@ import (
 // same outputs.
 func TestEndToEnd(t *testing.T) {
 	dir := t.TempDir()
-	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
 	ctx := context.Background()
 	cart, camera, watcher := dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts())
 	samp, ins, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 5, DurationS: 20, OutlierFraction: 0.05})
@@ -106,7 +106,7 @@ func TestEndToEnd(t *testing.T) {
 	srv.stop()
 
 	// The journal replays to exactly the recorded outputs.
-	fr2, scan, err := Replay(dir, "cart")
+	fr2, scan, err := journal.Replay(dir, "cart", journal.ReplayOptions{Check: true})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -139,7 +139,7 @@ func TestEndToEnd(t *testing.T) {
 		t.Errorf("journal scan: %d pairs, %v", n, err)
 	}
 	// And a restarted service restores the robot where it was.
-	srv2 := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
+	srv2 := start(t, testConfig{Options: Options{JournalDir: dir}})
 	defer srv2.stop()
 	c := dial(t, srv2.addr, clientOpts())
 	got, err := c.GetRobot(ctx, "robots/cart")
@@ -162,7 +162,7 @@ func TestEndToEnd(t *testing.T) {
 // up to its last good record, and the tear is reported.
 func TestRestoreTornTail(t *testing.T) {
 	dir := t.TempDir()
-	srv := start(t, DaemonConfig{Options: Options{JournalDir: dir}})
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
 	c := dial(t, srv.addr, clientOpts())
 	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 6, DurationS: 2})
 	ctx := context.Background()

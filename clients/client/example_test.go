@@ -12,6 +12,7 @@ import (
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
+	"reckon.example/server/daemon"
 )
 
 // startService runs a service on a loopback port for the examples.
@@ -20,7 +21,7 @@ func startService() (addr string, stop func()) {
 	ready := make(chan string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- server.Serve(ctx, server.DaemonConfig{Listen: "127.0.0.1:0", Ready: func(a, _ string) { ready <- a },
+		done <- daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Ready: func(a, _ string) { ready <- a },
 			Options: server.Options{Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
 	}()
 	return <-ready, func() { cancel(); <-done }

@@ -180,204 +180,226 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	if opt.MemoryBytes <= 0 {
 		opt.MemoryBytes = 1 << 30
 	}
-	run := &Run{NIS: map[string][]NISPoint{}}
+	run := &Run{Label: src.Label, NIS: map[string][]NISPoint{}}
+	if run.Label == "" {
+		run.Label = Label(src)
+	}
 	run.Summary.Fixes, run.Summary.Reasons = map[string]int{}, map[string]int{}
 	steps := newStepStore(opt.TempDir, opt.MemoryBytes)
 	defer steps.close()
-	var fr *fusion.Robot
-	makeRobot := func(c *pb.RobotConfig) error {
-		if src.Override != nil {
-			c = src.Override
-		}
-		cfg, err := convert.ConfigFromProto(c)
-		if err != nil {
-			return err
-		}
-		run.Config = cfg
-		if fr, err = fusion.New(cfg); err != nil {
-			return err
-		}
-		fr.CollectSteps()
-		return nil
-	}
-	a := &accumulator{run: run, fixAt: map[uint64]int{}}
-	// A second goroutine stores the steps and writes the filtered track
-	// while the replay goes on.
 	if err := os.MkdirAll(outDir, 0o755); err != nil {
 		return nil, err
 	}
-	label := src.Label
-	if label == "" {
-		label = Label(src)
-	}
-	run.FilteredCSV = filepath.Join(outDir, label+"-filtered.csv")
-	ff, err := os.Create(run.FilteredCSV)
+	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
+	fw, err := newFilteredWriter(run.FilteredCSV, steps)
 	if err != nil {
 		return nil, err
 	}
-	defer ff.Close()
-	batches := make(chan []fusion.Step, 64)
-	written := make(chan error, 1)
-	go func(batches <-chan []fusion.Step) {
-		w := bufio.NewWriterSize(ff, 1<<20)
-		_, err := w.WriteString(strings.Join(csvHeader, ",") + "\n")
-		var row []byte
-		for b := range batches {
-			for i := range b {
-				if err == nil {
-					err = steps.add(&b[i])
-				}
-				row = appendRow(row[:0], b[i].StampNs, &b[i].Post)
-				if _, werr := w.Write(row); err == nil {
-					err = werr
-				}
-			}
-		}
-		if ferr := w.Flush(); err == nil {
-			err = ferr
-		}
-		written <- err
-	}(batches)
-	var pending []fusion.Step
-	flushSteps := func(force bool) {
-		if len(pending) >= 4096 || (force && len(pending) > 0) {
-			batches <- pending
-			pending = nil
-		}
+	defer fw.close()
+	rc := &recorder{run: run, a: &accumulator{run: run, fixAt: map[uint64]int{}}, fw: fw, progress: opt.Progress}
+	fr, err := rc.replay(src)
+	if err != nil {
+		return nil, err
 	}
-	closed := false
-	defer func() {
-		if !closed {
-			close(batches)
-			<-written
-		}
-	}()
-	take := func(s *pb.Sample) error {
-		resp, _ := convert.Take(fr, s, 0)
-		a.input(s, resp)
-		pending = append(pending, fr.TakeSteps()...)
-		flushSteps(false)
-		if opt.Progress != nil && run.Summary.Inputs%10000 == 0 {
-			opt.Progress(run.Summary.Inputs)
-		}
-		return nil
-	}
-	switch {
-	case src.JournalDir != "":
-		id := src.Robot
-		if n, err := journal.ID(src.Robot); err == nil {
-			id = n
-		}
-		run.Robot, run.Label = "robots/"+id, label
-		// The journal is read and decoded in a goroutine of its own, while
-		// this one replays; the robot is made from the opening first.
-		opened := make(chan error, 1)
-		inputs := make(chan *pb.Sample, 1024)
-		stop := make(chan struct{})
-		var scan journal.Scan
-		var scanErr error
-		go func() {
-			defer close(inputs)
-			scan, scanErr = journal.Read(src.JournalDir, id, journal.Visitor{
-				Opening: func(op *pb.JournalOpening) error {
-					err := makeRobot(op.GetConfig())
-					opened <- err
-					return err
-				},
-				Input: func(in *pb.JournalInput) error {
-					select {
-					case inputs <- in.GetSample():
-						return nil
-					case <-stop:
-						return errors.New("review stopped")
-					}
-				},
-			})
-			if scan.Opening == nil {
-				opened <- scanErr
-			}
-		}()
-		if err := <-opened; err != nil {
-			close(stop)
-			for range inputs {
-			}
-			return nil, err
-		}
-		var takeErr error
-		for s := range inputs {
-			if takeErr == nil {
-				if takeErr = take(s); takeErr != nil {
-					close(stop)
-				}
-			}
-		}
-		if takeErr != nil {
-			return nil, takeErr
-		}
-		if scanErr != nil {
-			return nil, scanErr
-		}
-		if scan.Torn != nil {
-			run.Summary.Truncated = fmt.Sprintf("the journal is truncated: %v in %s; this report covers the %d inputs before it", scan.Torn, filepath.Base(scan.TornSegment), scan.Pairs)
-		}
-	case src.Samples != "":
-		if src.Config == nil && src.Override == nil {
-			return nil, errors.New("review of samples needs a configuration")
-		}
-		run.Robot, run.Label = "robots/replay", label
-		if err := makeRobot(src.Config); err != nil {
-			return nil, err
-		}
-		f, err := os.Open(src.Samples)
-		if err != nil {
-			return nil, err
-		}
-		defer f.Close()
-		sr := convert.NewSampleReader(f)
-		for {
-			s, err := sr.Next()
-			if errors.Is(err, io.EOF) {
-				break
-			}
-			if err != nil {
-				run.Summary.Truncated = fmt.Sprintf("the samples file stops being readable: %v; this report covers the %d samples before it", err, run.Summary.Inputs)
-				break
-			}
-			if err := take(s); err != nil {
-				return nil, err
-			}
-		}
-	default:
-		return nil, errors.New("review needs a journal or a samples file")
-	}
-	if fr == nil {
-		return nil, errors.New("the run has no configuration")
-	}
-	pending = append(pending, fr.FinishSteps()...)
-	flushSteps(true)
-	close(batches)
-	closed = true
-	if err := <-written; err != nil {
+	fw.add(fr.FinishSteps(), true)
+	if err := fw.close(); err != nil {
 		return nil, err
 	}
 	run.Config = fr.Config()
-	a.finish(fr)
-	smoothed, err := newStateStore(opt.TempDir, steps.Len(), steps.onDisk())
+	rc.a.finish(fr)
+	smoothed, err := smooth(steps, opt.TempDir)
 	if err != nil {
 		return nil, err
 	}
 	defer smoothed.close()
-	if err := fusion.Smooth(steps, smoothed); err != nil {
-		return nil, err
-	}
-	if err := smoothed.flush(); err != nil {
-		return nil, err
-	}
-	if err := a.tracks(steps, smoothed, src.Truth, outDir, opt.MaxPoints); err != nil {
+	if err := rc.a.tracks(steps, smoothed, src.Truth, outDir, opt.MaxPoints); err != nil {
 		return nil, err
 	}
 	return run, nil
 }
+
+// smooth runs the smoother over the steps into a state store of its own.
+func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
+	smoothed, err := newStateStore(tempDir, steps.Len(), steps.onDisk())
+	if err != nil {
+		return nil, err
+	}
+	if err := fusion.Smooth(steps, smoothed); err != nil {
+		smoothed.close()
+		return nil, err
+	}
+	if err := smoothed.flush(); err != nil {
+		smoothed.close()
+		return nil, err
+	}
+	return smoothed, nil
+}
+
+// filteredWriter stores the steps and writes the filtered track in a
+// goroutine of its own, while the replay goes on.
+type filteredWriter struct {
+	batches chan []fusion.Step
+	written chan error
+	pending []fusion.Step
+	closed  bool
+	err     error
+}
+
+func newFilteredWriter(path string, steps *stepStore) (*filteredWriter, error) {
+	f, err := os.Create(path)
+	if err != nil {
+		return nil, err
+	}
+	fw := &filteredWriter{batches: make(chan []fusion.Step, 64), written: make(chan error, 1)}
+	go func() {
+		err := writeSteps(f, steps, fw.batches)
+		if cerr := f.Close(); err == nil {
+			err = cerr
+		}
+		fw.written <- err
+	}()
+	return fw, nil
+}
+
+// writeSteps stores every step of the batches and writes it as a CSV row.
+func writeSteps(f io.Writer, steps *stepStore, batches <-chan []fusion.Step) error {
+	w := bufio.NewWriterSize(f, 1<<20)
+	_, err := w.WriteString(strings.Join(csvHeader, ",") + "\n")
+	var row []byte
+	for b := range batches {
+		for i := range b {
+			if err == nil {
+				err = steps.add(&b[i])
+			}
+			row = appendRow(row[:0], b[i].StampNs, &b[i].Post)
+			if _, werr := w.Write(row); err == nil {
+				err = werr
+			}
+		}
+	}
+	if ferr := w.Flush(); err == nil {
+		err = ferr
+	}
+	return err
+}
+
+// add queues steps, handing them over in batches of 4096 (or all at once
+// when flush is set).
+func (fw *filteredWriter) add(steps []fusion.Step, flush bool) {
+	fw.pending = append(fw.pending, steps...)
+	if len(fw.pending) >= 4096 || (flush && len(fw.pending) > 0) {
+		fw.batches <- fw.pending
+		fw.pending = nil
+	}
+}
+
+// close waits for the writer to finish and returns its error; it may be
+// called again.
+func (fw *filteredWriter) close() error {
+	if !fw.closed {
+		fw.closed = true
+		close(fw.batches)
+		fw.err = <-fw.written
+	}
+	return fw.err
+}
+
+// recorder runs the inputs of a recorded run through a robot and gathers
+// the summary and the steps.
+type recorder struct {
+	run      *Run
+	a        *accumulator
+	fw       *filteredWriter
+	progress func(inputs int)
+}
+
+// replay replays the source and returns the robot after its last input.
+func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
+	switch {
+	case src.JournalDir != "":
+		return rc.replayJournal(src)
+	case src.Samples != "":
+		return rc.replaySamples(src)
+	}
+	return nil, errors.New("review needs a journal or a samples file")
+}
+
+// opened readies a new robot: its configuration, and its steps kept.
+func (rc *recorder) opened(fr *fusion.Robot) {
+	rc.run.Config = fr.Config()
+	fr.CollectSteps()
+}
+
+// took records one input the robot was given and its response.
+func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
+	rc.a.input(s, resp)
+	rc.fw.add(fr.TakeSteps(), false)
+	if rc.progress != nil && rc.run.Summary.Inputs%10000 == 0 {
+		rc.progress(rc.run.Summary.Inputs)
+	}
+}
+
+func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
+	id := robotID(src.Robot)
+	rc.run.Robot = "robots/" + id
+	fr, scan, err := journal.Replay(src.JournalDir, id, journal.ReplayOptions{Config: src.Override, SkipOutputs: true,
+		Opened: func(fr *fusion.Robot) error {
+			rc.opened(fr)
+			return nil
+		},
+		Input: func(r *journal.Replayed) error {
+			rc.took(r.Robot, r.Input.GetSample(), r.Response)
+			return nil
+		}})
+	if err != nil {
+		return nil, err
+	}
+	if scan.Torn != nil {
+		rc.run.Summary.Truncated = fmt.Sprintf("the journal is truncated: %v in %s; this report covers the %d inputs before it", scan.Torn, filepath.Base(scan.TornSegment), scan.Pairs)
+	}
+	return fr, nil
+}
+
+func (rc *recorder) replaySamples(src Source) (*fusion.Robot, error) {
+	c := src.Config
+	if src.Override != nil {
+		c = src.Override
+	}
+	if c == nil {
+		return nil, errors.New("review of samples needs a configuration")
+	}
+	rc.run.Robot = "robots/replay"
+	cfg, err := convert.ConfigFromProto(c)
+	if err != nil {
+		return nil, err
+	}
+	fr, err := fusion.New(cfg)
+	if err != nil {
+		return nil, err
+	}
+	rc.opened(fr)
+	f, err := os.Open(src.Samples)
+	if err != nil {
+		return nil, err
+	}
+	defer f.Close()
+	sr := convert.NewSampleReader(f)
+	for {
+		s, err := sr.Next()
+		if errors.Is(err, io.EOF) {
+			return fr, nil
+		}
+		if err != nil {
+			rc.run.Summary.Truncated = fmt.Sprintf("the samples file stops being readable: %v; this report covers the %d samples before it", err, rc.run.Summary.Inputs)
+			return fr, nil
+		}
+		resp, _ := convert.Take(fr, s, 0)
+		rc.took(fr, s, resp)
+	}
+}
+
+// robotID returns the id of a robot given by id or by name ("robots/{id}").
+func robotID(robot string) string { return strings.TrimPrefix(robot, "robots/") }
 
 // accumulator gathers the summary while inputs are replayed.
 type accumulator struct {
@@ -479,10 +501,7 @@ func (a *accumulator) finish(fr *fusion.Robot) {
 // Source.Label says otherwise: the robot's id, or the samples file's name.
 func Label(src Source) string {
 	if src.JournalDir != "" {
-		if id, err := journal.ID(src.Robot); err == nil {
-			return id
-		}
-		return src.Robot
+		return robotID(src.Robot)
 	}
 	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
 }

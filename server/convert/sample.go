@@ -5,8 +5,6 @@ import (
 	"fmt"
 	"strings"
 
-	"google.golang.org/grpc/codes"
-
 	"reckon.example/estimator"
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
@@ -156,19 +154,30 @@ func apply(r *fusion.Robot, in *input) fusion.Result {
 	}
 }
 
-// Code returns the gRPC status code for the error that refused a sample.
-func Code(err error) codes.Code {
+// Status codes of IngestResponse.status_code: google.rpc.Code values
+// (google/rpc/code.proto; common practice), kept here as numbers so that an
+// offline replay fills the field exactly as the service does, without gRPC.
+const (
+	CodeOK                 int32 = 0
+	CodeInvalidArgument    int32 = 3
+	CodeNotFound           int32 = 5
+	CodeFailedPrecondition int32 = 9
+	CodeOutOfRange         int32 = 11
+)
+
+// errorCode returns the status code for the error that refused a sample.
+func errorCode(err error) int32 {
 	switch {
 	case err == nil:
-		return codes.OK
+		return CodeOK
 	case errors.Is(err, fusion.ErrTimeBackwards), errors.Is(err, fusion.ErrTooOld):
-		return codes.OutOfRange
+		return CodeOutOfRange
 	case errors.Is(err, fusion.ErrNoIMU):
-		return codes.FailedPrecondition
+		return CodeFailedPrecondition
 	case errors.Is(err, fusion.ErrUnknownLandmark):
-		return codes.NotFound
+		return CodeNotFound
 	}
-	return codes.InvalidArgument
+	return CodeInvalidArgument
 }
 
 var verdicts = map[fusion.Verdict]pb.Verdict{
@@ -265,15 +274,15 @@ func VerdictName(v pb.Verdict) string {
 	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
 }
 
-// VerdictCode returns the status code of a robot's result.
-func VerdictCode(res fusion.Result) codes.Code {
+// resultCode returns the status code of a robot's result.
+func resultCode(res fusion.Result) int32 {
 	switch res.Verdict {
 	case fusion.VerdictInvalid:
-		return Code(res.Err)
+		return errorCode(res.Err)
 	case fusion.VerdictTooOld:
-		return codes.OutOfRange
+		return CodeOutOfRange
 	}
-	return codes.OK
+	return CodeOK
 }
 
 // Take runs one sample through the robot as the service does. taken is
@@ -295,11 +304,11 @@ func TakeInto(resp *pb.IngestResponse, r *fusion.Robot, s *pb.Sample, clientSeq 
 		res := apply(r, &in)
 		if res.Seq != 0 {
 			resultInto(resp, res, clientSeq)
-			resp.StatusCode = int32(VerdictCode(res))
+			resp.StatusCode = resultCode(res)
 			return true
 		}
 		err = sampleErr(in.field, res.Err)
 	}
-	resp.ClientSequence, resp.Verdict, resp.Reason, resp.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, err.Error(), int32(Code(err))
+	resp.ClientSequence, resp.Verdict, resp.Reason, resp.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, err.Error(), errorCode(err)
 	return false
 }

@@ -225,8 +225,11 @@ func Robots(dir string) ([]string, error) {
 }
 
 // Create starts a new journal for robot with its opening record. It
-// fails if the robot already has one.
+// fails if the robot already has one, or if robot is not a valid id.
 func Create(dir, robot string, opening *pb.JournalOpening, opt Options) (*Writer, error) {
+	if !ValidID(robot) {
+		return nil, fmt.Errorf("journal: robot id %q is not 1 to 63 lower-case letters, digits and hyphens, starting with a letter", robot)
+	}
 	if segs, _ := Segments(dir, robot); len(segs) > 0 {
 		return nil, fmt.Errorf("journal for %s already exists in %s", robot, dir)
 	}

@@ -7,7 +7,6 @@ import (
 	"os"
 	"regexp"
 	"strconv"
-	"strings"
 
 	"google.golang.org/protobuf/proto"
 
@@ -129,6 +128,8 @@ func (st *scanState) pair(inB, outB []byte) error {
 	return st.v.Pair(rin.GetInput(), rout.GetOutput())
 }
 
+// segment scans one segment file; stop is true when it was torn, which
+// ends the scan.
 func (st *scanState) segment(path string, first bool) (stop bool, err error) {
 	sc := st.sc
 	f, err := os.Open(path)
@@ -161,60 +162,8 @@ func (st *scanState) segment(path string, first bool) (stop bool, err error) {
 		if err != nil {
 			return false, err
 		}
-		switch b[0] {
-		case KindOpening:
-			if !first || sc.Opening != nil {
-				return false, fmt.Errorf("%s: an opening record inside the journal", path)
-			}
-			var rec pb.JournalRecord
-			if err := proto.Unmarshal(b, &rec); err != nil {
-				return false, fmt.Errorf("%s: opening record: %w", path, err)
-			}
-			sc.Opening = rec.GetOpening()
-			sc.Good = jr.Offset()
-			if st.v.Opening != nil {
-				if err := st.v.Opening(sc.Opening); err != nil {
-					return false, err
-				}
-			}
-		case KindInput:
-			if sc.Opening == nil {
-				return false, fmt.Errorf("%s: an input before the opening record", path)
-			}
-			if st.pending != nil {
-				return false, fmt.Errorf("%s: an input without its output", path)
-			}
-			st.pending = append([]byte(nil), b...)
-		case KindOutput:
-			if st.pending == nil {
-				return false, fmt.Errorf("%s: an output without its input", path)
-			}
-			sc.Pairs++
-			sc.Good = jr.Offset()
-			if st.v.Snapshot != nil {
-				st.kept = append(st.kept, st.pending, append([]byte(nil), b...))
-			} else if err := st.pair(st.pending, b); err != nil {
-				return false, err
-			}
-			st.pending = nil
-		case KindSnapshot:
-			if st.pending != nil {
-				return false, fmt.Errorf("%s: a snapshot between an input and its output", path)
-			}
-			sc.Good = jr.Offset()
-			if st.v.Snapshot != nil {
-				var rec pb.JournalRecord
-				if err := proto.Unmarshal(b, &rec); err != nil {
-					return false, fmt.Errorf("%s: snapshot record: %w", path, err)
-				}
-				st.snap, _ = proto.Marshal(rec.GetSnapshot())
-				st.kept = st.kept[:0]
-			}
-		case KindClosing:
-			sc.Closed = true
-			sc.Good = jr.Offset()
-		default:
-			return false, fmt.Errorf("%s: record of unknown kind 0x%02x at byte %d", path, b[0], jr.Offset())
+		if err := st.record(path, first, b, jr.Offset()); err != nil {
+			return false, err
 		}
 	}
 	if st.pending != nil {
@@ -226,17 +175,93 @@ func (st *scanState) segment(path string, first bool) (stop bool, err error) {
 	return false, nil
 }
 
-// ID returns the {robot} part of "robots/{robot}".
-func ID(name string) (string, error) {
-	id, ok := strings.CutPrefix(name, "robots/")
-	if !ok || !ValidID(id) {
-		return "", fmt.Errorf("%q is not a robot name of the form robots/{robot}", name)
+// record takes one record's payload b, which ends at byte end of the
+// segment at path.
+func (st *scanState) record(path string, first bool, b []byte, end int64) error {
+	sc := st.sc
+	switch b[0] {
+	case KindOpening:
+		return st.opening(path, first, b, end)
+	case KindInput:
+		if sc.Opening == nil {
+			return fmt.Errorf("%s: an input before the opening record", path)
+		}
+		if st.pending != nil {
+			return fmt.Errorf("%s: an input without its output", path)
+		}
+		st.pending = append([]byte(nil), b...)
+	case KindOutput:
+		return st.output(path, b, end)
+	case KindSnapshot:
+		return st.snapshot(path, b, end)
+	case KindClosing:
+		sc.Closed = true
+		sc.Good = end
+	default:
+		return fmt.Errorf("%s: record of unknown kind 0x%02x at byte %d", path, b[0], end)
 	}
-	return id, nil
+	return nil
+}
+
+// opening takes the opening record, which must come first in the first
+// segment, and hands it to the visitor.
+func (st *scanState) opening(path string, first bool, b []byte, end int64) error {
+	sc := st.sc
+	if !first || sc.Opening != nil {
+		return fmt.Errorf("%s: an opening record inside the journal", path)
+	}
+	var rec pb.JournalRecord
+	if err := proto.Unmarshal(b, &rec); err != nil {
+		return fmt.Errorf("%s: opening record: %w", path, err)
+	}
+	sc.Opening = rec.GetOpening()
+	sc.Good = end
+	if st.v.Opening != nil {
+		return st.v.Opening(sc.Opening)
+	}
+	return nil
+}
+
+// output completes the pending input: the pair goes to the visitor, or,
+// when the scan starts from a snapshot, is kept until the last one is known.
+func (st *scanState) output(path string, b []byte, end int64) error {
+	sc := st.sc
+	if st.pending == nil {
+		return fmt.Errorf("%s: an output without its input", path)
+	}
+	sc.Pairs++
+	sc.Good = end
+	pending := st.pending
+	st.pending = nil
+	if st.v.Snapshot != nil {
+		st.kept = append(st.kept, pending, append([]byte(nil), b...))
+		return nil
+	}
+	return st.pair(pending, b)
+}
+
+// snapshot notes a snapshot record; with a Snapshot visitor it becomes the
+// newest starting point and the pairs kept before it are dropped.
+func (st *scanState) snapshot(path string, b []byte, end int64) error {
+	if st.pending != nil {
+		return fmt.Errorf("%s: a snapshot between an input and its output", path)
+	}
+	st.sc.Good = end
+	if st.v.Snapshot == nil {
+		return nil
+	}
+	var rec pb.JournalRecord
+	if err := proto.Unmarshal(b, &rec); err != nil {
+		return fmt.Errorf("%s: snapshot record: %w", path, err)
+	}
+	st.snap, _ = proto.Marshal(rec.GetSnapshot())
+	st.kept = st.kept[:0]
+	return nil
 }
 
 var idPattern = regexp.MustCompile(`^[a-z][a-z0-9-]{0,62}$`)
 
 // ValidID reports whether id is 1 to 63 lower-case letters, digits and
-// hyphens, starting with a letter.
+// hyphens, starting with a letter: safe as the start of a file name on
+// every file system, and what the service accepts as a robot id.
 func ValidID(id string) bool { return idPattern.MatchString(id) }

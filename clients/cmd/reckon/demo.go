@@ -22,6 +22,7 @@ import (
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
 	"reckon.example/server/convert"
+	"reckon.example/server/daemon"
 )
 
 func parseLayout(s string) (fusiontest.Layout, error) {
@@ -172,7 +173,7 @@ func startDemoServer(dir string) (addr string, stop func() error, err error) {
 
 // serveDemo is the demo's service: on loopback, with a journal, silent.
 func serveDemo(ctx context.Context, dir string, ready func(addr string)) error {
-	return server.Serve(ctx, server.DaemonConfig{Listen: "127.0.0.1:0", Options: server.Options{JournalDir: dir,
+	return daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Options: server.Options{JournalDir: dir,
 		Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}, Ready: func(a, _ string) { ready(a) }})
 }
 

@@ -13,8 +13,8 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
 	"reckon.example/server/convert"
-	"reckon.example/server/journal"
 )
 
 func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -34,7 +34,7 @@ func runFeed(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		fs.Usage()
 		return errors.New("feed needs -robot and one JSON Lines file")
 	}
-	id, err := journal.ID(*robot)
+	id, err := server.RobotID(*robot)
 	if err != nil {
 		return err
 	}

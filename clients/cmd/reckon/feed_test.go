@@ -9,6 +9,7 @@ import (
 	"testing"
 
 	"reckon.example/server"
+	"reckon.example/server/daemon"
 )
 
 // TestFeedAndWatch: reckon feed creates a robot from the example YAML file
@@ -19,7 +20,7 @@ func TestFeedAndWatch(t *testing.T) {
 	ready := make(chan [2]string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- server.Serve(ctx, server.DaemonConfig{Listen: "127.0.0.1:0", MetricsListen: "127.0.0.1:0", Ready: func(a, m string) { ready <- [2]string{a, m} },
+		done <- daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", MetricsListen: "127.0.0.1:0", Ready: func(a, m string) { ready <- [2]string{a, m} },
 			Options: server.Options{JournalDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
 	}()
 	addrs := <-ready

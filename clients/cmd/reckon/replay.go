@@ -12,6 +12,7 @@ import (
 
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
 	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
@@ -61,57 +62,28 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	return errors.New("replay needs -journal and -robot, or -config and -samples")
 }
 
-// replayer runs inputs through a robot as the service would (convert.Take:
-// decoding, then the robot, which checks each input first).
-type replayer struct {
-	name string
-	fr   *fusion.Robot
-	pw   *poseWriter
-}
-
-func (rp *replayer) input(s *pb.Sample) (*pb.IngestResponse, error) {
-	resp, _ := convert.Take(rp.fr, s, 0)
-	return resp, rp.pw.pose(convert.PoseToProto(rp.name, rp.fr.Pose(), rp.fr.Sequence()), resp)
-}
-
 func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
 	id := robot
-	if n, err := journal.ID(robot); err == nil {
+	if n, err := server.RobotID(robot); err == nil {
 		id = n
 	}
-	rp := &replayer{name: "robots/" + id, pw: pw}
+	name := server.RobotName(id)
 	same, differ := 0, 0
-	scan, err := journal.Read(dir, id, journal.Visitor{Opening: func(op *pb.JournalOpening) error {
-		c := op.GetConfig()
-		if override != nil {
-			c = override
-		}
-		cfg, err := convert.ConfigFromProto(c)
-		if err != nil {
-			return err
-		}
-		rp.fr, err = fusion.New(cfg)
-		return err
-	}, Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, Input: func(r *journal.Replayed) error {
 		if err := ctx.Err(); err != nil {
 			return err
 		}
-		resp, err := rp.input(in.GetSample())
-		if err != nil {
-			return err
-		}
-		resp.ClientSequence = out.GetResponse().GetClientSequence()
-		if proto.Equal(resp, out.GetResponse()) {
+		if proto.Equal(r.Response, r.Recorded.GetResponse()) {
 			same++
 		} else {
 			differ++
 		}
-		return nil
+		return pw.pose(convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
 	}})
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(stderr, "replayed %d inputs of %s", scan.Pairs, rp.name)
+	fmt.Fprintf(stderr, "replayed %d inputs of %s", scan.Pairs, name)
 	if override == nil {
 		fmt.Fprintf(stderr, ": %d verdicts as recorded, %d different", same, differ)
 	} else {
@@ -141,7 +113,7 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, p
 		return err
 	}
 	defer f.Close()
-	rp := &replayer{name: "robots/replay", fr: fr, pw: pw}
+	name := server.RobotName("replay")
 	sr := convert.NewSampleReader(f)
 	n := 0
 	for {
@@ -155,7 +127,10 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, p
 		if err != nil {
 			return fmt.Errorf("%s: %w", path, err)
 		}
-		if _, err := rp.input(s); err != nil {
+		// As the service would take it (convert.Take: decoding, then the
+		// robot, which checks each input first).
+		resp, _ := convert.Take(fr, s, 0)
+		if err := pw.pose(convert.PoseToProto(name, fr.Pose(), fr.Sequence()), resp); err != nil {
 			return err
 		}
 		n++

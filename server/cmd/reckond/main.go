@@ -19,6 +19,7 @@ import (
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
 	"reckon.example/server/convert"
+	"reckon.example/server/daemon"
 	"reckon.example/server/journal"
 )
 
@@ -69,7 +70,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	if err := lv.UnmarshalText([]byte(*level)); err != nil {
 		return fmt.Errorf("log-level: %w", err)
 	}
-	dc := server.DaemonConfig{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, MaxMessageBytes: *maxMsg,
+	dc := daemon.Config{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, MaxMessageBytes: *maxMsg,
 		Options: server.Options{JournalDir: *journal, SyncInterval: *syncEvery, SegmentBytes: *segment, SnapshotEvery: *snapshotEvery,
 			Logger: slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))},
 		Robots: map[string]*pb.RobotConfig{}}
@@ -100,5 +101,5 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		}
 		dc.Robots[id] = c
 	}
-	return server.Serve(ctx, dc)
+	return daemon.Serve(ctx, dc)
 }

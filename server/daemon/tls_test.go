@@ -1,4 +1,4 @@
-package server
+package daemon
 
 import (
 	"context"
@@ -21,6 +21,7 @@ import (
 
 	"reckon.example/clients/client"
 	"reckon.example/fusion/fusiontest"
+	"reckon.example/server"
 )
 
 // pki is a CA with certificates it signed, written as PEM files.
@@ -89,7 +90,7 @@ func tryCall(t *testing.T, addr string, opt client.Options) error {
 func TestTLSAndToken(t *testing.T) {
 	p := newPKI(t, "reckon test CA")
 	cert, key := p.issue(t, "reckond", true)
-	srv := start(t, DaemonConfig{TLSCert: cert, TLSKey: key, Token: "greenhouse-7", Options: Options{JournalDir: t.TempDir(), SyncEach: true}})
+	srv := start(t, Config{TLSCert: cert, TLSKey: key, Token: "greenhouse-7", Options: server.Options{JournalDir: t.TempDir(), SyncEach: true}})
 	defer srv.stop()
 	tc := &tls.Config{RootCAs: p.caPool, MinVersion: tls.VersionTLS12}
 	if err := tryCall(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"}); err != nil {
@@ -110,7 +111,7 @@ func TestTLSAndToken(t *testing.T) {
 	}
 	// A stream needs the token too, and works with it (fsync on each).
 	c := dial(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"})
-	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 2, DurationS: 0.2})
+	samp, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 2, DurationS: 0.2})
 	ctx := context.Background()
 	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
 		t.Fatal(err)
@@ -128,7 +129,7 @@ func TestMutualTLS(t *testing.T) {
 	p := newPKI(t, "reckon test CA")
 	cert, key := p.issue(t, "reckond", true)
 	ccert, ckey := p.issue(t, "vision-process", false)
-	srv := start(t, DaemonConfig{TLSCert: cert, TLSKey: key, TLSClientCA: filepath.Join(p.dir, "ca.pem")})
+	srv := start(t, Config{TLSCert: cert, TLSKey: key, TLSClientCA: filepath.Join(p.dir, "ca.pem")})
 	defer srv.stop()
 	pair, err := tls.LoadX509KeyPair(ccert, ckey)
 	if err != nil {

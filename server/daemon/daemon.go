@@ -1,0 +1,268 @@
+// Package daemon runs the service as a process does: the gRPC listener
+// with TLS and bearer tokens, health and reflection, the metrics HTTP
+// server, the robots restored from the journal or created at start, and a
+// graceful stop. The service itself is package server.
+package daemon
+
+import (
+	"context"
+	"crypto/subtle"
+	"crypto/tls"
+	"crypto/x509"
+	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"os"
+	"strings"
+	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/credentials"
+	"google.golang.org/grpc/health"
+	healthpb "google.golang.org/grpc/health/grpc_health_v1"
+	"google.golang.org/grpc/keepalive"
+	"google.golang.org/grpc/metadata"
+	"google.golang.org/grpc/reflection"
+	"google.golang.org/grpc/status"
+
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
+)
+
+// Config configures Serve. Zero fields take the defaults given.
+type Config struct {
+	// Listen is the gRPC address (default 127.0.0.1:7460: loopback only).
+	Listen string
+	server.Options
+	// TLSCert and TLSKey are PEM files; with them the service speaks TLS.
+	TLSCert, TLSKey string
+	// TLSClientCA, a PEM file, makes it require client certificates
+	// signed by that CA (mutual TLS).
+	TLSClientCA string
+	// Token, if set, is required as "authorization: Bearer <token>" on every
+	// call except health checks.
+	Token string
+	// MetricsListen serves Prometheus metrics at /metrics ("" = off).
+	MetricsListen string
+	// MaxMessageBytes bounds one received message (default
+	// server.DefaultMaxMessageBytes; see server.ServiceOptions for its limit).
+	MaxMessageBytes int
+	// ShutdownGrace bounds the graceful stop before a hard stop (5 s).
+	ShutdownGrace time.Duration
+	// Ready, if set, is called with the bound addresses once serving.
+	Ready func(grpcAddr, metricsAddr string)
+	// Robots are created at start if the journal did not restore them.
+	Robots map[string]*pb.RobotConfig
+}
+
+// LoadTLS loads the server's TLS configuration: its certificate and key,
+// and with clientCA the CA whose client certificates it requires.
+func LoadTLS(cert, key, clientCA string) (*tls.Config, error) {
+	pair, err := tls.LoadX509KeyPair(cert, key)
+	if err != nil {
+		return nil, fmt.Errorf("tls-cert/tls-key: %w", err)
+	}
+	cfg := &tls.Config{Certificates: []tls.Certificate{pair}, MinVersion: tls.VersionTLS12}
+	if clientCA != "" {
+		pem, err := os.ReadFile(clientCA)
+		if err != nil {
+			return nil, fmt.Errorf("tls-client-ca: %w", err)
+		}
+		pool := x509.NewCertPool()
+		if !pool.AppendCertsFromPEM(pem) {
+			return nil, fmt.Errorf("tls-client-ca: %s holds no PEM certificate", clientCA)
+		}
+		cfg.ClientCAs, cfg.ClientAuth = pool, tls.RequireAndVerifyClientCert
+	}
+	return cfg, nil
+}
+
+func checkToken(ctx context.Context, method, token string) error {
+	if token == "" || strings.HasPrefix(method, "/grpc.health.v1.Health/") {
+		return nil
+	}
+	md, _ := metadata.FromIncomingContext(ctx)
+	for _, v := range md.Get("authorization") {
+		if got, ok := strings.CutPrefix(v, "Bearer "); ok && subtle.ConstantTimeCompare([]byte(got), []byte(token)) == 1 {
+			return nil
+		}
+	}
+	return status.Error(codes.Unauthenticated, "authorization: a valid bearer token is required")
+}
+
+// Serve runs the service until ctx is done, then stops gracefully (hard after
+// ShutdownGrace) and flushes the journals.
+func Serve(ctx context.Context, dc Config) error {
+	dc.defaults()
+	opts, err := grpcOptions(&dc)
+	if err != nil {
+		return err
+	}
+	if dc.MetricsListen != "" && dc.Metrics == nil {
+		dc.Metrics = server.NewMetrics()
+	}
+	srv, err := startService(ctx, &dc)
+	if err != nil {
+		return err
+	}
+	lis, err := net.Listen("tcp", dc.Listen)
+	if err != nil {
+		srv.Close()
+		return err
+	}
+	gs, hs := newGRPCServer(srv, opts)
+	hsrv, metricsAddr, err := startMetrics(&dc)
+	if err != nil {
+		lis.Close()
+		srv.Close()
+		return err
+	}
+	serveErr := make(chan error, 1)
+	go func() { serveErr <- gs.Serve(lis) }()
+	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr)
+	if dc.Ready != nil {
+		dc.Ready(lis.Addr().String(), metricsAddr)
+	}
+	err = wait(ctx, &dc, serveErr, gs, hs, srv)
+	if hsrv != nil {
+		hsrv.Close()
+	}
+	if cerr := srv.Close(); err == nil {
+		err = cerr
+	}
+	return err
+}
+
+// defaults fills the zero fields that have defaults.
+func (dc *Config) defaults() {
+	if dc.Listen == "" {
+		dc.Listen = "127.0.0.1:7460"
+	}
+	if dc.ShutdownGrace <= 0 {
+		dc.ShutdownGrace = 5 * time.Second
+	}
+	if dc.Logger == nil {
+		dc.Logger = slog.Default()
+	}
+}
+
+// grpcOptions returns the options of the gRPC server: the service's own,
+// keepalive, the token check and TLS.
+func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
+	opts, err := server.ServiceOptions(dc.MaxMessageBytes)
+	if err != nil {
+		return nil, err
+	}
+	opts = append(opts,
+		grpc.MaxConcurrentStreams(1024),
+		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
+		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
+		grpc.UnaryInterceptor(func(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (any, error) {
+			if err := checkToken(ctx, info.FullMethod, dc.Token); err != nil {
+				return nil, err
+			}
+			return h(ctx, req)
+		}),
+		grpc.StreamInterceptor(func(srv any, ss grpc.ServerStream, info *grpc.StreamServerInfo, h grpc.StreamHandler) error {
+			if err := checkToken(ss.Context(), info.FullMethod, dc.Token); err != nil {
+				return err
+			}
+			return h(srv, ss)
+		}),
+	)
+	if dc.TLSCert != "" || dc.TLSKey != "" {
+		tc, err := LoadTLS(dc.TLSCert, dc.TLSKey, dc.TLSClientCA)
+		if err != nil {
+			return nil, err
+		}
+		opts = append(opts, grpc.Creds(credentials.NewTLS(tc)))
+	} else if dc.TLSClientCA != "" {
+		return nil, errors.New("tls-client-ca needs tls-cert and tls-key")
+	}
+	return opts, nil
+}
+
+// startService makes the server, restores the robots of the journal and
+// creates those of dc.Robots that it did not restore.
+func startService(ctx context.Context, dc *Config) (*server.Server, error) {
+	srv, err := server.New(dc.Options)
+	if err != nil {
+		return nil, err
+	}
+	reports, err := srv.Restore()
+	for _, r := range reports {
+		dc.Logger.Info("restored", "robot", r.Robot, "inputs", r.Inputs, "torn", r.Torn)
+	}
+	if err != nil {
+		srv.Close()
+		return nil, err
+	}
+	for id, cfg := range dc.Robots {
+		if _, err := srv.GetRobot(ctx, &pb.GetRobotRequest{Name: server.RobotName(id)}); err == nil {
+			continue
+		}
+		if _, err := srv.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {
+			srv.Close()
+			return nil, fmt.Errorf("robot %s: %w", id, err)
+		}
+	}
+	return srv, nil
+}
+
+// newGRPCServer registers the service, health and reflection.
+func newGRPCServer(srv *server.Server, opts []grpc.ServerOption) (*grpc.Server, *health.Server) {
+	gs := grpc.NewServer(opts...)
+	pb.RegisterFusionServiceServer(gs, srv)
+	hs := health.NewServer()
+	hs.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
+	hs.SetServingStatus(pb.FusionService_ServiceDesc.ServiceName, healthpb.HealthCheckResponse_SERVING)
+	healthpb.RegisterHealthServer(gs, hs)
+	reflection.Register(gs)
+	return gs, hs
+}
+
+// startMetrics serves the metrics over HTTP if dc.MetricsListen is set; it
+// returns the HTTP server (nil if off) and its address.
+func startMetrics(dc *Config) (*http.Server, string, error) {
+	if dc.MetricsListen == "" {
+		return nil, "", nil
+	}
+	ml, err := net.Listen("tcp", dc.MetricsListen)
+	if err != nil {
+		return nil, "", fmt.Errorf("metrics-listen: %w", err)
+	}
+	mux := http.NewServeMux()
+	mux.Handle("/metrics", dc.Metrics.Handler())
+	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	go func() {
+		if err := hsrv.Serve(ml); err != nil && !errors.Is(err, http.ErrServerClosed) {
+			dc.Logger.Error("metrics server", "err", err)
+		}
+	}()
+	return hsrv, ml.Addr().String(), nil
+}
+
+// wait returns when the gRPC server fails (its error) or ctx is done (nil,
+// after a graceful stop, hard after dc.ShutdownGrace).
+func wait(ctx context.Context, dc *Config, serveErr <-chan error, gs *grpc.Server, hs *health.Server, srv *server.Server) error {
+	select {
+	case err := <-serveErr:
+		return err
+	case <-ctx.Done():
+	}
+	dc.Logger.Info("shutting down")
+	hs.Shutdown()
+	srv.EndWatches()
+	stopped := make(chan struct{})
+	go func() { gs.GracefulStop(); close(stopped) }()
+	select {
+	case <-stopped:
+	case <-time.After(dc.ShutdownGrace):
+		dc.Logger.Warn("graceful stop timed out; stopping")
+		gs.Stop()
+	}
+	return nil
+}

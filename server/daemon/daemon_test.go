@@ -1,0 +1,92 @@
+package daemon
+
+import (
+	"context"
+	"log/slog"
+	"os"
+	"strings"
+	"testing"
+	"time"
+
+	"reckon.example/clients/client"
+	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
+)
+
+// running is a daemon started by a test on a loopback port.
+type running struct {
+	addr, metrics string
+	stop          func()
+}
+
+func start(t testing.TB, dc Config) *running {
+	t.Helper()
+	ctx, cancel := context.WithCancel(context.Background())
+	ready := make(chan [2]string, 1)
+	done := make(chan error, 1)
+	dc.Listen = "127.0.0.1:0"
+	dc.Ready = func(a, m string) { ready <- [2]string{a, m} }
+	if dc.Logger == nil {
+		dc.Logger = slog.New(slog.NewTextHandler(os.Stderr, &slog.HandlerOptions{Level: slog.LevelWarn}))
+	}
+	go func() { done <- Serve(ctx, dc) }()
+	select {
+	case a := <-ready:
+		r := &running{addr: a[0], metrics: a[1]}
+		r.stop = func() {
+			cancel()
+			if err := <-done; err != nil {
+				t.Errorf("Serve: %v", err)
+			}
+		}
+		return r
+	case err := <-done:
+		cancel()
+		t.Fatalf("Serve: %v", err)
+	case <-time.After(10 * time.Second):
+		cancel()
+		t.Fatal("service did not start")
+	}
+	cancel()
+	return nil
+}
+
+func dial(t testing.TB, addr string, opt client.Options) *client.Client {
+	t.Helper()
+	c, err := client.Dial(addr, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { c.Close() })
+	return c
+}
+
+// samples returns a scenario's inputs as wire samples in arrival order, and
+// the robot configuration.
+func samples(sc fusiontest.Scenario) ([]*pb.Sample, *pb.RobotConfig) {
+	s := fusiontest.New(sc)
+	var out []*pb.Sample
+	for in, ok := s.Next(); ok; in, ok = s.Next() {
+		switch {
+		case in.Odometry != nil:
+			out = append(out, convert.OdometryToProto(in.Odometry))
+		case in.Heading != nil:
+			out = append(out, convert.HeadingToProto(in.Heading))
+		default:
+			out = append(out, convert.FixToProto(in.Fix))
+		}
+	}
+	return out, convert.ConfigToProto(s.Config())
+}
+
+// TestServeRefusesMessagesLargerThanRecords: a message limit under which a
+// sample could outgrow a journal record (which would stop its robot) is a
+// configuration error, named before anything listens.
+func TestServeRefusesMessagesLargerThanRecords(t *testing.T) {
+	err := Serve(context.Background(), Config{Listen: "127.0.0.1:0", MaxMessageBytes: journal.MaxRecordBytes})
+	if err == nil || !strings.Contains(err.Error(), "max message bytes") {
+		t.Fatalf("Serve with max message bytes %d: %v", journal.MaxRecordBytes, err)
+	}
+}

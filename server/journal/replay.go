@@ -1,0 +1,204 @@
+package journal
+
+import (
+	"errors"
+	"fmt"
+
+	"google.golang.org/protobuf/proto"
+
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
+)
+
+// ReplayOptions say how Replay runs a journal. The zero value replays every
+// input with the journal's own configuration and checks nothing.
+type ReplayOptions struct {
+	// Config, if set, replaces the configuration of the opening record: the
+	// run is replayed as if the robot had been configured so.
+	Config *pb.RobotConfig
+	// FromSnapshot starts from the journal's last snapshot, as a restart
+	// does, instead of from the first input.
+	FromSnapshot bool
+	// Check stops the replay with an error at the first input whose
+	// recomputed response or pose differs, bit for bit, from the one
+	// recorded, or that the robot now refuses.
+	Check bool
+	// SkipOutputs leaves the recorded outputs undecoded (Replayed.Recorded
+	// is nil and inputs are taken with client sequence 0). Not with Check.
+	SkipOutputs bool
+	// Opened, if set, is called with the robot made from the opening record,
+	// before any input (with FromSnapshot, a snapshot may then replace it:
+	// Replayed.Robot is always the robot replaying).
+	Opened func(*fusion.Robot) error
+	// Input, if set, is called after every replayed input.
+	Input func(*Replayed) error
+}
+
+// Replayed is one journal input run through the robot again.
+type Replayed struct {
+	// Robot is the replaying robot, just after it took the input.
+	Robot *fusion.Robot
+	// Input is the journaled input.
+	Input *pb.JournalInput
+	// Response is the robot's response now, made as the service makes it
+	// (convert.Take) with the recorded client sequence.
+	Response *pb.IngestResponse
+	// Taken is false when the robot now refuses the input before taking it.
+	Taken bool
+	// Recorded is the output journaled after the input (nil with
+	// ReplayOptions.SkipOutputs).
+	Recorded *pb.JournalOutput
+}
+
+// errReplayStopped ends a scan whose replay failed.
+var errReplayStopped = errors.New("replay stopped")
+
+// replayItem is what the scan hands to the replaying goroutine: exactly one
+// field is set.
+type replayItem struct {
+	opening  *pb.JournalOpening
+	snapshot *pb.JournalSnapshot
+	in       *pb.JournalInput
+	out      *pb.JournalOutput
+}
+
+// Replay runs a robot's journal through a new fusion robot, input by input,
+// and returns the robot after the last input with what the scan found. The
+// journal is read and decoded in a goroutine of its own while the calling
+// goroutine replays. A torn tail ends the replay without an error (see
+// Scan.Torn); an error from a callback, a failed check or an unreadable
+// journal stops it.
+func Replay(dir, robot string, opt ReplayOptions) (*fusion.Robot, Scan, error) {
+	if opt.Check && opt.SkipOutputs {
+		panic("journal: Replay with both Check and SkipOutputs")
+	}
+	items := make(chan replayItem, 1024)
+	stop := make(chan struct{})
+	var scan Scan
+	var scanErr error
+	go func() {
+		defer close(items)
+		scan, scanErr = Read(dir, robot, replayVisitor(opt, items, stop))
+	}()
+	rp := &replayer{opt: opt}
+	var err error
+	for it := range items {
+		if err == nil {
+			if err = rp.apply(it); err != nil {
+				close(stop)
+			}
+		}
+	}
+	if err != nil {
+		return nil, scan, err
+	}
+	if scanErr != nil {
+		return nil, scan, scanErr
+	}
+	return rp.fr, scan, nil
+}
+
+// replayVisitor sends what Read finds to items until stop is closed.
+func replayVisitor(opt ReplayOptions, items chan<- replayItem, stop <-chan struct{}) Visitor {
+	send := func(it replayItem) error {
+		select {
+		case items <- it:
+			return nil
+		case <-stop:
+			return errReplayStopped
+		}
+	}
+	v := Visitor{Opening: func(op *pb.JournalOpening) error { return send(replayItem{opening: op}) }}
+	if opt.FromSnapshot {
+		v.Snapshot = func(s *pb.JournalSnapshot) error { return send(replayItem{snapshot: s}) }
+	}
+	if opt.SkipOutputs {
+		v.Input = func(in *pb.JournalInput) error { return send(replayItem{in: in}) }
+	} else {
+		v.Pair = func(in *pb.JournalInput, out *pb.JournalOutput) error { return send(replayItem{in: in, out: out}) }
+	}
+	return v
+}
+
+// replayer is the replaying side of Replay.
+type replayer struct {
+	opt ReplayOptions
+	cfg fusion.Config
+	fr  *fusion.Robot
+}
+
+func (rp *replayer) apply(it replayItem) error {
+	switch {
+	case it.opening != nil:
+		return rp.open(it.opening)
+	case it.snapshot != nil:
+		return rp.restore(it.snapshot)
+	}
+	return rp.input(it.in, it.out)
+}
+
+// open makes the robot from the opening record's configuration (or the
+// replacement).
+func (rp *replayer) open(op *pb.JournalOpening) error {
+	c := op.GetConfig()
+	if rp.opt.Config != nil {
+		c = rp.opt.Config
+	}
+	var err error
+	if rp.cfg, err = convert.ConfigFromProto(c); err != nil {
+		return fmt.Errorf("opening record: %w", err)
+	}
+	if rp.fr, err = fusion.New(rp.cfg); err != nil {
+		return err
+	}
+	if rp.opt.Opened != nil {
+		return rp.opt.Opened(rp.fr)
+	}
+	return nil
+}
+
+// restore replaces the robot by the one the snapshot holds.
+func (rp *replayer) restore(s *pb.JournalSnapshot) error {
+	r, err := fusion.RestoreSnapshot(rp.cfg, s.GetState())
+	if err != nil {
+		return err
+	}
+	if r.Sequence() != s.GetSequence() {
+		return fmt.Errorf("snapshot at sequence %d holds sequence %d", s.GetSequence(), r.Sequence())
+	}
+	rp.fr = r
+	return nil
+}
+
+// input takes one journaled input and, with Check, compares the outcome.
+func (rp *replayer) input(in *pb.JournalInput, out *pb.JournalOutput) error {
+	resp, taken := convert.Take(rp.fr, in.GetSample(), out.GetResponse().GetClientSequence())
+	if rp.opt.Check {
+		if err := check(rp.fr, in, resp, taken, out); err != nil {
+			return err
+		}
+	}
+	if rp.opt.Input == nil {
+		return nil
+	}
+	return rp.opt.Input(&Replayed{Robot: rp.fr, Input: in, Response: resp, Taken: taken, Recorded: out})
+}
+
+// check compares a replayed input's outcome with the recorded output.
+func check(fr *fusion.Robot, in *pb.JournalInput, got *pb.IngestResponse, taken bool, out *pb.JournalOutput) error {
+	if !taken {
+		return fmt.Errorf("journal input %d is refused on replay: %s", in.GetSequence(), got.GetReason())
+	}
+	if !proto.Equal(got, out.GetResponse()) {
+		return fmt.Errorf("journal replay diverged at input %d: verdict %v, recorded %v", in.GetSequence(), got.GetVerdict(), out.GetResponse().GetVerdict())
+	}
+	if out.GetPose() == nil {
+		return nil
+	}
+	pose := convert.PoseToProto(out.GetPose().GetRobot(), fr.Pose(), got.GetSequence())
+	if !proto.Equal(pose, out.GetPose()) {
+		return fmt.Errorf("journal replay diverged at input %d: pose %v, recorded %v", in.GetSequence(), pose.GetPose(), out.GetPose().GetPose())
+	}
+	return nil
+}

@@ -22,23 +22,23 @@ func TestBadInputOverTheWire(t *testing.T) {
 	dir := t.TempDir()
 	srv := start(t, testConfig{Options: Options{JournalDir: dir}, MaxMessageBytes: 16 << 10})
 	defer srv.stop()
-	c := dial(t, srv.addr, clientOpts())
+	c := dial(t, srv.addr)
 	ctx := context.Background()
 	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 2})
-	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
+	if _, err := c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 		t.Fatal(err)
 	}
-	sess, _ := c.OpenIngest(ctx, "robots/cart")
+	sess, _ := openFeed(ctx, c, "robots/cart")
 	var newest int64
 	for _, s := range samp {
-		if _, err := sess.Apply(s); err != nil {
+		if _, err := sess.apply(s); err != nil {
 			t.Fatal(err)
 		}
 		if o := s.GetOdometry(); o != nil {
 			newest = o.GetStampNs()
 		}
 	}
-	sess.Close()
+	sess.close()
 	odo := func(start, stamp int64, travel ...float64) *pb.Sample {
 		return &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StartNs: start, StampNs: stamp,
 			Motion: &pb.OdometrySample_Travel{Travel: &pb.WheelTravel{TravelM: travel}}}}}
@@ -78,25 +78,25 @@ func TestBadInputOverTheWire(t *testing.T) {
 		return st.Size()
 	}
 	robotNow := func() (*pb.Robot, *pb.FusedPose) {
-		r, err := c.GetRobot(ctx, "robots/cart")
+		r, err := c.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
 		if err != nil {
 			t.Fatal(err)
 		}
-		p, err := c.PoseAt(ctx, "robots/cart", newest)
+		p, err := c.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: newest})
 		if err != nil {
 			t.Fatal(err)
 		}
-		return r, p
+		return r.GetRobot(), p.GetPose()
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			size := journalSize()
 			r0, p0 := robotNow()
-			s2, err := c.OpenIngest(ctx, tc.robot)
+			s2, err := openFeed(ctx, c, tc.robot)
 			if err != nil {
 				t.Fatal(err)
 			}
-			resp, err := s2.Apply(tc.sample)
+			resp, err := s2.apply(tc.sample)
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -104,10 +104,10 @@ func TestBadInputOverTheWire(t *testing.T) {
 				t.Errorf("code %v verdict %v reason %q; want %v naming %q", codes.Code(resp.GetStatusCode()), resp.GetVerdict(), resp.GetReason(), tc.code, tc.field)
 			}
 			// The stream stays usable after a bad sample.
-			if _, err := s2.Apply(&pb.Sample{}); err != nil {
+			if _, err := s2.apply(&pb.Sample{}); err != nil {
 				t.Errorf("stream ended after a bad sample: %v", err)
 			}
-			s2.Close()
+			s2.close()
 			r1, p1 := robotNow()
 			if !proto.Equal(r0, r1) || !proto.Equal(p0, p1) {
 				t.Errorf("robot changed: %v -> %v", r0.GetInputCount(), r1.GetInputCount())
@@ -121,8 +121,8 @@ func TestBadInputOverTheWire(t *testing.T) {
 	// changes nothing.
 	size := journalSize()
 	r0, _ := robotNow()
-	big, _ := c.OpenIngest(ctx, "robots/cart")
-	_, err := big.Apply(odo(newest, newest+5e6, make([]float64, 5000)...))
+	big, _ := openFeed(ctx, c, "robots/cart")
+	_, err := big.apply(odo(newest, newest+5e6, make([]float64, 5000)...))
 	if status.Code(err) != codes.ResourceExhausted {
 		t.Errorf("oversized message: %v", err)
 	}
@@ -130,24 +130,24 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Errorf("oversized message changed the robot or journal")
 	}
 	// Unary calls name the field too.
-	_, err = c.Reseed(ctx, "robots/cart", newest, &pb.FloorPose{XM: math.NaN()}, good.GetValues())
+	_, err = c.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: "robots/cart", Reseed: &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{XM: math.NaN()}, Covariance: good}})
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "pose") {
 		t.Errorf("ReseedRobot NaN: %v", err)
 	}
-	_, err = c.CreateRobot(ctx, "Bad_Name", cfg)
+	_, err = c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "Bad_Name", Config: cfg})
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "robot_id") {
 		t.Errorf("bad robot id: %v", err)
 	}
 	bad := proto.Clone(cfg).(*pb.RobotConfig)
 	bad.Wheels[1].CountsPerM = -3
-	_, err = c.CreateRobot(ctx, "cart2", bad)
+	_, err = c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart2", Config: bad})
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "wheels[1].counts_per_m") {
 		t.Errorf("bad config: %v", err)
 	}
-	if _, err := c.CreateRobot(ctx, "cart", cfg); status.Code(err) != codes.AlreadyExists {
+	if _, err := c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); status.Code(err) != codes.AlreadyExists {
 		t.Errorf("duplicate robot: %v", err)
 	}
-	if _, err := c.Statistics(ctx, "robots/none"); status.Code(err) != codes.NotFound {
+	if _, err := c.GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: "robots/none"}); status.Code(err) != codes.NotFound {
 		t.Errorf("statistics of an unknown robot: %v", err)
 	}
 }

@@ -11,7 +11,6 @@ import (
 	"google.golang.org/grpc/mem"
 	"google.golang.org/protobuf/proto"
 
-	"reckon.example/clients/client"
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 )
@@ -40,12 +39,12 @@ func (bare) Ingest(st pb.FusionService_IngestServer) error {
 // pump sends the samples on one stream, pipelined, and waits for every
 // verdict; it returns the time that took.
 func pump(b *testing.B, addr, robot string, samp []*pb.Sample) time.Duration {
-	c, err := client.Dial(addr, client.Options{})
+	conn, err := connect(addr)
 	if err != nil {
 		b.Fatal(err)
 	}
-	defer c.Close()
-	sess, err := c.OpenIngest(context.Background(), robot)
+	defer conn.Close()
+	sess, err := openFeed(context.Background(), pb.NewFusionServiceClient(conn), robot)
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -62,7 +61,7 @@ func pump(b *testing.B, addr, robot string, samp []*pb.Sample) time.Duration {
 		}
 	}()
 	for _, s := range samp {
-		if _, err := sess.Send(s); err != nil {
+		if err := sess.send(s); err != nil {
 			b.Fatal(err)
 		}
 	}
@@ -91,11 +90,11 @@ func BenchmarkIngestThroughput(b *testing.B) {
 	for b.Loop() {
 		bareTime += pump(b, lis.Addr().String(), "robots/cart", samp)
 		srv := start(b, testConfig{Options: Options{JournalDir: b.TempDir()}})
-		c, _ := client.Dial(srv.addr, client.Options{})
-		if _, err := c.CreateRobot(context.Background(), "cart", cfg); err != nil {
+		conn, _ := connect(srv.addr)
+		if _, err := pb.NewFusionServiceClient(conn).CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 			b.Fatal(err)
 		}
-		c.Close()
+		conn.Close()
 		fullTime += pump(b, srv.addr, "robots/cart", samp)
 		srv.stop()
 	}

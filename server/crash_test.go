@@ -64,13 +64,13 @@ func TestCrashSafety(t *testing.T) {
 	dir := t.TempDir()
 	cmd, addr := startChild(t, dir)
 	defer cmd.Process.Kill()
-	c := dial(t, addr, clientOpts())
+	c := dial(t, addr)
 	ctx := context.Background()
 	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 60, OutlierFraction: 0.05})
-	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
+	if _, err := c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 		t.Fatal(err)
 	}
-	sess, err := c.OpenIngest(ctx, "robots/cart")
+	sess, err := openFeed(ctx, c, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -79,7 +79,7 @@ func TestCrashSafety(t *testing.T) {
 	killed := make(chan struct{})
 	go func() {
 		for _, s := range samp {
-			if _, err := sess.Send(s); err != nil {
+			if err := sess.send(s); err != nil {
 				return
 			}
 		}
@@ -128,30 +128,30 @@ func TestCrashSafety(t *testing.T) {
 	}
 	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
 	defer srv.stop()
-	c2 := dial(t, srv.addr, clientOpts())
-	got, err := c2.GetRobot(ctx, "robots/cart")
+	c2 := dial(t, srv.addr)
+	got, err := c2.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
 	if err != nil {
 		t.Fatal(err)
 	}
-	n := got.GetInputCount()
+	n := got.GetRobot().GetInputCount()
 	if n < maxAck {
 		t.Fatalf("restored robot has %d inputs; %d were acknowledged", n, maxAck)
 	}
-	p, err := c2.PoseAt(ctx, "robots/cart", want.NewestNs())
+	resp, err := c2.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: want.NewestNs()})
 	if err != nil {
 		t.Fatal(err)
 	}
-	if wp := want.Pose().Pose; p.GetPose().GetXM() != wp.X || p.GetPose().GetYM() != wp.Y {
-		t.Errorf("restored pose %v, journal replay %+v", p.GetPose(), wp)
+	if p, wp := resp.GetPose().GetPose(), want.Pose().Pose; p.GetXM() != wp.X || p.GetYM() != wp.Y {
+		t.Errorf("restored pose %v, journal replay %+v", p, wp)
 	}
 	// It resumes: the rest of the run goes in, every sample taken.
-	sess2, err := c2.OpenIngest(ctx, "robots/cart")
+	sess2, err := openFeed(ctx, c2, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
 	}
 	applied := 0
 	for _, s := range samp[n:] {
-		resp, err := sess2.Apply(s)
+		resp, err := sess2.apply(s)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -162,7 +162,7 @@ func TestCrashSafety(t *testing.T) {
 	if applied != len(samp[n:]) {
 		t.Errorf("after restart %d of %d samples taken", applied, len(samp[n:]))
 	}
-	if err := sess2.Close(); err != nil && !errors.Is(err, io.EOF) {
+	if err := sess2.close(); err != nil && !errors.Is(err, io.EOF) {
 		t.Fatal(err)
 	}
 }

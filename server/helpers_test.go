@@ -1,15 +1,19 @@
 package server
 
 import (
+	"context"
 	"errors"
+	"fmt"
+	"io"
 	"log/slog"
 	"net"
 	"os"
+	"sync/atomic"
 	"testing"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials/insecure"
 
-	"reckon.example/clients/client"
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
@@ -76,14 +80,89 @@ func start(t testing.TB, tc testConfig) *running {
 	}}
 }
 
-func dial(t testing.TB, addr string, opt client.Options) *client.Client {
+// connect opens a plain-text connection to addr, as a robot on the same
+// host would; the tests use the generated stubs, not the client library,
+// which is a layer above (DEVELOPERS.md, "Design: Layers").
+func connect(addr string) (*grpc.ClientConn, error) {
+	return grpc.NewClient(addr, grpc.WithTransportCredentials(insecure.NewCredentials()))
+}
+
+// dial connects to addr for the rest of the test.
+func dial(t testing.TB, addr string) pb.FusionServiceClient {
 	t.Helper()
-	c, err := client.Dial(addr, opt)
+	conn, err := connect(addr)
 	if err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(func() { c.Close() })
-	return c
+	t.Cleanup(func() { conn.Close() })
+	return pb.NewFusionServiceClient(conn)
+}
+
+// feed is one ingest stream for one robot. It numbers the samples it sends
+// from 1 (their client sequence); send and Recv may be called from two
+// goroutines, one each.
+type feed struct {
+	pb.FusionService_IngestClient
+	robot string
+	sent  atomic.Uint64 // client sequence of the last sample sent
+}
+
+// openFeed opens an ingest stream for robot ("robots/{id}").
+func openFeed(ctx context.Context, api pb.FusionServiceClient, robot string) (*feed, error) {
+	st, err := api.Ingest(ctx)
+	if err != nil {
+		return nil, err
+	}
+	return &feed{FusionService_IngestClient: st, robot: robot}, nil
+}
+
+func (f *feed) send(sample *pb.Sample) error {
+	return f.Send(&pb.IngestRequest{Robot: f.robot, ClientSequence: f.sent.Add(1), Sample: sample})
+}
+
+// apply sends sample and returns its verdict, which must answer it.
+func (f *feed) apply(sample *pb.Sample) (*pb.IngestResponse, error) {
+	if err := f.send(sample); err != nil {
+		return nil, err
+	}
+	resp, err := f.Recv()
+	if err != nil {
+		return nil, err
+	}
+	if got, want := resp.GetClientSequence(), f.sent.Load(); got != want {
+		return nil, fmt.Errorf("verdict for client sequence %d, want %d", got, want)
+	}
+	return resp, nil
+}
+
+// close ends the stream once every sample sent has its verdict.
+func (f *feed) close() error {
+	if err := f.CloseSend(); err != nil {
+		return err
+	}
+	for {
+		if _, err := f.Recv(); errors.Is(err, io.EOF) {
+			return nil
+		} else if err != nil {
+			return err
+		}
+	}
+}
+
+// watch calls seen with every pose watched on robot until the stream ends,
+// ctx's end included.
+func watch(ctx context.Context, api pb.FusionServiceClient, robot string, seen func(*pb.FusedPose)) {
+	st, err := api.Watch(ctx, &pb.WatchRequest{Robot: robot})
+	if err != nil {
+		return
+	}
+	for {
+		resp, err := st.Recv()
+		if err != nil {
+			return
+		}
+		seen(resp.GetPose())
+	}
 }
 
 // toProto turns a simulator input into a wire sample.

@@ -3,7 +3,6 @@ package server
 import (
 	"context"
 	"fmt"
-	"iter"
 	"runtime"
 	"sort"
 	"sync"
@@ -11,8 +10,8 @@ import (
 	"testing"
 	"time"
 
-	"reckon.example/clients/client"
 	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // loadResult is what runLoad measured.
@@ -39,21 +38,23 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 	var wg, watchWG sync.WaitGroup
 	wctx, stopWatch := context.WithCancel(ctx)
 	defer stopWatch()
-	feeders := dial(t, srv.addr, client.Options{})
-	readers := dial(t, srv.addr, client.Options{})
+	feeders := dial(t, srv.addr)
+	readers := dial(t, srv.addr)
 	for r := 0; r < robots; r++ {
 		id := fmt.Sprintf("cart-%02d", r)
 		samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: uint64(r), DurationS: dur.Seconds(), OutlierFraction: 0.05})
-		if _, err := feeders.CreateRobot(ctx, id, cfg); err != nil {
+		if _, err := feeders.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {
 			t.Fatal(err)
 		}
 		name := "robots/" + id
 		for w := 0; w < watchers; w++ {
 			if w == 0 {
 				// A stuck watcher: it takes the first pose and never reads again.
-				next, stop := iter.Pull2(readers.Watch(wctx, name, 0))
-				defer stop()
-				if _, err, _ := next(); err != nil {
+				st, err := readers.Watch(wctx, &pb.WatchRequest{Robot: name})
+				if err != nil {
+					t.Fatal(err)
+				}
+				if _, err := st.Recv(); err != nil {
 					t.Fatal(err)
 				}
 				continue
@@ -61,24 +62,21 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 			watchWG.Add(1)
 			go func(r int) {
 				defer watchWG.Done()
-				for resp, err := range readers.Watch(wctx, name, 0) {
-					if err != nil {
-						return
-					}
+				watch(wctx, readers, name, func(p *pb.FusedPose) {
 					atomic.AddInt64(&res.watchedPoses, 1)
-					if v, ok := sentAt[r].Load(resp.GetPose().GetSequence()); ok {
+					if v, ok := sentAt[r].Load(p.GetSequence()); ok {
 						d := time.Since(v.(time.Time))
 						mu.Lock()
 						res.latencies = append(res.latencies, d)
 						mu.Unlock()
 					}
-				}
+				})
 			}(r)
 		}
 		wg.Add(1)
 		go func(r int) {
 			defer wg.Done()
-			sess, err := feeders.OpenIngest(ctx, name)
+			sess, err := openFeed(ctx, feeders, name)
 			if err != nil {
 				t.Error(err)
 				return
@@ -114,7 +112,7 @@ func runLoad(t testing.TB, robots, watchers int, dur time.Duration) loadResult {
 					time.Sleep(d)
 				}
 				sentAt[r].Store(uint64(i+1), time.Now())
-				if _, err := sess.Send(s); err != nil {
+				if err := sess.send(s); err != nil {
 					t.Error(err)
 					break
 				}

@@ -10,7 +10,6 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
-	"reckon.example/clients/client"
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
@@ -27,16 +26,16 @@ func TestEndToEnd(t *testing.T) {
 	dir := t.TempDir()
 	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
 	ctx := context.Background()
-	cart, camera, watcher := dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts()), dial(t, srv.addr, clientOpts())
+	cart, camera, watcher := dial(t, srv.addr), dial(t, srv.addr), dial(t, srv.addr)
 	samp, ins, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 5, DurationS: 20, OutlierFraction: 0.05})
-	if _, err := cart.CreateRobot(ctx, "cart", cfg); err != nil {
+	if _, err := cart.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 		t.Fatal(err)
 	}
-	odo, err := cart.OpenIngest(ctx, "robots/cart")
+	odo, err := openFeed(ctx, cart, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
 	}
-	cam, err := camera.OpenIngest(ctx, "robots/cart")
+	cam, err := openFeed(ctx, camera, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -47,15 +46,12 @@ func TestEndToEnd(t *testing.T) {
 	first := make(chan struct{})
 	go func() {
 		defer wg.Done()
-		for resp, err := range watcher.Watch(wctx, "robots/cart", 0) {
-			if err != nil {
-				return
-			}
+		watch(wctx, watcher, "robots/cart", func(p *pb.FusedPose) {
 			if len(watched) == 0 {
 				close(first)
 			}
-			watched = append(watched, resp.GetPose())
-		}
+			watched = append(watched, p)
+		})
 	}()
 	<-first
 	responses := make([]*pb.IngestResponse, len(samp))
@@ -64,7 +60,7 @@ func TestEndToEnd(t *testing.T) {
 		if ins[i].Fix != nil {
 			sess = cam
 		}
-		if responses[i], err = sess.Apply(s); err != nil {
+		if responses[i], err = sess.apply(s); err != nil {
 			t.Fatal(err)
 		}
 		if responses[i].GetStatusCode() != 0 && responses[i].GetVerdict() == pb.Verdict_VERDICT_INVALID {
@@ -101,8 +97,8 @@ func TestEndToEnd(t *testing.T) {
 	if last := watched[len(watched)-1]; last.GetSequence() != uint64(len(samp)) {
 		t.Errorf("last watched pose is at sequence %d of %d", last.GetSequence(), len(samp))
 	}
-	odo.Close()
-	cam.Close()
+	odo.close()
+	cam.close()
 	srv.stop()
 
 	// The journal replays to exactly the recorded outputs.
@@ -141,20 +137,20 @@ func TestEndToEnd(t *testing.T) {
 	// And a restarted service restores the robot where it was.
 	srv2 := start(t, testConfig{Options: Options{JournalDir: dir}})
 	defer srv2.stop()
-	c := dial(t, srv2.addr, clientOpts())
-	got, err := c.GetRobot(ctx, "robots/cart")
+	c := dial(t, srv2.addr)
+	got, err := c.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
 	if err != nil {
 		t.Fatal(err)
 	}
-	if got.GetInputCount() != uint64(len(samp)) {
-		t.Errorf("restored robot has %d inputs, want %d", got.GetInputCount(), len(samp))
+	if got.GetRobot().GetInputCount() != uint64(len(samp)) {
+		t.Errorf("restored robot has %d inputs, want %d", got.GetRobot().GetInputCount(), len(samp))
 	}
-	p, err := c.PoseAt(ctx, "robots/cart", fr.NewestNs())
+	p, err := c.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: fr.NewestNs()})
 	if err != nil {
 		t.Fatal(err)
 	}
-	if want := convert.PoseToProto("robots/cart", fr.Pose(), fr.Sequence()); !proto.Equal(p.GetPose(), want.GetPose()) {
-		t.Errorf("restored pose %v, want %v", p.GetPose(), want.GetPose())
+	if want := convert.PoseToProto("robots/cart", fr.Pose(), fr.Sequence()); !proto.Equal(p.GetPose().GetPose(), want.GetPose()) {
+		t.Errorf("restored pose %v, want %v", p.GetPose().GetPose(), want.GetPose())
 	}
 }
 
@@ -163,17 +159,17 @@ func TestEndToEnd(t *testing.T) {
 func TestRestoreTornTail(t *testing.T) {
 	dir := t.TempDir()
 	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
-	c := dial(t, srv.addr, clientOpts())
+	c := dial(t, srv.addr)
 	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 6, DurationS: 2})
 	ctx := context.Background()
-	c.CreateRobot(ctx, "cart", cfg)
-	sess, _ := c.OpenIngest(ctx, "robots/cart")
+	c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	sess, _ := openFeed(ctx, c, "robots/cart")
 	for _, s := range samp {
-		if _, err := sess.Apply(s); err != nil {
+		if _, err := sess.apply(s); err != nil {
 			t.Fatal(err)
 		}
 	}
-	sess.Close()
+	sess.close()
 	srv.stop()
 	path := journal.SegmentPath(dir, "cart", 0)
 	b, _ := os.ReadFile(path)
@@ -200,8 +196,6 @@ func TestRestoreTornTail(t *testing.T) {
 		os.WriteFile(path, b, 0o644)
 	}
 }
-
-func clientOpts() client.Options { return client.Options{} }
 
 // The journal directory layout is documented; a test pins it.
 func TestJournalFileName(t *testing.T) {

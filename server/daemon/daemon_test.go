@@ -2,13 +2,17 @@ package daemon
 
 import (
 	"context"
+	"crypto/tls"
 	"log/slog"
 	"os"
 	"strings"
 	"testing"
 	"time"
 
-	"reckon.example/clients/client"
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials"
+	"google.golang.org/grpc/credentials/insecure"
+
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
@@ -53,14 +57,36 @@ func start(t testing.TB, dc Config) *running {
 	return nil
 }
 
-func dial(t testing.TB, addr string, opt client.Options) *client.Client {
+// bearer is a token sent as "authorization: Bearer <token>" with every
+// call. It does not require transport security, so that a test can send it
+// in plain text and see the TLS listener refuse the connection.
+type bearer string
+
+func (b bearer) GetRequestMetadata(context.Context, ...string) (map[string]string, error) {
+	return map[string]string{"authorization": "Bearer " + string(b)}, nil
+}
+
+func (bearer) RequireTransportSecurity() bool { return false }
+
+// dial connects to addr for the rest of the test with the generated stubs
+// (the client library is a layer above; DEVELOPERS.md, "Design: Layers"):
+// with TLS if tc is set, else in plain text, and with token unless empty.
+func dial(t testing.TB, addr string, tc *tls.Config, token string) pb.FusionServiceClient {
 	t.Helper()
-	c, err := client.Dial(addr, opt)
+	creds := insecure.NewCredentials()
+	if tc != nil {
+		creds = credentials.NewTLS(tc)
+	}
+	opts := []grpc.DialOption{grpc.WithTransportCredentials(creds)}
+	if token != "" {
+		opts = append(opts, grpc.WithPerRPCCredentials(bearer(token)))
+	}
+	conn, err := grpc.NewClient(addr, opts...)
 	if err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(func() { c.Close() })
-	return c
+	t.Cleanup(func() { conn.Close() })
+	return pb.NewFusionServiceClient(conn)
 }
 
 // samples returns a scenario's inputs as wire samples in arrival order, and

@@ -19,8 +19,8 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
-	"reckon.example/clients/client"
 	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
 )
 
@@ -75,16 +75,13 @@ func (p *pki) issue(t *testing.T, name string, server bool) (cert, key string) {
 	return cert, key
 }
 
-func tryCall(t *testing.T, addr string, opt client.Options) error {
-	c := dial(t, addr, opt)
+// tryCall lists the robots (there are none yet) over a new connection.
+func tryCall(t *testing.T, addr string, tc *tls.Config, token string) error {
+	c := dial(t, addr, tc, token)
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
 	defer cancel()
-	for _, err := range c.ListRobots(ctx, 0) {
-		if err != nil {
-			return err
-		}
-	}
-	return nil
+	_, err := c.ListRobots(ctx, &pb.ListRobotsRequest{})
+	return err
 }
 
 func TestTLSAndToken(t *testing.T) {
@@ -93,36 +90,47 @@ func TestTLSAndToken(t *testing.T) {
 	srv := start(t, Config{TLSCert: cert, TLSKey: key, Token: "greenhouse-7", Options: server.Options{JournalDir: t.TempDir(), SyncEach: true}})
 	defer srv.stop()
 	tc := &tls.Config{RootCAs: p.caPool, MinVersion: tls.VersionTLS12}
-	if err := tryCall(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"}); err != nil {
+	if err := tryCall(t, srv.addr, tc, "greenhouse-7"); err != nil {
 		t.Fatalf("TLS with the token: %v", err)
 	}
-	if err := tryCall(t, srv.addr, client.Options{TLS: tc}); status.Code(err) != codes.Unauthenticated {
+	if err := tryCall(t, srv.addr, tc, ""); status.Code(err) != codes.Unauthenticated {
 		t.Errorf("no token: %v", err)
 	}
-	if err := tryCall(t, srv.addr, client.Options{TLS: tc, Token: "guess"}); status.Code(err) != codes.Unauthenticated {
+	if err := tryCall(t, srv.addr, tc, "guess"); status.Code(err) != codes.Unauthenticated {
 		t.Errorf("wrong token: %v", err)
 	}
-	if err := tryCall(t, srv.addr, client.Options{Token: "greenhouse-7"}); status.Code(err) != codes.Unavailable {
+	if err := tryCall(t, srv.addr, nil, "greenhouse-7"); status.Code(err) != codes.Unavailable {
 		t.Errorf("plain text to a TLS server: %v", err)
 	}
 	other := newPKI(t, "some other CA")
-	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: other.caPool}, Token: "greenhouse-7"}); status.Code(err) != codes.Unavailable {
+	if err := tryCall(t, srv.addr, &tls.Config{RootCAs: other.caPool}, "greenhouse-7"); status.Code(err) != codes.Unavailable {
 		t.Errorf("server certificate from an unknown CA: %v", err)
 	}
 	// A stream needs the token too, and works with it (fsync on each).
-	c := dial(t, srv.addr, client.Options{TLS: tc, Token: "greenhouse-7"})
+	c := dial(t, srv.addr, tc, "greenhouse-7")
 	samp, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 2, DurationS: 0.2})
 	ctx := context.Background()
-	if _, err := c.CreateRobot(ctx, "cart", cfg); err != nil {
+	if _, err := c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 		t.Fatal(err)
 	}
-	sess, _ := c.OpenIngest(ctx, "robots/cart")
-	for _, s := range samp {
-		if _, err := sess.Apply(s); err != nil {
+	st, err := c.Ingest(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i, s := range samp {
+		seq := uint64(i + 1)
+		if err := st.Send(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: seq, Sample: s}); err != nil {
 			t.Fatal(err)
 		}
+		if resp, err := st.Recv(); err != nil {
+			t.Fatal(err)
+		} else if resp.GetClientSequence() != seq {
+			t.Fatalf("verdict for client sequence %d, want %d", resp.GetClientSequence(), seq)
+		}
 	}
-	sess.Close()
+	st.CloseSend()
+	for _, err := st.Recv(); err == nil; _, err = st.Recv() { // until io.EOF: every verdict is in
+	}
 }
 
 func TestMutualTLS(t *testing.T) {
@@ -135,16 +143,16 @@ func TestMutualTLS(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: p.caPool, Certificates: []tls.Certificate{pair}}}); err != nil {
+	if err := tryCall(t, srv.addr, &tls.Config{RootCAs: p.caPool, Certificates: []tls.Certificate{pair}}, ""); err != nil {
 		t.Fatalf("with a client certificate: %v", err)
 	}
-	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: p.caPool}}); err == nil {
+	if err := tryCall(t, srv.addr, &tls.Config{RootCAs: p.caPool}, ""); err == nil {
 		t.Errorf("a client without a certificate was let in")
 	}
 	rogue := newPKI(t, "rogue CA")
 	rc, rk := rogue.issue(t, "intruder", false)
 	rpair, _ := tls.LoadX509KeyPair(rc, rk)
-	if err := tryCall(t, srv.addr, client.Options{TLS: &tls.Config{RootCAs: p.caPool, Certificates: []tls.Certificate{rpair}}}); err == nil {
+	if err := tryCall(t, srv.addr, &tls.Config{RootCAs: p.caPool, Certificates: []tls.Certificate{rpair}}, ""); err == nil {
 		t.Errorf("a client with a certificate from another CA was let in")
 	}
 }

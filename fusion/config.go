@@ -10,35 +10,6 @@ import (
 	"reckon.example/estimator"
 )
 
-// IMUMode says how a robot uses its IMU's heading.
-type IMUMode uint8
-
-const (
-	// IMUNone: no IMU; the state is (x, y, heading).
-	IMUNone IMUMode = iota
-	// IMUAbsolute: the IMU's heading updates the estimate through the
-	// IMU offset state (x, y, heading, imu_offset). The default choice when
-	// the wheels determine rotation.
-	IMUAbsolute
-	// IMURotation: the IMU's heading difference over each odometry interval
-	// is the turn row of the body step (for layouts whose wheels cannot see
-	// rotation). The IMU heading must come with each odometry sample.
-	IMURotation
-)
-
-// String names the mode as the configuration file spells it.
-func (m IMUMode) String() string {
-	switch m {
-	case IMUNone:
-		return "none"
-	case IMUAbsolute:
-		return "absolute"
-	case IMURotation:
-		return "rotation"
-	}
-	return fmt.Sprintf("imu_mode(%d)", uint8(m))
-}
-
 // Wheel is an encoder wheel's mounting on the robot.
 type Wheel struct {
 	// Name labels the wheel in messages.

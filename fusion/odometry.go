@@ -189,13 +189,6 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	return nil
 }
 
-func (r *Robot) noteIMU(o *Odometry) {
-	if r.cfg.IMU == IMURotation && o.IMUHeadingRad != nil {
-		v := *o.IMUHeadingRad
-		r.lastIMU = &v
-	}
-}
-
 // solveWheels builds the rows of DESIGN.md for the wheel travels and solves
 // them for the body step.
 func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoResult) error {

@@ -1,6 +1,7 @@
 package fusion
 
 import (
+	"fmt"
 	"slices"
 	"sort"
 
@@ -260,5 +261,66 @@ func (r *Robot) dropFront(k int) {
 		clear(r.ents[n:])
 		r.ents = r.ents[:n]
 		r.head = 0
+	}
+}
+
+// addMeasurement inserts, holds or refuses a measurement entry.
+func (r *Robot) addMeasurement(res Result, e entry, sensor string) Result {
+	t := e.t1
+	switch {
+	case r.started && t < r.baseT:
+		res.Verdict = VerdictTooOld
+		res.Err = fmt.Errorf("%w: stamp_ns %d is %.3f s before the newest odometry; the window starts at %d", ErrTooOld, t, float64(r.newest-t)*1e-9, r.baseT)
+		r.stats.count(VerdictTooOld, false)
+		r.stats.sensorVerdict(e.sensor, VerdictTooOld, 0, 0)
+		return res
+	case r.started && t <= r.newest:
+		ins := r.insert(e)
+		r.decideMeas(&res, ins, sensor)
+		return res
+	case r.started && t-r.newest > r.cfg.MaxHoldAheadNs:
+		r.stats.count(VerdictInvalid, false)
+		return invalid(res, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_hold_ahead_ns %d)", ErrTooFarAhead, t, float64(t-r.newest)*1e-9, r.cfg.MaxHoldAheadNs))
+	case len(r.held) >= r.cfg.MaxHeld:
+		r.stats.count(VerdictInvalid, false)
+		return invalid(res, fmt.Errorf("%w: %d held (max_held)", ErrHeldFull, len(r.held)))
+	}
+	r.hold(e)
+	res.Verdict = VerdictHeld
+	r.stats.count(VerdictHeld, false)
+	return res
+}
+
+// hold keeps e in stamp order (arrival order among equal stamps).
+func (r *Robot) hold(e entry) {
+	i := len(r.held)
+	for i > 0 && r.held[i-1].t1 > e.t1 {
+		i--
+	}
+	r.held = append(r.held, entry{})
+	copy(r.held[i+1:], r.held[i:])
+	r.held[i] = e
+}
+
+// releaseHeld inserts held entries that odometry has now reached.
+func (r *Robot) releaseHeld(res *Result) {
+	for len(r.held) > 0 && r.held[0].t1 <= r.newest {
+		e := r.held[0]
+		n := copy(r.held, r.held[1:])
+		r.held[n] = entry{}
+		r.held = r.held[:n]
+		sub := Result{Seq: e.seq}
+		if e.t1 < r.baseT {
+			sub.Verdict = VerdictTooOld
+			sub.Err = fmt.Errorf("%w: stamp_ns %d precedes the first odometry or the last reseed at %d", ErrTooOld, e.t1, r.baseT)
+			r.stats.count(VerdictTooOld, false)
+		} else if e.kind == entReset {
+			r.insertReset(e, &sub)
+		} else {
+			ins := r.insert(e)
+			r.decideMeas(&sub, ins, r.stats.sensors[e.sensor].ID)
+		}
+		res.Resolved = append(res.Resolved, Resolution{Seq: sub.Seq, Verdict: sub.Verdict, NIS: sub.NIS, Err: sub.Err})
+		res.Events = append(res.Events, sub.Events...)
 	}
 }

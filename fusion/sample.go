@@ -28,6 +28,20 @@ type Odometry struct {
 	IMUHeadingRad *float64
 }
 
+// InputKind names the kinds of input a Robot takes.
+type InputKind uint8
+
+const (
+	// InputOdometry: an Odometry sample (AddOdometry).
+	InputOdometry InputKind = iota + 1
+	// InputHeading: an IMU Heading sample (AddHeading).
+	InputHeading
+	// InputFix: an absolute Fix (AddFix).
+	InputFix
+	// InputReseed: a pose given by hand (Reseed).
+	InputReseed
+)
+
 // Heading is one IMU heading sample (IMUAbsolute mode).
 type Heading struct {
 	StampNs    int64

@@ -37,10 +37,25 @@ type SensorStats struct {
 	GateProbability float64
 }
 
+// ConsistencyVerdict compares a sensor's mean NIS with its band.
+type ConsistencyVerdict uint8
+
+const (
+	// Consistent: the mean NIS lies inside the band.
+	Consistent ConsistencyVerdict = iota + 1
+	// Overconfident: the mean NIS is above the band; the covariance claims
+	// too much.
+	Overconfident
+	// Underconfident: the mean NIS is below the band.
+	Underconfident
+	// TooFewFixes: fewer than five applied fixes, no verdict yet.
+	TooFewFixes
+)
+
 // Consistency compares the sensor's mean NIS over applied fixes with its
-// two-sided 95% band and gives a verdict: "consistent", "overconfident"
-// (NIS too large: the covariance claims too much), "underconfident" or
-// "too few fixes" (fewer than 5).
+// two-sided 95% band and gives a verdict: Consistent, Overconfident (NIS
+// too large: the covariance claims too much), Underconfident or TooFewFixes
+// (fewer than 5).
 //
 // For an ungated sensor the sum of N NIS values of dimension d is
 // chi-square with N*d degrees of freedom when the filter is consistent
@@ -51,10 +66,10 @@ type SensorStats struct {
 // distribution function and p = F_d(q), from x f_k(x) = k f_{k+2}(x)
 // (closed form, common practice); the band is then the normal approximation
 // of the mean of N of them.
-func (s SensorStats) Consistency() (mean, lo, hi float64, verdict string) {
+func (s SensorStats) Consistency() (mean, lo, hi float64, verdict ConsistencyVerdict) {
 	n := float64(s.Applied)
 	if s.Applied < 5 || s.DOFSum == 0 {
-		return 0, 0, 0, "too few fixes"
+		return 0, 0, 0, TooFewFixes
 	}
 	mean = s.NISSum / n
 	p := s.GateProbability
@@ -68,11 +83,11 @@ func (s SensorStats) Consistency() (mean, lo, hi float64, verdict string) {
 	}
 	switch {
 	case mean > hi:
-		verdict = "overconfident"
+		verdict = Overconfident
 	case mean < lo:
-		verdict = "underconfident"
+		verdict = Underconfident
 	default:
-		verdict = "consistent"
+		verdict = Consistent
 	}
 	return mean, lo, hi, verdict
 }

@@ -144,7 +144,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 			for _, e := range resp.GetEvents() {
 				if e.GetKind() != pb.EventKind_EVENT_KIND_FIX_REFUSED {
 					v.events = append(v.events, fmt.Sprintf("%7.2f s  %s %s", float64(e.GetStampNs())*1e-9,
-						strings.ToLower(strings.TrimPrefix(e.GetKind().String(), "EVENT_KIND_")), e.GetDetail()))
+						convert.EventName(e.GetKind()), e.GetDetail()))
 				}
 			}
 			if e, ok := v.errAt(v.pose); ok {
@@ -262,7 +262,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	fmt.Fprintf(stdout, "recoveries %d, slips suspected %d, odometry gaps %d\n", stats.GetRecoveries(), stats.GetSlips(), stats.GetGaps())
 	for _, ss := range stats.GetSensors() {
 		fmt.Fprintf(stdout, "sensor %-7s applied %5d gated %4d  mean NIS %.2f (95%% band %.2f-%.2f): %s\n", ss.GetSensorId(),
-			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), ss.GetAssessment())
+			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), convert.ConsistencyName(ss.GetVerdict()))
 	}
 	if *bump > 0 && *bump < *duration {
 		fmt.Fprintf(stdout, "(the cart was lifted aside and turned by hand at %g s: the means include the moments the IMU saw it turn and the wheels did not)\n", *bump)

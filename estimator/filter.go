@@ -30,6 +30,16 @@ type State struct {
 // Pose returns the pose part of the state.
 func (s *State) Pose() Pose { return Pose{s.X[IX], s.X[IY], s.X[IHead]} }
 
+// PoseCovarianceInto writes the 3x3 row-major covariance of (x, y,
+// heading) into dst.
+func (s *State) PoseCovarianceInto(dst *[9]float64) {
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			dst[i*3+j] = s.P[i*4+j]
+		}
+	}
+}
+
 // Var returns the variance of state component i.
 func (s *State) Var(i int) float64 { return s.P[i*4+i] }
 
@@ -158,14 +168,10 @@ func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
 	}
 	// P += Fu cu Fu^T on the pose block.
 	var g [9]float64
+	Sandwich(&g, fu, cu)
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			g[i*3+j] = fu[i*3+0]*cu[0*3+j] + fu[i*3+1]*cu[1*3+j] + fu[i*3+2]*cu[2*3+j]
-		}
-	}
-	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			P[i*4+j] += g[i*3+0]*fu[j*3+0] + g[i*3+1]*fu[j*3+1] + g[i*3+2]*fu[j*3+2]
+			P[i*4+j] += g[i*3+j]
 		}
 	}
 	for i := 0; i < n; i++ {

@@ -54,6 +54,17 @@ type Noise struct {
 	IMUOffsetVarRad2PerS float64
 }
 
+// stepNoise writes the covariance of a body step the robot computed itself.
+func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step) {
+	estimator.StepNoise(dst, s, n.StepForwardVarM2PerM, n.StepLeftVarM2PerM, n.StepTurnVarRad2PerRad)
+}
+
+// timeNoise writes the time-driven process noise of dtS seconds for an
+// n-state filter.
+func (n *Noise) timeNoise(dst *[4]float64, states int, dtS float64) {
+	estimator.TimeNoise(dst, states, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+}
+
 // DefaultNoise is the noise model used where a Noise field is zero. It
 // suits small robots with free-rolling encoder wheels and a MEMS gyro
 // (common practice: about half a percent of travel, a few milliradians of

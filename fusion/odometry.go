@@ -103,9 +103,7 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 	e := entry{kind: entOdo, t0: t0, t1: o.StampNs}
 	if o.Step != nil {
 		e.step = *o.Step
-		d := math.Hypot(e.step.ForwardM, e.step.LeftM)
-		n := &r.cfg.Noise
-		e.cov = [9]float64{n.StepForwardVarM2PerM * d, 0, 0, 0, n.StepLeftVarM2PerM * d, 0, 0, 0, n.StepTurnVarRad2PerRad * math.Abs(e.step.TurnRad)}
+		r.cfg.Noise.stepNoise(&e.cov, e.step)
 	} else if err := r.solveWheels(o, travel, &e, &res); err != nil {
 		return res, err
 	}

@@ -141,11 +141,8 @@ func (r *Robot) errOf(seq uint64) error {
 
 // predict moves filter f by odometry entry e with its time-driven noise.
 func (r *Robot) predict(f *estimator.Filter, e *entry) {
-	dt := float64(e.t1-e.t0) * 1e-9
-	q := [4]float64{0, 0, r.cfg.Noise.HeadingVarRad2PerS * dt}
-	if r.n == 4 {
-		q[3] = r.cfg.Noise.IMUOffsetVarRad2PerS * dt
-	}
+	var q [4]float64
+	r.cfg.Noise.timeNoise(&q, r.n, float64(e.t1-e.t0)*1e-9)
 	f.Predict(e.step, &e.cov, &q)
 }
 

@@ -521,29 +521,14 @@ func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
 	return append(b, '\n')
 }
 
+// nees3 is the pose NEES of s against the truth, NaN if its covariance is
+// not positive definite.
 func nees3(s *estimator.State, tr estimator.Pose) float64 {
-	e := [3]float64{tr.X - s.X[0], tr.Y - s.X[1], estimator.Wrap(tr.Heading - s.X[2])}
 	var c [9]float64
-	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			c[i*3+j] = s.At(i, j)
-		}
-	}
-	// Solve c y = e by Cramer's rule on the 3x3 (small and well conditioned).
-	det := c[0]*(c[4]*c[8]-c[5]*c[7]) - c[1]*(c[3]*c[8]-c[5]*c[6]) + c[2]*(c[3]*c[7]-c[4]*c[6])
-	if !(det > 0) {
+	s.PoseCovarianceInto(&c)
+	q, err := estimator.PoseNEES(s.Pose(), &c, tr)
+	if err != nil {
 		return math.NaN()
-	}
-	inv := [9]float64{
-		c[4]*c[8] - c[5]*c[7], c[2]*c[7] - c[1]*c[8], c[1]*c[5] - c[2]*c[4],
-		c[5]*c[6] - c[3]*c[8], c[0]*c[8] - c[2]*c[6], c[2]*c[3] - c[0]*c[5],
-		c[3]*c[7] - c[4]*c[6], c[1]*c[6] - c[0]*c[7], c[0]*c[4] - c[1]*c[3],
-	}
-	var q float64
-	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			q += e[i] * inv[i*3+j] / det * e[j]
-		}
 	}
 	return q
 }

@@ -1,0 +1,80 @@
+package estimator
+
+// RTSStep writes into dst the smoothed estimate of one step of the
+// fixed-interval Rauch-Tung-Striebel smoother: filtered is the step's
+// filtered estimate, predicted the next step's prediction from it, f the
+// Jacobian of that prediction (n x n, stride 4) and smoothed the next
+// step's smoothed estimate.
+//
+//	C   = P_f F^T P_p^-1
+//	x_s = x_f + C (x_s' - x_p)
+//	P_s = P_f + C (P_s' - P_p) C^T
+//
+// Angle differences are wrapped. It returns ErrNotPositiveDefinite if the
+// prediction's covariance is not. dst may alias filtered.
+//
+// Reference: Rauch, Tung and Striebel, AIAA Journal 3(8), 1965; in this
+// form Bar-Shalom, Li and Kirubarajan (2001), section 8.6.
+func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) error {
+	n := filtered.N
+	pp := predicted.P
+	symmetrise(pp[:], n, 4)
+	// ct = P_p^-1 F P_f, the transpose of the gain C.
+	var ct [16]float64
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += f[i*4+k] * filtered.P[k*4+j]
+			}
+			ct[i*4+j] = acc
+		}
+	}
+	if !SolveSPD(&pp, n, &ct, n) {
+		return ErrNotPositiveDefinite
+	}
+	var d [4]float64
+	for i := 0; i < n; i++ {
+		d[i] = smoothed.X[i] - predicted.X[i]
+		if i >= IHead {
+			d[i] = Wrap(d[i])
+		}
+	}
+	// dp = P_s - P_p; out.P = P_f + C dp C^T with C = ct^T.
+	var dp, cdp [16]float64
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			dp[i*4+j] = smoothed.P[i*4+j] - predicted.P[i*4+j]
+		}
+	}
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += ct[k*4+i] * dp[k*4+j]
+			}
+			cdp[i*4+j] = acc
+		}
+	}
+	out := State{N: n}
+	for i := 0; i < n; i++ {
+		var dx float64
+		for k := 0; k < n; k++ {
+			dx += ct[k*4+i] * d[k]
+		}
+		out.X[i] = filtered.X[i] + dx
+		if i >= IHead {
+			out.X[i] = Wrap(out.X[i])
+		}
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += cdp[i*4+k] * ct[k*4+j]
+			}
+			out.P[i*4+j] = filtered.P[i*4+j] + acc
+		}
+	}
+	symmetrise(out.P[:], n, 4)
+	*dst = out
+	return nil
+}

@@ -28,8 +28,10 @@ const (
 	KindIMUHeading
 )
 
-// Kinds lists every measurement kind, for tests and conformance suites.
-var Kinds = []Kind{KindPose, KindPosition, KindHeading, KindRangeBearing, KindRange, KindBearing, KindIMUHeading}
+// Kinds returns every measurement kind, for tests and conformance suites.
+func Kinds() []Kind {
+	return []Kind{KindPose, KindPosition, KindHeading, KindRangeBearing, KindRange, KindBearing, KindIMUHeading}
+}
 
 // Dim returns the dimension of the kind's measurement vector.
 func (k Kind) Dim() int {

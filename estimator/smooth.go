@@ -16,8 +16,8 @@ package estimator
 // Reference: Rauch, Tung and Striebel, AIAA Journal 3(8), 1965; in this
 // form Bar-Shalom, Li and Kirubarajan (2001), section 8.6.
 func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) error {
-	n := filtered.N
-	pp := predicted.P
+	n := filtered.n
+	pp := predicted.p
 	symmetrise(pp[:], n, 4)
 	// ct = P_p^-1 F P_f, the transpose of the gain C.
 	var ct [16]float64
@@ -25,7 +25,7 @@ func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) e
 		for j := 0; j < n; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
-				acc += f[i*4+k] * filtered.P[k*4+j]
+				acc += f[i*4+k] * filtered.p[k*4+j]
 			}
 			ct[i*4+j] = acc
 		}
@@ -35,16 +35,16 @@ func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) e
 	}
 	var d [4]float64
 	for i := 0; i < n; i++ {
-		d[i] = smoothed.X[i] - predicted.X[i]
+		d[i] = smoothed.x[i] - predicted.x[i]
 		if i >= IHead {
 			d[i] = Wrap(d[i])
 		}
 	}
-	// dp = P_s - P_p; out.P = P_f + C dp C^T with C = ct^T.
+	// dp = P_s - P_p; out.p = P_f + C dp C^T with C = ct^T.
 	var dp, cdp [16]float64
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			dp[i*4+j] = smoothed.P[i*4+j] - predicted.P[i*4+j]
+			dp[i*4+j] = smoothed.p[i*4+j] - predicted.p[i*4+j]
 		}
 	}
 	for i := 0; i < n; i++ {
@@ -56,25 +56,25 @@ func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) e
 			cdp[i*4+j] = acc
 		}
 	}
-	out := State{N: n}
+	out := State{n: n}
 	for i := 0; i < n; i++ {
 		var dx float64
 		for k := 0; k < n; k++ {
 			dx += ct[k*4+i] * d[k]
 		}
-		out.X[i] = filtered.X[i] + dx
+		out.x[i] = filtered.x[i] + dx
 		if i >= IHead {
-			out.X[i] = Wrap(out.X[i])
+			out.x[i] = Wrap(out.x[i])
 		}
 		for j := 0; j < n; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
 				acc += cdp[i*4+k] * ct[k*4+j]
 			}
-			out.P[i*4+j] = filtered.P[i*4+j] + acc
+			out.p[i*4+j] = filtered.p[i*4+j] + acc
 		}
 	}
-	symmetrise(out.P[:], n, 4)
+	symmetrise(out.p[:], n, 4)
 	*dst = out
 	return nil
 }

@@ -28,8 +28,8 @@ type Wheel struct {
 }
 
 // Noise holds the noise model. Every variance is a rate per distance, per
-// angle or per second, so that it adds over sub-intervals (DESIGN.md,
-// "Process noise"). Zero fields take the defaults in DefaultNoise.
+// angle or per second, so that it adds over sub-intervals (DEVELOPERS.md,
+// "Design: Process noise"). Zero fields take the defaults of DefaultNoise.
 type Noise struct {
 	// WheelVarM2PerM: variance of a wheel's reading per metre it rolls.
 	WheelVarM2PerM float64
@@ -65,21 +65,23 @@ func (n *Noise) timeNoise(dst *[4]float64, states int, dtS float64) {
 	estimator.TimeNoise(dst, states, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
 }
 
-// DefaultNoise is the noise model used where a Noise field is zero. It
+// DefaultNoise returns the noise model used where a Noise field is zero. It
 // suits small robots with free-rolling encoder wheels and a MEMS gyro
 // (common practice: about half a percent of travel, a few milliradians of
 // IMU heading noise).
-var DefaultNoise = Noise{
-	WheelVarM2PerM:        2.5e-5,
-	LateralSlipVarM2PerM:  1e-4,
-	TurnVarRad2PerRad:     1e-5,
-	HeadingVarRad2PerS:    1e-7,
-	StepForwardVarM2PerM:  1e-4,
-	StepLeftVarM2PerM:     1e-4,
-	StepTurnVarRad2PerRad: 1e-4,
-	IMUHeadingVarRad2:     2.5e-5,
-	IMUTurnVarRad2PerRad:  1e-6,
-	IMUOffsetVarRad2PerS:  1e-7,
+func DefaultNoise() Noise {
+	return Noise{
+		WheelVarM2PerM:        2.5e-5,
+		LateralSlipVarM2PerM:  1e-4,
+		TurnVarRad2PerRad:     1e-5,
+		HeadingVarRad2PerS:    1e-7,
+		StepForwardVarM2PerM:  1e-4,
+		StepLeftVarM2PerM:     1e-4,
+		StepTurnVarRad2PerRad: 1e-4,
+		IMUHeadingVarRad2:     2.5e-5,
+		IMUTurnVarRad2PerRad:  1e-6,
+		IMUOffsetVarRad2PerS:  1e-7,
+	}
 }
 
 // Recovery is the move-recovery policy: Count consecutive refused pose
@@ -172,7 +174,7 @@ func (c Config) withDefaults() Config {
 			*v = d
 		}
 	}
-	n, d := &c.Noise, DefaultNoise
+	n, d := &c.Noise, DefaultNoise()
 	def(&n.WheelVarM2PerM, d.WheelVarM2PerM)
 	def(&n.LateralSlipVarM2PerM, d.LateralSlipVarM2PerM)
 	def(&n.TurnVarRad2PerRad, d.TurnVarRad2PerRad)
@@ -328,10 +330,10 @@ func (c *Config) layoutRows() [][3]float64 {
 		rows = append(rows, estimator.WheelCoef(w.XM, w.YM, w.DirectionRad))
 	}
 	if c.IMU == IMURotation {
-		rows = append(rows, estimator.TurnCoef)
+		rows = append(rows, estimator.TurnCoef())
 	}
 	if c.NoSideSlip {
-		rows = append(rows, estimator.LeftCoef)
+		rows = append(rows, estimator.LeftCoef())
 	}
 	return rows
 }

@@ -118,7 +118,7 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 	case e.out.Gated:
 		res.Verdict = VerdictGated
 		res.Events = append(res.Events, Event{Kind: EventFixRefused, StampNs: e.t1, SensorID: sensor, Value: e.out.NIS,
-			Detail: fmt.Sprintf("NIS %.1f above the %d-dof gate %.1f", e.out.NIS, e.out.Dim, r.gates.For(e.out.Dim))})
+			Detail: fmt.Sprintf("NIS %.1f above the %d-dof gate %.1f", e.out.NIS, e.out.Dim, r.gates.For(e.out.Dim).Threshold())})
 		r.stats.count(VerdictGated, false)
 		r.stats.sensorVerdict(e.sensor, VerdictGated, e.out.NIS, 0)
 		if !e.imu {

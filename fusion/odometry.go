@@ -206,10 +206,10 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 	}
 	if r.cfg.IMU == IMURotation {
 		turn := estimator.Wrap(*o.IMUHeadingRad - *r.lastIMU)
-		r.rows = append(r.rows, estimator.Row{Coef: estimator.TurnCoef, Value: turn, Var: n.IMUTurnVarRad2PerRad * math.Abs(turn)})
+		r.rows = append(r.rows, estimator.Row{Coef: estimator.TurnCoef(), Value: turn, Var: n.IMUTurnVarRad2PerRad * math.Abs(turn)})
 	}
 	if r.cfg.NoSideSlip {
-		r.rows = append(r.rows, estimator.Row{Coef: estimator.LeftCoef, Value: 0, Var: n.LateralSlipVarM2PerM * dist})
+		r.rows = append(r.rows, estimator.Row{Coef: estimator.LeftCoef(), Value: 0, Var: n.LateralSlipVarM2PerM * dist})
 	}
 	var sol estimator.StepSolution
 	if err := estimator.SolveStep(r.rows, weightFloor, &sol); err != nil {

@@ -40,7 +40,7 @@ func (r *Robot) fused(stamp int64, st *estimator.State, ready bool) FusedPose {
 	fp := FusedPose{StampNs: stamp, Pose: st.Pose(), Distrust: r.trust.reasons, IMUOffsetReady: ready && r.n == 4}
 	st.PoseCovarianceInto(&fp.Cov)
 	if fp.IMUOffsetReady {
-		fp.IMUOffsetRad, fp.IMUOffsetVarRad2 = st.X[estimator.IOffset], st.Var(estimator.IOffset)
+		fp.IMUOffsetRad, fp.IMUOffsetVarRad2 = st.MeanAt(estimator.IOffset), st.Var(estimator.IOffset)
 	}
 	fp.Position95M = st.Position95()
 	fp.HeadingStdRad = math.Sqrt(st.Var(estimator.IHead))

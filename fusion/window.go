@@ -88,7 +88,7 @@ func (r *Robot) apply(e *entry) {
 		} else {
 			gate := r.gates.For(e.meas.Kind.Dim())
 			if e.imu && !r.cfg.GateIMU {
-				gate = 0
+				gate = estimator.NoGate()
 			}
 			e.out, err = r.f.Update(&e.meas, gate)
 		}

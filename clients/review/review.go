@@ -506,13 +506,13 @@ var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "
 // appendRow appends one CSV row of the track (numbers only: no quoting).
 func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
 	b = strconv.AppendInt(b, stamp, 10)
-	for _, v := range [...]float64{s.X[0], s.X[1], s.X[2], s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
+	for _, v := range [...]float64{s.MeanAt(0), s.MeanAt(1), s.MeanAt(2), s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
 		b = append(b, ',')
 		b = strconv.AppendFloat(b, v, 'g', -1, 64)
 	}
 	b = append(b, ',')
-	if s.N == 4 {
-		b = strconv.AppendFloat(b, s.X[3], 'g', -1, 64)
+	if s.Size() == 4 {
+		b = strconv.AppendFloat(b, s.MeanAt(3), 'g', -1, 64)
 		b = append(b, ',')
 		b = strconv.AppendFloat(b, s.At(3, 3), 'g', -1, 64)
 	} else {
@@ -573,9 +573,9 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		}
 		p := &st.Post
 		if i > 0 && !st.Start {
-			sum.DistanceM += math.Hypot(p.X[0]-prevX, p.X[1]-prevY)
+			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
-		prevX, prevY = p.X[0], p.X[1]
+		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
 		if r95 := p.Position95(); r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, st.StampNs
 		}
@@ -591,8 +591,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			tp, haveTruth = truth.at(st.StampNs)
 		}
 		if haveTruth {
-			fSq += sq(p.X[0]-tp.X) + sq(p.X[1]-tp.Y)
-			sSq += sq(smoothed.X[0]-tp.X) + sq(smoothed.X[1]-tp.Y)
+			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
+			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
 			nTruth++
 			if fn, sn := nees3(p, tp), nees3(&smoothed, tp); !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn

@@ -226,36 +226,60 @@ func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
 }
 
 // Update applies measurement m unless gate refuses its NIS. It returns the
-// NIS. A gated measurement, or one that fails with an
-// error, leaves the filter unchanged. The update is in Joseph form,
+// NIS. A gated measurement, or one that fails with an error, leaves the
+// filter unchanged. The update is in Joseph form,
 //
 //	P' = (I - K H) P (I - K H)^T + K R K^T,
 //
 // symmetrised and checked by Cholesky (Bar-Shalom, Li and Kirubarajan, 2001,
-// eq. 5.2.3-18 for the Joseph form; DESIGN.md).
+// eq. 5.2.3-18 for the Joseph form; DEVELOPERS.md, "Design: Measurement
+// updates").
 func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
-	n := f.st.n
 	d := m.Kind.Dim()
 	out := Outcome{Dim: d}
+	var v [3]float64
+	if err := f.innovation(m, &v); err != nil {
+		return out, err
+	}
+	if err := f.innovationCovariance(m); err != nil {
+		return out, err
+	}
+	out.NIS = f.nis(&v, d)
+	if !gate.Passes(out.NIS) {
+		out.Gated = true
+		return out, nil
+	}
+	f.gain(d)
+	return out, f.correct(m, &v)
+}
+
+// innovation writes z - h(x) into v (angles wrapped) and the Jacobian H
+// into f.h.
+func (f *Filter) innovation(m *Measurement, v *[3]float64) error {
+	d := m.Kind.Dim()
 	for i := 0; i < d; i++ {
 		if !finite(m.Z[i]) {
-			return out, fmt.Errorf("measurement %s component %d: %w", m.Kind, i, ErrNotFinite)
+			return fmt.Errorf("measurement %s component %d: %w", m.Kind, i, ErrNotFinite)
 		}
 	}
 	var z [3]float64
-	if err := m.predict(f.st.x[:], n, &z, &f.h); err != nil {
-		return out, err
+	if err := m.predict(f.st.x[:], f.st.n, &z, &f.h); err != nil {
+		return err
 	}
-	var v [3]float64
 	for i := 0; i < d; i++ {
 		v[i] = m.Z[i] - z[i]
 		if m.Kind.IsAngle(i) {
 			v[i] = Wrap(v[i])
 		}
 	}
-	P := &f.st.p
-	H := &f.h
-	// PHt = P H^T (n x d, stride 3) kept in f.k until K is formed.
+	return nil
+}
+
+// innovationCovariance forms P H^T in f.k (n x d, stride 3, until the gain
+// replaces it) and S = H P H^T + R in f.s, and factorises S into f.l.
+func (f *Filter) innovationCovariance(m *Measurement) error {
+	n, d := f.st.n, m.Kind.Dim()
+	P, H := &f.st.p, &f.h
 	for i := 0; i < n; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
@@ -265,7 +289,6 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 			f.k[i*3+j] = acc
 		}
 	}
-	// S = H P H^T + R.
 	for i := 0; i < d; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
@@ -277,25 +300,38 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	}
 	symmetrise(f.s[:], d, measStride)
 	if !cholesky(f.s[:], f.l[:], d, measStride) {
-		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+		return fmt.Errorf("innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
 	}
+	return nil
+}
+
+// nis returns v^T S^-1 v from the factor of S in f.l.
+func (f *Filter) nis(v *[3]float64, d int) float64 {
 	var y [3]float64
 	cholForward(f.l[:], d, measStride, v[:], y[:])
+	var q float64
 	for i := 0; i < d; i++ {
-		out.NIS += y[i] * y[i]
+		q += y[i] * y[i]
 	}
-	if !gate.Passes(out.NIS) {
-		out.Gated = true
-		return out, nil
-	}
+	return q
+}
+
+// gain keeps P H^T in f.pht and replaces f.k by K = P H^T S^-1, solving
+// S K_i^T = PHt_i^T row by row.
+func (f *Filter) gain(d int) {
 	f.pht = f.k
-	// K = PHt S^-1: solve S K_i^T = PHt_i^T row by row.
-	for i := 0; i < n; i++ {
+	for i := 0; i < f.st.n; i++ {
 		var row, sol [3]float64
 		copy(row[:d], f.k[i*3:i*3+d])
 		cholSolveVec(f.l[:], d, measStride, row[:], sol[:])
 		copy(f.k[i*3:i*3+d], sol[:d])
 	}
+}
+
+// correct moves the mean by K v and the covariance by the Joseph form, and
+// takes both back if the covariance is no longer positive definite.
+func (f *Filter) correct(m *Measurement, v *[3]float64) error {
+	n, d := f.st.n, m.Kind.Dim()
 	f.saved = f.st
 	for i := 0; i < n; i++ {
 		var acc float64
@@ -309,11 +345,11 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 		f.st.x[IOffset] = Wrap(f.st.x[IOffset])
 	}
 	f.joseph(m, n, d)
-	if !cholesky(P[:], f.chol[:], n, 4) {
+	if !cholesky(f.st.p[:], f.chol[:], n, 4) {
 		f.st = f.saved
-		return out, fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
+		return fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
 	}
-	return out, nil
+	return nil
 }
 
 // joseph replaces P by (I-KH) P (I-KH)^T + K R K^T, formed as rank-d

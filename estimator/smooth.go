@@ -17,20 +17,8 @@ package estimator
 // form Bar-Shalom, Li and Kirubarajan (2001), section 8.6.
 func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) error {
 	n := filtered.n
-	pp := predicted.p
-	symmetrise(pp[:], n, 4)
-	// ct = P_p^-1 F P_f, the transpose of the gain C.
 	var ct [16]float64
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			var acc float64
-			for k := 0; k < n; k++ {
-				acc += f[i*4+k] * filtered.p[k*4+j]
-			}
-			ct[i*4+j] = acc
-		}
-	}
-	if !SolveSPD(&pp, n, &ct, n) {
+	if !rtsGainT(&ct, filtered, predicted, f) {
 		return ErrNotPositiveDefinite
 	}
 	var d [4]float64
@@ -77,4 +65,22 @@ func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) e
 	symmetrise(out.p[:], n, 4)
 	*dst = out
 	return nil
+}
+
+// rtsGainT writes ct = P_p^-1 F P_f, the transpose of the smoother gain C,
+// and reports false if P_p is not positive definite.
+func rtsGainT(ct *[16]float64, filtered, predicted *State, f *[16]float64) bool {
+	n := filtered.n
+	pp := predicted.p
+	symmetrise(pp[:], n, 4)
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += f[i*4+k] * filtered.p[k*4+j]
+			}
+			ct[i*4+j] = acc
+		}
+	}
+	return SolveSPD(&pp, n, ct, n)
 }

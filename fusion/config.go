@@ -3,7 +3,6 @@ package fusion
 import (
 	"errors"
 	"fmt"
-	"math"
 
 	"gonum.org/v1/gonum/mat"
 
@@ -223,19 +222,33 @@ func (c Config) withDefaults() Config {
 // wrapping ErrConfig that names the offending field.
 func (c Config) Validate() error {
 	c = c.withDefaults()
-	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	for _, check := range []func() error{c.checkWheels, c.checkNoise, c.checkLimits, c.checkStart, c.checkLandmarks, c.checkLayout} {
+		if err := check(); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// checkWheels checks each wheel's mounting and counter.
+func (c *Config) checkWheels() error {
 	for i, w := range c.Wheels {
 		f := fmt.Sprintf("wheels[%d]", i)
-		if !finite(w.XM) || !finite(w.YM) || !finite(w.DirectionRad) {
+		if !finiteAll(w.XM, w.YM, w.DirectionRad) {
 			return cfgErr(f, "position and direction must be finite")
 		}
-		if w.CountsPerM < 0 || !finite(w.CountsPerM) {
+		if w.CountsPerM < 0 || !finiteAll(w.CountsPerM) {
 			return cfgErr(f+".counts_per_m", "%v must be positive (or 0 when samples carry metres)", w.CountsPerM)
 		}
 		if w.CounterBits < 0 || w.CounterBits > 64 || (w.CounterBits > 0 && w.CounterBits < 8) {
 			return cfgErr(f+".counter_bits", "%d must be 0 (no wrap) or 8 to 64", w.CounterBits)
 		}
 	}
+	return nil
+}
+
+// checkNoise checks that every noise rate is a positive finite variance.
+func (c *Config) checkNoise() error {
 	noise := []struct {
 		name string
 		v    float64
@@ -252,10 +265,16 @@ func (c Config) Validate() error {
 		{"noise.imu_offset_var_rad2_per_s", c.Noise.IMUOffsetVarRad2PerS},
 	}
 	for _, n := range noise {
-		if !(n.v > 0) || !finite(n.v) {
+		if !(n.v > 0) || !finiteAll(n.v) {
 			return cfgErr(n.name, "%v must be a positive finite variance rate", n.v)
 		}
 	}
+	return nil
+}
+
+// checkLimits checks the IMU mode, the probabilities, the counts and sizes,
+// and the positive limits.
+func (c *Config) checkLimits() error {
 	if c.IMU > IMURotation {
 		return cfgErr("imu_mode", "%d is not none, absolute or rotation", c.IMU)
 	}
@@ -293,11 +312,16 @@ func (c Config) Validate() error {
 		v    float64
 	}{{"max_speed_m_per_s", c.MaxSpeedMPerS}, {"max_turn_rate_rad_per_s", c.MaxTurnRateRadPerS},
 		{"trust.max_position95_m", c.Trust.MaxPosition95M}, {"trust.max_heading_std_rad", c.Trust.MaxHeadingStdRad}} {
-		if !(p.v > 0) || !finite(p.v) {
+		if !(p.v > 0) || !finiteAll(p.v) {
 			return cfgErr(p.name, "%v must be positive", p.v)
 		}
 	}
-	if !finite(c.StartPose.X) || !finite(c.StartPose.Y) || !finite(c.StartPose.Heading) {
+	return nil
+}
+
+// checkStart checks the start pose and its covariance.
+func (c *Config) checkStart() error {
+	if !finiteAll(c.StartPose.X, c.StartPose.Y, c.StartPose.Heading) {
 		return cfgErr("start_pose", "must be finite")
 	}
 	if err := estimator.CheckCovariance(c.StartCov, 3); err != nil {
@@ -306,6 +330,12 @@ func (c Config) Validate() error {
 	if err := checkVariances(c.StartCov, 3, poseAngle); err != nil {
 		return cfgErr("start_covariance", "%v", err)
 	}
+	return nil
+}
+
+// checkLandmarks checks that landmark IDs are set and unique and their
+// positions finite.
+func (c *Config) checkLandmarks() error {
 	seen := map[string]bool{}
 	for i, l := range c.Landmarks {
 		f := fmt.Sprintf("landmarks[%d]", i)
@@ -316,11 +346,11 @@ func (c Config) Validate() error {
 			return cfgErr(f+".id", "%q appears twice", l.ID)
 		}
 		seen[l.ID] = true
-		if !finite(l.XM) || !finite(l.YM) {
+		if !finiteAll(l.XM, l.YM) {
 			return cfgErr(f, "position must be finite")
 		}
 	}
-	return c.checkLayout()
+	return nil
 }
 
 // layoutRows returns the structural rows of the layout (coefficients only).

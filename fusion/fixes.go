@@ -32,29 +32,8 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, error) {
 			return m, badf("heading fix heading_rad %v is not finite", f.HeadingRad)
 		}
 	case FixLandmark:
-		l, ok := r.landmarks[f.LandmarkID]
-		if !ok {
-			return m, fmt.Errorf("%w: landmark_id %q is not in the robot's landmark map", ErrUnknownLandmark, f.LandmarkID)
-		}
-		m.LandmarkX, m.LandmarkY = l[0], l[1]
-		switch {
-		case f.RangeM != nil && f.BearingRad != nil:
-			m.Kind = estimator.KindRangeBearing
-			m.Z = [3]float64{*f.RangeM, estimator.Wrap(*f.BearingRad)}
-		case f.RangeM != nil:
-			m.Kind = estimator.KindRange
-			m.Z = [3]float64{*f.RangeM}
-		case f.BearingRad != nil:
-			m.Kind = estimator.KindBearing
-			m.Z = [3]float64{estimator.Wrap(*f.BearingRad)}
-		default:
-			return m, badf("landmark fix needs range_m, bearing_rad or both")
-		}
-		if f.RangeM != nil && (!finiteAll(*f.RangeM) || *f.RangeM <= 0) {
-			return m, badf("range_m %v must be positive", *f.RangeM)
-		}
-		if f.BearingRad != nil && !finiteAll(*f.BearingRad) {
-			return m, badf("bearing_rad %v is not finite", *f.BearingRad)
+		if err := r.landmarkMeasurement(f, &m); err != nil {
+			return m, err
 		}
 	default:
 		return m, badf("fix kind %d is not pose, position, heading or landmark", f.Kind)
@@ -144,4 +123,47 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 			r.cands = r.cands[:0]
 		}
 	}
+}
+
+// applyMeas applies a measurement entry to the filter: the first IMU
+// heading since the pose was set initialises the IMU offset, every other
+// measurement updates through its gate.
+func (r *Robot) applyMeas(e *entry) error {
+	e.out = estimator.Outcome{Dim: e.meas.Kind.Dim()}
+	e.initialised = e.imu && !r.ready
+	if e.initialised {
+		return r.initOffset(e)
+	}
+	var err error
+	e.out, err = r.f.Update(&e.meas, r.gateFor(e))
+	return err
+}
+
+// landmarkMeasurement fills m with a landmark fix's range and/or bearing.
+func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
+	l, ok := r.landmarks[f.LandmarkID]
+	if !ok {
+		return fmt.Errorf("%w: landmark_id %q is not in the robot's landmark map", ErrUnknownLandmark, f.LandmarkID)
+	}
+	m.LandmarkX, m.LandmarkY = l[0], l[1]
+	switch {
+	case f.RangeM != nil && f.BearingRad != nil:
+		m.Kind = estimator.KindRangeBearing
+		m.Z = [3]float64{*f.RangeM, estimator.Wrap(*f.BearingRad)}
+	case f.RangeM != nil:
+		m.Kind = estimator.KindRange
+		m.Z = [3]float64{*f.RangeM}
+	case f.BearingRad != nil:
+		m.Kind = estimator.KindBearing
+		m.Z = [3]float64{estimator.Wrap(*f.BearingRad)}
+	default:
+		return badf("landmark fix needs range_m, bearing_rad or both")
+	}
+	if f.RangeM != nil && (!finiteAll(*f.RangeM) || *f.RangeM <= 0) {
+		return badf("range_m %v must be positive", *f.RangeM)
+	}
+	if f.BearingRad != nil && !finiteAll(*f.BearingRad) {
+		return badf("bearing_rad %v is not finite", *f.BearingRad)
+	}
+	return nil
 }

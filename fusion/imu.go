@@ -67,3 +67,36 @@ func (r *Robot) noteIMU(o *Odometry) {
 		r.lastIMU = &v
 	}
 }
+
+// referenceIMU takes the first IMU heading in rotation mode as the
+// reference for the next interval: this interval's motion cannot be
+// resolved.
+func (r *Robot) referenceIMU(o *Odometry, res *odoResult) {
+	if o.Counts != nil {
+		copy(r.lastCounts, o.Counts)
+	}
+	if !r.started {
+		r.start(o.StampNs)
+	} else {
+		res.gapNs = o.StampNs - r.newest
+		r.newest = o.StampNs
+	}
+	r.noteIMU(o)
+}
+
+// initOffset initialises the IMU offset from the first IMU heading since
+// the pose was set (DEVELOPERS.md, "Design: State").
+func (r *Robot) initOffset(e *entry) error {
+	err := r.f.InitOffset(e.meas.Z[0], e.meas.R[0])
+	r.ready = err == nil
+	return err
+}
+
+// gateFor returns the gate of a measurement entry: IMU headings pass
+// ungated unless gate_imu is set.
+func (r *Robot) gateFor(e *entry) estimator.Gate {
+	if e.imu && !r.cfg.GateIMU {
+		return estimator.NoGate()
+	}
+	return r.gates.For(e.meas.Kind.Dim())
+}

@@ -80,18 +80,7 @@ func (r *Robot) apply(e *entry) {
 	case entOdo:
 		r.predict(r.f, e)
 	case entMeas:
-		e.out = estimator.Outcome{Dim: e.meas.Kind.Dim()}
-		e.initialised = e.imu && !r.ready
-		if e.initialised {
-			err = r.f.InitOffset(e.meas.Z[0], e.meas.R[0])
-			r.ready = err == nil
-		} else {
-			gate := r.gates.For(e.meas.Kind.Dim())
-			if e.imu && !r.cfg.GateIMU {
-				gate = estimator.NoGate()
-			}
-			e.out, err = r.f.Update(&e.meas, gate)
-		}
+		err = r.applyMeas(e)
 	case entReset:
 		err = r.f.Reset(e.pose, &e.poseCov)
 		if err == nil {

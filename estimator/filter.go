@@ -402,7 +402,7 @@ func (f *Filter) joseph(m *Measurement, n, d int) {
 }
 
 // InitOffset initialises the IMU offset from an absolute IMU heading z with
-// variance r (DESIGN.md, "State"): offset = wrap(z - heading), with variance
+// variance r (DEVELOPERS.md, "Design: State"): offset = wrap(z - heading), with variance
 // P_hh + r and covariance -P_h,s with every other state s, because the
 // offset is z - heading and inherits heading's correlations with the
 // opposite sign. It panics on a 3-state filter.

@@ -8,7 +8,7 @@ import (
 // Kind says what a Measurement measures and so its dimension.
 type Kind uint8
 
-// The measurement kinds (DESIGN.md, "Measurement updates"). A sensor is
+// The measurement kinds (DEVELOPERS.md, "Design: Measurement updates"). A sensor is
 // mounted at body pose Mount; z is what the sensor reports.
 const (
 	// KindPose: the sensor's field pose (x, y, heading) = pose (+) Mount.

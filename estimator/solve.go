@@ -4,7 +4,7 @@ import "math"
 
 // Row is one linear reading of a body step u = (forward, left, turn):
 // Coef . u = Value, with variance Var of Value. A wheel, an IMU rotation or a
-// no-side-slip constraint each give one row (DESIGN.md, "Motion prediction").
+// no-side-slip constraint each give one row (DEVELOPERS.md, "Design: Motion prediction").
 type Row struct {
 	Coef  [3]float64
 	Value float64

@@ -14,8 +14,11 @@ import (
 // the number is a plain int32; server/convert maps through it and a test
 // there checks every table against the wire enums both ways.
 type Label[T comparable] struct {
+	// Value is the Go value (for TrustReason, a single reason bit).
 	Value T
-	Name  string
+	// Name is the label: the lowercase suffix of the wire value's name.
+	Name string
+	// Proto is the number of the wire enum value.
 	Proto int32
 }
 
@@ -71,6 +74,9 @@ var (
 		{IMURotation, "rotation", 3},
 	}
 )
+
+// Each ...Labels function returns a copy of its table, so that no caller
+// can change the labels another sees.
 
 // VerdictLabels returns the label table of Verdict (wire enum Verdict).
 func VerdictLabels() []Label[Verdict] { return slices.Clone(verdictTable[:]) }
@@ -133,9 +139,6 @@ func ProtoOf[T comparable](table []Label[T], v T) int32 {
 	l, _ := labelOf(table, v)
 	return l.Proto
 }
-
-// Each XLabels function returns a copy of its table, so that no caller can
-// change the labels of another.
 
 // String returns the verdict's label.
 func (v Verdict) String() string { return nameOf(verdictTable[:], v, "verdict", uint64(v)) }

@@ -188,7 +188,7 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	return nil
 }
 
-// solveWheels builds the rows of DESIGN.md for the wheel travels and solves
+// solveWheels builds the rows (DEVELOPERS.md, "Design: Motion prediction") for the wheel travels and solves
 // them for the body step.
 func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoResult) error {
 	n := &r.cfg.Noise

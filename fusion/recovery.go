@@ -18,7 +18,7 @@ type candidate struct {
 }
 
 // considerRecovery keeps a refused pose fix as a candidate and re-initialises
-// the pose when enough consecutive candidates agree (DESIGN.md, "Measurement
+// the pose when enough consecutive candidates agree (DEVELOPERS.md, "Design: Measurement
 // updates"). at is the fix's index in the window.
 func (r *Robot) considerRecovery(res *Result, at int) {
 	e := &r.live()[at]

@@ -70,7 +70,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 	live := r.live()
 	prev := r.base
 	if c.cur == nil && len(c.ready) == 0 {
-		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity4, Start: true}
+		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity4(), Start: true}
 	}
 	for i := 0; i < k; i++ {
 		e := &live[i]
@@ -80,7 +80,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			s := Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est}
 			var fx, fu [9]float64
 			estimator.ArcJacobians(prev.est.Pose(), e.step, &fx, &fu)
-			s.F = identity4
+			s.F = identity4()
 			for a := 0; a < 3; a++ {
 				for b := 0; b < 3; b++ {
 					s.F[a*4+b] = fx[a*3+b]
@@ -91,7 +91,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			c.cur.Post = e.after.est
 		case entReset:
 			c.emit()
-			c.cur = &Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est, F: identity4, Start: true}
+			c.cur = &Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est, F: identity4(), Start: true}
 		}
 		prev = e.after
 	}
@@ -104,7 +104,8 @@ func (c *stepCollector) emit() {
 	}
 }
 
-var identity4 = [16]float64{1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1}
+// identity4 returns the 4x4 identity, row-major.
+func identity4() [16]float64 { return [16]float64{1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1} }
 
 // StepStore holds a run's steps in order; a long run keeps them on disk.
 type StepStore interface {

@@ -167,3 +167,18 @@ func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
 	}
 	return nil
 }
+
+// AddFix takes one absolute fix.
+func (r *Robot) AddFix(fx Fix) Result {
+	m, err := r.fixMeasurement(&fx)
+	if err != nil {
+		return refused(err)
+	}
+	res := r.next()
+	id := fx.SensorID
+	if id == "" {
+		id = "fix"
+	}
+	e := entry{kind: entMeas, t0: fx.StampNs, t1: fx.StampNs, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
+	return r.finish(r.addMeasurement(res, e, id))
+}

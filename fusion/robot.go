@@ -164,20 +164,5 @@ func (r *Robot) start(t int64) {
 	r.base = checkpoint{est: r.f.State(), offsetReady: r.ready}
 }
 
-// AddFix takes one absolute fix.
-func (r *Robot) AddFix(fx Fix) Result {
-	m, err := r.fixMeasurement(&fx)
-	if err != nil {
-		return refused(err)
-	}
-	res := r.next()
-	id := fx.SensorID
-	if id == "" {
-		id = "fix"
-	}
-	e := entry{kind: entMeas, t0: fx.StampNs, t1: fx.StampNs, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
-	return r.finish(r.addMeasurement(res, e, id))
-}
-
 // Sequence returns the arrival sequence number of the last input taken.
 func (r *Robot) Sequence() uint64 { return r.seq }

@@ -169,25 +169,3 @@ func (r *Robot) Stats() Stats {
 		WindowEntries: len(r.live()),
 	}
 }
-
-const (
-	// TrustNoOdometry: no odometry has arrived yet.
-	TrustNoOdometry TrustReason = 1 << iota
-	// TrustPositionUncertain: the 95% position radius is above
-	// trust.max_position95_m.
-	TrustPositionUncertain
-	// TrustHeadingUncertain: the heading standard deviation is above
-	// trust.max_heading_std_rad.
-	TrustHeadingUncertain
-	// TrustInconsistent: the NIS sum of the last trust.nis_window applied
-	// fixes, or of the last trust.nis_window IMU headings, rose above its
-	// trust.consistency_probability chi-square quantile and has not yet
-	// fallen back to its median: the covariance claims more than the
-	// sensors bear out.
-	TrustInconsistent
-	// TrustFixesRefused: trust.refused_in_a_row fixes in a row were gated:
-	// the robot may have been moved.
-	TrustFixesRefused
-	// TrustNumericalFault: the last update failed numerically.
-	TrustNumericalFault
-)

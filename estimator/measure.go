@@ -70,13 +70,13 @@ func (k Kind) String() string {
 	case KindHeading:
 		return "heading"
 	case KindRangeBearing:
-		return "range-bearing"
+		return "range_bearing"
 	case KindRange:
 		return "range"
 	case KindBearing:
 		return "bearing"
 	case KindIMUHeading:
-		return "imu-heading"
+		return "imu_heading"
 	}
 	return fmt.Sprintf("kind(%d)", uint8(k))
 }

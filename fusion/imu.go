@@ -39,6 +39,17 @@ func (r *Robot) imuMeasurement(z, v float64) (estimator.Measurement, error) {
 	return estimator.Measurement{Kind: estimator.KindIMUHeading, Z: [3]float64{estimator.Wrap(z)}, R: [9]float64{v}}, nil
 }
 
+// odometryHeading applies the absolute IMU heading z that came with the
+// odometry sample of res, at the interval's end t.
+func (r *Robot) odometryHeading(res *Result, t int64, z float64) {
+	m, err := r.imuMeasurement(z, 0)
+	if err != nil {
+		return
+	}
+	ins := r.insert(entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())})
+	r.decideMeas(res, ins, imuSensor)
+}
+
 // AddHeading takes one absolute IMU heading sample.
 func (r *Robot) AddHeading(h Heading) Result {
 	if r.cfg.IMU != IMUAbsolute {

@@ -146,11 +146,7 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 	res.Verdict = VerdictApplied
 	r.stats.count(VerdictApplied, true)
 	if imu != nil && r.cfg.IMU == IMUAbsolute {
-		m, merr := r.imuMeasurement(*imu, 0)
-		if merr == nil {
-			ins := r.insert(entry{kind: entMeas, t0: e.t1, t1: e.t1, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())})
-			r.decideMeas(&res, ins, imuSensor)
-		}
+		r.odometryHeading(&res, e.t1, *imu)
 	}
 	r.releaseHeld(&res)
 	r.trim()

@@ -260,7 +260,7 @@ func encEntry(e *wenc, en *entry) {
 	e.message(7, func(e *wenc) { encMeasurement(e, &en.meas) })
 	e.bool(8, en.imu)
 	e.int(9, int64(en.sensor))
-	e.doubles(10, []float64{en.pose.X, en.pose.Y, en.pose.Heading})
+	e.pose(10, en.pose)
 	e.doubles(11, en.poseCov[:])
 	e.message(12, func(e *wenc) { encCheckpoint(e, &en.after) })
 	e.double(13, en.out.NIS)
@@ -271,7 +271,6 @@ func encEntry(e *wenc, en *entry) {
 
 func decEntry(d *wdec) entry {
 	var en entry
-	var v3 [3]float64
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
@@ -283,8 +282,7 @@ func decEntry(d *wdec) entry {
 		case 4:
 			en.seq = d.uint(num)
 		case 5:
-			d.doubles(num, v3[:])
-			en.step = estimator.Step{ForwardM: v3[0], LeftM: v3[1], TurnRad: v3[2]}
+			en.step = d.step(num)
 		case 6:
 			d.doubles(num, en.cov[:])
 		case 7:
@@ -294,8 +292,7 @@ func decEntry(d *wdec) entry {
 		case 9:
 			en.sensor = int(int32(d.int(num)))
 		case 10:
-			d.doubles(num, v3[:])
-			en.pose = estimator.Pose{X: v3[0], Y: v3[1], Heading: v3[2]}
+			en.pose = d.pose(num)
 		case 11:
 			d.doubles(num, en.poseCov[:])
 		case 12:
@@ -317,7 +314,7 @@ func decEntry(d *wdec) entry {
 
 func encMeasurement(e *wenc, m *estimator.Measurement) {
 	e.uint(1, uint64(m.Kind))
-	e.doubles(2, []float64{m.Mount.X, m.Mount.Y, m.Mount.Heading})
+	e.pose(2, m.Mount)
 	e.double(3, m.LandmarkX)
 	e.double(4, m.LandmarkY)
 	e.doubles(5, m.Z[:])
@@ -326,14 +323,12 @@ func encMeasurement(e *wenc, m *estimator.Measurement) {
 
 func decMeasurement(d *wdec) estimator.Measurement {
 	var m estimator.Measurement
-	var v3 [3]float64
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
 			m.Kind = estimator.Kind(d.uint(num))
 		case 2:
-			d.doubles(num, v3[:])
-			m.Mount = estimator.Pose{X: v3[0], Y: v3[1], Heading: v3[2]}
+			m.Mount = d.pose(num)
 		case 3:
 			m.LandmarkX = d.double(num)
 		case 4:
@@ -448,24 +443,21 @@ func decWindow(d *wdec, w *nisWindow) {
 
 func encCandidate(e *wenc, c *candidate) {
 	e.int(1, c.stamp)
-	e.doubles(2, []float64{c.implied.X, c.implied.Y, c.implied.Heading})
-	e.doubles(3, []float64{c.corr.X, c.corr.Y, c.corr.Heading})
+	e.pose(2, c.implied)
+	e.pose(3, c.corr)
 	e.doubles(4, c.cov[:])
 }
 
 func decCandidate(d *wdec) candidate {
 	var c candidate
-	var v3 [3]float64
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
 			c.stamp = d.int(num)
 		case 2:
-			d.doubles(num, v3[:])
-			c.implied = estimator.Pose{X: v3[0], Y: v3[1], Heading: v3[2]}
+			c.implied = d.pose(num)
 		case 3:
-			d.doubles(num, v3[:])
-			c.corr = estimator.Pose{X: v3[0], Y: v3[1], Heading: v3[2]}
+			c.corr = d.pose(num)
 		case 4:
 			d.doubles(num, c.cov[:])
 		default:

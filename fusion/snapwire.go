@@ -6,6 +6,7 @@ import (
 	"math"
 
 	"google.golang.org/protobuf/encoding/protowire"
+	"reckon.example/estimator"
 )
 
 // The snapshot is written and read by hand in the protocol buffer wire
@@ -206,4 +207,24 @@ func (d *wdec) message(num protowire.Number, body func(*wdec)) {
 	if sub.err != nil && d.err == nil {
 		d.err = sub.err
 	}
+}
+
+// pose writes a pose as a packed repeated double (x, y, heading).
+func (e *wenc) pose(n protowire.Number, p estimator.Pose) {
+	v := [3]float64{p.X, p.Y, p.Heading}
+	e.doubles(n, v[:])
+}
+
+// pose reads a pose written by wenc.pose.
+func (d *wdec) pose(num protowire.Number) estimator.Pose {
+	var v [3]float64
+	d.doubles(num, v[:])
+	return estimator.Pose{X: v[0], Y: v[1], Heading: v[2]}
+}
+
+// step reads a body step (forward, left, turn) as a packed repeated double.
+func (d *wdec) step(num protowire.Number) estimator.Step {
+	var v [3]float64
+	d.doubles(num, v[:])
+	return estimator.Step{ForwardM: v[0], LeftM: v[1], TurnRad: v[2]}
 }

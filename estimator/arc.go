@@ -23,7 +23,7 @@ func (s Step) Scale(f float64) Step {
 }
 
 // seriesBelow is the half-turn magnitude below which sin(h)/h and its
-// derivative use their Taylor series (DESIGN.md: about 1e-4).
+// derivative use their Taylor series (DEVELOPERS.md, "Design: Motion prediction": about 1e-4).
 const seriesBelow = 1e-4
 
 // arcFactors returns s = sin(h)/h and ds/d(turn) for h = turn/2.

@@ -83,7 +83,7 @@ func integrate(p Pose, s Step, steps int) Pose {
 }
 
 // TestComposition: a constant twist split into fractions composes to the
-// same pose (DESIGN.md; exact for constant-twist motion) to 1e-12.
+// same pose (DEVELOPERS.md, "Design: Motion prediction"; exact for constant-twist motion) to 1e-12.
 func TestComposition(t *testing.T) {
 	rng := rand.New(rand.NewPCG(2, 2))
 	for trial := 0; trial < 200; trial++ {

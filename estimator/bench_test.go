@@ -24,7 +24,7 @@ func BenchmarkUpdate(b *testing.B) {
 			b.ReportAllocs()
 			for b.Loop() {
 				f.SetState(&start)
-				_, _ = f.Update(&m, 0)
+				_, _ = f.Update(&m, NoGate())
 			}
 		})
 	}

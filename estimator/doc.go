@@ -26,5 +26,8 @@
 //     arrays on the Filter, checked in tests against gonum mat.
 //
 // Dimension misuse (a state size other than 3 or 4, an unknown measurement
-// kind) panics; bad data is an error value.
+// kind) panics, with ErrShape where sizes do not fit; bad data is an error
+// value (a covariance of the wrong size wraps ErrShape). Results go into a
+// dst argument or the receiver, as in gonum: StepNoise, TimeNoise,
+// Sandwich, RTSStep, State.CovarianceInto.
 package estimator

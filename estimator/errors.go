@@ -14,4 +14,8 @@ var (
 	// ErrDegenerate reports a measurement whose model has no defined
 	// Jacobian at the current state, such as a landmark at the sensor itself.
 	ErrDegenerate = errors.New("measurement is degenerate at this state")
+	// ErrShape reports matrices or vectors whose sizes do not fit, such as
+	// a covariance with the wrong number of entries. Misuse by the caller
+	// panics with it; data of the wrong size is an error wrapping it.
+	ErrShape = errors.New("estimator: dimension mismatch")
 )

@@ -37,19 +37,19 @@ func randomFilter(t testing.TB, rng *rand.Rand, n int) *Filter {
 }
 
 func stateDense(s *State) *mat.Dense {
-	d := mat.NewDense(s.N, s.N, nil)
-	for i := 0; i < s.N; i++ {
-		for j := 0; j < s.N; j++ {
-			d.Set(i, j, s.P[i*4+j])
+	d := mat.NewDense(s.n, s.n, nil)
+	for i := 0; i < s.n; i++ {
+		for j := 0; j < s.n; j++ {
+			d.Set(i, j, s.p[i*4+j])
 		}
 	}
 	return d
 }
 
 func flatP(s *State) []float64 {
-	out := make([]float64, 0, s.N*s.N)
-	for i := 0; i < s.N; i++ {
-		out = append(out, s.P[i*4:i*4+s.N]...)
+	out := make([]float64, 0, s.n*s.n)
+	for i := 0; i < s.n; i++ {
+		out = append(out, s.p[i*4:i*4+s.n]...)
 	}
 	return out
 }
@@ -102,7 +102,7 @@ func TestPredictMatchesGonum(t *testing.T) {
 // plausible covariance.
 func measurementCases(rng *rand.Rand) []Measurement {
 	var out []Measurement
-	for _, k := range Kinds {
+	for _, k := range Kinds() {
 		m := Measurement{Kind: k, Mount: Pose{0.12, -0.05, 0.3}, LandmarkX: 3, LandmarkY: -2}
 		d := k.Dim()
 		for i := 0; i < d; i++ {
@@ -128,7 +128,7 @@ func TestMeasurementConformance(t *testing.T) {
 			for trial := 0; trial < 10; trial++ {
 				f := randomFilter(t, rng, 4)
 				st := f.State()
-				x := st.X[:4]
+				x := st.x[:4]
 				z0, H, err := m.Predicted(x)
 				if err != nil {
 					t.Fatal(err)
@@ -152,7 +152,7 @@ func TestMeasurementConformance(t *testing.T) {
 					mm.Z[i] = z0[i] + 0.05*rng.NormFloat64()
 				}
 				trBefore := mat.Trace(stateDense(&st))
-				out, err := f.Update(&mm, 0)
+				out, err := f.Update(&mm, NoGate())
 				if err != nil {
 					t.Fatal(err)
 				}
@@ -180,7 +180,7 @@ func TestUpdateMatchesGonum(t *testing.T) {
 	for _, m := range measurementCases(rng) {
 		f := randomFilter(t, rng, 4)
 		st := f.State()
-		z0, Hs, _ := m.Predicted(st.X[:4])
+		z0, Hs, _ := m.Predicted(st.x[:4])
 		d := m.Kind.Dim()
 		H := mat.NewDense(d, 4, Hs)
 		R := mat.NewDense(d, d, nil)
@@ -216,7 +216,7 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		siv.MulVec(&Sinv, v)
 		nis := mat.Dot(v, &siv)
 
-		out, err := f.Update(&m, 0)
+		out, err := f.Update(&m, NoGate())
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -228,12 +228,12 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		var dx mat.VecDense
 		dx.MulVec(&K, v)
 		for i := 0; i < 4; i++ {
-			w := st.X[i] + dx.AtVec(i)
+			w := st.x[i] + dx.AtVec(i)
 			if i >= IHead {
 				w = Wrap(w)
 			}
-			if math.Abs(after.X[i]-w) > 1e-12 {
-				t.Errorf("%s: mean[%d] %g, gonum %g", m.Kind, i, after.X[i], w)
+			if math.Abs(after.x[i]-w) > 1e-12 {
+				t.Errorf("%s: mean[%d] %g, gonum %g", m.Kind, i, after.x[i], w)
 			}
 		}
 	}
@@ -261,15 +261,15 @@ func TestGatedAndFailedUpdatesChangeNothing(t *testing.T) {
 		t.Errorf("far fix: outcome %+v, err %v; want gated", out, err)
 	}
 	nan := Measurement{Kind: KindHeading, Z: [3]float64{math.NaN()}, R: [9]float64{0.01}}
-	if _, err := f.Update(&nan, 0); !errors.Is(err, ErrNotFinite) {
+	if _, err := f.Update(&nan, NoGate()); !errors.Is(err, ErrNotFinite) {
 		t.Errorf("NaN fix: err %v", err)
 	}
 	neg := Measurement{Kind: KindHeading, Z: [3]float64{0.1}, R: [9]float64{-100}}
-	if _, err := f.Update(&neg, 0); !errors.Is(err, ErrNotPositiveDefinite) {
+	if _, err := f.Update(&neg, NoGate()); !errors.Is(err, ErrNotPositiveDefinite) {
 		t.Errorf("negative variance: err %v", err)
 	}
-	lm := Measurement{Kind: KindRange, LandmarkX: before.X[0], LandmarkY: before.X[1], Z: [3]float64{1}, R: [9]float64{0.01}}
-	if _, err := f.Update(&lm, 0); !errors.Is(err, ErrDegenerate) {
+	lm := Measurement{Kind: KindRange, LandmarkX: before.x[0], LandmarkY: before.x[1], Z: [3]float64{1}, R: [9]float64{0.01}}
+	if _, err := f.Update(&lm, NoGate()); !errors.Is(err, ErrDegenerate) {
 		t.Errorf("landmark at the sensor: err %v", err)
 	}
 	if f.State() != before {
@@ -292,7 +292,7 @@ func TestInitOffset(t *testing.T) {
 	joint := mat.NewDense(4, 4, nil)
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			joint.Set(i, j, st.P[i*4+j])
+			joint.Set(i, j, st.p[i*4+j])
 		}
 	}
 	joint.Set(3, 3, r)
@@ -302,8 +302,8 @@ func TestInitOffset(t *testing.T) {
 	want.Mul(&jp, J.T())
 	after := f.State()
 	compareMat(t, "covariance after offset initialisation", 0, flatP(&after), &want, 1e-15)
-	if got := after.X[IOffset]; math.Abs(got-Wrap(z-st.X[IHead])) > 1e-15 {
-		t.Errorf("offset %g, want %g", got, Wrap(z-st.X[IHead]))
+	if got := after.x[IOffset]; math.Abs(got-Wrap(z-st.x[IHead])) > 1e-15 {
+		t.Errorf("offset %g, want %g", got, Wrap(z-st.x[IHead]))
 	}
 }
 
@@ -327,7 +327,7 @@ func TestRiccatiSteadyState(t *testing.T) {
 		f.Predict(Step{}, &zero, &qq)
 		st := f.State()
 		prior = st.Var(IHead)
-		if _, err := f.Update(&fix, 0); err != nil {
+		if _, err := f.Update(&fix, NoGate()); err != nil {
 			t.Fatal(err)
 		}
 	}
@@ -349,7 +349,7 @@ func TestNoAllocations(t *testing.T) {
 	allocs := testing.AllocsPerRun(100, func() {
 		f.Predict(u, &cu, &q)
 		for i := range ms {
-			_, _ = f.Update(&ms[i], 1e9)
+			_, _ = f.Update(&ms[i], GateAbove(1e9))
 		}
 	})
 	if allocs != 0 {
@@ -363,7 +363,7 @@ func TestSolveSPD(t *testing.T) {
 	for _, n := range []int{3, 4} {
 		f := randomFilter(t, rng, n)
 		st := f.State()
-		a := st.P
+		a := st.p
 		var b [16]float64
 		for i := range b {
 			b[i] = rng.NormFloat64()

@@ -23,14 +23,14 @@ func FuzzUpdate(f *testing.F) {
 			flt.Predict(Step{fwd, left, turn}, &cu, &q)
 			checkState(t, flt)
 		}
-		m := Measurement{Kind: Kinds[int(kind)%len(Kinds)], Mount: Pose{0.1, 0, 0.2}, LandmarkX: 4, LandmarkY: 1}
+		m := Measurement{Kind: Kinds()[int(kind)%len(Kinds())], Mount: Pose{0.1, 0, 0.2}, LandmarkX: 4, LandmarkY: 1}
 		m.Z = [3]float64{z0, z1, z2}
 		d := m.Kind.Dim()
 		for i := 0; i < d; i++ {
 			m.R[i*3+i] = r
 		}
 		before := flt.State()
-		if _, err := flt.Update(&m, 0); err != nil {
+		if _, err := flt.Update(&m, NoGate()); err != nil {
 			if flt.State() != before {
 				t.Fatalf("failed update (%v) changed the state", err)
 			}
@@ -43,12 +43,12 @@ func FuzzUpdate(f *testing.F) {
 func checkState(t *testing.T, f *Filter) {
 	t.Helper()
 	st := f.State()
-	for i := 0; i < st.N; i++ {
-		if !finite(st.X[i]) {
-			t.Fatalf("state %d is %v", i, st.X[i])
+	for i := 0; i < st.n; i++ {
+		if !finite(st.x[i]) {
+			t.Fatalf("state %d is %v", i, st.x[i])
 		}
 	}
-	if err := CheckCovariance(flatP(&st), st.N); err != nil {
-		t.Fatalf("covariance %v: %v", st.P, err)
+	if err := CheckCovariance(flatP(&st), st.n); err != nil {
+		t.Fatalf("covariance %v: %v", st.p, err)
 	}
 }

@@ -2,6 +2,7 @@ package estimator
 
 import (
 	"bufio"
+	"errors"
 	"math"
 	"os"
 	"strconv"
@@ -46,5 +47,35 @@ func TestGateThresholdTable(t *testing.T) {
 		if _, err := GateThreshold(bad, 1); err == nil {
 			t.Errorf("probability %v accepted", bad)
 		}
+	}
+}
+
+// TestGate: the zero gate passes everything, NaN included; a gate that is
+// on passes up to its threshold.
+func TestGate(t *testing.T) {
+	if g := NoGate(); g.On() || !g.Passes(1e300) || !g.Passes(math.NaN()) {
+		t.Errorf("NoGate refuses something")
+	}
+	g, err := GateAt(0.99, 2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// chi-square 2 dof, 0.99 quantile = -2 ln(0.01) (closed form for 2 dof).
+	want := -2 * math.Log(0.01)
+	if !g.On() || math.Abs(g.Threshold()-want) > 1e-9 || !g.Passes(want-1e-6) || g.Passes(want+1e-6) || g.Passes(math.NaN()) {
+		t.Errorf("GateAt(0.99, 2) = %+v, threshold want %g", g, want)
+	}
+	if _, err := GateAt(1, 2); err == nil {
+		t.Errorf("probability 1 accepted")
+	}
+}
+
+// TestCheckCovarianceShape: a covariance of the wrong size is an ErrShape.
+func TestCheckCovarianceShape(t *testing.T) {
+	if err := CheckCovariance([]float64{1, 0, 0, 1}, 3); !errors.Is(err, ErrShape) {
+		t.Errorf("4 entries for 3x3: %v", err)
+	}
+	if err := CheckCovariance([]float64{1, 0, 0, 1}, 2); err != nil {
+		t.Errorf("identity: %v", err)
 	}
 }

@@ -75,7 +75,7 @@ func symmetrise(a []float64, n, st int) {
 // what was wrong in the error.
 func CheckCovariance(c []float64, n int) error {
 	if len(c) != n*n {
-		return errShape{n, len(c)}
+		return fmt.Errorf("covariance has %d entries, want %d (%dx%d row-major): %w", len(c), n*n, n, n, ErrShape)
 	}
 	for _, v := range c {
 		if !finite(v) {
@@ -96,12 +96,6 @@ func CheckCovariance(c []float64, n int) error {
 		return ErrNotPositiveDefinite
 	}
 	return nil
-}
-
-type errShape struct{ n, got int }
-
-func (e errShape) Error() string {
-	return fmt.Sprintf("covariance has %d entries, want %d (%dx%d row-major)", e.got, e.n*e.n, e.n, e.n)
 }
 
 type errAsymmetric struct{ i, j int }

@@ -8,7 +8,7 @@ import (
 // Kind says what a Measurement measures and so its dimension.
 type Kind uint8
 
-// The measurement kinds (DESIGN.md, "Measurement updates"). A sensor is
+// The measurement kinds (DEVELOPERS.md, "Design: Measurement updates"). A sensor is
 // mounted at body pose Mount; z is what the sensor reports.
 const (
 	// KindPose: the sensor's field pose (x, y, heading) = pose (+) Mount.
@@ -28,8 +28,10 @@ const (
 	KindIMUHeading
 )
 
-// Kinds lists every measurement kind, for tests and conformance suites.
-var Kinds = []Kind{KindPose, KindPosition, KindHeading, KindRangeBearing, KindRange, KindBearing, KindIMUHeading}
+// Kinds returns every measurement kind, for tests and conformance suites.
+func Kinds() []Kind {
+	return []Kind{KindPose, KindPosition, KindHeading, KindRangeBearing, KindRange, KindBearing, KindIMUHeading}
+}
 
 // Dim returns the dimension of the kind's measurement vector.
 func (k Kind) Dim() int {
@@ -68,13 +70,13 @@ func (k Kind) String() string {
 	case KindHeading:
 		return "heading"
 	case KindRangeBearing:
-		return "range-bearing"
+		return "range_bearing"
 	case KindRange:
 		return "range"
 	case KindBearing:
 		return "bearing"
 	case KindIMUHeading:
-		return "imu-heading"
+		return "imu_heading"
 	}
 	return fmt.Sprintf("kind(%d)", uint8(k))
 }

@@ -4,7 +4,7 @@ import "math"
 
 // Row is one linear reading of a body step u = (forward, left, turn):
 // Coef . u = Value, with variance Var of Value. A wheel, an IMU rotation or a
-// no-side-slip constraint each give one row (DESIGN.md, "Motion prediction").
+// no-side-slip constraint each give one row (DEVELOPERS.md, "Design: Motion prediction").
 type Row struct {
 	Coef  [3]float64
 	Value float64
@@ -20,12 +20,13 @@ func WheelCoef(xM, yM, dirRad float64) [3]float64 {
 	return [3]float64{c, s, xM*s - yM*c}
 }
 
-// TurnCoef is the row of a source that reads the turn directly (an IMU's
-// heading difference over the interval).
-var TurnCoef = [3]float64{0, 0, 1}
+// TurnCoef returns the row coefficients of a source that reads the turn
+// directly (an IMU's heading difference over the interval).
+func TurnCoef() [3]float64 { return [3]float64{0, 0, 1} }
 
-// LeftCoef is the row of a no-side-slip constraint: leftward travel is zero.
-var LeftCoef = [3]float64{0, 1, 0}
+// LeftCoef returns the row coefficients of a no-side-slip constraint:
+// leftward travel is zero.
+func LeftCoef() [3]float64 { return [3]float64{0, 1, 0} }
 
 // StepSolution is the weighted least-squares body step of a set of rows.
 type StepSolution struct {

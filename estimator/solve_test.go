@@ -113,7 +113,7 @@ func TestSolveStepUnobservable(t *testing.T) {
 	if err := SolveStep(rows, 1e-12, &sol); !errors.Is(err, ErrUnobservable) {
 		t.Errorf("parallel wheels only: err %v, want ErrUnobservable", err)
 	}
-	rows[2] = Row{Coef: LeftCoef, Var: 1e-6}
+	rows[2] = Row{Coef: LeftCoef(), Var: 1e-6}
 	if err := SolveStep(rows, 1e-12, &sol); err != nil {
 		t.Errorf("with the no-side-slip row: %v", err)
 	}

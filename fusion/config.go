@@ -3,41 +3,11 @@ package fusion
 import (
 	"errors"
 	"fmt"
-	"math"
 
 	"gonum.org/v1/gonum/mat"
 
 	"reckon.example/estimator"
 )
-
-// IMUMode says how a robot uses its IMU's heading.
-type IMUMode uint8
-
-const (
-	// IMUNone: no IMU; the state is (x, y, heading).
-	IMUNone IMUMode = iota
-	// IMUAbsolute: the IMU's heading updates the estimate through the
-	// IMU offset state (x, y, heading, imu_offset). The default choice when
-	// the wheels determine rotation.
-	IMUAbsolute
-	// IMURotation: the IMU's heading difference over each odometry interval
-	// is the turn row of the body step (for layouts whose wheels cannot see
-	// rotation). The IMU heading must come with each odometry sample.
-	IMURotation
-)
-
-// String names the mode as the configuration file spells it.
-func (m IMUMode) String() string {
-	switch m {
-	case IMUNone:
-		return "none"
-	case IMUAbsolute:
-		return "absolute"
-	case IMURotation:
-		return "rotation"
-	}
-	return fmt.Sprintf("imu_mode(%d)", uint8(m))
-}
 
 // Wheel is an encoder wheel's mounting on the robot.
 type Wheel struct {
@@ -57,8 +27,8 @@ type Wheel struct {
 }
 
 // Noise holds the noise model. Every variance is a rate per distance, per
-// angle or per second, so that it adds over sub-intervals (DESIGN.md,
-// "Process noise"). Zero fields take the defaults in DefaultNoise.
+// angle or per second, so that it adds over sub-intervals (DEVELOPERS.md,
+// "Design: Process noise"). Zero fields take the defaults of DefaultNoise.
 type Noise struct {
 	// WheelVarM2PerM: variance of a wheel's reading per metre it rolls.
 	WheelVarM2PerM float64
@@ -83,21 +53,34 @@ type Noise struct {
 	IMUOffsetVarRad2PerS float64
 }
 
-// DefaultNoise is the noise model used where a Noise field is zero. It
+// stepNoise writes the covariance of a body step the robot computed itself.
+func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step) {
+	estimator.StepNoise(dst, s, n.StepForwardVarM2PerM, n.StepLeftVarM2PerM, n.StepTurnVarRad2PerRad)
+}
+
+// timeNoise writes the time-driven process noise of dtS seconds for an
+// n-state filter.
+func (n *Noise) timeNoise(dst *[4]float64, states int, dtS float64) {
+	estimator.TimeNoise(dst, states, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+}
+
+// DefaultNoise returns the noise model used where a Noise field is zero. It
 // suits small robots with free-rolling encoder wheels and a MEMS gyro
 // (common practice: about half a percent of travel, a few milliradians of
 // IMU heading noise).
-var DefaultNoise = Noise{
-	WheelVarM2PerM:        2.5e-5,
-	LateralSlipVarM2PerM:  1e-4,
-	TurnVarRad2PerRad:     1e-5,
-	HeadingVarRad2PerS:    1e-7,
-	StepForwardVarM2PerM:  1e-4,
-	StepLeftVarM2PerM:     1e-4,
-	StepTurnVarRad2PerRad: 1e-4,
-	IMUHeadingVarRad2:     2.5e-5,
-	IMUTurnVarRad2PerRad:  1e-6,
-	IMUOffsetVarRad2PerS:  1e-7,
+func DefaultNoise() Noise {
+	return Noise{
+		WheelVarM2PerM:        2.5e-5,
+		LateralSlipVarM2PerM:  1e-4,
+		TurnVarRad2PerRad:     1e-5,
+		HeadingVarRad2PerS:    1e-7,
+		StepForwardVarM2PerM:  1e-4,
+		StepLeftVarM2PerM:     1e-4,
+		StepTurnVarRad2PerRad: 1e-4,
+		IMUHeadingVarRad2:     2.5e-5,
+		IMUTurnVarRad2PerRad:  1e-6,
+		IMUOffsetVarRad2PerS:  1e-7,
+	}
 }
 
 // Recovery is the move-recovery policy: Count consecutive refused pose
@@ -190,7 +173,7 @@ func (c Config) withDefaults() Config {
 			*v = d
 		}
 	}
-	n, d := &c.Noise, DefaultNoise
+	n, d := &c.Noise, DefaultNoise()
 	def(&n.WheelVarM2PerM, d.WheelVarM2PerM)
 	def(&n.LateralSlipVarM2PerM, d.LateralSlipVarM2PerM)
 	def(&n.TurnVarRad2PerRad, d.TurnVarRad2PerRad)
@@ -239,19 +222,33 @@ func (c Config) withDefaults() Config {
 // wrapping ErrConfig that names the offending field.
 func (c Config) Validate() error {
 	c = c.withDefaults()
-	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	for _, check := range []func() error{c.checkWheels, c.checkNoise, c.checkLimits, c.checkStart, c.checkLandmarks, c.checkLayout} {
+		if err := check(); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// checkWheels checks each wheel's mounting and counter.
+func (c *Config) checkWheels() error {
 	for i, w := range c.Wheels {
 		f := fmt.Sprintf("wheels[%d]", i)
-		if !finite(w.XM) || !finite(w.YM) || !finite(w.DirectionRad) {
+		if !finiteAll(w.XM, w.YM, w.DirectionRad) {
 			return cfgErr(f, "position and direction must be finite")
 		}
-		if w.CountsPerM < 0 || !finite(w.CountsPerM) {
+		if w.CountsPerM < 0 || !finiteAll(w.CountsPerM) {
 			return cfgErr(f+".counts_per_m", "%v must be positive (or 0 when samples carry metres)", w.CountsPerM)
 		}
 		if w.CounterBits < 0 || w.CounterBits > 64 || (w.CounterBits > 0 && w.CounterBits < 8) {
 			return cfgErr(f+".counter_bits", "%d must be 0 (no wrap) or 8 to 64", w.CounterBits)
 		}
 	}
+	return nil
+}
+
+// checkNoise checks that every noise rate is a positive finite variance.
+func (c *Config) checkNoise() error {
 	noise := []struct {
 		name string
 		v    float64
@@ -268,10 +265,16 @@ func (c Config) Validate() error {
 		{"noise.imu_offset_var_rad2_per_s", c.Noise.IMUOffsetVarRad2PerS},
 	}
 	for _, n := range noise {
-		if !(n.v > 0) || !finite(n.v) {
+		if !(n.v > 0) || !finiteAll(n.v) {
 			return cfgErr(n.name, "%v must be a positive finite variance rate", n.v)
 		}
 	}
+	return nil
+}
+
+// checkLimits checks the IMU mode, the probabilities, the counts and sizes,
+// and the positive limits.
+func (c *Config) checkLimits() error {
 	if c.IMU > IMURotation {
 		return cfgErr("imu_mode", "%d is not none, absolute or rotation", c.IMU)
 	}
@@ -309,11 +312,16 @@ func (c Config) Validate() error {
 		v    float64
 	}{{"max_speed_m_per_s", c.MaxSpeedMPerS}, {"max_turn_rate_rad_per_s", c.MaxTurnRateRadPerS},
 		{"trust.max_position95_m", c.Trust.MaxPosition95M}, {"trust.max_heading_std_rad", c.Trust.MaxHeadingStdRad}} {
-		if !(p.v > 0) || !finite(p.v) {
+		if !(p.v > 0) || !finiteAll(p.v) {
 			return cfgErr(p.name, "%v must be positive", p.v)
 		}
 	}
-	if !finite(c.StartPose.X) || !finite(c.StartPose.Y) || !finite(c.StartPose.Heading) {
+	return nil
+}
+
+// checkStart checks the start pose and its covariance.
+func (c *Config) checkStart() error {
+	if !finiteAll(c.StartPose.X, c.StartPose.Y, c.StartPose.Heading) {
 		return cfgErr("start_pose", "must be finite")
 	}
 	if err := estimator.CheckCovariance(c.StartCov, 3); err != nil {
@@ -322,6 +330,12 @@ func (c Config) Validate() error {
 	if err := checkVariances(c.StartCov, 3, poseAngle); err != nil {
 		return cfgErr("start_covariance", "%v", err)
 	}
+	return nil
+}
+
+// checkLandmarks checks that landmark IDs are set and unique and their
+// positions finite.
+func (c *Config) checkLandmarks() error {
 	seen := map[string]bool{}
 	for i, l := range c.Landmarks {
 		f := fmt.Sprintf("landmarks[%d]", i)
@@ -332,11 +346,11 @@ func (c Config) Validate() error {
 			return cfgErr(f+".id", "%q appears twice", l.ID)
 		}
 		seen[l.ID] = true
-		if !finite(l.XM) || !finite(l.YM) {
+		if !finiteAll(l.XM, l.YM) {
 			return cfgErr(f, "position must be finite")
 		}
 	}
-	return c.checkLayout()
+	return nil
 }
 
 // layoutRows returns the structural rows of the layout (coefficients only).
@@ -346,10 +360,10 @@ func (c *Config) layoutRows() [][3]float64 {
 		rows = append(rows, estimator.WheelCoef(w.XM, w.YM, w.DirectionRad))
 	}
 	if c.IMU == IMURotation {
-		rows = append(rows, estimator.TurnCoef)
+		rows = append(rows, estimator.TurnCoef())
 	}
 	if c.NoSideSlip {
-		rows = append(rows, estimator.LeftCoef)
+		rows = append(rows, estimator.LeftCoef())
 	}
 	return rows
 }

@@ -5,7 +5,6 @@ import (
 	"math"
 	"testing"
 
-	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat/distuv"
 
 	"reckon.example/estimator"
@@ -16,22 +15,11 @@ import (
 // poseNEES returns the normalised estimation error squared of the pose part:
 // e^T P^-1 e with e = truth - estimate (heading wrapped).
 func poseNEES(t *testing.T, p fusion.FusedPose, truth estimator.Pose) float64 {
-	e := mat.NewVecDense(3, []float64{truth.X - p.Pose.X, truth.Y - p.Pose.Y, estimator.Wrap(truth.Heading - p.Pose.Heading)})
-	c := mat.NewSymDense(3, nil)
-	for i := 0; i < 3; i++ {
-		for j := i; j < 3; j++ {
-			c.SetSym(i, j, p.Cov[i*3+j])
-		}
+	q, err := estimator.PoseNEES(p.Pose, &p.Cov, truth)
+	if err != nil {
+		t.Fatalf("covariance %v: %v", p.Cov, err)
 	}
-	var ch mat.Cholesky
-	if !ch.Factorize(c) {
-		t.Fatalf("covariance %v is not positive definite", p.Cov)
-	}
-	var x mat.VecDense
-	if err := ch.SolveVecTo(&x, e); err != nil {
-		t.Fatal(err)
-	}
-	return mat.Dot(e, &x)
+	return q
 }
 
 // TestNEESConsistency: over Monte Carlo runs of the simulator, whose noise is

@@ -19,6 +19,16 @@
 // odometry is held (bounded) until odometry reaches it. The result equals
 // processing the same samples in stamp order.
 //
+// # Files
+//
+// robot.go (the Robot and its inputs), odometry.go (odometry to body
+// steps), imu.go (IMU modes, headings, the offset's initialisation and the
+// IMU gate), fixes.go (fixes to measurements and their verdicts),
+// reseed.go, window.go (the history window with the hold queue),
+// recovery.go (move recovery), trust.go, stats.go, query.go (Pose, PoseAt),
+// smooth.go, snapshot.go and snapwire.go (the versioned snapshot),
+// labels.go (one label per enum value), config.go, sample.go.
+//
 // # Invariants
 //
 //   - A Robot is a deterministic state machine: no goroutines, no clocks, no

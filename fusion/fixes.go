@@ -6,23 +6,6 @@ import (
 	"reckon.example/estimator"
 )
 
-// imuSensor is the statistics name of the IMU.
-const imuSensor = "imu"
-
-// imuMeasurement returns the absolute IMU heading measurement.
-func (r *Robot) imuMeasurement(z, v float64) (estimator.Measurement, error) {
-	if v == 0 {
-		v = r.cfg.Noise.IMUHeadingVarRad2
-	}
-	if !finiteAll(z) {
-		return estimator.Measurement{}, badf("heading_rad is %v", z)
-	}
-	if !finiteAll(v) || v < minVar || v > maxAngleVar {
-		return estimator.Measurement{}, badf("var_rad2 %v is outside the plausible [%g, %g]", v, minVar, maxAngleVar)
-	}
-	return estimator.Measurement{Kind: estimator.KindIMUHeading, Z: [3]float64{estimator.Wrap(z)}, R: [9]float64{v}}, nil
-}
-
 // fixMeasurement validates a fix and turns it into a measurement.
 func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, error) {
 	m := estimator.Measurement{Mount: f.Mount}
@@ -49,29 +32,8 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, error) {
 			return m, badf("heading fix heading_rad %v is not finite", f.HeadingRad)
 		}
 	case FixLandmark:
-		l, ok := r.landmarks[f.LandmarkID]
-		if !ok {
-			return m, fmt.Errorf("%w: landmark_id %q is not in the robot's landmark map", ErrUnknownLandmark, f.LandmarkID)
-		}
-		m.LandmarkX, m.LandmarkY = l[0], l[1]
-		switch {
-		case f.RangeM != nil && f.BearingRad != nil:
-			m.Kind = estimator.KindRangeBearing
-			m.Z = [3]float64{*f.RangeM, estimator.Wrap(*f.BearingRad)}
-		case f.RangeM != nil:
-			m.Kind = estimator.KindRange
-			m.Z = [3]float64{*f.RangeM}
-		case f.BearingRad != nil:
-			m.Kind = estimator.KindBearing
-			m.Z = [3]float64{estimator.Wrap(*f.BearingRad)}
-		default:
-			return m, badf("landmark fix needs range_m, bearing_rad or both")
-		}
-		if f.RangeM != nil && (!finiteAll(*f.RangeM) || *f.RangeM <= 0) {
-			return m, badf("range_m %v must be positive", *f.RangeM)
-		}
-		if f.BearingRad != nil && !finiteAll(*f.BearingRad) {
-			return m, badf("bearing_rad %v is not finite", *f.BearingRad)
+		if err := r.landmarkMeasurement(f, &m); err != nil {
+			return m, err
 		}
 	default:
 		return m, badf("fix kind %d is not pose, position, heading or landmark", f.Kind)
@@ -118,16 +80,105 @@ func checkVariances(cov []float64, d int, angle func(i int) bool) error {
 
 func poseAngle(i int) bool { return i == 2 }
 
-// checkPose reports what is wrong with a reseed before it is taken.
-func checkPose(pose estimator.Pose, cov []float64) error {
-	if !finiteAll(pose.X, pose.Y, pose.Heading) {
-		return fmt.Errorf("%w: pose is not finite", ErrBadSample)
+// decideMeas turns the outcome of an inserted measurement into its verdict,
+// taking it back if it failed.
+func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
+	e := &r.live()[ins.at]
+	res.NIS, res.Dim = e.out.NIS, e.out.Dim
+	switch {
+	case e.failed:
+		err := fmt.Errorf("%w: %w", ErrBadSample, r.errOf(e.seq))
+		idx := e.sensor
+		r.takeBack(ins)
+		res.Verdict, res.Err = VerdictInvalid, err
+		r.stats.count(VerdictInvalid, false)
+		r.stats.sensorVerdict(idx, VerdictInvalid, 0, 0)
+		r.trust.fault = true
+	case e.out.Gated:
+		res.Verdict = VerdictGated
+		res.Events = append(res.Events, Event{Kind: EventFixRefused, StampNs: e.t1, SensorID: sensor, Value: e.out.NIS,
+			Detail: fmt.Sprintf("NIS %.1f above the %d-dof gate %.1f", e.out.NIS, e.out.Dim, r.gates.For(e.out.Dim).Threshold())})
+		r.stats.count(VerdictGated, false)
+		r.stats.sensorVerdict(e.sensor, VerdictGated, e.out.NIS, 0)
+		if !e.imu {
+			r.trust.refusedRun++
+			r.considerRecovery(res, ins.at)
+		}
+	default:
+		res.Verdict = VerdictApplied
+		r.stats.count(VerdictApplied, false)
+		if e.initialised {
+			r.stats.sensorVerdict(e.sensor, VerdictApplied, 0, 0)
+		} else {
+			r.stats.sensorVerdict(e.sensor, VerdictApplied, e.out.NIS, e.out.Dim)
+			if e.imu {
+				r.trust.imu.add(e.out.NIS, e.out.Dim)
+			} else {
+				r.trust.fixes.add(e.out.NIS, e.out.Dim)
+			}
+		}
+		if !e.imu {
+			r.trust.refusedRun = 0
+			r.trust.fault = false
+			r.cands = r.cands[:0]
+		}
 	}
-	if err := estimator.CheckCovariance(cov, 3); err != nil {
-		return fmt.Errorf("%w: cov: %v", ErrBadSample, err)
+}
+
+// applyMeas applies a measurement entry to the filter: the first IMU
+// heading since the pose was set initialises the IMU offset, every other
+// measurement updates through its gate.
+func (r *Robot) applyMeas(e *entry) error {
+	e.out = estimator.Outcome{Dim: e.meas.Kind.Dim()}
+	e.initialised = e.imu && !r.ready
+	if e.initialised {
+		return r.initOffset(e)
 	}
-	if err := checkVariances(cov, 3, poseAngle); err != nil {
-		return fmt.Errorf("%w: cov: %v", ErrBadSample, err)
+	var err error
+	e.out, err = r.f.Update(&e.meas, r.gateFor(e))
+	return err
+}
+
+// landmarkMeasurement fills m with a landmark fix's range and/or bearing.
+func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
+	l, ok := r.landmarks[f.LandmarkID]
+	if !ok {
+		return fmt.Errorf("%w: landmark_id %q is not in the robot's landmark map", ErrUnknownLandmark, f.LandmarkID)
+	}
+	m.LandmarkX, m.LandmarkY = l[0], l[1]
+	switch {
+	case f.RangeM != nil && f.BearingRad != nil:
+		m.Kind = estimator.KindRangeBearing
+		m.Z = [3]float64{*f.RangeM, estimator.Wrap(*f.BearingRad)}
+	case f.RangeM != nil:
+		m.Kind = estimator.KindRange
+		m.Z = [3]float64{*f.RangeM}
+	case f.BearingRad != nil:
+		m.Kind = estimator.KindBearing
+		m.Z = [3]float64{estimator.Wrap(*f.BearingRad)}
+	default:
+		return badf("landmark fix needs range_m, bearing_rad or both")
+	}
+	if f.RangeM != nil && (!finiteAll(*f.RangeM) || *f.RangeM <= 0) {
+		return badf("range_m %v must be positive", *f.RangeM)
+	}
+	if f.BearingRad != nil && !finiteAll(*f.BearingRad) {
+		return badf("bearing_rad %v is not finite", *f.BearingRad)
 	}
 	return nil
+}
+
+// AddFix takes one absolute fix.
+func (r *Robot) AddFix(fx Fix) Result {
+	m, err := r.fixMeasurement(&fx)
+	if err != nil {
+		return refused(err)
+	}
+	res := r.next()
+	id := fx.SensorID
+	if id == "" {
+		id = "fix"
+	}
+	e := entry{kind: entMeas, t0: fx.StampNs, t1: fx.StampNs, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
+	return r.finish(r.addMeasurement(res, e, id))
 }

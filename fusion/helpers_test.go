@@ -36,7 +36,7 @@ func sameSnapshot(t *testing.T, what string, a, b snapshot) {
 	t.Helper()
 	if !reflect.DeepEqual(a, b) {
 		t.Errorf("%s changed the robot: state %v -> %v, window %d -> %d entries, held %d -> %d",
-			what, a.st.X, b.st.X, len(a.live), len(b.live), len(a.held), len(b.held))
+			what, a.st.Mean().RawVector().Data, b.st.Mean().RawVector().Data, len(a.live), len(b.live), len(a.held), len(b.held))
 	}
 }
 
@@ -45,16 +45,15 @@ func sameSnapshot(t *testing.T, what string, a, b snapshot) {
 func checkFinitePD(t *testing.T, r *Robot) {
 	t.Helper()
 	st := r.f.State()
-	for i := 0; i < st.N; i++ {
-		if math.IsNaN(st.X[i]) || math.IsInf(st.X[i], 0) {
-			t.Fatalf("state[%d] = %v", i, st.X[i])
+	n := st.Size()
+	for i := 0; i < n; i++ {
+		if math.IsNaN(st.MeanAt(i)) || math.IsInf(st.MeanAt(i), 0) {
+			t.Fatalf("state[%d] = %v", i, st.MeanAt(i))
 		}
 	}
-	p := make([]float64, 0, 16)
-	for i := 0; i < st.N; i++ {
-		p = append(p, st.P[i*4:i*4+st.N]...)
-	}
-	if err := estimator.CheckCovariance(p, st.N); err != nil {
+	p := make([]float64, n*n)
+	st.CovarianceInto(p)
+	if err := estimator.CheckCovariance(p, n); err != nil {
 		t.Fatalf("covariance: %v", err)
 	}
 }

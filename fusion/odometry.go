@@ -53,69 +53,28 @@ func countDelta(cur, prev int64, bits int) int64 {
 // counts, so that the following samples are usable; the travel of that
 // interval is lost.
 func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
-	var res odoResult
-	res.imu = o.IMUHeadingRad
-	rotation := r.cfg.IMU == IMURotation
+	res := odoResult{imu: o.IMUHeadingRad}
 	nw := len(r.cfg.Wheels)
 	if cap(r.travel) < nw {
 		r.travel = make([]float64, nw)
 	}
 	travel := r.travel[:nw]
-	var t0, dtNs int64
-	if o.Counts != nil {
-		if r.lastCounts == nil {
-			if !r.started {
-				r.start(o.StampNs)
-			} else {
-				r.newest = o.StampNs
-			}
-			r.lastCounts = append([]int64(nil), o.Counts...)
-			r.noteIMU(o)
-			return res, nil
-		}
-		for i, w := range r.cfg.Wheels {
-			travel[i] = float64(countDelta(o.Counts[i], r.lastCounts[i], w.CounterBits)) / w.CountsPerM
-		}
-		t0, dtNs = r.newest, o.StampNs-r.newest
-	} else {
-		copy(travel, o.TravelM)
-		t0, dtNs = o.StartNs, o.StampNs-o.StartNs
-		if r.started {
-			res.gapNs = o.StartNs - r.newest
-			t0 = r.newest
-		}
+	t0, dtNs, ok := r.interval(o, travel, &res)
+	if !ok {
+		return res, nil
 	}
-	if rotation && o.Step == nil && r.lastIMU == nil {
-		// The first IMU heading in rotation mode is the reference for the
-		// next interval; this interval's motion cannot be resolved.
-		if o.Counts != nil {
-			copy(r.lastCounts, o.Counts)
-		}
-		if !r.started {
-			r.start(o.StampNs)
-		} else {
-			res.gapNs = o.StampNs - r.newest
-			r.newest = o.StampNs
-		}
-		r.noteIMU(o)
+	if r.cfg.IMU == IMURotation && o.Step == nil && r.lastIMU == nil {
+		r.referenceIMU(o, &res)
 		return res, nil
 	}
 	e := entry{kind: entOdo, t0: t0, t1: o.StampNs}
 	if o.Step != nil {
 		e.step = *o.Step
-		d := math.Hypot(e.step.ForwardM, e.step.LeftM)
-		n := &r.cfg.Noise
-		e.cov = [9]float64{n.StepForwardVarM2PerM * d, 0, 0, 0, n.StepLeftVarM2PerM * d, 0, 0, 0, n.StepTurnVarRad2PerRad * math.Abs(e.step.TurnRad)}
+		r.cfg.Noise.stepNoise(&e.cov, e.step)
 	} else if err := r.solveWheels(o, travel, &e, &res); err != nil {
 		return res, err
 	}
-	dt := float64(dtNs) * 1e-9
-	var jump error
-	if v := math.Hypot(e.step.ForwardM, e.step.LeftM) / dt; v > r.cfg.MaxSpeedMPerS {
-		jump = fmt.Errorf("%w: %.2f m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
-	} else if w := math.Abs(e.step.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
-		jump = fmt.Errorf("%w: %.2f rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
-	}
+	jump := r.checkJump(e.step, float64(dtNs)*1e-9)
 	if o.Counts != nil {
 		copy(r.lastCounts, o.Counts)
 	}
@@ -125,6 +84,46 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 	r.noteIMU(o)
 	res.e, res.has = e, true
 	return res, nil
+}
+
+// interval writes each wheel's travel over o's interval into travel and
+// returns the interval's start and length. ok is false for the first
+// sample of counts, which only sets the reference.
+func (r *Robot) interval(o *Odometry, travel []float64, res *odoResult) (t0, dtNs int64, ok bool) {
+	if o.Counts == nil {
+		copy(travel, o.TravelM)
+		t0, dtNs = o.StartNs, o.StampNs-o.StartNs
+		if r.started {
+			res.gapNs = o.StartNs - r.newest
+			t0 = r.newest
+		}
+		return t0, dtNs, true
+	}
+	if r.lastCounts == nil {
+		if !r.started {
+			r.start(o.StampNs)
+		} else {
+			r.newest = o.StampNs
+		}
+		r.lastCounts = append([]int64(nil), o.Counts...)
+		r.noteIMU(o)
+		return 0, 0, false
+	}
+	for i, w := range r.cfg.Wheels {
+		travel[i] = float64(countDelta(o.Counts[i], r.lastCounts[i], w.CounterBits)) / w.CountsPerM
+	}
+	return r.newest, o.StampNs - r.newest, true
+}
+
+// checkJump refuses a step faster than max_speed_m_per_s or
+// max_turn_rate_rad_per_s over dt seconds.
+func (r *Robot) checkJump(s estimator.Step, dt float64) error {
+	if v := math.Hypot(s.ForwardM, s.LeftM) / dt; v > r.cfg.MaxSpeedMPerS {
+		return fmt.Errorf("%w: %.2f m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
+	} else if w := math.Abs(s.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
+		return fmt.Errorf("%w: %.2f rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
+	}
+	return nil
 }
 
 // checkOdometry reports what is wrong with o before it is taken: shape,
@@ -189,14 +188,7 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	return nil
 }
 
-func (r *Robot) noteIMU(o *Odometry) {
-	if r.cfg.IMU == IMURotation && o.IMUHeadingRad != nil {
-		v := *o.IMUHeadingRad
-		r.lastIMU = &v
-	}
-}
-
-// solveWheels builds the rows of DESIGN.md for the wheel travels and solves
+// solveWheels builds the rows (DEVELOPERS.md, "Design: Motion prediction") for the wheel travels and solves
 // them for the body step.
 func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoResult) error {
 	n := &r.cfg.Noise
@@ -215,10 +207,10 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 	}
 	if r.cfg.IMU == IMURotation {
 		turn := estimator.Wrap(*o.IMUHeadingRad - *r.lastIMU)
-		r.rows = append(r.rows, estimator.Row{Coef: estimator.TurnCoef, Value: turn, Var: n.IMUTurnVarRad2PerRad * math.Abs(turn)})
+		r.rows = append(r.rows, estimator.Row{Coef: estimator.TurnCoef(), Value: turn, Var: n.IMUTurnVarRad2PerRad * math.Abs(turn)})
 	}
 	if r.cfg.NoSideSlip {
-		r.rows = append(r.rows, estimator.Row{Coef: estimator.LeftCoef, Value: 0, Var: n.LateralSlipVarM2PerM * dist})
+		r.rows = append(r.rows, estimator.Row{Coef: estimator.LeftCoef(), Value: 0, Var: n.LateralSlipVarM2PerM * dist})
 	}
 	var sol estimator.StepSolution
 	if err := estimator.SolveStep(r.rows, weightFloor, &sol); err != nil {

@@ -34,7 +34,7 @@ func runOdometry(t *testing.T, sc fusiontest.Scenario) *fusion.Robot {
 
 // TestRateInvariance: the same noise-free greenhouse route (constant-twist
 // segments that start on both sample grids) fed at 50 Hz and at 500 Hz ends
-// within 1e-9 m in position and 0.1% in covariance (DESIGN.md, "Process
+// within 1e-9 m in position and 0.1% in covariance (DEVELOPERS.md, "Design: Process
 // noise"; the noise model adds over sub-intervals).
 func TestRateInvariance(t *testing.T) {
 	for _, layout := range []fusiontest.Layout{fusiontest.FreeWheelTurn, fusiontest.DriveWheelTurn, fusiontest.GyroTurn} {
@@ -113,7 +113,7 @@ func collect(sc fusiontest.Scenario) (*fusiontest.Sim, []fusiontest.Input) {
 
 // TestLateEqualsStampOrder: camera fixes delivered 150 ms late, and IMU
 // samples arriving out of order with odometry, give the same estimate as the
-// same samples delivered in stamp order (DESIGN.md, "Time ordering"), to 1e-9.
+// same samples delivered in stamp order (DEVELOPERS.md, "Design: Time ordering and late measurements"), to 1e-9.
 func TestLateEqualsStampOrder(t *testing.T) {
 	for _, sc := range []fusiontest.Scenario{
 		{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30},

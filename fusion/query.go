@@ -38,13 +38,9 @@ func (p *FusedPose) Trusted() bool { return p.Distrust == 0 }
 
 func (r *Robot) fused(stamp int64, st *estimator.State, ready bool) FusedPose {
 	fp := FusedPose{StampNs: stamp, Pose: st.Pose(), Distrust: r.trust.reasons, IMUOffsetReady: ready && r.n == 4}
-	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			fp.Cov[i*3+j] = st.At(i, j)
-		}
-	}
+	st.PoseCovarianceInto(&fp.Cov)
 	if fp.IMUOffsetReady {
-		fp.IMUOffsetRad, fp.IMUOffsetVarRad2 = st.X[estimator.IOffset], st.Var(estimator.IOffset)
+		fp.IMUOffsetRad, fp.IMUOffsetVarRad2 = st.MeanAt(estimator.IOffset), st.Var(estimator.IOffset)
 	}
 	fp.Position95M = st.Position95()
 	fp.HeadingStdRad = math.Sqrt(st.Var(estimator.IHead))
@@ -80,13 +76,10 @@ func (r *Robot) PoseAt(stampNs int64) (FusedPose, error) {
 		v := r.velocity()
 		dt := float64(ahead) * 1e-9
 		step := estimator.Step{ForwardM: v.ForwardMPerS * dt, LeftM: v.LeftMPerS * dt, TurnRad: v.TurnRadPerS * dt}
-		d := math.Hypot(step.ForwardM, step.LeftM)
-		n := &r.cfg.Noise
-		cov := [9]float64{n.StepForwardVarM2PerM * d, 0, 0, 0, n.StepLeftVarM2PerM * d, 0, 0, 0, n.StepTurnVarRad2PerRad * math.Abs(step.TurnRad)}
-		q := [4]float64{0, 0, n.HeadingVarRad2PerS * dt}
-		if r.n == 4 {
-			q[3] = n.IMUOffsetVarRad2PerS * dt
-		}
+		var cov [9]float64
+		var q [4]float64
+		r.cfg.Noise.stepNoise(&cov, step)
+		r.cfg.Noise.timeNoise(&q, r.n, dt)
 		r.scratch.Predict(step, &cov, &q)
 		out := r.scratch.State()
 		fp := r.fused(stampNs, &out, r.ready)

@@ -4,8 +4,6 @@ import (
 	"fmt"
 	"math"
 
-	"gonum.org/v1/gonum/mat"
-
 	"reckon.example/estimator"
 )
 
@@ -20,7 +18,7 @@ type candidate struct {
 }
 
 // considerRecovery keeps a refused pose fix as a candidate and re-initialises
-// the pose when enough consecutive candidates agree (DESIGN.md, "Measurement
+// the pose when enough consecutive candidates agree (DEVELOPERS.md, "Design: Measurement
 // updates"). at is the fix's index in the window.
 func (r *Robot) considerRecovery(res *Result, at int) {
 	e := &r.live()[at]
@@ -58,25 +56,15 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 }
 
 // agree reports whether two candidates' corrections agree within the gate,
-// by the Mahalanobis distance with the sum of their covariances (solved
-// with gonum mat).
+// by the Mahalanobis distance with the sum of their covariances.
 func agree(a, b candidate, gate float64) bool {
-	d := mat.NewVecDense(3, []float64{a.corr.X - b.corr.X, a.corr.Y - b.corr.Y, estimator.Wrap(a.corr.Heading - b.corr.Heading)})
-	s := mat.NewSymDense(3, nil)
-	for i := 0; i < 3; i++ {
-		for j := i; j < 3; j++ {
-			s.SetSym(i, j, a.cov[i*3+j]+b.cov[i*3+j])
-		}
+	d := [3]float64{a.corr.X - b.corr.X, a.corr.Y - b.corr.Y, estimator.Wrap(a.corr.Heading - b.corr.Heading)}
+	var s [9]float64
+	for i := range s {
+		s[i] = a.cov[i] + b.cov[i]
 	}
-	var ch mat.Cholesky
-	if !ch.Factorize(s) {
-		return false
-	}
-	var x mat.VecDense
-	if err := ch.SolveVecTo(&x, d); err != nil {
-		return false
-	}
-	return mat.Dot(d, &x) <= gate
+	m, ok := estimator.Mahalanobis(&d, &s)
+	return ok && m <= gate
 }
 
 // detachCov returns the covariance of Detach(s, m) for a sensor pose s with
@@ -89,16 +77,7 @@ func detachCov(robot, m estimator.Pose, rs *[9]float64) [9]float64 {
 		0, 1, -(ch*m.X - sh*m.Y),
 		0, 0, 1,
 	}
-	var jr, out [9]float64
-	for i := 0; i < 3; i++ {
-		for k := 0; k < 3; k++ {
-			jr[i*3+k] = j[i*3+0]*rs[0*3+k] + j[i*3+1]*rs[1*3+k] + j[i*3+2]*rs[2*3+k]
-		}
-	}
-	for i := 0; i < 3; i++ {
-		for k := 0; k < 3; k++ {
-			out[i*3+k] = jr[i*3+0]*j[k*3+0] + jr[i*3+1]*j[k*3+1] + jr[i*3+2]*j[k*3+2]
-		}
-	}
+	var out [9]float64
+	estimator.Sandwich(&out, &j, rs)
 	return out
 }

@@ -2,7 +2,6 @@ package fusion
 
 import (
 	"errors"
-	"fmt"
 
 	"reckon.example/estimator"
 )
@@ -29,6 +28,20 @@ type Odometry struct {
 	IMUHeadingRad *float64
 }
 
+// InputKind names the kinds of input a Robot takes.
+type InputKind uint8
+
+const (
+	// InputOdometry: an Odometry sample (AddOdometry).
+	InputOdometry InputKind = iota + 1
+	// InputHeading: an IMU Heading sample (AddHeading).
+	InputHeading
+	// InputFix: an absolute Fix (AddFix).
+	InputFix
+	// InputReseed: a pose given by hand (Reseed).
+	InputReseed
+)
+
 // Heading is one IMU heading sample (IMUAbsolute mode).
 type Heading struct {
 	StampNs    int64
@@ -51,21 +64,6 @@ const (
 	// landmark; Cov is 2x2 for both, 1x1 for one.
 	FixLandmark
 )
-
-// String names the kind.
-func (k FixKind) String() string {
-	switch k {
-	case FixPose:
-		return "pose"
-	case FixPosition:
-		return "position"
-	case FixHeading:
-		return "heading"
-	case FixLandmark:
-		return "landmark"
-	}
-	return fmt.Sprintf("fix_kind(%d)", uint8(k))
-}
 
 // Fix is one absolute fix, typically from a camera seeing a marker.
 type Fix struct {
@@ -103,23 +101,6 @@ const (
 	// VerdictInvalid: a bad value; nothing changed; Err says what.
 	VerdictInvalid
 )
-
-// String names the verdict.
-func (v Verdict) String() string {
-	switch v {
-	case VerdictApplied:
-		return "applied"
-	case VerdictHeld:
-		return "held"
-	case VerdictGated:
-		return "gated"
-	case VerdictTooOld:
-		return "too-old"
-	case VerdictInvalid:
-		return "invalid"
-	}
-	return fmt.Sprintf("verdict(%d)", uint8(v))
-}
 
 // Errors that Results carry; test them with errors.Is.
 var (
@@ -172,27 +153,6 @@ const (
 	EventTrustRegained
 	EventReseeded
 )
-
-// String names the event kind.
-func (k EventKind) String() string {
-	switch k {
-	case EventFixRefused:
-		return "fix-refused"
-	case EventSlipSuspected:
-		return "slip-suspected"
-	case EventOdometryGap:
-		return "odometry-gap"
-	case EventMoveRecovered:
-		return "move-recovered"
-	case EventTrustLost:
-		return "trust-lost"
-	case EventTrustRegained:
-		return "trust-regained"
-	case EventReseeded:
-		return "reseeded"
-	}
-	return fmt.Sprintf("event(%d)", uint8(k))
-}
 
 // Event is a notable moment: a fix refused (Value is its NIS), a suspected
 // slip (Value is the residual chi-square), a gap in odometry (Value is its

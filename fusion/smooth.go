@@ -70,7 +70,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 	live := r.live()
 	prev := r.base
 	if c.cur == nil && len(c.ready) == 0 {
-		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity4, Start: true}
+		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity4(), Start: true}
 	}
 	for i := 0; i < k; i++ {
 		e := &live[i]
@@ -80,7 +80,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			s := Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est}
 			var fx, fu [9]float64
 			estimator.ArcJacobians(prev.est.Pose(), e.step, &fx, &fu)
-			s.F = identity4
+			s.F = identity4()
 			for a := 0; a < 3; a++ {
 				for b := 0; b < 3; b++ {
 					s.F[a*4+b] = fx[a*3+b]
@@ -91,7 +91,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			c.cur.Post = e.after.est
 		case entReset:
 			c.emit()
-			c.cur = &Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est, F: identity4, Start: true}
+			c.cur = &Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est, F: identity4(), Start: true}
 		}
 		prev = e.after
 	}
@@ -104,7 +104,8 @@ func (c *stepCollector) emit() {
 	}
 }
 
-var identity4 = [16]float64{1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1}
+// identity4 returns the 4x4 identity, row-major.
+func identity4() [16]float64 { return [16]float64{1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1} }
 
 // StepStore holds a run's steps in order; a long run keeps them on disk.
 type StepStore interface {
@@ -165,8 +166,7 @@ func Smooth(src StepStore, dst StateSink) error {
 		if next.Start {
 			out = cur.Post
 		} else {
-			var err error
-			if out, err = rtsStep(&cur.Post, &next, &smoothed); err != nil {
+			if err := estimator.RTSStep(&out, &cur.Post, &next.Pred, &next.F, &smoothed); err != nil {
 				return fmt.Errorf("smoothing step %d at %d ns: %w", k, cur.StampNs, err)
 			}
 		}
@@ -176,79 +176,4 @@ func Smooth(src StepStore, dst StateSink) error {
 		smoothed, next = out, cur
 	}
 	return nil
-}
-
-// rtsStep smooths the filtered estimate f through the next step's
-// prediction and smoothed estimate s, on fixed-size arrays (stride 4).
-func rtsStep(f *estimator.State, next *Step, s *estimator.State) (estimator.State, error) {
-	n := f.N
-	pp := next.Pred.P
-	for i := 0; i < n; i++ {
-		for j := i + 1; j < n; j++ {
-			v := (pp[i*4+j] + pp[j*4+i]) / 2
-			pp[i*4+j], pp[j*4+i] = v, v
-		}
-	}
-	// ct = P_p^-1 F P_f, the transpose of the gain C.
-	var ct [16]float64
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			var acc float64
-			for k := 0; k < n; k++ {
-				acc += next.F[i*4+k] * f.P[k*4+j]
-			}
-			ct[i*4+j] = acc
-		}
-	}
-	if !estimator.SolveSPD(&pp, n, &ct, n) {
-		return estimator.State{}, estimator.ErrNotPositiveDefinite
-	}
-	var d [4]float64
-	for i := 0; i < n; i++ {
-		d[i] = s.X[i] - next.Pred.X[i]
-		if i >= estimator.IHead {
-			d[i] = estimator.Wrap(d[i])
-		}
-	}
-	// dp = P_s - P_p; out.P = P_f + C dp C^T with C = ct^T.
-	var dp, cdp [16]float64
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			dp[i*4+j] = s.P[i*4+j] - next.Pred.P[i*4+j]
-		}
-	}
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			var acc float64
-			for k := 0; k < n; k++ {
-				acc += ct[k*4+i] * dp[k*4+j]
-			}
-			cdp[i*4+j] = acc
-		}
-	}
-	out := estimator.State{N: n}
-	for i := 0; i < n; i++ {
-		var dx float64
-		for k := 0; k < n; k++ {
-			dx += ct[k*4+i] * d[k]
-		}
-		out.X[i] = f.X[i] + dx
-		if i >= estimator.IHead {
-			out.X[i] = estimator.Wrap(out.X[i])
-		}
-		for j := 0; j < n; j++ {
-			var acc float64
-			for k := 0; k < n; k++ {
-				acc += cdp[i*4+k] * ct[k*4+j]
-			}
-			out.P[i*4+j] = f.P[i*4+j] + acc
-		}
-	}
-	for i := 0; i < n; i++ {
-		for j := i + 1; j < n; j++ {
-			v := (out.P[i*4+j] + out.P[j*4+i]) / 2
-			out.P[i*4+j], out.P[j*4+i] = v, v
-		}
-	}
-	return out, nil
 }

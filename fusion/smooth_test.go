@@ -133,12 +133,12 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		s := sm[k]
 		idx := []int{0, 1, ih(k), io(k)}
 		for a := 0; a < 4; a++ {
-			if d := math.Abs(s.X[a] - sol.AtVec(idx[a])); d > 1e-9 {
-				t.Errorf("step %d state %d: smoothed %.12f, batch %.12f", k, a, s.X[a], sol.AtVec(idx[a]))
+			if d := math.Abs(s.MeanAt(a) - sol.AtVec(idx[a])); d > 1e-9 {
+				t.Errorf("step %d state %d: smoothed %.12f, batch %.12f", k, a, s.MeanAt(a), sol.AtVec(idx[a]))
 			}
 			for b := 0; b < 4; b++ {
-				if d := math.Abs(s.P[a*4+b] - cov.At(idx[a], idx[b])); d > 1e-9 {
-					t.Errorf("step %d covariance (%d,%d): smoothed %.3g, batch %.3g", k, a, b, s.P[a*4+b], cov.At(idx[a], idx[b]))
+				if d := math.Abs(s.At(a, b) - cov.At(idx[a], idx[b])); d > 1e-9 {
+					t.Errorf("step %d covariance (%d,%d): smoothed %.3g, batch %.3g", k, a, b, s.At(a, b), cov.At(idx[a], idx[b]))
 				}
 			}
 		}
@@ -147,7 +147,7 @@ func TestSmootherEqualsBatch(t *testing.T) {
 	if sm[N-1] != stepsOut[N-1].Post {
 		t.Errorf("the last step changed")
 	}
-	if sm[0].P[2*4+2] >= stepsOut[0].Post.P[2*4+2] {
+	if sm[0].Var(2) >= stepsOut[0].Post.Var(2) {
 		t.Errorf("smoothing did not shrink the first heading variance")
 	}
 }
@@ -189,8 +189,8 @@ func TestSmootherBeatsFilter(t *testing.T) {
 			if !ok || st.StampNs%int64(500e6) != 0 {
 				continue
 			}
-			filtSq += sq(st.Post.X[0]-tr.X) + sq(st.Post.X[1]-tr.Y)
-			smSq += sq(sm[i].X[0]-tr.X) + sq(sm[i].X[1]-tr.Y)
+			filtSq += sq(st.Post.MeanAt(0)-tr.X) + sq(st.Post.MeanAt(1)-tr.Y)
+			smSq += sq(sm[i].MeanAt(0)-tr.X) + sq(sm[i].MeanAt(1)-tr.Y)
 			fp := fusion.FusedPose{Pose: sm[i].Pose()}
 			for a := 0; a < 3; a++ {
 				for b := 0; b < 3; b++ {

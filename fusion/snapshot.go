@@ -1,155 +1,472 @@
 package fusion
 
 import (
-	"bytes"
-	"encoding/gob"
+	"errors"
 	"fmt"
 
+	"google.golang.org/protobuf/encoding/protowire"
 	"reckon.example/estimator"
 )
 
-// The snapshot mirrors the robot's state with exported fields for gob.
-type snapCheckpoint struct {
-	Est         estimator.State
-	OffsetReady bool
-}
+// SnapshotVersion is the layout version of Snapshot's bytes (message
+// reckon.v1.RobotSnapshot). Version 3: the protocol buffer layout
+// (versions 1 and 2 were gob of Go structs, which a field rename silently
+// emptied). A change of layout or meaning bumps it, with a new golden file
+// in testdata/snapshots.
+const SnapshotVersion = 3
 
-type snapEntry struct {
-	Kind        uint8
-	T0, T1      int64
-	Seq         uint64
-	Step        estimator.Step
-	Cov         [9]float64
-	Meas        estimator.Measurement
-	IMU         bool
-	Sensor      int
-	Pose        estimator.Pose
-	PoseCov     [9]float64
-	After       snapCheckpoint
-	Out         estimator.Outcome
-	Initialised bool
-}
-
-type snapCandidate struct {
-	Stamp         int64
-	Implied, Corr estimator.Pose
-	Cov           [9]float64
-}
-
-type snapState struct {
-	Version        int
-	Filter         estimator.State
-	Ready, Started bool
-	Base           snapCheckpoint
-	BaseT, Newest  int64
-	Ents, Held     []snapEntry
-	LastCounts     []int64
-	LastIMU        *float64
-	Seq            uint64
-	Odo, Meas      VerdictCounts
-	Sensors        []SensorStats
-	Slips, Gaps    uint64
-	Recoveries     uint64
-	Reasons        TrustReason
-	RefusedRun     int
-	Fault          bool
-	Fixes, IMU     snapWindow
-	Cands          []snapCandidate
-}
-
-// snapWindow is a trust window (nisWindow).
-type snapWindow struct {
-	NIS       []float64
-	Dims      []int
-	Pos, Fill int
-	Raised    bool
-}
-
-func toSnapWindow(w *nisWindow) snapWindow { return snapWindow{w.nis, w.dims, w.pos, w.fill, w.raised} }
-
-func fromSnapWindow(s *snapWindow, w *nisWindow) {
-	if s.NIS != nil {
-		w.nis, w.dims, w.pos, w.fill, w.raised = s.NIS, s.Dims, s.Pos, s.Fill, s.Raised
-	}
-}
-
-// snapVersion 2: the trust state holds a window of fixes and one of IMU
-// headings (version 1 had one window of both).
-const snapVersion = 2
-
-func toSnap(e *entry) snapEntry {
-	return snapEntry{Kind: uint8(e.kind), T0: e.t0, T1: e.t1, Seq: e.seq, Step: e.step, Cov: e.cov, Meas: e.meas, IMU: e.imu, Sensor: e.sensor,
-		Pose: e.pose, PoseCov: e.poseCov, After: snapCheckpoint{e.after.est, e.after.offsetReady}, Out: e.out, Initialised: e.initialised}
-}
-
-func fromSnap(s *snapEntry) entry {
-	return entry{kind: entryKind(s.Kind), t0: s.T0, t1: s.T1, seq: s.Seq, step: s.Step, cov: s.Cov, meas: s.Meas, imu: s.IMU, sensor: s.Sensor,
-		pose: s.Pose, poseCov: s.PoseCov, after: checkpoint{s.After.Est, s.After.OffsetReady}, out: s.Out, initialised: s.Initialised}
-}
+// ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
+// version, or of a robot with another configuration.
+var ErrSnapshot = errors.New("unusable snapshot")
 
 // Snapshot returns the robot's complete state as bytes. RestoreSnapshot
 // with the same configuration gives a robot that goes on exactly as this one
 // would, bit for bit: the service writes snapshots into the journal so that
 // a restart replays only what came after the last one.
 func (r *Robot) Snapshot() ([]byte, error) {
-	s := snapState{Version: snapVersion, Filter: r.f.State(), Ready: r.ready, Started: r.started,
-		Base: snapCheckpoint{r.base.est, r.base.offsetReady}, BaseT: r.baseT, Newest: r.newest,
-		LastCounts: r.lastCounts, LastIMU: r.lastIMU, Seq: r.seq,
-		Odo: r.stats.odo, Meas: r.stats.meas, Sensors: r.stats.sensors, Slips: r.stats.slips, Gaps: r.stats.gaps, Recoveries: r.stats.recoveries,
-		Reasons: r.trust.reasons, RefusedRun: r.trust.refusedRun, Fault: r.trust.fault, Fixes: toSnapWindow(&r.trust.fixes), IMU: toSnapWindow(&r.trust.imu)}
+	var e wenc
+	e.uint(1, SnapshotVersion)
+	st := r.f.State()
+	e.message(2, func(e *wenc) { encState(e, &st) })
+	e.bool(3, r.ready)
+	e.bool(4, r.started)
+	e.message(5, func(e *wenc) { encCheckpoint(e, &r.base) })
+	e.int(6, r.baseT)
+	e.int(7, r.newest)
 	for i := range r.live() {
-		s.Ents = append(s.Ents, toSnap(&r.live()[i]))
+		e.message(8, func(e *wenc) { encEntry(e, &r.live()[i]) })
 	}
 	for i := range r.held {
-		s.Held = append(s.Held, toSnap(&r.held[i]))
+		e.message(9, func(e *wenc) { encEntry(e, &r.held[i]) })
 	}
-	for _, c := range r.cands {
-		s.Cands = append(s.Cands, snapCandidate{c.stamp, c.implied, c.corr, c.cov})
+	e.ints(10, r.lastCounts)
+	if r.lastIMU != nil {
+		e.double(11, *r.lastIMU)
 	}
-	var buf bytes.Buffer
-	if err := gob.NewEncoder(&buf).Encode(&s); err != nil {
-		return nil, err
+	e.uint(12, r.seq)
+	e.message(13, func(e *wenc) { encCounts(e, &r.stats.odo) })
+	e.message(14, func(e *wenc) { encCounts(e, &r.stats.meas) })
+	for i := range r.stats.sensors {
+		e.message(15, func(e *wenc) { encSensor(e, &r.stats.sensors[i]) })
 	}
-	return buf.Bytes(), nil
+	e.uint(16, r.stats.slips)
+	e.uint(17, r.stats.gaps)
+	e.uint(18, r.stats.recoveries)
+	e.uint(19, uint64(r.trust.reasons))
+	e.int(20, int64(r.trust.refusedRun))
+	e.bool(21, r.trust.fault)
+	if r.trust.fixes.nis != nil {
+		e.message(22, func(e *wenc) { encWindow(e, &r.trust.fixes) })
+	}
+	if r.trust.imu.nis != nil {
+		e.message(23, func(e *wenc) { encWindow(e, &r.trust.imu) })
+	}
+	for i := range r.cands {
+		e.message(24, func(e *wenc) { encCandidate(e, &r.cands[i]) })
+	}
+	return e.b, nil
 }
 
 // RestoreSnapshot makes a robot from cfg and a snapshot that a robot of the
-// same configuration took.
+// same configuration took. Errors wrap ErrSnapshot.
 func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	r, err := New(cfg)
 	if err != nil {
 		return nil, err
 	}
-	var s snapState
-	if err := gob.NewDecoder(bytes.NewReader(b)).Decode(&s); err != nil {
-		return nil, fmt.Errorf("%w: snapshot: %v", ErrBadSample, err)
+	d := wdec{b: b}
+	version := uint64(0)
+	var filter estimator.State
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		if num == 1 {
+			version = d.uint(num)
+		} else if version != SnapshotVersion {
+			return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrSnapshot, version, SnapshotVersion)
+		}
+		switch num {
+		case 1:
+		case 2:
+			d.message(num, func(d *wdec) { filter = decState(d) })
+		default:
+			r.decodeField(&d, num)
+		}
 	}
-	if s.Version != snapVersion {
-		return nil, fmt.Errorf("%w: snapshot version %d, this build reads %d", ErrBadSample, s.Version, snapVersion)
+	if d.err != nil {
+		return nil, d.err
 	}
-	if s.Filter.N != r.n {
-		return nil, fmt.Errorf("%w: snapshot of a %d-state robot for a %d-state configuration", ErrBadSample, s.Filter.N, r.n)
+	if version != SnapshotVersion {
+		return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrSnapshot, version, SnapshotVersion)
 	}
-	r.f.SetState(&s.Filter)
-	r.ready, r.started = s.Ready, s.Started
-	r.base, r.baseT, r.newest = checkpoint{s.Base.Est, s.Base.OffsetReady}, s.BaseT, s.Newest
-	for i := range s.Ents {
-		r.ents = append(r.ents, fromSnap(&s.Ents[i]))
+	if filter.Size() != r.n {
+		return nil, fmt.Errorf("%w: snapshot of a %d-state robot for a %d-state configuration", ErrSnapshot, filter.Size(), r.n)
 	}
-	for i := range s.Held {
-		r.held = append(r.held, fromSnap(&s.Held[i]))
-	}
-	r.lastCounts, r.lastIMU, r.seq = s.LastCounts, s.LastIMU, s.Seq
-	r.stats.odo, r.stats.meas, r.stats.slips, r.stats.gaps, r.stats.recoveries = s.Odo, s.Meas, s.Slips, s.Gaps, s.Recoveries
-	for _, ss := range s.Sensors {
-		r.stats.sensor(ss.ID, ss.GateProbability)
-	}
-	copy(r.stats.sensors, s.Sensors)
-	r.trust.reasons, r.trust.refusedRun, r.trust.fault = s.Reasons, s.RefusedRun, s.Fault
-	fromSnapWindow(&s.Fixes, &r.trust.fixes)
-	fromSnapWindow(&s.IMU, &r.trust.imu)
-	for _, c := range s.Cands {
-		r.cands = append(r.cands, candidate{c.Stamp, c.Implied, c.Corr, c.Cov})
+	r.f.SetState(&filter)
+	if err := r.checkRestored(); err != nil {
+		return nil, err
 	}
 	return r, nil
+}
+
+// decodeField reads one top-level field of the snapshot into r.
+func (r *Robot) decodeField(d *wdec, num protowire.Number) {
+	switch num {
+	case 3:
+		r.ready = d.bool(num)
+	case 4:
+		r.started = d.bool(num)
+	case 5:
+		d.message(num, func(d *wdec) { r.base = decCheckpoint(d) })
+	case 6:
+		r.baseT = d.int(num)
+	case 7:
+		r.newest = d.int(num)
+	case 8:
+		d.message(num, func(d *wdec) { r.ents = append(r.ents, decEntry(d)) })
+	case 9:
+		d.message(num, func(d *wdec) { r.held = append(r.held, decEntry(d)) })
+	case 10:
+		r.lastCounts = d.intSlice(num)
+	case 11:
+		v := d.double(num)
+		r.lastIMU = &v
+	case 12:
+		r.seq = d.uint(num)
+	case 13:
+		d.message(num, func(d *wdec) { r.stats.odo = decCounts(d) })
+	case 14:
+		d.message(num, func(d *wdec) { r.stats.meas = decCounts(d) })
+	case 15:
+		d.message(num, func(d *wdec) {
+			s := decSensor(d)
+			r.stats.sensors[r.stats.sensor(s.ID, s.GateProbability)] = s
+		})
+	case 16:
+		r.stats.slips = d.uint(num)
+	case 17:
+		r.stats.gaps = d.uint(num)
+	case 18:
+		r.stats.recoveries = d.uint(num)
+	case 19:
+		r.trust.reasons = TrustReason(d.uint(num))
+	case 20:
+		r.trust.refusedRun = int(d.int(num))
+	case 21:
+		r.trust.fault = d.bool(num)
+	case 22:
+		d.message(num, func(d *wdec) { decWindow(d, &r.trust.fixes) })
+	case 23:
+		d.message(num, func(d *wdec) { decWindow(d, &r.trust.imu) })
+	case 24:
+		d.message(num, func(d *wdec) { r.cands = append(r.cands, decCandidate(d)) })
+	default:
+		d.fail("unknown field %d", num)
+	}
+}
+
+// checkRestored checks what the rest of the robot relies on: every state
+// of the filter's size, sensor indices in range, counts for every wheel.
+func (r *Robot) checkRestored() error {
+	states := []*estimator.State{&r.base.est}
+	for k, q := range [][]entry{r.ents, r.held} {
+		for i := range q {
+			if k == 0 || q[i].after.est.Size() != 0 {
+				// A held entry has no checkpoint until odometry reaches it.
+				states = append(states, &q[i].after.est)
+			}
+			if q[i].kind < entOdo || q[i].kind > entReset {
+				return fmt.Errorf("%w: entry of kind %d", ErrSnapshot, q[i].kind)
+			}
+			if q[i].kind == entMeas && (q[i].sensor < 0 || q[i].sensor >= len(r.stats.sensors)) {
+				return fmt.Errorf("%w: entry of sensor %d of %d", ErrSnapshot, q[i].sensor, len(r.stats.sensors))
+			}
+		}
+	}
+	for _, s := range states {
+		if s.Size() != r.n {
+			return fmt.Errorf("%w: a checkpoint of %d states for a %d-state robot", ErrSnapshot, s.Size(), r.n)
+		}
+	}
+	if r.lastCounts != nil && len(r.lastCounts) != len(r.cfg.Wheels) {
+		return fmt.Errorf("%w: %d counts for %d wheels", ErrSnapshot, len(r.lastCounts), len(r.cfg.Wheels))
+	}
+	for _, w := range []*nisWindow{&r.trust.fixes, &r.trust.imu} {
+		if len(w.nis) != len(w.dims) || len(w.nis) > 0 && (w.pos < 0 || w.pos >= len(w.nis) || w.fill < 0 || w.fill > len(w.nis)) {
+			return fmt.Errorf("%w: trust window of %d values, %d dimensions, at %d, %d filled", ErrSnapshot, len(w.nis), len(w.dims), w.pos, w.fill)
+		}
+	}
+	return nil
+}
+
+func encState(e *wenc, s *estimator.State) {
+	n := s.Size()
+	var x [4]float64
+	var p [16]float64
+	s.MeanInto(x[:])
+	s.CovarianceInto(p[:])
+	e.uint(1, uint64(n))
+	e.doubles(2, x[:n])
+	e.doubles(3, p[:n*n])
+}
+
+func decState(d *wdec) estimator.State {
+	var n uint64
+	var x, p []float64
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			n = d.uint(num)
+		case 2:
+			x = d.doubleSlice(num)
+		case 3:
+			p = d.doubleSlice(num)
+		default:
+			d.fail("estimate: unknown field %d", num)
+		}
+	}
+	if d.err != nil || n == 0 && len(x) == 0 && len(p) == 0 {
+		// A held entry has no checkpoint yet: its estimate is the zero State.
+		return estimator.State{}
+	}
+	if n != 3 && n != 4 || len(x) != int(n) || len(p) != int(n*n) {
+		d.fail("estimate of size %d with %d mean and %d covariance values", n, len(x), len(p))
+		return estimator.State{}
+	}
+	return estimator.NewState(int(n), x, p)
+}
+
+func encCheckpoint(e *wenc, c *checkpoint) {
+	e.message(1, func(e *wenc) { encState(e, &c.est) })
+	e.bool(2, c.offsetReady)
+}
+
+func decCheckpoint(d *wdec) checkpoint {
+	var c checkpoint
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			d.message(num, func(d *wdec) { c.est = decState(d) })
+		case 2:
+			c.offsetReady = d.bool(num)
+		default:
+			d.fail("checkpoint: unknown field %d", num)
+		}
+	}
+	return c
+}
+
+func encEntry(e *wenc, en *entry) {
+	e.uint(1, uint64(en.kind))
+	e.int(2, en.t0)
+	e.int(3, en.t1)
+	e.uint(4, en.seq)
+	e.doubles(5, []float64{en.step.ForwardM, en.step.LeftM, en.step.TurnRad})
+	e.doubles(6, en.cov[:])
+	e.message(7, func(e *wenc) { encMeasurement(e, &en.meas) })
+	e.bool(8, en.imu)
+	e.int(9, int64(en.sensor))
+	e.pose(10, en.pose)
+	e.doubles(11, en.poseCov[:])
+	e.message(12, func(e *wenc) { encCheckpoint(e, &en.after) })
+	e.double(13, en.out.NIS)
+	e.int(14, int64(en.out.Dim))
+	e.bool(15, en.out.Gated)
+	e.bool(16, en.initialised)
+}
+
+func decEntry(d *wdec) entry {
+	var en entry
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			en.kind = entryKind(d.uint(num))
+		case 2:
+			en.t0 = d.int(num)
+		case 3:
+			en.t1 = d.int(num)
+		case 4:
+			en.seq = d.uint(num)
+		case 5:
+			en.step = d.step(num)
+		case 6:
+			d.doubles(num, en.cov[:])
+		case 7:
+			d.message(num, func(d *wdec) { en.meas = decMeasurement(d) })
+		case 8:
+			en.imu = d.bool(num)
+		case 9:
+			en.sensor = int(int32(d.int(num)))
+		case 10:
+			en.pose = d.pose(num)
+		case 11:
+			d.doubles(num, en.poseCov[:])
+		case 12:
+			d.message(num, func(d *wdec) { en.after = decCheckpoint(d) })
+		case 13:
+			en.out.NIS = d.double(num)
+		case 14:
+			en.out.Dim = int(int32(d.int(num)))
+		case 15:
+			en.out.Gated = d.bool(num)
+		case 16:
+			en.initialised = d.bool(num)
+		default:
+			d.fail("entry: unknown field %d", num)
+		}
+	}
+	return en
+}
+
+func encMeasurement(e *wenc, m *estimator.Measurement) {
+	e.uint(1, uint64(m.Kind))
+	e.pose(2, m.Mount)
+	e.double(3, m.LandmarkX)
+	e.double(4, m.LandmarkY)
+	e.doubles(5, m.Z[:])
+	e.doubles(6, m.R[:])
+}
+
+func decMeasurement(d *wdec) estimator.Measurement {
+	var m estimator.Measurement
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			m.Kind = estimator.Kind(d.uint(num))
+		case 2:
+			m.Mount = d.pose(num)
+		case 3:
+			m.LandmarkX = d.double(num)
+		case 4:
+			m.LandmarkY = d.double(num)
+		case 5:
+			d.doubles(num, m.Z[:])
+		case 6:
+			d.doubles(num, m.R[:])
+		default:
+			d.fail("measurement: unknown field %d", num)
+		}
+	}
+	return m
+}
+
+func encCounts(e *wenc, c *VerdictCounts) {
+	e.uint(1, c.Applied)
+	e.uint(2, c.Held)
+	e.uint(3, c.Gated)
+	e.uint(4, c.TooOld)
+	e.uint(5, c.Invalid)
+}
+
+func decCounts(d *wdec) VerdictCounts {
+	var c VerdictCounts
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			c.Applied = d.uint(num)
+		case 2:
+			c.Held = d.uint(num)
+		case 3:
+			c.Gated = d.uint(num)
+		case 4:
+			c.TooOld = d.uint(num)
+		case 5:
+			c.Invalid = d.uint(num)
+		default:
+			d.fail("verdict counts: unknown field %d", num)
+		}
+	}
+	return c
+}
+
+func encSensor(e *wenc, s *SensorStats) {
+	e.string(1, s.ID)
+	e.message(2, func(e *wenc) { encCounts(e, &s.VerdictCounts) })
+	e.double(3, s.NISSum)
+	e.int(4, int64(s.DOFSum))
+	e.double(5, s.GateProbability)
+}
+
+func decSensor(d *wdec) SensorStats {
+	var s SensorStats
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			s.ID = d.string(num)
+		case 2:
+			d.message(num, func(d *wdec) { s.VerdictCounts = decCounts(d) })
+		case 3:
+			s.NISSum = d.double(num)
+		case 4:
+			s.DOFSum = int(d.int(num))
+		case 5:
+			s.GateProbability = d.double(num)
+		default:
+			d.fail("sensor: unknown field %d", num)
+		}
+	}
+	return s
+}
+
+func encWindow(e *wenc, w *nisWindow) {
+	dims := make([]int64, len(w.dims))
+	for i, v := range w.dims {
+		dims[i] = int64(v)
+	}
+	e.doubles(1, w.nis)
+	e.ints(2, dims)
+	e.int(3, int64(w.pos))
+	e.int(4, int64(w.fill))
+	e.bool(5, w.raised)
+}
+
+func decWindow(d *wdec, w *nisWindow) {
+	var dims []int64
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			w.nis = d.doubleSlice(num)
+		case 2:
+			dims = d.intSlice(num)
+		case 3:
+			w.pos = int(d.int(num))
+		case 4:
+			w.fill = int(d.int(num))
+		case 5:
+			w.raised = d.bool(num)
+		default:
+			d.fail("trust window: unknown field %d", num)
+		}
+	}
+	w.dims = make([]int, len(dims))
+	for i, v := range dims {
+		w.dims[i] = int(v)
+	}
+	if len(w.nis) == 0 {
+		w.nis, w.dims = nil, nil
+	}
+}
+
+func encCandidate(e *wenc, c *candidate) {
+	e.int(1, c.stamp)
+	e.pose(2, c.implied)
+	e.pose(3, c.corr)
+	e.doubles(4, c.cov[:])
+}
+
+func decCandidate(d *wdec) candidate {
+	var c candidate
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			c.stamp = d.int(num)
+		case 2:
+			c.implied = d.pose(num)
+		case 3:
+			c.corr = d.pose(num)
+		case 4:
+			d.doubles(num, c.cov[:])
+		default:
+			d.fail("candidate: unknown field %d", num)
+		}
+	}
+	return c
 }

@@ -33,11 +33,11 @@ func TestTruncatedChiSquare(t *testing.T) {
 func TestConsistencyOfGatedSensor(t *testing.T) {
 	mean, _ := TruncatedChiSquare(3, 0.99)
 	s := SensorStats{ID: "camera", VerdictCounts: VerdictCounts{Applied: 20000}, NISSum: mean * 20000, DOFSum: 60000, GateProbability: 0.99}
-	if _, lo, hi, v := s.Consistency(); v != "consistent" {
+	if _, lo, hi, v := s.Consistency(); v != Consistent {
 		t.Errorf("truncated mean %.3f: %s (band %.3f to %.3f)", mean, v, lo, hi)
 	}
 	s.GateProbability = 1
-	if _, _, _, v := s.Consistency(); v != "underconfident" {
+	if _, _, _, v := s.Consistency(); v != Underconfident {
 		t.Errorf("judged as ungated: %s, want underconfident", v)
 	}
 }

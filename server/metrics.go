@@ -9,6 +9,7 @@ import (
 	"google.golang.org/grpc/codes"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
 )
 
 // Metrics are the server's Prometheus metrics on a registry of their own.
@@ -49,7 +50,7 @@ func (m *Metrics) verdict(v pb.Verdict, d time.Duration) {
 	if m == nil {
 		return
 	}
-	m.inputs.WithLabelValues(v.String()).Inc()
+	m.inputs.WithLabelValues(convert.VerdictName(v)).Inc()
 	m.latency.Observe(d.Seconds())
 }
 

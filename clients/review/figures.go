@@ -120,10 +120,10 @@ func (run *Run) Figures() ([]Figure, error) {
 	p.X.Label.Text, p.Y.Label.Text = "x (m)", "y (m)"
 	var filt, smooth, truth plotter.XYs
 	for _, pt := range run.Filtered {
-		filt = append(filt, plotter.XY{X: pt.State.X[0], Y: pt.State.X[1]})
+		filt = append(filt, plotter.XY{X: pt.State.MeanAt(0), Y: pt.State.MeanAt(1)})
 	}
 	for _, pt := range run.Smoothed {
-		smooth = append(smooth, plotter.XY{X: pt.State.X[0], Y: pt.State.X[1]})
+		smooth = append(smooth, plotter.XY{X: pt.State.MeanAt(0), Y: pt.State.MeanAt(1)})
 	}
 	for _, tp := range run.Truth {
 		truth = append(truth, plotter.XY{X: tp.X, Y: tp.Y})
@@ -131,9 +131,9 @@ func (run *Run) Figures() ([]Figure, error) {
 	every := max(1, len(run.Filtered)/60)
 	for i := 0; i < len(run.Filtered); i += every {
 		s := &run.Filtered[i].State
-		line(p, ellipse95(s.X[0], s.X[1], s.At(0, 0), s.At(0, 1), s.At(1, 1)), colEllipse, vg.Points(0.6), ternary(i == 0, "95% ellipse, filtered", ""), false)
+		line(p, ellipse95(s.MeanAt(0), s.MeanAt(1), s.At(0, 0), s.At(0, 1), s.At(1, 1)), colEllipse, vg.Points(0.6), ternary(i == 0, "95% ellipse, filtered", ""), false)
 		m := &run.Smoothed[i].State
-		line(p, ellipse95(m.X[0], m.X[1], m.At(0, 0), m.At(0, 1), m.At(1, 1)), colEllipseS, vg.Points(0.6), ternary(i == 0, "95% ellipse, smoothed", ""), false)
+		line(p, ellipse95(m.MeanAt(0), m.MeanAt(1), m.At(0, 0), m.At(0, 1), m.At(1, 1)), colEllipseS, vg.Points(0.6), ternary(i == 0, "95% ellipse, smoothed", ""), false)
 	}
 	var acc, ref plotter.XYs
 	for _, f := range run.Fixes {
@@ -227,7 +227,7 @@ func (run *Run) Figures() ([]Figure, error) {
 		}
 	}
 	// IMU offset.
-	if len(run.Filtered) > 0 && run.Filtered[0].State.N == 4 {
+	if len(run.Filtered) > 0 && run.Filtered[0].State.Size() == 4 {
 		p = plot.New()
 		p.Title.Text = "IMU offset (the IMU's heading zero in the field frame)"
 		p.X.Label.Text, p.Y.Label.Text = "time (s)", "deg"
@@ -237,12 +237,12 @@ func (run *Run) Figures() ([]Figure, error) {
 			if pt.State.At(3, 3) > 0.5 {
 				continue // not initialised yet
 			}
-			o = append(o, plotter.XY{X: t, Y: pt.State.X[3] * 180 / math.Pi})
+			o = append(o, plotter.XY{X: t, Y: pt.State.MeanAt(3) * 180 / math.Pi})
 			s := &run.Smoothed[i].State
-			os = append(os, plotter.XY{X: t, Y: s.X[3] * 180 / math.Pi})
+			os = append(os, plotter.XY{X: t, Y: s.MeanAt(3) * 180 / math.Pi})
 			sd := 2 * math.Sqrt(s.At(3, 3)) * 180 / math.Pi
-			lo = append(lo, plotter.XY{X: t, Y: s.X[3]*180/math.Pi - sd})
-			hi = append(hi, plotter.XY{X: t, Y: s.X[3]*180/math.Pi + sd})
+			lo = append(lo, plotter.XY{X: t, Y: s.MeanAt(3)*180/math.Pi - sd})
+			hi = append(hi, plotter.XY{X: t, Y: s.MeanAt(3)*180/math.Pi + sd})
 		}
 		line(p, o, colFiltered, vg.Points(1), "filtered", false)
 		line(p, os, colSmoothed, vg.Points(1), "smoothed", false)

@@ -7,6 +7,8 @@ import (
 	"math"
 	"sort"
 	"strings"
+
+	"reckon.example/server/convert"
 )
 
 func secs(ns int64) float64 { return float64(ns) * 1e-9 }
@@ -46,7 +48,7 @@ func (run *Run) lines() [][2]string {
 	}
 	for _, ss := range s.Sensors {
 		out = append(out, [2]string{"NIS of " + ss.GetSensorId(), fmt.Sprintf("mean %.2f, 95%% band %.2f to %.2f over %d applied: %s",
-			ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), ss.GetCounts().GetApplied(), ss.GetAssessment())})
+			ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), ss.GetCounts().GetApplied(), convert.ConsistencyName(ss.GetVerdict()))})
 	}
 	out = append(out, [2]string{"slips suspected", fmt.Sprint(s.Slips)})
 	rec := fmt.Sprint(len(s.Recoveries))

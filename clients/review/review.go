@@ -525,13 +525,13 @@ var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "
 // appendRow appends one CSV row of the track (numbers only: no quoting).
 func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
 	b = strconv.AppendInt(b, stamp, 10)
-	for _, v := range [...]float64{s.X[0], s.X[1], s.X[2], s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
+	for _, v := range [...]float64{s.MeanAt(0), s.MeanAt(1), s.MeanAt(2), s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
 		b = append(b, ',')
 		b = strconv.AppendFloat(b, v, 'g', -1, 64)
 	}
 	b = append(b, ',')
-	if s.N == 4 {
-		b = strconv.AppendFloat(b, s.X[3], 'g', -1, 64)
+	if s.Size() == 4 {
+		b = strconv.AppendFloat(b, s.MeanAt(3), 'g', -1, 64)
 		b = append(b, ',')
 		b = strconv.AppendFloat(b, s.At(3, 3), 'g', -1, 64)
 	} else {
@@ -540,29 +540,14 @@ func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
 	return append(b, '\n')
 }
 
+// nees3 is the pose NEES of s against the truth, NaN if its covariance is
+// not positive definite.
 func nees3(s *estimator.State, tr estimator.Pose) float64 {
-	e := [3]float64{tr.X - s.X[0], tr.Y - s.X[1], estimator.Wrap(tr.Heading - s.X[2])}
 	var c [9]float64
-	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			c[i*3+j] = s.At(i, j)
-		}
-	}
-	// Solve c y = e by Cramer's rule on the 3x3 (small and well conditioned).
-	det := c[0]*(c[4]*c[8]-c[5]*c[7]) - c[1]*(c[3]*c[8]-c[5]*c[6]) + c[2]*(c[3]*c[7]-c[4]*c[6])
-	if !(det > 0) {
+	s.PoseCovarianceInto(&c)
+	q, err := estimator.PoseNEES(s.Pose(), &c, tr)
+	if err != nil {
 		return math.NaN()
-	}
-	inv := [9]float64{
-		c[4]*c[8] - c[5]*c[7], c[2]*c[7] - c[1]*c[8], c[1]*c[5] - c[2]*c[4],
-		c[5]*c[6] - c[3]*c[8], c[0]*c[8] - c[2]*c[6], c[2]*c[3] - c[0]*c[5],
-		c[3]*c[7] - c[4]*c[6], c[1]*c[6] - c[0]*c[7], c[0]*c[4] - c[1]*c[3],
-	}
-	var q float64
-	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			q += e[i] * inv[i*3+j] / det * e[j]
-		}
 	}
 	return q
 }
@@ -607,9 +592,9 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		}
 		p := &st.Post
 		if i > 0 && !st.Start {
-			sum.DistanceM += math.Hypot(p.X[0]-prevX, p.X[1]-prevY)
+			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
-		prevX, prevY = p.X[0], p.X[1]
+		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
 		if r95 := p.Position95(); r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, st.StampNs
 		}
@@ -625,8 +610,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			tp, haveTruth = truth.at(st.StampNs)
 		}
 		if haveTruth {
-			fSq += sq(p.X[0]-tp.X) + sq(p.X[1]-tp.Y)
-			sSq += sq(smoothed.X[0]-tp.X) + sq(smoothed.X[1]-tp.Y)
+			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
+			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
 			nTruth++
 			if fn, sn := nees3(p, tp), nees3(&smoothed, tp); !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn

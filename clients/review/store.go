@@ -14,33 +14,40 @@ import (
 // Fixed-size little-endian records keep a long run's steps and smoothed
 // states on disk, so that memory does not grow with the run.
 const (
-	stateBytes = 8 + 20*8 // N, X[4], P[16]
+	stateBytes = 8 + 20*8 // size, mean (4), covariance (size x size in 16)
 	stepBytes  = 8 + 2*stateBytes + 16*8 + 8
 	chunk      = 2048 // records read at once
 )
 
 func putState(b []byte, s *estimator.State) []byte {
-	b = binary.LittleEndian.AppendUint64(b, uint64(s.N))
-	for _, v := range s.X {
+	var x [4]float64
+	var p [16]float64
+	s.MeanInto(x[:])
+	s.CovarianceInto(p[:])
+	b = binary.LittleEndian.AppendUint64(b, uint64(s.Size()))
+	for _, v := range x {
 		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
 	}
-	for _, v := range s.P {
+	for _, v := range p {
 		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
 	}
 	return b
 }
 
 func getState(b []byte, s *estimator.State) []byte {
-	s.N = int(binary.LittleEndian.Uint64(b))
+	n := int(binary.LittleEndian.Uint64(b))
 	b = b[8:]
-	for i := range s.X {
-		s.X[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+	var x [4]float64
+	var p [16]float64
+	for i := range x {
+		x[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
 		b = b[8:]
 	}
-	for i := range s.P {
-		s.P[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+	for i := range p {
+		p[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
 		b = b[8:]
 	}
+	*s = estimator.NewState(n, x[:n], p[:n*n])
 	return b
 }
 

@@ -133,7 +133,7 @@ func Markers() []fusion.Landmark {
 // same model), with move recovery on.
 func (s Scenario) Config() fusion.Config {
 	s.defaults()
-	n := fusion.DefaultNoise
+	n := fusion.DefaultNoise()
 	n.IMUHeadingVarRad2 = imuHeadingStdRad * imuHeadingStdRad
 	n.IMUOffsetVarRad2PerS = imuOffsetVarRad2PerS
 	c := fusion.Config{

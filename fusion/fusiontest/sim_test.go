@@ -51,7 +51,7 @@ func TestArrivalOrderAndTruth(t *testing.T) {
 				rows = append(rows, estimator.Row{Coef: estimator.WheelCoef(w.XM, w.YM, w.DirectionRad), Value: in.Odometry.TravelM[i]})
 			}
 			if cfg.NoSideSlip {
-				rows = append(rows, estimator.Row{Coef: estimator.LeftCoef})
+				rows = append(rows, estimator.Row{Coef: estimator.LeftCoef()})
 			}
 			if in.Odometry.IMUHeadingRad != nil {
 				if prevIMU == nil {
@@ -59,7 +59,7 @@ func TestArrivalOrderAndTruth(t *testing.T) {
 					pose = in.Truth
 					continue
 				}
-				rows = append(rows, estimator.Row{Coef: estimator.TurnCoef, Value: estimator.Wrap(*in.Odometry.IMUHeadingRad - *prevIMU)})
+				rows = append(rows, estimator.Row{Coef: estimator.TurnCoef(), Value: estimator.Wrap(*in.Odometry.IMUHeadingRad - *prevIMU)})
 				prevIMU = in.Odometry.IMUHeadingRad
 			}
 			var sol estimator.StepSolution

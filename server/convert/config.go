@@ -20,14 +20,11 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 			CountsPerM: w.GetCountsPerM(), CounterBits: int(w.GetCounterBits())})
 	}
 	cfg.NoSideSlip = c.GetNoSideSlip()
-	switch c.GetImuMode() {
-	case pb.ImuMode_IMU_MODE_UNSPECIFIED, pb.ImuMode_IMU_MODE_NONE:
+	if c.GetImuMode() == pb.ImuMode_IMU_MODE_UNSPECIFIED {
 		cfg.IMU = fusion.IMUNone
-	case pb.ImuMode_IMU_MODE_ABSOLUTE:
-		cfg.IMU = fusion.IMUAbsolute
-	case pb.ImuMode_IMU_MODE_ROTATION:
-		cfg.IMU = fusion.IMURotation
-	default:
+	} else if m, ok := fusion.ValueOfProto(imuModeLabels, int32(c.GetImuMode())); ok {
+		cfg.IMU = m
+	} else {
 		return cfg, fusion.FieldErrorf(fusion.ErrConfig, "imu_mode", "%d is not a known mode", c.GetImuMode())
 	}
 	n := c.GetNoise()
@@ -92,7 +89,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 	for _, w := range cfg.Wheels {
 		c.Wheels = append(c.Wheels, &pb.EncoderWheel{Name: w.Name, XM: w.XM, YM: w.YM, DirectionRad: w.DirectionRad, CountsPerM: w.CountsPerM, CounterBits: int32(w.CounterBits)})
 	}
-	c.ImuMode = map[fusion.IMUMode]pb.ImuMode{fusion.IMUNone: pb.ImuMode_IMU_MODE_NONE, fusion.IMUAbsolute: pb.ImuMode_IMU_MODE_ABSOLUTE, fusion.IMURotation: pb.ImuMode_IMU_MODE_ROTATION}[cfg.IMU]
+	c.ImuMode = pb.ImuMode(fusion.ProtoOf(imuModeLabels, cfg.IMU))
 	n := cfg.Noise
 	c.Noise = &pb.NoiseModel{WheelVarM2PerM: n.WheelVarM2PerM, LateralSlipVarM2PerM: n.LateralSlipVarM2PerM, TurnVarRad2PerRad: n.TurnVarRad2PerRad,
 		HeadingVarRad2PerS: n.HeadingVarRad2PerS, StepForwardVarM2PerM: n.StepForwardVarM2PerM, StepLeftVarM2PerM: n.StepLeftVarM2PerM,

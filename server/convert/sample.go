@@ -3,7 +3,6 @@ package convert
 import (
 	"errors"
 	"fmt"
-	"strings"
 
 	"reckon.example/estimator"
 	"reckon.example/fusion"
@@ -15,9 +14,10 @@ import (
 var ErrSample = errors.New("bad sample")
 
 // input is a decoded sample, ready for a robot: the one of Odometry,
-// Heading, Fix and Pose that field names (it also names the sample's kind
-// in error messages).
+// Heading, Fix and Pose that kind names; field is the sample's oneof field
+// for error messages.
 type input struct {
+	kind     fusion.InputKind
 	field    string
 	Odometry fusion.Odometry
 	Heading  fusion.Heading
@@ -50,15 +50,15 @@ func decode(s *pb.Sample) (input, error) {
 		if err := decodeOdometry(v.Odometry, &in.Odometry); err != nil {
 			return in, err
 		}
-		in.field = "sample.odometry"
+		in.kind, in.field = fusion.InputOdometry, "sample.odometry"
 	case *pb.Sample_Heading:
-		in.field = "sample.heading"
+		in.kind, in.field = fusion.InputHeading, "sample.heading"
 		in.Heading = fusion.Heading{StampNs: v.Heading.GetStampNs(), HeadingRad: v.Heading.GetHeadingRad(), VarRad2: v.Heading.GetVarianceRad2()}
 	case *pb.Sample_Fix:
 		if err := decodeFix(v.Fix, &in.Fix); err != nil {
 			return in, err
 		}
-		in.field = "sample.fix"
+		in.kind, in.field = fusion.InputFix, "sample.fix"
 	case *pb.Sample_Reseed:
 		ps := v.Reseed
 		if ps.GetPose() == nil {
@@ -68,7 +68,7 @@ func decode(s *pb.Sample) (input, error) {
 		if err != nil {
 			return in, sampleErr("sample.reseed.covariance", err)
 		}
-		in.field = "sample.reseed"
+		in.kind, in.field = fusion.InputReseed, "sample.reseed"
 		in.Pose = reseedInput{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
 	default:
 		return in, sampleErrf("sample", "none of odometry, heading, fix and reseed is set")
@@ -142,16 +142,17 @@ func decodeFix(f *pb.Fix, out *fusion.Fix) error {
 
 // apply gives a decoded input to the robot.
 func apply(r *fusion.Robot, in *input) fusion.Result {
-	switch in.field {
-	case "sample.odometry":
+	switch in.kind {
+	case fusion.InputOdometry:
 		return r.AddOdometry(in.Odometry)
-	case "sample.heading":
+	case fusion.InputHeading:
 		return r.AddHeading(in.Heading)
-	case "sample.fix":
+	case fusion.InputFix:
 		return r.AddFix(in.Fix)
-	default:
+	case fusion.InputReseed:
 		return r.Reseed(in.Pose.StampNs, in.Pose.Pose, in.Pose.Cov)
 	}
+	panic(fmt.Sprintf("convert: input of kind %v", in.kind))
 }
 
 // Status codes of IngestResponse.status_code: google.rpc.Code values
@@ -180,22 +181,18 @@ func errorCode(err error) int32 {
 	return CodeInvalidArgument
 }
 
-var verdicts = map[fusion.Verdict]pb.Verdict{
-	fusion.VerdictApplied: pb.Verdict_VERDICT_APPLIED,
-	fusion.VerdictHeld:    pb.Verdict_VERDICT_HELD,
-	fusion.VerdictGated:   pb.Verdict_VERDICT_GATED,
-	fusion.VerdictTooOld:  pb.Verdict_VERDICT_TOO_OLD,
-	fusion.VerdictInvalid: pb.Verdict_VERDICT_INVALID,
-}
+// The label tables of package fusion, read once: every mapping between a
+// fusion enum and its wire enum goes through the wire number they hold.
+var (
+	verdictLabels     = fusion.VerdictLabels()
+	eventLabels       = fusion.EventKindLabels()
+	trustLabels       = fusion.TrustReasonLabels()
+	consistencyLabels = fusion.ConsistencyVerdictLabels()
+	imuModeLabels     = fusion.IMUModeLabels()
+)
 
-var eventKinds = map[fusion.EventKind]pb.EventKind{
-	fusion.EventFixRefused:    pb.EventKind_EVENT_KIND_FIX_REFUSED,
-	fusion.EventSlipSuspected: pb.EventKind_EVENT_KIND_SLIP_SUSPECTED,
-	fusion.EventOdometryGap:   pb.EventKind_EVENT_KIND_ODOMETRY_GAP,
-	fusion.EventMoveRecovered: pb.EventKind_EVENT_KIND_MOVE_RECOVERED,
-	fusion.EventTrustLost:     pb.EventKind_EVENT_KIND_TRUST_LOST,
-	fusion.EventTrustRegained: pb.EventKind_EVENT_KIND_TRUST_REGAINED,
-	fusion.EventReseeded:      pb.EventKind_EVENT_KIND_RESEEDED,
+func verdictToProto(v fusion.Verdict) pb.Verdict {
+	return pb.Verdict(fusion.ProtoOf(verdictLabels, v))
 }
 
 func reason(err error) string {
@@ -214,10 +211,10 @@ func ResultToProto(res fusion.Result, clientSeq uint64) *pb.IngestResponse {
 
 // resultInto fills out, which must be empty, with a robot's result.
 func resultInto(out *pb.IngestResponse, res fusion.Result, clientSeq uint64) {
-	out.ClientSequence, out.Sequence, out.Verdict, out.Reason = clientSeq, res.Seq, verdicts[res.Verdict], reason(res.Err)
+	out.ClientSequence, out.Sequence, out.Verdict, out.Reason = clientSeq, res.Seq, verdictToProto(res.Verdict), reason(res.Err)
 	out.Nis, out.NisDimension, out.Events = res.NIS, int32(res.Dim), EventsToProto(res.Events)
 	for _, r := range res.Resolved {
-		out.Resolved = append(out.Resolved, &pb.Resolution{Sequence: r.Seq, Verdict: verdicts[r.Verdict], Nis: r.NIS, Reason: reason(r.Err)})
+		out.Resolved = append(out.Resolved, &pb.Resolution{Sequence: r.Seq, Verdict: verdictToProto(r.Verdict), Nis: r.NIS, Reason: reason(r.Err)})
 	}
 }
 
@@ -225,17 +222,18 @@ func resultInto(out *pb.IngestResponse, res fusion.Result, clientSeq uint64) {
 func EventsToProto(evs []fusion.Event) []*pb.FusionEvent {
 	var out []*pb.FusionEvent
 	for _, e := range evs {
-		out = append(out, &pb.FusionEvent{Kind: eventKinds[e.Kind], StampNs: e.StampNs, SensorId: e.SensorID, Value: e.Value, Detail: e.Detail})
+		out = append(out, &pb.FusionEvent{Kind: pb.EventKind(fusion.ProtoOf(eventLabels, e.Kind)), StampNs: e.StampNs, SensorId: e.SensorID, Value: e.Value, Detail: e.Detail})
 	}
 	return out
 }
 
-// DistrustToProto lists the reasons.
+// DistrustToProto lists the reasons of the set t, in the order of the wire
+// enum.
 func DistrustToProto(t fusion.TrustReason) []pb.DistrustReason {
 	var out []pb.DistrustReason
-	for i := 0; i < 16; i++ {
-		if t&(1<<i) != 0 {
-			out = append(out, pb.DistrustReason(i+1))
+	for _, l := range trustLabels {
+		if t&l.Value != 0 {
+			out = append(out, pb.DistrustReason(l.Proto))
 		}
 	}
 	return out
@@ -264,14 +262,37 @@ func StatsToProto(s fusion.Stats) *pb.RobotStatistics {
 		Held: int32(s.Held), WindowEntries: int32(s.WindowEntries)}
 	for _, ss := range s.Sensors {
 		mean, lo, hi, v := ss.Consistency()
-		out.Sensors = append(out.Sensors, &pb.SensorConsistency{SensorId: ss.ID, Counts: countsToProto(ss.VerdictCounts), MeanNis: mean, BandLow: lo, BandHigh: hi, Assessment: v})
+		out.Sensors = append(out.Sensors, &pb.SensorConsistency{SensorId: ss.ID, Counts: countsToProto(ss.VerdictCounts), MeanNis: mean, BandLow: lo, BandHigh: hi,
+			Verdict: pb.ConsistencyVerdict(fusion.ProtoOf(consistencyLabels, v))})
 	}
 	return out
 }
 
-// VerdictName returns a verdict's short name for people ("applied", "too_old").
+// VerdictName returns a wire verdict's label ("applied", "too_old"), from
+// fusion's table.
 func VerdictName(v pb.Verdict) string {
-	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
+	return labelName(verdictLabels, int32(v), "verdict")
+}
+
+// EventName returns a wire event kind's label ("fix_refused").
+func EventName(k pb.EventKind) string { return labelName(eventLabels, int32(k), "event") }
+
+// DistrustName returns a wire distrust reason's label ("position_uncertain").
+func DistrustName(d pb.DistrustReason) string { return labelName(trustLabels, int32(d), "distrust") }
+
+// ConsistencyName returns a wire consistency verdict's label ("too_few_fixes").
+func ConsistencyName(c pb.ConsistencyVerdict) string {
+	return labelName(consistencyLabels, int32(c), "consistency")
+}
+
+// labelName returns the label of the row with wire number n, or "what(n)".
+func labelName[T comparable](table []fusion.Label[T], n int32, what string) string {
+	for _, l := range table {
+		if l.Proto == n {
+			return l.Name
+		}
+	}
+	return fmt.Sprintf("%s(%d)", what, n)
 }
 
 // resultCode returns the status code of a robot's result.

@@ -349,7 +349,7 @@ func (d *demoRun) summary(ctx context.Context, stdout io.Writer) error {
 	fmt.Fprintf(stdout, "recoveries %d, slips suspected %d, odometry gaps %d\n", stats.GetRecoveries(), stats.GetSlips(), stats.GetGaps())
 	for _, ss := range stats.GetSensors() {
 		fmt.Fprintf(stdout, "sensor %-7s applied %5d gated %4d  mean NIS %.2f (95%% band %.2f-%.2f): %s\n", ss.GetSensorId(),
-			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), ss.GetAssessment())
+			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), convert.ConsistencyName(ss.GetVerdict()))
 	}
 	if b := d.opt.bumpAtS; b > 0 && b < d.opt.duration {
 		fmt.Fprintf(stdout, "(the cart was lifted aside and turned by hand at %g s: the means include the moments the IMU saw it turn and the wheels did not)\n", b)
@@ -385,7 +385,7 @@ func (v *demoView) take(resp *pb.WatchResponse) {
 	for _, e := range resp.GetEvents() {
 		if e.GetKind() != pb.EventKind_EVENT_KIND_FIX_REFUSED {
 			v.events = append(v.events, fmt.Sprintf("%7.2f s  %s %s", float64(e.GetStampNs())*1e-9,
-				strings.ToLower(strings.TrimPrefix(e.GetKind().String(), "EVENT_KIND_")), e.GetDetail()))
+				convert.EventName(e.GetKind()), e.GetDetail()))
 		}
 	}
 	if e, ok := v.errAt(v.pose); ok {

@@ -47,7 +47,7 @@ func TestFeedAndWatch(t *testing.T) {
 	}
 	defer resp.Body.Close()
 	body, _ := io.ReadAll(resp.Body)
-	if !strings.Contains(string(body), `reckon_inputs_total{verdict="VERDICT_APPLIED"}`) || !strings.Contains(string(body), "reckon_robots 1") {
+	if !strings.Contains(string(body), `reckon_inputs_total{verdict="applied"}`) || !strings.Contains(string(body), "reckon_robots 1") {
 		t.Errorf("metrics lack the input counts:\n%.2000s", body)
 	}
 	if _, _, err := runCmd(t, "feed", "-addr", addrs[0], "-robot", "robots/cart", "/nonexistent.jsonl"); err == nil {

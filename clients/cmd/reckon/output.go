@@ -39,7 +39,7 @@ var csvHeader = []string{"stamp_ns", "sequence", "x_m", "y_m", "heading_rad", "c
 func distrust(p *pb.FusedPose) string {
 	var s []string
 	for _, d := range p.GetDistrust() {
-		s = append(s, strings.ToLower(strings.TrimPrefix(d.String(), "DISTRUST_REASON_")))
+		s = append(s, convert.DistrustName(d))
 	}
 	return strings.Join(s, ",")
 }

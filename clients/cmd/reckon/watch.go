@@ -7,6 +7,8 @@ import (
 	"fmt"
 	"io"
 	"time"
+
+	"reckon.example/server/convert"
 )
 
 func runWatch(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -42,7 +44,7 @@ func runWatch(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		}
 		for _, e := range resp.GetEvents() {
 			if *format == "table" {
-				fmt.Fprintf(stdout, "  event %s at %.3f s: %s\n", e.GetKind(), float64(e.GetStampNs())*1e-9, e.GetDetail())
+				fmt.Fprintf(stdout, "  event %s at %.3f s: %s\n", convert.EventName(e.GetKind()), float64(e.GetStampNs())*1e-9, e.GetDetail())
 			}
 		}
 		n++

@@ -230,6 +230,68 @@ func (DistrustReason) EnumDescriptor() ([]byte, []int) {
 	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{2}
 }
 
+// ConsistencyVerdict compares a sensor's mean NIS over its applied fixes
+// with the two-sided 95% band of a consistent filter.
+type ConsistencyVerdict int32
+
+const (
+	// Not set.
+	ConsistencyVerdict_CONSISTENCY_VERDICT_UNSPECIFIED ConsistencyVerdict = 0
+	// The mean NIS lies inside the band.
+	ConsistencyVerdict_CONSISTENCY_VERDICT_CONSISTENT ConsistencyVerdict = 1
+	// The mean NIS is above the band: the covariance claims too much.
+	ConsistencyVerdict_CONSISTENCY_VERDICT_OVERCONFIDENT ConsistencyVerdict = 2
+	// The mean NIS is below the band: the covariance claims too little.
+	ConsistencyVerdict_CONSISTENCY_VERDICT_UNDERCONFIDENT ConsistencyVerdict = 3
+	// Fewer than five applied fixes: no verdict yet.
+	ConsistencyVerdict_CONSISTENCY_VERDICT_TOO_FEW_FIXES ConsistencyVerdict = 4
+)
+
+// Enum value maps for ConsistencyVerdict.
+var (
+	ConsistencyVerdict_name = map[int32]string{
+		0: "CONSISTENCY_VERDICT_UNSPECIFIED",
+		1: "CONSISTENCY_VERDICT_CONSISTENT",
+		2: "CONSISTENCY_VERDICT_OVERCONFIDENT",
+		3: "CONSISTENCY_VERDICT_UNDERCONFIDENT",
+		4: "CONSISTENCY_VERDICT_TOO_FEW_FIXES",
+	}
+	ConsistencyVerdict_value = map[string]int32{
+		"CONSISTENCY_VERDICT_UNSPECIFIED":    0,
+		"CONSISTENCY_VERDICT_CONSISTENT":     1,
+		"CONSISTENCY_VERDICT_OVERCONFIDENT":  2,
+		"CONSISTENCY_VERDICT_UNDERCONFIDENT": 3,
+		"CONSISTENCY_VERDICT_TOO_FEW_FIXES":  4,
+	}
+)
+
+func (x ConsistencyVerdict) Enum() *ConsistencyVerdict {
+	p := new(ConsistencyVerdict)
+	*p = x
+	return p
+}
+
+func (x ConsistencyVerdict) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (ConsistencyVerdict) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_fusion_service_proto_enumTypes[3].Descriptor()
+}
+
+func (ConsistencyVerdict) Type() protoreflect.EnumType {
+	return &file_reckon_v1_fusion_service_proto_enumTypes[3]
+}
+
+func (x ConsistencyVerdict) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use ConsistencyVerdict.Descriptor instead.
+func (ConsistencyVerdict) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{3}
+}
+
 // CreateRobotRequest creates robots/{robot_id}.
 type CreateRobotRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1722,8 +1784,8 @@ type SensorConsistency struct {
 	BandLow float64 `protobuf:"fixed64,4,opt,name=band_low,json=bandLow,proto3" json:"band_low,omitempty"`
 	// Upper end of the band.
 	BandHigh float64 `protobuf:"fixed64,5,opt,name=band_high,json=bandHigh,proto3" json:"band_high,omitempty"`
-	// "consistent", "overconfident", "underconfident" or "too few fixes".
-	Assessment    string `protobuf:"bytes,6,opt,name=assessment,proto3" json:"assessment,omitempty"`
+	// The comparison of mean_nis with its band.
+	Verdict       ConsistencyVerdict `protobuf:"varint,7,opt,name=verdict,proto3,enum=reckon.v1.ConsistencyVerdict" json:"verdict,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1793,11 +1855,11 @@ func (x *SensorConsistency) GetBandHigh() float64 {
 	return 0
 }
 
-func (x *SensorConsistency) GetAssessment() string {
+func (x *SensorConsistency) GetVerdict() ConsistencyVerdict {
 	if x != nil {
-		return x.Assessment
+		return x.Verdict
 	}
-	return ""
+	return ConsistencyVerdict_CONSISTENCY_VERDICT_UNSPECIFIED
 }
 
 // RobotStatistics is a robot's running record.
@@ -2022,15 +2084,14 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x04held\x18\x02 \x01(\x04R\x04held\x12\x14\n" +
 	"\x05gated\x18\x03 \x01(\x04R\x05gated\x12\x17\n" +
 	"\atoo_old\x18\x04 \x01(\x04R\x06tooOld\x12\x18\n" +
-	"\ainvalid\x18\x05 \x01(\x04R\ainvalid\"\xd5\x01\n" +
+	"\ainvalid\x18\x05 \x01(\x04R\ainvalid\"\x80\x02\n" +
 	"\x11SensorConsistency\x12\x1b\n" +
 	"\tsensor_id\x18\x01 \x01(\tR\bsensorId\x120\n" +
 	"\x06counts\x18\x02 \x01(\v2\x18.reckon.v1.VerdictCountsR\x06counts\x12\x19\n" +
 	"\bmean_nis\x18\x03 \x01(\x01R\ameanNis\x12\x19\n" +
 	"\bband_low\x18\x04 \x01(\x01R\abandLow\x12\x1b\n" +
-	"\tband_high\x18\x05 \x01(\x01R\bbandHigh\x12\x1e\n" +
-	"\n" +
-	"assessment\x18\x06 \x01(\tR\n" +
+	"\tband_high\x18\x05 \x01(\x01R\bbandHigh\x127\n" +
+	"\averdict\x18\a \x01(\x0e2\x1d.reckon.v1.ConsistencyVerdictR\averdictJ\x04\b\x06\x10\aR\n" +
 	"assessment\"\xf9\x02\n" +
 	"\x0fRobotStatistics\x124\n" +
 	"\bodometry\x18\x01 \x01(\v2\x18.reckon.v1.VerdictCountsR\bodometry\x12<\n" +
@@ -2067,7 +2128,13 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"!DISTRUST_REASON_HEADING_UNCERTAIN\x10\x03\x12 \n" +
 	"\x1cDISTRUST_REASON_INCONSISTENT\x10\x04\x12!\n" +
 	"\x1dDISTRUST_REASON_FIXES_REFUSED\x10\x05\x12#\n" +
-	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x062\xa6\x05\n" +
+	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x06*\xd3\x01\n" +
+	"\x12ConsistencyVerdict\x12#\n" +
+	"\x1fCONSISTENCY_VERDICT_UNSPECIFIED\x10\x00\x12\"\n" +
+	"\x1eCONSISTENCY_VERDICT_CONSISTENT\x10\x01\x12%\n" +
+	"!CONSISTENCY_VERDICT_OVERCONFIDENT\x10\x02\x12&\n" +
+	"\"CONSISTENCY_VERDICT_UNDERCONFIDENT\x10\x03\x12%\n" +
+	"!CONSISTENCY_VERDICT_TOO_FEW_FIXES\x10\x042\xa6\x05\n" +
 	"\rFusionService\x12L\n" +
 	"\vCreateRobot\x12\x1d.reckon.v1.CreateRobotRequest\x1a\x1e.reckon.v1.CreateRobotResponse\x12C\n" +
 	"\bGetRobot\x12\x1a.reckon.v1.GetRobotRequest\x1a\x1b.reckon.v1.GetRobotResponse\x12I\n" +
@@ -2092,93 +2159,95 @@ func file_reckon_v1_fusion_service_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_fusion_service_proto_rawDescData
 }
 
-var file_reckon_v1_fusion_service_proto_enumTypes = make([]protoimpl.EnumInfo, 3)
+var file_reckon_v1_fusion_service_proto_enumTypes = make([]protoimpl.EnumInfo, 4)
 var file_reckon_v1_fusion_service_proto_msgTypes = make([]protoimpl.MessageInfo, 25)
 var file_reckon_v1_fusion_service_proto_goTypes = []any{
 	(Verdict)(0),                  // 0: reckon.v1.Verdict
 	(EventKind)(0),                // 1: reckon.v1.EventKind
 	(DistrustReason)(0),           // 2: reckon.v1.DistrustReason
-	(*CreateRobotRequest)(nil),    // 3: reckon.v1.CreateRobotRequest
-	(*CreateRobotResponse)(nil),   // 4: reckon.v1.CreateRobotResponse
-	(*GetRobotRequest)(nil),       // 5: reckon.v1.GetRobotRequest
-	(*GetRobotResponse)(nil),      // 6: reckon.v1.GetRobotResponse
-	(*ListRobotsRequest)(nil),     // 7: reckon.v1.ListRobotsRequest
-	(*ListRobotsResponse)(nil),    // 8: reckon.v1.ListRobotsResponse
-	(*DeleteRobotRequest)(nil),    // 9: reckon.v1.DeleteRobotRequest
-	(*DeleteRobotResponse)(nil),   // 10: reckon.v1.DeleteRobotResponse
-	(*IngestRequest)(nil),         // 11: reckon.v1.IngestRequest
-	(*IngestResponse)(nil),        // 12: reckon.v1.IngestResponse
-	(*Resolution)(nil),            // 13: reckon.v1.Resolution
-	(*FusionEvent)(nil),           // 14: reckon.v1.FusionEvent
-	(*FusedPose)(nil),             // 15: reckon.v1.FusedPose
-	(*BodyVelocity)(nil),          // 16: reckon.v1.BodyVelocity
-	(*WatchRequest)(nil),          // 17: reckon.v1.WatchRequest
-	(*WatchResponse)(nil),         // 18: reckon.v1.WatchResponse
-	(*GetPoseAtRequest)(nil),      // 19: reckon.v1.GetPoseAtRequest
-	(*GetPoseAtResponse)(nil),     // 20: reckon.v1.GetPoseAtResponse
-	(*ReseedRobotRequest)(nil),    // 21: reckon.v1.ReseedRobotRequest
-	(*ReseedRobotResponse)(nil),   // 22: reckon.v1.ReseedRobotResponse
-	(*GetStatisticsRequest)(nil),  // 23: reckon.v1.GetStatisticsRequest
-	(*GetStatisticsResponse)(nil), // 24: reckon.v1.GetStatisticsResponse
-	(*VerdictCounts)(nil),         // 25: reckon.v1.VerdictCounts
-	(*SensorConsistency)(nil),     // 26: reckon.v1.SensorConsistency
-	(*RobotStatistics)(nil),       // 27: reckon.v1.RobotStatistics
-	(*RobotConfig)(nil),           // 28: reckon.v1.RobotConfig
-	(*Robot)(nil),                 // 29: reckon.v1.Robot
-	(*Sample)(nil),                // 30: reckon.v1.Sample
-	(*FloorPose)(nil),             // 31: reckon.v1.FloorPose
-	(*Covariance)(nil),            // 32: reckon.v1.Covariance
-	(*Reseed)(nil),                // 33: reckon.v1.Reseed
+	(ConsistencyVerdict)(0),       // 3: reckon.v1.ConsistencyVerdict
+	(*CreateRobotRequest)(nil),    // 4: reckon.v1.CreateRobotRequest
+	(*CreateRobotResponse)(nil),   // 5: reckon.v1.CreateRobotResponse
+	(*GetRobotRequest)(nil),       // 6: reckon.v1.GetRobotRequest
+	(*GetRobotResponse)(nil),      // 7: reckon.v1.GetRobotResponse
+	(*ListRobotsRequest)(nil),     // 8: reckon.v1.ListRobotsRequest
+	(*ListRobotsResponse)(nil),    // 9: reckon.v1.ListRobotsResponse
+	(*DeleteRobotRequest)(nil),    // 10: reckon.v1.DeleteRobotRequest
+	(*DeleteRobotResponse)(nil),   // 11: reckon.v1.DeleteRobotResponse
+	(*IngestRequest)(nil),         // 12: reckon.v1.IngestRequest
+	(*IngestResponse)(nil),        // 13: reckon.v1.IngestResponse
+	(*Resolution)(nil),            // 14: reckon.v1.Resolution
+	(*FusionEvent)(nil),           // 15: reckon.v1.FusionEvent
+	(*FusedPose)(nil),             // 16: reckon.v1.FusedPose
+	(*BodyVelocity)(nil),          // 17: reckon.v1.BodyVelocity
+	(*WatchRequest)(nil),          // 18: reckon.v1.WatchRequest
+	(*WatchResponse)(nil),         // 19: reckon.v1.WatchResponse
+	(*GetPoseAtRequest)(nil),      // 20: reckon.v1.GetPoseAtRequest
+	(*GetPoseAtResponse)(nil),     // 21: reckon.v1.GetPoseAtResponse
+	(*ReseedRobotRequest)(nil),    // 22: reckon.v1.ReseedRobotRequest
+	(*ReseedRobotResponse)(nil),   // 23: reckon.v1.ReseedRobotResponse
+	(*GetStatisticsRequest)(nil),  // 24: reckon.v1.GetStatisticsRequest
+	(*GetStatisticsResponse)(nil), // 25: reckon.v1.GetStatisticsResponse
+	(*VerdictCounts)(nil),         // 26: reckon.v1.VerdictCounts
+	(*SensorConsistency)(nil),     // 27: reckon.v1.SensorConsistency
+	(*RobotStatistics)(nil),       // 28: reckon.v1.RobotStatistics
+	(*RobotConfig)(nil),           // 29: reckon.v1.RobotConfig
+	(*Robot)(nil),                 // 30: reckon.v1.Robot
+	(*Sample)(nil),                // 31: reckon.v1.Sample
+	(*FloorPose)(nil),             // 32: reckon.v1.FloorPose
+	(*Covariance)(nil),            // 33: reckon.v1.Covariance
+	(*Reseed)(nil),                // 34: reckon.v1.Reseed
 }
 var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
-	28, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
-	29, // 1: reckon.v1.CreateRobotResponse.robot:type_name -> reckon.v1.Robot
-	29, // 2: reckon.v1.GetRobotResponse.robot:type_name -> reckon.v1.Robot
-	29, // 3: reckon.v1.ListRobotsResponse.robots:type_name -> reckon.v1.Robot
-	30, // 4: reckon.v1.IngestRequest.sample:type_name -> reckon.v1.Sample
+	29, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
+	30, // 1: reckon.v1.CreateRobotResponse.robot:type_name -> reckon.v1.Robot
+	30, // 2: reckon.v1.GetRobotResponse.robot:type_name -> reckon.v1.Robot
+	30, // 3: reckon.v1.ListRobotsResponse.robots:type_name -> reckon.v1.Robot
+	31, // 4: reckon.v1.IngestRequest.sample:type_name -> reckon.v1.Sample
 	0,  // 5: reckon.v1.IngestResponse.verdict:type_name -> reckon.v1.Verdict
-	13, // 6: reckon.v1.IngestResponse.resolved:type_name -> reckon.v1.Resolution
-	14, // 7: reckon.v1.IngestResponse.events:type_name -> reckon.v1.FusionEvent
+	14, // 6: reckon.v1.IngestResponse.resolved:type_name -> reckon.v1.Resolution
+	15, // 7: reckon.v1.IngestResponse.events:type_name -> reckon.v1.FusionEvent
 	0,  // 8: reckon.v1.Resolution.verdict:type_name -> reckon.v1.Verdict
 	1,  // 9: reckon.v1.FusionEvent.kind:type_name -> reckon.v1.EventKind
-	31, // 10: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
-	32, // 11: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
-	16, // 12: reckon.v1.FusedPose.velocity:type_name -> reckon.v1.BodyVelocity
+	32, // 10: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
+	33, // 11: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
+	17, // 12: reckon.v1.FusedPose.velocity:type_name -> reckon.v1.BodyVelocity
 	2,  // 13: reckon.v1.FusedPose.distrust:type_name -> reckon.v1.DistrustReason
-	15, // 14: reckon.v1.WatchResponse.pose:type_name -> reckon.v1.FusedPose
-	14, // 15: reckon.v1.WatchResponse.events:type_name -> reckon.v1.FusionEvent
-	15, // 16: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
-	33, // 17: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
+	16, // 14: reckon.v1.WatchResponse.pose:type_name -> reckon.v1.FusedPose
+	15, // 15: reckon.v1.WatchResponse.events:type_name -> reckon.v1.FusionEvent
+	16, // 16: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
+	34, // 17: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
 	0,  // 18: reckon.v1.ReseedRobotResponse.verdict:type_name -> reckon.v1.Verdict
-	27, // 19: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
-	25, // 20: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
-	25, // 21: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
-	25, // 22: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
-	26, // 23: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
-	2,  // 24: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
-	3,  // 25: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
-	5,  // 26: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
-	7,  // 27: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
-	9,  // 28: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
-	11, // 29: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
-	17, // 30: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
-	19, // 31: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
-	21, // 32: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
-	23, // 33: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
-	4,  // 34: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
-	6,  // 35: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
-	8,  // 36: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
-	10, // 37: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
-	12, // 38: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
-	18, // 39: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
-	20, // 40: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
-	22, // 41: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
-	24, // 42: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
-	34, // [34:43] is the sub-list for method output_type
-	25, // [25:34] is the sub-list for method input_type
-	25, // [25:25] is the sub-list for extension type_name
-	25, // [25:25] is the sub-list for extension extendee
-	0,  // [0:25] is the sub-list for field type_name
+	28, // 19: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
+	26, // 20: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
+	3,  // 21: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
+	26, // 22: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
+	26, // 23: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
+	27, // 24: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
+	2,  // 25: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
+	4,  // 26: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
+	6,  // 27: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
+	8,  // 28: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
+	10, // 29: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
+	12, // 30: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
+	18, // 31: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
+	20, // 32: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
+	22, // 33: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
+	24, // 34: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
+	5,  // 35: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
+	7,  // 36: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
+	9,  // 37: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
+	11, // 38: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
+	13, // 39: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
+	19, // 40: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
+	21, // 41: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
+	23, // 42: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
+	25, // 43: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
+	35, // [35:44] is the sub-list for method output_type
+	26, // [26:35] is the sub-list for method input_type
+	26, // [26:26] is the sub-list for extension type_name
+	26, // [26:26] is the sub-list for extension extendee
+	0,  // [0:26] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_fusion_service_proto_init() }
@@ -2193,7 +2262,7 @@ func file_reckon_v1_fusion_service_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_fusion_service_proto_rawDesc), len(file_reckon_v1_fusion_service_proto_rawDesc)),
-			NumEnums:      3,
+			NumEnums:      4,
 			NumMessages:   25,
 			NumExtensions: 0,
 			NumServices:   1,

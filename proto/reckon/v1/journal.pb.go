@@ -168,7 +168,8 @@ type JournalSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The sequence number of the last input included.
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
-	// The state, in the estimator's own versioned encoding.
+	// The state: the bytes of a RobotSnapshot, which package fusion writes
+	// and reads itself (it does not depend on the generated code).
 	State         []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -218,6 +219,891 @@ func (x *JournalSnapshot) GetState() []byte {
 	return nil
 }
 
+// RobotSnapshot is a robot's complete state, from which it goes on bit for
+// bit as it would have. Every scalar is written even when zero, so that a
+// negative zero survives. A change of layout or meaning bumps version.
+type RobotSnapshot struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The layout version; a robot reads only its own.
+	Version uint32 `protobuf:"varint,1,opt,name=version,proto3" json:"version,omitempty"`
+	// The filter's estimate now.
+	Filter *EstimateState `protobuf:"bytes,2,opt,name=filter,proto3" json:"filter,omitempty"`
+	// Whether the IMU offset is initialised since the pose was last set.
+	OffsetReady bool `protobuf:"varint,3,opt,name=offset_ready,json=offsetReady,proto3" json:"offset_ready,omitempty"`
+	// Whether odometry has started the history.
+	Started bool `protobuf:"varint,4,opt,name=started,proto3" json:"started,omitempty"`
+	// The checkpoint before the first entry of the window.
+	Base *SnapshotCheckpoint `protobuf:"bytes,5,opt,name=base,proto3" json:"base,omitempty"`
+	// The stamp of base, nanoseconds: the oldest stamp still accepted.
+	BaseNs int64 `protobuf:"varint,6,opt,name=base_ns,json=baseNs,proto3" json:"base_ns,omitempty"`
+	// The end of the newest odometry interval, nanoseconds.
+	NewestNs int64 `protobuf:"varint,7,opt,name=newest_ns,json=newestNs,proto3" json:"newest_ns,omitempty"`
+	// The history window, in stamp order.
+	Entries []*SnapshotEntry `protobuf:"bytes,8,rep,name=entries,proto3" json:"entries,omitempty"`
+	// The inputs held waiting for odometry, in stamp order.
+	Held []*SnapshotEntry `protobuf:"bytes,9,rep,name=held,proto3" json:"held,omitempty"`
+	// The wheels' last cumulative counts, when odometry carries counts.
+	LastCounts []int64 `protobuf:"varint,10,rep,packed,name=last_counts,json=lastCounts,proto3" json:"last_counts,omitempty"`
+	// The IMU heading at newest_ns in IMU rotation mode, radians.
+	LastImuHeadingRad *float64 `protobuf:"fixed64,11,opt,name=last_imu_heading_rad,json=lastImuHeadingRad,proto3,oneof" json:"last_imu_heading_rad,omitempty"`
+	// The last arrival sequence number given.
+	Sequence uint64 `protobuf:"varint,12,opt,name=sequence,proto3" json:"sequence,omitempty"`
+	// Odometry verdicts.
+	Odometry *VerdictCounts `protobuf:"bytes,13,opt,name=odometry,proto3" json:"odometry,omitempty"`
+	// Verdicts of the other inputs.
+	Measurements *VerdictCounts `protobuf:"bytes,14,opt,name=measurements,proto3" json:"measurements,omitempty"`
+	// Per sensor, in order of first appearance.
+	Sensors []*SnapshotSensor `protobuf:"bytes,15,rep,name=sensors,proto3" json:"sensors,omitempty"`
+	// Slip episodes suspected.
+	Slips uint64 `protobuf:"varint,16,opt,name=slips,proto3" json:"slips,omitempty"`
+	// Odometry gaps.
+	Gaps uint64 `protobuf:"varint,17,opt,name=gaps,proto3" json:"gaps,omitempty"`
+	// Move recoveries.
+	Recoveries uint64 `protobuf:"varint,18,opt,name=recoveries,proto3" json:"recoveries,omitempty"`
+	// The distrust reasons as fusion's TrustReason bit set holds them (its
+	// own encoding; the wire lists reasons as DistrustReason values).
+	Distrust uint32 `protobuf:"varint,19,opt,name=distrust,proto3" json:"distrust,omitempty"`
+	// Fixes refused in a row.
+	RefusedRun int64 `protobuf:"varint,20,opt,name=refused_run,json=refusedRun,proto3" json:"refused_run,omitempty"`
+	// Whether the last update failed numerically.
+	Fault bool `protobuf:"varint,21,opt,name=fault,proto3" json:"fault,omitempty"`
+	// The trust window of fix NIS values (absent before the first input).
+	FixWindow *SnapshotNisWindow `protobuf:"bytes,22,opt,name=fix_window,json=fixWindow,proto3" json:"fix_window,omitempty"`
+	// The trust window of IMU heading NIS values.
+	ImuWindow *SnapshotNisWindow `protobuf:"bytes,23,opt,name=imu_window,json=imuWindow,proto3" json:"imu_window,omitempty"`
+	// Refused pose fixes kept as evidence of a move.
+	Candidates    []*SnapshotCandidate `protobuf:"bytes,24,rep,name=candidates,proto3" json:"candidates,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RobotSnapshot) Reset() {
+	*x = RobotSnapshot{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RobotSnapshot) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RobotSnapshot) ProtoMessage() {}
+
+func (x *RobotSnapshot) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RobotSnapshot.ProtoReflect.Descriptor instead.
+func (*RobotSnapshot) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+}
+
+func (x *RobotSnapshot) GetVersion() uint32 {
+	if x != nil {
+		return x.Version
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetFilter() *EstimateState {
+	if x != nil {
+		return x.Filter
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetOffsetReady() bool {
+	if x != nil {
+		return x.OffsetReady
+	}
+	return false
+}
+
+func (x *RobotSnapshot) GetStarted() bool {
+	if x != nil {
+		return x.Started
+	}
+	return false
+}
+
+func (x *RobotSnapshot) GetBase() *SnapshotCheckpoint {
+	if x != nil {
+		return x.Base
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetBaseNs() int64 {
+	if x != nil {
+		return x.BaseNs
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetNewestNs() int64 {
+	if x != nil {
+		return x.NewestNs
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetEntries() []*SnapshotEntry {
+	if x != nil {
+		return x.Entries
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetHeld() []*SnapshotEntry {
+	if x != nil {
+		return x.Held
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetLastCounts() []int64 {
+	if x != nil {
+		return x.LastCounts
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetLastImuHeadingRad() float64 {
+	if x != nil && x.LastImuHeadingRad != nil {
+		return *x.LastImuHeadingRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSequence() uint64 {
+	if x != nil {
+		return x.Sequence
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetOdometry() *VerdictCounts {
+	if x != nil {
+		return x.Odometry
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetMeasurements() *VerdictCounts {
+	if x != nil {
+		return x.Measurements
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetSensors() []*SnapshotSensor {
+	if x != nil {
+		return x.Sensors
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetSlips() uint64 {
+	if x != nil {
+		return x.Slips
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetGaps() uint64 {
+	if x != nil {
+		return x.Gaps
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetRecoveries() uint64 {
+	if x != nil {
+		return x.Recoveries
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetDistrust() uint32 {
+	if x != nil {
+		return x.Distrust
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetRefusedRun() int64 {
+	if x != nil {
+		return x.RefusedRun
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetFault() bool {
+	if x != nil {
+		return x.Fault
+	}
+	return false
+}
+
+func (x *RobotSnapshot) GetFixWindow() *SnapshotNisWindow {
+	if x != nil {
+		return x.FixWindow
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetImuWindow() *SnapshotNisWindow {
+	if x != nil {
+		return x.ImuWindow
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetCandidates() []*SnapshotCandidate {
+	if x != nil {
+		return x.Candidates
+	}
+	return nil
+}
+
+// EstimateState is a filter's mean and covariance.
+type EstimateState struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The state size, 3 or 4.
+	Size uint32 `protobuf:"varint,1,opt,name=size,proto3" json:"size,omitempty"`
+	// The mean (x m, y m, heading rad, IMU offset rad), size entries.
+	Mean []float64 `protobuf:"fixed64,2,rep,packed,name=mean,proto3" json:"mean,omitempty"`
+	// The covariance, size x size row-major.
+	Covariance    []float64 `protobuf:"fixed64,3,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *EstimateState) Reset() {
+	*x = EstimateState{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *EstimateState) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*EstimateState) ProtoMessage() {}
+
+func (x *EstimateState) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use EstimateState.ProtoReflect.Descriptor instead.
+func (*EstimateState) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
+}
+
+func (x *EstimateState) GetSize() uint32 {
+	if x != nil {
+		return x.Size
+	}
+	return 0
+}
+
+func (x *EstimateState) GetMean() []float64 {
+	if x != nil {
+		return x.Mean
+	}
+	return nil
+}
+
+func (x *EstimateState) GetCovariance() []float64 {
+	if x != nil {
+		return x.Covariance
+	}
+	return nil
+}
+
+// SnapshotCheckpoint is the estimate after an input.
+type SnapshotCheckpoint struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The estimate.
+	Estimate *EstimateState `protobuf:"bytes,1,opt,name=estimate,proto3" json:"estimate,omitempty"`
+	// Whether the IMU offset was initialised.
+	OffsetReady   bool `protobuf:"varint,2,opt,name=offset_ready,json=offsetReady,proto3" json:"offset_ready,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotCheckpoint) Reset() {
+	*x = SnapshotCheckpoint{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotCheckpoint) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotCheckpoint) ProtoMessage() {}
+
+func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotCheckpoint.ProtoReflect.Descriptor instead.
+func (*SnapshotCheckpoint) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+}
+
+func (x *SnapshotCheckpoint) GetEstimate() *EstimateState {
+	if x != nil {
+		return x.Estimate
+	}
+	return nil
+}
+
+func (x *SnapshotCheckpoint) GetOffsetReady() bool {
+	if x != nil {
+		return x.OffsetReady
+	}
+	return false
+}
+
+// SnapshotEntry is one input in the history window or the hold queue.
+type SnapshotEntry struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// 1 odometry, 2 measurement, 3 reseed.
+	Kind uint32 `protobuf:"varint,1,opt,name=kind,proto3" json:"kind,omitempty"`
+	// Start of the interval (odometry) or the stamp, nanoseconds.
+	StartNs int64 `protobuf:"varint,2,opt,name=start_ns,json=startNs,proto3" json:"start_ns,omitempty"`
+	// End of the interval or the stamp, nanoseconds.
+	EndNs int64 `protobuf:"varint,3,opt,name=end_ns,json=endNs,proto3" json:"end_ns,omitempty"`
+	// The input's arrival sequence number.
+	Sequence uint64 `protobuf:"varint,4,opt,name=sequence,proto3" json:"sequence,omitempty"`
+	// Odometry: the body step forward m, left m, turn rad.
+	Step []float64 `protobuf:"fixed64,5,rep,packed,name=step,proto3" json:"step,omitempty"`
+	// Odometry: the step's 3x3 covariance, row-major.
+	StepCovariance []float64 `protobuf:"fixed64,6,rep,packed,name=step_covariance,json=stepCovariance,proto3" json:"step_covariance,omitempty"`
+	// Measurement: the measurement.
+	Measurement *SnapshotMeasurement `protobuf:"bytes,7,opt,name=measurement,proto3" json:"measurement,omitempty"`
+	// Measurement: whether it is an IMU heading.
+	Imu bool `protobuf:"varint,8,opt,name=imu,proto3" json:"imu,omitempty"`
+	// Measurement: the index of its sensor in sensors.
+	Sensor int32 `protobuf:"varint,9,opt,name=sensor,proto3" json:"sensor,omitempty"`
+	// Reseed: the pose x m, y m, heading rad.
+	Pose []float64 `protobuf:"fixed64,10,rep,packed,name=pose,proto3" json:"pose,omitempty"`
+	// Reseed: the pose's 3x3 covariance, row-major.
+	PoseCovariance []float64 `protobuf:"fixed64,11,rep,packed,name=pose_covariance,json=poseCovariance,proto3" json:"pose_covariance,omitempty"`
+	// The estimate after the entry.
+	After *SnapshotCheckpoint `protobuf:"bytes,12,opt,name=after,proto3" json:"after,omitempty"`
+	// Measurement: its NIS.
+	Nis float64 `protobuf:"fixed64,13,opt,name=nis,proto3" json:"nis,omitempty"`
+	// Measurement: its dimension.
+	NisDimension int32 `protobuf:"varint,14,opt,name=nis_dimension,json=nisDimension,proto3" json:"nis_dimension,omitempty"`
+	// Measurement: whether the gate refused it.
+	Gated bool `protobuf:"varint,15,opt,name=gated,proto3" json:"gated,omitempty"`
+	// Measurement: whether this IMU heading initialised the offset.
+	Initialised   bool `protobuf:"varint,16,opt,name=initialised,proto3" json:"initialised,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotEntry) Reset() {
+	*x = SnapshotEntry{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotEntry) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotEntry) ProtoMessage() {}
+
+func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotEntry.ProtoReflect.Descriptor instead.
+func (*SnapshotEntry) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
+}
+
+func (x *SnapshotEntry) GetKind() uint32 {
+	if x != nil {
+		return x.Kind
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetStartNs() int64 {
+	if x != nil {
+		return x.StartNs
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetEndNs() int64 {
+	if x != nil {
+		return x.EndNs
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetSequence() uint64 {
+	if x != nil {
+		return x.Sequence
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetStep() []float64 {
+	if x != nil {
+		return x.Step
+	}
+	return nil
+}
+
+func (x *SnapshotEntry) GetStepCovariance() []float64 {
+	if x != nil {
+		return x.StepCovariance
+	}
+	return nil
+}
+
+func (x *SnapshotEntry) GetMeasurement() *SnapshotMeasurement {
+	if x != nil {
+		return x.Measurement
+	}
+	return nil
+}
+
+func (x *SnapshotEntry) GetImu() bool {
+	if x != nil {
+		return x.Imu
+	}
+	return false
+}
+
+func (x *SnapshotEntry) GetSensor() int32 {
+	if x != nil {
+		return x.Sensor
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetPose() []float64 {
+	if x != nil {
+		return x.Pose
+	}
+	return nil
+}
+
+func (x *SnapshotEntry) GetPoseCovariance() []float64 {
+	if x != nil {
+		return x.PoseCovariance
+	}
+	return nil
+}
+
+func (x *SnapshotEntry) GetAfter() *SnapshotCheckpoint {
+	if x != nil {
+		return x.After
+	}
+	return nil
+}
+
+func (x *SnapshotEntry) GetNis() float64 {
+	if x != nil {
+		return x.Nis
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetNisDimension() int32 {
+	if x != nil {
+		return x.NisDimension
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetGated() bool {
+	if x != nil {
+		return x.Gated
+	}
+	return false
+}
+
+func (x *SnapshotEntry) GetInitialised() bool {
+	if x != nil {
+		return x.Initialised
+	}
+	return false
+}
+
+// SnapshotMeasurement is a measurement as the estimator takes it.
+type SnapshotMeasurement struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The estimator's measurement kind (1 pose, 2 position, 3 heading, 4
+	// range and bearing, 5 range, 6 bearing, 7 IMU heading).
+	Kind uint32 `protobuf:"varint,1,opt,name=kind,proto3" json:"kind,omitempty"`
+	// The sensor's body mount x m, y m, heading rad.
+	Mount []float64 `protobuf:"fixed64,2,rep,packed,name=mount,proto3" json:"mount,omitempty"`
+	// The landmark's field x, metres.
+	LandmarkXM float64 `protobuf:"fixed64,3,opt,name=landmark_x_m,json=landmarkXM,proto3" json:"landmark_x_m,omitempty"`
+	// The landmark's field y, metres.
+	LandmarkYM float64 `protobuf:"fixed64,4,opt,name=landmark_y_m,json=landmarkYM,proto3" json:"landmark_y_m,omitempty"`
+	// The measured values, 3 entries.
+	Z []float64 `protobuf:"fixed64,5,rep,packed,name=z,proto3" json:"z,omitempty"`
+	// The measurement covariance, 3x3 row-major (stride 3).
+	R             []float64 `protobuf:"fixed64,6,rep,packed,name=r,proto3" json:"r,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotMeasurement) Reset() {
+	*x = SnapshotMeasurement{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotMeasurement) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotMeasurement) ProtoMessage() {}
+
+func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotMeasurement.ProtoReflect.Descriptor instead.
+func (*SnapshotMeasurement) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
+}
+
+func (x *SnapshotMeasurement) GetKind() uint32 {
+	if x != nil {
+		return x.Kind
+	}
+	return 0
+}
+
+func (x *SnapshotMeasurement) GetMount() []float64 {
+	if x != nil {
+		return x.Mount
+	}
+	return nil
+}
+
+func (x *SnapshotMeasurement) GetLandmarkXM() float64 {
+	if x != nil {
+		return x.LandmarkXM
+	}
+	return 0
+}
+
+func (x *SnapshotMeasurement) GetLandmarkYM() float64 {
+	if x != nil {
+		return x.LandmarkYM
+	}
+	return 0
+}
+
+func (x *SnapshotMeasurement) GetZ() []float64 {
+	if x != nil {
+		return x.Z
+	}
+	return nil
+}
+
+func (x *SnapshotMeasurement) GetR() []float64 {
+	if x != nil {
+		return x.R
+	}
+	return nil
+}
+
+// SnapshotSensor is one sensor's consistency record.
+type SnapshotSensor struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The sensor ("imu" for the IMU).
+	SensorId string `protobuf:"bytes,1,opt,name=sensor_id,json=sensorId,proto3" json:"sensor_id,omitempty"`
+	// Its verdicts.
+	Counts *VerdictCounts `protobuf:"bytes,2,opt,name=counts,proto3" json:"counts,omitempty"`
+	// Sum of the NIS of its applied fixes.
+	NisSum float64 `protobuf:"fixed64,3,opt,name=nis_sum,json=nisSum,proto3" json:"nis_sum,omitempty"`
+	// Sum of their dimensions.
+	DofSum int64 `protobuf:"varint,4,opt,name=dof_sum,json=dofSum,proto3" json:"dof_sum,omitempty"`
+	// The gate probability its inputs passed (1: not gated).
+	GateProbability float64 `protobuf:"fixed64,5,opt,name=gate_probability,json=gateProbability,proto3" json:"gate_probability,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
+}
+
+func (x *SnapshotSensor) Reset() {
+	*x = SnapshotSensor{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotSensor) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotSensor) ProtoMessage() {}
+
+func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotSensor.ProtoReflect.Descriptor instead.
+func (*SnapshotSensor) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
+}
+
+func (x *SnapshotSensor) GetSensorId() string {
+	if x != nil {
+		return x.SensorId
+	}
+	return ""
+}
+
+func (x *SnapshotSensor) GetCounts() *VerdictCounts {
+	if x != nil {
+		return x.Counts
+	}
+	return nil
+}
+
+func (x *SnapshotSensor) GetNisSum() float64 {
+	if x != nil {
+		return x.NisSum
+	}
+	return 0
+}
+
+func (x *SnapshotSensor) GetDofSum() int64 {
+	if x != nil {
+		return x.DofSum
+	}
+	return 0
+}
+
+func (x *SnapshotSensor) GetGateProbability() float64 {
+	if x != nil {
+		return x.GateProbability
+	}
+	return 0
+}
+
+// SnapshotNisWindow is a ring of recent NIS values.
+type SnapshotNisWindow struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The NIS values.
+	Nis []float64 `protobuf:"fixed64,1,rep,packed,name=nis,proto3" json:"nis,omitempty"`
+	// Their dimensions.
+	Dimensions []int64 `protobuf:"varint,2,rep,packed,name=dimensions,proto3" json:"dimensions,omitempty"`
+	// The next slot to write.
+	Position int64 `protobuf:"varint,3,opt,name=position,proto3" json:"position,omitempty"`
+	// How many slots are filled.
+	Fill int64 `protobuf:"varint,4,opt,name=fill,proto3" json:"fill,omitempty"`
+	// Whether the window raised inconsistent.
+	Raised        bool `protobuf:"varint,5,opt,name=raised,proto3" json:"raised,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotNisWindow) Reset() {
+	*x = SnapshotNisWindow{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotNisWindow) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotNisWindow) ProtoMessage() {}
+
+func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotNisWindow.ProtoReflect.Descriptor instead.
+func (*SnapshotNisWindow) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
+}
+
+func (x *SnapshotNisWindow) GetNis() []float64 {
+	if x != nil {
+		return x.Nis
+	}
+	return nil
+}
+
+func (x *SnapshotNisWindow) GetDimensions() []int64 {
+	if x != nil {
+		return x.Dimensions
+	}
+	return nil
+}
+
+func (x *SnapshotNisWindow) GetPosition() int64 {
+	if x != nil {
+		return x.Position
+	}
+	return 0
+}
+
+func (x *SnapshotNisWindow) GetFill() int64 {
+	if x != nil {
+		return x.Fill
+	}
+	return 0
+}
+
+func (x *SnapshotNisWindow) GetRaised() bool {
+	if x != nil {
+		return x.Raised
+	}
+	return false
+}
+
+// SnapshotCandidate is a refused pose fix kept as evidence of a move.
+type SnapshotCandidate struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Its stamp, nanoseconds.
+	StampNs int64 `protobuf:"varint,1,opt,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
+	// The robot pose it implies, x m, y m, heading rad.
+	Implied []float64 `protobuf:"fixed64,2,rep,packed,name=implied,proto3" json:"implied,omitempty"`
+	// The correction from the filter's pose to implied, x m, y m, heading rad.
+	Correction []float64 `protobuf:"fixed64,3,rep,packed,name=correction,proto3" json:"correction,omitempty"`
+	// The 3x3 covariance of implied, row-major.
+	Covariance    []float64 `protobuf:"fixed64,4,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotCandidate) Reset() {
+	*x = SnapshotCandidate{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotCandidate) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotCandidate) ProtoMessage() {}
+
+func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotCandidate.ProtoReflect.Descriptor instead.
+func (*SnapshotCandidate) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
+}
+
+func (x *SnapshotCandidate) GetStampNs() int64 {
+	if x != nil {
+		return x.StampNs
+	}
+	return 0
+}
+
+func (x *SnapshotCandidate) GetImplied() []float64 {
+	if x != nil {
+		return x.Implied
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetCorrection() []float64 {
+	if x != nil {
+		return x.Correction
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetCovariance() []float64 {
+	if x != nil {
+		return x.Covariance
+	}
+	return nil
+}
+
 // JournalOpening starts a robot's journal.
 type JournalOpening struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -233,7 +1119,7 @@ type JournalOpening struct {
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -245,7 +1131,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -258,7 +1144,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -299,7 +1185,7 @@ type JournalInput struct {
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -311,7 +1197,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -324,7 +1210,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -362,7 +1248,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -374,7 +1260,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -387,7 +1273,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -415,7 +1301,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -427,7 +1313,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -440,7 +1326,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -464,7 +1350,101 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x05entry\"C\n" +
 	"\x0fJournalSnapshot\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
-	"\x05state\x18\x02 \x01(\fR\x05state\"\x85\x01\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\"\xed\a\n" +
+	"\rRobotSnapshot\x12\x18\n" +
+	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
+	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
+	"\foffset_ready\x18\x03 \x01(\bR\voffsetReady\x12\x18\n" +
+	"\astarted\x18\x04 \x01(\bR\astarted\x121\n" +
+	"\x04base\x18\x05 \x01(\v2\x1d.reckon.v1.SnapshotCheckpointR\x04base\x12\x17\n" +
+	"\abase_ns\x18\x06 \x01(\x03R\x06baseNs\x12\x1b\n" +
+	"\tnewest_ns\x18\a \x01(\x03R\bnewestNs\x122\n" +
+	"\aentries\x18\b \x03(\v2\x18.reckon.v1.SnapshotEntryR\aentries\x12,\n" +
+	"\x04held\x18\t \x03(\v2\x18.reckon.v1.SnapshotEntryR\x04held\x12\x1f\n" +
+	"\vlast_counts\x18\n" +
+	" \x03(\x03R\n" +
+	"lastCounts\x124\n" +
+	"\x14last_imu_heading_rad\x18\v \x01(\x01H\x00R\x11lastImuHeadingRad\x88\x01\x01\x12\x1a\n" +
+	"\bsequence\x18\f \x01(\x04R\bsequence\x124\n" +
+	"\bodometry\x18\r \x01(\v2\x18.reckon.v1.VerdictCountsR\bodometry\x12<\n" +
+	"\fmeasurements\x18\x0e \x01(\v2\x18.reckon.v1.VerdictCountsR\fmeasurements\x123\n" +
+	"\asensors\x18\x0f \x03(\v2\x19.reckon.v1.SnapshotSensorR\asensors\x12\x14\n" +
+	"\x05slips\x18\x10 \x01(\x04R\x05slips\x12\x12\n" +
+	"\x04gaps\x18\x11 \x01(\x04R\x04gaps\x12\x1e\n" +
+	"\n" +
+	"recoveries\x18\x12 \x01(\x04R\n" +
+	"recoveries\x12\x1a\n" +
+	"\bdistrust\x18\x13 \x01(\rR\bdistrust\x12\x1f\n" +
+	"\vrefused_run\x18\x14 \x01(\x03R\n" +
+	"refusedRun\x12\x14\n" +
+	"\x05fault\x18\x15 \x01(\bR\x05fault\x12;\n" +
+	"\n" +
+	"fix_window\x18\x16 \x01(\v2\x1c.reckon.v1.SnapshotNisWindowR\tfixWindow\x12;\n" +
+	"\n" +
+	"imu_window\x18\x17 \x01(\v2\x1c.reckon.v1.SnapshotNisWindowR\timuWindow\x12<\n" +
+	"\n" +
+	"candidates\x18\x18 \x03(\v2\x1c.reckon.v1.SnapshotCandidateR\n" +
+	"candidatesB\x17\n" +
+	"\x15_last_imu_heading_rad\"W\n" +
+	"\rEstimateState\x12\x12\n" +
+	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
+	"\x04mean\x18\x02 \x03(\x01R\x04mean\x12\x1e\n" +
+	"\n" +
+	"covariance\x18\x03 \x03(\x01R\n" +
+	"covariance\"m\n" +
+	"\x12SnapshotCheckpoint\x124\n" +
+	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
+	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xfb\x03\n" +
+	"\rSnapshotEntry\x12\x12\n" +
+	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
+	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
+	"\x06end_ns\x18\x03 \x01(\x03R\x05endNs\x12\x1a\n" +
+	"\bsequence\x18\x04 \x01(\x04R\bsequence\x12\x12\n" +
+	"\x04step\x18\x05 \x03(\x01R\x04step\x12'\n" +
+	"\x0fstep_covariance\x18\x06 \x03(\x01R\x0estepCovariance\x12@\n" +
+	"\vmeasurement\x18\a \x01(\v2\x1e.reckon.v1.SnapshotMeasurementR\vmeasurement\x12\x10\n" +
+	"\x03imu\x18\b \x01(\bR\x03imu\x12\x16\n" +
+	"\x06sensor\x18\t \x01(\x05R\x06sensor\x12\x12\n" +
+	"\x04pose\x18\n" +
+	" \x03(\x01R\x04pose\x12'\n" +
+	"\x0fpose_covariance\x18\v \x03(\x01R\x0eposeCovariance\x123\n" +
+	"\x05after\x18\f \x01(\v2\x1d.reckon.v1.SnapshotCheckpointR\x05after\x12\x10\n" +
+	"\x03nis\x18\r \x01(\x01R\x03nis\x12#\n" +
+	"\rnis_dimension\x18\x0e \x01(\x05R\fnisDimension\x12\x14\n" +
+	"\x05gated\x18\x0f \x01(\bR\x05gated\x12 \n" +
+	"\vinitialised\x18\x10 \x01(\bR\vinitialised\"\x9f\x01\n" +
+	"\x13SnapshotMeasurement\x12\x12\n" +
+	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
+	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
+	"\flandmark_x_m\x18\x03 \x01(\x01R\n" +
+	"landmarkXM\x12 \n" +
+	"\flandmark_y_m\x18\x04 \x01(\x01R\n" +
+	"landmarkYM\x12\f\n" +
+	"\x01z\x18\x05 \x03(\x01R\x01z\x12\f\n" +
+	"\x01r\x18\x06 \x03(\x01R\x01r\"\xbc\x01\n" +
+	"\x0eSnapshotSensor\x12\x1b\n" +
+	"\tsensor_id\x18\x01 \x01(\tR\bsensorId\x120\n" +
+	"\x06counts\x18\x02 \x01(\v2\x18.reckon.v1.VerdictCountsR\x06counts\x12\x17\n" +
+	"\anis_sum\x18\x03 \x01(\x01R\x06nisSum\x12\x17\n" +
+	"\adof_sum\x18\x04 \x01(\x03R\x06dofSum\x12)\n" +
+	"\x10gate_probability\x18\x05 \x01(\x01R\x0fgateProbability\"\x8d\x01\n" +
+	"\x11SnapshotNisWindow\x12\x10\n" +
+	"\x03nis\x18\x01 \x03(\x01R\x03nis\x12\x1e\n" +
+	"\n" +
+	"dimensions\x18\x02 \x03(\x03R\n" +
+	"dimensions\x12\x1a\n" +
+	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
+	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
+	"\x06raised\x18\x05 \x01(\bR\x06raised\"\x88\x01\n" +
+	"\x11SnapshotCandidate\x12\x19\n" +
+	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x18\n" +
+	"\aimplied\x18\x02 \x03(\x01R\aimplied\x12\x1e\n" +
+	"\n" +
+	"correction\x18\x03 \x03(\x01R\n" +
+	"correction\x12\x1e\n" +
+	"\n" +
+	"covariance\x18\x04 \x03(\x01R\n" +
+	"covariance\"\x85\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12-\n" +
@@ -491,34 +1471,57 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 6)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 14)
 var file_reckon_v1_journal_proto_goTypes = []any{
-	(*JournalRecord)(nil),   // 0: reckon.v1.JournalRecord
-	(*JournalSnapshot)(nil), // 1: reckon.v1.JournalSnapshot
-	(*JournalOpening)(nil),  // 2: reckon.v1.JournalOpening
-	(*JournalInput)(nil),    // 3: reckon.v1.JournalInput
-	(*JournalOutput)(nil),   // 4: reckon.v1.JournalOutput
-	(*JournalClosing)(nil),  // 5: reckon.v1.JournalClosing
-	(*RobotConfig)(nil),     // 6: reckon.v1.RobotConfig
-	(*Sample)(nil),          // 7: reckon.v1.Sample
-	(*IngestResponse)(nil),  // 8: reckon.v1.IngestResponse
-	(*FusedPose)(nil),       // 9: reckon.v1.FusedPose
+	(*JournalRecord)(nil),       // 0: reckon.v1.JournalRecord
+	(*JournalSnapshot)(nil),     // 1: reckon.v1.JournalSnapshot
+	(*RobotSnapshot)(nil),       // 2: reckon.v1.RobotSnapshot
+	(*EstimateState)(nil),       // 3: reckon.v1.EstimateState
+	(*SnapshotCheckpoint)(nil),  // 4: reckon.v1.SnapshotCheckpoint
+	(*SnapshotEntry)(nil),       // 5: reckon.v1.SnapshotEntry
+	(*SnapshotMeasurement)(nil), // 6: reckon.v1.SnapshotMeasurement
+	(*SnapshotSensor)(nil),      // 7: reckon.v1.SnapshotSensor
+	(*SnapshotNisWindow)(nil),   // 8: reckon.v1.SnapshotNisWindow
+	(*SnapshotCandidate)(nil),   // 9: reckon.v1.SnapshotCandidate
+	(*JournalOpening)(nil),      // 10: reckon.v1.JournalOpening
+	(*JournalInput)(nil),        // 11: reckon.v1.JournalInput
+	(*JournalOutput)(nil),       // 12: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),      // 13: reckon.v1.JournalClosing
+	(*VerdictCounts)(nil),       // 14: reckon.v1.VerdictCounts
+	(*RobotConfig)(nil),         // 15: reckon.v1.RobotConfig
+	(*Sample)(nil),              // 16: reckon.v1.Sample
+	(*IngestResponse)(nil),      // 17: reckon.v1.IngestResponse
+	(*FusedPose)(nil),           // 18: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	2, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	3, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	4, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	5, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
-	1, // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
-	6, // 5: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	7, // 6: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	8, // 7: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	9, // 8: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	9, // [9:9] is the sub-list for method output_type
-	9, // [9:9] is the sub-list for method input_type
-	9, // [9:9] is the sub-list for extension type_name
-	9, // [9:9] is the sub-list for extension extendee
-	0, // [0:9] is the sub-list for field type_name
+	10, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	11, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	12, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	13, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	1,  // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
+	3,  // 5: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
+	4,  // 6: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
+	5,  // 7: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
+	5,  // 8: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
+	14, // 9: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
+	14, // 10: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
+	7,  // 11: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
+	8,  // 12: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
+	8,  // 13: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
+	9,  // 14: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
+	3,  // 15: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
+	6,  // 16: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
+	4,  // 17: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
+	14, // 18: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
+	15, // 19: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	16, // 20: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	17, // 21: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	18, // 22: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	23, // [23:23] is the sub-list for method output_type
+	23, // [23:23] is the sub-list for method input_type
+	23, // [23:23] is the sub-list for extension type_name
+	23, // [23:23] is the sub-list for extension extendee
+	0,  // [0:23] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -536,13 +1539,14 @@ func file_reckon_v1_journal_proto_init() {
 		(*JournalRecord_Closing)(nil),
 		(*JournalRecord_Snapshot)(nil),
 	}
+	file_reckon_v1_journal_proto_msgTypes[2].OneofWrappers = []any{}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   6,
+			NumMessages:   14,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

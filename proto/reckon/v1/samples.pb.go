@@ -21,6 +21,129 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// InputKind names the kinds of Sample, after the fields of its oneof.
+type InputKind int32
+
+const (
+	// Not set.
+	InputKind_INPUT_KIND_UNSPECIFIED InputKind = 0
+	// An OdometrySample.
+	InputKind_INPUT_KIND_ODOMETRY InputKind = 1
+	// A HeadingSample.
+	InputKind_INPUT_KIND_HEADING InputKind = 2
+	// A Fix.
+	InputKind_INPUT_KIND_FIX InputKind = 3
+	// A Reseed.
+	InputKind_INPUT_KIND_RESEED InputKind = 4
+)
+
+// Enum value maps for InputKind.
+var (
+	InputKind_name = map[int32]string{
+		0: "INPUT_KIND_UNSPECIFIED",
+		1: "INPUT_KIND_ODOMETRY",
+		2: "INPUT_KIND_HEADING",
+		3: "INPUT_KIND_FIX",
+		4: "INPUT_KIND_RESEED",
+	}
+	InputKind_value = map[string]int32{
+		"INPUT_KIND_UNSPECIFIED": 0,
+		"INPUT_KIND_ODOMETRY":    1,
+		"INPUT_KIND_HEADING":     2,
+		"INPUT_KIND_FIX":         3,
+		"INPUT_KIND_RESEED":      4,
+	}
+)
+
+func (x InputKind) Enum() *InputKind {
+	p := new(InputKind)
+	*p = x
+	return p
+}
+
+func (x InputKind) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (InputKind) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_samples_proto_enumTypes[0].Descriptor()
+}
+
+func (InputKind) Type() protoreflect.EnumType {
+	return &file_reckon_v1_samples_proto_enumTypes[0]
+}
+
+func (x InputKind) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use InputKind.Descriptor instead.
+func (InputKind) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_samples_proto_rawDescGZIP(), []int{0}
+}
+
+// FixKind names what a Fix measures, after the fields of its measurement
+// oneof.
+type FixKind int32
+
+const (
+	// Not set.
+	FixKind_FIX_KIND_UNSPECIFIED FixKind = 0
+	// A PoseFix.
+	FixKind_FIX_KIND_POSE FixKind = 1
+	// A PositionFix.
+	FixKind_FIX_KIND_POSITION FixKind = 2
+	// A HeadingFix.
+	FixKind_FIX_KIND_HEADING FixKind = 3
+	// A LandmarkFix.
+	FixKind_FIX_KIND_LANDMARK FixKind = 4
+)
+
+// Enum value maps for FixKind.
+var (
+	FixKind_name = map[int32]string{
+		0: "FIX_KIND_UNSPECIFIED",
+		1: "FIX_KIND_POSE",
+		2: "FIX_KIND_POSITION",
+		3: "FIX_KIND_HEADING",
+		4: "FIX_KIND_LANDMARK",
+	}
+	FixKind_value = map[string]int32{
+		"FIX_KIND_UNSPECIFIED": 0,
+		"FIX_KIND_POSE":        1,
+		"FIX_KIND_POSITION":    2,
+		"FIX_KIND_HEADING":     3,
+		"FIX_KIND_LANDMARK":    4,
+	}
+)
+
+func (x FixKind) Enum() *FixKind {
+	p := new(FixKind)
+	*p = x
+	return p
+}
+
+func (x FixKind) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (FixKind) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_samples_proto_enumTypes[1].Descriptor()
+}
+
+func (FixKind) Type() protoreflect.EnumType {
+	return &file_reckon_v1_samples_proto_enumTypes[1]
+}
+
+func (x FixKind) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use FixKind.Descriptor instead.
+func (FixKind) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_samples_proto_rawDescGZIP(), []int{1}
+}
+
 // OdometrySample is one reading of the encoder wheels (or a body step the
 // robot computed itself). Exactly one of travel, counts and step is set.
 type OdometrySample struct {
@@ -1020,7 +1143,19 @@ const file_reckon_v1_samples_proto_rawDesc = "" +
 	"\x04pose\x18\x02 \x01(\v2\x14.reckon.v1.FloorPoseR\x04pose\x125\n" +
 	"\n" +
 	"covariance\x18\x03 \x01(\v2\x15.reckon.v1.CovarianceR\n" +
-	"covarianceB)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
+	"covariance*\x83\x01\n" +
+	"\tInputKind\x12\x1a\n" +
+	"\x16INPUT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
+	"\x13INPUT_KIND_ODOMETRY\x10\x01\x12\x16\n" +
+	"\x12INPUT_KIND_HEADING\x10\x02\x12\x12\n" +
+	"\x0eINPUT_KIND_FIX\x10\x03\x12\x15\n" +
+	"\x11INPUT_KIND_RESEED\x10\x04*z\n" +
+	"\aFixKind\x12\x18\n" +
+	"\x14FIX_KIND_UNSPECIFIED\x10\x00\x12\x11\n" +
+	"\rFIX_KIND_POSE\x10\x01\x12\x15\n" +
+	"\x11FIX_KIND_POSITION\x10\x02\x12\x14\n" +
+	"\x10FIX_KIND_HEADING\x10\x03\x12\x15\n" +
+	"\x11FIX_KIND_LANDMARK\x10\x04B)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_samples_proto_rawDescOnce sync.Once
@@ -1034,39 +1169,42 @@ func file_reckon_v1_samples_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_samples_proto_rawDescData
 }
 
+var file_reckon_v1_samples_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
 var file_reckon_v1_samples_proto_msgTypes = make([]protoimpl.MessageInfo, 12)
 var file_reckon_v1_samples_proto_goTypes = []any{
-	(*OdometrySample)(nil), // 0: reckon.v1.OdometrySample
-	(*WheelTravel)(nil),    // 1: reckon.v1.WheelTravel
-	(*WheelCounts)(nil),    // 2: reckon.v1.WheelCounts
-	(*BodyStep)(nil),       // 3: reckon.v1.BodyStep
-	(*HeadingSample)(nil),  // 4: reckon.v1.HeadingSample
-	(*Fix)(nil),            // 5: reckon.v1.Fix
-	(*PoseFix)(nil),        // 6: reckon.v1.PoseFix
-	(*PositionFix)(nil),    // 7: reckon.v1.PositionFix
-	(*HeadingFix)(nil),     // 8: reckon.v1.HeadingFix
-	(*LandmarkFix)(nil),    // 9: reckon.v1.LandmarkFix
-	(*Sample)(nil),         // 10: reckon.v1.Sample
-	(*Reseed)(nil),         // 11: reckon.v1.Reseed
-	(*FloorPose)(nil),      // 12: reckon.v1.FloorPose
-	(*Covariance)(nil),     // 13: reckon.v1.Covariance
+	(InputKind)(0),         // 0: reckon.v1.InputKind
+	(FixKind)(0),           // 1: reckon.v1.FixKind
+	(*OdometrySample)(nil), // 2: reckon.v1.OdometrySample
+	(*WheelTravel)(nil),    // 3: reckon.v1.WheelTravel
+	(*WheelCounts)(nil),    // 4: reckon.v1.WheelCounts
+	(*BodyStep)(nil),       // 5: reckon.v1.BodyStep
+	(*HeadingSample)(nil),  // 6: reckon.v1.HeadingSample
+	(*Fix)(nil),            // 7: reckon.v1.Fix
+	(*PoseFix)(nil),        // 8: reckon.v1.PoseFix
+	(*PositionFix)(nil),    // 9: reckon.v1.PositionFix
+	(*HeadingFix)(nil),     // 10: reckon.v1.HeadingFix
+	(*LandmarkFix)(nil),    // 11: reckon.v1.LandmarkFix
+	(*Sample)(nil),         // 12: reckon.v1.Sample
+	(*Reseed)(nil),         // 13: reckon.v1.Reseed
+	(*FloorPose)(nil),      // 14: reckon.v1.FloorPose
+	(*Covariance)(nil),     // 15: reckon.v1.Covariance
 }
 var file_reckon_v1_samples_proto_depIdxs = []int32{
-	1,  // 0: reckon.v1.OdometrySample.travel:type_name -> reckon.v1.WheelTravel
-	2,  // 1: reckon.v1.OdometrySample.counts:type_name -> reckon.v1.WheelCounts
-	3,  // 2: reckon.v1.OdometrySample.step:type_name -> reckon.v1.BodyStep
-	12, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
-	6,  // 4: reckon.v1.Fix.pose:type_name -> reckon.v1.PoseFix
-	7,  // 5: reckon.v1.Fix.position:type_name -> reckon.v1.PositionFix
-	8,  // 6: reckon.v1.Fix.heading:type_name -> reckon.v1.HeadingFix
-	9,  // 7: reckon.v1.Fix.landmark:type_name -> reckon.v1.LandmarkFix
-	13, // 8: reckon.v1.Fix.covariance:type_name -> reckon.v1.Covariance
-	0,  // 9: reckon.v1.Sample.odometry:type_name -> reckon.v1.OdometrySample
-	4,  // 10: reckon.v1.Sample.heading:type_name -> reckon.v1.HeadingSample
-	5,  // 11: reckon.v1.Sample.fix:type_name -> reckon.v1.Fix
-	11, // 12: reckon.v1.Sample.reseed:type_name -> reckon.v1.Reseed
-	12, // 13: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
-	13, // 14: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
+	3,  // 0: reckon.v1.OdometrySample.travel:type_name -> reckon.v1.WheelTravel
+	4,  // 1: reckon.v1.OdometrySample.counts:type_name -> reckon.v1.WheelCounts
+	5,  // 2: reckon.v1.OdometrySample.step:type_name -> reckon.v1.BodyStep
+	14, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
+	8,  // 4: reckon.v1.Fix.pose:type_name -> reckon.v1.PoseFix
+	9,  // 5: reckon.v1.Fix.position:type_name -> reckon.v1.PositionFix
+	10, // 6: reckon.v1.Fix.heading:type_name -> reckon.v1.HeadingFix
+	11, // 7: reckon.v1.Fix.landmark:type_name -> reckon.v1.LandmarkFix
+	15, // 8: reckon.v1.Fix.covariance:type_name -> reckon.v1.Covariance
+	2,  // 9: reckon.v1.Sample.odometry:type_name -> reckon.v1.OdometrySample
+	6,  // 10: reckon.v1.Sample.heading:type_name -> reckon.v1.HeadingSample
+	7,  // 11: reckon.v1.Sample.fix:type_name -> reckon.v1.Fix
+	13, // 12: reckon.v1.Sample.reseed:type_name -> reckon.v1.Reseed
+	14, // 13: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
+	15, // 14: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
 	15, // [15:15] is the sub-list for method output_type
 	15, // [15:15] is the sub-list for method input_type
 	15, // [15:15] is the sub-list for extension type_name
@@ -1103,13 +1241,14 @@ func file_reckon_v1_samples_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_samples_proto_rawDesc), len(file_reckon_v1_samples_proto_rawDesc)),
-			NumEnums:      0,
+			NumEnums:      2,
 			NumMessages:   12,
 			NumExtensions: 0,
 			NumServices:   0,
 		},
 		GoTypes:           file_reckon_v1_samples_proto_goTypes,
 		DependencyIndexes: file_reckon_v1_samples_proto_depIdxs,
+		EnumInfos:         file_reckon_v1_samples_proto_enumTypes,
 		MessageInfos:      file_reckon_v1_samples_proto_msgTypes,
 	}.Build()
 	File_reckon_v1_samples_proto = out.File

@@ -1,6 +1,7 @@
 package fusion
 
 import (
+	"fmt"
 	"slices"
 	"sort"
 
@@ -79,18 +80,7 @@ func (r *Robot) apply(e *entry) {
 	case entOdo:
 		r.predict(r.f, e)
 	case entMeas:
-		e.out = estimator.Outcome{Dim: e.meas.Kind.Dim()}
-		e.initialised = e.imu && !r.ready
-		if e.initialised {
-			err = r.f.InitOffset(e.meas.Z[0], e.meas.R[0])
-			r.ready = err == nil
-		} else {
-			gate := r.gates.For(e.meas.Kind.Dim())
-			if e.imu && !r.cfg.GateIMU {
-				gate = 0
-			}
-			e.out, err = r.f.Update(&e.meas, gate)
-		}
+		err = r.applyMeas(e)
 	case entReset:
 		err = r.f.Reset(e.pose, &e.poseCov)
 		if err == nil {
@@ -140,11 +130,8 @@ func (r *Robot) errOf(seq uint64) error {
 
 // predict moves filter f by odometry entry e with its time-driven noise.
 func (r *Robot) predict(f *estimator.Filter, e *entry) {
-	dt := float64(e.t1-e.t0) * 1e-9
-	q := [4]float64{0, 0, r.cfg.Noise.HeadingVarRad2PerS * dt}
-	if r.n == 4 {
-		q[3] = r.cfg.Noise.IMUOffsetVarRad2PerS * dt
-	}
+	var q [4]float64
+	r.cfg.Noise.timeNoise(&q, r.n, float64(e.t1-e.t0)*1e-9)
 	f.Predict(e.step, &e.cov, &q)
 }
 
@@ -260,5 +247,66 @@ func (r *Robot) dropFront(k int) {
 		clear(r.ents[n:])
 		r.ents = r.ents[:n]
 		r.head = 0
+	}
+}
+
+// addMeasurement inserts, holds or refuses a measurement entry.
+func (r *Robot) addMeasurement(res Result, e entry, sensor string) Result {
+	t := e.t1
+	switch {
+	case r.started && t < r.baseT:
+		res.Verdict = VerdictTooOld
+		res.Err = fmt.Errorf("%w: stamp_ns %d is %.3f s before the newest odometry; the window starts at %d", ErrTooOld, t, float64(r.newest-t)*1e-9, r.baseT)
+		r.stats.count(VerdictTooOld, false)
+		r.stats.sensorVerdict(e.sensor, VerdictTooOld, 0, 0)
+		return res
+	case r.started && t <= r.newest:
+		ins := r.insert(e)
+		r.decideMeas(&res, ins, sensor)
+		return res
+	case r.started && t-r.newest > r.cfg.MaxHoldAheadNs:
+		r.stats.count(VerdictInvalid, false)
+		return invalid(res, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_hold_ahead_ns %d)", ErrTooFarAhead, t, float64(t-r.newest)*1e-9, r.cfg.MaxHoldAheadNs))
+	case len(r.held) >= r.cfg.MaxHeld:
+		r.stats.count(VerdictInvalid, false)
+		return invalid(res, fmt.Errorf("%w: %d held (max_held)", ErrHeldFull, len(r.held)))
+	}
+	r.hold(e)
+	res.Verdict = VerdictHeld
+	r.stats.count(VerdictHeld, false)
+	return res
+}
+
+// hold keeps e in stamp order (arrival order among equal stamps).
+func (r *Robot) hold(e entry) {
+	i := len(r.held)
+	for i > 0 && r.held[i-1].t1 > e.t1 {
+		i--
+	}
+	r.held = append(r.held, entry{})
+	copy(r.held[i+1:], r.held[i:])
+	r.held[i] = e
+}
+
+// releaseHeld inserts held entries that odometry has now reached.
+func (r *Robot) releaseHeld(res *Result) {
+	for len(r.held) > 0 && r.held[0].t1 <= r.newest {
+		e := r.held[0]
+		n := copy(r.held, r.held[1:])
+		r.held[n] = entry{}
+		r.held = r.held[:n]
+		sub := Result{Seq: e.seq}
+		if e.t1 < r.baseT {
+			sub.Verdict = VerdictTooOld
+			sub.Err = fmt.Errorf("%w: stamp_ns %d precedes the first odometry or the last reseed at %d", ErrTooOld, e.t1, r.baseT)
+			r.stats.count(VerdictTooOld, false)
+		} else if e.kind == entReset {
+			r.insertReset(e, &sub)
+		} else {
+			ins := r.insert(e)
+			r.decideMeas(&sub, ins, r.stats.sensors[e.sensor].ID)
+		}
+		res.Resolved = append(res.Resolved, Resolution{Seq: sub.Seq, Verdict: sub.Verdict, NIS: sub.NIS, Err: sub.Err})
+		res.Events = append(res.Events, sub.Events...)
 	}
 }

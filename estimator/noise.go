@@ -1,0 +1,68 @@
+package estimator
+
+import "math"
+
+// StepNoise writes into dst the 3x3 row-major covariance of a body step s
+// that the robot computed itself, from noise rates per metre travelled
+// (forwardVarPerM, leftVarPerM, m^2/m) and per radian turned
+// (turnVarPerRad, rad^2/rad): diag(f d, l d, t |turn|) with d the step's
+// length. The rates make the noise add over sub-intervals (DEVELOPERS.md,
+// "Design: Motion prediction").
+func StepNoise(dst *[9]float64, s Step, forwardVarPerM, leftVarPerM, turnVarPerRad float64) {
+	d := math.Hypot(s.ForwardM, s.LeftM)
+	*dst = [9]float64{forwardVarPerM * d, 0, 0, 0, leftVarPerM * d, 0, 0, 0, turnVarPerRad * math.Abs(s.TurnRad)}
+}
+
+// TimeNoise writes into dst the time-driven process noise that Predict adds
+// to the diagonal of an n-state filter over dtS seconds: a heading random
+// walk of headingVarPerS (rad^2/s) and, with n = 4, an IMU offset random
+// walk of offsetVarPerS (rad^2/s). Position gets none: its noise comes with
+// the step.
+func TimeNoise(dst *[4]float64, n int, dtS, headingVarPerS, offsetVarPerS float64) {
+	*dst = [4]float64{IHead: headingVarPerS * dtS}
+	if n == 4 {
+		dst[IOffset] = offsetVarPerS * dtS
+	}
+}
+
+// Sandwich writes J R J^T into dst for 3x3 row-major J and R: the
+// covariance of J x for x of covariance R. dst may not alias j or r.
+func Sandwich(dst, j, r *[9]float64) {
+	var jr [9]float64
+	for i := 0; i < 3; i++ {
+		for k := 0; k < 3; k++ {
+			jr[i*3+k] = j[i*3+0]*r[0*3+k] + j[i*3+1]*r[1*3+k] + j[i*3+2]*r[2*3+k]
+		}
+	}
+	for i := 0; i < 3; i++ {
+		for k := 0; k < 3; k++ {
+			dst[i*3+k] = jr[i*3+0]*j[k*3+0] + jr[i*3+1]*j[k*3+1] + jr[i*3+2]*j[k*3+2]
+		}
+	}
+}
+
+// Mahalanobis returns d^T S^-1 d for a 3-vector d and a 3x3 row-major
+// symmetric S, by Cholesky; false if S is not positive definite.
+func Mahalanobis(d *[3]float64, s *[9]float64) (float64, bool) {
+	var l [9]float64
+	if !cholesky(s[:], l[:], 3, 3) {
+		return 0, false
+	}
+	var y [3]float64
+	cholForward(l[:], 3, 3, d[:], y[:])
+	return y[0]*y[0] + y[1]*y[1] + y[2]*y[2], true
+}
+
+// PoseNEES returns the normalised estimation error squared of a pose
+// estimate est with 3x3 row-major covariance cov against the true pose:
+// e^T cov^-1 e with e = truth - est, heading wrapped (Bar-Shalom, Li and
+// Kirubarajan, 2001, section 5.4.2). It returns ErrNotPositiveDefinite if
+// cov is not positive definite.
+func PoseNEES(est Pose, cov *[9]float64, truth Pose) (float64, error) {
+	e := [3]float64{truth.X - est.X, truth.Y - est.Y, Wrap(truth.Heading - est.Heading)}
+	q, ok := Mahalanobis(&e, cov)
+	if !ok {
+		return 0, ErrNotPositiveDefinite
+	}
+	return q, nil
+}

@@ -1,0 +1,83 @@
+package estimator
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"gonum.org/v1/gonum/mat"
+)
+
+// TestStepNoiseAdds: the step noise of two halves of a straight or turning
+// step adds up to the noise of the whole (noise rates per metre and per
+// radian), the property that makes the estimate independent of the
+// sampling rate.
+func TestStepNoiseAdds(t *testing.T) {
+	s := Step{ForwardM: 0.3, LeftM: -0.1, TurnRad: 0.4}
+	var whole, half [9]float64
+	StepNoise(&whole, s, 1e-4, 2e-4, 3e-4)
+	StepNoise(&half, s.Scale(0.5), 1e-4, 2e-4, 3e-4)
+	for i := range whole {
+		if math.Abs(whole[i]-2*half[i]) > 1e-18 {
+			t.Errorf("entry %d: whole %g, two halves %g", i, whole[i], 2*half[i])
+		}
+	}
+	if want := 1e-4 * math.Hypot(0.3, 0.1); math.Abs(whole[0]-want) > 1e-18 {
+		t.Errorf("forward variance %g, want %g", whole[0], want)
+	}
+	var q [4]float64
+	TimeNoise(&q, 3, 2, 1e-7, 5e-7)
+	if q != [4]float64{0, 0, 2e-7, 0} {
+		t.Errorf("3 states: %v", q)
+	}
+	TimeNoise(&q, 4, 2, 1e-7, 5e-7)
+	if q != [4]float64{0, 0, 2e-7, 1e-6} {
+		t.Errorf("4 states: %v", q)
+	}
+}
+
+// TestSandwichAndMahalanobisMatchGonum checks J R J^T and d^T S^-1 d against
+// gonum mat on random matrices (tolerance 1e-12 relative).
+func TestSandwichAndMahalanobisMatchGonum(t *testing.T) {
+	rng := rand.New(rand.NewPCG(1, 1))
+	for k := 0; k < 50; k++ {
+		var j, a [9]float64
+		for i := range j {
+			j[i], a[i] = rng.NormFloat64(), rng.NormFloat64()
+		}
+		// r = a a^T + I is symmetric positive definite.
+		var r [9]float64
+		ra := mat.NewDense(3, 3, a[:])
+		var rr mat.Dense
+		rr.Mul(ra, ra.T())
+		for i := 0; i < 3; i++ {
+			for c := 0; c < 3; c++ {
+				r[i*3+c] = rr.At(i, c)
+			}
+			r[i*3+i]++
+		}
+		var got [9]float64
+		Sandwich(&got, &j, &r)
+		jm, rm := mat.NewDense(3, 3, j[:]), mat.NewDense(3, 3, r[:])
+		var want mat.Dense
+		want.Product(jm, rm, jm.T())
+		for i := 0; i < 9; i++ {
+			if w := want.At(i/3, i%3); math.Abs(got[i]-w) > 1e-12*math.Max(1, math.Abs(w)) {
+				t.Fatalf("Sandwich entry %d: %g, gonum %g", i, got[i], w)
+			}
+		}
+		d := [3]float64{rng.NormFloat64(), rng.NormFloat64(), rng.NormFloat64()}
+		m, ok := Mahalanobis(&d, &r)
+		var x mat.VecDense
+		if err := x.SolveVec(rm, mat.NewVecDense(3, d[:])); err != nil || !ok {
+			t.Fatalf("solve: %v, ok %v", err, ok)
+		}
+		if w := mat.Dot(mat.NewVecDense(3, d[:]), &x); math.Abs(m-w) > 1e-12*math.Max(1, w) {
+			t.Fatalf("Mahalanobis %g, gonum %g", m, w)
+		}
+	}
+	bad := [9]float64{1, 2, 0, 2, 1, 0, 0, 0, 1}
+	if _, err := PoseNEES(Pose{}, &bad, Pose{X: 1}); err != ErrNotPositiveDefinite {
+		t.Errorf("indefinite covariance: %v", err)
+	}
+}

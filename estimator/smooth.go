@@ -1,0 +1,86 @@
+package estimator
+
+// RTSStep writes into dst the smoothed estimate of one step of the
+// fixed-interval Rauch-Tung-Striebel smoother: filtered is the step's
+// filtered estimate, predicted the next step's prediction from it, f the
+// Jacobian of that prediction (n x n, stride 4) and smoothed the next
+// step's smoothed estimate.
+//
+//	C   = P_f F^T P_p^-1
+//	x_s = x_f + C (x_s' - x_p)
+//	P_s = P_f + C (P_s' - P_p) C^T
+//
+// Angle differences are wrapped. It returns ErrNotPositiveDefinite if the
+// prediction's covariance is not. dst may alias filtered.
+//
+// Reference: Rauch, Tung and Striebel, AIAA Journal 3(8), 1965; in this
+// form Bar-Shalom, Li and Kirubarajan (2001), section 8.6.
+func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) error {
+	n := filtered.n
+	var ct [16]float64
+	if !rtsGainT(&ct, filtered, predicted, f) {
+		return ErrNotPositiveDefinite
+	}
+	var d [4]float64
+	for i := 0; i < n; i++ {
+		d[i] = smoothed.x[i] - predicted.x[i]
+		if i >= IHead {
+			d[i] = Wrap(d[i])
+		}
+	}
+	// dp = P_s - P_p; out.p = P_f + C dp C^T with C = ct^T.
+	var dp, cdp [16]float64
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			dp[i*4+j] = smoothed.p[i*4+j] - predicted.p[i*4+j]
+		}
+	}
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += ct[k*4+i] * dp[k*4+j]
+			}
+			cdp[i*4+j] = acc
+		}
+	}
+	out := State{n: n}
+	for i := 0; i < n; i++ {
+		var dx float64
+		for k := 0; k < n; k++ {
+			dx += ct[k*4+i] * d[k]
+		}
+		out.x[i] = filtered.x[i] + dx
+		if i >= IHead {
+			out.x[i] = Wrap(out.x[i])
+		}
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += cdp[i*4+k] * ct[k*4+j]
+			}
+			out.p[i*4+j] = filtered.p[i*4+j] + acc
+		}
+	}
+	symmetrise(out.p[:], n, 4)
+	*dst = out
+	return nil
+}
+
+// rtsGainT writes ct = P_p^-1 F P_f, the transpose of the smoother gain C,
+// and reports false if P_p is not positive definite.
+func rtsGainT(ct *[16]float64, filtered, predicted *State, f *[16]float64) bool {
+	n := filtered.n
+	pp := predicted.p
+	symmetrise(pp[:], n, 4)
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			var acc float64
+			for k := 0; k < n; k++ {
+				acc += f[i*4+k] * filtered.p[k*4+j]
+			}
+			ct[i*4+j] = acc
+		}
+	}
+	return SolveSPD(&pp, n, ct, n)
+}

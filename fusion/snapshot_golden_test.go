@@ -1,0 +1,109 @@
+package fusion_test
+
+import (
+	"bytes"
+	"errors"
+	"flag"
+	"fmt"
+	"os"
+	"path/filepath"
+	"testing"
+
+	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
+)
+
+var rewriteSnapshot = flag.Bool("rewrite-snapshot", false, "rewrite the golden snapshot of this snapshot version in testdata/snapshots")
+
+// goldenSnapshotPath is the golden snapshot of the current version. A new
+// version needs a new file: the test fails until one is written.
+func goldenSnapshotPath() string {
+	return filepath.Join("..", "testdata", "snapshots", fmt.Sprintf("greenhouse-v%d.bin", fusion.SnapshotVersion))
+}
+
+// goldenRobot runs the greenhouse cart for three seconds (free wheels, IMU,
+// encoder counts, camera outliers, a push by hand at 2 s) with a 0.2 s
+// window, and returns its configuration, the robot and the inputs fed.
+// testdata/README.md describes the file made from it; server/convert's
+// test builds the same robot.
+func goldenRobot() (fusion.Config, *fusion.Robot) {
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 3,
+		OutlierFraction: 0.2, Bump: &fusiontest.Bump{AtS: 2, DXM: 1}}
+	sim := fusiontest.New(sc)
+	cfg := sim.Config()
+	cfg.WindowNs = 200e6
+	r, err := fusion.New(cfg)
+	if err != nil {
+		panic(err)
+	}
+	for in, ok := sim.Next(); ok; in, ok = sim.Next() {
+		fusiontest.Feed(r, &in)
+	}
+	return cfg, r
+}
+
+// TestSnapshotGolden: the golden snapshot of this version restores, and the
+// restored robot writes the very same bytes. A change of the layout (a field
+// added, renumbered or retyped) changes them, so the test fails until
+// SnapshotVersion is bumped and a golden file written for the new version
+// with -rewrite-snapshot.
+func TestSnapshotGolden(t *testing.T) {
+	cfg, r := goldenRobot()
+	path := goldenSnapshotPath()
+	if *rewriteSnapshot {
+		b, err := r.Snapshot()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(path, b, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	golden, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatalf("no golden snapshot for version %d (write one with -rewrite-snapshot): %v", fusion.SnapshotVersion, err)
+	}
+	restored, err := fusion.RestoreSnapshot(cfg, golden)
+	if err != nil {
+		t.Fatalf("golden snapshot of version %d does not restore: %v", fusion.SnapshotVersion, err)
+	}
+	again, err := restored.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(again, golden) {
+		t.Fatalf("the snapshot layout changed without a version bump: %s restores and writes %d bytes, not the same %d; "+
+			"bump fusion.SnapshotVersion and write a golden file for it with -rewrite-snapshot", path, len(again), len(golden))
+	}
+	st := restored.Stats()
+	if st.WindowEntries == 0 || len(st.Sensors) < 2 || restored.Sequence() == 0 {
+		t.Errorf("golden snapshot holds too little to test the layout: %+v", st)
+	}
+}
+
+// TestSnapshotErrors: damaged bytes, another version and another
+// configuration are ErrSnapshot.
+func TestSnapshotErrors(t *testing.T) {
+	cfg, r := goldenRobot()
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	other := cfg
+	other.IMU = fusion.IMUNone
+	cases := []struct {
+		name string
+		cfg  fusion.Config
+		b    []byte
+	}{
+		{"truncated", cfg, b[:len(b)/2]},
+		{"another version", cfg, append([]byte{0x08, fusion.SnapshotVersion + 1}, b[2:]...)},
+		{"empty", cfg, nil},
+		{"another state size", other, b},
+	}
+	for _, c := range cases {
+		if _, err := fusion.RestoreSnapshot(c.cfg, c.b); !errors.Is(err, fusion.ErrSnapshot) {
+			t.Errorf("%s: %v, want ErrSnapshot", c.name, err)
+		}
+	}
+}

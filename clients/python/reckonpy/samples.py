@@ -139,7 +139,7 @@ def optical_to_planar(rotation: Sequence[Sequence[float]], translation_m: Sequen
     tx, _, tz = translation_m
     # The marker's normal is the third column of the rotation matrix.
     nx, nz = rotation[0][2], rotation[2][2]
-    return (tz, -tx, math.atan2(-nx, nz))
+    return (tz, -tx, wrap(math.atan2(-nx, nz)))
 
 
 def fix_from_camera(stamp_ns: int, sensor_id: str, marker_field: Pose2, marker_in_camera: Pose2,

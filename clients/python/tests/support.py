@@ -14,6 +14,7 @@ import subprocess
 import sys
 import tempfile
 import threading
+import time
 from pathlib import Path
 
 PYTHON_DIR = Path(__file__).resolve().parents[1]
@@ -77,15 +78,25 @@ class Daemon:
              "-log-level", "warn", *extra_args],
             stdout=self.log, stderr=subprocess.STDOUT)
 
+    def wait_listening(self, timeout_s: float = 30.0) -> None:
+        """wait_listening returns once reckond accepts connections, and
+        raises with its log if it exits or does not listen in time."""
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                break
+            try:
+                socket.create_connection(("127.0.0.1", self.port), timeout=1).close()
+                return
+            except OSError:
+                time.sleep(0.02)
+        self.log.seek(0)
+        raise RuntimeError("reckond did not come up:\n" + self.log.read())
+
     def connect(self, **kw) -> "reckonpy.Client":
-        """connect returns a Client of this daemon, once it answers."""
-        c = reckonpy.connect(self.address, **kw)
-        try:
-            c.wait_ready(30)
-        except Exception:
-            self.log.seek(0)
-            raise RuntimeError("reckond did not come up:\n" + self.log.read())
-        return c
+        """connect returns a Client of this daemon, once it listens."""
+        self.wait_listening()
+        return reckonpy.connect(self.address, **kw)
 
     def stop(self) -> None:
         self.proc.terminate()

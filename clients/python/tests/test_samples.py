@@ -4,7 +4,7 @@ import math
 import random
 import unittest
 
-import support  # noqa: F401  (generates the stubs, sets sys.path)
+import support  # first: generates the stubs and puts reckonpy on sys.path
 
 import reckonpy
 from reckonpy import pb

@@ -94,8 +94,10 @@ class Controller:
         threading.Thread(target=self._read, daemon=True).start()
 
     def _read(self):
+        seen = set()  # client sequences answered (a held one is answered twice)
         for v in self.session.verdicts():
-            if v.status_code is not None:
+            if v.client_sequence is not None and v.client_sequence not in seen:
+                seen.add(v.client_sequence)
                 with self.cond:
                     self.answered += 1
                     self.cond.notify_all()

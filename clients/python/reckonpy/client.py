@@ -169,6 +169,11 @@ class IngestSession:
         sent it). It ends when the service ends the stream after close(),
         and raises grpc.RpcError if the stream fails."""
         for resp in self._call:
+            if resp.client_sequence == 0 and resp.verdict == fs_pb2.VERDICT_UNSPECIFIED:
+                # A response about no sample of its own (client sequences
+                # start at 1) can only carry resolutions.
+                yield from self._resolutions(resp)
+                continue
             v = verdict_label(resp.verdict)
             if resp.verdict == fs_pb2.VERDICT_HELD:
                 self._held[resp.sequence] = resp.client_sequence
@@ -176,10 +181,13 @@ class IngestSession:
                           final=resp.verdict != fs_pb2.VERDICT_HELD, status_code=resp.status_code,
                           reason=resp.reason, nis=resp.nis, nis_dimension=resp.nis_dimension,
                           events=tuple(resp.events))
-            for r in resp.resolved:
-                yield Verdict(client_sequence=self._held.pop(r.sequence, None), sequence=r.sequence,
-                              verdict=verdict_label(r.verdict), final=True, status_code=None,
-                              reason=r.reason, nis=r.nis)
+            yield from self._resolutions(resp)
+
+    def _resolutions(self, resp: fs_pb2.IngestResponse) -> Iterator[Verdict]:
+        for r in resp.resolved:
+            yield Verdict(client_sequence=self._held.pop(r.sequence, None), sequence=r.sequence,
+                          verdict=verdict_label(r.verdict), final=True, status_code=None,
+                          reason=r.reason, nis=r.nis)
 
     def __enter__(self) -> "IngestSession":
         return self

@@ -180,3 +180,14 @@ class Collector(threading.Thread):
         if self.error is not None:
             raise self.error
         return self.verdicts
+
+
+def arrival_verdicts(verdicts):
+    """arrival_verdicts returns the first Verdict of each client sequence (its
+    answer on arrival), in the order they came."""
+    seen, out = set(), []
+    for v in verdicts:
+        if v.client_sequence is not None and v.client_sequence not in seen:
+            seen.add(v.client_sequence)
+            out.append(v)
+    return out

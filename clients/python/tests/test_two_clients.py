@@ -68,7 +68,7 @@ class GoOdometryPythonFixesTest(unittest.TestCase):
             self.assertIn("too_old 0, invalid 0", run.stdout)
 
     def test_each_fix_answered_on_arrival(self):
-        first = [v for v in self.verdicts if v.status_code is not None]
+        first = support.arrival_verdicts(self.verdicts)
         self.assertEqual([v.client_sequence for v in first], sorted(self.sent))
         held = 0
         for v in first:

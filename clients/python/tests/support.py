@@ -22,7 +22,8 @@ REPO = PYTHON_DIR.parents[1]
 SAMPLES = REPO / "testdata" / "samples" / "greenhouse-10s.jsonl"
 CART_YAML = REPO / "testdata" / "robots" / "free-wheel-turn.yaml"
 
-subprocess.run(["bash", str(PYTHON_DIR / "gen.sh")], check=True, stdout=subprocess.DEVNULL)
+subprocess.run(["bash", str(PYTHON_DIR / "gen.sh")], check=True, stdout=subprocess.DEVNULL,
+               env={**os.environ, "PYTHON": sys.executable})
 if str(PYTHON_DIR) not in sys.path:
     sys.path.insert(0, str(PYTHON_DIR))
 

@@ -1,0 +1,364 @@
+"""A connection to the reckon FusionService and its typed calls.
+
+Robots are named "robots/{id}"; every call also takes the bare id. Stamps
+are int64 nanoseconds on the robot's time base. Failed calls raise
+grpc.RpcError (its code() and details() say what went wrong); a refused
+sample is not an error but a verdict with a reason.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import ipaddress
+import queue
+import threading
+from typing import Iterator, List, Optional, Sequence, Tuple
+
+import grpc
+
+from reckonpy._pb.reckon.v1 import fusion_service_pb2 as fs_pb2
+from reckonpy._pb.reckon.v1 import fusion_service_pb2_grpc as fs_grpc
+from reckonpy._pb.reckon.v1 import robot_pb2, samples_pb2
+from reckonpy.samples import covariance
+
+DEFAULT_ADDRESS = "127.0.0.1:7460"
+"""DEFAULT_ADDRESS is where reckond listens by default (loopback only)."""
+
+
+def robot_name(robot: str) -> str:
+    """robot_name returns the resource name "robots/{id}" of robot, given as
+    the bare id or already as the resource name."""
+    return robot if robot.startswith("robots/") else "robots/" + robot
+
+
+def verdict_label(verdict: int) -> str:
+    """verdict_label returns the label of a reckon.v1.Verdict value: the
+    lowercase enum suffix ("applied", "held", "gated", "too_old",
+    "invalid")."""
+    return fs_pb2.Verdict.Name(verdict)[len("VERDICT_"):].lower()
+
+
+def is_loopback(address: str) -> bool:
+    """is_loopback reports whether address ("host:port", "[v6]:port" or a
+    "unix:" path) stays on this machine. Host names other than "localhost"
+    count as remote: they are not resolved."""
+    if address.startswith(("unix:", "unix-abstract:")):
+        return True
+    host = address.rsplit(":", 1)[0] if address.count(":") == 1 or address.startswith("[") else address
+    host = host.strip("[]")
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+@dataclasses.dataclass(frozen=True)
+class TLS:
+    """TLS says how to connect with TLS: ca_file is the PEM file of the CA
+    that signed the server's certificate; cert_file and key_file are the
+    client's certificate and key for mutual TLS (both or neither);
+    server_name, if set, is the name to verify instead of the address's
+    host."""
+
+    ca_file: str
+    cert_file: Optional[str] = None
+    key_file: Optional[str] = None
+    server_name: Optional[str] = None
+
+
+@dataclasses.dataclass(frozen=True)
+class Verdict:
+    """Verdict is what became of one sample sent on an IngestSession.
+
+    client_sequence is the number send() returned for it, or None for a
+    held sample that another client sent and that this session's odometry
+    decided. sequence is the robot's arrival number (0 if refused before
+    the robot took it). verdict is its label ("applied", "held", "gated",
+    "too_old", "invalid"); final is False only for "held", whose final
+    verdict comes later. status_code is the google.rpc.Code of the outcome
+    (0 OK, 3 INVALID_ARGUMENT, 5 NOT_FOUND, 9 FAILED_PRECONDITION, 11
+    OUT_OF_RANGE, 14 UNAVAILABLE), None for the resolution of a held sample
+    (the wire carries none). reason names the field of a refused sample.
+    nis is a fix's normalised innovation squared with nis_dimension
+    degrees of freedom. events are the reckon.v1.FusionEvent messages the
+    sample caused."""
+
+    client_sequence: Optional[int]
+    sequence: int
+    verdict: str
+    final: bool
+    status_code: Optional[int]
+    reason: str = ""
+    nis: float = 0.0
+    nis_dimension: int = 0
+    events: Tuple = ()
+
+
+_CLOSE = object()
+
+
+class IngestSession:
+    """IngestSession is one long-lived Ingest stream for one robot.
+
+    send() may be called from one thread while another iterates over
+    verdicts() (or over the raw responses, by iterating the session). The
+    service answers every sample, in the order sent; a held sample is
+    answered "held" and decided later: its final verdict arrives in the
+    response to the input that decided it. verdicts() pairs such a
+    resolution with the client_sequence of the sample this session sent.
+    close() ends the sending side; the iteration then ends once the
+    service has answered everything. Use it as a context manager to close
+    it on leaving the block."""
+
+    def __init__(self, stub: fs_grpc.FusionServiceStub, robot: str, metadata):
+        self._robot = robot_name(robot)
+        self._queue: "queue.Queue" = queue.Queue()
+        self._lock = threading.Lock()
+        self._next = 0
+        self._closed = False
+        self._held = {}  # robot sequence -> client_sequence of a sample this session had held
+        self._call = stub.Ingest(self._requests(), metadata=metadata)
+
+    def _requests(self):
+        while True:
+            req = self._queue.get()
+            if req is _CLOSE:
+                return
+            yield req
+
+    @property
+    def robot(self) -> str:
+        """robot is the resource name of the robot this session feeds."""
+        return self._robot
+
+    def send(self, sample: samples_pb2.Sample) -> int:
+        """send queues one reckon.v1.Sample and returns its client sequence
+        number (1, 2, ...), which its verdict carries."""
+        with self._lock:
+            if self._closed:
+                raise ValueError("IngestSession.send: the session is closed")
+            self._next += 1
+            seq = self._next
+            self._queue.put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample))
+        return seq
+
+    def close(self) -> None:
+        """close ends the sending side of the stream; verdicts still to come
+        can be read. Closing twice is harmless."""
+        with self._lock:
+            if not self._closed:
+                self._closed = True
+                self._queue.put(_CLOSE)
+
+    def cancel(self) -> None:
+        """cancel ends the stream at once; verdicts not yet read are lost."""
+        self.close()
+        self._call.cancel()
+
+    def __iter__(self) -> Iterator[fs_pb2.IngestResponse]:
+        """Iterating the session yields the raw reckon.v1.IngestResponse
+        messages, in the order of the samples sent."""
+        return iter(self._call)
+
+    def verdicts(self) -> Iterator[Verdict]:
+        """verdicts yields a Verdict for every response, and after it one
+        for each held sample that response's input decided (final, with
+        the client_sequence this session gave it, or None if another client
+        sent it). It ends when the service ends the stream after close(),
+        and raises grpc.RpcError if the stream fails."""
+        for resp in self._call:
+            if resp.client_sequence == 0 and resp.verdict == fs_pb2.VERDICT_UNSPECIFIED:
+                # A response about no sample of its own (client sequences
+                # start at 1) can only carry resolutions.
+                yield from self._resolutions(resp)
+                continue
+            v = verdict_label(resp.verdict)
+            if resp.verdict == fs_pb2.VERDICT_HELD:
+                self._held[resp.sequence] = resp.client_sequence
+            yield Verdict(client_sequence=resp.client_sequence, sequence=resp.sequence, verdict=v,
+                          final=resp.verdict != fs_pb2.VERDICT_HELD, status_code=resp.status_code,
+                          reason=resp.reason, nis=resp.nis, nis_dimension=resp.nis_dimension,
+                          events=tuple(resp.events))
+            yield from self._resolutions(resp)
+
+    def _resolutions(self, resp: fs_pb2.IngestResponse) -> Iterator[Verdict]:
+        for r in resp.resolved:
+            yield Verdict(client_sequence=self._held.pop(r.sequence, None), sequence=r.sequence,
+                          verdict=verdict_label(r.verdict), final=True, status_code=None,
+                          reason=r.reason, nis=r.nis)
+
+    def __enter__(self) -> "IngestSession":
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is not None:
+            self.cancel()
+        else:
+            self.close()
+
+
+class Watch:
+    """Watch is a subscription to a robot's fused poses. Iterating it yields
+    reckon.v1.WatchResponse messages: .pose (a FusedPose), .events since
+    the last one, and .skipped, the poses conflated away because the
+    watcher was slow. cancel() ends it (the iteration then raises
+    grpc.RpcError with code CANCELLED, which poses() swallows)."""
+
+    def __init__(self, call):
+        self._call = call
+
+    def __iter__(self) -> Iterator[fs_pb2.WatchResponse]:
+        return iter(self._call)
+
+    def poses(self) -> Iterator[fs_pb2.FusedPose]:
+        """poses yields only the poses, and ends quietly on cancel()."""
+        try:
+            for resp in self._call:
+                yield resp.pose
+        except grpc.RpcError as err:
+            if err.code() != grpc.StatusCode.CANCELLED:
+                raise
+
+    def cancel(self) -> None:
+        """cancel ends the subscription."""
+        self._call.cancel()
+
+
+class Client:
+    """Client is a connection to the service; see connect(). Unary calls
+    take an optional timeout in seconds (default the client's timeout_s).
+    It is safe to use from several threads."""
+
+    def __init__(self, channel: grpc.Channel, metadata: Sequence[Tuple[str, str]], timeout_s: float):
+        self._channel = channel
+        self._stub = fs_grpc.FusionServiceStub(channel)
+        self._md = tuple(metadata)
+        self.timeout_s = timeout_s
+
+    @property
+    def stub(self) -> fs_grpc.FusionServiceStub:
+        """stub is the generated FusionService stub, for what the helpers do
+        not cover (pass metadata=client.metadata)."""
+        return self._stub
+
+    @property
+    def metadata(self) -> Tuple[Tuple[str, str], ...]:
+        """metadata is what the client sends with every call (the bearer
+        token, if any)."""
+        return self._md
+
+    def _unary(self, method, request, timeout):
+        return method(request, metadata=self._md, timeout=self.timeout_s if timeout is None else timeout)
+
+    def wait_ready(self, timeout_s: float = 10.0) -> None:
+        """wait_ready blocks until the channel is connected, raising
+        grpc.FutureTimeoutError after timeout_s seconds."""
+        grpc.channel_ready_future(self._channel).result(timeout=timeout_s)
+
+    def create_robot(self, robot_id: str, config: robot_pb2.RobotConfig, timeout=None) -> robot_pb2.Robot:
+        """create_robot creates robots/{robot_id} from config and returns it.
+        An existing robot raises grpc.RpcError with ALREADY_EXISTS."""
+        rid = robot_id[len("robots/"):] if robot_id.startswith("robots/") else robot_id
+        return self._unary(self._stub.CreateRobot, fs_pb2.CreateRobotRequest(robot_id=rid, config=config), timeout).robot
+
+    def get_robot(self, robot: str, timeout=None) -> robot_pb2.Robot:
+        """get_robot returns the robot."""
+        return self._unary(self._stub.GetRobot, fs_pb2.GetRobotRequest(name=robot_name(robot)), timeout).robot
+
+    def list_robots(self, page_size: int = 0, timeout=None) -> Iterator[robot_pb2.Robot]:
+        """list_robots yields every robot in name order, fetching page_size
+        per call (0: the service's default)."""
+        req = fs_pb2.ListRobotsRequest(page_size=page_size)
+        while True:
+            resp = self._unary(self._stub.ListRobots, req, timeout)
+            yield from resp.robots
+            if not resp.next_page_token:
+                return
+            req.page_token = resp.next_page_token
+
+    def delete_robot(self, robot: str, timeout=None) -> None:
+        """delete_robot deletes the robot; the service closes its journal."""
+        self._unary(self._stub.DeleteRobot, fs_pb2.DeleteRobotRequest(name=robot_name(robot)), timeout)
+
+    def ingest(self, robot: str) -> IngestSession:
+        """ingest opens a long-lived IngestSession feeding robot."""
+        return IngestSession(self._stub, robot, self._md)
+
+    def watch(self, robot: str, min_interval_ns: int = 0) -> Watch:
+        """watch subscribes to robot's fused poses, at most one every
+        min_interval_ns nanoseconds (0: after every input)."""
+        return Watch(self._stub.Watch(fs_pb2.WatchRequest(robot=robot_name(robot), min_interval_ns=min_interval_ns),
+                                      metadata=self._md))
+
+    def pose_at(self, robot: str, stamp_ns: int, timeout=None) -> fs_pb2.FusedPose:
+        """pose_at returns robot's fused pose at stamp_ns (robot time base):
+        the filtered estimate inside the history window, extrapolated a
+        little past the newest odometry (pose.extrapolated says so)."""
+        req = fs_pb2.GetPoseAtRequest(robot=robot_name(robot), stamp_ns=int(stamp_ns))
+        return self._unary(self._stub.GetPoseAt, req, timeout).pose
+
+    def statistics(self, robot: str, timeout=None) -> fs_pb2.RobotStatistics:
+        """statistics returns robot's running record: verdict counts,
+        per-sensor consistency, slips, gaps, recoveries and trust."""
+        return self._unary(self._stub.GetStatistics, fs_pb2.GetStatisticsRequest(robot=robot_name(robot)), timeout).statistics
+
+    def reseed(self, robot: str, stamp_ns: int, x_m: float, y_m: float, heading_rad: float, cov,
+               timeout=None) -> fs_pb2.ReseedRobotResponse:
+        """reseed restarts robot's estimate from the field pose (x_m, y_m,
+        heading_rad) at stamp_ns with cov, its 3x3 covariance (m^2, m*rad,
+        rad^2). Samples stamped before stamp_ns are no longer taken. A
+        refused reseed is a response with its verdict and reason."""
+        req = fs_pb2.ReseedRobotRequest(robot=robot_name(robot), reseed=samples_pb2.Reseed(
+            stamp_ns=int(stamp_ns), pose=robot_pb2.FloorPose(x_m=x_m, y_m=y_m, heading_rad=heading_rad),
+            covariance=covariance(cov, 3)))
+        return self._unary(self._stub.ReseedRobot, req, timeout)
+
+    def close(self) -> None:
+        """close closes the connection and every stream on it."""
+        self._channel.close()
+
+    def __enter__(self) -> "Client":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def _read(path: Optional[str]) -> Optional[bytes]:
+    if path is None:
+        return None
+    with open(path, "rb") as f:
+        return f.read()
+
+
+def connect(address: str = DEFAULT_ADDRESS, token: Optional[str] = None, tls: Optional[TLS] = None,
+            timeout_s: float = 10.0, options: Sequence[Tuple[str, object]] = ()) -> Client:
+    """connect returns a Client of the service at address ("host:port").
+
+    With tls it connects with TLS (mutual TLS if tls names a client
+    certificate); without, in plain text. token, if given, is sent as
+    "authorization: Bearer <token>" with every call; it is refused (a
+    ValueError) in plain text to an address that is not loopback, where
+    anyone on the way could read it. timeout_s is the default deadline of
+    unary calls, seconds. options are extra gRPC channel options.
+    Connecting is lazy: the first call (or wait_ready) dials."""
+    opts = list(options)
+    if tls is not None:
+        if (tls.cert_file is None) != (tls.key_file is None):
+            raise ValueError("connect: TLS needs both cert_file and key_file, or neither")
+        creds = grpc.ssl_channel_credentials(root_certificates=_read(tls.ca_file),
+                                             private_key=_read(tls.key_file),
+                                             certificate_chain=_read(tls.cert_file))
+        if tls.server_name:
+            opts.append(("grpc.ssl_target_name_override", tls.server_name))
+        channel = grpc.secure_channel(address, creds, options=opts)
+    else:
+        if token and not is_loopback(address):
+            raise ValueError(f"connect: refusing to send a token in plain text to {address}; use tls=TLS(ca_file=...)")
+        channel = grpc.insecure_channel(address, options=opts)
+    md: List[Tuple[str, str]] = []
+    if token:
+        md.append(("authorization", "Bearer " + token))
+    return Client(channel, md, timeout_s)

@@ -11,7 +11,7 @@ import (
 // checks the CRC-32C and COBS check values in C and writes a fixed
 // sequence of frames; the Go decoder must turn them into the expected
 // samples. The sequence (see c/reckon_link_test.c): frame k of 40 has boot
-// 3, counter 2^32-5+k, stamp 2^32-100000+10000k microseconds (both wrap),
+// 3, counter 2^32-5+k (wraps), stamp 2^32-100000+10000k microseconds,
 // counts 2^31-500+185k (wraps int32), 215k and -10k, and on even k the
 // heading float32(0.003125k) radians.
 func TestCEncoder(t *testing.T) {
@@ -50,7 +50,7 @@ func TestCEncoder(t *testing.T) {
 	// The Go encoder writes the very same bytes.
 	var goBytes []byte
 	for k := range uint32(40) {
-		f := wheels(3, 1<<32-5+k, 1<<32-100000+10000*k, int32(uint32(1<<31-500+185*k)), int32(215*k), -int32(10*k))
+		f := wheels(3, 1<<32-5+k, 1<<32-100000+10000*uint64(k), int32(uint32(1<<31-500+185*k)), int32(215*k), -int32(10*k))
 		if k%2 == 0 {
 			f.HasHeading, f.HeadingRad = true, float32(0.003125*float64(k))
 		}

@@ -74,7 +74,7 @@ func TestFrameRoundTrip(t *testing.T) {
 	frames := []Frame{
 		{Type: FrameWheels, Boot: 7, Counter: 1, StampUs: 4294967295, Counts: []int32{0, -1, math.MaxInt32}},
 		{Type: FrameWheels, Counter: 0, StampUs: 0, Counts: []int32{1, 2, 3, 4, 5, 6, 7, math.MinInt32}, HasHeading: true, HeadingRad: -3.1415927},
-		{Type: FrameWheels, Boot: 255, Counter: 0x01000000, StampUs: 0x00FF00FF, Counts: []int32{256}, HasHeading: true},
+		{Type: FrameWheels, Boot: 255, Counter: 0x01000000, StampUs: MaxStampUs, Counts: []int32{256}, HasHeading: true},
 	}
 	for i, f := range frames {
 		enc := AppendFrame(nil, &f, make([]byte, 0, MaxFrameLen))
@@ -126,12 +126,14 @@ func TestParseFrameInvalid(t *testing.T) {
 	}
 	body := func() []byte { return bytes.Clone(good[:len(good)-4]) }
 	nanHeading := AppendRawFrame(nil, &Frame{Type: FrameWheels, Counts: []int32{1}, HasHeading: true, HeadingRad: float32(math.NaN())})
+	farStamp := AppendRawFrame(nil, &Frame{Type: FrameWheels, Counts: []int32{1}, StampUs: MaxStampUs + 1})
 	cases := map[string][]byte{
 		"type 2":          reseal(append([]byte{2}, body()[1:]...)),
 		"flag bit 1":      reseal(append([]byte{1, 2}, body()[2:]...)),
 		"no wheels":       reseal(append(body()[:3], append([]byte{0}, body()[4:]...)...)),
 		"one wheel short": reseal(append(body()[:3], append([]byte{3}, body()[4:]...)...)),
 		"NaN heading":     nanHeading,
+		"stamp too far":   farStamp,
 	}
 	for name, raw := range cases {
 		var f Frame

@@ -18,8 +18,10 @@ type Stats struct {
 	// middle of a frame) usually count here once.
 	Corrupted uint64
 	// Invalid is the number of frames with a good CRC that this decoder
-	// does not take: unknown type or flags, a heading that is not finite,
-	// or a wheel count that differs from the earlier frames of this boot.
+	// does not take: unknown type or flags, a stamp past MaxStampUs or a
+	// heading that is not finite, or, within one boot, a wheel count that
+	// differs from the earlier frames' or a stamp behind the last taken
+	// frame's although its counter is ahead.
 	Invalid uint64
 	// Duplicates is the number of frames dropped because a frame with the
 	// same counter was taken.
@@ -124,14 +126,14 @@ const staleBootLimit = 16
 //
 // # Time base
 //
-// The controller's microsecond clock wraps at 2^32 (71.6 minutes); the
-// Sequencer unwraps it by adding each taken frame's forward difference
-// (StampUs - last) modulo 2^32, so the link must not stay silent for 71
-// minutes. Stamps are then StampNs = unwrapped microseconds x 1000,
-// starting from the first frame's StampUs: the controller's clock is the
-// robot's time base. Counts are unwrapped from int32 the same way, so a
-// counter of any width up to 32 bits, sent zero- or sign-extended, keeps
-// its value modulo 2^32 and the service's counter_bits applies.
+// The controller's clock is the robot's time base: StampNs = StampUs x
+// 1000, microseconds since the controller booted. The 64-bit stamp never
+// wraps, so the time base does not depend on when the bridge started.
+// Counts are unwrapped from int32 to int64 by adding each taken frame's
+// difference (Counts[i] - last) modulo 2^32, so a counter of any width up
+// to 32 bits, sent zero- or sign-extended, keeps its value modulo 2^32 and
+// the service's counter_bits applies (32 for counts that use the whole
+// int32, as a bridge restarted mid-run starts again from the raw value).
 //
 // # Restarts
 //
@@ -148,8 +150,7 @@ type Sequencer struct {
 	old        uint8
 	stale      int // frames of the old boot in a row
 	counter    uint32
-	stampUs    uint32
-	unwrapped  int64   // microseconds
+	stampUs    uint64
 	counts     []int32 // the last taken frame's counts
 	cumulative []int64
 	stats      Stats
@@ -169,7 +170,6 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 			s.retired, s.old = true, s.boot
 		}
 		s.started, s.boot, s.counter, s.stampUs = true, f.Boot, f.Counter, f.StampUs
-		s.unwrapped = int64(f.StampUs)
 		s.counts = append(s.counts[:0], f.Counts...)
 		s.cumulative = s.cumulative[:0]
 		for _, c := range f.Counts {
@@ -186,12 +186,11 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 	case ahead < 0:
 		s.stats.Reordered++
 		return nil
-	case len(f.Counts) != len(s.counts):
+	case len(f.Counts) != len(s.counts) || f.StampUs < s.stampUs:
 		s.stats.Invalid++
 		return nil
 	}
 	s.stats.Skipped += uint64(ahead - 1)
-	s.unwrapped += int64(f.StampUs - s.stampUs)
 	s.counter, s.stampUs = f.Counter, f.StampUs
 	for i, c := range f.Counts {
 		s.cumulative[i] += int64(c - s.counts[i])
@@ -203,7 +202,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 func (s *Sequencer) sample(f *Frame) *pb.Sample {
 	s.stats.Samples++
 	o := &pb.OdometrySample{
-		StampNs: s.unwrapped * 1000,
+		StampNs: int64(s.stampUs) * 1000,
 		Motion:  &pb.OdometrySample_Counts{Counts: &pb.WheelCounts{Counts: append([]int64(nil), s.cumulative...)}},
 	}
 	if f.HasHeading {

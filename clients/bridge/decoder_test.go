@@ -8,7 +8,7 @@ import (
 	pb "reckon.example/proto/reckon/v1"
 )
 
-func wheels(boot uint8, counter, stampUs uint32, counts ...int32) Frame {
+func wheels(boot uint8, counter uint32, stampUs uint64, counts ...int32) Frame {
 	return Frame{Type: FrameWheels, Boot: boot, Counter: counter, StampUs: stampUs, Counts: counts}
 }
 
@@ -62,7 +62,7 @@ func sameSamples(a, b []sampleOf) bool {
 }
 
 func TestSequencer(t *testing.T) {
-	const near = 1<<32 - 500 // microseconds, 500 us before the clock wraps
+	const late = 1<<40 + 3 // microseconds, 12.7 days after boot
 	cases := []struct {
 		name   string
 		frames []Frame
@@ -74,8 +74,10 @@ func TestSequencer(t *testing.T) {
 		{"duplicate and reordered dropped, gap skipped", []Frame{wheels(1, 10, 1000, 5), wheels(1, 10, 1000, 5), wheels(1, 13, 4000, 9), wheels(1, 12, 3000, 8), wheels(1, 14, 5000, 10)},
 			[]sampleOf{{1_000_000, []int64{5}, -100}, {4_000_000, []int64{9}, -100}, {5_000_000, []int64{10}, -100}},
 			Stats{Samples: 3, Duplicates: 1, Reordered: 1, Skipped: 2}},
-		{"clock wraps", []Frame{wheels(0, 1, near, 0), wheels(0, 2, 500, 1), wheels(0, 3, 1500, 2)},
-			[]sampleOf{{near * 1000, []int64{0}, -100}, {(1<<32 + 500) * 1000, []int64{1}, -100}, {(1<<32 + 1500) * 1000, []int64{2}, -100}}, Stats{Samples: 3}},
+		{"stamp past 2^32 us", []Frame{wheels(0, 1, late, 0), wheels(0, 2, late+1000, 1)},
+			[]sampleOf{{late * 1000, []int64{0}, -100}, {(late + 1000) * 1000, []int64{1}, -100}}, Stats{Samples: 2}},
+		{"stamp behind with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 4000, 1), wheels(0, 3, 6000, 2)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
 		{"frame counter wraps", []Frame{wheels(0, 1<<32-1, 10, 0), wheels(0, 0, 20, 1), wheels(0, 1<<32-1, 10, 0)},
 			[]sampleOf{{10_000, []int64{0}, -100}, {20_000, []int64{1}, -100}}, Stats{Samples: 2, Reordered: 1}},
 		{"int32 counts unwrap", []Frame{wheels(0, 1, 10, 2147483000, -2147483000), wheels(0, 2, 20, -2147483000, 2147483000)},
@@ -113,7 +115,7 @@ func TestStaleBootTakenAfterLimit(t *testing.T) {
 	s.Take(&Frame{Type: FrameWheels, Boot: 2, Counter: 0, StampUs: 10, Counts: []int32{0}})
 	taken := 0
 	for i := range staleBootLimit + 3 {
-		if s.Take(&Frame{Type: FrameWheels, Boot: 1, Counter: uint32(i), StampUs: uint32(10 * i), Counts: []int32{0}}) != nil {
+		if s.Take(&Frame{Type: FrameWheels, Boot: 1, Counter: uint32(i), StampUs: uint64(10 * i), Counts: []int32{0}}) != nil {
 			taken++
 		}
 	}
@@ -165,7 +167,7 @@ func TestDecoderResync(t *testing.T) {
 // frames.
 func FuzzDecoder(f *testing.F) {
 	f.Add(encode(wheels(0, 1, 100, 1, 2), wheels(0, 2, 200, 3, 4)))
-	f.Add(cat([]byte{1, 2, 0}, encode(wheels(9, 7, 1<<32-1, -5)), encode(wheels(9, 8, 3, -4)), []byte{5}))
+	f.Add(cat([]byte{1, 2, 0}, encode(wheels(9, 7, MaxStampUs, -5)), encode(wheels(9, 8, 3, -4)), []byte{5}))
 	hf := wheels(1, 1, 1, 1, 2, 3)
 	hf.HasHeading, hf.HeadingRad = true, 1.5
 	f.Add(encode(hf, wheels(2, 0, 0, 0, 0, 0)))

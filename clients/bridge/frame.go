@@ -25,7 +25,7 @@ const (
 	// MaxWheels is the most wheels a frame carries.
 	MaxWheels = 8
 	// HeaderLen is the fixed part before the counts.
-	HeaderLen = 12
+	HeaderLen = 16
 	// MaxFrameLen is the longest frame before COBS: header, MaxWheels
 	// counts, heading and CRC.
 	MaxFrameLen = HeaderLen + 4*MaxWheels + 4 + 4
@@ -33,6 +33,10 @@ const (
 	// delimiter (COBS adds one byte to a frame shorter than 254 bytes).
 	MaxEncodedLen = MaxFrameLen + 1
 )
+
+// MaxStampUs is the largest stamp a frame may carry, microseconds (292
+// years): its nanoseconds still fit an int64.
+const MaxStampUs = math.MaxInt64 / 1000
 
 // Errors of ParseFrame. ErrCorrupt covers what a damaged link produces (CRC
 // mismatch, wrong length); ErrInvalid covers a frame that passed its CRC
@@ -55,8 +59,8 @@ type Frame struct {
 	// wrapping at 2^32.
 	Counter uint32
 	// StampUs is the controller's clock when the wheels were read,
-	// microseconds, wrapping at 2^32 (every 71.6 minutes).
-	StampUs uint32
+	// microseconds since it booted; at most MaxStampUs.
+	StampUs uint64
 	// Counts is each wheel's cumulative encoder count, in the order of the
 	// robot's wheels (1 to MaxWheels entries).
 	Counts []int32
@@ -89,7 +93,7 @@ func AppendRawFrame(dst []byte, f *Frame) []byte {
 	}
 	dst = append(dst, byte(f.Type), flags, f.Boot, byte(len(f.Counts)))
 	dst = binary.LittleEndian.AppendUint32(dst, f.Counter)
-	dst = binary.LittleEndian.AppendUint32(dst, f.StampUs)
+	dst = binary.LittleEndian.AppendUint64(dst, f.StampUs)
 	for _, c := range f.Counts {
 		dst = binary.LittleEndian.AppendUint32(dst, uint32(c))
 	}
@@ -103,7 +107,8 @@ func AppendRawFrame(dst []byte, f *Frame) []byte {
 // f, reusing f.Counts. It returns an error wrapping ErrCorrupt when the
 // length or the CRC is wrong, and ErrInvalid for a frame with a good CRC
 // that is not a valid frame of this protocol: an unknown type, unknown
-// flag bits, no wheels, or a heading that is not finite.
+// flag bits, no wheels, a stamp past MaxStampUs, or a heading that is not
+// finite.
 func ParseFrame(f *Frame, raw []byte) error {
 	if len(raw) < HeaderLen+4+4 || len(raw) > MaxFrameLen {
 		return fmt.Errorf("%w: %d bytes", ErrCorrupt, len(raw))
@@ -126,10 +131,12 @@ func ParseFrame(f *Frame, raw []byte) error {
 		return fmt.Errorf("%w: %d wheels", ErrInvalid, n)
 	case len(body) != want:
 		return fmt.Errorf("%w: %d bytes for %d wheels", ErrInvalid, len(body), n)
+	case binary.LittleEndian.Uint64(body[8:]) > MaxStampUs:
+		return fmt.Errorf("%w: stamp %d us", ErrInvalid, binary.LittleEndian.Uint64(body[8:]))
 	}
 	f.Type, f.Boot = typ, body[2]
 	f.Counter = binary.LittleEndian.Uint32(body[4:])
-	f.StampUs = binary.LittleEndian.Uint32(body[8:])
+	f.StampUs = binary.LittleEndian.Uint64(body[8:])
 	f.Counts = f.Counts[:0]
 	for i := range n {
 		f.Counts = append(f.Counts, int32(binary.LittleEndian.Uint32(body[HeaderLen+4*i:])))

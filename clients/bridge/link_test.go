@@ -35,11 +35,11 @@ import (
 const (
 	cartFrames  = 1500
 	cartStepUs  = 10000
-	cartStartUs = 1<<32 - 5_000_000 // the controller clock wraps 5 s in
+	cartStartUs = 1<<32 - 5_000_000 // past 2^32 us 5 s in
 )
 
 func cartFrame(k int) Frame {
-	return wheels(1, uint32(1<<32-100+k), uint32(cartStartUs+cartStepUs*k), int32(185*k), int32(215*k), int32(-10*k))
+	return wheels(1, uint32(1<<32-100+k), uint64(cartStartUs+cartStepUs*k), int32(185*k), int32(215*k), int32(-10*k))
 }
 
 // lossy returns the cart's frames as sent over a bad link, one byte slice
@@ -108,12 +108,12 @@ func service(t *testing.T) *client.Client {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// The frames carry 32-bit counts, which the decoder unwraps: the
-	// file's 16-bit counters would make a gap of more than 0.82 m of
-	// travel (32768 counts) ambiguous, and a loaded machine can drop long
-	// runs of datagrams on top of the injected loss.
+	// The frames carry 32-bit counts (PROTOCOL.md, "Counts"): the file's
+	// 16-bit counters would make a gap of more than 0.82 m of travel
+	// (32768 counts) ambiguous, and a loaded machine can drop long runs of
+	// datagrams on top of the injected loss.
 	for _, w := range cfg.GetWheels() {
-		w.CounterBits = 0
+		w.CounterBits = 32
 	}
 	for _, id := range []string{"clean", "link"} {
 		if _, err := c.CreateRobot(context.Background(), id, cfg); err != nil {

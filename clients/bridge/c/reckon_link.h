@@ -25,7 +25,7 @@
 #define RECKON_LINK_FRAME_WHEELS 1u /* frame type: wheel counts */
 #define RECKON_LINK_FLAG_HEADING 1u /* flag bit: an IMU heading follows the counts */
 #define RECKON_LINK_MAX_WHEELS 8
-#define RECKON_LINK_HEADER_LEN 12
+#define RECKON_LINK_HEADER_LEN 16
 /* Longest frame before COBS: header, counts, heading, CRC. */
 #define RECKON_LINK_MAX_FRAME_LEN (RECKON_LINK_HEADER_LEN + 4 * RECKON_LINK_MAX_WHEELS + 4 + 4)
 /* Longest frame on the wire: COBS adds one byte below 254 bytes, then the 0x00 delimiter. */
@@ -37,7 +37,7 @@ typedef char reckon_link_float_is_32_bits[sizeof(float) == 4 ? 1 : -1];
 struct reckon_link_frame {
 	uint8_t boot;          /* changes at every controller boot */
 	uint32_t counter;      /* +1 for every frame sent, wrapping */
-	uint32_t stamp_us;     /* controller clock when the wheels were read, microseconds, wrapping */
+	uint64_t stamp_us;     /* controller clock when the wheels were read, microseconds since boot */
 	uint8_t wheels;        /* number of entries in counts, 1 to RECKON_LINK_MAX_WHEELS */
 	const int32_t *counts; /* cumulative encoder counts, in the robot's wheel order */
 	int has_heading;       /* non-zero: heading_rad is sent */
@@ -113,7 +113,8 @@ static inline size_t reckon_link_raw(uint8_t *raw, const struct reckon_link_fram
 	raw[2] = f->boot;
 	raw[3] = f->wheels;
 	reckon_link_put_u32(raw + 4, f->counter);
-	reckon_link_put_u32(raw + 8, f->stamp_us);
+	reckon_link_put_u32(raw + 8, (uint32_t)f->stamp_us);
+	reckon_link_put_u32(raw + 12, (uint32_t)(f->stamp_us >> 32));
 	for (i = 0; i < f->wheels; i++, n += 4)
 		reckon_link_put_u32(raw + n, (uint32_t)f->counts[i]);
 	if (f->has_heading) {

@@ -64,7 +64,7 @@ int main(void)
 	/*
 	 * The sequence: 40 frames of a three-wheel cart on a constant arc, boot
 	 * 3, counter from 2^32-5 (wraps), stamp every 10 ms from 2^32-0.1 s
-	 * (wraps), left counts from 2^31-500 (wraps int32), a heading on
+	 * (past 32 bits), left counts from 2^31-500 (wraps int32), a heading on
 	 * every other frame.
 	 */
 	for (k = 0; k < 40; k++) {
@@ -75,7 +75,7 @@ int main(void)
 		counts[2] = -(int32_t)(10 * k);
 		f.boot = 3;
 		f.counter = 4294967291u + k;
-		f.stamp_us = 4294867296u + 10000u * k;
+		f.stamp_us = 4294867296u + (uint64_t)10000u * k;
 		f.wheels = 3;
 		f.counts = counts;
 		f.has_heading = (k % 2) == 0;

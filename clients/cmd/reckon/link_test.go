@@ -62,7 +62,7 @@ func TestLink(t *testing.T) {
 		// dropped) until the last stamp arrives.
 		var b []byte
 		for k := range 200 {
-			f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint32(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+			f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 			b = bridge.AppendFrame(b, &f, nil)
 			if k%20 == 19 || k == 199 {
 				conn.Write(b)

@@ -3,8 +3,10 @@ module reckon.example
 go 1.26.0
 
 require (
+	github.com/creack/pty v1.1.24
 	github.com/prometheus/client_golang v1.25.0
 	github.com/schollz/progressbar/v3 v3.19.1
+	go.bug.st/serial v1.8.0
 	go.yaml.in/yaml/v3 v3.0.6
 	gonum.org/v1/gonum v0.17.0
 	gonum.org/v1/plot v0.17.0

@@ -3,6 +3,7 @@
 //	reckon demo     a simulated greenhouse cart and camera feeding a real server, live
 //	reckon feed     stream a JSON Lines file of samples to a robot
 //	reckon watch    print a robot's fused poses as a table, CSV or JSON Lines
+//	reckon link     feed a robot from a microcontroller's frames over a serial port or UDP
 //	reckon replay   run a journal, or a configuration and samples, through the estimator offline
 //	reckon review   smoothed track, summary, HTML report with figures and CSV exports of a run
 //	reckon compare  the same run under two configurations, side by side
@@ -35,6 +36,7 @@ commands:
            as two gRPC clients, and show the live estimate; leaves the journal
   feed     stream a JSON Lines file of samples to a robot (-create makes it)
   watch    print a robot's fused poses as a table, CSV or JSON Lines
+  link     feed a robot from a microcontroller's frames over a serial port or UDP
   replay   run a journal, or a robot configuration and a JSON Lines file, through
            the estimator offline and write the track and every verdict
   review   replay a recorded run with the smoother: a text summary, an HTML report
@@ -49,7 +51,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return fmt.Errorf("no command given")
 	}
 	cmds := map[string]func(context.Context, []string, io.Writer, io.Writer) error{
-		"demo": runDemo, "feed": runFeed, "watch": runWatch, "replay": runReplay, "review": runReview, "compare": runCompare,
+		"demo": runDemo, "feed": runFeed, "watch": runWatch, "link": runLink, "replay": runReplay, "review": runReview, "compare": runCompare,
 	}
 	if f, ok := cmds[args[0]]; ok {
 		return f(ctx, args[1:], stdout, stderr)

@@ -1,0 +1,242 @@
+package bridge
+
+import (
+	"errors"
+
+	pb "reckon.example/proto/reckon/v1"
+)
+
+// Stats counts what a Decoder saw. Every frame that arrives whole ends in
+// exactly one of Samples, Duplicates, Reordered and Invalid; a damaged one
+// in Corrupted.
+type Stats struct {
+	// Frames is the number of frames with a good length and CRC.
+	Frames uint64
+	// Corrupted is the number of frames dropped for a wrong CRC or length,
+	// malformed COBS, or more than MaxEncodedLen bytes between delimiters.
+	// Bytes received before the first delimiter (joining a stream in the
+	// middle of a frame) usually count here once.
+	Corrupted uint64
+	// Invalid is the number of frames with a good CRC that this decoder
+	// does not take: unknown type or flags, a stamp past MaxStampUs or a
+	// heading that is not finite, or, within one boot, a wheel count that
+	// differs from the earlier frames' or a stamp behind the last taken
+	// frame's although its counter is ahead.
+	Invalid uint64
+	// Duplicates is the number of frames dropped because a frame with the
+	// same counter was taken.
+	Duplicates uint64
+	// Reordered is the number of frames dropped because a newer one was
+	// taken already (or because they come from the boot before the
+	// current one); the newer frame's cumulative counts cover theirs.
+	Reordered uint64
+	// Skipped is the number of counter values jumped over when a frame
+	// was taken: frames lost, or arriving later and then Reordered.
+	Skipped uint64
+	// Restarts is the number of times the boot byte changed.
+	Restarts uint64
+	// Samples is the number of samples produced.
+	Samples uint64
+}
+
+// Splitter cuts a byte stream into frames at 0x00 delimiters, undoes the
+// COBS stuffing and checks each frame's length and CRC. Empty frames
+// (consecutive delimiters) are ignored, so that a sender may start every
+// frame with a delimiter as well as end it. The zero value is ready.
+type Splitter struct {
+	buf       []byte // the encoded bytes of the frame being received
+	raw       []byte // scratch for the decoded frame
+	overlong  bool   // the frame being received passed MaxEncodedLen
+	frames    uint64
+	corrupted uint64
+	invalid   uint64
+}
+
+// AppendFrames appends to dst every frame that ends in p (the bytes of p
+// after its last delimiter are kept for the next call) and returns dst.
+// Each appended frame has its own Counts slice.
+func (s *Splitter) AppendFrames(dst []Frame, p []byte) []Frame {
+	for len(p) > 0 {
+		i := 0
+		for i < len(p) && p[i] != 0 {
+			i++
+		}
+		if !s.overlong {
+			if len(s.buf)+i > MaxEncodedLen {
+				s.overlong, s.buf = true, s.buf[:0]
+			} else {
+				s.buf = append(s.buf, p[:i]...)
+			}
+		}
+		if i == len(p) {
+			break
+		}
+		p = p[i+1:]
+		if f, ok := s.end(); ok {
+			dst = append(dst, f)
+		}
+	}
+	return dst
+}
+
+// end finishes the frame in s.buf at a delimiter.
+func (s *Splitter) end() (Frame, bool) {
+	defer func() { s.buf, s.overlong = s.buf[:0], false }()
+	if s.overlong {
+		s.corrupted++
+		return Frame{}, false
+	}
+	if len(s.buf) == 0 {
+		return Frame{}, false
+	}
+	var err error
+	s.raw, err = AppendUnCOBS(s.raw[:0], s.buf)
+	var f Frame
+	if err == nil {
+		err = ParseFrame(&f, s.raw)
+	}
+	switch {
+	case err == nil:
+		s.frames++
+		return f, true
+	case errors.Is(err, ErrInvalid):
+		s.frames++
+		s.invalid++
+	default:
+		s.corrupted++
+	}
+	return Frame{}, false
+}
+
+// staleBootLimit is how many frames of the previous boot in a row make a
+// Sequencer take that boot as a new one.
+const staleBootLimit = 16
+
+// Sequencer turns frames, in arrival order, into odometry samples on the
+// robot's time base, dropping duplicated and out-of-order frames. The zero
+// value is ready.
+//
+// # Invariants
+//
+// The samples it produces within one boot have strictly increasing frame
+// counters and non-decreasing stamps, so the service never sees time go
+// backwards because of the link. A frame is taken when its counter is
+// ahead of the last taken one's in serial number arithmetic (RFC 1982):
+// (Counter - last) as a signed 32-bit integer is positive.
+//
+// # Time base
+//
+// The controller's clock is the robot's time base: StampNs = StampUs x
+// 1000, microseconds since the controller booted. The 64-bit stamp never
+// wraps, so the time base does not depend on when the bridge started.
+// Counts are unwrapped from int32 to int64 by adding each taken frame's
+// difference (Counts[i] - last) modulo 2^32, so a counter of any width up
+// to 32 bits, sent zero- or sign-extended, keeps its value modulo 2^32 and
+// the service's counter_bits applies (32 for counts that use the whole
+// int32, as a bridge restarted mid-run starts again from the raw value).
+//
+// # Restarts
+//
+// A frame with another Boot byte starts afresh: counters, clock and counts
+// begin again from that frame, and its sample carries the rebooted
+// controller's stamp, which is usually far behind the last one. The
+// previous boot's byte is remembered, and its late frames are dropped as
+// Reordered, unless staleBootLimit of them arrive in a row: then the
+// controller has rebooted again and drawn the old byte once more.
+type Sequencer struct {
+	started    bool
+	boot       uint8
+	retired    bool // whether old holds a previous boot's byte
+	old        uint8
+	stale      int // frames of the old boot in a row
+	counter    uint32
+	stampUs    uint64
+	counts     []int32 // the last taken frame's counts
+	cumulative []int64
+	stats      Stats
+}
+
+// Take returns the sample for f, or nil if f is dropped.
+func (s *Sequencer) Take(f *Frame) *pb.Sample {
+	switch {
+	case s.retired && f.Boot == s.old && f.Boot != s.boot && s.stale < staleBootLimit:
+		s.stale++
+		s.stats.Reordered++
+		return nil
+	case !s.started || f.Boot != s.boot:
+		s.stale = 0
+		if s.started {
+			s.stats.Restarts++
+			s.retired, s.old = true, s.boot
+		}
+		s.started, s.boot, s.counter, s.stampUs = true, f.Boot, f.Counter, f.StampUs
+		s.counts = append(s.counts[:0], f.Counts...)
+		s.cumulative = s.cumulative[:0]
+		for _, c := range f.Counts {
+			s.cumulative = append(s.cumulative, int64(c))
+		}
+		return s.sample(f)
+	}
+	s.stale = 0
+	ahead := int32(f.Counter - s.counter)
+	switch {
+	case ahead == 0:
+		s.stats.Duplicates++
+		return nil
+	case ahead < 0:
+		s.stats.Reordered++
+		return nil
+	case len(f.Counts) != len(s.counts) || f.StampUs < s.stampUs:
+		s.stats.Invalid++
+		return nil
+	}
+	s.stats.Skipped += uint64(ahead - 1)
+	s.counter, s.stampUs = f.Counter, f.StampUs
+	for i, c := range f.Counts {
+		s.cumulative[i] += int64(c - s.counts[i])
+		s.counts[i] = c
+	}
+	return s.sample(f)
+}
+
+func (s *Sequencer) sample(f *Frame) *pb.Sample {
+	s.stats.Samples++
+	o := &pb.OdometrySample{
+		StampNs: int64(s.stampUs) * 1000,
+		Motion:  &pb.OdometrySample_Counts{Counts: &pb.WheelCounts{Counts: append([]int64(nil), s.cumulative...)}},
+	}
+	if f.HasHeading {
+		h := float64(f.HeadingRad)
+		o.ImuHeadingRad = &h
+	}
+	return &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: o}}
+}
+
+// Decoder is a Splitter followed by a Sequencer: bytes from a serial port
+// or UDP datagrams in, odometry samples out. It does no I/O and keeps no
+// clock; the same bytes always give the same samples. The zero value is
+// ready. A Decoder is not safe for concurrent use.
+type Decoder struct {
+	split  Splitter
+	seq    Sequencer
+	frames []Frame
+}
+
+// Decode appends to dst the samples of the frames that end in p and
+// returns dst. Bytes after p's last delimiter wait for the next call.
+func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
+	d.frames = d.split.AppendFrames(d.frames[:0], p)
+	for i := range d.frames {
+		if s := d.seq.Take(&d.frames[i]); s != nil {
+			dst = append(dst, s)
+		}
+	}
+	return dst
+}
+
+// Stats returns the counts so far.
+func (d *Decoder) Stats() Stats {
+	st := d.seq.stats
+	st.Frames, st.Corrupted, st.Invalid = d.split.frames, d.split.corrupted, d.split.invalid+st.Invalid
+	return st
+}

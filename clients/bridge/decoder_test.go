@@ -1,0 +1,210 @@
+package bridge
+
+import (
+	"bytes"
+	"math/rand/v2"
+	"testing"
+
+	pb "reckon.example/proto/reckon/v1"
+)
+
+func wheels(boot uint8, counter uint32, stampUs uint64, counts ...int32) Frame {
+	return Frame{Type: FrameWheels, Boot: boot, Counter: counter, StampUs: stampUs, Counts: counts}
+}
+
+func encode(frames ...Frame) []byte {
+	var b []byte
+	for i := range frames {
+		b = AppendFrame(b, &frames[i], nil)
+	}
+	return b
+}
+
+// sampleOf is a short form of an odometry sample for comparisons.
+type sampleOf struct {
+	stampNs int64
+	counts  []int64
+	heading float64 // NaN-free: -100 when absent
+}
+
+func short(s *pb.Sample) sampleOf {
+	o := s.GetOdometry()
+	h := -100.0
+	if o.ImuHeadingRad != nil {
+		h = o.GetImuHeadingRad()
+	}
+	return sampleOf{o.GetStampNs(), o.GetCounts().GetCounts(), h}
+}
+
+func shorts(ss []*pb.Sample) []sampleOf {
+	var out []sampleOf
+	for _, s := range ss {
+		out = append(out, short(s))
+	}
+	return out
+}
+
+func sameSamples(a, b []sampleOf) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i].stampNs != b[i].stampNs || a[i].heading != b[i].heading || len(a[i].counts) != len(b[i].counts) {
+			return false
+		}
+		for j := range a[i].counts {
+			if a[i].counts[j] != b[i].counts[j] {
+				return false
+			}
+		}
+	}
+	return true
+}
+
+func TestSequencer(t *testing.T) {
+	const late = 1<<40 + 3 // microseconds, 12.7 days after boot
+	cases := []struct {
+		name   string
+		frames []Frame
+		want   []sampleOf
+		stats  Stats
+	}{
+		{"in order", []Frame{wheels(1, 10, 1000, 5), wheels(1, 11, 2000, 7)},
+			[]sampleOf{{1_000_000, []int64{5}, -100}, {2_000_000, []int64{7}, -100}}, Stats{Samples: 2}},
+		{"duplicate and reordered dropped, gap skipped", []Frame{wheels(1, 10, 1000, 5), wheels(1, 10, 1000, 5), wheels(1, 13, 4000, 9), wheels(1, 12, 3000, 8), wheels(1, 14, 5000, 10)},
+			[]sampleOf{{1_000_000, []int64{5}, -100}, {4_000_000, []int64{9}, -100}, {5_000_000, []int64{10}, -100}},
+			Stats{Samples: 3, Duplicates: 1, Reordered: 1, Skipped: 2}},
+		{"stamp past 2^32 us", []Frame{wheels(0, 1, late, 0), wheels(0, 2, late+1000, 1)},
+			[]sampleOf{{late * 1000, []int64{0}, -100}, {(late + 1000) * 1000, []int64{1}, -100}}, Stats{Samples: 2}},
+		{"stamp behind with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 4000, 1), wheels(0, 3, 6000, 2)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+		{"frame counter wraps", []Frame{wheels(0, 1<<32-1, 10, 0), wheels(0, 0, 20, 1), wheels(0, 1<<32-1, 10, 0)},
+			[]sampleOf{{10_000, []int64{0}, -100}, {20_000, []int64{1}, -100}}, Stats{Samples: 2, Reordered: 1}},
+		{"int32 counts unwrap", []Frame{wheels(0, 1, 10, 2147483000, -2147483000), wheels(0, 2, 20, -2147483000, 2147483000)},
+			[]sampleOf{{10_000, []int64{2147483000, -2147483000}, -100}, {20_000, []int64{2147484296, -2147484296}, -100}}, Stats{Samples: 2}},
+		{"wheel count changes", []Frame{wheels(0, 1, 10, 1, 2), wheels(0, 2, 20, 1), wheels(0, 3, 30, 3, 4)},
+			[]sampleOf{{10_000, []int64{1, 2}, -100}, {30_000, []int64{3, 4}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+		{"restart, late frame of the old boot dropped", []Frame{wheels(4, 900, 9000, 50), wheels(5, 0, 30, 0), wheels(4, 899, 8000, 40), wheels(5, 1, 40, 2)},
+			[]sampleOf{{9_000_000, []int64{50}, -100}, {30_000, []int64{0}, -100}, {40_000, []int64{2}, -100}},
+			Stats{Samples: 3, Restarts: 1, Reordered: 1}},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			var s Sequencer
+			var got []*pb.Sample
+			for i := range c.frames {
+				if smp := s.Take(&c.frames[i]); smp != nil {
+					got = append(got, smp)
+				}
+			}
+			if !sameSamples(shorts(got), c.want) {
+				t.Errorf("samples\n got %v\nwant %v", shorts(got), c.want)
+			}
+			if s.stats != c.stats {
+				t.Errorf("stats %+v, want %+v", s.stats, c.stats)
+			}
+		})
+	}
+}
+
+// TestStaleBootTakenAfterLimit: a controller that reboots twice and draws
+// its earlier boot byte again is followed after staleBootLimit frames.
+func TestStaleBootTakenAfterLimit(t *testing.T) {
+	var s Sequencer
+	s.Take(&Frame{Type: FrameWheels, Boot: 1, Counter: 5, StampUs: 100, Counts: []int32{0}})
+	s.Take(&Frame{Type: FrameWheels, Boot: 2, Counter: 0, StampUs: 10, Counts: []int32{0}})
+	taken := 0
+	for i := range staleBootLimit + 3 {
+		if s.Take(&Frame{Type: FrameWheels, Boot: 1, Counter: uint32(i), StampUs: uint64(10 * i), Counts: []int32{0}}) != nil {
+			taken++
+		}
+	}
+	if taken != 3 || s.stats.Restarts != 2 || s.stats.Reordered != staleBootLimit {
+		t.Errorf("taken %d, stats %+v", taken, s.stats)
+	}
+}
+
+// TestDecoderResync: garbage, a frame cut short, a run without delimiter
+// longer than any frame and a corrupted frame are each dropped, and the
+// decoder picks up the next frame.
+func TestDecoderResync(t *testing.T) {
+	f1, f2, f3 := wheels(0, 1, 100, 1, 2), wheels(0, 2, 200, 3, 4), wheels(0, 3, 300, 5, 6)
+	e2 := encode(f2)
+	bad := bytes.Clone(encode(f3))
+	bad[5] ^= 0x40
+	if bad[5] == 0 {
+		t.Fatal("the flipped bit made a delimiter; pick another byte")
+	}
+	stream := cat([]byte{0x33, 0x44}, []byte{0}, encode(f1), e2[:len(e2)/2], []byte{0},
+		bytes.Repeat([]byte{0x07}, 2*MaxEncodedLen), []byte{0}, bad, []byte{0, 0}, encode(f2, f3))
+	var d Decoder
+	got := shorts(d.Decode(nil, stream))
+	want := []sampleOf{{100_000, []int64{1, 2}, -100}, {200_000, []int64{3, 4}, -100}, {300_000, []int64{5, 6}, -100}}
+	if !sameSamples(got, want) {
+		t.Errorf("samples\n got %v\nwant %v", got, want)
+	}
+	if st := d.Stats(); st.Corrupted != 4 || st.Frames != 3 || st.Samples != 3 {
+		t.Errorf("stats %+v, want 4 corrupted, 3 frames, 3 samples", st)
+	}
+	// The same stream in pieces of every size gives the same samples.
+	for size := 1; size < 40; size++ {
+		var d Decoder
+		var ss []*pb.Sample
+		for p := stream; len(p) > 0; {
+			n := min(size, len(p))
+			ss = d.Decode(ss, p[:n])
+			p = p[n:]
+		}
+		if !sameSamples(shorts(ss), want) || d.Stats() != (Stats{Frames: 3, Corrupted: 4, Samples: 3}) {
+			t.Fatalf("pieces of %d bytes: %v, %+v", size, shorts(ss), d.Stats())
+		}
+	}
+}
+
+// FuzzDecoder: on any input the decoder does not panic, every frame the
+// splitter returns re-encodes to bytes found delimited in the input (so it
+// was received with a valid CRC), and there are never more samples than
+// frames.
+func FuzzDecoder(f *testing.F) {
+	f.Add(encode(wheels(0, 1, 100, 1, 2), wheels(0, 2, 200, 3, 4)))
+	f.Add(cat([]byte{1, 2, 0}, encode(wheels(9, 7, MaxStampUs, -5)), encode(wheels(9, 8, 3, -4)), []byte{5}))
+	hf := wheels(1, 1, 1, 1, 2, 3)
+	hf.HasHeading, hf.HeadingRad = true, 1.5
+	f.Add(encode(hf, wheels(2, 0, 0, 0, 0, 0)))
+	r := rand.New(rand.NewPCG(1, 2))
+	noisy := encode(wheels(0, 1, 10, 1), wheels(0, 2, 20, 2), wheels(0, 3, 30, 3))
+	for range 3 {
+		noisy[r.IntN(len(noisy))] ^= byte(1 << r.IntN(8))
+	}
+	f.Add(noisy)
+	f.Fuzz(func(t *testing.T, data []byte) {
+		var sp Splitter
+		frames := sp.AppendFrames(nil, data)
+		for i := range frames {
+			raw := AppendRawFrame(nil, &frames[i])
+			if Checksum(raw[:len(raw)-4]) != uint32(raw[len(raw)-4])|uint32(raw[len(raw)-3])<<8|uint32(raw[len(raw)-2])<<16|uint32(raw[len(raw)-1])<<24 {
+				t.Fatalf("frame %d: CRC does not hold", i)
+			}
+			enc := AppendFrame(nil, &frames[i], nil)
+			if !bytes.HasPrefix(data, enc) && !bytes.Contains(data, append([]byte{0}, enc...)) {
+				t.Fatalf("frame %d (%+v) is not in the input as % x", i, frames[i], enc)
+			}
+		}
+		var d Decoder
+		samples := d.Decode(nil, data)
+		st := d.Stats()
+		if uint64(len(samples)) != st.Samples || len(samples) > len(frames) || st.Frames != uint64(len(frames))+sp.invalid {
+			t.Fatalf("%d samples, %d frames (+%d invalid), stats %+v", len(samples), len(frames), sp.invalid, st)
+		}
+		if st.Samples+st.Duplicates+st.Reordered+st.Invalid != st.Frames {
+			t.Fatalf("frames do not add up: %+v", st)
+		}
+		var last int64
+		for i, s := range samples {
+			if st.Restarts == 0 && i > 0 && s.GetOdometry().GetStampNs() < last {
+				t.Fatalf("sample %d goes back in time: %d after %d", i, s.GetOdometry().GetStampNs(), last)
+			}
+			last = s.GetOdometry().GetStampNs()
+		}
+	})
+}

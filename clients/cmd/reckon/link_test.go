@@ -1,0 +1,113 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"io"
+	"log/slog"
+	"net"
+	"strings"
+	"testing"
+	"time"
+
+	"reckon.example/clients/bridge"
+	"reckon.example/clients/client"
+	"reckon.example/server"
+	"reckon.example/server/daemon"
+)
+
+// TestLink: reckon link listens on UDP, creates the robot, takes 200 frames
+// of a cart driving straight (one sent twice) and, interrupted, prints its
+// summary.
+func TestLink(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	ready := make(chan string, 1)
+	done := make(chan error, 1)
+	go func() {
+		done <- daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Ready: func(a, _ string) { ready <- a },
+			Options: server.Options{JournalDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+	}()
+	addr := <-ready
+	defer func() { cancel(); <-done }()
+
+	// A free UDP port: taken, then let go for reckon link to take.
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+
+	linkCtx, stop := context.WithCancel(context.Background())
+	var out, errb bytes.Buffer
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, &out, &errb)
+	}()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	const last = int64(199 * 10_000_000)
+	deadline := time.Now().Add(20 * time.Second)
+	for {
+		// Until the link listens and the robot exists, datagrams may be
+		// refused or dropped: send the whole feed again (duplicates are
+		// dropped) until the last stamp arrives.
+		var b []byte
+		for k := range 200 {
+			f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+			b = bridge.AppendFrame(b, &f, nil)
+			if k%20 == 19 || k == 199 {
+				conn.Write(b)
+				b = b[:0]
+			}
+		}
+		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == last {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("the last frame never arrived\n%s%s", out.String(), errb.String())
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	stop()
+	if err := <-linkDone; err != nil {
+		t.Fatalf("link: %v\n%s", err, errb.String())
+	}
+	s := out.String()
+	if !strings.Contains(s, "frames: ") || !strings.Contains(s, " samples sent to robots/cart: applied ") || !strings.Contains(s, "too_old 0, invalid 0") {
+		t.Errorf("summary:\n%s", s)
+	}
+	if !strings.Contains(errb.String(), "linking udp "+udpAddr+" to robots/cart") {
+		t.Errorf("stderr: %s", errb.String())
+	}
+}
+
+func TestLinkFlags(t *testing.T) {
+	cases := []struct {
+		args    []string
+		ok      bool
+		errText string
+	}{
+		{[]string{"link", "-h"}, true, "usage: reckon link"},
+		{[]string{"link", "-robot", "robots/cart"}, false, "usage: reckon link"},
+		{[]string{"link", "-robot", "robots/cart", "-serial", "/dev/null0", "-udp", "127.0.0.1:0"}, false, "usage: reckon link"},
+		{[]string{"link", "-udp", "127.0.0.1:0"}, false, "usage: reckon link"},
+		{[]string{"link", "-robot", "robots/cart", "-serial", "/nonexistent/tty", "-addr", "127.0.0.1:1"}, false, ""},
+		{[]string{"link", "-bogus"}, false, "flag provided but not defined"},
+	}
+	for _, c := range cases {
+		_, errs, err := runCmd(t, c.args...)
+		if (err == nil) != c.ok || !strings.Contains(errs, c.errText) {
+			t.Errorf("%v: err %v, stderr %q", c.args, err, errs)
+		}
+	}
+}

@@ -29,6 +29,11 @@ type Errors struct {
 	// white part of the camera's errors from a Student-t with this many
 	// degrees of freedom, scaled to the stated standard deviation.
 	CameraTailDOF int
+	// CameraTailCore makes the stated standard deviation the Student-t's
+	// scale, the spread of its core (what a robust fit of real errors
+	// finds), instead of its total standard deviation: the total variance
+	// is then CameraTailDOF/(CameraTailDOF-2) times the stated one.
+	CameraTailCore bool
 	// CameraContamination is the fraction of camera fixes whose white part
 	// has CameraContaminationScale (default 5) times the stated standard
 	// deviation: a contaminated normal.
@@ -115,16 +120,19 @@ func (es *errorState) startFix(s *Scenario, t int64) {
 	es.contaminated = s.CameraContamination > 0 && es.rng.Float64() < s.CameraContamination
 }
 
-// studentT draws a Student-t variate with nu degrees of freedom scaled to
-// unit variance: z / sqrt(chi2_nu / nu) has variance nu/(nu-2) (common
-// practice).
-func (es *errorState) studentT(nu int) float64 {
+// studentT draws a Student-t variate with nu degrees of freedom, scaled to
+// unit variance unless core: z / sqrt(chi2_nu / nu) has variance
+// nu/(nu-2) (common practice).
+func (es *errorState) studentT(nu int, core bool) float64 {
 	var chi2 float64
 	for i := 0; i < nu; i++ {
 		g := es.rng.NormFloat64()
 		chi2 += g * g
 	}
 	t := es.rng.NormFloat64() / math.Sqrt(chi2/float64(nu))
+	if core {
+		return t
+	}
 	return t * math.Sqrt(float64(nu-2)/float64(nu))
 }
 
@@ -139,7 +147,7 @@ func (sm *Sim) camNoise(k int, std float64) float64 {
 	es := &sm.errs
 	var white float64
 	if s.CameraTailDOF > 0 {
-		white = es.studentT(s.CameraTailDOF)
+		white = es.studentT(s.CameraTailDOF, s.CameraTailCore)
 	} else {
 		white = es.rng.NormFloat64()
 	}

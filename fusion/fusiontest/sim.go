@@ -6,6 +6,40 @@
 // It is deterministic for a seed and has no I/O; the tests of every layer,
 // the benchmarks and the demo use it. Its draws are its own: it imports fusion
 // only for the configuration it describes and to feed a robot.
+//
+// # Real error processes
+//
+// Scenario.Errors switches on the error processes that real robots show and
+// a white-noise filter does not describe (each zero value is off, and off
+// leaves every draw as before; they draw from a random source of their own):
+//
+//   - CameraTauS, CameraCorrelated: first-order Gauss-Markov camera errors
+//     in each component of a fix (2.85 s gives a correlation of 0.9
+//     between fixes 0.3 s apart);
+//   - CameraTailDOF, CameraTailCore: Student-t camera errors with 3 to 5
+//     degrees of freedom, scaled to the stated standard deviation (its
+//     total, or with CameraTailCore its core);
+//   - CameraContamination, CameraContaminationScale: a fraction of fixes
+//     with errors five times the stated standard deviation;
+//   - ForwardScale, TurnScale: odometry scale errors (3% to 15%).
+//
+// Layout Commanded is a differential drive without encoders that reports
+// body steps from its commanded velocities, its truth departing from the
+// command by a noise per second of travel (CommandedForwardVarM2PerS and
+// its siblings). MarkerCount maps 10 to 20 markers along the aisles
+// (AisleMarkers) for range and bearing fixes. FieldFrame moves and rotates
+// the whole field frame (truth, fixes, map and start pose) for invariance
+// tests; ToLocal and CovToLocal take results back.
+//
+// # Configurations and measurements
+//
+// Scenario.Config (and Sim.Config, with the run's start pose) describes the
+// scenario to the filter; WhiteConfig is the same with white-noise
+// assumptions, TrueModelConfig the one with the true error model (see its
+// TODO). MonteCarloNEES runs the NEES test of Bar-Shalom, Li and
+// Kirubarajan (2001, sec. 5.4.2) over many runs; TrustMonitor and
+// TrustViolations measure from truth how long the estimate was trusted
+// while outside its 99.9% region.
 package fusiontest
 
 import (

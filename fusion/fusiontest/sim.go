@@ -117,7 +117,7 @@ type Scenario struct {
 	// MarkerCount, if positive, maps that many markers along the aisles
 	// (AisleMarkers) instead of the posts, and turns Markers on.
 	MarkerCount int
-	// NoiseFree turns off every noise source (outliers and slip too).
+	// NoiseFree turns off every noise source (outliers, slip and Errors too).
 	NoiseFree bool
 	// Bump, if set, moves the cart by hand.
 	Bump *Bump

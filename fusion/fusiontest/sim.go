@@ -6,6 +6,40 @@
 // It is deterministic for a seed and has no I/O; the tests of every layer,
 // the benchmarks and the demo use it. Its draws are its own: it imports fusion
 // only for the configuration it describes and to feed a robot.
+//
+// # Real error processes
+//
+// Scenario.Errors switches on the error processes that real robots show and
+// a white-noise filter does not describe (each zero value is off, and off
+// leaves every draw as before; they draw from a random source of their own):
+//
+//   - CameraTauS, CameraCorrelated: first-order Gauss-Markov camera errors
+//     in each component of a fix (2.85 s gives a correlation of 0.9
+//     between fixes 0.3 s apart);
+//   - CameraTailDOF, CameraTailCore: Student-t camera errors with 3 to 5
+//     degrees of freedom, scaled to the stated standard deviation (its
+//     total, or with CameraTailCore its core);
+//   - CameraContamination, CameraContaminationScale: a fraction of fixes
+//     with errors five times the stated standard deviation;
+//   - ForwardScale, TurnScale: odometry scale errors (3% to 15%).
+//
+// Layout Commanded is a differential drive without encoders that reports
+// body steps from its commanded velocities, its truth departing from the
+// command by a noise per second of travel (CommandedForwardVarM2PerS and
+// its siblings). MarkerCount maps 10 to 20 markers along the aisles
+// (AisleMarkers) for range and bearing fixes. FieldFrame moves and rotates
+// the whole field frame (truth, fixes, map and start pose) for invariance
+// tests; ToLocal and CovToLocal take results back.
+//
+// # Configurations and measurements
+//
+// Scenario.Config (and Sim.Config, with the run's start pose) describes the
+// scenario to the filter; WhiteConfig is the same with white-noise
+// assumptions, TrueModelConfig the one with the true error model (see its
+// TODO). MonteCarloNEES runs the NEES test of Bar-Shalom, Li and
+// Kirubarajan (2001, sec. 5.4.2) over many runs; TrustMonitor and
+// TrustViolations measure from truth how long the estimate was trusted
+// while outside its 99.9% region.
 package fusiontest
 
 import (
@@ -32,6 +66,10 @@ const (
 	// DriveWheelTurn: the turn comes from the difference of the two driven
 	// wheels' encoders (a differential drive, no side slip).
 	DriveWheelTurn
+	// Commanded: a differential drive without encoders that reports body
+	// steps computed from its commanded velocities; the truth departs from
+	// the command by a noise per second of travel (CommandedNoise).
+	Commanded
 )
 
 // String names the layout.
@@ -43,6 +81,8 @@ func (l Layout) String() string {
 		return "gyro-turn"
 	case DriveWheelTurn:
 		return "drive-wheel-turn"
+	case Commanded:
+		return "commanded"
 	}
 	return fmt.Sprintf("layout(%d)", uint8(l))
 }
@@ -74,12 +114,23 @@ type Scenario struct {
 	// Markers makes the camera report range and bearing to the greenhouse's
 	// post markers instead of its own pose.
 	Markers bool
-	// NoiseFree turns off every noise source (outliers and slip too).
+	// MarkerCount, if positive, maps that many markers along the aisles
+	// (AisleMarkers) instead of the posts, and turns Markers on.
+	MarkerCount int
+	// NoiseFree turns off every noise source (outliers, slip and Errors too).
 	NoiseFree bool
 	// Bump, if set, moves the cart by hand.
 	Bump *Bump
 	// SpeedMPerS is the cruising speed (0.4).
 	SpeedMPerS float64
+
+	// The real error processes (errors.go); zero turns each off.
+	Errors
+	// FieldFrame is the pose of the simulator's own frame in the field
+	// frame: truth, fixes, landmarks and the start pose are reported moved
+	// and rotated by it (a robot far from the field origin). The zero pose
+	// leaves every output bit for bit as without it.
+	FieldFrame estimator.Pose
 }
 
 func (s *Scenario) defaults() {
@@ -97,9 +148,14 @@ func (s *Scenario) defaults() {
 	if s.IMUHz == 0 && (s.IMU || s.Layout == GyroTurn) {
 		s.IMUHz = 100
 	}
+	if s.MarkerCount > 0 {
+		s.Markers = true
+	}
 	if s.NoiseFree {
 		s.OutlierFraction, s.SlipPerS = 0, 0
+		s.Errors = Errors{}
 	}
+	s.Errors.defaults()
 }
 
 // Camera mount on the cart: 0.15 m ahead of the reference point, facing forward.
@@ -140,7 +196,7 @@ func (s Scenario) Config() fusion.Config {
 		Noise:     n,
 		Recovery:  fusion.Recovery{Enabled: true},
 		StartCov:  []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
-		Landmarks: Markers(),
+		Landmarks: s.Landmarks(),
 	}
 	cpm, bits := 0.0, 0
 	if s.Counts {
@@ -158,6 +214,8 @@ func (s Scenario) Config() fusion.Config {
 	case DriveWheelTurn:
 		c.Wheels = []fusion.Wheel{w("left", 0, 0.2, 0), w("right", 0, -0.2, 0)}
 		c.NoSideSlip = true
+	case Commanded:
+		c.Noise = commandedWhiteNoise(n, s.SpeedMPerS)
 	}
 	if s.IMU && s.Layout != GyroTurn {
 		c.IMU = fusion.IMUAbsolute
@@ -218,6 +276,10 @@ type Sim struct {
 	slipUntil                           int64
 	imuOffset                           float64
 	bumped                              bool
+	cmd                                 estimator.Step // commanded motion since the last odometry sample
+	movingS                             float64        // seconds of commanded motion since the last event
+
+	errs errorState // the real error processes, with their own random source
 
 	queue queue
 	seq   int64
@@ -228,7 +290,7 @@ type Sim struct {
 func New(s Scenario) *Sim {
 	s.defaults()
 	sm := &Sim{s: s, cfg: s.Config(), rng: rand.New(rand.NewPCG(s.Seed, s.Seed^0x9e3779b97f4a7c15))}
-	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != DriveWheelTurn)
+	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != DriveWheelTurn && s.Layout != Commanded)
 	sm.left = sm.route[0].durNs
 	sm.endNs = int64(s.DurationS * 1e9)
 	sm.truth = estimator.Pose{X: 0, Y: 0, Heading: 0}
@@ -239,6 +301,7 @@ func New(s Scenario) *Sim {
 	sm.nextIMU = 3e6 // the IMU's own clock phase: 3 ms off the encoders'
 	sm.nextCam = 50e6
 	sm.imuOffset = 0.7 // the IMU zeroed at power-on, facing elsewhere
+	sm.errs = newErrorState(s.Seed)
 	return sm
 }
 
@@ -246,11 +309,16 @@ func New(s Scenario) *Sim {
 // starting pose drawn around the truth from the starting covariance (so that
 // the filter's initial error is consistent with its covariance).
 func (sm *Sim) Config() fusion.Config {
-	c := sm.cfg
+	return sm.withStart(sm.cfg)
+}
+
+// withStart returns c with the run's starting pose.
+func (sm *Sim) withStart(c fusion.Config) fusion.Config {
 	r := rand.New(rand.NewPCG(sm.s.Seed+1, 7))
 	if !sm.s.NoiseFree {
 		c.StartPose = estimator.Pose{X: r.NormFloat64() * startStdM, Y: r.NormFloat64() * startStdM, Heading: r.NormFloat64() * startStdRad}
 	}
+	c.StartPose = sm.s.ToField(c.StartPose)
 	return c
 }
 
@@ -286,9 +354,17 @@ func (sm *Sim) advance(t int64) {
 		seg := sm.route[sm.seg]
 		f := float64(dt) * 1e-9
 		step := estimator.Step{ForwardM: seg.v * f, LeftM: seg.u * f, TurnRad: seg.w * f}
+		// What the odometry reports: the step scaled by its scale errors.
+		fs, ts := 1+sm.s.ForwardScale, 1+sm.s.TurnScale
 		for i, w := range sm.cfg.Wheels {
 			c := estimator.WheelCoef(w.XM, w.YM, w.DirectionRad)
-			sm.travel[i] += c[0]*step.ForwardM + c[1]*step.LeftM + c[2]*step.TurnRad
+			sm.travel[i] += c[0]*step.ForwardM*fs + c[1]*step.LeftM*fs + c[2]*step.TurnRad*ts
+		}
+		sm.cmd.ForwardM += step.ForwardM * fs
+		sm.cmd.LeftM += step.LeftM * fs
+		sm.cmd.TurnRad += step.TurnRad * ts
+		if seg.v != 0 || seg.u != 0 || seg.w != 0 {
+			sm.movingS += f
 		}
 		sm.truth = estimator.Advance(sm.truth, step)
 		sm.t += dt
@@ -343,6 +419,10 @@ func (sm *Sim) generate() {
 		// Rotation the wheels do not see: scrub in turns and a heading random
 		// walk, drawn from the filter's own model.
 		turn := math.Abs(estimator.Wrap(sm.truth.Heading - prev.Heading))
+		if sm.s.Layout == Commanded {
+			turn = 0 // no wheels to scrub; commandedMotion draws its own noise
+			sm.commandedMotion()
+		}
 		v := sm.cfg.Noise.TurnVarRad2PerRad*turn + sm.cfg.Noise.HeadingVarRad2PerS*float64(t-prevT)*1e-9
 		if sm.cfg.NoSideSlip {
 			// Sideways slip of a differential drive, per metre driven.
@@ -364,7 +444,7 @@ func (sm *Sim) generate() {
 	if sm.s.IMUHz > 0 && sm.cfg.IMU == fusion.IMUAbsolute && t == sm.nextIMU {
 		h := estimator.Wrap(sm.truth.Heading + sm.imuOffset + sm.gauss(imuHeadingStdRad))
 		jitter := int64(1e6 + sm.rng.Float64()*4e6)
-		sm.push(Input{ArrivalNs: t + jitter, Heading: &fusion.Heading{StampNs: t, HeadingRad: h}, Truth: sm.truth, Bumped: sm.bumped})
+		sm.push(Input{ArrivalNs: t + jitter, Heading: &fusion.Heading{StampNs: t, HeadingRad: h}, Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped})
 		sm.nextIMU = t + int64(math.Round(1e9/sm.s.IMUHz))
 	}
 	if t == sm.nextCam {
@@ -375,7 +455,7 @@ func (sm *Sim) generate() {
 
 func (sm *Sim) emitOdometry(t int64) {
 	noise := sm.cfg.Noise.WheelVarM2PerM
-	if t > sm.startOdo && !sm.s.NoiseFree && sm.s.SlipPerS > 0 && sm.rng.Float64() < sm.s.SlipPerS/sm.s.OdometryHz {
+	if t > sm.startOdo && !sm.s.NoiseFree && len(sm.travel) > 0 && sm.s.SlipPerS > 0 && sm.rng.Float64() < sm.s.SlipPerS/sm.s.OdometryHz {
 		sm.slipWheel, sm.slipUntil = sm.rng.IntN(len(sm.travel)), t+300e6
 	}
 	travel := make([]float64, len(sm.travel))
@@ -388,7 +468,14 @@ func (sm *Sim) emitOdometry(t int64) {
 		sm.travel[i] = 0
 	}
 	o := &fusion.Odometry{StampNs: t}
-	if sm.s.Counts {
+	if sm.s.Layout == Commanded {
+		if t == 0 {
+			return
+		}
+		step := sm.cmd
+		o.StartNs, o.Step = sm.startOdo, &step
+		sm.cmd = estimator.Step{}
+	} else if sm.s.Counts {
 		o.Counts = make([]int64, len(travel))
 		for i, p := range sm.pos {
 			c := int64(math.Floor(p * countsPerM))
@@ -405,17 +492,18 @@ func (sm *Sim) emitOdometry(t int64) {
 		o.IMUHeadingRad = &h
 	}
 	sm.startOdo = t
-	sm.push(Input{ArrivalNs: t + 1e6, Odometry: o, Truth: sm.truth, Bumped: sm.bumped})
+	sm.push(Input{ArrivalNs: t + 1e6, Odometry: o, Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped})
 }
 
 func (sm *Sim) emitCamera(t int64) {
 	lat := sm.s.LatencyMinS + sm.rng.Float64()*(sm.s.LatencyMaxS-sm.s.LatencyMinS)
-	in := Input{ArrivalNs: t + int64(lat*1e9), Truth: sm.truth, Bumped: sm.bumped}
+	in := Input{ArrivalNs: t + int64(lat*1e9), Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped}
 	cam := estimator.Compose(sm.truth, CameraMount)
 	outlier := !sm.s.NoiseFree && sm.rng.Float64() < sm.s.OutlierFraction
+	sm.errs.startFix(&sm.s, t)
 	if sm.s.Markers {
 		best, bestR := -1, 5.0
-		marks := Markers()
+		marks := sm.s.localMarkers()
 		for i, m := range marks {
 			dx, dy := m.XM-cam.X, m.YM-cam.Y
 			r := math.Hypot(dx, dy)
@@ -427,21 +515,24 @@ func (sm *Sim) emitCamera(t int64) {
 			return
 		}
 		m := marks[best]
-		r := math.Hypot(m.XM-cam.X, m.YM-cam.Y) + sm.gauss(rangeStdM)
-		b := estimator.Wrap(math.Atan2(m.YM-cam.Y, m.XM-cam.X) - cam.Heading + sm.gauss(bearingStdRad))
+		r := math.Hypot(m.XM-cam.X, m.YM-cam.Y) + sm.camNoise(0, rangeStdM)
+		b := estimator.Wrap(math.Atan2(m.YM-cam.Y, m.XM-cam.X) - cam.Heading + sm.camNoise(1, bearingStdRad))
 		if outlier {
 			r += 1 + 2*sm.rng.Float64()
 		}
 		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, Mount: CameraMount, LandmarkID: m.ID,
 			RangeM: &r, BearingRad: &b, Cov: []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}}
 	} else {
-		x, y, h := cam.X+sm.gauss(cameraStdM), cam.Y+sm.gauss(cameraStdM), cam.Heading+sm.gauss(cameraStdRad)
+		x, y, h := cam.X+sm.camNoise(0, cameraStdM), cam.Y+sm.camNoise(1, cameraStdM), cam.Heading+sm.camNoise(2, cameraStdRad)
 		if outlier {
 			a := sm.rng.Float64() * 2 * math.Pi
 			d := 1 + 2*sm.rng.Float64()
 			x, y, h = x+d*math.Cos(a), y+d*math.Sin(a), h+sm.rng.Float64()*2-1
 		}
-		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, Mount: CameraMount, XM: x, YM: y, HeadingRad: estimator.Wrap(h),
+		// The error is drawn in the simulator's frame and moved with the
+		// pose, so that a twin run in a moved field frame sees the same error.
+		p := sm.s.ToField(estimator.Pose{X: x, Y: y, Heading: estimator.Wrap(h)})
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, Mount: CameraMount, XM: p.X, YM: p.Y, HeadingRad: p.Heading,
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
 	}
 	in.Outlier = outlier

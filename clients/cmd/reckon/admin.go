@@ -237,30 +237,31 @@ func countsOf(v *pb.VerdictCounts) []uint64 {
 }
 
 func printStats(w io.Writer, name string, st *pb.RobotStatistics) error {
-	tw := tabwriter.NewWriter(w, 0, 8, 2, ' ', tabwriter.AlignRight)
-	head := "\t"
-	for _, v := range countedVerdicts {
-		head += convert.VerdictName(v) + "\t"
-	}
-	fmt.Fprintf(tw, "%s%s\n", name, head)
-	row := func(label string, c *pb.VerdictCounts) {
-		fmt.Fprintf(tw, "%s\t", label)
-		for _, n := range countsOf(c) {
-			fmt.Fprintf(tw, "%d\t", n)
-		}
-		fmt.Fprintln(tw)
-	}
-	row("odometry", st.GetOdometry())
-	row("measurements", st.GetMeasurements())
+	labels := []string{"odometry", "measurements"}
+	rows := []*pb.VerdictCounts{st.GetOdometry(), st.GetMeasurements()}
 	for _, s := range st.GetSensors() {
-		row("sensor "+s.GetSensorId(), s.GetCounts())
+		labels = append(labels, "sensor "+s.GetSensorId())
+		rows = append(rows, s.GetCounts())
 	}
-	if err := tw.Flush(); err != nil {
-		return err
+	width := len(name)
+	for _, l := range labels {
+		width = max(width, len(l))
+	}
+	fmt.Fprintf(w, "%-*s", width, name)
+	for _, v := range countedVerdicts {
+		fmt.Fprintf(w, " %8s", convert.VerdictName(v))
+	}
+	fmt.Fprintln(w)
+	for i, c := range rows {
+		fmt.Fprintf(w, "%-*s", width, labels[i])
+		for _, n := range countsOf(c) {
+			fmt.Fprintf(w, " %8d", n)
+		}
+		fmt.Fprintln(w)
 	}
 	if len(st.GetSensors()) > 0 {
 		fmt.Fprintln(w, "\nconsistency (mean NIS of applied fixes against its two-sided 95% band):")
-		tw = tabwriter.NewWriter(w, 0, 8, 2, ' ', 0)
+		tw := tabwriter.NewWriter(w, 0, 8, 2, ' ', 0)
 		for _, s := range st.GetSensors() {
 			fmt.Fprintf(tw, "  %s\tmean NIS %.3f\tband [%.3f, %.3f]\t%s\n", s.GetSensorId(), s.GetMeanNis(), s.GetBandLow(), s.GetBandHigh(), convert.ConsistencyName(s.GetVerdict()))
 		}

@@ -91,7 +91,7 @@ summary and exits 130.`)
 	}
 	switch {
 	case interrupted:
-		fmt.Fprintf(std.err, "interrupted after %s line %d\n", label, t.lastLine())
+		fmt.Fprintf(std.err, "reckon feed: interrupted after %s:%d\n", label, t.lastLine())
 		return errInterrupted
 	case sendErr != nil:
 		return sendErr

@@ -107,7 +107,7 @@ func usage() string {
 		for _, w := range strings.Fields(s) {
 			if len(line)+1+len(w) > 80 {
 				b.WriteString(line + "\n")
-				line = strings.Repeat(" ", 10) + w
+				line = strings.Repeat(" ", 11) + w
 				continue
 			}
 			line += " " + w

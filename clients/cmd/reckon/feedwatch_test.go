@@ -183,3 +183,28 @@ func TestWatchReconnect(t *testing.T) {
 		t.Fatalf("the watch did not end after the robot was deleted\n%s", errb.String())
 	}
 }
+
+// TestWatchGivesUp: a watch whose service stays away longer than
+// -reconnect exits 3.
+func TestWatchGivesUp(t *testing.T) {
+	ctx := context.Background()
+	addr, stop := serve(t, "127.0.0.1:0", t.TempDir())
+	if _, errs, code := runCode(t, ctx, "", "create", "cart", "-config", exampleConfig, "-addr", addr); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	var out, errb syncBuffer
+	done := make(chan error, 1)
+	go func() {
+		done <- run(ctx, []string{"watch", "-addr", addr, "-robot", "cart", "-format", "jsonl", "-reconnect", "300ms"}, nil, &out, &errb)
+	}()
+	waitFor(t, "the first pose", func() bool { return strings.Contains(out.String(), "\n") })
+	stop()
+	select {
+	case err := <-done:
+		if code := exitCode(err); code != exitUnreachable || !strings.Contains(err.Error(), "gave up reconnecting to robots/cart after 300ms") {
+			t.Errorf("%v: exit %d, want %d\n%s", err, code, exitUnreachable, errb.String())
+		}
+	case <-time.After(20 * time.Second):
+		t.Fatalf("the watch did not give up\n%s", errb.String())
+	}
+}

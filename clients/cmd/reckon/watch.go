@@ -70,14 +70,16 @@ poses it printed and exits 130.`)
 			return errInterrupted
 		case err == nil && w.count > 0 && w.n >= w.count:
 			return nil
-		case err != nil && status.Code(err) != codes.Unavailable:
+		case err == nil:
+			// The service ended the stream: it is stopping, or the robot
+			// was deleted (the next attempt then finds no robot).
+			err = status.Error(codes.Unavailable, "the service ended the stream")
+		}
+		switch {
+		case status.Code(err) != codes.Unavailable:
 			return err // the robot is gone, the token refused, ...
 		case !got && lostAt.IsZero() && w.n == 0:
 			return err // never connected: the service is not there
-		}
-		if err == nil {
-			// The service ended the stream: it is stopping, or the robot was deleted.
-			err = status.Error(codes.Unavailable, "the service ended the stream")
 		}
 		if *reconnect <= 0 {
 			return err

@@ -59,6 +59,19 @@ func ensureRobot(ctx context.Context, c *client.Client, id, path string, replace
 	return "replaced", nil
 }
 
+// createFirst is the -create of feed and link: ensureRobot if path is set,
+// saying on stderr what it changed.
+func createFirst(ctx context.Context, c *client.Client, id, path string, replace bool, stderr io.Writer) error {
+	if path == "" {
+		return nil
+	}
+	did, err := ensureRobot(ctx, c, id, path, replace)
+	if err == nil && did != "unchanged" {
+		fmt.Fprintf(stderr, "%s %s\n", server.RobotName(id), did)
+	}
+	return err
+}
+
 // differingFields names the top-level fields in which a and b differ.
 func differingFields(a, b proto.Message) []string {
 	ma, mb := a.ProtoReflect(), b.ProtoReflect()

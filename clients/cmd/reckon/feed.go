@@ -61,14 +61,8 @@ summary and exits 130.`)
 		return err
 	}
 	defer c.Close()
-	if *create != "" {
-		did, err := ensureRobot(ctx, c, id, *create, *replace)
-		if err != nil {
-			return err
-		}
-		if did != "unchanged" {
-			fmt.Fprintf(std.err, "%s %s\n", name, did)
-		}
+	if err := createFirst(ctx, c, id, *create, *replace, std.err); err != nil {
+		return err
 	}
 	sessCtx, stop := sessionContext(ctx)
 	defer stop()

@@ -43,14 +43,8 @@ and exits 130.`)
 		return err
 	}
 	defer c.Close()
-	if *create != "" {
-		did, err := ensureRobot(ctx, c, id, *create, *replace)
-		if err != nil {
-			return err
-		}
-		if did != "unchanged" {
-			fmt.Fprintf(stderr, "%s %s\n", name, did)
-		}
+	if err := createFirst(ctx, c, id, *create, *replace, stderr); err != nil {
+		return err
 	}
 	var src io.ReadCloser
 	from := *port

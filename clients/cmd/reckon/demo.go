@@ -4,7 +4,6 @@ import (
 	"bufio"
 	"context"
 	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"log/slog"
@@ -110,7 +109,9 @@ type demoOptions struct {
 }
 
 func parseDemoFlags(args []string, stdout, stderr io.Writer) (demoOptions, error) {
-	fs := flag.NewFlagSet("demo", flag.ContinueOnError)
+	fs := newFlagSet("demo", "[flags]", `
+Starts a service on loopback, a simulated greenhouse cart and its camera as two
+gRPC clients, and shows the live estimate; leaves the journal for review.`)
 	fs.SetOutput(stderr)
 	var o demoOptions
 	layout := fs.String("layout", "free-wheel-turn", "wheel layout: free-wheel-turn, gyro-turn or drive-wheel-turn")
@@ -123,12 +124,15 @@ func parseDemoFlags(args []string, stdout, stderr io.Writer) (demoOptions, error
 	fs.StringVar(&o.journal, "journal", "", "journal directory (default reckon-demo/run-<time>)")
 	view := fs.String("view", "auto", "live (redraw), lines (one line every -every seconds) or auto (live on a terminal)")
 	fs.Float64Var(&o.everyS, "every", 5, "simulated seconds between lines in the lines view")
-	if err := fs.Parse(args); err != nil {
+	pos, err := parseArgs(fs, args, stdout, stderr)
+	if err != nil {
 		return o, err
 	}
-	var err error
+	if len(pos) != 0 {
+		return o, usagef(fs, "takes no arguments")
+	}
 	if o.layout, err = parseLayout(*layout); err != nil {
-		return o, err
+		return o, &usageError{err: err}
 	}
 	if o.journal == "" {
 		o.journal = filepath.Join("reckon-demo", time.Now().Format("run-20060102-150405"))

@@ -2,52 +2,39 @@ package main
 
 import (
 	"context"
-	"errors"
-	"flag"
 	"fmt"
 	"io"
-	"os"
-	"strings"
 	"time"
 
-	"google.golang.org/grpc/codes"
-	"google.golang.org/grpc/status"
-
 	"reckon.example/clients/bridge"
-	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server"
-	"reckon.example/server/convert"
 )
 
 // verdictWait bounds the wait for the last verdicts after Ctrl-C.
 const verdictWait = 10 * time.Second
 
 func runLink(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("link", flag.ContinueOnError)
+	fs := newFlagSet("link", "(-serial DEVICE [-baud N] | -udp HOST:PORT) -robot NAME [flags]", `
+Reads reckon link frames from a microcontroller (clients/bridge/PROTOCOL.md) and
+sends their odometry to the robot until interrupted; prints a summary at the end
+and exits 130.`)
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	port := fs.String("serial", "", "serial port of the controller, for instance /dev/ttyACM0")
 	baud := fs.Int("baud", 115200, "serial bit rate (8 data bits, no parity, one stop bit)")
 	udp := fs.String("udp", "", "listen for frames in UDP datagrams on host:port, for instance 0.0.0.0:7461")
-	robot := fs.String("robot", "", "robot name, robots/{robot}")
-	create := fs.String("create", "", "create the robot first from this YAML configuration (if it does not exist)")
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: reckon link (-serial DEVICE [-baud N] | -udp HOST:PORT) -robot robots/NAME [flags]")
-		fmt.Fprintln(stderr, "Reads reckon link frames from a microcontroller (clients/bridge/PROTOCOL.md) and")
-		fmt.Fprintln(stderr, "sends their odometry to the robot until interrupted; prints a summary at the end.")
-		fs.PrintDefaults()
-	}
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return nil
-		}
+	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
+	create, replace := addCreateFlags(fs, "create", "create the robot first from this YAML configuration; an existing robot must have the same one (or -replace)")
+	pos, err := parseArgs(fs, args, stdout, stderr)
+	if err != nil {
 		return err
 	}
-	if *robot == "" || (*port == "") == (*udp == "") || fs.NArg() != 0 {
-		fs.Usage()
-		return errors.New("link needs -robot and one of -serial and -udp")
+	if *robot == "" || (*port == "") == (*udp == "") || len(pos) != 0 {
+		return usagef(fs, "needs -robot and one of -serial and -udp")
 	}
-	id, err := server.RobotID(*robot)
+	if *replace && *create == "" {
+		return usagef(fs, "-replace needs -create")
+	}
+	name, id, err := robotName(*robot)
 	if err != nil {
 		return err
 	}
@@ -56,18 +43,8 @@ func runLink(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		return err
 	}
 	defer c.Close()
-	if *create != "" {
-		b, err := os.ReadFile(*create)
-		if err != nil {
-			return err
-		}
-		cfg, _, err := convert.LoadConfigYAML(b)
-		if err != nil {
-			return fmt.Errorf("%s: %w", *create, err)
-		}
-		if _, err := c.CreateRobot(ctx, id, cfg); err != nil && status.Code(err) != codes.AlreadyExists {
-			return err
-		}
+	if err := createFirst(ctx, c, id, *create, *replace, stderr); err != nil {
+		return err
 	}
 	var src io.ReadCloser
 	from := *port
@@ -84,20 +61,19 @@ func runLink(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		return err
 	}
 	defer src.Close()
-	// The session outlives ctx so that the verdicts of the samples sent
-	// before Ctrl-C still arrive, for verdictWait at most.
-	sessCtx, cancelSess := context.WithCancel(context.WithoutCancel(ctx))
-	defer cancelSess()
-	stopWait := context.AfterFunc(ctx, func() { time.AfterFunc(verdictWait, cancelSess) })
-	defer stopWait()
-	sess, err := c.OpenIngest(sessCtx, *robot)
+	sessCtx, stop := sessionContext(ctx)
+	defer stop()
+	sess, err := c.OpenIngest(sessCtx, name)
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(stderr, "linking %s to %s; interrupt to stop\n", from, *robot)
+	fmt.Fprintf(stderr, "linking %s to %s; interrupt to stop\n", from, name)
 	var dec bridge.Decoder
 	sum, err := bridge.Forward(ctx, src, &dec, sess)
-	printLinkSummary(stdout, *robot, sum)
+	printLinkSummary(stdout, name, sum)
+	if ctx.Err() != nil && (err == nil || exitCode(err) == exitInterrupted) {
+		return errInterrupted
+	}
 	return err
 }
 
@@ -105,11 +81,7 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 	st := sum.Stats
 	fmt.Fprintf(w, "frames: %d ok, %d corrupted, %d invalid, %d duplicates, %d reordered, %d skipped, %d restarts\n",
 		st.Frames, st.Corrupted, st.Invalid, st.Duplicates, st.Reordered, st.Skipped, st.Restarts)
-	var parts []string
-	for _, v := range []pb.Verdict{pb.Verdict_VERDICT_APPLIED, pb.Verdict_VERDICT_HELD, pb.Verdict_VERDICT_GATED, pb.Verdict_VERDICT_TOO_OLD, pb.Verdict_VERDICT_INVALID} {
-		parts = append(parts, fmt.Sprintf("%s %d", convert.VerdictName(v), sum.Verdicts[v]))
-	}
-	fmt.Fprintf(w, "%d samples sent to %s: %s\n", sum.Sent, robot, strings.Join(parts, ", "))
+	fmt.Fprintf(w, "%d samples sent to %s: %s\n", sum.Sent, robot, verdictLine(sum.Verdicts))
 	for _, r := range sum.Reasons {
 		fmt.Fprintln(w, "  "+r)
 	}

@@ -43,7 +43,7 @@ func TestLink(t *testing.T) {
 	linkDone := make(chan error, 1)
 	go func() {
 		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, &out, &errb)
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
 	}()
 	c, err := client.Dial(addr, client.Options{})
 	if err != nil {
@@ -79,8 +79,8 @@ func TestLink(t *testing.T) {
 		time.Sleep(50 * time.Millisecond)
 	}
 	stop()
-	if err := <-linkDone; err != nil {
-		t.Fatalf("link: %v\n%s", err, errb.String())
+	if err := <-linkDone; exitCode(err) != exitInterrupted {
+		t.Fatalf("link interrupted: %v (exit %d), want exit %d\n%s", err, exitCode(err), exitInterrupted, errb.String())
 	}
 	s := out.String()
 	if !strings.Contains(s, "frames: ") || !strings.Contains(s, " samples sent to robots/cart: applied ") || !strings.Contains(s, "too_old 0, invalid 0") {
@@ -97,7 +97,6 @@ func TestLinkFlags(t *testing.T) {
 		ok      bool
 		errText string
 	}{
-		{[]string{"link", "-h"}, true, "usage: reckon link"},
 		{[]string{"link", "-robot", "robots/cart"}, false, "usage: reckon link"},
 		{[]string{"link", "-robot", "robots/cart", "-serial", "/dev/null0", "-udp", "127.0.0.1:0"}, false, "usage: reckon link"},
 		{[]string{"link", "-udp", "127.0.0.1:0"}, false, "usage: reckon link"},
@@ -109,5 +108,10 @@ func TestLinkFlags(t *testing.T) {
 		if (err == nil) != c.ok || !strings.Contains(errs, c.errText) {
 			t.Errorf("%v: err %v, stderr %q", c.args, err, errs)
 		}
+	}
+	// -h prints the usage on standard output (TestHelpAndUsage checks it
+	// for every command).
+	if out, _, err := runCmd(t, "link", "-h"); err != nil || !strings.Contains(out, "usage: reckon link") {
+		t.Errorf("link -h: err %v, stdout %q", err, out)
 	}
 }

@@ -3,7 +3,6 @@ package main
 import (
 	"context"
 	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -18,7 +17,9 @@ import (
 )
 
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
+	fs := newFlagSet("replay", "-journal DIR -robot NAME [-config OTHER.yaml] [flags]\n       reckon replay -config ROBOT.yaml -samples SAMPLES.jsonl [flags]", `
+Runs a journal, or a robot configuration and a JSON Lines file, through the
+estimator offline and writes the track and every verdict.`)
 	fs.SetOutput(stderr)
 	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
 	robot := fs.String("robot", "", "robot id or name in the journal")
@@ -26,12 +27,12 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
 	format := fs.String("format", "csv", "csv or jsonl (table also works)")
 	out := fs.String("out", "", "output file (default standard output)")
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: reckon replay -journal DIR -robot NAME [-config OTHER.yaml] [flags]\n       reckon replay -config ROBOT.yaml -samples SAMPLES.jsonl [flags]")
-		fs.PrintDefaults()
-	}
-	if err := fs.Parse(args); err != nil {
+	pos, err := parseArgs(fs, args, stdout, stderr)
+	if err != nil {
 		return err
+	}
+	if len(pos) != 0 {
+		return usagef(fs, "takes no arguments")
 	}
 	var w io.Writer = stdout
 	if *out != "" {
@@ -44,7 +45,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}
 	pw, err := newPoseWriter(*format, w)
 	if err != nil {
-		return err
+		return usagef(fs, "%v", err)
 	}
 	var override *pb.RobotConfig
 	if *config != "" {
@@ -58,8 +59,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	case *samples != "" && override != nil:
 		return replaySamples(ctx, *samples, override, pw, stderr)
 	}
-	fs.Usage()
-	return errors.New("replay needs -journal and -robot, or -config and -samples")
+	return usagef(fs, "needs -journal and -robot, or -config and -samples")
 }
 
 func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {

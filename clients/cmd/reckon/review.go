@@ -61,7 +61,7 @@ func (sf sourceFlags) source() (review.Source, error) {
 		}
 		src.Config = c
 	default:
-		return src, errors.New("name a run: -journal DIR -robot NAME, or -config ROBOT.yaml -samples SAMPLES.jsonl")
+		return src, &usageError{err: errors.New("name a run: -journal DIR -robot NAME, or -config ROBOT.yaml -samples SAMPLES.jsonl")}
 	}
 	return src, nil
 }
@@ -83,11 +83,13 @@ func progress(stderr io.Writer, what string) (func(int), func()) {
 }
 
 func runReview(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("review", flag.ContinueOnError)
+	fs := newFlagSet("review", "(-journal DIR -robot NAME | -config ROBOT.yaml -samples SAMPLES.jsonl) [flags]", `
+Replays a recorded run with the smoother and writes a text summary, an HTML
+report with figures and CSV exports of the filtered and smoothed tracks.`)
 	fs.SetOutput(stderr)
 	sf := addSourceFlags(fs)
 	other := fs.String("with", "", "replay the run with this YAML configuration instead of its own")
-	if err := fs.Parse(args); err != nil {
+	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
 	src, err := sf.source()
@@ -111,16 +113,18 @@ func runReview(ctx context.Context, args []string, stdout, stderr io.Writer) err
 }
 
 func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("compare", flag.ContinueOnError)
+	fs := newFlagSet("compare", "(-journal DIR -robot NAME | -config ROBOT.yaml -samples SAMPLES.jsonl) [-a A.yaml] -b B.yaml [flags]", `
+Reviews a run under two configurations side by side: the run's own (or -a)
+and -b.`)
 	fs.SetOutput(stderr)
 	sf := addSourceFlags(fs)
 	a := fs.String("a", "", "first YAML configuration (default: the run's own)")
 	b := fs.String("b", "", "second YAML configuration")
-	if err := fs.Parse(args); err != nil {
+	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
 	if *b == "" {
-		return errors.New("compare needs -b OTHER.yaml (and -a, or the run's own configuration)")
+		return usagef(fs, "needs -b OTHER.yaml (and -a, or the run's own configuration)")
 	}
 	src, err := sf.source()
 	if err != nil {

@@ -1,0 +1,208 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"io"
+	"log/slog"
+	"net"
+	"os"
+	"path/filepath"
+	"strings"
+	"sync"
+	"testing"
+
+	"reckon.example/server"
+	"reckon.example/server/daemon"
+)
+
+const (
+	exampleConfig  = "../../../testdata/robots/free-wheel-turn.yaml"
+	exampleSamples = "../../../testdata/samples/greenhouse-10s.jsonl"
+)
+
+// runCode runs reckon with stdin and returns its output and exit code.
+func runCode(t *testing.T, ctx context.Context, stdin string, args ...string) (stdout, stderr string, code int) {
+	t.Helper()
+	var out, errb bytes.Buffer
+	err := run(ctx, args, strings.NewReader(stdin), &out, &errb)
+	code = report(err, &errb)
+	return out.String(), errb.String(), code
+}
+
+// serve runs a service on listen ("127.0.0.1:0" for any port) with its
+// journal in dir; stop stops it and waits for it to end.
+func serve(t *testing.T, listen, dir string) (addr string, stop func()) {
+	t.Helper()
+	ctx, cancel := context.WithCancel(context.Background())
+	ready := make(chan string, 1)
+	done := make(chan error, 1)
+	go func() {
+		done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Ready: func(a, _ string) { ready <- a },
+			Options: server.Options{JournalDir: dir, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+	}()
+	select {
+	case addr = <-ready:
+	case err := <-done:
+		cancel()
+		t.Fatalf("serve %s: %v", listen, err)
+	}
+	var once sync.Once
+	stop = func() {
+		once.Do(func() {
+			cancel()
+			if err := <-done; err != nil {
+				t.Errorf("serve: %v", err)
+			}
+		})
+	}
+	t.Cleanup(stop)
+	return addr, stop
+}
+
+// freeAddr is a loopback address where nothing listens.
+func freeAddr(t *testing.T) string {
+	l, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	addr := l.Addr().String()
+	l.Close()
+	return addr
+}
+
+// otherConfig writes the example configuration with another gate probability.
+func otherConfig(t *testing.T) string {
+	b, err := os.ReadFile(exampleConfig)
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := strings.Replace(string(b), "gate_probability: 0.99", "gate_probability: 0.9", 1)
+	if s == string(b) {
+		t.Fatal("the example configuration has no gate_probability: 0.99")
+	}
+	p := filepath.Join(t.TempDir(), "other.yaml")
+	if err := os.WriteFile(p, []byte(s), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return p
+}
+
+// TestHelpAndUsage: -h and --help print the usage on stdout and exit 0 for
+// every command; an unknown flag exits 2 with the flag package's message.
+func TestHelpAndUsage(t *testing.T) {
+	ctx := context.Background()
+	for _, c := range commands() {
+		if c.run == nil {
+			continue
+		}
+		t.Run(c.name, func(t *testing.T) {
+			for _, h := range []string{"-h", "--help"} {
+				out, errs, code := runCode(t, ctx, "", c.name, h)
+				if code != exitOK || !strings.HasPrefix(out, "usage: reckon "+c.name) || errs != "" {
+					t.Errorf("%s %s: exit %d, stdout %q, stderr %q", c.name, h, code, out, errs)
+				}
+			}
+			out, errs, code := runCode(t, ctx, "", c.name, "-no-such-flag")
+			if code != exitUsage || out != "" || !strings.Contains(errs, "flag provided but not defined: -no-such-flag") || !strings.Contains(errs, "usage: reckon "+c.name) {
+				t.Errorf("%s -no-such-flag: exit %d, stdout %q, stderr %q", c.name, code, out, errs)
+			}
+		})
+	}
+	for _, args := range [][]string{{"help"}, {"-h"}, {"--help"}} {
+		if out, _, code := runCode(t, ctx, "", args...); code != exitOK || !strings.Contains(out, "  robots ") || !strings.Contains(out, "130 interrupted") {
+			t.Errorf("%v: exit %d, stdout %q", args, code, out)
+		}
+	}
+	for _, args := range [][]string{{}, {"fly"}, {"pose"}, {"pose", "a", "b"}, {"pose", "Not_A_Name"}, {"stats", "cart", "-addr"},
+		{"feed", "-robot", "cart"}, {"feed", "-robot", "cart", "-pace", "-1", "x.jsonl"}, {"feed", "-robot", "cart", "-replace", "x.jsonl"},
+		{"reseed", "cart", "-x", "1"}, {"reseed", "cart", "-x", "1", "-y", "1", "-heading", "0", "-cov", "1,2"},
+		{"create", "cart"}, {"watch"}, {"version", "extra"}, {"replay"}, {"review"}, {"demo", "-layout", "tricycle"}} {
+		if _, errs, code := runCode(t, ctx, "", args...); code != exitUsage || !strings.Contains(errs, "usage") && !strings.Contains(errs, "robot name") && !strings.Contains(errs, "layout") && !strings.Contains(errs, "name a run") {
+			t.Errorf("%v: exit %d, want %d; stderr %q", args, code, exitUsage, errs)
+		}
+	}
+}
+
+func TestVersion(t *testing.T) {
+	out, _, code := runCode(t, context.Background(), "", "version")
+	if code != exitOK || !strings.HasPrefix(out, "reckon reckon.example") || !strings.Contains(out, " go1.") {
+		t.Errorf("version: exit %d, %q", code, out)
+	}
+}
+
+// TestAdminCommands: create, its refusal of another configuration and
+// -replace, robots, stats, pose, reseed and delete against a real service,
+// with the exit codes each can produce.
+func TestAdminCommands(t *testing.T) {
+	ctx := context.Background()
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	rc := func(stdin string, args ...string) (string, string, int) {
+		t.Helper()
+		return runCode(t, ctx, stdin, append(args, "-addr", addr)...)
+	}
+	other := otherConfig(t)
+	steps := []struct {
+		args []string
+		code int
+		want string // in stdout, or in stderr when the exit code is not 0
+	}{
+		{[]string{"robots"}, exitOK, "ROBOT"},
+		{[]string{"create", "cart", "-config", exampleConfig}, exitOK, "robots/cart created"},
+		{[]string{"create", "robots/cart", "-config", exampleConfig}, exitOK, "robots/cart unchanged"},
+		{[]string{"create", "cart", "-config", other}, exitRefused, "differs in gate_probability"},
+		{[]string{"feed", "-robot", "cart", "-create", other, exampleSamples}, exitRefused, "differs in gate_probability"},
+		{[]string{"link", "-robot", "cart", "-create", other, "-udp", "127.0.0.1:0"}, exitRefused, "differs in gate_probability"},
+		{[]string{"create", "cart", "-config", other, "-replace"}, exitOK, "robots/cart replaced"},
+		{[]string{"create", "cart", "-config", exampleConfig, "-replace"}, exitOK, "robots/cart replaced"},
+		{[]string{"create", "cart", "-config", "/nonexistent.yaml"}, exitFailure, "nonexistent.yaml"},
+		{[]string{"robots"}, exitOK, "no inputs yet"},
+		{[]string{"feed", "-robot", "cart", exampleSamples}, exitOK, "samples sent to robots/cart: applied"},
+		{[]string{"robots"}, exitOK, "robots/cart"},
+		{[]string{"stats", "cart"}, exitOK, "consistency (mean NIS"},
+		{[]string{"stats", "cart"}, exitOK, "sensor camera"},
+		{[]string{"stats", "cart", "-json"}, exitOK, `"odometry":{"applied":`},
+		{[]string{"pose", "cart"}, exitOK, "    10.000 "},
+		{[]string{"pose", "cart", "-at", "9500000000", "-format", "csv"}, exitOK, "\n9500000000,"},
+		{[]string{"pose", "cart", "-at", "1000000000000"}, exitRefused, "stamp_ns"},
+		{[]string{"reseed", "cart", "-x", "1.5", "-y", "-2", "-heading", "0.5"}, exitOK, "robots/cart reseeded at 10.000 s to x 1.500 m, y -2.000 m, heading 28.6 deg"},
+		{[]string{"pose", "cart", "-format", "csv"}, exitOK, "\n10000000000,"},
+		// The reseed's pose and covariance: 0.05^2 and 0.035^2 as float64 computes them.
+		{[]string{"pose", "cart", "-format", "csv"}, exitOK, ",1.5,-2,0.5,0.0025000000000000005,0,0,0.0025000000000000005,0,0.0012250000000000002,"},
+		{[]string{"reseed", "cart", "-x", "0", "-y", "0", "-heading", "0", "-at", "1"}, exitRefused, "too_old"},
+		{[]string{"reseed", "cart", "-x", "0", "-y", "0", "-heading", "0", "-cov", "1,0,0,0,1,0,0,0,-1"}, exitRefused, "reseed"},
+		{[]string{"stats", "nobody"}, exitNotFound, "robots/nobody"},
+		{[]string{"pose", "nobody"}, exitNotFound, "robots/nobody"},
+		{[]string{"delete", "nobody"}, exitNotFound, "robots/nobody"},
+		{[]string{"delete", "cart"}, exitOK, "robots/cart deleted"},
+		{[]string{"stats", "cart"}, exitNotFound, "robots/cart"},
+	}
+	for _, s := range steps {
+		out, errs, code := rc("", s.args...)
+		text := out
+		if s.code != exitOK {
+			text = errs
+		}
+		if code != s.code || !strings.Contains(text, s.want) {
+			t.Errorf("%v: exit %d (want %d), stdout %q, stderr %q; want %q", s.args, code, s.code, out, errs, s.want)
+		}
+	}
+	// robots/cart was deleted: the listing holds only its header.
+	out, _, code := rc("", "robots")
+	if code != exitOK || strings.Contains(out, "robots/cart") {
+		t.Errorf("robots after delete: exit %d\n%s", code, out)
+	}
+	// Nothing listens: exit 3.
+	down := freeAddr(t)
+	for _, args := range [][]string{{"robots"}, {"stats", "cart"}, {"create", "cart", "-config", exampleConfig}, {"watch", "-robot", "cart"}, {"feed", "-robot", "cart", exampleSamples}} {
+		if _, errs, code := runCode(t, ctx, "", append(args, "-addr", down)...); code != exitUnreachable {
+			t.Errorf("%v against %s: exit %d, want %d; %s", args, down, code, exitUnreachable, errs)
+		}
+	}
+	// A bad configuration file: exit 5, naming the file and line.
+	bad := filepath.Join(t.TempDir(), "bad.yaml")
+	os.WriteFile(bad, []byte("imu_mode: absolute\nwheels:\n  - {y_m: 0.1, spokes: 3}\n"), 0o644)
+	if _, errs, code := rc("", "create", "cart", "-config", bad); code != exitRefused || !strings.Contains(errs, "bad.yaml: robot configuration file: line 3") {
+		t.Errorf("bad configuration: exit %d, %s", code, errs)
+	}
+}

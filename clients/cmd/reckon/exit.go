@@ -1,0 +1,91 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"reckon.example/server/convert"
+)
+
+// The exit codes of reckon, documented in the package comment and the README.
+const (
+	exitOK          = 0   // done
+	exitFailure     = 1   // any other failure
+	exitUsage       = 2   // bad flags or arguments
+	exitUnreachable = 3   // the service did not answer
+	exitNotFound    = 4   // no such robot
+	exitRefused     = 5   // input refused: a bad configuration or samples file, a differing configuration, a refused reseed
+	exitInterrupted = 130 // interrupted (Ctrl-C or SIGTERM), 128 + SIGINT as shells report it
+)
+
+// usageError is a mistake in the command line. shown says that the flag
+// package has already printed it with the usage.
+type usageError struct {
+	err   error
+	shown bool
+}
+
+func (e *usageError) Error() string { return e.err.Error() }
+func (e *usageError) Unwrap() error { return e.err }
+
+// errInterrupted ends a command that was interrupted after it printed its
+// summary; main prints nothing more.
+var errInterrupted = errors.New("interrupted")
+
+// errRefused marks input the command itself refuses, such as a
+// configuration that differs from the existing robot's.
+var errRefused = errors.New("refused")
+
+// errHelp is returned by parseArgs after -h printed the usage.
+var errHelp = errors.New("help requested")
+
+// exitCode maps an error of run to the process exit code.
+func exitCode(err error) int {
+	var ue *usageError
+	switch {
+	case err == nil:
+		return exitOK
+	case errors.Is(err, errInterrupted), errors.Is(err, context.Canceled):
+		return exitInterrupted
+	case errors.As(err, &ue):
+		return exitUsage
+	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL):
+		return exitRefused
+	}
+	// status.FromError finds a status wrapped anywhere in err.
+	if st, ok := status.FromError(err); ok {
+		switch st.Code() {
+		case codes.Unavailable:
+			return exitUnreachable
+		case codes.NotFound:
+			return exitNotFound
+		case codes.InvalidArgument, codes.FailedPrecondition, codes.AlreadyExists, codes.OutOfRange:
+			return exitRefused
+		case codes.Canceled:
+			return exitInterrupted
+		}
+	}
+	return exitFailure
+}
+
+// report prints err for people, as main does, and returns the exit code.
+// An interruption after a summary, and a usage error the flag package has
+// already printed, print nothing more; other interruptions print
+// "interrupted" rather than the context's or the stream's error.
+func report(err error, stderr io.Writer) int {
+	code := exitCode(err)
+	var ue *usageError
+	switch {
+	case err == nil, errors.Is(err, errInterrupted), errors.As(err, &ue) && ue.shown:
+	case code == exitInterrupted:
+		fmt.Fprintln(stderr, "reckon: interrupted")
+	default:
+		fmt.Fprintln(stderr, "reckon:", err)
+	}
+	return code
+}

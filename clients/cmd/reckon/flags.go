@@ -1,0 +1,94 @@
+package main
+
+import (
+	"bytes"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"strings"
+
+	"reckon.example/server"
+)
+
+// newFlagSet returns the flag set of a command whose usage is
+// "usage: reckon NAME SYNOPSIS", then about, then the flags.
+func newFlagSet(name, synopsis, about string) *flag.FlagSet {
+	fs := flag.NewFlagSet(name, flag.ContinueOnError)
+	fs.Usage = func() {
+		w := fs.Output()
+		fmt.Fprintf(w, "usage: reckon %s %s\n", name, synopsis)
+		if about != "" {
+			fmt.Fprintln(w, strings.TrimSpace(about))
+		}
+		var any bool
+		fs.VisitAll(func(*flag.Flag) { any = true })
+		if any {
+			fmt.Fprintln(w, "\nflags:")
+			fs.PrintDefaults()
+		}
+	}
+	return fs
+}
+
+// parseArgs parses args, flags and positional arguments in any order ("--"
+// ends the flags), and returns the positional arguments. -h or --help
+// prints the usage on stdout and returns errHelp; a bad flag prints the
+// flag package's message and the usage on stderr and returns a
+// *usageError.
+func parseArgs(fs *flag.FlagSet, args []string, stdout, stderr io.Writer) ([]string, error) {
+	var pos []string
+	for {
+		var msg bytes.Buffer
+		fs.SetOutput(&msg)
+		err := fs.Parse(args)
+		fs.SetOutput(stderr)
+		if errors.Is(err, flag.ErrHelp) {
+			fs.SetOutput(stdout)
+			fs.Usage()
+			fs.SetOutput(stderr)
+			return nil, errHelp
+		}
+		if err != nil {
+			stderr.Write(msg.Bytes())
+			return nil, &usageError{err: fmt.Errorf("%s: %w", fs.Name(), err), shown: true}
+		}
+		rest := fs.Args()
+		if len(rest) == 0 {
+			return pos, nil
+		}
+		if i := len(args) - len(rest); i > 0 && args[i-1] == "--" {
+			return append(pos, rest...), nil
+		}
+		pos, args = append(pos, rest[0]), rest[1:]
+	}
+}
+
+// usagef prints fs's usage on stderr and returns a *usageError.
+func usagef(fs *flag.FlagSet, format string, args ...any) error {
+	fs.Usage()
+	return &usageError{err: fmt.Errorf("%s: "+format, append([]any{fs.Name()}, args...)...)}
+}
+
+// robotName accepts a robot as NAME or robots/NAME and returns its resource
+// name and id; a bad name is a usage error.
+func robotName(s string) (name, id string, err error) {
+	if !strings.HasPrefix(s, "robots/") {
+		s = "robots/" + s
+	}
+	id, err = server.RobotID(s)
+	if err != nil {
+		return "", "", &usageError{err: err}
+	}
+	return s, id, nil
+}
+
+// parseNone parses the flags of a command that takes no positional
+// arguments.
+func parseNone(fs *flag.FlagSet, args []string, stdout, stderr io.Writer) error {
+	pos, err := parseArgs(fs, args, stdout, stderr)
+	if err == nil && len(pos) != 0 {
+		err = usagef(fs, "takes no arguments, got %q", pos[0])
+	}
+	return err
+}

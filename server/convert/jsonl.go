@@ -20,6 +20,24 @@ const MaxLineBytes = 1 << 20
 // ErrJSONL marks an error in a JSON Lines file.
 var ErrJSONL = errors.New("JSON Lines")
 
+// LineError is an error in a JSON Lines file at a line (counted from 1).
+// errors.Is(err, ErrJSONL) is true for it.
+type LineError struct {
+	Line int
+	Err  error
+}
+
+// Error renders "JSON Lines: line N: what".
+func (e *LineError) Error() string {
+	return fmt.Sprintf("%v: line %d: %v", ErrJSONL, e.Line, e.Err)
+}
+
+// Unwrap returns what was wrong.
+func (e *LineError) Unwrap() error { return e.Err }
+
+// Is makes errors.Is(err, ErrJSONL) true.
+func (e *LineError) Is(target error) bool { return target == ErrJSONL }
+
 // SampleReader reads samples from JSON Lines: one protojson Sample per
 // line; blank lines and lines starting with # are skipped.
 type SampleReader struct {
@@ -37,7 +55,7 @@ func NewSampleReader(r io.Reader) *SampleReader {
 // Line returns the line number of the last sample read.
 func (sr *SampleReader) Line() int { return sr.line }
 
-// Next returns the next sample, or io.EOF. Errors name the line.
+// Next returns the next sample, or io.EOF. An error is a *LineError.
 func (sr *SampleReader) Next() (*pb.Sample, error) {
 	for sr.sc.Scan() {
 		sr.line++
@@ -47,15 +65,16 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		}
 		s := &pb.Sample{}
 		if err := protojson.Unmarshal(b, s); err != nil {
-			return nil, fmt.Errorf("%w: line %d: %v", ErrJSONL, sr.line, err)
+			return nil, &LineError{Line: sr.line, Err: err}
 		}
 		if s.GetSample() == nil {
-			return nil, fmt.Errorf("%w: line %d: none of odometry, heading, fix and reseed is set", ErrJSONL, sr.line)
+			return nil, &LineError{Line: sr.line, Err: errors.New("none of odometry, heading, fix and reseed is set")}
 		}
 		return s, nil
 	}
 	if err := sr.sc.Err(); err != nil {
-		return nil, fmt.Errorf("%w: after line %d: %v", ErrJSONL, sr.line, err)
+		// The line that could not be read is the one after the last read.
+		return nil, &LineError{Line: sr.line + 1, Err: err}
 	}
 	return nil, io.EOF
 }

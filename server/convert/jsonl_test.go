@@ -83,11 +83,14 @@ func TestExampleSamples(t *testing.T) {
 }
 
 func TestSampleReaderErrors(t *testing.T) {
-	cases := []struct{ in, want string }{
-		{"{\"odometry\": {\"stamp_ns\": \"5\", \"travel\": {\"travel_m\": [0.1]}}}\n{not json}\n", "line 2"},
-		{"# comment\n\n{\"fix\": {\"stamp_ns\": \"1\", \"colour\": 3}}\n", "line 3"},
-		{"{}\n", "line 1: none of"},
-		{strings.Repeat("x", MaxLineBytes+10), "after line 0"},
+	cases := []struct {
+		in, want string
+		line     int
+	}{
+		{"{\"odometry\": {\"stamp_ns\": \"5\", \"travel\": {\"travel_m\": [0.1]}}}\n{not json}\n", "line 2", 2},
+		{"# comment\n\n{\"fix\": {\"stamp_ns\": \"1\", \"colour\": 3}}\n", "line 3", 3},
+		{"{}\n", "line 1: none of", 1},
+		{strings.Repeat("x", MaxLineBytes+10), "line 1: bufio.Scanner: token too long", 1},
 	}
 	for _, c := range cases {
 		sr := NewSampleReader(strings.NewReader(c.in))
@@ -95,8 +98,9 @@ func TestSampleReaderErrors(t *testing.T) {
 		for err == nil {
 			_, err = sr.Next()
 		}
-		if errors.Is(err, io.EOF) || !errors.Is(err, ErrJSONL) || !strings.Contains(err.Error(), c.want) {
-			t.Errorf("%.40q: error %v, want %q", c.in, err, c.want)
+		var le *LineError
+		if errors.Is(err, io.EOF) || !errors.Is(err, ErrJSONL) || !strings.Contains(err.Error(), c.want) || !errors.As(err, &le) || le.Line != c.line {
+			t.Errorf("%.40q: error %v, want %q at line %d", c.in, err, c.want, c.line)
 		}
 	}
 }

@@ -7,7 +7,6 @@ import (
 	"io"
 	"math"
 	"os"
-	"regexp"
 	"strings"
 	"sync"
 	"time"
@@ -128,10 +127,6 @@ func sendSamples(ctx context.Context, sess *client.Session, sr *convert.SampleRe
 	return sent, nil
 }
 
-// jsonlPrefix is the position convert.SampleReader puts in its errors;
-// lineError puts file:line in its place.
-var jsonlPrefix = regexp.MustCompile(`^` + regexp.QuoteMeta(convert.ErrJSONL.Error()) + `: (?:after )?line \d+: `)
-
 // fileLineError is an error in an input file at a line, "file:line: what".
 type fileLineError struct {
 	file string
@@ -140,14 +135,21 @@ type fileLineError struct {
 }
 
 func (e *fileLineError) Error() string {
-	return fmt.Sprintf("%s:%d: %s", e.file, e.line, jsonlPrefix.ReplaceAllString(e.err.Error(), ""))
+	msg := e.err
+	var le *convert.LineError
+	if errors.As(e.err, &le) {
+		msg = le.Err
+	}
+	return fmt.Sprintf("%s:%d: %v", e.file, e.line, msg)
 }
 
 func (e *fileLineError) Unwrap() error { return e.err }
 
+// lineError places err at file:line; a *convert.LineError knows its line.
 func lineError(file string, line int, err error) error {
-	if strings.Contains(err.Error(), ": after line ") {
-		line++ // a line too long to read, after the last one read
+	var le *convert.LineError
+	if errors.As(err, &le) {
+		line = le.Line
 	}
 	return &fileLineError{file: file, line: line, err: err}
 }

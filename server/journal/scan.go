@@ -61,6 +61,12 @@ type Visitor struct {
 	// Input, if set instead of Pair, is called for every input that has
 	// its output; the outputs are then not decoded.
 	Input func(in *pb.JournalInput) error
+	// Gap, if set, is called at each continuity break (an error wrapping
+	// ErrGap) and the scan goes on handing records to the visitor if it
+	// returns nil; without it the visitor gets nothing after the first
+	// (what a replay needs: the inputs after a gap would give another
+	// robot). Read returns the first break as its error either way.
+	Gap func(err error) error
 }
 
 // scanState carries a scan across segments. The payloads it keeps alias
@@ -73,7 +79,8 @@ type scanState struct {
 	kept    [][]byte // with a Snapshot visitor: payloads since the last snapshot
 	snap    []byte   // the last snapshot record's payload
 	damaged bool     // damage seen: an output without its input is skipped
-	gap     error    // the first continuity break; the visitor gets nothing after it
+	gap     error    // the first continuity break
+	stopped bool     // the visitor gets nothing more: a gap without Visitor.Gap
 }
 
 // Read reads a robot's journal in the OS file system (ReadFS).
@@ -92,8 +99,9 @@ func Read(dir, robot string, v Visitor) (Scan, error) { return ReadFS(nil, dir, 
 // numbers from 0 without a hole, up to the newest the manifest names, and
 // input sequence numbers (and snapshots') each one more than the last
 // complete input's. A break is an error wrapping ErrGap (joined with the
-// first *DamageError, if any), and the visitor gets nothing after it; the
-// scan still reads to the end, keeping aside every damaged range. The torn
+// first *DamageError, if any), and the visitor gets nothing after it
+// unless Visitor.Gap says to go on; the scan reads to the end either way,
+// keeping aside every damaged range. The torn
 // tail of the last segment (Scan.Torn) is not an error: it was never
 // acknowledged. An error from v stops the scan and is returned.
 func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
@@ -115,7 +123,9 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 	}
 	for i, s := range segs {
 		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {
-			st.noteGap(fmt.Errorf("%w: %s: segment %06d missing before it", ErrGap, s.path, want))
+			if err := st.noteGap(fmt.Errorf("%w: %s: segment %06d missing before it", ErrGap, s.path, want)); err != nil {
+				return sc, err
+			}
 		}
 		sc.Segment = s.n
 		if err := st.segment(s.path, s.n == 0, i == len(segs)-1); err != nil {
@@ -123,15 +133,20 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		}
 	}
 	if manifest && newest > sc.Segment {
-		st.noteGap(fmt.Errorf("%w: segment %06d missing: the manifest names it the newest, the last found is %s", ErrGap, newest, segs[len(segs)-1].path))
+		if err := st.noteGap(fmt.Errorf("%w: segment %06d missing: the manifest names it the newest, the last found is %s", ErrGap, newest, segs[len(segs)-1].path)); err != nil {
+			return sc, err
+		}
 	}
 	if sc.Opening == nil {
 		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record", robot), st.gap, st.firstDamage())
 	}
+	if err := st.fromSnapshot(); err != nil {
+		return sc, err
+	}
 	if st.gap != nil {
 		return sc, errors.Join(st.gap, st.firstDamage())
 	}
-	return sc, st.fromSnapshot()
+	return sc, nil
 }
 
 // fromSnapshot hands a Snapshot visitor the last snapshot and the pairs
@@ -159,10 +174,20 @@ func (st *scanState) fromSnapshot() error {
 	return nil
 }
 
-func (st *scanState) noteGap(err error) {
+// noteGap notes a continuity break; it stops the visitor unless v.Gap
+// lets the scan go on.
+func (st *scanState) noteGap(err error) error {
 	if st.gap == nil {
 		st.gap = err
 	}
+	if st.stopped {
+		return nil
+	}
+	if st.v.Gap == nil {
+		st.stopped = true
+		return nil
+	}
+	return st.v.Gap(err)
 }
 
 func (st *scanState) firstDamage() error {
@@ -371,7 +396,9 @@ func (st *scanState) record(path string, first bool, b []byte, end int64) error 
 			return fmt.Errorf("%s: an input without its output", path)
 		}
 		if seq := leadingVarint(b); seq != sc.LastSequence+1 {
-			st.noteGap(fmt.Errorf("%w: %s at byte %d: input %d follows input %d", ErrGap, path, end, seq, sc.LastSequence))
+			if err := st.noteGap(fmt.Errorf("%w: %s at byte %d: input %d follows input %d", ErrGap, path, end, seq, sc.LastSequence)); err != nil {
+				return err
+			}
 		}
 		st.pending = b
 	case KindOutput:
@@ -438,7 +465,7 @@ func (st *scanState) output(path string, b []byte, end int64) error {
 	st.pending = nil
 	sc.LastSequence = leadingVarint(pending) // a break was noted at the input
 	switch {
-	case st.gap != nil:
+	case st.stopped:
 		return nil
 	case st.v.Snapshot != nil:
 		st.kept = append(st.kept, pending, b)
@@ -455,10 +482,12 @@ func (st *scanState) snapshot(path string, b []byte, end int64) error {
 		return fmt.Errorf("%s: a snapshot between an input and its output", path)
 	}
 	if seq := leadingVarint(b); seq != st.sc.LastSequence {
-		st.noteGap(fmt.Errorf("%w: %s at byte %d: a snapshot at input %d follows input %d", ErrGap, path, end, seq, st.sc.LastSequence))
+		if err := st.noteGap(fmt.Errorf("%w: %s at byte %d: a snapshot at input %d follows input %d", ErrGap, path, end, seq, st.sc.LastSequence)); err != nil {
+			return err
+		}
 	}
 	st.sc.Good = end
-	if st.v.Snapshot != nil {
+	if st.v.Snapshot != nil && !st.stopped {
 		st.snap = b
 		st.kept = st.kept[:0]
 	}

@@ -25,8 +25,9 @@ type Scan struct {
 	Good    int64
 	// Torn, if not nil, says where and why the last segment's tail was cut
 	// short (a crash while writing it): nothing after it is a valid frame.
-	// TornKept names the copy of the torn bytes, unless they were only an
-	// incomplete frame's start or zeros.
+	// TornKept names the copy of the torn bytes, unless they were only the
+	// start of a frame that runs past the end, zeros, or the start of a
+	// header.
 	Torn        *TornError
 	TornSegment string
 	TornKept    string
@@ -285,12 +286,25 @@ func (st *scanState) tail(path string, b []byte, off int, reason string, last bo
 	sc.Unanswered = st.pending != nil
 	st.pending = nil
 	rest := b[off:]
-	if allZero(rest) || (off == 0 && bytes.HasPrefix(header(), rest)) {
-		return nil // nothing written, or the start of a header
+	if allZero(rest) || (off == 0 && bytes.HasPrefix(header(), rest)) || cutShort(rest) {
+		// Nothing written, the start of a header, or a frame whose write
+		// was cut short: never acknowledged, and what a reader of a journal
+		// being written meets at its end.
+		return nil
 	}
 	var err error
 	sc.TornKept, err = st.keep(path, b, off, len(b))
 	return err
+}
+
+// cutShort reports whether b is the start of a frame that runs past the
+// end of b.
+func cutShort(b []byte) bool {
+	if len(b) < frameSize {
+		return true
+	}
+	size := binary.LittleEndian.Uint32(b)
+	return checkLength(size) == "" && int(size) > len(b)-frameSize
 }
 
 func allZero(b []byte) bool {

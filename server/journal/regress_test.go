@@ -42,13 +42,23 @@ func frameOffsets(b []byte) []int {
 // named like a segment, is not data-bearing-but-empty: the records
 // appended after a restart are all there at the next one.
 func TestRegressionHalfMadeSegment(t *testing.T) {
+	// What the older build did next: it truncated such a segment and
+	// appended records to it without a header.
+	var headerless []byte
+	for i := uint64(101); i <= 150; i++ {
+		for _, r := range pair(i) {
+			headerless, _ = AppendFrame(headerless, r)
+		}
+	}
 	for _, c := range []struct {
 		name    string
 		content []byte
+		pairs   int // pairs in the journal with it
 	}{
-		{"header cut", header()[:7]},
-		{"empty", nil},
-		{"stray file", []byte("notes about the cart\n")},
+		{"header cut", header()[:7], 100},
+		{"empty", nil, 100},
+		{"stray file", []byte("notes about the cart\n"), 100},
+		{"records without a header", headerless, 150},
 	} {
 		t.Run(c.name, func(t *testing.T) {
 			dir := t.TempDir()
@@ -59,14 +69,14 @@ func TestRegressionHalfMadeSegment(t *testing.T) {
 				t.Fatal(err)
 			}
 			sc, seqs, err := readAll(t, dir)
-			if err != nil || len(seqs) != 100 {
+			if err != nil || len(seqs) != c.pairs {
 				t.Fatalf("first restart: %d pairs, %v", len(seqs), err)
 			}
 			w, err := Resume(dir, "cart", sc.Segment, sc.Good, opt)
 			if err != nil {
 				t.Fatal(err)
 			}
-			for i := uint64(101); i <= 600; i++ {
+			for i := uint64(c.pairs + 1); i <= 600; i++ {
 				if err := w.Append(pair(i)...); err != nil {
 					t.Fatal(err)
 				}

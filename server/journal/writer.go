@@ -3,6 +3,7 @@ package journal
 import (
 	"errors"
 	"fmt"
+	"io"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -280,7 +281,7 @@ func (w *Writer) completeHeader(path string, good int64) (int64, error) {
 		return 0, err
 	}
 	h := make([]byte, headerSize)
-	n, _ := f.Read(h)
+	n, _ := io.ReadFull(f, h)
 	f.Close()
 	if n == headerSize && checkHeader(h) == nil {
 		return good, nil

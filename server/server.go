@@ -21,7 +21,6 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
-	"os"
 	"sort"
 	"sync"
 	"time"
@@ -107,7 +106,11 @@ func New(opt Options) (*Server, error) {
 	}
 	var unlock func() error
 	if opt.JournalDir != "" {
-		if err := os.MkdirAll(opt.JournalDir, 0o755); err != nil {
+		fsys := opt.FS
+		if fsys == nil {
+			fsys = journal.OS
+		}
+		if err := fsys.MkdirAll(opt.JournalDir, 0o755); err != nil {
 			return nil, fmt.Errorf("journal directory: %w", err)
 		}
 		var err error

@@ -472,3 +472,17 @@ func TestRemoveKeepsAndNeverOverwrites(t *testing.T) {
 }
 
 var _ io.Reader = (journal.File)(nil)
+
+// TestReplayOnFS: Replay reads the journal from ReplayOptions.FS.
+func TestReplayOnFS(t *testing.T) {
+	mem := faultfs.NewMem()
+	mem.MkdirAll(dir, 0o755)
+	w, err := journal.Create(dir, "cart", &pb.JournalOpening{Robot: "robots/cart", Config: &pb.RobotConfig{}}, journal.Options{FS: mem})
+	if err != nil {
+		t.Fatal(err)
+	}
+	w.Close()
+	if _, sc, err := journal.Replay(dir, "cart", journal.ReplayOptions{FS: mem}); err != nil || sc.Opening == nil {
+		t.Fatalf("replay on MemFS: %v", err)
+	}
+}

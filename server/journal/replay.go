@@ -82,7 +82,7 @@ func Replay(dir, robot string, opt ReplayOptions) (*fusion.Robot, Scan, error) {
 	var scanErr error
 	go func() {
 		defer close(items)
-		scan, scanErr = Read(dir, robot, replayVisitor(opt, items, stop))
+		scan, scanErr = ReadFS(opt.FS, dir, robot, replayVisitor(opt, items, stop))
 	}()
 	rp := &replayer{opt: opt}
 	var err error

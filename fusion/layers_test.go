@@ -18,7 +18,9 @@ const module = "reckon.example/"
 // Layers"). The order is proto, estimator < fusion < server/convert <
 // server/journal < server < server/daemon < server/cmd < clients;
 // fusion/fusiontest is the test harness of fusion, for tests of every layer
-// above estimator and for the demo.
+// above estimator and for the demo; server/journal/faultfs holds the
+// fault-injecting and crashable file systems for tests of the journal and
+// the server.
 type layer struct {
 	pkg   string   // a package, or a tree with "/..."
 	code  []string // what its code may depend on
@@ -37,8 +39,9 @@ var (
 		{pkg: "fusion", code: []string{"estimator"}, tests: []string{"fusion/fusiontest"}},
 		{pkg: "fusion/fusiontest", code: []string{"estimator", "fusion"}},
 		{pkg: "server/convert", code: below, tests: []string{"fusion/fusiontest"}},
-		{pkg: "server/journal", code: convert, tests: []string{"fusion/fusiontest"}},
-		{pkg: "server", code: server, tests: []string{"fusion/fusiontest"}},
+		{pkg: "server/journal", code: convert, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
+		{pkg: "server/journal/faultfs", code: server},
+		{pkg: "server", code: server, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
 		{pkg: "server/daemon", code: daemon, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/cmd/...", code: binary, tests: []string{"fusion/fusiontest"}},
 		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "clients/...")},

@@ -2,8 +2,6 @@ package server
 
 import (
 	"fmt"
-	"os"
-	"strings"
 
 	"reckon.example/server/journal"
 )
@@ -23,27 +21,19 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 	if s.opt.JournalDir == "" {
 		return nil, nil
 	}
-	ids, err := journal.Robots(s.opt.JournalDir)
+	ids, err := journal.RobotsFS(s.opt.FS, s.opt.JournalDir)
 	if err != nil {
 		return nil, err
 	}
 	var reports []RestoreReport
 	for _, id := range ids {
-		fr, scan, err := journal.Replay(s.opt.JournalDir, id, journal.ReplayOptions{FromSnapshot: true, Check: true})
+		fr, scan, err := journal.Replay(s.opt.JournalDir, id, journal.ReplayOptions{FromSnapshot: true, Check: true, FS: s.opt.FS})
 		if err != nil {
 			return reports, fmt.Errorf("restore %s: %w", id, err)
 		}
 		rep := RestoreReport{Robot: RobotName(id), Inputs: scan.Pairs}
 		if scan.Torn != nil {
 			rep.Torn = fmt.Sprintf("%s: %v", scan.TornSegment, scan.Torn)
-			if len(scan.DroppedSegments) > 0 {
-				rep.Torn += fmt.Sprintf("; set aside %d later segments", len(scan.DroppedSegments))
-			}
-			for _, d := range scan.DroppedSegments {
-				if err := os.Rename(d, strings.TrimSuffix(d, journal.Ext)+".torn"); err != nil {
-					return reports, err
-				}
-			}
 			s.opt.Metrics.tornTail()
 			s.log.Warn("journal tail dropped", "robot", rep.Robot, "torn", rep.Torn)
 		}

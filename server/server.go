@@ -21,7 +21,6 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
-	"os"
 	"sort"
 	"sync"
 	"time"
@@ -55,6 +54,9 @@ type Options struct {
 	Logger *slog.Logger
 	// Metrics, if set, is updated as the server works.
 	Metrics *Metrics
+	// FS is the file system of the journal (nil: the operating system's);
+	// tests put a fault-injecting one here.
+	FS journal.FS
 }
 
 // Server implements pb.FusionServiceServer.
@@ -68,6 +70,7 @@ type Server struct {
 
 	stopSync chan struct{}
 	syncDone chan struct{}
+	unlock   func() error // releases the journal directory's lock (nil: none)
 }
 
 // robot is one robot and everything attached to it.
@@ -101,12 +104,21 @@ func New(opt Options) (*Server, error) {
 	if opt.Logger == nil {
 		opt.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
 	}
+	var unlock func() error
 	if opt.JournalDir != "" {
-		if err := os.MkdirAll(opt.JournalDir, 0o755); err != nil {
+		fsys := opt.FS
+		if fsys == nil {
+			fsys = journal.OS
+		}
+		if err := fsys.MkdirAll(opt.JournalDir, 0o755); err != nil {
 			return nil, fmt.Errorf("journal directory: %w", err)
 		}
+		var err error
+		if unlock, err = journal.Lock(opt.FS, opt.JournalDir); err != nil {
+			return nil, err
+		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, stopSync: make(chan struct{}), syncDone: make(chan struct{}), unlock: unlock}
 	go s.syncLoop()
 	return s, nil
 }
@@ -161,6 +173,9 @@ func (s *Server) Close() error {
 		}
 		r.mu.Unlock()
 		r.hub.close()
+	}
+	if s.unlock != nil {
+		errs = append(errs, s.unlock())
 	}
 	return errors.Join(errs...)
 }
@@ -227,7 +242,7 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 }
 
 func (s *Server) journalOptions() journal.Options {
-	return journal.Options{SyncEach: s.opt.SyncEach, SegmentBytes: s.opt.SegmentBytes}
+	return journal.Options{SyncEach: s.opt.SyncEach, SegmentBytes: s.opt.SegmentBytes, FS: s.opt.FS}
 }
 
 // GetRobot gets a robot.
@@ -509,7 +524,7 @@ func (s *Server) flushJournal(r *robot, n int) {
 	if r.journal == nil || r.broken != nil {
 		return
 	}
-	if err := r.journal.Flush(); err != nil {
+	if _, err := r.journal.Flush(); err != nil {
 		r.broken = err
 	} else if r.sinceSnapshot += n; r.sinceSnapshot >= s.opt.SnapshotEvery {
 		s.snapshot(r)

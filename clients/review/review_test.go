@@ -58,7 +58,7 @@ func writeRun(t testing.TB, sc fusiontest.Scenario) (string, string) {
 			t.Fatal(err)
 		}
 		if resp.GetSequence()%512 == 0 {
-			if err := j.Flush(); err != nil {
+			if _, err := j.Flush(); err != nil {
 				t.Fatal(err)
 			}
 		}

@@ -137,6 +137,17 @@ func FuzzJournalReader(f *testing.F) {
 	f.Add(seed)
 	f.Add(seed[:len(seed)-4])
 	f.Add(header())
+	// The corruption cases of the scanner's tests: bit flips in a frame's
+	// length, CRC and payload, a zeroed frame, a duplicated frame.
+	for _, off := range []int{headerSize + 1, headerSize + 5, headerSize + 9, len(seed) - 2} {
+		c := bytes.Clone(seed)
+		c[off] ^= 0x10
+		f.Add(c)
+	}
+	z := bytes.Clone(seed)
+	clear(z[headerSize : headerSize+frameSize])
+	f.Add(z)
+	f.Add(append(bytes.Clone(seed), seed[headerSize:]...))
 	f.Fuzz(func(t *testing.T, b []byte) {
 		jr, err := NewReader(bytes.NewReader(b))
 		if err != nil {

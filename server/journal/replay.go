@@ -33,6 +33,8 @@ type ReplayOptions struct {
 	Opened func(*fusion.Robot) error
 	// Input, if set, is called after every replayed input.
 	Input func(*Replayed) error
+	// FS is the file system the journal is read from (nil: OS).
+	FS FS
 }
 
 // Replayed is one journal input run through the robot again.
@@ -67,8 +69,9 @@ type replayItem struct {
 // and returns the robot after the last input with what the scan found. The
 // journal is read and decoded in a goroutine of its own while the calling
 // goroutine replays. A torn tail ends the replay without an error (see
-// Scan.Torn); an error from a callback, a failed check or an unreadable
-// journal stops it.
+// Scan.Torn), and so does damage that cost no input (Scan.Damage); a gap
+// (ErrGap, see ReadFS), an error from a callback, a failed check or an
+// unreadable journal stops it.
 func Replay(dir, robot string, opt ReplayOptions) (*fusion.Robot, Scan, error) {
 	if opt.Check && opt.SkipOutputs {
 		panic("journal: Replay with both Check and SkipOutputs")
@@ -79,7 +82,7 @@ func Replay(dir, robot string, opt ReplayOptions) (*fusion.Robot, Scan, error) {
 	var scanErr error
 	go func() {
 		defer close(items)
-		scan, scanErr = Read(dir, robot, replayVisitor(opt, items, stop))
+		scan, scanErr = ReadFS(opt.FS, dir, robot, replayVisitor(opt, items, stop))
 	}()
 	rp := &replayer{opt: opt}
 	var err error

@@ -60,7 +60,7 @@ func recordRun(t *testing.T, dir string, snapAt, tamper uint64) *fusion.Robot {
 			w.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: fr.Sequence(), State: b}}})
 		}
 	}
-	if err := w.Flush(); err != nil {
+	if _, err := w.Flush(); err != nil {
 		t.Fatal(err)
 	}
 	return fr

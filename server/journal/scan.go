@@ -1,13 +1,16 @@
 package journal
 
 import (
+	"bytes"
+	"encoding/binary"
 	"errors"
 	"fmt"
-	"io"
+	"hash/crc32"
 	"os"
+	"path/filepath"
 	"regexp"
-	"strconv"
 
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -20,18 +23,28 @@ type Scan struct {
 	// its last complete input and output: where appending resumes.
 	Segment int
 	Good    int64
-	// Torn, if not nil, says where and why the journal was cut short;
-	// DroppedSegments lists whole segments after a torn one.
-	Torn            *TornError
-	TornSegment     string
-	DroppedSegments []string
+	// Torn, if not nil, says where and why the last segment's tail was cut
+	// short (a crash while writing it): nothing after it is a valid frame.
+	// TornKept names the copy of the torn bytes, unless they were only the
+	// start of a frame that runs past the end, zeros, or the start of a
+	// header.
+	Torn        *TornError
+	TornSegment string
+	TornKept    string
+	// Damage lists the damaged byte ranges found inside the journal, each
+	// copied aside, after which the scan went on at the next valid frame.
+	// Damage that cost inputs also makes Read return an ErrGap.
+	Damage []*DamageError
 	// Unanswered is true when the tail held an input without its output:
 	// it was never acknowledged and is dropped with the tail.
 	Unanswered bool
 	Closed     bool
 	// Pairs counts the inputs with their outputs in the journal; Replayed
-	// those passed to Visitor.Pair (fewer when a snapshot was used).
+	// those passed to the Visitor (fewer when a snapshot was used).
 	Pairs, Replayed int
+	// LastSequence is the sequence number of the last input with its
+	// output (0: none).
+	LastSequence uint64
 	// SnapshotSequence is the sequence of the snapshot used (0: none).
 	SnapshotSequence uint64
 }
@@ -49,66 +62,140 @@ type Visitor struct {
 	// Input, if set instead of Pair, is called for every input that has
 	// its output; the outputs are then not decoded.
 	Input func(in *pb.JournalInput) error
+	// Gap, if set, is called at each continuity break (an error wrapping
+	// ErrGap) and the scan goes on handing records to the visitor if it
+	// returns nil; without it the visitor gets nothing after the first
+	// (what a replay needs: the inputs after a gap would give another
+	// robot). Read returns the first break as its error either way.
+	Gap func(err error) error
 }
 
-var segNum = regexp.MustCompile(`\.([0-9]{6})` + regexp.QuoteMeta(Ext) + `$`)
-
-// scanState carries a scan across segments.
+// scanState carries a scan across segments. The payloads it keeps alias
+// the segments' buffers, which are never reused.
 type scanState struct {
+	fs      FS
 	sc      *Scan
 	v       Visitor
 	pending []byte   // an input's payload waiting for its output
 	kept    [][]byte // with a Snapshot visitor: payloads since the last snapshot
-	snap    []byte
+	snap    []byte   // the last snapshot record's payload
+	damaged bool     // damage seen: an output without its input is skipped
+	gap     error    // the first continuity break
+	stopped bool     // the visitor gets nothing more: a gap without Visitor.Gap
 }
 
-// Read reads a robot's journal segments in order and hands the
-// records to v. It stops at a torn or corrupt record and reports it; nothing
-// before it is lost. An error from v stops the scan and is returned.
-func Read(dir, robot string, v Visitor) (Scan, error) {
+// Read reads a robot's journal in the OS file system (ReadFS).
+func Read(dir, robot string, v Visitor) (Scan, error) { return ReadFS(nil, dir, robot, v) }
+
+// ReadFS reads a robot's journal segments in order from fsys (nil: OS) and
+// hands the records to v. Each segment is read into one buffer and its
+// frames checked there.
+//
+// Damage never costs intact records: a frame whose length, CRC-32C or
+// payload is wrong is copied aside ({segment}.damaged-{offset}, see
+// DamageError and Scan.Damage) and the scan resynchronises at the next
+// frame whose length is in bounds, whose CRC-32C matches and whose payload
+// decodes as a record of a known kind. A segment with a short or invalid
+// header is read the same way from byte 0. Continuity is checked: segment
+// numbers from 0 without a hole, up to the newest the manifest names, and
+// input sequence numbers (and snapshots') each one more than the last
+// complete input's. A break is an error wrapping ErrGap (joined with the
+// first *DamageError, if any), and the visitor gets nothing after it
+// unless Visitor.Gap says to go on; the scan reads to the end either way,
+// keeping aside every damaged range. The torn
+// tail of the last segment (Scan.Torn) is not an error: it was never
+// acknowledged. An error from v stops the scan and is returned.
+func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 	var sc Scan
-	segs, err := Segments(dir, robot)
+	st := &scanState{fs: orOS(fsys), sc: &sc, v: v}
+	segs, err := listSegments(st.fs, dir, robot)
+	if err != nil {
+		return sc, err
+	}
+	newest, manifest, err := readManifest(st.fs, dir, robot)
 	if err != nil {
 		return sc, err
 	}
 	if len(segs) == 0 {
+		if manifest {
+			return sc, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, newest)
+		}
 		return sc, fmt.Errorf("no journal for %s in %s", robot, dir)
 	}
-	st := &scanState{sc: &sc, v: v}
-	for i, path := range segs {
-		m := segNum.FindStringSubmatch(path)
-		n, _ := strconv.Atoi(m[1])
-		sc.Segment = n
-		stop, err := st.segment(path, i == 0)
-		if err != nil {
+	for i, s := range segs {
+		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {
+			if err := st.noteGap(fmt.Errorf("%w: %s: segment %06d missing before it", ErrGap, s.path, want)); err != nil {
+				return sc, err
+			}
+		}
+		sc.Segment = s.n
+		if err := st.segment(s.path, s.n == 0, i == len(segs)-1); err != nil {
 			return sc, err
 		}
-		if stop {
-			sc.DroppedSegments = segs[i+1:]
-			break
+	}
+	if manifest && newest > sc.Segment {
+		if err := st.noteGap(fmt.Errorf("%w: segment %06d missing: the manifest names it the newest, the last found is %s", ErrGap, newest, segs[len(segs)-1].path)); err != nil {
+			return sc, err
 		}
 	}
 	if sc.Opening == nil {
-		return sc, fmt.Errorf("journal for %s has no opening record", robot)
+		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record", robot), st.gap, st.firstDamage())
 	}
-	if v.Snapshot != nil {
-		if st.snap != nil {
-			var s pb.JournalSnapshot
-			if err := proto.Unmarshal(st.snap, &s); err != nil {
-				return sc, fmt.Errorf("snapshot: %w", err)
-			}
-			sc.SnapshotSequence = s.GetSequence()
-			if err := v.Snapshot(&s); err != nil {
-				return sc, err
-			}
-		}
-		for i := 0; i+1 < len(st.kept); i += 2 {
-			if err := st.pair(st.kept[i], st.kept[i+1]); err != nil {
-				return sc, err
-			}
-		}
+	if err := st.fromSnapshot(); err != nil {
+		return sc, err
+	}
+	if st.gap != nil {
+		return sc, errors.Join(st.gap, st.firstDamage())
 	}
 	return sc, nil
+}
+
+// fromSnapshot hands a Snapshot visitor the last snapshot and the pairs
+// after it.
+func (st *scanState) fromSnapshot() error {
+	if st.v.Snapshot == nil {
+		return nil
+	}
+	if st.snap != nil {
+		var rec pb.JournalRecord
+		if err := proto.Unmarshal(st.snap, &rec); err != nil {
+			return fmt.Errorf("snapshot: %w", err)
+		}
+		s := rec.GetSnapshot()
+		st.sc.SnapshotSequence = s.GetSequence()
+		if err := st.v.Snapshot(s); err != nil {
+			return err
+		}
+	}
+	for i := 0; i+1 < len(st.kept); i += 2 {
+		if err := st.pair(st.kept[i], st.kept[i+1]); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// noteGap notes a continuity break; it stops the visitor unless v.Gap
+// lets the scan go on.
+func (st *scanState) noteGap(err error) error {
+	if st.gap == nil {
+		st.gap = err
+	}
+	if st.stopped {
+		return nil
+	}
+	if st.v.Gap == nil {
+		st.stopped = true
+		return nil
+	}
+	return st.v.Gap(err)
+}
+
+func (st *scanState) firstDamage() error {
+	if len(st.sc.Damage) == 0 {
+		return nil
+	}
+	return st.sc.Damage[0]
 }
 
 // pair decodes an input and its output and hands them to the visitor.
@@ -121,6 +208,9 @@ func (st *scanState) pair(inB, outB []byte) error {
 		st.sc.Replayed++
 		return st.v.Input(rin.GetInput())
 	}
+	if st.v.Pair == nil {
+		return nil
+	}
 	if err := proto.Unmarshal(outB, &rout); err != nil {
 		return fmt.Errorf("journal output: %w", err)
 	}
@@ -128,51 +218,181 @@ func (st *scanState) pair(inB, outB []byte) error {
 	return st.v.Pair(rin.GetInput(), rout.GetOutput())
 }
 
-// segment scans one segment file; stop is true when it was torn, which
-// ends the scan.
-func (st *scanState) segment(path string, first bool) (stop bool, err error) {
+// segment scans one segment file: first is segment 0, last the last one
+// found.
+func (st *scanState) segment(path string, first, last bool) error {
+	b, err := readFile(st.fs, path)
+	if err != nil {
+		return err
+	}
 	sc := st.sc
-	f, err := os.Open(path)
-	if err != nil {
-		return false, err
+	off, reason := headerSize, ""
+	if len(b) < headerSize {
+		reason = fmt.Sprintf("header cut after %d of %d bytes", len(b), headerSize)
+	} else if err := checkHeader(b); err != nil {
+		reason = err.Error()
 	}
-	defer f.Close()
-	jr, err := NewReader(f)
-	if err != nil {
-		if first {
-			return false, fmt.Errorf("%s: %w", path, err)
+	if reason != "" {
+		// A bad header: damage up to the first valid frame.
+		off = resync(b, 0)
+		if off < 0 {
+			sc.Good = 0
+			return st.tail(path, b, 0, reason, last)
 		}
-		// A segment whose header was cut by a crash right after rotation.
-		sc.Torn, sc.TornSegment, sc.Good = &TornError{0, err.Error()}, path, 0
-		return true, nil
+		if err := st.damage(path, b, 0, off, reason); err != nil {
+			return err
+		}
 	}
-	sc.Good = jr.Offset()
-	for {
-		b, err := jr.NextRaw()
-		if errors.Is(err, io.EOF) {
-			break
+	sc.Good = int64(off)
+	for off < len(b) {
+		end, reason := frameAt(b, off)
+		if reason == "" {
+			if err := st.record(path, first, b[off+frameSize:end], int64(end)); err != nil {
+				return err
+			}
+			off = end
+			continue
 		}
-		var torn *TornError
-		if errors.As(err, &torn) {
-			sc.Torn, sc.TornSegment = torn, path
-			sc.Unanswered = st.pending != nil
-			st.pending = nil
-			return true, nil
+		next := resync(b, off+1)
+		if next < 0 {
+			return st.tail(path, b, off, reason, last)
 		}
-		if err != nil {
-			return false, err
+		if err := st.damage(path, b, off, next, reason); err != nil {
+			return err
 		}
-		if err := st.record(path, first, b, jr.Offset()); err != nil {
-			return false, err
-		}
+		off = next
 	}
 	if st.pending != nil {
-		sc.Unanswered = true
-		sc.Torn, sc.TornSegment = &TornError{sc.Good, "input without its output at the end"}, path
+		// An input without its output at the end: never acknowledged in
+		// the last segment; in another, the gap shows at the next input.
+		if last {
+			sc.Unanswered = true
+			sc.Torn, sc.TornSegment = &TornError{sc.Good, "input without its output at the end"}, path
+		}
 		st.pending = nil
-		return true, nil
 	}
-	return false, nil
+	return nil
+}
+
+// tail takes the bytes from off to the end of a segment, where no valid
+// frame follows a bad one: the torn tail of the last segment, or damage at
+// the end of another.
+func (st *scanState) tail(path string, b []byte, off int, reason string, last bool) error {
+	if !last {
+		return st.damage(path, b, off, len(b), reason)
+	}
+	sc := st.sc
+	sc.Torn, sc.TornSegment = &TornError{int64(off), reason}, path
+	sc.Unanswered = st.pending != nil
+	st.pending = nil
+	rest := b[off:]
+	if allZero(rest) || (off == 0 && bytes.HasPrefix(header(), rest)) || cutShort(rest) {
+		// Nothing written, the start of a header, or a frame whose write
+		// was cut short: never acknowledged, and what a reader of a journal
+		// being written meets at its end.
+		return nil
+	}
+	var err error
+	sc.TornKept, err = st.keep(path, b, off, len(b))
+	return err
+}
+
+// cutShort reports whether b is the start of a frame that runs past the
+// end of b.
+func cutShort(b []byte) bool {
+	if len(b) < frameSize {
+		return true
+	}
+	size := binary.LittleEndian.Uint32(b)
+	return checkLength(size) == "" && int(size) > len(b)-frameSize
+}
+
+func allZero(b []byte) bool {
+	for _, c := range b {
+		if c != 0 {
+			return false
+		}
+	}
+	return true
+}
+
+// damage keeps the damaged range [off, end) of the segment aside and
+// reports it.
+func (st *scanState) damage(path string, b []byte, off, end int, reason string) error {
+	d := &DamageError{File: path, Offset: int64(off), Length: int64(end - off), Reason: reason}
+	if end > off {
+		var err error
+		if d.Kept, err = st.keep(path, b, off, end); err != nil {
+			return err
+		}
+	}
+	st.sc.Damage = append(st.sc.Damage, d)
+	st.damaged = true
+	st.pending = nil // an input whose output was lost: the gap shows at the next input
+	return nil
+}
+
+// keep copies b[off:end] of the segment at path into
+// {path}.damaged-{off}, unless an earlier scan did, and returns its path.
+func (st *scanState) keep(path string, b []byte, off, end int) (string, error) {
+	name := fmt.Sprintf("%s.damaged-%d", path, off)
+	if fi, err := st.fs.Stat(name); err == nil && fi.Size() == int64(end-off) {
+		return name, nil
+	}
+	name, err := asideName(st.fs, name)
+	if err == nil {
+		err = writeSynced(st.fs, name, b[off:end], os.O_WRONLY|os.O_CREATE|os.O_EXCL)
+	}
+	if err == nil {
+		err = st.fs.SyncDir(filepath.Dir(path))
+	}
+	if err != nil {
+		return "", fmt.Errorf("keeping the damaged bytes %d to %d of %s: %w", off, end, path, classify(err))
+	}
+	return name, nil
+}
+
+// frameAt checks the frame at off in b: its length, that it is whole, and
+// its CRC-32C. It returns the frame's end, or why it is bad.
+func frameAt(b []byte, off int) (end int, reason string) {
+	if len(b)-off < frameSize {
+		return 0, fmt.Sprintf("frame cut after %d of %d bytes", len(b)-off, frameSize)
+	}
+	size := binary.LittleEndian.Uint32(b[off:])
+	if reason := checkLength(size); reason != "" {
+		return 0, reason
+	}
+	end = off + frameSize + int(size)
+	if end > len(b) {
+		return 0, fmt.Sprintf("record cut after %d of %d bytes", len(b)-off-frameSize, size)
+	}
+	if crc32.Checksum(b[off+frameSize:end], castagnoli) != binary.LittleEndian.Uint32(b[off+4:]) {
+		return 0, "CRC-32C mismatch"
+	}
+	return end, ""
+}
+
+// resync returns the offset of the first frame at or after from whose
+// length is in bounds, whose CRC-32C matches and whose payload decodes as
+// a record of a known kind, or -1. In the manner of the recovery of
+// LevelDB's and pebble's record logs, which skip to the next chunk that
+// checks; here every byte offset is tried, as the format has no blocks.
+func resync(b []byte, from int) int {
+	var rec pb.JournalRecord
+	for p := from; p+frameSize < len(b); p++ {
+		size := int(binary.LittleEndian.Uint32(b[p:]))
+		if size == 0 || size > MaxRecordBytes || size > len(b)-p-frameSize || !knownKind(b[p+frameSize]) {
+			continue
+		}
+		payload := b[p+frameSize : p+frameSize+size]
+		if crc32.Checksum(payload, castagnoli) != binary.LittleEndian.Uint32(b[p+4:]) {
+			continue
+		}
+		if proto.Unmarshal(payload, &rec) == nil {
+			return p
+		}
+	}
+	return -1
 }
 
 // record takes one record's payload b, which ends at byte end of the
@@ -183,13 +403,18 @@ func (st *scanState) record(path string, first bool, b []byte, end int64) error 
 	case KindOpening:
 		return st.opening(path, first, b, end)
 	case KindInput:
-		if sc.Opening == nil {
+		if sc.Opening == nil && !st.damaged {
 			return fmt.Errorf("%s: an input before the opening record", path)
 		}
 		if st.pending != nil {
 			return fmt.Errorf("%s: an input without its output", path)
 		}
-		st.pending = append([]byte(nil), b...)
+		if seq := leadingVarint(b); seq != sc.LastSequence+1 {
+			if err := st.noteGap(fmt.Errorf("%w: %s at byte %d: input %d follows input %d", ErrGap, path, end, seq, sc.LastSequence)); err != nil {
+				return err
+			}
+		}
+		st.pending = b
 	case KindOutput:
 		return st.output(path, b, end)
 	case KindSnapshot:
@@ -201,6 +426,21 @@ func (st *scanState) record(path string, first bool, b []byte, end int64) error 
 		return fmt.Errorf("%s: record of unknown kind 0x%02x at byte %d", path, b[0], end)
 	}
 	return nil
+}
+
+// leadingVarint returns the value of field 1 of the message a record
+// holds when it is a varint that comes first (an input's or a snapshot's
+// sequence number, as the writer puts it), else 0.
+func leadingVarint(b []byte) uint64 {
+	_, n := protowire.ConsumeVarint(b[1:]) // the record's one field's length
+	if n < 0 || 1+n >= len(b) || b[1+n] != 1<<3|byte(protowire.VarintType) {
+		return 0
+	}
+	v, m := protowire.ConsumeVarint(b[2+n:])
+	if m < 0 {
+		return 0
+	}
+	return v
 }
 
 // opening takes the opening record, which must come first in the first
@@ -223,39 +463,48 @@ func (st *scanState) opening(path string, first bool, b []byte, end int64) error
 }
 
 // output completes the pending input: the pair goes to the visitor, or,
-// when the scan starts from a snapshot, is kept until the last one is known.
+// when the scan starts from a snapshot, is kept until the last one is
+// known. After a gap the visitor gets nothing.
 func (st *scanState) output(path string, b []byte, end int64) error {
 	sc := st.sc
 	if st.pending == nil {
+		if st.damaged {
+			return nil // its input was lost to damage: the gap shows at the next input
+		}
 		return fmt.Errorf("%s: an output without its input", path)
 	}
 	sc.Pairs++
 	sc.Good = end
 	pending := st.pending
 	st.pending = nil
-	if st.v.Snapshot != nil {
-		st.kept = append(st.kept, pending, append([]byte(nil), b...))
+	sc.LastSequence = leadingVarint(pending) // a break was noted at the input
+	switch {
+	case st.stopped:
+		return nil
+	case st.v.Snapshot != nil:
+		st.kept = append(st.kept, pending, b)
 		return nil
 	}
 	return st.pair(pending, b)
 }
 
-// snapshot notes a snapshot record; with a Snapshot visitor it becomes the
-// newest starting point and the pairs kept before it are dropped.
+// snapshot notes a snapshot record, whose sequence must be the last
+// input's; with a Snapshot visitor it becomes the newest starting point
+// and the pairs kept before it are dropped.
 func (st *scanState) snapshot(path string, b []byte, end int64) error {
 	if st.pending != nil {
 		return fmt.Errorf("%s: a snapshot between an input and its output", path)
 	}
+	if seq := leadingVarint(b); seq != st.sc.LastSequence {
+		if err := st.noteGap(fmt.Errorf("%w: %s at byte %d: a snapshot at input %d follows input %d", ErrGap, path, end, seq, st.sc.LastSequence)); err != nil {
+			return err
+		}
+	}
 	st.sc.Good = end
-	if st.v.Snapshot == nil {
-		return nil
+	if st.v.Snapshot != nil && !st.stopped {
+		st.snap = b
+		st.kept = st.kept[:0]
 	}
-	var rec pb.JournalRecord
-	if err := proto.Unmarshal(b, &rec); err != nil {
-		return fmt.Errorf("%s: snapshot record: %w", path, err)
-	}
-	st.snap, _ = proto.Marshal(rec.GetSnapshot())
-	st.kept = st.kept[:0]
 	return nil
 }
 

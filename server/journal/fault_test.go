@@ -1,0 +1,239 @@
+package journal_test
+
+import (
+	"errors"
+	"fmt"
+	"strings"
+	"syscall"
+	"testing"
+
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/journal"
+	"reckon.example/server/journal/faultfs"
+)
+
+// The tests here run the journal over file systems that fail or crash, in
+// the manner of SQLite's I/O-error and crash tests (every operation failed
+// in turn, then the database reopened and checked), LevelDB's
+// fault-injection test (a file system that drops what was not synced) and
+// pebble's errorfs and crashable MemFS.
+
+const dir = "/j"
+
+var opening = &pb.JournalOpening{Robot: "robots/cart", Config: &pb.RobotConfig{}}
+
+func input(seq uint64) *pb.JournalInput {
+	return &pb.JournalInput{Sequence: seq, Sample: &pb.Sample{Sample: &pb.Sample_Heading{Heading: &pb.HeadingSample{StampNs: int64(seq), HeadingRad: 0.1}}}}
+}
+
+func output(seq uint64) *pb.JournalOutput {
+	return &pb.JournalOutput{Response: &pb.IngestResponse{Sequence: seq, Verdict: pb.Verdict_VERDICT_APPLIED}}
+}
+
+// outcome is what a workload was told.
+type outcome struct {
+	created bool
+	acked   int     // pairs Flush counted complete: sequences 1 to acked
+	durable int     // of those, the ones known synced
+	errs    []error // the errors Flush returned
+}
+
+// workload creates the cart's journal and writes 36 pairs in batches of
+// three, 1 KiB segments; a batch's pairs that Flush does not count
+// complete are added again in the next (as the service's robot must keep
+// its sequence numbers contiguous). Without SyncEach it syncs every other
+// batch. It stops at ErrBroken. progress, if set, sees the outcome so far
+// before every batch.
+func workload(fsys journal.FS, syncEach bool, o *outcome) {
+	w, err := journal.Create(dir, "cart", opening, journal.Options{FS: fsys, SyncEach: syncEach, SegmentBytes: 1024})
+	if err != nil {
+		o.errs = append(o.errs, err)
+		return
+	}
+	o.created = true
+	for batch := 0; batch < 20 && o.acked < 36; batch++ {
+		for k := 1; k <= 3; k++ {
+			seq := uint64(o.acked + k)
+			if err := w.AddPair(input(seq), output(seq)); err != nil {
+				panic(err)
+			}
+		}
+		complete, err := w.Flush()
+		o.acked += complete
+		var re *journal.RotateError
+		if syncEach && (err == nil || errors.As(err, &re)) {
+			o.durable = o.acked
+		}
+		if err != nil {
+			o.errs = append(o.errs, err)
+			if errors.Is(err, journal.ErrBroken) {
+				w.Close()
+				return
+			}
+		}
+		if !syncEach && batch%2 == 1 && w.Sync() == nil {
+			o.durable = o.acked
+		}
+	}
+	if w.Close() == nil {
+		o.durable = o.acked
+	}
+}
+
+// restart reads the journal, checks that it holds the pairs 1 to n with
+// n at least min (exactly min if exact), resumes it, adds three pairs
+// and checks them all again. It returns n.
+func restart(t *testing.T, fsys journal.FS, min int, exact bool) int {
+	t.Helper()
+	n := check(t, fsys, min, exact)
+	sc, _ := journal.ReadFS(fsys, dir, "cart", journal.Visitor{})
+	w, err := journal.Resume(dir, "cart", sc.Segment, sc.Good, journal.Options{FS: fsys, SegmentBytes: 1024})
+	if err != nil {
+		t.Fatalf("resume: %v", err)
+	}
+	for seq := uint64(n + 1); seq <= uint64(n+3); seq++ {
+		if err := w.AddPair(input(seq), output(seq)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if c, err := w.Flush(); c != 3 || err != nil {
+		t.Fatalf("flush after resume: %d complete, %v", c, err)
+	}
+	if err := w.Close(); err != nil {
+		t.Fatal(err)
+	}
+	names, _ := fsys.List(dir)
+	for _, name := range names {
+		if strings.HasSuffix(name, ".tmp") {
+			t.Errorf("%s left after resume", name)
+		}
+	}
+	check(t, fsys, n+3, true)
+	return n
+}
+
+// check reads the journal and checks that it holds the pairs 1 to n, in
+// order, once each, n at least min (exactly if exact), without an error
+// and without damage (a torn tail is not damage).
+func check(t *testing.T, fsys journal.FS, min int, exact bool) int {
+	t.Helper()
+	var seqs []uint64
+	sc, err := journal.ReadFS(fsys, dir, "cart", journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+		if in.GetSequence() != out.GetResponse().GetSequence() {
+			t.Errorf("input %d paired with output %d", in.GetSequence(), out.GetResponse().GetSequence())
+		}
+		seqs = append(seqs, in.GetSequence())
+		return nil
+	}})
+	if err != nil {
+		t.Fatalf("read: %v", err)
+	}
+	if len(sc.Damage) > 0 {
+		t.Errorf("damage in a journal that only met faults and crashes: %v", sc.Damage[0])
+	}
+	for i, s := range seqs {
+		if s != uint64(i+1) {
+			t.Fatalf("pair %d has sequence %d", i+1, s)
+		}
+	}
+	if len(seqs) < min || (exact && len(seqs) != min) {
+		t.Fatalf("%d pairs in the journal, want %d (exact %v)", len(seqs), min, exact)
+	}
+	return len(seqs)
+}
+
+// TestFaultEachOperation fails every create, write, sync, truncate,
+// rename and directory sync in turn, once (a transient fault) or from
+// then on (a full disk), with ENOSPC and with EIO, failed writes writing
+// half their bytes; then it restarts on the file system without faults.
+// The journal holds exactly the pairs Flush counted complete, each once;
+// a Create that failed left nothing behind; a Flush error says ErrNoSpace
+// exactly when the disk was full.
+func TestFaultEachOperation(t *testing.T) {
+	ops := []faultfs.Op{faultfs.OpCreate, faultfs.OpWrite, faultfs.OpSync, faultfs.OpTruncate, faultfs.OpRename, faultfs.OpSyncDir}
+	cases := 0
+	for _, syncEach := range []bool{false, true} {
+		clean := faultfs.New(faultfs.NewMem(), nil)
+		clean.MkdirAll(dir, 0o755)
+		var o outcome
+		workload(clean, syncEach, &o)
+		if o.acked != 36 || len(o.errs) > 0 {
+			t.Fatalf("without faults: %d acked, %v", o.acked, o.errs)
+		}
+		for _, op := range ops {
+			for _, errno := range []syscall.Errno{syscall.ENOSPC, syscall.EIO} {
+				for _, lasting := range []bool{false, true} {
+					for n := 0; n < clean.Count(op); n++ {
+						name := fmt.Sprintf("syncEach=%v/%v/%v/lasting=%v/%d", syncEach, op, errno, lasting, n)
+						inject := faultfs.Nth(op, "", n, errno)
+						if lasting {
+							inject = faultfs.From(op, "", n, errno)
+						}
+						mem := faultfs.NewMem()
+						mem.MkdirAll(dir, 0o755)
+						ffs := faultfs.New(mem, inject)
+						ffs.ShortWrite = true
+						var o outcome
+						workload(ffs, syncEach, &o)
+						cases++
+						t.Run(name, func(t *testing.T) {
+							for _, err := range o.errs {
+								if full := errors.Is(err, journal.ErrNoSpace); full != (errno == syscall.ENOSPC) && !errors.Is(err, journal.ErrBroken) {
+									t.Errorf("ErrNoSpace %v for %v: %v", full, errno, err)
+								}
+							}
+							if !o.created {
+								if names, _ := mem.List(dir); len(names) > 0 {
+									t.Fatalf("a failed Create left %v", names)
+								}
+								return
+							}
+							restart(t, mem, o.acked, true)
+						})
+					}
+				}
+			}
+		}
+	}
+	t.Logf("%d faults injected", cases)
+}
+
+// TestPowerLossAtEveryOperation takes the state a power loss would leave
+// (faultfs.MemFS.Crash: only what was synced) before every operation of
+// the workload, with and without SyncEach, and restarts on each: every
+// pair acknowledged and synced by then is there, in order, once; a crash
+// before Create returned leaves a journal that reads or none at all, and
+// a robot of the same name can then be created.
+func TestPowerLossAtEveryOperation(t *testing.T) {
+	for _, syncEach := range []bool{false, true} {
+		mem := faultfs.NewMem()
+		mem.MkdirAll(dir, 0o755)
+		type point struct {
+			fs      *faultfs.MemFS
+			durable int
+			what    string
+		}
+		var points []point
+		var o outcome
+		ffs := faultfs.New(mem, func(op faultfs.Op, path string) error {
+			points = append(points, point{mem.Crash(), o.durable, fmt.Sprintf("%v %s", op, path)})
+			return nil
+		})
+		workload(ffs, syncEach, &o)
+		points = append(points, point{mem.Crash(), o.durable, "the end"})
+		for i, p := range points {
+			t.Run(fmt.Sprintf("syncEach=%v/%d", syncEach, i), func(t *testing.T) {
+				if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.durable == 0 {
+					if _, err := journal.Create(dir, "cart", opening, journal.Options{FS: p.fs}); err != nil {
+						t.Fatalf("crash before %s: no journal (%v), and none can be created: %v", p.what, err, err)
+					}
+					return
+				}
+				restart(t, p.fs, p.durable, false)
+			})
+		}
+		if o.acked != 36 {
+			t.Fatalf("%d acked", o.acked)
+		}
+	}
+}

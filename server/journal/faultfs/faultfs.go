@@ -1,0 +1,236 @@
+package faultfs
+
+import (
+	"fmt"
+	"os"
+	"strings"
+	"sync"
+
+	"reckon.example/server/journal"
+)
+
+// Op is a kind of file-system operation.
+type Op int
+
+// The operations FS can fail.
+const (
+	OpCreate   Op = iota // OpenFile with O_CREATE
+	OpOpen               // OpenFile without O_CREATE
+	OpWrite              // File.Write
+	OpSync               // File.Sync
+	OpTruncate           // File.Truncate
+	OpRead               // File.Read
+	OpRename             // Rename (the path is the old name)
+	OpRemove             // Remove
+	OpList               // List
+	OpMkdir              // MkdirAll
+	OpStat               // Stat and File.Stat
+	OpSyncDir            // SyncDir
+	OpLock               // Lock
+	numOps
+)
+
+var opNames = [numOps]string{"create", "open", "write", "sync", "truncate", "read", "rename", "remove", "list", "mkdir", "stat", "syncdir", "lock"}
+
+// String returns the operation's name.
+func (op Op) String() string {
+	if op >= 0 && op < numOps {
+		return opNames[op]
+	}
+	return fmt.Sprintf("op(%d)", int(op))
+}
+
+// Injector decides whether an operation on path fails: a non-nil error
+// fails it.
+type Injector func(op Op, path string) error
+
+// FS is a journal.FS that passes every operation to Base unless Inject
+// fails it; it counts the operations of each kind.
+type FS struct {
+	Base   journal.FS
+	Inject Injector
+	// ShortWrite makes a failed write write the first half of its bytes
+	// before it returns the error, as a write that ran out of space does.
+	ShortWrite bool
+
+	mu     sync.Mutex
+	counts [numOps]int
+}
+
+// New returns an FS over base that fails what inject says.
+func New(base journal.FS, inject Injector) *FS { return &FS{Base: base, Inject: inject} }
+
+// Count returns how many operations of kind op were attempted.
+func (f *FS) Count(op Op) int {
+	f.mu.Lock()
+	defer f.mu.Unlock()
+	return f.counts[op]
+}
+
+// check counts an operation and returns the error to inject, if any, as
+// the *os.PathError the operating system would give.
+func (f *FS) check(op Op, path string) error {
+	f.mu.Lock()
+	f.counts[op]++
+	inject := f.Inject
+	f.mu.Unlock()
+	if inject == nil {
+		return nil
+	}
+	if err := inject(op, path); err != nil {
+		return &os.PathError{Op: op.String(), Path: path, Err: err}
+	}
+	return nil
+}
+
+// Nth fails the n-th (from 0) operation of kind op on a path containing
+// pathPart ("" matches every path) with err, and no other: a transient
+// fault.
+func Nth(op Op, pathPart string, n int, err error) Injector {
+	return rule(op, pathPart, n, err, false)
+}
+
+// From fails the n-th operation of kind op on a path containing pathPart,
+// and every later one, with err: a fault that lasts, as a full disk does.
+func From(op Op, pathPart string, n int, err error) Injector {
+	return rule(op, pathPart, n, err, true)
+}
+
+func rule(op Op, pathPart string, n int, err error, lasting bool) Injector {
+	var mu sync.Mutex
+	seen := 0
+	return func(o Op, path string) error {
+		if o != op || !strings.Contains(path, pathPart) {
+			return nil
+		}
+		mu.Lock()
+		defer mu.Unlock()
+		i := seen
+		seen++
+		if i == n || (lasting && i > n) {
+			return err
+		}
+		return nil
+	}
+}
+
+// OpenFile opens a file of Base, counted as OpCreate with O_CREATE, else
+// OpOpen.
+func (f *FS) OpenFile(name string, flag int, perm os.FileMode) (journal.File, error) {
+	op := OpOpen
+	if flag&os.O_CREATE != 0 {
+		op = OpCreate
+	}
+	if err := f.check(op, name); err != nil {
+		return nil, err
+	}
+	file, err := f.Base.OpenFile(name, flag, perm)
+	if err != nil {
+		return nil, err
+	}
+	return &faultFile{fs: f, name: name, f: file}, nil
+}
+
+// Rename renames in Base unless OpRename is failed.
+func (f *FS) Rename(oldname, newname string) error {
+	if err := f.check(OpRename, oldname); err != nil {
+		return err
+	}
+	return f.Base.Rename(oldname, newname)
+}
+
+// Remove removes in Base unless OpRemove is failed.
+func (f *FS) Remove(name string) error {
+	if err := f.check(OpRemove, name); err != nil {
+		return err
+	}
+	return f.Base.Remove(name)
+}
+
+// List lists in Base unless OpList is failed.
+func (f *FS) List(dir string) ([]string, error) {
+	if err := f.check(OpList, dir); err != nil {
+		return nil, err
+	}
+	return f.Base.List(dir)
+}
+
+// MkdirAll makes directories in Base unless OpMkdir is failed.
+func (f *FS) MkdirAll(dir string, perm os.FileMode) error {
+	if err := f.check(OpMkdir, dir); err != nil {
+		return err
+	}
+	return f.Base.MkdirAll(dir, perm)
+}
+
+// Stat describes a file of Base unless OpStat is failed.
+func (f *FS) Stat(name string) (os.FileInfo, error) {
+	if err := f.check(OpStat, name); err != nil {
+		return nil, err
+	}
+	return f.Base.Stat(name)
+}
+
+// SyncDir syncs a directory of Base unless OpSyncDir is failed.
+func (f *FS) SyncDir(dir string) error {
+	if err := f.check(OpSyncDir, dir); err != nil {
+		return err
+	}
+	return f.Base.SyncDir(dir)
+}
+
+// Lock locks in Base unless OpLock is failed.
+func (f *FS) Lock(name string) (journal.File, error) {
+	if err := f.check(OpLock, name); err != nil {
+		return nil, err
+	}
+	return f.Base.Lock(name)
+}
+
+// faultFile is a file of an FS.
+type faultFile struct {
+	fs   *FS
+	name string
+	f    journal.File
+}
+
+func (ff *faultFile) Read(p []byte) (int, error) {
+	if err := ff.fs.check(OpRead, ff.name); err != nil {
+		return 0, err
+	}
+	return ff.f.Read(p)
+}
+
+func (ff *faultFile) Write(p []byte) (int, error) {
+	if err := ff.fs.check(OpWrite, ff.name); err != nil {
+		n := 0
+		if ff.fs.ShortWrite {
+			n, _ = ff.f.Write(p[:len(p)/2])
+		}
+		return n, err
+	}
+	return ff.f.Write(p)
+}
+
+func (ff *faultFile) Sync() error {
+	if err := ff.fs.check(OpSync, ff.name); err != nil {
+		return err
+	}
+	return ff.f.Sync()
+}
+
+func (ff *faultFile) Truncate(size int64) error {
+	if err := ff.fs.check(OpTruncate, ff.name); err != nil {
+		return err
+	}
+	return ff.f.Truncate(size)
+}
+
+func (ff *faultFile) Stat() (os.FileInfo, error) {
+	if err := ff.fs.check(OpStat, ff.name); err != nil {
+		return nil, err
+	}
+	return ff.f.Stat()
+}
+
+func (ff *faultFile) Close() error { return ff.f.Close() }

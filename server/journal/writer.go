@@ -1,0 +1,555 @@
+package journal
+
+import (
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"time"
+
+	"google.golang.org/protobuf/proto"
+
+	pb "reckon.example/proto/reckon/v1"
+)
+
+// Options configure a journal writer.
+type Options struct {
+	// SyncEach fsyncs after every Flush; otherwise the owner calls Sync.
+	SyncEach bool
+	// SegmentBytes starts a new segment file past this size (0: 64 MiB).
+	SegmentBytes int64
+	// FS is the file system (nil: OS).
+	FS FS
+}
+
+// Writer appends records to a robot's journal segments
+// dir/{robot}.{n}.rjl. It is not safe for concurrent use.
+type Writer struct {
+	fs         FS
+	dir, robot string
+	opt        Options
+	f          File
+	seg        int
+	size       int64 // bytes in the segment, all complete entries
+	buf        []byte
+	ends       []int // where each entry in buf ends
+	dirty      bool  // written since the last fsync
+	broken     error // wraps ErrBroken
+}
+
+// SegmentPath returns the path of segment n of a robot's journal.
+func SegmentPath(dir, robot string, n int) string {
+	return filepath.Join(dir, fmt.Sprintf("%s.%06d%s", robot, n, Ext))
+}
+
+// segFile is a segment file and its number.
+type segFile struct {
+	n    int
+	path string
+}
+
+// segmentNumber returns n when name is "{robot}.{n}.rjl" with six digits.
+func segmentNumber(name, robot string) (int, bool) {
+	s, ok := strings.CutPrefix(name, robot+".")
+	if !ok {
+		return 0, false
+	}
+	if s, ok = strings.CutSuffix(s, Ext); !ok || len(s) != 6 {
+		return 0, false
+	}
+	n, err := strconv.Atoi(s)
+	return n, err == nil && s[0] != '+' && s[0] != '-'
+}
+
+// listSegments lists a robot's segments in order of their numbers.
+func listSegments(fsys FS, dir, robot string) ([]segFile, error) {
+	names, err := fsys.List(dir)
+	if err != nil {
+		return nil, err
+	}
+	var out []segFile
+	for _, name := range names { // sorted, and the numbers have six digits
+		if n, ok := segmentNumber(name, robot); ok {
+			out = append(out, segFile{n, filepath.Join(dir, name)})
+		}
+	}
+	return out, nil
+}
+
+// Segments lists a robot's journal segments in order.
+func Segments(dir, robot string) ([]string, error) {
+	segs, err := listSegments(OS, dir, robot)
+	out := make([]string, len(segs))
+	for i, s := range segs {
+		out[i] = s.path
+	}
+	return out, err
+}
+
+// Robots lists the robot ids that have journals in dir.
+func Robots(dir string) ([]string, error) { return RobotsFS(nil, dir) }
+
+// RobotsFS lists the robot ids that have journals in dir on fsys (nil:
+// OS): segments, or a manifest whose segments are all missing (which Read
+// reports as a gap).
+func RobotsFS(fsys FS, dir string) ([]string, error) {
+	names, err := orOS(fsys).List(dir)
+	if err != nil {
+		return nil, err
+	}
+	seen := map[string]bool{}
+	var out []string
+	for _, name := range names {
+		id, ok := strings.CutSuffix(name, manifestExt)
+		if !ok {
+			i := strings.IndexByte(name, '.')
+			if i < 0 {
+				continue
+			}
+			id = name[:i]
+			if _, ok = segmentNumber(name, id); !ok {
+				continue
+			}
+		}
+		if ValidID(id) && !seen[id] {
+			seen[id] = true
+			out = append(out, id)
+		}
+	}
+	return out, nil // sorted: '.' sorts before every letter, digit and '-'
+}
+
+// Create starts a new journal for robot with its opening record. It fails
+// if the robot already has one, or if robot is not a valid id. The first
+// segment is made whole or not at all: header and opening are written to a
+// temporary file and fsynced, which is then renamed and the directory
+// fsynced; a failure (a full disk: ErrNoSpace) leaves nothing behind.
+func Create(dir, robot string, opening *pb.JournalOpening, opt Options) (*Writer, error) {
+	if !ValidID(robot) {
+		return nil, fmt.Errorf("journal: robot id %q is not 1 to 63 lower-case letters, digits and hyphens, starting with a letter", robot)
+	}
+	w := &Writer{fs: orOS(opt.FS), dir: dir, robot: robot, opt: opt}
+	segs, err := listSegments(w.fs, dir, robot)
+	if err != nil {
+		return nil, err
+	}
+	_, merr := w.fs.Stat(ManifestPath(dir, robot))
+	if len(segs) > 0 || merr == nil {
+		return nil, fmt.Errorf("journal for %s already exists in %s", robot, dir)
+	}
+	data, err := AppendFrame(header(), &pb.JournalRecord{Entry: &pb.JournalRecord_Opening{Opening: opening}})
+	if err != nil {
+		return nil, err
+	}
+	path, err := w.makeSegment(0, data)
+	if err != nil {
+		return nil, err
+	}
+	if err := writeManifest(w.fs, dir, robot, 0); err != nil {
+		w.fs.Remove(ManifestPath(dir, robot))
+		return nil, w.unmake(path, err)
+	}
+	if err := w.open(0, path, int64(len(data))); err != nil {
+		w.fs.Remove(ManifestPath(dir, robot))
+		return nil, w.unmake(path, err)
+	}
+	return w, nil
+}
+
+// makeSegment makes segment n with data durably (temporary file, fsync,
+// rename, directory fsync) and returns its path. A failure removes what it
+// made.
+func (w *Writer) makeSegment(n int, data []byte) (string, error) {
+	path := SegmentPath(w.dir, w.robot, n)
+	tmp := path + tmpExt
+	if err := writeSynced(w.fs, tmp, data, os.O_WRONLY|os.O_CREATE|os.O_TRUNC); err != nil {
+		w.fs.Remove(tmp)
+		return "", fmt.Errorf("journal %s: %w", tmp, classify(err))
+	}
+	if err := w.fs.Rename(tmp, path); err != nil {
+		w.fs.Remove(tmp)
+		return "", fmt.Errorf("journal %s: %w", path, classify(err))
+	}
+	if err := w.fs.SyncDir(w.dir); err != nil {
+		return "", w.unmake(path, err)
+	}
+	return path, nil
+}
+
+// unmake removes a segment that could not be completed and returns err.
+func (w *Writer) unmake(path string, err error) error {
+	w.fs.Remove(path)
+	w.fs.SyncDir(w.dir)
+	return fmt.Errorf("journal %s: %w", path, classify(err))
+}
+
+// open makes segment n, of size bytes, the one appended to.
+func (w *Writer) open(n int, path string, size int64) error {
+	f, err := w.fs.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
+	if err != nil {
+		return err
+	}
+	if w.f != nil {
+		w.f.Close() // fsynced before the rotation
+	}
+	w.f, w.seg, w.size, w.dirty = f, n, size, false
+	return nil
+}
+
+// Resume reopens segment seg, the last, for appending at offset good (the
+// end of its last complete entry, Scan.Good), truncating the torn tail
+// after it; Read has copied aside any damaged bytes there. It removes
+// temporary files left by an interrupted creation, completes a segment
+// whose header is short or invalid (the original is kept as
+// {segment}.damaged, the records Read recovered from it are kept), and
+// writes the manifest if it is missing or behind.
+func Resume(dir, robot string, seg int, good int64, opt Options) (*Writer, error) {
+	w := &Writer{fs: orOS(opt.FS), dir: dir, robot: robot, opt: opt}
+	if err := removeLeftovers(w.fs, dir, robot); err != nil {
+		return nil, err
+	}
+	newest, ok, err := readManifest(w.fs, dir, robot)
+	if err != nil {
+		return nil, err
+	}
+	if ok && newest > seg {
+		return nil, fmt.Errorf("%w: resuming %s at segment %06d, but the manifest names segment %06d", ErrGap, robot, seg, newest)
+	}
+	path := SegmentPath(dir, robot, seg)
+	if good, err = w.completeHeader(path, good); err != nil {
+		return nil, err
+	}
+	f, err := w.fs.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
+	if err != nil {
+		return nil, err
+	}
+	w.f, w.seg, w.size = f, seg, good
+	if err := f.Truncate(good); err != nil {
+		f.Close()
+		return nil, fmt.Errorf("journal %s: %w", path, err)
+	}
+	if err := f.Sync(); err != nil {
+		f.Close()
+		return nil, fmt.Errorf("journal %s: %w", path, err)
+	}
+	if !ok || newest < seg {
+		if err := writeManifest(w.fs, dir, robot, seg); err != nil {
+			f.Close()
+			return nil, classify(err)
+		}
+	}
+	return w, nil
+}
+
+// removeLeftovers removes a robot's temporary files: segments and
+// manifests whose creation was interrupted, never acknowledged.
+func removeLeftovers(fsys FS, dir, robot string) error {
+	names, err := fsys.List(dir)
+	if err != nil {
+		return err
+	}
+	removed := false
+	for _, name := range names {
+		base, ok := strings.CutSuffix(name, tmpExt)
+		if !ok {
+			continue
+		}
+		if _, seg := segmentNumber(base, robot); seg || base == robot+manifestExt {
+			if err := fsys.Remove(filepath.Join(dir, name)); err != nil {
+				return err
+			}
+			removed = true
+		}
+	}
+	if removed {
+		return fsys.SyncDir(dir)
+	}
+	return nil
+}
+
+// completeHeader checks the header of the segment at path; when it is
+// short or invalid (a creation by an older build cut by a crash, a stray
+// file) it keeps the file as {path}.damaged and replaces it, atomically, by
+// a header followed by the frames Read recovered from it (from the first
+// valid frame to good). It returns the resume offset in the segment.
+func (w *Writer) completeHeader(path string, good int64) (int64, error) {
+	f, err := w.fs.OpenFile(path, os.O_RDONLY, 0)
+	if err != nil {
+		return 0, err
+	}
+	h := make([]byte, headerSize)
+	n, _ := io.ReadFull(f, h)
+	f.Close()
+	if n == headerSize && checkHeader(h) == nil {
+		return good, nil
+	}
+	b, err := readFile(w.fs, path)
+	if err != nil {
+		return 0, err
+	}
+	data := header()
+	if first := resync(b, 0); first >= 0 && int64(first) < good {
+		data = append(data, b[first:good]...)
+	}
+	if len(b) > 0 {
+		kept, err := asideName(w.fs, path+".damaged")
+		if err != nil {
+			return 0, err
+		}
+		if err := writeSynced(w.fs, kept, b, os.O_WRONLY|os.O_CREATE|os.O_EXCL); err != nil {
+			return 0, fmt.Errorf("journal %s: %w", kept, classify(err))
+		}
+	}
+	if err := writeFileAtomic(w.fs, path, data); err != nil {
+		return 0, fmt.Errorf("journal %s: %w", path, classify(err))
+	}
+	return int64(len(data)), nil
+}
+
+// Append adds the records as one entry and flushes: when it returns nil
+// the records are in the operating system's hands (and on disk with
+// SyncEach): a crash of the process loses none of them.
+func (w *Writer) Append(recs ...*pb.JournalRecord) error {
+	if err := w.Add(recs...); err != nil {
+		return err
+	}
+	_, err := w.Flush()
+	return err
+}
+
+// Add frames records into the writer's buffer as one entry, without
+// writing them; Flush writes what was added (group commit).
+func (w *Writer) Add(recs ...*pb.JournalRecord) error {
+	n := len(w.buf)
+	var err error
+	for _, r := range recs {
+		if w.buf, err = AppendFrame(w.buf, r); err != nil {
+			w.buf = w.buf[:n]
+			return err
+		}
+	}
+	w.ends = append(w.ends, len(w.buf))
+	return nil
+}
+
+// AddPair frames an input and its output as two records, with the same
+// bytes as JournalRecord messages holding them (AddEncodedPair with their
+// deterministic encodings).
+func (w *Writer) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
+	opts := proto.MarshalOptions{Deterministic: true}
+	sample, err := opts.Marshal(in.GetSample())
+	if err != nil {
+		return err
+	}
+	resp, err := opts.Marshal(out.GetResponse())
+	if err != nil {
+		return err
+	}
+	return w.AddEncodedPair(in.GetSequence(), sample, in.GetArrivalUnixNs(), resp, out.GetPose())
+}
+
+// AddEncodedPair frames an input and its output from parts already in wire
+// form: the sample as it arrived and the response as it will be sent, so
+// that neither is encoded again. It writes the same bytes as framing the
+// JournalRecord messages, provided sample and response are the
+// deterministic encodings; other encodings of the same messages decode to
+// the same records. pose may be nil. On error the buffer keeps what it
+// held.
+func (w *Writer) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
+	b, err := appendInput(w.buf, seq, sample, arrivalUnixNs)
+	if err == nil {
+		b, err = appendOutput(b, response, pose)
+	}
+	if err != nil {
+		return err // w.buf is untouched: b only appended past its length
+	}
+	w.buf = b
+	w.ends = append(w.ends, len(b))
+	return nil
+}
+
+// Flush writes the entries added since the last Flush with one write,
+// fsyncs with SyncEach, and starts the next segment when this one is full.
+// complete is how many of those entries, in order, are whole in the
+// journal. On an error the segment is taken back to the end of the last
+// complete entry and the other entries are dropped from the buffer; the
+// writer stays usable (a full disk, ErrNoSpace, may have room later),
+// unless the error wraps ErrBroken. A failed rotation after a good write
+// returns complete = all with a *RotateError and is tried again at the
+// next Flush.
+func (w *Writer) Flush() (complete int, err error) {
+	if w.broken != nil {
+		w.drop()
+		return 0, w.broken
+	}
+	if len(w.buf) == 0 {
+		return 0, nil
+	}
+	entries := len(w.ends)
+	n, err := w.f.Write(w.buf)
+	if err != nil {
+		return w.takeBack(n, err)
+	}
+	before := w.size
+	w.size += int64(len(w.buf))
+	w.drop()
+	w.dirty = true
+	if w.opt.SyncEach {
+		if err := w.f.Sync(); err != nil {
+			return 0, w.unsync(before, err)
+		}
+		w.dirty = false
+	}
+	if w.size >= w.limit() {
+		if err := w.rotate(); err != nil {
+			return entries, err
+		}
+	}
+	return entries, nil
+}
+
+// takeBack handles a write that failed after n bytes: it counts the
+// entries written whole and truncates the rest away.
+func (w *Writer) takeBack(n int, err error) (int, error) {
+	complete, keep := 0, 0
+	for complete < len(w.ends) && w.ends[complete] <= n {
+		keep = w.ends[complete]
+		complete++
+	}
+	w.drop()
+	err = fmt.Errorf("journal %s: %w", w.segPath(), classify(err))
+	if n > keep {
+		if terr := w.f.Truncate(w.size + int64(keep)); terr != nil {
+			w.broken = fmt.Errorf("%w: %v; truncating the incomplete entry: %v", ErrBroken, err, terr)
+			return complete, w.broken
+		}
+	}
+	w.size += int64(keep)
+	if keep > 0 {
+		w.dirty = true
+	}
+	return complete, err
+}
+
+// unsync handles a failed fsync of SyncEach: the entries of the Flush are
+// not durable, so none is complete; they are truncated away (the size as
+// before) and the truncation fsynced, or the writer is broken.
+func (w *Writer) unsync(before int64, err error) error {
+	err = fmt.Errorf("journal %s: fsync: %w", w.segPath(), classify(err))
+	if terr := w.f.Truncate(before); terr != nil {
+		w.broken = fmt.Errorf("%w: %v; truncating: %v", ErrBroken, err, terr)
+		return w.broken
+	}
+	if serr := w.f.Sync(); serr != nil {
+		w.broken = fmt.Errorf("%w: %v; fsync after truncating: %v", ErrBroken, err, serr)
+		return w.broken
+	}
+	w.size, w.dirty = before, false
+	return err
+}
+
+// drop empties the buffer.
+func (w *Writer) drop() {
+	w.buf, w.ends = w.buf[:0], w.ends[:0]
+}
+
+func (w *Writer) limit() int64 {
+	if w.opt.SegmentBytes > 0 {
+		return w.opt.SegmentBytes
+	}
+	return 64 << 20
+}
+
+func (w *Writer) segPath() string { return SegmentPath(w.dir, w.robot, w.seg) }
+
+// rotate fsyncs the full segment, so that no later segment exists while
+// it could still lose its tail, and starts the next one with its header;
+// then the manifest names it. A failure is a *RotateError.
+func (w *Writer) rotate() error {
+	if err := w.Sync(); err != nil {
+		return &RotateError{Segment: SegmentPath(w.dir, w.robot, w.seg+1), Err: err}
+	}
+	n := w.seg + 1
+	path, err := w.makeSegment(n, header())
+	if err == nil {
+		if err = w.open(n, path, headerSize); err != nil {
+			err = w.unmake(path, err)
+		}
+	}
+	if err == nil {
+		err = writeManifest(w.fs, w.dir, w.robot, n) // a lagging manifest is safe
+	}
+	if err != nil {
+		return &RotateError{Segment: SegmentPath(w.dir, w.robot, n), Err: classify(err)}
+	}
+	return nil
+}
+
+// Sync fsyncs the current segment if anything was written since the last
+// fsync. A failed fsync breaks the writer (see ErrBroken).
+func (w *Writer) Sync() error {
+	if w.broken != nil {
+		return w.broken
+	}
+	if !w.dirty {
+		return nil
+	}
+	if err := w.f.Sync(); err != nil {
+		w.broken = fmt.Errorf("%w: fsync %s: %w", ErrBroken, w.segPath(), classify(err))
+		return w.broken
+	}
+	w.dirty = false
+	return nil
+}
+
+// Close syncs and closes the journal.
+func (w *Writer) Close() error {
+	if w.f == nil {
+		return nil
+	}
+	err := w.Sync()
+	if cerr := w.f.Close(); err == nil {
+		err = cerr
+	}
+	w.f = nil
+	return err
+}
+
+// Remove closes the journal and renames its segments and manifest to
+// {name}.deleted-{unix nanoseconds}, a name that no other file has (a
+// suffix .1, .2 ... is added if one does), so that a deleted robot's
+// record stays for review, is not restored, and is never overwritten by
+// the record of a later robot of the same name.
+func (w *Writer) Remove() error {
+	if err := w.Close(); err != nil && !errors.Is(err, ErrBroken) {
+		return err
+	}
+	segs, err := listSegments(w.fs, w.dir, w.robot)
+	if err != nil {
+		return err
+	}
+	// The manifest first: a crash part way leaves segments without their
+	// first ones, which Read reports, rather than fewer segments that it
+	// could not tell from a whole journal.
+	var paths []string
+	if _, err := w.fs.Stat(ManifestPath(w.dir, w.robot)); err == nil {
+		paths = append(paths, ManifestPath(w.dir, w.robot))
+	}
+	for _, s := range segs {
+		paths = append(paths, s.path)
+	}
+	suffix := ".deleted-" + strconv.FormatInt(time.Now().UnixNano(), 10)
+	for _, p := range paths {
+		to, err := asideName(w.fs, p+suffix)
+		if err != nil {
+			return err
+		}
+		if err := w.fs.Rename(p, to); err != nil {
+			return err
+		}
+	}
+	return w.fs.SyncDir(w.dir)
+}

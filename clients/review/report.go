@@ -78,6 +78,9 @@ func (run *Run) lines() [][2]string {
 		out = append(out, [2]string{"NEES against truth", fmt.Sprintf("mean %.2f filtered, %.2f smoothed (3 if consistent); median %.2f filtered, %.2f smoothed (2.37 if consistent)",
 			s.FilteredNEES, s.SmoothedNEES, s.FilteredNEESMedian, s.SmoothedNEESMedian)})
 	}
+	for _, g := range s.Gaps {
+		out = append(out, [2]string{"GAP", g + "; the review goes on past it"})
+	}
 	if s.Truncated != "" {
 		out = append(out, [2]string{"NOTE", s.Truncated})
 	}
@@ -117,6 +120,9 @@ func WriteHTML(w io.Writer, title string, runs ...*Run) error {
 	b.WriteString("<h1>" + html.EscapeString(title) + "</h1>\n")
 	b.WriteString("<p class=\"safety\">A review of recorded estimates. The estimate is no safety function; see the README's cautions.</p>\n")
 	for _, run := range runs {
+		for _, g := range run.Summary.Gaps {
+			b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(g) + "; the review goes on past it</p>\n")
+		}
 		if run.Summary.Truncated != "" {
 			b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(run.Summary.Truncated) + "</p>\n")
 		}

@@ -102,11 +102,14 @@ type Summary struct {
 	Recoveries     []Interval
 	Distrust       []Interval
 	Truncated      string
-	HasTruth       bool
-	FilteredRMSM   float64
-	SmoothedRMSM   float64
-	FilteredNEES   float64
-	SmoothedNEES   float64
+	// Gaps lists the journal's continuity breaks (inputs or segments
+	// missing); the review goes on past each.
+	Gaps         []string
+	HasTruth     bool
+	FilteredRMSM float64
+	SmoothedRMSM float64
+	FilteredNEES float64
+	SmoothedNEES float64
 	// Medians resist the few points right after the robot was moved.
 	FilteredNEESMedian, SmoothedNEESMedian float64
 }
@@ -342,7 +345,12 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
 	id := robotID(src.Robot)
 	rc.run.Robot = "robots/" + id
-	fr, scan, err := journal.Replay(src.JournalDir, id, journal.ReplayOptions{Config: src.Override, SkipOutputs: true,
+	var gaps []string
+	fr, scan, err := journal.Replay(src.JournalDir, id, journal.ReplayOptions{Config: src.Override, SkipOutputs: true, ReadOnly: true,
+		Gap: func(err error) error {
+			gaps = append(gaps, err.Error())
+			return nil
+		},
 		Opened: func(fr *fusion.Robot) error {
 			rc.opened(fr)
 			return nil
@@ -351,8 +359,11 @@ func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
 			rc.took(r.Robot, r.Input.GetSample(), r.Response)
 			return nil
 		}})
-	if err != nil {
+	if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 		return nil, err
+	}
+	if len(gaps) > 0 {
+		rc.run.Summary.Gaps = gaps
 	}
 	if scan.Torn != nil {
 		rc.run.Summary.Truncated = fmt.Sprintf("the journal is truncated: %v in %s; this report covers the %d inputs before it", scan.Torn, filepath.Base(scan.TornSegment), scan.Pairs)

@@ -129,6 +129,47 @@ func TestReviewOfATruncatedJournal(t *testing.T) {
 	}
 }
 
+// TestReviewGoesOnPastDamage: bytes flipped in the middle of a journal cost
+// the inputs in the damaged frame; the review says where, reviews the run on
+// both sides of the gap, and leaves the journal's directory as it was (a
+// reader copies nothing aside).
+func TestReviewGoesOnPastDamage(t *testing.T) {
+	dir, _ := writeRun(t, fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 72, DurationS: 10})
+	seg := journal.SegmentPath(dir, "cart", 0)
+	b, _ := os.ReadFile(seg)
+	for i := len(b) / 2; i < len(b)/2+16; i++ {
+		b[i] ^= 0x5a
+	}
+	os.WriteFile(seg, b, 0o644)
+	before, _ := os.ReadDir(dir)
+	intact, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	after, _ := os.ReadDir(dir)
+	if len(after) != len(before) {
+		t.Errorf("the review changed the journal's directory: %d entries, then %d", len(before), len(after))
+	}
+	if len(intact.Summary.Gaps) == 0 || !strings.Contains(intact.Summary.Gaps[0], "journal gap") {
+		t.Fatalf("the gap is not reported: %+v", intact.Summary.Gaps)
+	}
+	dirOK, _ := writeRun(t, fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 72, DurationS: 10})
+	whole, err := Analyze(Source{JournalDir: dirOK, Robot: "cart"}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n, all := intact.Summary.Inputs, whole.Summary.Inputs; n < all*9/10 || n >= all {
+		t.Errorf("%d of %d inputs reviewed past the damage", n, all)
+	}
+	var text bytes.Buffer
+	if err := WriteText(&text, intact); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(text.String(), "goes on past it") {
+		t.Errorf("the summary does not mention the gap:\n%s", text.String())
+	}
+}
+
 // TestReportInABrowser opens the HTML report in headless Chromium (Debian's
 // package, which .ci/run installs), checks that every figure is present and
 // drawn with a non-zero size, and saves a screenshot in testdata/out.

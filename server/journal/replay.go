@@ -35,6 +35,13 @@ type ReplayOptions struct {
 	Input func(*Replayed) error
 	// FS is the file system the journal is read from (nil: OS).
 	FS FS
+	// ReadOnly reads without copying damaged ranges aside (Visitor.ReadOnly).
+	ReadOnly bool
+	// Gap, if set, is called at each continuity break and the replay goes
+	// on past it (the robot then sees the inputs after the gap as a gap in
+	// its odometry); Replay returns the robot with the first break as its
+	// error. Without it a gap stops the replay.
+	Gap func(err error) error
 }
 
 // Replayed is one journal input run through the robot again.
@@ -97,6 +104,9 @@ func Replay(dir, robot string, opt ReplayOptions) (*fusion.Robot, Scan, error) {
 		return nil, scan, err
 	}
 	if scanErr != nil {
+		if opt.Gap != nil && errors.Is(scanErr, ErrGap) {
+			return rp.fr, scan, scanErr
+		}
 		return nil, scan, scanErr
 	}
 	return rp.fr, scan, nil
@@ -112,7 +122,8 @@ func replayVisitor(opt ReplayOptions, items chan<- replayItem, stop <-chan struc
 			return errReplayStopped
 		}
 	}
-	v := Visitor{Opening: func(op *pb.JournalOpening) error { return send(replayItem{opening: op}) }}
+	v := Visitor{Opening: func(op *pb.JournalOpening) error { return send(replayItem{opening: op}) },
+		ReadOnly: opt.ReadOnly, Gap: opt.Gap}
 	if opt.FromSnapshot {
 		v.Snapshot = func(s *pb.JournalSnapshot) error { return send(replayItem{snapshot: s}) }
 	}

@@ -68,6 +68,10 @@ type Visitor struct {
 	// (what a replay needs: the inputs after a gap would give another
 	// robot). Read returns the first break as its error either way.
 	Gap func(err error) error
+	// ReadOnly leaves the journal's directory as it is: damaged ranges are
+	// reported (DamageError.Kept stays empty) but not copied aside. The
+	// offline tools read so; restore keeps them.
+	ReadOnly bool
 }
 
 // scanState carries a scan across segments. The payloads it keeps alias
@@ -335,6 +339,9 @@ func (st *scanState) damage(path string, b []byte, off, end int, reason string) 
 // keep copies b[off:end] of the segment at path into
 // {path}.damaged-{off}, unless an earlier scan did, and returns its path.
 func (st *scanState) keep(path string, b []byte, off, end int) (string, error) {
+	if st.v.ReadOnly {
+		return "", nil
+	}
 	name := fmt.Sprintf("%s.damaged-%d", path, off)
 	if fi, err := st.fs.Stat(name); err == nil && fi.Size() == int64(end-off) {
 		return name, nil

@@ -69,7 +69,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	}
 	name := server.RobotName(id)
 	same, differ := 0, 0
-	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, Input: func(r *journal.Replayed) error {
+	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true, Input: func(r *journal.Replayed) error {
 		if err := ctx.Err(); err != nil {
 			return err
 		}

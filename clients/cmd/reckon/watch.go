@@ -65,7 +65,7 @@ poses it printed and exits 130.`)
 		})
 		c.Close()
 		switch {
-		case ctx.Err() != nil:
+		case ctx.Err() != nil || endedByContext(ctx, err):
 			w.summary(stderr)
 			return errInterrupted
 		case err == nil && w.count > 0 && w.n >= w.count:
@@ -144,4 +144,22 @@ func (w *watcher) stream(seq func(func(*pb.WatchResponse, error) bool), first fu
 
 func (w *watcher) summary(stderr io.Writer) {
 	fmt.Fprintf(stderr, "reckon watch: %d poses of %s printed, %d reconnections\n", w.n, w.name, w.reconnects)
+}
+
+// endedByContext reports whether a stream's error came from the end of ctx
+// itself. The service answers a deadline that gRPC sent with it a moment
+// before ctx's own timer fires, so a DeadlineExceeded or Canceled status is
+// given up to a second for ctx to end.
+func endedByContext(ctx context.Context, err error) bool {
+	if c := status.Code(err); c != codes.DeadlineExceeded && c != codes.Canceled {
+		return false
+	}
+	t := time.NewTimer(time.Second)
+	defer t.Stop()
+	select {
+	case <-ctx.Done():
+		return true
+	case <-t.C:
+		return false
+	}
 }

@@ -101,7 +101,7 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 		r.stats.count(VerdictGated, false)
 		r.stats.sensorVerdict(e.sensor, VerdictGated, e.out.NIS, 0)
 		if !e.imu {
-			r.trust.refusedRun++
+			r.trust.noteRefused(e.out)
 			r.considerRecovery(res, ins.at)
 		}
 	default:
@@ -118,8 +118,7 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 			}
 		}
 		if !e.imu {
-			r.trust.refusedRun = 0
-			r.trust.fault = false
+			r.trust.noteApplied()
 			r.cands = r.cands[:0]
 		}
 	}

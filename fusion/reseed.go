@@ -43,6 +43,7 @@ func (r *Robot) insertReset(e entry, res *Result) {
 	r.dropFront(ins.at + 1)
 	r.cands = r.cands[:0]
 	r.trust.refusedRun = 0
+	r.trust.disagree = false
 	res.Verdict = VerdictApplied
 	res.Events = append(res.Events, Event{Kind: EventReseeded, StampNs: e.t1})
 }

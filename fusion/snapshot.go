@@ -11,9 +11,11 @@ import (
 // SnapshotVersion is the layout version of Snapshot's bytes (message
 // reckon.v1.RobotSnapshot). Version 3: the protocol buffer layout
 // (versions 1 and 2 were gob of Go structs, which a field rename silently
-// emptied). A change of layout or meaning bumps it, with a new golden file
+// emptied). Version 4: recovery candidates carried by odometry (landmark
+// fixes among them), reseeds that keep the IMU offset, the fix_disagrees
+// trust state. A change of layout or meaning bumps it, with a new golden file
 // in testdata/snapshots.
-const SnapshotVersion = 3
+const SnapshotVersion = 4
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -64,6 +66,7 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	for i := range r.cands {
 		e.message(24, func(e *wenc) { encCandidate(e, &r.cands[i]) })
 	}
+	e.bool(25, r.trust.disagree)
 	return e.b, nil
 }
 
@@ -158,6 +161,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		d.message(num, func(d *wdec) { decWindow(d, &r.trust.imu) })
 	case 24:
 		d.message(num, func(d *wdec) { r.cands = append(r.cands, decCandidate(d)) })
+	case 25:
+		r.trust.disagree = d.bool(num)
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -271,6 +276,7 @@ func encEntry(e *wenc, en *entry) {
 	e.int(14, int64(en.out.Dim))
 	e.bool(15, en.out.Gated)
 	e.bool(16, en.initialised)
+	e.bool(17, en.keepOffset)
 }
 
 func decEntry(d *wdec) entry {
@@ -309,6 +315,8 @@ func decEntry(d *wdec) entry {
 			en.out.Gated = d.bool(num)
 		case 16:
 			en.initialised = d.bool(num)
+		case 17:
+			en.keepOffset = d.bool(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}
@@ -448,8 +456,14 @@ func decWindow(d *wdec, w *nisWindow) {
 func encCandidate(e *wenc, c *candidate) {
 	e.int(1, c.stamp)
 	e.pose(2, c.implied)
-	e.pose(3, c.corr)
 	e.doubles(4, c.cov[:])
+	e.int(5, c.fixStamp)
+	if c.isLandmark() {
+		e.message(6, func(e *wenc) { encMeasurement(e, &c.meas) })
+	}
+	e.pose(7, c.rel)
+	e.doubles(8, c.relCov[:])
+	e.bool(9, c.keepOffset)
 }
 
 func decCandidate(d *wdec) candidate {
@@ -460,10 +474,18 @@ func decCandidate(d *wdec) candidate {
 			c.stamp = d.int(num)
 		case 2:
 			c.implied = d.pose(num)
-		case 3:
-			c.corr = d.pose(num)
 		case 4:
 			d.doubles(num, c.cov[:])
+		case 5:
+			c.fixStamp = d.int(num)
+		case 6:
+			d.message(num, func(d *wdec) { c.meas = decMeasurement(d) })
+		case 7:
+			c.rel = d.pose(num)
+		case 8:
+			d.doubles(num, c.relCov[:])
+		case 9:
+			c.keepOffset = d.bool(num)
 		default:
 			d.fail("candidate: unknown field %d", num)
 		}

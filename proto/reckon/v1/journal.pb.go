@@ -271,8 +271,12 @@ type RobotSnapshot struct {
 	FixWindow *SnapshotNisWindow `protobuf:"bytes,22,opt,name=fix_window,json=fixWindow,proto3" json:"fix_window,omitempty"`
 	// The trust window of IMU heading NIS values.
 	ImuWindow *SnapshotNisWindow `protobuf:"bytes,23,opt,name=imu_window,json=imuWindow,proto3" json:"imu_window,omitempty"`
-	// Refused pose fixes kept as evidence of a move.
-	Candidates    []*SnapshotCandidate `protobuf:"bytes,24,rep,name=candidates,proto3" json:"candidates,omitempty"`
+	// Refused pose and landmark fixes kept as evidence of a move.
+	Candidates []*SnapshotCandidate `protobuf:"bytes,24,rep,name=candidates,proto3" json:"candidates,omitempty"`
+	// Whether a refused fix disagreed beyond belief, or a move recovery
+	// reseeded the pose, with no fix applied since (trust reason
+	// fix_disagrees).
+	FixDisagrees  bool `protobuf:"varint,25,opt,name=fix_disagrees,json=fixDisagrees,proto3" json:"fix_disagrees,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -475,6 +479,13 @@ func (x *RobotSnapshot) GetCandidates() []*SnapshotCandidate {
 	return nil
 }
 
+func (x *RobotSnapshot) GetFixDisagrees() bool {
+	if x != nil {
+		return x.FixDisagrees
+	}
+	return false
+}
+
 // EstimateState is a filter's mean and covariance.
 type EstimateState struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -628,7 +639,10 @@ type SnapshotEntry struct {
 	// Measurement: whether the gate refused it.
 	Gated bool `protobuf:"varint,15,opt,name=gated,proto3" json:"gated,omitempty"`
 	// Measurement: whether this IMU heading initialised the offset.
-	Initialised   bool `protobuf:"varint,16,opt,name=initialised,proto3" json:"initialised,omitempty"`
+	Initialised bool `protobuf:"varint,16,opt,name=initialised,proto3" json:"initialised,omitempty"`
+	// Reseed: a move recovery that keeps the IMU offset instead of marking it
+	// for initialisation.
+	KeepImuOffset bool `protobuf:"varint,17,opt,name=keep_imu_offset,json=keepImuOffset,proto3" json:"keep_imu_offset,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -771,6 +785,13 @@ func (x *SnapshotEntry) GetGated() bool {
 func (x *SnapshotEntry) GetInitialised() bool {
 	if x != nil {
 		return x.Initialised
+	}
+	return false
+}
+
+func (x *SnapshotEntry) GetKeepImuOffset() bool {
+	if x != nil {
+		return x.KeepImuOffset
 	}
 	return false
 }
@@ -1031,17 +1052,28 @@ func (x *SnapshotNisWindow) GetRaised() bool {
 	return false
 }
 
-// SnapshotCandidate is a refused pose fix kept as evidence of a move.
+// SnapshotCandidate is a refused pose or landmark fix kept as evidence of a
+// move, carried by odometry to the newest candidate's stamp.
 type SnapshotCandidate struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its stamp, nanoseconds.
+	// The stamp it is carried to, nanoseconds.
 	StampNs int64 `protobuf:"varint,1,opt,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
-	// The robot pose it implies, x m, y m, heading rad.
+	// Pose fix: the robot pose it implies at fix_stamp_ns, x m, y m, heading
+	// rad.
 	Implied []float64 `protobuf:"fixed64,2,rep,packed,name=implied,proto3" json:"implied,omitempty"`
-	// The correction from the filter's pose to implied, x m, y m, heading rad.
-	Correction []float64 `protobuf:"fixed64,3,rep,packed,name=correction,proto3" json:"correction,omitempty"`
-	// The 3x3 covariance of implied, row-major.
-	Covariance    []float64 `protobuf:"fixed64,4,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	// Pose fix: the 3x3 covariance of implied, row-major.
+	Covariance []float64 `protobuf:"fixed64,4,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	// The fix's own stamp, nanoseconds.
+	FixStampNs int64 `protobuf:"varint,5,opt,name=fix_stamp_ns,json=fixStampNs,proto3" json:"fix_stamp_ns,omitempty"`
+	// Landmark fix: its measurement (absent for a pose fix).
+	LandmarkMeasurement *SnapshotMeasurement `protobuf:"bytes,6,opt,name=landmark_measurement,json=landmarkMeasurement,proto3" json:"landmark_measurement,omitempty"`
+	// The robot's motion from fix_stamp_ns to stamp_ns in its body frame at
+	// fix_stamp_ns, forward m, left m, turn rad.
+	RelativeMotion []float64 `protobuf:"fixed64,7,rep,packed,name=relative_motion,json=relativeMotion,proto3" json:"relative_motion,omitempty"`
+	// The 3x3 covariance of relative_motion, row-major.
+	RelativeCovariance []float64 `protobuf:"fixed64,8,rep,packed,name=relative_covariance,json=relativeCovariance,proto3" json:"relative_covariance,omitempty"`
+	// Whether the IMU offset was initialised at the fix.
+	KeepImuOffset bool `protobuf:"varint,9,opt,name=keep_imu_offset,json=keepImuOffset,proto3" json:"keep_imu_offset,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1090,18 +1122,46 @@ func (x *SnapshotCandidate) GetImplied() []float64 {
 	return nil
 }
 
-func (x *SnapshotCandidate) GetCorrection() []float64 {
-	if x != nil {
-		return x.Correction
-	}
-	return nil
-}
-
 func (x *SnapshotCandidate) GetCovariance() []float64 {
 	if x != nil {
 		return x.Covariance
 	}
 	return nil
+}
+
+func (x *SnapshotCandidate) GetFixStampNs() int64 {
+	if x != nil {
+		return x.FixStampNs
+	}
+	return 0
+}
+
+func (x *SnapshotCandidate) GetLandmarkMeasurement() *SnapshotMeasurement {
+	if x != nil {
+		return x.LandmarkMeasurement
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetRelativeMotion() []float64 {
+	if x != nil {
+		return x.RelativeMotion
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetRelativeCovariance() []float64 {
+	if x != nil {
+		return x.RelativeCovariance
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetKeepImuOffset() bool {
+	if x != nil {
+		return x.KeepImuOffset
+	}
+	return false
 }
 
 // JournalOpening starts a robot's journal.
@@ -1350,7 +1410,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x05entry\"C\n" +
 	"\x0fJournalSnapshot\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
-	"\x05state\x18\x02 \x01(\fR\x05state\"\xed\a\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\"\x92\b\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -1384,7 +1444,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"imu_window\x18\x17 \x01(\v2\x1c.reckon.v1.SnapshotNisWindowR\timuWindow\x12<\n" +
 	"\n" +
 	"candidates\x18\x18 \x03(\v2\x1c.reckon.v1.SnapshotCandidateR\n" +
-	"candidatesB\x17\n" +
+	"candidates\x12#\n" +
+	"\rfix_disagrees\x18\x19 \x01(\bR\ffixDisagreesB\x17\n" +
 	"\x15_last_imu_heading_rad\"W\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
@@ -1394,7 +1455,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"covariance\"m\n" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
-	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xfb\x03\n" +
+	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xa3\x04\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -1412,7 +1473,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x03nis\x18\r \x01(\x01R\x03nis\x12#\n" +
 	"\rnis_dimension\x18\x0e \x01(\x05R\fnisDimension\x12\x14\n" +
 	"\x05gated\x18\x0f \x01(\bR\x05gated\x12 \n" +
-	"\vinitialised\x18\x10 \x01(\bR\vinitialised\"\x9f\x01\n" +
+	"\vinitialised\x18\x10 \x01(\bR\vinitialised\x12&\n" +
+	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\"\x9f\x01\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
@@ -1435,16 +1497,20 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"dimensions\x12\x1a\n" +
 	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
 	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
-	"\x06raised\x18\x05 \x01(\bR\x06raised\"\x88\x01\n" +
+	"\x06raised\x18\x05 \x01(\bR\x06raised\"\xf1\x02\n" +
 	"\x11SnapshotCandidate\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x18\n" +
 	"\aimplied\x18\x02 \x03(\x01R\aimplied\x12\x1e\n" +
 	"\n" +
-	"correction\x18\x03 \x03(\x01R\n" +
-	"correction\x12\x1e\n" +
-	"\n" +
 	"covariance\x18\x04 \x03(\x01R\n" +
-	"covariance\"\x85\x01\n" +
+	"covariance\x12 \n" +
+	"\ffix_stamp_ns\x18\x05 \x01(\x03R\n" +
+	"fixStampNs\x12Q\n" +
+	"\x14landmark_measurement\x18\x06 \x01(\v2\x1e.reckon.v1.SnapshotMeasurementR\x13landmarkMeasurement\x12'\n" +
+	"\x0frelative_motion\x18\a \x03(\x01R\x0erelativeMotion\x12/\n" +
+	"\x13relative_covariance\x18\b \x03(\x01R\x12relativeCovariance\x12&\n" +
+	"\x0fkeep_imu_offset\x18\t \x01(\bR\rkeepImuOffsetJ\x04\b\x03\x10\x04R\n" +
+	"correction\"\x85\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12-\n" +
@@ -1513,15 +1579,16 @@ var file_reckon_v1_journal_proto_depIdxs = []int32{
 	6,  // 16: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
 	4,  // 17: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
 	14, // 18: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
-	15, // 19: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	16, // 20: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	17, // 21: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	18, // 22: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	23, // [23:23] is the sub-list for method output_type
-	23, // [23:23] is the sub-list for method input_type
-	23, // [23:23] is the sub-list for extension type_name
-	23, // [23:23] is the sub-list for extension extendee
-	0,  // [0:23] is the sub-list for field type_name
+	6,  // 19: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
+	15, // 20: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	16, // 21: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	17, // 22: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	18, // 23: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	24, // [24:24] is the sub-list for method output_type
+	24, // [24:24] is the sub-list for method input_type
+	24, // [24:24] is the sub-list for extension type_name
+	24, // [24:24] is the sub-list for extension extendee
+	0,  // [0:24] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }

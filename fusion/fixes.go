@@ -120,6 +120,8 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 		if !e.imu {
 			r.trust.noteApplied()
 			r.cands = r.cands[:0]
+		} else {
+			r.checkTurn(res, ins.at)
 		}
 	}
 }

@@ -13,7 +13,7 @@ import (
 // (versions 1 and 2 were gob of Go structs, which a field rename silently
 // emptied). Version 4: recovery candidates carried by odometry (landmark
 // fixes among them), reseeds that keep the IMU offset, the fix_disagrees
-// trust state. A change of layout or meaning bumps it, with a new golden file
+// trust state, the state of the IMU's slip comparison. A change of layout or meaning bumps it, with a new golden file
 // in testdata/snapshots.
 const SnapshotVersion = 4
 
@@ -67,6 +67,14 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		e.message(24, func(e *wenc) { encCandidate(e, &r.cands[i]) })
 	}
 	e.bool(25, r.trust.disagree)
+	if a := &r.slip.anchor; a.set {
+		e.int(26, a.stamp)
+		e.double(27, a.heading)
+		e.double(28, a.varRad2)
+	}
+	e.double(29, r.slip.factor)
+	e.double(30, r.slip.turnSum)
+	e.double(31, r.slip.varSum)
 	return e.b, nil
 }
 
@@ -163,6 +171,18 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		d.message(num, func(d *wdec) { r.cands = append(r.cands, decCandidate(d)) })
 	case 25:
 		r.trust.disagree = d.bool(num)
+	case 26:
+		r.slip.anchor.set, r.slip.anchor.stamp = true, d.int(num)
+	case 27:
+		r.slip.anchor.heading = d.double(num)
+	case 28:
+		r.slip.anchor.varRad2 = d.double(num)
+	case 29:
+		r.slip.factor = d.double(num)
+	case 30:
+		r.slip.turnSum = d.double(num)
+	case 31:
+		r.slip.varSum = d.double(num)
 	default:
 		d.fail("unknown field %d", num)
 	}

@@ -276,9 +276,23 @@ type RobotSnapshot struct {
 	// Whether a refused fix disagreed beyond belief, or a move recovery
 	// reseeded the pose, with no fix applied since (trust reason
 	// fix_disagrees).
-	FixDisagrees  bool `protobuf:"varint,25,opt,name=fix_disagrees,json=fixDisagrees,proto3" json:"fix_disagrees,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	FixDisagrees bool `protobuf:"varint,25,opt,name=fix_disagrees,json=fixDisagrees,proto3" json:"fix_disagrees,omitempty"`
+	// The IMU heading that starts the next comparison of the IMU's turn with
+	// the wheels' (absent before the first): its stamp, nanoseconds,
+	TurnAnchorStampNs int64 `protobuf:"varint,26,opt,name=turn_anchor_stamp_ns,json=turnAnchorStampNs,proto3" json:"turn_anchor_stamp_ns,omitempty"`
+	// its value, radians in the IMU's own frame,
+	TurnAnchorHeadingRad float64 `protobuf:"fixed64,27,opt,name=turn_anchor_heading_rad,json=turnAnchorHeadingRad,proto3" json:"turn_anchor_heading_rad,omitempty"`
+	// and its reading's variance, rad^2.
+	TurnAnchorVarRad2 float64 `protobuf:"fixed64,28,opt,name=turn_anchor_var_rad2,json=turnAnchorVarRad2,proto3" json:"turn_anchor_var_rad2,omitempty"`
+	// The factor by which new steps' covariances are multiplied while a slip
+	// lasts (0 or 1: none).
+	SlipFactor float64 `protobuf:"fixed64,29,opt,name=slip_factor,json=slipFactor,proto3" json:"slip_factor,omitempty"`
+	// The slip in progress: the sum of its turn disagreements, radians,
+	SlipTurnSumRad float64 `protobuf:"fixed64,30,opt,name=slip_turn_sum_rad,json=slipTurnSumRad,proto3" json:"slip_turn_sum_rad,omitempty"`
+	// and of the wheels' turn variance over it, rad^2.
+	SlipVarSumRad2 float64 `protobuf:"fixed64,31,opt,name=slip_var_sum_rad2,json=slipVarSumRad2,proto3" json:"slip_var_sum_rad2,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -484,6 +498,48 @@ func (x *RobotSnapshot) GetFixDisagrees() bool {
 		return x.FixDisagrees
 	}
 	return false
+}
+
+func (x *RobotSnapshot) GetTurnAnchorStampNs() int64 {
+	if x != nil {
+		return x.TurnAnchorStampNs
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetTurnAnchorHeadingRad() float64 {
+	if x != nil {
+		return x.TurnAnchorHeadingRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetTurnAnchorVarRad2() float64 {
+	if x != nil {
+		return x.TurnAnchorVarRad2
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSlipFactor() float64 {
+	if x != nil {
+		return x.SlipFactor
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSlipTurnSumRad() float64 {
+	if x != nil {
+		return x.SlipTurnSumRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSlipVarSumRad2() float64 {
+	if x != nil {
+		return x.SlipVarSumRad2
+	}
+	return 0
 }
 
 // EstimateState is a filter's mean and covariance.
@@ -1410,7 +1466,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x05entry\"C\n" +
 	"\x0fJournalSnapshot\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
-	"\x05state\x18\x02 \x01(\fR\x05state\"\x92\b\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\"\xa2\n" +
+	"\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -1445,7 +1502,14 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\n" +
 	"candidates\x18\x18 \x03(\v2\x1c.reckon.v1.SnapshotCandidateR\n" +
 	"candidates\x12#\n" +
-	"\rfix_disagrees\x18\x19 \x01(\bR\ffixDisagreesB\x17\n" +
+	"\rfix_disagrees\x18\x19 \x01(\bR\ffixDisagrees\x12/\n" +
+	"\x14turn_anchor_stamp_ns\x18\x1a \x01(\x03R\x11turnAnchorStampNs\x125\n" +
+	"\x17turn_anchor_heading_rad\x18\x1b \x01(\x01R\x14turnAnchorHeadingRad\x12/\n" +
+	"\x14turn_anchor_var_rad2\x18\x1c \x01(\x01R\x11turnAnchorVarRad2\x12\x1f\n" +
+	"\vslip_factor\x18\x1d \x01(\x01R\n" +
+	"slipFactor\x12)\n" +
+	"\x11slip_turn_sum_rad\x18\x1e \x01(\x01R\x0eslipTurnSumRad\x12)\n" +
+	"\x11slip_var_sum_rad2\x18\x1f \x01(\x01R\x0eslipVarSumRad2B\x17\n" +
 	"\x15_last_imu_heading_rad\"W\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +

@@ -118,7 +118,7 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 			}
 		}
 		if !e.imu {
-			r.trust.noteApplied()
+			r.fixApplied(ins.at)
 			r.cands = r.cands[:0]
 		} else {
 			r.checkTurn(res, ins.at)

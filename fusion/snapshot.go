@@ -75,6 +75,9 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	e.double(29, r.slip.factor)
 	e.double(30, r.slip.turnSum)
 	e.double(31, r.slip.varSum)
+	if r.trust.bias.score != nil {
+		e.message(32, func(e *wenc) { encBias(e, &r.trust.bias) })
+	}
 	return e.b, nil
 }
 
@@ -183,6 +186,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.slip.turnSum = d.double(num)
 	case 31:
 		r.slip.varSum = d.double(num)
+	case 32:
+		d.message(num, func(d *wdec) { decBias(d, &r.trust.bias) })
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -213,6 +218,9 @@ func (r *Robot) checkRestored() error {
 	}
 	if r.lastCounts != nil && len(r.lastCounts) != len(r.cfg.Wheels) {
 		return fmt.Errorf("%w: %d counts for %d wheels", ErrSnapshot, len(r.lastCounts), len(r.cfg.Wheels))
+	}
+	if b := &r.trust.bias; len(b.score) != len(b.info) || len(b.score) > 0 && (b.pos < 0 || b.pos >= len(b.score) || b.fill < 0 || b.fill > len(b.score)) {
+		return fmt.Errorf("%w: bias window of %d scores, %d informations, at %d, %d filled", ErrSnapshot, len(b.score), len(b.info), b.pos, b.fill)
 	}
 	for _, w := range []*nisWindow{&r.trust.fixes, &r.trust.imu} {
 		if len(w.nis) != len(w.dims) || len(w.nis) > 0 && (w.pos < 0 || w.pos >= len(w.nis) || w.fill < 0 || w.fill > len(w.nis)) {
@@ -511,4 +519,53 @@ func decCandidate(d *wdec) candidate {
 		}
 	}
 	return c
+}
+
+func encBias(e *wenc, w *biasWindow) {
+	score := make([]float64, 0, 3*len(w.score))
+	info := make([]float64, 0, 9*len(w.info))
+	for i := range w.score {
+		score = append(score, w.score[i][:]...)
+		info = append(info, w.info[i][:]...)
+	}
+	e.doubles(1, score)
+	e.doubles(2, info)
+	e.int(3, int64(w.pos))
+	e.int(4, int64(w.fill))
+	e.bool(5, w.raised)
+	e.bool(6, w.changed)
+}
+
+func decBias(d *wdec, w *biasWindow) {
+	var score, info []float64
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			score = d.doubleSlice(num)
+		case 2:
+			info = d.doubleSlice(num)
+		case 3:
+			w.pos = int(d.int(num))
+		case 4:
+			w.fill = int(d.int(num))
+		case 5:
+			w.raised = d.bool(num)
+		case 6:
+			w.changed = d.bool(num)
+		default:
+			d.fail("bias window: unknown field %d", num)
+		}
+	}
+	if len(score)%3 != 0 || len(info) != 3*len(score) {
+		d.fail("bias window of %d score and %d information values", len(score), len(info))
+		return
+	}
+	w.score, w.info = make([][3]float64, len(score)/3), make([][9]float64, len(score)/3)
+	for i := range w.score {
+		copy(w.score[i][:], score[3*i:])
+		copy(w.info[i][:], info[9*i:])
+	}
+	if len(w.score) == 0 {
+		w.score, w.info = nil, nil
+	}
 }

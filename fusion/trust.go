@@ -63,8 +63,10 @@ type trustState struct {
 	disagreeNIS [4]float64
 
 	// The NIS of recent applied fixes and, apart (they come ten times as
-	// often and would fill one window), of recent IMU headings.
+	// often and would fill one window), of recent IMU headings; and the
+	// recent fixes' scores for a shared offset (bias.go).
 	fixes, imu nisWindow
+	bias       biasWindow
 }
 
 // The IMU window holds imuWindowFactor times as many headings as the fix
@@ -142,6 +144,7 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 	if t.fixes.nis == nil {
 		t.fixes.init(r.cfg.Trust.NISWindow)
 		t.imu.init(imuWindowFactor * r.cfg.Trust.NISWindow)
+		t.bias.init(r.cfg.Trust.NISWindow)
 	}
 	var now TrustReason
 	st := r.f.State()
@@ -155,7 +158,7 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 		now |= TrustHeadingUncertain
 	}
 	p := r.cfg.Trust.ConsistencyProbability
-	if fix, imu := t.fixes.check(p), t.imu.check(1-(1-p)/imuRateFactor); fix || imu {
+	if fix, imu, bias := t.fixes.check(p), t.imu.check(1-(1-p)/imuRateFactor), t.bias.check(p); fix || imu || bias {
 		now |= TrustInconsistent
 	}
 	if t.refusedRun >= r.cfg.Trust.RefusedInARow {

@@ -40,9 +40,9 @@ const (
 	TrustNumericalFault
 	// TrustFixDisagrees: a fix (pose, position, heading or landmark; IMU
 	// excluded) was refused with a NIS beyond the chi-square quantile at
-	// DisagreeProbability, or a move recovery reseeded the pose, and no fix
-	// has been applied since: the estimate is far from where a sensor says
-	// the robot is.
+	// DisagreeProbability, or two were refused in a row, or a move recovery
+	// reseeded the pose, and no fix has been applied since: the estimate is
+	// far from where a sensor says the robot is.
 	TrustFixDisagrees
 )
 
@@ -192,7 +192,10 @@ func (t *trustState) noteRefused(out estimator.Outcome) {
 	if t.disagreeNIS[out.Dim] == 0 {
 		t.disagreeNIS[out.Dim] = distuv.ChiSquared{K: float64(out.Dim)}.Quantile(DisagreeProbability)
 	}
-	if !(out.NIS <= t.disagreeNIS[out.Dim]) {
+	// Two refused in a row happen to a consistent filter once in 1/(1 -
+	// gate_probability)^2 fixes (10,000 at 0.99): the estimate has likely
+	// moved off.
+	if !(out.NIS <= t.disagreeNIS[out.Dim]) || t.refusedRun >= 2 {
 		t.disagree = true
 	}
 }

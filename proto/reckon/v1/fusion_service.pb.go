@@ -180,8 +180,8 @@ const (
 	// The last update failed numerically.
 	DistrustReason_DISTRUST_REASON_NUMERICAL_FAULT DistrustReason = 6
 	// A fix was refused with a NIS no consistent estimate gives (beyond the
-	// chi-square quantile at 1 - 1e-6), or a move recovery reseeded the pose,
-	// and no fix has been applied since.
+	// chi-square quantile at 1 - 1e-6), or two fixes were refused in a row, or
+	// a move recovery reseeded the pose, and no fix has been applied since.
 	DistrustReason_DISTRUST_REASON_FIX_DISAGREES DistrustReason = 7
 )
 

@@ -273,9 +273,9 @@ type RobotSnapshot struct {
 	ImuWindow *SnapshotNisWindow `protobuf:"bytes,23,opt,name=imu_window,json=imuWindow,proto3" json:"imu_window,omitempty"`
 	// Refused pose and landmark fixes kept as evidence of a move.
 	Candidates []*SnapshotCandidate `protobuf:"bytes,24,rep,name=candidates,proto3" json:"candidates,omitempty"`
-	// Whether a refused fix disagreed beyond belief, or a move recovery
-	// reseeded the pose, with no fix applied since (trust reason
-	// fix_disagrees).
+	// Whether a refused fix disagreed beyond belief, two were refused in a
+	// row, or a move recovery reseeded the pose, with no fix applied since
+	// (trust reason fix_disagrees).
 	FixDisagrees bool `protobuf:"varint,25,opt,name=fix_disagrees,json=fixDisagrees,proto3" json:"fix_disagrees,omitempty"`
 	// The IMU heading that starts the next comparison of the IMU's turn with
 	// the wheels' (absent before the first): its stamp, nanoseconds,

@@ -101,7 +101,7 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 		r.stats.count(VerdictGated, false)
 		r.stats.sensorVerdict(e.sensor, VerdictGated, e.out.NIS, 0)
 		if !e.imu {
-			r.trust.refusedRun++
+			r.trust.noteRefused(e.out)
 			r.considerRecovery(res, ins.at)
 		}
 	default:
@@ -118,9 +118,10 @@ func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
 			}
 		}
 		if !e.imu {
-			r.trust.refusedRun = 0
-			r.trust.fault = false
+			r.fixApplied(ins.at)
 			r.cands = r.cands[:0]
+		} else {
+			r.checkTurn(res, ins.at)
 		}
 	}
 }

@@ -49,6 +49,7 @@ var (
 		{TrustInconsistent, "inconsistent", 4},
 		{TrustFixesRefused, "fixes_refused", 5},
 		{TrustNumericalFault, "numerical_fault", 6},
+		{TrustFixDisagrees, "fix_disagrees", 7},
 	}
 	fixKindTable = [...]Label[FixKind]{
 		{FixPose, "pose", 1},
@@ -178,4 +179,4 @@ func (t TrustReason) String() string {
 }
 
 // allTrustReasons is the union of the defined reasons.
-const allTrustReasons = TrustNoOdometry | TrustPositionUncertain | TrustHeadingUncertain | TrustInconsistent | TrustFixesRefused | TrustNumericalFault
+const allTrustReasons = TrustNoOdometry | TrustPositionUncertain | TrustHeadingUncertain | TrustInconsistent | TrustFixesRefused | TrustNumericalFault | TrustFixDisagrees

@@ -43,6 +43,10 @@ func (r *Robot) insertReset(e entry, res *Result) {
 	r.dropFront(ins.at + 1)
 	r.cands = r.cands[:0]
 	r.trust.refusedRun = 0
+	r.trust.disagree = false
+	// A pose set by hand or recovered follows a move the wheels did not
+	// see; the turn comparison starts afresh.
+	r.slip = slipState{}
 	res.Verdict = VerdictApplied
 	res.Events = append(res.Events, Event{Kind: EventReseeded, StampNs: e.t1})
 }

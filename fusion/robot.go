@@ -38,6 +38,10 @@ type Robot struct {
 	stats statsState
 	trust trustState
 	cands []candidate
+	// slip compares the IMU's turn with the wheels' (slip.go); turnGate
+	// caches the comparison's 1-dof gate.
+	slip     slipState
+	turnGate float64
 }
 
 // New returns a robot for the configuration, or an error naming the field at
@@ -142,6 +146,7 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 	if !r.started {
 		r.start(e.t0)
 	}
+	r.slipInflate(e)
 	r.appendOdo(*e)
 	res.Verdict = VerdictApplied
 	r.stats.count(VerdictApplied, true)

@@ -11,9 +11,11 @@ import (
 // SnapshotVersion is the layout version of Snapshot's bytes (message
 // reckon.v1.RobotSnapshot). Version 3: the protocol buffer layout
 // (versions 1 and 2 were gob of Go structs, which a field rename silently
-// emptied). A change of layout or meaning bumps it, with a new golden file
+// emptied). Version 4: recovery candidates carried by odometry (landmark
+// fixes among them), reseeds that keep the IMU offset, the fix_disagrees
+// trust state, the state of the IMU's slip comparison. A change of layout or meaning bumps it, with a new golden file
 // in testdata/snapshots.
-const SnapshotVersion = 3
+const SnapshotVersion = 4
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -63,6 +65,18 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	}
 	for i := range r.cands {
 		e.message(24, func(e *wenc) { encCandidate(e, &r.cands[i]) })
+	}
+	e.bool(25, r.trust.disagree)
+	if a := &r.slip.anchor; a.set {
+		e.int(26, a.stamp)
+		e.double(27, a.heading)
+		e.double(28, a.varRad2)
+	}
+	e.double(29, r.slip.factor)
+	e.double(30, r.slip.turnSum)
+	e.double(31, r.slip.varSum)
+	if r.trust.bias.score != nil {
+		e.message(32, func(e *wenc) { encBias(e, &r.trust.bias) })
 	}
 	return e.b, nil
 }
@@ -158,6 +172,22 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		d.message(num, func(d *wdec) { decWindow(d, &r.trust.imu) })
 	case 24:
 		d.message(num, func(d *wdec) { r.cands = append(r.cands, decCandidate(d)) })
+	case 25:
+		r.trust.disagree = d.bool(num)
+	case 26:
+		r.slip.anchor.set, r.slip.anchor.stamp = true, d.int(num)
+	case 27:
+		r.slip.anchor.heading = d.double(num)
+	case 28:
+		r.slip.anchor.varRad2 = d.double(num)
+	case 29:
+		r.slip.factor = d.double(num)
+	case 30:
+		r.slip.turnSum = d.double(num)
+	case 31:
+		r.slip.varSum = d.double(num)
+	case 32:
+		d.message(num, func(d *wdec) { decBias(d, &r.trust.bias) })
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -188,6 +218,9 @@ func (r *Robot) checkRestored() error {
 	}
 	if r.lastCounts != nil && len(r.lastCounts) != len(r.cfg.Wheels) {
 		return fmt.Errorf("%w: %d counts for %d wheels", ErrSnapshot, len(r.lastCounts), len(r.cfg.Wheels))
+	}
+	if b := &r.trust.bias; len(b.score) != len(b.info) || len(b.score) > 0 && (b.pos < 0 || b.pos >= len(b.score) || b.fill < 0 || b.fill > len(b.score)) {
+		return fmt.Errorf("%w: bias window of %d scores, %d informations, at %d, %d filled", ErrSnapshot, len(b.score), len(b.info), b.pos, b.fill)
 	}
 	for _, w := range []*nisWindow{&r.trust.fixes, &r.trust.imu} {
 		if len(w.nis) != len(w.dims) || len(w.nis) > 0 && (w.pos < 0 || w.pos >= len(w.nis) || w.fill < 0 || w.fill > len(w.nis)) {
@@ -271,6 +304,7 @@ func encEntry(e *wenc, en *entry) {
 	e.int(14, int64(en.out.Dim))
 	e.bool(15, en.out.Gated)
 	e.bool(16, en.initialised)
+	e.bool(17, en.keepOffset)
 }
 
 func decEntry(d *wdec) entry {
@@ -309,6 +343,8 @@ func decEntry(d *wdec) entry {
 			en.out.Gated = d.bool(num)
 		case 16:
 			en.initialised = d.bool(num)
+		case 17:
+			en.keepOffset = d.bool(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}
@@ -448,8 +484,14 @@ func decWindow(d *wdec, w *nisWindow) {
 func encCandidate(e *wenc, c *candidate) {
 	e.int(1, c.stamp)
 	e.pose(2, c.implied)
-	e.pose(3, c.corr)
 	e.doubles(4, c.cov[:])
+	e.int(5, c.fixStamp)
+	if c.isLandmark() {
+		e.message(6, func(e *wenc) { encMeasurement(e, &c.meas) })
+	}
+	e.pose(7, c.rel)
+	e.doubles(8, c.relCov[:])
+	e.bool(9, c.keepOffset)
 }
 
 func decCandidate(d *wdec) candidate {
@@ -460,13 +502,70 @@ func decCandidate(d *wdec) candidate {
 			c.stamp = d.int(num)
 		case 2:
 			c.implied = d.pose(num)
-		case 3:
-			c.corr = d.pose(num)
 		case 4:
 			d.doubles(num, c.cov[:])
+		case 5:
+			c.fixStamp = d.int(num)
+		case 6:
+			d.message(num, func(d *wdec) { c.meas = decMeasurement(d) })
+		case 7:
+			c.rel = d.pose(num)
+		case 8:
+			d.doubles(num, c.relCov[:])
+		case 9:
+			c.keepOffset = d.bool(num)
 		default:
 			d.fail("candidate: unknown field %d", num)
 		}
 	}
 	return c
+}
+
+func encBias(e *wenc, w *biasWindow) {
+	score := make([]float64, 0, 3*len(w.score))
+	info := make([]float64, 0, 9*len(w.info))
+	for i := range w.score {
+		score = append(score, w.score[i][:]...)
+		info = append(info, w.info[i][:]...)
+	}
+	e.doubles(1, score)
+	e.doubles(2, info)
+	e.int(3, int64(w.pos))
+	e.int(4, int64(w.fill))
+	e.bool(5, w.raised)
+	e.bool(6, w.changed)
+}
+
+func decBias(d *wdec, w *biasWindow) {
+	var score, info []float64
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		switch num {
+		case 1:
+			score = d.doubleSlice(num)
+		case 2:
+			info = d.doubleSlice(num)
+		case 3:
+			w.pos = int(d.int(num))
+		case 4:
+			w.fill = int(d.int(num))
+		case 5:
+			w.raised = d.bool(num)
+		case 6:
+			w.changed = d.bool(num)
+		default:
+			d.fail("bias window: unknown field %d", num)
+		}
+	}
+	if len(score)%3 != 0 || len(info) != 3*len(score) {
+		d.fail("bias window of %d score and %d information values", len(score), len(info))
+		return
+	}
+	w.score, w.info = make([][3]float64, len(score)/3), make([][9]float64, len(score)/3)
+	for i := range w.score {
+		copy(w.score[i][:], score[3*i:])
+		copy(w.info[i][:], info[9*i:])
+	}
+	if len(w.score) == 0 {
+		w.score, w.info = nil, nil
+	}
 }

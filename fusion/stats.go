@@ -37,24 +37,34 @@ type SensorStats struct {
 	GateProbability float64
 }
 
-// ConsistencyVerdict compares a sensor's mean NIS with its band.
+// ConsistencyVerdict compares a sensor's record with what a consistent
+// filter would show.
 type ConsistencyVerdict uint8
 
 const (
-	// Consistent: the mean NIS lies inside the band.
+	// Consistent: the mean NIS lies inside the band and the sensor is not
+	// gated more often than its gate allows.
 	Consistent ConsistencyVerdict = iota + 1
-	// Overconfident: the mean NIS is above the band; the covariance claims
-	// too much.
+	// Overconfident: the mean NIS is above the band, or the gate refused
+	// significantly more fixes than its probability allows; the covariance
+	// claims too much.
 	Overconfident
-	// Underconfident: the mean NIS is below the band.
+	// Underconfident: the mean NIS is below the band (and the gate refused
+	// no more than it should).
 	Underconfident
 	// TooFewFixes: fewer than five applied fixes, no verdict yet.
 	TooFewFixes
 )
 
+// GatedSignificance is the significance of the one-sided binomial test of a
+// sensor's gated count in Consistency: a consistent sensor is called
+// overconfident for too many gated fixes with at most this probability.
+const GatedSignificance = 0.001
+
 // Consistency compares the sensor's mean NIS over applied fixes with its
-// two-sided 95% band and gives a verdict: Consistent, Overconfident (NIS
-// too large: the covariance claims too much), Underconfident or TooFewFixes
+// two-sided 95% band, and its gated count with its gate, and gives a
+// verdict: Consistent, Overconfident (NIS too large, or too many fixes
+// gated: the covariance claims too much), Underconfident or TooFewFixes
 // (fewer than 5).
 //
 // For an ungated sensor the sum of N NIS values of dimension d is
@@ -66,6 +76,16 @@ const (
 // distribution function and p = F_d(q), from x f_k(x) = k f_{k+2}(x)
 // (closed form, common practice); the band is then the normal approximation
 // of the mean of N of them.
+//
+// The band alone points the wrong way for a sensor whose errors are larger
+// than it claims: the gate refuses its large errors, and the applied ones,
+// truncated, can average below the band. So a gated sensor is also tested on
+// its gated count: of its applied and gated fixes, each is gated with
+// probability 1 - p when the filter is consistent, so the count is binomial;
+// when the probability of a count at least as large (gonum
+// stat/distuv.Binomial) is below GatedSignificance, the sensor is
+// overconfident whatever its applied NIS (one-sided binomial test, common
+// practice).
 func (s SensorStats) Consistency() (mean, lo, hi float64, verdict ConsistencyVerdict) {
 	n := float64(s.Applied)
 	if s.Applied < 5 || s.DOFSum == 0 {
@@ -82,7 +102,7 @@ func (s SensorStats) Consistency() (mean, lo, hi float64, verdict ConsistencyVer
 		lo, hi = mu-1.96*sd/math.Sqrt(n), mu+1.96*sd/math.Sqrt(n)
 	}
 	switch {
-	case mean > hi:
+	case mean > hi || s.TooManyGated():
 		verdict = Overconfident
 	case mean < lo:
 		verdict = Underconfident
@@ -90,6 +110,20 @@ func (s SensorStats) Consistency() (mean, lo, hi float64, verdict ConsistencyVer
 		verdict = Consistent
 	}
 	return mean, lo, hi, verdict
+}
+
+// TooManyGated reports whether the sensor's gated count is significantly
+// above what its gate allows: P(X >= gated) < GatedSignificance for X
+// binomial with the applied and gated fixes as trials and 1 -
+// GateProbability as the probability of each being gated. An ungated
+// sensor (GateProbability 1) never is.
+func (s SensorStats) TooManyGated() bool {
+	p := s.GateProbability
+	if p <= 0 || p >= 1 || s.Gated == 0 {
+		return false
+	}
+	b := distuv.Binomial{N: float64(s.Applied + s.Gated), P: 1 - p}
+	return b.Survival(float64(s.Gated)-1) < GatedSignificance
 }
 
 // TruncatedChiSquare returns the mean and standard deviation of a

@@ -41,3 +41,36 @@ func TestConsistencyOfGatedSensor(t *testing.T) {
 		t.Errorf("judged as ungated: %s, want underconfident", v)
 	}
 }
+
+// TestConsistencyCountsGatedFixes: a sensor whose fixes are gated far more
+// often than its gate's probability allows is overconfident, even when the
+// applied fixes, truncated by the gate, average below the band. The counts
+// are made up; the limits come from the binomial test: with 1000 trials at
+// 1 - 0.99, 10 are expected and P(X >= 20) is about 0.003, P(X >= 22) about
+// 7e-4 (gonum stat/distuv.Binomial).
+func TestConsistencyCountsGatedFixes(t *testing.T) {
+	mean, _ := TruncatedChiSquare(3, 0.99)
+	for _, c := range []struct {
+		name           string
+		applied, gated uint64
+		meanScale      float64
+		want           ConsistencyVerdict
+	}{
+		{"honest, 1% gated", 990, 10, 1, Consistent},
+		{"20 of 1000 gated: not significant at 0.001", 980, 20, 1, Consistent},
+		{"22 of 1000 gated", 978, 22, 1, Overconfident},
+		{"10% gated, applied NIS low", 900, 100, 0.85, Overconfident},
+		{"20% gated, applied NIS low", 800, 200, 0.85, Overconfident},
+		{"1% gated, applied NIS low", 990, 10, 0.85, Underconfident},
+	} {
+		s := SensorStats{ID: "camera", VerdictCounts: VerdictCounts{Applied: c.applied, Gated: c.gated},
+			NISSum: mean * c.meanScale * float64(c.applied), DOFSum: 3 * int(c.applied), GateProbability: 0.99}
+		if _, lo, hi, v := s.Consistency(); v != c.want {
+			t.Errorf("%s: %s (mean %.3f, band %.3f to %.3f), want %s", c.name, v, mean*c.meanScale, lo, hi, c.want)
+		}
+	}
+	ungated := SensorStats{ID: "imu", VerdictCounts: VerdictCounts{Applied: 1000, Gated: 0}, NISSum: 1000, DOFSum: 1000, GateProbability: 1}
+	if ungated.TooManyGated() {
+		t.Error("an ungated sensor has too many gated")
+	}
+}

@@ -5,6 +5,8 @@ import (
 	"math"
 
 	"gonum.org/v1/gonum/stat/distuv"
+
+	"reckon.example/estimator"
 )
 
 // finish evaluates trust after an input and appends its transitions.
@@ -36,16 +38,35 @@ const (
 	TrustFixesRefused
 	// TrustNumericalFault: the last update failed numerically.
 	TrustNumericalFault
+	// TrustFixDisagrees: a fix (pose, position, heading or landmark; IMU
+	// excluded) was refused with a NIS beyond the chi-square quantile at
+	// DisagreeProbability, or two were refused in a row, or a move recovery
+	// reseeded the pose, and no fix has been applied since: the estimate is
+	// far from where a sensor says the robot is.
+	TrustFixDisagrees
 )
+
+// DisagreeProbability is the chi-square probability beyond which one refused
+// fix's NIS raises TrustFixDisagrees: a consistent filter sees such a NIS
+// once in a million fixes, about once in 28 hours at 10 Hz.
+const DisagreeProbability = 1 - 1e-6
 
 type trustState struct {
 	reasons    TrustReason
 	refusedRun int
 	fault      bool
+	// disagree: a refused fix's NIS was beyond the DisagreeProbability
+	// quantile, or a move recovery reseeded the pose, and no fix has been
+	// applied since.
+	disagree bool
+	// disagreeNIS caches the quantiles by dimension (0: not yet computed).
+	disagreeNIS [4]float64
 
 	// The NIS of recent applied fixes and, apart (they come ten times as
-	// often and would fill one window), of recent IMU headings.
+	// often and would fill one window), of recent IMU headings; and the
+	// recent fixes' scores for a shared offset (bias.go).
 	fixes, imu nisWindow
+	bias       biasWindow
 }
 
 // The IMU window holds imuWindowFactor times as many headings as the fix
@@ -123,6 +144,7 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 	if t.fixes.nis == nil {
 		t.fixes.init(r.cfg.Trust.NISWindow)
 		t.imu.init(imuWindowFactor * r.cfg.Trust.NISWindow)
+		t.bias.init(r.cfg.Trust.NISWindow)
 	}
 	var now TrustReason
 	st := r.f.State()
@@ -136,7 +158,7 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 		now |= TrustHeadingUncertain
 	}
 	p := r.cfg.Trust.ConsistencyProbability
-	if fix, imu := t.fixes.check(p), t.imu.check(1-(1-p)/imuRateFactor); fix || imu {
+	if fix, imu, bias := t.fixes.check(p), t.imu.check(1-(1-p)/imuRateFactor), t.bias.check(p); fix || imu || bias {
 		now |= TrustInconsistent
 	}
 	if t.refusedRun >= r.cfg.Trust.RefusedInARow {
@@ -144,6 +166,9 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 	}
 	if t.fault {
 		now |= TrustNumericalFault
+	}
+	if t.disagree {
+		now |= TrustFixDisagrees
 	}
 	stamp := r.newest
 	switch {
@@ -155,4 +180,30 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 		res.Events = append(res.Events, Event{Kind: EventTrustLost, StampNs: stamp, Detail: fmt.Sprintf("%s (was %s)", now, t.reasons)})
 	}
 	t.reasons = now
+}
+
+// noteRefused counts a refused fix (IMU headings excluded) and raises
+// disagree when its NIS is beyond the DisagreeProbability quantile.
+func (t *trustState) noteRefused(out estimator.Outcome) {
+	t.refusedRun++
+	if out.Dim < 1 || out.Dim >= len(t.disagreeNIS) {
+		return
+	}
+	if t.disagreeNIS[out.Dim] == 0 {
+		t.disagreeNIS[out.Dim] = distuv.ChiSquared{K: float64(out.Dim)}.Quantile(DisagreeProbability)
+	}
+	// Two refused in a row happen to a consistent filter once in 1/(1 -
+	// gate_probability)^2 fixes (10,000 at 0.99): the estimate has likely
+	// moved off.
+	if !(out.NIS <= t.disagreeNIS[out.Dim]) || t.refusedRun >= 2 {
+		t.disagree = true
+	}
+}
+
+// noteApplied notes an applied fix (IMU headings excluded): the refused run,
+// a numerical fault and a disagreement are over.
+func (t *trustState) noteApplied() {
+	t.refusedRun = 0
+	t.fault = false
+	t.disagree = false
 }

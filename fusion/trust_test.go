@@ -41,14 +41,17 @@ func trustRun(t *testing.T, sc fusiontest.Scenario, gate, fixScale, imuScale flo
 			}
 			in.Fix = &f
 		}
+		was := r.Pose().Distrust&fusion.TrustInconsistent != 0
 		res := fusiontest.Feed(r, &in)
-		for _, e := range res.Events {
-			if e.Kind == fusion.EventTrustLost && r.Pose().Distrust&fusion.TrustInconsistent != 0 {
-				if c.raised == 0 {
+		// A raise is the inconsistent reason appearing, whatever the other
+		// reasons do.
+		if !was && r.Pose().Distrust&fusion.TrustInconsistent != 0 {
+			for _, e := range res.Events {
+				if e.Kind == fusion.EventTrustLost && c.raised == 0 {
 					c.firstNs = e.StampNs
 				}
-				c.raised++
 			}
+			c.raised++
 		}
 		if in.Fix != nil && res.Verdict == fusion.VerdictApplied {
 			c.applied++

@@ -41,9 +41,11 @@ type entry struct {
 	imu    bool
 	sensor int
 
-	// entReset.
-	pose    estimator.Pose
-	poseCov [9]float64
+	// entReset; keepOffset: a move recovery that keeps the IMU offset (and
+	// whether it is initialised) instead of marking it for initialisation.
+	pose       estimator.Pose
+	poseCov    [9]float64
+	keepOffset bool
 
 	// The estimate after this entry and what the update made of it;
 	// failed: the update or reset failed, with the error in Robot.errs (so
@@ -83,7 +85,7 @@ func (r *Robot) apply(e *entry) {
 		err = r.applyMeas(e)
 	case entReset:
 		err = r.f.Reset(e.pose, &e.poseCov)
-		if err == nil {
+		if err == nil && !e.keepOffset {
 			r.ready = false
 		}
 	}

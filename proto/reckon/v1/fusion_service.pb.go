@@ -179,6 +179,10 @@ const (
 	DistrustReason_DISTRUST_REASON_FIXES_REFUSED DistrustReason = 5
 	// The last update failed numerically.
 	DistrustReason_DISTRUST_REASON_NUMERICAL_FAULT DistrustReason = 6
+	// A fix was refused with a NIS no consistent estimate gives (beyond the
+	// chi-square quantile at 1 - 1e-6), or two fixes were refused in a row, or
+	// a move recovery reseeded the pose, and no fix has been applied since.
+	DistrustReason_DISTRUST_REASON_FIX_DISAGREES DistrustReason = 7
 )
 
 // Enum value maps for DistrustReason.
@@ -191,6 +195,7 @@ var (
 		4: "DISTRUST_REASON_INCONSISTENT",
 		5: "DISTRUST_REASON_FIXES_REFUSED",
 		6: "DISTRUST_REASON_NUMERICAL_FAULT",
+		7: "DISTRUST_REASON_FIX_DISAGREES",
 	}
 	DistrustReason_value = map[string]int32{
 		"DISTRUST_REASON_UNSPECIFIED":        0,
@@ -200,6 +205,7 @@ var (
 		"DISTRUST_REASON_INCONSISTENT":       4,
 		"DISTRUST_REASON_FIXES_REFUSED":      5,
 		"DISTRUST_REASON_NUMERICAL_FAULT":    6,
+		"DISTRUST_REASON_FIX_DISAGREES":      7,
 	}
 )
 
@@ -2120,7 +2126,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x19EVENT_KIND_MOVE_RECOVERED\x10\x04\x12\x19\n" +
 	"\x15EVENT_KIND_TRUST_LOST\x10\x05\x12\x1d\n" +
 	"\x19EVENT_KIND_TRUST_REGAINED\x10\x06\x12\x17\n" +
-	"\x13EVENT_KIND_RESEEDED\x10\a*\x8b\x02\n" +
+	"\x13EVENT_KIND_RESEEDED\x10\a*\xae\x02\n" +
 	"\x0eDistrustReason\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_NO_ODOMETRY\x10\x01\x12&\n" +
@@ -2128,7 +2134,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"!DISTRUST_REASON_HEADING_UNCERTAIN\x10\x03\x12 \n" +
 	"\x1cDISTRUST_REASON_INCONSISTENT\x10\x04\x12!\n" +
 	"\x1dDISTRUST_REASON_FIXES_REFUSED\x10\x05\x12#\n" +
-	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x06*\xd3\x01\n" +
+	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x06\x12!\n" +
+	"\x1dDISTRUST_REASON_FIX_DISAGREES\x10\a*\xd3\x01\n" +
 	"\x12ConsistencyVerdict\x12#\n" +
 	"\x1fCONSISTENCY_VERDICT_UNSPECIFIED\x10\x00\x12\"\n" +
 	"\x1eCONSISTENCY_VERDICT_CONSISTENT\x10\x01\x12%\n" +

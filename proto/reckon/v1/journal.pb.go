@@ -271,8 +271,28 @@ type RobotSnapshot struct {
 	FixWindow *SnapshotNisWindow `protobuf:"bytes,22,opt,name=fix_window,json=fixWindow,proto3" json:"fix_window,omitempty"`
 	// The trust window of IMU heading NIS values.
 	ImuWindow *SnapshotNisWindow `protobuf:"bytes,23,opt,name=imu_window,json=imuWindow,proto3" json:"imu_window,omitempty"`
-	// Refused pose fixes kept as evidence of a move.
-	Candidates    []*SnapshotCandidate `protobuf:"bytes,24,rep,name=candidates,proto3" json:"candidates,omitempty"`
+	// Refused pose and landmark fixes kept as evidence of a move.
+	Candidates []*SnapshotCandidate `protobuf:"bytes,24,rep,name=candidates,proto3" json:"candidates,omitempty"`
+	// Whether a refused fix disagreed beyond belief, two were refused in a
+	// row, or a move recovery reseeded the pose, with no fix applied since
+	// (trust reason fix_disagrees).
+	FixDisagrees bool `protobuf:"varint,25,opt,name=fix_disagrees,json=fixDisagrees,proto3" json:"fix_disagrees,omitempty"`
+	// The IMU heading that starts the next comparison of the IMU's turn with
+	// the wheels' (absent before the first): its stamp, nanoseconds,
+	TurnAnchorStampNs int64 `protobuf:"varint,26,opt,name=turn_anchor_stamp_ns,json=turnAnchorStampNs,proto3" json:"turn_anchor_stamp_ns,omitempty"`
+	// its value, radians in the IMU's own frame,
+	TurnAnchorHeadingRad float64 `protobuf:"fixed64,27,opt,name=turn_anchor_heading_rad,json=turnAnchorHeadingRad,proto3" json:"turn_anchor_heading_rad,omitempty"`
+	// and its reading's variance, rad^2.
+	TurnAnchorVarRad2 float64 `protobuf:"fixed64,28,opt,name=turn_anchor_var_rad2,json=turnAnchorVarRad2,proto3" json:"turn_anchor_var_rad2,omitempty"`
+	// The factor by which new steps' covariances are multiplied while a slip
+	// lasts (0 or 1: none).
+	SlipFactor float64 `protobuf:"fixed64,29,opt,name=slip_factor,json=slipFactor,proto3" json:"slip_factor,omitempty"`
+	// The slip in progress: the sum of its turn disagreements, radians,
+	SlipTurnSumRad float64 `protobuf:"fixed64,30,opt,name=slip_turn_sum_rad,json=slipTurnSumRad,proto3" json:"slip_turn_sum_rad,omitempty"`
+	// and of the wheels' turn variance over it, rad^2.
+	SlipVarSumRad2 float64 `protobuf:"fixed64,31,opt,name=slip_var_sum_rad2,json=slipVarSumRad2,proto3" json:"slip_var_sum_rad2,omitempty"`
+	// The trust window of recent fixes' scores for a shared pose offset.
+	BiasWindow    *SnapshotBiasWindow `protobuf:"bytes,32,opt,name=bias_window,json=biasWindow,proto3" json:"bias_window,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -475,6 +495,62 @@ func (x *RobotSnapshot) GetCandidates() []*SnapshotCandidate {
 	return nil
 }
 
+func (x *RobotSnapshot) GetFixDisagrees() bool {
+	if x != nil {
+		return x.FixDisagrees
+	}
+	return false
+}
+
+func (x *RobotSnapshot) GetTurnAnchorStampNs() int64 {
+	if x != nil {
+		return x.TurnAnchorStampNs
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetTurnAnchorHeadingRad() float64 {
+	if x != nil {
+		return x.TurnAnchorHeadingRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetTurnAnchorVarRad2() float64 {
+	if x != nil {
+		return x.TurnAnchorVarRad2
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSlipFactor() float64 {
+	if x != nil {
+		return x.SlipFactor
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSlipTurnSumRad() float64 {
+	if x != nil {
+		return x.SlipTurnSumRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetSlipVarSumRad2() float64 {
+	if x != nil {
+		return x.SlipVarSumRad2
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetBiasWindow() *SnapshotBiasWindow {
+	if x != nil {
+		return x.BiasWindow
+	}
+	return nil
+}
+
 // EstimateState is a filter's mean and covariance.
 type EstimateState struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -628,7 +704,10 @@ type SnapshotEntry struct {
 	// Measurement: whether the gate refused it.
 	Gated bool `protobuf:"varint,15,opt,name=gated,proto3" json:"gated,omitempty"`
 	// Measurement: whether this IMU heading initialised the offset.
-	Initialised   bool `protobuf:"varint,16,opt,name=initialised,proto3" json:"initialised,omitempty"`
+	Initialised bool `protobuf:"varint,16,opt,name=initialised,proto3" json:"initialised,omitempty"`
+	// Reseed: a move recovery that keeps the IMU offset instead of marking it
+	// for initialisation.
+	KeepImuOffset bool `protobuf:"varint,17,opt,name=keep_imu_offset,json=keepImuOffset,proto3" json:"keep_imu_offset,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -771,6 +850,13 @@ func (x *SnapshotEntry) GetGated() bool {
 func (x *SnapshotEntry) GetInitialised() bool {
 	if x != nil {
 		return x.Initialised
+	}
+	return false
+}
+
+func (x *SnapshotEntry) GetKeepImuOffset() bool {
+	if x != nil {
+		return x.KeepImuOffset
 	}
 	return false
 }
@@ -1031,24 +1117,127 @@ func (x *SnapshotNisWindow) GetRaised() bool {
 	return false
 }
 
-// SnapshotCandidate is a refused pose fix kept as evidence of a move.
+// SnapshotBiasWindow is a ring of recent fixes' scores H^T S^-1 v and
+// informations H^T S^-1 H in the pose (x, y, heading).
+type SnapshotBiasWindow struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The scores, 3 per fix.
+	Score []float64 `protobuf:"fixed64,1,rep,packed,name=score,proto3" json:"score,omitempty"`
+	// The informations, 3x3 row-major per fix.
+	Information []float64 `protobuf:"fixed64,2,rep,packed,name=information,proto3" json:"information,omitempty"`
+	// The next slot to write.
+	Position int64 `protobuf:"varint,3,opt,name=position,proto3" json:"position,omitempty"`
+	// How many slots are filled.
+	Fill int64 `protobuf:"varint,4,opt,name=fill,proto3" json:"fill,omitempty"`
+	// Whether the window raised inconsistent.
+	Raised bool `protobuf:"varint,5,opt,name=raised,proto3" json:"raised,omitempty"`
+	// Whether a fix was added since the last test.
+	Changed       bool `protobuf:"varint,6,opt,name=changed,proto3" json:"changed,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotBiasWindow) Reset() {
+	*x = SnapshotBiasWindow{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotBiasWindow) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotBiasWindow) ProtoMessage() {}
+
+func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotBiasWindow.ProtoReflect.Descriptor instead.
+func (*SnapshotBiasWindow) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
+}
+
+func (x *SnapshotBiasWindow) GetScore() []float64 {
+	if x != nil {
+		return x.Score
+	}
+	return nil
+}
+
+func (x *SnapshotBiasWindow) GetInformation() []float64 {
+	if x != nil {
+		return x.Information
+	}
+	return nil
+}
+
+func (x *SnapshotBiasWindow) GetPosition() int64 {
+	if x != nil {
+		return x.Position
+	}
+	return 0
+}
+
+func (x *SnapshotBiasWindow) GetFill() int64 {
+	if x != nil {
+		return x.Fill
+	}
+	return 0
+}
+
+func (x *SnapshotBiasWindow) GetRaised() bool {
+	if x != nil {
+		return x.Raised
+	}
+	return false
+}
+
+func (x *SnapshotBiasWindow) GetChanged() bool {
+	if x != nil {
+		return x.Changed
+	}
+	return false
+}
+
+// SnapshotCandidate is a refused pose or landmark fix kept as evidence of a
+// move, carried by odometry to the newest candidate's stamp.
 type SnapshotCandidate struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its stamp, nanoseconds.
+	// The stamp it is carried to, nanoseconds.
 	StampNs int64 `protobuf:"varint,1,opt,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
-	// The robot pose it implies, x m, y m, heading rad.
+	// Pose fix: the robot pose it implies at fix_stamp_ns, x m, y m, heading
+	// rad.
 	Implied []float64 `protobuf:"fixed64,2,rep,packed,name=implied,proto3" json:"implied,omitempty"`
-	// The correction from the filter's pose to implied, x m, y m, heading rad.
-	Correction []float64 `protobuf:"fixed64,3,rep,packed,name=correction,proto3" json:"correction,omitempty"`
-	// The 3x3 covariance of implied, row-major.
-	Covariance    []float64 `protobuf:"fixed64,4,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	// Pose fix: the 3x3 covariance of implied, row-major.
+	Covariance []float64 `protobuf:"fixed64,4,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	// The fix's own stamp, nanoseconds.
+	FixStampNs int64 `protobuf:"varint,5,opt,name=fix_stamp_ns,json=fixStampNs,proto3" json:"fix_stamp_ns,omitempty"`
+	// Landmark fix: its measurement (absent for a pose fix).
+	LandmarkMeasurement *SnapshotMeasurement `protobuf:"bytes,6,opt,name=landmark_measurement,json=landmarkMeasurement,proto3" json:"landmark_measurement,omitempty"`
+	// The robot's motion from fix_stamp_ns to stamp_ns in its body frame at
+	// fix_stamp_ns, forward m, left m, turn rad.
+	RelativeMotion []float64 `protobuf:"fixed64,7,rep,packed,name=relative_motion,json=relativeMotion,proto3" json:"relative_motion,omitempty"`
+	// The 3x3 covariance of relative_motion, row-major.
+	RelativeCovariance []float64 `protobuf:"fixed64,8,rep,packed,name=relative_covariance,json=relativeCovariance,proto3" json:"relative_covariance,omitempty"`
+	// Whether the IMU offset was initialised at the fix.
+	KeepImuOffset bool `protobuf:"varint,9,opt,name=keep_imu_offset,json=keepImuOffset,proto3" json:"keep_imu_offset,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
 
 func (x *SnapshotCandidate) Reset() {
 	*x = SnapshotCandidate{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1060,7 +1249,7 @@ func (x *SnapshotCandidate) String() string {
 func (*SnapshotCandidate) ProtoMessage() {}
 
 func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1073,7 +1262,7 @@ func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCandidate.ProtoReflect.Descriptor instead.
 func (*SnapshotCandidate) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *SnapshotCandidate) GetStampNs() int64 {
@@ -1090,18 +1279,46 @@ func (x *SnapshotCandidate) GetImplied() []float64 {
 	return nil
 }
 
-func (x *SnapshotCandidate) GetCorrection() []float64 {
-	if x != nil {
-		return x.Correction
-	}
-	return nil
-}
-
 func (x *SnapshotCandidate) GetCovariance() []float64 {
 	if x != nil {
 		return x.Covariance
 	}
 	return nil
+}
+
+func (x *SnapshotCandidate) GetFixStampNs() int64 {
+	if x != nil {
+		return x.FixStampNs
+	}
+	return 0
+}
+
+func (x *SnapshotCandidate) GetLandmarkMeasurement() *SnapshotMeasurement {
+	if x != nil {
+		return x.LandmarkMeasurement
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetRelativeMotion() []float64 {
+	if x != nil {
+		return x.RelativeMotion
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetRelativeCovariance() []float64 {
+	if x != nil {
+		return x.RelativeCovariance
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetKeepImuOffset() bool {
+	if x != nil {
+		return x.KeepImuOffset
+	}
+	return false
 }
 
 // JournalOpening starts a robot's journal.
@@ -1119,7 +1336,7 @@ type JournalOpening struct {
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1131,7 +1348,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1144,7 +1361,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -1185,7 +1402,7 @@ type JournalInput struct {
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1197,7 +1414,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1210,7 +1427,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -1248,7 +1465,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1260,7 +1477,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1273,7 +1490,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -1301,7 +1518,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1313,7 +1530,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1326,7 +1543,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -1350,7 +1567,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x05entry\"C\n" +
 	"\x0fJournalSnapshot\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
-	"\x05state\x18\x02 \x01(\fR\x05state\"\xed\a\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\"\xe2\n" +
+	"\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -1384,7 +1602,17 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"imu_window\x18\x17 \x01(\v2\x1c.reckon.v1.SnapshotNisWindowR\timuWindow\x12<\n" +
 	"\n" +
 	"candidates\x18\x18 \x03(\v2\x1c.reckon.v1.SnapshotCandidateR\n" +
-	"candidatesB\x17\n" +
+	"candidates\x12#\n" +
+	"\rfix_disagrees\x18\x19 \x01(\bR\ffixDisagrees\x12/\n" +
+	"\x14turn_anchor_stamp_ns\x18\x1a \x01(\x03R\x11turnAnchorStampNs\x125\n" +
+	"\x17turn_anchor_heading_rad\x18\x1b \x01(\x01R\x14turnAnchorHeadingRad\x12/\n" +
+	"\x14turn_anchor_var_rad2\x18\x1c \x01(\x01R\x11turnAnchorVarRad2\x12\x1f\n" +
+	"\vslip_factor\x18\x1d \x01(\x01R\n" +
+	"slipFactor\x12)\n" +
+	"\x11slip_turn_sum_rad\x18\x1e \x01(\x01R\x0eslipTurnSumRad\x12)\n" +
+	"\x11slip_var_sum_rad2\x18\x1f \x01(\x01R\x0eslipVarSumRad2\x12>\n" +
+	"\vbias_window\x18  \x01(\v2\x1d.reckon.v1.SnapshotBiasWindowR\n" +
+	"biasWindowB\x17\n" +
 	"\x15_last_imu_heading_rad\"W\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
@@ -1394,7 +1622,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"covariance\"m\n" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
-	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xfb\x03\n" +
+	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xa3\x04\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -1412,7 +1640,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x03nis\x18\r \x01(\x01R\x03nis\x12#\n" +
 	"\rnis_dimension\x18\x0e \x01(\x05R\fnisDimension\x12\x14\n" +
 	"\x05gated\x18\x0f \x01(\bR\x05gated\x12 \n" +
-	"\vinitialised\x18\x10 \x01(\bR\vinitialised\"\x9f\x01\n" +
+	"\vinitialised\x18\x10 \x01(\bR\vinitialised\x12&\n" +
+	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\"\x9f\x01\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
@@ -1435,16 +1664,27 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"dimensions\x12\x1a\n" +
 	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
 	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
-	"\x06raised\x18\x05 \x01(\bR\x06raised\"\x88\x01\n" +
+	"\x06raised\x18\x05 \x01(\bR\x06raised\"\xae\x01\n" +
+	"\x12SnapshotBiasWindow\x12\x14\n" +
+	"\x05score\x18\x01 \x03(\x01R\x05score\x12 \n" +
+	"\vinformation\x18\x02 \x03(\x01R\vinformation\x12\x1a\n" +
+	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
+	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
+	"\x06raised\x18\x05 \x01(\bR\x06raised\x12\x18\n" +
+	"\achanged\x18\x06 \x01(\bR\achanged\"\xf1\x02\n" +
 	"\x11SnapshotCandidate\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x18\n" +
 	"\aimplied\x18\x02 \x03(\x01R\aimplied\x12\x1e\n" +
 	"\n" +
-	"correction\x18\x03 \x03(\x01R\n" +
-	"correction\x12\x1e\n" +
-	"\n" +
 	"covariance\x18\x04 \x03(\x01R\n" +
-	"covariance\"\x85\x01\n" +
+	"covariance\x12 \n" +
+	"\ffix_stamp_ns\x18\x05 \x01(\x03R\n" +
+	"fixStampNs\x12Q\n" +
+	"\x14landmark_measurement\x18\x06 \x01(\v2\x1e.reckon.v1.SnapshotMeasurementR\x13landmarkMeasurement\x12'\n" +
+	"\x0frelative_motion\x18\a \x03(\x01R\x0erelativeMotion\x12/\n" +
+	"\x13relative_covariance\x18\b \x03(\x01R\x12relativeCovariance\x12&\n" +
+	"\x0fkeep_imu_offset\x18\t \x01(\bR\rkeepImuOffsetJ\x04\b\x03\x10\x04R\n" +
+	"correction\"\x85\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12-\n" +
@@ -1471,7 +1711,7 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 14)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 15)
 var file_reckon_v1_journal_proto_goTypes = []any{
 	(*JournalRecord)(nil),       // 0: reckon.v1.JournalRecord
 	(*JournalSnapshot)(nil),     // 1: reckon.v1.JournalSnapshot
@@ -1482,46 +1722,49 @@ var file_reckon_v1_journal_proto_goTypes = []any{
 	(*SnapshotMeasurement)(nil), // 6: reckon.v1.SnapshotMeasurement
 	(*SnapshotSensor)(nil),      // 7: reckon.v1.SnapshotSensor
 	(*SnapshotNisWindow)(nil),   // 8: reckon.v1.SnapshotNisWindow
-	(*SnapshotCandidate)(nil),   // 9: reckon.v1.SnapshotCandidate
-	(*JournalOpening)(nil),      // 10: reckon.v1.JournalOpening
-	(*JournalInput)(nil),        // 11: reckon.v1.JournalInput
-	(*JournalOutput)(nil),       // 12: reckon.v1.JournalOutput
-	(*JournalClosing)(nil),      // 13: reckon.v1.JournalClosing
-	(*VerdictCounts)(nil),       // 14: reckon.v1.VerdictCounts
-	(*RobotConfig)(nil),         // 15: reckon.v1.RobotConfig
-	(*Sample)(nil),              // 16: reckon.v1.Sample
-	(*IngestResponse)(nil),      // 17: reckon.v1.IngestResponse
-	(*FusedPose)(nil),           // 18: reckon.v1.FusedPose
+	(*SnapshotBiasWindow)(nil),  // 9: reckon.v1.SnapshotBiasWindow
+	(*SnapshotCandidate)(nil),   // 10: reckon.v1.SnapshotCandidate
+	(*JournalOpening)(nil),      // 11: reckon.v1.JournalOpening
+	(*JournalInput)(nil),        // 12: reckon.v1.JournalInput
+	(*JournalOutput)(nil),       // 13: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),      // 14: reckon.v1.JournalClosing
+	(*VerdictCounts)(nil),       // 15: reckon.v1.VerdictCounts
+	(*RobotConfig)(nil),         // 16: reckon.v1.RobotConfig
+	(*Sample)(nil),              // 17: reckon.v1.Sample
+	(*IngestResponse)(nil),      // 18: reckon.v1.IngestResponse
+	(*FusedPose)(nil),           // 19: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	10, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	11, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	12, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	13, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	11, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	12, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	13, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	14, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
 	1,  // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
 	3,  // 5: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
 	4,  // 6: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
 	5,  // 7: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
 	5,  // 8: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
-	14, // 9: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
-	14, // 10: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
+	15, // 9: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
+	15, // 10: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
 	7,  // 11: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
 	8,  // 12: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
 	8,  // 13: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
-	9,  // 14: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
-	3,  // 15: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
-	6,  // 16: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
-	4,  // 17: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
-	14, // 18: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
-	15, // 19: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	16, // 20: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	17, // 21: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	18, // 22: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	23, // [23:23] is the sub-list for method output_type
-	23, // [23:23] is the sub-list for method input_type
-	23, // [23:23] is the sub-list for extension type_name
-	23, // [23:23] is the sub-list for extension extendee
-	0,  // [0:23] is the sub-list for field type_name
+	10, // 14: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
+	9,  // 15: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
+	3,  // 16: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
+	6,  // 17: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
+	4,  // 18: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
+	15, // 19: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
+	6,  // 20: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
+	16, // 21: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	17, // 22: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	18, // 23: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	19, // 24: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	25, // [25:25] is the sub-list for method output_type
+	25, // [25:25] is the sub-list for method input_type
+	25, // [25:25] is the sub-list for extension type_name
+	25, // [25:25] is the sub-list for extension extendee
+	0,  // [0:25] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -1546,7 +1789,7 @@ func file_reckon_v1_journal_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   14,
+			NumMessages:   15,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

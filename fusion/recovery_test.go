@@ -1,0 +1,213 @@
+package fusion_test
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
+)
+
+// frame is a move and turn of the field frame: a field pose p becomes
+// Compose(frame, p).
+type frame estimator.Pose
+
+// pose moves a field pose into the frame.
+func (f frame) pose(p estimator.Pose) estimator.Pose { return estimator.Compose(estimator.Pose(f), p) }
+
+// cov turns a 3x3 pose covariance into the frame: B C B^T with B =
+// blockdiag(R(heading), 1).
+func (f frame) cov(c []float64) []float64 {
+	s, co := math.Sincos(f.Heading)
+	b := [9]float64{co, -s, 0, s, co, 0, 0, 0, 1}
+	var in, out [9]float64
+	copy(in[:], c)
+	estimator.Sandwich(&out, &b, &in)
+	return out[:]
+}
+
+// config moves a configuration's start pose and landmarks into the frame.
+func (f frame) config(c fusion.Config) fusion.Config {
+	c.StartPose = f.pose(c.StartPose)
+	c.StartCov = f.cov(c.StartCov)
+	ls := make([]fusion.Landmark, len(c.Landmarks))
+	for i, l := range c.Landmarks {
+		p := f.pose(estimator.Pose{X: l.XM, Y: l.YM})
+		ls[i] = fusion.Landmark{ID: l.ID, XM: p.X, YM: p.Y}
+	}
+	c.Landmarks = ls
+	return c
+}
+
+// input moves an input's field quantities into the frame: pose fixes, IMU
+// headings and the truth; body-frame odometry and landmark fixes stay.
+func (f frame) input(in fusiontest.Input) fusiontest.Input {
+	in.Truth = f.pose(in.Truth)
+	switch {
+	case in.Heading != nil:
+		h := *in.Heading
+		h.HeadingRad = estimator.Wrap(h.HeadingRad + f.Heading)
+		in.Heading = &h
+	case in.Odometry != nil && in.Odometry.IMUHeadingRad != nil:
+		o := *in.Odometry
+		v := estimator.Wrap(*o.IMUHeadingRad + f.Heading)
+		o.IMUHeadingRad = &v
+		in.Odometry = &o
+	case in.Fix != nil && in.Fix.Kind == fusion.FixPose:
+		x := *in.Fix
+		p := f.pose(estimator.Pose{X: x.XM, Y: x.YM, Heading: x.HeadingRad})
+		x.XM, x.YM, x.HeadingRad = p.X, p.Y, estimator.Wrap(p.Heading)
+		x.Cov = f.cov(x.Cov)
+		in.Fix = &x
+	}
+	return in
+}
+
+// recoveryRun feeds a bumped run, in the frame, and returns the index of
+// the input that recovered (-1: none), counted from the first input after
+// the bump, and the robot.
+func recoveryRun(t *testing.T, sc fusiontest.Scenario, f frame) (int, *fusion.Robot) {
+	t.Helper()
+	s := fusiontest.New(sc)
+	r, err := fusion.New(f.config(s.Config()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	at, k := -1, 0
+	for in, ok := s.Next(); ok; in, ok = s.Next() {
+		in = f.input(in)
+		res := fusiontest.Feed(r, &in)
+		if in.Bumped {
+			k++
+		}
+		for _, e := range res.Events {
+			if e.Kind == fusion.EventMoveRecovered && at < 0 {
+				at = k
+			}
+		}
+	}
+	return at, r
+}
+
+// TestRecoveryFrameInvariant: the same bumped run with the field frame at
+// the origin and moved by 100 m and turned recovers at the same input,
+// because agreement is judged on poses carried by body-frame odometry and
+// compared in the body frame ("Design: Gating and recovery"; the decision
+// is invariant by construction, so the test asks for the very same input).
+func TestRecoveryFrameInvariant(t *testing.T) {
+	far := frame{X: 100, Y: -60, Heading: 2.1}
+	for _, sc := range []fusiontest.Scenario{
+		{Layout: fusiontest.FreeWheelTurn, Seed: 41, DurationS: 30, Bump: &fusiontest.Bump{AtS: 20, DXM: 1.2, DYM: -0.4, DRad: 0.4}},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, Seed: 42, DurationS: 30, OutlierFraction: 0.05, Bump: &fusiontest.Bump{AtS: 14, DXM: -0.5, DYM: 0.3, DRad: -0.2}},
+		{Layout: fusiontest.GyroTurn, Seed: 43, DurationS: 30, Bump: &fusiontest.Bump{AtS: 17, DXM: 0.3, DYM: 0.6}},
+	} {
+		near, _ := recoveryRun(t, sc, frame{})
+		moved, r := recoveryRun(t, sc, far)
+		t.Logf("%s: recovered at input %d after the bump at the origin, %d at 100 m and turned", sc.Layout, near, moved)
+		if near < 0 || near != moved {
+			t.Errorf("%s: recovered at input %d after the bump at the origin, %d at 100 m", sc.Layout, near, moved)
+		}
+		if st := r.Stats(); st.Recoveries != 1 {
+			t.Errorf("%s: %d recoveries at 100 m, want 1", sc.Layout, st.Recoveries)
+		}
+	}
+}
+
+// TestRecoveryKeepsIMUHeading: a recovery keeps the IMU offset the robot
+// already knows, so that the IMU, a few milliradians good, sets the heading
+// after it rather than the camera's fix (0.02 rad). Over five bumped runs
+// the RMS heading error in the second after the recovery is below that of
+// the same runs without an IMU.
+func TestRecoveryKeepsIMUHeading(t *testing.T) {
+	rms := func(imu bool) float64 {
+		var se float64
+		var n int
+		for seed := uint64(0); seed < 5; seed++ {
+			sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: imu, Seed: 60 + seed, DurationS: 25,
+				Bump: &fusiontest.Bump{AtS: 20, DXM: 0.7, DYM: -0.5, DRad: 0.5}}
+			s := fusiontest.New(sc)
+			r, err := fusion.New(s.Config())
+			if err != nil {
+				t.Fatal(err)
+			}
+			var at int64 = -1
+			for in, ok := s.Next(); ok; in, ok = s.Next() {
+				res := fusiontest.Feed(r, &in)
+				for _, e := range res.Events {
+					if e.Kind == fusion.EventMoveRecovered && at < 0 {
+						at = r.NewestNs()
+					}
+				}
+				if at >= 0 && in.Odometry != nil && r.NewestNs() <= at+1e9 {
+					d := estimator.Wrap(r.Pose().Pose.Heading - in.Truth.Heading)
+					se += d * d
+					n++
+				}
+			}
+			if at < 0 {
+				t.Fatalf("imu %v seed %d: no recovery", imu, sc.Seed)
+			}
+		}
+		return math.Sqrt(se / float64(n))
+	}
+	with, without := rms(true), rms(false)
+	t.Logf("RMS heading error in the second after recovery: %.4f rad with the IMU, %.4f rad without", with, without)
+	if !(with < without) {
+		t.Errorf("heading after recovery: %.4f rad with the IMU, not below %.4f rad without", with, without)
+	}
+}
+
+// TestLandmarkRecovery: a cart that sees only range and bearing to mapped
+// posts, two or three in view, is pushed 0.7 m and turned 0.3 rad; its
+// refused landmark fixes determine its pose by Gauss-Newton and reseed it,
+// after which it follows the truth again. With only one post in view the
+// pose is not determined (the track can turn about the post) and there is
+// no recovery.
+func TestLandmarkRecovery(t *testing.T) {
+	posts := []fusion.Landmark{{ID: "a", XM: 4, YM: 1.5}, {ID: "b", XM: 4, YM: -1.5}, {ID: "c", XM: 6, YM: 0.5}}
+	run := func(seen []fusion.Landmark) (recovered bool, errAfter float64) {
+		cfg := fusion.Config{Recovery: fusion.Recovery{Enabled: true}, Landmarks: seen}
+		r, err := fusion.New(cfg)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rng := rand.New(rand.NewPCG(5, 6))
+		const rangeStd, bearingStd = 0.02, 0.01
+		var truth estimator.Pose
+		step := estimator.Step{ForwardM: 0.004, TurnRad: 0.0005} // 0.4 m/s, 0.05 rad/s at 100 Hz
+		for k := int64(0); k < 600; k++ {
+			t0, t1 := k*10e6, (k+1)*10e6
+			truth = estimator.Advance(truth, step)
+			if k == 300 {
+				truth = estimator.Pose{X: truth.X + 0.5, Y: truth.Y - 0.5, Heading: truth.Heading + 0.3}
+			}
+			r.AddOdometry(fusion.Odometry{StartNs: t0, StampNs: t1, Step: &step})
+			if k%10 != 9 {
+				continue
+			}
+			l := seen[int(k/10)%len(seen)]
+			dx, dy := l.XM-truth.X, l.YM-truth.Y
+			rg := math.Hypot(dx, dy) + rng.NormFloat64()*rangeStd
+			b := estimator.Wrap(math.Atan2(dy, dx) - truth.Heading + rng.NormFloat64()*bearingStd)
+			res := r.AddFix(fusion.Fix{StampNs: t1, SensorID: "camera", Kind: fusion.FixLandmark, LandmarkID: l.ID,
+				RangeM: &rg, BearingRad: &b, Cov: []float64{rangeStd * rangeStd, 0, 0, bearingStd * bearingStd}})
+			for _, e := range res.Events {
+				if e.Kind == fusion.EventMoveRecovered {
+					recovered = true
+					t.Logf("%d posts: %s at %.2f s", len(seen), e.Detail, float64(e.StampNs)*1e-9)
+				}
+			}
+		}
+		p := r.Pose().Pose
+		return recovered, math.Hypot(p.X-truth.X, p.Y-truth.Y)
+	}
+	ok, e := run(posts)
+	if !ok || e > 0.1 {
+		t.Errorf("three posts: recovered %v, final error %.3f m", ok, e)
+	}
+	if ok, _ := run(posts[:1]); ok {
+		t.Error("one post: recovered, but one post leaves the pose undetermined")
+	}
+}

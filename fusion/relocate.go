@@ -1,0 +1,255 @@
+package fusion
+
+import (
+	"fmt"
+	"math"
+
+	"gonum.org/v1/gonum/mat"
+	"gonum.org/v1/gonum/stat/distuv"
+
+	"reckon.example/estimator"
+)
+
+// Relocation from refused landmark fixes (DEVELOPERS.md, "Design: Gating and
+// recovery"): the pose x at the newest candidate's stamp is the least-squares
+// fit of every candidate's range and bearing, each seen from the pose
+//
+//	p_i = x (+) rel_i^-1
+//
+// that the odometry rel_i between the fix and the newest stamp gives. Moving
+// the pose through that relation needs the Jacobians of p_i = (x_xy -
+// R(th_p) t_i, th_x - phi_i), for rel_i = (t_i, phi_i) and th_p = th_x -
+// phi_i:
+//
+//	dp/dx   = [1 0 s tx + c ty; 0 1 -c tx + s ty; 0 0 1]
+//	dp/drel = [-c s -s tx - c ty; -s -c c tx - s ty; 0 0 -1]
+//
+// with s, c the sine and cosine of th_p. The odometry's covariance O_i enters
+// each fix's weight: W_i^-1 = R_i + H_i (dp/drel O_i dp/drel^T) H_i^T, with
+// H_i the measurement's Jacobian at p_i.
+const (
+	// relocateIterations bounds the Gauss-Newton iterations of one start.
+	relocateIterations = 30
+	// relocateHeadings is how many headings the search starts from, besides
+	// the estimate's own: the moved robot's heading is unknown.
+	relocateHeadings = 16
+	// relocateStepM is the step length below which Gauss-Newton has
+	// converged, metres (and radians).
+	relocateStepM = 1e-9
+)
+
+// relocation is one Gauss-Newton solution.
+type relocation struct {
+	pose estimator.Pose
+	info *mat.SymDense // J^T W J at the solution
+	cost float64       // sum of the weighted squared residuals
+	dim  int           // sum of the fixes' dimensions
+	ok   bool
+}
+
+// relocate solves for the pose from the landmark candidates. It tries the
+// newest k candidates for k from all of them down to recovery.count (each
+// next k two thirds of the last), so
+// that fixes refused before a move do not spoil the fit of those after it,
+// and accepts the first fit that (1) sees at least two landmarks: range and
+// bearing to one landmark do not change when the whole track turns about
+// it, so one landmark, however many stamps, leaves the heading free; (2)
+// agrees with every fix: the weighted residual sum is at most the
+// chi-square quantile at recovery.agree_probability for its dimension less
+// 3; (3) is well conditioned: its covariance, the inverse of J^T W J, is
+// positive definite and would be trusted (95% radius and heading standard
+// deviation within the trust limits).
+func (r *Robot) relocate() (estimator.Pose, [9]float64, string, bool) {
+	n := len(r.cands)
+	for k := n; k >= r.cfg.Recovery.Count; k = min(k-1, k*2/3) {
+		set := r.cands[n-k:]
+		if distinctLandmarks(set) < 2 {
+			continue
+		}
+		sol := r.solvePose(set)
+		if !sol.ok || sol.dim <= 3 {
+			continue
+		}
+		chi := distuv.ChiSquared{K: float64(sol.dim - 3)}
+		if sol.cost > chi.Quantile(r.cfg.Recovery.AgreeProbability) {
+			continue
+		}
+		var ch mat.Cholesky
+		if !ch.Factorize(sol.info) {
+			continue
+		}
+		var inv mat.SymDense
+		if err := ch.InverseTo(&inv); err != nil {
+			continue
+		}
+		var cov [9]float64
+		for i := 0; i < 3; i++ {
+			for j := 0; j < 3; j++ {
+				cov[i*3+j] = inv.At(i, j)
+			}
+		}
+		if estimator.CheckCovariance(cov[:], 3) != nil {
+			continue
+		}
+		st := estimator.NewState(3, []float64{sol.pose.X, sol.pose.Y, sol.pose.Heading}, cov[:])
+		if st.Position95() > r.cfg.Trust.MaxPosition95M || math.Sqrt(cov[8]) > r.cfg.Trust.MaxHeadingStdRad {
+			continue
+		}
+		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true
+	}
+	return estimator.Pose{}, [9]float64{}, "", false
+}
+
+// distinctLandmarks counts the landmarks the candidates see.
+func distinctLandmarks(set []candidate) int {
+	var seen [][2]float64
+	for i := range set {
+		l := [2]float64{set[i].meas.LandmarkX, set[i].meas.LandmarkY}
+		found := false
+		for _, s := range seen {
+			found = found || s == l
+		}
+		if !found {
+			seen = append(seen, l)
+		}
+	}
+	return len(seen)
+}
+
+// solvePose fits the pose at the candidates' common stamp by Gauss-Newton
+// (Nocedal and Wright, Numerical Optimization, 2nd ed., sec. 10.3), from
+// several starts: the estimate, and for each of relocateHeadings headings
+// the pose that the newest range-and-bearing fix gives with that heading. It
+// returns the converged solution of least cost.
+func (r *Robot) solvePose(set []candidate) relocation {
+	var starts []estimator.Pose
+	est := r.f.Pose()
+	starts = append(starts, est)
+	newest := -1
+	for i := len(set) - 1; i >= 0 && newest < 0; i-- {
+		if set[i].meas.Kind == estimator.KindRangeBearing {
+			newest = i
+		}
+	}
+	for k := 0; k < relocateHeadings; k++ {
+		th := est.Heading + 2*math.Pi*float64(k)/relocateHeadings
+		if newest < 0 {
+			starts = append(starts, estimator.Pose{X: est.X, Y: est.Y, Heading: estimator.Wrap(th)})
+			continue
+		}
+		starts = append(starts, seenFrom(&set[newest], th))
+	}
+	var best relocation
+	for _, x := range starts {
+		sol := gaussNewton(set, x)
+		if sol.ok && (!best.ok || sol.cost < best.cost) {
+			best = sol
+		}
+	}
+	return best
+}
+
+// seenFrom returns the pose at the candidate's carried stamp from which its
+// range-and-bearing fix is seen exactly, were the robot's heading there th.
+func seenFrom(c *candidate, th float64) estimator.Pose {
+	// Heading at the fix, then the sensor's position from the landmark.
+	thp := estimator.Wrap(th - c.rel.Heading)
+	bearing := thp + c.meas.Mount.Heading + c.meas.Z[1]
+	s := estimator.Pose{X: c.meas.LandmarkX - c.meas.Z[0]*math.Cos(bearing), Y: c.meas.LandmarkY - c.meas.Z[0]*math.Sin(bearing),
+		Heading: thp + c.meas.Mount.Heading}
+	return estimator.Compose(estimator.Detach(s, c.meas.Mount), c.rel)
+}
+
+// gaussNewton runs Gauss-Newton from x0: x += (J^T W J)^-1 J^T W v, until the
+// step is below relocateStepM or the iterations run out.
+func gaussNewton(set []candidate, x estimator.Pose) relocation {
+	var sol relocation
+	for it := 0; it < relocateIterations; it++ {
+		info, grad, cost, dim, ok := normalEquations(set, x)
+		if !ok {
+			return relocation{}
+		}
+		var ch mat.Cholesky
+		if !ch.Factorize(info) {
+			return relocation{}
+		}
+		var d mat.VecDense
+		if err := ch.SolveVecTo(&d, grad); err != nil {
+			return relocation{}
+		}
+		x = estimator.Pose{X: x.X + d.AtVec(0), Y: x.Y + d.AtVec(1), Heading: estimator.Wrap(x.Heading + d.AtVec(2))}
+		sol = relocation{pose: x, info: info, cost: cost, dim: dim}
+		if math.Abs(d.AtVec(0))+math.Abs(d.AtVec(1))+math.Abs(d.AtVec(2)) < relocateStepM {
+			info, _, cost, dim, ok := normalEquations(set, x)
+			if !ok {
+				return relocation{}
+			}
+			return relocation{pose: x, info: info, cost: cost, dim: dim, ok: true}
+		}
+	}
+	sol.ok = false
+	return sol
+}
+
+// normalEquations returns J^T W J, J^T W v and v^T W v over the candidates
+// at pose x, with the sum of their dimensions.
+func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, grad *mat.VecDense, cost float64, dim int, ok bool) {
+	info, grad = mat.NewSymDense(3, nil), mat.NewVecDense(3, nil)
+	for i := range set {
+		c := &set[i]
+		m := &c.meas
+		inv := inversePose(c.rel)
+		p := estimator.Compose(x, inv)
+		z, h, err := m.Predicted([]float64{p.X, p.Y, p.Heading})
+		if err != nil {
+			return nil, nil, 0, 0, false
+		}
+		d := m.Kind.Dim()
+		s, co := math.Sincos(p.Heading)
+		tx, ty := c.rel.X, c.rel.Y
+		jx := mat.NewDense(3, 3, []float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1})
+		jr := mat.NewDense(3, 3, []float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1})
+		hp := mat.NewDense(d, 3, h)
+		var hx, hr, o mat.Dense
+		hx.Mul(hp, jx)
+		hr.Mul(hp, jr)
+		o.Mul(&hr, mat.NewDense(3, 3, c.relCov[:]))
+		wInv := mat.NewDense(d, d, nil)
+		wInv.Mul(&o, hr.T())
+		v := mat.NewVecDense(d, nil)
+		for a := 0; a < d; a++ {
+			for b := 0; b < d; b++ {
+				wInv.Set(a, b, wInv.At(a, b)+m.R[a*3+b])
+			}
+			v.SetVec(a, m.Z[a]-z[a])
+			if m.Kind.IsAngle(a) {
+				v.SetVec(a, estimator.Wrap(v.AtVec(a)))
+			}
+		}
+		var w mat.Dense
+		if err := w.Inverse(wInv); err != nil {
+			return nil, nil, 0, 0, false
+		}
+		var hw, hwh mat.Dense
+		var g, wv mat.VecDense
+		hw.Mul(hx.T(), &w)
+		hwh.Mul(&hw, &hx)
+		g.MulVec(&hw, v)
+		wv.MulVec(&w, v)
+		cost += mat.Dot(v, &wv)
+		for a := 0; a < 3; a++ {
+			grad.SetVec(a, grad.AtVec(a)+g.AtVec(a))
+			for b := a; b < 3; b++ {
+				info.SetSym(a, b, info.At(a, b)+(hwh.At(a, b)+hwh.At(b, a))/2)
+			}
+		}
+		dim += d
+	}
+	return info, grad, cost, dim, true
+}
+
+// inversePose returns q with Compose(p, q) the identity pose.
+func inversePose(p estimator.Pose) estimator.Pose {
+	s, c := math.Sincos(p.Heading)
+	return estimator.Pose{X: -(c*p.X + s*p.Y), Y: -(-s*p.X + c*p.Y), Heading: -p.Heading}
+}

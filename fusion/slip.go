@@ -1,0 +1,182 @@
+package fusion
+
+import (
+	"fmt"
+
+	"gonum.org/v1/gonum/stat/distuv"
+
+	"reckon.example/estimator"
+)
+
+// Slip that the wheel residual cannot see (DEVELOPERS.md, "Design: Gating
+// and recovery"). Three wheels determine the body step exactly, leaving no
+// residual; with four, one slipping wheel can hide in the fit. An absolute
+// IMU sees the turn on its own: over an interval [a, b] between two IMU
+// headings, the wheels' turn W (the window's steps, split by time fraction)
+// and the IMU's heading change D = wrap(z_b - z_a) differ by
+//
+//	delta = D - W,   var(delta) = V_w + V_i,   V_i = R_a + R_b + q_o (b - a),
+//
+// with V_w the steps' turn variance plus the heading random walk, R the two
+// readings' variances and q_o the IMU offset's random walk. When delta^2 /
+// var(delta) exceeds the 1-dof chi-square quantile at gate_probability
+// (corrected for repeated tests, below), the wheels slipped, and the steps' covariances over [a, b] are multiplied by
+// the covariance-matching factor k, the one that makes the expected squared
+// disagreement equal the one seen: k V_w + V_i = delta^2 (adaptive noise
+// estimation from innovations, Mehra, "On the identification of variances
+// and adaptive Kalman filtering", IEEE TAC 1970). The IMU's part V_i is
+// known, so only the steps' part is scaled. The window is replayed from the
+// first of those steps, and slip_suspected is raised.
+//
+// A slip lasts, and its error does not average out: a wheel slipping for
+// 0.8 s shortens every step the same way, and the IMU, which corrects the
+// heading, does not see the distance lost. So the matching is over the whole
+// slip, not each interval: k is chosen so that the steps' turn variance
+// summed since the slip began covers the square of the disagreements summed
+// since then (a bias's variance, not a random walk's), and, while the slip
+// lasts, each new step's covariance is multiplied by the last k too. The
+// slip ends when an interval of turnBaselineNs agrees with the steps' own,
+// uninflated variance.
+//
+// The comparison runs at every IMU heading at least turnMinNs after the
+// anchor, over the interval since it; the anchor moves to the heading that
+// found a slip (so no disagreement inflates a step twice), or once an
+// interval of turnBaselineNs agrees. Between two IMU samples 10 ms apart the
+// readings' noise (5 mrad each) hides the few milliradians a slipping wheel
+// turns the estimate; a longer interval lets the slip stand out of it.
+//
+// Testing one growing interval up to turnTests times would raise false
+// alarms that often more; each test is therefore made at the gate's
+// probability of error divided by turnTests (Bonferroni's correction), so
+// that an honest interval raises one with at most the gate's probability.
+const (
+	turnMinNs      = 15e6
+	turnBaselineNs = 100e6
+	turnTests      = turnBaselineNs / 10e6
+)
+
+// slipState is the IMU's slip comparison.
+type slipState struct {
+	anchor turnAnchor
+	// factor multiplies new steps' covariances while a slip lasts (0: none);
+	// turnSum and varSum sum the slip's disagreements (rad) and its steps'
+	// turn variance after inflation (rad^2).
+	factor, turnSum, varSum float64
+}
+
+// turnAnchor is the IMU heading that starts the next turn comparison.
+type turnAnchor struct {
+	set     bool
+	stamp   int64
+	heading float64 // rad, the IMU's own frame
+	varRad2 float64 // its reading's variance
+}
+
+// checkTurn compares the IMU heading of window entry at, just applied, with
+// the anchor, as above. It does nothing unless the robot has an absolute
+// IMU and wheels.
+func (r *Robot) checkTurn(res *Result, at int) {
+	if r.cfg.IMU != IMUAbsolute || len(r.cfg.Wheels) == 0 {
+		return
+	}
+	e := &r.live()[at]
+	b := turnAnchor{set: true, stamp: e.t1, heading: e.meas.Z[0], varRad2: e.meas.R[0]}
+	sl := &r.slip
+	a := sl.anchor
+	switch {
+	case !a.set || b.stamp <= a.stamp || a.stamp < r.baseT:
+		sl.anchor = b
+		return
+	case b.stamp-a.stamp < turnMinNs:
+		return
+	}
+	w, vw, first := r.wheelTurn(a.stamp, b.stamp)
+	if first < 0 || !(vw > 0) {
+		sl.anchor = b
+		return
+	}
+	dt := float64(b.stamp-a.stamp) * 1e-9
+	delta := estimator.Wrap(b.heading-a.heading) - w
+	vi := a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt
+	ns := delta * delta / (vw + vi)
+	if r.turnGate == 0 {
+		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)
+	}
+	// The covariance-matching factor: of this interval outside a slip, of
+	// the slip so far inside one.
+	sum, slipping := sl.turnSum+delta, sl.factor > 0
+	var k float64
+	switch {
+	case !slipping && ns > r.turnGate:
+		k = (delta*delta - vi) / vw // ns > gate > 1 makes it above 1
+	case slipping:
+		k = (sum*sum - sl.varSum - vi) / vw
+	}
+	if k > 1 {
+		r.inflateSteps(first, b.stamp, k)
+		sl.anchor, sl.turnSum, sl.varSum, sl.factor = b, sum, sl.varSum+k*vw, max(sl.factor, 1)*k
+		if !slipping || ns > r.turnGate {
+			r.stats.slips++
+			res.Events = append(res.Events, Event{Kind: EventSlipSuspected, StampNs: b.stamp, Value: ns,
+				Detail: fmt.Sprintf("IMU turned %.3f rad, wheels %.3f rad over %.3f s: chi-square %.1f with 1 degree of freedom; step covariance x %.1f",
+					estimator.Wrap(b.heading-a.heading), w, dt, ns, k)})
+		}
+		return
+	}
+	if b.stamp-a.stamp < turnBaselineNs {
+		return
+	}
+	// The interval agrees; does it without the slip's inflation?
+	if vw0 := vw / max(sl.factor, 1); slipping && delta*delta/(vw0+vi) > r.turnGate {
+		sl.anchor, sl.turnSum, sl.varSum = b, sum, sl.varSum+vw
+		return
+	}
+	*sl = slipState{anchor: b}
+}
+
+// inflateSteps multiplies the covariances of the odometry steps from live
+// entry first to stamp t by k and replays the window from first.
+func (r *Robot) inflateSteps(first int, t int64, k float64) {
+	live := r.live()
+	for i := first; i < len(live) && live[i].t0 < t; i++ {
+		if live[i].kind == entOdo {
+			for j := range live[i].cov {
+				live[i].cov[j] *= k
+			}
+		}
+	}
+	r.replayFrom(first)
+}
+
+// slipInflate multiplies a new odometry step's covariance by the factor of
+// a slip in progress.
+func (r *Robot) slipInflate(e *entry) {
+	if f := r.slip.factor; f > 1 {
+		for k := range e.cov {
+			e.cov[k] *= f
+		}
+	}
+}
+
+// wheelTurn returns the window's odometry turn over [ta, tb] and its
+// variance (the steps' own, by time fraction, plus the heading random
+// walk), and the index of the first odometry entry in it (-1: none).
+func (r *Robot) wheelTurn(ta, tb int64) (turn, v float64, first int) {
+	first = -1
+	live := r.live()
+	for i := r.locate(ta); i < len(live) && live[i].t0 < tb; i++ {
+		e := &live[i]
+		lo, hi := max(e.t0, ta), min(e.t1, tb)
+		if e.kind != entOdo || hi <= lo {
+			continue
+		}
+		if first < 0 {
+			first = i
+		}
+		f := float64(hi-lo) / float64(e.t1-e.t0)
+		turn += e.step.TurnRad * f
+		v += e.cov[8] * f
+	}
+	v += r.cfg.Noise.HeadingVarRad2PerS * float64(tb-ta) * 1e-9
+	return turn, v, first
+}

@@ -114,11 +114,11 @@ func TestInvarianceFarFromOrigin(t *testing.T) {
 }
 
 // TestInvarianceMoveRecovery: the same with a bump, so that refused fixes
-// are judged for move recovery. Today recovery judges agreement on a
-// transform about the field origin (DEVELOPERS.md, "Design: Gating and
-// recovery"): the plain run recovers at 20.45 s, the moved one does not.
+// are judged for move recovery, which judges agreement in the body frame of
+// the newest candidate (DEVELOPERS.md, "Design: Gating and recovery"). When
+// it judged a transform about the field origin, the plain run recovered at
+// 20.45 s and the moved one never did.
 func TestInvarianceMoveRecovery(t *testing.T) {
-	t.Skip("recovery is not yet invariant: TODO lead (issue 9, item 6)")
 	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 41, DurationS: 40,
 		Bump: &fusiontest.Bump{AtS: 20, DXM: 1.2, DYM: -0.4, DRad: 0.4}}
 	moved := sc

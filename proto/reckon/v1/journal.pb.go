@@ -169,9 +169,18 @@ type JournalSnapshot struct {
 	// The sequence number of the last input included.
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// The state, in the estimator's own versioned encoding.
-	State         []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	State []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
+	// The recent verdicts of the robot's ingest sessions (the newest 256 of
+	// each), so that a retry after a restart is still recognised.
+	Sessions []*JournalSession `protobuf:"bytes,3,rep,name=sessions,proto3" json:"sessions,omitempty"`
+	// The build that wrote this snapshot and the outputs after it (see
+	// JournalOpening.build). The service writes a snapshot when it resumes a
+	// journal, so that every output is attributed to the build that wrote it.
+	Build string `protobuf:"bytes,4,opt,name=build,proto3" json:"build,omitempty"`
+	// Wall time of the snapshot, Unix nanoseconds (information only).
+	WriteTimeUnixNs int64 `protobuf:"varint,5,opt,name=write_time_unix_ns,json=writeTimeUnixNs,proto3" json:"write_time_unix_ns,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
 }
 
 func (x *JournalSnapshot) Reset() {
@@ -218,6 +227,82 @@ func (x *JournalSnapshot) GetState() []byte {
 	return nil
 }
 
+func (x *JournalSnapshot) GetSessions() []*JournalSession {
+	if x != nil {
+		return x.Sessions
+	}
+	return nil
+}
+
+func (x *JournalSnapshot) GetBuild() string {
+	if x != nil {
+		return x.Build
+	}
+	return ""
+}
+
+func (x *JournalSnapshot) GetWriteTimeUnixNs() int64 {
+	if x != nil {
+		return x.WriteTimeUnixNs
+	}
+	return 0
+}
+
+// JournalSession is the recent verdicts of one ingest session.
+type JournalSession struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// IngestRequest.session_id.
+	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// The verdicts, oldest first.
+	Verdicts      []*IngestResponse `protobuf:"bytes,2,rep,name=verdicts,proto3" json:"verdicts,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *JournalSession) Reset() {
+	*x = JournalSession{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *JournalSession) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*JournalSession) ProtoMessage() {}
+
+func (x *JournalSession) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use JournalSession.ProtoReflect.Descriptor instead.
+func (*JournalSession) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+}
+
+func (x *JournalSession) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *JournalSession) GetVerdicts() []*IngestResponse {
+	if x != nil {
+		return x.Verdicts
+	}
+	return nil
+}
+
 // JournalOpening starts a robot's journal.
 type JournalOpening struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -227,13 +312,17 @@ type JournalOpening struct {
 	Config *RobotConfig `protobuf:"bytes,2,opt,name=config,proto3" json:"config,omitempty"`
 	// Wall time the robot was created, Unix nanoseconds (information only).
 	CreateTimeUnixNs int64 `protobuf:"varint,3,opt,name=create_time_unix_ns,json=createTimeUnixNs,proto3" json:"create_time_unix_ns,omitempty"`
-	unknownFields    protoimpl.UnknownFields
-	sizeCache        protoimpl.SizeCache
+	// The build that wrote the journal's first outputs: module version,
+	// VCS revision and "+modified" for a modified tree. Outputs after a
+	// snapshot were written by the snapshot's build.
+	Build         string `protobuf:"bytes,4,opt,name=build,proto3" json:"build,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -245,7 +334,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -258,7 +347,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -282,6 +371,13 @@ func (x *JournalOpening) GetCreateTimeUnixNs() int64 {
 	return 0
 }
 
+func (x *JournalOpening) GetBuild() string {
+	if x != nil {
+		return x.Build
+	}
+	return ""
+}
+
 // JournalInput is one input.
 type JournalInput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -293,13 +389,17 @@ type JournalInput struct {
 	Sample *Sample `protobuf:"bytes,2,opt,name=sample,proto3" json:"sample,omitempty"`
 	// Wall time it arrived, Unix nanoseconds (information only).
 	ArrivalUnixNs int64 `protobuf:"varint,3,opt,name=arrival_unix_ns,json=arrivalUnixNs,proto3" json:"arrival_unix_ns,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	// IngestRequest.session_id ("" for none).
+	SessionId string `protobuf:"bytes,4,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// IngestRequest.client_sequence.
+	ClientSequence uint64 `protobuf:"varint,5,opt,name=client_sequence,json=clientSequence,proto3" json:"client_sequence,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -311,7 +411,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -324,7 +424,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -348,6 +448,20 @@ func (x *JournalInput) GetArrivalUnixNs() int64 {
 	return 0
 }
 
+func (x *JournalInput) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *JournalInput) GetClientSequence() uint64 {
+	if x != nil {
+		return x.ClientSequence
+	}
+	return 0
+}
+
 // JournalOutput is the verdict and pose after one input.
 type JournalOutput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -362,7 +476,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -374,7 +488,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -387,7 +501,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -415,7 +529,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -427,7 +541,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -440,7 +554,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -461,18 +575,29 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x06output\x18\x03 \x01(\v2\x18.reckon.v1.JournalOutputH\x00R\x06output\x125\n" +
 	"\aclosing\x18\x04 \x01(\v2\x19.reckon.v1.JournalClosingH\x00R\aclosing\x128\n" +
 	"\bsnapshot\x18\x05 \x01(\v2\x1a.reckon.v1.JournalSnapshotH\x00R\bsnapshotB\a\n" +
-	"\x05entry\"C\n" +
+	"\x05entry\"\xbd\x01\n" +
 	"\x0fJournalSnapshot\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
-	"\x05state\x18\x02 \x01(\fR\x05state\"\x85\x01\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\x125\n" +
+	"\bsessions\x18\x03 \x03(\v2\x19.reckon.v1.JournalSessionR\bsessions\x12\x14\n" +
+	"\x05build\x18\x04 \x01(\tR\x05build\x12+\n" +
+	"\x12write_time_unix_ns\x18\x05 \x01(\x03R\x0fwriteTimeUnixNs\"f\n" +
+	"\x0eJournalSession\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x9b\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12-\n" +
-	"\x13create_time_unix_ns\x18\x03 \x01(\x03R\x10createTimeUnixNs\"}\n" +
+	"\x13create_time_unix_ns\x18\x03 \x01(\x03R\x10createTimeUnixNs\x12\x14\n" +
+	"\x05build\x18\x04 \x01(\tR\x05build\"\xc5\x01\n" +
 	"\fJournalInput\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12)\n" +
 	"\x06sample\x18\x02 \x01(\v2\x11.reckon.v1.SampleR\x06sample\x12&\n" +
-	"\x0farrival_unix_ns\x18\x03 \x01(\x03R\rarrivalUnixNs\"p\n" +
+	"\x0farrival_unix_ns\x18\x03 \x01(\x03R\rarrivalUnixNs\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x04 \x01(\tR\tsessionId\x12'\n" +
+	"\x0fclient_sequence\x18\x05 \x01(\x04R\x0eclientSequence\"p\n" +
 	"\rJournalOutput\x125\n" +
 	"\bresponse\x18\x01 \x01(\v2\x19.reckon.v1.IngestResponseR\bresponse\x12(\n" +
 	"\x04pose\x18\x02 \x01(\v2\x14.reckon.v1.FusedPoseR\x04pose\"?\n" +
@@ -491,34 +616,37 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 6)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 7)
 var file_reckon_v1_journal_proto_goTypes = []any{
 	(*JournalRecord)(nil),   // 0: reckon.v1.JournalRecord
 	(*JournalSnapshot)(nil), // 1: reckon.v1.JournalSnapshot
-	(*JournalOpening)(nil),  // 2: reckon.v1.JournalOpening
-	(*JournalInput)(nil),    // 3: reckon.v1.JournalInput
-	(*JournalOutput)(nil),   // 4: reckon.v1.JournalOutput
-	(*JournalClosing)(nil),  // 5: reckon.v1.JournalClosing
-	(*RobotConfig)(nil),     // 6: reckon.v1.RobotConfig
-	(*Sample)(nil),          // 7: reckon.v1.Sample
-	(*IngestResponse)(nil),  // 8: reckon.v1.IngestResponse
-	(*FusedPose)(nil),       // 9: reckon.v1.FusedPose
+	(*JournalSession)(nil),  // 2: reckon.v1.JournalSession
+	(*JournalOpening)(nil),  // 3: reckon.v1.JournalOpening
+	(*JournalInput)(nil),    // 4: reckon.v1.JournalInput
+	(*JournalOutput)(nil),   // 5: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),  // 6: reckon.v1.JournalClosing
+	(*IngestResponse)(nil),  // 7: reckon.v1.IngestResponse
+	(*RobotConfig)(nil),     // 8: reckon.v1.RobotConfig
+	(*Sample)(nil),          // 9: reckon.v1.Sample
+	(*FusedPose)(nil),       // 10: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	2, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	3, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	4, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	5, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
-	1, // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
-	6, // 5: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	7, // 6: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	8, // 7: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	9, // 8: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	9, // [9:9] is the sub-list for method output_type
-	9, // [9:9] is the sub-list for method input_type
-	9, // [9:9] is the sub-list for extension type_name
-	9, // [9:9] is the sub-list for extension extendee
-	0, // [0:9] is the sub-list for field type_name
+	3,  // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	4,  // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	5,  // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	6,  // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	1,  // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
+	2,  // 5: reckon.v1.JournalSnapshot.sessions:type_name -> reckon.v1.JournalSession
+	7,  // 6: reckon.v1.JournalSession.verdicts:type_name -> reckon.v1.IngestResponse
+	8,  // 7: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	9,  // 8: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	7,  // 9: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	10, // 10: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	11, // [11:11] is the sub-list for method output_type
+	11, // [11:11] is the sub-list for method input_type
+	11, // [11:11] is the sub-list for extension type_name
+	11, // [11:11] is the sub-list for extension extendee
+	0,  // [0:11] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -542,7 +670,7 @@ func file_reckon_v1_journal_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   6,
+			NumMessages:   7,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

@@ -331,7 +331,17 @@ func (w *Writer) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
 	if err != nil {
 		return err
 	}
-	return w.AddEncodedPair(in.GetSequence(), sample, in.GetArrivalUnixNs(), resp, out.GetPose())
+	return w.AddSessionPair(EncodedInput{Sequence: in.GetSequence(), Sample: sample, ArrivalUnixNs: in.GetArrivalUnixNs(),
+		SessionID: in.GetSessionId(), ClientSequence: in.GetClientSequence()}, resp, out.GetPose())
+}
+
+// EncodedInput is a JournalInput whose sample is already in wire form.
+type EncodedInput struct {
+	Sequence       uint64
+	Sample         []byte
+	ArrivalUnixNs  int64
+	SessionID      string
+	ClientSequence uint64
 }
 
 // AddEncodedPair frames an input and its output from parts already in wire
@@ -342,7 +352,13 @@ func (w *Writer) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
 // the same records. pose may be nil. On error the buffer keeps what it
 // held.
 func (w *Writer) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
-	b, err := appendInput(w.buf, seq, sample, arrivalUnixNs)
+	return w.AddSessionPair(EncodedInput{Sequence: seq, Sample: sample, ArrivalUnixNs: arrivalUnixNs}, response, pose)
+}
+
+// AddSessionPair is AddEncodedPair with the input's ingest session and
+// client sequence.
+func (w *Writer) AddSessionPair(in EncodedInput, response []byte, pose *pb.FusedPose) error {
+	b, err := appendInput(w.buf, in)
 	if err == nil {
 		b, err = appendOutput(b, response, pose)
 	}
@@ -364,9 +380,17 @@ func openFrame(dst []byte, kind byte, size int) ([]byte, int) {
 }
 
 // appendInput appends the record of JournalInput{sequence = 1, sample = 2,
-// arrival_unix_ns = 3}, leaving out zero scalars as protobuf does.
-func appendInput(dst []byte, seq uint64, sample []byte, arrivalUnixNs int64) ([]byte, error) {
+// arrival_unix_ns = 3, session_id = 4, client_sequence = 5}, leaving out
+// zero scalars as protobuf does.
+func appendInput(dst []byte, in EncodedInput) ([]byte, error) {
+	seq, sample, arrivalUnixNs := in.Sequence, in.Sample, in.ArrivalUnixNs
 	size := protowire.SizeTag(2) + protowire.SizeBytes(len(sample))
+	if in.SessionID != "" {
+		size += protowire.SizeTag(4) + protowire.SizeBytes(len(in.SessionID))
+	}
+	if in.ClientSequence != 0 {
+		size += protowire.SizeTag(5) + protowire.SizeVarint(in.ClientSequence)
+	}
 	if seq != 0 {
 		size += protowire.SizeTag(1) + protowire.SizeVarint(seq)
 	}
@@ -383,6 +407,14 @@ func appendInput(dst []byte, seq uint64, sample []byte, arrivalUnixNs int64) ([]
 	if arrivalUnixNs != 0 {
 		b = protowire.AppendTag(b, 3, protowire.VarintType)
 		b = protowire.AppendVarint(b, uint64(arrivalUnixNs))
+	}
+	if in.SessionID != "" {
+		b = protowire.AppendTag(b, 4, protowire.BytesType)
+		b = protowire.AppendString(b, in.SessionID)
+	}
+	if in.ClientSequence != 0 {
+		b = protowire.AppendTag(b, 5, protowire.VarintType)
+		b = protowire.AppendVarint(b, in.ClientSequence)
 	}
 	return sealFrame(b, start, nil)
 }

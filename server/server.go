@@ -99,7 +99,7 @@ type robot struct {
 	id   string
 	cfg  *pb.RobotConfig
 
-	mu            sync.Mutex // protects the fields below
+	mu            sync.Mutex    // protects the fields below
 	fr            *fusion.Robot // nil when quarantined at restore
 	journal       journalWriter
 	state         pb.RobotState

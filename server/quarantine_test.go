@@ -199,3 +199,34 @@ func TestSecondServerRefused(t *testing.T) {
 	s2.Close()
 }
 
+
+// TestUnreadableSnapshotSkipped: a snapshot this build cannot read (as one
+// of another format version) is skipped: the robot is replayed from the
+// start and serves, with a note.
+func TestUnreadableSnapshotSkipped(t *testing.T) {
+	dir := t.TempDir()
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	samp, cfg := cartRun(13, 2)
+	s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	take(s, requests("robots/cart", "", 1, samp[:250]))
+	s.Close()
+	_, scan, _ := journal.Replay(dir, "cart", journal.ReplayOptions{})
+	w, err := journal.Resume(dir, "cart", scan.Segment, scan.Good, journal.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	w.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: 250, State: []byte("a snapshot of format version 99")}}})
+	w.Close()
+
+	s, _ = New(Options{JournalDir: dir})
+	defer s.Close()
+	reports, _ := s.Restore()
+	r := robotState(t, s, "robots/cart")
+	if len(reports) != 1 || r.GetState() != pb.RobotState_ROBOT_STATE_SERVING || r.GetInputCount() != 250 || !strings.Contains(r.GetStateDetail(), "snapshot at input 250 not restored") {
+		t.Errorf("restore past an unreadable snapshot: %+v; robot %v", reports, r)
+	}
+	assertMemoryIsJournal(t, s, dir, "cart", 250)
+}

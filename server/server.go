@@ -169,11 +169,12 @@ func (s *Server) syncLoop() {
 	}
 }
 
-// SyncJournals fsyncs every robot's journal now.
+// SyncJournals fsyncs every robot's journal now (a paused or quarantined
+// robot's too: what it wrote before is acknowledged).
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		if r.journal != nil && r.state == pb.RobotState_ROBOT_STATE_SERVING {
+		if r.journal != nil {
 			if err := r.journal.Sync(); err != nil {
 				s.journalFailed(r, "journal sync", err)
 			}
@@ -655,7 +656,11 @@ func (r *robot) record(req *arrivedRequest, out *encodedResponse, enc []byte, ar
 // changes no verdict. The caller holds r.mu.
 func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
 	if r.journal == nil {
-		return len(tk.entries), nil
+		if tk.lost >= 0 {
+			// Memory only: nothing to rebuild from.
+			s.quarantine(r, fmt.Sprintf("input not recorded: %v", tk.cause))
+		}
+		return len(tk.entries), tk.cause
 	}
 	written, err := r.journal.flush()
 	written = min(written, len(tk.entries))

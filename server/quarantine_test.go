@@ -199,7 +199,6 @@ func TestSecondServerRefused(t *testing.T) {
 	s2.Close()
 }
 
-
 // TestUnreadableSnapshotSkipped: a snapshot this build cannot read (as one
 // of another format version) is skipped: the robot is replayed from the
 // start and serves, with a note.

@@ -88,4 +88,6 @@ func TestSessionBounds(t *testing.T) {
 	}
 }
 
-func itoa3(i int) string { return string([]byte{byte('0' + i/100%10), byte('0' + i/10%10), byte('0' + i%10)}) }
+func itoa3(i int) string {
+	return string([]byte{byte('0' + i/100%10), byte('0' + i/10%10), byte('0' + i%10)})
+}

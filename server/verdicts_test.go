@@ -2,7 +2,7 @@ package server
 
 import (
 	"context"
-		"fmt"
+	"fmt"
 	"strings"
 	"syscall"
 	"testing"

@@ -1,6 +1,7 @@
 package server
 
 import (
+	"slices"
 	"sort"
 
 	"google.golang.org/protobuf/proto"
@@ -15,11 +16,14 @@ import (
 const (
 	sessionVerdicts = 4096
 	maxSessions     = 64
-	// snapshotVerdicts of each session go into a snapshot, so that a retry
-	// is recognised after a restart; the snapshot stays far below the
-	// journal's record limit (64 sessions of 256 verdicts of about 50
-	// bytes is under 1 MiB).
-	snapshotVerdicts = 256
+	// snapshotSessionBytes bounds the verdicts a snapshot carries, so
+	// that a retry is recognised after a restart although the inputs it
+	// repeats are before the snapshot: the newest verdicts of the most
+	// recently used sessions first, all sessionVerdicts of each while they
+	// fit. A verdict is about 30 bytes, so 2 MiB hold the whole window of
+	// about 16 sessions, and the snapshot stays below the journal's record
+	// limit of 4 MiB.
+	snapshotSessionBytes = 2 << 20
 )
 
 // sessions are a robot's recent ingest sessions; the robot's mutex
@@ -112,18 +116,31 @@ func (l *sessionLog) recent(n int) []sessionVerdict {
 	return out
 }
 
-// toProto returns the sessions for a snapshot, the newest snapshotVerdicts
-// of each, in the order they were last used (deterministic).
+// toProto returns the sessions for a snapshot, at most
+// snapshotSessionBytes of verdicts: the most recently used session first,
+// the newest verdicts of each first. The sessions are listed least
+// recently used first, each one's verdicts oldest first, so that restore
+// recreates the order.
 func (ss *sessions) toProto() ([]*pb.JournalSession, error) {
 	ids := make([]string, 0, len(ss.byID))
 	for id := range ss.byID {
 		ids = append(ids, id)
 	}
-	sort.Slice(ids, func(i, j int) bool { return ss.byID[ids[i]].used < ss.byID[ids[j]].used })
-	out := make([]*pb.JournalSession, 0, len(ids))
+	sort.Slice(ids, func(i, j int) bool { return ss.byID[ids[i]].used > ss.byID[ids[j]].used })
+	budget := snapshotSessionBytes
+	var out []*pb.JournalSession
 	for _, id := range ids {
+		vs := ss.byID[id].recent(sessionVerdicts)
+		k := len(vs)
+		for k > 0 && budget >= len(vs[k-1].wire) {
+			budget -= len(vs[k-1].wire)
+			k--
+		}
+		if k == len(vs) {
+			break
+		}
 		js := &pb.JournalSession{SessionId: id}
-		for _, v := range ss.byID[id].recent(snapshotVerdicts) {
+		for _, v := range vs[k:] {
 			resp := &pb.IngestResponse{}
 			if err := proto.Unmarshal(v.wire, resp); err != nil {
 				return nil, err
@@ -132,6 +149,7 @@ func (ss *sessions) toProto() ([]*pb.JournalSession, error) {
 		}
 		out = append(out, js)
 	}
+	slices.Reverse(out)
 	return out, nil
 }
 

@@ -118,12 +118,12 @@ func soakFeed(t *testing.T, api pb.FusionServiceClient, sid string, samp []*pb.S
 func checkAcknowledged(t *testing.T, dir string, acked []*pb.IngestResponse) {
 	t.Helper()
 	journaled := map[uint64]*pb.IngestResponse{}
-	clientSeqs := map[uint64]bool{}
+	clientSeqs := map[uint64]uint64{}
 	_, err := journal.Read(dir, "cart", journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
-		if clientSeqs[in.GetClientSequence()] {
-			t.Errorf("client sequence %d applied twice", in.GetClientSequence())
+		if first, ok := clientSeqs[in.GetClientSequence()]; ok {
+			t.Fatalf("client sequence %d applied twice: inputs %d and %d", in.GetClientSequence(), first, in.GetSequence())
 		}
-		clientSeqs[in.GetClientSequence()] = true
+		clientSeqs[in.GetClientSequence()] = in.GetSequence()
 		journaled[in.GetSequence()] = out.GetResponse()
 		return nil
 	}})

@@ -170,8 +170,9 @@ type JournalSnapshot struct {
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// The state, in the estimator's own versioned encoding.
 	State []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
-	// The recent verdicts of the robot's ingest sessions (the newest 256 of
-	// each), so that a retry after a restart is still recognised.
+	// The recent verdicts of the robot's ingest sessions (at most 2 MiB, the
+	// newest of the most recently used sessions first), so that a retry after
+	// a restart is still recognised.
 	Sessions []*JournalSession `protobuf:"bytes,3,rep,name=sessions,proto3" json:"sessions,omitempty"`
 	// The build that wrote this snapshot and the outputs after it (see
 	// JournalOpening.build). The service writes a snapshot when it resumes a

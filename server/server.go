@@ -170,16 +170,22 @@ func (s *Server) syncLoop() {
 }
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
-// robot's too: what it wrote before is acknowledged).
+// robot's too: what it wrote before is acknowledged), without holding the
+// robot's lock while the disk works (syncLatest), so that ingest does not
+// wait for it.
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		if r.journal != nil {
-			if err := r.journal.Sync(); err != nil {
-				s.journalFailed(r, "journal sync", err)
-			}
-		}
+		has := r.journal != nil
 		r.mu.Unlock()
+		if !has {
+			continue
+		}
+		if err := syncLatest(s.opt.JournalDir, r.id); err != nil {
+			r.mu.Lock()
+			s.journalFailed(r, "journal sync", err)
+			r.mu.Unlock()
+		}
 	}
 }
 

@@ -34,6 +34,7 @@ import (
 	"sync/atomic"
 	"time"
 
+	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
@@ -401,31 +402,74 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 			}
 		}
 	}()
-	// A third goroutine sends the verdicts, so that taking the next batch
-	// overlaps with sending the last one's verdicts.
-	out := make(chan []encodedResponse, 4)
+	// A third goroutine sends the verdicts of large batches, so that taking
+	// the next batch overlaps with sending the last one's verdicts.
+	snd := &sender{stream: stream, out: make(chan []encodedResponse, 4)}
 	sendErr := make(chan error, 1)
-	go func() {
-		var err error
-		for resps := range out {
-			for k := range resps {
-				if err == nil {
-					err = stream.SendMsg(&resps[k])
-				}
-			}
-		}
-		sendErr <- err
-	}()
-	err := s.takeBatches(ctx, in, out)
-	close(out)
+	go func() { sendErr <- snd.run() }()
+	err := s.takeBatches(ctx, in, snd)
+	close(snd.out)
 	if serr := <-sendErr; err == nil {
 		err = serr
 	}
 	return err
 }
 
+// inlineBatch is the largest batch whose verdicts the taking goroutine
+// sends itself when nothing else waits to be sent: at a robot's own rates
+// a sample arrives alone, and sending its verdict at once saves it a
+// third goroutine's wake-up (BenchmarkRobotRates).
+const inlineBatch = 8
+
+// sender sends one ingest stream's verdicts in order, either from the
+// taking goroutine (send) or from a goroutine of its own (queue, run).
+type sender struct {
+	stream grpc.ServerStream
+	out    chan []encodedResponse
+	// queued counts the batches queued and not yet sent. Only the taking
+	// goroutine queues, so when it reads 0 the goroutine is idle and the
+	// taker may send itself without breaking the order.
+	queued atomic.Int64
+}
+
+// run sends the queued batches until out is closed; after an error it
+// drains them unsent.
+func (snd *sender) run() error {
+	var err error
+	for resps := range snd.out {
+		for k := range resps {
+			if err == nil {
+				err = snd.stream.SendMsg(&resps[k])
+			}
+		}
+		snd.queued.Add(-1)
+	}
+	return err
+}
+
+// send sends a batch's verdicts: at once when the batch is small and
+// nothing waits, otherwise through the goroutine.
+func (snd *sender) send(ctx context.Context, resps []encodedResponse) error {
+	if len(resps) <= inlineBatch && snd.queued.Load() == 0 {
+		for k := range resps {
+			if err := snd.stream.SendMsg(&resps[k]); err != nil {
+				return err
+			}
+		}
+		return nil
+	}
+	snd.queued.Add(1)
+	select {
+	case snd.out <- resps:
+		return nil
+	case <-ctx.Done():
+		snd.queued.Add(-1)
+		return ctx.Err()
+	}
+}
+
 // takeBatches takes requests as they come, in batches of what is waiting.
-func (s *Server) takeBatches(ctx context.Context, in *inbox, out chan<- []encodedResponse) error {
+func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender) error {
 	var batch []*arrivedRequest
 	for {
 		var err error
@@ -435,10 +479,8 @@ func (s *Server) takeBatches(ctx context.Context, in *inbox, out chan<- []encode
 			}
 			return err
 		}
-		select {
-		case out <- s.ingestBatch(batch):
-		case <-ctx.Done():
-			return ctx.Err()
+		if err := snd.send(ctx, s.ingestBatch(batch)); err != nil {
+			return err
 		}
 	}
 }

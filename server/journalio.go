@@ -17,8 +17,11 @@ import (
 // This file is the server's one contact with the journal writer's failure
 // contract (DEVELOPERS.md, "Design: Journal format"): how many entries a
 // flush wrote, what "disk full" and "broken for good" look like, the
-// directory lock and the file a restore problem names. The rest of the
-// server sees only journalWriter and the helpers below.
+// directory lock and the periodic fsync. The rest of the server sees only
+// journalWriter and the helpers below. At merge with the journal's
+// contract: osJournal.flush calls Flush, errNoSpace is journal.ErrNoSpace,
+// isBroken tests journal.ErrBroken, lockJournalDir calls journal.Lock, and
+// Options.FS is passed to journal.Options and ReplayOptions.
 
 // journalWriter is what a robot writes its journal through: a
 // *journal.Writer (osJournal), or in tests one that injects faults. An
@@ -30,7 +33,6 @@ type journalWriter interface {
 	// leading entries are fully written. On error the unwritten entries
 	// are dropped and the writer stays usable unless the error is broken.
 	flush() (complete int, err error)
-	Sync() error
 	Close() error
 	Remove() error
 }
@@ -58,8 +60,11 @@ func (j *osJournal) Add(recs ...*pb.JournalRecord) error {
 }
 
 // flush adapts Writer.Flush, which writes all the entries or reports an
-// error, to the contract's count of complete entries. With the contract's
-// Flush (complete int, err error) this becomes a plain call.
+// error, to the contract's count of complete entries. Today's Flush leaves
+// the bytes of a failed write in the segment, so any failure is taken as
+// breaking the writer except a full disk (isBroken); with the contract's
+// Flush (complete int, err error), which takes the segment back to its last
+// complete entry, this becomes a plain call.
 func (j *osJournal) flush() (int, error) {
 	n := j.pending
 	j.pending = 0

@@ -176,7 +176,8 @@ type JournalSnapshot struct {
 	Sessions []*JournalSession `protobuf:"bytes,3,rep,name=sessions,proto3" json:"sessions,omitempty"`
 	// The build that wrote this snapshot and the outputs after it (see
 	// JournalOpening.build). The service writes a snapshot when it resumes a
-	// journal, so that every output is attributed to the build that wrote it.
+	// journal that another build wrote, so that every output is attributed
+	// to the build that wrote it.
 	Build string `protobuf:"bytes,4,opt,name=build,proto3" json:"build,omitempty"`
 	// Wall time of the snapshot, Unix nanoseconds (information only).
 	WriteTimeUnixNs int64 `protobuf:"varint,5,opt,name=write_time_unix_ns,json=writeTimeUnixNs,proto3" json:"write_time_unix_ns,omitempty"`

@@ -229,3 +229,20 @@ func TestUnreadableSnapshotSkipped(t *testing.T) {
 	}
 	assertMemoryIsJournal(t, s, dir, "cart", 250)
 }
+
+// TestThisBuild: the build a journal records names something, and
+// CreateRobot records it in the opening.
+func TestThisBuild(t *testing.T) {
+	if ThisBuild() == "" {
+		t.Fatal("ThisBuild is empty")
+	}
+	dir := t.TempDir()
+	s, _ := New(Options{JournalDir: dir})
+	_, cfg := cartRun(1, 1)
+	s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	s.Close()
+	scan, err := journal.Read(dir, "cart", journal.Visitor{})
+	if err != nil || scan.Opening.GetBuild() != ThisBuild() {
+		t.Errorf("opening build %q (%v), want %q", scan.Opening.GetBuild(), err, ThisBuild())
+	}
+}

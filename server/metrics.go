@@ -22,6 +22,10 @@ type Metrics struct {
 	watching prometheus.Gauge
 	count    prometheus.Gauge
 	torn     prometheus.Counter
+	pausedG  prometheus.Gauge
+	quarG    prometheus.Gauge
+	dups     prometheus.Counter
+	diverged prometheus.Counter
 }
 
 // NewMetrics makes the metrics.
@@ -38,7 +42,11 @@ func NewMetrics() *Metrics {
 		count:    prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_robots", Help: "Robots served."}),
 		torn:     prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_journal_torn_total", Help: "Torn journal tails dropped on restore."}),
 	}
-	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn,
+	m.pausedG = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_robots_paused", Help: "Robots paused because their journal's disk is full."})
+	m.quarG = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_robots_quarantined", Help: "Robots quarantined because their journal could not be restored or written."})
+	m.dups = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_inputs_duplicate_total", Help: "Retried inputs answered with their original verdict, not applied again."})
+	m.diverged = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_restore_outputs_differing_total", Help: "Journaled outputs of an older build that differ on replay by this build."})
+	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
 	return m
 }
@@ -75,5 +83,29 @@ func (m *Metrics) robots(n int) {
 func (m *Metrics) tornTail() {
 	if m != nil {
 		m.torn.Inc()
+	}
+}
+
+func (m *Metrics) paused(d float64) {
+	if m != nil {
+		m.pausedG.Add(d)
+	}
+}
+
+func (m *Metrics) quarantined(d float64) {
+	if m != nil {
+		m.quarG.Add(d)
+	}
+}
+
+func (m *Metrics) duplicate() {
+	if m != nil {
+		m.dups.Inc()
+	}
+}
+
+func (m *Metrics) differing(n int) {
+	if m != nil {
+		m.diverged.Add(float64(n))
 	}
 }

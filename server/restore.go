@@ -2,7 +2,14 @@ package server
 
 import (
 	"fmt"
+	"path/filepath"
+	"strings"
 
+	"google.golang.org/protobuf/proto"
+
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
 
@@ -12,11 +19,24 @@ type RestoreReport struct {
 	Inputs int
 	// Torn describes a torn or corrupt tail that was dropped ("" if none).
 	Torn string
+	// State is SERVING, or QUARANTINED when the journal could not be
+	// restored; Detail then names the problem and the file. For a serving
+	// robot Detail is a note ("" if none), such as outputs of an older
+	// build that differ on replay.
+	State  pb.RobotState
+	Detail string
+	// Differing counts the replayed outputs, written by another build,
+	// that this build computes differently (kept as they are).
+	Differing int
+	// Build is the build that wrote the replayed outputs.
+	Build string
 }
 
 // Restore brings back every robot with a journal in the journal directory:
-// it replays each journal (checking every recorded output), drops a torn or
-// corrupt tail (reporting it), and resumes appending.
+// it replays each journal from its last snapshot, drops a torn or corrupt
+// tail (reporting it), and resumes appending. A robot whose journal cannot
+// be restored is kept quarantined and the others serve; the error is only
+// for a journal directory that cannot be listed.
 func (s *Server) Restore() ([]RestoreReport, error) {
 	if s.opt.JournalDir == "" {
 		return nil, nil
@@ -27,27 +47,175 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 	}
 	var reports []RestoreReport
 	for _, id := range ids {
-		fr, scan, err := journal.Replay(s.opt.JournalDir, id, journal.ReplayOptions{FromSnapshot: true, Check: true, FS: s.opt.FS})
-		if err != nil {
-			return reports, fmt.Errorf("restore %s: %w", id, err)
-		}
-		rep := RestoreReport{Robot: RobotName(id), Inputs: scan.Pairs}
-		if scan.Torn != nil {
-			rep.Torn = fmt.Sprintf("%s: %v", scan.TornSegment, scan.Torn)
-			s.opt.Metrics.tornTail()
-			s.log.Warn("journal tail dropped", "robot", rep.Robot, "torn", rep.Torn)
-		}
-		j, err := journal.Resume(s.opt.JournalDir, id, scan.Segment, scan.Good, s.journalOptions())
-		if err != nil {
-			return reports, fmt.Errorf("restore %s: %w", id, err)
-		}
-		r := &robot{name: RobotName(id), id: id, cfg: scan.Opening.GetConfig(), fr: fr, journal: j}
+		r, rep := s.restoreRobot(id)
 		s.mu.Lock()
 		s.robots[r.name] = r
 		s.opt.Metrics.robots(len(s.robots))
 		s.mu.Unlock()
-		s.log.Info("robot restored", "robot", r.name, "inputs", scan.Pairs, "newest_stamp_ns", fr.NewestNs())
+		if rep.State == pb.RobotState_ROBOT_STATE_QUARANTINED {
+			s.opt.Metrics.quarantined(1)
+			s.log.Error("robot quarantined", "robot", r.name, "problem", rep.Detail)
+		} else {
+			s.log.Info("robot restored", "robot", r.name, "inputs", rep.Inputs, "newest_stamp_ns", r.fr.NewestNs(), "note", rep.Detail)
+		}
 		reports = append(reports, rep)
 	}
 	return reports, nil
+}
+
+// restoreRobot restores one robot, serving or quarantined.
+func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
+	name := RobotName(id)
+	rep := RestoreReport{Robot: name, State: pb.RobotState_ROBOT_STATE_QUARANTINED}
+	r := &robot{name: name, id: id, state: pb.RobotState_ROBOT_STATE_QUARANTINED}
+	quarantined := func(err error) (*robot, RestoreReport) {
+		r.detail = s.problem(id, err)
+		rep.Detail = r.detail
+		return r, rep
+	}
+	rp, err := s.replayRobot(id)
+	r.cfg = rp.scan.Opening.GetConfig()
+	rep.Inputs, rep.Build, rep.Differing = rp.scan.Pairs, rp.build, rp.differing
+	if err != nil {
+		return quarantined(err)
+	}
+	rep.Torn = s.noteDamage(name, rp.scan)
+	w, err := journal.Resume(s.opt.JournalDir, id, rp.scan.Segment, rp.scan.Good, s.journalOptions())
+	if err != nil {
+		return quarantined(err)
+	}
+	r.fr, r.journal, r.sessions, r.sensors, r.sinceSnapshot = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.sensors, rp.scan.Replayed
+	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
+	r.detail, rep.Detail = rp.note, rp.note
+	if rp.differing > 0 {
+		s.opt.Metrics.differing(rp.differing)
+		s.log.Warn("journal written by another build: outputs differ on replay; kept as recorded", "robot", name, "differing", rp.differing, "build", rp.build, "this_build", s.opt.Build)
+	}
+	if rp.build != s.opt.Build {
+		// The outputs from here on are this build's: a snapshot says so.
+		r.mu.Lock()
+		s.snapshot(r)
+		r.mu.Unlock()
+	}
+	return r, rep
+}
+
+// problem names a restore problem and the journal it is in.
+func (s *Server) problem(id string, err error) string {
+	msg := err.Error()
+	if !strings.Contains(msg, s.opt.JournalDir) {
+		msg += " (journal " + filepath.Join(s.opt.JournalDir, id+".*"+journal.Ext) + ")"
+	}
+	return msg
+}
+
+// noteDamage logs what the scan found torn or damaged (kept aside by the
+// journal, never truncated away) and describes the torn tail ("" if none).
+func (s *Server) noteDamage(name string, scan journal.Scan) string {
+	for _, d := range scan.Damage {
+		s.log.Warn("journal damage kept aside", "robot", name, "damage", d.Error())
+	}
+	if scan.Torn == nil {
+		return ""
+	}
+	torn := fmt.Sprintf("%s: %v", scan.TornSegment, scan.Torn)
+	if scan.TornKept != "" {
+		torn += "; the torn bytes are kept in " + scan.TornKept
+	}
+	s.opt.Metrics.tornTail()
+	s.log.Warn("journal tail dropped", "robot", name, "torn", torn)
+	return torn
+}
+
+// replayedRobot is a robot brought back from its journal.
+type replayedRobot struct {
+	fr       *fusion.Robot
+	scan     journal.Scan
+	sessions sessions
+	sensors  map[string]struct{}
+	// build wrote the replayed outputs: the snapshot's, or the opening's.
+	build string
+	// differing counts replayed outputs that differ from those recorded;
+	// first is the first one's sequence.
+	differing int
+	first     uint64
+	note      string
+}
+
+// replayRobot replays a robot's journal from its last snapshot (from the
+// start when that snapshot cannot be restored, as one of another format
+// version), rebuilding its sessions and comparing every output. Outputs that
+// differ are a note when another build wrote them (an upgrade; the records
+// stay as they are) and damage when this build did.
+func (s *Server) replayRobot(id string) (*replayedRobot, error) {
+	rp, err := s.replayFrom(id, true)
+	if err != nil && rp.scan.SnapshotSequence != 0 && rp.fr == nil && !rp.snapUsed {
+		skipped := fmt.Sprintf("snapshot at input %d not restored (%v); replayed from the start", rp.scan.SnapshotSequence, err)
+		if rp, err = s.replayFrom(id, false); err == nil {
+			rp.note = skipped
+			s.log.Warn("journal snapshot skipped", "robot", RobotName(id), "why", skipped)
+		}
+	}
+	if err != nil {
+		return &rp.replayedRobot, err
+	}
+	if rp.build == "" && !rp.snapUsed {
+		rp.build = rp.scan.Opening.GetBuild()
+	}
+	if rp.differing > 0 {
+		if rp.build == s.opt.Build {
+			return &rp.replayedRobot, fmt.Errorf("journal replay diverged at input %d (%d outputs differ) with the build that wrote it (%s)", rp.first, rp.differing, rp.build)
+		}
+		note := fmt.Sprintf("%d journaled outputs of build %q differ on replay by this build (first at input %d); kept as recorded", rp.differing, rp.build, rp.first)
+		rp.note = strings.TrimPrefix(rp.note+"; "+note, "; ")
+	}
+	rp.sensors = knownSensors(rp.fr)
+	return &rp.replayedRobot, nil
+}
+
+// replaying is one pass of replayRobot.
+type replaying struct {
+	replayedRobot
+	snapUsed bool
+}
+
+func (s *Server) replayFrom(id string, fromSnapshot bool) (*replaying, error) {
+	rp := &replaying{}
+	opt := journal.ReplayOptions{FromSnapshot: fromSnapshot,
+		Snapshot: func(sn *pb.JournalSnapshot) error {
+			rp.snapUsed, rp.build = true, sn.GetBuild()
+			return rp.sessions.restore(sn.GetSessions())
+		},
+		Input: rp.input, FS: s.opt.FS}
+	fr, scan, err := journal.Replay(s.opt.JournalDir, id, opt)
+	rp.fr, rp.scan = fr, scan
+	return rp, err
+}
+
+// input compares a replayed input's outcome with the recorded output and
+// remembers its session's verdict.
+func (rp *replaying) input(x *journal.Replayed) error {
+	if !x.Taken || !sameOutput(x) {
+		if rp.differing == 0 {
+			rp.first = x.Input.GetSequence()
+		}
+		rp.differing++
+	}
+	if sid := x.Input.GetSessionId(); sid != "" {
+		return rp.sessions.addMessage(sid, x.Recorded.GetResponse())
+	}
+	return nil
+}
+
+// sameOutput tells whether a replayed input gives the recorded verdict and,
+// where one was recorded, pose.
+func sameOutput(x *journal.Replayed) bool {
+	if !proto.Equal(x.Response, x.Recorded.GetResponse()) {
+		return false
+	}
+	want := x.Recorded.GetPose()
+	if want == nil {
+		return true
+	}
+	return proto.Equal(convert.PoseToProto(want.GetRobot(), x.Robot.Pose(), x.Response.GetSequence()), want)
 }

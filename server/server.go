@@ -8,7 +8,14 @@
 //   - A robot's inputs are serialised by its mutex, in arrival order.
 //   - A verdict is sent only after its input and output are in the journal
 //     (written to the operating system, and fsynced when SyncEach is set;
-//     otherwise at most SyncInterval later).
+//     otherwise at most SyncInterval later). An input whose journal write
+//     failed is answered UNAVAILABLE and is not applied: the robot is
+//     rebuilt from its journal, so that memory equals the journal.
+//   - A request whose (session_id, client_sequence) the robot took before
+//     is answered with the original verdict and not applied again.
+//   - A robot whose journal cannot be restored is quarantined: it stays
+//     listed, its rpcs answer FAILED_PRECONDITION, the others serve. A
+//     robot whose disk is full pauses and resumes by itself.
 //   - An input refused before a robot took it (malformed, non-finite, bad
 //     covariance, time backwards, unknown robot) changes neither the robot
 //     nor the journal.
@@ -23,8 +30,10 @@ import (
 	"log/slog"
 	"sort"
 	"sync"
+	"sync/atomic"
 	"time"
 
+	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
@@ -57,6 +66,18 @@ type Options struct {
 	// FS is the file system of the journal (nil: the operating system's);
 	// tests put a fault-injecting one here.
 	FS journal.FS
+	// Limits bound what clients can grow; zero fields take defaults.
+	Limits Limits
+	// Build names this build in the journals it writes (default
+	// ThisBuild()); a journal whose outputs another build wrote may
+	// differ on replay without being refused.
+	Build string
+	// ProbeInterval is how often a paused robot tries its journal again
+	// (default 2 s).
+	ProbeInterval time.Duration
+
+	// wrapJournal, if set (tests), wraps every journal writer.
+	wrapJournal func(journalWriter) journalWriter
 }
 
 // Server implements pb.FusionServiceServer.
@@ -68,9 +89,11 @@ type Server struct {
 	mu     sync.RWMutex // protects robots
 	robots map[string]*robot
 
+	watching atomic.Int64 // open Watch streams
+	unlock   func() error // releases the journal directory
+
 	stopSync chan struct{}
 	syncDone chan struct{}
-	unlock   func() error // releases the journal directory's lock (nil: none)
 }
 
 // robot is one robot and everything attached to it.
@@ -79,12 +102,15 @@ type robot struct {
 	id   string
 	cfg  *pb.RobotConfig
 
-	mu            sync.Mutex // protects fr, journal, broken, deleted
-	fr            *fusion.Robot
-	journal       *journal.Writer
-	broken        error // a journal failure: the robot takes no more input
+	mu            sync.Mutex    // protects the fields below
+	fr            *fusion.Robot // nil when quarantined at restore
+	journal       journalWriter
+	state         pb.RobotState
+	detail        string // why paused or quarantined; or a note from restore
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
+	sessions      sessions
+	sensors       map[string]struct{} // the sensor ids in fr's statistics
 
 	hub hub
 }
@@ -104,7 +130,14 @@ func New(opt Options) (*Server, error) {
 	if opt.Logger == nil {
 		opt.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
 	}
-	var unlock func() error
+	if opt.Build == "" {
+		opt.Build = ThisBuild()
+	}
+	if opt.ProbeInterval <= 0 {
+		opt.ProbeInterval = 2 * time.Second
+	}
+	opt.Limits = opt.Limits.withDefaults()
+	unlock := func() error { return nil }
 	if opt.JournalDir != "" {
 		fsys := opt.FS
 		if fsys == nil {
@@ -118,37 +151,48 @@ func New(opt Options) (*Server, error) {
 			return nil, err
 		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, stopSync: make(chan struct{}), syncDone: make(chan struct{}), unlock: unlock}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
 	go s.syncLoop()
 	return s, nil
 }
 
-// syncLoop fsyncs the journals every SyncInterval.
+// syncLoop fsyncs the journals every SyncInterval and probes the paused
+// robots' journals every ProbeInterval.
 func (s *Server) syncLoop() {
 	defer close(s.syncDone)
 	t := time.NewTicker(s.opt.SyncInterval)
 	defer t.Stop()
+	p := time.NewTicker(s.opt.ProbeInterval)
+	defer p.Stop()
 	for {
 		select {
 		case <-s.stopSync:
 			return
 		case <-t.C:
 			s.SyncJournals()
+		case <-p.C:
+			s.probePaused()
 		}
 	}
 }
 
-// SyncJournals fsyncs every robot's journal now.
+// SyncJournals fsyncs every robot's journal now (a paused or quarantined
+// robot's too: what it wrote before is acknowledged), without holding the
+// robot's lock while the disk works (syncLatest), so that ingest does not
+// wait for it.
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		if r.journal != nil && r.broken == nil {
-			if err := r.journal.Sync(); err != nil {
-				r.broken = err
-				s.log.Error("journal sync failed; the robot takes no more input", "robot", r.name, "err", err)
-			}
-		}
+		has := r.journal != nil
 		r.mu.Unlock()
+		if !has {
+			continue
+		}
+		if err := syncLatest(s.opt.FS, s.opt.JournalDir, r.id); err != nil {
+			r.mu.Lock()
+			s.journalFailed(r, "journal sync", err)
+			r.mu.Unlock()
+		}
 	}
 }
 
@@ -174,9 +218,7 @@ func (s *Server) Close() error {
 		r.mu.Unlock()
 		r.hub.close()
 	}
-	if s.unlock != nil {
-		errs = append(errs, s.unlock())
-	}
+	errs = append(errs, s.unlock())
 	return errors.Join(errs...)
 }
 
@@ -204,8 +246,13 @@ func (s *Server) lookup(name string) (*robot, error) {
 	return r, nil
 }
 
+// proto describes the robot; the caller holds r.mu.
 func (r *robot) proto() *pb.Robot {
-	return &pb.Robot{Name: r.name, Config: r.cfg, NewestStampNs: r.fr.NewestNs(), InputCount: r.fr.Sequence()}
+	out := &pb.Robot{Name: r.name, Config: r.cfg, State: r.state, StateDetail: r.detail}
+	if r.fr != nil {
+		out.NewestStampNs, out.InputCount = r.fr.NewestNs(), r.fr.Sequence()
+	}
+	return out
 }
 
 // CreateRobot creates robots/{robot_id}.
@@ -222,18 +269,25 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
 	name := RobotName(req.GetRobotId())
-	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr}
+	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr, state: pb.RobotState_ROBOT_STATE_SERVING, sensors: map[string]struct{}{}}
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	if s.robots[name] != nil {
 		return nil, status.Errorf(codes.AlreadyExists, "robot_id: %s exists", name)
 	}
+	if len(s.robots) >= s.opt.Limits.MaxRobots {
+		return nil, status.Errorf(codes.ResourceExhausted, "robot_id: the service already has %d robots, the limit (-max-robots)", len(s.robots))
+	}
 	if s.opt.JournalDir != "" {
-		j, err := journal.Create(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano()}, s.journalOptions())
+		j, err := journal.Create(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano(), Build: s.opt.Build}, s.journalOptions())
 		if err != nil {
-			return nil, status.Errorf(codes.Internal, "journal: %v", err)
+			code := codes.Internal
+			if isNoSpace(err) {
+				code = codes.Unavailable
+			}
+			return nil, status.Errorf(code, "journal: %v", err)
 		}
-		r.journal = j
+		r.journal = s.wrap(openJournal(j))
 	}
 	s.robots[name] = r
 	s.opt.Metrics.robots(len(s.robots))
@@ -243,6 +297,13 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 
 func (s *Server) journalOptions() journal.Options {
 	return journal.Options{SyncEach: s.opt.SyncEach, SegmentBytes: s.opt.SegmentBytes, FS: s.opt.FS}
+}
+
+func (s *Server) wrap(j journalWriter) journalWriter {
+	if s.opt.wrapJournal != nil {
+		return s.opt.wrapJournal(j)
+	}
+	return j
 }
 
 // GetRobot gets a robot.
@@ -281,11 +342,18 @@ func (s *Server) ListRobots(ctx context.Context, req *pb.ListRobotsRequest) (*pb
 	return out, nil
 }
 
-// DeleteRobot deletes a robot; its journal is closed and set aside.
+// DeleteRobot deletes a robot; its journal is closed and set aside. A
+// quarantined robot is not deleted: its journal needs an operator.
 func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*pb.DeleteRobotResponse, error) {
 	r, err := s.lookup(req.GetName())
 	if err != nil {
 		return nil, err
+	}
+	r.mu.Lock()
+	q, detail := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED, r.detail
+	r.mu.Unlock()
+	if q {
+		return nil, status.Errorf(codes.FailedPrecondition, "robot: %s is quarantined (%s); move its journal files aside and restart the service to remove it", r.name, detail)
 	}
 	s.mu.Lock()
 	delete(s.robots, r.name)
@@ -294,7 +362,10 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	r.mu.Lock()
 	r.deleted = true
 	if r.journal != nil {
-		err = r.journal.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Closing{Closing: &pb.JournalClosing{DeleteTimeUnixNs: time.Now().UnixNano()}}})
+		err = r.journal.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Closing{Closing: &pb.JournalClosing{DeleteTimeUnixNs: time.Now().UnixNano()}}})
+		if err == nil {
+			_, err = r.journal.flush()
+		}
 		if err == nil {
 			err = r.journal.Remove()
 		}
@@ -337,31 +408,74 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 			}
 		}
 	}()
-	// A third goroutine sends the verdicts, so that taking the next batch
-	// overlaps with sending the last one's verdicts.
-	out := make(chan []encodedResponse, 4)
+	// A third goroutine sends the verdicts of large batches, so that taking
+	// the next batch overlaps with sending the last one's verdicts.
+	snd := &sender{stream: stream, out: make(chan []encodedResponse, 4)}
 	sendErr := make(chan error, 1)
-	go func() {
-		var err error
-		for resps := range out {
-			for k := range resps {
-				if err == nil {
-					err = stream.SendMsg(&resps[k])
-				}
-			}
-		}
-		sendErr <- err
-	}()
-	err := s.takeBatches(ctx, in, out)
-	close(out)
+	go func() { sendErr <- snd.run() }()
+	err := s.takeBatches(ctx, in, snd)
+	close(snd.out)
 	if serr := <-sendErr; err == nil {
 		err = serr
 	}
 	return err
 }
 
+// inlineBatch is the largest batch whose verdicts the taking goroutine
+// sends itself when nothing else waits to be sent: at a robot's own rates
+// a sample arrives alone, and sending its verdict at once saves it a
+// third goroutine's wake-up (BenchmarkRobotRates).
+const inlineBatch = 8
+
+// sender sends one ingest stream's verdicts in order, either from the
+// taking goroutine (send) or from a goroutine of its own (queue, run).
+type sender struct {
+	stream grpc.ServerStream
+	out    chan []encodedResponse
+	// queued counts the batches queued and not yet sent. Only the taking
+	// goroutine queues, so when it reads 0 the goroutine is idle and the
+	// taker may send itself without breaking the order.
+	queued atomic.Int64
+}
+
+// run sends the queued batches until out is closed; after an error it
+// drains them unsent.
+func (snd *sender) run() error {
+	var err error
+	for resps := range snd.out {
+		for k := range resps {
+			if err == nil {
+				err = snd.stream.SendMsg(&resps[k])
+			}
+		}
+		snd.queued.Add(-1)
+	}
+	return err
+}
+
+// send sends a batch's verdicts: at once when the batch is small and
+// nothing waits, otherwise through the goroutine.
+func (snd *sender) send(ctx context.Context, resps []encodedResponse) error {
+	if len(resps) <= inlineBatch && snd.queued.Load() == 0 {
+		for k := range resps {
+			if err := snd.stream.SendMsg(&resps[k]); err != nil {
+				return err
+			}
+		}
+		return nil
+	}
+	snd.queued.Add(1)
+	select {
+	case snd.out <- resps:
+		return nil
+	case <-ctx.Done():
+		snd.queued.Add(-1)
+		return ctx.Err()
+	}
+}
+
 // takeBatches takes requests as they come, in batches of what is waiting.
-func (s *Server) takeBatches(ctx context.Context, in *inbox, out chan<- []encodedResponse) error {
+func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender) error {
 	var batch []*arrivedRequest
 	for {
 		var err error
@@ -371,10 +485,8 @@ func (s *Server) takeBatches(ctx context.Context, in *inbox, out chan<- []encode
 			}
 			return err
 		}
-		select {
-		case out <- s.ingestBatch(batch):
-		case <-ctx.Done():
-			return ctx.Err()
+		if err := snd.send(ctx, s.ingestBatch(batch)); err != nil {
+			return err
 		}
 	}
 }
@@ -408,6 +520,19 @@ func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
 	return out
 }
 
+// taking is what takeRun did with a run of samples.
+type taking struct {
+	// entries are the positions in the run of the samples taken and added
+	// to the journal's buffer, in order.
+	entries []int
+	// lost is the position of a sample taken but not added to the journal
+	// (-1: none), cause why; the samples after it were not taken.
+	lost  int
+	cause error
+	// dups are the positions answered with an earlier verdict.
+	dups []int
+}
+
 // ingestRun takes a run of samples for one robot: under its lock, the
 // samples and one journal write; then the watchers and the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
@@ -423,112 +548,262 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 	}
 	var pose *pb.FusedPose
 	r.mu.Lock()
-	events, anyTaken := s.takeRun(r, run, out, start)
-	if anyTaken {
+	tk := s.takeRun(r, run, out, start)
+	written, cause := s.flushJournal(r, &tk)
+	if len(tk.entries) > 0 && r.fr != nil {
 		pose = poseNow(r)
 	}
-	s.flushJournal(r, len(run))
-	broken := r.broken
+	if cause != nil {
+		s.unapply(r, run, out, &tk, written, cause)
+	}
 	r.mu.Unlock()
-	if broken != nil && pose != nil {
-		// Nothing taken in this run may be acknowledged: it is not (all) in
-		// the journal. The robot takes no more input until a restart
-		// restores it from what the journal holds.
-		s.log.Error("journal write failed; the robot takes no more input", "robot", r.name, "err", broken)
-		for k, req := range run {
-			if out[k].Sequence != 0 {
-				refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: "+broken.Error())
-			}
-		}
+	if pose == nil {
 		return
 	}
-	if pose != nil {
-		r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	var events []*pb.FusionEvent
+	for _, k := range tk.entries[:written] {
+		events = append(events, out[k].Events...)
 	}
+	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
 	d := time.Since(start)
-	for k := range run {
-		if out[k].Sequence != 0 {
-			s.opt.Metrics.verdict(out[k].Verdict, d)
-		}
+	for _, k := range tk.entries[:written] {
+		s.opt.Metrics.verdict(out[k].Verdict, d)
 	}
 }
 
+// unapply answers the samples taken but not journaled UNAVAILABLE, not
+// applied: the robot was rebuilt from its journal (flushJournal), so that
+// none of them is in its state. A duplicate answered from a verdict that is
+// now forgotten with it is answered so too. The caller holds r.mu.
+func (s *Server) unapply(r *robot, run []*arrivedRequest, out []encodedResponse, tk *taking, written int, cause error) {
+	reason := "not journaled, not applied: " + cause.Error() + "; resend"
+	lost := tk.entries[written:]
+	if tk.lost >= 0 {
+		lost = append(lost, tk.lost)
+	}
+	for _, k := range lost {
+		s.opt.Metrics.refused(codes.Unavailable)
+		refuse(&out[k], run[k].GetClientSequence(), codes.Unavailable, reason)
+	}
+	for _, k := range tk.dups {
+		if r.sessions.lookup(run[k].GetSessionId(), run[k].GetClientSequence()) == nil {
+			refuse(&out[k], run[k].GetClientSequence(), codes.Unavailable, reason)
+		}
+	}
+	s.log.Warn("inputs not journaled, answered unavailable", "robot", r.name, "journaled", written, "not_journaled", len(lost), "cause", cause)
+}
+
+// refusal returns why the robot takes no input now ("" when it does), with
+// the status code. The caller holds r.mu.
+func (r *robot) refusal() (codes.Code, string) {
+	switch {
+	case r.deleted:
+		return codes.NotFound, "robot: " + r.name + " was deleted"
+	case r.state == pb.RobotState_ROBOT_STATE_QUARANTINED:
+		return codes.FailedPrecondition, "robot: " + r.name + " is quarantined: " + r.detail
+	case r.state == pb.RobotState_ROBOT_STATE_PAUSED:
+		return codes.Unavailable, "robot: " + r.name + " is paused (" + r.detail + "); not applied, resend when it serves"
+	}
+	return codes.OK, ""
+}
+
 // takeRun gives the samples to the robot in order and adds those it takes,
-// with their verdicts, to the journal's buffer; it returns their events and
-// whether any was taken. The caller holds r.mu.
-func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse, arrival time.Time) (events []*pb.FusionEvent, anyTaken bool) {
+// with their verdicts, to the journal's buffer. The caller holds r.mu.
+func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse, arrival time.Time) taking {
+	tk := taking{lost: -1}
 	// The encoded verdicts of the run, one buffer; each verdict's piece is
 	// capped so that later appends never write into it.
 	enc := make([]byte, 0, 48*len(run))
 	for k, req := range run {
-		switch {
-		case r.deleted:
-			refuse(&out[k], req.GetClientSequence(), codes.NotFound, "robot: "+r.name+" was deleted")
+		if code, reason := r.refusal(); code != codes.OK {
+			s.opt.Metrics.refused(code)
+			refuse(&out[k], req.GetClientSequence(), code, reason)
 			continue
-		case r.broken != nil:
-			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "journal: failed earlier ("+r.broken.Error()+"); restart the service to restore the robot")
+		}
+		if tk.cause != nil {
+			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "not applied: an earlier input of the batch could not be journaled ("+tk.cause.Error()+"); resend")
 			continue
+		}
+		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
+			s.opt.Metrics.refused(le.code)
+			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
+			continue
+		}
+		sid := req.GetSessionId()
+		if sid != "" {
+			if wire := r.sessions.lookup(sid, req.GetClientSequence()); wire != nil {
+				s.answerAgain(&out[k], wire)
+				tk.dups = append(tk.dups, k)
+				continue
+			}
 		}
 		resp := &out[k].IngestResponse
 		if !convert.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {
 			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
 			continue
 		}
-		anyTaken = true
-		events = append(events, resp.Events...)
-		enc = r.record(req, &out[k], enc, arrival)
+		if id := sensorOf(req.GetSample()); id != "" {
+			if _, ok := r.sensors[id]; !ok {
+				r.sensors[id] = struct{}{}
+			}
+		}
+		var err error
+		if enc, err = r.record(req, &out[k], enc, arrival); err != nil {
+			tk.lost, tk.cause = k, err
+			continue
+		}
+		tk.entries = append(tk.entries, k)
+		if sid != "" {
+			r.sessions.add(sid, req.GetClientSequence(), out[k].wire)
+		}
 	}
-	return events, anyTaken
+	return tk
+}
+
+// answerAgain answers a retried request with the verdict sent the first
+// time.
+func (s *Server) answerAgain(out *encodedResponse, wire []byte) {
+	out.IngestResponse.Reset()
+	if err := proto.Unmarshal(wire, &out.IngestResponse); err != nil {
+		panic(fmt.Sprintf("server: a remembered verdict does not decode: %v", err)) // we encoded it
+	}
+	out.wire = wire
+	s.opt.Metrics.duplicate()
 }
 
 // record encodes a taken sample's verdict at the end of enc (out keeps its
 // piece) and adds the sample, as the bytes it arrived as (encoded here
-// when it came without them), and the verdict to the journal's buffer. A
-// failure breaks the robot. The caller holds r.mu.
-func (r *robot) record(req *arrivedRequest, out *encodedResponse, enc []byte, arrival time.Time) []byte {
+// when it came without them), and the verdict to the journal's buffer. On
+// error nothing was added. The caller holds r.mu.
+func (r *robot) record(req *arrivedRequest, out *encodedResponse, enc []byte, arrival time.Time) ([]byte, error) {
 	resp := &out.IngestResponse
 	mark := len(enc)
 	enc, err := (proto.MarshalOptions{}).MarshalAppend(enc, resp)
 	if err != nil {
 		// Not expected: every string in a verdict comes from decoded,
-		// hence valid, input or from our own messages. Should it
-		// happen, the input cannot be journaled with its output, so the
-		// robot stops as on a failed journal write.
-		r.broken = fmt.Errorf("encoding verdict %d: %w", resp.Sequence, err)
-		return enc[:mark]
+		// hence valid, input or from our own messages.
+		return enc[:mark], fmt.Errorf("encoding verdict %d: %w", resp.Sequence, err)
 	}
 	out.wire = enc[mark:len(enc):len(enc)]
 	if r.journal == nil {
-		return enc
+		return enc, nil
 	}
 	sample := requestSample(req.wire)
 	if sample == nil {
 		if sample, err = (proto.MarshalOptions{Deterministic: true}).Marshal(req.GetSample()); err != nil {
-			r.broken = fmt.Errorf("encoding sample %d: %w", resp.Sequence, err)
-			return enc
+			return enc, fmt.Errorf("encoding sample %d: %w", resp.Sequence, err)
 		}
 	}
 	var p *pb.FusedPose
 	if resp.Sequence%journal.PoseEvery == 0 {
 		p = convert.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
 	}
-	if err := r.journal.AddEncodedPair(resp.Sequence, sample, arrival.UnixNano(), out.wire, p); err != nil {
-		r.broken = err
-	}
-	return enc
+	in := journal.EncodedInput{Sequence: resp.Sequence, Sample: sample, ArrivalUnixNs: arrival.UnixNano(),
+		SessionID: req.GetSessionId(), ClientSequence: req.GetClientSequence()}
+	return enc, r.journal.AddSessionPair(in, out.wire, p)
 }
 
 // flushJournal writes what the run added to the journal, and a snapshot
-// when one is due. The caller holds r.mu.
-func (s *Server) flushJournal(r *robot, n int) {
-	if r.journal == nil || r.broken != nil {
-		return
+// when one is due. It returns how many of the run's entries are written and,
+// when some sample taken is not, why: the robot is then rebuilt from its
+// journal. A failure after the entries were written (rotation, sync)
+// changes no verdict. The caller holds r.mu.
+func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
+	if r.journal == nil {
+		if tk.lost >= 0 {
+			// Memory only: nothing to rebuild from.
+			s.quarantine(r, fmt.Sprintf("input not recorded: %v", tk.cause))
+		}
+		return len(tk.entries), tk.cause
 	}
-	if _, err := r.journal.Flush(); err != nil {
-		r.broken = err
-	} else if r.sinceSnapshot += n; r.sinceSnapshot >= s.opt.SnapshotEvery {
+	written, err := r.journal.flush()
+	written = min(written, len(tk.entries))
+	r.sinceSnapshot += written
+	if err != nil {
+		cause = err
+		s.journalFailed(r, "journal write", err)
+	}
+	if cause == nil && tk.lost >= 0 {
+		cause = tk.cause
+	}
+	if written < len(tk.entries) || tk.lost >= 0 {
+		s.rebuild(r, cause)
+		return written, cause
+	}
+	if r.state == pb.RobotState_ROBOT_STATE_SERVING && r.sinceSnapshot >= s.opt.SnapshotEvery {
 		s.snapshot(r)
 	}
+	return written, nil
+}
+
+// journalFailed pauses the robot on a full disk, and quarantines it when
+// its journal cannot be written any more. The caller holds r.mu.
+func (s *Server) journalFailed(r *robot, what string, err error) {
+	switch {
+	case r.state == pb.RobotState_ROBOT_STATE_QUARANTINED:
+	case isNoSpace(err):
+		if r.state != pb.RobotState_ROBOT_STATE_PAUSED {
+			r.state, r.detail = pb.RobotState_ROBOT_STATE_PAUSED, "journal disk full"
+			s.opt.Metrics.paused(1)
+			s.log.Error("journal disk full; the robot pauses until space returns", "robot", r.name, "op", what, "err", err)
+		}
+	case isBroken(err):
+		s.quarantine(r, fmt.Sprintf("%s failed: %v", what, err))
+	default:
+		s.log.Warn(what+" failed; retried later", "robot", r.name, "err", err)
+	}
+}
+
+// quarantine stops the robot taking input for good (until a restart
+// restores it). The caller holds r.mu.
+func (s *Server) quarantine(r *robot, detail string) {
+	if r.state == pb.RobotState_ROBOT_STATE_PAUSED {
+		s.opt.Metrics.paused(-1)
+	}
+	if r.state != pb.RobotState_ROBOT_STATE_QUARANTINED {
+		s.opt.Metrics.quarantined(1)
+	}
+	r.state, r.detail = pb.RobotState_ROBOT_STATE_QUARANTINED, detail
+	s.log.Error("robot quarantined", "robot", r.name, "problem", detail)
+}
+
+// rebuild makes the robot's memory equal its journal again after inputs it
+// took were not journaled: its state, sessions and sensors from the last
+// snapshot and the inputs after it. The caller holds r.mu.
+func (s *Server) rebuild(r *robot, cause error) {
+	rp, err := s.replayRobot(r.id)
+	if err != nil {
+		s.quarantine(r, fmt.Sprintf("rebuilding from the journal after %v: %v", cause, err))
+		return
+	}
+	r.fr, r.sessions, r.sensors, r.sinceSnapshot = rp.fr, rp.sessions, rp.sensors, rp.scan.Replayed
+}
+
+// probePaused tries the journal of every paused robot by writing a
+// snapshot; a robot whose write succeeds serves again.
+func (s *Server) probePaused() {
+	for _, r := range s.list() {
+		r.mu.Lock()
+		if r.state == pb.RobotState_ROBOT_STATE_PAUSED && r.journal != nil {
+			if err := s.writeSnapshot(r); err == nil {
+				r.state, r.detail = pb.RobotState_ROBOT_STATE_SERVING, ""
+				s.opt.Metrics.paused(-1)
+				s.log.Info("journal writable again; the robot serves", "robot", r.name)
+			} else if !isNoSpace(err) {
+				s.journalFailed(r, "journal probe", err)
+			}
+		}
+		r.mu.Unlock()
+	}
+}
+
+// usable returns the status of a robot that cannot answer reads
+// (quarantined), or nil. The caller holds r.mu.
+func (r *robot) usable() error {
+	if r.state == pb.RobotState_ROBOT_STATE_QUARANTINED || r.fr == nil {
+		return status.Errorf(codes.FailedPrecondition, "robot: %s is quarantined: %s", r.name, r.detail)
+	}
+	return nil
 }
 
 // GetPoseAt gets the estimate at a stamp.
@@ -539,6 +814,9 @@ func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.G
 	}
 	r.mu.Lock()
 	defer r.mu.Unlock()
+	if err := r.usable(); err != nil {
+		return nil, err
+	}
 	p, err := r.fr.PoseAt(req.GetStampNs())
 	if err != nil {
 		return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %v", err)
@@ -566,22 +844,54 @@ func (s *Server) GetStatistics(ctx context.Context, req *pb.GetStatisticsRequest
 	}
 	r.mu.Lock()
 	defer r.mu.Unlock()
+	if err := r.usable(); err != nil {
+		return nil, err
+	}
 	return &pb.GetStatisticsResponse{Statistics: convert.StatsToProto(r.fr.Stats())}, nil
 }
 
-// snapshot writes the robot's state into its journal; the caller holds r.mu.
-// A snapshot that cannot be encoded costs only restart time and is logged; a
-// failed write breaks the robot like any journal write.
+// snapshot writes the robot's state into its journal when it is due; the
+// caller holds r.mu. A failure changes no verdict: a snapshot costs only
+// restart time, and it is tried again after SnapshotEvery/4 more inputs
+// (a full disk pauses the robot).
 func (s *Server) snapshot(r *robot) {
-	r.sinceSnapshot = 0
-	b, err := r.fr.Snapshot()
-	if err != nil {
+	err := s.writeSnapshot(r)
+	if err == nil {
+		return
+	}
+	r.sinceSnapshot = s.opt.SnapshotEvery - max(1, s.opt.SnapshotEvery/4)
+	if errors.Is(err, errNotEncoded) {
 		s.log.Warn("snapshot not taken", "robot", r.name, "err", err)
 		return
 	}
-	if err := r.journal.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: r.fr.Sequence(), State: b}}}); err != nil {
-		r.broken = err
+	s.journalFailed(r, "snapshot", err)
+}
+
+// errNotEncoded says that a snapshot was not written because it could not
+// be made: the journal is fine.
+var errNotEncoded = errors.New("snapshot not encoded")
+
+// writeSnapshot writes the robot's state, recent sessions and this build
+// into its journal. The caller holds r.mu.
+func (s *Server) writeSnapshot(r *robot) error {
+	b, err := r.fr.Snapshot()
+	if err != nil {
+		return fmt.Errorf("%w: %w", errNotEncoded, err)
 	}
+	sess, err := r.sessions.toProto()
+	if err != nil {
+		return fmt.Errorf("%w: sessions: %w", errNotEncoded, err)
+	}
+	rec := &pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: r.fr.Sequence(), State: b,
+		Sessions: sess, Build: s.opt.Build, WriteTimeUnixNs: time.Now().UnixNano()}}}
+	if err := r.journal.Add(rec); err != nil {
+		return err
+	}
+	if _, err := r.journal.flush(); err != nil {
+		return fmt.Errorf("snapshot: %w", err)
+	}
+	r.sinceSnapshot = 0
+	return nil
 }
 
 func poseNow(r *robot) *pb.FusedPose {

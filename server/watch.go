@@ -4,6 +4,9 @@ import (
 	"sync"
 	"time"
 
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
 	pb "reckon.example/proto/reckon/v1"
 )
 
@@ -46,15 +49,19 @@ func (h *hub) doneChan() chan struct{} {
 	return h.done
 }
 
-func (h *hub) add() (*watcher, <-chan struct{}) {
+// add adds a watcher unless the hub already has limit.
+func (h *hub) add(limit int) (*watcher, <-chan struct{}, bool) {
 	h.mu.Lock()
 	defer h.mu.Unlock()
+	if len(h.watchers) >= limit {
+		return nil, nil, false
+	}
 	w := &watcher{notify: make(chan struct{}, 1)}
 	if h.watchers == nil {
 		h.watchers = map[*watcher]struct{}{}
 	}
 	h.watchers[w] = struct{}{}
-	return w, h.doneChan()
+	return w, h.doneChan(), true
 }
 
 func (h *hub) remove(w *watcher) {
@@ -111,12 +118,31 @@ func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer
 	if err != nil {
 		return err
 	}
-	w, done := r.hub.add()
+	r.mu.Lock()
+	err = r.usable()
+	r.mu.Unlock()
+	if err != nil {
+		return err
+	}
+	lim := s.opt.Limits
+	if n := s.watching.Add(1); n > int64(lim.MaxWatchers) {
+		s.watching.Add(-1)
+		return status.Errorf(codes.ResourceExhausted, "watch: the service already has %d open watches, the limit (-max-watchers)", lim.MaxWatchers)
+	}
+	defer s.watching.Add(-1)
+	w, done, ok := r.hub.add(lim.MaxWatchersPerRobot)
+	if !ok {
+		return status.Errorf(codes.ResourceExhausted, "watch: %s already has %d open watches, the limit (-max-watchers-per-robot)", r.name, lim.MaxWatchersPerRobot)
+	}
 	defer r.hub.remove(w)
 	s.opt.Metrics.watchers(1)
 	defer s.opt.Metrics.watchers(-1)
 	// Start with the current estimate.
 	r.mu.Lock()
+	if err := r.usable(); err != nil {
+		r.mu.Unlock()
+		return err
+	}
 	first := &pb.WatchResponse{Pose: poseNow(r)}
 	r.mu.Unlock()
 	if err := stream.Send(first); err != nil {

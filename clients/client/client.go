@@ -21,11 +21,15 @@ package client
 
 import (
 	"context"
+	"crypto/rand"
 	"crypto/tls"
+	"encoding/hex"
 	"errors"
 	"fmt"
 	"io"
 	"iter"
+	"net"
+	"strings"
 	"sync"
 	"time"
 
@@ -46,8 +50,35 @@ type Options struct {
 	// Token is sent as "authorization: Bearer <token>".
 	Token string
 	// RequireSecureToken refuses to send a token without TLS. By default a
-	// token may travel in plain text only to a loopback address.
+	// token may travel in plain text only to a loopback address: Dial
+	// refuses a token without TLS to any other address.
 	RequireSecureToken bool
+}
+
+// ErrPlaintextToken is returned by Dial for a token without TLS to an
+// address that is not loopback.
+var ErrPlaintextToken = errors.New("refusing to send a token in plain text to an address that is not loopback; use TLS")
+
+// IsLoopback tells whether a gRPC target names this machine only: a
+// unix socket, "localhost", or a loopback IP (127.0.0.0/8, ::1), with or
+// without a port and a "dns:///" or "passthrough:///" scheme. Other host
+// names are not resolved and count as remote.
+func IsLoopback(target string) bool {
+	if strings.HasPrefix(target, "unix:") || strings.HasPrefix(target, "unix-abstract:") {
+		return true
+	}
+	for _, scheme := range []string{"dns:///", "passthrough:///"} {
+		target = strings.TrimPrefix(target, scheme)
+	}
+	host := target
+	if h, _, err := net.SplitHostPort(target); err == nil {
+		host = h
+	}
+	if host == "localhost" {
+		return true
+	}
+	ip := net.ParseIP(strings.Trim(host, "[]"))
+	return ip != nil && ip.IsLoopback()
 }
 
 type bearer struct {
@@ -76,6 +107,9 @@ func Dial(addr string, opt Options) (*Client, error) {
 		dopts = append(dopts, grpc.WithTransportCredentials(credentials.NewTLS(opt.TLS)))
 	} else {
 		dopts = append(dopts, grpc.WithTransportCredentials(insecure.NewCredentials()))
+	}
+	if opt.Token != "" && opt.TLS == nil && !IsLoopback(addr) {
+		return nil, fmt.Errorf("client: dial %s: %w", addr, ErrPlaintextToken)
 	}
 	if opt.Token != "" {
 		dopts = append(dopts, grpc.WithPerRPCCredentials(bearer{token: opt.Token, secure: opt.TLS != nil || opt.RequireSecureToken}))
@@ -172,12 +206,26 @@ func (c *Client) Reseed(ctx context.Context, robot string, stampNs int64, pose *
 }
 
 // Session is one ingest stream for one robot. Send and Recv may be used
-// from two goroutines (one each); Apply pairs them for you.
+// from two goroutines (one each); Apply pairs them for you. Every request
+// carries the session's random id (ID) and its client sequence, so that the
+// service answers a resent sample with its original verdict instead of
+// applying it twice.
 type Session struct {
 	robot  string
+	id     string
 	stream pb.FusionService_IngestClient
 	mu     sync.Mutex // protects next
 	next   uint64
+}
+
+// ID returns the session id sent with every request (IngestRequest.
+// session_id): 32 random hexadecimal digits.
+func (s *Session) ID() string { return s.id }
+
+func newSessionID() string {
+	var b [16]byte
+	rand.Read(b[:]) // never fails (crypto/rand)
+	return hex.EncodeToString(b[:])
 }
 
 // OpenIngest opens an ingest stream for robot ("robots/{robot}").
@@ -186,7 +234,7 @@ func (c *Client) OpenIngest(ctx context.Context, robot string) (*Session, error)
 	if err != nil {
 		return nil, err
 	}
-	return &Session{robot: robot, stream: st}, nil
+	return &Session{robot: robot, id: newSessionID(), stream: st}, nil
 }
 
 // Send sends one sample and returns its client sequence number.
@@ -195,7 +243,7 @@ func (s *Session) Send(sample *pb.Sample) (uint64, error) {
 	s.next++
 	seq := s.next
 	s.mu.Unlock()
-	return seq, s.stream.Send(&pb.IngestRequest{Robot: s.robot, ClientSequence: seq, Sample: sample})
+	return seq, s.stream.Send(&pb.IngestRequest{Robot: s.robot, ClientSequence: seq, Sample: sample, SessionId: s.id})
 }
 
 // Recv returns the next verdict, in the order samples were sent.

@@ -45,8 +45,16 @@ type Config struct {
 	// Token, if set, is required as "authorization: Bearer <token>" on every
 	// call except health checks.
 	Token string
-	// MetricsListen serves Prometheus metrics at /metrics ("" = off).
+	// MetricsListen serves Prometheus metrics at /metrics ("" = off); an
+	// address without a host ("":9464"") binds loopback.
 	MetricsListen string
+	// Insecure allows serving in plain text on an address that is not
+	// loopback (Listen without TLS, MetricsListen); without it Serve
+	// refuses to start.
+	Insecure bool
+	// MaxStreams bounds the concurrent streams of one connection (default
+	// 1024).
+	MaxStreams uint32
 	// MaxMessageBytes bounds one received message (default
 	// server.DefaultMaxMessageBytes; see server.ServiceOptions for its limit).
 	MaxMessageBytes int
@@ -97,6 +105,9 @@ func checkToken(ctx context.Context, method, token string) error {
 // ShutdownGrace) and flushes the journals.
 func Serve(ctx context.Context, dc Config) error {
 	dc.defaults()
+	if err := checkExposure(&dc); err != nil {
+		return err
+	}
 	opts, err := grpcOptions(&dc)
 	if err != nil {
 		return err
@@ -141,6 +152,9 @@ func (dc *Config) defaults() {
 	if dc.Listen == "" {
 		dc.Listen = "127.0.0.1:7460"
 	}
+	if dc.MaxStreams == 0 {
+		dc.MaxStreams = 1024
+	}
 	if dc.ShutdownGrace <= 0 {
 		dc.ShutdownGrace = 5 * time.Second
 	}
@@ -157,7 +171,7 @@ func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
 		return nil, err
 	}
 	opts = append(opts,
-		grpc.MaxConcurrentStreams(1024),
+		grpc.MaxConcurrentStreams(dc.MaxStreams),
 		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
 		grpc.UnaryInterceptor(func(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (any, error) {
@@ -178,6 +192,7 @@ func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
 		if err != nil {
 			return nil, err
 		}
+		logCertExpiry(dc.Logger, tc, time.Now())
 		opts = append(opts, grpc.Creds(credentials.NewTLS(tc)))
 	} else if dc.TLSClientCA != "" {
 		return nil, errors.New("tls-client-ca needs tls-cert and tls-key")
@@ -194,7 +209,7 @@ func startService(ctx context.Context, dc *Config) (*server.Server, error) {
 	}
 	reports, err := srv.Restore()
 	for _, r := range reports {
-		dc.Logger.Info("restored", "robot", r.Robot, "inputs", r.Inputs, "torn", r.Torn)
+		dc.Logger.Info("restored", "robot", r.Robot, "state", r.State.String(), "inputs", r.Inputs, "torn", r.Torn, "detail", r.Detail)
 	}
 	if err != nil {
 		srv.Close()

@@ -205,9 +205,17 @@ func openFrame(dst []byte, kind byte, size int) ([]byte, int) {
 }
 
 // appendInput appends the record of JournalInput{sequence = 1, sample = 2,
-// arrival_unix_ns = 3}, leaving out zero scalars as protobuf does.
-func appendInput(dst []byte, seq uint64, sample []byte, arrivalUnixNs int64) ([]byte, error) {
+// arrival_unix_ns = 3, session_id = 4, client_sequence = 5}, leaving out
+// zero scalars as protobuf does.
+func appendInput(dst []byte, in EncodedInput) ([]byte, error) {
+	seq, sample, arrivalUnixNs := in.Sequence, in.Sample, in.ArrivalUnixNs
 	size := protowire.SizeTag(2) + protowire.SizeBytes(len(sample))
+	if in.SessionID != "" {
+		size += protowire.SizeTag(4) + protowire.SizeBytes(len(in.SessionID))
+	}
+	if in.ClientSequence != 0 {
+		size += protowire.SizeTag(5) + protowire.SizeVarint(in.ClientSequence)
+	}
 	if seq != 0 {
 		size += protowire.SizeTag(1) + protowire.SizeVarint(seq)
 	}
@@ -224,6 +232,14 @@ func appendInput(dst []byte, seq uint64, sample []byte, arrivalUnixNs int64) ([]
 	if arrivalUnixNs != 0 {
 		b = protowire.AppendTag(b, 3, protowire.VarintType)
 		b = protowire.AppendVarint(b, uint64(arrivalUnixNs))
+	}
+	if in.SessionID != "" {
+		b = protowire.AppendTag(b, 4, protowire.BytesType)
+		b = protowire.AppendString(b, in.SessionID)
+	}
+	if in.ClientSequence != 0 {
+		b = protowire.AppendTag(b, 5, protowire.VarintType)
+		b = protowire.AppendVarint(b, in.ClientSequence)
 	}
 	return sealFrame(b, start, nil)
 }

@@ -31,6 +31,9 @@ type ReplayOptions struct {
 	// before any input (with FromSnapshot, a snapshot may then replace it:
 	// Replayed.Robot is always the robot replaying).
 	Opened func(*fusion.Robot) error
+	// Snapshot, if set, is called with the snapshot a FromSnapshot replay
+	// starts from, after the robot was restored from it.
+	Snapshot func(*pb.JournalSnapshot) error
 	// Input, if set, is called after every replayed input.
 	Input func(*Replayed) error
 	// FS is the file system the journal is read from (nil: OS).
@@ -182,6 +185,9 @@ func (rp *replayer) restore(s *pb.JournalSnapshot) error {
 		return fmt.Errorf("snapshot at sequence %d holds sequence %d", s.GetSequence(), r.Sequence())
 	}
 	rp.fr = r
+	if rp.opt.Snapshot != nil {
+		return rp.opt.Snapshot(s)
+	}
 	return nil
 }
 

@@ -80,8 +80,11 @@ func listSegments(fsys FS, dir, robot string) ([]segFile, error) {
 }
 
 // Segments lists a robot's journal segments in order.
-func Segments(dir, robot string) ([]string, error) {
-	segs, err := listSegments(OS, dir, robot)
+func Segments(dir, robot string) ([]string, error) { return SegmentsFS(nil, dir, robot) }
+
+// SegmentsFS lists a robot's journal segments on fsys (nil: OS) in order.
+func SegmentsFS(fsys FS, dir, robot string) ([]string, error) {
+	segs, err := listSegments(orOS(fsys), dir, robot)
 	out := make([]string, len(segs))
 	for i, s := range segs {
 		out[i] = s.path
@@ -348,7 +351,17 @@ func (w *Writer) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
 	if err != nil {
 		return err
 	}
-	return w.AddEncodedPair(in.GetSequence(), sample, in.GetArrivalUnixNs(), resp, out.GetPose())
+	return w.AddSessionPair(EncodedInput{Sequence: in.GetSequence(), Sample: sample, ArrivalUnixNs: in.GetArrivalUnixNs(),
+		SessionID: in.GetSessionId(), ClientSequence: in.GetClientSequence()}, resp, out.GetPose())
+}
+
+// EncodedInput is a JournalInput whose sample is already in wire form.
+type EncodedInput struct {
+	Sequence       uint64
+	Sample         []byte
+	ArrivalUnixNs  int64
+	SessionID      string
+	ClientSequence uint64
 }
 
 // AddEncodedPair frames an input and its output from parts already in wire
@@ -359,7 +372,13 @@ func (w *Writer) AddPair(in *pb.JournalInput, out *pb.JournalOutput) error {
 // the same records. pose may be nil. On error the buffer keeps what it
 // held.
 func (w *Writer) AddEncodedPair(seq uint64, sample []byte, arrivalUnixNs int64, response []byte, pose *pb.FusedPose) error {
-	b, err := appendInput(w.buf, seq, sample, arrivalUnixNs)
+	return w.AddSessionPair(EncodedInput{Sequence: seq, Sample: sample, ArrivalUnixNs: arrivalUnixNs}, response, pose)
+}
+
+// AddSessionPair is AddEncodedPair with the input's ingest session and
+// client sequence.
+func (w *Writer) AddSessionPair(in EncodedInput, response []byte, pose *pb.FusedPose) error {
+	b, err := appendInput(w.buf, in)
 	if err == nil {
 		b, err = appendOutput(b, response, pose)
 	}

@@ -189,6 +189,9 @@ to trust the estimate, or why the service cannot serve the robot.`)
 
 // robotState is one word or phrase for the robots listing.
 func robotState(ctx context.Context, c *client.Client, r *pb.Robot) (string, error) {
+	if s := r.GetState(); s == pb.RobotState_ROBOT_STATE_PAUSED || s == pb.RobotState_ROBOT_STATE_QUARANTINED {
+		return convert.RobotStateName(s) + ": " + r.GetStateDetail(), nil
+	}
 	st, err := c.Statistics(ctx, r.GetName())
 	switch status.Code(err) {
 	case codes.OK:

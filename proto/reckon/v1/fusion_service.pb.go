@@ -692,7 +692,13 @@ type IngestRequest struct {
 	// The client's own number for the sample, echoed in the response.
 	ClientSequence uint64 `protobuf:"varint,2,opt,name=client_sequence,json=clientSequence,proto3" json:"client_sequence,omitempty"`
 	// The sample.
-	Sample        *Sample `protobuf:"bytes,3,opt,name=sample,proto3" json:"sample,omitempty"`
+	Sample *Sample `protobuf:"bytes,3,opt,name=sample,proto3" json:"sample,omitempty"`
+	// The client's own id of the ingest session (for example a random UUID,
+	// at most 128 bytes). With it, a request whose (session_id,
+	// client_sequence) the robot already took is answered with the original
+	// verdict and not applied again, so that a client may resend what it
+	// has no verdict for. Empty: no deduplication.
+	SessionId     string `protobuf:"bytes,4,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -746,6 +752,13 @@ func (x *IngestRequest) GetSample() *Sample {
 		return x.Sample
 	}
 	return nil
+}
+
+func (x *IngestRequest) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
 }
 
 // IngestResponse is the verdict on one sample.
@@ -2009,11 +2022,13 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x0fnext_page_token\x18\x02 \x01(\tR\rnextPageToken\"(\n" +
 	"\x12DeleteRobotRequest\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\"\x15\n" +
-	"\x13DeleteRobotResponse\"y\n" +
+	"\x13DeleteRobotResponse\"\x98\x01\n" +
 	"\rIngestRequest\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12'\n" +
 	"\x0fclient_sequence\x18\x02 \x01(\x04R\x0eclientSequence\x12)\n" +
-	"\x06sample\x18\x03 \x01(\v2\x11.reckon.v1.SampleR\x06sample\"\xd6\x02\n" +
+	"\x06sample\x18\x03 \x01(\v2\x11.reckon.v1.SampleR\x06sample\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x04 \x01(\tR\tsessionId\"\xd6\x02\n" +
 	"\x0eIngestResponse\x12'\n" +
 	"\x0fclient_sequence\x18\x01 \x01(\x04R\x0eclientSequence\x12\x1a\n" +
 	"\bsequence\x18\x02 \x01(\x04R\bsequence\x12,\n" +

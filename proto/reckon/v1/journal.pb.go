@@ -170,9 +170,20 @@ type JournalSnapshot struct {
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// The state: the bytes of a RobotSnapshot, which package fusion writes
 	// and reads itself (it does not depend on the generated code).
-	State         []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	State []byte `protobuf:"bytes,2,opt,name=state,proto3" json:"state,omitempty"`
+	// The recent verdicts of the robot's ingest sessions (at most 2 MiB, the
+	// newest of the most recently used sessions first), so that a retry after
+	// a restart is still recognised.
+	Sessions []*JournalSession `protobuf:"bytes,3,rep,name=sessions,proto3" json:"sessions,omitempty"`
+	// The build that wrote this snapshot and the outputs after it (see
+	// JournalOpening.build). The service writes a snapshot when it resumes a
+	// journal that another build wrote, so that every output is attributed
+	// to the build that wrote it.
+	Build string `protobuf:"bytes,4,opt,name=build,proto3" json:"build,omitempty"`
+	// Wall time of the snapshot, Unix nanoseconds (information only).
+	WriteTimeUnixNs int64 `protobuf:"varint,5,opt,name=write_time_unix_ns,json=writeTimeUnixNs,proto3" json:"write_time_unix_ns,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
 }
 
 func (x *JournalSnapshot) Reset() {
@@ -215,6 +226,82 @@ func (x *JournalSnapshot) GetSequence() uint64 {
 func (x *JournalSnapshot) GetState() []byte {
 	if x != nil {
 		return x.State
+	}
+	return nil
+}
+
+func (x *JournalSnapshot) GetSessions() []*JournalSession {
+	if x != nil {
+		return x.Sessions
+	}
+	return nil
+}
+
+func (x *JournalSnapshot) GetBuild() string {
+	if x != nil {
+		return x.Build
+	}
+	return ""
+}
+
+func (x *JournalSnapshot) GetWriteTimeUnixNs() int64 {
+	if x != nil {
+		return x.WriteTimeUnixNs
+	}
+	return 0
+}
+
+// JournalSession is the recent verdicts of one ingest session.
+type JournalSession struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// IngestRequest.session_id.
+	SessionId string `protobuf:"bytes,1,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// The verdicts, oldest first.
+	Verdicts      []*IngestResponse `protobuf:"bytes,2,rep,name=verdicts,proto3" json:"verdicts,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *JournalSession) Reset() {
+	*x = JournalSession{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *JournalSession) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*JournalSession) ProtoMessage() {}
+
+func (x *JournalSession) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use JournalSession.ProtoReflect.Descriptor instead.
+func (*JournalSession) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+}
+
+func (x *JournalSession) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *JournalSession) GetVerdicts() []*IngestResponse {
+	if x != nil {
+		return x.Verdicts
 	}
 	return nil
 }
@@ -299,7 +386,7 @@ type RobotSnapshot struct {
 
 func (x *RobotSnapshot) Reset() {
 	*x = RobotSnapshot{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -311,7 +398,7 @@ func (x *RobotSnapshot) String() string {
 func (*RobotSnapshot) ProtoMessage() {}
 
 func (x *RobotSnapshot) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[2]
+	mi := &file_reckon_v1_journal_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -324,7 +411,7 @@ func (x *RobotSnapshot) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use RobotSnapshot.ProtoReflect.Descriptor instead.
 func (*RobotSnapshot) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{2}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *RobotSnapshot) GetVersion() uint32 {
@@ -566,7 +653,7 @@ type EstimateState struct {
 
 func (x *EstimateState) Reset() {
 	*x = EstimateState{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -578,7 +665,7 @@ func (x *EstimateState) String() string {
 func (*EstimateState) ProtoMessage() {}
 
 func (x *EstimateState) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[3]
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -591,7 +678,7 @@ func (x *EstimateState) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EstimateState.ProtoReflect.Descriptor instead.
 func (*EstimateState) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *EstimateState) GetSize() uint32 {
@@ -628,7 +715,7 @@ type SnapshotCheckpoint struct {
 
 func (x *SnapshotCheckpoint) Reset() {
 	*x = SnapshotCheckpoint{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -640,7 +727,7 @@ func (x *SnapshotCheckpoint) String() string {
 func (*SnapshotCheckpoint) ProtoMessage() {}
 
 func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -653,7 +740,7 @@ func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCheckpoint.ProtoReflect.Descriptor instead.
 func (*SnapshotCheckpoint) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *SnapshotCheckpoint) GetEstimate() *EstimateState {
@@ -714,7 +801,7 @@ type SnapshotEntry struct {
 
 func (x *SnapshotEntry) Reset() {
 	*x = SnapshotEntry{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -726,7 +813,7 @@ func (x *SnapshotEntry) String() string {
 func (*SnapshotEntry) ProtoMessage() {}
 
 func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -739,7 +826,7 @@ func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotEntry.ProtoReflect.Descriptor instead.
 func (*SnapshotEntry) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *SnapshotEntry) GetKind() uint32 {
@@ -883,7 +970,7 @@ type SnapshotMeasurement struct {
 
 func (x *SnapshotMeasurement) Reset() {
 	*x = SnapshotMeasurement{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -895,7 +982,7 @@ func (x *SnapshotMeasurement) String() string {
 func (*SnapshotMeasurement) ProtoMessage() {}
 
 func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -908,7 +995,7 @@ func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotMeasurement.ProtoReflect.Descriptor instead.
 func (*SnapshotMeasurement) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *SnapshotMeasurement) GetKind() uint32 {
@@ -972,7 +1059,7 @@ type SnapshotSensor struct {
 
 func (x *SnapshotSensor) Reset() {
 	*x = SnapshotSensor{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -984,7 +1071,7 @@ func (x *SnapshotSensor) String() string {
 func (*SnapshotSensor) ProtoMessage() {}
 
 func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -997,7 +1084,7 @@ func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotSensor.ProtoReflect.Descriptor instead.
 func (*SnapshotSensor) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *SnapshotSensor) GetSensorId() string {
@@ -1054,7 +1141,7 @@ type SnapshotNisWindow struct {
 
 func (x *SnapshotNisWindow) Reset() {
 	*x = SnapshotNisWindow{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1066,7 +1153,7 @@ func (x *SnapshotNisWindow) String() string {
 func (*SnapshotNisWindow) ProtoMessage() {}
 
 func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1079,7 +1166,7 @@ func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotNisWindow.ProtoReflect.Descriptor instead.
 func (*SnapshotNisWindow) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *SnapshotNisWindow) GetNis() []float64 {
@@ -1139,7 +1226,7 @@ type SnapshotBiasWindow struct {
 
 func (x *SnapshotBiasWindow) Reset() {
 	*x = SnapshotBiasWindow{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1151,7 +1238,7 @@ func (x *SnapshotBiasWindow) String() string {
 func (*SnapshotBiasWindow) ProtoMessage() {}
 
 func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1164,7 +1251,7 @@ func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotBiasWindow.ProtoReflect.Descriptor instead.
 func (*SnapshotBiasWindow) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *SnapshotBiasWindow) GetScore() []float64 {
@@ -1237,7 +1324,7 @@ type SnapshotCandidate struct {
 
 func (x *SnapshotCandidate) Reset() {
 	*x = SnapshotCandidate{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1249,7 +1336,7 @@ func (x *SnapshotCandidate) String() string {
 func (*SnapshotCandidate) ProtoMessage() {}
 
 func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1262,7 +1349,7 @@ func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCandidate.ProtoReflect.Descriptor instead.
 func (*SnapshotCandidate) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *SnapshotCandidate) GetStampNs() int64 {
@@ -1330,13 +1417,17 @@ type JournalOpening struct {
 	Config *RobotConfig `protobuf:"bytes,2,opt,name=config,proto3" json:"config,omitempty"`
 	// Wall time the robot was created, Unix nanoseconds (information only).
 	CreateTimeUnixNs int64 `protobuf:"varint,3,opt,name=create_time_unix_ns,json=createTimeUnixNs,proto3" json:"create_time_unix_ns,omitempty"`
-	unknownFields    protoimpl.UnknownFields
-	sizeCache        protoimpl.SizeCache
+	// The build that wrote the journal's first outputs: module version,
+	// VCS revision and "+modified" for a modified tree. Outputs after a
+	// snapshot were written by the snapshot's build.
+	Build         string `protobuf:"bytes,4,opt,name=build,proto3" json:"build,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1348,7 +1439,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1361,7 +1452,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -1385,6 +1476,13 @@ func (x *JournalOpening) GetCreateTimeUnixNs() int64 {
 	return 0
 }
 
+func (x *JournalOpening) GetBuild() string {
+	if x != nil {
+		return x.Build
+	}
+	return ""
+}
+
 // JournalInput is one input.
 type JournalInput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1396,13 +1494,17 @@ type JournalInput struct {
 	Sample *Sample `protobuf:"bytes,2,opt,name=sample,proto3" json:"sample,omitempty"`
 	// Wall time it arrived, Unix nanoseconds (information only).
 	ArrivalUnixNs int64 `protobuf:"varint,3,opt,name=arrival_unix_ns,json=arrivalUnixNs,proto3" json:"arrival_unix_ns,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	// IngestRequest.session_id ("" for none).
+	SessionId string `protobuf:"bytes,4,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
+	// IngestRequest.client_sequence.
+	ClientSequence uint64 `protobuf:"varint,5,opt,name=client_sequence,json=clientSequence,proto3" json:"client_sequence,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1414,7 +1516,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1427,7 +1529,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -1451,6 +1553,20 @@ func (x *JournalInput) GetArrivalUnixNs() int64 {
 	return 0
 }
 
+func (x *JournalInput) GetSessionId() string {
+	if x != nil {
+		return x.SessionId
+	}
+	return ""
+}
+
+func (x *JournalInput) GetClientSequence() uint64 {
+	if x != nil {
+		return x.ClientSequence
+	}
+	return 0
+}
+
 // JournalOutput is the verdict and pose after one input.
 type JournalOutput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1465,7 +1581,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1477,7 +1593,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1490,7 +1606,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -1518,7 +1634,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[14]
+	mi := &file_reckon_v1_journal_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1530,7 +1646,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[14]
+	mi := &file_reckon_v1_journal_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1543,7 +1659,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -1564,10 +1680,17 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x06output\x18\x03 \x01(\v2\x18.reckon.v1.JournalOutputH\x00R\x06output\x125\n" +
 	"\aclosing\x18\x04 \x01(\v2\x19.reckon.v1.JournalClosingH\x00R\aclosing\x128\n" +
 	"\bsnapshot\x18\x05 \x01(\v2\x1a.reckon.v1.JournalSnapshotH\x00R\bsnapshotB\a\n" +
-	"\x05entry\"C\n" +
+	"\x05entry\"\xbd\x01\n" +
 	"\x0fJournalSnapshot\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12\x14\n" +
-	"\x05state\x18\x02 \x01(\fR\x05state\"\xe2\n" +
+	"\x05state\x18\x02 \x01(\fR\x05state\x125\n" +
+	"\bsessions\x18\x03 \x03(\v2\x19.reckon.v1.JournalSessionR\bsessions\x12\x14\n" +
+	"\x05build\x18\x04 \x01(\tR\x05build\x12+\n" +
+	"\x12write_time_unix_ns\x18\x05 \x01(\x03R\x0fwriteTimeUnixNs\"f\n" +
+	"\x0eJournalSession\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xe2\n" +
 	"\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
@@ -1684,15 +1807,19 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0frelative_motion\x18\a \x03(\x01R\x0erelativeMotion\x12/\n" +
 	"\x13relative_covariance\x18\b \x03(\x01R\x12relativeCovariance\x12&\n" +
 	"\x0fkeep_imu_offset\x18\t \x01(\bR\rkeepImuOffsetJ\x04\b\x03\x10\x04R\n" +
-	"correction\"\x85\x01\n" +
+	"correction\"\x9b\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12-\n" +
-	"\x13create_time_unix_ns\x18\x03 \x01(\x03R\x10createTimeUnixNs\"}\n" +
+	"\x13create_time_unix_ns\x18\x03 \x01(\x03R\x10createTimeUnixNs\x12\x14\n" +
+	"\x05build\x18\x04 \x01(\tR\x05build\"\xc5\x01\n" +
 	"\fJournalInput\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12)\n" +
 	"\x06sample\x18\x02 \x01(\v2\x11.reckon.v1.SampleR\x06sample\x12&\n" +
-	"\x0farrival_unix_ns\x18\x03 \x01(\x03R\rarrivalUnixNs\"p\n" +
+	"\x0farrival_unix_ns\x18\x03 \x01(\x03R\rarrivalUnixNs\x12\x1d\n" +
+	"\n" +
+	"session_id\x18\x04 \x01(\tR\tsessionId\x12'\n" +
+	"\x0fclient_sequence\x18\x05 \x01(\x04R\x0eclientSequence\"p\n" +
 	"\rJournalOutput\x125\n" +
 	"\bresponse\x18\x01 \x01(\v2\x19.reckon.v1.IngestResponseR\bresponse\x12(\n" +
 	"\x04pose\x18\x02 \x01(\v2\x14.reckon.v1.FusedPoseR\x04pose\"?\n" +
@@ -1711,60 +1838,63 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 15)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 16)
 var file_reckon_v1_journal_proto_goTypes = []any{
 	(*JournalRecord)(nil),       // 0: reckon.v1.JournalRecord
 	(*JournalSnapshot)(nil),     // 1: reckon.v1.JournalSnapshot
-	(*RobotSnapshot)(nil),       // 2: reckon.v1.RobotSnapshot
-	(*EstimateState)(nil),       // 3: reckon.v1.EstimateState
-	(*SnapshotCheckpoint)(nil),  // 4: reckon.v1.SnapshotCheckpoint
-	(*SnapshotEntry)(nil),       // 5: reckon.v1.SnapshotEntry
-	(*SnapshotMeasurement)(nil), // 6: reckon.v1.SnapshotMeasurement
-	(*SnapshotSensor)(nil),      // 7: reckon.v1.SnapshotSensor
-	(*SnapshotNisWindow)(nil),   // 8: reckon.v1.SnapshotNisWindow
-	(*SnapshotBiasWindow)(nil),  // 9: reckon.v1.SnapshotBiasWindow
-	(*SnapshotCandidate)(nil),   // 10: reckon.v1.SnapshotCandidate
-	(*JournalOpening)(nil),      // 11: reckon.v1.JournalOpening
-	(*JournalInput)(nil),        // 12: reckon.v1.JournalInput
-	(*JournalOutput)(nil),       // 13: reckon.v1.JournalOutput
-	(*JournalClosing)(nil),      // 14: reckon.v1.JournalClosing
-	(*VerdictCounts)(nil),       // 15: reckon.v1.VerdictCounts
-	(*RobotConfig)(nil),         // 16: reckon.v1.RobotConfig
-	(*Sample)(nil),              // 17: reckon.v1.Sample
-	(*IngestResponse)(nil),      // 18: reckon.v1.IngestResponse
-	(*FusedPose)(nil),           // 19: reckon.v1.FusedPose
+	(*JournalSession)(nil),      // 2: reckon.v1.JournalSession
+	(*RobotSnapshot)(nil),       // 3: reckon.v1.RobotSnapshot
+	(*EstimateState)(nil),       // 4: reckon.v1.EstimateState
+	(*SnapshotCheckpoint)(nil),  // 5: reckon.v1.SnapshotCheckpoint
+	(*SnapshotEntry)(nil),       // 6: reckon.v1.SnapshotEntry
+	(*SnapshotMeasurement)(nil), // 7: reckon.v1.SnapshotMeasurement
+	(*SnapshotSensor)(nil),      // 8: reckon.v1.SnapshotSensor
+	(*SnapshotNisWindow)(nil),   // 9: reckon.v1.SnapshotNisWindow
+	(*SnapshotBiasWindow)(nil),  // 10: reckon.v1.SnapshotBiasWindow
+	(*SnapshotCandidate)(nil),   // 11: reckon.v1.SnapshotCandidate
+	(*JournalOpening)(nil),      // 12: reckon.v1.JournalOpening
+	(*JournalInput)(nil),        // 13: reckon.v1.JournalInput
+	(*JournalOutput)(nil),       // 14: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),      // 15: reckon.v1.JournalClosing
+	(*IngestResponse)(nil),      // 16: reckon.v1.IngestResponse
+	(*VerdictCounts)(nil),       // 17: reckon.v1.VerdictCounts
+	(*RobotConfig)(nil),         // 18: reckon.v1.RobotConfig
+	(*Sample)(nil),              // 19: reckon.v1.Sample
+	(*FusedPose)(nil),           // 20: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	11, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	12, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	13, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	14, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	12, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	13, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	14, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	15, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
 	1,  // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
-	3,  // 5: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
-	4,  // 6: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
-	5,  // 7: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
-	5,  // 8: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
-	15, // 9: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
-	15, // 10: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
-	7,  // 11: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
-	8,  // 12: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
-	8,  // 13: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
-	10, // 14: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
-	9,  // 15: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
-	3,  // 16: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
-	6,  // 17: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
-	4,  // 18: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
-	15, // 19: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
-	6,  // 20: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
-	16, // 21: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	17, // 22: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	18, // 23: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	19, // 24: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	25, // [25:25] is the sub-list for method output_type
-	25, // [25:25] is the sub-list for method input_type
-	25, // [25:25] is the sub-list for extension type_name
-	25, // [25:25] is the sub-list for extension extendee
-	0,  // [0:25] is the sub-list for field type_name
+	2,  // 5: reckon.v1.JournalSnapshot.sessions:type_name -> reckon.v1.JournalSession
+	16, // 6: reckon.v1.JournalSession.verdicts:type_name -> reckon.v1.IngestResponse
+	4,  // 7: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
+	5,  // 8: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
+	6,  // 9: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
+	6,  // 10: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
+	17, // 11: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
+	17, // 12: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
+	8,  // 13: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
+	9,  // 14: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
+	9,  // 15: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
+	11, // 16: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
+	10, // 17: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
+	4,  // 18: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
+	7,  // 19: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
+	5,  // 20: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
+	17, // 21: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
+	7,  // 22: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
+	18, // 23: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	19, // 24: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	16, // 25: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	20, // 26: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	27, // [27:27] is the sub-list for method output_type
+	27, // [27:27] is the sub-list for method input_type
+	27, // [27:27] is the sub-list for extension type_name
+	27, // [27:27] is the sub-list for extension extendee
+	0,  // [0:27] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -1782,14 +1912,14 @@ func file_reckon_v1_journal_proto_init() {
 		(*JournalRecord_Closing)(nil),
 		(*JournalRecord_Snapshot)(nil),
 	}
-	file_reckon_v1_journal_proto_msgTypes[2].OneofWrappers = []any{}
+	file_reckon_v1_journal_proto_msgTypes[3].OneofWrappers = []any{}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   15,
+			NumMessages:   16,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

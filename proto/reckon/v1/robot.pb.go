@@ -21,6 +21,66 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// RobotState says whether a robot takes input.
+type RobotState int32
+
+const (
+	// Not set.
+	RobotState_ROBOT_STATE_UNSPECIFIED RobotState = 0
+	// It takes input.
+	RobotState_ROBOT_STATE_SERVING RobotState = 1
+	// Its journal's disk is full: inputs are answered UNAVAILABLE, not
+	// applied, until space returns; it resumes by itself.
+	RobotState_ROBOT_STATE_PAUSED RobotState = 2
+	// Its journal could not be restored (damage, a gap, a bad configuration,
+	// a divergence of the same build) or failed for good: its rpcs answer
+	// FAILED_PRECONDITION naming the problem and the file.
+	RobotState_ROBOT_STATE_QUARANTINED RobotState = 3
+)
+
+// Enum value maps for RobotState.
+var (
+	RobotState_name = map[int32]string{
+		0: "ROBOT_STATE_UNSPECIFIED",
+		1: "ROBOT_STATE_SERVING",
+		2: "ROBOT_STATE_PAUSED",
+		3: "ROBOT_STATE_QUARANTINED",
+	}
+	RobotState_value = map[string]int32{
+		"ROBOT_STATE_UNSPECIFIED": 0,
+		"ROBOT_STATE_SERVING":     1,
+		"ROBOT_STATE_PAUSED":      2,
+		"ROBOT_STATE_QUARANTINED": 3,
+	}
+)
+
+func (x RobotState) Enum() *RobotState {
+	p := new(RobotState)
+	*p = x
+	return p
+}
+
+func (x RobotState) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (RobotState) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_robot_proto_enumTypes[0].Descriptor()
+}
+
+func (RobotState) Type() protoreflect.EnumType {
+	return &file_reckon_v1_robot_proto_enumTypes[0]
+}
+
+func (x RobotState) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use RobotState.Descriptor instead.
+func (RobotState) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{0}
+}
+
 // ImuMode says how a robot uses its IMU's heading.
 type ImuMode int32
 
@@ -63,11 +123,11 @@ func (x ImuMode) String() string {
 }
 
 func (ImuMode) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_robot_proto_enumTypes[0].Descriptor()
+	return file_reckon_v1_robot_proto_enumTypes[1].Descriptor()
 }
 
 func (ImuMode) Type() protoreflect.EnumType {
-	return &file_reckon_v1_robot_proto_enumTypes[0]
+	return &file_reckon_v1_robot_proto_enumTypes[1]
 }
 
 func (x ImuMode) Number() protoreflect.EnumNumber {
@@ -76,7 +136,7 @@ func (x ImuMode) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use ImuMode.Descriptor instead.
 func (ImuMode) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{0}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{1}
 }
 
 // Robot is one robot whose pose the service estimates. Its resource name is
@@ -91,7 +151,13 @@ type Robot struct {
 	// End of the newest odometry interval the robot has taken, nanoseconds.
 	NewestStampNs int64 `protobuf:"varint,3,opt,name=newest_stamp_ns,json=newestStampNs,proto3" json:"newest_stamp_ns,omitempty"`
 	// Inputs taken so far (the robot's last arrival sequence number).
-	InputCount    uint64 `protobuf:"varint,4,opt,name=input_count,json=inputCount,proto3" json:"input_count,omitempty"`
+	InputCount uint64 `protobuf:"varint,4,opt,name=input_count,json=inputCount,proto3" json:"input_count,omitempty"`
+	// Whether the robot takes input.
+	State RobotState `protobuf:"varint,5,opt,name=state,proto3,enum=reckon.v1.RobotState" json:"state,omitempty"`
+	// Why the robot is paused or quarantined, naming the problem and the
+	// journal file; for a serving robot, a note from restore (outputs of an
+	// older build that differ on replay), or empty.
+	StateDetail   string `protobuf:"bytes,6,opt,name=state_detail,json=stateDetail,proto3" json:"state_detail,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -152,6 +218,20 @@ func (x *Robot) GetInputCount() uint64 {
 		return x.InputCount
 	}
 	return 0
+}
+
+func (x *Robot) GetState() RobotState {
+	if x != nil {
+		return x.State
+	}
+	return RobotState_ROBOT_STATE_UNSPECIFIED
+}
+
+func (x *Robot) GetStateDetail() string {
+	if x != nil {
+		return x.StateDetail
+	}
+	return ""
 }
 
 // RobotConfig is a robot's configuration: its wheel layout, noise model, IMU
@@ -909,13 +989,15 @@ var File_reckon_v1_robot_proto protoreflect.FileDescriptor
 
 const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\n" +
-	"\x15reckon/v1/robot.proto\x12\treckon.v1\"\x94\x01\n" +
+	"\x15reckon/v1/robot.proto\x12\treckon.v1\"\xe4\x01\n" +
 	"\x05Robot\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12&\n" +
 	"\x0fnewest_stamp_ns\x18\x03 \x01(\x03R\rnewestStampNs\x12\x1f\n" +
 	"\vinput_count\x18\x04 \x01(\x04R\n" +
-	"inputCount\"\x83\x06\n" +
+	"inputCount\x12+\n" +
+	"\x05state\x18\x05 \x01(\x0e2\x15.reckon.v1.RobotStateR\x05state\x12!\n" +
+	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\"\x83\x06\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +
@@ -981,7 +1063,13 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\bLandmark\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12\x0f\n" +
 	"\x03x_m\x18\x02 \x01(\x01R\x02xM\x12\x0f\n" +
-	"\x03y_m\x18\x03 \x01(\x01R\x02yM*d\n" +
+	"\x03y_m\x18\x03 \x01(\x01R\x02yM*w\n" +
+	"\n" +
+	"RobotState\x12\x1b\n" +
+	"\x17ROBOT_STATE_UNSPECIFIED\x10\x00\x12\x17\n" +
+	"\x13ROBOT_STATE_SERVING\x10\x01\x12\x16\n" +
+	"\x12ROBOT_STATE_PAUSED\x10\x02\x12\x1b\n" +
+	"\x17ROBOT_STATE_QUARANTINED\x10\x03*d\n" +
 	"\aImuMode\x12\x18\n" +
 	"\x14IMU_MODE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rIMU_MODE_NONE\x10\x01\x12\x15\n" +
@@ -1000,35 +1088,37 @@ func file_reckon_v1_robot_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_robot_proto_rawDescData
 }
 
-var file_reckon_v1_robot_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
+var file_reckon_v1_robot_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
 var file_reckon_v1_robot_proto_msgTypes = make([]protoimpl.MessageInfo, 9)
 var file_reckon_v1_robot_proto_goTypes = []any{
-	(ImuMode)(0),         // 0: reckon.v1.ImuMode
-	(*Robot)(nil),        // 1: reckon.v1.Robot
-	(*RobotConfig)(nil),  // 2: reckon.v1.RobotConfig
-	(*EncoderWheel)(nil), // 3: reckon.v1.EncoderWheel
-	(*NoiseModel)(nil),   // 4: reckon.v1.NoiseModel
-	(*MoveRecovery)(nil), // 5: reckon.v1.MoveRecovery
-	(*TrustLimits)(nil),  // 6: reckon.v1.TrustLimits
-	(*FloorPose)(nil),    // 7: reckon.v1.FloorPose
-	(*Covariance)(nil),   // 8: reckon.v1.Covariance
-	(*Landmark)(nil),     // 9: reckon.v1.Landmark
+	(RobotState)(0),      // 0: reckon.v1.RobotState
+	(ImuMode)(0),         // 1: reckon.v1.ImuMode
+	(*Robot)(nil),        // 2: reckon.v1.Robot
+	(*RobotConfig)(nil),  // 3: reckon.v1.RobotConfig
+	(*EncoderWheel)(nil), // 4: reckon.v1.EncoderWheel
+	(*NoiseModel)(nil),   // 5: reckon.v1.NoiseModel
+	(*MoveRecovery)(nil), // 6: reckon.v1.MoveRecovery
+	(*TrustLimits)(nil),  // 7: reckon.v1.TrustLimits
+	(*FloorPose)(nil),    // 8: reckon.v1.FloorPose
+	(*Covariance)(nil),   // 9: reckon.v1.Covariance
+	(*Landmark)(nil),     // 10: reckon.v1.Landmark
 }
 var file_reckon_v1_robot_proto_depIdxs = []int32{
-	2, // 0: reckon.v1.Robot.config:type_name -> reckon.v1.RobotConfig
-	3, // 1: reckon.v1.RobotConfig.wheels:type_name -> reckon.v1.EncoderWheel
-	0, // 2: reckon.v1.RobotConfig.imu_mode:type_name -> reckon.v1.ImuMode
-	4, // 3: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
-	5, // 4: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
-	6, // 5: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
-	7, // 6: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
-	8, // 7: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
-	9, // 8: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
-	9, // [9:9] is the sub-list for method output_type
-	9, // [9:9] is the sub-list for method input_type
-	9, // [9:9] is the sub-list for extension type_name
-	9, // [9:9] is the sub-list for extension extendee
-	0, // [0:9] is the sub-list for field type_name
+	3,  // 0: reckon.v1.Robot.config:type_name -> reckon.v1.RobotConfig
+	0,  // 1: reckon.v1.Robot.state:type_name -> reckon.v1.RobotState
+	4,  // 2: reckon.v1.RobotConfig.wheels:type_name -> reckon.v1.EncoderWheel
+	1,  // 3: reckon.v1.RobotConfig.imu_mode:type_name -> reckon.v1.ImuMode
+	5,  // 4: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
+	6,  // 5: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
+	7,  // 6: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
+	8,  // 7: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
+	9,  // 8: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
+	10, // 9: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
+	10, // [10:10] is the sub-list for method output_type
+	10, // [10:10] is the sub-list for method input_type
+	10, // [10:10] is the sub-list for extension type_name
+	10, // [10:10] is the sub-list for extension extendee
+	0,  // [0:10] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_robot_proto_init() }
@@ -1041,7 +1131,7 @@ func file_reckon_v1_robot_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_robot_proto_rawDesc), len(file_reckon_v1_robot_proto_rawDesc)),
-			NumEnums:      1,
+			NumEnums:      2,
 			NumMessages:   9,
 			NumExtensions: 0,
 			NumServices:   0,

@@ -1,0 +1,179 @@
+package server
+
+import (
+	"context"
+	"fmt"
+	"runtime"
+	"strings"
+	"testing"
+	"time"
+
+	"google.golang.org/grpc/codes"
+
+	pb "reckon.example/proto/reckon/v1"
+)
+
+// heapMiB returns the live heap after a collection, MiB.
+func heapMiB() float64 {
+	runtime.GC()
+	var m runtime.MemStats
+	runtime.ReadMemStats(&m)
+	return float64(m.HeapAlloc) / (1 << 20)
+}
+
+// limitedCart serves one robot fed a short run; it returns the stub, the
+// run and the newest odometry stamp.
+func limitedCart(t *testing.T, opt Options) (pb.FusionServiceClient, []*pb.Sample, int64) {
+	t.Helper()
+	opt.JournalDir = t.TempDir()
+	srv := start(t, testConfig{Options: opt, MaxMessageBytes: 1 << 20})
+	t.Cleanup(srv.stop)
+	api := stub(t, srv.addr)
+	samp, cfg := cartRun(12, 4)
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	feedStub(t, api, "robots/cart", "", 1, samp[:600])
+	var newest int64
+	for _, s := range samp[:600] {
+		if o := s.GetOdometry(); o != nil {
+			newest = o.GetStampNs()
+		}
+	}
+	return api, samp, newest
+}
+
+// TestSensorIDLimit: fixes with 10,000 distinct sensor ids add at most
+// -max-sensors to the robot's state; the rest are RESOURCE_EXHAUSTED
+// naming the flag; the robot goes on taking its own samples, its snapshot
+// stays small, and memory stays bounded.
+func TestSensorIDLimit(t *testing.T) {
+	api, samp, newest := limitedCart(t, Options{})
+	heap := heapMiB()
+	fixes := make([]*pb.Sample, 10000)
+	for i := range fixes {
+		fixes[i] = &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{StampNs: newest - 1e6, SensorId: fmt.Sprintf("camera-%05d", i),
+			Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{XM: 0.1, YM: 0}}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}}}}
+	}
+	taken, refused := 0, 0
+	for _, v := range feedStub(t, api, "robots/cart", "", 1000, fixes) {
+		switch {
+		case v.GetSequence() != 0:
+			taken++
+		case codes.Code(v.GetStatusCode()) == codes.ResourceExhausted && strings.Contains(v.GetReason(), "-max-sensors"):
+			refused++
+		default:
+			t.Fatalf("fix: %v", v)
+		}
+	}
+	st, err := api.GetStatistics(context.Background(), &pb.GetStatisticsRequest{Robot: "robots/cart"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n := len(st.GetStatistics().GetSensors()); n > 64 || taken+refused != 10000 || refused < 10000-64 {
+		t.Errorf("%d sensors in the statistics, %d fixes taken, %d refused", n, taken, refused)
+	}
+	for _, v := range feedStub(t, api, "robots/cart", "", 20000, samp[600:700]) {
+		if codes.Code(v.GetStatusCode()) == codes.ResourceExhausted {
+			t.Fatalf("the robot's own samples refused: %v", v)
+		}
+	}
+	if grown := heapMiB() - heap; grown > 32 {
+		t.Errorf("heap grew by %.1f MiB", grown)
+	}
+}
+
+// TestLongStrings: 64 KiB strings in session_id, sensor_id and landmark_id
+// are refused INVALID_ARGUMENT naming the field and -max-string-bytes,
+// before the robot sees them; the robot is unharmed.
+func TestLongStrings(t *testing.T) {
+	api, samp, newest := limitedCart(t, Options{})
+	long := strings.Repeat("x", 64<<10)
+	fix := func(f *pb.Fix) *pb.Sample {
+		f.StampNs, f.Covariance = newest-1e6, &pb.Covariance{Dimension: 2, Values: []float64{1, 0, 0, 1}}
+		return &pb.Sample{Sample: &pb.Sample_Fix{Fix: f}}
+	}
+	cases := []struct {
+		field   string
+		session string
+		sample  *pb.Sample
+	}{
+		{"session_id", long, samp[600]},
+		{"sample.fix.sensor_id", "", fix(&pb.Fix{SensorId: long, Measurement: &pb.Fix_Position{Position: &pb.PositionFix{}}})},
+		{"sample.fix.landmark.landmark_id", "", fix(&pb.Fix{Measurement: &pb.Fix_Landmark{Landmark: &pb.LandmarkFix{LandmarkId: long}}})},
+	}
+	for _, c := range cases {
+		v := feedStub(t, api, "robots/cart", c.session, 1, []*pb.Sample{c.sample})[0]
+		if codes.Code(v.GetStatusCode()) != codes.InvalidArgument || v.GetSequence() != 0 || !strings.HasPrefix(v.GetReason(), c.field+":") || !strings.Contains(v.GetReason(), "-max-string-bytes") {
+			t.Errorf("%s of 64 KiB: %v", c.field, v)
+		}
+	}
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: long}); codeOf(err) != codes.InvalidArgument {
+		t.Errorf("robot_id of 64 KiB: %v", err)
+	}
+	r, _ := api.GetRobot(context.Background(), &pb.GetRobotRequest{Name: "robots/cart"})
+	if r.GetRobot().GetInputCount() != 600 {
+		t.Errorf("robot has %d inputs, want 600", r.GetRobot().GetInputCount())
+	}
+	if v := feedStub(t, api, "robots/cart", "", 601, samp[600:601])[0]; v.GetSequence() != 601 {
+		t.Errorf("next sample: %v", v)
+	}
+}
+
+// TestWatcherLimits: of 10,000 watch streams opened on one robot, 64 are
+// served and the rest refused RESOURCE_EXHAUSTED naming
+// -max-watchers-per-robot; past -max-watchers in all, another robot's
+// watch is refused naming that flag; closed watches free their places.
+func TestWatcherLimits(t *testing.T) {
+	api, _, _ := limitedCart(t, Options{Limits: Limits{MaxWatchers: 100}})
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	heap := heapMiB()
+	open := func(robot string) error {
+		w, err := api.Watch(ctx, &pb.WatchRequest{Robot: robot})
+		if err == nil {
+			_, err = w.Recv()
+		}
+		return err
+	}
+	served, refused := 0, 0
+	for i := 0; i < 10000; i++ {
+		switch err := open("robots/cart"); {
+		case err == nil:
+			served++
+		case codeOf(err) == codes.ResourceExhausted && strings.Contains(err.Error(), "-max-watchers-per-robot"):
+			refused++
+		default:
+			t.Fatalf("watch %d: %v", i, err)
+		}
+	}
+	if served != 64 || refused != 10000-64 {
+		t.Errorf("%d watches served, %d refused; want 64 and %d", served, refused, 10000-64)
+	}
+	samp, cfg := cartRun(12, 1)
+	api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart-b", Config: cfg})
+	feedStub(t, api, "robots/cart-b", "", 1, samp[:10])
+	for i := 0; i < 36; i++ {
+		if err := open("robots/cart-b"); err != nil {
+			t.Fatalf("watch %d of cart-b: %v", i, err)
+		}
+	}
+	if err := open("robots/cart-b"); codeOf(err) != codes.ResourceExhausted || !strings.Contains(err.Error(), "-max-watchers)") {
+		t.Errorf("watch past the limit in all: %v", err)
+	}
+	if grown := heapMiB() - heap; grown > 64 {
+		t.Errorf("heap grew by %.1f MiB", grown)
+	}
+	cancel()
+	ctx, cancel = context.WithCancel(context.Background())
+	defer cancel()
+	var err error
+	for deadline := time.Now().Add(5 * time.Second); time.Now().Before(deadline); time.Sleep(10 * time.Millisecond) {
+		if err = open("robots/cart"); err == nil {
+			break
+		}
+	}
+	if err != nil {
+		t.Errorf("watch after the others closed: %v", err)
+	}
+}

@@ -1,0 +1,253 @@
+package server
+
+import (
+	"context"
+	"os"
+	"strconv"
+	"strings"
+	"testing"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/protobuf/proto"
+
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/journal"
+)
+
+// twoCarts serves two robots with journals in dir, feeds each a short run
+// and stops.
+func twoCarts(t *testing.T, dir string, opt Options) {
+	t.Helper()
+	opt.JournalDir = dir
+	srv := start(t, testConfig{Options: opt})
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	for _, id := range []string{"cart-a", "cart-b"} {
+		samp, cfg := cartRun(6, 3)
+		if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {
+			t.Fatal(err)
+		}
+		feedStub(t, api, RobotName(id), "s-"+id, 1, samp)
+	}
+	srv.stop()
+}
+
+// TestQuarantineAtRestore: a robot whose journal cannot be restored stays
+// listed as quarantined, naming the problem and the file; every rpc on it
+// answers FAILED_PRECONDITION; the other robot serves.
+func TestQuarantineAtRestore(t *testing.T) {
+	dir := t.TempDir()
+	twoCarts(t, dir, Options{})
+	bad := journal.SegmentPath(dir, "cart-b", 0)
+	b, _ := os.ReadFile(bad)
+	// Garbage over a stretch of records: the journal keeps the bytes aside
+	// and reads on, but the inputs in them are lost, a gap it cannot replay
+	// across.
+	for i := len(b) / 2; i < len(b)/2+4096; i++ {
+		b[i] = 0xa5
+	}
+	os.WriteFile(bad, b, 0o644)
+
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	reports, err := s.Restore()
+	s.Close()
+	if err != nil || len(reports) != 2 || reports[0].State != pb.RobotState_ROBOT_STATE_SERVING ||
+		reports[1].State != pb.RobotState_ROBOT_STATE_QUARANTINED || !strings.Contains(reports[1].Detail, bad) {
+		t.Fatalf("restore: %v %+v", err, reports)
+	}
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	list, err := api.ListRobots(ctx, &pb.ListRobotsRequest{})
+	if err != nil || len(list.GetRobots()) != 2 {
+		t.Fatalf("list: %v %v", err, list)
+	}
+	q := list.GetRobots()[1]
+	if q.GetState() != pb.RobotState_ROBOT_STATE_QUARANTINED || !strings.Contains(q.GetStateDetail(), "cart-b.000000.rjl") {
+		t.Errorf("quarantined robot listed as %v %q", q.GetState(), q.GetStateDetail())
+	}
+	if list.GetRobots()[0].GetState() != pb.RobotState_ROBOT_STATE_SERVING {
+		t.Errorf("cart-a is %v", list.GetRobots()[0].GetState())
+	}
+	samp, _ := cartRun(6, 4)
+	v := feedStub(t, api, "robots/cart-b", "", 1, samp[len(samp)-1:])[0]
+	if codes.Code(v.GetStatusCode()) != codes.FailedPrecondition || v.GetSequence() != 0 || !strings.Contains(v.GetReason(), "cart-b.000000.rjl") {
+		t.Errorf("ingest to the quarantined robot: %v", v)
+	}
+	calls := map[string]error{}
+	_, calls["GetPoseAt"] = api.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart-b"})
+	_, calls["GetStatistics"] = api.GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: "robots/cart-b"})
+	_, calls["ReseedRobot"] = api.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: "robots/cart-b", Reseed: &pb.Reseed{StampNs: 1, Pose: &pb.FloorPose{}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}}})
+	_, calls["DeleteRobot"] = api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart-b"})
+	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: "robots/cart-b"})
+	if err == nil {
+		_, err = w.Recv()
+	}
+	calls["Watch"] = err
+	for name, err := range calls {
+		if codeOf(err) != codes.FailedPrecondition || !strings.Contains(err.Error(), "quarantined") {
+			t.Errorf("%s of the quarantined robot: %v", name, err)
+		}
+	}
+	// The other robot serves: its next samples are taken.
+	for _, v := range feedStub(t, api, "robots/cart-a", "", 1, samp[len(samp)-20:]) {
+		if v.GetSequence() == 0 {
+			t.Errorf("cart-a refused %v", v)
+		}
+	}
+}
+
+// rewriteJournal writes the robot's journal again into a new directory with
+// the opening's build replaced and edit applied to every output, as an
+// older build that computed other outputs would have left it.
+func rewriteJournal(t *testing.T, from, to, id, build string, edit func(*pb.JournalOutput)) {
+	t.Helper()
+	var w *journal.Writer
+	_, err := journal.Read(from, id, journal.Visitor{
+		Opening: func(op *pb.JournalOpening) error {
+			op = proto.Clone(op).(*pb.JournalOpening)
+			op.Build = build
+			var err error
+			w, err = journal.Create(to, id, op, journal.Options{})
+			return err
+		},
+		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+			edit(out)
+			return w.AddPair(in, out)
+		}})
+	if err == nil {
+		_, err = w.Flush()
+	}
+	if err != nil {
+		t.Fatal(err)
+	}
+	w.Close()
+}
+
+// TestOlderBuildJournalRestores: a journal whose recorded outputs differ
+// from what this build computes restores and serves when another build
+// wrote it, with a note counting the outputs that differ (the records stay
+// as they are); written by this same build, the difference is damage and
+// the robot is quarantined.
+func TestOlderBuildJournalRestores(t *testing.T) {
+	dir := t.TempDir()
+	twoCarts(t, dir, Options{Build: "old-build"})
+	old := t.TempDir()
+	// The older build's fix statistic was computed differently.
+	changed := 0
+	rewriteJournal(t, dir, old, "cart-a", "old-build", func(out *pb.JournalOutput) {
+		if out.GetResponse().GetNis() != 0 {
+			out.Response.Nis *= 1.5
+			changed++
+		}
+	})
+	before, _ := os.ReadFile(journal.SegmentPath(old, "cart-a", 0))
+	for _, tc := range []struct {
+		build string
+		state pb.RobotState
+	}{{"old-build", pb.RobotState_ROBOT_STATE_QUARANTINED}, {"new-build", pb.RobotState_ROBOT_STATE_SERVING}} {
+		s, err := New(Options{JournalDir: old, Build: tc.build})
+		if err != nil {
+			t.Fatal(err)
+		}
+		reports, _ := s.Restore()
+		r := robotState(t, s, "robots/cart-a")
+		s.Close()
+		if len(reports) != 1 || reports[0].State != tc.state || r.GetState() != tc.state {
+			t.Fatalf("restored by %s: %+v, robot %v", tc.build, reports, r.GetState())
+		}
+		if tc.state == pb.RobotState_ROBOT_STATE_SERVING {
+			if reports[0].Differing != changed || !strings.Contains(r.GetStateDetail(), `build "old-build" differ`) {
+				t.Errorf("note: %d differing, %q; want %d", reports[0].Differing, r.GetStateDetail(), changed)
+			}
+		} else if !strings.Contains(r.GetStateDetail(), "diverged") {
+			t.Errorf("same build: %q", r.GetStateDetail())
+		}
+	}
+	if changed == 0 {
+		t.Fatal("the run has no fixes")
+	}
+	after, _ := os.ReadFile(journal.SegmentPath(old, "cart-a", 0))
+	if len(after) < len(before) || string(after[:len(before)]) != string(before) {
+		t.Error("the older build's records were rewritten")
+	}
+	// The new build wrote a snapshot saying so: the next restart replays
+	// only its own outputs and has nothing to note.
+	s, _ := New(Options{JournalDir: old, Build: "new-build"})
+	reports, _ := s.Restore()
+	s.Close()
+	if reports[0].State != pb.RobotState_ROBOT_STATE_SERVING || reports[0].Differing != 0 || reports[0].Build != "new-build" {
+		t.Errorf("second restart: %+v", reports[0])
+	}
+}
+
+// TestSecondServerRefused: a second server on the same journal directory
+// refuses to start, naming the holder's pid.
+func TestSecondServerRefused(t *testing.T) {
+	dir := t.TempDir()
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := New(Options{JournalDir: dir}); err == nil || !strings.Contains(err.Error(), "locked by process "+strconv.Itoa(os.Getpid())) {
+		t.Errorf("second server: %v", err)
+	}
+	s.Close()
+	s2, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatalf("after the first closed: %v", err)
+	}
+	s2.Close()
+}
+
+// TestUnreadableSnapshotSkipped: a snapshot this build cannot read (as one
+// of another format version) is skipped: the robot is replayed from the
+// start and serves, with a note.
+func TestUnreadableSnapshotSkipped(t *testing.T) {
+	dir := t.TempDir()
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	samp, cfg := cartRun(13, 2)
+	s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	take(s, requests("robots/cart", "", 1, samp[:250]))
+	s.Close()
+	_, scan, _ := journal.Replay(dir, "cart", journal.ReplayOptions{})
+	w, err := journal.Resume(dir, "cart", scan.Segment, scan.Good, journal.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	w.Append(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: 250, State: []byte("a snapshot of format version 99")}}})
+	w.Close()
+
+	s, _ = New(Options{JournalDir: dir})
+	defer s.Close()
+	reports, _ := s.Restore()
+	r := robotState(t, s, "robots/cart")
+	if len(reports) != 1 || r.GetState() != pb.RobotState_ROBOT_STATE_SERVING || r.GetInputCount() != 250 || !strings.Contains(r.GetStateDetail(), "snapshot at input 250 not restored") {
+		t.Errorf("restore past an unreadable snapshot: %+v; robot %v", reports, r)
+	}
+	assertMemoryIsJournal(t, s, dir, "cart", 250)
+}
+
+// TestThisBuild: the build a journal records names something, and
+// CreateRobot records it in the opening.
+func TestThisBuild(t *testing.T) {
+	if ThisBuild() == "" {
+		t.Fatal("ThisBuild is empty")
+	}
+	dir := t.TempDir()
+	s, _ := New(Options{JournalDir: dir})
+	_, cfg := cartRun(1, 1)
+	s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	s.Close()
+	scan, err := journal.Read(dir, "cart", journal.Visitor{})
+	if err != nil || scan.Opening.GetBuild() != ThisBuild() {
+		t.Errorf("opening build %q (%v), want %q", scan.Opening.GetBuild(), err, ThisBuild())
+	}
+}

@@ -1,0 +1,177 @@
+package server
+
+import (
+	"slices"
+	"sort"
+
+	"google.golang.org/protobuf/proto"
+
+	pb "reckon.example/proto/reckon/v1"
+)
+
+// Bounds of what a robot remembers to answer retries (IngestRequest.
+// session_id): the verdicts of the newest sessionVerdicts client sequences
+// of each of its maxSessions most recently used sessions. A retry older
+// than that is taken as a new input.
+const (
+	sessionVerdicts = 4096
+	maxSessions     = 64
+	// snapshotSessionBytes bounds the verdicts a snapshot carries, so
+	// that a retry is recognised after a restart although the inputs it
+	// repeats are before the snapshot: the newest verdicts of the most
+	// recently used sessions first, all sessionVerdicts of each while they
+	// fit. A verdict is about 30 bytes, so 2 MiB hold the whole window of
+	// about 16 sessions, and the snapshot stays below the journal's record
+	// limit of 4 MiB.
+	snapshotSessionBytes = 2 << 20
+)
+
+// sessions are a robot's recent ingest sessions; the robot's mutex
+// protects them.
+type sessions struct {
+	byID map[string]*sessionLog
+	tick uint64
+}
+
+// sessionLog is one session's newest verdicts, as encoded and sent.
+type sessionLog struct {
+	used  uint64
+	index map[uint64]int // client sequence -> position in ring
+	ring  []sessionVerdict
+	next  int // the ring position written next once it is full
+}
+
+type sessionVerdict struct {
+	clientSeq uint64
+	wire      []byte
+}
+
+// lookup returns the verdict sent for (id, clientSeq), or nil.
+func (ss *sessions) lookup(id string, clientSeq uint64) []byte {
+	l := ss.byID[id]
+	if l == nil {
+		return nil
+	}
+	i, ok := l.index[clientSeq]
+	if !ok {
+		return nil
+	}
+	ss.tick++
+	l.used = ss.tick
+	return l.ring[i].wire
+}
+
+// add remembers the verdict sent for (id, clientSeq); the session used
+// longest ago is forgotten when there are too many.
+func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
+	if ss.byID == nil {
+		ss.byID = map[string]*sessionLog{}
+	}
+	ss.tick++
+	l := ss.byID[id]
+	if l == nil {
+		if len(ss.byID) >= maxSessions {
+			ss.evict()
+		}
+		l = &sessionLog{index: map[uint64]int{}}
+		ss.byID[id] = l
+	}
+	l.used = ss.tick
+	if i, ok := l.index[clientSeq]; ok {
+		l.ring[i].wire = wire
+		return
+	}
+	if len(l.ring) < sessionVerdicts {
+		l.index[clientSeq] = len(l.ring)
+		l.ring = append(l.ring, sessionVerdict{clientSeq, wire})
+		return
+	}
+	delete(l.index, l.ring[l.next].clientSeq)
+	l.ring[l.next] = sessionVerdict{clientSeq, wire}
+	l.index[clientSeq] = l.next
+	l.next = (l.next + 1) % sessionVerdicts
+}
+
+func (ss *sessions) evict() {
+	var oldest string
+	var at uint64
+	for id, l := range ss.byID {
+		if oldest == "" || l.used < at {
+			oldest, at = id, l.used
+		}
+	}
+	delete(ss.byID, oldest)
+}
+
+// recent returns the newest n verdicts of the session, oldest first.
+func (l *sessionLog) recent(n int) []sessionVerdict {
+	out := make([]sessionVerdict, 0, min(n, len(l.ring)))
+	start := 0
+	if len(l.ring) == sessionVerdicts {
+		start = l.next
+	}
+	for k := max(0, len(l.ring)-n); k < len(l.ring); k++ {
+		out = append(out, l.ring[(start+k)%len(l.ring)])
+	}
+	return out
+}
+
+// toProto returns the sessions for a snapshot, at most
+// snapshotSessionBytes of verdicts: the most recently used session first,
+// the newest verdicts of each first. The sessions are listed least
+// recently used first, each one's verdicts oldest first, so that restore
+// recreates the order.
+func (ss *sessions) toProto() ([]*pb.JournalSession, error) {
+	ids := make([]string, 0, len(ss.byID))
+	for id := range ss.byID {
+		ids = append(ids, id)
+	}
+	sort.Slice(ids, func(i, j int) bool { return ss.byID[ids[i]].used > ss.byID[ids[j]].used })
+	budget := snapshotSessionBytes
+	var out []*pb.JournalSession
+	for _, id := range ids {
+		vs := ss.byID[id].recent(sessionVerdicts)
+		k := len(vs)
+		for k > 0 && budget >= len(vs[k-1].wire) {
+			budget -= len(vs[k-1].wire)
+			k--
+		}
+		if k == len(vs) {
+			break
+		}
+		js := &pb.JournalSession{SessionId: id}
+		for _, v := range vs[k:] {
+			resp := &pb.IngestResponse{}
+			if err := proto.Unmarshal(v.wire, resp); err != nil {
+				return nil, err
+			}
+			js.Verdicts = append(js.Verdicts, resp)
+		}
+		out = append(out, js)
+	}
+	slices.Reverse(out)
+	return out, nil
+}
+
+// restore takes the sessions of a snapshot (before the inputs after it).
+func (ss *sessions) restore(in []*pb.JournalSession) error {
+	*ss = sessions{}
+	for _, js := range in {
+		for _, v := range js.GetVerdicts() {
+			if err := ss.addMessage(js.GetSessionId(), v); err != nil {
+				return err
+			}
+		}
+	}
+	return nil
+}
+
+// addMessage remembers a verdict read back from the journal.
+func (ss *sessions) addMessage(id string, resp *pb.IngestResponse) error {
+	wire, err := proto.Marshal(resp)
+	if err != nil {
+		return err
+	}
+	ss.add(id, resp.GetClientSequence(), wire)
+	return nil
+}

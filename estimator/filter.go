@@ -7,58 +7,67 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// Indices of the state vector.
+// Indices of the state vector's fixed part; the optional states follow as
+// the Layout places them.
 const (
 	IX      = 0 // field x, metres
 	IY      = 1 // field y, metres
 	IHead   = 2 // heading, radians
-	IOffset = 3 // IMU heading zero relative to the field, radians
+	IOffset = 3 // IMU heading zero relative to the field, radians, when the layout has it
 )
 
 // State is a copy of a filter's estimate: mean and covariance. It is a plain
-// value (fixed-size arrays), cheap to copy, which is what the fusion layer's
-// history window stores as checkpoints. Read it with the accessors; the
-// zero value is empty (size 0).
+// value (fixed-size arrays, no pointers), cheap to copy, which is what the
+// fusion layer's history window stores as checkpoints. Read it with the
+// accessors; the zero value is empty (size 0).
 type State struct {
-	// n is the state size, 3 or 4.
+	// n is the state size, 3 to MaxStates.
 	n int
+	// angles has bit i set for each angular state i (wrapped).
+	angles uint16
 	// x is the mean; entries past n are zero.
-	x [4]float64
-	// p is the n x n covariance, row-major with stride 4.
-	p [16]float64
+	x [MaxStates]float64
+	// p is the n x n covariance, row-major with stride MaxStates.
+	p [MaxStates * MaxStates]float64
 }
 
-// NewState returns the state of size n (3 or 4) with mean x (length n) and
+// NewState returns the state of size n (3 to MaxStates) whose angular
+// states are the bits of angles (Layout.Angles), with mean x (length n) and
 // covariance p (n x n row-major), copied as they are: no checks of the
 // values, so that a stored state comes back bit for bit. It panics with
 // ErrShape on a wrong size.
-func NewState(n int, x, p []float64) State {
-	if n != 3 && n != 4 || len(x) != n || len(p) != n*n {
+func NewState(n int, angles uint16, x, p []float64) State {
+	if n < 3 || n > MaxStates || len(x) != n || len(p) != n*n {
 		panic(fmt.Errorf("%w: state of size %d with a mean of length %d and a covariance of length %d", ErrShape, n, len(x), len(p)))
 	}
-	s := State{n: n}
+	s := State{n: n, angles: angles}
 	copy(s.x[:], x)
 	for i := 0; i < n; i++ {
-		copy(s.p[i*4:i*4+n], p[i*n:(i+1)*n])
+		copy(s.p[i*stride:i*stride+n], p[i*n:(i+1)*n])
 	}
 	return s
 }
 
-// Size returns the state size: 3 (x, y, heading) or 4 (with the IMU
-// offset); 0 for the zero State.
+// Size returns the state size; 0 for the zero State.
 func (s *State) Size() int { return s.n }
+
+// Angles returns the set of angular states (bit i for state i).
+func (s *State) Angles() uint16 { return s.angles }
+
+// isAngle reports whether state i is wrapped.
+func (s *State) isAngle(i int) bool { return s.angles&(1<<i) != 0 }
 
 // Pose returns the pose part of the state.
 func (s *State) Pose() Pose { return Pose{s.x[IX], s.x[IY], s.x[IHead]} }
 
-// MeanAt returns mean component i (metres or radians, see IX..IOffset).
+// MeanAt returns mean component i (metres, radians or as the layout says).
 func (s *State) MeanAt(i int) float64 { return s.x[i] }
 
 // Var returns the variance of state component i.
-func (s *State) Var(i int) float64 { return s.p[i*4+i] }
+func (s *State) Var(i int) float64 { return s.p[i*stride+i] }
 
 // At returns covariance entry (i, j).
-func (s *State) At(i, j int) float64 { return s.p[i*4+j] }
+func (s *State) At(i, j int) float64 { return s.p[i*stride+j] }
 
 // MeanInto writes the mean into dst[:Size()]. It panics with ErrShape if
 // dst is shorter.
@@ -77,7 +86,7 @@ func (s *State) CovarianceInto(dst []float64) {
 		panic(fmt.Errorf("%w: covariance of %dx%d into %d", ErrShape, n, n, len(dst)))
 	}
 	for i := 0; i < n; i++ {
-		copy(dst[i*n:(i+1)*n], s.p[i*4:i*4+n])
+		copy(dst[i*n:(i+1)*n], s.p[i*stride:i*stride+n])
 	}
 }
 
@@ -86,7 +95,7 @@ func (s *State) CovarianceInto(dst []float64) {
 func (s *State) PoseCovarianceInto(dst *[9]float64) {
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			dst[i*3+j] = s.p[i*4+j]
+			dst[i*3+j] = s.p[i*stride+j]
 		}
 	}
 }
@@ -101,44 +110,61 @@ func (s *State) Covariance() *mat.SymDense {
 	c := mat.NewSymDense(s.n, nil)
 	for i := 0; i < s.n; i++ {
 		for j := i; j < s.n; j++ {
-			c.SetSym(i, j, s.p[i*4+j])
+			c.SetSym(i, j, s.p[i*stride+j])
 		}
 	}
 	return c
 }
 
+// wrapAngles wraps the angular states of the mean.
+func (s *State) wrapAngles() {
+	for a, i := s.angles, 0; a != 0; a, i = a>>1, i+1 {
+		if a&1 != 0 {
+			s.x[i] = Wrap(s.x[i])
+		}
+	}
+}
+
 // Outcome says what became of one Update.
 type Outcome struct {
-	// NIS is the normalised innovation squared v^T S^-1 v.
+	// NIS is the normalised innovation squared v^T S^-1 v with the
+	// measurement's own covariance (the raw NIS, before any robust
+	// re-weighting): the one the gate and the consistency statistics use.
 	NIS float64
 	// Dim is the measurement's dimension (the NIS degrees of freedom).
 	Dim int
 	// Gated is true when NIS exceeded the gate and nothing changed.
 	Gated bool
+	// Weight is the robust weight w the update used (its noise was R / w);
+	// 1 without a robust model, 0 when gated.
+	Weight float64
 }
 
 // Filter is the extended Kalman filter. The zero value is not usable; make
 // one with NewFilter.
 type Filter struct {
-	st State
+	st     State
+	layout Layout
 
 	// Scratch, reused by every call.
 	fu    [9]float64
-	a     [16]float64
-	h     [12]float64
+	a     [MaxStates * MaxStates]float64
+	h     [3 * MaxStates]float64
 	s, l  [9]float64
-	k     [12]float64
-	pht   [12]float64
-	chol  [16]float64
+	r     [9]float64
+	k     [MaxStates * 3]float64
+	pht   [MaxStates * 3]float64
+	chol  [MaxStates * MaxStates]float64
 	saved State
 }
 
-// NewFilter returns a filter with n states (3, or 4 with the IMU offset)
-// at mean x and covariance p (n x n row-major). It panics on a wrong n or
-// lengths and returns an error if p is not a valid covariance.
-func NewFilter(n int, x, p []float64) (*Filter, error) {
-	if n != 3 && n != 4 {
-		panic(fmt.Errorf("%w: state size %d, want 3 or 4", ErrShape, n))
+// NewFilter returns a filter with the layout l at mean x and covariance p
+// (Size x Size row-major). It panics on wrong lengths and returns an error
+// if p is not a valid covariance.
+func NewFilter(l *Layout, x, p []float64) (*Filter, error) {
+	n := l.Size()
+	if n < 3 || n > MaxStates {
+		panic(fmt.Errorf("%w: state size %d; make the layout with NewLayout", ErrShape, n))
 	}
 	if len(x) != n || len(p) != n*n {
 		panic(fmt.Errorf("%w: mean of length %d and covariance of length %d for %d states", ErrShape, len(x), len(p), n))
@@ -151,21 +177,17 @@ func NewFilter(n int, x, p []float64) (*Filter, error) {
 	if err := CheckCovariance(p, n); err != nil {
 		return nil, fmt.Errorf("initial covariance: %w", err)
 	}
-	f := &Filter{}
-	f.st.n = n
-	copy(f.st.x[:], x)
-	f.st.x[IHead] = Wrap(f.st.x[IHead])
-	if n == 4 {
-		f.st.x[IOffset] = Wrap(f.st.x[IOffset])
-	}
-	for i := 0; i < n; i++ {
-		copy(f.st.p[i*4:i*4+n], p[i*n:(i+1)*n])
-	}
+	f := &Filter{layout: *l}
+	f.st = NewState(n, l.Angles(), x, p)
+	f.st.wrapAngles()
 	return f, nil
 }
 
 // N returns the state size.
 func (f *Filter) N() int { return f.st.n }
+
+// Layout returns the filter's state layout.
+func (f *Filter) Layout() *Layout { return &f.layout }
 
 // State returns a copy of the estimate.
 func (f *Filter) State() State { return f.st }
@@ -182,58 +204,185 @@ func (f *Filter) SetState(s *State) {
 // Pose returns the pose part of the mean.
 func (f *Filter) Pose() Pose { return f.st.Pose() }
 
-// Predict moves the estimate by the body step u with 3x3 row-major step
-// covariance cu, and adds q (length N, variances) to the diagonal: the
-// time-driven process noise (heading random walk, IMU offset random walk).
-//
-//	x' = f(x, u),  P' = Fx P Fx^T + Fu cu Fu^T + diag(q)
-func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
-	n := f.st.n
-	p := f.st.Pose()
-	// Advance and ArcJacobians, sharing the trigonometry.
-	var c chord
-	c.set(p.Heading, u)
-	np := c.advance(p, u)
-	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
-	fu := &f.fu
-	c.jacobians(nil, fu)
+// transition is the linearised motion over one interval: F = I + E, where
+// E is non-zero only in the pose rows (columns heading and the calibration
+// states) and on the bias blocks' diagonal (phi - 1).
+type transition struct {
+	// cols are the columns of E's pose rows: heading, then the
+	// calibration states present; e[i][c] for pose row i.
+	cols [4]int
+	nc   int
+	e    [3][4]float64
+	// u is the true step (scaled and with the rate bias); fu its step
+	// Jacobian times diag(s_f, s_f, s_t), for the reported step's noise.
+	u  Step
+	fu [9]float64
+	c  chord
+}
 
-	// P = F P F^T, where F is the identity except for the heading column of
-	// the position rows (fx[2] = a, fx[5] = b): the rows first, then the
-	// columns.
-	P := &f.st.p
-	a, b := -c.k*c.cy, c.k*c.cx
-	for j := 0; j < n; j++ {
-		P[0*4+j] += a * P[2*4+j]
-		P[1*4+j] += b * P[2*4+j]
+// motion fills t for the step u reported over dtS seconds from the state st.
+func (f *Filter) motion(t *transition, st *State, u Step, dtS float64) {
+	l := &f.layout
+	sf, stt, br := 1.0, 1.0, 0.0
+	if l.forwardScale >= 0 {
+		sf, stt = st.x[l.forwardScale], st.x[l.turnScale]
 	}
-	for i := 0; i < n; i++ {
-		P[i*4+0] += a * P[i*4+2]
-		P[i*4+1] += b * P[i*4+2]
+	if l.rate >= 0 {
+		br = st.x[l.rate]
 	}
-	// P += Fu cu Fu^T on the pose block.
-	var g [9]float64
-	Sandwich(&g, fu, cu)
+	t.u = Step{sf * u.ForwardM, sf * u.LeftM, stt*u.TurnRad + br*dtS}
+	t.c.set(st.x[IHead], t.u)
+	var fu [9]float64
+	t.c.jacobians(nil, &fu)
+	// Columns of E: d(pose')/d(heading) less the identity, and the
+	// derivatives through the true step u' = (s_f a, s_f b, s_t dth + b_r dt).
+	t.cols[0], t.nc = IHead, 1
+	t.e[0][0], t.e[1][0], t.e[2][0] = -t.c.k*t.c.cy, t.c.k*t.c.cx, 0
+	if l.forwardScale >= 0 {
+		t.cols[1], t.cols[2] = l.forwardScale, l.turnScale
+		for i := 0; i < 3; i++ {
+			t.e[i][1] = fu[i*3+0]*u.ForwardM + fu[i*3+1]*u.LeftM
+			t.e[i][2] = fu[i*3+2] * u.TurnRad
+		}
+		t.nc = 3
+	}
+	if l.rate >= 0 {
+		t.cols[t.nc] = l.rate
+		for i := 0; i < 3; i++ {
+			t.e[i][t.nc] = fu[i*3+2] * dtS
+		}
+		t.nc++
+	}
 	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			P[i*4+j] += g[i*3+j]
+		t.fu[i*3+0] = fu[i*3+0] * sf
+		t.fu[i*3+1] = fu[i*3+1] * sf
+		t.fu[i*3+2] = fu[i*3+2] * stt
+	}
+}
+
+// Predict moves the estimate by the body step u the odometry reported over
+// dtS seconds, with 3x3 row-major step covariance cu, and adds q (variances,
+// one per state) to the diagonal: the time- and travel-driven process noise
+// (heading and IMU offset random walks, calibration random walks). The step
+// the pose moves by is the calibrated one, (s_f a, s_f b, s_t dth + b_r dt),
+// where the layout has those states; bias blocks decay by exp(-dtS/tau) and
+// gain their Gauss-Markov noise (DEVELOPERS.md, "Design: Motion prediction",
+// "Design: Sensors").
+//
+//	x' = f(x, u),  P' = F P F^T + G cu G^T + diag(q) + Q_bias
+func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]float64) {
+	var t transition
+	f.motion(&t, &f.st, u, dtS)
+	n := f.st.n
+	np := t.c.advance(f.st.Pose(), t.u)
+	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
+
+	// P = F P F^T for the pose rows: rows first, from the old rows, then
+	// columns, from the old columns.
+	P := &f.st.p
+	var tmp [3][MaxStates]float64
+	for i := 0; i < 3; i++ {
+		for j := 0; j < n; j++ {
+			acc := P[i*stride+j]
+			for c := 0; c < t.nc; c++ {
+				acc += t.e[i][c] * P[t.cols[c]*stride+j]
+			}
+			tmp[i][j] = acc
 		}
 	}
-	for i := 0; i < n; i++ {
-		P[i*4+i] += q[i]
+	for i := 0; i < 3; i++ {
+		copy(P[i*stride:i*stride+n], tmp[i][:n])
 	}
-	symmetrise(P[:], n, 4)
+	for j := 0; j < n; j++ {
+		var row [3]float64
+		for i := 0; i < 3; i++ {
+			acc := P[j*stride+i]
+			for c := 0; c < t.nc; c++ {
+				acc += t.e[i][c] * P[j*stride+t.cols[c]]
+			}
+			row[i] = acc
+		}
+		P[j*stride+0], P[j*stride+1], P[j*stride+2] = row[0], row[1], row[2]
+	}
+	// P += G cu G^T on the pose block.
+	var g [9]float64
+	Sandwich(&g, &t.fu, cu)
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			P[i*stride+j] += g[i*3+j]
+		}
+	}
+	f.decay(dtS)
+	for i := 0; i < n; i++ {
+		P[i*stride+i] += q[i]
+	}
+	symmetrise(P[:], n, stride)
+}
+
+// decay applies the bias blocks' Gauss-Markov transition over dtS seconds:
+// b' = phi b + w with phi = exp(-dtS/tau) and w of covariance
+// (1 - phi^2) C, C the block's stationary covariance. Splitting an interval
+// composes exactly: phi(f dt) phi((1-f) dt) = phi(dt), and the variances
+// add up to the same (1 - phi^2) C.
+func (f *Filter) decay(dtS float64) {
+	l := &f.layout
+	n := f.st.n
+	P := &f.st.p
+	for k := 0; k < l.nb; k++ {
+		b := &l.blocks[k]
+		phi := math.Exp(-dtS / b.TauS)
+		for i := b.at; i < b.at+b.Dim; i++ {
+			f.st.x[i] *= phi
+			for j := 0; j < n; j++ {
+				P[i*stride+j] *= phi
+				P[j*stride+i] *= phi
+			}
+		}
+		w := 1 - phi*phi
+		for i := 0; i < b.Dim; i++ {
+			for j := 0; j < b.Dim; j++ {
+				P[(b.at+i)*stride+b.at+j] += w * b.Cov[i*3+j]
+			}
+		}
+	}
+}
+
+// Transition writes into dst the Jacobian F of the motion Predict applies
+// to the state from (N x N, row-major with stride MaxStates), for the
+// Rauch-Tung-Striebel smoother.
+func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u Step, dtS float64) {
+	var t transition
+	f.motion(&t, from, u, dtS)
+	*dst = [MaxStates * MaxStates]float64{}
+	for i := 0; i < f.st.n; i++ {
+		dst[i*stride+i] = 1
+	}
+	for i := 0; i < 3; i++ {
+		for c := 0; c < t.nc; c++ {
+			dst[i*stride+t.cols[c]] += t.e[i][c]
+		}
+	}
+	l := &f.layout
+	for k := 0; k < l.nb; k++ {
+		b := &l.blocks[k]
+		phi := math.Exp(-dtS / b.TauS)
+		for i := b.at; i < b.at+b.Dim; i++ {
+			dst[i*stride+i] = phi
+		}
+	}
 }
 
 // Update applies measurement m unless gate refuses its NIS. It returns the
-// NIS. A gated measurement, or one that fails with an error, leaves the
-// filter unchanged. The update is in Joseph form,
+// raw NIS (with the measurement's own covariance). A gated measurement, or
+// one that fails with an error, leaves the filter unchanged. With a robust
+// model the update uses the noise R / w, w the model's weight of the raw
+// NIS (DEVELOPERS.md, "Design: Measurement updates"). Bias states are
+// consider states: their gain rows are zero. The update is in Joseph form,
 //
 //	P' = (I - K H) P (I - K H)^T + K R K^T,
 //
-// symmetrised and checked by Cholesky (Bar-Shalom, Li and Kirubarajan, 2001,
-// eq. 5.2.3-18 for the Joseph form; DEVELOPERS.md, "Design: Measurement
-// updates").
+// which holds for any gain, symmetrised and checked by Cholesky
+// (Bar-Shalom, Li and Kirubarajan, 2001, eq. 5.2.3-18 for the Joseph form).
 func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	d := m.Kind.Dim()
 	out := Outcome{Dim: d}
@@ -241,13 +390,27 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	if err := f.innovation(m, &v); err != nil {
 		return out, err
 	}
-	if err := f.innovationCovariance(m); err != nil {
-		return out, err
+	f.r = m.R
+	if err := f.innovationCovariance(d); err != nil {
+		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, err)
 	}
 	out.NIS = f.nis(&v, d)
 	if !gate.Passes(out.NIS) {
 		out.Gated = true
 		return out, nil
+	}
+	out.Weight = m.Robust.Weight(out.NIS, d)
+	if out.Weight < 1 {
+		// S = H P H^T + R / w: only the noise term changes.
+		for i := 0; i < d; i++ {
+			for j := 0; j < d; j++ {
+				f.r[i*3+j] = m.R[i*3+j] / out.Weight
+				f.s[i*3+j] += f.r[i*3+j] - m.R[i*3+j]
+			}
+		}
+		if !cholesky(f.s[:], f.l[:], d, measStride) {
+			return out, fmt.Errorf("re-weighted innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+		}
 	}
 	f.gain(d)
 	return out, f.correct(m, &v)
@@ -276,15 +439,15 @@ func (f *Filter) innovation(m *Measurement, v *[3]float64) error {
 }
 
 // innovationCovariance forms P H^T in f.k (n x d, stride 3, until the gain
-// replaces it) and S = H P H^T + R in f.s, and factorises S into f.l.
-func (f *Filter) innovationCovariance(m *Measurement) error {
-	n, d := f.st.n, m.Kind.Dim()
+// replaces it) and S = H P H^T + f.r in f.s, and factorises S into f.l.
+func (f *Filter) innovationCovariance(d int) error {
+	n := f.st.n
 	P, H := &f.st.p, &f.h
 	for i := 0; i < n; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
-				acc += P[i*4+k] * H[j*4+k]
+				acc += P[i*stride+k] * H[j*stride+k]
 			}
 			f.k[i*3+j] = acc
 		}
@@ -293,14 +456,14 @@ func (f *Filter) innovationCovariance(m *Measurement) error {
 		for j := 0; j < d; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
-				acc += H[i*4+k] * f.k[k*3+j]
+				acc += H[i*stride+k] * f.k[k*3+j]
 			}
-			f.s[i*3+j] = acc + m.R[i*3+j]
+			f.s[i*3+j] = acc + f.r[i*3+j]
 		}
 	}
 	symmetrise(f.s[:], d, measStride)
 	if !cholesky(f.s[:], f.l[:], d, measStride) {
-		return fmt.Errorf("innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+		return ErrNotPositiveDefinite
 	}
 	return nil
 }
@@ -317,10 +480,15 @@ func (f *Filter) nis(v *[3]float64, d int) float64 {
 }
 
 // gain keeps P H^T in f.pht and replaces f.k by K = P H^T S^-1, solving
-// S K_i^T = PHt_i^T row by row.
+// S K_i^T = PHt_i^T row by row; the rows of consider states are zero
+// (Schmidt 1966).
 func (f *Filter) gain(d int) {
 	f.pht = f.k
 	for i := 0; i < f.st.n; i++ {
+		if f.layout.consider(i) {
+			f.k[i*3], f.k[i*3+1], f.k[i*3+2] = 0, 0, 0
+			continue
+		}
 		var row, sol [3]float64
 		copy(row[:d], f.k[i*3:i*3+d])
 		cholSolveVec(f.l[:], d, measStride, row[:], sol[:])
@@ -340,50 +508,47 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 		}
 		f.st.x[i] += acc
 	}
-	f.st.x[IHead] = Wrap(f.st.x[IHead])
-	if n == 4 {
-		f.st.x[IOffset] = Wrap(f.st.x[IOffset])
-	}
-	f.joseph(m, n, d)
-	if !cholesky(f.st.p[:], f.chol[:], n, 4) {
+	f.st.wrapAngles()
+	f.joseph(n, d)
+	if !cholesky(f.st.p[:], f.chol[:], n, stride) {
 		f.st = f.saved
 		return fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
 	}
 	return nil
 }
 
-// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T, formed as rank-d
-// corrections instead of n x n products:
+// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T (R = f.r), formed as
+// rank-d corrections instead of n x n products:
 //
 //	A  = (I-KH) P = P - K (H P)
 //	P' = A (I-KH)^T + K R K^T = A + (K R - A H^T) K^T
 //
 // which is the same expression, regrouped (3dn^2 + nd^2 products instead of
-// 2n^3 + 2dn^2 + nd^2). H P is the transpose of P H^T, which Update kept in
-// f.pht (P is symmetric).
-func (f *Filter) joseph(m *Measurement, n, d int) {
+// 2n^3 + 2dn^2 + nd^2), and holds for any K. H P is the transpose of P H^T,
+// which Update kept in f.pht (P is symmetric).
+func (f *Filter) joseph(n, d int) {
 	P := &f.st.p
 	K, H := &f.k, &f.h
 	// A = P - K (H P), with (H P)[a][j] = pht[j][a].
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			acc := P[i*4+j]
+			acc := P[i*stride+j]
 			for a := 0; a < d; a++ {
 				acc -= K[i*3+a] * f.pht[j*3+a]
 			}
-			f.a[i*4+j] = acc
+			f.a[i*stride+j] = acc
 		}
 	}
 	// C = K R - A H^T (n x d, stride 3).
-	var c [12]float64
+	var c [MaxStates * 3]float64
 	for i := 0; i < n; i++ {
 		for a := 0; a < d; a++ {
 			var kr, ah float64
 			for b := 0; b < d; b++ {
-				kr += K[i*3+b] * m.R[b*3+a]
+				kr += K[i*3+b] * f.r[b*3+a]
 			}
 			for k := 0; k < n; k++ {
-				ah += f.a[i*4+k] * H[a*4+k]
+				ah += f.a[i*stride+k] * H[a*stride+k]
 			}
 			c[i*3+a] = kr - ah
 		}
@@ -391,23 +556,23 @@ func (f *Filter) joseph(m *Measurement, n, d int) {
 	// P' = A + C K^T.
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			acc := f.a[i*4+j]
+			acc := f.a[i*stride+j]
 			for a := 0; a < d; a++ {
 				acc += c[i*3+a] * K[j*3+a]
 			}
-			P[i*4+j] = acc
+			P[i*stride+j] = acc
 		}
 	}
-	symmetrise(P[:], n, 4)
+	symmetrise(P[:], n, stride)
 }
 
 // InitOffset initialises the IMU offset from an absolute IMU heading z with
 // variance r (DEVELOPERS.md, "Design: State"): offset = wrap(z - heading), with variance
 // P_hh + r and covariance -P_h,s with every other state s, because the
 // offset is z - heading and inherits heading's correlations with the
-// opposite sign. It panics on a 3-state filter.
+// opposite sign. It panics on a filter without the offset state.
 func (f *Filter) InitOffset(z, r float64) error {
-	if f.st.n != 4 {
+	if f.layout.offset != IOffset {
 		panic("estimator: InitOffset on a filter without an IMU offset state")
 	}
 	if !finite(z) || !finite(r) || !(r > 0) {
@@ -415,18 +580,21 @@ func (f *Filter) InitOffset(z, r float64) error {
 	}
 	P := &f.st.p
 	f.st.x[IOffset] = Wrap(z - f.st.x[IHead])
-	for s := 0; s < 3; s++ {
-		P[IOffset*4+s] = -P[IHead*4+s]
-		P[s*4+IOffset] = -P[IHead*4+s]
+	for s := 0; s < f.st.n; s++ {
+		if s == IOffset {
+			continue
+		}
+		P[IOffset*stride+s] = -P[IHead*stride+s]
+		P[s*stride+IOffset] = -P[IHead*stride+s]
 	}
-	P[IOffset*4+IOffset] = P[IHead*4+IHead] + r
+	P[IOffset*stride+IOffset] = P[IHead*stride+IHead] + r
 	return nil
 }
 
 // Reset sets the pose part of the estimate to pose with 3x3 covariance c
-// (row-major), clearing its correlation with the IMU offset, whose own
-// variance is kept. The caller re-initialises the offset on the next IMU
-// sample.
+// (row-major), clearing its correlation with every other state (the IMU
+// offset, the calibration, the biases), whose own covariance is kept. The
+// caller re-initialises the offset on the next IMU sample.
 func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	if !finite(pose.X) || !finite(pose.Y) || !finite(pose.Heading) {
 		return fmt.Errorf("pose: %w", ErrNotFinite)
@@ -437,10 +605,10 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = pose.X, pose.Y, Wrap(pose.Heading)
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			f.st.p[i*4+j] = c[i*3+j]
+			f.st.p[i*stride+j] = c[i*3+j]
 		}
-		if f.st.n == 4 {
-			f.st.p[i*4+3], f.st.p[3*4+i] = 0, 0
+		for j := 3; j < f.st.n; j++ {
+			f.st.p[i*stride+j], f.st.p[j*stride+i] = 0, 0
 		}
 	}
 	return nil
@@ -449,7 +617,7 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 // Position95 returns the radius in metres of the 95% position ellipse's major
 // semi-axis: sqrt(chi2_2(0.95) * largest eigenvalue of the position block).
 func (s *State) Position95() float64 {
-	a, b, c := s.p[0], s.p[1], s.p[5]
+	a, b, c := s.p[0], s.p[1], s.p[stride+1]
 	lmax := (a+c)/2 + math.Sqrt(((a-c)/2)*((a-c)/2)+b*b)
 	// chi-square 2 dof, 0.95 quantile = -2 ln(0.05) (closed form for 2 dof).
 	return math.Sqrt(-2 * math.Log(0.05) * lmax)

@@ -45,6 +45,13 @@ type Noise struct {
 	StepForwardVarM2PerM  float64
 	StepLeftVarM2PerM     float64
 	StepTurnVarRad2PerRad float64
+	// StepForwardVarM2PerS, StepLeftVarM2PerS, StepTurnVarRad2PerS: noise
+	// of body steps per second elapsed, beside the terms above (odometry
+	// from commanded velocities errs with time, moving or not). Zero (the
+	// default) leaves the term out.
+	StepForwardVarM2PerS float64
+	StepLeftVarM2PerS    float64
+	StepTurnVarRad2PerS  float64
 	// IMUHeadingVarRad2: variance of one absolute IMU heading reading.
 	IMUHeadingVarRad2 float64
 	// IMUTurnVarRad2PerRad: variance of an IMU turn row per radian turned.
@@ -53,15 +60,13 @@ type Noise struct {
 	IMUOffsetVarRad2PerS float64
 }
 
-// stepNoise writes the covariance of a body step the robot computed itself.
-func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step) {
-	estimator.StepNoise(dst, s, n.StepForwardVarM2PerM, n.StepLeftVarM2PerM, n.StepTurnVarRad2PerRad)
-}
-
-// timeNoise writes the time-driven process noise of dtS seconds for an
-// n-state filter.
-func (n *Noise) timeNoise(dst *[4]float64, states int, dtS float64) {
-	estimator.TimeNoise(dst, states, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+// stepNoise writes the covariance of a body step the robot computed itself
+// over dtS seconds.
+func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step, dtS float64) {
+	estimator.StepNoise(dst, s, dtS, &estimator.StepRates{
+		ForwardVarM2PerM: n.StepForwardVarM2PerM, LeftVarM2PerM: n.StepLeftVarM2PerM, TurnVarRad2PerRad: n.StepTurnVarRad2PerRad,
+		ForwardVarM2PerS: n.StepForwardVarM2PerS, LeftVarM2PerS: n.StepLeftVarM2PerS, TurnVarRad2PerS: n.StepTurnVarRad2PerS,
+	})
 }
 
 // DefaultNoise returns the noise model used where a Noise field is zero. It

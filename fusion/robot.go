@@ -11,6 +11,7 @@ import (
 type Robot struct {
 	cfg       Config
 	n         int
+	layout    estimator.Layout
 	gates     estimator.Gates
 	agreeGate float64
 	landmarks map[string][2]float64
@@ -47,11 +48,12 @@ func New(cfg Config) (*Robot, error) {
 		return nil, err
 	}
 	cfg = cfg.withDefaults()
-	r := &Robot{cfg: cfg, n: 3, landmarks: map[string][2]float64{}}
-	if cfg.IMU == IMUAbsolute {
-		r.n = 4
-	}
+	r := &Robot{cfg: cfg, landmarks: map[string][2]float64{}}
 	var err error
+	if r.layout, err = estimator.NewLayout(estimator.LayoutSpec{IMUOffset: cfg.IMU == IMUAbsolute}); err != nil {
+		return nil, cfgErr("sensors", "%v", err)
+	}
+	r.n = r.layout.Size()
 	if r.gates, err = estimator.NewGates(cfg.GateProbability); err != nil {
 		return nil, cfgErr("gate_probability", "%v", err)
 	}
@@ -67,13 +69,13 @@ func New(cfg Config) (*Robot, error) {
 	for i := 0; i < 3; i++ {
 		copy(p[i*r.n:i*r.n+3], cfg.StartCov[i*3:i*3+3])
 	}
-	if r.n == 4 {
-		p[15] = 1 // replaced when the first IMU sample initialises the offset
+	if o := r.layout.Offset(); o >= 0 {
+		p[o*r.n+o] = 1 // replaced when the first IMU sample initialises the offset
 	}
-	if r.f, err = estimator.NewFilter(r.n, x, p); err != nil {
+	if r.f, err = estimator.NewFilter(&r.layout, x, p); err != nil {
 		return nil, cfgErr("start_covariance", "%v", err)
 	}
-	r.scratch, _ = estimator.NewFilter(r.n, x, p)
+	r.scratch, _ = estimator.NewFilter(&r.layout, x, p)
 	r.base = checkpoint{est: r.f.State()}
 	r.stats.init()
 	r.trust.reasons = TrustNoOdometry
@@ -83,7 +85,9 @@ func New(cfg Config) (*Robot, error) {
 // Config returns the robot's configuration with defaults filled in.
 func (r *Robot) Config() Config { return r.cfg }
 
-// StateSize returns 3, or 4 with the IMU offset state.
+// StateSize returns the number of states: 3 for the pose, and one for the
+// IMU offset, the odometry calibration states and the bias blocks as
+// configured (DEVELOPERS.md, "Design: State").
 func (r *Robot) StateSize() int { return r.n }
 
 // NewestNs returns the end of the newest odometry interval (0 before any).

@@ -74,7 +74,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	if err != nil {
 		return nil, err
 	}
-	d := wdec{b: b}
+	d := wdec{b: b, angles: r.layout.Angles()}
 	version := uint64(0)
 	var filter estimator.State
 	for num, ok := d.next(); ok; num, ok = d.next() {
@@ -199,8 +199,8 @@ func (r *Robot) checkRestored() error {
 
 func encState(e *wenc, s *estimator.State) {
 	n := s.Size()
-	var x [4]float64
-	var p [16]float64
+	var x [estimator.MaxStates]float64
+	var p [estimator.MaxStates * estimator.MaxStates]float64
 	s.MeanInto(x[:])
 	s.CovarianceInto(p[:])
 	e.uint(1, uint64(n))
@@ -227,11 +227,11 @@ func decState(d *wdec) estimator.State {
 		// A held entry has no checkpoint yet: its estimate is the zero State.
 		return estimator.State{}
 	}
-	if n != 3 && n != 4 || len(x) != int(n) || len(p) != int(n*n) {
+	if n < 3 || n > estimator.MaxStates || len(x) != int(n) || len(p) != int(n*n) {
 		d.fail("estimate of size %d with %d mean and %d covariance values", n, len(x), len(p))
 		return estimator.State{}
 	}
-	return estimator.NewState(int(n), x, p)
+	return estimator.NewState(int(n), d.angles, x, p)
 }
 
 func encCheckpoint(e *wenc, c *checkpoint) {

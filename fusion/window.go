@@ -130,9 +130,10 @@ func (r *Robot) errOf(seq uint64) error {
 
 // predict moves filter f by odometry entry e with its time-driven noise.
 func (r *Robot) predict(f *estimator.Filter, e *entry) {
-	var q [4]float64
-	r.cfg.Noise.timeNoise(&q, r.n, float64(e.t1-e.t0)*1e-9)
-	f.Predict(e.step, &e.cov, &q)
+	var q [estimator.MaxStates]float64
+	dt := float64(e.t1-e.t0) * 1e-9
+	r.processNoise(&q, e.step, dt)
+	f.Predict(e.step, &e.cov, dt, &q)
 }
 
 // replayFrom rewinds the filter to the checkpoint before live entry i and

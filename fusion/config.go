@@ -162,6 +162,11 @@ type Config struct {
 	StartPose estimator.Pose
 	StartCov  []float64
 	Landmarks []Landmark
+	// Sensors are the sources of fixes, at most MaxSensors; a fix must
+	// name one (DEVELOPERS.md, "Design: Sensors").
+	Sensors []Sensor
+	// Calibration adds odometry calibration states.
+	Calibration Calibration
 }
 
 // ErrConfig marks every configuration error.
@@ -220,6 +225,12 @@ func (c Config) withDefaults() Config {
 	if c.StartCov == nil {
 		c.StartCov = []float64{0.0025, 0, 0, 0, 0.0025, 0, 0, 0, 0.0012}
 	}
+	c.Sensors = append([]Sensor(nil), c.Sensors...)
+	for i := range c.Sensors {
+		c.Sensors[i] = c.Sensors[i].withDefaults()
+	}
+	def(&c.Calibration.ScaleStd, 0.1)
+	def(&c.Calibration.RateBiasStdRadPerS, 0.01)
 	return c
 }
 
@@ -227,7 +238,7 @@ func (c Config) withDefaults() Config {
 // wrapping ErrConfig that names the offending field.
 func (c Config) Validate() error {
 	c = c.withDefaults()
-	for _, check := range []func() error{c.checkWheels, c.checkNoise, c.checkLimits, c.checkStart, c.checkLandmarks, c.checkLayout} {
+	for _, check := range []func() error{c.checkWheels, c.checkNoise, c.checkLimits, c.checkStart, c.checkLandmarks, c.checkLayout, c.checkSensors, c.checkCalibration, c.checkState} {
 		if err := check(); err != nil {
 			return err
 		}
@@ -272,6 +283,18 @@ func (c *Config) checkNoise() error {
 	for _, n := range noise {
 		if !(n.v > 0) || !finiteAll(n.v) {
 			return cfgErr(n.name, "%v must be a positive finite variance rate", n.v)
+		}
+	}
+	for _, n := range []struct {
+		name string
+		v    float64
+	}{
+		{"noise.step_forward_var_m2_per_s", c.Noise.StepForwardVarM2PerS},
+		{"noise.step_left_var_m2_per_s", c.Noise.StepLeftVarM2PerS},
+		{"noise.step_turn_var_rad2_per_s", c.Noise.StepTurnVarRad2PerS},
+	} {
+		if !(n.v >= 0) || !finiteAll(n.v) {
+			return cfgErr(n.name, "%v must be a finite variance rate, not negative", n.v)
 		}
 	}
 	return nil

@@ -90,7 +90,8 @@ func fuzzSamples(t *testing.T, data []byte) {
 			case 2:
 				res = r.AddHeading(Heading{StampNs: stamp + dt, HeadingRad: in.small() * 10, VarRad2: math.Abs(in.small())})
 			case 3:
-				res = r.AddFix(Fix{StampNs: stamp + dt, Kind: FixKind(in.byte()%5 + 1), XM: in.small() * 100, YM: in.small(), HeadingRad: in.small(),
+				k := FixKind(in.byte()%5 + 1)
+				res = r.AddFix(Fix{SensorID: k.String(), StampNs: stamp + dt, Kind: k, XM: in.small() * 100, YM: in.small(), HeadingRad: in.small(),
 					LandmarkID: "post-1", RangeM: ptr(in.small() * 10), Cov: []float64{math.Abs(in.small()) + 1e-4, 0, 0, 0, 0.01, 0, 0, 0, 0.01}[:in.byte()%10]})
 			case 4:
 				res = r.Reseed(stamp+dt, estimator.Pose{X: in.small(), Y: in.small(), Heading: in.small()}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, math.Abs(in.small()) + 1e-6})

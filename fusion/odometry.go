@@ -240,4 +240,12 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 func (r *Robot) processNoise(q *[estimator.MaxStates]float64, step estimator.Step, dtS float64) {
 	n := &r.cfg.Noise
 	estimator.TimeNoise(q, &r.layout, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+	c := &r.cfg.Calibration
+	if i := r.layout.ForwardScale(); i >= 0 {
+		q[i] = c.ForwardScaleVarPerM * math.Hypot(step.ForwardM, step.LeftM)
+		q[r.layout.TurnScale()] = c.TurnScaleVarPerRad * math.Abs(step.TurnRad)
+	}
+	if i := r.layout.RateBias(); i >= 0 {
+		q[i] = c.RateBiasVarRad2PerS3 * dtS
+	}
 }

@@ -15,6 +15,10 @@ type Robot struct {
 	gates     estimator.Gates
 	agreeGate float64
 	landmarks map[string][2]float64
+	// sensorIndex maps a sensor id to its index in cfg.Sensors;
+	// sensorBias holds each sensor's first bias state (0: none).
+	sensorIndex map[string]int
+	sensorBias  []int
 
 	f       *estimator.Filter
 	scratch *estimator.Filter
@@ -48,9 +52,14 @@ func New(cfg Config) (*Robot, error) {
 		return nil, err
 	}
 	cfg = cfg.withDefaults()
-	r := &Robot{cfg: cfg, landmarks: map[string][2]float64{}}
+	r := &Robot{cfg: cfg, landmarks: map[string][2]float64{}, sensorIndex: map[string]int{}}
+	for i, s := range cfg.Sensors {
+		r.sensorIndex[s.ID] = i
+	}
+	spec, first := cfg.layoutSpec()
+	r.sensorBias = first
 	var err error
-	if r.layout, err = estimator.NewLayout(estimator.LayoutSpec{IMUOffset: cfg.IMU == IMUAbsolute}); err != nil {
+	if r.layout, err = estimator.NewLayout(spec); err != nil {
 		return nil, cfgErr("sensors", "%v", err)
 	}
 	r.n = r.layout.Size()
@@ -72,6 +81,7 @@ func New(cfg Config) (*Robot, error) {
 	if o := r.layout.Offset(); o >= 0 {
 		p[o*r.n+o] = 1 // replaced when the first IMU sample initialises the offset
 	}
+	cfg.initialState(&r.layout, x, p)
 	if r.f, err = estimator.NewFilter(&r.layout, x, p); err != nil {
 		return nil, cfgErr("start_covariance", "%v", err)
 	}

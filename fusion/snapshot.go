@@ -11,9 +11,11 @@ import (
 // SnapshotVersion is the layout version of Snapshot's bytes (message
 // reckon.v1.RobotSnapshot). Version 3: the protocol buffer layout
 // (versions 1 and 2 were gob of Go structs, which a field rename silently
-// emptied). A change of layout or meaning bumps it, with a new golden file
-// in testdata/snapshots.
-const SnapshotVersion = 3
+// emptied). Version 4: estimates of up to estimator.MaxStates states
+// (IMU offset, odometry calibration, sensor bias blocks) and measurements
+// with their bias states and robust weighting. A change of layout or
+// meaning bumps it, with a new golden file in testdata/snapshots.
+const SnapshotVersion = 4
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -323,6 +325,11 @@ func encMeasurement(e *wenc, m *estimator.Measurement) {
 	e.double(4, m.LandmarkY)
 	e.doubles(5, m.Z[:])
 	e.doubles(6, m.R[:])
+	if m.Bias != [3]int{} {
+		e.ints(7, []int64{int64(m.Bias[0]), int64(m.Bias[1]), int64(m.Bias[2])})
+	}
+	e.uint(8, uint64(m.Robust.Kind))
+	e.double(9, m.Robust.Param)
 }
 
 func decMeasurement(d *wdec) estimator.Measurement {
@@ -341,6 +348,19 @@ func decMeasurement(d *wdec) estimator.Measurement {
 			d.doubles(num, m.Z[:])
 		case 6:
 			d.doubles(num, m.R[:])
+		case 7:
+			b := d.intSlice(num)
+			if len(b) != 3 {
+				d.fail("measurement: %d bias indices", len(b))
+				break
+			}
+			for i, v := range b {
+				m.Bias[i] = int(v)
+			}
+		case 8:
+			m.Robust.Kind = estimator.RobustKind(d.uint(num))
+		case 9:
+			m.Robust.Param = d.double(num)
 		default:
 			d.fail("measurement: unknown field %d", num)
 		}

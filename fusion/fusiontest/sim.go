@@ -141,6 +141,12 @@ func (s Scenario) Config() fusion.Config {
 		Recovery:  fusion.Recovery{Enabled: true},
 		StartCov:  []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
 		Landmarks: Markers(),
+		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixPose, Mount: CameraMount,
+			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}},
+	}
+	if s.Markers {
+		c.Sensors[0].Kind = fusion.FixLandmark
+		c.Sensors[0].Cov = []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}
 	}
 	cpm, bits := 0.0, 0
 	if s.Counts {
@@ -432,7 +438,7 @@ func (sm *Sim) emitCamera(t int64) {
 		if outlier {
 			r += 1 + 2*sm.rng.Float64()
 		}
-		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, Mount: CameraMount, LandmarkID: m.ID,
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, LandmarkID: m.ID,
 			RangeM: &r, BearingRad: &b, Cov: []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}}
 	} else {
 		x, y, h := cam.X+sm.gauss(cameraStdM), cam.Y+sm.gauss(cameraStdM), cam.Heading+sm.gauss(cameraStdRad)
@@ -441,7 +447,7 @@ func (sm *Sim) emitCamera(t int64) {
 			d := 1 + 2*sm.rng.Float64()
 			x, y, h = x+d*math.Cos(a), y+d*math.Sin(a), h+sm.rng.Float64()*2-1
 		}
-		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, Mount: CameraMount, XM: x, YM: y, HeadingRad: estimator.Wrap(h),
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, XM: x, YM: y, HeadingRad: estimator.Wrap(h),
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
 	}
 	in.Outlier = outlier

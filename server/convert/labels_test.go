@@ -38,6 +38,7 @@ func TestLabelTablesMatchProto(t *testing.T) {
 		pb.InputKind(0).Descriptor().FullName():          rows(fusion.InputKindLabels()),
 		pb.ConsistencyVerdict(0).Descriptor().FullName(): rows(fusion.ConsistencyVerdictLabels()),
 		pb.ImuMode(0).Descriptor().FullName():            rows(fusion.IMUModeLabels()),
+		pb.RobustLoss(0).Descriptor().FullName():         rows(fusion.RobustLossLabels()),
 	}
 	seen := map[protoreflect.FullName]bool{}
 	var walk func(protoreflect.EnumDescriptors)

@@ -755,7 +755,9 @@ type IngestResponse struct {
 	Verdict Verdict `protobuf:"varint,3,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`
 	// Why it was refused (VERDICT_INVALID, VERDICT_TOO_OLD), naming the field.
 	Reason string `protobuf:"bytes,4,opt,name=reason,proto3" json:"reason,omitempty"`
-	// A fix's normalised innovation squared.
+	// A fix's normalised innovation squared with its own covariance (the raw
+	// NIS: before any robust re-weighting by its sensor's RobustLoss), the
+	// one the gate and the consistency statistics test against chi-square.
 	Nis float64 `protobuf:"fixed64,5,opt,name=nis,proto3" json:"nis,omitempty"`
 	// Degrees of freedom of nis.
 	NisDimension int32 `protobuf:"varint,6,opt,name=nis_dimension,json=nisDimension,proto3" json:"nis_dimension,omitempty"`

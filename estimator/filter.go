@@ -48,6 +48,22 @@ func NewState(n int, angles uint16, x, p []float64) State {
 	return s
 }
 
+// CopyFrom makes s a copy of src. For states of one size it copies only
+// the Size() x Size() part that is in use (every entry beyond it is zero in
+// both), which is what keeps checkpoints cheap.
+func (s *State) CopyFrom(src *State) {
+	n := src.n
+	if s.n != n {
+		*s = *src
+		return
+	}
+	s.angles = src.angles
+	copy(s.x[:n], src.x[:n])
+	for i := 0; i < n; i++ {
+		copy(s.p[i*stride:i*stride+n], src.p[i*stride:i*stride+n])
+	}
+}
+
 // Size returns the state size; 0 for the zero State.
 func (s *State) Size() int { return s.n }
 
@@ -192,13 +208,16 @@ func (f *Filter) Layout() *Layout { return &f.layout }
 // State returns a copy of the estimate.
 func (f *Filter) State() State { return f.st }
 
+// StateInto copies the estimate into dst (State.CopyFrom).
+func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
+
 // SetState replaces the estimate by a copy of s (a checkpoint taken with
-// State). It panics if s has another state size.
+// State or StateInto). It panics if s has another state size.
 func (f *Filter) SetState(s *State) {
 	if s.n != f.st.n {
 		panic(fmt.Errorf("%w: state of size %d set on a filter of size %d", ErrShape, s.n, f.st.n))
 	}
-	f.st = *s
+	f.st.CopyFrom(s)
 }
 
 // Pose returns the pose part of the mean.
@@ -500,7 +519,7 @@ func (f *Filter) gain(d int) {
 // takes both back if the covariance is no longer positive definite.
 func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 	n, d := f.st.n, m.Kind.Dim()
-	f.saved = f.st
+	f.saved.CopyFrom(&f.st)
 	for i := 0; i < n; i++ {
 		var acc float64
 		for j := 0; j < d; j++ {
@@ -511,7 +530,7 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 	f.st.wrapAngles()
 	f.joseph(n, d)
 	if !cholesky(f.st.p[:], f.chol[:], n, stride) {
-		f.st = f.saved
+		f.st.CopyFrom(&f.saved)
 		return fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
 	}
 	return nil

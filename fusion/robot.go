@@ -100,6 +100,24 @@ func (r *Robot) Config() Config { return r.cfg }
 // configured (DEVELOPERS.md, "Design: State").
 func (r *Robot) StateSize() int { return r.n }
 
+// Layout returns the layout of the robot's state: where the IMU offset,
+// the odometry calibration states and the sensors' bias blocks are.
+func (r *Robot) Layout() *estimator.Layout { return &r.layout }
+
+// SensorBias returns the index of the first state of the bias block of
+// the configured sensor id, or 0 if it has none (white errors or no such
+// sensor).
+func (r *Robot) SensorBias(id string) int {
+	if i, ok := r.sensorIndex[id]; ok {
+		return r.sensorBias[i]
+	}
+	return 0
+}
+
+// Estimate returns the whole estimate at the newest odometry: every state
+// of the layout, with its covariance.
+func (r *Robot) Estimate() estimator.State { return r.f.State() }
+
 // NewestNs returns the end of the newest odometry interval (0 before any).
 func (r *Robot) NewestNs() int64 { return r.newest }
 

@@ -91,7 +91,8 @@ func (r *Robot) apply(e *entry) {
 		r.setErr(e.seq, err)
 	}
 	e.failed = err != nil
-	e.after = checkpoint{r.f.State(), r.ready}
+	r.f.StateInto(&e.after.est)
+	e.after.offsetReady = r.ready
 }
 
 // entryErr is the error of a failed entry, by its input's sequence number.
@@ -240,7 +241,8 @@ func (r *Robot) dropFront(k int) {
 			r.setErr(live[i].seq, nil)
 		}
 	}
-	r.base = live[k-1].after
+	r.base.est.CopyFrom(&live[k-1].after.est)
+	r.base.offsetReady = live[k-1].after.offsetReady
 	r.baseT = live[k-1].t1
 	r.head += k
 	if r.head > 1024 && r.head > len(r.ents)/2 {

@@ -163,8 +163,6 @@ type Filter struct {
 	layout Layout
 
 	// Scratch, reused by every call.
-	fu    [9]float64
-	a     [MaxStates * MaxStates]float64
 	h     [3 * MaxStates]float64
 	s, l  [9]float64
 	r     [9]float64
@@ -462,10 +460,22 @@ func (f *Filter) innovation(m *Measurement, v *[3]float64) error {
 func (f *Filter) innovationCovariance(d int) error {
 	n := f.st.n
 	P, H := &f.st.p, &f.h
+	// H is sparse (a few pose columns and the bias states): the products
+	// run over its non-zero columns only.
+	var nz [3][MaxStates]int
+	var nnz [3]int
+	for j := 0; j < d; j++ {
+		for k := 0; k < n; k++ {
+			if H[j*stride+k] != 0 {
+				nz[j][nnz[j]] = k
+				nnz[j]++
+			}
+		}
+	}
 	for i := 0; i < n; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
-			for k := 0; k < n; k++ {
+			for _, k := range nz[j][:nnz[j]] {
 				acc += P[i*stride+k] * H[j*stride+k]
 			}
 			f.k[i*3+j] = acc
@@ -474,7 +484,7 @@ func (f *Filter) innovationCovariance(d int) error {
 	for i := 0; i < d; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
-			for k := 0; k < n; k++ {
+			for _, k := range nz[i][:nnz[i]] {
 				acc += H[i*stride+k] * f.k[k*3+j]
 			}
 			f.s[i*3+j] = acc + f.r[i*3+j]
@@ -540,49 +550,38 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 // rank-d corrections instead of n x n products:
 //
 //	A  = (I-KH) P = P - K (H P)
-//	P' = A (I-KH)^T + K R K^T = A + (K R - A H^T) K^T
+//	P' = A (I-KH)^T + K R K^T = A + (K R - A H^T) K^T = A + (K S - P H^T) K^T
 //
-// which is the same expression, regrouped (3dn^2 + nd^2 products instead of
-// 2n^3 + 2dn^2 + nd^2), and holds for any K. H P is the transpose of P H^T,
-// which Update kept in f.pht (P is symmetric).
+// which is the same expression, regrouped, and holds for any K:
+// A H^T = P H^T - K H P H^T and H P H^T + R = S, the innovation covariance
+// the gain was solved with (in f.s; Cholesky wrote its factor elsewhere).
+// C = K S - P H^T is the gain's residual: rounding for the Kalman rows,
+// -P H^T for the zeroed rows of consider states. H P is the transpose of
+// P H^T, which Update kept in f.pht (P is symmetric). P' = P - K (P H^T)^T
+// + C K^T is symmetric by construction, so only its upper triangle is
+// formed (2d products per entry) and mirrored.
 func (f *Filter) joseph(n, d int) {
 	P := &f.st.p
-	K, H := &f.k, &f.h
-	// A = P - K (H P), with (H P)[a][j] = pht[j][a].
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			acc := P[i*stride+j]
-			for a := 0; a < d; a++ {
-				acc -= K[i*3+a] * f.pht[j*3+a]
-			}
-			f.a[i*stride+j] = acc
-		}
-	}
-	// C = K R - A H^T (n x d, stride 3).
+	K := &f.k
 	var c [MaxStates * 3]float64
 	for i := 0; i < n; i++ {
 		for a := 0; a < d; a++ {
-			var kr, ah float64
+			acc := -f.pht[i*3+a]
 			for b := 0; b < d; b++ {
-				kr += K[i*3+b] * f.r[b*3+a]
+				acc += K[i*3+b] * f.s[b*3+a]
 			}
-			for k := 0; k < n; k++ {
-				ah += f.a[i*stride+k] * H[a*stride+k]
-			}
-			c[i*3+a] = kr - ah
+			c[i*3+a] = acc
 		}
 	}
-	// P' = A + C K^T.
 	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			acc := f.a[i*stride+j]
+		for j := i; j < n; j++ {
+			acc := P[i*stride+j]
 			for a := 0; a < d; a++ {
-				acc += c[i*3+a] * K[j*3+a]
+				acc += c[i*3+a]*K[j*3+a] - K[i*3+a]*f.pht[j*3+a]
 			}
-			P[i*stride+j] = acc
+			P[i*stride+j], P[j*stride+i] = acc, acc
 		}
 	}
-	symmetrise(P[:], n, stride)
 }
 
 // InitOffset initialises the IMU offset from an absolute IMU heading z with

@@ -59,9 +59,9 @@ func (s *State) CopyFrom(src *State) {
 	}
 	s.angles = src.angles
 	copy(s.x[:n], src.x[:n])
-	for i := 0; i < n; i++ {
-		copy(s.p[i*stride:i*stride+n], src.p[i*stride:i*stride+n])
-	}
+	// One block from the first row's start to the last row's end: the
+	// columns past n between rows are zero in both.
+	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
 }
 
 // Size returns the state size; 0 for the zero State.
@@ -170,6 +170,12 @@ type Filter struct {
 	pht   [MaxStates * 3]float64
 	chol  [MaxStates * MaxStates]float64
 	saved State
+	// phi caches the bias blocks' decay exp(-dt/tau) for the interval phiDt
+	// (odometry mostly comes at one rate); a pure function of dt, so the
+	// cache changes no result.
+	phi   [maxBlocks]float64
+	phiDt float64
+	phiOK bool
 }
 
 // NewFilter returns a filter with the layout l at mean x and covariance p
@@ -194,6 +200,8 @@ func NewFilter(l *Layout, x, p []float64) (*Filter, error) {
 	f := &Filter{layout: *l}
 	f.st = NewState(n, l.Angles(), x, p)
 	f.st.wrapAngles()
+	// Symmetric to the bit: Predict keeps it so outside the pose block.
+	symmetrise(f.st.p[:], n, stride)
 	return f, nil
 }
 
@@ -294,32 +302,46 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 	np := t.c.advance(f.st.Pose(), t.u)
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
 
-	// P = F P F^T for the pose rows: rows first, from the old rows, then
-	// columns, from the old columns.
+	// P = F P F^T with F = I + E, E non-zero only in the pose rows: the
+	// pose rows of M = F P are r_a = P_a + sum_c e[a][c] P_cols[c]; the
+	// product M F^T changes only the pose columns, and since P is
+	// symmetric its pose columns outside the pose block are the pose rows
+	// r_a, mirrored; the pose block is r_a(b) + sum_c r_a(cols[c]) e[b][c].
+	// Without calibration states the heading row of E is zero (rows = 2).
 	P := &f.st.p
-	var tmp [3][MaxStates]float64
-	for i := 0; i < 3; i++ {
-		for j := 0; j < n; j++ {
-			acc := P[i*stride+j]
-			for c := 0; c < t.nc; c++ {
-				acc += t.e[i][c] * P[t.cols[c]*stride+j]
+	rows := 3
+	if t.nc == 1 {
+		rows = 2
+	}
+	var r [3][MaxStates]float64
+	for a := 0; a < 3; a++ {
+		copy(r[a][:n], P[a*stride:a*stride+n])
+	}
+	for a := 0; a < rows; a++ {
+		ra := &r[a]
+		for c := 0; c < t.nc; c++ {
+			e := t.e[a][c]
+			pc := P[t.cols[c]*stride : t.cols[c]*stride+n]
+			for j, v := range pc {
+				ra[j] += e * v
 			}
-			tmp[i][j] = acc
 		}
 	}
-	for i := 0; i < 3; i++ {
-		copy(P[i*stride:i*stride+n], tmp[i][:n])
-	}
-	for j := 0; j < n; j++ {
-		var row [3]float64
-		for i := 0; i < 3; i++ {
-			acc := P[j*stride+i]
-			for c := 0; c < t.nc; c++ {
-				acc += t.e[i][c] * P[j*stride+t.cols[c]]
-			}
-			row[i] = acc
+	for a := 0; a < 3; a++ {
+		for j := 3; j < n; j++ {
+			P[a*stride+j], P[j*stride+a] = r[a][j], r[a][j]
 		}
-		P[j*stride+0], P[j*stride+1], P[j*stride+2] = row[0], row[1], row[2]
+	}
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			acc := r[a][b]
+			if b < rows {
+				for c := 0; c < t.nc; c++ {
+					acc += r[a][t.cols[c]] * t.e[b][c]
+				}
+			}
+			P[a*stride+b] = acc
+		}
 	}
 	// P += G cu G^T on the pose block.
 	var g [9]float64
@@ -333,7 +355,8 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 	for i := 0; i < n; i++ {
 		P[i*stride+i] += q[i]
 	}
-	symmetrise(P[:], n, stride)
+	// Everything outside the pose block was written symmetric.
+	symmetrise(P[:], 3, stride)
 }
 
 // decay applies the bias blocks' Gauss-Markov transition over dtS seconds:
@@ -345,9 +368,10 @@ func (f *Filter) decay(dtS float64) {
 	l := &f.layout
 	n := f.st.n
 	P := &f.st.p
+	f.decays(dtS)
 	for k := 0; k < l.nb; k++ {
 		b := &l.blocks[k]
-		phi := math.Exp(-dtS / b.TauS)
+		phi := f.phi[k]
 		for i := b.at; i < b.at+b.Dim; i++ {
 			f.st.x[i] *= phi
 			for j := 0; j < n; j++ {
@@ -362,6 +386,17 @@ func (f *Filter) decay(dtS float64) {
 			}
 		}
 	}
+}
+
+// decays sets f.phi to the bias blocks' decay over dtS seconds.
+func (f *Filter) decays(dtS float64) {
+	if f.phiOK && dtS == f.phiDt {
+		return
+	}
+	for k := 0; k < f.layout.nb; k++ {
+		f.phi[k] = math.Exp(-dtS / f.layout.blocks[k].TauS)
+	}
+	f.phiDt, f.phiOK = dtS, true
 }
 
 // Transition writes into dst the Jacobian F of the motion Predict applies
@@ -380,11 +415,11 @@ func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u 
 		}
 	}
 	l := &f.layout
+	f.decays(dtS)
 	for k := 0; k < l.nb; k++ {
 		b := &l.blocks[k]
-		phi := math.Exp(-dtS / b.TauS)
 		for i := b.at; i < b.at+b.Dim; i++ {
-			dst[i*stride+i] = phi
+			dst[i*stride+i] = f.phi[k]
 		}
 	}
 }

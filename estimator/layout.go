@@ -103,6 +103,7 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 		if err := CheckCovariance(c, b.Dim); err != nil {
 			return Layout{}, fmt.Errorf("bias block %d: %w", k, err)
 		}
+		symmetrise(b.Cov[:], b.Dim, 3) // symmetric to the bit, as the filter keeps P
 		l.blocks[l.nb] = biasBlock{at: l.n, BiasSpec: b}
 		l.nb++
 		l.n += b.Dim

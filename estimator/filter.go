@@ -64,6 +64,20 @@ func (s *State) CopyFrom(src *State) {
 	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
 }
 
+// SetPacked makes s the state of size n with angular states angles whose
+// packed form (Filter.Pack) is src, copying only what is in use when s
+// already has that size.
+func (s *State) SetPacked(n int, angles uint16, src []float64) {
+	if s.n != n {
+		*s = State{n: n}
+	}
+	s.angles = angles
+	copy(s.x[:n], src[:n])
+	for i := 0; i < n; i++ {
+		copy(s.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
+	}
+}
+
 // Size returns the state size; 0 for the zero State.
 func (s *State) Size() int { return s.n }
 
@@ -170,12 +184,13 @@ type Filter struct {
 	pht   [MaxStates * 3]float64
 	chol  [MaxStates * MaxStates]float64
 	saved State
-	// phi caches the bias blocks' decay exp(-dt/tau) for the interval phiDt
-	// (odometry mostly comes at one rate); a pure function of dt, so the
-	// cache changes no result.
-	phi   [maxBlocks]float64
-	phiDt float64
-	phiOK bool
+	// phi caches the bias blocks' decay exp(-dt/tau) for the intervals
+	// phiDt (odometry mostly comes at one rate, split now and then by a
+	// late fix); a pure function of dt, so the cache changes no result.
+	phi   [2][maxBlocks]float64
+	phiDt [2]float64
+	phiOK [2]bool
+	cur   int // the phi entry in use
 }
 
 // NewFilter returns a filter with the layout l at mean x and covariance p
@@ -216,6 +231,30 @@ func (f *Filter) State() State { return f.st }
 
 // StateInto copies the estimate into dst (State.CopyFrom).
 func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
+
+// PackedSize returns the length of the filter's packed estimate: the mean
+// and the covariance, N + N*N values.
+func (f *Filter) PackedSize() int { return f.st.n + f.st.n*f.st.n }
+
+// Pack writes the estimate into dst (PackedSize values: the mean, then the
+// covariance row-major), the compact form a history of checkpoints keeps.
+func (f *Filter) Pack(dst []float64) {
+	n := f.st.n
+	copy(dst[:n], f.st.x[:n])
+	for i := 0; i < n; i++ {
+		copy(dst[n+i*n:n+(i+1)*n], f.st.p[i*stride:i*stride+n])
+	}
+}
+
+// Unpack replaces the estimate by the packed one in src (written by Pack
+// on a filter of the same layout), bit for bit.
+func (f *Filter) Unpack(src []float64) {
+	n := f.st.n
+	copy(f.st.x[:n], src[:n])
+	for i := 0; i < n; i++ {
+		copy(f.st.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
+	}
+}
 
 // SetState replaces the estimate by a copy of s (a checkpoint taken with
 // State or StateInto). It panics if s has another state size.
@@ -368,10 +407,10 @@ func (f *Filter) decay(dtS float64) {
 	l := &f.layout
 	n := f.st.n
 	P := &f.st.p
-	f.decays(dtS)
+	phis := f.decays(dtS)
 	for k := 0; k < l.nb; k++ {
 		b := &l.blocks[k]
-		phi := f.phi[k]
+		phi := phis[k]
 		for i := b.at; i < b.at+b.Dim; i++ {
 			f.st.x[i] *= phi
 			for j := 0; j < n; j++ {
@@ -388,15 +427,21 @@ func (f *Filter) decay(dtS float64) {
 	}
 }
 
-// decays sets f.phi to the bias blocks' decay over dtS seconds.
-func (f *Filter) decays(dtS float64) {
-	if f.phiOK && dtS == f.phiDt {
-		return
+// decays returns the bias blocks' decay over dtS seconds.
+func (f *Filter) decays(dtS float64) *[maxBlocks]float64 {
+	for c := range f.phiOK {
+		if f.phiOK[c] && f.phiDt[c] == dtS {
+			return &f.phi[c]
+		}
 	}
+	// Replace the entry not used last.
+	f.cur = 1 - f.cur
+	c := f.cur
 	for k := 0; k < f.layout.nb; k++ {
-		f.phi[k] = math.Exp(-dtS / f.layout.blocks[k].TauS)
+		f.phi[c][k] = math.Exp(-dtS / f.layout.blocks[k].TauS)
 	}
-	f.phiDt, f.phiOK = dtS, true
+	f.phiDt[c], f.phiOK[c] = dtS, true
+	return &f.phi[c]
 }
 
 // Transition writes into dst the Jacobian F of the motion Predict applies
@@ -415,11 +460,11 @@ func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u 
 		}
 	}
 	l := &f.layout
-	f.decays(dtS)
+	phis := f.decays(dtS)
 	for k := 0; k < l.nb; k++ {
 		b := &l.blocks[k]
 		for i := b.at; i < b.at+b.Dim; i++ {
-			dst[i*stride+i] = f.phi[k]
+			dst[i*stride+i] = phis[k]
 		}
 	}
 }

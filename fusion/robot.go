@@ -32,6 +32,14 @@ type Robot struct {
 	head    int
 	errs    []entryErr // of the failed entries in ents
 	held    []entry    // waiting for odometry, in stamp order
+	// cps holds the entries' checkpoints, packed, slot s (from 1) at
+	// [(s-1)k, sk) with k the filter's packed size; cpFree are free slots;
+	// cpTmp is before's copy of one.
+	cps    []float64
+	cpFree []int32
+	cpTmp  checkpoint
+	// restoreErr is a problem RestoreSnapshot found while decoding.
+	restoreErr error
 
 	lastCounts []int64
 	lastIMU    *float64 // IMU heading at newest, IMURotation mode

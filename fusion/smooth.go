@@ -74,19 +74,20 @@ func (c *stepCollector) collect(r *Robot, k int) {
 	}
 	for i := 0; i < k; i++ {
 		e := &live[i]
+		after := r.checkpointOf(&e.after)
 		switch e.kind {
 		case entOdo:
 			c.emit()
-			s := Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est}
+			s := Step{StampNs: e.t1, Pred: after.est, Post: after.est}
 			r.f.Transition(&s.F, &prev.est, e.step, float64(e.t1-e.t0)*1e-9)
 			c.cur = &s
 		case entMeas:
-			c.cur.Post = e.after.est
+			c.cur.Post = after.est
 		case entReset:
 			c.emit()
-			c.cur = &Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est, F: identity(r.n), Start: true}
+			c.cur = &Step{StampNs: e.t1, Pred: after.est, Post: after.est, F: identity(r.n), Start: true}
 		}
-		prev = e.after
+		prev = after
 	}
 }
 

@@ -36,10 +36,10 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	e.int(6, r.baseT)
 	e.int(7, r.newest)
 	for i := range r.live() {
-		e.message(8, func(e *wenc) { encEntry(e, &r.live()[i]) })
+		e.message(8, func(e *wenc) { r.encEntry(e, &r.live()[i]) })
 	}
 	for i := range r.held {
-		e.message(9, func(e *wenc) { encEntry(e, &r.held[i]) })
+		e.message(9, func(e *wenc) { r.encEntry(e, &r.held[i]) })
 	}
 	e.ints(10, r.lastCounts)
 	if r.lastIMU != nil {
@@ -123,9 +123,9 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 	case 7:
 		r.newest = d.int(num)
 	case 8:
-		d.message(num, func(d *wdec) { r.ents = append(r.ents, decEntry(d)) })
+		d.message(num, func(d *wdec) { r.ents = append(r.ents, r.decEntry(d)) })
 	case 9:
-		d.message(num, func(d *wdec) { r.held = append(r.held, decEntry(d)) })
+		d.message(num, func(d *wdec) { r.held = append(r.held, r.decEntry(d)) })
 	case 10:
 		r.lastCounts = d.intSlice(num)
 	case 11:
@@ -168,12 +168,15 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 // checkRestored checks what the rest of the robot relies on: every state
 // of the filter's size, sensor indices in range, counts for every wheel.
 func (r *Robot) checkRestored() error {
+	if r.restoreErr != nil {
+		return r.restoreErr
+	}
 	states := []*estimator.State{&r.base.est}
 	for k, q := range [][]entry{r.ents, r.held} {
 		for i := range q {
-			if k == 0 || q[i].after.est.Size() != 0 {
+			if k == 0 && q[i].after.Slot == 0 {
 				// A held entry has no checkpoint until odometry reaches it.
-				states = append(states, &q[i].after.est)
+				return fmt.Errorf("%w: a checkpoint of 0 states for a %d-state robot", ErrSnapshot, r.n)
 			}
 			if q[i].kind < entOdo || q[i].kind > entReset {
 				return fmt.Errorf("%w: entry of kind %d", ErrSnapshot, q[i].kind)
@@ -256,7 +259,7 @@ func decCheckpoint(d *wdec) checkpoint {
 	return c
 }
 
-func encEntry(e *wenc, en *entry) {
+func (r *Robot) encEntry(e *wenc, en *entry) {
 	e.uint(1, uint64(en.kind))
 	e.int(2, en.t0)
 	e.int(3, en.t1)
@@ -268,14 +271,16 @@ func encEntry(e *wenc, en *entry) {
 	e.int(9, int64(en.sensor))
 	e.pose(10, en.pose)
 	e.doubles(11, en.poseCov[:])
-	e.message(12, func(e *wenc) { encCheckpoint(e, &en.after) })
+	after := r.checkpointOf(&en.after)
+	e.message(12, func(e *wenc) { encCheckpoint(e, &after) })
 	e.double(13, en.out.NIS)
 	e.int(14, int64(en.out.Dim))
 	e.bool(15, en.out.Gated)
 	e.bool(16, en.initialised)
 }
 
-func decEntry(d *wdec) entry {
+// decEntry reads an entry and stores its checkpoint in a slot of r's.
+func (r *Robot) decEntry(d *wdec) entry {
 	var en entry
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
@@ -302,7 +307,14 @@ func decEntry(d *wdec) entry {
 		case 11:
 			d.doubles(num, en.poseCov[:])
 		case 12:
-			d.message(num, func(d *wdec) { en.after = decCheckpoint(d) })
+			d.message(num, func(d *wdec) {
+				cp := decCheckpoint(d)
+				if n := cp.est.Size(); n != 0 && n != r.n {
+					r.restoreErr = fmt.Errorf("%w: a checkpoint of %d states for a %d-state robot", ErrSnapshot, n, r.n)
+					return
+				}
+				r.setCheckpoint(&en.after, &cp)
+			})
 		case 13:
 			en.out.NIS = d.double(num)
 		case 14:

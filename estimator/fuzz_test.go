@@ -12,6 +12,8 @@ func FuzzUpdate(f *testing.F) {
 	f.Add(uint8(1), 0.1, 0.2, 0.3, 0.01, 0.005, 0.0, 0.001)
 	f.Add(uint8(4), 2.0, 0.1, 0.0, 0.01, 0.01, 1e-9, 0.0)
 	f.Add(uint8(7), 3.1, 0.0, 0.0, 1e-6, 0.0, 0.5, math.Pi)
+	f.Add(uint8(129), 0.2, -0.1, 0.4, 1e-3, 0.1, 0.0, 0.2) // a biased, Huber-weighted pose fix
+	f.Add(uint8(131), 8.0, 0.3, 0.0, 1e-4, 0.0, 0.0, 0.0)  // biased range and bearing, Student-t
 	f.Fuzz(func(t *testing.T, kind uint8, z0, z1, z2, r, fwd, left, turn float64) {
 		l := testLayout(12)
 		x := []float64{0.5, -0.2, 0.1, 0, 1, 1, 0, 0, 0, 0, 0, 0}

@@ -63,6 +63,15 @@ func fuzzSamples(t *testing.T, data []byte) {
 		case 3: // a robot that sends body steps
 			cfg.Wheels = nil
 		}
+		if in.byte()%2 == 0 {
+			// Every option of the sensors section and the calibration.
+			cfg.Calibration = Calibration{Scale: true, RateBias: true, ForwardScaleVarPerM: 1e-6}
+			cfg.Sensors[0] = Sensor{ID: "pose", Kind: FixPose, Cov: []float64{1e-3, 0, 0, 0, 1e-3, 0, 0, 0, 1e-3},
+				CorrelationTimeS: 1, CorrelatedFraction: 0.5, Robust: RobustHuber, LatencyNs: 20e6}
+			cfg.Sensors[3] = Sensor{ID: "landmark", Kind: FixLandmark, Cov: []float64{1e-3, 0, 0, 1e-3},
+				CorrelationTimeS: 2, CorrelatedFraction: 0.3, Robust: RobustStudentT}
+			cfg.Noise.StepForwardVarM2PerS = 1e-5
+		}
 		cfg.Recovery.Enabled = true
 		cfg.MaxHeld = 8
 		r, err := New(cfg)

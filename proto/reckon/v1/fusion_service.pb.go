@@ -1780,7 +1780,8 @@ type SensorConsistency struct {
 	SensorId string `protobuf:"bytes,1,opt,name=sensor_id,json=sensorId,proto3" json:"sensor_id,omitempty"`
 	// Its verdicts.
 	Counts *VerdictCounts `protobuf:"bytes,2,opt,name=counts,proto3" json:"counts,omitempty"`
-	// Mean NIS of its applied fixes.
+	// Mean NIS of its applied fixes: the raw NIS, with each fix's own
+	// covariance, also for a sensor with a robust loss.
 	MeanNis float64 `protobuf:"fixed64,3,opt,name=mean_nis,json=meanNis,proto3" json:"mean_nis,omitempty"`
 	// Two-sided 95% band of the mean NIS.
 	BandLow float64 `protobuf:"fixed64,4,opt,name=band_low,json=bandLow,proto3" json:"band_low,omitempty"`

@@ -1,6 +1,7 @@
 package fusion_test
 
 import (
+	"math"
 	"reflect"
 	"testing"
 
@@ -59,5 +60,41 @@ func TestSensorDefaults(t *testing.T) {
 	before := mk(fusion.Sensor{ID: "camera", Kind: fusion.FixPose}).Pose().Pose.X
 	if da, db := robust.Pose().Pose.X-before, plain2.Pose().Pose.X-before; !(da > 0 && da < db) {
 		t.Errorf("robust update moved x by %g, ordinary by %g", da, db)
+	}
+}
+
+// TestCorrelatedFixesCountOnce: a robot standing still gets 50 position
+// fixes at 10 Hz that all carry the same 10 cm error, the limit of an
+// error correlated over much longer than the run. Configured as white
+// noise, the filter believes the fixes average out: its x variance falls
+// to about R/50 and the true error stands at several standard deviations.
+// Configured with 90% of the covariance correlated over 100 s, the fixes
+// count about once for their correlated part: the variance stays near
+// 0.9 R and the error within two standard deviations.
+func TestCorrelatedFixesCountOnce(t *testing.T) {
+	const sigma, offset = 0.1, 0.1
+	cov := []float64{sigma * sigma, 0, 0, sigma * sigma}
+	run := func(s fusion.Sensor) (errStd float64) {
+		r, err := fusion.New(fusion.Config{Sensors: []fusion.Sensor{s}, StartCov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 0.01}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		for k := int64(0); k < 500; k++ {
+			var step estimator.Step
+			r.AddOdometry(fusion.Odometry{StartNs: k * 10e6, StampNs: (k + 1) * 10e6, Step: &step})
+			if k%10 == 9 {
+				if res := r.AddFix(fusion.Fix{SensorID: "gnss", StampNs: (k + 1) * 10e6, Kind: fusion.FixPosition, XM: offset}); res.Verdict != fusion.VerdictApplied {
+					t.Fatalf("fix %d: %v %v", k, res.Verdict, res.Err)
+				}
+			}
+		}
+		p := r.Pose()
+		return math.Abs(p.Pose.X) / math.Sqrt(p.Cov[0])
+	}
+	white := run(fusion.Sensor{ID: "gnss", Kind: fusion.FixPosition, Cov: cov})
+	corr := run(fusion.Sensor{ID: "gnss", Kind: fusion.FixPosition, Cov: cov, CorrelationTimeS: 100, CorrelatedFraction: 0.9})
+	t.Logf("true x error in standard deviations: white model %.2f, correlated model %.2f", white, corr)
+	if white < 4 || corr > 2 {
+		t.Errorf("error/std: white model %.2f (want at least 4), correlated model %.2f (want at most 2)", white, corr)
 	}
 }

@@ -5,29 +5,45 @@ import (
 	"testing"
 )
 
+// BenchmarkPredict runs Predict on 4 states and on 7 (IMU offset, odometry
+// scales and heading-rate bias).
 func BenchmarkPredict(b *testing.B) {
-	f := randomFilter(b, rand.New(rand.NewPCG(11, 11)), 4)
-	cu := [9]float64{1e-6, 0, 0, 0, 1e-6, 0, 0, 0, 1e-6}
-	q := [4]float64{0, 0, 1e-8, 1e-8}
-	u := Step{0.0025, 0, 0.001}
-	b.ReportAllocs()
-	for b.Loop() {
-		f.Predict(u, &cu, &q)
-	}
-}
-
-func BenchmarkUpdate(b *testing.B) {
-	for _, m := range measurementCases(rand.New(rand.NewPCG(12, 12))) {
-		b.Run(m.Kind.String(), func(b *testing.B) {
-			f := randomFilter(b, rand.New(rand.NewPCG(13, 13)), 4)
-			start := f.State()
+	for _, n := range []int{4, 7} {
+		b.Run(benchName(n), func(b *testing.B) {
+			f := randomFilter(b, rand.New(rand.NewPCG(11, 11)), n)
+			cu := [9]float64{1e-6, 0, 0, 0, 1e-6, 0, 0, 0, 1e-6}
+			q := [MaxStates]float64{IHead: 1e-8, IOffset: 1e-8}
+			u := Step{0.0025, 0, 0.001}
 			b.ReportAllocs()
 			for b.Loop() {
-				f.SetState(&start)
-				_, _ = f.Update(&m, NoGate())
+				f.Predict(u, &cu, 0.005, &q)
 			}
 		})
 	}
+}
+
+// BenchmarkUpdate runs every measurement kind on 4 states and on 7.
+func BenchmarkUpdate(b *testing.B) {
+	for _, n := range []int{4, 7} {
+		for _, m := range measurementCases(rand.New(rand.NewPCG(12, 12))) {
+			b.Run(benchName(n)+"/"+m.Kind.String(), func(b *testing.B) {
+				f := randomFilter(b, rand.New(rand.NewPCG(13, 13)), n)
+				start := f.State()
+				b.ReportAllocs()
+				for b.Loop() {
+					f.SetState(&start)
+					_, _ = f.Update(&m, NoGate())
+				}
+			})
+		}
+	}
+}
+
+func benchName(n int) string {
+	if n == 4 {
+		return "states=4"
+	}
+	return "states=7"
 }
 
 func BenchmarkSolveStep(b *testing.B) {

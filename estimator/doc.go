@@ -5,12 +5,16 @@
 //
 // # Overview
 //
-// The state is [x, y, heading] or [x, y, heading, imu_offset] (metres,
-// radians, field frame; see the README for the frames). A body step
+// The state is [x, y, heading] (metres, radians, field frame; see the
+// README for the frames), then, as its Layout says, the IMU offset, the
+// odometry's forward and turn scales, a heading-rate bias and the bias
+// blocks of sensors with exponentially correlated errors, at most
+// MaxStates in all (DEVELOPERS.md, "Design: State"). A body step
 // (forward, left, turn) over one interval moves the pose along a circular arc
 // (Advance); Filter.Predict propagates the covariance through the analytic
 // Jacobians of that motion (ArcJacobians) and Filter.Update applies one
-// Measurement. SolveStep finds the body step from any number of linear rows
+// Measurement, optionally re-weighted by a robust loss (Robust), with the
+// sensors' bias states as consider states. SolveStep finds the body step from any number of linear rows
 // (encoder wheels of any layout, an IMU rotation row, a no-side-slip row).
 //
 // # Invariants
@@ -25,7 +29,7 @@
 //   - Predict and Update allocate nothing: the small matrices are fixed-size
 //     arrays on the Filter, checked in tests against gonum mat.
 //
-// Dimension misuse (a state size other than 3 or 4, an unknown measurement
+// Dimension misuse (a state size beyond MaxStates, an unknown measurement
 // kind) panics, with ErrShape where sizes do not fit; bad data is an error
 // value (a covariance of the wrong size wraps ErrShape). Results go into a
 // dst argument or the receiver, as in gonum: StepNoise, TimeNoise,

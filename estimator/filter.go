@@ -7,58 +7,97 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// Indices of the state vector.
+// Indices of the state vector's fixed part; the optional states follow as
+// the Layout places them.
 const (
 	IX      = 0 // field x, metres
 	IY      = 1 // field y, metres
 	IHead   = 2 // heading, radians
-	IOffset = 3 // IMU heading zero relative to the field, radians
+	IOffset = 3 // IMU heading zero relative to the field, radians, when the layout has it
 )
 
 // State is a copy of a filter's estimate: mean and covariance. It is a plain
-// value (fixed-size arrays), cheap to copy, which is what the fusion layer's
-// history window stores as checkpoints. Read it with the accessors; the
-// zero value is empty (size 0).
+// value (fixed-size arrays, no pointers), cheap to copy, which is what the
+// fusion layer's history window stores as checkpoints. Read it with the
+// accessors; the zero value is empty (size 0).
 type State struct {
-	// n is the state size, 3 or 4.
+	// n is the state size, 3 to MaxStates.
 	n int
+	// angles has bit i set for each angular state i (wrapped).
+	angles uint16
 	// x is the mean; entries past n are zero.
-	x [4]float64
-	// p is the n x n covariance, row-major with stride 4.
-	p [16]float64
+	x [MaxStates]float64
+	// p is the n x n covariance, row-major with stride MaxStates.
+	p [MaxStates * MaxStates]float64
 }
 
-// NewState returns the state of size n (3 or 4) with mean x (length n) and
+// NewState returns the state of size n (3 to MaxStates) whose angular
+// states are the bits of angles (Layout.Angles), with mean x (length n) and
 // covariance p (n x n row-major), copied as they are: no checks of the
 // values, so that a stored state comes back bit for bit. It panics with
 // ErrShape on a wrong size.
-func NewState(n int, x, p []float64) State {
-	if n != 3 && n != 4 || len(x) != n || len(p) != n*n {
+func NewState(n int, angles uint16, x, p []float64) State {
+	if n < 3 || n > MaxStates || len(x) != n || len(p) != n*n {
 		panic(fmt.Errorf("%w: state of size %d with a mean of length %d and a covariance of length %d", ErrShape, n, len(x), len(p)))
 	}
-	s := State{n: n}
+	s := State{n: n, angles: angles}
 	copy(s.x[:], x)
 	for i := 0; i < n; i++ {
-		copy(s.p[i*4:i*4+n], p[i*n:(i+1)*n])
+		copy(s.p[i*stride:i*stride+n], p[i*n:(i+1)*n])
 	}
 	return s
 }
 
-// Size returns the state size: 3 (x, y, heading) or 4 (with the IMU
-// offset); 0 for the zero State.
+// CopyFrom makes s a copy of src. For states of one size it copies only
+// the Size() x Size() part that is in use (every entry beyond it is zero in
+// both), which is what keeps checkpoints cheap.
+func (s *State) CopyFrom(src *State) {
+	n := src.n
+	if s.n != n {
+		*s = *src
+		return
+	}
+	s.angles = src.angles
+	copy(s.x[:n], src.x[:n])
+	// One block from the first row's start to the last row's end: the
+	// columns past n between rows are zero in both.
+	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
+}
+
+// SetPacked makes s the state of size n with angular states angles whose
+// packed form (Filter.Pack) is src, copying only what is in use when s
+// already has that size.
+func (s *State) SetPacked(n int, angles uint16, src []float64) {
+	if s.n != n {
+		*s = State{n: n}
+	}
+	s.angles = angles
+	copy(s.x[:n], src[:n])
+	for i := 0; i < n; i++ {
+		copy(s.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
+	}
+}
+
+// Size returns the state size; 0 for the zero State.
 func (s *State) Size() int { return s.n }
+
+// Angles returns the set of angular states (bit i for state i).
+func (s *State) Angles() uint16 { return s.angles }
+
+// isAngle reports whether state i is wrapped.
+func (s *State) isAngle(i int) bool { return s.angles&(1<<i) != 0 }
 
 // Pose returns the pose part of the state.
 func (s *State) Pose() Pose { return Pose{s.x[IX], s.x[IY], s.x[IHead]} }
 
-// MeanAt returns mean component i (metres or radians, see IX..IOffset).
+// MeanAt returns mean component i (metres, radians or as the layout says).
 func (s *State) MeanAt(i int) float64 { return s.x[i] }
 
 // Var returns the variance of state component i.
-func (s *State) Var(i int) float64 { return s.p[i*4+i] }
+func (s *State) Var(i int) float64 { return s.p[i*stride+i] }
 
 // At returns covariance entry (i, j).
-func (s *State) At(i, j int) float64 { return s.p[i*4+j] }
+func (s *State) At(i, j int) float64 { return s.p[i*stride+j] }
 
 // MeanInto writes the mean into dst[:Size()]. It panics with ErrShape if
 // dst is shorter.
@@ -77,7 +116,7 @@ func (s *State) CovarianceInto(dst []float64) {
 		panic(fmt.Errorf("%w: covariance of %dx%d into %d", ErrShape, n, n, len(dst)))
 	}
 	for i := 0; i < n; i++ {
-		copy(dst[i*n:(i+1)*n], s.p[i*4:i*4+n])
+		copy(dst[i*n:(i+1)*n], s.p[i*stride:i*stride+n])
 	}
 }
 
@@ -86,7 +125,7 @@ func (s *State) CovarianceInto(dst []float64) {
 func (s *State) PoseCovarianceInto(dst *[9]float64) {
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			dst[i*3+j] = s.p[i*4+j]
+			dst[i*3+j] = s.p[i*stride+j]
 		}
 	}
 }
@@ -101,44 +140,66 @@ func (s *State) Covariance() *mat.SymDense {
 	c := mat.NewSymDense(s.n, nil)
 	for i := 0; i < s.n; i++ {
 		for j := i; j < s.n; j++ {
-			c.SetSym(i, j, s.p[i*4+j])
+			c.SetSym(i, j, s.p[i*stride+j])
 		}
 	}
 	return c
 }
 
+// wrapAngles wraps the angular states of the mean.
+func (s *State) wrapAngles() {
+	for a, i := s.angles, 0; a != 0; a, i = a>>1, i+1 {
+		if a&1 != 0 {
+			s.x[i] = Wrap(s.x[i])
+		}
+	}
+}
+
 // Outcome says what became of one Update.
 type Outcome struct {
-	// NIS is the normalised innovation squared v^T S^-1 v.
+	// NIS is the normalised innovation squared v^T S^-1 v with the
+	// measurement's own covariance (the raw NIS, before any robust
+	// re-weighting): the one the gate and the consistency statistics use.
 	NIS float64
 	// Dim is the measurement's dimension (the NIS degrees of freedom).
 	Dim int
 	// Gated is true when NIS exceeded the gate and nothing changed.
 	Gated bool
+	// Weight is the robust weight w the update used (its noise was R / w);
+	// 1 without a robust model, 0 when gated.
+	Weight float64
 }
 
 // Filter is the extended Kalman filter. The zero value is not usable; make
 // one with NewFilter.
 type Filter struct {
-	st State
+	st     State
+	layout Layout
 
 	// Scratch, reused by every call.
-	fu    [9]float64
-	a     [16]float64
-	h     [12]float64
+	h     [3 * MaxStates]float64
 	s, l  [9]float64
-	k     [12]float64
-	pht   [12]float64
-	chol  [16]float64
+	r     [9]float64
+	k     [MaxStates * 3]float64
+	pht   [MaxStates * 3]float64
+	chol  [MaxStates * MaxStates]float64
 	saved State
+	// phi caches the bias blocks' decay exp(-dt/tau) for the intervals
+	// phiDt (odometry mostly comes at one rate, split now and then by a
+	// late fix); a pure function of dt, so the cache changes no result.
+	phi   [2][maxBlocks]float64
+	phiDt [2]float64
+	phiOK [2]bool
+	cur   int // the phi entry in use
 }
 
-// NewFilter returns a filter with n states (3, or 4 with the IMU offset)
-// at mean x and covariance p (n x n row-major). It panics on a wrong n or
-// lengths and returns an error if p is not a valid covariance.
-func NewFilter(n int, x, p []float64) (*Filter, error) {
-	if n != 3 && n != 4 {
-		panic(fmt.Errorf("%w: state size %d, want 3 or 4", ErrShape, n))
+// NewFilter returns a filter with the layout l at mean x and covariance p
+// (Size x Size row-major). It panics on wrong lengths and returns an error
+// if p is not a valid covariance.
+func NewFilter(l *Layout, x, p []float64) (*Filter, error) {
+	n := l.Size()
+	if n < 3 || n > MaxStates {
+		panic(fmt.Errorf("%w: state size %d; make the layout with NewLayout", ErrShape, n))
 	}
 	if len(x) != n || len(p) != n*n {
 		panic(fmt.Errorf("%w: mean of length %d and covariance of length %d for %d states", ErrShape, len(x), len(p), n))
@@ -151,89 +212,274 @@ func NewFilter(n int, x, p []float64) (*Filter, error) {
 	if err := CheckCovariance(p, n); err != nil {
 		return nil, fmt.Errorf("initial covariance: %w", err)
 	}
-	f := &Filter{}
-	f.st.n = n
-	copy(f.st.x[:], x)
-	f.st.x[IHead] = Wrap(f.st.x[IHead])
-	if n == 4 {
-		f.st.x[IOffset] = Wrap(f.st.x[IOffset])
-	}
-	for i := 0; i < n; i++ {
-		copy(f.st.p[i*4:i*4+n], p[i*n:(i+1)*n])
-	}
+	f := &Filter{layout: *l}
+	f.st = NewState(n, l.Angles(), x, p)
+	f.st.wrapAngles()
+	// Symmetric to the bit: Predict keeps it so outside the pose block.
+	symmetrise(f.st.p[:], n, stride)
 	return f, nil
 }
 
 // N returns the state size.
 func (f *Filter) N() int { return f.st.n }
 
+// Layout returns the filter's state layout.
+func (f *Filter) Layout() *Layout { return &f.layout }
+
 // State returns a copy of the estimate.
 func (f *Filter) State() State { return f.st }
 
+// StateInto copies the estimate into dst (State.CopyFrom).
+func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
+
+// PackedSize returns the length of the filter's packed estimate: the mean
+// and the covariance, N + N*N values.
+func (f *Filter) PackedSize() int { return f.st.n + f.st.n*f.st.n }
+
+// Pack writes the estimate into dst (PackedSize values: the mean, then the
+// covariance row-major), the compact form a history of checkpoints keeps.
+func (f *Filter) Pack(dst []float64) {
+	n := f.st.n
+	copy(dst[:n], f.st.x[:n])
+	for i := 0; i < n; i++ {
+		copy(dst[n+i*n:n+(i+1)*n], f.st.p[i*stride:i*stride+n])
+	}
+}
+
+// Unpack replaces the estimate by the packed one in src (written by Pack
+// on a filter of the same layout), bit for bit.
+func (f *Filter) Unpack(src []float64) {
+	n := f.st.n
+	copy(f.st.x[:n], src[:n])
+	for i := 0; i < n; i++ {
+		copy(f.st.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
+	}
+}
+
 // SetState replaces the estimate by a copy of s (a checkpoint taken with
-// State). It panics if s has another state size.
+// State or StateInto). It panics if s has another state size.
 func (f *Filter) SetState(s *State) {
 	if s.n != f.st.n {
 		panic(fmt.Errorf("%w: state of size %d set on a filter of size %d", ErrShape, s.n, f.st.n))
 	}
-	f.st = *s
+	f.st.CopyFrom(s)
 }
 
 // Pose returns the pose part of the mean.
 func (f *Filter) Pose() Pose { return f.st.Pose() }
 
-// Predict moves the estimate by the body step u with 3x3 row-major step
-// covariance cu, and adds q (length N, variances) to the diagonal: the
-// time-driven process noise (heading random walk, IMU offset random walk).
-//
-//	x' = f(x, u),  P' = Fx P Fx^T + Fu cu Fu^T + diag(q)
-func (f *Filter) Predict(u Step, cu *[9]float64, q *[4]float64) {
-	n := f.st.n
-	p := f.st.Pose()
-	// Advance and ArcJacobians, sharing the trigonometry.
-	var c chord
-	c.set(p.Heading, u)
-	np := c.advance(p, u)
-	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
-	fu := &f.fu
-	c.jacobians(nil, fu)
+// transition is the linearised motion over one interval: F = I + E, where
+// E is non-zero only in the pose rows (columns heading and the calibration
+// states) and on the bias blocks' diagonal (phi - 1).
+type transition struct {
+	// cols are the columns of E's pose rows: heading, then the
+	// calibration states present; e[i][c] for pose row i.
+	cols [4]int
+	nc   int
+	e    [3][4]float64
+	// u is the true step (scaled and with the rate bias); fu its step
+	// Jacobian times diag(s_f, s_f, s_t), for the reported step's noise.
+	u  Step
+	fu [9]float64
+	c  chord
+}
 
-	// P = F P F^T, where F is the identity except for the heading column of
-	// the position rows (fx[2] = a, fx[5] = b): the rows first, then the
-	// columns.
-	P := &f.st.p
-	a, b := -c.k*c.cy, c.k*c.cx
-	for j := 0; j < n; j++ {
-		P[0*4+j] += a * P[2*4+j]
-		P[1*4+j] += b * P[2*4+j]
+// motion fills t for the step u reported over dtS seconds from the state st.
+func (f *Filter) motion(t *transition, st *State, u Step, dtS float64) {
+	l := &f.layout
+	sf, stt, br := 1.0, 1.0, 0.0
+	if l.forwardScale >= 0 {
+		sf, stt = st.x[l.forwardScale], st.x[l.turnScale]
 	}
-	for i := 0; i < n; i++ {
-		P[i*4+0] += a * P[i*4+2]
-		P[i*4+1] += b * P[i*4+2]
+	if l.rate >= 0 {
+		br = st.x[l.rate]
 	}
-	// P += Fu cu Fu^T on the pose block.
-	var g [9]float64
-	Sandwich(&g, fu, cu)
+	t.u = Step{sf * u.ForwardM, sf * u.LeftM, stt*u.TurnRad + br*dtS}
+	t.c.set(st.x[IHead], t.u)
+	var fu [9]float64
+	t.c.jacobians(nil, &fu)
+	// Columns of E: d(pose')/d(heading) less the identity, and the
+	// derivatives through the true step u' = (s_f a, s_f b, s_t dth + b_r dt).
+	t.cols[0], t.nc = IHead, 1
+	t.e[0][0], t.e[1][0], t.e[2][0] = -t.c.k*t.c.cy, t.c.k*t.c.cx, 0
+	if l.forwardScale >= 0 {
+		t.cols[1], t.cols[2] = l.forwardScale, l.turnScale
+		for i := 0; i < 3; i++ {
+			t.e[i][1] = fu[i*3+0]*u.ForwardM + fu[i*3+1]*u.LeftM
+			t.e[i][2] = fu[i*3+2] * u.TurnRad
+		}
+		t.nc = 3
+	}
+	if l.rate >= 0 {
+		t.cols[t.nc] = l.rate
+		for i := 0; i < 3; i++ {
+			t.e[i][t.nc] = fu[i*3+2] * dtS
+		}
+		t.nc++
+	}
 	for i := 0; i < 3; i++ {
-		for j := 0; j < 3; j++ {
-			P[i*4+j] += g[i*3+j]
+		t.fu[i*3+0] = fu[i*3+0] * sf
+		t.fu[i*3+1] = fu[i*3+1] * sf
+		t.fu[i*3+2] = fu[i*3+2] * stt
+	}
+}
+
+// Predict moves the estimate by the body step u the odometry reported over
+// dtS seconds, with 3x3 row-major step covariance cu, and adds q (variances,
+// one per state) to the diagonal: the time- and travel-driven process noise
+// (heading and IMU offset random walks, calibration random walks). The step
+// the pose moves by is the calibrated one, (s_f a, s_f b, s_t dth + b_r dt),
+// where the layout has those states; bias blocks decay by exp(-dtS/tau) and
+// gain their Gauss-Markov noise (DEVELOPERS.md, "Design: Motion prediction",
+// "Design: Sensors").
+//
+//	x' = f(x, u),  P' = F P F^T + G cu G^T + diag(q) + Q_bias
+func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]float64) {
+	var t transition
+	f.motion(&t, &f.st, u, dtS)
+	n := f.st.n
+	np := t.c.advance(f.st.Pose(), t.u)
+	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
+
+	// P = F P F^T with F = I + E, E non-zero only in the pose rows: the
+	// pose rows of M = F P are r_a = P_a + sum_c e[a][c] P_cols[c]; the
+	// product M F^T changes only the pose columns, and since P is
+	// symmetric its pose columns outside the pose block are the pose rows
+	// r_a, mirrored; the pose block is r_a(b) + sum_c r_a(cols[c]) e[b][c].
+	// Without calibration states the heading row of E is zero (rows = 2).
+	P := &f.st.p
+	rows := 3
+	if t.nc == 1 {
+		rows = 2
+	}
+	var r [3][MaxStates]float64
+	for a := 0; a < 3; a++ {
+		copy(r[a][:n], P[a*stride:a*stride+n])
+	}
+	for a := 0; a < rows; a++ {
+		ra := &r[a]
+		for c := 0; c < t.nc; c++ {
+			e := t.e[a][c]
+			pc := P[t.cols[c]*stride : t.cols[c]*stride+n]
+			for j, v := range pc {
+				ra[j] += e * v
+			}
 		}
 	}
-	for i := 0; i < n; i++ {
-		P[i*4+i] += q[i]
+	for a := 0; a < 3; a++ {
+		for j := 3; j < n; j++ {
+			P[a*stride+j], P[j*stride+a] = r[a][j], r[a][j]
+		}
 	}
-	symmetrise(P[:], n, 4)
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			acc := r[a][b]
+			if b < rows {
+				for c := 0; c < t.nc; c++ {
+					acc += r[a][t.cols[c]] * t.e[b][c]
+				}
+			}
+			P[a*stride+b] = acc
+		}
+	}
+	// P += G cu G^T on the pose block.
+	var g [9]float64
+	Sandwich(&g, &t.fu, cu)
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			P[i*stride+j] += g[i*3+j]
+		}
+	}
+	f.decay(dtS)
+	for i := 0; i < n; i++ {
+		P[i*stride+i] += q[i]
+	}
+	// Everything outside the pose block was written symmetric.
+	symmetrise(P[:], 3, stride)
+}
+
+// decay applies the bias blocks' Gauss-Markov transition over dtS seconds:
+// b' = phi b + w with phi = exp(-dtS/tau) and w of covariance
+// (1 - phi^2) C, C the block's stationary covariance. Splitting an interval
+// composes exactly: phi(f dt) phi((1-f) dt) = phi(dt), and the variances
+// add up to the same (1 - phi^2) C.
+func (f *Filter) decay(dtS float64) {
+	l := &f.layout
+	n := f.st.n
+	P := &f.st.p
+	phis := f.decays(dtS)
+	for k := 0; k < l.nb; k++ {
+		b := &l.blocks[k]
+		phi := phis[k]
+		for i := b.at; i < b.at+b.Dim; i++ {
+			f.st.x[i] *= phi
+			for j := 0; j < n; j++ {
+				P[i*stride+j] *= phi
+				P[j*stride+i] *= phi
+			}
+		}
+		w := 1 - phi*phi
+		for i := 0; i < b.Dim; i++ {
+			for j := 0; j < b.Dim; j++ {
+				P[(b.at+i)*stride+b.at+j] += w * b.Cov[i*3+j]
+			}
+		}
+	}
+}
+
+// decays returns the bias blocks' decay over dtS seconds.
+func (f *Filter) decays(dtS float64) *[maxBlocks]float64 {
+	for c := range f.phiOK {
+		if f.phiOK[c] && f.phiDt[c] == dtS {
+			return &f.phi[c]
+		}
+	}
+	// Replace the entry not used last.
+	f.cur = 1 - f.cur
+	c := f.cur
+	for k := 0; k < f.layout.nb; k++ {
+		f.phi[c][k] = math.Exp(-dtS / f.layout.blocks[k].TauS)
+	}
+	f.phiDt[c], f.phiOK[c] = dtS, true
+	return &f.phi[c]
+}
+
+// Transition writes into dst the Jacobian F of the motion Predict applies
+// to the state from (N x N, row-major with stride MaxStates), for the
+// Rauch-Tung-Striebel smoother.
+func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u Step, dtS float64) {
+	var t transition
+	f.motion(&t, from, u, dtS)
+	*dst = [MaxStates * MaxStates]float64{}
+	for i := 0; i < f.st.n; i++ {
+		dst[i*stride+i] = 1
+	}
+	for i := 0; i < 3; i++ {
+		for c := 0; c < t.nc; c++ {
+			dst[i*stride+t.cols[c]] += t.e[i][c]
+		}
+	}
+	l := &f.layout
+	phis := f.decays(dtS)
+	for k := 0; k < l.nb; k++ {
+		b := &l.blocks[k]
+		for i := b.at; i < b.at+b.Dim; i++ {
+			dst[i*stride+i] = phis[k]
+		}
+	}
 }
 
 // Update applies measurement m unless gate refuses its NIS. It returns the
-// NIS. A gated measurement, or one that fails with an error, leaves the
-// filter unchanged. The update is in Joseph form,
+// raw NIS (with the measurement's own covariance). A gated measurement, or
+// one that fails with an error, leaves the filter unchanged. With a robust
+// model the update uses the noise R / w, w the model's weight of the raw
+// NIS (DEVELOPERS.md, "Design: Measurement updates"). Bias states are
+// consider states: their gain rows are zero. The update is in Joseph form,
 //
 //	P' = (I - K H) P (I - K H)^T + K R K^T,
 //
-// symmetrised and checked by Cholesky (Bar-Shalom, Li and Kirubarajan, 2001,
-// eq. 5.2.3-18 for the Joseph form; DEVELOPERS.md, "Design: Measurement
-// updates").
+// which holds for any gain, symmetrised and checked by Cholesky
+// (Bar-Shalom, Li and Kirubarajan, 2001, eq. 5.2.3-18 for the Joseph form).
 func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	d := m.Kind.Dim()
 	out := Outcome{Dim: d}
@@ -241,13 +487,27 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	if err := f.innovation(m, &v); err != nil {
 		return out, err
 	}
-	if err := f.innovationCovariance(m); err != nil {
-		return out, err
+	f.r = m.R
+	if err := f.innovationCovariance(d); err != nil {
+		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, err)
 	}
 	out.NIS = f.nis(&v, d)
 	if !gate.Passes(out.NIS) {
 		out.Gated = true
 		return out, nil
+	}
+	out.Weight = m.Robust.Weight(out.NIS, d)
+	if out.Weight < 1 {
+		// S = H P H^T + R / w: only the noise term changes.
+		for i := 0; i < d; i++ {
+			for j := 0; j < d; j++ {
+				f.r[i*3+j] = m.R[i*3+j] / out.Weight
+				f.s[i*3+j] += f.r[i*3+j] - m.R[i*3+j]
+			}
+		}
+		if !cholesky(f.s[:], f.l[:], d, measStride) {
+			return out, fmt.Errorf("re-weighted innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+		}
 	}
 	f.gain(d)
 	return out, f.correct(m, &v)
@@ -276,15 +536,27 @@ func (f *Filter) innovation(m *Measurement, v *[3]float64) error {
 }
 
 // innovationCovariance forms P H^T in f.k (n x d, stride 3, until the gain
-// replaces it) and S = H P H^T + R in f.s, and factorises S into f.l.
-func (f *Filter) innovationCovariance(m *Measurement) error {
-	n, d := f.st.n, m.Kind.Dim()
+// replaces it) and S = H P H^T + f.r in f.s, and factorises S into f.l.
+func (f *Filter) innovationCovariance(d int) error {
+	n := f.st.n
 	P, H := &f.st.p, &f.h
+	// H is sparse (a few pose columns and the bias states): the products
+	// run over its non-zero columns only.
+	var nz [3][MaxStates]int
+	var nnz [3]int
+	for j := 0; j < d; j++ {
+		for k := 0; k < n; k++ {
+			if H[j*stride+k] != 0 {
+				nz[j][nnz[j]] = k
+				nnz[j]++
+			}
+		}
+	}
 	for i := 0; i < n; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
-			for k := 0; k < n; k++ {
-				acc += P[i*4+k] * H[j*4+k]
+			for _, k := range nz[j][:nnz[j]] {
+				acc += P[i*stride+k] * H[j*stride+k]
 			}
 			f.k[i*3+j] = acc
 		}
@@ -292,15 +564,15 @@ func (f *Filter) innovationCovariance(m *Measurement) error {
 	for i := 0; i < d; i++ {
 		for j := 0; j < d; j++ {
 			var acc float64
-			for k := 0; k < n; k++ {
-				acc += H[i*4+k] * f.k[k*3+j]
+			for _, k := range nz[i][:nnz[i]] {
+				acc += H[i*stride+k] * f.k[k*3+j]
 			}
-			f.s[i*3+j] = acc + m.R[i*3+j]
+			f.s[i*3+j] = acc + f.r[i*3+j]
 		}
 	}
 	symmetrise(f.s[:], d, measStride)
 	if !cholesky(f.s[:], f.l[:], d, measStride) {
-		return fmt.Errorf("innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+		return ErrNotPositiveDefinite
 	}
 	return nil
 }
@@ -317,10 +589,15 @@ func (f *Filter) nis(v *[3]float64, d int) float64 {
 }
 
 // gain keeps P H^T in f.pht and replaces f.k by K = P H^T S^-1, solving
-// S K_i^T = PHt_i^T row by row.
+// S K_i^T = PHt_i^T row by row; the rows of consider states are zero
+// (Schmidt 1966).
 func (f *Filter) gain(d int) {
 	f.pht = f.k
 	for i := 0; i < f.st.n; i++ {
+		if f.layout.consider(i) {
+			f.k[i*3], f.k[i*3+1], f.k[i*3+2] = 0, 0, 0
+			continue
+		}
 		var row, sol [3]float64
 		copy(row[:d], f.k[i*3:i*3+d])
 		cholSolveVec(f.l[:], d, measStride, row[:], sol[:])
@@ -332,7 +609,7 @@ func (f *Filter) gain(d int) {
 // takes both back if the covariance is no longer positive definite.
 func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 	n, d := f.st.n, m.Kind.Dim()
-	f.saved = f.st
+	f.saved.CopyFrom(&f.st)
 	for i := 0; i < n; i++ {
 		var acc float64
 		for j := 0; j < d; j++ {
@@ -340,74 +617,60 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 		}
 		f.st.x[i] += acc
 	}
-	f.st.x[IHead] = Wrap(f.st.x[IHead])
-	if n == 4 {
-		f.st.x[IOffset] = Wrap(f.st.x[IOffset])
-	}
-	f.joseph(m, n, d)
-	if !cholesky(f.st.p[:], f.chol[:], n, 4) {
-		f.st = f.saved
+	f.st.wrapAngles()
+	f.joseph(n, d)
+	if !cholesky(f.st.p[:], f.chol[:], n, stride) {
+		f.st.CopyFrom(&f.saved)
 		return fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
 	}
 	return nil
 }
 
-// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T, formed as rank-d
-// corrections instead of n x n products:
+// joseph replaces P by (I-KH) P (I-KH)^T + K R K^T (R = f.r), formed as
+// rank-d corrections instead of n x n products:
 //
 //	A  = (I-KH) P = P - K (H P)
-//	P' = A (I-KH)^T + K R K^T = A + (K R - A H^T) K^T
+//	P' = A (I-KH)^T + K R K^T = A + (K R - A H^T) K^T = A + (K S - P H^T) K^T
 //
-// which is the same expression, regrouped (3dn^2 + nd^2 products instead of
-// 2n^3 + 2dn^2 + nd^2). H P is the transpose of P H^T, which Update kept in
-// f.pht (P is symmetric).
-func (f *Filter) joseph(m *Measurement, n, d int) {
+// which is the same expression, regrouped, and holds for any K:
+// A H^T = P H^T - K H P H^T and H P H^T + R = S, the innovation covariance
+// the gain was solved with (in f.s; Cholesky wrote its factor elsewhere).
+// C = K S - P H^T is the gain's residual: rounding for the Kalman rows,
+// -P H^T for the zeroed rows of consider states. H P is the transpose of
+// P H^T, which Update kept in f.pht (P is symmetric). P' = P - K (P H^T)^T
+// + C K^T is symmetric by construction, so only its upper triangle is
+// formed (2d products per entry) and mirrored.
+func (f *Filter) joseph(n, d int) {
 	P := &f.st.p
-	K, H := &f.k, &f.h
-	// A = P - K (H P), with (H P)[a][j] = pht[j][a].
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			acc := P[i*4+j]
-			for a := 0; a < d; a++ {
-				acc -= K[i*3+a] * f.pht[j*3+a]
-			}
-			f.a[i*4+j] = acc
-		}
-	}
-	// C = K R - A H^T (n x d, stride 3).
-	var c [12]float64
+	K := &f.k
+	var c [MaxStates * 3]float64
 	for i := 0; i < n; i++ {
 		for a := 0; a < d; a++ {
-			var kr, ah float64
+			acc := -f.pht[i*3+a]
 			for b := 0; b < d; b++ {
-				kr += K[i*3+b] * m.R[b*3+a]
+				acc += K[i*3+b] * f.s[b*3+a]
 			}
-			for k := 0; k < n; k++ {
-				ah += f.a[i*4+k] * H[a*4+k]
-			}
-			c[i*3+a] = kr - ah
+			c[i*3+a] = acc
 		}
 	}
-	// P' = A + C K^T.
 	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			acc := f.a[i*4+j]
+		for j := i; j < n; j++ {
+			acc := P[i*stride+j]
 			for a := 0; a < d; a++ {
-				acc += c[i*3+a] * K[j*3+a]
+				acc += c[i*3+a]*K[j*3+a] - K[i*3+a]*f.pht[j*3+a]
 			}
-			P[i*4+j] = acc
+			P[i*stride+j], P[j*stride+i] = acc, acc
 		}
 	}
-	symmetrise(P[:], n, 4)
 }
 
 // InitOffset initialises the IMU offset from an absolute IMU heading z with
 // variance r (DEVELOPERS.md, "Design: State"): offset = wrap(z - heading), with variance
 // P_hh + r and covariance -P_h,s with every other state s, because the
 // offset is z - heading and inherits heading's correlations with the
-// opposite sign. It panics on a 3-state filter.
+// opposite sign. It panics on a filter without the offset state.
 func (f *Filter) InitOffset(z, r float64) error {
-	if f.st.n != 4 {
+	if f.layout.offset != IOffset {
 		panic("estimator: InitOffset on a filter without an IMU offset state")
 	}
 	if !finite(z) || !finite(r) || !(r > 0) {
@@ -415,18 +678,21 @@ func (f *Filter) InitOffset(z, r float64) error {
 	}
 	P := &f.st.p
 	f.st.x[IOffset] = Wrap(z - f.st.x[IHead])
-	for s := 0; s < 3; s++ {
-		P[IOffset*4+s] = -P[IHead*4+s]
-		P[s*4+IOffset] = -P[IHead*4+s]
+	for s := 0; s < f.st.n; s++ {
+		if s == IOffset {
+			continue
+		}
+		P[IOffset*stride+s] = -P[IHead*stride+s]
+		P[s*stride+IOffset] = -P[IHead*stride+s]
 	}
-	P[IOffset*4+IOffset] = P[IHead*4+IHead] + r
+	P[IOffset*stride+IOffset] = P[IHead*stride+IHead] + r
 	return nil
 }
 
 // Reset sets the pose part of the estimate to pose with 3x3 covariance c
-// (row-major), clearing its correlation with the IMU offset, whose own
-// variance is kept. The caller re-initialises the offset on the next IMU
-// sample.
+// (row-major), clearing its correlation with every other state (the IMU
+// offset, the calibration, the biases), whose own covariance is kept. The
+// caller re-initialises the offset on the next IMU sample.
 func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	if !finite(pose.X) || !finite(pose.Y) || !finite(pose.Heading) {
 		return fmt.Errorf("pose: %w", ErrNotFinite)
@@ -437,10 +703,10 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = pose.X, pose.Y, Wrap(pose.Heading)
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
-			f.st.p[i*4+j] = c[i*3+j]
+			f.st.p[i*stride+j] = c[i*3+j]
 		}
-		if f.st.n == 4 {
-			f.st.p[i*4+3], f.st.p[3*4+i] = 0, 0
+		for j := 3; j < f.st.n; j++ {
+			f.st.p[i*stride+j], f.st.p[j*stride+i] = 0, 0
 		}
 	}
 	return nil
@@ -449,7 +715,7 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 // Position95 returns the radius in metres of the 95% position ellipse's major
 // semi-axis: sqrt(chi2_2(0.95) * largest eigenvalue of the position block).
 func (s *State) Position95() float64 {
-	a, b, c := s.p[0], s.p[1], s.p[5]
+	a, b, c := s.p[0], s.p[1], s.p[stride+1]
 	lmax := (a+c)/2 + math.Sqrt(((a-c)/2)*((a-c)/2)+b*b)
 	// chi-square 2 dof, 0.95 quantile = -2 ln(0.05) (closed form for 2 dof).
 	return math.Sqrt(-2 * math.Log(0.05) * lmax)

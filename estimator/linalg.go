@@ -5,7 +5,7 @@ import (
 	"math"
 )
 
-// The filter's matrices are at most 4x4, so its kernels are loops over
+// The filter's matrices are at most MaxStates x MaxStates, so its kernels are loops over
 // fixed-size row-major arrays with an explicit stride: no allocation, no
 // dispatch. Tests check them against gonum mat.
 
@@ -91,8 +91,8 @@ func CheckCovariance(c []float64, n int) error {
 			}
 		}
 	}
-	var l [16]float64
-	if n > 4 || !cholesky(c, l[:], n, n) {
+	var l [MaxStates * MaxStates]float64
+	if n > MaxStates || !cholesky(c, l[:], n, n) {
 		return ErrNotPositiveDefinite
 	}
 	return nil
@@ -105,22 +105,23 @@ func (e errAsymmetric) Error() string {
 }
 
 // SolveSPD solves a x = b for the n x n symmetric positive-definite a
-// (row-major, stride 4) and the n x m right-hand side b (stride 4), writing
-// x into b. It reports false, leaving b unchanged, if a is not positive
-// definite. n and m are at most 4; it allocates nothing.
-func SolveSPD(a *[16]float64, n int, b *[16]float64, m int) bool {
-	var l [16]float64
-	if !cholesky(a[:], l[:], n, 4) {
+// (row-major, stride MaxStates) and the n x m right-hand side b (stride
+// MaxStates), writing x into b. It reports false, leaving b unchanged, if a
+// is not positive definite. n and m are at most MaxStates; it allocates
+// nothing.
+func SolveSPD(a *[MaxStates * MaxStates]float64, n int, b *[MaxStates * MaxStates]float64, m int) bool {
+	var l [MaxStates * MaxStates]float64
+	if !cholesky(a[:], l[:], n, stride) {
 		return false
 	}
 	for j := 0; j < m; j++ {
-		var col, x [4]float64
+		var col, x [MaxStates]float64
 		for i := 0; i < n; i++ {
-			col[i] = b[i*4+j]
+			col[i] = b[i*stride+j]
 		}
-		cholSolveVec(l[:], n, 4, col[:], x[:])
+		cholSolveVec(l[:], n, stride, col[:], x[:])
 		for i := 0; i < n; i++ {
-			b[i*4+j] = x[i]
+			b[i*stride+j] = x[i]
 		}
 	}
 	return true

@@ -91,16 +91,23 @@ type Measurement struct {
 	LandmarkX, LandmarkY float64
 	// Z holds the Dim() measured values, in the order of the kind's doc.
 	Z [3]float64
-	// R is the Dim() x Dim() measurement covariance, row-major with stride 3.
+	// R is the Dim() x Dim() measurement covariance, row-major with stride 3:
+	// the white part of the error, when a bias block carries the rest.
 	R [9]float64
+	// Bias holds, for each component, the index of the state holding its
+	// bias (a sensor's Gauss-Markov error, added to h(x)), or 0 for none.
+	Bias [3]int
+	// Robust is the robust weighting of the update (the zero value: none).
+	Robust Robust
 }
 
 // measStride is the stride of measurement-sized matrices.
 const measStride = 3
 
-// predict writes h(x) into z and the Dim() x n Jacobian into H (stride 4).
-func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[12]float64) error {
-	*H = [12]float64{}
+// predict writes h(x) into z and the Dim() x n Jacobian into H (stride
+// MaxStates).
+func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStates]float64) error {
+	*H = [3 * MaxStates]float64{}
 	th := x[2]
 	st, ct := math.Sincos(th)
 	mx, my := m.Mount.X, m.Mount.Y
@@ -111,11 +118,11 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[12]float64)
 	case KindPose, KindPosition:
 		z[0] = x[0] + ct*mx - st*my
 		z[1] = x[1] + st*mx + ct*my
-		H[0*4+0], H[0*4+2] = 1, dsx
-		H[1*4+1], H[1*4+2] = 1, dsy
+		H[0*stride+0], H[0*stride+2] = 1, dsx
+		H[1*stride+1], H[1*stride+2] = 1, dsy
 		if m.Kind == KindPose {
 			z[2] = Wrap(th + m.Mount.Heading)
-			H[2*4+2] = 1
+			H[2*stride+2] = 1
 		}
 	case KindHeading:
 		z[0] = Wrap(th + m.Mount.Heading)
@@ -136,9 +143,9 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[12]float64)
 		}
 		if m.Kind != KindRange {
 			z[row] = Wrap(math.Atan2(dy, dx) - th - m.Mount.Heading)
-			H[row*4+0] = dy / r2
-			H[row*4+1] = -dx / r2
-			H[row*4+2] = (dy*dsx-dx*dsy)/r2 - 1
+			H[row*stride+0] = dy / r2
+			H[row*stride+1] = -dx / r2
+			H[row*stride+2] = (dy*dsx-dx*dsy)/r2 - 1
 		}
 	case KindIMUHeading:
 		if n < 4 {
@@ -149,15 +156,28 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[12]float64)
 	default:
 		panic(fmt.Sprintf("estimator: unknown measurement kind %d", m.Kind))
 	}
+	for i, b := range m.Bias[:m.Kind.Dim()] {
+		if b > 0 {
+			if b >= n {
+				panic(fmt.Errorf("%w: bias state %d of a %d-state filter", ErrShape, b, n))
+			}
+			z[i] += x[b]
+			H[i*stride+b] = 1
+			if m.Kind.IsAngle(i) {
+				z[i] = Wrap(z[i])
+			}
+		}
+	}
 	return nil
 }
 
-// Predicted returns h(x), the measurement the state x (length 3 or 4)
-// predicts, and its Jacobian (Dim() x len(x), row-major). It allocates and is
-// meant for tests and tools; the filter uses the same code without allocating.
+// Predicted returns h(x), the measurement the state x (length 3 to
+// MaxStates) predicts, and its Jacobian (Dim() x len(x), row-major). It
+// allocates and is meant for tests and tools; the filter uses the same code
+// without allocating.
 func (m *Measurement) Predicted(x []float64) (z []float64, H []float64, err error) {
 	var zz [3]float64
-	var hh [12]float64
+	var hh [3 * MaxStates]float64
 	n := len(x)
 	if err := m.predict(x, n, &zz, &hh); err != nil {
 		return nil, nil, err
@@ -165,7 +185,7 @@ func (m *Measurement) Predicted(x []float64) (z []float64, H []float64, err erro
 	d := m.Kind.Dim()
 	H = make([]float64, d*n)
 	for i := 0; i < d; i++ {
-		copy(H[i*n:(i+1)*n], hh[i*4:i*4+n])
+		copy(H[i*n:(i+1)*n], hh[i*stride:i*stride+n])
 	}
 	return append([]float64(nil), zz[:d]...), H, nil
 }

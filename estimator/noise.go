@@ -2,26 +2,37 @@ package estimator
 
 import "math"
 
+// StepRates are the noise rates of a body step that the robot computed
+// itself: per metre travelled (m^2/m), per radian turned (rad^2/rad) and
+// per second elapsed (m^2/s, rad^2/s; commanded-velocity odometry). Every
+// term adds over sub-intervals (DEVELOPERS.md, "Design: Process noise").
+type StepRates struct {
+	ForwardVarM2PerM, LeftVarM2PerM, TurnVarRad2PerRad float64
+	ForwardVarM2PerS, LeftVarM2PerS, TurnVarRad2PerS   float64
+}
+
 // StepNoise writes into dst the 3x3 row-major covariance of a body step s
-// that the robot computed itself, from noise rates per metre travelled
-// (forwardVarPerM, leftVarPerM, m^2/m) and per radian turned
-// (turnVarPerRad, rad^2/rad): diag(f d, l d, t |turn|) with d the step's
-// length. The rates make the noise add over sub-intervals (DEVELOPERS.md,
-// "Design: Motion prediction").
-func StepNoise(dst *[9]float64, s Step, forwardVarPerM, leftVarPerM, turnVarPerRad float64) {
+// over dtS seconds: diag(f d + f' dt, l d + l' dt, t |turn| + t' dt) with d
+// the step's length, the unprimed rates per metre or radian and the primed
+// ones per second.
+func StepNoise(dst *[9]float64, s Step, dtS float64, r *StepRates) {
 	d := math.Hypot(s.ForwardM, s.LeftM)
-	*dst = [9]float64{forwardVarPerM * d, 0, 0, 0, leftVarPerM * d, 0, 0, 0, turnVarPerRad * math.Abs(s.TurnRad)}
+	*dst = [9]float64{
+		r.ForwardVarM2PerM*d + r.ForwardVarM2PerS*dtS, 0, 0,
+		0, r.LeftVarM2PerM*d + r.LeftVarM2PerS*dtS, 0,
+		0, 0, r.TurnVarRad2PerRad*math.Abs(s.TurnRad) + r.TurnVarRad2PerS*dtS,
+	}
 }
 
 // TimeNoise writes into dst the time-driven process noise that Predict adds
-// to the diagonal of an n-state filter over dtS seconds: a heading random
-// walk of headingVarPerS (rad^2/s) and, with n = 4, an IMU offset random
-// walk of offsetVarPerS (rad^2/s). Position gets none: its noise comes with
-// the step.
-func TimeNoise(dst *[4]float64, n int, dtS, headingVarPerS, offsetVarPerS float64) {
-	*dst = [4]float64{IHead: headingVarPerS * dtS}
-	if n == 4 {
-		dst[IOffset] = offsetVarPerS * dtS
+// to the diagonal of a filter of layout l over dtS seconds: a heading
+// random walk of headingVarPerS (rad^2/s) and, where the layout has the
+// IMU offset, an offset random walk of offsetVarPerS (rad^2/s). Every other
+// entry is zero: position noise comes with the step.
+func TimeNoise(dst *[MaxStates]float64, l *Layout, dtS, headingVarPerS, offsetVarPerS float64) {
+	*dst = [MaxStates]float64{IHead: headingVarPerS * dtS}
+	if l.offset >= 0 {
+		dst[l.offset] = offsetVarPerS * dtS
 	}
 }
 

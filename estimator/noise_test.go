@@ -9,30 +9,39 @@ import (
 )
 
 // TestStepNoiseAdds: the step noise of two halves of a straight or turning
-// step adds up to the noise of the whole (noise rates per metre and per
-// radian), the property that makes the estimate independent of the
+// step adds up to the noise of the whole (noise rates per metre, per radian
+// and per second), the property that makes the estimate independent of the
 // sampling rate.
 func TestStepNoiseAdds(t *testing.T) {
 	s := Step{ForwardM: 0.3, LeftM: -0.1, TurnRad: 0.4}
-	var whole, half [9]float64
-	StepNoise(&whole, s, 1e-4, 2e-4, 3e-4)
-	StepNoise(&half, s.Scale(0.5), 1e-4, 2e-4, 3e-4)
-	for i := range whole {
-		if math.Abs(whole[i]-2*half[i]) > 1e-18 {
-			t.Errorf("entry %d: whole %g, two halves %g", i, whole[i], 2*half[i])
+	for _, r := range []StepRates{
+		{ForwardVarM2PerM: 1e-4, LeftVarM2PerM: 2e-4, TurnVarRad2PerRad: 3e-4},
+		{ForwardVarM2PerM: 1e-4, LeftVarM2PerM: 2e-4, TurnVarRad2PerRad: 3e-4, ForwardVarM2PerS: 4e-5, LeftVarM2PerS: 5e-5, TurnVarRad2PerS: 6e-5},
+	} {
+		var whole, half [9]float64
+		StepNoise(&whole, s, 0.8, &r)
+		StepNoise(&half, s.Scale(0.5), 0.4, &r)
+		for i := range whole {
+			if math.Abs(whole[i]-2*half[i]) > 1e-18 {
+				t.Errorf("entry %d: whole %g, two halves %g", i, whole[i], 2*half[i])
+			}
+		}
+		if want := 1e-4*math.Hypot(0.3, 0.1) + r.ForwardVarM2PerS*0.8; math.Abs(whole[0]-want) > 1e-18 {
+			t.Errorf("forward variance %g, want %g", whole[0], want)
+		}
+		if want := 3e-4*0.4 + r.TurnVarRad2PerS*0.8; math.Abs(whole[8]-want) > 1e-18 {
+			t.Errorf("turn variance %g, want %g", whole[8], want)
 		}
 	}
-	if want := 1e-4 * math.Hypot(0.3, 0.1); math.Abs(whole[0]-want) > 1e-18 {
-		t.Errorf("forward variance %g, want %g", whole[0], want)
-	}
-	var q [4]float64
-	TimeNoise(&q, 3, 2, 1e-7, 5e-7)
-	if q != [4]float64{0, 0, 2e-7, 0} {
+	var q [MaxStates]float64
+	l3, l7 := testLayout(3), testLayout(7)
+	TimeNoise(&q, &l3, 2, 1e-7, 5e-7)
+	if q != [MaxStates]float64{IHead: 2e-7} {
 		t.Errorf("3 states: %v", q)
 	}
-	TimeNoise(&q, 4, 2, 1e-7, 5e-7)
-	if q != [4]float64{0, 0, 2e-7, 1e-6} {
-		t.Errorf("4 states: %v", q)
+	TimeNoise(&q, &l7, 2, 1e-7, 5e-7)
+	if q != [MaxStates]float64{IHead: 2e-7, IOffset: 1e-6} {
+		t.Errorf("7 states: %v", q)
 	}
 }
 

@@ -3,7 +3,7 @@ package estimator
 // RTSStep writes into dst the smoothed estimate of one step of the
 // fixed-interval Rauch-Tung-Striebel smoother: filtered is the step's
 // filtered estimate, predicted the next step's prediction from it, f the
-// Jacobian of that prediction (n x n, stride 4) and smoothed the next
+// Jacobian of that prediction (n x n, stride MaxStates, Filter.Transition) and smoothed the next
 // step's smoothed estimate.
 //
 //	C   = P_f F^T P_p^-1
@@ -15,71 +15,71 @@ package estimator
 //
 // Reference: Rauch, Tung and Striebel, AIAA Journal 3(8), 1965; in this
 // form Bar-Shalom, Li and Kirubarajan (2001), section 8.6.
-func RTSStep(dst, filtered, predicted *State, f *[16]float64, smoothed *State) error {
+func RTSStep(dst, filtered, predicted *State, f *[MaxStates * MaxStates]float64, smoothed *State) error {
 	n := filtered.n
-	var ct [16]float64
+	var ct [MaxStates * MaxStates]float64
 	if !rtsGainT(&ct, filtered, predicted, f) {
 		return ErrNotPositiveDefinite
 	}
-	var d [4]float64
+	var d [MaxStates]float64
 	for i := 0; i < n; i++ {
 		d[i] = smoothed.x[i] - predicted.x[i]
-		if i >= IHead {
+		if filtered.isAngle(i) {
 			d[i] = Wrap(d[i])
 		}
 	}
 	// dp = P_s - P_p; out.p = P_f + C dp C^T with C = ct^T.
-	var dp, cdp [16]float64
+	var dp, cdp [MaxStates * MaxStates]float64
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			dp[i*4+j] = smoothed.p[i*4+j] - predicted.p[i*4+j]
+			dp[i*stride+j] = smoothed.p[i*stride+j] - predicted.p[i*stride+j]
 		}
 	}
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
-				acc += ct[k*4+i] * dp[k*4+j]
+				acc += ct[k*stride+i] * dp[k*stride+j]
 			}
-			cdp[i*4+j] = acc
+			cdp[i*stride+j] = acc
 		}
 	}
-	out := State{n: n}
+	out := State{n: n, angles: filtered.angles}
 	for i := 0; i < n; i++ {
 		var dx float64
 		for k := 0; k < n; k++ {
-			dx += ct[k*4+i] * d[k]
+			dx += ct[k*stride+i] * d[k]
 		}
 		out.x[i] = filtered.x[i] + dx
-		if i >= IHead {
+		if filtered.isAngle(i) {
 			out.x[i] = Wrap(out.x[i])
 		}
 		for j := 0; j < n; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
-				acc += cdp[i*4+k] * ct[k*4+j]
+				acc += cdp[i*stride+k] * ct[k*stride+j]
 			}
-			out.p[i*4+j] = filtered.p[i*4+j] + acc
+			out.p[i*stride+j] = filtered.p[i*stride+j] + acc
 		}
 	}
-	symmetrise(out.p[:], n, 4)
+	symmetrise(out.p[:], n, stride)
 	*dst = out
 	return nil
 }
 
 // rtsGainT writes ct = P_p^-1 F P_f, the transpose of the smoother gain C,
 // and reports false if P_p is not positive definite.
-func rtsGainT(ct *[16]float64, filtered, predicted *State, f *[16]float64) bool {
+func rtsGainT(ct *[MaxStates * MaxStates]float64, filtered, predicted *State, f *[MaxStates * MaxStates]float64) bool {
 	n := filtered.n
 	pp := predicted.p
-	symmetrise(pp[:], n, 4)
+	symmetrise(pp[:], n, stride)
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
 			var acc float64
 			for k := 0; k < n; k++ {
-				acc += f[i*4+k] * filtered.p[k*4+j]
+				acc += f[i*stride+k] * filtered.p[k*stride+j]
 			}
-			ct[i*4+j] = acc
+			ct[i*stride+j] = acc
 		}
 	}
 	return SolveSPD(&pp, n, ct, n)

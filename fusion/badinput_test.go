@@ -13,7 +13,17 @@ func threeWheels() Config {
 		Wheels:    []Wheel{{YM: 0.12, CountsPerM: 1000, CounterBits: 16}, {YM: -0.12, CountsPerM: 1000, CounterBits: 16}, {XM: -0.08, DirectionRad: math.Pi / 2, CountsPerM: 1000, CounterBits: 16}},
 		IMU:       IMUAbsolute,
 		Landmarks: []Landmark{{ID: "post-1", XM: 3, YM: 1}},
+		Sensors:   kindSensors(),
 	}
+}
+
+// kindSensors returns one sensor per fix kind, named by the kind's label.
+func kindSensors() []Sensor {
+	var out []Sensor
+	for _, l := range FixKindLabels() {
+		out = append(out, Sensor{ID: l.Name, Kind: l.Value})
+	}
+	return out
 }
 
 // busyRobot returns a robot with a full window, a held fix and an
@@ -32,10 +42,10 @@ func busyRobot(t *testing.T) *Robot {
 			r.AddHeading(Heading{StampNs: k*5e6 + 2e6, HeadingRad: 0.3 + float64(k)*0.00004})
 		}
 		if k%20 == 0 {
-			r.AddFix(Fix{StampNs: k * 5e6, Kind: FixPosition, XM: float64(k) * 0.002, YM: 0, Cov: []float64{0.01, 0, 0, 0.01}})
+			r.AddFix(Fix{SensorID: "position", StampNs: k * 5e6, Kind: FixPosition, XM: float64(k) * 0.002, YM: 0, Cov: []float64{0.01, 0, 0, 0.01}})
 		}
 	}
-	if res := r.AddFix(Fix{StampNs: 301 * 5e6, Kind: FixHeading, HeadingRad: 0.03, Cov: []float64{0.01}}); res.Verdict != VerdictHeld {
+	if res := r.AddFix(Fix{SensorID: "heading", StampNs: 301 * 5e6, Kind: FixHeading, HeadingRad: 0.03, Cov: []float64{0.01}}); res.Verdict != VerdictHeld {
 		t.Fatalf("future fix: %v", res.Verdict)
 	}
 	return r
@@ -92,42 +102,56 @@ func TestBadInputChangesNothing(t *testing.T) {
 			return r.AddHeading(Heading{StampNs: newest - 1e6, HeadingRad: 0.3, VarRad2: -1})
 		}, ErrBadSample, VerdictInvalid},
 		{"NaN fix", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPose, XM: nan, Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}})
+			return r.AddFix(Fix{SensorID: "pose", StampNs: newest - 100e6, Kind: FixPose, XM: nan, Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}})
 		}, ErrBadSample, VerdictInvalid},
 		{"fix cov wrong size", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPose, Cov: []float64{1, 0, 0, 1}})
+			return r.AddFix(Fix{SensorID: "pose", StampNs: newest - 100e6, Kind: FixPose, Cov: []float64{1, 0, 0, 1}})
 		}, ErrBadSample, VerdictInvalid},
 		{"fix cov not positive definite", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPosition, Cov: []float64{1, 2, 2, 1}})
+			return r.AddFix(Fix{SensorID: "position", StampNs: newest - 100e6, Kind: FixPosition, Cov: []float64{1, 2, 2, 1}})
 		}, ErrBadSample, VerdictInvalid},
 		{"fix cov asymmetric", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixPosition, Cov: []float64{1, 0.5, 0.2, 1}})
+			return r.AddFix(Fix{SensorID: "position", StampNs: newest - 100e6, Kind: FixPosition, Cov: []float64{1, 0.5, 0.2, 1}})
 		}, ErrBadSample, VerdictInvalid},
 		{"fix cov NaN", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixHeading, Cov: []float64{nan}})
+			return r.AddFix(Fix{SensorID: "heading", StampNs: newest - 100e6, Kind: FixHeading, Cov: []float64{nan}})
 		}, ErrBadSample, VerdictInvalid},
 		{"unknown landmark", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-9", RangeM: f(2), Cov: []float64{0.01}})
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-9", RangeM: f(2), Cov: []float64{0.01}})
 		}, ErrUnknownLandmark, VerdictInvalid},
 		{"landmark without range or bearing", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Cov: []float64{0.01}})
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},
 		{"negative range", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", RangeM: f(-2), Cov: []float64{0.01}})
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", RangeM: f(-2), Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},
 		{"landmark at the sensor", func(r *Robot) Result {
 			st, _ := r.PoseAt(newest - 100e6)
 			s, c := math.Sincos(st.Pose.Heading)
 			dx, dy := 3-st.Pose.X, 1-st.Pose.Y
 			m := estimator.Pose{X: c*dx + s*dy, Y: -s*dx + c*dy}
-			return r.AddFix(Fix{StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Mount: m, RangeM: f(1), Cov: []float64{0.01}})
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Mount: &m, RangeM: f(1), Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},
-		{"unknown fix kind", func(r *Robot) Result { return r.AddFix(Fix{StampNs: newest - 1e6, Kind: 42, Cov: []float64{1}}) }, ErrBadSample, VerdictInvalid},
+		{"unknown sensor", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "lidar", StampNs: newest - 1e6, Kind: FixHeading, Cov: []float64{0.01}})
+		}, ErrUnknownSensor, VerdictInvalid},
+		{"no sensor", func(r *Robot) Result {
+			return r.AddFix(Fix{StampNs: newest - 1e6, Kind: FixHeading, Cov: []float64{0.01}})
+		}, ErrUnknownSensor, VerdictInvalid},
+		{"sensor of another kind", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "pose", StampNs: newest - 1e6, Kind: FixHeading, Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"no covariance from fix or sensor", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "heading", StampNs: newest - 1e6, Kind: FixHeading})
+		}, ErrBadSample, VerdictInvalid},
+		{"unknown fix kind", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "pose", StampNs: newest - 1e6, Kind: 42, Cov: []float64{1}})
+		}, ErrBadSample, VerdictInvalid},
 		{"fix too old", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: 10e6, Kind: FixHeading, HeadingRad: 0, Cov: []float64{0.01}})
+			return r.AddFix(Fix{SensorID: "heading", StampNs: 10e6, Kind: FixHeading, HeadingRad: 0, Cov: []float64{0.01}})
 		}, ErrTooOld, VerdictTooOld},
 		{"fix too far ahead", func(r *Robot) Result {
-			return r.AddFix(Fix{StampNs: newest + 5e9, Kind: FixHeading, Cov: []float64{0.01}})
+			return r.AddFix(Fix{SensorID: "heading", StampNs: newest + 5e9, Kind: FixHeading, Cov: []float64{0.01}})
 		}, ErrTooFarAhead, VerdictInvalid},
 		{"reseed NaN", func(r *Robot) Result {
 			return r.Reseed(newest-1e6, estimator.Pose{X: nan}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})

@@ -43,7 +43,7 @@ func BenchmarkLateFix(b *testing.B) {
 		feed()
 		p, _ := r.PoseAt((k - 30) * 5e6)
 		cam := estimator.Compose(p.Pose, fusiontest.CameraMount)
-		r.AddFix(fusion.Fix{StampNs: (k-30)*5e6 + 1e6, Kind: fusion.FixPose, Mount: fusiontest.CameraMount, XM: cam.X, YM: cam.Y, HeadingRad: cam.Heading,
+		r.AddFix(fusion.Fix{StampNs: (k-30)*5e6 + 1e6, SensorID: "camera", Kind: fusion.FixPose, XM: cam.X, YM: cam.Y, HeadingRad: cam.Heading,
 			Cov: []float64{9e-4, 0, 0, 0, 9e-4, 0, 0, 0, 4e-4}})
 	}
 }
@@ -65,10 +65,12 @@ func BenchmarkOdometry(b *testing.B) {
 
 // BenchmarkHour runs one hour of the greenhouse cart (200 Hz odometry,
 // 100 Hz IMU, 10 Hz camera fixes 50 to 200 ms late, 5% outliers) through
-// fusion; the samples are generated beforehand, outside the timing.
+// fusion; the samples are generated beforehand, outside the timing. Case
+// "all-options" configures the robot with every option of the sensors
+// section and the calibration on (allOptions: 10 states).
 func BenchmarkHour(b *testing.B) {
 	s := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 9, DurationS: 3600, OutlierFraction: 0.05})
-	cfg := s.Config()
+	base := s.Config()
 	var ins []fusiontest.Input
 	for {
 		in, ok := s.Next()
@@ -77,15 +79,22 @@ func BenchmarkHour(b *testing.B) {
 		}
 		ins = append(ins, in)
 	}
-	b.ReportAllocs()
-	for b.Loop() {
-		r, _ := fusion.New(cfg)
-		for i := range ins {
-			fusiontest.Feed(r, &ins[i])
-		}
-		if p := r.Pose(); math.IsNaN(p.Pose.X) {
-			b.Fatal("NaN")
-		}
+	for _, c := range []struct {
+		name string
+		cfg  fusion.Config
+	}{{"plain", base}, {"all-options", allOptions(base)}} {
+		b.Run(c.name, func(b *testing.B) {
+			b.ReportAllocs()
+			for b.Loop() {
+				r, _ := fusion.New(c.cfg)
+				for i := range ins {
+					fusiontest.Feed(r, &ins[i])
+				}
+				if p := r.Pose(); math.IsNaN(p.Pose.X) {
+					b.Fatal("NaN")
+				}
+			}
+			b.ReportMetric(float64(len(ins)), "samples/op")
+		})
 	}
-	b.ReportMetric(float64(len(ins)), "samples/op")
 }

@@ -98,18 +98,19 @@ func (r *Robot) fixApplied(at int) {
 // fixScore returns H^T S^-1 v and H^T S^-1 H, pose block, of measurement m
 // against the estimate st before it.
 func fixScore(st *estimator.State, m *estimator.Measurement) (g [3]float64, info [9]float64, ok bool) {
+	const k = estimator.MaxStates // stride of the work arrays
 	n := st.Size()
-	var x [4]float64
-	var p [16]float64
-	st.MeanInto(x[:])
-	st.CovarianceInto(p[:])
+	var x [k]float64
+	var p [k * k]float64
+	st.MeanInto(x[:n])
+	st.CovarianceInto(p[:n*n])
 	z, h, err := m.Predicted(x[:n])
 	if err != nil {
 		return g, info, false
 	}
 	d := m.Kind.Dim()
 	var v [3]float64
-	var s, hs, vs [16]float64 // S (d x d); H, then S^-1 H (d x n); v, then S^-1 v; stride 4
+	var s, hs, vs [k * k]float64 // S (d x d); H, then S^-1 H (d x n); v, then S^-1 v
 	for a := 0; a < d; a++ {
 		v[a] = m.Z[a] - z[a]
 		if m.Kind.IsAngle(a) {
@@ -122,12 +123,12 @@ func fixScore(st *estimator.State, m *estimator.Measurement) (g [3]float64, info
 					sum += h[a*n+i] * p[i*n+j] * h[b*n+j]
 				}
 			}
-			s[a*4+b] = sum
+			s[a*k+b] = sum
 		}
 		for j := 0; j < n; j++ {
-			hs[a*4+j] = h[a*n+j]
+			hs[a*k+j] = h[a*n+j]
 		}
-		vs[a*4] = v[a]
+		vs[a*k] = v[a]
 	}
 	sv := s
 	if !estimator.SolveSPD(&s, d, &hs, n) || !estimator.SolveSPD(&sv, d, &vs, 1) {
@@ -135,9 +136,9 @@ func fixScore(st *estimator.State, m *estimator.Measurement) (g [3]float64, info
 	}
 	for i := 0; i < 3; i++ {
 		for a := 0; a < d; a++ {
-			g[i] += h[a*n+i] * vs[a*4]
+			g[i] += h[a*n+i] * vs[a*k]
 			for j := 0; j < 3; j++ {
-				info[i*3+j] += h[a*n+i] * hs[a*4+j]
+				info[i*3+j] += h[a*n+i] * hs[a*k+j]
 			}
 		}
 	}

@@ -45,6 +45,13 @@ type Noise struct {
 	StepForwardVarM2PerM  float64
 	StepLeftVarM2PerM     float64
 	StepTurnVarRad2PerRad float64
+	// StepForwardVarM2PerS, StepLeftVarM2PerS, StepTurnVarRad2PerS: noise
+	// of body steps per second elapsed, beside the terms above (odometry
+	// from commanded velocities errs with time, moving or not). Zero (the
+	// default) leaves the term out.
+	StepForwardVarM2PerS float64
+	StepLeftVarM2PerS    float64
+	StepTurnVarRad2PerS  float64
 	// IMUHeadingVarRad2: variance of one absolute IMU heading reading.
 	IMUHeadingVarRad2 float64
 	// IMUTurnVarRad2PerRad: variance of an IMU turn row per radian turned.
@@ -53,15 +60,13 @@ type Noise struct {
 	IMUOffsetVarRad2PerS float64
 }
 
-// stepNoise writes the covariance of a body step the robot computed itself.
-func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step) {
-	estimator.StepNoise(dst, s, n.StepForwardVarM2PerM, n.StepLeftVarM2PerM, n.StepTurnVarRad2PerRad)
-}
-
-// timeNoise writes the time-driven process noise of dtS seconds for an
-// n-state filter.
-func (n *Noise) timeNoise(dst *[4]float64, states int, dtS float64) {
-	estimator.TimeNoise(dst, states, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+// stepNoise writes the covariance of a body step the robot computed itself
+// over dtS seconds.
+func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step, dtS float64) {
+	estimator.StepNoise(dst, s, dtS, &estimator.StepRates{
+		ForwardVarM2PerM: n.StepForwardVarM2PerM, LeftVarM2PerM: n.StepLeftVarM2PerM, TurnVarRad2PerRad: n.StepTurnVarRad2PerRad,
+		ForwardVarM2PerS: n.StepForwardVarM2PerS, LeftVarM2PerS: n.StepLeftVarM2PerS, TurnVarRad2PerS: n.StepTurnVarRad2PerS,
+	})
 }
 
 // DefaultNoise returns the noise model used where a Noise field is zero. It
@@ -157,6 +162,11 @@ type Config struct {
 	StartPose estimator.Pose
 	StartCov  []float64
 	Landmarks []Landmark
+	// Sensors are the sources of fixes, at most MaxSensors; a fix must
+	// name one (DEVELOPERS.md, "Design: Sensors").
+	Sensors []Sensor
+	// Calibration adds odometry calibration states.
+	Calibration Calibration
 }
 
 // ErrConfig marks every configuration error.
@@ -215,6 +225,12 @@ func (c Config) withDefaults() Config {
 	if c.StartCov == nil {
 		c.StartCov = []float64{0.0025, 0, 0, 0, 0.0025, 0, 0, 0, 0.0012}
 	}
+	c.Sensors = append([]Sensor(nil), c.Sensors...)
+	for i := range c.Sensors {
+		c.Sensors[i] = c.Sensors[i].withDefaults()
+	}
+	def(&c.Calibration.ScaleStd, 0.1)
+	def(&c.Calibration.RateBiasStdRadPerS, 0.01)
 	return c
 }
 
@@ -222,7 +238,7 @@ func (c Config) withDefaults() Config {
 // wrapping ErrConfig that names the offending field.
 func (c Config) Validate() error {
 	c = c.withDefaults()
-	for _, check := range []func() error{c.checkWheels, c.checkNoise, c.checkLimits, c.checkStart, c.checkLandmarks, c.checkLayout} {
+	for _, check := range []func() error{c.checkWheels, c.checkNoise, c.checkLimits, c.checkStart, c.checkLandmarks, c.checkLayout, c.checkSensors, c.checkCalibration, c.checkState} {
 		if err := check(); err != nil {
 			return err
 		}
@@ -267,6 +283,18 @@ func (c *Config) checkNoise() error {
 	for _, n := range noise {
 		if !(n.v > 0) || !finiteAll(n.v) {
 			return cfgErr(n.name, "%v must be a positive finite variance rate", n.v)
+		}
+	}
+	for _, n := range []struct {
+		name string
+		v    float64
+	}{
+		{"noise.step_forward_var_m2_per_s", c.Noise.StepForwardVarM2PerS},
+		{"noise.step_left_var_m2_per_s", c.Noise.StepLeftVarM2PerS},
+		{"noise.step_turn_var_rad2_per_s", c.Noise.StepTurnVarRad2PerS},
+	} {
+		if !(n.v >= 0) || !finiteAll(n.v) {
+			return cfgErr(n.name, "%v must be a finite variance rate, not negative", n.v)
 		}
 	}
 	return nil

@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"errors"
+	"fmt"
 	"math"
 	"strings"
 	"testing"
@@ -9,7 +10,12 @@ import (
 
 func TestConfigValidate(t *testing.T) {
 	good := func() Config {
-		return Config{Wheels: []Wheel{{XM: 0, YM: 0.12}, {XM: 0, YM: -0.12}, {XM: -0.08, DirectionRad: math.Pi / 2}}}
+		return Config{Wheels: []Wheel{{XM: 0, YM: 0.12}, {XM: 0, YM: -0.12}, {XM: -0.08, DirectionRad: math.Pi / 2}},
+			Sensors: []Sensor{
+				{ID: "camera", Kind: FixLandmark, Cov: []float64{4e-4, 0, 0, 1e-4}, CorrelationTimeS: 1.5, CorrelatedFraction: 0.5, Robust: RobustHuber},
+				{ID: "gnss", Kind: FixPosition, Robust: RobustStudentT},
+			},
+			Calibration: Calibration{Scale: true, RateBias: true}}
 	}
 	cases := []struct {
 		name  string
@@ -30,6 +36,30 @@ func TestConfigValidate(t *testing.T) {
 		{"landmark twice", func(c *Config) { c.Landmarks = []Landmark{{ID: "a"}, {ID: "a"}} }, "landmarks[1].id"},
 		{"imu mode", func(c *Config) { c.IMU = 9 }, "imu_mode"},
 		{"rotation without wheels", func(c *Config) { c.Wheels = nil; c.IMU = IMURotation }, "imu_mode"},
+		{"sensor without id", func(c *Config) { c.Sensors[0].ID = "" }, "sensors[0].id"},
+		{"sensor named imu", func(c *Config) { c.Sensors[1].ID = "imu" }, "sensors[1].id"},
+		{"sensor twice", func(c *Config) { c.Sensors[1].ID = "camera" }, "sensors[1].id"},
+		{"sensor kind", func(c *Config) { c.Sensors[0].Kind = 9 }, "sensors[0].kind"},
+		{"sensor cov size", func(c *Config) { c.Sensors[0].Cov = []float64{1} }, "sensors[0].covariance"},
+		{"sensor latency", func(c *Config) { c.Sensors[0].LatencyNs = -1 }, "sensors[0].latency_ns"},
+		{"correlated fraction", func(c *Config) { c.Sensors[0].CorrelatedFraction = 1 }, "sensors[0].correlated_fraction"},
+		{"correlated without time", func(c *Config) { c.Sensors[0].CorrelationTimeS = 0 }, "sensors[0].correlation_time_s"},
+		{"correlated without cov", func(c *Config) { c.Sensors[1].CorrelatedFraction, c.Sensors[1].CorrelationTimeS = 0.5, 2 }, "sensors[1].covariance"},
+		{"robust loss", func(c *Config) { c.Sensors[1].Robust = 7 }, "sensors[1].robust"},
+		{"robust parameter", func(c *Config) { c.Sensors[1].RobustParameter = -1 }, "sensors[1].robust_parameter"},
+		{"too many sensors", func(c *Config) {
+			for i := 0; i < MaxSensors; i++ {
+				c.Sensors = append(c.Sensors, Sensor{ID: fmt.Sprint("s", i), Kind: FixHeading})
+			}
+		}, "sensors"},
+		{"state too large", func(c *Config) {
+			for i := 0; i < 3; i++ {
+				c.Sensors = append(c.Sensors, Sensor{ID: fmt.Sprint("p", i), Kind: FixPose, Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}, CorrelationTimeS: 1, CorrelatedFraction: 0.5})
+			}
+		}, "sensors"},
+		{"scale std", func(c *Config) { c.Calibration.ScaleStd = -0.1 }, "calibration.scale_std"},
+		{"rate bias without heading reference", func(c *Config) { c.Sensors = c.Sensors[1:2]; c.Calibration.RateBias = true }, "calibration.rate_bias"},
+		{"step noise per second", func(c *Config) { c.Noise.StepTurnVarRad2PerS = -1 }, "noise.step_turn_var_rad2_per_s"},
 	}
 	if err := good().Validate(); err != nil {
 		t.Fatalf("good config: %v", err)

@@ -6,51 +6,45 @@ import (
 	"reckon.example/estimator"
 )
 
-// fixMeasurement validates a fix and turns it into a measurement.
-func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, error) {
-	m := estimator.Measurement{Mount: f.Mount}
-	if !finiteAll(f.Mount.X, f.Mount.Y, f.Mount.Heading) {
-		return m, badf("mount %+v is not finite", f.Mount)
-	}
+// fixMeasurement validates a fix and turns it into a measurement of its
+// sensor (DEVELOPERS.md, "Design: Sensors"); it returns the sensor's index.
+func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
+	var m estimator.Measurement
+	si := -1
 	switch f.Kind {
 	case FixPose:
 		m.Kind = estimator.KindPose
 		m.Z = [3]float64{f.XM, f.YM, estimator.Wrap(f.HeadingRad)}
 		if !finiteAll(f.XM, f.YM, f.HeadingRad) {
-			return m, badf("pose fix x_m %v, y_m %v, heading_rad %v is not finite", f.XM, f.YM, f.HeadingRad)
+			return m, si, badf("pose fix x_m %v, y_m %v, heading_rad %v is not finite", f.XM, f.YM, f.HeadingRad)
 		}
 	case FixPosition:
 		m.Kind = estimator.KindPosition
 		m.Z = [3]float64{f.XM, f.YM}
 		if !finiteAll(f.XM, f.YM) {
-			return m, badf("position fix x_m %v, y_m %v is not finite", f.XM, f.YM)
+			return m, si, badf("position fix x_m %v, y_m %v is not finite", f.XM, f.YM)
 		}
 	case FixHeading:
 		m.Kind = estimator.KindHeading
 		m.Z = [3]float64{estimator.Wrap(f.HeadingRad)}
 		if !finiteAll(f.HeadingRad) {
-			return m, badf("heading fix heading_rad %v is not finite", f.HeadingRad)
+			return m, si, badf("heading fix heading_rad %v is not finite", f.HeadingRad)
 		}
 	case FixLandmark:
 		if err := r.landmarkMeasurement(f, &m); err != nil {
-			return m, err
+			return m, si, err
 		}
 	default:
-		return m, badf("fix kind %d is not pose, position, heading or landmark", f.Kind)
+		return m, si, badf("fix kind %d is not pose, position, heading or landmark", f.Kind)
 	}
-	d := m.Kind.Dim()
-	if err := estimator.CheckCovariance(f.Cov, d); err != nil {
-		return m, badf("cov for a %s fix (%dx%d): %v", f.Kind, d, d, err)
+	si, ok := r.sensorIndex[f.SensorID]
+	if !ok {
+		return m, -1, &FieldError{Path: "sensor_id", Err: fmt.Errorf("%w: sensor_id %q is not among the robot's configured sensors", ErrUnknownSensor, f.SensorID)}
 	}
-	if err := checkVariances(f.Cov, d, func(i int) bool { return m.Kind.IsAngle(i) }); err != nil {
-		return m, badf("cov for a %s fix: %v", f.Kind, err)
+	if err := r.cfg.Sensors[si].sensorFix(f, r.sensorBias[si], &m); err != nil {
+		return m, si, err
 	}
-	for i := 0; i < d; i++ {
-		for j := 0; j < d; j++ {
-			m.R[i*3+j] = f.Cov[i*d+j]
-		}
-	}
-	return m, nil
+	return m, si, nil
 }
 
 // Plausible variances: a standard deviation between 1 micrometre (or
@@ -169,17 +163,16 @@ func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
 	return nil
 }
 
-// AddFix takes one absolute fix.
+// AddFix takes one absolute fix. It is placed at its capture time, its
+// stamp less its sensor's latency.
 func (r *Robot) AddFix(fx Fix) Result {
-	m, err := r.fixMeasurement(&fx)
+	m, si, err := r.fixMeasurement(&fx)
 	if err != nil {
 		return refused(err)
 	}
 	res := r.next()
 	id := fx.SensorID
-	if id == "" {
-		id = "fix"
-	}
-	e := entry{kind: entMeas, t0: fx.StampNs, t1: fx.StampNs, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
+	t := fx.StampNs - r.cfg.Sensors[si].LatencyNs
+	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
 	return r.finish(r.addMeasurement(res, e, id))
 }

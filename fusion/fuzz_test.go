@@ -63,6 +63,15 @@ func fuzzSamples(t *testing.T, data []byte) {
 		case 3: // a robot that sends body steps
 			cfg.Wheels = nil
 		}
+		if in.byte()%2 == 0 {
+			// Every option of the sensors section and the calibration.
+			cfg.Calibration = Calibration{Scale: true, RateBias: true, ForwardScaleVarPerM: 1e-6}
+			cfg.Sensors[0] = Sensor{ID: "pose", Kind: FixPose, Cov: []float64{1e-3, 0, 0, 0, 1e-3, 0, 0, 0, 1e-3},
+				CorrelationTimeS: 1, CorrelatedFraction: 0.5, Robust: RobustHuber, LatencyNs: 20e6}
+			cfg.Sensors[3] = Sensor{ID: "landmark", Kind: FixLandmark, Cov: []float64{1e-3, 0, 0, 1e-3},
+				CorrelationTimeS: 2, CorrelatedFraction: 0.3, Robust: RobustStudentT}
+			cfg.Noise.StepForwardVarM2PerS = 1e-5
+		}
 		cfg.Recovery.Enabled = true
 		cfg.MaxHeld = 8
 		r, err := New(cfg)
@@ -90,7 +99,8 @@ func fuzzSamples(t *testing.T, data []byte) {
 			case 2:
 				res = r.AddHeading(Heading{StampNs: stamp + dt, HeadingRad: in.small() * 10, VarRad2: math.Abs(in.small())})
 			case 3:
-				res = r.AddFix(Fix{StampNs: stamp + dt, Kind: FixKind(in.byte()%5 + 1), XM: in.small() * 100, YM: in.small(), HeadingRad: in.small(),
+				k := FixKind(in.byte()%5 + 1)
+				res = r.AddFix(Fix{SensorID: k.String(), StampNs: stamp + dt, Kind: k, XM: in.small() * 100, YM: in.small(), HeadingRad: in.small(),
 					LandmarkID: "post-1", RangeM: ptr(in.small() * 10), Cov: []float64{math.Abs(in.small()) + 1e-4, 0, 0, 0, 0.01, 0, 0, 0, 0.01}[:in.byte()%10]})
 			case 4:
 				res = r.Reseed(stamp+dt, estimator.Pose{X: in.small(), Y: in.small(), Heading: in.small()}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, math.Abs(in.small()) + 1e-6})

@@ -19,6 +19,9 @@ type snapshot struct {
 	held    []entry
 	counts  []int64
 	lastIMU *float64
+	// cps are the checkpoints of live and held entries, by value (the
+	// entries name slots).
+	cps []checkpoint
 }
 
 func snap(r *Robot) snapshot {
@@ -28,6 +31,11 @@ func snap(r *Robot) snapshot {
 	if r.lastIMU != nil {
 		v := *r.lastIMU
 		s.lastIMU = &v
+	}
+	for _, q := range [][]entry{s.live, s.held} {
+		for i := range q {
+			s.cps = append(s.cps, r.checkpointOf(&q[i].after))
+		}
 	}
 	return s
 }

@@ -74,6 +74,11 @@ var (
 		{IMUAbsolute, "absolute", 2},
 		{IMURotation, "rotation", 3},
 	}
+	robustTable = [...]Label[RobustLoss]{
+		{RobustNone, "none", 1},
+		{RobustHuber, "huber", 2},
+		{RobustStudentT, "student_t", 3},
+	}
 )
 
 // Each ...Labels function returns a copy of its table, so that no caller
@@ -104,6 +109,10 @@ func ConsistencyVerdictLabels() []Label[ConsistencyVerdict] {
 // IMUModeLabels returns the label table of IMUMode (wire enum ImuMode); the
 // labels are also the configuration file's spellings.
 func IMUModeLabels() []Label[IMUMode] { return slices.Clone(imuModeTable[:]) }
+
+// RobustLossLabels returns the label table of RobustLoss (wire enum
+// RobustLoss); the labels are also the configuration file's spellings.
+func RobustLossLabels() []Label[RobustLoss] { return slices.Clone(robustTable[:]) }
 
 // labelOf returns v's row in table, or false.
 func labelOf[T comparable](table []Label[T], v T) (Label[T], bool) {
@@ -160,6 +169,9 @@ func (c ConsistencyVerdict) String() string {
 
 // String returns the mode's label, as the configuration file spells it.
 func (m IMUMode) String() string { return nameOf(imuModeTable[:], m, "imu_mode", uint64(m)) }
+
+// String returns the robust loss's label, as the configuration file spells it.
+func (l RobustLoss) String() string { return nameOf(robustTable[:], l, "robust", uint64(l)) }
 
 // String lists the reasons' labels, comma separated ("trusted" for none).
 func (t TrustReason) String() string {

@@ -70,7 +70,7 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 	e := entry{kind: entOdo, t0: t0, t1: o.StampNs}
 	if o.Step != nil {
 		e.step = *o.Step
-		r.cfg.Noise.stepNoise(&e.cov, e.step)
+		r.cfg.Noise.stepNoise(&e.cov, e.step, float64(o.StampNs-t0)*1e-9)
 	} else if err := r.solveWheels(o, travel, &e, &res); err != nil {
 		return res, err
 	}
@@ -233,4 +233,19 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 		e.cov[8] += n.TurnVarRad2PerRad * math.Abs(e.step.TurnRad)
 	}
 	return nil
+}
+
+// processNoise writes the process noise that a prediction by step over dtS
+// seconds adds to the diagonal (DEVELOPERS.md, "Design: Process noise").
+func (r *Robot) processNoise(q *[estimator.MaxStates]float64, step estimator.Step, dtS float64) {
+	n := &r.cfg.Noise
+	estimator.TimeNoise(q, &r.layout, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+	c := &r.cfg.Calibration
+	if i := r.layout.ForwardScale(); i >= 0 {
+		q[i] = c.ForwardScaleVarPerM * math.Hypot(step.ForwardM, step.LeftM)
+		q[r.layout.TurnScale()] = c.TurnScaleVarPerRad * math.Abs(step.TurnRad)
+	}
+	if i := r.layout.RateBias(); i >= 0 {
+		q[i] = c.RateBiasVarRad2PerS3 * dtS
+	}
 }

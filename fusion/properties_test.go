@@ -10,11 +10,30 @@ import (
 	"reckon.example/fusion/fusiontest"
 )
 
+// allOptions returns cfg with every option of issue "Honest on a real
+// robot" on: odometry scale states with random walks, a heading-rate bias
+// where there is an absolute heading reference, a camera whose error is
+// half correlated over 1.5 s and Student-t weighted, and step noise per
+// second.
+func allOptions(cfg fusion.Config) fusion.Config {
+	cfg.Calibration = fusion.Calibration{Scale: true, ForwardScaleVarPerM: 1e-6, TurnScaleVarPerRad: 1e-6,
+		RateBias: true, RateBiasVarRad2PerS3: 1e-8}
+	cfg.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+	cam := &cfg.Sensors[0]
+	cam.CorrelationTimeS, cam.CorrelatedFraction, cam.Robust = 1.5, 0.5, fusion.RobustStudentT
+	cfg.Noise.StepForwardVarM2PerS, cfg.Noise.StepLeftVarM2PerS, cfg.Noise.StepTurnVarRad2PerS = 1e-6, 1e-6, 1e-6
+	return cfg
+}
+
 // runOdometry feeds only the odometry of a scenario and returns the robot.
-func runOdometry(t *testing.T, sc fusiontest.Scenario) *fusion.Robot {
+func runOdometry(t *testing.T, sc fusiontest.Scenario, options bool) *fusion.Robot {
 	t.Helper()
 	s := fusiontest.New(sc)
-	r, err := fusion.New(s.Config())
+	cfg := s.Config()
+	if options {
+		cfg = allOptions(cfg)
+	}
+	r, err := fusion.New(cfg)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -35,33 +54,42 @@ func runOdometry(t *testing.T, sc fusiontest.Scenario) *fusion.Robot {
 // TestRateInvariance: the same noise-free greenhouse route (constant-twist
 // segments that start on both sample grids) fed at 50 Hz and at 500 Hz ends
 // within 1e-9 m in position and 0.1% in covariance (DEVELOPERS.md, "Design: Process
-// noise"; the noise model adds over sub-intervals).
+// noise"; the noise model adds over sub-intervals), also with the scale,
+// rate-bias and bias states and their noise on.
 func TestRateInvariance(t *testing.T) {
-	for _, layout := range []fusiontest.Layout{fusiontest.FreeWheelTurn, fusiontest.DriveWheelTurn, fusiontest.GyroTurn} {
-		t.Run(layout.String(), func(t *testing.T) {
-			base := fusiontest.Scenario{Layout: layout, NoiseFree: true, DurationS: 40, IMU: layout != fusiontest.GyroTurn}
-			slow, fast := base, base
-			slow.OdometryHz, fast.OdometryHz = 50, 500
-			a := runOdometry(t, slow).Pose()
-			b := runOdometry(t, fast).Pose()
-			if d := math.Hypot(a.Pose.X-b.Pose.X, a.Pose.Y-b.Pose.Y); d > 1e-9 {
-				t.Errorf("end positions differ by %g m: %+v vs %+v", d, a.Pose, b.Pose)
+	for _, options := range []bool{false, true} {
+		for _, layout := range []fusiontest.Layout{fusiontest.FreeWheelTurn, fusiontest.DriveWheelTurn, fusiontest.GyroTurn} {
+			name := layout.String()
+			if options {
+				name += "/all-options"
 			}
-			if d := math.Abs(estimator.Wrap(a.Pose.Heading - b.Pose.Heading)); d > 1e-9 {
-				t.Errorf("end headings differ by %g rad", d)
-			}
-			for i := range a.Cov {
-				if i%4 != 0 {
-					continue // compare variances; covariances can pass through zero
-				}
-				if rel := math.Abs(a.Cov[i]-b.Cov[i]) / b.Cov[i]; rel > 1e-3 {
-					t.Errorf("variance %d: %.6g at 50 Hz vs %.6g at 500 Hz (%.3f%%)", i/4, a.Cov[i], b.Cov[i], 100*rel)
-				}
-			}
-			if a.Pose.X == 0 && a.Pose.Y == 0 {
-				t.Errorf("the robot did not move")
-			}
-		})
+			t.Run(name, func(t *testing.T) { rateInvariance(t, layout, options) })
+		}
+	}
+}
+
+func rateInvariance(t *testing.T, layout fusiontest.Layout, options bool) {
+	base := fusiontest.Scenario{Layout: layout, NoiseFree: true, DurationS: 40, IMU: layout != fusiontest.GyroTurn}
+	slow, fast := base, base
+	slow.OdometryHz, fast.OdometryHz = 50, 500
+	a := runOdometry(t, slow, options).Pose()
+	b := runOdometry(t, fast, options).Pose()
+	if d := math.Hypot(a.Pose.X-b.Pose.X, a.Pose.Y-b.Pose.Y); d > 1e-9 {
+		t.Errorf("end positions differ by %g m: %+v vs %+v", d, a.Pose, b.Pose)
+	}
+	if d := math.Abs(estimator.Wrap(a.Pose.Heading - b.Pose.Heading)); d > 1e-9 {
+		t.Errorf("end headings differ by %g rad", d)
+	}
+	for i := range a.Cov {
+		if i%4 != 0 {
+			continue // compare variances; covariances can pass through zero
+		}
+		if rel := math.Abs(a.Cov[i]-b.Cov[i]) / b.Cov[i]; rel > 1e-3 {
+			t.Errorf("variance %d: %.6g at 50 Hz vs %.6g at 500 Hz (%.3f%%)", i/4, a.Cov[i], b.Cov[i], 100*rel)
+		}
+	}
+	if a.Pose.X == 0 && a.Pose.Y == 0 {
+		t.Errorf("the robot did not move")
 	}
 }
 
@@ -114,13 +142,28 @@ func collect(sc fusiontest.Scenario) (*fusiontest.Sim, []fusiontest.Input) {
 // TestLateEqualsStampOrder: camera fixes delivered 150 ms late, and IMU
 // samples arriving out of order with odometry, give the same estimate as the
 // same samples delivered in stamp order (DEVELOPERS.md, "Design: Time ordering and late measurements"), to 1e-9.
+//
+// With every option on (allOptions) the same holds: bias blocks decay
+// exactly under the interval splitting, and the scales are constant over
+// an interval.
 func TestLateEqualsStampOrder(t *testing.T) {
-	for _, sc := range []fusiontest.Scenario{
-		{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30},
-		{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
-		{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30},
+	for _, c := range []struct {
+		sc      fusiontest.Scenario
+		options bool
+	}{
+		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, false},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false},
+		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false},
+		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 24, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, true},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 25, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true},
+		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 26, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true},
 	} {
-		t.Run(sc.Layout.String(), func(t *testing.T) {
+		sc := c.sc
+		name := sc.Layout.String()
+		if c.options {
+			name += "/all-options"
+		}
+		t.Run(name, func(t *testing.T) {
 			s, arrival := collect(sc)
 			stamped := slices.Clone(arrival)
 			slices.SortStableFunc(stamped, func(a, b fusiontest.Input) int {
@@ -138,11 +181,15 @@ func TestLateEqualsStampOrder(t *testing.T) {
 				}
 				return 0
 			})
-			late, err := fusion.New(s.Config())
+			cfg := s.Config()
+			if c.options {
+				cfg = allOptions(cfg)
+			}
+			late, err := fusion.New(cfg)
 			if err != nil {
 				t.Fatal(err)
 			}
-			inOrder, _ := fusion.New(s.Config())
+			inOrder, _ := fusion.New(cfg)
 			var lateFixes int
 			for i := range arrival {
 				res := fusiontest.Feed(late, &arrival[i])

@@ -37,7 +37,7 @@ type FusedPose struct {
 func (p *FusedPose) Trusted() bool { return p.Distrust == 0 }
 
 func (r *Robot) fused(stamp int64, st *estimator.State, ready bool) FusedPose {
-	fp := FusedPose{StampNs: stamp, Pose: st.Pose(), Distrust: r.trust.reasons, IMUOffsetReady: ready && r.n == 4}
+	fp := FusedPose{StampNs: stamp, Pose: st.Pose(), Distrust: r.trust.reasons, IMUOffsetReady: ready && r.layout.Offset() >= 0}
 	st.PoseCovarianceInto(&fp.Cov)
 	if fp.IMUOffsetReady {
 		fp.IMUOffsetRad, fp.IMUOffsetVarRad2 = st.MeanAt(estimator.IOffset), st.Var(estimator.IOffset)
@@ -77,10 +77,10 @@ func (r *Robot) PoseAt(stampNs int64) (FusedPose, error) {
 		dt := float64(ahead) * 1e-9
 		step := estimator.Step{ForwardM: v.ForwardMPerS * dt, LeftM: v.LeftMPerS * dt, TurnRad: v.TurnRadPerS * dt}
 		var cov [9]float64
-		var q [4]float64
-		r.cfg.Noise.stepNoise(&cov, step)
-		r.cfg.Noise.timeNoise(&q, r.n, dt)
-		r.scratch.Predict(step, &cov, &q)
+		var q [estimator.MaxStates]float64
+		r.cfg.Noise.stepNoise(&cov, step, dt)
+		r.processNoise(&q, step, dt)
+		r.scratch.Predict(step, &cov, dt, &q)
 		out := r.scratch.State()
 		fp := r.fused(stampNs, &out, r.ready)
 		fp.Extrapolated = true

@@ -167,9 +167,8 @@ func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov [9]float64
 		for k := range cov {
 			cov[k] = a[k] + b[k]
 		}
-		var q [4]float64
-		r.cfg.Noise.timeNoise(&q, 3, float64(hi-lo)*1e-9)
-		cov[8] += q[estimator.IHead]
+		// The heading random walk over the stretch (Design: Process noise).
+		cov[8] += r.cfg.Noise.HeadingVarRad2PerS * float64(hi-lo) * 1e-9
 		rel = estimator.Advance(rel, step)
 	}
 	return rel, cov, true

@@ -168,7 +168,8 @@ func TestRecoveryKeepsIMUHeading(t *testing.T) {
 func TestLandmarkRecovery(t *testing.T) {
 	posts := []fusion.Landmark{{ID: "a", XM: 4, YM: 1.5}, {ID: "b", XM: 4, YM: -1.5}, {ID: "c", XM: 6, YM: 0.5}}
 	run := func(seen []fusion.Landmark) (recovered bool, errAfter float64) {
-		cfg := fusion.Config{Recovery: fusion.Recovery{Enabled: true}, Landmarks: seen}
+		cfg := fusion.Config{Recovery: fusion.Recovery{Enabled: true}, Landmarks: seen,
+			Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixLandmark}}}
 		r, err := fusion.New(cfg)
 		if err != nil {
 			t.Fatal(err)

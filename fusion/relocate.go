@@ -91,7 +91,7 @@ func (r *Robot) relocate() (estimator.Pose, [9]float64, string, bool) {
 		if estimator.CheckCovariance(cov[:], 3) != nil {
 			continue
 		}
-		st := estimator.NewState(3, []float64{sol.pose.X, sol.pose.Y, sol.pose.Heading}, cov[:])
+		st := estimator.NewState(3, 1<<estimator.IHead, []float64{sol.pose.X, sol.pose.Y, sol.pose.Heading}, cov[:])
 		if st.Position95() > r.cfg.Trust.MaxPosition95M || math.Sqrt(cov[8]) > r.cfg.Trust.MaxHeadingStdRad {
 			continue
 		}

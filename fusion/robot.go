@@ -11,9 +11,14 @@ import (
 type Robot struct {
 	cfg       Config
 	n         int
+	layout    estimator.Layout
 	gates     estimator.Gates
 	agreeGate float64
 	landmarks map[string][2]float64
+	// sensorIndex maps a sensor id to its index in cfg.Sensors;
+	// sensorBias holds each sensor's first bias state (0: none).
+	sensorIndex map[string]int
+	sensorBias  []int
 
 	f       *estimator.Filter
 	scratch *estimator.Filter
@@ -27,6 +32,14 @@ type Robot struct {
 	head    int
 	errs    []entryErr // of the failed entries in ents
 	held    []entry    // waiting for odometry, in stamp order
+	// cps holds the entries' checkpoints, packed, slot s (from 1) at
+	// [(s-1)k, sk) with k the filter's packed size; cpFree are free slots;
+	// cpTmp is before's copy of one.
+	cps    []float64
+	cpFree []int32
+	cpTmp  checkpoint
+	// restoreErr is a problem RestoreSnapshot found while decoding.
+	restoreErr error
 
 	lastCounts []int64
 	lastIMU    *float64 // IMU heading at newest, IMURotation mode
@@ -51,11 +64,17 @@ func New(cfg Config) (*Robot, error) {
 		return nil, err
 	}
 	cfg = cfg.withDefaults()
-	r := &Robot{cfg: cfg, n: 3, landmarks: map[string][2]float64{}}
-	if cfg.IMU == IMUAbsolute {
-		r.n = 4
+	r := &Robot{cfg: cfg, landmarks: map[string][2]float64{}, sensorIndex: map[string]int{}}
+	for i, s := range cfg.Sensors {
+		r.sensorIndex[s.ID] = i
 	}
+	spec, first := cfg.layoutSpec()
+	r.sensorBias = first
 	var err error
+	if r.layout, err = estimator.NewLayout(spec); err != nil {
+		return nil, cfgErr("sensors", "%v", err)
+	}
+	r.n = r.layout.Size()
 	if r.gates, err = estimator.NewGates(cfg.GateProbability); err != nil {
 		return nil, cfgErr("gate_probability", "%v", err)
 	}
@@ -71,13 +90,14 @@ func New(cfg Config) (*Robot, error) {
 	for i := 0; i < 3; i++ {
 		copy(p[i*r.n:i*r.n+3], cfg.StartCov[i*3:i*3+3])
 	}
-	if r.n == 4 {
-		p[15] = 1 // replaced when the first IMU sample initialises the offset
+	if o := r.layout.Offset(); o >= 0 {
+		p[o*r.n+o] = 1 // replaced when the first IMU sample initialises the offset
 	}
-	if r.f, err = estimator.NewFilter(r.n, x, p); err != nil {
+	cfg.initialState(&r.layout, x, p)
+	if r.f, err = estimator.NewFilter(&r.layout, x, p); err != nil {
 		return nil, cfgErr("start_covariance", "%v", err)
 	}
-	r.scratch, _ = estimator.NewFilter(r.n, x, p)
+	r.scratch, _ = estimator.NewFilter(&r.layout, x, p)
 	r.base = checkpoint{est: r.f.State()}
 	r.stats.init()
 	r.trust.reasons = TrustNoOdometry
@@ -87,8 +107,28 @@ func New(cfg Config) (*Robot, error) {
 // Config returns the robot's configuration with defaults filled in.
 func (r *Robot) Config() Config { return r.cfg }
 
-// StateSize returns 3, or 4 with the IMU offset state.
+// StateSize returns the number of states: 3 for the pose, and one for the
+// IMU offset, the odometry calibration states and the bias blocks as
+// configured (DEVELOPERS.md, "Design: State").
 func (r *Robot) StateSize() int { return r.n }
+
+// Layout returns the layout of the robot's state: where the IMU offset,
+// the odometry calibration states and the sensors' bias blocks are.
+func (r *Robot) Layout() *estimator.Layout { return &r.layout }
+
+// SensorBias returns the index of the first state of the bias block of
+// the configured sensor id, or 0 if it has none (white errors or no such
+// sensor).
+func (r *Robot) SensorBias(id string) int {
+	if i, ok := r.sensorIndex[id]; ok {
+		return r.sensorBias[i]
+	}
+	return 0
+}
+
+// Estimate returns the whole estimate at the newest odometry: every state
+// of the layout, with its covariance.
+func (r *Robot) Estimate() estimator.State { return r.f.State() }
 
 // NewestNs returns the end of the newest odometry interval (0 before any).
 func (r *Robot) NewestNs() int64 { return r.newest }

@@ -67,13 +67,16 @@ const (
 
 // Fix is one absolute fix, typically from a camera seeing a marker.
 type Fix struct {
-	// StampNs is the capture time, on the robot's time base.
+	// StampNs is the sensor's stamp on the robot's time base: the capture
+	// time plus the sensor's configured latency_ns.
 	StampNs int64
-	// SensorID names the sensor for statistics.
+	// SensorID names one of the robot's configured sensors (Config.Sensors);
+	// a fix naming none is refused with ErrUnknownSensor.
 	SensorID string
 	Kind     FixKind
-	// Mount is the sensor's pose in the body frame.
-	Mount estimator.Pose
+	// Mount is the sensor's pose in the body frame; nil takes the
+	// sensor's configured mount.
+	Mount *estimator.Pose
 	// XM, YM, HeadingRad are the measured field pose, position or heading.
 	XM, YM, HeadingRad float64
 	// LandmarkID, RangeM, BearingRad are the landmark fix: at least one of
@@ -81,7 +84,9 @@ type Fix struct {
 	LandmarkID string
 	RangeM     *float64
 	BearingRad *float64
-	// Cov is the row-major covariance in the order above.
+	// Cov is the row-major covariance in the order above; empty takes the
+	// sensor's configured covariance (the matching entries for a range-only
+	// or bearing-only landmark fix).
 	Cov []float64
 }
 

@@ -48,7 +48,8 @@ func rewriting() bool {
 //	odometry T0 T1 step FORWARD LEFT TURN [imu=RAD]   a body step over [T0, T1]
 //	odometry T0 T1 travel W1 W2 [imu=RAD]          each wheel's travel over [T0, T1]
 //	heading T RAD [VAR]                            an absolute IMU heading
-//	fix T pose X Y H cov C... [sensor=ID] [mount=X,Y,H]  (also position X Y, heading H)
+//	fix T pose X Y H cov C... [sensor=ID] [mount=X,Y,H]  (also position X Y, heading H;
+//	                                               the sensor defaults to camera, beacon or compass by kind)
 //	reseed T X Y H cov C...
 //	pose | pose-at T | stats                       read the estimate or the statistics
 //	mark LABEL | unchanged LABEL                   remember, then compare bit for bit
@@ -230,12 +231,21 @@ var variants = map[string]func() fusion.Config{
 	"steps": func() fusion.Config { return fusion.Config{} },
 }
 
+// scriptSensors are every script robot's sensors: a fix without sensor=
+// comes from the one of its kind.
+var scriptSensors = []fusion.Sensor{
+	{ID: "camera", Kind: fusion.FixPose},
+	{ID: "beacon", Kind: fusion.FixPosition},
+	{ID: "compass", Kind: fusion.FixHeading},
+}
+
 // robot NAME VARIANT [recovery=N] [window=DUR]
 func (w *world) newRobot(args []string, opts map[string]string) ([]string, error) {
 	if len(args) != 2 || variants[args[1]] == nil {
 		return nil, errors.New("want: robot NAME diff|diff-imu|steps [recovery=N] [window=DUR]")
 	}
 	cfg := variants[args[1]]()
+	cfg.Sensors = scriptSensors
 	if v, ok := opts["recovery"]; ok {
 		n, err := strconv.Atoi(v)
 		if err != nil {
@@ -360,8 +370,15 @@ func (w *world) fix(args []string, opts map[string]string) ([]string, error) {
 	if len(mount) != 3 {
 		return nil, errors.New("want: mount=X,Y,H")
 	}
-	fx := fusion.Fix{StampNs: t, SensorID: cmp.Or(opts["sensor"], "camera"), Kind: k.kind, Cov: cov,
-		Mount: estimator.Pose{X: mount[0], Y: mount[1], Heading: mount[2]}}
+	fx := fusion.Fix{StampNs: t, SensorID: opts["sensor"], Kind: k.kind, Cov: cov}
+	if _, ok := opts["mount"]; ok {
+		fx.Mount = &estimator.Pose{X: mount[0], Y: mount[1], Heading: mount[2]}
+	}
+	for _, s := range scriptSensors {
+		if fx.SensorID == "" && s.Kind == k.kind {
+			fx.SensorID = s.ID
+		}
+	}
 	switch k.kind {
 	case fusion.FixPose:
 		fx.XM, fx.YM, fx.HeadingRad = v[0], v[1], v[2]

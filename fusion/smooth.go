@@ -17,8 +17,8 @@ type Step struct {
 	// Post is the estimate after the updates at StampNs.
 	Post estimator.State
 	// F is the Jacobian of the prediction from the previous step's Post,
-	// N x N row-major with stride 4.
-	F [16]float64
+	// N x N row-major with stride estimator.MaxStates.
+	F [estimator.MaxStates * estimator.MaxStates]float64
 	// Start marks a step with no predecessor: the run's start, or a pose
 	// set by hand or by move recovery.
 	Start bool
@@ -70,30 +70,24 @@ func (c *stepCollector) collect(r *Robot, k int) {
 	live := r.live()
 	prev := r.base
 	if c.cur == nil && len(c.ready) == 0 {
-		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity4(), Start: true}
+		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity(r.n), Start: true}
 	}
 	for i := 0; i < k; i++ {
 		e := &live[i]
+		after := r.checkpointOf(&e.after)
 		switch e.kind {
 		case entOdo:
 			c.emit()
-			s := Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est}
-			var fx, fu [9]float64
-			estimator.ArcJacobians(prev.est.Pose(), e.step, &fx, &fu)
-			s.F = identity4()
-			for a := 0; a < 3; a++ {
-				for b := 0; b < 3; b++ {
-					s.F[a*4+b] = fx[a*3+b]
-				}
-			}
+			s := Step{StampNs: e.t1, Pred: after.est, Post: after.est}
+			r.f.Transition(&s.F, &prev.est, e.step, float64(e.t1-e.t0)*1e-9)
 			c.cur = &s
 		case entMeas:
-			c.cur.Post = e.after.est
+			c.cur.Post = after.est
 		case entReset:
 			c.emit()
-			c.cur = &Step{StampNs: e.t1, Pred: e.after.est, Post: e.after.est, F: identity4(), Start: true}
+			c.cur = &Step{StampNs: e.t1, Pred: after.est, Post: after.est, F: identity(r.n), Start: true}
 		}
-		prev = e.after
+		prev = after
 	}
 }
 
@@ -104,8 +98,15 @@ func (c *stepCollector) emit() {
 	}
 }
 
-// identity4 returns the 4x4 identity, row-major.
-func identity4() [16]float64 { return [16]float64{1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1, 0, 0, 0, 0, 1} }
+// identity returns the n x n identity, row-major with stride
+// estimator.MaxStates.
+func identity(n int) [estimator.MaxStates * estimator.MaxStates]float64 {
+	var f [estimator.MaxStates * estimator.MaxStates]float64
+	for i := 0; i < n; i++ {
+		f[i*estimator.MaxStates+i] = 1
+	}
+	return f
+}
 
 // StepStore holds a run's steps in order; a long run keeps them on disk.
 type StepStore interface {

@@ -35,6 +35,7 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		Noise:    fusion.Noise{HeadingVarRad2PerS: qh, IMUOffsetVarRad2PerS: qo, IMUHeadingVarRad2: rImu},
 		StartCov: []float64{0.04, 0, 0, 0, 0.09, 0, 0, 0, 0.01},
 		WindowNs: int64(steps) * dtNs * 2,
+		Sensors:  []fusion.Sensor{{ID: "compass", Kind: fusion.FixHeading}, {ID: "beacon", Kind: fusion.FixPosition}},
 	}
 	r, err := fusion.New(cfg)
 	if err != nil {
@@ -63,12 +64,12 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		}
 		if k%7 == 3 {
 			z := 0.02 * rng.NormFloat64()
-			r.AddFix(fusion.Fix{StampNs: stamp, Kind: fusion.FixHeading, HeadingRad: z, Cov: []float64{rHead}})
+			r.AddFix(fusion.Fix{SensorID: "compass", StampNs: stamp, Kind: fusion.FixHeading, HeadingRad: z, Cov: []float64{rHead}})
 			ms = append(ms, meas{k, 1, [2]float64{z}})
 		}
 		if k%11 == 5 {
 			z := [2]float64{0.1 * rng.NormFloat64(), 0.1 * rng.NormFloat64()}
-			r.AddFix(fusion.Fix{StampNs: stamp, Kind: fusion.FixPosition, XM: z[0], YM: z[1], Cov: []float64{rPos, 0, 0, rPos}})
+			r.AddFix(fusion.Fix{SensorID: "beacon", StampNs: stamp, Kind: fusion.FixPosition, XM: z[0], YM: z[1], Cov: []float64{rPos, 0, 0, rPos}})
 			ms = append(ms, meas{k, 2, z})
 		}
 	}

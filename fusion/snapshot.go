@@ -11,11 +11,14 @@ import (
 // SnapshotVersion is the layout version of Snapshot's bytes (message
 // reckon.v1.RobotSnapshot). Version 3: the protocol buffer layout
 // (versions 1 and 2 were gob of Go structs, which a field rename silently
-// emptied). Version 4: recovery candidates carried by odometry (landmark
-// fixes among them), reseeds that keep the IMU offset, the fix_disagrees
-// trust state, the state of the IMU's slip comparison. A change of layout or meaning bumps it, with a new golden file
-// in testdata/snapshots.
-const SnapshotVersion = 4
+// emptied). Version 5: estimates of up to estimator.MaxStates states
+// (IMU offset, odometry calibration, sensor bias blocks), measurements with
+// their bias states and robust weighting, recovery candidates carried by
+// odometry (landmark fixes among them), reseeds that keep the IMU offset,
+// the fix_disagrees trust state and the state of the IMU's slip comparison.
+// A change of layout or meaning bumps it, with a new golden file in
+// testdata/snapshots.
+const SnapshotVersion = 5
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -36,10 +39,10 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	e.int(6, r.baseT)
 	e.int(7, r.newest)
 	for i := range r.live() {
-		e.message(8, func(e *wenc) { encEntry(e, &r.live()[i]) })
+		e.message(8, func(e *wenc) { r.encEntry(e, &r.live()[i]) })
 	}
 	for i := range r.held {
-		e.message(9, func(e *wenc) { encEntry(e, &r.held[i]) })
+		e.message(9, func(e *wenc) { r.encEntry(e, &r.held[i]) })
 	}
 	e.ints(10, r.lastCounts)
 	if r.lastIMU != nil {
@@ -88,7 +91,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	if err != nil {
 		return nil, err
 	}
-	d := wdec{b: b}
+	d := wdec{b: b, angles: r.layout.Angles()}
 	version := uint64(0)
 	var filter estimator.State
 	for num, ok := d.next(); ok; num, ok = d.next() {
@@ -135,9 +138,9 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 	case 7:
 		r.newest = d.int(num)
 	case 8:
-		d.message(num, func(d *wdec) { r.ents = append(r.ents, decEntry(d)) })
+		d.message(num, func(d *wdec) { r.ents = append(r.ents, r.decEntry(d)) })
 	case 9:
-		d.message(num, func(d *wdec) { r.held = append(r.held, decEntry(d)) })
+		d.message(num, func(d *wdec) { r.held = append(r.held, r.decEntry(d)) })
 	case 10:
 		r.lastCounts = d.intSlice(num)
 	case 11:
@@ -196,12 +199,15 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 // checkRestored checks what the rest of the robot relies on: every state
 // of the filter's size, sensor indices in range, counts for every wheel.
 func (r *Robot) checkRestored() error {
+	if r.restoreErr != nil {
+		return r.restoreErr
+	}
 	states := []*estimator.State{&r.base.est}
 	for k, q := range [][]entry{r.ents, r.held} {
 		for i := range q {
-			if k == 0 || q[i].after.est.Size() != 0 {
+			if k == 0 && q[i].after.Slot == 0 {
 				// A held entry has no checkpoint until odometry reaches it.
-				states = append(states, &q[i].after.est)
+				return fmt.Errorf("%w: a checkpoint of 0 states for a %d-state robot", ErrSnapshot, r.n)
 			}
 			if q[i].kind < entOdo || q[i].kind > entReset {
 				return fmt.Errorf("%w: entry of kind %d", ErrSnapshot, q[i].kind)
@@ -232,8 +238,8 @@ func (r *Robot) checkRestored() error {
 
 func encState(e *wenc, s *estimator.State) {
 	n := s.Size()
-	var x [4]float64
-	var p [16]float64
+	var x [estimator.MaxStates]float64
+	var p [estimator.MaxStates * estimator.MaxStates]float64
 	s.MeanInto(x[:])
 	s.CovarianceInto(p[:])
 	e.uint(1, uint64(n))
@@ -260,11 +266,11 @@ func decState(d *wdec) estimator.State {
 		// A held entry has no checkpoint yet: its estimate is the zero State.
 		return estimator.State{}
 	}
-	if n != 3 && n != 4 || len(x) != int(n) || len(p) != int(n*n) {
+	if n < 3 || n > estimator.MaxStates || len(x) != int(n) || len(p) != int(n*n) {
 		d.fail("estimate of size %d with %d mean and %d covariance values", n, len(x), len(p))
 		return estimator.State{}
 	}
-	return estimator.NewState(int(n), x, p)
+	return estimator.NewState(int(n), d.angles, x, p)
 }
 
 func encCheckpoint(e *wenc, c *checkpoint) {
@@ -287,7 +293,7 @@ func decCheckpoint(d *wdec) checkpoint {
 	return c
 }
 
-func encEntry(e *wenc, en *entry) {
+func (r *Robot) encEntry(e *wenc, en *entry) {
 	e.uint(1, uint64(en.kind))
 	e.int(2, en.t0)
 	e.int(3, en.t1)
@@ -299,7 +305,8 @@ func encEntry(e *wenc, en *entry) {
 	e.int(9, int64(en.sensor))
 	e.pose(10, en.pose)
 	e.doubles(11, en.poseCov[:])
-	e.message(12, func(e *wenc) { encCheckpoint(e, &en.after) })
+	after := r.checkpointOf(&en.after)
+	e.message(12, func(e *wenc) { encCheckpoint(e, &after) })
 	e.double(13, en.out.NIS)
 	e.int(14, int64(en.out.Dim))
 	e.bool(15, en.out.Gated)
@@ -307,7 +314,8 @@ func encEntry(e *wenc, en *entry) {
 	e.bool(17, en.keepOffset)
 }
 
-func decEntry(d *wdec) entry {
+// decEntry reads an entry and stores its checkpoint in a slot of r's.
+func (r *Robot) decEntry(d *wdec) entry {
 	var en entry
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
@@ -334,7 +342,14 @@ func decEntry(d *wdec) entry {
 		case 11:
 			d.doubles(num, en.poseCov[:])
 		case 12:
-			d.message(num, func(d *wdec) { en.after = decCheckpoint(d) })
+			d.message(num, func(d *wdec) {
+				cp := decCheckpoint(d)
+				if n := cp.est.Size(); n != 0 && n != r.n {
+					r.restoreErr = fmt.Errorf("%w: a checkpoint of %d states for a %d-state robot", ErrSnapshot, n, r.n)
+					return
+				}
+				r.setCheckpoint(&en.after, &cp)
+			})
 		case 13:
 			en.out.NIS = d.double(num)
 		case 14:
@@ -359,6 +374,11 @@ func encMeasurement(e *wenc, m *estimator.Measurement) {
 	e.double(4, m.LandmarkY)
 	e.doubles(5, m.Z[:])
 	e.doubles(6, m.R[:])
+	if m.Bias != [3]int{} {
+		e.ints(7, []int64{int64(m.Bias[0]), int64(m.Bias[1]), int64(m.Bias[2])})
+	}
+	e.uint(8, uint64(m.Robust.Kind))
+	e.double(9, m.Robust.Param)
 }
 
 func decMeasurement(d *wdec) estimator.Measurement {
@@ -377,6 +397,19 @@ func decMeasurement(d *wdec) estimator.Measurement {
 			d.doubles(num, m.Z[:])
 		case 6:
 			d.doubles(num, m.R[:])
+		case 7:
+			b := d.intSlice(num)
+			if len(b) != 3 {
+				d.fail("measurement: %d bias indices", len(b))
+				break
+			}
+			for i, v := range b {
+				m.Bias[i] = int(v)
+			}
+		case 8:
+			m.Robust.Kind = estimator.RobustKind(d.uint(num))
+		case 9:
+			m.Robust.Param = d.double(num)
 		default:
 			d.fail("measurement: unknown field %d", num)
 		}

@@ -23,7 +23,9 @@ func goldenSnapshotPath() string {
 
 // goldenRobot runs the greenhouse cart for three seconds (free wheels, IMU,
 // encoder counts, camera outliers, a push by hand at 2 s) with a 0.2 s
-// window, and returns its configuration, the robot and the inputs fed.
+// window, odometry scale and rate-bias states and a camera whose errors are
+// half correlated and Huber-weighted (so the estimate has 10 states), and
+// returns its configuration and the robot.
 // testdata/README.md describes the file made from it; server/convert's
 // test builds the same robot.
 func goldenRobot() (fusion.Config, *fusion.Robot) {
@@ -32,6 +34,8 @@ func goldenRobot() (fusion.Config, *fusion.Robot) {
 	sim := fusiontest.New(sc)
 	cfg := sim.Config()
 	cfg.WindowNs = 200e6
+	cfg.Calibration = fusion.Calibration{Scale: true, RateBias: true}
+	cfg.Sensors[0].CorrelationTimeS, cfg.Sensors[0].CorrelatedFraction, cfg.Sensors[0].Robust = 1.5, 0.5, fusion.RobustHuber
 	r, err := fusion.New(cfg)
 	if err != nil {
 		panic(err)

@@ -10,15 +10,20 @@ import (
 
 // TestSnapshotContinuesExactly: a robot restored from a snapshot taken in
 // the middle of a run gives bit for bit the same results as the original
-// for the rest of the run.
+// for the rest of the run, also with every option on (the last case:
+// 9 states and robust, correlated landmark fixes).
 func TestSnapshotContinuesExactly(t *testing.T) {
-	for _, sc := range []fusiontest.Scenario{
+	for k, sc := range []fusiontest.Scenario{
 		{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &fusiontest.Bump{AtS: 25, DXM: 1}},
 		{Layout: fusiontest.GyroTurn, Seed: 52, DurationS: 20, Counts: true},
 		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Seed: 53, DurationS: 20},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Seed: 54, DurationS: 20, OutlierFraction: 0.1},
 	} {
 		_, ins := collect(sc)
 		cfg := fusiontest.New(sc).Config()
+		if k == 3 {
+			cfg = allOptions(cfg)
+		}
 		a, _ := fusion.New(cfg)
 		mid := len(ins) * 3 / 5
 		for i := 0; i < mid; i++ {

@@ -76,6 +76,8 @@ func (e *wenc) message(n protowire.Number, body func(*wenc)) {
 type wdec struct {
 	b   []byte
 	err error
+	// angles is the robot's set of angular states, for the estimates.
+	angles uint16
 	// The field just read.
 	typ protowire.Type
 	v   uint64 // varint or fixed64
@@ -202,7 +204,7 @@ func (d *wdec) message(num protowire.Number, body func(*wdec)) {
 	if !d.want(num, protowire.BytesType) {
 		return
 	}
-	sub := wdec{b: d.raw}
+	sub := wdec{b: d.raw, angles: d.angles}
 	body(&sub)
 	if sub.err != nil && d.err == nil {
 		d.err = sub.err

@@ -47,11 +47,11 @@ type entry struct {
 	poseCov    [9]float64
 	keepOffset bool
 
-	// The estimate after this entry and what the update made of it;
-	// failed: the update or reset failed, with the error in Robot.errs (so
-	// that entries hold no pointers: the window is neither scanned by the
-	// garbage collector nor moved under write barriers).
-	after  checkpoint
+	// The estimate after this entry (in Robot.cps) and what the update made
+	// of it; failed: the update or reset failed, with the error in
+	// Robot.errs (so that entries hold no pointers: the window is neither
+	// scanned by the garbage collector nor moved under write barriers).
+	after  cpSlot
 	out    estimator.Outcome
 	failed bool
 	// initialised: this IMU sample initialised the offset (no NIS).
@@ -67,12 +67,14 @@ func (r *Robot) locate(t int64) int {
 	return sort.Search(len(live), func(i int) bool { return live[i].t1 > t })
 }
 
-// before returns the checkpoint before live entry i.
+// before returns the checkpoint before live entry i: the base, or a copy
+// of the previous entry's in r.cpTmp, valid until the next call.
 func (r *Robot) before(i int) *checkpoint {
 	if i == 0 {
 		return &r.base
 	}
-	return &r.live()[i-1].after
+	r.loadInto(&r.cpTmp, &r.live()[i-1].after)
+	return &r.cpTmp
 }
 
 // apply applies e to the filter and stores the checkpoint after it.
@@ -93,7 +95,7 @@ func (r *Robot) apply(e *entry) {
 		r.setErr(e.seq, err)
 	}
 	e.failed = err != nil
-	e.after = checkpoint{r.f.State(), r.ready}
+	r.storeCheckpoint(&e.after)
 }
 
 // entryErr is the error of a failed entry, by its input's sequence number.
@@ -132,18 +134,22 @@ func (r *Robot) errOf(seq uint64) error {
 
 // predict moves filter f by odometry entry e with its time-driven noise.
 func (r *Robot) predict(f *estimator.Filter, e *entry) {
-	var q [4]float64
-	r.cfg.Noise.timeNoise(&q, r.n, float64(e.t1-e.t0)*1e-9)
-	f.Predict(e.step, &e.cov, &q)
+	var q [estimator.MaxStates]float64
+	dt := float64(e.t1-e.t0) * 1e-9
+	r.processNoise(&q, e.step, dt)
+	f.Predict(e.step, &e.cov, dt, &q)
 }
 
 // replayFrom rewinds the filter to the checkpoint before live entry i and
 // applies every entry from i on.
 func (r *Robot) replayFrom(i int) {
-	cp := r.before(i)
-	r.f.SetState(&cp.est)
-	r.ready = cp.offsetReady
 	live := r.live()
+	if i == 0 {
+		r.f.SetState(&r.base.est)
+		r.ready = r.base.offsetReady
+	} else {
+		r.loadCheckpoint(&live[i-1].after)
+	}
 	for j := i; j < len(live); j++ {
 		r.apply(&live[j])
 	}
@@ -175,6 +181,7 @@ func (r *Robot) insert(e entry) insertion {
 	if i < len(live) && live[i].kind == entOdo && live[i].t0 < t {
 		orig := live[i]
 		a, b := splitOdo(orig, t)
+		b.after = cpSlot{} // a keeps the slot; b takes its own when applied
 		live[i] = a
 		r.ents = slices.Insert(r.ents, r.head+i+1, e, b)
 		r.replayFrom(i)
@@ -191,7 +198,9 @@ func (r *Robot) takeBack(ins insertion) {
 	if e := &r.live()[ins.at]; e.failed {
 		r.setErr(e.seq, nil)
 	}
+	r.freeSlot(&r.live()[ins.at].after)
 	if ins.split {
+		r.freeSlot(&r.live()[ins.at+1].after)
 		r.live()[ins.at-1] = ins.original
 		r.ents = slices.Delete(r.ents, r.head+ins.at, r.head+ins.at+2)
 		r.replayFrom(ins.at - 1)
@@ -241,7 +250,10 @@ func (r *Robot) dropFront(k int) {
 			r.setErr(live[i].seq, nil)
 		}
 	}
-	r.base = live[k-1].after
+	r.loadInto(&r.base, &live[k-1].after)
+	for i := range live[:k] {
+		r.freeSlot(&live[i].after)
+	}
 	r.baseT = live[k-1].t1
 	r.head += k
 	if r.head > 1024 && r.head > len(r.ents)/2 {

@@ -5,21 +5,17 @@ import (
 
 	"google.golang.org/grpc/codes"
 
-	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
 )
 
-// Limits bound what clients can make a server hold. Zero fields take the
+// Limits bound what clients can make a server hold. (Sensors need no
+// limit here: a robot refuses a fix from a sensor its configuration does
+// not name, and the configuration holds at most fusion.MaxSensors.) Zero fields take the
 // defaults given; each is a reckond flag (named in brackets), and a request
 // past one is refused with a status naming the limit and the flag.
 type Limits struct {
 	// MaxRobots bounds the robots of the server (1000; -max-robots).
 	MaxRobots int
-	// MaxSensors bounds the distinct sensor ids a robot keeps statistics
-	// for, its IMU included (64; -max-sensors): a fix from one more is
-	// refused with RESOURCE_EXHAUSTED, as every sensor id costs a robot
-	// state that its snapshots carry for good.
-	MaxSensors int
 	// MaxStringBytes bounds session_id, sensor_id and landmark_id (128
 	// bytes; -max-string-bytes): a longer one is INVALID_ARGUMENT.
 	MaxStringBytes int
@@ -37,7 +33,6 @@ func (l Limits) withDefaults() Limits {
 		}
 	}
 	def(&l.MaxRobots, 1000)
-	def(&l.MaxSensors, 64)
 	def(&l.MaxStringBytes, 128)
 	def(&l.MaxWatchersPerRobot, 64)
 	def(&l.MaxWatchers, 1024)
@@ -49,21 +44,6 @@ func (l Limits) withDefaults() Limits {
 type limitError struct {
 	code   codes.Code
 	reason string
-}
-
-// sensorOf returns the sensor id a sample adds to its robot's statistics
-// ("" for none): a fix's sensor_id ("fix" when empty), "imu" for a heading.
-func sensorOf(s *pb.Sample) string {
-	switch {
-	case s.GetFix() != nil:
-		if id := s.GetFix().GetSensorId(); id != "" {
-			return id
-		}
-		return "fix"
-	case s.GetHeading() != nil:
-		return "imu"
-	}
-	return ""
 }
 
 // checkLimits refuses a request past a limit before its robot sees it. The
@@ -83,19 +63,5 @@ func (s *Server) checkLimits(r *robot, req *pb.IngestRequest) *limitError {
 	if id := fix.GetLandmark().GetLandmarkId(); len(id) > max {
 		return long("sample.fix.landmark.landmark_id", id)
 	}
-	if id := sensorOf(req.GetSample()); id != "" {
-		if _, ok := r.sensors[id]; !ok && len(r.sensors) >= s.opt.Limits.MaxSensors {
-			return &limitError{codes.ResourceExhausted, fmt.Sprintf("sample.fix.sensor_id: %s already has %d distinct sensor ids, the limit (-max-sensors)", r.name, len(r.sensors))}
-		}
-	}
 	return nil
-}
-
-// knownSensors returns the sensor ids in a robot's statistics.
-func knownSensors(fr *fusion.Robot) map[string]struct{} {
-	out := map[string]struct{}{}
-	for _, ss := range fr.Stats().Sensors {
-		out[ss.ID] = struct{}{}
-	}
-	return out
 }

@@ -84,7 +84,7 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 	if err != nil {
 		return quarantined(err)
 	}
-	r.fr, r.journal, r.sessions, r.sensors, r.sinceSnapshot = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.sensors, rp.scan.Replayed
+	r.fr, r.journal, r.sessions, r.sinceSnapshot = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.scan.Replayed
 	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
 	r.detail, rep.Detail = rp.note, rp.note
 	if rp.differing > 0 {
@@ -132,7 +132,6 @@ type replayedRobot struct {
 	fr       *fusion.Robot
 	scan     journal.Scan
 	sessions sessions
-	sensors  map[string]struct{}
 	// build wrote the replayed outputs: the snapshot's, or the opening's.
 	build string
 	// differing counts replayed outputs that differ from those recorded;
@@ -169,7 +168,6 @@ func (s *Server) replayRobot(id string) (*replayedRobot, error) {
 		note := fmt.Sprintf("%d journaled outputs of build %q differ on replay by this build (first at input %d); kept as recorded", rp.differing, rp.build, rp.first)
 		rp.note = strings.TrimPrefix(rp.note+"; "+note, "; ")
 	}
-	rp.sensors = knownSensors(rp.fr)
 	return &rp.replayedRobot, nil
 }
 

@@ -110,7 +110,6 @@ type robot struct {
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
 	sessions      sessions
-	sensors       map[string]struct{} // the sensor ids in fr's statistics
 
 	hub hub
 }
@@ -269,7 +268,7 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
 	name := RobotName(req.GetRobotId())
-	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr, state: pb.RobotState_ROBOT_STATE_SERVING, sensors: map[string]struct{}{}}
+	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr, state: pb.RobotState_ROBOT_STATE_SERVING}
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	if s.robots[name] != nil {
@@ -642,11 +641,6 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
 			continue
 		}
-		if id := sensorOf(req.GetSample()); id != "" {
-			if _, ok := r.sensors[id]; !ok {
-				r.sensors[id] = struct{}{}
-			}
-		}
 		var err error
 		if enc, err = r.record(req, &out[k], enc, arrival); err != nil {
 			tk.lost, tk.cause = k, err
@@ -776,7 +770,7 @@ func (s *Server) rebuild(r *robot, cause error) {
 		s.quarantine(r, fmt.Sprintf("rebuilding from the journal after %v: %v", cause, err))
 		return
 	}
-	r.fr, r.sessions, r.sensors, r.sinceSnapshot = rp.fr, rp.sessions, rp.sensors, rp.scan.Replayed
+	r.fr, r.sessions, r.sinceSnapshot = rp.fr, rp.sessions, rp.scan.Replayed
 }
 
 // probePaused tries the journal of every paused robot by writing a

@@ -223,7 +223,11 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 
 // smooth runs the smoother over the steps into a state store of its own.
 func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
-	smoothed, err := newStateStore(tempDir, steps.Len(), steps.onDisk())
+	k := 0
+	if steps.onDisk() {
+		k = steps.file.k
+	}
+	smoothed, err := newStateStore(tempDir, steps.Len(), k, steps.onDisk())
 	if err != nil {
 		return nil, err
 	}

@@ -6,48 +6,54 @@ import (
 	"fmt"
 	"math"
 	"os"
+	"reflect"
 
 	"reckon.example/estimator"
 	"reckon.example/fusion"
 )
 
 // Fixed-size little-endian records keep a long run's steps and smoothed
-// states on disk, so that memory does not grow with the run.
-const (
-	stateBytes = 8 + 20*8 // size, mean (4), covariance (size x size in 16)
-	stepBytes  = 8 + 2*stateBytes + 16*8 + 8
-	chunk      = 2048 // records read at once
-)
+// states on disk, so that memory does not grow with the run. A record is
+// sized for the run's state size k (every step of one robot has the same):
+// a state is its size and angle set in one word, the mean (k) and the
+// covariance (k x k); a step is its stamp, two states, the transition
+// Jacobian (k x k) and the start flag.
+const chunk = 2048 // records read at once
+
+func stateBytes(k int) int { return 8 + (k+k*k)*8 }
+
+func stepBytes(k int) int { return 8 + 2*stateBytes(k) + k*k*8 + 8 }
 
 func putState(b []byte, s *estimator.State) []byte {
-	var x [4]float64
-	var p [16]float64
-	s.MeanInto(x[:])
-	s.CovarianceInto(p[:])
-	b = binary.LittleEndian.AppendUint64(b, uint64(s.Size()))
-	for _, v := range x {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+	k := s.Size()
+	var v [estimator.MaxStates * estimator.MaxStates]float64
+	b = binary.LittleEndian.AppendUint64(b, uint64(k)|uint64(s.Angles())<<32)
+	s.MeanInto(v[:])
+	for _, x := range v[:k] {
+		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(x))
 	}
-	for _, v := range p {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+	s.CovarianceInto(v[:])
+	for _, x := range v[:k*k] {
+		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(x))
 	}
 	return b
 }
 
 func getState(b []byte, s *estimator.State) []byte {
-	n := int(binary.LittleEndian.Uint64(b))
+	w := binary.LittleEndian.Uint64(b)
+	k, angles := int(uint32(w)), uint16(w>>32)
 	b = b[8:]
-	var x [4]float64
-	var p [16]float64
-	for i := range x {
+	var x [estimator.MaxStates]float64
+	var p [estimator.MaxStates * estimator.MaxStates]float64
+	for i := range x[:k] {
 		x[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
 		b = b[8:]
 	}
-	for i := range p {
+	for i := range p[:k*k] {
 		p[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
 		b = b[8:]
 	}
-	*s = estimator.NewState(n, x[:n], p[:n*n])
+	*s = estimator.NewState(k, angles, x[:k], p[:k*k])
 	return b
 }
 
@@ -114,12 +120,13 @@ func (fs *fileStore) close() error { return fs.f.Close() }
 // stepFile is a fusion.StepStore on disk.
 type stepFile struct {
 	*fileStore
+	k   int // state size
 	buf []byte
 }
 
-func newStepFile(dir string) (*stepFile, error) {
-	fs, err := newFileStore(dir, "reckon-steps-*", stepBytes)
-	return &stepFile{fileStore: fs}, err
+func newStepFile(dir string, k int) (*stepFile, error) {
+	fs, err := newFileStore(dir, "reckon-steps-*", stepBytes(k))
+	return &stepFile{fileStore: fs, k: k}, err
 }
 
 func (sf *stepFile) add(s *fusion.Step) error {
@@ -127,8 +134,10 @@ func (sf *stepFile) add(s *fusion.Step) error {
 	b = binary.LittleEndian.AppendUint64(b, uint64(s.StampNs))
 	b = putState(b, &s.Pred)
 	b = putState(b, &s.Post)
-	for _, v := range s.F {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+	for i := 0; i < sf.k; i++ {
+		for _, v := range s.F[i*estimator.MaxStates : i*estimator.MaxStates+sf.k] {
+			b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+		}
 	}
 	start := uint64(0)
 	if s.Start {
@@ -151,9 +160,12 @@ func (sf *stepFile) read(i int, dst *fusion.Step, backwards bool) error {
 	dst.StampNs = int64(binary.LittleEndian.Uint64(b))
 	b = getState(b[8:], &dst.Pred)
 	b = getState(b, &dst.Post)
-	for k := range dst.F {
-		dst.F[k] = math.Float64frombits(binary.LittleEndian.Uint64(b))
-		b = b[8:]
+	dst.F = [estimator.MaxStates * estimator.MaxStates]float64{}
+	for i := 0; i < sf.k; i++ {
+		for j := 0; j < sf.k; j++ {
+			dst.F[i*estimator.MaxStates+j] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+			b = b[8:]
+		}
 	}
 	dst.Start = binary.LittleEndian.Uint64(b) == 1
 	return nil
@@ -164,14 +176,15 @@ func (sf *stepFile) read(i int, dst *fusion.Step, backwards bool) error {
 // the file.
 type stateFile struct {
 	*fileStore
+	k      int // state size
 	blk    []byte
 	blkNum int // block in blk, -1 for none
 	lo, hi int // records [lo, hi) of the block are filled
 }
 
-func newStateFile(dir string) (*stateFile, error) {
-	fs, err := newFileStore(dir, "reckon-smoothed-*", stateBytes)
-	return &stateFile{fileStore: fs, blk: make([]byte, chunk*stateBytes), blkNum: -1}, err
+func newStateFile(dir string, k int) (*stateFile, error) {
+	fs, err := newFileStore(dir, "reckon-smoothed-*", stateBytes(k))
+	return &stateFile{fileStore: fs, k: k, blk: make([]byte, chunk*stateBytes(k)), blkNum: -1}, err
 }
 
 // SetSmoothed stores state i.
@@ -183,7 +196,7 @@ func (sf *stateFile) SetSmoothed(i int, s *estimator.State) error {
 		sf.blkNum, sf.lo, sf.hi = b, i, i+1
 	}
 	sf.lo, sf.hi = min(sf.lo, i), max(sf.hi, i+1)
-	off := (i % chunk) * stateBytes
+	off := (i % chunk) * stateBytes(sf.k)
 	putState(sf.blk[off:off], s)
 	return nil
 }
@@ -193,7 +206,8 @@ func (sf *stateFile) flush() error {
 		return nil
 	}
 	base := sf.blkNum * chunk
-	_, err := sf.f.WriteAt(sf.blk[(sf.lo-base)*stateBytes:(sf.hi-base)*stateBytes], int64(sf.lo)*stateBytes)
+	sb := stateBytes(sf.k)
+	_, err := sf.f.WriteAt(sf.blk[(sf.lo-base)*sb:(sf.hi-base)*sb], int64(sf.lo)*int64(sb))
 	sf.n = max(sf.n, sf.hi)
 	sf.blkNum = -1
 	return err
@@ -222,7 +236,7 @@ type stepStore struct {
 }
 
 // Bytes a step costs in memory, with its smoothed state.
-const stepMemBytes = 480 + 168
+var stepMemBytes = int64(reflect.TypeFor[fusion.Step]().Size() + reflect.TypeFor[estimator.State]().Size())
 
 func newStepStore(dir string, memoryBytes int64) *stepStore {
 	return &stepStore{dir: dir, budget: int(memoryBytes / stepMemBytes)}
@@ -239,7 +253,7 @@ func (ss *stepStore) add(s *fusion.Step) error {
 			ss.n++
 			return nil
 		}
-		f, err := newStepFile(ss.dir)
+		f, err := newStepFile(ss.dir, s.Pred.Size())
 		if err != nil {
 			return err
 		}
@@ -288,11 +302,11 @@ type stateStore struct {
 	file *stateFile
 }
 
-func newStateStore(dir string, n int, onDisk bool) (*stateStore, error) {
+func newStateStore(dir string, n, k int, onDisk bool) (*stateStore, error) {
 	if !onDisk {
 		return &stateStore{mem: make([]estimator.State, n)}, nil
 	}
-	f, err := newStateFile(dir)
+	f, err := newStateFile(dir, k)
 	return &stateStore{file: f}, err
 }
 

@@ -197,6 +197,12 @@ func (s Scenario) Config() fusion.Config {
 		Recovery:  fusion.Recovery{Enabled: true},
 		StartCov:  []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
 		Landmarks: s.Landmarks(),
+		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixPose, Mount: CameraMount,
+			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}},
+	}
+	if s.Markers {
+		c.Sensors[0].Kind = fusion.FixLandmark
+		c.Sensors[0].Cov = []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}
 	}
 	cpm, bits := 0.0, 0
 	if s.Counts {
@@ -520,7 +526,7 @@ func (sm *Sim) emitCamera(t int64) {
 		if outlier {
 			r += 1 + 2*sm.rng.Float64()
 		}
-		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, Mount: CameraMount, LandmarkID: m.ID,
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, LandmarkID: m.ID,
 			RangeM: &r, BearingRad: &b, Cov: []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}}
 	} else {
 		x, y, h := cam.X+sm.camNoise(0, cameraStdM), cam.Y+sm.camNoise(1, cameraStdM), cam.Heading+sm.camNoise(2, cameraStdRad)
@@ -532,7 +538,7 @@ func (sm *Sim) emitCamera(t int64) {
 		// The error is drawn in the simulator's frame and moved with the
 		// pose, so that a twin run in a moved field frame sees the same error.
 		p := sm.s.ToField(estimator.Pose{X: x, Y: y, Heading: estimator.Wrap(h)})
-		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, Mount: CameraMount, XM: p.X, YM: p.Y, HeadingRad: p.Heading,
+		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, XM: p.X, YM: p.Y, HeadingRad: p.Heading,
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
 	}
 	in.Outlier = outlier

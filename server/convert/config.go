@@ -2,6 +2,7 @@ package convert
 
 import (
 	"fmt"
+	"math"
 
 	"reckon.example/estimator"
 	"reckon.example/fusion"
@@ -39,6 +40,9 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 		IMUHeadingVarRad2:     n.GetImuHeadingVarRad2(),
 		IMUTurnVarRad2PerRad:  n.GetImuTurnVarRad2PerRad(),
 		IMUOffsetVarRad2PerS:  n.GetImuOffsetVarRad2PerS(),
+		StepForwardVarM2PerS:  n.GetStepForwardVarM2PerS(),
+		StepLeftVarM2PerS:     n.GetStepLeftVarM2PerS(),
+		StepTurnVarRad2PerS:   n.GetStepTurnVarRad2PerS(),
 	}
 	cfg.GateProbability = c.GetGateProbability()
 	cfg.GateIMU = c.GetGateImu()
@@ -63,6 +67,17 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	for _, l := range c.GetLandmarks() {
 		cfg.Landmarks = append(cfg.Landmarks, fusion.Landmark{ID: l.GetId(), XM: l.GetXM(), YM: l.GetYM()})
 	}
+	for i, s := range c.GetSensors() {
+		fs, err := sensorFromProto(s, fmt.Sprintf("sensors[%d]", i))
+		if err != nil {
+			return cfg, err
+		}
+		cfg.Sensors = append(cfg.Sensors, fs)
+	}
+	k := c.GetCalibration()
+	cfg.Calibration = fusion.Calibration{Scale: k.GetScale(), ScaleStd: k.GetScaleStd(), ForwardScaleVarPerM: k.GetForwardScaleVarPerM(),
+		TurnScaleVarPerRad: k.GetTurnScaleVarPerRad(), RateBias: k.GetRateBias(), RateBiasStdRadPerS: k.GetRateBiasStdRadPerS(),
+		RateBiasVarRad2PerS3: k.GetRateBiasVarRad2PerS3()}
 	if err := cfg.Validate(); err != nil {
 		return cfg, err
 	}
@@ -94,14 +109,58 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 	c.Noise = &pb.NoiseModel{WheelVarM2PerM: n.WheelVarM2PerM, LateralSlipVarM2PerM: n.LateralSlipVarM2PerM, TurnVarRad2PerRad: n.TurnVarRad2PerRad,
 		HeadingVarRad2PerS: n.HeadingVarRad2PerS, StepForwardVarM2PerM: n.StepForwardVarM2PerM, StepLeftVarM2PerM: n.StepLeftVarM2PerM,
 		StepTurnVarRad2PerRad: n.StepTurnVarRad2PerRad, ImuHeadingVarRad2: n.IMUHeadingVarRad2, ImuTurnVarRad2PerRad: n.IMUTurnVarRad2PerRad,
-		ImuOffsetVarRad2PerS: n.IMUOffsetVarRad2PerS}
+		ImuOffsetVarRad2PerS: n.IMUOffsetVarRad2PerS, StepForwardVarM2PerS: n.StepForwardVarM2PerS, StepLeftVarM2PerS: n.StepLeftVarM2PerS,
+		StepTurnVarRad2PerS: n.StepTurnVarRad2PerS}
 	if cfg.StartCov != nil {
 		c.StartCovariance = &pb.Covariance{Dimension: 3, Values: append([]float64(nil), cfg.StartCov...)}
 	}
 	for _, l := range cfg.Landmarks {
 		c.Landmarks = append(c.Landmarks, &pb.Landmark{Id: l.ID, XM: l.XM, YM: l.YM})
 	}
+	for _, s := range cfg.Sensors {
+		ps := &pb.FixSensor{Id: s.ID, Kind: pb.FixKind(fusion.ProtoOf(fixKindLabels, s.Kind)), Mount: poseToProto(s.Mount),
+			LatencyNs: s.LatencyNs, CorrelationTimeS: s.CorrelationTimeS, CorrelatedFraction: s.CorrelatedFraction,
+			Robust: pb.RobustLoss(fusion.ProtoOf(robustLabels, s.Robust)), RobustParameter: s.RobustParameter}
+		if s.Cov != nil {
+			d := int(math.Round(math.Sqrt(float64(len(s.Cov)))))
+			ps.Covariance = &pb.Covariance{Dimension: uint32(d), Values: append([]float64(nil), s.Cov...)}
+		}
+		c.Sensors = append(c.Sensors, ps)
+	}
+	k := cfg.Calibration
+	if k != (fusion.Calibration{}) {
+		c.Calibration = &pb.OdometryCalibration{Scale: k.Scale, ScaleStd: k.ScaleStd, ForwardScaleVarPerM: k.ForwardScaleVarPerM,
+			TurnScaleVarPerRad: k.TurnScaleVarPerRad, RateBias: k.RateBias, RateBiasStdRadPerS: k.RateBiasStdRadPerS,
+			RateBiasVarRad2PerS3: k.RateBiasVarRad2PerS3}
+	}
 	return c
+}
+
+// sensorFromProto converts one wire sensor; field is its path.
+func sensorFromProto(s *pb.FixSensor, field string) (fusion.Sensor, error) {
+	out := fusion.Sensor{ID: s.GetId(), Mount: poseFromProto(s.GetMount()), LatencyNs: s.GetLatencyNs(),
+		CorrelationTimeS: s.GetCorrelationTimeS(), CorrelatedFraction: s.GetCorrelatedFraction(), RobustParameter: s.GetRobustParameter()}
+	k, ok := fusion.ValueOfProto(fixKindLabels, int32(s.GetKind()))
+	if !ok {
+		return out, fusion.FieldErrorf(fusion.ErrConfig, field+".kind", "%d is not pose, position, heading or landmark", s.GetKind())
+	}
+	out.Kind = k
+	if s.GetRobust() != pb.RobustLoss_ROBUST_LOSS_UNSPECIFIED {
+		r, ok := fusion.ValueOfProto(robustLabels, int32(s.GetRobust()))
+		if !ok {
+			return out, fusion.FieldErrorf(fusion.ErrConfig, field+".robust", "%d is not none, huber or student_t", s.GetRobust())
+		}
+		out.Robust = r
+	}
+	if s.GetCovariance() != nil {
+		d := map[fusion.FixKind]int{fusion.FixPose: 3, fusion.FixPosition: 2, fusion.FixHeading: 1, fusion.FixLandmark: 2}[k]
+		v, err := covFromProto(s.GetCovariance(), d)
+		if err != nil {
+			return out, fusion.FieldErrorf(fusion.ErrConfig, field+".covariance", "%v", err)
+		}
+		out.Cov = v
+	}
+	return out, nil
 }
 
 func poseFromProto(p *pb.FloorPose) estimator.Pose {

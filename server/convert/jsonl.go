@@ -111,7 +111,10 @@ func HeadingToProto(h *fusion.Heading) *pb.Sample {
 
 // FixToProto converts a fix to the wire.
 func FixToProto(f *fusion.Fix) *pb.Sample {
-	x := &pb.Fix{StampNs: f.StampNs, SensorId: f.SensorID, Mount: poseToProto(f.Mount)}
+	x := &pb.Fix{StampNs: f.StampNs, SensorId: f.SensorID}
+	if f.Mount != nil {
+		x.Mount = poseToProto(*f.Mount)
+	}
 	dim := 0
 	switch f.Kind {
 	case fusion.FixPose:
@@ -129,6 +132,8 @@ func FixToProto(f *fusion.Fix) *pb.Sample {
 			dim++
 		}
 	}
-	x.Covariance = &pb.Covariance{Dimension: uint32(dim), Values: f.Cov}
+	if len(f.Cov) > 0 {
+		x.Covariance = &pb.Covariance{Dimension: uint32(dim), Values: f.Cov}
+	}
 	return &pb.Sample{Sample: &pb.Sample_Fix{Fix: x}}
 }

@@ -101,7 +101,11 @@ func decodeOdometry(o *pb.OdometrySample, out *fusion.Odometry) error {
 }
 
 func decodeFix(f *pb.Fix, out *fusion.Fix) error {
-	*out = fusion.Fix{StampNs: f.GetStampNs(), SensorID: f.GetSensorId(), Mount: poseFromProto(f.GetMount())}
+	*out = fusion.Fix{StampNs: f.GetStampNs(), SensorID: f.GetSensorId()}
+	if f.GetMount() != nil {
+		m := poseFromProto(f.GetMount())
+		out.Mount = &m
+	}
 	var dim int
 	switch m := f.GetMeasurement().(type) {
 	case *pb.Fix_Pose:
@@ -131,6 +135,9 @@ func decodeFix(f *pb.Fix, out *fusion.Fix) error {
 		}
 	default:
 		return sampleErrf("sample.fix", "none of pose, position, heading and landmark is set")
+	}
+	if f.GetCovariance() == nil {
+		return nil // the sensor's configured covariance
 	}
 	cov, err := covFromProto(f.GetCovariance(), dim)
 	if err != nil {
@@ -175,7 +182,7 @@ func errorCode(err error) int32 {
 		return CodeOutOfRange
 	case errors.Is(err, fusion.ErrNoIMU):
 		return CodeFailedPrecondition
-	case errors.Is(err, fusion.ErrUnknownLandmark):
+	case errors.Is(err, fusion.ErrUnknownLandmark), errors.Is(err, fusion.ErrUnknownSensor):
 		return CodeNotFound
 	}
 	return CodeInvalidArgument
@@ -189,6 +196,8 @@ var (
 	trustLabels       = fusion.TrustReasonLabels()
 	consistencyLabels = fusion.ConsistencyVerdictLabels()
 	imuModeLabels     = fusion.IMUModeLabels()
+	fixKindLabels     = fusion.FixKindLabels()
+	robustLabels      = fusion.RobustLossLabels()
 )
 
 func verdictToProto(v fusion.Verdict) pb.Verdict {

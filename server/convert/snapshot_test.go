@@ -26,6 +26,8 @@ func goldenConfig() fusion.Config {
 	cfg := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 3,
 		OutlierFraction: 0.2, Bump: &fusiontest.Bump{AtS: 2, DXM: 1}}).Config()
 	cfg.WindowNs = 200e6
+	cfg.Calibration = fusion.Calibration{Scale: true, RateBias: true}
+	cfg.Sensors[0].CorrelationTimeS, cfg.Sensors[0].CorrelatedFraction, cfg.Sensors[0].Robust = 1.5, 0.5, fusion.RobustHuber
 	return cfg
 }
 

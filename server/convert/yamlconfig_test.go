@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"reflect"
 	"strings"
 	"testing"
 
@@ -32,6 +33,9 @@ func TestExampleConfigs(t *testing.T) {
 		}
 		if back, err := ConfigFromProto(ConfigToProto(cfg)); err != nil || len(back.Wheels) != len(c.Wheels) {
 			t.Errorf("%s: round trip: %v", f, err)
+		} else if !reflect.DeepEqual(back.Sensors, cfg.Sensors) || back.Calibration != cfg.Calibration || back.Noise != cfg.Noise {
+			t.Errorf("%s: round trip changed the sensors, calibration or noise:\n%+v %+v %+v\n%+v %+v %+v", f,
+				back.Sensors, back.Calibration, back.Noise, cfg.Sensors, cfg.Calibration, cfg.Noise)
 		}
 	}
 }

@@ -774,7 +774,9 @@ type IngestResponse struct {
 	Verdict Verdict `protobuf:"varint,3,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`
 	// Why it was refused (VERDICT_INVALID, VERDICT_TOO_OLD), naming the field.
 	Reason string `protobuf:"bytes,4,opt,name=reason,proto3" json:"reason,omitempty"`
-	// A fix's normalised innovation squared.
+	// A fix's normalised innovation squared with its own covariance (the raw
+	// NIS: before any robust re-weighting by its sensor's RobustLoss), the
+	// one the gate and the consistency statistics test against chi-square.
 	Nis float64 `protobuf:"fixed64,5,opt,name=nis,proto3" json:"nis,omitempty"`
 	// Degrees of freedom of nis.
 	NisDimension int32 `protobuf:"varint,6,opt,name=nis_dimension,json=nisDimension,proto3" json:"nis_dimension,omitempty"`
@@ -1797,7 +1799,8 @@ type SensorConsistency struct {
 	SensorId string `protobuf:"bytes,1,opt,name=sensor_id,json=sensorId,proto3" json:"sensor_id,omitempty"`
 	// Its verdicts.
 	Counts *VerdictCounts `protobuf:"bytes,2,opt,name=counts,proto3" json:"counts,omitempty"`
-	// Mean NIS of its applied fixes.
+	// Mean NIS of its applied fixes: the raw NIS, with each fix's own
+	// covariance, also for a sensor with a robust loss.
 	MeanNis float64 `protobuf:"fixed64,3,opt,name=mean_nis,json=meanNis,proto3" json:"mean_nis,omitempty"`
 	// Two-sided 95% band of the mean NIS.
 	BandLow float64 `protobuf:"fixed64,4,opt,name=band_low,json=bandLow,proto3" json:"band_low,omitempty"`

@@ -962,10 +962,16 @@ type SnapshotMeasurement struct {
 	LandmarkYM float64 `protobuf:"fixed64,4,opt,name=landmark_y_m,json=landmarkYM,proto3" json:"landmark_y_m,omitempty"`
 	// The measured values, 3 entries.
 	Z []float64 `protobuf:"fixed64,5,rep,packed,name=z,proto3" json:"z,omitempty"`
-	// The measurement covariance, 3x3 row-major (stride 3).
-	R             []float64 `protobuf:"fixed64,6,rep,packed,name=r,proto3" json:"r,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	// The measurement covariance, 3x3 row-major (stride 3): the white part.
+	R []float64 `protobuf:"fixed64,6,rep,packed,name=r,proto3" json:"r,omitempty"`
+	// For each component, the index of the state holding its bias (0: none).
+	Bias []int32 `protobuf:"varint,7,rep,packed,name=bias,proto3" json:"bias,omitempty"`
+	// The estimator's robust weighting (0 none, 1 Huber, 2 Student-t).
+	Robust uint32 `protobuf:"varint,8,opt,name=robust,proto3" json:"robust,omitempty"`
+	// Its parameter: Huber's k or the Student-t degrees of freedom.
+	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
 }
 
 func (x *SnapshotMeasurement) Reset() {
@@ -1038,6 +1044,27 @@ func (x *SnapshotMeasurement) GetR() []float64 {
 		return x.R
 	}
 	return nil
+}
+
+func (x *SnapshotMeasurement) GetBias() []int32 {
+	if x != nil {
+		return x.Bias
+	}
+	return nil
+}
+
+func (x *SnapshotMeasurement) GetRobust() uint32 {
+	if x != nil {
+		return x.Robust
+	}
+	return 0
+}
+
+func (x *SnapshotMeasurement) GetRobustParameter() float64 {
+	if x != nil {
+		return x.RobustParameter
+	}
+	return 0
 }
 
 // SnapshotSensor is one sensor's consistency record.
@@ -1764,7 +1791,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\rnis_dimension\x18\x0e \x01(\x05R\fnisDimension\x12\x14\n" +
 	"\x05gated\x18\x0f \x01(\bR\x05gated\x12 \n" +
 	"\vinitialised\x18\x10 \x01(\bR\vinitialised\x12&\n" +
-	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\"\x9f\x01\n" +
+	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\"\xf6\x01\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
@@ -1773,7 +1800,10 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\flandmark_y_m\x18\x04 \x01(\x01R\n" +
 	"landmarkYM\x12\f\n" +
 	"\x01z\x18\x05 \x03(\x01R\x01z\x12\f\n" +
-	"\x01r\x18\x06 \x03(\x01R\x01r\"\xbc\x01\n" +
+	"\x01r\x18\x06 \x03(\x01R\x01r\x12\x12\n" +
+	"\x04bias\x18\a \x03(\x05R\x04bias\x12\x16\n" +
+	"\x06robust\x18\b \x01(\rR\x06robust\x12)\n" +
+	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\"\xbc\x01\n" +
 	"\x0eSnapshotSensor\x12\x1b\n" +
 	"\tsensor_id\x18\x01 \x01(\tR\bsensorId\x120\n" +
 	"\x06counts\x18\x02 \x01(\v2\x18.reckon.v1.VerdictCountsR\x06counts\x12\x17\n" +

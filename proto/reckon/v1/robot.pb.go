@@ -81,6 +81,128 @@ func (RobotState) EnumDescriptor() ([]byte, []int) {
 	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{0}
 }
 
+// FixKind names what a Fix measures, after the fields of its measurement
+// oneof (samples.proto), and what a FixSensor gives.
+type FixKind int32
+
+const (
+	// Not set.
+	FixKind_FIX_KIND_UNSPECIFIED FixKind = 0
+	// A PoseFix.
+	FixKind_FIX_KIND_POSE FixKind = 1
+	// A PositionFix.
+	FixKind_FIX_KIND_POSITION FixKind = 2
+	// A HeadingFix.
+	FixKind_FIX_KIND_HEADING FixKind = 3
+	// A LandmarkFix.
+	FixKind_FIX_KIND_LANDMARK FixKind = 4
+)
+
+// Enum value maps for FixKind.
+var (
+	FixKind_name = map[int32]string{
+		0: "FIX_KIND_UNSPECIFIED",
+		1: "FIX_KIND_POSE",
+		2: "FIX_KIND_POSITION",
+		3: "FIX_KIND_HEADING",
+		4: "FIX_KIND_LANDMARK",
+	}
+	FixKind_value = map[string]int32{
+		"FIX_KIND_UNSPECIFIED": 0,
+		"FIX_KIND_POSE":        1,
+		"FIX_KIND_POSITION":    2,
+		"FIX_KIND_HEADING":     3,
+		"FIX_KIND_LANDMARK":    4,
+	}
+)
+
+func (x FixKind) Enum() *FixKind {
+	p := new(FixKind)
+	*p = x
+	return p
+}
+
+func (x FixKind) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (FixKind) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_robot_proto_enumTypes[1].Descriptor()
+}
+
+func (FixKind) Type() protoreflect.EnumType {
+	return &file_reckon_v1_robot_proto_enumTypes[1]
+}
+
+func (x FixKind) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use FixKind.Descriptor instead.
+func (FixKind) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{1}
+}
+
+// RobustLoss is the robust weighting of a sensor's fixes. The update uses
+// the noise R / w, w the loss's weight of the fix's NIS; the gate and the
+// reported NIS use the fix's own covariance (the raw NIS).
+type RobustLoss int32
+
+const (
+	// Not set: none.
+	RobustLoss_ROBUST_LOSS_UNSPECIFIED RobustLoss = 0
+	// The ordinary Kalman update.
+	RobustLoss_ROBUST_LOSS_NONE RobustLoss = 1
+	// Huber's weight min(1, k / sqrt(NIS)) (Huber 1964).
+	RobustLoss_ROBUST_LOSS_HUBER RobustLoss = 2
+	// The Student-t weight min(1, (nu + d) / (nu + NIS)), d the fix's
+	// dimension (Roth, Ozkan and Gustafsson 2013).
+	RobustLoss_ROBUST_LOSS_STUDENT_T RobustLoss = 3
+)
+
+// Enum value maps for RobustLoss.
+var (
+	RobustLoss_name = map[int32]string{
+		0: "ROBUST_LOSS_UNSPECIFIED",
+		1: "ROBUST_LOSS_NONE",
+		2: "ROBUST_LOSS_HUBER",
+		3: "ROBUST_LOSS_STUDENT_T",
+	}
+	RobustLoss_value = map[string]int32{
+		"ROBUST_LOSS_UNSPECIFIED": 0,
+		"ROBUST_LOSS_NONE":        1,
+		"ROBUST_LOSS_HUBER":       2,
+		"ROBUST_LOSS_STUDENT_T":   3,
+	}
+)
+
+func (x RobustLoss) Enum() *RobustLoss {
+	p := new(RobustLoss)
+	*p = x
+	return p
+}
+
+func (x RobustLoss) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (RobustLoss) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_robot_proto_enumTypes[2].Descriptor()
+}
+
+func (RobustLoss) Type() protoreflect.EnumType {
+	return &file_reckon_v1_robot_proto_enumTypes[2]
+}
+
+func (x RobustLoss) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use RobustLoss.Descriptor instead.
+func (RobustLoss) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{2}
+}
+
 // ImuMode says how a robot uses its IMU's heading.
 type ImuMode int32
 
@@ -123,11 +245,11 @@ func (x ImuMode) String() string {
 }
 
 func (ImuMode) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_robot_proto_enumTypes[1].Descriptor()
+	return file_reckon_v1_robot_proto_enumTypes[3].Descriptor()
 }
 
 func (ImuMode) Type() protoreflect.EnumType {
-	return &file_reckon_v1_robot_proto_enumTypes[1]
+	return &file_reckon_v1_robot_proto_enumTypes[3]
 }
 
 func (x ImuMode) Number() protoreflect.EnumNumber {
@@ -136,7 +258,7 @@ func (x ImuMode) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use ImuMode.Descriptor instead.
 func (ImuMode) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{1}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{3}
 }
 
 // Robot is one robot whose pose the service estimates. Its resource name is
@@ -276,7 +398,13 @@ type RobotConfig struct {
 	// diag(0.0025, 0.0025, 0.0012)).
 	StartCovariance *Covariance `protobuf:"bytes,16,opt,name=start_covariance,json=startCovariance,proto3" json:"start_covariance,omitempty"`
 	// Mapped landmarks for landmark fixes.
-	Landmarks     []*Landmark `protobuf:"bytes,17,rep,name=landmarks,proto3" json:"landmarks,omitempty"`
+	Landmarks []*Landmark `protobuf:"bytes,17,rep,name=landmarks,proto3" json:"landmarks,omitempty"`
+	// The sources of fixes, at most 16; a fix must name one. Each correlated
+	// sensor adds its fix's dimension to the state (at most 12 states in
+	// all).
+	Sensors []*FixSensor `protobuf:"bytes,18,rep,name=sensors,proto3" json:"sensors,omitempty"`
+	// Online calibration of the odometry (default off).
+	Calibration   *OdometryCalibration `protobuf:"bytes,19,opt,name=calibration,proto3" json:"calibration,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -430,6 +558,250 @@ func (x *RobotConfig) GetLandmarks() []*Landmark {
 	return nil
 }
 
+func (x *RobotConfig) GetSensors() []*FixSensor {
+	if x != nil {
+		return x.Sensors
+	}
+	return nil
+}
+
+func (x *RobotConfig) GetCalibration() *OdometryCalibration {
+	if x != nil {
+		return x.Calibration
+	}
+	return nil
+}
+
+// FixSensor is one configured source of fixes: what it measures, where it
+// sits, its default covariance and its error model.
+type FixSensor struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Its id, as fixes name it in sensor_id; "imu" is reserved.
+	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
+	// What its fixes measure; a fix of another kind is refused.
+	Kind FixKind `protobuf:"varint,2,opt,name=kind,proto3,enum=reckon.v1.FixKind" json:"kind,omitempty"`
+	// Its pose in the body frame, for fixes that carry no mount.
+	Mount *FloorPose `protobuf:"bytes,3,opt,name=mount,proto3" json:"mount,omitempty"`
+	// Covariance of a fix that carries none: 3x3 for pose, 2x2 for position
+	// and for landmark (range, bearing), 1x1 for heading. Required with
+	// correlated_fraction.
+	Covariance *Covariance `protobuf:"bytes,4,opt,name=covariance,proto3" json:"covariance,omitempty"`
+	// How much later than the capture the sensor stamps its fixes,
+	// nanoseconds: a fix is placed at stamp_ns - latency_ns (default 0).
+	LatencyNs int64 `protobuf:"varint,5,opt,name=latency_ns,json=latencyNs,proto3" json:"latency_ns,omitempty"`
+	// Time constant of the error's exponentially correlated part, seconds.
+	CorrelationTimeS float64 `protobuf:"fixed64,6,opt,name=correlation_time_s,json=correlationTimeS,proto3" json:"correlation_time_s,omitempty"`
+	// Share of the covariance that is exponentially correlated
+	// (first-order Gauss-Markov with correlation_time_s), in [0, 1); the
+	// rest is white. 0 (default): white noise.
+	CorrelatedFraction float64 `protobuf:"fixed64,7,opt,name=correlated_fraction,json=correlatedFraction,proto3" json:"correlated_fraction,omitempty"`
+	// Robust weighting of the sensor's fixes (default none).
+	Robust RobustLoss `protobuf:"varint,8,opt,name=robust,proto3,enum=reckon.v1.RobustLoss" json:"robust,omitempty"`
+	// Huber's k in standard deviations (default 1.345) or the Student-t
+	// degrees of freedom (default 4).
+	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
+}
+
+func (x *FixSensor) Reset() {
+	*x = FixSensor{}
+	mi := &file_reckon_v1_robot_proto_msgTypes[2]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *FixSensor) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*FixSensor) ProtoMessage() {}
+
+func (x *FixSensor) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_robot_proto_msgTypes[2]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use FixSensor.ProtoReflect.Descriptor instead.
+func (*FixSensor) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{2}
+}
+
+func (x *FixSensor) GetId() string {
+	if x != nil {
+		return x.Id
+	}
+	return ""
+}
+
+func (x *FixSensor) GetKind() FixKind {
+	if x != nil {
+		return x.Kind
+	}
+	return FixKind_FIX_KIND_UNSPECIFIED
+}
+
+func (x *FixSensor) GetMount() *FloorPose {
+	if x != nil {
+		return x.Mount
+	}
+	return nil
+}
+
+func (x *FixSensor) GetCovariance() *Covariance {
+	if x != nil {
+		return x.Covariance
+	}
+	return nil
+}
+
+func (x *FixSensor) GetLatencyNs() int64 {
+	if x != nil {
+		return x.LatencyNs
+	}
+	return 0
+}
+
+func (x *FixSensor) GetCorrelationTimeS() float64 {
+	if x != nil {
+		return x.CorrelationTimeS
+	}
+	return 0
+}
+
+func (x *FixSensor) GetCorrelatedFraction() float64 {
+	if x != nil {
+		return x.CorrelatedFraction
+	}
+	return 0
+}
+
+func (x *FixSensor) GetRobust() RobustLoss {
+	if x != nil {
+		return x.Robust
+	}
+	return RobustLoss_ROBUST_LOSS_UNSPECIFIED
+}
+
+func (x *FixSensor) GetRobustParameter() float64 {
+	if x != nil {
+		return x.RobustParameter
+	}
+	return 0
+}
+
+// OdometryCalibration adds states that calibrate the odometry online:
+// forward and turn scales and a heading-rate bias, random constants or
+// slow random walks.
+type OdometryCalibration struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Adds forward_scale and turn_scale: the true step is
+	// (s_f forward, s_f left, s_t turn).
+	Scale bool `protobuf:"varint,1,opt,name=scale,proto3" json:"scale,omitempty"`
+	// Prior standard deviation of both scales (default 0.1).
+	ScaleStd float64 `protobuf:"fixed64,2,opt,name=scale_std,json=scaleStd,proto3" json:"scale_std,omitempty"`
+	// Random walk of forward_scale per metre travelled, 1/m (default 0).
+	ForwardScaleVarPerM float64 `protobuf:"fixed64,3,opt,name=forward_scale_var_per_m,json=forwardScaleVarPerM,proto3" json:"forward_scale_var_per_m,omitempty"`
+	// Random walk of turn_scale per radian turned, 1/rad (default 0).
+	TurnScaleVarPerRad float64 `protobuf:"fixed64,4,opt,name=turn_scale_var_per_rad,json=turnScaleVarPerRad,proto3" json:"turn_scale_var_per_rad,omitempty"`
+	// Adds a heading-rate bias b_r: the true turn gains b_r dt. Needs an
+	// absolute heading reference (imu_mode absolute, or a pose, heading or
+	// landmark sensor).
+	RateBias bool `protobuf:"varint,5,opt,name=rate_bias,json=rateBias,proto3" json:"rate_bias,omitempty"`
+	// Prior standard deviation of the rate bias, rad/s (default 0.01).
+	RateBiasStdRadPerS float64 `protobuf:"fixed64,6,opt,name=rate_bias_std_rad_per_s,json=rateBiasStdRadPerS,proto3" json:"rate_bias_std_rad_per_s,omitempty"`
+	// Random walk of the rate bias, (rad/s)^2 per second (default 0).
+	RateBiasVarRad2PerS3 float64 `protobuf:"fixed64,7,opt,name=rate_bias_var_rad2_per_s3,json=rateBiasVarRad2PerS3,proto3" json:"rate_bias_var_rad2_per_s3,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
+}
+
+func (x *OdometryCalibration) Reset() {
+	*x = OdometryCalibration{}
+	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *OdometryCalibration) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*OdometryCalibration) ProtoMessage() {}
+
+func (x *OdometryCalibration) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use OdometryCalibration.ProtoReflect.Descriptor instead.
+func (*OdometryCalibration) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{3}
+}
+
+func (x *OdometryCalibration) GetScale() bool {
+	if x != nil {
+		return x.Scale
+	}
+	return false
+}
+
+func (x *OdometryCalibration) GetScaleStd() float64 {
+	if x != nil {
+		return x.ScaleStd
+	}
+	return 0
+}
+
+func (x *OdometryCalibration) GetForwardScaleVarPerM() float64 {
+	if x != nil {
+		return x.ForwardScaleVarPerM
+	}
+	return 0
+}
+
+func (x *OdometryCalibration) GetTurnScaleVarPerRad() float64 {
+	if x != nil {
+		return x.TurnScaleVarPerRad
+	}
+	return 0
+}
+
+func (x *OdometryCalibration) GetRateBias() bool {
+	if x != nil {
+		return x.RateBias
+	}
+	return false
+}
+
+func (x *OdometryCalibration) GetRateBiasStdRadPerS() float64 {
+	if x != nil {
+		return x.RateBiasStdRadPerS
+	}
+	return 0
+}
+
+func (x *OdometryCalibration) GetRateBiasVarRad2PerS3() float64 {
+	if x != nil {
+		return x.RateBiasVarRad2PerS3
+	}
+	return 0
+}
+
 // EncoderWheel is the mounting of a free-rolling encoder wheel.
 type EncoderWheel struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -451,7 +823,7 @@ type EncoderWheel struct {
 
 func (x *EncoderWheel) Reset() {
 	*x = EncoderWheel{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[2]
+	mi := &file_reckon_v1_robot_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -463,7 +835,7 @@ func (x *EncoderWheel) String() string {
 func (*EncoderWheel) ProtoMessage() {}
 
 func (x *EncoderWheel) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[2]
+	mi := &file_reckon_v1_robot_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -476,7 +848,7 @@ func (x *EncoderWheel) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EncoderWheel.ProtoReflect.Descriptor instead.
 func (*EncoderWheel) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{2}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *EncoderWheel) GetName() string {
@@ -545,13 +917,20 @@ type NoiseModel struct {
 	ImuTurnVarRad2PerRad float64 `protobuf:"fixed64,9,opt,name=imu_turn_var_rad2_per_rad,json=imuTurnVarRad2PerRad,proto3" json:"imu_turn_var_rad2_per_rad,omitempty"`
 	// Random walk of the IMU's heading zero per second (1e-7).
 	ImuOffsetVarRad2PerS float64 `protobuf:"fixed64,10,opt,name=imu_offset_var_rad2_per_s,json=imuOffsetVarRad2PerS,proto3" json:"imu_offset_var_rad2_per_s,omitempty"`
-	unknownFields        protoimpl.UnknownFields
-	sizeCache            protoimpl.SizeCache
+	// Body-step forward variance per second, beside the per-metre term, for
+	// odometry from commanded velocities (default 0).
+	StepForwardVarM2PerS float64 `protobuf:"fixed64,11,opt,name=step_forward_var_m2_per_s,json=stepForwardVarM2PerS,proto3" json:"step_forward_var_m2_per_s,omitempty"`
+	// Body-step leftward variance per second (default 0).
+	StepLeftVarM2PerS float64 `protobuf:"fixed64,12,opt,name=step_left_var_m2_per_s,json=stepLeftVarM2PerS,proto3" json:"step_left_var_m2_per_s,omitempty"`
+	// Body-step turn variance per second (default 0).
+	StepTurnVarRad2PerS float64 `protobuf:"fixed64,13,opt,name=step_turn_var_rad2_per_s,json=stepTurnVarRad2PerS,proto3" json:"step_turn_var_rad2_per_s,omitempty"`
+	unknownFields       protoimpl.UnknownFields
+	sizeCache           protoimpl.SizeCache
 }
 
 func (x *NoiseModel) Reset() {
 	*x = NoiseModel{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	mi := &file_reckon_v1_robot_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -563,7 +942,7 @@ func (x *NoiseModel) String() string {
 func (*NoiseModel) ProtoMessage() {}
 
 func (x *NoiseModel) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	mi := &file_reckon_v1_robot_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -576,7 +955,7 @@ func (x *NoiseModel) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseModel.ProtoReflect.Descriptor instead.
 func (*NoiseModel) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *NoiseModel) GetWheelVarM2PerM() float64 {
@@ -649,6 +1028,27 @@ func (x *NoiseModel) GetImuOffsetVarRad2PerS() float64 {
 	return 0
 }
 
+func (x *NoiseModel) GetStepForwardVarM2PerS() float64 {
+	if x != nil {
+		return x.StepForwardVarM2PerS
+	}
+	return 0
+}
+
+func (x *NoiseModel) GetStepLeftVarM2PerS() float64 {
+	if x != nil {
+		return x.StepLeftVarM2PerS
+	}
+	return 0
+}
+
+func (x *NoiseModel) GetStepTurnVarRad2PerS() float64 {
+	if x != nil {
+		return x.StepTurnVarRad2PerS
+	}
+	return 0
+}
+
 // MoveRecovery re-initialises the pose when several consecutive refused pose
 // fixes agree with one another (the robot was picked up and moved).
 type MoveRecovery struct {
@@ -665,7 +1065,7 @@ type MoveRecovery struct {
 
 func (x *MoveRecovery) Reset() {
 	*x = MoveRecovery{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[4]
+	mi := &file_reckon_v1_robot_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -677,7 +1077,7 @@ func (x *MoveRecovery) String() string {
 func (*MoveRecovery) ProtoMessage() {}
 
 func (x *MoveRecovery) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[4]
+	mi := &file_reckon_v1_robot_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -690,7 +1090,7 @@ func (x *MoveRecovery) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use MoveRecovery.ProtoReflect.Descriptor instead.
 func (*MoveRecovery) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *MoveRecovery) GetEnabled() bool {
@@ -737,7 +1137,7 @@ type TrustLimits struct {
 
 func (x *TrustLimits) Reset() {
 	*x = TrustLimits{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[5]
+	mi := &file_reckon_v1_robot_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -749,7 +1149,7 @@ func (x *TrustLimits) String() string {
 func (*TrustLimits) ProtoMessage() {}
 
 func (x *TrustLimits) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[5]
+	mi := &file_reckon_v1_robot_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -762,7 +1162,7 @@ func (x *TrustLimits) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TrustLimits.ProtoReflect.Descriptor instead.
 func (*TrustLimits) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *TrustLimits) GetMaxPosition95M() float64 {
@@ -816,7 +1216,7 @@ type FloorPose struct {
 
 func (x *FloorPose) Reset() {
 	*x = FloorPose{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[6]
+	mi := &file_reckon_v1_robot_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -828,7 +1228,7 @@ func (x *FloorPose) String() string {
 func (*FloorPose) ProtoMessage() {}
 
 func (x *FloorPose) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[6]
+	mi := &file_reckon_v1_robot_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -841,7 +1241,7 @@ func (x *FloorPose) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use FloorPose.ProtoReflect.Descriptor instead.
 func (*FloorPose) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{6}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *FloorPose) GetXM() float64 {
@@ -879,7 +1279,7 @@ type Covariance struct {
 
 func (x *Covariance) Reset() {
 	*x = Covariance{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[7]
+	mi := &file_reckon_v1_robot_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -891,7 +1291,7 @@ func (x *Covariance) String() string {
 func (*Covariance) ProtoMessage() {}
 
 func (x *Covariance) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[7]
+	mi := &file_reckon_v1_robot_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -904,7 +1304,7 @@ func (x *Covariance) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Covariance.ProtoReflect.Descriptor instead.
 func (*Covariance) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{7}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *Covariance) GetDimension() uint32 {
@@ -936,7 +1336,7 @@ type Landmark struct {
 
 func (x *Landmark) Reset() {
 	*x = Landmark{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[8]
+	mi := &file_reckon_v1_robot_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -948,7 +1348,7 @@ func (x *Landmark) String() string {
 func (*Landmark) ProtoMessage() {}
 
 func (x *Landmark) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[8]
+	mi := &file_reckon_v1_robot_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -961,7 +1361,7 @@ func (x *Landmark) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Landmark.ProtoReflect.Descriptor instead.
 func (*Landmark) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{8}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Landmark) GetId() string {
@@ -997,7 +1397,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\vinput_count\x18\x04 \x01(\x04R\n" +
 	"inputCount\x12+\n" +
 	"\x05state\x18\x05 \x01(\x0e2\x15.reckon.v1.RobotStateR\x05state\x12!\n" +
-	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\"\x83\x06\n" +
+	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\"\xf5\x06\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +
@@ -1018,7 +1418,30 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\n" +
 	"start_pose\x18\x0f \x01(\v2\x14.reckon.v1.FloorPoseR\tstartPose\x12@\n" +
 	"\x10start_covariance\x18\x10 \x01(\v2\x15.reckon.v1.CovarianceR\x0fstartCovariance\x121\n" +
-	"\tlandmarks\x18\x11 \x03(\v2\x13.reckon.v1.LandmarkR\tlandmarks\"\xae\x01\n" +
+	"\tlandmarks\x18\x11 \x03(\v2\x13.reckon.v1.LandmarkR\tlandmarks\x12.\n" +
+	"\asensors\x18\x12 \x03(\v2\x14.reckon.v1.FixSensorR\asensors\x12@\n" +
+	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\"\xfe\x02\n" +
+	"\tFixSensor\x12\x0e\n" +
+	"\x02id\x18\x01 \x01(\tR\x02id\x12&\n" +
+	"\x04kind\x18\x02 \x01(\x0e2\x12.reckon.v1.FixKindR\x04kind\x12*\n" +
+	"\x05mount\x18\x03 \x01(\v2\x14.reckon.v1.FloorPoseR\x05mount\x125\n" +
+	"\n" +
+	"covariance\x18\x04 \x01(\v2\x15.reckon.v1.CovarianceR\n" +
+	"covariance\x12\x1d\n" +
+	"\n" +
+	"latency_ns\x18\x05 \x01(\x03R\tlatencyNs\x12,\n" +
+	"\x12correlation_time_s\x18\x06 \x01(\x01R\x10correlationTimeS\x12/\n" +
+	"\x13correlated_fraction\x18\a \x01(\x01R\x12correlatedFraction\x12-\n" +
+	"\x06robust\x18\b \x01(\x0e2\x15.reckon.v1.RobustLossR\x06robust\x12)\n" +
+	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\"\xbd\x02\n" +
+	"\x13OdometryCalibration\x12\x14\n" +
+	"\x05scale\x18\x01 \x01(\bR\x05scale\x12\x1b\n" +
+	"\tscale_std\x18\x02 \x01(\x01R\bscaleStd\x124\n" +
+	"\x17forward_scale_var_per_m\x18\x03 \x01(\x01R\x13forwardScaleVarPerM\x122\n" +
+	"\x16turn_scale_var_per_rad\x18\x04 \x01(\x01R\x12turnScaleVarPerRad\x12\x1b\n" +
+	"\trate_bias\x18\x05 \x01(\bR\brateBias\x123\n" +
+	"\x17rate_bias_std_rad_per_s\x18\x06 \x01(\x01R\x12rateBiasStdRadPerS\x127\n" +
+	"\x19rate_bias_var_rad2_per_s3\x18\a \x01(\x01R\x14rateBiasVarRad2PerS3\"\xae\x01\n" +
 	"\fEncoderWheel\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x0f\n" +
 	"\x03x_m\x18\x02 \x01(\x01R\x02xM\x12\x0f\n" +
@@ -1026,7 +1449,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\rdirection_rad\x18\x04 \x01(\x01R\fdirectionRad\x12 \n" +
 	"\fcounts_per_m\x18\x05 \x01(\x01R\n" +
 	"countsPerM\x12!\n" +
-	"\fcounter_bits\x18\x06 \x01(\x05R\vcounterBits\"\xa1\x04\n" +
+	"\fcounter_bits\x18\x06 \x01(\x05R\vcounterBits\"\xc4\x05\n" +
 	"\n" +
 	"NoiseModel\x12*\n" +
 	"\x12wheel_var_m2_per_m\x18\x01 \x01(\x01R\x0ewheelVarM2PerM\x127\n" +
@@ -1039,7 +1462,10 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x14imu_heading_var_rad2\x18\b \x01(\x01R\x11imuHeadingVarRad2\x127\n" +
 	"\x19imu_turn_var_rad2_per_rad\x18\t \x01(\x01R\x14imuTurnVarRad2PerRad\x127\n" +
 	"\x19imu_offset_var_rad2_per_s\x18\n" +
-	" \x01(\x01R\x14imuOffsetVarRad2PerS\"k\n" +
+	" \x01(\x01R\x14imuOffsetVarRad2PerS\x127\n" +
+	"\x19step_forward_var_m2_per_s\x18\v \x01(\x01R\x14stepForwardVarM2PerS\x121\n" +
+	"\x16step_left_var_m2_per_s\x18\f \x01(\x01R\x11stepLeftVarM2PerS\x125\n" +
+	"\x18step_turn_var_rad2_per_s\x18\r \x01(\x01R\x13stepTurnVarRad2PerS\"k\n" +
 	"\fMoveRecovery\x12\x18\n" +
 	"\aenabled\x18\x01 \x01(\bR\aenabled\x12\x14\n" +
 	"\x05count\x18\x02 \x01(\x05R\x05count\x12+\n" +
@@ -1069,7 +1495,19 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x17ROBOT_STATE_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13ROBOT_STATE_SERVING\x10\x01\x12\x16\n" +
 	"\x12ROBOT_STATE_PAUSED\x10\x02\x12\x1b\n" +
-	"\x17ROBOT_STATE_QUARANTINED\x10\x03*d\n" +
+	"\x17ROBOT_STATE_QUARANTINED\x10\x03*z\n" +
+	"\aFixKind\x12\x18\n" +
+	"\x14FIX_KIND_UNSPECIFIED\x10\x00\x12\x11\n" +
+	"\rFIX_KIND_POSE\x10\x01\x12\x15\n" +
+	"\x11FIX_KIND_POSITION\x10\x02\x12\x14\n" +
+	"\x10FIX_KIND_HEADING\x10\x03\x12\x15\n" +
+	"\x11FIX_KIND_LANDMARK\x10\x04*q\n" +
+	"\n" +
+	"RobustLoss\x12\x1b\n" +
+	"\x17ROBUST_LOSS_UNSPECIFIED\x10\x00\x12\x14\n" +
+	"\x10ROBUST_LOSS_NONE\x10\x01\x12\x15\n" +
+	"\x11ROBUST_LOSS_HUBER\x10\x02\x12\x19\n" +
+	"\x15ROBUST_LOSS_STUDENT_T\x10\x03*d\n" +
 	"\aImuMode\x12\x18\n" +
 	"\x14IMU_MODE_UNSPECIFIED\x10\x00\x12\x11\n" +
 	"\rIMU_MODE_NONE\x10\x01\x12\x15\n" +
@@ -1088,37 +1526,47 @@ func file_reckon_v1_robot_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_robot_proto_rawDescData
 }
 
-var file_reckon_v1_robot_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_reckon_v1_robot_proto_msgTypes = make([]protoimpl.MessageInfo, 9)
+var file_reckon_v1_robot_proto_enumTypes = make([]protoimpl.EnumInfo, 4)
+var file_reckon_v1_robot_proto_msgTypes = make([]protoimpl.MessageInfo, 11)
 var file_reckon_v1_robot_proto_goTypes = []any{
-	(RobotState)(0),      // 0: reckon.v1.RobotState
-	(ImuMode)(0),         // 1: reckon.v1.ImuMode
-	(*Robot)(nil),        // 2: reckon.v1.Robot
-	(*RobotConfig)(nil),  // 3: reckon.v1.RobotConfig
-	(*EncoderWheel)(nil), // 4: reckon.v1.EncoderWheel
-	(*NoiseModel)(nil),   // 5: reckon.v1.NoiseModel
-	(*MoveRecovery)(nil), // 6: reckon.v1.MoveRecovery
-	(*TrustLimits)(nil),  // 7: reckon.v1.TrustLimits
-	(*FloorPose)(nil),    // 8: reckon.v1.FloorPose
-	(*Covariance)(nil),   // 9: reckon.v1.Covariance
-	(*Landmark)(nil),     // 10: reckon.v1.Landmark
+	(RobotState)(0),             // 0: reckon.v1.RobotState
+	(FixKind)(0),                // 1: reckon.v1.FixKind
+	(RobustLoss)(0),             // 2: reckon.v1.RobustLoss
+	(ImuMode)(0),                // 3: reckon.v1.ImuMode
+	(*Robot)(nil),               // 4: reckon.v1.Robot
+	(*RobotConfig)(nil),         // 5: reckon.v1.RobotConfig
+	(*FixSensor)(nil),           // 6: reckon.v1.FixSensor
+	(*OdometryCalibration)(nil), // 7: reckon.v1.OdometryCalibration
+	(*EncoderWheel)(nil),        // 8: reckon.v1.EncoderWheel
+	(*NoiseModel)(nil),          // 9: reckon.v1.NoiseModel
+	(*MoveRecovery)(nil),        // 10: reckon.v1.MoveRecovery
+	(*TrustLimits)(nil),         // 11: reckon.v1.TrustLimits
+	(*FloorPose)(nil),           // 12: reckon.v1.FloorPose
+	(*Covariance)(nil),          // 13: reckon.v1.Covariance
+	(*Landmark)(nil),            // 14: reckon.v1.Landmark
 }
 var file_reckon_v1_robot_proto_depIdxs = []int32{
-	3,  // 0: reckon.v1.Robot.config:type_name -> reckon.v1.RobotConfig
+	5,  // 0: reckon.v1.Robot.config:type_name -> reckon.v1.RobotConfig
 	0,  // 1: reckon.v1.Robot.state:type_name -> reckon.v1.RobotState
-	4,  // 2: reckon.v1.RobotConfig.wheels:type_name -> reckon.v1.EncoderWheel
-	1,  // 3: reckon.v1.RobotConfig.imu_mode:type_name -> reckon.v1.ImuMode
-	5,  // 4: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
-	6,  // 5: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
-	7,  // 6: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
-	8,  // 7: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
-	9,  // 8: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
-	10, // 9: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
-	10, // [10:10] is the sub-list for method output_type
-	10, // [10:10] is the sub-list for method input_type
-	10, // [10:10] is the sub-list for extension type_name
-	10, // [10:10] is the sub-list for extension extendee
-	0,  // [0:10] is the sub-list for field type_name
+	8,  // 2: reckon.v1.RobotConfig.wheels:type_name -> reckon.v1.EncoderWheel
+	3,  // 3: reckon.v1.RobotConfig.imu_mode:type_name -> reckon.v1.ImuMode
+	9,  // 4: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
+	10, // 5: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
+	11, // 6: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
+	12, // 7: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
+	13, // 8: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
+	14, // 9: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
+	6,  // 10: reckon.v1.RobotConfig.sensors:type_name -> reckon.v1.FixSensor
+	7,  // 11: reckon.v1.RobotConfig.calibration:type_name -> reckon.v1.OdometryCalibration
+	1,  // 12: reckon.v1.FixSensor.kind:type_name -> reckon.v1.FixKind
+	12, // 13: reckon.v1.FixSensor.mount:type_name -> reckon.v1.FloorPose
+	13, // 14: reckon.v1.FixSensor.covariance:type_name -> reckon.v1.Covariance
+	2,  // 15: reckon.v1.FixSensor.robust:type_name -> reckon.v1.RobustLoss
+	16, // [16:16] is the sub-list for method output_type
+	16, // [16:16] is the sub-list for method input_type
+	16, // [16:16] is the sub-list for extension type_name
+	16, // [16:16] is the sub-list for extension extendee
+	0,  // [0:16] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_robot_proto_init() }
@@ -1131,8 +1579,8 @@ func file_reckon_v1_robot_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_robot_proto_rawDesc), len(file_reckon_v1_robot_proto_rawDesc)),
-			NumEnums:      2,
-			NumMessages:   9,
+			NumEnums:      4,
+			NumMessages:   11,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

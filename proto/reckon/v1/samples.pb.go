@@ -82,68 +82,6 @@ func (InputKind) EnumDescriptor() ([]byte, []int) {
 	return file_reckon_v1_samples_proto_rawDescGZIP(), []int{0}
 }
 
-// FixKind names what a Fix measures, after the fields of its measurement
-// oneof.
-type FixKind int32
-
-const (
-	// Not set.
-	FixKind_FIX_KIND_UNSPECIFIED FixKind = 0
-	// A PoseFix.
-	FixKind_FIX_KIND_POSE FixKind = 1
-	// A PositionFix.
-	FixKind_FIX_KIND_POSITION FixKind = 2
-	// A HeadingFix.
-	FixKind_FIX_KIND_HEADING FixKind = 3
-	// A LandmarkFix.
-	FixKind_FIX_KIND_LANDMARK FixKind = 4
-)
-
-// Enum value maps for FixKind.
-var (
-	FixKind_name = map[int32]string{
-		0: "FIX_KIND_UNSPECIFIED",
-		1: "FIX_KIND_POSE",
-		2: "FIX_KIND_POSITION",
-		3: "FIX_KIND_HEADING",
-		4: "FIX_KIND_LANDMARK",
-	}
-	FixKind_value = map[string]int32{
-		"FIX_KIND_UNSPECIFIED": 0,
-		"FIX_KIND_POSE":        1,
-		"FIX_KIND_POSITION":    2,
-		"FIX_KIND_HEADING":     3,
-		"FIX_KIND_LANDMARK":    4,
-	}
-)
-
-func (x FixKind) Enum() *FixKind {
-	p := new(FixKind)
-	*p = x
-	return p
-}
-
-func (x FixKind) String() string {
-	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
-}
-
-func (FixKind) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_samples_proto_enumTypes[1].Descriptor()
-}
-
-func (FixKind) Type() protoreflect.EnumType {
-	return &file_reckon_v1_samples_proto_enumTypes[1]
-}
-
-func (x FixKind) Number() protoreflect.EnumNumber {
-	return protoreflect.EnumNumber(x)
-}
-
-// Deprecated: Use FixKind.Descriptor instead.
-func (FixKind) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_samples_proto_rawDescGZIP(), []int{1}
-}
-
 // OdometrySample is one reading of the encoder wheels (or a body step the
 // robot computed itself). Exactly one of travel, counts and step is set.
 type OdometrySample struct {
@@ -503,11 +441,14 @@ func (x *HeadingSample) GetVarianceRad2() float64 {
 // Fix is one absolute measurement, typically a camera seeing a marker.
 type Fix struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Capture time, nanoseconds on the robot's time base (not arrival time).
+	// The sensor's stamp, nanoseconds on the robot's time base (not arrival
+	// time): the capture time plus the sensor's configured latency_ns.
 	StampNs int64 `protobuf:"varint,1,opt,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
-	// Names the sensor for statistics.
+	// Names one of the robot's configured sensors (RobotConfig.sensors),
+	// whose kind the fix must have; a fix naming none is refused
+	// (VERDICT_INVALID, field sensor_id).
 	SensorId string `protobuf:"bytes,2,opt,name=sensor_id,json=sensorId,proto3" json:"sensor_id,omitempty"`
-	// The sensor's pose in the body frame.
+	// The sensor's pose in the body frame; unset takes the sensor's mount.
 	Mount *FloorPose `protobuf:"bytes,3,opt,name=mount,proto3" json:"mount,omitempty"`
 	// What was measured.
 	//
@@ -518,7 +459,9 @@ type Fix struct {
 	//	*Fix_Heading
 	//	*Fix_Landmark
 	Measurement isFix_Measurement `protobuf_oneof:"measurement"`
-	// The measurement covariance, checked symmetric and positive definite.
+	// The measurement covariance, checked symmetric and positive definite;
+	// unset takes the sensor's covariance (for a range-only or bearing-only
+	// landmark fix, the matching entry of its 2x2).
 	Covariance    *Covariance `protobuf:"bytes,8,opt,name=covariance,proto3" json:"covariance,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -1149,13 +1092,7 @@ const file_reckon_v1_samples_proto_rawDesc = "" +
 	"\x13INPUT_KIND_ODOMETRY\x10\x01\x12\x16\n" +
 	"\x12INPUT_KIND_HEADING\x10\x02\x12\x12\n" +
 	"\x0eINPUT_KIND_FIX\x10\x03\x12\x15\n" +
-	"\x11INPUT_KIND_RESEED\x10\x04*z\n" +
-	"\aFixKind\x12\x18\n" +
-	"\x14FIX_KIND_UNSPECIFIED\x10\x00\x12\x11\n" +
-	"\rFIX_KIND_POSE\x10\x01\x12\x15\n" +
-	"\x11FIX_KIND_POSITION\x10\x02\x12\x14\n" +
-	"\x10FIX_KIND_HEADING\x10\x03\x12\x15\n" +
-	"\x11FIX_KIND_LANDMARK\x10\x04B)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
+	"\x11INPUT_KIND_RESEED\x10\x04B)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_samples_proto_rawDescOnce sync.Once
@@ -1169,42 +1106,41 @@ func file_reckon_v1_samples_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_samples_proto_rawDescData
 }
 
-var file_reckon_v1_samples_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
+var file_reckon_v1_samples_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
 var file_reckon_v1_samples_proto_msgTypes = make([]protoimpl.MessageInfo, 12)
 var file_reckon_v1_samples_proto_goTypes = []any{
 	(InputKind)(0),         // 0: reckon.v1.InputKind
-	(FixKind)(0),           // 1: reckon.v1.FixKind
-	(*OdometrySample)(nil), // 2: reckon.v1.OdometrySample
-	(*WheelTravel)(nil),    // 3: reckon.v1.WheelTravel
-	(*WheelCounts)(nil),    // 4: reckon.v1.WheelCounts
-	(*BodyStep)(nil),       // 5: reckon.v1.BodyStep
-	(*HeadingSample)(nil),  // 6: reckon.v1.HeadingSample
-	(*Fix)(nil),            // 7: reckon.v1.Fix
-	(*PoseFix)(nil),        // 8: reckon.v1.PoseFix
-	(*PositionFix)(nil),    // 9: reckon.v1.PositionFix
-	(*HeadingFix)(nil),     // 10: reckon.v1.HeadingFix
-	(*LandmarkFix)(nil),    // 11: reckon.v1.LandmarkFix
-	(*Sample)(nil),         // 12: reckon.v1.Sample
-	(*Reseed)(nil),         // 13: reckon.v1.Reseed
-	(*FloorPose)(nil),      // 14: reckon.v1.FloorPose
-	(*Covariance)(nil),     // 15: reckon.v1.Covariance
+	(*OdometrySample)(nil), // 1: reckon.v1.OdometrySample
+	(*WheelTravel)(nil),    // 2: reckon.v1.WheelTravel
+	(*WheelCounts)(nil),    // 3: reckon.v1.WheelCounts
+	(*BodyStep)(nil),       // 4: reckon.v1.BodyStep
+	(*HeadingSample)(nil),  // 5: reckon.v1.HeadingSample
+	(*Fix)(nil),            // 6: reckon.v1.Fix
+	(*PoseFix)(nil),        // 7: reckon.v1.PoseFix
+	(*PositionFix)(nil),    // 8: reckon.v1.PositionFix
+	(*HeadingFix)(nil),     // 9: reckon.v1.HeadingFix
+	(*LandmarkFix)(nil),    // 10: reckon.v1.LandmarkFix
+	(*Sample)(nil),         // 11: reckon.v1.Sample
+	(*Reseed)(nil),         // 12: reckon.v1.Reseed
+	(*FloorPose)(nil),      // 13: reckon.v1.FloorPose
+	(*Covariance)(nil),     // 14: reckon.v1.Covariance
 }
 var file_reckon_v1_samples_proto_depIdxs = []int32{
-	3,  // 0: reckon.v1.OdometrySample.travel:type_name -> reckon.v1.WheelTravel
-	4,  // 1: reckon.v1.OdometrySample.counts:type_name -> reckon.v1.WheelCounts
-	5,  // 2: reckon.v1.OdometrySample.step:type_name -> reckon.v1.BodyStep
-	14, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
-	8,  // 4: reckon.v1.Fix.pose:type_name -> reckon.v1.PoseFix
-	9,  // 5: reckon.v1.Fix.position:type_name -> reckon.v1.PositionFix
-	10, // 6: reckon.v1.Fix.heading:type_name -> reckon.v1.HeadingFix
-	11, // 7: reckon.v1.Fix.landmark:type_name -> reckon.v1.LandmarkFix
-	15, // 8: reckon.v1.Fix.covariance:type_name -> reckon.v1.Covariance
-	2,  // 9: reckon.v1.Sample.odometry:type_name -> reckon.v1.OdometrySample
-	6,  // 10: reckon.v1.Sample.heading:type_name -> reckon.v1.HeadingSample
-	7,  // 11: reckon.v1.Sample.fix:type_name -> reckon.v1.Fix
-	13, // 12: reckon.v1.Sample.reseed:type_name -> reckon.v1.Reseed
-	14, // 13: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
-	15, // 14: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
+	2,  // 0: reckon.v1.OdometrySample.travel:type_name -> reckon.v1.WheelTravel
+	3,  // 1: reckon.v1.OdometrySample.counts:type_name -> reckon.v1.WheelCounts
+	4,  // 2: reckon.v1.OdometrySample.step:type_name -> reckon.v1.BodyStep
+	13, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
+	7,  // 4: reckon.v1.Fix.pose:type_name -> reckon.v1.PoseFix
+	8,  // 5: reckon.v1.Fix.position:type_name -> reckon.v1.PositionFix
+	9,  // 6: reckon.v1.Fix.heading:type_name -> reckon.v1.HeadingFix
+	10, // 7: reckon.v1.Fix.landmark:type_name -> reckon.v1.LandmarkFix
+	14, // 8: reckon.v1.Fix.covariance:type_name -> reckon.v1.Covariance
+	1,  // 9: reckon.v1.Sample.odometry:type_name -> reckon.v1.OdometrySample
+	5,  // 10: reckon.v1.Sample.heading:type_name -> reckon.v1.HeadingSample
+	6,  // 11: reckon.v1.Sample.fix:type_name -> reckon.v1.Fix
+	12, // 12: reckon.v1.Sample.reseed:type_name -> reckon.v1.Reseed
+	13, // 13: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
+	14, // 14: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
 	15, // [15:15] is the sub-list for method output_type
 	15, // [15:15] is the sub-list for method input_type
 	15, // [15:15] is the sub-list for extension type_name
@@ -1241,7 +1177,7 @@ func file_reckon_v1_samples_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_samples_proto_rawDesc), len(file_reckon_v1_samples_proto_rawDesc)),
-			NumEnums:      2,
+			NumEnums:      1,
 			NumMessages:   12,
 			NumExtensions: 0,
 			NumServices:   0,

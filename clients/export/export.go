@@ -26,6 +26,7 @@
 package export
 
 import (
+	"context"
 	"errors"
 	"fmt"
 	"os"
@@ -55,8 +56,9 @@ var ErrNoRuns = errors.New("no journal to export")
 
 // Export replays the journals in dir and writes the four tables into out,
 // which it creates if needed; it returns the rows of runs.parquet. A
-// journal that cannot be read stops the export and the files are removed.
-func Export(dir, out string, opt Options) ([]RunRow, error) {
+// journal that cannot be read, or ctx ending, stops the export and the
+// files are removed.
+func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error) {
 	runs, err := Runs(dir, opt.Deleted)
 	if err != nil {
 		return nil, err
@@ -78,7 +80,7 @@ func Export(dir, out string, opt Options) ([]RunRow, error) {
 	}
 	var rows []RunRow
 	for _, r := range runs {
-		row, err := exportRun(t, dir, r)
+		row, err := exportRun(ctx, t, dir, r)
 		if err == nil {
 			err = t.runs.add(row)
 		}
@@ -116,8 +118,8 @@ func pick(runs []Run, robots []string) ([]Run, error) {
 }
 
 // exportRun replays one journal into the tables and returns its runs row.
-func exportRun(t *tables, dir string, r Run) (RunRow, error) {
-	x := &runExport{t: t, row: RunRow{Robot: r.Robot, Run: r.ID, Deleted: r.ID != liveRun}}
+func exportRun(ctx context.Context, t *tables, dir string, r Run) (RunRow, error) {
+	x := &runExport{ctx: ctx, t: t, row: RunRow{Robot: r.Robot, Run: r.ID, Deleted: r.ID != liveRun}}
 	if r.DeleteTimeUnixNs != 0 {
 		x.row.DeleteTimeUnixNs = &r.DeleteTimeUnixNs
 	}

@@ -1,6 +1,7 @@
 package export
 
 import (
+	"context"
 	"errors"
 	"fmt"
 	"path/filepath"
@@ -176,7 +177,7 @@ func TestRoundTripEqualsTheJournal(t *testing.T) {
 	dir := fleet(t)
 	out := t.TempDir()
 	// Small row groups, so that the files have several.
-	rows, err := Export(dir, out, Options{Deleted: true, RowGroupRows: 2000})
+	rows, err := Export(context.Background(), dir, out, Options{Deleted: true, RowGroupRows: 2000})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -255,7 +256,7 @@ func TestExportPicksRobotsAndRuns(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			out := t.TempDir()
-			rows, err := Export(dir, out, tc.opt)
+			rows, err := Export(context.Background(), dir, out, tc.opt)
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -270,7 +271,7 @@ func TestExportPicksRobotsAndRuns(t *testing.T) {
 			}
 		})
 	}
-	if _, err := Export(dir, t.TempDir(), Options{Robots: []string{"cart-9"}}); !errors.Is(err, ErrNoRuns) {
+	if _, err := Export(context.Background(), dir, t.TempDir(), Options{Robots: []string{"cart-9"}}); !errors.Is(err, ErrNoRuns) {
 		t.Errorf("export of a robot without a journal: %v, want ErrNoRuns", err)
 	}
 }

@@ -1,6 +1,7 @@
 package export
 
 import (
+	"context"
 	"fmt"
 	"sort"
 
@@ -20,6 +21,7 @@ var (
 
 // runExport turns one replayed journal into rows.
 type runExport struct {
+	ctx context.Context
 	t   *tables
 	row RunRow
 	cfg fusion.Config
@@ -37,6 +39,9 @@ type runExport struct {
 
 // input makes the rows of one replayed input.
 func (x *runExport) input(rp *journal.Replayed) error {
+	if err := x.ctx.Err(); err != nil {
+		return err
+	}
 	resp := rp.Response
 	row := InputRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: int64(rp.Input.GetSequence()),
 		ClientSequence: int64(resp.GetClientSequence()), ArrivalUnixNs: rp.Input.GetArrivalUnixNs(),

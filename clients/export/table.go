@@ -6,7 +6,7 @@ import (
 	"path/filepath"
 
 	"github.com/parquet-go/parquet-go"
-	"github.com/parquet-go/parquet-go/compress/zstd"
+	"github.com/parquet-go/parquet-go/compress/snappy"
 )
 
 // batchRows is how many rows a table hands the Parquet writer at once.
@@ -30,7 +30,7 @@ func newTable[T any](path string, group int) (*table[T], error) {
 	if err != nil {
 		return nil, err
 	}
-	w := parquet.NewGenericWriter[T](f, parquet.Compression(&zstd.Codec{Level: zstd.SpeedFastest}),
+	w := parquet.NewGenericWriter[T](f, parquet.Compression(&snappy.Codec{}),
 		parquet.CreatedBy("reckon export", "", ""))
 	return &table[T]{path: path, f: f, w: w, batch: make([]T, 0, batchRows), group: group}, nil
 }

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"os"
 	"path/filepath"
 	"reflect"
 	"strings"
@@ -11,6 +12,7 @@ import (
 
 	"github.com/parquet-go/parquet-go"
 
+	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
 	"reckon.example/server/journal"
@@ -273,5 +275,39 @@ func TestExportPicksRobotsAndRuns(t *testing.T) {
 	}
 	if _, err := Export(context.Background(), dir, t.TempDir(), Options{Robots: []string{"cart-9"}}); !errors.Is(err, ErrNoRuns) {
 		t.Errorf("export of a robot without a journal: %v, want ErrNoRuns", err)
+	}
+}
+
+// TestExportOfATornJournal: a journal whose tail a crash cut short is
+// exported up to its last complete input, and its run says torn.
+func TestExportOfATornJournal(t *testing.T) {
+	dir := t.TempDir()
+	if err := writeJournal(t, dir, "cart-1", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 9, DurationS: 5}, lagOdometry{}).Close(); err != nil {
+		t.Fatal(err)
+	}
+	segs, err := journal.Segments(dir, "cart-1")
+	if err != nil || len(segs) == 0 {
+		t.Fatalf("segments %v: %v", segs, err)
+	}
+	last := segs[len(segs)-1]
+	st, err := os.Stat(last)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Truncate(last, st.Size()-7); err != nil {
+		t.Fatal(err)
+	}
+	scan, err := journal.Read(dir, "cart-1", journal.Visitor{ReadOnly: true})
+	if err != nil || scan.Torn == nil {
+		t.Fatalf("scan of the cut journal: torn %v, %v", scan.Torn, err)
+	}
+	out := t.TempDir()
+	rows, err := Export(context.Background(), dir, out, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	inputs := readTable[InputRow](t, out, InputsFile)
+	if len(rows) != 1 || !rows[0].Torn || rows[0].Inputs != int64(scan.Pairs) || len(inputs) != scan.Pairs || scan.Pairs == 0 {
+		t.Errorf("runs %+v, %d input rows; want torn with the scan's %d inputs", rows, len(inputs), scan.Pairs)
 	}
 }

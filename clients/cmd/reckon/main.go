@@ -18,6 +18,7 @@
 //	reckon replay   run a journal, or a configuration and samples, through the estimator offline
 //	reckon review   smoothed track, summary, HTML report with figures and CSV exports of a run
 //	reckon compare  the same run under two configurations, side by side
+//	reckon export   journals as Parquet tables (runs, inputs, poses, events)
 //	reckon version  the module version and source revision of this binary
 //
 // Run "reckon help" for the commands and "reckon <command> -h" for flags;
@@ -89,6 +90,7 @@ func commands() []command {
 		{"replay", "run a journal, or a robot configuration and a JSON Lines file, through the estimator offline and write the track and every verdict", outErr(runReplay)},
 		{"review", "replay a recorded run with the smoother: a text summary, an HTML report with figures, and CSV exports of the filtered and smoothed tracks", outErr(runReview)},
 		{"compare", "review a run under two configurations side by side", outErr(runCompare)},
+		{"export", "write journals, of one or many robots and runs, as Parquet tables (runs, inputs, poses, events) for data engines", outErr(runExport)},
 		{"version", "\nprint the module version and source revision of this binary", outErr(runVersion)},
 		{"help", "print this text", nil},
 	}

@@ -1,0 +1,61 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"path/filepath"
+
+	"reckon.example/clients/export"
+)
+
+func runExport(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("export", "-journal DIR [-robot NAME ...] -out DIR [flags]", `
+Replays the journals in a directory and writes them as Apache Parquet
+tables for data engines: runs.parquet (one row per journal), inputs.parquet
+(every input with its verdict, a held fix's final verdict, NIS, reason and
+status code), poses.parquet (the fused pose with its covariance and trust
+after every input) and events.parquet. A robot's journal is run "live";
+the journals set aside when it was deleted are runs "deleted-{unix ns}".
+Column names carry their units (stamp_ns, x_m, cov_xx_m2).`)
+	dir := fs.String("journal", "", "journal directory (reckond -journal)")
+	var robots []string
+	fs.Func("robot", "robot id or name to export; repeat for several (default all)", func(s string) error {
+		_, id, err := robotName(s)
+		if err == nil {
+			robots = append(robots, id)
+		}
+		return err
+	})
+	out := fs.String("out", "", "directory for the four .parquet files (created if needed)")
+	deleted := fs.Bool("deleted", true, "also export the journals of deleted robots")
+	rowGroup := fs.Int("row-group", 1<<16, "rows per Parquet row group")
+	if err := parseNone(fs, args, stdout, stderr); err != nil {
+		return err
+	}
+	if *dir == "" || *out == "" {
+		return usagef(fs, "needs -journal and -out")
+	}
+	if *rowGroup <= 0 {
+		return usagef(fs, "-row-group must be positive, got %d", *rowGroup)
+	}
+	runs, err := export.Export(ctx, *dir, *out, export.Options{Robots: robots, Deleted: *deleted, RowGroupRows: *rowGroup})
+	if errors.Is(err, export.ErrNoRuns) {
+		return fmt.Errorf("%s: %w", *dir, err)
+	}
+	if err != nil {
+		return err
+	}
+	var inputs, events int64
+	for _, r := range runs {
+		inputs += r.Inputs
+		events += r.Events
+		if r.Torn || r.Gap != "" || r.Damaged > 0 || r.Differs > 0 {
+			fmt.Fprintf(stderr, "note: %s run %s: torn %v, damaged ranges %d, gap %q, verdicts differing from the recording %d\n",
+				r.Robot, r.Run, r.Torn, r.Damaged, r.Gap, r.Differs)
+		}
+	}
+	fmt.Fprintf(stderr, "exported %d runs, %d inputs, %d events to %s\n", len(runs), inputs, events, filepath.Join(*out, "*.parquet"))
+	return nil
+}

@@ -1,0 +1,182 @@
+// Package export writes robots' journals as Apache Parquet tables, so that
+// questions across robots and runs ("which runs lost trust for more than
+// two seconds", "which sensor's fixes are gated most") go to the data
+// engines a team already has (DuckDB, Spark, ...): one service per robot
+// stays the design (DEVELOPERS.md, "Design: Layers").
+//
+// # Overview
+//
+// Export replays each journal (journal.Replay, read only) and writes four
+// files: runs.parquet (one row per journal: robot, run, times, counts, the
+// configuration), inputs.parquet (one row per input with its verdict, the
+// final verdict of a held fix, NIS, reason and status code),
+// poses.parquet (the fused pose with its covariance and trust after every
+// input) and events.parquet. The row types RunRow, InputRow, PoseRow and
+// EventRow are the schemas; their column names carry the units. A robot's
+// journal is one run ("live"); the journals set aside when a robot was
+// deleted are further runs ("deleted-{unix ns}").
+//
+// # Invariants
+//
+// Memory is bounded by one row group per table plus the fixes still held
+// (at most the robot's max_held, and the inputs after the oldest of them),
+// whatever the length of the journals: rows are streamed. inputs and poses
+// have one row per journaled input, in sequence order within a run; the
+// rows of a run in events are in the order the inputs caused them.
+package export
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"os"
+	"path/filepath"
+
+	"google.golang.org/protobuf/encoding/protojson"
+
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/journal"
+)
+
+// Options say what Export exports. The zero value exports every robot's
+// live journal only.
+type Options struct {
+	// Robots are the robot ids to export (empty: all).
+	Robots []string
+	// Deleted also exports the journals set aside when robots were deleted.
+	Deleted bool
+	// RowGroupRows is the number of rows per Parquet row group (0: 65536).
+	RowGroupRows int
+}
+
+// ErrNoRuns is returned when the directory holds no journal of the robots
+// asked for.
+var ErrNoRuns = errors.New("no journal to export")
+
+// Export replays the journals in dir and writes the four tables into out,
+// which it creates if needed; it returns the rows of runs.parquet. A
+// journal that cannot be read, or ctx ending, stops the export and the
+// files are removed.
+func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error) {
+	runs, err := Runs(dir, opt.Deleted)
+	if err != nil {
+		return nil, err
+	}
+	runs, err = pick(runs, opt.Robots)
+	if err != nil {
+		return nil, err
+	}
+	if err := os.MkdirAll(out, 0o755); err != nil {
+		return nil, err
+	}
+	group := opt.RowGroupRows
+	if group <= 0 {
+		group = 1 << 16
+	}
+	t, err := openTables(out, group)
+	if err != nil {
+		return nil, err
+	}
+	var rows []RunRow
+	for _, r := range runs {
+		row, err := exportRun(ctx, t, dir, r)
+		if err == nil {
+			err = t.runs.add(row)
+		}
+		if err != nil {
+			t.abandon()
+			return nil, fmt.Errorf("%s, run %s: %w", r.Robot, r.ID, err)
+		}
+		rows = append(rows, row)
+	}
+	return rows, t.close()
+}
+
+// pick keeps the runs of the robots asked for; a robot without a journal is
+// an error.
+func pick(runs []Run, robots []string) ([]Run, error) {
+	if len(robots) == 0 {
+		if len(runs) == 0 {
+			return nil, ErrNoRuns
+		}
+		return runs, nil
+	}
+	var out []Run
+	for _, id := range robots {
+		n := len(out)
+		for _, r := range runs {
+			if r.Robot == id {
+				out = append(out, r)
+			}
+		}
+		if len(out) == n {
+			return nil, fmt.Errorf("%w for robot %q", ErrNoRuns, id)
+		}
+	}
+	return out, nil
+}
+
+// exportRun replays one journal into the tables and returns its runs row.
+func exportRun(ctx context.Context, t *tables, dir string, r Run) (RunRow, error) {
+	x := &runExport{ctx: ctx, t: t, row: RunRow{Robot: r.Robot, Run: r.ID, Deleted: r.ID != liveRun}}
+	if r.DeleteTimeUnixNs != 0 {
+		x.row.DeleteTimeUnixNs = &r.DeleteTimeUnixNs
+	}
+	var gap error
+	_, scan, err := journal.Replay(filepath.Clean(dir), r.Robot, journal.ReplayOptions{ReadOnly: true, FS: r.fs(),
+		Opened: func(fr *fusion.Robot) error { x.cfg = fr.Config(); return nil },
+		Input:  x.input,
+		Gap: func(err error) error {
+			if gap == nil {
+				gap = err
+			}
+			return nil
+		}})
+	if err != nil && !errors.Is(err, journal.ErrGap) {
+		return RunRow{}, err
+	}
+	if err := x.flushInputs(true); err != nil {
+		return RunRow{}, err
+	}
+	if gap != nil {
+		x.row.Gap = gap.Error()
+	}
+	x.row.Torn = scan.Torn != nil
+	x.row.Damaged = int32(len(scan.Damage))
+	if err := x.configure(scan.Opening, x.cfg); err != nil {
+		return RunRow{}, err
+	}
+	return x.row, nil
+}
+
+// configure fills the runs row's configuration summary from the opening
+// record and the robot's configuration with its defaults filled in.
+func (x *runExport) configure(op *pb.JournalOpening, cfg fusion.Config) error {
+	js, err := protojson.MarshalOptions{UseProtoNames: true}.Marshal(op.GetConfig())
+	if err != nil {
+		return err
+	}
+	x.row.CreateTimeUnixNs = op.GetCreateTimeUnixNs()
+	for _, l := range fusion.IMUModeLabels() {
+		if l.Value == cfg.IMU {
+			x.row.IMUMode = l.Name
+		}
+	}
+	x.row.Wheels, x.row.Landmarks = int32(len(cfg.Wheels)), int32(len(cfg.Landmarks))
+	x.row.GateProbability, x.row.WindowNs = cfg.GateProbability, cfg.WindowNs
+	x.row.MaxPosition95M, x.row.MaxHeadingStdRad = cfg.Trust.MaxPosition95M, cfg.Trust.MaxHeadingStdRad
+	x.row.ConfigJSON = string(js)
+	return nil
+}
+
+// labelOf returns the label of the row of table with wire number n, or ""
+// (an unset enum).
+func labelOf[T comparable](table []fusion.Label[T], n int32) string {
+	for _, l := range table {
+		if l.Proto == n {
+			return l.Name
+		}
+	}
+	return ""
+}

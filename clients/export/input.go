@@ -1,0 +1,206 @@
+package export
+
+import (
+	"context"
+	"fmt"
+	"sort"
+
+	"google.golang.org/protobuf/proto"
+
+	"reckon.example/fusion"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
+)
+
+// The label tables the rows use.
+var (
+	inputKinds = fusion.InputKindLabels()
+	fixKinds   = fusion.FixKindLabels()
+)
+
+// runExport turns one replayed journal into rows.
+type runExport struct {
+	ctx context.Context
+	t   *tables
+	row RunRow
+	cfg fusion.Config
+	// pending are the input rows from the oldest fix still held on:
+	// written once its final verdict is known, in order. open[i] says
+	// pending[i] is still held; held counts them.
+	pending []InputRow
+	open    []bool
+	held    int
+	// The previous pose's stamp and trust, for RunRow.DistrustedNs.
+	posed         bool
+	prevStampNs   int64
+	prevDistrusts bool
+}
+
+// input makes the rows of one replayed input.
+func (x *runExport) input(rp *journal.Replayed) error {
+	if err := x.ctx.Err(); err != nil {
+		return err
+	}
+	resp := rp.Response
+	row := InputRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: int64(rp.Input.GetSequence()),
+		ClientSequence: int64(resp.GetClientSequence()), ArrivalUnixNs: rp.Input.GetArrivalUnixNs(),
+		Verdict: convert.VerdictName(resp.GetVerdict()), NISDimension: resp.GetNisDimension(),
+		Reason: resp.GetReason(), StatusCode: resp.GetStatusCode(), Events: int32(len(resp.GetEvents())),
+		RecordedVerdict: convert.VerdictName(rp.Recorded.GetResponse().GetVerdict())}
+	x.describe(&row, rp.Input.GetSample())
+	row.FinalVerdict = row.Verdict
+	if resp.GetNisDimension() > 0 {
+		nis, final := resp.GetNis(), resp.GetNis()
+		row.NIS, row.FinalNIS = &nis, &final
+	}
+	if !proto.Equal(resp, rp.Recorded.GetResponse()) {
+		x.row.Differs++
+	}
+	for _, res := range resp.GetResolved() {
+		if err := x.resolve(res); err != nil {
+			return err
+		}
+	}
+	x.pending = append(x.pending, row)
+	x.open = append(x.open, resp.GetVerdict() == pb.Verdict_VERDICT_HELD)
+	if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+		x.held++
+	}
+	if err := x.flushInputs(false); err != nil {
+		return err
+	}
+	for _, e := range resp.GetEvents() {
+		x.row.Events++
+		if err := x.t.events.add(EventRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: row.Sequence,
+			Kind: convert.EventName(e.GetKind()), StampNs: e.GetStampNs(), SensorID: e.GetSensorId(),
+			Value: e.GetValue(), Detail: e.GetDetail()}); err != nil {
+			return err
+		}
+	}
+	return x.pose(row.Sequence, rp.Robot.Pose())
+}
+
+// describe fills the row's kind, stamp and sensor from the sample, and
+// counts it.
+func (x *runExport) describe(row *InputRow, s *pb.Sample) {
+	var kind pb.InputKind
+	switch v := s.GetSample().(type) {
+	case *pb.Sample_Odometry:
+		kind, row.StampNs = pb.InputKind_INPUT_KIND_ODOMETRY, v.Odometry.GetStampNs()
+		x.row.Odometry++
+	case *pb.Sample_Heading:
+		kind, row.StampNs = pb.InputKind_INPUT_KIND_HEADING, v.Heading.GetStampNs()
+		x.row.Headings++
+	case *pb.Sample_Fix:
+		kind, row.StampNs, row.SensorID = pb.InputKind_INPUT_KIND_FIX, v.Fix.GetStampNs(), v.Fix.GetSensorId()
+		row.FixKind = fixKind(v.Fix)
+		x.row.Fixes++
+	case *pb.Sample_Reseed:
+		kind, row.StampNs = pb.InputKind_INPUT_KIND_RESEED, v.Reseed.GetStampNs()
+		x.row.Reseeds++
+	}
+	row.Kind = labelOf(inputKinds, int32(kind))
+	if x.row.Inputs == 0 || row.StampNs < x.row.FirstStampNs {
+		x.row.FirstStampNs = row.StampNs
+	}
+	if x.row.Inputs == 0 || row.StampNs > x.row.LastStampNs {
+		x.row.LastStampNs = row.StampNs
+	}
+	x.row.Inputs++
+}
+
+// fixKind returns the label of a fix's measurement kind.
+func fixKind(f *pb.Fix) string {
+	var k pb.FixKind
+	switch f.GetMeasurement().(type) {
+	case *pb.Fix_Pose:
+		k = pb.FixKind_FIX_KIND_POSE
+	case *pb.Fix_Position:
+		k = pb.FixKind_FIX_KIND_POSITION
+	case *pb.Fix_Heading:
+		k = pb.FixKind_FIX_KIND_HEADING
+	case *pb.Fix_Landmark:
+		k = pb.FixKind_FIX_KIND_LANDMARK
+	}
+	return labelOf(fixKinds, int32(k))
+}
+
+// resolve gives a held input its final verdict.
+func (x *runExport) resolve(res *pb.Resolution) error {
+	seq := int64(res.GetSequence())
+	i := sort.Search(len(x.pending), func(i int) bool { return x.pending[i].Sequence >= seq })
+	if i == len(x.pending) || x.pending[i].Sequence != seq || !x.open[i] {
+		return fmt.Errorf("input %d is resolved but was not held", seq)
+	}
+	row := &x.pending[i]
+	row.FinalVerdict, row.Reason, row.FinalNIS = convert.VerdictName(res.GetVerdict()), res.GetReason(), nil
+	if v := res.GetVerdict(); v == pb.Verdict_VERDICT_APPLIED || v == pb.Verdict_VERDICT_GATED {
+		nis := res.GetNis()
+		row.FinalNIS = &nis
+	}
+	x.open[i] = false
+	x.held--
+	return nil
+}
+
+// flushInputs writes the pending rows up to the first still held, or all
+// of them.
+func (x *runExport) flushInputs(all bool) error {
+	n := len(x.pending)
+	if !all && x.held > 0 {
+		n = 0
+		for n < len(x.pending) && !x.open[n] {
+			n++
+		}
+	}
+	for i := range n {
+		x.count(x.pending[i].FinalVerdict)
+		if err := x.t.inputs.add(x.pending[i]); err != nil {
+			return err
+		}
+	}
+	m := copy(x.pending, x.pending[n:])
+	copy(x.open, x.open[n:])
+	clear(x.pending[m:])
+	x.pending, x.open = x.pending[:m], x.open[:m]
+	if all {
+		x.held = 0
+	}
+	return nil
+}
+
+// count counts an input by its final verdict.
+func (x *runExport) count(verdict string) {
+	switch verdict {
+	case "applied":
+		x.row.Applied++
+	case "held":
+		x.row.Held++
+	case "gated":
+		x.row.Gated++
+	case "too_old":
+		x.row.TooOld++
+	case "invalid":
+		x.row.Invalid++
+	}
+}
+
+// pose writes the pose after an input and accumulates the distrusted time.
+func (x *runExport) pose(seq int64, p fusion.FusedPose) error {
+	if x.posed && x.prevDistrusts && p.StampNs > x.prevStampNs {
+		x.row.DistrustedNs += p.StampNs - x.prevStampNs
+	}
+	x.posed, x.prevStampNs, x.prevDistrusts = true, p.StampNs, !p.Trusted()
+	row := PoseRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: seq, StampNs: p.StampNs,
+		XM: p.Pose.X, YM: p.Pose.Y, HeadingRad: p.Pose.Heading,
+		CovXXM2: p.Cov[0], CovXYM2: p.Cov[1], CovXHMRad: p.Cov[2], CovYYM2: p.Cov[4], CovYHMRad: p.Cov[5], CovHHRad2: p.Cov[8],
+		Position95M: p.Position95M, HeadingStdRad: p.HeadingStdRad,
+		ForwardMPerS: p.Velocity.ForwardMPerS, LeftMPerS: p.Velocity.LeftMPerS, TurnRadPerS: p.Velocity.TurnRadPerS,
+		IMUOffsetRad: p.IMUOffsetRad, IMUOffsetVarRad2: p.IMUOffsetVarRad2, IMUOffsetReady: p.IMUOffsetReady,
+		Trusted: p.Trusted()}
+	for _, d := range convert.DistrustToProto(p.Distrust) {
+		row.Distrust = append(row.Distrust, convert.DistrustName(d))
+	}
+	return x.t.poses.add(row)
+}

@@ -490,11 +490,20 @@ func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender) error 
 	}
 }
 
-// refuse makes out the refusal of a sample, whatever it held before.
+// refuse makes out the refusal of a sample, whatever it held before. A
+// refusal at the service's edge is REFUSAL_NOT_JOURNALED when it is
+// UNAVAILABLE (not applied: resend), REFUSAL_LIMIT for a limit, and none
+// for a robot that is unknown or quarantined (its status code says it).
 func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason string) {
 	out.wire = nil
 	out.IngestResponse.Reset()
 	out.ClientSequence, out.Verdict, out.Reason, out.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, reason, int32(code)
+	switch code {
+	case codes.Unavailable:
+		out.Refusal = pb.Refusal_REFUSAL_NOT_JOURNALED
+	case codes.ResourceExhausted, codes.InvalidArgument:
+		out.Refusal = pb.Refusal_REFUSAL_LIMIT
+	}
 }
 
 // ingest applies one sample (ReseedRobot and tests).

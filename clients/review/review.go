@@ -451,7 +451,7 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 			a.fixAt[resp.GetSequence()] = len(a.run.Fixes) - 1
 		} else {
-			a.fixVerdict(&a.run.Fixes[len(a.run.Fixes)-1], resp.GetVerdict(), resp.GetNis(), resp.GetReason())
+			a.fixVerdict(&a.run.Fixes[len(a.run.Fixes)-1], resp.GetVerdict(), resp.GetNis(), resp.GetRefusal())
 		}
 	}
 	if h := s.GetHeading(); h != nil && resp.GetVerdict() == pb.Verdict_VERDICT_APPLIED && resp.GetNis() > 0 {
@@ -461,7 +461,7 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 		if i, ok := a.fixAt[r.GetSequence()]; ok {
 			delete(a.fixAt, r.GetSequence())
 			a.run.Fixes[i].Verdict = r.GetVerdict()
-			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetReason())
+			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal())
 		}
 	}
 	for _, e := range resp.GetEvents() {
@@ -484,18 +484,14 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	}
 }
 
-func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, reason string) {
+func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusal pb.Refusal) {
 	sum := &a.run.Summary
 	sum.Fixes[convert.VerdictName(v)]++
-	if reason != "" {
-		r := reason
-		if i := strings.Index(r, ": "); i > 0 && (v == pb.Verdict_VERDICT_INVALID || v == pb.Verdict_VERDICT_TOO_OLD) {
-			r = r[:i]
-		}
-		sum.Reasons[r]++
-	}
-	if v == pb.Verdict_VERDICT_GATED {
-		sum.Reasons["gated by NIS"]++
+	switch {
+	case refusal != pb.Refusal_REFUSAL_UNSPECIFIED:
+		sum.Reasons[convert.RefusalName(refusal)]++
+	case v == pb.Verdict_VERDICT_GATED:
+		sum.Reasons["gated"]++
 	}
 	if (v == pb.Verdict_VERDICT_APPLIED || v == pb.Verdict_VERDICT_GATED) && nis > 0 {
 		a.run.NIS[fp.SensorID] = append(a.run.NIS[fp.SensorID], NISPoint{fp.StampNs, nis, fp.Dim})

@@ -39,6 +39,7 @@ func TestLabelTablesMatchProto(t *testing.T) {
 		pb.ConsistencyVerdict(0).Descriptor().FullName(): rows(fusion.ConsistencyVerdictLabels()),
 		pb.ImuMode(0).Descriptor().FullName():            rows(fusion.IMUModeLabels()),
 		pb.RobotState(0).Descriptor().FullName():         rows(RobotStateLabels()),
+		pb.Refusal(0).Descriptor().FullName():            rows(RefusalLabels()),
 		pb.RobustLoss(0).Descriptor().FullName():         rows(fusion.RobustLossLabels()),
 	}
 	seen := map[protoreflect.FullName]bool{}

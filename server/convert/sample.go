@@ -198,7 +198,31 @@ var (
 	imuModeLabels     = fusion.IMUModeLabels()
 	fixKindLabels     = fusion.FixKindLabels()
 	robustLabels      = fusion.RobustLossLabels()
+	refusalLabels     = fusion.RefusalLabels()
+	allRefusalLabels  = RefusalLabels()
 )
+
+func refusalToProto(err error) pb.Refusal {
+	return pb.Refusal(fusion.ProtoOf(refusalLabels, fusion.RefusalOf(err)))
+}
+
+// serviceRefusals are the refusals only the service gives, beyond the
+// robot's (fusion.RefusalLabels); their Go values are past the robot's.
+var serviceRefusals = []fusion.Label[fusion.Refusal]{
+	{Value: fusion.Refusal(254), Name: "not_journaled", Proto: int32(pb.Refusal_REFUSAL_NOT_JOURNALED)},
+	{Value: fusion.Refusal(255), Name: "limit", Proto: int32(pb.Refusal_REFUSAL_LIMIT)},
+}
+
+// RefusalLabels returns the label table of every wire refusal: the robot's
+// and the service's.
+func RefusalLabels() []fusion.Label[fusion.Refusal] {
+	return append(fusion.RefusalLabels(), serviceRefusals...)
+}
+
+// RefusalName returns a wire refusal's label ("unknown_sensor").
+func RefusalName(r pb.Refusal) string {
+	return labelName(allRefusalLabels, int32(r), "refusal")
+}
 
 func verdictToProto(v fusion.Verdict) pb.Verdict {
 	return pb.Verdict(fusion.ProtoOf(verdictLabels, v))
@@ -221,9 +245,11 @@ func ResultToProto(res fusion.Result, clientSeq uint64) *pb.IngestResponse {
 // resultInto fills out, which must be empty, with a robot's result.
 func resultInto(out *pb.IngestResponse, res fusion.Result, clientSeq uint64) {
 	out.ClientSequence, out.Sequence, out.Verdict, out.Reason = clientSeq, res.Seq, verdictToProto(res.Verdict), reason(res.Err)
+	out.Refusal, out.Field = refusalToProto(res.Err), fusion.FieldOf(res.Err)
 	out.Nis, out.NisDimension, out.Events = res.NIS, int32(res.Dim), EventsToProto(res.Events)
 	for _, r := range res.Resolved {
-		out.Resolved = append(out.Resolved, &pb.Resolution{Sequence: r.Seq, Verdict: verdictToProto(r.Verdict), Nis: r.NIS, Reason: reason(r.Err)})
+		out.Resolved = append(out.Resolved, &pb.Resolution{Sequence: r.Seq, Verdict: verdictToProto(r.Verdict), Nis: r.NIS, Reason: reason(r.Err),
+			Refusal: refusalToProto(r.Err)})
 	}
 }
 
@@ -338,7 +364,11 @@ func TakeInto(resp *pb.IngestResponse, r *fusion.Robot, s *pb.Sample, clientSeq 
 			return true
 		}
 		err = sampleErr(in.field, res.Err)
+		resp.Refusal = refusalToProto(res.Err)
+	} else {
+		resp.Refusal = pb.Refusal_REFUSAL_MALFORMED
 	}
 	resp.ClientSequence, resp.Verdict, resp.Reason, resp.StatusCode = clientSeq, pb.Verdict_VERDICT_INVALID, err.Error(), errorCode(err)
+	resp.Field = fusion.FieldOf(err)
 	return false
 }

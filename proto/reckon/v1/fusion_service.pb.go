@@ -21,6 +21,101 @@ const (
 	_ = protoimpl.EnforceVersion(protoimpl.MaxVersion - 20)
 )
 
+// Refusal says, as a value, why an input was not applied (the reason text
+// says it for people). A gated fix has none: its verdict and NIS say it.
+type Refusal int32
+
+const (
+	// Not refused (applied, held or gated).
+	Refusal_REFUSAL_UNSPECIFIED Refusal = 0
+	// Stamped before the history window.
+	Refusal_REFUSAL_TOO_OLD Refusal = 1
+	// Time runs backwards (odometry older than the newest, or a repeated stamp).
+	Refusal_REFUSAL_TIME_BACKWARDS Refusal = 2
+	// Stamped too far past the newest odometry to be held.
+	Refusal_REFUSAL_TOO_FAR_AHEAD Refusal = 3
+	// Too many inputs already wait for odometry (max_held).
+	Refusal_REFUSAL_HELD_FULL Refusal = 4
+	// Motion faster than max_speed_m_per_s or max_turn_rate_rad_per_s.
+	Refusal_REFUSAL_IMPLAUSIBLE_MOTION Refusal = 5
+	// A malformed value: shape, non-finite, a covariance that is not
+	// symmetric positive definite or not plausible.
+	Refusal_REFUSAL_MALFORMED Refusal = 6
+	// A landmark the robot's map does not have.
+	Refusal_REFUSAL_UNKNOWN_LANDMARK Refusal = 7
+	// A sensor the robot's configuration does not name.
+	Refusal_REFUSAL_UNKNOWN_SENSOR Refusal = 8
+	// A sample the robot's configuration does not take (imu_mode).
+	Refusal_REFUSAL_NOT_CONFIGURED Refusal = 9
+	// An update the filter could not make; the estimate is unchanged.
+	Refusal_REFUSAL_NUMERICAL_FAULT Refusal = 10
+	// The service could not journal it: not applied, resend (status 14).
+	Refusal_REFUSAL_NOT_JOURNALED Refusal = 11
+	// Past one of the service's limits (string length, robot paused).
+	Refusal_REFUSAL_LIMIT Refusal = 12
+)
+
+// Enum value maps for Refusal.
+var (
+	Refusal_name = map[int32]string{
+		0:  "REFUSAL_UNSPECIFIED",
+		1:  "REFUSAL_TOO_OLD",
+		2:  "REFUSAL_TIME_BACKWARDS",
+		3:  "REFUSAL_TOO_FAR_AHEAD",
+		4:  "REFUSAL_HELD_FULL",
+		5:  "REFUSAL_IMPLAUSIBLE_MOTION",
+		6:  "REFUSAL_MALFORMED",
+		7:  "REFUSAL_UNKNOWN_LANDMARK",
+		8:  "REFUSAL_UNKNOWN_SENSOR",
+		9:  "REFUSAL_NOT_CONFIGURED",
+		10: "REFUSAL_NUMERICAL_FAULT",
+		11: "REFUSAL_NOT_JOURNALED",
+		12: "REFUSAL_LIMIT",
+	}
+	Refusal_value = map[string]int32{
+		"REFUSAL_UNSPECIFIED":        0,
+		"REFUSAL_TOO_OLD":            1,
+		"REFUSAL_TIME_BACKWARDS":     2,
+		"REFUSAL_TOO_FAR_AHEAD":      3,
+		"REFUSAL_HELD_FULL":          4,
+		"REFUSAL_IMPLAUSIBLE_MOTION": 5,
+		"REFUSAL_MALFORMED":          6,
+		"REFUSAL_UNKNOWN_LANDMARK":   7,
+		"REFUSAL_UNKNOWN_SENSOR":     8,
+		"REFUSAL_NOT_CONFIGURED":     9,
+		"REFUSAL_NUMERICAL_FAULT":    10,
+		"REFUSAL_NOT_JOURNALED":      11,
+		"REFUSAL_LIMIT":              12,
+	}
+)
+
+func (x Refusal) Enum() *Refusal {
+	p := new(Refusal)
+	*p = x
+	return p
+}
+
+func (x Refusal) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (Refusal) Descriptor() protoreflect.EnumDescriptor {
+	return file_reckon_v1_fusion_service_proto_enumTypes[0].Descriptor()
+}
+
+func (Refusal) Type() protoreflect.EnumType {
+	return &file_reckon_v1_fusion_service_proto_enumTypes[0]
+}
+
+func (x Refusal) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use Refusal.Descriptor instead.
+func (Refusal) EnumDescriptor() ([]byte, []int) {
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{0}
+}
+
 // Verdict says what became of an input.
 type Verdict int32
 
@@ -71,11 +166,11 @@ func (x Verdict) String() string {
 }
 
 func (Verdict) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_fusion_service_proto_enumTypes[0].Descriptor()
+	return file_reckon_v1_fusion_service_proto_enumTypes[1].Descriptor()
 }
 
 func (Verdict) Type() protoreflect.EnumType {
-	return &file_reckon_v1_fusion_service_proto_enumTypes[0]
+	return &file_reckon_v1_fusion_service_proto_enumTypes[1]
 }
 
 func (x Verdict) Number() protoreflect.EnumNumber {
@@ -84,7 +179,7 @@ func (x Verdict) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Verdict.Descriptor instead.
 func (Verdict) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{0}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{1}
 }
 
 // EventKind names a notable moment.
@@ -144,11 +239,11 @@ func (x EventKind) String() string {
 }
 
 func (EventKind) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_fusion_service_proto_enumTypes[1].Descriptor()
+	return file_reckon_v1_fusion_service_proto_enumTypes[2].Descriptor()
 }
 
 func (EventKind) Type() protoreflect.EnumType {
-	return &file_reckon_v1_fusion_service_proto_enumTypes[1]
+	return &file_reckon_v1_fusion_service_proto_enumTypes[2]
 }
 
 func (x EventKind) Number() protoreflect.EnumNumber {
@@ -157,7 +252,7 @@ func (x EventKind) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use EventKind.Descriptor instead.
 func (EventKind) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{1}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{2}
 }
 
 // DistrustReason is a reason not to trust the estimate.
@@ -220,11 +315,11 @@ func (x DistrustReason) String() string {
 }
 
 func (DistrustReason) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_fusion_service_proto_enumTypes[2].Descriptor()
+	return file_reckon_v1_fusion_service_proto_enumTypes[3].Descriptor()
 }
 
 func (DistrustReason) Type() protoreflect.EnumType {
-	return &file_reckon_v1_fusion_service_proto_enumTypes[2]
+	return &file_reckon_v1_fusion_service_proto_enumTypes[3]
 }
 
 func (x DistrustReason) Number() protoreflect.EnumNumber {
@@ -233,7 +328,7 @@ func (x DistrustReason) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use DistrustReason.Descriptor instead.
 func (DistrustReason) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{2}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{3}
 }
 
 // ConsistencyVerdict compares a sensor's mean NIS over its applied fixes
@@ -282,11 +377,11 @@ func (x ConsistencyVerdict) String() string {
 }
 
 func (ConsistencyVerdict) Descriptor() protoreflect.EnumDescriptor {
-	return file_reckon_v1_fusion_service_proto_enumTypes[3].Descriptor()
+	return file_reckon_v1_fusion_service_proto_enumTypes[4].Descriptor()
 }
 
 func (ConsistencyVerdict) Type() protoreflect.EnumType {
-	return &file_reckon_v1_fusion_service_proto_enumTypes[3]
+	return &file_reckon_v1_fusion_service_proto_enumTypes[4]
 }
 
 func (x ConsistencyVerdict) Number() protoreflect.EnumNumber {
@@ -295,7 +390,7 @@ func (x ConsistencyVerdict) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use ConsistencyVerdict.Descriptor instead.
 func (ConsistencyVerdict) EnumDescriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{4}
 }
 
 // CreateRobotRequest creates robots/{robot_id}.
@@ -790,7 +885,12 @@ type IngestResponse struct {
 	// unknown robot or landmark; 9 (FAILED_PRECONDITION) for a sample the
 	// robot's configuration does not take; 11 (OUT_OF_RANGE) for time running
 	// backwards or a sample too old; 14 (UNAVAILABLE) if the journal failed.
-	StatusCode    int32 `protobuf:"varint,9,opt,name=status_code,json=statusCode,proto3" json:"status_code,omitempty"`
+	StatusCode int32 `protobuf:"varint,9,opt,name=status_code,json=statusCode,proto3" json:"status_code,omitempty"`
+	// Why the sample was refused, as a value (REFUSAL_UNSPECIFIED if not).
+	Refusal Refusal `protobuf:"varint,10,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
+	// The snake_case path of the field that was wrong, when one was
+	// ("sample.fix.covariance"), for a refusal.
+	Field         string `protobuf:"bytes,11,opt,name=field,proto3" json:"field,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -888,6 +988,20 @@ func (x *IngestResponse) GetStatusCode() int32 {
 	return 0
 }
 
+func (x *IngestResponse) GetRefusal() Refusal {
+	if x != nil {
+		return x.Refusal
+	}
+	return Refusal_REFUSAL_UNSPECIFIED
+}
+
+func (x *IngestResponse) GetField() string {
+	if x != nil {
+		return x.Field
+	}
+	return ""
+}
+
 // Resolution is the final verdict of a held sample.
 type Resolution struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -898,7 +1012,9 @@ type Resolution struct {
 	// Its NIS.
 	Nis float64 `protobuf:"fixed64,3,opt,name=nis,proto3" json:"nis,omitempty"`
 	// Why it was refused.
-	Reason        string `protobuf:"bytes,4,opt,name=reason,proto3" json:"reason,omitempty"`
+	Reason string `protobuf:"bytes,4,opt,name=reason,proto3" json:"reason,omitempty"`
+	// Why it was refused, as a value.
+	Refusal       Refusal `protobuf:"varint,5,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -959,6 +1075,13 @@ func (x *Resolution) GetReason() string {
 		return x.Reason
 	}
 	return ""
+}
+
+func (x *Resolution) GetRefusal() Refusal {
+	if x != nil {
+		return x.Refusal
+	}
+	return Refusal_REFUSAL_UNSPECIFIED
 }
 
 // FusionEvent is a notable moment.
@@ -2031,7 +2154,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x0fclient_sequence\x18\x02 \x01(\x04R\x0eclientSequence\x12)\n" +
 	"\x06sample\x18\x03 \x01(\v2\x11.reckon.v1.SampleR\x06sample\x12\x1d\n" +
 	"\n" +
-	"session_id\x18\x04 \x01(\tR\tsessionId\"\xd6\x02\n" +
+	"session_id\x18\x04 \x01(\tR\tsessionId\"\x9a\x03\n" +
 	"\x0eIngestResponse\x12'\n" +
 	"\x0fclient_sequence\x18\x01 \x01(\x04R\x0eclientSequence\x12\x1a\n" +
 	"\bsequence\x18\x02 \x01(\x04R\bsequence\x12,\n" +
@@ -2042,13 +2165,17 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\bresolved\x18\a \x03(\v2\x15.reckon.v1.ResolutionR\bresolved\x12.\n" +
 	"\x06events\x18\b \x03(\v2\x16.reckon.v1.FusionEventR\x06events\x12\x1f\n" +
 	"\vstatus_code\x18\t \x01(\x05R\n" +
-	"statusCode\"\x80\x01\n" +
+	"statusCode\x12,\n" +
+	"\arefusal\x18\n" +
+	" \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\x12\x14\n" +
+	"\x05field\x18\v \x01(\tR\x05field\"\xae\x01\n" +
 	"\n" +
 	"Resolution\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
 	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x10\n" +
 	"\x03nis\x18\x03 \x01(\x01R\x03nis\x12\x16\n" +
-	"\x06reason\x18\x04 \x01(\tR\x06reason\"\x9d\x01\n" +
+	"\x06reason\x18\x04 \x01(\tR\x06reason\x12,\n" +
+	"\arefusal\x18\x05 \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\"\x9d\x01\n" +
 	"\vFusionEvent\x12(\n" +
 	"\x04kind\x18\x01 \x01(\x0e2\x14.reckon.v1.EventKindR\x04kind\x12\x19\n" +
 	"\bstamp_ns\x18\x02 \x01(\x03R\astampNs\x12\x1b\n" +
@@ -2128,7 +2255,22 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"recoveries\x125\n" +
 	"\bdistrust\x18\a \x03(\x0e2\x19.reckon.v1.DistrustReasonR\bdistrust\x12\x12\n" +
 	"\x04held\x18\b \x01(\x05R\x04held\x12%\n" +
-	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\x86\x01\n" +
+	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xdd\x02\n" +
+	"\aRefusal\x12\x17\n" +
+	"\x13REFUSAL_UNSPECIFIED\x10\x00\x12\x13\n" +
+	"\x0fREFUSAL_TOO_OLD\x10\x01\x12\x1a\n" +
+	"\x16REFUSAL_TIME_BACKWARDS\x10\x02\x12\x19\n" +
+	"\x15REFUSAL_TOO_FAR_AHEAD\x10\x03\x12\x15\n" +
+	"\x11REFUSAL_HELD_FULL\x10\x04\x12\x1e\n" +
+	"\x1aREFUSAL_IMPLAUSIBLE_MOTION\x10\x05\x12\x15\n" +
+	"\x11REFUSAL_MALFORMED\x10\x06\x12\x1c\n" +
+	"\x18REFUSAL_UNKNOWN_LANDMARK\x10\a\x12\x1a\n" +
+	"\x16REFUSAL_UNKNOWN_SENSOR\x10\b\x12\x1a\n" +
+	"\x16REFUSAL_NOT_CONFIGURED\x10\t\x12\x1b\n" +
+	"\x17REFUSAL_NUMERICAL_FAULT\x10\n" +
+	"\x12\x19\n" +
+	"\x15REFUSAL_NOT_JOURNALED\x10\v\x12\x11\n" +
+	"\rREFUSAL_LIMIT\x10\f*\x86\x01\n" +
 	"\aVerdict\x12\x17\n" +
 	"\x13VERDICT_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fVERDICT_APPLIED\x10\x01\x12\x10\n" +
@@ -2184,95 +2326,98 @@ func file_reckon_v1_fusion_service_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_fusion_service_proto_rawDescData
 }
 
-var file_reckon_v1_fusion_service_proto_enumTypes = make([]protoimpl.EnumInfo, 4)
+var file_reckon_v1_fusion_service_proto_enumTypes = make([]protoimpl.EnumInfo, 5)
 var file_reckon_v1_fusion_service_proto_msgTypes = make([]protoimpl.MessageInfo, 25)
 var file_reckon_v1_fusion_service_proto_goTypes = []any{
-	(Verdict)(0),                  // 0: reckon.v1.Verdict
-	(EventKind)(0),                // 1: reckon.v1.EventKind
-	(DistrustReason)(0),           // 2: reckon.v1.DistrustReason
-	(ConsistencyVerdict)(0),       // 3: reckon.v1.ConsistencyVerdict
-	(*CreateRobotRequest)(nil),    // 4: reckon.v1.CreateRobotRequest
-	(*CreateRobotResponse)(nil),   // 5: reckon.v1.CreateRobotResponse
-	(*GetRobotRequest)(nil),       // 6: reckon.v1.GetRobotRequest
-	(*GetRobotResponse)(nil),      // 7: reckon.v1.GetRobotResponse
-	(*ListRobotsRequest)(nil),     // 8: reckon.v1.ListRobotsRequest
-	(*ListRobotsResponse)(nil),    // 9: reckon.v1.ListRobotsResponse
-	(*DeleteRobotRequest)(nil),    // 10: reckon.v1.DeleteRobotRequest
-	(*DeleteRobotResponse)(nil),   // 11: reckon.v1.DeleteRobotResponse
-	(*IngestRequest)(nil),         // 12: reckon.v1.IngestRequest
-	(*IngestResponse)(nil),        // 13: reckon.v1.IngestResponse
-	(*Resolution)(nil),            // 14: reckon.v1.Resolution
-	(*FusionEvent)(nil),           // 15: reckon.v1.FusionEvent
-	(*FusedPose)(nil),             // 16: reckon.v1.FusedPose
-	(*BodyVelocity)(nil),          // 17: reckon.v1.BodyVelocity
-	(*WatchRequest)(nil),          // 18: reckon.v1.WatchRequest
-	(*WatchResponse)(nil),         // 19: reckon.v1.WatchResponse
-	(*GetPoseAtRequest)(nil),      // 20: reckon.v1.GetPoseAtRequest
-	(*GetPoseAtResponse)(nil),     // 21: reckon.v1.GetPoseAtResponse
-	(*ReseedRobotRequest)(nil),    // 22: reckon.v1.ReseedRobotRequest
-	(*ReseedRobotResponse)(nil),   // 23: reckon.v1.ReseedRobotResponse
-	(*GetStatisticsRequest)(nil),  // 24: reckon.v1.GetStatisticsRequest
-	(*GetStatisticsResponse)(nil), // 25: reckon.v1.GetStatisticsResponse
-	(*VerdictCounts)(nil),         // 26: reckon.v1.VerdictCounts
-	(*SensorConsistency)(nil),     // 27: reckon.v1.SensorConsistency
-	(*RobotStatistics)(nil),       // 28: reckon.v1.RobotStatistics
-	(*RobotConfig)(nil),           // 29: reckon.v1.RobotConfig
-	(*Robot)(nil),                 // 30: reckon.v1.Robot
-	(*Sample)(nil),                // 31: reckon.v1.Sample
-	(*FloorPose)(nil),             // 32: reckon.v1.FloorPose
-	(*Covariance)(nil),            // 33: reckon.v1.Covariance
-	(*Reseed)(nil),                // 34: reckon.v1.Reseed
+	(Refusal)(0),                  // 0: reckon.v1.Refusal
+	(Verdict)(0),                  // 1: reckon.v1.Verdict
+	(EventKind)(0),                // 2: reckon.v1.EventKind
+	(DistrustReason)(0),           // 3: reckon.v1.DistrustReason
+	(ConsistencyVerdict)(0),       // 4: reckon.v1.ConsistencyVerdict
+	(*CreateRobotRequest)(nil),    // 5: reckon.v1.CreateRobotRequest
+	(*CreateRobotResponse)(nil),   // 6: reckon.v1.CreateRobotResponse
+	(*GetRobotRequest)(nil),       // 7: reckon.v1.GetRobotRequest
+	(*GetRobotResponse)(nil),      // 8: reckon.v1.GetRobotResponse
+	(*ListRobotsRequest)(nil),     // 9: reckon.v1.ListRobotsRequest
+	(*ListRobotsResponse)(nil),    // 10: reckon.v1.ListRobotsResponse
+	(*DeleteRobotRequest)(nil),    // 11: reckon.v1.DeleteRobotRequest
+	(*DeleteRobotResponse)(nil),   // 12: reckon.v1.DeleteRobotResponse
+	(*IngestRequest)(nil),         // 13: reckon.v1.IngestRequest
+	(*IngestResponse)(nil),        // 14: reckon.v1.IngestResponse
+	(*Resolution)(nil),            // 15: reckon.v1.Resolution
+	(*FusionEvent)(nil),           // 16: reckon.v1.FusionEvent
+	(*FusedPose)(nil),             // 17: reckon.v1.FusedPose
+	(*BodyVelocity)(nil),          // 18: reckon.v1.BodyVelocity
+	(*WatchRequest)(nil),          // 19: reckon.v1.WatchRequest
+	(*WatchResponse)(nil),         // 20: reckon.v1.WatchResponse
+	(*GetPoseAtRequest)(nil),      // 21: reckon.v1.GetPoseAtRequest
+	(*GetPoseAtResponse)(nil),     // 22: reckon.v1.GetPoseAtResponse
+	(*ReseedRobotRequest)(nil),    // 23: reckon.v1.ReseedRobotRequest
+	(*ReseedRobotResponse)(nil),   // 24: reckon.v1.ReseedRobotResponse
+	(*GetStatisticsRequest)(nil),  // 25: reckon.v1.GetStatisticsRequest
+	(*GetStatisticsResponse)(nil), // 26: reckon.v1.GetStatisticsResponse
+	(*VerdictCounts)(nil),         // 27: reckon.v1.VerdictCounts
+	(*SensorConsistency)(nil),     // 28: reckon.v1.SensorConsistency
+	(*RobotStatistics)(nil),       // 29: reckon.v1.RobotStatistics
+	(*RobotConfig)(nil),           // 30: reckon.v1.RobotConfig
+	(*Robot)(nil),                 // 31: reckon.v1.Robot
+	(*Sample)(nil),                // 32: reckon.v1.Sample
+	(*FloorPose)(nil),             // 33: reckon.v1.FloorPose
+	(*Covariance)(nil),            // 34: reckon.v1.Covariance
+	(*Reseed)(nil),                // 35: reckon.v1.Reseed
 }
 var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
-	29, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
-	30, // 1: reckon.v1.CreateRobotResponse.robot:type_name -> reckon.v1.Robot
-	30, // 2: reckon.v1.GetRobotResponse.robot:type_name -> reckon.v1.Robot
-	30, // 3: reckon.v1.ListRobotsResponse.robots:type_name -> reckon.v1.Robot
-	31, // 4: reckon.v1.IngestRequest.sample:type_name -> reckon.v1.Sample
-	0,  // 5: reckon.v1.IngestResponse.verdict:type_name -> reckon.v1.Verdict
-	14, // 6: reckon.v1.IngestResponse.resolved:type_name -> reckon.v1.Resolution
-	15, // 7: reckon.v1.IngestResponse.events:type_name -> reckon.v1.FusionEvent
-	0,  // 8: reckon.v1.Resolution.verdict:type_name -> reckon.v1.Verdict
-	1,  // 9: reckon.v1.FusionEvent.kind:type_name -> reckon.v1.EventKind
-	32, // 10: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
-	33, // 11: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
-	17, // 12: reckon.v1.FusedPose.velocity:type_name -> reckon.v1.BodyVelocity
-	2,  // 13: reckon.v1.FusedPose.distrust:type_name -> reckon.v1.DistrustReason
-	16, // 14: reckon.v1.WatchResponse.pose:type_name -> reckon.v1.FusedPose
-	15, // 15: reckon.v1.WatchResponse.events:type_name -> reckon.v1.FusionEvent
-	16, // 16: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
-	34, // 17: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
-	0,  // 18: reckon.v1.ReseedRobotResponse.verdict:type_name -> reckon.v1.Verdict
-	28, // 19: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
-	26, // 20: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
-	3,  // 21: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
-	26, // 22: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
-	26, // 23: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
-	27, // 24: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
-	2,  // 25: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
-	4,  // 26: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
-	6,  // 27: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
-	8,  // 28: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
-	10, // 29: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
-	12, // 30: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
-	18, // 31: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
-	20, // 32: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
-	22, // 33: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
-	24, // 34: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
-	5,  // 35: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
-	7,  // 36: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
-	9,  // 37: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
-	11, // 38: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
-	13, // 39: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
-	19, // 40: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
-	21, // 41: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
-	23, // 42: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
-	25, // 43: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
-	35, // [35:44] is the sub-list for method output_type
-	26, // [26:35] is the sub-list for method input_type
-	26, // [26:26] is the sub-list for extension type_name
-	26, // [26:26] is the sub-list for extension extendee
-	0,  // [0:26] is the sub-list for field type_name
+	30, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
+	31, // 1: reckon.v1.CreateRobotResponse.robot:type_name -> reckon.v1.Robot
+	31, // 2: reckon.v1.GetRobotResponse.robot:type_name -> reckon.v1.Robot
+	31, // 3: reckon.v1.ListRobotsResponse.robots:type_name -> reckon.v1.Robot
+	32, // 4: reckon.v1.IngestRequest.sample:type_name -> reckon.v1.Sample
+	1,  // 5: reckon.v1.IngestResponse.verdict:type_name -> reckon.v1.Verdict
+	15, // 6: reckon.v1.IngestResponse.resolved:type_name -> reckon.v1.Resolution
+	16, // 7: reckon.v1.IngestResponse.events:type_name -> reckon.v1.FusionEvent
+	0,  // 8: reckon.v1.IngestResponse.refusal:type_name -> reckon.v1.Refusal
+	1,  // 9: reckon.v1.Resolution.verdict:type_name -> reckon.v1.Verdict
+	0,  // 10: reckon.v1.Resolution.refusal:type_name -> reckon.v1.Refusal
+	2,  // 11: reckon.v1.FusionEvent.kind:type_name -> reckon.v1.EventKind
+	33, // 12: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
+	34, // 13: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
+	18, // 14: reckon.v1.FusedPose.velocity:type_name -> reckon.v1.BodyVelocity
+	3,  // 15: reckon.v1.FusedPose.distrust:type_name -> reckon.v1.DistrustReason
+	17, // 16: reckon.v1.WatchResponse.pose:type_name -> reckon.v1.FusedPose
+	16, // 17: reckon.v1.WatchResponse.events:type_name -> reckon.v1.FusionEvent
+	17, // 18: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
+	35, // 19: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
+	1,  // 20: reckon.v1.ReseedRobotResponse.verdict:type_name -> reckon.v1.Verdict
+	29, // 21: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
+	27, // 22: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
+	4,  // 23: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
+	27, // 24: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
+	27, // 25: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
+	28, // 26: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
+	3,  // 27: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
+	5,  // 28: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
+	7,  // 29: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
+	9,  // 30: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
+	11, // 31: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
+	13, // 32: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
+	19, // 33: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
+	21, // 34: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
+	23, // 35: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
+	25, // 36: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
+	6,  // 37: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
+	8,  // 38: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
+	10, // 39: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
+	12, // 40: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
+	14, // 41: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
+	20, // 42: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
+	22, // 43: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
+	24, // 44: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
+	26, // 45: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
+	37, // [37:46] is the sub-list for method output_type
+	28, // [28:37] is the sub-list for method input_type
+	28, // [28:28] is the sub-list for extension type_name
+	28, // [28:28] is the sub-list for extension extendee
+	0,  // [0:28] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_fusion_service_proto_init() }
@@ -2287,7 +2432,7 @@ func file_reckon_v1_fusion_service_proto_init() {
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_fusion_service_proto_rawDesc), len(file_reckon_v1_fusion_service_proto_rawDesc)),
-			NumEnums:      4,
+			NumEnums:      5,
 			NumMessages:   25,
 			NumExtensions: 0,
 			NumServices:   1,

@@ -14,17 +14,17 @@ type Refusal uint8
 
 // The refusals, from the error kinds of package fusion and estimator.
 const (
-	RefusalNone             Refusal = iota // applied, held or gated
-	RefusalTooOld                          // ErrTooOld
-	RefusalTimeBackwards                   // ErrTimeBackwards
-	RefusalTooFarAhead                     // ErrTooFarAhead
-	RefusalHeldFull                        // ErrHeldFull
-	RefusalImplausibleMotion               // ErrAbsurdJump
-	RefusalMalformed                       // ErrBadSample, non-finite values, bad covariances
-	RefusalUnknownLandmark                 // ErrUnknownLandmark
-	RefusalUnknownSensor                   // ErrUnknownSensor
-	RefusalNotConfigured                   // ErrNoIMU: the configuration does not take the sample
-	RefusalNumericalFault                  // an update the filter could not make (covariance not positive definite, degenerate)
+	RefusalNone              Refusal = iota // applied, held or gated
+	RefusalTooOld                           // ErrTooOld
+	RefusalTimeBackwards                    // ErrTimeBackwards
+	RefusalTooFarAhead                      // ErrTooFarAhead
+	RefusalHeldFull                         // ErrHeldFull
+	RefusalImplausibleMotion                // ErrAbsurdJump
+	RefusalMalformed                        // ErrBadSample, non-finite values, bad covariances
+	RefusalUnknownLandmark                  // ErrUnknownLandmark
+	RefusalUnknownSensor                    // ErrUnknownSensor
+	RefusalNotConfigured                    // ErrNoIMU: the configuration does not take the sample
+	RefusalNumericalFault                   // an update the filter could not make (covariance not positive definite, degenerate)
 )
 
 var refusalTable = [...]Label[Refusal]{

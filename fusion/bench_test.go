@@ -42,7 +42,7 @@ func BenchmarkLateFix(b *testing.B) {
 	for b.Loop() {
 		feed()
 		p, _ := r.PoseAt((k - 30) * 5e6)
-		cam := estimator.Compose(p.Pose, fusiontest.CameraMount)
+		cam := estimator.Compose(p.Pose, fusiontest.CameraMount())
 		r.AddFix(fusion.Fix{StampNs: (k-30)*5e6 + 1e6, SensorID: "camera", Kind: fusion.FixPose, XM: cam.X, YM: cam.Y, HeadingRad: cam.Heading,
 			Cov: []float64{9e-4, 0, 0, 0, 9e-4, 0, 0, 0, 4e-4}})
 	}

@@ -25,7 +25,7 @@ func cameraErrors(t *testing.T, sc Scenario) [][3]float64 {
 		if in.Fix == nil {
 			continue
 		}
-		cam := estimator.Compose(sc.ToLocal(in.Truth), CameraMount)
+		cam := estimator.Compose(sc.ToLocal(in.Truth), CameraMount())
 		f := sc.ToLocal(estimator.Pose{X: in.Fix.XM, Y: in.Fix.YM, Heading: in.Fix.HeadingRad})
 		out = append(out, [3]float64{(f.X - cam.X) / cameraStdM, (f.Y - cam.Y) / cameraStdM, estimator.Wrap(f.Heading-cam.Heading) / cameraStdRad})
 	}

@@ -158,8 +158,9 @@ func (s *Scenario) defaults() {
 	s.Errors.defaults()
 }
 
-// Camera mount on the cart: 0.15 m ahead of the reference point, facing forward.
-var CameraMount = estimator.Pose{X: 0.15, Y: 0, Heading: 0}
+// CameraMount is the camera's mount on the cart: 0.15 m ahead of the reference
+// point, facing forward.
+func CameraMount() estimator.Pose { return estimator.Pose{X: 0.15, Y: 0, Heading: 0} }
 
 // Camera noise: 3 cm per axis and 0.02 rad for pose fixes; 2 cm and 0.01 rad
 // for range and bearing.
@@ -197,7 +198,7 @@ func (s Scenario) Config() fusion.Config {
 		Recovery:  fusion.Recovery{Enabled: true},
 		StartCov:  []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
 		Landmarks: s.Landmarks(),
-		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixPose, Mount: CameraMount,
+		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixPose, Mount: CameraMount(),
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}},
 	}
 	if s.Markers {
@@ -504,7 +505,7 @@ func (sm *Sim) emitOdometry(t int64) {
 func (sm *Sim) emitCamera(t int64) {
 	lat := sm.s.LatencyMinS + sm.rng.Float64()*(sm.s.LatencyMaxS-sm.s.LatencyMinS)
 	in := Input{ArrivalNs: t + int64(lat*1e9), Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped}
-	cam := estimator.Compose(sm.truth, CameraMount)
+	cam := estimator.Compose(sm.truth, CameraMount())
 	outlier := !sm.s.NoiseFree && sm.rng.Float64() < sm.s.OutlierFraction
 	sm.errs.startFix(&sm.s, t)
 	if sm.s.Markers {

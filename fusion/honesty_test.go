@@ -101,9 +101,13 @@ func TestHonestWhiteModelFails(t *testing.T) {
 }
 
 // TestHonestTrueModel: with each error process on, the filter configured
-// with the true error model keeps the Monte Carlo NEES inside the band
-// (85% of checkpoints, allowing for their correlation within a run, and
-// the mean).
+// with the true error model (fusiontest's TrueModelConfig) keeps the Monte
+// Carlo NEES inside the band (85% of checkpoints, allowing for their
+// correlation within a run, and the mean). Measured with 30 runs of 60 s,
+// band [2.19, 3.94]: mean 3.21 and 90% inside (Gauss-Markov pose fixes),
+// 3.01 and 94% (Gauss-Markov landmarks), 3.13 and 96% (Student-t), 2.98
+// and 99% (contamination, Huber), 2.84 and 92% (scale states), 3.28 and
+// 88% (noise per second), 3.08 and 92% (commanded with scale).
 func TestHonestTrueModel(t *testing.T) {
 
 	for _, c := range honestyCases() {

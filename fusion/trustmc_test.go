@@ -248,7 +248,7 @@ func trustCases(minutes float64, seed uint64) []trustCase {
 //     centimetre lasts as long as the error's correlation, a second or so).
 //     Such excursions longer than 0.2 s are counted and logged, not failed.
 //
-// The short version runs 66 simulated minutes; RECKON_LONG=1 runs 1,100.
+// The short version runs 84 simulated minutes; RECKON_LONG=1 runs 1,400.
 func TestTrustProperty(t *testing.T) {
 	minutes, runs := 1.0, 6
 	if os.Getenv("RECKON_LONG") == "1" {

@@ -35,8 +35,8 @@
 //
 // Scenario.Config (and Sim.Config, with the run's start pose) describes the
 // scenario to the filter; WhiteConfig is the same with white-noise
-// assumptions, TrueModelConfig the one with the true error model (see its
-// TODO). MonteCarloNEES runs the NEES test of Bar-Shalom, Li and
+// assumptions, TrueModelConfig the one that declares the true error
+// processes with the filter's own models. MonteCarloNEES runs the NEES test of Bar-Shalom, Li and
 // Kirubarajan (2001, sec. 5.4.2) over many runs; TrustMonitor and
 // TrustViolations measure from truth how long the estimate was trusted
 // while outside its 99.9% region.

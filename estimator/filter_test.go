@@ -389,7 +389,9 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		case RobustHuber:
 			w = math.Min(1, m.Robust.Param/math.Sqrt(nis))
 		case RobustStudentT:
-			w = math.Min(1, (m.Robust.Param+float64(d))/(m.Robust.Param+nis))
+			// The expected covariance of a Student-t error given its NIS
+			// (StudentTCovWeight): E[1/lambda] = (nu + NIS)/(nu + d - 2).
+			w = math.Min(1, (m.Robust.Param+float64(d)-2)/(m.Robust.Param+nis))
 		}
 		R.Scale(1/w, R)
 		S.Mul(H, &pht)

@@ -14,9 +14,9 @@ const (
 	// RobustHuber: Huber's weight min(1, k / sqrt(NIS)), Param = k in
 	// standard deviations (Huber 1964).
 	RobustHuber
-	// RobustStudentT: the weight (nu + d) / (nu + NIS) of a Student-t
-	// likelihood with nu = Param degrees of freedom (Roth, Ozkan and
-	// Gustafsson 2013).
+	// RobustStudentT: the weight (nu + d - 2) / (nu + NIS) of a Student-t
+	// error with nu = Param degrees of freedom (StudentTCovWeight, after
+	// Roth, Ozkan and Gustafsson 2013).
 	RobustStudentT
 )
 
@@ -52,7 +52,7 @@ func (r Robust) Weight(nis float64, d int) float64 {
 	case RobustHuber:
 		return HuberWeight(nis, r.Param)
 	case RobustStudentT:
-		return StudentTWeight(nis, r.Param, d)
+		return StudentTCovWeight(nis, r.Param, d)
 	}
 	return 1
 }
@@ -78,6 +78,25 @@ func HuberWeight(nis, k float64) float64 {
 // Gaussian model's information.
 func StudentTWeight(nis, nu float64, d int) float64 {
 	w := (nu + float64(d)) / (nu + nis)
+	if !(w < 1) {
+		return 1
+	}
+	return w
+}
+
+// StudentTCovWeight returns (nu + d - 2) / (nu + nis), capped at 1: the
+// weight whose R / w is the expected covariance of a Student-t error given
+// its NIS, the one the update uses. With the error R^(1/2) z / sqrt(lambda),
+// lambda ~ Gamma(nu/2, nu/2), the posterior of lambda given the NIS is
+// Gamma((nu + d)/2, (nu + nis)/2) (Roth, Ozkan and Gustafsson 2013), whose
+// mean gives StudentTWeight; but the error's covariance given the NIS is
+// R E[1/lambda] = R (nu + nis) / (nu + d - 2) (the mean of an inverse
+// gamma, common practice). R / StudentTWeight understates it by (nu + d -
+// 2) / (nu + d), two thirds for nu = d = 3 (DEVELOPERS.md, "Design:
+// Sensors", has the Monte Carlo figures). Capping at 1 keeps a small NIS from claiming more
+// than the Gaussian model's information. It needs nu + d > 2.
+func StudentTCovWeight(nis, nu float64, d int) float64 {
+	w := (nu + float64(d) - 2) / (nu + nis)
 	if !(w < 1) {
 		return 1
 	}

@@ -4,6 +4,8 @@ import (
 	"math"
 	"math/rand/v2"
 	"testing"
+
+	"gonum.org/v1/gonum/integrate/quad"
 )
 
 // TestGaussMarkovSteadyState: a heading that is a random walk (variance q
@@ -121,7 +123,9 @@ func TestDecayComposes(t *testing.T) {
 // k = 1.345, the 95%-efficiency constant, common practice), and the
 // Student-t weight (nu + 1)/(nu + e^2), the posterior mean of the precision
 // scale of a Student-t error with nu degrees of freedom given e (Roth, Ozkan
-// and Gustafsson 2013), capped at 1 as StudentTWeight documents.
+// and Gustafsson 2013), capped at 1 as StudentTWeight documents; and the
+// weight the update uses, the inverse of the posterior mean of 1/lambda
+// (StudentTCovWeight), by quadrature of that posterior.
 func TestRobustWeights(t *testing.T) {
 	const k, nu = 1.345, 4.0
 	for _, e := range []float64{0, 0.5, 1, 1.345, 2, 3, 5, 8, -4} {
@@ -139,6 +143,24 @@ func TestRobustWeights(t *testing.T) {
 		wantT := math.Min(1, (nu+1)/(nu+e*e))
 		if got := StudentTWeight(e*e, nu, 1); math.Abs(got-wantT) > 1e-15 {
 			t.Errorf("Student-t weight at %g sigma: %g, want %g", e, got, wantT)
+		}
+		// The posterior of the precision scale lambda given e is
+		// proportional to lambda^((nu+1)/2 - 1) exp(-lambda (nu + e^2)/2);
+		// E[1/lambda] by quadrature (gonum integrate/quad, Legendre) against
+		// StudentTCovWeight's closed form (nu + e^2)/(nu - 1).
+		post := func(l float64, p float64) float64 {
+			return math.Pow(l, (nu+1)/2-1+p) * math.Exp(-l*(nu+e*e)/2)
+		}
+		// Substituting lambda = u/(1-u) maps (0, inf) onto (0, 1).
+		moment := func(p float64) float64 {
+			return quad.Fixed(func(u float64) float64 {
+				l := u / (1 - u)
+				return post(l, p) / ((1 - u) * (1 - u))
+			}, 0, 1, 2000, nil, 0)
+		}
+		wantC := math.Min(1, moment(0)/moment(-1))
+		if got := (Robust{Kind: RobustStudentT, Param: nu}).Weight(e*e, 1); math.Abs(got-wantC) > 1e-6 {
+			t.Errorf("Student-t covariance weight at %g sigma: %g, want 1/E[1/lambda] = %g", e, got, wantC)
 		}
 		if got := (Robust{}).Weight(e*e, 1); got != 1 {
 			t.Errorf("no robust model: weight %g", got)

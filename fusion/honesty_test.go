@@ -43,7 +43,7 @@ func honestyCases() []honestyCase {
 		{name: "gauss-markov-pose", sc: pose(fusiontest.Errors{CameraTauS: 2.85})},
 		{name: "gauss-markov-landmark", sc: landmarks(fusiontest.DriveWheelTurn, fusiontest.Errors{CameraTauS: 2.85})},
 		// The stated deviation is the core's: a robust fit of real errors.
-		{name: "student-t-3", sc: pose(fusiontest.Errors{CameraTailDOF: 3, CameraTailCore: true})},
+		{name: "student-t-3", sc: pose(fusiontest.Errors{CameraTailDOF: 3, CameraTailCore: true}), gated: true},
 		{name: "contaminated-5pct-5x", sc: pose(fusiontest.Errors{CameraContamination: 0.05}), gated: true},
 		{name: "odometry-scale", sc: landmarks(fusiontest.DriveWheelTurn, fusiontest.Errors{ForwardScale: 0.06, TurnScale: 0.10})},
 		{name: "commanded-per-second", sc: landmarks(fusiontest.Commanded, fusiontest.Errors{})},
@@ -76,10 +76,13 @@ func honestyNEES(t *testing.T, c honestyCase, config func(*fusiontest.Sim) fusio
 // TestHonestWhiteModelFails: with each error process on, the filter with
 // white-noise assumptions fails the NEES test visibly: its mean NEES lies
 // outside the band and fewer than half of the checkpoints lie inside.
-// This shows that the test can fail. For contamination at five sigma the
-// 99% gate refuses nearly every contaminated fix, so the NEES test passes;
-// the process shows as a gated fraction more than three times the gate's
-// 1% (the overconfident sensor of issue 9, item 9).
+// This shows that the test can fail. For contamination at five sigma, and
+// for Student-t errors of 3 degrees of freedom (a whole fix spoilt at a
+// time, the simulator's multivariate Student-t), the 99% gate refuses most
+// large errors, so the NEES test passes or nearly does (mean 3.83 for the
+// Student-t); the process shows as a gated fraction more than three times
+// the gate's 1% (5.2% and 14.0%: the overconfident sensor of issue 9,
+// item 9).
 func TestHonestWhiteModelFails(t *testing.T) {
 	for _, c := range honestyCases() {
 		t.Run(c.name, func(t *testing.T) {
@@ -98,11 +101,15 @@ func TestHonestWhiteModelFails(t *testing.T) {
 }
 
 // TestHonestTrueModel: with each error process on, the filter configured
-// with the true error model keeps the Monte Carlo NEES inside the band
-// (85% of checkpoints, allowing for their correlation within a run, and
-// the mean).
+// with the true error model (fusiontest's TrueModelConfig) keeps the Monte
+// Carlo NEES inside the band (85% of checkpoints, allowing for their
+// correlation within a run, and the mean). Measured with 30 runs of 60 s,
+// band [2.19, 3.94]: mean 3.21 and 90% inside (Gauss-Markov pose fixes),
+// 3.01 and 94% (Gauss-Markov landmarks), 3.13 and 96% (Student-t), 2.98
+// and 99% (contamination, Huber), 2.84 and 92% (scale states), 3.28 and
+// 88% (noise per second), 3.08 and 92% (commanded with scale).
 func TestHonestTrueModel(t *testing.T) {
-	t.Skip("needs the core helper's sensor error models (fusiontest.Scenario.TrueModelConfig): TODO lead")
+
 	for _, c := range honestyCases() {
 		t.Run(c.name, func(t *testing.T) {
 			res := honestyNEES(t, c, (*fusiontest.Sim).TrueModelConfig)

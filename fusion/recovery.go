@@ -47,12 +47,14 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		return
 	}
 	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady}
+	meas := e.meas
+	r.foldBias(&meas)
 	if landmark {
-		c.meas = e.meas
+		c.meas = meas
 	} else {
-		sensor := estimator.Pose{X: e.meas.Z[0], Y: e.meas.Z[1], Heading: e.meas.Z[2]}
-		c.implied = estimator.Detach(sensor, e.meas.Mount)
-		c.cov = detachCov(c.implied, e.meas.Mount, &e.meas.R)
+		sensor := estimator.Pose{X: meas.Z[0], Y: meas.Z[1], Heading: meas.Z[2]}
+		c.implied = estimator.Detach(sensor, meas.Mount)
+		c.cov = detachCov(c.implied, meas.Mount, &meas.R)
 	}
 	if !r.addCandidate(c) {
 		return
@@ -84,6 +86,32 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	r.stats.recoveries++
 	res.Events = append(res.Events, Event{Kind: EventMoveRecovered, StampNs: newest.stamp, Value: jump,
 		Detail: fmt.Sprintf("%s; pose re-initialised %.2f m and %.2f rad from the estimate", detail, jump, turn)})
+}
+
+// foldBias makes m a measurement of the pose alone: a correlated sensor's
+// bias (DEVELOPERS.md, "Design: Sensors") leaves h(x) and its mean leaves
+// z, and its covariance (the bias block of P, the stationary C of a
+// consider state) joins the white R, since a candidate's error is the sum
+// of both. Without bias states m is unchanged.
+func (r *Robot) foldBias(m *estimator.Measurement) {
+	d := m.Kind.Dim()
+	st := r.f.State()
+	for i := 0; i < d; i++ {
+		bi := m.Bias[i]
+		if bi == 0 {
+			continue
+		}
+		m.Z[i] -= st.MeanAt(bi)
+		if m.Kind.IsAngle(i) {
+			m.Z[i] = estimator.Wrap(m.Z[i])
+		}
+		for j := 0; j < d; j++ {
+			if bj := m.Bias[j]; bj > 0 {
+				m.R[i*3+j] += st.At(bi, bj)
+			}
+		}
+	}
+	m.Bias = [3]int{}
 }
 
 // addCandidate carries the candidates and c to the newest stamp among them
@@ -143,35 +171,121 @@ func (r *Robot) carry(c *candidate, to int64) bool {
 // noise propagated through the arc model (DEVELOPERS.md, "Design: Motion
 // prediction"): C' = Fx C Fx^T + Fu Cu Fu^T, plus the heading random walk.
 // Being a motion in the body frame, it does not depend on the field frame.
+// With calibration states each step is the calibrated one, (s_f a, s_f b,
+// s_t dth + b_r dt) at the calibration's prior (priorCalibration), and its
+// uncertainty joins the covariance through the motion's
+// Jacobian in it (J C_cal J^T, accumulated as dRel' = Fx dRel + Fu dStep).
 // ok is false when ta is before the window.
 func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov [9]float64, ok bool) {
 	if ta < r.baseT || tb > r.newest || tb < ta {
 		return rel, cov, false
 	}
 	live := r.live()
-	for i := r.locate(ta); i < len(live) && live[i].t0 < tb; i++ {
+	first := r.locate(ta)
+	cal := r.priorCalibration()
+	// jc is d(rel)/d(s_f, s_t, b_r), 3x3 row-major.
+	var jc [9]float64
+	for i := first; i < len(live) && live[i].t0 < tb; i++ {
 		e := &live[i]
 		lo, hi := max(e.t0, ta), min(e.t1, tb)
 		if e.kind != entOdo || hi <= lo {
 			continue
 		}
 		f := float64(hi-lo) / float64(e.t1-e.t0)
-		step := e.step.Scale(f)
+		raw := e.step.Scale(f)
+		dtS := float64(hi-lo) * 1e-9
+		step := cal.step(raw, dtS)
 		var fx, fu, cu, a, b [9]float64
 		for k := range cu {
 			cu[k] = e.cov[k] * f
 		}
+		cal.scaleCov(&cu)
 		estimator.ArcJacobians(rel, step, &fx, &fu)
 		estimator.Sandwich(&a, &fx, &cov)
 		estimator.Sandwich(&b, &fu, &cu)
 		for k := range cov {
 			cov[k] = a[k] + b[k]
 		}
+		if cal.on {
+			// d(step)/d(s_f, s_t, b_r) = [a 0 0; b 0 0; 0 dth dt].
+			ds := [9]float64{raw.ForwardM, 0, 0, raw.LeftM, 0, 0, 0, raw.TurnRad, dtS}
+			var x, y [9]float64
+			mul3(&x, &fx, &jc)
+			mul3(&y, &fu, &ds)
+			for k := range jc {
+				jc[k] = x[k] + y[k]
+			}
+		}
 		// The heading random walk over the stretch (Design: Process noise).
-		cov[8] += r.cfg.Noise.HeadingVarRad2PerS * float64(hi-lo) * 1e-9
+		cov[8] += r.cfg.Noise.HeadingVarRad2PerS * dtS
 		rel = estimator.Advance(rel, step)
 	}
+	if cal.on {
+		var c [9]float64
+		estimator.Sandwich(&c, &jc, &cal.cov)
+		for k := range cov {
+			cov[k] += c[k]
+		}
+	}
 	return rel, cov, true
+}
+
+// calibration is the odometry calibration of the estimate at one point of
+// the window: the scales s_f, s_t and the heading-rate bias b_r (1, 1 and 0
+// where the layout lacks them), with their covariance cov over (s_f, s_t,
+// b_r).
+type calibration struct {
+	on         bool
+	sf, st, br float64
+	cov        [9]float64
+}
+
+// priorCalibration returns the configured prior of the odometry
+// calibration (DEVELOPERS.md, "Design: State"): scales 1 and rate bias 0,
+// with the prior variances. Recovery and the slip rule judge the window's
+// odometry with it rather than with the estimate: they decide at a
+// sample's arrival, and a decision that read the estimate would depend on
+// which fixes had arrived by then, so that late inputs would no longer
+// equal stamp order (TestLateEqualsStampOrder). The prior covers the
+// calibration error the estimate would have corrected, a little
+// conservatively.
+func (r *Robot) priorCalibration() calibration {
+	c := calibration{sf: 1, st: 1}
+	k := &r.cfg.Calibration
+	if r.layout.ForwardScale() >= 0 {
+		c.cov[0], c.cov[4] = k.ScaleStd*k.ScaleStd, k.ScaleStd*k.ScaleStd
+		c.on = true
+	}
+	if r.layout.RateBias() >= 0 {
+		c.cov[8] = k.RateBiasStdRadPerS * k.RateBiasStdRadPerS
+		c.on = true
+	}
+	return c
+}
+
+// step returns the calibrated step of a reported step over dtS seconds.
+func (c *calibration) step(u estimator.Step, dtS float64) estimator.Step {
+	return estimator.Step{ForwardM: c.sf * u.ForwardM, LeftM: c.sf * u.LeftM, TurnRad: c.st*u.TurnRad + c.br*dtS}
+}
+
+// scaleCov turns a reported step's covariance into the calibrated step's:
+// diag(s_f, s_f, s_t) cu diag(s_f, s_f, s_t).
+func (c *calibration) scaleCov(cu *[9]float64) {
+	s := [3]float64{c.sf, c.sf, c.st}
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			cu[i*3+j] *= s[i] * s[j]
+		}
+	}
+}
+
+// mul3 writes a b into dst (3x3 row-major).
+func mul3(dst, a, b *[9]float64) {
+	for i := 0; i < 3; i++ {
+		for j := 0; j < 3; j++ {
+			dst[i*3+j] = a[i*3]*b[j] + a[i*3+1]*b[3+j] + a[i*3+2]*b[6+j]
+		}
+	}
 }
 
 // composeCov returns a (+) b and its covariance Ja ca Ja^T + Jb cb Jb^T for

@@ -26,8 +26,9 @@ const (
 	RobustNone RobustLoss = iota + 1
 	// RobustHuber: Huber's weight min(1, k / sqrt(NIS)) (Huber 1964).
 	RobustHuber
-	// RobustStudentT: the Student-t weight (nu + d) / (nu + NIS) (Roth,
-	// Ozkan and Gustafsson 2013).
+	// RobustStudentT: the Student-t weight (nu + d - 2) / (nu + NIS), the
+	// error's expected covariance given its NIS (after Roth, Ozkan and
+	// Gustafsson 2013).
 	RobustStudentT
 )
 

@@ -90,14 +90,14 @@ func (r *Robot) checkTurn(res *Result, at int) {
 	case b.stamp-a.stamp < turnMinNs:
 		return
 	}
-	w, vw, first := r.wheelTurn(a.stamp, b.stamp)
+	w, vw, vc, first := r.wheelTurn(a.stamp, b.stamp)
 	if first < 0 || !(vw > 0) {
 		sl.anchor = b
 		return
 	}
 	dt := float64(b.stamp-a.stamp) * 1e-9
 	delta := estimator.Wrap(b.heading-a.heading) - w
-	vi := a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt
+	vi := a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + vc
 	ns := delta * delta / (vw + vi)
 	if r.turnGate == 0 {
 		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)
@@ -159,11 +159,16 @@ func (r *Robot) slipInflate(e *entry) {
 }
 
 // wheelTurn returns the window's odometry turn over [ta, tb] and its
-// variance (the steps' own, by time fraction, plus the heading random
-// walk), and the index of the first odometry entry in it (-1: none).
-func (r *Robot) wheelTurn(ta, tb int64) (turn, v float64, first int) {
+// variance v (the steps' own, by time fraction, plus the heading random
+// walk), and the index of the first odometry entry in it (-1: none). With
+// calibration states the turn is the calibrated one, s_t dth + b_r dt, at
+// the calibration's prior (priorCalibration: the reported turn), and vc is
+// the variance the calibration's uncertainty adds, [dth dt] C [dth dt]^T,
+// kept apart from the steps' so that a slip's inflation leaves it alone.
+func (r *Robot) wheelTurn(ta, tb int64) (turn, v, vc float64, first int) {
 	first = -1
 	live := r.live()
+	var raw, dtS float64
 	for i := r.locate(ta); i < len(live) && live[i].t0 < tb; i++ {
 		e := &live[i]
 		lo, hi := max(e.t0, ta), min(e.t1, tb)
@@ -174,9 +179,19 @@ func (r *Robot) wheelTurn(ta, tb int64) (turn, v float64, first int) {
 			first = i
 		}
 		f := float64(hi-lo) / float64(e.t1-e.t0)
-		turn += e.step.TurnRad * f
+		raw += e.step.TurnRad * f
+		dtS += float64(hi-lo) * 1e-9
 		v += e.cov[8] * f
 	}
+	turn = raw
+	if first >= 0 {
+		if cal := r.priorCalibration(); cal.on {
+			turn = cal.st*raw + cal.br*dtS
+			v *= cal.st * cal.st
+			// [dth dt] C(s_t, b_r) [dth dt]^T.
+			vc = raw*raw*cal.cov[4] + 2*raw*dtS*cal.cov[5] + dtS*dtS*cal.cov[8]
+		}
+	}
 	v += r.cfg.Noise.HeadingVarRad2PerS * float64(tb-ta) * 1e-9
-	return turn, v, first
+	return turn, v, vc, first
 }

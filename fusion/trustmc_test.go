@@ -26,6 +26,9 @@ type trustCase struct {
 	// tail adds 5 sigma to that fraction of camera fixes (a contamination
 	// of the kind the issue measured, 1 to 11% beyond 3 sigma).
 	tail float64
+	// trueModel configures the robot with the scenario's true error model
+	// (fusiontest's TrueModelConfig) instead of Config.
+	trueModel bool
 }
 
 // trustTally is what the harness counted over a run.
@@ -78,7 +81,11 @@ func trustViolations(t *testing.T, c trustCase) trustTally {
 	if c.far {
 		f = frame{X: 100, Y: -60, Heading: 2.1}
 	}
-	r, err := fusion.New(f.config(s.Config()))
+	cfg := s.Config()
+	if c.trueModel {
+		cfg = s.TrueModelConfig()
+	}
+	r, err := fusion.New(f.config(cfg))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -210,6 +217,19 @@ func trustCases(minutes float64, seed uint64) []trustCase {
 		{name: "gyro-bump-far", sc: fusiontest.Scenario{Layout: fusiontest.GyroTurn, Bump: &fusiontest.Bump{AtS: bumpAt(0.6), DXM: 0.5, DYM: 0.5}}, far: true},
 		{name: "free-wheel-imu-small-bump", sc: fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Bump: &fusiontest.Bump{AtS: bumpAt(0.5), DXM: 0.15, DYM: 0.05}}},
 		{name: "drive-markers-bump", sc: fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Bump: &fusiontest.Bump{AtS: bumpAt(0.5), DXM: 0.4, DYM: -0.3, DRad: 0.3}}},
+		// The real error processes of issue 9 under their true model. Not
+		// yet here, for they fail the floor of 0.1% (6 simulated minutes
+		// each): Student-t errors of 3 degrees of freedom on pose fixes at 10
+		// Hz, 0.243% trusted outside, one excursion 0.295 s; the Commanded
+		// layout with scale errors and landmarks, 0.110%; the drive layout
+		// with scale errors, landmarks and a bump, 0.21% (4.4% of samples
+		// outside the 99.9% region); every process at once far from the
+		// origin, 12.6% outside (0.051% trusted). Those with scale errors
+		// share one cause, the turn scale's estimate drifting on straights
+		// (DEVELOPERS.md, "Design: State").
+		{name: "free-wheel-gauss-markov", sc: fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, CameraHz: 10 / 3.0, Errors: fusiontest.Errors{CameraTauS: 2.85}}, trueModel: true},
+		{name: "drive-landmarks-gauss-markov-far", sc: fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, CameraHz: 10 / 3.0, Errors: fusiontest.Errors{CameraTauS: 2, CameraCorrelated: 0.8}}, trueModel: true, far: true},
+		{name: "free-wheel-contaminated", sc: fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Errors: fusiontest.Errors{CameraContamination: 0.05}}, trueModel: true},
 	}
 }
 
@@ -228,7 +248,7 @@ func trustCases(minutes float64, seed uint64) []trustCase {
 //     centimetre lasts as long as the error's correlation, a second or so).
 //     Such excursions longer than 0.2 s are counted and logged, not failed.
 //
-// The short version runs 66 simulated minutes; RECKON_LONG=1 runs 1,100.
+// The short version runs 84 simulated minutes; RECKON_LONG=1 runs 1,400.
 func TestTrustProperty(t *testing.T) {
 	minutes, runs := 1.0, 6
 	if os.Getenv("RECKON_LONG") == "1" {

@@ -86,7 +86,8 @@ type errorState struct {
 	gm           [3]float64 // Gauss-Markov parts in units of each component's standard deviation
 	gmT          int64      // stamp of gm
 	gmReady      bool
-	contaminated bool // the current fix's white part is scaled up
+	contaminated bool    // the current fix's white part is scaled up
+	tScale       float64 // the current fix's Student-t scale
 }
 
 func newErrorState(seed uint64) errorState {
@@ -118,22 +119,30 @@ func (es *errorState) startFix(s *Scenario, t int64) {
 		es.gmT = t
 	}
 	es.contaminated = s.CameraContamination > 0 && es.rng.Float64() < s.CameraContamination
+	if s.CameraTailDOF > 0 {
+		es.tScale = es.studentTScale(s.CameraTailDOF, s.CameraTailCore)
+	}
 }
 
-// studentT draws a Student-t variate with nu degrees of freedom, scaled to
-// unit variance unless core: z / sqrt(chi2_nu / nu) has variance
-// nu/(nu-2) (common practice).
-func (es *errorState) studentT(nu int, core bool) float64 {
+// studentTScale draws the scale of one fix's Student-t errors with nu
+// degrees of freedom: 1/sqrt(chi2_nu / nu), times sqrt((nu-2)/nu) for unit
+// variance unless core. A normal variate times it is a Student-t variate of
+// variance nu/(nu-2) (common practice). One scale serves every component of
+// a fix, so that the fix's error is a multivariate Student-t, each
+// component a Student-t: a bad detection spoils the whole fix, and this is
+// the model of the filter's Student-t update (DEVELOPERS.md, "Design:
+// Sensors"), whose weight scales the fix's whole covariance.
+func (es *errorState) studentTScale(nu int, core bool) float64 {
 	var chi2 float64
 	for i := 0; i < nu; i++ {
 		g := es.rng.NormFloat64()
 		chi2 += g * g
 	}
-	t := es.rng.NormFloat64() / math.Sqrt(chi2/float64(nu))
+	sc := 1 / math.Sqrt(chi2/float64(nu))
 	if core {
-		return t
+		return sc
 	}
-	return t * math.Sqrt(float64(nu-2)/float64(nu))
+	return sc * math.Sqrt(float64(nu-2)/float64(nu))
 }
 
 // camNoise returns the camera error of component k (after startFix), whose
@@ -146,10 +155,9 @@ func (sm *Sim) camNoise(k int, std float64) float64 {
 	}
 	es := &sm.errs
 	var white float64
+	white = es.rng.NormFloat64()
 	if s.CameraTailDOF > 0 {
-		white = es.studentT(s.CameraTailDOF, s.CameraTailCore)
-	} else {
-		white = es.rng.NormFloat64()
+		white *= es.tScale
 	}
 	if es.contaminated {
 		white *= s.CameraContaminationScale

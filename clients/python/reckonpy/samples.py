@@ -47,31 +47,39 @@ def covariance(cov, dimension: int) -> robot_pb2.Covariance:
     return robot_pb2.Covariance(dimension=dimension, values=values)
 
 
-def _mount(mount: Sequence[float]) -> robot_pb2.FloorPose:
+def _mount(mount: Optional[Sequence[float]]) -> Optional[robot_pb2.FloorPose]:
+    if mount is None:
+        return None
     mx, my, mh = mount
     return robot_pb2.FloorPose(x_m=mx, y_m=my, heading_rad=mh)
 
 
 def pose_fix(stamp_ns: int, sensor_id: str, x_m: float, y_m: float, heading_rad: float,
-             cov, mount: Sequence[float] = NO_MOUNT) -> samples_pb2.Sample:
+             cov, mount: Optional[Sequence[float]] = None) -> samples_pb2.Sample:
     """pose_fix returns a Sample carrying a pose fix: the sensor's measured
     field pose (x_m, y_m, heading_rad) at stamp_ns (capture time on the
-    robot's time base), its 3x3 covariance cov (m^2, m*rad, rad^2), and the
-    sensor's mount (x_m, y_m, heading_rad) in the body frame."""
-    return samples_pb2.Sample(fix=samples_pb2.Fix(
-        stamp_ns=int(stamp_ns), sensor_id=sensor_id, mount=_mount(mount),
+    robot's time base), its 3x3 covariance cov (m^2, m*rad, rad^2), and,
+    if given, the sensor's mount (x_m, y_m, heading_rad) in the body frame,
+    which overrides the mount in the robot's sensors configuration (None:
+    the configured mount)."""
+    fix = samples_pb2.Fix(
+        stamp_ns=int(stamp_ns), sensor_id=sensor_id,
         pose=samples_pb2.PoseFix(x_m=x_m, y_m=y_m, heading_rad=heading_rad),
-        covariance=covariance(cov, 3)))
+        covariance=covariance(cov, 3))
+    if mount is not None:
+        fix.mount.CopyFrom(_mount(mount))
+    return samples_pb2.Sample(fix=fix)
 
 
 def landmark_fix(stamp_ns: int, sensor_id: str, landmark_id: str, range_m: Optional[float] = None,
                  bearing_rad: Optional[float] = None, cov=None,
-                 mount: Sequence[float] = NO_MOUNT) -> samples_pb2.Sample:
+                 mount: Optional[Sequence[float]] = None) -> samples_pb2.Sample:
     """landmark_fix returns a Sample carrying a range and/or bearing from
     the sensor to the mapped landmark landmark_id, at stamp_ns (capture
     time on the robot's time base). range_m is in metres; bearing_rad is
     from the sensor's +x, counter-clockwise. cov is 2x2 (range first) with
-    both, 1x1 with one. mount is the sensor's pose in the body frame."""
+    both, 1x1 with one. mount, if given, is the sensor's pose in the body
+    frame and overrides the configured one (None: the configured mount)."""
     if range_m is None and bearing_rad is None:
         raise ValueError("landmark_fix: give range_m, bearing_rad or both")
     if cov is None:
@@ -82,9 +90,10 @@ def landmark_fix(stamp_ns: int, sensor_id: str, landmark_id: str, range_m: Optio
     if bearing_rad is not None:
         lm.bearing_rad = bearing_rad
     n = (range_m is not None) + (bearing_rad is not None)
-    return samples_pb2.Sample(fix=samples_pb2.Fix(
-        stamp_ns=int(stamp_ns), sensor_id=sensor_id, mount=_mount(mount), landmark=lm,
-        covariance=covariance(cov, n)))
+    fix = samples_pb2.Fix(stamp_ns=int(stamp_ns), sensor_id=sensor_id, landmark=lm, covariance=covariance(cov, n))
+    if mount is not None:
+        fix.mount.CopyFrom(_mount(mount))
+    return samples_pb2.Sample(fix=fix)
 
 
 def compose(a: Pose2, b: Pose2) -> Pose2:
@@ -143,21 +152,22 @@ def optical_to_planar(rotation: Sequence[Sequence[float]], translation_m: Sequen
 
 
 def fix_from_camera(stamp_ns: int, sensor_id: str, marker_field: Pose2, marker_in_camera: Pose2,
-                    cov, mount: Sequence[float] = NO_MOUNT) -> samples_pb2.Sample:
+                    cov, mount: Optional[Sequence[float]] = None) -> samples_pb2.Sample:
     """fix_from_camera returns a pose fix of the camera from its detection
     of a mapped marker: marker_field is the marker's field pose (x_m, y_m,
     heading_rad), marker_in_camera its planar pose as the camera saw it
     (see camera_pose_from_marker, and optical_to_planar for a 3-D
     detection). stamp_ns is the capture time on the robot's time base; cov
     the 3x3 covariance of the camera's field pose (m^2, m*rad, rad^2);
-    mount the camera's pose in the body frame, which the service uses to
-    relate the camera's pose to the robot's."""
+    mount, if given, the camera's pose in the body frame, which the service
+    uses to relate the camera's pose to the robot's (None: the mount of the
+    robot's sensors configuration)."""
     x, y, h = camera_pose_from_marker(marker_field, marker_in_camera)
     return pose_fix(stamp_ns, sensor_id, x, y, h, cov, mount)
 
 
 def landmark_fix_from_camera(stamp_ns: int, sensor_id: str, landmark_id: str,
-                             marker_in_camera: Pose2, cov, mount: Sequence[float] = NO_MOUNT,
+                             marker_in_camera: Pose2, cov, mount: Optional[Sequence[float]] = None,
                              use_range: bool = True, use_bearing: bool = True) -> samples_pb2.Sample:
     """landmark_fix_from_camera returns a landmark fix from a camera's
     detection of a mapped landmark: the range (metres) and bearing

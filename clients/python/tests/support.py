@@ -152,6 +152,12 @@ def cart_config():
         "start_pose": {"x_m": 0, "y_m": 0, "heading_rad": 0},
         "start_covariance": {"dimension": 3, "values": [0.0025, 0, 0, 0, 0.0025, 0, 0, 0, 0.0012]},
         "landmarks": [{"id": "post-w0", "x_m": -1.2, "y_m": 0.0}, {"id": "post-e0", "x_m": 9.2, "y_m": 0.0}],
+        "sensors": [
+            {"id": "camera", "kind": "FIX_KIND_POSE", "mount": {"x_m": 0.15},
+             "covariance": {"dimension": 3, "values": [9.0e-4, 0, 0, 0, 9.0e-4, 0, 0, 0, 4.0e-4]}},
+            {"id": "post-camera", "kind": "FIX_KIND_LANDMARK", "mount": {"x_m": 0.15},
+             "covariance": {"dimension": 2, "values": [4.0e-4, 0, 0, 1.0e-4]}},
+        ],
     }, pb.robot_pb2.RobotConfig())
 
 

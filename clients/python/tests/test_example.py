@@ -41,7 +41,7 @@ class VisionFeedExampleTest(unittest.TestCase):
         self.assertEqual((too_old, invalid, held), (0, 0, 0))
         with support.reckonpy.connect(self.daemon.address) as client:
             stats = client.statistics("cart")
-        (camera,) = [s for s in stats.sensors if s.sensor_id == "front-camera"]
+        (camera,) = [s for s in stats.sensors if s.sensor_id == "camera"]
         self.assertEqual((camera.counts.applied, camera.counts.gated), (applied, gated))
 
     def test_help(self):

@@ -106,7 +106,7 @@ class BuilderTest(unittest.TestCase):
         for s in fixes:
             f = s.fix
             built = reckonpy.pose_fix(f.stamp_ns, f.sensor_id, f.pose.x_m, f.pose.y_m, f.pose.heading_rad,
-                                      list(f.covariance.values), mount=(f.mount.x_m, f.mount.y_m, f.mount.heading_rad))
+                                      list(f.covariance.values), mount=(f.mount.x_m, f.mount.y_m, f.mount.heading_rad) if f.HasField("mount") else None)
             self.assertEqual(built, s)
 
     def test_covariance_shapes(self):

@@ -41,7 +41,7 @@ class GoOdometryPythonFixesTest(unittest.TestCase):
         for s in cls.fixes:
             f = s.fix
             fix = reckonpy.pose_fix(f.stamp_ns, f.sensor_id, f.pose.x_m, f.pose.y_m, f.pose.heading_rad,
-                                    list(f.covariance.values), mount=(f.mount.x_m, f.mount.y_m, f.mount.heading_rad))
+                                    list(f.covariance.values), mount=(f.mount.x_m, f.mount.y_m, f.mount.heading_rad) if f.HasField("mount") else None)
             cls.sent[session.send(fix)] = f.stamp_ns
         # Every fix answered (applied, gated or held) before the rest of the
         # odometry goes in.

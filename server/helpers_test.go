@@ -104,8 +104,9 @@ func dial(t testing.TB, addr string) pb.FusionServiceClient {
 // goroutines, one each.
 type feed struct {
 	pb.FusionService_IngestClient
-	robot string
-	sent  atomic.Uint64 // client sequence of the last sample sent
+	robot   string
+	session string        // IngestRequest.session_id ("": none)
+	sent    atomic.Uint64 // client sequence of the last sample sent
 	// resolved are the resolutions received in resolution-only responses
 	// by apply and close, in order.
 	resolved []*pb.Resolution
@@ -121,7 +122,7 @@ func openFeed(ctx context.Context, api pb.FusionServiceClient, robot string) (*f
 }
 
 func (f *feed) send(sample *pb.Sample) error {
-	return f.Send(&pb.IngestRequest{Robot: f.robot, ClientSequence: f.sent.Add(1), Sample: sample})
+	return f.Send(&pb.IngestRequest{Robot: f.robot, ClientSequence: f.sent.Add(1), Sample: sample, SessionId: f.session})
 }
 
 // apply sends sample and returns its verdict, which must answer it;

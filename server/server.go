@@ -500,7 +500,12 @@ func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender, ob *ou
 			}
 			return err
 		}
-		resps := append(s.ingestStream(batch, ob), ob.drain()...)
+		resps := s.ingestStream(batch, ob)
+		if ctx.Err() == nil {
+			// A stream that is gone leaves them pending, to be kept
+			// for its session.
+			resps = append(resps, ob.drain()...)
+		}
 		if len(resps) == 0 {
 			continue
 		}

@@ -91,12 +91,13 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 		s.opt.Metrics.differing(rp.differing)
 		s.log.Warn("journal written by another build: outputs differ on replay; kept as recorded", "robot", name, "differing", rp.differing, "build", rp.build, "this_build", s.opt.Build)
 	}
+	r.mu.Lock()
 	if rp.build != s.opt.Build {
 		// The outputs from here on are this build's: a snapshot says so.
-		r.mu.Lock()
 		s.snapshot(r)
-		r.mu.Unlock()
 	}
+	s.observeRobot(r, nil, -1)
+	r.mu.Unlock()
 	return r, rep
 }
 

@@ -115,6 +115,8 @@ type robot struct {
 	// (resolutions.go).
 	holders map[uint64]holder
 	parked  parkedResolutions
+	// gauges are the robot's metric series (nil until first observed).
+	gauges *robotGauges
 
 	hub hub
 }
@@ -295,6 +297,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	}
 	s.robots[name] = r
 	s.opt.Metrics.robots(len(s.robots))
+	r.mu.Lock()
+	s.observeRobot(r, nil, -1)
+	r.mu.Unlock()
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
@@ -375,7 +380,9 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 		}
 		r.journal = nil
 	}
+	r.gauges = nil
 	r.mu.Unlock()
+	s.opt.Metrics.forget(r.name)
 	r.hub.close()
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "journal: %v", err)
@@ -590,6 +597,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	r.mu.Lock()
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
+	lag := time.Since(start)
 	if len(tk.entries) > 0 && r.fr != nil {
 		pose = poseNow(r)
 	}
@@ -600,6 +608,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	if cause == nil && r.journal != nil && r.state == pb.RobotState_ROBOT_STATE_SERVING && r.sinceSnapshot >= s.opt.SnapshotEvery {
 		// After route: the snapshot's sessions remember the verdicts as sent.
 		s.snapshot(r)
+	}
+	if pose != nil {
+		s.observeRobot(r, pose, lag)
 	}
 	r.mu.Unlock()
 	if pose == nil {

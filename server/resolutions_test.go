@@ -2,6 +2,7 @@ package server
 
 import (
 	"context"
+	"fmt"
 	"testing"
 	"time"
 
@@ -255,5 +256,33 @@ func TestResolutionsKeptForSession(t *testing.T) {
 	}
 	if len(odo.resolved) != 0 {
 		t.Errorf("the odometry stream received %d resolutions", len(odo.resolved))
+	}
+}
+
+// TestParkedBounds: a session keeps its newest parkedPerSession
+// resolutions, and the robot its parkedSessions most recently used
+// sessions.
+func TestParkedBounds(t *testing.T) {
+	var p parkedResolutions
+	for seq := uint64(1); seq <= parkedPerSession+5; seq++ {
+		p.add("a", &pb.Resolution{Sequence: seq})
+	}
+	for k := 0; k < parkedSessions-1; k++ {
+		p.add(fmt.Sprintf("s%d", k), &pb.Resolution{Sequence: 1})
+	}
+	p.add("a", &pb.Resolution{Sequence: parkedPerSession + 6}) // a is now the most recently used
+	p.add("new", &pb.Resolution{Sequence: 1})                  // evicts s0
+	if len(p.byID) != parkedSessions {
+		t.Fatalf("%d sessions kept, want %d", len(p.byID), parkedSessions)
+	}
+	if p.take("s0") != nil || p.take("s1") == nil {
+		t.Errorf("the session used longest ago was not the one forgotten")
+	}
+	got := p.take("a")
+	if len(got) != parkedPerSession || got[0].GetSequence() != 7 || got[len(got)-1].GetSequence() != parkedPerSession+6 {
+		t.Errorf("kept %d resolutions, %d to %d; want the newest %d", len(got), got[0].GetSequence(), got[len(got)-1].GetSequence(), parkedPerSession)
+	}
+	if p.take("a") != nil {
+		t.Error("taken twice")
 	}
 }

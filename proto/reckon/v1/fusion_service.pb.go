@@ -883,9 +883,10 @@ type IngestResponse struct {
 	// sample's own response and may hold several resolutions. While the
 	// sending stream is gone, a held sample's resolution is kept for its
 	// session_id (the newest 4096 of each of a robot's 64 most recently used
-	// sessions) and sent at the start of the next stream that feeds the
-	// robot with that session_id; a sample sent without a session_id loses
-	// it with its stream. A retried sample's response carries none. The
+	// sessions) and sent on the next stream that feeds the robot with that
+	// session_id, after the responses to its first requests (any request for
+	// the robot, even a refused one, collects them); a sample sent without a
+	// session_id loses it with its stream. A retried sample's response carries none. The
 	// journal records, in the deciding sample's response, every resolution
 	// it caused, without client_sequence.
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`

@@ -886,9 +886,10 @@ type IngestResponse struct {
 	// sessions) and sent on the next stream that feeds the robot with that
 	// session_id, after the responses to its first requests (any request for
 	// the robot, even a refused one, collects them); a sample sent without a
-	// session_id loses it with its stream. A retried sample's response carries none. The
-	// journal records, in the deciding sample's response, every resolution
-	// it caused, without client_sequence.
+	// session_id loses it with its stream. A retried sample is answered with
+	// its response as first sent. The journal records, in the deciding
+	// sample's response, every resolution it caused, without
+	// client_sequence.
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`
 	// Notable moments this sample caused.
 	Events []*FusionEvent `protobuf:"bytes,8,rep,name=events,proto3" json:"events,omitempty"`

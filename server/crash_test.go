@@ -105,8 +105,10 @@ func TestCrashSafety(t *testing.T) {
 	}
 	// Every acknowledged verdict is in the journal, as sent.
 	journaled := map[uint64]*pb.IngestResponse{}
+	clientSeq := map[uint64]uint64{}
 	_, err = journal.Read(dir, "cart", journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		journaled[in.GetSequence()] = out.GetResponse()
+		clientSeq[in.GetSequence()] = in.GetClientSequence()
 		return nil
 	}})
 	if err != nil {
@@ -114,7 +116,7 @@ func TestCrashSafety(t *testing.T) {
 	}
 	var maxAck uint64
 	for seq, resp := range acked {
-		if !proto.Equal(journaled[seq], resp) {
+		if !proto.Equal(journaled[seq], journaledForm(t, resp, clientSeq)) {
 			t.Fatalf("acknowledged sample %d is not in the journal as sent", seq)
 		}
 		maxAck = max(maxAck, seq)

@@ -13,6 +13,7 @@ import (
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
+	"google.golang.org/protobuf/proto"
 
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
@@ -103,8 +104,12 @@ func dial(t testing.TB, addr string) pb.FusionServiceClient {
 // goroutines, one each.
 type feed struct {
 	pb.FusionService_IngestClient
-	robot string
-	sent  atomic.Uint64 // client sequence of the last sample sent
+	robot   string
+	session string        // IngestRequest.session_id ("": none)
+	sent    atomic.Uint64 // client sequence of the last sample sent
+	// resolved are the resolutions received in resolution-only responses
+	// by apply and close, in order.
+	resolved []*pb.Resolution
 }
 
 // openFeed opens an ingest stream for robot ("robots/{id}").
@@ -117,15 +122,20 @@ func openFeed(ctx context.Context, api pb.FusionServiceClient, robot string) (*f
 }
 
 func (f *feed) send(sample *pb.Sample) error {
-	return f.Send(&pb.IngestRequest{Robot: f.robot, ClientSequence: f.sent.Add(1), Sample: sample})
+	return f.Send(&pb.IngestRequest{Robot: f.robot, ClientSequence: f.sent.Add(1), Sample: sample, SessionId: f.session})
 }
 
-// apply sends sample and returns its verdict, which must answer it.
+// apply sends sample and returns its verdict, which must answer it;
+// resolution-only responses before it go to f.resolved.
 func (f *feed) apply(sample *pb.Sample) (*pb.IngestResponse, error) {
 	if err := f.send(sample); err != nil {
 		return nil, err
 	}
 	resp, err := f.Recv()
+	for err == nil && resolutionOnly(resp) {
+		f.resolved = append(f.resolved, resp.GetResolved()...)
+		resp, err = f.Recv()
+	}
 	if err != nil {
 		return nil, err
 	}
@@ -141,12 +151,42 @@ func (f *feed) close() error {
 		return err
 	}
 	for {
-		if _, err := f.Recv(); errors.Is(err, io.EOF) {
+		resp, err := f.Recv()
+		if errors.Is(err, io.EOF) {
 			return nil
 		} else if err != nil {
 			return err
 		}
+		if resolutionOnly(resp) {
+			f.resolved = append(f.resolved, resp.GetResolved()...)
+		}
 	}
+}
+
+// resolutionOnly tells whether a response carries only resolutions of
+// held inputs sent before (IngestResponse.resolved).
+func resolutionOnly(r *pb.IngestResponse) bool {
+	return r.GetClientSequence() == 0 && r.GetSequence() == 0 && r.GetVerdict() == pb.Verdict_VERDICT_UNSPECIFIED && len(r.GetResolved()) > 0
+}
+
+// journaledForm returns a response as sent, less the client sequences of
+// its resolutions, which the journal does not keep: the form the journal
+// records when the resolutions' inputs came on the same stream. It checks
+// each client sequence against clientSeq (robot sequence -> client
+// sequence of the held input).
+func journaledForm(t testing.TB, sent *pb.IngestResponse, clientSeq map[uint64]uint64) *pb.IngestResponse {
+	t.Helper()
+	if len(sent.GetResolved()) == 0 {
+		return sent
+	}
+	out := proto.CloneOf(sent)
+	for _, r := range out.GetResolved() {
+		if want := clientSeq[r.GetSequence()]; r.GetClientSequence() != want {
+			t.Fatalf("resolution of input %d carries client sequence %d, want %d", r.GetSequence(), r.GetClientSequence(), want)
+		}
+		r.ClientSequence = 0
+	}
+	return out
 }
 
 // watch calls seen with every pose watched on robot until the stream ends,

@@ -61,8 +61,10 @@ func (b *inbox) end(err error) {
 
 // take waits for requests and returns every one waiting, in arrival order;
 // once they are all taken after the end, it returns the end's error. prev,
-// the batch take returned last, is reused: the caller is done with it.
-func (b *inbox) take(ctx context.Context, prev []*arrivedRequest) ([]*arrivedRequest, error) {
+// the batch take returned last, is reused: the caller is done with it. A
+// signal on wake (nil: none) returns an empty batch, so that the caller
+// can send what else it has.
+func (b *inbox) take(ctx context.Context, prev []*arrivedRequest, wake <-chan struct{}) ([]*arrivedRequest, error) {
 	clear(prev)
 	for {
 		b.mu.Lock()
@@ -80,6 +82,8 @@ func (b *inbox) take(ctx context.Context, prev []*arrivedRequest) ([]*arrivedReq
 		b.mu.Unlock()
 		select {
 		case <-b.ready:
+		case <-wake:
+			return prev[:0], nil
 		case <-ctx.Done():
 			return nil, ctx.Err()
 		}

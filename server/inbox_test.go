@@ -29,7 +29,7 @@ func TestInbox(t *testing.T) {
 	next := uint64(0)
 	for {
 		var err error
-		batch, err = b.take(ctx, batch)
+		batch, err = b.take(ctx, batch, nil)
 		if err != nil {
 			if err != io.EOF {
 				t.Fatal(err)
@@ -63,7 +63,7 @@ func TestInboxCancel(t *testing.T) {
 	}
 	putErr, takeErr := make(chan error), make(chan error)
 	go func() { putErr <- full.put(ctx, &arrivedRequest{}) }()
-	go func() { _, err := newInbox().take(ctx, nil); takeErr <- err }()
+	go func() { _, err := newInbox().take(ctx, nil, nil); takeErr <- err }()
 	time.Sleep(10 * time.Millisecond)
 	cancel()
 	for _, c := range []chan error{putErr, takeErr} {

@@ -26,6 +26,7 @@ type Metrics struct {
 	quarG    prometheus.Gauge
 	dups     prometheus.Counter
 	diverged prometheus.Counter
+	perRobot robotVecs
 }
 
 // NewMetrics makes the metrics.
@@ -46,8 +47,10 @@ func NewMetrics() *Metrics {
 	m.quarG = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_robots_quarantined", Help: "Robots quarantined because their journal could not be restored or written."})
 	m.dups = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_inputs_duplicate_total", Help: "Retried inputs answered with their original verdict, not applied again."})
 	m.diverged = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_restore_outputs_differing_total", Help: "Journaled outputs of an older build that differ on replay by this build."})
+	m.perRobot = newRobotVecs()
 	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
+	m.reg.MustRegister(m.perRobot.collectors()...)
 	return m
 }
 

@@ -84,19 +84,20 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 	if err != nil {
 		return quarantined(err)
 	}
-	r.fr, r.journal, r.sessions, r.sinceSnapshot = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.scan.Replayed
+	r.fr, r.journal, r.sessions, r.sinceSnapshot, r.holders = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.scan.Replayed, rp.holders
 	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
 	r.detail, rep.Detail = rp.note, rp.note
 	if rp.differing > 0 {
 		s.opt.Metrics.differing(rp.differing)
 		s.log.Warn("journal written by another build: outputs differ on replay; kept as recorded", "robot", name, "differing", rp.differing, "build", rp.build, "this_build", s.opt.Build)
 	}
+	r.mu.Lock()
 	if rp.build != s.opt.Build {
 		// The outputs from here on are this build's: a snapshot says so.
-		r.mu.Lock()
 		s.snapshot(r)
-		r.mu.Unlock()
 	}
+	s.observeRobot(r, nil, -1)
+	r.mu.Unlock()
 	return r, rep
 }
 
@@ -139,6 +140,11 @@ type replayedRobot struct {
 	differing int
 	first     uint64
 	note      string
+	// holders are the senders of the inputs held at the end of the
+	// replay that came with a session id (from the snapshot's sessions and
+	// the inputs after it): their resolutions go to the session's next
+	// stream.
+	holders map[uint64]holder
 }
 
 // replayRobot replays a robot's journal from its last snapshot (from the
@@ -179,14 +185,24 @@ type replaying struct {
 
 func (s *Server) replayFrom(id string, fromSnapshot bool) (*replaying, error) {
 	rp := &replaying{}
+	rp.holders = map[uint64]holder{}
 	opt := journal.ReplayOptions{FromSnapshot: fromSnapshot,
 		Snapshot: func(sn *pb.JournalSnapshot) error {
 			rp.snapUsed, rp.build = true, sn.GetBuild()
+			rp.holders = map[uint64]holder{}
+			for _, js := range sn.GetSessions() {
+				for _, v := range js.GetVerdicts() {
+					noteHeld(rp.holders, v, js.GetSessionId())
+				}
+			}
 			return rp.sessions.restore(sn.GetSessions())
 		},
 		Input: rp.input, FS: s.opt.FS}
 	fr, scan, err := journal.Replay(s.opt.JournalDir, id, opt)
 	rp.fr, rp.scan = fr, scan
+	if fr != nil {
+		rp.holders = pruneHolders(rp.holders, fr.Stats().Held)
+	}
 	return rp, err
 }
 
@@ -199,10 +215,13 @@ func (rp *replaying) input(x *journal.Replayed) error {
 		}
 		rp.differing++
 	}
-	if sid := x.Input.GetSessionId(); sid != "" {
-		return rp.sessions.addMessage(sid, x.Recorded.GetResponse())
+	sid := x.Input.GetSessionId()
+	resp := sentForm(x.Recorded.GetResponse(), sid, rp.holders)
+	if sid == "" {
+		return nil
 	}
-	return nil
+	noteHeld(rp.holders, resp, sid)
+	return rp.sessions.addMessage(sid, resp)
 }
 
 // sameOutput tells whether a replayed input gives the recorded verdict and,

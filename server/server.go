@@ -110,6 +110,13 @@ type robot struct {
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
 	sessions      sessions
+	// holders are the senders of the inputs held now, by sequence;
+	// parked, the resolutions kept for sessions whose stream is gone
+	// (resolutions.go).
+	holders map[uint64]holder
+	parked  parkedResolutions
+	// gauges are the robot's metric series (nil until first observed).
+	gauges *robotGauges
 
 	hub hub
 }
@@ -290,6 +297,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	}
 	s.robots[name] = r
 	s.opt.Metrics.robots(len(s.robots))
+	r.mu.Lock()
+	s.observeRobot(r, nil, -1)
+	r.mu.Unlock()
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
@@ -370,7 +380,9 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 		}
 		r.journal = nil
 	}
+	r.gauges = nil
 	r.mu.Unlock()
+	s.opt.Metrics.forget(r.name)
 	r.hub.close()
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "journal: %v", err)
@@ -412,7 +424,16 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	snd := &sender{stream: stream, out: make(chan []encodedResponse, 4)}
 	sendErr := make(chan error, 1)
 	go func() { sendErr <- snd.run() }()
-	err := s.takeBatches(ctx, in, snd)
+	ob := newOutbox()
+	err := s.takeBatches(ctx, in, snd, ob)
+	if err == nil {
+		// The client closed its side: what is pending still goes out.
+		if rest := ob.close(false); len(rest) > 0 {
+			err = snd.send(ctx, rest)
+		}
+	} else {
+		ob.close(true)
+	}
 	close(snd.out)
 	if serr := <-sendErr; err == nil {
 		err = serr
@@ -473,18 +494,29 @@ func (snd *sender) send(ctx context.Context, resps []encodedResponse) error {
 	}
 }
 
-// takeBatches takes requests as they come, in batches of what is waiting.
-func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender) error {
+// takeBatches takes requests as they come, in batches of what is waiting,
+// and sends after each batch the resolutions that other streams decided
+// for this one's held inputs (ob), waking for them too.
+func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender, ob *outbox) error {
 	var batch []*arrivedRequest
 	for {
 		var err error
-		if batch, err = in.take(ctx, batch); err != nil {
+		if batch, err = in.take(ctx, batch, ob.ready); err != nil {
 			if err == io.EOF {
 				return nil
 			}
 			return err
 		}
-		if err := snd.send(ctx, s.ingestBatch(batch)); err != nil {
+		resps := s.ingestStream(batch, ob)
+		if ctx.Err() == nil {
+			// A stream that is gone leaves them pending, to be kept
+			// for its session.
+			resps = append(resps, ob.drain()...)
+		}
+		if len(resps) == 0 {
+			continue
+		}
+		if err := snd.send(ctx, resps); err != nil {
 			return err
 		}
 	}
@@ -512,17 +544,23 @@ func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.In
 	return &s.ingestBatch([]*arrivedRequest{req})[0].IngestResponse
 }
 
-// ingestBatch applies samples in order: per run of samples for one robot,
-// the robot (which checks each input first) under its lock, one journal
-// write, then the watchers.
+// ingestBatch applies samples that came without a stream: the resolutions
+// their inputs decide all go to their senders' streams.
 func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
+	return s.ingestStream(batch, nil)
+}
+
+// ingestStream applies samples of one stream (ob) in order: per run of
+// samples for one robot, the robot (which checks each input first) under
+// its lock, one journal write, then the watchers.
+func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox) []encodedResponse {
 	out := make([]encodedResponse, len(batch))
 	for i := 0; i < len(batch); {
 		j := i + 1
 		for j < len(batch) && batch[j].GetRobot() == batch[i].GetRobot() {
 			j++
 		}
-		s.ingestRun(batch[i:j], out[i:j])
+		s.ingestRun(batch[i:j], out[i:j], ob)
 		i = j
 	}
 	return out
@@ -542,8 +580,9 @@ type taking struct {
 }
 
 // ingestRun takes a run of samples for one robot: under its lock, the
-// samples and one journal write; then the watchers and the metrics.
-func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
+// samples, one journal write and the routing of resolutions to their
+// senders; then the watchers and the metrics.
+func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *outbox) {
 	start := time.Now()
 	r, err := s.lookup(run[0].GetRobot())
 	if err != nil {
@@ -558,11 +597,20 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse) {
 	r.mu.Lock()
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
+	lag := time.Since(start)
 	if len(tk.entries) > 0 && r.fr != nil {
 		pose = poseNow(r)
 	}
 	if cause != nil {
 		s.unapply(r, run, out, &tk, written, cause)
+	}
+	r.route(run, out, tk.entries[:written], ob)
+	if cause == nil && r.journal != nil && r.state == pb.RobotState_ROBOT_STATE_SERVING && r.sinceSnapshot >= s.opt.SnapshotEvery {
+		// After route: the snapshot's sessions remember the verdicts as sent.
+		s.snapshot(r)
+	}
+	if pose != nil {
+		s.observeRobot(r, pose, lag)
 	}
 	r.mu.Unlock()
 	if pose == nil {
@@ -664,7 +712,7 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 }
 
 // answerAgain answers a retried request with the verdict sent the first
-// time.
+// time (its session remembers it as sent: route).
 func (s *Server) answerAgain(out *encodedResponse, wire []byte) {
 	out.IngestResponse.Reset()
 	if err := proto.Unmarshal(wire, &out.IngestResponse); err != nil {
@@ -706,8 +754,7 @@ func (r *robot) record(req *arrivedRequest, out *encodedResponse, enc []byte, ar
 	return enc, r.journal.AddSessionPair(in, out.wire, p)
 }
 
-// flushJournal writes what the run added to the journal, and a snapshot
-// when one is due. It returns how many of the run's entries are written and,
+// flushJournal writes what the run added to the journal. It returns how many of the run's entries are written and,
 // when some sample taken is not, why: the robot is then rebuilt from its
 // journal. A failure after the entries were written (rotation, sync)
 // changes no verdict. The caller holds r.mu.
@@ -732,9 +779,6 @@ func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
 	if written < len(tk.entries) || tk.lost >= 0 {
 		s.rebuild(r, cause)
 		return written, cause
-	}
-	if r.state == pb.RobotState_ROBOT_STATE_SERVING && r.sinceSnapshot >= s.opt.SnapshotEvery {
-		s.snapshot(r)
 	}
 	return written, nil
 }

@@ -78,10 +78,43 @@ func TestEndToEnd(t *testing.T) {
 	}
 	fr, _ := fusion.New(fcfg)
 	offline := map[uint64]*pb.FusedPose{0: convert.PoseToProto("robots/cart", fr.Pose(), 0)}
+	// Each held sample's final verdict goes to the stream that sent it: in
+	// the deciding sample's response on that stream, in a response of its
+	// own on the other (IngestResponse.resolved).
+	type sender struct {
+		f         *feed
+		clientSeq uint64
+	}
+	heldBy := map[uint64]sender{}
+	elsewhere := map[*feed][]*pb.Resolution{}
+	journaled := make([]*pb.IngestResponse, len(samp))
 	for i, s := range samp {
 		resp, _ := convert.Take(fr, s, responses[i].GetClientSequence())
-		if !proto.Equal(resp, responses[i]) {
-			t.Fatalf("sample %d: served verdict %v, offline %v", i, responses[i], resp)
+		journaled[i] = resp
+		f := odo
+		if ins[i].Fix != nil {
+			f = cam
+		}
+		want := proto.CloneOf(resp)
+		want.Resolved = nil
+		for _, r := range resp.GetResolved() {
+			by, ok := heldBy[r.GetSequence()]
+			if !ok {
+				t.Fatalf("sample %d resolves input %d, which no stream had held", i, r.GetSequence())
+			}
+			r = proto.CloneOf(r)
+			r.ClientSequence = by.clientSeq
+			if by.f == f {
+				want.Resolved = append(want.Resolved, r)
+			} else {
+				elsewhere[by.f] = append(elsewhere[by.f], r)
+			}
+		}
+		if !proto.Equal(want, responses[i]) {
+			t.Fatalf("sample %d: served verdict %v, offline %v", i, responses[i], want)
+		}
+		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+			heldBy[resp.GetSequence()] = sender{f, resp.GetClientSequence()}
 		}
 		offline[resp.GetSequence()] = convert.PoseToProto("robots/cart", fr.Pose(), resp.GetSequence())
 	}
@@ -97,8 +130,22 @@ func TestEndToEnd(t *testing.T) {
 	if last := watched[len(watched)-1]; last.GetSequence() != uint64(len(samp)) {
 		t.Errorf("last watched pose is at sequence %d of %d", last.GetSequence(), len(samp))
 	}
-	odo.close()
-	cam.close()
+	if err := odo.close(); err != nil {
+		t.Fatal(err)
+	}
+	if err := cam.close(); err != nil {
+		t.Fatal(err)
+	}
+	for _, f := range []*feed{odo, cam} {
+		if len(f.resolved) != len(elsewhere[f]) {
+			t.Fatalf("a stream received %d resolutions of its held samples in responses of their own, want %d", len(f.resolved), len(elsewhere[f]))
+		}
+		for k, r := range f.resolved {
+			if !proto.Equal(r, elsewhere[f][k]) {
+				t.Fatalf("resolution %d received %v, want %v", k, r, elsewhere[f][k])
+			}
+		}
+	}
 	srv.stop()
 
 	// The journal replays to exactly the recorded outputs.
@@ -126,8 +173,8 @@ func TestEndToEnd(t *testing.T) {
 			t.Errorf("journal input with sequence %d was never answered", in.GetSequence())
 		case !proto.Equal(in.GetSample(), samp[i]):
 			t.Errorf("journal input %d is %v, the sample sent was %v", in.GetSequence(), in.GetSample(), samp[i])
-		case !proto.Equal(out.GetResponse(), responses[i]):
-			t.Errorf("journal output %d is %v, the verdict received was %v", in.GetSequence(), out.GetResponse(), responses[i])
+		case !proto.Equal(out.GetResponse(), journaled[i]):
+			t.Errorf("journal output %d is %v, the verdict computed offline (and received, resolutions by their senders) was %v", in.GetSequence(), out.GetResponse(), journaled[i])
 		}
 		n++
 		return nil

@@ -93,7 +93,9 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 
 // tally counts one response's verdict and resolutions into sum.
 func tally(sum *Summary, resp *pb.IngestResponse) {
-	sum.Verdicts[resp.GetVerdict()]++
+	if !client.OnlyResolutions(resp) {
+		sum.Verdicts[resp.GetVerdict()]++
+	}
 	for _, r := range resp.GetResolved() {
 		sum.Verdicts[r.GetVerdict()]++
 		sum.Verdicts[pb.Verdict_VERDICT_HELD]--

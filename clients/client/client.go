@@ -210,6 +210,14 @@ func (c *Client) Reseed(ctx context.Context, robot string, stampNs int64, pose *
 // carries the session's random id (ID) and its client sequence, so that the
 // service answers a resent sample with its original verdict instead of
 // applying it twice.
+//
+// A held sample's final verdict (a reckon.v1.Resolution, with the held
+// sample's client sequence) comes to the session that sent it, whichever
+// client's sample decided it: in the response to that sample when this
+// session sent it, otherwise in a response carrying only resolutions
+// (OnlyResolutions). While no stream of the session is open, the service
+// keeps them for its id (within bounds: IngestResponse.resolved) and sends
+// them after the first response of a stream opened with Resume.
 type Session struct {
 	robot  string
 	id     string
@@ -228,13 +236,51 @@ func newSessionID() string {
 	return hex.EncodeToString(b[:])
 }
 
+// IngestOption configures OpenIngest.
+type IngestOption func(*Session)
+
+// Resume makes the new session continue an earlier one: it sends session
+// id id and numbers its samples from last+1, so that a resent sample
+// (given its old number with SendAs) is answered with its original verdict,
+// and the service sends it the final verdicts of the earlier session's
+// held samples that were decided while no stream of it was open. id and
+// last come from the earlier session's ID and Last.
+func Resume(id string, last uint64) IngestOption {
+	return func(s *Session) { s.id, s.next = id, last }
+}
+
 // OpenIngest opens an ingest stream for robot ("robots/{robot}").
-func (c *Client) OpenIngest(ctx context.Context, robot string) (*Session, error) {
+func (c *Client) OpenIngest(ctx context.Context, robot string, opts ...IngestOption) (*Session, error) {
 	st, err := c.api.Ingest(ctx)
 	if err != nil {
 		return nil, err
 	}
-	return &Session{robot: robot, id: newSessionID(), stream: st}, nil
+	s := &Session{robot: robot, id: newSessionID(), stream: st}
+	for _, o := range opts {
+		o(s)
+	}
+	return s, nil
+}
+
+// Last returns the client sequence number of the last sample sent.
+func (s *Session) Last() uint64 {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.next
+}
+
+// SendAs resends a sample with the client sequence number seq it had in
+// an earlier stream of this session (Resume); the service answers it with
+// its original verdict if it took it, and takes it otherwise.
+func (s *Session) SendAs(seq uint64, sample *pb.Sample) error {
+	return s.stream.Send(&pb.IngestRequest{Robot: s.robot, ClientSequence: seq, Sample: sample, SessionId: s.id})
+}
+
+// OnlyResolutions tells whether a response answers no sample of its own
+// and carries only final verdicts of held samples sent earlier (client
+// sequence 0, verdict VERDICT_UNSPECIFIED).
+func OnlyResolutions(resp *pb.IngestResponse) bool {
+	return resp.GetClientSequence() == 0 && resp.GetSequence() == 0 && resp.GetVerdict() == pb.Verdict_VERDICT_UNSPECIFIED && len(resp.GetResolved()) > 0
 }
 
 // Send sends one sample and returns its client sequence number.
@@ -246,18 +292,32 @@ func (s *Session) Send(sample *pb.Sample) (uint64, error) {
 	return seq, s.stream.Send(&pb.IngestRequest{Robot: s.robot, ClientSequence: seq, Sample: sample, SessionId: s.id})
 }
 
-// Recv returns the next verdict, in the order samples were sent.
+// Recv returns the next response as it comes: the verdicts of the samples
+// in the order they were sent, and between them, at any point after a held
+// sample's own verdict, responses carrying only resolutions of this
+// session's earlier held samples (OnlyResolutions). A verdict's resolved
+// may also list resolutions of earlier samples (those its sample decided).
 func (s *Session) Recv() (*pb.IngestResponse, error) { return s.stream.Recv() }
 
-// Apply sends one sample and waits for its verdict.
+// Apply sends one sample and waits for its verdict. Resolutions that come
+// before it in responses of their own are added to its resolved, ahead of
+// its own: the response may carry resolutions of earlier samples only.
 func (s *Session) Apply(sample *pb.Sample) (*pb.IngestResponse, error) {
 	seq, err := s.Send(sample)
 	if err != nil {
 		return nil, err
 	}
+	var early []*pb.Resolution
 	resp, err := s.Recv()
+	for err == nil && OnlyResolutions(resp) {
+		early = append(early, resp.GetResolved()...)
+		resp, err = s.Recv()
+	}
 	if err != nil {
 		return nil, err
+	}
+	if len(early) > 0 {
+		resp.Resolved = append(early, resp.GetResolved()...)
 	}
 	if resp.GetClientSequence() != seq {
 		return nil, fmt.Errorf("verdict for client sequence %d, want %d", resp.GetClientSequence(), seq)
@@ -270,7 +330,8 @@ func (s *Session) Apply(sample *pb.Sample) (*pb.IngestResponse, error) {
 // verdict of every sample sent.
 func (s *Session) CloseSend() error { return s.stream.CloseSend() }
 
-// Close ends the stream after the server has answered everything sent.
+// Close ends the stream after the server has answered everything sent;
+// responses not yet read, resolutions included, are dropped.
 func (s *Session) Close() error {
 	if err := s.stream.CloseSend(); err != nil {
 		return err

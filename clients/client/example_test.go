@@ -262,3 +262,48 @@ func ExampleSession_CloseSend() {
 	fmt.Println("applied", <-done)
 	// Output: applied 20
 }
+
+// A camera process whose fix is held (stamped ahead of the odometry) and
+// whose stream ends before the odometry, sent by another client, decides
+// it: a session resumed with the same id receives the final verdict.
+func ExampleResume() {
+	addr, stop := startService()
+	defer stop()
+	c, _ := client.Dial(addr, client.Options{})
+	defer c.Close()
+	ctx := context.Background()
+	cfg := cartConfig()
+	cfg.Sensors = []*pb.FixSensor{{Id: "camera", Kind: pb.FixKind_FIX_KIND_POSE}}
+	c.CreateRobot(ctx, "cart", cfg)
+	fix := func(stampNs int64, xM float64) *pb.Sample {
+		return &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{StampNs: stampNs, SensorId: "camera",
+			Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{XM: xM}},
+			Covariance:  &pb.Covariance{Dimension: 3, Values: []float64{1e-3, 0, 0, 0, 1e-3, 0, 0, 0, 1e-3}}}}}
+	}
+	odo, _ := c.OpenIngest(ctx, "robots/cart")
+	for k := int64(0); k < 5; k++ { // 0.5 m straight ahead in 0.5 s
+		odo.Apply(travel(k*100e6, (k+1)*100e6, 0.1, 0.1))
+	}
+	cam, _ := c.OpenIngest(ctx, "robots/cart")
+	resp, _ := cam.Apply(fix(800e6, 0.8))
+	fmt.Println("fix", resp.GetClientSequence(), resp.GetVerdict())
+	cam.Close()
+	for k := int64(5); k < 10; k++ {
+		odo.Apply(travel(k*100e6, (k+1)*100e6, 0.1, 0.1))
+	}
+	odo.Close()
+
+	again, _ := c.OpenIngest(ctx, "robots/cart", client.Resume(cam.ID(), cam.Last()))
+	resp, _ = again.Apply(fix(1000e6, 1.0))
+	fmt.Println("fix", resp.GetClientSequence(), resp.GetVerdict())
+	if resp, err := again.Recv(); err == nil && client.OnlyResolutions(resp) {
+		for _, r := range resp.GetResolved() {
+			fmt.Println("fix", r.GetClientSequence(), "finally", r.GetVerdict())
+		}
+	}
+	again.Close()
+	// Output:
+	// fix 1 VERDICT_HELD
+	// fix 2 VERDICT_APPLIED
+	// fix 1 finally VERDICT_APPLIED
+}

@@ -258,14 +258,16 @@ func (t *tally) collect(sess *client.Session) error {
 			}
 			return err
 		}
-		line := t.lineOf(resp.GetClientSequence())
-		t.counts[resp.GetVerdict()]++
-		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
-			t.mu.Lock()
-			t.held[resp.GetSequence()] = line
-			t.mu.Unlock()
+		if !client.OnlyResolutions(resp) {
+			line := t.lineOf(resp.GetClientSequence())
+			t.counts[resp.GetVerdict()]++
+			if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+				t.mu.Lock()
+				t.held[resp.GetSequence()] = line
+				t.mu.Unlock()
+			}
+			t.reason(line, resp.GetVerdict(), resp.GetReason())
 		}
-		t.reason(line, resp.GetVerdict(), resp.GetReason())
 		for _, r := range resp.GetResolved() {
 			t.counts[r.GetVerdict()]++
 			t.counts[pb.Verdict_VERDICT_HELD]--

@@ -72,9 +72,9 @@ class TLS:
 class Verdict:
     """Verdict is what became of one sample sent on an IngestSession.
 
-    client_sequence is the number send() returned for it, or None for a
-    held sample that another client sent and that this session's odometry
-    decided. sequence is the robot's arrival number (0 if refused before
+    client_sequence is the number send() returned for it (the service sends
+    a held sample's final verdict only to the stream that sent it, with
+    this number). sequence is the robot's arrival number (0 if refused before
     the robot took it). verdict is its label ("applied", "held", "gated",
     "too_old", "invalid"); final is False only for "held", whose final
     verdict comes later. status_code is the google.rpc.Code of the outcome
@@ -105,9 +105,12 @@ class IngestSession:
     send() may be called from one thread while another iterates over
     verdicts() (or over the raw responses, by iterating the session). The
     service answers every sample, in the order sent; a held sample is
-    answered "held" and decided later: its final verdict arrives in the
-    response to the input that decided it. verdicts() pairs such a
-    resolution with the client_sequence of the sample this session sent.
+    answered "held" and decided later: its final verdict comes on this
+    stream, whichever client's input decided it: in the response to that
+    input when this session sent it, otherwise in a response of its own
+    that answers no sample (client_sequence 0) and carries only final
+    verdicts. verdicts() yields each with the client_sequence of the
+    sample this session sent.
     close() ends the sending side; the iteration then ends once the
     service has answered everything. Use it as a context manager to close
     it on leaving the block."""
@@ -163,10 +166,9 @@ class IngestSession:
         return iter(self._call)
 
     def verdicts(self) -> Iterator[Verdict]:
-        """verdicts yields a Verdict for every response, and after it one
-        for each held sample that response's input decided (final, with
-        the client_sequence this session gave it, or None if another client
-        sent it). It ends when the service ends the stream after close(),
+        """verdicts yields a Verdict for every sample sent, and a final one
+        for each held sample when it is decided (with the client_sequence
+        this session gave it), as the responses come. It ends when the service ends the stream after close(),
         and raises grpc.RpcError if the stream fails."""
         for resp in self._call:
             if resp.client_sequence == 0 and resp.verdict == fs_pb2.VERDICT_UNSPECIFIED:
@@ -185,7 +187,8 @@ class IngestSession:
 
     def _resolutions(self, resp: fs_pb2.IngestResponse) -> Iterator[Verdict]:
         for r in resp.resolved:
-            yield Verdict(client_sequence=self._held.pop(r.sequence, None), sequence=r.sequence,
+            seq = self._held.pop(r.sequence, None)
+            yield Verdict(client_sequence=r.client_sequence or seq, sequence=r.sequence,
                           verdict=verdict_label(r.verdict), final=True, status_code=None,
                           reason=r.reason, nis=r.nis)
 

@@ -81,17 +81,14 @@ class GoOdometryPythonFixesTest(unittest.TestCase):
         self.assertEqual(held, 10, "fixes every 100 ms from 5.05 to 5.95 s")
 
     def test_held_fixes_decided(self):
-        # Whichever stream their verdicts went to, the robot decided every
-        # fix: the camera's counts hold all of them.
+        # The robot decided every fix: the camera's counts hold all of them.
         stats = self.client.statistics("cart")
         (camera,) = [s for s in stats.sensors if s.sensor_id == "camera"]
         self.assertEqual(camera.counts.applied + camera.counts.gated, len(self.fixes))
         self.assertEqual(stats.held, 0)
 
-    # Pending the server change "verdicts to the sender": today a held fix's
-    # final verdict goes to the stream of whichever client sent the deciding
-    # odometry (here Go's), so the Python session never learns it.
-    @unittest.expectedFailure
+    # A held fix's final verdict goes to the stream that sent it (here
+    # Python's), although Go's odometry decided it.
     def test_held_verdicts_reach_sender(self):
         held = {v.client_sequence for v in self.verdicts if v.verdict == "held"}
         self.assertEqual(len(held), 10)

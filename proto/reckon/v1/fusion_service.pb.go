@@ -875,7 +875,21 @@ type IngestResponse struct {
 	Nis float64 `protobuf:"fixed64,5,opt,name=nis,proto3" json:"nis,omitempty"`
 	// Degrees of freedom of nis.
 	NisDimension int32 `protobuf:"varint,6,opt,name=nis_dimension,json=nisDimension,proto3" json:"nis_dimension,omitempty"`
-	// Held samples that this one decided.
+	// Final verdicts of held samples, each sent to the stream that sent the
+	// held sample: on that stream, the response to the sample that decided
+	// it when that sample came on the same stream; otherwise a response of
+	// its own carrying only resolved (client_sequence 0, sequence 0, verdict
+	// VERDICT_UNSPECIFIED), which may come at any point after the held
+	// sample's own response and may hold several resolutions. While the
+	// sending stream is gone, a held sample's resolution is kept for its
+	// session_id (the newest 4096 of each of a robot's 64 most recently used
+	// sessions) and sent on the next stream that feeds the robot with that
+	// session_id, after the responses to its first requests (any request for
+	// the robot, even a refused one, collects them); a sample sent without a
+	// session_id loses it with its stream. A retried sample is answered with
+	// its response as first sent. The journal records, in the deciding
+	// sample's response, every resolution it caused, without
+	// client_sequence.
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`
 	// Notable moments this sample caused.
 	Events []*FusionEvent `protobuf:"bytes,8,rep,name=events,proto3" json:"events,omitempty"`
@@ -1002,10 +1016,11 @@ func (x *IngestResponse) GetField() string {
 	return ""
 }
 
-// Resolution is the final verdict of a held sample.
+// Resolution is the final verdict of a held sample (see
+// IngestResponse.resolved for which stream receives it).
 type Resolution struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// The held sample's sequence number.
+	// The held sample's sequence number (the robot's).
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// Its verdict.
 	Verdict Verdict `protobuf:"varint,2,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`
@@ -1014,9 +1029,16 @@ type Resolution struct {
 	// Why it was refused.
 	Reason string `protobuf:"bytes,4,opt,name=reason,proto3" json:"reason,omitempty"`
 	// Why it was refused, as a value.
-	Refusal       Refusal `protobuf:"varint,5,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Refusal Refusal `protobuf:"varint,5,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
+	// The held sample's IngestRequest.client_sequence, so that its sender
+	// can match the resolution to its own request (a stream may feed several
+	// robots, whose sequences overlap). Set on every resolution sent; 0 in
+	// the journal. Across a restart of the service, a held sample's sender
+	// is known from the journal when the sample came with a session_id after
+	// the journal's last snapshot; otherwise its resolution is not sent.
+	ClientSequence uint64 `protobuf:"varint,6,opt,name=client_sequence,json=clientSequence,proto3" json:"client_sequence,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *Resolution) Reset() {
@@ -1082,6 +1104,13 @@ func (x *Resolution) GetRefusal() Refusal {
 		return x.Refusal
 	}
 	return Refusal_REFUSAL_UNSPECIFIED
+}
+
+func (x *Resolution) GetClientSequence() uint64 {
+	if x != nil {
+		return x.ClientSequence
+	}
+	return 0
 }
 
 // FusionEvent is a notable moment.
@@ -2168,14 +2197,15 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"statusCode\x12,\n" +
 	"\arefusal\x18\n" +
 	" \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\x12\x14\n" +
-	"\x05field\x18\v \x01(\tR\x05field\"\xae\x01\n" +
+	"\x05field\x18\v \x01(\tR\x05field\"\xd7\x01\n" +
 	"\n" +
 	"Resolution\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
 	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x10\n" +
 	"\x03nis\x18\x03 \x01(\x01R\x03nis\x12\x16\n" +
 	"\x06reason\x18\x04 \x01(\tR\x06reason\x12,\n" +
-	"\arefusal\x18\x05 \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\"\x9d\x01\n" +
+	"\arefusal\x18\x05 \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\x12'\n" +
+	"\x0fclient_sequence\x18\x06 \x01(\x04R\x0eclientSequence\"\x9d\x01\n" +
 	"\vFusionEvent\x12(\n" +
 	"\x04kind\x18\x01 \x01(\x0e2\x14.reckon.v1.EventKindR\x04kind\x12\x19\n" +
 	"\bstamp_ns\x18\x02 \x01(\x03R\astampNs\x12\x1b\n" +

@@ -72,6 +72,9 @@ func (run *Run) lines() [][2]string {
 		}
 	}
 	out = append(out, [2]string{"do-not-trust intervals", dt})
+	if s.TruthSteps > 0 {
+		out = append(out, [2]string{"truth", fmt.Sprintf("interpolated to %d of %d estimate stamps; largest gap between the truth rows used %.3f s", s.TruthMatched, s.TruthSteps, secs(s.TruthMaxGapNs))})
+	}
 	if s.HasTruth {
 		out = append(out, [2]string{"error against truth", fmt.Sprintf("RMS position %.4f m filtered, %.4f m smoothed", s.FilteredRMSM, s.SmoothedRMSM)})
 		// The chi-square with 3 degrees of freedom has mean 3 and median 2.366 (closed form, common practice).
@@ -84,7 +87,7 @@ func (run *Run) lines() [][2]string {
 	if s.Truncated != "" {
 		out = append(out, [2]string{"NOTE", s.Truncated})
 	}
-	out = append(out, [2]string{"exports", run.FilteredCSV + ", " + run.SmoothedCSV})
+	out = append(out, [2]string{"exports", run.FilteredCSV + ", " + run.SmoothedCSV + ", " + run.FixesCSV})
 	return out
 }
 

@@ -99,6 +99,10 @@ type Interval struct {
 
 // Summary holds the figures of a run.
 type Summary struct {
+	// RunStartNs is the stamp of the run's first input, from which
+	// Options.FromNs and ToNs and the report's time axes count; StartNs
+	// and EndNs bound the inputs reviewed.
+	RunStartNs     int64
 	StartNs, EndNs int64
 	Inputs         int
 	DistanceM      float64
@@ -148,9 +152,11 @@ type Run struct {
 	Summary  Summary
 	Filtered []Point // decimated for figures
 	Smoothed []Point
-	Truth    []estimator.Pose
-	Fixes    []FixPoint
-	NIS      map[string][]NISPoint
+	// Truth is the truth at the stamps of Filtered (NaN where it has
+	// none), when the review had a truth file.
+	Truth []estimator.Pose
+	Fixes []FixPoint
+	NIS   map[string][]NISPoint
 	// FilteredCSV and SmoothedCSV are the exports written, and FixesCSV
 	// (every fix with its final verdict).
 	FilteredCSV, SmoothedCSV, FixesCSV string
@@ -329,7 +335,7 @@ func newFilteredWriter(path string, steps *stepStore) (*filteredWriter, error) {
 	if err != nil {
 		return nil, err
 	}
-	fw := &filteredWriter{batches: make(chan []fusion.Step, 64), written: make(chan error, 1)}
+	fw := &filteredWriter{batches: make(chan []fusion.Step, 4), written: make(chan error, 1)}
 	go func() {
 		err := writeSteps(f, steps, fw.batches)
 		if cerr := f.Close(); err == nil {
@@ -417,6 +423,7 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 	if rc.seen == 0 {
 		// The run's start is its first input's stamp.
 		start := sampleStamp(s)
+		rc.run.Summary.RunStartNs = start
 		rc.a.fromNs, rc.a.toNs = start+rc.fromNs, math.MaxInt64
 		if rc.toNs > 0 {
 			rc.a.toNs = start + rc.toNs
@@ -895,7 +902,10 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		if i%every == 0 || i == n-1 {
 			run.Filtered = append(run.Filtered, Point{st.StampNs, *p})
 			run.Smoothed = append(run.Smoothed, Point{st.StampNs, smoothed})
-			if haveTruth {
+			if truth != nil {
+				if !haveTruth {
+					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
+				}
 				run.Truth = append(run.Truth, tp)
 			}
 		}

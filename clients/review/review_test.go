@@ -22,6 +22,12 @@ import (
 // writeRun records a simulated run as a journal (as the service writes it)
 // and a truth CSV, and returns the journal directory and the truth path.
 func writeRun(t testing.TB, sc fusiontest.Scenario) (string, string) {
+	return writeRunWith(t, sc, nil)
+}
+
+// writeRunWith is writeRun with each sample changed by alter (if set)
+// before the robot takes it, as a miswired sensor would change it.
+func writeRunWith(t testing.TB, sc fusiontest.Scenario, alter func(*pb.Sample)) (string, string) {
 	dir := t.TempDir()
 	s := fusiontest.New(sc)
 	cfg := s.Config()
@@ -49,6 +55,9 @@ func writeRun(t testing.TB, sc fusiontest.Scenario) (string, string) {
 			sample = convert.HeadingToProto(in.Heading)
 		default:
 			sample = convert.FixToProto(in.Fix)
+		}
+		if alter != nil {
+			alter(sample)
 		}
 		resp, taken := convert.Take(fr, sample, 0)
 		if !taken {

@@ -52,9 +52,11 @@ type Options struct {
 	// MaxPoints bounds each plotted series (4000).
 	MaxPoints int
 	// MemoryBytes bounds the steps and smoothed states kept in memory
-	// (64 MiB, about 100,000 steps: five minutes at 200 Hz with its IMU and
-	// fixes); past it they go to files in TempDir, which the smoother and
-	// the exports read in chunks.
+	// (32 MiB, about 50,000 steps: 45 s at 200 Hz with its IMU and fixes);
+	// past it they go to files in TempDir, which the smoother and the
+	// exports read in chunks. The journal's reader holds a segment (up to
+	// 64 MiB) besides, and the collector lets the heap grow to about twice
+	// what is live: 32 MiB keeps an hour's review under 256 MiB.
 	MemoryBytes int64
 	// FromNs and ToNs limit the review to a stretch of the run, in
 	// nanoseconds from the run's start (the stamp of its first input). The
@@ -257,7 +259,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		opt.MaxPoints = 4000
 	}
 	if opt.MemoryBytes <= 0 {
-		opt.MemoryBytes = 64 << 20
+		opt.MemoryBytes = 32 << 20
 	}
 	run := &Run{Label: src.Label, NIS: map[string][]NISPoint{}}
 	if run.Label == "" {
@@ -270,10 +272,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw, err := newFilteredWriter(run.FilteredCSV, steps)
-	if err != nil {
-		return nil, err
-	}
+	fw := newStepWriter(steps)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
 	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs}
@@ -287,12 +286,20 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	}
 	run.Config = fr.Config()
 	rc.a.finish(fr)
-	smoothed, err := smooth(steps, opt.TempDir)
+	// The filtered track is written from a reader of its own while the
+	// smoother runs: the replay kept both cores busy, the smoother keeps
+	// one.
+	filtered, err := steps.reader()
 	if err != nil {
 		return nil, err
 	}
-	defer smoothed.close()
-	if err := rc.a.tracks(steps, smoothed, src.Truth, outDir, opt.MaxPoints); err != nil {
+	written := make(chan error, 1)
+	go func() { written <- writeTrack(run.FilteredCSV, filtered) }()
+	err = smoothAndTrack(rc.a, steps, src.Truth, outDir, opt)
+	if werr := <-written; err == nil {
+		err = werr
+	}
+	if err != nil {
 		return nil, err
 	}
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
@@ -301,6 +308,16 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	}
 	run.Fixes = thinFixes(run.Fixes, opt.MaxPoints)
 	return run, nil
+}
+
+// smoothAndTrack smooths the steps and walks both tracks forwards.
+func smoothAndTrack(a *accumulator, steps *stepStore, truth, outDir string, opt Options) error {
+	smoothed, err := smooth(steps, opt.TempDir)
+	if err != nil {
+		return err
+	}
+	defer smoothed.close()
+	return a.tracks(steps, smoothed, truth, outDir, opt.MaxPoints)
 }
 
 // smooth runs the smoother over the steps into a state store of its own.
@@ -320,9 +337,9 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 	return smoothed, nil
 }
 
-// filteredWriter stores the steps and writes the filtered track in a
-// goroutine of its own, while the replay goes on.
-type filteredWriter struct {
+// stepWriter stores the steps in a goroutine of its own, while the replay
+// goes on.
+type stepWriter struct {
 	batches chan []fusion.Step
 	written chan error
 	pending []fusion.Step
@@ -330,47 +347,28 @@ type filteredWriter struct {
 	err     error
 }
 
-func newFilteredWriter(path string, steps *stepStore) (*filteredWriter, error) {
-	f, err := os.Create(path)
-	if err != nil {
-		return nil, err
-	}
-	fw := &filteredWriter{batches: make(chan []fusion.Step, 4), written: make(chan error, 1)}
+func newStepWriter(steps *stepStore) *stepWriter {
+	fw := &stepWriter{batches: make(chan []fusion.Step, 4), written: make(chan error, 1)}
 	go func() {
-		err := writeSteps(f, steps, fw.batches)
-		if cerr := f.Close(); err == nil {
-			err = cerr
+		var err error
+		for b := range fw.batches {
+			for i := range b {
+				if err == nil {
+					err = steps.add(&b[i])
+				}
+			}
+		}
+		if err == nil {
+			err = steps.flush()
 		}
 		fw.written <- err
 	}()
-	return fw, nil
-}
-
-// writeSteps stores every step of the batches and writes it as a CSV row.
-func writeSteps(f io.Writer, steps *stepStore, batches <-chan []fusion.Step) error {
-	w := bufio.NewWriterSize(f, 1<<20)
-	_, err := w.WriteString(strings.Join(csvHeader, ",") + "\n")
-	var row []byte
-	for b := range batches {
-		for i := range b {
-			if err == nil {
-				err = steps.add(&b[i])
-			}
-			row = appendRow(row[:0], b[i].StampNs, &b[i].Post)
-			if _, werr := w.Write(row); err == nil {
-				err = werr
-			}
-		}
-	}
-	if ferr := w.Flush(); err == nil {
-		err = ferr
-	}
-	return err
+	return fw
 }
 
 // add queues steps, handing them over in batches of 4096 (or all at once
 // when flush is set).
-func (fw *filteredWriter) add(steps []fusion.Step, flush bool) {
+func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
 	fw.pending = append(fw.pending, steps...)
 	if len(fw.pending) >= 4096 || (flush && len(fw.pending) > 0) {
 		fw.batches <- fw.pending
@@ -380,7 +378,7 @@ func (fw *filteredWriter) add(steps []fusion.Step, flush bool) {
 
 // close waits for the writer to finish and returns its error; it may be
 // called again.
-func (fw *filteredWriter) close() error {
+func (fw *stepWriter) close() error {
 	if !fw.closed {
 		fw.closed = true
 		close(fw.batches)
@@ -389,12 +387,37 @@ func (fw *filteredWriter) close() error {
 	return fw.err
 }
 
+// writeTrack writes the filtered track of the steps as CSV.
+func writeTrack(path string, steps *stepStore) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return err
+	}
+	w := bufio.NewWriterSize(f, 1<<20)
+	_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
+	var st fusion.Step
+	var row []byte
+	for i := 0; i < steps.Len() && err == nil; i++ {
+		if err = steps.read(i, &st, false); err == nil {
+			row = appendRow(row[:0], st.StampNs, &st.Post)
+			_, err = w.Write(row)
+		}
+	}
+	if ferr := w.Flush(); err == nil {
+		err = ferr
+	}
+	if cerr := f.Close(); err == nil {
+		err = cerr
+	}
+	return err
+}
+
 // recorder runs the inputs of a recorded run through a robot and gathers
 // the summary and the steps.
 type recorder struct {
 	run      *Run
 	a        *accumulator
-	fw       *filteredWriter
+	fw       *stepWriter
 	progress func(inputs int)
 	// fromNs and toNs are Options.FromNs and ToNs; seen counts the inputs.
 	fromNs, toNs int64
@@ -831,14 +854,18 @@ func nees3(s *estimator.State, tr estimator.Pose) float64 {
 func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir string, maxPoints int) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
-	fs, err := os.Create(run.SmoothedCSV)
-	if err != nil {
-		return err
-	}
-	defer fs.Close()
-	ws := bufio.NewWriterSize(fs, 1<<20)
-	ws.WriteString(strings.Join(csvHeader, ",") + "\n")
-	var row []byte
+	// The smoothed track's rows are formatted and written by a goroutine
+	// of their own.
+	rows := make(chan []Point, 4)
+	written := make(chan error, 1)
+	go func() { written <- writePoints(run.SmoothedCSV, rows) }()
+	batch := make([]Point, 0, 4096)
+	defer func() {
+		if rows != nil {
+			close(rows)
+			<-written
+		}
+	}()
 	var truth *truthReader
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -853,7 +880,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	var st fusion.Step
 	var smoothed estimator.State
 	var fSq, sSq, fNees, sNees float64
-	var fAll, sAll []float64
+	var fAll, sAll logHistogram
 	var nTruth, nNees int
 	var prevX, prevY float64
 	for i := 0; i < n; i++ {
@@ -875,8 +902,10 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
-		row = appendRow(row[:0], st.StampNs, &smoothed)
-		ws.Write(row)
+		if batch = append(batch, Point{st.StampNs, smoothed}); len(batch) == cap(batch) {
+			rows <- batch
+			batch = make([]Point, 0, 4096)
+		}
 		var tp estimator.Pose
 		haveTruth := false
 		if truth != nil {
@@ -896,7 +925,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 				fNees += fn
 				sNees += sn
 				nNees++
-				fAll, sAll = append(fAll, fn), append(sAll, sn)
+				fAll.add(fn)
+				sAll.add(sn)
 			}
 		}
 		if i%every == 0 || i == n-1 {
@@ -910,7 +940,10 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			}
 		}
 	}
-	if err := ws.Flush(); err != nil {
+	rows <- batch
+	close(rows)
+	rows = nil
+	if err := <-written; err != nil {
 		return err
 	}
 	if nTruth > 0 {
@@ -918,12 +951,79 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		sum.FilteredRMSM, sum.SmoothedRMSM = math.Sqrt(fSq/float64(nTruth)), math.Sqrt(sSq/float64(nTruth))
 		if nNees > 0 {
 			sum.FilteredNEES, sum.SmoothedNEES = fNees/float64(nNees), sNees/float64(nNees)
-			sort.Float64s(fAll)
-			sort.Float64s(sAll)
-			sum.FilteredNEESMedian, sum.SmoothedNEESMedian = fAll[len(fAll)/2], sAll[len(sAll)/2]
+			sum.FilteredNEESMedian, sum.SmoothedNEESMedian = fAll.median(), sAll.median()
 		}
 	}
 	return nil
 }
 
 func sq(v float64) float64 { return v * v }
+
+// writePoints writes the states of the batches as a CSV track.
+func writePoints(path string, batches <-chan []Point) error {
+	f, err := os.Create(path)
+	if err == nil {
+		w := bufio.NewWriterSize(f, 1<<20)
+		_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
+		var row []byte
+		for b := range batches {
+			for i := range b {
+				if err == nil {
+					row = appendRow(row[:0], b[i].StampNs, &b[i].State)
+					_, err = w.Write(row)
+				}
+			}
+		}
+		if ferr := w.Flush(); err == nil {
+			err = ferr
+		}
+		if cerr := f.Close(); err == nil {
+			err = cerr
+		}
+	}
+	for range batches {
+		// Drain what is left after an error, so that the sender ends.
+	}
+	return err
+}
+
+// logHistogram counts positive values in bins a thousandth wide on a log
+// scale, for a median in bounded memory (within 0.05%).
+type logHistogram struct {
+	counts map[int32]int
+	n      int
+}
+
+var logBin = math.Log1p(1e-3)
+
+func (h *logHistogram) add(v float64) {
+	if h.counts == nil {
+		h.counts = map[int32]int{}
+	}
+	k := int32(math.MinInt32)
+	if v > 0 {
+		k = int32(math.Floor(math.Log(v) / logBin))
+	}
+	h.counts[k]++
+	h.n++
+}
+
+// median returns the middle of the bin that holds the value of rank n/2
+// (counting from 0), as sort.Float64s(v)[len(v)/2] would pick it.
+func (h *logHistogram) median() float64 {
+	keys := make([]int32, 0, len(h.counts))
+	for k := range h.counts {
+		keys = append(keys, k)
+	}
+	sort.Slice(keys, func(i, j int) bool { return keys[i] < keys[j] })
+	seen := 0
+	for _, k := range keys {
+		if seen += h.counts[k]; seen > h.n/2 {
+			if k == math.MinInt32 {
+				return 0
+			}
+			return math.Exp((float64(k) + 0.5) * logBin)
+		}
+	}
+	return math.NaN()
+}

@@ -12,24 +12,33 @@ import (
 )
 
 // Fixed-size little-endian records keep a long run's steps and smoothed
-// states on disk, so that memory does not grow with the run.
+// states on disk, so that memory does not grow with the run. A state's
+// covariance is stored as its upper triangle: the estimator leaves every
+// covariance exactly symmetric (it symmetrises after each prediction,
+// update and smoothing step), so the lower one is a bit-for-bit copy.
 const (
-	stateBytes = 8 + 20*8 // size, mean (4), covariance (size x size in 16)
+	stateBytes = 8 + (4+10)*8 // size, mean (4), upper triangle of the 4x4 covariance (10)
 	stepBytes  = 8 + 2*stateBytes + 16*8 + 8
 	chunk      = 2048 // records read at once
 )
 
 func putState(b []byte, s *estimator.State) []byte {
-	var x [4]float64
-	var p [16]float64
-	s.MeanInto(x[:])
-	s.CovarianceInto(p[:])
 	b = binary.LittleEndian.AppendUint64(b, uint64(s.Size()))
-	for _, v := range x {
+	for i := 0; i < 4; i++ {
+		v := 0.0
+		if i < s.Size() {
+			v = s.MeanAt(i)
+		}
 		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
 	}
-	for _, v := range p {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+	for i := 0; i < 4; i++ {
+		for j := i; j < 4; j++ {
+			v := 0.0
+			if i < s.Size() && j < s.Size() {
+				v = s.At(i, j)
+			}
+			b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+		}
 	}
 	return b
 }
@@ -43,9 +52,14 @@ func getState(b []byte, s *estimator.State) []byte {
 		x[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
 		b = b[8:]
 	}
-	for i := range p {
-		p[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
-		b = b[8:]
+	for i := 0; i < 4; i++ {
+		for j := i; j < 4; j++ {
+			v := math.Float64frombits(binary.LittleEndian.Uint64(b))
+			b = b[8:]
+			if i < n && j < n {
+				p[i*n+j], p[j*n+i] = v, v
+			}
+		}
 	}
 	*s = estimator.NewState(n, x[:n], p[:n*n])
 	return b
@@ -85,7 +99,7 @@ func (fs *fileStore) appendRec(b []byte) error {
 // record returns record i, reading the chunk that ends at it (the smoother
 // and the report read backwards and forwards in order).
 func (fs *fileStore) record(i int, backwards bool) ([]byte, error) {
-	if fs.w.Buffered() > 0 {
+	if fs.w != nil && fs.w.Buffered() > 0 {
 		if err := fs.w.Flush(); err != nil {
 			return nil, err
 		}
@@ -273,6 +287,28 @@ func (ss *stepStore) read(i int, dst *fusion.Step, backwards bool) error {
 }
 
 func (ss *stepStore) onDisk() bool { return ss.file != nil }
+
+// flush writes the steps buffered for the file.
+func (ss *stepStore) flush() error {
+	if ss.file != nil {
+		return ss.file.w.Flush()
+	}
+	return nil
+}
+
+// reader returns a reader of the steps with a cache of its own, which may
+// read while the store is read elsewhere (once every step was added and
+// flushed). It shares the store's file: close only the store.
+func (ss *stepStore) reader() (*stepStore, error) {
+	if ss.file == nil {
+		return ss, nil // reading memory changes nothing
+	}
+	if err := ss.flush(); err != nil {
+		return nil, err
+	}
+	fs := &fileStore{f: ss.file.f, size: ss.file.size, n: ss.file.n, cacheN: -1}
+	return &stepStore{file: &stepFile{fileStore: fs}}, nil
+}
 
 func (ss *stepStore) close() error {
 	if ss.file != nil {

@@ -2,6 +2,8 @@ package review
 
 import (
 	"math"
+	"math/rand/v2"
+	"sort"
 	"strings"
 	"testing"
 )
@@ -44,6 +46,24 @@ func TestTruthInterpolation(t *testing.T) {
 		const tol = 1e-12
 		if math.Abs(p.X-c.x) > tol || math.Abs(p.Y-c.y) > tol || math.Abs(p.Heading-c.h) > tol || gap != c.gapNs {
 			t.Errorf("%s: at(%d) = %+v gap %d, want (%g, %g, %g) gap %d", c.reasoning, c.stamp, p, gap, c.x, c.y, c.h, c.gapNs)
+		}
+	}
+}
+
+// TestLogHistogramMedian: the bounded median is within half a bin (0.05%)
+// of the exact one, for chi-square-like values over several decades.
+func TestLogHistogramMedian(t *testing.T) {
+	rng := rand.New(rand.NewPCG(79, 79))
+	for _, n := range []int{1, 2, 101, 10000} {
+		var h logHistogram
+		v := make([]float64, n)
+		for i := range v {
+			v[i] = math.Exp(3 * rng.NormFloat64())
+			h.add(v[i])
+		}
+		sort.Float64s(v)
+		if got, want := h.median(), v[n/2]; math.Abs(got-want) > 5e-4*want {
+			t.Errorf("%d values: median %g, exact %g", n, got, want)
 		}
 	}
 }

@@ -269,3 +269,25 @@ func TestSpillToDisk(t *testing.T) {
 		t.Errorf("RMS %v vs %v", mem.Summary.SmoothedRMSM, disk.Summary.SmoothedRMSM)
 	}
 }
+
+// TestSpillToDiskWithoutIMU: the disk's step records hold a three-state
+// run (no IMU offset) as well, bit for bit.
+func TestSpillToDiskWithoutIMU(t *testing.T) {
+	dir, _ := writeRun(t, fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 80, DurationS: 15, OutlierFraction: 0.05})
+	mem, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	disk, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{MemoryBytes: 100 * stepMemBytes, TempDir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if mem.Filtered[0].State.Size() != 3 {
+		t.Fatalf("the run has %d states, want 3", mem.Filtered[0].State.Size())
+	}
+	a, _ := os.ReadFile(mem.SmoothedCSV)
+	b, _ := os.ReadFile(disk.SmoothedCSV)
+	if len(a) < 1000 || !bytes.Equal(a, b) {
+		t.Errorf("smoothed tracks differ between memory and disk (%d and %d bytes)", len(a), len(b))
+	}
+}

@@ -3,6 +3,7 @@ package review
 import (
 	"bufio"
 	"encoding/binary"
+	"errors"
 	"fmt"
 	"math"
 	"os"
@@ -15,15 +16,26 @@ import (
 // states on disk, so that memory does not grow with the run. A state's
 // covariance is stored as its upper triangle: the estimator leaves every
 // covariance exactly symmetric (it symmetrises after each prediction,
-// update and smoothing step), so the lower one is a bit-for-bit copy.
+// update and smoothing step), so the lower one is a bit-for-bit copy. A
+// step's Jacobian is the identity but for its pose block (fusion's step
+// collector), so only that block is stored.
 const (
-	stateBytes = 8 + (4+10)*8 // size, mean (4), upper triangle of the 4x4 covariance (10)
-	stepBytes  = 8 + 2*stateBytes + 16*8 + 8
-	chunk      = 2048 // records read at once
+	bodyBytes  = (4 + 10) * 8              // mean (4), upper triangle of the 4x4 covariance (10)
+	stateBytes = 8 + bodyBytes             // size, body
+	stepBytes  = 8 + 8 + 2*bodyBytes + 9*8 // stamp, sizes and start, prediction, posterior, pose block of F
+	chunk      = 2048                      // records read at once
 )
+
+// errJacobian reports a step Jacobian that is not the identity outside its
+// pose block, which the step file cannot hold.
+var errJacobian = errors.New("review: a step's Jacobian differs from the identity outside its pose block")
 
 func putState(b []byte, s *estimator.State) []byte {
 	b = binary.LittleEndian.AppendUint64(b, uint64(s.Size()))
+	return putBody(b, s)
+}
+
+func putBody(b []byte, s *estimator.State) []byte {
 	for i := 0; i < 4; i++ {
 		v := 0.0
 		if i < s.Size() {
@@ -44,8 +56,10 @@ func putState(b []byte, s *estimator.State) []byte {
 }
 
 func getState(b []byte, s *estimator.State) []byte {
-	n := int(binary.LittleEndian.Uint64(b))
-	b = b[8:]
+	return getBody(b[8:], int(binary.LittleEndian.Uint64(b)), s)
+}
+
+func getBody(b []byte, n int, s *estimator.State) []byte {
 	var x [4]float64
 	var p [16]float64
 	for i := range x {
@@ -137,20 +151,34 @@ func newStepFile(dir string) (*stepFile, error) {
 }
 
 func (sf *stepFile) add(s *fusion.Step) error {
+	for k, v := range s.F {
+		if r, c := k/4, k%4; (r == 3 || c == 3) && v != identity(r, c) {
+			return errJacobian
+		}
+	}
 	b := sf.buf[:0]
 	b = binary.LittleEndian.AppendUint64(b, uint64(s.StampNs))
-	b = putState(b, &s.Pred)
-	b = putState(b, &s.Post)
-	for _, v := range s.F {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
-	}
-	start := uint64(0)
+	head := uint64(s.Pred.Size())<<8 | uint64(s.Post.Size())<<16
 	if s.Start {
-		start = 1
+		head |= 1
 	}
-	b = binary.LittleEndian.AppendUint64(b, start)
+	b = binary.LittleEndian.AppendUint64(b, head)
+	b = putBody(b, &s.Pred)
+	b = putBody(b, &s.Post)
+	for r := 0; r < 3; r++ {
+		for c := 0; c < 3; c++ {
+			b = binary.LittleEndian.AppendUint64(b, math.Float64bits(s.F[r*4+c]))
+		}
+	}
 	sf.buf = b
 	return sf.appendRec(b)
+}
+
+func identity(r, c int) float64 {
+	if r == c {
+		return 1
+	}
+	return 0
 }
 
 func (sf *stepFile) Len() int { return sf.n }
@@ -163,13 +191,19 @@ func (sf *stepFile) read(i int, dst *fusion.Step, backwards bool) error {
 		return err
 	}
 	dst.StampNs = int64(binary.LittleEndian.Uint64(b))
-	b = getState(b[8:], &dst.Pred)
-	b = getState(b, &dst.Post)
+	head := binary.LittleEndian.Uint64(b[8:])
+	b = getBody(b[16:], int(head>>8&0xff), &dst.Pred)
+	b = getBody(b, int(head>>16&0xff), &dst.Post)
 	for k := range dst.F {
-		dst.F[k] = math.Float64frombits(binary.LittleEndian.Uint64(b))
-		b = b[8:]
+		dst.F[k] = identity(k/4, k%4)
 	}
-	dst.Start = binary.LittleEndian.Uint64(b) == 1
+	for r := 0; r < 3; r++ {
+		for c := 0; c < 3; c++ {
+			dst.F[r*4+c] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+			b = b[8:]
+		}
+	}
+	dst.Start = head&1 == 1
 	return nil
 }
 

@@ -18,7 +18,7 @@ import (
 )
 
 // runColours tell the runs of a comparison apart.
-var runColours = []color.RGBA{colFiltered, colSecond, colSmoothed, {R: 40, G: 150, B: 70, A: 255}}
+var runColours = []color.RGBA{colFiltered, colSmoothed, colSecond, {R: 40, G: 150, B: 70, A: 255}}
 
 func runColour(i int) color.RGBA { return runColours[i%len(runColours)] }
 

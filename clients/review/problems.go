@@ -21,7 +21,13 @@ type Problem struct {
 	AtNs int64
 	// Text is one sentence that says what and why.
 	Text string
+	// weight ranks problems of one kind (longer or more is worse).
+	weight float64
 }
+
+// maxPerKind bounds the sentences of one kind; the rest are counted in
+// one more.
+const maxPerKind = 8
 
 // clusterGapNs joins problems of one kind less than this apart into one
 // sentence.
@@ -58,17 +64,23 @@ func details(ivs []Interval) string {
 func (run *Run) Problems() []Problem {
 	s := &run.Summary
 	var out []Problem
+	weight := 0.0
 	add := func(kind string, at int64, format string, args ...any) {
-		out = append(out, Problem{kind, at, fmt.Sprintf(format, args...)})
+		out = append(out, Problem{kind, at, fmt.Sprintf(format, args...), weight})
 	}
 	for _, ss := range s.Sensors {
 		id := ss.GetSensorId()
 		c := ss.GetCounts()
 		switch ss.GetVerdict() {
 		case pb.ConsistencyVerdict_CONSISTENCY_VERDICT_OVERCONFIDENT:
+			weight = 0
+			refused := ""
+			if c.GetGated() > 0 {
+				refused = fmt.Sprintf(", and the gate refused %d more", c.GetGated())
+			}
 			add("sensor", run.worstNIS(id),
-				"The %s disagrees with the estimate (overconfident): its mean NIS over %d applied inputs is %.2f against a 95%% band of %.2f to %.2f, and %d were refused by the gate; its stated noise is too small, or it is mounted, wired or calibrated wrongly.",
-				id, c.GetApplied(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), c.GetGated())
+				"The %s disagrees with the estimate (overconfident): its mean NIS over %d applied inputs is %.2f against a 95%% band of %.2f to %.2f%s; its stated noise is too small, or it is mounted, wired or calibrated wrongly.",
+				id, c.GetApplied(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), refused)
 		case pb.ConsistencyVerdict_CONSISTENCY_VERDICT_UNDERCONFIDENT:
 			add("sensor", run.worstNIS(id),
 				"The %s agrees with the estimate better than its stated noise allows (underconfident): its mean NIS over %d applied inputs is %.2f, below its 95%% band of %.2f to %.2f; its covariance could be smaller.",
@@ -80,6 +92,7 @@ func (run *Run) Problems() []Problem {
 		slips = append(slips, Interval{at, at, ""})
 	}
 	for _, c := range clusters(slips) {
+		weight = float64(len(c))
 		if len(c) == 1 {
 			add("slip", c[0].FromNs, "A wheel slipped at %.1f s: the wheels' turn and the IMU's disagreed, and the estimate's uncertainty grew to match.", run.ts(c[0].FromNs))
 			continue
@@ -91,6 +104,7 @@ func (run *Run) Problems() []Problem {
 		add("slip", s.SlipsAt[len(s.SlipsAt)-1], "%d more wheel slips were suspected after %.1f s.", s.Slips-len(s.SlipsAt), run.ts(s.SlipsAt[len(s.SlipsAt)-1]))
 	}
 	for _, g := range s.InputGaps {
+		weight = secs(g.ToNs - g.FromNs)
 		add("gap", g.FromNs, "No input arrived for %.1f s, from %.1f to %.1f s; the estimate only predicted meanwhile.", secs(g.ToNs-g.FromNs), run.ts(g.FromNs), run.ts(g.ToNs))
 	}
 	for i, g := range s.Gaps {
@@ -101,9 +115,14 @@ func (run *Run) Problems() []Problem {
 		add("gap", at, "The journal lost inputs after %.1f s (%s); the review goes on past the gap.", run.ts(at), g)
 	}
 	for _, r := range s.RefusedStretches {
+		weight = secs(r.ToNs - r.FromNs)
 		add("refused", r.FromNs, "%s, from %.1f to %.1f s: the estimate and that sensor disagreed for %.1f s.", upperFirst(r.Detail), run.ts(r.FromNs), run.ts(r.ToNs), secs(r.ToNs-r.FromNs))
 	}
 	for _, c := range clusters(s.Distrust) {
+		weight = 0
+		for _, d := range c {
+			weight += secs(d.ToNs - d.FromNs)
+		}
 		if len(c) == 1 {
 			d := c[0]
 			add("distrust", d.FromNs, "The estimate was not to be trusted from %.1f to %.1f s (%.1f s): %s.", run.ts(d.FromNs), run.ts(d.ToNs), secs(d.ToNs-d.FromNs), d.Detail)
@@ -117,6 +136,7 @@ func (run *Run) Problems() []Problem {
 			len(c), run.ts(c[0].FromNs), run.ts(c[len(c)-1].ToNs), secs(total), details(c))
 	}
 	for _, c := range clusters(s.Recoveries) {
+		weight = float64(len(c))
 		if len(c) == 1 {
 			add("moved", c[0].FromNs, "The robot was moved by hand at %.1f s and the estimate recovered: %s.", run.ts(c[0].FromNs), c[0].Detail)
 			continue
@@ -124,8 +144,50 @@ func (run *Run) Problems() []Problem {
 		add("moved", c[0].FromNs, "The estimate was re-initialised from the fixes %d times from %.1f to %.1f s, as after a move by hand; so many in a row point to a sensor that misleads the estimate rather than to moves (the first: %s).",
 			len(c), run.ts(c[0].FromNs), run.ts(c[len(c)-1].ToNs), c[0].Detail)
 	}
+	out = worst(out)
 	sort.SliceStable(out, func(i, j int) bool { return out[i].AtNs < out[j].AtNs })
 	return out
+}
+
+// worst keeps the maxPerKind heaviest problems of each kind, and one more
+// sentence for the rest of a kind, at the first of them.
+func worst(ps []Problem) []Problem {
+	byKind := map[string][]Problem{}
+	var kinds []string
+	for _, p := range ps {
+		if byKind[p.Kind] == nil {
+			kinds = append(kinds, p.Kind)
+		}
+		byKind[p.Kind] = append(byKind[p.Kind], p)
+	}
+	var out []Problem
+	for _, k := range kinds {
+		v := byKind[k]
+		if len(v) <= maxPerKind {
+			out = append(out, v...)
+			continue
+		}
+		sort.SliceStable(v, func(i, j int) bool { return v[i].weight > v[j].weight })
+		rest := v[maxPerKind:]
+		first := rest[0].AtNs
+		for _, p := range rest {
+			first = min(first, p.AtNs)
+		}
+		out = append(out, v[:maxPerKind]...)
+		out = append(out, Problem{Kind: k, AtNs: first, Text: fmt.Sprintf("%d more problems of this kind (%s), lighter than those above, the first at the time given; the figures mark them all.", len(rest), kindNames[k])})
+	}
+	return out
+}
+
+// kindNames says what each kind of problem is, for the sentence that
+// counts the rest.
+var kindNames = map[string]string{
+	"sensor":   "sensors that disagree",
+	"slip":     "wheel slips",
+	"gap":      "gaps",
+	"refused":  "fixes refused in a row",
+	"distrust": "stretches not to be trusted",
+	"moved":    "moves by hand",
 }
 
 // worstNIS returns the moment to look at for a sensor that disagrees: its

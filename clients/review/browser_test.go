@@ -86,6 +86,12 @@ func TestReportShowsWhereAndWhy(t *testing.T) {
 					t.Errorf("%d elements of class %q, want at least %d", got, class, n)
 				}
 			}
+			// The legend's ellipse swatches are filled with the ellipses'
+			// colours at alpha 50/255 (#1F5EA0 and #D67814, give or take
+			// the rounding of premultiplied alpha).
+			if !regexp.MustCompile(`style="fill:#1[EF]5[DE](9F|A0);fill-opacity:0\.196`).MatchString(page) || !regexp.MustCompile(`style="fill:#D[56]7[78]1[34];fill-opacity:0\.196`).MatchString(page) {
+				t.Errorf("the legend's ellipse swatches are not filled with the ellipses' colours")
+			}
 			if !regexp.MustCompile(`<li class="problem" data-kind="` + c.problem + `"><a class="moment" href="#t=[0-9.]+" data-t="[0-9.]+">`).MatchString(page) {
 				t.Errorf("no %s problem linked to its moment", c.problem)
 			}

@@ -20,17 +20,19 @@ import (
 )
 
 // Colours of the figures (our own palette), and their CSS forms for the
-// marks drawn over them.
+// marks drawn over them. Translucent ones are color.NRGBA: color.RGBA is
+// alpha-premultiplied, and a component above its alpha comes out as
+// nonsense (the old legend's blank swatches).
 var (
 	colFiltered = color.RGBA{R: 31, G: 94, B: 160, A: 255}
 	colSmoothed = color.RGBA{R: 214, G: 120, B: 20, A: 255}
 	colTruth    = color.RGBA{R: 60, G: 60, B: 60, A: 255}
-	colAccepted = color.RGBA{R: 40, G: 150, B: 70, A: 200}
+	colAccepted = color.NRGBA{R: 40, G: 150, B: 70, A: 200}
 	colRefused  = color.RGBA{R: 200, G: 30, B: 45, A: 255}
 	colBand     = color.RGBA{R: 120, G: 120, B: 120, A: 255}
-	colDistrust = color.RGBA{R: 200, G: 30, B: 45, A: 90}
-	colEllipseF = color.RGBA{R: 31, G: 94, B: 160, A: 50}
-	colEllipseS = color.RGBA{R: 214, G: 120, B: 20, A: 50}
+	colDistrust = color.NRGBA{R: 200, G: 30, B: 45, A: 90}
+	colEllipseF = color.NRGBA{R: 31, G: 94, B: 160, A: 50}
+	colEllipseS = color.NRGBA{R: 214, G: 120, B: 20, A: 50}
 	colSecond   = color.RGBA{R: 120, G: 60, B: 170, A: 255}
 )
 

@@ -864,7 +864,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	// of their own.
 	rows := make(chan []Point, 4)
 	written := make(chan error, 1)
-	go func() { written <- writePoints(run.SmoothedCSV, rows) }()
+	go func(rows <-chan []Point) { written <- writePoints(run.SmoothedCSV, rows) }(rows)
 	batch := make([]Point, 0, 4096)
 	defer func() {
 		if rows != nil {

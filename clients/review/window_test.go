@@ -103,3 +103,24 @@ func TestCompareOverlays(t *testing.T) {
 		t.Errorf("refused %d with p 0.99, %d with p 0.9", a.Summary.refusedFixes(), b.Summary.refusedFixes())
 	}
 }
+
+// TestReviewOfAnEmptyStretch: a stretch past the run's end gives an empty
+// review and a report, not a hang (the smoothed track's writer once read
+// its channel after the review had let go of it).
+func TestReviewOfAnEmptyStretch(t *testing.T) {
+	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 81, DurationS: 5})
+	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{FromNs: 100e9})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if run.Summary.Inputs != 0 || len(run.Filtered) != 0 {
+		t.Errorf("%d inputs and %d points past the run's end", run.Summary.Inputs, len(run.Filtered))
+	}
+	var page bytes.Buffer
+	if err := WriteHTML(&page, "empty", run); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(page.String(), "No problem found") {
+		t.Errorf("the empty report does not say that it found nothing")
+	}
+}

@@ -338,23 +338,27 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 }
 
 // stepWriter stores the steps in a goroutine of its own, while the replay
-// goes on.
+// goes on. It hands over the robot's slices of steps as they come, without
+// copying them.
 type stepWriter struct {
-	batches chan []fusion.Step
+	batches chan [][]fusion.Step
 	written chan error
-	pending []fusion.Step
+	pending [][]fusion.Step
+	count   int
 	closed  bool
 	err     error
 }
 
 func newStepWriter(steps *stepStore) *stepWriter {
-	fw := &stepWriter{batches: make(chan []fusion.Step, 4), written: make(chan error, 1)}
+	fw := &stepWriter{batches: make(chan [][]fusion.Step, 4), written: make(chan error, 1)}
 	go func() {
 		var err error
 		for b := range fw.batches {
-			for i := range b {
-				if err == nil {
-					err = steps.add(&b[i])
+			for _, ss := range b {
+				for i := range ss {
+					if err == nil {
+						err = steps.add(&ss[i])
+					}
 				}
 			}
 		}
@@ -366,13 +370,16 @@ func newStepWriter(steps *stepStore) *stepWriter {
 	return fw
 }
 
-// add queues steps, handing them over in batches of 4096 (or all at once
-// when flush is set).
+// add queues steps, handing them over in batches of about 4096 (or all at
+// once when flush is set). The writer owns them from then on.
 func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
-	fw.pending = append(fw.pending, steps...)
-	if len(fw.pending) >= 4096 || (flush && len(fw.pending) > 0) {
+	if len(steps) > 0 {
+		fw.pending = append(fw.pending, steps)
+		fw.count += len(steps)
+	}
+	if fw.count >= 4096 || (flush && fw.count > 0) {
 		fw.batches <- fw.pending
-		fw.pending = nil
+		fw.pending, fw.count = nil, 0
 	}
 }
 

@@ -52,9 +52,18 @@ type Options struct {
 	// MaxPoints bounds each plotted series (4000).
 	MaxPoints int
 	// MemoryBytes bounds the steps and smoothed states kept in memory
-	// (1 GiB, about 1.6 million steps: an hour at 200 Hz with its IMU and
-	// fixes); past it they go to files in TempDir.
+	// (32 MiB, about 50,000 steps: 45 s at 200 Hz with its IMU and fixes);
+	// past it they go to files in TempDir, which the smoother and the
+	// exports read in chunks. The journal's reader holds a segment (up to
+	// 64 MiB) besides, and the collector lets the heap grow to about twice
+	// what is live: 32 MiB keeps an hour's review under 256 MiB.
 	MemoryBytes int64
+	// FromNs and ToNs limit the review to a stretch of the run, in
+	// nanoseconds from the run's start (the stamp of its first input). The
+	// run is replayed from its start all the same, so that the estimate at
+	// FromNs is the one the robot had; only the stretch is summarised,
+	// exported and drawn. ToNs 0 means the end.
+	FromNs, ToNs int64
 }
 
 // Point is one step of a track.
@@ -69,7 +78,10 @@ type FixPoint struct {
 	SensorID string
 	Dim      int
 	XM, YM   float64 // NaN for fixes without a position
-	Verdict  pb.Verdict
+	// Verdict is the final verdict: a held fix's resolution once it came.
+	Verdict pb.Verdict
+	NIS     float64
+	Reason  string
 }
 
 // NISPoint is one NIS value.
@@ -77,6 +89,8 @@ type NISPoint struct {
 	StampNs int64
 	NIS     float64
 	Dim     int
+	// Refused is set for an input the gate refused.
+	Refused bool
 }
 
 // Interval is a stretch of time.
@@ -87,6 +101,10 @@ type Interval struct {
 
 // Summary holds the figures of a run.
 type Summary struct {
+	// RunStartNs is the stamp of the run's first input, from which
+	// Options.FromNs and ToNs and the report's time axes count; StartNs
+	// and EndNs bound the inputs reviewed.
+	RunStartNs     int64
 	StartNs, EndNs int64
 	Inputs         int
 	DistanceM      float64
@@ -99,17 +117,31 @@ type Summary struct {
 	FinalHeadingSt float64
 	Sensors        []*pb.SensorConsistency
 	Slips          int
-	Recoveries     []Interval
-	Distrust       []Interval
-	Truncated      string
+	// SlipsAt holds the stamps of the first 1000 slips suspected.
+	SlipsAt    []int64
+	Recoveries []Interval
+	Distrust   []Interval
+	// InputGaps are stretches of more than a second without an input.
+	InputGaps []Interval
+	// RefusedStretches are runs of three or more fixes of one sensor
+	// refused in a row (Detail names the sensor and the count).
+	RefusedStretches []Interval
+	Truncated        string
 	// Gaps lists the journal's continuity breaks (inputs or segments
-	// missing); the review goes on past each.
-	Gaps         []string
-	HasTruth     bool
-	FilteredRMSM float64
-	SmoothedRMSM float64
-	FilteredNEES float64
-	SmoothedNEES float64
+	// missing); the review goes on past each. GapsAt holds the stamp of
+	// the newest input before each.
+	Gaps     []string
+	GapsAt   []int64
+	HasTruth bool
+	// TruthMatched counts the estimate's steps the truth was interpolated
+	// to, of TruthSteps steps; TruthMaxGapNs is the largest gap between
+	// the two truth rows used for one of them.
+	TruthMatched, TruthSteps int
+	TruthMaxGapNs            int64
+	FilteredRMSM             float64
+	SmoothedRMSM             float64
+	FilteredNEES             float64
+	SmoothedNEES             float64
 	// Medians resist the few points right after the robot was moved.
 	FilteredNEESMedian, SmoothedNEESMedian float64
 }
@@ -122,18 +154,27 @@ type Run struct {
 	Summary  Summary
 	Filtered []Point // decimated for figures
 	Smoothed []Point
-	Truth    []estimator.Pose
-	Fixes    []FixPoint
-	NIS      map[string][]NISPoint
-	// FilteredCSV and SmoothedCSV are the exports written.
-	FilteredCSV, SmoothedCSV string
+	// Truth is the truth at the stamps of Filtered (NaN where it has
+	// none), when the review had a truth file.
+	Truth []estimator.Pose
+	Fixes []FixPoint
+	NIS   map[string][]NISPoint
+	// FilteredCSV and SmoothedCSV are the exports written, and FixesCSV
+	// (every fix with its final verdict).
+	FilteredCSV, SmoothedCSV, FixesCSV string
 }
 
+// truthReader reads a truth CSV forwards and interpolates it to stamps
+// in increasing order.
 type truthReader struct {
-	r    *csv.Reader
-	next int64
-	pose estimator.Pose
-	done bool
+	r                  *csv.Reader
+	prev, next         truthRow
+	havePrev, haveNext bool
+}
+
+type truthRow struct {
+	stamp int64
+	pose  estimator.Pose
 }
 
 func openTruth(path string) (*truthReader, *os.File, error) {
@@ -141,37 +182,74 @@ func openTruth(path string) (*truthReader, *os.File, error) {
 	if err != nil {
 		return nil, nil, err
 	}
-	tr := &truthReader{r: csv.NewReader(bufio.NewReader(f))}
-	tr.r.ReuseRecord = true
-	tr.advance()
-	return tr, f, nil
+	return newTruthReader(bufio.NewReader(f)), f, nil
 }
 
+func newTruthReader(r io.Reader) *truthReader {
+	tr := &truthReader{r: csv.NewReader(r)}
+	tr.r.ReuseRecord = true
+	tr.r.FieldsPerRecord = -1
+	tr.advance()
+	return tr
+}
+
+// advance moves next to prev and reads the next row.
 func (t *truthReader) advance() {
+	if t.haveNext {
+		t.prev, t.havePrev = t.next, true
+	}
+	t.haveNext = false
 	for {
 		rec, err := t.r.Read()
 		if err != nil {
-			t.done = true
 			return
 		}
+		if len(rec) < 4 {
+			continue
+		}
 		stamp, err := strconv.ParseInt(rec[0], 10, 64)
-		if err != nil || len(rec) < 4 {
+		if err != nil {
 			continue // the header
 		}
 		x, _ := strconv.ParseFloat(rec[1], 64)
 		y, _ := strconv.ParseFloat(rec[2], 64)
 		h, _ := strconv.ParseFloat(rec[3], 64)
-		t.next, t.pose = stamp, estimator.Pose{X: x, Y: y, Heading: h}
+		t.next, t.haveNext = truthRow{stamp, estimator.Pose{X: x, Y: y, Heading: h}}, true
 		return
 	}
 }
 
-// at returns the truth at exactly stamp, reading forwards.
-func (t *truthReader) at(stamp int64) (estimator.Pose, bool) {
-	for !t.done && t.next < stamp {
+// at returns the truth at stamp, interpolated linearly in x, y and the
+// wrapped heading difference between the two rows that bracket it, and the
+// gap between those rows (0 for an exact match); ok is false outside the
+// truth's span. Stamps must not decrease from call to call.
+func (t *truthReader) at(stamp int64) (p estimator.Pose, gapNs int64, ok bool) {
+	for t.haveNext && t.next.stamp < stamp {
 		t.advance()
 	}
-	return t.pose, !t.done && t.next == stamp
+	switch {
+	case t.haveNext && t.next.stamp == stamp:
+		return t.next.pose, 0, true
+	case t.havePrev && t.prev.stamp == stamp:
+		return t.prev.pose, 0, true
+	case !t.haveNext || !t.havePrev:
+		return p, 0, false
+	}
+	a, b := t.prev, t.next
+	f := float64(stamp-a.stamp) / float64(b.stamp-a.stamp)
+	p.X = a.pose.X + f*(b.pose.X-a.pose.X)
+	p.Y = a.pose.Y + f*(b.pose.Y-a.pose.Y)
+	p.Heading = wrap(a.pose.Heading + f*wrap(b.pose.Heading-a.pose.Heading))
+	return p, b.stamp - a.stamp, true
+}
+
+// wrap returns the angle in [-pi, pi).
+func wrap(a float64) float64 {
+	a = math.Mod(a+math.Pi, 2*math.Pi)
+	if a < 0 {
+		a += 2 * math.Pi
+	}
+	return a - math.Pi
 }
 
 // Analyze replays a recorded run with the smoother and writes the track
@@ -181,7 +259,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		opt.MaxPoints = 4000
 	}
 	if opt.MemoryBytes <= 0 {
-		opt.MemoryBytes = 1 << 30
+		opt.MemoryBytes = 32 << 20
 	}
 	run := &Run{Label: src.Label, NIS: map[string][]NISPoint{}}
 	if run.Label == "" {
@@ -194,31 +272,52 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw, err := newFilteredWriter(run.FilteredCSV, steps)
-	if err != nil {
-		return nil, err
-	}
+	fw := newStepWriter(steps)
 	defer fw.close()
-	rc := &recorder{run: run, a: &accumulator{run: run, fixAt: map[uint64]int{}}, fw: fw, progress: opt.Progress}
+	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs}
 	fr, err := rc.replay(src)
 	if err != nil {
 		return nil, err
 	}
-	fw.add(fr.FinishSteps(), true)
+	fw.add(a.window(fr.FinishSteps()), true)
 	if err := fw.close(); err != nil {
 		return nil, err
 	}
 	run.Config = fr.Config()
 	rc.a.finish(fr)
-	smoothed, err := smooth(steps, opt.TempDir)
+	// The filtered track is written from a reader of its own while the
+	// smoother runs: the replay kept both cores busy, the smoother keeps
+	// one.
+	filtered, err := steps.reader()
 	if err != nil {
 		return nil, err
 	}
-	defer smoothed.close()
-	if err := rc.a.tracks(steps, smoothed, src.Truth, outDir, opt.MaxPoints); err != nil {
+	written := make(chan error, 1)
+	go func() { written <- writeTrack(run.FilteredCSV, filtered) }()
+	err = smoothAndTrack(rc.a, steps, src.Truth, outDir, opt)
+	if werr := <-written; err == nil {
+		err = werr
+	}
+	if err != nil {
 		return nil, err
 	}
+	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
+	if err := writeFixes(run.FixesCSV, run.Fixes); err != nil {
+		return nil, err
+	}
+	run.Fixes = thinFixes(run.Fixes, opt.MaxPoints)
 	return run, nil
+}
+
+// smoothAndTrack smooths the steps and walks both tracks forwards.
+func smoothAndTrack(a *accumulator, steps *stepStore, truth, outDir string, opt Options) error {
+	smoothed, err := smooth(steps, opt.TempDir)
+	if err != nil {
+		return err
+	}
+	defer smoothed.close()
+	return a.tracks(steps, smoothed, truth, outDir, opt.MaxPoints)
 }
 
 // smooth runs the smoother over the steps into a state store of its own.
@@ -242,67 +341,55 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 	return smoothed, nil
 }
 
-// filteredWriter stores the steps and writes the filtered track in a
-// goroutine of its own, while the replay goes on.
-type filteredWriter struct {
-	batches chan []fusion.Step
+// stepWriter stores the steps in a goroutine of its own, while the replay
+// goes on. It hands over the robot's slices of steps as they come, without
+// copying them.
+type stepWriter struct {
+	batches chan [][]fusion.Step
 	written chan error
-	pending []fusion.Step
+	pending [][]fusion.Step
+	count   int
 	closed  bool
 	err     error
 }
 
-func newFilteredWriter(path string, steps *stepStore) (*filteredWriter, error) {
-	f, err := os.Create(path)
-	if err != nil {
-		return nil, err
-	}
-	fw := &filteredWriter{batches: make(chan []fusion.Step, 64), written: make(chan error, 1)}
+func newStepWriter(steps *stepStore) *stepWriter {
+	fw := &stepWriter{batches: make(chan [][]fusion.Step, 4), written: make(chan error, 1)}
 	go func() {
-		err := writeSteps(f, steps, fw.batches)
-		if cerr := f.Close(); err == nil {
-			err = cerr
+		var err error
+		for b := range fw.batches {
+			for _, ss := range b {
+				for i := range ss {
+					if err == nil {
+						err = steps.add(&ss[i])
+					}
+				}
+			}
+		}
+		if err == nil {
+			err = steps.flush()
 		}
 		fw.written <- err
 	}()
-	return fw, nil
+	return fw
 }
 
-// writeSteps stores every step of the batches and writes it as a CSV row.
-func writeSteps(f io.Writer, steps *stepStore, batches <-chan []fusion.Step) error {
-	w := bufio.NewWriterSize(f, 1<<20)
-	_, err := w.WriteString(strings.Join(csvHeader, ",") + "\n")
-	var row []byte
-	for b := range batches {
-		for i := range b {
-			if err == nil {
-				err = steps.add(&b[i])
-			}
-			row = appendRow(row[:0], b[i].StampNs, &b[i].Post)
-			if _, werr := w.Write(row); err == nil {
-				err = werr
-			}
-		}
+// add queues steps, handing them over in batches of about 4096 (or all at
+// once when flush is set). The writer owns them from then on.
+func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
+	if len(steps) > 0 {
+		fw.pending = append(fw.pending, steps)
+		fw.count += len(steps)
 	}
-	if ferr := w.Flush(); err == nil {
-		err = ferr
-	}
-	return err
-}
-
-// add queues steps, handing them over in batches of 4096 (or all at once
-// when flush is set).
-func (fw *filteredWriter) add(steps []fusion.Step, flush bool) {
-	fw.pending = append(fw.pending, steps...)
-	if len(fw.pending) >= 4096 || (flush && len(fw.pending) > 0) {
+	if fw.count >= 4096 || (flush && fw.count > 0) {
 		fw.batches <- fw.pending
-		fw.pending = nil
+		fw.pending, fw.count = nil, 0
 	}
 }
 
 // close waits for the writer to finish and returns its error; it may be
 // called again.
-func (fw *filteredWriter) close() error {
+func (fw *stepWriter) close() error {
 	if !fw.closed {
 		fw.closed = true
 		close(fw.batches)
@@ -311,13 +398,41 @@ func (fw *filteredWriter) close() error {
 	return fw.err
 }
 
+// writeTrack writes the filtered track of the steps as CSV.
+func writeTrack(path string, steps *stepStore) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return err
+	}
+	w := bufio.NewWriterSize(f, 1<<20)
+	_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
+	var st fusion.Step
+	var row []byte
+	for i := 0; i < steps.Len() && err == nil; i++ {
+		if err = steps.read(i, &st, false); err == nil {
+			row = appendRow(row[:0], st.StampNs, &st.Post)
+			_, err = w.Write(row)
+		}
+	}
+	if ferr := w.Flush(); err == nil {
+		err = ferr
+	}
+	if cerr := f.Close(); err == nil {
+		err = cerr
+	}
+	return err
+}
+
 // recorder runs the inputs of a recorded run through a robot and gathers
 // the summary and the steps.
 type recorder struct {
 	run      *Run
 	a        *accumulator
-	fw       *filteredWriter
+	fw       *stepWriter
 	progress func(inputs int)
+	// fromNs and toNs are Options.FromNs and ToNs; seen counts the inputs.
+	fromNs, toNs int64
+	seen         int
 }
 
 // replay replays the source and returns the robot after its last input.
@@ -339,10 +454,20 @@ func (rc *recorder) opened(fr *fusion.Robot) {
 
 // took records one input the robot was given and its response.
 func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
+	if rc.seen == 0 {
+		// The run's start is its first input's stamp.
+		start := sampleStamp(s)
+		rc.run.Summary.RunStartNs = start
+		rc.a.fromNs, rc.a.toNs = start+rc.fromNs, math.MaxInt64
+		if rc.toNs > 0 {
+			rc.a.toNs = start + rc.toNs
+		}
+	}
+	rc.seen++
 	rc.a.input(s, resp)
-	rc.fw.add(fr.TakeSteps(), false)
-	if rc.progress != nil && rc.run.Summary.Inputs%10000 == 0 {
-		rc.progress(rc.run.Summary.Inputs)
+	rc.fw.add(rc.a.window(fr.TakeSteps()), false)
+	if rc.progress != nil && rc.seen%10000 == 0 {
+		rc.progress(rc.seen)
 	}
 }
 
@@ -353,6 +478,7 @@ func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
 	fr, scan, err := journal.Replay(src.JournalDir, id, journal.ReplayOptions{Config: src.Override, SkipOutputs: true, ReadOnly: true,
 		Gap: func(err error) error {
 			gaps = append(gaps, err.Error())
+			rc.run.Summary.GapsAt = append(rc.run.Summary.GapsAt, rc.a.newest)
 			return nil
 		},
 		Opened: func(fr *fusion.Robot) error {
@@ -416,24 +542,97 @@ func (rc *recorder) replaySamples(src Source) (*fusion.Robot, error) {
 // robotID returns the id of a robot given by id or by name ("robots/{id}").
 func robotID(robot string) string { return strings.TrimPrefix(robot, "robots/") }
 
+// longGapNs is the shortest stretch without an input that the review
+// reports as a gap.
+const longGapNs = 1e9
+
 // accumulator gathers the summary while inputs are replayed.
 type accumulator struct {
 	run       *Run
 	fixAt     map[uint64]int // held fix sequence -> index in run.Fixes
+	nis       map[string]*nisSeries
+	maxPoints int
 	lostAt    int64
 	lostWhy   string
 	lost      bool
-	lastStamp int64
+	// newest is the newest input stamp so far; fromNs and toNs bound the
+	// stretch reviewed (absolute stamps).
+	newest, fromNs, toNs int64
+}
+
+func (a *accumulator) in(stamp int64) bool { return stamp >= a.fromNs && stamp <= a.toNs }
+
+// window keeps the steps inside the stretch reviewed (in place).
+func (a *accumulator) window(steps []fusion.Step) []fusion.Step {
+	out := steps[:0]
+	for i := range steps {
+		if a.in(steps[i].StampNs) {
+			out = append(out, steps[i])
+		}
+	}
+	return out
+}
+
+// nisSeries keeps a bounded, evenly thinned series as it grows: past twice
+// its bound it drops every other point and keeps one in twice as many from
+// then on.
+type nisSeries struct {
+	pts    []NISPoint
+	stride int
+	seen   int
+}
+
+func (ns *nisSeries) add(p NISPoint, bound int) {
+	if ns.stride == 0 {
+		ns.stride = 1
+	}
+	if ns.seen%ns.stride == 0 || p.Refused {
+		ns.pts = append(ns.pts, p)
+		if len(ns.pts) >= 2*bound {
+			kept := ns.pts[:0]
+			for i, q := range ns.pts {
+				if i%2 == 0 || q.Refused {
+					kept = append(kept, q)
+				}
+			}
+			ns.pts = kept
+			ns.stride *= 2
+		}
+	}
+	ns.seen++
+}
+
+func (a *accumulator) addNIS(sensor string, p NISPoint) {
+	ns := a.nis[sensor]
+	if ns == nil {
+		ns = &nisSeries{}
+		a.nis[sensor] = ns
+	}
+	ns.add(p, a.maxPoints)
 }
 
 func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	sum := &a.run.Summary
-	sum.Inputs++
 	stamp := sampleStamp(s)
+	for _, r := range resp.GetResolved() {
+		if i, ok := a.fixAt[r.GetSequence()]; ok {
+			delete(a.fixAt, r.GetSequence())
+			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
+		}
+	}
+	if !a.in(stamp) {
+		a.newest = max(a.newest, stamp)
+		return
+	}
+	sum.Inputs++
 	if sum.Inputs == 1 || stamp < sum.StartNs {
 		sum.StartNs = stamp
 	}
 	sum.EndNs = max(sum.EndNs, stamp)
+	if sum.Inputs > 1 && stamp-a.newest > longGapNs {
+		sum.InputGaps = append(sum.InputGaps, Interval{a.newest, stamp, fmt.Sprintf("no input for %.1f s", secs(stamp-a.newest))})
+	}
+	a.newest = max(a.newest, stamp)
 	if f := s.GetFix(); f != nil {
 		fp := FixPoint{StampNs: f.GetStampNs(), SensorID: f.GetSensorId(), Dim: int(f.GetCovariance().GetDimension()), Verdict: resp.GetVerdict()}
 		if fp.SensorID == "" {
@@ -451,23 +650,27 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 			a.fixAt[resp.GetSequence()] = len(a.run.Fixes) - 1
 		} else {
-			a.fixVerdict(&a.run.Fixes[len(a.run.Fixes)-1], resp.GetVerdict(), resp.GetNis(), resp.GetRefusal())
+			a.fixVerdict(&a.run.Fixes[len(a.run.Fixes)-1], resp.GetVerdict(), resp.GetNis(), resp.GetRefusal(), resp.GetReason())
 		}
 	}
-	if h := s.GetHeading(); h != nil && resp.GetVerdict() == pb.Verdict_VERDICT_APPLIED && resp.GetNis() > 0 {
-		a.run.NIS["imu"] = append(a.run.NIS["imu"], NISPoint{h.GetStampNs(), resp.GetNis(), 1})
-	}
-	for _, r := range resp.GetResolved() {
-		if i, ok := a.fixAt[r.GetSequence()]; ok {
-			delete(a.fixAt, r.GetSequence())
-			a.run.Fixes[i].Verdict = r.GetVerdict()
-			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal())
+	if h := s.GetHeading(); h != nil && resp.GetNis() > 0 {
+		switch resp.GetVerdict() {
+		case pb.Verdict_VERDICT_APPLIED:
+			a.addNIS("imu", NISPoint{h.GetStampNs(), resp.GetNis(), 1, false})
+		case pb.Verdict_VERDICT_GATED:
+			a.addNIS("imu", NISPoint{h.GetStampNs(), resp.GetNis(), 1, true})
 		}
 	}
 	for _, e := range resp.GetEvents() {
+		if !a.in(e.GetStampNs()) {
+			continue
+		}
 		switch e.GetKind() {
 		case pb.EventKind_EVENT_KIND_SLIP_SUSPECTED:
 			sum.Slips++
+			if len(sum.SlipsAt) < 1000 {
+				sum.SlipsAt = append(sum.SlipsAt, e.GetStampNs())
+			}
 		case pb.EventKind_EVENT_KIND_MOVE_RECOVERED:
 			sum.Recoveries = append(sum.Recoveries, Interval{e.GetStampNs(), e.GetStampNs(), e.GetDetail()})
 		case pb.EventKind_EVENT_KIND_TRUST_LOST:
@@ -484,8 +687,11 @@ func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	}
 }
 
-func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusal pb.Refusal) {
+// fixVerdict records a fix's final verdict; refusals are grouped by their
+// value (refusal), the text (reason) is kept for the fixes' export.
+func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusal pb.Refusal, reason string) {
 	sum := &a.run.Summary
+	fp.Verdict, fp.NIS, fp.Reason = v, nis, reason
 	sum.Fixes[convert.VerdictName(v)]++
 	switch {
 	case refusal != pb.Refusal_REFUSAL_UNSPECIFIED:
@@ -494,18 +700,103 @@ func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusa
 		sum.Reasons["gated"]++
 	}
 	if (v == pb.Verdict_VERDICT_APPLIED || v == pb.Verdict_VERDICT_GATED) && nis > 0 {
-		a.run.NIS[fp.SensorID] = append(a.run.NIS[fp.SensorID], NISPoint{fp.StampNs, nis, fp.Dim})
+		a.addNIS(fp.SensorID, NISPoint{fp.StampNs, nis, fp.Dim, v == pb.Verdict_VERDICT_GATED})
 	}
 }
 
 func (a *accumulator) finish(fr *fusion.Robot) {
 	sum := &a.run.Summary
 	if a.lost {
-		sum.Distrust = append(sum.Distrust, Interval{a.lostAt, fr.NewestNs(), a.lostWhy + " (until the end)"})
+		end := fr.NewestNs()
+		if a.toNs < end {
+			end = a.toNs
+		}
+		sum.Distrust = append(sum.Distrust, Interval{a.lostAt, end, a.lostWhy + " (until the end)"})
 	}
 	sum.Sensors = convert.StatsToProto(fr.Stats()).GetSensors()
 	// Held fixes that never resolved.
 	sum.Fixes["held"] += len(a.fixAt)
+	for id, ns := range a.nis {
+		sort.Slice(ns.pts, func(i, j int) bool { return ns.pts[i].StampNs < ns.pts[j].StampNs })
+		a.run.NIS[id] = ns.pts
+	}
+	sum.RefusedStretches = refusedStretches(a.run.Fixes)
+}
+
+// refusedStretches finds runs of three or more fixes of one sensor refused
+// in a row (in stamp order; held fixes that never resolved break no run).
+func refusedStretches(fixes []FixPoint) []Interval {
+	idx := make([]int, len(fixes))
+	for i := range idx {
+		idx[i] = i
+	}
+	sort.SliceStable(idx, func(i, j int) bool {
+		a, b := &fixes[idx[i]], &fixes[idx[j]]
+		if a.SensorID != b.SensorID {
+			return a.SensorID < b.SensorID
+		}
+		return a.StampNs < b.StampNs
+	})
+	var out []Interval
+	run := 0
+	flush := func(end int) {
+		if run >= 3 {
+			first, last := &fixes[idx[end-run]], &fixes[idx[end-1]]
+			out = append(out, Interval{first.StampNs, last.StampNs, fmt.Sprintf("%d fixes of %s refused in a row", run, first.SensorID)})
+		}
+		run = 0
+	}
+	for k, i := range idx {
+		if k > 0 && fixes[idx[k-1]].SensorID != fixes[i].SensorID {
+			flush(k)
+		}
+		switch fixes[i].Verdict {
+		case pb.Verdict_VERDICT_APPLIED:
+			flush(k)
+		case pb.Verdict_VERDICT_HELD:
+		default:
+			run++
+		}
+	}
+	flush(len(idx))
+	sort.Slice(out, func(i, j int) bool { return out[i].FromNs < out[j].FromNs })
+	return out
+}
+
+// writeFixes writes every fix with its final verdict as CSV.
+func writeFixes(path string, fixes []FixPoint) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return err
+	}
+	w := csv.NewWriter(f)
+	w.Write([]string{"stamp_ns", "sensor_id", "x_m", "y_m", "verdict", "nis", "reason"})
+	for _, fp := range fixes {
+		w.Write([]string{strconv.FormatInt(fp.StampNs, 10), fp.SensorID, strconv.FormatFloat(fp.XM, 'g', -1, 64), strconv.FormatFloat(fp.YM, 'g', -1, 64),
+			convert.VerdictName(fp.Verdict), strconv.FormatFloat(fp.NIS, 'g', -1, 64), fp.Reason})
+	}
+	w.Flush()
+	err = w.Error()
+	if cerr := f.Close(); err == nil {
+		err = cerr
+	}
+	return err
+}
+
+// thinFixes thins the accepted fixes kept for the figures evenly to about
+// bound, and keeps every refused one.
+func thinFixes(fixes []FixPoint, bound int) []FixPoint {
+	if len(fixes) <= bound {
+		return fixes
+	}
+	step := (len(fixes) + bound - 1) / bound
+	var out []FixPoint
+	for i, fp := range fixes {
+		if i%step == 0 || fp.Verdict != pb.Verdict_VERDICT_APPLIED {
+			out = append(out, fp)
+		}
+	}
+	return out
 }
 
 // Label is the name a run gets in reports and export file names unless
@@ -533,18 +824,26 @@ func sampleStamp(s *pb.Sample) int64 {
 
 var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "cov_xy_m2", "cov_xh_m_rad", "cov_yy_m2", "cov_yh_m_rad", "cov_hh_rad2", "position95_m", "imu_offset_rad", "imu_offset_var_rad2"}
 
-// appendRow appends one CSV row of the track (numbers only: no quoting).
+// appendRow appends one CSV row of the track (numbers only: no quoting):
+// the mean with ten significant digits (a tenth of a micrometre at a
+// kilometre), the covariance and the radius with seven; fixed digits format
+// several times faster than the shortest exact form, and the file is
+// smaller.
 func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
 	b = strconv.AppendInt(b, stamp, 10)
-	for _, v := range [...]float64{s.MeanAt(0), s.MeanAt(1), s.MeanAt(2), s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
+	for _, v := range [...]float64{s.MeanAt(0), s.MeanAt(1), s.MeanAt(2)} {
 		b = append(b, ',')
-		b = strconv.AppendFloat(b, v, 'g', -1, 64)
+		b = strconv.AppendFloat(b, v, 'g', 10, 64)
+	}
+	for _, v := range [...]float64{s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
+		b = append(b, ',')
+		b = strconv.AppendFloat(b, v, 'g', 7, 64)
 	}
 	b = append(b, ',')
 	if s.Size() == 4 {
-		b = strconv.AppendFloat(b, s.MeanAt(3), 'g', -1, 64)
+		b = strconv.AppendFloat(b, s.MeanAt(3), 'g', 10, 64)
 		b = append(b, ',')
-		b = strconv.AppendFloat(b, s.At(3, 3), 'g', -1, 64)
+		b = strconv.AppendFloat(b, s.At(3, 3), 'g', 7, 64)
 	} else {
 		b = append(b, ',')
 	}
@@ -569,14 +868,18 @@ func nees3(s *estimator.State, tr estimator.Pose) float64 {
 func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir string, maxPoints int) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
-	fs, err := os.Create(run.SmoothedCSV)
-	if err != nil {
-		return err
-	}
-	defer fs.Close()
-	ws := bufio.NewWriterSize(fs, 1<<20)
-	ws.WriteString(strings.Join(csvHeader, ",") + "\n")
-	var row []byte
+	// The smoothed track's rows are formatted and written by a goroutine
+	// of their own.
+	rows := make(chan []Point, 4)
+	written := make(chan error, 1)
+	go func(rows <-chan []Point) { written <- writePoints(run.SmoothedCSV, rows) }(rows)
+	batch := make([]Point, 0, 4096)
+	defer func() {
+		if rows != nil {
+			close(rows)
+			<-written
+		}
+	}()
 	var truth *truthReader
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -591,7 +894,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	var st fusion.Step
 	var smoothed estimator.State
 	var fSq, sSq, fNees, sNees float64
-	var fAll, sAll []float64
+	var fAll, sAll logHistogram
 	var nTruth, nNees int
 	var prevX, prevY float64
 	for i := 0; i < n; i++ {
@@ -613,12 +916,20 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
-		row = appendRow(row[:0], st.StampNs, &smoothed)
-		ws.Write(row)
+		if batch = append(batch, Point{st.StampNs, smoothed}); len(batch) == cap(batch) {
+			rows <- batch
+			batch = make([]Point, 0, 4096)
+		}
 		var tp estimator.Pose
 		haveTruth := false
 		if truth != nil {
-			tp, haveTruth = truth.at(st.StampNs)
+			var gap int64
+			tp, gap, haveTruth = truth.at(st.StampNs)
+			sum.TruthSteps++
+			if haveTruth {
+				sum.TruthMatched++
+				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, gap)
+			}
 		}
 		if haveTruth {
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
@@ -628,18 +939,25 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 				fNees += fn
 				sNees += sn
 				nNees++
-				fAll, sAll = append(fAll, fn), append(sAll, sn)
+				fAll.add(fn)
+				sAll.add(sn)
 			}
 		}
 		if i%every == 0 || i == n-1 {
 			run.Filtered = append(run.Filtered, Point{st.StampNs, *p})
 			run.Smoothed = append(run.Smoothed, Point{st.StampNs, smoothed})
-			if haveTruth {
+			if truth != nil {
+				if !haveTruth {
+					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
+				}
 				run.Truth = append(run.Truth, tp)
 			}
 		}
 	}
-	if err := ws.Flush(); err != nil {
+	rows <- batch
+	close(rows)
+	rows = nil
+	if err := <-written; err != nil {
 		return err
 	}
 	if nTruth > 0 {
@@ -647,22 +965,79 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		sum.FilteredRMSM, sum.SmoothedRMSM = math.Sqrt(fSq/float64(nTruth)), math.Sqrt(sSq/float64(nTruth))
 		if nNees > 0 {
 			sum.FilteredNEES, sum.SmoothedNEES = fNees/float64(nNees), sNees/float64(nNees)
-			sort.Float64s(fAll)
-			sort.Float64s(sAll)
-			sum.FilteredNEESMedian, sum.SmoothedNEESMedian = fAll[len(fAll)/2], sAll[len(sAll)/2]
-		}
-	}
-	for k, v := range run.NIS {
-		if len(v) > maxPoints {
-			step := (len(v) + maxPoints - 1) / maxPoints
-			var d []NISPoint
-			for i := 0; i < len(v); i += step {
-				d = append(d, v[i])
-			}
-			run.NIS[k] = d
+			sum.FilteredNEESMedian, sum.SmoothedNEESMedian = fAll.median(), sAll.median()
 		}
 	}
 	return nil
 }
 
 func sq(v float64) float64 { return v * v }
+
+// writePoints writes the states of the batches as a CSV track.
+func writePoints(path string, batches <-chan []Point) error {
+	f, err := os.Create(path)
+	if err == nil {
+		w := bufio.NewWriterSize(f, 1<<20)
+		_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
+		var row []byte
+		for b := range batches {
+			for i := range b {
+				if err == nil {
+					row = appendRow(row[:0], b[i].StampNs, &b[i].State)
+					_, err = w.Write(row)
+				}
+			}
+		}
+		if ferr := w.Flush(); err == nil {
+			err = ferr
+		}
+		if cerr := f.Close(); err == nil {
+			err = cerr
+		}
+	}
+	for range batches {
+		// Drain what is left after an error, so that the sender ends.
+	}
+	return err
+}
+
+// logHistogram counts positive values in bins a thousandth wide on a log
+// scale, for a median in bounded memory (within 0.05%).
+type logHistogram struct {
+	counts map[int32]int
+	n      int
+}
+
+var logBin = math.Log1p(1e-3)
+
+func (h *logHistogram) add(v float64) {
+	if h.counts == nil {
+		h.counts = map[int32]int{}
+	}
+	k := int32(math.MinInt32)
+	if v > 0 {
+		k = int32(math.Floor(math.Log(v) / logBin))
+	}
+	h.counts[k]++
+	h.n++
+}
+
+// median returns the middle of the bin that holds the value of rank n/2
+// (counting from 0), as sort.Float64s(v)[len(v)/2] would pick it.
+func (h *logHistogram) median() float64 {
+	keys := make([]int32, 0, len(h.counts))
+	for k := range h.counts {
+		keys = append(keys, k)
+	}
+	sort.Slice(keys, func(i, j int) bool { return keys[i] < keys[j] })
+	seen := 0
+	for _, k := range keys {
+		if seen += h.counts[k]; seen > h.n/2 {
+			if k == math.MinInt32 {
+				return 0
+			}
+			return math.Exp((float64(k) + 0.5) * logBin)
+		}
+	}
+	return math.NaN()
+}

@@ -91,7 +91,7 @@ func (fs *fileStore) appendRec(b []byte) error {
 // record returns record i, reading the chunk that ends at it (the smoother
 // and the report read backwards and forwards in order).
 func (fs *fileStore) record(i int, backwards bool) ([]byte, error) {
-	if fs.w.Buffered() > 0 {
+	if fs.w != nil && fs.w.Buffered() > 0 {
 		if err := fs.w.Flush(); err != nil {
 			return nil, err
 		}
@@ -287,6 +287,28 @@ func (ss *stepStore) read(i int, dst *fusion.Step, backwards bool) error {
 }
 
 func (ss *stepStore) onDisk() bool { return ss.file != nil }
+
+// flush writes the steps buffered for the file.
+func (ss *stepStore) flush() error {
+	if ss.file != nil {
+		return ss.file.w.Flush()
+	}
+	return nil
+}
+
+// reader returns a reader of the steps with a cache of its own, which may
+// read while the store is read elsewhere (once every step was added and
+// flushed). It shares the store's file: close only the store.
+func (ss *stepStore) reader() (*stepStore, error) {
+	if ss.file == nil {
+		return ss, nil // reading memory changes nothing
+	}
+	if err := ss.flush(); err != nil {
+		return nil, err
+	}
+	fs := &fileStore{f: ss.file.f, size: ss.file.size, n: ss.file.n, cacheN: -1}
+	return &stepStore{file: &stepFile{fileStore: fs, k: ss.file.k}}, nil
+}
 
 func (ss *stepStore) close() error {
 	if ss.file != nil {

@@ -19,14 +19,19 @@ import (
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("replay", "-journal DIR -robot NAME [-config OTHER.yaml] [flags]\n       reckon replay -config ROBOT.yaml -samples SAMPLES.jsonl [flags]", `
 Runs a journal, or a robot configuration and a JSON Lines file, through the
-estimator offline and writes the track and every verdict.`)
+estimator offline and writes the track and every verdict. In csv and table
+output a held fix's row shows its final verdict once it was resolved.
+-format samples writes the raw samples back as JSON Lines instead, which
+"reckon replay -config ROBOT.yaml -samples FILE" takes again.`)
 	fs.SetOutput(stderr)
 	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
 	robot := fs.String("robot", "", "robot id or name in the journal")
 	config := fs.String("config", "", "YAML robot configuration: replaces the journal's, or configures -samples")
 	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
-	format := fs.String("format", "csv", "csv or jsonl (table also works)")
+	format := fs.String("format", "csv", "csv, jsonl, or samples (the raw samples as JSON Lines); table also works")
 	out := fs.String("out", "", "output file (default standard output)")
+	var span timeSpan
+	span.add(fs)
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
 		return err
@@ -43,10 +48,17 @@ estimator offline and writes the track and every verdict.`)
 		defer f.Close()
 		w = f
 	}
-	pw, err := newPoseWriter(*format, w)
-	if err != nil {
-		return usagef(fs, "%v", err)
+	var ow outputWriter
+	if *format == "samples" {
+		ow = &sampleWriter{w: w}
+	} else {
+		pw, err := newPoseWriter(*format, w)
+		if err != nil {
+			return usagef(fs, "%v", err)
+		}
+		ow = &heldWriter{pw: pw, resolve: *format != "jsonl"}
 	}
+	ow = &spanWriter{next: ow, span: span}
 	var override *pb.RobotConfig
 	if *config != "" {
 		if override, err = loadYAML(*config); err != nil {
@@ -55,14 +67,136 @@ estimator offline and writes the track and every verdict.`)
 	}
 	switch {
 	case *journal != "" && *robot != "":
-		return replayJournal(ctx, *journal, *robot, override, pw, stderr)
+		err = replayJournal(ctx, *journal, *robot, override, ow, stderr)
 	case *samples != "" && override != nil:
-		return replaySamples(ctx, *samples, override, pw, stderr)
+		err = replaySamples(ctx, *samples, override, ow, stderr)
+	default:
+		return usagef(fs, "needs -journal and -robot, or -config and -samples")
 	}
-	return usagef(fs, "needs -journal and -robot, or -config and -samples")
+	if ferr := ow.flush(); err == nil {
+		err = ferr
+	}
+	return err
 }
 
-func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
+// outputWriter takes each replayed input with its response and the pose
+// after it.
+type outputWriter interface {
+	input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error
+	// outside takes the response to an input that is not written.
+	outside(resp *pb.IngestResponse) error
+	flush() error
+}
+
+// sampleWriter writes the raw samples as JSON Lines.
+type sampleWriter struct{ w io.Writer }
+
+func (sw *sampleWriter) input(s *pb.Sample, _ *pb.FusedPose, _ *pb.IngestResponse) error {
+	return convert.WriteJSONLine(sw.w, s)
+}
+
+func (sw *sampleWriter) outside(*pb.IngestResponse) error { return nil }
+
+func (sw *sampleWriter) flush() error { return nil }
+
+// maxHeldRows bounds the rows kept back while a fix is held; past it they
+// are written with the fix still held.
+const maxHeldRows = 100000
+
+// heldWriter writes poses and verdicts; with resolve set, it keeps the rows
+// back while a fix is held, so that the held fix's row can show the final
+// verdict that a later response resolves it to.
+type heldWriter struct {
+	pw      *poseWriter
+	resolve bool
+	rows    []heldRow
+	held    map[uint64]int // sequence -> index in rows
+}
+
+type heldRow struct {
+	pose *pb.FusedPose
+	resp *pb.IngestResponse
+}
+
+func (hw *heldWriter) input(_ *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
+	if !hw.resolve {
+		return hw.pw.pose(p, resp)
+	}
+	hw.settle(resp)
+	if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+		if hw.held == nil {
+			hw.held = map[uint64]int{}
+		}
+		hw.held[resp.GetSequence()] = len(hw.rows)
+	}
+	if len(hw.held) == 0 && len(hw.rows) == 0 {
+		return hw.pw.pose(p, resp)
+	}
+	hw.rows = append(hw.rows, heldRow{p, resp})
+	if len(hw.held) == 0 || len(hw.rows) >= maxHeldRows {
+		return hw.flush()
+	}
+	return nil
+}
+
+// settle gives the held rows that resp resolves their final verdict.
+func (hw *heldWriter) settle(resp *pb.IngestResponse) {
+	for _, r := range resp.GetResolved() {
+		if i, ok := hw.held[r.GetSequence()]; ok {
+			delete(hw.held, r.GetSequence())
+			final := proto.Clone(hw.rows[i].resp).(*pb.IngestResponse)
+			final.Verdict, final.Nis, final.Reason = r.GetVerdict(), r.GetNis(), r.GetReason()
+			hw.rows[i].resp = final
+		}
+	}
+}
+
+func (hw *heldWriter) outside(resp *pb.IngestResponse) error {
+	if !hw.resolve || len(hw.held) == 0 {
+		return nil
+	}
+	hw.settle(resp)
+	if len(hw.held) == 0 {
+		return hw.flush()
+	}
+	return nil
+}
+
+func (hw *heldWriter) flush() error {
+	for _, r := range hw.rows {
+		if err := hw.pw.pose(r.pose, r.resp); err != nil {
+			return err
+		}
+	}
+	hw.rows, hw.held = hw.rows[:0], nil
+	return nil
+}
+
+// spanWriter passes on the inputs stamped inside a time span.
+type spanWriter struct {
+	next    outputWriter
+	span    timeSpan
+	started bool
+	startNs int64
+}
+
+func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
+	stamp := sampleStamp(s)
+	if !sw.started {
+		sw.started, sw.startNs = true, stamp
+	}
+	if !sw.span.holds(stamp - sw.startNs) {
+		// It may still resolve a held fix inside the span.
+		return sw.next.outside(resp)
+	}
+	return sw.next.input(s, p, resp)
+}
+
+func (sw *spanWriter) outside(resp *pb.IngestResponse) error { return sw.next.outside(resp) }
+
+func (sw *spanWriter) flush() error { return sw.next.flush() }
+
+func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, ow outputWriter, stderr io.Writer) error {
 	id := robot
 	if n, err := server.RobotID(robot); err == nil {
 		id = n
@@ -78,7 +212,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 		} else {
 			differ++
 		}
-		return pw.pose(convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
+		return ow.input(r.Input.GetSample(), convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
 	}})
 	if err != nil {
 		return err
@@ -99,7 +233,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	return nil
 }
 
-func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, pw *poseWriter, stderr io.Writer) error {
+func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, ow outputWriter, stderr io.Writer) error {
 	cfg, err := convert.ConfigFromProto(cfgProto)
 	if err != nil {
 		return err
@@ -130,7 +264,7 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, p
 		// As the service would take it (convert.Take: decoding, then the
 		// robot, which checks each input first).
 		resp, _ := convert.Take(fr, s, 0)
-		if err := pw.pose(convert.PoseToProto(name, fr.Pose(), fr.Sequence()), resp); err != nil {
+		if err := ow.input(s, convert.PoseToProto(name, fr.Pose(), fr.Sequence()), resp); err != nil {
 			return err
 		}
 		n++

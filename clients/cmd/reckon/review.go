@@ -6,8 +6,10 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 
 	"github.com/schollz/progressbar/v3"
@@ -31,6 +33,48 @@ func addSourceFlags(fs *flag.FlagSet) sourceFlags {
 		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),
 		out:     fs.String("out", "", "directory for the report and the exports (default review-<robot>)"),
 	}
+}
+
+// timeSpan is the -from and -to flags of review, compare and replay: a
+// stretch of a run in time from its start (the stamp of its first input).
+type timeSpan struct{ fromNs, toNs int64 }
+
+func (ts *timeSpan) add(fs *flag.FlagSet) {
+	fs.Var(offsetFlag{&ts.fromNs}, "from", "start of the stretch to cover, from the run's start: seconds (12.5 or 12.5s) or nanoseconds (12500000000ns)")
+	fs.Var(offsetFlag{&ts.toNs}, "to", "end of the stretch to cover, from the run's start, as -from (default: the end)")
+}
+
+// holds reports whether an offset from the run's start lies in the span.
+func (ts timeSpan) holds(offsetNs int64) bool {
+	return offsetNs >= ts.fromNs && (ts.toNs == 0 || offsetNs <= ts.toNs)
+}
+
+// offsetFlag is a time offset flag: seconds, with or without "s", or
+// nanoseconds with "ns".
+type offsetFlag struct{ ns *int64 }
+
+func (f offsetFlag) String() string {
+	if f.ns == nil || *f.ns == 0 {
+		return ""
+	}
+	return strconv.FormatFloat(float64(*f.ns)*1e-9, 'g', -1, 64) + "s"
+}
+
+func (f offsetFlag) Set(v string) error {
+	if n, ok := strings.CutSuffix(v, "ns"); ok {
+		ns, err := strconv.ParseInt(n, 10, 64)
+		if err != nil || ns < 0 {
+			return fmt.Errorf("want nanoseconds like 12500000000ns, not %q", v)
+		}
+		*f.ns = ns
+		return nil
+	}
+	sec, err := strconv.ParseFloat(strings.TrimSuffix(v, "s"), 64)
+	if err != nil || sec < 0 || math.IsInf(sec, 0) || math.IsNaN(sec) {
+		return fmt.Errorf("want seconds like 12.5 or 12.5s, or nanoseconds like 12500000000ns, not %q", v)
+	}
+	*f.ns = int64(math.Round(sec * 1e9))
+	return nil
 }
 
 func loadYAML(path string) (*pb.RobotConfig, error) {
@@ -85,10 +129,14 @@ func progress(stderr io.Writer, what string) (func(int), func()) {
 func runReview(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("review", "(-journal DIR -robot NAME | -config ROBOT.yaml -samples SAMPLES.jsonl) [flags]", `
 Replays a recorded run with the smoother and writes a text summary, an HTML
-report with figures and CSV exports of the filtered and smoothed tracks.`)
+report with figures (problems found, linked to their moment; zoom and pan in
+the browser) and CSV exports of the filtered and smoothed tracks and of the
+fixes with their final verdicts. -from and -to limit it to a stretch.`)
 	fs.SetOutput(stderr)
 	sf := addSourceFlags(fs)
 	other := fs.String("with", "", "replay the run with this YAML configuration instead of its own")
+	var span timeSpan
+	span.add(fs)
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
@@ -104,7 +152,7 @@ report with figures and CSV exports of the filtered and smoothed tracks.`)
 	label := review.Label(src)
 	dir := sf.outDir(label)
 	prog, done := progress(stderr, "replaying and smoothing")
-	run, err := review.Analyze(src, dir, review.Options{Progress: prog})
+	run, err := review.Analyze(src, dir, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 	done()
 	if err != nil {
 		return err
@@ -114,12 +162,15 @@ report with figures and CSV exports of the filtered and smoothed tracks.`)
 
 func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("compare", "(-journal DIR -robot NAME | -config ROBOT.yaml -samples SAMPLES.jsonl) [-a A.yaml] -b B.yaml [flags]", `
-Reviews a run under two configurations side by side: the run's own (or -a)
-and -b.`)
+Reviews a run under two configurations, the run's own (or -a) and -b: one
+report with both runs' tracks, deviations and NIS overlaid and a table of
+their differences.`)
 	fs.SetOutput(stderr)
 	sf := addSourceFlags(fs)
 	a := fs.String("a", "", "first YAML configuration (default: the run's own)")
 	b := fs.String("b", "", "second YAML configuration")
+	var span timeSpan
+	span.add(fs)
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
@@ -142,7 +193,7 @@ and -b.`)
 			s.Label = fmt.Sprintf("%c-%s", 'a'+i, strings.TrimSuffix(filepath.Base(path), filepath.Ext(path)))
 		}
 		prog, done := progress(stderr, "replaying "+s.Label)
-		run, err := review.Analyze(s, dir, review.Options{Progress: prog})
+		run, err := review.Analyze(s, dir, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 		done()
 		if err != nil {
 			return fmt.Errorf("%s: %w", s.Label, err)

@@ -1,0 +1,131 @@
+package review
+
+import (
+	"os"
+	"os/exec"
+	"path/filepath"
+	"regexp"
+	"strings"
+	"testing"
+
+	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
+)
+
+// chromium returns the path of headless Chromium (Debian's package, which
+// .ci/run installs) and the arguments every run of it takes.
+func chromium(t *testing.T) (string, []string) {
+	browser, err := exec.LookPath("chromium")
+	if err != nil {
+		if os.Getenv("CI") != "" {
+			t.Fatal("chromium is not installed; .ci/run installs it")
+		}
+		t.Skip("chromium is not installed")
+	}
+	return browser, []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
+		"--disable-component-update", "--disable-sync", "--hide-scrollbars", "--user-data-dir=" + t.TempDir()}
+}
+
+// reverseIMU flips the sign of IMU headings, as an IMU mounted upside down
+// or wired with the wrong handedness reports them.
+func reverseIMU(s *pb.Sample) {
+	if h := s.GetHeading(); h != nil {
+		h.HeadingRad = -h.HeadingRad
+	}
+}
+
+// TestReportShowsWhereAndWhy reviews a demo-like run (outliers, a move by
+// hand) and a run whose IMU is reversed, opens each report in headless
+// Chromium after its script ran, and checks in the DOM that the marks are
+// there: shaded intervals, time marks along the track, ellipses, the NIS
+// gate line and refused inputs, problem sentences linked to their moment,
+// and that following such a link zooms the figures. It leaves screenshots
+// at 1400 and 800 px wide in testdata/out.
+func TestReportShowsWhereAndWhy(t *testing.T) {
+	browser, args := chromium(t)
+	for _, c := range []struct {
+		name  string
+		sc    fusiontest.Scenario
+		alter func(*pb.Sample)
+		// want counts the least number of elements of each class.
+		want map[string]int
+		// problem is a kind of problem sentence the report must have.
+		problem string
+	}{
+		{"demo", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 73, DurationS: 40, OutlierFraction: 0.1, Bump: &fusiontest.Bump{AtS: 18, DXM: 0.8}}, nil,
+			map[string]int{"time-tick": 3, "ellipse filtered": 20, "ellipse smoothed": 20, "gate-line": 1, "nis-refused": 1, "event recovery": 2, "problem": 1}, "moved"},
+		{"reversed-imu", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 76, DurationS: 40}, reverseIMU,
+			map[string]int{"time-tick": 3, "ellipse filtered": 20, "gate-line": 1, "interval distrust": 2, "problem": 1}, "distrust"},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			dir, truth := writeRunWith(t, c.sc, c.alter)
+			out := t.TempDir()
+			run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{})
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, p := range run.Problems() {
+				t.Logf("problem: %s", p.Text)
+			}
+			report := filepath.Join(out, "report.html")
+			f, _ := os.Create(report)
+			if err := WriteHTML(f, "Review of robots/cart ("+c.name+")", run); err != nil {
+				t.Fatal(err)
+			}
+			f.Close()
+			dom, err := exec.Command(browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report)...).Output()
+			if err != nil {
+				t.Fatalf("chromium --dump-dom: %v", err)
+			}
+			page := string(dom)
+			if !strings.Contains(page, `data-zoom="ready"`) {
+				t.Fatalf("the page's script did not run")
+			}
+			for class, n := range c.want {
+				if got := len(regexp.MustCompile(`class="`+class+`[" ]`).FindAllString(page, -1)); got < n {
+					t.Errorf("%d elements of class %q, want at least %d", got, class, n)
+				}
+			}
+			// The legend's ellipse swatches are filled with the ellipses'
+			// colours at alpha 50/255 (#1F5EA0 and #D67814, give or take
+			// the rounding of premultiplied alpha).
+			if !regexp.MustCompile(`style="fill:#1[EF]5[DE](9F|A0);fill-opacity:0\.196`).MatchString(page) || !regexp.MustCompile(`style="fill:#D[56]7[78]1[34];fill-opacity:0\.196`).MatchString(page) {
+				t.Errorf("the legend's ellipse swatches are not filled with the ellipses' colours")
+			}
+			if !regexp.MustCompile(`<li class="problem" data-kind="` + c.problem + `"><a class="moment" href="#t=[0-9.]+" data-t="[0-9.]+">`).MatchString(page) {
+				t.Errorf("no %s problem linked to its moment", c.problem)
+			}
+			// Following a link to a moment zooms the track and the time
+			// figures to it.
+			m := regexp.MustCompile(`<a class="moment" href="(#t=[0-9.]+)"`).FindStringSubmatch(page)
+			if m == nil {
+				t.Fatal("no link to a moment")
+			}
+			zoomed, err := exec.Command(browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report+m[1])...).Output()
+			if err != nil {
+				t.Fatalf("chromium --dump-dom: %v", err)
+			}
+			if !strings.Contains(string(zoomed), `data-moment="`) || strings.Count(string(zoomed), `class="cursor"`) < 2 {
+				t.Errorf("following %s did not zoom the figures", m[1])
+			}
+			if vb := regexp.MustCompile(`<figure id="fig-track-0" data-kind="track"><svg [^>]*viewBox="([^"]*)"`).FindStringSubmatch(string(zoomed)); vb == nil || vb[1] == "0 0 760 560" {
+				t.Errorf("the track's view after %s: %v", m[1], vb)
+			}
+			// Tall enough for the problems and the track at each width
+			// (README.md shows testdata/review-report.png, a copy of the
+			// demo's at 1400 px).
+			for _, size := range []string{"1400,1150", "800,1500"} {
+				width, _, _ := strings.Cut(size, ",")
+				shot, _ := filepath.Abs("../../testdata/out/review-" + c.name + "-" + width + ".png")
+				os.MkdirAll(filepath.Dir(shot), 0o755)
+				if err := exec.Command(browser, append(args, "--window-size="+size, "--screenshot="+shot, "file://"+report)...).Run(); err != nil {
+					t.Fatalf("chromium --screenshot: %v", err)
+				}
+				if st, err := os.Stat(shot); err != nil || st.Size() < 10000 {
+					t.Fatalf("screenshot %s: %v", shot, err)
+				}
+				t.Logf("screenshot: %s", shot)
+			}
+		})
+	}
+}

@@ -40,8 +40,9 @@ type ReplayOptions struct {
 	FS FS
 	// ReadOnly reads without copying damaged ranges aside (Visitor.ReadOnly).
 	ReadOnly bool
-	// Gap, if set, is called at each continuity break and the replay goes
-	// on past it (the robot then sees the inputs after the gap as a gap in
+	// Gap, if set, is called at each continuity break, like the other
+	// callbacks on the caller's goroutine between the inputs around it, and
+	// the replay goes on past it (the robot then sees the inputs after the gap as a gap in
 	// its odometry); Replay returns the robot with the first break as its
 	// error. Without it a gap stops the replay.
 	Gap func(err error) error
@@ -69,6 +70,7 @@ var errReplayStopped = errors.New("replay stopped")
 // replayItem is what the scan hands to the replaying goroutine: exactly one
 // field is set.
 type replayItem struct {
+	gap      error // a continuity break, handed to ReplayOptions.Gap
 	opening  *pb.JournalOpening
 	snapshot *pb.JournalSnapshot
 	in       *pb.JournalInput
@@ -126,7 +128,12 @@ func replayVisitor(opt ReplayOptions, items chan<- replayItem, stop <-chan struc
 		}
 	}
 	v := Visitor{Opening: func(op *pb.JournalOpening) error { return send(replayItem{opening: op}) },
-		ReadOnly: opt.ReadOnly, Gap: opt.Gap}
+		ReadOnly: opt.ReadOnly}
+	if opt.Gap != nil {
+		// Every callback runs on the caller's goroutine, in order with the
+		// inputs around the gap.
+		v.Gap = func(err error) error { return send(replayItem{gap: err}) }
+	}
 	if opt.FromSnapshot {
 		v.Snapshot = func(s *pb.JournalSnapshot) error { return send(replayItem{snapshot: s}) }
 	}
@@ -147,6 +154,8 @@ type replayer struct {
 
 func (rp *replayer) apply(it replayItem) error {
 	switch {
+	case it.gap != nil:
+		return rp.opt.Gap(it.gap)
 	case it.opening != nil:
 		return rp.open(it.opening)
 	case it.snapshot != nil:

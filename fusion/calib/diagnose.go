@@ -82,8 +82,13 @@ func (m mistake) isIMU() bool { return m.imuScale != 1 }
 // of, or a layout with no spare row) is reported as undetermined, as is
 // one the run does not excite (too little turning or travel). An IMU that
 // reports degrees also shows on a layout without spare rows: its readings
-// wrap round at 180.
+// wrap round at 180. One mistake is named per run: a run with two shows
+// neither clearly, and after fixing one a new run shows the other. A
+// configuration that does not validate is itself the finding.
 func Diagnose(cfg fusion.Config, odo []fusion.Odometry, imu []fusion.Heading) []Finding {
+	if err := cfg.Validate(); err != nil {
+		return []Finding{{Field: fusion.FieldOf(err), Sentence: err.Error(), Slope: math.NaN(), R2: math.NaN()}}
+	}
 	n := len(cfg.Wheels)
 	if n == 0 {
 		return []Finding{{Field: "wheels", Sentence: "the robot has no wheels: nothing to diagnose from body steps", Slope: math.NaN(), R2: math.NaN(), Undetermined: true}}
@@ -135,7 +140,7 @@ func Diagnose(cfg fusion.Config, odo []fusion.Odometry, imu []fusion.Heading) []
 		}
 		out = append(out, d.finding(group))
 	}
-	if d.hasIMU && !d.imuChecked && d.head.degreeWraps > 0 && d.head.maxAbs > math.Pi+0.05 && d.head.maxAbs <= 180.5 {
+	if d.hasIMU && !d.named && d.head.degreeWraps > 0 && d.head.maxAbs > math.Pi+0.05 && d.head.maxAbs <= 180.5 {
 		out = append(out, Finding{Field: "imu", Slope: math.NaN(), R2: math.NaN(),
 			Sentence: fmt.Sprintf("the IMU reports degrees (its heading reaches %.1f and wraps round at 180): convert to radians before sending", d.head.maxAbs)})
 	}
@@ -148,8 +153,8 @@ type diagnosis struct {
 	chunks []chunk
 	head   headings
 	hasIMU bool
-	// imuChecked: the layout has a spare row that checks the IMU.
-	imuChecked bool
+	// named: a mistake was named from the residuals.
+	named bool
 	// a holds the rows' coefficients (wheels, then the IMU's turn scaled by
 	// lever, then no side slip); resid projects row values onto the
 	// residual space, I - A (A^T A)^-1 A^T.
@@ -226,7 +231,7 @@ func residualMaker(a *mat.Dense) *mat.Dense {
 	m, _ := a.Dims()
 	var svd mat.SVD
 	if !svd.Factorize(a, mat.SVDThin) {
-		panic("calib: the layout's rows could not be factorised")
+		panic("calib: the rows of a validated layout could not be factorised")
 	}
 	var u mat.Dense
 	svd.UTo(&u)
@@ -396,7 +401,7 @@ func (d *diagnosis) finding(group []mistake) Finding {
 			sentences = append(sentences, "the IMU's turns are 57.3 times too small (radians converted as if they were degrees): send radians as read")
 		}
 	}
-	d.imuChecked = true
+	d.named = true
 	f := Finding{Field: strings.Join(fields, " or "), Sentence: sentences[0]}
 	if len(sentences) > 1 {
 		f.Sentence = "either " + strings.Join(sentences, "; or ") + " (the wheels and the IMU alone cannot tell these apart: mirrored, each describes the run; spin the robot left by hand: its IMU heading must grow, the left wheel roll backwards and the right forwards)"

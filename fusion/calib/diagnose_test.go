@@ -213,3 +213,14 @@ func TestDiagnoseNeedsExcitation(t *testing.T) {
 		t.Errorf("findings %+v do not say the run turns too little", fs)
 	}
 }
+
+// TestDiagnoseInvalidConfig: a configuration that does not validate is the
+// finding, naming its field.
+func TestDiagnoseInvalidConfig(t *testing.T) {
+	r := simulate(t, fusiontest.DriveWheelTurn, false)
+	r.cfg.Wheels = r.cfg.Wheels[:1]
+	fs := Diagnose(r.cfg, r.odo, r.imu)
+	if len(fs) != 1 || fs[0].Field != "wheels" || fs[0].Undetermined {
+		t.Errorf("findings %+v, want one on wheels", fs)
+	}
+}

@@ -18,7 +18,8 @@ const module = "reckon.example/"
 // Layers"). The order is proto, estimator < fusion < server/convert <
 // server/journal < server < server/daemon < server/cmd < clients;
 // fusion/fusiontest is the test harness of fusion, for tests of every layer
-// above estimator and for the demo; server/journal/faultfs holds the
+// above estimator and for the demo; fusion/calib calibrates a configuration
+// from recorded samples, on fusion's types, without I/O; server/journal/faultfs holds the
 // fault-injecting and crashable file systems for tests of the journal and
 // the server.
 type layer struct {
@@ -38,6 +39,7 @@ var (
 		{pkg: "estimator"},
 		{pkg: "fusion", code: []string{"estimator"}, tests: []string{"fusion/fusiontest"}},
 		{pkg: "fusion/fusiontest", code: []string{"estimator", "fusion"}},
+		{pkg: "fusion/calib", code: []string{"estimator", "fusion"}, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/convert", code: below, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/journal", code: convert, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
 		{pkg: "server/journal/faultfs", code: server},

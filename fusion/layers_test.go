@@ -20,7 +20,7 @@ const module = "reckon.example/"
 // fusion/fusiontest is the test harness of fusion, for tests of every layer
 // above estimator and for the demo; server/journal/faultfs holds the
 // fault-injecting and crashable file systems for tests of the journal and
-// the server.
+// the server; fusion/calib holds offline calibration tools over fusion.
 type layer struct {
 	pkg   string   // a package, or a tree with "/..."
 	code  []string // what its code may depend on
@@ -38,6 +38,7 @@ var (
 		{pkg: "estimator"},
 		{pkg: "fusion", code: []string{"estimator"}, tests: []string{"fusion/fusiontest"}},
 		{pkg: "fusion/fusiontest", code: []string{"estimator", "fusion"}},
+		{pkg: "fusion/calib", code: []string{"estimator", "fusion"}},
 		{pkg: "server/convert", code: below, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/journal", code: convert, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
 		{pkg: "server/journal/faultfs", code: server},

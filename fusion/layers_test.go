@@ -45,7 +45,7 @@ var (
 		{pkg: "server", code: server, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
 		{pkg: "server/daemon", code: daemon, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/cmd/...", code: binary, tests: []string{"fusion/fusiontest"}},
-		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "clients/...")},
+		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "fusion/calib", "clients/...")},
 	}
 )
 

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 
+	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat"
 
 	"reckon.example/estimator"
@@ -29,9 +30,6 @@ var (
 )
 
 const (
-	// slopeTol is how far a point's local slope may be from a term's slope
-	// for the point to belong to that term's segment.
-	slopeTol = 0.15
 	// minSpan is the least ratio of a segment's last to first tau: half a
 	// decade, so that a few noisy points do not make a term.
 	minSpan = 3.0
@@ -73,15 +71,22 @@ type Noise struct {
 }
 
 // Fit reads the noise terms from an Allan deviation computed from n
-// samples (the points ascending in tau, from AllanDeviation). Each term
-// with a slope has a segment: the longest run of points whose local slope
-// is within 0.15 of the term's and which spans half a decade. Its
-// coefficient is the weighted least-squares fit of log dev = log(c) + slope
-// * log tau with the slope fixed, weights the inverse squared relative
-// error of each point; then once more with the other terms' variances
-// subtracted (the terms add in variance, IEEE Std 952-1997, Annex C). B is
-// the minimum over 0.664, found when a flat run around the minimum spans
-// half a decade.
+// samples (the points ascending in tau, from AllanDeviation), using the
+// points whose relative error is at most 0.25.
+//
+// The terms add in variance (IEEE Std 952-1997, Annex C):
+//
+//	sigma^2(tau) = 3 Q^2 / tau^2 + N^2 / tau + (2 ln 2 / pi) B^2 + K^2 tau / 3
+//
+// A first non-negative least-squares fit of this sum, in relative error
+// weighted by each point's inverse squared relative error, tells which term
+// dominates where. A term's segment is the longest run of points where it
+// dominates; it is found when that run spans half a decade of tau. Its
+// coefficient is then fitted on its segment alone, with its slope fixed,
+// after subtracting the other terms of the first fit: weighted least
+// squares of log dev = log(c) + slope * log tau. B is the minimum deviation
+// over 0.664, as the standard reads it; found when B dominates half a decade
+// of tau, an upper bound otherwise.
 func Fit(pts []Point, n int) Noise {
 	var use []Point
 	for _, p := range pts {
@@ -93,52 +98,115 @@ func Fit(pts []Point, n int) Noise {
 	if len(use) < 3 {
 		return nz
 	}
-	slopes := localSlopes(use)
-	terms := []*Term{&nz.Q, &nz.N, &nz.K}
-	targets := []float64{slopeQ, slopeN, slopeK}
-	gains := []float64{gainQ, 1, gainK}
-	for i, t := range terms {
-		from, to := longestRun(use, slopes, targets[i])
+	coef := jointFit(use, n)
+	// contrib is term j's variance at tau in the joint fit.
+	contrib := func(j int, tau float64) float64 { return coef[j] * math.Pow(tau, varSlopes[j]) }
+	dominant := make([]int, len(use))
+	for i, p := range use {
+		for j := range varSlopes {
+			if contrib(j, p.TauS) > contrib(dominant[i], p.TauS) {
+				dominant[i] = j
+			}
+		}
+	}
+	terms := []*Term{&nz.Q, &nz.N, &nz.B, &nz.K}
+	for j, t := range terms {
+		from, to := longestRun(use, dominant, j)
 		if from < 0 {
 			continue
 		}
 		seg := use[from:to]
-		*t = Term{Found: true, FromS: seg[0].TauS, ToS: seg[len(seg)-1].TauS, Points: len(seg), Slope: freeSlope(seg, n)}
-		t.Coef = fixedSlope(seg, n, targets[i], nil) / gains[i]
-	}
-	nz.B = flatMinimum(use, slopes)
-	// Refit each term with the others subtracted.
-	for i, t := range terms {
-		if !t.Found {
+		*t = Term{Found: true, FromS: seg[0].TauS, ToS: seg[len(seg)-1].TauS, Points: len(seg)}
+		if j == iB {
 			continue
 		}
+		t.Slope = freeSlope(seg, n)
 		others := func(tau float64) float64 {
-			v := nz.variance(tau)
-			c := gains[i] * t.Coef * math.Pow(tau, targets[i])
-			return v - c*c
+			var v float64
+			for k := range varSlopes {
+				if k != j {
+					v += contrib(k, tau)
+				}
+			}
+			return v
 		}
-		seg := pointsIn(use, t.FromS, t.ToS)
-		if c := fixedSlope(seg, n, targets[i], others); c > 0 {
-			t.Coef = c / gains[i]
+		t.Coef = fixedSlope(seg, n, varSlopes[j]/2, others) / gains[j]
+	}
+	k := 0
+	for i, p := range use {
+		if p.Dev < use[k].Dev {
+			k = i
 		}
 	}
+	nz.B.Coef = use[k].Dev / gainB
 	return nz
 }
 
-// variance is the Allan variance of the terms found, at tau seconds.
-func (nz Noise) variance(tau float64) float64 {
-	var v float64
-	add := func(t Term, gain, slope float64) {
-		if t.Found {
-			c := gain * t.Coef * math.Pow(tau, slope)
-			v += c * c
+// The terms in the order of varSlopes and gains.
+const (
+	iQ = iota
+	iN
+	iB
+	iK
+)
+
+// varSlopes are the terms' slopes in the log-log plot of the Allan
+// variance; gains the factors of their Allan deviations (IEEE Std 952-1997,
+// Annex C): sigma = sqrt(3) Q / tau, N / sqrt(tau), 0.664 B, K sqrt(tau / 3).
+var (
+	varSlopes = [4]float64{2 * slopeQ, 2 * slopeN, 2 * slopeB, 2 * slopeK}
+	gains     = [4]float64{gainQ, 1, gainB, gainK}
+)
+
+// jointFit fits the Allan variance of pts by the sum of the four terms with
+// non-negative coefficients (each term's variance at tau = 1 s), minimising
+// the weighted squared relative error; a term fitted negative is dropped and
+// the rest fitted again (an active set, Lawson and Hanson, Solving Least
+// Squares Problems, 1974, ch. 23, in its simplest form).
+func jointFit(pts []Point, n int) [4]float64 {
+	active := []int{iQ, iN, iB, iK}
+	for len(active) > 0 {
+		a := mat.NewDense(len(pts), len(active), nil)
+		b := mat.NewVecDense(len(pts), nil)
+		norms := make([]float64, len(active))
+		for i, p := range pts {
+			w := 1 / relErr(p, n)
+			s2 := p.Dev * p.Dev
+			for c, j := range active {
+				v := w * math.Pow(p.TauS, varSlopes[j]) / s2
+				a.Set(i, c, v)
+				norms[c] += v * v
+			}
+			b.SetVec(i, w)
 		}
+		// Columns scaled to unit norm: the terms differ by orders of
+		// magnitude over a few decades of tau.
+		for c := range active {
+			norms[c] = math.Sqrt(norms[c])
+			for i := range pts {
+				a.Set(i, c, a.At(i, c)/norms[c])
+			}
+		}
+		var x mat.VecDense
+		if err := x.SolveVec(a, b); err != nil {
+			return [4]float64{}
+		}
+		worst := -1
+		for c := range active {
+			if x.AtVec(c) < 0 && (worst < 0 || x.AtVec(c) < x.AtVec(worst)) {
+				worst = c
+			}
+		}
+		if worst < 0 {
+			var coef [4]float64
+			for c, j := range active {
+				coef[j] = x.AtVec(c) / norms[c]
+			}
+			return coef
+		}
+		active = append(active[:worst], active[worst+1:]...)
 	}
-	add(nz.Q, gainQ, slopeQ)
-	add(nz.N, 1, slopeN)
-	add(nz.B, gainB, slopeB)
-	add(nz.K, gainK, slopeK)
-	return v
+	return [4]float64{}
 }
 
 // relErr is the relative error of a point's deviation, 1 / sqrt(2 (n/m -
@@ -151,72 +219,26 @@ func relErr(p Point, n int) float64 {
 	return 1 / math.Sqrt(2*r)
 }
 
-// localSlopes is the slope of log dev against log tau at each point,
-// central between its neighbours and one-sided at the ends.
-func localSlopes(pts []Point) []float64 {
-	s := make([]float64, len(pts))
-	for i := range pts {
-		a, b := max(i-1, 0), min(i+1, len(pts)-1)
-		s[i] = math.Log(pts[b].Dev/pts[a].Dev) / math.Log(pts[b].TauS/pts[a].TauS)
-	}
-	return s
-}
-
-// longestRun returns the longest run [from, to) of points whose local
-// slope is within slopeTol of target and which spans minSpan, or -1.
-func longestRun(pts []Point, slopes []float64, target float64) (from, to int) {
+// longestRun returns the longest run [from, to) of points where term j
+// dominates, if it spans minSpan, or -1.
+func longestRun(pts []Point, dominant []int, j int) (from, to int) {
 	from, to = -1, -1
 	best := 0.0
 	for i := 0; i < len(pts); {
-		if math.Abs(slopes[i]-target) > slopeTol {
+		if dominant[i] != j {
 			i++
 			continue
 		}
-		j := i
-		for j < len(pts) && math.Abs(slopes[j]-target) <= slopeTol {
-			j++
+		k := i
+		for k < len(pts) && dominant[k] == j {
+			k++
 		}
-		if span := pts[j-1].TauS / pts[i].TauS; span >= minSpan && span > best {
-			from, to, best = i, j, span
+		if span := pts[k-1].TauS / pts[i].TauS; span >= minSpan && span > best {
+			from, to, best = i, k, span
 		}
-		i = j
+		i = k
 	}
 	return from, to
-}
-
-// flatMinimum reads B from the smallest deviation.
-func flatMinimum(pts []Point, slopes []float64) Term {
-	k := 0
-	for i, p := range pts {
-		if p.Dev < pts[k].Dev {
-			k = i
-		}
-	}
-	a, b := k, k
-	for a > 0 && math.Abs(slopes[a-1]) <= slopeTol {
-		a--
-	}
-	for b < len(pts)-1 && math.Abs(slopes[b+1]) <= slopeTol {
-		b++
-	}
-	return Term{
-		Coef:   pts[k].Dev / gainB,
-		Found:  pts[b].TauS/pts[a].TauS >= minSpan,
-		FromS:  pts[a].TauS,
-		ToS:    pts[b].TauS,
-		Points: b - a + 1,
-	}
-}
-
-// pointsIn returns the points with tau in [from, to].
-func pointsIn(pts []Point, from, to float64) []Point {
-	var seg []Point
-	for _, p := range pts {
-		if p.TauS >= from && p.TauS <= to {
-			seg = append(seg, p)
-		}
-	}
-	return seg
 }
 
 // fixedSlope fits dev = c * tau^slope over pts by weighted least squares in

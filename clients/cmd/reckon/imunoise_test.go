@@ -145,8 +145,10 @@ func TestIMUNoiseRefuses(t *testing.T) {
 	dir := t.TempDir()
 	short := filepath.Join(dir, "short.jsonl")
 	writeStatic(t, short, 5, 1e-3, 0)
-	none := filepath.Join(dir, "none.jsonl")
-	copyFile(t, exampleSamples, none)
+	noHeadings := filepath.Join(dir, "fixes.jsonl")
+	if err := os.WriteFile(noHeadings, []byte(`{"fix":{"stamp_ns":"5","sensor_id":"camera","pose":{"x_m":1}}}`+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
 	ctx := context.Background()
 	for _, c := range []struct {
 		name string
@@ -156,6 +158,8 @@ func TestIMUNoiseRefuses(t *testing.T) {
 		{"no file", []string{"imu-noise"}, exitUsage},
 		{"config without out", []string{"imu-noise", short, "-config", exampleConfig}, exitUsage},
 		{"too short", []string{"imu-noise", short}, exitRefused},
+		{"no headings", []string{"imu-noise", noHeadings}, exitRefused},
+		{"out without config", []string{"imu-noise", short, "-out", filepath.Join(dir, "x.yaml")}, exitUsage},
 	} {
 		if _, stderr, code := runCode(t, ctx, "", c.args...); code != c.code {
 			t.Errorf("%s: exit %d, want %d: %s", c.name, code, c.code, stderr)

@@ -21,7 +21,7 @@ const module = "reckon.example/"
 // above estimator and for the demo; fusion/calib calibrates a configuration
 // from recorded samples, on fusion's types, without I/O; server/journal/faultfs holds the
 // fault-injecting and crashable file systems for tests of the journal and
-// the server.
+// the server; fusion/calib holds offline calibration tools over fusion.
 type layer struct {
 	pkg   string   // a package, or a tree with "/..."
 	code  []string // what its code may depend on
@@ -46,7 +46,7 @@ var (
 		{pkg: "server", code: server, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
 		{pkg: "server/daemon", code: daemon, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/cmd/...", code: binary, tests: []string{"fusion/fusiontest"}},
-		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "clients/...")},
+		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "fusion/calib", "clients/...")},
 	}
 )
 

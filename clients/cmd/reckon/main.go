@@ -19,6 +19,7 @@
 //	reckon review   smoothed track, summary, HTML report with figures and CSV exports of a run
 //	reckon compare  the same run under two configurations, side by side
 //	reckon export   journals as Parquet tables (runs, inputs, poses, events)
+//	reckon imu-noise  IMU noise terms from a static recording by Allan deviation
 //	reckon version  the module version and source revision of this binary
 //
 // Run "reckon help" for the commands and "reckon <command> -h" for flags;
@@ -90,6 +91,7 @@ func commands() []command {
 		{"replay", "run a journal, or a robot configuration and a JSON Lines file, through the estimator offline and write the track and every verdict", outErr(runReplay)},
 		{"review", "replay a recorded run with the smoother: a text summary, an HTML report with figures, and CSV exports of the filtered and smoothed tracks", outErr(runReview)},
 		{"compare", "review a run under two configurations side by side", outErr(runCompare)},
+		{"imu-noise", "read a static IMU recording's noise from its Allan deviation and write it into a new configuration", outErr(runIMUNoise)},
 		{"export", "write journals, of one or many robots and runs, as Parquet tables (runs, inputs, poses, events) for data engines", outErr(runExport)},
 		{"version", "\nprint the module version and source revision of this binary", outErr(runVersion)},
 		{"help", "print this text", nil},
@@ -105,11 +107,11 @@ func usage() string {
 		if group {
 			b.WriteString("\n")
 		}
-		line := fmt.Sprintf("  %-8s", c.name)
+		line := fmt.Sprintf("  %-9s", c.name)
 		for _, w := range strings.Fields(s) {
 			if len(line)+1+len(w) > 80 {
 				b.WriteString(line + "\n")
-				line = strings.Repeat(" ", 11) + w
+				line = strings.Repeat(" ", 12) + w
 				continue
 			}
 			line += " " + w

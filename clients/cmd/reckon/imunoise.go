@@ -1,0 +1,312 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+
+	"go.yaml.in/yaml/v3"
+
+	"reckon.example/fusion"
+	"reckon.example/fusion/calib"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
+)
+
+func runIMUNoise(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("imu-noise", "FILE.jsonl [-config ROBOT.yaml -out NEW.yaml] [flags]", `
+Reads the heading samples of a static recording (the robot standing still,
+JSON Lines of reckon.v1.Sample), differences successive headings into
+rates, and prints their overlapping Allan deviation (IEEE Std 952-1997,
+Annex C), the noise terms read from its slopes (reading noise Q, angle
+random walk N, bias instability B, rate random walk K) and the IMU terms of
+the robot configuration they give. With -config and -out it writes a new
+configuration with those terms; it never overwrites the input.`)
+	fs.SetOutput(stderr)
+	config := fs.String("config", "", "YAML robot configuration to start from (with -out)")
+	out := fs.String("out", "", "the new YAML configuration (with -config); refused if it exists, unless -force")
+	force := fs.Bool("force", false, "replace -out if it exists")
+	horizon := fs.Float64("horizon", 10, "seconds over which bias instability and rate random walk are spread into the offset's random walk: the time between the fixes or headings that correct it")
+	turnRate := fs.Float64("turn-rate", 0.5, "a typical turn rate, rad/s, for imu_turn_var_rad2_per_rad (imu_mode rotation)")
+	pos, err := parseArgs(fs, args, stdout, stderr)
+	if err != nil {
+		return err
+	}
+	switch {
+	case len(pos) != 1:
+		return usagef(fs, "needs one JSON Lines file, got %d arguments", len(pos))
+	case (*config == "") != (*out == ""):
+		return usagef(fs, "-config and -out go together")
+	case *config != "" && samePath(*config, *out):
+		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
+	case !(*horizon > 0) || !(*turnRate > 0):
+		return usagef(fs, "-horizon and -turn-rate must be positive")
+	}
+	if *out != "" && !*force {
+		if _, err := os.Stat(*out); err == nil {
+			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)
+		}
+	}
+	stamps, headings, err := readHeadings(ctx, pos[0])
+	if err != nil {
+		return err
+	}
+	rates, dt, err := calib.RatesFromHeadings(stamps, headings)
+	if err != nil {
+		return fmt.Errorf("%s: %w: %w", pos[0], errRefused, err)
+	}
+	if len(rates) < 6 {
+		return fmt.Errorf("%s: %w: %w", pos[0], errRefused, calib.ErrTooShort)
+	}
+	pts := calib.AllanDeviation(nil, rates, dt, calib.ClusterSizes(len(rates)/2, 10))
+	nz := calib.Fit(pts, len(rates))
+	terms := nz.IMUTerms(*horizon, *turnRate)
+	if err := printIMUNoise(stdout, pos[0], len(headings), dt, pts, nz, terms, *horizon, *turnRate); err != nil {
+		return err
+	}
+	if *config == "" {
+		return nil
+	}
+	return writeIMUConfig(*config, *out, filepath.Base(pos[0]), nz, terms, *horizon, *turnRate, stdout)
+}
+
+// samePath says whether two paths name the same file, or would.
+func samePath(a, b string) bool {
+	if ia, err := os.Stat(a); err == nil {
+		if ib, err := os.Stat(b); err == nil {
+			return os.SameFile(ia, ib)
+		}
+	}
+	aa, err1 := filepath.Abs(a)
+	ab, err2 := filepath.Abs(b)
+	return err1 == nil && err2 == nil && aa == ab
+}
+
+// readHeadings reads the heading samples of a JSON Lines file; other
+// samples are skipped.
+func readHeadings(ctx context.Context, path string) (stamps []int64, headings []float64, err error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, nil, err
+	}
+	defer f.Close()
+	sr := convert.NewSampleReader(f)
+	for {
+		if err := ctx.Err(); err != nil {
+			return nil, nil, err
+		}
+		s, err := sr.Next()
+		if err == io.EOF {
+			break
+		}
+		if err != nil {
+			return nil, nil, fmt.Errorf("%s: %w", path, err)
+		}
+		if h := s.GetHeading(); h != nil {
+			stamps = append(stamps, h.GetStampNs())
+			headings = append(headings, h.GetHeadingRad())
+		}
+	}
+	if len(stamps) == 0 {
+		return nil, nil, fmt.Errorf("%s: %w: no heading samples", path, errRefused)
+	}
+	return stamps, headings, nil
+}
+
+// termRows are the noise terms as printed: label, unit, slope and term.
+func termRows(nz calib.Noise) []struct {
+	label, unit, slope string
+	t                  calib.Term
+} {
+	return []struct {
+		label, unit, slope string
+		t                  calib.Term
+	}{
+		{"Q reading noise", "rad", "-1", nz.Q},
+		{"N angle random walk", "rad/sqrt(s)", "-1/2", nz.N},
+		{"B bias instability", "rad/s", "0 (minimum / 0.664)", nz.B},
+		{"K rate random walk", "rad/s^1.5", "+1/2", nz.K},
+	}
+}
+
+func printIMUNoise(w io.Writer, file string, n int, dt float64, pts []calib.Point, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64) error {
+	fmt.Fprintf(w, "%s: %d headings every %.4g s (%.0f s)\n\n", file, n, dt, float64(n-1)*dt)
+	fmt.Fprintln(w, "overlapping Allan deviation of the heading rate (IEEE Std 952-1997, Annex C):")
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(tw, "tau_s\tdev_rad_per_s\tcount\t")
+	for _, p := range pts {
+		fmt.Fprintf(tw, "%.4g\t%.4g\t%d\t\n", p.TauS, p.Dev, p.Count)
+	}
+	tw.Flush()
+	fmt.Fprintln(w, "\nnoise terms (slope segments of the log-log plot):")
+	tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	for _, r := range termRows(nz) {
+		switch {
+		case r.t.Found && r.t.Slope != 0:
+			fmt.Fprintf(tw, "  %s\t%.4g %s\tslope %s over tau %.4g to %.4g s (%d points, fitted slope %+.3f)\n",
+				r.label, r.t.Coef, r.unit, r.slope, r.t.FromS, r.t.ToS, r.t.Points, r.t.Slope)
+		case r.t.Found:
+			fmt.Fprintf(tw, "  %s\t%.4g %s\tslope %s, flat over tau %.4g to %.4g s (%d points)\n",
+				r.label, r.t.Coef, r.unit, r.slope, r.t.FromS, r.t.ToS, r.t.Points)
+		case r.t.Coef > 0:
+			fmt.Fprintf(tw, "  %s\t<= %.4g %s\tno flat segment: an upper bound, not used\n", r.label, r.t.Coef, r.unit)
+		default:
+			fmt.Fprintf(tw, "  %s\t-\tno segment of slope %s\n", r.label, r.slope)
+		}
+	}
+	tw.Flush()
+	fmt.Fprintf(w, "\nconfiguration terms (horizon %g s, turn rate %g rad/s; fusion/calib has the mapping):\n", horizon, turnRate)
+	for _, c := range configRows(terms) {
+		if c.value > 0 {
+			fmt.Fprintf(w, "  noise.%s: %.4g\t# %s\n", c.key, c.value, c.how)
+		} else {
+			fmt.Fprintf(w, "  noise.%s: not determined\n", c.key)
+		}
+	}
+	return nil
+}
+
+// configRow is one IMU term of the configuration with how it was derived.
+type configRow struct {
+	key   string
+	value float64
+	how   string
+}
+
+func configRows(t calib.IMUTerms) []configRow {
+	return []configRow{
+		{"imu_heading_var_rad2", t.HeadingVarRad2, "Q^2"},
+		{"imu_offset_var_rad2_per_s", t.OffsetVarRad2PerS, "N^2 + B^2 T + K^2 T^2 / 3"},
+		{"imu_turn_var_rad2_per_rad", t.TurnVarRad2PerRad, "N^2 / turn rate"},
+	}
+}
+
+// writeIMUConfig writes the configuration at in, with the IMU terms the
+// robot uses set, to out, with a comment saying what changed. The terms
+// set depend on imu_mode: rotation sets the turn term, the others the
+// heading and offset terms.
+func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64, stdout io.Writer) error {
+	data, err := os.ReadFile(in)
+	if err != nil {
+		return err
+	}
+	c, _, err := convert.LoadConfigYAML(data)
+	if err != nil {
+		return fmt.Errorf("%s: %w", in, err)
+	}
+	var doc yaml.Node
+	if err := yaml.Unmarshal(data, &doc); err != nil {
+		return fmt.Errorf("%s: %w", in, err)
+	}
+	if len(doc.Content) == 0 || doc.Content[0].Kind != yaml.MappingNode {
+		return fmt.Errorf("%s: %w: not a mapping", in, convert.ErrConfigFile)
+	}
+	root := doc.Content[0]
+	rows := configRows(terms)
+	if c.GetImuMode() == pb.ImuMode_IMU_MODE_ROTATION {
+		rows = rows[2:]
+	} else {
+		rows = rows[:2]
+	}
+	def := fusion.DefaultNoise()
+	defaults := map[string]float64{
+		"imu_heading_var_rad2":      def.IMUHeadingVarRad2,
+		"imu_offset_var_rad2_per_s": def.IMUOffsetVarRad2PerS,
+		"imu_turn_var_rad2_per_rad": def.IMUTurnVarRad2PerRad,
+	}
+	var changes []string
+	for _, r := range rows {
+		if r.value <= 0 {
+			continue
+		}
+		v := strconv.FormatFloat(r.value, 'g', 4, 64)
+		old := setNoise(root, r.key, v, "from imu-noise: "+r.how)
+		if old == "" {
+			old = strconv.FormatFloat(defaults[r.key], 'g', -1, 64) + " (default)"
+		}
+		changes = append(changes, fmt.Sprintf("noise.%s %s -> %s", r.key, old, v))
+	}
+	if len(changes) == 0 {
+		return fmt.Errorf("%w: the Allan deviation of %s determines none of the IMU terms this robot uses", errRefused, file)
+	}
+	note := fmt.Sprintf("reckon imu-noise: %s; from the overlapping Allan deviation (IEEE Std 952-1997, Annex C) of the static recording %s: %s; horizon T %g s, turn rate %g rad/s",
+		strings.Join(changes, ", "), file, termSummary(nz), horizon, turnRate)
+	root.HeadComment = strings.TrimSpace("# " + note + "\n" + root.HeadComment)
+	var b strings.Builder
+	enc := yaml.NewEncoder(&b)
+	enc.SetIndent(2)
+	if err := enc.Encode(&doc); err != nil {
+		return err
+	}
+	if err := enc.Close(); err != nil {
+		return err
+	}
+	if _, _, err := convert.LoadConfigYAML([]byte(b.String())); err != nil {
+		return fmt.Errorf("the new configuration does not load: %w", err)
+	}
+	if err := os.WriteFile(out, []byte(b.String()), 0o644); err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "\nwrote %s: %s\n", out, strings.Join(changes, ", "))
+	return nil
+}
+
+// termSummary names the terms found, for the comment in the new file.
+func termSummary(nz calib.Noise) string {
+	var parts []string
+	for _, r := range termRows(nz) {
+		if r.t.Found {
+			parts = append(parts, fmt.Sprintf("%s %.3g %s", strings.SplitN(r.label, " ", 2)[0], r.t.Coef, r.unit))
+		}
+	}
+	if len(parts) == 0 {
+		return "no term found"
+	}
+	return strings.Join(parts, ", ")
+}
+
+// setNoise sets noise.key in a configuration's root mapping to value with
+// a line comment, adding the noise mapping or the key if missing, and
+// returns the old value ("" if there was none).
+func setNoise(root *yaml.Node, key, value, comment string) (old string) {
+	noise := mapValue(root, "noise")
+	if noise != nil && noise.Kind != yaml.MappingNode { // "noise:" with nothing
+		*noise = yaml.Node{Kind: yaml.MappingNode, Tag: "!!map"}
+	}
+	if noise == nil {
+		noise = &yaml.Node{Kind: yaml.MappingNode, Tag: "!!map"}
+		root.Content = append(root.Content, &yaml.Node{Kind: yaml.ScalarNode, Tag: "!!str", Value: "noise"}, noise)
+	}
+	noise.Style = 0 // block style, so that each term carries its comment
+	v := mapValue(noise, key)
+	if v == nil {
+		v = &yaml.Node{Kind: yaml.ScalarNode}
+		noise.Content = append(noise.Content, &yaml.Node{Kind: yaml.ScalarNode, Tag: "!!str", Value: key}, v)
+	} else {
+		old = v.Value
+	}
+	v.Tag, v.Value, v.Style = "!!float", value, 0
+	v.LineComment = "# " + comment
+	if old != "" {
+		v.LineComment += "; was " + old
+	}
+	return old
+}
+
+// mapValue returns the value of key in a mapping node, or nil.
+func mapValue(m *yaml.Node, key string) *yaml.Node {
+	if m.Kind != yaml.MappingNode {
+		return nil
+	}
+	for i := 0; i+1 < len(m.Content); i += 2 {
+		if m.Content[i].Value == key {
+			return m.Content[i+1]
+		}
+	}
+	return nil
+}

@@ -486,3 +486,35 @@ func TestReplayOnFS(t *testing.T) {
 		t.Fatalf("replay on MemFS: %v", err)
 	}
 }
+
+// TestFlushPartialWriteSyncEach: with SyncEach, the entries a partial
+// write counts complete are fsynced before Flush returns, so a power loss
+// right after keeps them; when that fsync fails none is complete.
+func TestFlushPartialWriteSyncEach(t *testing.T) {
+	w, mem := newJournal(t, failSegment(faultfs.OpWrite, 0, syscall.ENOSPC), journal.Options{SyncEach: true})
+	addPairs(t, w, 1, 5)
+	complete, err := w.Flush()
+	if complete != 2 || !errors.Is(err, journal.ErrNoSpace) {
+		t.Fatalf("Flush = %d, %v; want 2 and ErrNoSpace", complete, err)
+	}
+	check(t, mem.Crash(), 2, true)
+
+	syncs := failSegment(faultfs.OpSync, 0, syscall.EIO)
+	writes := failSegment(faultfs.OpWrite, 0, syscall.ENOSPC)
+	w, mem = newJournal(t, func(op faultfs.Op, path string) error {
+		if err := writes(op, path); err != nil {
+			return err
+		}
+		return syncs(op, path)
+	}, journal.Options{SyncEach: true})
+	addPairs(t, w, 1, 5)
+	if complete, err := w.Flush(); complete != 0 || !errors.Is(err, journal.ErrNoSpace) {
+		t.Fatalf("Flush with a failing fsync = %d, %v; want 0 and ErrNoSpace", complete, err)
+	}
+	addPairs(t, w, 1, 2)
+	if complete, err := w.Flush(); complete != 2 || err != nil {
+		t.Fatalf("second Flush = %d, %v", complete, err)
+	}
+	w.Close()
+	check(t, mem, 2, true)
+}

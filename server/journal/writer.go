@@ -431,7 +431,9 @@ func (w *Writer) Flush() (complete int, err error) {
 }
 
 // takeBack handles a write that failed after n bytes: it counts the
-// entries written whole and truncates the rest away.
+// entries written whole and truncates the rest away. With SyncEach the
+// entries written whole are fsynced before they count as complete (the
+// owner acknowledges them); a failed fsync takes them back too.
 func (w *Writer) takeBack(n int, err error) (int, error) {
 	complete, keep := 0, 0
 	for complete < len(w.ends) && w.ends[complete] <= n {
@@ -446,9 +448,20 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 			return complete, w.broken
 		}
 	}
+	before := w.size
 	w.size += int64(keep)
 	if keep > 0 {
 		w.dirty = true
+		if w.opt.SyncEach {
+			if serr := w.f.Sync(); serr != nil {
+				uerr := w.unsync(before, serr)
+				if w.broken != nil {
+					return 0, uerr
+				}
+				return 0, fmt.Errorf("%w; %v", err, uerr)
+			}
+			w.dirty = false
+		}
 	}
 	return complete, err
 }

@@ -518,3 +518,18 @@ func TestFlushPartialWriteSyncEach(t *testing.T) {
 	w.Close()
 	check(t, mem, 2, true)
 }
+
+// TestCloseDropsUnflushed: Close writes nothing that was added after the
+// last Flush (never acknowledged), and syncs what was flushed.
+func TestCloseDropsUnflushed(t *testing.T) {
+	w, mem := newJournal(t, nil, journal.Options{})
+	addPairs(t, w, 1, 2)
+	if complete, err := w.Flush(); complete != 2 || err != nil {
+		t.Fatalf("Flush = %d, %v", complete, err)
+	}
+	addPairs(t, w, 3, 4)
+	if err := w.Close(); err != nil {
+		t.Fatal(err)
+	}
+	check(t, mem.Crash(), 2, true)
+}

@@ -537,7 +537,11 @@ func (w *Writer) Sync() error {
 	return nil
 }
 
-// Close syncs and closes the journal.
+// Close syncs and closes the journal. It does not flush: entries added
+// since the last Flush are dropped, not written. An owner acknowledges an
+// entry only after Flush counts it complete, so the dropped entries were
+// never acknowledged, and the journal keeps exactly what was (the server
+// adds and flushes under the robot's lock, which Close waits for).
 func (w *Writer) Close() error {
 	if w.f == nil {
 		return nil

@@ -29,35 +29,15 @@ type journalWriter interface {
 	Remove() error
 }
 
-// osJournal is a journal.Writer counting its entries.
+// osJournal is a *journal.Writer as a journalWriter.
 type osJournal struct {
 	*journal.Writer
-	pending int
-}
-
-func (j *osJournal) AddSessionPair(in journal.EncodedInput, response []byte, pose *pb.FusedPose) error {
-	err := j.Writer.AddSessionPair(in, response, pose)
-	if err == nil {
-		j.pending++
-	}
-	return err
-}
-
-func (j *osJournal) Add(recs ...*pb.JournalRecord) error {
-	err := j.Writer.Add(recs...)
-	if err == nil {
-		j.pending++
-	}
-	return err
 }
 
 // flush is Writer.Flush: on an error the segment is taken back to the end
 // of its last complete entry and the rest dropped; a failed rotation after
 // a good write reports every entry complete with a *journal.RotateError.
-func (j *osJournal) flush() (int, error) {
-	j.pending = 0
-	return j.Writer.Flush()
-}
+func (j *osJournal) flush() (int, error) { return j.Writer.Flush() }
 
 // isNoSpace tells whether a journal error means the disk is full.
 func isNoSpace(err error) bool { return errors.Is(err, journal.ErrNoSpace) }

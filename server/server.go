@@ -788,14 +788,16 @@ func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
 func (s *Server) journalFailed(r *robot, what string, err error) {
 	switch {
 	case r.state == pb.RobotState_ROBOT_STATE_QUARANTINED:
+	case isBroken(err):
+		// Broken first: a writer that could not take its segment back is
+		// unusable whatever else the error says (a full disk among it).
+		s.quarantine(r, fmt.Sprintf("%s failed: %v", what, err))
 	case isNoSpace(err):
 		if r.state != pb.RobotState_ROBOT_STATE_PAUSED {
 			r.state, r.detail = pb.RobotState_ROBOT_STATE_PAUSED, "journal disk full"
 			s.opt.Metrics.paused(1)
 			s.log.Error("journal disk full; the robot pauses until space returns", "robot", r.name, "op", what, "err", err)
 		}
-	case isBroken(err):
-		s.quarantine(r, fmt.Sprintf("%s failed: %v", what, err))
 	default:
 		s.log.Warn(what+" failed; retried later", "robot", r.name, "err", err)
 	}

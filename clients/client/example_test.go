@@ -110,9 +110,28 @@ func ExampleClient_Watch() {
 	// Output: at 1.0 s: x 1.00 m, trusted true
 }
 
-// driveStraight feeds robot 1 m straight ahead in ten 100 ms intervals.
-func driveStraight(ctx context.Context, c *client.Client, robot string) error {
-	sess, err := c.OpenIngest(ctx, robot)
+// drivenCart starts a service, creates robots/cart on it and feeds it 1 m
+// straight ahead in ten 100 ms intervals. stop closes the client and the
+// service.
+func drivenCart(ctx context.Context) (c *client.Client, stop func(), err error) {
+	addr, stopService := startService()
+	if c, err = client.Dial(addr, client.Options{}); err != nil {
+		stopService()
+		return nil, nil, err
+	}
+	stop = func() { c.Close(); stopService() }
+	if err := driveCart(ctx, c); err != nil {
+		stop()
+		return nil, nil, err
+	}
+	return c, stop, nil
+}
+
+func driveCart(ctx context.Context, c *client.Client) error {
+	if _, err := c.CreateRobot(ctx, "cart", cartConfig()); err != nil {
+		return err
+	}
+	sess, err := c.OpenIngest(ctx, "robots/cart")
 	if err != nil {
 		return err
 	}
@@ -127,16 +146,13 @@ func driveStraight(ctx context.Context, c *client.Client, robot string) error {
 // Read the estimate at a stamp inside the run: half way, the cart was
 // half a metre along.
 func ExampleClient_PoseAt() {
-	addr, stop := startService()
-	defer stop()
-	c, _ := client.Dial(addr, client.Options{})
-	defer c.Close()
 	ctx := context.Background()
-	c.CreateRobot(ctx, "cart", cartConfig())
-	if err := driveStraight(ctx, c, "robots/cart"); err != nil {
+	c, stop, err := drivenCart(ctx)
+	if err != nil {
 		fmt.Println(err)
 		return
 	}
+	defer stop()
 	p, err := c.PoseAt(ctx, "robots/cart", 500e6)
 	if err != nil {
 		fmt.Println(err)
@@ -148,16 +164,13 @@ func ExampleClient_PoseAt() {
 
 // Count a robot's inputs by verdict.
 func ExampleClient_Statistics() {
-	addr, stop := startService()
-	defer stop()
-	c, _ := client.Dial(addr, client.Options{})
-	defer c.Close()
 	ctx := context.Background()
-	c.CreateRobot(ctx, "cart", cartConfig())
-	if err := driveStraight(ctx, c, "robots/cart"); err != nil {
+	c, stop, err := drivenCart(ctx)
+	if err != nil {
 		fmt.Println(err)
 		return
 	}
+	defer stop()
 	st, err := c.Statistics(ctx, "robots/cart")
 	if err != nil {
 		fmt.Println(err)
@@ -169,16 +182,13 @@ func ExampleClient_Statistics() {
 
 // Put a cart that was carried to the potting bench back on the map.
 func ExampleClient_Reseed() {
-	addr, stop := startService()
-	defer stop()
-	c, _ := client.Dial(addr, client.Options{})
-	defer c.Close()
 	ctx := context.Background()
-	c.CreateRobot(ctx, "cart", cartConfig())
-	if err := driveStraight(ctx, c, "robots/cart"); err != nil {
+	c, stop, err := drivenCart(ctx)
+	if err != nil {
 		fmt.Println(err)
 		return
 	}
+	defer stop()
 	cov := []float64{1e-4, 0, 0, 0, 1e-4, 0, 0, 0, 1e-4}
 	resp, err := c.Reseed(ctx, "robots/cart", 1e9, &pb.FloorPose{XM: 4, YM: 2.5, HeadingRad: math.Pi / 2}, cov)
 	if err != nil {

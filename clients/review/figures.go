@@ -287,14 +287,20 @@ func (run *Run) shadeTime(o *overlay) {
 		o.add(`<line class="event %s" x1="%.1f" x2="%.1f" y1="%.1f" y2="%.1f" stroke="%s" stroke-width="1" stroke-dasharray="3 2"><title>%.2f s: %s</title></line>`,
 			class, x, x, y0, y1, cssEvent, run.ts(ns), html.EscapeString(title))
 	}
+	s.eachEvent(vline)
+}
+
+// maxSlipMarks is how many suspected slips a figure marks at most.
+const maxSlipMarks = 300
+
+// eachEvent calls mark, with the class and title the figures give them,
+// for every move by hand and the first maxSlipMarks suspected slips.
+func (s *Summary) eachEvent(mark func(ns int64, class, title string)) {
 	for _, r := range s.Recoveries {
-		vline(r.FromNs, "recovery", "moved by hand: "+r.Detail)
+		mark(r.FromNs, "recovery", "moved by hand: "+r.Detail)
 	}
-	for i, ns := range s.SlipsAt {
-		if i == 300 {
-			break
-		}
-		vline(ns, "slip", "wheel slip suspected")
+	for _, ns := range s.SlipsAt[:min(len(s.SlipsAt), maxSlipMarks)] {
+		mark(ns, "slip", "wheel slip suspected")
 	}
 }
 
@@ -463,15 +469,7 @@ func (run *Run) trackMarks(o *overlay, filt plotter.XYs) {
 		x, y := o.xy(q.X, q.Y)
 		o.add(`<circle class="event %s" data-t="%.2f" cx="%.1f" cy="%.1f" r="6" fill="none" stroke="%s" stroke-width="1.5"><title>%.2f s: %s</title></circle>`, class, run.ts(ns), x, y, cssEvent, run.ts(ns), html.EscapeString(title))
 	}
-	for _, r := range s.Recoveries {
-		ring(r.FromNs, "recovery", "moved by hand: "+r.Detail)
-	}
-	for i, ns := range s.SlipsAt {
-		if i == 300 {
-			break
-		}
-		ring(ns, "slip", "wheel slip suspected")
-	}
+	s.eachEvent(ring)
 	// Time marks: a short stroke across the track and its time.
 	step := tickEvery(run.ts(s.EndNs) - run.ts(s.StartNs))
 	for t := math.Ceil(run.ts(s.StartNs)/step) * step; t <= run.ts(s.EndNs); t += step {

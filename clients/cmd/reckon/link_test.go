@@ -3,8 +3,6 @@ package main
 import (
 	"bytes"
 	"context"
-	"io"
-	"log/slog"
 	"net"
 	"strings"
 	"testing"
@@ -12,23 +10,13 @@ import (
 
 	"reckon.example/clients/bridge"
 	"reckon.example/clients/client"
-	"reckon.example/server"
-	"reckon.example/server/daemon"
 )
 
 // TestLink: reckon link listens on UDP, creates the robot, takes 200 frames
 // of a cart driving straight (one sent twice) and, interrupted, prints its
 // summary.
 func TestLink(t *testing.T) {
-	ctx, cancel := context.WithCancel(context.Background())
-	ready := make(chan string, 1)
-	done := make(chan error, 1)
-	go func() {
-		done <- daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Ready: func(a, _ string) { ready <- a },
-			Options: server.Options{JournalDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
-	}()
-	addr := <-ready
-	defer func() { cancel(); <-done }()
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
 
 	// A free UDP port: taken, then let go for reckon link to take.
 	pc, err := net.ListenPacket("udp", "127.0.0.1:0")

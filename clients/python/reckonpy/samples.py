@@ -25,7 +25,9 @@ Pose2 = Tuple[float, float, float]
 """Pose2 is a planar pose (x_m, y_m, heading_rad)."""
 
 NO_MOUNT: Pose2 = (0.0, 0.0, 0.0)
-"""NO_MOUNT is a sensor mounted at the body origin, facing forward."""
+"""NO_MOUNT is a sensor mounted at the body origin, facing forward. Passed
+as a builder's mount it overrides the mount in the robot's sensors
+configuration; to use the configured mount, pass None (the default)."""
 
 
 def diag(*variances: float) -> list:
@@ -173,7 +175,9 @@ def landmark_fix_from_camera(stamp_ns: int, sensor_id: str, landmark_id: str,
     detection of a mapped landmark: the range (metres) and bearing
     (radians, counter-clockwise from the camera's +x) of the marker's
     position in marker_in_camera (x forward, y left; its yaw is not used).
-    cov is 2x2 (range first) with both, 1x1 with one."""
+    cov is 2x2 (range first) with both, 1x1 with one. mount, if given, is
+    the camera's pose in the body frame and overrides the configured one
+    (None: the configured mount)."""
     x, y, _ = marker_in_camera
     return landmark_fix(stamp_ns, sensor_id, landmark_id,
                         range_m=math.hypot(x, y) if use_range else None,

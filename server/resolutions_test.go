@@ -7,6 +7,7 @@ import (
 	"time"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
 
@@ -18,7 +19,7 @@ func splitRun(seed uint64) (before, after, fixes []*pb.Sample, cfg *pb.RobotConf
 	const cutNs = 5e9
 	samp, cfg := cartRun(seed, 10)
 	for _, s := range samp {
-		switch st := stampOf(s); {
+		switch st := convert.SampleStamp(s); {
 		case s.GetFix() != nil:
 			if st > cutNs-1e9 && st < cutNs+0.95e9 {
 				fixes = append(fixes, s)
@@ -30,18 +31,6 @@ func splitRun(seed uint64) (before, after, fixes []*pb.Sample, cfg *pb.RobotConf
 		}
 	}
 	return before, after, fixes, cfg
-}
-
-func stampOf(s *pb.Sample) int64 {
-	switch {
-	case s.GetOdometry() != nil:
-		return s.GetOdometry().GetStampNs()
-	case s.GetHeading() != nil:
-		return s.GetHeading().GetStampNs()
-	case s.GetFix() != nil:
-		return s.GetFix().GetStampNs()
-	}
-	return s.GetReseed().GetStampNs()
 }
 
 // applyAll applies samples on f, failing on a refusal; it returns the

@@ -456,7 +456,7 @@ func (rc *recorder) opened(fr *fusion.Robot) {
 func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
 	if rc.seen == 0 {
 		// The run's start is its first input's stamp.
-		start := sampleStamp(s)
+		start := convert.SampleStamp(s)
 		rc.run.Summary.RunStartNs = start
 		rc.a.fromNs, rc.a.toNs = start+rc.fromNs, math.MaxInt64
 		if rc.toNs > 0 {
@@ -613,7 +613,7 @@ func (a *accumulator) addNIS(sensor string, p NISPoint) {
 
 func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	sum := &a.run.Summary
-	stamp := sampleStamp(s)
+	stamp := convert.SampleStamp(s)
 	for _, r := range resp.GetResolved() {
 		if i, ok := a.fixAt[r.GetSequence()]; ok {
 			delete(a.fixAt, r.GetSequence())
@@ -806,20 +806,6 @@ func Label(src Source) string {
 		return robotID(src.Robot)
 	}
 	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
-}
-
-func sampleStamp(s *pb.Sample) int64 {
-	switch v := s.GetSample().(type) {
-	case *pb.Sample_Odometry:
-		return v.Odometry.GetStampNs()
-	case *pb.Sample_Heading:
-		return v.Heading.GetStampNs()
-	case *pb.Sample_Fix:
-		return v.Fix.GetStampNs()
-	case *pb.Sample_Reseed:
-		return v.Reseed.GetStampNs()
-	}
-	return 0
 }
 
 var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "cov_xy_m2", "cov_xh_m_rad", "cov_yy_m2", "cov_yh_m_rad", "cov_hh_rad2", "position95_m", "imu_offset_rad", "imu_offset_var_rad2"}

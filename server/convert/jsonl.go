@@ -137,3 +137,19 @@ func FixToProto(f *fusion.Fix) *pb.Sample {
 	}
 	return &pb.Sample{Sample: &pb.Sample_Fix{Fix: x}}
 }
+
+// SampleStamp returns the stamp of any kind of sample, nanoseconds on the
+// robot's time base (0 for a sample with none of them set).
+func SampleStamp(s *pb.Sample) int64 {
+	switch v := s.GetSample().(type) {
+	case *pb.Sample_Odometry:
+		return v.Odometry.GetStampNs()
+	case *pb.Sample_Heading:
+		return v.Heading.GetStampNs()
+	case *pb.Sample_Fix:
+		return v.Fix.GetStampNs()
+	case *pb.Sample_Reseed:
+		return v.Reseed.GetStampNs()
+	}
+	return 0
+}

@@ -115,7 +115,7 @@ func sendSamples(ctx context.Context, sess *client.Session, sr *convert.SampleRe
 		if err != nil {
 			return sent, lineError(label, sr.Line(), err)
 		}
-		if !p.wait(ctx, sampleStamp(s)) {
+		if !p.wait(ctx, convert.SampleStamp(s)) {
 			break
 		}
 		t.sending(sr.Line())
@@ -152,19 +152,6 @@ func lineError(file string, line int, err error) error {
 		line = le.Line
 	}
 	return &fileLineError{file: file, line: line, err: err}
-}
-
-// sampleStamp is the stamp of any kind of sample, nanoseconds.
-func sampleStamp(s *pb.Sample) int64 {
-	switch {
-	case s.GetOdometry() != nil:
-		return s.GetOdometry().GetStampNs()
-	case s.GetHeading() != nil:
-		return s.GetHeading().GetStampNs()
-	case s.GetFix() != nil:
-		return s.GetFix().GetStampNs()
-	}
-	return s.GetReseed().GetStampNs()
 }
 
 // pacer holds samples back to a multiple of real time by their stamps,

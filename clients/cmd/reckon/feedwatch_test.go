@@ -39,9 +39,9 @@ func TestFeedStdinPaced(t *testing.T) {
 			break
 		}
 		if i == 0 {
-			first = sampleStamp(s)
+			first = convert.SampleStamp(s)
 		}
-		last = max(last, sampleStamp(s))
+		last = max(last, convert.SampleStamp(s))
 	}
 	span := time.Duration(last - first)
 	if span < 500*time.Millisecond {

@@ -181,7 +181,7 @@ type spanWriter struct {
 }
 
 func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
-	stamp := sampleStamp(s)
+	stamp := convert.SampleStamp(s)
 	if !sw.started {
 		sw.started, sw.startNs = true, stamp
 	}

@@ -173,8 +173,7 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 
 // Predicted returns h(x), the measurement the state x (length 3 to
 // MaxStates) predicts, and its Jacobian (Dim() x len(x), row-major). It
-// allocates and is meant for tests and tools; the filter uses the same code
-// without allocating.
+// allocates; the filter uses the same code without allocating.
 func (m *Measurement) Predicted(x []float64) (z []float64, H []float64, err error) {
 	var zz [3]float64
 	var hh [3 * MaxStates]float64

@@ -109,12 +109,13 @@ func fixScore(st *estimator.State, m *estimator.Measurement) (g [3]float64, info
 		return g, info, false
 	}
 	d := m.Kind.Dim()
-	var v [3]float64
-	var s, hs, vs [k * k]float64 // S (d x d); H, then S^-1 H (d x n); v, then S^-1 v
+	// S (d x d), and beside it the right-hand sides: the pose columns of H,
+	// then v; one solve makes S^-1 H (pose block) and S^-1 v.
+	var s, rhs [k * k]float64
 	for a := 0; a < d; a++ {
-		v[a] = m.Z[a] - z[a]
+		v := m.Z[a] - z[a]
 		if m.Kind.IsAngle(a) {
-			v[a] = estimator.Wrap(v[a])
+			v = estimator.Wrap(v)
 		}
 		for b := 0; b < d; b++ {
 			sum := m.R[a*3+b]
@@ -125,20 +126,19 @@ func fixScore(st *estimator.State, m *estimator.Measurement) (g [3]float64, info
 			}
 			s[a*k+b] = sum
 		}
-		for j := 0; j < n; j++ {
-			hs[a*k+j] = h[a*n+j]
+		for j := 0; j < 3; j++ {
+			rhs[a*k+j] = h[a*n+j]
 		}
-		vs[a*k] = v[a]
+		rhs[a*k+3] = v
 	}
-	sv := s
-	if !estimator.SolveSPD(&s, d, &hs, n) || !estimator.SolveSPD(&sv, d, &vs, 1) {
+	if !estimator.SolveSPD(&s, d, &rhs, 4) {
 		return g, info, false
 	}
 	for i := 0; i < 3; i++ {
 		for a := 0; a < d; a++ {
-			g[i] += h[a*n+i] * vs[a*k]
+			g[i] += h[a*n+i] * rhs[a*k+3]
 			for j := 0; j < 3; j++ {
-				info[i*3+j] += h[a*n+i] * hs[a*k+j]
+				info[i*3+j] += h[a*n+i] * rhs[a*k+j]
 			}
 		}
 	}

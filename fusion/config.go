@@ -173,7 +173,7 @@ type Config struct {
 var ErrConfig = errors.New("invalid configuration")
 
 func cfgErr(field, format string, args ...any) error {
-	return fieldErr(ErrConfig, field, format, args...)
+	return FieldErrorf(ErrConfig, field, format, args...)
 }
 
 // withDefaults returns a copy of c with zero fields set to their defaults.

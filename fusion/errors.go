@@ -15,7 +15,7 @@ type FieldError struct {
 	Err  error
 }
 
-// Error renders "kind: path: what".
+// Error returns Err's text ("kind: path: what" when FieldErrorf made it).
 func (e *FieldError) Error() string {
 	return e.Err.Error()
 }
@@ -27,10 +27,6 @@ func (e *FieldError) Unwrap() error { return e.Err }
 // ErrConfig) whose text is "kind: path: message".
 func FieldErrorf(kind error, path, format string, args ...any) error {
 	return &FieldError{Path: path, Err: fmt.Errorf("%w: %s: %s", kind, path, fmt.Sprintf(format, args...))}
-}
-
-func fieldErr(kind error, path, format string, args ...any) error {
-	return FieldErrorf(kind, path, format, args...)
 }
 
 // FieldOf returns the field path carried by err, or "" if none.

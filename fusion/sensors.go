@@ -327,7 +327,7 @@ func (c *Config) biasSpecs() []estimator.BiasSpec {
 // bias states and robust model.
 func (s *Sensor) sensorFix(f *Fix, first int, m *estimator.Measurement) error {
 	if f.Kind != s.Kind {
-		return fieldErr(ErrBadSample, "sensor_id", "sensor %q gives %s fixes, not %s", s.ID, s.Kind, f.Kind)
+		return FieldErrorf(ErrBadSample, "sensor_id", "sensor %q gives %s fixes, not %s", s.ID, s.Kind, f.Kind)
 	}
 	m.Mount = s.Mount
 	if f.Mount != nil {

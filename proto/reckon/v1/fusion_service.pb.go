@@ -332,7 +332,9 @@ func (DistrustReason) EnumDescriptor() ([]byte, []int) {
 }
 
 // ConsistencyVerdict compares a sensor's mean NIS over its applied fixes
-// with the two-sided 95% band of a consistent filter.
+// with the two-sided 95% band of a consistent filter and, for a gated
+// sensor, its gated count with its gate (a one-sided binomial test at
+// significance 0.001; DEVELOPERS.md, "Design: Trust").
 type ConsistencyVerdict int32
 
 const (
@@ -340,7 +342,8 @@ const (
 	ConsistencyVerdict_CONSISTENCY_VERDICT_UNSPECIFIED ConsistencyVerdict = 0
 	// The mean NIS lies inside the band.
 	ConsistencyVerdict_CONSISTENCY_VERDICT_CONSISTENT ConsistencyVerdict = 1
-	// The mean NIS is above the band: the covariance claims too much.
+	// The mean NIS is above the band, or significantly more fixes were gated
+	// than the gate allows: the covariance claims too much.
 	ConsistencyVerdict_CONSISTENCY_VERDICT_OVERCONFIDENT ConsistencyVerdict = 2
 	// The mean NIS is below the band: the covariance claims too little.
 	ConsistencyVerdict_CONSISTENCY_VERDICT_UNDERCONFIDENT ConsistencyVerdict = 3
@@ -1958,7 +1961,8 @@ type SensorConsistency struct {
 	BandLow float64 `protobuf:"fixed64,4,opt,name=band_low,json=bandLow,proto3" json:"band_low,omitempty"`
 	// Upper end of the band.
 	BandHigh float64 `protobuf:"fixed64,5,opt,name=band_high,json=bandHigh,proto3" json:"band_high,omitempty"`
-	// The comparison of mean_nis with its band.
+	// The comparison of mean_nis with its band and, for a gated sensor, of
+	// its gated count with what its gate allows.
 	Verdict       ConsistencyVerdict `protobuf:"varint,7,opt,name=verdict,proto3,enum=reckon.v1.ConsistencyVerdict" json:"verdict,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

@@ -641,9 +641,12 @@ func (x *RobotSnapshot) GetBiasWindow() *SnapshotBiasWindow {
 // EstimateState is a filter's mean and covariance.
 type EstimateState struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// The state size, 3 or 4.
+	// The state size, 3 to 12 (estimator.MaxStates).
 	Size uint32 `protobuf:"varint,1,opt,name=size,proto3" json:"size,omitempty"`
-	// The mean (x m, y m, heading rad, IMU offset rad), size entries.
+	// The mean, size entries: x m, y m, heading rad, then as configured the
+	// IMU offset rad, the forward and turn scales, the heading-rate bias
+	// rad/s and one bias block per correlated sensor (DEVELOPERS.md,
+	// "Design: State").
 	Mean []float64 `protobuf:"fixed64,2,rep,packed,name=mean,proto3" json:"mean,omitempty"`
 	// The covariance, size x size row-major.
 	Covariance    []float64 `protobuf:"fixed64,3,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`

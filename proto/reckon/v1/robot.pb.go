@@ -155,8 +155,10 @@ const (
 	RobustLoss_ROBUST_LOSS_NONE RobustLoss = 1
 	// Huber's weight min(1, k / sqrt(NIS)) (Huber 1964).
 	RobustLoss_ROBUST_LOSS_HUBER RobustLoss = 2
-	// The Student-t weight min(1, (nu + d) / (nu + NIS)), d the fix's
-	// dimension (Roth, Ozkan and Gustafsson 2013).
+	// The Student-t weight min(1, (nu + d - 2) / (nu + NIS)), d the fix's
+	// dimension: R / w is the expected covariance of a Student-t error given
+	// its NIS (Roth, Ozkan and Gustafsson 2013; DEVELOPERS.md, "Design:
+	// Sensors").
 	RobustLoss_ROBUST_LOSS_STUDENT_T RobustLoss = 3
 )
 

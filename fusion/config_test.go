@@ -47,6 +47,9 @@ func TestConfigValidate(t *testing.T) {
 		{"correlated without cov", func(c *Config) { c.Sensors[1].CorrelatedFraction, c.Sensors[1].CorrelationTimeS = 0.5, 2 }, "sensors[1].covariance"},
 		{"robust loss", func(c *Config) { c.Sensors[1].Robust = 7 }, "sensors[1].robust"},
 		{"robust parameter", func(c *Config) { c.Sensors[1].RobustParameter = -1 }, "sensors[1].robust_parameter"},
+		{"student-t with one degree of freedom", func(c *Config) {
+			c.Sensors[1].Robust, c.Sensors[1].RobustParameter = RobustStudentT, 1
+		}, "sensors[1].robust_parameter"},
 		{"too many sensors", func(c *Config) {
 			for i := 0; i < MaxSensors; i++ {
 				c.Sensors = append(c.Sensors, Sensor{ID: fmt.Sprint("s", i), Kind: FixHeading})

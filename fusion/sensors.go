@@ -224,6 +224,11 @@ func (c *Config) checkSensors() error {
 				return cfgErr(f+".robust_parameter", "%v must be positive and finite", s.RobustParameter)
 			}
 		}
+		if s.Robust == RobustStudentT && s.RobustParameter != 0 && !(s.RobustParameter > 1) {
+			// The update's covariance weight (nu + d - 2) / (nu + NIS) must
+			// be positive for a one-dimensional fix too (estimator.StudentTCovWeight).
+			return cfgErr(f+".robust_parameter", "%v degrees of freedom: a Student-t sensor needs more than 1", s.RobustParameter)
+		}
 	}
 	return nil
 }

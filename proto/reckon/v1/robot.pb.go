@@ -600,7 +600,7 @@ type FixSensor struct {
 	// Robust weighting of the sensor's fixes (default none).
 	Robust RobustLoss `protobuf:"varint,8,opt,name=robust,proto3,enum=reckon.v1.RobustLoss" json:"robust,omitempty"`
 	// Huber's k in standard deviations (default 1.345) or the Student-t
-	// degrees of freedom (default 4).
+	// degrees of freedom (default 4; more than 1).
 	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
 	unknownFields   protoimpl.UnknownFields
 	sizeCache       protoimpl.SizeCache

@@ -119,6 +119,8 @@ type robot struct {
 	gauges *robotGauges
 
 	hub hub
+	// sync is the periodic fsync's own state (its own lock).
+	sync syncer
 }
 
 // New returns a server. Call Restore before serving to bring back robots
@@ -184,17 +186,22 @@ func (s *Server) syncLoop() {
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the
-// robot's lock while the disk works (syncLatest), so that ingest does not
+// robot's lock while the disk works (syncer), so that ingest does not
 // wait for it.
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		has := r.journal != nil
+		j := r.journal
+		var path string
+		var writes uint64
+		if j != nil {
+			path, writes = j.SyncPoint()
+		}
 		r.mu.Unlock()
-		if !has {
+		if j == nil {
 			continue
 		}
-		if err := syncLatest(s.opt.FS, s.opt.JournalDir, r.id); err != nil {
+		if err := r.sync.sync(s.opt.FS, j, path, writes); err != nil {
 			r.mu.Lock()
 			s.journalFailed(r, "journal sync", err)
 			r.mu.Unlock()
@@ -222,6 +229,7 @@ func (s *Server) Close() error {
 			r.journal = nil
 		}
 		r.mu.Unlock()
+		r.sync.close()
 		r.hub.close()
 	}
 	errs = append(errs, s.unlock())
@@ -368,6 +376,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	delete(s.robots, r.name)
 	s.opt.Metrics.robots(len(s.robots))
 	s.mu.Unlock()
+	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
 	if r.journal != nil {
@@ -402,30 +411,25 @@ const maxBatch = 256
 // Ingest takes a stream of samples and answers each in order. Samples that
 // are already waiting when one is taken are taken with it, journaled with
 // one write (group commit) and then answered.
+//
+// Two goroutines share the taking, one at a time (ingestTurn): the one
+// that receives takes a sample itself when it arrived alone, which saves
+// the sample a wake-up of another goroutine (BenchmarkRobotRates); when
+// samples come faster than they are taken, it hands them to the other,
+// which takes them in batches while the receiver goes on receiving
+// (BenchmarkIngestThroughput).
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	ctx := stream.Context()
 	in := newInbox()
-	go func() {
-		sl := &slab{}
-		for {
-			req := &arrivedRequest{slab: sl}
-			err := stream.RecvMsg(req)
-			if err == nil {
-				err = in.put(ctx, req)
-			}
-			if err != nil {
-				in.end(err)
-				return
-			}
-		}
-	}()
 	// A third goroutine sends the verdicts of large batches, so that taking
 	// the next batch overlaps with sending the last one's verdicts.
 	snd := &sender{stream: stream, out: make(chan []encodedResponse, 4)}
 	sendErr := make(chan error, 1)
 	go func() { sendErr <- snd.run() }()
 	ob := newOutbox()
-	err := s.takeBatches(ctx, in, snd, ob)
+	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob}
+	go t.receive(ctx, stream)
+	err := t.takeBatches(ctx)
 	if err == nil {
 		// The client closed its side: what is pending still goes out.
 		if rest := ob.close(false); len(rest) > 0 {
@@ -441,6 +445,118 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	return err
 }
 
+// aloneAfter is how long a receive must have waited for its sample to count
+// it as arriving alone: a sample already buffered when the receive began
+// returns within a few microseconds, one that had to come over the
+// connection waits at least for the goroutine's wake-up, tens of
+// microseconds. A wrong guess costs time, never order: the taking turn
+// keeps it.
+const aloneAfter = 300 * time.Microsecond
+
+var tmpNoInline bool
+
+// ingestTurn is one ingest stream's taking: whoever holds mu takes the
+// waiting samples, applies them and sends their verdicts, so that order
+// holds whichever goroutine does it.
+type ingestTurn struct {
+	s   *Server
+	in  *inbox
+	snd *sender
+	ob  *outbox
+
+	mu    sync.Mutex
+	batch []*arrivedRequest // reused by the holder of mu
+	err   error             // the first send error; the stream is then done
+}
+
+// receive receives the stream's requests until it ends; a request that
+// arrived alone it takes itself when no one else is taking.
+func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
+	sl := &slab{}
+	for {
+		req := &arrivedRequest{slab: sl}
+		before := time.Now()
+		err := stream.RecvMsg(req)
+		if err == nil {
+			alone := time.Since(before) >= aloneAfter && !tmpNoInline
+			if err = t.in.put(ctx, req, !alone); err == nil && alone {
+				t.takeHere(ctx)
+			}
+		}
+		if err != nil {
+			t.in.end(err)
+			return
+		}
+	}
+}
+
+// takeHere takes what waits, on the receiving goroutine, unless the other
+// is taking; then it signals the other, which takes it after.
+func (t *ingestTurn) takeHere(ctx context.Context) {
+	if !t.mu.TryLock() {
+		signal(t.in.ready)
+		return
+	}
+	defer t.mu.Unlock()
+	if t.err != nil {
+		return
+	}
+	if t.batch = t.in.takeNow(t.batch); len(t.batch) > 0 {
+		t.err = t.takeOne(ctx, t.batch)
+	}
+}
+
+// takeBatches takes requests as they come, in batches of what is waiting,
+// and sends after each batch the resolutions that other streams decided
+// for this one's held inputs (ob), waking for them too.
+func (t *ingestTurn) takeBatches(ctx context.Context) error {
+	for {
+		if err := t.in.wait(ctx, t.ob.ready); err != nil {
+			if err != io.EOF {
+				return err
+			}
+			// Ended: take what the receiver left.
+			t.mu.Lock()
+			defer t.mu.Unlock()
+			for t.err == nil {
+				if t.batch = t.in.takeNow(t.batch); len(t.batch) == 0 {
+					break
+				}
+				t.err = t.takeOne(ctx, t.batch)
+			}
+			return t.err
+		}
+		t.mu.Lock()
+		if t.err == nil {
+			t.batch = t.in.takeNow(t.batch)
+			t.err = t.takeOne(ctx, t.batch)
+		}
+		err := t.err
+		t.mu.Unlock()
+		if err != nil {
+			return err
+		}
+	}
+}
+
+// takeOne applies a batch (it may be empty: resolutions only) and sends
+// its verdicts and the resolutions waiting. The caller holds t.mu.
+func (t *ingestTurn) takeOne(ctx context.Context, batch []*arrivedRequest) error {
+	var resps []encodedResponse
+	if len(batch) > 0 {
+		resps = t.s.ingestStream(batch, t.ob)
+	}
+	if ctx.Err() == nil {
+		// A stream that is gone leaves them pending, to be kept for its
+		// session.
+		resps = append(resps, t.ob.drain()...)
+	}
+	if len(resps) == 0 {
+		return nil
+	}
+	return t.snd.send(ctx, resps)
+}
+
 // inlineBatch is the largest batch whose verdicts the taking goroutine
 // sends itself when nothing else waits to be sent: at a robot's own rates
 // a sample arrives alone, and sending its verdict at once saves it a
@@ -452,9 +568,9 @@ const inlineBatch = 8
 type sender struct {
 	stream grpc.ServerStream
 	out    chan []encodedResponse
-	// queued counts the batches queued and not yet sent. Only the taking
-	// goroutine queues, so when it reads 0 the goroutine is idle and the
-	// taker may send itself without breaking the order.
+	// queued counts the batches queued and not yet sent. Only the holder
+	// of the taking turn queues, so when it reads 0 the goroutine is idle
+	// and the holder may send itself without breaking the order.
 	queued atomic.Int64
 }
 
@@ -491,34 +607,6 @@ func (snd *sender) send(ctx context.Context, resps []encodedResponse) error {
 	case <-ctx.Done():
 		snd.queued.Add(-1)
 		return ctx.Err()
-	}
-}
-
-// takeBatches takes requests as they come, in batches of what is waiting,
-// and sends after each batch the resolutions that other streams decided
-// for this one's held inputs (ob), waking for them too.
-func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender, ob *outbox) error {
-	var batch []*arrivedRequest
-	for {
-		var err error
-		if batch, err = in.take(ctx, batch, ob.ready); err != nil {
-			if err == io.EOF {
-				return nil
-			}
-			return err
-		}
-		resps := s.ingestStream(batch, ob)
-		if ctx.Err() == nil {
-			// A stream that is gone leaves them pending, to be kept
-			// for its session.
-			resps = append(resps, ob.drain()...)
-		}
-		if len(resps) == 0 {
-			continue
-		}
-		if err := snd.send(ctx, resps); err != nil {
-			return err
-		}
 	}
 }
 

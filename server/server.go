@@ -445,15 +445,18 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	return err
 }
 
-// aloneAfter is how long a receive must have waited for its sample to count
-// it as arriving alone: a sample already buffered when the receive began
-// returns within a few microseconds, one that had to come over the
-// connection waits at least for the goroutine's wake-up, tens of
-// microseconds. A wrong guess costs time, never order: the taking turn
+// A sample counts as arriving alone when its receive waited at least
+// aloneAfter for it and nothing was taken on its stream for quietFor: a
+// sample already buffered when the receive began returns within a few
+// microseconds, one that had to come over the connection waits at least
+// for the goroutine's wake-up, tens of microseconds; and a stream that
+// was taken from within the last millisecond is busy, so its samples go
+// to the batches. A wrong guess costs time, never order: the taking turn
 // keeps it.
-const aloneAfter = 300 * time.Microsecond
-
-var tmpNoInline bool
+const (
+	aloneAfter = 50 * time.Microsecond
+	quietFor   = time.Millisecond
+)
 
 // ingestTurn is one ingest stream's taking: whoever holds mu takes the
 // waiting samples, applies them and sends their verdicts, so that order
@@ -464,9 +467,10 @@ type ingestTurn struct {
 	snd *sender
 	ob  *outbox
 
-	mu    sync.Mutex
-	batch []*arrivedRequest // reused by the holder of mu
-	err   error             // the first send error; the stream is then done
+	mu       sync.Mutex
+	batch    []*arrivedRequest // reused by the holder of mu
+	err      error             // the first send error; the stream is then done
+	lastTake atomic.Int64      // when a take last ended, Unix nanoseconds
 }
 
 // receive receives the stream's requests until it ends; a request that
@@ -478,7 +482,8 @@ func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
 		before := time.Now()
 		err := stream.RecvMsg(req)
 		if err == nil {
-			alone := time.Since(before) >= aloneAfter && !tmpNoInline
+			now := time.Now()
+			alone := now.Sub(before) >= aloneAfter && now.UnixNano()-t.lastTake.Load() >= int64(quietFor)
 			if err = t.in.put(ctx, req, !alone); err == nil && alone {
 				t.takeHere(ctx)
 			}
@@ -542,6 +547,7 @@ func (t *ingestTurn) takeBatches(ctx context.Context) error {
 // takeOne applies a batch (it may be empty: resolutions only) and sends
 // its verdicts and the resolutions waiting. The caller holds t.mu.
 func (t *ingestTurn) takeOne(ctx context.Context, batch []*arrivedRequest) error {
+	defer func() { t.lastTake.Store(time.Now().UnixNano()) }()
 	var resps []encodedResponse
 	if len(batch) > 0 {
 		resps = t.s.ingestStream(batch, t.ob)

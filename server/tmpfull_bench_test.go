@@ -61,8 +61,3 @@ func BenchmarkTmpBare(b *testing.B) {
 	}
 }
 
-func BenchmarkTmpFullNoInline(b *testing.B) {
-	tmpNoInline = true
-	defer func() { tmpNoInline = false }()
-	BenchmarkTmpFull(b)
-}

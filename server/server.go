@@ -90,6 +90,7 @@ type Server struct {
 	robots map[string]*robot
 
 	watching atomic.Int64 // open Watch streams
+	live     liveHub      // open live views (live.go)
 	unlock   func() error // releases the journal directory
 
 	stopSync chan struct{}
@@ -208,6 +209,7 @@ func (s *Server) EndWatches() {
 	for _, r := range s.list() {
 		r.hub.close()
 	}
+	s.live.end()
 }
 
 // Close syncs and closes every journal and ends every watch.
@@ -224,6 +226,7 @@ func (s *Server) Close() error {
 		r.mu.Unlock()
 		r.hub.close()
 	}
+	s.live.end()
 	errs = append(errs, s.unlock())
 	return errors.Join(errs...)
 }
@@ -299,7 +302,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	s.opt.Metrics.robots(len(s.robots))
 	r.mu.Lock()
 	s.observeRobot(r, nil, -1)
+	created := LiveUpdate{Robot: name, State: r.state, Pose: poseNow(r)}
 	r.mu.Unlock()
+	s.live.publish(func() LiveUpdate { return created })
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
@@ -384,6 +389,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	r.mu.Unlock()
 	s.opt.Metrics.forget(r.name)
 	r.hub.close()
+	s.live.publish(func() LiveUpdate { return LiveUpdate{Robot: r.name, Gone: true} })
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "journal: %v", err)
 	}
@@ -612,6 +618,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	if pose != nil {
 		s.observeRobot(r, pose, lag)
 	}
+	state := r.state
 	r.mu.Unlock()
 	if pose == nil {
 		return
@@ -621,6 +628,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 		events = append(events, out[k].Events...)
 	}
 	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	s.live.publish(func() LiveUpdate {
+		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, tk.entries[:written])}
+	})
 	d := time.Since(start)
 	for _, k := range tk.entries[:written] {
 		s.opt.Metrics.verdict(out[k].Verdict, d)

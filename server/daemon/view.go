@@ -111,12 +111,13 @@ func streamView(w http.ResponseWriter, r *http.Request, srv *server.Server) {
 	}
 	keep := time.NewTicker(viewKeepalive)
 	defer keep.Stop()
+	done := live.Done()
 	var buf []byte
 	for {
 		select {
 		case <-r.Context().Done():
 			return
-		case <-live.Done():
+		case <-done:
 			return
 		case <-keep.C:
 			if !send([]byte(": keepalive\n\n")) {

@@ -3,6 +3,7 @@ package daemon
 import (
 	"bufio"
 	"context"
+	"crypto/tls"
 	"encoding/json"
 	"fmt"
 	"io"
@@ -339,4 +340,39 @@ func metric(t *testing.T, addr, name string) float64 {
 		t.Fatal(err)
 	}
 	return v
+}
+
+// TestViewTLS: with the service's certificate the view speaks HTTPS (and
+// still needs the token); plain HTTP gets no page.
+func TestViewTLS(t *testing.T) {
+	p := newPKI(t, "reckon test CA")
+	cert, key := p.issue(t, "reckond", true)
+	v := startViewing(t, Config{TLSCert: cert, TLSKey: key, Token: "greenhouse-7"}, nil)
+	hc := &http.Client{Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: p.caPool, MinVersion: tls.VersionTLS12}}}
+	defer hc.CloseIdleConnections()
+	for _, c := range []struct {
+		auth string
+		want int
+	}{{"Bearer greenhouse-7", http.StatusOK}, {"", http.StatusUnauthorized}} {
+		req, _ := http.NewRequest("GET", "https://"+v.view+"/", nil)
+		if c.auth != "" {
+			req.Header.Set("Authorization", c.auth)
+		}
+		resp, err := hc.Do(req)
+		if err != nil {
+			t.Fatalf("HTTPS: %v", err)
+		}
+		resp.Body.Close()
+		if resp.StatusCode != c.want {
+			t.Errorf("HTTPS with %q: %s, want %d", c.auth, resp.Status, c.want)
+		}
+	}
+	req, _ := http.NewRequest("GET", "http://"+v.view+"/", nil)
+	req.Header.Set("Authorization", "Bearer greenhouse-7")
+	if resp, err := http.DefaultClient.Do(req); err == nil {
+		resp.Body.Close()
+		if resp.StatusCode == http.StatusOK {
+			t.Error("plain HTTP to the TLS view served the page")
+		}
+	}
 }

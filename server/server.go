@@ -120,6 +120,8 @@ type robot struct {
 	gauges *robotGauges
 
 	hub hub
+	// sync is the periodic fsync's own state (its own lock).
+	sync syncer
 }
 
 // New returns a server. Call Restore before serving to bring back robots
@@ -185,17 +187,22 @@ func (s *Server) syncLoop() {
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the
-// robot's lock while the disk works (syncLatest), so that ingest does not
+// robot's lock while the disk works (syncer), so that ingest does not
 // wait for it.
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		has := r.journal != nil
+		j := r.journal
+		var path string
+		var writes uint64
+		if j != nil {
+			path, writes = j.SyncPoint()
+		}
 		r.mu.Unlock()
-		if !has {
+		if j == nil {
 			continue
 		}
-		if err := syncLatest(s.opt.FS, s.opt.JournalDir, r.id); err != nil {
+		if err := r.sync.sync(s.opt.FS, j, path, writes); err != nil {
 			r.mu.Lock()
 			s.journalFailed(r, "journal sync", err)
 			r.mu.Unlock()
@@ -224,6 +231,7 @@ func (s *Server) Close() error {
 			r.journal = nil
 		}
 		r.mu.Unlock()
+		r.sync.close()
 		r.hub.close()
 	}
 	s.live.end()
@@ -373,6 +381,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	delete(s.robots, r.name)
 	s.opt.Metrics.robots(len(s.robots))
 	s.mu.Unlock()
+	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
 	if r.journal != nil {
@@ -604,7 +613,8 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
 	lag := time.Since(start)
-	if len(tk.entries) > 0 && r.fr != nil {
+	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0) {
+		// The pose is for the watchers and the metrics: none, no pose.
 		pose = poseNow(r)
 	}
 	if cause != nil {

@@ -218,7 +218,7 @@ func (l *Live) merge(old, u *LiveUpdate) {
 
 // publish hands every open view u; with none open it costs one atomic load.
 func (h *liveHub) publish(u func() LiveUpdate) {
-	if h.open.Load() == 0 {
+	if !h.watched() {
 		return
 	}
 	v := u()
@@ -228,6 +228,9 @@ func (h *liveHub) publish(u func() LiveUpdate) {
 		l.put(v)
 	}
 }
+
+// watched tells whether a live view is open; it costs one atomic load.
+func (h *liveHub) watched() bool { return h.open.Load() > 0 }
 
 // end ends every live view (EndWatches, Close).
 func (h *liveHub) end() {

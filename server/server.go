@@ -613,8 +613,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
 	lag := time.Since(start)
-	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0) {
-		// The pose is for the watchers and the metrics: none, no pose.
+	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0 || s.live.watched()) {
+		// The pose is for the watchers, the live views and the metrics:
+		// none, no pose.
 		pose = poseNow(r)
 	}
 	if cause != nil {

@@ -90,10 +90,11 @@ func feedPaced(api pb.FusionServiceClient, samp []*pb.Sample, span time.Duration
 
 // TestViewInBrowser: headless Chromium loads the live view of a real
 // service, whose robot appears; fed odometry and fixes over gRPC at real
-// time (for two seconds, then faster), the page shows at least two different poses within a second of
-// the feed's start (the check of the live view), and draws the pose, its
-// 95% ellipse, the track, the fixes and the grid. It leaves a screenshot
-// in testdata/out/live-view.png.
+// time (for two seconds, then faster), the page shows at least two
+// different poses within a second of the feed's start (the check of the
+// live view); a robot created meanwhile appears and goes when deleted; and
+// the page draws the pose, its 95% ellipse, the track, the fixes and the
+// grid. It leaves a screenshot in testdata/out/live-view.png.
 func TestViewInBrowser(t *testing.T) {
 	samp, cfg := cartSamples(25)
 	v := startViewing(t, Config{}, cfg)
@@ -121,6 +122,21 @@ func TestViewInBrowser(t *testing.T) {
 	}
 	if err := <-fed; err != nil {
 		t.Fatalf("feed: %v", err)
+	}
+	// A robot created while the page is open appears on it, and goes when
+	// deleted.
+	if _, err := v.api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart-b", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	other := `section.robot[data-robot="robots/cart-b"]`
+	if err := chromedp.Do(ctx, chromedp.WaitVisible(chromedp.CSS(other))); err != nil {
+		t.Fatalf("the robot created later did not appear: %v", err)
+	}
+	if _, err := v.api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart-b"}); err != nil {
+		t.Fatal(err)
+	}
+	if err := chromedp.Do(ctx, chromedp.WaitNotPresent(chromedp.CSS(other))); err != nil {
+		t.Fatalf("the deleted robot stayed: %v", err)
 	}
 	// After the run the page has drawn every kind of mark.
 	time.Sleep(200 * time.Millisecond)

@@ -227,3 +227,38 @@ func TestSmootherBeatsFilter(t *testing.T) {
 }
 
 func sq(v float64) float64 { return v * v }
+
+// TestAppendStepsEqualsTakeSteps: collecting a run's steps with
+// AppendSteps into one reused buffer gives the same steps, bit for bit, as
+// TakeSteps.
+func TestAppendStepsEqualsTakeSteps(t *testing.T) {
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 76, DurationS: 30, OutlierFraction: 0.05}
+	s := fusiontest.New(sc)
+	taken, _ := fusion.New(s.Config())
+	appended, _ := fusion.New(s.Config())
+	taken.CollectSteps()
+	appended.CollectSteps()
+	var want, got []fusion.Step
+	buf := make([]fusion.Step, 0, 64)
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		fusiontest.Feed(taken, &in)
+		want = append(want, taken.TakeSteps()...)
+		fusiontest.Feed(appended, &in)
+		buf = appended.AppendSteps(buf[:0])
+		got = append(got, buf...)
+	}
+	want = append(want, taken.FinishSteps()...)
+	got = append(got, appended.FinishSteps()...)
+	if len(got) != len(want) || len(want) < 5000 {
+		t.Fatalf("%d steps appended, %d taken", len(got), len(want))
+	}
+	for i := range want {
+		if got[i] != want[i] {
+			t.Fatalf("step %d differs: appended %+v, taken %+v", i, got[i].Post, want[i].Post)
+		}
+	}
+}

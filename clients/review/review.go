@@ -272,34 +272,23 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw := newStepWriter(steps)
+	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: make([]fusion.Step, 0, stepBatch)}
 	fr, err := rc.replay(src)
 	if err != nil {
+		fw.close()
+		os.Remove(run.FilteredCSV)
 		return nil, err
 	}
-	fw.add(a.window(fr.FinishSteps()), true)
+	rc.add(fr, true)
 	if err := fw.close(); err != nil {
 		return nil, err
 	}
 	run.Config = fr.Config()
 	rc.a.finish(fr)
-	// The filtered track is written from a reader of its own while the
-	// smoother runs: the replay kept both cores busy, the smoother keeps
-	// one.
-	filtered, err := steps.reader()
-	if err != nil {
-		return nil, err
-	}
-	written := make(chan error, 1)
-	go func() { written <- writeTrack(run.FilteredCSV, filtered) }()
-	err = smoothAndTrack(rc.a, steps, src.Truth, outDir, opt)
-	if werr := <-written; err == nil {
-		err = werr
-	}
-	if err != nil {
+	if err := smoothAndTrack(rc.a, steps, src.Truth, outDir, opt); err != nil {
 		return nil, err
 	}
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
@@ -341,49 +330,59 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 	return smoothed, nil
 }
 
-// stepWriter stores the steps in a goroutine of its own, while the replay
-// goes on. It hands over the robot's slices of steps as they come, without
-// copying them.
+// stepWriter stores the steps, and writes the filtered track's export,
+// in a goroutine of its own while the replay goes on. The replay fills
+// batches of steps and hands them over; the writer hands them back empty
+// for reuse, so that an hour's 720,000 steps of 3.7 kB cost no garbage.
 type stepWriter struct {
-	batches chan [][]fusion.Step
+	full    chan []fusion.Step
+	free    chan []fusion.Step
 	written chan error
-	pending [][]fusion.Step
-	count   int
 	closed  bool
 	err     error
 }
 
-func newStepWriter(steps *stepStore) *stepWriter {
-	fw := &stepWriter{batches: make(chan [][]fusion.Step, 4), written: make(chan error, 1)}
+// stepBatch is the number of steps handed over at once (1.9 MB at 12
+// states).
+const stepBatch = 512
+
+func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
+	fw := &stepWriter{full: make(chan []fusion.Step, 4), free: make(chan []fusion.Step, 6), written: make(chan error, 1)}
 	go func() {
-		var err error
-		for b := range fw.batches {
-			for _, ss := range b {
-				for i := range ss {
-					if err == nil {
-						err = steps.add(&ss[i])
-					}
+		tw, err := newTrackWriter(trackPath)
+		for b := range fw.full {
+			for i := range b {
+				if err == nil {
+					err = steps.add(&b[i])
 				}
+				if err == nil {
+					err = tw.add(b[i].StampNs, &b[i].Post)
+				}
+			}
+			select {
+			case fw.free <- b[:0]:
+			default:
 			}
 		}
 		if err == nil {
 			err = steps.flush()
+		}
+		if cerr := tw.close(); err == nil {
+			err = cerr
 		}
 		fw.written <- err
 	}()
 	return fw
 }
 
-// add queues steps, handing them over in batches of about 4096 (or all at
-// once when flush is set). The writer owns them from then on.
-func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
-	if len(steps) > 0 {
-		fw.pending = append(fw.pending, steps)
-		fw.count += len(steps)
-	}
-	if fw.count >= 4096 || (flush && fw.count > 0) {
-		fw.batches <- fw.pending
-		fw.pending, fw.count = nil, 0
+// hand gives the writer a batch and returns an empty one.
+func (fw *stepWriter) hand(b []fusion.Step) []fusion.Step {
+	fw.full <- b
+	select {
+	case b = <-fw.free:
+		return b
+	default:
+		return make([]fusion.Step, 0, stepBatch)
 	}
 }
 
@@ -392,32 +391,42 @@ func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
 func (fw *stepWriter) close() error {
 	if !fw.closed {
 		fw.closed = true
-		close(fw.batches)
+		close(fw.full)
 		fw.err = <-fw.written
 	}
 	return fw.err
 }
 
-// writeTrack writes the filtered track of the steps as CSV.
-func writeTrack(path string, steps *stepStore) error {
+// trackWriter writes a track as CSV. A nil trackWriter (one that failed
+// to open) does nothing.
+type trackWriter struct {
+	f   *os.File
+	w   *bufio.Writer
+	row []byte
+}
+
+func newTrackWriter(path string) (*trackWriter, error) {
 	f, err := os.Create(path)
 	if err != nil {
-		return err
+		return nil, err
 	}
-	w := bufio.NewWriterSize(f, 1<<20)
-	_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
-	var st fusion.Step
-	var row []byte
-	for i := 0; i < steps.Len() && err == nil; i++ {
-		if err = steps.read(i, &st, false); err == nil {
-			row = appendRow(row[:0], st.StampNs, &st.Post)
-			_, err = w.Write(row)
-		}
+	tw := &trackWriter{f: f, w: bufio.NewWriterSize(f, 1<<20)}
+	_, err = tw.w.WriteString(strings.Join(csvHeader, ",") + "\n")
+	return tw, err
+}
+
+func (tw *trackWriter) add(stamp int64, s *estimator.State) error {
+	tw.row = appendRow(tw.row[:0], stamp, s)
+	_, err := tw.w.Write(tw.row)
+	return err
+}
+
+func (tw *trackWriter) close() error {
+	if tw == nil {
+		return nil
 	}
-	if ferr := w.Flush(); err == nil {
-		err = ferr
-	}
-	if cerr := f.Close(); err == nil {
+	err := tw.w.Flush()
+	if cerr := tw.f.Close(); err == nil {
 		err = cerr
 	}
 	return err
@@ -433,6 +442,24 @@ type recorder struct {
 	// fromNs and toNs are Options.FromNs and ToNs; seen counts the inputs.
 	fromNs, toNs int64
 	seen         int
+	// batch gathers the steps for the writer.
+	batch []fusion.Step
+}
+
+// add moves the steps that became final (all of them when finish is set)
+// inside the stretch reviewed to the batch, and hands the batch over when
+// it is full or the run is done.
+func (rc *recorder) add(fr *fusion.Robot, finish bool) {
+	n := len(rc.batch)
+	if finish {
+		rc.batch = append(rc.batch, fr.FinishSteps()...)
+	} else {
+		rc.batch = fr.AppendSteps(rc.batch)
+	}
+	rc.batch = rc.batch[:n+len(rc.a.window(rc.batch[n:]))]
+	if len(rc.batch) >= stepBatch || (finish && len(rc.batch) > 0) {
+		rc.batch = rc.fw.hand(rc.batch)
+	}
 }
 
 // replay replays the source and returns the robot after its last input.
@@ -465,7 +492,7 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 	}
 	rc.seen++
 	rc.a.input(s, resp)
-	rc.fw.add(rc.a.window(fr.TakeSteps()), false)
+	rc.add(fr, false)
 	if rc.progress != nil && rc.seen%10000 == 0 {
 		rc.progress(rc.seen)
 	}
@@ -884,7 +911,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	var nTruth, nNees int
 	var prevX, prevY float64
 	for i := 0; i < n; i++ {
-		if err := steps.read(i, &st, false); err != nil {
+		if err := steps.read(i, &st, true); err != nil {
 			return err
 		}
 		if err := sm.get(i, &smoothed); err != nil {
@@ -961,28 +988,17 @@ func sq(v float64) float64 { return v * v }
 
 // writePoints writes the states of the batches as a CSV track.
 func writePoints(path string, batches <-chan []Point) error {
-	f, err := os.Create(path)
-	if err == nil {
-		w := bufio.NewWriterSize(f, 1<<20)
-		_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
-		var row []byte
-		for b := range batches {
-			for i := range b {
-				if err == nil {
-					row = appendRow(row[:0], b[i].StampNs, &b[i].State)
-					_, err = w.Write(row)
-				}
+	tw, err := newTrackWriter(path)
+	for b := range batches {
+		for i := range b {
+			if err == nil {
+				err = tw.add(b[i].StampNs, &b[i].State)
 			}
 		}
-		if ferr := w.Flush(); err == nil {
-			err = ferr
-		}
-		if cerr := f.Close(); err == nil {
-			err = cerr
-		}
 	}
-	for range batches {
-		// Drain what is left after an error, so that the sender ends.
+	// Drained to the end after an error as well, so that the sender ends.
+	if cerr := tw.close(); err == nil {
+		err = cerr
 	}
 	return err
 }

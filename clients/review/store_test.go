@@ -21,12 +21,15 @@ func randomState(rng *rand.Rand, k int, symmetric, nan bool) estimator.State {
 		for j := i; j < k; j++ {
 			p[i*k+j] = rng.NormFloat64()
 			p[j*k+i] = p[i*k+j]
-			if !symmetric && i != j {
+			if !symmetric && i != j && i > 0 {
 				p[j*k+i] = math.Nextafter(p[i*k+j], 1)
 			}
 		}
 	}
-	p[1] = math.Copysign(0, -1)
+	p[1], p[k] = math.Copysign(0, -1), math.Copysign(0, -1)
+	if !symmetric {
+		p[k] = 0
+	}
 	if nan {
 		x[0] = math.NaN()
 	}

@@ -319,7 +319,10 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 	if err != nil {
 		return nil, err
 	}
-	if err := fusion.Smooth(steps, smoothed); err != nil {
+	src := prefetchSteps(steps)
+	err = fusion.Smooth(src, smoothed)
+	src.p.close()
+	if err != nil {
 		smoothed.close()
 		return nil, err
 	}
@@ -342,12 +345,12 @@ type stepWriter struct {
 	err     error
 }
 
-// stepBatch is the number of steps handed over at once (1.9 MB at 12
+// stepBatch is the number of steps handed over at once (0.9 MB at 12
 // states).
-const stepBatch = 512
+const stepBatch = 256
 
 func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
-	fw := &stepWriter{full: make(chan []fusion.Step, 4), free: make(chan []fusion.Step, 6), written: make(chan error, 1)}
+	fw := &stepWriter{full: make(chan []fusion.Step, 2), free: make(chan []fusion.Step, 3), written: make(chan error, 1)}
 	go func() {
 		tw, err := newTrackWriter(trackPath)
 		for b := range fw.full {
@@ -395,41 +398,6 @@ func (fw *stepWriter) close() error {
 		fw.err = <-fw.written
 	}
 	return fw.err
-}
-
-// trackWriter writes a track as CSV. A nil trackWriter (one that failed
-// to open) does nothing.
-type trackWriter struct {
-	f   *os.File
-	w   *bufio.Writer
-	row []byte
-}
-
-func newTrackWriter(path string) (*trackWriter, error) {
-	f, err := os.Create(path)
-	if err != nil {
-		return nil, err
-	}
-	tw := &trackWriter{f: f, w: bufio.NewWriterSize(f, 1<<20)}
-	_, err = tw.w.WriteString(strings.Join(csvHeader, ",") + "\n")
-	return tw, err
-}
-
-func (tw *trackWriter) add(stamp int64, s *estimator.State) error {
-	tw.row = appendRow(tw.row[:0], stamp, s)
-	_, err := tw.w.Write(tw.row)
-	return err
-}
-
-func (tw *trackWriter) close() error {
-	if tw == nil {
-		return nil
-	}
-	err := tw.w.Flush()
-	if cerr := tw.f.Close(); err == nil {
-		err = cerr
-	}
-	return err
 }
 
 // recorder runs the inputs of a recorded run through a robot and gathers
@@ -593,7 +561,11 @@ func (a *accumulator) in(stamp int64) bool { return stamp >= a.fromNs && stamp <
 func (a *accumulator) window(steps []fusion.Step) []fusion.Step {
 	out := steps[:0]
 	for i := range steps {
-		if a.in(steps[i].StampNs) {
+		switch {
+		case !a.in(steps[i].StampNs):
+		case len(out) == i:
+			out = out[:i+1] // in place already: a Step is 3.7 kB
+		default:
 			out = append(out, steps[i])
 		}
 	}
@@ -835,34 +807,6 @@ func Label(src Source) string {
 	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
 }
 
-var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "cov_xy_m2", "cov_xh_m_rad", "cov_yy_m2", "cov_yh_m_rad", "cov_hh_rad2", "position95_m", "imu_offset_rad", "imu_offset_var_rad2"}
-
-// appendRow appends one CSV row of the track (numbers only: no quoting):
-// the mean with ten significant digits (a tenth of a micrometre at a
-// kilometre), the covariance and the radius with seven; fixed digits format
-// several times faster than the shortest exact form, and the file is
-// smaller.
-func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
-	b = strconv.AppendInt(b, stamp, 10)
-	for _, v := range [...]float64{s.MeanAt(0), s.MeanAt(1), s.MeanAt(2)} {
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, v, 'g', 10, 64)
-	}
-	for _, v := range [...]float64{s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, v, 'g', 7, 64)
-	}
-	b = append(b, ',')
-	if s.Size() == 4 {
-		b = strconv.AppendFloat(b, s.MeanAt(3), 'g', 10, 64)
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, s.At(3, 3), 'g', 7, 64)
-	} else {
-		b = append(b, ',')
-	}
-	return append(b, '\n')
-}
-
 // nees3 is the pose NEES of s against the truth, NaN if its covariance is
 // not positive definite.
 func nees3(s *estimator.State, tr estimator.Pose) float64 {
@@ -883,16 +827,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
 	// of their own.
-	rows := make(chan []Point, 4)
-	written := make(chan error, 1)
-	go func(rows <-chan []Point) { written <- writePoints(run.SmoothedCSV, rows) }(rows)
-	batch := make([]Point, 0, 4096)
-	defer func() {
-		if rows != nil {
-			close(rows)
-			<-written
-		}
-	}()
+	rows := newRowWriter(run.SmoothedCSV)
+	defer rows.close()
 	var truth *truthReader
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -904,40 +840,35 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	}
 	n := steps.Len()
 	every := max(1, (n+maxPoints-1)/maxPoints)
-	var st fusion.Step
-	var smoothed estimator.State
+	pf := prefetchTrack(steps, sm)
+	defer pf.close()
 	var fSq, sSq, fNees, sNees float64
 	var fAll, sAll logHistogram
 	var nTruth, nNees int
 	var prevX, prevY float64
 	for i := 0; i < n; i++ {
-		if err := steps.read(i, &st, true); err != nil {
+		it, err := pf.at(i)
+		if err != nil {
 			return err
 		}
-		if err := sm.get(i, &smoothed); err != nil {
-			return err
-		}
-		p := &st.Post
-		if i > 0 && !st.Start {
+		p, smoothed, stamp := &it.post, &it.smoothed, it.stampNs
+		if i > 0 && !it.start {
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
 		if r95 := p.Position95(); r95 > sum.Max95M {
-			sum.Max95M, sum.Max95AtNs = r95, st.StampNs
+			sum.Max95M, sum.Max95AtNs = r95, stamp
 		}
 		sum.Final95M = p.Position95()
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
-		if batch = append(batch, Point{st.StampNs, smoothed}); len(batch) == cap(batch) {
-			rows <- batch
-			batch = make([]Point, 0, 4096)
-		}
+		rows.add(stamp, smoothed)
 		var tp estimator.Pose
 		haveTruth := false
 		if truth != nil {
 			var gap int64
-			tp, gap, haveTruth = truth.at(st.StampNs)
+			tp, gap, haveTruth = truth.at(stamp)
 			sum.TruthSteps++
 			if haveTruth {
 				sum.TruthMatched++
@@ -948,7 +879,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
 			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
 			nTruth++
-			if fn, sn := nees3(p, tp), nees3(&smoothed, tp); !math.IsNaN(fn) && !math.IsNaN(sn) {
+			if fn, sn := nees3(p, tp), nees3(smoothed, tp); !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
 				sNees += sn
 				nNees++
@@ -957,8 +888,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			}
 		}
 		if i%every == 0 || i == n-1 {
-			run.Filtered = append(run.Filtered, Point{st.StampNs, *p})
-			run.Smoothed = append(run.Smoothed, Point{st.StampNs, smoothed})
+			run.Filtered = append(run.Filtered, Point{stamp, *p})
+			run.Smoothed = append(run.Smoothed, Point{stamp, *smoothed})
 			if truth != nil {
 				if !haveTruth {
 					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
@@ -967,10 +898,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			}
 		}
 	}
-	rows <- batch
-	close(rows)
-	rows = nil
-	if err := <-written; err != nil {
+	if err := rows.close(); err != nil {
 		return err
 	}
 	if nTruth > 0 {
@@ -985,23 +913,6 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 }
 
 func sq(v float64) float64 { return v * v }
-
-// writePoints writes the states of the batches as a CSV track.
-func writePoints(path string, batches <-chan []Point) error {
-	tw, err := newTrackWriter(path)
-	for b := range batches {
-		for i := range b {
-			if err == nil {
-				err = tw.add(b[i].StampNs, &b[i].State)
-			}
-		}
-	}
-	// Drained to the end after an error as well, so that the sender ends.
-	if cerr := tw.close(); err == nil {
-		err = cerr
-	}
-	return err
-}
 
 // logHistogram counts positive values in bins a thousandth wide on a log
 // scale, for a median in bounded memory (within 0.05%).

@@ -301,9 +301,23 @@ type stepReader struct {
 	k int
 }
 
-// read decodes step i into dst; with postOnly set, only its stamp, Post
-// and Start.
-func (sr *stepReader) read(i int, dst *fusion.Step, postOnly bool) error {
+// readPost decodes the stamp, Start and Post of step i (into post).
+func (sr *stepReader) readPost(i int, post *estimator.State) (stampNs int64, start bool, err error) {
+	b, err := sr.record(i)
+	if err != nil {
+		return 0, false, err
+	}
+	stampNs, flags := int64(binary.LittleEndian.Uint64(b)), b[8]
+	b = b[9:]
+	if flags&stepSame == 0 {
+		b = b[stateLen(b):]
+	}
+	getState(b, post)
+	return stampNs, flags&stepStart != 0, nil
+}
+
+// read decodes step i into dst.
+func (sr *stepReader) read(i int, dst *fusion.Step) error {
 	b, err := sr.record(i)
 	if err != nil {
 		return err
@@ -312,13 +326,6 @@ func (sr *stepReader) read(i int, dst *fusion.Step, postOnly bool) error {
 	flags := b[8]
 	dst.Start = flags&stepStart != 0
 	b = b[9:]
-	if postOnly {
-		if flags&stepSame == 0 {
-			b = b[stateLen(b):]
-		}
-		getState(b, &dst.Post)
-		return nil
-	}
 	b = getState(b, &dst.Pred)
 	if flags&stepSame != 0 {
 		dst.Post = dst.Pred
@@ -461,18 +468,56 @@ func (ss *stepStore) Len() int {
 	return ss.n
 }
 
-func (ss *stepStore) Step(i int, dst *fusion.Step) error { return ss.read(i, dst, false) }
-
-// read copies step i into dst; postOnly as for stepReader.read.
-func (ss *stepStore) read(i int, dst *fusion.Step, postOnly bool) error {
-	if ss.file != nil {
-		if ss.rd == nil {
-			ss.rd = ss.file.reader()
-		}
-		return ss.rd.read(i, dst, postOnly)
+// Step copies step i into dst.
+func (ss *stepStore) Step(i int, dst *fusion.Step) error {
+	if ss.file == nil {
+		copyStep(dst, &ss.mem[i/chunk][i%chunk])
+		return nil
 	}
-	*dst = ss.mem[i/chunk][i%chunk]
-	return nil
+	return ss.fileReader().read(i, dst)
+}
+
+// readPost copies the stamp, Start and Post of step i (into post).
+func (ss *stepStore) readPost(i int, post *estimator.State) (stampNs int64, start bool, err error) {
+	if ss.file == nil {
+		s := &ss.mem[i/chunk][i%chunk]
+		copyState(post, &s.Post)
+		return s.StampNs, s.Start, nil
+	}
+	return ss.fileReader().readPost(i, post)
+}
+
+func (ss *stepStore) fileReader() *stepReader {
+	if ss.rd == nil {
+		ss.rd = ss.file.reader()
+	}
+	return ss.rd
+}
+
+// copyState copies src into dst, only the part in use when they have one
+// size.
+func copyState(dst, src *estimator.State) {
+	if src.Size() == 0 {
+		*dst = *src
+		return
+	}
+	dst.CopyFrom(src)
+}
+
+// copyStep copies src into dst, only the parts in use when they have one
+// state size (a Step of 12 states is 3.7 kB).
+func copyStep(dst, src *fusion.Step) {
+	k := src.Pred.Size()
+	if k == 0 || dst.Pred.Size() != k {
+		*dst = *src
+		return
+	}
+	dst.StampNs, dst.Start = src.StampNs, src.Start
+	dst.Pred.CopyFrom(&src.Pred)
+	copyState(&dst.Post, &src.Post)
+	// Entries of F beyond k x k are zero in both.
+	end := (k-1)*estimator.MaxStates + k
+	copy(dst.F[:end], src.F[:end])
 }
 
 func (ss *stepStore) onDisk() bool { return ss.file != nil }
@@ -492,7 +537,7 @@ func (ss *stepStore) reader() *stepStore {
 	if ss.file == nil {
 		return ss // reading memory changes nothing
 	}
-	return &stepStore{file: ss.file, rd: ss.file.reader()}
+	return &stepStore{file: ss.file}
 }
 
 func (ss *stepStore) close() error {
@@ -535,7 +580,7 @@ func (ss *stateStore) flush() error {
 
 func (ss *stateStore) get(i int, s *estimator.State) error {
 	if ss.file == nil {
-		*s = ss.mem[i]
+		copyState(s, &ss.mem[i])
 		return nil
 	}
 	if ss.rd == nil {

@@ -137,7 +137,8 @@ func TestStoresRoundTrip(t *testing.T) {
 		rd := store.reader()
 		var s estimator.State
 		for i := 0; i < n; i++ {
-			if err := rd.read(i, &st, true); err != nil {
+			var err error
+			if st.StampNs, st.Start, err = rd.readPost(i, &st.Post); err != nil {
 				t.Fatal(err)
 			}
 			check(i, &st, true)

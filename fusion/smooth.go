@@ -24,6 +24,33 @@ type Step struct {
 	Start bool
 }
 
+// CopyFrom makes s a copy of src. For steps of one state size it copies
+// only the parts in use (every entry beyond them is zero in both): a Step
+// of 12 states is 3.7 kB, of which a robot of 4 states uses 0.4.
+func (s *Step) CopyFrom(src *Step) {
+	k := src.Pred.Size()
+	if k == 0 || src.Post.Size() != k || s.Pred.Size() != k || s.Post.Size() != k {
+		*s = *src
+		return
+	}
+	s.StampNs, s.Start = src.StampNs, src.Start
+	s.Pred.CopyFrom(&src.Pred)
+	s.Post.CopyFrom(&src.Post)
+	end := (k-1)*estimator.MaxStates + k
+	copy(s.F[:end], src.F[:end])
+}
+
+// appendStep appends a copy of s to dst, reusing the memory past dst's
+// length.
+func appendStep(dst []Step, s *Step) []Step {
+	if len(dst) == cap(dst) {
+		return append(dst, *s)
+	}
+	dst = dst[:len(dst)+1]
+	dst[len(dst)-1].CopyFrom(s)
+	return dst
+}
+
 // stepCollector turns entries leaving the window into steps. The step in
 // progress lives in cur (while open) and finished steps gather in ready,
 // whose memory AppendSteps keeps for reuse: a review collects a step per
@@ -60,7 +87,9 @@ func (r *Robot) AppendSteps(dst []Step) []Step {
 	if r.steps == nil {
 		return dst
 	}
-	dst = append(dst, r.steps.ready...)
+	for i := range r.steps.ready {
+		dst = appendStep(dst, &r.steps.ready[i])
+	}
 	r.steps.ready = r.steps.ready[:0]
 	return dst
 }
@@ -122,7 +151,7 @@ func (c *stepCollector) start(stampNs int64, s *estimator.State, n int) {
 // emit moves the step in progress, if any, to the finished ones.
 func (c *stepCollector) emit() {
 	if c.open {
-		c.ready = append(c.ready, c.cur)
+		c.ready = appendStep(c.ready, &c.cur)
 		c.open = false
 	}
 }

@@ -262,3 +262,42 @@ func TestAppendStepsEqualsTakeSteps(t *testing.T) {
 		}
 	}
 }
+
+// TestStepCopyFrom: CopyFrom onto a step that held another of the same
+// size, or of another size, or nothing, gives the step itself.
+func TestStepCopyFrom(t *testing.T) {
+	collect := func(sc fusiontest.Scenario) []fusion.Step {
+		s := fusiontest.New(sc)
+		r, _ := fusion.New(s.Config())
+		r.CollectSteps()
+		for i := 0; i < 400; i++ {
+			in, ok := s.Next()
+			if !ok {
+				break
+			}
+			fusiontest.Feed(r, &in)
+		}
+		return r.FinishSteps()
+	}
+	four := collect(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 3, DurationS: 5})
+	three := collect(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 3, DurationS: 5})
+	if four[0].Pred.Size() != 4 || three[0].Pred.Size() != 3 {
+		t.Fatalf("state sizes %d and %d, want 4 and 3", four[0].Pred.Size(), three[0].Pred.Size())
+	}
+	for _, c := range []struct {
+		name     string
+		dst, src fusion.Step
+	}{
+		{"same size", four[10], four[len(four)-1]},
+		{"start step", four[len(four)-1], four[0]},
+		{"smaller onto larger", four[10], three[20]},
+		{"larger onto smaller", three[20], four[10]},
+		{"onto the zero step", fusion.Step{}, four[10]},
+	} {
+		dst := c.dst
+		dst.CopyFrom(&c.src)
+		if dst != c.src {
+			t.Errorf("%s: the copy differs", c.name)
+		}
+	}
+}

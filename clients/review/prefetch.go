@@ -119,7 +119,7 @@ func (ps *prefetchedSteps) Len() int { return ps.n }
 func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 	s, err := ps.p.at(i)
 	if err == nil {
-		copyStep(dst, s)
+		dst.CopyFrom(s)
 	}
 	return err
 }

@@ -471,7 +471,7 @@ func (ss *stepStore) Len() int {
 // Step copies step i into dst.
 func (ss *stepStore) Step(i int, dst *fusion.Step) error {
 	if ss.file == nil {
-		copyStep(dst, &ss.mem[i/chunk][i%chunk])
+		dst.CopyFrom(&ss.mem[i/chunk][i%chunk])
 		return nil
 	}
 	return ss.fileReader().read(i, dst)
@@ -504,21 +504,6 @@ func copyState(dst, src *estimator.State) {
 	dst.CopyFrom(src)
 }
 
-// copyStep copies src into dst, only the parts in use when they have one
-// state size (a Step of 12 states is 3.7 kB).
-func copyStep(dst, src *fusion.Step) {
-	k := src.Pred.Size()
-	if k == 0 || dst.Pred.Size() != k {
-		*dst = *src
-		return
-	}
-	dst.StampNs, dst.Start = src.StampNs, src.Start
-	dst.Pred.CopyFrom(&src.Pred)
-	copyState(&dst.Post, &src.Post)
-	// Entries of F beyond k x k are zero in both.
-	end := (k-1)*estimator.MaxStates + k
-	copy(dst.F[:end], src.F[:end])
-}
 
 func (ss *stepStore) onDisk() bool { return ss.file != nil }
 

@@ -124,26 +124,40 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 	return err
 }
 
-// trackItem is what the report's forward pass needs of a step.
+// trackItem is what the report's forward pass needs of a step: its
+// filtered and smoothed states and, with a truth file, the truth at its
+// stamp and the pose NEES of both states against it.
 type trackItem struct {
-	stampNs  int64
-	start    bool
-	post     estimator.State
-	smoothed estimator.State
+	stampNs    int64
+	start      bool
+	post       estimator.State
+	smoothed   estimator.State
+	truth      estimator.Pose
+	truthGapNs int64
+	haveTruth  bool
+	nees       [2]float64 // filtered, smoothed
 }
 
-// prefetchTrack reads the filtered and the smoothed states forwards ahead
-// of the report's pass.
-func prefetchTrack(steps *stepStore, sm *stateStore) *prefetch[trackItem] {
+// prefetchTrack reads the filtered and the smoothed states forwards, and
+// the truth (if not nil), ahead of the report's pass.
+func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefetch[trackItem] {
 	rd := steps.reader()
 	return startPrefetch(steps.Len(), false, func(lo int, dst []trackItem) error {
 		for j := range dst {
+			it := &dst[j]
 			var err error
-			if dst[j].stampNs, dst[j].start, err = rd.readPost(lo+j, &dst[j].post); err != nil {
+			if it.stampNs, it.start, err = rd.readPost(lo+j, &it.post); err != nil {
 				return err
 			}
-			if err := sm.get(lo+j, &dst[j].smoothed); err != nil {
+			if err := sm.get(lo+j, &it.smoothed); err != nil {
 				return err
+			}
+			it.haveTruth = false
+			if truth != nil {
+				it.truth, it.truthGapNs, it.haveTruth = truth.at(it.stampNs)
+			}
+			if it.haveTruth {
+				it.nees = [2]float64{nees3(&it.post, it.truth), nees3(&it.smoothed, it.truth)}
 			}
 		}
 		return nil

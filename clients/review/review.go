@@ -840,7 +840,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	}
 	n := steps.Len()
 	every := max(1, (n+maxPoints-1)/maxPoints)
-	pf := prefetchTrack(steps, sm)
+	pf := prefetchTrack(steps, sm, truth)
 	defer pf.close()
 	var fSq, sSq, fNees, sNees float64
 	var fAll, sAll logHistogram
@@ -864,22 +864,19 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
 		rows.add(stamp, smoothed)
-		var tp estimator.Pose
-		haveTruth := false
+		tp, haveTruth := it.truth, it.haveTruth
 		if truth != nil {
-			var gap int64
-			tp, gap, haveTruth = truth.at(stamp)
 			sum.TruthSteps++
 			if haveTruth {
 				sum.TruthMatched++
-				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, gap)
+				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, it.truthGapNs)
 			}
 		}
 		if haveTruth {
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
 			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
 			nTruth++
-			if fn, sn := nees3(p, tp), nees3(smoothed, tp); !math.IsNaN(fn) && !math.IsNaN(sn) {
+			if fn, sn := it.nees[0], it.nees[1]; !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
 				sNees += sn
 				nNees++

@@ -39,9 +39,6 @@ const (
 	stepSame  = 2 // Post equals Pred and is not stored
 )
 
-// stateMaxBytes is the longest record of a state of size k.
-func stateMaxBytes(k int) int { return 4 + (k+k*k)*8 }
-
 // symmetric reports whether s's covariance is symmetric to the bit.
 func symmetric(s *estimator.State) bool {
 	k := s.Size()
@@ -349,19 +346,32 @@ func (sr *stepReader) read(i int, dst *fusion.Step) error {
 }
 
 // stateFile is a fusion.StateSink on disk. The smoother writes backwards,
-// so a chunk's states gather in memory and reach the file, compacted, when
-// the chunk is done; the file holds the chunks last first.
+// so a chunk's states gather in memory; when the chunk is done a goroutine
+// of its own encodes and writes it while the smoother goes on, and the
+// file holds the chunks last first.
 type stateFile struct {
 	f      *os.File
 	k      int
 	n      int
-	size   int64
-	blk    []byte // chunk records of stateMaxBytes(k)
-	lens   []int  // length of each record in blk
-	blkNum int    // chunk in blk, -1 for none
-	lo, hi int    // records [lo, hi) of the chunk are filled
-	spans  map[int][2]int64
-	out    []byte
+	blk    []estimator.State // the chunk being filled
+	blkNum int               // chunk in blk, -1 for none
+	lo, hi int               // records [lo, hi) of the chunk are filled
+	jobs   chan stateChunk
+	free   chan []estimator.State
+	done   chan error
+	closed bool
+	err    error
+	// size and spans (where each chunk lies) belong to the writing
+	// goroutine until done.
+	size  int64
+	spans map[int][2]int64
+}
+
+// stateChunk is a chunk of states handed to the writer: states [lo, hi)
+// of chunk num, in states[lo-num*chunk:].
+type stateChunk struct {
+	num, lo, hi int
+	states      []estimator.State
 }
 
 func newStateFile(dir string, k int) (*stateFile, error) {
@@ -369,7 +379,33 @@ func newStateFile(dir string, k int) (*stateFile, error) {
 	if err != nil {
 		return nil, err
 	}
-	return &stateFile{f: f, k: k, blk: make([]byte, chunk*stateMaxBytes(k)), lens: make([]int, chunk), blkNum: -1, spans: map[int][2]int64{}}, nil
+	sf := &stateFile{f: f, k: k, blk: make([]estimator.State, chunk), blkNum: -1, spans: map[int][2]int64{},
+		jobs: make(chan stateChunk, 1), free: make(chan []estimator.State, 2), done: make(chan error, 1)}
+	go sf.write()
+	return sf, nil
+}
+
+// write encodes and writes the chunks handed over, until the jobs end.
+func (sf *stateFile) write() {
+	var err error
+	var out []byte
+	for c := range sf.jobs {
+		if err == nil {
+			out = out[:0]
+			base := c.num * chunk
+			for i := c.lo; i < c.hi; i++ {
+				out = putState(out, &c.states[i-base])
+			}
+			_, err = sf.f.WriteAt(out, sf.size)
+			sf.spans[c.num] = [2]int64{sf.size, int64(len(out))}
+			sf.size += int64(len(out))
+		}
+		select {
+		case sf.free <- c.states:
+		default:
+		}
+	}
+	sf.done <- err
 }
 
 // SetSmoothed stores state i.
@@ -378,38 +414,42 @@ func (sf *stateFile) SetSmoothed(i int, s *estimator.State) error {
 		panic(fmt.Sprintf("review: smoothed state of size %d in a store of %d", s.Size(), sf.k))
 	}
 	if b := i / chunk; b != sf.blkNum {
-		if err := sf.flush(); err != nil {
-			return err
-		}
+		sf.hand()
 		sf.blkNum, sf.lo, sf.hi = b, i, i+1
 	}
 	sf.lo, sf.hi = min(sf.lo, i), max(sf.hi, i+1)
-	off := (i % chunk) * stateMaxBytes(sf.k)
-	sf.lens[i%chunk] = len(putState(sf.blk[off:off], s))
+	copyState(&sf.blk[i%chunk], s)
 	return nil
 }
 
-func (sf *stateFile) flush() error {
+// hand gives the chunk being filled to the writer.
+func (sf *stateFile) hand() {
 	if sf.blkNum < 0 {
-		return nil
+		return
 	}
-	base := sf.blkNum * chunk
-	out := sf.out[:0]
-	for i := sf.lo - base; i < sf.hi-base; i++ {
-		off := i * stateMaxBytes(sf.k)
-		out = append(out, sf.blk[off:off+sf.lens[i]]...)
-	}
-	sf.out = out
-	_, err := sf.f.WriteAt(out, sf.size)
-	sf.spans[sf.blkNum] = [2]int64{sf.size, int64(len(out))}
-	sf.size += int64(len(out))
+	sf.jobs <- stateChunk{sf.blkNum, sf.lo, sf.hi, sf.blk}
 	sf.n = max(sf.n, sf.hi)
 	sf.blkNum = -1
-	return err
+	select {
+	case sf.blk = <-sf.free:
+	default:
+		sf.blk = make([]estimator.State, chunk)
+	}
 }
 
-// reader returns a reader of the states (once every state was stored and
-// flushed).
+// flush writes what is left and waits for the writer: the file is complete
+// then. It may be called again.
+func (sf *stateFile) flush() error {
+	if !sf.closed {
+		sf.hand()
+		sf.closed = true
+		close(sf.jobs)
+		sf.err = <-sf.done
+	}
+	return sf.err
+}
+
+// reader returns a reader of the states (once flushed).
 func (sf *stateFile) reader() *chunkedFile {
 	return &chunkedFile{f: sf.f, n: sf.n, cacheC: -1,
 		span:   func(c int) (int64, int64) { s := sf.spans[c]; return s[0], s[1] },
@@ -584,6 +624,7 @@ func (ss *stateStore) get(i int, s *estimator.State) error {
 
 func (ss *stateStore) close() error {
 	if ss.file != nil {
+		ss.file.flush()
 		return ss.file.f.Close()
 	}
 	return nil

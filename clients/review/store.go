@@ -544,7 +544,6 @@ func copyState(dst, src *estimator.State) {
 	dst.CopyFrom(src)
 }
 
-
 func (ss *stepStore) onDisk() bool { return ss.file != nil }
 
 // flush writes the steps buffered for the file.

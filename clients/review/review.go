@@ -53,8 +53,8 @@ type Options struct {
 	MaxPoints int
 	// MemoryBytes bounds the steps and smoothed states kept in memory
 	// (32 MiB, about 50,000 steps: 45 s at 200 Hz with its IMU and fixes);
-	// past it they go to files in TempDir, which the smoother and the
-	// exports read in chunks. The journal's reader holds a segment (up to
+	// past it they go to files in TempDir (compact records), which the
+	// smoother and the report's pass read in chunks. The journal's reader holds a segment (up to
 	// 64 MiB) besides, and the collector lets the heap grow to about twice
 	// what is live: 32 MiB keeps an hour's review under 256 MiB.
 	MemoryBytes int64

@@ -19,8 +19,9 @@ type Step struct {
 	// F is the Jacobian of the prediction from the previous step's Post,
 	// N x N row-major with stride estimator.MaxStates.
 	F [estimator.MaxStates * estimator.MaxStates]float64
-	// Start marks a step with no predecessor: the run's start, or a pose
-	// set by hand or by move recovery.
+	// Start marks a step with no predecessor: the start of the robot or of
+	// a new run (StartRun, whose steps are stamped on the new clock), or a
+	// pose set by hand or by move recovery.
 	Start bool
 }
 
@@ -28,6 +29,9 @@ type Step struct {
 type stepCollector struct {
 	cur   *Step
 	ready []Step
+	// restart: a new run began (StartRun); its first step has no
+	// predecessor.
+	restart bool
 }
 
 // CollectSteps makes the robot keep the steps of its run for smoothing;
@@ -69,7 +73,9 @@ func (r *Robot) FinishSteps() []Step {
 func (c *stepCollector) collect(r *Robot, k int) {
 	live := r.live()
 	prev := r.base
-	if c.cur == nil && len(c.ready) == 0 {
+	if c.restart || c.cur == nil && len(c.ready) == 0 {
+		c.emit()
+		c.restart = false
 		c.cur = &Step{StampNs: r.baseT, Pred: prev.est, Post: prev.est, F: identity(r.n), Start: true}
 	}
 	for i := 0; i < k; i++ {

@@ -52,9 +52,9 @@ type Robot struct {
 	run    uint64
 	bootID string
 	steps  *stepCollector // nil unless CollectSteps was called
-	stats statsState
-	trust trustState
-	cands []candidate
+	stats  statsState
+	trust  trustState
+	cands  []candidate
 	// slip compares the IMU's turn with the wheels' (slip.go); turnGate
 	// caches the comparison's 1-dof gate.
 	slip     slipState

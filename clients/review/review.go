@@ -40,6 +40,11 @@ type Source struct {
 	Truth string
 	// Label names the run in reports (default: the robot or file).
 	Label string
+	// Run selects one run of the robot (its number, from 1: a controller
+	// restart begins the next; DEVELOPERS.md, "Design: Runs"); 0 reviews
+	// run 1, and the summary notes the runs left out. Each run has its own
+	// clock, so a review covers one.
+	Run uint64
 }
 
 // Options tune a review. Zero values take the defaults given.
@@ -127,6 +132,10 @@ type Summary struct {
 	// refused in a row (Detail names the sensor and the count).
 	RefusedStretches []Interval
 	Truncated        string
+	// Run is the run reviewed, of Runs in the recording; RunNote says
+	// which runs were left out ("" when there is only one).
+	Run, Runs uint64
+	RunNote   string
 	// Gaps lists the journal's continuity breaks (inputs or segments
 	// missing); the review goes on past each. GapsAt holds the stamp of
 	// the newest input before each.
@@ -275,12 +284,19 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	fw := newStepWriter(steps)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		return nil, err
 	}
-	fw.add(a.window(fr.FinishSteps()), true)
+	if err := rc.runs(fr, src.Run); err != nil {
+		return nil, err
+	}
+	final := fr.FinishSteps()
+	if fr.Run() != rc.want {
+		final = nil
+	}
+	fw.add(a.window(final), true)
 	if err := fw.close(); err != nil {
 		return nil, err
 	}
@@ -433,7 +449,30 @@ type recorder struct {
 	// fromNs and toNs are Options.FromNs and ToNs; seen counts the inputs.
 	fromNs, toNs int64
 	seen         int
+	// want is the run reviewed; last is the robot's run before the input
+	// being taken, the run whose steps that input hands out.
+	want, last uint64
 }
+
+// runs notes which run was reviewed of how many, and refuses a run the
+// recording does not hold.
+func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
+	sum := &rc.run.Summary
+	sum.Run, sum.Runs = rc.want, fr.Run()
+	if rc.want > fr.Run() {
+		return fmt.Errorf("%w: run %d asked for; the recording holds runs 1 to %d", ErrNoRun, rc.want, fr.Run())
+	}
+	if fr.Run() > 1 {
+		sum.RunNote = fmt.Sprintf("this report covers run %d of the %d runs recorded (a controller restart begins a run, on a clock of its own); review another with -run N", rc.want, fr.Run())
+		if asked == 0 {
+			sum.RunNote += " (run 1 is the default)"
+		}
+	}
+	return nil
+}
+
+// ErrNoRun is returned for a run the recording does not hold.
+var ErrNoRun = errors.New("no such run")
 
 // replay replays the source and returns the robot after its last input.
 func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
@@ -450,10 +489,23 @@ func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
 func (rc *recorder) opened(fr *fusion.Robot) {
 	rc.run.Config = fr.Config()
 	fr.CollectSteps()
+	rc.last = fr.Run()
 }
 
-// took records one input the robot was given and its response.
+// took records one input the robot was given and its response: an input
+// of the run reviewed, or one outside it, whose steps (a run start hands
+// out the ended run's last ones) and resolutions may still be of that run.
 func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
+	stepsOf := rc.last
+	rc.last = fr.Run()
+	if fr.Run() != rc.want || s.GetRunStart() != nil {
+		steps := fr.TakeSteps()
+		if stepsOf == rc.want {
+			rc.fw.add(rc.a.window(steps), false)
+		}
+		rc.a.resolve(resp)
+		return
+	}
 	if rc.seen == 0 {
 		// The run's start is its first input's stamp.
 		start := convert.SampleStamp(s)
@@ -562,6 +614,16 @@ type accumulator struct {
 
 func (a *accumulator) in(stamp int64) bool { return stamp >= a.fromNs && stamp <= a.toNs }
 
+// resolve gives the held fixes that resp resolves their final verdict.
+func (a *accumulator) resolve(resp *pb.IngestResponse) {
+	for _, r := range resp.GetResolved() {
+		if i, ok := a.fixAt[r.GetSequence()]; ok {
+			delete(a.fixAt, r.GetSequence())
+			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
+		}
+	}
+}
+
 // window keeps the steps inside the stretch reviewed (in place).
 func (a *accumulator) window(steps []fusion.Step) []fusion.Step {
 	out := steps[:0]
@@ -614,12 +676,7 @@ func (a *accumulator) addNIS(sensor string, p NISPoint) {
 func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	sum := &a.run.Summary
 	stamp := convert.SampleStamp(s)
-	for _, r := range resp.GetResolved() {
-		if i, ok := a.fixAt[r.GetSequence()]; ok {
-			delete(a.fixAt, r.GetSequence())
-			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
-		}
-	}
+	a.resolve(resp)
 	if !a.in(stamp) {
 		a.newest = max(a.newest, stamp)
 		return
@@ -800,12 +857,17 @@ func thinFixes(fixes []FixPoint, bound int) []FixPoint {
 }
 
 // Label is the name a run gets in reports and export file names unless
-// Source.Label says otherwise: the robot's id, or the samples file's name.
+// Source.Label says otherwise: the robot's id, or the samples file's name,
+// with "-run{N}" when Source.Run selects a run.
 func Label(src Source) string {
+	label := strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
 	if src.JournalDir != "" {
-		return robotID(src.Robot)
+		label = robotID(src.Robot)
 	}
-	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
+	if src.Run > 0 {
+		label += fmt.Sprintf("-run%d", src.Run)
+	}
+	return label
 }
 
 var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "cov_xy_m2", "cov_xh_m_rad", "cov_yy_m2", "cov_yh_m_rad", "cov_hh_rad2", "position95_m", "imu_offset_rad", "imu_offset_var_rad2"}

@@ -127,6 +127,27 @@ func TestRunLifecycleCommands(t *testing.T) {
 			t.Errorf("review -run %s: exit %d\n%s%s", c.run, code, out, errs)
 		}
 	}
+	// Each run's smoothed track is on its own clock, in stamp order: run
+	// 2's starts near 0, run 1's ends where run 2's restart was.
+	for _, run := range []string{"1", "2"} {
+		b, err := os.ReadFile(filepath.Join(work, "review-"+run, "cart-run"+run+"-smoothed.csv"))
+		if err != nil {
+			t.Fatal(err)
+		}
+		rows := strings.Split(strings.TrimSpace(string(b)), "\n")[1:]
+		var prev int64 = -1
+		for _, row := range rows {
+			stamp, _ := strconv.ParseInt(row[:strings.IndexByte(row, ',')], 10, 64)
+			if stamp <= prev {
+				t.Fatalf("run %s: smoothed track goes back from %d to %d", run, prev, stamp)
+			}
+			prev = stamp
+		}
+		first, _ := strconv.ParseInt(rows[0][:strings.IndexByte(rows[0], ',')], 10, 64)
+		if len(rows) < 100 || run == "2" && first > 100e6 {
+			t.Errorf("run %s: %d smoothed rows from %d ns", run, len(rows), first)
+		}
+	}
 	if _, errs, code := runCode(t, ctx, "", "review", "-journal", dir, "-robot", "cart", "-run", "3", "-out", filepath.Join(work, "review-3")); code == exitOK || !strings.Contains(errs, "runs 1 to 2") {
 		t.Errorf("review -run 3: exit %d, %s", code, errs)
 	}

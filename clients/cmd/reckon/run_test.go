@@ -1,7 +1,6 @@
 package main
 
 import (
-	"bytes"
 	"context"
 	"os"
 	"path/filepath"
@@ -11,45 +10,30 @@ import (
 	"testing"
 
 	"reckon.example/clients/export"
-	"reckon.example/fusion/fusiontest"
-	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
 
-// writeRebootSamples writes the example samples' scenario (seed 3, for
-// testdata/robots/free-wheel-turn.yaml) as two JSON Lines files: the
-// inputs before the controller restarts at mid-run, and the inputs after,
-// on the restarted clock (fusiontest.Reboot). It returns the paths and the
-// number of samples in each.
-func writeRebootSamples(t *testing.T) (run1, run2 string, n1, n2 int) {
+// The example cart whose controller restarts after five seconds
+// (server/convert's TestRebootSamples writes them).
+const (
+	rebootSamples1 = "../../../testdata/samples/greenhouse-reboot-1.jsonl"
+	rebootSamples2 = "../../../testdata/samples/greenhouse-reboot-2.jsonl"
+)
+
+// samplesIn counts the samples of a JSON Lines file.
+func samplesIn(t *testing.T, path string) int {
 	t.Helper()
-	sim := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 3, DurationS: 10, OutlierFraction: 0.05, OdometryHz: 50, IMUHz: 25})
-	var ins []fusiontest.Input
-	for in, ok := sim.Next(); ok; in, ok = sim.Next() {
-		ins = append(ins, in)
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
 	}
-	mid := len(ins) / 2
-	write := func(name string, part []fusiontest.Input) string {
-		var b bytes.Buffer
-		for i := range part {
-			in := &part[i]
-			switch {
-			case in.Odometry != nil:
-				convert.WriteJSONLine(&b, convert.OdometryToProto(in.Odometry))
-			case in.Heading != nil:
-				convert.WriteJSONLine(&b, convert.HeadingToProto(in.Heading))
-			default:
-				convert.WriteJSONLine(&b, convert.FixToProto(in.Fix))
-			}
+	n := 0
+	for _, l := range strings.Split(string(b), "\n") {
+		if l != "" && l[0] != '#' {
+			n++
 		}
-		path := filepath.Join(t.TempDir(), name)
-		if err := os.WriteFile(path, b.Bytes(), 0o644); err != nil {
-			t.Fatal(err)
-		}
-		return path
 	}
-	after := fusiontest.Reboot(ins, mid)
-	return write("run1.jsonl", ins[:mid]), write("run2.jsonl", after), mid, len(after)
+	return n
 }
 
 // TestRunLifecycleCommands: a controller reboot mid-run, as a user sees it
@@ -67,9 +51,21 @@ func TestRunLifecycleCommands(t *testing.T) {
 		t.Helper()
 		return runCode(t, ctx, "", append(args, "-addr", addr)...)
 	}
-	run1, run2, n1, n2 := writeRebootSamples(t)
+	run1, run2 := rebootSamples1, rebootSamples2
+	n1, n2 := samplesIn(t, run1), samplesIn(t, run2)
 	head := filepath.Join(t.TempDir(), "head.jsonl")
-	if b, err := os.ReadFile(run2); err != nil || os.WriteFile(head, b[:bytes.IndexByte(b, '\n')+1], 0o644) != nil {
+	b, err := os.ReadFile(run2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var first string
+	for _, l := range strings.Split(string(b), "\n") {
+		if l != "" && l[0] != '#' {
+			first = l
+			break
+		}
+	}
+	if err := os.WriteFile(head, []byte(first+"\n"), 0o644); err != nil {
 		t.Fatal(err)
 	}
 	steps := []struct {

@@ -49,6 +49,10 @@ type Options struct {
 	Robots []string
 	// Deleted also exports the journals set aside when robots were deleted.
 	Deleted bool
+	// Run, if not 0, exports only run Run of each journal (RunRow.RunNumber;
+	// a controller restart begins a run); journals with fewer runs give
+	// no rows.
+	Run int64
 	// RowGroupRows is the number of rows per Parquet row group (0: 65536).
 	RowGroupRows int
 }
@@ -83,7 +87,7 @@ func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error)
 	}
 	var rows []RunRow
 	for _, r := range runs {
-		got, err := exportRun(ctx, t, dir, r)
+		got, err := exportRun(ctx, t, dir, r, opt.Run)
 		for i := 0; err == nil && i < len(got); i++ {
 			err = t.runs.add(got[i])
 		}
@@ -122,8 +126,8 @@ func pick(runs []Run, robots []string) ([]Run, error) {
 
 // exportRun replays one journal into the tables and returns the rows of
 // its runs.
-func exportRun(ctx context.Context, t *tables, dir string, r Run) ([]RunRow, error) {
-	x := &runExport{ctx: ctx, t: t, row: RunRow{Robot: r.Robot, Run: r.ID, Journal: r.ID, RunNumber: 1, Deleted: r.ID != liveRun}}
+func exportRun(ctx context.Context, t *tables, dir string, r Run, only int64) ([]RunRow, error) {
+	x := &runExport{ctx: ctx, t: t, only: only, row: RunRow{Robot: r.Robot, Run: r.ID, Journal: r.ID, RunNumber: 1, Deleted: r.ID != liveRun}}
 	if r.DeleteTimeUnixNs != 0 {
 		x.row.DeleteTimeUnixNs = &r.DeleteTimeUnixNs
 	}
@@ -143,7 +147,12 @@ func exportRun(ctx context.Context, t *tables, dir string, r Run) ([]RunRow, err
 	if err := x.flushInputs(true); err != nil {
 		return nil, err
 	}
-	rows := append(x.done, x.row)
+	var rows []RunRow
+	for _, row := range append(x.done, x.row) {
+		if x.keeps(row.RunNumber) {
+			rows = append(rows, row)
+		}
+	}
 	for i := range rows {
 		if gap != nil {
 			rows[i].Gap = gap.Error()

@@ -29,6 +29,8 @@ type runExport struct {
 	done    []RunRow
 	stamped bool
 	cfg     fusion.Config
+	// only is Options.Run: the rows of other runs are counted, not written.
+	only int64
 	// pending are the input rows from the oldest fix still held on:
 	// written once its final verdict is known, in order. open[i] says
 	// pending[i] is still held; held counts them.
@@ -85,6 +87,9 @@ func (x *runExport) input(rp *journal.Replayed) error {
 	}
 	for _, e := range resp.GetEvents() {
 		x.row.Events++
+		if !x.keeps(x.row.RunNumber) {
+			continue
+		}
 		if err := x.t.events.add(EventRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: row.Sequence,
 			Kind: convert.EventName(e.GetKind()), StampNs: e.GetStampNs(), SensorID: e.GetSensorId(),
 			Value: e.GetValue(), Detail: e.GetDetail()}); err != nil {
@@ -93,6 +98,9 @@ func (x *runExport) input(rp *journal.Replayed) error {
 	}
 	return x.pose(row.Sequence, rp.Robot.Pose())
 }
+
+// keeps tells whether the rows of run n are written.
+func (x *runExport) keeps(n int64) bool { return x.only == 0 || n == x.only }
 
 // nextRun ends the current run's row at the run start resp answers: the
 // held inputs it resolves are the ended run's, and its rows are written;
@@ -194,6 +202,9 @@ func (x *runExport) flushInputs(all bool) error {
 	}
 	for i := range n {
 		x.count(x.pending[i].FinalVerdict)
+		if !x.keeps(x.row.RunNumber) {
+			continue
+		}
 		if err := x.t.inputs.add(x.pending[i]); err != nil {
 			return err
 		}
@@ -239,6 +250,9 @@ func (x *runExport) pose(seq int64, p fusion.FusedPose) error {
 		Trusted: p.Trusted()}
 	for _, d := range convert.DistrustToProto(p.Distrust) {
 		row.Distrust = append(row.Distrust, convert.DistrustName(d))
+	}
+	if !x.keeps(x.row.RunNumber) {
+		return nil
 	}
 	return x.t.poses.add(row)
 }

@@ -109,6 +109,27 @@ func TestExportRunsOfARebootedJournal(t *testing.T) {
 	if started != 1 {
 		t.Errorf("%d run_started events", started)
 	}
+
+	// Run 2 alone: its runs row as before, and only its rows.
+	only := t.TempDir()
+	picked, err := Export(context.Background(), dir, only, Options{Run: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(picked) != 1 || picked[0] != r2 {
+		t.Fatalf("runs of Options.Run 2: %+v", picked)
+	}
+	for _, in := range readTable[InputRow](t, only, InputsFile) {
+		if in.Run != "live/2" {
+			t.Fatalf("an input row of run %q", in.Run)
+		}
+	}
+	if n := len(readTable[PoseRow](t, only, PosesFile)); n != int(r2.Inputs) {
+		t.Errorf("%d pose rows of run 2, want %d", n, r2.Inputs)
+	}
+	if none, err := Export(context.Background(), dir, t.TempDir(), Options{Run: 3}); err != nil || len(none) != 0 {
+		t.Errorf("Options.Run 3: %v %v", none, err)
+	}
 }
 
 func toWire(in *fusiontest.Input) *pb.Sample {

@@ -153,6 +153,9 @@ func TestRunLifecycleCommands(t *testing.T) {
 		t.Errorf("replay -run 2: exit %d, %d lines (want %d), first %q; %s", code, len(lines), n2+1, lines[0], errs)
 	}
 
+	if _, errs, code := runCode(t, ctx, "", "export", "-journal", dir, "-out", filepath.Join(work, "run2"), "-run", "2"); code != exitOK || !strings.Contains(errs, "exported 1 runs, "+strconv.Itoa(n2+1)+" inputs") {
+		t.Errorf("export -run 2: exit %d, %s", code, errs)
+	}
 	// Deleting the robot and creating it again keeps both runs' records.
 	if _, errs, code := rc("delete", "cart"); code != exitOK {
 		t.Fatalf("delete: %s", errs)

@@ -348,3 +348,74 @@ func TestRunSwitchSIGKILL(t *testing.T) {
 		}
 	}
 }
+
+// TestRunSwitchShortWrite: the one write of a batch that holds a run start
+// and the new run's first samples stops half way (a disk that fills up).
+// The inputs written whole keep their verdicts, the others are answered
+// UNAVAILABLE; the robot, rebuilt from its journal, is in run 2 exactly
+// when the run start was acknowledged, and so is the robot a restart
+// restores.
+func TestRunSwitchShortWrite(t *testing.T) {
+	mem := faultfs.NewMem()
+	ffs := faultfs.New(mem, nil)
+	ffs.ShortWrite = true
+	s, err := New(Options{JournalDir: "/j", FS: ffs})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	run1, run2, _, cfg := rebootRun(25, 3)
+	if _, err := s.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	for _, smp := range run1 {
+		s.ingest("robots/cart", 0, smp)
+	}
+	batch := []*arrivedRequest{{IngestRequest: pb.IngestRequest{Robot: "robots/cart", Sample: runStart("boot-2", 0)}}}
+	for _, smp := range run2[:6] {
+		batch = append(batch, &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: "robots/cart", Sample: smp}})
+	}
+	ffs.Inject = faultfs.Nth(faultfs.OpWrite, ".rjl", 0, syscall.ENOSPC)
+	out := s.ingestBatch(batch)
+	ffs.Inject = nil
+	acked, lost := 0, 0
+	for k := range out {
+		switch resp := &out[k].IngestResponse; {
+		case resp.GetSequence() != 0 && lost == 0:
+			acked++
+		case resp.GetStatusCode() == int32(codes.Unavailable):
+			lost++
+		default:
+			t.Fatalf("input %d of the batch: %v (after %d acknowledged, %d unavailable)", k, resp, acked, lost)
+		}
+	}
+	if lost == 0 {
+		t.Fatal("the short write cost nothing: the test tests nothing")
+	}
+	wantRun := uint64(1)
+	if acked > 0 {
+		wantRun = 2
+	}
+	check := func(what string, s *Server) {
+		t.Helper()
+		r, err := s.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if rb := r.GetRobot(); rb.GetRun() != wantRun || rb.GetInputCount() != uint64(len(run1)+acked) {
+			t.Errorf("%s: run %d, %d inputs; want run %d, %d inputs (%d of the batch acknowledged)", what, rb.GetRun(), rb.GetInputCount(), wantRun, len(run1)+acked, acked)
+		}
+	}
+	check("rebuilt", s)
+	s.Close()
+	s2, err := New(Options{JournalDir: "/j", FS: mem})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer s2.Close()
+	if _, err := s2.Restore(); err != nil {
+		t.Fatal(err)
+	}
+	check("restored", s2)
+	t.Logf("%d of the batch acknowledged, %d unavailable", acked, lost)
+}

@@ -919,12 +919,10 @@ func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.Sta
 		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
 	}
 	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
-	if r, err := s.lookup(req.GetRobot()); err == nil {
-		r.mu.Lock()
-		if r.fr != nil {
-			out.Run = r.fr.Run()
+	for _, e := range resp.Events {
+		if e.GetKind() == pb.EventKind_EVENT_KIND_RUN_STARTED {
+			out.Run = uint64(e.GetValue()) // the run this input started, not a later one's
 		}
-		r.mu.Unlock()
 	}
 	return out, nil
 }

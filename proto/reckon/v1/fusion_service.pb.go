@@ -1847,7 +1847,7 @@ type StartRunResponse struct {
 	Verdict Verdict `protobuf:"varint,2,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`
 	// Why it was refused.
 	Reason string `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
-	// The robot's current run number after it, from 1.
+	// The number of the run it started, from 1.
 	Run           uint64 `protobuf:"varint,4,opt,name=run,proto3" json:"run,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

@@ -301,7 +301,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.Config = fr.Config()
-	rc.a.finish(fr)
+	rc.a.finish(rc.ending(fr))
 	// The filtered track is written from a reader of its own while the
 	// smoother runs: the replay kept both cores busy, the smoother keeps
 	// one.
@@ -452,6 +452,36 @@ type recorder struct {
 	// want is the run reviewed; last is the robot's run before the input
 	// being taken, the run whose steps that input hands out.
 	want, last uint64
+	// The robot's statistics (which go on over its life) when the run
+	// reviewed began and, once a run start ended it, when it ended, with
+	// its newest odometry then.
+	startStats, endStats fusion.Stats
+	ended                bool
+	endNewestNs          int64
+}
+
+// ending returns the newest odometry and the sensors' statistics of the
+// run reviewed: its own, without those of the runs before or after it.
+func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
+	end, newest := fr.Stats(), fr.NewestNs()
+	if rc.ended {
+		end, newest = rc.endStats, rc.endNewestNs
+	}
+	before := map[string]fusion.SensorStats{}
+	for _, s := range rc.startStats.Sensors {
+		before[s.ID] = s
+	}
+	var out []fusion.SensorStats
+	for _, s := range end.Sensors {
+		b := before[s.ID]
+		c, d := &s.VerdictCounts, &b.VerdictCounts
+		c.Applied, c.Held, c.Gated, c.TooOld, c.Invalid = c.Applied-d.Applied, c.Held-d.Held, c.Gated-d.Gated, c.TooOld-d.TooOld, c.Invalid-d.Invalid
+		s.NISSum, s.DOFSum = s.NISSum-b.NISSum, s.DOFSum-b.DOFSum
+		if s.VerdictCounts != (fusion.VerdictCounts{}) {
+			out = append(out, s)
+		}
+	}
+	return newest, out
 }
 
 // runs notes which run was reviewed of how many, and refuses a run the
@@ -498,6 +528,19 @@ func (rc *recorder) opened(fr *fusion.Robot) {
 func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
 	stepsOf := rc.last
 	rc.last = fr.Run()
+	if fr.Run() != stepsOf {
+		// A run start: it ends the run before (its held inputs resolved)
+		// and begins this one.
+		if stepsOf == rc.want {
+			rc.endStats, rc.ended = fr.Stats(), true
+		}
+		if fr.Run() == rc.want {
+			rc.startStats = fr.Stats()
+		}
+	}
+	if fr.Run() == rc.want {
+		rc.endNewestNs = fr.NewestNs()
+	}
 	if fr.Run() != rc.want || s.GetRunStart() != nil {
 		steps := fr.TakeSteps()
 		if stepsOf == rc.want {
@@ -761,16 +804,18 @@ func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusa
 	}
 }
 
-func (a *accumulator) finish(fr *fusion.Robot) {
+// finish completes the summary at the end of the run reviewed: its newest
+// odometry and its sensors' statistics.
+func (a *accumulator) finish(newestNs int64, sensors []fusion.SensorStats) {
 	sum := &a.run.Summary
 	if a.lost {
-		end := fr.NewestNs()
+		end := newestNs
 		if a.toNs < end {
 			end = a.toNs
 		}
 		sum.Distrust = append(sum.Distrust, Interval{a.lostAt, end, a.lostWhy + " (until the end)"})
 	}
-	sum.Sensors = convert.StatsToProto(fr.Stats()).GetSensors()
+	sum.Sensors = convert.StatsToProto(fusion.Stats{Sensors: sensors}).GetSensors()
 	// Held fixes that never resolved.
 	sum.Fixes["held"] += len(a.fixAt)
 	for id, ns := range a.nis {

@@ -122,6 +122,17 @@ func TestRunLifecycleCommands(t *testing.T) {
 		if code != exitOK || !strings.Contains(out, c.note) || !strings.Contains(out, c.inputs+" inputs") {
 			t.Errorf("review -run %s: exit %d\n%s%s", c.run, code, out, errs)
 		}
+		// The camera's consistency is the run's own: over as many fixes as
+		// the run applied.
+		var applied string
+		for _, l := range strings.Split(out, "\n") {
+			if f := strings.Fields(l); len(f) > 2 && f[0] == "fixes:" && f[1] == "applied" {
+				applied = strings.TrimSuffix(f[2], ",")
+			}
+		}
+		if applied == "" || !strings.Contains(out, "over "+applied+" applied") {
+			t.Errorf("review -run %s: the camera's NIS is not over the run's %q applied fixes\n%s", c.run, applied, out)
+		}
 	}
 	// Each run's smoothed track is on its own clock, in stamp order: run
 	// 2's starts near 0, run 1's ends where run 2's restart was.

@@ -19,8 +19,9 @@ type Step struct {
 	// F is the Jacobian of the prediction from the previous step's Post,
 	// N x N row-major with stride estimator.MaxStates.
 	F [estimator.MaxStates * estimator.MaxStates]float64
-	// Start marks a step with no predecessor: the run's start, or a pose
-	// set by hand or by move recovery.
+	// Start marks a step with no predecessor: the start of the robot or of
+	// a new run (StartRun, whose steps are stamped on the new clock), or a
+	// pose set by hand or by move recovery.
 	Start bool
 }
 
@@ -59,6 +60,9 @@ type stepCollector struct {
 	cur   Step
 	open  bool
 	ready []Step
+	// restart: a new run began (StartRun); its first step has no
+	// predecessor.
+	restart bool
 }
 
 // CollectSteps makes the robot keep the steps of its run for smoothing;
@@ -114,7 +118,9 @@ func (r *Robot) FinishSteps() []Step {
 func (c *stepCollector) collect(r *Robot, k int) {
 	live := r.live()
 	prev := &r.base.est
-	if !c.open && len(c.ready) == 0 {
+	if c.restart || !c.open && len(c.ready) == 0 {
+		c.emit()
+		c.restart = false
 		c.start(r.baseT, prev, r.n)
 	}
 	for i := 0; i < k; i++ {

@@ -40,6 +40,11 @@ type Source struct {
 	Truth string
 	// Label names the run in reports (default: the robot or file).
 	Label string
+	// Run selects one run of the robot (its number, from 1: a controller
+	// restart begins the next; DEVELOPERS.md, "Design: Runs"); 0 reviews
+	// run 1, and the summary notes the runs left out. Each run has its own
+	// clock, so a review covers one.
+	Run uint64
 }
 
 // Options tune a review. Zero values take the defaults given.
@@ -127,6 +132,10 @@ type Summary struct {
 	// refused in a row (Detail names the sensor and the count).
 	RefusedStretches []Interval
 	Truncated        string
+	// Run is the run reviewed, of Runs in the recording; RunNote says
+	// which runs were left out ("" when there is only one).
+	Run, Runs uint64
+	RunNote   string
 	// Gaps lists the journal's continuity breaks (inputs or segments
 	// missing); the review goes on past each. GapsAt holds the stamp of
 	// the newest input before each.
@@ -275,19 +284,22 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: make([]fusion.Step, 0, stepBatch)}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: make([]fusion.Step, 0, stepBatch), want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		fw.close()
 		os.Remove(run.FilteredCSV)
 		return nil, err
 	}
-	rc.add(fr, true)
+	if err := rc.runs(fr, src.Run); err != nil {
+		return nil, err
+	}
+	rc.add(fr, true, fr.Run() == rc.want)
 	if err := fw.close(); err != nil {
 		return nil, err
 	}
 	run.Config = fr.Config()
-	rc.a.finish(fr)
+	rc.a.finish(rc.ending(fr))
 	if err := smoothAndTrack(rc.a, steps, src.Truth, outDir, opt); err != nil {
 		return nil, err
 	}
@@ -412,23 +424,81 @@ type recorder struct {
 	seen         int
 	// batch gathers the steps for the writer.
 	batch []fusion.Step
+	// want is the run reviewed; last is the robot's run before the input
+	// being taken, the run whose steps that input hands out.
+	want, last uint64
+	// The robot's statistics (which go on over its life) when the run
+	// reviewed began and, once a run start ended it, when it ended, with
+	// its newest odometry then.
+	startStats, endStats fusion.Stats
+	ended                bool
+	endNewestNs          int64
 }
 
 // add moves the steps that became final (all of them when finish is set)
-// inside the stretch reviewed to the batch, and hands the batch over when
-// it is full or the run is done.
-func (rc *recorder) add(fr *fusion.Robot, finish bool) {
+// to the batch, those inside the stretch reviewed when they are of the run
+// reviewed (keep) and none otherwise, and hands the batch over when it is
+// full or the replay is done.
+func (rc *recorder) add(fr *fusion.Robot, finish, keep bool) {
 	n := len(rc.batch)
 	if finish {
 		rc.batch = append(rc.batch, fr.FinishSteps()...)
 	} else {
 		rc.batch = fr.AppendSteps(rc.batch)
 	}
-	rc.batch = rc.batch[:n+len(rc.a.window(rc.batch[n:]))]
+	kept := 0
+	if keep {
+		kept = len(rc.a.window(rc.batch[n:]))
+	}
+	rc.batch = rc.batch[:n+kept]
 	if len(rc.batch) >= stepBatch || (finish && len(rc.batch) > 0) {
 		rc.batch = rc.fw.hand(rc.batch)
 	}
 }
+
+// ending returns the newest odometry and the sensors' statistics of the
+// run reviewed: its own, without those of the runs before or after it.
+func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
+	end, newest := fr.Stats(), fr.NewestNs()
+	if rc.ended {
+		end, newest = rc.endStats, rc.endNewestNs
+	}
+	before := map[string]fusion.SensorStats{}
+	for _, s := range rc.startStats.Sensors {
+		before[s.ID] = s
+	}
+	var out []fusion.SensorStats
+	for _, s := range end.Sensors {
+		b := before[s.ID]
+		c, d := &s.VerdictCounts, &b.VerdictCounts
+		c.Applied, c.Held, c.Gated, c.TooOld, c.Invalid = c.Applied-d.Applied, c.Held-d.Held, c.Gated-d.Gated, c.TooOld-d.TooOld, c.Invalid-d.Invalid
+		s.NISSum, s.DOFSum = s.NISSum-b.NISSum, s.DOFSum-b.DOFSum
+		if s.VerdictCounts != (fusion.VerdictCounts{}) {
+			out = append(out, s)
+		}
+	}
+	return newest, out
+}
+
+// runs notes which run was reviewed of how many, and refuses a run the
+// recording does not hold.
+func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
+	sum := &rc.run.Summary
+	sum.Run, sum.Runs = rc.want, fr.Run()
+	if rc.want > fr.Run() {
+		return fmt.Errorf("%w: run %d asked for; the recording holds runs 1 to %d", ErrNoRun, rc.want, fr.Run())
+	}
+	if fr.Run() > 1 {
+		sum.RunNote = fmt.Sprintf("this report covers run %d of the %d runs recorded (a controller restart begins a run, on a clock of its own); review another with -run N", rc.want, fr.Run())
+		if asked == 0 {
+			sum.RunNote += " (run 1 is the default)"
+		}
+	}
+	return nil
+}
+
+// ErrNoRun is returned for a run the recording does not hold.
+var ErrNoRun = errors.New("no such run")
 
 // replay replays the source and returns the robot after its last input.
 func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
@@ -445,10 +515,33 @@ func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
 func (rc *recorder) opened(fr *fusion.Robot) {
 	rc.run.Config = fr.Config()
 	fr.CollectSteps()
+	rc.last = fr.Run()
 }
 
-// took records one input the robot was given and its response.
+// took records one input the robot was given and its response: an input
+// of the run reviewed, or one outside it, whose steps (a run start hands
+// out the ended run's last ones) and resolutions may still be of that run.
 func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
+	stepsOf := rc.last
+	rc.last = fr.Run()
+	if fr.Run() != stepsOf {
+		// A run start: it ends the run before (its held inputs resolved)
+		// and begins this one.
+		if stepsOf == rc.want {
+			rc.endStats, rc.ended = fr.Stats(), true
+		}
+		if fr.Run() == rc.want {
+			rc.startStats = fr.Stats()
+		}
+	}
+	if fr.Run() == rc.want {
+		rc.endNewestNs = fr.NewestNs()
+	}
+	if fr.Run() != rc.want || s.GetRunStart() != nil {
+		rc.add(fr, false, stepsOf == rc.want)
+		rc.a.resolve(resp)
+		return
+	}
 	if rc.seen == 0 {
 		// The run's start is its first input's stamp.
 		start := convert.SampleStamp(s)
@@ -460,7 +553,7 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 	}
 	rc.seen++
 	rc.a.input(s, resp)
-	rc.add(fr, false)
+	rc.add(fr, false, true)
 	if rc.progress != nil && rc.seen%10000 == 0 {
 		rc.progress(rc.seen)
 	}
@@ -557,6 +650,16 @@ type accumulator struct {
 
 func (a *accumulator) in(stamp int64) bool { return stamp >= a.fromNs && stamp <= a.toNs }
 
+// resolve gives the held fixes that resp resolves their final verdict.
+func (a *accumulator) resolve(resp *pb.IngestResponse) {
+	for _, r := range resp.GetResolved() {
+		if i, ok := a.fixAt[r.GetSequence()]; ok {
+			delete(a.fixAt, r.GetSequence())
+			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
+		}
+	}
+}
+
 // window keeps the steps inside the stretch reviewed (in place).
 func (a *accumulator) window(steps []fusion.Step) []fusion.Step {
 	out := steps[:0]
@@ -613,12 +716,7 @@ func (a *accumulator) addNIS(sensor string, p NISPoint) {
 func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	sum := &a.run.Summary
 	stamp := convert.SampleStamp(s)
-	for _, r := range resp.GetResolved() {
-		if i, ok := a.fixAt[r.GetSequence()]; ok {
-			delete(a.fixAt, r.GetSequence())
-			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
-		}
-	}
+	a.resolve(resp)
 	if !a.in(stamp) {
 		a.newest = max(a.newest, stamp)
 		return
@@ -703,16 +801,18 @@ func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusa
 	}
 }
 
-func (a *accumulator) finish(fr *fusion.Robot) {
+// finish completes the summary at the end of the run reviewed: its newest
+// odometry and its sensors' statistics.
+func (a *accumulator) finish(newestNs int64, sensors []fusion.SensorStats) {
 	sum := &a.run.Summary
 	if a.lost {
-		end := fr.NewestNs()
+		end := newestNs
 		if a.toNs < end {
 			end = a.toNs
 		}
 		sum.Distrust = append(sum.Distrust, Interval{a.lostAt, end, a.lostWhy + " (until the end)"})
 	}
-	sum.Sensors = convert.StatsToProto(fr.Stats()).GetSensors()
+	sum.Sensors = convert.StatsToProto(fusion.Stats{Sensors: sensors}).GetSensors()
 	// Held fixes that never resolved.
 	sum.Fixes["held"] += len(a.fixAt)
 	for id, ns := range a.nis {
@@ -799,12 +899,17 @@ func thinFixes(fixes []FixPoint, bound int) []FixPoint {
 }
 
 // Label is the name a run gets in reports and export file names unless
-// Source.Label says otherwise: the robot's id, or the samples file's name.
+// Source.Label says otherwise: the robot's id, or the samples file's name,
+// with "-run{N}" when Source.Run selects a run.
 func Label(src Source) string {
+	label := strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
 	if src.JournalDir != "" {
-		return robotID(src.Robot)
+		label = robotID(src.Robot)
 	}
-	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
+	if src.Run > 0 {
+		label += fmt.Sprintf("-run%d", src.Run)
+	}
+	return label
 }
 
 // nees3 is the pose NEES of s against the truth, NaN if its covariance is

@@ -47,7 +47,8 @@ type Robot struct {
 	travel     []float64
 
 	seq   uint64
-	steps *stepCollector // nil unless CollectSteps was called
+	steps *stepCollector       // nil unless CollectSteps was called
+	innov *innovationCollector // nil unless CollectInnovations was called
 	stats statsState
 	trust trustState
 	cands []candidate

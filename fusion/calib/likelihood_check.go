@@ -40,7 +40,9 @@ func (c *SensorCheck) NISInBand() bool { return c.MeanNIS >= c.Lo && c.MeanNIS <
 // White reports whether the innovations pass Mehra's whiteness test: at
 // most 5% of the autocorrelations beyond the bound (and at least one
 // tested).
-func (c *SensorCheck) White() bool { return c.Tested > 0 && float64(c.Outside) <= 0.05*float64(c.Tested) }
+func (c *SensorCheck) White() bool {
+	return c.Tested > 0 && float64(c.Outside) <= 0.05*float64(c.Tested)
+}
 
 // checks replays the run at values and returns each sensor's check (in
 // the order the sensors first appear), the log-likelihood and how many

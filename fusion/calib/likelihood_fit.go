@@ -107,7 +107,8 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 	// A first look along each level alone drops the levels the run leaves
 	// flat and starts the simplex where each level's own parabola peaks;
 	// then the simplex fits the rest together, and the Hessian at its
-	// optimum drops the ones it does not pin down. Those go back to their
+	// optimum drops the ones it does not pin down, and so does a check of
+	// its curvature two standard errors out. Those go back to their
 	// configured values, the others' standard errors come from their own
 	// block of the Hessian (the dropped levels held fixed), and a short
 	// second simplex polishes them.
@@ -148,6 +149,7 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		for _, j := range keep {
 			kept = append(kept, free[j])
 		}
+		kept = p.quadratic(obj, x, x0, kept, fit.Levels)
 		if len(kept) < len(free) && len(kept) > 0 {
 			if err := p.maximise(obj, x, kept, 0.1, 10*len(kept)); err != nil {
 				return nil, err
@@ -365,6 +367,44 @@ func (p *replayer) maximise(obj func([]float64) float64, x []float64, free []int
 // levels: 10%, wide beside the likelihood's small jumps and narrow beside
 // its curvature.
 const hessianStepLog = 0.1
+
+// quadratic checks the Hessian's picture of each level of free against
+// the likelihood itself: two standard errors either way of x along the
+// level alone, minus the log-likelihood should rise by 2; a level along
+// which it rises by less than 1 on either side sits on a shelf or a ridge
+// the Hessian's 10% steps did not see (a level the run leaves loose, pulled
+// by a level it does not determine and that stays at a wrong configured
+// value), and is marked not determined and put back to its configured
+// value x0. It returns the levels that pass.
+func (p *replayer) quadratic(obj func([]float64) float64, x, x0 []float64, free []int, levels []FittedLevel) []int {
+	y := make([]float64, len(x))
+	for i, v := range x {
+		y[i] = math.Log(v)
+	}
+	f0 := obj(y)
+	var pass []int
+	var back []int
+	for _, i := range free {
+		se := levels[i].StdErrLog
+		rise := math.Inf(1)
+		for _, d := range []float64{-2 * se, 2 * se} {
+			y[i] += d
+			rise = math.Min(rise, obj(y)-f0)
+			y[i] -= d
+		}
+		if rise < 1 {
+			levels[i].Note = fmt.Sprintf("two standard errors (%.2f in its log) away the log-likelihood falls by only %.2f, not the 2 of its Hessian: the run does not determine it", 2*se, rise)
+			levels[i].StdErrLog = math.NaN()
+			back = append(back, i)
+			continue
+		}
+		pass = append(pass, i)
+	}
+	for _, i := range back {
+		x[i] = x0[i]
+	}
+	return pass
+}
 
 // hessian returns the Hessian of obj (minus the log-likelihood) in the
 // logs of the free levels of x: the observed Fisher information, by

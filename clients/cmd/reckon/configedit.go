@@ -129,7 +129,7 @@ func setField(root *yaml.Node, e configEdit) (old string, err error) {
 		}
 		*node = yaml.Node{Kind: yaml.SequenceNode, Tag: "!!seq", Style: yaml.FlowStyle}
 		for _, s := range e.seq {
-			node.Content = append(node.Content, &yaml.Node{Kind: yaml.ScalarNode, Tag: "!!float", Value: s})
+			node.Content = append(node.Content, &yaml.Node{Kind: yaml.ScalarNode, Value: s}) // plain: 0 stays 0
 		}
 	default:
 		old = node.Value

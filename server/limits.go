@@ -23,6 +23,9 @@ type Limits struct {
 	// robot (64; -max-watchers-per-robot) and in all (1024;
 	// -max-watchers): one more is RESOURCE_EXHAUSTED.
 	MaxWatchersPerRobot, MaxWatchers int
+	// MaxViewers bounds open live views (16; -max-viewers): one more is
+	// RESOURCE_EXHAUSTED.
+	MaxViewers int
 }
 
 // withDefaults returns l with its zero fields set to the defaults.
@@ -36,6 +39,7 @@ func (l Limits) withDefaults() Limits {
 	def(&l.MaxStringBytes, 128)
 	def(&l.MaxWatchersPerRobot, 64)
 	def(&l.MaxWatchers, 1024)
+	def(&l.MaxViewers, 16)
 	return l
 }
 

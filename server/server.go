@@ -90,6 +90,7 @@ type Server struct {
 	robots map[string]*robot
 
 	watching atomic.Int64 // open Watch streams
+	live     liveHub      // open live views (live.go)
 	unlock   func() error // releases the journal directory
 
 	stopSync chan struct{}
@@ -119,6 +120,8 @@ type robot struct {
 	gauges *robotGauges
 
 	hub hub
+	// sync is the periodic fsync's own state (its own lock).
+	sync syncer
 }
 
 // New returns a server. Call Restore before serving to bring back robots
@@ -184,17 +187,22 @@ func (s *Server) syncLoop() {
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the
-// robot's lock while the disk works (syncLatest), so that ingest does not
+// robot's lock while the disk works (syncer), so that ingest does not
 // wait for it.
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		has := r.journal != nil
+		j := r.journal
+		var path string
+		var writes uint64
+		if j != nil {
+			path, writes = j.SyncPoint()
+		}
 		r.mu.Unlock()
-		if !has {
+		if j == nil {
 			continue
 		}
-		if err := syncLatest(s.opt.FS, s.opt.JournalDir, r.id); err != nil {
+		if err := r.sync.sync(s.opt.FS, j, path, writes); err != nil {
 			r.mu.Lock()
 			s.journalFailed(r, "journal sync", err)
 			r.mu.Unlock()
@@ -208,6 +216,7 @@ func (s *Server) EndWatches() {
 	for _, r := range s.list() {
 		r.hub.close()
 	}
+	s.live.end()
 }
 
 // Close syncs and closes every journal and ends every watch.
@@ -222,8 +231,10 @@ func (s *Server) Close() error {
 			r.journal = nil
 		}
 		r.mu.Unlock()
+		r.sync.close()
 		r.hub.close()
 	}
+	s.live.end()
 	errs = append(errs, s.unlock())
 	return errors.Join(errs...)
 }
@@ -299,7 +310,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	s.opt.Metrics.robots(len(s.robots))
 	r.mu.Lock()
 	s.observeRobot(r, nil, -1)
+	created := LiveUpdate{Robot: name, State: r.state, Pose: poseNow(r)}
 	r.mu.Unlock()
+	s.live.publish(func() LiveUpdate { return created })
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
@@ -368,6 +381,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	delete(s.robots, r.name)
 	s.opt.Metrics.robots(len(s.robots))
 	s.mu.Unlock()
+	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
 	if r.journal != nil {
@@ -384,6 +398,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	r.mu.Unlock()
 	s.opt.Metrics.forget(r.name)
 	r.hub.close()
+	s.live.publish(func() LiveUpdate { return LiveUpdate{Robot: r.name, Gone: true} })
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "journal: %v", err)
 	}
@@ -598,7 +613,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
 	lag := time.Since(start)
-	if len(tk.entries) > 0 && r.fr != nil {
+	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0 || s.live.watched()) {
+		// The pose is for the watchers, the live views and the metrics:
+		// none, no pose.
 		pose = poseNow(r)
 	}
 	if cause != nil {
@@ -612,6 +629,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	if pose != nil {
 		s.observeRobot(r, pose, lag)
 	}
+	state := r.state
 	r.mu.Unlock()
 	if pose == nil {
 		return
@@ -621,6 +639,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 		events = append(events, out[k].Events...)
 	}
 	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	s.live.publish(func() LiveUpdate {
+		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, tk.entries[:written])}
+	})
 	d := time.Since(start)
 	for _, k := range tk.entries[:written] {
 		s.opt.Metrics.verdict(out[k].Verdict, d)

@@ -149,9 +149,12 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		for _, j := range keep {
 			kept = append(kept, free[j])
 		}
-		kept = p.quadratic(obj, x, x0, kept, fit.Levels)
-		if len(kept) < len(free) && len(kept) > 0 {
-			if err := p.maximise(obj, x, kept, 0.1, 10*len(kept)); err != nil {
+		if err := p.polish(obj, x, kept, len(free)); err != nil {
+			return nil, err
+		}
+		n := len(kept)
+		if kept = p.quadratic(obj, x, x0, kept, fit.Levels); len(kept) < n {
+			if err := p.polish(obj, x, kept, n); err != nil {
 				return nil, err
 			}
 		}
@@ -368,14 +371,26 @@ func (p *replayer) maximise(obj func([]float64) float64, x []float64, free []int
 // its curvature.
 const hessianStepLog = 0.1
 
+// polish fits the free levels of x again with a small simplex when some
+// of the had levels fitted before were put back to their configured values
+// (so that fewer than had are free).
+func (p *replayer) polish(obj func([]float64) float64, x []float64, free []int, had int) error {
+	if len(free) == 0 || len(free) == had {
+		return nil
+	}
+	return p.maximise(obj, x, free, 0.1, 10*len(free))
+}
+
 // quadratic checks the Hessian's picture of each level of free against
 // the likelihood itself: two standard errors either way of x along the
-// level alone, minus the log-likelihood should rise by 2; a level along
-// which it rises by less than 1 on either side sits on a shelf or a ridge
-// the Hessian's 10% steps did not see (a level the run leaves loose, pulled
-// by a level it does not determine and that stays at a wrong configured
-// value), and is marked not determined and put back to its configured
-// value x0. It returns the levels that pass.
+// level alone, minus the log-likelihood should rise by 2 on average (the
+// mean of the two sides, which a slope cancels: the simplex stops within
+// 0.2 of the optimum, and small jumps roughen the likelihood). A level
+// along which it rises by less than 1 sits on a shelf the Hessian's 10%
+// steps did not see (a level the run leaves loose, pulled by a level it
+// does not determine and that stays at a wrong configured value); it is
+// marked not determined and put back to its configured value x0. It
+// returns the levels that pass.
 func (p *replayer) quadratic(obj func([]float64) float64, x, x0 []float64, free []int, levels []FittedLevel) []int {
 	y := make([]float64, len(x))
 	for i, v := range x {
@@ -386,14 +401,14 @@ func (p *replayer) quadratic(obj func([]float64) float64, x, x0 []float64, free 
 	var back []int
 	for _, i := range free {
 		se := levels[i].StdErrLog
-		rise := math.Inf(1)
+		var rise float64
 		for _, d := range []float64{-2 * se, 2 * se} {
 			y[i] += d
-			rise = math.Min(rise, obj(y)-f0)
+			rise += (obj(y) - f0) / 2
 			y[i] -= d
 		}
 		if rise < 1 {
-			levels[i].Note = fmt.Sprintf("two standard errors (%.2f in its log) away the log-likelihood falls by only %.2f, not the 2 of its Hessian: the run does not determine it", 2*se, rise)
+			levels[i].Note = fmt.Sprintf("two standard errors (%.2f in its log) away the log-likelihood falls by %.2f on average, not the 2 of its Hessian: the run does not determine it", 2*se, rise)
 			levels[i].StdErrLog = math.NaN()
 			back = append(back, i)
 			continue

@@ -485,7 +485,8 @@ func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u 
 // one that fails with an error, leaves the filter unchanged. With a robust
 // model the update uses the noise R / w, w the model's weight of the raw
 // NIS (DEVELOPERS.md, "Design: Measurement updates"). Bias states are
-// consider states: their gain rows are zero. The update is in Joseph form,
+// consider states: their gain rows are zero, and so are those of the states
+// m.Hold marks for this update. The update is in Joseph form,
 //
 //	P' = (I - K H) P (I - K H)^T + K R K^T,
 //
@@ -523,7 +524,7 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 			return out, fmt.Errorf("re-weighted innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
 		}
 	}
-	f.gain(d)
+	f.gain(d, m.Hold)
 	return out, f.correct(m, &v)
 }
 
@@ -602,12 +603,12 @@ func (f *Filter) nis(v *[3]float64, d int, y *[3]float64) float64 {
 }
 
 // gain keeps P H^T in f.pht and replaces f.k by K = P H^T S^-1, solving
-// S K_i^T = PHt_i^T row by row; the rows of consider states are zero
-// (Schmidt 1966).
-func (f *Filter) gain(d int) {
+// S K_i^T = PHt_i^T row by row; the rows of consider states, and of the
+// states hold marks, are zero (Schmidt 1966).
+func (f *Filter) gain(d int, hold uint16) {
 	f.pht = f.k
 	for i := 0; i < f.st.n; i++ {
-		if f.layout.consider(i) {
+		if f.layout.consider(i) || hold&(1<<i) != 0 {
 			f.k[i*3], f.k[i*3+1], f.k[i*3+2] = 0, 0, 0
 			continue
 		}

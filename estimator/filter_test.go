@@ -353,6 +353,11 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		m, n := c.m, c.n
 		f := randomFilter(t, rng, n)
 		st := f.State()
+		if n > 3 && rng.IntN(2) == 0 {
+			// A state held for this update (Measurement.Hold): a consider
+			// state for once, its gain row zero (Schmidt 1966).
+			m.Hold = 1 << (3 + rng.IntN(n-3))
+		}
 		z0, Hs, _ := m.Predicted(st.x[:n])
 		d := m.Kind.Dim()
 		if m.Robust.Kind != RobustNone {
@@ -405,6 +410,13 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		if f.layout.Biases() > 0 {
 			at, _ := f.layout.Bias(0)
 			for i := at; i < n; i++ {
+				for j := 0; j < d; j++ {
+					K.Set(i, j, 0)
+				}
+			}
+		}
+		for i := 0; i < n; i++ {
+			if m.Hold&(1<<i) != 0 {
 				for j := 0; j < d; j++ {
 					K.Set(i, j, 0)
 				}

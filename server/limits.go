@@ -16,8 +16,9 @@ import (
 type Limits struct {
 	// MaxRobots bounds the robots of the server (1000; -max-robots).
 	MaxRobots int
-	// MaxStringBytes bounds session_id, sensor_id and landmark_id (128
-	// bytes; -max-string-bytes): a longer one is INVALID_ARGUMENT.
+	// MaxStringBytes bounds session_id, sensor_id, landmark_id and
+	// boot_id (128 bytes; -max-string-bytes): a longer one is
+	// INVALID_ARGUMENT.
 	MaxStringBytes int
 	// MaxWatchersPerRobot and MaxWatchers bound open Watch streams per
 	// robot (64; -max-watchers-per-robot) and in all (1024;
@@ -66,6 +67,9 @@ func (s *Server) checkLimits(r *robot, req *pb.IngestRequest) *limitError {
 	}
 	if id := fix.GetLandmark().GetLandmarkId(); len(id) > max {
 		return long("sample.fix.landmark.landmark_id", id)
+	}
+	if id := req.GetSample().GetRunStart().GetBootId(); len(id) > max {
+		return long("sample.run_start.boot_id", id)
 	}
 	return nil
 }

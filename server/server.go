@@ -268,6 +268,7 @@ func (r *robot) proto() *pb.Robot {
 	out := &pb.Robot{Name: r.name, Config: r.cfg, State: r.state, StateDetail: r.detail}
 	if r.fr != nil {
 		out.NewestStampNs, out.InputCount = r.fr.NewestNs(), r.fr.Sequence()
+		out.Run, out.BootId = r.fr.Run(), r.fr.BootID()
 	}
 	return out
 }
@@ -904,6 +905,26 @@ func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*
 		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
 	}
 	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+}
+
+// StartRun starts a new run of a robot by hand (DEVELOPERS.md, "Design:
+// Runs"); it is journaled like any input, so that a restart restores the
+// run as the robot took it.
+func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.StartRunResponse, error) {
+	if req.GetRunStart() == nil {
+		return nil, status.Errorf(codes.InvalidArgument, "run_start: missing")
+	}
+	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
+	if resp.StatusCode != 0 && resp.Sequence == 0 {
+		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+	}
+	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
+	for _, e := range resp.Events {
+		if e.GetKind() == pb.EventKind_EVENT_KIND_RUN_STARTED {
+			out.Run = uint64(e.GetValue()) // the run this input started, not a later one's
+		}
+	}
+	return out, nil
 }
 
 // GetStatistics gets a robot's statistics.

@@ -8,6 +8,7 @@
 //	reckon stats    a robot's statistics: verdict counts, per-sensor consistency
 //	reckon pose     a robot's pose, the latest or at a stamp
 //	reckon reseed   put a robot at a known pose
+//	reckon start-run  start a new run of a robot whose controller restarted
 //	reckon feed     stream a JSON Lines file of samples to a robot, paced or not
 //	reckon watch    print a robot's fused poses as a table, CSV or JSON Lines
 //	reckon link     feed a robot from a microcontroller's frames over a serial port or UDP
@@ -85,6 +86,7 @@ func commands() []command {
 		{"stats", "a robot's statistics: verdict counts, per-sensor consistency", outErr(runStats)},
 		{"pose", "a robot's fused pose, the latest or at a stamp", outErr(runPose)},
 		{"reseed", "put a robot at a known pose", outErr(runReseed)},
+		{"start-run", "start a new run of a robot whose controller restarted (its clock jumped back)", outErr(runStartRun)},
 		{"feed", "stream a JSON Lines file of samples to a robot, paced or as fast as possible", runFeed},
 		{"watch", "print a robot's fused poses as a table, CSV or JSON Lines; reconnects", outErr(runWatch)},
 		{"link", "feed a robot from a microcontroller's frames over a serial port or UDP", outErr(runLink)},

@@ -168,6 +168,17 @@ type Outcome struct {
 	// Weight is the robust weight w the update used (its noise was R / w);
 	// 1 without a robust model, 0 when gated.
 	Weight float64
+	// LogDetS is the natural log of the determinant of the raw innovation
+	// covariance S = H P H^T + R (R the measurement's own, before any robust
+	// re-weighting), in the log of the product of the components' units:
+	// with NIS, a Gaussian innovation's log-likelihood is
+	// -(LogDetS + NIS + Dim log 2pi) / 2.
+	LogDetS float64
+	// Whitened is L^-1 v, the innovation v whitened by the Cholesky factor
+	// L of the raw S (first Dim entries; dimensionless). Under a consistent
+	// filter its components are independent standard normals, white in
+	// time (Mehra 1970); NIS is its squared length.
+	Whitened [3]float64
 }
 
 // Filter is the extended Kalman filter. The zero value is not usable; make
@@ -492,7 +503,10 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	if err := f.innovationCovariance(d); err != nil {
 		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, err)
 	}
-	out.NIS = f.nis(&v, d)
+	out.NIS = f.nis(&v, d, &out.Whitened)
+	for i := 0; i < d; i++ {
+		out.LogDetS += 2 * math.Log(f.l[i*measStride+i])
+	}
 	if !gate.Passes(out.NIS) {
 		out.Gated = true
 		return out, nil
@@ -579,8 +593,7 @@ func (f *Filter) innovationCovariance(d int) error {
 }
 
 // nis returns v^T S^-1 v from the factor of S in f.l.
-func (f *Filter) nis(v *[3]float64, d int) float64 {
-	var y [3]float64
+func (f *Filter) nis(v *[3]float64, d int, y *[3]float64) float64 {
 	cholForward(f.l[:], d, measStride, v[:], y[:])
 	var q float64
 	for i := 0; i < d; i++ {

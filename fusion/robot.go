@@ -51,7 +51,8 @@ type Robot struct {
 	// current run's boot id (run.go).
 	run    uint64
 	bootID string
-	steps  *stepCollector // nil unless CollectSteps was called
+	steps  *stepCollector       // nil unless CollectSteps was called
+	innov  *innovationCollector // nil unless CollectInnovations was called
 	stats  statsState
 	trust  trustState
 	cands  []candidate

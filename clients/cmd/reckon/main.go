@@ -21,6 +21,7 @@
 //	reckon compare  the same run under two configurations, side by side
 //	reckon export   journals as Parquet tables (runs, inputs, poses, events)
 //	reckon imu-noise  IMU noise terms from a static recording by Allan deviation
+//	reckon tune     noise levels fitted to a recorded run by the likelihood of its innovations
 //	reckon version  the module version and source revision of this binary
 //
 // Run "reckon help" for the commands and "reckon <command> -h" for flags;
@@ -94,6 +95,7 @@ func commands() []command {
 		{"review", "replay a recorded run with the smoother: a text summary, an HTML report with figures, and CSV exports of the filtered and smoothed tracks", outErr(runReview)},
 		{"compare", "review a run under two configurations side by side", outErr(runCompare)},
 		{"imu-noise", "read a static IMU recording's noise from its Allan deviation and write it into a new configuration", outErr(runIMUNoise)},
+		{"tune", "fit a configuration's noise levels to a recorded run by the likelihood of its innovations and write a new configuration", outErr(runTune)},
 		{"export", "write journals, of one or many robots and runs, as Parquet tables (runs, inputs, poses, events) for data engines", outErr(runExport)},
 		{"version", "\nprint the module version and source revision of this binary", outErr(runVersion)},
 		{"help", "print this text", nil},

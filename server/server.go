@@ -90,6 +90,7 @@ type Server struct {
 	robots map[string]*robot
 
 	watching atomic.Int64 // open Watch streams
+	live     liveHub      // open live views (live.go)
 	unlock   func() error // releases the journal directory
 
 	stopSync chan struct{}
@@ -215,6 +216,7 @@ func (s *Server) EndWatches() {
 	for _, r := range s.list() {
 		r.hub.close()
 	}
+	s.live.end()
 }
 
 // Close syncs and closes every journal and ends every watch.
@@ -232,6 +234,7 @@ func (s *Server) Close() error {
 		r.sync.close()
 		r.hub.close()
 	}
+	s.live.end()
 	errs = append(errs, s.unlock())
 	return errors.Join(errs...)
 }
@@ -265,6 +268,7 @@ func (r *robot) proto() *pb.Robot {
 	out := &pb.Robot{Name: r.name, Config: r.cfg, State: r.state, StateDetail: r.detail}
 	if r.fr != nil {
 		out.NewestStampNs, out.InputCount = r.fr.NewestNs(), r.fr.Sequence()
+		out.Run, out.BootId = r.fr.Run(), r.fr.BootID()
 	}
 	return out
 }
@@ -307,7 +311,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	s.opt.Metrics.robots(len(s.robots))
 	r.mu.Lock()
 	s.observeRobot(r, nil, -1)
+	created := LiveUpdate{Robot: name, State: r.state, Pose: poseNow(r)}
 	r.mu.Unlock()
+	s.live.publish(func() LiveUpdate { return created })
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
@@ -393,6 +399,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	r.mu.Unlock()
 	s.opt.Metrics.forget(r.name)
 	r.hub.close()
+	s.live.publish(func() LiveUpdate { return LiveUpdate{Robot: r.name, Gone: true} })
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "journal: %v", err)
 	}
@@ -692,8 +699,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
 	lag := time.Since(start)
-	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0) {
-		// The pose is for the watchers and the metrics: none, no pose.
+	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0 || s.live.watched()) {
+		// The pose is for the watchers, the live views and the metrics:
+		// none, no pose.
 		pose = poseNow(r)
 	}
 	if cause != nil {
@@ -707,6 +715,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	if pose != nil {
 		s.observeRobot(r, pose, lag)
 	}
+	state := r.state
 	r.mu.Unlock()
 	if pose == nil {
 		return
@@ -716,6 +725,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 		events = append(events, out[k].Events...)
 	}
 	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	s.live.publish(func() LiveUpdate {
+		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, tk.entries[:written])}
+	})
 	d := time.Since(start)
 	for _, k := range tk.entries[:written] {
 		s.opt.Metrics.verdict(out[k].Verdict, d)
@@ -978,6 +990,26 @@ func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*
 		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
 	}
 	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+}
+
+// StartRun starts a new run of a robot by hand (DEVELOPERS.md, "Design:
+// Runs"); it is journaled like any input, so that a restart restores the
+// run as the robot took it.
+func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.StartRunResponse, error) {
+	if req.GetRunStart() == nil {
+		return nil, status.Errorf(codes.InvalidArgument, "run_start: missing")
+	}
+	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
+	if resp.StatusCode != 0 && resp.Sequence == 0 {
+		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+	}
+	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
+	for _, e := range resp.Events {
+		if e.GetKind() == pb.EventKind_EVENT_KIND_RUN_STARTED {
+			out.Run = uint64(e.GetValue()) // the run this input started, not a later one's
+		}
+	}
+	return out, nil
 }
 
 // GetStatistics gets a robot's statistics.

@@ -123,6 +123,10 @@ type Scenario struct {
 	Bump *Bump
 	// SpeedMPerS is the cruising speed (0.4).
 	SpeedMPerS float64
+	// SensorCovariance makes the camera's fixes carry no covariance of
+	// their own, so that they take the one the filter's configuration gives
+	// its sensor (as a camera that does not report one).
+	SensorCovariance bool
 
 	// The real error processes (errors.go); zero turns each off.
 	Errors
@@ -554,6 +558,9 @@ func (sm *Sim) emitCamera(t int64) {
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
 	}
 	in.Outlier = outlier
+	if sm.s.SensorCovariance {
+		in.Fix.Cov = nil
+	}
 	sm.push(in)
 }
 

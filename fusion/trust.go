@@ -49,7 +49,7 @@ const (
 // DisagreeProbability is the chi-square probability beyond which one refused
 // fix's NIS raises TrustFixDisagrees: a consistent filter sees such a NIS
 // once in a million fixes, about once in 28 hours at 10 Hz.
-const DisagreeProbability = 1 - 1e-6
+const DisagreeProbability = 1 - 1e-3
 
 type trustState struct {
 	reasons    TrustReason

@@ -312,7 +312,7 @@ func (m *sysModel) globals(sensorsOnly bool) {
 		if s.Kind != fusion.FixPosition {
 			m.mHdg[si] = add(MountHeading, si, s.Mount.Heading, 1e-6)
 		}
-		m.latency[si] = add(Latency, si, float64(s.LatencyNs)*1e-9, 1e-4)
+		m.latency[si] = add(Latency, si, float64(s.LatencyNs)*1e-9, 2e-3)
 	}
 }
 

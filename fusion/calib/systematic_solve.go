@@ -28,7 +28,12 @@ type sysSolver struct {
 	ok  []bool
 	rel []estimator.Pose
 	// jac holds each fix's Jacobian rows, 3 x (ng + 3), row-major.
-	jac        []float64
+	jac []float64
+	// blocks are the segments' correlated residuals (segBlock), built at
+	// each re-weighting; drift is each fix's drift covariance in its
+	// whitened residual (zero before the first blocks).
+	blocks     []segBlock
+	drift      [][9]float64
 	s2         float64
 	iterations int
 	converged  bool
@@ -50,6 +55,7 @@ func newSysSolver(m *sysModel, opt SystematicOptions) *sysSolver {
 	}
 	s.e, s.dim, s.ok, s.rel = make([][3]float64, n), make([]int, n), make([]bool, n), make([]estimator.Pose, n)
 	s.jac = make([]float64, n*3*(ng+3))
+	s.drift = make([][9]float64, n)
 	s.initAnchors()
 	return s
 }
@@ -116,20 +122,46 @@ func (s *sysSolver) predict(x []float64, e [][3]float64) float64 {
 	g := x[:s.ng]
 	anchors := s.anchors(x)
 	m.anchorPoses()
-	var cost float64
 	for i := range m.fixes {
 		rel := m.relative(i, g)
 		s.rel[i] = rel
 		d, ok := m.residual(i, g, estimator.Compose(anchors[m.fixes[i].seg], rel), &e[i])
 		s.dim[i], s.ok[i] = d, ok
 		if !ok {
-			continue
-		}
-		for a := range d {
-			cost += s.w[i] * e[i][a] * e[i][a]
+			e[i] = [3]float64{}
 		}
 	}
-	return cost + s.priorCost(x)
+	return s.blockCost(e) + s.priorCost(x)
+}
+
+// blockCost is the generalised least-squares cost of the residuals e over
+// the segments' blocks: sum |L^-1 e_seg|^2.
+func (s *sysSolver) blockCost(e [][3]float64) float64 {
+	var cost float64
+	for bi := range s.blocks {
+		b := &s.blocks[bi]
+		if b.rows == 0 || !b.ok {
+			continue
+		}
+		v := s.gather(b, e)
+		var y mat.VecDense
+		if err := y.SolveVec(&b.l, v); err != nil {
+			return math.Inf(1)
+		}
+		cost += mat.Dot(&y, &y)
+	}
+	return cost
+}
+
+// gather returns the block's residuals as one vector.
+func (s *sysSolver) gather(b *segBlock, e [][3]float64) *mat.VecDense {
+	v := mat.NewVecDense(b.rows, nil)
+	for n, i := range b.fixes {
+		for r := range s.dim[i] {
+			v.SetVec(b.off[n]+r, e[i][r])
+		}
+	}
+	return v
 }
 
 func (s *sysSolver) priorCost(x []float64) float64 {
@@ -205,45 +237,65 @@ func (s *sysSolver) jacobian(x []float64) {
 	}
 }
 
-// normal returns J^T W J (prior included) and J^T W e at the last
-// jacobian.
-func (s *sysSolver) normal() (*mat.SymDense, *mat.VecDense) {
+// normal returns J^T C^-1 J (prior included) and J^T C^-1 e at the last
+// jacobian, over the segments' blocks; with scores, also each segment's
+// score J^T C^-1 e (length p).
+func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
 	m := s.m
 	ng, cols := s.ng, s.ng+3
 	nm := mat.NewSymDense(s.p, nil)
 	gr := mat.NewVecDense(s.p, nil)
 	idx := make([]int, cols)
-	for i := range m.fixes {
-		if !s.ok[i] || s.w[i] == 0 {
+	for j := range ng {
+		idx[j] = j
+	}
+	for k := range s.blocks {
+		b := &s.blocks[k]
+		if b.rows == 0 || !b.ok {
 			continue
 		}
-		for c := range ng {
-			idx[c] = c
-		}
 		for c := range 3 {
-			idx[ng+c] = ng + 3*m.fixes[i].seg + c
+			idx[ng+c] = ng + 3*k + c
 		}
-		for r := range s.dim[i] {
-			row := s.jac[(i*3+r)*cols : (i*3+r+1)*cols]
-			for a := range cols {
-				if row[a] == 0 {
-					continue
+		jb := mat.NewDense(b.rows, cols, nil)
+		for n, i := range b.fixes {
+			for r := range s.dim[i] {
+				jb.SetRow(b.off[n]+r, s.jac[(i*3+r)*cols:(i*3+r+1)*cols])
+			}
+		}
+		var y mat.Dense
+		var ye mat.VecDense
+		if y.Solve(&b.l, jb) != nil || ye.SolveVec(&b.l, s.gather(b, s.e)) != nil {
+			continue
+		}
+		var jtj mat.Dense
+		var jte mat.VecDense
+		jtj.Mul(y.T(), &y)
+		jte.MulVec(y.T(), &ye)
+		for a := range cols {
+			gr.SetVec(idx[a], gr.AtVec(idx[a])+jte.AtVec(a))
+			if scores != nil {
+				scores[k][idx[a]] += jte.AtVec(a)
+			}
+			for c := a; c < cols; c++ {
+				ia, ic := idx[a], idx[c]
+				if ia > ic {
+					ia, ic = ic, ia
 				}
-				gr.SetVec(idx[a], gr.AtVec(idx[a])+s.w[i]*row[a]*s.e[i][r])
-				for b := a; b < cols; b++ {
-					ia, ib := idx[a], idx[b]
-					if ia > ib {
-						ia, ib = ib, ia
-					}
-					nm.SetSym(ia, ib, nm.At(ia, ib)+s.w[i]*row[a]*row[b])
-				}
+				nm.SetSym(ia, ic, nm.At(ia, ic)+jtj.At(a, c))
 			}
 		}
 	}
-	for j, pr := range m.params {
+	_ = m
+	for j, pr := range s.m.params {
 		v := 1 / (s.prior[j] * s.prior[j])
 		nm.SetSym(j, j, nm.At(j, j)+v)
 		gr.SetVec(j, gr.AtVec(j)+v*(s.x[j]-pr.Configured))
+	}
+	// An anchor whose fixes all lost their weight would make N singular;
+	// (30 km)^2 of prior variance keeps it regular and changes nothing else.
+	for j := ng; j < s.p; j++ {
+		nm.SetSym(j, j, nm.At(j, j)+1e-9)
 	}
 	return nm, gr
 }
@@ -261,7 +313,7 @@ func (s *sysSolver) lm(maxIter int) {
 	for it := 0; it < maxIter; it++ {
 		s.iterations++
 		s.jacobian(s.x)
-		nm, gr := s.normal()
+		nm, gr := s.normal(nil)
 		accepted := false
 		for try := 0; try < 12 && !accepted; try++ {
 			a := mat.NewSymDense(s.p, nil)
@@ -288,7 +340,9 @@ func (s *sysSolver) lm(maxIter int) {
 				cost = c
 				lambda = math.Max(lambda/10, 1e-12)
 				accepted = true
-				s.converged = s.small(&d)
+				// A damped step is small far from the minimum too: test
+				// the Gauss-Newton step at the old point instead.
+				s.converged = s.small(&d) && lambda <= 1e-3
 			}
 			if !accepted {
 				lambda *= 10
@@ -303,6 +357,45 @@ func (s *sysSolver) lm(maxIter int) {
 		}
 	}
 	s.evaluate(s.x, s.e)
+}
+
+// latencyStarts are the offsets from the configured latencies from which
+// the fit starts, seconds: the cost has local minima in the latency a few
+// milliseconds apart (the odometry's velocity is piecewise constant over
+// its intervals, with noise), so one start can stop in the wrong one.
+var latencyStarts = []float64{0, 0.02, 0.04, 0.06, 0.08, 0.1, 0.12, 0.14, 0.16, 0.18, 0.2}
+
+// startLatency fits from each of latencyStarts (every sensor's latency
+// moved alike) with Huber's constant k and keeps the start whose fit has
+// the smallest robust scale (the median normalised NIS).
+func (s *sysSolver) startLatency(k float64) {
+	var lat []int
+	for _, i := range s.m.latency {
+		if i >= 0 {
+			lat = append(lat, i)
+		}
+	}
+	if len(lat) == 0 {
+		return
+	}
+	x0 := slices.Clone(s.x)
+	best, bestS2 := slices.Clone(s.x), math.Inf(1)
+	for _, d := range latencyStarts {
+		copy(s.x, x0)
+		for _, i := range lat {
+			s.x[i] += d
+		}
+		s.evaluate(s.x, s.e)
+		s.reweight(k, true)
+		s.buildBlocks(s.x)
+		s.lm(20)
+		s.reweight(k, true)
+		if s.s2 < bestS2 {
+			bestS2 = s.s2
+			copy(best, s.x)
+		}
+	}
+	copy(s.x, best)
 }
 
 // small says whether the step d is negligible: no global parameter moved
@@ -323,7 +416,7 @@ func (s *sysSolver) small(d *mat.VecDense) bool {
 // reweight sets each fix's weight from its NIS at the last evaluation
 // (FitSystematic: Huber's weight with a robust scale, gross errors
 // rejected) and returns the largest change of a weight.
-func (s *sysSolver) reweight(k float64) float64 {
+func (s *sysSolver) reweight(k float64, reject bool) float64 {
 	var norm []float64
 	for i := range s.e {
 		if s.ok[i] {
@@ -338,7 +431,7 @@ func (s *sysSolver) reweight(k float64) float64 {
 		if s.ok[i] {
 			r := s.nis(i) / s.s2
 			switch {
-			case r > chi2Quantile(0.9999, s.dim[i]):
+			case reject && r > chi2Quantile(0.9999, s.dim[i]):
 				s.outliers++
 			case r <= k*k:
 				w = 1
@@ -352,14 +445,30 @@ func (s *sysSolver) reweight(k float64) float64 {
 	return change
 }
 
+// nis is fix i's NIS against its marginal covariance, its own (whitened:
+// I) plus the drift since its segment's anchor.
 func (s *sysSolver) nis(i int) float64 {
-	var v float64
-	for a := range s.dim[i] {
-		v += s.e[i][a] * s.e[i][a]
+	d := s.dim[i]
+	c := mat.NewSymDense(d, nil)
+	for a := range d {
+		for b := a; b < d; b++ {
+			v := s.drift[i][a*3+b]
+			if a == b {
+				v++
+			}
+			c.SetSym(a, b, v)
+		}
 	}
-	return v
+	var ch mat.Cholesky
+	if !ch.Factorize(c) {
+		return math.Inf(1)
+	}
+	var y mat.VecDense
+	if ch.SolveVecTo(&y, mat.NewVecDense(d, s.e[i][:d])) != nil {
+		return math.Inf(1)
+	}
+	return mat.Dot(&y, mat.NewVecDense(d, s.e[i][:d]))
 }
-
 
 func chi2Quantile(p float64, d int) float64 {
 	return distuv.ChiSquared{K: float64(d)}.Quantile(p)
@@ -369,22 +478,33 @@ func chi2Median(d int) float64 { return chi2Quantile(0.5, d) }
 
 // solve runs the re-weighted fits until the weights settle, or until a
 // re-weighting moves no global parameter by more than a hundredth of its
-// bound (a fix on the edge of rejection can flip back and forth).
+// bound (a fix on the edge of rejection can flip back and forth). Huber's
+// constant starts at 8 and halves down to HuberK: down-weighted at once,
+// the fixes that show a parameter far from its configured value (a late
+// stamp shows in the turns) would be the ones left out, and the fit would
+// stop short of the solution.
 func (s *sysSolver) solve() {
+	k := math.Max(8, s.opt.HuberK)
+	s.startLatency(k)
 	s.evaluate(s.x, s.e)
-	s.reweight(s.opt.HuberK)
+	s.reweight(k, true)
+	s.buildBlocks(s.x)
 	prev := make([]float64, s.ng)
-	for range 12 {
+	for range 16 {
 		copy(prev, s.x[:s.ng])
 		s.lm(60)
-		if s.reweight(s.opt.HuberK) < 1e-3 {
-			break
+		last := k == s.opt.HuberK
+		k = math.Max(k/2, s.opt.HuberK)
+		ch := s.reweight(k, true)
+		s.buildBlocks(s.x)
+		if !last {
+			continue
 		}
 		var moved float64
 		for j, p := range s.m.params {
 			moved = math.Max(moved, math.Abs(s.x[j]-prev[j])/p.Bound)
 		}
-		if moved < 0.01 {
+		if ch < 1e-3 || moved < 0.01 {
 			break
 		}
 	}
@@ -393,55 +513,40 @@ func (s *sysSolver) solve() {
 // covariances returns the model covariance s2 N^-1 and the segment-robust
 // sandwich of the global parameters (ng x ng), at the solution.
 func (s *sysSolver) covariances() (model, robust *mat.Dense, s2 float64) {
-	m := s.m
+	ng := s.ng
 	s.evaluate(s.x, s.e)
 	s.jacobian(s.x)
-	nm, _ := s.normal()
-	var ch mat.Cholesky
-	inv := mat.NewSymDense(s.p, nil)
-	if !ch.Factorize(nm) || ch.InverseTo(inv) != nil {
-		nan := mat.NewDense(s.ng, s.ng, nil)
-		for j := range s.ng {
-			nan.Set(j, j, math.Inf(1))
-		}
-		return nan, nan, math.NaN()
-	}
-	var rss, dof float64
-	ng, cols := s.ng, s.ng+3
-	nseg := len(m.segStart)
+	nseg := len(s.blocks)
 	scores := make([][]float64, nseg)
 	for k := range scores {
 		scores[k] = make([]float64, s.p)
 	}
-	for i := range m.fixes {
-		if !s.ok[i] || s.w[i] == 0 {
-			continue
+	nm, _ := s.normal(scores)
+	var ch mat.Cholesky
+	inv := mat.NewSymDense(s.p, nil)
+	if !ch.Factorize(nm) || ch.InverseTo(inv) != nil {
+		bad := mat.NewDense(ng, ng, nil)
+		for j := range ng {
+			bad.Set(j, j, math.Inf(1))
 		}
-		seg := m.fixes[i].seg
-		for r := range s.dim[i] {
-			rss += s.w[i] * s.e[i][r] * s.e[i][r]
-			dof++
-			row := s.jac[(i*3+r)*cols : (i*3+r+1)*cols]
-			for a := range ng {
-				scores[seg][a] += s.w[i] * row[a] * s.e[i][r]
-			}
-			for c := range 3 {
-				scores[seg][ng+3*seg+c] += s.w[i] * row[ng+c] * s.e[i][r]
-			}
+		return bad, bad, math.NaN()
+	}
+	var rows int
+	for _, b := range s.blocks {
+		if b.ok {
+			rows += b.rows
 		}
 	}
-	s2 = rss / math.Max(dof-float64(s.p), 1)
+	s2 = (s.blockCost(s.e)) / math.Max(float64(rows-s.p), 1)
 	model = mat.NewDense(ng, ng, nil)
 	for a := range ng {
 		for b := range ng {
 			model.Set(a, b, s2*inv.At(a, b))
 		}
 	}
-	// Sandwich over the segments, global rows of N^-1 only.
-	rows := inv.SliceSym(0, s.p)
-	var left mat.Dense
-	left.CloneFrom(rows)
-	sub := left.Slice(0, ng, 0, s.p)
+	var full mat.Dense
+	full.CloneFrom(inv)
+	sub := full.Slice(0, ng, 0, s.p)
 	meat := mat.NewSymDense(s.p, nil)
 	for _, g := range scores {
 		meat.SymRankOne(meat, 1, mat.NewVecDense(s.p, g))

@@ -1,6 +1,9 @@
 package calib
 
 import (
+	"os"
+	"strconv"
+	"fmt"
 	"testing"
 
 	"reckon.example/fusion"
@@ -48,5 +51,29 @@ func TestSystematicExplore(t *testing.T) {
 	t.Logf("fixes %d outliers %d segs %d s2 %.3f its %d conv %v", fit.Fixes, fit.Outliers, fit.Segments, fit.Sigma2, fit.Iterations, fit.Converged)
 	for _, p := range fit.Params {
 		t.Logf("%-40s conf %9.5f fit %9.5f se %.5f det %v %s", p.Name, p.Configured, p.Fitted, p.StdErr, p.Determined, p.Why)
+	}
+}
+
+func TestSystematicMCExplore(t *testing.T) {
+	segS, _ := strconv.ParseFloat(os.Getenv("SEG"), 64)
+	late, _ := strconv.ParseFloat(os.Getenv("LATE"), 64)
+	ws, _ := strconv.ParseFloat(os.Getenv("WS"), 64)
+	for seed := uint64(1); seed <= 10; seed++ {
+		sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: seed, DurationS: 150, OutlierFraction: 0.05,
+			Errors: fusiontest.Errors{WheelScales: []float64{0, ws}, CameraStampLateNs: int64(late * 1e9)}}
+		r := simulateSys(sc)
+		if os.Getenv("INIT") != "" {
+			r.cfg.Sensors[0].LatencyNs = int64(late * 1e9)
+		}
+		fit, err := FitSystematic(r.cfg, r.odo, r.fixes, SystematicOptions{SegmentS: segS})
+		if err != nil {
+			t.Fatal(err)
+		}
+		truth := []float64{1, 1 / (1 + ws), 1, 0.15, 0, 0, late}
+		s := ""
+		for j, p := range fit.Params {
+			s += fmt.Sprintf(" %+.2f(%.4f)", (p.Fitted-truth[j])/p.StdErr, p.StdErr)
+		}
+		t.Logf("seed %d its %d s2 %.2f:%s", seed, fit.Iterations, fit.Sigma2, s)
 	}
 }

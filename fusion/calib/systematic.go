@@ -86,7 +86,7 @@ type SystematicOptions struct {
 
 func (o *SystematicOptions) defaults() {
 	if o.SegmentS <= 0 {
-		o.SegmentS = 20
+		o.SegmentS = 10
 	}
 	if o.HuberK <= 0 {
 		o.HuberK = 1.345

@@ -4,6 +4,8 @@ import (
 	"math"
 	"slices"
 
+	"gonum.org/v1/gonum/blas"
+	"gonum.org/v1/gonum/blas/blas64"
 	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat/distuv"
 
@@ -143,12 +145,9 @@ func (s *sysSolver) blockCost(e [][3]float64) float64 {
 		if b.rows == 0 || !b.ok {
 			continue
 		}
-		v := s.gather(b, e)
-		var y mat.VecDense
-		if err := y.SolveVec(&b.l, v); err != nil {
-			return math.Inf(1)
-		}
-		cost += mat.Dot(&y, &y)
+		y := s.gather(b, e)
+		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), y.RawVector())
+		cost += mat.Dot(y, y)
 	}
 	return cost
 }
@@ -263,15 +262,16 @@ func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
 				jb.SetRow(b.off[n]+r, s.jac[(i*3+r)*cols:(i*3+r+1)*cols])
 			}
 		}
-		var y mat.Dense
-		var ye mat.VecDense
-		if y.Solve(&b.l, jb) != nil || ye.SolveVec(&b.l, s.gather(b, s.e)) != nil {
-			continue
-		}
+		// Whitened by the block's factor (plain triangular solves: the
+		// factor is known to be regular).
+		y := jb
+		ye := s.gather(b, s.e)
+		blas64.Trsm(blas.Left, blas.NoTrans, 1, b.l.RawTriangular(), y.RawMatrix())
+		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), ye.RawVector())
 		var jtj mat.Dense
 		var jte mat.VecDense
-		jtj.Mul(y.T(), &y)
-		jte.MulVec(y.T(), &ye)
+		jtj.Mul(y.T(), y)
+		jte.MulVec(y.T(), ye)
 		for a := range cols {
 			gr.SetVec(idx[a], gr.AtVec(idx[a])+jte.AtVec(a))
 			if scores != nil {
@@ -363,7 +363,7 @@ func (s *sysSolver) lm(maxIter int) {
 // the fit starts, seconds: the cost has local minima in the latency a few
 // milliseconds apart (the odometry's velocity is piecewise constant over
 // its intervals, with noise), so one start can stop in the wrong one.
-var latencyStarts = []float64{0, 0.02, 0.04, 0.06, 0.08, 0.1, 0.12, 0.14, 0.16, 0.18, 0.2}
+var latencyStarts = []float64{0, 0.04, 0.08, 0.12, 0.16}
 
 // startLatency fits from each of latencyStarts (every sensor's latency
 // moved alike) with Huber's constant k and keeps the start whose fit has

@@ -21,7 +21,10 @@
 //     total, or with CameraTailCore its core);
 //   - CameraContamination, CameraContaminationScale: a fraction of fixes
 //     with errors five times the stated standard deviation;
-//   - ForwardScale, TurnScale: odometry scale errors (3% to 15%).
+//   - ForwardScale, TurnScale: odometry scale errors (3% to 15%);
+//     WheelScales: each wheel's own;
+//   - CameraStampLateNs, CameraStampAtArrival: fixes stamped after their
+//     capture.
 //
 // Layout Commanded is a differential drive without encoders that reports
 // body steps from its commanded velocities, its truth departing from the

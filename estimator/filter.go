@@ -168,6 +168,17 @@ type Outcome struct {
 	// Weight is the robust weight w the update used (its noise was R / w);
 	// 1 without a robust model, 0 when gated.
 	Weight float64
+	// LogDetS is the natural log of the determinant of the raw innovation
+	// covariance S = H P H^T + R (R the measurement's own, before any robust
+	// re-weighting), in the log of the product of the components' units:
+	// with NIS, a Gaussian innovation's log-likelihood is
+	// -(LogDetS + NIS + Dim log 2pi) / 2.
+	LogDetS float64
+	// Whitened is L^-1 v, the innovation v whitened by the Cholesky factor
+	// L of the raw S (first Dim entries; dimensionless). Under a consistent
+	// filter its components are independent standard normals, white in
+	// time (Mehra 1970); NIS is its squared length.
+	Whitened [3]float64
 }
 
 // Filter is the extended Kalman filter. The zero value is not usable; make
@@ -474,7 +485,8 @@ func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u 
 // one that fails with an error, leaves the filter unchanged. With a robust
 // model the update uses the noise R / w, w the model's weight of the raw
 // NIS (DEVELOPERS.md, "Design: Measurement updates"). Bias states are
-// consider states: their gain rows are zero. The update is in Joseph form,
+// consider states: their gain rows are zero, and so are those of the states
+// m.Hold marks for this update. The update is in Joseph form,
 //
 //	P' = (I - K H) P (I - K H)^T + K R K^T,
 //
@@ -491,7 +503,10 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	if err := f.innovationCovariance(d); err != nil {
 		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, err)
 	}
-	out.NIS = f.nis(&v, d)
+	out.NIS = f.nis(&v, d, &out.Whitened)
+	for i := 0; i < d; i++ {
+		out.LogDetS += 2 * math.Log(f.l[i*measStride+i])
+	}
 	if !gate.Passes(out.NIS) {
 		out.Gated = true
 		return out, nil
@@ -509,7 +524,7 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 			return out, fmt.Errorf("re-weighted innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
 		}
 	}
-	f.gain(d)
+	f.gain(d, m.Hold)
 	return out, f.correct(m, &v)
 }
 
@@ -578,8 +593,7 @@ func (f *Filter) innovationCovariance(d int) error {
 }
 
 // nis returns v^T S^-1 v from the factor of S in f.l.
-func (f *Filter) nis(v *[3]float64, d int) float64 {
-	var y [3]float64
+func (f *Filter) nis(v *[3]float64, d int, y *[3]float64) float64 {
 	cholForward(f.l[:], d, measStride, v[:], y[:])
 	var q float64
 	for i := 0; i < d; i++ {
@@ -589,12 +603,12 @@ func (f *Filter) nis(v *[3]float64, d int) float64 {
 }
 
 // gain keeps P H^T in f.pht and replaces f.k by K = P H^T S^-1, solving
-// S K_i^T = PHt_i^T row by row; the rows of consider states are zero
-// (Schmidt 1966).
-func (f *Filter) gain(d int) {
+// S K_i^T = PHt_i^T row by row; the rows of consider states, and of the
+// states hold marks, are zero (Schmidt 1966).
+func (f *Filter) gain(d int, hold uint16) {
 	f.pht = f.k
 	for i := 0; i < f.st.n; i++ {
-		if f.layout.consider(i) {
+		if f.layout.consider(i) || hold&(1<<i) != 0 {
 			f.k[i*3], f.k[i*3+1], f.k[i*3+2] = 0, 0, 0
 			continue
 		}

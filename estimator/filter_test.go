@@ -353,6 +353,11 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		m, n := c.m, c.n
 		f := randomFilter(t, rng, n)
 		st := f.State()
+		if n > 3 && rng.IntN(2) == 0 {
+			// A state held for this update (Measurement.Hold): a consider
+			// state for once, its gain row zero (Schmidt 1966).
+			m.Hold = 1 << (3 + rng.IntN(n-3))
+		}
 		z0, Hs, _ := m.Predicted(st.x[:n])
 		d := m.Kind.Dim()
 		if m.Robust.Kind != RobustNone {
@@ -378,6 +383,7 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		pht.Mul(P, H.T())
 		S.Mul(H, &pht)
 		S.Add(&S, R)
+		logDetS, _ := mat.LogDet(&S) // of the raw S, before re-weighting
 		if err := Sinv.Inverse(&S); err != nil {
 			t.Fatal(err)
 		}
@@ -409,6 +415,13 @@ func TestUpdateMatchesGonum(t *testing.T) {
 				}
 			}
 		}
+		for i := 0; i < n; i++ {
+			if m.Hold&(1<<i) != 0 {
+				for j := 0; j < d; j++ {
+					K.Set(i, j, 0)
+				}
+			}
+		}
 		var kh mat.Dense
 		kh.Mul(&K, H)
 		ikh.Sub(eye(n), &kh)
@@ -425,6 +438,13 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		}
 		if math.Abs(out.NIS-nis) > 1e-9*math.Max(1, nis) || math.Abs(out.Weight-w) > 1e-12 {
 			t.Errorf("%s/%d: NIS %g weight %g, gonum %g and %g", m.Kind, n, out.NIS, out.Weight, nis, w)
+		}
+		var white float64
+		for i := 0; i < d; i++ {
+			white += out.Whitened[i] * out.Whitened[i]
+		}
+		if math.Abs(out.LogDetS-logDetS) > 1e-9*math.Max(1, math.Abs(logDetS)) || math.Abs(white-nis) > 1e-9*math.Max(1, nis) {
+			t.Errorf("%s/%d: log det S %g, |whitened|^2 %g; gonum %g and NIS %g", m.Kind, n, out.LogDetS, white, logDetS, nis)
 		}
 		if m.Robust.Kind != RobustNone && !(w < 1) {
 			t.Errorf("%s/%d: the robust weight did not bite (NIS %g)", m.Kind, n, nis)

@@ -99,6 +99,13 @@ type Measurement struct {
 	Bias [3]int
 	// Robust is the robust weighting of the update (the zero value: none).
 	Robust Robust
+	// Hold marks states (bit i for state i) that this update leaves where
+	// they are: their gain rows are zero, as a consider state's (Schmidt
+	// 1966), and the Joseph form keeps the covariance right for that gain.
+	// fusion holds the odometry scales when the turns and distances since
+	// the last update are within the odometry's own noise (DEVELOPERS.md,
+	// "Design: State").
+	Hold uint16
 }
 
 // measStride is the stride of measurement-sized matrices.

@@ -66,11 +66,17 @@ func (r *Robot) checkpointOf(c *cpSlot) checkpoint {
 // copying only the states in use.
 func (r *Robot) loadInto(cp *checkpoint, c *cpSlot) {
 	cp.offsetReady = c.offsetReady
+	r.loadEst(&cp.est, c)
+}
+
+// loadEst sets dst to the estimate c names (the zero State for none),
+// copying only the states in use.
+func (r *Robot) loadEst(dst *estimator.State, c *cpSlot) {
 	if c.Slot == 0 {
-		cp.est = estimator.State{}
+		*dst = estimator.State{}
 		return
 	}
-	cp.est.SetPacked(r.n, r.layout.Angles(), r.slotData(c.Slot))
+	dst.SetPacked(r.n, r.layout.Angles(), r.slotData(c.Slot))
 }
 
 // setCheckpoint stores the checkpoint cp (of the robot's state size, or

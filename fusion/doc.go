@@ -6,8 +6,10 @@
 // # Overview
 //
 // A Robot is made from a Config with New. Samples go in through
-// AddOdometry, AddHeading, AddFix and Reseed; each returns a Result with
-// the sample's arrival sequence number, its Verdict and the events it caused.
+// AddOdometry, AddHeading, AddFix, Reseed and StartRun (a controller that
+// restarted begins a new run, its clock starting again); each returns a
+// Result with the sample's arrival sequence number, its Verdict and the
+// events it caused.
 // Pose, PoseAt and Stats read the estimate back.
 //
 // Samples may arrive in any order. The robot keeps every input of the last
@@ -24,7 +26,7 @@
 // robot.go (the Robot and its inputs), odometry.go (odometry to body
 // steps), imu.go (IMU modes, headings, the offset's initialisation and the
 // IMU gate), fixes.go (fixes to measurements and their verdicts),
-// reseed.go, window.go (the history window with the hold queue),
+// reseed.go, run.go (runs: a controller restart), window.go (the history window with the hold queue),
 // recovery.go (move recovery), trust.go, stats.go, query.go (Pose, PoseAt),
 // smooth.go, snapshot.go and snapwire.go (the versioned snapshot),
 // labels.go (one label per enum value), config.go, sample.go.

@@ -129,9 +129,61 @@ func (r *Robot) applyMeas(e *entry) error {
 	if e.initialised {
 		return r.initOffset(e)
 	}
+	e.meas.Hold = r.scaleHold()
 	var err error
 	e.out, err = r.f.Update(&e.meas, r.gateFor(e))
 	return err
+}
+
+// excitedAt is the least excitation, in the odometry's own standard
+// deviations, at which an update may move an odometry scale.
+const excitedAt = 3.0
+
+// scaleHold returns the odometry scales that the next update must leave
+// where they are (estimator.Measurement.Hold): those the motion since the
+// last updates has not excited beyond the odometry's own noise
+// (DEVELOPERS.md, "Design: State"). A scale s enters the pose through the
+// reported step, c = P[pose, s] / P[s, s] is the reported motion it has
+// scaled (the accumulated turn for the turn scale, discounted by the
+// updates since), and e = c^T P[pose]^-1 c compares that motion with the
+// pose's uncertainty, which bounds the odometry noise it accumulated
+// with. Below excitedAt^2 the motion is mostly that noise, and an update
+// would regress the noise on itself and pull the scale towards 0 (errors
+// in variables); the relative pull is at most 1/e.
+func (r *Robot) scaleHold() uint16 {
+	l := &r.layout
+	fi := l.ForwardScale()
+	if fi < 0 {
+		return 0
+	}
+	st := r.f.State()
+	var pose [9]float64
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			pose[a*3+b] = st.At(a, b)
+		}
+	}
+	var hold uint16
+	// The forward scale scales travel: its motion is in position.
+	v := st.Var(fi)
+	c := [3]float64{st.At(0, fi) / v, st.At(1, fi) / v}
+	pos := [9]float64{st.At(0, 0), st.At(0, 1), 0, st.At(1, 0), st.At(1, 1), 0, 0, 0, 1}
+	for a := 0; a < 2; a++ {
+		for b := 0; b < 2; b++ {
+			pos[a*3+b] -= c[a] * c[b] * v
+		}
+	}
+	if e, ok := estimator.Mahalanobis(&c, &pos); !ok || e < excitedAt*excitedAt {
+		hold |= 1 << fi
+	}
+	// The turn scale scales turns: its motion is in heading.
+	ti := l.TurnScale()
+	v = st.Var(ti)
+	u := st.At(2, ti) / v
+	if rest := st.Var(2) - u*u*v; !(u*u >= excitedAt*excitedAt*rest) {
+		hold |= 1 << ti
+	}
+	return hold
 }
 
 // landmarkMeasurement fills m with a landmark fix's range and/or bearing.

@@ -115,6 +115,20 @@ func fuzzSamples(t *testing.T, data []byte) {
 					stamp += dt
 				}
 			case 6:
+				if in.byte()%4 == 0 {
+					// A controller restart: a run start (the boot id and
+					// number may be the current ones: refused), then the
+					// new clock from 0.
+					run := r.Run()
+					res = r.StartRun(RunStart{BootID: string('a' + rune(in.byte()%3)), Run: uint64(in.byte() % 4)})
+					if res.Verdict == VerdictApplied {
+						if r.Run() != run+1 {
+							t.Fatalf("run %d after a run start in run %d", r.Run(), run)
+						}
+						stamp = 0
+					}
+					break
+				}
 				p, err := r.PoseAt(stamp + dt)
 				if err == nil && (math.IsNaN(p.Pose.X) || math.IsNaN(p.Cov[0])) {
 					t.Fatalf("PoseAt gave NaN: %+v", p)

@@ -39,6 +39,7 @@ var (
 		{EventTrustLost, "trust_lost", 5},
 		{EventTrustRegained, "trust_regained", 6},
 		{EventReseeded, "reseeded", 7},
+		{EventRunStarted, "run_started", 8},
 	}
 	// trustTable has one row per reason bit; the wire calls them
 	// DISTRUST_REASON_*.
@@ -62,6 +63,7 @@ var (
 		{InputHeading, "heading", 2},
 		{InputFix, "fix", 3},
 		{InputReseed, "reseed", 4},
+		{InputRunStart, "run_start", 5},
 	}
 	consistencyTable = [...]Label[ConsistencyVerdict]{
 		{Consistent, "consistent", 1},

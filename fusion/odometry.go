@@ -139,7 +139,7 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 		return badf("odometry needs exactly one of travel_m, counts and step, got %d", set)
 	}
 	if r.started && o.StampNs <= r.newest {
-		return fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d", ErrTimeBackwards, o.StampNs, r.newest)
+		return fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d%s", ErrTimeBackwards, o.StampNs, r.newest, r.restartHint(o.StampNs))
 	}
 	if o.IMUHeadingRad != nil {
 		if r.cfg.IMU == IMUNone {
@@ -183,7 +183,7 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 		return fmt.Errorf("%w: start_ns %d is not before stamp_ns %d", ErrTimeBackwards, o.StartNs, o.StampNs)
 	}
 	if r.started && o.StartNs < r.newest {
-		return fmt.Errorf("%w: interval starts at %d, before the newest odometry %d", ErrTimeBackwards, o.StartNs, r.newest)
+		return fmt.Errorf("%w: interval starts at %d, before the newest odometry %d%s", ErrTimeBackwards, o.StartNs, r.newest, r.restartHint(o.StartNs))
 	}
 	return nil
 }

@@ -262,8 +262,8 @@ func TestRecoveryWithCalibration(t *testing.T) {
 		p := r.Pose()
 		nees, err := estimator.PoseNEES(p.Pose, &p.Cov, last.Truth)
 		// A recovery before the bump is no fault of recovery: the estimate
-		// was wrong (the turn scale's estimate drifts on straights, see
-		// DEVELOPERS.md, "Design: State"), and the fixes said so.
+		// was wrong (a scale estimate can be off, see DEVELOPERS.md,
+		// "Design: State"), and the fixes said so.
 		if after != 1 || err != nil || nees > 16.27 {
 			t.Errorf("%s seed %d: %d recoveries after the bump, %d before; final NEES %.2f (%v)", sc.Layout, sc.Seed, after, before, nees, err)
 		}

@@ -25,6 +25,7 @@ const (
 	RefusalUnknownSensor                    // ErrUnknownSensor
 	RefusalNotConfigured                    // ErrNoIMU: the configuration does not take the sample
 	RefusalNumericalFault                   // an update the filter could not make (covariance not positive definite, degenerate)
+	RefusalRunOutOfOrder                    // ErrRunOutOfOrder: a run start that does not start the next run
 )
 
 var refusalTable = [...]Label[Refusal]{
@@ -38,6 +39,7 @@ var refusalTable = [...]Label[Refusal]{
 	{RefusalUnknownSensor, "unknown_sensor", 8},
 	{RefusalNotConfigured, "not_configured", 9},
 	{RefusalNumericalFault, "numerical_fault", 10},
+	{RefusalRunOutOfOrder, "run_out_of_order", 13},
 }
 
 // RefusalLabels returns the label table of refusals (a copy). The wire enum
@@ -75,6 +77,8 @@ func RefusalOf(err error) Refusal {
 		return RefusalUnknownSensor
 	case errors.Is(err, ErrNoIMU):
 		return RefusalNotConfigured
+	case errors.Is(err, ErrRunOutOfOrder):
+		return RefusalRunOutOfOrder
 	case errors.Is(err, estimator.ErrNotPositiveDefinite) && !errors.Is(err, ErrBadSample),
 		errors.Is(err, estimator.ErrDegenerate), errors.Is(err, estimator.ErrUnobservable):
 		return RefusalNumericalFault

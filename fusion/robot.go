@@ -46,11 +46,16 @@ type Robot struct {
 	rows       []estimator.Row
 	travel     []float64
 
-	seq   uint64
-	steps *stepCollector // nil unless CollectSteps was called
-	stats statsState
-	trust trustState
-	cands []candidate
+	seq uint64
+	// run counts the run starts taken (Run is run+1); bootID is the
+	// current run's boot id (run.go).
+	run    uint64
+	bootID string
+	steps  *stepCollector       // nil unless CollectSteps was called
+	innov  *innovationCollector // nil unless CollectInnovations was called
+	stats  statsState
+	trust  trustState
+	cands  []candidate
 	// slip compares the IMU's turn with the wheels' (slip.go); turnGate
 	// caches the comparison's 1-dof gate.
 	slip     slipState

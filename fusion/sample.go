@@ -40,6 +40,8 @@ const (
 	InputFix
 	// InputReseed: a pose given by hand (Reseed).
 	InputReseed
+	// InputRunStart: the start of a new run (StartRun).
+	InputRunStart
 )
 
 // Heading is one IMU heading sample (IMUAbsolute mode).
@@ -157,12 +159,15 @@ const (
 	EventTrustLost
 	EventTrustRegained
 	EventReseeded
+	EventRunStarted
 )
 
 // Event is a notable moment: a fix refused (Value is its NIS), a suspected
 // slip (Value is the residual chi-square), a gap in odometry (Value is its
 // length in seconds), a move recovered (Value is the correction's length in
-// metres), trust lost or regained (Detail lists the reasons), a reseed.
+// metres), trust lost or regained (Detail lists the reasons), a reseed, a
+// new run started (Value is its number, Detail names its boot; StampNs is
+// 0, the new clock's stamps start with the inputs that follow).
 type Event struct {
 	Kind     EventKind
 	StampNs  int64

@@ -227,3 +227,77 @@ func TestSmootherBeatsFilter(t *testing.T) {
 }
 
 func sq(v float64) float64 { return v * v }
+
+// TestAppendStepsEqualsTakeSteps: collecting a run's steps with
+// AppendSteps into one reused buffer gives the same steps, bit for bit, as
+// TakeSteps.
+func TestAppendStepsEqualsTakeSteps(t *testing.T) {
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 76, DurationS: 30, OutlierFraction: 0.05}
+	s := fusiontest.New(sc)
+	taken, _ := fusion.New(s.Config())
+	appended, _ := fusion.New(s.Config())
+	taken.CollectSteps()
+	appended.CollectSteps()
+	var want, got []fusion.Step
+	buf := make([]fusion.Step, 0, 64)
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		fusiontest.Feed(taken, &in)
+		want = append(want, taken.TakeSteps()...)
+		fusiontest.Feed(appended, &in)
+		buf = appended.AppendSteps(buf[:0])
+		got = append(got, buf...)
+	}
+	want = append(want, taken.FinishSteps()...)
+	got = append(got, appended.FinishSteps()...)
+	if len(got) != len(want) || len(want) < 5000 {
+		t.Fatalf("%d steps appended, %d taken", len(got), len(want))
+	}
+	for i := range want {
+		if got[i] != want[i] {
+			t.Fatalf("step %d differs: appended %+v, taken %+v", i, got[i].Post, want[i].Post)
+		}
+	}
+}
+
+// TestStepCopyFrom: CopyFrom onto a step that held another of the same
+// size, or of another size, or nothing, gives the step itself.
+func TestStepCopyFrom(t *testing.T) {
+	collect := func(sc fusiontest.Scenario) []fusion.Step {
+		s := fusiontest.New(sc)
+		r, _ := fusion.New(s.Config())
+		r.CollectSteps()
+		for i := 0; i < 400; i++ {
+			in, ok := s.Next()
+			if !ok {
+				break
+			}
+			fusiontest.Feed(r, &in)
+		}
+		return r.FinishSteps()
+	}
+	four := collect(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 3, DurationS: 5})
+	three := collect(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 3, DurationS: 5})
+	if four[0].Pred.Size() != 4 || three[0].Pred.Size() != 3 {
+		t.Fatalf("state sizes %d and %d, want 4 and 3", four[0].Pred.Size(), three[0].Pred.Size())
+	}
+	for _, c := range []struct {
+		name     string
+		dst, src fusion.Step
+	}{
+		{"same size", four[10], four[len(four)-1]},
+		{"start step", four[len(four)-1], four[0]},
+		{"smaller onto larger", four[10], three[20]},
+		{"larger onto smaller", three[20], four[10]},
+		{"onto the zero step", fusion.Step{}, four[10]},
+	} {
+		dst := c.dst
+		dst.CopyFrom(&c.src)
+		if dst != c.src {
+			t.Errorf("%s: the copy differs", c.name)
+		}
+	}
+}

@@ -16,9 +16,16 @@ import (
 // their bias states and robust weighting, recovery candidates carried by
 // odometry (landmark fixes among them), reseeds that keep the IMU offset,
 // the fix_disagrees trust state and the state of the IMU's slip comparison.
+// Version 6: the run number and boot id (StartRun); RestoreSnapshot also
+// reads version 5, a snapshot of a robot's first run.
 // A change of layout or meaning bumps it, with a new golden file in
 // testdata/snapshots.
-const SnapshotVersion = 5
+const SnapshotVersion = 6
+
+// readsVersion tells whether RestoreSnapshot reads snapshots of version v:
+// this one, and 5, which differs only by lacking the run fields (a robot
+// that never started a second run).
+func readsVersion(v uint64) bool { return v == SnapshotVersion || v == 5 }
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -81,6 +88,8 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	if r.trust.bias.score != nil {
 		e.message(32, func(e *wenc) { encBias(e, &r.trust.bias) })
 	}
+	e.uint(33, r.run)
+	e.string(34, r.bootID)
 	return e.b, nil
 }
 
@@ -97,7 +106,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		if num == 1 {
 			version = d.uint(num)
-		} else if version != SnapshotVersion {
+		} else if !readsVersion(version) {
 			return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrSnapshot, version, SnapshotVersion)
 		}
 		switch num {
@@ -111,7 +120,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	if d.err != nil {
 		return nil, d.err
 	}
-	if version != SnapshotVersion {
+	if !readsVersion(version) {
 		return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrSnapshot, version, SnapshotVersion)
 	}
 	if filter.Size() != r.n {
@@ -191,6 +200,10 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.slip.varSum = d.double(num)
 	case 32:
 		d.message(num, func(d *wdec) { decBias(d, &r.trust.bias) })
+	case 33:
+		r.run = d.uint(num)
+	case 34:
+		r.bootID = d.string(num)
 	default:
 		d.fail("unknown field %d", num)
 	}

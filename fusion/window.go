@@ -245,6 +245,9 @@ func (r *Robot) dropFront(k int) {
 	if r.steps != nil {
 		r.steps.collect(r, k)
 	}
+	if r.innov != nil {
+		r.innov.collect(r, k)
+	}
 	for i := range live[:k] {
 		if live[i].failed {
 			r.setErr(live[i].seq, nil)

@@ -30,8 +30,9 @@ func signal(c chan struct{}) {
 	}
 }
 
-// put adds a request, waiting while a full batch waits to be taken.
-func (b *inbox) put(ctx context.Context, r *arrivedRequest) error {
+// put adds a request, waiting while a full batch waits to be taken. It
+// signals the taker when wake says so and the request is the first waiting.
+func (b *inbox) put(ctx context.Context, r *arrivedRequest, wake bool) error {
 	b.mu.Lock()
 	for len(b.pending) >= maxBatch {
 		b.mu.Unlock()
@@ -45,7 +46,7 @@ func (b *inbox) put(ctx context.Context, r *arrivedRequest) error {
 	b.pending = append(b.pending, r)
 	first := len(b.pending) == 1
 	b.mu.Unlock()
-	if first {
+	if first && wake {
 		signal(b.ready)
 	}
 	return nil
@@ -59,33 +60,43 @@ func (b *inbox) end(err error) {
 	signal(b.ready)
 }
 
-// take waits for requests and returns every one waiting, in arrival order;
-// once they are all taken after the end, it returns the end's error. prev,
-// the batch take returned last, is reused: the caller is done with it. A
-// signal on wake (nil: none) returns an empty batch, so that the caller
-// can send what else it has.
-func (b *inbox) take(ctx context.Context, prev []*arrivedRequest, wake <-chan struct{}) ([]*arrivedRequest, error) {
+// takeNow returns every request waiting, in arrival order, without
+// waiting (none: an empty batch). prev, the batch takeNow returned last,
+// is reused: the caller is done with it.
+func (b *inbox) takeNow(prev []*arrivedRequest) []*arrivedRequest {
 	clear(prev)
+	b.mu.Lock()
+	if len(b.pending) == 0 {
+		b.mu.Unlock()
+		return prev[:0]
+	}
+	batch := b.pending
+	b.pending = prev[:0]
+	b.mu.Unlock()
+	signal(b.room)
+	return batch
+}
+
+// wait waits until requests wait to be taken, or a signal on wake (nil:
+// none) comes, and returns nil; once receiving has ended and nothing waits,
+// it returns the end's error.
+func (b *inbox) wait(ctx context.Context, wake <-chan struct{}) error {
 	for {
 		b.mu.Lock()
-		if len(b.pending) > 0 {
-			batch := b.pending
-			b.pending = prev[:0]
-			b.mu.Unlock()
-			signal(b.room)
-			return batch, nil
-		}
-		if err := b.ended; err != nil {
-			b.mu.Unlock()
-			return nil, err
-		}
+		n, ended := len(b.pending), b.ended
 		b.mu.Unlock()
+		if n > 0 {
+			return nil
+		}
+		if ended != nil {
+			return ended
+		}
 		select {
 		case <-b.ready:
 		case <-wake:
-			return prev[:0], nil
+			return nil
 		case <-ctx.Done():
-			return nil, ctx.Err()
+			return ctx.Err()
 		}
 	}
 }

@@ -18,7 +18,7 @@ func TestInbox(t *testing.T) {
 		for i := 0; i < n; i++ {
 			r := &arrivedRequest{}
 			r.ClientSequence = uint64(i)
-			if err := b.put(ctx, r); err != nil {
+			if err := b.put(ctx, r, true); err != nil {
 				t.Error(err)
 				return
 			}
@@ -28,14 +28,13 @@ func TestInbox(t *testing.T) {
 	var batch []*arrivedRequest
 	next := uint64(0)
 	for {
-		var err error
-		batch, err = b.take(ctx, batch, nil)
-		if err != nil {
+		if err := b.wait(ctx, nil); err != nil {
 			if err != io.EOF {
 				t.Fatal(err)
 			}
 			break
 		}
+		batch = b.takeNow(batch)
 		if len(batch) == 0 || len(batch) > maxBatch {
 			t.Fatalf("batch of %d", len(batch))
 		}
@@ -57,13 +56,13 @@ func TestInboxCancel(t *testing.T) {
 	ctx, cancel := context.WithCancel(context.Background())
 	full := newInbox()
 	for i := 0; i < maxBatch; i++ {
-		if err := full.put(ctx, &arrivedRequest{}); err != nil {
+		if err := full.put(ctx, &arrivedRequest{}, true); err != nil {
 			t.Fatal(err)
 		}
 	}
 	putErr, takeErr := make(chan error), make(chan error)
-	go func() { putErr <- full.put(ctx, &arrivedRequest{}) }()
-	go func() { _, err := newInbox().take(ctx, nil, nil); takeErr <- err }()
+	go func() { putErr <- full.put(ctx, &arrivedRequest{}, true) }()
+	go func() { takeErr <- newInbox().wait(ctx, nil) }()
 	time.Sleep(10 * time.Millisecond)
 	cancel()
 	for _, c := range []chan error{putErr, takeErr} {

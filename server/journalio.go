@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"os"
+	"sync"
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/journal"
@@ -27,6 +28,9 @@ type journalWriter interface {
 	flush() (complete int, err error)
 	Close() error
 	Remove() error
+	// SyncPoint is journal.Writer.SyncPoint: the segment being written and
+	// how many writes went in.
+	SyncPoint() (path string, writes uint64)
 }
 
 // osJournal is a *journal.Writer as a journalWriter.
@@ -48,36 +52,67 @@ func isNoSpace(err error) bool { return errors.Is(err, journal.ErrNoSpace) }
 // so what was acknowledged is no longer known to be on disk).
 func isBroken(err error) bool { return errors.Is(err, journal.ErrBroken) }
 
-// syncLatest fsyncs the robot's newest journal segment through a
-// descriptor of its own, so that the periodic fsync does not hold the
-// robot's lock: fsync makes the file's written data durable whichever
-// descriptor wrote it (POSIX fsync: "all modified data ... of the file"),
-// and the writer syncs a segment before it starts the next one. A journal
-// without segments (the robot was just deleted) has nothing to sync. A
-// failed fsync wraps journal.ErrBroken.
-func syncLatest(fsys journal.FS, dir, id string) error {
-	if fsys == nil {
-		fsys = journal.OS
-	}
-	segs, err := journal.SegmentsFS(fsys, dir, id)
-	if err != nil || len(segs) == 0 {
-		return err
-	}
-	f, err := fsys.OpenFile(segs[len(segs)-1], os.O_RDONLY, 0)
-	if errors.Is(err, os.ErrNotExist) {
+// syncer is a robot's periodic fsync, done through a descriptor of its
+// own so that it does not hold the robot's lock while the disk works:
+// fsync makes the file's written data durable whichever descriptor wrote
+// it (POSIX fsync: "all modified data ... of the file"), and the writer
+// syncs a segment before it starts the next one. It keeps the descriptor
+// open while the writer and its segment stay the same and syncs only when the writer
+// wrote since the last time, so that an idle robot costs nothing and a busy
+// one one fdatasync(2) an interval (journal.Datasync).
+type syncer struct {
+	mu     sync.Mutex
+	f      journal.File
+	path   string
+	by     journalWriter // the writer whose writes were counted
+	writes uint64
+}
+
+// sync makes what w wrote up to writes durable; path is w's segment
+// (journal.Writer.SyncPoint). A segment that is gone (the robot was just
+// deleted) has nothing to sync. A failed fsync wraps journal.ErrBroken.
+func (sy *syncer) sync(fsys journal.FS, w journalWriter, path string, writes uint64) error {
+	sy.mu.Lock()
+	defer sy.mu.Unlock()
+	if w == sy.by && path == sy.path && writes == sy.writes {
 		return nil
 	}
-	if err != nil {
-		return err
+	if w != sy.by || path != sy.path || sy.f == nil {
+		// Another writer (a rebuilt robot) may have completed a segment
+		// under the same name, a new file: open it again.
+		sy.closeLocked()
+		if fsys == nil {
+			fsys = journal.OS
+		}
+		f, err := fsys.OpenFile(path, os.O_RDONLY, 0)
+		if errors.Is(err, os.ErrNotExist) {
+			return nil
+		}
+		if err != nil {
+			return fmt.Errorf("%w: fsync of %s: %v", journal.ErrBroken, path, err)
+		}
+		sy.f, sy.path = f, path
 	}
-	err = f.Sync()
-	if cerr := f.Close(); err == nil {
-		err = cerr
+	if err := journal.Datasync(sy.f); err != nil {
+		sy.closeLocked()
+		return fmt.Errorf("%w: fsync of %s: %v", journal.ErrBroken, path, err)
 	}
-	if err != nil {
-		return fmt.Errorf("%w: fsync of %s: %v", journal.ErrBroken, segs[len(segs)-1], err)
-	}
+	sy.by, sy.writes = w, writes
 	return nil
+}
+
+// close closes the descriptor; the next sync opens the segment again.
+func (sy *syncer) close() {
+	sy.mu.Lock()
+	sy.closeLocked()
+	sy.mu.Unlock()
+}
+
+func (sy *syncer) closeLocked() {
+	if sy.f != nil {
+		sy.f.Close()
+	}
+	sy.f, sy.path, sy.by, sy.writes = nil, "", nil, 0
 }
 
 // openJournal wraps a new or resumed writer.

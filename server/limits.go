@@ -16,13 +16,17 @@ import (
 type Limits struct {
 	// MaxRobots bounds the robots of the server (1000; -max-robots).
 	MaxRobots int
-	// MaxStringBytes bounds session_id, sensor_id and landmark_id (128
-	// bytes; -max-string-bytes): a longer one is INVALID_ARGUMENT.
+	// MaxStringBytes bounds session_id, sensor_id, landmark_id and
+	// boot_id (128 bytes; -max-string-bytes): a longer one is
+	// INVALID_ARGUMENT.
 	MaxStringBytes int
 	// MaxWatchersPerRobot and MaxWatchers bound open Watch streams per
 	// robot (64; -max-watchers-per-robot) and in all (1024;
 	// -max-watchers): one more is RESOURCE_EXHAUSTED.
 	MaxWatchersPerRobot, MaxWatchers int
+	// MaxViewers bounds open live views (16; -max-viewers): one more is
+	// RESOURCE_EXHAUSTED.
+	MaxViewers int
 }
 
 // withDefaults returns l with its zero fields set to the defaults.
@@ -36,6 +40,7 @@ func (l Limits) withDefaults() Limits {
 	def(&l.MaxStringBytes, 128)
 	def(&l.MaxWatchersPerRobot, 64)
 	def(&l.MaxWatchers, 1024)
+	def(&l.MaxViewers, 16)
 	return l
 }
 
@@ -62,6 +67,9 @@ func (s *Server) checkLimits(r *robot, req *pb.IngestRequest) *limitError {
 	}
 	if id := fix.GetLandmark().GetLandmarkId(); len(id) > max {
 		return long("sample.fix.landmark.landmark_id", id)
+	}
+	if id := req.GetSample().GetRunStart().GetBootId(); len(id) > max {
+		return long("sample.run_start.boot_id", id)
 	}
 	return nil
 }

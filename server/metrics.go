@@ -26,6 +26,8 @@ type Metrics struct {
 	quarG    prometheus.Gauge
 	dups     prometheus.Counter
 	diverged prometheus.Counter
+	viewers  prometheus.Gauge
+	viewConf prometheus.Counter
 	perRobot robotVecs
 }
 
@@ -47,8 +49,11 @@ func NewMetrics() *Metrics {
 	m.quarG = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_robots_quarantined", Help: "Robots quarantined because their journal could not be restored or written."})
 	m.dups = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_inputs_duplicate_total", Help: "Retried inputs answered with their original verdict, not applied again."})
 	m.diverged = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_restore_outputs_differing_total", Help: "Journaled outputs of an older build that differ on replay by this build."})
+	m.viewers = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_viewers", Help: "Open live views (event streams of the live view page)."})
+	m.viewConf = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_view_updates_conflated_total",
+		Help: "Live view updates replaced by a newer one before their view took them (a slow or stuck page)."})
 	m.perRobot = newRobotVecs()
-	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged,
+	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged, m.viewers, m.viewConf,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
 	m.reg.MustRegister(m.perRobot.collectors()...)
 	return m
@@ -110,5 +115,17 @@ func (m *Metrics) duplicate() {
 func (m *Metrics) differing(n int) {
 	if m != nil {
 		m.diverged.Add(float64(n))
+	}
+}
+
+func (m *Metrics) views(n int) {
+	if m != nil {
+		m.viewers.Set(float64(n))
+	}
+}
+
+func (m *Metrics) viewConflated() {
+	if m != nil {
+		m.viewConf.Inc()
 	}
 }

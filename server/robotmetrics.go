@@ -15,6 +15,7 @@ type robotVecs struct {
 	trusted, position95, headingStd *prometheus.GaugeVec
 	nis                             *prometheus.GaugeVec
 	slips, gaps, held, journalLag   *prometheus.GaugeVec
+	run                             *prometheus.GaugeVec
 }
 
 func newRobotVecs() robotVecs {
@@ -30,12 +31,13 @@ func newRobotVecs() robotVecs {
 		slips:      g("reckon_robot_slips", "Wheel slips suspected since the robot was created (its statistics)."),
 		gaps:       g("reckon_robot_odometry_gaps", "Odometry gaps since the robot was created (its statistics)."),
 		held:       g("reckon_robot_held_inputs", "Inputs held now, waiting for odometry to reach their stamp."),
+		run:        g("reckon_robot_run", "The robot's current run, from 1: a controller restart (a run start) begins the next."),
 		journalLag: g("reckon_robot_journal_lag_seconds", "For the robot's last batch: seconds from taking its inputs to the end of their journal write (to the operating system; fsynced with it under -fsync each, else within the sync interval)."),
 	}
 }
 
 func (v robotVecs) collectors() []prometheus.Collector {
-	return []prometheus.Collector{v.trusted, v.position95, v.headingStd, v.nis, v.slips, v.gaps, v.held, v.journalLag}
+	return []prometheus.Collector{v.trusted, v.position95, v.headingStd, v.nis, v.slips, v.gaps, v.held, v.journalLag, v.run}
 }
 
 // robotGauges are one robot's series, looked up once; the robot's mutex
@@ -43,6 +45,7 @@ func (v robotVecs) collectors() []prometheus.Collector {
 type robotGauges struct {
 	trusted, position95, headingStd prometheus.Gauge
 	slips, gaps, held, journalLag   prometheus.Gauge
+	run                             prometheus.Gauge
 	nis                             map[string]prometheus.Gauge
 }
 
@@ -54,7 +57,8 @@ func (m *Metrics) robotGauges(name string) *robotGauges {
 	v := m.perRobot
 	return &robotGauges{trusted: v.trusted.WithLabelValues(name), position95: v.position95.WithLabelValues(name),
 		headingStd: v.headingStd.WithLabelValues(name), slips: v.slips.WithLabelValues(name), gaps: v.gaps.WithLabelValues(name),
-		held: v.held.WithLabelValues(name), journalLag: v.journalLag.WithLabelValues(name), nis: map[string]prometheus.Gauge{}}
+		held: v.held.WithLabelValues(name), journalLag: v.journalLag.WithLabelValues(name), run: v.run.WithLabelValues(name),
+		nis: map[string]prometheus.Gauge{}}
 }
 
 // forget removes a deleted robot's series.
@@ -88,6 +92,7 @@ func (s *Server) observeRobot(r *robot, pose *pb.FusedPose, lag time.Duration) {
 	g.slips.Set(float64(st.Slips))
 	g.gaps.Set(float64(st.Gaps))
 	g.held.Set(float64(st.Held))
+	g.run.Set(float64(r.fr.Run()))
 	if lag >= 0 {
 		g.journalLag.Set(lag.Seconds())
 	}

@@ -95,6 +95,7 @@ func TestRobotMetrics(t *testing.T) {
 		"reckon_robot_slips" + r:               float64(stats.GetStatistics().GetSlips()),
 		"reckon_robot_odometry_gaps" + r:       float64(stats.GetStatistics().GetGaps()),
 		"reckon_robot_held_inputs" + r:         float64(stats.GetStatistics().GetHeld()),
+		"reckon_robot_run" + r:                 float64(rb.GetRobot().GetRun()),
 	}
 	for k, v := range want {
 		g, ok := got[k]

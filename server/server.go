@@ -90,6 +90,7 @@ type Server struct {
 	robots map[string]*robot
 
 	watching atomic.Int64 // open Watch streams
+	live     liveHub      // open live views (live.go)
 	unlock   func() error // releases the journal directory
 
 	stopSync chan struct{}
@@ -119,6 +120,8 @@ type robot struct {
 	gauges *robotGauges
 
 	hub hub
+	// sync is the periodic fsync's own state (its own lock).
+	sync syncer
 }
 
 // New returns a server. Call Restore before serving to bring back robots
@@ -184,17 +187,22 @@ func (s *Server) syncLoop() {
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the
-// robot's lock while the disk works (syncLatest), so that ingest does not
+// robot's lock while the disk works (syncer), so that ingest does not
 // wait for it.
 func (s *Server) SyncJournals() {
 	for _, r := range s.list() {
 		r.mu.Lock()
-		has := r.journal != nil
+		j := r.journal
+		var path string
+		var writes uint64
+		if j != nil {
+			path, writes = j.SyncPoint()
+		}
 		r.mu.Unlock()
-		if !has {
+		if j == nil {
 			continue
 		}
-		if err := syncLatest(s.opt.FS, s.opt.JournalDir, r.id); err != nil {
+		if err := r.sync.sync(s.opt.FS, j, path, writes); err != nil {
 			r.mu.Lock()
 			s.journalFailed(r, "journal sync", err)
 			r.mu.Unlock()
@@ -208,6 +216,7 @@ func (s *Server) EndWatches() {
 	for _, r := range s.list() {
 		r.hub.close()
 	}
+	s.live.end()
 }
 
 // Close syncs and closes every journal and ends every watch.
@@ -222,8 +231,10 @@ func (s *Server) Close() error {
 			r.journal = nil
 		}
 		r.mu.Unlock()
+		r.sync.close()
 		r.hub.close()
 	}
+	s.live.end()
 	errs = append(errs, s.unlock())
 	return errors.Join(errs...)
 }
@@ -257,6 +268,7 @@ func (r *robot) proto() *pb.Robot {
 	out := &pb.Robot{Name: r.name, Config: r.cfg, State: r.state, StateDetail: r.detail}
 	if r.fr != nil {
 		out.NewestStampNs, out.InputCount = r.fr.NewestNs(), r.fr.Sequence()
+		out.Run, out.BootId = r.fr.Run(), r.fr.BootID()
 	}
 	return out
 }
@@ -299,7 +311,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	s.opt.Metrics.robots(len(s.robots))
 	r.mu.Lock()
 	s.observeRobot(r, nil, -1)
+	created := LiveUpdate{Robot: name, State: r.state, Pose: poseNow(r)}
 	r.mu.Unlock()
+	s.live.publish(func() LiveUpdate { return created })
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
 }
@@ -368,6 +382,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	delete(s.robots, r.name)
 	s.opt.Metrics.robots(len(s.robots))
 	s.mu.Unlock()
+	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
 	if r.journal != nil {
@@ -384,6 +399,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	r.mu.Unlock()
 	s.opt.Metrics.forget(r.name)
 	r.hub.close()
+	s.live.publish(func() LiveUpdate { return LiveUpdate{Robot: r.name, Gone: true} })
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "journal: %v", err)
 	}
@@ -402,30 +418,25 @@ const maxBatch = 256
 // Ingest takes a stream of samples and answers each in order. Samples that
 // are already waiting when one is taken are taken with it, journaled with
 // one write (group commit) and then answered.
+//
+// Two goroutines share the taking, one at a time (ingestTurn): the one
+// that receives takes a sample itself when it arrived alone, which saves
+// the sample a wake-up of another goroutine (BenchmarkRobotRates); when
+// samples come faster than they are taken, it hands them to the other,
+// which takes them in batches while the receiver goes on receiving
+// (BenchmarkIngestThroughput).
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	ctx := stream.Context()
 	in := newInbox()
-	go func() {
-		sl := &slab{}
-		for {
-			req := &arrivedRequest{slab: sl}
-			err := stream.RecvMsg(req)
-			if err == nil {
-				err = in.put(ctx, req)
-			}
-			if err != nil {
-				in.end(err)
-				return
-			}
-		}
-	}()
 	// A third goroutine sends the verdicts of large batches, so that taking
 	// the next batch overlaps with sending the last one's verdicts.
 	snd := &sender{stream: stream, out: make(chan []encodedResponse, 4)}
 	sendErr := make(chan error, 1)
 	go func() { sendErr <- snd.run() }()
 	ob := newOutbox()
-	err := s.takeBatches(ctx, in, snd, ob)
+	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob}
+	go t.receive(ctx, stream)
+	err := t.takeBatches(ctx)
 	if err == nil {
 		// The client closed its side: what is pending still goes out.
 		if rest := ob.close(false); len(rest) > 0 {
@@ -441,6 +452,124 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	return err
 }
 
+// A sample counts as arriving alone when its receive waited at least
+// aloneAfter for it and nothing was taken on its stream for quietFor: a
+// sample already buffered when the receive began returns within a few
+// microseconds, one that had to come over the connection waits at least
+// for the goroutine's wake-up, tens of microseconds; and a stream that
+// was taken from within the last millisecond is busy, so its samples go
+// to the batches. A wrong guess costs time, never order: the taking turn
+// keeps it.
+const (
+	aloneAfter = 50 * time.Microsecond
+	quietFor   = time.Millisecond
+)
+
+// ingestTurn is one ingest stream's taking: whoever holds mu takes the
+// waiting samples, applies them and sends their verdicts, so that order
+// holds whichever goroutine does it.
+type ingestTurn struct {
+	s   *Server
+	in  *inbox
+	snd *sender
+	ob  *outbox
+
+	mu       sync.Mutex
+	batch    []*arrivedRequest // reused by the holder of mu
+	err      error             // the first send error; the stream is then done
+	lastTake atomic.Int64      // when a take last ended, Unix nanoseconds
+}
+
+// receive receives the stream's requests until it ends; a request that
+// arrived alone it takes itself when no one else is taking.
+func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
+	sl := &slab{}
+	for {
+		req := &arrivedRequest{slab: sl}
+		before := time.Now()
+		err := stream.RecvMsg(req)
+		if err == nil {
+			now := time.Now()
+			alone := now.Sub(before) >= aloneAfter && now.UnixNano()-t.lastTake.Load() >= int64(quietFor)
+			if err = t.in.put(ctx, req, !alone); err == nil && alone {
+				t.takeHere(ctx)
+			}
+		}
+		if err != nil {
+			t.in.end(err)
+			return
+		}
+	}
+}
+
+// takeHere takes what waits, on the receiving goroutine, unless the other
+// is taking; then it signals the other, which takes it after.
+func (t *ingestTurn) takeHere(ctx context.Context) {
+	if !t.mu.TryLock() {
+		signal(t.in.ready)
+		return
+	}
+	defer t.mu.Unlock()
+	if t.err != nil {
+		return
+	}
+	if t.batch = t.in.takeNow(t.batch); len(t.batch) > 0 {
+		t.err = t.takeOne(ctx, t.batch)
+	}
+}
+
+// takeBatches takes requests as they come, in batches of what is waiting,
+// and sends after each batch the resolutions that other streams decided
+// for this one's held inputs (ob), waking for them too.
+func (t *ingestTurn) takeBatches(ctx context.Context) error {
+	for {
+		if err := t.in.wait(ctx, t.ob.ready); err != nil {
+			if err != io.EOF {
+				return err
+			}
+			// Ended: take what the receiver left.
+			t.mu.Lock()
+			defer t.mu.Unlock()
+			for t.err == nil {
+				if t.batch = t.in.takeNow(t.batch); len(t.batch) == 0 {
+					break
+				}
+				t.err = t.takeOne(ctx, t.batch)
+			}
+			return t.err
+		}
+		t.mu.Lock()
+		if t.err == nil {
+			t.batch = t.in.takeNow(t.batch)
+			t.err = t.takeOne(ctx, t.batch)
+		}
+		err := t.err
+		t.mu.Unlock()
+		if err != nil {
+			return err
+		}
+	}
+}
+
+// takeOne applies a batch (it may be empty: resolutions only) and sends
+// its verdicts and the resolutions waiting. The caller holds t.mu.
+func (t *ingestTurn) takeOne(ctx context.Context, batch []*arrivedRequest) error {
+	defer func() { t.lastTake.Store(time.Now().UnixNano()) }()
+	var resps []encodedResponse
+	if len(batch) > 0 {
+		resps = t.s.ingestStream(batch, t.ob)
+	}
+	if ctx.Err() == nil {
+		// A stream that is gone leaves them pending, to be kept for its
+		// session.
+		resps = append(resps, t.ob.drain()...)
+	}
+	if len(resps) == 0 {
+		return nil
+	}
+	return t.snd.send(ctx, resps)
+}
+
 // inlineBatch is the largest batch whose verdicts the taking goroutine
 // sends itself when nothing else waits to be sent: at a robot's own rates
 // a sample arrives alone, and sending its verdict at once saves it a
@@ -452,9 +581,9 @@ const inlineBatch = 8
 type sender struct {
 	stream grpc.ServerStream
 	out    chan []encodedResponse
-	// queued counts the batches queued and not yet sent. Only the taking
-	// goroutine queues, so when it reads 0 the goroutine is idle and the
-	// taker may send itself without breaking the order.
+	// queued counts the batches queued and not yet sent. Only the holder
+	// of the taking turn queues, so when it reads 0 the goroutine is idle
+	// and the holder may send itself without breaking the order.
 	queued atomic.Int64
 }
 
@@ -491,34 +620,6 @@ func (snd *sender) send(ctx context.Context, resps []encodedResponse) error {
 	case <-ctx.Done():
 		snd.queued.Add(-1)
 		return ctx.Err()
-	}
-}
-
-// takeBatches takes requests as they come, in batches of what is waiting,
-// and sends after each batch the resolutions that other streams decided
-// for this one's held inputs (ob), waking for them too.
-func (s *Server) takeBatches(ctx context.Context, in *inbox, snd *sender, ob *outbox) error {
-	var batch []*arrivedRequest
-	for {
-		var err error
-		if batch, err = in.take(ctx, batch, ob.ready); err != nil {
-			if err == io.EOF {
-				return nil
-			}
-			return err
-		}
-		resps := s.ingestStream(batch, ob)
-		if ctx.Err() == nil {
-			// A stream that is gone leaves them pending, to be kept
-			// for its session.
-			resps = append(resps, ob.drain()...)
-		}
-		if len(resps) == 0 {
-			continue
-		}
-		if err := snd.send(ctx, resps); err != nil {
-			return err
-		}
 	}
 }
 
@@ -598,7 +699,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	tk := s.takeRun(r, run, out, start)
 	written, cause := s.flushJournal(r, &tk)
 	lag := time.Since(start)
-	if len(tk.entries) > 0 && r.fr != nil {
+	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0 || s.live.watched()) {
+		// The pose is for the watchers, the live views and the metrics:
+		// none, no pose.
 		pose = poseNow(r)
 	}
 	if cause != nil {
@@ -612,6 +715,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	if pose != nil {
 		s.observeRobot(r, pose, lag)
 	}
+	state := r.state
 	r.mu.Unlock()
 	if pose == nil {
 		return
@@ -621,6 +725,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 		events = append(events, out[k].Events...)
 	}
 	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	s.live.publish(func() LiveUpdate {
+		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, tk.entries[:written])}
+	})
 	d := time.Since(start)
 	for _, k := range tk.entries[:written] {
 		s.opt.Metrics.verdict(out[k].Verdict, d)
@@ -883,6 +990,26 @@ func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*
 		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
 	}
 	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+}
+
+// StartRun starts a new run of a robot by hand (DEVELOPERS.md, "Design:
+// Runs"); it is journaled like any input, so that a restart restores the
+// run as the robot took it.
+func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.StartRunResponse, error) {
+	if req.GetRunStart() == nil {
+		return nil, status.Errorf(codes.InvalidArgument, "run_start: missing")
+	}
+	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
+	if resp.StatusCode != 0 && resp.Sequence == 0 {
+		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+	}
+	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
+	for _, e := range resp.Events {
+		if e.GetKind() == pb.EventKind_EVENT_KIND_RUN_STARTED {
+			out.Run = uint64(e.GetValue()) // the run this input started, not a later one's
+		}
+	}
+	return out, nil
 }
 
 // GetStatistics gets a robot's statistics.

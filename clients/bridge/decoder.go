@@ -2,6 +2,7 @@ package bridge
 
 import (
 	"errors"
+	"fmt"
 
 	pb "reckon.example/proto/reckon/v1"
 )
@@ -33,7 +34,8 @@ type Stats struct {
 	// Skipped is the number of counter values jumped over when a frame
 	// was taken: frames lost, or arriving later and then Reordered.
 	Skipped uint64
-	// Restarts is the number of times the boot byte changed.
+	// Restarts is the number of times the boot byte changed (or differed
+	// from the one Decoder.Resume named): each begins a new run.
 	Restarts uint64
 	// Samples is the number of samples produced.
 	Samples uint64
@@ -139,7 +141,10 @@ const staleBootLimit = 16
 //
 // A frame with another Boot byte starts afresh: counters, clock and counts
 // begin again from that frame, and its sample carries the rebooted
-// controller's stamp, which is usually far behind the last one. The
+// controller's stamp, which is usually far behind the last one. The Decoder
+// sends a run start (boot id BootID of the new byte) before that sample, so
+// that the service begins a new run of the robot instead of refusing the
+// new clock (DEVELOPERS.md, "Design: Runs"). The
 // previous boot's byte is remembered, and its late frames are dropped as
 // Reordered, unless staleBootLimit of them arrive in a row: then the
 // controller has rebooted again and drawn the old byte once more.
@@ -154,6 +159,10 @@ type Sequencer struct {
 	counts     []int32 // the last taken frame's counts
 	cumulative []int64
 	stats      Stats
+	// resumed: the robot's current run is of boot byte resumedBoot
+	// (Decoder.Resume), compared with the first frame's.
+	resumed     bool
+	resumedBoot uint8
 }
 
 // Take returns the sample for f, or nil if f is dropped.
@@ -168,6 +177,8 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		if s.started {
 			s.stats.Restarts++
 			s.retired, s.old = true, s.boot
+		} else if s.resumed && f.Boot != s.resumedBoot {
+			s.stats.Restarts++
 		}
 		s.started, s.boot, s.counter, s.stampUs = true, f.Boot, f.Counter, f.StampUs
 		s.counts = append(s.counts[:0], f.Counts...)
@@ -223,15 +234,37 @@ type Decoder struct {
 }
 
 // Decode appends to dst the samples of the frames that end in p and
-// returns dst. Bytes after p's last delimiter wait for the next call.
+// returns dst: odometry, and a run start before the first sample of a
+// controller that restarted. Bytes after p's last delimiter wait for the
+// next call.
 func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 	d.frames = d.split.AppendFrames(d.frames[:0], p)
 	for i := range d.frames {
+		restarts := d.seq.stats.Restarts
 		if s := d.seq.Take(&d.frames[i]); s != nil {
+			if d.seq.stats.Restarts != restarts {
+				dst = append(dst, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: BootID(d.seq.boot)}}})
+			}
 			dst = append(dst, s)
 		}
 	}
 	return dst
+}
+
+// BootID is the run start's boot id for a controller boot byte:
+// "link-boot-{byte, two hex digits}". It differs from the current run's
+// whenever the byte does, which is what a restart is.
+func BootID(boot uint8) string { return fmt.Sprintf("link-boot-%02x", boot) }
+
+// Resume tells the decoder the boot id of the robot's current run
+// (Robot.boot_id): when it is a link boot id and the first frame's boot
+// byte differs, the controller restarted while no bridge was listening,
+// and the decoder begins a new run there too. Call it before Decode.
+func (d *Decoder) Resume(bootID string) {
+	var b uint8
+	if _, err := fmt.Sscanf(bootID, "link-boot-%02x", &b); err == nil && bootID == BootID(b) {
+		d.seq.resumed, d.seq.resumedBoot = true, b
+	}
 }
 
 // Stats returns the counts so far.

@@ -2,7 +2,9 @@ package bridge
 
 import (
 	"bytes"
+	"fmt"
 	"math/rand/v2"
+	"strings"
 	"testing"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -164,7 +166,8 @@ func TestDecoderResync(t *testing.T) {
 // FuzzDecoder: on any input the decoder does not panic, every frame the
 // splitter returns re-encodes to bytes found delimited in the input (so it
 // was received with a valid CRC), and there are never more samples than
-// frames.
+// frames; a run start comes before the first sample of each restart, and
+// within a run time never goes back.
 func FuzzDecoder(f *testing.F) {
 	f.Add(encode(wheels(0, 1, 100, 1, 2), wheels(0, 2, 200, 3, 4)))
 	f.Add(cat([]byte{1, 2, 0}, encode(wheels(9, 7, MaxStampUs, -5)), encode(wheels(9, 8, 3, -4)), []byte{5}))
@@ -193,18 +196,64 @@ func FuzzDecoder(f *testing.F) {
 		var d Decoder
 		samples := d.Decode(nil, data)
 		st := d.Stats()
-		if uint64(len(samples)) != st.Samples || len(samples) > len(frames) || st.Frames != uint64(len(frames))+sp.invalid {
-			t.Fatalf("%d samples, %d frames (+%d invalid), stats %+v", len(samples), len(frames), sp.invalid, st)
+		var odometry, starts uint64
+		var last int64
+		for i, s := range samples {
+			if s.GetRunStart() != nil {
+				if i+1 == len(samples) || samples[i+1].GetOdometry() == nil {
+					t.Fatalf("run start %d is not followed by odometry", i)
+				}
+				starts++
+				last = 0
+				continue
+			}
+			odometry++
+			if s.GetOdometry().GetStampNs() < last {
+				t.Fatalf("sample %d goes back in time within a run: %d after %d", i, s.GetOdometry().GetStampNs(), last)
+			}
+			last = s.GetOdometry().GetStampNs()
+		}
+		if odometry != st.Samples || starts != st.Restarts || odometry > uint64(len(frames)) || st.Frames != uint64(len(frames))+sp.invalid {
+			t.Fatalf("%d samples (%d run starts), %d frames (+%d invalid), stats %+v", odometry, starts, len(frames), sp.invalid, st)
 		}
 		if st.Samples+st.Duplicates+st.Reordered+st.Invalid != st.Frames {
 			t.Fatalf("frames do not add up: %+v", st)
 		}
-		var last int64
-		for i, s := range samples {
-			if st.Restarts == 0 && i > 0 && s.GetOdometry().GetStampNs() < last {
-				t.Fatalf("sample %d goes back in time: %d after %d", i, s.GetOdometry().GetStampNs(), last)
-			}
-			last = s.GetOdometry().GetStampNs()
-		}
 	})
+}
+
+// TestDecoderRunStart: a controller restart (another boot byte) puts a run
+// start naming the new boot before its first sample; a decoder resumed on
+// a robot whose current run is of another boot starts a run at its first
+// frame, and one resumed on the same boot does not.
+func TestDecoderRunStart(t *testing.T) {
+	kinds := func(samples []*pb.Sample) string {
+		var b strings.Builder
+		for _, s := range samples {
+			if rs := s.GetRunStart(); rs != nil {
+				b.WriteString("start(" + rs.GetBootId() + ") ")
+			} else {
+				fmt.Fprintf(&b, "odo(%d) ", s.GetOdometry().GetStampNs())
+			}
+		}
+		return b.String()
+	}
+	var d Decoder
+	got := kinds(d.Decode(nil, encode(wheels(4, 900, 9000, 50), wheels(5, 0, 30, 0), wheels(4, 899, 8000, 40), wheels(5, 1, 40, 2))))
+	if want := "odo(9000000) start(link-boot-05) odo(30000) odo(40000) "; got != want {
+		t.Errorf("restart:\n got %s\nwant %s", got, want)
+	}
+	for _, c := range []struct{ resume, want string }{
+		{"link-boot-04", "start(link-boot-05) odo(30000) "},
+		{"link-boot-05", "odo(30000) "},
+		{"", "odo(30000) "},
+		{"by-hand-1", "odo(30000) "},
+		{"link-boot-5", "odo(30000) "}, // not a link boot id: two hex digits
+	} {
+		var d Decoder
+		d.Resume(c.resume)
+		if got := kinds(d.Decode(nil, encode(wheels(5, 0, 30, 0)))); got != c.want {
+			t.Errorf("resumed on %q: %s, want %s", c.resume, got, c.want)
+		}
+	}
 }

@@ -205,6 +205,18 @@ func (c *Client) Reseed(ctx context.Context, robot string, stampNs int64, pose *
 		StampNs: stampNs, Pose: pose, Covariance: &pb.Covariance{Dimension: 3, Values: cov}}})
 }
 
+// StartRun starts a new run of robot ("robots/{id}") after its controller
+// restarted: bootID names the controller's boot; run is the run's number
+// (0: the next). The last run's pose and covariance carry over, unless
+// pose is given (with its 3x3 covariance cov, m^2, m*rad, rad^2).
+func (c *Client) StartRun(ctx context.Context, robot, bootID string, run uint64, pose *pb.FloorPose, cov []float64) (*pb.StartRunResponse, error) {
+	rs := &pb.RunStart{BootId: bootID, Run: run, Pose: pose}
+	if pose != nil {
+		rs.Covariance = &pb.Covariance{Dimension: 3, Values: cov}
+	}
+	return c.api.StartRun(ctx, &pb.StartRunRequest{Robot: robot, RunStart: rs})
+}
+
 // Session is one ingest stream for one robot. Send and Recv may be used
 // from two goroutines (one each); Apply pairs them for you. Every request
 // carries the session's random id (ID) and its client sequence, so that the

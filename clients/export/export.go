@@ -7,14 +7,17 @@
 // # Overview
 //
 // Export replays each journal (journal.Replay, read only) and writes four
-// files: runs.parquet (one row per journal: robot, run, times, counts, the
-// configuration), inputs.parquet (one row per input with its verdict, the
-// final verdict of a held fix, NIS, reason and status code),
-// poses.parquet (the fused pose with its covariance and trust after every
-// input) and events.parquet. The row types RunRow, InputRow, PoseRow and
-// EventRow are the schemas; their column names carry the units. A robot's
-// journal is one run ("live"); the journals set aside when a robot was
-// deleted are further runs ("deleted-{unix ns}").
+// files: runs.parquet (one row per run: robot, run, journal, run number,
+// times, counts, the configuration), inputs.parquet (one row per input
+// with its verdict, the final verdict of a held fix, NIS, reason and status
+// code), poses.parquet (the fused pose with its covariance and trust after
+// every input) and events.parquet. The row types RunRow, InputRow, PoseRow
+// and EventRow are the schemas; their column names carry the units. A
+// robot's journal is "live"; the journals set aside when a robot was
+// deleted are "deleted-{unix ns}". A journal holds a run per controller
+// boot: its first run's key is the journal's name, run n's from the second
+// on "{journal}/{n}", each on a clock of its own (DEVELOPERS.md, "Design:
+// Runs").
 //
 // # Invariants
 //
@@ -46,6 +49,10 @@ type Options struct {
 	Robots []string
 	// Deleted also exports the journals set aside when robots were deleted.
 	Deleted bool
+	// Run, if not 0, exports only run Run of each journal (RunRow.RunNumber;
+	// a controller restart begins a run); journals with fewer runs give
+	// no rows.
+	Run int64
 	// RowGroupRows is the number of rows per Parquet row group (0: 65536).
 	RowGroupRows int
 }
@@ -80,15 +87,15 @@ func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error)
 	}
 	var rows []RunRow
 	for _, r := range runs {
-		row, err := exportRun(ctx, t, dir, r)
-		if err == nil {
-			err = t.runs.add(row)
+		got, err := exportRun(ctx, t, dir, r, opt.Run)
+		for i := 0; err == nil && i < len(got); i++ {
+			err = t.runs.add(got[i])
 		}
 		if err != nil {
 			t.abandon()
-			return nil, fmt.Errorf("%s, run %s: %w", r.Robot, r.ID, err)
+			return nil, fmt.Errorf("%s, journal %s: %w", r.Robot, r.ID, err)
 		}
-		rows = append(rows, row)
+		rows = append(rows, got...)
 	}
 	return rows, t.close()
 }
@@ -117,9 +124,10 @@ func pick(runs []Run, robots []string) ([]Run, error) {
 	return out, nil
 }
 
-// exportRun replays one journal into the tables and returns its runs row.
-func exportRun(ctx context.Context, t *tables, dir string, r Run) (RunRow, error) {
-	x := &runExport{ctx: ctx, t: t, row: RunRow{Robot: r.Robot, Run: r.ID, Deleted: r.ID != liveRun}}
+// exportRun replays one journal into the tables and returns the rows of
+// its runs.
+func exportRun(ctx context.Context, t *tables, dir string, r Run, only int64) ([]RunRow, error) {
+	x := &runExport{ctx: ctx, t: t, only: only, row: RunRow{Robot: r.Robot, Run: r.ID, Journal: r.ID, RunNumber: 1, Deleted: r.ID != liveRun}}
 	if r.DeleteTimeUnixNs != 0 {
 		x.row.DeleteTimeUnixNs = &r.DeleteTimeUnixNs
 	}
@@ -134,39 +142,47 @@ func exportRun(ctx context.Context, t *tables, dir string, r Run) (RunRow, error
 			return nil
 		}})
 	if err != nil && !errors.Is(err, journal.ErrGap) {
-		return RunRow{}, err
+		return nil, err
 	}
 	if err := x.flushInputs(true); err != nil {
-		return RunRow{}, err
+		return nil, err
 	}
-	if gap != nil {
-		x.row.Gap = gap.Error()
+	var rows []RunRow
+	for _, row := range append(x.done, x.row) {
+		if x.keeps(row.RunNumber) {
+			rows = append(rows, row)
+		}
 	}
-	x.row.Torn = scan.Torn != nil
-	x.row.Damaged = int32(len(scan.Damage))
-	if err := x.configure(scan.Opening, x.cfg); err != nil {
-		return RunRow{}, err
+	for i := range rows {
+		if gap != nil {
+			rows[i].Gap = gap.Error()
+		}
+		rows[i].Torn = scan.Torn != nil
+		rows[i].Damaged = int32(len(scan.Damage))
+		if err := configure(&rows[i], scan.Opening, x.cfg); err != nil {
+			return nil, err
+		}
 	}
-	return x.row, nil
+	return rows, nil
 }
 
-// configure fills the runs row's configuration summary from the opening
+// configure fills a runs row's configuration summary from the opening
 // record and the robot's configuration with its defaults filled in.
-func (x *runExport) configure(op *pb.JournalOpening, cfg fusion.Config) error {
+func configure(row *RunRow, op *pb.JournalOpening, cfg fusion.Config) error {
 	js, err := protojson.MarshalOptions{UseProtoNames: true}.Marshal(op.GetConfig())
 	if err != nil {
 		return err
 	}
-	x.row.CreateTimeUnixNs = op.GetCreateTimeUnixNs()
+	row.CreateTimeUnixNs = op.GetCreateTimeUnixNs()
 	for _, l := range fusion.IMUModeLabels() {
 		if l.Value == cfg.IMU {
-			x.row.IMUMode = l.Name
+			row.IMUMode = l.Name
 		}
 	}
-	x.row.Wheels, x.row.Landmarks = int32(len(cfg.Wheels)), int32(len(cfg.Landmarks))
-	x.row.GateProbability, x.row.WindowNs = cfg.GateProbability, cfg.WindowNs
-	x.row.MaxPosition95M, x.row.MaxHeadingStdRad = cfg.Trust.MaxPosition95M, cfg.Trust.MaxHeadingStdRad
-	x.row.ConfigJSON = string(js)
+	row.Wheels, row.Landmarks = int32(len(cfg.Wheels)), int32(len(cfg.Landmarks))
+	row.GateProbability, row.WindowNs = cfg.GateProbability, cfg.WindowNs
+	row.MaxPosition95M, row.MaxHeadingStdRad = cfg.Trust.MaxPosition95M, cfg.Trust.MaxHeadingStdRad
+	row.ConfigJSON = string(js)
 	return nil
 }
 

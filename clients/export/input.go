@@ -24,7 +24,13 @@ type runExport struct {
 	ctx context.Context
 	t   *tables
 	row RunRow
-	cfg fusion.Config
+	// done are the rows of the journal's runs before the current one;
+	// stamped says the current one has a stamped input.
+	done    []RunRow
+	stamped bool
+	cfg     fusion.Config
+	// only is Options.Run: the rows of other runs are counted, not written.
+	only int64
 	// pending are the input rows from the oldest fix still held on:
 	// written once its final verdict is known, in order. open[i] says
 	// pending[i] is still held; held counts them.
@@ -43,6 +49,12 @@ func (x *runExport) input(rp *journal.Replayed) error {
 		return err
 	}
 	resp := rp.Response
+	started := rp.Robot.Run() != uint64(x.row.RunNumber)
+	if started {
+		if err := x.nextRun(rp.Robot, resp); err != nil {
+			return err
+		}
+	}
 	row := InputRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: int64(rp.Input.GetSequence()),
 		ClientSequence: int64(resp.GetClientSequence()), ArrivalUnixNs: rp.Input.GetArrivalUnixNs(),
 		Verdict: convert.VerdictName(resp.GetVerdict()), NISDimension: resp.GetNisDimension(),
@@ -58,6 +70,9 @@ func (x *runExport) input(rp *journal.Replayed) error {
 		x.row.Differs++
 	}
 	for _, res := range resp.GetResolved() {
+		if started {
+			break // nextRun resolved them in the run they belong to
+		}
 		if err := x.resolve(res); err != nil {
 			return err
 		}
@@ -72,6 +87,9 @@ func (x *runExport) input(rp *journal.Replayed) error {
 	}
 	for _, e := range resp.GetEvents() {
 		x.row.Events++
+		if !x.keeps(x.row.RunNumber) {
+			continue
+		}
 		if err := x.t.events.add(EventRow{Robot: x.row.Robot, Run: x.row.Run, Sequence: row.Sequence,
 			Kind: convert.EventName(e.GetKind()), StampNs: e.GetStampNs(), SensorID: e.GetSensorId(),
 			Value: e.GetValue(), Detail: e.GetDetail()}); err != nil {
@@ -79,6 +97,29 @@ func (x *runExport) input(rp *journal.Replayed) error {
 		}
 	}
 	return x.pose(row.Sequence, rp.Robot.Pose())
+}
+
+// keeps tells whether the rows of run n are written.
+func (x *runExport) keeps(n int64) bool { return x.only == 0 || n == x.only }
+
+// nextRun ends the current run's row at the run start resp answers: the
+// held inputs it resolves are the ended run's, and its rows are written;
+// the rows from here on are of fr's new run.
+func (x *runExport) nextRun(fr *fusion.Robot, resp *pb.IngestResponse) error {
+	for _, res := range resp.GetResolved() {
+		if err := x.resolve(res); err != nil {
+			return err
+		}
+	}
+	if err := x.flushInputs(true); err != nil {
+		return err
+	}
+	x.done = append(x.done, x.row)
+	n := fr.Run()
+	x.row = RunRow{Robot: x.row.Robot, Run: fmt.Sprintf("%s/%d", x.row.Journal, n), Journal: x.row.Journal, RunNumber: int64(n),
+		BootID: fr.BootID(), Deleted: x.row.Deleted, DeleteTimeUnixNs: x.row.DeleteTimeUnixNs}
+	x.posed, x.stamped = false, false
+	return nil
 }
 
 // describe fills the row's kind, stamp and sensor from the sample, and
@@ -99,14 +140,19 @@ func (x *runExport) describe(row *InputRow, s *pb.Sample) {
 	case *pb.Sample_Reseed:
 		kind, row.StampNs = pb.InputKind_INPUT_KIND_RESEED, v.Reseed.GetStampNs()
 		x.row.Reseeds++
+	case *pb.Sample_RunStart:
+		row.Kind = labelOf(inputKinds, int32(pb.InputKind_INPUT_KIND_RUN_START))
+		x.row.Inputs++ // no stamp: the run's clock starts after it
+		return
 	}
 	row.Kind = labelOf(inputKinds, int32(kind))
-	if x.row.Inputs == 0 || row.StampNs < x.row.FirstStampNs {
+	if !x.stamped || row.StampNs < x.row.FirstStampNs {
 		x.row.FirstStampNs = row.StampNs
 	}
-	if x.row.Inputs == 0 || row.StampNs > x.row.LastStampNs {
+	if !x.stamped || row.StampNs > x.row.LastStampNs {
 		x.row.LastStampNs = row.StampNs
 	}
+	x.stamped = true
 	x.row.Inputs++
 }
 
@@ -156,6 +202,9 @@ func (x *runExport) flushInputs(all bool) error {
 	}
 	for i := range n {
 		x.count(x.pending[i].FinalVerdict)
+		if !x.keeps(x.row.RunNumber) {
+			continue
+		}
 		if err := x.t.inputs.add(x.pending[i]); err != nil {
 			return err
 		}
@@ -201,6 +250,9 @@ func (x *runExport) pose(seq int64, p fusion.FusedPose) error {
 		Trusted: p.Trusted()}
 	for _, d := range convert.DistrustToProto(p.Distrust) {
 		row.Distrust = append(row.Distrust, convert.DistrustName(d))
+	}
+	if !x.keeps(x.row.RunNumber) {
+		return nil
 	}
 	return x.t.poses.add(row)
 }

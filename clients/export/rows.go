@@ -8,14 +8,23 @@ package export
 // own time base, as its samples carry them. Labels are those of package
 // fusion's label tables ("applied", "too_old", "position_uncertain").
 
-// RunRow is one row of runs.parquet: one journal, the live one of a robot
-// or one set aside when the robot was deleted.
+// RunRow is one row of runs.parquet: one run of a journal (the live one of
+// a robot or one set aside when the robot was deleted). A journal holds one
+// run per controller boot: a run start begins the next (DEVELOPERS.md,
+// "Design: Runs").
 type RunRow struct {
 	// Robot is the robot id ("cart").
 	Robot string `parquet:"robot,dict"`
-	// Run is "live" for the robot's journal, or "deleted-{unix ns}" for one
-	// set aside when the robot was deleted at that time.
+	// Run is the run's key: the journal's name (Journal) for its first
+	// run, "{journal}/{n}" for run n from the second on.
 	Run string `parquet:"run,dict"`
+	// Journal is "live" for the robot's journal, or "deleted-{unix ns}"
+	// for one set aside when the robot was deleted at that time.
+	Journal string `parquet:"journal,dict"`
+	// RunNumber is the run's number in its journal, from 1; BootID the
+	// boot id of its run start ("" for run 1).
+	RunNumber int64  `parquet:"run_number"`
+	BootID    string `parquet:"boot_id"`
 	// Deleted says that the journal was set aside by a delete.
 	Deleted bool `parquet:"deleted"`
 	// CreateTimeUnixNs is when the robot was created (the opening record),
@@ -25,11 +34,12 @@ type RunRow struct {
 	// the live journal).
 	DeleteTimeUnixNs *int64 `parquet:"delete_time_unix_ns,optional"`
 	// FirstStampNs and LastStampNs are the smallest and largest sample
-	// stamps, nanoseconds (0 with no inputs).
+	// stamps of the run, nanoseconds on its own clock (0 with no inputs; a
+	// run start has no stamp).
 	FirstStampNs int64 `parquet:"first_stamp_ns"`
 	LastStampNs  int64 `parquet:"last_stamp_ns"`
-	// Inputs counts the journaled inputs; Odometry, Headings, Fixes and
-	// Reseeds count them by kind.
+	// Inputs counts the journaled inputs (a run's run start is its first);
+	// Odometry, Headings, Fixes and Reseeds count them by kind.
 	Inputs   int64 `parquet:"inputs"`
 	Odometry int64 `parquet:"odometry"`
 	Headings int64 `parquet:"headings"`
@@ -52,6 +62,7 @@ type RunRow struct {
 	// Differs counts the inputs whose replayed response differs from the
 	// one recorded (0 when the replay reproduces the run).
 	Differs int64 `parquet:"differs"`
+	// Torn, Damaged and Gap are of the journal, on each of its runs' rows.
 	// Torn says the journal's tail was cut short by a crash (what was
 	// acknowledged before it is exported).
 	Torn bool `parquet:"torn"`

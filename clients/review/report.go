@@ -91,6 +91,9 @@ func (run *Run) lines() [][2]string {
 	if s.Truncated != "" {
 		out = append(out, [2]string{"NOTE", s.Truncated})
 	}
+	if s.RunNote != "" {
+		out = append(out, [2]string{"NOTE", s.RunNote})
+	}
 	out = append(out, [2]string{"exports", run.FilteredCSV + ", " + run.SmoothedCSV + ", " + run.FixesCSV})
 	return out
 }
@@ -198,8 +201,10 @@ func notesHTML(b *strings.Builder, runs []*Run) {
 		for _, g := range run.Summary.Gaps {
 			b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(g) + "; the review goes on past it</p>\n")
 		}
-		if run.Summary.Truncated != "" {
-			b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(run.Summary.Truncated) + "</p>\n")
+		for _, note := range []string{run.Summary.Truncated, run.Summary.RunNote} {
+			if note != "" {
+				b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(note) + "</p>\n")
+			}
 		}
 	}
 }

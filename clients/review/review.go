@@ -40,6 +40,11 @@ type Source struct {
 	Truth string
 	// Label names the run in reports (default: the robot or file).
 	Label string
+	// Run selects one run of the robot (its number, from 1: a controller
+	// restart begins the next; DEVELOPERS.md, "Design: Runs"); 0 reviews
+	// run 1, and the summary notes the runs left out. Each run has its own
+	// clock, so a review covers one.
+	Run uint64
 }
 
 // Options tune a review. Zero values take the defaults given.
@@ -53,8 +58,8 @@ type Options struct {
 	MaxPoints int
 	// MemoryBytes bounds the steps and smoothed states kept in memory
 	// (32 MiB, about 50,000 steps: 45 s at 200 Hz with its IMU and fixes);
-	// past it they go to files in TempDir, which the smoother and the
-	// exports read in chunks. The journal's reader holds a segment (up to
+	// past it they go to files in TempDir (compact records), which the
+	// smoother and the report's pass read in chunks. The journal's reader holds a segment (up to
 	// 64 MiB) besides, and the collector lets the heap grow to about twice
 	// what is live: 32 MiB keeps an hour's review under 256 MiB.
 	MemoryBytes int64
@@ -127,6 +132,10 @@ type Summary struct {
 	// refused in a row (Detail names the sensor and the count).
 	RefusedStretches []Interval
 	Truncated        string
+	// Run is the run reviewed, of Runs in the recording; RunNote says
+	// which runs were left out ("" when there is only one).
+	Run, Runs uint64
+	RunNote   string
 	// Gaps lists the journal's continuity breaks (inputs or segments
 	// missing); the review goes on past each. GapsAt holds the stamp of
 	// the newest input before each.
@@ -272,34 +281,26 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw := newStepWriter(steps)
+	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: make([]fusion.Step, 0, stepBatch), want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
+		fw.close()
+		os.Remove(run.FilteredCSV)
 		return nil, err
 	}
-	fw.add(a.window(fr.FinishSteps()), true)
+	if err := rc.runs(fr, src.Run); err != nil {
+		return nil, err
+	}
+	rc.add(fr, true, fr.Run() == rc.want)
 	if err := fw.close(); err != nil {
 		return nil, err
 	}
 	run.Config = fr.Config()
-	rc.a.finish(fr)
-	// The filtered track is written from a reader of its own while the
-	// smoother runs: the replay kept both cores busy, the smoother keeps
-	// one.
-	filtered, err := steps.reader()
-	if err != nil {
-		return nil, err
-	}
-	written := make(chan error, 1)
-	go func() { written <- writeTrack(run.FilteredCSV, filtered) }()
-	err = smoothAndTrack(rc.a, steps, src.Truth, outDir, opt)
-	if werr := <-written; err == nil {
-		err = werr
-	}
-	if err != nil {
+	rc.a.finish(rc.ending(fr))
+	if err := smoothAndTrack(rc.a, steps, src.Truth, outDir, opt); err != nil {
 		return nil, err
 	}
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
@@ -330,7 +331,10 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 	if err != nil {
 		return nil, err
 	}
-	if err := fusion.Smooth(steps, smoothed); err != nil {
+	src := prefetchSteps(steps)
+	err = fusion.Smooth(src, smoothed)
+	src.p.close()
+	if err != nil {
 		smoothed.close()
 		return nil, err
 	}
@@ -341,49 +345,59 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 	return smoothed, nil
 }
 
-// stepWriter stores the steps in a goroutine of its own, while the replay
-// goes on. It hands over the robot's slices of steps as they come, without
-// copying them.
+// stepWriter stores the steps, and writes the filtered track's export,
+// in a goroutine of its own while the replay goes on. The replay fills
+// batches of steps and hands them over; the writer hands them back empty
+// for reuse, so that an hour's 720,000 steps of 3.7 kB cost no garbage.
 type stepWriter struct {
-	batches chan [][]fusion.Step
+	full    chan []fusion.Step
+	free    chan []fusion.Step
 	written chan error
-	pending [][]fusion.Step
-	count   int
 	closed  bool
 	err     error
 }
 
-func newStepWriter(steps *stepStore) *stepWriter {
-	fw := &stepWriter{batches: make(chan [][]fusion.Step, 4), written: make(chan error, 1)}
+// stepBatch is the number of steps handed over at once (0.9 MB at 12
+// states).
+const stepBatch = 256
+
+func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
+	fw := &stepWriter{full: make(chan []fusion.Step, 2), free: make(chan []fusion.Step, 3), written: make(chan error, 1)}
 	go func() {
-		var err error
-		for b := range fw.batches {
-			for _, ss := range b {
-				for i := range ss {
-					if err == nil {
-						err = steps.add(&ss[i])
-					}
+		tw, err := newTrackWriter(trackPath)
+		for b := range fw.full {
+			for i := range b {
+				if err == nil {
+					err = steps.add(&b[i])
 				}
+				if err == nil {
+					err = tw.add(b[i].StampNs, &b[i].Post)
+				}
+			}
+			select {
+			case fw.free <- b[:0]:
+			default:
 			}
 		}
 		if err == nil {
 			err = steps.flush()
+		}
+		if cerr := tw.close(); err == nil {
+			err = cerr
 		}
 		fw.written <- err
 	}()
 	return fw
 }
 
-// add queues steps, handing them over in batches of about 4096 (or all at
-// once when flush is set). The writer owns them from then on.
-func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
-	if len(steps) > 0 {
-		fw.pending = append(fw.pending, steps)
-		fw.count += len(steps)
-	}
-	if fw.count >= 4096 || (flush && fw.count > 0) {
-		fw.batches <- fw.pending
-		fw.pending, fw.count = nil, 0
+// hand gives the writer a batch and returns an empty one.
+func (fw *stepWriter) hand(b []fusion.Step) []fusion.Step {
+	fw.full <- b
+	select {
+	case b = <-fw.free:
+		return b
+	default:
+		return make([]fusion.Step, 0, stepBatch)
 	}
 }
 
@@ -392,35 +406,10 @@ func (fw *stepWriter) add(steps []fusion.Step, flush bool) {
 func (fw *stepWriter) close() error {
 	if !fw.closed {
 		fw.closed = true
-		close(fw.batches)
+		close(fw.full)
 		fw.err = <-fw.written
 	}
 	return fw.err
-}
-
-// writeTrack writes the filtered track of the steps as CSV.
-func writeTrack(path string, steps *stepStore) error {
-	f, err := os.Create(path)
-	if err != nil {
-		return err
-	}
-	w := bufio.NewWriterSize(f, 1<<20)
-	_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
-	var st fusion.Step
-	var row []byte
-	for i := 0; i < steps.Len() && err == nil; i++ {
-		if err = steps.read(i, &st, false); err == nil {
-			row = appendRow(row[:0], st.StampNs, &st.Post)
-			_, err = w.Write(row)
-		}
-	}
-	if ferr := w.Flush(); err == nil {
-		err = ferr
-	}
-	if cerr := f.Close(); err == nil {
-		err = cerr
-	}
-	return err
 }
 
 // recorder runs the inputs of a recorded run through a robot and gathers
@@ -433,7 +422,83 @@ type recorder struct {
 	// fromNs and toNs are Options.FromNs and ToNs; seen counts the inputs.
 	fromNs, toNs int64
 	seen         int
+	// batch gathers the steps for the writer.
+	batch []fusion.Step
+	// want is the run reviewed; last is the robot's run before the input
+	// being taken, the run whose steps that input hands out.
+	want, last uint64
+	// The robot's statistics (which go on over its life) when the run
+	// reviewed began and, once a run start ended it, when it ended, with
+	// its newest odometry then.
+	startStats, endStats fusion.Stats
+	ended                bool
+	endNewestNs          int64
 }
+
+// add moves the steps that became final (all of them when finish is set)
+// to the batch, those inside the stretch reviewed when they are of the run
+// reviewed (keep) and none otherwise, and hands the batch over when it is
+// full or the replay is done.
+func (rc *recorder) add(fr *fusion.Robot, finish, keep bool) {
+	n := len(rc.batch)
+	if finish {
+		rc.batch = append(rc.batch, fr.FinishSteps()...)
+	} else {
+		rc.batch = fr.AppendSteps(rc.batch)
+	}
+	kept := 0
+	if keep {
+		kept = len(rc.a.window(rc.batch[n:]))
+	}
+	rc.batch = rc.batch[:n+kept]
+	if len(rc.batch) >= stepBatch || (finish && len(rc.batch) > 0) {
+		rc.batch = rc.fw.hand(rc.batch)
+	}
+}
+
+// ending returns the newest odometry and the sensors' statistics of the
+// run reviewed: its own, without those of the runs before or after it.
+func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
+	end, newest := fr.Stats(), fr.NewestNs()
+	if rc.ended {
+		end, newest = rc.endStats, rc.endNewestNs
+	}
+	before := map[string]fusion.SensorStats{}
+	for _, s := range rc.startStats.Sensors {
+		before[s.ID] = s
+	}
+	var out []fusion.SensorStats
+	for _, s := range end.Sensors {
+		b := before[s.ID]
+		c, d := &s.VerdictCounts, &b.VerdictCounts
+		c.Applied, c.Held, c.Gated, c.TooOld, c.Invalid = c.Applied-d.Applied, c.Held-d.Held, c.Gated-d.Gated, c.TooOld-d.TooOld, c.Invalid-d.Invalid
+		s.NISSum, s.DOFSum = s.NISSum-b.NISSum, s.DOFSum-b.DOFSum
+		if s.VerdictCounts != (fusion.VerdictCounts{}) {
+			out = append(out, s)
+		}
+	}
+	return newest, out
+}
+
+// runs notes which run was reviewed of how many, and refuses a run the
+// recording does not hold.
+func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
+	sum := &rc.run.Summary
+	sum.Run, sum.Runs = rc.want, fr.Run()
+	if rc.want > fr.Run() {
+		return fmt.Errorf("%w: run %d asked for; the recording holds runs 1 to %d", ErrNoRun, rc.want, fr.Run())
+	}
+	if fr.Run() > 1 {
+		sum.RunNote = fmt.Sprintf("this report covers run %d of the %d runs recorded (a controller restart begins a run, on a clock of its own); review another with -run N", rc.want, fr.Run())
+		if asked == 0 {
+			sum.RunNote += " (run 1 is the default)"
+		}
+	}
+	return nil
+}
+
+// ErrNoRun is returned for a run the recording does not hold.
+var ErrNoRun = errors.New("no such run")
 
 // replay replays the source and returns the robot after its last input.
 func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
@@ -450,10 +515,33 @@ func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
 func (rc *recorder) opened(fr *fusion.Robot) {
 	rc.run.Config = fr.Config()
 	fr.CollectSteps()
+	rc.last = fr.Run()
 }
 
-// took records one input the robot was given and its response.
+// took records one input the robot was given and its response: an input
+// of the run reviewed, or one outside it, whose steps (a run start hands
+// out the ended run's last ones) and resolutions may still be of that run.
 func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse) {
+	stepsOf := rc.last
+	rc.last = fr.Run()
+	if fr.Run() != stepsOf {
+		// A run start: it ends the run before (its held inputs resolved)
+		// and begins this one.
+		if stepsOf == rc.want {
+			rc.endStats, rc.ended = fr.Stats(), true
+		}
+		if fr.Run() == rc.want {
+			rc.startStats = fr.Stats()
+		}
+	}
+	if fr.Run() == rc.want {
+		rc.endNewestNs = fr.NewestNs()
+	}
+	if fr.Run() != rc.want || s.GetRunStart() != nil {
+		rc.add(fr, false, stepsOf == rc.want)
+		rc.a.resolve(resp)
+		return
+	}
 	if rc.seen == 0 {
 		// The run's start is its first input's stamp.
 		start := convert.SampleStamp(s)
@@ -465,7 +553,7 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 	}
 	rc.seen++
 	rc.a.input(s, resp)
-	rc.fw.add(rc.a.window(fr.TakeSteps()), false)
+	rc.add(fr, false, true)
 	if rc.progress != nil && rc.seen%10000 == 0 {
 		rc.progress(rc.seen)
 	}
@@ -562,11 +650,25 @@ type accumulator struct {
 
 func (a *accumulator) in(stamp int64) bool { return stamp >= a.fromNs && stamp <= a.toNs }
 
+// resolve gives the held fixes that resp resolves their final verdict.
+func (a *accumulator) resolve(resp *pb.IngestResponse) {
+	for _, r := range resp.GetResolved() {
+		if i, ok := a.fixAt[r.GetSequence()]; ok {
+			delete(a.fixAt, r.GetSequence())
+			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
+		}
+	}
+}
+
 // window keeps the steps inside the stretch reviewed (in place).
 func (a *accumulator) window(steps []fusion.Step) []fusion.Step {
 	out := steps[:0]
 	for i := range steps {
-		if a.in(steps[i].StampNs) {
+		switch {
+		case !a.in(steps[i].StampNs):
+		case len(out) == i:
+			out = out[:i+1] // in place already: a Step is 3.7 kB
+		default:
 			out = append(out, steps[i])
 		}
 	}
@@ -614,12 +716,7 @@ func (a *accumulator) addNIS(sensor string, p NISPoint) {
 func (a *accumulator) input(s *pb.Sample, resp *pb.IngestResponse) {
 	sum := &a.run.Summary
 	stamp := convert.SampleStamp(s)
-	for _, r := range resp.GetResolved() {
-		if i, ok := a.fixAt[r.GetSequence()]; ok {
-			delete(a.fixAt, r.GetSequence())
-			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
-		}
-	}
+	a.resolve(resp)
 	if !a.in(stamp) {
 		a.newest = max(a.newest, stamp)
 		return
@@ -704,16 +801,18 @@ func (a *accumulator) fixVerdict(fp *FixPoint, v pb.Verdict, nis float64, refusa
 	}
 }
 
-func (a *accumulator) finish(fr *fusion.Robot) {
+// finish completes the summary at the end of the run reviewed: its newest
+// odometry and its sensors' statistics.
+func (a *accumulator) finish(newestNs int64, sensors []fusion.SensorStats) {
 	sum := &a.run.Summary
 	if a.lost {
-		end := fr.NewestNs()
+		end := newestNs
 		if a.toNs < end {
 			end = a.toNs
 		}
 		sum.Distrust = append(sum.Distrust, Interval{a.lostAt, end, a.lostWhy + " (until the end)"})
 	}
-	sum.Sensors = convert.StatsToProto(fr.Stats()).GetSensors()
+	sum.Sensors = convert.StatsToProto(fusion.Stats{Sensors: sensors}).GetSensors()
 	// Held fixes that never resolved.
 	sum.Fixes["held"] += len(a.fixAt)
 	for id, ns := range a.nis {
@@ -800,40 +899,17 @@ func thinFixes(fixes []FixPoint, bound int) []FixPoint {
 }
 
 // Label is the name a run gets in reports and export file names unless
-// Source.Label says otherwise: the robot's id, or the samples file's name.
+// Source.Label says otherwise: the robot's id, or the samples file's name,
+// with "-run{N}" when Source.Run selects a run.
 func Label(src Source) string {
+	label := strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
 	if src.JournalDir != "" {
-		return robotID(src.Robot)
+		label = robotID(src.Robot)
 	}
-	return strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
-}
-
-var csvHeader = []string{"stamp_ns", "x_m", "y_m", "heading_rad", "cov_xx_m2", "cov_xy_m2", "cov_xh_m_rad", "cov_yy_m2", "cov_yh_m_rad", "cov_hh_rad2", "position95_m", "imu_offset_rad", "imu_offset_var_rad2"}
-
-// appendRow appends one CSV row of the track (numbers only: no quoting):
-// the mean with ten significant digits (a tenth of a micrometre at a
-// kilometre), the covariance and the radius with seven; fixed digits format
-// several times faster than the shortest exact form, and the file is
-// smaller.
-func appendRow(b []byte, stamp int64, s *estimator.State) []byte {
-	b = strconv.AppendInt(b, stamp, 10)
-	for _, v := range [...]float64{s.MeanAt(0), s.MeanAt(1), s.MeanAt(2)} {
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, v, 'g', 10, 64)
+	if src.Run > 0 {
+		label += fmt.Sprintf("-run%d", src.Run)
 	}
-	for _, v := range [...]float64{s.At(0, 0), s.At(0, 1), s.At(0, 2), s.At(1, 1), s.At(1, 2), s.At(2, 2), s.Position95()} {
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, v, 'g', 7, 64)
-	}
-	b = append(b, ',')
-	if s.Size() == 4 {
-		b = strconv.AppendFloat(b, s.MeanAt(3), 'g', 10, 64)
-		b = append(b, ',')
-		b = strconv.AppendFloat(b, s.At(3, 3), 'g', 7, 64)
-	} else {
-		b = append(b, ',')
-	}
-	return append(b, '\n')
+	return label
 }
 
 // nees3 is the pose NEES of s against the truth, NaN if its covariance is
@@ -856,16 +932,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
 	// of their own.
-	rows := make(chan []Point, 4)
-	written := make(chan error, 1)
-	go func(rows <-chan []Point) { written <- writePoints(run.SmoothedCSV, rows) }(rows)
-	batch := make([]Point, 0, 4096)
-	defer func() {
-		if rows != nil {
-			close(rows)
-			<-written
-		}
-	}()
+	rows := newRowWriter(run.SmoothedCSV)
+	defer rows.close()
 	var truth *truthReader
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -877,51 +945,43 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	}
 	n := steps.Len()
 	every := max(1, (n+maxPoints-1)/maxPoints)
-	var st fusion.Step
-	var smoothed estimator.State
+	pf := prefetchTrack(steps, sm, truth)
+	defer pf.close()
 	var fSq, sSq, fNees, sNees float64
 	var fAll, sAll logHistogram
 	var nTruth, nNees int
 	var prevX, prevY float64
 	for i := 0; i < n; i++ {
-		if err := steps.read(i, &st, false); err != nil {
+		it, err := pf.at(i)
+		if err != nil {
 			return err
 		}
-		if err := sm.get(i, &smoothed); err != nil {
-			return err
-		}
-		p := &st.Post
-		if i > 0 && !st.Start {
+		p, smoothed, stamp := &it.post, &it.smoothed, it.stampNs
+		if i > 0 && !it.start {
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
 		if r95 := p.Position95(); r95 > sum.Max95M {
-			sum.Max95M, sum.Max95AtNs = r95, st.StampNs
+			sum.Max95M, sum.Max95AtNs = r95, stamp
 		}
 		sum.Final95M = p.Position95()
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
-		if batch = append(batch, Point{st.StampNs, smoothed}); len(batch) == cap(batch) {
-			rows <- batch
-			batch = make([]Point, 0, 4096)
-		}
-		var tp estimator.Pose
-		haveTruth := false
+		rows.add(stamp, smoothed)
+		tp, haveTruth := it.truth, it.haveTruth
 		if truth != nil {
-			var gap int64
-			tp, gap, haveTruth = truth.at(st.StampNs)
 			sum.TruthSteps++
 			if haveTruth {
 				sum.TruthMatched++
-				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, gap)
+				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, it.truthGapNs)
 			}
 		}
 		if haveTruth {
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
 			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
 			nTruth++
-			if fn, sn := nees3(p, tp), nees3(&smoothed, tp); !math.IsNaN(fn) && !math.IsNaN(sn) {
+			if fn, sn := it.nees[0], it.nees[1]; !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
 				sNees += sn
 				nNees++
@@ -930,8 +990,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			}
 		}
 		if i%every == 0 || i == n-1 {
-			run.Filtered = append(run.Filtered, Point{st.StampNs, *p})
-			run.Smoothed = append(run.Smoothed, Point{st.StampNs, smoothed})
+			run.Filtered = append(run.Filtered, Point{stamp, *p})
+			run.Smoothed = append(run.Smoothed, Point{stamp, *smoothed})
 			if truth != nil {
 				if !haveTruth {
 					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
@@ -940,10 +1000,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			}
 		}
 	}
-	rows <- batch
-	close(rows)
-	rows = nil
-	if err := <-written; err != nil {
+	if err := rows.close(); err != nil {
 		return err
 	}
 	if nTruth > 0 {
@@ -958,34 +1015,6 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 }
 
 func sq(v float64) float64 { return v * v }
-
-// writePoints writes the states of the batches as a CSV track.
-func writePoints(path string, batches <-chan []Point) error {
-	f, err := os.Create(path)
-	if err == nil {
-		w := bufio.NewWriterSize(f, 1<<20)
-		_, err = w.WriteString(strings.Join(csvHeader, ",") + "\n")
-		var row []byte
-		for b := range batches {
-			for i := range b {
-				if err == nil {
-					row = appendRow(row[:0], b[i].StampNs, &b[i].State)
-					_, err = w.Write(row)
-				}
-			}
-		}
-		if ferr := w.Flush(); err == nil {
-			err = ferr
-		}
-		if cerr := f.Close(); err == nil {
-			err = cerr
-		}
-	}
-	for range batches {
-		// Drain what is left after an error, so that the sender ends.
-	}
-	return err
-}
 
 // logHistogram counts positive values in bins a thousandth wide on a log
 // scale, for a median in bounded memory (within 0.05%).

@@ -5,6 +5,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math"
+	"math/bits"
 	"os"
 	"reflect"
 
@@ -12,63 +13,162 @@ import (
 	"reckon.example/fusion"
 )
 
-// Fixed-size little-endian records keep a long run's steps and smoothed
-// states on disk, so that memory does not grow with the run. A record is
-// sized for the run's state size k (every step of one robot has the same):
-// a state is its size and angle set in one word, the mean (k) and the
-// covariance (k x k); a step is its stamp, two states, the transition
-// Jacobian (k x k) and the start flag.
+// A long run's steps and smoothed states are kept on disk, so that memory
+// does not grow with the run, in compact little-endian records that come
+// back bit for bit:
+//
+//   - a state is its size n (one byte), a form byte (1: the covariance is
+//     symmetric to the bit and only its upper triangle is stored), the
+//     angle set (two bytes), the mean (n) and the covariance (n(n+1)/2 or
+//     n x n);
+//   - a step is its stamp, a flags byte (1: Start; 2: Post is Pred to the
+//     bit and is not stored), Pred, Post, and the transition Jacobian F
+//     (k x k, k the store's state size) as a bit mask of the entries that
+//     differ from the identity followed by those entries.
+//
+// The filter keeps its covariances symmetric to the bit, and most entries
+// of F are those of the identity, so that a step of four states takes
+// about 200 bytes instead of the 480 of the full form: the review writes
+// and reads less. Records are read in chunks of chunk records, found by
+// the offset of each chunk.
 const chunk = 2048 // records read at once
 
-func stateBytes(k int) int { return 8 + (k+k*k)*8 }
+const (
+	stateTri  = 1 // a state's covariance stored as its upper triangle
+	stepStart = 1 // Step.Start
+	stepSame  = 2 // Post equals Pred and is not stored
+)
 
-func stepBytes(k int) int { return 8 + 2*stateBytes(k) + k*k*8 + 8 }
+// symmetric reports whether s's covariance is symmetric to the bit.
+func symmetric(s *estimator.State) bool {
+	k := s.Size()
+	for i := 0; i < k; i++ {
+		for j := i + 1; j < k; j++ {
+			if math.Float64bits(s.At(i, j)) != math.Float64bits(s.At(j, i)) {
+				return false
+			}
+		}
+	}
+	return true
+}
+
+func appendF64(b []byte, v float64) []byte {
+	return binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+}
 
 func putState(b []byte, s *estimator.State) []byte {
 	k := s.Size()
-	var v [estimator.MaxStates * estimator.MaxStates]float64
-	b = binary.LittleEndian.AppendUint64(b, uint64(k)|uint64(s.Angles())<<32)
-	s.MeanInto(v[:])
-	for _, x := range v[:k] {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(x))
+	form := byte(0)
+	tri := symmetric(s)
+	if tri {
+		form = stateTri
 	}
-	s.CovarianceInto(v[:])
-	for _, x := range v[:k*k] {
-		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(x))
+	b = append(b, byte(k), form)
+	b = binary.LittleEndian.AppendUint16(b, s.Angles())
+	for i := 0; i < k; i++ {
+		b = appendF64(b, s.MeanAt(i))
+	}
+	for i := 0; i < k; i++ {
+		j0 := 0
+		if tri {
+			j0 = i
+		}
+		for j := j0; j < k; j++ {
+			b = appendF64(b, s.At(i, j))
+		}
 	}
 	return b
 }
 
+// stateLen returns the length of the state record at the start of b.
+func stateLen(b []byte) int {
+	k := int(b[0])
+	if b[1]&stateTri != 0 {
+		return 4 + (k+k*(k+1)/2)*8
+	}
+	return 4 + (k+k*k)*8
+}
+
+// getState decodes the state record at the start of b into s and returns
+// the rest of b.
 func getState(b []byte, s *estimator.State) []byte {
-	w := binary.LittleEndian.Uint64(b)
-	k, angles := int(uint32(w)), uint16(w>>32)
-	b = b[8:]
-	var x [estimator.MaxStates]float64
-	var p [estimator.MaxStates * estimator.MaxStates]float64
-	for i := range x[:k] {
-		x[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+	k, tri := int(b[0]), b[1]&stateTri != 0
+	angles := binary.LittleEndian.Uint16(b[2:])
+	b = b[4:]
+	if k == 0 {
+		*s = estimator.State{}
+		return b
+	}
+	// The packed form of estimator.Filter.Pack: the mean, then the
+	// covariance row by row.
+	var v [estimator.MaxStates * (estimator.MaxStates + 1)]float64
+	for i := range v[:k] {
+		v[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
 		b = b[8:]
 	}
-	for i := range p[:k*k] {
-		p[i] = math.Float64frombits(binary.LittleEndian.Uint64(b))
-		b = b[8:]
+	p := v[k:]
+	for i := 0; i < k; i++ {
+		j0 := 0
+		if tri {
+			j0 = i
+		}
+		for j := j0; j < k; j++ {
+			p[i*k+j] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+			b = b[8:]
+		}
+		if tri {
+			for j := 0; j < i; j++ {
+				p[i*k+j] = p[j*k+i]
+			}
+		}
 	}
-	*s = estimator.NewState(k, angles, x[:k], p[:k*k])
+	s.SetPacked(k, angles, v[:k+k*k])
 	return b
 }
 
-// fileStore is a file of fixed-size records with a read cache of one chunk.
-type fileStore struct {
-	f      *os.File
-	w      *bufio.Writer
-	size   int
-	n      int
-	cache  []byte
-	cacheN int // first record in cache
-	cacheC int // records in cache
+// fMaskBytes is the length of the mask of a Jacobian of size k.
+func fMaskBytes(k int) int { return (k*k + 7) / 8 }
+
+// identityBits returns the bits of entry (i, j) of the identity.
+func identityBits(i, j int) uint64 {
+	if i == j {
+		return math.Float64bits(1)
+	}
+	return 0
 }
 
-func newFileStore(dir, pattern string, size int) (*fileStore, error) {
+// stepLen returns the length of the step record of state size k at the
+// start of b.
+func stepLen(b []byte, k int) int {
+	n := 9
+	n += stateLen(b[n:])
+	if b[8]&stepSame == 0 {
+		n += stateLen(b[n:])
+	}
+	m := fMaskBytes(k)
+	set := 0
+	for _, x := range b[n : n+m] {
+		set += bits.OnesCount8(x)
+	}
+	return n + m + set*8
+}
+
+// chunkedFile is a file of variable-length records read a chunk at a time,
+// with a read cache of one chunk: the record offsets within it, and its
+// bytes.
+type chunkedFile struct {
+	f *os.File
+	n int // records
+	// span returns where chunk c lies in the file; recLen the length of
+	// the record at the start of a slice.
+	span   func(c int) (off, length int64)
+	recLen func(b []byte) int
+	cache  []byte
+	offs   []int
+	cacheC int // chunk in cache, -1 for none
+}
+
+func createTemp(dir, pattern string) (*os.File, error) {
 	f, err := os.CreateTemp(dir, pattern)
 	if err != nil {
 		return nil, err
@@ -76,153 +176,284 @@ func newFileStore(dir, pattern string, size int) (*fileStore, error) {
 	// Unlinked at once: the space goes back when the file is closed, even
 	// if the review is interrupted.
 	os.Remove(f.Name())
-	return &fileStore{f: f, w: bufio.NewWriterSize(f, 1<<20), size: size, cacheN: -1}, nil
+	return f, nil
 }
 
-func (fs *fileStore) appendRec(b []byte) error {
-	if len(b) != fs.size {
-		panic(fmt.Sprintf("review: record of %d bytes in a store of %d", len(b), fs.size))
-	}
-	fs.n++
-	_, err := fs.w.Write(b)
-	return err
-}
-
-// record returns record i, reading the chunk that ends at it (the smoother
-// and the report read backwards and forwards in order).
-func (fs *fileStore) record(i int, backwards bool) ([]byte, error) {
-	if fs.w != nil && fs.w.Buffered() > 0 {
-		if err := fs.w.Flush(); err != nil {
+// record returns record i.
+func (cf *chunkedFile) record(i int) ([]byte, error) {
+	if c := i / chunk; c != cf.cacheC {
+		off, length := cf.span(c)
+		if cap(cf.cache) < int(length) {
+			cf.cache = make([]byte, length)
+		}
+		cf.cache = cf.cache[:length]
+		if _, err := cf.f.ReadAt(cf.cache, off); err != nil {
 			return nil, err
 		}
+		cf.offs = cf.offs[:0]
+		for at, count := 0, min(chunk, cf.n-c*chunk); len(cf.offs) < count; at += cf.recLen(cf.cache[at:]) {
+			if at >= len(cf.cache) {
+				return nil, fmt.Errorf("review: chunk %d of a store holds fewer records than it should", c)
+			}
+			cf.offs = append(cf.offs, at)
+		}
+		cf.cacheC = c
 	}
-	if i < fs.cacheN || i >= fs.cacheN+fs.cacheC || fs.cacheN < 0 {
-		first := i
-		if backwards {
-			first = max(0, i-chunk+1)
-		}
-		count := min(chunk, fs.n-first)
-		if cap(fs.cache) < count*fs.size {
-			fs.cache = make([]byte, chunk*fs.size)
-		}
-		fs.cache = fs.cache[:count*fs.size]
-		if _, err := fs.f.ReadAt(fs.cache, int64(first)*int64(fs.size)); err != nil {
-			return nil, err
-		}
-		fs.cacheN, fs.cacheC = first, count
-	}
-	off := (i - fs.cacheN) * fs.size
-	return fs.cache[off : off+fs.size], nil
+	return cf.cache[cf.offs[i%chunk]:], nil
 }
-
-func (fs *fileStore) close() error { return fs.f.Close() }
 
 // stepFile is a fusion.StepStore on disk.
 type stepFile struct {
-	*fileStore
-	k   int // state size
-	buf []byte
+	f      *os.File
+	w      *bufio.Writer
+	k      int     // state size
+	n      int     // steps
+	size   int64   // bytes written
+	starts []int64 // offset of each chunk
+	buf    []byte
 }
 
 func newStepFile(dir string, k int) (*stepFile, error) {
-	fs, err := newFileStore(dir, "reckon-steps-*", stepBytes(k))
-	return &stepFile{fileStore: fs, k: k}, err
+	f, err := createTemp(dir, "reckon-steps-*")
+	if err != nil {
+		return nil, err
+	}
+	return &stepFile{f: f, w: bufio.NewWriterSize(f, 1<<20), k: k}, nil
 }
 
 func (sf *stepFile) add(s *fusion.Step) error {
-	b := sf.buf[:0]
-	b = binary.LittleEndian.AppendUint64(b, uint64(s.StampNs))
+	if s.Pred.Size() > estimator.MaxStates || s.Post.Size() > estimator.MaxStates {
+		panic(fmt.Sprintf("review: step of sizes %d and %d", s.Pred.Size(), s.Post.Size()))
+	}
+	b := binary.LittleEndian.AppendUint64(sf.buf[:0], uint64(s.StampNs))
+	flags := byte(0)
+	if s.Start {
+		flags |= stepStart
+	}
+	if sameBits(&s.Post, &s.Pred) {
+		flags |= stepSame
+	}
+	b = append(b, flags)
 	b = putState(b, &s.Pred)
-	b = putState(b, &s.Post)
+	if flags&stepSame == 0 {
+		b = putState(b, &s.Post)
+	}
+	m := len(b)
+	b = append(b, make([]byte, fMaskBytes(sf.k))...)
 	for i := 0; i < sf.k; i++ {
-		for _, v := range s.F[i*estimator.MaxStates : i*estimator.MaxStates+sf.k] {
-			b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+		for j := 0; j < sf.k; j++ {
+			if v := s.F[i*estimator.MaxStates+j]; math.Float64bits(v) != identityBits(i, j) {
+				b[m+(i*sf.k+j)/8] |= 1 << ((i*sf.k + j) % 8)
+				b = appendF64(b, v)
+			}
 		}
 	}
-	start := uint64(0)
-	if s.Start {
-		start = 1
-	}
-	b = binary.LittleEndian.AppendUint64(b, start)
 	sf.buf = b
-	return sf.appendRec(b)
+	if sf.n%chunk == 0 {
+		sf.starts = append(sf.starts, sf.size)
+	}
+	sf.n++
+	sf.size += int64(len(b))
+	_, err := sf.w.Write(b)
+	return err
 }
 
-func (sf *stepFile) Len() int { return sf.n }
+// sameBits reports whether a and b are the same state to the bit (== on
+// floats takes -0 for 0 and never matches a NaN).
+func sameBits(a, b *estimator.State) bool {
+	k := a.Size()
+	if b.Size() != k || a.Angles() != b.Angles() {
+		return false
+	}
+	for i := 0; i < k; i++ {
+		if math.Float64bits(a.MeanAt(i)) != math.Float64bits(b.MeanAt(i)) {
+			return false
+		}
+		for j := 0; j < k; j++ {
+			if math.Float64bits(a.At(i, j)) != math.Float64bits(b.At(i, j)) {
+				return false
+			}
+		}
+	}
+	return true
+}
 
-func (sf *stepFile) Step(i int, dst *fusion.Step) error { return sf.read(i, dst, true) }
+// reader returns a reader of the steps, with a cache of its own (once
+// every step was added and flushed).
+func (sf *stepFile) reader() *stepReader {
+	return &stepReader{k: sf.k, chunkedFile: chunkedFile{f: sf.f, n: sf.n, cacheC: -1,
+		span: func(c int) (int64, int64) {
+			end := sf.size
+			if c+1 < len(sf.starts) {
+				end = sf.starts[c+1]
+			}
+			return sf.starts[c], end - sf.starts[c]
+		},
+		recLen: func(b []byte) int { return stepLen(b, sf.k) }}}
+}
 
-func (sf *stepFile) read(i int, dst *fusion.Step, backwards bool) error {
-	b, err := sf.record(i, backwards)
+// stepReader reads a step file.
+type stepReader struct {
+	chunkedFile
+	k int
+}
+
+// readPost decodes the stamp, Start and Post of step i (into post).
+func (sr *stepReader) readPost(i int, post *estimator.State) (stampNs int64, start bool, err error) {
+	b, err := sr.record(i)
+	if err != nil {
+		return 0, false, err
+	}
+	stampNs, flags := int64(binary.LittleEndian.Uint64(b)), b[8]
+	b = b[9:]
+	if flags&stepSame == 0 {
+		b = b[stateLen(b):]
+	}
+	getState(b, post)
+	return stampNs, flags&stepStart != 0, nil
+}
+
+// read decodes step i into dst.
+func (sr *stepReader) read(i int, dst *fusion.Step) error {
+	b, err := sr.record(i)
 	if err != nil {
 		return err
 	}
 	dst.StampNs = int64(binary.LittleEndian.Uint64(b))
-	b = getState(b[8:], &dst.Pred)
-	b = getState(b, &dst.Post)
+	flags := b[8]
+	dst.Start = flags&stepStart != 0
+	b = b[9:]
+	b = getState(b, &dst.Pred)
+	if flags&stepSame != 0 {
+		dst.Post = dst.Pred
+	} else {
+		b = getState(b, &dst.Post)
+	}
+	mask := b[:fMaskBytes(sr.k)]
+	b = b[len(mask):]
 	dst.F = [estimator.MaxStates * estimator.MaxStates]float64{}
-	for i := 0; i < sf.k; i++ {
-		for j := 0; j < sf.k; j++ {
-			dst.F[i*estimator.MaxStates+j] = math.Float64frombits(binary.LittleEndian.Uint64(b))
-			b = b[8:]
+	for i := 0; i < sr.k; i++ {
+		for j := 0; j < sr.k; j++ {
+			v := math.Float64frombits(identityBits(i, j))
+			if mask[(i*sr.k+j)/8]&(1<<((i*sr.k+j)%8)) != 0 {
+				v = math.Float64frombits(binary.LittleEndian.Uint64(b))
+				b = b[8:]
+			}
+			dst.F[i*estimator.MaxStates+j] = v
 		}
 	}
-	dst.Start = binary.LittleEndian.Uint64(b) == 1
 	return nil
 }
 
 // stateFile is a fusion.StateSink on disk. The smoother writes backwards,
-// so writes gather in an aligned block of chunk records before they reach
-// the file.
+// so a chunk's states gather in memory; when the chunk is done a goroutine
+// of its own encodes and writes it while the smoother goes on, and the
+// file holds the chunks last first.
 type stateFile struct {
-	*fileStore
-	k      int // state size
-	blk    []byte
-	blkNum int // block in blk, -1 for none
-	lo, hi int // records [lo, hi) of the block are filled
+	f      *os.File
+	k      int
+	n      int
+	blk    []estimator.State // the chunk being filled
+	blkNum int               // chunk in blk, -1 for none
+	lo, hi int               // records [lo, hi) of the chunk are filled
+	jobs   chan stateChunk
+	free   chan []estimator.State
+	done   chan error
+	closed bool
+	err    error
+	// size and spans (where each chunk lies) belong to the writing
+	// goroutine until done.
+	size  int64
+	spans map[int][2]int64
+}
+
+// stateChunk is a chunk of states handed to the writer: states [lo, hi)
+// of chunk num, in states[lo-num*chunk:].
+type stateChunk struct {
+	num, lo, hi int
+	states      []estimator.State
 }
 
 func newStateFile(dir string, k int) (*stateFile, error) {
-	fs, err := newFileStore(dir, "reckon-smoothed-*", stateBytes(k))
-	return &stateFile{fileStore: fs, k: k, blk: make([]byte, chunk*stateBytes(k)), blkNum: -1}, err
+	f, err := createTemp(dir, "reckon-smoothed-*")
+	if err != nil {
+		return nil, err
+	}
+	sf := &stateFile{f: f, k: k, blk: make([]estimator.State, chunk), blkNum: -1, spans: map[int][2]int64{},
+		jobs: make(chan stateChunk, 1), free: make(chan []estimator.State, 2), done: make(chan error, 1)}
+	go sf.write()
+	return sf, nil
+}
+
+// write encodes and writes the chunks handed over, until the jobs end.
+func (sf *stateFile) write() {
+	var err error
+	var out []byte
+	for c := range sf.jobs {
+		if err == nil {
+			out = out[:0]
+			base := c.num * chunk
+			for i := c.lo; i < c.hi; i++ {
+				out = putState(out, &c.states[i-base])
+			}
+			_, err = sf.f.WriteAt(out, sf.size)
+			sf.spans[c.num] = [2]int64{sf.size, int64(len(out))}
+			sf.size += int64(len(out))
+		}
+		select {
+		case sf.free <- c.states:
+		default:
+		}
+	}
+	sf.done <- err
 }
 
 // SetSmoothed stores state i.
 func (sf *stateFile) SetSmoothed(i int, s *estimator.State) error {
+	if s.Size() > sf.k {
+		panic(fmt.Sprintf("review: smoothed state of size %d in a store of %d", s.Size(), sf.k))
+	}
 	if b := i / chunk; b != sf.blkNum {
-		if err := sf.flush(); err != nil {
-			return err
-		}
+		sf.hand()
 		sf.blkNum, sf.lo, sf.hi = b, i, i+1
 	}
 	sf.lo, sf.hi = min(sf.lo, i), max(sf.hi, i+1)
-	off := (i % chunk) * stateBytes(sf.k)
-	putState(sf.blk[off:off], s)
+	copyState(&sf.blk[i%chunk], s)
 	return nil
 }
 
-func (sf *stateFile) flush() error {
+// hand gives the chunk being filled to the writer.
+func (sf *stateFile) hand() {
 	if sf.blkNum < 0 {
-		return nil
+		return
 	}
-	base := sf.blkNum * chunk
-	sb := stateBytes(sf.k)
-	_, err := sf.f.WriteAt(sf.blk[(sf.lo-base)*sb:(sf.hi-base)*sb], int64(sf.lo)*int64(sb))
+	sf.jobs <- stateChunk{sf.blkNum, sf.lo, sf.hi, sf.blk}
 	sf.n = max(sf.n, sf.hi)
 	sf.blkNum = -1
-	return err
+	select {
+	case sf.blk = <-sf.free:
+	default:
+		sf.blk = make([]estimator.State, chunk)
+	}
 }
 
-func (sf *stateFile) get(i int, s *estimator.State) error {
-	if err := sf.flush(); err != nil {
-		return err
+// flush writes what is left and waits for the writer: the file is complete
+// then. It may be called again.
+func (sf *stateFile) flush() error {
+	if !sf.closed {
+		sf.hand()
+		sf.closed = true
+		close(sf.jobs)
+		sf.err = <-sf.done
 	}
-	b, err := sf.record(i, false)
-	if err != nil {
-		return err
-	}
-	getState(b, s)
-	return nil
+	return sf.err
+}
+
+// reader returns a reader of the states (once flushed).
+func (sf *stateFile) reader() *chunkedFile {
+	return &chunkedFile{f: sf.f, n: sf.n, cacheC: -1,
+		span:   func(c int) (int64, int64) { s := sf.spans[c]; return s[0], s[1] },
+		recLen: stateLen}
 }
 
 // stepStore keeps steps in memory up to a budget and spills them to a file
@@ -233,6 +464,7 @@ type stepStore struct {
 	mem    [][]fusion.Step // chunks of chunk steps: no large copies as it grows
 	n      int
 	file   *stepFile
+	rd     *stepReader
 }
 
 // Bytes a step costs in memory, with its smoothed state.
@@ -271,19 +503,45 @@ func (ss *stepStore) add(s *fusion.Step) error {
 
 func (ss *stepStore) Len() int {
 	if ss.file != nil {
-		return ss.file.Len()
+		return ss.file.n
 	}
 	return ss.n
 }
 
-func (ss *stepStore) Step(i int, dst *fusion.Step) error { return ss.read(i, dst, true) }
-
-func (ss *stepStore) read(i int, dst *fusion.Step, backwards bool) error {
-	if ss.file != nil {
-		return ss.file.read(i, dst, backwards)
+// Step copies step i into dst.
+func (ss *stepStore) Step(i int, dst *fusion.Step) error {
+	if ss.file == nil {
+		dst.CopyFrom(&ss.mem[i/chunk][i%chunk])
+		return nil
 	}
-	*dst = ss.mem[i/chunk][i%chunk]
-	return nil
+	return ss.fileReader().read(i, dst)
+}
+
+// readPost copies the stamp, Start and Post of step i (into post).
+func (ss *stepStore) readPost(i int, post *estimator.State) (stampNs int64, start bool, err error) {
+	if ss.file == nil {
+		s := &ss.mem[i/chunk][i%chunk]
+		copyState(post, &s.Post)
+		return s.StampNs, s.Start, nil
+	}
+	return ss.fileReader().readPost(i, post)
+}
+
+func (ss *stepStore) fileReader() *stepReader {
+	if ss.rd == nil {
+		ss.rd = ss.file.reader()
+	}
+	return ss.rd
+}
+
+// copyState copies src into dst, only the part in use when they have one
+// size.
+func copyState(dst, src *estimator.State) {
+	if src.Size() == 0 {
+		*dst = *src
+		return
+	}
+	dst.CopyFrom(src)
 }
 
 func (ss *stepStore) onDisk() bool { return ss.file != nil }
@@ -299,20 +557,16 @@ func (ss *stepStore) flush() error {
 // reader returns a reader of the steps with a cache of its own, which may
 // read while the store is read elsewhere (once every step was added and
 // flushed). It shares the store's file: close only the store.
-func (ss *stepStore) reader() (*stepStore, error) {
+func (ss *stepStore) reader() *stepStore {
 	if ss.file == nil {
-		return ss, nil // reading memory changes nothing
+		return ss // reading memory changes nothing
 	}
-	if err := ss.flush(); err != nil {
-		return nil, err
-	}
-	fs := &fileStore{f: ss.file.f, size: ss.file.size, n: ss.file.n, cacheN: -1}
-	return &stepStore{file: &stepFile{fileStore: fs, k: ss.file.k}}, nil
+	return &stepStore{file: ss.file}
 }
 
 func (ss *stepStore) close() error {
 	if ss.file != nil {
-		return ss.file.close()
+		return ss.file.f.Close()
 	}
 	return nil
 }
@@ -322,6 +576,7 @@ func (ss *stepStore) close() error {
 type stateStore struct {
 	mem  []estimator.State
 	file *stateFile
+	rd   *chunkedFile
 }
 
 func newStateStore(dir string, n, k int, onDisk bool) (*stateStore, error) {
@@ -348,16 +603,28 @@ func (ss *stateStore) flush() error {
 }
 
 func (ss *stateStore) get(i int, s *estimator.State) error {
-	if ss.file != nil {
-		return ss.file.get(i, s)
+	if ss.file == nil {
+		copyState(s, &ss.mem[i])
+		return nil
 	}
-	*s = ss.mem[i]
+	if ss.rd == nil {
+		if err := ss.file.flush(); err != nil {
+			return err
+		}
+		ss.rd = ss.file.reader()
+	}
+	b, err := ss.rd.record(i)
+	if err != nil {
+		return err
+	}
+	getState(b, s)
 	return nil
 }
 
 func (ss *stateStore) close() error {
 	if ss.file != nil {
-		return ss.file.close()
+		ss.file.flush()
+		return ss.file.f.Close()
 	}
 	return nil
 }

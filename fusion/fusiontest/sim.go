@@ -126,6 +126,10 @@ type Scenario struct {
 	Bump *Bump
 	// SpeedMPerS is the cruising speed (0.4).
 	SpeedMPerS float64
+	// SensorCovariance makes the camera's fixes carry no covariance of
+	// their own, so that they take the one the filter's configuration gives
+	// its sensor (as a camera that does not report one).
+	SensorCovariance bool
 
 	// The real error processes (errors.go); zero turns each off.
 	Errors
@@ -567,6 +571,9 @@ func (sm *Sim) emitCamera(t int64) {
 	case sm.s.CameraStampLateNs != 0:
 		in.Fix.StampNs = t + sm.s.CameraStampLateNs
 		in.ArrivalNs = max(in.ArrivalNs, in.Fix.StampNs)
+	}
+	if sm.s.SensorCovariance {
+		in.Fix.Cov = nil
 	}
 	sm.push(in)
 }

@@ -68,7 +68,7 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 			return nil, &LineError{Line: sr.line, Err: err}
 		}
 		if s.GetSample() == nil {
-			return nil, &LineError{Line: sr.line, Err: errors.New("none of odometry, heading, fix and reseed is set")}
+			return nil, &LineError{Line: sr.line, Err: errors.New("none of odometry, heading, fix, reseed and run_start is set")}
 		}
 		return s, nil
 	}
@@ -139,7 +139,9 @@ func FixToProto(f *fusion.Fix) *pb.Sample {
 }
 
 // SampleStamp returns the stamp of any kind of sample, nanoseconds on the
-// robot's time base (0 for a sample with none of them set).
+// robot's time base (0 for a sample with none of them set, and for a run
+// start, which has none: the new run's clock starts with the inputs after
+// it).
 func SampleStamp(s *pb.Sample) int64 {
 	switch v := s.GetSample().(type) {
 	case *pb.Sample_Odometry:
@@ -151,5 +153,5 @@ func SampleStamp(s *pb.Sample) int64 {
 	case *pb.Sample_Reseed:
 		return v.Reseed.GetStampNs()
 	}
-	return 0
+	return 0 // none set, or a run start
 }

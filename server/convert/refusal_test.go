@@ -42,6 +42,9 @@ func TestRefusalsAsValues(t *testing.T) {
 			pb.Refusal_REFUSAL_MALFORMED, "sample.fix.covariance"},
 		{"time backwards", &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StampNs: newest - 1e6, StartNs: newest - 2e6,
 			Motion: &pb.OdometrySample_Step{Step: &pb.BodyStep{}}}}}, pb.Refusal_REFUSAL_TIME_BACKWARDS, "sample.odometry"},
+		{"run start without boot id", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.run_start.boot_id"},
+		{"run start going back", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: "b", Run: 1}}}, pb.Refusal_REFUSAL_RUN_OUT_OF_ORDER, "sample.run_start.run"},
+		{"run start covariance without pose", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: "b", Covariance: cov3}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.run_start.pose"},
 		{"applied", fix(&pb.Fix{StampNs: newest, SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{}},
 			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{100, 0, 0, 0, 100, 0, 0, 0, 9}}}), pb.Refusal_REFUSAL_UNSPECIFIED, ""},
 	}

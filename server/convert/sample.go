@@ -23,6 +23,7 @@ type input struct {
 	Heading  fusion.Heading
 	Fix      fusion.Fix
 	Pose     reseedInput
+	Run      fusion.RunStart
 }
 
 // reseedInput is a decoded reseed.
@@ -70,8 +71,22 @@ func decode(s *pb.Sample) (input, error) {
 		}
 		in.kind, in.field = fusion.InputReseed, "sample.reseed"
 		in.Pose = reseedInput{StampNs: ps.GetStampNs(), Pose: poseFromProto(ps.GetPose()), Cov: cov}
+	case *pb.Sample_RunStart:
+		rs := v.RunStart
+		in.kind, in.field = fusion.InputRunStart, "sample.run_start"
+		in.Run = fusion.RunStart{BootID: rs.GetBootId(), Run: rs.GetRun()}
+		if rs.GetPose() != nil {
+			p := poseFromProto(rs.GetPose())
+			cov, err := covFromProto(rs.GetCovariance(), 3)
+			if err != nil {
+				return in, sampleErr("sample.run_start.covariance", err)
+			}
+			in.Run.Pose, in.Run.Cov = &p, cov
+		} else if rs.GetCovariance() != nil {
+			return in, sampleErrf("sample.run_start.pose", "missing, but a covariance is given")
+		}
 	default:
-		return in, sampleErrf("sample", "none of odometry, heading, fix and reseed is set")
+		return in, sampleErrf("sample", "none of odometry, heading, fix, reseed and run_start is set")
 	}
 	return in, nil
 }
@@ -158,6 +173,8 @@ func apply(r *fusion.Robot, in *input) fusion.Result {
 		return r.AddFix(in.Fix)
 	case fusion.InputReseed:
 		return r.Reseed(in.Pose.StampNs, in.Pose.Pose, in.Pose.Cov)
+	case fusion.InputRunStart:
+		return r.StartRun(in.Run)
 	}
 	panic(fmt.Sprintf("convert: input of kind %v", in.kind))
 }
@@ -180,7 +197,7 @@ func errorCode(err error) int32 {
 		return CodeOK
 	case errors.Is(err, fusion.ErrTimeBackwards), errors.Is(err, fusion.ErrTooOld):
 		return CodeOutOfRange
-	case errors.Is(err, fusion.ErrNoIMU):
+	case errors.Is(err, fusion.ErrNoIMU), errors.Is(err, fusion.ErrRunOutOfOrder):
 		return CodeFailedPrecondition
 	case errors.Is(err, fusion.ErrUnknownLandmark), errors.Is(err, fusion.ErrUnknownSensor):
 		return CodeNotFound
@@ -363,7 +380,12 @@ func TakeInto(resp *pb.IngestResponse, r *fusion.Robot, s *pb.Sample, clientSeq 
 			resp.StatusCode = resultCode(res)
 			return true
 		}
-		err = sampleErr(in.field, res.Err)
+		field := in.field
+		if p := fusion.FieldOf(res.Err); in.kind == fusion.InputRunStart && p != "" {
+			// A run start's fields are all its own: name the one at fault.
+			field += "." + p
+		}
+		err = sampleErr(field, res.Err)
 		resp.Refusal = refusalToProto(res.Err)
 	} else {
 		resp.Refusal = pb.Refusal_REFUSAL_MALFORMED

@@ -6,7 +6,6 @@ package daemon
 
 import (
 	"context"
-	"crypto/subtle"
 	"crypto/tls"
 	"crypto/x509"
 	"errors"
@@ -48,9 +47,15 @@ type Config struct {
 	// MetricsListen serves Prometheus metrics at /metrics ("" = off); an
 	// address without a host ("":9464"") binds loopback.
 	MetricsListen string
+	// ViewListen serves the live view ("" = off): a page at "/" that draws
+	// every robot live, fed by server-sent events at "/events" (view.go).
+	// An address without a host binds loopback; it speaks TLS when the
+	// service does, and needs the Token when one is set.
+	ViewListen string
 	// Insecure allows serving in plain text on an address that is not
-	// loopback (Listen without TLS, MetricsListen); without it Serve
-	// refuses to start.
+	// loopback (Listen without TLS, MetricsListen, ViewListen without TLS
+	// and a token or client certificates); without it Serve refuses to
+	// start.
 	Insecure bool
 	// MaxStreams bounds the concurrent streams of one connection (default
 	// 1024).
@@ -62,6 +67,9 @@ type Config struct {
 	ShutdownGrace time.Duration
 	// Ready, if set, is called with the bound addresses once serving.
 	Ready func(grpcAddr, metricsAddr string)
+	// ViewReady, if set, is called with the live view's bound address once
+	// serving, before Ready.
+	ViewReady func(viewAddr string)
 	// Robots are created at start if the journal did not restore them.
 	Robots map[string]*pb.RobotConfig
 }
@@ -94,7 +102,7 @@ func checkToken(ctx context.Context, method, token string) error {
 	}
 	md, _ := metadata.FromIncomingContext(ctx)
 	for _, v := range md.Get("authorization") {
-		if got, ok := strings.CutPrefix(v, "Bearer "); ok && subtle.ConstantTimeCompare([]byte(got), []byte(token)) == 1 {
+		if bearerOK(v, token) {
 			return nil
 		}
 	}
@@ -131,15 +139,29 @@ func Serve(ctx context.Context, dc Config) error {
 		srv.Close()
 		return err
 	}
+	vsrv, viewAddr, err := startView(&dc, srv)
+	if err != nil {
+		if hsrv != nil {
+			hsrv.Close()
+		}
+		lis.Close()
+		srv.Close()
+		return err
+	}
 	serveErr := make(chan error, 1)
 	go func() { serveErr <- gs.Serve(lis) }()
-	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr)
+	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr, "view", viewAddr)
+	if dc.ViewReady != nil && vsrv != nil {
+		dc.ViewReady(viewAddr)
+	}
 	if dc.Ready != nil {
 		dc.Ready(lis.Addr().String(), metricsAddr)
 	}
 	err = wait(ctx, &dc, serveErr, gs, hs, srv)
-	if hsrv != nil {
-		hsrv.Close()
+	for _, h := range []*http.Server{hsrv, vsrv} {
+		if h != nil {
+			h.Close()
+		}
 	}
 	if cerr := srv.Close(); err == nil {
 		err = cerr

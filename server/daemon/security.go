@@ -25,22 +25,37 @@ func loopbackAddr(addr string) bool {
 }
 
 // checkExposure refuses to serve off loopback without protection: the gRPC
-// listener needs TLS or Insecure, and the metrics listener (which has no
-// TLS) needs Insecure. A metrics address without a host binds loopback.
+// listener needs TLS or Insecure, the metrics listener (which has no TLS)
+// needs Insecure, and the live view needs TLS with a token or client
+// certificates (it shows where the robots are, and a token must not travel
+// in plain text), or Insecure. A metrics or view address without a host
+// binds loopback.
 func checkExposure(dc *Config) error {
 	if !loopbackAddr(dc.Listen) && dc.TLSCert == "" && !dc.Insecure {
 		return fmt.Errorf("listen %s is not a loopback address: serving it needs TLS (-tls-cert and -tls-key) or -insecure to serve in plain text", dc.Listen)
 	}
-	if dc.MetricsListen == "" {
-		return nil
+	if dc.MetricsListen != "" {
+		dc.MetricsListen = hostOrLoopback(dc.MetricsListen)
+		if !loopbackAddr(dc.MetricsListen) && !dc.Insecure {
+			return fmt.Errorf("metrics-listen %s is not a loopback address: metrics are served in plain text, which needs -insecure", dc.MetricsListen)
+		}
 	}
-	if host, port, err := net.SplitHostPort(dc.MetricsListen); err == nil && host == "" {
-		dc.MetricsListen = net.JoinHostPort("127.0.0.1", port)
-	}
-	if !loopbackAddr(dc.MetricsListen) && !dc.Insecure {
-		return fmt.Errorf("metrics-listen %s is not a loopback address: metrics are served in plain text, which needs -insecure", dc.MetricsListen)
+	if dc.ViewListen != "" {
+		dc.ViewListen = hostOrLoopback(dc.ViewListen)
+		guarded := dc.TLSCert != "" && (dc.Token != "" || dc.TLSClientCA != "")
+		if !loopbackAddr(dc.ViewListen) && !guarded && !dc.Insecure {
+			return fmt.Errorf("view %s is not a loopback address: the live view shows where the robots are, so serving it needs TLS (-tls-cert and -tls-key) with -token-file or -tls-client-ca, or -insecure to serve it anyway", dc.ViewListen)
+		}
 	}
 	return nil
+}
+
+// hostOrLoopback returns addr with an empty host (":PORT") made loopback.
+func hostOrLoopback(addr string) string {
+	if host, port, err := net.SplitHostPort(addr); err == nil && host == "" {
+		return net.JoinHostPort("127.0.0.1", port)
+	}
+	return addr
 }
 
 // expiryWarning is how long before its end a certificate is reported.

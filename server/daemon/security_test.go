@@ -56,6 +56,16 @@ func TestServeRefusesPlaintextOffLoopback(t *testing.T) {
 		{Config{Listen: "127.0.0.1:7460", MetricsListen: "0.0.0.0:9464"}, "metrics-listen"},
 		{Config{Listen: "127.0.0.1:7460", MetricsListen: "0.0.0.0:9464", Insecure: true}, ""},
 		{Config{Listen: "127.0.0.1:7460", MetricsListen: ":9464"}, ""},
+		// The live view shows where the robots are: off loopback it needs
+		// TLS and a token (or client certificates), or -insecure.
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "127.0.0.1:7470"}, ""},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: ":7470"}, ""},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "0.0.0.0:7470"}, "-insecure"},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "0.0.0.0:7470", Token: "t"}, "-tls-cert"},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "0.0.0.0:7470", TLSCert: "c.pem", TLSKey: "k.pem"}, "-token-file"},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "0.0.0.0:7470", TLSCert: "c.pem", TLSKey: "k.pem", Token: "t"}, ""},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "0.0.0.0:7470", TLSCert: "c.pem", TLSKey: "k.pem", TLSClientCA: "ca.pem"}, ""},
+		{Config{Listen: "127.0.0.1:7460", ViewListen: "0.0.0.0:7470", Insecure: true}, ""},
 	}
 	for _, c := range cases {
 		dc := c.dc
@@ -71,6 +81,11 @@ func TestServeRefusesPlaintextOffLoopback(t *testing.T) {
 	checkExposure(&dc)
 	if dc.MetricsListen != "127.0.0.1:9464" {
 		t.Errorf("metrics address without a host became %q, want loopback", dc.MetricsListen)
+	}
+	dc = Config{Listen: "127.0.0.1:7460", ViewListen: ":7470"}
+	checkExposure(&dc)
+	if dc.ViewListen != "127.0.0.1:7470" {
+		t.Errorf("view address without a host became %q, want loopback", dc.ViewListen)
 	}
 	if err := Serve(context.Background(), Config{Listen: "0.0.0.0:0"}); err == nil || !strings.Contains(err.Error(), "not a loopback address") {
 		t.Errorf("Serve on 0.0.0.0 in plain text: %v", err)

@@ -38,6 +38,7 @@ type Writer struct {
 	ends       []int // where each entry in buf ends
 	dirty      bool  // written since the last fsync
 	broken     error // wraps ErrBroken
+	writes     uint64
 }
 
 // SegmentPath returns the path of segment n of a robot's journal.
@@ -416,6 +417,7 @@ func (w *Writer) Flush() (complete int, err error) {
 	w.size += int64(len(w.buf))
 	w.drop()
 	w.dirty = true
+	w.writes++
 	if w.opt.SyncEach {
 		if err := w.f.Sync(); err != nil {
 			return 0, w.unsync(before, err)
@@ -452,6 +454,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 	w.size += int64(keep)
 	if keep > 0 {
 		w.dirty = true
+		w.writes++
 		if w.opt.SyncEach {
 			if serr := w.f.Sync(); serr != nil {
 				uerr := w.unsync(before, serr)
@@ -518,6 +521,15 @@ func (w *Writer) rotate() error {
 		return &RotateError{Segment: SegmentPath(w.dir, w.robot, n), Err: classify(err)}
 	}
 	return nil
+}
+
+// SyncPoint returns the path of the segment being written and how many
+// writes went into the journal so far: a periodic fsync that runs without
+// the owner's lock (through a descriptor of its own) syncs path, and
+// need not sync again while writes stays the same. Earlier segments were
+// fsynced before the next one started.
+func (w *Writer) SyncPoint() (path string, writes uint64) {
+	return w.segPath(), w.writes
 }
 
 // Sync fsyncs the current segment if anything was written since the last

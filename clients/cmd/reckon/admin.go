@@ -155,9 +155,10 @@ func runDelete(ctx context.Context, args []string, stdout, stderr io.Writer) err
 
 func runRobots(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("robots", "[flags]", `
-Lists the service's robots: inputs taken, the stamp of the newest odometry
-(seconds on the robot's time base) and the state: "trusted", the reasons not
-to trust the estimate, or why the service cannot serve the robot.`)
+Lists the service's robots: the current run (from 1; a controller restart
+starts the next), inputs taken, the stamp of the newest odometry (seconds on
+the current run's time base) and the state: "trusted", the reasons not to
+trust the estimate, or why the service cannot serve the robot.`)
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	pos, err := parseArgs(fs, args, stdout, stderr)
@@ -173,7 +174,7 @@ to trust the estimate, or why the service cannot serve the robot.`)
 	}
 	defer c.Close()
 	tw := tabwriter.NewWriter(stdout, 0, 8, 2, ' ', 0)
-	fmt.Fprintln(tw, "ROBOT\tINPUTS\tNEWEST_S\tSTATE")
+	fmt.Fprintln(tw, "ROBOT\tRUN\tINPUTS\tNEWEST_S\tSTATE")
 	for r, err := range c.ListRobots(ctx, 0) {
 		if err != nil {
 			return err
@@ -182,7 +183,7 @@ to trust the estimate, or why the service cannot serve the robot.`)
 		if err != nil {
 			return err
 		}
-		fmt.Fprintf(tw, "%s\t%d\t%.3f\t%s\n", r.GetName(), r.GetInputCount(), float64(r.GetNewestStampNs())*1e-9, state)
+		fmt.Fprintf(tw, "%s\t%d\t%d\t%.3f\t%s\n", r.GetName(), r.GetRun(), r.GetInputCount(), float64(r.GetNewestStampNs())*1e-9, state)
 	}
 	return tw.Flush()
 }
@@ -354,34 +355,20 @@ from it at the stamp -at (default: its newest odometry); samples stamped
 before are no longer taken. A reseed the robot refuses exits 5.`)
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
-	x := fs.Float64("x", 0, "field x, metres (required)")
-	y := fs.Float64("y", 0, "field y, metres (required)")
-	heading := fs.Float64("heading", 0, "heading, radians counter-clockwise from the field x axis (required)")
-	stdM := fs.Float64("std-m", 0.05, "standard deviation of x and y, metres")
-	stdRad := fs.Float64("std-rad", 0.035, "standard deviation of the heading, radians")
-	covText := fs.String("cov", "", "full 3x3 covariance of (x, y, heading), 9 comma-separated row-major values (m^2, m*rad, rad^2); replaces -std-m and -std-rad")
+	pf := addPoseFlags(fs, "(required)")
 	at := fs.Int64("at", 0, "stamp, nanoseconds on the robot's time base (default: its newest odometry)")
 	name, _, err := oneRobot(fs, args, stdout, stderr)
 	if err != nil {
 		return err
 	}
-	if !isSet(fs, "x") || !isSet(fs, "y") || !isSet(fs, "heading") {
+	if !pf.given(fs) {
 		return usagef(fs, "needs -x, -y and -heading")
 	}
-	var cov []float64
-	switch {
-	case *covText != "" && (isSet(fs, "std-m") || isSet(fs, "std-rad")):
-		return usagef(fs, "-cov replaces -std-m and -std-rad; give one or the other")
-	case *covText != "":
-		if cov, err = parseCov(*covText); err != nil {
-			return usagef(fs, "-cov: %v", err)
-		}
-	default:
-		if !(*stdM > 0) || !(*stdRad > 0) {
-			return usagef(fs, "-std-m and -std-rad must be positive")
-		}
-		cov = []float64{*stdM * *stdM, 0, 0, 0, *stdM * *stdM, 0, 0, 0, *stdRad * *stdRad}
+	pose, cov, err := pf.read(fs)
+	if err != nil {
+		return err
 	}
+	x, y, heading := pose.GetXM(), pose.GetYM(), pose.GetHeadingRad()
 	c, err := cf.dial()
 	if err != nil {
 		return err
@@ -393,7 +380,7 @@ before are no longer taken. A reseed the robot refuses exits 5.`)
 			return err
 		}
 	}
-	resp, err := c.Reseed(ctx, name, stamp, &pb.FloorPose{XM: *x, YM: *y, HeadingRad: *heading}, cov)
+	resp, err := c.Reseed(ctx, name, stamp, pose, cov)
 	if err != nil {
 		return err
 	}
@@ -401,7 +388,7 @@ before are no longer taken. A reseed the robot refuses exits 5.`)
 		return fmt.Errorf("%w: reseed of %s at %d ns %s: %s", errRefused, name, stamp, convert.VerdictName(resp.GetVerdict()), resp.GetReason())
 	}
 	fmt.Fprintf(stdout, "%s reseeded at %.3f s to x %.3f m, y %.3f m, heading %.1f deg (input %d)\n",
-		name, float64(stamp)*1e-9, *x, *y, *heading*180/math.Pi, resp.GetSequence())
+		name, float64(stamp)*1e-9, x, y, heading*180/math.Pi, resp.GetSequence())
 	return nil
 }
 

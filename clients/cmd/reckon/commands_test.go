@@ -117,7 +117,8 @@ func TestHelpAndUsage(t *testing.T) {
 	for _, args := range [][]string{{}, {"fly"}, {"pose"}, {"pose", "a", "b"}, {"pose", "Not_A_Name"}, {"stats", "cart", "-addr"},
 		{"feed", "-robot", "cart"}, {"feed", "-robot", "cart", "-pace", "-1", "x.jsonl"}, {"feed", "-robot", "cart", "-replace", "x.jsonl"},
 		{"reseed", "cart", "-x", "1"}, {"reseed", "cart", "-x", "1", "-y", "1", "-heading", "0", "-cov", "1,2"},
-		{"create", "cart"}, {"watch"}, {"version", "extra"}, {"replay"}, {"review"}, {"demo", "-layout", "tricycle"}} {
+		{"create", "cart"}, {"watch"}, {"version", "extra"}, {"replay"}, {"review"}, {"demo", "-layout", "tricycle"},
+		{"tune"}, {"tune", "run.jsonl"}, {"tune", "-config", "a.yaml", "-out", "a.yaml", "run.jsonl"}, {"tune", "-config", "a.yaml", "-max-se", "0", "run.jsonl"}} {
 		if _, errs, code := runCode(t, ctx, "", args...); code != exitUsage || !strings.Contains(errs, "usage") && !strings.Contains(errs, "robot name") && !strings.Contains(errs, "layout") && !strings.Contains(errs, "name a run") {
 			t.Errorf("%v: exit %d, want %d; stderr %q", args, code, exitUsage, errs)
 		}

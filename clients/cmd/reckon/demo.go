@@ -64,7 +64,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if err != nil {
 		return err
 	}
-	addr, stopServer, err := startDemoServer(opt.journal)
+	addr, pageAddr, stopServer, err := startDemoServer(opt.journal, opt.page)
 	if err != nil {
 		return err
 	}
@@ -75,6 +75,9 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	}
 	defer d.close()
 	fmt.Fprintf(stdout, "reckon demo: greenhouse cart (%s) and camera feeding %s on %s; journal in %s\n", opt.layout, demoRobot, addr, opt.journal)
+	if pageAddr != "" {
+		fmt.Fprintf(stdout, "live view: http://%s/\n", pageAddr)
+	}
 	if !opt.live {
 		fmt.Fprintf(stdout, "%7s %8s %8s %8s %7s %7s %7s %8s %7s  %s\n", "t_s", "x_m", "y_m", "head_deg", "sx_m", "sy_m", "sh_deg", "r95_m", "err_m", "trust")
 	}
@@ -104,6 +107,7 @@ type demoOptions struct {
 	bumpAtS  float64 // when the cart is lifted aside (0: never)
 	markers  bool
 	journal  string
+	page     string  // the live view page's address ("": none)
 	live     bool    // redraw the screen rather than print lines
 	everyS   float64 // simulated seconds between lines
 }
@@ -124,6 +128,7 @@ gRPC clients, and shows the live estimate; leaves the journal for review.`)
 	fs.StringVar(&o.journal, "journal", "", "journal directory (default reckon-demo/run-<time>)")
 	view := fs.String("view", "auto", "live (redraw), lines (one line every -every seconds) or auto (live on a terminal)")
 	fs.Float64Var(&o.everyS, "every", 5, "simulated seconds between lines in the lines view")
+	fs.StringVar(&o.page, "page", "", "also serve the live view page on this loopback address (\"127.0.0.1:7470\" or \":7470\")")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
 		return o, err
@@ -152,18 +157,19 @@ func (o demoOptions) scenario() fusiontest.Scenario {
 }
 
 // startDemoServer runs the service on a loopback port with its journal in
-// dir until stop, which returns the service's error; stop may be called
-// more than once.
-func startDemoServer(dir string) (addr string, stop func() error, err error) {
+// dir, and the live view page on page unless it is empty, until stop,
+// which returns the service's error; stop may be called more than once.
+func startDemoServer(dir, page string) (addr, pageAddr string, stop func() error, err error) {
 	ctx, cancel := context.WithCancel(context.Background())
-	addrc := make(chan string, 1)
+	addrc := make(chan [2]string, 1)
 	done := make(chan error, 1)
-	go func() { done <- serveDemo(ctx, dir, func(a string) { addrc <- a }) }()
+	go func() { done <- serveDemo(ctx, dir, page, func(a, p string) { addrc <- [2]string{a, p} }) }()
 	select {
-	case addr = <-addrc:
+	case a := <-addrc:
+		addr, pageAddr = a[0], a[1]
 	case err := <-done:
 		cancel()
-		return "", nil, fmt.Errorf("server stopped before it listened: %w", err)
+		return "", "", nil, fmt.Errorf("server stopped before it listened: %w", err)
 	}
 	stop = sync.OnceValue(func() error {
 		cancel()
@@ -172,13 +178,16 @@ func startDemoServer(dir string) (addr string, stop func() error, err error) {
 		}
 		return nil
 	})
-	return addr, stop, nil
+	return addr, pageAddr, stop, nil
 }
 
-// serveDemo is the demo's service: on loopback, with a journal, silent.
-func serveDemo(ctx context.Context, dir string, ready func(addr string)) error {
-	return daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Options: server.Options{JournalDir: dir,
-		Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}, Ready: func(a, _ string) { ready(a) }})
+// serveDemo is the demo's service: on loopback, with a journal, silent;
+// with the live view on page unless it is empty (the daemon refuses an
+// address that is not loopback, since the demo has no -insecure).
+func serveDemo(ctx context.Context, dir, page string, ready func(addr, pageAddr string)) error {
+	var pageAddr string
+	return daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", ViewListen: page, Options: server.Options{JournalDir: dir,
+		Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}, ViewReady: func(p string) { pageAddr = p }, Ready: func(a, _ string) { ready(a, pageAddr) }})
 }
 
 // demoRun is one run of the demo: the simulated cart's odometry bridge and

@@ -10,8 +10,6 @@ import (
 	"strings"
 	"text/tabwriter"
 
-	"go.yaml.in/yaml/v3"
-
 	"reckon.example/fusion"
 	"reckon.example/fusion/calib"
 	pb "reckon.example/proto/reckon/v1"
@@ -191,22 +189,10 @@ func configRows(t calib.IMUTerms) []configRow {
 // set depend on imu_mode: rotation sets the turn term, the others the
 // heading and offset terms.
 func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64, stdout io.Writer) error {
-	data, err := os.ReadFile(in)
+	c, err := loadYAML(in)
 	if err != nil {
 		return err
 	}
-	c, _, err := convert.LoadConfigYAML(data)
-	if err != nil {
-		return fmt.Errorf("%s: %w", in, err)
-	}
-	var doc yaml.Node
-	if err := yaml.Unmarshal(data, &doc); err != nil {
-		return fmt.Errorf("%s: %w", in, err)
-	}
-	if len(doc.Content) == 0 || doc.Content[0].Kind != yaml.MappingNode {
-		return fmt.Errorf("%s: %w: not a mapping", in, convert.ErrConfigFile)
-	}
-	root := doc.Content[0]
 	rows := configRows(terms)
 	if c.GetImuMode() == pb.ImuMode_IMU_MODE_ROTATION {
 		rows = rows[2:]
@@ -219,37 +205,22 @@ func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, 
 		"imu_offset_var_rad2_per_s": def.IMUOffsetVarRad2PerS,
 		"imu_turn_var_rad2_per_rad": def.IMUTurnVarRad2PerRad,
 	}
-	var changes []string
+	var edits []configEdit
 	for _, r := range rows {
 		if r.value <= 0 {
 			continue
 		}
-		v := strconv.FormatFloat(r.value, 'g', 4, 64)
-		old := setNoise(root, r.key, v, "from imu-noise: "+r.how)
-		if old == "" {
-			old = strconv.FormatFloat(defaults[r.key], 'g', -1, 64) + " (default)"
-		}
-		changes = append(changes, fmt.Sprintf("noise.%s %s -> %s", r.key, old, v))
+		edits = append(edits, configEdit{path: "noise." + r.key, value: strconv.FormatFloat(r.value, 'g', 4, 64),
+			comment: "from imu-noise: " + r.how, absent: strconv.FormatFloat(defaults[r.key], 'g', -1, 64) + " (default)"})
 	}
-	if len(changes) == 0 {
+	if len(edits) == 0 {
 		return fmt.Errorf("%w: the Allan deviation of %s determines none of the IMU terms this robot uses", errRefused, file)
 	}
-	note := fmt.Sprintf("reckon imu-noise: %s; from the overlapping Allan deviation (IEEE Std 952-1997, Annex C) of the static recording %s: %s; horizon T %g s, turn rate %g rad/s",
-		strings.Join(changes, ", "), file, termSummary(nz), horizon, turnRate)
-	root.HeadComment = strings.TrimSpace("# " + note + "\n" + root.HeadComment)
-	var b strings.Builder
-	enc := yaml.NewEncoder(&b)
-	enc.SetIndent(2)
-	if err := enc.Encode(&doc); err != nil {
-		return err
-	}
-	if err := enc.Close(); err != nil {
-		return err
-	}
-	if _, _, err := convert.LoadConfigYAML([]byte(b.String())); err != nil {
-		return fmt.Errorf("the new configuration does not load: %w", err)
-	}
-	if err := os.WriteFile(out, []byte(b.String()), 0o644); err != nil {
+	changes, err := writeConfigEdits(in, out, edits, func(changes []string) string {
+		return fmt.Sprintf("reckon imu-noise: %s; from the overlapping Allan deviation (IEEE Std 952-1997, Annex C) of the static recording %s: %s; horizon T %g s, turn rate %g rad/s",
+			strings.Join(changes, ", "), file, termSummary(nz), horizon, turnRate)
+	})
+	if err != nil {
 		return err
 	}
 	fmt.Fprintf(stdout, "\nwrote %s: %s\n", out, strings.Join(changes, ", "))
@@ -268,45 +239,4 @@ func termSummary(nz calib.Noise) string {
 		return "no term found"
 	}
 	return strings.Join(parts, ", ")
-}
-
-// setNoise sets noise.key in a configuration's root mapping to value with
-// a line comment, adding the noise mapping or the key if missing, and
-// returns the old value ("" if there was none).
-func setNoise(root *yaml.Node, key, value, comment string) (old string) {
-	noise := mapValue(root, "noise")
-	if noise != nil && noise.Kind != yaml.MappingNode { // "noise:" with nothing
-		*noise = yaml.Node{Kind: yaml.MappingNode, Tag: "!!map"}
-	}
-	if noise == nil {
-		noise = &yaml.Node{Kind: yaml.MappingNode, Tag: "!!map"}
-		root.Content = append(root.Content, &yaml.Node{Kind: yaml.ScalarNode, Tag: "!!str", Value: "noise"}, noise)
-	}
-	noise.Style = 0 // block style, so that each term carries its comment
-	v := mapValue(noise, key)
-	if v == nil {
-		v = &yaml.Node{Kind: yaml.ScalarNode}
-		noise.Content = append(noise.Content, &yaml.Node{Kind: yaml.ScalarNode, Tag: "!!str", Value: key}, v)
-	} else {
-		old = v.Value
-	}
-	v.Tag, v.Value, v.Style = "!!float", value, 0
-	v.LineComment = "# " + comment
-	if old != "" {
-		v.LineComment += "; was " + old
-	}
-	return old
-}
-
-// mapValue returns the value of key in a mapping node, or nil.
-func mapValue(m *yaml.Node, key string) *yaml.Node {
-	if m.Kind != yaml.MappingNode {
-		return nil
-	}
-	for i := 0; i+1 < len(m.Content); i += 2 {
-		if m.Content[i].Value == key {
-			return m.Content[i+1]
-		}
-	}
-	return nil
 }

@@ -16,7 +16,9 @@ func runLink(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	fs := newFlagSet("link", "(-serial DEVICE [-baud N] | -udp HOST:PORT) -robot NAME [flags]", `
 Reads reckon link frames from a microcontroller (clients/bridge/PROTOCOL.md) and
 sends their odometry to the robot until interrupted; prints a summary at the end
-and exits 130.`)
+and exits 130. A controller restart (its boot byte changes, its clock and counts
+start again) begins a new run of the robot (boot id link-boot-{byte}), as
+"reckon start-run" does by hand.`)
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	port := fs.String("serial", "", "serial port of the controller, for instance /dev/ttyACM0")
@@ -69,6 +71,13 @@ and exits 130.`)
 	}
 	fmt.Fprintf(stderr, "linking %s to %s; interrupt to stop\n", from, name)
 	var dec bridge.Decoder
+	// A controller that restarted while no bridge listened begins a new
+	// run too: the robot's current run names the boot it came from.
+	r, err := c.GetRobot(ctx, name)
+	if err != nil {
+		return err
+	}
+	dec.Resume(r.GetBootId())
 	sum, err := bridge.Forward(ctx, src, &dec, sess)
 	printLinkSummary(stdout, name, sum)
 	if ctx.Err() != nil && (err == nil || exitCode(err) == exitInterrupted) {

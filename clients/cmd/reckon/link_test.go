@@ -103,3 +103,70 @@ func TestLinkFlags(t *testing.T) {
 		t.Errorf("link -h: err %v, stdout %q", err, out)
 	}
 }
+
+// TestLinkReboot: the controller restarts mid-run (its boot byte changes,
+// its counter, clock and counts start again): reckon link starts run 2 of
+// the robot and its frames go on being taken on the new clock.
+func TestLinkReboot(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	linkCtx, stop := context.WithCancel(context.Background())
+	var out, errb bytes.Buffer
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+	}()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	// Each boot's feed is sent again until its last stamp arrives (until
+	// the link listens, datagrams may be lost; duplicates are dropped).
+	for _, boot := range []struct {
+		boot   uint8
+		frames int
+	}{{1, 150}, {2, 60}} {
+		last := int64(boot.frames-1) * 10_000_000
+		deadline := time.Now().Add(20 * time.Second)
+		for {
+			var b []byte
+			for k := range boot.frames {
+				f := bridge.Frame{Type: bridge.FrameWheels, Boot: boot.boot, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+				b = bridge.AppendFrame(b, &f, nil)
+				if k%20 == 19 || k == boot.frames-1 {
+					conn.Write(b)
+					b = b[:0]
+				}
+			}
+			r, err := c.GetRobot(context.Background(), "robots/cart")
+			if err == nil && r.GetNewestStampNs() == last && r.GetRun() == uint64(boot.boot) {
+				break
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("boot %d: the last frame never arrived (%v)\n%s%s", boot.boot, r, out.String(), errb.String())
+			}
+			time.Sleep(50 * time.Millisecond)
+		}
+	}
+	r, err := c.GetRobot(context.Background(), "robots/cart")
+	if err != nil || r.GetRun() != 2 || r.GetBootId() != bridge.BootID(2) {
+		t.Errorf("after the reboot: %v %v", r, err)
+	}
+	stop()
+	<-linkDone
+	if s := out.String(); !strings.Contains(s, " 1 restarts") || !strings.Contains(s, "too_old 0, invalid 0") {
+		t.Errorf("summary:\n%s", s)
+	}
+}

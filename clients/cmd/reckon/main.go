@@ -8,6 +8,7 @@
 //	reckon stats    a robot's statistics: verdict counts, per-sensor consistency
 //	reckon pose     a robot's pose, the latest or at a stamp
 //	reckon reseed   put a robot at a known pose
+//	reckon start-run  start a new run of a robot whose controller restarted
 //	reckon feed     stream a JSON Lines file of samples to a robot, paced or not
 //	reckon watch    print a robot's fused poses as a table, CSV or JSON Lines
 //	reckon link     feed a robot from a microcontroller's frames over a serial port or UDP
@@ -20,6 +21,7 @@
 //	reckon compare  the same run under two configurations, side by side
 //	reckon export   journals as Parquet tables (runs, inputs, poses, events)
 //	reckon imu-noise  IMU noise terms from a static recording by Allan deviation
+//	reckon tune     noise levels fitted to a recorded run by the likelihood of its innovations
 //	reckon version  the module version and source revision of this binary
 //
 // Run "reckon help" for the commands and "reckon <command> -h" for flags;
@@ -84,6 +86,7 @@ func commands() []command {
 		{"stats", "a robot's statistics: verdict counts, per-sensor consistency", outErr(runStats)},
 		{"pose", "a robot's fused pose, the latest or at a stamp", outErr(runPose)},
 		{"reseed", "put a robot at a known pose", outErr(runReseed)},
+		{"start-run", "start a new run of a robot whose controller restarted (its clock jumped back)", outErr(runStartRun)},
 		{"feed", "stream a JSON Lines file of samples to a robot, paced or as fast as possible", runFeed},
 		{"watch", "print a robot's fused poses as a table, CSV or JSON Lines; reconnects", outErr(runWatch)},
 		{"link", "feed a robot from a microcontroller's frames over a serial port or UDP", outErr(runLink)},
@@ -92,6 +95,7 @@ func commands() []command {
 		{"review", "replay a recorded run with the smoother: a text summary, an HTML report with figures, and CSV exports of the filtered and smoothed tracks", outErr(runReview)},
 		{"compare", "review a run under two configurations side by side", outErr(runCompare)},
 		{"imu-noise", "read a static IMU recording's noise from its Allan deviation and write it into a new configuration", outErr(runIMUNoise)},
+		{"tune", "fit a configuration's noise levels to a recorded run by the likelihood of its innovations and write a new configuration", outErr(runTune)},
 		{"export", "write journals, of one or many robots and runs, as Parquet tables (runs, inputs, poses, events) for data engines", outErr(runExport)},
 		{"version", "\nprint the module version and source revision of this binary", outErr(runVersion)},
 		{"help", "print this text", nil},

@@ -141,3 +141,18 @@ func TestReviewAndCompare(t *testing.T) {
 		t.Errorf("the comparison report lacks the second run's figures")
 	}
 }
+
+// TestDemoPage: the demo with -page serves the live view on loopback and
+// says where; an address that is not loopback is refused.
+func TestDemoPage(t *testing.T) {
+	out, errs, err := runCmd(t, "demo", "-duration", "2", "-speed", "0", "-view", "lines", "-page", "127.0.0.1:0", "-journal", filepath.Join(t.TempDir(), "j"))
+	if err != nil {
+		t.Fatalf("demo -page: %v\n%s", err, errs)
+	}
+	if !regexp.MustCompile(`(?m)^live view: http://127\.0\.0\.1:[0-9]+/$`).MatchString(out) {
+		t.Errorf("demo -page does not say where the live view is:\n%s", out)
+	}
+	if _, _, err := runCmd(t, "demo", "-duration", "2", "-speed", "0", "-view", "lines", "-page", "0.0.0.0:0", "-journal", filepath.Join(t.TempDir(), "k")); err == nil || !strings.Contains(err.Error(), "not a loopback address") {
+		t.Errorf("demo -page 0.0.0.0:0: %v", err)
+	}
+}

@@ -22,7 +22,9 @@ Runs a journal, or a robot configuration and a JSON Lines file, through the
 estimator offline and writes the track and every verdict. In csv and table
 output a held fix's row shows its final verdict once it was resolved.
 -format samples writes the raw samples back as JSON Lines instead, which
-"reckon replay -config ROBOT.yaml -samples FILE" takes again.`)
+"reckon replay -config ROBOT.yaml -samples FILE" takes again. -run N writes
+only run N of a robot whose controller restarted (its run start included,
+so that its samples replay as a run of their own).`)
 	fs.SetOutput(stderr)
 	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
 	robot := fs.String("robot", "", "robot id or name in the journal")
@@ -30,6 +32,7 @@ output a held fix's row shows its final verdict once it was resolved.
 	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
 	format := fs.String("format", "csv", "csv, jsonl, or samples (the raw samples as JSON Lines); table also works")
 	out := fs.String("out", "", "output file (default standard output)")
+	run := fs.Uint64("run", 0, "write only this run, from 1 (default: every run)")
 	var span timeSpan
 	span.add(fs)
 	pos, err := parseArgs(fs, args, stdout, stderr)
@@ -59,6 +62,7 @@ output a held fix's row shows its final verdict once it was resolved.
 		ow = &heldWriter{pw: pw, resolve: *format != "jsonl"}
 	}
 	ow = &spanWriter{next: ow, span: span}
+	rf := &runFilter{next: ow, want: *run}
 	var override *pb.RobotConfig
 	if *config != "" {
 		if override, err = loadYAML(*config); err != nil {
@@ -67,16 +71,37 @@ output a held fix's row shows its final verdict once it was resolved.
 	}
 	switch {
 	case *journal != "" && *robot != "":
-		err = replayJournal(ctx, *journal, *robot, override, ow, stderr)
+		err = replayJournal(ctx, *journal, *robot, override, rf, stderr)
 	case *samples != "" && override != nil:
-		err = replaySamples(ctx, *samples, override, ow, stderr)
+		err = replaySamples(ctx, *samples, override, rf, stderr)
 	default:
 		return usagef(fs, "needs -journal and -robot, or -config and -samples")
 	}
 	if ferr := ow.flush(); err == nil {
 		err = ferr
 	}
+	if err == nil && rf.want > rf.last {
+		err = fmt.Errorf("run %d asked for; the recording holds runs 1 to %d", rf.want, rf.last)
+	}
 	return err
+}
+
+// runFilter passes on the inputs of one run (want; 0: every run), and the
+// responses of the others as outside it (a run start resolves the held
+// fixes of the run it ends). The run start that begins the run is its
+// first input, so that its samples replay again as a run of their own.
+type runFilter struct {
+	next outputWriter
+	want uint64
+	last uint64 // the newest run seen
+}
+
+func (rf *runFilter) input(run uint64, s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
+	rf.last = max(rf.last, run)
+	if rf.want != 0 && run != rf.want {
+		return rf.next.outside(resp)
+	}
+	return rf.next.input(s, p, resp)
 }
 
 // outputWriter takes each replayed input with its response and the pose
@@ -182,6 +207,10 @@ type spanWriter struct {
 
 func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
 	stamp := convert.SampleStamp(s)
+	if s.GetRunStart() != nil {
+		// It has no stamp; the run's start is its first input's after it.
+		return sw.next.input(s, p, resp)
+	}
 	if !sw.started {
 		sw.started, sw.startNs = true, stamp
 	}
@@ -196,7 +225,7 @@ func (sw *spanWriter) outside(resp *pb.IngestResponse) error { return sw.next.ou
 
 func (sw *spanWriter) flush() error { return sw.next.flush() }
 
-func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, ow outputWriter, stderr io.Writer) error {
+func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, ow *runFilter, stderr io.Writer) error {
 	id := robot
 	if n, err := server.RobotID(robot); err == nil {
 		id = n
@@ -212,7 +241,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 		} else {
 			differ++
 		}
-		return ow.input(r.Input.GetSample(), convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
+		return ow.input(r.Robot.Run(), r.Input.GetSample(), convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
 	}})
 	if err != nil {
 		return err
@@ -233,7 +262,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	return nil
 }
 
-func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, ow outputWriter, stderr io.Writer) error {
+func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, ow *runFilter, stderr io.Writer) error {
 	cfg, err := convert.ConfigFromProto(cfgProto)
 	if err != nil {
 		return err
@@ -264,7 +293,7 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, o
 		// As the service would take it (convert.Take: decoding, then the
 		// robot, which checks each input first).
 		resp, _ := convert.Take(fr, s, 0)
-		if err := ow.input(s, convert.PoseToProto(name, fr.Pose(), fr.Sequence()), resp); err != nil {
+		if err := ow.input(fr.Run(), s, convert.PoseToProto(name, fr.Pose(), fr.Sequence()), resp); err != nil {
 			return err
 		}
 		n++

@@ -22,6 +22,7 @@ import (
 // sourceFlags name a recorded run.
 type sourceFlags struct {
 	journal, robot, config, samples, truth, out *string
+	run                                         *uint64
 }
 
 func addSourceFlags(fs *flag.FlagSet) sourceFlags {
@@ -31,7 +32,8 @@ func addSourceFlags(fs *flag.FlagSet) sourceFlags {
 		config:  fs.String("config", "", "YAML robot configuration, for -samples"),
 		samples: fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)"),
 		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),
-		out:     fs.String("out", "", "directory for the report and the exports (default review-<robot>)"),
+		out:     fs.String("out", "", "directory for the report and the exports (default review-<robot>, review-<robot>-run<N> with -run)"),
+		run:     fs.Uint64("run", 0, "the run to review, from 1 (a controller restart begins a run; default 1)"),
 	}
 }
 
@@ -90,7 +92,7 @@ func loadYAML(path string) (*pb.RobotConfig, error) {
 }
 
 func (sf sourceFlags) source() (review.Source, error) {
-	src := review.Source{JournalDir: *sf.journal, Robot: *sf.robot, Samples: *sf.samples, Truth: *sf.truth}
+	src := review.Source{JournalDir: *sf.journal, Robot: *sf.robot, Samples: *sf.samples, Truth: *sf.truth, Run: *sf.run}
 	switch {
 	case *sf.journal != "" && *sf.robot != "":
 		if *sf.truth == "" {
@@ -131,7 +133,9 @@ func runReview(ctx context.Context, args []string, stdout, stderr io.Writer) err
 Replays a recorded run with the smoother and writes a text summary, an HTML
 report with figures (problems found, linked to their moment; zoom and pan in
 the browser) and CSV exports of the filtered and smoothed tracks and of the
-fixes with their final verdicts. -from and -to limit it to a stretch.`)
+fixes with their final verdicts. -from and -to limit it to a stretch; -run N
+reviews run N of a robot whose controller restarted (each run has a clock of
+its own; the default is run 1, and the summary names the others).`)
 	fs.SetOutput(stderr)
 	sf := addSourceFlags(fs)
 	other := fs.String("with", "", "replay the run with this YAML configuration instead of its own")

@@ -318,6 +318,24 @@ class Client:
             covariance=covariance(cov, 3)))
         return self._unary(self._stub.ReseedRobot, req, timeout)
 
+    def start_run(self, robot: str, boot_id: str, run: int = 0, pose=None, cov=None,
+                  timeout=None) -> fs_pb2.StartRunResponse:
+        """start_run begins a new run of robot after its controller restarted
+        (its clock starts again): boot_id names the new boot (required, not
+        the current run's), run is the new run's number (0: the next one).
+        The last run's pose and covariance carry over unless pose, an
+        (x_m, y_m, heading_rad) tuple, and cov, its 3x3 covariance, are
+        given. A run start out of order (the current run's boot_id again, so
+        that a resend starts no second run, or a run number that is not the
+        next) raises grpc.RpcError with FAILED_PRECONDITION."""
+        rs = samples_pb2.RunStart(boot_id=boot_id, run=int(run))
+        if pose is not None:
+            x_m, y_m, heading_rad = pose
+            rs.pose.CopyFrom(robot_pb2.FloorPose(x_m=x_m, y_m=y_m, heading_rad=heading_rad))
+            rs.covariance.CopyFrom(covariance(cov, 3))
+        req = fs_pb2.StartRunRequest(robot=robot_name(robot), run_start=rs)
+        return self._unary(self._stub.StartRun, req, timeout)
+
     def close(self) -> None:
         """close closes the connection and every stream on it."""
         self._channel.close()

@@ -183,6 +183,30 @@ class RobotCallsTest(unittest.TestCase):
         self.assertEqual((at.pose.x_m, at.pose.y_m, at.pose.heading_rad), (1.0, 2.0, 0.5))
         self.assertEqual(list(at.covariance.values), reckonpy.diag(0.01, 0.01, 0.01))
 
+    def test_start_run(self):
+        # A controller restart: the odometry's clock starts again at the
+        # first stamps, which only a new run takes.
+        self.client.create_robot("cart-s", support.cart_config())
+        odometry = [s for s in support.read_samples() if s.WhichOneof("sample") == "odometry"][:20]
+        with self.client.ingest("cart-s") as session:
+            collector = support.Collector(session)
+            for s in odometry:
+                session.send(s)
+        self.assertEqual([v.verdict for v in collector.finish()], ["applied"] * 20)
+        resp = self.client.start_run("cart-s", "boot-2")
+        self.assertEqual(reckonpy.verdict_label(resp.verdict), "applied")
+        self.assertEqual(resp.run, 2)
+        with self.assertRaises(grpc.RpcError) as ctx:
+            self.client.start_run("cart-s", "boot-2")
+        self.assertEqual(ctx.exception.code(), grpc.StatusCode.FAILED_PRECONDITION)
+        self.assertIn("boot_id", ctx.exception.details())
+        self.assertEqual(self.client.get_robot("cart-s").run, 2)
+        with self.client.ingest("cart-s") as session:
+            collector = support.Collector(session)
+            for s in odometry:
+                session.send(s)
+        self.assertEqual([v.verdict for v in collector.finish()], ["applied"] * 20)
+
     def test_unknown_robot(self):
         with self.assertRaises(grpc.RpcError) as ctx:
             self.client.statistics("nobody")

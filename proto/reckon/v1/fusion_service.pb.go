@@ -53,6 +53,9 @@ const (
 	Refusal_REFUSAL_NOT_JOURNALED Refusal = 11
 	// Past one of the service's limits (string length, robot paused).
 	Refusal_REFUSAL_LIMIT Refusal = 12
+	// A run start that does not start the next run: its run number is not
+	// the current run's plus one, or its boot id is the current run's.
+	Refusal_REFUSAL_RUN_OUT_OF_ORDER Refusal = 13
 )
 
 // Enum value maps for Refusal.
@@ -71,6 +74,7 @@ var (
 		10: "REFUSAL_NUMERICAL_FAULT",
 		11: "REFUSAL_NOT_JOURNALED",
 		12: "REFUSAL_LIMIT",
+		13: "REFUSAL_RUN_OUT_OF_ORDER",
 	}
 	Refusal_value = map[string]int32{
 		"REFUSAL_UNSPECIFIED":        0,
@@ -86,6 +90,7 @@ var (
 		"REFUSAL_NUMERICAL_FAULT":    10,
 		"REFUSAL_NOT_JOURNALED":      11,
 		"REFUSAL_LIMIT":              12,
+		"REFUSAL_RUN_OUT_OF_ORDER":   13,
 	}
 )
 
@@ -202,6 +207,9 @@ const (
 	EventKind_EVENT_KIND_TRUST_REGAINED EventKind = 6
 	// The filter restarted from a given pose (ReseedRobot, or move recovery).
 	EventKind_EVENT_KIND_RESEEDED EventKind = 7
+	// A new run started (a run_start sample or StartRun); value is its
+	// number, detail names its boot; stamp_ns is 0.
+	EventKind_EVENT_KIND_RUN_STARTED EventKind = 8
 )
 
 // Enum value maps for EventKind.
@@ -215,6 +223,7 @@ var (
 		5: "EVENT_KIND_TRUST_LOST",
 		6: "EVENT_KIND_TRUST_REGAINED",
 		7: "EVENT_KIND_RESEEDED",
+		8: "EVENT_KIND_RUN_STARTED",
 	}
 	EventKind_value = map[string]int32{
 		"EVENT_KIND_UNSPECIFIED":    0,
@@ -225,6 +234,7 @@ var (
 		"EVENT_KIND_TRUST_LOST":     5,
 		"EVENT_KIND_TRUST_REGAINED": 6,
 		"EVENT_KIND_RESEEDED":       7,
+		"EVENT_KIND_RUN_STARTED":    8,
 	}
 )
 
@@ -1773,6 +1783,134 @@ func (x *ReseedRobotResponse) GetReason() string {
 	return ""
 }
 
+// StartRunRequest starts a new run of a robot.
+type StartRunRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// "robots/{robot}".
+	Robot string `protobuf:"bytes,1,opt,name=robot,proto3" json:"robot,omitempty"`
+	// The run start: its boot id, optionally its number and a re-seed.
+	RunStart      *RunStart `protobuf:"bytes,2,opt,name=run_start,json=runStart,proto3" json:"run_start,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *StartRunRequest) Reset() {
+	*x = StartRunRequest{}
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[20]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *StartRunRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*StartRunRequest) ProtoMessage() {}
+
+func (x *StartRunRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[20]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use StartRunRequest.ProtoReflect.Descriptor instead.
+func (*StartRunRequest) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{20}
+}
+
+func (x *StartRunRequest) GetRobot() string {
+	if x != nil {
+		return x.Robot
+	}
+	return ""
+}
+
+func (x *StartRunRequest) GetRunStart() *RunStart {
+	if x != nil {
+		return x.RunStart
+	}
+	return nil
+}
+
+// StartRunResponse is the verdict.
+type StartRunResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The input's sequence number.
+	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
+	// Its verdict.
+	Verdict Verdict `protobuf:"varint,2,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`
+	// Why it was refused.
+	Reason string `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
+	// The number of the run it started, from 1.
+	Run           uint64 `protobuf:"varint,4,opt,name=run,proto3" json:"run,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *StartRunResponse) Reset() {
+	*x = StartRunResponse{}
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[21]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *StartRunResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*StartRunResponse) ProtoMessage() {}
+
+func (x *StartRunResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[21]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use StartRunResponse.ProtoReflect.Descriptor instead.
+func (*StartRunResponse) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{21}
+}
+
+func (x *StartRunResponse) GetSequence() uint64 {
+	if x != nil {
+		return x.Sequence
+	}
+	return 0
+}
+
+func (x *StartRunResponse) GetVerdict() Verdict {
+	if x != nil {
+		return x.Verdict
+	}
+	return Verdict_VERDICT_UNSPECIFIED
+}
+
+func (x *StartRunResponse) GetReason() string {
+	if x != nil {
+		return x.Reason
+	}
+	return ""
+}
+
+func (x *StartRunResponse) GetRun() uint64 {
+	if x != nil {
+		return x.Run
+	}
+	return 0
+}
+
 // GetStatisticsRequest names a robot.
 type GetStatisticsRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1784,7 +1922,7 @@ type GetStatisticsRequest struct {
 
 func (x *GetStatisticsRequest) Reset() {
 	*x = GetStatisticsRequest{}
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[20]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1796,7 +1934,7 @@ func (x *GetStatisticsRequest) String() string {
 func (*GetStatisticsRequest) ProtoMessage() {}
 
 func (x *GetStatisticsRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[20]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1809,7 +1947,7 @@ func (x *GetStatisticsRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GetStatisticsRequest.ProtoReflect.Descriptor instead.
 func (*GetStatisticsRequest) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{20}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *GetStatisticsRequest) GetRobot() string {
@@ -1830,7 +1968,7 @@ type GetStatisticsResponse struct {
 
 func (x *GetStatisticsResponse) Reset() {
 	*x = GetStatisticsResponse{}
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[21]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1842,7 +1980,7 @@ func (x *GetStatisticsResponse) String() string {
 func (*GetStatisticsResponse) ProtoMessage() {}
 
 func (x *GetStatisticsResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[21]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1855,7 +1993,7 @@ func (x *GetStatisticsResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GetStatisticsResponse.ProtoReflect.Descriptor instead.
 func (*GetStatisticsResponse) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{21}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *GetStatisticsResponse) GetStatistics() *RobotStatistics {
@@ -1884,7 +2022,7 @@ type VerdictCounts struct {
 
 func (x *VerdictCounts) Reset() {
 	*x = VerdictCounts{}
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[22]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1896,7 +2034,7 @@ func (x *VerdictCounts) String() string {
 func (*VerdictCounts) ProtoMessage() {}
 
 func (x *VerdictCounts) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[22]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1909,7 +2047,7 @@ func (x *VerdictCounts) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use VerdictCounts.ProtoReflect.Descriptor instead.
 func (*VerdictCounts) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{22}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *VerdictCounts) GetApplied() uint64 {
@@ -1970,7 +2108,7 @@ type SensorConsistency struct {
 
 func (x *SensorConsistency) Reset() {
 	*x = SensorConsistency{}
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[23]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1982,7 +2120,7 @@ func (x *SensorConsistency) String() string {
 func (*SensorConsistency) ProtoMessage() {}
 
 func (x *SensorConsistency) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[23]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1995,7 +2133,7 @@ func (x *SensorConsistency) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SensorConsistency.ProtoReflect.Descriptor instead.
 func (*SensorConsistency) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{23}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *SensorConsistency) GetSensorId() string {
@@ -2067,7 +2205,7 @@ type RobotStatistics struct {
 
 func (x *RobotStatistics) Reset() {
 	*x = RobotStatistics{}
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[24]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[26]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2079,7 +2217,7 @@ func (x *RobotStatistics) String() string {
 func (*RobotStatistics) ProtoMessage() {}
 
 func (x *RobotStatistics) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_fusion_service_proto_msgTypes[24]
+	mi := &file_reckon_v1_fusion_service_proto_msgTypes[26]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2092,7 +2230,7 @@ func (x *RobotStatistics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use RobotStatistics.ProtoReflect.Descriptor instead.
 func (*RobotStatistics) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{24}
+	return file_reckon_v1_fusion_service_proto_rawDescGZIP(), []int{26}
 }
 
 func (x *RobotStatistics) GetOdometry() *VerdictCounts {
@@ -2257,7 +2395,15 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x13ReseedRobotResponse\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
 	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x16\n" +
-	"\x06reason\x18\x03 \x01(\tR\x06reason\",\n" +
+	"\x06reason\x18\x03 \x01(\tR\x06reason\"Y\n" +
+	"\x0fStartRunRequest\x12\x14\n" +
+	"\x05robot\x18\x01 \x01(\tR\x05robot\x120\n" +
+	"\trun_start\x18\x02 \x01(\v2\x13.reckon.v1.RunStartR\brunStart\"\x86\x01\n" +
+	"\x10StartRunResponse\x12\x1a\n" +
+	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
+	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x16\n" +
+	"\x06reason\x18\x03 \x01(\tR\x06reason\x12\x10\n" +
+	"\x03run\x18\x04 \x01(\x04R\x03run\",\n" +
 	"\x14GetStatisticsRequest\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\"S\n" +
 	"\x15GetStatisticsResponse\x12:\n" +
@@ -2289,7 +2435,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"recoveries\x125\n" +
 	"\bdistrust\x18\a \x03(\x0e2\x19.reckon.v1.DistrustReasonR\bdistrust\x12\x12\n" +
 	"\x04held\x18\b \x01(\x05R\x04held\x12%\n" +
-	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xdd\x02\n" +
+	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xfb\x02\n" +
 	"\aRefusal\x12\x17\n" +
 	"\x13REFUSAL_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fREFUSAL_TOO_OLD\x10\x01\x12\x1a\n" +
@@ -2304,14 +2450,15 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x17REFUSAL_NUMERICAL_FAULT\x10\n" +
 	"\x12\x19\n" +
 	"\x15REFUSAL_NOT_JOURNALED\x10\v\x12\x11\n" +
-	"\rREFUSAL_LIMIT\x10\f*\x86\x01\n" +
+	"\rREFUSAL_LIMIT\x10\f\x12\x1c\n" +
+	"\x18REFUSAL_RUN_OUT_OF_ORDER\x10\r*\x86\x01\n" +
 	"\aVerdict\x12\x17\n" +
 	"\x13VERDICT_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fVERDICT_APPLIED\x10\x01\x12\x10\n" +
 	"\fVERDICT_HELD\x10\x02\x12\x11\n" +
 	"\rVERDICT_GATED\x10\x03\x12\x13\n" +
 	"\x0fVERDICT_TOO_OLD\x10\x04\x12\x13\n" +
-	"\x0fVERDICT_INVALID\x10\x05*\xf1\x01\n" +
+	"\x0fVERDICT_INVALID\x10\x05*\x8d\x02\n" +
 	"\tEventKind\x12\x1a\n" +
 	"\x16EVENT_KIND_UNSPECIFIED\x10\x00\x12\x1a\n" +
 	"\x16EVENT_KIND_FIX_REFUSED\x10\x01\x12\x1d\n" +
@@ -2320,7 +2467,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x19EVENT_KIND_MOVE_RECOVERED\x10\x04\x12\x19\n" +
 	"\x15EVENT_KIND_TRUST_LOST\x10\x05\x12\x1d\n" +
 	"\x19EVENT_KIND_TRUST_REGAINED\x10\x06\x12\x17\n" +
-	"\x13EVENT_KIND_RESEEDED\x10\a*\xae\x02\n" +
+	"\x13EVENT_KIND_RESEEDED\x10\a\x12\x1a\n" +
+	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xae\x02\n" +
 	"\x0eDistrustReason\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_NO_ODOMETRY\x10\x01\x12&\n" +
@@ -2335,7 +2483,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x1eCONSISTENCY_VERDICT_CONSISTENT\x10\x01\x12%\n" +
 	"!CONSISTENCY_VERDICT_OVERCONFIDENT\x10\x02\x12&\n" +
 	"\"CONSISTENCY_VERDICT_UNDERCONFIDENT\x10\x03\x12%\n" +
-	"!CONSISTENCY_VERDICT_TOO_FEW_FIXES\x10\x042\xa6\x05\n" +
+	"!CONSISTENCY_VERDICT_TOO_FEW_FIXES\x10\x042\xeb\x05\n" +
 	"\rFusionService\x12L\n" +
 	"\vCreateRobot\x12\x1d.reckon.v1.CreateRobotRequest\x1a\x1e.reckon.v1.CreateRobotResponse\x12C\n" +
 	"\bGetRobot\x12\x1a.reckon.v1.GetRobotRequest\x1a\x1b.reckon.v1.GetRobotResponse\x12I\n" +
@@ -2346,7 +2494,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x05Watch\x12\x17.reckon.v1.WatchRequest\x1a\x18.reckon.v1.WatchResponse0\x01\x12F\n" +
 	"\tGetPoseAt\x12\x1b.reckon.v1.GetPoseAtRequest\x1a\x1c.reckon.v1.GetPoseAtResponse\x12L\n" +
 	"\vReseedRobot\x12\x1d.reckon.v1.ReseedRobotRequest\x1a\x1e.reckon.v1.ReseedRobotResponse\x12R\n" +
-	"\rGetStatistics\x12\x1f.reckon.v1.GetStatisticsRequest\x1a .reckon.v1.GetStatisticsResponseB)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
+	"\rGetStatistics\x12\x1f.reckon.v1.GetStatisticsRequest\x1a .reckon.v1.GetStatisticsResponse\x12C\n" +
+	"\bStartRun\x12\x1a.reckon.v1.StartRunRequest\x1a\x1b.reckon.v1.StartRunResponseB)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_fusion_service_proto_rawDescOnce sync.Once
@@ -2361,7 +2510,7 @@ func file_reckon_v1_fusion_service_proto_rawDescGZIP() []byte {
 }
 
 var file_reckon_v1_fusion_service_proto_enumTypes = make([]protoimpl.EnumInfo, 5)
-var file_reckon_v1_fusion_service_proto_msgTypes = make([]protoimpl.MessageInfo, 25)
+var file_reckon_v1_fusion_service_proto_msgTypes = make([]protoimpl.MessageInfo, 27)
 var file_reckon_v1_fusion_service_proto_goTypes = []any{
 	(Refusal)(0),                  // 0: reckon.v1.Refusal
 	(Verdict)(0),                  // 1: reckon.v1.Verdict
@@ -2388,24 +2537,27 @@ var file_reckon_v1_fusion_service_proto_goTypes = []any{
 	(*GetPoseAtResponse)(nil),     // 22: reckon.v1.GetPoseAtResponse
 	(*ReseedRobotRequest)(nil),    // 23: reckon.v1.ReseedRobotRequest
 	(*ReseedRobotResponse)(nil),   // 24: reckon.v1.ReseedRobotResponse
-	(*GetStatisticsRequest)(nil),  // 25: reckon.v1.GetStatisticsRequest
-	(*GetStatisticsResponse)(nil), // 26: reckon.v1.GetStatisticsResponse
-	(*VerdictCounts)(nil),         // 27: reckon.v1.VerdictCounts
-	(*SensorConsistency)(nil),     // 28: reckon.v1.SensorConsistency
-	(*RobotStatistics)(nil),       // 29: reckon.v1.RobotStatistics
-	(*RobotConfig)(nil),           // 30: reckon.v1.RobotConfig
-	(*Robot)(nil),                 // 31: reckon.v1.Robot
-	(*Sample)(nil),                // 32: reckon.v1.Sample
-	(*FloorPose)(nil),             // 33: reckon.v1.FloorPose
-	(*Covariance)(nil),            // 34: reckon.v1.Covariance
-	(*Reseed)(nil),                // 35: reckon.v1.Reseed
+	(*StartRunRequest)(nil),       // 25: reckon.v1.StartRunRequest
+	(*StartRunResponse)(nil),      // 26: reckon.v1.StartRunResponse
+	(*GetStatisticsRequest)(nil),  // 27: reckon.v1.GetStatisticsRequest
+	(*GetStatisticsResponse)(nil), // 28: reckon.v1.GetStatisticsResponse
+	(*VerdictCounts)(nil),         // 29: reckon.v1.VerdictCounts
+	(*SensorConsistency)(nil),     // 30: reckon.v1.SensorConsistency
+	(*RobotStatistics)(nil),       // 31: reckon.v1.RobotStatistics
+	(*RobotConfig)(nil),           // 32: reckon.v1.RobotConfig
+	(*Robot)(nil),                 // 33: reckon.v1.Robot
+	(*Sample)(nil),                // 34: reckon.v1.Sample
+	(*FloorPose)(nil),             // 35: reckon.v1.FloorPose
+	(*Covariance)(nil),            // 36: reckon.v1.Covariance
+	(*Reseed)(nil),                // 37: reckon.v1.Reseed
+	(*RunStart)(nil),              // 38: reckon.v1.RunStart
 }
 var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
-	30, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
-	31, // 1: reckon.v1.CreateRobotResponse.robot:type_name -> reckon.v1.Robot
-	31, // 2: reckon.v1.GetRobotResponse.robot:type_name -> reckon.v1.Robot
-	31, // 3: reckon.v1.ListRobotsResponse.robots:type_name -> reckon.v1.Robot
-	32, // 4: reckon.v1.IngestRequest.sample:type_name -> reckon.v1.Sample
+	32, // 0: reckon.v1.CreateRobotRequest.config:type_name -> reckon.v1.RobotConfig
+	33, // 1: reckon.v1.CreateRobotResponse.robot:type_name -> reckon.v1.Robot
+	33, // 2: reckon.v1.GetRobotResponse.robot:type_name -> reckon.v1.Robot
+	33, // 3: reckon.v1.ListRobotsResponse.robots:type_name -> reckon.v1.Robot
+	34, // 4: reckon.v1.IngestRequest.sample:type_name -> reckon.v1.Sample
 	1,  // 5: reckon.v1.IngestResponse.verdict:type_name -> reckon.v1.Verdict
 	15, // 6: reckon.v1.IngestResponse.resolved:type_name -> reckon.v1.Resolution
 	16, // 7: reckon.v1.IngestResponse.events:type_name -> reckon.v1.FusionEvent
@@ -2413,45 +2565,49 @@ var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
 	1,  // 9: reckon.v1.Resolution.verdict:type_name -> reckon.v1.Verdict
 	0,  // 10: reckon.v1.Resolution.refusal:type_name -> reckon.v1.Refusal
 	2,  // 11: reckon.v1.FusionEvent.kind:type_name -> reckon.v1.EventKind
-	33, // 12: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
-	34, // 13: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
+	35, // 12: reckon.v1.FusedPose.pose:type_name -> reckon.v1.FloorPose
+	36, // 13: reckon.v1.FusedPose.covariance:type_name -> reckon.v1.Covariance
 	18, // 14: reckon.v1.FusedPose.velocity:type_name -> reckon.v1.BodyVelocity
 	3,  // 15: reckon.v1.FusedPose.distrust:type_name -> reckon.v1.DistrustReason
 	17, // 16: reckon.v1.WatchResponse.pose:type_name -> reckon.v1.FusedPose
 	16, // 17: reckon.v1.WatchResponse.events:type_name -> reckon.v1.FusionEvent
 	17, // 18: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
-	35, // 19: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
+	37, // 19: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
 	1,  // 20: reckon.v1.ReseedRobotResponse.verdict:type_name -> reckon.v1.Verdict
-	29, // 21: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
-	27, // 22: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
-	4,  // 23: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
-	27, // 24: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
-	27, // 25: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
-	28, // 26: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
-	3,  // 27: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
-	5,  // 28: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
-	7,  // 29: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
-	9,  // 30: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
-	11, // 31: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
-	13, // 32: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
-	19, // 33: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
-	21, // 34: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
-	23, // 35: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
-	25, // 36: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
-	6,  // 37: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
-	8,  // 38: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
-	10, // 39: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
-	12, // 40: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
-	14, // 41: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
-	20, // 42: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
-	22, // 43: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
-	24, // 44: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
-	26, // 45: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
-	37, // [37:46] is the sub-list for method output_type
-	28, // [28:37] is the sub-list for method input_type
-	28, // [28:28] is the sub-list for extension type_name
-	28, // [28:28] is the sub-list for extension extendee
-	0,  // [0:28] is the sub-list for field type_name
+	38, // 21: reckon.v1.StartRunRequest.run_start:type_name -> reckon.v1.RunStart
+	1,  // 22: reckon.v1.StartRunResponse.verdict:type_name -> reckon.v1.Verdict
+	31, // 23: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
+	29, // 24: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
+	4,  // 25: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
+	29, // 26: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
+	29, // 27: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
+	30, // 28: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
+	3,  // 29: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
+	5,  // 30: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
+	7,  // 31: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
+	9,  // 32: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
+	11, // 33: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
+	13, // 34: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
+	19, // 35: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
+	21, // 36: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
+	23, // 37: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
+	27, // 38: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
+	25, // 39: reckon.v1.FusionService.StartRun:input_type -> reckon.v1.StartRunRequest
+	6,  // 40: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
+	8,  // 41: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
+	10, // 42: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
+	12, // 43: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
+	14, // 44: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
+	20, // 45: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
+	22, // 46: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
+	24, // 47: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
+	28, // 48: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
+	26, // 49: reckon.v1.FusionService.StartRun:output_type -> reckon.v1.StartRunResponse
+	40, // [40:50] is the sub-list for method output_type
+	30, // [30:40] is the sub-list for method input_type
+	30, // [30:30] is the sub-list for extension type_name
+	30, // [30:30] is the sub-list for extension extendee
+	0,  // [0:30] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_fusion_service_proto_init() }
@@ -2467,7 +2623,7 @@ func file_reckon_v1_fusion_service_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_fusion_service_proto_rawDesc), len(file_reckon_v1_fusion_service_proto_rawDesc)),
 			NumEnums:      5,
-			NumMessages:   25,
+			NumMessages:   27,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -28,6 +28,7 @@ const (
 	FusionService_GetPoseAt_FullMethodName     = "/reckon.v1.FusionService/GetPoseAt"
 	FusionService_ReseedRobot_FullMethodName   = "/reckon.v1.FusionService/ReseedRobot"
 	FusionService_GetStatistics_FullMethodName = "/reckon.v1.FusionService/GetStatistics"
+	FusionService_StartRun_FullMethodName      = "/reckon.v1.FusionService/StartRun"
 )
 
 // FusionServiceClient is the client API for FusionService service.
@@ -60,6 +61,10 @@ type FusionServiceClient interface {
 	ReseedRobot(ctx context.Context, in *ReseedRobotRequest, opts ...grpc.CallOption) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	GetStatistics(ctx context.Context, in *GetStatisticsRequest, opts ...grpc.CallOption) (*GetStatisticsResponse, error)
+	// Starts a new run of a robot by hand, as a run_start sample does: use it
+	// when the robot's controller restarted (its clock jumped back) and its
+	// sender cannot say so itself. Journaled like any input.
+	StartRun(ctx context.Context, in *StartRunRequest, opts ...grpc.CallOption) (*StartRunResponse, error)
 }
 
 type fusionServiceClient struct {
@@ -172,6 +177,16 @@ func (c *fusionServiceClient) GetStatistics(ctx context.Context, in *GetStatisti
 	return out, nil
 }
 
+func (c *fusionServiceClient) StartRun(ctx context.Context, in *StartRunRequest, opts ...grpc.CallOption) (*StartRunResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(StartRunResponse)
+	err := c.cc.Invoke(ctx, FusionService_StartRun_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // FusionServiceServer is the server API for FusionService service.
 // All implementations must embed UnimplementedFusionServiceServer
 // for forward compatibility.
@@ -202,6 +217,10 @@ type FusionServiceServer interface {
 	ReseedRobot(context.Context, *ReseedRobotRequest) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	GetStatistics(context.Context, *GetStatisticsRequest) (*GetStatisticsResponse, error)
+	// Starts a new run of a robot by hand, as a run_start sample does: use it
+	// when the robot's controller restarted (its clock jumped back) and its
+	// sender cannot say so itself. Journaled like any input.
+	StartRun(context.Context, *StartRunRequest) (*StartRunResponse, error)
 	mustEmbedUnimplementedFusionServiceServer()
 }
 
@@ -238,6 +257,9 @@ func (UnimplementedFusionServiceServer) ReseedRobot(context.Context, *ReseedRobo
 }
 func (UnimplementedFusionServiceServer) GetStatistics(context.Context, *GetStatisticsRequest) (*GetStatisticsResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method GetStatistics not implemented")
+}
+func (UnimplementedFusionServiceServer) StartRun(context.Context, *StartRunRequest) (*StartRunResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method StartRun not implemented")
 }
 func (UnimplementedFusionServiceServer) mustEmbedUnimplementedFusionServiceServer() {}
 func (UnimplementedFusionServiceServer) testEmbeddedByValue()                       {}
@@ -404,6 +426,24 @@ func _FusionService_GetStatistics_Handler(srv interface{}, ctx context.Context, 
 	return interceptor(ctx, in, info, handler)
 }
 
+func _FusionService_StartRun_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(StartRunRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(FusionServiceServer).StartRun(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: FusionService_StartRun_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(FusionServiceServer).StartRun(ctx, req.(*StartRunRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // FusionService_ServiceDesc is the grpc.ServiceDesc for FusionService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -438,6 +478,10 @@ var FusionService_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "GetStatistics",
 			Handler:    _FusionService_GetStatistics_Handler,
+		},
+		{
+			MethodName: "StartRun",
+			Handler:    _FusionService_StartRun_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{

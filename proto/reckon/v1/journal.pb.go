@@ -311,7 +311,8 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 // negative zero survives. A change of layout or meaning bumps version.
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// The layout version; a robot reads only its own.
+	// The layout version; a robot reads its own and the older ones it
+	// knows (version 6 also reads 5: a first run's state).
 	Version uint32 `protobuf:"varint,1,opt,name=version,proto3" json:"version,omitempty"`
 	// The filter's estimate now.
 	Filter *EstimateState `protobuf:"bytes,2,opt,name=filter,proto3" json:"filter,omitempty"`
@@ -379,7 +380,12 @@ type RobotSnapshot struct {
 	// and of the wheels' turn variance over it, rad^2.
 	SlipVarSumRad2 float64 `protobuf:"fixed64,31,opt,name=slip_var_sum_rad2,json=slipVarSumRad2,proto3" json:"slip_var_sum_rad2,omitempty"`
 	// The trust window of recent fixes' scores for a shared pose offset.
-	BiasWindow    *SnapshotBiasWindow `protobuf:"bytes,32,opt,name=bias_window,json=biasWindow,proto3" json:"bias_window,omitempty"`
+	BiasWindow *SnapshotBiasWindow `protobuf:"bytes,32,opt,name=bias_window,json=biasWindow,proto3" json:"bias_window,omitempty"`
+	// The run starts taken: the current run is run + 1 (version 6; a
+	// version 5 snapshot has neither this nor boot_id and is of run 1).
+	Run uint64 `protobuf:"varint,33,opt,name=run,proto3" json:"run,omitempty"`
+	// The current run's boot id (RunStart.boot_id); with run.
+	BootId        string `protobuf:"bytes,34,opt,name=boot_id,json=bootId,proto3" json:"boot_id,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -636,6 +642,20 @@ func (x *RobotSnapshot) GetBiasWindow() *SnapshotBiasWindow {
 		return x.BiasWindow
 	}
 	return nil
+}
+
+func (x *RobotSnapshot) GetRun() uint64 {
+	if x != nil {
+		return x.Run
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetBootId() string {
+	if x != nil {
+		return x.BootId
+	}
+	return ""
 }
 
 // EstimateState is a filter's mean and covariance.
@@ -1720,8 +1740,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xe2\n" +
-	"\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x8d\v\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -1765,7 +1784,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x11slip_turn_sum_rad\x18\x1e \x01(\x01R\x0eslipTurnSumRad\x12)\n" +
 	"\x11slip_var_sum_rad2\x18\x1f \x01(\x01R\x0eslipVarSumRad2\x12>\n" +
 	"\vbias_window\x18  \x01(\v2\x1d.reckon.v1.SnapshotBiasWindowR\n" +
-	"biasWindowB\x17\n" +
+	"biasWindow\x12\x10\n" +
+	"\x03run\x18! \x01(\x04R\x03run\x12\x17\n" +
+	"\aboot_id\x18\" \x01(\tR\x06bootIdB\x17\n" +
 	"\x15_last_imu_heading_rad\"W\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +

@@ -281,7 +281,12 @@ type Robot struct {
 	// Why the robot is paused or quarantined, naming the problem and the
 	// journal file; for a serving robot, a note from restore (outputs of an
 	// older build that differ on replay), or empty.
-	StateDetail   string `protobuf:"bytes,6,opt,name=state_detail,json=stateDetail,proto3" json:"state_detail,omitempty"`
+	StateDetail string `protobuf:"bytes,6,opt,name=state_detail,json=stateDetail,proto3" json:"state_detail,omitempty"`
+	// The robot's current run, from 1: a run start (a controller that
+	// restarted) begins the next (DEVELOPERS.md, "Design: Runs").
+	Run uint64 `protobuf:"varint,7,opt,name=run,proto3" json:"run,omitempty"`
+	// The current run's boot id (RunStart.boot_id; empty for run 1).
+	BootId        string `protobuf:"bytes,8,opt,name=boot_id,json=bootId,proto3" json:"boot_id,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -354,6 +359,20 @@ func (x *Robot) GetState() RobotState {
 func (x *Robot) GetStateDetail() string {
 	if x != nil {
 		return x.StateDetail
+	}
+	return ""
+}
+
+func (x *Robot) GetRun() uint64 {
+	if x != nil {
+		return x.Run
+	}
+	return 0
+}
+
+func (x *Robot) GetBootId() string {
+	if x != nil {
+		return x.BootId
 	}
 	return ""
 }
@@ -1391,7 +1410,7 @@ var File_reckon_v1_robot_proto protoreflect.FileDescriptor
 
 const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\n" +
-	"\x15reckon/v1/robot.proto\x12\treckon.v1\"\xe4\x01\n" +
+	"\x15reckon/v1/robot.proto\x12\treckon.v1\"\x8f\x02\n" +
 	"\x05Robot\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12.\n" +
 	"\x06config\x18\x02 \x01(\v2\x16.reckon.v1.RobotConfigR\x06config\x12&\n" +
@@ -1399,7 +1418,9 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\vinput_count\x18\x04 \x01(\x04R\n" +
 	"inputCount\x12+\n" +
 	"\x05state\x18\x05 \x01(\x0e2\x15.reckon.v1.RobotStateR\x05state\x12!\n" +
-	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\"\xf5\x06\n" +
+	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\x12\x10\n" +
+	"\x03run\x18\a \x01(\x04R\x03run\x12\x17\n" +
+	"\aboot_id\x18\b \x01(\tR\x06bootId\"\xf5\x06\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +

@@ -35,6 +35,8 @@ const (
 	InputKind_INPUT_KIND_FIX InputKind = 3
 	// A Reseed.
 	InputKind_INPUT_KIND_RESEED InputKind = 4
+	// A RunStart.
+	InputKind_INPUT_KIND_RUN_START InputKind = 5
 )
 
 // Enum value maps for InputKind.
@@ -45,6 +47,7 @@ var (
 		2: "INPUT_KIND_HEADING",
 		3: "INPUT_KIND_FIX",
 		4: "INPUT_KIND_RESEED",
+		5: "INPUT_KIND_RUN_START",
 	}
 	InputKind_value = map[string]int32{
 		"INPUT_KIND_UNSPECIFIED": 0,
@@ -52,6 +55,7 @@ var (
 		"INPUT_KIND_HEADING":     2,
 		"INPUT_KIND_FIX":         3,
 		"INPUT_KIND_RESEED":      4,
+		"INPUT_KIND_RUN_START":   5,
 	}
 )
 
@@ -841,6 +845,7 @@ type Sample struct {
 	//	*Sample_Heading
 	//	*Sample_Fix
 	//	*Sample_Reseed
+	//	*Sample_RunStart
 	Sample        isSample_Sample `protobuf_oneof:"sample"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -919,6 +924,15 @@ func (x *Sample) GetReseed() *Reseed {
 	return nil
 }
 
+func (x *Sample) GetRunStart() *RunStart {
+	if x != nil {
+		if x, ok := x.Sample.(*Sample_RunStart); ok {
+			return x.RunStart
+		}
+	}
+	return nil
+}
+
 type isSample_Sample interface {
 	isSample_Sample()
 }
@@ -943,6 +957,11 @@ type Sample_Reseed struct {
 	Reseed *Reseed `protobuf:"bytes,4,opt,name=reseed,proto3,oneof"`
 }
 
+type Sample_RunStart struct {
+	// The start of a new run: the robot's controller restarted.
+	RunStart *RunStart `protobuf:"bytes,5,opt,name=run_start,json=runStart,proto3,oneof"`
+}
+
 func (*Sample_Odometry) isSample_Sample() {}
 
 func (*Sample_Heading) isSample_Sample() {}
@@ -950,6 +969,8 @@ func (*Sample_Heading) isSample_Sample() {}
 func (*Sample_Fix) isSample_Sample() {}
 
 func (*Sample_Reseed) isSample_Sample() {}
+
+func (*Sample_RunStart) isSample_Sample() {}
 
 // Reseed puts a robot at a known pose by hand: the filter restarts from it.
 type Reseed struct {
@@ -1015,6 +1036,94 @@ func (x *Reseed) GetCovariance() *Covariance {
 	return nil
 }
 
+// RunStart starts a new run of the robot: its controller restarted, so its
+// clock (and its counts) start again, and the inputs after this one are
+// stamped on the new clock. The robot goes on from the pose and covariance
+// the last run ended with (or the re-seed given here), keeps its odometry
+// scale states, initialises the IMU offset again from the next IMU heading
+// and starts the rate bias and sensor bias states from their priors; the
+// inputs held for odometry are resolved too old. Nothing is deleted: the
+// journal keeps every run, and review, replay and export select one
+// (DEVELOPERS.md, "Design: Runs"). A run start that does not start the next
+// run is refused (REFUSAL_RUN_OUT_OF_ORDER) and changes nothing.
+type RunStart struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Names the controller boot the run belongs to: a value the controller
+	// draws at power-on, a boot counter, or a name given by hand. Required,
+	// at most -max-string-bytes (128) bytes, and not the current run's (a
+	// second run start with the same boot id is refused, so that a resent
+	// one starts no further run).
+	BootId string `protobuf:"bytes,1,opt,name=boot_id,json=bootId,proto3" json:"boot_id,omitempty"`
+	// The number of the run this starts: 0 for the next, otherwise exactly
+	// the current run's number plus one (Robot.run).
+	Run uint64 `protobuf:"varint,2,opt,name=run,proto3" json:"run,omitempty"`
+	// A pose to start the run from instead of the last run's (as Reseed);
+	// unset carries the last run's pose over.
+	Pose *FloorPose `protobuf:"bytes,3,opt,name=pose,proto3" json:"pose,omitempty"`
+	// The pose's covariance, 3x3; required with pose.
+	Covariance    *Covariance `protobuf:"bytes,4,opt,name=covariance,proto3" json:"covariance,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RunStart) Reset() {
+	*x = RunStart{}
+	mi := &file_reckon_v1_samples_proto_msgTypes[12]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RunStart) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RunStart) ProtoMessage() {}
+
+func (x *RunStart) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_samples_proto_msgTypes[12]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RunStart.ProtoReflect.Descriptor instead.
+func (*RunStart) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_samples_proto_rawDescGZIP(), []int{12}
+}
+
+func (x *RunStart) GetBootId() string {
+	if x != nil {
+		return x.BootId
+	}
+	return ""
+}
+
+func (x *RunStart) GetRun() uint64 {
+	if x != nil {
+		return x.Run
+	}
+	return 0
+}
+
+func (x *RunStart) GetPose() *FloorPose {
+	if x != nil {
+		return x.Pose
+	}
+	return nil
+}
+
+func (x *RunStart) GetCovariance() *Covariance {
+	if x != nil {
+		return x.Covariance
+	}
+	return nil
+}
+
 var File_reckon_v1_samples_proto protoreflect.FileDescriptor
 
 const file_reckon_v1_samples_proto_rawDesc = "" +
@@ -1074,25 +1183,34 @@ const file_reckon_v1_samples_proto_rawDesc = "" +
 	"bearingRad\x88\x01\x01B\n" +
 	"\n" +
 	"\b_range_mB\x0e\n" +
-	"\f_bearing_rad\"\xd2\x01\n" +
+	"\f_bearing_rad\"\x86\x02\n" +
 	"\x06Sample\x127\n" +
 	"\bodometry\x18\x01 \x01(\v2\x19.reckon.v1.OdometrySampleH\x00R\bodometry\x124\n" +
 	"\aheading\x18\x02 \x01(\v2\x18.reckon.v1.HeadingSampleH\x00R\aheading\x12\"\n" +
 	"\x03fix\x18\x03 \x01(\v2\x0e.reckon.v1.FixH\x00R\x03fix\x12+\n" +
-	"\x06reseed\x18\x04 \x01(\v2\x11.reckon.v1.ReseedH\x00R\x06reseedB\b\n" +
+	"\x06reseed\x18\x04 \x01(\v2\x11.reckon.v1.ReseedH\x00R\x06reseed\x122\n" +
+	"\trun_start\x18\x05 \x01(\v2\x13.reckon.v1.RunStartH\x00R\brunStartB\b\n" +
 	"\x06sample\"\x84\x01\n" +
 	"\x06Reseed\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12(\n" +
 	"\x04pose\x18\x02 \x01(\v2\x14.reckon.v1.FloorPoseR\x04pose\x125\n" +
 	"\n" +
 	"covariance\x18\x03 \x01(\v2\x15.reckon.v1.CovarianceR\n" +
-	"covariance*\x83\x01\n" +
+	"covariance\"\x96\x01\n" +
+	"\bRunStart\x12\x17\n" +
+	"\aboot_id\x18\x01 \x01(\tR\x06bootId\x12\x10\n" +
+	"\x03run\x18\x02 \x01(\x04R\x03run\x12(\n" +
+	"\x04pose\x18\x03 \x01(\v2\x14.reckon.v1.FloorPoseR\x04pose\x125\n" +
+	"\n" +
+	"covariance\x18\x04 \x01(\v2\x15.reckon.v1.CovarianceR\n" +
+	"covariance*\x9d\x01\n" +
 	"\tInputKind\x12\x1a\n" +
 	"\x16INPUT_KIND_UNSPECIFIED\x10\x00\x12\x17\n" +
 	"\x13INPUT_KIND_ODOMETRY\x10\x01\x12\x16\n" +
 	"\x12INPUT_KIND_HEADING\x10\x02\x12\x12\n" +
 	"\x0eINPUT_KIND_FIX\x10\x03\x12\x15\n" +
-	"\x11INPUT_KIND_RESEED\x10\x04B)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
+	"\x11INPUT_KIND_RESEED\x10\x04\x12\x18\n" +
+	"\x14INPUT_KIND_RUN_START\x10\x05B)Z'reckon.example/proto/reckon/v1;reckonv1b\x06proto3"
 
 var (
 	file_reckon_v1_samples_proto_rawDescOnce sync.Once
@@ -1107,7 +1225,7 @@ func file_reckon_v1_samples_proto_rawDescGZIP() []byte {
 }
 
 var file_reckon_v1_samples_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
-var file_reckon_v1_samples_proto_msgTypes = make([]protoimpl.MessageInfo, 12)
+var file_reckon_v1_samples_proto_msgTypes = make([]protoimpl.MessageInfo, 13)
 var file_reckon_v1_samples_proto_goTypes = []any{
 	(InputKind)(0),         // 0: reckon.v1.InputKind
 	(*OdometrySample)(nil), // 1: reckon.v1.OdometrySample
@@ -1122,30 +1240,34 @@ var file_reckon_v1_samples_proto_goTypes = []any{
 	(*LandmarkFix)(nil),    // 10: reckon.v1.LandmarkFix
 	(*Sample)(nil),         // 11: reckon.v1.Sample
 	(*Reseed)(nil),         // 12: reckon.v1.Reseed
-	(*FloorPose)(nil),      // 13: reckon.v1.FloorPose
-	(*Covariance)(nil),     // 14: reckon.v1.Covariance
+	(*RunStart)(nil),       // 13: reckon.v1.RunStart
+	(*FloorPose)(nil),      // 14: reckon.v1.FloorPose
+	(*Covariance)(nil),     // 15: reckon.v1.Covariance
 }
 var file_reckon_v1_samples_proto_depIdxs = []int32{
 	2,  // 0: reckon.v1.OdometrySample.travel:type_name -> reckon.v1.WheelTravel
 	3,  // 1: reckon.v1.OdometrySample.counts:type_name -> reckon.v1.WheelCounts
 	4,  // 2: reckon.v1.OdometrySample.step:type_name -> reckon.v1.BodyStep
-	13, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
+	14, // 3: reckon.v1.Fix.mount:type_name -> reckon.v1.FloorPose
 	7,  // 4: reckon.v1.Fix.pose:type_name -> reckon.v1.PoseFix
 	8,  // 5: reckon.v1.Fix.position:type_name -> reckon.v1.PositionFix
 	9,  // 6: reckon.v1.Fix.heading:type_name -> reckon.v1.HeadingFix
 	10, // 7: reckon.v1.Fix.landmark:type_name -> reckon.v1.LandmarkFix
-	14, // 8: reckon.v1.Fix.covariance:type_name -> reckon.v1.Covariance
+	15, // 8: reckon.v1.Fix.covariance:type_name -> reckon.v1.Covariance
 	1,  // 9: reckon.v1.Sample.odometry:type_name -> reckon.v1.OdometrySample
 	5,  // 10: reckon.v1.Sample.heading:type_name -> reckon.v1.HeadingSample
 	6,  // 11: reckon.v1.Sample.fix:type_name -> reckon.v1.Fix
 	12, // 12: reckon.v1.Sample.reseed:type_name -> reckon.v1.Reseed
-	13, // 13: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
-	14, // 14: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
-	15, // [15:15] is the sub-list for method output_type
-	15, // [15:15] is the sub-list for method input_type
-	15, // [15:15] is the sub-list for extension type_name
-	15, // [15:15] is the sub-list for extension extendee
-	0,  // [0:15] is the sub-list for field type_name
+	13, // 13: reckon.v1.Sample.run_start:type_name -> reckon.v1.RunStart
+	14, // 14: reckon.v1.Reseed.pose:type_name -> reckon.v1.FloorPose
+	15, // 15: reckon.v1.Reseed.covariance:type_name -> reckon.v1.Covariance
+	14, // 16: reckon.v1.RunStart.pose:type_name -> reckon.v1.FloorPose
+	15, // 17: reckon.v1.RunStart.covariance:type_name -> reckon.v1.Covariance
+	18, // [18:18] is the sub-list for method output_type
+	18, // [18:18] is the sub-list for method input_type
+	18, // [18:18] is the sub-list for extension type_name
+	18, // [18:18] is the sub-list for extension extendee
+	0,  // [0:18] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_samples_proto_init() }
@@ -1171,6 +1293,7 @@ func file_reckon_v1_samples_proto_init() {
 		(*Sample_Heading)(nil),
 		(*Sample_Fix)(nil),
 		(*Sample_Reseed)(nil),
+		(*Sample_RunStart)(nil),
 	}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
@@ -1178,7 +1301,7 @@ func file_reckon_v1_samples_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_samples_proto_rawDesc), len(file_reckon_v1_samples_proto_rawDesc)),
 			NumEnums:      1,
-			NumMessages:   12,
+			NumMessages:   13,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

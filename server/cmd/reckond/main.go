@@ -1,7 +1,7 @@
 // Command reckond is the reckon pose estimation service: FusionService over
 // gRPC, with a journal per robot, restored on start.
 //
-//	reckond [-listen 127.0.0.1:7460] [-journal DIR] [-robot ID=CONFIG.yaml ...] [flags]
+//	reckond [-listen 127.0.0.1:7460] [-journal DIR] [-robot ID=CONFIG.yaml ...] [-view 127.0.0.1:7470] [flags]
 package main
 
 import (
@@ -59,13 +59,15 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	clientCA := fs.String("tls-client-ca", "", "CA PEM file; clients must present a certificate it signed (mutual TLS)")
 	tokenFile := fs.String("token-file", "", "file holding the bearer token every client must send")
 	metrics := fs.String("metrics-listen", "", "serve Prometheus metrics on this address at /metrics (off by default; \":PORT\" binds loopback)")
-	insecure := fs.Bool("insecure", false, "allow plain text on an address that is not loopback (-listen without TLS, -metrics-listen)")
+	view := fs.String("view", "", "serve the live view, a page showing every robot live, on this address (off by default; \":PORT\" binds loopback)")
+	insecure := fs.Bool("insecure", false, "allow plain text on an address that is not loopback (-listen without TLS, -metrics-listen, -view without TLS and a token)")
 	maxStreams := fs.Uint("max-streams", 1024, "concurrent streams per connection")
 	var lim server.Limits
 	fs.IntVar(&lim.MaxRobots, "max-robots", 1000, "robots in all")
-	fs.IntVar(&lim.MaxStringBytes, "max-string-bytes", 128, "longest session_id, sensor_id and landmark_id")
+	fs.IntVar(&lim.MaxStringBytes, "max-string-bytes", 128, "longest session_id, sensor_id, landmark_id and boot_id")
 	fs.IntVar(&lim.MaxWatchersPerRobot, "max-watchers-per-robot", 64, "open watch streams per robot")
 	fs.IntVar(&lim.MaxWatchers, "max-watchers", 1024, "open watch streams in all")
+	fs.IntVar(&lim.MaxViewers, "max-viewers", 16, "open live view pages (event streams) in all")
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
@@ -80,7 +82,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	if *maxStreams == 0 || *maxStreams > 1<<20 {
 		return fmt.Errorf("max-streams: %d is not between 1 and %d", *maxStreams, 1<<20)
 	}
-	dc := daemon.Config{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, MaxMessageBytes: *maxMsg,
+	dc := daemon.Config{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, ViewListen: *view, MaxMessageBytes: *maxMsg,
 		Insecure: *insecure, MaxStreams: uint32(*maxStreams),
 		Options: server.Options{JournalDir: *journal, SyncInterval: *syncEvery, SegmentBytes: *segment, SnapshotEvery: *snapshotEvery, Limits: lim,
 			Logger: slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))},

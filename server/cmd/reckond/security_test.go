@@ -15,6 +15,7 @@ func TestRefusesPlaintextOffLoopback(t *testing.T) {
 	for _, args := range [][]string{
 		{"-listen", "0.0.0.0:0", "-journal", dir},
 		{"-listen", "127.0.0.1:0", "-metrics-listen", "0.0.0.0:0", "-journal", dir},
+		{"-listen", "127.0.0.1:0", "-view", "0.0.0.0:0", "-journal", dir},
 	} {
 		var out, errb bytes.Buffer
 		err := run(context.Background(), args, &out, &errb)

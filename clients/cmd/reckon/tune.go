@@ -1,0 +1,353 @@
+package main
+
+import (
+	"bufio"
+	"context"
+	"encoding/csv"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"path/filepath"
+	"sort"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+	"reckon.example/fusion/calib"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
+)
+
+func runTune(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("tune", "-config ROBOT.yaml [-truth TRUTH.csv] [-out NEW.yaml] (FILE.jsonl | JOURNAL_DIR -robot NAME)", `
+Fits the noise levels of a robot configuration to a recorded run by
+maximising the likelihood of the run's innovations (the prediction-error
+decomposition): the run is replayed through the estimator under candidate
+levels, on a log scale. It prints each level as configured and fitted with
+a 95% interval from the observed Fisher information, says which levels the
+run does not determine (those keep their configured values), and the mean
+NIS and whiteness of each sensor's innovations before and after; with
+-truth, the NEES too. It writes the new configuration to -out and never
+overwrites the input. No ground truth is needed for the fit.`)
+	fs.SetOutput(stderr)
+	config := fs.String("config", "", "YAML robot configuration to start from")
+	out := fs.String("out", "", "the new YAML configuration (default: ROBOT-tuned.yaml beside -config); refused if it exists, unless -force")
+	force := fs.Bool("force", false, "replace -out if it exists")
+	robot := fs.String("robot", "", "the robot, when the run is a journal directory")
+	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after")
+	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
+	pos, err := parseArgs(fs, args, stdout, stderr)
+	if err != nil {
+		return err
+	}
+	switch {
+	case len(pos) != 1:
+		return usagef(fs, "needs one run (a JSON Lines file or a journal directory), got %d arguments", len(pos))
+	case *config == "":
+		return usagef(fs, "needs -config ROBOT.yaml")
+	case !(*maxSE > 0) || math.IsInf(*maxSE, 0):
+		return usagef(fs, "-max-se must be positive")
+	}
+	if *out == "" {
+		*out = strings.TrimSuffix(*config, filepath.Ext(*config)) + "-tuned.yaml"
+	}
+	if samePath(*config, *out) {
+		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
+	}
+	if !*force {
+		if _, err := os.Stat(*out); err == nil {
+			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)
+		}
+	}
+	cfgProto, err := loadYAML(*config)
+	if err != nil {
+		return fmt.Errorf("%w: %w", errRefused, err)
+	}
+	cfg, err := convert.ConfigFromProto(cfgProto)
+	if err != nil {
+		return fmt.Errorf("%s: %w: %w", *config, errRefused, err)
+	}
+	inputs, skipped, err := readRun(ctx, pos[0], *robot, cfgProto)
+	if err != nil {
+		return err
+	}
+	var truthPoses []calib.StampedPose
+	if *truth != "" {
+		if truthPoses, err = readTruthCSV(*truth); err != nil {
+			return err
+		}
+	}
+	fit, err := calib.FitNoise(cfg, inputs, calib.NoiseFitOptions{MaxStdErrLog: *maxSE})
+	if err != nil {
+		return fmt.Errorf("%s: %w: %w", pos[0], errRefused, err)
+	}
+	printTune(stdout, pos[0], inputs, skipped, fit)
+	if truthPoses != nil {
+		if err := printNEES(stdout, cfg, fit.Config, inputs, truthPoses); err != nil {
+			return fmt.Errorf("%s: %w", *truth, err)
+		}
+	}
+	return writeTunedConfig(*config, *out, filepath.Base(pos[0]), cfg, fit, stdout)
+}
+
+// readRun reads a run's inputs in arrival order from a JSON Lines file of
+// samples or from a journal directory (with robot); reseeds are counted in
+// skipped and left out.
+func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inputs []calib.RecordedInput, skipped int, err error) {
+	add := func(s *pb.Sample) error {
+		d, err := convert.Decode(s)
+		if err != nil {
+			return err
+		}
+		switch d.Kind {
+		case fusion.InputOdometry:
+			inputs = append(inputs, calib.RecordedInput{Odometry: &d.Odometry})
+		case fusion.InputHeading:
+			inputs = append(inputs, calib.RecordedInput{Heading: &d.Heading})
+		case fusion.InputFix:
+			inputs = append(inputs, calib.RecordedInput{Fix: &d.Fix})
+		default:
+			skipped++
+		}
+		return nil
+	}
+	if st, err := os.Stat(path); err == nil && st.IsDir() {
+		if robot == "" {
+			return nil, 0, &usageError{err: fmt.Errorf("%s is a journal directory: name the robot with -robot", path)}
+		}
+		id := robot
+		if n, err := server.RobotID(robot); err == nil {
+			id = n
+		}
+		_, _, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
+			if err := ctx.Err(); err != nil {
+				return err
+			}
+			if s := r.Input.GetSample(); s != nil {
+				return add(s)
+			}
+			return nil
+		}})
+		if err != nil {
+			return nil, 0, err
+		}
+	} else {
+		f, err := os.Open(path)
+		if err != nil {
+			return nil, 0, err
+		}
+		defer f.Close()
+		sr := convert.NewSampleReader(f)
+		for {
+			if err := ctx.Err(); err != nil {
+				return nil, 0, err
+			}
+			s, err := sr.Next()
+			if errors.Is(err, io.EOF) {
+				break
+			}
+			if err == nil {
+				err = add(s)
+			}
+			if err != nil {
+				return nil, 0, fmt.Errorf("%s: %w: %w", path, errRefused, err)
+			}
+		}
+	}
+	if len(inputs) == 0 {
+		return nil, 0, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
+	}
+	return inputs, skipped, nil
+}
+
+// readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,
+// heading_rad; a header and short rows skipped), sorted by stamp.
+func readTruthCSV(path string) ([]calib.StampedPose, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, err
+	}
+	defer f.Close()
+	r := csv.NewReader(bufio.NewReader(f))
+	r.FieldsPerRecord = -1
+	var out []calib.StampedPose
+	for line := 1; ; line++ {
+		rec, err := r.Read()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			return nil, fmt.Errorf("%s: %w: %w", path, errRefused, err)
+		}
+		if len(rec) < 4 {
+			continue
+		}
+		stamp, err := strconv.ParseInt(rec[0], 10, 64)
+		if err != nil {
+			continue // the header
+		}
+		var v [3]float64
+		for i := range v {
+			if v[i], err = strconv.ParseFloat(rec[i+1], 64); err != nil || math.IsNaN(v[i]) || math.IsInf(v[i], 0) {
+				return nil, fmt.Errorf("%s:%d: %w: column %d is not a finite number", path, line, errRefused, i+2)
+			}
+		}
+		out = append(out, calib.StampedPose{StampNs: stamp, Pose: estimator.Pose{X: v[0], Y: v[1], Heading: v[2]}})
+	}
+	if len(out) == 0 {
+		return nil, fmt.Errorf("%s: %w: no truth rows (stamp_ns,x_m,y_m,heading_rad)", path, errRefused)
+	}
+	sort.SliceStable(out, func(i, j int) bool { return out[i].StampNs < out[j].StampNs })
+	return out, nil
+}
+
+func printTune(w io.Writer, file string, inputs []calib.RecordedInput, skipped int, fit *calib.NoiseFit) {
+	var odo, imu, fixes int
+	for _, in := range inputs {
+		switch {
+		case in.Odometry != nil:
+			odo++
+		case in.Heading != nil:
+			imu++
+		default:
+			fixes++
+		}
+	}
+	fmt.Fprintf(w, "%s: %d odometry samples, %d IMU headings, %d fixes", file, odo, imu, fixes)
+	if skipped > 0 {
+		fmt.Fprintf(w, " (%d reseeds left out)", skipped)
+	}
+	fmt.Fprintf(w, "; %d fixes left out of the fit as gross outliers\n", fit.Excluded)
+	fmt.Fprintf(w, "log-likelihood of %d innovations: %.2f configured, %.2f fitted (%d replays of the run)\n\n",
+		fit.Innovations, fit.LogLikBefore, fit.LogLikAfter, fit.Replays)
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, "level\tunit\tconfigured\tfitted\t95% interval\tdetermined")
+	for _, l := range fit.Levels {
+		if l.Identifiable {
+			fmt.Fprintf(tw, "%s\t%s\t%.4g\t%.4g\t[%.4g, %.4g]\tyes\n", l.Field, l.Unit, l.Configured, l.Fitted, l.Lo, l.Hi)
+		} else {
+			fmt.Fprintf(tw, "%s\t%s\t%.4g\t(kept)\t-\tno: %s\n", l.Field, l.Unit, l.Configured, l.Note)
+		}
+	}
+	tw.Flush()
+	fmt.Fprintln(w, "\n95% intervals: exp(log fitted -+ 1.96 se), se from the observed Fisher information (the numerical")
+	fmt.Fprintln(w, "Hessian of the log-likelihood in the logs of the levels); a covariance is fitted as a factor on its entries.")
+	fmt.Fprintln(w, "\nconsistency: mean NIS against its 95% band (Bar-Shalom, Li and Kirubarajan 2001, sec. 5.4.2); whiteness:")
+	fmt.Fprintf(w, "autocorrelations of the whitened innovations at lags 1 to %d beyond 1.96/sqrt(N) (Mehra 1970; white: at most 5%%)\n", calib.WhitenessLags)
+	tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, "sensor\tinnovations\tmean NIS before\tmean NIS after\tband\twhite before\twhite after")
+	for i, b := range fit.Before {
+		if i >= len(fit.After) {
+			break
+		}
+		a := fit.After[i]
+		fmt.Fprintf(tw, "%s\t%d\t%.3f %s\t%.3f %s\t[%.3f, %.3f]\t%s\t%s\n", b.SensorID, b.Count,
+			b.MeanNIS, inBand(b.NISInBand()), a.MeanNIS, inBand(a.NISInBand()), a.Lo, a.Hi, white(&b), white(&a))
+	}
+	tw.Flush()
+}
+
+func inBand(ok bool) string {
+	if ok {
+		return "(in)"
+	}
+	return "(out)"
+}
+
+func white(c *calib.SensorCheck) string {
+	verdict := "no"
+	if c.White() {
+		verdict = "yes"
+	}
+	return fmt.Sprintf("%s, %d of %d beyond %.3f (largest %+.3f at lag %d)", verdict, c.Outside, c.Tested, c.Bound, c.MaxAutocorr, c.MaxLag)
+}
+
+func printNEES(w io.Writer, before, after fusion.Config, inputs []calib.RecordedInput, truth []calib.StampedPose) error {
+	b, err := calib.RunNEES(before, inputs, truth)
+	if err != nil {
+		return err
+	}
+	a, err := calib.RunNEES(after, inputs, truth)
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(w, "\nNEES against the truth (%d steps; 3 and 5%% beyond the 95%% quantile for a consistent filter):\n", a.Count)
+	fmt.Fprintf(w, "  configured: mean %.2f, %.1f%% beyond\n  fitted:     mean %.2f, %.1f%% beyond\n", b.Mean, 100*b.Outside, a.Mean, 100*a.Outside)
+	return nil
+}
+
+// writeTunedConfig writes the configuration at in with the determined
+// levels fitted to out, each with a comment giving its standard error, and
+// a first comment line naming every change.
+func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseFit, stdout io.Writer) error {
+	var edits []configEdit
+	var kept []string
+	def := fusion.DefaultNoise()
+	for _, l := range fit.Levels {
+		if !l.Identifiable {
+			kept = append(kept, l.Field)
+			continue
+		}
+		how := fmt.Sprintf("from tune: maximum likelihood, se of log %.3f, 95%% %.4g to %.4g", l.StdErrLog, l.Lo, l.Hi)
+		e := configEdit{path: l.Field, value: strconv.FormatFloat(l.Fitted, 'g', 4, 64), comment: how}
+		if strings.HasSuffix(l.Field, ".covariance") {
+			cov := cfg.Sensors[l.Sensor].Cov
+			if len(cov) == 0 {
+				kept = append(kept, fmt.Sprintf("%s (factor %.4g: the sensor has no covariance of its own; scale its fixes')", l.Field, l.Fitted))
+				continue
+			}
+			e.path = l.Field + ".values"
+			e.comment = fmt.Sprintf("from tune: times %.4g (se of log %.3f, 95%% %.4g to %.4g)", l.Fitted, l.StdErrLog, l.Lo, l.Hi)
+			for _, c := range cov {
+				e.seq = append(e.seq, strconv.FormatFloat(c*l.Fitted, 'g', 4, 64))
+			}
+		}
+		if v, ok := defaultOf(def, l.Field); ok {
+			e.absent = strconv.FormatFloat(v, 'g', -1, 64) + " (default)"
+		}
+		edits = append(edits, e)
+	}
+	if len(edits) == 0 {
+		return fmt.Errorf("%w: the run determines none of the noise levels; nothing written", errRefused)
+	}
+	changes, err := writeConfigEdits(in, out, edits, func(changes []string) string {
+		note := fmt.Sprintf("reckon tune: %s; by maximum likelihood of the innovations of %s (prediction-error decomposition), standard errors from the observed Fisher information",
+			strings.Join(changes, ", "), file)
+		if len(kept) > 0 {
+			note += "; not determined by the run, kept: " + strings.Join(kept, ", ")
+		}
+		return note
+	})
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "\nwrote %s: %s\n", out, strings.Join(changes, ", "))
+	return nil
+}
+
+// defaultOf returns the default of a noise field, if it has one.
+func defaultOf(def fusion.Noise, field string) (float64, bool) {
+	m := map[string]float64{
+		"noise.wheel_var_m2_per_m":         def.WheelVarM2PerM,
+		"noise.lateral_slip_var_m2_per_m":  def.LateralSlipVarM2PerM,
+		"noise.turn_var_rad2_per_rad":      def.TurnVarRad2PerRad,
+		"noise.heading_var_rad2_per_s":     def.HeadingVarRad2PerS,
+		"noise.step_forward_var_m2_per_m":  def.StepForwardVarM2PerM,
+		"noise.step_left_var_m2_per_m":     def.StepLeftVarM2PerM,
+		"noise.step_turn_var_rad2_per_rad": def.StepTurnVarRad2PerRad,
+		"noise.imu_heading_var_rad2":       def.IMUHeadingVarRad2,
+		"noise.imu_turn_var_rad2_per_rad":  def.IMUTurnVarRad2PerRad,
+		"noise.imu_offset_var_rad2_per_s":  def.IMUOffsetVarRad2PerS,
+		"noise.step_forward_var_m2_per_s":  0,
+		"noise.step_left_var_m2_per_s":     0,
+		"noise.step_turn_var_rad2_per_s":   0,
+	}
+	v, ok := m[field]
+	return v, ok
+}

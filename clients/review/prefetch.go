@@ -1,0 +1,165 @@
+package review
+
+import (
+	"fmt"
+
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+)
+
+// prefetch reads a store's records in a goroutine of its own, in runs of
+// prefetchLen, ahead of a reader that walks them in order (forwards, or
+// last first): decoding the steps then takes the other core while the
+// smoother or the report's pass works. Runs go back for reuse once read.
+type prefetch[T any] struct {
+	n, step int // records; +1 forwards, -1 backwards
+	runs    chan prefetchRun[T]
+	free    chan []T
+	stop    chan struct{}
+	cur     prefetchRun[T]
+	have    bool
+}
+
+type prefetchRun[T any] struct {
+	lo    int
+	items []T
+	err   error
+}
+
+const prefetchLen = 256
+
+// startPrefetch reads records 0 to n-1 (n-1 to 0 with backwards) with
+// fill, which sets dst[j] to record lo+j.
+func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) error) *prefetch[T] {
+	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), free: make(chan []T, 3), stop: make(chan struct{})}
+	if backwards {
+		p.step = -1
+	}
+	go func() {
+		defer close(p.runs)
+		for r := 0; r*prefetchLen < n; r++ {
+			lo := r * prefetchLen
+			if backwards {
+				lo = max(0, n-(r+1)*prefetchLen)
+			}
+			hi := min(n, lo+prefetchLen)
+			if backwards {
+				hi = n - r*prefetchLen
+			}
+			var items []T
+			select {
+			case items = <-p.free:
+			default:
+				items = make([]T, prefetchLen)
+			}
+			err := fill(lo, items[:hi-lo])
+			select {
+			case p.runs <- prefetchRun[T]{lo, items[:hi-lo], err}:
+			case <-p.stop:
+				return
+			}
+			if err != nil {
+				return
+			}
+		}
+	}()
+	return p
+}
+
+// at returns record i, which must follow the one asked for before in the
+// prefetcher's order. The record is valid until the call after the next
+// run is needed.
+func (p *prefetch[T]) at(i int) (*T, error) {
+	for !p.have || i < p.cur.lo || i >= p.cur.lo+len(p.cur.items) {
+		if p.have {
+			if (p.step > 0 && i < p.cur.lo) || (p.step < 0 && i >= p.cur.lo+len(p.cur.items)) {
+				panic(fmt.Sprintf("review: record %d read out of order", i))
+			}
+			select {
+			case p.free <- p.cur.items[:cap(p.cur.items)]:
+			default:
+			}
+		}
+		r, ok := <-p.runs
+		if !ok {
+			return nil, fmt.Errorf("review: record %d of %d was not read", i, p.n)
+		}
+		if r.err != nil {
+			return nil, r.err
+		}
+		p.cur, p.have = r, true
+	}
+	return &p.cur.items[i-p.cur.lo], nil
+}
+
+// close stops the reading goroutine.
+func (p *prefetch[T]) close() { close(p.stop) }
+
+// prefetchedSteps is a fusion.StepStore for the smoother, which reads the
+// steps last first, with the steps decoded ahead.
+type prefetchedSteps struct {
+	n int
+	p *prefetch[fusion.Step]
+}
+
+func prefetchSteps(steps *stepStore) *prefetchedSteps {
+	rd := steps.reader()
+	return &prefetchedSteps{n: steps.Len(), p: startPrefetch(steps.Len(), true, func(lo int, dst []fusion.Step) error {
+		for j := range dst {
+			if err := rd.Step(lo+j, &dst[j]); err != nil {
+				return err
+			}
+		}
+		return nil
+	})}
+}
+
+func (ps *prefetchedSteps) Len() int { return ps.n }
+
+func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
+	s, err := ps.p.at(i)
+	if err == nil {
+		dst.CopyFrom(s)
+	}
+	return err
+}
+
+// trackItem is what the report's forward pass needs of a step: its
+// filtered and smoothed states and, with a truth file, the truth at its
+// stamp and the pose NEES of both states against it.
+type trackItem struct {
+	stampNs    int64
+	start      bool
+	post       estimator.State
+	smoothed   estimator.State
+	truth      estimator.Pose
+	truthGapNs int64
+	haveTruth  bool
+	nees       [2]float64 // filtered, smoothed
+}
+
+// prefetchTrack reads the filtered and the smoothed states forwards, and
+// the truth (if not nil), ahead of the report's pass.
+func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefetch[trackItem] {
+	rd := steps.reader()
+	return startPrefetch(steps.Len(), false, func(lo int, dst []trackItem) error {
+		for j := range dst {
+			it := &dst[j]
+			var err error
+			if it.stampNs, it.start, err = rd.readPost(lo+j, &it.post); err != nil {
+				return err
+			}
+			if err := sm.get(lo+j, &it.smoothed); err != nil {
+				return err
+			}
+			it.haveTruth = false
+			if truth != nil {
+				it.truth, it.truthGapNs, it.haveTruth = truth.at(it.stampNs)
+			}
+			if it.haveTruth {
+				it.nees = [2]float64{nees3(&it.post, it.truth), nees3(&it.smoothed, it.truth)}
+			}
+		}
+		return nil
+	})
+}

@@ -1,0 +1,480 @@
+package calib
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"slices"
+
+	"gonum.org/v1/gonum/diff/fd"
+	"gonum.org/v1/gonum/mat"
+	"gonum.org/v1/gonum/optimize"
+	"gonum.org/v1/gonum/stat/distuv"
+
+	"reckon.example/fusion"
+)
+
+// NoiseFitOptions tune FitNoise. The zero value means the defaults.
+type NoiseFitOptions struct {
+	// Levels are the levels to fit; nil fits every level of Levels(cfg).
+	Levels []NoiseLevel
+	// MaxReplays bounds the replays of the run by the optimiser (300); the
+	// Hessian and the checks take 2 k (k + 1) + 3 more for k levels.
+	MaxReplays int
+	// MaxStdErrLog is the largest standard error of a level's natural log
+	// for it to count as identified (0.35: the run pins the level to
+	// within a factor of two at 95%).
+	MaxStdErrLog float64
+}
+
+// FittedLevel is one noise level as the fit left it.
+type FittedLevel struct {
+	NoiseLevel
+	// Configured is the level in the configuration given (a covariance
+	// factor is 1); Fitted the level the fit chose. A level the run does
+	// not identify keeps its configured value.
+	Configured, Fitted float64
+	// StdErrLog is the standard error of log(Fitted) from the observed
+	// Fisher information (the numerical Hessian of the log-likelihood in
+	// the logs of the levels, inverted); Lo and Hi are the 95% interval
+	// exp(log Fitted -+ 1.96 StdErrLog). NaN when not identifiable.
+	StdErrLog, Lo, Hi float64
+	// Identifiable says whether the run determines the level; Note says
+	// why not.
+	Identifiable bool
+	Note         string
+}
+
+// NoiseFit is the result of FitNoise.
+type NoiseFit struct {
+	Levels []FittedLevel
+	// Config is the configuration given, defaults filled in, with the
+	// identified levels at their fitted values.
+	Config fusion.Config
+	// LogLikBefore and LogLikAfter are the run's log-likelihood at the
+	// configured and at the fitted levels (over the same innovations:
+	// Innovations of them, Excluded fixes left out as gross outliers).
+	LogLikBefore, LogLikAfter float64
+	Innovations, Excluded     int
+	// Replays counts the replays of the run the fit took.
+	Replays int
+	// Before and After are the consistency checks of the innovations at
+	// the configured and at the fitted levels.
+	Before, After []SensorCheck
+}
+
+// ErrBadLevel: a level to fit is not positive and finite in the
+// configuration (a log scale cannot start there).
+var ErrBadLevel = errors.New("a noise level must be positive and finite to be fitted")
+
+// FitNoise fits the noise levels of cfg to a recorded run (its inputs in
+// arrival order) by maximising the likelihood of the run's innovations
+// (likelihood.go) over the logs of the levels, and says which levels the
+// run identifies, with their standard errors from the observed Fisher
+// information. DEVELOPERS.md, "Design: Noise by likelihood", has the
+// method and its limits.
+func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*NoiseFit, error) {
+	if err := cfg.Validate(); err != nil {
+		return nil, err
+	}
+	levels := opt.Levels
+	if levels == nil {
+		levels = Levels(cfg)
+	}
+	if opt.MaxReplays <= 0 {
+		opt.MaxReplays = 300
+	}
+	if opt.MaxStdErrLog <= 0 {
+		opt.MaxStdErrLog = 0.35
+	}
+	p := newReplayer(cfg, inputs, levels)
+	fit := &NoiseFit{Levels: make([]FittedLevel, len(levels))}
+	x0 := make([]float64, len(levels))
+	for i, l := range levels {
+		x0[i] = l.Value(&p.base)
+		if !(x0[i] > 0) || math.IsInf(x0[i], 0) {
+			return nil, fusion.FieldErrorf(ErrBadLevel, l.Field, "%v", x0[i])
+		}
+		fit.Levels[i] = FittedLevel{NoiseLevel: l, Configured: x0[i], Fitted: x0[i], StdErrLog: math.NaN(), Lo: math.NaN(), Hi: math.NaN()}
+	}
+	var err error
+	if fit.Excluded, err = p.screen(x0); err != nil {
+		return nil, err
+	}
+	fit.Replays++
+	obj := p.objective(&fit.Replays)
+
+	// A first look along each level alone drops the levels the run leaves
+	// flat and starts the simplex where each level's own parabola peaks;
+	// then the simplex fits the rest together, and the Hessian at its
+	// optimum drops the ones it does not pin down, and so does a check of
+	// its curvature two standard errors out. Those go back to their
+	// configured values, the others' standard errors come from their own
+	// block of the Hessian (the dropped levels held fixed), and a short
+	// second simplex polishes them.
+	x := append([]float64(nil), x0...)
+	free := p.probe(obj, x, fit.Levels, opt.MaxStdErrLog)
+	if len(free) > 0 {
+		if err := p.maximise(obj, x, free, 0.25, opt.MaxReplays); err != nil {
+			return nil, err
+		}
+		h := p.hessian(obj, x, free)
+		keep := make([]int, len(free)) // indices into free
+		for k := range keep {
+			keep[k] = k
+		}
+		for {
+			se, ok := stdErrs(h, keep)
+			var next []int
+			for k, j := range keep {
+				fl := &fit.Levels[free[j]]
+				switch {
+				case !ok[k]:
+					fl.Note = "the log-likelihood is flat or not concave in it at the optimum: the run does not determine it"
+				case se[k] > opt.MaxStdErrLog:
+					fl.Note = fmt.Sprintf("standard error of its log %.2f above %.2f: the run does not determine it", se[k], opt.MaxStdErrLog)
+				default:
+					fl.Note, fl.StdErrLog = "", se[k]
+					next = append(next, j)
+					continue
+				}
+				x[free[j]] = x0[free[j]] // not identified: back to its configured value
+			}
+			if len(next) == len(keep) {
+				break
+			}
+			keep = next
+		}
+		var kept []int
+		for _, j := range keep {
+			kept = append(kept, free[j])
+		}
+		if err := p.polish(obj, x, kept, len(free)); err != nil {
+			return nil, err
+		}
+		n := len(kept)
+		if kept = p.quadratic(obj, x, x0, kept, fit.Levels); len(kept) < n {
+			if err := p.polish(obj, x, kept, n); err != nil {
+				return nil, err
+			}
+		}
+		free = kept
+	}
+	for _, i := range free {
+		fl := &fit.Levels[i]
+		fl.Identifiable, fl.Fitted = true, x[i]
+		fl.Lo, fl.Hi = x[i]*math.Exp(-1.96*fl.StdErrLog), x[i]*math.Exp(1.96*fl.StdErrLog)
+	}
+	fit.Config, _ = p.config(x)
+	fit.Config.GateProbability = withDefaults(cfg).GateProbability
+	var n int
+	if fit.Before, fit.LogLikBefore, n, err = p.checks(x0); err != nil {
+		return nil, err
+	}
+	if fit.After, fit.LogLikAfter, _, err = p.checks(x); err != nil {
+		return nil, err
+	}
+	fit.Innovations = n
+	fit.Replays += 2
+	return fit, nil
+}
+
+// screen replays the run at values and leaves out of every later replay
+// the fixes of Gaussian sensors whose NIS there lies beyond the fit's gate
+// (fitGateProbability) scaled by the sensor's median NIS over the
+// chi-square median when that is above 1: gross outliers, which a Gaussian
+// likelihood cannot hold (one fix metres off outweighs thousands). The
+// median is a robust scale (it moves little for a few percent of
+// outliers), so a sensor configured three times too confident does not
+// lose its honest large errors, whose loss would bias its fitted
+// covariance low. Student-t sensors keep all their fixes: their likelihood
+// has the tails for them. It returns how many fixes it left out.
+func (p *replayer) screen(values []float64) (int, error) {
+	type key struct {
+		sensor string
+		t      int64
+	}
+	type seen struct {
+		nis []float64
+		dim int
+	}
+	byKey := map[key]float64{}
+	sensors := map[string]*seen{}
+	err := p.run(values, func(in *fusion.Innovation, nu float64) {
+		if in.SensorID == "imu" || nu != 0 {
+			return
+		}
+		byKey[key{in.SensorID, in.StampNs}] = math.Max(byKey[key{in.SensorID, in.StampNs}], in.Outcome.NIS/float64(in.Outcome.Dim))
+		s := sensors[in.SensorID]
+		if s == nil {
+			s = &seen{}
+			sensors[in.SensorID] = s
+		}
+		s.nis = append(s.nis, in.Outcome.NIS)
+		s.dim = max(s.dim, in.Outcome.Dim)
+	})
+	if err != nil {
+		return 0, err
+	}
+	limit := map[string]float64{} // per degree of freedom
+	for id, s := range sensors {
+		chi := distuv.ChiSquared{K: float64(s.dim)}
+		slices.Sort(s.nis)
+		k := math.Max(1, s.nis[len(s.nis)/2]/chi.Quantile(0.5))
+		limit[id] = k * chi.Quantile(fitGateProbability) / float64(s.dim)
+	}
+	n := 0
+	for i := range p.inputs {
+		if f := p.inputs[i].Fix; f != nil {
+			t, _ := p.stampOf(i)
+			if v, ok := byKey[key{f.SensorID, t}]; ok && v > limit[f.SensorID] {
+				p.skip[i] = true
+				n++
+			}
+		}
+	}
+	return n, nil
+}
+
+// objective returns minus the log-likelihood as a function of the logs of
+// the levels, counting replays; a configuration the levels make invalid
+// (a Student-t sensor at one degree of freedom or fewer) is +Inf.
+func (p *replayer) objective(replays *int) func(logx []float64) float64 {
+	values := make([]float64, len(p.levels))
+	return func(logx []float64) float64 {
+		for i, v := range logx {
+			values[i] = math.Exp(v)
+		}
+		*replays++
+		ll, _, err := p.logLik(values)
+		if err != nil {
+			return math.Inf(1)
+		}
+		return -ll
+	}
+}
+
+// restricted returns obj over the free levels, the others held at x.
+func restricted(obj func([]float64) float64, x []float64, free []int) func([]float64) float64 {
+	all := make([]float64, len(x))
+	return func(y []float64) float64 {
+		for i, v := range x {
+			all[i] = math.Log(v)
+		}
+		for k, i := range free {
+			all[i] = y[k]
+		}
+		return obj(all)
+	}
+}
+
+// probeStepLog is the step of probe in the logs of the levels: a factor
+// 1.65 each way, so that a level a few times off still sees its
+// parabola's curvature.
+const probeStepLog = 0.5
+
+// probeMaxStdErrLog: a level whose standard error of its log, from the
+// curvature along it alone, is above this at the configured levels is not
+// fitted. The curvature along one level is at least its share of the
+// Fisher information (the others held fixed), and a variance three times
+// too large shows a third of the curvature it has at its optimum (for a
+// Gaussian innovation's variance q, d2(-log L)/d(log q)2 = (N/2) s/q over
+// N innovations of mean square s), so this is lenient.
+const probeMaxStdErrLog = 1.0
+
+// probe looks along each level alone, a step probeStepLog either way of
+// x: a level whose curvature there is nil, negative or too small is marked
+// not identified in levels; every other level is moved to the peak of its
+// parabola (at most 3 steps away) and returned as free. The levels it
+// marked are looked at again from there, since a level far off can hide
+// another's curvature; near the others' optimum the curvature along one
+// level is close to what it will be, so those must show a standard error
+// within half as much again as maxStdErrLog to be fitted.
+func (p *replayer) probe(obj func([]float64) float64, x []float64, levels []FittedLevel, maxStdErrLog float64) []int {
+	all := make([]int, len(x))
+	for i := range all {
+		all[i] = i
+	}
+	free, flat := p.probeAlong(obj, x, levels, all, probeMaxStdErrLog)
+	if len(flat) > 0 && len(free) > 0 {
+		more, _ := p.probeAlong(obj, x, levels, flat, maxStdErrLog*1.5)
+		free = append(free, more...)
+		slices.Sort(free)
+	}
+	return free
+}
+
+// probeAlong probes the levels along of x (probe), each free when the
+// standard error of its log from its curvature is at most maxSE, and
+// returns the free ones and the flat ones.
+func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels []FittedLevel, along []int, maxSE float64) (free, flat []int) {
+	y := make([]float64, len(x))
+	for i, v := range x {
+		y[i] = math.Log(v)
+	}
+	f0 := obj(y)
+	next := append([]float64(nil), x...)
+	for _, i := range along {
+		y[i] += probeStepLog
+		up := obj(y)
+		y[i] -= 2 * probeStepLog
+		down := obj(y)
+		y[i] += probeStepLog
+		c := (up - 2*f0 + down) / (probeStepLog * probeStepLog)
+		g := (up - down) / (2 * probeStepLog)
+		if !(c > 0) || math.IsInf(up, 0) || math.IsInf(down, 0) || 1/math.Sqrt(c) > maxSE {
+			levels[i].Note = fmt.Sprintf("the log-likelihood is nearly flat or not concave along it (curvature %.3g per log unit squared): the run does not determine it", c)
+			flat = append(flat, i)
+			continue
+		}
+		step := math.Max(-3*probeStepLog, math.Min(3*probeStepLog, -g/c))
+		next[i] = x[i] * math.Exp(step)
+		levels[i].Note = ""
+		free = append(free, i)
+	}
+	copy(x, next)
+	return free, flat
+}
+
+// maximise moves the free levels of x to the maximum of the likelihood by
+// the Nelder-Mead simplex (J. A. Nelder and R. Mead, Computer Journal
+// 7(4), 1965; gonum optimize) in their logs, from a simplex of the given
+// size. The simplex needs no gradient, which the likelihood's small jumps
+// (a slip test or a gate that flips as the levels move) would spoil. It
+// stops when the best value has not improved by 0.2 over 2k iterations for
+// k free levels: a change of 0.2 in the log-likelihood is a tenth of the
+// 1.92 that bounds a 95% interval.
+func (p *replayer) maximise(obj func([]float64) float64, x []float64, free []int, size float64, maxReplays int) error {
+	f := restricted(obj, x, free)
+	y := make([]float64, len(free))
+	for k, i := range free {
+		y[k] = math.Log(x[i])
+	}
+	res, err := optimize.Minimize(optimize.Problem{Func: f}, y, &optimize.Settings{
+		FuncEvaluations: maxReplays,
+		Converger:       &optimize.FunctionConverge{Absolute: 0.2, Iterations: 2 * len(free)},
+	}, &optimize.NelderMead{SimplexSize: size})
+	if res == nil {
+		return fmt.Errorf("noise fit: %w", err)
+	}
+	if math.IsInf(res.F, 1) {
+		return fmt.Errorf("noise fit: no levels give a valid configuration: %w", err)
+	}
+	for k, i := range free {
+		x[i] = math.Exp(res.X[k])
+	}
+	return nil
+}
+
+// hessianStepLog is the step of the numerical Hessian in the logs of the
+// levels: 10%, wide beside the likelihood's small jumps and narrow beside
+// its curvature.
+const hessianStepLog = 0.1
+
+// polish fits the free levels of x again with a small simplex when some
+// of the had levels fitted before were put back to their configured values
+// (so that fewer than had are free).
+func (p *replayer) polish(obj func([]float64) float64, x []float64, free []int, had int) error {
+	if len(free) == 0 || len(free) == had {
+		return nil
+	}
+	return p.maximise(obj, x, free, 0.1, 10*len(free))
+}
+
+// quadratic checks the Hessian's picture of each level of free against
+// the likelihood itself: two standard errors either way of x along the
+// level alone, minus the log-likelihood should rise by 2 on average (the
+// mean of the two sides, which a slope cancels: the simplex stops within
+// 0.2 of the optimum, and small jumps roughen the likelihood). A level
+// along which it rises by less than 1 sits on a shelf the Hessian's 10%
+// steps did not see (a level the run leaves loose, pulled by a level it
+// does not determine and that stays at a wrong configured value); it is
+// marked not determined and put back to its configured value x0. It
+// returns the levels that pass.
+func (p *replayer) quadratic(obj func([]float64) float64, x, x0 []float64, free []int, levels []FittedLevel) []int {
+	y := make([]float64, len(x))
+	for i, v := range x {
+		y[i] = math.Log(v)
+	}
+	f0 := obj(y)
+	var pass []int
+	var back []int
+	for _, i := range free {
+		se := levels[i].StdErrLog
+		var rise float64
+		for _, d := range []float64{-2 * se, 2 * se} {
+			y[i] += d
+			rise += (obj(y) - f0) / 2
+			y[i] -= d
+		}
+		if rise < 1 {
+			levels[i].Note = fmt.Sprintf("two standard errors (%.2f in its log) away the log-likelihood falls by %.2f on average, not the 2 of its Hessian: the run does not determine it", 2*se, rise)
+			levels[i].StdErrLog = math.NaN()
+			back = append(back, i)
+			continue
+		}
+		pass = append(pass, i)
+	}
+	for _, i := range back {
+		x[i] = x0[i]
+	}
+	return pass
+}
+
+// hessian returns the Hessian of obj (minus the log-likelihood) in the
+// logs of the free levels of x: the observed Fisher information, by
+// central differences (gonum diff/fd).
+func (p *replayer) hessian(obj func([]float64) float64, x []float64, free []int) *mat.SymDense {
+	f := restricted(obj, x, free)
+	y := make([]float64, len(free))
+	for k, i := range free {
+		y[k] = math.Log(x[i])
+	}
+	var h mat.SymDense
+	fd.Hessian(&h, f, y, &fd.Settings{Formula: fd.Central, Step: hessianStepLog})
+	return &h
+}
+
+// stdErrs returns the standard errors of the logs of the levels keep (rows
+// of the Hessian h), the others held fixed: the square roots of the
+// diagonal of the inverse of their block of h, over its positive
+// eigenvalues; ok is false for a level with weight in a direction of zero
+// or negative curvature, which the run does not determine.
+func stdErrs(h *mat.SymDense, keep []int) (se []float64, ok []bool) {
+	se, ok = make([]float64, len(keep)), make([]bool, len(keep))
+	if len(keep) == 0 {
+		return se, ok
+	}
+	b := mat.NewSymDense(len(keep), nil)
+	for r, i := range keep {
+		for c, j := range keep {
+			b.SetSym(r, c, h.At(i, j))
+		}
+	}
+	var eig mat.EigenSym
+	if !eig.Factorize(b, true) {
+		return se, ok
+	}
+	vals := eig.Values(nil)
+	var vecs mat.Dense
+	eig.VectorsTo(&vecs)
+	var top float64
+	for _, v := range vals {
+		top = math.Max(top, v)
+	}
+	for k := range keep {
+		ok[k] = true
+		for j, v := range vals {
+			w := vecs.At(k, j)
+			if v <= 1e-9*top {
+				if w*w > 0.01 {
+					ok[k] = false
+				}
+				continue
+			}
+			se[k] += w * w / v
+		}
+		se[k] = math.Sqrt(se[k])
+	}
+	return se, ok
+}

@@ -27,7 +27,8 @@ type Finding struct {
 	// the mistake: the IMU's turn against the wheels' turn (radians per
 	// radian) for the IMU and for swapped wheels, a wheel's reported travel
 	// against the travel the other rows predict for it (metres per metre)
-	// for a wheel. NaN where the layout gives no such comparison.
+	// for a wheel; for DiagnoseSensors, the fitted mount offset (metres)
+	// or latency (seconds). NaN where the layout gives no such comparison.
 	Slope, R2 float64
 	// Undetermined marks a check the run could not make (Sentence says
 	// why); it is not a mistake found.

@@ -6,6 +6,7 @@ import (
 	"strings"
 	"testing"
 
+	"reckon.example/estimator"
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 )
@@ -222,5 +223,46 @@ func TestDiagnoseInvalidConfig(t *testing.T) {
 	fs := Diagnose(r.cfg, r.odo, r.imu)
 	if len(fs) != 1 || fs[0].Field != "wheels" || fs[0].Undetermined {
 		t.Errorf("findings %+v, want one on wheels", fs)
+	}
+}
+
+// TestDiagnoseSensors: a camera whose mount is left out of the
+// configuration (truth 0.15 m ahead), and one that stamps its fixes at
+// arrival (50 to 200 ms after capture), are named with the field to
+// change; a correct robot gets no finding (simulator truth).
+func TestDiagnoseSensors(t *testing.T) {
+	for _, tc := range []struct {
+		name    string
+		arrival bool
+		noMount bool
+		field   string // "" for no finding
+		phrase  string
+	}{
+		{"correct", false, false, "", ""},
+		{"mount missing", false, true, "sensors[0].mount", "mount is missing"},
+		{"stamped at arrival", true, false, "sensors[0].latency_ns", "correlate with the velocity"},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			r := simulateSys(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 7, DurationS: 90, OutlierFraction: 0.05,
+				Errors: fusiontest.Errors{CameraStampAtArrival: tc.arrival}})
+			cfg := r.cfg
+			if tc.noMount {
+				cfg.Sensors = slices.Clone(cfg.Sensors)
+				cfg.Sensors[0].Mount = estimator.Pose{}
+			}
+			fs := DiagnoseSensors(cfg, r.odo, r.fixes)
+			for _, f := range fs {
+				t.Logf("%s: %s", f.Field, f.Sentence)
+			}
+			if tc.field == "" {
+				if len(fs) != 0 {
+					t.Errorf("findings %+v on a correct robot", fs)
+				}
+				return
+			}
+			if len(fs) != 1 || fs[0].Field != tc.field || !strings.Contains(fs[0].Sentence, tc.phrase) {
+				t.Errorf("findings %+v, want one on %s saying %q", fs, tc.field, tc.phrase)
+			}
+		})
 	}
 }

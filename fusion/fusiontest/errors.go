@@ -44,6 +44,18 @@ type Errors struct {
 	// robots). With wheels, each wheel reports the travel of that scaled
 	// step, as if its counts per metre and the wheel base were off.
 	ForwardScale, TurnScale float64
+	// WheelScales, if set (one entry per wheel of the layout), are each
+	// wheel's own scale errors: wheel i reports 1+WheelScales[i] times its
+	// travel (a worn wheel, a wrong counts per metre), on top of
+	// ForwardScale and TurnScale.
+	WheelScales []float64
+	// CameraStampLateNs stamps every camera fix this long after its
+	// capture (a clock offset, or a latency the configuration does not
+	// declare); CameraStampAtArrival stamps each at its arrival instead,
+	// the capture plus its varying delay (a vision process that stamps
+	// when it sends). Neither draws.
+	CameraStampLateNs    int64
+	CameraStampAtArrival bool
 }
 
 // camera reports whether any camera error process is on.

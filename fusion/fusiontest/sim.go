@@ -21,7 +21,10 @@
 //     total, or with CameraTailCore its core);
 //   - CameraContamination, CameraContaminationScale: a fraction of fixes
 //     with errors five times the stated standard deviation;
-//   - ForwardScale, TurnScale: odometry scale errors (3% to 15%).
+//   - ForwardScale, TurnScale: odometry scale errors (3% to 15%);
+//     WheelScales: each wheel's own;
+//   - CameraStampLateNs, CameraStampAtArrival: fixes stamped after their
+//     capture.
 //
 // Layout Commanded is a differential drive without encoders that reports
 // body steps from its commanded velocities, its truth departing from the
@@ -371,7 +374,11 @@ func (sm *Sim) advance(t int64) {
 		fs, ts := 1+sm.s.ForwardScale, 1+sm.s.TurnScale
 		for i, w := range sm.cfg.Wheels {
 			c := estimator.WheelCoef(w.XM, w.YM, w.DirectionRad)
-			sm.travel[i] += c[0]*step.ForwardM*fs + c[1]*step.LeftM*fs + c[2]*step.TurnRad*ts
+			k := 1.0
+			if i < len(sm.s.WheelScales) {
+				k += sm.s.WheelScales[i]
+			}
+			sm.travel[i] += k * (c[0]*step.ForwardM*fs + c[1]*step.LeftM*fs + c[2]*step.TurnRad*ts)
 		}
 		sm.turnAbs += math.Abs(step.TurnRad)
 		sm.cmd.ForwardM += step.ForwardM * fs
@@ -558,6 +565,13 @@ func (sm *Sim) emitCamera(t int64) {
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
 	}
 	in.Outlier = outlier
+	switch {
+	case sm.s.CameraStampAtArrival:
+		in.Fix.StampNs = in.ArrivalNs
+	case sm.s.CameraStampLateNs != 0:
+		in.Fix.StampNs = t + sm.s.CameraStampLateNs
+		in.ArrivalNs = max(in.ArrivalNs, in.Fix.StampNs)
+	}
 	if sm.s.SensorCovariance {
 		in.Fix.Cov = nil
 	}

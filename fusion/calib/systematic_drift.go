@@ -1,0 +1,269 @@
+package calib
+
+import (
+	"math"
+	"slices"
+
+	"gonum.org/v1/gonum/mat"
+
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+)
+
+// The residuals of one segment's fixes are correlated: each fix's predicted
+// pose carries the odometry's random drift since the segment's anchor,
+// and later fixes carry the drift of earlier ones. segBlock holds that
+// correlation, so that the fit is generalised least squares within each
+// segment (A. C. Aitken, Proceedings of the Royal Society of Edinburgh 55,
+// 1935), whose standard errors hold, where weighting each fix alone would
+// count the drift's errors as independent many times over.
+//
+// In the coordinates of each fix's own whitened residual, the segment's
+// covariance is
+//
+//	C[f][f] = I / w_f + H_f P_f H_f^T      C[f][a] = H_f Phi(f, a) P_a H_a^T
+//
+// with H_f the whitened residual's Jacobian in the robot's pose, P_f the
+// drift covariance of the pose at fix f relative to the anchor (the
+// filter's own prediction, DEVELOPERS.md, "Design: Motion prediction" and
+// "Design: Process noise", from zero at the anchor), Phi(f, a) the product
+// of the pose Jacobians between the fixes, and w_f the fix's robust weight.
+type segBlock struct {
+	fixes []int // the fixes with weight, in capture order
+	off   []int // each fix's first row in the block
+	rows  int
+	l     mat.TriDense // the lower Cholesky factor of C
+	ok    bool
+}
+
+// noiseOf returns the configuration's noise with the defaults where zero.
+func noiseOf(cfg *fusion.Config) fusion.Noise {
+	n, d := cfg.Noise, fusion.DefaultNoise()
+	def := func(v *float64, dv float64) {
+		if *v <= 0 {
+			*v = dv
+		}
+	}
+	def(&n.WheelVarM2PerM, d.WheelVarM2PerM)
+	def(&n.LateralSlipVarM2PerM, d.LateralSlipVarM2PerM)
+	def(&n.TurnVarRad2PerRad, d.TurnVarRad2PerRad)
+	def(&n.HeadingVarRad2PerS, d.HeadingVarRad2PerS)
+	def(&n.StepForwardVarM2PerM, d.StepForwardVarM2PerM)
+	def(&n.StepLeftVarM2PerM, d.StepLeftVarM2PerM)
+	def(&n.StepTurnVarRad2PerRad, d.StepTurnVarRad2PerRad)
+	def(&n.IMUTurnVarRad2PerRad, d.IMUTurnVarRad2PerRad)
+	return n
+}
+
+// stepCov writes the covariance of interval k's step (after deadReckon at
+// g) as the robot's odometry decoding states it: the wheel rows' variances
+// per metre through the solver's gain, scrub per radian turned, or the body
+// step's own rates.
+func (m *sysModel) stepCov(k int, g []float64, gain *mat.Dense, nz *fusion.Noise, cu *[9]float64) {
+	iv := &m.ivs[k]
+	u := m.u[k]
+	dt := float64(iv.t1-iv.t0) * 1e-9
+	if iv.isStep {
+		nz.StepForwardVarM2PerS, nz.StepLeftVarM2PerS, nz.StepTurnVarRad2PerS = m.cfg.Noise.StepForwardVarM2PerS, m.cfg.Noise.StepLeftVarM2PerS, m.cfg.Noise.StepTurnVarRad2PerS
+		estimator.StepNoise(cu, u, dt, &estimator.StepRates{ForwardVarM2PerM: nz.StepForwardVarM2PerM, LeftVarM2PerM: nz.StepLeftVarM2PerM,
+			TurnVarRad2PerRad: nz.StepTurnVarRad2PerRad, ForwardVarM2PerS: nz.StepForwardVarM2PerS, LeftVarM2PerS: nz.StepLeftVarM2PerS, TurnVarRad2PerS: nz.StepTurnVarRad2PerS})
+		return
+	}
+	_, cols := gain.Dims()
+	vars := make([]float64, cols)
+	var mean float64
+	for i := range m.nw {
+		t := math.Abs(get(g, idxOr(m.wheelScale, i), 1) * m.travel[iv.off+i])
+		vars[i] = nz.WheelVarM2PerM * t
+		mean += t / float64(m.nw)
+	}
+	c := m.nw
+	if m.rotation {
+		vars[c] = nz.IMUTurnVarRad2PerRad * math.Abs(u.TurnRad)
+		c++
+	}
+	if m.cfg.NoSideSlip {
+		vars[c] = nz.LateralSlipVarM2PerM * mean
+	}
+	*cu = [9]float64{}
+	for a := range 3 {
+		for b := range 3 {
+			var s float64
+			for r, v := range vars {
+				s += gain.At(a, r) * v * gain.At(b, r)
+			}
+			cu[a*3+b] = s
+		}
+	}
+	if !m.rotation {
+		cu[8] += nz.TurnVarRad2PerRad * math.Abs(u.TurnRad)
+	}
+}
+
+// mul3 returns a b for 3x3 row-major matrices.
+func mul3(a, b *[9]float64) [9]float64 {
+	var c [9]float64
+	for i := range 3 {
+		for j := range 3 {
+			c[i*3+j] = a[i*3]*b[j] + a[i*3+1]*b[3+j] + a[i*3+2]*b[6+j]
+		}
+	}
+	return c
+}
+
+// mul3T returns a b^T.
+func mul3T(a, b *[9]float64) [9]float64 {
+	var c [9]float64
+	for i := range 3 {
+		for j := range 3 {
+			c[i*3+j] = a[i*3]*b[j*3] + a[i*3+1]*b[j*3+1] + a[i*3+2]*b[j*3+2]
+		}
+	}
+	return c
+}
+
+// buildBlocks computes every segment's block at x, after evaluate(x): the
+// fixes with weight and the Cholesky factor of their covariance. It also
+// sets each fix's drift covariance (H P H^T) for reweight.
+func (s *sysSolver) buildBlocks(x []float64) {
+	m := s.m
+	g := x[:s.ng]
+	var gain *mat.Dense
+	if len(m.travel) > 0 {
+		gain = m.solver(g)
+	}
+	nz := noiseOf(m.cfg)
+	anchors := s.anchors(x)
+	s.blocks = s.blocks[:0]
+	start := 0
+	for k := range m.segStart {
+		end := start
+		for end < len(m.fixes) && m.fixes[end].seg == k {
+			end++
+		}
+		s.blocks = append(s.blocks, s.block(k, start, end, g, gain, &nz, anchors[k]))
+		start = end
+	}
+}
+
+// block builds segment k's block from the fixes [from, to).
+func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fusion.Noise, anchor estimator.Pose) segBlock {
+	m := s.m
+	var b segBlock
+	tau := map[int]float64{}
+	for i := from; i < to; i++ {
+		if s.ok[i] && s.w[i] > 0 {
+			b.fixes = append(b.fixes, i)
+			tau[i] = float64(m.fixes[i].stamp) - get(g, m.latency[m.fixes[i].sensor], 0)*1e9
+		}
+	}
+	slices.SortStableFunc(b.fixes, func(a, c int) int { return cmpFloat(tau[a], tau[c]) })
+	for _, i := range b.fixes {
+		b.off = append(b.off, b.rows)
+		b.rows += s.dim[i]
+	}
+	if b.rows == 0 {
+		return b
+	}
+	c := mat.NewSymDense(b.rows, nil)
+	// The rotation of the odometry frame's pose errors into the field
+	// frame.
+	sp, cp := math.Sincos(anchor.Heading + m.segInv[k].Heading)
+	rot := [9]float64{cp, -sp, 0, sp, cp, 0, 0, 0, 1}
+	// Propagate the drift from the anchor through the intervals, keeping
+	// cross[a] = Cov(pose now, pose at fix a) for every fix a passed.
+	t0 := float64(m.segStart[k])
+	iv, _ := slices.BinarySearchFunc(m.ivs, t0, func(v sysInterval, t float64) int { return cmpFloat(float64(v.t1), t) })
+	var p [9]float64
+	ident := [9]float64{1, 0, 0, 0, 1, 0, 0, 0, 1}
+	phi := ident
+	cross := make([][9]float64, len(b.fixes))
+	hs := make([][9]float64, len(b.fixes))
+	var fx, fu, cu [9]float64
+	for n, i := range b.fixes {
+		for iv < len(m.ivs) && float64(m.ivs[iv].t1) <= tau[i] {
+			if float64(m.ivs[iv].t0) >= t0 {
+				estimator.ArcJacobians(m.p0[iv], m.u[iv], &fx, &fu)
+				m.stepCov(iv, g, gain, nz, &cu)
+				fp := mul3(&fx, &p)
+				p = mul3T(&fp, &fx)
+				gu := mul3(&fu, &cu)
+				q := mul3T(&gu, &fu)
+				for e := range p {
+					p[e] += q[e]
+				}
+				p[8] += nz.HeadingVarRad2PerS * float64(m.ivs[iv].t1-m.ivs[iv].t0) * 1e-9
+				phi = mul3(&fx, &phi)
+			}
+			iv++
+		}
+		for a := range n {
+			cross[a] = mul3(&phi, &cross[a])
+		}
+		phi, cross[n] = ident, p
+		hf := s.poseJacobian(i, g, estimator.Compose(anchor, s.rel[i]))
+		hs[n] = mul3(&hf, &rot)
+		for a := 0; a <= n; a++ {
+			hc := mul3(&hs[n], &cross[a])
+			v := mul3T(&hc, &hs[a])
+			for r := range s.dim[i] {
+				for q := range s.dim[b.fixes[a]] {
+					if a == n && q > r {
+						continue
+					}
+					c.SetSym(b.off[n]+r, b.off[a]+q, v[r*3+q])
+				}
+			}
+		}
+		var drift [9]float64
+		for r := range s.dim[i] {
+			for q := range s.dim[i] {
+				drift[r*3+q] = c.At(b.off[n]+r, b.off[n]+q)
+			}
+			c.SetSym(b.off[n]+r, b.off[n]+r, c.At(b.off[n]+r, b.off[n]+r)+1/s.w[i])
+		}
+		s.drift[i] = drift
+	}
+	var ch mat.Cholesky
+	if b.ok = ch.Factorize(c); b.ok {
+		ch.LTo(&b.l)
+	}
+	return b
+}
+
+// poseJacobian returns the Jacobian (3x3, rows past the fix's dimension
+// zero) of fix i's whitened residual in the field pose p of the robot, by
+// forward differences.
+func (s *sysSolver) poseJacobian(i int, g []float64, p estimator.Pose) [9]float64 {
+	var h [9]float64
+	var e0 [3]float64
+	s.m.residual(i, g, p, &e0)
+	const d = 1e-7
+	for c := range 3 {
+		q := p
+		switch c {
+		case 0:
+			q.X += d
+		case 1:
+			q.Y += d
+		case 2:
+			q.Heading += d
+		}
+		var e [3]float64
+		s.m.residual(i, g, q, &e)
+		for r := range s.dim[i] {
+			h[r*3+c] = (e[r] - e0[r]) / d
+		}
+	}
+	return h
+}
+
+func cmpFloat(a, b float64) int {
+	switch {
+	case a < b:
+		return -1
+	case a > b:
+		return 1
+	}
+	return 0
+}

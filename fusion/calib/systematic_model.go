@@ -1,0 +1,517 @@
+package calib
+
+import (
+	"fmt"
+	"math"
+	"slices"
+
+	"gonum.org/v1/gonum/mat"
+
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+)
+
+// sysInterval is one odometry interval of a run: each wheel's reported
+// travel (metres, at travel[off:off+n] of the model's flat slice), the
+// IMU's turn in rotation mode (radians), or a reported body step.
+type sysInterval struct {
+	t0, t1 int64
+	off    int
+	imu    float64
+	step   estimator.Step
+	isStep bool
+}
+
+// sysFix is one fix prepared for the fit.
+type sysFix struct {
+	stamp  int64
+	sensor int
+	kind   fusion.FixKind
+	mount  estimator.Pose // the fix's own mount, or the sensor's configured one
+	z      [3]float64
+	dim    int
+	// rng, brg: which landmark components z holds (range first).
+	rng, brg bool
+	lm       [2]float64
+	// winv is the inverse of the covariance's Cholesky factor (lower
+	// triangular, row-major dim x dim): whitened residual = winv r.
+	winv [9]float64
+	seg  int
+}
+
+// sysParam is a global parameter: what it is and where it sits.
+type sysParam struct {
+	Param
+	step float64 // forward-difference step
+}
+
+// sysModel is a run prepared for the fit and the dead reckoning of one
+// parameter vector.
+type sysModel struct {
+	cfg    *fusion.Config
+	ivs    []sysInterval
+	travel []float64
+	fixes  []sysFix
+	// segStart is each segment's anchor stamp.
+	segStart []int64
+	params   []sysParam
+	nw       int
+	rotation bool
+	counts   bool
+	// idx of the odometry parameters in params (-1 if absent).
+	wheelScale           []int
+	spread, imuScale     int
+	stepFwd, stepTurn    int
+	mountX, mountY, mHdg []int // per sensor
+	latency              []int
+
+	// Scratch of one dead reckoning: poses at each interval's start and
+	// end, and each interval's step.
+	p0, p1 []estimator.Pose
+	u      []estimator.Step
+	segInv []estimator.Pose
+}
+
+// newSysModel prepares the run.
+func newSysModel(cfg *fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, opt SystematicOptions) (*sysModel, error) {
+	m := &sysModel{cfg: cfg, nw: len(cfg.Wheels), rotation: cfg.IMU == fusion.IMURotation, spread: -1, imuScale: -1, stepFwd: -1, stepTurn: -1}
+	m.intervals(odo)
+	if len(m.ivs) < 2 {
+		return nil, fmt.Errorf("%w: the run has %d odometry intervals, too few", ErrSystematic, len(m.ivs))
+	}
+	m.prepareFixes(fixes)
+	if len(m.fixes) < 10 {
+		return nil, fmt.Errorf("%w: the run has %d usable fixes inside its odometry, need 10", ErrSystematic, len(m.fixes))
+	}
+	m.segments(opt.SegmentS)
+	m.globals(opt.SensorsOnly)
+	n := len(m.ivs)
+	m.p0, m.p1, m.u = make([]estimator.Pose, n), make([]estimator.Pose, n), make([]estimator.Step, n)
+	return m, nil
+}
+
+// intervals turns the odometry samples (sorted by stamp) into intervals,
+// as the robot decodes them (DEVELOPERS.md, "Design: Odometry samples"): a
+// sample whose stamp is not after the one before is dropped, a count jump
+// past the speed limit re-references the counts.
+func (m *sysModel) intervals(odo []fusion.Odometry) {
+	odo = slices.Clone(odo)
+	slices.SortStableFunc(odo, func(a, b fusion.Odometry) int { return cmpInt(a.StampNs, b.StampNs) })
+	var prevCounts []int64
+	var prevIMU *float64
+	newest := int64(math.MinInt64)
+	tr := make([]float64, m.nw)
+	for k := range odo {
+		o := &odo[k]
+		if o.StampNs <= newest {
+			continue
+		}
+		iv := sysInterval{t0: o.StartNs, t1: o.StampNs, off: len(m.travel), imu: math.NaN()}
+		ok := true
+		switch {
+		case o.Step != nil:
+			iv.step, iv.isStep = *o.Step, true
+		case o.Counts != nil && len(o.Counts) == m.nw:
+			m.counts = true
+			ok = prevCounts != nil
+			iv.t0 = newest
+			for i, w := range m.cfg.Wheels {
+				if ok && w.CountsPerM > 0 {
+					tr[i] = float64(countDelta(o.Counts[i], prevCounts[i], w.CounterBits)) / w.CountsPerM
+					ok = ok && math.Abs(tr[i]) <= m.cfg.MaxSpeedMPerS*float64(o.StampNs-newest)*1e-9+1e-3
+				}
+			}
+			prevCounts = append(prevCounts[:0], o.Counts...)
+		case len(o.TravelM) == m.nw && m.nw > 0:
+			copy(tr, o.TravelM)
+		default:
+			ok = false
+		}
+		if m.rotation && o.Step == nil {
+			if o.IMUHeadingRad == nil {
+				ok = false
+			} else {
+				if prevIMU == nil {
+					ok = false
+				} else {
+					iv.imu = estimator.Wrap(*o.IMUHeadingRad - *prevIMU)
+				}
+				v := *o.IMUHeadingRad
+				prevIMU = &v
+			}
+		}
+		newest = o.StampNs
+		if !ok || iv.t0 >= iv.t1 {
+			continue
+		}
+		if o.Step == nil {
+			m.travel = append(m.travel, tr...)
+		}
+		m.ivs = append(m.ivs, iv)
+	}
+}
+
+func cmpInt(a, b int64) int {
+	switch {
+	case a < b:
+		return -1
+	case a > b:
+		return 1
+	}
+	return 0
+}
+
+// prepareFixes keeps the fixes of configured sensors with a covariance,
+// inside the odometry's span, sorted by stamp, and whitens them.
+func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
+	first, last := m.ivs[0].t0, m.ivs[len(m.ivs)-1].t1
+	lms := map[string][2]float64{}
+	for _, l := range m.cfg.Landmarks {
+		lms[l.ID] = [2]float64{l.XM, l.YM}
+	}
+	for k := range fixes {
+		fx := &fixes[k]
+		si := slices.IndexFunc(m.cfg.Sensors, func(s fusion.Sensor) bool { return s.ID == fx.SensorID })
+		if si < 0 {
+			continue
+		}
+		sen := &m.cfg.Sensors[si]
+		t := fx.StampNs - sen.LatencyNs
+		if t < first || t > last {
+			continue
+		}
+		f := sysFix{stamp: fx.StampNs, sensor: si, kind: sen.Kind, mount: sen.Mount}
+		if fx.Mount != nil {
+			f.mount = *fx.Mount
+		}
+		cov := fx.Cov
+		switch sen.Kind {
+		case fusion.FixPose:
+			f.z, f.dim = [3]float64{fx.XM, fx.YM, fx.HeadingRad}, 3
+		case fusion.FixPosition:
+			f.z, f.dim = [3]float64{fx.XM, fx.YM}, 2
+		case fusion.FixHeading:
+			f.z, f.dim = [3]float64{fx.HeadingRad}, 1
+		case fusion.FixLandmark:
+			l, found := lms[fx.LandmarkID]
+			if !found || (fx.RangeM == nil && fx.BearingRad == nil) {
+				continue
+			}
+			f.lm = l
+			f.rng, f.brg = fx.RangeM != nil, fx.BearingRad != nil
+			if f.rng {
+				f.z[f.dim] = *fx.RangeM
+				f.dim++
+			}
+			if f.brg {
+				f.z[f.dim] = *fx.BearingRad
+				f.dim++
+			}
+			if len(cov) == 0 && len(sen.Cov) == 4 && f.dim == 1 {
+				c := sen.Cov[0]
+				if f.brg {
+					c = sen.Cov[3]
+				}
+				cov = []float64{c}
+			}
+		default:
+			continue
+		}
+		if len(cov) == 0 {
+			cov = sen.Cov
+		}
+		if len(cov) != f.dim*f.dim || !whiten(&f.winv, cov, f.dim) {
+			continue
+		}
+		m.fixes = append(m.fixes, f)
+	}
+	slices.SortStableFunc(m.fixes, func(a, b sysFix) int { return cmpInt(a.stamp, b.stamp) })
+}
+
+// whiten writes the inverse of the Cholesky factor of the covariance c
+// (n x n, row-major) into w; false if c is not positive definite.
+func whiten(w *[9]float64, c []float64, n int) bool {
+	var s mat.SymDense
+	s.SetRawSymmetric(mat.NewSymDense(n, slices.Clone(c)).RawSymmetric())
+	var ch mat.Cholesky
+	if !ch.Factorize(&s) {
+		return false
+	}
+	var l, li mat.TriDense
+	ch.LTo(&l)
+	if err := li.InverseTri(&l); err != nil {
+		return false
+	}
+	for i := range n {
+		for j := range n {
+			w[i*n+j] = li.At(i, j)
+		}
+	}
+	return true
+}
+
+// segments cuts the fixes into segments of about segS seconds of stamps,
+// each with at least minSegFixes fixes (a short tail joins the segment
+// before).
+func (m *sysModel) segments(segS float64) {
+	const minSegFixes = 6
+	segNs := int64(segS * 1e9)
+	count := 0
+	for i := range m.fixes {
+		f := &m.fixes[i]
+		if len(m.segStart) == 0 || (f.stamp-m.segStart[len(m.segStart)-1] >= segNs && count >= minSegFixes) {
+			m.segStart = append(m.segStart, f.stamp)
+			count = 0
+		}
+		f.seg = len(m.segStart) - 1
+		count++
+	}
+	if count < minSegFixes && len(m.segStart) > 1 {
+		last := len(m.segStart) - 1
+		for i := len(m.fixes) - count; i < len(m.fixes); i++ {
+			m.fixes[i].seg = last - 1
+		}
+		m.segStart = m.segStart[:last]
+	}
+}
+
+// globals lists the global parameters the run can have.
+func (m *sysModel) globals(sensorsOnly bool) {
+	add := func(k ParamKind, i int, v, step float64) int {
+		p := sysParam{Param: Param{Kind: k, Index: i, Configured: v, Fitted: v}, step: step}
+		describe(m.cfg, &p.Param)
+		m.params = append(m.params, p)
+		return len(m.params) - 1
+	}
+	hasStep := slices.ContainsFunc(m.ivs, func(iv sysInterval) bool { return iv.isStep })
+	if !sensorsOnly {
+		if m.nw > 0 && len(m.travel) > 0 {
+			for i := range m.nw {
+				m.wheelScale = append(m.wheelScale, add(WheelScale, i, 1, 1e-6))
+			}
+			m.spread = add(WheelSpread, 0, 1, 1e-6)
+			if m.rotation {
+				m.imuScale = add(IMUTurnScale, 0, 1, 1e-6)
+			}
+		}
+		if hasStep {
+			m.stepFwd = add(StepForwardScale, 0, 1, 1e-6)
+			m.stepTurn = add(StepTurnScale, 0, 1, 1e-6)
+		}
+	}
+	ns := len(m.cfg.Sensors)
+	m.mountX, m.mountY, m.mHdg, m.latency = fill(ns, -1), fill(ns, -1), fill(ns, -1), fill(ns, -1)
+	for si, s := range m.cfg.Sensors {
+		if !slices.ContainsFunc(m.fixes, func(f sysFix) bool { return f.sensor == si }) {
+			continue
+		}
+		if s.Kind != fusion.FixHeading {
+			m.mountX[si] = add(MountX, si, s.Mount.X, 1e-6)
+			m.mountY[si] = add(MountY, si, s.Mount.Y, 1e-6)
+		}
+		if s.Kind != fusion.FixPosition {
+			m.mHdg[si] = add(MountHeading, si, s.Mount.Heading, 1e-6)
+		}
+		m.latency[si] = add(Latency, si, float64(s.LatencyNs)*1e-9, 2e-3)
+	}
+}
+
+func fill(n, v int) []int {
+	s := make([]int, n)
+	for i := range s {
+		s[i] = v
+	}
+	return s
+}
+
+// get returns global parameter i of g, or def when the parameter is absent.
+func get(g []float64, i int, def float64) float64 {
+	if i < 0 {
+		return def
+	}
+	return g[i]
+}
+
+// solver returns the least-squares gain M (3 x rows) of the wheel rows
+// under the parameters g: u = M v, v the row values (each wheel's travel
+// times its scale, then the IMU's turn, then the no-side-slip row's 0),
+// weighted by the configured noise rates.
+func (m *sysModel) solver(g []float64) *mat.Dense {
+	spread := get(g, m.spread, 1)
+	nz := m.cfg.Noise
+	def := fusion.DefaultNoise()
+	or := func(v, d float64) float64 {
+		if v > 0 {
+			return v
+		}
+		return d
+	}
+	var rows [][3]float64
+	var wts []float64
+	for _, w := range m.cfg.Wheels {
+		rows = append(rows, estimator.WheelCoef(w.XM*spread, w.YM*spread, w.DirectionRad))
+		wts = append(wts, 1/or(nz.WheelVarM2PerM, def.WheelVarM2PerM))
+	}
+	if m.rotation {
+		rows = append(rows, estimator.TurnCoef())
+		wts = append(wts, 1/or(nz.IMUTurnVarRad2PerRad, def.IMUTurnVarRad2PerRad))
+	}
+	if m.cfg.NoSideSlip {
+		rows = append(rows, estimator.LeftCoef())
+		wts = append(wts, 1/or(nz.LateralSlipVarM2PerM, def.LateralSlipVarM2PerM))
+	}
+	a := mat.NewDense(len(rows), 3, nil)
+	aw := mat.NewDense(len(rows), 3, nil)
+	for i, r := range rows {
+		a.SetRow(i, r[:])
+		for j := range 3 {
+			aw.Set(i, j, r[j]*wts[i])
+		}
+	}
+	var n, inv, gain mat.Dense
+	n.Mul(aw.T(), a)
+	if err := inv.Inverse(&n); err != nil {
+		panic("calib: the rows of a validated layout are singular")
+	}
+	gain.Mul(&inv, aw.T())
+	return &gain
+}
+
+// deadReckon computes the poses at every interval's start and end from
+// the identity at the first interval's start, under the parameters g.
+func (m *sysModel) deadReckon(g []float64) {
+	var gain *mat.Dense
+	var v []float64
+	if len(m.travel) > 0 {
+		gain = m.solver(g)
+		_, c := gain.Dims()
+		v = make([]float64, c)
+	}
+	scale := make([]float64, m.nw)
+	for i := range scale {
+		scale[i] = get(g, idxOr(m.wheelScale, i), 1)
+	}
+	imuS, sf, st := get(g, m.imuScale, 1), get(g, m.stepFwd, 1), get(g, m.stepTurn, 1)
+	var p estimator.Pose
+	for k := range m.ivs {
+		iv := &m.ivs[k]
+		var u estimator.Step
+		if iv.isStep {
+			u = estimator.Step{ForwardM: sf * iv.step.ForwardM, LeftM: sf * iv.step.LeftM, TurnRad: st * iv.step.TurnRad}
+		} else {
+			for i := range m.nw {
+				v[i] = scale[i] * m.travel[iv.off+i]
+			}
+			if m.rotation {
+				v[m.nw] = imuS * iv.imu
+			}
+			var s [3]float64
+			for r := range 3 {
+				row := gain.RawRowView(r)
+				for c, x := range v {
+					s[r] += row[c] * x
+				}
+			}
+			u = estimator.Step{ForwardM: s[0], LeftM: s[1], TurnRad: s[2]}
+		}
+		m.p0[k], m.u[k] = p, u
+		p = estimator.Advance(p, u)
+		m.p1[k] = p
+	}
+}
+
+func idxOr(s []int, i int) int {
+	if i < len(s) {
+		return s[i]
+	}
+	return -1
+}
+
+// poseAt returns the dead-reckoned pose at t (ns; fractional), clamped to
+// the run: inside an interval the arc model's fraction of its step (which
+// composes exactly), in a gap the pose where the odometry stopped.
+func (m *sysModel) poseAt(t float64) estimator.Pose {
+	k, _ := slices.BinarySearchFunc(m.ivs, t, func(iv sysInterval, t float64) int {
+		if float64(iv.t1) < t {
+			return -1
+		}
+		return 1
+	})
+	if k >= len(m.ivs) {
+		return m.p1[len(m.ivs)-1]
+	}
+	iv := &m.ivs[k]
+	if t <= float64(iv.t0) {
+		return m.p0[k]
+	}
+	f := (t - float64(iv.t0)) / float64(iv.t1-iv.t0)
+	return estimator.Advance(m.p0[k], m.u[k].Scale(f))
+}
+
+// inverse returns the pose a^-1: Compose(a, inverse(a)) is the identity.
+func inverse(a estimator.Pose) estimator.Pose {
+	s, c := math.Sincos(a.Heading)
+	return estimator.Pose{X: -c*a.X - s*a.Y, Y: s*a.X - c*a.Y, Heading: estimator.Wrap(-a.Heading)}
+}
+
+// anchorPoses computes, after deadReckon, the inverse of the dead-reckoned
+// pose at each segment's anchor stamp.
+func (m *sysModel) anchorPoses() {
+	m.segInv = m.segInv[:0]
+	for _, t := range m.segStart {
+		m.segInv = append(m.segInv, inverse(m.poseAt(float64(t))))
+	}
+}
+
+// relative returns, after anchorPoses, fix i's robot pose at its capture
+// relative to its segment's anchor, under the global parameters g.
+func (m *sysModel) relative(i int, g []float64) estimator.Pose {
+	f := &m.fixes[i]
+	lat := get(g, m.latency[f.sensor], 0)
+	return estimator.Compose(m.segInv[f.seg], m.poseAt(float64(f.stamp)-lat*1e9))
+}
+
+// residual writes fix i's whitened residual (measurement less prediction,
+// angles wrapped) for the robot pose p into e and returns its dimension;
+// false if the prediction is degenerate (the sensor on its landmark).
+func (m *sysModel) residual(i int, g []float64, p estimator.Pose, e *[3]float64) (int, bool) {
+	f := &m.fixes[i]
+	mt := f.mount
+	s := &m.cfg.Sensors[f.sensor]
+	mt.X += get(g, m.mountX[f.sensor], s.Mount.X) - s.Mount.X
+	mt.Y += get(g, m.mountY[f.sensor], s.Mount.Y) - s.Mount.Y
+	mt.Heading += get(g, m.mHdg[f.sensor], s.Mount.Heading) - s.Mount.Heading
+	q := estimator.Compose(p, mt)
+	var r [3]float64
+	switch f.kind {
+	case fusion.FixPose:
+		r = [3]float64{f.z[0] - q.X, f.z[1] - q.Y, estimator.Wrap(f.z[2] - q.Heading)}
+	case fusion.FixPosition:
+		r = [3]float64{f.z[0] - q.X, f.z[1] - q.Y}
+	case fusion.FixHeading:
+		r = [3]float64{estimator.Wrap(f.z[0] - q.Heading)}
+	case fusion.FixLandmark:
+		dx, dy := f.lm[0]-q.X, f.lm[1]-q.Y
+		rg := math.Hypot(dx, dy)
+		if rg < 1e-6 {
+			return 0, false
+		}
+		k := 0
+		if f.rng {
+			r[k] = f.z[k] - rg
+			k++
+		}
+		if f.brg {
+			r[k] = estimator.Wrap(f.z[k] - (math.Atan2(dy, dx) - q.Heading))
+		}
+	}
+	n := f.dim
+	for a := range n {
+		var v float64
+		for b := 0; b <= a; b++ {
+			v += f.winv[a*n+b] * r[b]
+		}
+		e[a] = v
+	}
+	return n, true
+}

@@ -1,0 +1,592 @@
+package calib
+
+import (
+	"math"
+	"slices"
+
+	"gonum.org/v1/gonum/blas"
+	"gonum.org/v1/gonum/blas/blas64"
+	"gonum.org/v1/gonum/mat"
+	"gonum.org/v1/gonum/stat/distuv"
+
+	"reckon.example/estimator"
+	"reckon.example/fusion"
+)
+
+// sysSolver holds the fit's state: the parameter vector (globals, then
+// three per segment anchor), the fixes' weights and the scratch of one
+// evaluation.
+type sysSolver struct {
+	m     *sysModel
+	opt   SystematicOptions
+	ng, p int
+	x     []float64
+	prior []float64 // prior standard deviation of each global
+	w     []float64 // each fix's weight
+	// e, dim, ok: each fix's whitened residual at the last evaluation;
+	// rel its robot pose relative to its segment's anchor.
+	e   [][3]float64
+	dim []int
+	ok  []bool
+	rel []estimator.Pose
+	// jac holds each fix's Jacobian rows, 3 x (ng + 3), row-major.
+	jac []float64
+	// blocks are the segments' correlated residuals (segBlock), built at
+	// each re-weighting; drift is each fix's drift covariance in its
+	// whitened residual (zero before the first blocks).
+	blocks     []segBlock
+	drift      [][9]float64
+	s2         float64
+	iterations int
+	converged  bool
+	outliers   int
+}
+
+func newSysSolver(m *sysModel, opt SystematicOptions) *sysSolver {
+	ng := len(m.params)
+	s := &sysSolver{m: m, opt: opt, ng: ng, p: ng + 3*len(m.segStart), s2: 1}
+	s.x = make([]float64, s.p)
+	for j, pr := range m.params {
+		s.x[j] = pr.Configured
+		s.prior = append(s.prior, priorFactor*pr.Bound)
+	}
+	n := len(m.fixes)
+	s.w = make([]float64, n)
+	for i := range s.w {
+		s.w[i] = 1
+	}
+	s.e, s.dim, s.ok, s.rel = make([][3]float64, n), make([]int, n), make([]bool, n), make([]estimator.Pose, n)
+	s.jac = make([]float64, n*3*(ng+3))
+	s.drift = make([][9]float64, n)
+	s.initAnchors()
+	return s
+}
+
+func (s *sysSolver) anchors(x []float64) []estimator.Pose {
+	a := make([]estimator.Pose, len(s.m.segStart))
+	for k := range a {
+		o := s.ng + 3*k
+		a[k] = estimator.Pose{X: x[o], Y: x[o+1], Heading: x[o+2]}
+	}
+	return a
+}
+
+// initAnchors starts each segment's anchor where the odometry from the
+// configured start pose puts it, or, with pose fixes, at the median of the
+// anchors each of its pose fixes implies (robust to outlying fixes).
+func (s *sysSolver) initAnchors() {
+	m := s.m
+	g := s.x[:s.ng]
+	m.deadReckon(g)
+	m.anchorPoses()
+	for k, t := range m.segStart {
+		a := estimator.Compose(m.cfg.StartPose, m.poseAt(float64(t)))
+		var xs, ys, hs []float64
+		for i := range m.fixes {
+			f := &m.fixes[i]
+			if f.seg != k || f.kind != fusion.FixPose {
+				continue
+			}
+			robot := estimator.Detach(estimator.Pose{X: f.z[0], Y: f.z[1], Heading: f.z[2]}, f.mount)
+			c := estimator.Compose(robot, inverse(m.relative(i, g)))
+			xs, ys = append(xs, c.X), append(ys, c.Y)
+			hs = append(hs, estimator.Wrap(c.Heading-a.Heading))
+		}
+		if len(xs) > 0 {
+			a = estimator.Pose{X: median(xs), Y: median(ys), Heading: estimator.Wrap(a.Heading + median(hs))}
+		}
+		o := s.ng + 3*k
+		s.x[o], s.x[o+1], s.x[o+2] = a.X, a.Y, a.Heading
+	}
+}
+
+func median(v []float64) float64 {
+	c := slices.Clone(v)
+	slices.Sort(c)
+	n := len(c)
+	if n%2 == 1 {
+		return c[n/2]
+	}
+	return (c[n/2-1] + c[n/2]) / 2
+}
+
+// evaluate computes every fix's whitened residual at x (into e, dim, ok
+// and rel) and returns the weighted cost, prior included.
+func (s *sysSolver) evaluate(x []float64, e [][3]float64) float64 {
+	s.m.deadReckon(x[:s.ng])
+	return s.predict(x, e)
+}
+
+// predict is evaluate on the dead reckoning already done: for parameters
+// that do not enter it (mounts and latencies).
+func (s *sysSolver) predict(x []float64, e [][3]float64) float64 {
+	m := s.m
+	g := x[:s.ng]
+	anchors := s.anchors(x)
+	m.anchorPoses()
+	for i := range m.fixes {
+		rel := m.relative(i, g)
+		s.rel[i] = rel
+		d, ok := m.residual(i, g, estimator.Compose(anchors[m.fixes[i].seg], rel), &e[i])
+		s.dim[i], s.ok[i] = d, ok
+		if !ok {
+			e[i] = [3]float64{}
+		}
+	}
+	return s.blockCost(e) + s.priorCost(x)
+}
+
+// blockCost is the generalised least-squares cost of the residuals e over
+// the segments' blocks: sum |L^-1 e_seg|^2.
+func (s *sysSolver) blockCost(e [][3]float64) float64 {
+	var cost float64
+	for bi := range s.blocks {
+		b := &s.blocks[bi]
+		if b.rows == 0 || !b.ok {
+			continue
+		}
+		y := s.gather(b, e)
+		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), y.RawVector())
+		cost += mat.Dot(y, y)
+	}
+	return cost
+}
+
+// gather returns the block's residuals as one vector.
+func (s *sysSolver) gather(b *segBlock, e [][3]float64) *mat.VecDense {
+	v := mat.NewVecDense(b.rows, nil)
+	for n, i := range b.fixes {
+		for r := range s.dim[i] {
+			v.SetVec(b.off[n]+r, e[i][r])
+		}
+	}
+	return v
+}
+
+func (s *sysSolver) priorCost(x []float64) float64 {
+	var c float64
+	for j, pr := range s.m.params {
+		r := (x[j] - pr.Configured) / s.prior[j]
+		c += r * r
+	}
+	return c
+}
+
+// jacobian fills jac at x by forward differences; evaluate(x, s.e) must
+// have run last.
+func (s *sysSolver) jacobian(x []float64) {
+	m := s.m
+	ng := s.ng
+	cols := ng + 3
+	n := len(m.fixes)
+	base := slices.Clone(s.e)
+	baseRel := slices.Clone(s.rel)
+	ep := make([][3]float64, n)
+	xp := slices.Clone(x)
+	odometry := true
+	for j := range ng {
+		h := m.params[j].step
+		xp[j] = x[j] + h
+		if m.params[j].Kind >= MountX {
+			if odometry {
+				m.deadReckon(x[:ng])
+				odometry = false
+			}
+			s.predict(xp, ep)
+		} else {
+			s.evaluate(xp, ep)
+		}
+		xp[j] = x[j]
+		for i := range n {
+			for a := range s.dim[i] {
+				s.jac[(i*3+a)*cols+j] = (ep[i][a] - base[i][a]) / h
+			}
+		}
+	}
+	// Restore the evaluation at x (the dead reckoning, dims and relatives).
+	if odometry {
+		m.deadReckon(x[:ng])
+	}
+	s.predict(x, s.e)
+	copy(s.rel, baseRel)
+	g := x[:ng]
+	anchors := s.anchors(x)
+	const h = 1e-7
+	for i := range n {
+		if !s.ok[i] {
+			continue
+		}
+		a0 := anchors[m.fixes[i].seg]
+		for c := range 3 {
+			a := a0
+			switch c {
+			case 0:
+				a.X += h
+			case 1:
+				a.Y += h
+			case 2:
+				a.Heading += h
+			}
+			var e [3]float64
+			m.residual(i, g, estimator.Compose(a, s.rel[i]), &e)
+			for r := range s.dim[i] {
+				s.jac[(i*3+r)*cols+ng+c] = (e[r] - base[i][r]) / h
+			}
+		}
+	}
+}
+
+// normal returns J^T C^-1 J (prior included) and J^T C^-1 e at the last
+// jacobian, over the segments' blocks; with scores, also each segment's
+// score J^T C^-1 e (length p).
+func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
+	m := s.m
+	ng, cols := s.ng, s.ng+3
+	nm := mat.NewSymDense(s.p, nil)
+	gr := mat.NewVecDense(s.p, nil)
+	idx := make([]int, cols)
+	for j := range ng {
+		idx[j] = j
+	}
+	for k := range s.blocks {
+		b := &s.blocks[k]
+		if b.rows == 0 || !b.ok {
+			continue
+		}
+		for c := range 3 {
+			idx[ng+c] = ng + 3*k + c
+		}
+		jb := mat.NewDense(b.rows, cols, nil)
+		for n, i := range b.fixes {
+			for r := range s.dim[i] {
+				jb.SetRow(b.off[n]+r, s.jac[(i*3+r)*cols:(i*3+r+1)*cols])
+			}
+		}
+		// Whitened by the block's factor (plain triangular solves: the
+		// factor is known to be regular).
+		y := jb
+		ye := s.gather(b, s.e)
+		blas64.Trsm(blas.Left, blas.NoTrans, 1, b.l.RawTriangular(), y.RawMatrix())
+		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), ye.RawVector())
+		var jtj mat.Dense
+		var jte mat.VecDense
+		jtj.Mul(y.T(), y)
+		jte.MulVec(y.T(), ye)
+		for a := range cols {
+			gr.SetVec(idx[a], gr.AtVec(idx[a])+jte.AtVec(a))
+			if scores != nil {
+				scores[k][idx[a]] += jte.AtVec(a)
+			}
+			for c := a; c < cols; c++ {
+				ia, ic := idx[a], idx[c]
+				if ia > ic {
+					ia, ic = ic, ia
+				}
+				nm.SetSym(ia, ic, nm.At(ia, ic)+jtj.At(a, c))
+			}
+		}
+	}
+	_ = m
+	for j, pr := range s.m.params {
+		v := 1 / (s.prior[j] * s.prior[j])
+		nm.SetSym(j, j, nm.At(j, j)+v)
+		gr.SetVec(j, gr.AtVec(j)+v*(s.x[j]-pr.Configured))
+	}
+	// An anchor whose fixes all lost their weight would make N singular;
+	// (30 km)^2 of prior variance keeps it regular and changes nothing else.
+	for j := ng; j < s.p; j++ {
+		nm.SetSym(j, j, nm.At(j, j)+1e-9)
+	}
+	return nm, gr
+}
+
+// lm minimises the weighted cost by Levenberg-Marquardt with Marquardt's
+// scaling (Nocedal and Wright, 2nd ed., sec. 10.3): (N + lambda diag(N))
+// d = -g, lambda divided by 10 after a step that lowers the cost and
+// multiplied by 10 after one that does not.
+func (s *sysSolver) lm(maxIter int) {
+	cost := s.evaluate(s.x, s.e)
+	lambda := 1e-3
+	xn := make([]float64, s.p)
+	en := make([][3]float64, len(s.e))
+	s.converged = false
+	for it := 0; it < maxIter; it++ {
+		s.iterations++
+		s.jacobian(s.x)
+		nm, gr := s.normal(nil)
+		accepted := false
+		for try := 0; try < 12 && !accepted; try++ {
+			a := mat.NewSymDense(s.p, nil)
+			a.CopySym(nm)
+			for j := range s.p {
+				a.SetSym(j, j, nm.At(j, j)*(1+lambda))
+			}
+			var ch mat.Cholesky
+			if !ch.Factorize(a) {
+				lambda *= 10
+				continue
+			}
+			var d mat.VecDense
+			if err := ch.SolveVecTo(&d, gr); err != nil {
+				lambda *= 10
+				continue
+			}
+			for j := range s.p {
+				xn[j] = s.x[j] - d.AtVec(j)
+			}
+			c := s.evaluate(xn, en)
+			if c < cost {
+				copy(s.x, xn)
+				cost = c
+				lambda = math.Max(lambda/10, 1e-12)
+				accepted = true
+				// A damped step is small far from the minimum too: test
+				// the Gauss-Newton step at the old point instead.
+				s.converged = s.small(&d) && lambda <= 1e-3
+			}
+			if !accepted {
+				lambda *= 10
+			}
+		}
+		if !accepted {
+			// No step lowers the cost: a minimum to rounding.
+			s.converged = true
+		}
+		if s.converged {
+			break
+		}
+	}
+	s.evaluate(s.x, s.e)
+}
+
+// latencyStarts are the offsets from the configured latencies from which
+// the fit starts, seconds: the cost has local minima in the latency a few
+// milliseconds apart (the odometry's velocity is piecewise constant over
+// its intervals, with noise), so one start can stop in the wrong one.
+var latencyStarts = []float64{0, 0.04, 0.08, 0.12, 0.16}
+
+// startLatency fits from each of latencyStarts (every sensor's latency
+// moved alike) with Huber's constant k and keeps the start whose fit has
+// the smallest robust scale (the median normalised NIS).
+func (s *sysSolver) startLatency(k float64) {
+	var lat []int
+	for _, i := range s.m.latency {
+		if i >= 0 {
+			lat = append(lat, i)
+		}
+	}
+	if len(lat) == 0 {
+		return
+	}
+	x0 := slices.Clone(s.x)
+	best, bestS2 := slices.Clone(s.x), math.Inf(1)
+	for _, d := range latencyStarts {
+		copy(s.x, x0)
+		for _, i := range lat {
+			s.x[i] += d
+		}
+		s.evaluate(s.x, s.e)
+		s.reweight(k, true)
+		s.buildBlocks(s.x)
+		s.lm(20)
+		s.reweight(k, true)
+		if s.s2 < bestS2 {
+			bestS2 = s.s2
+			copy(best, s.x)
+		}
+	}
+	copy(s.x, best)
+}
+
+// small says whether the step d is negligible: no global parameter moved
+// by a thousandth of its bound, no anchor by a micrometre or microradian.
+func (s *sysSolver) small(d *mat.VecDense) bool {
+	for j := range s.p {
+		tol := 1e-6
+		if j < s.ng {
+			tol = 1e-3 * s.m.params[j].Bound
+		}
+		if math.Abs(d.AtVec(j)) > tol {
+			return false
+		}
+	}
+	return true
+}
+
+// reweight sets each fix's weight from its NIS at the last evaluation
+// (FitSystematic: Huber's weight with a robust scale, gross errors
+// rejected) and returns the largest change of a weight.
+func (s *sysSolver) reweight(k float64, reject bool) float64 {
+	var norm []float64
+	for i := range s.e {
+		if s.ok[i] {
+			norm = append(norm, s.nis(i)/chi2Median(s.dim[i]))
+		}
+	}
+	s.s2 = math.Max(median(norm), 1e-12)
+	var change float64
+	s.outliers = 0
+	for i := range s.e {
+		w := 0.0
+		if s.ok[i] {
+			r := s.nis(i) / s.s2
+			switch {
+			case reject && r > chi2Quantile(0.9999, s.dim[i]):
+				s.outliers++
+			case r <= k*k:
+				w = 1
+			default:
+				w = k / math.Sqrt(r)
+			}
+		}
+		change = math.Max(change, math.Abs(w-s.w[i]))
+		s.w[i] = w
+	}
+	return change
+}
+
+// nis is fix i's NIS against its marginal covariance, its own (whitened:
+// I) plus the drift since its segment's anchor.
+func (s *sysSolver) nis(i int) float64 {
+	d := s.dim[i]
+	c := mat.NewSymDense(d, nil)
+	for a := range d {
+		for b := a; b < d; b++ {
+			v := s.drift[i][a*3+b]
+			if a == b {
+				v++
+			}
+			c.SetSym(a, b, v)
+		}
+	}
+	var ch mat.Cholesky
+	if !ch.Factorize(c) {
+		return math.Inf(1)
+	}
+	var y mat.VecDense
+	if ch.SolveVecTo(&y, mat.NewVecDense(d, s.e[i][:d])) != nil {
+		return math.Inf(1)
+	}
+	return mat.Dot(&y, mat.NewVecDense(d, s.e[i][:d]))
+}
+
+func chi2Quantile(p float64, d int) float64 {
+	return distuv.ChiSquared{K: float64(d)}.Quantile(p)
+}
+
+func chi2Median(d int) float64 { return chi2Quantile(0.5, d) }
+
+// solve runs the re-weighted fits until the weights settle, or until a
+// re-weighting moves no global parameter by more than a hundredth of its
+// bound (a fix on the edge of rejection can flip back and forth). Huber's
+// constant starts at 8 and halves down to HuberK: down-weighted at once,
+// the fixes that show a parameter far from its configured value (a late
+// stamp shows in the turns) would be the ones left out, and the fit would
+// stop short of the solution.
+func (s *sysSolver) solve() {
+	k := math.Max(8, s.opt.HuberK)
+	s.startLatency(k)
+	s.evaluate(s.x, s.e)
+	s.reweight(k, true)
+	s.buildBlocks(s.x)
+	prev := make([]float64, s.ng)
+	for range 16 {
+		copy(prev, s.x[:s.ng])
+		s.lm(60)
+		last := k == s.opt.HuberK
+		k = math.Max(k/2, s.opt.HuberK)
+		ch := s.reweight(k, true)
+		s.buildBlocks(s.x)
+		if !last {
+			continue
+		}
+		var moved float64
+		for j, p := range s.m.params {
+			moved = math.Max(moved, math.Abs(s.x[j]-prev[j])/p.Bound)
+		}
+		if ch < 1e-3 || moved < 0.01 {
+			break
+		}
+	}
+}
+
+// covariances returns the model covariance s2 N^-1 and the segment-robust
+// sandwich of the global parameters (ng x ng), at the solution.
+func (s *sysSolver) covariances() (model, robust *mat.Dense, s2 float64) {
+	ng := s.ng
+	s.evaluate(s.x, s.e)
+	s.jacobian(s.x)
+	nseg := len(s.blocks)
+	scores := make([][]float64, nseg)
+	for k := range scores {
+		scores[k] = make([]float64, s.p)
+	}
+	nm, _ := s.normal(scores)
+	var ch mat.Cholesky
+	inv := mat.NewSymDense(s.p, nil)
+	if !ch.Factorize(nm) || ch.InverseTo(inv) != nil {
+		bad := mat.NewDense(ng, ng, nil)
+		for j := range ng {
+			bad.Set(j, j, math.Inf(1))
+		}
+		return bad, bad, math.NaN()
+	}
+	var rows int
+	for _, b := range s.blocks {
+		if b.ok {
+			rows += b.rows
+		}
+	}
+	s2 = (s.blockCost(s.e)) / math.Max(float64(rows-s.p), 1)
+	model = mat.NewDense(ng, ng, nil)
+	for a := range ng {
+		for b := range ng {
+			model.Set(a, b, s2*inv.At(a, b))
+		}
+	}
+	var full mat.Dense
+	full.CloneFrom(inv)
+	sub := full.Slice(0, ng, 0, s.p)
+	meat := mat.NewSymDense(s.p, nil)
+	for _, g := range scores {
+		meat.SymRankOne(meat, 1, mat.NewVecDense(s.p, g))
+	}
+	var tmp, sw mat.Dense
+	tmp.Mul(sub, meat)
+	sw.Mul(&tmp, sub.T())
+	if nseg > 1 {
+		sw.Scale(float64(nseg)/float64(nseg-1), &sw)
+	}
+	return model, &sw, s2
+}
+
+// result assembles the fit.
+func (s *sysSolver) result(cfg *fusion.Config) SystematicFit {
+	model, robust, s2 := s.covariances()
+	out := SystematicFit{Config: cloneConfig(cfg), Fixes: len(s.m.fixes), Outliers: s.outliers, Segments: len(s.m.segStart),
+		Sigma2: s2, Iterations: s.iterations, Converged: s.converged}
+	for j, sp := range s.m.params {
+		p := sp.Param
+		p.Fitted = s.x[j]
+		if p.Kind == MountHeading {
+			p.Fitted = estimator.Wrap(p.Fitted)
+		}
+		p.StdErr = math.Sqrt(math.Max(model.At(j, j), robust.At(j, j)))
+		p.Determined = p.StdErr <= p.Bound
+		if p.Determined {
+			apply(&out.Config, &p, s.m.counts)
+		} else {
+			p.Why = patterns[p.Kind]
+		}
+		out.Params = append(out.Params, p)
+	}
+	return out
+}
+
+// cloneConfig copies the slices of c that a fit changes.
+func cloneConfig(c *fusion.Config) fusion.Config {
+	out := *c
+	out.Wheels = slices.Clone(c.Wheels)
+	out.Sensors = slices.Clone(c.Sensors)
+	return out
+}

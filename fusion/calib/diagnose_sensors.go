@@ -53,7 +53,11 @@ func DiagnoseSensors(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fi
 						name, what, off, px.Fitted, py.Fitted, s.Mount.Heading+dh, s.Mount.X, s.Mount.Y, s.Mount.Heading)})
 			}
 		}
-		if pl, ok := fit.Param(Latency, si); ok && pl.Determined {
+		// Not only a determined latency: the bound says whether the fit
+		// knows it well enough to write into the configuration, while 40
+		// ms and five standard errors say it is wrong (a stamp at arrival
+		// is 50 to 200 ms late; a minute's run states about 15 ms).
+		if pl, ok := fit.Param(Latency, si); ok && !math.IsInf(pl.StdErr, 0) {
 			d := pl.Fitted - pl.Configured
 			if math.Abs(d) > latencyOffS && math.Abs(d) > sigmas*pl.StdErr {
 				out = append(out, Finding{Field: fmt.Sprintf("sensors[%d].latency_ns", si), Slope: pl.Fitted, R2: math.NaN(),

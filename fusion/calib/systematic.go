@@ -106,9 +106,10 @@ type SystematicFit struct {
 	// fit gave weight zero (gross errors), Segments the number of
 	// re-anchored stretches.
 	Fixes, Outliers, Segments int
-	// Sigma2 is the residual variance factor: the weighted residual sum of
-	// squares of the whitened fixes per degree of freedom (1 when the
-	// fixes' covariances and the odometry's drift are as stated).
+	// Sigma2 is the residual variance factor: the residual sum of squares
+	// of the fixes with weight, whitened by their stated covariance and the
+	// odometry's drift (not by the robust weights), per degree of freedom;
+	// 1 when the fixes' covariances and the odometry's noise are as stated.
 	Sigma2 float64
 	// Iterations counts the Levenberg-Marquardt iterations over all
 	// re-weightings; Converged says the last one met its tolerance.
@@ -196,14 +197,19 @@ var patterns = map[ParamKind]string{
 //
 // # Standard errors and excitation
 //
-// The covariance of the parameters is s2 (J^T W J)^-1 at the solution
-// with a weak prior (each global parameter priorFactor times its bound
-// about its configured value, which keeps the matrix invertible when the
-// run does not excite a parameter), and also the segment-robust sandwich
-// (J^T W J)^-1 (sum_seg g g^T) (J^T W J)^-1 with g each segment's score
-// and G/(G-1) for G segments (K.-Y. Liang and S. L. Zeger, Biometrika
-// 73(1), 1986), which holds when the drift correlates the residuals within
-// a segment. StdErr is the larger of the two. A parameter whose StdErr
+// The robust weights shape the estimator, not the errors: the fixes kept
+// err as stated. So the covariance of the parameters is the sandwich
+// N^-1 (J^T C_w^-1 C C_w^-1 J) N^-1 with N = J^T C_w^-1 J, C_w each
+// segment's covariance with the weights and C the stated one (the
+// covariance of an M-estimator, P. J. Huber, Robust Statistics, 1981, sec.
+// 7.6, with the weights held fixed, which overstates it a little for
+// normal errors), at the solution with a weak prior (each global
+// parameter priorFactor times its bound about its configured value, which
+// keeps the matrix invertible when the run does not excite a parameter).
+// Also computed is the segment-robust sandwich N^-1 (sum_seg g g^T) N^-1
+// with g each segment's score and G/(G-1) for G segments (K.-Y. Liang and
+// S. L. Zeger, Biometrika 73(1), 1986), which holds when the stated noise
+// is wrong. StdErr is the larger of the two. A parameter whose StdErr
 // exceeds its bound is not determined: its configured value is kept and
 // Why names the test pattern that would determine it. Not fitted: the
 // wheels' common offset and the mounts' common translation move together

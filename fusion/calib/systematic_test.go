@@ -8,6 +8,7 @@ import (
 	"testing"
 
 	"gonum.org/v1/gonum/stat"
+	"gonum.org/v1/gonum/stat/distuv"
 
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
@@ -76,12 +77,15 @@ var truthOf = map[ParamKind]func(index int) float64{
 
 // TestSystematicRecoversInjectedErrors: a five-minute simulated run with
 // the errors of injected (simulator truth). Each parameter is determined
-// and recovered within three standard errors (the issue asks for two;
-// over seeds, TestSystematicStandardErrors finds the errors about 1.5 times
-// the stated ones, so two would fail on some seeds). The configured values
-// themselves lie 3% (right wheel, about 40 standard errors), 2% (spread,
-// 6), 3 cm (mount x, 15), 0.035 rad (mount heading, 25) and 80 ms
-// (latency, 30) from the truth, so a fit that returned the configuration
+// and recovered within 3 standard errors, and all but one of the seven
+// within 2. The issue asks for every one within 2, but for a consistent
+// fit each lies beyond 2 with probability 0.046, so one of seven does on
+// 28% of seeds (this seed's spread lies at 2.04, seed 6's left wheel at
+// 2.26), while two or more do on 3.8% (binomial; common practice);
+// TestSystematicStandardErrors checks the standard errors over seeds. The
+// configured values lie 3% (right wheel, about 40 standard errors), 2%
+// (spread, 6), 3 cm (mount x, 13), 0.035 rad (mount heading, 25) and 80 ms
+// (latency, 11) from the truth, so a fit that returned the configuration
 // would fail. The corrected configuration validates and carries the fitted
 // mount and latency.
 func TestSystematicRecoversInjectedErrors(t *testing.T) {
@@ -94,13 +98,20 @@ func TestSystematicRecoversInjectedErrors(t *testing.T) {
 	if len(fit.Params) != 7 {
 		t.Fatalf("%d parameters, want 7 (two wheel scales, spread, mount x, y, heading, latency)", len(fit.Params))
 	}
+	beyond2 := 0
 	for _, p := range fit.Params {
 		want := truthOf[p.Kind](p.Index)
 		z := (p.Fitted - want) / p.StdErr
 		t.Logf("%-40s configured %9.5f fitted %9.5f truth %9.5f se %.5f z %+.2f", p.Name, p.Configured, p.Fitted, want, p.StdErr, z)
+		if math.Abs(z) > 2 {
+			beyond2++
+		}
 		if !p.Determined || math.Abs(z) > 3 {
 			t.Errorf("%s: fitted %.5f +- %.5f (determined %v), truth %.5f", p.Name, p.Fitted, p.StdErr, p.Determined, want)
 		}
+	}
+	if beyond2 > 1 {
+		t.Errorf("%d parameters beyond 2 standard errors, want at most 1", beyond2)
 	}
 	if err := fit.Config.Validate(); err != nil {
 		t.Fatal(err)
@@ -116,40 +127,56 @@ func TestSystematicRecoversInjectedErrors(t *testing.T) {
 }
 
 // TestSystematicStandardErrors: over Monte Carlo seeds, the errors of the
-// fitted parameters against the truth agree with their standard errors:
-// the root mean square of error / standard error, pooled over the
-// parameters, within [0.5, 2] (1 when the standard errors are right; the
-// band allows for the few seeds and is wide, so this checks the order of
-// magnitude), and each parameter's standard error varies little from seed
-// to seed (coefficient of variation below 0.5).
+// fitted parameters against the truth agree with their standard errors,
+// parameter by parameter. For a consistent estimator z = error / standard
+// error is about standard normal, so over n seeds the sum of one
+// parameter's z^2 is chi-square with n degrees of freedom and the root
+// mean square of z lies within sqrt(q/n) for q its 2.5% and 97.5%
+// quantiles with probability 0.95 (common practice; gonum stat/distuv):
+// [0.52, 1.48] for 8 seeds. The residuals' chi-square per degree of
+// freedom (Sigma2) is 1 within 0.1 on average (the drift and the fixes'
+// noise are as stated). And each parameter's standard error varies little
+// from seed to seed (coefficient of variation below 0.5).
 func TestSystematicStandardErrors(t *testing.T) {
-	const seeds = 4
-	var sumZ2 float64
-	var n int
+	if testing.Short() {
+		t.Skip("eight two-minute fits")
+	}
+	const seeds = 8
+	chi2 := distuv.ChiSquared{K: seeds}
+	lo, hi := math.Sqrt(chi2.Quantile(0.025)/seeds), math.Sqrt(chi2.Quantile(0.975)/seeds)
+	sumZ2 := map[string]float64{}
 	ses := map[string][]float64{}
+	var names []string
+	var sigma2 float64
 	for seed := uint64(11); seed < 11+seeds; seed++ {
 		r, cfg := injected(seed, 120)
 		fit, err := FitSystematic(cfg, r.odo, r.fixes, SystematicOptions{})
 		if err != nil {
 			t.Fatal(err)
 		}
+		sigma2 += fit.Sigma2 / seeds
 		for _, p := range fit.Params {
 			z := (p.Fitted - truthOf[p.Kind](p.Index)) / p.StdErr
-			sumZ2 += z * z
-			n++
+			if _, ok := ses[p.Name]; !ok {
+				names = append(names, p.Name)
+			}
+			sumZ2[p.Name] += z * z
 			ses[p.Name] = append(ses[p.Name], p.StdErr)
 		}
 	}
-	rms := math.Sqrt(sumZ2 / float64(n))
-	t.Logf("RMS of error / standard error over %d seeds: %.2f", seeds, rms)
-	if rms < 0.5 || rms > 3 {
-		t.Errorf("RMS z %.2f, want within [0.5, 3]", rms)
+	t.Logf("mean chi-square per degree of freedom %.3f; band of the RMS of z over %d seeds [%.2f, %.2f]", sigma2, seeds, lo, hi)
+	if math.Abs(sigma2-1) > 0.1 {
+		t.Errorf("mean Sigma2 %.3f, want 1 within 0.1", sigma2)
 	}
-	for name, v := range ses {
-		m, sd := stat.MeanStdDev(v, nil)
-		t.Logf("%-40s standard error %.5f (cv %.2f)", name, m, sd/m)
+	for _, name := range names {
+		rms := math.Sqrt(sumZ2[name] / seeds)
+		m, sd := stat.MeanStdDev(ses[name], nil)
+		t.Logf("%-40s RMS of error / standard error %.2f; standard error %.5f (cv %.2f)", name, rms, m, sd/m)
+		if rms < lo || rms > hi {
+			t.Errorf("%s: RMS of error / standard error %.2f over %d seeds, want within [%.2f, %.2f]", name, rms, seeds, lo, hi)
+		}
 		if sd/m > 0.5 {
-			t.Errorf("%s: standard errors %v vary too much", name, v)
+			t.Errorf("%s: standard errors %v vary too much", name, ses[name])
 		}
 	}
 }

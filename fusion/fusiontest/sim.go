@@ -30,7 +30,9 @@
 // body steps from its commanded velocities, its truth departing from the
 // command by a noise per second of travel (CommandedForwardVarM2PerS and
 // its siblings). MarkerCount maps 10 to 20 markers along the aisles
-// (AisleMarkers) for range and bearing fixes. FieldFrame moves and rotates
+// (AisleMarkers) for range and bearing fixes. SquareM drives the
+// bidirectional square test of a differential drive instead of the aisles,
+// OdometryNoiseScale scales the odometry's noise. FieldFrame moves and rotates
 // the whole field frame (truth, fixes, map and start pose) for invariance
 // tests; ToLocal and CovToLocal take results back.
 //
@@ -126,6 +128,18 @@ type Scenario struct {
 	Bump *Bump
 	// SpeedMPerS is the cruising speed (0.4).
 	SpeedMPerS float64
+	// SquareM, if positive, drives the bidirectional square test of that
+	// side instead of the aisles (Borenstein and Feng, IEEE Transactions
+	// on Robotics and Automation 12(6), 1996): from a pause of 2 s, a
+	// clockwise square (a side, then a 90-degree turn to the right in
+	// place at about 0.5 rad/s, four times), a pause of 2 s, a
+	// counter-clockwise one, and again. Layouts DriveWheelTurn and
+	// Commanded only.
+	SquareM float64
+	// OdometryNoiseScale, if positive, multiplies the variances of the
+	// odometry's noise (wheel travel, sideways slip, scrub and the heading's
+	// random walk), drawn and configured alike (1).
+	OdometryNoiseScale float64
 	// SensorCovariance makes the camera's fixes carry no covariance of
 	// their own, so that they take the one the filter's configuration gives
 	// its sensor (as a camera that does not report one).
@@ -198,6 +212,12 @@ func Markers() []fusion.Landmark {
 func (s Scenario) Config() fusion.Config {
 	s.defaults()
 	n := fusion.DefaultNoise()
+	if k := s.OdometryNoiseScale; k > 0 {
+		n.WheelVarM2PerM *= k
+		n.LateralSlipVarM2PerM *= k
+		n.TurnVarRad2PerRad *= k
+		n.HeadingVarRad2PerS *= k
+	}
 	n.IMUHeadingVarRad2 = imuHeadingStdRad * imuHeadingStdRad
 	n.IMUOffsetVarRad2PerS = imuOffsetVarRad2PerS
 	c := fusion.Config{
@@ -307,6 +327,12 @@ func New(s Scenario) *Sim {
 	s.defaults()
 	sm := &Sim{s: s, cfg: s.Config(), rng: rand.New(rand.NewPCG(s.Seed, s.Seed^0x9e3779b97f4a7c15))}
 	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != DriveWheelTurn && s.Layout != Commanded)
+	if s.SquareM > 0 {
+		if s.Layout != DriveWheelTurn && s.Layout != Commanded {
+			panic(fmt.Sprintf("fusiontest: the square test needs a differential drive, not layout %v", s.Layout))
+		}
+		sm.route = squareRoute(s.SquareM, s.SpeedMPerS)
+	}
 	sm.left = sm.route[0].durNs
 	sm.endNs = int64(s.DurationS * 1e9)
 	sm.truth = estimator.Pose{X: 0, Y: 0, Heading: 0}
@@ -358,6 +384,24 @@ func greenhouseRoute(speed float64, holonomic bool) []segment {
 		route = append(route, segment{durNs: grid(1.5), v: 0.1, u: 0.15, w: 0.2}, segment{durNs: grid(1.5), v: 0.1, u: -0.15, w: -0.2})
 	}
 	return route // it starts and repeats with a pause to pick tomatoes
+}
+
+// squareRoute is the bidirectional square test of side sideM at speed:
+// a pause, four sides each followed by a turn to the right in place, a
+// pause, four sides each followed by a turn to the left.
+func squareRoute(sideM, speed float64) []segment {
+	grid := func(s float64) int64 { return int64(math.Round(s/0.02)) * 20e6 }
+	turnDur := grid(math.Pi / 2 / 0.5)
+	w := math.Pi / 2 / (float64(turnDur) * 1e-9)
+	side := segment{durNs: grid(sideM / speed), v: sideM / (float64(grid(sideM/speed)) * 1e-9)}
+	var route []segment
+	for _, sign := range []float64{-1, 1} {
+		route = append(route, segment{durNs: grid(2)})
+		for range 4 {
+			route = append(route, side, segment{durNs: turnDur, w: sign * w})
+		}
+	}
+	return route
 }
 
 // advance moves the truth to time t, adding the true wheel travels.

@@ -87,7 +87,11 @@ func calibrationHTML(b *strings.Builder, cal Calibration, before, after *Run) {
 		name string
 		run  *Run
 	}{{"before", before}, {"after", after}} {
-		fmt.Fprintf(b, "<tr class=\"calibration-%s\"><td>%s (%s)</td>", r.name, r.name, html.EscapeString(r.run.Label))
+		label := r.name
+		if r.run.Label != r.name {
+			label += " (" + r.run.Label + ")"
+		}
+		fmt.Fprintf(b, "<tr class=\"calibration-%s\"><td>%s</td>", r.name, html.EscapeString(label))
 		for _, id := range sensors {
 			b.WriteString("<td>" + html.EscapeString(sensorNIS(r.run, id)) + "</td>")
 		}

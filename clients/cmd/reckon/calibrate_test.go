@@ -10,6 +10,8 @@ import (
 	"strings"
 	"testing"
 
+	"google.golang.org/protobuf/proto"
+
 	"reckon.example/server/convert"
 )
 
@@ -204,5 +206,76 @@ func TestCalibrateRefusals(t *testing.T) {
 	}
 	if b, _ := os.ReadFile(exists); string(b) != string(orig) {
 		t.Error("an existing -out was overwritten")
+	}
+}
+
+// TestConfigYAML: every example configuration, written back as YAML by
+// configYAML (the writer of the demo's robot.yaml and of a journal's own
+// configuration), loads to the same message.
+func TestConfigYAML(t *testing.T) {
+	files, _ := filepath.Glob("../../../testdata/robots/*.yaml")
+	if len(files) == 0 {
+		t.Fatal("no example configurations")
+	}
+	for _, f := range files {
+		data, err := os.ReadFile(f)
+		if err != nil {
+			t.Fatal(err)
+		}
+		want, _, err := convert.LoadConfigYAML(data)
+		if err != nil {
+			t.Fatal(err)
+		}
+		out, err := configYAML(want, "# "+f)
+		if err != nil {
+			t.Fatalf("%s: %v", f, err)
+		}
+		got, _, err := convert.LoadConfigYAML(out)
+		if err != nil || !proto.Equal(got, want) {
+			t.Errorf("%s: written back, loads to %v (%v), want %v\n%s", f, got, err, want, out)
+		}
+	}
+}
+
+// TestCalibrateJournalOwnConfig: a journal calibrated from its own
+// configuration (no -config; the demo's journal without errors) writes a
+// configuration that loads, says whose it was, and whose changes are
+// each within a few standard errors of nothing: the demo's configuration
+// is the simulator's own (fusiontest's Config), so a determined parameter
+// must not move by more than 3 standard errors (as
+// TestCalibrateWorkedExample), plus the table's rounding.
+func TestCalibrateJournalOwnConfig(t *testing.T) {
+	dir := t.TempDir()
+	demo := filepath.Join(dir, "demo")
+	if _, errs, err := runCmd(t, "demo", "-duration", "90", "-speed", "0", "-view", "lines", "-bump-at", "0", "-journal", demo); err != nil {
+		t.Fatalf("demo: %v\n%s", err, errs)
+	}
+	out := filepath.Join(dir, "own.yaml")
+	stdout, errs, code := runCode(t, context.Background(), "", "calibrate", "-journal", demo, "-robot", "greenhouse-cart", "-out", out)
+	if code != 0 {
+		t.Fatalf("exit %d: %s\n%s", code, errs, stdout)
+	}
+	data, err := os.ReadFile(out)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, _, err := convert.LoadConfigYAML(data); err != nil {
+		t.Fatalf("%v\n%s", err, data)
+	}
+	if !strings.Contains(string(data), "# the configuration of greenhouse-cart in "+demo) {
+		t.Errorf("the file does not say whose configuration it started from:\n%s", data)
+	}
+	for _, c := range []struct {
+		name  string
+		truth float64
+	}{
+		{"wheels[0] (left) scale", 1}, {"wheels[1] (right) scale", 1},
+		{"sensors[0] (camera) mount.x_m", 0.15}, {"sensors[0] (camera) mount.y_m", 0}, {"sensors[0] (camera) mount.heading_rad", 0},
+		{"sensors[0] (camera) latency", 0},
+	} {
+		fitted, se, det := paramRow(t, stdout, c.name)
+		if det && math.Abs(fitted-c.truth) > 3*se+0.5e-4 {
+			t.Errorf("%s: fitted %.4f, se %.4f; truth %.4f", c.name, fitted, se, c.truth)
+		}
 	}
 }

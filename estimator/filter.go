@@ -726,6 +726,43 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	return nil
 }
 
+// CorrelateBias gives the pose, just Reset from a fix whose error
+// includes the bias states bias[c] (0: none) of its components, the
+// correlations that fix carries: the reset pose's error is -j times the
+// fix's (j the 3x3 Jacobian of the pose in the fix, row-major), and the
+// fix's error is its bias's plus white noise, so Cov(pose, s) = -sum_c
+// j[a][c] P[bias[c], s] for every state s beyond the pose, the biases' own
+// and those correlated with them. A reset that drops them treats later
+// fixes of the sensor as news about the pose, though they repeat its bias.
+// The covariance stays as it was, uncorrelated, if the result would not be
+// positive definite (ErrNotPositiveDefinite).
+func (f *Filter) CorrelateBias(bias [3]int, j *[9]float64) error {
+	n := f.st.n
+	for c := 0; c < 3; c++ {
+		if b := bias[c]; b != 0 && (b < 3 || b >= n) {
+			return fmt.Errorf("bias state %d of %d: %w", b, n, ErrShape)
+		}
+	}
+	P := &f.st.p
+	f.saved.CopyFrom(&f.st)
+	for s := 3; s < n; s++ {
+		for a := 0; a < 3; a++ {
+			var acc float64
+			for c := 0; c < 3; c++ {
+				if b := bias[c]; b > 0 {
+					acc -= j[a*3+c] * f.saved.p[b*stride+s]
+				}
+			}
+			P[a*stride+s], P[s*stride+a] = acc, acc
+		}
+	}
+	if !cholesky(P[:], f.chol[:], n, stride) {
+		f.st.CopyFrom(&f.saved)
+		return fmt.Errorf("pose correlated with its fix's bias: %w", ErrNotPositiveDefinite)
+	}
+	return nil
+}
+
 // Position95 returns the radius in metres of the 95% position ellipse's major
 // semi-axis: sqrt(chi2_2(0.95) * largest eigenvalue of the position block).
 func (s *State) Position95() float64 {

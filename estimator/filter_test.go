@@ -639,3 +639,63 @@ func TestSolveSPD(t *testing.T) {
 		t.Error("an indefinite matrix was solved")
 	}
 }
+
+// TestCorrelateBias: a pose reset from a fix p = -J (b + w), where b are
+// the first bias block's states and w white noise of covariance R, has the
+// covariance T Sigma T^T of that linear map of (the states beyond the pose,
+// w) (the linear transformation of a covariance, common practice): formed
+// in gonum mat, it equals Reset with J (P_bb + R) J^T followed by
+// CorrelateBias, entry by entry.
+func TestCorrelateBias(t *testing.T) {
+	rng := rand.New(rand.NewPCG(11, 3))
+	const n = 12
+	f := randomFilter(t, rng, n)
+	at, _ := f.layout.Bias(0)
+	bias := [3]int{at, at + 1, at + 2}
+	j := [9]float64{1, 0, 0.3, 0, 1, -0.2, 0, 0, 1}
+	R := mat.NewSymDense(3, []float64{1e-4, 0, 0, 0, 1e-4, 0, 0, 0, 4e-5})
+	P0 := stateDense(&f.st)
+	m := n - 3 // the states beyond the pose
+	// Sigma over (x_3..x_{n-1}, w); T maps it to (pose, x_3..x_{n-1}).
+	sigma := mat.NewDense(m+3, m+3, nil)
+	sigma.Slice(0, m, 0, m).(*mat.Dense).Copy(P0.Slice(3, n, 3, n))
+	sigma.Slice(m, m+3, m, m+3).(*mat.Dense).Copy(R)
+	T := mat.NewDense(n, m+3, nil)
+	J := mat.NewDense(3, 3, j[:])
+	for a := 0; a < 3; a++ {
+		for c := 0; c < 3; c++ {
+			T.Set(a, bias[c]-3, -J.At(a, c))
+			T.Set(a, m+c, -J.At(a, c))
+		}
+	}
+	for i := 0; i < m; i++ {
+		T.Set(3+i, i, 1)
+	}
+	var ts, want mat.Dense
+	ts.Mul(T, sigma)
+	want.Mul(&ts, T.T())
+	var c [9]float64
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			c[a*3+b] = want.At(a, b)
+		}
+	}
+	if err := f.Reset(Pose{X: 1, Y: 2, Heading: 0.5}, &c); err != nil {
+		t.Fatal(err)
+	}
+	if err := f.CorrelateBias(bias, &j); err != nil {
+		t.Fatal(err)
+	}
+	got := stateDense(&f.st)
+	for i := 0; i < n; i++ {
+		for k := 0; k < n; k++ {
+			if d := got.At(i, k) - want.At(i, k); math.Abs(d) > 1e-12 {
+				t.Fatalf("P[%d,%d] = %g, want %g", i, k, got.At(i, k), want.At(i, k))
+			}
+		}
+	}
+	// A bias index outside the state is misuse, refused.
+	if err := f.CorrelateBias([3]int{n}, &j); !errors.Is(err, ErrShape) {
+		t.Errorf("bias state %d: err %v, want ErrShape", n, err)
+	}
+}

@@ -48,6 +48,12 @@ func (r *Robot) odometryHeading(res *Result, t int64, z float64) {
 	}
 	ins := r.insert(entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())})
 	r.decideMeas(res, ins, imuSensor)
+	if res.Verdict == VerdictInvalid {
+		// The heading's update failed and was taken back (a numerical
+		// fault, which trust now reports, and the IMU's statistics count);
+		// the odometry it came with stays applied, so the sample is.
+		res.Verdict, res.Err = VerdictApplied, nil
+	}
 }
 
 // AddHeading takes one absolute IMU heading sample.

@@ -80,6 +80,11 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	r.trust.disagree = true
 	r.trust.evaluate(r, res)
 	reset := entry{kind: entReset, t0: newest.stamp, t1: newest.stamp, pose: pose, poseCov: cov, keepOffset: newest.keepOffset}
+	if !landmark && newest.fixStamp == e.t1 && e.meas.Bias != [3]int{} {
+		// The pose is this fix's, and carries its sensor's bias: the
+		// reset keeps that correlation (applyReset).
+		reset.meas = e.meas
+	}
 	var sub Result
 	r.insertReset(reset, &sub)
 	r.trust.disagree = true
@@ -356,14 +361,38 @@ func (r *Robot) estimateAt(t int64) (estimator.Pose, bool) {
 // detachCov returns the covariance of Detach(s, m) for a sensor pose s with
 // covariance rs (3x3, stride 3): J rs J^T, with J the Jacobian of Detach in s.
 func detachCov(robot, m estimator.Pose, rs *[9]float64) [9]float64 {
+	j := detachJacobian(robot, m)
+	var out [9]float64
+	estimator.Sandwich(&out, &j, rs)
+	return out
+}
+
+// detachJacobian returns the Jacobian of Detach(s, m) in the sensor pose s,
+// at the robot pose Detach gave (3x3 row-major).
+func detachJacobian(robot, m estimator.Pose) [9]float64 {
 	sh, ch := math.Sincos(robot.Heading)
 	// robot = s_xy - R(s_h - m_h) m_xy, robot_h = s_h - m_h.
-	j := [9]float64{
+	return [9]float64{
 		1, 0, sh*m.X + ch*m.Y,
 		0, 1, -(ch*m.X - sh*m.Y),
 		0, 0, 1,
 	}
-	var out [9]float64
-	estimator.Sandwich(&out, &j, rs)
-	return out
+}
+
+// applyReset applies reset entry e to the filter. A move recovery from a
+// fix of a sensor with correlated errors (e.meas set) keeps the pose's
+// correlation with the sensor's bias: the pose is the fix's, less the
+// bias's mean, so its error is minus the bias's (DEVELOPERS.md, "Design:
+// Gating and recovery"). Were that correlation dropped, the sensor's next
+// fixes, which repeat the bias, would pull the pose onto it as news.
+func (r *Robot) applyReset(e *entry) error {
+	if err := r.f.Reset(e.pose, &e.poseCov); err != nil {
+		return err
+	}
+	if e.meas.Kind == estimator.KindPose && e.meas.Bias != [3]int{} {
+		j := detachJacobian(e.pose, e.meas.Mount)
+		// Not positive definite leaves the pose uncorrelated, as before.
+		_ = r.f.CorrelateBias(e.meas.Bias, &j)
+	}
+	return nil
 }

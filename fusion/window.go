@@ -86,7 +86,7 @@ func (r *Robot) apply(e *entry) {
 	case entMeas:
 		err = r.applyMeas(e)
 	case entReset:
-		err = r.f.Reset(e.pose, &e.poseCov)
+		err = r.applyReset(e)
 		if err == nil && !e.keepOffset {
 			r.ready = false
 		}

@@ -238,7 +238,7 @@ func TestRunSwitchFaults(t *testing.T) {
 			acked++
 		}
 	}
-	ffs.Inject = faultfs.Nth(faultfs.OpWrite, ".rjl", 0, syscall.EIO)
+	ffs.SetInject(faultfs.Nth(faultfs.OpWrite, ".rjl", 0, syscall.EIO))
 	resp := s.ingest("robots/cart", 0, runStart("boot-2", 0))
 	if resp.GetSequence() != 0 || resp.GetStatusCode() != int32(codes.Unavailable) {
 		t.Fatalf("run start whose write failed: %v", resp)
@@ -375,9 +375,9 @@ func TestRunSwitchShortWrite(t *testing.T) {
 	for _, smp := range run2[:6] {
 		batch = append(batch, &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: "robots/cart", Sample: smp}})
 	}
-	ffs.Inject = faultfs.Nth(faultfs.OpWrite, ".rjl", 0, syscall.ENOSPC)
+	ffs.SetInject(faultfs.Nth(faultfs.OpWrite, ".rjl", 0, syscall.ENOSPC))
 	out := s.ingestBatch(batch)
-	ffs.Inject = nil
+	ffs.SetInject(nil)
 	acked, lost := 0, 0
 	for k := range out {
 		switch resp := &out[k].IngestResponse; {

@@ -5,11 +5,14 @@ import (
 	"os/exec"
 	"path/filepath"
 	"regexp"
+	"slices"
+	"strconv"
 	"strings"
 	"testing"
 
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
 )
 
 // chromium returns the path of headless Chromium (Debian's package, which
@@ -128,4 +131,89 @@ func TestReportShowsWhereAndWhy(t *testing.T) {
 			}
 		})
 	}
+}
+
+// TestCalibrationSection reviews a run under a configuration with the
+// camera's mount 3 cm off (before) and under its own (after), writes them
+// with a calibration section, and checks in headless Chromium's DOM that
+// the section comes first, with its findings, its table of parameters,
+// and a before and an after row carrying the camera's mean NIS with its
+// band and, with the truth, the NEES and RMS errors; and that the
+// comparison's own sections follow.
+func TestCalibrationSection(t *testing.T) {
+	browser, args := chromium(t)
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 74, DurationS: 30}
+	dir, truth := writeRunWith(t, sc, nil)
+	wrong := convert.ConfigToProto(fusiontest.New(sc).Config())
+	wrong.Sensors[0].Mount.XM += 0.03
+	out := t.TempDir()
+	var runs []*Run
+	for _, c := range []struct {
+		label string
+		cfg   *pb.RobotConfig
+	}{{"before", wrong}, {"after", nil}} {
+		run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth, Override: c.cfg, Label: c.label}, out, Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		runs = append(runs, run)
+	}
+	cal := Calibration{By: "a test", Findings: []string{"sensors[0] (camera)'s mount is wrong"},
+		Columns: []string{"parameter", "fitted"}, Rows: [][]string{{"sensors[0] (camera) mount.x_m", "0.1500"}}, Notes: []string{"wrote after.yaml"}}
+	report := filepath.Join(out, "report.html")
+	f, _ := os.Create(report)
+	if err := WriteCalibrationHTML(f, "Calibration of robots/cart", cal, runs[0], runs[1]); err != nil {
+		t.Fatal(err)
+	}
+	f.Close()
+	dom, err := exec.Command(browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report)...).Output()
+	if err != nil {
+		t.Fatalf("chromium --dump-dom: %v", err)
+	}
+	page := string(dom)
+	if !strings.Contains(page, `data-zoom="ready"`) {
+		t.Fatalf("the page's script did not run")
+	}
+	sec := strings.Index(page, `<section id="calibration">`)
+	if sec < 0 || sec > strings.Index(page, "<h2>Differences</h2>") {
+		t.Fatalf("no calibration section before the differences")
+	}
+	for _, re := range []string{
+		`<li class="finding">sensors\[0\] \(camera\)'s mount is wrong</li>`,
+		`<tr class="calibration-param"><td>sensors\[0\] \(camera\) mount.x_m</td><td>0.1500</td></tr>`,
+		`<th>camera mean NIS \(95% band\)</th>`,
+		// Each row: the camera's mean NIS, its band and in or out, then
+		// the NEES and two RMS errors.
+		`<tr class="calibration-before"><td>before</td><td>[0-9.]+ \[[0-9.]+, [0-9.]+\] (in|out)</td>(<td>[^<]*</td>)*<td>[0-9.]+</td><td>[0-9.]+ m</td><td>[0-9.]+ m</td></tr>`,
+		`<tr class="calibration-after"><td>after</td><td>[0-9.]+ \[[0-9.]+, [0-9.]+\] (in|out)</td>(<td>[^<]*</td>)*<td>[0-9.]+</td><td>[0-9.]+ m</td><td>[0-9.]+ m</td></tr>`,
+	} {
+		if !regexp.MustCompile(re).MatchString(page) {
+			t.Errorf("the section lacks %s", re)
+		}
+	}
+	// The mount 3 cm off shows in the camera's NIS: larger before than
+	// after.
+	head := regexp.MustCompile(`<table class="calibration-check">(?:<tbody>)?<tr>(.*?)</tr>`).FindStringSubmatch(page)
+	if head == nil {
+		t.Fatal("no before and after table")
+	}
+	col := slices.Index(regexp.MustCompile(`<th>(.*?)</th>`).FindAllString(head[1], -1), "<th>camera mean NIS (95% band)</th>")
+	var nis []float64
+	for _, row := range []string{"before", "after"} {
+		r := regexp.MustCompile(`<tr class="calibration-` + row + `">(.*?)</tr>`).FindStringSubmatch(page)
+		cells := regexp.MustCompile(`<td>([0-9.]+)`).FindAllStringSubmatch(r[1], -1)
+		if col < 1 || col > len(cells) {
+			t.Fatalf("camera column %d of %q", col, r[1])
+		}
+		nis = append(nis, atof(cells[col-1][1])) // the first column is the label, without a number
+	}
+	if !(nis[0] > nis[1]) {
+		t.Errorf("camera mean NIS before %.3f, after %.3f: the wrong mount should show", nis[0], nis[1])
+	}
+	t.Logf("camera mean NIS before %.3f, after %.3f", nis[0], nis[1])
+}
+
+func atof(s string) float64 {
+	v, _ := strconv.ParseFloat(s, 64)
+	return v
 }

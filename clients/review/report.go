@@ -236,10 +236,19 @@ func runHTML(b *strings.Builder, run *Run, n int) error {
 // (inline styles, SVG figures and a small script for zoom and pan; no
 // network).
 func WriteHTML(w io.Writer, title string, runs ...*Run) error {
+	return writeHTML(w, title, nil, runs)
+}
+
+// writeHTML is WriteHTML with top, if set, writing a section before the
+// runs' own.
+func writeHTML(w io.Writer, title string, top func(b *strings.Builder), runs []*Run) error {
 	var b strings.Builder
 	b.WriteString("<!doctype html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><meta name=\"viewport\" content=\"width=device-width\"><title>" + html.EscapeString(title) + "</title><style>" + css + "</style></head><body>\n")
 	b.WriteString("<h1>" + html.EscapeString(title) + "</h1>\n")
 	b.WriteString("<p class=\"safety\">A review of recorded estimates. The estimate is no safety function; see the README's cautions.</p>\n")
+	if top != nil {
+		top(&b)
+	}
 	notesHTML(&b, runs)
 	if len(runs) == 1 {
 		if err := runHTML(&b, runs[0], 0); err != nil {

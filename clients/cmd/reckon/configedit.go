@@ -28,13 +28,19 @@ type configEdit struct {
 // writeConfigEdits writes the configuration at in with the edits made to
 // out, with note(changes) as its first comment line, changes being one
 // "path old -> new" per edit; the result must load. It returns changes. The writers of new
-// configurations (imu-noise, tune) share it; out is never in (the callers
+// configurations (imu-noise, tune, calibrate) share it; out is never in (the callers
 // refuse that).
 func writeConfigEdits(in, out string, edits []configEdit, note func(changes []string) string) ([]string, error) {
 	data, err := os.ReadFile(in)
 	if err != nil {
 		return nil, err
 	}
+	return editConfig(in, data, out, edits, note)
+}
+
+// editConfig is writeConfigEdits of the configuration data, which in
+// names in errors (calibrate's journal case has no file of it).
+func editConfig(in string, data []byte, out string, edits []configEdit, note func(changes []string) string) ([]string, error) {
 	if _, _, err := convert.LoadConfigYAML(data); err != nil {
 		return nil, fmt.Errorf("%s: %w", in, err)
 	}
@@ -133,7 +139,11 @@ func setField(root *yaml.Node, e configEdit) (old string, err error) {
 		}
 	default:
 		old = node.Value
-		*node = yaml.Node{Kind: yaml.ScalarNode, Tag: "!!float", Value: e.value}
+		tag := "!!float"
+		if _, err := strconv.ParseInt(e.value, 10, 64); err == nil {
+			tag = "!!int" // an integer field (latency_ns) takes no float; a float field takes either
+		}
+		*node = yaml.Node{Kind: yaml.ScalarNode, Tag: tag, Value: e.value}
 	}
 	node.LineComment = "# " + e.comment
 	if old != "" {

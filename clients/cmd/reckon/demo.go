@@ -93,7 +93,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if err := stopServer(); err != nil {
 		return err
 	}
-	fmt.Fprintf(stdout, "\nthe journal (and the simulator's truth.csv) is in %s; try:\n  reckon review -journal %s -robot greenhouse-cart\n", opt.journal, opt.journal)
+	fmt.Fprintf(stdout, "\nthe journal (and the simulator's truth.csv and the robot's configuration robot.yaml) is in %s; try:\n  reckon review -journal %s -robot greenhouse-cart\n", opt.journal, opt.journal)
 	return nil
 }
 
@@ -105,6 +105,7 @@ type demoOptions struct {
 	speed    float64 // simulated seconds per wall second (0: as fast as possible)
 	outliers float64 // fraction of wrong camera fixes
 	bumpAtS  float64 // when the cart is lifted aside (0: never)
+	lateS    float64 // how long after capture the camera stamps its fixes, unknown to the configuration
 	markers  bool
 	journal  string
 	page     string  // the live view page's address ("": none)
@@ -124,6 +125,7 @@ gRPC clients, and shows the live estimate; leaves the journal for review.`)
 	fs.Float64Var(&o.speed, "speed", 2, "simulated seconds per wall second (0: as fast as possible)")
 	fs.Float64Var(&o.outliers, "outliers", 0.05, "fraction of camera fixes that are wrong by metres")
 	fs.Float64Var(&o.bumpAtS, "bump-at", 45, "lift the cart a metre aside at this simulated second (0: never)")
+	fs.Float64Var(&o.lateS, "camera-late", 0, "the camera stamps its fixes this many seconds after capture, which its configuration does not say (for reckon calibrate to find)")
 	fs.BoolVar(&o.markers, "markers", false, "camera reports range and bearing to post markers instead of its pose")
 	fs.StringVar(&o.journal, "journal", "", "journal directory (default reckon-demo/run-<time>)")
 	view := fs.String("view", "auto", "live (redraw), lines (one line every -every seconds) or auto (live on a terminal)")
@@ -150,6 +152,7 @@ gRPC clients, and shows the live estimate; leaves the journal for review.`)
 func (o demoOptions) scenario() fusiontest.Scenario {
 	sc := fusiontest.Scenario{Layout: o.layout, Seed: o.seed, DurationS: o.duration, OutlierFraction: o.outliers, SlipPerS: 0.02,
 		IMU: o.layout != fusiontest.GyroTurn, Counts: true, Markers: o.markers}
+	sc.CameraStampLateNs = int64(math.Round(o.lateS * 1e9))
 	if o.bumpAtS > 0 {
 		sc.Bump = &fusiontest.Bump{AtS: o.bumpAtS, DXM: 0.8, DYM: 0.6, DRad: 0.35}
 	}
@@ -221,7 +224,8 @@ func openDemo(ctx context.Context, addr string, opt demoOptions) (d *demoRun, er
 			return nil, err
 		}
 	}
-	if _, err := d.cart.CreateRobot(ctx, strings.TrimPrefix(demoRobot, "robots/"), convert.ConfigToProto(d.sim.Config())); err != nil {
+	cfg := convert.ConfigToProto(d.sim.Config())
+	if _, err := d.cart.CreateRobot(ctx, strings.TrimPrefix(demoRobot, "robots/"), cfg); err != nil {
 		return nil, err
 	}
 	if d.odo, err = d.cart.OpenIngest(ctx, demoRobot); err != nil {
@@ -235,6 +239,13 @@ func openDemo(ctx context.Context, addr string, opt demoOptions) (d *demoRun, er
 	d.watchDone = make(chan struct{})
 	go d.view.watch(wctx, d.watcher, d.watchDone)
 	if err := os.MkdirAll(opt.journal, 0o755); err != nil {
+		return nil, err
+	}
+	yml, err := configYAML(cfg, fmt.Sprintf("# The configuration reckon demo gave %s (layout %s, seed %d).", demoRobot, opt.layout, opt.seed))
+	if err != nil {
+		return nil, err
+	}
+	if err := os.WriteFile(filepath.Join(opt.journal, "robot.yaml"), yml, 0o644); err != nil {
 		return nil, err
 	}
 	if d.truthFile, err = os.Create(filepath.Join(opt.journal, "truth.csv")); err != nil {

@@ -22,6 +22,7 @@
 //	reckon export   journals as Parquet tables (runs, inputs, poses, events)
 //	reckon imu-noise  IMU noise terms from a static recording by Allan deviation
 //	reckon tune     noise levels fitted to a recorded run by the likelihood of its innovations
+//	reckon calibrate  wiring diagnosis and wheel scales, track width, sensor mounts and latencies fitted to a run with fixes
 //	reckon version  the module version and source revision of this binary
 //
 // Run "reckon help" for the commands and "reckon <command> -h" for flags;
@@ -96,6 +97,7 @@ func commands() []command {
 		{"compare", "review a run under two configurations side by side", outErr(runCompare)},
 		{"imu-noise", "read a static IMU recording's noise from its Allan deviation and write it into a new configuration", outErr(runIMUNoise)},
 		{"tune", "fit a configuration's noise levels to a recorded run by the likelihood of its innovations and write a new configuration", outErr(runTune)},
+		{"calibrate", "diagnose a recorded run's wiring and fit its wheel scales, track width, sensor mounts and latencies to its fixes, and write a new configuration", outErr(runCalibrate)},
 		{"export", "write journals, of one or many robots and runs, as Parquet tables (runs, inputs, poses, events) for data engines", outErr(runExport)},
 		{"version", "\nprint the module version and source revision of this binary", outErr(runVersion)},
 		{"help", "print this text", nil},

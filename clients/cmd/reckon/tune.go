@@ -15,6 +15,7 @@ import (
 	"strings"
 	"text/tabwriter"
 
+	"reckon.example/clients/review"
 	"reckon.example/estimator"
 	"reckon.example/fusion"
 	"reckon.example/fusion/calib"
@@ -25,7 +26,7 @@ import (
 )
 
 func runTune(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := newFlagSet("tune", "-config ROBOT.yaml [-truth TRUTH.csv] [-out NEW.yaml] (FILE.jsonl | JOURNAL_DIR -robot NAME)", `
+	fs := newFlagSet("tune", "-config ROBOT.yaml [-truth TRUTH.csv] [-out NEW.yaml] [-report DIR] (FILE.jsonl | JOURNAL_DIR -robot NAME)", `
 Fits the noise levels of a robot configuration to a recorded run by
 maximising the likelihood of the run's innovations (the prediction-error
 decomposition): the run is replayed through the estimator under candidate
@@ -34,13 +35,16 @@ a 95% interval from the observed Fisher information, says which levels the
 run does not determine (those keep their configured values), and the mean
 NIS and whiteness of each sensor's innovations before and after; with
 -truth, the NEES too. It writes the new configuration to -out and never
-overwrites the input. No ground truth is needed for the fit.`)
+overwrites the input. No ground truth is needed for the fit. With -report,
+the run is replayed under the configuration before and after into one HTML
+report with a calibration section at the top.`)
 	fs.SetOutput(stderr)
 	config := fs.String("config", "", "YAML robot configuration to start from")
 	out := fs.String("out", "", "the new YAML configuration (default: ROBOT-tuned.yaml beside -config); refused if it exists, unless -force")
 	force := fs.Bool("force", false, "replace -out if it exists")
 	robot := fs.String("robot", "", "the robot, when the run is a journal directory")
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after")
+	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
@@ -93,7 +97,32 @@ overwrites the input. No ground truth is needed for the fit.`)
 			return fmt.Errorf("%s: %w", *truth, err)
 		}
 	}
-	return writeTunedConfig(*config, *out, filepath.Base(pos[0]), cfg, fit, stdout)
+	wrote, err := writeTunedConfig(*config, *out, filepath.Base(pos[0]), cfg, fit, stdout)
+	if err != nil || *reportDir == "" {
+		return err
+	}
+	src := review.Source{Samples: pos[0], Config: cfgProto, Truth: *truth}
+	if st, err := os.Stat(pos[0]); err == nil && st.IsDir() {
+		src = review.Source{JournalDir: pos[0], Robot: *robot, Truth: *truth}
+	}
+	cols, rows := levelTable(fit)
+	cal := review.Calibration{By: "reckon tune", Columns: cols, Rows: rows, Notes: []string{wrote}}
+	return writeCalibrationReport(stdout, *reportDir, src, cfgProto, *out, cal)
+}
+
+// levelTable is the table of a noise fit's levels: each as configured and
+// fitted with its 95% interval, or why the run does not determine it.
+func levelTable(fit *calib.NoiseFit) ([]string, [][]string) {
+	cols := []string{"level", "unit", "configured", "fitted", "95% interval", "determined"}
+	var rows [][]string
+	for _, l := range fit.Levels {
+		if l.Identifiable {
+			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g", l.Fitted), fmt.Sprintf("[%.4g, %.4g]", l.Lo, l.Hi), "yes"})
+		} else {
+			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), "(kept)", "-", "no: " + l.Note})
+		}
+	}
+	return cols, rows
 }
 
 // readRun reads a run's inputs in arrival order from a JSON Lines file of
@@ -227,13 +256,10 @@ func printTune(w io.Writer, file string, inputs []calib.RecordedInput, skipped i
 	fmt.Fprintf(w, "log-likelihood of %d innovations: %.2f configured, %.2f fitted (%d replays of the run)\n\n",
 		fit.Innovations, fit.LogLikBefore, fit.LogLikAfter, fit.Replays)
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, "level\tunit\tconfigured\tfitted\t95% interval\tdetermined")
-	for _, l := range fit.Levels {
-		if l.Identifiable {
-			fmt.Fprintf(tw, "%s\t%s\t%.4g\t%.4g\t[%.4g, %.4g]\tyes\n", l.Field, l.Unit, l.Configured, l.Fitted, l.Lo, l.Hi)
-		} else {
-			fmt.Fprintf(tw, "%s\t%s\t%.4g\t(kept)\t-\tno: %s\n", l.Field, l.Unit, l.Configured, l.Note)
-		}
+	cols, rows := levelTable(fit)
+	fmt.Fprintln(tw, strings.Join(cols, "\t"))
+	for _, r := range rows {
+		fmt.Fprintln(tw, strings.Join(r, "\t"))
 	}
 	tw.Flush()
 	fmt.Fprintln(w, "\n95% intervals: exp(log fitted -+ 1.96 se), se from the observed Fisher information (the numerical")
@@ -284,8 +310,9 @@ func printNEES(w io.Writer, before, after fusion.Config, inputs []calib.Recorded
 
 // writeTunedConfig writes the configuration at in with the determined
 // levels fitted to out, each with a comment giving its standard error, and
-// a first comment line naming every change.
-func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseFit, stdout io.Writer) error {
+// a first comment line naming every change; it prints and returns the
+// line "wrote OUT: changes".
+func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseFit, stdout io.Writer) (string, error) {
 	var edits []configEdit
 	var kept []string
 	def := fusion.DefaultNoise()
@@ -314,7 +341,7 @@ func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseF
 		edits = append(edits, e)
 	}
 	if len(edits) == 0 {
-		return fmt.Errorf("%w: the run determines none of the noise levels; nothing written", errRefused)
+		return "", fmt.Errorf("%w: the run determines none of the noise levels; nothing written", errRefused)
 	}
 	changes, err := writeConfigEdits(in, out, edits, func(changes []string) string {
 		note := fmt.Sprintf("reckon tune: %s; by maximum likelihood of the innovations of %s (prediction-error decomposition), standard errors from the observed Fisher information",
@@ -325,10 +352,11 @@ func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseF
 		return note
 	})
 	if err != nil {
-		return err
+		return "", err
 	}
-	fmt.Fprintf(stdout, "\nwrote %s: %s\n", out, strings.Join(changes, ", "))
-	return nil
+	wrote := fmt.Sprintf("wrote %s: %s", out, strings.Join(changes, ", "))
+	fmt.Fprintf(stdout, "\n%s\n", wrote)
+	return wrote, nil
 }
 
 // defaultOf returns the default of a noise field, if it has one.

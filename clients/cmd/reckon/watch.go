@@ -146,12 +146,19 @@ func (w *watcher) summary(stderr io.Writer) {
 	fmt.Fprintf(stderr, "reckon watch: %d poses of %s printed, %d reconnections\n", w.n, w.name, w.reconnects)
 }
 
-// endedByContext reports whether a stream's error came from the end of ctx
-// itself. The service answers a deadline that gRPC sent with it a moment
-// before ctx's own timer fires, so a DeadlineExceeded or Canceled status is
-// given up to a second for ctx to end.
+// endedByContext reports whether a stream's end came from the end of ctx
+// itself. The service sees a deadline that gRPC sent with the call a
+// moment before ctx's own timer fires, and ends the stream with a
+// DeadlineExceeded or Canceled status, or cleanly, so such an end is given
+// up to a second for ctx to end (a clean end only when ctx's deadline is
+// that near).
 func endedByContext(ctx context.Context, err error) bool {
-	if c := status.Code(err); c != codes.DeadlineExceeded && c != codes.Canceled {
+	switch c := status.Code(err); {
+	case err == nil:
+		if d, ok := ctx.Deadline(); !ok || time.Until(d) > time.Second {
+			return false
+		}
+	case c != codes.DeadlineExceeded && c != codes.Canceled:
 		return false
 	}
 	t := time.NewTimer(time.Second)

@@ -60,6 +60,15 @@ type FS struct {
 // New returns an FS over base that fails what inject says.
 func New(base journal.FS, inject Injector) *FS { return &FS{Base: base, Inject: inject} }
 
+// SetInject replaces Inject while the FS is in use (a server's periodic
+// fsync may be running): Inject itself is read under the same lock, so a
+// test that assigns it directly races with that goroutine.
+func (f *FS) SetInject(inject Injector) {
+	f.mu.Lock()
+	f.Inject = inject
+	f.mu.Unlock()
+}
+
 // Count returns how many operations of kind op were attempted.
 func (f *FS) Count(op Op) int {
 	f.mu.Lock()

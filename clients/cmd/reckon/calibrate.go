@@ -1,0 +1,399 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+
+	"reckon.example/clients/review"
+	"reckon.example/fusion"
+	"reckon.example/fusion/calib"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
+	"reckon.example/server/convert"
+	"reckon.example/server/journal"
+)
+
+func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("calibrate", "(-journal DIR -robot NAME [-config ROBOT.yaml] | -config ROBOT.yaml -samples FILE.jsonl) -out NEW.yaml [flags]", `
+Calibrates a robot's systematic parameters from a recorded run with fixes.
+It first looks for wiring mistakes (a wheel counting backwards, swapped
+wheels, an IMU turning the other way or in degrees) and fix sensors whose
+mount is missing or wrong or that stamp their fixes at arrival, and names
+the field to change for each; then fits each wheel's scale, the track width,
+each fix sensor's mount and latency by a batch least-squares fit to the
+fixes, and prints each with its standard error and whether the run
+determines it (if not, the driving that would). It writes the corrected
+configuration to -out, each change commented; a parameter the configuration
+has no field for is printed as a factor to apply by hand. A journal's run
+is calibrated from its own configuration unless -config names another.
+With -report, the run is replayed under the configuration before and after
+into one HTML report with a calibration section at the top.`)
+	fs.SetOutput(stderr)
+	dir := fs.String("journal", "", "journal directory (with -robot)")
+	robot := fs.String("robot", "", "robot id or name in the journal")
+	config := fs.String("config", "", "YAML robot configuration to start from (for -samples; for a journal it replaces the journal's own)")
+	samples := fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)")
+	out := fs.String("out", "", "the new YAML configuration; refused if it exists, unless -force")
+	force := fs.Bool("force", false, "replace -out if it exists")
+	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after (default: truth.csv in the journal directory, if there)")
+	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
+	if err := parseNone(fs, args, stdout, stderr); err != nil {
+		return err
+	}
+	switch {
+	case (*dir == "") == (*samples == ""):
+		return usagef(fs, "name a run: -journal DIR -robot NAME, or -config ROBOT.yaml -samples FILE.jsonl")
+	case *dir != "" && *robot == "":
+		return usagef(fs, "-journal needs -robot NAME")
+	case *samples != "" && *config == "":
+		return usagef(fs, "-samples needs -config ROBOT.yaml")
+	case *out == "":
+		return usagef(fs, "needs -out NEW.yaml")
+	case *config != "" && samePath(*config, *out):
+		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
+	}
+	if !*force {
+		if _, err := os.Stat(*out); err == nil {
+			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)
+		}
+	}
+	run, src := *samples, *samples
+	if *dir != "" {
+		run, src = *dir, fmt.Sprintf("%s (robot %s)", *dir, *robot)
+		if *truth == "" {
+			if _, err := os.Stat(filepath.Join(*dir, "truth.csv")); err == nil {
+				*truth = filepath.Join(*dir, "truth.csv")
+			}
+		}
+	}
+	cfgName, cfgData, err := startConfig(*config, *dir, *robot)
+	if err != nil {
+		return err
+	}
+	cfgProto, cfg, err := convert.LoadConfigYAML(cfgData)
+	if err != nil {
+		return fmt.Errorf("%s: %w", cfgName, err)
+	}
+	// The fit reads the limits as configured, and an unset
+	// max_speed_m_per_s (0) would refuse every interval of counts; the
+	// robot's configuration has the defaults filled in.
+	r, err := fusion.New(cfg)
+	if err != nil {
+		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
+	}
+	cfg = r.Config()
+	inputs, _, err := readRun(ctx, run, *robot, cfgProto)
+	if err != nil {
+		return err
+	}
+	var truthPoses []calib.StampedPose
+	if *truth != "" {
+		if truthPoses, err = readTruthCSV(*truth); err != nil {
+			return err
+		}
+	}
+	odo, imu, fixes := splitInputs(inputs)
+	fmt.Fprintf(stdout, "%s: %d odometry samples, %d IMU headings, %d fixes\n", src, len(odo), len(imu), len(fixes))
+
+	wiring, sensors := calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)
+	findings := printFindings(stdout, wiring, sensors)
+	for _, f := range wiring {
+		if !f.Undetermined {
+			return fmt.Errorf("%w: the run shows a wiring mistake (%s); correct it and calibrate again", errRefused, f.Field)
+		}
+	}
+
+	fit, err := calib.FitSystematic(cfg, odo, fixes, calib.SystematicOptions{})
+	if err != nil {
+		return fmt.Errorf("%s: %w: %w", run, errRefused, err)
+	}
+	cols, rows := paramTable(&fit)
+	fmt.Fprintf(stdout, "\nsystematic fit: %d fixes (%d given no weight as gross errors), %d segments, residual variance factor %.2f, %d iterations",
+		fit.Fixes, fit.Outliers, fit.Segments, fit.Sigma2, fit.Iterations)
+	if !fit.Converged {
+		fmt.Fprint(stdout, ", not converged")
+	}
+	fmt.Fprintln(stdout)
+	tw := tabwriter.NewWriter(stdout, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, strings.Join(cols, "\t"))
+	for _, r := range rows {
+		fmt.Fprintln(tw, strings.Join(r, "\t"))
+	}
+	tw.Flush()
+	byHand := byHandNotes(&fit)
+	for _, n := range byHand {
+		fmt.Fprintln(stdout, n)
+	}
+
+	changes, err := writeCalibratedConfig(cfgName, cfgData, *out, src, cfg, &fit)
+	if err != nil {
+		return err
+	}
+	wrote := fmt.Sprintf("wrote %s: %s", *out, strings.Join(changes, ", "))
+	fmt.Fprintf(stdout, "\n%s\n", wrote)
+	if truthPoses != nil {
+		if err := printNEES(stdout, cfg, fit.Config, inputs, truthPoses); err != nil {
+			return fmt.Errorf("%s: %w", *truth, err)
+		}
+	}
+	if *reportDir == "" {
+		return nil
+	}
+	rs := review.Source{JournalDir: *dir, Robot: *robot, Samples: *samples, Config: cfgProto, Truth: *truth}
+	cal := review.Calibration{By: "reckon calibrate", Findings: findings, Columns: cols, Rows: rows, Notes: append(byHand, wrote)}
+	return writeCalibrationReport(stdout, *reportDir, rs, cfgProto, *out, cal)
+}
+
+// startConfig returns the configuration to calibrate, as YAML, and its
+// name: the file config, or the journal's own configuration.
+func startConfig(config, dir, robot string) (string, []byte, error) {
+	if config != "" {
+		data, err := os.ReadFile(config)
+		return config, data, err
+	}
+	id := robot
+	if n, err := server.RobotID(robot); err == nil {
+		id = n
+	}
+	errOpened := errors.New("opened")
+	var c fusion.Config
+	_, _, err := journal.Replay(dir, id, journal.ReplayOptions{ReadOnly: true, SkipOutputs: true, Opened: func(r *fusion.Robot) error {
+		c = r.Config()
+		return errOpened
+	}})
+	if !errors.Is(err, errOpened) {
+		if err == nil {
+			err = errors.New("the journal has no opening record")
+		}
+		return "", nil, fmt.Errorf("%s: %w", dir, err)
+	}
+	name := fmt.Sprintf("the configuration of %s in %s", robot, dir)
+	data, err := configYAML(convert.ConfigToProto(c), "# "+name)
+	return name, data, err
+}
+
+// splitInputs sorts a run's inputs by kind, each in arrival order.
+func splitInputs(inputs []calib.RecordedInput) (odo []fusion.Odometry, imu []fusion.Heading, fixes []fusion.Fix) {
+	for _, in := range inputs {
+		switch {
+		case in.Odometry != nil:
+			odo = append(odo, *in.Odometry)
+		case in.Heading != nil:
+			imu = append(imu, *in.Heading)
+		case in.Fix != nil:
+			fixes = append(fixes, *in.Fix)
+		}
+	}
+	return odo, imu, fixes
+}
+
+// printFindings prints the diagnoses' findings, each a sentence naming the
+// field, and returns them.
+func printFindings(w io.Writer, wiring, sensors []calib.Finding) []string {
+	var out []string
+	for _, g := range []struct {
+		what string
+		fs   []calib.Finding
+	}{{"wiring", wiring}, {"fix sensors", sensors}} {
+		if len(g.fs) == 0 {
+			fmt.Fprintf(w, "%s: no mistake found\n", g.what)
+			continue
+		}
+		fmt.Fprintf(w, "%s:\n", g.what)
+		for _, f := range g.fs {
+			s := f.Sentence
+			if f.Undetermined {
+				s = "not checked: " + s
+			}
+			fmt.Fprintf(w, "  %s\n", s)
+			out = append(out, s)
+		}
+	}
+	return out
+}
+
+// paramTable is the table of a fit's parameters: name, unit, the fields
+// changed, configured, fitted, standard error, determined or why not.
+func paramTable(fit *calib.SystematicFit) ([]string, [][]string) {
+	cols := []string{"parameter", "unit", "configuration field", "configured", "fitted", "std error", "determined"}
+	var rows [][]string
+	for _, p := range fit.Params {
+		field := strings.Join(p.Fields, ", ")
+		if field == "" {
+			field = "-"
+		}
+		if len(p.Fields) > 2 { // the spread changes every wheel's position
+			field = fmt.Sprintf("%s ... (%d fields)", p.Fields[0], len(p.Fields))
+		}
+		unit := p.Unit
+		if unit == "" {
+			unit = "-"
+		}
+		det := "yes"
+		if !p.Determined {
+			det = "no: " + p.Why
+		} else if len(p.Fields) == 0 && p.Why != "" {
+			det = "yes, by hand (below)"
+		}
+		rows = append(rows, []string{p.Name, unit, field, strconv.FormatFloat(p.Configured, 'f', 4, 64),
+			strconv.FormatFloat(p.Fitted, 'f', 4, 64), strconv.FormatFloat(p.StdErr, 'f', 4, 64), det})
+	}
+	return cols, rows
+}
+
+// byHandNotes are the determined parameters the configuration has no field
+// for, each with the factor to apply by hand.
+func byHandNotes(fit *calib.SystematicFit) []string {
+	var out []string
+	for _, p := range fit.Params {
+		if p.Determined && len(p.Fields) == 0 && p.Why != "" {
+			out = append(out, fmt.Sprintf("by hand: %s %.4f (se %.4f): %s", p.Name, p.Fitted, p.StdErr, p.Why))
+		}
+	}
+	return out
+}
+
+// writeCalibratedConfig writes the configuration (data, named in) with the
+// fields the fit changed to out, each with a comment naming the parameter,
+// its fitted value and standard error, and a first comment line naming
+// every change. It returns the changes.
+func writeCalibratedConfig(in string, data []byte, out, run string, cfg fusion.Config, fit *calib.SystematicFit) ([]string, error) {
+	var edits []configEdit
+	var kept []string
+	for _, p := range fit.Params {
+		if !p.Determined {
+			kept = append(kept, p.Name)
+			continue
+		}
+		for _, f := range p.Fields {
+			old, _ := configValue(cfg, f)
+			v, ok := configValue(fit.Config, f)
+			if !ok {
+				return nil, fmt.Errorf("calibrate: the fit changed %s, which calibrate cannot write", f)
+			}
+			if v == old {
+				continue // a wheel on the spread's centre line does not move
+			}
+			edits = append(edits, configEdit{path: f, value: v, absent: "0 (default)",
+				comment: fmt.Sprintf("from calibrate: %s %s -> %s (se %s)", p.Name, fmtParam(p.Configured, p.Unit), fmtParam(p.Fitted, p.Unit), fmtParam(p.StdErr, p.Unit))})
+		}
+	}
+	if len(edits) == 0 {
+		return nil, fmt.Errorf("%w: the fit changes no configuration field; nothing written", errRefused)
+	}
+	return editConfig(in, data, out, edits, func(changes []string) string {
+		note := fmt.Sprintf("reckon calibrate: %s; by a batch least-squares fit of the systematic parameters to the fixes of %s", strings.Join(changes, ", "), run)
+		if len(kept) > 0 {
+			note += "; not determined by the run, kept: " + strings.Join(kept, ", ")
+		}
+		return note
+	})
+}
+
+// fmtParam formats a parameter's value in its unit (angles also in
+// degrees, seconds in milliseconds).
+func fmtParam(v float64, unit string) string {
+	switch unit {
+	case "rad":
+		return fmt.Sprintf("%.4f rad (%.2f deg)", v, v*180/math.Pi)
+	case "s":
+		return fmt.Sprintf("%.1f ms", v*1e3)
+	case "m":
+		return fmt.Sprintf("%.4f m", v)
+	}
+	return fmt.Sprintf("%.4f", v)
+}
+
+// configValue is the value of one field the systematic fit changes, as
+// the YAML configuration writes it.
+func configValue(c fusion.Config, field string) (string, bool) {
+	var i int
+	var name string
+	g := func(v float64) string { return strconv.FormatFloat(v, 'g', 6, 64) }
+	switch {
+	case scan(field, "wheels[%d].%s", &i, &name) && i < len(c.Wheels):
+		w := c.Wheels[i]
+		switch name {
+		case "counts_per_m":
+			return strconv.FormatFloat(w.CountsPerM, 'g', 7, 64), true
+		case "x_m":
+			return g(w.XM), true
+		case "y_m":
+			return g(w.YM), true
+		}
+	case scan(field, "sensors[%d].%s", &i, &name) && i < len(c.Sensors):
+		s := c.Sensors[i]
+		switch name {
+		case "mount.x_m":
+			return g(s.Mount.X), true
+		case "mount.y_m":
+			return g(s.Mount.Y), true
+		case "mount.heading_rad":
+			return g(s.Mount.Heading), true
+		case "latency_ns":
+			return strconv.FormatInt(s.LatencyNs, 10), true
+		}
+	}
+	return "", false
+}
+
+// scan is fmt.Sscanf that says whether it read every verb.
+func scan(s, format string, args ...any) bool {
+	n, _ := fmt.Sscanf(strings.Replace(s, "].", "] ", 1), strings.Replace(format, "].", "] ", 1), args...)
+	return n == len(args)
+}
+
+// writeCalibrationReport replays the run under the configuration before
+// (before) and after (the file after) a calibration into one report in
+// dir with the calibration section at the top (review.WriteCalibrationHTML),
+// and its summary.
+func writeCalibrationReport(stdout io.Writer, dir string, src review.Source, before *pb.RobotConfig, after string, cal review.Calibration) error {
+	afterProto, err := loadYAML(after)
+	if err != nil {
+		return err
+	}
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		return err
+	}
+	var runs []*review.Run
+	for _, c := range []struct {
+		label string
+		cfg   *pb.RobotConfig
+	}{{"before", before}, {"after", afterProto}} {
+		s := src
+		s.Override, s.Label = c.cfg, c.label
+		run, err := review.Analyze(s, dir, review.Options{})
+		if err != nil {
+			return fmt.Errorf("report, %s: %w", c.label, err)
+		}
+		runs = append(runs, run)
+	}
+	var txt strings.Builder
+	if err := review.WriteText(&txt, runs...); err != nil {
+		return err
+	}
+	if err := os.WriteFile(filepath.Join(dir, "summary.txt"), []byte(txt.String()), 0o644); err != nil {
+		return err
+	}
+	f, err := os.Create(filepath.Join(dir, "report.html"))
+	if err != nil {
+		return err
+	}
+	if err := review.WriteCalibrationHTML(f, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1]); err != nil {
+		f.Close()
+		return err
+	}
+	if err := f.Close(); err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "\nreport: %s\n", filepath.Join(dir, "report.html"))
+	return nil
+}

@@ -216,9 +216,13 @@ var patterns = map[ParamKind]string{
 // with the reference point and cannot be told apart from it; the wheels'
 // rolling directions, whose errors are second order in a run.
 func FitSystematic(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, opt SystematicOptions) (SystematicFit, error) {
-	if err := cfg.Validate(); err != nil {
+	r, err := fusion.New(cfg)
+	if err != nil {
 		return SystematicFit{}, fmt.Errorf("%w: %w", ErrSystematic, err)
 	}
+	// The robot's defaults for what the configuration leaves unset (the
+	// speed limit that screens counts, the noise that weights the drift).
+	cfg = r.Config()
 	opt.defaults()
 	m, err := newSysModel(&cfg, odo, fixes, opt)
 	if err != nil {

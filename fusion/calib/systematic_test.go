@@ -226,3 +226,28 @@ func BenchmarkSystematicTenMinutes(b *testing.B) {
 		}
 	}
 }
+
+// TestSystematicCountsDefaults: a free-wheel cart sending encoder counts,
+// its configuration leaving max_speed_m_per_s and the noise to their
+// defaults, the camera's mount configured 3 cm forward of the truth. The
+// fit takes the configuration's defaults as the robot does: before it
+// read the unset speed limit as 0, threw out nearly every interval of
+// counts and diverged (latency near -4 s, negative wheel scales). Now the
+// mount comes back within 3 standard errors (the bound of
+// TestSystematicRecoversInjectedErrors).
+func TestSystematicCountsDefaults(t *testing.T) {
+	r := simulateSys(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Counts: true, Seed: 7, DurationS: 120})
+	cfg := r.cfg
+	cfg.MaxSpeedMPerS, cfg.Noise = 0, fusion.Noise{}
+	cfg.Sensors = slices.Clone(cfg.Sensors)
+	cfg.Sensors[0].Mount.X += 0.03
+	fit, err := FitSystematic(cfg, r.odo, r.fixes, SystematicOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	p, ok := fit.Param(MountX, 0)
+	t.Logf("%s: %.4f +- %.4f (truth %.3f)", p.Name, p.Fitted, p.StdErr, r.cfg.Sensors[0].Mount.X)
+	if !ok || !p.Determined || math.Abs(p.Fitted-r.cfg.Sensors[0].Mount.X) > 3*p.StdErr {
+		t.Errorf("mount x %+v, truth %.3f", p, r.cfg.Sensors[0].Mount.X)
+	}
+}

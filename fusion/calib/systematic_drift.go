@@ -36,25 +36,6 @@ type segBlock struct {
 	ok    bool
 }
 
-// noiseOf returns the configuration's noise with the defaults where zero.
-func noiseOf(cfg *fusion.Config) fusion.Noise {
-	n, d := cfg.Noise, fusion.DefaultNoise()
-	def := func(v *float64, dv float64) {
-		if *v <= 0 {
-			*v = dv
-		}
-	}
-	def(&n.WheelVarM2PerM, d.WheelVarM2PerM)
-	def(&n.LateralSlipVarM2PerM, d.LateralSlipVarM2PerM)
-	def(&n.TurnVarRad2PerRad, d.TurnVarRad2PerRad)
-	def(&n.HeadingVarRad2PerS, d.HeadingVarRad2PerS)
-	def(&n.StepForwardVarM2PerM, d.StepForwardVarM2PerM)
-	def(&n.StepLeftVarM2PerM, d.StepLeftVarM2PerM)
-	def(&n.StepTurnVarRad2PerRad, d.StepTurnVarRad2PerRad)
-	def(&n.IMUTurnVarRad2PerRad, d.IMUTurnVarRad2PerRad)
-	return n
-}
-
 // stepCov writes the covariance of interval k's step (after deadReckon at
 // g) as the robot's odometry decoding states it: the wheel rows' variances
 // per metre through the solver's gain, scrub per radian turned, or the body
@@ -132,7 +113,7 @@ func (s *sysSolver) buildBlocks(x []float64) {
 	if len(m.travel) > 0 {
 		gain = m.solver(g)
 	}
-	nz := noiseOf(m.cfg)
+	nz := m.cfg.Noise // FitSystematic filled the robot's defaults
 	anchors := s.anchors(x)
 	s.blocks = s.blocks[:0]
 	start := 0

@@ -1,6 +1,7 @@
 package calib
 
 import (
+	"cmp"
 	"math"
 	"slices"
 
@@ -138,7 +139,7 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 			tau[i] = float64(m.fixes[i].stamp) - get(g, m.latency[m.fixes[i].sensor], 0)*1e9
 		}
 	}
-	slices.SortStableFunc(b.fixes, func(a, c int) int { return cmpFloat(tau[a], tau[c]) })
+	slices.SortStableFunc(b.fixes, func(a, c int) int { return cmp.Compare(tau[a], tau[c]) })
 	for _, i := range b.fixes {
 		b.off = append(b.off, b.rows)
 		b.rows += s.dim[i]
@@ -154,7 +155,7 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 	// Propagate the drift from the anchor through the intervals, keeping
 	// cross[a] = Cov(pose now, pose at fix a) for every fix a passed.
 	t0 := float64(m.segStart[k])
-	iv, _ := slices.BinarySearchFunc(m.ivs, t0, func(v sysInterval, t float64) int { return cmpFloat(float64(v.t1), t) })
+	iv, _ := slices.BinarySearchFunc(m.ivs, t0, func(v sysInterval, t float64) int { return cmp.Compare(float64(v.t1), t) })
 	var p [9]float64
 	ident := [9]float64{1, 0, 0, 0, 1, 0, 0, 0, 1}
 	phi := ident
@@ -237,14 +238,4 @@ func (s *sysSolver) poseJacobian(i int, g []float64, p estimator.Pose) [9]float6
 		}
 	}
 	return h
-}
-
-func cmpFloat(a, b float64) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
 }

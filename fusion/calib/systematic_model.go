@@ -1,6 +1,7 @@
 package calib
 
 import (
+	"cmp"
 	"fmt"
 	"math"
 	"slices"
@@ -103,7 +104,7 @@ func newSysModel(cfg *fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, 
 // past the speed limit re-references the counts.
 func (m *sysModel) intervals(odo []fusion.Odometry) {
 	odo = slices.Clone(odo)
-	slices.SortStableFunc(odo, func(a, b fusion.Odometry) int { return cmpInt(a.StampNs, b.StampNs) })
+	slices.SortStableFunc(odo, func(a, b fusion.Odometry) int { return cmp.Compare(a.StampNs, b.StampNs) })
 	var prevCounts []int64
 	var prevIMU *float64
 	newest := int64(math.MinInt64)
@@ -156,16 +157,6 @@ func (m *sysModel) intervals(odo []fusion.Odometry) {
 		}
 		m.ivs = append(m.ivs, iv)
 	}
-}
-
-func cmpInt(a, b int64) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
 }
 
 // prepareFixes keeps the fixes of configured sensors with a covariance,
@@ -232,7 +223,7 @@ func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
 		}
 		m.fixes = append(m.fixes, f)
 	}
-	slices.SortStableFunc(m.fixes, func(a, b sysFix) int { return cmpInt(a.stamp, b.stamp) })
+	slices.SortStableFunc(m.fixes, func(a, b sysFix) int { return cmp.Compare(a.stamp, b.stamp) })
 }
 
 // whiten writes the inverse of the Cholesky factor of the covariance c

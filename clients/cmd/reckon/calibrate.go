@@ -376,24 +376,7 @@ func writeCalibrationReport(stdout io.Writer, dir string, src review.Source, bef
 		}
 		runs = append(runs, run)
 	}
-	var txt strings.Builder
-	if err := review.WriteText(&txt, runs...); err != nil {
-		return err
-	}
-	if err := os.WriteFile(filepath.Join(dir, "summary.txt"), []byte(txt.String()), 0o644); err != nil {
-		return err
-	}
-	f, err := os.Create(filepath.Join(dir, "report.html"))
-	if err != nil {
-		return err
-	}
-	if err := review.WriteCalibrationHTML(f, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1]); err != nil {
-		f.Close()
-		return err
-	}
-	if err := f.Close(); err != nil {
-		return err
-	}
-	fmt.Fprintf(stdout, "\nreport: %s\n", filepath.Join(dir, "report.html"))
-	return nil
+	return writeReport(stdout, dir, false, runs, func(w io.Writer) error {
+		return review.WriteCalibrationHTML(w, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1])
+	})
 }

@@ -208,25 +208,35 @@ their differences.`)
 }
 
 func writeReports(stdout io.Writer, dir, title string, runs ...*review.Run) error {
-	if err := review.WriteText(stdout, runs...); err != nil {
+	return writeReport(stdout, dir, true, runs, func(w io.Writer) error { return review.WriteHTML(w, title, runs...) })
+}
+
+// writeReport writes the runs' text summary to dir/summary.txt (and to
+// stdout with echo) and the HTML report that html writes to
+// dir/report.html, and says where it is.
+func writeReport(stdout io.Writer, dir string, echo bool, runs []*review.Run, html func(io.Writer) error) error {
+	var txt strings.Builder
+	if err := review.WriteText(&txt, runs...); err != nil {
 		return err
 	}
-	var txt strings.Builder
-	review.WriteText(&txt, runs...)
+	if echo {
+		io.WriteString(stdout, txt.String())
+	}
 	if err := os.WriteFile(filepath.Join(dir, "summary.txt"), []byte(txt.String()), 0o644); err != nil {
 		return err
 	}
-	f, err := os.Create(filepath.Join(dir, "report.html"))
+	path := filepath.Join(dir, "report.html")
+	f, err := os.Create(path)
 	if err != nil {
 		return err
 	}
-	if err := review.WriteHTML(f, title, runs...); err != nil {
+	if err := html(f); err != nil {
 		f.Close()
 		return err
 	}
 	if err := f.Close(); err != nil {
 		return err
 	}
-	fmt.Fprintf(stdout, "\nreport: %s\n", filepath.Join(dir, "report.html"))
+	fmt.Fprintf(stdout, "\nreport: %s\n", path)
 	return nil
 }

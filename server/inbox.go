@@ -52,7 +52,8 @@ func (b *inbox) put(ctx context.Context, r *arrivedRequest, wake bool) error {
 	return nil
 }
 
-// end records why receiving ended (io.EOF when the client closed).
+// end records why the stream ended: receiving did (io.EOF when the client
+// closed), or sending failed on the receiving goroutine (ingestTurn).
 func (b *inbox) end(err error) {
 	b.mu.Lock()
 	b.ended = err

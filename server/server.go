@@ -510,11 +510,15 @@ func (t *ingestTurn) takeHere(ctx context.Context) {
 		return
 	}
 	defer t.mu.Unlock()
-	if t.err != nil {
-		return
+	if t.err == nil {
+		if t.batch = t.in.takeNow(t.batch); len(t.batch) > 0 {
+			t.err = t.takeOne(ctx, t.batch)
+		}
 	}
-	if t.batch = t.in.takeNow(t.batch); len(t.batch) > 0 {
-		t.err = t.takeOne(ctx, t.batch)
+	if t.err != nil {
+		// Sending failed: the stream ends with that error (the other
+		// goroutine waits on the inbox, which now returns it).
+		t.in.end(t.err)
 	}
 }
 

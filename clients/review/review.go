@@ -19,6 +19,8 @@ import (
 	"strconv"
 	"strings"
 
+	"gonum.org/v1/gonum/stat/distuv"
+
 	"reckon.example/estimator"
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
@@ -153,6 +155,12 @@ type Summary struct {
 	SmoothedNEES             float64
 	// Medians resist the few points right after the robot was moved.
 	FilteredNEESMedian, SmoothedNEESMedian float64
+	// FilteredInside95 and SmoothedInside95 are the fractions of the steps
+	// with truth whose true position lies inside the estimate's 95%
+	// region: its position NEES (2 degrees of freedom) at most the
+	// chi-square 95% quantile, 5.99 (Bar-Shalom, Li and Kirubarajan 2001,
+	// sec. 5.4.2; gonum distuv). A consistent filter has about 0.95.
+	FilteredInside95, SmoothedInside95 float64
 }
 
 // Run is a reviewed run.
@@ -949,7 +957,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	defer pf.close()
 	var fSq, sSq, fNees, sNees float64
 	var fAll, sAll logHistogram
-	var nTruth, nNees int
+	var nTruth, nNees, fIn, sIn int
 	var prevX, prevY float64
 	for i := 0; i < n; i++ {
 		it, err := pf.at(i)
@@ -981,6 +989,12 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
 			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
 			nTruth++
+			if positionNEES(p, tp) <= position95 {
+				fIn++
+			}
+			if positionNEES(smoothed, tp) <= position95 {
+				sIn++
+			}
 			if fn, sn := it.nees[0], it.nees[1]; !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
 				sNees += sn
@@ -1006,6 +1020,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 	if nTruth > 0 {
 		sum.HasTruth = true
 		sum.FilteredRMSM, sum.SmoothedRMSM = math.Sqrt(fSq/float64(nTruth)), math.Sqrt(sSq/float64(nTruth))
+		sum.FilteredInside95, sum.SmoothedInside95 = float64(fIn)/float64(nTruth), float64(sIn)/float64(nTruth)
 		if nNees > 0 {
 			sum.FilteredNEES, sum.SmoothedNEES = fNees/float64(nNees), sNees/float64(nNees)
 			sum.FilteredNEESMedian, sum.SmoothedNEESMedian = fAll.median(), sAll.median()
@@ -1015,6 +1030,25 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 }
 
 func sq(v float64) float64 { return v * v }
+
+// position95 is the chi-square quantile of 2 degrees of freedom at 0.95,
+// the boundary of a position's 95% region in its NEES (gonum distuv).
+var position95 = distuv.ChiSquared{K: 2}.Quantile(0.95)
+
+// positionNEES is the NEES of the true position tr under the state's
+// position mean and 2x2 covariance; +Inf when that covariance is not
+// positive definite.
+func positionNEES(s *estimator.State, tr estimator.Pose) float64 {
+	var c [9]float64
+	s.PoseCovarianceInto(&c)
+	a, b, d := c[0], c[1], c[4]
+	det := a*d - b*b
+	if !(a > 0) || !(det > 0) {
+		return math.Inf(1)
+	}
+	ex, ey := tr.X-s.MeanAt(0), tr.Y-s.MeanAt(1)
+	return (d*ex*ex - 2*b*ex*ey + a*ey*ey) / det
+}
 
 // logHistogram counts positive values in bins a thousandth wide on a log
 // scale, for a median in bounded memory (within 0.05%).

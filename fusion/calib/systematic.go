@@ -115,6 +115,12 @@ type SystematicFit struct {
 	// re-weightings; Converged says the last one met its tolerance.
 	Iterations int
 	Converged  bool
+	// ScaleStates names the fields Config changes to switch on the online
+	// scale states (calibration.scale, and calibration.scale_std when the
+	// prior must widen): set when a body step's scale lies more than three
+	// standard errors from 1, which the configuration has no field for
+	// (FitSystematic).
+	ScaleStates []string
 }
 
 // Param returns the fit's parameter of the kind and index, and whether it

@@ -667,7 +667,43 @@ func (s *sysSolver) result(cfg *fusion.Config) SystematicFit {
 		}
 		out.Params = append(out.Params, p)
 	}
+	out.scaleStates()
 	return out
+}
+
+// scaleBiasSE is how many of its standard errors a body step's scale must
+// lie from 1 for the fit to switch on the scale states: three, whatever
+// its bound (a scale too loose to write down is still a bias if it lies
+// this far off).
+const scaleBiasSE = 3
+
+// scaleStates switches on the online scale states (calibration.scale) in
+// f.Config when a body step's scale lies more than scaleBiasSE standard
+// errors from 1: the configuration has no field for these scales, and a
+// scale error left to the white step noise grows with the square of the
+// distance ("Design: State"). The prior's standard deviation is widened to
+// twice the largest error found when that exceeds it. A configuration
+// with the states already on is left as it was.
+func (f *SystematicFit) scaleStates() {
+	c := &f.Config.Calibration
+	if c.Scale {
+		return
+	}
+	var worst float64
+	for _, p := range f.Params {
+		if (p.Kind == StepForwardScale || p.Kind == StepTurnScale) && math.Abs(p.Fitted-1) > scaleBiasSE*p.StdErr {
+			worst = math.Max(worst, math.Abs(p.Fitted-1))
+		}
+	}
+	if worst == 0 {
+		return
+	}
+	c.Scale = true
+	f.ScaleStates = []string{"calibration.scale"}
+	if 2*worst > c.ScaleStd {
+		c.ScaleStd = 2 * worst
+		f.ScaleStates = append(f.ScaleStates, "calibration.scale_std")
+	}
 }
 
 // cloneConfig copies the slices of c that a fit changes.

@@ -128,6 +128,12 @@ type Scenario struct {
 	Bump *Bump
 	// SpeedMPerS is the cruising speed (0.4).
 	SpeedMPerS float64
+	// FigureEight drives round the two beds beside the first aisle in
+	// turn (up the aisle, left round one bed and back, up again, right
+	// round the other and back) instead of working up the greenhouse
+	// aisle by aisle: the cart stays among the aisle markers
+	// (MarkerCount) however long the run, and turns both ways.
+	FigureEight bool
 	// SquareM, if positive, drives the bidirectional square test of that
 	// side instead of the aisles (Borenstein and Feng, IEEE Transactions
 	// on Robotics and Automation 12(6), 1996): from a pause of 2 s, a
@@ -327,6 +333,9 @@ func New(s Scenario) *Sim {
 	s.defaults()
 	sm := &Sim{s: s, cfg: s.Config(), rng: rand.New(rand.NewPCG(s.Seed, s.Seed^0x9e3779b97f4a7c15))}
 	sm.route = greenhouseRoute(s.SpeedMPerS, s.Layout != DriveWheelTurn && s.Layout != Commanded)
+	if s.FigureEight {
+		sm.route = figureEightRoute(sm.route)
+	}
 	if s.SquareM > 0 {
 		if s.Layout != DriveWheelTurn && s.Layout != Commanded {
 			panic(fmt.Sprintf("fusiontest: the square test needs a differential drive, not layout %v", s.Layout))
@@ -384,6 +393,23 @@ func greenhouseRoute(speed float64, holonomic bool) []segment {
 		route = append(route, segment{durNs: grid(1.5), v: 0.1, u: 0.15, w: 0.2}, segment{durNs: grid(1.5), v: 0.1, u: -0.15, w: -0.2})
 	}
 	return route // it starts and repeats with a pause to pick tomatoes
+}
+
+// figureEightRoute turns the greenhouse route r into a figure of eight
+// round the beds either side of the first aisle: r's lap with both its
+// half-circle turns to the left (a closed loop round the bed on the left),
+// then with both to the right. The segments and their durations are r's.
+func figureEightRoute(r []segment) []segment {
+	var out []segment
+	for _, sign := range []float64{1, -1} {
+		for _, sg := range r {
+			if sg.w != 0 && sg.u == 0 {
+				sg.w = sign * math.Abs(sg.w)
+			}
+			out = append(out, sg)
+		}
+	}
+	return out
 }
 
 // squareRoute is the bidirectional square test of side sideM at speed:

@@ -286,6 +286,12 @@ func writeCalibratedConfig(in string, data []byte, out, run string, cfg fusion.C
 				comment: fmt.Sprintf("from calibrate: %s %s -> %s (se %s)", p.Name, fmtParam(p.Configured, p.Unit), fmtParam(p.Fitted, p.Unit), fmtParam(p.StdErr, p.Unit))})
 		}
 	}
+	for _, f := range fit.ScaleStates {
+		v, _ := configValue(fit.Config, f)
+		old, _ := configValue(cfg, f)
+		edits = append(edits, configEdit{path: f, value: v, absent: old + " (default)",
+			comment: "from calibrate: a body step's scale lies more than three standard errors from 1; estimated online"})
+	}
 	if len(edits) == 0 {
 		return nil, fmt.Errorf("%w: the fit changes no configuration field; nothing written", errRefused)
 	}
@@ -329,6 +335,10 @@ func configValue(c fusion.Config, field string) (string, bool) {
 		case "y_m":
 			return g(w.YM), true
 		}
+	case field == "calibration.scale":
+		return strconv.FormatBool(c.Calibration.Scale), true
+	case field == "calibration.scale_std":
+		return g(c.Calibration.ScaleStd), true
 	case scan(field, "sensors[%d].%s", &i, &name) && i < len(c.Sensors):
 		s := c.Sensors[i]
 		switch name {

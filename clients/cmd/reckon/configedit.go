@@ -142,6 +142,8 @@ func setField(root *yaml.Node, e configEdit) (old string, err error) {
 		tag := "!!float"
 		if _, err := strconv.ParseInt(e.value, 10, 64); err == nil {
 			tag = "!!int" // an integer field (latency_ns) takes no float; a float field takes either
+		} else if e.value == "true" || e.value == "false" {
+			tag = "!!bool"
 		}
 		*node = yaml.Node{Kind: yaml.ScalarNode, Tag: tag, Value: e.value}
 	}

@@ -239,6 +239,12 @@ func (p *replayer) config(values []float64) (fusion.Config, []float64) {
 // (0: Gaussian). A configuration the levels make invalid is an error.
 func (p *replayer) run(values []float64, each func(in *fusion.Innovation, nu float64)) error {
 	cfg, scale := p.config(values)
+	return p.runConfig(cfg, scale, each)
+}
+
+// runConfig replays the run under cfg (run), the covariances that fixes
+// carry scaled by scale per sensor.
+func (p *replayer) runConfig(cfg fusion.Config, scale []float64, each func(in *fusion.Innovation, nu float64)) error {
 	r, err := fusion.New(cfg)
 	if err != nil {
 		return err

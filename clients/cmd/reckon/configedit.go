@@ -144,6 +144,8 @@ func setField(root *yaml.Node, e configEdit) (old string, err error) {
 			tag = "!!int" // an integer field (latency_ns) takes no float; a float field takes either
 		} else if e.value == "true" || e.value == "false" {
 			tag = "!!bool"
+		} else if _, err := strconv.ParseFloat(e.value, 64); err != nil {
+			tag = "!!str" // an enumeration's name (robust: student_t)
 		}
 		*node = yaml.Node{Kind: yaml.ScalarNode, Tag: tag, Value: e.value}
 	}

@@ -45,6 +45,7 @@ report with a calibration section at the top.`)
 	robot := fs.String("robot", "", "the robot, when the run is a journal directory")
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after")
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
+	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps; then fit its levels")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
@@ -87,7 +88,7 @@ report with a calibration section at the top.`)
 			return err
 		}
 	}
-	fit, err := calib.FitNoise(cfg, inputs, calib.NoiseFitOptions{MaxStdErrLog: *maxSE})
+	fit, err := calib.FitNoise(cfg, inputs, calib.NoiseFitOptions{MaxStdErrLog: *maxSE, ChooseModel: *model})
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", pos[0], errRefused, err)
 	}
@@ -255,6 +256,13 @@ func printTune(w io.Writer, file string, inputs []calib.RecordedInput, skipped i
 	fmt.Fprintf(w, "; %d fixes left out of the fit as gross outliers\n", fit.Excluded)
 	fmt.Fprintf(w, "log-likelihood of %d innovations: %.2f configured, %.2f fitted (%d replays of the run)\n\n",
 		fit.Innovations, fit.LogLikBefore, fit.LogLikAfter, fit.Replays)
+	if len(fit.Model) > 0 {
+		var ch []string
+		for _, m := range fit.Model {
+			ch = append(ch, fmt.Sprintf("%s %s -> %s", m.Field, m.From, m.To))
+		}
+		fmt.Fprintf(w, "noise model chosen by likelihood (Akaike's criterion), the levels below fitted in it: %s\n\n", strings.Join(ch, ", "))
+	}
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 	cols, rows := levelTable(fit)
 	fmt.Fprintln(tw, strings.Join(cols, "\t"))
@@ -316,6 +324,17 @@ func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseF
 	var edits []configEdit
 	var kept []string
 	def := fusion.DefaultNoise()
+	fitted := map[string]bool{}
+	for _, l := range fit.Levels {
+		fitted[l.Field] = l.Identifiable
+	}
+	for _, m := range fit.Model {
+		if fitted[m.Field] {
+			continue // its fitted value below
+		}
+		edits = append(edits, configEdit{path: m.Field, value: m.To, absent: m.From + " (default)",
+			comment: "from tune: the noise model the run's likelihood supports best"})
+	}
 	for _, l := range fit.Levels {
 		if !l.Identifiable {
 			kept = append(kept, l.Field)

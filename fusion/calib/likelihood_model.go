@@ -1,0 +1,297 @@
+package calib
+
+import (
+	"fmt"
+	"math"
+	"slices"
+	"strconv"
+
+	"gonum.org/v1/gonum/stat/distuv"
+
+	"reckon.example/fusion"
+)
+
+// This file chooses the form of a configuration's noise model before its
+// levels are fitted: per sensor whether its errors have a Gauss-Markov
+// part and heavy (Student-t) tails, and for body steps whether their noise
+// grows per metre and radian or per second. A configuration a user writes
+// first is white and Gaussian, and a level the configuration does not have
+// cannot be fitted. DEVELOPERS.md, "Design: Noise by likelihood".
+
+// ModelChange is one change of a configuration's noise model that the
+// fit chose, as the configuration field, its old and new value.
+type ModelChange struct {
+	Field, From, To string
+}
+
+// modelCandidateTau and the fractions are the starting points of a
+// correlated sensor model: the fit then tunes the time constant; the
+// fraction is chosen among modelFractions. Real cameras' errors correlate
+// over 1 to 3 s (common practice).
+const modelCandidateTau = 2.0
+
+var modelFractions = []float64{0.5, 0.9}
+
+// modelCandidateDOF is the degrees of freedom a Student-t candidate starts
+// from (real cameras' errors: 3 to 5, common practice); the fit then tunes
+// them.
+const modelCandidateDOF = 4.0
+
+// aicPenalty is what each extra parameter of a candidate model costs in
+// log-likelihood: Akaike's criterion (H. Akaike, IEEE Trans. Automatic
+// Control 19(6), 1974) in units of the log-likelihood, half of its 2 per
+// parameter on the -2 log L scale.
+const aicPenalty = 1.0
+
+// chooseModel returns cfg with the noise model the run supports best,
+// each candidate judged by its log-likelihood at its best covariance
+// factor (a profile likelihood over that factor) less aicPenalty per extra
+// parameter, over the same innovations (the fixes screened once at cfg).
+// Sensors already correlated or robust are left as they are; so is a
+// Huber sensor, whose loss is no density. Body steps (no wheels) switch
+// from per metre and radian to per second when that is better, the
+// per-second terms set to the per-metre ones at the run's mean speed and
+// turn rate, the per-metre ones to a negligible 1e-12. It also returns
+// the fixes its screen left out (gross errors, metres off: a marker taken
+// for another), which the level fit leaves out too, Student-t or not: a
+// Student-t fitted to them goes below 2 degrees of freedom, to tails the
+// sensor's own errors do not have, and the filter's gate refuses them
+// anyway.
+func chooseModel(cfg fusion.Config, inputs []RecordedInput) (fusion.Config, []ModelChange, []bool, int, error) {
+	cfg = withDefaults(cfg)
+	p := newReplayer(cfg, inputs, nil)
+	if _, err := p.screen(nil); err != nil {
+		return cfg, nil, nil, 1, err
+	}
+	replays := 1
+	var changes []ModelChange
+	for i := range cfg.Sensors {
+		s := cfg.Sensors[i]
+		if s.CorrelatedFraction > 0 || s.Robust != fusion.RobustNone {
+			continue
+		}
+		best, bestLL := s, math.Inf(-1)
+		for _, cand := range sensorCandidates(s) {
+			c := cfg
+			c.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+			c.Sensors[i] = cand.s
+			ll, k, n := p.profile(c, i)
+			replays += n
+			if ll -= aicPenalty * float64(cand.extra); ll > bestLL {
+				best, bestLL = cand.s, ll
+				best.Cov = scaled(cand.s.Cov, k)
+			}
+		}
+		if best.CorrelatedFraction != s.CorrelatedFraction {
+			f := fmt.Sprintf("sensors[%d]", i)
+			changes = append(changes,
+				ModelChange{f + ".correlated_fraction", "0", g(best.CorrelatedFraction)},
+				ModelChange{f + ".correlation_time_s", g(s.CorrelationTimeS), g(best.CorrelationTimeS)})
+		}
+		if best.Robust != s.Robust {
+			f := fmt.Sprintf("sensors[%d]", i)
+			changes = append(changes, ModelChange{f + ".robust", "none", "student_t"},
+				ModelChange{f + ".robust_parameter", g(s.RobustParameter), g(best.RobustParameter)})
+		}
+		// best.Cov is the profiled covariance: the level fit starts its
+		// factor there, where the other levels' curvature shows.
+		cfg.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+		cfg.Sensors[i] = best
+	}
+	if len(cfg.Wheels) == 0 {
+		n := &cfg.Noise
+		if n.StepForwardVarM2PerS == 0 && n.StepLeftVarM2PerS == 0 && n.StepTurnVarRad2PerS == 0 {
+			perS := perSecondSteps(cfg, inputs)
+			ll0, _, n0 := p.profile(cfg, -1)
+			llS, _, n1 := p.profile(perS, -1)
+			replays += n0 + n1
+			if llS > ll0 {
+				for _, f := range []struct {
+					name     string
+					from, to float64
+				}{
+					{"noise.step_forward_var_m2_per_m", n.StepForwardVarM2PerM, perS.Noise.StepForwardVarM2PerM},
+					{"noise.step_left_var_m2_per_m", n.StepLeftVarM2PerM, perS.Noise.StepLeftVarM2PerM},
+					{"noise.step_turn_var_rad2_per_rad", n.StepTurnVarRad2PerRad, perS.Noise.StepTurnVarRad2PerRad},
+					{"noise.step_forward_var_m2_per_s", 0, perS.Noise.StepForwardVarM2PerS},
+					{"noise.step_left_var_m2_per_s", 0, perS.Noise.StepLeftVarM2PerS},
+					{"noise.step_turn_var_rad2_per_s", 0, perS.Noise.StepTurnVarRad2PerS},
+				} {
+					changes = append(changes, ModelChange{f.name, g(f.from), g(f.to)})
+				}
+				cfg = perS
+			}
+		}
+	}
+	return cfg, changes, p.skip, replays, nil
+}
+
+func g(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
+
+func scaled(cov []float64, k float64) []float64 {
+	out := make([]float64, len(cov))
+	for i, c := range cov {
+		out[i] = c * k
+	}
+	return out
+}
+
+type sensorCandidate struct {
+	s     fusion.Sensor
+	extra int // parameters beyond the white Gaussian model's
+}
+
+// sensorCandidates are s as configured (white, Gaussian) and with a
+// Gauss-Markov part of each of modelFractions, Student-t tails, and both.
+func sensorCandidates(s fusion.Sensor) []sensorCandidate {
+	out := []sensorCandidate{{s, 0}}
+	t := s
+	t.Robust, t.RobustParameter = fusion.RobustStudentT, modelCandidateDOF
+	out = append(out, sensorCandidate{t, 1})
+	for _, f := range modelFractions {
+		for _, base := range []sensorCandidate{{s, 0}, {t, 1}} {
+			c := base.s
+			c.CorrelatedFraction, c.CorrelationTimeS = f, modelCandidateTau
+			out = append(out, sensorCandidate{c, base.extra + 2})
+		}
+	}
+	return out
+}
+
+// perSecondSteps returns cfg with its body-step noise per second instead
+// of per metre and radian: each per-second term the per-metre one times
+// the run's mean speed (or turn rate) over its whole length, so that the
+// run's total variance is the same; the per-metre terms 1e-12.
+func perSecondSteps(cfg fusion.Config, inputs []RecordedInput) fusion.Config {
+	var dist, turn float64
+	var t0, t1 int64 = math.MaxInt64, math.MinInt64
+	for _, in := range inputs {
+		if o := in.Odometry; o != nil && o.Step != nil {
+			dist += math.Hypot(o.Step.ForwardM, o.Step.LeftM)
+			turn += math.Abs(o.Step.TurnRad)
+			t0, t1 = min(t0, o.StartNs), max(t1, o.StampNs)
+		}
+	}
+	secs := float64(t1-t0) * 1e-9
+	if !(secs > 0) {
+		return cfg
+	}
+	n := &cfg.Noise
+	n.StepForwardVarM2PerS = n.StepForwardVarM2PerM * dist / secs
+	n.StepLeftVarM2PerS = n.StepLeftVarM2PerM * dist / secs
+	n.StepTurnVarRad2PerS = n.StepTurnVarRad2PerRad * max(turn, 1e-3) / secs
+	n.StepForwardVarM2PerM, n.StepLeftVarM2PerM, n.StepTurnVarRad2PerRad = 1e-12, 1e-12, 1e-12
+	return cfg
+}
+
+// profile returns the run's log-likelihood under cfg maximised over one
+// factor k on sensor i's covariance (and its fixes'), or on every
+// body-step noise term for i < 0, by parabolas through three points in
+// log k, three times; and how many replays it took.
+func (p *replayer) profile(cfg fusion.Config, i int) (ll, k float64, replays int) {
+	at := func(y float64) float64 {
+		c := cfg
+		scale := make([]float64, len(cfg.Sensors))
+		for j := range scale {
+			scale[j] = 1
+		}
+		f := math.Exp(y)
+		if i >= 0 {
+			c.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+			c.Sensors[i].Cov = scaled(cfg.Sensors[i].Cov, f)
+			scale[i] = f
+		} else {
+			n := &c.Noise
+			for _, v := range []*float64{&n.StepForwardVarM2PerM, &n.StepLeftVarM2PerM, &n.StepTurnVarRad2PerRad, &n.StepForwardVarM2PerS, &n.StepLeftVarM2PerS, &n.StepTurnVarRad2PerS} {
+				*v *= f
+			}
+		}
+		c.GateProbability = fitGateProbability
+		replays++
+		var sum float64
+		err := p.runConfig(c, scale, func(in *fusion.Innovation, nu float64) {
+			sum += innovationLogLik(in.Outcome.NIS, in.Outcome.LogDetS, in.Outcome.Dim, nu)
+		})
+		if err != nil {
+			return math.Inf(-1)
+		}
+		return sum
+	}
+	const h = 0.5
+	y, best := 0.0, at(0)
+	for range 3 {
+		up, down := at(y+h), at(y-h)
+		c, grad := (up-2*best+down)/(h*h), (up-down)/(2*h)
+		step := math.Copysign(3*h, grad)
+		if c < 0 {
+			step = math.Max(-3*h, math.Min(3*h, -grad/c))
+		}
+		switch v := at(y + step); {
+		case v > best && v >= up && v >= down:
+			y, best = y+step, v
+		case up > best && up >= down:
+			y, best = y+h, up
+		case down > best:
+			y, best = y-h, down
+		default:
+			return best, math.Exp(y), replays
+		}
+	}
+	return best, math.Exp(y), replays
+}
+
+// matchMedianNIS scales each sensor's covariance factor among the levels
+// of free (at values, in place) so that the median NIS of its innovations is the
+// model's: the chi-square median of their dimension, or for a Student-t
+// sensor of nu degrees of freedom d times the median of F(d, nu) (the NIS
+// of a d-dimensional Student-t of scale S is d F(d, nu); Kotz and
+// Nadarajah 2004, sec. 1.10; gonum distuv). Covariance matching (R. K.
+// Mehra, IEEE Trans. Automatic Control 17(5), 1972) after the likelihood
+// fit: a correlated sensor's bias states are consider states, its
+// innovations not independent, and the summed log densities (a composite
+// likelihood) put its covariance low (0.55 of the truth in
+// TestRealDataGoal, its mean NIS then 1.35 times the model's); the median
+// resists the tails. Three rounds, since S = H P H^T + R is not
+// proportional to the factor; it returns the replays it took.
+func (p *replayer) matchMedianNIS(values []float64, free []int) (int, error) {
+	replays := 0
+	for range 3 {
+		type seen struct {
+			nis []float64
+			dim int
+			nu  float64
+		}
+		by := map[string]*seen{}
+		replays++
+		err := p.run(values, func(in *fusion.Innovation, nu float64) {
+			s := by[in.SensorID]
+			if s == nil {
+				s = &seen{nu: nu}
+				by[in.SensorID] = s
+			}
+			s.nis = append(s.nis, in.Outcome.NIS)
+			s.dim = max(s.dim, in.Outcome.Dim)
+		})
+		if err != nil {
+			return replays, err
+		}
+		for _, i := range free {
+			l := p.levels[i]
+			if l.kind != levelCovScale {
+				continue
+			}
+			s := by[p.base.Sensors[l.Sensor].ID]
+			if s == nil || len(s.nis) < 20 {
+				continue
+			}
+			d := float64(s.dim)
+			want := distuv.ChiSquared{K: d}.Quantile(0.5)
+			if s.nu > 0 {
+				want = d * distuv.F{D1: d, D2: s.nu}.Quantile(0.5)
+			}
+			slices.Sort(s.nis)
+			values[i] *= s.nis[len(s.nis)/2] / want
+		}
+	}
+	return replays, nil
+}

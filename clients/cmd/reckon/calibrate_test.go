@@ -142,7 +142,7 @@ func TestCalibrateWorkedExample(t *testing.T) {
 	}
 
 	tuned := filepath.Join(dir, "cart-tuned.yaml")
-	out, errs, code = runCode(t, ctx, "", "tune", "-config", calPath, "-robot", "greenhouse-cart", "-out", tuned, "-truth", filepath.Join(demo, "truth.csv"), demo)
+	out, errs, code = runCode(t, ctx, "", "tune", "-journal", demo, "-robot", "greenhouse-cart", "-config", calPath, "-out", tuned, "-truth", filepath.Join(demo, "truth.csv"))
 	if code != 0 {
 		t.Fatalf("tune: exit %d: %s\n%s", code, errs, out)
 	}

@@ -26,7 +26,7 @@ import (
 )
 
 func runTune(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := newFlagSet("tune", "-config ROBOT.yaml [-truth TRUTH.csv] [-out NEW.yaml] [-report DIR] (FILE.jsonl | JOURNAL_DIR -robot NAME)", `
+	fs := newFlagSet("tune", "(-journal DIR -robot NAME [-config ROBOT.yaml] | -config ROBOT.yaml -samples FILE.jsonl) [-out NEW.yaml] [-model] [-truth TRUTH.csv] [-report DIR]", `
 Fits the noise levels of a robot configuration to a recorded run by
 maximising the likelihood of the run's innovations (the prediction-error
 decomposition): the run is replayed through the estimator under candidate
@@ -34,12 +34,20 @@ levels, on a log scale. It prints each level as configured and fitted with
 a 95% interval from the observed Fisher information, says which levels the
 run does not determine (those keep their configured values), and the mean
 NIS and whiteness of each sensor's innovations before and after; with
--truth, the NEES too. It writes the new configuration to -out and never
-overwrites the input. No ground truth is needed for the fit. With -report,
-the run is replayed under the configuration before and after into one HTML
-report with a calibration section at the top.`)
+-truth, the NEES. With -model it first chooses the form of the noise model
+by the run's likelihood (a Gauss-Markov part and Student-t tails for each
+white Gaussian sensor, body-step noise per second instead of per metre). It
+writes the new configuration to -out and never overwrites the input. No
+ground truth is needed for the fit. The run is named as for calibrate
+(-journal and -robot, or -samples); a journal's run is tuned from its own
+configuration unless -config names another. The older form, the run as the
+last argument (a JSON Lines file, or a journal directory with -robot), still
+works. With -report, the run is replayed under the configuration before and
+after into one HTML report with a calibration section at the top.`)
 	fs.SetOutput(stderr)
-	config := fs.String("config", "", "YAML robot configuration to start from")
+	dir := fs.String("journal", "", "journal directory (with -robot)")
+	samples := fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)")
+	config := fs.String("config", "", "YAML robot configuration to start from (for -samples; for a journal it replaces the journal's own)")
 	out := fs.String("out", "", "the new YAML configuration (default: ROBOT-tuned.yaml beside -config); refused if it exists, unless -force")
 	force := fs.Bool("force", false, "replace -out if it exists")
 	robot := fs.String("robot", "", "the robot, when the run is a journal directory")
@@ -51,18 +59,42 @@ report with a calibration section at the top.`)
 	if err != nil {
 		return err
 	}
+	named := 0
+	for _, v := range []string{*dir, *samples} {
+		if v != "" {
+			named++
+		}
+	}
 	switch {
-	case len(pos) != 1:
-		return usagef(fs, "needs one run (a JSON Lines file or a journal directory), got %d arguments", len(pos))
-	case *config == "":
-		return usagef(fs, "needs -config ROBOT.yaml")
+	case named+len(pos) != 1:
+		return usagef(fs, "name one run: -journal DIR -robot NAME, or -config ROBOT.yaml -samples FILE.jsonl (or the run as the last argument)")
 	case !(*maxSE > 0) || math.IsInf(*maxSE, 0):
 		return usagef(fs, "-max-se must be positive")
+	}
+	run := *samples
+	switch {
+	case *dir != "":
+		run = *dir
+	case len(pos) == 1:
+		run = pos[0]
+		if st, err := os.Stat(run); err == nil && st.IsDir() {
+			*dir = run
+		} else {
+			*samples = run
+		}
+	}
+	switch {
+	case *dir != "" && *robot == "":
+		return usagef(fs, "%s is a journal directory: name the robot with -robot", *dir)
+	case *samples != "" && *config == "":
+		return usagef(fs, "a samples file needs -config ROBOT.yaml")
+	case *config == "" && *out == "":
+		return usagef(fs, "a journal's own configuration needs -out NEW.yaml")
 	}
 	if *out == "" {
 		*out = strings.TrimSuffix(*config, filepath.Ext(*config)) + "-tuned.yaml"
 	}
-	if samePath(*config, *out) {
+	if *config != "" && samePath(*config, *out) {
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
 	}
 	if !*force {
@@ -70,15 +102,15 @@ report with a calibration section at the top.`)
 			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)
 		}
 	}
-	cfgProto, err := loadYAML(*config)
+	cfgName, cfgData, err := startConfig(*config, *dir, *robot)
 	if err != nil {
-		return fmt.Errorf("%w: %w", errRefused, err)
+		return err
 	}
-	cfg, err := convert.ConfigFromProto(cfgProto)
+	cfgProto, cfg, err := convert.LoadConfigYAML(cfgData)
 	if err != nil {
-		return fmt.Errorf("%s: %w: %w", *config, errRefused, err)
+		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
 	}
-	inputs, skipped, err := readRun(ctx, pos[0], *robot, cfgProto)
+	inputs, skipped, err := readRun(ctx, run, *robot, cfgProto)
 	if err != nil {
 		return err
 	}
@@ -90,21 +122,21 @@ report with a calibration section at the top.`)
 	}
 	fit, err := calib.FitNoise(cfg, inputs, calib.NoiseFitOptions{MaxStdErrLog: *maxSE, ChooseModel: *model})
 	if err != nil {
-		return fmt.Errorf("%s: %w: %w", pos[0], errRefused, err)
+		return fmt.Errorf("%s: %w: %w", run, errRefused, err)
 	}
-	printTune(stdout, pos[0], inputs, skipped, fit)
+	printTune(stdout, run, inputs, skipped, fit)
 	if truthPoses != nil {
 		if err := printNEES(stdout, cfg, fit.Config, inputs, truthPoses); err != nil {
 			return fmt.Errorf("%s: %w", *truth, err)
 		}
 	}
-	wrote, err := writeTunedConfig(*config, *out, filepath.Base(pos[0]), cfg, fit, stdout)
+	wrote, err := writeTunedConfig(cfgName, cfgData, *out, filepath.Base(run), cfg, fit, stdout)
 	if err != nil || *reportDir == "" {
 		return err
 	}
-	src := review.Source{Samples: pos[0], Config: cfgProto, Truth: *truth}
-	if st, err := os.Stat(pos[0]); err == nil && st.IsDir() {
-		src = review.Source{JournalDir: pos[0], Robot: *robot, Truth: *truth}
+	src := review.Source{Samples: *samples, Config: cfgProto, Truth: *truth}
+	if *dir != "" {
+		src = review.Source{JournalDir: *dir, Robot: *robot, Config: cfgProto, Truth: *truth}
 	}
 	cols, rows := levelTable(fit)
 	cal := review.Calibration{By: "reckon tune", Columns: cols, Rows: rows, Notes: []string{wrote}}
@@ -320,7 +352,7 @@ func printNEES(w io.Writer, before, after fusion.Config, inputs []calib.Recorded
 // levels fitted to out, each with a comment giving its standard error, and
 // a first comment line naming every change; it prints and returns the
 // line "wrote OUT: changes".
-func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseFit, stdout io.Writer) (string, error) {
+func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Config, fit *calib.NoiseFit, stdout io.Writer) (string, error) {
 	var edits []configEdit
 	var kept []string
 	def := fusion.DefaultNoise()
@@ -362,7 +394,7 @@ func writeTunedConfig(in, out, file string, cfg fusion.Config, fit *calib.NoiseF
 	if len(edits) == 0 {
 		return "", fmt.Errorf("%w: the run determines none of the noise levels; nothing written", errRefused)
 	}
-	changes, err := writeConfigEdits(in, out, edits, func(changes []string) string {
+	changes, err := editConfig(in, data, out, edits, func(changes []string) string {
 		note := fmt.Sprintf("reckon tune: %s; by maximum likelihood of the innovations of %s (prediction-error decomposition), standard errors from the observed Fisher information",
 			strings.Join(changes, ", "), file)
 		if len(kept) > 0 {

@@ -81,7 +81,7 @@ func TestTune(t *testing.T) {
 		t.Fatal(err)
 	}
 	ctx := context.Background()
-	stdout, stderr, code := runCode(t, ctx, "", "tune", "-config", config, "-truth", truth, samples)
+	stdout, stderr, code := runCode(t, ctx, "", "tune", "-config", config, "-samples", samples, "-truth", truth)
 	if code != 0 {
 		t.Fatalf("exit %d: %s", code, stderr)
 	}
@@ -116,7 +116,11 @@ func TestTune(t *testing.T) {
 		args []string
 		code int
 	}{
-		{"out exists", []string{"tune", "-config", config, samples}, exitRefused},
+		{"out exists", []string{"tune", "-config", config, "-samples", samples}, exitRefused},
+		{"out exists, the run as the last argument", []string{"tune", "-config", config, samples}, exitRefused},
+		{"two runs", []string{"tune", "-config", config, "-out", filepath.Join(dir, "z.yaml"), "-samples", samples, samples}, exitUsage},
+		{"samples without config", []string{"tune", "-out", filepath.Join(dir, "z.yaml"), "-samples", samples}, exitUsage},
+		{"journal without robot (flag)", []string{"tune", "-config", config, "-out", filepath.Join(dir, "y.yaml"), "-journal", dir}, exitUsage},
 		{"out is the input", []string{"tune", "-config", config, "-out", config, "-force", samples}, exitUsage},
 		{"journal without robot", []string{"tune", "-config", config, "-out", filepath.Join(dir, "y.yaml"), dir}, exitUsage},
 		{"no such run", []string{"tune", "-config", config, "-out", filepath.Join(dir, "x.yaml"), filepath.Join(dir, "none.jsonl")}, exitFailure},

@@ -4,13 +4,16 @@ import (
 	"bufio"
 	"context"
 	"fmt"
+	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 
 	"reckon.example/clients/review"
 	"reckon.example/fusion"
+	"reckon.example/fusion/calib"
 	"reckon.example/fusion/fusiontest"
 	"reckon.example/server/convert"
 )
@@ -144,13 +147,42 @@ const (
 // noise, which keeps the naive guess (0.44 of the truth), and the camera's
 // correlation time is held at 2 s (truth 2.5 s) because its composite
 // likelihood misplaces it ("Design: Noise by likelihood"). The test
-// asserts the coverage it reaches (0.80) and logs the goal.
+// asserts the coverage it reaches (0.80) and logs the goal. With
+// RECKON_REALDATA_SEEDS=n it runs n runs over the goal's ranges instead
+// (variedScenario).
 func TestRealDataGoal(t *testing.T) {
 	if testing.Short() {
 		t.Skip("a ten-minute run calibrated, tuned and reviewed")
 	}
+	n, _ := strconv.Atoi(os.Getenv("RECKON_REALDATA_SEEDS"))
+	if n <= 0 {
+		realDataGoal(t, realScenario(11, 600), 0.80) // not the goal's 0.90: see above
+		return
+	}
+	// The longer check: n runs whose scale biases, camera time constant
+	// and tails are drawn over the goal's ranges (variedScenario); each
+	// must reach the goal's RMS and 0.6 of the truth inside (seeds 1 to 3
+	// measured 0.77 / 0.78, 0.66 / 0.62 and 0.76 / 0.76).
+	for seed := uint64(1); seed <= uint64(n); seed++ {
+		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.6) })
+	}
+}
+
+// variedScenario is realScenario with the goal's ranges drawn from the
+// seed: the truth 0.86 to 0.97 of the commanded distance and 0.81 to 0.99
+// of the commanded turn, the camera's time constant 1 to 3 s, Student-t
+// tails of 3 to 5 degrees of freedom, 1% to 5% of fixes metres off.
+func variedScenario(seed uint64) fusiontest.Scenario {
+	r := rand.New(rand.NewPCG(seed, 0x7e57))
+	u := func(lo, hi float64) float64 { return lo + (hi-lo)*r.Float64() }
+	sc := realScenario(seed, 600)
+	sc.ForwardScale, sc.TurnScale = 1/u(0.86, 0.97)-1, 1/u(0.81, 0.99)-1
+	sc.CameraTauS, sc.CameraTailDOF, sc.OutlierFraction = u(1, 3), 3+r.IntN(3), u(0.01, 0.05)
+	return sc
+}
+
+func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 	dir := t.TempDir()
-	sc := realScenario(11, 600)
 	cfg, samples, truth := writeRecording(t, dir, sc, naiveConfig)
 	naive := score(t, dir, cfg, samples, truth)
 	t.Logf("naive: RMS %.3f / %.3f m, inside 95%%: %.3f / %.3f", naive.FilteredRMSM, naive.SmoothedRMSM, naive.FilteredInside95, naive.SmoothedInside95)
@@ -179,7 +211,6 @@ func TestRealDataGoal(t *testing.T) {
 	if got.FilteredRMSM > goalFilteredRMSM || got.SmoothedRMSM > goalSmoothedRMSM {
 		t.Errorf("tuned: RMS %.3f / %.3f m, goal %.2f / %.2f m", got.FilteredRMSM, got.SmoothedRMSM, goalFilteredRMSM, goalSmoothedRMSM)
 	}
-	const reached = 0.80 // not the goal's 0.90: see above
 	if got.FilteredInside95 < reached || got.SmoothedInside95 < reached {
 		t.Errorf("tuned: %.3f / %.3f of the truth inside the 95%% region, below %.2f", got.FilteredInside95, got.SmoothedInside95, reached)
 	}
@@ -198,5 +229,36 @@ func TestRealDataGoal(t *testing.T) {
 	if !tc.Calibration.Scale || cam.CorrelatedFraction == 0 || cam.Robust != fusion.RobustStudentT || tc.Noise.StepTurnVarRad2PerS == 0 {
 		t.Errorf("tuned model: scale states %v, camera correlated %g robust %v, step turn per second %g; want the scale states, a Gauss-Markov Student-t camera and step noise per second",
 			tc.Calibration.Scale, cam.CorrelatedFraction, cam.Robust, tc.Noise.StepTurnVarRad2PerS)
+	}
+}
+
+// BenchmarkCalibrateTune10Min is the calibration and the noise fit of
+// TestRealDataGoal's ten-minute run, as reckon calibrate and reckon tune
+// -model do them (calib.FitSystematic, then calib.FitNoise choosing the
+// model on the calibrated configuration), without the files: target 60 s
+// on one core (-cpu 1).
+func BenchmarkCalibrateTune10Min(b *testing.B) {
+	s := fusiontest.New(realScenario(11, 600))
+	cfg := naiveConfig(s)
+	var inputs []calib.RecordedInput
+	for {
+		in, ok := s.Next()
+		if !ok {
+			break
+		}
+		inputs = append(inputs, calib.RecordedInput{Odometry: in.Odometry, Heading: in.Heading, Fix: in.Fix})
+	}
+	odo, _, fixes := splitInputs(inputs)
+	b.ReportAllocs()
+	for b.Loop() {
+		sys, err := calib.FitSystematic(cfg, odo, fixes, calib.SystematicOptions{})
+		if err != nil {
+			b.Fatal(err)
+		}
+		fit, err := calib.FitNoise(sys.Config, inputs, calib.NoiseFitOptions{ChooseModel: true})
+		if err != nil {
+			b.Fatal(err)
+		}
+		b.ReportMetric(float64(fit.Replays), "replays")
 	}
 }

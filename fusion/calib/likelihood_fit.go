@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"slices"
+	"strings"
 
 	"gonum.org/v1/gonum/diff/fd"
 	"gonum.org/v1/gonum/mat"
@@ -232,6 +233,13 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 			fl.Fitted *= covFrom[fl.Sensor]
 		}
 		fl.Lo, fl.Hi = fl.Fitted*math.Exp(-1.96*fl.StdErrLog), fl.Fitted*math.Exp(1.96*fl.StdErrLog)
+	}
+	if opt.ChooseModel {
+		n, err := p.thinnedSteps(inputs, x, fit.Levels)
+		fit.Replays += n
+		if err != nil {
+			return nil, err
+		}
 	}
 	fit.Config, _ = p.config(x)
 	fit.Config.GateProbability = withDefaults(cfg).GateProbability
@@ -545,4 +553,63 @@ func stdErrs(h *mat.SymDense, keep []int) (se []float64, ok []bool) {
 		se[k] = math.Sqrt(se[k])
 	}
 	return se, ok
+}
+
+// thinGapS is the gap between the fixes that thinnedSteps keeps: long
+// enough for the body steps' spread to rival a camera's variance, and for
+// a camera's Gauss-Markov errors (1 to 3 s) to have mostly decorrelated.
+const thinGapS = 3.0
+
+// thinnedSteps fits the body-step noise levels the run did not determine
+// on the run thinned to one fix per thinGapS seconds of each sensor.
+// Between fixes 0.3 s apart a correlated camera's S carries its bias's
+// whole variance and the steps' noise is a few percent of it; over 3 s it
+// is comparable ("Design: Noise by likelihood"). The others are held at
+// values. A level the thinned run determines gets its value (x and
+// levels, with a note); the others stay as they were. It returns the
+// replays it took.
+func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []FittedLevel) (int, error) {
+	var idx []int
+	for i, l := range levels {
+		if !l.Identifiable && l.kind == levelNoise && strings.HasPrefix(l.Field, "noise.step_") {
+			idx = append(idx, i)
+		}
+	}
+	if len(idx) == 0 {
+		return 0, nil
+	}
+	last := map[string]int64{}
+	var thin []RecordedInput
+	for i, in := range inputs {
+		if p.skip[i] {
+			continue
+		}
+		if f := in.Fix; f != nil {
+			if t, ok := last[f.SensorID]; ok && f.StampNs-t < int64(thinGapS*1e9) {
+				continue
+			}
+			last[f.SensorID] = f.StampNs
+		}
+		thin = append(thin, in)
+	}
+	cfg, _ := p.config(x)
+	sub := make([]NoiseLevel, len(idx))
+	for k, i := range idx {
+		sub[k] = levels[i].NoiseLevel
+	}
+	fit, err := FitNoise(cfg, thin, NoiseFitOptions{Levels: sub})
+	if err != nil {
+		return 0, err
+	}
+	for k, i := range idx {
+		fl := fit.Levels[k]
+		if !fl.Identifiable {
+			continue
+		}
+		x[i] = fl.Fitted
+		l := &levels[i]
+		l.Identifiable, l.Fitted, l.StdErrLog, l.Lo, l.Hi = true, fl.Fitted, fl.StdErrLog, fl.Lo, fl.Hi
+		l.Note = fmt.Sprintf("determined on the run thinned to one fix per %.0f s", thinGapS)
+	}
+	return fit.Replays, nil
 }

@@ -163,7 +163,8 @@ func TestRealDataGoal(t *testing.T) {
 	// The longer check: n runs whose scale biases, camera time constant
 	// and tails are drawn over the goal's ranges (variedScenario); each
 	// must reach the goal's RMS and 0.6 of the truth inside (seeds 1 to 3
-	// measured 0.77 / 0.78, 0.66 / 0.62 and 0.76 / 0.76).
+	// measured 0.77 / 0.78, 0.66 / 0.62 and 0.76 / 0.76: the goal's 0.9
+	// is missed by more here than on the CI's seed).
 	for seed := uint64(1); seed <= uint64(n); seed++ {
 		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.6) })
 	}

@@ -94,13 +94,14 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 	var model []ModelChange
 	var skip []bool
 	var covFrom []float64 // per sensor, the chosen model's covariance over the configured one
+	orig := cfg
 	modelReplays := 0
 	if opt.ChooseModel {
 		if opt.Levels != nil {
 			panic("calib: ChooseModel with Levels given")
 		}
 		var err error
-		orig := withDefaults(cfg)
+		orig = withDefaults(cfg)
 		if cfg, model, skip, modelReplays, err = chooseModel(cfg, inputs); err != nil {
 			return nil, err
 		}
@@ -240,11 +241,25 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		if err != nil {
 			return nil, err
 		}
+		// A covariance the fit does not determine keeps its configured
+		// value, not the chosen model's profiled one.
+		for i, l := range fit.Levels {
+			if l.kind == levelCovScale && !l.Identifiable {
+				x[i] = 1 / covFrom[l.Sensor]
+			}
+		}
 	}
 	fit.Config, _ = p.config(x)
 	fit.Config.GateProbability = withDefaults(cfg).GateProbability
 	var n int
-	if fit.Before, fit.LogLikBefore, n, err = p.checks(x0); err != nil {
+	before, bx := p, x0
+	if opt.ChooseModel {
+		// Before is the configuration as given, over the same fixes.
+		before = newReplayer(orig, inputs, nil)
+		copy(before.skip, p.skip)
+		bx = nil
+	}
+	if fit.Before, fit.LogLikBefore, n, err = before.checks(bx); err != nil {
 		return nil, err
 	}
 	if fit.After, fit.LogLikAfter, _, err = p.checks(x); err != nil {

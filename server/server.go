@@ -166,10 +166,11 @@ func New(opt Options) (*Server, error) {
 	}
 	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
 	if opt.JournalDir != "" && opt.FS == nil {
+		// Without it (a directory that cannot be opened for reading),
+		// each journal syncs by itself as elsewhere.
 		whole, err := journal.OpenWholeSync(opt.JournalDir)
 		if err != nil {
-			unlock()
-			return nil, fmt.Errorf("journal directory: %w", err)
+			s.log.Warn("journal directory not opened for syncfs; each journal syncs by itself", "err", err)
 		}
 		s.whole = whole
 	}

@@ -125,13 +125,15 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 }
 
 // trackItem is what the report's forward pass needs of a step: its
-// filtered and smoothed states and, with a truth file, the truth at its
-// stamp and the pose NEES of both states against it.
+// filtered state, the export row of its smoothed state and, with a truth
+// file, the truth at its stamp and the pose NEES of both states against
+// it.
 type trackItem struct {
 	stampNs    int64
 	start      bool
 	post       estimator.State
-	smoothed   estimator.State
+	smoothed   trackRow
+	smoothCov  [9]float64
 	truth      estimator.Pose
 	truthGapNs int64
 	haveTruth  bool
@@ -140,7 +142,7 @@ type trackItem struct {
 
 // prefetchTrack reads the filtered and the smoothed states forwards, and
 // the truth (if not nil), ahead of the report's pass.
-func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefetch[trackItem] {
+func prefetchTrack(steps *stepStore, sm *smoothedRows, truth *truthReader) *prefetch[trackItem] {
 	rd := steps.reader()
 	return startPrefetch(steps.Len(), false, func(lo int, dst []trackItem) error {
 		for j := range dst {
@@ -149,7 +151,7 @@ func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefet
 			if it.stampNs, it.start, err = rd.readPost(lo+j, &it.post); err != nil {
 				return err
 			}
-			if err := sm.get(lo+j, &it.smoothed); err != nil {
+			if err := sm.row(lo+j, &it.smoothed, &it.smoothCov); err != nil {
 				return err
 			}
 			it.haveTruth = false
@@ -157,7 +159,8 @@ func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefet
 				it.truth, it.truthGapNs, it.haveTruth = truth.at(it.stampNs)
 			}
 			if it.haveTruth {
-				it.nees = [2]float64{nees3(&it.post, it.truth), nees3(&it.smoothed, it.truth)}
+				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}
+				it.nees = [2]float64{nees3(&it.post, it.truth), neesOf(sp, &it.smoothCov, it.truth)}
 			}
 		}
 		return nil

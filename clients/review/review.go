@@ -313,21 +313,32 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 
 // smoothAndTrack smooths the steps and walks both tracks forwards.
 func smoothAndTrack(a *accumulator, steps *stepStore, truth, outDir string, opt Options) error {
-	smoothed, err := smooth(steps, opt.TempDir)
+	every := thinEvery(steps.Len(), opt.MaxPoints)
+	smoothed, err := smooth(steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
 	if err != nil {
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(steps, smoothed, truth, outDir, opt.MaxPoints)
+	return a.tracks(steps, smoothed, truth, outDir, every)
 }
 
-// smooth runs the smoother over the steps into a state store of its own.
-func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
-	k := 0
+// thinEvery returns the stride of the tracks' points drawn: every
+// every-th step of n, and the last, for about maxPoints.
+func thinEvery(n, maxPoints int) int { return max(1, (n+maxPoints-1)/maxPoints) }
+
+// rowBudget is the memory the smoothed rows may take (smoothedRows): by
+// the time the smoother runs, the journal's segment and the steps kept in
+// memory during the replay are garbage.
+func rowBudget(memoryBytes int64) int64 { return 3 * memoryBytes }
+
+// smooth runs the smoother over the steps into a store of its own, which
+// keeps whole the states at every every-th step.
+func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothedRows, error) {
+	k := estimator.MaxStates
 	if steps.onDisk() {
 		k = steps.file.k
 	}
-	smoothed, err := newStateStore(tempDir, steps.Len(), k, steps.onDisk())
+	smoothed, err := newSmoothedRows(tempDir, steps.Len(), k, every, budget)
 	if err != nil {
 		return nil, err
 	}
@@ -917,7 +928,13 @@ func Label(src Source) string {
 func nees3(s *estimator.State, tr estimator.Pose) float64 {
 	var c [9]float64
 	s.PoseCovarianceInto(&c)
-	q, err := estimator.PoseNEES(s.Pose(), &c, tr)
+	return neesOf(s.Pose(), &c, tr)
+}
+
+// neesOf is the pose NEES of a pose with covariance c (row-major) against
+// the truth, NaN if c is not positive definite.
+func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
+	q, err := estimator.PoseNEES(p, c, tr)
 	if err != nil {
 		return math.NaN()
 	}
@@ -927,7 +944,7 @@ func nees3(s *estimator.State, tr estimator.Pose) float64 {
 // tracks walks the steps and smoothed states forwards: the CSV exports, the
 // decimated series, the distance, the uncertainty figures and, with a truth
 // file, the errors.
-func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir string, maxPoints int) error {
+func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outDir string, every int) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
@@ -944,7 +961,6 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		truth = tr
 	}
 	n := steps.Len()
-	every := max(1, (n+maxPoints-1)/maxPoints)
 	pf := prefetchTrack(steps, sm, truth)
 	defer pf.close()
 	var fSq, sSq, fNees, sNees float64
@@ -956,7 +972,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		if err != nil {
 			return err
 		}
-		p, smoothed, stamp := &it.post, &it.smoothed, it.stampNs
+		p, srow, stamp := &it.post, &it.smoothed, it.stampNs
 		if i > 0 && !it.start {
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
@@ -968,7 +984,8 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
-		rows.add(stamp, smoothed)
+		srow.stampNs = stamp
+		rows.addRow(srow)
 		tp, haveTruth := it.truth, it.haveTruth
 		if truth != nil {
 			sum.TruthSteps++
@@ -979,7 +996,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		}
 		if haveTruth {
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
-			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
+			sSq += sq(srow.v[0]-tp.X) + sq(srow.v[1]-tp.Y)
 			nTruth++
 			if fn, sn := it.nees[0], it.nees[1]; !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
@@ -991,7 +1008,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		}
 		if i%every == 0 || i == n-1 {
 			run.Filtered = append(run.Filtered, Point{stamp, *p})
-			run.Smoothed = append(run.Smoothed, Point{stamp, *smoothed})
+			run.Smoothed = append(run.Smoothed, Point{stamp, *sm.state(i)})
 			if truth != nil {
 				if !haveTruth {
 					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}

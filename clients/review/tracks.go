@@ -140,8 +140,8 @@ func newRowWriter(path string) *rowWriter {
 	return rw
 }
 
-func (rw *rowWriter) add(stamp int64, s *estimator.State) {
-	if rw.batch = append(rw.batch, rowOf(stamp, s)); len(rw.batch) == rowBatch {
+func (rw *rowWriter) addRow(r *trackRow) {
+	if rw.batch = append(rw.batch, *r); len(rw.batch) == rowBatch {
 		rw.full <- rw.batch
 		select {
 		case rw.batch = <-rw.free:

@@ -51,19 +51,33 @@ func TestTruthInterpolation(t *testing.T) {
 }
 
 // TestLogHistogramMedian: the bounded median is within half a bin (0.05%)
-// of the exact one, for chi-square-like values over several decades.
+// of the exact one, for chi-square-like values over several decades, and
+// for values outside the bins counted in an array (below 6e-15, above
+// 1.6e14) or across them, with zeros or not, wherever the median falls.
 func TestLogHistogramMedian(t *testing.T) {
 	rng := rand.New(rand.NewPCG(79, 79))
-	for _, n := range []int{1, 2, 101, 10000} {
+	for _, c := range []struct {
+		n      int
+		lo, hi float64 // uniform log range; 0, 0 for chi-square-like values
+		zeros  bool
+	}{{1, 0, 0, false}, {2, 0, 0, false}, {101, 0, 0, false}, {10000, 0, 0, false},
+		{1001, -200, -40, false}, {1001, 40, 200, false}, {1001, -60, 60, false},
+		{1001, -200, 200, true}, {3, -60, 60, true}, {10000, 33, 40, true}} {
 		var h logHistogram
-		v := make([]float64, n)
+		v := make([]float64, c.n)
 		for i := range v {
-			v[i] = math.Exp(3 * rng.NormFloat64())
+			v[i] = math.Exp(c.lo + (c.hi-c.lo)*rng.Float64())
+			if c.lo == c.hi {
+				v[i] = math.Exp(3 * rng.NormFloat64())
+			}
+			if c.zeros && i%3 == 0 {
+				v[i] = 0
+			}
 			h.add(v[i])
 		}
 		sort.Float64s(v)
-		if got, want := h.median(), v[n/2]; math.Abs(got-want) > 5e-4*want {
-			t.Errorf("%d values: median %g, exact %g", n, got, want)
+		if got, want := h.median(), v[c.n/2]; math.Abs(got-want) > 5e-4*want {
+			t.Errorf("%+v: median %g, exact %g", c, got, want)
 		}
 	}
 }

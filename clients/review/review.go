@@ -56,12 +56,18 @@ type Options struct {
 	Progress func(inputs int)
 	// MaxPoints bounds each plotted series (4000).
 	MaxPoints int
-	// MemoryBytes bounds the steps and smoothed states kept in memory
-	// (32 MiB, about 50,000 steps: 45 s at 200 Hz with its IMU and fixes);
-	// past it they go to files in TempDir (compact records), which the
-	// smoother and the report's pass read in chunks. The journal's reader holds a segment (up to
-	// 64 MiB) besides, and the collector lets the heap grow to about twice
-	// what is live: 32 MiB keeps an hour's review under 256 MiB.
+	// MemoryBytes bounds the steps kept in memory during the replay
+	// (32 MiB, about 6,800 steps: 23 s of a cart with 200 Hz odometry, its
+	// IMU and fixes, which makes 300 steps a second);
+	// past it they go to a file in TempDir (compact records), which the
+	// smoother and the report's pass read in chunks. The journal's reader
+	// holds a segment (up to 64 MiB) besides, and the collector lets the
+	// heap grow to about twice what is live: 32 MiB keeps an hour's review
+	// under 256 MiB. The smoothed states, of which the review keeps the
+	// numbers of their export rows (96 bytes a step), stay in memory up to
+	// four times MemoryBytes (1.4 million steps, 78 minutes of that cart;
+	// the replay's memory is given back first), and go to a file in TempDir
+	// past it.
 	MemoryBytes int64
 	// FromNs and ToNs limit the review to a stretch of the run, in
 	// nanoseconds from the run's start (the stamp of its first input). The
@@ -328,8 +334,9 @@ func thinEvery(n, maxPoints int) int { return max(1, (n+maxPoints-1)/maxPoints) 
 
 // rowBudget is the memory the smoothed rows may take (smoothedRows): by
 // the time the smoother runs, the journal's segment and the steps kept in
-// memory during the replay are garbage.
-func rowBudget(memoryBytes int64) int64 { return 3 * memoryBytes }
+// memory during the replay are garbage, and the rows are kept outside the
+// heap, so that they cost their size once.
+func rowBudget(memoryBytes int64) int64 { return 4 * memoryBytes }
 
 // smooth runs the smoother over the steps into a store of its own, which
 // keeps whole the states at every every-th step.

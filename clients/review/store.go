@@ -8,6 +8,7 @@ import (
 	"math/bits"
 	"os"
 	"reflect"
+	"runtime/debug"
 
 	"reckon.example/estimator"
 	"reckon.example/fusion"
@@ -586,6 +587,7 @@ const rowBytes = 12 * 8
 type smoothedRows struct {
 	n      int
 	v      []float64 // 12 numbers a state (trackRow.v), in memory
+	free   func()    // gives v back
 	offset []uint64  // bit i: state i has the IMU offset (trackRow.offset)
 	lower  map[int][3]float64
 	file   *stateFile
@@ -602,9 +604,15 @@ type smoothedRows struct {
 func newSmoothedRows(dir string, n, k, every int, budget int64) (*smoothedRows, error) {
 	sr := &smoothedRows{n: n, every: every, kept: map[int]*estimator.State{}, lower: map[int][3]float64{}}
 	if int64(n)*rowBytes <= budget {
-		sr.v = make([]float64, 12*n)
+		// The heap the replay leaves (the journal's segment, the steps
+		// kept in memory until they spilled) goes back to the system
+		// first, so that the rows come on top of what is live, not of
+		// what the collector kept.
+		debug.FreeOSMemory()
+		var err error
+		sr.v, sr.free, err = allocRows(12 * n)
 		sr.offset = make([]uint64, (n+63)/64)
-		return sr, nil
+		return sr, err
 	}
 	f, err := newStateFile(dir, k)
 	sr.file = f
@@ -687,6 +695,10 @@ func (sr *smoothedRows) row(i int, r *trackRow, cov *[9]float64) error {
 func (sr *smoothedRows) state(i int) *estimator.State { return sr.kept[i] }
 
 func (sr *smoothedRows) close() error {
+	if sr.free != nil {
+		sr.free()
+		sr.v, sr.free = nil, nil
+	}
 	if sr.file != nil {
 		sr.file.flush()
 		return sr.file.f.Close()

@@ -1,5 +1,3 @@
-//go:build unix
-
 package review
 
 import (
@@ -11,7 +9,9 @@ import (
 // mapping), and the function that gives them back. The smoothed rows of an
 // hour take about 100 MB: on the heap, the collector would let the heap
 // grow to twice that before collecting, past the review's memory bound;
-// outside it they cost their size and no more.
+// outside it they cost their size and no more. Huge pages where the
+// system gives them on request: faulting in 100 MB a page of 4 kB at a time
+// cost 0.4 s of CPU, as much as writing the rows to a file.
 func allocRows(n int) ([]float64, func(), error) {
 	if n == 0 {
 		return nil, func() {}, nil
@@ -20,5 +20,6 @@ func allocRows(n int) ([]float64, func(), error) {
 	if err != nil {
 		return nil, nil, err
 	}
+	syscall.Madvise(b, syscall.MADV_HUGEPAGE) // a hint: without it, small pages
 	return unsafe.Slice((*float64)(unsafe.Pointer(&b[0])), n), func() { syscall.Munmap(b) }, nil
 }

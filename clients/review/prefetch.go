@@ -7,6 +7,42 @@ import (
 	"reckon.example/fusion"
 )
 
+// batchPool hands out at most max slices of capacity size, made as they
+// are first needed, to one goroutine (get) and takes them back from any
+// (put). When all are out, get waits for one: the goroutines that pass
+// batches back and forth reuse a fixed few instead of making a new one
+// (a megabyte, cleared) whenever the other side is behind.
+type batchPool[T any] struct {
+	free            chan []T
+	made, max, size int
+}
+
+func newBatchPool[T any](max, size int) *batchPool[T] {
+	return &batchPool[T]{free: make(chan []T, max), max: max, size: size}
+}
+
+// get returns an empty slice, or nil and false if stop is closed first.
+func (bp *batchPool[T]) get(stop <-chan struct{}) ([]T, bool) {
+	select {
+	case b := <-bp.free:
+		return b[:0], true
+	default:
+	}
+	if bp.made < bp.max {
+		bp.made++
+		return make([]T, 0, bp.size), true
+	}
+	select {
+	case b := <-bp.free:
+		return b[:0], true
+	case <-stop:
+		return nil, false
+	}
+}
+
+// put gives b back; it never waits.
+func (bp *batchPool[T]) put(b []T) { bp.free <- b[:0] }
+
 // prefetch reads a store's records in a goroutine of its own, in runs of
 // prefetchLen, ahead of a reader that walks them in order (forwards, or
 // last first): decoding the steps then takes the other core while the
@@ -14,7 +50,7 @@ import (
 type prefetch[T any] struct {
 	n, step int // records; +1 forwards, -1 backwards
 	runs    chan prefetchRun[T]
-	free    chan []T
+	pool    *batchPool[T]
 	stop    chan struct{}
 	cur     prefetchRun[T]
 	have    bool
@@ -31,7 +67,8 @@ const prefetchLen = 256
 // startPrefetch reads records 0 to n-1 (n-1 to 0 with backwards) with
 // fill, which sets dst[j] to record lo+j.
 func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) error) *prefetch[T] {
-	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), free: make(chan []T, 3), stop: make(chan struct{})}
+	// Four runs at most: two sent, one read, one being filled.
+	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), pool: newBatchPool[T](4, prefetchLen), stop: make(chan struct{})}
 	if backwards {
 		p.step = -1
 	}
@@ -46,11 +83,9 @@ func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) erro
 			if backwards {
 				hi = n - r*prefetchLen
 			}
-			var items []T
-			select {
-			case items = <-p.free:
-			default:
-				items = make([]T, prefetchLen)
+			items, ok := p.pool.get(p.stop)
+			if !ok {
+				return
 			}
 			err := fill(lo, items[:hi-lo])
 			select {
@@ -75,10 +110,7 @@ func (p *prefetch[T]) at(i int) (*T, error) {
 			if (p.step > 0 && i < p.cur.lo) || (p.step < 0 && i >= p.cur.lo+len(p.cur.items)) {
 				panic(fmt.Sprintf("review: record %d read out of order", i))
 			}
-			select {
-			case p.free <- p.cur.items[:cap(p.cur.items)]:
-			default:
-			}
+			p.pool.put(p.cur.items)
 		}
 		r, ok := <-p.runs
 		if !ok {

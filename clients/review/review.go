@@ -290,7 +290,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: make([]fusion.Step, 0, stepBatch), want: max(src.Run, 1)}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: fw.batch(), want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		fw.close()
@@ -369,18 +369,20 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 // for reuse, so that an hour's 720,000 steps of 3.7 kB cost no garbage.
 type stepWriter struct {
 	full    chan []fusion.Step
-	free    chan []fusion.Step
+	pool    *batchPool[fusion.Step]
 	written chan error
 	closed  bool
 	err     error
 }
 
 // stepBatch is the number of steps handed over at once (0.9 MB at 12
-// states).
+// states); a batch has room for a quarter more, since an input may hand out
+// several steps when the batch is nearly full.
 const stepBatch = 256
 
 func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
-	fw := &stepWriter{full: make(chan []fusion.Step, 2), free: make(chan []fusion.Step, 3), written: make(chan error, 1)}
+	// Four batches at most: one being filled, two sent, one being written.
+	fw := &stepWriter{full: make(chan []fusion.Step, 2), pool: newBatchPool[fusion.Step](4, stepBatch+stepBatch/4), written: make(chan error, 1)}
 	go func() {
 		tw, err := newTrackWriter(trackPath)
 		for b := range fw.full {
@@ -392,10 +394,7 @@ func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 					err = tw.add(b[i].StampNs, &b[i].Post)
 				}
 			}
-			select {
-			case fw.free <- b[:0]:
-			default:
-			}
+			fw.pool.put(b)
 		}
 		if err == nil {
 			err = steps.flush()
@@ -411,12 +410,14 @@ func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 // hand gives the writer a batch and returns an empty one.
 func (fw *stepWriter) hand(b []fusion.Step) []fusion.Step {
 	fw.full <- b
-	select {
-	case b = <-fw.free:
-		return b
-	default:
-		return make([]fusion.Step, 0, stepBatch)
-	}
+	b, _ = fw.pool.get(nil)
+	return b
+}
+
+// batch returns the first batch to fill.
+func (fw *stepWriter) batch() []fusion.Step {
+	b, _ := fw.pool.get(nil)
+	return b
 }
 
 // close waits for the writer to finish and returns its error; it may be

@@ -8,6 +8,7 @@ package review
 
 import (
 	"bufio"
+	"bytes"
 	"encoding/csv"
 	"errors"
 	"fmt"
@@ -180,9 +181,14 @@ type Run struct {
 }
 
 // truthReader reads a truth CSV forwards and interpolates it to stamps
-// in increasing order.
+// in increasing order. Lines without a quote or a carriage return (but for
+// one before the newline) are split at their commas as encoding/csv would
+// split them, at a third of its cost; at the first other line, the rest of
+// the file is read with encoding/csv.
 type truthReader struct {
-	r                  *csv.Reader
+	br                 *bufio.Reader
+	r                  *csv.Reader // from the first line that needs it on
+	fields             [][]byte
 	prev, next         truthRow
 	havePrev, haveNext bool
 }
@@ -197,15 +203,64 @@ func openTruth(path string) (*truthReader, *os.File, error) {
 	if err != nil {
 		return nil, nil, err
 	}
-	return newTruthReader(bufio.NewReader(f)), f, nil
+	return newTruthReader(f), f, nil
 }
 
 func newTruthReader(r io.Reader) *truthReader {
-	tr := &truthReader{r: csv.NewReader(r)}
-	tr.r.ReuseRecord = true
-	tr.r.FieldsPerRecord = -1
+	tr := &truthReader{br: bufio.NewReaderSize(r, 64<<10)}
 	tr.advance()
 	return tr
+}
+
+// record returns the next record's fields, as encoding/csv (fields may
+// vary in number) would give them, or false at the end or at an error.
+func (t *truthReader) record() ([][]byte, bool) {
+	for t.r == nil {
+		line, err := t.br.ReadSlice('\n')
+		if err == bufio.ErrBufferFull {
+			// A line longer than the buffer: encoding/csv from here.
+			t.useCSV(line)
+			break
+		}
+		if err != nil && len(line) == 0 {
+			return nil, false
+		}
+		body := bytes.TrimSuffix(line, []byte{'\n'})
+		body = bytes.TrimSuffix(body, []byte{'\r'})
+		if bytes.IndexByte(body, '"') >= 0 || bytes.IndexByte(body, '\r') >= 0 {
+			t.useCSV(line)
+			break
+		}
+		if len(body) == 0 {
+			continue // encoding/csv skips empty lines
+		}
+		t.fields = t.fields[:0]
+		for {
+			i := bytes.IndexByte(body, ',')
+			if i < 0 {
+				break
+			}
+			t.fields = append(t.fields, body[:i])
+			body = body[i+1:]
+		}
+		return append(t.fields, body), true
+	}
+	rec, err := t.r.Read()
+	if err != nil {
+		return nil, false
+	}
+	t.fields = t.fields[:0]
+	for _, f := range rec {
+		t.fields = append(t.fields, []byte(f))
+	}
+	return t.fields, true
+}
+
+// useCSV reads the rest of the file, from line on, with encoding/csv.
+func (t *truthReader) useCSV(line []byte) {
+	t.r = csv.NewReader(io.MultiReader(bytes.NewReader(bytes.Clone(line)), t.br))
+	t.r.ReuseRecord = true
+	t.r.FieldsPerRecord = -1
 }
 
 // advance moves next to prev and reads the next row.
@@ -215,20 +270,20 @@ func (t *truthReader) advance() {
 	}
 	t.haveNext = false
 	for {
-		rec, err := t.r.Read()
-		if err != nil {
+		rec, ok := t.record()
+		if !ok {
 			return
 		}
 		if len(rec) < 4 {
 			continue
 		}
-		stamp, err := strconv.ParseInt(rec[0], 10, 64)
+		stamp, err := strconv.ParseInt(string(rec[0]), 10, 64)
 		if err != nil {
 			continue // the header
 		}
-		x, _ := strconv.ParseFloat(rec[1], 64)
-		y, _ := strconv.ParseFloat(rec[2], 64)
-		h, _ := strconv.ParseFloat(rec[3], 64)
+		x, _ := strconv.ParseFloat(string(rec[1]), 64)
+		y, _ := strconv.ParseFloat(string(rec[2]), 64)
+		h, _ := strconv.ParseFloat(string(rec[3]), 64)
 		t.next, t.haveNext = truthRow{stamp, estimator.Pose{X: x, Y: y, Heading: h}}, true
 		return
 	}

@@ -1040,10 +1040,11 @@ func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outD
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
-		if r95 := p.Position95(); r95 > sum.Max95M {
+		r95 := p.Position95()
+		if r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, stamp
 		}
-		sum.Final95M = p.Position95()
+		sum.Final95M = r95
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs

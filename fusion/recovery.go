@@ -20,9 +20,15 @@ type candidate struct {
 	// meas is a landmark fix's measurement; Kind 0 for a pose fix.
 	meas estimator.Measurement
 	// rel is the robot's motion from fixStamp to stamp in the body frame at
-	// fixStamp, as the window's odometry has it, with covariance relCov.
-	rel    estimator.Pose
-	relCov [9]float64
+	// fixStamp, as the window's odometry has it, with covariance relCov:
+	// relW from the steps' white noise, plus relD C relD^T from the
+	// calibration's prior covariance C, relD being d(rel)/d(s_f, s_t, b_r).
+	// The two parts are kept apart because candidates share them unlike:
+	// the white noise only over the stretch their motions have in common,
+	// the calibration error over the whole of both (relocate).
+	rel        estimator.Pose
+	relCov     [9]float64
+	relW, relD [9]float64
 	// keepOffset: the IMU offset was initialised at the fix.
 	keepOffset bool
 }
@@ -48,10 +54,11 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	}
 	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady}
 	meas := e.meas
-	r.foldBias(&meas)
 	if landmark {
+		// Folded at each relocation, at the newest bias (relocate).
 		c.meas = meas
 	} else {
+		r.foldBias(&meas)
 		sensor := estimator.Pose{X: meas.Z[0], Y: meas.Z[1], Heading: meas.Z[2]}
 		c.implied = estimator.Detach(sensor, meas.Mount)
 		c.cov = detachCov(c.implied, meas.Mount, &meas.R)
@@ -162,13 +169,43 @@ func (r *Robot) carry(c *candidate, to int64) bool {
 	if c.stamp == to {
 		return true
 	}
-	m, mc, ok := r.relativeMotion(c.stamp, to)
+	m, mw, md, ok := r.relativeMotion(c.stamp, to)
 	if !ok {
 		return false
 	}
-	c.rel, c.relCov = composeCov(c.rel, &c.relCov, m, &mc)
+	ja, jb := composeJacobians(c.rel, m)
+	var x, y [9]float64
+	estimator.Sandwich(&x, &ja, &c.relW)
+	estimator.Sandwich(&y, &jb, &mw)
+	for k := range x {
+		c.relW[k] = x[k] + y[k]
+	}
+	// The calibration is one for the whole window: its Jacobians add.
+	mul3(&x, &ja, &c.relD)
+	mul3(&y, &jb, &md)
+	for k := range x {
+		c.relD[k] = x[k] + y[k]
+	}
+	c.rel = estimator.Compose(c.rel, m)
+	c.relCov = r.motionCov(&c.relW, &c.relD)
 	c.stamp = to
 	return true
+}
+
+// motionCov returns a relative motion's covariance from its white part w
+// and its Jacobian d in the calibration: w + d C d^T, C the calibration's
+// prior covariance.
+func (r *Robot) motionCov(w, d *[9]float64) [9]float64 {
+	cal := r.priorCalibration()
+	out := *w
+	if cal.on {
+		var c [9]float64
+		estimator.Sandwich(&c, d, &cal.cov)
+		for k := range out {
+			out[k] += c[k]
+		}
+	}
+	return out
 }
 
 // relativeMotion composes the window's odometry over [ta, tb] into the
@@ -177,19 +214,19 @@ func (r *Robot) carry(c *candidate, to int64) bool {
 // prediction"): C' = Fx C Fx^T + Fu Cu Fu^T, plus the heading random walk.
 // Being a motion in the body frame, it does not depend on the field frame.
 // With calibration states each step is the calibrated one, (s_f a, s_f b,
-// s_t dth + b_r dt) at the calibration's prior (priorCalibration), and its
-// uncertainty joins the covariance through the motion's
-// Jacobian in it (J C_cal J^T, accumulated as dRel' = Fx dRel + Fu dStep).
-// ok is false when ta is before the window.
-func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov [9]float64, ok bool) {
+// s_t dth + b_r dt) at the calibration's prior (priorCalibration), and the
+// motion's Jacobian in the calibration is jc (accumulated as dRel' = Fx dRel
+// + Fu dStep; zero without calibration states), so that the motion's whole
+// covariance is cov + jc C_cal jc^T (motionCov). ok is false when ta is
+// before the window.
+func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov, jc [9]float64, ok bool) {
 	if ta < r.baseT || tb > r.newest || tb < ta {
-		return rel, cov, false
+		return rel, cov, jc, false
 	}
 	live := r.live()
 	first := r.locate(ta)
 	cal := r.priorCalibration()
 	// jc is d(rel)/d(s_f, s_t, b_r), 3x3 row-major.
-	var jc [9]float64
 	for i := first; i < len(live) && live[i].t0 < tb; i++ {
 		e := &live[i]
 		lo, hi := max(e.t0, ta), min(e.t1, tb)
@@ -225,14 +262,7 @@ func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov [9]float64
 		cov[8] += r.cfg.Noise.HeadingVarRad2PerS * dtS
 		rel = estimator.Advance(rel, step)
 	}
-	if cal.on {
-		var c [9]float64
-		estimator.Sandwich(&c, &jc, &cal.cov)
-		for k := range cov {
-			cov[k] += c[k]
-		}
-	}
-	return rel, cov, true
+	return rel, cov, jc, true
 }
 
 // calibration is the odometry calibration of the estimate at one point of
@@ -297,9 +327,7 @@ func mul3(dst, a, b *[9]float64) {
 // independent a and b, with Ja = [1 0 -(sa bx + ca by); 0 1 ca bx - sa by;
 // 0 0 1] and Jb = blockdiag(R(a.Heading), 1), the Jacobians of Compose.
 func composeCov(a estimator.Pose, ca *[9]float64, b estimator.Pose, cb *[9]float64) (estimator.Pose, [9]float64) {
-	s, c := math.Sincos(a.Heading)
-	ja := [9]float64{1, 0, -(s*b.X + c*b.Y), 0, 1, c*b.X - s*b.Y, 0, 0, 1}
-	jb := [9]float64{c, -s, 0, s, c, 0, 0, 0, 1}
+	ja, jb := composeJacobians(a, b)
 	var x, y, out [9]float64
 	estimator.Sandwich(&x, &ja, ca)
 	estimator.Sandwich(&y, &jb, cb)
@@ -307,6 +335,14 @@ func composeCov(a estimator.Pose, ca *[9]float64, b estimator.Pose, cb *[9]float
 		out[k] = x[k] + y[k]
 	}
 	return estimator.Compose(a, b), out
+}
+
+// composeJacobians returns the Jacobians of Compose(a, b) in a and in b:
+// Ja = [1 0 -(sa bx + ca by); 0 1 ca bx - sa by; 0 0 1] and Jb =
+// blockdiag(R(a.Heading), 1).
+func composeJacobians(a, b estimator.Pose) (ja, jb [9]float64) {
+	s, c := math.Sincos(a.Heading)
+	return [9]float64{1, 0, -(s*b.X + c*b.Y), 0, 1, c*b.X - s*b.Y, 0, 0, 1}, [9]float64{c, -s, 0, s, c, 0, 0, 0, 1}
 }
 
 // posesAgree reports whether the last recovery.count pose candidates agree

@@ -56,17 +56,33 @@ type relocation struct {
 // it, so one landmark, however many stamps, leaves the heading free; (2)
 // agrees with every fix: the weighted residual sum is at most the
 // chi-square quantile at recovery.agree_probability for its dimension less
-// 3; (3) is well conditioned: its covariance, the inverse of J^T W J, is
+// 3, weighted by the joint covariance of all the residuals (refineJoint);
+// (3) is well conditioned: its covariance, the inverse of J^T W J, is
 // positive definite and would be trusted (95% radius and heading standard
 // deviation within the trust limits).
 func (r *Robot) relocate() (estimator.Pose, [9]float64, string, bool) {
 	n := len(r.cands)
+	st := r.f.State()
+	// Each candidate a measurement of the pose alone, the bias of a
+	// correlated sensor folded into its R (foldBias) at the estimate's
+	// newest bias; bias keeps the states folded, for the cross terms.
+	folded := make([]candidate, n)
+	bias := make([][3]int, n)
+	for i := range r.cands {
+		folded[i] = r.cands[i]
+		bias[i] = folded[i].meas.Bias
+		r.foldBias(&folded[i].meas)
+	}
 	for k := n; k >= r.cfg.Recovery.Count; k = min(k-1, k*2/3) {
-		set := r.cands[n-k:]
+		set := folded[n-k:]
 		if distinctLandmarks(set) < 2 {
 			continue
 		}
 		sol := r.solvePose(set)
+		if !sol.ok {
+			continue
+		}
+		sol = r.refineJoint(set, bias[n-k:], &st, sol.pose)
 		if !sol.ok || sol.dim <= 3 {
 			continue
 		}
@@ -252,4 +268,154 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 func inversePose(p estimator.Pose) estimator.Pose {
 	s, c := math.Sincos(p.Heading)
 	return estimator.Pose{X: -(c*p.X + s*p.Y), Y: -(-s*p.X + c*p.Y), Heading: -p.Heading}
+}
+
+// refineJoint runs Gauss-Newton from x0 (solvePose's solution, found with
+// each fix weighted alone) with the joint covariance of all the candidates'
+// residuals, and returns its solution (generalised least squares; Nocedal
+// and Wright, sec. 10.3, with the residuals whitened by the Cholesky
+// factor of their covariance). The fixes are not independent evidence: the
+// odometry that carries them to the newest stamp is shared, the white
+// noise over the stretch two motions have in common, the calibration error
+// over the whole of both, and a correlated sensor's bias is one for all its
+// fixes. Weighted as independent, 24 fixes of two landmarks carried over
+// five seconds of odometry with 8% scale errors gave a pose covariance of 4
+// mm for an error of 2.7 cm (NEES 38). For candidates i before j (rel_i =
+// m_ij (+) rel_j, m_ij and rel_j over disjoint stretches), the residuals'
+// covariance is
+//
+//	S_ii = R_i + G_i (W_i + D_i C D_i^T) G_i^T
+//	S_ij = G_i (Jb(m_ij) W_j + D_i C D_j^T) G_j^T + P[bias_i, bias_j]
+//
+// with G_i = H_i dp/drel, W the motions' white covariances, D their
+// Jacobians in the calibration whose prior covariance is C, Jb(m_ij) =
+// blockdiag(R(th_i - th_j), 1) the Jacobian of Compose in its second
+// argument, and P the estimate's covariance of the bias states each fix
+// carries (foldBias put the diagonal's into R_i).
+func (r *Robot) refineJoint(set []candidate, bias [][3]int, st *estimator.State, x estimator.Pose) relocation {
+	cal := r.priorCalibration()
+	for it := 0; it < relocateIterations; it++ {
+		info, grad, cost, dim, ok := jointEquations(set, bias, st, &cal, x)
+		if !ok {
+			return relocation{}
+		}
+		var ch mat.Cholesky
+		if !ch.Factorize(info) {
+			return relocation{}
+		}
+		var d mat.VecDense
+		if err := ch.SolveVecTo(&d, grad); err != nil {
+			return relocation{}
+		}
+		if math.Abs(d.AtVec(0))+math.Abs(d.AtVec(1))+math.Abs(d.AtVec(2)) < relocateStepM {
+			return relocation{pose: x, info: info, cost: cost, dim: dim, ok: true}
+		}
+		x = estimator.Pose{X: x.X + d.AtVec(0), Y: x.Y + d.AtVec(1), Heading: estimator.Wrap(x.Heading + d.AtVec(2))}
+	}
+	return relocation{}
+}
+
+// jointEquations returns A^T S^-1 A, A^T S^-1 v and v^T S^-1 v at pose x
+// for the stacked residuals v of the candidates, their Jacobian A in x and
+// their joint covariance S (refineJoint), with the sum of their dimensions.
+func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *calibration, x estimator.Pose) (info *mat.SymDense, grad *mat.VecDense, cost float64, dim int, ok bool) {
+	off := make([]int, len(set)+1)
+	for i := range set {
+		off[i+1] = off[i] + set[i].meas.Kind.Dim()
+	}
+	dim = off[len(set)]
+	a := mat.NewDense(dim, 3, nil)
+	g := mat.NewDense(dim, 3, nil)
+	v := mat.NewVecDense(dim, nil)
+	for i := range set {
+		c := &set[i]
+		m := &c.meas
+		p := estimator.Compose(x, inversePose(c.rel))
+		z, h, err := m.Predicted([]float64{p.X, p.Y, p.Heading})
+		if err != nil {
+			return nil, nil, 0, 0, false
+		}
+		d := m.Kind.Dim()
+		s, co := math.Sincos(p.Heading)
+		tx, ty := c.rel.X, c.rel.Y
+		jx := mat.NewDense(3, 3, []float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1})
+		jr := mat.NewDense(3, 3, []float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1})
+		hp := mat.NewDense(d, 3, h)
+		a.Slice(off[i], off[i+1], 0, 3).(*mat.Dense).Mul(hp, jx)
+		g.Slice(off[i], off[i+1], 0, 3).(*mat.Dense).Mul(hp, jr)
+		for k := 0; k < d; k++ {
+			vk := m.Z[k] - z[k]
+			if m.Kind.IsAngle(k) {
+				vk = estimator.Wrap(vk)
+			}
+			v.SetVec(off[i]+k, vk)
+		}
+	}
+	cc := mat.NewDense(3, 3, cal.cov[:])
+	sigma := mat.NewSymDense(dim, nil)
+	var cov, t, blk mat.Dense
+	for i := range set {
+		ci := &set[i]
+		di := mat.NewDense(3, 3, ci.relD[:])
+		gi := g.Slice(off[i], off[i+1], 0, 3)
+		for j := i; j < len(set); j++ {
+			cj := &set[j]
+			// cov = Cov(rel_i, rel_j).
+			cov.Reset()
+			if i == j {
+				cov.CloneFrom(mat.NewDense(3, 3, ci.relW[:]))
+			} else {
+				_, jb := composeJacobians(estimator.Pose{Heading: ci.rel.Heading - cj.rel.Heading}, estimator.Pose{})
+				cov.Mul(mat.NewDense(3, 3, jb[:]), mat.NewDense(3, 3, cj.relW[:]))
+			}
+			if cal.on {
+				var dc, dcd mat.Dense
+				dc.Mul(di, cc)
+				dcd.Mul(&dc, mat.NewDense(3, 3, cj.relD[:]).T())
+				cov.Add(&cov, &dcd)
+			}
+			gj := g.Slice(off[j], off[j+1], 0, 3)
+			t.Reset()
+			t.Mul(gi, &cov)
+			blk.Reset()
+			blk.Mul(&t, gj.T())
+			for p := 0; p < off[i+1]-off[i]; p++ {
+				for q := 0; q < off[j+1]-off[j]; q++ {
+					e := blk.At(p, q)
+					if i == j {
+						e = (e+blk.At(q, p))/2 + ci.meas.R[p*3+q]
+					} else if bp, bq := bias[i][p], bias[j][q]; bp > 0 && bq > 0 {
+						e += st.At(bp, bq)
+					}
+					if i == j && q < p {
+						continue
+					}
+					sigma.SetSym(off[i]+p, off[j]+q, e)
+				}
+			}
+		}
+	}
+	var ch mat.Cholesky
+	if !ch.Factorize(sigma) {
+		return nil, nil, 0, 0, false
+	}
+	var sa mat.Dense
+	var sv mat.VecDense
+	if err := ch.SolveTo(&sa, a); err != nil {
+		return nil, nil, 0, 0, false
+	}
+	if err := ch.SolveVecTo(&sv, v); err != nil {
+		return nil, nil, 0, 0, false
+	}
+	var ata mat.Dense
+	ata.Mul(a.T(), &sa)
+	info = mat.NewSymDense(3, nil)
+	for p := 0; p < 3; p++ {
+		for q := p; q < 3; q++ {
+			info.SetSym(p, q, (ata.At(p, q)+ata.At(q, p))/2)
+		}
+	}
+	grad = mat.NewVecDense(3, nil)
+	grad.MulVec(a.T(), &sv)
+	return info, grad, mat.Dot(v, &sv), dim, true
 }

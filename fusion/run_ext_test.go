@@ -11,8 +11,8 @@ import (
 )
 
 // TestSnapshotVersion5Restores: the golden snapshot of version 5, written
-// before runs existed, restores under version 6 as a robot in run 1 that
-// writes the same state as version 6.
+// before runs existed, restores under the current version as a robot in run
+// 1 that writes the same state under the current version.
 func TestSnapshotVersion5Restores(t *testing.T) {
 	cfg, _ := goldenRobot()
 	old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", "greenhouse-v5.bin"))
@@ -36,6 +36,30 @@ func TestSnapshotVersion5Restores(t *testing.T) {
 	want = protowire.AppendVarint(protowire.AppendTag(want, 33, protowire.VarintType), 0)
 	want = protowire.AppendString(protowire.AppendTag(want, 34, protowire.BytesType), "")
 	if string(b) != string(want) {
-		t.Errorf("version 5 restored writes %d bytes, not its own %d with the version 6 fields", len(b), len(want))
+		t.Errorf("version 5 restored writes %d bytes, not its own %d with the run fields", len(b), len(want))
+	}
+}
+
+// TestSnapshotVersion6Restores: the golden snapshot of version 6, whose
+// recovery candidates do not keep their odometry's white part apart,
+// restores under the current version and writes the same bytes but for the
+// version: absent parts read as all white, and all white is written absent.
+func TestSnapshotVersion6Restores(t *testing.T) {
+	cfg, _ := goldenRobot()
+	old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", "greenhouse-v6.bin"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, err := fusion.RestoreSnapshot(cfg, old)
+	if err != nil {
+		t.Fatalf("a version 6 snapshot does not restore: %v", err)
+	}
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...)
+	if string(b) != string(want) {
+		t.Errorf("version 6 restored writes %d bytes, not its own %d", len(b), len(want))
 	}
 }

@@ -17,15 +17,20 @@ import (
 // odometry (landmark fixes among them), reseeds that keep the IMU offset,
 // the fix_disagrees trust state and the state of the IMU's slip comparison.
 // Version 6: the run number and boot id (StartRun); RestoreSnapshot also
-// reads version 5, a snapshot of a robot's first run.
+// reads version 5, a snapshot of a robot's first run. Version 7: a
+// recovery candidate's carried odometry keeps its white part and its
+// Jacobian in the calibration apart (relocate weighs shared odometry);
+// version 6 and 5 candidates read as all white.
 // A change of layout or meaning bumps it, with a new golden file in
 // testdata/snapshots.
-const SnapshotVersion = 6
+const SnapshotVersion = 7
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one, and 5, which differs only by lacking the run fields (a robot
-// that never started a second run).
-func readsVersion(v uint64) bool { return v == SnapshotVersion || v == 5 }
+// this one; 6, whose recovery candidates lack the white part and the
+// calibration Jacobian of their carried odometry (all of its covariance is
+// taken as white); and 5, which lacks the run fields too (a robot that never
+// started a second run).
+func readsVersion(v uint64) bool { return v == SnapshotVersion || v == 6 || v == 5 }
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -538,10 +543,16 @@ func encCandidate(e *wenc, c *candidate) {
 	e.pose(7, c.rel)
 	e.doubles(8, c.relCov[:])
 	e.bool(9, c.keepOffset)
+	if c.relW != c.relCov || c.relD != [9]float64{} {
+		// Absent means all white (decCandidate), as in version 6.
+		e.doubles(10, c.relW[:])
+		e.doubles(11, c.relD[:])
+	}
 }
 
 func decCandidate(d *wdec) candidate {
 	var c candidate
+	white := false
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
@@ -560,9 +571,18 @@ func decCandidate(d *wdec) candidate {
 			d.doubles(num, c.relCov[:])
 		case 9:
 			c.keepOffset = d.bool(num)
+		case 10:
+			d.doubles(num, c.relW[:])
+			white = true
+		case 11:
+			d.doubles(num, c.relD[:])
 		default:
 			d.fail("candidate: unknown field %d", num)
 		}
+	}
+	if !white {
+		// A snapshot from before the parts were kept: all of it white.
+		c.relW = c.relCov
 	}
 	return c
 }

@@ -1364,12 +1364,20 @@ type SnapshotCandidate struct {
 	// The robot's motion from fix_stamp_ns to stamp_ns in its body frame at
 	// fix_stamp_ns, forward m, left m, turn rad.
 	RelativeMotion []float64 `protobuf:"fixed64,7,rep,packed,name=relative_motion,json=relativeMotion,proto3" json:"relative_motion,omitempty"`
-	// The 3x3 covariance of relative_motion, row-major.
+	// The 3x3 covariance of relative_motion, row-major: the white part plus
+	// the calibration's (relative_white_covariance plus D C D^T).
 	RelativeCovariance []float64 `protobuf:"fixed64,8,rep,packed,name=relative_covariance,json=relativeCovariance,proto3" json:"relative_covariance,omitempty"`
 	// Whether the IMU offset was initialised at the fix.
 	KeepImuOffset bool `protobuf:"varint,9,opt,name=keep_imu_offset,json=keepImuOffset,proto3" json:"keep_imu_offset,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	// The part of relative_covariance from the odometry's white step noise,
+	// 3x3 row-major. Absent in snapshots before it was kept: the whole of
+	// relative_covariance is then taken as white.
+	RelativeWhiteCovariance []float64 `protobuf:"fixed64,10,rep,packed,name=relative_white_covariance,json=relativeWhiteCovariance,proto3" json:"relative_white_covariance,omitempty"`
+	// D, the Jacobian of relative_motion in the odometry calibration (forward
+	// scale, turn scale, heading-rate bias), 3x3 row-major; absent is zero.
+	RelativeCalibrationJacobian []float64 `protobuf:"fixed64,11,rep,packed,name=relative_calibration_jacobian,json=relativeCalibrationJacobian,proto3" json:"relative_calibration_jacobian,omitempty"`
+	unknownFields               protoimpl.UnknownFields
+	sizeCache                   protoimpl.SizeCache
 }
 
 func (x *SnapshotCandidate) Reset() {
@@ -1456,6 +1464,20 @@ func (x *SnapshotCandidate) GetKeepImuOffset() bool {
 		return x.KeepImuOffset
 	}
 	return false
+}
+
+func (x *SnapshotCandidate) GetRelativeWhiteCovariance() []float64 {
+	if x != nil {
+		return x.RelativeWhiteCovariance
+	}
+	return nil
+}
+
+func (x *SnapshotCandidate) GetRelativeCalibrationJacobian() []float64 {
+	if x != nil {
+		return x.RelativeCalibrationJacobian
+	}
+	return nil
 }
 
 // JournalOpening starts a robot's journal.
@@ -1848,7 +1870,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
 	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
 	"\x06raised\x18\x05 \x01(\bR\x06raised\x12\x18\n" +
-	"\achanged\x18\x06 \x01(\bR\achanged\"\xf1\x02\n" +
+	"\achanged\x18\x06 \x01(\bR\achanged\"\xf1\x03\n" +
 	"\x11SnapshotCandidate\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x18\n" +
 	"\aimplied\x18\x02 \x03(\x01R\aimplied\x12\x1e\n" +
@@ -1860,7 +1882,10 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x14landmark_measurement\x18\x06 \x01(\v2\x1e.reckon.v1.SnapshotMeasurementR\x13landmarkMeasurement\x12'\n" +
 	"\x0frelative_motion\x18\a \x03(\x01R\x0erelativeMotion\x12/\n" +
 	"\x13relative_covariance\x18\b \x03(\x01R\x12relativeCovariance\x12&\n" +
-	"\x0fkeep_imu_offset\x18\t \x01(\bR\rkeepImuOffsetJ\x04\b\x03\x10\x04R\n" +
+	"\x0fkeep_imu_offset\x18\t \x01(\bR\rkeepImuOffset\x12:\n" +
+	"\x19relative_white_covariance\x18\n" +
+	" \x03(\x01R\x17relativeWhiteCovariance\x12B\n" +
+	"\x1drelative_calibration_jacobian\x18\v \x03(\x01R\x1brelativeCalibrationJacobianJ\x04\b\x03\x10\x04R\n" +
 	"correction\"\x9b\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +

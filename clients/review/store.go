@@ -576,7 +576,7 @@ func (ss *stepStore) close() error {
 // export row (smoothedRows).
 const rowBytes = 12 * 8
 
-// smoothedRows is the smoothers's StateSink. It keeps what the review uses
+// smoothedRows is the smoother's StateSink. It keeps what the review uses
 // of each smoothed state: the numbers of its export row (trackRow: 96
 // bytes, where the state is 1.2 kB in memory and about 120 bytes on disk),
 // the lower pose covariance entries of the few states whose covariance is

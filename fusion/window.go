@@ -155,8 +155,35 @@ func (r *Robot) replayFrom(i int) {
 	}
 }
 
+// reserve makes room for n more entries. While the window is still
+// filling, and once what it holds spans an eighth of it, the room is what
+// the whole window will hold at the rates seen so far, twice over
+// (dropFront moves the dropped entries out once they are as many as the
+// live ones), up to maxReserve entries: one allocation where growing as
+// append does took about ten, each copying the entries before, in the
+// robot's first second (BenchmarkRobotRates). Beyond that, or with too
+// short a span to tell a rate, it grows as append does.
+func (r *Robot) reserve(n int) {
+	if len(r.ents)+n <= cap(r.ents) {
+		return
+	}
+	want := len(r.ents) + n
+	if span := r.newest - r.baseT; span >= r.cfg.WindowNs/8 && span < r.cfg.WindowNs {
+		full := float64(len(r.live())) * float64(r.cfg.WindowNs) / float64(span)
+		want = max(want, min(2*int(full)+64, maxReserve))
+	}
+	if want > len(r.ents)+n {
+		r.ents = slices.Grow(r.ents, want-len(r.ents))
+	}
+}
+
+// maxReserve bounds what reserve sets aside (2 MB of entries); a window
+// that needs more grows as append grows it.
+const maxReserve = 4096
+
 // appendOdo appends an odometry entry ending after every live entry.
 func (r *Robot) appendOdo(e entry) {
+	r.reserve(1)
 	r.ents = append(r.ents, e)
 	live := r.live()
 	r.apply(&live[len(live)-1])
@@ -183,10 +210,12 @@ func (r *Robot) insert(e entry) insertion {
 		a, b := splitOdo(orig, t)
 		b.after = cpSlot{} // a keeps the slot; b takes its own when applied
 		live[i] = a
+		r.reserve(2)
 		r.ents = slices.Insert(r.ents, r.head+i+1, e, b)
 		r.replayFrom(i)
 		return insertion{at: i + 1, split: true, original: orig}
 	}
+	r.reserve(1)
 	r.ents = slices.Insert(r.ents, r.head+i, e)
 	r.replayFrom(i)
 	return insertion{at: i}
@@ -259,7 +288,13 @@ func (r *Robot) dropFront(k int) {
 	}
 	r.baseT = live[k-1].t1
 	r.head += k
-	if r.head > 1024 && r.head > len(r.ents)/2 {
+	// The dropped entries are moved out once there are as many as live
+	// ones (and at least 64): each entry is copied at most once on
+	// average, and the slice stays near twice the window (a window of 1 s
+	// at 310 inputs a second is 160 kB). Waiting for 1024 dropped entries
+	// as before made a new robot grow it to four times that, reallocating
+	// as it went, in its first seconds (BenchmarkRobotRates).
+	if r.head >= 64 && r.head >= len(r.ents)-r.head {
 		n := copy(r.ents, r.ents[r.head:])
 		clear(r.ents[n:])
 		r.ents = r.ents[:n]

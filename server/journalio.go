@@ -101,6 +101,27 @@ func (sy *syncer) sync(fsys journal.FS, w journalWriter, path string, writes uin
 	return nil
 }
 
+// current tells whether what w wrote up to writes is synced already.
+func (sy *syncer) current(w journalWriter, path string, writes uint64) bool {
+	sy.mu.Lock()
+	defer sy.mu.Unlock()
+	return w == sy.by && path == sy.path && writes == sy.writes
+}
+
+// synced notes that what w wrote up to writes to path is durable (a
+// syncfs covered it). The descriptor stays open while the segment is the
+// same; for another, the next sync opens it.
+func (sy *syncer) synced(w journalWriter, path string, writes uint64) {
+	sy.mu.Lock()
+	defer sy.mu.Unlock()
+	if w != sy.by || path != sy.path {
+		sy.closeLocked()
+	} else if writes < sy.writes {
+		return // a later round got further
+	}
+	sy.by, sy.path, sy.writes = w, path, writes
+}
+
 // close closes the descriptor; the next sync opens the segment again.
 func (sy *syncer) close() {
 	sy.mu.Lock()

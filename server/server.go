@@ -95,6 +95,10 @@ type Server struct {
 
 	stopSync chan struct{}
 	syncDone chan struct{}
+	// whole, when not nil, syncs every due journal with one syncfs
+	// (journal.WholeSync; the operating system's file system on Linux 5.8
+	// and later).
+	whole *journal.WholeSync
 }
 
 // robot is one robot and everything attached to it.
@@ -161,6 +165,15 @@ func New(opt Options) (*Server, error) {
 		}
 	}
 	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
+	if opt.JournalDir != "" && opt.FS == nil {
+		// Without it (a directory that cannot be opened for reading),
+		// each journal syncs by itself as elsewhere.
+		whole, err := journal.OpenWholeSync(opt.JournalDir)
+		if err != nil {
+			s.log.Warn("journal directory not opened for syncfs; each journal syncs by itself", "err", err)
+		}
+		s.whole = whole
+	}
 	go s.syncLoop()
 	return s, nil
 }
@@ -188,8 +201,18 @@ func (s *Server) syncLoop() {
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the
 // robot's lock while the disk works (syncer), so that ingest does not
-// wait for it.
+// wait for it. Only journals written since their last sync are synced;
+// when there are two or more and the server has a WholeSync, with one
+// syncfs for all of them, and when that fails, each with its own
+// fdatasync, which tells whose journal failed.
 func (s *Server) SyncJournals() {
+	type due struct {
+		r      *robot
+		j      journalWriter
+		path   string
+		writes uint64
+	}
+	var ds []due
 	for _, r := range s.list() {
 		r.mu.Lock()
 		j := r.journal
@@ -199,13 +222,25 @@ func (s *Server) SyncJournals() {
 			path, writes = j.SyncPoint()
 		}
 		r.mu.Unlock()
-		if j == nil {
-			continue
+		if j != nil && !r.sync.current(j, path, writes) {
+			ds = append(ds, due{r, j, path, writes})
 		}
-		if err := r.sync.sync(s.opt.FS, j, path, writes); err != nil {
-			r.mu.Lock()
-			s.journalFailed(r, "journal sync", err)
-			r.mu.Unlock()
+	}
+	if len(ds) >= 2 && s.whole != nil {
+		err := s.whole.Sync()
+		if err == nil {
+			for _, d := range ds {
+				d.r.sync.synced(d.j, d.path, d.writes)
+			}
+			return
+		}
+		s.log.Warn("journal file system sync failed; syncing each journal", "err", err)
+	}
+	for _, d := range ds {
+		if err := d.r.sync.sync(s.opt.FS, d.j, d.path, d.writes); err != nil {
+			d.r.mu.Lock()
+			s.journalFailed(d.r, "journal sync", err)
+			d.r.mu.Unlock()
 		}
 	}
 }
@@ -224,6 +259,9 @@ func (s *Server) Close() error {
 	close(s.stopSync)
 	<-s.syncDone
 	var errs []error
+	if s.whole != nil {
+		errs = append(errs, s.whole.Close())
+	}
 	for _, r := range s.list() {
 		r.mu.Lock()
 		if r.journal != nil {

@@ -7,6 +7,42 @@ import (
 	"reckon.example/fusion"
 )
 
+// batchPool hands out at most max slices of capacity size, made as they
+// are first needed, to one goroutine (get) and takes them back from any
+// (put). When all are out, get waits for one: the goroutines that pass
+// batches back and forth reuse a fixed few instead of making a new one
+// (a megabyte, cleared) whenever the other side is behind.
+type batchPool[T any] struct {
+	free            chan []T
+	made, max, size int
+}
+
+func newBatchPool[T any](max, size int) *batchPool[T] {
+	return &batchPool[T]{free: make(chan []T, max), max: max, size: size}
+}
+
+// get returns an empty slice, or nil and false if stop is closed first.
+func (bp *batchPool[T]) get(stop <-chan struct{}) ([]T, bool) {
+	select {
+	case b := <-bp.free:
+		return b[:0], true
+	default:
+	}
+	if bp.made < bp.max {
+		bp.made++
+		return make([]T, 0, bp.size), true
+	}
+	select {
+	case b := <-bp.free:
+		return b[:0], true
+	case <-stop:
+		return nil, false
+	}
+}
+
+// put gives b back; it never waits.
+func (bp *batchPool[T]) put(b []T) { bp.free <- b[:0] }
+
 // prefetch reads a store's records in a goroutine of its own, in runs of
 // prefetchLen, ahead of a reader that walks them in order (forwards, or
 // last first): decoding the steps then takes the other core while the
@@ -14,7 +50,7 @@ import (
 type prefetch[T any] struct {
 	n, step int // records; +1 forwards, -1 backwards
 	runs    chan prefetchRun[T]
-	free    chan []T
+	pool    *batchPool[T]
 	stop    chan struct{}
 	cur     prefetchRun[T]
 	have    bool
@@ -31,7 +67,8 @@ const prefetchLen = 256
 // startPrefetch reads records 0 to n-1 (n-1 to 0 with backwards) with
 // fill, which sets dst[j] to record lo+j.
 func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) error) *prefetch[T] {
-	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), free: make(chan []T, 3), stop: make(chan struct{})}
+	// Four runs at most: two sent, one read, one being filled.
+	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), pool: newBatchPool[T](4, prefetchLen), stop: make(chan struct{})}
 	if backwards {
 		p.step = -1
 	}
@@ -46,11 +83,9 @@ func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) erro
 			if backwards {
 				hi = n - r*prefetchLen
 			}
-			var items []T
-			select {
-			case items = <-p.free:
-			default:
-				items = make([]T, prefetchLen)
+			items, ok := p.pool.get(p.stop)
+			if !ok {
+				return
 			}
 			err := fill(lo, items[:hi-lo])
 			select {
@@ -75,10 +110,7 @@ func (p *prefetch[T]) at(i int) (*T, error) {
 			if (p.step > 0 && i < p.cur.lo) || (p.step < 0 && i >= p.cur.lo+len(p.cur.items)) {
 				panic(fmt.Sprintf("review: record %d read out of order", i))
 			}
-			select {
-			case p.free <- p.cur.items[:cap(p.cur.items)]:
-			default:
-			}
+			p.pool.put(p.cur.items)
 		}
 		r, ok := <-p.runs
 		if !ok {
@@ -125,13 +157,15 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 }
 
 // trackItem is what the report's forward pass needs of a step: its
-// filtered and smoothed states and, with a truth file, the truth at its
-// stamp and the pose NEES of both states against it.
+// filtered state, the export row of its smoothed state and, with a truth
+// file, the truth at its stamp and the pose NEES of both states against
+// it.
 type trackItem struct {
 	stampNs    int64
 	start      bool
 	post       estimator.State
-	smoothed   estimator.State
+	smoothed   trackRow
+	smoothCov  [9]float64
 	truth      estimator.Pose
 	truthGapNs int64
 	haveTruth  bool
@@ -140,7 +174,7 @@ type trackItem struct {
 
 // prefetchTrack reads the filtered and the smoothed states forwards, and
 // the truth (if not nil), ahead of the report's pass.
-func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefetch[trackItem] {
+func prefetchTrack(steps *stepStore, sm *smoothedRows, truth *truthReader) *prefetch[trackItem] {
 	rd := steps.reader()
 	return startPrefetch(steps.Len(), false, func(lo int, dst []trackItem) error {
 		for j := range dst {
@@ -149,7 +183,7 @@ func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefet
 			if it.stampNs, it.start, err = rd.readPost(lo+j, &it.post); err != nil {
 				return err
 			}
-			if err := sm.get(lo+j, &it.smoothed); err != nil {
+			if err := sm.row(lo+j, &it.smoothed, &it.smoothCov); err != nil {
 				return err
 			}
 			it.haveTruth = false
@@ -157,7 +191,8 @@ func prefetchTrack(steps *stepStore, sm *stateStore, truth *truthReader) *prefet
 				it.truth, it.truthGapNs, it.haveTruth = truth.at(it.stampNs)
 			}
 			if it.haveTruth {
-				it.nees = [2]float64{nees3(&it.post, it.truth), nees3(&it.smoothed, it.truth)}
+				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}
+				it.nees = [2]float64{nees3(&it.post, it.truth), neesOf(sp, &it.smoothCov, it.truth)}
 			}
 		}
 		return nil

@@ -8,6 +8,7 @@ package review
 
 import (
 	"bufio"
+	"bytes"
 	"encoding/csv"
 	"errors"
 	"fmt"
@@ -58,12 +59,18 @@ type Options struct {
 	Progress func(inputs int)
 	// MaxPoints bounds each plotted series (4000).
 	MaxPoints int
-	// MemoryBytes bounds the steps and smoothed states kept in memory
-	// (32 MiB, about 50,000 steps: 45 s at 200 Hz with its IMU and fixes);
-	// past it they go to files in TempDir (compact records), which the
-	// smoother and the report's pass read in chunks. The journal's reader holds a segment (up to
-	// 64 MiB) besides, and the collector lets the heap grow to about twice
-	// what is live: 32 MiB keeps an hour's review under 256 MiB.
+	// MemoryBytes bounds the steps kept in memory during the replay
+	// (32 MiB, about 6,800 steps: 23 s of a cart with 200 Hz odometry, its
+	// IMU and fixes, which makes 300 steps a second);
+	// past it they go to a file in TempDir (compact records), which the
+	// smoother and the report's pass read in chunks. The journal's reader
+	// holds a segment (up to 64 MiB) besides, and the collector lets the
+	// heap grow to about twice what is live: 32 MiB keeps an hour's review
+	// under 256 MiB. The smoothed states, of which the review keeps the
+	// numbers of their export rows (96 bytes a step), stay in memory up to
+	// four times MemoryBytes (1.4 million steps, 78 minutes of that cart;
+	// the replay's memory is given back first), and go to a file in TempDir
+	// past it.
 	MemoryBytes int64
 	// FromNs and ToNs limit the review to a stretch of the run, in
 	// nanoseconds from the run's start (the stamp of its first input). The
@@ -182,9 +189,14 @@ type Run struct {
 }
 
 // truthReader reads a truth CSV forwards and interpolates it to stamps
-// in increasing order.
+// in increasing order. Lines without a quote or a carriage return (but for
+// one before the newline) are split at their commas as encoding/csv would
+// split them, at a third of its cost; at the first other line, the rest of
+// the file is read with encoding/csv.
 type truthReader struct {
-	r                  *csv.Reader
+	br                 *bufio.Reader
+	r                  *csv.Reader // from the first line that needs it on
+	fields             [][]byte
 	prev, next         truthRow
 	havePrev, haveNext bool
 }
@@ -199,15 +211,64 @@ func openTruth(path string) (*truthReader, *os.File, error) {
 	if err != nil {
 		return nil, nil, err
 	}
-	return newTruthReader(bufio.NewReader(f)), f, nil
+	return newTruthReader(f), f, nil
 }
 
 func newTruthReader(r io.Reader) *truthReader {
-	tr := &truthReader{r: csv.NewReader(r)}
-	tr.r.ReuseRecord = true
-	tr.r.FieldsPerRecord = -1
+	tr := &truthReader{br: bufio.NewReaderSize(r, 64<<10)}
 	tr.advance()
 	return tr
+}
+
+// record returns the next record's fields, as encoding/csv (fields may
+// vary in number) would give them, or false at the end or at an error.
+func (t *truthReader) record() ([][]byte, bool) {
+	for t.r == nil {
+		line, err := t.br.ReadSlice('\n')
+		if err == bufio.ErrBufferFull {
+			// A line longer than the buffer: encoding/csv from here.
+			t.useCSV(line)
+			break
+		}
+		if err != nil && len(line) == 0 {
+			return nil, false
+		}
+		body := bytes.TrimSuffix(line, []byte{'\n'})
+		body = bytes.TrimSuffix(body, []byte{'\r'})
+		if bytes.IndexByte(body, '"') >= 0 || bytes.IndexByte(body, '\r') >= 0 {
+			t.useCSV(line)
+			break
+		}
+		if len(body) == 0 {
+			continue // encoding/csv skips empty lines
+		}
+		t.fields = t.fields[:0]
+		for {
+			i := bytes.IndexByte(body, ',')
+			if i < 0 {
+				break
+			}
+			t.fields = append(t.fields, body[:i])
+			body = body[i+1:]
+		}
+		return append(t.fields, body), true
+	}
+	rec, err := t.r.Read()
+	if err != nil {
+		return nil, false
+	}
+	t.fields = t.fields[:0]
+	for _, f := range rec {
+		t.fields = append(t.fields, []byte(f))
+	}
+	return t.fields, true
+}
+
+// useCSV reads the rest of the file, from line on, with encoding/csv.
+func (t *truthReader) useCSV(line []byte) {
+	t.r = csv.NewReader(io.MultiReader(bytes.NewReader(bytes.Clone(line)), t.br))
+	t.r.ReuseRecord = true
+	t.r.FieldsPerRecord = -1
 }
 
 // advance moves next to prev and reads the next row.
@@ -217,20 +278,20 @@ func (t *truthReader) advance() {
 	}
 	t.haveNext = false
 	for {
-		rec, err := t.r.Read()
-		if err != nil {
+		rec, ok := t.record()
+		if !ok {
 			return
 		}
 		if len(rec) < 4 {
 			continue
 		}
-		stamp, err := strconv.ParseInt(rec[0], 10, 64)
+		stamp, err := strconv.ParseInt(string(rec[0]), 10, 64)
 		if err != nil {
 			continue // the header
 		}
-		x, _ := strconv.ParseFloat(rec[1], 64)
-		y, _ := strconv.ParseFloat(rec[2], 64)
-		h, _ := strconv.ParseFloat(rec[3], 64)
+		x, _ := strconv.ParseFloat(string(rec[1]), 64)
+		y, _ := strconv.ParseFloat(string(rec[2]), 64)
+		h, _ := strconv.ParseFloat(string(rec[3]), 64)
 		t.next, t.haveNext = truthRow{stamp, estimator.Pose{X: x, Y: y, Heading: h}}, true
 		return
 	}
@@ -292,7 +353,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: make([]fusion.Step, 0, stepBatch), want: max(src.Run, 1)}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: fw.batch(), want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		fw.close()
@@ -321,21 +382,33 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 
 // smoothAndTrack smooths the steps and walks both tracks forwards.
 func smoothAndTrack(a *accumulator, steps *stepStore, truth, outDir string, opt Options) error {
-	smoothed, err := smooth(steps, opt.TempDir)
+	every := thinEvery(steps.Len(), opt.MaxPoints)
+	smoothed, err := smooth(steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
 	if err != nil {
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(steps, smoothed, truth, outDir, opt.MaxPoints)
+	return a.tracks(steps, smoothed, truth, outDir, every)
 }
 
-// smooth runs the smoother over the steps into a state store of its own.
-func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
-	k := 0
+// thinEvery returns the stride of the tracks' points drawn: every
+// every-th step of n, and the last, for about maxPoints.
+func thinEvery(n, maxPoints int) int { return max(1, (n+maxPoints-1)/maxPoints) }
+
+// rowBudget is the memory the smoothed rows may take (smoothedRows): by
+// the time the smoother runs, the journal's segment and the steps kept in
+// memory during the replay are garbage, and the rows are kept outside the
+// heap, so that they cost their size once.
+func rowBudget(memoryBytes int64) int64 { return 4 * memoryBytes }
+
+// smooth runs the smoother over the steps into a store of its own, which
+// keeps whole the states at every every-th step.
+func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothedRows, error) {
+	k := estimator.MaxStates
 	if steps.onDisk() {
 		k = steps.file.k
 	}
-	smoothed, err := newStateStore(tempDir, steps.Len(), k, steps.onDisk())
+	smoothed, err := newSmoothedRows(tempDir, steps.Len(), k, every, budget)
 	if err != nil {
 		return nil, err
 	}
@@ -359,18 +432,20 @@ func smooth(steps *stepStore, tempDir string) (*stateStore, error) {
 // for reuse, so that an hour's 720,000 steps of 3.7 kB cost no garbage.
 type stepWriter struct {
 	full    chan []fusion.Step
-	free    chan []fusion.Step
+	pool    *batchPool[fusion.Step]
 	written chan error
 	closed  bool
 	err     error
 }
 
 // stepBatch is the number of steps handed over at once (0.9 MB at 12
-// states).
+// states); a batch has room for a quarter more, since an input may hand out
+// several steps when the batch is nearly full.
 const stepBatch = 256
 
 func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
-	fw := &stepWriter{full: make(chan []fusion.Step, 2), free: make(chan []fusion.Step, 3), written: make(chan error, 1)}
+	// Four batches at most: one being filled, two sent, one being written.
+	fw := &stepWriter{full: make(chan []fusion.Step, 2), pool: newBatchPool[fusion.Step](4, stepBatch+stepBatch/4), written: make(chan error, 1)}
 	go func() {
 		tw, err := newTrackWriter(trackPath)
 		for b := range fw.full {
@@ -382,10 +457,7 @@ func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 					err = tw.add(b[i].StampNs, &b[i].Post)
 				}
 			}
-			select {
-			case fw.free <- b[:0]:
-			default:
-			}
+			fw.pool.put(b)
 		}
 		if err == nil {
 			err = steps.flush()
@@ -401,12 +473,14 @@ func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 // hand gives the writer a batch and returns an empty one.
 func (fw *stepWriter) hand(b []fusion.Step) []fusion.Step {
 	fw.full <- b
-	select {
-	case b = <-fw.free:
-		return b
-	default:
-		return make([]fusion.Step, 0, stepBatch)
-	}
+	b, _ = fw.pool.get(nil)
+	return b
+}
+
+// batch returns the first batch to fill.
+func (fw *stepWriter) batch() []fusion.Step {
+	b, _ := fw.pool.get(nil)
+	return b
 }
 
 // close waits for the writer to finish and returns its error; it may be
@@ -925,7 +999,13 @@ func Label(src Source) string {
 func nees3(s *estimator.State, tr estimator.Pose) float64 {
 	var c [9]float64
 	s.PoseCovarianceInto(&c)
-	q, err := estimator.PoseNEES(s.Pose(), &c, tr)
+	return neesOf(s.Pose(), &c, tr)
+}
+
+// neesOf is the pose NEES of a pose with covariance c (row-major) against
+// the truth, NaN if c is not positive definite.
+func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
+	q, err := estimator.PoseNEES(p, c, tr)
 	if err != nil {
 		return math.NaN()
 	}
@@ -935,7 +1015,7 @@ func nees3(s *estimator.State, tr estimator.Pose) float64 {
 // tracks walks the steps and smoothed states forwards: the CSV exports, the
 // decimated series, the distance, the uncertainty figures and, with a truth
 // file, the errors.
-func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir string, maxPoints int) error {
+func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outDir string, every int) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
@@ -952,7 +1032,6 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		truth = tr
 	}
 	n := steps.Len()
-	every := max(1, (n+maxPoints-1)/maxPoints)
 	pf := prefetchTrack(steps, sm, truth)
 	defer pf.close()
 	var fSq, sSq, fNees, sNees float64
@@ -964,19 +1043,21 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		if err != nil {
 			return err
 		}
-		p, smoothed, stamp := &it.post, &it.smoothed, it.stampNs
+		p, srow, stamp := &it.post, &it.smoothed, it.stampNs
 		if i > 0 && !it.start {
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
-		if r95 := p.Position95(); r95 > sum.Max95M {
+		r95 := p.Position95()
+		if r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, stamp
 		}
-		sum.Final95M = p.Position95()
+		sum.Final95M = r95
 		hs := math.Sqrt(p.Var(2))
 		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 		sum.FinalHeadingSt = hs
-		rows.add(stamp, smoothed)
+		srow.stampNs = stamp
+		rows.addRow(srow)
 		tp, haveTruth := it.truth, it.haveTruth
 		if truth != nil {
 			sum.TruthSteps++
@@ -987,7 +1068,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		}
 		if haveTruth {
 			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
-			sSq += sq(smoothed.MeanAt(0)-tp.X) + sq(smoothed.MeanAt(1)-tp.Y)
+			sSq += sq(srow.v[0]-tp.X) + sq(srow.v[1]-tp.Y)
 			nTruth++
 			if positionNEES(p, tp) <= position95 {
 				fIn++
@@ -1005,7 +1086,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *stateStore, truthPath, outDir
 		}
 		if i%every == 0 || i == n-1 {
 			run.Filtered = append(run.Filtered, Point{stamp, *p})
-			run.Smoothed = append(run.Smoothed, Point{stamp, *smoothed})
+			run.Smoothed = append(run.Smoothed, Point{stamp, *sm.state(i)})
 			if truth != nil {
 				if !haveTruth {
 					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
@@ -1051,24 +1132,39 @@ func positionNEES(s *estimator.State, tr estimator.Pose) float64 {
 }
 
 // logHistogram counts positive values in bins a thousandth wide on a log
-// scale, for a median in bounded memory (within 0.05%).
+// scale, for a median in bounded memory (within 0.05%). The bins of values
+// from 6e-15 to 1.6e14 are counted in an array (a map cost a third of a
+// second an hour), the others in a map.
 type logHistogram struct {
+	dense  []int // bin denseLo+i in dense[i]
 	counts map[int32]int
 	n      int
 }
 
 var logBin = math.Log1p(1e-3)
 
+const (
+	denseLo   = -1 << 15
+	denseBins = 1 << 16
+)
+
 func (h *logHistogram) add(v float64) {
-	if h.counts == nil {
-		h.counts = map[int32]int{}
-	}
 	k := int32(math.MinInt32)
 	if v > 0 {
 		k = int32(math.Floor(math.Log(v) / logBin))
 	}
-	h.counts[k]++
 	h.n++
+	if d := int(k) - denseLo; d >= 0 && d < denseBins {
+		if h.dense == nil {
+			h.dense = make([]int, denseBins)
+		}
+		h.dense[d]++
+		return
+	}
+	if h.counts == nil {
+		h.counts = map[int32]int{}
+	}
+	h.counts[k]++
 }
 
 // median returns the middle of the bin that holds the value of rank n/2
@@ -1080,12 +1176,31 @@ func (h *logHistogram) median() float64 {
 	}
 	sort.Slice(keys, func(i, j int) bool { return keys[i] < keys[j] })
 	seen := 0
-	for _, k := range keys {
-		if seen += h.counts[k]; seen > h.n/2 {
-			if k == math.MinInt32 {
-				return 0
-			}
-			return math.Exp((float64(k) + 0.5) * logBin)
+	found := func(count int) bool {
+		seen += count
+		return seen > h.n/2
+	}
+	mid := func(k int32) float64 {
+		if k == math.MinInt32 {
+			return 0
+		}
+		return math.Exp((float64(k) + 0.5) * logBin)
+	}
+	// The map's bins below the array's, the array's, the map's above.
+	i := 0
+	for ; i < len(keys) && keys[i] < denseLo; i++ {
+		if found(h.counts[keys[i]]) {
+			return mid(keys[i])
+		}
+	}
+	for d, c := range h.dense {
+		if c > 0 && found(c) {
+			return mid(int32(d + denseLo))
+		}
+	}
+	for ; i < len(keys); i++ {
+		if found(h.counts[keys[i]]) {
+			return mid(keys[i])
 		}
 	}
 	return math.NaN()

@@ -256,7 +256,7 @@ func TestSpillToDisk(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	disk, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{MemoryBytes: 100 * stepMemBytes, TempDir: t.TempDir()})
+	disk, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{MemoryBytes: 10 * stepMemBytes, TempDir: t.TempDir()})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -278,7 +278,7 @@ func TestSpillToDiskWithoutIMU(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	disk, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{MemoryBytes: 100 * stepMemBytes, TempDir: t.TempDir()})
+	disk, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{MemoryBytes: 10 * stepMemBytes, TempDir: t.TempDir()})
 	if err != nil {
 		t.Fatal(err)
 	}

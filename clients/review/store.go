@@ -8,6 +8,7 @@ import (
 	"math/bits"
 	"os"
 	"reflect"
+	"runtime/debug"
 
 	"reckon.example/estimator"
 	"reckon.example/fusion"
@@ -571,60 +572,136 @@ func (ss *stepStore) close() error {
 	return nil
 }
 
-// stateStore is a StateSink in memory, or on disk beside a spilled step
-// store.
-type stateStore struct {
-	mem  []estimator.State
-	file *stateFile
-	rd   *chunkedFile
+// rowBytes is what a smoothed state costs in memory as the numbers of its
+// export row (smoothedRows).
+const rowBytes = 12 * 8
+
+// smoothedRows is the smoother's StateSink. It keeps what the review uses
+// of each smoothed state: the numbers of its export row (trackRow: 96
+// bytes, where the state is 1.2 kB in memory and about 120 bytes on disk),
+// the lower pose covariance entries of the few states whose covariance is
+// not symmetric to the bit (the NEES reads them), and the whole state at
+// the points drawn. The rows stay in memory up to a budget, which an hour
+// at 200 Hz fits; past it the states go to a file (stateFile) and the rows
+// are made from them as they are read.
+type smoothedRows struct {
+	n      int
+	v      []float64 // 12 numbers a state (trackRow.v), in memory
+	free   func()    // gives v back
+	offset []uint64  // bit i: state i has the IMU offset (trackRow.offset)
+	lower  map[int][3]float64
+	file   *stateFile
+	rd     *chunkedFile
+	tmp    estimator.State
+	// every and kept: the states at i%every == 0 and at n-1, kept whole.
+	every int
+	kept  map[int]*estimator.State
 }
 
-func newStateStore(dir string, n, k int, onDisk bool) (*stateStore, error) {
-	if !onDisk {
-		return &stateStore{mem: make([]estimator.State, n)}, nil
+// newSmoothedRows returns a store for n states of at most k components,
+// in memory if their rows take at most budget bytes; the states at every
+// every-th step (and the last) are kept whole.
+func newSmoothedRows(dir string, n, k, every int, budget int64) (*smoothedRows, error) {
+	sr := &smoothedRows{n: n, every: every, kept: map[int]*estimator.State{}, lower: map[int][3]float64{}}
+	if int64(n)*rowBytes <= budget {
+		// The heap the replay leaves (the journal's segment, the steps
+		// kept in memory until they spilled) goes back to the system
+		// first, so that the rows come on top of what is live, not of
+		// what the collector kept.
+		debug.FreeOSMemory()
+		var err error
+		sr.v, sr.free, err = allocRows(12 * n)
+		sr.offset = make([]uint64, (n+63)/64)
+		return sr, err
 	}
 	f, err := newStateFile(dir, k)
-	return &stateStore{file: f}, err
+	sr.file = f
+	return sr, err
 }
 
-func (ss *stateStore) SetSmoothed(i int, s *estimator.State) error {
-	if ss.file != nil {
-		return ss.file.SetSmoothed(i, s)
+func (sr *smoothedRows) onDisk() bool { return sr.file != nil }
+
+// SetSmoothed stores state i.
+func (sr *smoothedRows) SetSmoothed(i int, s *estimator.State) error {
+	if i%sr.every == 0 || i == sr.n-1 {
+		c := new(estimator.State)
+		copyState(c, s)
+		sr.kept[i] = c
 	}
-	ss.mem[i] = *s
+	if sr.file != nil {
+		return sr.file.SetSmoothed(i, s)
+	}
+	r := rowOf(0, s)
+	copy(sr.v[12*i:12*i+12], r.v[:])
+	if r.offset {
+		sr.offset[i/64] |= 1 << (i % 64)
+	}
+	if lo := [3]float64{s.At(1, 0), s.At(2, 0), s.At(2, 1)}; !sameFloatBits(lo, [3]float64{r.v[4], r.v[5], r.v[7]}) {
+		sr.lower[i] = lo
+	}
 	return nil
 }
 
-func (ss *stateStore) flush() error {
-	if ss.file != nil {
-		return ss.file.flush()
+// sameFloatBits reports whether a and b are equal to the bit.
+func sameFloatBits(a, b [3]float64) bool {
+	for i := range a {
+		if math.Float64bits(a[i]) != math.Float64bits(b[i]) {
+			return false
+		}
+	}
+	return true
+}
+
+// flush completes the store once the smoother is done.
+func (sr *smoothedRows) flush() error {
+	if sr.file != nil {
+		return sr.file.flush()
 	}
 	return nil
 }
 
-func (ss *stateStore) get(i int, s *estimator.State) error {
-	if ss.file == nil {
-		copyState(s, &ss.mem[i])
+// row sets r (all but its stamp) to the export row of state i and cov to
+// its pose covariance (row-major, as estimator.State.PoseCovarianceInto
+// gives it). It reads states in any order from memory; from the file,
+// from one goroutine at a time.
+func (sr *smoothedRows) row(i int, r *trackRow, cov *[9]float64) error {
+	if sr.file == nil {
+		copy(r.v[:], sr.v[12*i:12*i+12])
+		r.offset = sr.offset[i/64]&(1<<(i%64)) != 0
+		lo, ok := sr.lower[i]
+		if !ok {
+			lo = [3]float64{r.v[4], r.v[5], r.v[7]}
+		}
+		*cov = [9]float64{r.v[3], r.v[4], r.v[5], lo[0], r.v[6], r.v[7], lo[1], lo[2], r.v[8]}
 		return nil
 	}
-	if ss.rd == nil {
-		if err := ss.file.flush(); err != nil {
+	if sr.rd == nil {
+		if err := sr.file.flush(); err != nil {
 			return err
 		}
-		ss.rd = ss.file.reader()
+		sr.rd = sr.file.reader()
 	}
-	b, err := ss.rd.record(i)
+	b, err := sr.rd.record(i)
 	if err != nil {
 		return err
 	}
-	getState(b, s)
+	getState(b, &sr.tmp)
+	*r = rowOf(0, &sr.tmp)
+	sr.tmp.PoseCovarianceInto(cov)
 	return nil
 }
 
-func (ss *stateStore) close() error {
-	if ss.file != nil {
-		ss.file.flush()
-		return ss.file.f.Close()
+// state returns state i whole, for i%every == 0 and i == n-1.
+func (sr *smoothedRows) state(i int) *estimator.State { return sr.kept[i] }
+
+func (sr *smoothedRows) close() error {
+	if sr.free != nil {
+		sr.free()
+		sr.v, sr.free = nil, nil
+	}
+	if sr.file != nil {
+		sr.file.flush()
+		return sr.file.f.Close()
 	}
 	return nil
 }

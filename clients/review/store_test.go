@@ -61,10 +61,12 @@ func sameStateBits(a, b *estimator.State) bool {
 	return true
 }
 
-// TestStoresRoundTrip: steps and smoothed states come back from the
-// compact files bit for bit, whatever their covariances (symmetric or not,
-// negative zeros, NaN), with Post equal to Pred or not, and any Jacobian;
-// over several chunks, read forwards and backwards.
+// TestStoresRoundTrip: steps come back from the compact files bit for
+// bit, whatever their covariances (symmetric or not, negative zeros, NaN),
+// with Post equal to Pred or not, and any Jacobian; over several chunks,
+// read forwards and backwards. The smoothed store gives each state's
+// export row and pose covariance bit for bit, from memory and from its
+// file, and the states drawn whole.
 func TestStoresRoundTrip(t *testing.T) {
 	for _, k := range []int{3, 4, 7, estimator.MaxStates} {
 		rng := rand.New(rand.NewPCG(uint64(k), 5))
@@ -89,9 +91,17 @@ func TestStoresRoundTrip(t *testing.T) {
 			s.F[(k-1)*estimator.MaxStates+k-1] = 0.99
 		}
 		store := newStepStore(t.TempDir(), 1) // on disk from the first step
-		states, err := newStateStore(t.TempDir(), n, k, true)
+		const every = 100
+		disk, err := newSmoothedRows(t.TempDir(), n, k, every, 0)
 		if err != nil {
 			t.Fatal(err)
+		}
+		mem, err := newSmoothedRows(t.TempDir(), n, k, every, int64(n)*rowBytes)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !disk.onDisk() || mem.onDisk() {
+			t.Fatalf("k %d: on disk %v and %v", k, disk.onDisk(), mem.onDisk())
 		}
 		for i := range steps {
 			if err := store.add(&steps[i]); err != nil {
@@ -127,29 +137,53 @@ func TestStoresRoundTrip(t *testing.T) {
 				t.Fatal(err)
 			}
 			check(i, &st, false)
-			if err := states.SetSmoothed(i, &steps[i].Post); err != nil {
+			for _, sm := range []*smoothedRows{disk, mem} {
+				if err := sm.SetSmoothed(i, &steps[i].Post); err != nil {
+					t.Fatal(err)
+				}
+			}
+		}
+		for _, sm := range []*smoothedRows{disk, mem} {
+			if err := sm.flush(); err != nil {
 				t.Fatal(err)
 			}
 		}
-		if err := states.flush(); err != nil {
-			t.Fatal(err)
-		}
 		rd := store.reader()
-		var s estimator.State
 		for i := 0; i < n; i++ {
 			var err error
 			if st.StampNs, st.Start, err = rd.readPost(i, &st.Post); err != nil {
 				t.Fatal(err)
 			}
 			check(i, &st, true)
-			if err := states.get(i, &s); err != nil {
-				t.Fatal(err)
-			}
-			if !sameStateBits(&s, &steps[i].Post) {
-				t.Fatalf("k %d: smoothed state %d differs", k, i)
+			want := rowOf(0, &steps[i].Post)
+			var wantCov [9]float64
+			steps[i].Post.PoseCovarianceInto(&wantCov)
+			for _, sm := range []*smoothedRows{disk, mem} {
+				var r trackRow
+				var cov [9]float64
+				if err := sm.row(i, &r, &cov); err != nil {
+					t.Fatal(err)
+				}
+				for a := range r.v {
+					if math.Float64bits(r.v[a]) != math.Float64bits(want.v[a]) {
+						t.Fatalf("k %d, on disk %v: smoothed row %d: value %d is %v, want %v", k, sm.onDisk(), i, a, r.v[a], want.v[a])
+					}
+				}
+				for a := range cov {
+					if math.Float64bits(cov[a]) != math.Float64bits(wantCov[a]) {
+						t.Fatalf("k %d, on disk %v: smoothed state %d: pose covariance %d is %v, want %v", k, sm.onDisk(), i, a, cov[a], wantCov[a])
+					}
+				}
+				if r.offset != want.offset {
+					t.Fatalf("k %d: smoothed row %d: offset %v", k, i, r.offset)
+				}
+				if whole := sm.state(i); (i%every == 0 || i == n-1) && (whole == nil || !sameStateBits(whole, &steps[i].Post)) {
+					t.Fatalf("k %d, on disk %v: smoothed state %d not kept whole", k, sm.onDisk(), i)
+				}
 			}
 		}
 		store.close()
-		states.close()
+		disk.close()
+		mem.close()
 	}
 }

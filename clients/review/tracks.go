@@ -107,7 +107,7 @@ func (tw *trackWriter) close() error {
 type rowWriter struct {
 	batch   []trackRow
 	full    chan []trackRow
-	free    chan []trackRow
+	pool    *batchPool[trackRow]
 	written chan error
 	closed  bool
 	err     error
@@ -116,7 +116,9 @@ type rowWriter struct {
 const rowBatch = 4096
 
 func newRowWriter(path string) *rowWriter {
-	rw := &rowWriter{batch: make([]trackRow, 0, rowBatch), full: make(chan []trackRow, 2), free: make(chan []trackRow, 3), written: make(chan error, 1)}
+	// Four batches at most: one being filled, two sent, one being written.
+	rw := &rowWriter{full: make(chan []trackRow, 2), pool: newBatchPool[trackRow](4, rowBatch), written: make(chan error, 1)}
+	rw.batch, _ = rw.pool.get(nil)
 	go func() {
 		tw, err := newTrackWriter(path)
 		for b := range rw.full {
@@ -127,10 +129,7 @@ func newRowWriter(path string) *rowWriter {
 			}
 			// Drained to the end after an error as well, so that the
 			// sender ends.
-			select {
-			case rw.free <- b[:0]:
-			default:
-			}
+			rw.pool.put(b)
 		}
 		if cerr := tw.close(); err == nil {
 			err = cerr
@@ -140,14 +139,10 @@ func newRowWriter(path string) *rowWriter {
 	return rw
 }
 
-func (rw *rowWriter) add(stamp int64, s *estimator.State) {
-	if rw.batch = append(rw.batch, rowOf(stamp, s)); len(rw.batch) == rowBatch {
+func (rw *rowWriter) addRow(r *trackRow) {
+	if rw.batch = append(rw.batch, *r); len(rw.batch) == rowBatch {
 		rw.full <- rw.batch
-		select {
-		case rw.batch = <-rw.free:
-		default:
-			rw.batch = make([]trackRow, 0, rowBatch)
-		}
+		rw.batch, _ = rw.pool.get(nil)
 	}
 }
 

@@ -1,11 +1,16 @@
 package review
 
 import (
+	"encoding/csv"
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"sort"
+	"strconv"
 	"strings"
 	"testing"
+
+	"reckon.example/estimator"
 )
 
 // TestTruthInterpolation checks the truth interpolated to stamps between,
@@ -51,19 +56,82 @@ func TestTruthInterpolation(t *testing.T) {
 }
 
 // TestLogHistogramMedian: the bounded median is within half a bin (0.05%)
-// of the exact one, for chi-square-like values over several decades.
+// of the exact one, for chi-square-like values over several decades, and
+// for values outside the bins counted in an array (below 6e-15, above
+// 1.6e14) or across them, with zeros or not, wherever the median falls.
 func TestLogHistogramMedian(t *testing.T) {
 	rng := rand.New(rand.NewPCG(79, 79))
-	for _, n := range []int{1, 2, 101, 10000} {
+	for _, c := range []struct {
+		n      int
+		lo, hi float64 // uniform log range; 0, 0 for chi-square-like values
+		zeros  bool
+	}{{1, 0, 0, false}, {2, 0, 0, false}, {101, 0, 0, false}, {10000, 0, 0, false},
+		{1001, -200, -40, false}, {1001, 40, 200, false}, {1001, -60, 60, false},
+		{1001, -200, 200, true}, {3, -60, 60, true}, {10000, 33, 40, true}} {
 		var h logHistogram
-		v := make([]float64, n)
+		v := make([]float64, c.n)
 		for i := range v {
-			v[i] = math.Exp(3 * rng.NormFloat64())
+			v[i] = math.Exp(c.lo + (c.hi-c.lo)*rng.Float64())
+			if c.lo == c.hi {
+				v[i] = math.Exp(3 * rng.NormFloat64())
+			}
+			if c.zeros && i%3 == 0 {
+				v[i] = 0
+			}
 			h.add(v[i])
 		}
 		sort.Float64s(v)
-		if got, want := h.median(), v[n/2]; math.Abs(got-want) > 5e-4*want {
-			t.Errorf("%d values: median %g, exact %g", n, got, want)
+		if got, want := h.median(), v[c.n/2]; math.Abs(got-want) > 5e-4*want {
+			t.Errorf("%+v: median %g, exact %g", c, got, want)
+		}
+	}
+}
+
+// TestTruthReaderSplitsAsCSV: the truth reader's own line splitting gives
+// the rows encoding/csv gives (the reference here, as the reader used it
+// before), whatever the file holds: CRLF line ends, empty lines, a last
+// line without its newline, quoted fields (one spanning two lines), a bare
+// carriage return, a bare quote (encoding/csv stops there), a line longer
+// than the reader's buffer, short rows and a header.
+func TestTruthReaderSplitsAsCSV(t *testing.T) {
+	long := "7," + strings.Repeat("1", 70000) + ",2,3\n"
+	for _, text := range []string{
+		"stamp_ns,x_m,y_m,heading_rad\n1,2,3,4\n5,6,7,8\n",
+		"stamp_ns,x_m,y_m,heading_rad\r\n1,2,3,4\r\n\r\n\n5,6,7,8\r\n9,1,2,3",
+		"1,2,3,4\n5,6\n7,8,9,1,2\n\n3,4,5,6\r",
+		"1,2,3,4\n\"5\",6,7,8\n9,\"1\n2\",3,4\n5,6,7,8\n",
+		"1,2,3,4\n5,6\r7,8,9\n1,2,3,4\n",
+		"1,2,3,4\n5,6\"7,8,9\n1,2,3,4\n",
+		"1,2,3,4\n" + long + "5,6,7,8\n",
+		"x,1e3,-2.5e-1,0x1p-2\n10,1e3,-2.5e-1,0x1p-2\n11,nan,inf,-0\n",
+		"",
+	} {
+		var want []truthRow
+		r := csv.NewReader(strings.NewReader(text))
+		r.FieldsPerRecord = -1
+		for {
+			rec, err := r.Read()
+			if err != nil {
+				break
+			}
+			if len(rec) < 4 {
+				continue
+			}
+			stamp, err := strconv.ParseInt(rec[0], 10, 64)
+			if err != nil {
+				continue
+			}
+			x, _ := strconv.ParseFloat(rec[1], 64)
+			y, _ := strconv.ParseFloat(rec[2], 64)
+			h, _ := strconv.ParseFloat(rec[3], 64)
+			want = append(want, truthRow{stamp, estimator.Pose{X: x, Y: y, Heading: h}})
+		}
+		var got []truthRow
+		for tr := newTruthReader(strings.NewReader(text)); tr.haveNext; tr.advance() {
+			got = append(got, tr.next)
+		}
+		if fmt.Sprint(got) != fmt.Sprint(want) {
+			t.Errorf("%q:\n got %v\nwant %v", text[:min(len(text), 60)], got, want)
 		}
 	}
 }

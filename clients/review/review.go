@@ -1073,7 +1073,7 @@ func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outD
 			if positionNEES(p, tp) <= position95 {
 				fIn++
 			}
-			if positionNEES(smoothed, tp) <= position95 {
+			if rowPositionNEES(srow, tp) <= position95 {
 				sIn++
 			}
 			if fn, sn := it.nees[0], it.nees[1]; !math.IsNaN(fn) && !math.IsNaN(sn) {
@@ -1122,12 +1122,22 @@ var position95 = distuv.ChiSquared{K: 2}.Quantile(0.95)
 func positionNEES(s *estimator.State, tr estimator.Pose) float64 {
 	var c [9]float64
 	s.PoseCovarianceInto(&c)
-	a, b, d := c[0], c[1], c[4]
+	return nees2(c[0], c[1], c[4], tr.X-s.MeanAt(0), tr.Y-s.MeanAt(1))
+}
+
+// rowPositionNEES is positionNEES for a track row (the covariance's upper
+// entries).
+func rowPositionNEES(r *trackRow, tr estimator.Pose) float64 {
+	return nees2(r.v[3], r.v[4], r.v[6], tr.X-r.v[0], tr.Y-r.v[1])
+}
+
+// nees2 is e^T C^-1 e for C = [a b; b d], infinite when C is not positive
+// definite.
+func nees2(a, b, d, ex, ey float64) float64 {
 	det := a*d - b*b
 	if !(a > 0) || !(det > 0) {
 		return math.Inf(1)
 	}
-	ex, ey := tr.X-s.MeanAt(0), tr.Y-s.MeanAt(1)
 	return (d*ex*ex - 2*b*ex*ey + a*ey*ey) / det
 }
 

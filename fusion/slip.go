@@ -49,7 +49,16 @@ import (
 // alarms that often more; each test is therefore made at the gate's
 // probability of error divided by turnTests (Bonferroni's correction), so
 // that an honest interval raises one with at most the gate's probability.
+//
+// The factor is bounded by maxSlipFactor, the whole slip's: a wheel
+// slipping 40% for 0.8 s needs about 5e4; a disagreement that needs more
+// (an IMU that turned 2.8 rad in 0.125 s while the wheels did not) is no
+// slip that wider steps describe, and an unbounded factor, compounded over
+// a few intervals, put variances of 1e21 beside ones of 1e-2 into the
+// covariance, which then was no longer positive definite in float64
+// (FuzzSamples found it).
 const (
+	maxSlipFactor  = 1e6
 	turnMinNs      = 15e6
 	turnBaselineNs = 100e6
 	turnTests      = turnBaselineNs / 10e6
@@ -111,6 +120,9 @@ func (r *Robot) checkTurn(res *Result, at int) {
 		k = (delta*delta - vi) / vw // ns > gate > 1 makes it above 1
 	case slipping:
 		k = (sum*sum - sl.varSum - vi) / vw
+	}
+	if k > 1 {
+		k = min(k, maxSlipFactor/max(sl.factor, 1))
 	}
 	if k > 1 {
 		r.inflateSteps(first, b.stamp, k)

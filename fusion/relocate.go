@@ -157,7 +157,9 @@ func (r *Robot) solvePose(set []candidate) relocation {
 	}
 	var best relocation
 	for _, x := range starts {
-		sol := gaussNewton(set, x)
+		sol := gaussNewton(x, func(x estimator.Pose) (*mat.SymDense, *mat.VecDense, float64, int, bool) {
+			return normalEquations(set, x)
+		})
 		if sol.ok && (!best.ok || sol.cost < best.cost) {
 			best = sol
 		}
@@ -176,12 +178,13 @@ func seenFrom(c *candidate, th float64) estimator.Pose {
 	return estimator.Compose(estimator.Detach(s, c.meas.Mount), c.rel)
 }
 
-// gaussNewton runs Gauss-Newton from x0: x += (J^T W J)^-1 J^T W v, until the
-// step is below relocateStepM or the iterations run out.
-func gaussNewton(set []candidate, x estimator.Pose) relocation {
-	var sol relocation
+// gaussNewton runs Gauss-Newton from x0 on the normal equations that eq
+// forms at a pose (J^T W J, J^T W v, v^T W v and the dimension): x += (J^T W
+// J)^-1 J^T W v, until the step is below relocateStepM (the solution is
+// then x, with the equations there) or the iterations run out.
+func gaussNewton(x estimator.Pose, eq func(estimator.Pose) (*mat.SymDense, *mat.VecDense, float64, int, bool)) relocation {
 	for it := 0; it < relocateIterations; it++ {
-		info, grad, cost, dim, ok := normalEquations(set, x)
+		info, grad, cost, dim, ok := eq(x)
 		if !ok {
 			return relocation{}
 		}
@@ -193,18 +196,12 @@ func gaussNewton(set []candidate, x estimator.Pose) relocation {
 		if err := ch.SolveVecTo(&d, grad); err != nil {
 			return relocation{}
 		}
-		x = estimator.Pose{X: x.X + d.AtVec(0), Y: x.Y + d.AtVec(1), Heading: estimator.Wrap(x.Heading + d.AtVec(2))}
-		sol = relocation{pose: x, info: info, cost: cost, dim: dim}
 		if math.Abs(d.AtVec(0))+math.Abs(d.AtVec(1))+math.Abs(d.AtVec(2)) < relocateStepM {
-			info, _, cost, dim, ok := normalEquations(set, x)
-			if !ok {
-				return relocation{}
-			}
 			return relocation{pose: x, info: info, cost: cost, dim: dim, ok: true}
 		}
+		x = estimator.Pose{X: x.X + d.AtVec(0), Y: x.Y + d.AtVec(1), Heading: estimator.Wrap(x.Heading + d.AtVec(2))}
 	}
-	sol.ok = false
-	return sol
+	return relocation{}
 }
 
 // normalEquations returns J^T W J, J^T W v and v^T W v over the candidates
@@ -214,21 +211,12 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 	for i := range set {
 		c := &set[i]
 		m := &c.meas
-		inv := inversePose(c.rel)
-		p := estimator.Compose(x, inv)
-		z, h, err := m.Predicted([]float64{p.X, p.Y, p.Heading})
-		if err != nil {
+		d := m.Kind.Dim()
+		var hx, hr, o mat.Dense
+		z, ok := seenJacobians(c, x, &hx, &hr)
+		if !ok {
 			return nil, nil, 0, 0, false
 		}
-		d := m.Kind.Dim()
-		s, co := math.Sincos(p.Heading)
-		tx, ty := c.rel.X, c.rel.Y
-		jx := mat.NewDense(3, 3, []float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1})
-		jr := mat.NewDense(3, 3, []float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1})
-		hp := mat.NewDense(d, 3, h)
-		var hx, hr, o mat.Dense
-		hx.Mul(hp, jx)
-		hr.Mul(hp, jr)
 		o.Mul(&hr, mat.NewDense(3, 3, c.relCov[:]))
 		wInv := mat.NewDense(d, d, nil)
 		wInv.Mul(&o, hr.T())
@@ -264,6 +252,27 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 	return info, grad, cost, dim, true
 }
 
+// seenJacobians predicts candidate c's measurement from the pose p = x (+)
+// rel^-1 at its stamp, and writes into hx and hr (d x 3, sized or empty)
+// its Jacobians in x and in rel, H dp/dx and H dp/drel (the Jacobians of p
+// at the head of this file).
+func seenJacobians(c *candidate, x estimator.Pose, hx, hr *mat.Dense) ([]float64, bool) {
+	m := &c.meas
+	p := estimator.Compose(x, inversePose(c.rel))
+	z, h, err := m.Predicted([]float64{p.X, p.Y, p.Heading})
+	if err != nil {
+		return nil, false
+	}
+	s, co := math.Sincos(p.Heading)
+	tx, ty := c.rel.X, c.rel.Y
+	jx := mat.NewDense(3, 3, []float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1})
+	jr := mat.NewDense(3, 3, []float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1})
+	hp := mat.NewDense(m.Kind.Dim(), 3, h)
+	hx.Mul(hp, jx)
+	hr.Mul(hp, jr)
+	return z, true
+}
+
 // inversePose returns q with Compose(p, q) the identity pose.
 func inversePose(p estimator.Pose) estimator.Pose {
 	s, c := math.Sincos(p.Heading)
@@ -294,25 +303,9 @@ func inversePose(p estimator.Pose) estimator.Pose {
 // carries (foldBias put the diagonal's into R_i).
 func (r *Robot) refineJoint(set []candidate, bias [][3]int, st *estimator.State, x estimator.Pose) relocation {
 	cal := r.priorCalibration()
-	for it := 0; it < relocateIterations; it++ {
-		info, grad, cost, dim, ok := jointEquations(set, bias, st, &cal, x)
-		if !ok {
-			return relocation{}
-		}
-		var ch mat.Cholesky
-		if !ch.Factorize(info) {
-			return relocation{}
-		}
-		var d mat.VecDense
-		if err := ch.SolveVecTo(&d, grad); err != nil {
-			return relocation{}
-		}
-		if math.Abs(d.AtVec(0))+math.Abs(d.AtVec(1))+math.Abs(d.AtVec(2)) < relocateStepM {
-			return relocation{pose: x, info: info, cost: cost, dim: dim, ok: true}
-		}
-		x = estimator.Pose{X: x.X + d.AtVec(0), Y: x.Y + d.AtVec(1), Heading: estimator.Wrap(x.Heading + d.AtVec(2))}
-	}
-	return relocation{}
+	return gaussNewton(x, func(x estimator.Pose) (*mat.SymDense, *mat.VecDense, float64, int, bool) {
+		return jointEquations(set, bias, st, &cal, x)
+	})
 }
 
 // jointEquations returns A^T S^-1 A, A^T S^-1 v and v^T S^-1 v at pose x
@@ -330,19 +323,11 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 	for i := range set {
 		c := &set[i]
 		m := &c.meas
-		p := estimator.Compose(x, inversePose(c.rel))
-		z, h, err := m.Predicted([]float64{p.X, p.Y, p.Heading})
-		if err != nil {
+		d := m.Kind.Dim()
+		z, ok := seenJacobians(c, x, a.Slice(off[i], off[i+1], 0, 3).(*mat.Dense), g.Slice(off[i], off[i+1], 0, 3).(*mat.Dense))
+		if !ok {
 			return nil, nil, 0, 0, false
 		}
-		d := m.Kind.Dim()
-		s, co := math.Sincos(p.Heading)
-		tx, ty := c.rel.X, c.rel.Y
-		jx := mat.NewDense(3, 3, []float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1})
-		jr := mat.NewDense(3, 3, []float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1})
-		hp := mat.NewDense(d, 3, h)
-		a.Slice(off[i], off[i+1], 0, 3).(*mat.Dense).Mul(hp, jx)
-		g.Slice(off[i], off[i+1], 0, 3).(*mat.Dense).Mul(hp, jr)
 		for k := 0; k < d; k++ {
 			vk := m.Z[k] - z[k]
 			if m.Kind.IsAngle(k) {

@@ -1,7 +1,6 @@
 package main
 
 import (
-	"bufio"
 	"context"
 	"fmt"
 	"math/rand/v2"
@@ -60,41 +59,7 @@ func writeRecording(t *testing.T, dir string, sc fusiontest.Scenario, config fun
 	if err := os.WriteFile(cfgPath, data, 0o644); err != nil {
 		t.Fatal(err)
 	}
-	fs, err := os.Create(samples)
-	if err != nil {
-		t.Fatal(err)
-	}
-	ft, err := os.Create(truth)
-	if err != nil {
-		t.Fatal(err)
-	}
-	ws, wt := bufio.NewWriter(fs), bufio.NewWriter(ft)
-	fmt.Fprintln(wt, "stamp_ns,x_m,y_m,heading_rad")
-	for {
-		in, ok := s.Next()
-		if !ok {
-			break
-		}
-		switch {
-		case in.Odometry != nil:
-			err = convert.WriteJSONLine(ws, convert.OdometryToProto(in.Odometry))
-			fmt.Fprintf(wt, "%d,%.9g,%.9g,%.9g\n", in.Odometry.StampNs, in.Truth.X, in.Truth.Y, in.Truth.Heading)
-		case in.Heading != nil:
-			err = convert.WriteJSONLine(ws, convert.HeadingToProto(in.Heading))
-		default:
-			err = convert.WriteJSONLine(ws, convert.FixToProto(in.Fix))
-		}
-		if err != nil {
-			t.Fatal(err)
-		}
-	}
-	for _, c := range []interface{ Flush() error }{ws, wt} {
-		if err := c.Flush(); err != nil {
-			t.Fatal(err)
-		}
-	}
-	fs.Close()
-	ft.Close()
+	writeSim(t, s, samples, truth)
 	return cfgPath, samples, truth
 }
 

@@ -19,7 +19,14 @@ import (
 // covariance of their own) as JSON Lines, and its truth as CSV.
 func writeRun(t *testing.T, samples, truth string, seconds float64) {
 	t.Helper()
-	s := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 5, IMU: true, Counts: true, DurationS: seconds})
+	s := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 5, IMU: true, Counts: true, DurationS: seconds, SensorCovariance: true})
+	writeSim(t, s, samples, truth)
+}
+
+// writeSim writes a simulated run's samples as JSON Lines in arrival order
+// to samples, and its truth at every odometry sample as CSV to truth.
+func writeSim(t *testing.T, s *fusiontest.Sim, samples, truth string) {
+	t.Helper()
 	fs, err := os.Create(samples)
 	if err != nil {
 		t.Fatal(err)
@@ -42,7 +49,6 @@ func writeRun(t *testing.T, samples, truth string, seconds float64) {
 		case in.Heading != nil:
 			err = convert.WriteJSONLine(ws, convert.HeadingToProto(in.Heading))
 		default:
-			in.Fix.Cov = nil
 			err = convert.WriteJSONLine(ws, convert.FixToProto(in.Fix))
 		}
 		if err != nil {

@@ -98,6 +98,28 @@ func (r *Robot) AppendSteps(dst []Step) []Step {
 	return dst
 }
 
+// ReadySteps returns the number of steps that became final and were not
+// taken yet.
+func (r *Robot) ReadySteps() int {
+	if r.steps == nil {
+		return 0
+	}
+	return len(r.steps.ready)
+}
+
+// SwapSteps returns the steps that became final since the last call (of
+// it, AppendSteps or TakeSteps) and keeps spare, emptied, for the next
+// ones: a caller that passes the slices it is done with back collects a
+// long run's steps without copying them again or allocating.
+func (r *Robot) SwapSteps(spare []Step) []Step {
+	if r.steps == nil {
+		return spare[:0]
+	}
+	out := r.steps.ready
+	r.steps.ready = spare[:0]
+	return out
+}
+
 // FinishSteps makes every step of the run final (at its end) and returns
 // the ones not yet taken. The robot takes no late samples older than its
 // newest odometry afterwards.

@@ -229,18 +229,21 @@ func TestSmootherBeatsFilter(t *testing.T) {
 func sq(v float64) float64 { return v * v }
 
 // TestAppendStepsEqualsTakeSteps: collecting a run's steps with
-// AppendSteps into one reused buffer gives the same steps, bit for bit, as
-// TakeSteps.
+// AppendSteps into one reused buffer, or with SwapSteps passing two buffers
+// back and forth, gives the same steps, bit for bit, as TakeSteps.
 func TestAppendStepsEqualsTakeSteps(t *testing.T) {
 	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 76, DurationS: 30, OutlierFraction: 0.05}
 	s := fusiontest.New(sc)
 	taken, _ := fusion.New(s.Config())
 	appended, _ := fusion.New(s.Config())
+	swapped, _ := fusion.New(s.Config())
 	taken.CollectSteps()
 	appended.CollectSteps()
-	var want, got []fusion.Step
+	swapped.CollectSteps()
+	var want, got, gotSwapped []fusion.Step
 	buf := make([]fusion.Step, 0, 64)
-	for {
+	spare := make([]fusion.Step, 0, 64)
+	for i := 0; ; i++ {
 		in, ok := s.Next()
 		if !ok {
 			break
@@ -250,15 +253,24 @@ func TestAppendStepsEqualsTakeSteps(t *testing.T) {
 		fusiontest.Feed(appended, &in)
 		buf = appended.AppendSteps(buf[:0])
 		got = append(got, buf...)
+		fusiontest.Feed(swapped, &in)
+		if i%7 == 0 || swapped.ReadySteps() > 40 {
+			spare = swapped.SwapSteps(spare)
+			gotSwapped = append(gotSwapped, spare...)
+		}
 	}
 	want = append(want, taken.FinishSteps()...)
 	got = append(got, appended.FinishSteps()...)
-	if len(got) != len(want) || len(want) < 5000 {
-		t.Fatalf("%d steps appended, %d taken", len(got), len(want))
+	gotSwapped = append(gotSwapped, swapped.FinishSteps()...)
+	if len(got) != len(want) || len(gotSwapped) != len(want) || len(want) < 5000 {
+		t.Fatalf("%d steps appended, %d swapped, %d taken", len(got), len(gotSwapped), len(want))
 	}
 	for i := range want {
 		if got[i] != want[i] {
 			t.Fatalf("step %d differs: appended %+v, taken %+v", i, got[i].Post, want[i].Post)
+		}
+		if gotSwapped[i] != want[i] {
+			t.Fatalf("step %d differs: swapped %+v, taken %+v", i, gotSwapped[i].Post, want[i].Post)
 		}
 	}
 }

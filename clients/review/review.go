@@ -353,7 +353,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
-	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, batch: fw.batch(), want: max(src.Run, 1)}
+	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, keep: true, want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		fw.close()
@@ -470,13 +470,6 @@ func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 	return fw
 }
 
-// hand gives the writer a batch and returns an empty one.
-func (fw *stepWriter) hand(b []fusion.Step) []fusion.Step {
-	fw.full <- b
-	b, _ = fw.pool.get(nil)
-	return b
-}
-
 // batch returns the first batch to fill.
 func (fw *stepWriter) batch() []fusion.Step {
 	b, _ := fw.pool.get(nil)
@@ -504,8 +497,10 @@ type recorder struct {
 	// fromNs and toNs are Options.FromNs and ToNs; seen counts the inputs.
 	fromNs, toNs int64
 	seen         int
-	// batch gathers the steps for the writer.
-	batch []fusion.Step
+	// keep is add's keep for the steps the robot holds, pending of them
+	// (the others came with the input being taken).
+	keep    bool
+	pending int
 	// want is the run reviewed; last is the robot's run before the input
 	// being taken, the run whose steps that input hands out.
 	want, last uint64
@@ -517,24 +512,47 @@ type recorder struct {
 	endNewestNs          int64
 }
 
-// add moves the steps that became final (all of them when finish is set)
-// to the batch, those inside the stretch reviewed when they are of the run
-// reviewed (keep) and none otherwise, and hands the batch over when it is
-// full or the replay is done.
+// add takes the steps that became final with the input just taken (all of
+// them when finish is set), keeps those inside the stretch reviewed when
+// they are of the run reviewed (keep) and none otherwise, and hands them
+// over in batches. The steps stay in the robot's buffer until a batch is
+// full, the replay is done or keep changes; the robot then fills an empty
+// batch while the full one goes to the writer, so that no step is copied
+// on the way.
 func (rc *recorder) add(fr *fusion.Robot, finish, keep bool) {
-	n := len(rc.batch)
+	n := fr.ReadySteps()
+	if !finish && keep == rc.keep && n < stepBatch {
+		rc.pending = n
+		return
+	}
+	var b []fusion.Step
 	if finish {
-		rc.batch = append(rc.batch, fr.FinishSteps()...)
+		b = fr.FinishSteps()
 	} else {
-		rc.batch = fr.AppendSteps(rc.batch)
+		b = fr.SwapSteps(rc.fw.batch())
 	}
+	// The first rc.pending steps came with inputs taken as rc.keep says,
+	// the others with this one.
 	kept := 0
-	if keep {
-		kept = len(rc.a.window(rc.batch[n:]))
+	for i := range b {
+		k := keep
+		if i < rc.pending {
+			k = rc.keep
+		}
+		if !k || !rc.a.in(b[i].StampNs) {
+			continue
+		}
+		if kept != i {
+			b[kept] = b[i]
+		}
+		kept++
 	}
-	rc.batch = rc.batch[:n+kept]
-	if len(rc.batch) >= stepBatch || (finish && len(rc.batch) > 0) {
-		rc.batch = rc.fw.hand(rc.batch)
+	rc.keep, rc.pending = keep, 0
+	switch {
+	case kept > 0:
+		rc.fw.full <- b[:kept]
+	case b != nil:
+		rc.fw.pool.put(b)
 	}
 }
 
@@ -597,6 +615,7 @@ func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
 func (rc *recorder) opened(fr *fusion.Robot) {
 	rc.run.Config = fr.Config()
 	fr.CollectSteps()
+	fr.SwapSteps(rc.fw.batch())
 	rc.last = fr.Run()
 }
 
@@ -740,21 +759,6 @@ func (a *accumulator) resolve(resp *pb.IngestResponse) {
 			a.fixVerdict(&a.run.Fixes[i], r.GetVerdict(), r.GetNis(), r.GetRefusal(), r.GetReason())
 		}
 	}
-}
-
-// window keeps the steps inside the stretch reviewed (in place).
-func (a *accumulator) window(steps []fusion.Step) []fusion.Step {
-	out := steps[:0]
-	for i := range steps {
-		switch {
-		case !a.in(steps[i].StampNs):
-		case len(out) == i:
-			out = out[:i+1] // in place already: a Step is 3.7 kB
-		default:
-			out = append(out, steps[i])
-		}
-	}
-	return out
 }
 
 // nisSeries keeps a bounded, evenly thinned series as it grows: past twice

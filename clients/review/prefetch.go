@@ -156,31 +156,27 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 	return err
 }
 
-// trackItem is what the report's forward pass needs of a step: its
-// filtered state, the export row of its smoothed state and, with a truth
-// file, the truth at its stamp and the pose NEES of both states against
-// it.
+// trackItem is what the walk of the smoothed track needs of a step: its
+// stamp, the export row of its smoothed state and, with a truth file, the
+// truth at its stamp and the pose NEES of the smoothed state against it.
 type trackItem struct {
-	stampNs    int64
-	start      bool
-	post       estimator.State
-	smoothed   trackRow
-	smoothCov  [9]float64
-	truth      estimator.Pose
-	truthGapNs int64
-	haveTruth  bool
-	nees       [2]float64 // filtered, smoothed
+	stampNs   int64
+	smoothed  trackRow
+	smoothCov [9]float64
+	truth     estimator.Pose
+	haveTruth bool
+	nees      float64
 }
 
-// prefetchTrack reads the filtered and the smoothed states forwards, and
-// the truth (if not nil), ahead of the report's pass.
+// prefetchTrack reads the steps' stamps and the smoothed states forwards,
+// and the truth (if not nil), ahead of the walk of the smoothed track.
 func prefetchTrack(steps *stepStore, sm *smoothedRows, truth *truthReader) *prefetch[trackItem] {
 	rd := steps.reader()
 	return startPrefetch(steps.Len(), false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
 			var err error
-			if it.stampNs, it.start, err = rd.readPost(lo+j, &it.post); err != nil {
+			if it.stampNs, err = rd.stamp(lo + j); err != nil {
 				return err
 			}
 			if err := sm.row(lo+j, &it.smoothed, &it.smoothCov); err != nil {
@@ -188,11 +184,11 @@ func prefetchTrack(steps *stepStore, sm *smoothedRows, truth *truthReader) *pref
 			}
 			it.haveTruth = false
 			if truth != nil {
-				it.truth, it.truthGapNs, it.haveTruth = truth.at(it.stampNs)
+				it.truth, _, it.haveTruth = truth.at(it.stampNs)
 			}
 			if it.haveTruth {
 				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}
-				it.nees = [2]float64{nees3(&it.post, it.truth), neesOf(sp, &it.smoothCov, it.truth)}
+				it.nees = neesOf(sp, &it.smoothCov, it.truth)
 			}
 		}
 		return nil

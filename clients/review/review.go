@@ -369,7 +369,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	}
 	run.Config = fr.Config()
 	rc.a.finish(rc.ending(fr))
-	if err := smoothAndTrack(rc.a, steps, src.Truth, outDir, opt); err != nil {
+	if err := smoothAndTrack(rc.a, steps, src.Truth, opt); err != nil {
 		return nil, err
 	}
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
@@ -380,15 +380,23 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	return run, nil
 }
 
-// smoothAndTrack smooths the steps and walks both tracks forwards.
-func smoothAndTrack(a *accumulator, steps *stepStore, truth, outDir string, opt Options) error {
+// smoothAndTrack smooths the steps while the filtered track is walked
+// forwards, then walks the smoothed track forwards.
+func smoothAndTrack(a *accumulator, steps *stepStore, truth string, opt Options) error {
 	every := thinEvery(steps.Len(), opt.MaxPoints)
+	fw := walkFiltered(a, steps, truth, every)
 	smoothed, err := smooth(steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
+	if werr := fw.wait(); err == nil {
+		err = werr
+	}
 	if err != nil {
+		if smoothed != nil {
+			smoothed.close()
+		}
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(steps, smoothed, truth, outDir, every)
+	return a.tracks(steps, smoothed, fw, truth)
 }
 
 // thinEvery returns the stride of the tracks' points drawn: every
@@ -1016,10 +1024,108 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 	return q
 }
 
-// tracks walks the steps and smoothed states forwards: the CSV exports, the
-// decimated series, the distance, the uncertainty figures and, with a truth
-// file, the errors.
-func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outDir string, every int) error {
+// filteredWalk walks the filtered states forwards in a goroutine of its
+// own while the smoother runs: the distance, the uncertainty figures, the
+// decimated filtered track and, with a truth file, the filtered errors and
+// each step's filtered pose NEES, which the walk after the smoother pairs
+// with the smoothed one. It writes those fields of the run and nothing else
+// until done is closed.
+type filteredWalk struct {
+	nees     []float64 // by step, with truth
+	fSq      float64
+	fIn      int
+	nTruth   int
+	hasTruth bool
+	err      error
+	done     chan struct{}
+}
+
+func walkFiltered(a *accumulator, steps *stepStore, truthPath string, every int) *filteredWalk {
+	fw := &filteredWalk{done: make(chan struct{}), hasTruth: truthPath != ""}
+	go func() {
+		defer close(fw.done)
+		fw.err = fw.walk(a, steps, truthPath, every)
+	}()
+	return fw
+}
+
+// wait waits for the walk and returns its error.
+func (fw *filteredWalk) wait() error {
+	<-fw.done
+	return fw.err
+}
+
+func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string, every int) error {
+	run, sum := a.run, &a.run.Summary
+	var truth *truthReader
+	if truthPath != "" {
+		tr, f, err := openTruth(truthPath)
+		if err != nil {
+			return fmt.Errorf("truth: %w", err)
+		}
+		defer f.Close()
+		truth = tr
+	}
+	n := steps.Len()
+	if truth != nil {
+		fw.nees = make([]float64, n)
+	}
+	rd := steps.reader()
+	var p estimator.State
+	var prevX, prevY float64
+	for i := 0; i < n; i++ {
+		stamp, start, err := rd.readPost(i, &p)
+		if err != nil {
+			return err
+		}
+		if i > 0 && !start {
+			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
+		}
+		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
+		r95 := p.Position95()
+		if r95 > sum.Max95M {
+			sum.Max95M, sum.Max95AtNs = r95, stamp
+		}
+		sum.Final95M = r95
+		hs := math.Sqrt(p.Var(2))
+		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
+		sum.FinalHeadingSt = hs
+		var tp estimator.Pose
+		haveTruth := false
+		if truth != nil {
+			var gapNs int64
+			tp, gapNs, haveTruth = truth.at(stamp)
+			sum.TruthSteps++
+			if haveTruth {
+				sum.TruthMatched++
+				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, gapNs)
+			}
+		}
+		if haveTruth {
+			fw.fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
+			fw.nTruth++
+			if positionNEES(&p, tp) <= position95 {
+				fw.fIn++
+			}
+			fw.nees[i] = nees3(&p, tp)
+		}
+		if i%every == 0 || i == n-1 {
+			run.Filtered = append(run.Filtered, Point{stamp, p})
+			if truth != nil {
+				if !haveTruth {
+					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
+				}
+				run.Truth = append(run.Truth, tp)
+			}
+		}
+	}
+	return nil
+}
+
+// tracks walks the smoothed states forwards once the smoother and the
+// filtered walk are done: the smoothed track's export, its decimated
+// series and, with a truth file, the smoothed errors.
+func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, fw *filteredWalk, truthPath string) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
@@ -1036,51 +1142,26 @@ func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outD
 		truth = tr
 	}
 	n := steps.Len()
+	every := sm.every
 	pf := prefetchTrack(steps, sm, truth)
 	defer pf.close()
-	var fSq, sSq, fNees, sNees float64
+	var sSq, fNees, sNees float64
 	var fAll, sAll logHistogram
-	var nTruth, nNees, fIn, sIn int
-	var prevX, prevY float64
+	var nNees, sIn int
 	for i := 0; i < n; i++ {
 		it, err := pf.at(i)
 		if err != nil {
 			return err
 		}
-		p, srow, stamp := &it.post, &it.smoothed, it.stampNs
-		if i > 0 && !it.start {
-			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
-		}
-		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
-		r95 := p.Position95()
-		if r95 > sum.Max95M {
-			sum.Max95M, sum.Max95AtNs = r95, stamp
-		}
-		sum.Final95M = r95
-		hs := math.Sqrt(p.Var(2))
-		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
-		sum.FinalHeadingSt = hs
+		srow, stamp := &it.smoothed, it.stampNs
 		srow.stampNs = stamp
 		rows.addRow(srow)
-		tp, haveTruth := it.truth, it.haveTruth
-		if truth != nil {
-			sum.TruthSteps++
-			if haveTruth {
-				sum.TruthMatched++
-				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, it.truthGapNs)
-			}
-		}
-		if haveTruth {
-			fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
+		if tp := it.truth; it.haveTruth {
 			sSq += sq(srow.v[0]-tp.X) + sq(srow.v[1]-tp.Y)
-			nTruth++
-			if positionNEES(p, tp) <= position95 {
-				fIn++
-			}
 			if rowPositionNEES(srow, tp) <= position95 {
 				sIn++
 			}
-			if fn, sn := it.nees[0], it.nees[1]; !math.IsNaN(fn) && !math.IsNaN(sn) {
+			if fn, sn := fw.nees[i], it.nees; !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
 				sNees += sn
 				nNees++
@@ -1089,23 +1170,16 @@ func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, truthPath, outD
 			}
 		}
 		if i%every == 0 || i == n-1 {
-			run.Filtered = append(run.Filtered, Point{stamp, *p})
 			run.Smoothed = append(run.Smoothed, Point{stamp, *sm.state(i)})
-			if truth != nil {
-				if !haveTruth {
-					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
-				}
-				run.Truth = append(run.Truth, tp)
-			}
 		}
 	}
 	if err := rows.close(); err != nil {
 		return err
 	}
-	if nTruth > 0 {
+	if nTruth := fw.nTruth; nTruth > 0 {
 		sum.HasTruth = true
-		sum.FilteredRMSM, sum.SmoothedRMSM = math.Sqrt(fSq/float64(nTruth)), math.Sqrt(sSq/float64(nTruth))
-		sum.FilteredInside95, sum.SmoothedInside95 = float64(fIn)/float64(nTruth), float64(sIn)/float64(nTruth)
+		sum.FilteredRMSM, sum.SmoothedRMSM = math.Sqrt(fw.fSq/float64(nTruth)), math.Sqrt(sSq/float64(nTruth))
+		sum.FilteredInside95, sum.SmoothedInside95 = float64(fw.fIn)/float64(nTruth), float64(sIn)/float64(nTruth)
 		if nNees > 0 {
 			sum.FilteredNEES, sum.SmoothedNEES = fNees/float64(nNees), sNees/float64(nNees)
 			sum.FilteredNEESMedian, sum.SmoothedNEESMedian = fAll.median(), sAll.median()

@@ -115,7 +115,10 @@ func (osFS) Lock(name string) (File, error) {
 }
 
 // readFile reads a whole file into one buffer.
-func readFile(fsys FS, name string) ([]byte, error) {
+func readFile(fsys FS, name string) ([]byte, error) { return readFileInto(fsys, name, nil) }
+
+// readFileInto is readFile into buf when the file fits in its capacity.
+func readFileInto(fsys FS, name string, buf []byte) ([]byte, error) {
 	f, err := fsys.OpenFile(name, os.O_RDONLY, 0)
 	if err != nil {
 		return nil, err
@@ -125,7 +128,10 @@ func readFile(fsys FS, name string) ([]byte, error) {
 	if fi, err := f.Stat(); err == nil && fi.Size() > 0 {
 		size = int(fi.Size())
 	}
-	b := make([]byte, 0, size+1) // +1: ReadAll sees EOF without growing
+	b := buf[:0]
+	if cap(b) < size+1 {
+		b = make([]byte, 0, size+1) // +1: ReadAll sees EOF without growing
+	}
 	for {
 		n, err := f.Read(b[len(b):cap(b)])
 		b = b[:len(b)+n]

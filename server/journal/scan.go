@@ -86,6 +86,10 @@ type scanState struct {
 	damaged bool     // damage seen: an output without its input is skipped
 	gap     error    // the first continuity break
 	stopped bool     // the visitor gets nothing more: a gap without Visitor.Gap
+	// buf is the last segment's buffer, which the next one reuses when
+	// nothing refers to it: records are decoded into messages of their
+	// own, and only a Snapshot visitor keeps payloads past their segment.
+	buf []byte
 }
 
 // Read reads a robot's journal in the OS file system (ReadFS).
@@ -225,10 +229,15 @@ func (st *scanState) pair(inB, outB []byte) error {
 // segment scans one segment file: first is segment 0, last the last one
 // found.
 func (st *scanState) segment(path string, first, last bool) error {
-	b, err := readFile(st.fs, path)
+	var reuse []byte
+	if st.v.Snapshot == nil {
+		reuse = st.buf
+	}
+	b, err := readFileInto(st.fs, path, reuse)
 	if err != nil {
 		return err
 	}
+	st.buf = b
 	sc := st.sc
 	off, reason := headerSize, ""
 	if len(b) < headerSize {

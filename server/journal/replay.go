@@ -188,6 +188,10 @@ type replayer struct {
 	opt ReplayOptions
 	cfg fusion.Config
 	fr  *fusion.Robot
+	// The responses and the Replayed handed out next, allocated
+	// replayBatch at a time (each lives as long as any of its block).
+	resps    []pb.IngestResponse
+	replayed []Replayed
 }
 
 func (rp *replayer) apply(it replayItem) error {
@@ -240,7 +244,12 @@ func (rp *replayer) restore(s *pb.JournalSnapshot) error {
 
 // input takes one journaled input and, with Check, compares the outcome.
 func (rp *replayer) input(in *pb.JournalInput, out *pb.JournalOutput) error {
-	resp, taken := convert.Take(rp.fr, in.GetSample(), out.GetResponse().GetClientSequence())
+	if len(rp.resps) == 0 {
+		rp.resps = make([]pb.IngestResponse, replayBatch)
+	}
+	resp := &rp.resps[0]
+	rp.resps = rp.resps[1:]
+	taken := convert.TakeInto(resp, rp.fr, in.GetSample(), out.GetResponse().GetClientSequence())
 	if rp.opt.Check {
 		if err := check(rp.fr, in, resp, taken, out); err != nil {
 			return err
@@ -249,7 +258,13 @@ func (rp *replayer) input(in *pb.JournalInput, out *pb.JournalOutput) error {
 	if rp.opt.Input == nil {
 		return nil
 	}
-	return rp.opt.Input(&Replayed{Robot: rp.fr, Input: in, Response: resp, Taken: taken, Recorded: out})
+	if len(rp.replayed) == 0 {
+		rp.replayed = make([]Replayed, replayBatch)
+	}
+	x := &rp.replayed[0]
+	rp.replayed = rp.replayed[1:]
+	*x = Replayed{Robot: rp.fr, Input: in, Response: resp, Taken: taken, Recorded: out}
+	return rp.opt.Input(x)
 }
 
 // check compares a replayed input's outcome with the recorded output.

@@ -1,17 +1,21 @@
 package review
 
 import (
+	"sync/atomic"
 	"syscall"
 	"unsafe"
 )
 
 // allocRows returns n zero float64s outside the Go heap (an anonymous
 // mapping), and the function that gives them back. The smoothed rows of an
-// hour take about 100 MB: on the heap, the collector would let the heap
+// hour take about 70 MB: on the heap, the collector would let the heap
 // grow to twice that before collecting, past the review's memory bound;
 // outside it they cost their size and no more. Huge pages where the
 // system gives them on request: faulting in 100 MB a page of 4 kB at a time
-// cost 0.4 s of CPU, as much as writing the rows to a file.
+// cost 0.4 s of CPU, as much as writing the rows to a file. Where it does
+// not, a goroutine of its own faults the pages in ahead of the smoother,
+// which fills them last first, so that the faults take the other core
+// (madvise MADV_POPULATE_WRITE, Linux 5.14).
 func allocRows(n int) ([]float64, func(), error) {
 	if n == 0 {
 		return nil, func() {}, nil
@@ -21,5 +25,23 @@ func allocRows(n int) ([]float64, func(), error) {
 		return nil, nil, err
 	}
 	syscall.Madvise(b, syscall.MADV_HUGEPAGE) // a hint: without it, small pages
-	return unsafe.Slice((*float64)(unsafe.Pointer(&b[0])), n), func() { syscall.Munmap(b) }, nil
+	var stop atomic.Bool
+	done := make(chan struct{})
+	go func() {
+		defer close(done)
+		const madvPopulateWrite = 23
+		const step = 4 << 20
+		// Chunks from the end; each starts on a page, as madvise wants.
+		for lo, hi := (len(b)-1)/step*step, len(b); hi > 0 && !stop.Load(); lo, hi = lo-step, lo {
+			if syscall.Madvise(b[lo:hi], madvPopulateWrite) != nil {
+				return // an older kernel: the pages fault in as they are written
+			}
+		}
+	}()
+	free := func() {
+		stop.Store(true)
+		<-done
+		syscall.Munmap(b)
+	}
+	return unsafe.Slice((*float64)(unsafe.Pointer(&b[0])), n), free, nil
 }

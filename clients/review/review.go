@@ -350,14 +350,13 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw := newStepWriter(steps, run.FilteredCSV)
+	fw := newStepWriter(steps)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
 	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, keep: true, want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		fw.close()
-		os.Remove(run.FilteredCSV)
 		return nil, err
 	}
 	if err := rc.runs(fr, src.Run); err != nil {
@@ -434,8 +433,8 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 	return smoothed, nil
 }
 
-// stepWriter stores the steps, and writes the filtered track's export,
-// in a goroutine of its own while the replay goes on. The replay fills
+// stepWriter stores the steps in a goroutine of its own while the replay
+// goes on. The replay fills
 // batches of steps and hands them over; the writer hands them back empty
 // for reuse, so that an hour's 720,000 steps of 3.7 kB cost no garbage.
 type stepWriter struct {
@@ -451,27 +450,21 @@ type stepWriter struct {
 // several steps when the batch is nearly full.
 const stepBatch = 256
 
-func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
+func newStepWriter(steps *stepStore) *stepWriter {
 	// Four batches at most: one being filled, two sent, one being written.
 	fw := &stepWriter{full: make(chan []fusion.Step, 2), pool: newBatchPool[fusion.Step](4, stepBatch+stepBatch/4), written: make(chan error, 1)}
 	go func() {
-		tw, err := newTrackWriter(trackPath)
+		var err error
 		for b := range fw.full {
 			for i := range b {
 				if err == nil {
 					err = steps.add(&b[i])
-				}
-				if err == nil {
-					err = tw.add(b[i].StampNs, &b[i].Post)
 				}
 			}
 			fw.pool.put(b)
 		}
 		if err == nil {
 			err = steps.flush()
-		}
-		if cerr := tw.close(); err == nil {
-			err = cerr
 		}
 		fw.written <- err
 	}()
@@ -1025,8 +1018,11 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 }
 
 // filteredWalk walks the filtered states forwards in a goroutine of its
-// own while the smoother runs: the distance, the uncertainty figures, the
-// decimated filtered track and, with a truth file, the filtered errors and
+// own while the smoother runs: the filtered track's export (formatting it
+// here, where the smoother leaves the other core half idle, instead of
+// during the replay, which keeps both busy), the distance, the uncertainty
+// figures, the decimated filtered track and, with a truth file, the
+// filtered errors and
 // each step's filtered pose NEES, which the walk after the smoother pairs
 // with the smoothed one. It writes those fields of the run and nothing else
 // until done is closed.
@@ -1055,8 +1051,17 @@ func (fw *filteredWalk) wait() error {
 	return fw.err
 }
 
-func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string, every int) error {
+func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string, every int) (err error) {
 	run, sum := a.run, &a.run.Summary
+	tw, err := newTrackWriter(run.FilteredCSV)
+	if err != nil {
+		return err
+	}
+	defer func() {
+		if cerr := tw.close(); err == nil {
+			err = cerr
+		}
+	}()
 	var truth *truthReader
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -1082,7 +1087,11 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
-		r95 := p.Position95()
+		row := rowOf(stamp, &p)
+		if err := tw.addRow(&row); err != nil {
+			return err
+		}
+		r95 := row.v[9] // p.Position95()
 		if r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, stamp
 		}

@@ -168,25 +168,21 @@ type trackItem struct {
 	nees      float64
 }
 
-// prefetchTrack reads the steps' stamps and the smoothed states forwards,
-// and the truth (if not nil), ahead of the walk of the smoothed track.
-func prefetchTrack(steps *stepStore, sm *smoothedRows, truth *truthReader) *prefetch[trackItem] {
-	rd := steps.reader()
-	return startPrefetch(steps.Len(), false, func(lo int, dst []trackItem) error {
+// prefetchTrack reads the smoothed states forwards, with the stamps and
+// the truth the filtered walk kept, ahead of the walk of the smoothed
+// track.
+func prefetchTrack(sm *smoothedRows, fw *filteredWalk) *prefetch[trackItem] {
+	return startPrefetch(len(fw.stamps), false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
-			var err error
-			if it.stampNs, err = rd.stamp(lo + j); err != nil {
+			i := lo + j
+			it.stampNs = fw.stamps[i]
+			if err := sm.row(i, &it.smoothed, &it.smoothCov); err != nil {
 				return err
 			}
-			if err := sm.row(lo+j, &it.smoothed, &it.smoothCov); err != nil {
-				return err
-			}
-			it.haveTruth = false
-			if truth != nil {
-				it.truth, _, it.haveTruth = truth.at(it.stampNs)
-			}
+			it.haveTruth = fw.truth != nil && fw.have[i]
 			if it.haveTruth {
+				it.truth = fw.truth[i]
 				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}
 				it.nees = neesOf(sp, &it.smoothCov, it.truth)
 			}

@@ -395,7 +395,7 @@ func smoothAndTrack(a *accumulator, steps *stepStore, truth string, opt Options)
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(steps, smoothed, fw, truth)
+	return a.tracks(smoothed, fw)
 }
 
 // thinEvery returns the stride of the tracks' points drawn: every
@@ -1027,7 +1027,12 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 // with the smoothed one. It writes those fields of the run and nothing else
 // until done is closed.
 type filteredWalk struct {
-	nees     []float64 // by step, with truth
+	// By step: the stamps and, with truth, the truth at each stamp (have
+	// says where there is one) and the filtered pose NEES against it.
+	stamps   []int64
+	truth    []estimator.Pose
+	have     []bool
+	nees     []float64
 	fSq      float64
 	fIn      int
 	nTruth   int
@@ -1072,8 +1077,9 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 		truth = tr
 	}
 	n := steps.Len()
+	fw.stamps = make([]int64, n)
 	if truth != nil {
-		fw.nees = make([]float64, n)
+		fw.truth, fw.have, fw.nees = make([]estimator.Pose, n), make([]bool, n), make([]float64, n)
 	}
 	rd := steps.reader()
 	var p estimator.State
@@ -1083,6 +1089,7 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 		if err != nil {
 			return err
 		}
+		fw.stamps[i] = stamp
 		if i > 0 && !start {
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
@@ -1111,6 +1118,7 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 			}
 		}
 		if haveTruth {
+			fw.truth[i], fw.have[i] = tp, true
 			fw.fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
 			fw.nTruth++
 			if positionNEES(&p, tp) <= position95 {
@@ -1134,25 +1142,16 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 // tracks walks the smoothed states forwards once the smoother and the
 // filtered walk are done: the smoothed track's export, its decimated
 // series and, with a truth file, the smoothed errors.
-func (a *accumulator) tracks(steps *stepStore, sm *smoothedRows, fw *filteredWalk, truthPath string) error {
+func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
 	// of their own.
 	rows := newRowWriter(run.SmoothedCSV)
 	defer rows.close()
-	var truth *truthReader
-	if truthPath != "" {
-		tr, f, err := openTruth(truthPath)
-		if err != nil {
-			return fmt.Errorf("truth: %w", err)
-		}
-		defer f.Close()
-		truth = tr
-	}
-	n := steps.Len()
+	n := len(fw.stamps)
 	every := sm.every
-	pf := prefetchTrack(steps, sm, truth)
+	pf := prefetchTrack(sm, fw)
 	defer pf.close()
 	var sSq, fNees, sNees float64
 	var fAll, sAll logHistogram

@@ -528,18 +528,6 @@ func (ss *stepStore) readPost(i int, post *estimator.State) (stampNs int64, star
 	return ss.fileReader().readPost(i, post)
 }
 
-// stamp returns the stamp of step i.
-func (ss *stepStore) stamp(i int) (int64, error) {
-	if ss.file == nil {
-		return ss.mem[i/chunk][i%chunk].StampNs, nil
-	}
-	b, err := ss.fileReader().record(i)
-	if err != nil {
-		return 0, err
-	}
-	return int64(binary.LittleEndian.Uint64(b)), nil
-}
-
 func (ss *stepStore) fileReader() *stepReader {
 	if ss.rd == nil {
 		ss.rd = ss.file.reader()

@@ -90,6 +90,8 @@ type scanState struct {
 	// nothing refers to it: records are decoded into messages of their
 	// own, and only a Snapshot visitor keeps payloads past their segment.
 	buf []byte
+	// inputs are the JournalInputs handed out next (st.input).
+	inputs []pb.JournalInput
 }
 
 // Read reads a robot's journal in the OS file system (ReadFS).
@@ -208,23 +210,47 @@ func (st *scanState) firstDamage() error {
 
 // pair decodes an input and its output and hands them to the visitor.
 func (st *scanState) pair(inB, outB []byte) error {
-	var rin, rout pb.JournalRecord
-	if err := proto.Unmarshal(inB, &rin); err != nil {
+	in, err := st.input(inB)
+	if err != nil {
 		return fmt.Errorf("journal input: %w", err)
 	}
 	if st.v.Input != nil {
 		st.sc.Replayed++
-		return st.v.Input(rin.GetInput())
+		return st.v.Input(in)
 	}
 	if st.v.Pair == nil {
 		return nil
 	}
+	var rout pb.JournalRecord
 	if err := proto.Unmarshal(outB, &rout); err != nil {
 		return fmt.Errorf("journal output: %w", err)
 	}
 	st.sc.Replayed++
-	return st.v.Pair(rin.GetInput(), rout.GetOutput())
+	return st.v.Pair(in, rout.GetOutput())
 }
+
+// input decodes an input record. The writer puts the input message as the
+// record's one field, which is decoded straight into a JournalInput (taken
+// from a block of inputBlock: a replay decodes a million), without the
+// record around it; any other record is decoded whole.
+func (st *scanState) input(b []byte) (*pb.JournalInput, error) {
+	if v, n := protowire.ConsumeBytes(b[1:]); b[0] == KindInput && n > 0 && 1+n == len(b) {
+		if len(st.inputs) == 0 {
+			st.inputs = make([]pb.JournalInput, inputBlock)
+		}
+		in := &st.inputs[0]
+		st.inputs = st.inputs[1:]
+		return in, proto.Unmarshal(v, in)
+	}
+	var rec pb.JournalRecord
+	if err := proto.Unmarshal(b, &rec); err != nil {
+		return nil, err
+	}
+	return rec.GetInput(), nil
+}
+
+// inputBlock is the number of JournalInputs allocated at once.
+const inputBlock = 128
 
 // segment scans one segment file: first is segment 0, last the last one
 // found.

@@ -384,6 +384,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 func smoothAndTrack(a *accumulator, steps *stepStore, truth string, opt Options) error {
 	every := thinEvery(steps.Len(), opt.MaxPoints)
 	fw := walkFiltered(a, steps, truth, every)
+	defer fw.close()
 	smoothed, err := smooth(steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
 	if werr := fw.wait(); err == nil {
 		err = werr
@@ -1039,6 +1040,26 @@ type filteredWalk struct {
 	hasTruth bool
 	err      error
 	done     chan struct{}
+	free     []func()
+}
+
+// keepOff returns n zero values of T outside the heap (allocOff), given
+// back by fw.close.
+func keepOff[T any](fw *filteredWalk, n int) ([]T, error) {
+	v, free, err := allocOff[T](n)
+	if err == nil {
+		fw.free = append(fw.free, free)
+	}
+	return v, err
+}
+
+// close gives back what the walk kept, once it is done and read.
+func (fw *filteredWalk) close() {
+	<-fw.done
+	for _, f := range fw.free {
+		f()
+	}
+	fw.free = nil
 }
 
 func walkFiltered(a *accumulator, steps *stepStore, truthPath string, every int) *filteredWalk {
@@ -1077,9 +1098,21 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 		truth = tr
 	}
 	n := steps.Len()
-	fw.stamps = make([]int64, n)
+	// Outside the heap: an hour's take 30 MB, which the collector would
+	// let the heap grow by twice.
+	if fw.stamps, err = keepOff[int64](fw, n); err != nil {
+		return err
+	}
 	if truth != nil {
-		fw.truth, fw.have, fw.nees = make([]estimator.Pose, n), make([]bool, n), make([]float64, n)
+		if fw.truth, err = keepOff[estimator.Pose](fw, n); err != nil {
+			return err
+		}
+		if fw.have, err = keepOff[bool](fw, n); err != nil {
+			return err
+		}
+		if fw.nees, err = keepOff[float64](fw, n); err != nil {
+			return err
+		}
 	}
 	rd := steps.reader()
 	var p estimator.State

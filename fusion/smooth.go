@@ -52,12 +52,13 @@ func appendStep(dst []Step, s *Step) []Step {
 	return dst
 }
 
-// stepCollector turns entries leaving the window into steps. The step in
-// progress lives in cur (while open) and finished steps gather in ready,
-// whose memory AppendSteps keeps for reuse: a review collects a step per
-// odometry sample, and a Step of 12 states is 3.7 kB.
+// stepCollector turns entries leaving the window into steps. Finished
+// steps gather in ready, whose memory AppendSteps and SwapSteps keep for
+// reuse: a review collects a step per odometry sample, and a Step of 12
+// states is 3.7 kB. The step in progress (while open) is built in place in
+// the slot just past ready's length (cur), so that finishing it copies
+// nothing; handing ready out moves it to the slot of the next buffer.
 type stepCollector struct {
-	cur   Step
 	open  bool
 	ready []Step
 	// restart: a new run began (StartRun); its first step has no
@@ -79,7 +80,7 @@ func (r *Robot) TakeSteps() []Step {
 		return nil
 	}
 	out := r.steps.ready
-	r.steps.ready = nil
+	r.steps.ready = r.steps.keepOpen(nil, out)
 	return out
 }
 
@@ -91,10 +92,14 @@ func (r *Robot) AppendSteps(dst []Step) []Step {
 	if r.steps == nil {
 		return dst
 	}
-	for i := range r.steps.ready {
-		dst = appendStep(dst, &r.steps.ready[i])
+	c := r.steps
+	for i := range c.ready {
+		dst = appendStep(dst, &c.ready[i])
 	}
-	r.steps.ready = r.steps.ready[:0]
+	if n := len(c.ready); c.open && n > 0 {
+		c.ready[0].CopyFrom(&c.ready[:n+1][n])
+	}
+	c.ready = c.ready[:0]
 	return dst
 }
 
@@ -116,8 +121,21 @@ func (r *Robot) SwapSteps(spare []Step) []Step {
 		return spare[:0]
 	}
 	out := r.steps.ready
-	r.steps.ready = spare[:0]
+	r.steps.ready = r.steps.keepOpen(spare[:0], out)
 	return out
+}
+
+// keepOpen returns next (empty) with the step in progress, if any, moved
+// from the slot past old's length to the slot past next's.
+func (c *stepCollector) keepOpen(next, old []Step) []Step {
+	if !c.open {
+		return next
+	}
+	if cap(next) == 0 {
+		next = make([]Step, 0, 1)
+	}
+	next[:1][0].CopyFrom(&old[:len(old)+1][len(old)])
+	return next
 }
 
 // FinishSteps makes every step of the run final (at its end) and returns
@@ -151,35 +169,57 @@ func (c *stepCollector) collect(r *Robot, k int) {
 		case entOdo:
 			c.emit()
 			// prev is the previous entry's estimate (or the base): emit
-			// copied the step it may belong to and left it in place.
-			r.f.Transition(&c.cur.F, prev, e.step, float64(e.t1-e.t0)*1e-9)
-			c.cur.StampNs, c.cur.Start = e.t1, false
-			r.loadEst(&c.cur.Pred, &e.after)
-			c.cur.Post = c.cur.Pred
+			// left the step it may belong to in place, before the new
+			// one's slot (if the slot grew ready, in the array before).
+			cur := c.next(r.n)
+			r.f.Transition(&cur.F, prev, e.step, float64(e.t1-e.t0)*1e-9)
+			cur.StampNs, cur.Start = e.t1, false
+			r.loadEst(&cur.Pred, &e.after)
+			cur.Post.CopyFrom(&cur.Pred)
 			c.open = true
 		case entMeas:
-			r.loadEst(&c.cur.Post, &e.after)
+			r.loadEst(&c.cur().Post, &e.after)
 		case entReset:
 			c.emit()
 			var s estimator.State
 			r.loadEst(&s, &e.after)
 			c.start(e.t1, &s, r.n)
 		}
-		prev = &c.cur.Post
+		prev = &c.cur().Post
 	}
+}
+
+// cur returns the slot of the step in progress, past ready's length.
+func (c *stepCollector) cur() *Step {
+	n := len(c.ready)
+	if n == cap(c.ready) {
+		c.ready = append(c.ready, Step{})[:n]
+	}
+	return &c.ready[:n+1][n]
+}
+
+// next returns the slot for a new step of n states, cleared unless it
+// holds one of that size already (whose entries past n are zero).
+func (c *stepCollector) next(n int) *Step {
+	s := c.cur()
+	if s.Pred.Size() != n || s.Post.Size() != n {
+		*s = Step{}
+	}
+	return s
 }
 
 // start opens a step with no predecessor at stampNs, at s.
 func (c *stepCollector) start(stampNs int64, s *estimator.State, n int) {
-	c.cur.StampNs, c.cur.Pred, c.cur.Post, c.cur.Start = stampNs, *s, *s, true
-	c.cur.F = identity(n)
+	cur := c.cur()
+	cur.StampNs, cur.Pred, cur.Post, cur.Start = stampNs, *s, *s, true
+	cur.F = identity(n)
 	c.open = true
 }
 
 // emit moves the step in progress, if any, to the finished ones.
 func (c *stepCollector) emit() {
 	if c.open {
-		c.ready = appendStep(c.ready, &c.cur)
+		c.ready = c.ready[:len(c.ready)+1]
 		c.open = false
 	}
 }

@@ -1019,13 +1019,14 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 }
 
 // filteredWalk walks the filtered states forwards in a goroutine of its
-// own while the smoother runs: the filtered track's export (formatted by a
-// goroutine of its own here, where the smoother leaves the other core half
-// idle, instead of during the replay, which keeps both busy), the
-// distance, the uncertainty figures, the decimated filtered track and,
-// with a truth file, the filtered errors and each step's filtered pose
-// NEES, which the walk after the smoother pairs with the smoothed one. It
-// writes those fields of the run and nothing else until done is closed.
+// own while the smoother runs: the filtered track's export (formatting it
+// here, where the smoother leaves the other core half idle, instead of
+// during the replay, which keeps both busy), the distance, the uncertainty
+// figures, the decimated filtered track and, with a truth file, the
+// filtered errors and
+// each step's filtered pose NEES, which the walk after the smoother pairs
+// with the smoothed one. It writes those fields of the run and nothing else
+// until done is closed.
 type filteredWalk struct {
 	// By step: the stamps and, with truth, the truth at each stamp (have
 	// says where there is one) and the filtered pose NEES against it.
@@ -1078,10 +1079,12 @@ func (fw *filteredWalk) wait() error {
 
 func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string, every int) (err error) {
 	run, sum := a.run, &a.run.Summary
-	// The rows are formatted and written by a goroutine of their own.
-	rows := newRowWriter(run.FilteredCSV)
+	tw, err := newTrackWriter(run.FilteredCSV)
+	if err != nil {
+		return err
+	}
 	defer func() {
-		if cerr := rows.close(); err == nil {
+		if cerr := tw.close(); err == nil {
 			err = cerr
 		}
 	}()
@@ -1125,7 +1128,9 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
 		row := rowOf(stamp, &p)
-		rows.addRow(&row)
+		if err := tw.addRow(&row); err != nil {
+			return err
+		}
 		r95 := row.v[9] // p.Position95()
 		if r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, stamp

@@ -350,13 +350,14 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw := newStepWriter(steps)
+	fw := newStepWriter(steps, run.FilteredCSV)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
 	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, keep: true, want: max(src.Run, 1)}
 	fr, err := rc.replay(src)
 	if err != nil {
 		fw.close()
+		os.Remove(run.FilteredCSV)
 		return nil, err
 	}
 	if err := rc.runs(fr, src.Run); err != nil {
@@ -434,8 +435,8 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 	return smoothed, nil
 }
 
-// stepWriter stores the steps in a goroutine of its own while the replay
-// goes on. The replay fills
+// stepWriter stores the steps, and writes the filtered track's export,
+// in a goroutine of its own while the replay goes on. The replay fills
 // batches of steps and hands them over; the writer hands them back empty
 // for reuse, so that an hour's 720,000 steps of 3.7 kB cost no garbage.
 type stepWriter struct {
@@ -451,21 +452,27 @@ type stepWriter struct {
 // several steps when the batch is nearly full.
 const stepBatch = 256
 
-func newStepWriter(steps *stepStore) *stepWriter {
+func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 	// Four batches at most: one being filled, two sent, one being written.
 	fw := &stepWriter{full: make(chan []fusion.Step, 2), pool: newBatchPool[fusion.Step](4, stepBatch+stepBatch/4), written: make(chan error, 1)}
 	go func() {
-		var err error
+		tw, err := newTrackWriter(trackPath)
 		for b := range fw.full {
 			for i := range b {
 				if err == nil {
 					err = steps.add(&b[i])
+				}
+				if err == nil {
+					err = tw.add(b[i].StampNs, &b[i].Post)
 				}
 			}
 			fw.pool.put(b)
 		}
 		if err == nil {
 			err = steps.flush()
+		}
+		if cerr := tw.close(); err == nil {
+			err = cerr
 		}
 		fw.written <- err
 	}()
@@ -1019,14 +1026,14 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 }
 
 // filteredWalk walks the filtered states forwards in a goroutine of its
-// own while the smoother runs: the filtered track's export (formatting it
-// here, where the smoother leaves the other core half idle, instead of
-// during the replay, which keeps both busy), the distance, the uncertainty
-// figures, the decimated filtered track and, with a truth file, the
-// filtered errors and
+// own while the smoother runs: the distance, the uncertainty figures, the
+// decimated filtered track and, with a truth file, the filtered errors and
 // each step's filtered pose NEES, which the walk after the smoother pairs
 // with the smoothed one. It writes those fields of the run and nothing else
-// until done is closed.
+// until done is closed. (The filtered export stays with the step writer
+// during the replay: there the robot's goroutine is the bottleneck and
+// the other core has room, while here the walk beside the smoother would
+// take longer than the smoother.)
 type filteredWalk struct {
 	// By step: the stamps and, with truth, the truth at each stamp (have
 	// says where there is one) and the filtered pose NEES against it.
@@ -1079,15 +1086,6 @@ func (fw *filteredWalk) wait() error {
 
 func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string, every int) (err error) {
 	run, sum := a.run, &a.run.Summary
-	tw, err := newTrackWriter(run.FilteredCSV)
-	if err != nil {
-		return err
-	}
-	defer func() {
-		if cerr := tw.close(); err == nil {
-			err = cerr
-		}
-	}()
 	var truth *truthReader
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -1127,11 +1125,7 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
 		}
 		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
-		row := rowOf(stamp, &p)
-		if err := tw.addRow(&row); err != nil {
-			return err
-		}
-		r95 := row.v[9] // p.Position95()
+		r95 := p.Position95()
 		if r95 > sum.Max95M {
 			sum.Max95M, sum.Max95AtNs = r95, stamp
 		}

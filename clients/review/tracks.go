@@ -75,6 +75,11 @@ func newTrackWriter(path string) (*trackWriter, error) {
 	return tw, err
 }
 
+func (tw *trackWriter) add(stamp int64, s *estimator.State) error {
+	r := rowOf(stamp, s)
+	return tw.addRow(&r)
+}
+
 func (tw *trackWriter) addRow(r *trackRow) error {
 	// Formatted straight into the writer's buffer.
 	if tw.w.Available() < 512 {

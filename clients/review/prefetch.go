@@ -168,10 +168,10 @@ type trackItem struct {
 	nees      float64
 }
 
-// prefetchTrack reads the smoothed states forwards, with the stamps and
-// the truth the filtered walk kept, ahead of the walk of the smoothed
-// track.
-func prefetchTrack(sm *smoothedRows, fw *filteredWalk) *prefetch[trackItem] {
+// prefetchTrack reads the smoothed states forwards, with the stamps the
+// filtered walk kept and the truth (if not nil), ahead of the walk of the
+// smoothed track.
+func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth *truthReader) *prefetch[trackItem] {
 	return startPrefetch(len(fw.stamps), false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
@@ -180,9 +180,11 @@ func prefetchTrack(sm *smoothedRows, fw *filteredWalk) *prefetch[trackItem] {
 			if err := sm.row(i, &it.smoothed, &it.smoothCov); err != nil {
 				return err
 			}
-			it.haveTruth = fw.truth != nil && fw.have[i]
+			it.haveTruth = false
+			if truth != nil {
+				it.truth, _, it.haveTruth = truth.at(it.stampNs)
+			}
 			if it.haveTruth {
-				it.truth = fw.truth[i]
 				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}
 				it.nees = neesOf(sp, &it.smoothCov, it.truth)
 			}

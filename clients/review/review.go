@@ -397,7 +397,7 @@ func smoothAndTrack(a *accumulator, steps *stepStore, truth string, opt Options)
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(smoothed, fw)
+	return a.tracks(smoothed, fw, truth)
 }
 
 // thinEvery returns the stride of the tracks' points drawn: every
@@ -1035,11 +1035,10 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 // the other core has room, while here the walk beside the smoother would
 // take longer than the smoother.)
 type filteredWalk struct {
-	// By step: the stamps and, with truth, the truth at each stamp (have
-	// says where there is one) and the filtered pose NEES against it.
+	// By step: the stamps and, with truth, the filtered pose NEES
+	// against it (the walk after the smoother reads the truth file again:
+	// kept, it would take 17 MB an hour).
 	stamps   []int64
-	truth    []estimator.Pose
-	have     []bool
 	nees     []float64
 	fSq      float64
 	fIn      int
@@ -1096,18 +1095,12 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 		truth = tr
 	}
 	n := steps.Len()
-	// Outside the heap: an hour's take 30 MB, which the collector would
+	// Outside the heap: an hour's take 12 MB, which the collector would
 	// let the heap grow by twice.
 	if fw.stamps, err = keepOff[int64](fw, n); err != nil {
 		return err
 	}
 	if truth != nil {
-		if fw.truth, err = keepOff[estimator.Pose](fw, n); err != nil {
-			return err
-		}
-		if fw.have, err = keepOff[bool](fw, n); err != nil {
-			return err
-		}
 		if fw.nees, err = keepOff[float64](fw, n); err != nil {
 			return err
 		}
@@ -1145,7 +1138,6 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 			}
 		}
 		if haveTruth {
-			fw.truth[i], fw.have[i] = tp, true
 			fw.fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
 			fw.nTruth++
 			if positionNEES(&p, tp) <= position95 {
@@ -1169,16 +1161,25 @@ func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string,
 // tracks walks the smoothed states forwards once the smoother and the
 // filtered walk are done: the smoothed track's export, its decimated
 // series and, with a truth file, the smoothed errors.
-func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk) error {
+func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath string) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
 	// of their own.
 	rows := newRowWriter(run.SmoothedCSV)
 	defer rows.close()
+	var truth *truthReader
+	if truthPath != "" {
+		tr, f, err := openTruth(truthPath)
+		if err != nil {
+			return fmt.Errorf("truth: %w", err)
+		}
+		defer f.Close()
+		truth = tr
+	}
 	n := len(fw.stamps)
 	every := sm.every
-	pf := prefetchTrack(sm, fw)
+	pf := prefetchTrack(sm, fw, truth)
 	defer pf.close()
 	var sSq, fNees, sNees float64
 	var fAll, sAll logHistogram

@@ -132,11 +132,15 @@ func (p *prefetch[T]) close() { close(p.stop) }
 type prefetchedSteps struct {
 	n int
 	p *prefetch[fusion.Step]
+	// every and posts: the filtered states at i%every == 0 and at n-1,
+	// kept whole as the smoother reads them, for the figures.
+	every int
+	posts map[int]*estimator.State
 }
 
-func prefetchSteps(steps *stepStore) *prefetchedSteps {
+func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 	rd := steps.reader()
-	return &prefetchedSteps{n: steps.Len(), p: startPrefetch(steps.Len(), true, func(lo int, dst []fusion.Step) error {
+	return &prefetchedSteps{n: steps.Len(), every: every, posts: map[int]*estimator.State{}, p: startPrefetch(steps.Len(), true, func(lo int, dst []fusion.Step) error {
 		for j := range dst {
 			if err := rd.Step(lo+j, &dst[j]); err != nil {
 				return err
@@ -152,6 +156,11 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 	s, err := ps.p.at(i)
 	if err == nil {
 		dst.CopyFrom(s)
+		if i%ps.every == 0 || i == ps.n-1 {
+			c := new(estimator.State)
+			copyState(c, &s.Post)
+			ps.posts[i] = c
+		}
 	}
 	return err
 }
@@ -172,11 +181,11 @@ type trackItem struct {
 // filtered walk kept and the truth (if not nil), ahead of the walk of the
 // smoothed track.
 func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth *truthReader) *prefetch[trackItem] {
-	return startPrefetch(len(fw.stamps), false, func(lo int, dst []trackItem) error {
+	return startPrefetch(fw.n, false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
 			i := lo + j
-			it.stampNs = fw.stamps[i]
+			it.stampNs = fw.stamp(i)
 			if err := sm.row(i, &it.smoothed, &it.smoothCov); err != nil {
 				return err
 			}

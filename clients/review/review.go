@@ -350,7 +350,12 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	fw := newStepWriter(steps, run.FilteredCSV)
+	walk, err := newFilteredWalk(run, src.Truth)
+	if err != nil {
+		return nil, err
+	}
+	defer walk.close()
+	fw := newStepWriter(steps, run.FilteredCSV, walk)
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
 	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, keep: true, want: max(src.Run, 1)}
@@ -369,7 +374,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	}
 	run.Config = fr.Config()
 	rc.a.finish(rc.ending(fr))
-	if err := smoothAndTrack(rc.a, steps, src.Truth, opt); err != nil {
+	if err := smoothAndTrack(rc.a, steps, walk, src.Truth, opt); err != nil {
 		return nil, err
 	}
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
@@ -380,24 +385,15 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	return run, nil
 }
 
-// smoothAndTrack smooths the steps while the filtered track is walked
-// forwards, then walks the smoothed track forwards.
-func smoothAndTrack(a *accumulator, steps *stepStore, truth string, opt Options) error {
+// smoothAndTrack smooths the steps and walks the smoothed track forwards.
+func smoothAndTrack(a *accumulator, steps *stepStore, walk *filteredWalk, truth string, opt Options) error {
 	every := thinEvery(steps.Len(), opt.MaxPoints)
-	fw := walkFiltered(a, steps, truth, every)
-	defer fw.close()
 	smoothed, err := smooth(steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
-	if werr := fw.wait(); err == nil {
-		err = werr
-	}
 	if err != nil {
-		if smoothed != nil {
-			smoothed.close()
-		}
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(smoothed, fw, truth)
+	return a.tracks(smoothed, walk, truth)
 }
 
 // thinEvery returns the stride of the tracks' points drawn: every
@@ -421,9 +417,10 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 	if err != nil {
 		return nil, err
 	}
-	src := prefetchSteps(steps)
+	src := prefetchSteps(steps, every)
 	err = fusion.Smooth(src, smoothed)
 	src.p.close()
+	smoothed.filtered = src.posts
 	if err != nil {
 		smoothed.close()
 		return nil, err
@@ -452,7 +449,7 @@ type stepWriter struct {
 // several steps when the batch is nearly full.
 const stepBatch = 256
 
-func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
+func newStepWriter(steps *stepStore, trackPath string, walk *filteredWalk) *stepWriter {
 	// Four batches at most: one being filled, two sent, one being written.
 	fw := &stepWriter{full: make(chan []fusion.Step, 2), pool: newBatchPool[fusion.Step](4, stepBatch+stepBatch/4), written: make(chan error, 1)}
 	go func() {
@@ -463,7 +460,9 @@ func newStepWriter(steps *stepStore, trackPath string) *stepWriter {
 					err = steps.add(&b[i])
 				}
 				if err == nil {
-					err = tw.add(b[i].StampNs, &b[i].Post)
+					row := rowOf(b[i].StampNs, &b[i].Post)
+					err = tw.addRow(&row)
+					walk.step(&b[i], &row)
 				}
 			}
 			fw.pool.put(b)
@@ -1025,137 +1024,93 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 	return q
 }
 
-// filteredWalk walks the filtered states forwards in a goroutine of its
-// own while the smoother runs: the distance, the uncertainty figures, the
-// decimated filtered track and, with a truth file, the filtered errors and
-// each step's filtered pose NEES, which the walk after the smoother pairs
-// with the smoothed one. It writes those fields of the run and nothing else
-// until done is closed. (The filtered export stays with the step writer
-// during the replay: there the robot's goroutine is the bottleneck and
-// the other core has room, while here the walk beside the smoother would
-// take longer than the smoother.)
+// filteredWalk walks the filtered states forwards as the step writer
+// stores them during the replay, where the robot's goroutine is the
+// bottleneck and the writer's core has room: the distance, the
+// uncertainty figures and, with a truth file, the filtered errors, and for
+// the walk after the smoother each step's stamp and filtered pose NEES
+// (in chunks: an hour's take 12 MB). It writes those fields of the run
+// and nothing else until the step writer is closed.
 type filteredWalk struct {
-	// By step: the stamps and, with truth, the filtered pose NEES
-	// against it (the walk after the smoother reads the truth file again:
-	// kept, it would take 17 MB an hour).
-	stamps   []int64
-	nees     []float64
-	fSq      float64
-	fIn      int
-	nTruth   int
-	hasTruth bool
-	err      error
-	done     chan struct{}
-	free     []func()
+	run    *Run
+	truth  *truthReader
+	f      *os.File
+	n      int
+	stamps [][]int64
+	nees   [][]float64
+	prevX  float64
+	prevY  float64
+	fSq    float64
+	fIn    int
+	nTruth int
 }
 
-// keepOff returns n zero values of T outside the heap (allocOff), given
-// back by fw.close.
-func keepOff[T any](fw *filteredWalk, n int) ([]T, error) {
-	v, free, err := allocOff[T](n)
-	if err == nil {
-		fw.free = append(fw.free, free)
-	}
-	return v, err
-}
+// walkChunk is the number of steps of a chunk of the walk's stamps and
+// NEES.
+const walkChunk = 1 << 14
 
-// close gives back what the walk kept, once it is done and read.
-func (fw *filteredWalk) close() {
-	<-fw.done
-	for _, f := range fw.free {
-		f()
-	}
-	fw.free = nil
-}
-
-func walkFiltered(a *accumulator, steps *stepStore, truthPath string, every int) *filteredWalk {
-	fw := &filteredWalk{done: make(chan struct{}), hasTruth: truthPath != ""}
-	go func() {
-		defer close(fw.done)
-		fw.err = fw.walk(a, steps, truthPath, every)
-	}()
-	return fw
-}
-
-// wait waits for the walk and returns its error.
-func (fw *filteredWalk) wait() error {
-	<-fw.done
-	return fw.err
-}
-
-func (fw *filteredWalk) walk(a *accumulator, steps *stepStore, truthPath string, every int) (err error) {
-	run, sum := a.run, &a.run.Summary
-	var truth *truthReader
+func newFilteredWalk(run *Run, truthPath string) (*filteredWalk, error) {
+	w := &filteredWalk{run: run}
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
 		if err != nil {
-			return fmt.Errorf("truth: %w", err)
+			return nil, fmt.Errorf("truth: %w", err)
 		}
-		defer f.Close()
-		truth = tr
+		w.truth, w.f = tr, f
 	}
-	n := steps.Len()
-	// Outside the heap: an hour's take 12 MB, which the collector would
-	// let the heap grow by twice.
-	if fw.stamps, err = keepOff[int64](fw, n); err != nil {
-		return err
+	return w, nil
+}
+
+func (w *filteredWalk) close() {
+	if w.f != nil {
+		w.f.Close()
 	}
-	if truth != nil {
-		if fw.nees, err = keepOff[float64](fw, n); err != nil {
-			return err
-		}
+}
+
+// stamp returns the stamp of step i; nees its filtered pose NEES (with
+// truth at its stamp).
+func (w *filteredWalk) stamp(i int) int64   { return w.stamps[i/walkChunk][i%walkChunk] }
+func (w *filteredWalk) nees3(i int) float64 { return w.nees[i/walkChunk][i%walkChunk] }
+
+// step takes the next step stored, with its filtered export row.
+func (w *filteredWalk) step(s *fusion.Step, row *trackRow) {
+	sum := &w.run.Summary
+	p, stamp, i := &s.Post, s.StampNs, w.n
+	w.n++
+	if i%walkChunk == 0 {
+		w.stamps = append(w.stamps, make([]int64, 0, walkChunk))
+		w.nees = append(w.nees, make([]float64, 0, walkChunk))
 	}
-	rd := steps.reader()
-	var p estimator.State
-	var prevX, prevY float64
-	for i := 0; i < n; i++ {
-		stamp, start, err := rd.readPost(i, &p)
-		if err != nil {
-			return err
-		}
-		fw.stamps[i] = stamp
-		if i > 0 && !start {
-			sum.DistanceM += math.Hypot(p.MeanAt(0)-prevX, p.MeanAt(1)-prevY)
-		}
-		prevX, prevY = p.MeanAt(0), p.MeanAt(1)
-		r95 := p.Position95()
-		if r95 > sum.Max95M {
-			sum.Max95M, sum.Max95AtNs = r95, stamp
-		}
-		sum.Final95M = r95
-		hs := math.Sqrt(p.Var(2))
-		sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
-		sum.FinalHeadingSt = hs
-		var tp estimator.Pose
-		haveTruth := false
-		if truth != nil {
-			var gapNs int64
-			tp, gapNs, haveTruth = truth.at(stamp)
-			sum.TruthSteps++
-			if haveTruth {
-				sum.TruthMatched++
-				sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, gapNs)
-			}
-		}
+	c := len(w.stamps) - 1
+	w.stamps[c] = append(w.stamps[c], stamp)
+	if i > 0 && !s.Start {
+		sum.DistanceM += math.Hypot(p.MeanAt(0)-w.prevX, p.MeanAt(1)-w.prevY)
+	}
+	w.prevX, w.prevY = p.MeanAt(0), p.MeanAt(1)
+	r95 := row.v[9] // p.Position95()
+	if r95 > sum.Max95M {
+		sum.Max95M, sum.Max95AtNs = r95, stamp
+	}
+	sum.Final95M = r95
+	hs := math.Sqrt(p.Var(2))
+	sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
+	sum.FinalHeadingSt = hs
+	nees := math.NaN()
+	if w.truth != nil {
+		tp, gapNs, haveTruth := w.truth.at(stamp)
+		sum.TruthSteps++
 		if haveTruth {
-			fw.fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
-			fw.nTruth++
-			if positionNEES(&p, tp) <= position95 {
-				fw.fIn++
+			sum.TruthMatched++
+			sum.TruthMaxGapNs = max(sum.TruthMaxGapNs, gapNs)
+			w.fSq += sq(p.MeanAt(0)-tp.X) + sq(p.MeanAt(1)-tp.Y)
+			w.nTruth++
+			if positionNEES(p, tp) <= position95 {
+				w.fIn++
 			}
-			fw.nees[i] = nees3(&p, tp)
-		}
-		if i%every == 0 || i == n-1 {
-			run.Filtered = append(run.Filtered, Point{stamp, p})
-			if truth != nil {
-				if !haveTruth {
-					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
-				}
-				run.Truth = append(run.Truth, tp)
-			}
+			nees = nees3(p, tp)
 		}
 	}
-	return nil
+	w.nees[c] = append(w.nees[c], nees)
 }
 
 // tracks walks the smoothed states forwards once the smoother and the
@@ -1177,7 +1132,7 @@ func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath strin
 		defer f.Close()
 		truth = tr
 	}
-	n := len(fw.stamps)
+	n := fw.n
 	every := sm.every
 	pf := prefetchTrack(sm, fw, truth)
 	defer pf.close()
@@ -1197,7 +1152,7 @@ func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath strin
 			if rowPositionNEES(srow, tp) <= position95 {
 				sIn++
 			}
-			if fn, sn := fw.nees[i], it.nees; !math.IsNaN(fn) && !math.IsNaN(sn) {
+			if fn, sn := fw.nees3(i), it.nees; !math.IsNaN(fn) && !math.IsNaN(sn) {
 				fNees += fn
 				sNees += sn
 				nNees++
@@ -1206,7 +1161,15 @@ func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath strin
 			}
 		}
 		if i%every == 0 || i == n-1 {
+			run.Filtered = append(run.Filtered, Point{stamp, *sm.filtered[i]})
 			run.Smoothed = append(run.Smoothed, Point{stamp, *sm.state(i)})
+			if truth != nil {
+				tp := it.truth
+				if !it.haveTruth {
+					tp = estimator.Pose{X: math.NaN(), Y: math.NaN(), Heading: math.NaN()}
+				}
+				run.Truth = append(run.Truth, tp)
+			}
 		}
 	}
 	if err := rows.close(); err != nil {

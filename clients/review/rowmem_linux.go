@@ -43,18 +43,6 @@ func allocRows(n int) ([]float64, func(), error) {
 	return v, free, nil
 }
 
-// allocOff returns n zero values of T, which must hold no pointers, outside
-// the Go heap, and the function that gives them back: memory that a
-// review keeps for a while costs its size, without the collector's room
-// to grow on top.
-func allocOff[T any](n int) ([]T, func(), error) {
-	v, b, err := allocOutside[T](n)
-	if err != nil || b == nil {
-		return v, func() {}, err
-	}
-	return v, func() { syscall.Munmap(b) }, nil
-}
-
 // allocOutside maps n zero values of T (no pointers) and returns them with
 // the mapping (nil for n == 0).
 func allocOutside[T any](n int) ([]T, []byte, error) {

@@ -7,10 +7,3 @@ package review
 func allocRows(n int) ([]float64, func(), error) {
 	return make([]float64, n), func() {}, nil
 }
-
-// allocOff returns n zero values of T, on the heap where the anonymous
-// mapping of rowmem_linux.go is not used, and the function that gives them
-// back.
-func allocOff[T any](n int) ([]T, func(), error) {
-	return make([]T, n), func() {}, nil
-}

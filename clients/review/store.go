@@ -593,9 +593,11 @@ type smoothedRows struct {
 	file   *stateFile
 	rd     *chunkedFile
 	tmp    estimator.State
-	// every and kept: the states at i%every == 0 and at n-1, kept whole.
-	every int
-	kept  map[int]*estimator.State
+	// every and kept: the states at i%every == 0 and at n-1, kept whole;
+	// filtered: the filtered states there.
+	every    int
+	kept     map[int]*estimator.State
+	filtered map[int]*estimator.State
 }
 
 // newSmoothedRows returns a store for n states of at most k components,

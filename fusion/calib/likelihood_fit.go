@@ -31,6 +31,10 @@ type NoiseFitOptions struct {
 	// for it to count as identified (0.35: the run pins the level to
 	// within a factor of two at 95%).
 	MaxStdErrLog float64
+	// KeepUndetermined keeps the variances the run does not determine at
+	// their configured values; by default each is set to the upper end of
+	// its 95% likelihood interval (likelihood_upper.go).
+	KeepUndetermined bool
 }
 
 // FittedLevel is one noise level as the fit left it.
@@ -49,6 +53,10 @@ type FittedLevel struct {
 	// why not.
 	Identifiable bool
 	Note         string
+	// Raised says that the level, a variance the run does not determine,
+	// was set to the upper end of its 95% likelihood interval (Fitted and
+	// Hi; NoiseFitOptions.KeepUndetermined).
+	Raised bool
 }
 
 // NoiseFit is the result of FitNoise.
@@ -219,24 +227,18 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		}
 		free = kept
 	}
+	for _, i := range free {
+		fit.Levels[i].Identifiable = true
+	}
 	if opt.ChooseModel {
-		// Covariance matching of the identified covariance factors.
-		n, err := p.matchMedianNIS(x, free)
+		n, err := p.thinnedSteps(inputs, x, fit.Levels, opt.KeepUndetermined)
 		fit.Replays += n
 		if err != nil {
 			return nil, err
 		}
-	}
-	for _, i := range free {
-		fl := &fit.Levels[i]
-		fl.Identifiable, fl.Fitted = true, x[i]
-		if fl.kind == levelCovScale && covFrom != nil {
-			fl.Fitted *= covFrom[fl.Sensor]
-		}
-		fl.Lo, fl.Hi = fl.Fitted*math.Exp(-1.96*fl.StdErrLog), fl.Fitted*math.Exp(1.96*fl.StdErrLog)
-	}
-	if opt.ChooseModel {
-		n, err := p.thinnedSteps(inputs, x, fit.Levels)
+		// Covariance matching of the identified covariance factors, with
+		// the body steps' levels of the thinned run.
+		n, err = p.matchMedianNIS(x, free)
 		fit.Replays += n
 		if err != nil {
 			return nil, err
@@ -246,6 +248,26 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		for i, l := range fit.Levels {
 			if l.kind == levelCovScale && !l.Identifiable {
 				x[i] = 1 / covFrom[l.Sensor]
+			}
+		}
+	}
+	for i := range fit.Levels {
+		fl := &fit.Levels[i]
+		if !fl.Identifiable || fl.Raised {
+			continue
+		}
+		fl.Fitted = x[i]
+		if fl.kind == levelCovScale && covFrom != nil {
+			fl.Fitted *= covFrom[fl.Sensor]
+		}
+		fl.Lo, fl.Hi = fl.Fitted*math.Exp(-1.96*fl.StdErrLog), fl.Fitted*math.Exp(1.96*fl.StdErrLog)
+	}
+	if !opt.KeepUndetermined {
+		p.raiseUndetermined(obj, x, fit.Levels)
+		for i := range fit.Levels {
+			if l := &fit.Levels[i]; l.Raised && l.kind == levelCovScale && covFrom != nil {
+				l.Fitted *= covFrom[l.Sensor]
+				l.Hi = l.Fitted
 			}
 		}
 	}
@@ -575,18 +597,22 @@ func stdErrs(h *mat.SymDense, keep []int) (se []float64, ok []bool) {
 // a camera's Gauss-Markov errors (1 to 3 s) to have mostly decorrelated.
 const thinGapS = 3.0
 
-// thinnedSteps fits the body-step noise levels the run did not determine
-// on the run thinned to one fix per thinGapS seconds of each sensor.
+// thinnedSteps fits the body-step noise levels on the run thinned to one
+// fix per thinGapS seconds of each sensor, the other levels held at x.
 // Between fixes 0.3 s apart a correlated camera's S carries its bias's
-// whole variance and the steps' noise is a few percent of it; over 3 s it
-// is comparable ("Design: Noise by likelihood"). The others are held at
-// values. A level the thinned run determines gets its value (x and
-// levels, with a note); the others stay as they were. It returns the
-// replays it took.
-func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []FittedLevel) (int, error) {
+// whole variance and the steps' noise is a few percent of it, and its
+// innovations are far from independent; over 3 s the steps' spread is
+// comparable and the camera's errors have mostly decorrelated, so the
+// summed densities are close to the run's likelihood ("Design: Noise by
+// likelihood"). A level the thinned run determines gets its value (x and
+// levels, with a note); unless keep, a level it does not determine is set
+// to the upper end of its interval there (raiseUndetermined); a level it
+// bounds nowhere stays as the whole run left it. It returns the replays
+// it took.
+func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []FittedLevel, keep bool) (int, error) {
 	var idx []int
 	for i, l := range levels {
-		if !l.Identifiable && l.kind == levelNoise && strings.HasPrefix(l.Field, "noise.step_") {
+		if l.kind == levelNoise && strings.HasPrefix(l.Field, "noise.step_") {
 			idx = append(idx, i)
 		}
 	}
@@ -612,19 +638,22 @@ func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []Fi
 	for k, i := range idx {
 		sub[k] = levels[i].NoiseLevel
 	}
-	fit, err := FitNoise(cfg, thin, NoiseFitOptions{Levels: sub})
+	fit, err := FitNoise(cfg, thin, NoiseFitOptions{Levels: sub, KeepUndetermined: keep})
 	if err != nil {
 		return 0, err
 	}
 	for k, i := range idx {
 		fl := fit.Levels[k]
-		if !fl.Identifiable {
+		if !fl.Identifiable && !fl.Raised {
 			continue
 		}
 		x[i] = fl.Fitted
 		l := &levels[i]
-		l.Identifiable, l.Fitted, l.StdErrLog, l.Lo, l.Hi = true, fl.Fitted, fl.StdErrLog, fl.Lo, fl.Hi
-		l.Note = fmt.Sprintf("determined on the run thinned to one fix per %.0f s", thinGapS)
+		l.Identifiable, l.Raised, l.Fitted, l.StdErrLog, l.Lo, l.Hi = fl.Identifiable, fl.Raised, fl.Fitted, fl.StdErrLog, fl.Lo, fl.Hi
+		l.Note = fmt.Sprintf("on the run thinned to one fix per %.0f s", thinGapS)
+		if fl.Raised {
+			l.Note = fmt.Sprintf("not determined on the run thinned to one fix per %.0f s (%s)", thinGapS, fl.Note)
+		}
 	}
 	return fit.Replays, nil
 }

@@ -52,7 +52,7 @@ func (p *replayer) raiseUndetermined(obj func([]float64) float64, x []float64, l
 			l.Note += fmt.Sprintf("; the log-likelihood does not fall by %.2f up to %.0f times it: kept", intervalDrop, math.Exp(upperMaxSteps*upperStepLog))
 			continue
 		}
-		l.Note += fmt.Sprintf("; set to the upper end of its 95%% likelihood interval (the log-likelihood %.2f below its best along it, at %.4g): set low, a variance the run does not determine makes the covariance overconfident",
+		l.Note += fmt.Sprintf("; set to the upper end of its 95%% likelihood interval, where the log-likelihood along it lies %.2f below its best (at %.4g): set low, a variance the run does not determine makes the covariance overconfident",
 			intervalDrop, best)
 		x[i], l.Fitted, l.Hi, l.Raised = hi, hi, hi, true
 	}

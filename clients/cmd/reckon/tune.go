@@ -37,10 +37,13 @@ innovations before and after; with -truth, the NEES. A variance the run
 does not determine (a noise term or a sensor's covariance) is set to the
 upper end of its 95% likelihood interval, the largest value the run does
 not reject (set low it would make the covariance overconfident);
--keep-undetermined keeps such levels as configured instead, as it does
-correlation times and degrees of freedom. With -model it first chooses the form of the noise model
-by the run's likelihood (a Gauss-Markov part and Student-t tails for each
-white Gaussian sensor, body-step noise per second instead of per metre). It
+-keep-undetermined keeps such levels as configured instead (correlation
+times and degrees of freedom the run does not determine are always kept).
+With -model it first chooses the form of the noise model by the run's
+likelihood (a Gauss-Markov part and Student-t tails for each white
+Gaussian sensor, body-step noise per second instead of per metre), then
+fits its levels (the body-step levels on the run thinned to one fix per
+3 s, where a correlated camera's errors have mostly decorrelated). It
 writes the new configuration to -out and never overwrites the input. No
 ground truth is needed for the fit. The run is named as for calibrate
 (-journal and -robot, or -samples); a journal's run is tuned from its own

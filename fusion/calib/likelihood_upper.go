@@ -66,7 +66,8 @@ func (p *replayer) raiseUndetermined(obj func([]float64) float64, x []float64, l
 // is where it crosses best + intervalDrop between the last point within
 // and the first beyond: three bisections in the log, then linear
 // interpolation. It returns the upper end and the best value along the
-// level, or false when the walk found no such point.
+// level, or false when the walk found no such point (or the likelihood
+// does not change at all along the level up to 8 times its start).
 func (p *replayer) upperEnd(obj func([]float64) float64, x []float64, i int) (hi, best float64, ok bool) {
 	y := make([]float64, len(x))
 	for j, v := range x {
@@ -101,6 +102,11 @@ func (p *replayer) upperEnd(obj func([]float64) float64, x []float64, i int) (hi
 	for top := k + upperMaxSteps; k < top && beyond < 2; {
 		k++
 		g := step(k)
+		if k >= 3 && g == grid[0] && grid[1] == grid[0] && grid[2] == grid[0] {
+			// Exactly the same at 8 times the start: the level changes
+			// nothing in the run (a sensor without fixes).
+			return 0, 0, false
+		}
 		if g < grid[kBest] {
 			kBest = k
 		}

@@ -13,7 +13,8 @@ import (
 // 9(1), 1938; the chi-square quantile 3.84 of one degree of freedom, from
 // memory, halved). upperEnd finds it within 1% from a start a hundred
 // times too low or ten times too high, and a level along which the
-// log-likelihood is flat (a sensor without fixes) is bounded nowhere.
+// log-likelihood is flat (a sensor without fixes) is bounded nowhere,
+// which it sees within 5 evaluations.
 func TestUpperEnd(t *testing.T) {
 	const n, s = 50.0, 2e-4
 	// The exact upper end, by bisection of the closed form in log v.
@@ -41,7 +42,8 @@ func TestUpperEnd(t *testing.T) {
 			t.Errorf("from %.3g: upper end %.5g (found %v), want %.5g", start, got, ok, want)
 		}
 	}
-	if _, _, ok := p.upperEnd(func([]float64) float64 { return 3 }, []float64{1, s}, 1); ok {
-		t.Error("a flat log-likelihood gave an upper end")
+	calls := 0
+	if _, _, ok := p.upperEnd(func([]float64) float64 { calls++; return 3 }, []float64{1, s}, 1); ok || calls > 5 {
+		t.Errorf("a flat log-likelihood gave an upper end (%v) or took %d evaluations, not at most 5", ok, calls)
 	}
 }

@@ -58,6 +58,10 @@ type FittedLevel struct {
 	// was set to the upper end of its 95% likelihood interval (Fitted and
 	// Hi; NoiseFitOptions.KeepUndetermined).
 	Raised bool
+	// Matched says that the level, a sensor's covariance factor the
+	// likelihood does not determine, was matched to the sensor's median
+	// NIS instead (NoiseFitOptions.ChooseModel; no interval).
+	Matched bool
 }
 
 // NoiseFit is the result of FitNoise.
@@ -237,24 +241,36 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		if err != nil {
 			return nil, err
 		}
-		// Covariance matching of the identified covariance factors, with
-		// the body steps' levels of the thinned run.
-		n, err = p.matchMedianNIS(x, free)
+		// A covariance the likelihood does not determine starts from its
+		// configured value, not the chosen model's profiled one. Every
+		// covariance factor is then matched to its median NIS, with the
+		// body steps' levels of the thinned run: covariance matching is
+		// an estimator of its own, which does not lean on the composite
+		// likelihood; a sensor with too few innovations keeps its value.
+		var covs []int
+		for i, l := range fit.Levels {
+			if l.kind == levelCovScale {
+				covs = append(covs, i)
+				if !l.Identifiable {
+					x[i] = 1 / covFrom[l.Sensor]
+				}
+			}
+		}
+		matched, n, err := p.matchMedianNIS(x, covs)
 		fit.Replays += n
 		if err != nil {
 			return nil, err
 		}
-		// A covariance the fit does not determine keeps its configured
-		// value, not the chosen model's profiled one.
-		for i, l := range fit.Levels {
-			if l.kind == levelCovScale && !l.Identifiable {
-				x[i] = 1 / covFrom[l.Sensor]
+		for _, i := range matched {
+			if l := &fit.Levels[i]; !l.Identifiable {
+				l.Matched = true
+				l.Note += "; matched to its median NIS (covariance matching) instead"
 			}
 		}
 	}
 	for i := range fit.Levels {
 		fl := &fit.Levels[i]
-		if !fl.Identifiable || fl.Raised {
+		if !fl.Identifiable && !fl.Matched || fl.Raised {
 			continue
 		}
 		fl.Fitted = x[i]

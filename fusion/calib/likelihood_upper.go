@@ -44,7 +44,7 @@ func (l NoiseLevel) raisesWhenUndetermined() bool {
 func (p *replayer) raiseUndetermined(obj func([]float64) float64, x []float64, levels []FittedLevel) {
 	for i := range levels {
 		l := &levels[i]
-		if l.Identifiable || l.Raised || !l.raisesWhenUndetermined() {
+		if l.Identifiable || l.Raised || l.Matched || !l.raisesWhenUndetermined() {
 			continue
 		}
 		hi, best, ok := p.upperEnd(obj, x, i)

@@ -160,6 +160,8 @@ func levelTable(fit *calib.NoiseFit) ([]string, [][]string) {
 		switch {
 		case l.Identifiable:
 			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g", l.Fitted), fmt.Sprintf("[%.4g, %.4g]", l.Lo, l.Hi), "yes"})
+		case l.Matched:
+			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g (median NIS)", l.Fitted), "-", "no: " + l.Note})
 		case l.Raised:
 			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g (upper end)", l.Fitted), fmt.Sprintf("[-, %.4g]", l.Hi), "no: " + l.Note})
 		default:
@@ -369,7 +371,7 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 	def := fusion.DefaultNoise()
 	fitted := map[string]bool{}
 	for _, l := range fit.Levels {
-		fitted[l.Field] = l.Identifiable || l.Raised
+		fitted[l.Field] = l.Identifiable || l.Raised || l.Matched
 	}
 	for _, m := range fit.Model {
 		if fitted[m.Field] {
@@ -379,7 +381,7 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 			comment: "from tune: the noise model the run's likelihood supports best"})
 	}
 	for _, l := range fit.Levels {
-		if !l.Identifiable && !l.Raised {
+		if !l.Identifiable && !l.Raised && !l.Matched {
 			kept = append(kept, l.Field)
 			continue
 		}
@@ -396,8 +398,11 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 			}
 			e.path = l.Field + ".values"
 			e.comment = fmt.Sprintf("from tune: times %.4g (se of log %.3f, 95%% %.4g to %.4g)", l.Fitted, l.StdErrLog, l.Lo, l.Hi)
-			if l.Raised {
+			switch {
+			case l.Raised:
 				e.comment = fmt.Sprintf("from tune: times %.4g, %s", l.Fitted, raisedComment)
+			case l.Matched:
+				e.comment = fmt.Sprintf("from tune: times %.4g, matched to the sensor's median NIS (covariance matching; the likelihood does not determine it)", l.Fitted)
 			}
 			for _, c := range cov {
 				e.seq = append(e.seq, strconv.FormatFloat(c*l.Fitted, 'g', 4, 64))

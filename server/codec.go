@@ -62,21 +62,57 @@ type encodedResponse struct {
 	wire []byte
 }
 
-// slab hands out pieces of large buffers for arriving requests, one
-// allocation per many requests. A buffer is never written again once
-// handed out; it is freed when no request refers to it any more.
-type slab struct{ buf []byte }
+// slab hands out pieces of large buffers for arriving requests and for
+// encoded verdicts, one allocation per many of them. A piece is never
+// written again once handed out; a buffer is freed when nothing refers to
+// a piece of it any more.
+type slab struct {
+	buf  []byte
+	size int // of a new buffer (0: slabBytes)
+}
 
 const slabBytes = 64 << 10
+
+// marshalRoom is the room a slab's buffer keeps for marshal: less, and a
+// new buffer is taken. A verdict is about 30 bytes.
+const marshalRoom = 256
+
+func (s *slab) newBuffer(n int) {
+	size := s.size
+	if size == 0 {
+		size = slabBytes
+	}
+	s.buf = make([]byte, 0, max(size, n))
+}
 
 func (s *slab) take(n int) []byte {
 	if s == nil {
 		return make([]byte, n)
 	}
 	if cap(s.buf)-len(s.buf) < n {
-		s.buf = make([]byte, 0, max(slabBytes, n))
+		s.newBuffer(n)
 	}
 	b := s.buf[len(s.buf) : len(s.buf)+n : len(s.buf)+n]
 	s.buf = s.buf[:len(s.buf)+n]
 	return b
+}
+
+// marshal returns m's encoding, in the slab when it fits in the room left
+// (otherwise in a buffer of its own), capped so that appending to it never
+// writes into the slab.
+func (s *slab) marshal(m proto.Message) ([]byte, error) {
+	if cap(s.buf)-len(s.buf) < marshalRoom {
+		s.newBuffer(marshalRoom)
+	}
+	mark := len(s.buf)
+	b, err := (proto.MarshalOptions{}).MarshalAppend(s.buf[mark:mark], m)
+	if err != nil {
+		return nil, err
+	}
+	if len(b) <= cap(s.buf)-mark {
+		// Written in place: MarshalAppend allocates only when the
+		// encoding does not fit.
+		s.buf = s.buf[:mark+len(b)]
+	}
+	return b[:len(b):len(b)], nil
 }

@@ -75,3 +75,36 @@ func TestSlab(t *testing.T) {
 		}
 	}
 }
+
+// TestSlabMarshal: encodings in a slab are those of proto.Marshal, never
+// overwritten by later ones, capped, and one that does not fit the room
+// left gets a buffer of its own while the slab goes on where it was.
+func TestSlabMarshal(t *testing.T) {
+	s := &slab{size: 300}
+	small := func(i int) *pb.IngestResponse {
+		return &pb.IngestResponse{Sequence: uint64(i + 1), ClientSequence: uint64(i + 7), Verdict: pb.Verdict_VERDICT_APPLIED, Nis: float64(i) / 3}
+	}
+	big := &pb.IngestResponse{Sequence: 99, Reason: string(bytes.Repeat([]byte("r"), 2*marshalRoom))}
+	var msgs []*pb.IngestResponse
+	var got [][]byte
+	for i := range 40 {
+		m := small(i)
+		if i == 5 || i == 23 {
+			m = big
+		}
+		b, err := s.marshal(m)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(b) != cap(b) {
+			t.Fatalf("message %d: len %d cap %d, want capped", i, len(b), cap(b))
+		}
+		msgs, got = append(msgs, m), append(got, b)
+	}
+	for i, m := range msgs {
+		want, _ := proto.Marshal(m)
+		if !bytes.Equal(got[i], want) {
+			t.Fatalf("message %d: %x, want %x", i, got[i], want)
+		}
+	}
+}

@@ -792,16 +792,17 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	r.mu.Lock()
 	tk := s.takeRun(r, run, out, sc, start)
 	written, cause := s.flushJournal(r, &tk)
-	lag := time.Since(start)
+	var lag time.Duration
 	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0 || s.live.watched()) {
 		// The pose is for the watchers, the live views and the metrics:
-		// none, no pose.
+		// none, no pose (and no clock read for the lag).
+		lag = time.Since(start)
 		pose = poseNow(r)
 	}
 	if cause != nil {
 		s.unapply(r, run, out, &tk, written, cause)
 	}
-	r.route(run, out, tk.entries[:written], ob)
+	r.route(run, out, tk.entries[:written], ob, &sc.verdicts)
 	if cause == nil && r.journal != nil && r.state == pb.RobotState_ROBOT_STATE_SERVING && r.sinceSnapshot >= s.opt.SnapshotEvery {
 		// After route: the snapshot's sessions remember the verdicts as sent.
 		s.snapshot(r)

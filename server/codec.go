@@ -66,23 +66,29 @@ type encodedResponse struct {
 // encoded verdicts, one allocation per many of them. A piece is never
 // written again once handed out; a buffer is freed when nothing refers to
 // a piece of it any more.
+//
+// The robots' sessions keep encoded verdicts, so a verdict slab's buffers
+// live as long as one of their verdicts is remembered: each ingest stream
+// has its own (the verdicts of its robots, not of other streams), starting
+// at verdictSlabStart bytes and doubling up to slabBytes, so that a short
+// stream holds little more than its verdicts.
 type slab struct {
 	buf  []byte
-	size int // of a new buffer (0: slabBytes)
+	next int // the size of the next buffer (0: slabBytes)
 }
 
-const slabBytes = 64 << 10
-
-// marshalRoom is the room a slab's buffer keeps for marshal: less, and a
-// new buffer is taken. A verdict is about 30 bytes.
-const marshalRoom = 256
+const (
+	slabBytes        = 64 << 10
+	verdictSlabStart = 64
+)
 
 func (s *slab) newBuffer(n int) {
-	size := s.size
+	size := s.next
 	if size == 0 {
 		size = slabBytes
 	}
 	s.buf = make([]byte, 0, max(size, n))
+	s.next = min(2*size, slabBytes)
 }
 
 func (s *slab) take(n int) []byte {
@@ -97,22 +103,16 @@ func (s *slab) take(n int) []byte {
 	return b
 }
 
-// marshal returns m's encoding, in the slab when it fits in the room left
-// (otherwise in a buffer of its own), capped so that appending to it never
-// writes into the slab.
+// marshal returns m's encoding as a piece of the slab.
 func (s *slab) marshal(m proto.Message) ([]byte, error) {
-	if cap(s.buf)-len(s.buf) < marshalRoom {
-		s.newBuffer(marshalRoom)
-	}
-	mark := len(s.buf)
-	b, err := (proto.MarshalOptions{}).MarshalAppend(s.buf[mark:mark], m)
+	b := s.take(proto.Size(m))
+	// The sizes Size cached are those of m as it is.
+	enc, err := (proto.MarshalOptions{UseCachedSize: true}).MarshalAppend(b[:0], m)
 	if err != nil {
 		return nil, err
 	}
-	if len(b) <= cap(s.buf)-mark {
-		// Written in place: MarshalAppend allocates only when the
-		// encoding does not fit.
-		s.buf = s.buf[:mark+len(b)]
+	if len(enc) != len(b) {
+		return nil, fmt.Errorf("encoding took %d bytes, its size was %d", len(enc), len(b))
 	}
-	return b[:len(b):len(b)], nil
+	return b, nil
 }

@@ -76,20 +76,23 @@ func TestSlab(t *testing.T) {
 	}
 }
 
-// TestSlabMarshal: encodings in a slab are those of proto.Marshal, never
-// overwritten by later ones, capped, and one that does not fit the room
-// left gets a buffer of its own while the slab goes on where it was.
+// TestSlabMarshal: encodings in a verdict slab are those of proto.Marshal,
+// capped and never overwritten by later ones; its buffers start small and
+// double up to slabBytes, and one that does not fit takes a buffer of its
+// own size at least.
 func TestSlabMarshal(t *testing.T) {
-	s := &slab{size: 300}
+	s := &slab{next: verdictSlabStart}
 	small := func(i int) *pb.IngestResponse {
-		return &pb.IngestResponse{Sequence: uint64(i + 1), ClientSequence: uint64(i + 7), Verdict: pb.Verdict_VERDICT_APPLIED, Nis: float64(i) / 3}
+		return &pb.IngestResponse{Sequence: uint64(i + 1), ClientSequence: uint64(i + 7), Verdict: pb.Verdict_VERDICT_APPLIED, Nis: float64(i) / 3,
+			Resolved: []*pb.Resolution{{Sequence: uint64(i), Verdict: pb.Verdict_VERDICT_APPLIED, Nis: 0.5}}}
 	}
-	big := &pb.IngestResponse{Sequence: 99, Reason: string(bytes.Repeat([]byte("r"), 2*marshalRoom))}
+	big := &pb.IngestResponse{Sequence: 99, Reason: string(bytes.Repeat([]byte("r"), 3*verdictSlabStart))}
 	var msgs []*pb.IngestResponse
 	var got [][]byte
-	for i := range 40 {
+	caps := map[int]bool{}
+	for i := range 4000 {
 		m := small(i)
-		if i == 5 || i == 23 {
+		if i == 1 || i == 2300 {
 			m = big
 		}
 		b, err := s.marshal(m)
@@ -100,11 +103,17 @@ func TestSlabMarshal(t *testing.T) {
 			t.Fatalf("message %d: len %d cap %d, want capped", i, len(b), cap(b))
 		}
 		msgs, got = append(msgs, m), append(got, b)
+		caps[cap(s.buf)] = true
 	}
 	for i, m := range msgs {
 		want, _ := proto.Marshal(m)
 		if !bytes.Equal(got[i], want) {
 			t.Fatalf("message %d: %x, want %x", i, got[i], want)
+		}
+	}
+	for _, c := range []int{verdictSlabStart, 4 * verdictSlabStart, slabBytes} {
+		if !caps[c] {
+			t.Errorf("no buffer of %d bytes among %v", c, caps)
 		}
 	}
 }

@@ -472,7 +472,7 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	sendErr := make(chan error, 1)
 	go func() { sendErr <- snd.run() }()
 	ob := newOutbox()
-	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob}
+	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob, sc: scratch{verdicts: slab{next: verdictSlabStart}}}
 	go t.receive(ctx, stream)
 	err := t.takeBatches(ctx)
 	if err == nil {
@@ -734,7 +734,7 @@ func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.In
 // ingestBatch applies samples that came without a stream: the resolutions
 // their inputs decide all go to their senders' streams.
 func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
-	return s.ingestStream(batch, nil, &scratch{verdicts: slab{size: 64 * len(batch)}})
+	return s.ingestStream(batch, nil, &scratch{verdicts: slab{next: verdictSlabStart * len(batch)}})
 }
 
 // ingestStream applies samples of one stream (ob) in order: per run of

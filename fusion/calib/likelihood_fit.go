@@ -373,6 +373,17 @@ const probeStepLog = 0.5
 // N innovations of mean square s), so this is lenient.
 const probeMaxStdErrLog = 1.0
 
+// probeMinFall is the fall of minus the log-likelihood over one probe
+// step by which a level whose curvature is not yet positive shows that the
+// run sees it: twice the 1.92 that bounds a 95% interval, above the few
+// units by which a slip test or a gate flipping moves the likelihood.
+// probeMaxWalk bounds the steps the probe walks downhill along it (a
+// factor e^3, 20).
+const (
+	probeMinFall = 4
+	probeMaxWalk = 6
+)
+
 // probe looks along each level alone, a step probeStepLog either way of
 // x: a level whose curvature there is nil, negative or too small is marked
 // not identified in levels; every other level is moved to the peak of its
@@ -380,15 +391,19 @@ const probeMaxStdErrLog = 1.0
 // marked are looked at again from there, since a level far off can hide
 // another's curvature; near the others' optimum the curvature along one
 // level is close to what it will be, so those must show a standard error
-// within half as much again as maxStdErrLog to be fitted.
+// within half as much again as maxStdErrLog to be fitted. In that second
+// look a level along which the likelihood falls steeply (by probeMinFall
+// over a step) while its curvature is not yet positive is walked downhill
+// first, until the curvature turns positive (at most probeMaxWalk steps),
+// and its parabola's peak taken from there.
 func (p *replayer) probe(obj func([]float64) float64, x []float64, levels []FittedLevel, maxStdErrLog float64) []int {
 	all := make([]int, len(x))
 	for i := range all {
 		all[i] = i
 	}
-	free, flat := p.probeAlong(obj, x, levels, all, probeMaxStdErrLog)
-	if len(flat) > 0 && len(free) > 0 {
-		more, _ := p.probeAlong(obj, x, levels, flat, maxStdErrLog*1.5)
+	free, flat := p.probeAlong(obj, x, levels, all, probeMaxStdErrLog, false)
+	if len(flat) > 0 {
+		more, _ := p.probeAlong(obj, x, levels, flat, maxStdErrLog*1.5, true)
 		free = append(free, more...)
 		slices.Sort(free)
 	}
@@ -398,7 +413,7 @@ func (p *replayer) probe(obj func([]float64) float64, x []float64, levels []Fitt
 // probeAlong probes the levels along of x (probe), each free when the
 // standard error of its log from its curvature is at most maxSE, and
 // returns the free ones and the flat ones.
-func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels []FittedLevel, along []int, maxSE float64) (free, flat []int) {
+func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels []FittedLevel, along []int, maxSE float64, walk bool) (free, flat []int) {
 	y := make([]float64, len(x))
 	for i, v := range x {
 		y[i] = math.Log(v)
@@ -406,20 +421,42 @@ func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels [
 	f0 := obj(y)
 	next := append([]float64(nil), x...)
 	for _, i := range along {
-		y[i] += probeStepLog
-		up := obj(y)
-		y[i] -= 2 * probeStepLog
-		down := obj(y)
-		y[i] += probeStepLog
-		c := (up - 2*f0 + down) / (probeStepLog * probeStepLog)
-		g := (up - down) / (2 * probeStepLog)
+		y0, f := y[i], f0
+		var up, down, c, g float64
+		for steps := 0; ; steps++ {
+			y[i] += probeStepLog
+			up = obj(y)
+			y[i] -= 2 * probeStepLog
+			down = obj(y)
+			y[i] += probeStepLog
+			c = (up - 2*f + down) / (probeStepLog * probeStepLog)
+			g = (up - down) / (2 * probeStepLog)
+			if c > 0 || math.IsInf(up, 0) || math.IsInf(down, 0) || !walk || f-min(up, down) <= probeMinFall || steps == probeMaxWalk {
+				break
+			}
+			// Well below the variance its innovations show, a level's
+			// minus log-likelihood bends down (for a Gaussian
+			// innovation of variance a + q and mean square s, its second
+			// derivative in log q is negative while q is small beside
+			// a and s): the slope, not the curvature, says the run sees
+			// it, so the probe walks downhill and looks again.
+			if down < up {
+				y[i] -= probeStepLog
+				f = down
+			} else {
+				y[i] += probeStepLog
+				f = up
+			}
+		}
+		at := math.Exp(y[i]) // where the walk ended
+		y[i] = y0
 		if !(c > 0) || math.IsInf(up, 0) || math.IsInf(down, 0) || 1/math.Sqrt(c) > maxSE {
 			levels[i].Note = fmt.Sprintf("the log-likelihood is nearly flat or not concave along it (curvature %.3g per log unit squared): the run does not determine it", c)
 			flat = append(flat, i)
 			continue
 		}
 		step := math.Max(-3*probeStepLog, math.Min(3*probeStepLog, -g/c))
-		next[i] = x[i] * math.Exp(step)
+		next[i] = at * math.Exp(step)
 		levels[i].Note = ""
 		free = append(free, i)
 	}

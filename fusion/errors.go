@@ -29,8 +29,13 @@ func FieldErrorf(kind error, path, format string, args ...any) error {
 	return &FieldError{Path: path, Err: fmt.Errorf("%w: %s: %s", kind, path, fmt.Sprintf(format, args...))}
 }
 
-// FieldOf returns the field path carried by err, or "" if none.
+// FieldOf returns the field path carried by err, or "" if none. A nil
+// err returns at once: errors.As's target escapes, and the service asks
+// this of every verdict (one allocation a sample).
 func FieldOf(err error) string {
+	if err == nil {
+		return ""
+	}
 	var fe *FieldError
 	if errors.As(err, &fe) {
 		return fe.Path

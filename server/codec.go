@@ -62,21 +62,57 @@ type encodedResponse struct {
 	wire []byte
 }
 
-// slab hands out pieces of large buffers for arriving requests, one
-// allocation per many requests. A buffer is never written again once
-// handed out; it is freed when no request refers to it any more.
-type slab struct{ buf []byte }
+// slab hands out pieces of large buffers for arriving requests and for
+// encoded verdicts, one allocation per many of them. A piece is never
+// written again once handed out; a buffer is freed when nothing refers to
+// a piece of it any more.
+//
+// The robots' sessions keep encoded verdicts, so a verdict slab's buffers
+// live as long as one of their verdicts is remembered: each ingest stream
+// has its own (the verdicts of its robots, not of other streams), starting
+// at verdictSlabStart bytes and doubling up to slabBytes, so that a short
+// stream holds little more than its verdicts.
+type slab struct {
+	buf  []byte
+	next int // the size of the next buffer (0: slabBytes)
+}
 
-const slabBytes = 64 << 10
+const (
+	slabBytes        = 64 << 10
+	verdictSlabStart = 64
+)
+
+func (s *slab) newBuffer(n int) {
+	size := s.next
+	if size == 0 {
+		size = slabBytes
+	}
+	s.buf = make([]byte, 0, max(size, n))
+	s.next = min(2*size, slabBytes)
+}
 
 func (s *slab) take(n int) []byte {
 	if s == nil {
 		return make([]byte, n)
 	}
 	if cap(s.buf)-len(s.buf) < n {
-		s.buf = make([]byte, 0, max(slabBytes, n))
+		s.newBuffer(n)
 	}
 	b := s.buf[len(s.buf) : len(s.buf)+n : len(s.buf)+n]
 	s.buf = s.buf[:len(s.buf)+n]
 	return b
+}
+
+// marshal returns m's encoding as a piece of the slab.
+func (s *slab) marshal(m proto.Message) ([]byte, error) {
+	b := s.take(proto.Size(m))
+	// The sizes Size cached are those of m as it is.
+	enc, err := (proto.MarshalOptions{UseCachedSize: true}).MarshalAppend(b[:0], m)
+	if err != nil {
+		return nil, err
+	}
+	if len(enc) != len(b) {
+		return nil, fmt.Errorf("encoding took %d bytes, its size was %d", len(enc), len(b))
+	}
+	return b, nil
 }

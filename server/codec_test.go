@@ -75,3 +75,45 @@ func TestSlab(t *testing.T) {
 		}
 	}
 }
+
+// TestSlabMarshal: encodings in a verdict slab are those of proto.Marshal,
+// capped and never overwritten by later ones; its buffers start small and
+// double up to slabBytes, and one that does not fit takes a buffer of its
+// own size at least.
+func TestSlabMarshal(t *testing.T) {
+	s := &slab{next: verdictSlabStart}
+	small := func(i int) *pb.IngestResponse {
+		return &pb.IngestResponse{Sequence: uint64(i + 1), ClientSequence: uint64(i + 7), Verdict: pb.Verdict_VERDICT_APPLIED, Nis: float64(i) / 3,
+			Resolved: []*pb.Resolution{{Sequence: uint64(i), Verdict: pb.Verdict_VERDICT_APPLIED, Nis: 0.5}}}
+	}
+	big := &pb.IngestResponse{Sequence: 99, Reason: string(bytes.Repeat([]byte("r"), 3*verdictSlabStart))}
+	var msgs []*pb.IngestResponse
+	var got [][]byte
+	caps := map[int]bool{}
+	for i := range 4000 {
+		m := small(i)
+		if i == 1 || i == 2300 {
+			m = big
+		}
+		b, err := s.marshal(m)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(b) != cap(b) {
+			t.Fatalf("message %d: len %d cap %d, want capped", i, len(b), cap(b))
+		}
+		msgs, got = append(msgs, m), append(got, b)
+		caps[cap(s.buf)] = true
+	}
+	for i, m := range msgs {
+		want, _ := proto.Marshal(m)
+		if !bytes.Equal(got[i], want) {
+			t.Fatalf("message %d: %x, want %x", i, got[i], want)
+		}
+	}
+	for _, c := range []int{verdictSlabStart, 4 * verdictSlabStart, slabBytes} {
+		if !caps[c] {
+			t.Errorf("no buffer of %d bytes among %v", c, caps)
+		}
+	}
+}

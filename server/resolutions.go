@@ -128,9 +128,9 @@ func resolutionResponses(ps []parcel) []encodedResponse {
 // the others to their senders' streams (or parking them for their
 // sessions). A response so changed is encoded again, and its session
 // remembers it as sent, so that a retry gets what the first answer was.
-// ob is the stream of the run (nil: none, as for ReseedRobot). The caller
-// holds r.mu.
-func (r *robot) route(run []*arrivedRequest, out []encodedResponse, entries []int, ob *outbox) {
+// ob is the stream of the run (nil: none, as for ReseedRobot); vs holds
+// the new encodings. The caller holds r.mu.
+func (r *robot) route(run []*arrivedRequest, out []encodedResponse, entries []int, ob *outbox, vs *slab) {
 	if ob != nil && (len(r.parked.byID) > 0 || len(r.holders) > 0) {
 		r.bind(run, ob)
 	}
@@ -156,7 +156,7 @@ func (r *robot) route(run []*arrivedRequest, out []encodedResponse, entries []in
 			}
 			resp.Resolved, out[k].wire = own, nil
 			if sid := run[k].GetSessionId(); sid != "" {
-				if wire, err := proto.Marshal(resp); err == nil {
+				if wire, err := vs.marshal(resp); err == nil {
 					// An error is not expected (record encoded it);
 					// the retry then gets the journaled form.
 					out[k].wire = wire

@@ -2,6 +2,7 @@ package server
 
 import (
 	"context"
+	"math/rand/v2"
 	"testing"
 
 	"google.golang.org/protobuf/proto"
@@ -131,4 +132,62 @@ func TestSnapshotSessionsBudget(t *testing.T) {
 
 func itoa3(i int) string {
 	return string([]byte{byte('0' + i/100%10), byte('0' + i/10%10), byte('0' + i%10)})
+}
+
+// TestSessionLogOrders: a session's log answers like a plain record of its
+// newest sessionVerdicts client sequences (a map and a queue, the model
+// here), while they rise (searched), once one comes out of order (mapped),
+// and for re-added ones (a verdict sent again changed).
+func TestSessionLogOrders(t *testing.T) {
+	rng := rand.New(rand.NewPCG(3, 11))
+	for _, c := range []struct {
+		name string
+		next func(q uint64) uint64
+	}{
+		{"rising by one", func(q uint64) uint64 { return q + 1 }},
+		{"rising with gaps", func(q uint64) uint64 { return q + 1 + uint64(rng.IntN(3)) }},
+		{"a restart in the middle", func(q uint64) uint64 {
+			if q == 3000 {
+				return 7
+			}
+			return q + 1
+		}},
+		{"shuffled", func(uint64) uint64 { return uint64(rng.IntN(20000)) + 1 }},
+	} {
+		var ss sessions
+		model := map[uint64]byte{}
+		var order []uint64
+		q := uint64(0)
+		for i := range 3 * sessionVerdicts {
+			q = c.next(q)
+			w := byte(i)
+			if _, ok := model[q]; !ok {
+				order = append(order, q)
+				if len(order) > sessionVerdicts {
+					delete(model, order[0])
+					order = order[1:]
+				}
+			}
+			model[q] = w
+			ss.add("s", q, []byte{w})
+			if i%5 == 0 {
+				// Sent again: the newest verdict changes (route).
+				model[q] = w + 1
+				ss.add("s", q, []byte{w + 1})
+			}
+			if i%97 == 0 || i > 3*sessionVerdicts-50 {
+				probes := []uint64{q, q - 1, q + 1, order[0], order[0] - 1}
+				for p := uint64(0); p < q+5; p += 1 + q/50 {
+					probes = append(probes, p)
+				}
+				for _, probe := range probes {
+					got := ss.lookup("s", probe)
+					want, ok := model[probe]
+					if ok != (got != nil) || ok && got[0] != want {
+						t.Fatalf("%s, after %d adds: lookup(%d) = %v, want %v (held %v)", c.name, i+1, probe, got, want, ok)
+					}
+				}
+			}
+		}
+	}
 }

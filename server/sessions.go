@@ -33,10 +33,14 @@ type sessions struct {
 	tick uint64
 }
 
-// sessionLog is one session's newest verdicts, as encoded and sent.
+// sessionLog is one session's newest verdicts, as encoded and sent, in
+// the order added. A client counts its sequence up, so the ring's client
+// sequences usually rise along it: lookup then searches the ring, and a
+// sample costs no map operation. Once one is added out of that order,
+// index maps each client sequence to its position from then on.
 type sessionLog struct {
 	used  uint64
-	index map[uint64]int // client sequence -> position in ring
+	index map[uint64]int // client sequence -> position in ring; nil while they rise
 	ring  []sessionVerdict
 	next  int // the ring position written next once it is full
 }
@@ -46,13 +50,41 @@ type sessionVerdict struct {
 	wire      []byte
 }
 
+// at returns the k-th oldest verdict of the ring.
+func (l *sessionLog) at(k int) *sessionVerdict {
+	if len(l.ring) == sessionVerdicts {
+		k = (l.next + k) % sessionVerdicts
+	}
+	return &l.ring[k]
+}
+
+// find returns the ring position of clientSeq's verdict.
+func (l *sessionLog) find(clientSeq uint64) (int, bool) {
+	if l.index != nil {
+		i, ok := l.index[clientSeq]
+		return i, ok
+	}
+	n := len(l.ring)
+	if n == 0 || clientSeq > l.at(n-1).clientSeq {
+		return 0, false
+	}
+	k := sort.Search(n, func(k int) bool { return l.at(k).clientSeq >= clientSeq })
+	if k == n || l.at(k).clientSeq != clientSeq {
+		return 0, false
+	}
+	if n == sessionVerdicts {
+		return (l.next + k) % sessionVerdicts, true
+	}
+	return k, true
+}
+
 // lookup returns the verdict sent for (id, clientSeq), or nil.
 func (ss *sessions) lookup(id string, clientSeq uint64) []byte {
 	l := ss.byID[id]
 	if l == nil {
 		return nil
 	}
-	i, ok := l.index[clientSeq]
+	i, ok := l.find(clientSeq)
 	if !ok {
 		return nil
 	}
@@ -73,22 +105,35 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 		if len(ss.byID) >= maxSessions {
 			ss.evict()
 		}
-		l = &sessionLog{index: map[uint64]int{}}
+		l = &sessionLog{}
 		ss.byID[id] = l
 	}
 	l.used = ss.tick
-	if i, ok := l.index[clientSeq]; ok {
-		l.ring[i].wire = wire
-		return
+	if n := len(l.ring); l.index != nil || n > 0 && clientSeq <= l.at(n-1).clientSeq {
+		if i, ok := l.find(clientSeq); ok {
+			l.ring[i].wire = wire
+			return
+		}
+		if l.index == nil {
+			// Out of order: map them from now on.
+			l.index = make(map[uint64]int, sessionVerdicts)
+			for i, v := range l.ring {
+				l.index[v.clientSeq] = i
+			}
+		}
 	}
 	if len(l.ring) < sessionVerdicts {
-		l.index[clientSeq] = len(l.ring)
+		if l.index != nil {
+			l.index[clientSeq] = len(l.ring)
+		}
 		l.ring = append(l.ring, sessionVerdict{clientSeq, wire})
 		return
 	}
-	delete(l.index, l.ring[l.next].clientSeq)
+	if l.index != nil {
+		delete(l.index, l.ring[l.next].clientSeq)
+		l.index[clientSeq] = l.next
+	}
 	l.ring[l.next] = sessionVerdict{clientSeq, wire}
-	l.index[clientSeq] = l.next
 	l.next = (l.next + 1) % sessionVerdicts
 }
 

@@ -1,6 +1,7 @@
 package calib
 
 import (
+	"encoding/binary"
 	"errors"
 	"fmt"
 	"math"
@@ -31,6 +32,10 @@ type NoiseFitOptions struct {
 	// for it to count as identified (0.35: the run pins the level to
 	// within a factor of two at 95%).
 	MaxStdErrLog float64
+	// KeepUndetermined keeps the variances the run does not determine at
+	// their configured values; by default each is set to the upper end of
+	// its 95% likelihood interval (likelihood_upper.go).
+	KeepUndetermined bool
 }
 
 // FittedLevel is one noise level as the fit left it.
@@ -49,6 +54,14 @@ type FittedLevel struct {
 	// why not.
 	Identifiable bool
 	Note         string
+	// Raised says that the level, a variance the run does not determine,
+	// was set to the upper end of its 95% likelihood interval (Fitted and
+	// Hi; NoiseFitOptions.KeepUndetermined).
+	Raised bool
+	// Matched says that the level, a sensor's covariance factor the
+	// likelihood does not determine, was matched to the sensor's median
+	// NIS instead (NoiseFitOptions.ChooseModel; no interval).
+	Matched bool
 }
 
 // NoiseFit is the result of FitNoise.
@@ -219,33 +232,59 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		}
 		free = kept
 	}
+	for _, i := range free {
+		fit.Levels[i].Identifiable = true
+	}
 	if opt.ChooseModel {
-		// Covariance matching of the identified covariance factors.
-		n, err := p.matchMedianNIS(x, free)
+		n, err := p.thinnedSteps(inputs, x, fit.Levels, opt.KeepUndetermined)
 		fit.Replays += n
 		if err != nil {
 			return nil, err
 		}
+		// A covariance the likelihood does not determine starts from its
+		// configured value, not the chosen model's profiled one. Every
+		// covariance factor is then matched to its median NIS, with the
+		// body steps' levels of the thinned run: covariance matching is
+		// an estimator of its own, which does not lean on the composite
+		// likelihood; a sensor with too few innovations keeps its value.
+		var covs []int
+		for i, l := range fit.Levels {
+			if l.kind == levelCovScale {
+				covs = append(covs, i)
+				if !l.Identifiable {
+					x[i] = 1 / covFrom[l.Sensor]
+				}
+			}
+		}
+		matched, n, err := p.matchMedianNIS(x, covs)
+		fit.Replays += n
+		if err != nil {
+			return nil, err
+		}
+		for _, i := range matched {
+			if l := &fit.Levels[i]; !l.Identifiable {
+				l.Matched = true
+				l.Note += "; matched to its median NIS (covariance matching) instead"
+			}
+		}
 	}
-	for _, i := range free {
+	for i := range fit.Levels {
 		fl := &fit.Levels[i]
-		fl.Identifiable, fl.Fitted = true, x[i]
+		if !fl.Identifiable && !fl.Matched || fl.Raised {
+			continue
+		}
+		fl.Fitted = x[i]
 		if fl.kind == levelCovScale && covFrom != nil {
 			fl.Fitted *= covFrom[fl.Sensor]
 		}
 		fl.Lo, fl.Hi = fl.Fitted*math.Exp(-1.96*fl.StdErrLog), fl.Fitted*math.Exp(1.96*fl.StdErrLog)
 	}
-	if opt.ChooseModel {
-		n, err := p.thinnedSteps(inputs, x, fit.Levels)
-		fit.Replays += n
-		if err != nil {
-			return nil, err
-		}
-		// A covariance the fit does not determine keeps its configured
-		// value, not the chosen model's profiled one.
-		for i, l := range fit.Levels {
-			if l.kind == levelCovScale && !l.Identifiable {
-				x[i] = 1 / covFrom[l.Sensor]
+	if !opt.KeepUndetermined {
+		p.raiseUndetermined(obj, x, fit.Levels)
+		for i := range fit.Levels {
+			if l := &fit.Levels[i]; l.Raised && l.kind == levelCovScale && covFrom != nil {
+				l.Fitted *= covFrom[l.Sensor]
+				l.Hi = l.Fitted
 			}
 		}
 	}
@@ -329,19 +368,32 @@ func (p *replayer) screen(values []float64) (int, error) {
 
 // objective returns minus the log-likelihood as a function of the logs of
 // the levels, counting replays; a configuration the levels make invalid
-// (a Student-t sensor at one degree of freedom or fewer) is +Inf.
+// (a Student-t sensor at one degree of freedom or fewer) is +Inf. A replay
+// is deterministic, so a point asked for again (the Hessian's centre, the
+// optimum the checks start from: 10 of 232 replays in NoiseFit10Min) is
+// answered from memory; the fixes left out must not change meanwhile.
 func (p *replayer) objective(replays *int) func(logx []float64) float64 {
 	values := make([]float64, len(p.levels))
+	memo := map[string]float64{}
+	key := make([]byte, 0, 8*len(p.levels))
 	return func(logx []float64) float64 {
+		key = key[:0]
+		for _, v := range logx {
+			key = binary.LittleEndian.AppendUint64(key, math.Float64bits(v))
+		}
+		if f, ok := memo[string(key)]; ok {
+			return f
+		}
 		for i, v := range logx {
 			values[i] = math.Exp(v)
 		}
 		*replays++
-		ll, _, err := p.logLik(values)
-		if err != nil {
-			return math.Inf(1)
+		f := math.Inf(1)
+		if ll, _, err := p.logLik(values); err == nil {
+			f = -ll
 		}
-		return -ll
+		memo[string(key)] = f
+		return f
 	}
 }
 
@@ -373,6 +425,17 @@ const probeStepLog = 0.5
 // N innovations of mean square s), so this is lenient.
 const probeMaxStdErrLog = 1.0
 
+// probeMinFall is the fall of minus the log-likelihood over one probe
+// step by which a level whose curvature is not yet positive shows that the
+// run sees it: twice the 1.92 that bounds a 95% interval, above the few
+// units by which a slip test or a gate flipping moves the likelihood.
+// probeMaxWalk bounds the steps the probe walks downhill along it (a
+// factor e^3, 20).
+const (
+	probeMinFall = 4
+	probeMaxWalk = 6
+)
+
 // probe looks along each level alone, a step probeStepLog either way of
 // x: a level whose curvature there is nil, negative or too small is marked
 // not identified in levels; every other level is moved to the peak of its
@@ -380,15 +443,19 @@ const probeMaxStdErrLog = 1.0
 // marked are looked at again from there, since a level far off can hide
 // another's curvature; near the others' optimum the curvature along one
 // level is close to what it will be, so those must show a standard error
-// within half as much again as maxStdErrLog to be fitted.
+// within half as much again as maxStdErrLog to be fitted. In that second
+// look a level along which the likelihood falls steeply (by probeMinFall
+// over a step) while its curvature is not yet positive is walked downhill
+// first, until the curvature turns positive (at most probeMaxWalk steps),
+// and its parabola's peak taken from there.
 func (p *replayer) probe(obj func([]float64) float64, x []float64, levels []FittedLevel, maxStdErrLog float64) []int {
 	all := make([]int, len(x))
 	for i := range all {
 		all[i] = i
 	}
-	free, flat := p.probeAlong(obj, x, levels, all, probeMaxStdErrLog)
-	if len(flat) > 0 && len(free) > 0 {
-		more, _ := p.probeAlong(obj, x, levels, flat, maxStdErrLog*1.5)
+	free, flat := p.probeAlong(obj, x, levels, all, probeMaxStdErrLog, false)
+	if len(flat) > 0 {
+		more, _ := p.probeAlong(obj, x, levels, flat, maxStdErrLog*1.5, true)
 		free = append(free, more...)
 		slices.Sort(free)
 	}
@@ -398,7 +465,7 @@ func (p *replayer) probe(obj func([]float64) float64, x []float64, levels []Fitt
 // probeAlong probes the levels along of x (probe), each free when the
 // standard error of its log from its curvature is at most maxSE, and
 // returns the free ones and the flat ones.
-func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels []FittedLevel, along []int, maxSE float64) (free, flat []int) {
+func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels []FittedLevel, along []int, maxSE float64, walk bool) (free, flat []int) {
 	y := make([]float64, len(x))
 	for i, v := range x {
 		y[i] = math.Log(v)
@@ -406,20 +473,42 @@ func (p *replayer) probeAlong(obj func([]float64) float64, x []float64, levels [
 	f0 := obj(y)
 	next := append([]float64(nil), x...)
 	for _, i := range along {
-		y[i] += probeStepLog
-		up := obj(y)
-		y[i] -= 2 * probeStepLog
-		down := obj(y)
-		y[i] += probeStepLog
-		c := (up - 2*f0 + down) / (probeStepLog * probeStepLog)
-		g := (up - down) / (2 * probeStepLog)
+		y0, f := y[i], f0
+		var up, down, c, g float64
+		for steps := 0; ; steps++ {
+			y[i] += probeStepLog
+			up = obj(y)
+			y[i] -= 2 * probeStepLog
+			down = obj(y)
+			y[i] += probeStepLog
+			c = (up - 2*f + down) / (probeStepLog * probeStepLog)
+			g = (up - down) / (2 * probeStepLog)
+			if c > 0 || math.IsInf(up, 0) || math.IsInf(down, 0) || !walk || f-min(up, down) <= probeMinFall || steps == probeMaxWalk {
+				break
+			}
+			// Well below the variance its innovations show, a level's
+			// minus log-likelihood bends down (for a Gaussian
+			// innovation of variance a + q and mean square s, its second
+			// derivative in log q is negative while q is small beside
+			// a and s): the slope, not the curvature, says the run sees
+			// it, so the probe walks downhill and looks again.
+			if down < up {
+				y[i] -= probeStepLog
+				f = down
+			} else {
+				y[i] += probeStepLog
+				f = up
+			}
+		}
+		at := math.Exp(y[i]) // where the walk ended
+		y[i] = y0
 		if !(c > 0) || math.IsInf(up, 0) || math.IsInf(down, 0) || 1/math.Sqrt(c) > maxSE {
 			levels[i].Note = fmt.Sprintf("the log-likelihood is nearly flat or not concave along it (curvature %.3g per log unit squared): the run does not determine it", c)
 			flat = append(flat, i)
 			continue
 		}
 		step := math.Max(-3*probeStepLog, math.Min(3*probeStepLog, -g/c))
-		next[i] = x[i] * math.Exp(step)
+		next[i] = at * math.Exp(step)
 		levels[i].Note = ""
 		free = append(free, i)
 	}
@@ -575,18 +664,22 @@ func stdErrs(h *mat.SymDense, keep []int) (se []float64, ok []bool) {
 // a camera's Gauss-Markov errors (1 to 3 s) to have mostly decorrelated.
 const thinGapS = 3.0
 
-// thinnedSteps fits the body-step noise levels the run did not determine
-// on the run thinned to one fix per thinGapS seconds of each sensor.
+// thinnedSteps fits the body-step noise levels on the run thinned to one
+// fix per thinGapS seconds of each sensor, the other levels held at x.
 // Between fixes 0.3 s apart a correlated camera's S carries its bias's
-// whole variance and the steps' noise is a few percent of it; over 3 s it
-// is comparable ("Design: Noise by likelihood"). The others are held at
-// values. A level the thinned run determines gets its value (x and
-// levels, with a note); the others stay as they were. It returns the
-// replays it took.
-func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []FittedLevel) (int, error) {
+// whole variance and the steps' noise is a few percent of it, and its
+// innovations are far from independent; over 3 s the steps' spread is
+// comparable and the camera's errors have mostly decorrelated, so the
+// summed densities are close to the run's likelihood ("Design: Noise by
+// likelihood"). A level the thinned run determines gets its value (x and
+// levels, with a note); unless keep, a level it does not determine is set
+// to the upper end of its interval there (raiseUndetermined); a level it
+// bounds nowhere stays as the whole run left it. It returns the replays
+// it took.
+func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []FittedLevel, keep bool) (int, error) {
 	var idx []int
 	for i, l := range levels {
-		if !l.Identifiable && l.kind == levelNoise && strings.HasPrefix(l.Field, "noise.step_") {
+		if l.kind == levelNoise && strings.HasPrefix(l.Field, "noise.step_") {
 			idx = append(idx, i)
 		}
 	}
@@ -612,19 +705,22 @@ func (p *replayer) thinnedSteps(inputs []RecordedInput, x []float64, levels []Fi
 	for k, i := range idx {
 		sub[k] = levels[i].NoiseLevel
 	}
-	fit, err := FitNoise(cfg, thin, NoiseFitOptions{Levels: sub})
+	fit, err := FitNoise(cfg, thin, NoiseFitOptions{Levels: sub, KeepUndetermined: keep})
 	if err != nil {
 		return 0, err
 	}
 	for k, i := range idx {
 		fl := fit.Levels[k]
-		if !fl.Identifiable {
+		if !fl.Identifiable && !fl.Raised {
 			continue
 		}
 		x[i] = fl.Fitted
 		l := &levels[i]
-		l.Identifiable, l.Fitted, l.StdErrLog, l.Lo, l.Hi = true, fl.Fitted, fl.StdErrLog, fl.Lo, fl.Hi
-		l.Note = fmt.Sprintf("determined on the run thinned to one fix per %.0f s", thinGapS)
+		l.Identifiable, l.Raised, l.Fitted, l.StdErrLog, l.Lo, l.Hi = fl.Identifiable, fl.Raised, fl.Fitted, fl.StdErrLog, fl.Lo, fl.Hi
+		l.Note = fmt.Sprintf("on the run thinned to one fix per %.0f s", thinGapS)
+		if fl.Raised {
+			l.Note = fmt.Sprintf("not determined on the run thinned to one fix per %.0f s (%s)", thinGapS, fl.Note)
+		}
 	}
 	return fit.Replays, nil
 }

@@ -253,8 +253,7 @@ func (p *replayer) profile(cfg fusion.Config, i int) (ll, k float64, replays int
 // TestRealDataGoal, its mean NIS then 1.35 times the model's); the median
 // resists the tails. Three rounds, since S = H P H^T + R is not
 // proportional to the factor; it returns the replays it took.
-func (p *replayer) matchMedianNIS(values []float64, free []int) (int, error) {
-	replays := 0
+func (p *replayer) matchMedianNIS(values []float64, free []int) (matched []int, replays int, err error) {
 	for range 3 {
 		type seen struct {
 			nis []float64
@@ -263,7 +262,7 @@ func (p *replayer) matchMedianNIS(values []float64, free []int) (int, error) {
 		}
 		by := map[string]*seen{}
 		replays++
-		err := p.run(values, func(in *fusion.Innovation, nu float64) {
+		err = p.run(values, func(in *fusion.Innovation, nu float64) {
 			s := by[in.SensorID]
 			if s == nil {
 				s = &seen{nu: nu}
@@ -273,8 +272,9 @@ func (p *replayer) matchMedianNIS(values []float64, free []int) (int, error) {
 			s.dim = max(s.dim, in.Outcome.Dim)
 		})
 		if err != nil {
-			return replays, err
+			return nil, replays, err
 		}
+		matched = matched[:0]
 		for _, i := range free {
 			l := p.levels[i]
 			if l.kind != levelCovScale {
@@ -291,7 +291,8 @@ func (p *replayer) matchMedianNIS(values []float64, free []int) (int, error) {
 			}
 			slices.Sort(s.nis)
 			values[i] *= s.nis[len(s.nis)/2] / want
+			matched = append(matched, i)
 		}
 	}
-	return replays, nil
+	return matched, replays, nil
 }

@@ -142,6 +142,14 @@ type Scenario struct {
 	// counter-clockwise one, and again. Layouts DriveWheelTurn and
 	// Commanded only.
 	SquareM float64
+	// PauseS is the square test's pause before each square (2 s).
+	PauseS float64
+	// IMUOnOdometry stamps the IMU's headings on the odometry's grid
+	// instead of 3 ms off it.
+	IMUOnOdometry bool
+	// Heading, where a field is set, replaces the rotation noise the
+	// simulator draws and configures alike.
+	Heading HeadingNoise
 	// OdometryNoiseScale, if positive, multiplies the variances of the
 	// odometry's noise (wheel travel, sideways slip, scrub and the heading's
 	// random walk), drawn and configured alike (1).
@@ -160,6 +168,21 @@ type Scenario struct {
 	FieldFrame estimator.Pose
 }
 
+// HeadingNoise is the noise that turns the cart's heading or the IMU's
+// reading of it; a zero field keeps the simulator's default.
+type HeadingNoise struct {
+	// TurnVarRad2PerRad is the scrub per radian turned, HeadingVarRad2PerS
+	// the heading's random walk per second (set, they replace the default
+	// and OdometryNoiseScale's multiple of it).
+	TurnVarRad2PerRad, HeadingVarRad2PerS float64
+	// IMUStdRad is the standard deviation of an absolute IMU heading
+	// (0.005 rad); IMUOffsetVarRad2PerS the random walk of its zero (1e-7).
+	IMUStdRad, IMUOffsetVarRad2PerS float64
+	// CameraStdRad is the standard deviation of a pose fix's heading
+	// (0.02 rad).
+	CameraStdRad float64
+}
+
 func (s *Scenario) defaults() {
 	def := func(v *float64, d float64) {
 		if *v == 0 {
@@ -172,6 +195,10 @@ func (s *Scenario) defaults() {
 	def(&s.LatencyMinS, 0.05)
 	def(&s.LatencyMaxS, 0.2)
 	def(&s.SpeedMPerS, 0.4)
+	def(&s.PauseS, 2)
+	def(&s.Heading.IMUStdRad, imuHeadingStdRad)
+	def(&s.Heading.IMUOffsetVarRad2PerS, imuOffsetVarRad2PerS)
+	def(&s.Heading.CameraStdRad, cameraStdRad)
 	if s.IMUHz == 0 && (s.IMU || s.Layout == GyroTurn) {
 		s.IMUHz = 100
 	}
@@ -224,15 +251,21 @@ func (s Scenario) Config() fusion.Config {
 		n.TurnVarRad2PerRad *= k
 		n.HeadingVarRad2PerS *= k
 	}
-	n.IMUHeadingVarRad2 = imuHeadingStdRad * imuHeadingStdRad
-	n.IMUOffsetVarRad2PerS = imuOffsetVarRad2PerS
+	if h := s.Heading; h.TurnVarRad2PerRad > 0 {
+		n.TurnVarRad2PerRad = h.TurnVarRad2PerRad
+	}
+	if h := s.Heading; h.HeadingVarRad2PerS > 0 {
+		n.HeadingVarRad2PerS = h.HeadingVarRad2PerS
+	}
+	n.IMUHeadingVarRad2 = s.Heading.IMUStdRad * s.Heading.IMUStdRad
+	n.IMUOffsetVarRad2PerS = s.Heading.IMUOffsetVarRad2PerS
 	c := fusion.Config{
 		Noise:     n,
 		Recovery:  fusion.Recovery{Enabled: true},
 		StartCov:  []float64{startStdM * startStdM, 0, 0, 0, startStdM * startStdM, 0, 0, 0, startStdRad * startStdRad},
 		Landmarks: s.Landmarks(),
 		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixPose, Mount: CameraMount(),
-			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}},
+			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, s.Heading.CameraStdRad * s.Heading.CameraStdRad}}},
 	}
 	if s.Markers {
 		c.Sensors[0].Kind = fusion.FixLandmark
@@ -340,7 +373,7 @@ func New(s Scenario) *Sim {
 		if s.Layout != DriveWheelTurn && s.Layout != Commanded {
 			panic(fmt.Sprintf("fusiontest: the square test needs a differential drive, not layout %v", s.Layout))
 		}
-		sm.route = squareRoute(s.SquareM, s.SpeedMPerS)
+		sm.route = squareRoute(s.SquareM, s.SpeedMPerS, s.PauseS)
 	}
 	sm.left = sm.route[0].durNs
 	sm.endNs = int64(s.DurationS * 1e9)
@@ -350,6 +383,9 @@ func New(s Scenario) *Sim {
 	sm.slipWheel = -1
 	sm.nextOdo = 0
 	sm.nextIMU = 3e6 // the IMU's own clock phase: 3 ms off the encoders'
+	if s.IMUOnOdometry {
+		sm.nextIMU = 0
+	}
 	sm.nextCam = 50e6
 	sm.imuOffset = 0.7 // the IMU zeroed at power-on, facing elsewhere
 	sm.errs = newErrorState(s.Seed)
@@ -413,16 +449,16 @@ func figureEightRoute(r []segment) []segment {
 }
 
 // squareRoute is the bidirectional square test of side sideM at speed:
-// a pause, four sides each followed by a turn to the right in place, a
-// pause, four sides each followed by a turn to the left.
-func squareRoute(sideM, speed float64) []segment {
+// a pause of pauseS, four sides each followed by a turn to the right in
+// place, a pause, four sides each followed by a turn to the left.
+func squareRoute(sideM, speed, pauseS float64) []segment {
 	grid := func(s float64) int64 { return int64(math.Round(s/0.02)) * 20e6 }
 	turnDur := grid(math.Pi / 2 / 0.5)
 	w := math.Pi / 2 / (float64(turnDur) * 1e-9)
 	side := segment{durNs: grid(sideM / speed), v: sideM / (float64(grid(sideM/speed)) * 1e-9)}
 	var route []segment
 	for _, sign := range []float64{-1, 1} {
-		route = append(route, segment{durNs: grid(2)})
+		route = append(route, segment{durNs: grid(pauseS)})
 		for range 4 {
 			route = append(route, side, segment{durNs: turnDur, w: sign * w})
 		}
@@ -526,14 +562,14 @@ func (sm *Sim) generate() {
 		sm.truth.Heading = estimator.Wrap(sm.truth.Heading + sm.rng.NormFloat64()*math.Sqrt(v))
 	}
 	if !sm.s.NoiseFree && t > prevT {
-		sm.imuOffset += sm.rng.NormFloat64() * math.Sqrt(imuOffsetVarRad2PerS*float64(t-prevT)*1e-9)
+		sm.imuOffset += sm.rng.NormFloat64() * math.Sqrt(sm.s.Heading.IMUOffsetVarRad2PerS*float64(t-prevT)*1e-9)
 	}
 	if t == sm.nextOdo {
 		sm.emitOdometry(t)
 		sm.nextOdo = t + int64(math.Round(1e9/sm.s.OdometryHz))
 	}
 	if sm.s.IMUHz > 0 && sm.cfg.IMU == fusion.IMUAbsolute && t == sm.nextIMU {
-		h := estimator.Wrap(sm.truth.Heading + sm.imuOffset + sm.gauss(imuHeadingStdRad))
+		h := estimator.Wrap(sm.truth.Heading + sm.imuOffset + sm.gauss(sm.s.Heading.IMUStdRad))
 		jitter := int64(1e6 + sm.rng.Float64()*4e6)
 		sm.push(Input{ArrivalNs: t + jitter, Heading: &fusion.Heading{StampNs: t, HeadingRad: h}, Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped})
 		sm.nextIMU = t + int64(math.Round(1e9/sm.s.IMUHz))
@@ -622,7 +658,7 @@ func (sm *Sim) emitCamera(t int64) {
 		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixLandmark, LandmarkID: m.ID,
 			RangeM: &r, BearingRad: &b, Cov: []float64{rangeStdM * rangeStdM, 0, 0, bearingStdRad * bearingStdRad}}
 	} else {
-		x, y, h := cam.X+sm.camNoise(0, cameraStdM), cam.Y+sm.camNoise(1, cameraStdM), cam.Heading+sm.camNoise(2, cameraStdRad)
+		x, y, h := cam.X+sm.camNoise(0, cameraStdM), cam.Y+sm.camNoise(1, cameraStdM), cam.Heading+sm.camNoise(2, sm.s.Heading.CameraStdRad)
 		if outlier {
 			a := sm.rng.Float64() * 2 * math.Pi
 			d := 1 + 2*sm.rng.Float64()
@@ -632,7 +668,7 @@ func (sm *Sim) emitCamera(t int64) {
 		// pose, so that a twin run in a moved field frame sees the same error.
 		p := sm.s.ToField(estimator.Pose{X: x, Y: y, Heading: estimator.Wrap(h)})
 		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, XM: p.X, YM: p.Y, HeadingRad: p.Heading,
-			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, cameraStdRad * cameraStdRad}}
+			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, sm.s.Heading.CameraStdRad * sm.s.Heading.CameraStdRad}}
 	}
 	in.Outlier = outlier
 	switch {

@@ -104,34 +104,34 @@ const (
 // fraction of truth inside the position's 95% region, whose boundary is
 // the chi-square quantile of 2 degrees of freedom, gonum distuv). The
 // naive configuration misses the coverage goal (0.04 of the truth inside
-// its 95% region on this run); the tuned one meets both RMS goals
-// (0.044 m filtered, 0.021 m smoothed), but NOT the coverage goal: 0.88
-// filtered and 0.87 smoothed inside, where fusiontest's TrueModelConfig
-// (the simulator's own processes) gives 0.94 and 0.93. What keeps it
-// below: the run does not determine the body steps' sideways noise, which
-// keeps the naive guess (0.44 of the truth), and determines the forward
-// noise only on the run thinned to one fix per 3 s (0.72 of the truth);
-// the camera's correlation time is held at 2 s (truth 2.5 s) because its
-// composite likelihood misplaces it ("Design: Noise by likelihood"). The
-// test asserts the coverage it reaches (0.85) and logs the goal. With
-// RECKON_REALDATA_SEEDS=n it runs n runs over the goal's ranges instead
-// (variedScenario).
+// its 95% region on this run); the tuned one meets both RMS goals (0.044
+// m filtered, 0.021 m smoothed) and the coverage goal: 0.941 filtered and
+// 0.930 smoothed inside, where fusiontest's TrueModelConfig (the
+// simulator's own processes) gives 0.94 and 0.93. Before the variances the
+// run does not determine were set to the upper ends of their likelihood
+// intervals and the body-step levels fitted on the thinned run, it gave
+// 0.886 and 0.872: the body steps' sideways noise, which the run does not
+// determine, kept the naive guess (0.44 of the truth) ("Design: Noise by
+// likelihood"). With RECKON_REALDATA_SEEDS=n it runs n runs over the
+// goal's ranges instead (variedScenario).
 func TestRealDataGoal(t *testing.T) {
 	if testing.Short() {
 		t.Skip("a ten-minute run calibrated, tuned and reviewed")
 	}
 	n, _ := strconv.Atoi(os.Getenv("RECKON_REALDATA_SEEDS"))
 	if n <= 0 {
-		realDataGoal(t, realScenario(11, 600), 0.85) // not the goal's 0.90: see above
+		realDataGoal(t, realScenario(11, 600), goalInside95)
 		return
 	}
 	// The longer check: n runs whose scale biases, camera time constant
 	// and tails are drawn over the goal's ranges (variedScenario); each
-	// must reach the goal's RMS and 0.6 of the truth inside (seeds 1 to 3
-	// measured 0.77 / 0.78, 0.66 / 0.62 and 0.76 / 0.76: the goal's 0.9
-	// is missed by more here than on the CI's seed).
+	// must reach the goal's RMS and 0.65 of the truth inside (seeds 1 to 3
+	// measured 0.914 / 0.920, 0.698 / 0.670 and 0.933 / 0.955; before the
+	// upper ends and the thinned step fit 0.774 / 0.781, 0.338 / 0.297 and
+	// 0.761 / 0.768). Seed 2 misses the goal: calibrate put the camera's
+	// mount 1.9 cm and 9 mrad off ("Design: Noise by likelihood").
 	for seed := uint64(1); seed <= uint64(n); seed++ {
-		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.6) })
+		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.65) })
 	}
 }
 

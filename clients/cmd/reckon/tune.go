@@ -26,17 +26,24 @@ import (
 )
 
 func runTune(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := newFlagSet("tune", "(-journal DIR -robot NAME [-config ROBOT.yaml] | -config ROBOT.yaml -samples FILE.jsonl) [-out NEW.yaml] [-model] [-truth TRUTH.csv] [-report DIR]", `
+	fs := newFlagSet("tune", "(-journal DIR -robot NAME [-config ROBOT.yaml] | -config ROBOT.yaml -samples FILE.jsonl) [-out NEW.yaml] [-model] [-keep-undetermined] [-truth TRUTH.csv] [-report DIR]", `
 Fits the noise levels of a robot configuration to a recorded run by
 maximising the likelihood of the run's innovations (the prediction-error
 decomposition): the run is replayed through the estimator under candidate
 levels, on a log scale. It prints each level as configured and fitted with
 a 95% interval from the observed Fisher information, says which levels the
-run does not determine (those keep their configured values), and the mean
-NIS and whiteness of each sensor's innovations before and after; with
--truth, the NEES. With -model it first chooses the form of the noise model
-by the run's likelihood (a Gauss-Markov part and Student-t tails for each
-white Gaussian sensor, body-step noise per second instead of per metre). It
+run does not determine, and the mean NIS and whiteness of each sensor's
+innovations before and after; with -truth, the NEES. A variance the run
+does not determine (a noise term or a sensor's covariance) is set to the
+upper end of its 95% likelihood interval, the largest value the run does
+not reject (set low it would make the covariance overconfident);
+-keep-undetermined keeps such levels as configured instead (correlation
+times and degrees of freedom the run does not determine are always kept).
+With -model it first chooses the form of the noise model by the run's
+likelihood (a Gauss-Markov part and Student-t tails for each white
+Gaussian sensor, body-step noise per second instead of per metre), then
+fits its levels (the body-step levels on the run thinned to one fix per
+3 s, where a correlated camera's errors have mostly decorrelated). It
 writes the new configuration to -out and never overwrites the input. No
 ground truth is needed for the fit. The run is named as for calibrate
 (-journal and -robot, or -samples); a journal's run is tuned from its own
@@ -55,6 +62,7 @@ after into one HTML report with a calibration section at the top.`)
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
 	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps; then fit its levels")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
+	keep := fs.Bool("keep-undetermined", false, "keep the variances the run does not determine at their configured values (default: the upper end of each one's 95% likelihood interval)")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
 		return err
@@ -120,7 +128,7 @@ after into one HTML report with a calibration section at the top.`)
 			return err
 		}
 	}
-	fit, err := calib.FitNoise(cfg, inputs, calib.NoiseFitOptions{MaxStdErrLog: *maxSE, ChooseModel: *model})
+	fit, err := calib.FitNoise(cfg, inputs, calib.NoiseFitOptions{MaxStdErrLog: *maxSE, ChooseModel: *model, KeepUndetermined: *keep})
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", run, errRefused, err)
 	}
@@ -149,9 +157,14 @@ func levelTable(fit *calib.NoiseFit) ([]string, [][]string) {
 	cols := []string{"level", "unit", "configured", "fitted", "95% interval", "determined"}
 	var rows [][]string
 	for _, l := range fit.Levels {
-		if l.Identifiable {
+		switch {
+		case l.Identifiable:
 			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g", l.Fitted), fmt.Sprintf("[%.4g, %.4g]", l.Lo, l.Hi), "yes"})
-		} else {
+		case l.Matched:
+			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g (median NIS)", l.Fitted), "-", "no: " + l.Note})
+		case l.Raised:
+			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), fmt.Sprintf("%.4g (upper end)", l.Fitted), fmt.Sprintf("[-, %.4g]", l.Hi), "no: " + l.Note})
+		default:
 			rows = append(rows, []string{l.Field, l.Unit, fmt.Sprintf("%.4g", l.Configured), "(kept)", "-", "no: " + l.Note})
 		}
 	}
@@ -354,11 +367,11 @@ func printNEES(w io.Writer, before, after fusion.Config, inputs []calib.Recorded
 // line "wrote OUT: changes".
 func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Config, fit *calib.NoiseFit, stdout io.Writer) (string, error) {
 	var edits []configEdit
-	var kept []string
+	var kept, raised []string
 	def := fusion.DefaultNoise()
 	fitted := map[string]bool{}
 	for _, l := range fit.Levels {
-		fitted[l.Field] = l.Identifiable
+		fitted[l.Field] = l.Identifiable || l.Raised || l.Matched
 	}
 	for _, m := range fit.Model {
 		if fitted[m.Field] {
@@ -368,11 +381,14 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 			comment: "from tune: the noise model the run's likelihood supports best"})
 	}
 	for _, l := range fit.Levels {
-		if !l.Identifiable {
+		if !l.Identifiable && !l.Raised && !l.Matched {
 			kept = append(kept, l.Field)
 			continue
 		}
 		how := fmt.Sprintf("from tune: maximum likelihood, se of log %.3f, 95%% %.4g to %.4g", l.StdErrLog, l.Lo, l.Hi)
+		if l.Raised {
+			how = "from tune: " + raisedComment
+		}
 		e := configEdit{path: l.Field, value: strconv.FormatFloat(l.Fitted, 'g', 4, 64), comment: how}
 		if strings.HasSuffix(l.Field, ".covariance") {
 			cov := cfg.Sensors[l.Sensor].Cov
@@ -382,9 +398,18 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 			}
 			e.path = l.Field + ".values"
 			e.comment = fmt.Sprintf("from tune: times %.4g (se of log %.3f, 95%% %.4g to %.4g)", l.Fitted, l.StdErrLog, l.Lo, l.Hi)
+			switch {
+			case l.Raised:
+				e.comment = fmt.Sprintf("from tune: times %.4g, %s", l.Fitted, raisedComment)
+			case l.Matched:
+				e.comment = fmt.Sprintf("from tune: times %.4g, matched to the sensor's median NIS (covariance matching; the likelihood does not determine it)", l.Fitted)
+			}
 			for _, c := range cov {
 				e.seq = append(e.seq, strconv.FormatFloat(c*l.Fitted, 'g', 4, 64))
 			}
+		}
+		if l.Raised {
+			raised = append(raised, l.Field)
 		}
 		if v, ok := defaultOf(def, l.Field); ok {
 			e.absent = strconv.FormatFloat(v, 'g', -1, 64) + " (default)"
@@ -397,6 +422,9 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 	changes, err := editConfig(in, data, out, edits, func(changes []string) string {
 		note := fmt.Sprintf("reckon tune: %s; by maximum likelihood of the innovations of %s (prediction-error decomposition), standard errors from the observed Fisher information",
 			strings.Join(changes, ", "), file)
+		if len(raised) > 0 {
+			note += "; not determined by the run, at the upper end of its 95% likelihood interval: " + strings.Join(raised, ", ")
+		}
 		if len(kept) > 0 {
 			note += "; not determined by the run, kept: " + strings.Join(kept, ", ")
 		}
@@ -409,6 +437,10 @@ func writeTunedConfig(in string, data []byte, out, file string, cfg fusion.Confi
 	fmt.Fprintf(stdout, "\n%s\n", wrote)
 	return wrote, nil
 }
+
+// raisedComment is the configuration comment on a variance the run does
+// not determine, set to the upper end of its interval.
+const raisedComment = "not determined by the run: the upper end of its 95% likelihood interval (set low, an undetermined variance makes the covariance overconfident; set high, it costs little accuracy)"
 
 // defaultOf returns the default of a noise field, if it has one.
 func defaultOf(def fusion.Noise, field string) (float64, bool) {

@@ -113,6 +113,15 @@ func TestTune(t *testing.T) {
 		!strings.Contains(first, "kept: ") {
 		t.Errorf("first line %q", first)
 	}
+	if _, k, _ := strings.Cut(first(data), "kept: "); !strings.Contains(k, "sensors[1].covariance") {
+		t.Errorf("the unused sensor's covariance is not among the levels kept: %q", first(data))
+	}
+	// The IMU offset's walk, which a minute does not determine, at the upper
+	// end of its interval, and the file says so.
+	if !strings.Contains(stdout, "noise.imu_offset_var_rad2_per_s") || !strings.Contains(string(data), "not determined by the run: the upper end of its 95% likelihood interval") ||
+		!(cfg.Noise.IMUOffsetVarRad2PerS > 1e-7) {
+		t.Errorf("the offset's walk %.3g not raised from 1e-7 to the upper end of its interval, or the file does not say so:\n%s", cfg.Noise.IMUOffsetVarRad2PerS, data)
+	}
 	if w := cfg.Noise.WheelVarM2PerM; math.Abs(w/2.5e-5-1) > 0.4 {
 		t.Errorf("wheel_var_m2_per_m %.3g, truth 2.5e-5: more than 40%% off\n%s", w, stdout)
 	}
@@ -135,4 +144,10 @@ func TestTune(t *testing.T) {
 			t.Errorf("%s: exit %d, want %d: %s", c.name, code, c.code, stderr)
 		}
 	}
+}
+
+// first returns the first line of a file's data.
+func first(data []byte) string {
+	line, _, _ := strings.Cut(string(data), "\n")
+	return line
 }

@@ -14,6 +14,7 @@ import (
 	"reckon.example/fusion"
 	"reckon.example/fusion/calib"
 	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
 )
 
@@ -67,19 +68,27 @@ func writeRecording(t *testing.T, dir string, sc fusiontest.Scenario, config fun
 // truth, as reckon review does.
 func score(t *testing.T, dir, cfgPath, samples, truth string) review.Summary {
 	t.Helper()
-	data, err := os.ReadFile(cfgPath)
-	if err != nil {
-		t.Fatal(err)
-	}
-	cfg, _, err := convert.LoadConfigYAML(data)
-	if err != nil {
-		t.Fatal(err)
-	}
+	cfg, _ := readConfigFile(t, cfgPath)
 	run, err := review.Analyze(review.Source{Samples: samples, Config: cfg, Truth: truth}, filepath.Join(dir, "review-"+filepath.Base(cfgPath)), review.Options{TempDir: dir})
 	if err != nil {
 		t.Fatal(err)
 	}
 	return run.Summary
+}
+
+// readConfigFile loads the YAML configuration at path, as the wire message
+// and as fusion's.
+func readConfigFile(t *testing.T, path string) (*pb.RobotConfig, fusion.Config) {
+	t.Helper()
+	data, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cp, cfg, err := convert.LoadConfigYAML(data)
+	if err != nil {
+		t.Fatalf("%s: %v", path, err)
+	}
+	return cp, cfg
 }
 
 // The real-data goal of issue 10 (measured by the maintainers on a public
@@ -184,14 +193,7 @@ func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 	if got.FilteredInside95 < goalInside95 || got.SmoothedInside95 < goalInside95 {
 		t.Logf("coverage goal %.2f not met (a known limit)", goalInside95)
 	}
-	data, err := os.ReadFile(tuned)
-	if err != nil {
-		t.Fatal(err)
-	}
-	_, tc, err := convert.LoadConfigYAML(data)
-	if err != nil {
-		t.Fatal(err)
-	}
+	_, tc := readConfigFile(t, tuned)
 	cam := tc.Sensors[0]
 	if !tc.Calibration.Scale || cam.CorrelatedFraction == 0 || cam.Robust != fusion.RobustStudentT || tc.Noise.StepTurnVarRad2PerS == 0 {
 		t.Errorf("tuned model: scale states %v, camera correlated %g robust %v, step turn per second %g; want the scale states, a Gauss-Markov Student-t camera and step noise per second",

@@ -19,6 +19,8 @@ type odoResult struct {
 	gapNs    int64
 	slipChi2 float64
 	slipDOF  int
+	// scrub is the scrub's block state after e, taken when e is.
+	scrub scrubState
 }
 
 func finiteAll(v ...float64) bool {
@@ -82,6 +84,9 @@ func (r *Robot) odometryEntry(o *Odometry) (odoResult, error) {
 		return res, jump
 	}
 	r.noteIMU(o)
+	if o.Step == nil && r.cfg.IMU != IMURotation {
+		r.scrub = res.scrub
+	}
 	res.e, res.has = e, true
 	return res, nil
 }
@@ -230,7 +235,10 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 		}
 	}
 	if r.cfg.IMU != IMURotation {
-		e.cov[8] += n.TurnVarRad2PerRad * math.Abs(e.step.TurnRad)
+		// On the turn summed over fixed blocks of time (scrub.go), taken
+		// into the robot only when the sample is.
+		res.scrub = r.scrub
+		e.cov[8] += n.TurnVarRad2PerRad * res.scrub.charge(e.t0, e.t1, e.step.TurnRad)
 	}
 	return nil
 }

@@ -60,6 +60,8 @@ type Robot struct {
 	// caches the comparison's 1-dof gate.
 	slip     slipState
 	turnGate float64
+	// scrub is the block sum the scrub in turns is charged on (scrub.go).
+	scrub scrubState
 }
 
 // New returns a robot for the configuration, or an error naming the field at

@@ -35,6 +35,7 @@ func TestSnapshotVersion5Restores(t *testing.T) {
 	want := append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...)
 	want = protowire.AppendVarint(protowire.AppendTag(want, 33, protowire.VarintType), 0)
 	want = protowire.AppendString(protowire.AppendTag(want, 34, protowire.BytesType), "")
+	want = withFreshScrub(want)
 	if string(b) != string(want) {
 		t.Errorf("version 5 restored writes %d bytes, not its own %d with the run fields", len(b), len(want))
 	}
@@ -58,8 +59,39 @@ func TestSnapshotVersion6Restores(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...)
+	want := withFreshScrub(append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...))
 	if string(b) != string(want) {
 		t.Errorf("version 6 restored writes %d bytes, not its own %d", len(b), len(want))
 	}
+}
+
+// TestSnapshotVersion7Restores: the golden snapshot of version 7, which
+// lacks the scrub's block sum, restores under the current version and
+// writes the same bytes but for the version and a fresh block at the end.
+func TestSnapshotVersion7Restores(t *testing.T) {
+	cfg, _ := goldenRobot()
+	old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", "greenhouse-v7.bin"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, err := fusion.RestoreSnapshot(cfg, old)
+	if err != nil {
+		t.Fatalf("a version 7 snapshot does not restore: %v", err)
+	}
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := withFreshScrub(append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...))
+	if string(b) != string(want) {
+		t.Errorf("version 7 restored writes %d bytes, not its own %d with a fresh scrub block", len(b), len(want))
+	}
+}
+
+// withFreshScrub appends the scrub's block fields of a snapshot older than
+// version 8 as the current version writes them: block 0, sum and peak 0.
+func withFreshScrub(b []byte) []byte {
+	b = protowire.AppendVarint(protowire.AppendTag(b, 35, protowire.VarintType), 0)
+	b = protowire.AppendFixed64(protowire.AppendTag(b, 36, protowire.Fixed64Type), 0)
+	return protowire.AppendFixed64(protowire.AppendTag(b, 37, protowire.Fixed64Type), 0)
 }

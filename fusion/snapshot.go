@@ -20,17 +20,20 @@ import (
 // reads version 5, a snapshot of a robot's first run. Version 7: a
 // recovery candidate's carried odometry keeps its white part and its
 // Jacobian in the calibration apart (relocate weighs shared odometry);
-// version 6 and 5 candidates read as all white.
+// version 6 and 5 candidates read as all white. Version 8: the block sum
+// that the scrub in turns is charged on (scrub.go); a version 7, 6 or 5
+// snapshot lacks it and starts a fresh block, so its robot's next steps may
+// take a little less scrub than the robot that wrote it would have.
 // A change of layout or meaning bumps it, with a new golden file in
 // testdata/snapshots.
-const SnapshotVersion = 7
+const SnapshotVersion = 8
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 6, whose recovery candidates lack the white part and the
+// this one; 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
 // taken as white); and 5, which lacks the run fields too (a robot that never
 // started a second run).
-func readsVersion(v uint64) bool { return v == SnapshotVersion || v == 6 || v == 5 }
+func readsVersion(v uint64) bool { return v == SnapshotVersion || v == 7 || v == 6 || v == 5 }
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -95,6 +98,9 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	}
 	e.uint(33, r.run)
 	e.string(34, r.bootID)
+	e.int(35, r.scrub.block)
+	e.double(36, r.scrub.sum)
+	e.double(37, r.scrub.peak)
 	return e.b, nil
 }
 
@@ -209,6 +215,12 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.run = d.uint(num)
 	case 34:
 		r.bootID = d.string(num)
+	case 35:
+		r.scrub.block = d.int(num)
+	case 36:
+		r.scrub.sum = d.double(num)
+	case 37:
+		r.scrub.peak = d.double(num)
 	default:
 		d.fail("unknown field %d", num)
 	}

@@ -312,7 +312,8 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 6 also reads 5: a first run's state).
+	// knows (version 8 reads 7, 6 and 5: a version 7 snapshot lacks the
+	// scrub's block sum, 6 the carried odometry's white part, 5 the run).
 	Version uint32 `protobuf:"varint,1,opt,name=version,proto3" json:"version,omitempty"`
 	// The filter's estimate now.
 	Filter *EstimateState `protobuf:"bytes,2,opt,name=filter,proto3" json:"filter,omitempty"`
@@ -385,9 +386,17 @@ type RobotSnapshot struct {
 	// version 5 snapshot has neither this nor boot_id and is of run 1).
 	Run uint64 `protobuf:"varint,33,opt,name=run,proto3" json:"run,omitempty"`
 	// The current run's boot id (RunStart.boot_id); with run.
-	BootId        string `protobuf:"bytes,34,opt,name=boot_id,json=bootId,proto3" json:"boot_id,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	BootId string `protobuf:"bytes,34,opt,name=boot_id,json=bootId,proto3" json:"boot_id,omitempty"`
+	// The scrub in turns is charged on the signed turn summed over blocks of
+	// 0.25 s of the robot's clock (version 8): the current block's index
+	// (stamp_ns / 250,000,000, rounded down), its turn sum (rad) and the
+	// largest absolute value that sum reached (rad). Absent before version 8:
+	// a fresh block.
+	ScrubBlock       int64   `protobuf:"varint,35,opt,name=scrub_block,json=scrubBlock,proto3" json:"scrub_block,omitempty"`
+	ScrubTurnSumRad  float64 `protobuf:"fixed64,36,opt,name=scrub_turn_sum_rad,json=scrubTurnSumRad,proto3" json:"scrub_turn_sum_rad,omitempty"`
+	ScrubTurnPeakRad float64 `protobuf:"fixed64,37,opt,name=scrub_turn_peak_rad,json=scrubTurnPeakRad,proto3" json:"scrub_turn_peak_rad,omitempty"`
+	unknownFields    protoimpl.UnknownFields
+	sizeCache        protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -656,6 +665,27 @@ func (x *RobotSnapshot) GetBootId() string {
 		return x.BootId
 	}
 	return ""
+}
+
+func (x *RobotSnapshot) GetScrubBlock() int64 {
+	if x != nil {
+		return x.ScrubBlock
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetScrubTurnSumRad() float64 {
+	if x != nil {
+		return x.ScrubTurnSumRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetScrubTurnPeakRad() float64 {
+	if x != nil {
+		return x.ScrubTurnPeakRad
+	}
+	return 0
 }
 
 // EstimateState is a filter's mean and covariance.
@@ -1762,7 +1792,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x8d\v\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x8a\f\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -1808,7 +1838,11 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\vbias_window\x18  \x01(\v2\x1d.reckon.v1.SnapshotBiasWindowR\n" +
 	"biasWindow\x12\x10\n" +
 	"\x03run\x18! \x01(\x04R\x03run\x12\x17\n" +
-	"\aboot_id\x18\" \x01(\tR\x06bootIdB\x17\n" +
+	"\aboot_id\x18\" \x01(\tR\x06bootId\x12\x1f\n" +
+	"\vscrub_block\x18# \x01(\x03R\n" +
+	"scrubBlock\x12+\n" +
+	"\x12scrub_turn_sum_rad\x18$ \x01(\x01R\x0fscrubTurnSumRad\x12-\n" +
+	"\x13scrub_turn_peak_rad\x18% \x01(\x01R\x10scrubTurnPeakRadB\x17\n" +
 	"\x15_last_imu_heading_rad\"W\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +

@@ -221,6 +221,9 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 		for _, j := range keep {
 			kept = append(kept, free[j])
 		}
+		if len(kept) == len(free) {
+			p.newton(obj, x, free, h)
+		}
 		if err := p.polish(obj, x, kept, len(free)); err != nil {
 			return nil, err
 		}
@@ -550,6 +553,68 @@ func (p *replayer) maximise(obj func([]float64) float64, x []float64, free []int
 // levels: 10%, wide beside the likelihood's small jumps and narrow beside
 // its curvature.
 const hessianStepLog = 0.1
+
+// newton takes a Newton-Raphson step from x in the logs of the free levels
+// with h, the Hessian of obj there (the method of scoring's cousin for
+// maximum likelihood in state-space models: R. H. Shumway and D. S.
+// Stoffer, Time Series Analysis and Its Applications, sec. 6.3), when the
+// step lowers obj, halving it up to twice otherwise. The simplex stops
+// where its points no longer differ by much in the log-likelihood, which
+// along a level the run determines only loosely can be a quarter of its
+// value short of the optimum (the IMU offset's walk fitted with six other
+// levels: 0.70 of the truth, a log-likelihood 0.5 below the truth's). The
+// gradient comes free: the central Hessian of gonum's diff/fd evaluates obj
+// at two steps either way of x along each level, so (f(+2h) - f(-2h)) / 4h
+// is a central difference over points already replayed (obj remembers
+// them). It costs a replay or three, and leaves x as it was when no step
+// helps or h is not positive definite.
+func (p *replayer) newton(obj func([]float64) float64, x []float64, free []int, h *mat.SymDense) {
+	n := len(free)
+	y := make([]float64, len(x))
+	for i, v := range x {
+		y[i] = math.Log(v)
+	}
+	f := restricted(obj, x, free)
+	z := make([]float64, n)
+	for k, i := range free {
+		z[k] = y[i]
+	}
+	g := mat.NewVecDense(n, nil)
+	zc := make([]float64, n)
+	for k := range free {
+		var fd [2]float64
+		for side, loc := range []float64{1, -1} {
+			// The same points, to the bit, as fd.Hessian's: it adds the
+			// step twice.
+			copy(zc, z)
+			zc[k] += loc * hessianStepLog
+			zc[k] += loc * hessianStepLog
+			fd[side] = f(zc)
+		}
+		g.SetVec(k, (fd[0]-fd[1])/(4*hessianStepLog))
+	}
+	var ch mat.Cholesky
+	if !ch.Factorize(h) {
+		return
+	}
+	var step mat.VecDense
+	if err := ch.SolveVecTo(&step, g); err != nil {
+		return
+	}
+	f0 := f(z)
+	for range 3 {
+		for k := range free {
+			zc[k] = z[k] - step.AtVec(k)
+		}
+		if f(zc) < f0 {
+			for k, i := range free {
+				x[i] = math.Exp(zc[k])
+			}
+			return
+		}
+		step.ScaleVec(0.5, &step)
+	}
+}
 
 // polish fits the free levels of x again with a small simplex when some
 // of the had levels fitted before were put back to their configured values

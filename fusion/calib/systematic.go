@@ -58,6 +58,11 @@ type Param struct {
 	// value; StdErr the fitted value's standard error (the larger of the
 	// model's and the segment-robust one, see FitSystematic).
 	Configured, Fitted, StdErr float64
+	// ModelStdErr is the standard error under the stated noise alone (the
+	// sandwich of FitSystematic, which weights the fixes by their sensors'
+	// Gauss-Markov model); StdErr is the larger of it and the
+	// segment-robust one.
+	ModelStdErr float64
 	// Determined says that StdErr is within the parameter's bound
 	// (Bound); Why, when it is not, names the test pattern that would
 	// determine it.

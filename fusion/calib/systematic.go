@@ -191,6 +191,15 @@ var patterns = map[ParamKind]string{
 // random drift, which would dominate a whole run's dead reckoning, is cut
 // off at each anchor.
 //
+// Within a segment the residuals are weighted by their joint covariance
+// (generalised least squares): the odometry's drift since the anchor, and
+// each fix's own error, white or, for a sensor that declares a
+// Gauss-Markov part (fusion.Sensor's CorrelatedFraction and
+// CorrelationTimeS), shared between the sensor's fixes dt apart by
+// exp(-dt/tau), as the filter models it (segBlock, fixNoise). The
+// correlation is read from the configuration: calibrate again after the
+// noise fit has chosen it.
+//
 // # Estimation
 //
 // Levenberg-Marquardt with Marquardt's diagonal scaling (J. Nocedal and S.

@@ -22,13 +22,16 @@ import (
 // In the coordinates of each fix's own whitened residual, the segment's
 // covariance is
 //
-//	C[f][f] = I / w_f + H_f P_f H_f^T      C[f][a] = H_f Phi(f, a) P_a H_a^T
+//	C[f][f] = N_ff / w_f + H_f P_f H_f^T
+//	C[f][a] = N_fa / sqrt(w_f w_a) + H_f Phi(f, a) P_a H_a^T
 //
 // with H_f the whitened residual's Jacobian in the robot's pose, P_f the
 // drift covariance of the pose at fix f relative to the anchor (the
 // filter's own prediction, DEVELOPERS.md, "Design: Motion prediction" and
 // "Design: Process noise", from zero at the anchor), Phi(f, a) the product
-// of the pose Jacobians between the fixes, and w_f the fix's robust weight.
+// of the pose Jacobians between the fixes, w_f the fix's robust weight and
+// N the fixes' own errors: I and 0 for a white sensor, the Gauss-Markov
+// model of fixNoise for a correlated one.
 type segBlock struct {
 	fixes []int // the fixes with weight, in capture order
 	off   []int // each fix's first row in the block

@@ -138,7 +138,14 @@ func TestRealDataGoal(t *testing.T) {
 	// measured 0.914 / 0.920, 0.698 / 0.670 and 0.933 / 0.955; before the
 	// upper ends and the thinned step fit 0.774 / 0.781, 0.338 / 0.297 and
 	// 0.761 / 0.768). Seed 2 misses the goal: calibrate put the camera's
-	// mount 1.9 cm and 9 mrad off ("Design: Noise by likelihood").
+	// mount 1.9 cm and 9 mrad off ("Design: Noise by likelihood"). With
+	// RECKON_REALDATA_RECALIBRATE set, calibrate runs again on the tuned
+	// configuration, whose Gauss-Markov camera the systematic fit then
+	// weights by: seeds 1 to 5 gave 0.914 / 0.917, 0.823 / 0.817 (the
+	// mount back within a millimetre), 0.911 / 0.913, 0.990 / 0.978 and
+	// 0.968 / 0.972 (before 0.992 / 0.977 and 0.930 / 0.926 for 4 and 5),
+	// the default run 0.929 / 0.891, below the goal, so it is not the
+	// default ("Design: Systematic parameters", "Correlated fix errors").
 	for seed := uint64(1); seed <= uint64(n); seed++ {
 		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.65) })
 	}

@@ -58,6 +58,11 @@ type Param struct {
 	// value; StdErr the fitted value's standard error (the larger of the
 	// model's and the segment-robust one, see FitSystematic).
 	Configured, Fitted, StdErr float64
+	// ModelStdErr is the standard error under the stated noise alone (the
+	// sandwich of FitSystematic, which weights the fixes by their sensors'
+	// Gauss-Markov model); StdErr is the larger of it and the
+	// segment-robust one.
+	ModelStdErr float64
 	// Determined says that StdErr is within the parameter's bound
 	// (Bound); Why, when it is not, names the test pattern that would
 	// determine it.
@@ -185,6 +190,15 @@ var patterns = map[ParamKind]string{
 // constraints: systematic errors show within every segment, while the
 // random drift, which would dominate a whole run's dead reckoning, is cut
 // off at each anchor.
+//
+// Within a segment the residuals are weighted by their joint covariance
+// (generalised least squares): the odometry's drift since the anchor, and
+// each fix's own error, white or, for a sensor that declares a
+// Gauss-Markov part (fusion.Sensor's CorrelatedFraction and
+// CorrelationTimeS), shared between the sensor's fixes dt apart by
+// exp(-dt/tau), as the filter models it (segBlock, fixNoise). The
+// correlation is read from the configuration: calibrate again after the
+// noise fit has chosen it.
 //
 // # Estimation
 //

@@ -22,13 +22,16 @@ import (
 // In the coordinates of each fix's own whitened residual, the segment's
 // covariance is
 //
-//	C[f][f] = I / w_f + H_f P_f H_f^T      C[f][a] = H_f Phi(f, a) P_a H_a^T
+//	C[f][f] = N_ff / w_f + H_f P_f H_f^T
+//	C[f][a] = N_fa / sqrt(w_f w_a) + H_f Phi(f, a) P_a H_a^T
 //
 // with H_f the whitened residual's Jacobian in the robot's pose, P_f the
 // drift covariance of the pose at fix f relative to the anchor (the
 // filter's own prediction, DEVELOPERS.md, "Design: Motion prediction" and
 // "Design: Process noise", from zero at the anchor), Phi(f, a) the product
-// of the pose Jacobians between the fixes, and w_f the fix's robust weight.
+// of the pose Jacobians between the fixes, w_f the fix's robust weight and
+// N the fixes' own errors: I and 0 for a white sensor, the Gauss-Markov
+// model of fixNoise for a correlated one.
 type segBlock struct {
 	fixes []int // the fixes with weight, in capture order
 	off   []int // each fix's first row in the block
@@ -202,15 +205,101 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 			for q := range s.dim[i] {
 				drift[r*3+q] = c.At(b.off[n]+r, b.off[n]+q)
 			}
-			c.SetSym(b.off[n]+r, b.off[n]+r, c.At(b.off[n]+r, b.off[n]+r)+1/s.w[i])
 		}
 		s.drift[i] = drift
+		s.fixNoise(c, &b, n, i)
 	}
 	var ch mat.Cholesky
 	if b.ok = ch.Factorize(c); b.ok {
 		ch.LTo(&b.l)
 	}
 	return b
+}
+
+// fixNoise adds the fixes' own errors to segment block b's covariance c
+// for its n-th fix, i: white with the covariance the fix states (I in its
+// whitened residual), or, for a sensor with a Gauss-Markov part
+// (fusion.Sensor: share f, time constant tau), white (1 - f) I plus the
+// part gm gm^T (sysFix.gm), which the sensor's earlier fixes a of the
+// block share by exp(-dt/tau), dt the time between the two fixes (the
+// first-order Gauss-Markov process of "Design: Sensors": A. Gelb, Applied
+// Optimal Estimation, 1974, sec. 4.5). That is the filter's own model,
+// one process per sensor; it makes the fit generalised least squares in
+// the camera's correlated errors too, where counting them as white took
+// fixes that repeat an error as independent evidence of a parameter.
+// Each fix's robust weight w scales its errors' rows and columns by
+// 1/sqrt(w) (for a white fix: its variance by 1/w, as before), which
+// keeps c positive definite. A segment's errors are taken as independent
+// of the segments' before it (the anchors absorb most of what a bias
+// carries over).
+func (s *sysSolver) fixNoise(c *mat.SymDense, b *segBlock, n, i int) {
+	f := &s.m.fixes[i]
+	sen := &s.m.cfg.Sensors[f.sensor]
+	d := s.dim[i]
+	own := &s.noise[i]
+	for r := range d {
+		for q := 0; q <= r; q++ {
+			c.SetSym(b.off[n]+r, b.off[n]+q, c.At(b.off[n]+r, b.off[n]+q)+own[r*3+q]/s.w[i])
+		}
+	}
+	if sen.CorrelatedFraction <= 0 {
+		return
+	}
+	full := fixDim(sen.Kind)
+	for a := range n {
+		j := b.fixes[a]
+		fa := &s.m.fixes[j]
+		if fa.sensor != f.sensor {
+			continue
+		}
+		rho := math.Exp(-math.Abs(float64(f.stamp-fa.stamp))*1e-9/sen.CorrelationTimeS) / math.Sqrt(s.w[i]*s.w[j])
+		for r := range d {
+			for q := range s.dim[j] {
+				var v float64
+				for k := range full {
+					v += f.gm[r*3+k] * fa.gm[q*3+k]
+				}
+				c.SetSym(b.off[n]+r, b.off[a]+q, c.At(b.off[n]+r, b.off[a]+q)+rho*v)
+			}
+		}
+	}
+}
+
+// ownNoise returns fix i's own error covariance in its whitened residual
+// (fixNoise), without its weight.
+func (m *sysModel) ownNoise(i int) [9]float64 {
+	f := &m.fixes[i]
+	sen := &m.cfg.Sensors[f.sensor]
+	d := f.dim
+	var own [9]float64
+	white := 1.0
+	if sen.CorrelatedFraction > 0 {
+		white = 1 - sen.CorrelatedFraction
+	}
+	full := fixDim(sen.Kind)
+	for r := range d {
+		own[r*3+r] = white
+		if sen.CorrelatedFraction <= 0 {
+			continue
+		}
+		for q := range d {
+			for k := range full {
+				own[r*3+q] += f.gm[r*3+k] * f.gm[q*3+k]
+			}
+		}
+	}
+	return own
+}
+
+// fixDim is the dimension of a fix of the kind with every component.
+func fixDim(k fusion.FixKind) int {
+	switch k {
+	case fusion.FixPose:
+		return 3
+	case fusion.FixPosition, fusion.FixLandmark:
+		return 2
+	}
+	return 1
 }
 
 // poseJacobian returns the Jacobian (3x3, rows past the fix's dimension

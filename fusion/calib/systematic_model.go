@@ -38,6 +38,13 @@ type sysFix struct {
 	// triangular, row-major dim x dim): whitened residual = winv r.
 	winv [9]float64
 	seg  int
+	// gm is the fix's share of its sensor's Gauss-Markov error in the
+	// whitened residual: winv L_s[comps] (dim x the sensor's dimension,
+	// stride 3), with L_s the lower Cholesky factor of the sensor's
+	// correlated covariance f R_s; zero for a sensor without one. Fixes a
+	// and b of one sensor dt apart then share gm_a gm_b^T exp(-dt/tau)
+	// (sysSolver.block).
+	gm [9]float64
 }
 
 // sysParam is a global parameter: what it is and where it sits.
@@ -221,9 +228,53 @@ func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
 		if len(cov) != f.dim*f.dim || !whiten(&f.winv, cov, f.dim) {
 			continue
 		}
+		if sen.CorrelatedFraction > 0 && !m.gaussMarkov(&f, sen) {
+			continue
+		}
 		m.fixes = append(m.fixes, f)
 	}
 	slices.SortStableFunc(m.fixes, func(a, b sysFix) int { return cmp.Compare(a.stamp, b.stamp) })
+}
+
+// gaussMarkov sets f.gm for its sensor's correlated error (fusion.Sensor:
+// the stationary covariance CorrelatedFraction times the sensor's
+// covariance, in the sensor's full measurement space, of which a landmark
+// fix may carry only the range or the bearing); false if that covariance
+// is not positive definite.
+func (m *sysModel) gaussMarkov(f *sysFix, sen *fusion.Sensor) bool {
+	d := len(sen.Cov)
+	full := int(math.Round(math.Sqrt(float64(d))))
+	if full*full != d || full > 3 {
+		return false
+	}
+	c := mat.NewSymDense(full, nil)
+	for i := range full {
+		for j := i; j < full; j++ {
+			c.SetSym(i, j, sen.CorrelatedFraction*sen.Cov[i*full+j])
+		}
+	}
+	var ch mat.Cholesky
+	if !ch.Factorize(c) {
+		return false
+	}
+	var l mat.TriDense
+	ch.LTo(&l)
+	// comps: which of the sensor's components the fix's rows are.
+	comps := [3]int{0, 1, 2}
+	if f.kind == fusion.FixLandmark && !f.rng {
+		comps[0] = 1
+	}
+	n := f.dim
+	for a := range n {
+		for k := range full {
+			var v float64
+			for b := 0; b <= a; b++ {
+				v += f.winv[a*n+b] * l.At(comps[b], k)
+			}
+			f.gm[a*3+k] = v
+		}
+	}
+	return true
 }
 
 // whiten writes the inverse of the Cholesky factor of the covariance c

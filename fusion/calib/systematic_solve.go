@@ -34,8 +34,11 @@ type sysSolver struct {
 	// blocks are the segments' correlated residuals (segBlock), built at
 	// each re-weighting; drift is each fix's drift covariance in its
 	// whitened residual (zero before the first blocks).
-	blocks     []segBlock
-	drift      [][9]float64
+	blocks []segBlock
+	drift  [][9]float64
+	// noise is each fix's own error covariance in its whitened residual
+	// (I for a white sensor; sysModel.ownNoise).
+	noise      [][9]float64
 	s2         float64
 	iterations int
 	converged  bool
@@ -58,6 +61,10 @@ func newSysSolver(m *sysModel, opt SystematicOptions) *sysSolver {
 	s.e, s.dim, s.ok, s.rel = make([][3]float64, n), make([]int, n), make([]bool, n), make([]estimator.Pose, n)
 	s.jac = make([]float64, n*3*(ng+3))
 	s.drift = make([][9]float64, n)
+	s.noise = make([][9]float64, n)
+	for i := range s.noise {
+		s.noise[i] = m.ownNoise(i)
+	}
 	s.initAnchors()
 	return s
 }
@@ -526,17 +533,13 @@ func (s *sysSolver) reweight(k float64, reject bool) float64 {
 }
 
 // nis is fix i's NIS against its marginal covariance, its own (whitened:
-// I) plus the drift since its segment's anchor.
+// I for a white sensor) plus the drift since its segment's anchor.
 func (s *sysSolver) nis(i int) float64 {
 	d := s.dim[i]
 	c := mat.NewSymDense(d, nil)
 	for a := range d {
 		for b := a; b < d; b++ {
-			v := s.drift[i][a*3+b]
-			if a == b {
-				v++
-			}
-			c.SetSym(a, b, v)
+			c.SetSym(a, b, s.drift[i][a*3+b]+s.noise[i][a*3+b])
 		}
 	}
 	var ch mat.Cholesky
@@ -658,7 +661,8 @@ func (s *sysSolver) result(cfg *fusion.Config) SystematicFit {
 		if p.Kind == MountHeading {
 			p.Fitted = estimator.Wrap(p.Fitted)
 		}
-		p.StdErr = math.Sqrt(math.Max(stated.At(j, j), robust.At(j, j)))
+		p.ModelStdErr = math.Sqrt(stated.At(j, j))
+		p.StdErr = math.Max(p.ModelStdErr, math.Sqrt(robust.At(j, j)))
 		p.Determined = p.StdErr <= p.Bound
 		if p.Determined {
 			apply(&out.Config, &p, s.m.counts)

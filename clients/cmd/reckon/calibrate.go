@@ -122,6 +122,12 @@ into one HTML report with a calibration section at the top.`)
 		fmt.Fprint(stdout, ", not converged")
 	}
 	fmt.Fprintln(stdout)
+	for i, sen := range cfg.Sensors {
+		if sen.CorrelatedFraction > 0 {
+			fmt.Fprintf(stdout, "sensors[%d] (%s): fixes weighted as correlated, %.0f%% of their variance Gauss-Markov with a time constant of %g s (correlated_fraction, correlation_time_s)\n",
+				i, sen.ID, 100*sen.CorrelatedFraction, sen.CorrelationTimeS)
+		}
+	}
 	tw := tabwriter.NewWriter(stdout, 0, 0, 2, ' ', 0)
 	fmt.Fprintln(tw, strings.Join(cols, "\t"))
 	for _, r := range rows {

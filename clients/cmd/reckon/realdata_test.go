@@ -138,7 +138,14 @@ func TestRealDataGoal(t *testing.T) {
 	// measured 0.914 / 0.920, 0.698 / 0.670 and 0.933 / 0.955; before the
 	// upper ends and the thinned step fit 0.774 / 0.781, 0.338 / 0.297 and
 	// 0.761 / 0.768). Seed 2 misses the goal: calibrate put the camera's
-	// mount 1.9 cm and 9 mrad off ("Design: Noise by likelihood").
+	// mount 1.9 cm and 9 mrad off ("Design: Noise by likelihood"). With
+	// RECKON_REALDATA_RECALIBRATE set, calibrate runs again on the tuned
+	// configuration, whose Gauss-Markov camera the systematic fit then
+	// weights by: seeds 1 to 5 gave 0.914 / 0.917, 0.823 / 0.817 (the
+	// mount back within a millimetre), 0.911 / 0.913, 0.990 / 0.978 and
+	// 0.968 / 0.972 (before 0.992 / 0.977 and 0.930 / 0.926 for 4 and 5),
+	// the default run 0.929 / 0.891, below the goal, so it is not the
+	// default ("Design: Systematic parameters", "Correlated fix errors").
 	for seed := uint64(1); seed <= uint64(n); seed++ {
 		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.65) })
 	}
@@ -181,6 +188,20 @@ func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 		t.Fatalf("tune: exit %d: %s\n%s", code, errs, out)
 	}
 	t.Logf("tune:\n%s", out)
+	if os.Getenv("RECKON_REALDATA_RECALIBRATE") != "" {
+		// Calibrate again: the tuned configuration declares the camera's
+		// Gauss-Markov part, which the systematic fit weights the fixes
+		// by ("Design: Systematic parameters"), so the mount is fitted
+		// again without counting the camera's correlated errors as
+		// independent.
+		again := filepath.Join(dir, "calibrated-again.yaml")
+		out, errs, code = runCode(t, ctx, "", "calibrate", "-config", tuned, "-samples", samples, "-out", again)
+		if code != 0 {
+			t.Fatalf("calibrate again: exit %d: %s\n%s", code, errs, out)
+		}
+		t.Logf("calibrate again:\n%s", out)
+		tuned = again
+	}
 	got := score(t, dir, tuned, samples, truth)
 	t.Logf("tuned: RMS %.3f / %.3f m, inside 95%%: %.3f / %.3f (goal: <= %.2f / %.2f m, >= %.2f inside)", got.FilteredRMSM, got.SmoothedRMSM,
 		got.FilteredInside95, got.SmoothedInside95, goalFilteredRMSM, goalSmoothedRMSM, goalInside95)
@@ -209,14 +230,7 @@ func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 func BenchmarkCalibrateTune10Min(b *testing.B) {
 	s := fusiontest.New(realScenario(11, 600))
 	cfg := naiveConfig(s)
-	var inputs []calib.RecordedInput
-	for {
-		in, ok := s.Next()
-		if !ok {
-			break
-		}
-		inputs = append(inputs, calib.RecordedInput{Odometry: in.Odometry, Heading: in.Heading, Fix: in.Fix})
-	}
+	inputs := recordedInputs(s)
 	odo, _, fixes := splitInputs(inputs)
 	b.ReportAllocs()
 	for b.Loop() {
@@ -229,5 +243,34 @@ func BenchmarkCalibrateTune10Min(b *testing.B) {
 			b.Fatal(err)
 		}
 		b.ReportMetric(float64(fit.Replays), "replays")
+	}
+}
+
+// recordedInputs runs the simulation to its end.
+func recordedInputs(s *fusiontest.Sim) []calib.RecordedInput {
+	var inputs []calib.RecordedInput
+	for {
+		in, ok := s.Next()
+		if !ok {
+			return inputs
+		}
+		inputs = append(inputs, calib.RecordedInput{Odometry: in.Odometry, Heading: in.Heading, Fix: in.Fix})
+	}
+}
+
+// BenchmarkCalibrateAgain10Min is the second reckon calibrate of
+// TestRealDataGoal's ten-minute run: calib.FitSystematic on a configuration
+// that declares the camera's Gauss-Markov part (fusiontest's
+// TrueModelConfig: 95% of the camera's variance, 2.5 s), so that each
+// segment's block carries the correlation between the camera's fixes.
+func BenchmarkCalibrateAgain10Min(b *testing.B) {
+	s := fusiontest.New(realScenario(11, 600))
+	cfg := s.TrueModelConfig()
+	odo, _, fixes := splitInputs(recordedInputs(s))
+	b.ReportAllocs()
+	for b.Loop() {
+		if _, err := calib.FitSystematic(cfg, odo, fixes, calib.SystematicOptions{}); err != nil {
+			b.Fatal(err)
+		}
 	}
 }

@@ -320,8 +320,15 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 // median is a robust scale (it moves little for a few percent of
 // outliers), so a sensor configured three times too confident does not
 // lose its honest large errors, whose loss would bias its fitted
-// covariance low. Student-t sensors keep all their fixes: their likelihood
-// has the tails for them. It returns how many fixes it left out.
+// covariance low. A Student-t sensor of nu degrees of freedom is screened
+// on its own distribution, NIS / d ~ F(d, nu) (Kotz and Nadarajah 2004,
+// sec. 1.10), at studentScreenProbability, scaled the same way: its tails
+// stay, but not fixes metres off (a marker taken for another), which a
+// Student-t fitted to them follows below 2 degrees of freedom and which
+// the filter's gate refuses anyway. Before, a Student-t sensor kept all
+// its fixes, so tuning a configuration that an earlier tune had made
+// Student-t took them all in and ended at 1.9 degrees of freedom. It
+// returns how many fixes it left out.
 func (p *replayer) screen(values []float64) (int, error) {
 	type key struct {
 		sensor string
@@ -330,17 +337,18 @@ func (p *replayer) screen(values []float64) (int, error) {
 	type seen struct {
 		nis []float64
 		dim int
+		nu  float64
 	}
 	byKey := map[key]float64{}
 	sensors := map[string]*seen{}
 	err := p.run(values, func(in *fusion.Innovation, nu float64) {
-		if in.SensorID == "imu" || nu != 0 {
+		if in.SensorID == "imu" {
 			return
 		}
 		byKey[key{in.SensorID, in.StampNs}] = math.Max(byKey[key{in.SensorID, in.StampNs}], in.Outcome.NIS/float64(in.Outcome.Dim))
 		s := sensors[in.SensorID]
 		if s == nil {
-			s = &seen{}
+			s = &seen{nu: nu}
 			sensors[in.SensorID] = s
 		}
 		s.nis = append(s.nis, in.Outcome.NIS)
@@ -351,10 +359,16 @@ func (p *replayer) screen(values []float64) (int, error) {
 	}
 	limit := map[string]float64{} // per degree of freedom
 	for id, s := range sensors {
-		chi := distuv.ChiSquared{K: float64(s.dim)}
+		d := float64(s.dim)
 		slices.Sort(s.nis)
-		k := math.Max(1, s.nis[len(s.nis)/2]/chi.Quantile(0.5))
-		limit[id] = k * chi.Quantile(fitGateProbability) / float64(s.dim)
+		med := s.nis[len(s.nis)/2] / d
+		if s.nu > 0 {
+			f := distuv.F{D1: d, D2: s.nu}
+			limit[id] = math.Max(1, med/f.Quantile(0.5)) * f.Quantile(studentScreenProbability)
+			continue
+		}
+		chi := distuv.ChiSquared{K: d}
+		limit[id] = math.Max(1, med*d/chi.Quantile(0.5)) * chi.Quantile(fitGateProbability) / d
 	}
 	n := 0
 	for i := range p.inputs {
@@ -368,6 +382,13 @@ func (p *replayer) screen(values []float64) (int, error) {
 	}
 	return n, nil
 }
+
+// studentScreenProbability is the screen's quantile for a Student-t
+// sensor: one fix in ten thousand of its own errors lies beyond it. Its
+// tails are wide (for 2 dimensions and 4 degrees of freedom the quantile
+// at 1 - 1e-6 is 63 standard deviations out, past a marker taken for
+// another a metre off under a 3 cm camera); at 1 - 1e-4 it is 20.
+const studentScreenProbability = 1 - 1e-4
 
 // objective returns minus the log-likelihood as a function of the logs of
 // the levels, counting replays; a configuration the levels make invalid

@@ -420,6 +420,11 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 	src := prefetchSteps(steps, every)
 	err = fusion.Smooth(src, smoothed)
 	src.p.close()
+	// The steps are read: their file goes now, before the walk writes the
+	// smoothed track's export, whose pages the system then takes from
+	// those it just freed (on a virtual machine, pages the system has not
+	// touched for a while cost several times more to fill).
+	steps.close()
 	smoothed.filtered = src.posts
 	if err != nil {
 		smoothed.close()

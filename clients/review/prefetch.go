@@ -229,7 +229,7 @@ type trackItem struct {
 // prefetchTrack reads the smoothed states forwards, with the stamps the
 // filtered walk kept and the truth (if not nil), ahead of the walk of the
 // smoothed track.
-func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth *truthReader) *prefetch[trackItem] {
+func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth truthSource) *prefetch[trackItem] {
 	return startPrefetch(fw.n, false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
@@ -240,7 +240,10 @@ func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth *truthReader) *pref
 			}
 			it.haveTruth = false
 			if truth != nil {
-				it.truth, _, it.haveTruth = truth.at(it.stampNs)
+				var err error
+				if it.truth, it.haveTruth, err = truth.truthAt(i, it.stampNs); err != nil {
+					return err
+				}
 			}
 			if it.haveTruth {
 				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}

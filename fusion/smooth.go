@@ -248,9 +248,9 @@ type StateSink interface {
 // GainedSteps is a StepStore that also gives the smoother's gains, worked
 // out ahead (by another goroutine, say) with estimator.RTSGain: Gain(k) is
 // the transposed gain of step k's Post, step k+1's Pred and step k+1's F,
-// or RTSGain's error. Smooth asks for it right after Step(k), only when
-// step k+1 is not a Start step, and reads it before it asks for another
-// step.
+// or RTSGain's error, or nil and no error for a gain the smoother is to
+// work out itself. Smooth asks for it right after Step(k), only when step
+// k+1 is not a Start step, and reads it before it asks for another step.
 type GainedSteps interface {
 	StepStore
 	Gain(k int) (*[estimator.MaxStates * estimator.MaxStates]float64, error)
@@ -313,10 +313,14 @@ func Smooth(src StepStore, dst StateSink) error {
 			*out = cur.Post
 		case gained != nil:
 			ct, err := gained.Gain(k)
+			if err == nil && ct == nil {
+				err = estimator.RTSStep(out, &cur.Post, &next.Pred, &next.F, smoothed)
+			} else if err == nil {
+				estimator.RTSStepWithGain(out, &cur.Post, &next.Pred, ct, smoothed)
+			}
 			if err != nil {
 				return fmt.Errorf("smoothing step %d at %d ns: %w", k, cur.StampNs, err)
 			}
-			estimator.RTSStepWithGain(out, &cur.Post, &next.Pred, ct, smoothed)
 		default:
 			if err := estimator.RTSStep(out, &cur.Post, &next.Pred, &next.F, smoothed); err != nil {
 				return fmt.Errorf("smoothing step %d at %d ns: %w", k, cur.StampNs, err)

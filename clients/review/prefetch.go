@@ -138,9 +138,10 @@ func (p *prefetch[T]) close() {
 }
 
 // prefetchedSteps is a fusion.GainedSteps for the smoother, which reads the
-// steps last first, with the steps decoded and the smoother's gains worked
-// out ahead, on the other core: the gains are half of the smoother's
-// arithmetic and need neither smoothed estimate.
+// steps last first, with the steps decoded and half the smoother's gains
+// worked out ahead, on the other core: the gains are half of the
+// smoother's arithmetic and need neither smoothed estimate, and with half
+// of them each core has about as much to do.
 type prefetchedSteps struct {
 	n int
 	p *prefetch[gainedStep]
@@ -150,12 +151,13 @@ type prefetchedSteps struct {
 	posts map[int]*estimator.State
 }
 
-// gainedStep is a step and the smoother's transposed gain between it and
-// the next step (estimator.RTSGain), unless the next starts a segment or
-// the step is the last.
+// gainedStep is a step and, if gained, the smoother's transposed gain
+// between it and the next step (estimator.RTSGain): for even steps, unless
+// the next starts a segment or the step is the last.
 type gainedStep struct {
 	step    fusion.Step
 	gain    [estimator.MaxStates * estimator.MaxStates]float64
+	gained  bool
 	gainErr error
 }
 
@@ -177,8 +179,8 @@ func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 			if j+1 < len(dst) {
 				nx = &dst[j+1].step
 			}
-			g.gainErr = nil
-			if k+1 < n && !nx.Start {
+			g.gainErr, g.gained = nil, k%2 == 0 && k+1 < n && !nx.Start
+			if g.gained {
 				g.gainErr = estimator.RTSGain(&g.gain, &g.step.Post, &nx.Pred, &nx.F)
 			}
 		}
@@ -205,10 +207,11 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 	return err
 }
 
-// Gain returns the gain between steps k and k+1, once step k was read.
+// Gain returns the gain between steps k and k+1, once step k was read, or
+// nil for the smoother to work out.
 func (ps *prefetchedSteps) Gain(k int) (*[estimator.MaxStates * estimator.MaxStates]float64, error) {
 	g, err := ps.p.at(k)
-	if err != nil {
+	if err != nil || !g.gained {
 		return nil, err
 	}
 	return &g.gain, g.gainErr

@@ -13,7 +13,7 @@ var pow10f = [...]float64{1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10
 var pow10u = [...]uint64{1, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10}
 
 // appendG appends v as strconv.AppendFloat(b, v, 'g', prec, 64) does, byte
-// for byte, for prec from 1 to 10, at about a third of its cost: v is
+// for byte, for prec from 1 to 10, at less than half its cost: v is
 // scaled to prec digits before the point by one exact power of ten, with a
 // single rounding, so that the digits are those of the exact value's
 // correct rounding unless the scaled value lies within 1e-5 of a half,

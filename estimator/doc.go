@@ -33,5 +33,5 @@
 // kind) panics, with ErrShape where sizes do not fit; bad data is an error
 // value (a covariance of the wrong size wraps ErrShape). Results go into a
 // dst argument or the receiver, as in gonum: StepNoise, TimeNoise,
-// Sandwich, RTSStep, State.CovarianceInto.
+// Sandwich, RTSStep, RTSGain, State.CovarianceInto.
 package estimator

@@ -16,11 +16,30 @@ package estimator
 // Reference: Rauch, Tung and Striebel, AIAA Journal 3(8), 1965; in this
 // form Bar-Shalom, Li and Kirubarajan (2001), section 8.6.
 func RTSStep(dst, filtered, predicted *State, f *[MaxStates * MaxStates]float64, smoothed *State) error {
-	n := filtered.n
 	var ct [MaxStates * MaxStates]float64
-	if !rtsGainT(&ct, filtered, predicted, f) {
+	if err := RTSGain(&ct, filtered, predicted, f); err != nil {
+		return err
+	}
+	RTSStepWithGain(dst, filtered, predicted, &ct, smoothed)
+	return nil
+}
+
+// RTSGain writes into ct the transpose of the gain C of RTSStep (n x n,
+// stride MaxStates), which needs neither smoothed estimate: a smoother may
+// work the gains out ahead of its backward pass, elsewhere. It returns
+// ErrNotPositiveDefinite if the prediction's covariance is not.
+func RTSGain(ct *[MaxStates * MaxStates]float64, filtered, predicted *State, f *[MaxStates * MaxStates]float64) error {
+	if !rtsGainT(ct, filtered, predicted, f) {
 		return ErrNotPositiveDefinite
 	}
+	return nil
+}
+
+// RTSStepWithGain is RTSStep with the transposed gain ct that RTSGain gave
+// for filtered, predicted and f: the same operations, so the same result
+// to the bit. dst may alias filtered.
+func RTSStepWithGain(dst, filtered, predicted *State, ct *[MaxStates * MaxStates]float64, smoothed *State) {
+	n := filtered.n
 	var d [MaxStates]float64
 	for i := 0; i < n; i++ {
 		d[i] = smoothed.x[i] - predicted.x[i]
@@ -64,7 +83,6 @@ func RTSStep(dst, filtered, predicted *State, f *[MaxStates * MaxStates]float64,
 	}
 	symmetrise(out.p[:], n, stride)
 	*dst = out
-	return nil
 }
 
 // rtsGainT writes ct = P_p^-1 F P_f, the transpose of the smoother gain C,

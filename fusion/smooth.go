@@ -245,6 +245,17 @@ type StateSink interface {
 	SetSmoothed(i int, s *estimator.State) error
 }
 
+// GainedSteps is a StepStore that also gives the smoother's gains, worked
+// out ahead (by another goroutine, say) with estimator.RTSGain: Gain(k) is
+// the transposed gain of step k's Post, step k+1's Pred and step k+1's F,
+// or RTSGain's error, or nil and no error for a gain the smoother is to
+// work out itself. Smooth asks for it right after Step(k), only when step
+// k+1 is not a Start step, and reads it before it asks for another step.
+type GainedSteps interface {
+	StepStore
+	Gain(k int) (*[estimator.MaxStates * estimator.MaxStates]float64, error)
+}
+
 // MemSteps is a StepStore in memory.
 type MemSteps []Step
 
@@ -271,7 +282,9 @@ func (m MemStates) SetSmoothed(i int, s *estimator.State) error { m[i] = *s; ret
 // Reference: Rauch, Tung and Striebel, AIAA Journal 3(8), 1965; in this
 // form Bar-Shalom, Li and Kirubarajan (2001), section 8.6. Angle
 // differences are wrapped; a Start step ends a segment (its predecessor is
-// not smoothed through it).
+// not smoothed through it). From a GainedSteps source it takes the gains
+// C_k as given instead of working them out, with the same result to the
+// bit.
 func Smooth(src StepStore, dst StateSink) error {
 	n := src.Len()
 	if n == 0 {
@@ -283,6 +296,7 @@ func Smooth(src StepStore, dst StateSink) error {
 	var states [2]estimator.State
 	next, cur := &steps[0], &steps[1]
 	smoothed, out := &states[0], &states[1]
+	gained, _ := src.(GainedSteps)
 	if err := src.Step(n-1, next); err != nil {
 		return err
 	}
@@ -294,9 +308,20 @@ func Smooth(src StepStore, dst StateSink) error {
 		if err := src.Step(k, cur); err != nil {
 			return err
 		}
-		if next.Start {
+		switch {
+		case next.Start:
 			*out = cur.Post
-		} else {
+		case gained != nil:
+			ct, err := gained.Gain(k)
+			if err == nil && ct == nil {
+				err = estimator.RTSStep(out, &cur.Post, &next.Pred, &next.F, smoothed)
+			} else if err == nil {
+				estimator.RTSStepWithGain(out, &cur.Post, &next.Pred, ct, smoothed)
+			}
+			if err != nil {
+				return fmt.Errorf("smoothing step %d at %d ns: %w", k, cur.StampNs, err)
+			}
+		default:
 			if err := estimator.RTSStep(out, &cur.Post, &next.Pred, &next.F, smoothed); err != nil {
 				return fmt.Errorf("smoothing step %d at %d ns: %w", k, cur.StampNs, err)
 			}

@@ -1,8 +1,11 @@
 package fusion_test
 
 import (
+	"errors"
+	"fmt"
 	"math"
 	"math/rand/v2"
+	"strings"
 	"testing"
 
 	"gonum.org/v1/gonum/mat"
@@ -311,5 +314,72 @@ func TestStepCopyFrom(t *testing.T) {
 		if dst != c.src {
 			t.Errorf("%s: the copy differs", c.name)
 		}
+	}
+}
+
+// gainedMem is fusion.MemSteps with the smoother's gains worked out
+// beforehand, as a store that computes them elsewhere gives them.
+type gainedMem struct {
+	fusion.MemSteps
+	gains []*[estimator.MaxStates * estimator.MaxStates]float64
+	errs  []error
+	asked int
+}
+
+func (g *gainedMem) Gain(k int) (*[estimator.MaxStates * estimator.MaxStates]float64, error) {
+	g.asked++
+	return g.gains[k], g.errs[k]
+}
+
+// TestSmoothWithGainsEqualsSmooth: the smoother given its gains from the
+// store (estimator.RTSGain, worked out beforehand; every third left to the
+// smoother) gives the same smoothed estimates, bit for bit, as the
+// smoother working them out itself, across a Start step too; and a gain's
+// error stops it as RTSStep's does.
+func TestSmoothWithGainsEqualsSmooth(t *testing.T) {
+	s := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 77, DurationS: 20, OutlierFraction: 0.05})
+	r, _ := fusion.New(s.Config())
+	r.CollectSteps()
+	var all []fusion.Step
+	for in, ok := s.Next(); ok; in, ok = s.Next() {
+		fusiontest.Feed(r, &in)
+		all = append(all, r.TakeSteps()...)
+	}
+	all = append(all, r.FinishSteps()...)
+	all[len(all)/2].Start = true
+	g := &gainedMem{MemSteps: all, gains: make([]*[estimator.MaxStates * estimator.MaxStates]float64, len(all)), errs: make([]error, len(all))}
+	starts := 0
+	for k := 0; k+1 < len(all); k++ {
+		if all[k+1].Start {
+			starts++
+			continue
+		}
+		if k%3 == 0 {
+			continue
+		}
+		g.gains[k] = new([estimator.MaxStates * estimator.MaxStates]float64)
+		g.errs[k] = estimator.RTSGain(g.gains[k], &all[k].Post, &all[k+1].Pred, &all[k+1].F)
+	}
+	want := make(fusion.MemStates, len(all))
+	if err := fusion.Smooth(fusion.MemSteps(all), want); err != nil {
+		t.Fatal(err)
+	}
+	got := make(fusion.MemStates, len(all))
+	if err := fusion.Smooth(g, got); err != nil {
+		t.Fatal(err)
+	}
+	if len(all) < 1000 || starts < 1 || g.asked != len(all)-1-starts {
+		t.Fatalf("%d steps, %d starts, %d gains asked for", len(all), starts, g.asked)
+	}
+	for i := range want {
+		if want[i] != got[i] {
+			t.Fatalf("smoothed state %d differs with the gains given", i)
+		}
+	}
+	// A gain that failed stops the smoother at its step.
+	k := len(all)/12*3 + 1
+	g.errs[k] = estimator.ErrNotPositiveDefinite
+	if err := fusion.Smooth(g, got); !errors.Is(err, estimator.ErrNotPositiveDefinite) || !strings.Contains(err.Error(), fmt.Sprintf("step %d ", k)) {
+		t.Errorf("a failed gain at step %d gave %v", k, err)
 	}
 }

@@ -52,6 +52,8 @@ type prefetch[T any] struct {
 	runs    chan prefetchRun[T]
 	pool    *batchPool[T]
 	stop    chan struct{}
+	done    chan struct{} // closed when the reading goroutine has returned
+	stopped bool
 	cur     prefetchRun[T]
 	have    bool
 }
@@ -68,11 +70,12 @@ const prefetchLen = 256
 // fill, which sets dst[j] to record lo+j.
 func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) error) *prefetch[T] {
 	// Four runs at most: two sent, one read, one being filled.
-	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), pool: newBatchPool[T](4, prefetchLen), stop: make(chan struct{})}
+	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), pool: newBatchPool[T](4, prefetchLen), stop: make(chan struct{}), done: make(chan struct{})}
 	if backwards {
 		p.step = -1
 	}
 	go func() {
+		defer close(p.done)
 		defer close(p.runs)
 		for r := 0; r*prefetchLen < n; r++ {
 			lo := r * prefetchLen
@@ -124,27 +127,65 @@ func (p *prefetch[T]) at(i int) (*T, error) {
 	return &p.cur.items[i-p.cur.lo], nil
 }
 
-// close stops the reading goroutine.
-func (p *prefetch[T]) close() { close(p.stop) }
+// close stops the reading goroutine and waits for it to return, so that
+// what it reads may be closed then; it may be called again.
+func (p *prefetch[T]) close() {
+	if !p.stopped {
+		p.stopped = true
+		close(p.stop)
+	}
+	<-p.done
+}
 
-// prefetchedSteps is a fusion.StepStore for the smoother, which reads the
-// steps last first, with the steps decoded ahead.
+// prefetchedSteps is a fusion.GainedSteps for the smoother, which reads the
+// steps last first, with the steps decoded and half the smoother's gains
+// worked out ahead, on the other core: the gains are half of the
+// smoother's arithmetic and need neither smoothed estimate, and with half
+// of them each core has about as much to do.
 type prefetchedSteps struct {
 	n int
-	p *prefetch[fusion.Step]
+	p *prefetch[gainedStep]
 	// every and posts: the filtered states at i%every == 0 and at n-1,
 	// kept whole as the smoother reads them, for the figures.
 	every int
 	posts map[int]*estimator.State
 }
 
+// gainedStep is a step and, if gained, the smoother's transposed gain
+// between it and the next step (estimator.RTSGain): for even steps, unless
+// the next starts a segment or the step is the last.
+type gainedStep struct {
+	step    fusion.Step
+	gain    [estimator.MaxStates * estimator.MaxStates]float64
+	gained  bool
+	gainErr error
+}
+
 func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 	rd := steps.reader()
-	return &prefetchedSteps{n: steps.Len(), every: every, posts: map[int]*estimator.State{}, p: startPrefetch(steps.Len(), true, func(lo int, dst []fusion.Step) error {
+	n := steps.Len()
+	// next holds step hi of the run being filled, [lo, hi): the lowest of
+	// the run filled before.
+	next := new(fusion.Step)
+	return &prefetchedSteps{n: n, every: every, posts: map[int]*estimator.State{}, p: startPrefetch(n, true, func(lo int, dst []gainedStep) error {
 		for j := range dst {
-			if err := rd.Step(lo+j, &dst[j]); err != nil {
+			if err := rd.Step(lo+j, &dst[j].step); err != nil {
 				return err
 			}
+		}
+		for j := len(dst) - 1; j >= 0; j-- {
+			k, g := lo+j, &dst[j]
+			nx := next
+			if j+1 < len(dst) {
+				nx = &dst[j+1].step
+			}
+			g.gainErr, g.gained = nil, k%2 == 0 && k+1 < n && !nx.Start
+			if g.gained {
+				g.gainErr = estimator.RTSGain(&g.gain, &g.step.Post, &nx.Pred, &nx.F)
+			}
+		}
+		if len(dst) > 0 {
+			next.CopyFrom(&dst[0].step)
 		}
 		return nil
 	})}
@@ -153,8 +194,9 @@ func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 func (ps *prefetchedSteps) Len() int { return ps.n }
 
 func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
-	s, err := ps.p.at(i)
+	g, err := ps.p.at(i)
 	if err == nil {
+		s := &g.step
 		dst.CopyFrom(s)
 		if i%ps.every == 0 || i == ps.n-1 {
 			c := new(estimator.State)
@@ -163,6 +205,16 @@ func (ps *prefetchedSteps) Step(i int, dst *fusion.Step) error {
 		}
 	}
 	return err
+}
+
+// Gain returns the gain between steps k and k+1, once step k was read, or
+// nil for the smoother to work out.
+func (ps *prefetchedSteps) Gain(k int) (*[estimator.MaxStates * estimator.MaxStates]float64, error) {
+	g, err := ps.p.at(k)
+	if err != nil || !g.gained {
+		return nil, err
+	}
+	return &g.gain, g.gainErr
 }
 
 // trackItem is what the walk of the smoothed track needs of a step: its
@@ -180,7 +232,7 @@ type trackItem struct {
 // prefetchTrack reads the smoothed states forwards, with the stamps the
 // filtered walk kept and the truth (if not nil), ahead of the walk of the
 // smoothed track.
-func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth *truthReader) *prefetch[trackItem] {
+func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth truthSource) *prefetch[trackItem] {
 	return startPrefetch(fw.n, false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
@@ -191,7 +243,10 @@ func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth *truthReader) *pref
 			}
 			it.haveTruth = false
 			if truth != nil {
-				it.truth, _, it.haveTruth = truth.at(it.stampNs)
+				var err error
+				if it.truth, it.haveTruth, err = truth.truthAt(i, it.stampNs); err != nil {
+					return err
+				}
 			}
 			if it.haveTruth {
 				sp := estimator.Pose{X: it.smoothed.v[0], Y: it.smoothed.v[1], Heading: it.smoothed.v[2]}

@@ -350,7 +350,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.FilteredCSV = filepath.Join(outDir, run.Label+"-filtered.csv")
-	walk, err := newFilteredWalk(run, src.Truth)
+	walk, err := newFilteredWalk(run, src.Truth, opt.TempDir)
 	if err != nil {
 		return nil, err
 	}
@@ -420,6 +420,11 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 	src := prefetchSteps(steps, every)
 	err = fusion.Smooth(src, smoothed)
 	src.p.close()
+	// The steps are read: their file goes now, before the walk writes the
+	// smoothed track's export, whose pages the system then takes from
+	// those it just freed (on a virtual machine, pages the system has not
+	// touched for a while cost several times more to fill).
+	steps.close()
 	smoothed.filtered = src.posts
 	if err != nil {
 		smoothed.close()
@@ -1032,8 +1037,12 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 // (in chunks: an hour's take 12 MB). It writes those fields of the run
 // and nothing else until the step writer is closed.
 type filteredWalk struct {
-	run    *Run
-	truth  *truthReader
+	run   *Run
+	truth *truthReader
+	// tape keeps the truth at each step's stamp for the walk after the
+	// smoother, which reads it instead of the truth file (parsing the
+	// file's numbers is most of the cost of reading it).
+	tape   *truthTape
 	f      *os.File
 	n      int
 	stamps [][]int64
@@ -1049,7 +1058,7 @@ type filteredWalk struct {
 // NEES.
 const walkChunk = 1 << 14
 
-func newFilteredWalk(run *Run, truthPath string) (*filteredWalk, error) {
+func newFilteredWalk(run *Run, truthPath, tempDir string) (*filteredWalk, error) {
 	w := &filteredWalk{run: run}
 	if truthPath != "" {
 		tr, f, err := openTruth(truthPath)
@@ -1057,6 +1066,7 @@ func newFilteredWalk(run *Run, truthPath string) (*filteredWalk, error) {
 			return nil, fmt.Errorf("truth: %w", err)
 		}
 		w.truth, w.f = tr, f
+		w.tape = newTruthTape(tempDir)
 	}
 	return w, nil
 }
@@ -1065,6 +1075,7 @@ func (w *filteredWalk) close() {
 	if w.f != nil {
 		w.f.Close()
 	}
+	w.tape.close()
 }
 
 // stamp returns the stamp of step i; nees its filtered pose NEES (with
@@ -1096,8 +1107,11 @@ func (w *filteredWalk) step(s *fusion.Step, row *trackRow) {
 	sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 	sum.FinalHeadingSt = hs
 	nees := math.NaN()
+	var tp estimator.Pose
+	var haveTruth bool
 	if w.truth != nil {
-		tp, gapNs, haveTruth := w.truth.at(stamp)
+		var gapNs int64
+		tp, gapNs, haveTruth = w.truth.at(stamp)
 		sum.TruthSteps++
 		if haveTruth {
 			sum.TruthMatched++
@@ -1111,6 +1125,7 @@ func (w *filteredWalk) step(s *fusion.Step, row *trackRow) {
 		}
 	}
 	w.nees[c] = append(w.nees[c], nees)
+	w.tape.add(&tp, haveTruth)
 }
 
 // tracks walks the smoothed states forwards once the smoother and the
@@ -1123,14 +1138,20 @@ func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath strin
 	// of their own.
 	rows := newRowWriter(run.SmoothedCSV)
 	defer rows.close()
-	var truth *truthReader
+	// The truth at each step: from the filtered walk's tape, or read
+	// again if the tape could not be kept.
+	var truth truthSource
 	if truthPath != "" {
-		tr, f, err := openTruth(truthPath)
-		if err != nil {
-			return fmt.Errorf("truth: %w", err)
+		if tr, err := fw.tape.reader(fw.n); err == nil {
+			truth = tr
+		} else {
+			tr, f, err := openTruth(truthPath)
+			if err != nil {
+				return fmt.Errorf("truth: %w", err)
+			}
+			defer f.Close()
+			truth = tr
 		}
-		defer f.Close()
-		truth = tr
 	}
 	n := fw.n
 	every := sm.every

@@ -5,6 +5,7 @@ import (
 	"bytes"
 	"encoding/csv"
 	"fmt"
+	"math"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -289,5 +290,33 @@ func TestSpillToDiskWithoutIMU(t *testing.T) {
 	b, _ := os.ReadFile(disk.SmoothedCSV)
 	if len(a) < 1000 || !bytes.Equal(a, b) {
 		t.Errorf("smoothed tracks differ between memory and disk (%d and %d bytes)", len(a), len(b))
+	}
+}
+
+// TestTruthTapeOrFile: the walk after the smoother reads the truth the
+// filtered walk kept on its tape; where the tape cannot be kept (its
+// directory missing) it reads the truth file again, with the same
+// smoothed errors and figures.
+func TestTruthTapeOrFile(t *testing.T) {
+	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 78, DurationS: 15, OutlierFraction: 0.05})
+	tape, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{TempDir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	file, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{TempDir: filepath.Join(t.TempDir(), "missing")})
+	if err != nil {
+		t.Fatal(err)
+	}
+	a, b := tape.Summary, file.Summary
+	if !a.HasTruth || a.TruthMatched < 1000 || a.SmoothedRMSM != b.SmoothedRMSM || a.SmoothedNEES != b.SmoothedNEES || a.SmoothedNEESMedian != b.SmoothedNEESMedian || a.SmoothedInside95 != b.SmoothedInside95 {
+		t.Errorf("smoothed against truth: tape %+v, file %+v", a, b)
+	}
+	if len(tape.Truth) != len(file.Truth) || len(tape.Truth) == 0 {
+		t.Fatalf("%d and %d truth points", len(tape.Truth), len(file.Truth))
+	}
+	for i := range tape.Truth {
+		if p, q := tape.Truth[i], file.Truth[i]; p != q && !(math.IsNaN(p.X) && math.IsNaN(q.X)) {
+			t.Fatalf("truth point %d: %v from the tape, %v from the file", i, p, q)
+		}
 	}
 }

@@ -466,6 +466,7 @@ type stepStore struct {
 	n      int
 	file   *stepFile
 	rd     *stepReader
+	closed bool
 }
 
 // Bytes a step costs in memory, with its smoothed state.
@@ -565,8 +566,12 @@ func (ss *stepStore) reader() *stepStore {
 	return &stepStore{file: ss.file}
 }
 
+// close gives the steps back: their file, or their memory; it may be
+// called again.
 func (ss *stepStore) close() error {
-	if ss.file != nil {
+	ss.mem = nil
+	if ss.file != nil && !ss.closed {
+		ss.closed = true
 		return ss.file.f.Close()
 	}
 	return nil

@@ -36,7 +36,7 @@ func rowOf(stamp int64, s *estimator.State) trackRow {
 // the mean with ten significant digits (a tenth of a micrometre at a
 // kilometre), the covariance and the radius with seven; fixed digits format
 // several times faster than the shortest exact form, and the file is
-// smaller.
+// smaller (appendG writes them as strconv would, faster still).
 func appendRow(b []byte, r *trackRow) []byte {
 	b = strconv.AppendInt(b, r.stampNs, 10)
 	for i, v := range r.v[:10] {
@@ -45,13 +45,13 @@ func appendRow(b []byte, r *trackRow) []byte {
 			prec = 10
 		}
 		b = append(b, ',')
-		b = strconv.AppendFloat(b, v, 'g', prec, 64)
+		b = appendG(b, v, prec)
 	}
 	b = append(b, ',')
 	if r.offset {
-		b = strconv.AppendFloat(b, r.v[10], 'g', 10, 64)
+		b = appendG(b, r.v[10], 10)
 		b = append(b, ',')
-		b = strconv.AppendFloat(b, r.v[11], 'g', 7, 64)
+		b = appendG(b, r.v[11], 7)
 	} else {
 		b = append(b, ',')
 	}

@@ -69,3 +69,19 @@ func BenchmarkAppendG(b *testing.B) {
 		}
 	})
 }
+
+// FuzzAppendG: for any bit pattern and precision, appendG writes what
+// strconv.AppendFloat with 'g' writes (the standard library is the
+// reference).
+func FuzzAppendG(f *testing.F) {
+	for _, v := range []float64{0, 1, 0.5, 1234567.5, 9.9999995, 1e-12, 1e21, -0.00012345675} {
+		f.Add(math.Float64bits(v), uint8(7))
+	}
+	f.Fuzz(func(t *testing.T, bits uint64, prec uint8) {
+		v, p := math.Float64frombits(bits), 1+int(prec%10)
+		want := strconv.AppendFloat(nil, v, 'g', p, 64)
+		if got := appendG(nil, v, p); string(got) != string(want) {
+			t.Fatalf("%v (bits %#x) with %d digits: %q, want %q", v, bits, p, got, want)
+		}
+	})
+}

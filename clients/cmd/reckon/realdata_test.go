@@ -146,6 +146,10 @@ func TestRealDataGoal(t *testing.T) {
 	// 0.968 / 0.972 (before 0.992 / 0.977 and 0.930 / 0.926 for 4 and 5),
 	// the default run 0.929 / 0.891, below the goal, so it is not the
 	// default ("Design: Systematic parameters", "Correlated fix errors").
+	// With RECKON_REALDATA_RETUNE set too, tune -model runs again on that
+	// configuration (its Student-t camera now screened for gross errors on
+	// its own distribution): seeds 1 to 3 gave 0.918 / 0.921, 0.859 /
+	// 0.855 and 0.913 / 0.917.
 	for seed := uint64(1); seed <= uint64(n); seed++ {
 		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.65) })
 	}
@@ -201,6 +205,16 @@ func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 		}
 		t.Logf("calibrate again:\n%s", out)
 		tuned = again
+		if os.Getenv("RECKON_REALDATA_RETUNE") != "" {
+			// And tune again, on the configuration calibrated again.
+			retuned := filepath.Join(dir, "tuned-again.yaml")
+			out, errs, code = runCode(t, ctx, "", "tune", "-model", "-config", again, "-out", retuned, samples)
+			if code != 0 {
+				t.Fatalf("tune again: exit %d: %s\n%s", code, errs, out)
+			}
+			t.Logf("tune again:\n%s", out)
+			tuned = retuned
+		}
 	}
 	got := score(t, dir, tuned, samples, truth)
 	t.Logf("tuned: RMS %.3f / %.3f m, inside 95%%: %.3f / %.3f (goal: <= %.2f / %.2f m, >= %.2f inside)", got.FilteredRMSM, got.SmoothedRMSM,

@@ -288,17 +288,21 @@ func (s *Server) list() []*robot {
 	return out
 }
 
+// lookup returns the robot named name. The map is asked first: every name
+// in it was checked when the robot was made, and checking a name (a
+// regular expression) cost about 0.7 us of the 15 us a sample spends
+// under ingestRun in BenchmarkRobotRates' profile.
 func (s *Server) lookup(name string) (*robot, error) {
-	if _, err := RobotID(name); err != nil {
-		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
-	}
 	s.mu.RLock()
 	r := s.robots[name]
 	s.mu.RUnlock()
-	if r == nil {
-		return nil, status.Errorf(codes.NotFound, "robot: %s does not exist", name)
+	if r != nil {
+		return r, nil
 	}
-	return r, nil
+	if _, err := RobotID(name); err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
+	}
+	return nil, status.Errorf(codes.NotFound, "robot: %s does not exist", name)
 }
 
 // proto describes the robot; the caller holds r.mu.

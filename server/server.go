@@ -932,7 +932,7 @@ func (s *Server) answerAgain(out *encodedResponse, wire []byte) {
 // was added. The caller holds r.mu.
 func (r *robot) record(req *arrivedRequest, out *encodedResponse, vs *slab, arrival time.Time) error {
 	resp := &out.IngestResponse
-	wire, err := vs.marshal(resp)
+	wire, err := vs.marshalVerdict(resp)
 	if err != nil {
 		// Not expected: every string in a verdict comes from decoded,
 		// hence valid, input or from our own messages.

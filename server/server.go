@@ -7,8 +7,7 @@
 //
 //   - A robot's inputs are serialised by its mutex, in arrival order.
 //   - A verdict is sent only after its input and output are in the journal
-//     (in the operating system's page cache, written or stored into the
-//     segment's mapping, and fsynced when SyncEach is set;
+//     (written to the operating system, and fsynced when SyncEach is set;
 //     otherwise at most SyncInterval later). An input whose journal write
 //     failed is answered UNAVAILABLE and is not applied: the robot is
 //     rebuilt from its journal, so that memory equals the journal.

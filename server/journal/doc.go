@@ -7,10 +7,9 @@
 // system's file system unless a test passes another (package faultfs).
 // Lock keeps a second process out of a journal directory. Writer creates
 // segments atomically (temporary file, fsync, rename, directory fsync),
-// appends entries with one append per Flush (a store into space allocated
-// ahead on the operating system's files, Preallocated; a write elsewhere),
-// reports how many of them are complete when an append fails, rotates, and
-// keeps a manifest naming the newest segment. Read scans a robot's segments in order and hands what it
+// appends entries with one write per Flush, reports how many of them are
+// complete when a write fails, rotates, and keeps a manifest naming the
+// newest segment. Read scans a robot's segments in order and hands what it
 // finds to a Visitor: damaged bytes are copied aside and reported
 // (DamageError), the scan resynchronises at the next valid frame, and
 // missing inputs or segments are reported (ErrGap). Replay, the one replay

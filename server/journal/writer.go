@@ -442,7 +442,7 @@ func (w *Writer) Flush() (complete int, err error) {
 // allocStep is how far ahead a Preallocated segment is allocated: about
 // 5,000 samples' records, so that Allocate (fallocate(2) and mmap(2)) is
 // rare; a crash leaves at most this much zeros at the end of the last
-// segment, which the scanner reads as nothing written.
+// segment, which the scanner reads as nothing written (Scan.Torn).
 const allocStep = 1 << 20
 
 // append puts b at the end of the segment: stored into space allocated

@@ -15,9 +15,6 @@ import (
 // and f.Sync otherwise (a test's file system).
 func Datasync(f File) error {
 	of, ok := f.(*os.File)
-	if osf, isOS := f.(*osFile); isOS {
-		of, ok = osf.File, true
-	}
 	if !ok {
 		return f.Sync()
 	}

@@ -51,30 +51,6 @@ type File interface {
 	Stat() (os.FileInfo, error)
 }
 
-// Preallocated is a File that the writer appends to through space
-// allocated ahead, storing into it without a system call a record: the
-// operating system's file stores through a shared memory mapping
-// (prealloc_linux.go). A store puts the bytes in the page cache, as
-// write(2) does, so a crash of the process loses none of them; fsync and
-// fdatasync make them durable as they do written bytes. Each write(2) of a
-// journal cost about 3.5 us of CPU a sample in BenchmarkRobotRates' profile
-// (on ext4 the file's times and size change with each one); a store costs
-// a copy, and a page fault a page and an fsync interval.
-type Preallocated interface {
-	// Allocate makes the file at least size bytes long, the bytes past its
-	// old end zeros with their space allocated on the disk (fallocate(2)),
-	// so that storing into them cannot fail for want of space: it fails
-	// instead, with ENOSPC on a full disk. StoreAt may then store from
-	// offset from to size. A file system that cannot allocate ahead fails
-	// it with errors.ErrUnsupported and leaves the file as it was.
-	Allocate(from, size int64) error
-	// StoreAt copies p into the file at offset off, within what the last
-	// Allocate readied and not past a Truncate since; n is how many bytes
-	// were stored when err is not nil (an I/O error reading a page back is
-	// reported, not a crash).
-	StoreAt(p []byte, off int64) (n int, err error)
-}
-
 // OS is the operating system's file system.
 var OS FS = osFS{}
 
@@ -93,7 +69,7 @@ func (osFS) OpenFile(name string, flag int, perm os.FileMode) (File, error) {
 	if err != nil {
 		return nil, err // not a nil *os.File in an interface
 	}
-	return &osFile{File: f}, nil
+	return f, nil
 }
 
 func (osFS) Rename(oldname, newname string) error        { return os.Rename(oldname, newname) }

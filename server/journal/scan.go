@@ -25,9 +25,6 @@ type Scan struct {
 	Good    int64
 	// Torn, if not nil, says where and why the last segment's tail was cut
 	// short (a crash while writing it): nothing after it is a valid frame.
-	// Zeros after the last frame of the last segment are not torn: they
-	// are the space a writer allocates ahead (Preallocated), where nothing
-	// was written.
 	// TornKept names the copy of the torn bytes, unless they were only the
 	// start of a frame that runs past the end, zeros, or the start of a
 	// header.
@@ -295,12 +292,6 @@ func (st *scanState) segment(path string, first, last bool) error {
 			off = end
 			continue
 		}
-		if last && len(bytes.TrimRight(b[off:], "\x00")) == 0 {
-			// The space allocated ahead of the segment being appended to
-			// (Preallocated), or pages a power loss dropped before their
-			// fsync: nothing was written there, and nothing is torn.
-			break
-		}
 		next := resync(b, off+1)
 		if next < 0 {
 			return st.tail(path, b, off, reason, last)
@@ -334,11 +325,7 @@ func (st *scanState) tail(path string, b []byte, off int, reason string, last bo
 	sc.Unanswered = st.pending != nil
 	st.pending = nil
 	rest := b[off:]
-	// A segment being appended to ends in zeros allocated ahead
-	// (Preallocated): a frame whose store was cut short is followed by
-	// them.
-	stored := bytes.TrimRight(rest, "\x00")
-	if len(stored) == 0 || (off == 0 && bytes.HasPrefix(header(), rest)) || cutShort(stored) {
+	if allZero(rest) || (off == 0 && bytes.HasPrefix(header(), rest)) || cutShort(rest) {
 		// Nothing written, the start of a header, or a frame whose write
 		// was cut short: never acknowledged, and what a reader of a journal
 		// being written meets at its end.
@@ -357,6 +344,15 @@ func cutShort(b []byte) bool {
 	}
 	size := binary.LittleEndian.Uint32(b)
 	return checkLength(size) == "" && int(size) > len(b)-frameSize
+}
+
+func allZero(b []byte) bool {
+	for _, c := range b {
+		if c != 0 {
+			return false
+		}
+	}
+	return true
 }
 
 // damage keeps the damaged range [off, end) of the segment aside and

@@ -32,18 +32,13 @@ type Writer struct {
 	dir, robot string
 	opt        Options
 	f          File
-	pf         Preallocated // f, when it is; nil: append with write(2)
 	seg        int
 	size       int64 // bytes in the segment, all complete entries
-	// alloc is the file's size as the writer made it: past size, the
-	// zeros allocated ahead for pf (an Allocate that failed part way may
-	// have made the file longer).
-	alloc  int64
-	buf    []byte
-	ends   []int // where each entry in buf ends
-	dirty  bool  // written since the last fsync
-	broken error // wraps ErrBroken
-	writes uint64
+	buf        []byte
+	ends       []int // where each entry in buf ends
+	dirty      bool  // written since the last fsync
+	broken     error // wraps ErrBroken
+	writes     uint64
 }
 
 // SegmentPath returns the path of segment n of a robot's journal.
@@ -197,15 +192,14 @@ func (w *Writer) unmake(path string, err error) error {
 
 // open makes segment n, of size bytes, the one appended to.
 func (w *Writer) open(n int, path string, size int64) error {
-	f, err := w.fs.OpenFile(path, os.O_RDWR|os.O_APPEND, 0)
+	f, err := w.fs.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
 	if err != nil {
 		return err
 	}
 	if w.f != nil {
 		w.f.Close() // fsynced before the rotation
 	}
-	w.f, w.seg, w.size, w.alloc, w.dirty = f, n, size, size, false
-	w.pf, _ = f.(Preallocated)
+	w.f, w.seg, w.size, w.dirty = f, n, size, false
 	return nil
 }
 
@@ -232,12 +226,11 @@ func Resume(dir, robot string, seg int, good int64, opt Options) (*Writer, error
 	if good, err = w.completeHeader(path, good); err != nil {
 		return nil, err
 	}
-	f, err := w.fs.OpenFile(path, os.O_RDWR|os.O_APPEND, 0)
+	f, err := w.fs.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
 	if err != nil {
 		return nil, err
 	}
-	w.f, w.seg, w.size, w.alloc = f, seg, good, good
-	w.pf, _ = f.(Preallocated)
+	w.f, w.seg, w.size = f, seg, good
 	if err := f.Truncate(good); err != nil {
 		f.Close()
 		return nil, fmt.Errorf("journal %s: %w", path, err)
@@ -416,7 +409,7 @@ func (w *Writer) Flush() (complete int, err error) {
 		return 0, nil
 	}
 	entries := len(w.ends)
-	n, err := w.append(w.buf)
+	n, err := w.f.Write(w.buf)
 	if err != nil {
 		return w.takeBack(n, err)
 	}
@@ -439,58 +432,6 @@ func (w *Writer) Flush() (complete int, err error) {
 	return entries, nil
 }
 
-// allocStep is how far ahead a Preallocated segment is allocated: about
-// 5,000 samples' records, so that Allocate (fallocate(2) and mmap(2)) is
-// rare; a crash leaves at most this much zeros at the end of the last
-// segment, which the scanner reads as nothing written (Scan.Torn).
-const allocStep = 1 << 20
-
-// append puts b at the end of the segment: stored into space allocated
-// ahead when the file is Preallocated, else written.
-func (w *Writer) append(b []byte) (int, error) {
-	if w.pf == nil {
-		return w.f.Write(b)
-	}
-	end := w.size + int64(len(b))
-	if end > w.alloc {
-		want := (end + allocStep - 1) / allocStep * allocStep
-		err := w.pf.Allocate(w.size, want)
-		if errors.Is(err, errors.ErrUnsupported) {
-			w.pf = nil
-			return w.f.Write(b)
-		}
-		if err != nil {
-			return 0, err
-		}
-		w.alloc = want
-	}
-	return w.pf.StoreAt(b, w.size)
-}
-
-// trimTail takes the space allocated ahead off the end of the segment
-// (before a rotation, so that no segment but the last ends in zeros, and
-// at Close); the fsync after it makes that durable.
-func (w *Writer) trimTail() error {
-	if w.pf == nil || w.broken != nil {
-		return nil
-	}
-	if err := w.truncate(w.size); err != nil {
-		return fmt.Errorf("journal %s: %w", w.segPath(), classify(err))
-	}
-	w.dirty = true
-	return nil
-}
-
-// truncate changes the segment file's size; space allocated ahead past it
-// is gone.
-func (w *Writer) truncate(size int64) error {
-	err := w.f.Truncate(size)
-	if err == nil {
-		w.alloc = size
-	}
-	return err
-}
-
 // takeBack handles a write that failed after n bytes: it counts the
 // entries written whole and truncates the rest away. With SyncEach the
 // entries written whole are fsynced before they count as complete (the
@@ -504,7 +445,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 	w.drop()
 	err = fmt.Errorf("journal %s: %w", w.segPath(), classify(err))
 	if n > keep {
-		if terr := w.truncate(w.size + int64(keep)); terr != nil {
+		if terr := w.f.Truncate(w.size + int64(keep)); terr != nil {
 			w.broken = fmt.Errorf("%w: %v; truncating the incomplete entry: %v", ErrBroken, err, terr)
 			return complete, w.broken
 		}
@@ -533,7 +474,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 // before) and the truncation fsynced, or the writer is broken.
 func (w *Writer) unsync(before int64, err error) error {
 	err = fmt.Errorf("journal %s: fsync: %w", w.segPath(), classify(err))
-	if terr := w.truncate(before); terr != nil {
+	if terr := w.f.Truncate(before); terr != nil {
 		w.broken = fmt.Errorf("%w: %v; truncating: %v", ErrBroken, err, terr)
 		return w.broken
 	}
@@ -563,9 +504,6 @@ func (w *Writer) segPath() string { return SegmentPath(w.dir, w.robot, w.seg) }
 // it could still lose its tail, and starts the next one with its header;
 // then the manifest names it. A failure is a *RotateError.
 func (w *Writer) rotate() error {
-	if err := w.trimTail(); err != nil {
-		return &RotateError{Segment: SegmentPath(w.dir, w.robot, w.seg+1), Err: err}
-	}
 	if err := w.Sync(); err != nil {
 		return &RotateError{Segment: SegmentPath(w.dir, w.robot, w.seg+1), Err: err}
 	}
@@ -620,10 +558,7 @@ func (w *Writer) Close() error {
 	if w.f == nil {
 		return nil
 	}
-	err := w.trimTail()
-	if serr := w.Sync(); err == nil {
-		err = serr
-	}
+	err := w.Sync()
 	if cerr := w.f.Close(); err == nil {
 		err = cerr
 	}

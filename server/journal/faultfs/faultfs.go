@@ -1,7 +1,6 @@
 package faultfs
 
 import (
-	"errors"
 	"fmt"
 	"os"
 	"strings"
@@ -28,11 +27,10 @@ const (
 	OpStat               // Stat and File.Stat
 	OpSyncDir            // SyncDir
 	OpLock               // Lock
-	OpAllocate           // File.Allocate (journal.Preallocated)
 	numOps
 )
 
-var opNames = [numOps]string{"create", "open", "write", "sync", "truncate", "read", "rename", "remove", "list", "mkdir", "stat", "syncdir", "lock", "allocate"}
+var opNames = [numOps]string{"create", "open", "write", "sync", "truncate", "read", "rename", "remove", "list", "mkdir", "stat", "syncdir", "lock"}
 
 // String returns the operation's name.
 func (op Op) String() string {
@@ -245,31 +243,3 @@ func (ff *faultFile) Stat() (os.FileInfo, error) {
 }
 
 func (ff *faultFile) Close() error { return ff.f.Close() }
-
-// Allocate allocates in Base's file, when it is journal.Preallocated,
-// unless OpAllocate is failed; otherwise it fails with
-// errors.ErrUnsupported, and the journal writes instead.
-func (ff *faultFile) Allocate(from, size int64) error {
-	pf, ok := ff.f.(journal.Preallocated)
-	if !ok {
-		return fmt.Errorf("allocate %s: %w", ff.name, errors.ErrUnsupported)
-	}
-	if err := ff.fs.check(OpAllocate, ff.name); err != nil {
-		return err
-	}
-	return pf.Allocate(from, size)
-}
-
-// StoreAt stores into Base's file; it counts as OpWrite, and fails (after
-// storing half with ShortWrite) as a write does.
-func (ff *faultFile) StoreAt(p []byte, off int64) (int, error) {
-	pf := ff.f.(journal.Preallocated) // Allocate succeeded, so it is
-	if err := ff.fs.check(OpWrite, ff.name); err != nil {
-		n := 0
-		if ff.fs.ShortWrite {
-			n, _ = pf.StoreAt(p[:len(p)/2], off)
-		}
-		return n, err
-	}
-	return pf.StoreAt(p, off)
-}

@@ -282,34 +282,6 @@ func (f *memFile) Truncate(size int64) error {
 	return nil
 }
 
-// Allocate extends the file with zeros to size bytes, not synced, as
-// fallocate(2) does: a crash before an fsync keeps the old size.
-func (f *memFile) Allocate(from, size int64) error {
-	f.m.mu.Lock()
-	defer f.m.mu.Unlock()
-	if f.closed {
-		return os.ErrClosed
-	}
-	if size > int64(len(f.ino.data)) {
-		f.ino.data = append(f.ino.data, make([]byte, size-int64(len(f.ino.data)))...)
-	}
-	return nil
-}
-
-// StoreAt copies p into the file at off, inside its size, not synced: the
-// stores of a shared memory mapping.
-func (f *memFile) StoreAt(p []byte, off int64) (int, error) {
-	f.m.mu.Lock()
-	defer f.m.mu.Unlock()
-	if f.closed {
-		return 0, os.ErrClosed
-	}
-	if off < 0 || off+int64(len(p)) > int64(len(f.ino.data)) {
-		return 0, &os.PathError{Op: "store", Path: f.name, Err: fmt.Errorf("bytes %d to %d past the end, %d", off, off+int64(len(p)), len(f.ino.data))}
-	}
-	return copy(f.ino.data[off:], p), nil
-}
-
 func (f *memFile) Stat() (os.FileInfo, error) {
 	f.m.mu.Lock()
 	defer f.m.mu.Unlock()

@@ -156,7 +156,7 @@ func (r *robot) route(run []*arrivedRequest, out []encodedResponse, entries []in
 			}
 			resp.Resolved, out[k].wire = own, nil
 			if sid := run[k].GetSessionId(); sid != "" {
-				if wire, err := vs.marshal(resp); err == nil {
+				if wire, err := vs.marshalVerdict(resp); err == nil {
 					// An error is not expected (record encoded it);
 					// the retry then gets the journaled form.
 					out[k].wire = wire

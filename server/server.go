@@ -288,17 +288,21 @@ func (s *Server) list() []*robot {
 	return out
 }
 
+// lookup returns the robot named name. The map is asked first: every name
+// in it was checked when the robot was made, and checking a name (a
+// regular expression) cost about 0.7 us of the 15 us a sample spends
+// under ingestRun in BenchmarkRobotRates' profile.
 func (s *Server) lookup(name string) (*robot, error) {
-	if _, err := RobotID(name); err != nil {
-		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
-	}
 	s.mu.RLock()
 	r := s.robots[name]
 	s.mu.RUnlock()
-	if r == nil {
-		return nil, status.Errorf(codes.NotFound, "robot: %s does not exist", name)
+	if r != nil {
+		return r, nil
 	}
-	return r, nil
+	if _, err := RobotID(name); err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "robot: %v", err)
+	}
+	return nil, status.Errorf(codes.NotFound, "robot: %s does not exist", name)
 }
 
 // proto describes the robot; the caller holds r.mu.
@@ -928,7 +932,7 @@ func (s *Server) answerAgain(out *encodedResponse, wire []byte) {
 // was added. The caller holds r.mu.
 func (r *robot) record(req *arrivedRequest, out *encodedResponse, vs *slab, arrival time.Time) error {
 	resp := &out.IngestResponse
-	wire, err := vs.marshal(resp)
+	wire, err := vs.marshalVerdict(resp)
 	if err != nil {
 		// Not expected: every string in a verdict comes from decoded,
 		// hence valid, input or from our own messages.

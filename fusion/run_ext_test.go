@@ -1,6 +1,7 @@
 package fusion_test
 
 import (
+	"fmt"
 	"os"
 	"path/filepath"
 	"testing"
@@ -41,50 +42,31 @@ func TestSnapshotVersion5Restores(t *testing.T) {
 	}
 }
 
-// TestSnapshotVersion6Restores: the golden snapshot of version 6, whose
-// recovery candidates do not keep their odometry's white part apart,
-// restores under the current version and writes the same bytes but for the
-// version: absent parts read as all white, and all white is written absent.
-func TestSnapshotVersion6Restores(t *testing.T) {
+// TestSnapshotVersion6And7Restore: the golden snapshots of version 6,
+// whose recovery candidates do not keep their odometry's white part apart
+// (absent parts read as all white, and all white is written absent), and of
+// version 7, which lacks the scrub's block sum, restore under the current
+// version and write the same bytes but for the version and a fresh scrub
+// block at the end.
+func TestSnapshotVersion6And7Restore(t *testing.T) {
 	cfg, _ := goldenRobot()
-	old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", "greenhouse-v6.bin"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	r, err := fusion.RestoreSnapshot(cfg, old)
-	if err != nil {
-		t.Fatalf("a version 6 snapshot does not restore: %v", err)
-	}
-	b, err := r.Snapshot()
-	if err != nil {
-		t.Fatal(err)
-	}
-	want := withFreshScrub(append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...))
-	if string(b) != string(want) {
-		t.Errorf("version 6 restored writes %d bytes, not its own %d", len(b), len(want))
-	}
-}
-
-// TestSnapshotVersion7Restores: the golden snapshot of version 7, which
-// lacks the scrub's block sum, restores under the current version and
-// writes the same bytes but for the version and a fresh block at the end.
-func TestSnapshotVersion7Restores(t *testing.T) {
-	cfg, _ := goldenRobot()
-	old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", "greenhouse-v7.bin"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	r, err := fusion.RestoreSnapshot(cfg, old)
-	if err != nil {
-		t.Fatalf("a version 7 snapshot does not restore: %v", err)
-	}
-	b, err := r.Snapshot()
-	if err != nil {
-		t.Fatal(err)
-	}
-	want := withFreshScrub(append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...))
-	if string(b) != string(want) {
-		t.Errorf("version 7 restored writes %d bytes, not its own %d with a fresh scrub block", len(b), len(want))
+	for _, v := range []int{6, 7} {
+		old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", fmt.Sprintf("greenhouse-v%d.bin", v)))
+		if err != nil {
+			t.Fatal(err)
+		}
+		r, err := fusion.RestoreSnapshot(cfg, old)
+		if err != nil {
+			t.Fatalf("a version %d snapshot does not restore: %v", v, err)
+		}
+		b, err := r.Snapshot()
+		if err != nil {
+			t.Fatal(err)
+		}
+		want := withFreshScrub(append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...))
+		if string(b) != string(want) {
+			t.Errorf("version %d restored writes %d bytes, not its own %d with a fresh scrub block", v, len(b), len(want))
+		}
 	}
 }
 

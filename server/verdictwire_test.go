@@ -9,6 +9,7 @@ import (
 
 	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
+	"google.golang.org/protobuf/reflect/protoreflect"
 
 	pb "reckon.example/proto/reckon/v1"
 )
@@ -18,6 +19,19 @@ import (
 // of them, and those it leaves to proto are the ones it must: with
 // resolutions, events or unknown fields, or a string that is not UTF-8.
 func TestPlainVerdictMatchesProto(t *testing.T) {
+	// appendPlainVerdict writes fields 1 to 6 and 9 to 11 and leaves
+	// verdicts with 7 (resolved) or 8 (events) to proto; a field added to
+	// IngestResponse would be dropped silently, so the message must still
+	// have exactly those.
+	fields := (&pb.IngestResponse{}).ProtoReflect().Descriptor().Fields()
+	if fields.Len() != 11 {
+		t.Fatalf("IngestResponse has %d fields; appendPlainVerdict knows 11: teach it the new ones", fields.Len())
+	}
+	for n := 1; n <= 11; n++ {
+		if fields.ByNumber(protoreflect.FieldNumber(n)) == nil {
+			t.Fatalf("IngestResponse has no field %d; appendPlainVerdict writes fields 1 to 11", n)
+		}
+	}
 	cases := []*pb.IngestResponse{
 		{},
 		{ClientSequence: 1, Sequence: 1, Verdict: pb.Verdict_VERDICT_APPLIED},

@@ -271,8 +271,9 @@ type conformanceCase struct {
 	m Measurement
 }
 
-// conformanceCases returns every kind on 4 and 7 states, and with bias
-// states and robust models on 12.
+// conformanceCases returns every kind on 4 and 7 states, with bias
+// states and robust models on 12, and every sensor's kind with mount error
+// states (4 to 6) on 7.
 func conformanceCases(rng *rand.Rand) []conformanceCase {
 	var out []conformanceCase
 	for _, n := range []int{4, 7, 12} {
@@ -281,6 +282,12 @@ func conformanceCases(rng *rand.Rand) []conformanceCase {
 				m = biased(m)
 			}
 			out = append(out, conformanceCase{n, m})
+		}
+	}
+	for _, m := range measurementCases(rng) {
+		if m.Kind != KindIMUHeading {
+			m.MountError = 4
+			out = append(out, conformanceCase{7, m})
 		}
 	}
 	return out
@@ -294,7 +301,11 @@ func TestMeasurementConformance(t *testing.T) {
 	rng := rand.New(rand.NewPCG(6, 6))
 	for _, c := range conformanceCases(rng) {
 		m, n := c.m, c.n
-		t.Run(fmt.Sprintf("%s/%d", m.Kind, n), func(t *testing.T) {
+		name := fmt.Sprintf("%s/%d", m.Kind, n)
+		if m.MountError > 0 {
+			name += "/mount-error"
+		}
+		t.Run(name, func(t *testing.T) {
 			for trial := 0; trial < 10; trial++ {
 				f := randomFilter(t, rng, n)
 				st := f.State()

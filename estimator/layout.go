@@ -24,11 +24,18 @@ const maxBlocks = MaxStates - 4
 // measurement), which decay over dt seconds by phi = exp(-dt/TauS) and gain
 // the variance (1 - phi^2) Cov, so that Cov is their stationary covariance
 // (DEVELOPERS.md, "Design: Sensors").
+//
+// A mount block (Mount set) is instead the error of a sensor's configured
+// mount: three states (x, y and heading of the mount, metres and radians)
+// that stay constant (TauS is ignored), with prior covariance Cov; a
+// measurement names it in Measurement.MountError.
 type BiasSpec struct {
-	// Dim is the block's size, 1 to 3.
+	// Dim is the block's size, 1 to 3 (3 for a mount block).
 	Dim int
 	// TauS is the correlation time in seconds (> 0).
 	TauS float64
+	// Mount makes the block a mount block.
+	Mount bool
 	// Cov is the stationary covariance, Dim x Dim row-major with stride 3,
 	// in the units of the measurement's components (m^2, rad^2).
 	Cov [9]float64
@@ -93,7 +100,12 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 		if b.Dim < 1 || b.Dim > 3 {
 			return Layout{}, fmt.Errorf("%w: bias block %d of size %d", ErrShape, k, b.Dim)
 		}
-		if !(b.TauS > 0) || math.IsInf(b.TauS, 0) {
+		if b.Mount {
+			if b.Dim != 3 {
+				return Layout{}, fmt.Errorf("%w: mount block %d of size %d, not 3", ErrShape, k, b.Dim)
+			}
+			b.TauS = math.Inf(1) // constant: exp(-dt/tau) = 1, no noise added
+		} else if !(b.TauS > 0) || math.IsInf(b.TauS, 0) {
 			return Layout{}, fmt.Errorf("bias block %d: correlation time %v s must be positive and finite", k, b.TauS)
 		}
 		c := make([]float64, b.Dim*b.Dim)

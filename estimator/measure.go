@@ -97,6 +97,11 @@ type Measurement struct {
 	// Bias holds, for each component, the index of the state holding its
 	// bias (a sensor's Gauss-Markov error, added to h(x)), or 0 for none.
 	Bias [3]int
+	// MountError is the index of the first of three states holding the
+	// error of Mount (x, y, heading; a mount block of the layout), or 0
+	// for none: the measurement is taken from the mount Mount plus those
+	// states.
+	MountError int
 	// Robust is the robust weighting of the update (the zero value: none).
 	Robust Robust
 	// Hold marks states (bit i for state i) that this update leaves where
@@ -117,7 +122,14 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 	*H = [3 * MaxStates]float64{}
 	th := x[2]
 	st, ct := math.Sincos(th)
-	mx, my := m.Mount.X, m.Mount.Y
+	mx, my, mth := m.Mount.X, m.Mount.Y, m.Mount.Heading
+	me := m.MountError
+	if me > 0 {
+		if me+3 > n || m.Kind == KindIMUHeading {
+			panic(fmt.Errorf("%w: mount error states at %d of a %d-state filter", ErrShape, me, n))
+		}
+		mx, my, mth = mx+x[me], my+x[me+1], mth+x[me+2]
+	}
 	// Derivative of the mounted point p + R(th) m_xy with respect to th.
 	dsx := -st*mx - ct*my
 	dsy := ct*mx - st*my
@@ -127,13 +139,24 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 		z[1] = x[1] + st*mx + ct*my
 		H[0*stride+0], H[0*stride+2] = 1, dsx
 		H[1*stride+1], H[1*stride+2] = 1, dsy
+		if me > 0 {
+			// The mounted point moves by R(th) (dmx, dmy).
+			H[0*stride+me], H[0*stride+me+1] = ct, -st
+			H[1*stride+me], H[1*stride+me+1] = st, ct
+		}
 		if m.Kind == KindPose {
-			z[2] = Wrap(th + m.Mount.Heading)
+			z[2] = Wrap(th + mth)
 			H[2*stride+2] = 1
+			if me > 0 {
+				H[2*stride+me+2] = 1
+			}
 		}
 	case KindHeading:
-		z[0] = Wrap(th + m.Mount.Heading)
+		z[0] = Wrap(th + mth)
 		H[2] = 1
+		if me > 0 {
+			H[me+2] = 1
+		}
 	case KindRangeBearing, KindRange, KindBearing:
 		dx := m.LandmarkX - (x[0] + ct*mx - st*my)
 		dy := m.LandmarkY - (x[1] + st*mx + ct*my)
@@ -146,13 +169,22 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 		if m.Kind != KindBearing {
 			z[0] = r
 			H[0], H[1], H[2] = -dx/r, -dy/r, -(dx*dsx+dy*dsy)/r
+			if me > 0 {
+				// The sensor moves by R(th) (dmx, dmy).
+				H[me], H[me+1] = -(dx*ct+dy*st)/r, (dx*st-dy*ct)/r
+			}
 			row = 1
 		}
 		if m.Kind != KindRange {
-			z[row] = Wrap(math.Atan2(dy, dx) - th - m.Mount.Heading)
+			z[row] = Wrap(math.Atan2(dy, dx) - th - mth)
 			H[row*stride+0] = dy / r2
 			H[row*stride+1] = -dx / r2
 			H[row*stride+2] = (dy*dsx-dx*dsy)/r2 - 1
+			if me > 0 {
+				H[row*stride+me] = (dy*ct - dx*st) / r2
+				H[row*stride+me+1] = -(dy*st + dx*ct) / r2
+				H[row*stride+me+2] = -1
+			}
 		}
 	case KindIMUHeading:
 		if n < 4 {

@@ -41,7 +41,7 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 	if !ok {
 		return m, -1, &FieldError{Path: "sensor_id", Err: fmt.Errorf("%w: sensor_id %q is not among the robot's configured sensors", ErrUnknownSensor, f.SensorID)}
 	}
-	if err := r.cfg.Sensors[si].sensorFix(f, r.sensorBias[si], &m); err != nil {
+	if err := r.cfg.Sensors[si].sensorFix(f, r.sensorBias[si], r.sensorMount[si], &m); err != nil {
 		return m, si, err
 	}
 	return m, si, nil

@@ -22,6 +22,12 @@ func allOptions(cfg fusion.Config) fusion.Config {
 	cam := &cfg.Sensors[0]
 	cam.CorrelationTimeS, cam.CorrelatedFraction, cam.Robust = 1.5, 0.5, fusion.RobustStudentT
 	cfg.Noise.StepForwardVarM2PerS, cfg.Noise.StepLeftVarM2PerS, cfg.Noise.StepTurnVarRad2PerS = 1e-6, 1e-6, 1e-6
+	// The mount's error states too, where the state has room for them
+	// (a pose camera's bias block and an IMU offset leave none).
+	cam.MountStd = [3]float64{0.01, 0.01, 0.01}
+	if cfg.Validate() != nil {
+		cam.MountStd = [3]float64{}
+	}
 	return cfg
 }
 

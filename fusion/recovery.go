@@ -104,7 +104,8 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 // bias (DEVELOPERS.md, "Design: Sensors") leaves h(x) and its mean leaves
 // z, and its covariance (the bias block of P, the stationary C of a
 // consider state) joins the white R, since a candidate's error is the sum
-// of both. Without bias states m is unchanged.
+// of both; a sensor's mount block joins R through its Jacobian the same
+// way. Without bias or mount states m is unchanged.
 func (r *Robot) foldBias(m *estimator.Measurement) {
 	d := m.Kind.Dim()
 	st := r.f.State()
@@ -124,6 +125,29 @@ func (r *Robot) foldBias(m *estimator.Measurement) {
 		}
 	}
 	m.Bias = [3]int{}
+	if me := m.MountError; me > 0 {
+		// The mount's error (consider states, mean 0) joins R through
+		// its Jacobian: R += H_m P_mm H_m^T.
+		x := make([]float64, r.n)
+		for i := range x {
+			x[i] = st.MeanAt(i)
+		}
+		if _, h, err := m.Predicted(x); err == nil {
+			n := r.n
+			for i := 0; i < d; i++ {
+				for j := 0; j < d; j++ {
+					var v float64
+					for a := range 3 {
+						for b := range 3 {
+							v += h[i*n+me+a] * st.At(me+a, me+b) * h[j*n+me+b]
+						}
+					}
+					m.R[i*3+j] += v
+				}
+			}
+		}
+		m.MountError = 0
+	}
 }
 
 // addCandidate carries the candidates and c to the newest stamp among them

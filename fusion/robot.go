@@ -19,6 +19,8 @@ type Robot struct {
 	// sensorBias holds each sensor's first bias state (0: none).
 	sensorIndex map[string]int
 	sensorBias  []int
+	// sensorMount holds each sensor's first mount error state (0: none).
+	sensorMount []int
 
 	f       *estimator.Filter
 	scratch *estimator.Filter
@@ -76,7 +78,7 @@ func New(cfg Config) (*Robot, error) {
 		r.sensorIndex[s.ID] = i
 	}
 	spec, first := cfg.layoutSpec()
-	r.sensorBias = first
+	r.sensorBias, r.sensorMount = first, cfg.mountStates()
 	var err error
 	if r.layout, err = estimator.NewLayout(spec); err != nil {
 		return nil, cfgErr("sensors", "%v", err)

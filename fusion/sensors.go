@@ -72,6 +72,29 @@ type Sensor struct {
 	// RobustParameter is Huber's k in standard deviations (1.345) or the
 	// Student-t degrees of freedom (4).
 	RobustParameter float64
+	// MountStd is the standard deviation of Mount's error (x and y in
+	// metres, heading in radians); when any is positive the state carries
+	// the error as a mount block of three consider states (DEVELOPERS.md,
+	// "Design: Sensors"). All zero: the mount is exact.
+	MountStd [3]float64
+}
+
+// mountStdFloor is the least standard deviation a mount block gives a
+// component configured as 0 (1 um or 1 urad), which keeps its prior
+// covariance positive definite.
+const mountStdFloor = 1e-6
+
+// mountSpec returns the sensor's mount block, and false when it has none.
+func (s *Sensor) mountSpec() (estimator.BiasSpec, bool) {
+	if s.MountStd == [3]float64{} {
+		return estimator.BiasSpec{}, false
+	}
+	b := estimator.BiasSpec{Dim: 3, Mount: true}
+	for i, v := range s.MountStd {
+		v = math.Max(v, mountStdFloor)
+		b.Cov[i*3+i] = v * v
+	}
+	return b, true
 }
 
 // Calibration makes odometry calibrate itself online: scale states for
@@ -191,6 +214,9 @@ func (c *Config) checkSensors() error {
 		if !finiteAll(s.Mount.X, s.Mount.Y, s.Mount.Heading) {
 			return cfgErr(f+".mount", "must be finite")
 		}
+		if m := s.MountStd; !finiteAll(m[:]...) || m[0] < 0 || m[1] < 0 || m[2] < 0 || m[0] > 10 || m[1] > 10 || m[2] > math.Pi {
+			return cfgErr(f+".mount_std", "%v must be finite, not negative, at most 10 m and pi rad", m)
+		}
 		if s.Cov != nil {
 			if err := estimator.CheckCovariance(s.Cov, d); err != nil {
 				return cfgErr(f+".covariance", "%s sensor (%dx%d): %v", s.Kind, d, d, err)
@@ -283,7 +309,40 @@ func (c *Config) layoutSpec() (estimator.LayoutSpec, []int) {
 			at += b.Dim
 		}
 	}
+	// The mount blocks follow the bias blocks, so that a configuration
+	// without mount errors keeps its layout.
+	for i := range c.Sensors {
+		if b, ok := c.Sensors[i].mountSpec(); ok {
+			spec.Biases = append(spec.Biases, b)
+			at += b.Dim
+		}
+	}
 	return spec, first
+}
+
+// mountStates returns, for each sensor, the index of its mount block's
+// first state (0: none), in the layout of layoutSpec.
+func (c *Config) mountStates() []int {
+	spec, _ := c.layoutSpec()
+	at := 3
+	for _, b := range []bool{spec.IMUOffset, spec.OdometryScale, spec.OdometryScale, spec.RateBias} {
+		if b {
+			at++
+		}
+	}
+	for _, b := range spec.Biases {
+		if !b.Mount {
+			at += b.Dim
+		}
+	}
+	out := make([]int, len(c.Sensors))
+	for i := range c.Sensors {
+		if _, ok := c.Sensors[i].mountSpec(); ok {
+			out[i] = at
+			at += 3
+		}
+	}
+	return out
 }
 
 // checkState checks that the layout fits in the filter.
@@ -328,15 +387,16 @@ func (c *Config) biasSpecs() []estimator.BiasSpec {
 }
 
 // sensorFix fills the sensor-dependent parts of m for fix f from sensor s
-// with bias block at first (0: none): mount, covariance (the white part),
-// bias states and robust model.
-func (s *Sensor) sensorFix(f *Fix, first int, m *estimator.Measurement) error {
+// with bias block at first and mount block at mount (0: none): mount and
+// its error states, covariance (the white part), bias states and robust
+// model.
+func (s *Sensor) sensorFix(f *Fix, first, mount int, m *estimator.Measurement) error {
 	if f.Kind != s.Kind {
 		return FieldErrorf(ErrBadSample, "sensor_id", "sensor %q gives %s fixes, not %s", s.ID, s.Kind, f.Kind)
 	}
-	m.Mount = s.Mount
+	m.Mount, m.MountError = s.Mount, mount
 	if f.Mount != nil {
-		m.Mount = *f.Mount
+		m.Mount, m.MountError = *f.Mount, 0
 	}
 	if !finiteAll(m.Mount.X, m.Mount.Y, m.Mount.Heading) {
 		return badf("mount %+v is not finite", m.Mount)

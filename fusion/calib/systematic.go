@@ -126,6 +126,11 @@ type SystematicFit struct {
 	// standard errors from 1, which the configuration has no field for
 	// (FitSystematic).
 	ScaleStates []string
+	// MountStd lists the sensors whose mount standard errors Config
+	// carries (sensors[i].mount_std); MountStdNote says why none are
+	// written when the state has no room for them.
+	MountStd     []int
+	MountStdNote string
 }
 
 // Param returns the fit's parameter of the kind and index, and whether it

@@ -125,6 +125,9 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 			d := int(math.Round(math.Sqrt(float64(len(s.Cov)))))
 			ps.Covariance = &pb.Covariance{Dimension: uint32(d), Values: append([]float64(nil), s.Cov...)}
 		}
+		if m := s.MountStd; m != [3]float64{} {
+			ps.MountStd = &pb.MountStd{XM: m[0], YM: m[1], HeadingRad: m[2]}
+		}
 		c.Sensors = append(c.Sensors, ps)
 	}
 	k := cfg.Calibration
@@ -139,7 +142,8 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 // sensorFromProto converts one wire sensor; field is its path.
 func sensorFromProto(s *pb.FixSensor, field string) (fusion.Sensor, error) {
 	out := fusion.Sensor{ID: s.GetId(), Mount: poseFromProto(s.GetMount()), LatencyNs: s.GetLatencyNs(),
-		CorrelationTimeS: s.GetCorrelationTimeS(), CorrelatedFraction: s.GetCorrelatedFraction(), RobustParameter: s.GetRobustParameter()}
+		CorrelationTimeS: s.GetCorrelationTimeS(), CorrelatedFraction: s.GetCorrelatedFraction(), RobustParameter: s.GetRobustParameter(),
+		MountStd: [3]float64{s.GetMountStd().GetXM(), s.GetMountStd().GetYM(), s.GetMountStd().GetHeadingRad()}}
 	k, ok := fusion.ValueOfProto(fixKindLabels, int32(s.GetKind()))
 	if !ok {
 		return out, fusion.FieldErrorf(fusion.ErrConfig, field+".kind", "%d is not pose, position, heading or landmark", s.GetKind())

@@ -72,6 +72,7 @@ func TestConfigYAMLErrors(t *testing.T) {
 		{"out of range", wheels + "noise:\n  wheel_var_m2_per_m: -1\n", 6, "noise.wheel_var_m2_per_m", "invalid configuration: noise.wheel_var_m2_per_m"},
 		{"out of range in a list", "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12, counter_bits: 3}\n  - {x_m: -0.08, direction_rad: 1.57}\n", 3, "wheels[1].counter_bits", "invalid configuration: wheels[1].counter_bits"},
 		{"bad covariance", wheels + "start_covariance:\n  dimension: 3\n  values: [1, 0, 0, 0, -1, 0, 0, 0, 1]\n", 5, "start_covariance", "start_covariance"},
+		{"negative mount_std", wheels + "sensors:\n  - id: camera\n    kind: landmark\n    covariance: {dimension: 2, values: [1e-4, 0, 0, 1e-4]}\n    mount_std: {x_m: -0.01}\n", 9, "sensors[0].mount_std", "invalid configuration: sensors[0].mount_std"},
 		{"not a mapping", "- 1\n- 2\n", 1, "", "must be a mapping"},
 		{"broken yaml", "wheels: [\n", 0, "", "robot configuration file"},
 		{"field given twice", "no_side_slip: true\nno_side_slip: false\n", 2, "no_side_slip", "given twice (first on line 1)"},
@@ -101,6 +102,24 @@ func TestConfigYAMLValues(t *testing.T) {
 	}
 	if c.GetWheels()[1].GetYM() != -0.12 || c.GetMaxSpeedMPerS() != 3 || c.GetWheels()[2].GetCounterBits() != 16 || c.GetImuMode() != pb.ImuMode_IMU_MODE_ABSOLUTE {
 		t.Errorf("decoded %v", c)
+	}
+}
+
+// TestConfigYAMLMountStd: a sensor's mount_std reaches fusion's Sensor
+// and comes back from ConfigToProto.
+func TestConfigYAMLMountStd(t *testing.T) {
+	const y = "sensors:\n  - id: camera\n    kind: landmark\n    covariance: {dimension: 2, values: [1e-4, 0, 0, 1e-4]}\n    mount_std: {x_m: 0.006, y_m: 0.008, heading_rad: 0.003}\n"
+	_, cfg, err := LoadConfigYAML([]byte(y))
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := [3]float64{0.006, 0.008, 0.003}
+	if got := cfg.Sensors[0].MountStd; got != want {
+		t.Errorf("MountStd %v, want %v", got, want)
+	}
+	back, err := ConfigFromProto(ConfigToProto(cfg))
+	if err != nil || back.Sensors[0].MountStd != want {
+		t.Errorf("round trip: %v, %v", back.Sensors, err)
 	}
 }
 

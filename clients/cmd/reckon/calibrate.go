@@ -128,6 +128,9 @@ into one HTML report with a calibration section at the top.`)
 				i, sen.ID, 100*sen.CorrelatedFraction, sen.CorrelationTimeS)
 		}
 	}
+	if fit.MountStdNote != "" {
+		fmt.Fprintln(stdout, fit.MountStdNote)
+	}
 	tw := tabwriter.NewWriter(stdout, 0, 0, 2, ' ', 0)
 	fmt.Fprintln(tw, strings.Join(cols, "\t"))
 	for _, r := range rows {
@@ -298,6 +301,17 @@ func writeCalibratedConfig(in string, data []byte, out, run string, cfg fusion.C
 		edits = append(edits, configEdit{path: f, value: v, absent: old + " (default)",
 			comment: "from calibrate: a body step's scale lies more than three standard errors from 1; estimated online"})
 	}
+	for _, si := range fit.MountStd {
+		for _, c := range []string{"x_m", "y_m", "heading_rad"} {
+			f := fmt.Sprintf("sensors[%d].mount_std.%s", si, c)
+			v, _ := configValue(fit.Config, f)
+			if old, _ := configValue(cfg, f); v == old {
+				continue
+			}
+			edits = append(edits, configEdit{path: f, value: v, absent: "0 (default)",
+				comment: "from calibrate: the fitted mount's standard error, which the filter carries as consider states (for a number the run does not determine, also its distance to the fit)"})
+		}
+	}
 	if len(edits) == 0 {
 		return nil, fmt.Errorf("%w: the fit changes no configuration field; nothing written", errRefused)
 	}
@@ -356,6 +370,12 @@ func configValue(c fusion.Config, field string) (string, bool) {
 			return g(s.Mount.Heading), true
 		case "latency_ns":
 			return strconv.FormatInt(s.LatencyNs, 10), true
+		case "mount_std.x_m":
+			return g(s.MountStd[0]), true
+		case "mount_std.y_m":
+			return g(s.MountStd[1]), true
+		case "mount_std.heading_rad":
+			return g(s.MountStd[2]), true
 		}
 	}
 	return "", false

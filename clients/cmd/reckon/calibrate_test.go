@@ -109,6 +109,14 @@ func TestCalibrateWorkedExample(t *testing.T) {
 	if err != nil {
 		t.Fatalf("the calibrated configuration: %v\n%s", err, data)
 	}
+	// The mount's standard errors go into mount_std, which the filter
+	// carries as consider states (DEVELOPERS.md, "Design: Sensors").
+	for i, name := range []string{"mount.x_m", "mount.y_m", "mount.heading_rad"} {
+		_, se, _ := paramRow(t, out, "sensors[0] (camera) "+name)
+		if got := cal.Sensors[0].MountStd[i]; math.Abs(got-se) > 0.5e-4 || got <= 0 {
+			t.Errorf("sensors[0].mount_std[%d] %g, want the printed standard error %.4f", i, got, se)
+		}
+	}
 	// The right wheel's scale of 1.03 within three standard errors moves
 	// 41200 counts per metre to within 0.3% of the true 40000.
 	if c := cal.Wheels[1].CountsPerM; math.Abs(c/40000-1) > 0.003 {

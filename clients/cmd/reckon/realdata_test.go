@@ -113,10 +113,16 @@ const (
 // fraction of truth inside the position's 95% region, whose boundary is
 // the chi-square quantile of 2 degrees of freedom, gonum distuv). The
 // naive configuration misses the coverage goal (0.04 of the truth inside
-// its 95% region on this run); the tuned one meets both RMS goals (0.044
-// m filtered, 0.021 m smoothed) and the coverage goal: 0.941 filtered and
-// 0.930 smoothed inside, where fusiontest's TrueModelConfig (the
-// simulator's own processes) gives 0.94 and 0.93. Before the variances the
+// its 95% region on this run); the tuned one meets both RMS goals (0.045
+// m filtered, 0.024 m smoothed) and the coverage goal: 0.934 filtered and
+// 0.936 smoothed inside, where fusiontest's TrueModelConfig (the
+// simulator's own processes) gives 0.94 and 0.93. Calibrate writes the
+// mount's standard errors (mount_std), which the filter carries as
+// consider states, and tune matches a correlated Student-t camera's
+// covariance to a median that counts only its white part as heavy-tailed;
+// without the second the run gave 0.899 and 0.903, below the goal, and
+// without both 0.941 and 0.930 ("Design: Noise by likelihood", session 8).
+// Before the variances the
 // run does not determine were set to the upper ends of their likelihood
 // intervals and the body-step levels fitted on the thinned run, it gave
 // 0.886 and 0.872: the body steps' sideways noise, which the run does not
@@ -134,7 +140,12 @@ func TestRealDataGoal(t *testing.T) {
 	}
 	// The longer check: n runs whose scale biases, camera time constant
 	// and tails are drawn over the goal's ranges (variedScenario); each
-	// must reach the goal's RMS and 0.65 of the truth inside (seeds 1 to 3
+	// must reach the goal's RMS and 0.65 of the truth inside. With the
+	// mount's standard errors carried (session 8) seeds 1 to 8 gave 0.972
+	// / 0.982, 0.924 / 0.923, 0.982 / 0.992, 0.991 / 0.992, 0.992 / 0.997, 0.997 /
+	// 0.991, 0.882 / 0.873 (the mount's x 2.5 standard errors off) and
+	// 0.964 / 0.955; calibrate and tune again took seed 7 to 0.902 / 0.903.
+	// Before (seeds 1 to 3
 	// measured 0.914 / 0.920, 0.698 / 0.670 and 0.933 / 0.955; before the
 	// upper ends and the thinned step fit 0.774 / 0.781, 0.338 / 0.297 and
 	// 0.761 / 0.768). Seed 2 misses the goal: calibrate put the camera's
@@ -149,7 +160,9 @@ func TestRealDataGoal(t *testing.T) {
 	// With RECKON_REALDATA_RETUNE set too, tune -model runs again on that
 	// configuration (its Student-t camera now screened for gross errors on
 	// its own distribution): seeds 1 to 3 gave 0.918 / 0.921, 0.859 /
-	// 0.855 and 0.913 / 0.917.
+	// 0.855 and 0.913 / 0.917. With the mount's standard errors carried
+	// (session 8) the two together took the default run to 0.957 / 0.945
+	// and seed 7 to 0.902 / 0.903.
 	for seed := uint64(1); seed <= uint64(n); seed++ {
 		t.Run(fmt.Sprint(seed), func(t *testing.T) { realDataGoal(t, variedScenario(seed), 0.65) })
 	}
@@ -230,7 +243,11 @@ func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 	}
 	_, tc := readConfigFile(t, tuned)
 	cam := tc.Sensors[0]
-	if !tc.Calibration.Scale || cam.CorrelatedFraction == 0 || cam.Robust != fusion.RobustStudentT || tc.Noise.StepTurnVarRad2PerS == 0 {
+	// The camera's tails are in its white part alone (5% of its
+	// variance), which a varied run need not show: Student-t is asked
+	// only of the default run.
+	tails := cam.Robust == fusion.RobustStudentT || reached < goalInside95
+	if !tc.Calibration.Scale || cam.CorrelatedFraction == 0 || !tails || tc.Noise.StepTurnVarRad2PerS == 0 {
 		t.Errorf("tuned model: scale states %v, camera correlated %g robust %v, step turn per second %g; want the scale states, a Gauss-Markov Student-t camera and step noise per second",
 			tc.Calibration.Scale, cam.CorrelatedFraction, cam.Robust, tc.Noise.StepTurnVarRad2PerS)
 	}

@@ -621,8 +621,15 @@ type FixSensor struct {
 	// Huber's k in standard deviations (default 1.345) or the Student-t
 	// degrees of freedom (default 4; more than 1).
 	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
-	unknownFields   protoimpl.UnknownFields
-	sizeCache       protoimpl.SizeCache
+	// Standard deviations of the error of mount (as reckon calibrate
+	// writes them: the fitted mount's standard errors). When set, the
+	// filter carries the mount's error as three consider states (constant,
+	// never estimated), so that the covariance allows for a mount known
+	// only this well; fixes that carry their own mount do not use them.
+	// Unset: the mount is exact.
+	MountStd      *MountStd `protobuf:"bytes,10,opt,name=mount_std,json=mountStd,proto3" json:"mount_std,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *FixSensor) Reset() {
@@ -718,6 +725,78 @@ func (x *FixSensor) GetRobustParameter() float64 {
 	return 0
 }
 
+func (x *FixSensor) GetMountStd() *MountStd {
+	if x != nil {
+		return x.MountStd
+	}
+	return nil
+}
+
+// MountStd is the standard deviation of each of a mount's three numbers;
+// each must be finite and not negative, and at least one positive.
+type MountStd struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Along the body's x, metres.
+	XM float64 `protobuf:"fixed64,1,opt,name=x_m,json=xM,proto3" json:"x_m,omitempty"`
+	// Along the body's y, metres.
+	YM float64 `protobuf:"fixed64,2,opt,name=y_m,json=yM,proto3" json:"y_m,omitempty"`
+	// Of the mount's heading, radians.
+	HeadingRad    float64 `protobuf:"fixed64,3,opt,name=heading_rad,json=headingRad,proto3" json:"heading_rad,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *MountStd) Reset() {
+	*x = MountStd{}
+	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *MountStd) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*MountStd) ProtoMessage() {}
+
+func (x *MountStd) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use MountStd.ProtoReflect.Descriptor instead.
+func (*MountStd) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{3}
+}
+
+func (x *MountStd) GetXM() float64 {
+	if x != nil {
+		return x.XM
+	}
+	return 0
+}
+
+func (x *MountStd) GetYM() float64 {
+	if x != nil {
+		return x.YM
+	}
+	return 0
+}
+
+func (x *MountStd) GetHeadingRad() float64 {
+	if x != nil {
+		return x.HeadingRad
+	}
+	return 0
+}
+
 // OdometryCalibration adds states that calibrate the odometry online:
 // forward and turn scales and a heading-rate bias, random constants or
 // slow random walks.
@@ -746,7 +825,7 @@ type OdometryCalibration struct {
 
 func (x *OdometryCalibration) Reset() {
 	*x = OdometryCalibration{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	mi := &file_reckon_v1_robot_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -758,7 +837,7 @@ func (x *OdometryCalibration) String() string {
 func (*OdometryCalibration) ProtoMessage() {}
 
 func (x *OdometryCalibration) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[3]
+	mi := &file_reckon_v1_robot_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -771,7 +850,7 @@ func (x *OdometryCalibration) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use OdometryCalibration.ProtoReflect.Descriptor instead.
 func (*OdometryCalibration) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{3}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *OdometryCalibration) GetScale() bool {
@@ -844,7 +923,7 @@ type EncoderWheel struct {
 
 func (x *EncoderWheel) Reset() {
 	*x = EncoderWheel{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[4]
+	mi := &file_reckon_v1_robot_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -856,7 +935,7 @@ func (x *EncoderWheel) String() string {
 func (*EncoderWheel) ProtoMessage() {}
 
 func (x *EncoderWheel) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[4]
+	mi := &file_reckon_v1_robot_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -869,7 +948,7 @@ func (x *EncoderWheel) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EncoderWheel.ProtoReflect.Descriptor instead.
 func (*EncoderWheel) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *EncoderWheel) GetName() string {
@@ -951,7 +1030,7 @@ type NoiseModel struct {
 
 func (x *NoiseModel) Reset() {
 	*x = NoiseModel{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[5]
+	mi := &file_reckon_v1_robot_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -963,7 +1042,7 @@ func (x *NoiseModel) String() string {
 func (*NoiseModel) ProtoMessage() {}
 
 func (x *NoiseModel) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[5]
+	mi := &file_reckon_v1_robot_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -976,7 +1055,7 @@ func (x *NoiseModel) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use NoiseModel.ProtoReflect.Descriptor instead.
 func (*NoiseModel) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *NoiseModel) GetWheelVarM2PerM() float64 {
@@ -1086,7 +1165,7 @@ type MoveRecovery struct {
 
 func (x *MoveRecovery) Reset() {
 	*x = MoveRecovery{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[6]
+	mi := &file_reckon_v1_robot_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1098,7 +1177,7 @@ func (x *MoveRecovery) String() string {
 func (*MoveRecovery) ProtoMessage() {}
 
 func (x *MoveRecovery) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[6]
+	mi := &file_reckon_v1_robot_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1111,7 +1190,7 @@ func (x *MoveRecovery) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use MoveRecovery.ProtoReflect.Descriptor instead.
 func (*MoveRecovery) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{6}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *MoveRecovery) GetEnabled() bool {
@@ -1158,7 +1237,7 @@ type TrustLimits struct {
 
 func (x *TrustLimits) Reset() {
 	*x = TrustLimits{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[7]
+	mi := &file_reckon_v1_robot_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1170,7 +1249,7 @@ func (x *TrustLimits) String() string {
 func (*TrustLimits) ProtoMessage() {}
 
 func (x *TrustLimits) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[7]
+	mi := &file_reckon_v1_robot_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1183,7 +1262,7 @@ func (x *TrustLimits) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use TrustLimits.ProtoReflect.Descriptor instead.
 func (*TrustLimits) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{7}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *TrustLimits) GetMaxPosition95M() float64 {
@@ -1237,7 +1316,7 @@ type FloorPose struct {
 
 func (x *FloorPose) Reset() {
 	*x = FloorPose{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[8]
+	mi := &file_reckon_v1_robot_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1249,7 +1328,7 @@ func (x *FloorPose) String() string {
 func (*FloorPose) ProtoMessage() {}
 
 func (x *FloorPose) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[8]
+	mi := &file_reckon_v1_robot_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1262,7 +1341,7 @@ func (x *FloorPose) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use FloorPose.ProtoReflect.Descriptor instead.
 func (*FloorPose) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{8}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *FloorPose) GetXM() float64 {
@@ -1300,7 +1379,7 @@ type Covariance struct {
 
 func (x *Covariance) Reset() {
 	*x = Covariance{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[9]
+	mi := &file_reckon_v1_robot_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1312,7 +1391,7 @@ func (x *Covariance) String() string {
 func (*Covariance) ProtoMessage() {}
 
 func (x *Covariance) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[9]
+	mi := &file_reckon_v1_robot_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1325,7 +1404,7 @@ func (x *Covariance) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Covariance.ProtoReflect.Descriptor instead.
 func (*Covariance) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{9}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Covariance) GetDimension() uint32 {
@@ -1357,7 +1436,7 @@ type Landmark struct {
 
 func (x *Landmark) Reset() {
 	*x = Landmark{}
-	mi := &file_reckon_v1_robot_proto_msgTypes[10]
+	mi := &file_reckon_v1_robot_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1369,7 +1448,7 @@ func (x *Landmark) String() string {
 func (*Landmark) ProtoMessage() {}
 
 func (x *Landmark) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_robot_proto_msgTypes[10]
+	mi := &file_reckon_v1_robot_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1382,7 +1461,7 @@ func (x *Landmark) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Landmark.ProtoReflect.Descriptor instead.
 func (*Landmark) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{10}
+	return file_reckon_v1_robot_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *Landmark) GetId() string {
@@ -1443,7 +1522,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x10start_covariance\x18\x10 \x01(\v2\x15.reckon.v1.CovarianceR\x0fstartCovariance\x121\n" +
 	"\tlandmarks\x18\x11 \x03(\v2\x13.reckon.v1.LandmarkR\tlandmarks\x12.\n" +
 	"\asensors\x18\x12 \x03(\v2\x14.reckon.v1.FixSensorR\asensors\x12@\n" +
-	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\"\xfe\x02\n" +
+	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\"\xb0\x03\n" +
 	"\tFixSensor\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12&\n" +
 	"\x04kind\x18\x02 \x01(\x0e2\x12.reckon.v1.FixKindR\x04kind\x12*\n" +
@@ -1456,7 +1535,14 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x12correlation_time_s\x18\x06 \x01(\x01R\x10correlationTimeS\x12/\n" +
 	"\x13correlated_fraction\x18\a \x01(\x01R\x12correlatedFraction\x12-\n" +
 	"\x06robust\x18\b \x01(\x0e2\x15.reckon.v1.RobustLossR\x06robust\x12)\n" +
-	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\"\xbd\x02\n" +
+	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\x120\n" +
+	"\tmount_std\x18\n" +
+	" \x01(\v2\x13.reckon.v1.MountStdR\bmountStd\"M\n" +
+	"\bMountStd\x12\x0f\n" +
+	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
+	"\x03y_m\x18\x02 \x01(\x01R\x02yM\x12\x1f\n" +
+	"\vheading_rad\x18\x03 \x01(\x01R\n" +
+	"headingRad\"\xbd\x02\n" +
 	"\x13OdometryCalibration\x12\x14\n" +
 	"\x05scale\x18\x01 \x01(\bR\x05scale\x12\x1b\n" +
 	"\tscale_std\x18\x02 \x01(\x01R\bscaleStd\x124\n" +
@@ -1550,7 +1636,7 @@ func file_reckon_v1_robot_proto_rawDescGZIP() []byte {
 }
 
 var file_reckon_v1_robot_proto_enumTypes = make([]protoimpl.EnumInfo, 4)
-var file_reckon_v1_robot_proto_msgTypes = make([]protoimpl.MessageInfo, 11)
+var file_reckon_v1_robot_proto_msgTypes = make([]protoimpl.MessageInfo, 12)
 var file_reckon_v1_robot_proto_goTypes = []any{
 	(RobotState)(0),             // 0: reckon.v1.RobotState
 	(FixKind)(0),                // 1: reckon.v1.FixKind
@@ -1559,37 +1645,39 @@ var file_reckon_v1_robot_proto_goTypes = []any{
 	(*Robot)(nil),               // 4: reckon.v1.Robot
 	(*RobotConfig)(nil),         // 5: reckon.v1.RobotConfig
 	(*FixSensor)(nil),           // 6: reckon.v1.FixSensor
-	(*OdometryCalibration)(nil), // 7: reckon.v1.OdometryCalibration
-	(*EncoderWheel)(nil),        // 8: reckon.v1.EncoderWheel
-	(*NoiseModel)(nil),          // 9: reckon.v1.NoiseModel
-	(*MoveRecovery)(nil),        // 10: reckon.v1.MoveRecovery
-	(*TrustLimits)(nil),         // 11: reckon.v1.TrustLimits
-	(*FloorPose)(nil),           // 12: reckon.v1.FloorPose
-	(*Covariance)(nil),          // 13: reckon.v1.Covariance
-	(*Landmark)(nil),            // 14: reckon.v1.Landmark
+	(*MountStd)(nil),            // 7: reckon.v1.MountStd
+	(*OdometryCalibration)(nil), // 8: reckon.v1.OdometryCalibration
+	(*EncoderWheel)(nil),        // 9: reckon.v1.EncoderWheel
+	(*NoiseModel)(nil),          // 10: reckon.v1.NoiseModel
+	(*MoveRecovery)(nil),        // 11: reckon.v1.MoveRecovery
+	(*TrustLimits)(nil),         // 12: reckon.v1.TrustLimits
+	(*FloorPose)(nil),           // 13: reckon.v1.FloorPose
+	(*Covariance)(nil),          // 14: reckon.v1.Covariance
+	(*Landmark)(nil),            // 15: reckon.v1.Landmark
 }
 var file_reckon_v1_robot_proto_depIdxs = []int32{
 	5,  // 0: reckon.v1.Robot.config:type_name -> reckon.v1.RobotConfig
 	0,  // 1: reckon.v1.Robot.state:type_name -> reckon.v1.RobotState
-	8,  // 2: reckon.v1.RobotConfig.wheels:type_name -> reckon.v1.EncoderWheel
+	9,  // 2: reckon.v1.RobotConfig.wheels:type_name -> reckon.v1.EncoderWheel
 	3,  // 3: reckon.v1.RobotConfig.imu_mode:type_name -> reckon.v1.ImuMode
-	9,  // 4: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
-	10, // 5: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
-	11, // 6: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
-	12, // 7: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
-	13, // 8: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
-	14, // 9: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
+	10, // 4: reckon.v1.RobotConfig.noise:type_name -> reckon.v1.NoiseModel
+	11, // 5: reckon.v1.RobotConfig.recovery:type_name -> reckon.v1.MoveRecovery
+	12, // 6: reckon.v1.RobotConfig.trust:type_name -> reckon.v1.TrustLimits
+	13, // 7: reckon.v1.RobotConfig.start_pose:type_name -> reckon.v1.FloorPose
+	14, // 8: reckon.v1.RobotConfig.start_covariance:type_name -> reckon.v1.Covariance
+	15, // 9: reckon.v1.RobotConfig.landmarks:type_name -> reckon.v1.Landmark
 	6,  // 10: reckon.v1.RobotConfig.sensors:type_name -> reckon.v1.FixSensor
-	7,  // 11: reckon.v1.RobotConfig.calibration:type_name -> reckon.v1.OdometryCalibration
+	8,  // 11: reckon.v1.RobotConfig.calibration:type_name -> reckon.v1.OdometryCalibration
 	1,  // 12: reckon.v1.FixSensor.kind:type_name -> reckon.v1.FixKind
-	12, // 13: reckon.v1.FixSensor.mount:type_name -> reckon.v1.FloorPose
-	13, // 14: reckon.v1.FixSensor.covariance:type_name -> reckon.v1.Covariance
+	13, // 13: reckon.v1.FixSensor.mount:type_name -> reckon.v1.FloorPose
+	14, // 14: reckon.v1.FixSensor.covariance:type_name -> reckon.v1.Covariance
 	2,  // 15: reckon.v1.FixSensor.robust:type_name -> reckon.v1.RobustLoss
-	16, // [16:16] is the sub-list for method output_type
-	16, // [16:16] is the sub-list for method input_type
-	16, // [16:16] is the sub-list for extension type_name
-	16, // [16:16] is the sub-list for extension extendee
-	0,  // [0:16] is the sub-list for field type_name
+	7,  // 16: reckon.v1.FixSensor.mount_std:type_name -> reckon.v1.MountStd
+	17, // [17:17] is the sub-list for method output_type
+	17, // [17:17] is the sub-list for method input_type
+	17, // [17:17] is the sub-list for extension type_name
+	17, // [17:17] is the sub-list for extension extendee
+	0,  // [0:17] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_robot_proto_init() }
@@ -1603,7 +1691,7 @@ func file_reckon_v1_robot_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_robot_proto_rawDesc), len(file_reckon_v1_robot_proto_rawDesc)),
 			NumEnums:      4,
-			NumMessages:   11,
+			NumMessages:   12,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

@@ -8,6 +8,7 @@ import (
 	"math/rand/v2"
 	"net"
 	"os"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -264,15 +265,40 @@ func TestLinkUDP(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer conn.Close()
-	link(t, c, src, func(frames [][]byte) error {
+	// UDP drops what the receive buffer cannot hold, and on a loaded
+	// machine (-race, two cores shared) the link reads slower than a
+	// loop writes: the sender keeps at most udpWindow datagrams ahead of
+	// the reader, as a sender pacing itself to the link would. The
+	// frames' own losses (lossy) are what the test is about.
+	counted := &countingSource{ReadCloser: src}
+	link(t, c, counted, func(frames [][]byte) error {
 		for i, f := range frames {
 			if _, err := conn.Write(f); err != nil {
 				return err
 			}
-			if i%10 == 9 { // do not outrun the socket buffer
-				time.Sleep(time.Millisecond)
+			for deadline := time.Now().Add(10 * time.Second); counted.n.Load() < int64(i+1-udpWindow) && time.Now().Before(deadline); {
+				time.Sleep(200 * time.Microsecond)
 			}
 		}
 		return nil
 	})
+}
+
+// udpWindow is how many datagrams TestLinkUDP's sender keeps ahead of the
+// reader: far below what a 208 KiB receive buffer (Linux's default
+// rmem) holds of them.
+const udpWindow = 32
+
+// countingSource counts the datagrams read from a UDP source.
+type countingSource struct {
+	io.ReadCloser
+	n atomic.Int64
+}
+
+func (c *countingSource) Read(p []byte) (int, error) {
+	n, err := c.ReadCloser.Read(p)
+	if err == nil {
+		c.n.Add(1)
+	}
+	return n, err
 }

@@ -240,6 +240,14 @@ func (f *Filter) Layout() *Layout { return &f.layout }
 // State returns a copy of the estimate.
 func (f *Filter) State() State { return f.st }
 
+// Position95 returns the estimate's State.Position95 without copying the
+// estimate.
+func (f *Filter) Position95() float64 { return f.st.Position95() }
+
+// Var returns the estimate's variance of state i without copying the
+// estimate.
+func (f *Filter) Var(i int) float64 { return f.st.Var(i) }
+
 // StateInto copies the estimate into dst (State.CopyFrom).
 func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
 

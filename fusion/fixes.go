@@ -76,7 +76,7 @@ func poseAngle(i int) bool { return i == 2 }
 
 // decideMeas turns the outcome of an inserted measurement into its verdict,
 // taking it back if it failed.
-func (r *Robot) decideMeas(res *Result, ins insertion, sensor string) {
+func (r *Robot) decideMeas(res *Result, ins *insertion, sensor string) {
 	e := &r.live()[ins.at]
 	res.NIS, res.Dim = e.out.NIS, e.out.Dim
 	switch {
@@ -226,5 +226,5 @@ func (r *Robot) AddFix(fx Fix) Result {
 	id := fx.SensorID
 	t := fx.StampNs - r.cfg.Sensors[si].LatencyNs
 	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
-	return r.finish(r.addMeasurement(res, e, id))
+	return r.finish(r.addMeasurement(res, &e, id))
 }

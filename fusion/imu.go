@@ -46,8 +46,10 @@ func (r *Robot) odometryHeading(res *Result, t int64, z float64) {
 	if err != nil {
 		return
 	}
-	ins := r.insert(entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())})
-	r.decideMeas(res, ins, imuSensor)
+	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
+	var ins insertion
+	r.insert(&e, &ins)
+	r.decideMeas(res, &ins, imuSensor)
 	if res.Verdict == VerdictInvalid {
 		// The heading's update failed and was taken back (a numerical
 		// fault, which trust now reports, and the IMU's statistics count);
@@ -67,7 +69,7 @@ func (r *Robot) AddHeading(h Heading) Result {
 	}
 	res := r.next()
 	e := entry{kind: entMeas, t0: h.StampNs, t1: h.StampNs, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
-	return r.finish(r.addMeasurement(res, e, imuSensor))
+	return r.finish(r.addMeasurement(res, &e, imuSensor))
 }
 
 // imuGate is the gate probability IMU headings pass (1: not gated).

@@ -90,7 +90,8 @@ func (r *Robot) PoseAt(stampNs int64) (FusedPose, error) {
 	live := r.live()
 	cp := r.before(i)
 	if i < len(live) && live[i].kind == entOdo && live[i].t0 < stampNs {
-		a, _ := splitOdo(live[i], stampNs)
+		var a entry
+		splitOdo(&live[i], stampNs, &a, nil)
 		r.scratch.SetState(&cp.est)
 		r.predict(r.scratch, &a)
 		st := r.scratch.State()

@@ -93,7 +93,7 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		reset.meas = e.meas
 	}
 	var sub Result
-	r.insertReset(reset, &sub)
+	r.insertReset(&reset, &sub)
 	r.trust.disagree = true
 	r.stats.recoveries++
 	res.Events = append(res.Events, Event{Kind: EventMoveRecovered, StampNs: newest.stamp, Value: jump,

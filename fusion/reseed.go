@@ -30,16 +30,17 @@ func (r *Robot) Reseed(stampNs int64, pose estimator.Pose, cov []float64) Result
 		res.Verdict = VerdictTooOld
 		res.Err = fmt.Errorf("%w: stamp_ns %d before the window start %d", ErrTooOld, stampNs, r.baseT)
 	case stampNs <= r.newest:
-		r.insertReset(e, &res)
+		r.insertReset(&e, &res)
 	default:
-		res = r.addMeasurement(res, e, "")
+		res = r.addMeasurement(res, &e, "")
 	}
 	return r.finish(res)
 }
 
 // insertReset inserts a reset entry and forgets what came before it.
-func (r *Robot) insertReset(e entry, res *Result) {
-	ins := r.insert(e)
+func (r *Robot) insertReset(e *entry, res *Result) {
+	var ins insertion
+	r.insert(e, &ins)
 	r.dropFront(ins.at + 1)
 	r.cands = r.cands[:0]
 	r.trust.refusedRun = 0

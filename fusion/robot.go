@@ -167,7 +167,8 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 		return refused(err)
 	}
 	res := r.next()
-	od, err := r.odometryEntry(&o)
+	var od odoResult
+	err := r.odometryEntry(&o, &od)
 	e, imu, gapNs := &od.e, od.imu, od.gapNs
 	if err != nil {
 		r.stats.count(VerdictInvalid, true)
@@ -196,7 +197,7 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 		r.start(e.t0)
 	}
 	r.slipInflate(e)
-	r.appendOdo(*e)
+	r.appendOdo(e)
 	res.Verdict = VerdictApplied
 	r.stats.count(VerdictApplied, true)
 	if imu != nil && r.cfg.IMU == IMUAbsolute {
@@ -208,6 +209,11 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 }
 
 // start begins the history at t with the configured initial estimate.
+// Not inlined: its copy of the estimate (1.3 kB) would sit in the frames
+// of the per-sample paths that call it once (AddOdometry, interval), and
+// push what they call further down the stack (BenchmarkRobotRates).
+//
+//go:noinline
 func (r *Robot) start(t int64) {
 	r.started = true
 	r.baseT, r.newest = t, t

@@ -536,8 +536,10 @@ func decWindow(d *wdec, w *nisWindow) {
 		}
 	}
 	w.dims = make([]int, len(dims))
+	w.dof = 0
 	for i, v := range dims {
 		w.dims[i] = int(v)
+		w.dof += int(v)
 	}
 	if len(w.nis) == 0 {
 		w.nis, w.dims = nil, nil

@@ -89,6 +89,14 @@ type nisWindow struct {
 	raised    bool
 	changed   bool           // since the last check
 	bounds    map[int]bounds // by the window's total dimension
+	// dof is the sum of dims, kept as they change, and last the bounds of
+	// the last check with its dof (lastOK: there was one): at every IMU
+	// heading the check read the window's dimensions and the map, each a
+	// few cache misses at robot rates (BenchmarkRobotRates).
+	dof     int
+	last    bounds
+	lastDof int
+	lastOK  bool
 }
 
 func (w *nisWindow) init(n int) {
@@ -99,6 +107,7 @@ func (w *nisWindow) add(nis float64, dim int) {
 	if w.nis == nil {
 		return
 	}
+	w.dof += dim - w.dims[w.pos]
 	w.nis[w.pos], w.dims[w.pos] = nis, dim
 	w.pos = (w.pos + 1) % len(w.nis)
 	if w.fill < len(w.nis) {
@@ -121,12 +130,14 @@ func (w *nisWindow) check(p float64) bool {
 	}
 	w.changed = false
 	var sum float64
-	var dof int
 	for i := range w.nis {
 		sum += w.nis[i]
-		dof += w.dims[i]
 	}
-	q, ok := w.bounds[dof]
+	dof := w.dof
+	q, ok := w.last, w.lastOK && w.lastDof == dof
+	if !ok {
+		q, ok = w.bounds[dof]
+	}
 	if !ok {
 		c := distuv.ChiSquared{K: float64(dof)}
 		q = bounds{hi: c.Quantile(p), lo: c.Quantile(0.5)}
@@ -135,6 +146,7 @@ func (w *nisWindow) check(p float64) bool {
 		}
 		w.bounds[dof] = q
 	}
+	w.last, w.lastDof, w.lastOK = q, dof, true
 	w.raised = sum > q.hi || (w.raised && sum > q.lo)
 	return w.raised
 }
@@ -147,14 +159,15 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 		t.bias.init(r.cfg.Trust.NISWindow)
 	}
 	var now TrustReason
-	st := r.f.State()
+	// Read in place: a copy of the estimate (1.3 kB) at every input cost
+	// more cache misses than the rest of this (BenchmarkRobotRates).
 	if !r.started {
 		now |= TrustNoOdometry
 	}
-	if st.Position95() > r.cfg.Trust.MaxPosition95M {
+	if r.f.Position95() > r.cfg.Trust.MaxPosition95M {
 		now |= TrustPositionUncertain
 	}
-	if math.Sqrt(st.Var(2)) > r.cfg.Trust.MaxHeadingStdRad {
+	if math.Sqrt(r.f.Var(2)) > r.cfg.Trust.MaxHeadingStdRad {
 		now |= TrustHeadingUncertain
 	}
 	p := r.cfg.Trust.ConsistencyProbability

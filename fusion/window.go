@@ -62,9 +62,28 @@ type entry struct {
 func (r *Robot) live() []entry { return r.ents[r.head:] }
 
 // locate returns the index of the first live entry ending after t.
+//
+// Inputs mostly land near the newest entry (an IMU sample within the last
+// odometry interval, a fix a few dozen entries back), so it gallops back
+// from the end before it bisects: a handful of entries read instead of
+// the nine or ten of a bisection of the whole window, each a cache miss
+// when the robot has not run for a while (BenchmarkRobotRates). The
+// entries' ends do not decrease, so both find the same index.
 func (r *Robot) locate(t int64) int {
 	live := r.live()
-	return sort.Search(len(live), func(i int) bool { return live[i].t1 > t })
+	lo, hi := 0, len(live) // the index is in [lo, hi]
+	for step := 1; ; step *= 2 {
+		i := hi - step
+		if i < 0 {
+			break
+		}
+		if live[i].t1 <= t {
+			lo = i + 1
+			break
+		}
+		hi = i
+	}
+	return lo + sort.Search(hi-lo, func(k int) bool { return live[lo+k].t1 > t })
 }
 
 // before returns the checkpoint before live entry i: the base, or a copy
@@ -182,9 +201,9 @@ func (r *Robot) reserve(n int) {
 const maxReserve = 4096
 
 // appendOdo appends an odometry entry ending after every live entry.
-func (r *Robot) appendOdo(e entry) {
+func (r *Robot) appendOdo(e *entry) {
 	r.reserve(1)
-	r.ents = append(r.ents, e)
+	r.ents = append(r.ents, *e)
 	live := r.live()
 	r.apply(&live[len(live)-1])
 	r.newest = e.t1
@@ -195,35 +214,53 @@ func (r *Robot) appendOdo(e entry) {
 type insertion struct {
 	at       int // index of the new entry
 	split    bool
-	original entry // the odometry entry that was split
+	original entry // the odometry entry that was split (when split)
 }
 
 // insert puts e (entMeas or entReset, t0 == t1 == stamp) at its stamp,
 // splitting the odometry interval that contains it by twist fractions, and
-// replays from there. The stamp must lie in [baseT, newest].
-func (r *Robot) insert(e entry) insertion {
+// replays from there; ins records how. The stamp must lie in [baseT,
+// newest].
+//
+// Entries (520 bytes) are passed by pointer and written where they end
+// up, not copied through the stack: at robot rates every copy is a few
+// more cache misses (BenchmarkRobotRates).
+func (r *Robot) insert(e *entry, ins *insertion) {
 	t := e.t1
 	i := r.locate(t)
 	live := r.live()
 	if i < len(live) && live[i].kind == entOdo && live[i].t0 < t {
-		orig := live[i]
-		a, b := splitOdo(orig, t)
-		b.after = cpSlot{} // a keeps the slot; b takes its own when applied
-		live[i] = a
-		r.reserve(2)
-		r.ents = slices.Insert(r.ents, r.head+i+1, e, b)
+		ins.at, ins.split = i+1, true
+		ins.original = live[i]
+		j := r.open(i+1, 2)
+		r.ents[j] = *e
+		// a keeps the original's slot; b takes its own when applied.
+		splitOdo(&ins.original, t, &r.ents[j-1], &r.ents[j+1])
+		r.ents[j+1].after = cpSlot{}
 		r.replayFrom(i)
-		return insertion{at: i + 1, split: true, original: orig}
+		return
 	}
-	r.reserve(1)
-	r.ents = slices.Insert(r.ents, r.head+i, e)
+	ins.at, ins.split = i, false
+	j := r.open(i, 1)
+	r.ents[j] = *e
 	r.replayFrom(i)
-	return insertion{at: i}
+}
+
+// open makes room for n entries at live index i, moving those from i on
+// back (as slices.Insert does), and returns the index in r.ents of the
+// first, whose contents are stale.
+func (r *Robot) open(i, n int) int {
+	r.reserve(n)
+	r.ents = slices.Grow(r.ents, n) // when reserve left it to append
+	j := r.head + i
+	r.ents = r.ents[:len(r.ents)+n]
+	copy(r.ents[j+n:], r.ents[j:])
+	return j
 }
 
 // takeBack removes an inserted entry, merges the interval it split and
 // replays, which restores every checkpoint bit for bit.
-func (r *Robot) takeBack(ins insertion) {
+func (r *Robot) takeBack(ins *insertion) {
 	if e := &r.live()[ins.at]; e.failed {
 		r.setErr(e.seq, nil)
 	}
@@ -239,19 +276,28 @@ func (r *Robot) takeBack(ins insertion) {
 	r.replayFrom(ins.at)
 }
 
-// splitOdo splits odometry entry e at t0 < t < t1 into two entries whose
-// steps are the twist fractions of e's step and whose covariances are the
-// same fractions of e's (noise is additive over sub-intervals).
-func splitOdo(e entry, t int64) (a, b entry) {
+// splitOdo splits odometry entry e at t0 < t < t1 into two entries a and b
+// (either may be nil; neither may be e) whose steps are the twist
+// fractions of e's step and whose covariances are the same fractions of
+// e's (noise is additive over sub-intervals).
+func splitOdo(e *entry, t int64, a, b *entry) {
 	f := float64(t-e.t0) / float64(e.t1-e.t0)
-	a, b = e, e
-	a.t1, b.t0 = t, t
-	a.step, b.step = e.step.Scale(f), e.step.Scale(1-f)
-	for k := range e.cov {
-		a.cov[k] = e.cov[k] * f
-		b.cov[k] = e.cov[k] * (1 - f)
+	if a != nil {
+		*a = *e
+		a.t1 = t
+		a.step = e.step.Scale(f)
+		for k := range e.cov {
+			a.cov[k] = e.cov[k] * f
+		}
 	}
-	return a, b
+	if b != nil {
+		*b = *e
+		b.t0 = t
+		b.step = e.step.Scale(1 - f)
+		for k := range e.cov {
+			b.cov[k] = e.cov[k] * (1 - f)
+		}
+	}
 }
 
 // trim folds entries that ended before the window into the base checkpoint.
@@ -303,7 +349,7 @@ func (r *Robot) dropFront(k int) {
 }
 
 // addMeasurement inserts, holds or refuses a measurement entry.
-func (r *Robot) addMeasurement(res Result, e entry, sensor string) Result {
+func (r *Robot) addMeasurement(res Result, e *entry, sensor string) Result {
 	t := e.t1
 	switch {
 	case r.started && t < r.baseT:
@@ -313,8 +359,9 @@ func (r *Robot) addMeasurement(res Result, e entry, sensor string) Result {
 		r.stats.sensorVerdict(e.sensor, VerdictTooOld, 0, 0)
 		return res
 	case r.started && t <= r.newest:
-		ins := r.insert(e)
-		r.decideMeas(&res, ins, sensor)
+		var ins insertion
+		r.insert(e, &ins)
+		r.decideMeas(&res, &ins, sensor)
 		return res
 	case r.started && t-r.newest > r.cfg.MaxHoldAheadNs:
 		r.stats.count(VerdictInvalid, false)
@@ -330,14 +377,14 @@ func (r *Robot) addMeasurement(res Result, e entry, sensor string) Result {
 }
 
 // hold keeps e in stamp order (arrival order among equal stamps).
-func (r *Robot) hold(e entry) {
+func (r *Robot) hold(e *entry) {
 	i := len(r.held)
 	for i > 0 && r.held[i-1].t1 > e.t1 {
 		i--
 	}
 	r.held = append(r.held, entry{})
 	copy(r.held[i+1:], r.held[i:])
-	r.held[i] = e
+	r.held[i] = *e
 }
 
 // releaseHeld inserts held entries that odometry has now reached.
@@ -353,10 +400,11 @@ func (r *Robot) releaseHeld(res *Result) {
 			sub.Err = fmt.Errorf("%w: stamp_ns %d precedes the first odometry or the last reseed at %d", ErrTooOld, e.t1, r.baseT)
 			r.stats.count(VerdictTooOld, false)
 		} else if e.kind == entReset {
-			r.insertReset(e, &sub)
+			r.insertReset(&e, &sub)
 		} else {
-			ins := r.insert(e)
-			r.decideMeas(&sub, ins, r.stats.sensors[e.sensor].ID)
+			var ins insertion
+			r.insert(&e, &ins)
+			r.decideMeas(&sub, &ins, r.stats.sensors[e.sensor].ID)
 		}
 		res.Resolved = append(res.Resolved, Resolution{Seq: sub.Seq, Verdict: sub.Verdict, NIS: sub.NIS, Err: sub.Err})
 		res.Events = append(res.Events, sub.Events...)

@@ -20,8 +20,8 @@ type Decoded struct {
 // robot, refusing what is malformed on the wire (an error wrapping
 // ErrSample and naming the field); the robot checks the values.
 func Decode(s *pb.Sample) (Decoded, error) {
-	in, err := decode(s)
-	if err != nil {
+	var in input
+	if err := decode(s, &in); err != nil {
 		return Decoded{}, err
 	}
 	return Decoded{Kind: in.kind, Odometry: in.Odometry, Heading: in.Heading, Fix: in.Fix}, nil

@@ -90,8 +90,10 @@ type scanState struct {
 	// nothing refers to it: records are decoded into messages of their
 	// own, and only a Snapshot visitor keeps payloads past their segment.
 	buf []byte
-	// inputs are the JournalInputs handed out next (st.input).
+	// inputs are the JournalInputs handed out next (st.input), and dec
+	// decodes most of them.
 	inputs []pb.JournalInput
+	dec    inputDecoder
 }
 
 // Read reads a robot's journal in the OS file system (ReadFS).
@@ -232,7 +234,8 @@ func (st *scanState) pair(inB, outB []byte) error {
 // input decodes an input record. The writer puts the input message as the
 // record's one field, which is decoded straight into a JournalInput (taken
 // from a block of inputBlock: a replay decodes a million), without the
-// record around it; any other record is decoded whole.
+// record around it, by hand for odometry and IMU headings (inputDecoder);
+// any other record is decoded whole.
 func (st *scanState) input(b []byte) (*pb.JournalInput, error) {
 	if v, n := protowire.ConsumeBytes(b[1:]); b[0] == KindInput && n > 0 && 1+n == len(b) {
 		if len(st.inputs) == 0 {
@@ -240,6 +243,9 @@ func (st *scanState) input(b []byte) (*pb.JournalInput, error) {
 		}
 		in := &st.inputs[0]
 		st.inputs = st.inputs[1:]
+		if st.dec.decode(v, in) {
+			return in, nil
+		}
 		return in, proto.Unmarshal(v, in)
 	}
 	var rec pb.JournalRecord

@@ -177,10 +177,29 @@ func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 	// next holds step hi of the run being filled, [lo, hi): the lowest of
 	// the run filled before.
 	next := new(fusion.Step)
+	// carry holds the gain the record of step lo held (between steps
+	// lo-1 and lo), for the run filled next, if stored is set.
+	var carry gainMatrix
+	stored := false
 	return &prefetchedSteps{n: n, every: every, posts: map[int]*estimator.State{}, p: startPrefetch(n, true, func(lo int, dst []gainedStep) error {
+		// The gain between steps k and k+1 that the step writer stored
+		// came with step k+1; it goes to the item of step k: from the run
+		// filled before (carry) for the last item.
+		last := &dst[len(dst)-1]
+		last.gain, last.gained = carry, stored
 		for j := range dst {
-			if err := rd.Step(lo+j, &dst[j].step); err != nil {
+			g := &carry
+			if j > 0 {
+				g = &dst[j-1].gain
+			}
+			had, err := rd.stepGain(lo+j, &dst[j].step, g)
+			if err != nil {
 				return err
+			}
+			if j > 0 {
+				dst[j-1].gained = had
+			} else {
+				stored = had
 			}
 		}
 		for j := len(dst) - 1; j >= 0; j-- {
@@ -189,8 +208,13 @@ func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 			if j+1 < len(dst) {
 				nx = &dst[j+1].step
 			}
-			g.gainErr, g.gained = nil, prefetchGains(k) && k+1 < n && !nx.Start
-			if g.gained {
+			g.gainErr = nil
+			if k+1 >= n || nx.Start {
+				g.gained = false // none asked for
+				continue
+			}
+			if !g.gained && prefetchGains(k) {
+				g.gained = true
 				g.gainErr = estimator.RTSGain(&g.gain, &g.step.Post, &nx.Pred, &nx.F)
 			}
 		}

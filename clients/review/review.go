@@ -374,11 +374,16 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	}
 	run.Config = fr.Config()
 	rc.a.finish(rc.ending(fr))
-	if err := smoothAndTrack(rc.a, steps, walk, src.Truth, opt); err != nil {
-		return nil, err
-	}
+	// The fixes are final now: their export is written while the smoother
+	// runs.
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
-	if err := writeFixes(run.FixesCSV, run.Fixes); err != nil {
+	fixesDone := make(chan error, 1)
+	go func() { fixesDone <- writeFixes(run.FixesCSV, run.Fixes) }()
+	err = smoothAndTrack(rc.a, steps, walk, src.Truth, opt)
+	if ferr := <-fixesDone; err == nil {
+		err = ferr
+	}
+	if err != nil {
 		return nil, err
 	}
 	run.Fixes = thinFixes(run.Fixes, opt.MaxPoints)

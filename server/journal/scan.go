@@ -265,17 +265,35 @@ func (st *scanState) segment(path string, first, last bool) error {
 	if st.v.Snapshot == nil {
 		reuse = st.buf
 	}
-	b, err := readFileInto(st.fs, path, reuse)
+	// The segment is read a piece at a time while its frames are scanned:
+	// a frame is scanned once it is whole in what was read, and anything
+	// that is not a valid frame (damage, a torn tail) only once the whole
+	// file is read, as if it had been read at once.
+	rd, err := openSegment(st.fs, path, reuse)
 	if err != nil {
 		return err
 	}
-	st.buf = b
+	defer rd.close()
+	b := rd.b
+	defer func() { st.buf = b }()
 	sc := st.sc
 	off, reason := headerSize, ""
 	if len(b) < headerSize {
 		reason = fmt.Sprintf("header cut after %d of %d bytes", len(b), headerSize)
 	} else if err := checkHeader(b); err != nil {
 		reason = err.Error()
+	}
+	if reason != "" && !rd.full {
+		if err := rd.all(); err != nil {
+			return err
+		}
+		b = rd.b
+		reason = ""
+		if len(b) < headerSize {
+			reason = fmt.Sprintf("header cut after %d of %d bytes", len(b), headerSize)
+		} else if err := checkHeader(b); err != nil {
+			reason = err.Error()
+		}
 	}
 	if reason != "" {
 		// A bad header: damage up to the first valid frame.
@@ -289,8 +307,22 @@ func (st *scanState) segment(path string, first, last bool) error {
 		}
 	}
 	sc.Good = int64(off)
-	for off < len(b) {
+	for off < len(b) || !rd.full {
+		if !rd.full && !frameWhole(b, off) {
+			if err := rd.next(); err != nil {
+				return err
+			}
+			b = rd.b
+			continue
+		}
 		end, reason := frameAt(b, off)
+		if reason != "" && !rd.full {
+			if err := rd.all(); err != nil {
+				return err
+			}
+			b = rd.b
+			continue
+		}
 		if reason == "" {
 			if err := st.record(path, first, b[off+frameSize:end], int64(end)); err != nil {
 				return err
@@ -398,6 +430,16 @@ func (st *scanState) keep(path string, b []byte, off, end int) (string, error) {
 		return "", fmt.Errorf("keeping the damaged bytes %d to %d of %s: %w", off, end, path, classify(err))
 	}
 	return name, nil
+}
+
+// frameWhole reports whether the frame at off is whole in b, or its
+// length out of bounds (frameAt then says why).
+func frameWhole(b []byte, off int) bool {
+	if len(b)-off < frameSize {
+		return false
+	}
+	size := binary.LittleEndian.Uint32(b[off:])
+	return checkLength(size) != "" || off+frameSize+int(size) <= len(b)
 }
 
 // frameAt checks the frame at off in b: its length, that it is whole, and

@@ -118,12 +118,12 @@ type rowWriter struct {
 	err     error
 }
 
-const rowBatch = 4096
+const rowBatch = 2048
 
 func newRowWriter(path string) *rowWriter {
 	// Six batches at most: one being filled, one queued and one being
 	// formatted for each formatter; six buffers of formatted rows (about
-	// 0.9 MB each), one queued and one being written for each.
+	// 0.45 MB each), one queued and one being written for each.
 	rw := &rowWriter{pool: newBatchPool[trackRow](6, rowBatch), bufs: make(chan []byte, 6), written: make(chan error, 1)}
 	rw.batch, _ = rw.pool.get(nil)
 	var out [2]chan []byte

@@ -70,7 +70,7 @@ func newTrackWriter(path string) (*trackWriter, error) {
 	if err != nil {
 		return nil, err
 	}
-	tw := &trackWriter{f: f, w: bufio.NewWriterSize(newDropBehind(f), 1<<20)}
+	tw := &trackWriter{f: f, w: bufio.NewWriterSize(f, 1<<20)}
 	_, err = tw.w.WriteString(strings.Join(csvHeader, ",") + "\n")
 	return tw, err
 }
@@ -148,10 +148,8 @@ func newRowWriter(path string) *rowWriter {
 	}
 	go func() {
 		f, err := os.Create(path)
-		var w *dropBehind
 		if err == nil {
-			w = newDropBehind(f)
-			_, err = w.Write([]byte(strings.Join(csvHeader, ",") + "\n"))
+			_, err = f.WriteString(strings.Join(csvHeader, ",") + "\n")
 		}
 		// The formatted batches in the order handed over: they alternate
 		// between the formatters. Drained to the end after an error as
@@ -162,7 +160,7 @@ func newRowWriter(path string) *rowWriter {
 				break
 			}
 			if err == nil {
-				_, err = w.Write(buf)
+				_, err = f.Write(buf)
 			}
 			select {
 			case rw.bufs <- buf:

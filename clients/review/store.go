@@ -662,12 +662,12 @@ type smoothedRows struct {
 // every-th step (and the last) are kept whole.
 func newSmoothedRows(dir string, n, k, every int, budget int64) (*smoothedRows, error) {
 	sr := &smoothedRows{n: n, every: every, kept: map[int]*estimator.State{}, lower: map[int][3]float64{}}
+	// The heap the replay leaves (the journal's segment, the steps kept in
+	// memory until they spilled) goes back to the system first, so that
+	// the rows, or the smoother's work with the states on disk, come on
+	// top of what is live, not of what the collector kept.
+	debug.FreeOSMemory()
 	if int64(n)*rowBytes <= budget {
-		// The heap the replay leaves (the journal's segment, the steps
-		// kept in memory until they spilled) goes back to the system
-		// first, so that the rows come on top of what is live, not of
-		// what the collector kept.
-		debug.FreeOSMemory()
 		var err error
 		sr.v, sr.free, err = allocRows(12 * n)
 		sr.offset = make([]uint64, (n+63)/64)

@@ -8,6 +8,7 @@ import (
 	"math"
 	"sort"
 	"strings"
+	"sync"
 
 	"gonum.org/v1/gonum/stat/distuv"
 	"gonum.org/v1/plot"
@@ -503,19 +504,39 @@ func outliers(o *overlay, pts plotter.XYs, what, colour string) {
 	}
 }
 
-// Figures draws a run's figures.
+// Figures draws a run's figures, each in a goroutine of its own: they
+// share nothing but the run, which they only read.
 func (run *Run) Figures() ([]Figure, error) {
-	var figs []Figure
-	add := func(f Figure, err error) error {
-		if err == nil {
-			figs = append(figs, f)
+	draw := []func() (Figure, error){run.trackFigure, run.positionStdFigure, run.headingStdFigure}
+	sensors := make([]string, 0, len(run.NIS))
+	for k := range run.NIS {
+		sensors = append(sensors, k)
+	}
+	sort.Strings(sensors)
+	for _, id := range sensors {
+		draw = append(draw, func() (Figure, error) { return run.nisFigure(id) })
+	}
+	if len(run.Filtered) > 0 && run.Filtered[0].State.Size() == 4 {
+		draw = append(draw, run.offsetFigure)
+	}
+	figs := make([]Figure, len(draw))
+	errs := make([]error, len(draw))
+	var wg sync.WaitGroup
+	for i, f := range draw {
+		wg.Go(func() { figs[i], errs[i] = f() })
+	}
+	wg.Wait()
+	for _, err := range errs {
+		if err != nil {
+			return nil, err
 		}
-		return err
 	}
-	if err := add(run.trackFigure()); err != nil {
-		return nil, err
-	}
-	var sx, sy, ssx, ssy, sh, ssh plotter.XYs
+	return figs, nil
+}
+
+// stdSeries returns the standard deviations of x and y (m) and of the
+// heading (degrees) over time, filtered and smoothed.
+func (run *Run) stdSeries() (sx, sy, ssx, ssy, sh, ssh plotter.XYs) {
 	for i, pt := range run.Filtered {
 		t := run.ts(pt.StampNs)
 		sx = append(sx, plotter.XY{X: t, Y: math.Sqrt(pt.State.At(0, 0))})
@@ -526,6 +547,11 @@ func (run *Run) Figures() ([]Figure, error) {
 		ssy = append(ssy, plotter.XY{X: t, Y: math.Sqrt(s.At(1, 1))})
 		ssh = append(ssh, plotter.XY{X: t, Y: math.Sqrt(s.At(2, 2)) * 180 / math.Pi})
 	}
+	return
+}
+
+func (run *Run) positionStdFigure() (Figure, error) {
+	sx, sy, ssx, ssy, _, _ := run.stdSeries()
 	p := plot.New()
 	p.Title.Text = "Position standard deviation"
 	p.Y.Label.Text = "m"
@@ -535,35 +561,19 @@ func (run *Run) Figures() ([]Figure, error) {
 	line(p, ssx, colSmoothed, vg.Points(1), "x smoothed", false)
 	line(p, ssy, colSmoothed, vg.Points(1), "y smoothed", true)
 	p.Legend.Top = true
-	if err := add(run.timeFigure("fig-position-std", "Standard deviation of x and y over time, filtered and smoothed; shaded: red not to be trusted, orange fixes refused in a row, grey gaps; dashed lines: moves and slips.", p, vg.Points(300), nil)); err != nil {
-		return nil, err
-	}
-	p = plot.New()
+	return run.timeFigure("fig-position-std", "Standard deviation of x and y over time, filtered and smoothed; shaded: red not to be trusted, orange fixes refused in a row, grey gaps; dashed lines: moves and slips.", p, vg.Points(300), nil)
+}
+
+func (run *Run) headingStdFigure() (Figure, error) {
+	_, _, _, _, sh, ssh := run.stdSeries()
+	p := plot.New()
 	p.Title.Text = "Heading standard deviation"
 	p.Y.Label.Text = "deg"
 	logIfWide(p, sh, ssh)
 	line(p, sh, colFiltered, vg.Points(1), "filtered", false)
 	line(p, ssh, colSmoothed, vg.Points(1), "smoothed", false)
 	p.Legend.Top = true
-	if err := add(run.timeFigure("fig-heading-std", "Standard deviation of the heading over time.", p, vg.Points(260), nil)); err != nil {
-		return nil, err
-	}
-	sensors := make([]string, 0, len(run.NIS))
-	for k := range run.NIS {
-		sensors = append(sensors, k)
-	}
-	sort.Strings(sensors)
-	for _, id := range sensors {
-		if err := add(run.nisFigure(id)); err != nil {
-			return nil, err
-		}
-	}
-	if len(run.Filtered) > 0 && run.Filtered[0].State.Size() == 4 {
-		if err := add(run.offsetFigure()); err != nil {
-			return nil, err
-		}
-	}
-	return figs, nil
+	return run.timeFigure("fig-heading-std", "Standard deviation of the heading over time.", p, vg.Points(260), nil)
 }
 
 // logIfWide gives the plot a logarithmic y axis when the series span more

@@ -271,6 +271,36 @@ func TestSpillToDisk(t *testing.T) {
 	}
 }
 
+// TestStoredGains: the smoothed track is the same to the bit whether the
+// step writer stored every gain with the steps on disk, none, or some
+// (estimator.RTSGain then RTSStepWithGain is RTSStep), and the same as a
+// review kept in memory.
+func TestStoredGains(t *testing.T) {
+	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 76, DurationS: 20, OutlierFraction: 0.05})
+	mem, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	want, _ := os.ReadFile(mem.SmoothedCSV)
+	defer func(w func(int) bool) { writerGains = w }(writerGains)
+	turn := 0
+	for name, policy := range map[string]func(int) bool{
+		"every": func(int) bool { return true },
+		"none":  func(int) bool { return false },
+		"some":  func(int) bool { turn++; return turn%3 == 0 },
+	} {
+		writerGains = policy
+		disk, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{MemoryBytes: 10 * stepMemBytes, TempDir: t.TempDir()})
+		if err != nil {
+			t.Fatal(err)
+		}
+		got, _ := os.ReadFile(disk.SmoothedCSV)
+		if len(want) < 1000 || !bytes.Equal(got, want) {
+			t.Errorf("%s gains stored: the smoothed track differs from the one in memory (%d and %d bytes)", name, len(got), len(want))
+		}
+	}
+}
+
 // TestSpillToDiskWithoutIMU: the disk's step records hold a three-state
 // run (no IMU offset) as well, bit for bit.
 func TestSpillToDiskWithoutIMU(t *testing.T) {

@@ -23,9 +23,12 @@ import (
 //     angle set (two bytes), the mean (n) and the covariance (n(n+1)/2 or
 //     n x n);
 //   - a step is its stamp, a flags byte (1: Start; 2: Post is Pred to the
-//     bit and is not stored), Pred, Post, and the transition Jacobian F
-//     (k x k, k the store's state size) as a bit mask of the entries that
-//     differ from the identity followed by those entries.
+//     bit and is not stored; 4: the gain follows), Pred, Post, the
+//     transition Jacobian F (k x k, k the store's state size) as a bit mask
+//     of the entries that differ from the identity followed by those
+//     entries and, with flag 4, the smoother's transposed gain between the
+//     step before and this one (estimator.RTSGain; k x k), worked out by
+//     the step writer where it had time to spare.
 //
 // The filter keeps its covariances symmetric to the bit, and most entries
 // of F are those of the identity, so that a step of four states takes
@@ -38,7 +41,11 @@ const (
 	stateTri  = 1 // a state's covariance stored as its upper triangle
 	stepStart = 1 // Step.Start
 	stepSame  = 2 // Post equals Pred and is not stored
+	stepGain  = 4 // the gain with the step before follows
 )
+
+// gainMatrix is a transposed smoother gain (estimator.RTSGain).
+type gainMatrix = [estimator.MaxStates * estimator.MaxStates]float64
 
 // symmetric reports whether s's covariance is symmetric to the bit.
 func symmetric(s *estimator.State) bool {
@@ -151,6 +158,9 @@ func stepLen(b []byte, k int) int {
 	for _, x := range b[n : n+m] {
 		set += bits.OnesCount8(x)
 	}
+	if b[8]&stepGain != 0 {
+		set += k * k
+	}
 	return n + m + set*8
 }
 
@@ -222,7 +232,9 @@ func newStepFile(dir string, k int) (*stepFile, error) {
 	return &stepFile{f: f, w: bufio.NewWriterSize(f, 1<<20), k: k}, nil
 }
 
-func (sf *stepFile) add(s *fusion.Step) error {
+// add appends s and, if gain is not nil, the transposed gain between the
+// step added before and s (k x k, stride estimator.MaxStates).
+func (sf *stepFile) add(s *fusion.Step, gain *gainMatrix) error {
 	if s.Pred.Size() > estimator.MaxStates || s.Post.Size() > estimator.MaxStates {
 		panic(fmt.Sprintf("review: step of sizes %d and %d", s.Pred.Size(), s.Post.Size()))
 	}
@@ -233,6 +245,12 @@ func (sf *stepFile) add(s *fusion.Step) error {
 	}
 	if sameBits(&s.Post, &s.Pred) {
 		flags |= stepSame
+	}
+	if gain != nil && s.Pred.Size() != sf.k {
+		gain = nil // not of the store's size: the smoother works it out
+	}
+	if gain != nil {
+		flags |= stepGain
 	}
 	b = append(b, flags)
 	b = putState(b, &s.Pred)
@@ -245,6 +263,13 @@ func (sf *stepFile) add(s *fusion.Step) error {
 		for j := 0; j < sf.k; j++ {
 			if v := s.F[i*estimator.MaxStates+j]; math.Float64bits(v) != identityBits(i, j) {
 				b[m+(i*sf.k+j)/8] |= 1 << ((i*sf.k + j) % 8)
+				b = appendF64(b, v)
+			}
+		}
+	}
+	if gain != nil {
+		for i := 0; i < sf.k; i++ {
+			for _, v := range gain[i*estimator.MaxStates : i*estimator.MaxStates+sf.k] {
 				b = appendF64(b, v)
 			}
 		}
@@ -314,25 +339,33 @@ func (sr *stepReader) readPost(i int, post *estimator.State) (stampNs int64, sta
 	return stampNs, flags&stepStart != 0, nil
 }
 
-// read decodes step i into dst.
-func (sr *stepReader) read(i int, dst *fusion.Step) error {
+// read decodes step i into dst and, if the record holds it, the gain
+// between step i-1 and step i into gain (its k x k block; not if gain is
+// nil), and reports whether it holds one.
+func (sr *stepReader) read(i int, dst *fusion.Step, gain *gainMatrix) (bool, error) {
 	b, err := sr.record(i)
 	if err != nil {
-		return err
+		return false, err
 	}
+	// A step of this size in dst already has zeros past the k x k block
+	// of F, which then is all that is written (a Step of 12 states is 3.7
+	// kB, of which a robot of 4 states uses 0.4).
+	sameSize := dst.Pred.Size() == sr.k && dst.Post.Size() == sr.k
 	dst.StampNs = int64(binary.LittleEndian.Uint64(b))
 	flags := b[8]
 	dst.Start = flags&stepStart != 0
 	b = b[9:]
 	b = getState(b, &dst.Pred)
 	if flags&stepSame != 0 {
-		dst.Post = dst.Pred
+		copyState(&dst.Post, &dst.Pred)
 	} else {
 		b = getState(b, &dst.Post)
 	}
 	mask := b[:fMaskBytes(sr.k)]
 	b = b[len(mask):]
-	dst.F = [estimator.MaxStates * estimator.MaxStates]float64{}
+	if !sameSize {
+		dst.F = [estimator.MaxStates * estimator.MaxStates]float64{}
+	}
 	for i := 0; i < sr.k; i++ {
 		for j := 0; j < sr.k; j++ {
 			v := math.Float64frombits(identityBits(i, j))
@@ -343,7 +376,17 @@ func (sr *stepReader) read(i int, dst *fusion.Step) error {
 			dst.F[i*estimator.MaxStates+j] = v
 		}
 	}
-	return nil
+	if flags&stepGain == 0 || gain == nil {
+		return flags&stepGain != 0, nil
+	}
+	for i := 0; i < sr.k; i++ {
+		row := gain[i*estimator.MaxStates : i*estimator.MaxStates+sr.k]
+		for j := range row {
+			row[j] = math.Float64frombits(binary.LittleEndian.Uint64(b))
+			b = b[8:]
+		}
+	}
+	return true, nil
 }
 
 // stateFile is a fusion.StateSink on disk. The smoother writes backwards,
@@ -476,7 +519,9 @@ func newStepStore(dir string, memoryBytes int64) *stepStore {
 	return &stepStore{dir: dir, budget: int(memoryBytes / stepMemBytes)}
 }
 
-func (ss *stepStore) add(s *fusion.Step) error {
+// add appends s and, if gain is not nil, the transposed gain between the
+// step added before and s, which is kept if the steps are on disk.
+func (ss *stepStore) add(s *fusion.Step, gain *gainMatrix) error {
 	if ss.file == nil {
 		if ss.n < ss.budget {
 			if ss.n%chunk == 0 {
@@ -493,14 +538,14 @@ func (ss *stepStore) add(s *fusion.Step) error {
 		}
 		for _, c := range ss.mem {
 			for i := range c {
-				if err := f.add(&c[i]); err != nil {
+				if err := f.add(&c[i], nil); err != nil {
 					return err
 				}
 			}
 		}
 		ss.mem, ss.file = nil, f
 	}
-	return ss.file.add(s)
+	return ss.file.add(s, gain)
 }
 
 func (ss *stepStore) Len() int {
@@ -512,11 +557,18 @@ func (ss *stepStore) Len() int {
 
 // Step copies step i into dst.
 func (ss *stepStore) Step(i int, dst *fusion.Step) error {
+	_, err := ss.stepGain(i, dst, nil)
+	return err
+}
+
+// stepGain copies step i into dst and, if the store kept it, the gain
+// between step i-1 and step i into gain (not nil then), which it reports.
+func (ss *stepStore) stepGain(i int, dst *fusion.Step, gain *gainMatrix) (bool, error) {
 	if ss.file == nil {
 		dst.CopyFrom(&ss.mem[i/chunk][i%chunk])
-		return nil
+		return false, nil
 	}
-	return ss.fileReader().read(i, dst)
+	return ss.fileReader().read(i, dst, gain)
 }
 
 // readPost copies the stamp, Start and Post of step i (into post).
@@ -610,12 +662,12 @@ type smoothedRows struct {
 // every-th step (and the last) are kept whole.
 func newSmoothedRows(dir string, n, k, every int, budget int64) (*smoothedRows, error) {
 	sr := &smoothedRows{n: n, every: every, kept: map[int]*estimator.State{}, lower: map[int][3]float64{}}
+	// The heap the replay leaves (the journal's segment, the steps kept in
+	// memory until they spilled) goes back to the system first, so that
+	// the rows, or the smoother's work with the states on disk, come on
+	// top of what is live, not of what the collector kept.
+	debug.FreeOSMemory()
 	if int64(n)*rowBytes <= budget {
-		// The heap the replay leaves (the journal's segment, the steps
-		// kept in memory until they spilled) goes back to the system
-		// first, so that the rows come on top of what is live, not of
-		// what the collector kept.
-		debug.FreeOSMemory()
 		var err error
 		sr.v, sr.free, err = allocRows(12 * n)
 		sr.offset = make([]uint64, (n+63)/64)

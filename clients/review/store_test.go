@@ -104,7 +104,7 @@ func TestStoresRoundTrip(t *testing.T) {
 			t.Fatalf("k %d: on disk %v and %v", k, disk.onDisk(), mem.onDisk())
 		}
 		for i := range steps {
-			if err := store.add(&steps[i]); err != nil {
+			if err := store.add(&steps[i], nil); err != nil {
 				t.Fatal(err)
 			}
 		}

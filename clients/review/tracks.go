@@ -102,37 +102,75 @@ func (tw *trackWriter) close() error {
 	return err
 }
 
-// rowWriter writes a track as CSV in a goroutine of its own: the caller
-// hands it rows in batches, which come back for reuse.
+// rowWriter writes a track as CSV while the caller goes on: the caller
+// hands it rows in batches, which two goroutines format in turns (the
+// formatting is most of the cost, and the walk that hands the rows over
+// leaves room on both cores) and a third writes in order. The batches and
+// the formatted bytes come back for reuse.
 type rowWriter struct {
 	batch   []trackRow
-	full    chan []trackRow
+	turn    int
+	work    [2]chan []trackRow
 	pool    *batchPool[trackRow]
+	bufs    chan []byte
 	written chan error
 	closed  bool
 	err     error
 }
 
-const rowBatch = 4096
+const rowBatch = 2048
 
 func newRowWriter(path string) *rowWriter {
-	// Four batches at most: one being filled, two sent, one being written.
-	rw := &rowWriter{full: make(chan []trackRow, 2), pool: newBatchPool[trackRow](4, rowBatch), written: make(chan error, 1)}
+	// Six batches at most: one being filled, one queued and one being
+	// formatted for each formatter; six buffers of formatted rows (about
+	// 0.45 MB each), one queued and one being written for each.
+	rw := &rowWriter{pool: newBatchPool[trackRow](6, rowBatch), bufs: make(chan []byte, 6), written: make(chan error, 1)}
 	rw.batch, _ = rw.pool.get(nil)
-	go func() {
-		tw, err := newTrackWriter(path)
-		for b := range rw.full {
-			for i := range b {
-				if err == nil {
-					err = tw.addRow(&b[i])
+	var out [2]chan []byte
+	for i := range rw.work {
+		rw.work[i], out[i] = make(chan []trackRow, 1), make(chan []byte, 1)
+		go func() {
+			defer close(out[i])
+			for b := range rw.work[i] {
+				var buf []byte
+				select {
+				case buf = <-rw.bufs:
+				default:
 				}
+				buf = buf[:0]
+				for j := range b {
+					buf = appendRow(buf, &b[j])
+				}
+				rw.pool.put(b)
+				out[i] <- buf
 			}
-			// Drained to the end after an error as well, so that the
-			// sender ends.
-			rw.pool.put(b)
+		}()
+	}
+	go func() {
+		f, err := os.Create(path)
+		if err == nil {
+			_, err = f.WriteString(strings.Join(csvHeader, ",") + "\n")
 		}
-		if cerr := tw.close(); err == nil {
-			err = cerr
+		// The formatted batches in the order handed over: they alternate
+		// between the formatters. Drained to the end after an error as
+		// well, so that the formatters and the sender end.
+		for i := 0; ; i++ {
+			buf, ok := <-out[i%2]
+			if !ok {
+				break
+			}
+			if err == nil {
+				_, err = f.Write(buf)
+			}
+			select {
+			case rw.bufs <- buf:
+			default:
+			}
+		}
+		if f != nil {
+			if cerr := f.Close(); err == nil {
+				err = cerr
+			}
 		}
 		rw.written <- err
 	}()
@@ -141,9 +179,16 @@ func newRowWriter(path string) *rowWriter {
 
 func (rw *rowWriter) addRow(r *trackRow) {
 	if rw.batch = append(rw.batch, *r); len(rw.batch) == rowBatch {
-		rw.full <- rw.batch
+		rw.hand()
 		rw.batch, _ = rw.pool.get(nil)
 	}
+}
+
+// hand gives the batch being filled to the formatter whose turn it is.
+func (rw *rowWriter) hand() {
+	rw.work[rw.turn%2] <- rw.batch
+	rw.turn++
+	rw.batch = nil
 }
 
 // close writes the rows left, waits for the writer and returns its error;
@@ -152,9 +197,10 @@ func (rw *rowWriter) close() error {
 	if !rw.closed {
 		rw.closed = true
 		if len(rw.batch) > 0 {
-			rw.full <- rw.batch
+			rw.hand()
 		}
-		close(rw.full)
+		close(rw.work[0])
+		close(rw.work[1])
 		rw.err = <-rw.written
 	}
 	return rw.err

@@ -90,8 +90,10 @@ type scanState struct {
 	// nothing refers to it: records are decoded into messages of their
 	// own, and only a Snapshot visitor keeps payloads past their segment.
 	buf []byte
-	// inputs are the JournalInputs handed out next (st.input).
+	// inputs are the JournalInputs handed out next (st.input), and dec
+	// decodes most of them.
 	inputs []pb.JournalInput
+	dec    inputDecoder
 }
 
 // Read reads a robot's journal in the OS file system (ReadFS).
@@ -232,7 +234,8 @@ func (st *scanState) pair(inB, outB []byte) error {
 // input decodes an input record. The writer puts the input message as the
 // record's one field, which is decoded straight into a JournalInput (taken
 // from a block of inputBlock: a replay decodes a million), without the
-// record around it; any other record is decoded whole.
+// record around it, by hand for odometry and IMU headings (inputDecoder);
+// any other record is decoded whole.
 func (st *scanState) input(b []byte) (*pb.JournalInput, error) {
 	if v, n := protowire.ConsumeBytes(b[1:]); b[0] == KindInput && n > 0 && 1+n == len(b) {
 		if len(st.inputs) == 0 {
@@ -240,6 +243,9 @@ func (st *scanState) input(b []byte) (*pb.JournalInput, error) {
 		}
 		in := &st.inputs[0]
 		st.inputs = st.inputs[1:]
+		if st.dec.decode(v, in) {
+			return in, nil
+		}
 		return in, proto.Unmarshal(v, in)
 	}
 	var rec pb.JournalRecord
@@ -259,17 +265,35 @@ func (st *scanState) segment(path string, first, last bool) error {
 	if st.v.Snapshot == nil {
 		reuse = st.buf
 	}
-	b, err := readFileInto(st.fs, path, reuse)
+	// The segment is read a piece at a time while its frames are scanned:
+	// a frame is scanned once it is whole in what was read, and anything
+	// that is not a valid frame (damage, a torn tail) only once the whole
+	// file is read, as if it had been read at once.
+	rd, err := openSegment(st.fs, path, reuse)
 	if err != nil {
 		return err
 	}
-	st.buf = b
+	defer rd.close()
+	b := rd.b
+	defer func() { st.buf = b }()
 	sc := st.sc
 	off, reason := headerSize, ""
 	if len(b) < headerSize {
 		reason = fmt.Sprintf("header cut after %d of %d bytes", len(b), headerSize)
 	} else if err := checkHeader(b); err != nil {
 		reason = err.Error()
+	}
+	if reason != "" && !rd.full {
+		if err := rd.all(); err != nil {
+			return err
+		}
+		b = rd.b
+		reason = ""
+		if len(b) < headerSize {
+			reason = fmt.Sprintf("header cut after %d of %d bytes", len(b), headerSize)
+		} else if err := checkHeader(b); err != nil {
+			reason = err.Error()
+		}
 	}
 	if reason != "" {
 		// A bad header: damage up to the first valid frame.
@@ -283,8 +307,22 @@ func (st *scanState) segment(path string, first, last bool) error {
 		}
 	}
 	sc.Good = int64(off)
-	for off < len(b) {
+	for off < len(b) || !rd.full {
+		if !rd.full && !frameWhole(b, off) {
+			if err := rd.next(); err != nil {
+				return err
+			}
+			b = rd.b
+			continue
+		}
 		end, reason := frameAt(b, off)
+		if reason != "" && !rd.full {
+			if err := rd.all(); err != nil {
+				return err
+			}
+			b = rd.b
+			continue
+		}
 		if reason == "" {
 			if err := st.record(path, first, b[off+frameSize:end], int64(end)); err != nil {
 				return err
@@ -392,6 +430,16 @@ func (st *scanState) keep(path string, b []byte, off, end int) (string, error) {
 		return "", fmt.Errorf("keeping the damaged bytes %d to %d of %s: %w", off, end, path, classify(err))
 	}
 	return name, nil
+}
+
+// frameWhole reports whether the frame at off is whole in b, or its
+// length out of bounds (frameAt then says why).
+func frameWhole(b []byte, off int) bool {
+	if len(b)-off < frameSize {
+		return false
+	}
+	size := binary.LittleEndian.Uint32(b[off:])
+	return checkLength(size) != "" || off+frameSize+int(size) <= len(b)
 }
 
 // frameAt checks the frame at off in b: its length, that it is whole, and

@@ -7,14 +7,15 @@
 //
 // The state is [x, y, heading] (metres, radians, field frame; see the
 // README for the frames), then, as its Layout says, the IMU offset, the
-// odometry's forward and turn scales, a heading-rate bias and the bias
-// blocks of sensors with exponentially correlated errors, at most
+// odometry's forward and turn scales, a heading-rate bias, the bias
+// blocks of sensors with exponentially correlated errors and the mount
+// blocks of sensors whose mounts are known only so well, at most
 // MaxStates in all (DEVELOPERS.md, "Design: State"). A body step
 // (forward, left, turn) over one interval moves the pose along a circular arc
 // (Advance); Filter.Predict propagates the covariance through the analytic
 // Jacobians of that motion (ArcJacobians) and Filter.Update applies one
 // Measurement, optionally re-weighted by a robust loss (Robust), with the
-// sensors' bias states as consider states. SolveStep finds the body step from any number of linear rows
+// sensors' bias and mount states as consider states. SolveStep finds the body step from any number of linear rows
 // (encoder wheels of any layout, an IMU rotation row, a no-side-slip row).
 //
 // # Invariants

@@ -29,6 +29,9 @@ type trustCase struct {
 	// trueModel configures the robot with the scenario's true error model
 	// (fusiontest's TrueModelConfig) instead of Config.
 	trueModel bool
+	// edit, if set, changes the configuration before the robot is made
+	// (TestTrustFloorCanFail).
+	edit func(*fusion.Config)
 }
 
 // trustTally is what the harness counted over a run.
@@ -56,6 +59,11 @@ type trustTally struct {
 	// faults, reported not trusted (what the flag costs a sound estimate;
 	// counted, not failed).
 	falseAlarm int
+	// insideAway and outsideAway count the samples inside and outside the
+	// 99.9% region away from injected faults and before any move by hand:
+	// with falseAlarm and floorOutside they give the flag's rate of trust
+	// on each side ("Design: Trust", why it cannot tell them apart).
+	insideAway, outsideAway, trustedOutsideAway int
 }
 
 func (a *trustTally) add(b trustTally) {
@@ -71,6 +79,9 @@ func (a *trustTally) add(b trustTally) {
 	a.lateLost += b.lateLost
 	a.blind += b.blind
 	a.falseAlarm += b.falseAlarm
+	a.insideAway += b.insideAway
+	a.outsideAway += b.outsideAway
+	a.trustedOutsideAway += b.trustedOutsideAway
 }
 
 // trustViolations runs one case and counts, at every odometry sample (the
@@ -89,6 +100,9 @@ func trustViolations(t *testing.T, c trustCase) trustTally {
 	cfg := s.Config()
 	if c.trueModel {
 		cfg = s.TrueModelConfig()
+	}
+	if c.edit != nil {
+		c.edit(&cfg)
 	}
 	r, err := fusion.New(f.config(cfg))
 	if err != nil {
@@ -162,8 +176,16 @@ func trustViolations(t *testing.T, c trustCase) trustTally {
 		if outside {
 			tally.outside++
 		}
-		if !outside && !trusted && bumpNs < 0 && !afterFault(lastNs) {
-			tally.falseAlarm++
+		if away := bumpNs < 0 && !afterFault(lastNs); away && outside {
+			tally.outsideAway++
+			if trusted {
+				tally.trustedOutsideAway++
+			}
+		} else if away {
+			tally.insideAway++
+			if !trusted {
+				tally.falseAlarm++
+			}
 		}
 		switch {
 		case outside && trusted && bumpNs >= 0 && !seen:
@@ -282,9 +304,10 @@ func TestTrustProperty(t *testing.T) {
 				}
 				sum.add(one)
 			}
-			t.Logf("%.0f min: %d samples, %d outside the 99.9%% region (%.3f%%), %d of them trusted (%.3f%%; away from faults %d) in %d episodes, %d longer than 0.2 s (%d after a fault), longest %.3f s; blind after a move %d; recoveries before the loss of trust: %d; not trusted while inside, before any fault: %.3f%%",
+			t.Logf("%.0f min: %d samples, %d outside the 99.9%% region (%.3f%%), %d of them trusted (%.3f%%; away from faults %d) in %d episodes, %d longer than 0.2 s (%d after a fault), longest %.3f s; blind after a move %d; recoveries before the loss of trust: %d; not trusted while inside, before any fault: %.3f%%; trusted while inside %.4f, while outside %.4f (before any fault)",
 				sum.minutes, sum.samples, sum.outside, 100*float64(sum.outside)/float64(sum.samples), sum.trustedOutside, 100*float64(sum.trustedOutside)/float64(sum.samples), sum.floorOutside,
-				sum.episodes, sum.long, sum.faultLong, sum.longest, sum.blind, sum.lateLost, 100*float64(sum.falseAlarm)/float64(sum.samples))
+				sum.episodes, sum.long, sum.faultLong, sum.longest, sum.blind, sum.lateLost, 100*float64(sum.falseAlarm)/float64(sum.samples),
+				1-float64(sum.falseAlarm)/float64(sum.insideAway), float64(sum.trustedOutsideAway)/float64(sum.outsideAway))
 			if sum.faultLong > 0 || sum.lateLost > 0 || float64(sum.floorOutside) > 0.001*float64(sum.samples) {
 				t.Errorf("%d episodes after a fault trusted outside the 99.9%% region for more than 0.2 s; %d recoveries before the loss of trust; %d of %d samples away from faults trusted outside",
 					sum.faultLong, sum.lateLost, sum.floorOutside, sum.samples)
@@ -294,4 +317,35 @@ func TestTrustProperty(t *testing.T) {
 	}
 	t.Logf("total: %.0f simulated minutes, %d samples, %d outside the 99.9%% region, %d of them trusted (%.4f%%) in %d episodes, %d longer than 0.2 s (%d after a fault), longest %.3f s; %d trusted-outside samples blind after a move",
 		total.minutes, total.samples, total.outside, total.trustedOutside, 100*float64(total.trustedOutside)/float64(total.samples), total.episodes, total.long, total.faultLong, total.longest, total.blind)
+}
+
+// TestTrustFloorCanFail shows that the floor of TestTrustProperty fails an
+// overconfident filter: the gyro layout with encoder counts, its wheels'
+// noise per metre and the camera's covariance configured at a quarter of
+// what the simulator draws (standard deviations halved), over the short
+// version's runs.
+func TestTrustFloorCanFail(t *testing.T) {
+	c := trustCases(1, 0)[1]
+	if c.name != "gyro-counts" {
+		t.Fatalf("case %q, want gyro-counts", c.name)
+	}
+	c.edit = func(cfg *fusion.Config) {
+		cfg.Noise.WheelVarM2PerM /= 4
+		for i := range cfg.Sensors {
+			for k := range cfg.Sensors[i].Cov {
+				cfg.Sensors[i].Cov[k] /= 4
+			}
+		}
+	}
+	var sum trustTally
+	for k := 0; k < 6; k++ {
+		c.sc.Seed = uint64(1000 + 37*k)
+		c.sc.DurationS = 60
+		sum.add(trustViolations(t, c))
+	}
+	t.Logf("overconfident: %d of %d samples outside the 99.9%% region, %d trusted away from faults (%.3f%%)",
+		sum.outside, sum.samples, sum.floorOutside, 100*float64(sum.floorOutside)/float64(sum.samples))
+	if float64(sum.floorOutside) <= 0.001*float64(sum.samples) {
+		t.Errorf("the floor passed an overconfident filter: %d of %d samples trusted outside away from faults", sum.floorOutside, sum.samples)
+	}
 }

@@ -11,6 +11,8 @@ import (
 	"sync"
 	"time"
 
+	"google.golang.org/grpc/codes"
+
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
@@ -23,12 +25,23 @@ file order and prints the verdicts by kind, with the reasons for refusals
 naming the file and line. By default it sends as fast as the service takes
 them; -pace sends them at a multiple of real time by their stamps.
 Interrupted, it waits briefly for the verdicts of what it sent, prints the
-summary and exits 130.`)
+summary and exits 130.
+
+A sample the service answers "not taken" (status UNAVAILABLE: the robot is
+paused, as when its journal's disk is full, or its journal could not be
+written) is not in the robot. Feed then stops sending; with -wait it waits
+that long for the robot to serve again and sends those samples again, in
+order, on the same session (a sample the service took in the meantime is
+answered as before, not applied twice), then goes on with the file. Without
+-wait, or when the wait runs out, it names the first line not taken and
+exits 1: feed again with -from-line at that line.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
 	create, replace := addCreateFlags(fs, "create", "create the robot first from this YAML configuration; an existing robot must have the same one (or -replace)")
 	pace := fs.Float64("pace", 0, "send at this multiple of real time by the samples' stamps: 1 real time, 2 twice as fast, 0 as fast as possible")
+	fromLine := fs.Int("from-line", 1, "start at this line of the file (where an earlier feed says its samples were not taken)")
+	wait := fs.Duration("wait", 0, "when samples are not taken (robot paused: journal disk full or not writable), wait up to this long for the robot to serve again and send them again (0: stop and name the line)")
 	pos, err := parseArgs(fs, args, std.out, std.err)
 	if err != nil {
 		return err
@@ -41,6 +54,12 @@ summary and exits 130.`)
 	}
 	if *replace && *create == "" {
 		return usagef(fs, "-replace needs -create")
+	}
+	if *fromLine < 1 {
+		return usagef(fs, "-from-line %d: want a line number from 1", *fromLine)
+	}
+	if *wait < 0 {
+		return usagef(fs, "-wait %v: want a duration of 0 or more", *wait)
 	}
 	name, id, err := robotName(*robot)
 	if err != nil {
@@ -72,13 +91,18 @@ summary and exits 130.`)
 	t := newTally(label)
 	done := make(chan error, 1)
 	go func() { done <- t.collect(sess) }()
-	sent, sendErr := sendSamples(ctx, sess, convert.NewSampleReader(in), label, *pace, t)
+	fd := feeder{sess: sess, t: t, label: label, pace: pacer{pace: *pace}, from: *fromLine, wait: *wait, std: std,
+		serving: func(ctx context.Context) (bool, error) {
+			r, err := c.GetRobot(ctx, name)
+			return r.GetState() == pb.RobotState_ROBOT_STATE_SERVING, err
+		}}
+	sendErr := fd.run(ctx, convert.NewSampleReader(in))
 	if err := sess.CloseSend(); err != nil && sendErr == nil {
 		sendErr = err
 	}
 	recvErr := <-done
 	interrupted := ctx.Err() != nil
-	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", sent, name, verdictLine(t.counts))
+	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart())
 	for _, r := range t.reasons {
 		fmt.Fprintln(std.out, "  "+r)
 	}
@@ -88,8 +112,104 @@ summary and exits 130.`)
 		return errInterrupted
 	case sendErr != nil:
 		return sendErr
+	case recvErr != nil:
+		return recvErr
 	}
-	return recvErr
+	if line, why := t.firstNotTaken(); line > 0 {
+		return fmt.Errorf("%s:%d and the %d samples after it that were sent were not taken (%s); feed again from there when the robot serves: -from-line %d",
+			label, line, t.notTakenCount()-1, why, line)
+	}
+	return nil
+}
+
+// feeder sends a file's samples on one session, and sends again those the
+// service did not take once the robot serves again (-wait).
+type feeder struct {
+	sess    *client.Session
+	t       *tally
+	label   string
+	pace    pacer
+	from    int
+	wait    time.Duration
+	std     stdio
+	serving func(context.Context) (bool, error)
+	sent    int // samples sent, each counted once
+}
+
+// run sends every sample of sr from the line from on, until the end of
+// the input, an error, ctx done (not an error here) or samples not taken
+// that the wait does not get taken.
+func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
+	for ctx.Err() == nil {
+		if fd.t.stopped() {
+			if !fd.resend(ctx) {
+				return nil
+			}
+			continue
+		}
+		s, err := sr.Next()
+		if errors.Is(err, io.EOF) {
+			// The last samples may still be answered not taken.
+			fd.t.drain(ctx)
+			if fd.t.stopped() && fd.resend(ctx) {
+				continue
+			}
+			return nil
+		}
+		if err != nil {
+			return lineError(fd.label, sr.Line(), err)
+		}
+		if sr.Line() < fd.from {
+			continue
+		}
+		if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
+			break
+		}
+		seq := fd.sess.Last() + 1
+		fd.t.sending(sr.Line(), seq, s)
+		if _, err := fd.sess.Send(s); err != nil {
+			return err
+		}
+		fd.sent++
+	}
+	return nil
+}
+
+// resend waits for the verdicts of every sample sent, then, with a wait,
+// for the robot to serve again, and sends again, in order and with their
+// own client sequence numbers, the samples not taken. false: there is no
+// wait, it ran out or ctx is done, and the samples stay not taken.
+func (fd *feeder) resend(ctx context.Context) bool {
+	fd.t.drain(ctx)
+	if fd.wait <= 0 || ctx.Err() != nil {
+		return false
+	}
+	line, why := fd.t.firstNotTaken()
+	fmt.Fprintf(fd.std.err, "reckon feed: %s:%d on not taken (%s); waiting up to %v for the robot to serve\n", fd.label, line, why, fd.wait)
+	deadline := time.Now().Add(fd.wait)
+	for {
+		ok, err := fd.serving(ctx)
+		if err == nil && ok {
+			break
+		}
+		d := min(500*time.Millisecond, time.Until(deadline))
+		if d <= 0 {
+			return false
+		}
+		select {
+		case <-ctx.Done():
+			return false
+		case <-time.After(d):
+		}
+	}
+	again := fd.t.takeRetries()
+	fmt.Fprintf(fd.std.err, "reckon feed: the robot serves; sending %d samples again from %s:%d\n", len(again), fd.label, line)
+	for _, p := range again {
+		if err := fd.sess.SendAs(p.seq, p.sample); err != nil {
+			return false
+		}
+	}
+	return true
 }
 
 // sessionContext returns the context of an ingest session that outlives
@@ -99,32 +219,6 @@ func sessionContext(ctx context.Context) (sessCtx context.Context, stop func()) 
 	sessCtx, cancel := context.WithCancel(context.WithoutCancel(ctx))
 	stopWait := context.AfterFunc(ctx, func() { time.AfterFunc(verdictWait, cancel) })
 	return sessCtx, func() { stopWait(); cancel() }
-}
-
-// sendSamples sends every sample of sr, paced, until the end of the input,
-// an error or ctx is done (which is not an error here). Errors in the input
-// name label and the line.
-func sendSamples(ctx context.Context, sess *client.Session, sr *convert.SampleReader, label string, pace float64, t *tally) (int, error) {
-	p := pacer{pace: pace}
-	sent := 0
-	for ctx.Err() == nil {
-		s, err := sr.Next()
-		if errors.Is(err, io.EOF) {
-			return sent, nil
-		}
-		if err != nil {
-			return sent, lineError(label, sr.Line(), err)
-		}
-		if !p.wait(ctx, convert.SampleStamp(s)) {
-			break
-		}
-		t.sending(sr.Line())
-		if _, err := sess.Send(s); err != nil {
-			return sent, err
-		}
-		sent++
-	}
-	return sent, nil
 }
 
 // fileLineError is an error in an input file at a line, "file:line: what".
@@ -189,25 +283,51 @@ func (p *pacer) wait(ctx context.Context, stampNs int64) bool {
 }
 
 // tally counts the verdicts of a feed and keeps the first reasons, naming
-// the line of the sample each answers.
+// the line of the sample each answers. It keeps each sample sent until its
+// verdict comes, and those the service did not take for sending again.
 type tally struct {
-	label   string
-	mu      sync.Mutex     // protects lines and held
-	lines   []int          // lines[k-1] is the line of client sequence k
-	held    map[uint64]int // the line of each held input, by service sequence
+	label string
+	mu    sync.Mutex // protects everything below but counts and reasons
+	cond  *sync.Cond // signalled as verdicts come and when collect ends
+	lines []int      // lines[k-1] is the line of client sequence k
+	held  map[uint64]int
+	// pending holds the samples sent and not yet answered, by client
+	// sequence; retries those answered not taken, in the order sent.
+	pending map[uint64]*pb.Sample
+	retries []retry
+	whyNot  string // the first not-taken reason
+	ended   bool   // collect returned
 	counts  map[pb.Verdict]int
 	reasons []string
 }
 
-func newTally(label string) *tally {
-	return &tally{label: label, held: map[uint64]int{}, counts: map[pb.Verdict]int{}}
+// retry is a sample the service did not take.
+type retry struct {
+	seq    uint64
+	line   int
+	sample *pb.Sample
 }
 
-// sending records the line of the next sample sent.
-func (t *tally) sending(line int) {
+func newTally(label string) *tally {
+	t := &tally{label: label, held: map[uint64]int{}, pending: map[uint64]*pb.Sample{}, counts: map[pb.Verdict]int{}}
+	t.cond = sync.NewCond(&t.mu)
+	return t
+}
+
+// notTaken tells whether a verdict says the service did not take its
+// sample and it may be sent again: refused UNAVAILABLE (the robot paused,
+// or its journal not written).
+func notTaken(resp *pb.IngestResponse) bool {
+	return resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && codes.Code(resp.GetStatusCode()) == codes.Unavailable
+}
+
+// sending records the line of sample s, about to be sent as client
+// sequence seq (the next one).
+func (t *tally) sending(line int, seq uint64, s *pb.Sample) {
 	t.mu.Lock()
+	defer t.mu.Unlock()
 	t.lines = append(t.lines, line)
-	t.mu.Unlock()
+	t.pending[seq] = s
 }
 
 func (t *tally) lastLine() int {
@@ -222,10 +342,75 @@ func (t *tally) lastLine() int {
 func (t *tally) lineOf(clientSeq uint64) int {
 	t.mu.Lock()
 	defer t.mu.Unlock()
+	return t.lineOfLocked(clientSeq)
+}
+
+func (t *tally) lineOfLocked(clientSeq uint64) int {
 	if clientSeq == 0 || clientSeq > uint64(len(t.lines)) {
 		return 0
 	}
 	return t.lines[clientSeq-1]
+}
+
+// stopped tells whether samples wait to be sent again.
+func (t *tally) stopped() bool {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	return len(t.retries) > 0
+}
+
+// drain waits until every sample sent is answered, the stream ended or
+// ctx is done.
+func (t *tally) drain(ctx context.Context) {
+	stop := context.AfterFunc(ctx, func() {
+		t.mu.Lock()
+		t.cond.Broadcast()
+		t.mu.Unlock()
+	})
+	defer stop()
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	for len(t.pending) > 0 && !t.ended && ctx.Err() == nil {
+		t.cond.Wait()
+	}
+}
+
+// takeRetries returns the samples not taken, in the order sent, as
+// pending again: the caller sends them again.
+func (t *tally) takeRetries() []retry {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	rs := t.retries
+	t.retries = nil
+	for _, r := range rs {
+		t.pending[r.seq] = r.sample
+	}
+	return rs
+}
+
+// firstNotTaken returns the line of the first sample not taken (0: none)
+// and why.
+func (t *tally) firstNotTaken() (int, string) {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	if len(t.retries) == 0 {
+		return 0, ""
+	}
+	return t.retries[0].line, t.whyNot
+}
+
+func (t *tally) notTakenCount() int {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	return len(t.retries)
+}
+
+// notTakenPart is the summary's count of samples not taken, when any.
+func (t *tally) notTakenPart() string {
+	if n := t.notTakenCount(); n > 0 {
+		return fmt.Sprintf(", not taken %d", n)
+	}
+	return ""
 }
 
 func (t *tally) reason(line int, verdict pb.Verdict, why string) {
@@ -234,9 +419,39 @@ func (t *tally) reason(line int, verdict pb.Verdict, why string) {
 	}
 }
 
+// answered settles a sample's verdict: it is no longer pending, and a
+// sample not taken waits to be sent again. It reports whether the verdict
+// counts (the sample was taken or refused for good).
+func (t *tally) answered(resp *pb.IngestResponse) (line int, counts bool) {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	defer t.cond.Broadcast()
+	seq := resp.GetClientSequence()
+	line = t.lineOfLocked(seq)
+	s := t.pending[seq]
+	delete(t.pending, seq)
+	if notTaken(resp) && s != nil {
+		if len(t.retries) == 0 {
+			t.whyNot = resp.GetReason()
+		}
+		t.retries = append(t.retries, retry{seq: seq, line: line, sample: s})
+		return line, false
+	}
+	if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+		t.held[resp.GetSequence()] = line
+	}
+	return line, true
+}
+
 // collect receives the verdicts until the stream ends; io.EOF and a
 // cancelled session are not errors.
 func (t *tally) collect(sess *client.Session) error {
+	defer func() {
+		t.mu.Lock()
+		t.ended = true
+		t.cond.Broadcast()
+		t.mu.Unlock()
+	}()
 	for {
 		resp, err := sess.Recv()
 		if err != nil {
@@ -246,14 +461,10 @@ func (t *tally) collect(sess *client.Session) error {
 			return err
 		}
 		if !client.OnlyResolutions(resp) {
-			line := t.lineOf(resp.GetClientSequence())
-			t.counts[resp.GetVerdict()]++
-			if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
-				t.mu.Lock()
-				t.held[resp.GetSequence()] = line
-				t.mu.Unlock()
+			if line, ok := t.answered(resp); ok {
+				t.counts[resp.GetVerdict()]++
+				t.reason(line, resp.GetVerdict(), resp.GetReason())
 			}
-			t.reason(line, resp.GetVerdict(), resp.GetReason())
 		}
 		for _, r := range resp.GetResolved() {
 			t.counts[r.GetVerdict()]++

@@ -6,7 +6,9 @@ import (
 )
 
 // BenchmarkPredict runs Predict on 4 states and on 7 (IMU offset, odometry
-// scales and heading-rate bias).
+// scales and heading-rate bias), as a step from the wheels (PredictReported,
+// whose report carries the step's noise: with the turn scale it also moves
+// the errors-in-variables moments).
 func BenchmarkPredict(b *testing.B) {
 	for _, n := range []int{4, 7} {
 		b.Run(benchName(n), func(b *testing.B) {
@@ -16,7 +18,7 @@ func BenchmarkPredict(b *testing.B) {
 			u := Step{0.0025, 0, 0.001}
 			b.ReportAllocs()
 			for b.Loop() {
-				f.Predict(u, &cu, 0.005, &q)
+				f.PredictReported(u, &cu, &cu, 0.005, &q)
 			}
 		})
 	}

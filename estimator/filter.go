@@ -29,6 +29,13 @@ type State struct {
 	x [MaxStates]float64
 	// p is the n x n covariance, row-major with stride MaxStates.
 	p [MaxStates * MaxStates]float64
+	// eiv is, with a turn scale in the layout, M = E[c e^T] (3x3
+	// row-major): c = P[pose, s_t], the turn scale's covariance with the
+	// pose, and e the pose's error. The reported turns enter c, and their
+	// own noise enters e, so the two correlate and an update would pull
+	// s_t towards 0 (errors in variables); Update takes that expected pull
+	// out (DEVELOPERS.md, "Design: State"). Zero without a turn scale.
+	eiv [9]float64
 }
 
 // NewState returns the state of size n (3 to MaxStates) whose angular
@@ -62,7 +69,15 @@ func (s *State) CopyFrom(src *State) {
 	// One block from the first row's start to the last row's end: the
 	// columns past n between rows are zero in both.
 	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
+	s.eiv = src.eiv
 }
+
+// EIV returns the errors-in-variables moments of the turn scale (State's
+// eiv; zero without a turn scale).
+func (s *State) EIV() [9]float64 { return s.eiv }
+
+// SetEIV sets them (a state read back from a snapshot).
+func (s *State) SetEIV(m [9]float64) { s.eiv = m }
 
 // SetPacked makes s the state of size n with angular states angles whose
 // packed form (Filter.Pack) is src, copying only what is in use when s
@@ -75,6 +90,10 @@ func (s *State) SetPacked(n int, angles uint16, src []float64) {
 	copy(s.x[:n], src[:n])
 	for i := 0; i < n; i++ {
 		copy(s.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
+	}
+	s.eiv = [9]float64{}
+	if len(src) >= n+n*n+9 {
+		copy(s.eiv[:], src[n+n*n:])
 	}
 }
 
@@ -252,16 +271,27 @@ func (f *Filter) Var(i int) float64 { return f.st.Var(i) }
 func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
 
 // PackedSize returns the length of the filter's packed estimate: the mean
-// and the covariance, N + N*N values.
-func (f *Filter) PackedSize() int { return f.st.n + f.st.n*f.st.n }
+// and the covariance, N + N*N values, and with a turn scale the 9
+// errors-in-variables moments (State's eiv).
+func (f *Filter) PackedSize() int {
+	n := f.st.n + f.st.n*f.st.n
+	if f.layout.turnScale >= 0 {
+		n += 9
+	}
+	return n
+}
 
 // Pack writes the estimate into dst (PackedSize values: the mean, then the
-// covariance row-major), the compact form a history of checkpoints keeps.
+// covariance row-major, then the moments), the compact form a history of
+// checkpoints keeps.
 func (f *Filter) Pack(dst []float64) {
 	n := f.st.n
 	copy(dst[:n], f.st.x[:n])
 	for i := 0; i < n; i++ {
 		copy(dst[n+i*n:n+(i+1)*n], f.st.p[i*stride:i*stride+n])
+	}
+	if f.layout.turnScale >= 0 {
+		copy(dst[n+n*n:n+n*n+9], f.st.eiv[:])
 	}
 }
 
@@ -272,6 +302,9 @@ func (f *Filter) Unpack(src []float64) {
 	copy(f.st.x[:n], src[:n])
 	for i := 0; i < n; i++ {
 		copy(f.st.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
+	}
+	if f.layout.turnScale >= 0 {
+		copy(f.st.eiv[:], src[n+n*n:n+n*n+9])
 	}
 }
 
@@ -301,6 +334,8 @@ type transition struct {
 	u  Step
 	fu [9]float64
 	c  chord
+	// raw is the step Jacobian d(pose')/d(true step), row-major.
+	raw [9]float64
 }
 
 // motion fills t for the step u reported over dtS seconds from the state st.
@@ -315,8 +350,8 @@ func (f *Filter) motion(t *transition, st *State, u Step, dtS float64) {
 	}
 	t.u = Step{sf * u.ForwardM, sf * u.LeftM, stt*u.TurnRad + br*dtS}
 	t.c.set(st.x[IHead], t.u)
-	var fu [9]float64
-	t.c.jacobians(nil, &fu)
+	fu := &t.raw
+	t.c.jacobians(nil, fu)
 	// Columns of E: d(pose')/d(heading) less the identity, and the
 	// derivatives through the true step u' = (s_f a, s_f b, s_t dth + b_r dt).
 	t.cols[0], t.nc = IHead, 1
@@ -354,8 +389,30 @@ func (f *Filter) motion(t *transition, st *State, u Step, dtS float64) {
 //
 //	x' = f(x, u),  P' = F P F^T + G cu G^T + diag(q) + Q_bias
 func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]float64) {
+	f.PredictReported(u, cu, nil, dtS, q)
+}
+
+// PredictReported is Predict for a step whose report carries noise of its
+// own: rep (3x3 row-major, nil for none) is the part of cu that lies in the
+// reported step (the wheels' noise, not the scrub or slip the wheels do not
+// see; none for steps from commanded velocities, whose noise is the
+// truth's departure from them). With a turn scale in the layout it moves
+// the errors-in-variables moments (State's eiv):
+//
+//	M' = F M F^T - sum_k d_k (G rep_k)^T
+//
+// F the pose block of the transition, G the step Jacobian times the
+// scales, d_k the change of P[pose, s_t] per unit of reported step
+// component k (d(pose')/d(step_k) times P[s_f, s_t] for forward and left,
+// times P[s_t, s_t] for the turn) and rep_k column k of rep: the reported
+// step enters P[pose, s_t] and its noise enters the pose's error with the
+// opposite sign.
+func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[MaxStates]float64) {
 	var t transition
 	f.motion(&t, &f.st, u, dtS)
+	if f.layout.turnScale >= 0 {
+		f.predictEIV(&t, rep)
+	}
 	n := f.st.n
 	np := t.c.advance(f.st.Pose(), t.u)
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
@@ -415,6 +472,46 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 	}
 	// Everything outside the pose block was written symmetric.
 	symmetrise(P[:], 3, stride)
+}
+
+// predictEIV moves the turn scale's errors-in-variables moments over the
+// step of t (PredictReported), before P is moved.
+func (f *Filter) predictEIV(t *transition, rep *[9]float64) {
+	m := &f.st.eiv
+	// F = I + e[:, heading] in the heading column: F M, then (F M) F^T.
+	var fm [9]float64
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			fm[a*3+b] = m[a*3+b] + t.e[a][0]*m[IHead*3+b]
+		}
+	}
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			m[a*3+b] = fm[a*3+b] + fm[a*3+IHead]*t.e[b][0]
+		}
+	}
+	if rep == nil {
+		return
+	}
+	ts, fs := f.layout.turnScale, f.layout.forwardScale
+	pts := f.st.p[ts*stride+ts]
+	pfs := f.st.p[fs*stride+ts]
+	c := [3]float64{pfs, pfs, pts}
+	// g[k] = G rep_k, the pose error's covariance with reported component k.
+	var g [3][3]float64
+	for k := 0; k < 3; k++ {
+		for b := 0; b < 3; b++ {
+			g[k][b] = t.fu[b*3]*rep[k] + t.fu[b*3+1]*rep[3+k] + t.fu[b*3+2]*rep[6+k]
+		}
+	}
+	for a := 0; a < 3; a++ {
+		for k := 0; k < 3; k++ {
+			d := t.raw[a*3+k] * c[k]
+			for b := 0; b < 3; b++ {
+				m[a*3+b] -= d * g[k][b]
+			}
+		}
+	}
 }
 
 // decay applies the bias blocks' Gauss-Markov transition over dtS seconds:
@@ -536,6 +633,69 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	return out, f.correct(m, &v)
 }
 
+// eivPull returns the expected pull of this update on the turn scale that
+// the reported turns' own noise causes, sum_ab A_ab M_ab with A = H_p^T
+// S^-1 H_p over the pose columns: E[K_s v] = E[c^T H_p^T S^-1 (H_p e + w)]
+// for the scale's gain row K_s = c^T H_p^T S^-1 (bias-compensated least
+// squares; T. Soderstrom, "Errors-in-variables methods in system
+// identification", Automatica 43(6), 2007, from memory). 0 when the update
+// leaves the turn scale where it is.
+func (f *Filter) eivPull(d int) float64 {
+	ts := f.layout.turnScale
+	if ts < 0 || (f.k[ts*3] == 0 && f.k[ts*3+1] == 0 && f.k[ts*3+2] == 0) {
+		return 0
+	}
+	var w [3][3]float64 // w[b] = S^-1 H[:, b]
+	for b := 0; b < 3; b++ {
+		var col [3]float64
+		for j := 0; j < d; j++ {
+			col[j] = f.h[j*stride+b]
+		}
+		cholSolveVec(f.l[:], d, measStride, col[:], w[b][:])
+	}
+	m := &f.st.eiv
+	var pull float64
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			var ab float64
+			for j := 0; j < d; j++ {
+				ab += f.h[j*stride+a] * w[b][j]
+			}
+			pull += ab * m[a*3+b]
+		}
+	}
+	return pull
+}
+
+// updateEIV moves the errors-in-variables moments through an update with
+// gain f.k: both c and the pose's error are multiplied by T = I - K_p H_p,
+// the pose block of I - K H, so M' = T M T^T.
+func (f *Filter) updateEIV(d int) {
+	var t [9]float64
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			var kh float64
+			for j := 0; j < d; j++ {
+				kh += f.k[a*3+j] * f.h[j*stride+b]
+			}
+			t[a*3+b] = -kh
+		}
+		t[a*3+a]++
+	}
+	m := &f.st.eiv
+	var tm [9]float64
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			tm[a*3+b] = t[a*3]*m[b] + t[a*3+1]*m[3+b] + t[a*3+2]*m[6+b]
+		}
+	}
+	for a := 0; a < 3; a++ {
+		for b := 0; b < 3; b++ {
+			m[a*3+b] = tm[a*3]*t[b*3] + tm[a*3+1]*t[b*3+1] + tm[a*3+2]*t[b*3+2]
+		}
+	}
+}
+
 // innovation writes z - h(x) into v (angles wrapped) and the Jacobian H
 // into f.h.
 func (f *Filter) innovation(m *Measurement, v *[3]float64) error {
@@ -632,12 +792,17 @@ func (f *Filter) gain(d int, hold uint16) {
 func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 	n, d := f.st.n, m.Kind.Dim()
 	f.saved.CopyFrom(&f.st)
+	pull := f.eivPull(d)
 	for i := 0; i < n; i++ {
 		var acc float64
 		for j := 0; j < d; j++ {
 			acc += f.k[i*3+j] * v[j]
 		}
 		f.st.x[i] += acc
+	}
+	if ts := f.layout.turnScale; ts >= 0 {
+		f.st.x[ts] -= pull
+		f.updateEIV(d)
 	}
 	f.st.wrapAngles()
 	f.joseph(n, d)
@@ -723,6 +888,7 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 		return fmt.Errorf("pose covariance: %w", err)
 	}
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = pose.X, pose.Y, Wrap(pose.Heading)
+	f.st.eiv = [9]float64{} // the pose no longer correlates with the scales
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
 			f.st.p[i*stride+j] = c[i*3+j]

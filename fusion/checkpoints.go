@@ -92,4 +92,8 @@ func (r *Robot) setCheckpoint(c *cpSlot, cp *checkpoint) {
 	d := r.slotData(c.Slot)
 	cp.est.MeanInto(d[:r.n])
 	cp.est.CovarianceInto(d[r.n:])
+	if k := r.n + r.n*r.n; len(d) > k {
+		m := cp.est.EIV()
+		copy(d[k:], m[:])
+	}
 }

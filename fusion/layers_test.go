@@ -46,7 +46,7 @@ var (
 		{pkg: "server", code: server, tests: []string{"fusion/fusiontest", "server/journal/faultfs"}},
 		{pkg: "server/daemon", code: daemon, tests: []string{"fusion/fusiontest"}},
 		{pkg: "server/cmd/...", code: binary, tests: []string{"fusion/fusiontest"}},
-		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "fusion/calib", "clients/...")},
+		{pkg: "clients/...", code: append(binary[:7:7], "fusion/fusiontest", "fusion/calib", "clients/..."), tests: []string{"server/journal/faultfs"}},
 	}
 )
 

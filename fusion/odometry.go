@@ -73,6 +73,7 @@ func (r *Robot) odometryEntry(o *Odometry, res *odoResult) error {
 	}
 	e := &res.e
 	e.kind, e.t0, e.t1 = entOdo, t0, o.StampNs
+	e.scrub, e.wheels = 0, o.Step == nil
 	if o.Step != nil {
 		e.step = *o.Step
 		r.cfg.Noise.stepNoise(&e.cov, e.step, float64(o.StampNs-t0)*1e-9)
@@ -241,7 +242,8 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 		// On the turn summed over fixed blocks of time (scrub.go), taken
 		// into the robot only when the sample is.
 		res.scrub = r.scrub
-		e.cov[8] += n.TurnVarRad2PerRad * res.scrub.charge(e.t0, e.t1, e.step.TurnRad)
+		e.scrub = n.TurnVarRad2PerRad * res.scrub.charge(e.t0, e.t1, e.step.TurnRad)
+		e.cov[8] += e.scrub
 	}
 	return nil
 }

@@ -24,16 +24,21 @@ import (
 // that the scrub in turns is charged on (scrub.go); a version 7, 6 or 5
 // snapshot lacks it and starts a fresh block, so its robot's next steps may
 // take a little less scrub than the robot that wrote it would have.
+// Version 9: the turn scale's errors-in-variables moments in every
+// estimate (estimator.State's EIV) and, in odometry entries, the scrub
+// part of the step's turn variance and whether the step came from the
+// wheels; a version 8 to 5 snapshot lacks them, and its robot starts the
+// moments at zero and replays its window's steps without them.
 // A change of layout or meaning bumps it, with a new golden file in
 // testdata/snapshots.
-const SnapshotVersion = 8
+const SnapshotVersion = 9
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
 // this one; 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
 // taken as white); and 5, which lacks the run fields too (a robot that never
 // started a second run).
-func readsVersion(v uint64) bool { return v == SnapshotVersion || v == 7 || v == 6 || v == 5 }
+func readsVersion(v uint64) bool { return v >= 5 && v <= SnapshotVersion }
 
 // ErrSnapshot marks a snapshot that cannot be restored: damaged, of another
 // version, or of a robot with another configuration.
@@ -275,11 +280,15 @@ func encState(e *wenc, s *estimator.State) {
 	e.uint(1, uint64(n))
 	e.doubles(2, x[:n])
 	e.doubles(3, p[:n*n])
+	if m := s.EIV(); m != ([9]float64{}) {
+		e.doubles(4, m[:])
+	}
 }
 
 func decState(d *wdec) estimator.State {
 	var n uint64
 	var x, p []float64
+	var m [9]float64
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
@@ -288,6 +297,8 @@ func decState(d *wdec) estimator.State {
 			x = d.doubleSlice(num)
 		case 3:
 			p = d.doubleSlice(num)
+		case 4:
+			d.doubles(num, m[:])
 		default:
 			d.fail("estimate: unknown field %d", num)
 		}
@@ -300,7 +311,9 @@ func decState(d *wdec) estimator.State {
 		d.fail("estimate of size %d with %d mean and %d covariance values", n, len(x), len(p))
 		return estimator.State{}
 	}
-	return estimator.NewState(int(n), d.angles, x, p)
+	st := estimator.NewState(int(n), d.angles, x, p)
+	st.SetEIV(m)
+	return st
 }
 
 func encCheckpoint(e *wenc, c *checkpoint) {
@@ -342,6 +355,11 @@ func (r *Robot) encEntry(e *wenc, en *entry) {
 	e.bool(15, en.out.Gated)
 	e.bool(16, en.initialised)
 	e.bool(17, en.keepOffset)
+	if en.wheels {
+		// Absent for other entries, as in snapshots before version 9.
+		e.double(18, en.scrub)
+		e.bool(19, true)
+	}
 }
 
 // decEntry reads an entry and stores its checkpoint in a slot of r's.
@@ -390,6 +408,10 @@ func (r *Robot) decEntry(d *wdec) entry {
 			en.initialised = d.bool(num)
 		case 17:
 			en.keepOffset = d.bool(num)
+		case 18:
+			en.scrub = d.double(num)
+		case 19:
+			en.wheels = d.bool(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}

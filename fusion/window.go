@@ -32,9 +32,15 @@ type entry struct {
 	t0, t1 int64
 	seq    uint64
 
-	// entOdo: the body step over [t0, t1] and its covariance.
-	step estimator.Step
-	cov  [9]float64
+	// entOdo: the body step over [t0, t1] and its covariance; wheels: the
+	// step was solved from the wheels (or an IMU turn row), whose report
+	// carries their noise, all of cov but scrub, the variance added to
+	// its turn for rotation the wheels do not see (estimator's
+	// PredictReported).
+	step   estimator.Step
+	cov    [9]float64
+	scrub  float64
+	wheels bool
 
 	// entMeas.
 	meas   estimator.Measurement
@@ -156,7 +162,13 @@ func (r *Robot) predict(f *estimator.Filter, e *entry) {
 	var q [estimator.MaxStates]float64
 	dt := float64(e.t1-e.t0) * 1e-9
 	r.processNoise(&q, e.step, dt)
-	f.Predict(e.step, &e.cov, dt, &q)
+	if !e.wheels {
+		f.Predict(e.step, &e.cov, dt, &q)
+		return
+	}
+	rep := e.cov
+	rep[8] -= e.scrub
+	f.PredictReported(e.step, &e.cov, &rep, dt, &q)
 }
 
 // replayFrom rewinds the filter to the checkpoint before live entry i and
@@ -289,6 +301,7 @@ func splitOdo(e *entry, t int64, a, b *entry) {
 		for k := range e.cov {
 			a.cov[k] = e.cov[k] * f
 		}
+		a.scrub = e.scrub * f
 	}
 	if b != nil {
 		*b = *e
@@ -297,6 +310,7 @@ func splitOdo(e *entry, t int64, a, b *entry) {
 		for k := range e.cov {
 			b.cov[k] = e.cov[k] * (1 - f)
 		}
+		b.scrub = e.scrub * (1 - f)
 	}
 }
 

@@ -312,8 +312,10 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 8 reads 7, 6 and 5: a version 7 snapshot lacks the
-	// scrub's block sum, 6 the carried odometry's white part, 5 the run).
+	// knows (version 9 reads 8 to 5: a version 8 snapshot lacks the turn
+	// scale's errors-in-variables moments and the odometry entries' scrub
+	// and wheels fields, 7 the scrub's block sum, 6 the carried odometry's
+	// white part, 5 the run).
 	Version uint32 `protobuf:"varint,1,opt,name=version,proto3" json:"version,omitempty"`
 	// The filter's estimate now.
 	Filter *EstimateState `protobuf:"bytes,2,opt,name=filter,proto3" json:"filter,omitempty"`
@@ -699,7 +701,12 @@ type EstimateState struct {
 	// "Design: State").
 	Mean []float64 `protobuf:"fixed64,2,rep,packed,name=mean,proto3" json:"mean,omitempty"`
 	// The covariance, size x size row-major.
-	Covariance    []float64 `protobuf:"fixed64,3,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	Covariance []float64 `protobuf:"fixed64,3,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
+	// With a turn scale (version 9): E[c e^T], 3x3 row-major, c the turn
+	// scale's covariance with the pose and e the pose's error, which the
+	// update takes the errors-in-variables pull out with (DEVELOPERS.md,
+	// "Design: State"). Absent when all zero.
+	TurnScaleEiv  []float64 `protobuf:"fixed64,4,rep,packed,name=turn_scale_eiv,json=turnScaleEiv,proto3" json:"turn_scale_eiv,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -751,6 +758,13 @@ func (x *EstimateState) GetMean() []float64 {
 func (x *EstimateState) GetCovariance() []float64 {
 	if x != nil {
 		return x.Covariance
+	}
+	return nil
+}
+
+func (x *EstimateState) GetTurnScaleEiv() []float64 {
+	if x != nil {
+		return x.TurnScaleEiv
 	}
 	return nil
 }
@@ -848,6 +862,12 @@ type SnapshotEntry struct {
 	// Reseed: a move recovery that keeps the IMU offset instead of marking it
 	// for initialisation.
 	KeepImuOffset bool `protobuf:"varint,17,opt,name=keep_imu_offset,json=keepImuOffset,proto3" json:"keep_imu_offset,omitempty"`
+	// Odometry (version 9): the variance added to the step's turn for
+	// rotation the wheels do not see (scrub), rad^2, and whether the step
+	// was solved from the wheels, whose report carries the rest of its
+	// covariance as noise of its own.
+	ScrubVarRad2  float64 `protobuf:"fixed64,18,opt,name=scrub_var_rad2,json=scrubVarRad2,proto3" json:"scrub_var_rad2,omitempty"`
+	FromWheels    bool    `protobuf:"varint,19,opt,name=from_wheels,json=fromWheels,proto3" json:"from_wheels,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -997,6 +1017,20 @@ func (x *SnapshotEntry) GetInitialised() bool {
 func (x *SnapshotEntry) GetKeepImuOffset() bool {
 	if x != nil {
 		return x.KeepImuOffset
+	}
+	return false
+}
+
+func (x *SnapshotEntry) GetScrubVarRad2() float64 {
+	if x != nil {
+		return x.ScrubVarRad2
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetFromWheels() bool {
+	if x != nil {
+		return x.FromWheels
 	}
 	return false
 }
@@ -1843,16 +1877,17 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"scrubBlock\x12+\n" +
 	"\x12scrub_turn_sum_rad\x18$ \x01(\x01R\x0fscrubTurnSumRad\x12-\n" +
 	"\x13scrub_turn_peak_rad\x18% \x01(\x01R\x10scrubTurnPeakRadB\x17\n" +
-	"\x15_last_imu_heading_rad\"W\n" +
+	"\x15_last_imu_heading_rad\"}\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
 	"\x04mean\x18\x02 \x03(\x01R\x04mean\x12\x1e\n" +
 	"\n" +
 	"covariance\x18\x03 \x03(\x01R\n" +
-	"covariance\"m\n" +
+	"covariance\x12$\n" +
+	"\x0eturn_scale_eiv\x18\x04 \x03(\x01R\fturnScaleEiv\"m\n" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
-	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xa3\x04\n" +
+	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xea\x04\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -1871,7 +1906,10 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\rnis_dimension\x18\x0e \x01(\x05R\fnisDimension\x12\x14\n" +
 	"\x05gated\x18\x0f \x01(\bR\x05gated\x12 \n" +
 	"\vinitialised\x18\x10 \x01(\bR\vinitialised\x12&\n" +
-	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\"\xf6\x01\n" +
+	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\x12$\n" +
+	"\x0escrub_var_rad2\x18\x12 \x01(\x01R\fscrubVarRad2\x12\x1f\n" +
+	"\vfrom_wheels\x18\x13 \x01(\bR\n" +
+	"fromWheels\"\xf6\x01\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +

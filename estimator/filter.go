@@ -410,7 +410,7 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[MaxStates]float64) {
 	var t transition
 	f.motion(&t, &f.st, u, dtS)
-	if f.layout.turnScale >= 0 {
+	if f.layout.turnScale >= 0 && (rep != nil || f.st.eiv != [9]float64{}) {
 		f.predictEIV(&t, rep)
 	}
 	n := f.st.n
@@ -642,26 +642,27 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 // leaves the turn scale where it is.
 func (f *Filter) eivPull(d int) float64 {
 	ts := f.layout.turnScale
-	if ts < 0 || (f.k[ts*3] == 0 && f.k[ts*3+1] == 0 && f.k[ts*3+2] == 0) {
+	if ts < 0 || f.st.eiv == [9]float64{} || (f.k[ts*3] == 0 && f.k[ts*3+1] == 0 && f.k[ts*3+2] == 0) {
 		return 0
 	}
-	var w [3][3]float64 // w[b] = S^-1 H[:, b]
-	for b := 0; b < 3; b++ {
-		var col [3]float64
-		for j := 0; j < d; j++ {
-			col[j] = f.h[j*stride+b]
-		}
-		cholSolveVec(f.l[:], d, measStride, col[:], w[b][:])
-	}
+	// sum_ab A_ab M_ab = sum_ij (S^-1)_ij (H_p M H_p^T)_ij: d solves for
+	// the columns of S^-1 instead of three for S^-1 H_p.
 	m := &f.st.eiv
-	var pull float64
-	for a := 0; a < 3; a++ {
+	var hm [3][3]float64 // H_p M
+	for i := 0; i < d; i++ {
+		h := f.h[i*stride : i*stride+3]
 		for b := 0; b < 3; b++ {
-			var ab float64
-			for j := 0; j < d; j++ {
-				ab += f.h[j*stride+a] * w[b][j]
-			}
-			pull += ab * m[a*3+b]
+			hm[i][b] = h[0]*m[b] + h[1]*m[3+b] + h[2]*m[6+b]
+		}
+	}
+	var pull float64
+	for j := 0; j < d; j++ {
+		var e, sj [3]float64 // column j of S^-1
+		e[j] = 1
+		cholSolveVec(f.l[:], d, measStride, e[:], sj[:])
+		for i := 0; i < d; i++ {
+			h := f.h[j*stride : j*stride+3]
+			pull += sj[i] * (hm[i][0]*h[0] + hm[i][1]*h[1] + hm[i][2]*h[2])
 		}
 	}
 	return pull
@@ -800,7 +801,7 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 		}
 		f.st.x[i] += acc
 	}
-	if ts := f.layout.turnScale; ts >= 0 {
+	if ts := f.layout.turnScale; ts >= 0 && f.st.eiv != [9]float64{} {
 		f.st.x[ts] -= pull
 		f.updateEIV(d)
 	}

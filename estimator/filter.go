@@ -475,43 +475,49 @@ func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[M
 }
 
 // predictEIV moves the turn scale's errors-in-variables moments over the
-// step of t (PredictReported), before P is moved.
+// step of t (PredictReported), before P is moved. Written out by hand: it
+// runs on every step, replays of the window included.
 func (f *Filter) predictEIV(t *transition, rep *[9]float64) {
 	m := &f.st.eiv
-	// F = I + e[:, heading] in the heading column: F M, then (F M) F^T.
-	var fm [9]float64
-	for a := 0; a < 3; a++ {
-		for b := 0; b < 3; b++ {
-			fm[a*3+b] = m[a*3+b] + t.e[a][0]*m[IHead*3+b]
-		}
-	}
-	for a := 0; a < 3; a++ {
-		for b := 0; b < 3; b++ {
-			m[a*3+b] = fm[a*3+b] + fm[a*3+IHead]*t.e[b][0]
-		}
-	}
-	if rep == nil {
-		return
-	}
-	ts, fs := f.layout.turnScale, f.layout.forwardScale
-	pts := f.st.p[ts*stride+ts]
-	pfs := f.st.p[fs*stride+ts]
-	c := [3]float64{pfs, pfs, pts}
-	// g[k] = G rep_k, the pose error's covariance with reported component k.
-	var g [3][3]float64
-	for k := 0; k < 3; k++ {
-		for b := 0; b < 3; b++ {
-			g[k][b] = t.fu[b*3]*rep[k] + t.fu[b*3+1]*rep[3+k] + t.fu[b*3+2]*rep[6+k]
-		}
-	}
-	for a := 0; a < 3; a++ {
+	// F = I + e in the heading column, e = (e0, e1, 0): F M adds e_a times
+	// row 2 to rows 0 and 1; (F M) F^T adds e_b times column 2 to columns
+	// 0 and 1.
+	e0, e1 := t.e[0][0], t.e[1][0]
+	m0, m1, m2 := m[0]+e0*m[6], m[1]+e0*m[7], m[2]+e0*m[8]
+	m3, m4, m5 := m[3]+e1*m[6], m[4]+e1*m[7], m[5]+e1*m[8]
+	m6, m7, m8 := m[6], m[7], m[8]
+	m0, m1 = m0+m2*e0, m1+m2*e1
+	m3, m4 = m3+m5*e0, m4+m5*e1
+	m6, m7 = m6+m8*e0, m7+m8*e1
+	if rep != nil {
+		// M -= D R G^T: D = raw diag(c), c = (P[s_f,s_t], P[s_f,s_t],
+		// P[s_t,s_t]); R = rep; G = t.fu.
+		ts, fs := f.layout.turnScale, f.layout.forwardScale
+		pts, pfs := f.st.p[ts*stride+ts], f.st.p[fs*stride+ts]
+		r, g, w := rep, &t.fu, &t.raw
+		// rg[k][b] = (R G^T)[k][b] = sum_j R[k][j] G[b][j], scaled by c_k.
+		var rg [3][3]float64
 		for k := 0; k < 3; k++ {
-			d := t.raw[a*3+k] * c[k]
-			for b := 0; b < 3; b++ {
-				m[a*3+b] -= d * g[k][b]
+			c := pfs
+			if k == 2 {
+				c = pts
 			}
+			r0, r1, r2 := r[k*3]*c, r[k*3+1]*c, r[k*3+2]*c
+			rg[k][0] = r0*g[0] + r1*g[1] + r2*g[2]
+			rg[k][1] = r0*g[3] + r1*g[4] + r2*g[5]
+			rg[k][2] = r0*g[6] + r1*g[7] + r2*g[8]
 		}
+		m0 -= w[0]*rg[0][0] + w[1]*rg[1][0] + w[2]*rg[2][0]
+		m1 -= w[0]*rg[0][1] + w[1]*rg[1][1] + w[2]*rg[2][1]
+		m2 -= w[0]*rg[0][2] + w[1]*rg[1][2] + w[2]*rg[2][2]
+		m3 -= w[3]*rg[0][0] + w[4]*rg[1][0] + w[5]*rg[2][0]
+		m4 -= w[3]*rg[0][1] + w[4]*rg[1][1] + w[5]*rg[2][1]
+		m5 -= w[3]*rg[0][2] + w[4]*rg[1][2] + w[5]*rg[2][2]
+		m6 -= w[6]*rg[0][0] + w[7]*rg[1][0] + w[8]*rg[2][0]
+		m7 -= w[6]*rg[0][1] + w[7]*rg[1][1] + w[8]*rg[2][1]
+		m8 -= w[6]*rg[0][2] + w[7]*rg[1][2] + w[8]*rg[2][2]
 	}
+	*m = [9]float64{m0, m1, m2, m3, m4, m5, m6, m7, m8}
 }
 
 // decay applies the bias blocks' Gauss-Markov transition over dtS seconds:

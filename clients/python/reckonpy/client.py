@@ -11,6 +11,7 @@ from __future__ import annotations
 import dataclasses
 import ipaddress
 import queue
+import secrets
 import threading
 from typing import Iterator, List, Optional, Sequence, Tuple
 
@@ -113,13 +114,25 @@ class IngestSession:
     sample this session sent.
     close() ends the sending side; the iteration then ends once the
     service has answered everything. Use it as a context manager to close
-    it on leaving the block."""
+    it on leaving the block.
 
-    def __init__(self, stub: fs_grpc.FusionServiceStub, robot: str, metadata):
+    Every request carries the session's random id (session_id) and its
+    client sequence, so that a sample sent again is answered with its
+    original verdict instead of being applied twice: after a broken stream,
+    open a new session with Client.ingest(robot, resume=(old.session_id,
+    old.last)) and send the samples whose verdicts did not arrive again
+    with send_as(seq, sample). A sample answered "invalid" with status_code
+    14 (UNAVAILABLE: the robot paused, as when its journal's disk is full,
+    or its journal not written) was not taken: send it again, with send_as
+    and its own number, once the robot serves (get_robot's state)."""
+
+    def __init__(self, stub: fs_grpc.FusionServiceStub, robot: str, metadata,
+                 session_id: Optional[str] = None, last: int = 0):
         self._robot = robot_name(robot)
+        self._session_id = session_id or secrets.token_hex(16)
         self._queue: "queue.Queue" = queue.Queue()
         self._lock = threading.Lock()
-        self._next = 0
+        self._next = last
         self._closed = False
         self._held = {}  # robot sequence -> client_sequence of a sample this session had held
         self._call = stub.Ingest(self._requests(), metadata=metadata)
@@ -136,16 +149,43 @@ class IngestSession:
         """robot is the resource name of the robot this session feeds."""
         return self._robot
 
+    @property
+    def session_id(self) -> str:
+        """session_id is the random id every request of the session carries
+        (32 hexadecimal digits)."""
+        return self._session_id
+
+    @property
+    def last(self) -> int:
+        """last is the client sequence number of the last sample sent."""
+        with self._lock:
+            return self._next
+
     def send(self, sample: samples_pb2.Sample) -> int:
         """send queues one reckon.v1.Sample and returns its client sequence
-        number (1, 2, ...), which its verdict carries."""
+        number (1, 2, ... or on from a resumed session's last), which its
+        verdict carries."""
         with self._lock:
             if self._closed:
                 raise ValueError("IngestSession.send: the session is closed")
             self._next += 1
             seq = self._next
-            self._queue.put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample))
+            self._queue.put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample,
+                                                 session_id=self._session_id))
         return seq
+
+    def send_as(self, seq: int, sample: samples_pb2.Sample) -> None:
+        """send_as sends a sample again with the client sequence number seq
+        it had before, in this session or the one it resumes: the service
+        answers it with its original verdict if it took it, and takes it
+        otherwise."""
+        if seq < 1:
+            raise ValueError("IngestSession.send_as: client sequence numbers start at 1")
+        with self._lock:
+            if self._closed:
+                raise ValueError("IngestSession.send_as: the session is closed")
+            self._queue.put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample,
+                                                 session_id=self._session_id))
 
     def close(self) -> None:
         """close ends the sending side of the stream; verdicts still to come
@@ -285,9 +325,15 @@ class Client:
         """delete_robot deletes the robot; the service closes its journal."""
         self._unary(self._stub.DeleteRobot, fs_pb2.DeleteRobotRequest(name=robot_name(robot)), timeout)
 
-    def ingest(self, robot: str) -> IngestSession:
-        """ingest opens a long-lived IngestSession feeding robot."""
-        return IngestSession(self._stub, robot, self._md)
+    def ingest(self, robot: str, resume: Optional[Tuple[str, int]] = None) -> IngestSession:
+        """ingest opens a long-lived IngestSession feeding robot. resume,
+        (session_id, last) of an earlier session, continues it: the same id,
+        numbers from last + 1, and the final verdicts of its held samples
+        decided while no stream of it was open."""
+        if resume is None:
+            return IngestSession(self._stub, robot, self._md)
+        session_id, last = resume
+        return IngestSession(self._stub, robot, self._md, session_id=session_id, last=last)
 
     def watch(self, robot: str, min_interval_ns: int = 0) -> Watch:
         """watch subscribes to robot's fused poses, at most one every

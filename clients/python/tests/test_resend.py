@@ -1,0 +1,67 @@
+"""A Python session's samples sent again after a broken stream: a new
+session that resumes the first (its id, numbering on from its last) sends
+the last samples again with their own numbers; the service answers each
+with its original verdict and takes none twice."""
+
+import unittest
+
+import support
+
+import reckonpy
+
+
+class ResendTest(unittest.TestCase):
+    def test_resend_is_answered_not_applied_again(self):
+        daemon = support.Daemon()
+        self.addCleanup(daemon.stop)
+        client = daemon.connect()
+        self.addCleanup(client.close)
+        client.create_robot("cart", support.cart_config())
+        samples = support.read_samples()
+        first, rest = samples[:-20], samples[-20:]
+
+        a = client.ingest("cart")
+        self.assertRegex(a.session_id, r"^[0-9a-f]{32}$")
+        collector = support.Collector(a)
+        sent = {}  # client_sequence -> sample
+        for s in first:
+            sent[a.send(s)] = s
+        # Each sample's own verdict (a held one's resolution comes apart,
+        # without a status code): what a resend is answered with.
+        original = {v.client_sequence: v for v in collector.finish() if v.status_code is not None}
+        self.assertEqual(a.last, len(first))
+        inputs = client.get_robot("cart").input_count
+        self.assertEqual(inputs, len(first))
+
+        # The stream broke before the last ten verdicts arrived, as far as
+        # the vision process knows: it resumes and sends those again.
+        b = client.ingest("cart", resume=(a.session_id, a.last))
+        self.assertEqual(b.session_id, a.session_id)
+        collector = support.Collector(b)
+        again = list(range(a.last - 9, a.last + 1))
+        for seq in again:
+            b.send_as(seq, sent[seq])
+        new = [b.send(s) for s in rest]
+        verdicts = [v for v in collector.finish() if v.status_code is not None]
+        by_seq = {v.client_sequence: v for v in verdicts}
+        for seq in again:
+            self.assertEqual(by_seq[seq].sequence, original[seq].sequence, f"client sequence {seq}")
+            self.assertEqual(by_seq[seq].verdict, original[seq].verdict, f"client sequence {seq}")
+        self.assertEqual(new, list(range(a.last + 1, a.last + 1 + len(rest))))
+        self.assertEqual(client.get_robot("cart").input_count, len(samples),
+                         "the samples sent again were applied twice, or the new ones not at all")
+
+    def test_send_as_refuses_nonsense(self):
+        daemon = support.Daemon()
+        self.addCleanup(daemon.stop)
+        client = daemon.connect()
+        self.addCleanup(client.close)
+        client.create_robot("cart", support.cart_config())
+        s = client.ingest("cart")
+        self.addCleanup(s.cancel)
+        with self.assertRaises(ValueError):
+            s.send_as(0, support.read_samples()[0])
+
+
+if __name__ == "__main__":
+    unittest.main()

@@ -34,6 +34,7 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/credentials"
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/grpc/keepalive"
@@ -286,6 +287,16 @@ func (s *Session) Last() uint64 {
 // its original verdict if it took it, and takes it otherwise.
 func (s *Session) SendAs(seq uint64, sample *pb.Sample) error {
 	return s.stream.Send(&pb.IngestRequest{Robot: s.robot, ClientSequence: seq, Sample: sample, SessionId: s.id})
+}
+
+// NotTaken tells whether a verdict says the service did not take its
+// sample and it should be sent again: refused with status UNAVAILABLE, as
+// when the robot is paused (its journal's disk is full) or the sample's
+// batch could not be journaled. Send it again with SendAs and its own
+// client sequence once the robot serves (GetRobot's state): a sample the
+// robot did take is answered with its first verdict, not applied twice.
+func NotTaken(resp *pb.IngestResponse) bool {
+	return resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && codes.Code(resp.GetStatusCode()) == codes.Unavailable
 }
 
 // OnlyResolutions tells whether a response answers no sample of its own

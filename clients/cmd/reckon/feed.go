@@ -11,8 +11,6 @@ import (
 	"sync"
 	"time"
 
-	"google.golang.org/grpc/codes"
-
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
@@ -314,13 +312,6 @@ func newTally(label string) *tally {
 	return t
 }
 
-// notTaken tells whether a verdict says the service did not take its
-// sample and it may be sent again: refused UNAVAILABLE (the robot paused,
-// or its journal not written).
-func notTaken(resp *pb.IngestResponse) bool {
-	return resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && codes.Code(resp.GetStatusCode()) == codes.Unavailable
-}
-
 // sending records the line of sample s, about to be sent as client
 // sequence seq (the next one).
 func (t *tally) sending(line int, seq uint64, s *pb.Sample) {
@@ -430,7 +421,7 @@ func (t *tally) answered(resp *pb.IngestResponse) (line int, counts bool) {
 	line = t.lineOfLocked(seq)
 	s := t.pending[seq]
 	delete(t.pending, seq)
-	if notTaken(resp) && s != nil {
+	if client.NotTaken(resp) && s != nil {
 		if len(t.retries) == 0 {
 			t.whyNot = resp.GetReason()
 		}

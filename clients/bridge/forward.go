@@ -21,6 +21,11 @@ type Summary struct {
 	// sample counts as held until its resolution arrives, then under its
 	// final verdict.
 	Verdicts map[pb.Verdict]int
+	// NotTaken counts the samples the service did not take (client.NotTaken:
+	// the robot paused, as when its journal's disk is full), apart from
+	// Verdicts. A live link does not send them again: cumulative counts
+	// lose nothing by a missing sample, the next one carries the travel.
+	NotTaken int
 	// Reasons holds the reasons the service gave, the first ten.
 	Reasons []string
 }
@@ -93,7 +98,10 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 
 // tally counts one response's verdict and resolutions into sum.
 func tally(sum *Summary, resp *pb.IngestResponse) {
-	if !client.OnlyResolutions(resp) {
+	switch {
+	case client.NotTaken(resp):
+		sum.NotTaken++
+	case !client.OnlyResolutions(resp):
 		sum.Verdicts[resp.GetVerdict()]++
 	}
 	for _, r := range resp.GetResolved() {

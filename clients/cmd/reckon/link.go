@@ -90,7 +90,11 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 	st := sum.Stats
 	fmt.Fprintf(w, "frames: %d ok, %d corrupted, %d invalid, %d duplicates, %d reordered, %d skipped, %d restarts\n",
 		st.Frames, st.Corrupted, st.Invalid, st.Duplicates, st.Reordered, st.Skipped, st.Restarts)
-	fmt.Fprintf(w, "%d samples sent to %s: %s\n", sum.Sent, robot, verdictLine(sum.Verdicts))
+	notTaken := ""
+	if sum.NotTaken > 0 {
+		notTaken = fmt.Sprintf(", not taken %d (the robot was paused: see its state)", sum.NotTaken)
+	}
+	fmt.Fprintf(w, "%d samples sent to %s: %s%s\n", sum.Sent, robot, verdictLine(sum.Verdicts), notTaken)
 	for _, r := range sum.Reasons {
 		fmt.Fprintln(w, "  "+r)
 	}

@@ -32,15 +32,12 @@ type entry struct {
 	t0, t1 int64
 	seq    uint64
 
-	// entOdo: the body step over [t0, t1] and its covariance; wheels: the
-	// step was solved from the wheels (or an IMU turn row), whose report
-	// carries their noise, all of cov but scrub, the variance added to
-	// its turn for rotation the wheels do not see (estimator's
-	// PredictReported).
-	step   estimator.Step
-	cov    [9]float64
-	scrub  float64
-	wheels bool
+	// entOdo: the body step over [t0, t1] and its covariance; scrub, the
+	// variance added to its turn for rotation the wheels do not see (see
+	// wheels below).
+	step  estimator.Step
+	cov   [9]float64
+	scrub float64
 
 	// entMeas.
 	meas   estimator.Measurement
@@ -62,6 +59,11 @@ type entry struct {
 	failed bool
 	// initialised: this IMU sample initialised the offset (no NIS).
 	initialised bool
+	// wheels: an odometry step solved from the wheels (or an IMU turn
+	// row), whose report carries their noise: all of cov but scrub
+	// (estimator's PredictReported). Beside the other flags, where it
+	// takes no padding of its own.
+	wheels bool
 }
 
 // live returns the entries in the window.

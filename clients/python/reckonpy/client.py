@@ -96,6 +96,14 @@ class Verdict:
     nis_dimension: int = 0
     events: Tuple = ()
 
+    @property
+    def not_taken(self) -> bool:
+        """not_taken tells whether the service did not take the sample and
+        it should be sent again (IngestSession.send_as) once the robot
+        serves: refused UNAVAILABLE (status 14), as when the robot is paused
+        because its journal's disk is full."""
+        return self.verdict == "invalid" and self.status_code == 14
+
 
 _CLOSE = object()
 

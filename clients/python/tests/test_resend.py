@@ -51,6 +51,15 @@ class ResendTest(unittest.TestCase):
         self.assertEqual(client.get_robot("cart").input_count, len(samples),
                          "the samples sent again were applied twice, or the new ones not at all")
 
+    def test_not_taken(self):
+        paused = reckonpy.Verdict(client_sequence=3, sequence=0, verdict="invalid", final=True, status_code=14,
+                                  reason="robot: robots/cart is paused (journal disk full); not applied, resend when it serves")
+        bad = reckonpy.Verdict(client_sequence=4, sequence=0, verdict="invalid", final=True, status_code=3)
+        held = reckonpy.Verdict(client_sequence=5, sequence=9, verdict="held", final=False, status_code=0)
+        self.assertTrue(paused.not_taken)
+        self.assertFalse(bad.not_taken)
+        self.assertFalse(held.not_taken)
+
     def test_send_as_refuses_nonsense(self):
         daemon = support.Daemon()
         self.addCleanup(daemon.stop)

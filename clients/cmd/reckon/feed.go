@@ -140,8 +140,8 @@ type feeder struct {
 func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 	for ctx.Err() == nil {
 		if fd.t.stopped() {
-			if !fd.resend(ctx) {
-				return nil
+			if again, err := fd.resend(ctx); !again {
+				return err
 			}
 			continue
 		}
@@ -149,10 +149,13 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		if errors.Is(err, io.EOF) {
 			// The last samples may still be answered not taken.
 			fd.t.drain(ctx)
-			if fd.t.stopped() && fd.resend(ctx) {
-				continue
+			if !fd.t.stopped() {
+				return nil
 			}
-			return nil
+			if again, err := fd.resend(ctx); !again {
+				return err
+			}
+			continue
 		}
 		if err != nil {
 			return lineError(fd.label, sr.Line(), err)
@@ -175,12 +178,13 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 
 // resend waits for the verdicts of every sample sent, then, with a wait,
 // for the robot to serve again, and sends again, in order and with their
-// own client sequence numbers, the samples not taken. false: there is no
-// wait, it ran out or ctx is done, and the samples stay not taken.
-func (fd *feeder) resend(ctx context.Context) bool {
+// own client sequence numbers, the samples not taken. again is false when
+// there is no wait, it ran out or ctx is done (the samples stay not taken)
+// or sending failed (err).
+func (fd *feeder) resend(ctx context.Context) (again bool, err error) {
 	fd.t.drain(ctx)
 	if fd.wait <= 0 || ctx.Err() != nil {
-		return false
+		return false, nil
 	}
 	line, why := fd.t.firstNotTaken()
 	fmt.Fprintf(fd.std.err, "reckon feed: %s:%d on not taken (%s); waiting up to %v for the robot to serve\n", fd.label, line, why, fd.wait)
@@ -192,22 +196,25 @@ func (fd *feeder) resend(ctx context.Context) bool {
 		}
 		d := min(500*time.Millisecond, time.Until(deadline))
 		if d <= 0 {
-			return false
+			return false, nil
 		}
 		select {
 		case <-ctx.Done():
-			return false
+			return false, nil
 		case <-time.After(d):
 		}
 	}
-	again := fd.t.takeRetries()
-	fmt.Fprintf(fd.std.err, "reckon feed: the robot serves; sending %d samples again from %s:%d\n", len(again), fd.label, line)
-	for _, p := range again {
+	rs := fd.t.takeRetries()
+	fmt.Fprintf(fd.std.err, "reckon feed: the robot serves; sending %d samples again from %s:%d\n", len(rs), fd.label, line)
+	for _, p := range rs {
 		if err := fd.sess.SendAs(p.seq, p.sample); err != nil {
-			return false
+			return false, err
 		}
 	}
-	return true
+	// Pacing starts afresh from the next sample, instead of sending all
+	// that fell due during the wait at once.
+	fd.pace.started = false
+	return true, nil
 }
 
 // sessionContext returns the context of an ingest session that outlives

@@ -38,7 +38,10 @@ type Noise struct {
 	// TurnVarRad2PerRad: extra heading variance per radian turned (wheel
 	// scrub in turns).
 	TurnVarRad2PerRad float64
-	// HeadingVarRad2PerS: heading random walk per second.
+	// HeadingVarRad2PerS: heading random walk per second: rotation the
+	// wheels do not see. Not in imu_mode rotation, where the IMU sees every
+	// rotation and its zero's drift, IMUOffsetVarRad2PerS, takes its place
+	// (HeadingDriftVarPerS).
 	HeadingVarRad2PerS float64
 	// StepForwardVarM2PerM, StepLeftVarM2PerM, StepTurnVarRad2PerRad: noise
 	// of body steps that the robot computed itself, per metre and per radian.
@@ -56,8 +59,22 @@ type Noise struct {
 	IMUHeadingVarRad2 float64
 	// IMUTurnVarRad2PerRad: variance of an IMU turn row per radian turned.
 	IMUTurnVarRad2PerRad float64
-	// IMUOffsetVarRad2PerS: random walk of the IMU's heading zero per second.
+	// IMUOffsetVarRad2PerS: random walk of the IMU's heading zero per second:
+	// the offset state's in imu_mode absolute, the heading's in rotation
+	// (the zero's drift enters every turn the IMU reports).
 	IMUOffsetVarRad2PerS float64
+}
+
+// HeadingDriftVarPerS returns the heading's random walk per second that
+// the prediction adds (rad^2/s): in imu_mode rotation the IMU's zero
+// drifting (IMUOffsetVarRad2PerS), since the turn comes from the IMU,
+// which sees every rotation of the robot; otherwise the rotation the wheels
+// do not see (HeadingVarRad2PerS). DEVELOPERS.md, "Design: Process noise".
+func (c *Config) HeadingDriftVarPerS() float64 {
+	if c.IMU == IMURotation {
+		return c.Noise.IMUOffsetVarRad2PerS
+	}
+	return c.Noise.HeadingVarRad2PerS
 }
 
 // stepNoise writes the covariance of a body step the robot computed itself

@@ -252,7 +252,7 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 // seconds adds to the diagonal (DEVELOPERS.md, "Design: Process noise").
 func (r *Robot) processNoise(q *[estimator.MaxStates]float64, step estimator.Step, dtS float64) {
 	n := &r.cfg.Noise
-	estimator.TimeNoise(q, &r.layout, dtS, n.HeadingVarRad2PerS, n.IMUOffsetVarRad2PerS)
+	estimator.TimeNoise(q, &r.layout, dtS, r.cfg.HeadingDriftVarPerS(), n.IMUOffsetVarRad2PerS)
 	c := &r.cfg.Calibration
 	if i := r.layout.ForwardScale(); i >= 0 {
 		q[i] = c.ForwardScaleVarPerM * math.Hypot(step.ForwardM, step.LeftM)

@@ -283,7 +283,7 @@ func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov, jc [9]flo
 			}
 		}
 		// The heading random walk over the stretch (Design: Process noise).
-		cov[8] += r.cfg.Noise.HeadingVarRad2PerS * dtS
+		cov[8] += r.cfg.HeadingDriftVarPerS() * dtS
 		rel = estimator.Advance(rel, step)
 	}
 	return rel, cov, jc, true

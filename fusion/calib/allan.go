@@ -38,8 +38,11 @@
 //   - imu_turn_var_rad2_per_rad (imu_mode rotation, the IMU's heading
 //     difference is a turn row) = N^2 / w, with w a typical turn rate: over
 //     an interval dt the heading difference's variance from angle random
-//     walk is N^2 dt = N^2 |turn| / w. A static recording sees no scale
-//     factor error, which this term also carries in motion.
+//     walk is N^2 dt = N^2 |turn| / w. reckon imu-noise prints it but does
+//     not write it: in rotation mode imu_offset_var_rad2_per_s is the
+//     heading's random walk (fusion.Config.HeadingDriftVarPerS), which
+//     holds the angle random walk per second, and the turn term keeps what
+//     a static recording cannot see, the scale factor error.
 package calib
 
 import (

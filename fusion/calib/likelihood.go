@@ -66,9 +66,9 @@ var noiseLevels = []struct {
 	{"noise.step_forward_var_m2_per_s", "m^2/s", func(n *fusion.Noise) *float64 { return &n.StepForwardVarM2PerS }, steps},
 	{"noise.step_left_var_m2_per_s", "m^2/s", func(n *fusion.Noise) *float64 { return &n.StepLeftVarM2PerS }, steps},
 	{"noise.step_turn_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.StepTurnVarRad2PerS }, steps},
-	{"noise.heading_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.HeadingVarRad2PerS }, func(*fusion.Config) bool { return true }},
+	{"noise.heading_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.HeadingVarRad2PerS }, func(c *fusion.Config) bool { return c.IMU != fusion.IMURotation }},
 	{"noise.imu_heading_var_rad2", "rad^2", func(n *fusion.Noise) *float64 { return &n.IMUHeadingVarRad2 }, func(c *fusion.Config) bool { return c.IMU == fusion.IMUAbsolute }},
-	{"noise.imu_offset_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.IMUOffsetVarRad2PerS }, func(c *fusion.Config) bool { return c.IMU == fusion.IMUAbsolute }},
+	{"noise.imu_offset_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.IMUOffsetVarRad2PerS }, func(c *fusion.Config) bool { return c.IMU == fusion.IMUAbsolute || c.IMU == fusion.IMURotation }},
 }
 
 func wheels(c *fusion.Config) bool { return len(c.Wheels) > 0 }

@@ -177,7 +177,7 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 				for e := range p {
 					p[e] += q[e]
 				}
-				p[8] += nz.HeadingVarRad2PerS * float64(m.ivs[iv].t1-m.ivs[iv].t0) * 1e-9
+				p[8] += m.cfg.HeadingDriftVarPerS() * float64(m.ivs[iv].t1-m.ivs[iv].t0) * 1e-9
 				phi = mul3(&fx, &phi)
 			}
 			iv++

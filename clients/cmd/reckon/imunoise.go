@@ -30,7 +30,7 @@ configuration with those terms; it never overwrites the input.`)
 	out := fs.String("out", "", "the new YAML configuration (with -config); refused if it exists, unless -force")
 	force := fs.Bool("force", false, "replace -out if it exists")
 	horizon := fs.Float64("horizon", 10, "seconds over which bias instability and rate random walk are spread into the offset's random walk: the time between the fixes or headings that correct it")
-	turnRate := fs.Float64("turn-rate", 0.5, "a typical turn rate, rad/s, for imu_turn_var_rad2_per_rad (imu_mode rotation)")
+	turnRate := fs.Float64("turn-rate", 0.5, "a typical turn rate, rad/s, for the printed imu_turn_var_rad2_per_rad, the angle random walk per radian turned (not written: imu_mode rotation takes the walk per second, imu_offset_var_rad2_per_s)")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
 		return err
@@ -186,8 +186,11 @@ func configRows(t calib.IMUTerms) []configRow {
 
 // writeIMUConfig writes the configuration at in, with the IMU terms the
 // robot uses set, to out, with a comment saying what changed. The terms
-// set depend on imu_mode: rotation sets the turn term, the others the
-// heading and offset terms.
+// set depend on imu_mode: rotation sets the offset's random walk, which
+// is the heading's there (the IMU's zero drifting enters every turn it
+// reports; fusion.Config.HeadingDriftVarPerS), and keeps the turn term per
+// radian, which a static recording cannot see (scale factor errors); the
+// others set the heading and offset terms.
 func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64, stdout io.Writer) error {
 	c, err := loadYAML(in)
 	if err != nil {
@@ -195,7 +198,7 @@ func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, 
 	}
 	rows := configRows(terms)
 	if c.GetImuMode() == pb.ImuMode_IMU_MODE_ROTATION {
-		rows = rows[2:]
+		rows = rows[1:2]
 	} else {
 		rows = rows[:2]
 	}

@@ -1003,7 +1003,9 @@ type NoiseModel struct {
 	LateralSlipVarM2PerM float64 `protobuf:"fixed64,2,opt,name=lateral_slip_var_m2_per_m,json=lateralSlipVarM2PerM,proto3" json:"lateral_slip_var_m2_per_m,omitempty"`
 	// Extra heading variance per radian turned (1e-5).
 	TurnVarRad2PerRad float64 `protobuf:"fixed64,3,opt,name=turn_var_rad2_per_rad,json=turnVarRad2PerRad,proto3" json:"turn_var_rad2_per_rad,omitempty"`
-	// Heading random walk per second (1e-7).
+	// Heading random walk per second (1e-7): rotation the wheels do not see.
+	// Not used in IMU_MODE_ROTATION, where the IMU sees every rotation and
+	// imu_offset_var_rad2_per_s is the heading's random walk.
 	HeadingVarRad2PerS float64 `protobuf:"fixed64,4,opt,name=heading_var_rad2_per_s,json=headingVarRad2PerS,proto3" json:"heading_var_rad2_per_s,omitempty"`
 	// Body-step forward variance per metre (1e-4).
 	StepForwardVarM2PerM float64 `protobuf:"fixed64,5,opt,name=step_forward_var_m2_per_m,json=stepForwardVarM2PerM,proto3" json:"step_forward_var_m2_per_m,omitempty"`
@@ -1015,7 +1017,9 @@ type NoiseModel struct {
 	ImuHeadingVarRad2 float64 `protobuf:"fixed64,8,opt,name=imu_heading_var_rad2,json=imuHeadingVarRad2,proto3" json:"imu_heading_var_rad2,omitempty"`
 	// Variance of the IMU turn row per radian turned (1e-6).
 	ImuTurnVarRad2PerRad float64 `protobuf:"fixed64,9,opt,name=imu_turn_var_rad2_per_rad,json=imuTurnVarRad2PerRad,proto3" json:"imu_turn_var_rad2_per_rad,omitempty"`
-	// Random walk of the IMU's heading zero per second (1e-7).
+	// Random walk of the IMU's heading zero per second (1e-7): the offset
+	// state's in IMU_MODE_ABSOLUTE, the heading's in IMU_MODE_ROTATION (the
+	// zero's drift enters every turn the IMU reports).
 	ImuOffsetVarRad2PerS float64 `protobuf:"fixed64,10,opt,name=imu_offset_var_rad2_per_s,json=imuOffsetVarRad2PerS,proto3" json:"imu_offset_var_rad2_per_s,omitempty"`
 	// Body-step forward variance per second, beside the per-metre term, for
 	// odometry from commanded velocities (default 0).

@@ -394,9 +394,10 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 
 // PredictReported is Predict for a step whose report carries noise of its
 // own: rep (3x3 row-major, nil for none) is the part of cu that lies in the
-// reported step (the wheels' noise, not the scrub or slip the wheels do not
-// see; none for steps from commanded velocities, whose noise is the
-// truth's departure from them). With a turn scale in the layout it moves
+// reported step (the wheels' noise, a slipping wheel's inflation of it
+// included, but not the scrub, rotation the wheels do not see; none for
+// steps from commanded velocities, whose noise is the truth's departure
+// from them). With a turn scale in the layout it moves
 // the errors-in-variables moments (State's eiv):
 //
 //	M' = F M F^T - sum_k d_k (G rep_k)^T

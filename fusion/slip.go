@@ -155,6 +155,7 @@ func (r *Robot) inflateSteps(first int, t int64, k float64) {
 			for j := range live[i].cov {
 				live[i].cov[j] *= k
 			}
+			live[i].scrub *= k // the scrub stays its share of the turn's
 		}
 	}
 	r.replayFrom(first)
@@ -167,6 +168,7 @@ func (r *Robot) slipInflate(e *entry) {
 		for k := range e.cov {
 			e.cov[k] *= f
 		}
+		e.scrub *= f
 	}
 }
 

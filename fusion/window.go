@@ -34,7 +34,7 @@ type entry struct {
 
 	// entOdo: the body step over [t0, t1] and its covariance; scrub, the
 	// variance added to its turn for rotation the wheels do not see (see
-	// wheels below).
+	// wheels below), inflated with cov when a slip inflates the step.
 	step  estimator.Step
 	cov   [9]float64
 	scrub float64
@@ -164,7 +164,8 @@ func (r *Robot) predict(f *estimator.Filter, e *entry) {
 	var q [estimator.MaxStates]float64
 	dt := float64(e.t1-e.t0) * 1e-9
 	r.processNoise(&q, e.step, dt)
-	if !e.wheels {
+	if !e.wheels || r.layout.TurnScale() < 0 {
+		// Only a turn scale has moments for the report's noise to move.
 		f.Predict(e.step, &e.cov, dt, &q)
 		return
 	}

@@ -34,12 +34,21 @@ func runCode(t *testing.T, ctx context.Context, stdin string, args ...string) (s
 // journal in dir; stop stops it and waits for it to end.
 func serve(t *testing.T, listen, dir string) (addr string, stop func()) {
 	t.Helper()
+	return serveWith(t, listen, server.Options{JournalDir: dir})
+}
+
+// serveWith is serve with the service's options (a discarding logger if
+// they name none).
+func serveWith(t *testing.T, listen string, opt server.Options) (addr string, stop func()) {
+	t.Helper()
+	if opt.Logger == nil {
+		opt.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
+	}
 	ctx, cancel := context.WithCancel(context.Background())
 	ready := make(chan string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Ready: func(a, _ string) { ready <- a },
-			Options: server.Options{JournalDir: dir, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+		done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Ready: func(a, _ string) { ready <- a }, Options: opt})
 	}()
 	select {
 	case addr = <-ready:

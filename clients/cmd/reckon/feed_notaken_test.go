@@ -2,9 +2,6 @@ package main
 
 import (
 	"context"
-	"io"
-	"log/slog"
-	"os"
 	"regexp"
 	"strconv"
 	"strings"
@@ -15,31 +12,15 @@ import (
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
-	"reckon.example/server/daemon"
 	"reckon.example/server/journal"
 	"reckon.example/server/journal/faultfs"
 )
 
 // faultyService runs a service whose journal's file system fails as ffs
-// says; it returns the address.
+// says, its paused robots probing every 50 ms; it returns the address.
 func faultyService(t *testing.T, ffs *faultfs.FS) string {
 	t.Helper()
-	ctx, cancel := context.WithCancel(context.Background())
-	ready := make(chan string, 1)
-	done := make(chan error, 1)
-	go func() {
-		done <- daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Ready: func(a, _ string) { ready <- a },
-			Options: server.Options{JournalDir: t.TempDir(), FS: ffs, ProbeInterval: 50 * time.Millisecond,
-				Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
-	}()
-	var addr string
-	select {
-	case addr = <-ready:
-	case err := <-done:
-		cancel()
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { cancel(); <-done })
+	addr, _ := serveWith(t, "127.0.0.1:0", server.Options{JournalDir: t.TempDir(), FS: ffs, ProbeInterval: 50 * time.Millisecond})
 	return addr
 }
 
@@ -81,23 +62,6 @@ func waitServing(t *testing.T, addr, name string) {
 	}
 }
 
-// sampleLines counts the samples of a JSON Lines file (lines that are not
-// comments or blank).
-func sampleLines(t *testing.T, path string) int {
-	t.Helper()
-	b, err := os.ReadFile(path)
-	if err != nil {
-		t.Fatal(err)
-	}
-	n := 0
-	for _, l := range strings.Split(string(b), "\n") {
-		if l = strings.TrimSpace(l); l != "" && !strings.HasPrefix(l, "#") {
-			n++
-		}
-	}
-	return n
-}
-
 // TestFeedNotTaken: the journal's disk fills in the middle of a feed (every
 // journal write from the 4th fails with ENOSPC: the robot pauses). Without
 // -wait, feed stops, names the first line not taken and exits 1; fed again
@@ -107,7 +71,7 @@ func sampleLines(t *testing.T, path string) int {
 func TestFeedNotTaken(t *testing.T) {
 	samples := "../../../testdata/samples/greenhouse-10s.jsonl"
 	cfg := "../../../testdata/robots/free-wheel-turn.yaml"
-	want := uint64(sampleLines(t, samples))
+	want := uint64(samplesIn(t, samples))
 
 	t.Run("stop and name the line", func(t *testing.T) {
 		ffs := faultfs.New(journal.OS, faultfs.From(faultfs.OpWrite, ".rjl", 3, syscall.ENOSPC))

@@ -113,6 +113,9 @@ func p99(d []time.Duration) time.Duration {
 // the medians and pair-ratio the median of the pairs' ratios; likewise the
 // p99s are the medians of the runs' p99s (a run whose machine stalled for
 // a moment sets the p99 of all the runs' verdicts pooled: pooled-p99-ratio).
+// A third run in each iteration, of the service without a journal (memory
+// only, a mode of its own), gives memory-only-cpu-ratio: the journal's
+// share is the difference.
 func BenchmarkRobotRates(b *testing.B) {
 	samp, cfg := cartRun(31, ratesWarm.Seconds()+ratesSeconds)
 	stampNs := make([]int64, len(samp))
@@ -135,8 +138,8 @@ func BenchmarkRobotRates(b *testing.B) {
 		c, l := ratesRun(b, lis.Addr().String(), samp, stampNs)
 		return float64(c.Nanoseconds()) / float64(len(l)), l
 	}
-	fullRun := func() (float64, []time.Duration) {
-		srv := start(b, testConfig{Options: Options{JournalDir: b.TempDir()}})
+	serviceRun := func(journalDir string) (float64, []time.Duration) {
+		srv := start(b, testConfig{Options: Options{JournalDir: journalDir}})
 		defer srv.stop()
 		api := stub(b, srv.addr)
 		for k := range ratesRobots {
@@ -147,7 +150,8 @@ func BenchmarkRobotRates(b *testing.B) {
 		c, l := ratesRun(b, srv.addr, samp, stampNs)
 		return float64(c.Nanoseconds()) / float64(len(l)), l
 	}
-	var bareCPU, fullCPU, pairs, bareP99, fullP99 []float64
+	fullRun := func() (float64, []time.Duration) { return serviceRun(b.TempDir()) }
+	var bareCPU, fullCPU, memCPU, pairs, bareP99, fullP99 []float64
 	var bareLat, fullLat []time.Duration
 	for b.Loop() {
 		var bc, fc float64
@@ -159,7 +163,8 @@ func BenchmarkRobotRates(b *testing.B) {
 			fc, fl = fullRun()
 			bc, bl = bareRun()
 		}
-		bareCPU, fullCPU, pairs = append(bareCPU, bc), append(fullCPU, fc), append(pairs, fc/bc)
+		mc, _ := serviceRun("")
+		bareCPU, fullCPU, memCPU, pairs = append(bareCPU, bc), append(fullCPU, fc), append(memCPU, mc), append(pairs, fc/bc)
 		bareLat, fullLat = append(bareLat, bl...), append(fullLat, fl...)
 		bareP99, fullP99 = append(bareP99, float64(p99(bl))), append(fullP99, float64(p99(fl)))
 	}
@@ -169,6 +174,7 @@ func BenchmarkRobotRates(b *testing.B) {
 	b.ReportMetric(fm, "cpu-ns/sample")
 	b.ReportMetric(fm/bm, "cpu-ratio")
 	b.ReportMetric(median(pairs), "pair-ratio")
+	b.ReportMetric(median(memCPU)/bm, "memory-only-cpu-ratio")
 	b.ReportMetric(bp/1e3, "bare-p99-us")
 	b.ReportMetric(fp/1e3, "p99-us")
 	b.ReportMetric(fp/bp, "p99-ratio")

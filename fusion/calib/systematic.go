@@ -10,7 +10,9 @@ import (
 )
 
 // ErrSystematic marks every error of FitSystematic: a configuration that
-// does not validate, or a run without the odometry and fixes a fit needs.
+// does not validate, a run without the odometry and fixes a fit needs, or
+// a fit without standard errors (its information matrix singular at the
+// solution).
 var ErrSystematic = errors.New("systematic fit")
 
 // ParamKind says what a systematic parameter is.
@@ -255,7 +257,7 @@ func FitSystematic(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix,
 	}
 	s := newSysSolver(m, opt)
 	s.solve()
-	return s.result(&cfg), nil
+	return s.result(&cfg)
 }
 
 // describe fills a parameter's name, unit, bound and pattern.

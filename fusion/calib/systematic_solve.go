@@ -81,7 +81,16 @@ func (s *sysSolver) anchors(x []float64) []estimator.Pose {
 
 // initAnchors starts each segment's anchor where the odometry from the
 // configured start pose puts it, or, with pose fixes, at the median of the
-// anchors each of its pose fixes implies (robust to outlying fixes).
+// anchors each of its pose fixes implies (robust to outlying fixes), or,
+// with position fixes and landmarks seen in range and bearing, at the
+// rigid motion that carries the points they place in the anchor's frame
+// onto where they are (registerAnchor). Dead reckoning from the start of
+// the run is no start for a segment minutes in: with the scales as
+// configured, not as they are (the fit is there to find them), its heading
+// may be off by any angle, and from there the fit of a landmark sensor's
+// bearings can settle in a wrong minimum (a ten-minute run whose body
+// steps were 11% long ended with every fix tens of standard deviations
+// off and a latency of -0.7 s).
 func (s *sysSolver) initAnchors() {
 	m := s.m
 	g := s.x[:s.ng]
@@ -90,22 +99,109 @@ func (s *sysSolver) initAnchors() {
 	for k, t := range m.segStart {
 		a := estimator.Compose(m.cfg.StartPose, m.poseAt(float64(t)))
 		var xs, ys, hs []float64
+		var local, world [][2]float64
 		for i := range m.fixes {
 			f := &m.fixes[i]
-			if f.seg != k || f.kind != fusion.FixPose {
+			if f.seg != k {
 				continue
 			}
-			robot := estimator.Detach(estimator.Pose{X: f.z[0], Y: f.z[1], Heading: f.z[2]}, f.mount)
-			c := estimator.Compose(robot, inverse(m.relative(i, g)))
-			xs, ys = append(xs, c.X), append(ys, c.Y)
-			hs = append(hs, estimator.Wrap(c.Heading-a.Heading))
+			switch {
+			case f.kind == fusion.FixPose:
+				robot := estimator.Detach(estimator.Pose{X: f.z[0], Y: f.z[1], Heading: f.z[2]}, f.mount)
+				c := estimator.Compose(robot, inverse(m.relative(i, g)))
+				xs, ys = append(xs, c.X), append(ys, c.Y)
+				hs = append(hs, estimator.Wrap(c.Heading-a.Heading))
+			case f.kind == fusion.FixPosition:
+				q := estimator.Compose(m.relative(i, g), f.mount)
+				local, world = append(local, [2]float64{q.X, q.Y}), append(world, [2]float64{f.z[0], f.z[1]})
+			case f.kind == fusion.FixLandmark && f.rng && f.brg:
+				sn, cs := math.Sincos(f.z[1])
+				q := estimator.Compose(estimator.Compose(m.relative(i, g), f.mount), estimator.Pose{X: f.z[0] * cs, Y: f.z[0] * sn})
+				local, world = append(local, [2]float64{q.X, q.Y}), append(world, f.lm)
+			}
 		}
-		if len(xs) > 0 {
+		switch {
+		case len(xs) > 0:
 			a = estimator.Pose{X: median(xs), Y: median(ys), Heading: estimator.Wrap(a.Heading + median(hs))}
+		case len(local) > 0:
+			a = registerAnchor(local, world, a.Heading)
 		}
 		o := s.ng + 3*k
 		s.x[o], s.x[o+1], s.x[o+2] = a.X, a.Y, a.Heading
 	}
+}
+
+// registerAnchor returns the rigid motion a (rotation, then translation)
+// that carries the points local onto world in least squares, in closed
+// form (S. Umeyama, IEEE Transactions on Pattern Analysis and Machine
+// Intelligence 13(4), 1991, without the scale), robust to outlying points:
+// fitted to all, then again to those within three times the median
+// distance (and 5 cm) of where the last fit put them, twice. When the
+// points kept lie within 0.1 m (root mean square) of their centroid in
+// the anchor's frame (one landmark seen again and again) the rotation is
+// not determined: heading, the dead reckoning's, is kept, with the median
+// translation.
+func registerAnchor(local, world [][2]float64, heading float64) estimator.Pose {
+	keep := make([]bool, len(local))
+	for i := range keep {
+		keep[i] = true
+	}
+	var a estimator.Pose
+	for round := range 3 {
+		var n, lx, ly, wx, wy float64
+		for i, k := range keep {
+			if k {
+				n++
+				lx, ly, wx, wy = lx+local[i][0], ly+local[i][1], wx+world[i][0], wy+world[i][1]
+			}
+		}
+		lx, ly, wx, wy = lx/n, ly/n, wx/n, wy/n
+		var sxx, sxy, syx, syy, spread float64
+		for i, k := range keep {
+			if k {
+				px, py := local[i][0]-lx, local[i][1]-ly
+				qx, qy := world[i][0]-wx, world[i][1]-wy
+				sxx, sxy, syx, syy = sxx+px*qx, sxy+px*qy, syx+py*qx, syy+py*qy
+				spread += px*px + py*py
+			}
+		}
+		th := heading
+		if spread/n >= 0.01 {
+			th = math.Atan2(sxy-syx, sxx+syy)
+		}
+		sn, cs := math.Sincos(th)
+		if spread/n >= 0.01 {
+			a = estimator.Pose{X: wx - (cs*lx - sn*ly), Y: wy - (sn*lx + cs*ly), Heading: th}
+		} else {
+			var dx, dy []float64
+			for i, k := range keep {
+				if k {
+					dx = append(dx, world[i][0]-(cs*local[i][0]-sn*local[i][1]))
+					dy = append(dy, world[i][1]-(sn*local[i][0]+cs*local[i][1]))
+				}
+			}
+			a = estimator.Pose{X: median(dx), Y: median(dy), Heading: th}
+		}
+		if round == 2 {
+			break
+		}
+		d := make([]float64, len(local))
+		for i := range local {
+			d[i] = math.Hypot(a.X+cs*local[i][0]-sn*local[i][1]-world[i][0], a.Y+sn*local[i][0]+cs*local[i][1]-world[i][1])
+		}
+		limit := math.Max(3*median(d), 0.05)
+		kept := 0
+		for i := range keep {
+			keep[i] = d[i] <= limit
+			if keep[i] {
+				kept++
+			}
+		}
+		if kept < 2 {
+			break
+		}
+	}
+	return a
 }
 
 func median(v []float64) float64 {
@@ -293,10 +389,18 @@ func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
 		nm.SetSym(j, j, nm.At(j, j)+v)
 		gr.SetVec(j, gr.AtVec(j)+v*(s.x[j]-pr.Configured))
 	}
-	// An anchor whose fixes all lost their weight would make N singular;
-	// (30 km)^2 of prior variance keeps it regular and changes nothing else.
+	// An anchor the fixes leave free in some direction would make N
+	// singular: all its fixes lost their weight, or the robot stood before
+	// one landmark the whole segment (range and bearing leave its turn
+	// about the landmark free). (100 m)^2 of prior variance keeps N
+	// regular and changes nothing else: along such a direction the globals'
+	// rows of N are zero too (N is positive semi-definite), and the fixes'
+	// information on an anchor they determine is millions of times more.
+	// (30 km)^2, as before, lay below the rounding of N's largest entries
+	// (3e6 on a ten-minute run): its factorisation failed, and the fit
+	// reported no standard errors.
 	for j := ng; j < s.p; j++ {
-		nm.SetSym(j, j, nm.At(j, j)+1e-9)
+		nm.SetSym(j, j, nm.At(j, j)+1e-4)
 	}
 	return nm, gr
 }
@@ -617,11 +721,7 @@ func (s *sysSolver) covariances() (stated, robust *mat.Dense, s2 float64) {
 	var ch mat.Cholesky
 	inv := mat.NewSymDense(s.p, nil)
 	if !ch.Factorize(nm) || ch.InverseTo(inv) != nil {
-		bad := mat.NewDense(ng, ng, nil)
-		for j := range ng {
-			bad.Set(j, j, math.Inf(1))
-		}
-		return bad, bad, math.NaN()
+		return nil, nil, math.NaN()
 	}
 	var rows int
 	for _, b := range s.blocks {
@@ -651,9 +751,14 @@ func (s *sysSolver) covariances() (stated, robust *mat.Dense, s2 float64) {
 	return stated, &sw, s2
 }
 
-// result assembles the fit.
-func (s *sysSolver) result(cfg *fusion.Config) SystematicFit {
+// result assembles the fit; it fails when the fit has no covariance (its
+// normal matrix does not factorise at the solution).
+func (s *sysSolver) result(cfg *fusion.Config) (SystematicFit, error) {
 	stated, robust, s2 := s.covariances()
+	if stated == nil {
+		return SystematicFit{}, fmt.Errorf("%w: no standard errors: the fit's information matrix is singular at its solution (%d fixes, %d given no weight, %d segments)",
+			ErrSystematic, len(s.m.fixes), s.outliers, len(s.m.segStart))
+	}
 	out := SystematicFit{Config: cloneConfig(cfg), Fixes: len(s.m.fixes), Outliers: s.outliers, Segments: len(s.m.segStart),
 		Sigma2: s2, Iterations: s.iterations, Converged: s.converged}
 	for j, sp := range s.m.params {
@@ -674,7 +779,7 @@ func (s *sysSolver) result(cfg *fusion.Config) SystematicFit {
 	}
 	out.scaleStates()
 	out.mountStds(cfg)
-	return out
+	return out, nil
 }
 
 // mountStds writes each fitted sensor's mount standard errors into

@@ -173,3 +173,66 @@ func TestSystematicGaussMarkovMount(t *testing.T) {
 		t.Errorf("the white-weighted fit passes the checks too: they do not tell the Gauss-Markov weighting from white")
 	}
 }
+
+// TestSystematicWhiteness: the fit's whiteness test of a sensor's
+// residuals (SensorWhiteness) on correlatedRun's camera, 95% Gauss-Markov
+// with a time constant of 2 s, over 2 seeds. Weighted by the model the
+// simulator draws from, the whitened residuals of consecutive fixes are
+// uncorrelated: each lag-one correlation within 3.5 of its standard
+// deviations 1/sqrt(pairs) of 0 (Bar-Shalom, Li and Kirubarajan 2001, sec.
+// 5.4.2; 3.5 for a false alarm once in about 2,000 seeds), and not flagged.
+// Weighted as white, the same fixes correlate above 0.3 and are flagged
+// (0.48 to 0.61 over seeds 1 to 4, 12 to 15 standard deviations).
+// A camera whose errors are white and configured so (the same run without
+// the Gauss-Markov part) is not flagged either. Simulator truth.
+func TestSystematicWhiteness(t *testing.T) {
+	for seed := uint64(1); seed <= 2; seed++ {
+		r, cfg, _ := correlatedRun(seed)
+		for _, white := range []bool{false, true} {
+			c := cfg
+			c.Sensors = slices.Clone(cfg.Sensors)
+			if white {
+				c.Sensors[0].CorrelatedFraction, c.Sensors[0].CorrelationTimeS = 0, 0
+			}
+			fit, err := FitSystematic(c, r.odo, r.fixes, SystematicOptions{})
+			if err != nil {
+				t.Fatal(err)
+			}
+			w := fit.Whiteness[0]
+			z := w.Lag1 * math.Sqrt(float64(w.Pairs))
+			t.Logf("seed %d, weighted as white %v: lag-one correlation %.3f over %d pairs (%.1f standard deviations), flagged %v", seed, white, w.Lag1, w.Pairs, z, w.Correlated)
+			switch {
+			case w.Pairs < 100:
+				t.Errorf("seed %d: %d pairs, want hundreds", seed, w.Pairs)
+			case !white && (math.Abs(z) > 3.5 || w.Correlated):
+				t.Errorf("seed %d, weighted by the true model: lag-one correlation %.3f (%.1f standard deviations), flagged %v", seed, w.Lag1, z, w.Correlated)
+			case white && (w.Lag1 < 0.3 || !w.Correlated):
+				t.Errorf("seed %d, weighted as white: lag-one correlation %.3f, flagged %v; want above 0.3 and flagged", seed, w.Lag1, w.Correlated)
+			}
+		}
+	}
+	sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 9, DurationS: 120, MarkerCount: 16, FigureEight: true, CameraHz: 10 / 3.0, SensorCovariance: true}
+	sm := fusiontest.New(sc)
+	var r sysRun
+	for {
+		in, ok := sm.Next()
+		if !ok {
+			break
+		}
+		switch {
+		case in.Odometry != nil:
+			r.odo = append(r.odo, *in.Odometry)
+		case in.Fix != nil:
+			r.fixes = append(r.fixes, *in.Fix)
+		}
+	}
+	fit, err := FitSystematic(sm.TrueModelConfig(), r.odo, r.fixes, SystematicOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	w := fit.Whiteness[0]
+	t.Logf("white camera: lag-one correlation %.3f over %d pairs, flagged %v", w.Lag1, w.Pairs, w.Correlated)
+	if z := w.Lag1 * math.Sqrt(float64(w.Pairs)); math.Abs(z) > 3.5 || w.Correlated {
+		t.Errorf("white camera configured white: lag-one correlation %.3f (%.1f standard deviations), flagged %v", w.Lag1, z, w.Correlated)
+	}
+}

@@ -779,7 +779,49 @@ func (s *sysSolver) result(cfg *fusion.Config) (SystematicFit, error) {
 	}
 	out.scaleStates()
 	out.mountStds(cfg)
+	out.Whiteness = s.whiteness()
 	return out, nil
+}
+
+// whiteness tests each sensor's whitened residuals at the solution
+// (SensorWhiteness): in each segment's block, the residuals whitened by
+// the block's factor, each component paired with the same component of
+// the sensor's next fix with weight. The blocks and residuals are those of
+// the last evaluation (covariances).
+func (s *sysSolver) whiteness() []SensorWhiteness {
+	n := len(s.m.cfg.Sensors)
+	sxy, sxx, syy := make([]float64, n), make([]float64, n), make([]float64, n)
+	pairs := make([]int, n)
+	for k := range s.blocks {
+		b := &s.blocks[k]
+		if b.rows == 0 || !b.ok {
+			continue
+		}
+		y := s.gather(b, s.e)
+		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), y.RawVector())
+		last := make([]int, n) // position in b.fixes of each sensor's last fix, plus one
+		for pos, i := range b.fixes {
+			si := s.m.fixes[i].sensor
+			if prev := last[si] - 1; prev >= 0 && s.dim[b.fixes[prev]] == s.dim[i] {
+				for r := range s.dim[i] {
+					a, c := y.AtVec(b.off[prev]+r), y.AtVec(b.off[pos]+r)
+					sxy[si], sxx[si], syy[si] = sxy[si]+a*c, sxx[si]+a*a, syy[si]+c*c
+					pairs[si]++
+				}
+			}
+			last[si] = pos + 1
+		}
+	}
+	out := make([]SensorWhiteness, n)
+	for si := range out {
+		w := SensorWhiteness{Lag1: math.NaN(), Pairs: pairs[si]}
+		if pairs[si] > 0 && sxx[si] > 0 && syy[si] > 0 {
+			w.Lag1 = sxy[si] / math.Sqrt(sxx[si]*syy[si])
+			w.Correlated = w.Lag1 > 0.1 && w.Lag1 > 3/math.Sqrt(float64(pairs[si]))
+		}
+		out[si] = w
+	}
+	return out
 }
 
 // mountStds writes each fitted sensor's mount standard errors into

@@ -128,6 +128,12 @@ into one HTML report with a calibration section at the top.`)
 				i, sen.ID, 100*sen.CorrelatedFraction, sen.CorrelationTimeS)
 		}
 	}
+	for i, w := range fit.Whiteness {
+		if w.Correlated {
+			fmt.Fprintf(stdout, "sensors[%d] (%s): its residuals, whitened, correlate %.2f from one fix to the next (%d pairs; within %.2f of 0 if its errors were as configured): they repeat over time more than its configuration says, so the standard errors below are too small; run reckon tune -model on the output, then reckon calibrate again on the tuned configuration\n",
+				i, cfg.Sensors[i].ID, w.Lag1, w.Pairs, 3/math.Sqrt(float64(w.Pairs)))
+		}
+	}
 	if fit.MountStdNote != "" {
 		fmt.Fprintln(stdout, fit.MountStdNote)
 	}

@@ -214,6 +214,12 @@ func realDataGoal(t *testing.T, sc fusiontest.Scenario, reached float64) {
 	if code != 0 {
 		t.Fatalf("calibrate: exit %d: %s\n%s", code, errs, out)
 	}
+	// The camera's errors are Gauss-Markov, the naive configuration white:
+	// calibrate says its standard errors are too small and what to run
+	// (calib.SensorWhiteness).
+	if !strings.Contains(out, "repeat over time more than its configuration says") {
+		t.Errorf("calibrate did not flag the camera's correlated residuals:\n%s", out)
+	}
 	t.Logf("calibrate:\n%s", out)
 	if !strings.Contains(out, "calibration.scale false (default) -> true") {
 		t.Errorf("calibrate did not switch on the scale states")

@@ -24,21 +24,8 @@ import (
 func correlatedRun(seed uint64) (sysRun, fusion.Config, [3]float64) {
 	sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: seed, DurationS: 120, MarkerCount: 16, FigureEight: true,
 		CameraHz: 10 / 3.0, SensorCovariance: true, Errors: fusiontest.Errors{CameraTauS: 2, CameraCorrelated: 0.95}}
-	sm := fusiontest.New(sc)
-	var r sysRun
-	for {
-		in, ok := sm.Next()
-		if !ok {
-			break
-		}
-		switch {
-		case in.Odometry != nil:
-			r.odo = append(r.odo, *in.Odometry)
-		case in.Fix != nil:
-			r.fixes = append(r.fixes, *in.Fix)
-		}
-	}
-	cfg := sm.TrueModelConfig()
+	r := simulateSysWith(sc, (*fusiontest.Sim).TrueModelConfig)
+	cfg := r.cfg
 	m := cfg.Sensors[0].Mount
 	cfg.Sensors = slices.Clone(cfg.Sensors)
 	cfg.Sensors[0].Mount.X += 0.03
@@ -211,22 +198,9 @@ func TestSystematicWhiteness(t *testing.T) {
 			}
 		}
 	}
-	sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 9, DurationS: 120, MarkerCount: 16, FigureEight: true, CameraHz: 10 / 3.0, SensorCovariance: true}
-	sm := fusiontest.New(sc)
-	var r sysRun
-	for {
-		in, ok := sm.Next()
-		if !ok {
-			break
-		}
-		switch {
-		case in.Odometry != nil:
-			r.odo = append(r.odo, *in.Odometry)
-		case in.Fix != nil:
-			r.fixes = append(r.fixes, *in.Fix)
-		}
-	}
-	fit, err := FitSystematic(sm.TrueModelConfig(), r.odo, r.fixes, SystematicOptions{})
+	// No error processes: the simulator's configuration is the true model.
+	r := simulateSys(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 9, DurationS: 120, MarkerCount: 16, FigureEight: true, CameraHz: 10 / 3.0, SensorCovariance: true})
+	fit, err := FitSystematic(r.cfg, r.odo, r.fixes, SystematicOptions{})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -146,62 +146,61 @@ func registerAnchor(local, world [][2]float64, heading float64) estimator.Pose {
 	for i := range keep {
 		keep[i] = true
 	}
-	var a estimator.Pose
-	for round := range 3 {
-		var n, lx, ly, wx, wy float64
-		for i, k := range keep {
-			if k {
-				n++
-				lx, ly, wx, wy = lx+local[i][0], ly+local[i][1], wx+world[i][0], wy+world[i][1]
-			}
-		}
-		lx, ly, wx, wy = lx/n, ly/n, wx/n, wy/n
-		var sxx, sxy, syx, syy, spread float64
-		for i, k := range keep {
-			if k {
-				px, py := local[i][0]-lx, local[i][1]-ly
-				qx, qy := world[i][0]-wx, world[i][1]-wy
-				sxx, sxy, syx, syy = sxx+px*qx, sxy+px*qy, syx+py*qx, syy+py*qy
-				spread += px*px + py*py
-			}
-		}
-		th := heading
-		if spread/n >= 0.01 {
-			th = math.Atan2(sxy-syx, sxx+syy)
-		}
-		sn, cs := math.Sincos(th)
-		if spread/n >= 0.01 {
-			a = estimator.Pose{X: wx - (cs*lx - sn*ly), Y: wy - (sn*lx + cs*ly), Heading: th}
-		} else {
-			var dx, dy []float64
-			for i, k := range keep {
-				if k {
-					dx = append(dx, world[i][0]-(cs*local[i][0]-sn*local[i][1]))
-					dy = append(dy, world[i][1]-(sn*local[i][0]+cs*local[i][1]))
-				}
-			}
-			a = estimator.Pose{X: median(dx), Y: median(dy), Heading: th}
-		}
+	d := make([]float64, len(local))
+	for round := 0; ; round++ {
+		a := rigidFit(local, world, keep, heading)
 		if round == 2 {
-			break
+			return a
 		}
-		d := make([]float64, len(local))
-		for i := range local {
-			d[i] = math.Hypot(a.X+cs*local[i][0]-sn*local[i][1]-world[i][0], a.Y+sn*local[i][0]+cs*local[i][1]-world[i][1])
+		for i, l := range local {
+			p := estimator.Compose(a, estimator.Pose{X: l[0], Y: l[1]})
+			d[i] = math.Hypot(p.X-world[i][0], p.Y-world[i][1])
 		}
 		limit := math.Max(3*median(d), 0.05)
 		kept := 0
 		for i := range keep {
-			keep[i] = d[i] <= limit
-			if keep[i] {
+			if keep[i] = d[i] <= limit; keep[i] {
 				kept++
 			}
 		}
 		if kept < 2 {
-			break
+			return a
 		}
 	}
-	return a
+}
+
+// rigidFit is one fit of registerAnchor to the points kept.
+func rigidFit(local, world [][2]float64, keep []bool, heading float64) estimator.Pose {
+	var n, lx, ly, wx, wy float64
+	for i, k := range keep {
+		if k {
+			n++
+			lx, ly, wx, wy = lx+local[i][0], ly+local[i][1], wx+world[i][0], wy+world[i][1]
+		}
+	}
+	lx, ly, wx, wy = lx/n, ly/n, wx/n, wy/n
+	var sxx, sxy, syx, syy, spread float64
+	for i, k := range keep {
+		if k {
+			px, py := local[i][0]-lx, local[i][1]-ly
+			qx, qy := world[i][0]-wx, world[i][1]-wy
+			sxx, sxy, syx, syy = sxx+px*qx, sxy+px*qy, syx+py*qx, syy+py*qy
+			spread += px*px + py*py
+		}
+	}
+	if spread/n >= 0.01 {
+		th := math.Atan2(sxy-syx, sxx+syy)
+		c := estimator.Compose(estimator.Pose{Heading: th}, estimator.Pose{X: lx, Y: ly})
+		return estimator.Pose{X: wx - c.X, Y: wy - c.Y, Heading: th}
+	}
+	var dx, dy []float64
+	for i, k := range keep {
+		if k {
+			c := estimator.Compose(estimator.Pose{Heading: heading}, estimator.Pose{X: local[i][0], Y: local[i][1]})
+			dx, dy = append(dx, world[i][0]-c.X), append(dy, world[i][1]-c.Y)
+		}
+	}
+	return estimator.Pose{X: median(dx), Y: median(dy), Heading: heading}
 }
 
 func median(v []float64) float64 {
@@ -702,11 +701,11 @@ func (s *sysSolver) solve() {
 // covariances returns the covariance of the global parameters (ng x ng)
 // under the stated noise (the sandwich of FitSystematic) and the
 // segment-robust sandwich, at the solution, and the stated noise's
-// chi-square per degree of freedom. Scaling N^-1 by the weighted residuals'
-// variance instead, as before, stated the standard errors too small where
-// the drift dominates: the weights took that variance to 0.72 on the
-// simulator's runs, where the stated noise's chi-square per degree of
-// freedom is 1.00.
+// chi-square per degree of freedom; nil covariances when N does not
+// factorise. Scaling N^-1 by the weighted residuals' variance instead, as
+// before, stated the standard errors too small where the drift dominates:
+// the weights took that variance to 0.72 on the simulator's runs, where
+// the stated noise's chi-square per degree of freedom is 1.00.
 func (s *sysSolver) covariances() (stated, robust *mat.Dense, s2 float64) {
 	ng := s.ng
 	s.relinearise()
@@ -721,7 +720,7 @@ func (s *sysSolver) covariances() (stated, robust *mat.Dense, s2 float64) {
 	var ch mat.Cholesky
 	inv := mat.NewSymDense(s.p, nil)
 	if !ch.Factorize(nm) || ch.InverseTo(inv) != nil {
-		return nil, nil, math.NaN()
+		return nil, nil, 0
 	}
 	var rows int
 	for _, b := range s.blocks {

@@ -3,6 +3,7 @@ package calib
 import (
 	"math"
 	"math/rand/v2"
+	"slices"
 	"testing"
 
 	"reckon.example/estimator"
@@ -70,25 +71,14 @@ func landmarkRun(seed uint64) (sysRun, fusion.Config) {
 	sc := fusiontest.Scenario{Layout: fusiontest.Commanded, Seed: seed, DurationS: 600, MarkerCount: 16, FigureEight: true, CameraHz: 10 / 3.0,
 		OutlierFraction: 0.03, SensorCovariance: true,
 		Errors: fusiontest.Errors{CameraTauS: 2.5, CameraCorrelated: 0.95, CameraTailDOF: 3, ForwardScale: 1/0.89 - 1, TurnScale: 1/0.88 - 1}}
-	sm := fusiontest.New(sc)
-	cfg := sm.WhiteConfig()
+	r := simulateSys(sc)
+	cfg := r.cfg
+	cfg.Sensors = slices.Clone(cfg.Sensors)
 	cfg.Noise.StepForwardVarM2PerM = 1e-4
 	cfg.Noise.StepLeftVarM2PerM = 2.5e-5
 	cfg.Noise.StepTurnVarRad2PerRad = 1e-3
 	cfg.Sensors[0].Cov = []float64{0.03 * 0.03, 0, 0, 0.015 * 0.015}
-	var r sysRun
-	for {
-		in, ok := sm.Next()
-		if !ok {
-			return r, cfg
-		}
-		switch {
-		case in.Odometry != nil:
-			r.odo = append(r.odo, *in.Odometry)
-		case in.Fix != nil:
-			r.fixes = append(r.fixes, *in.Fix)
-		}
-	}
+	return r, cfg
 }
 
 // TestSystematicLandmarkStart: a run of landmarkRun on which the fit

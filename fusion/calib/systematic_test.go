@@ -23,8 +23,14 @@ type sysRun struct {
 }
 
 func simulateSys(sc fusiontest.Scenario) sysRun {
+	return simulateSysWith(sc, (*fusiontest.Sim).Config)
+}
+
+// simulateSysWith is simulateSys with the configuration config gives for
+// the simulated robot (TrueModelConfig for its error processes, say).
+func simulateSysWith(sc fusiontest.Scenario, config func(*fusiontest.Sim) fusion.Config) sysRun {
 	sm := fusiontest.New(sc)
-	r := sysRun{cfg: sm.Config()}
+	r := sysRun{cfg: config(sm)}
 	for {
 		in, ok := sm.Next()
 		if !ok {

@@ -11,12 +11,17 @@ import reckonpy
 
 
 class ResendTest(unittest.TestCase):
-    def test_resend_is_answered_not_applied_again(self):
+    def cart(self):
+        """A daemon of the test's own with the robot cart; a client to it."""
         daemon = support.Daemon()
         self.addCleanup(daemon.stop)
         client = daemon.connect()
         self.addCleanup(client.close)
         client.create_robot("cart", support.cart_config())
+        return client
+
+    def test_resend_is_answered_not_applied_again(self):
+        client = self.cart()
         samples = support.read_samples()
         first, rest = samples[:-20], samples[-20:]
 
@@ -61,12 +66,7 @@ class ResendTest(unittest.TestCase):
         self.assertFalse(held.not_taken)
 
     def test_send_as_refuses_nonsense(self):
-        daemon = support.Daemon()
-        self.addCleanup(daemon.stop)
-        client = daemon.connect()
-        self.addCleanup(client.close)
-        client.create_robot("cart", support.cart_config())
-        s = client.ingest("cart")
+        s = self.cart().ingest("cart")
         self.addCleanup(s.cancel)
         with self.assertRaises(ValueError):
             s.send_as(0, support.read_samples()[0])

@@ -82,6 +82,20 @@ type sysModel struct {
 	p0, p1 []estimator.Pose
 	u      []estimator.Step
 	segInv []estimator.Pose
+
+	// The expected dead reckoning under the odometry's heading noise
+	// (expected): hv is the heading variance the noise model accumulates
+	// from the run's start to each interval's start (one more entry: the
+	// run's end); ex the expected position there, summed from the start of
+	// its epoch, whose heading variance at that start is base. Epoch k runs
+	// from the interval of segment k's anchor (epochStart) to that of the
+	// next; epochOf is each interval's. segEx is each anchor's (x, y, hv).
+	hv         []float64
+	ex         [][2]float64
+	base       []float64
+	epochStart []int
+	epochOf    []int
+	segEx      [][3]float64
 }
 
 // newSysModel prepares the run.
@@ -102,6 +116,7 @@ func newSysModel(cfg *fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, 
 	}
 	n := len(m.ivs)
 	m.p0, m.p1, m.u = make([]estimator.Pose, n), make([]estimator.Pose, n), make([]estimator.Step, n)
+	m.epochs()
 	return m, nil
 }
 
@@ -442,8 +457,14 @@ func (m *sysModel) deadReckon(g []float64) {
 	}
 	imuS, sf, st := get(g, m.imuScale, 1), get(g, m.stepFwd, 1), get(g, m.stepTurn, 1)
 	var p estimator.Pose
+	var hv float64
+	var ex [2]float64
 	for k := range m.ivs {
 		iv := &m.ivs[k]
+		if e := m.epochOf[k]; k == m.epochStart[e] {
+			m.base[e], ex = hv, [2]float64{}
+		}
+		m.hv[k], m.ex[k] = hv, ex
 		var u estimator.Step
 		if iv.isStep {
 			u = estimator.Step{ForwardM: sf * iv.step.ForwardM, LeftM: sf * iv.step.LeftM, TurnRad: st * iv.step.TurnRad}
@@ -464,9 +485,94 @@ func (m *sysModel) deadReckon(g []float64) {
 			u = estimator.Step{ForwardM: s[0], LeftM: s[1], TurnRad: s[2]}
 		}
 		m.p0[k], m.u[k] = p, u
-		p = estimator.Advance(p, u)
-		m.p1[k] = p
+		q := estimator.Advance(p, u)
+		m.p1[k] = q
+		f := math.Exp(-(hv - m.base[m.epochOf[k]]) / 2)
+		ex[0], ex[1] = ex[0]+f*(q.X-p.X), ex[1]+f*(q.Y-p.Y)
+		hv += m.turnVar(k, u, scale, gain)
+		p = q
 	}
+	m.hv[len(m.ivs)], m.ex[len(m.ivs)] = hv, ex
+}
+
+// epochs finds each segment's epoch of intervals (sysModel.hv): from the
+// interval of its anchor stamp (the first that ends at or after it, as
+// poseAt finds it) to the next
+// epoch's start. A segment whose anchor shares its interval with the next
+// one's has an empty epoch.
+func (m *sysModel) epochs() {
+	n := len(m.ivs)
+	m.hv, m.ex = make([]float64, n+1), make([][2]float64, n+1)
+	m.base, m.epochStart, m.epochOf = make([]float64, len(m.segStart)), make([]int, len(m.segStart)), make([]int, n)
+	for k, t := range m.segStart {
+		m.epochStart[k], _ = slices.BinarySearchFunc(m.ivs, t, func(iv sysInterval, t int64) int { return cmp.Compare(iv.t1, t) })
+	}
+	e := 0
+	for j := range m.epochOf {
+		for e+1 < len(m.epochStart) && m.epochStart[e+1] <= j {
+			e++
+		}
+		m.epochOf[j] = e
+	}
+	// Intervals before the first anchor belong to epoch 0, which starts
+	// with them.
+	m.epochStart[0] = 0
+}
+
+// turnVar returns the heading variance that interval k's step u adds as
+// the configuration's noise model states it (stepCov's turn entry, and the
+// heading drift per second); scale and gain are deadReckon's.
+func (m *sysModel) turnVar(k int, u estimator.Step, scale []float64, gain *mat.Dense) float64 {
+	iv := &m.ivs[k]
+	nz := &m.cfg.Noise
+	dt := float64(iv.t1-iv.t0) * 1e-9
+	v := m.cfg.HeadingDriftVarPerS() * dt
+	if iv.isStep {
+		return v + nz.StepTurnVarRad2PerRad*math.Abs(u.TurnRad) + nz.StepTurnVarRad2PerS*dt
+	}
+	row := gain.RawRowView(2)
+	var mean float64
+	for i := range m.nw {
+		t := math.Abs(scale[i] * m.travel[iv.off+i])
+		v += row[i] * row[i] * nz.WheelVarM2PerM * t
+		mean += t / float64(m.nw)
+	}
+	c := m.nw
+	if m.rotation {
+		v += row[c] * row[c] * nz.IMUTurnVarRad2PerRad * math.Abs(u.TurnRad)
+		c++
+	} else {
+		v += nz.TurnVarRad2PerRad * math.Abs(u.TurnRad)
+	}
+	if m.cfg.NoSideSlip {
+		v += row[c] * row[c] * nz.LateralSlipVarM2PerM * mean
+	}
+	return v
+}
+
+// expectedAt returns, after deadReckon, the expected position at t (ns;
+// fractional; sysModel.hv) in its epoch's sum, the heading variance there
+// and the epoch, clamped to the run as poseAt.
+func (m *sysModel) expectedAt(t float64) (x, y, hv float64, epoch int) {
+	k, _ := slices.BinarySearchFunc(m.ivs, t, func(iv sysInterval, t float64) int {
+		if float64(iv.t1) < t {
+			return -1
+		}
+		return 1
+	})
+	n := len(m.ivs)
+	if k >= n {
+		return m.ex[n][0], m.ex[n][1], m.hv[n], m.epochOf[n-1]
+	}
+	iv := &m.ivs[k]
+	e := m.epochOf[k]
+	if t <= float64(iv.t0) {
+		return m.ex[k][0], m.ex[k][1], m.hv[k], e
+	}
+	fr := (t - float64(iv.t0)) / float64(iv.t1-iv.t0)
+	q := estimator.Advance(m.p0[k], m.u[k].Scale(fr))
+	f := math.Exp(-(m.hv[k] - m.base[e]) / 2)
+	return m.ex[k][0] + f*(q.X-m.p0[k].X), m.ex[k][1] + f*(q.Y-m.p0[k].Y), m.hv[k] + fr*(m.hv[k+1]-m.hv[k]), e
 }
 
 func idxOr(s []int, i int) int {
@@ -506,9 +612,14 @@ func inverse(a estimator.Pose) estimator.Pose {
 // anchorPoses computes, after deadReckon, the inverse of the dead-reckoned
 // pose at each segment's anchor stamp.
 func (m *sysModel) anchorPoses() {
-	m.segInv = m.segInv[:0]
+	m.segInv, m.segEx = m.segInv[:0], m.segEx[:0]
 	for _, t := range m.segStart {
 		m.segInv = append(m.segInv, inverse(m.poseAt(float64(t))))
+		x, y, hv, e := m.expectedAt(float64(t))
+		if e != len(m.segEx) {
+			hv = math.NaN() // its epoch is empty: relative does without
+		}
+		m.segEx = append(m.segEx, [3]float64{x, y, hv})
 	}
 }
 
@@ -536,6 +647,12 @@ const latencyWindowS = 2.0
 // 0.98, while the error itself stayed at 10.4 to 10.8 ms: what noise a
 // window leaves still counts as information, and 2 s (0.008 rad/s and 2
 // mm/s of noise left) leaves little.
+//
+// The position is the expected one under the heading noise since the
+// anchor (sysModel.hv; DEVELOPERS.md, "Design: Systematic parameters"):
+// each interval's displacement damped by exp(-s2/2), s2 the heading
+// variance accumulated from the anchor to it. A capture before its anchor
+// or outside its anchor's epoch keeps the dead-reckoned position.
 func (m *sysModel) relative(i int, g []float64) estimator.Pose {
 	f := &m.fixes[i]
 	t := float64(f.stamp) - get(g, m.latency[f.sensor], 0)*1e9
@@ -544,7 +661,21 @@ func (m *sysModel) relative(i int, g []float64) estimator.Pose {
 	if m.latency[f.sensor] >= 0 && t != t0 {
 		p = estimator.Advance(p, m.velocity(t0).Scale((t-t0)*1e-9))
 	}
-	return estimator.Compose(m.segInv[f.seg], p)
+	rel := estimator.Compose(m.segInv[f.seg], p)
+	// The expected position under the heading noise (sysModel.hv), where
+	// the capture follows the anchor in the anchor's epoch.
+	a := &m.segEx[f.seg]
+	x, y, hv, e := m.expectedAt(t0)
+	if e != f.seg || !(hv >= a[2]) || t0 < float64(m.segStart[f.seg]) {
+		return rel
+	}
+	q := m.poseAt(t0)
+	fa, fq := math.Exp((a[2]-m.base[e])/2), math.Exp(-(hv-a[2])/2)
+	wx := fa*(x-a[0]) + fq*(p.X-q.X)
+	wy := fa*(y-a[1]) + fq*(p.Y-q.Y)
+	s, c := math.Sincos(m.segInv[f.seg].Heading)
+	rel.X, rel.Y = c*wx-s*wy, s*wx+c*wy
+	return rel
 }
 
 // velocity returns, after deadReckon, the dead reckoning's mean body

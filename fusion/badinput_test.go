@@ -85,6 +85,15 @@ func TestBadInputChangesNothing(t *testing.T) {
 		{"empty interval", func(r *Robot) Result {
 			return r.AddOdometry(Odometry{StartNs: newest + 5e6, StampNs: newest + 5e6, TravelM: []float64{0, 0, 0}})
 		}, ErrTimeBackwards, VerdictInvalid},
+		{"stamp a century ahead", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 100*365*86400e9, TravelM: []float64{0.002, 0.0021, 0.0001}})
+		}, ErrTooFarAhead, VerdictInvalid},
+		{"largest stamp", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: math.MaxInt64 - 5e6, StampNs: math.MaxInt64, TravelM: []float64{0, 0, 0}})
+		}, ErrTooFarAhead, VerdictInvalid},
+		{"smallest stamp", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: math.MinInt64, StampNs: math.MinInt64 + 5e6, TravelM: []float64{0, 0, 0}})
+		}, ErrTimeBackwards, VerdictInvalid},
 		{"absurd jump", func(r *Robot) Result {
 			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{3, 3, 0}})
 		}, ErrAbsurdJump, VerdictInvalid},

@@ -169,6 +169,11 @@ type Config struct {
 	MaxHoldAheadNs int64
 	// MaxExtrapolationNs bounds PoseAt past the newest odometry (250 ms).
 	MaxExtrapolationNs int64
+	// MaxOdometryGapNs bounds how far past the newest odometry the next
+	// odometry may be stamped (1 day): a stamp that jumps further is a
+	// corrupt stamp or message, refused with ErrTooFarAhead; taken, it
+	// would put the robot's clock out of reach of every sample after it.
+	MaxOdometryGapNs int64
 	// MaxSpeedMPerS and MaxTurnRateRadPerS refuse absurd odometry (5 m/s, 20 rad/s).
 	MaxSpeedMPerS      float64
 	MaxTurnRateRadPerS float64
@@ -223,6 +228,9 @@ func (c Config) withDefaults() Config {
 	}
 	if c.MaxExtrapolationNs == 0 {
 		c.MaxExtrapolationNs = 250e6
+	}
+	if c.MaxOdometryGapNs == 0 {
+		c.MaxOdometryGapNs = 86400e9
 	}
 	def(&c.MaxSpeedMPerS, 5)
 	def(&c.MaxTurnRateRadPerS, 20)
@@ -341,7 +349,7 @@ func (c *Config) checkLimits() error {
 		v    int64
 	}{
 		{"window_ns", c.WindowNs}, {"max_held", int64(c.MaxHeld)}, {"max_hold_ahead_ns", c.MaxHoldAheadNs},
-		{"max_extrapolation_ns", c.MaxExtrapolationNs}, {"recovery.count", int64(c.Recovery.Count)},
+		{"max_extrapolation_ns", c.MaxExtrapolationNs}, {"max_odometry_gap_ns", c.MaxOdometryGapNs}, {"recovery.count", int64(c.Recovery.Count)},
 		{"trust.nis_window", int64(c.Trust.NISWindow)}, {"trust.refused_in_a_row", int64(c.Trust.RefusedInARow)},
 	}
 	for _, n := range ints {

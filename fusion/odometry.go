@@ -150,6 +150,12 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	if r.started && o.StampNs <= r.newest {
 		return fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d%s", ErrTimeBackwards, o.StampNs, r.newest, r.restartHint(o.StampNs))
 	}
+	// The difference in unsigned arithmetic: stamp_ns is after newest, and
+	// the two may be int64's whole range apart.
+	if gap := uint64(o.StampNs) - uint64(r.newest); r.started && gap > uint64(r.cfg.MaxOdometryGapNs) {
+		return fmt.Errorf("%w: odometry stamp_ns %d is %.0f s after the newest odometry %d, beyond max_odometry_gap_ns %d: a corrupt stamp? If the robot's odometry really stopped that long, start a new run first (a run_start sample, or reckon start-run)",
+			ErrTooFarAhead, o.StampNs, float64(gap)*1e-9, r.newest, r.cfg.MaxOdometryGapNs)
+	}
 	if o.IMUHeadingRad != nil {
 		if r.cfg.IMU == IMUNone {
 			return fmt.Errorf("%w: imu_heading_rad given but imu_mode is none", ErrNoIMU)

@@ -151,8 +151,9 @@ func (r *Robot) checkRunStart(s *RunStart) error {
 // one absurd stamp must stay one refused input (DEVELOPERS.md, "Design:
 // Runs").
 func (r *Robot) restartHint(t int64) string {
-	if r.newest-t <= r.cfg.WindowNs {
+	back := uint64(r.newest) - uint64(t) // t <= newest, perhaps int64's range apart
+	if back <= uint64(r.cfg.WindowNs) {
 		return ""
 	}
-	return fmt.Sprintf("; a jump back of %.3f s, beyond the history window: if the controller restarted, start a new run (a run_start sample, or reckon start-run)", float64(r.newest-t)*1e-9)
+	return fmt.Sprintf("; a jump back of %.3f s, beyond the history window: if the controller restarted, start a new run (a run_start sample, or reckon start-run)", float64(back)*1e-9)
 }

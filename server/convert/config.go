@@ -50,6 +50,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	cfg.MaxHeld = int(c.GetMaxHeld())
 	cfg.MaxHoldAheadNs = c.GetMaxHoldAheadNs()
 	cfg.MaxExtrapolationNs = c.GetMaxExtrapolationNs()
+	cfg.MaxOdometryGapNs = c.GetMaxOdometryGapNs()
 	cfg.MaxSpeedMPerS = c.GetMaxSpeedMPerS()
 	cfg.MaxTurnRateRadPerS = c.GetMaxTurnRateRadPerS()
 	cfg.Recovery = fusion.Recovery{Enabled: c.GetRecovery().GetEnabled(), Count: int(c.GetRecovery().GetCount()), AgreeProbability: c.GetRecovery().GetAgreeProbability()}
@@ -94,6 +95,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		MaxHeld:            int32(cfg.MaxHeld),
 		MaxHoldAheadNs:     cfg.MaxHoldAheadNs,
 		MaxExtrapolationNs: cfg.MaxExtrapolationNs,
+		MaxOdometryGapNs:   cfg.MaxOdometryGapNs,
 		MaxSpeedMPerS:      cfg.MaxSpeedMPerS,
 		MaxTurnRateRadPerS: cfg.MaxTurnRateRadPerS,
 		Recovery:           &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},

@@ -425,9 +425,16 @@ type RobotConfig struct {
 	// all).
 	Sensors []*FixSensor `protobuf:"bytes,18,rep,name=sensors,proto3" json:"sensors,omitempty"`
 	// Online calibration of the odometry (default off).
-	Calibration   *OdometryCalibration `protobuf:"bytes,19,opt,name=calibration,proto3" json:"calibration,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Calibration *OdometryCalibration `protobuf:"bytes,19,opt,name=calibration,proto3" json:"calibration,omitempty"`
+	// Odometry stamped more than this past the newest odometry is refused
+	// (REFUSAL_TOO_FAR_AHEAD), nanoseconds (default 1 day): a stamp that
+	// jumps that far is a corrupt stamp or message, and taking it would put
+	// the robot's clock out of reach of every sample after it. A controller
+	// whose odometry really stopped for longer starts a new run (run_start)
+	// before it sends again.
+	MaxOdometryGapNs int64 `protobuf:"varint,20,opt,name=max_odometry_gap_ns,json=maxOdometryGapNs,proto3" json:"max_odometry_gap_ns,omitempty"`
+	unknownFields    protoimpl.UnknownFields
+	sizeCache        protoimpl.SizeCache
 }
 
 func (x *RobotConfig) Reset() {
@@ -591,6 +598,13 @@ func (x *RobotConfig) GetCalibration() *OdometryCalibration {
 		return x.Calibration
 	}
 	return nil
+}
+
+func (x *RobotConfig) GetMaxOdometryGapNs() int64 {
+	if x != nil {
+		return x.MaxOdometryGapNs
+	}
+	return 0
 }
 
 // FixSensor is one configured source of fixes: what it measures, where it
@@ -1503,7 +1517,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x05state\x18\x05 \x01(\x0e2\x15.reckon.v1.RobotStateR\x05state\x12!\n" +
 	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\x12\x10\n" +
 	"\x03run\x18\a \x01(\x04R\x03run\x12\x17\n" +
-	"\aboot_id\x18\b \x01(\tR\x06bootId\"\xf5\x06\n" +
+	"\aboot_id\x18\b \x01(\tR\x06bootId\"\xa4\a\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +
@@ -1526,7 +1540,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x10start_covariance\x18\x10 \x01(\v2\x15.reckon.v1.CovarianceR\x0fstartCovariance\x121\n" +
 	"\tlandmarks\x18\x11 \x03(\v2\x13.reckon.v1.LandmarkR\tlandmarks\x12.\n" +
 	"\asensors\x18\x12 \x03(\v2\x14.reckon.v1.FixSensorR\asensors\x12@\n" +
-	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\"\xb0\x03\n" +
+	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\x12-\n" +
+	"\x13max_odometry_gap_ns\x18\x14 \x01(\x03R\x10maxOdometryGapNs\"\xb0\x03\n" +
 	"\tFixSensor\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12&\n" +
 	"\x04kind\x18\x02 \x01(\x0e2\x12.reckon.v1.FixKindR\x04kind\x12*\n" +

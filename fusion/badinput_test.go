@@ -107,6 +107,21 @@ func TestBadInputChangesNothing(t *testing.T) {
 			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, Step: &estimator.Step{ForwardM: nan}})
 		}, ErrBadSample, VerdictInvalid},
 		{"NaN heading", func(r *Robot) Result { return r.AddHeading(Heading{StampNs: newest - 1e6, HeadingRad: nan}) }, ErrBadSample, VerdictInvalid},
+		// Angles a float64 cannot place within their turn: taken, 1e300
+		// wrapped to an arbitrary heading that the (ungated) IMU applied.
+		{"heading of 1e300 rad", func(r *Robot) Result { return r.AddHeading(Heading{StampNs: newest - 1e6, HeadingRad: 1e300}) }, ErrBadSample, VerdictInvalid},
+		{"IMU heading on odometry of -1e7 rad", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0, 0, 0}, IMUHeadingRad: f(-1e7)})
+		}, ErrBadSample, VerdictInvalid},
+		{"pose fix heading of 1e9 rad", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "pose", StampNs: newest - 100e6, Kind: FixPose, HeadingRad: 1e9, Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}})
+		}, ErrBadSample, VerdictInvalid},
+		{"heading fix of 1e9 rad", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "heading", StampNs: newest - 100e6, Kind: FixHeading, HeadingRad: 1e9, Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"bearing of 1e300 rad", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", BearingRad: f(1e300), Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
 		{"negative heading variance", func(r *Robot) Result {
 			return r.AddHeading(Heading{StampNs: newest - 1e6, HeadingRad: 0.3, VarRad2: -1})
 		}, ErrBadSample, VerdictInvalid},

@@ -15,8 +15,8 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 	case FixPose:
 		m.Kind = estimator.KindPose
 		m.Z = [3]float64{f.XM, f.YM, estimator.Wrap(f.HeadingRad)}
-		if !finiteAll(f.XM, f.YM, f.HeadingRad) {
-			return m, si, badf("pose fix x_m %v, y_m %v, heading_rad %v is not finite", f.XM, f.YM, f.HeadingRad)
+		if !finiteAll(f.XM, f.YM) || !anglesOK(f.HeadingRad) {
+			return m, si, badf("pose fix x_m %v, y_m %v, heading_rad %v: not finite, or the heading not within %g rad of 0", f.XM, f.YM, f.HeadingRad, maxAngleRad)
 		}
 	case FixPosition:
 		m.Kind = estimator.KindPosition
@@ -27,8 +27,8 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 	case FixHeading:
 		m.Kind = estimator.KindHeading
 		m.Z = [3]float64{estimator.Wrap(f.HeadingRad)}
-		if !finiteAll(f.HeadingRad) {
-			return m, si, badf("heading fix heading_rad %v is not finite", f.HeadingRad)
+		if !anglesOK(f.HeadingRad) {
+			return m, si, badf("heading fix heading_rad %v is not an angle (finite, within %g rad of 0)", f.HeadingRad, maxAngleRad)
 		}
 	case FixLandmark:
 		if err := r.landmarkMeasurement(f, &m); err != nil {
@@ -209,8 +209,8 @@ func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
 	if f.RangeM != nil && (!finiteAll(*f.RangeM) || *f.RangeM <= 0) {
 		return badf("range_m %v must be positive", *f.RangeM)
 	}
-	if f.BearingRad != nil && !finiteAll(*f.BearingRad) {
-		return badf("bearing_rad %v is not finite", *f.BearingRad)
+	if f.BearingRad != nil && !anglesOK(*f.BearingRad) {
+		return badf("bearing_rad %v is not an angle (finite, within %g rad of 0)", *f.BearingRad, maxAngleRad)
 	}
 	return nil
 }

@@ -30,8 +30,8 @@ func (r *Robot) imuMeasurement(z, v float64) (estimator.Measurement, error) {
 	if v == 0 {
 		v = r.cfg.Noise.IMUHeadingVarRad2
 	}
-	if !finiteAll(z) {
-		return estimator.Measurement{}, badf("heading_rad is %v", z)
+	if !anglesOK(z) {
+		return estimator.Measurement{}, badf("heading_rad %v is not an angle (finite, within %g rad of 0)", z, maxAngleRad)
 	}
 	if !finiteAll(v) || v < minVar || v > maxAngleVar {
 		return estimator.Measurement{}, badf("var_rad2 %v is outside the plausible [%g, %g]", v, minVar, maxAngleVar)

@@ -32,6 +32,24 @@ func finiteAll(v ...float64) bool {
 	return true
 }
 
+// maxAngleRad bounds the angles samples carry: a million radians, some
+// 159,000 turns (an IMU that reports its heading unwrapped stays far below
+// it after days of turning). Beyond it a float64 keeps less than a
+// nanoradian of the angle's place within its turn, and the value is no
+// measurement: taken, it wrapped to an arbitrary heading, which the robot
+// applied (IMU headings are not gated by default).
+const maxAngleRad = 1e6
+
+// anglesOK reports whether every v is finite and within maxAngleRad.
+func anglesOK(v ...float64) bool {
+	for _, x := range v {
+		if !(math.Abs(x) <= maxAngleRad) {
+			return false
+		}
+	}
+	return true
+}
+
 func badf(format string, args ...any) error {
 	return fmt.Errorf("%w: %s", ErrBadSample, fmt.Sprintf(format, args...))
 }
@@ -160,8 +178,8 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 		if r.cfg.IMU == IMUNone {
 			return fmt.Errorf("%w: imu_heading_rad given but imu_mode is none", ErrNoIMU)
 		}
-		if !finiteAll(*o.IMUHeadingRad) {
-			return badf("imu_heading_rad is %v", *o.IMUHeadingRad)
+		if !anglesOK(*o.IMUHeadingRad) {
+			return badf("imu_heading_rad %v is not an angle (finite, within %g rad of 0)", *o.IMUHeadingRad, maxAngleRad)
 		}
 	}
 	if r.cfg.IMU == IMURotation && o.IMUHeadingRad == nil && o.Step == nil {

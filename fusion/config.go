@@ -191,6 +191,14 @@ type Config struct {
 	Calibration Calibration
 }
 
+// The largest values checkLimits takes (see there).
+const (
+	maxWindowNs      = 5e9
+	maxHeldLimit     = 1024
+	maxRecoveryCount = 100
+	maxNISWindow     = 1000
+)
+
 // ErrConfig marks every configuration error.
 var ErrConfig = errors.New("invalid configuration")
 
@@ -359,6 +367,24 @@ func (c *Config) checkLimits() error {
 	}
 	if c.Recovery.Count < 2 {
 		return cfgErr("recovery.count", "%d must be at least 2: one refused fix proves nothing", c.Recovery.Count)
+	}
+	// Upper bounds on what a configuration makes a robot keep: a client
+	// that creates a robot must not be able to make the service allocate
+	// without bound (trust.nis_window allocates its windows at creation;
+	// the others grow with input). Each is far beyond its use.
+	for _, n := range []struct {
+		name    string
+		v, most int64
+		why     string
+	}{
+		{"window_ns", c.WindowNs, maxWindowNs, "5 s of history; late fixes come within a second or two"},
+		{"max_held", int64(c.MaxHeld), maxHeldLimit, "inputs waiting for odometry"},
+		{"recovery.count", int64(c.Recovery.Count), maxRecoveryCount, "refused fixes kept as evidence of a move"},
+		{"trust.nis_window", int64(c.Trust.NISWindow), maxNISWindow, "fixes in the consistency window"},
+	} {
+		if n.v > n.most {
+			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
+		}
 	}
 	for _, p := range []struct {
 		name string

@@ -15,8 +15,11 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 	case FixPose:
 		m.Kind = estimator.KindPose
 		m.Z = [3]float64{f.XM, f.YM, estimator.Wrap(f.HeadingRad)}
-		if !finiteAll(f.XM, f.YM) || !anglesOK(f.HeadingRad) {
-			return m, si, badf("pose fix x_m %v, y_m %v, heading_rad %v: not finite, or the heading not within %g rad of 0", f.XM, f.YM, f.HeadingRad, maxAngleRad)
+		if !finiteAll(f.XM, f.YM, f.HeadingRad) {
+			return m, si, badf("pose fix x_m %v, y_m %v, heading_rad %v is not finite", f.XM, f.YM, f.HeadingRad)
+		}
+		if !anglesOK(f.HeadingRad) {
+			return m, si, badf("pose fix heading_rad %v is not an angle (finite, within %g rad of 0)", f.HeadingRad, maxAngleRad)
 		}
 	case FixPosition:
 		m.Kind = estimator.KindPosition

@@ -317,7 +317,8 @@ func splitOdo(e *entry, t int64, a, b *entry) {
 	}
 }
 
-// trim folds entries that ended before the window into the base checkpoint.
+// trim folds entries that ended before the window into the base
+// checkpoint, and the oldest beyond maxWindowEntries.
 func (r *Robot) trim() {
 	cutoff := r.newest - r.cfg.WindowNs
 	live := r.live()
@@ -325,8 +326,20 @@ func (r *Robot) trim() {
 	for k < len(live)-1 && live[k].t1 < cutoff {
 		k++
 	}
-	r.dropFront(k)
+	r.dropFront(max(k, min(len(live)-maxWindowEntries, len(live)-1)))
 }
+
+// maxWindowEntries bounds the history window by its number of entries as
+// well as by window_ns: samples stamped microseconds apart (a controller
+// that stamps in microseconds but says nanoseconds) would otherwise keep
+// a second of them, each entry 520 bytes in memory and about 590 in a
+// snapshot. 2048 entries is 6.6 s at 200 Hz odometry, 100 Hz IMU and 10
+// Hz fixes, more than the longest window_ns (5 s); past it the window is
+// shorter than window_ns, and a late sample before its start is refused as
+// too old with the start named. A snapshot then holds at most 1.2 MB of
+// window and 0.6 MB of held inputs (max_held at most 1024), which fit in a
+// journal record (4 MiB) beside the sessions' verdicts (up to 2 MiB).
+const maxWindowEntries = 2048
 
 // dropFront folds the first k live entries into the base checkpoint.
 func (r *Robot) dropFront(k int) {

@@ -1,0 +1,79 @@
+package fusion
+
+import (
+	"errors"
+	"strings"
+	"testing"
+)
+
+// TestConfigUpperBounds: a configuration cannot make a robot allocate
+// without bound. trust.nis_window of two billion allocated 160 GB at
+// creation (the fixes' and IMU's consistency windows), and window_ns,
+// max_held and recovery.count let input grow a robot's memory and its
+// snapshot past a journal record. Each is refused naming the field, and
+// its largest value is taken.
+func TestConfigUpperBounds(t *testing.T) {
+	for _, c := range []struct {
+		field string
+		set   func(c *Config, most bool)
+	}{
+		{"window_ns", func(c *Config, most bool) { c.WindowNs = maxWindowNs + map[bool]int64{true: 0, false: 1}[most] }},
+		{"max_held", func(c *Config, most bool) { c.MaxHeld = maxHeldLimit + map[bool]int{true: 0, false: 1}[most] }},
+		{"recovery.count", func(c *Config, most bool) {
+			c.Recovery.Count = maxRecoveryCount + map[bool]int{true: 0, false: 1}[most]
+		}},
+		{"trust.nis_window", func(c *Config, most bool) {
+			c.Trust.NISWindow = map[bool]int{true: maxNISWindow, false: 2_000_000_000}[most]
+		}},
+	} {
+		cfg := threeWheels()
+		c.set(&cfg, false)
+		_, err := New(cfg)
+		if !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "is more than") {
+			t.Errorf("%s past its limit: %v", c.field, err)
+		}
+		cfg = threeWheels()
+		c.set(&cfg, true)
+		if _, err := New(cfg); err != nil {
+			t.Errorf("%s at its limit (or default): %v", c.field, err)
+		}
+	}
+}
+
+// TestWindowEntryLimit: odometry stamped 1 us apart (a controller that
+// stamps in microseconds but says nanoseconds) keeps at most
+// maxWindowEntries in the window, not the second's million; a late fix
+// before the shortened window is refused as too old naming its start, and
+// one inside it is applied.
+func TestWindowEntryLimit(t *testing.T) {
+	r, err := New(threeWheels())
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr := []float64{1e-6, 1e-6, 0}
+	const n = 3 * maxWindowEntries
+	for k := int64(0); k < n; k++ {
+		if res := r.AddOdometry(Odometry{StartNs: k * 1000, StampNs: (k + 1) * 1000, TravelM: tr}); res.Verdict != VerdictApplied {
+			t.Fatalf("sample %d: %v %v", k, res.Verdict, res.Err)
+		}
+		if live := len(r.live()); live > maxWindowEntries {
+			t.Fatalf("after %d samples the window holds %d entries, more than %d", k+1, live, maxWindowEntries)
+		}
+	}
+	if c := cap(r.ents); c > 3*maxWindowEntries {
+		t.Errorf("the window's slice has room for %d entries for at most %d live", c, maxWindowEntries)
+	}
+	start := r.WindowStartNs()
+	if want := int64(n-maxWindowEntries) * 1000; start < want-1000 || start > want+1000 {
+		t.Errorf("window starts at %d ns, want about %d (the newest %d entries)", start, want, maxWindowEntries)
+	}
+	fix := func(stamp int64) Result {
+		return r.AddFix(Fix{SensorID: "position", StampNs: stamp, Kind: FixPosition, XM: 0, YM: 0, Cov: []float64{0.01, 0, 0, 0.01}})
+	}
+	if res := fix(start - 5000); res.Verdict != VerdictTooOld || !strings.Contains(res.Err.Error(), "the window starts at") {
+		t.Errorf("a fix before the shortened window: %v %v", res.Verdict, res.Err)
+	}
+	if res := fix(start + 5000); res.Verdict != VerdictApplied && res.Verdict != VerdictGated {
+		t.Errorf("a fix inside the window: %v %v", res.Verdict, res.Err)
+	}
+}

@@ -119,6 +119,12 @@ func TestBadInputChangesNothing(t *testing.T) {
 		{"heading fix of 1e9 rad", func(r *Robot) Result {
 			return r.AddFix(Fix{SensorID: "heading", StampNs: newest - 100e6, Kind: FixHeading, HeadingRad: 1e9, Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},
+		{"re-seed heading of 1e300 rad", func(r *Robot) Result {
+			return r.Reseed(newest-100e6, estimator.Pose{Heading: 1e300}, []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, 0.01})
+		}, ErrBadSample, VerdictInvalid},
+		{"fix mount heading of 1e300 rad", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "position", StampNs: newest - 100e6, Kind: FixPosition, Mount: &estimator.Pose{Heading: 1e300}, Cov: []float64{0.01, 0, 0, 0.01}})
+		}, ErrBadSample, VerdictInvalid},
 		{"bearing of 1e300 rad", func(r *Robot) Result {
 			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", BearingRad: f(1e300), Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},

@@ -283,8 +283,8 @@ func (c Config) Validate() error {
 func (c *Config) checkWheels() error {
 	for i, w := range c.Wheels {
 		f := fmt.Sprintf("wheels[%d]", i)
-		if !finiteAll(w.XM, w.YM, w.DirectionRad) {
-			return cfgErr(f, "position and direction must be finite")
+		if !finiteAll(w.XM, w.YM) || !anglesOK(w.DirectionRad) {
+			return cfgErr(f, "position must be finite, direction_rad within %g rad of 0", maxAngleRad)
 		}
 		if w.CountsPerM < 0 || !finiteAll(w.CountsPerM) {
 			return cfgErr(f+".counts_per_m", "%v must be positive (or 0 when samples carry metres)", w.CountsPerM)
@@ -400,8 +400,8 @@ func (c *Config) checkLimits() error {
 
 // checkStart checks the start pose and its covariance.
 func (c *Config) checkStart() error {
-	if !finiteAll(c.StartPose.X, c.StartPose.Y, c.StartPose.Heading) {
-		return cfgErr("start_pose", "must be finite")
+	if !finiteAll(c.StartPose.X, c.StartPose.Y) || !anglesOK(c.StartPose.Heading) {
+		return cfgErr("start_pose", "must be finite, its heading within %g rad of 0", maxAngleRad)
 	}
 	if err := estimator.CheckCovariance(c.StartCov, 3); err != nil {
 		return cfgErr("start_covariance", "%v", err)

@@ -211,8 +211,8 @@ func (c *Config) checkSensors() error {
 		if d == 0 {
 			return cfgErr(f+".kind", "%d is not pose, position, heading or landmark", s.Kind)
 		}
-		if !finiteAll(s.Mount.X, s.Mount.Y, s.Mount.Heading) {
-			return cfgErr(f+".mount", "must be finite")
+		if !finiteAll(s.Mount.X, s.Mount.Y) || !anglesOK(s.Mount.Heading) {
+			return cfgErr(f+".mount", "must be finite, its heading within %g rad of 0", maxAngleRad)
 		}
 		if m := s.MountStd; !finiteAll(m[:]...) || m[0] < 0 || m[1] < 0 || m[2] < 0 || m[0] > 10 || m[1] > 10 || m[2] > math.Pi {
 			return cfgErr(f+".mount_std", "%v must be finite, not negative, at most 10 m and pi rad", m)
@@ -398,8 +398,8 @@ func (s *Sensor) sensorFix(f *Fix, first, mount int, m *estimator.Measurement) e
 	if f.Mount != nil {
 		m.Mount, m.MountError = *f.Mount, 0
 	}
-	if !finiteAll(m.Mount.X, m.Mount.Y, m.Mount.Heading) {
-		return badf("mount %+v is not finite", m.Mount)
+	if !finiteAll(m.Mount.X, m.Mount.Y) || !anglesOK(m.Mount.Heading) {
+		return badf("mount %+v is not finite, or its heading not within %g rad of 0", m.Mount, maxAngleRad)
 	}
 	// comps are the fix's components within the kind's full measurement
 	// (a range-only landmark fix is component 0, bearing-only 1).

@@ -56,4 +56,14 @@ func TestOdometryGapLimit(t *testing.T) {
 	if !errors.Is(res.Err, ErrTimeBackwards) || !strings.Contains(res.Err.Error(), "a jump back of 18446744073") {
 		t.Errorf("a jump back across int64's range: %v", res.Err)
 	}
+	// A pose asked for int64's range ahead of a clock that began far below
+	// zero: the difference wrapped negative and the robot extrapolated
+	// backwards.
+	r3, _ := New(threeWheels())
+	for k := int64(0); k < 3; k++ {
+		r3.AddOdometry(Odometry{StartNs: math.MinInt64 + k*5e6, StampNs: math.MinInt64 + (k+1)*5e6, TravelM: tr})
+	}
+	if _, err := r3.PoseAt(math.MaxInt64); !errors.Is(err, ErrTooFarAhead) {
+		t.Errorf("a pose int64's range ahead: %v", err)
+	}
 }

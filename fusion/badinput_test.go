@@ -91,6 +91,9 @@ func TestBadInputChangesNothing(t *testing.T) {
 		{"largest stamp", func(r *Robot) Result {
 			return r.AddOdometry(Odometry{StartNs: math.MaxInt64 - 5e6, StampNs: math.MaxInt64, TravelM: []float64{0, 0, 0}})
 		}, ErrTooFarAhead, VerdictInvalid},
+		{"interval of int64's whole range", func(r *Robot) Result {
+			return r.AddOdometry(Odometry{StartNs: newest, StampNs: math.MaxInt64, TravelM: []float64{0, 0, 0}})
+		}, ErrTooFarAhead, VerdictInvalid},
 		{"smallest stamp", func(r *Robot) Result {
 			return r.AddOdometry(Odometry{StartNs: math.MinInt64, StampNs: math.MinInt64 + 5e6, TravelM: []float64{0, 0, 0}})
 		}, ErrTimeBackwards, VerdictInvalid},

@@ -56,6 +56,16 @@ func TestOdometryGapLimit(t *testing.T) {
 	if !errors.Is(res.Err, ErrTimeBackwards) || !strings.Contains(res.Err.Error(), "a jump back of 18446744073") {
 		t.Errorf("a jump back across int64's range: %v", res.Err)
 	}
+	// A first interval spanning int64's range: its length wrapped negative
+	// and the robot took it with negative variances.
+	r4, _ := New(threeWheels())
+	res = r4.AddOdometry(Odometry{StartNs: math.MinInt64, StampNs: math.MaxInt64, TravelM: tr})
+	if !errors.Is(res.Err, ErrBadSample) || !strings.Contains(res.Err.Error(), "longer than max_odometry_gap_ns") {
+		t.Errorf("a first interval of int64's range: %v %v", res.Verdict, res.Err)
+	}
+	if st := r4.Estimate(); st.Var(0) <= 0 || st.Var(2) <= 0 {
+		t.Errorf("variances %g, %g after the refused interval", st.Var(0), st.Var(2))
+	}
 	// A pose asked for int64's range ahead of a clock that began far below
 	// zero: the difference wrapped negative and the robot extrapolated
 	// backwards.

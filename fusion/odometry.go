@@ -215,6 +215,11 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	if o.StartNs >= o.StampNs {
 		return fmt.Errorf("%w: start_ns %d is not before stamp_ns %d", ErrTimeBackwards, o.StartNs, o.StampNs)
 	}
+	// Unsigned: the interval may span int64's whole range, whose length
+	// wrapped negative and gave the first sample negative variances.
+	if d := uint64(o.StampNs) - uint64(o.StartNs); d > uint64(r.cfg.MaxOdometryGapNs) {
+		return badf("the interval from start_ns %d to stamp_ns %d, %.0f s, is longer than max_odometry_gap_ns %d", o.StartNs, o.StampNs, float64(d)*1e-9, r.cfg.MaxOdometryGapNs)
+	}
 	if r.started && o.StartNs < r.newest {
 		return fmt.Errorf("%w: interval starts at %d, before the newest odometry %d%s", ErrTimeBackwards, o.StartNs, r.newest, r.restartHint(o.StartNs))
 	}

@@ -79,3 +79,33 @@ func TestCheckCovarianceShape(t *testing.T) {
 		t.Errorf("identity: %v", err)
 	}
 }
+
+// TestCheckCovarianceSinglePrecision: a covariance rotated into another
+// frame in single precision (R C R^T in float32, each half computed on its
+// own, as a microcontroller or an image library may) differs between its
+// halves by float32's rounding and is taken; halves that differ by a
+// thousandth are not.
+func TestCheckCovarianceSinglePrecision(t *testing.T) {
+	s, c := float32(math.Sin(0.7)), float32(math.Cos(0.7))
+	r := [2][2]float32{{c, -s}, {s, c}}
+	d := [2]float32{0.09, 0.0004}
+	var out [2][2]float32
+	for i := range 2 {
+		for j := range 2 {
+			// Summed in the order that makes (i, j) and (j, i) round apart.
+			if i <= j {
+				out[i][j] = r[i][0]*d[0]*r[j][0] + r[i][1]*d[1]*r[j][1]
+			} else {
+				out[i][j] = r[i][1]*d[1]*r[j][1] + r[i][0]*d[0]*r[j][0]
+			}
+		}
+	}
+	cov := []float64{float64(out[0][0]), float64(out[0][1]), float64(out[1][0]), float64(out[1][1])}
+	if err := CheckCovariance(cov, 2); err != nil {
+		t.Errorf("single-precision covariance %v: %v", cov, err)
+	}
+	cov[1] *= 1.001
+	if err := CheckCovariance(cov, 2); err == nil {
+		t.Errorf("halves a thousandth apart taken: %v", cov)
+	}
+}

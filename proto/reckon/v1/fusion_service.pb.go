@@ -32,7 +32,8 @@ const (
 	Refusal_REFUSAL_TOO_OLD Refusal = 1
 	// Time runs backwards (odometry older than the newest, or a repeated stamp).
 	Refusal_REFUSAL_TIME_BACKWARDS Refusal = 2
-	// Stamped too far past the newest odometry to be held.
+	// Stamped too far past the newest odometry: a sample to be held beyond
+	// max_hold_ahead_ns, or odometry beyond max_odometry_gap_ns.
 	Refusal_REFUSAL_TOO_FAR_AHEAD Refusal = 3
 	// Too many inputs already wait for odometry (max_held).
 	Refusal_REFUSAL_HELD_FULL Refusal = 4

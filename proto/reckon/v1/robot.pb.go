@@ -395,9 +395,11 @@ type RobotConfig struct {
 	GateProbability float64 `protobuf:"fixed64,5,opt,name=gate_probability,json=gateProbability,proto3" json:"gate_probability,omitempty"`
 	// Gate IMU headings too (default off: wheels slip, IMUs rarely jump).
 	GateImu bool `protobuf:"varint,6,opt,name=gate_imu,json=gateImu,proto3" json:"gate_imu,omitempty"`
-	// History window for late samples, nanoseconds (default 1 s).
+	// History window for late samples, nanoseconds (default 1 s, at most
+	// 5 s); it holds at most 2048 inputs, and is shorter when more come
+	// within it.
 	WindowNs int64 `protobuf:"varint,7,opt,name=window_ns,json=windowNs,proto3" json:"window_ns,omitempty"`
-	// Most samples held waiting for odometry (default 256).
+	// Most samples held waiting for odometry (default 256, at most 1024).
 	MaxHeld int32 `protobuf:"varint,8,opt,name=max_held,json=maxHeld,proto3" json:"max_held,omitempty"`
 	// How far past the newest odometry a held sample may be stamped,
 	// nanoseconds (default 1 s).
@@ -1173,7 +1175,8 @@ type MoveRecovery struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Turns recovery on.
 	Enabled bool `protobuf:"varint,1,opt,name=enabled,proto3" json:"enabled,omitempty"`
-	// Consecutive refused pose fixes it takes (default 3, at least 2).
+	// Consecutive refused pose fixes it takes (default 3, at least 2, at
+	// most 100).
 	Count int32 `protobuf:"varint,2,opt,name=count,proto3" json:"count,omitempty"`
 	// Chi-square probability within which they must agree (default 0.99).
 	AgreeProbability float64 `protobuf:"fixed64,3,opt,name=agree_probability,json=agreeProbability,proto3" json:"agree_probability,omitempty"`
@@ -1239,8 +1242,8 @@ type TrustLimits struct {
 	MaxPosition95M float64 `protobuf:"fixed64,1,opt,name=max_position95_m,json=maxPosition95M,proto3" json:"max_position95_m,omitempty"`
 	// Largest heading standard deviation, radians (default 0.1).
 	MaxHeadingStdRad float64 `protobuf:"fixed64,2,opt,name=max_heading_std_rad,json=maxHeadingStdRad,proto3" json:"max_heading_std_rad,omitempty"`
-	// Recent applied fixes the consistency check sums (default 20); the IMU
-	// headings' window holds five times as many.
+	// Recent applied fixes the consistency check sums (default 20, at most
+	// 1000); the IMU headings' window holds five times as many.
 	NisWindow int32 `protobuf:"varint,3,opt,name=nis_window,json=nisWindow,proto3" json:"nis_window,omitempty"`
 	// Probability the windowed NIS sum must stay below (default 0.999; for
 	// the IMU window a tenth of the rest, 0.9999, because IMU headings come

@@ -497,9 +497,8 @@ func (m *sysModel) deadReckon(g []float64) {
 
 // epochs finds each segment's epoch of intervals (sysModel.hv): from the
 // interval of its anchor stamp (the first that ends at or after it, as
-// poseAt finds it) to the next
-// epoch's start. A segment whose anchor shares its interval with the next
-// one's has an empty epoch.
+// poseAt finds it) to the next epoch's start. A segment whose anchor
+// shares its interval with the next one's has an empty epoch.
 func (m *sysModel) epochs() {
 	n := len(m.ivs)
 	m.hv, m.ex = make([]float64, n+1), make([][2]float64, n+1)

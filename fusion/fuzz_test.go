@@ -30,6 +30,17 @@ func (r *reader) f64() float64 {
 	return v
 }
 
+// i64 returns the next 8 bytes as an int64 (0 when they run out).
+func (r *reader) i64() int64 {
+	if len(r.b) < 8 {
+		r.b = nil
+		return 0
+	}
+	v := int64(binary.LittleEndian.Uint64(r.b))
+	r.b = r.b[8:]
+	return v
+}
+
 // small returns a plausible number most of the time and raw bits otherwise.
 func (r *reader) small() float64 {
 	if k := r.byte(); k < 200 {
@@ -46,6 +57,8 @@ func FuzzSamples(f *testing.F) {
 	f.Add([]byte{0, 5, 10, 20, 0, 1, 3, 50, 0, 2, 4, 100, 100, 3, 2, 0, 5, 5})
 	f.Add([]byte{0, 5, 1, 1, 1, 2, 250, 1, 2, 3, 4, 5, 6, 7, 8, 0, 255, 255, 255})
 	f.Add([]byte{4, 0, 0, 1, 9, 9, 9, 2, 200, 3, 0, 1, 1, 0, 0, 6, 7})
+	// Odometry a century ahead, then an interval of int64's whole range.
+	f.Add([]byte{0, 1, 0, 25, 10, 20, 30, 1, 0, 255, 0, 0, 0x9c, 0x6b, 0x38, 0x3a, 0xd6, 0x2b, 10, 20, 30, 1, 7, 255, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0x7f, 1, 2, 3})
 	f.Fuzz(func(t *testing.T, data []byte) { fuzzSamples(t, data) })
 }
 
@@ -83,6 +96,11 @@ func fuzzSamples(t *testing.T, data []byte) {
 		for steps := 0; len(in.b) > 0 && steps < 200; steps++ {
 			op := in.byte() % 8
 			dt := (int64(in.byte()) - 20) * 1e6
+			if dt == 235e6 {
+				// Any step in time, as far as int64's range: stamps
+				// ahead by a century, or wrapped around.
+				dt = in.i64()
+			}
 			before := snap(r)
 			var res Result
 			switch op {

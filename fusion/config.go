@@ -191,7 +191,7 @@ type Config struct {
 	Calibration Calibration
 }
 
-// The largest values checkLimits takes (see there).
+// The largest values CheckBounds takes (see there).
 const (
 	maxWindowNs      = 5e9
 	maxHeldLimit     = 1024
@@ -333,6 +333,33 @@ func (c *Config) checkNoise() error {
 	return nil
 }
 
+// CheckBounds reports a configuration (after defaults) past the upper
+// bounds a new robot is held to, naming the field: a client that creates a
+// robot must not be able to make the service allocate without bound
+// (trust.nis_window allocates its windows at creation; the others grow
+// with input). Each bound is far beyond its use. New and Validate do not
+// check them, so that a journal written before they existed restores as
+// it was; the service checks them where robots are created (CreateRobot,
+// configuration files).
+func (c Config) CheckBounds() error {
+	c = c.withDefaults()
+	for _, n := range []struct {
+		name    string
+		v, most int64
+		why     string
+	}{
+		{"window_ns", c.WindowNs, maxWindowNs, "5 s of history; late fixes come within a second or two"},
+		{"max_held", int64(c.MaxHeld), maxHeldLimit, "inputs waiting for odometry"},
+		{"recovery.count", int64(c.Recovery.Count), maxRecoveryCount, "refused fixes kept as evidence of a move"},
+		{"trust.nis_window", int64(c.Trust.NISWindow), maxNISWindow, "fixes in the consistency window"},
+	} {
+		if n.v > n.most {
+			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
+		}
+	}
+	return nil
+}
+
 // checkLimits checks the IMU mode, the probabilities, the counts and sizes,
 // and the positive limits.
 func (c *Config) checkLimits() error {
@@ -367,24 +394,6 @@ func (c *Config) checkLimits() error {
 	}
 	if c.Recovery.Count < 2 {
 		return cfgErr("recovery.count", "%d must be at least 2: one refused fix proves nothing", c.Recovery.Count)
-	}
-	// Upper bounds on what a configuration makes a robot keep: a client
-	// that creates a robot must not be able to make the service allocate
-	// without bound (trust.nis_window allocates its windows at creation;
-	// the others grow with input). Each is far beyond its use.
-	for _, n := range []struct {
-		name    string
-		v, most int64
-		why     string
-	}{
-		{"window_ns", c.WindowNs, maxWindowNs, "5 s of history; late fixes come within a second or two"},
-		{"max_held", int64(c.MaxHeld), maxHeldLimit, "inputs waiting for odometry"},
-		{"recovery.count", int64(c.Recovery.Count), maxRecoveryCount, "refused fixes kept as evidence of a move"},
-		{"trust.nis_window", int64(c.Trust.NISWindow), maxNISWindow, "fixes in the consistency window"},
-	} {
-		if n.v > n.most {
-			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
-		}
 	}
 	for _, p := range []struct {
 		name string

@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	pb "reckon.example/proto/reckon/v1"
 )
@@ -175,5 +176,30 @@ func TestWatcherLimits(t *testing.T) {
 	}
 	if err != nil {
 		t.Errorf("watch after the others closed: %v", err)
+	}
+}
+
+// TestCreateRobotBounds: a configuration past a robot's upper bounds
+// (fusion.Config.CheckBounds) is refused at CreateRobot with
+// INVALID_ARGUMENT naming the field, and nothing is allocated for it:
+// trust.nis_window of two billion allocated 160 GB at creation before.
+func TestCreateRobotBounds(t *testing.T) {
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	_, cfg := cartRun(12, 1)
+	cfg.Trust = &pb.TrustLimits{NisWindow: 2_000_000_000}
+	cfg.WindowNs = 0
+	_, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "trust.nis_window") {
+		t.Fatalf("nis_window of two billion: %v", err)
+	}
+	cfg.Trust, cfg.WindowNs = nil, 3_600e9
+	_, err = api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "window_ns") {
+		t.Fatalf("a window of an hour: %v", err)
+	}
+	if list, err := api.ListRobots(context.Background(), &pb.ListRobotsRequest{}); err != nil || len(list.GetRobots()) != 0 {
+		t.Errorf("robots after the refusals: %v %v", list.GetRobots(), err)
 	}
 }

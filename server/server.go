@@ -321,6 +321,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be 1 to 63 lower-case letters, digits and hyphens, starting with a letter", req.GetRobotId())
 	}
 	cfg, err := convert.ConfigFromProto(req.GetConfig())
+	if err == nil {
+		err = cfg.CheckBounds()
+	}
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}

@@ -64,6 +64,9 @@ func LoadConfigYAML(data []byte) (*pb.RobotConfig, fusion.Config, error) {
 		return nil, fusion.Config{}, err
 	}
 	cfg, err := ConfigFromProto(c)
+	if err == nil {
+		err = cfg.CheckBounds()
+	}
 	if err != nil {
 		field := fusion.FieldOf(err)
 		return nil, cfg, &ConfigFileError{Line: d.lineOf(field), Field: field, Err: err}

@@ -88,7 +88,8 @@ func CheckCovariance(c []float64, n int) error {
 			// Relative to the entries' scale, as loose as single
 			// precision: a covariance computed in float32 (a
 			// microcontroller, an image library) may differ between its
-			// halves by its rounding, about 6e-8 of its scale.
+			// halves by its rounding, about 6e-8 of its scale (binary32's
+			// unit roundoff 2^-24; common practice).
 			scale := math.Max(math.Sqrt(math.Abs(c[i*n+i]*c[j*n+j])), 1e-300)
 			if math.Abs(a-b) > 1e-6*scale {
 				return errAsymmetric{i, j}

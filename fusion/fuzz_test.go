@@ -57,7 +57,8 @@ func FuzzSamples(f *testing.F) {
 	f.Add([]byte{0, 5, 10, 20, 0, 1, 3, 50, 0, 2, 4, 100, 100, 3, 2, 0, 5, 5})
 	f.Add([]byte{0, 5, 1, 1, 1, 2, 250, 1, 2, 3, 4, 5, 6, 7, 8, 0, 255, 255, 255})
 	f.Add([]byte{4, 0, 0, 1, 9, 9, 9, 2, 200, 3, 0, 1, 1, 0, 0, 6, 7})
-	// Odometry a century ahead, then an interval of int64's whole range.
+	// Odometry a century ahead, then a body step int64's largest value
+	// ahead (its stamp wraps: time backwards).
 	f.Add([]byte{0, 1, 0, 25, 10, 20, 30, 1, 0, 255, 0, 0, 0x9c, 0x6b, 0x38, 0x3a, 0xd6, 0x2b, 10, 20, 30, 1, 7, 255, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0x7f, 1, 2, 3})
 	f.Fuzz(func(t *testing.T, data []byte) { fuzzSamples(t, data) })
 }

@@ -16,31 +16,28 @@ import (
 // the allocation at creation, which is not tried here.
 func TestConfigUpperBounds(t *testing.T) {
 	for _, c := range []struct {
-		field string
-		set   func(c *Config, most bool)
+		field      string
+		set        func(c *Config, v int64)
+		most, past int64
 	}{
-		{"window_ns", func(c *Config, most bool) { c.WindowNs = maxWindowNs + map[bool]int64{true: 0, false: 1}[most] }},
-		{"max_held", func(c *Config, most bool) { c.MaxHeld = maxHeldLimit + map[bool]int{true: 0, false: 1}[most] }},
-		{"recovery.count", func(c *Config, most bool) {
-			c.Recovery.Count = maxRecoveryCount + map[bool]int{true: 0, false: 1}[most]
-		}},
-		{"trust.nis_window", func(c *Config, most bool) {
-			c.Trust.NISWindow = map[bool]int{true: maxNISWindow, false: 2_000_000_000}[most]
-		}},
+		{"window_ns", func(c *Config, v int64) { c.WindowNs = v }, maxWindowNs, maxWindowNs + 1},
+		{"max_held", func(c *Config, v int64) { c.MaxHeld = int(v) }, maxHeldLimit, maxHeldLimit + 1},
+		{"recovery.count", func(c *Config, v int64) { c.Recovery.Count = int(v) }, maxRecoveryCount, maxRecoveryCount + 1},
+		{"trust.nis_window", func(c *Config, v int64) { c.Trust.NISWindow = int(v) }, maxNISWindow, 2_000_000_000},
 	} {
 		cfg := threeWheels()
-		c.set(&cfg, false)
+		c.set(&cfg, c.past)
 		err := cfg.CheckBounds()
 		if !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "is more than") {
 			t.Errorf("%s past its limit: %v", c.field, err)
 		}
-		if c.field != "trust.nis_window" {
+		if c.field != "trust.nis_window" { // New would allocate its windows
 			if _, err := New(cfg); err != nil {
 				t.Errorf("New refuses %s past its bound, as an old journal may hold it: %v", c.field, err)
 			}
 		}
 		cfg = threeWheels()
-		c.set(&cfg, true)
+		c.set(&cfg, c.most)
 		if err := cfg.CheckBounds(); err != nil {
 			t.Errorf("%s at its limit: %v", c.field, err)
 		}

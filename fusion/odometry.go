@@ -54,6 +54,12 @@ func badf(format string, args ...any) error {
 	return fmt.Errorf("%w: %s", ErrBadSample, fmt.Sprintf(format, args...))
 }
 
+// nsAfter returns later - earlier (later >= earlier) without overflow:
+// stamps may lie int64's whole range apart, whose difference wraps
+// negative in int64 (unsigned two's-complement subtraction, common
+// practice).
+func nsAfter(later, earlier int64) uint64 { return uint64(later) - uint64(earlier) }
+
 // countDelta returns cur - prev for a counter of the given width, wrapping
 // around, as a signed difference.
 func countDelta(cur, prev int64, bits int) int64 {
@@ -168,9 +174,7 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	if r.started && o.StampNs <= r.newest {
 		return fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d%s", ErrTimeBackwards, o.StampNs, r.newest, r.restartHint(o.StampNs))
 	}
-	// The difference in unsigned arithmetic: stamp_ns is after newest, and
-	// the two may be int64's whole range apart.
-	if gap := uint64(o.StampNs) - uint64(r.newest); r.started && gap > uint64(r.cfg.MaxOdometryGapNs) {
+	if gap := nsAfter(o.StampNs, r.newest); r.started && gap > uint64(r.cfg.MaxOdometryGapNs) {
 		return fmt.Errorf("%w: odometry stamp_ns %d is %.0f s after the newest odometry %d, beyond max_odometry_gap_ns %d: a corrupt stamp? If the robot's odometry really stopped that long, start a new run first (a run_start sample, or reckon start-run)",
 			ErrTooFarAhead, o.StampNs, float64(gap)*1e-9, r.newest, r.cfg.MaxOdometryGapNs)
 	}
@@ -215,9 +219,9 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	if o.StartNs >= o.StampNs {
 		return fmt.Errorf("%w: start_ns %d is not before stamp_ns %d", ErrTimeBackwards, o.StartNs, o.StampNs)
 	}
-	// Unsigned: the interval may span int64's whole range, whose length
-	// wrapped negative and gave the first sample negative variances.
-	if d := uint64(o.StampNs) - uint64(o.StartNs); d > uint64(r.cfg.MaxOdometryGapNs) {
+	// An interval of int64's whole range had a negative length and gave the
+	// first sample negative variances.
+	if d := nsAfter(o.StampNs, o.StartNs); d > uint64(r.cfg.MaxOdometryGapNs) {
 		return badf("the interval from start_ns %d to stamp_ns %d, %.0f s, is longer than max_odometry_gap_ns %d", o.StartNs, o.StampNs, float64(d)*1e-9, r.cfg.MaxOdometryGapNs)
 	}
 	if r.started && o.StartNs < r.newest {

@@ -67,8 +67,7 @@ func (r *Robot) PoseAt(stampNs int64) (FusedPose, error) {
 		return FusedPose{}, fmt.Errorf("%w: stamp_ns %d is before the window start %d", ErrTooOld, stampNs, r.baseT)
 	}
 	if stampNs > r.newest {
-		// Unsigned: stamp_ns is after newest, perhaps int64's range apart.
-		if d := uint64(stampNs) - uint64(r.newest); d > uint64(r.cfg.MaxExtrapolationNs) {
+		if d := nsAfter(stampNs, r.newest); d > uint64(r.cfg.MaxExtrapolationNs) {
 			return FusedPose{}, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_extrapolation_ns %d)", ErrTooFarAhead, stampNs, float64(d)*1e-9, r.cfg.MaxExtrapolationNs)
 		}
 		ahead := stampNs - r.newest

@@ -151,7 +151,7 @@ func (r *Robot) checkRunStart(s *RunStart) error {
 // one absurd stamp must stay one refused input (DEVELOPERS.md, "Design:
 // Runs").
 func (r *Robot) restartHint(t int64) string {
-	back := uint64(r.newest) - uint64(t) // t <= newest, perhaps int64's range apart
+	back := nsAfter(r.newest, t)
 	if back <= uint64(r.cfg.WindowNs) {
 		return ""
 	}

@@ -384,7 +384,7 @@ func (r *Robot) addMeasurement(res Result, e *entry, sensor string) Result {
 	switch {
 	case r.started && t < r.baseT:
 		res.Verdict = VerdictTooOld
-		res.Err = fmt.Errorf("%w: stamp_ns %d is %.3f s before the newest odometry; the window starts at %d", ErrTooOld, t, float64(uint64(r.newest)-uint64(t))*1e-9, r.baseT) // unsigned: t < newest, perhaps int64's range apart
+		res.Err = fmt.Errorf("%w: stamp_ns %d is %.3f s before the newest odometry; the window starts at %d", ErrTooOld, t, float64(nsAfter(r.newest, t))*1e-9, r.baseT)
 		r.stats.count(VerdictTooOld, false)
 		r.stats.sensorVerdict(e.sensor, VerdictTooOld, 0, 0)
 		return res
@@ -393,9 +393,9 @@ func (r *Robot) addMeasurement(res Result, e *entry, sensor string) Result {
 		r.insert(e, &ins)
 		r.decideMeas(&res, &ins, sensor)
 		return res
-	case r.started && uint64(t)-uint64(r.newest) > uint64(r.cfg.MaxHoldAheadNs): // unsigned: t > newest, perhaps int64's range apart
+	case r.started && nsAfter(t, r.newest) > uint64(r.cfg.MaxHoldAheadNs):
 		r.stats.count(VerdictInvalid, false)
-		return invalid(res, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_hold_ahead_ns %d)", ErrTooFarAhead, t, float64(uint64(t)-uint64(r.newest))*1e-9, r.cfg.MaxHoldAheadNs))
+		return invalid(res, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_hold_ahead_ns %d)", ErrTooFarAhead, t, float64(nsAfter(t, r.newest))*1e-9, r.cfg.MaxHoldAheadNs))
 	case len(r.held) >= r.cfg.MaxHeld:
 		r.stats.count(VerdictInvalid, false)
 		return invalid(res, fmt.Errorf("%w: %d held (max_held)", ErrHeldFull, len(r.held)))

@@ -55,7 +55,11 @@ func (m *sysModel) stepCov(k int, g []float64, gain *mat.Dense, nz *fusion.Noise
 		return
 	}
 	_, cols := gain.Dims()
-	vars := make([]float64, cols)
+	if cap(m.vars) < cols {
+		m.vars = make([]float64, cols)
+	}
+	vars := m.vars[:cols]
+	clear(vars)
 	var mean float64
 	for i := range m.nw {
 		t := math.Abs(get(g, idxOr(m.wheelScale, i), 1) * m.travel[iv.off+i])

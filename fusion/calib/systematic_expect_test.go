@@ -16,7 +16,9 @@ import (
 // wanders by a random walk of q rad^2/s from a known heading at the anchor
 // is expected at x(t) = v (2/q) (1 - exp(-q t/2)) along it: E[cos d] =
 // exp(-s^2/2) for d normal with variance s^2 (the characteristic function
-// of the normal distribution), integrated over the path. Dead reckoning
+// of the normal distribution; common practice), integrated over the path
+// with s^2 = q t. The Monte Carlo draws the walk itself, independently of
+// the fit's code. Dead reckoning
 // without the walk puts it at v t, 2.5% further after 10 s at q = 0.01.
 func TestExpectedChord(t *testing.T) {
 	const (

@@ -96,6 +96,8 @@ type sysModel struct {
 	epochStart []int
 	epochOf    []int
 	segEx      [][3]float64
+	// vars is stepCov's scratch: the variances of one interval's rows.
+	vars []float64
 }
 
 // newSysModel prepares the run.
@@ -489,7 +491,7 @@ func (m *sysModel) deadReckon(g []float64) {
 		m.p1[k] = q
 		f := math.Exp(-(hv - m.base[m.epochOf[k]]) / 2)
 		ex[0], ex[1] = ex[0]+f*(q.X-p.X), ex[1]+f*(q.Y-p.Y)
-		hv += m.turnVar(k, u, scale, gain)
+		hv += m.turnVar(k, g, gain)
 		p = q
 	}
 	m.hv[len(m.ivs)], m.ex[len(m.ivs)] = hv, ex
@@ -518,47 +520,23 @@ func (m *sysModel) epochs() {
 	m.epochStart[0] = 0
 }
 
-// turnVar returns the heading variance that interval k's step u adds as
-// the configuration's noise model states it (stepCov's turn entry, and the
-// heading drift per second); scale and gain are deadReckon's.
-func (m *sysModel) turnVar(k int, u estimator.Step, scale []float64, gain *mat.Dense) float64 {
+// turnVar returns the heading variance that interval k's step adds as the
+// configuration's noise model states it: stepCov's turn entry, and the
+// heading drift per second. g and gain are deadReckon's, which has set the
+// step.
+func (m *sysModel) turnVar(k int, g []float64, gain *mat.Dense) float64 {
 	iv := &m.ivs[k]
-	nz := &m.cfg.Noise
-	dt := float64(iv.t1-iv.t0) * 1e-9
-	v := m.cfg.HeadingDriftVarPerS() * dt
-	if iv.isStep {
-		return v + nz.StepTurnVarRad2PerRad*math.Abs(u.TurnRad) + nz.StepTurnVarRad2PerS*dt
-	}
-	row := gain.RawRowView(2)
-	var mean float64
-	for i := range m.nw {
-		t := math.Abs(scale[i] * m.travel[iv.off+i])
-		v += row[i] * row[i] * nz.WheelVarM2PerM * t
-		mean += t / float64(m.nw)
-	}
-	c := m.nw
-	if m.rotation {
-		v += row[c] * row[c] * nz.IMUTurnVarRad2PerRad * math.Abs(u.TurnRad)
-		c++
-	} else {
-		v += nz.TurnVarRad2PerRad * math.Abs(u.TurnRad)
-	}
-	if m.cfg.NoSideSlip {
-		v += row[c] * row[c] * nz.LateralSlipVarM2PerM * mean
-	}
-	return v
+	nz := m.cfg.Noise
+	var cu [9]float64
+	m.stepCov(k, g, gain, &nz, &cu)
+	return cu[8] + m.cfg.HeadingDriftVarPerS()*float64(iv.t1-iv.t0)*1e-9
 }
 
 // expectedAt returns, after deadReckon, the expected position at t (ns;
 // fractional; sysModel.hv) in its epoch's sum, the heading variance there
 // and the epoch, clamped to the run as poseAt.
 func (m *sysModel) expectedAt(t float64) (x, y, hv float64, epoch int) {
-	k, _ := slices.BinarySearchFunc(m.ivs, t, func(iv sysInterval, t float64) int {
-		if float64(iv.t1) < t {
-			return -1
-		}
-		return 1
-	})
+	k := m.intervalAt(t)
 	n := len(m.ivs)
 	if k >= n {
 		return m.ex[n][0], m.ex[n][1], m.hv[n], m.epochOf[n-1]
@@ -585,12 +563,7 @@ func idxOr(s []int, i int) int {
 // the run: inside an interval the arc model's fraction of its step (which
 // composes exactly), in a gap the pose where the odometry stopped.
 func (m *sysModel) poseAt(t float64) estimator.Pose {
-	k, _ := slices.BinarySearchFunc(m.ivs, t, func(iv sysInterval, t float64) int {
-		if float64(iv.t1) < t {
-			return -1
-		}
-		return 1
-	})
+	k := m.intervalAt(t)
 	if k >= len(m.ivs) {
 		return m.p1[len(m.ivs)-1]
 	}
@@ -600,6 +573,18 @@ func (m *sysModel) poseAt(t float64) estimator.Pose {
 	}
 	f := (t - float64(iv.t0)) / float64(iv.t1-iv.t0)
 	return estimator.Advance(m.p0[k], m.u[k].Scale(f))
+}
+
+// intervalAt returns the first interval that ends at or after t (ns;
+// fractional), or len(ivs) when none does.
+func (m *sysModel) intervalAt(t float64) int {
+	k, _ := slices.BinarySearchFunc(m.ivs, t, func(iv sysInterval, t float64) int {
+		if float64(iv.t1) < t {
+			return -1
+		}
+		return 1
+	})
+	return k
 }
 
 // inverse returns the pose a^-1: Compose(a, inverse(a)) is the identity.
@@ -656,9 +641,10 @@ func (m *sysModel) relative(i int, g []float64) estimator.Pose {
 	f := &m.fixes[i]
 	t := float64(f.stamp) - get(g, m.latency[f.sensor], 0)*1e9
 	t0 := float64(f.stamp) - m.lat0[f.sensor]*1e9
-	p := m.poseAt(t0)
+	q := m.poseAt(t0)
+	p := q
 	if m.latency[f.sensor] >= 0 && t != t0 {
-		p = estimator.Advance(p, m.velocity(t0).Scale((t-t0)*1e-9))
+		p = estimator.Advance(q, m.velocity(t0).Scale((t-t0)*1e-9))
 	}
 	rel := estimator.Compose(m.segInv[f.seg], p)
 	// The expected position under the heading noise (sysModel.hv), where
@@ -668,7 +654,6 @@ func (m *sysModel) relative(i int, g []float64) estimator.Pose {
 	if e != f.seg || !(hv >= a[2]) || t0 < float64(m.segStart[f.seg]) {
 		return rel
 	}
-	q := m.poseAt(t0)
 	fa, fq := math.Exp((a[2]-m.base[e])/2), math.Exp(-(hv-a[2])/2)
 	wx := fa*(x-a[0]) + fq*(p.X-q.X)
 	wy := fa*(y-a[1]) + fq*(p.Y-q.Y)

@@ -79,14 +79,27 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		return
 	}
 	newest := &r.cands[len(r.cands)-1]
-	filt, _ := r.estimateAt(newest.stamp)
+	fp, _ := r.PoseAt(newest.stamp)
+	filt := fp.Pose
 	jump := math.Hypot(pose.X-filt.X, pose.Y-filt.Y)
 	turn := estimator.Wrap(pose.Heading - filt.Heading)
+	keep := newest.keepOffset
+	if keep && turn*turn > r.headingGate*(cov[8]+fp.Cov[8]) {
+		// The fixes put the heading where the IMU's does not: the IMU's
+		// zero moved (re-zeroed by the controller, reset by a brown-out,
+		// or the robot turned faster than the gyro reads). Kept, the
+		// offset would pull the heading back to the IMU's, every later
+		// fix would be refused again, and recovery would repeat without
+		// end; the offset is learnt again instead (DEVELOPERS.md, "Design:
+		// Gating and recovery").
+		keep = false
+		detail += fmt.Sprintf("; the IMU's heading disagrees by %.2f rad, its offset learnt again", turn)
+	}
 	// The estimate was wrong: it is not trusted from before the reseed until
 	// a fix is applied again (DEVELOPERS.md, "Design: Trust").
 	r.trust.disagree = true
 	r.trust.evaluate(r, res)
-	reset := entry{kind: entReset, t0: newest.stamp, t1: newest.stamp, pose: pose, poseCov: cov, keepOffset: newest.keepOffset}
+	reset := entry{kind: entReset, t0: newest.stamp, t1: newest.stamp, pose: pose, poseCov: cov, keepOffset: keep}
 	if !landmark && newest.fixStamp == e.t1 && e.meas.Bias != [3]int{} {
 		// The pose is this fix's, and carries its sensor's bias: the
 		// reset keeps that correlation (applyReset).

@@ -382,3 +382,71 @@ func TestRelocationCovarianceHonest(t *testing.T) {
 		t.Errorf("relocated pose: mean NEES %.2f over %d runs outside the 95%% band [%.2f, %.2f]", mean, runs, lo, hi)
 	}
 }
+
+// TestRecoveryLearnsJumpedIMUOffset: the IMU's zero jumps mid-run (its
+// controller re-zeroes it, or a brown-out resets it) while the cart drives
+// on. The ungated IMU pulls the heading to its new zero, the camera's fixes
+// are refused, and recovery re-initialises the pose from them. Had the
+// recovery kept the IMU offset, the IMU would pull the heading back at its
+// next sample, the fixes would be refused again, and recovery would repeat
+// to the end of the run (it did, 100 times in 150 s on an independent
+// simulator). The recovery learns the offset again when the fixes' heading
+// lies outside the 1-dof chi-square region (gonum stat/distuv via
+// estimator.GateThreshold) around the IMU's: one or two recoveries, then the
+// fixes are applied again and the heading follows the truth.
+func TestRecoveryLearnsJumpedIMUOffset(t *testing.T) {
+	for _, jump := range []float64{1.0, -0.4} {
+		for seed := uint64(0); seed < 3; seed++ {
+			sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 80 + seed, DurationS: 40}
+			s := fusiontest.New(sc)
+			cfg := s.Config()
+			cfg.Recovery.Enabled = true
+			r, err := fusion.New(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var recoveries, applied, fixes int
+			var se float64
+			var n int
+			for in, ok := s.Next(); ok; in, ok = s.Next() {
+				if in.Heading != nil && in.Heading.StampNs >= 15e9 {
+					in.Heading.HeadingRad = estimator.Wrap(in.Heading.HeadingRad + jump)
+				}
+				res := fusiontest.Feed(r, &in)
+				for _, e := range res.Events {
+					if e.Kind == fusion.EventMoveRecovered {
+						recoveries++
+					}
+				}
+				if in.Fix != nil && in.Fix.StampNs >= 25e9 {
+					fixes++
+					if res.Verdict == fusion.VerdictApplied {
+						applied++
+					}
+				}
+				if in.Odometry != nil && r.NewestNs() >= 25e9 {
+					d := estimator.Wrap(r.Pose().Pose.Heading - in.Truth.Heading)
+					se += d * d
+					n++
+				}
+			}
+			rms := math.Sqrt(se / float64(n))
+			t.Logf("jump %.1f rad, seed %d: %d recoveries, %d of %d fixes applied in the last 15 s, RMS heading error %.4f rad", jump, sc.Seed, recoveries, applied, fixes, rms)
+			// Two recoveries at most: the first may come from fixes refused
+			// before the IMU's pull was complete (common practice: a bound
+			// with room, not a measured count).
+			if recoveries < 1 || recoveries > 2 {
+				t.Errorf("jump %.1f rad, seed %d: %d recoveries, want 1 or 2", jump, sc.Seed, recoveries)
+			}
+			if float64(applied) < 0.8*float64(fixes) {
+				t.Errorf("jump %.1f rad, seed %d: %d of %d fixes applied after the recovery", jump, sc.Seed, applied, fixes)
+			}
+			// The camera's heading is good to 0.02 rad (the simulator's
+			// default); a tenth of a radian is far outside what a tracking
+			// estimate shows.
+			if rms > 0.1 {
+				t.Errorf("jump %.1f rad, seed %d: RMS heading error %.4f rad after the recovery", jump, sc.Seed, rms)
+			}
+		}
+	}
+}

@@ -14,7 +14,11 @@ type Robot struct {
 	layout    estimator.Layout
 	gates     estimator.Gates
 	agreeGate float64
-	landmarks map[string][2]float64
+	// headingGate is the 1-dof chi-square quantile at
+	// recovery.agree_probability: how far a recovered heading may lie from
+	// the IMU's before the recovery learns the IMU offset again.
+	headingGate float64
+	landmarks   map[string][2]float64
 	// sensorIndex maps a sensor id to its index in cfg.Sensors;
 	// sensorBias holds each sensor's first bias state (0: none).
 	sensorIndex map[string]int
@@ -88,6 +92,9 @@ func New(cfg Config) (*Robot, error) {
 		return nil, cfgErr("gate_probability", "%v", err)
 	}
 	if r.agreeGate, err = estimator.GateThreshold(cfg.Recovery.AgreeProbability, 3); err != nil {
+		return nil, cfgErr("recovery.agree_probability", "%v", err)
+	}
+	if r.headingGate, err = estimator.GateThreshold(cfg.Recovery.AgreeProbability, 1); err != nil {
 		return nil, cfgErr("recovery.agree_probability", "%v", err)
 	}
 	for _, l := range cfg.Landmarks {

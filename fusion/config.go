@@ -63,6 +63,11 @@ type Noise struct {
 	// the offset state's in imu_mode absolute, the heading's in rotation
 	// (the zero's drift enters every turn the IMU reports).
 	IMUOffsetVarRad2PerS float64
+	// IMUOffsetVarRad2PerRad: random walk of the IMU's heading zero per
+	// radian the robot turns, in imu_mode absolute: a gyro whose scale
+	// is off reads every turn a fraction wrong. Zero (the default) leaves
+	// the term out.
+	IMUOffsetVarRad2PerRad float64
 }
 
 // HeadingDriftVarPerS returns the heading's random walk per second that
@@ -325,6 +330,7 @@ func (c *Config) checkNoise() error {
 		{"noise.step_forward_var_m2_per_s", c.Noise.StepForwardVarM2PerS},
 		{"noise.step_left_var_m2_per_s", c.Noise.StepLeftVarM2PerS},
 		{"noise.step_turn_var_rad2_per_s", c.Noise.StepTurnVarRad2PerS},
+		{"noise.imu_offset_var_rad2_per_rad", c.Noise.IMUOffsetVarRad2PerRad},
 	} {
 		if !(n.v >= 0) || !finiteAll(n.v) {
 			return cfgErr(n.name, "%v must be a finite variance rate, not negative", n.v)

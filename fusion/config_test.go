@@ -66,6 +66,7 @@ func TestConfigValidate(t *testing.T) {
 		{"scale std", func(c *Config) { c.Calibration.ScaleStd = -0.1 }, "calibration.scale_std"},
 		{"rate bias without heading reference", func(c *Config) { c.Sensors = c.Sensors[1:2]; c.Calibration.RateBias = true }, "calibration.rate_bias"},
 		{"step noise per second", func(c *Config) { c.Noise.StepTurnVarRad2PerS = -1 }, "noise.step_turn_var_rad2_per_s"},
+		{"IMU offset walk per radian", func(c *Config) { c.Noise.IMUOffsetVarRad2PerRad = math.Inf(1) }, "noise.imu_offset_var_rad2_per_rad"},
 	}
 	if err := good().Validate(); err != nil {
 		t.Fatalf("good config: %v", err)

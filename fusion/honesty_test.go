@@ -2,6 +2,7 @@ package fusion_test
 
 import (
 	"os"
+	"slices"
 	"testing"
 
 	"reckon.example/fusion"
@@ -26,6 +27,11 @@ type honestyCase struct {
 	// large errors, so its NEES stays near the band; the failure shows as a
 	// gated fraction far above the gate's 1% instead.
 	gated bool
+	// conservative: the true model describes the process only on
+	// average (a bias as a random walk), erring on the safe side: the
+	// case passes with 75% of checkpoints inside the band if none lies
+	// above it.
+	conservative bool
 }
 
 // honestyCases are the error processes of issue 9's recordings, each alone,
@@ -48,6 +54,9 @@ func honestyCases() []honestyCase {
 		{name: "odometry-scale", sc: landmarks(fusiontest.DriveWheelTurn, fusiontest.Errors{ForwardScale: 0.06, TurnScale: 0.10})},
 		{name: "commanded-per-second", sc: landmarks(fusiontest.Commanded, fusiontest.Errors{})},
 		{name: "commanded-scale", sc: landmarks(fusiontest.Commanded, fusiontest.Errors{ForwardScale: -0.08, TurnScale: 0.12})},
+		// A 2% gyro scale error, the true model a random walk of the IMU
+		// offset of 4e-4 rad^2 per radian turned.
+		{name: "gyro-scale", sc: pose(fusiontest.Errors{GyroScale: 0.02}), conservative: true},
 	}
 }
 
@@ -107,12 +116,21 @@ func TestHonestWhiteModelFails(t *testing.T) {
 // band [2.19, 3.94]: mean 3.21 and 90% inside (Gauss-Markov pose fixes),
 // 3.01 and 94% (Gauss-Markov landmarks), 3.13 and 96% (Student-t), 2.98
 // and 99% (contamination, Huber), 2.84 and 92% (scale states), 3.28 and
-// 88% (noise per second), 3.08 and 92% (commanded with scale).
+// 88% (noise per second), 3.08 and 92% (commanded with scale), 2.63
+// and 84% (a 2% gyro scale error under a random walk of the IMU offset per
+// radian turned; every checkpoint outside lies below the band: the walk
+// describes the scale's bias on average, on the safe side).
 func TestHonestTrueModel(t *testing.T) {
 
 	for _, c := range honestyCases() {
 		t.Run(c.name, func(t *testing.T) {
 			res := honestyNEES(t, c, (*fusiontest.Sim).TrueModelConfig)
+			if c.conservative {
+				if !res.Consistent(0.75) || slices.Max(res.Avg) > res.Hi {
+					t.Errorf("inconsistent, or above the band at some checkpoint: %v (largest average %.2f)", &res, slices.Max(res.Avg))
+				}
+				return
+			}
 			if !res.Consistent(0.85) {
 				t.Errorf("inconsistent: %v", &res)
 			}

@@ -286,6 +286,9 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 func (r *Robot) processNoise(q *[estimator.MaxStates]float64, step estimator.Step, dtS float64) {
 	n := &r.cfg.Noise
 	estimator.TimeNoise(q, &r.layout, dtS, r.cfg.HeadingDriftVarPerS(), n.IMUOffsetVarRad2PerS)
+	if i := r.layout.Offset(); i >= 0 {
+		q[i] += n.IMUOffsetVarRad2PerRad * math.Abs(step.TurnRad)
+	}
 	c := &r.cfg.Calibration
 	if i := r.layout.ForwardScale(); i >= 0 {
 		q[i] = c.ForwardScaleVarPerM * math.Hypot(step.ForwardM, step.LeftM)

@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"fmt"
+	"math"
 
 	"gonum.org/v1/gonum/stat/distuv"
 
@@ -106,7 +107,7 @@ func (r *Robot) checkTurn(res *Result, at int) {
 	}
 	dt := float64(b.stamp-a.stamp) * 1e-9
 	delta := estimator.Wrap(b.heading-a.heading) - w
-	vi := a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + vc
+	vi := a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + r.cfg.Noise.IMUOffsetVarRad2PerRad*math.Abs(w) + vc
 	ns := delta * delta / (vw + vi)
 	if r.turnGate == 0 {
 		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)

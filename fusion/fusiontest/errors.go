@@ -56,6 +56,11 @@ type Errors struct {
 	// when it sends). Neither draws.
 	CameraStampLateNs    int64
 	CameraStampAtArrival bool
+	// GyroScale is the IMU's scale error: it reads 1+GyroScale times every
+	// turn of the robot, so that its heading's zero moves by GyroScale
+	// times each turn (1% to 3% for an uncalibrated MEMS gyro, from
+	// memory).
+	GyroScale float64
 }
 
 // camera reports whether any camera error process is on.

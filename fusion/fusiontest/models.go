@@ -56,6 +56,12 @@ func (s Scenario) TrueModelConfig() fusion.Config {
 	if s.Layout == Commanded {
 		c.Noise = commandedTrueNoise(c.Noise)
 	}
+	if s.GyroScale != 0 {
+		// A random walk of f^2 per radian covers a scale error f over
+		// the turn of about a radian between fixes (DEVELOPERS.md,
+		// "Design: Process noise").
+		c.Noise.IMUOffsetVarRad2PerRad = s.GyroScale * s.GyroScale
+	}
 	return c
 }
 

@@ -561,6 +561,9 @@ func (sm *Sim) generate() {
 		}
 		sm.truth.Heading = estimator.Wrap(sm.truth.Heading + sm.rng.NormFloat64()*math.Sqrt(v))
 	}
+	// A gyro whose scale is off reads every turn, the hand's included, that
+	// fraction wrong.
+	sm.imuOffset += sm.s.GyroScale * estimator.Wrap(sm.truth.Heading-prev.Heading)
 	if !sm.s.NoiseFree && t > prevT {
 		sm.imuOffset += sm.rng.NormFloat64() * math.Sqrt(sm.s.Heading.IMUOffsetVarRad2PerS*float64(t-prevT)*1e-9)
 	}

@@ -30,19 +30,20 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	}
 	n := c.GetNoise()
 	cfg.Noise = fusion.Noise{
-		WheelVarM2PerM:        n.GetWheelVarM2PerM(),
-		LateralSlipVarM2PerM:  n.GetLateralSlipVarM2PerM(),
-		TurnVarRad2PerRad:     n.GetTurnVarRad2PerRad(),
-		HeadingVarRad2PerS:    n.GetHeadingVarRad2PerS(),
-		StepForwardVarM2PerM:  n.GetStepForwardVarM2PerM(),
-		StepLeftVarM2PerM:     n.GetStepLeftVarM2PerM(),
-		StepTurnVarRad2PerRad: n.GetStepTurnVarRad2PerRad(),
-		IMUHeadingVarRad2:     n.GetImuHeadingVarRad2(),
-		IMUTurnVarRad2PerRad:  n.GetImuTurnVarRad2PerRad(),
-		IMUOffsetVarRad2PerS:  n.GetImuOffsetVarRad2PerS(),
-		StepForwardVarM2PerS:  n.GetStepForwardVarM2PerS(),
-		StepLeftVarM2PerS:     n.GetStepLeftVarM2PerS(),
-		StepTurnVarRad2PerS:   n.GetStepTurnVarRad2PerS(),
+		WheelVarM2PerM:         n.GetWheelVarM2PerM(),
+		LateralSlipVarM2PerM:   n.GetLateralSlipVarM2PerM(),
+		TurnVarRad2PerRad:      n.GetTurnVarRad2PerRad(),
+		HeadingVarRad2PerS:     n.GetHeadingVarRad2PerS(),
+		StepForwardVarM2PerM:   n.GetStepForwardVarM2PerM(),
+		StepLeftVarM2PerM:      n.GetStepLeftVarM2PerM(),
+		StepTurnVarRad2PerRad:  n.GetStepTurnVarRad2PerRad(),
+		IMUHeadingVarRad2:      n.GetImuHeadingVarRad2(),
+		IMUTurnVarRad2PerRad:   n.GetImuTurnVarRad2PerRad(),
+		IMUOffsetVarRad2PerS:   n.GetImuOffsetVarRad2PerS(),
+		StepForwardVarM2PerS:   n.GetStepForwardVarM2PerS(),
+		StepLeftVarM2PerS:      n.GetStepLeftVarM2PerS(),
+		StepTurnVarRad2PerS:    n.GetStepTurnVarRad2PerS(),
+		IMUOffsetVarRad2PerRad: n.GetImuOffsetVarRad2PerRad(),
 	}
 	cfg.GateProbability = c.GetGateProbability()
 	cfg.GateIMU = c.GetGateImu()
@@ -112,7 +113,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		HeadingVarRad2PerS: n.HeadingVarRad2PerS, StepForwardVarM2PerM: n.StepForwardVarM2PerM, StepLeftVarM2PerM: n.StepLeftVarM2PerM,
 		StepTurnVarRad2PerRad: n.StepTurnVarRad2PerRad, ImuHeadingVarRad2: n.IMUHeadingVarRad2, ImuTurnVarRad2PerRad: n.IMUTurnVarRad2PerRad,
 		ImuOffsetVarRad2PerS: n.IMUOffsetVarRad2PerS, StepForwardVarM2PerS: n.StepForwardVarM2PerS, StepLeftVarM2PerS: n.StepLeftVarM2PerS,
-		StepTurnVarRad2PerS: n.StepTurnVarRad2PerS}
+		StepTurnVarRad2PerS: n.StepTurnVarRad2PerS, ImuOffsetVarRad2PerRad: n.IMUOffsetVarRad2PerRad}
 	if cfg.StartCov != nil {
 		c.StartCovariance = &pb.Covariance{Dimension: 3, Values: append([]float64(nil), cfg.StartCov...)}
 	}

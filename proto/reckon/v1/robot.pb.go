@@ -1044,8 +1044,13 @@ type NoiseModel struct {
 	StepLeftVarM2PerS float64 `protobuf:"fixed64,12,opt,name=step_left_var_m2_per_s,json=stepLeftVarM2PerS,proto3" json:"step_left_var_m2_per_s,omitempty"`
 	// Body-step turn variance per second (default 0).
 	StepTurnVarRad2PerS float64 `protobuf:"fixed64,13,opt,name=step_turn_var_rad2_per_s,json=stepTurnVarRad2PerS,proto3" json:"step_turn_var_rad2_per_s,omitempty"`
-	unknownFields       protoimpl.UnknownFields
-	sizeCache           protoimpl.SizeCache
+	// Random walk of the IMU's heading zero per radian the robot turns, in
+	// IMU_MODE_ABSOLUTE (default 0: none). A gyro whose scale factor is off by
+	// a fraction f reads every turn f of it wrong; about f^2 (1e-4 for 1%)
+	// keeps the covariance honest for an uncalibrated MEMS gyro.
+	ImuOffsetVarRad2PerRad float64 `protobuf:"fixed64,14,opt,name=imu_offset_var_rad2_per_rad,json=imuOffsetVarRad2PerRad,proto3" json:"imu_offset_var_rad2_per_rad,omitempty"`
+	unknownFields          protoimpl.UnknownFields
+	sizeCache              protoimpl.SizeCache
 }
 
 func (x *NoiseModel) Reset() {
@@ -1165,6 +1170,13 @@ func (x *NoiseModel) GetStepLeftVarM2PerS() float64 {
 func (x *NoiseModel) GetStepTurnVarRad2PerS() float64 {
 	if x != nil {
 		return x.StepTurnVarRad2PerS
+	}
+	return 0
+}
+
+func (x *NoiseModel) GetImuOffsetVarRad2PerRad() float64 {
+	if x != nil {
+		return x.ImuOffsetVarRad2PerRad
 	}
 	return 0
 }
@@ -1580,7 +1592,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\rdirection_rad\x18\x04 \x01(\x01R\fdirectionRad\x12 \n" +
 	"\fcounts_per_m\x18\x05 \x01(\x01R\n" +
 	"countsPerM\x12!\n" +
-	"\fcounter_bits\x18\x06 \x01(\x05R\vcounterBits\"\xc4\x05\n" +
+	"\fcounter_bits\x18\x06 \x01(\x05R\vcounterBits\"\x81\x06\n" +
 	"\n" +
 	"NoiseModel\x12*\n" +
 	"\x12wheel_var_m2_per_m\x18\x01 \x01(\x01R\x0ewheelVarM2PerM\x127\n" +
@@ -1596,7 +1608,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	" \x01(\x01R\x14imuOffsetVarRad2PerS\x127\n" +
 	"\x19step_forward_var_m2_per_s\x18\v \x01(\x01R\x14stepForwardVarM2PerS\x121\n" +
 	"\x16step_left_var_m2_per_s\x18\f \x01(\x01R\x11stepLeftVarM2PerS\x125\n" +
-	"\x18step_turn_var_rad2_per_s\x18\r \x01(\x01R\x13stepTurnVarRad2PerS\"k\n" +
+	"\x18step_turn_var_rad2_per_s\x18\r \x01(\x01R\x13stepTurnVarRad2PerS\x12;\n" +
+	"\x1bimu_offset_var_rad2_per_rad\x18\x0e \x01(\x01R\x16imuOffsetVarRad2PerRad\"k\n" +
 	"\fMoveRecovery\x12\x18\n" +
 	"\aenabled\x18\x01 \x01(\bR\aenabled\x12\x14\n" +
 	"\x05count\x18\x02 \x01(\x05R\x05count\x12+\n" +

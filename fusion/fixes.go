@@ -98,7 +98,7 @@ func (r *Robot) decideMeas(res *Result, ins *insertion, sensor string) {
 		r.stats.count(VerdictGated, false)
 		r.stats.sensorVerdict(e.sensor, VerdictGated, e.out.NIS, 0)
 		if !e.imu {
-			r.trust.noteRefused(e.out)
+			r.trust.noteRefused(e.out, r.frameApplied(ins.at))
 			r.considerRecovery(res, ins.at)
 		}
 	default:

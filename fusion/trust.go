@@ -40,7 +40,8 @@ const (
 	TrustNumericalFault
 	// TrustFixDisagrees: a fix (pose, position, heading or landmark; IMU
 	// excluded) was refused with a NIS beyond the chi-square quantile at
-	// DisagreeProbability, or two were refused in a row, or a move recovery
+	// DisagreeProbability (unless another fix of its sensor at the same
+	// stamp was applied), or two were refused in a row, or a move recovery
 	// reseeded the pose, and no fix has been applied since: the estimate is
 	// far from where a sensor says the robot is.
 	TrustFixDisagrees
@@ -48,7 +49,8 @@ const (
 
 // DisagreeProbability is the chi-square probability beyond which one refused
 // fix's NIS raises TrustFixDisagrees: a consistent filter sees such a NIS
-// once in a million fixes, about once in 28 hours at 10 Hz.
+// once in a thousand fixes, about once in 100 s at 10 Hz (DEVELOPERS.md,
+// "Design: Trust").
 const DisagreeProbability = 1 - 1e-3
 
 type trustState struct {
@@ -196,10 +198,14 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 }
 
 // noteRefused counts a refused fix (IMU headings excluded) and raises
-// disagree when its NIS is beyond the DisagreeProbability quantile.
-func (t *trustState) noteRefused(out estimator.Outcome) {
+// disagree when its NIS is beyond the DisagreeProbability quantile, unless
+// frameApplied: another fix of the sensor at the same stamp (of the same
+// camera frame: another marker) was applied, so the estimate agrees with
+// what the sensor saw then, and the refused fix is the sensor's outlier,
+// not news that the robot moved.
+func (t *trustState) noteRefused(out estimator.Outcome, frameApplied bool) {
 	t.refusedRun++
-	if out.Dim < 1 || out.Dim >= len(t.disagreeNIS) {
+	if frameApplied || out.Dim < 1 || out.Dim >= len(t.disagreeNIS) {
 		return
 	}
 	if t.disagreeNIS[out.Dim] == 0 {
@@ -211,6 +217,28 @@ func (t *trustState) noteRefused(out estimator.Outcome) {
 	if !(out.NIS <= t.disagreeNIS[out.Dim]) || t.refusedRun >= 2 {
 		t.disagree = true
 	}
+}
+
+// frameApplied reports whether the window holds an applied fix of the
+// sensor of live entry at, at the same stamp: another marker of the same
+// camera frame (noteRefused).
+func (r *Robot) frameApplied(at int) bool {
+	live := r.live()
+	e := &live[at]
+	applied := func(o *entry) bool {
+		return o.kind == entMeas && !o.imu && o.sensor == e.sensor && !o.out.Gated && !o.failed
+	}
+	for i := at - 1; i >= 0 && live[i].t1 == e.t1; i-- {
+		if applied(&live[i]) {
+			return true
+		}
+	}
+	for i := at + 1; i < len(live) && live[i].t1 == e.t1; i++ {
+		if applied(&live[i]) {
+			return true
+		}
+	}
+	return false
 }
 
 // noteApplied notes an applied fix (IMU headings excluded): the refused run,

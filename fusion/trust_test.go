@@ -1,8 +1,11 @@
 package fusion_test
 
 import (
+	"math"
+	"math/rand/v2"
 	"testing"
 
+	"reckon.example/estimator"
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 )
@@ -104,5 +107,71 @@ func TestTrustInconsistent(t *testing.T) {
 	c = trustRun(t, bump, 0.99, 1, 1)
 	if at := float64(c.firstNs) * 1e-9; c.raised != 1 || at < 45 || at > 45.02 {
 		t.Errorf("turned by hand at 45 s: inconsistent raised %d times, first at %.3f s", c.raised, at)
+	}
+}
+
+// TestOutlierInFrameKeepsTrust: a camera sees three mapped posts in each
+// frame (10 Hz), and in every fifth frame its last sighting is a gross
+// outlier, 2 m long in range. The other two posts of the frame are
+// applied, so the estimate agrees with what the camera saw then: the
+// outlier is refused but the estimate stays trusted (before, each such
+// frame lost trust until the next one). When the cart is pushed 0.5 m, all
+// three sightings of a frame disagree, and trust is lost at once.
+func TestOutlierInFrameKeepsTrust(t *testing.T) {
+	posts := []fusion.Landmark{{ID: "a", XM: 4, YM: 1.5}, {ID: "b", XM: 4, YM: -1.5}, {ID: "c", XM: 6, YM: 0.5}}
+	const rangeStd, bearingStd = 0.02, 0.01
+	cfg := fusion.Config{Landmarks: posts, Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixLandmark,
+		Cov: []float64{rangeStd * rangeStd, 0, 0, bearingStd * bearingStd}}}}
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	rng := rand.New(rand.NewPCG(9, 10))
+	var truth estimator.Pose
+	step := estimator.Step{ForwardM: 0.002, TurnRad: 0.0002} // 0.2 m/s at 100 Hz
+	var lostBefore, outliers int
+	lostAfterPush, firstFrameAfterPush := int64(-1), int64(-1)
+	for k := int64(0); k < 600; k++ {
+		t0, t1 := k*10e6, (k+1)*10e6
+		truth = estimator.Advance(truth, step)
+		pushed := k >= 400
+		if k == 400 {
+			truth = estimator.Pose{X: truth.X + 0.5, Y: truth.Y - 0.3, Heading: truth.Heading}
+		}
+		r.AddOdometry(fusion.Odometry{StartNs: t0, StampNs: t1, Step: &step})
+		if k%10 != 9 {
+			continue
+		}
+		frame := k / 10
+		if pushed && firstFrameAfterPush < 0 {
+			firstFrameAfterPush = t1
+		}
+		for i, l := range posts {
+			dx, dy := l.XM-truth.X, l.YM-truth.Y
+			rg := math.Hypot(dx, dy) + rng.NormFloat64()*rangeStd
+			b := estimator.Wrap(math.Atan2(dy, dx) - truth.Heading + rng.NormFloat64()*bearingStd)
+			if !pushed && frame%5 == 2 && i == len(posts)-1 {
+				rg += 2
+				outliers++
+			}
+			res := r.AddFix(fusion.Fix{StampNs: t1, SensorID: "camera", Kind: fusion.FixLandmark, LandmarkID: l.ID, RangeM: &rg, BearingRad: &b})
+			for _, e := range res.Events {
+				if e.Kind != fusion.EventTrustLost {
+					continue
+				}
+				if !pushed {
+					lostBefore++
+					t.Logf("trust lost before the push at %.2f s: %s", float64(e.StampNs)*1e-9, e.Detail)
+				} else if lostAfterPush < 0 {
+					lostAfterPush = t1
+				}
+			}
+		}
+	}
+	if outliers == 0 || lostBefore != 0 {
+		t.Errorf("trust lost %d times over %d frames with an outlier beside two applied posts, want 0", lostBefore, outliers)
+	}
+	if lostAfterPush != firstFrameAfterPush {
+		t.Errorf("after the push, trust lost at %d ns, want the first frame's stamp, %d ns", lostAfterPush, firstFrameAfterPush)
 	}
 }

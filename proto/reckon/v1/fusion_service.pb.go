@@ -285,9 +285,11 @@ const (
 	DistrustReason_DISTRUST_REASON_FIXES_REFUSED DistrustReason = 5
 	// The last update failed numerically.
 	DistrustReason_DISTRUST_REASON_NUMERICAL_FAULT DistrustReason = 6
-	// A fix was refused with a NIS no consistent estimate gives (beyond the
-	// chi-square quantile at 1 - 1e-6), or two fixes were refused in a row, or
-	// a move recovery reseeded the pose, and no fix has been applied since.
+	// A fix was refused with a NIS a consistent estimate gives once in a
+	// thousand fixes (beyond the chi-square quantile at 1 - 1e-3), unless
+	// another fix of its sensor at the same stamp (another marker of the same
+	// camera frame) was applied, or two fixes were refused in a row, or a move
+	// recovery reseeded the pose, and no fix has been applied since.
 	DistrustReason_DISTRUST_REASON_FIX_DISAGREES DistrustReason = 7
 )
 

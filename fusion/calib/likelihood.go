@@ -69,6 +69,7 @@ var noiseLevels = []struct {
 	{"noise.heading_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.HeadingVarRad2PerS }, func(c *fusion.Config) bool { return c.IMU != fusion.IMURotation }},
 	{"noise.imu_heading_var_rad2", "rad^2", func(n *fusion.Noise) *float64 { return &n.IMUHeadingVarRad2 }, func(c *fusion.Config) bool { return c.IMU == fusion.IMUAbsolute }},
 	{"noise.imu_offset_var_rad2_per_s", "rad^2/s", func(n *fusion.Noise) *float64 { return &n.IMUOffsetVarRad2PerS }, func(c *fusion.Config) bool { return c.IMU == fusion.IMUAbsolute || c.IMU == fusion.IMURotation }},
+	{"noise.imu_offset_var_rad2_per_rad", "rad^2/rad", func(n *fusion.Noise) *float64 { return &n.IMUOffsetVarRad2PerRad }, func(c *fusion.Config) bool { return c.IMU == fusion.IMUAbsolute }},
 }
 
 func wheels(c *fusion.Config) bool { return len(c.Wheels) > 0 }
@@ -76,8 +77,8 @@ func steps(c *fusion.Config) bool  { return len(c.Wheels) == 0 }
 
 // Levels returns the noise levels that the configuration uses, in a fixed
 // order: the terms of fusion.Noise its odometry and IMU use (a per-second
-// body-step term only when set: zero leaves it out, and a log scale cannot
-// start from zero), then per sensor its covariance factor, its correlation
+// body-step term and the IMU offset's walk per radian only when set: zero
+// leaves it out, and a log scale cannot start from zero), then per sensor its covariance factor, its correlation
 // time when it has a correlated part, and its degrees of freedom when it is
 // Student-t weighted. cfg must be valid.
 func Levels(cfg fusion.Config) []NoiseLevel {

@@ -445,19 +445,20 @@ const raisedComment = "not determined by the run: the upper end of its 95% likel
 // defaultOf returns the default of a noise field, if it has one.
 func defaultOf(def fusion.Noise, field string) (float64, bool) {
 	m := map[string]float64{
-		"noise.wheel_var_m2_per_m":         def.WheelVarM2PerM,
-		"noise.lateral_slip_var_m2_per_m":  def.LateralSlipVarM2PerM,
-		"noise.turn_var_rad2_per_rad":      def.TurnVarRad2PerRad,
-		"noise.heading_var_rad2_per_s":     def.HeadingVarRad2PerS,
-		"noise.step_forward_var_m2_per_m":  def.StepForwardVarM2PerM,
-		"noise.step_left_var_m2_per_m":     def.StepLeftVarM2PerM,
-		"noise.step_turn_var_rad2_per_rad": def.StepTurnVarRad2PerRad,
-		"noise.imu_heading_var_rad2":       def.IMUHeadingVarRad2,
-		"noise.imu_turn_var_rad2_per_rad":  def.IMUTurnVarRad2PerRad,
-		"noise.imu_offset_var_rad2_per_s":  def.IMUOffsetVarRad2PerS,
-		"noise.step_forward_var_m2_per_s":  0,
-		"noise.step_left_var_m2_per_s":     0,
-		"noise.step_turn_var_rad2_per_s":   0,
+		"noise.wheel_var_m2_per_m":          def.WheelVarM2PerM,
+		"noise.lateral_slip_var_m2_per_m":   def.LateralSlipVarM2PerM,
+		"noise.turn_var_rad2_per_rad":       def.TurnVarRad2PerRad,
+		"noise.heading_var_rad2_per_s":      def.HeadingVarRad2PerS,
+		"noise.step_forward_var_m2_per_m":   def.StepForwardVarM2PerM,
+		"noise.step_left_var_m2_per_m":      def.StepLeftVarM2PerM,
+		"noise.step_turn_var_rad2_per_rad":  def.StepTurnVarRad2PerRad,
+		"noise.imu_heading_var_rad2":        def.IMUHeadingVarRad2,
+		"noise.imu_turn_var_rad2_per_rad":   def.IMUTurnVarRad2PerRad,
+		"noise.imu_offset_var_rad2_per_s":   def.IMUOffsetVarRad2PerS,
+		"noise.step_forward_var_m2_per_s":   0,
+		"noise.step_left_var_m2_per_s":      0,
+		"noise.step_turn_var_rad2_per_s":    0,
+		"noise.imu_offset_var_rad2_per_rad": 0,
 	}
 	v, ok := m[field]
 	return v, ok

@@ -179,6 +179,13 @@ type Config struct {
 	// corrupt stamp or message, refused with ErrTooFarAhead; taken, it
 	// would put the robot's clock out of reach of every sample after it.
 	MaxOdometryGapNs int64
+	// IMULatencyNs is how much later than the reading the IMU's absolute
+	// headings are stamped (imu_mode absolute; 0 by default, at most
+	// maxIMULatencyNs): a heading stamped stamp_ns was read at stamp_ns -
+	// IMULatencyNs, where it is applied. An IMU read over a serial link
+	// and stamped on arrival lags its reading by its transfer and
+	// filtering; uncorrected, its heading lags every turn.
+	IMULatencyNs int64
 	// MaxSpeedMPerS and MaxTurnRateRadPerS refuse absurd odometry (5 m/s, 20 rad/s).
 	MaxSpeedMPerS      float64
 	MaxTurnRateRadPerS float64
@@ -202,6 +209,9 @@ const (
 	maxHeldLimit     = 1024
 	maxRecoveryCount = 100
 	maxNISWindow     = 1000
+	// maxIMULatencyNs bounds imu_latency_ns (checked by Validate): an IMU
+	// that lags its readings by more than a second is no heading source.
+	maxIMULatencyNs = 1e9
 )
 
 // ErrConfig marks every configuration error.
@@ -400,6 +410,12 @@ func (c *Config) checkLimits() error {
 	}
 	if c.Recovery.Count < 2 {
 		return cfgErr("recovery.count", "%d must be at least 2: one refused fix proves nothing", c.Recovery.Count)
+	}
+	switch {
+	case c.IMULatencyNs < 0 || c.IMULatencyNs > maxIMULatencyNs:
+		return cfgErr("imu_latency_ns", "%d must be in [0, %d]", c.IMULatencyNs, int64(maxIMULatencyNs))
+	case c.IMULatencyNs > 0 && c.IMU != IMUAbsolute:
+		return cfgErr("imu_latency_ns", "applies to imu_mode absolute; in %s mode the IMU's heading rides on the odometry's intervals", c.IMU)
 	}
 	for _, p := range []struct {
 		name string

@@ -57,6 +57,8 @@ func honestyCases() []honestyCase {
 		// A 2% gyro scale error, the true model a random walk of the IMU
 		// offset of 4e-4 rad^2 per radian turned.
 		{name: "gyro-scale", sc: pose(fusiontest.Errors{GyroScale: 0.02}), conservative: true},
+		// An IMU stamped 40 ms after it read its heading.
+		{name: "imu-late", sc: pose(fusiontest.Errors{IMUStampLateNs: 40e6})},
 	}
 }
 

@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"fmt"
+	"math"
 
 	"reckon.example/estimator"
 )
@@ -46,6 +47,11 @@ func (r *Robot) odometryHeading(res *Result, t int64, z float64) {
 	if err != nil {
 		return
 	}
+	// Read imu_latency_ns before the odometry's stamp; an odometry stamp
+	// too near int64's least leaves it at the odometry's.
+	if lat := r.cfg.IMULatencyNs; t >= math.MinInt64+lat {
+		t -= lat
+	}
 	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
 	var ins insertion
 	r.insert(&e, &ins)
@@ -67,8 +73,13 @@ func (r *Robot) AddHeading(h Heading) Result {
 	if err != nil {
 		return refused(err)
 	}
+	lat := r.cfg.IMULatencyNs
+	if h.StampNs < math.MinInt64+lat {
+		return refused(badf("stamp_ns %d less imu_latency_ns %d is before int64's range", h.StampNs, lat))
+	}
+	t := h.StampNs - lat // read at t (imu_latency_ns)
 	res := r.next()
-	e := entry{kind: entMeas, t0: h.StampNs, t1: h.StampNs, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
+	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
 	return r.finish(r.addMeasurement(res, &e, imuSensor))
 }
 

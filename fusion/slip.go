@@ -126,7 +126,7 @@ func (r *Robot) checkTurn(res *Result, at int) {
 		k = min(k, maxSlipFactor/max(sl.factor, 1))
 	}
 	if k > 1 {
-		r.inflateSteps(first, b.stamp, k)
+		r.inflateSteps(first, k)
 		sl.anchor, sl.turnSum, sl.varSum, sl.factor = b, sum, sl.varSum+k*vw, max(sl.factor, 1)*k
 		if !slipping || ns > r.turnGate {
 			r.stats.slips++
@@ -144,22 +144,57 @@ func (r *Robot) checkTurn(res *Result, at int) {
 		sl.anchor, sl.turnSum, sl.varSum = b, sum, sl.varSum+vw
 		return
 	}
+	if slipping {
+		r.endSlip(b.stamp)
+	}
 	*sl = slipState{anchor: b}
 }
 
 // inflateSteps multiplies the covariances of the odometry steps from live
-// entry first to stamp t by k and replays the window from first.
-func (r *Robot) inflateSteps(first int, t int64, k float64) {
+// entry first on by k and replays the window from first. The steps after
+// the IMU heading that found the slip are there when the heading came late
+// (after the odometry that follows it): in stamp order they would have come
+// after it and taken the slip's factor then (slipInflate). They carry the
+// factor in force before (every step ending after the last heading compared
+// does), so multiplying them by k too gives them the new one: late IMU
+// headings equal stamp order.
+func (r *Robot) inflateSteps(first int, k float64) {
 	live := r.live()
-	for i := first; i < len(live) && live[i].t0 < t; i++ {
+	for i := first; i < len(live); i++ {
 		if live[i].kind == entOdo {
-			for j := range live[i].cov {
-				live[i].cov[j] *= k
-			}
-			live[i].scrub *= k // the scrub stays its share of the turn's
+			scaleStep(&live[i], k)
 		}
 	}
 	r.replayFrom(first)
+}
+
+// endSlip takes the slip's factor back from the steps ending after t, the
+// stamp of the IMU heading that found the slip over: in stamp order they
+// would have come after it, when no slip was in force (see inflateSteps).
+func (r *Robot) endSlip(t int64) {
+	f := r.slip.factor
+	if !(f > 1) {
+		return
+	}
+	live := r.live()
+	first := -1
+	for i := len(live) - 1; i >= 0 && live[i].t1 > t; i-- {
+		if live[i].kind == entOdo {
+			scaleStep(&live[i], 1/f)
+			first = i
+		}
+	}
+	if first >= 0 {
+		r.replayFrom(first)
+	}
+}
+
+// scaleStep multiplies an odometry entry's covariance by k.
+func scaleStep(e *entry, k float64) {
+	for j := range e.cov {
+		e.cov[j] *= k
+	}
+	e.scrub *= k // the scrub stays its share of the turn's
 }
 
 // slipInflate multiplies a new odometry step's covariance by the factor of

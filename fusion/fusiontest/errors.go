@@ -61,6 +61,9 @@ type Errors struct {
 	// times each turn (1% to 3% for an uncalibrated MEMS gyro, from
 	// memory).
 	GyroScale float64
+	// IMUStampLateNs stamps every absolute IMU heading this long after it
+	// was read (a serial IMU stamped on arrival: 5 to 50 ms).
+	IMUStampLateNs int64
 }
 
 // camera reports whether any camera error process is on.

@@ -56,6 +56,7 @@ func (s Scenario) TrueModelConfig() fusion.Config {
 	if s.Layout == Commanded {
 		c.Noise = commandedTrueNoise(c.Noise)
 	}
+	c.IMULatencyNs = s.IMUStampLateNs
 	if s.GyroScale != 0 {
 		// A random walk of f^2 per radian covers a scale error f over
 		// the turn of about a radian between fixes (DEVELOPERS.md,

@@ -574,7 +574,8 @@ func (sm *Sim) generate() {
 	if sm.s.IMUHz > 0 && sm.cfg.IMU == fusion.IMUAbsolute && t == sm.nextIMU {
 		h := estimator.Wrap(sm.truth.Heading + sm.imuOffset + sm.gauss(sm.s.Heading.IMUStdRad))
 		jitter := int64(1e6 + sm.rng.Float64()*4e6)
-		sm.push(Input{ArrivalNs: t + jitter, Heading: &fusion.Heading{StampNs: t, HeadingRad: h}, Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped})
+		late := sm.s.IMUStampLateNs // stamped on arrival of a lagging IMU
+		sm.push(Input{ArrivalNs: t + late + jitter, Heading: &fusion.Heading{StampNs: t + late, HeadingRad: h}, Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped})
 		sm.nextIMU = t + int64(math.Round(1e9/sm.s.IMUHz))
 	}
 	if t == sm.nextCam {

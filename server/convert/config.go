@@ -52,6 +52,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	cfg.MaxHoldAheadNs = c.GetMaxHoldAheadNs()
 	cfg.MaxExtrapolationNs = c.GetMaxExtrapolationNs()
 	cfg.MaxOdometryGapNs = c.GetMaxOdometryGapNs()
+	cfg.IMULatencyNs = c.GetImuLatencyNs()
 	cfg.MaxSpeedMPerS = c.GetMaxSpeedMPerS()
 	cfg.MaxTurnRateRadPerS = c.GetMaxTurnRateRadPerS()
 	cfg.Recovery = fusion.Recovery{Enabled: c.GetRecovery().GetEnabled(), Count: int(c.GetRecovery().GetCount()), AgreeProbability: c.GetRecovery().GetAgreeProbability()}
@@ -97,6 +98,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		MaxHoldAheadNs:     cfg.MaxHoldAheadNs,
 		MaxExtrapolationNs: cfg.MaxExtrapolationNs,
 		MaxOdometryGapNs:   cfg.MaxOdometryGapNs,
+		ImuLatencyNs:       cfg.IMULatencyNs,
 		MaxSpeedMPerS:      cfg.MaxSpeedMPerS,
 		MaxTurnRateRadPerS: cfg.MaxTurnRateRadPerS,
 		Recovery:           &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},

@@ -435,8 +435,14 @@ type RobotConfig struct {
 	// whose odometry really stopped for longer starts a new run (run_start)
 	// before it sends again.
 	MaxOdometryGapNs int64 `protobuf:"varint,20,opt,name=max_odometry_gap_ns,json=maxOdometryGapNs,proto3" json:"max_odometry_gap_ns,omitempty"`
-	unknownFields    protoimpl.UnknownFields
-	sizeCache        protoimpl.SizeCache
+	// How much later than the reading the IMU's absolute headings are
+	// stamped, nanoseconds (IMU_MODE_ABSOLUTE only; default 0, at most 1 s): a
+	// heading stamped stamp_ns was read at stamp_ns - imu_latency_ns, and is
+	// applied there. An IMU read over a serial link and stamped on arrival
+	// lags every turn by its transfer and filtering time.
+	ImuLatencyNs  int64 `protobuf:"varint,21,opt,name=imu_latency_ns,json=imuLatencyNs,proto3" json:"imu_latency_ns,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *RobotConfig) Reset() {
@@ -605,6 +611,13 @@ func (x *RobotConfig) GetCalibration() *OdometryCalibration {
 func (x *RobotConfig) GetMaxOdometryGapNs() int64 {
 	if x != nil {
 		return x.MaxOdometryGapNs
+	}
+	return 0
+}
+
+func (x *RobotConfig) GetImuLatencyNs() int64 {
+	if x != nil {
+		return x.ImuLatencyNs
 	}
 	return 0
 }
@@ -1532,7 +1545,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x05state\x18\x05 \x01(\x0e2\x15.reckon.v1.RobotStateR\x05state\x12!\n" +
 	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\x12\x10\n" +
 	"\x03run\x18\a \x01(\x04R\x03run\x12\x17\n" +
-	"\aboot_id\x18\b \x01(\tR\x06bootId\"\xa4\a\n" +
+	"\aboot_id\x18\b \x01(\tR\x06bootId\"\xca\a\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +
@@ -1556,7 +1569,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\tlandmarks\x18\x11 \x03(\v2\x13.reckon.v1.LandmarkR\tlandmarks\x12.\n" +
 	"\asensors\x18\x12 \x03(\v2\x14.reckon.v1.FixSensorR\asensors\x12@\n" +
 	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\x12-\n" +
-	"\x13max_odometry_gap_ns\x18\x14 \x01(\x03R\x10maxOdometryGapNs\"\xb0\x03\n" +
+	"\x13max_odometry_gap_ns\x18\x14 \x01(\x03R\x10maxOdometryGapNs\x12$\n" +
+	"\x0eimu_latency_ns\x18\x15 \x01(\x03R\fimuLatencyNs\"\xb0\x03\n" +
 	"\tFixSensor\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12&\n" +
 	"\x04kind\x18\x02 \x01(\x0e2\x12.reckon.v1.FixKindR\x04kind\x12*\n" +

@@ -373,6 +373,11 @@ func (c Config) CheckBounds() error {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
 		}
 	}
+	for i, s := range c.Sensors {
+		if s.LatencyNs > maxWindowNs {
+			return cfgErr(fmt.Sprintf("sensors[%d].latency_ns", i), "%d is more than %d (a fix captured longer before its stamp than the longest history window could never be placed)", s.LatencyNs, int64(maxWindowNs))
+		}
+	}
 	return nil
 }
 

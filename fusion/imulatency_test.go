@@ -1,9 +1,12 @@
 package fusion_test
 
 import (
+	"errors"
 	"math"
+	"strings"
 	"testing"
 
+	"reckon.example/estimator"
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 )
@@ -49,5 +52,32 @@ func TestIMULatencyEqualsStampShift(t *testing.T) {
 	}
 	if dOff < 1e-6 {
 		t.Errorf("stamped 40 ms late without imu_latency_ns: differs by only %.3g, the test cannot tell", dOff)
+	}
+}
+
+// TestLatencyAtInt64sEdge: a stamp less a latency must stay a stamp. A fix
+// or an IMU heading stamped so near int64's least that its latency takes it
+// past is malformed, named so, and changes nothing (before, the difference
+// wrapped to a stamp some 292 years ahead).
+func TestLatencyAtInt64sEdge(t *testing.T) {
+	cfg := fusion.Config{IMU: fusion.IMUAbsolute, IMULatencyNs: 5e6,
+		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixPosition, LatencyNs: 20e6, Cov: []float64{1e-4, 0, 0, 1e-4}}}}
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	step := estimator.Step{ForwardM: 0.001}
+	r.AddOdometry(fusion.Odometry{StartNs: 0, StampNs: 10e6, Step: &step})
+	before := r.Pose()
+	for name, res := range map[string]fusion.Result{
+		"fix":         r.AddFix(fusion.Fix{StampNs: math.MinInt64 + 1, SensorID: "camera", Kind: fusion.FixPosition}),
+		"IMU heading": r.AddHeading(fusion.Heading{StampNs: math.MinInt64 + 1}),
+	} {
+		if res.Verdict != fusion.VerdictInvalid || !errors.Is(res.Err, fusion.ErrBadSample) || !strings.Contains(res.Err.Error(), "int64's range") {
+			t.Errorf("%s stamped at int64's least plus 1: verdict %v, %v", name, res.Verdict, res.Err)
+		}
+	}
+	if after := r.Pose(); after != before {
+		t.Errorf("the refused inputs changed the estimate: %+v, was %+v", after, before)
 	}
 }

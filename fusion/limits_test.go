@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"errors"
+	"math"
 	"strings"
 	"testing"
 )
@@ -24,6 +25,7 @@ func TestConfigUpperBounds(t *testing.T) {
 		{"max_held", func(c *Config, v int64) { c.MaxHeld = int(v) }, maxHeldLimit, maxHeldLimit + 1},
 		{"recovery.count", func(c *Config, v int64) { c.Recovery.Count = int(v) }, maxRecoveryCount, maxRecoveryCount + 1},
 		{"trust.nis_window", func(c *Config, v int64) { c.Trust.NISWindow = int(v) }, maxNISWindow, 2_000_000_000},
+		{"sensors[0].latency_ns", func(c *Config, v int64) { c.Sensors[0].LatencyNs = v }, maxWindowNs, math.MaxInt64},
 	} {
 		cfg := threeWheels()
 		c.set(&cfg, c.past)

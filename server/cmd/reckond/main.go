@@ -71,7 +71,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
-	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it (repeatable)")
+	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it; a restored robot keeps its journal's, and a differing file is logged (repeatable)")
 	if err := fs.Parse(args); err != nil {
 		return err
 	}

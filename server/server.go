@@ -324,7 +324,7 @@ func (r *robot) proto() *pb.Robot {
 // CreateRobot creates robots/{robot_id}.
 func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*pb.CreateRobotResponse, error) {
 	if !journal.ValidID(req.GetRobotId()) {
-		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be 1 to 63 lower-case letters, digits and hyphens, starting with a letter", req.GetRobotId())
+		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be %s", req.GetRobotId(), idForm)
 	}
 	cfg, err := convert.ConfigFromProto(req.GetConfig())
 	if err == nil {
@@ -862,6 +862,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 		for k, req := range run {
 			s.opt.Metrics.refused(st.Code())
 			refuse(&out[k], req.GetClientSequence(), st.Code(), st.Message())
+			// No robot: the status code says why (a malformed name is
+			// INVALID_ARGUMENT, which refuse takes for a limit).
+			out[k].Refusal = pb.Refusal_REFUSAL_UNSPECIFIED
 		}
 		return
 	}

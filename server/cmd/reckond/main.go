@@ -41,6 +41,9 @@ func (r robotFlags) Set(v string) error {
 	if !ok || !journal.ValidID(id) {
 		return fmt.Errorf("want ID=CONFIG.yaml with ID of lower-case letters, digits and hyphens, got %q", v)
 	}
+	if was, ok := r[id]; ok {
+		return fmt.Errorf("robot %s is given twice (%s=%s)", id, id, was)
+	}
 	r[id] = file
 	return nil
 }

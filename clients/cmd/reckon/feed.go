@@ -167,7 +167,11 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		if sr.Line() < fd.from {
 			continue
 		}
-		if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
+		if s.GetRunStart() != nil {
+			// The next run is on its controller's new clock: pacing
+			// starts afresh from its first stamped sample.
+			fd.pace.started = false
+		} else if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
 			break
 		}
 		seq := fd.sess.Last() + 1
@@ -258,8 +262,9 @@ func lineError(file string, line int, err error) error {
 }
 
 // pacer holds samples back to a multiple of real time by their stamps,
-// counted from the first sample; a sample stamped before one already sent
-// (a late fix) goes at once.
+// counted from the first stamped sample of the file and again after each
+// run start; a sample stamped before one already sent (a late fix) goes at
+// once.
 type pacer struct {
 	pace    float64 // 0: no pacing
 	started bool

@@ -60,3 +60,33 @@ func TestFeedServiceStops(t *testing.T) {
 		t.Errorf("restarted robot holds %d inputs, want %d to %d", got, before, before+pending)
 	}
 }
+
+// TestFeedPaceAcrossRuns: a paced feed of two runs (a controller restart
+// between them, each run's stamps from 0 on its own clock) paces the
+// second run too, instead of sending it at once because its stamps lie
+// before those already sent. At 20 times real time the two 5 s runs take
+// at least 0.45 s together; the second alone, sent at once, left 0.25 s.
+func TestFeedPaceAcrossRuns(t *testing.T) {
+	one, err := os.ReadFile("../../../testdata/samples/greenhouse-reboot-1.jsonl")
+	if err != nil {
+		t.Fatal(err)
+	}
+	two, err := os.ReadFile("../../../testdata/samples/greenhouse-reboot-2.jsonl")
+	if err != nil {
+		t.Fatal(err)
+	}
+	file := t.TempDir() + "/two-runs.jsonl"
+	if err := os.WriteFile(file, append(append(one, []byte("{\"run_start\":{\"boot_id\":\"boot-2\"}}\n")...), two...), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	start := time.Now()
+	out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml", "-pace", "20", file)
+	took := time.Since(start)
+	if code != 0 || !strings.Contains(out, "invalid 0") {
+		t.Fatalf("feed exit %d\n%s%s", code, out, errs)
+	}
+	if took < 450*time.Millisecond {
+		t.Errorf("two 5 s runs fed at 20 times real time in %v, want at least 0.45 s: the second run was not paced", took)
+	}
+}

@@ -54,8 +54,11 @@ func (r *Robot) insertReset(e *entry, res *Result) {
 
 // checkPose reports what is wrong with a reseed before it is taken.
 func checkPose(pose estimator.Pose, cov []float64) error {
-	if !lengthsOK(pose.X, pose.Y) || !anglesOK(pose.Heading) {
-		return fmt.Errorf("%w: pose %+v is not a field position within %g m of the origin, or its heading not within %g rad of 0", ErrBadSample, pose, maxFieldM, maxAngleRad)
+	if !finiteAll(pose.X, pose.Y) || !anglesOK(pose.Heading) {
+		return fmt.Errorf("%w: pose %+v is not finite, or its heading not within %g rad of 0", ErrBadSample, pose, maxAngleRad)
+	}
+	if !lengthsOK(pose.X, pose.Y) {
+		return fmt.Errorf("%w: pose %+v is not a field position within %g m of the origin", ErrBadSample, pose, maxFieldM)
 	}
 	if err := estimator.CheckCovariance(cov, 3); err != nil {
 		return fmt.Errorf("%w: cov: %v", ErrBadSample, err)

@@ -435,7 +435,7 @@ func (t *tally) unanswered(err error) error {
 		return fmt.Errorf("the stream ended after %s:%d, whose verdict came: %w", t.label, t.lastLineLocked(), err)
 	}
 	line := t.lineOfLocked(first)
-	return fmt.Errorf("%s:%d is the first of %d samples without a verdict: the stream ended (%w); feed again from there when the service serves: -from-line %d",
+	return fmt.Errorf("%s:%d is the first of %d samples without a verdict: the stream ended (%w); feed again from there: -from-line %d",
 		t.label, line, len(t.pending), err, line)
 }
 

@@ -39,7 +39,7 @@ func TestFeedServiceStops(t *testing.T) {
 		t.Fatalf("serve: %v", err)
 	}
 	t.Logf("feed:\n%s%s", out, errs)
-	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) is the first of (\d+) samples without a verdict: the stream ended \(.*code = Unavailable.*\); feed again from there when the service serves: -from-line (\d+)`).FindStringSubmatch(errs)
+	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) is the first of (\d+) samples without a verdict: the stream ended \(.*code = Unavailable.*\); feed again from there: -from-line (\d+)`).FindStringSubmatch(errs)
 	if code != exitUnreachable || m == nil || m[1] != m[3] {
 		t.Fatalf("feed exit %d, want %d naming the line to feed again from\nstderr:\n%s", code, exitUnreachable, errs)
 	}

@@ -189,6 +189,23 @@ func TestBadInputChangesNothing(t *testing.T) {
 		{"reseed NaN", func(r *Robot) Result {
 			return r.Reseed(newest-1e6, estimator.Pose{X: nan}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
 		}, ErrBadSample, VerdictInvalid},
+		// Positions a float64 cannot keep to the millimetre: fixes that
+		// far out were gated, then taken by the move recovery.
+		{"pose fix at 1e20 m", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "pose", StampNs: newest - 100e6, Kind: FixPose, XM: 1e20, YM: -1e20, Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}})
+		}, ErrBadSample, VerdictInvalid},
+		{"position fix at -1e300 m", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "position", StampNs: newest - 100e6, Kind: FixPosition, XM: -1e300, Cov: []float64{0.01, 0, 0, 0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"landmark range of 1e300 m", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", RangeM: f(1e300), Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"fix mount at 1e20 m", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "position", StampNs: newest - 100e6, Kind: FixPosition, Mount: &estimator.Pose{X: 1e20}, Cov: []float64{0.01, 0, 0, 0.01}})
+		}, ErrBadSample, VerdictInvalid},
+		{"re-seed at 1e20 m", func(r *Robot) Result {
+			return r.Reseed(newest-1e6, estimator.Pose{X: 1e20}, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
+		}, ErrBadSample, VerdictInvalid},
 		{"reseed bad cov", func(r *Robot) Result {
 			return r.Reseed(newest-1e6, estimator.Pose{}, []float64{1, 0, 0, 0, -1, 0, 0, 0, 1})
 		}, ErrBadSample, VerdictInvalid},

@@ -373,7 +373,19 @@ func (c Config) CheckBounds() error {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
 		}
 	}
+	// Positions as samples' (maxFieldM).
+	if !lengthsOK(c.StartPose.X, c.StartPose.Y) {
+		return cfgErr("start_pose", "%+v is not a field position within %g m of the origin", c.StartPose, maxFieldM)
+	}
+	for i, l := range c.Landmarks {
+		if !lengthsOK(l.XM, l.YM) {
+			return cfgErr(fmt.Sprintf("landmarks[%d]", i), "(%g, %g) is not a field position within %g m of the origin", l.XM, l.YM, maxFieldM)
+		}
+	}
 	for i, s := range c.Sensors {
+		if !lengthsOK(s.Mount.X, s.Mount.Y) {
+			return cfgErr(fmt.Sprintf("sensors[%d].mount", i), "%+v is not within %g m of the robot", s.Mount, maxFieldM)
+		}
 		if s.LatencyNs > maxWindowNs {
 			return cfgErr(fmt.Sprintf("sensors[%d].latency_ns", i), "%d is more than %d (a fix captured longer before its stamp than the longest history window could never be placed)", s.LatencyNs, int64(maxWindowNs))
 		}

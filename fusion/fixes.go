@@ -16,8 +16,12 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 	case FixPose:
 		m.Kind = estimator.KindPose
 		m.Z = [3]float64{f.XM, f.YM, estimator.Wrap(f.HeadingRad)}
+		// Non-finite values keep the reason that journals already hold.
 		if !finiteAll(f.XM, f.YM, f.HeadingRad) {
 			return m, si, badf("pose fix x_m %v, y_m %v, heading_rad %v is not finite", f.XM, f.YM, f.HeadingRad)
+		}
+		if !lengthsOK(f.XM, f.YM) {
+			return m, si, badf("pose fix x_m %v, y_m %v is not a field position (within %g m of the origin)", f.XM, f.YM, maxFieldM)
 		}
 		if !anglesOK(f.HeadingRad) {
 			return m, si, badf("pose fix heading_rad %v is not an angle (finite, within %g rad of 0)", f.HeadingRad, maxAngleRad)
@@ -27,6 +31,9 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 		m.Z = [3]float64{f.XM, f.YM}
 		if !finiteAll(f.XM, f.YM) {
 			return m, si, badf("position fix x_m %v, y_m %v is not finite", f.XM, f.YM)
+		}
+		if !lengthsOK(f.XM, f.YM) {
+			return m, si, badf("position fix x_m %v, y_m %v is not a field position (within %g m of the origin)", f.XM, f.YM, maxFieldM)
 		}
 	case FixHeading:
 		m.Kind = estimator.KindHeading
@@ -212,6 +219,9 @@ func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
 	}
 	if f.RangeM != nil && (!finiteAll(*f.RangeM) || *f.RangeM <= 0) {
 		return badf("range_m %v must be positive", *f.RangeM)
+	}
+	if f.RangeM != nil && !lengthsOK(*f.RangeM) {
+		return badf("range_m %v is more than %g m", *f.RangeM, maxFieldM)
 	}
 	if f.BearingRad != nil && !anglesOK(*f.BearingRad) {
 		return badf("bearing_rad %v is not an angle (finite, within %g rad of 0)", *f.BearingRad, maxAngleRad)

@@ -44,6 +44,30 @@ func TestConfigUpperBounds(t *testing.T) {
 			t.Errorf("%s at its limit: %v", c.field, err)
 		}
 	}
+	// Positions that a float64 cannot keep to the millimetre (maxFieldM),
+	// as samples may not carry them either.
+	for _, c := range []struct {
+		field string
+		set   func(c *Config, v float64)
+	}{
+		{"start_pose", func(c *Config, v float64) { c.StartPose.X = v }},
+		{"landmarks[0]", func(c *Config, v float64) { c.Landmarks[0].YM = -v }},
+		{"sensors[1].mount", func(c *Config, v float64) { c.Sensors[1].Mount.X = v }},
+	} {
+		cfg := threeWheels()
+		c.set(&cfg, 1e20)
+		if err := cfg.CheckBounds(); !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "within 1e+08 m") {
+			t.Errorf("%s at 1e20 m: %v", c.field, err)
+		}
+		if _, err := New(cfg); err != nil {
+			t.Errorf("New refuses %s at 1e20 m, as an old journal may hold it: %v", c.field, err)
+		}
+		cfg = threeWheels()
+		c.set(&cfg, maxFieldM)
+		if err := cfg.CheckBounds(); err != nil {
+			t.Errorf("%s at %g m: %v", c.field, maxFieldM, err)
+		}
+	}
 }
 
 // TestWindowEntryLimit: odometry stamped 1 us apart (a controller that

@@ -50,6 +50,26 @@ func anglesOK(v ...float64) bool {
 	return true
 }
 
+// maxFieldM bounds the field coordinates and lengths samples carry (fix
+// positions, a re-seed's pose, a landmark range, a fix's mount): a
+// hundred thousand kilometres, more than twice around the Earth. Within
+// it a float64 keeps 15 nm (2^-26 m) of a position, below the smallest
+// standard deviation a covariance may state (1 um, minVar); beyond it the
+// filter's metres and millimetres vanish in rounding while its covariance
+// still claims them. Fixes consistently far out were taken by the move
+// recovery, and the robot reported itself trusted at 1e20 m.
+const maxFieldM = 1e8
+
+// lengthsOK reports whether every v is finite and within maxFieldM of 0.
+func lengthsOK(v ...float64) bool {
+	for _, x := range v {
+		if !(math.Abs(x) <= maxFieldM) {
+			return false
+		}
+	}
+	return true
+}
+
 func badf(format string, args ...any) error {
 	return fmt.Errorf("%w: %s", ErrBadSample, fmt.Sprintf(format, args...))
 }

@@ -57,6 +57,9 @@ func checkPose(pose estimator.Pose, cov []float64) error {
 	if !finiteAll(pose.X, pose.Y) || !anglesOK(pose.Heading) {
 		return fmt.Errorf("%w: pose %+v is not finite, or its heading not within %g rad of 0", ErrBadSample, pose, maxAngleRad)
 	}
+	if !lengthsOK(pose.X, pose.Y) {
+		return fmt.Errorf("%w: pose %+v is not a field position within %g m of the origin", ErrBadSample, pose, maxFieldM)
+	}
 	if err := estimator.CheckCovariance(cov, 3); err != nil {
 		return fmt.Errorf("%w: cov: %v", ErrBadSample, err)
 	}

@@ -401,6 +401,9 @@ func (s *Sensor) sensorFix(f *Fix, first, mount int, m *estimator.Measurement) e
 	if !finiteAll(m.Mount.X, m.Mount.Y) || !anglesOK(m.Mount.Heading) {
 		return badf("mount %+v is not finite, or its heading not within %g rad of 0", m.Mount, maxAngleRad)
 	}
+	if !lengthsOK(m.Mount.X, m.Mount.Y) {
+		return badf("mount %+v is not within %g m of the robot", m.Mount, maxFieldM)
+	}
 	// comps are the fix's components within the kind's full measurement
 	// (a range-only landmark fix is component 0, bearing-only 1).
 	d := m.Kind.Dim()

@@ -63,6 +63,7 @@ func TestBadInputOverTheWire(t *testing.T) {
 		{"covariance not positive definite", "robots/cart", fix(cov3(1, 2, 0, 2, 1, 0, 0, 0, 1), 0), codes.InvalidArgument, "sample.fix.covariance"},
 		{"unknown robot", "robots/tractor", odo(newest, newest+5e6, 0, 0, 0), codes.NotFound, "robot"},
 		{"bad robot name", "tractor", odo(newest, newest+5e6, 0, 0, 0), codes.InvalidArgument, "robot"},
+		{"upper-case robot id", "robots/Cart", odo(newest, newest+5e6, 0, 0, 0), codes.InvalidArgument, "robot: \"robots/Cart\" is not a robot name: robots/ and an id of 1 to 63 lower-case letters"},
 		{"stamp backwards", "robots/cart", odo(newest-20e6, newest-10e6, 0, 0, 0), codes.OutOfRange, "stamp_ns"},
 		{"no motion", "robots/cart", &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StampNs: newest + 5e6}}}, codes.InvalidArgument, "sample.odometry"},
 		{"empty sample", "robots/cart", &pb.Sample{}, codes.InvalidArgument, "sample"},
@@ -102,6 +103,11 @@ func TestBadInputOverTheWire(t *testing.T) {
 			}
 			if codes.Code(resp.GetStatusCode()) != tc.code || resp.GetVerdict() != pb.Verdict_VERDICT_INVALID || !strings.Contains(resp.GetReason(), tc.field) {
 				t.Errorf("code %v verdict %v reason %q; want %v naming %q", codes.Code(resp.GetStatusCode()), resp.GetVerdict(), resp.GetReason(), tc.code, tc.field)
+			}
+			// A sample for no robot is refused by its status code alone
+			// (refuse): a malformed name is no limit.
+			if tc.field == "robot" && resp.GetRefusal() != pb.Refusal_REFUSAL_UNSPECIFIED {
+				t.Errorf("refusal %v for a sample to %q, want none", resp.GetRefusal(), tc.robot)
 			}
 			// The stream stays usable after a bad sample.
 			if _, err := s2.apply(&pb.Sample{}); err != nil {

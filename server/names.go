@@ -7,6 +7,9 @@ import (
 	"reckon.example/server/journal"
 )
 
+// idForm says what journal.ValidID takes.
+const idForm = "1 to 63 lower-case letters, digits and hyphens, starting with a letter"
+
 // namePrefix starts every robot's resource name.
 const namePrefix = "robots/"
 
@@ -19,7 +22,7 @@ func RobotName(id string) string { return namePrefix + id }
 func RobotID(name string) (string, error) {
 	id, ok := strings.CutPrefix(name, namePrefix)
 	if !ok || !journal.ValidID(id) {
-		return "", fmt.Errorf("%q is not a robot name of the form robots/{robot}", name)
+		return "", fmt.Errorf("%q is not a robot name: robots/ and an id of %s", name, idForm)
 	}
 	return id, nil
 }

@@ -86,8 +86,14 @@ type Server struct {
 	opt Options
 	log *slog.Logger
 
-	mu     sync.RWMutex // protects robots
+	mu     sync.RWMutex // protects robots, busy and making
 	robots map[string]*robot
+	// busy are the names whose journal is being made (CreateRobot) or set
+	// aside (DeleteRobot) without mu held; a create of such a name waits
+	// for the work to end. making counts the creates among them, which
+	// count against MaxRobots.
+	busy   map[string]chan struct{}
+	making int
 
 	watching atomic.Int64 // open Watch streams
 	live     liveHub      // open live views (live.go)
@@ -318,7 +324,7 @@ func (r *robot) proto() *pb.Robot {
 // CreateRobot creates robots/{robot_id}.
 func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*pb.CreateRobotResponse, error) {
 	if !journal.ValidID(req.GetRobotId()) {
-		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be 1 to 63 lower-case letters, digits and hyphens, starting with a letter", req.GetRobotId())
+		return nil, status.Errorf(codes.InvalidArgument, "robot_id: %q must be %s", req.GetRobotId(), idForm)
 	}
 	cfg, err := convert.ConfigFromProto(req.GetConfig())
 	if err == nil {
@@ -333,17 +339,17 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	}
 	name := RobotName(req.GetRobotId())
 	r := &robot{name: name, id: req.GetRobotId(), cfg: req.GetConfig(), fr: fr, state: pb.RobotState_ROBOT_STATE_SERVING}
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.robots[name] != nil {
-		return nil, status.Errorf(codes.AlreadyExists, "robot_id: %s exists", name)
+	done, err := s.reserve(ctx, name)
+	if err != nil {
+		return nil, err
 	}
-	if len(s.robots) >= s.opt.Limits.MaxRobots {
-		return nil, status.Errorf(codes.ResourceExhausted, "robot_id: the service already has %d robots, the limit (-max-robots)", len(s.robots))
-	}
+	defer close(done)
 	if s.opt.JournalDir != "" {
+		// Without s.mu: making a journal waits for the disk (fsyncs), and
+		// every other robot's samples look their robot up under it.
 		j, err := journal.Create(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano(), Build: s.opt.Build}, s.journalOptions())
 		if err != nil {
+			s.release(name, true)
 			code := codes.Internal
 			if isNoSpace(err) {
 				code = codes.Unavailable
@@ -352,6 +358,10 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		}
 		r.journal = s.wrap(openJournal(j))
 	}
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	delete(s.busy, name)
+	s.making--
 	s.robots[name] = r
 	s.opt.Metrics.robots(len(s.robots))
 	r.mu.Lock()
@@ -361,6 +371,53 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	s.live.publish(func() LiveUpdate { return created })
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
 	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
+}
+
+// reserve reserves name for a robot being created: it waits while the
+// name's journal is being made or set aside, and fails when a robot of
+// that name exists or the service has MaxRobots. The caller makes the
+// robot, then enters it and ends the reservation (or release), and closes
+// done.
+func (s *Server) reserve(ctx context.Context, name string) (done chan struct{}, err error) {
+	for {
+		s.mu.Lock()
+		if s.robots[name] != nil {
+			s.mu.Unlock()
+			return nil, status.Errorf(codes.AlreadyExists, "robot_id: %s exists", name)
+		}
+		busy := s.busy[name]
+		if busy == nil {
+			break
+		}
+		s.mu.Unlock()
+		select {
+		case <-busy:
+		case <-ctx.Done():
+			return nil, status.FromContextError(ctx.Err()).Err()
+		}
+	}
+	defer s.mu.Unlock()
+	if n := len(s.robots) + s.making; n >= s.opt.Limits.MaxRobots {
+		return nil, status.Errorf(codes.ResourceExhausted, "robot_id: the service already has %d robots, the limit (-max-robots)", n)
+	}
+	done = make(chan struct{})
+	if s.busy == nil {
+		s.busy = map[string]chan struct{}{}
+	}
+	s.busy[name] = done
+	s.making++
+	return done, nil
+}
+
+// release ends the reservation of name by a create (creating) or a
+// delete; the caller then closes its done channel.
+func (s *Server) release(name string, creating bool) {
+	s.mu.Lock()
+	delete(s.busy, name)
+	if creating {
+		s.making--
+	}
+	s.mu.Unlock()
 }
 
 func (s *Server) journalOptions() journal.Options {
@@ -424,9 +481,22 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 		return nil, status.Errorf(codes.FailedPrecondition, "robot: %s is quarantined (%s); move its journal files aside and restart the service to remove it", r.name, detail)
 	}
 	s.mu.Lock()
+	if s.robots[r.name] != r {
+		// Another delete took it first.
+		s.mu.Unlock()
+		return nil, status.Errorf(codes.NotFound, "robot: %s does not exist", r.name)
+	}
 	delete(s.robots, r.name)
 	s.opt.Metrics.robots(len(s.robots))
+	// A create of the name waits until the journal is set aside.
+	done := make(chan struct{})
+	if s.busy == nil {
+		s.busy = map[string]chan struct{}{}
+	}
+	s.busy[r.name] = done
 	s.mu.Unlock()
+	defer close(done)
+	defer s.release(r.name, false)
 	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
@@ -792,6 +862,9 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 		for k, req := range run {
 			s.opt.Metrics.refused(st.Code())
 			refuse(&out[k], req.GetClientSequence(), st.Code(), st.Message())
+			// No robot: the status code says why (a malformed name is
+			// INVALID_ARGUMENT, which refuse takes for a limit).
+			out[k].Refusal = pb.Refusal_REFUSAL_UNSPECIFIED
 		}
 		return
 	}

@@ -4,6 +4,8 @@ import (
 	"fmt"
 	"math"
 
+	"google.golang.org/protobuf/proto"
+
 	"reckon.example/estimator"
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
@@ -195,4 +197,19 @@ func covFromProto(c *pb.Covariance, want int) ([]float64, error) {
 		return nil, err
 	}
 	return c.GetValues(), nil
+}
+
+// DifferingFields names the top-level fields in which a and b, two
+// messages of one type, differ.
+func DifferingFields(a, b proto.Message) []string {
+	ma, mb := a.ProtoReflect(), b.ProtoReflect()
+	fields := ma.Descriptor().Fields()
+	var out []string
+	for i := range fields.Len() {
+		fd := fields.Get(i)
+		if ma.Has(fd) != mb.Has(fd) || !ma.Get(fd).Equal(mb.Get(fd)) {
+			out = append(out, string(fd.Name()))
+		}
+	}
+	return out
 }

@@ -73,6 +73,9 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		return s, nil
 	}
 	if err := sr.sc.Err(); err != nil {
+		if errors.Is(err, bufio.ErrTooLong) {
+			err = fmt.Errorf("longer than %d bytes, the longest line read", MaxLineBytes)
+		}
 		// The line that could not be read is the one after the last read.
 		return nil, &LineError{Line: sr.line + 1, Err: err}
 	}

@@ -90,7 +90,8 @@ func TestSampleReaderErrors(t *testing.T) {
 		{"{\"odometry\": {\"stamp_ns\": \"5\", \"travel\": {\"travel_m\": [0.1]}}}\n{not json}\n", "line 2", 2},
 		{"# comment\n\n{\"fix\": {\"stamp_ns\": \"1\", \"colour\": 3}}\n", "line 3", 3},
 		{"{}\n", "line 1: none of", 1},
-		{strings.Repeat("x", MaxLineBytes+10), "line 1: bufio.Scanner: token too long", 1},
+		{strings.Repeat("x", MaxLineBytes+10), "line 1: longer than 1048576 bytes, the longest line read", 1},
+		{"# comment\n" + strings.Repeat(" ", MaxLineBytes+10), "line 2: longer than 1048576 bytes", 2},
 	}
 	for _, c := range cases {
 		sr := NewSampleReader(strings.NewReader(c.in))

@@ -26,9 +26,11 @@ import (
 	"google.golang.org/grpc/metadata"
 	"google.golang.org/grpc/reflection"
 	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
+	"reckon.example/server/convert"
 )
 
 // Config configures Serve. Zero fields take the defaults given.
@@ -238,7 +240,13 @@ func startService(ctx context.Context, dc *Config) (*server.Server, error) {
 		return nil, err
 	}
 	for id, cfg := range dc.Robots {
-		if _, err := srv.GetRobot(ctx, &pb.GetRobotRequest{Name: server.RobotName(id)}); err == nil {
+		if got, err := srv.GetRobot(ctx, &pb.GetRobotRequest{Name: server.RobotName(id)}); err == nil {
+			// The journal's configuration is the robot's; a file edited
+			// since (calibrated, say) does not change it in silence.
+			if have := got.GetRobot().GetConfig(); !proto.Equal(have, cfg) {
+				dc.Logger.Warn("the robot's configuration file differs from its journal's, which it keeps; reckon create -replace changes it",
+					"robot", got.GetRobot().GetName(), "differs_in", strings.Join(convert.DifferingFields(have, cfg), ","))
+			}
 			continue
 		}
 		if _, err := srv.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {

@@ -48,7 +48,7 @@ func ensureRobot(ctx context.Context, c *client.Client, id, path string, replace
 	}
 	if !replace {
 		return "", fmt.Errorf("%w: %s exists with another configuration than %s (it differs in %s); -replace deletes the robot, setting its journal aside, and creates it anew",
-			errRefused, name, path, strings.Join(differingFields(r.GetConfig(), cfg), ", "))
+			errRefused, name, path, strings.Join(convert.DifferingFields(r.GetConfig(), cfg), ", "))
 	}
 	if err := c.DeleteRobot(ctx, name); err != nil {
 		return "", err
@@ -70,20 +70,6 @@ func createFirst(ctx context.Context, c *client.Client, id, path string, replace
 		fmt.Fprintf(stderr, "%s %s\n", server.RobotName(id), did)
 	}
 	return err
-}
-
-// differingFields names the top-level fields in which a and b differ.
-func differingFields(a, b proto.Message) []string {
-	ma, mb := a.ProtoReflect(), b.ProtoReflect()
-	fields := ma.Descriptor().Fields()
-	var out []string
-	for i := range fields.Len() {
-		fd := fields.Get(i)
-		if ma.Has(fd) != mb.Has(fd) || !ma.Get(fd).Equal(mb.Get(fd)) {
-			out = append(out, string(fd.Name()))
-		}
-	}
-	return out
 }
 
 // addCreateFlags adds -create (or, for the create command, -config) and

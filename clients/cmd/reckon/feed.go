@@ -32,7 +32,9 @@ that long for the robot to serve again and sends those samples again, in
 order, on the same session (a sample the service took in the meantime is
 answered as before, not applied twice), then goes on with the file. Without
 -wait, or when the wait runs out, it names the first line not taken and
-exits 1: feed again with -from-line at that line.`)
+exits 1: feed again with -from-line at that line. When the service ends the
+stream (it stopped), feed names the first line without a verdict and exits
+3.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
@@ -108,10 +110,12 @@ exits 1: feed again with -from-line at that line.`)
 	case interrupted:
 		fmt.Fprintf(std.err, "reckon feed: interrupted after %s:%d\n", label, t.lastLine())
 		return errInterrupted
+	case errors.Is(sendErr, io.EOF) || sendErr == nil && recvErr != nil:
+		// The service ended the stream: Send says only io.EOF, the
+		// stream's status is what Recv returned.
+		return t.unanswered(recvErr)
 	case sendErr != nil:
 		return sendErr
-	case recvErr != nil:
-		return recvErr
 	}
 	if line, why := t.firstNotTaken(); line > 0 {
 		return fmt.Errorf("%s:%d and the %d samples after it that were sent were not taken (%s); feed again from there when the robot serves: -from-line %d",
@@ -163,7 +167,11 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		if sr.Line() < fd.from {
 			continue
 		}
-		if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
+		if s.GetRunStart() != nil {
+			// The next run is on its controller's new clock: pacing
+			// starts afresh from its first stamped sample.
+			fd.pace.started = false
+		} else if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
 			break
 		}
 		seq := fd.sess.Last() + 1
@@ -254,8 +262,9 @@ func lineError(file string, line int, err error) error {
 }
 
 // pacer holds samples back to a multiple of real time by their stamps,
-// counted from the first sample; a sample stamped before one already sent
-// (a late fix) goes at once.
+// counted from the first stamped sample of the file and again after each
+// run start; a sample stamped before one already sent (a late fix) goes at
+// once.
 type pacer struct {
 	pace    float64 // 0: no pacing
 	started bool
@@ -331,6 +340,10 @@ func (t *tally) sending(line int, seq uint64, s *pb.Sample) {
 func (t *tally) lastLine() int {
 	t.mu.Lock()
 	defer t.mu.Unlock()
+	return t.lastLineLocked()
+}
+
+func (t *tally) lastLineLocked() int {
 	if len(t.lines) == 0 {
 		return 0
 	}
@@ -401,6 +414,29 @@ func (t *tally) notTakenCount() int {
 	t.mu.Lock()
 	defer t.mu.Unlock()
 	return len(t.retries)
+}
+
+// unanswered returns the error of a stream that the service ended (err
+// its status; nil when it ended it without one), naming the first line
+// sent that has no verdict, from which to feed again.
+func (t *tally) unanswered(err error) error {
+	if err == nil {
+		err = errors.New("the service ended the stream")
+	}
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	var first uint64
+	for seq := range t.pending {
+		if first == 0 || seq < first {
+			first = seq
+		}
+	}
+	if first == 0 {
+		return fmt.Errorf("the stream ended after %s:%d, whose verdict came: %w", t.label, t.lastLineLocked(), err)
+	}
+	line := t.lineOfLocked(first)
+	return fmt.Errorf("%s:%d is the first of %d samples without a verdict: the stream ended (%w); feed again from there: -from-line %d",
+		t.label, line, len(t.pending), err, line)
 }
 
 // notTakenPart is the summary's count of samples not taken, when any.

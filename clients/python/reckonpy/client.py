@@ -107,6 +107,12 @@ class Verdict:
 
 _CLOSE = object()
 
+# MAX_QUEUED bounds the requests an IngestSession holds that gRPC has not
+# yet taken: send() then waits, as the Go client's Send waits on gRPC's
+# flow control, instead of queueing without bound while the service is
+# slow or gone.
+MAX_QUEUED = 256
+
 
 class IngestSession:
     """IngestSession is one long-lived Ingest stream for one robot.
@@ -132,13 +138,17 @@ class IngestSession:
     with send_as(seq, sample). A sample answered "invalid" with status_code
     14 (UNAVAILABLE: the robot paused, as when its journal's disk is full,
     or its journal not written) was not taken: send it again, with send_as
-    and its own number, once the robot serves (get_robot's state)."""
+    and its own number, once the robot serves (get_robot's state).
+
+    send() and send_as() wait while MAX_QUEUED requests wait to be sent,
+    and raise the stream's grpc.RpcError once the stream has ended (the
+    service stopped or went away), as iterating the verdicts does."""
 
     def __init__(self, stub: fs_grpc.FusionServiceStub, robot: str, metadata,
                  session_id: Optional[str] = None, last: int = 0):
         self._robot = robot_name(robot)
         self._session_id = session_id or secrets.token_hex(16)
-        self._queue: "queue.Queue" = queue.Queue()
+        self._queue: "queue.Queue" = queue.Queue(maxsize=MAX_QUEUED)
         self._lock = threading.Lock()
         self._next = last
         self._closed = False
@@ -176,11 +186,10 @@ class IngestSession:
         with self._lock:
             if self._closed:
                 raise ValueError("IngestSession.send: the session is closed")
+            self._put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=self._next + 1, sample=sample,
+                                           session_id=self._session_id))
             self._next += 1
-            seq = self._next
-            self._queue.put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample,
-                                                 session_id=self._session_id))
-        return seq
+            return self._next
 
     def send_as(self, seq: int, sample: samples_pb2.Sample) -> None:
         """send_as sends a sample again with the client sequence number seq
@@ -192,8 +201,21 @@ class IngestSession:
         with self._lock:
             if self._closed:
                 raise ValueError("IngestSession.send_as: the session is closed")
-            self._queue.put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample,
-                                                 session_id=self._session_id))
+            self._put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample,
+                                           session_id=self._session_id))
+
+    def _put(self, req) -> None:
+        """_put queues req for gRPC, waiting while the queue is full; it
+        raises the call's error once the stream has ended, when nothing
+        will take the request any more."""
+        while True:
+            if self._call.done():
+                raise self._call
+            try:
+                self._queue.put(req, timeout=0.05)
+                return
+            except queue.Full:
+                pass
 
     def close(self) -> None:
         """close ends the sending side of the stream; verdicts still to come
@@ -201,7 +223,10 @@ class IngestSession:
         with self._lock:
             if not self._closed:
                 self._closed = True
-                self._queue.put(_CLOSE)
+                try:
+                    self._put(_CLOSE)
+                except grpc.RpcError:
+                    pass  # the stream has ended already
 
     def cancel(self) -> None:
         """cancel ends the stream at once; verdicts not yet read are lost."""

@@ -41,6 +41,9 @@ func (r robotFlags) Set(v string) error {
 	if !ok || !journal.ValidID(id) {
 		return fmt.Errorf("want ID=CONFIG.yaml with ID of lower-case letters, digits and hyphens, got %q", v)
 	}
+	if was, ok := r[id]; ok {
+		return fmt.Errorf("robot %s is given twice (%s=%s)", id, id, was)
+	}
 	r[id] = file
 	return nil
 }
@@ -71,7 +74,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
-	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it (repeatable)")
+	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it; a restored robot keeps its journal's, and a differing file is logged (repeatable)")
 	if err := fs.Parse(args); err != nil {
 		return err
 	}

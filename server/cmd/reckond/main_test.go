@@ -23,6 +23,9 @@ func TestFlagErrors(t *testing.T) {
 		{[]string{"-robot", "Cart=x.yaml"}, "ID=CONFIG.yaml"},
 		{[]string{"-robot", "cart=" + filepath.Join(dir, "missing.yaml")}, "robot cart"},
 		{[]string{"-robot", "cart=" + bad}, "wheels"},
+		// The second file used in silence before; an invalid port ends
+		// the run if the flag is taken.
+		{[]string{"-journal", dir, "-listen", "127.0.0.1:-1", "-robot", "cart=a.yaml", "-robot", "cart=b.yaml"}, `"cart=b.yaml" for flag -robot: robot cart is given twice (cart=a.yaml)`},
 		{[]string{"-log-level", "loud"}, "log-level"},
 		{[]string{"-token-file", filepath.Join(dir, "none")}, "token-file"},
 		{[]string{"-journal", dir, "-listen", "127.0.0.1:0", "-tls-client-ca", bad}, "tls-client-ca needs tls-cert"},

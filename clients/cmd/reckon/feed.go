@@ -34,13 +34,17 @@ answered as before, not applied twice), then goes on with the file. Without
 -wait, or when the wait runs out, it names the first line not taken and
 exits 1: feed again with -from-line at that line. When the service ends the
 stream (it stopped), feed names the first line without a verdict and exits
-3.`)
+3. Either way it names its session too: fed again with -session and that
+id, each sample keeps the client sequence it had (its place among the
+file's samples), and one the service took already is answered with its
+first verdict instead of taken twice.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
 	create, replace := addCreateFlags(fs, "create", "create the robot first from this YAML configuration; an existing robot must have the same one (or -replace)")
 	pace := fs.Float64("pace", 0, "send at this multiple of real time by the samples' stamps: 1 real time, 2 twice as fast, 0 as fast as possible")
 	fromLine := fs.Int("from-line", 1, "start at this line of the file (where an earlier feed says its samples were not taken)")
+	session := fs.String("session", "", "continue an earlier feed's session (its id, as the earlier feed printed it): a sample of the file it sent is answered with its first verdict, not applied twice")
 	wait := fs.Duration("wait", 0, "when samples are not taken (robot paused: journal disk full or not writable), wait up to this long for the robot to serve again and send them again (0: stop and name the line)")
 	pos, err := parseArgs(fs, args, std.out, std.err)
 	if err != nil {
@@ -60,6 +64,9 @@ stream (it stopped), feed names the first line without a verdict and exits
 	}
 	if *wait < 0 {
 		return usagef(fs, "-wait %v: want a duration of 0 or more", *wait)
+	}
+	if len(*session) > 128 {
+		return usagef(fs, "-session: %d bytes, want at most 128 (an id an earlier feed printed)", len(*session))
 	}
 	name, id, err := robotName(*robot)
 	if err != nil {
@@ -84,11 +91,15 @@ stream (it stopped), feed names the first line without a verdict and exits
 	}
 	sessCtx, stop := sessionContext(ctx)
 	defer stop()
-	sess, err := c.OpenIngest(sessCtx, name)
+	var opts []client.IngestOption
+	if *session != "" {
+		opts = append(opts, client.Resume(*session, 0))
+	}
+	sess, err := c.OpenIngest(sessCtx, name, opts...)
 	if err != nil {
 		return err
 	}
-	t := newTally(label)
+	t := newTally(label, sess.ID())
 	done := make(chan error, 1)
 	go func() { done <- t.collect(sess) }()
 	fd := feeder{sess: sess, t: t, label: label, pace: pacer{pace: *pace}, from: *fromLine, wait: *wait, std: std,
@@ -118,8 +129,8 @@ stream (it stopped), feed names the first line without a verdict and exits
 		return sendErr
 	}
 	if line, why := t.firstNotTaken(); line > 0 {
-		return fmt.Errorf("%s:%d and the %d samples after it that were sent were not taken (%s); feed again from there when the robot serves: -from-line %d",
-			label, line, t.notTakenCount()-1, why, line)
+		return fmt.Errorf("%s:%d and the %d samples after it that were sent were not taken (%s); feed again from there when the robot serves: -from-line %d -session %s",
+			label, line, t.notTakenCount()-1, why, line, sess.ID())
 	}
 	return nil
 }
@@ -135,7 +146,8 @@ type feeder struct {
 	wait    time.Duration
 	std     stdio
 	serving func(context.Context) (bool, error)
-	sent    int // samples sent, each counted once
+	sent    int    // samples sent, each counted once
+	ordinal uint64 // the file's samples read so far
 }
 
 // run sends every sample of sr from the line from on, until the end of
@@ -164,6 +176,11 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		if err != nil {
 			return lineError(fd.label, sr.Line(), err)
 		}
+		// A sample's client sequence is its place among the file's
+		// samples, wherever the feed starts, so that a feed continuing an
+		// earlier one's session (-session) sends each sample under the
+		// number it had.
+		fd.ordinal++
 		if sr.Line() < fd.from {
 			continue
 		}
@@ -174,9 +191,9 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		} else if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
 			break
 		}
-		seq := fd.sess.Last() + 1
+		seq := fd.ordinal
 		fd.t.sending(sr.Line(), seq, s)
-		if _, err := fd.sess.Send(s); err != nil {
+		if err := fd.sess.SendAs(seq, s); err != nil {
 			return err
 		}
 		fd.sent++
@@ -303,8 +320,12 @@ type tally struct {
 	label string
 	mu    sync.Mutex // protects everything below but counts and reasons
 	cond  *sync.Cond // signalled as verdicts come and when collect ends
-	lines []int      // lines[k-1] is the line of client sequence k
-	held  map[uint64]int
+	// session is the ingest session's id; lines[k-1-base] is the line of
+	// client sequence k.
+	session string
+	base    uint64
+	lines   []int
+	held    map[uint64]int
 	// pending holds the samples sent and not yet answered, by client
 	// sequence; retries those answered not taken, in the order sent.
 	pending map[uint64]*pb.Sample
@@ -322,8 +343,8 @@ type retry struct {
 	sample *pb.Sample
 }
 
-func newTally(label string) *tally {
-	t := &tally{label: label, held: map[uint64]int{}, pending: map[uint64]*pb.Sample{}, counts: map[pb.Verdict]int{}}
+func newTally(label, session string) *tally {
+	t := &tally{label: label, session: session, held: map[uint64]int{}, pending: map[uint64]*pb.Sample{}, counts: map[pb.Verdict]int{}}
 	t.cond = sync.NewCond(&t.mu)
 	return t
 }
@@ -333,6 +354,9 @@ func newTally(label string) *tally {
 func (t *tally) sending(line int, seq uint64, s *pb.Sample) {
 	t.mu.Lock()
 	defer t.mu.Unlock()
+	if len(t.lines) == 0 {
+		t.base = seq - 1
+	}
 	t.lines = append(t.lines, line)
 	t.pending[seq] = s
 }
@@ -357,10 +381,10 @@ func (t *tally) lineOf(clientSeq uint64) int {
 }
 
 func (t *tally) lineOfLocked(clientSeq uint64) int {
-	if clientSeq == 0 || clientSeq > uint64(len(t.lines)) {
+	if clientSeq <= t.base || clientSeq-t.base > uint64(len(t.lines)) {
 		return 0
 	}
-	return t.lines[clientSeq-1]
+	return t.lines[clientSeq-t.base-1]
 }
 
 // stopped tells whether samples wait to be sent again.
@@ -435,8 +459,8 @@ func (t *tally) unanswered(err error) error {
 		return fmt.Errorf("the stream ended after %s:%d, whose verdict came: %w", t.label, t.lastLineLocked(), err)
 	}
 	line := t.lineOfLocked(first)
-	return fmt.Errorf("%s:%d is the first of %d samples without a verdict: the stream ended (%w); feed again from there: -from-line %d",
-		t.label, line, len(t.pending), err, line)
+	return fmt.Errorf("%s:%d is the first of %d samples without a verdict: the stream ended (%w); feed again from there, on the same session (what the service took is answered again, not applied twice): -from-line %d -session %s",
+		t.label, line, len(t.pending), err, line, t.session)
 }
 
 // notTakenPart is the summary's count of samples not taken, when any.

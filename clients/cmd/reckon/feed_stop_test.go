@@ -39,7 +39,7 @@ func TestFeedServiceStops(t *testing.T) {
 		t.Fatalf("serve: %v", err)
 	}
 	t.Logf("feed:\n%s%s", out, errs)
-	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) is the first of (\d+) samples without a verdict: the stream ended \(.*code = Unavailable.*\); feed again from there: -from-line (\d+)`).FindStringSubmatch(errs)
+	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) is the first of (\d+) samples without a verdict: the stream ended \(.*code = Unavailable.*\); feed again from there, on the same session \(.*\): -from-line (\d+) -session ([0-9a-f]+)`).FindStringSubmatch(errs)
 	if code != exitUnreachable || m == nil || m[1] != m[3] {
 		t.Fatalf("feed exit %d, want %d naming the line to feed again from\nstderr:\n%s", code, exitUnreachable, errs)
 	}
@@ -58,6 +58,25 @@ func TestFeedServiceStops(t *testing.T) {
 	addr, _ = serve(t, "127.0.0.1:0", dir)
 	if got := robotInputs(t, addr, "robots/cart"); got < uint64(before) || got > uint64(before+pending) {
 		t.Errorf("restarted robot holds %d inputs, want %d to %d", got, before, before+pending)
+	}
+	// Fed again on the same session, from the first line (more than the
+	// feed said, as a cautious operator might), the file's every sample is
+	// in the robot once: those it took are answered with their first
+	// verdicts (the session's verdicts restored with the robot), not taken
+	// again. On a new session the IMU headings and fixes before the stop
+	// would be taken a second time.
+	out, errs, code = runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-from-line", "1", "-session", m[4], samples)
+	if code != 0 {
+		t.Fatalf("feed again on session %s: exit %d\n%s%s", m[4], code, out, errs)
+	}
+	total := 0
+	for _, l := range strings.Split(string(b), "\n") {
+		if l != "" && l[0] != '#' {
+			total++
+		}
+	}
+	if got := robotInputs(t, addr, "robots/cart"); got != uint64(total) {
+		t.Errorf("after feeding again on the same session the robot holds %d inputs, want the file's %d", got, total)
 	}
 }
 

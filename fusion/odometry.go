@@ -172,9 +172,9 @@ func (r *Robot) interval(o *Odometry, travel []float64, res *odoResult) (t0, dtN
 // max_turn_rate_rad_per_s over dt seconds.
 func (r *Robot) checkJump(s estimator.Step, dt float64) error {
 	if v := math.Hypot(s.ForwardM, s.LeftM) / dt; v > r.cfg.MaxSpeedMPerS {
-		return fmt.Errorf("%w: %.2f m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
+		return fmt.Errorf("%w: %.3g m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
 	} else if w := math.Abs(s.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
-		return fmt.Errorf("%w: %.2f rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
+		return fmt.Errorf("%w: %.3g rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
 	}
 	return nil
 }

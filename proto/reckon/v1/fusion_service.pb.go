@@ -50,9 +50,10 @@ const (
 	Refusal_REFUSAL_NOT_CONFIGURED Refusal = 9
 	// An update the filter could not make; the estimate is unchanged.
 	Refusal_REFUSAL_NUMERICAL_FAULT Refusal = 10
-	// The service could not journal it: not applied, resend (status 14).
+	// The service could not journal it, or the robot is paused (its
+	// journal's disk is full): not applied, resend (status 14).
 	Refusal_REFUSAL_NOT_JOURNALED Refusal = 11
-	// Past one of the service's limits (string length, robot paused).
+	// Past one of the service's limits (a string's length).
 	Refusal_REFUSAL_LIMIT Refusal = 12
 	// A run start that does not start the next run: its run number is not
 	// the current run's plus one, or its boot id is the current run's.

@@ -111,8 +111,22 @@ func (h *hub) close() {
 	}
 }
 
+// watchEnded is how a watch of r ends when the service ends it: NOT_FOUND
+// when r was deleted, so that a client tells it from the service stopping
+// (OK), after which it may connect again.
+func watchEnded(r *robot) error {
+	r.mu.Lock()
+	deleted := r.deleted
+	r.mu.Unlock()
+	if deleted {
+		return status.Errorf(codes.NotFound, "robot: %s was deleted", r.name)
+	}
+	return nil
+}
+
 // Watch streams a robot's poses, conflated for slow readers and rate
-// limited by min_interval_ns.
+// limited by min_interval_ns. It ends with NOT_FOUND when the robot is
+// deleted.
 func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer) error {
 	r, err := s.lookup(req.GetRobot())
 	if err != nil {
@@ -155,7 +169,7 @@ func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer
 		case <-ctx.Done():
 			return nil
 		case <-done:
-			return nil
+			return watchEnded(r)
 		case <-w.notify:
 		}
 		if resp := w.take(); resp != nil {
@@ -171,7 +185,7 @@ func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer
 				return nil
 			case <-done:
 				t.Stop()
-				return nil
+				return watchEnded(r)
 			case <-t.C:
 			}
 		}

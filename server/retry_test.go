@@ -90,6 +90,29 @@ func TestSessionBounds(t *testing.T) {
 	if got := one.byID["s"].recent(3); len(got) != 3 || got[2].clientSeq != sessionVerdicts+100 || got[0].clientSeq != sessionVerdicts+98 {
 		t.Errorf("recent: %+v", got)
 	}
+	// Verdicts of 1 KiB (events and resolutions) in every session: the
+	// robot keeps at most maxSessionBytes of them, forgetting the sessions
+	// used longest ago, and the session in use keeps its whole window.
+	var big sessions
+	kib := make([]byte, 1024)
+	for i := 0; i < maxSessions; i++ {
+		for q := uint64(1); q <= 1000; q++ {
+			big.add(itoa3(i), q, kib)
+		}
+	}
+	var sum int
+	for _, l := range big.byID {
+		sum += l.bytes
+	}
+	if big.bytes > maxSessionBytes || sum != big.bytes {
+		t.Errorf("%d bytes of verdicts remembered (%d counted by session), want at most %d", big.bytes, sum, maxSessionBytes)
+	}
+	for q := uint64(1); q <= sessionVerdicts; q++ {
+		big.add("last", q, kib)
+	}
+	if big.lookup("last", 1) == nil || big.lookup("last", sessionVerdicts) == nil || big.bytes > maxSessionBytes {
+		t.Errorf("the session in use, among %d sessions of %d bytes: want its whole window kept, at most %d bytes in all", len(big.byID), big.bytes, maxSessionBytes)
+	}
 }
 
 // TestSnapshotSessionsBudget: a snapshot carries each session's whole

@@ -16,6 +16,13 @@ import (
 const (
 	sessionVerdicts = 4096
 	maxSessions     = 64
+	// maxSessionBytes bounds a robot's remembered verdicts in all: a
+	// verdict is about 30 bytes, so 8 MiB hold every session's whole window,
+	// but one carrying events and resolutions may take ten times that, and
+	// a client with many sessions would otherwise grow each robot by up to
+	// 64 * 4096 such verdicts. Past it the sessions used longest ago are
+	// forgotten first, never the one just used.
+	maxSessionBytes = 8 << 20
 	// snapshotSessionBytes bounds the verdicts a snapshot carries, so
 	// that a retry is recognised after a restart although the inputs it
 	// repeats are before the snapshot: the newest verdicts of the most
@@ -31,6 +38,8 @@ const (
 type sessions struct {
 	byID map[string]*sessionLog
 	tick uint64
+	// bytes is the size of every remembered verdict (maxSessionBytes).
+	bytes int
 	// last is the session of the last lookup or add, under the key
 	// lastID: a robot's samples mostly come from one session, and the map
 	// lookup each sample made, on a map out of the cache at robot rates,
@@ -59,6 +68,7 @@ func (ss *sessions) log(id string) *sessionLog {
 // index maps each client sequence to its position from then on.
 type sessionLog struct {
 	used  uint64
+	bytes int            // its verdicts' size
 	index map[uint64]int // client sequence -> position in ring; nil while they rise
 	ring  []sessionVerdict
 	next  int // the ring position written next once it is full
@@ -131,7 +141,9 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 	l.used = ss.tick
 	if n := len(l.ring); l.index != nil || n > 0 && clientSeq <= l.at(n-1).clientSeq {
 		if i, ok := l.find(clientSeq); ok {
+			ss.grow(l, len(wire)-len(l.ring[i].wire))
 			l.ring[i].wire = wire
+			ss.trim(l)
 			return
 		}
 		if l.index == nil {
@@ -147,24 +159,49 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 			l.index[clientSeq] = len(l.ring)
 		}
 		l.ring = append(l.ring, sessionVerdict{clientSeq, wire})
+		ss.grow(l, len(wire))
+		ss.trim(l)
 		return
 	}
 	if l.index != nil {
 		delete(l.index, l.ring[l.next].clientSeq)
 		l.index[clientSeq] = l.next
 	}
+	ss.grow(l, len(wire)-len(l.ring[l.next].wire))
 	l.ring[l.next] = sessionVerdict{clientSeq, wire}
 	l.next = (l.next + 1) % sessionVerdicts
+	ss.trim(l)
 }
 
-func (ss *sessions) evict() {
+// grow counts n more bytes of session l's verdicts.
+func (ss *sessions) grow(l *sessionLog, n int) {
+	l.bytes += n
+	ss.bytes += n
+}
+
+// trim forgets the sessions used longest ago while the verdicts remembered
+// exceed maxSessionBytes, but never keep, the session just used.
+func (ss *sessions) trim(keep *sessionLog) {
+	for ss.bytes > maxSessionBytes && len(ss.byID) > 1 {
+		ss.evictBut(keep)
+	}
+}
+
+func (ss *sessions) evict() { ss.evictBut(nil) }
+
+// evictBut forgets the session used longest ago other than keep.
+func (ss *sessions) evictBut(keep *sessionLog) {
 	var oldest string
 	var at uint64
 	for id, l := range ss.byID {
-		if oldest == "" || l.used < at {
+		if l != keep && (oldest == "" || l.used < at) {
 			oldest, at = id, l.used
 		}
 	}
+	if oldest == "" {
+		return
+	}
+	ss.bytes -= ss.byID[oldest].bytes
 	delete(ss.byID, oldest)
 	if oldest == ss.lastID {
 		ss.lastID, ss.last = "", nil

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"sync"
+	"time"
 
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
@@ -28,35 +29,117 @@ type Summary struct {
 	NotTaken int
 	// Reasons holds the reasons the service gave, the first ten.
 	Reasons []string
+	// Reconnects counts the streams opened again after the service ended
+	// one, and Dropped the samples decoded while none was open (Reconnect).
+	Reconnects, Dropped int
+
+	lastSession sessionMark
 }
 
 // maxReasons is how many refusal reasons a Summary keeps.
 const maxReasons = 10
 
+// Reopen opens a new ingest stream that continues session id, whose last
+// sample had client sequence last (client.Resume): Forward calls it when
+// the service ended the stream (it stopped or restarted), and goes on on
+// the stream it returns.
+type Reopen func(ctx context.Context, id string, last uint64) (*client.Session, error)
+
+// ForwardOption configures Forward.
+type ForwardOption func(*forwardOptions)
+
+type forwardOptions struct {
+	reopen Reopen
+	log    io.Writer
+}
+
+// Reconnect makes Forward outlive the service's restarts: when the service
+// ends the stream, Forward says so on log, drops the samples decoded while
+// no stream is open (a live link does not keep them: cumulative counts
+// lose nothing by a missing sample), and opens the session again with
+// reopen at the next frame, waiting 0.1 s after a failed attempt and
+// twice as long after each further one, up to 5 s.
+func Reconnect(reopen Reopen, log io.Writer) ForwardOption {
+	return func(o *forwardOptions) { o.reopen, o.log = reopen, log }
+}
+
+// The pauses between attempts to open the session again (Reconnect).
+const (
+	reopenFirst = 100 * time.Millisecond
+	reopenMost  = 5 * time.Second
+	reopenWait  = 2 * time.Second // one attempt's bound
+)
+
 // Forward reads src until it ends, fails, or ctx is done, decodes frames
 // with dec and sends each sample over sess; it then closes sess for
 // sending, waits for the service's verdicts and closes src. Reaching the
 // end of src or ctx being done is a normal end (nil error); the Summary is
-// filled in either way.
-func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.Session) (Summary, error) {
-	sum := Summary{Verdicts: map[pb.Verdict]int{}}
+// filled in either way. Without Reconnect, the service ending the stream
+// ends Forward with its error.
+func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.Session, opts ...ForwardOption) (Summary, error) {
+	var o forwardOptions
+	for _, f := range opts {
+		f(&o)
+	}
+	sum := Summary{Verdicts: map[pb.Verdict]int{}, lastSession: sessionMark{sess.ID(), sess.Last()}}
 	var mu sync.Mutex // protects sum.Verdicts and sum.Reasons
-	recvErr := make(chan error, 1)
-	go func() {
-		for {
-			resp, err := sess.Recv()
-			if err != nil {
-				if errors.Is(err, io.EOF) {
-					err = nil
+	// listen receives s's verdicts until its stream ends, and then sends
+	// the stream's error (nil at its normal end) on the channel it returns.
+	listen := func(s *client.Session) chan error {
+		ended := make(chan error, 1)
+		go func() {
+			for {
+				resp, err := s.Recv()
+				if err != nil {
+					if errors.Is(err, io.EOF) {
+						err = nil
+					}
+					if err != nil && o.reopen != nil && ctx.Err() == nil {
+						fmt.Fprintf(o.log, "the service ended the stream (%v); opening it again at the next frame\n", err)
+					}
+					ended <- err
+					return
 				}
-				recvErr <- err
-				return
+				mu.Lock()
+				tally(&sum, resp)
+				mu.Unlock()
 			}
-			mu.Lock()
-			tally(&sum, resp)
-			mu.Unlock()
+		}()
+		return ended
+	}
+	ended := listen(sess)
+	var retryAt time.Time
+	pause := reopenFirst
+	// connected reports whether a stream is open, opening one again
+	// (Reconnect) when the last has ended and its pause is over.
+	connected := func() bool {
+		if o.reopen == nil {
+			return true
 		}
-	}()
+		if sess != nil {
+			select {
+			case <-ended:
+				sess, retryAt, pause = nil, time.Time{}, reopenFirst
+			default:
+				return true
+			}
+		}
+		if ctx.Err() != nil || time.Now().Before(retryAt) {
+			return false
+		}
+		octx, cancel := context.WithTimeout(ctx, reopenWait)
+		defer cancel()
+		last := sum.lastSession
+		s, err := o.reopen(octx, last.id, last.seq)
+		if err != nil {
+			retryAt, pause = time.Now().Add(pause), min(2*pause, reopenMost)
+			return false
+		}
+		sess, ended = s, listen(s)
+		sum.Reconnects++
+		fmt.Fprintf(o.log, "the stream is open again (session %s); %d samples dropped while it was not\n", last.id, sum.Dropped)
+		return true
+	}
 
 	stop := context.AfterFunc(ctx, func() { src.Close() })
 	defer stop()
@@ -67,10 +150,20 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		n, err := src.Read(buf)
 		samples = dec.Decode(samples[:0], buf[:n])
 		for _, s := range samples {
-			if _, err := sess.Send(s); err != nil {
-				readErr = fmt.Errorf("send: %w", err)
-				break
+			if !connected() {
+				sum.Dropped++
+				continue
 			}
+			if _, err := sess.Send(s); err != nil {
+				if o.reopen == nil {
+					readErr = fmt.Errorf("send: %w", err)
+					break
+				}
+				// The stream ended; its listener says why.
+				sum.Dropped++
+				continue
+			}
+			sum.lastSession = sessionMark{sess.ID(), sess.Last()}
 			sum.Sent++
 		}
 		switch {
@@ -85,15 +178,28 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		readErr = nil
 	}
 	src.Close()
-	if err := sess.CloseSend(); err != nil && readErr == nil {
-		readErr = err
+	var err error
+	if sess != nil {
+		if cerr := sess.CloseSend(); cerr != nil && readErr == nil && o.reopen == nil {
+			readErr = cerr
+		}
+		err = <-ended
+		if o.reopen != nil {
+			err = nil // said on log; a live link's end is its source's
+		}
 	}
-	err := <-recvErr
 	sum.Stats = dec.Stats()
 	if readErr != nil {
 		return sum, readErr
 	}
 	return sum, err
+}
+
+// sessionMark is the session and the client sequence of the last sample
+// sent, from which Reconnect continues.
+type sessionMark struct {
+	id  string
+	seq uint64
 }
 
 // tally counts one response's verdict and resolutions into sum.

@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"reckon.example/clients/bridge"
+	"reckon.example/clients/client"
 )
 
 // verdictWait bounds the wait for the last verdicts after Ctrl-C.
@@ -78,7 +79,12 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 		return err
 	}
 	dec.Resume(r.GetBootId())
-	sum, err := bridge.Forward(ctx, src, &dec, sess)
+	// The service's restarts (an upgrade, a crash) do not end the link: it
+	// opens the session again and goes on.
+	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
+		return c.OpenIngest(sessCtx, name, client.Resume(id, last))
+	}
+	sum, err := bridge.Forward(ctx, src, &dec, sess, bridge.Reconnect(reopen, stderr))
 	printLinkSummary(stdout, name, sum)
 	if ctx.Err() != nil && (err == nil || exitCode(err) == exitInterrupted) {
 		return errInterrupted
@@ -95,6 +101,9 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 		notTaken = fmt.Sprintf(", not taken %d (the robot was paused: see its state)", sum.NotTaken)
 	}
 	fmt.Fprintf(w, "%d samples sent to %s: %s%s\n", sum.Sent, robot, verdictLine(sum.Verdicts), notTaken)
+	if sum.Reconnects > 0 {
+		fmt.Fprintf(w, "the service ended the stream %d times; %d samples dropped while it was not open\n", sum.Reconnects, sum.Dropped)
+	}
 	for _, r := range sum.Reasons {
 		fmt.Fprintln(w, "  "+r)
 	}

@@ -425,12 +425,6 @@ func (r *Robot) posesAgree() (estimator.Pose, [9]float64, string, bool) {
 	return ln, lc, fmt.Sprintf("%d agreeing pose fixes refused", n), true
 }
 
-// estimateAt returns the filter's pose at a stamp inside the window.
-func (r *Robot) estimateAt(t int64) (estimator.Pose, bool) {
-	p, err := r.PoseAt(t)
-	return p.Pose, err == nil
-}
-
 // detachCov returns the covariance of Detach(s, m) for a sensor pose s with
 // covariance rs (3x3, stride 3): J rs J^T, with J the Jacobian of Detach in s.
 func detachCov(robot, m estimator.Pose, rs *[9]float64) [9]float64 {

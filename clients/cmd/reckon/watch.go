@@ -71,8 +71,8 @@ poses it printed and exits 130.`)
 		case err == nil && w.count > 0 && w.n >= w.count:
 			return nil
 		case err == nil:
-			// The service ended the stream: it is stopping, or the robot
-			// was deleted (the next attempt then finds no robot).
+			// The service ended the stream: it is stopping (a deleted
+			// robot's watch ends with NOT_FOUND, below).
 			err = status.Error(codes.Unavailable, "the service ended the stream")
 		}
 		switch {

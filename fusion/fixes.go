@@ -2,7 +2,6 @@ package fusion
 
 import (
 	"fmt"
-	"math"
 
 	"reckon.example/estimator"
 )
@@ -236,13 +235,12 @@ func (r *Robot) AddFix(fx Fix) Result {
 	if err != nil {
 		return refused(err)
 	}
-	lat := r.cfg.Sensors[si].LatencyNs
-	if fx.StampNs < math.MinInt64+lat {
-		return refused(badf("stamp_ns %d less the sensor's latency_ns %d is before int64's range", fx.StampNs, lat))
+	t, err := readAt(fx.StampNs, r.cfg.Sensors[si].LatencyNs, "the sensor's latency_ns")
+	if err != nil {
+		return refused(err)
 	}
 	res := r.next()
 	id := fx.SensorID
-	t := fx.StampNs - lat
 	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
 	return r.finish(r.addMeasurement(res, &e, id))
 }

@@ -2,7 +2,6 @@ package fusion
 
 import (
 	"fmt"
-	"math"
 
 	"reckon.example/estimator"
 )
@@ -49,8 +48,8 @@ func (r *Robot) odometryHeading(res *Result, t int64, z float64) {
 	}
 	// Read imu_latency_ns before the odometry's stamp; an odometry stamp
 	// too near int64's least leaves it at the odometry's.
-	if lat := r.cfg.IMULatencyNs; t >= math.MinInt64+lat {
-		t -= lat
+	if read, err := readAt(t, r.cfg.IMULatencyNs, "imu_latency_ns"); err == nil {
+		t = read
 	}
 	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
 	var ins insertion
@@ -73,11 +72,10 @@ func (r *Robot) AddHeading(h Heading) Result {
 	if err != nil {
 		return refused(err)
 	}
-	lat := r.cfg.IMULatencyNs
-	if h.StampNs < math.MinInt64+lat {
-		return refused(badf("stamp_ns %d less imu_latency_ns %d is before int64's range", h.StampNs, lat))
+	t, err := readAt(h.StampNs, r.cfg.IMULatencyNs, "imu_latency_ns")
+	if err != nil {
+		return refused(err)
 	}
-	t := h.StampNs - lat // read at t (imu_latency_ns)
 	res := r.next()
 	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
 	return r.finish(r.addMeasurement(res, &e, imuSensor))

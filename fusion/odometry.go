@@ -41,9 +41,12 @@ func finiteAll(v ...float64) bool {
 const maxAngleRad = 1e6
 
 // anglesOK reports whether every v is finite and within maxAngleRad.
-func anglesOK(v ...float64) bool {
+func anglesOK(v ...float64) bool { return within(maxAngleRad, v) }
+
+// within reports whether every v is finite and within limit of 0.
+func within(limit float64, v []float64) bool {
 	for _, x := range v {
-		if !(math.Abs(x) <= maxAngleRad) {
+		if !(math.Abs(x) <= limit) {
 			return false
 		}
 	}
@@ -61,13 +64,17 @@ func anglesOK(v ...float64) bool {
 const maxFieldM = 1e8
 
 // lengthsOK reports whether every v is finite and within maxFieldM of 0.
-func lengthsOK(v ...float64) bool {
-	for _, x := range v {
-		if !(math.Abs(x) <= maxFieldM) {
-			return false
-		}
+func lengthsOK(v ...float64) bool { return within(maxFieldM, v) }
+
+// readAt returns the stamp at which a sample stamped stampNs by a source
+// that stamps latencyNs (at least 0) after it reads was read; an error
+// when that lies before int64's range (a stamp near its least, which the
+// subtraction would wrap to one some 292 years ahead).
+func readAt(stampNs, latencyNs int64, field string) (int64, error) {
+	if stampNs < math.MinInt64+latencyNs {
+		return 0, badf("stamp_ns %d less %s %d is before int64's range", stampNs, field, latencyNs)
 	}
-	return true
+	return stampNs - latencyNs, nil
 }
 
 func badf(format string, args ...any) error {

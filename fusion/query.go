@@ -67,10 +67,10 @@ func (r *Robot) PoseAt(stampNs int64) (FusedPose, error) {
 		return FusedPose{}, fmt.Errorf("%w: stamp_ns %d is before the window start %d", ErrTooOld, stampNs, r.baseT)
 	}
 	if stampNs > r.newest {
-		if d := nsAfter(stampNs, r.newest); d > uint64(r.cfg.MaxExtrapolationNs) {
-			return FusedPose{}, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_extrapolation_ns %d)", ErrTooFarAhead, stampNs, float64(d)*1e-9, r.cfg.MaxExtrapolationNs)
+		ahead := nsAfter(stampNs, r.newest)
+		if ahead > uint64(r.cfg.MaxExtrapolationNs) {
+			return FusedPose{}, fmt.Errorf("%w: stamp_ns %d is %.3f s past the newest odometry (max_extrapolation_ns %d)", ErrTooFarAhead, stampNs, float64(ahead)*1e-9, r.cfg.MaxExtrapolationNs)
 		}
-		ahead := stampNs - r.newest
 		st := r.f.State()
 		r.scratch.SetState(&st)
 		v := r.velocity()

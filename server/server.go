@@ -170,7 +170,7 @@ func New(opt Options) (*Server, error) {
 			return nil, err
 		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
 		// each journal syncs by itself as elsewhere.
@@ -401,9 +401,6 @@ func (s *Server) reserve(ctx context.Context, name string) (done chan struct{}, 
 		return nil, status.Errorf(codes.ResourceExhausted, "robot_id: the service already has %d robots, the limit (-max-robots)", n)
 	}
 	done = make(chan struct{})
-	if s.busy == nil {
-		s.busy = map[string]chan struct{}{}
-	}
 	s.busy[name] = done
 	s.making++
 	return done, nil
@@ -490,9 +487,6 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	s.opt.Metrics.robots(len(s.robots))
 	// A create of the name waits until the journal is set aside.
 	done := make(chan struct{})
-	if s.busy == nil {
-		s.busy = map[string]chan struct{}{}
-	}
 	s.busy[r.name] = done
 	s.mu.Unlock()
 	defer close(done)

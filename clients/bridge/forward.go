@@ -32,8 +32,6 @@ type Summary struct {
 	// Reconnects counts the streams opened again after the service ended
 	// one, and Dropped the samples decoded while none was open (Reconnect).
 	Reconnects, Dropped int
-
-	lastSession sessionMark
 }
 
 // maxReasons is how many refusal reasons a Summary keeps.
@@ -81,7 +79,10 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	for _, f := range opts {
 		f(&o)
 	}
-	sum := Summary{Verdicts: map[pb.Verdict]int{}, lastSession: sessionMark{sess.ID(), sess.Last()}}
+	sum := Summary{Verdicts: map[pb.Verdict]int{}}
+	// The session a reopened stream continues, and the client sequence of
+	// the last sample sent on it.
+	id, lastSeq := sess.ID(), sess.Last()
 	var mu sync.Mutex // protects sum.Verdicts and sum.Reasons
 	// listen receives s's verdicts until its stream ends, and then sends
 	// the stream's error (nil at its normal end) on the channel it returns.
@@ -129,15 +130,14 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		}
 		octx, cancel := context.WithTimeout(ctx, reopenWait)
 		defer cancel()
-		last := sum.lastSession
-		s, err := o.reopen(octx, last.id, last.seq)
+		s, err := o.reopen(octx, id, lastSeq)
 		if err != nil {
 			retryAt, pause = time.Now().Add(pause), min(2*pause, reopenMost)
 			return false
 		}
 		sess, ended = s, listen(s)
 		sum.Reconnects++
-		fmt.Fprintf(o.log, "the stream is open again (session %s); %d samples dropped while it was not\n", last.id, sum.Dropped)
+		fmt.Fprintf(o.log, "the stream is open again (session %s); %d samples dropped while it was not\n", id, sum.Dropped)
 		return true
 	}
 
@@ -163,7 +163,7 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 				sum.Dropped++
 				continue
 			}
-			sum.lastSession = sessionMark{sess.ID(), sess.Last()}
+			lastSeq = sess.Last()
 			sum.Sent++
 		}
 		switch {
@@ -193,13 +193,6 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		return sum, readErr
 	}
 	return sum, err
-}
-
-// sessionMark is the session and the client sequence of the last sample
-// sent, from which Reconnect continues.
-type sessionMark struct {
-	id  string
-	seq uint64
 }
 
 // tally counts one response's verdict and resolutions into sum.

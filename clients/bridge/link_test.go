@@ -84,24 +84,43 @@ func lossy(seed uint64) (out [][]byte, lost, flipped int) {
 // service starts a real server on loopback and returns a client of it.
 func service(t *testing.T) *client.Client {
 	t.Helper()
+	addr, stop := serveAt(t, "127.0.0.1:0", t.TempDir())
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { c.Close(); stop() })
+	createCarts(t, c)
+	return c
+}
+
+// serveAt runs the service on listen with its journal in dir until stop.
+func serveAt(t *testing.T, listen, dir string) (addr string, stop func()) {
+	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	ready := make(chan string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- daemon.Serve(ctx, daemon.Config{Listen: "127.0.0.1:0", Ready: func(a, _ string) { ready <- a },
-			Options: server.Options{JournalDir: t.TempDir(), Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+		done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Ready: func(a, _ string) { ready <- a }, ShutdownGrace: 100 * time.Millisecond,
+			Options: server.Options{JournalDir: dir, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
 	}()
-	var addr string
 	select {
 	case addr = <-ready:
 	case err := <-done:
 		t.Fatalf("server: %v", err)
 	}
-	c, err := client.Dial(addr, client.Options{})
-	if err != nil {
-		t.Fatal(err)
+	return addr, func() {
+		cancel()
+		if err := <-done; err != nil {
+			t.Errorf("serve: %v", err)
+		}
 	}
-	t.Cleanup(func() { c.Close(); cancel(); <-done })
+}
+
+// createCarts creates robots/clean and robots/link from
+// testdata/robots/free-wheel-turn.yaml.
+func createCarts(t *testing.T, c *client.Client) {
+	t.Helper()
 	b, err := os.ReadFile("../../testdata/robots/free-wheel-turn.yaml")
 	if err != nil {
 		t.Fatal(err)
@@ -122,7 +141,6 @@ func service(t *testing.T) *client.Client {
 			t.Fatal(err)
 		}
 	}
-	return c
 }
 
 // cleanPose feeds the cart's frames, decoded from a clean stream, to

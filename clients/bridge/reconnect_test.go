@@ -3,17 +3,12 @@ package bridge
 import (
 	"context"
 	"io"
-	"log/slog"
 	"math"
-	"os"
 	"sync"
 	"testing"
 	"time"
 
 	"reckon.example/clients/client"
-	"reckon.example/server"
-	"reckon.example/server/convert"
-	"reckon.example/server/daemon"
 )
 
 // lockedWriter serialises the writes of Forward's two goroutines.
@@ -38,48 +33,13 @@ func (w *lockedWriter) Write(p []byte) (int, error) {
 // in link). Before, the link ended at the first frame after the stop.
 func TestLinkReconnects(t *testing.T) {
 	dir := t.TempDir()
-	serve := func(listen string) (addr string, stop func()) {
-		ctx, cancel := context.WithCancel(context.Background())
-		ready := make(chan string, 1)
-		done := make(chan error, 1)
-		go func() {
-			done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Ready: func(a, _ string) { ready <- a }, ShutdownGrace: 100 * time.Millisecond,
-				Options: server.Options{JournalDir: dir, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
-		}()
-		select {
-		case addr = <-ready:
-		case err := <-done:
-			t.Fatalf("server: %v", err)
-		}
-		return addr, func() {
-			cancel()
-			if err := <-done; err != nil {
-				t.Errorf("serve: %v", err)
-			}
-		}
-	}
-	addr, stop := serve("127.0.0.1:0")
+	addr, stop := serveAt(t, "127.0.0.1:0", dir)
 	c, err := client.Dial(addr, client.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}
 	defer c.Close()
-	b, err := os.ReadFile("../../testdata/robots/free-wheel-turn.yaml")
-	if err != nil {
-		t.Fatal(err)
-	}
-	cfg, _, err := convert.LoadConfigYAML(b)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, w := range cfg.GetWheels() {
-		w.CounterBits = 32
-	}
-	for _, id := range []string{"clean", "link"} {
-		if _, err := c.CreateRobot(context.Background(), id, cfg); err != nil {
-			t.Fatal(err)
-		}
-	}
+	createCarts(t, c)
 	want, lastNs := cleanPose(t, c)
 
 	sessCtx, endSess := context.WithCancel(context.Background())
@@ -131,7 +91,7 @@ func TestLinkReconnects(t *testing.T) {
 	waitFor(stampOf(599))
 	stop()
 	send(600, 700) // the service is away
-	_, stop = serve(addr)
+	_, stop = serveAt(t, addr, dir)
 	defer stop()
 	// Frames until the link is through again.
 	k := 700

@@ -103,12 +103,12 @@ func chooseModel(cfg fusion.Config, inputs []RecordedInput) (fusion.Config, []Mo
 		// (noise.imu_offset_var_rad2_per_rad, "Design: Process noise"):
 		// the walk of a gyro 0.1%, 0.3% or 1% off in scale, at the
 		// covariances the sensors' choice above left.
-		ll0 := p.configLogLik(cfg)
+		ll0 := p.configLogLik(cfg, nil)
 		best, bestLL := 0.0, ll0
 		for _, q := range gyroScaleCandidates {
 			c := cfg
 			c.Noise.IMUOffsetVarRad2PerRad = q
-			if ll := p.configLogLik(c) - aicPenalty; ll > bestLL {
+			if ll := p.configLogLik(c, nil) - aicPenalty; ll > bestLL {
 				best, bestLL = q, ll
 			}
 		}
@@ -154,12 +154,15 @@ func g(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
 // within a few tenths of a percent).
 var gyroScaleCandidates = []float64{1e-6, 1e-5, 1e-4}
 
-// configLogLik is the log-likelihood of the run's innovations under cfg, each
-// sensor's covariance as configured (-inf if the replay fails).
-func (p *replayer) configLogLik(cfg fusion.Config) float64 {
-	scale := make([]float64, len(cfg.Sensors))
-	for j := range scale {
-		scale[j] = 1
+// configLogLik is the log-likelihood of the run's innovations under cfg,
+// each sensor i's covariance taken scale[i] times as the fixes carry it
+// (nil: as they carry it), at the fit's gate (-inf if the replay fails).
+func (p *replayer) configLogLik(cfg fusion.Config, scale []float64) float64 {
+	if scale == nil {
+		scale = make([]float64, len(cfg.Sensors))
+		for j := range scale {
+			scale[j] = 1
+		}
 	}
 	cfg.GateProbability = fitGateProbability
 	var sum float64
@@ -249,16 +252,8 @@ func (p *replayer) profile(cfg fusion.Config, i int) (ll, k float64, replays int
 				*v *= f
 			}
 		}
-		c.GateProbability = fitGateProbability
 		replays++
-		var sum float64
-		err := p.runConfig(c, scale, func(in *fusion.Innovation, nu float64) {
-			sum += innovationLogLik(in.Outcome.NIS, in.Outcome.LogDetS, in.Outcome.Dim, nu)
-		})
-		if err != nil {
-			return math.Inf(-1)
-		}
-		return sum
+		return p.configLogLik(c, scale)
 	}
 	const h = 0.5
 	y, best := 0.0, at(0)

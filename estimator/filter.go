@@ -612,6 +612,10 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 		return out, err
 	}
 	f.r = m.R
+	if m.LandmarkVar > 0 && m.LandmarkError == 0 {
+		f.addLandmarkVar(m, d)
+	}
+	r0 := f.r
 	if err := f.innovationCovariance(d); err != nil {
 		return out, fmt.Errorf("innovation covariance of %s: %w", m.Kind, err)
 	}
@@ -628,8 +632,8 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 		// S = H P H^T + R / w: only the noise term changes.
 		for i := 0; i < d; i++ {
 			for j := 0; j < d; j++ {
-				f.r[i*3+j] = m.R[i*3+j] / out.Weight
-				f.s[i*3+j] += f.r[i*3+j] - m.R[i*3+j]
+				f.r[i*3+j] = r0[i*3+j] / out.Weight
+				f.s[i*3+j] += f.r[i*3+j] - r0[i*3+j]
 			}
 		}
 		if !cholesky(f.s[:], f.l[:], d, measStride) {
@@ -724,6 +728,22 @@ func (f *Filter) innovation(m *Measurement, v *[3]float64) error {
 		}
 	}
 	return nil
+}
+
+// addLandmarkVar adds to f.r the landmark's survey error, m.LandmarkVar
+// in each axis, through the measurement's Jacobian in the landmark's
+// position, which is minus its Jacobian in the robot's (f.h's first two
+// columns, just formed): J v J^T, as white noise of this fix alone.
+func (f *Filter) addLandmarkVar(m *Measurement, d int) {
+	if m.Kind != KindRangeBearing && m.Kind != KindRange && m.Kind != KindBearing {
+		return
+	}
+	for i := 0; i < d; i++ {
+		for j := 0; j < d; j++ {
+			hi, hj := f.h[i*stride:i*stride+2], f.h[j*stride:j*stride+2]
+			f.r[i*3+j] += m.LandmarkVar * (hi[0]*hj[0] + hi[1]*hj[1])
+		}
+	}
 }
 
 // innovationCovariance forms P H^T in f.k (n x d, stride 3, until the gain
@@ -942,6 +962,38 @@ func (f *Filter) CorrelateBias(bias [3]int, j *[9]float64) error {
 		f.st.CopyFrom(&f.saved)
 		return fmt.Errorf("pose correlated with its fix's bias: %w", ErrNotPositiveDefinite)
 	}
+	return nil
+}
+
+// SeedBlock gives the two states from at (a landmark block) to another
+// landmark: their mean 0 and their covariance c (2x2 row-major), and no
+// correlation with any other state. It forgets the landmark before
+// exactly as a Gaussian marginal does, dropping its rows and columns, and
+// adds the new one independent of everything the estimate holds: its
+// survey error is (DEVELOPERS.md, "Design: Landmark survey error"). It
+// panics with ErrShape unless the block lies past the pose within Size().
+func (s *State) SeedBlock(at int, c *[4]float64) {
+	n := s.n
+	if at < 3 || at+2 > n {
+		panic(fmt.Errorf("%w: landmark block at %d of a %d-state estimate", ErrShape, at, n))
+	}
+	for i := at; i < at+2; i++ {
+		s.x[i] = 0
+		for j := 0; j < n; j++ {
+			s.p[i*stride+j], s.p[j*stride+i] = 0, 0
+		}
+	}
+	s.p[at*stride+at], s.p[at*stride+at+1] = c[0], c[1]
+	s.p[(at+1)*stride+at], s.p[(at+1)*stride+at+1] = c[2], c[3]
+}
+
+// SeedBlock is State.SeedBlock on the filter's estimate; it returns an
+// error, and changes nothing, unless c is a valid covariance.
+func (f *Filter) SeedBlock(at int, c *[4]float64) error {
+	if err := CheckCovariance(c[:], 2); err != nil {
+		return fmt.Errorf("landmark block: %w", err)
+	}
+	f.st.SeedBlock(at, c)
 	return nil
 }
 

@@ -12,8 +12,9 @@ import (
 )
 
 // testLayout returns the layout of the test filters of size n: 3 (pose),
-// 4 (with the IMU offset), 7 (with odometry scales and a heading-rate bias)
-// or 12 (and bias blocks of a pose sensor and a landmark sensor).
+// 4 (with the IMU offset), 7 (with odometry scales and a heading-rate bias),
+// 9 (the IMU offset, a mount block and a landmark block) or 12 (and bias
+// blocks of a pose sensor and a landmark sensor).
 func testLayout(n int) Layout {
 	switch n {
 	case 3:
@@ -22,6 +23,11 @@ func testLayout(n int) Layout {
 		return MustLayout(LayoutSpec{IMUOffset: true})
 	case 7:
 		return MustLayout(LayoutSpec{IMUOffset: true, OdometryScale: true, RateBias: true})
+	case 9:
+		return MustLayout(LayoutSpec{IMUOffset: true, Biases: []BiasSpec{
+			{Dim: 3, Mount: true, Cov: [9]float64{1e-4, 0, 0, 0, 1e-4, 0, 0, 0, 1e-3}},
+			{Dim: 2, Landmark: true, Cov: [9]float64{9e-4, 0, 0, 0, 9e-4}},
+		}})
 	case 12:
 		return MustLayout(LayoutSpec{IMUOffset: true, OdometryScale: true, RateBias: true, Biases: []BiasSpec{
 			{Dim: 3, TauS: 1.5, Cov: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}},
@@ -289,6 +295,10 @@ func conformanceCases(rng *rand.Rand) []conformanceCase {
 			m.MountError = 4
 			out = append(out, conformanceCase{7, m})
 		}
+		if m.Kind == KindRangeBearing || m.Kind == KindRange || m.Kind == KindBearing {
+			m.MountError, m.LandmarkError = 4, 7
+			out = append(out, conformanceCase{9, m})
+		}
 	}
 	return out
 }
@@ -304,6 +314,9 @@ func TestMeasurementConformance(t *testing.T) {
 		name := fmt.Sprintf("%s/%d", m.Kind, n)
 		if m.MountError > 0 {
 			name += "/mount-error"
+		}
+		if m.LandmarkError > 0 {
+			name += "/landmark-error"
 		}
 		t.Run(name, func(t *testing.T) {
 			for trial := 0; trial < 10; trial++ {

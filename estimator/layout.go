@@ -30,12 +30,15 @@ const maxBlocks = MaxStates - 4
 // that stay constant (TauS is ignored), with prior covariance Cov; a
 // measurement names it in Measurement.MountError.
 type BiasSpec struct {
-	// Dim is the block's size, 1 to 3 (3 for a mount block).
+	// Dim is the block's size, 1 to 3 (3 for a mount block, 2 for a
+	// landmark block).
 	Dim int
 	// TauS is the correlation time in seconds (> 0).
 	TauS float64
 	// Mount makes the block a mount block.
 	Mount bool
+	// Landmark makes the block a landmark block.
+	Landmark bool
 	// Cov is the stationary covariance, Dim x Dim row-major with stride 3,
 	// in the units of the measurement's components (m^2, rad^2).
 	Cov [9]float64
@@ -105,6 +108,11 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 				return Layout{}, fmt.Errorf("%w: mount block %d of size %d, not 3", ErrShape, k, b.Dim)
 			}
 			b.TauS = math.Inf(1) // constant: exp(-dt/tau) = 1, no noise added
+		} else if b.Landmark {
+			if b.Dim != 2 {
+				return Layout{}, fmt.Errorf("%w: landmark block %d of size %d, not 2", ErrShape, k, b.Dim)
+			}
+			b.TauS = math.Inf(1)
 		} else if !(b.TauS > 0) || math.IsInf(b.TauS, 0) {
 			return Layout{}, fmt.Errorf("bias block %d: correlation time %v s must be positive and finite", k, b.TauS)
 		}
@@ -153,6 +161,9 @@ func (l *Layout) Biases() int { return l.nb }
 
 // Bias returns the index of the first state of bias block k and its size.
 func (l *Layout) Bias(k int) (at, dim int) { return l.blocks[k].at, l.blocks[k].Dim }
+
+// IsLandmark reports whether bias block k is a landmark block.
+func (l *Layout) IsLandmark(k int) bool { return l.blocks[k].Landmark }
 
 // Angles returns the set of angular states, which are wrapped: bit i set
 // for state i (heading, and the IMU offset when present).

@@ -102,6 +102,17 @@ type Measurement struct {
 	// for none: the measurement is taken from the mount Mount plus those
 	// states.
 	MountError int
+	// LandmarkError is the index of the first of two states holding the
+	// survey error of the landmark's position (x, y; a landmark block of
+	// the layout), or 0 for none: the range and bearing kinds measure from
+	// LandmarkX, LandmarkY plus those states.
+	LandmarkError int
+	// LandmarkVar, when LandmarkError is 0, is the variance of the
+	// landmark's survey error in each axis (m^2), which the update adds to
+	// R through the measurement's Jacobian in the landmark's position: the
+	// survey error as white noise of this fix alone, for a landmark no
+	// block of the state stands for.
+	LandmarkVar float64
 	// Robust is the robust weighting of the update (the zero value: none).
 	Robust Robust
 	// Hold marks states (bit i for state i) that this update leaves where
@@ -158,8 +169,16 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 			H[me+2] = 1
 		}
 	case KindRangeBearing, KindRange, KindBearing:
-		dx := m.LandmarkX - (x[0] + ct*mx - st*my)
-		dy := m.LandmarkY - (x[1] + st*mx + ct*my)
+		lx, ly := m.LandmarkX, m.LandmarkY
+		le := m.LandmarkError
+		if le > 0 {
+			if le+2 > n {
+				panic(fmt.Errorf("%w: landmark error states at %d of a %d-state filter", ErrShape, le, n))
+			}
+			lx, ly = lx+x[le], ly+x[le+1]
+		}
+		dx := lx - (x[0] + ct*mx - st*my)
+		dy := ly - (x[1] + st*mx + ct*my)
 		r2 := dx*dx + dy*dy
 		if r2 < 1e-12 {
 			return ErrDegenerate
@@ -173,6 +192,10 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 				// The sensor moves by R(th) (dmx, dmy).
 				H[me], H[me+1] = -(dx*ct+dy*st)/r, (dx*st-dy*ct)/r
 			}
+			if le > 0 {
+				// The landmark moves the other way round from the sensor.
+				H[le], H[le+1] = dx/r, dy/r
+			}
 			row = 1
 		}
 		if m.Kind != KindRange {
@@ -184,6 +207,10 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 				H[row*stride+me] = (dy*ct - dx*st) / r2
 				H[row*stride+me+1] = -(dy*st + dx*ct) / r2
 				H[row*stride+me+2] = -1
+			}
+			if le > 0 {
+				H[row*stride+le] = -dy / r2
+				H[row*stride+le+1] = dx / r2
 			}
 		}
 	case KindIMUHeading:

@@ -5,7 +5,9 @@ import (
 	"math/rand/v2"
 	"testing"
 
+	"gonum.org/v1/gonum/diff/fd"
 	"gonum.org/v1/gonum/integrate/quad"
+	"gonum.org/v1/gonum/mat"
 )
 
 // TestGaussMarkovSteadyState: a heading that is a random walk (variance q
@@ -179,5 +181,116 @@ func TestRobustWeights(t *testing.T) {
 	w := k / math.Sqrt(nis)
 	if want := 0.01 / (0.01 + 0.01/w) * 0.5; math.Abs(f.Pose().Heading-want) > 1e-15 || math.Abs(out.NIS-nis) > 1e-12 {
 		t.Errorf("heading %g (NIS %g), want %g (NIS %g)", f.Pose().Heading, out.NIS, want, nis)
+	}
+}
+
+// TestLandmarkVarIsWhiteNoise: a landmark's survey variance carried as
+// white noise of one fix (LandmarkVar) updates exactly as the same fix with
+// R + v J J^T, J the measurement's Jacobian in the landmark's position,
+// which is minus its Jacobian in the robot's (closed form: h depends on the
+// landmark and the robot only through their difference).
+func TestLandmarkVarIsWhiteNoise(t *testing.T) {
+	rng := rand.New(rand.NewPCG(21, 4))
+	for _, kind := range []Kind{KindRangeBearing, KindRange, KindBearing} {
+		for trial := 0; trial < 20; trial++ {
+			f := randomFilter(t, rng, 4)
+			g := *f
+			m := Measurement{Kind: kind, Mount: Pose{X: 0.1, Y: -0.05, Heading: 0.2}, LandmarkX: 3 + rng.Float64(), LandmarkY: -2 + rng.Float64()}
+			d := kind.Dim()
+			for i := 0; i < d; i++ {
+				m.R[i*3+i] = 0.01 + 0.01*rng.Float64()
+			}
+			st := f.State()
+			z0, _, err := m.Predicted(st.x[:4])
+			if err != nil {
+				t.Fatal(err)
+			}
+			// J from finite differences of h in the landmark's position
+			// (gonum diff/fd), independent of the filter's Jacobian.
+			J := mat.NewDense(d, 2, nil)
+			fd.Jacobian(J, func(dst, l []float64) {
+				mm := m
+				mm.LandmarkX, mm.LandmarkY = l[0], l[1]
+				z, _, _ := mm.Predicted(st.x[:4])
+				for i := range dst {
+					dst[i] = z0[i] + Wrap(z[i]-z0[i])
+				}
+			}, []float64{m.LandmarkX, m.LandmarkY}, &fd.JacobianSettings{Formula: fd.Central})
+			for i := 0; i < d; i++ {
+				m.Z[i] = z0[i] + 0.03*rng.NormFloat64()
+			}
+			const v = 0.0009
+			white := m
+			for i := 0; i < d; i++ {
+				for j := 0; j < d; j++ {
+					white.R[i*3+j] += v * (J.At(i, 0)*J.At(j, 0) + J.At(i, 1)*J.At(j, 1))
+				}
+			}
+			m.LandmarkVar = v
+			a, err := f.Update(&m, NoGate())
+			if err != nil {
+				t.Fatal(err)
+			}
+			b, err := g.Update(&white, NoGate())
+			if err != nil {
+				t.Fatal(err)
+			}
+			if math.Abs(a.NIS-b.NIS) > 1e-6*(1+b.NIS) {
+				t.Fatalf("%s trial %d: NIS %v with LandmarkVar, %v with R inflated by hand", kind, trial, a.NIS, b.NIS)
+			}
+			sa, sb := f.State(), g.State()
+			for i := 0; i < 4; i++ {
+				if math.Abs(sa.MeanAt(i)-sb.MeanAt(i)) > 1e-8 {
+					t.Fatalf("%s trial %d: mean %d %v against %v", kind, trial, i, sa.MeanAt(i), sb.MeanAt(i))
+				}
+				for j := 0; j < 4; j++ {
+					if math.Abs(sa.At(i, j)-sb.At(i, j)) > 1e-8*(1+math.Abs(sb.At(i, j))) {
+						t.Fatalf("%s trial %d: P[%d,%d] %v against %v", kind, trial, i, j, sa.At(i, j), sb.At(i, j))
+					}
+				}
+			}
+		}
+	}
+}
+
+// TestSeedBlockMarginalises: giving a landmark block to another landmark
+// leaves the covariance of every other state as it was (the Gaussian
+// marginal of the rest; Bar-Shalom, Li and Kirubarajan, 2001, section
+// 1.4.14, from memory), and the block at its new prior, uncorrelated.
+func TestSeedBlockMarginalises(t *testing.T) {
+	rng := rand.New(rand.NewPCG(3, 17))
+	for trial := 0; trial < 20; trial++ {
+		f := randomFilter(t, rng, 9)
+		before := f.State()
+		c := [4]float64{0.04, 0.01, 0.01, 0.09}
+		if err := f.SeedBlock(7, &c); err != nil {
+			t.Fatal(err)
+		}
+		after := f.State()
+		for i := 0; i < 9; i++ {
+			for j := 0; j < 9; j++ {
+				inI, inJ := i == 7 || i == 8, j == 7 || j == 8
+				want := before.At(i, j)
+				switch {
+				case inI && inJ:
+					want = c[(i-7)*2+j-7]
+				case inI || inJ:
+					want = 0
+				}
+				if after.At(i, j) != want {
+					t.Fatalf("trial %d: P[%d,%d] = %v, want %v", trial, i, j, after.At(i, j), want)
+				}
+			}
+		}
+		if after.MeanAt(7) != 0 || after.MeanAt(8) != 0 {
+			t.Fatalf("trial %d: block mean %v %v, want 0", trial, after.MeanAt(7), after.MeanAt(8))
+		}
+		if err := CheckCovariance(stateDense(&after).RawMatrix().Data, 9); err != nil {
+			t.Fatalf("trial %d: %v", trial, err)
+		}
+		bad := [4]float64{0.04, 0.1, 0.1, 0.09}
+		if err := f.SeedBlock(7, &bad); err == nil {
+			t.Fatalf("a non-positive-definite prior was taken")
+		}
 	}
 }

@@ -15,7 +15,7 @@ type cpSlot struct {
 
 // slotData returns the packed estimate of slot s (from 1).
 func (r *Robot) slotData(s int32) []float64 {
-	k := r.f.PackedSize()
+	k := r.cpSize
 	return r.cps[int(s-1)*k : int(s)*k]
 }
 
@@ -26,8 +26,8 @@ func (r *Robot) newSlot() int32 {
 		r.cpFree = r.cpFree[:n-1]
 		return s
 	}
-	r.cps = append(r.cps, make([]float64, r.f.PackedSize())...)
-	return int32(len(r.cps) / r.f.PackedSize())
+	r.cps = append(r.cps, make([]float64, r.cpSize)...)
+	return int32(len(r.cps) / r.cpSize)
 }
 
 // freeSlot gives back the slot of c, if it has one.
@@ -44,13 +44,21 @@ func (r *Robot) storeCheckpoint(c *cpSlot) {
 	if c.Slot == 0 {
 		c.Slot = r.newSlot()
 	}
-	r.f.Pack(r.slotData(c.Slot))
+	d := r.slotData(c.Slot)
+	r.f.Pack(d)
+	if len(r.lmAt) > 0 {
+		packTable(d[len(d)-lmWords:], &r.lm)
+	}
 	c.offsetReady = r.ready
 }
 
 // loadCheckpoint sets the filter to c's estimate.
 func (r *Robot) loadCheckpoint(c *cpSlot) {
-	r.f.Unpack(r.slotData(c.Slot))
+	d := r.slotData(c.Slot)
+	r.f.Unpack(d)
+	if len(r.lmAt) > 0 {
+		unpackTable(&r.lm, d[len(d)-lmWords:])
+	}
 	r.ready = c.offsetReady
 }
 
@@ -66,6 +74,11 @@ func (r *Robot) checkpointOf(c *cpSlot) checkpoint {
 // copying only the states in use.
 func (r *Robot) loadInto(cp *checkpoint, c *cpSlot) {
 	cp.offsetReady = c.offsetReady
+	cp.lm = lmTable{}
+	if c.Slot != 0 && len(r.lmAt) > 0 {
+		d := r.slotData(c.Slot)
+		unpackTable(&cp.lm, d[len(d)-lmWords:])
+	}
 	r.loadEst(&cp.est, c)
 }
 
@@ -76,7 +89,7 @@ func (r *Robot) loadEst(dst *estimator.State, c *cpSlot) {
 		*dst = estimator.State{}
 		return
 	}
-	dst.SetPacked(r.n, r.layout.Angles(), r.slotData(c.Slot))
+	dst.SetPacked(r.n, r.layout.Angles(), r.slotData(c.Slot)[:r.f.PackedSize()])
 }
 
 // setCheckpoint stores the checkpoint cp (of the robot's state size, or
@@ -92,8 +105,11 @@ func (r *Robot) setCheckpoint(c *cpSlot, cp *checkpoint) {
 	d := r.slotData(c.Slot)
 	cp.est.MeanInto(d[:r.n])
 	cp.est.CovarianceInto(d[r.n:])
-	if k := r.n + r.n*r.n; len(d) > k {
+	if k := r.n + r.n*r.n; r.f.PackedSize() > k {
 		m := cp.est.EIV()
 		copy(d[k:], m[:])
+	}
+	if len(r.lmAt) > 0 {
+		packTable(d[len(d)-lmWords:], &cp.lm)
 	}
 }

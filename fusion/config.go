@@ -146,6 +146,9 @@ type TrustLimits struct {
 type Landmark struct {
 	ID     string
 	XM, YM float64
+	// PositionStdM is the standard deviation of the surveyed position's
+	// error in each axis, metres (0: Config.LandmarkPositionStdM).
+	PositionStdM float64
 }
 
 // Config is one robot's configuration. The zero value of every field except
@@ -196,6 +199,12 @@ type Config struct {
 	StartPose estimator.Pose
 	StartCov  []float64
 	Landmarks []Landmark
+	// LandmarkPositionStdM is the survey error of the landmarks' positions
+	// (standard deviation in each axis, metres) for those without their
+	// own; 0 takes the map as exact. Above 0, landmark fixes carry it in
+	// landmark blocks of the state (DEVELOPERS.md, "Design: Landmark survey
+	// error").
+	LandmarkPositionStdM float64
 	// Sensors are the sources of fixes, at most MaxSensors; a fix must
 	// name one (DEVELOPERS.md, "Design: Sensors").
 	Sensors []Sensor
@@ -476,6 +485,12 @@ func (c *Config) checkLandmarks() error {
 		if !finiteAll(l.XM, l.YM) {
 			return cfgErr(f, "position must be finite")
 		}
+		if !(l.PositionStdM >= 0 && l.PositionStdM <= maxLandmarkStdM) {
+			return cfgErr(f+".position_std_m", "%v must be in [0, %g] m", l.PositionStdM, maxLandmarkStdM)
+		}
+	}
+	if v := c.LandmarkPositionStdM; !(v >= 0 && v <= maxLandmarkStdM) {
+		return cfgErr("landmark_position_std_m", "%v must be in [0, %g] m", v, maxLandmarkStdM)
 	}
 	return nil
 }

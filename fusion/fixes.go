@@ -140,6 +140,9 @@ func (r *Robot) applyMeas(e *entry) error {
 		return r.initOffset(e)
 	}
 	e.meas.Hold = r.scaleHold()
+	if err := r.landmarkBlock(e); err != nil {
+		return err
+	}
 	var err error
 	e.out, err = r.f.Update(&e.meas, r.gateFor(e))
 	return err
@@ -202,7 +205,7 @@ func (r *Robot) landmarkMeasurement(f *Fix, m *estimator.Measurement) error {
 	if !ok {
 		return fmt.Errorf("%w: landmark_id %q is not in the robot's landmark map", ErrUnknownLandmark, f.LandmarkID)
 	}
-	m.LandmarkX, m.LandmarkY = l[0], l[1]
+	m.LandmarkX, m.LandmarkY = l.xy[0], l.xy[1]
 	switch {
 	case f.RangeM != nil && f.BearingRad != nil:
 		m.Kind = estimator.KindRangeBearing
@@ -242,5 +245,8 @@ func (r *Robot) AddFix(fx Fix) Result {
 	res := r.next()
 	id := fx.SensorID
 	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
+	if fx.Kind == FixLandmark {
+		e.lm = r.landmarks[fx.LandmarkID].id
+	}
 	return r.finish(r.addMeasurement(res, &e, id))
 }

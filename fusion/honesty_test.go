@@ -59,6 +59,8 @@ func honestyCases() []honestyCase {
 		{name: "gyro-scale", sc: pose(fusiontest.Errors{GyroScale: 0.02}), conservative: true},
 		// An IMU stamped 40 ms after it read its heading.
 		{name: "imu-late", sc: pose(fusiontest.Errors{IMUStampLateNs: 40e6})},
+		// Markers 3 cm off the map in each axis (placed by tape measure).
+		{name: "landmark-survey", sc: landmarks(fusiontest.DriveWheelTurn, fusiontest.Errors{LandmarkSurveyM: 0.03})},
 	}
 }
 

@@ -31,6 +31,22 @@ func allOptions(cfg fusion.Config) fusion.Config {
 	return cfg
 }
 
+// surveyed returns cfg with the markers' survey error (3 cm) and a camera
+// whose errors are half correlated, Student-t weighted: landmark blocks in
+// what room the state leaves (3 blocks beside an IMU offset and the
+// camera's bias block; 1 with the odometry scales and the rate bias too).
+func surveyed(cfg fusion.Config, calibration bool) fusion.Config {
+	cfg.LandmarkPositionStdM = 0.03
+	cfg.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+	cam := &cfg.Sensors[0]
+	cam.CorrelationTimeS, cam.CorrelatedFraction, cam.Robust = 1.5, 0.5, fusion.RobustStudentT
+	if calibration {
+		cfg.Calibration = fusion.Calibration{Scale: true, ForwardScaleVarPerM: 1e-6, TurnScaleVarPerRad: 1e-6,
+			RateBias: true, RateBiasVarRad2PerS3: 1e-8}
+	}
+	return cfg
+}
+
 // runOdometry feeds only the odometry of a scenario and returns the robot.
 func runOdometry(t *testing.T, sc fusiontest.Scenario, options bool) *fusion.Robot {
 	t.Helper()
@@ -156,18 +172,27 @@ func TestLateEqualsStampOrder(t *testing.T) {
 	for _, c := range []struct {
 		sc      fusiontest.Scenario
 		options bool
+		survey  bool
 	}{
-		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, false},
-		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false},
-		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false},
-		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 24, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, true},
-		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 25, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true},
-		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 26, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true},
+		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, false, false},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false, false},
+		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false, false},
+		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 24, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, true, false},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 25, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true, false},
+		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 26, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true, false},
+		// Landmark blocks: three, and one that the markers take in turns.
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 27, IMU: true, MarkerCount: 16, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30,
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, false, true},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 28, IMU: true, MarkerCount: 16, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30,
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, true, true},
 	} {
 		sc := c.sc
 		name := sc.Layout.String()
 		if c.options {
 			name += "/all-options"
+		}
+		if c.survey {
+			name += "/landmark-blocks"
 		}
 		t.Run(name, func(t *testing.T) {
 			s, arrival := collect(sc)
@@ -188,7 +213,10 @@ func TestLateEqualsStampOrder(t *testing.T) {
 				return 0
 			})
 			cfg := s.Config()
-			if c.options {
+			switch {
+			case c.survey:
+				cfg = surveyed(cfg, c.options)
+			case c.options:
 				cfg = allOptions(cfg)
 			}
 			late, err := fusion.New(cfg)

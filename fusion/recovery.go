@@ -55,8 +55,13 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady}
 	meas := e.meas
 	if landmark {
-		// Folded at each relocation, at the newest bias (relocate).
+		// Folded at each relocation, at the newest bias (relocate). The
+		// landmark's survey error goes with it as white: its block may
+		// stand for another landmark by then.
 		c.meas = meas
+		if e.lm != 0 {
+			c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
+		}
 	} else {
 		r.foldBias(&meas)
 		sensor := estimator.Pose{X: meas.Z[0], Y: meas.Z[1], Heading: meas.Z[2]}
@@ -117,8 +122,8 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 // bias (DEVELOPERS.md, "Design: Sensors") leaves h(x) and its mean leaves
 // z, and its covariance (the bias block of P, the stationary C of a
 // consider state) joins the white R, since a candidate's error is the sum
-// of both; a sensor's mount block joins R through its Jacobian the same
-// way. Without bias or mount states m is unchanged.
+// of both; a sensor's mount block and a landmark's survey error join R
+// through their Jacobians the same way. Without them m is unchanged.
 func (r *Robot) foldBias(m *estimator.Measurement) {
 	d := m.Kind.Dim()
 	st := r.f.State()
@@ -160,6 +165,33 @@ func (r *Robot) foldBias(m *estimator.Measurement) {
 			}
 		}
 		m.MountError = 0
+	}
+	if le, v := m.LandmarkError, m.LandmarkVar; le > 0 || v > 0 {
+		// The landmark's survey error (a consider block's, or white)
+		// joins R through its Jacobian, minus the robot position's.
+		x := make([]float64, r.n)
+		for i := range x {
+			x[i] = st.MeanAt(i)
+		}
+		m.LandmarkError, m.LandmarkVar = 0, 0
+		if _, h, err := m.Predicted(x); err == nil {
+			n := r.n
+			c := [4]float64{v, 0, 0, v}
+			if le > 0 {
+				c = [4]float64{st.At(le, le), st.At(le, le+1), st.At(le+1, le), st.At(le+1, le+1)}
+			}
+			for i := 0; i < d; i++ {
+				for j := 0; j < d; j++ {
+					var acc float64
+					for a := range 2 {
+						for b := range 2 {
+							acc += h[i*n+a] * c[a*2+b] * h[j*n+b]
+						}
+					}
+					m.R[i*3+j] += acc
+				}
+			}
+		}
 	}
 }
 

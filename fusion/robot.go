@@ -18,7 +18,16 @@ type Robot struct {
 	// recovery.agree_probability: how far a recovered heading may lie from
 	// the IMU's before the recovery learns the IMU offset again.
 	headingGate float64
-	landmarks   map[string][2]float64
+	landmarks   map[string]landmarkRef
+	// lmAt holds the first state of each landmark block, lm which
+	// landmark each stands for, lmVar each landmark's survey error
+	// variance (landmarks.go).
+	lmAt  []int
+	lm    lmTable
+	lmVar []float64
+	// cpSize is the length of a packed checkpoint in cps: the filter's
+	// packed estimate and, with landmark blocks, lm.
+	cpSize int
 	// sensorIndex maps a sensor id to its index in cfg.Sensors;
 	// sensorBias holds each sensor's first bias state (0: none).
 	sensorIndex map[string]int
@@ -77,7 +86,7 @@ func New(cfg Config) (*Robot, error) {
 		return nil, err
 	}
 	cfg = cfg.withDefaults()
-	r := &Robot{cfg: cfg, landmarks: map[string][2]float64{}, sensorIndex: map[string]int{}}
+	r := &Robot{cfg: cfg, landmarks: map[string]landmarkRef{}, sensorIndex: map[string]int{}}
 	for i, s := range cfg.Sensors {
 		r.sensorIndex[s.ID] = i
 	}
@@ -97,9 +106,13 @@ func New(cfg Config) (*Robot, error) {
 	if r.headingGate, err = estimator.GateThreshold(cfg.Recovery.AgreeProbability, 1); err != nil {
 		return nil, cfgErr("recovery.agree_probability", "%v", err)
 	}
-	for _, l := range cfg.Landmarks {
-		r.landmarks[l.ID] = [2]float64{l.XM, l.YM}
+	r.lmVar = make([]float64, len(cfg.Landmarks))
+	for i := range cfg.Landmarks {
+		l := &cfg.Landmarks[i]
+		r.lmVar[i] = cfg.landmarkVar(l)
+		r.landmarks[l.ID] = landmarkRef{xy: [2]float64{l.XM, l.YM}, id: int32(i + 1), var2: r.lmVar[i]}
 	}
+	r.lmAt = landmarkBlocks(&r.layout)
 	x := make([]float64, r.n)
 	p := make([]float64, r.n*r.n)
 	x[0], x[1], x[2] = cfg.StartPose.X, cfg.StartPose.Y, cfg.StartPose.Heading
@@ -114,6 +127,10 @@ func New(cfg Config) (*Robot, error) {
 		return nil, cfgErr("start_covariance", "%v", err)
 	}
 	r.scratch, _ = estimator.NewFilter(&r.layout, x, p)
+	r.cpSize = r.f.PackedSize()
+	if len(r.lmAt) > 0 {
+		r.cpSize += lmWords
+	}
 	r.base = checkpoint{est: r.f.State()}
 	r.stats.init()
 	r.trust.reasons = TrustNoOdometry
@@ -224,7 +241,7 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 func (r *Robot) start(t int64) {
 	r.started = true
 	r.baseT, r.newest = t, t
-	r.base = checkpoint{est: r.f.State(), offsetReady: r.ready}
+	r.base = checkpoint{est: r.f.State(), offsetReady: r.ready, lm: r.lm}
 }
 
 // Sequence returns the arrival sequence number of the last input taken.

@@ -317,6 +317,14 @@ func (c *Config) layoutSpec() (estimator.LayoutSpec, []int) {
 			at += b.Dim
 		}
 	}
+	// The landmark blocks come last, as many as fit (at most
+	// maxLandmarkBlocks), so that the blocks before keep their places.
+	if v := c.landmarkVarMax(); v > 0 {
+		for k := 0; k < maxLandmarkBlocks && at+2 <= estimator.MaxStates; k++ {
+			spec.Biases = append(spec.Biases, estimator.BiasSpec{Dim: 2, Landmark: true, Cov: [9]float64{v, 0, 0, 0, v}})
+			at += 2
+		}
+	}
 	return spec, first
 }
 
@@ -331,7 +339,7 @@ func (c *Config) mountStates() []int {
 		}
 	}
 	for _, b := range spec.Biases {
-		if !b.Mount {
+		if !b.Mount && !b.Landmark {
 			at += b.Dim
 		}
 	}
@@ -350,6 +358,9 @@ func (c *Config) checkState() error {
 	spec, _ := c.layoutSpec()
 	if _, err := estimator.NewLayout(spec); err != nil {
 		return cfgErr("sensors", "the state does not fit: %v (each correlated sensor adds its fix's dimension)", err)
+	}
+	if c.landmarkVarMax() > 0 && (len(spec.Biases) == 0 || !spec.Biases[len(spec.Biases)-1].Landmark) {
+		return cfgErr("landmark_position_std_m", "no room in the state for a landmark block (2 states; at most %d in all): the landmarks' survey error needs one, or set it to 0", estimator.MaxStates)
 	}
 	return nil
 }

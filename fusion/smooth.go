@@ -178,7 +178,23 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			cur.Post.CopyFrom(&cur.Pred)
 			c.open = true
 		case entMeas:
-			r.loadEst(&c.cur().Post, &e.after)
+			cur := c.cur()
+			r.loadEst(&cur.Post, &e.after)
+			if e.seeded && c.open {
+				// The landmark block stands for another landmark from
+				// here: to the smoother a new state, independent of the
+				// one before, which the step's prediction starts at its
+				// prior (the block's covariance after, which no update
+				// changes: a consider state's).
+				at := e.meas.LandmarkError
+				c4 := [4]float64{cur.Post.At(at, at), cur.Post.At(at, at+1), cur.Post.At(at+1, at), cur.Post.At(at+1, at+1)}
+				cur.Pred.SeedBlock(at, &c4)
+				for i := at; i < at+2; i++ {
+					for j := 0; j < r.n; j++ {
+						cur.F[i*estimator.MaxStates+j] = 0
+					}
+				}
+			}
 		case entReset:
 			c.emit()
 			var s estimator.State

@@ -161,14 +161,30 @@ func TestSmootherEqualsBatch(t *testing.T) {
 // consistent: its average NEES over Monte Carlo runs lies in the 95% band
 // (Bar-Shalom, Li and Kirubarajan, 2001, section 5.4.2).
 func TestSmootherBeatsFilter(t *testing.T) {
+	for _, c := range []struct {
+		name string
+		sc   fusiontest.Scenario
+	}{
+		{"pose-camera", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, DurationS: 20, CameraHz: 2}},
+		// Markers 3 cm off the map, which landmark blocks carry: at each
+		// new marker the smoother starts its block afresh.
+		{"landmark-survey", fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, DurationS: 20, CameraHz: 2,
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}},
+	} {
+		t.Run(c.name, func(t *testing.T) { smootherBeatsFilter(t, c.sc) })
+	}
+}
+
+func smootherBeatsFilter(t *testing.T, base fusiontest.Scenario) {
 	const runs = 20
 	var filtSq, smSq float64
 	var count int
 	nees := map[int64]float64{} // checkpoint stamp -> sum over runs
 	for run := 0; run < runs; run++ {
-		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: uint64(300 + run), DurationS: 20, CameraHz: 2}
+		sc := base
+		sc.Seed = uint64(300 + run)
 		s := fusiontest.New(sc)
-		r, _ := fusion.New(s.Config())
+		r, _ := fusion.New(s.TrueModelConfig())
 		r.CollectSteps()
 		truth := map[int64]estimator.Pose{}
 		var all []fusion.Step

@@ -3,6 +3,7 @@ package fusion
 import (
 	"errors"
 	"fmt"
+	"math"
 
 	"google.golang.org/protobuf/encoding/protowire"
 	"reckon.example/estimator"
@@ -31,10 +32,19 @@ import (
 // moments at zero and replays its window's steps without them.
 // A change of layout or meaning bumps it, with a new golden file in
 // testdata/snapshots.
-const SnapshotVersion = 9
+// Version 10: landmark blocks (which landmark each stands for, in the
+// robot and every checkpoint; a landmark fix's landmark and whether it
+// seeded a block) and the measurements' mount and landmark error states; a
+// version 9 to 5 snapshot has no landmark blocks, and its measurements
+// lack their mount error states, which RestoreSnapshot takes from their
+// sensors again (before, a replay of its window after a late fix took
+// them without the sensor's mount block).
+const SnapshotVersion = 10
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
+// this one; 9, which lacks the landmark blocks and the measurements' mount
+// error states; 8, which lacks the moments and the odometry entries' scrub;
+// 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
 // taken as white); and 5, which lacks the run fields too (a robot that never
 // started a second run).
@@ -106,6 +116,9 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	e.int(35, r.scrub.block)
 	e.double(36, r.scrub.sum)
 	e.double(37, r.scrub.peak)
+	if len(r.lmAt) > 0 {
+		e.message(38, func(e *wenc) { encTable(e, &r.lm) })
+	}
 	return e.b, nil
 }
 
@@ -146,7 +159,31 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	if err := r.checkRestored(); err != nil {
 		return nil, err
 	}
+	if version < 10 {
+		r.mountErrorsBack()
+	}
 	return r, nil
+}
+
+// mountErrorsBack gives the fixes of a snapshot before version 10, which
+// did not record their measurements' mount error states, those of their
+// sensor's mount block again, so that a replay of the window takes them as
+// the robot that wrote it did. A fix carrying its own mount had none; one
+// whose own mount equals its sensor's configured one takes the block too
+// (the one case the old snapshot cannot tell apart).
+func (r *Robot) mountErrorsBack() {
+	for _, ents := range [][]entry{r.ents, r.held} {
+		for i := range ents {
+			e := &ents[i]
+			if e.kind != entMeas || e.imu || e.sensor < 0 || e.sensor >= len(r.stats.sensors) {
+				continue
+			}
+			si, ok := r.sensorIndex[r.stats.sensors[e.sensor].ID]
+			if ok && r.sensorMount[si] > 0 && e.meas.Mount == r.cfg.Sensors[si].Mount {
+				e.meas.MountError = r.sensorMount[si]
+			}
+		}
+	}
 }
 
 // decodeField reads one top-level field of the snapshot into r.
@@ -226,6 +263,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.scrub.sum = d.double(num)
 	case 37:
 		r.scrub.peak = d.double(num)
+	case 38:
+		d.message(num, func(d *wdec) { decTable(d, &r.lm) })
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -319,6 +358,40 @@ func decState(d *wdec) estimator.State {
 func encCheckpoint(e *wenc, c *checkpoint) {
 	e.message(1, func(e *wenc) { encState(e, &c.est) })
 	e.bool(2, c.offsetReady)
+	if c.lm != (lmTable{}) {
+		e.message(3, func(e *wenc) { encTable(e, &c.lm) })
+	}
+}
+
+func encTable(e *wenc, t *lmTable) {
+	ids := make([]int64, len(t))
+	last := make([]int64, len(t))
+	for i := range t {
+		ids[i], last[i] = int64(t[i].id), t[i].last
+	}
+	e.ints(1, ids)
+	e.ints(2, last)
+}
+
+func decTable(d *wdec, t *lmTable) {
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		v := d.intSlice(num)
+		if len(v) != len(t) || num != 1 && num != 2 {
+			d.fail("landmark blocks: field %d of %d values", num, len(v))
+			return
+		}
+		for i := range t {
+			if num == 1 {
+				if v[i] < 0 || v[i] > math.MaxInt32 {
+					d.fail("landmark blocks: landmark %d", v[i])
+					return
+				}
+				t[i].id = int32(v[i])
+			} else {
+				t[i].last = v[i]
+			}
+		}
+	}
 }
 
 func decCheckpoint(d *wdec) checkpoint {
@@ -329,6 +402,8 @@ func decCheckpoint(d *wdec) checkpoint {
 			d.message(num, func(d *wdec) { c.est = decState(d) })
 		case 2:
 			c.offsetReady = d.bool(num)
+		case 3:
+			d.message(num, func(d *wdec) { decTable(d, &c.lm) })
 		default:
 			d.fail("checkpoint: unknown field %d", num)
 		}
@@ -359,6 +434,10 @@ func (r *Robot) encEntry(e *wenc, en *entry) {
 		// Absent for other entries, as in snapshots before version 9.
 		e.double(18, en.scrub)
 		e.bool(19, true)
+	}
+	if en.lm != 0 {
+		e.int(20, int64(en.lm))
+		e.bool(21, en.seeded)
 	}
 }
 
@@ -412,6 +491,10 @@ func (r *Robot) decEntry(d *wdec) entry {
 			en.scrub = d.double(num)
 		case 19:
 			en.wheels = d.bool(num)
+		case 20:
+			en.lm = int32(d.int(num))
+		case 21:
+			en.seeded = d.bool(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}
@@ -431,6 +514,15 @@ func encMeasurement(e *wenc, m *estimator.Measurement) {
 	}
 	e.uint(8, uint64(m.Robust.Kind))
 	e.double(9, m.Robust.Param)
+	if m.MountError != 0 {
+		e.int(10, int64(m.MountError))
+	}
+	if m.LandmarkError != 0 {
+		e.int(11, int64(m.LandmarkError))
+	}
+	if m.LandmarkVar != 0 {
+		e.double(12, m.LandmarkVar)
+	}
 }
 
 func decMeasurement(d *wdec) estimator.Measurement {
@@ -462,6 +554,12 @@ func decMeasurement(d *wdec) estimator.Measurement {
 			m.Robust.Kind = estimator.RobustKind(d.uint(num))
 		case 9:
 			m.Robust.Param = d.double(num)
+		case 10:
+			m.MountError = int(int32(d.int(num)))
+		case 11:
+			m.LandmarkError = int(int32(d.int(num)))
+		case 12:
+			m.LandmarkVar = d.double(num)
 		default:
 			d.fail("measurement: unknown field %d", num)
 		}

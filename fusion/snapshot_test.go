@@ -10,19 +10,26 @@ import (
 
 // TestSnapshotContinuesExactly: a robot restored from a snapshot taken in
 // the middle of a run gives bit for bit the same results as the original
-// for the rest of the run, also with every option on (the last case:
-// 9 states and robust, correlated landmark fixes).
+// for the rest of the run, also with every option on (the fourth case:
+// 9 states and robust, correlated landmark fixes) and with landmark blocks
+// (the last two: three blocks, and one that the markers take in turns).
 func TestSnapshotContinuesExactly(t *testing.T) {
 	for k, sc := range []fusiontest.Scenario{
 		{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &fusiontest.Bump{AtS: 25, DXM: 1}},
 		{Layout: fusiontest.GyroTurn, Seed: 52, DurationS: 20, Counts: true},
 		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Seed: 53, DurationS: 20},
 		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Seed: 54, DurationS: 20, OutlierFraction: 0.1},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, Markers: true, Seed: 57, DurationS: 20, LatencyMinS: 0.02, LatencyMaxS: 0.4},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 55, DurationS: 20, LatencyMinS: 0.15, LatencyMaxS: 0.15, Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 56, DurationS: 20, LatencyMinS: 0.15, LatencyMaxS: 0.15, Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}},
 	} {
 		_, ins := collect(sc)
 		cfg := fusiontest.New(sc).Config()
-		if k == 3 {
+		switch k {
+		case 3, 4: // the second with fixes arriving out of order
 			cfg = allOptions(cfg)
+		case 5, 6: // three landmark blocks, and one
+			cfg = surveyed(cfg, k == 6)
 		}
 		a, _ := fusion.New(cfg)
 		mid := len(ins) * 3 / 5

@@ -13,6 +13,7 @@ import (
 type checkpoint struct {
 	est         estimator.State
 	offsetReady bool
+	lm          lmTable
 }
 
 type entryKind uint8
@@ -39,9 +40,12 @@ type entry struct {
 	cov   [9]float64
 	scrub float64
 
-	// entMeas.
+	// entMeas; lm, the landmark of a landmark fix (from 1), and seeded,
+	// that its update gave a landmark block to it (landmarks.go).
 	meas   estimator.Measurement
 	imu    bool
+	seeded bool
+	lm     int32
 	sensor int
 
 	// entReset; keepOffset: a move recovery that keeps the IMU offset (and
@@ -181,6 +185,7 @@ func (r *Robot) replayFrom(i int) {
 	if i == 0 {
 		r.f.SetState(&r.base.est)
 		r.ready = r.base.offsetReady
+		r.lm = r.base.lm
 	} else {
 		r.loadCheckpoint(&live[i-1].after)
 	}

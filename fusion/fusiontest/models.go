@@ -32,7 +32,8 @@ func (s Scenario) WhiteConfig() fusion.Config { return s.Config() }
 //   - the Commanded layout: the body-step noise per second of its truth
 //     (CommandedForwardVarM2PerS and its siblings) instead of the per-metre
 //     spread of WhiteConfig, the per-metre terms left negligible
-//     (commandedTrueNoise).
+//     (commandedTrueNoise);
+//   - a marker map's survey error: LandmarkPositionStdM.
 //
 // Everything else is Config.
 func (s Scenario) TrueModelConfig() fusion.Config {
@@ -57,6 +58,7 @@ func (s Scenario) TrueModelConfig() fusion.Config {
 		c.Noise = commandedTrueNoise(c.Noise)
 	}
 	c.IMULatencyNs = s.IMUStampLateNs
+	c.LandmarkPositionStdM = s.LandmarkSurveyM
 	if s.GyroScale != 0 {
 		// A random walk of f^2 per radian covers a scale error f over
 		// the turn of about a radian between fixes (DEVELOPERS.md,

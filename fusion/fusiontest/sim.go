@@ -355,6 +355,9 @@ type Sim struct {
 	gyroErr                             float64        // the gyro's accumulated heading error, rad
 
 	errs errorState // the real error processes, with their own random source
+	// survey holds each marker's survey error (Errors.LandmarkSurveyM)
+	// once drawn, by id.
+	survey map[string][2]float64
 
 	queue queue
 	seq   int64
@@ -634,6 +637,26 @@ func (sm *Sim) emitOdometry(t int64) {
 	sm.push(Input{ArrivalNs: t + 1e6, Odometry: o, Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped})
 }
 
+// surveyed returns where marker m (the i-th of the local markers) really
+// is: its mapped position plus its survey error (Errors.LandmarkSurveyM),
+// drawn from a source of its own seeded by the run and the marker.
+func (sm *Sim) surveyed(i int, m fusion.Landmark) (float64, float64) {
+	sd := sm.s.LandmarkSurveyM
+	if sd == 0 {
+		return m.XM, m.YM
+	}
+	off, ok := sm.survey[m.ID]
+	if !ok {
+		r := rand.New(rand.NewPCG(sm.s.Seed^0x5eed, uint64(i)))
+		off = [2]float64{sd * r.NormFloat64(), sd * r.NormFloat64()}
+		if sm.survey == nil {
+			sm.survey = map[string][2]float64{}
+		}
+		sm.survey[m.ID] = off
+	}
+	return m.XM + off[0], m.YM + off[1]
+}
+
 func (sm *Sim) emitCamera(t int64) {
 	lat := sm.s.LatencyMinS + sm.rng.Float64()*(sm.s.LatencyMaxS-sm.s.LatencyMinS)
 	in := Input{ArrivalNs: t + int64(lat*1e9), Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped}
@@ -654,6 +677,7 @@ func (sm *Sim) emitCamera(t int64) {
 			return
 		}
 		m := marks[best]
+		m.XM, m.YM = sm.surveyed(best, m)
 		r := math.Hypot(m.XM-cam.X, m.YM-cam.Y) + sm.camNoise(0, rangeStdM)
 		b := estimator.Wrap(math.Atan2(m.YM-cam.Y, m.XM-cam.X) - cam.Heading + sm.camNoise(1, bearingStdRad))
 		if outlier {

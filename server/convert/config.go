@@ -55,6 +55,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	cfg.MaxExtrapolationNs = c.GetMaxExtrapolationNs()
 	cfg.MaxOdometryGapNs = c.GetMaxOdometryGapNs()
 	cfg.IMULatencyNs = c.GetImuLatencyNs()
+	cfg.LandmarkPositionStdM = c.GetLandmarkPositionStdM()
 	cfg.MaxSpeedMPerS = c.GetMaxSpeedMPerS()
 	cfg.MaxTurnRateRadPerS = c.GetMaxTurnRateRadPerS()
 	cfg.Recovery = fusion.Recovery{Enabled: c.GetRecovery().GetEnabled(), Count: int(c.GetRecovery().GetCount()), AgreeProbability: c.GetRecovery().GetAgreeProbability()}
@@ -70,7 +71,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 		cfg.StartCov = v
 	}
 	for _, l := range c.GetLandmarks() {
-		cfg.Landmarks = append(cfg.Landmarks, fusion.Landmark{ID: l.GetId(), XM: l.GetXM(), YM: l.GetYM()})
+		cfg.Landmarks = append(cfg.Landmarks, fusion.Landmark{ID: l.GetId(), XM: l.GetXM(), YM: l.GetYM(), PositionStdM: l.GetPositionStdM()})
 	}
 	for i, s := range c.GetSensors() {
 		fs, err := sensorFromProto(s, fmt.Sprintf("sensors[%d]", i))
@@ -92,18 +93,19 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 // ConfigToProto converts a configuration to the wire.
 func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 	c := &pb.RobotConfig{
-		NoSideSlip:         cfg.NoSideSlip,
-		GateProbability:    cfg.GateProbability,
-		GateImu:            cfg.GateIMU,
-		WindowNs:           cfg.WindowNs,
-		MaxHeld:            int32(cfg.MaxHeld),
-		MaxHoldAheadNs:     cfg.MaxHoldAheadNs,
-		MaxExtrapolationNs: cfg.MaxExtrapolationNs,
-		MaxOdometryGapNs:   cfg.MaxOdometryGapNs,
-		ImuLatencyNs:       cfg.IMULatencyNs,
-		MaxSpeedMPerS:      cfg.MaxSpeedMPerS,
-		MaxTurnRateRadPerS: cfg.MaxTurnRateRadPerS,
-		Recovery:           &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},
+		NoSideSlip:           cfg.NoSideSlip,
+		GateProbability:      cfg.GateProbability,
+		GateImu:              cfg.GateIMU,
+		WindowNs:             cfg.WindowNs,
+		MaxHeld:              int32(cfg.MaxHeld),
+		MaxHoldAheadNs:       cfg.MaxHoldAheadNs,
+		MaxExtrapolationNs:   cfg.MaxExtrapolationNs,
+		MaxOdometryGapNs:     cfg.MaxOdometryGapNs,
+		ImuLatencyNs:         cfg.IMULatencyNs,
+		LandmarkPositionStdM: cfg.LandmarkPositionStdM,
+		MaxSpeedMPerS:        cfg.MaxSpeedMPerS,
+		MaxTurnRateRadPerS:   cfg.MaxTurnRateRadPerS,
+		Recovery:             &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},
 		Trust: &pb.TrustLimits{MaxPosition95M: cfg.Trust.MaxPosition95M, MaxHeadingStdRad: cfg.Trust.MaxHeadingStdRad, NisWindow: int32(cfg.Trust.NISWindow),
 			ConsistencyProbability: cfg.Trust.ConsistencyProbability, RefusedInARow: int32(cfg.Trust.RefusedInARow)},
 		StartPose: poseToProto(cfg.StartPose),
@@ -122,7 +124,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		c.StartCovariance = &pb.Covariance{Dimension: 3, Values: append([]float64(nil), cfg.StartCov...)}
 	}
 	for _, l := range cfg.Landmarks {
-		c.Landmarks = append(c.Landmarks, &pb.Landmark{Id: l.ID, XM: l.XM, YM: l.YM})
+		c.Landmarks = append(c.Landmarks, &pb.Landmark{Id: l.ID, XM: l.XM, YM: l.YM, PositionStdM: l.PositionStdM})
 	}
 	for _, s := range cfg.Sensors {
 		ps := &pb.FixSensor{Id: s.ID, Kind: pb.FixKind(fusion.ProtoOf(fixKindLabels, s.Kind)), Mount: poseToProto(s.Mount),

@@ -74,6 +74,8 @@ func TestConfigYAMLErrors(t *testing.T) {
 		{"out of range in a list", "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12, counter_bits: 3}\n  - {x_m: -0.08, direction_rad: 1.57}\n", 3, "wheels[1].counter_bits", "invalid configuration: wheels[1].counter_bits"},
 		{"bad covariance", wheels + "start_covariance:\n  dimension: 3\n  values: [1, 0, 0, 0, -1, 0, 0, 0, 1]\n", 5, "start_covariance", "start_covariance"},
 		{"negative mount_std", wheels + "sensors:\n  - id: camera\n    kind: landmark\n    covariance: {dimension: 2, values: [1e-4, 0, 0, 1e-4]}\n    mount_std: {x_m: -0.01}\n", 9, "sensors[0].mount_std", "invalid configuration: sensors[0].mount_std"},
+		{"negative survey error", wheels + "landmark_position_std_m: -0.03\n", 5, "landmark_position_std_m", "-0.03 must be in [0, 10] m"},
+		{"survey error of one landmark", wheels + "landmarks:\n  - {id: dock, x_m: 1, y_m: 2}\n  - {id: door, x_m: 3, y_m: 4, position_std_m: .nan}\n", 7, "landmarks[1].position_std_m", "NaN must be in [0, 10] m"},
 		{"not a mapping", "- 1\n- 2\n", 1, "", "must be a mapping"},
 		{"broken yaml", "wheels: [\n", 0, "", "robot configuration file"},
 		{"field given twice", "no_side_slip: true\nno_side_slip: false\n", 2, "no_side_slip", "given twice (first on line 1)"},
@@ -121,6 +123,23 @@ func TestConfigYAMLMountStd(t *testing.T) {
 	back, err := ConfigFromProto(ConfigToProto(cfg))
 	if err != nil || back.Sensors[0].MountStd != want {
 		t.Errorf("round trip: %v, %v", back.Sensors, err)
+	}
+}
+
+// TestConfigYAMLLandmarkSurvey: the map's and a landmark's survey error
+// reach fusion's Config and come back from ConfigToProto.
+func TestConfigYAMLLandmarkSurvey(t *testing.T) {
+	const y = "landmark_position_std_m: 0.03\nlandmarks:\n  - {id: aisle-3-north, x_m: 12.0, y_m: 4.5}\n  - {id: dock-door, x_m: 0.0, y_m: 9.0, position_std_m: 0.01}\n"
+	_, cfg, err := LoadConfigYAML([]byte(y))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if cfg.LandmarkPositionStdM != 0.03 || cfg.Landmarks[0].PositionStdM != 0 || cfg.Landmarks[1].PositionStdM != 0.01 {
+		t.Errorf("decoded %+v", cfg)
+	}
+	back, err := ConfigFromProto(ConfigToProto(cfg))
+	if err != nil || back.LandmarkPositionStdM != 0.03 || back.Landmarks[1].PositionStdM != 0.01 {
+		t.Errorf("round trip: %+v, %v", back, err)
 	}
 }
 

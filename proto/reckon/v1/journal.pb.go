@@ -397,8 +397,11 @@ type RobotSnapshot struct {
 	ScrubBlock       int64   `protobuf:"varint,35,opt,name=scrub_block,json=scrubBlock,proto3" json:"scrub_block,omitempty"`
 	ScrubTurnSumRad  float64 `protobuf:"fixed64,36,opt,name=scrub_turn_sum_rad,json=scrubTurnSumRad,proto3" json:"scrub_turn_sum_rad,omitempty"`
 	ScrubTurnPeakRad float64 `protobuf:"fixed64,37,opt,name=scrub_turn_peak_rad,json=scrubTurnPeakRad,proto3" json:"scrub_turn_peak_rad,omitempty"`
-	unknownFields    protoimpl.UnknownFields
-	sizeCache        protoimpl.SizeCache
+	// Which landmark each landmark block of the estimate stands for now
+	// (version 10); absent without landmark blocks.
+	LandmarkBlocks *SnapshotLandmarkBlocks `protobuf:"bytes,38,opt,name=landmark_blocks,json=landmarkBlocks,proto3" json:"landmark_blocks,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -690,6 +693,71 @@ func (x *RobotSnapshot) GetScrubTurnPeakRad() float64 {
 	return 0
 }
 
+func (x *RobotSnapshot) GetLandmarkBlocks() *SnapshotLandmarkBlocks {
+	if x != nil {
+		return x.LandmarkBlocks
+	}
+	return nil
+}
+
+// SnapshotLandmarkBlocks says which landmark each landmark block of an
+// estimate stands for (DEVELOPERS.md, "Design: Landmark survey error").
+type SnapshotLandmarkBlocks struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// For each block in layout order, the landmark's place in the
+	// configuration's landmarks, from 1 (0: none yet).
+	Landmark []int32 `protobuf:"varint,1,rep,packed,name=landmark,proto3" json:"landmark,omitempty"`
+	// For each block, the stamp of its landmark's newest fix, nanoseconds:
+	// a new landmark takes the block whose newest fix is oldest.
+	LastFixNs     []int64 `protobuf:"varint,2,rep,packed,name=last_fix_ns,json=lastFixNs,proto3" json:"last_fix_ns,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotLandmarkBlocks) Reset() {
+	*x = SnapshotLandmarkBlocks{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotLandmarkBlocks) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotLandmarkBlocks) ProtoMessage() {}
+
+func (x *SnapshotLandmarkBlocks) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotLandmarkBlocks.ProtoReflect.Descriptor instead.
+func (*SnapshotLandmarkBlocks) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+}
+
+func (x *SnapshotLandmarkBlocks) GetLandmark() []int32 {
+	if x != nil {
+		return x.Landmark
+	}
+	return nil
+}
+
+func (x *SnapshotLandmarkBlocks) GetLastFixNs() []int64 {
+	if x != nil {
+		return x.LastFixNs
+	}
+	return nil
+}
+
 // EstimateState is a filter's mean and covariance.
 type EstimateState struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -697,8 +765,9 @@ type EstimateState struct {
 	Size uint32 `protobuf:"varint,1,opt,name=size,proto3" json:"size,omitempty"`
 	// The mean, size entries: x m, y m, heading rad, then as configured the
 	// IMU offset rad, the forward and turn scales, the heading-rate bias
-	// rad/s and one bias block per correlated sensor (DEVELOPERS.md,
-	// "Design: State").
+	// rad/s, one bias block per correlated sensor, one mount block per
+	// sensor with mount_std and the landmark blocks (DEVELOPERS.md, "Design:
+	// State" and "Design: Landmark survey error").
 	Mean []float64 `protobuf:"fixed64,2,rep,packed,name=mean,proto3" json:"mean,omitempty"`
 	// The covariance, size x size row-major.
 	Covariance []float64 `protobuf:"fixed64,3,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
@@ -713,7 +782,7 @@ type EstimateState struct {
 
 func (x *EstimateState) Reset() {
 	*x = EstimateState{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -725,7 +794,7 @@ func (x *EstimateState) String() string {
 func (*EstimateState) ProtoMessage() {}
 
 func (x *EstimateState) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -738,7 +807,7 @@ func (x *EstimateState) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EstimateState.ProtoReflect.Descriptor instead.
 func (*EstimateState) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *EstimateState) GetSize() uint32 {
@@ -775,14 +844,16 @@ type SnapshotCheckpoint struct {
 	// The estimate.
 	Estimate *EstimateState `protobuf:"bytes,1,opt,name=estimate,proto3" json:"estimate,omitempty"`
 	// Whether the IMU offset was initialised.
-	OffsetReady   bool `protobuf:"varint,2,opt,name=offset_ready,json=offsetReady,proto3" json:"offset_ready,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	OffsetReady bool `protobuf:"varint,2,opt,name=offset_ready,json=offsetReady,proto3" json:"offset_ready,omitempty"`
+	// Which landmark each landmark block stands for (version 10).
+	LandmarkBlocks *SnapshotLandmarkBlocks `protobuf:"bytes,3,opt,name=landmark_blocks,json=landmarkBlocks,proto3" json:"landmark_blocks,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *SnapshotCheckpoint) Reset() {
 	*x = SnapshotCheckpoint{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -794,7 +865,7 @@ func (x *SnapshotCheckpoint) String() string {
 func (*SnapshotCheckpoint) ProtoMessage() {}
 
 func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -807,7 +878,7 @@ func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCheckpoint.ProtoReflect.Descriptor instead.
 func (*SnapshotCheckpoint) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *SnapshotCheckpoint) GetEstimate() *EstimateState {
@@ -822,6 +893,13 @@ func (x *SnapshotCheckpoint) GetOffsetReady() bool {
 		return x.OffsetReady
 	}
 	return false
+}
+
+func (x *SnapshotCheckpoint) GetLandmarkBlocks() *SnapshotLandmarkBlocks {
+	if x != nil {
+		return x.LandmarkBlocks
+	}
+	return nil
 }
 
 // SnapshotEntry is one input in the history window or the hold queue.
@@ -866,15 +944,20 @@ type SnapshotEntry struct {
 	// rotation the wheels do not see (scrub), rad^2, and whether the step
 	// was solved from the wheels, whose report carries the rest of its
 	// covariance as noise of its own.
-	ScrubVarRad2  float64 `protobuf:"fixed64,18,opt,name=scrub_var_rad2,json=scrubVarRad2,proto3" json:"scrub_var_rad2,omitempty"`
-	FromWheels    bool    `protobuf:"varint,19,opt,name=from_wheels,json=fromWheels,proto3" json:"from_wheels,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	ScrubVarRad2 float64 `protobuf:"fixed64,18,opt,name=scrub_var_rad2,json=scrubVarRad2,proto3" json:"scrub_var_rad2,omitempty"`
+	FromWheels   bool    `protobuf:"varint,19,opt,name=from_wheels,json=fromWheels,proto3" json:"from_wheels,omitempty"`
+	// Measurement, a landmark fix (version 10): the landmark's place in the
+	// configuration's landmarks, from 1, and whether its update gave it a
+	// landmark block (seeded afresh: the smoother starts the block there).
+	Landmark       int32 `protobuf:"varint,20,opt,name=landmark,proto3" json:"landmark,omitempty"`
+	LandmarkSeeded bool  `protobuf:"varint,21,opt,name=landmark_seeded,json=landmarkSeeded,proto3" json:"landmark_seeded,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *SnapshotEntry) Reset() {
 	*x = SnapshotEntry{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -886,7 +969,7 @@ func (x *SnapshotEntry) String() string {
 func (*SnapshotEntry) ProtoMessage() {}
 
 func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -899,7 +982,7 @@ func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotEntry.ProtoReflect.Descriptor instead.
 func (*SnapshotEntry) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *SnapshotEntry) GetKind() uint32 {
@@ -1035,6 +1118,20 @@ func (x *SnapshotEntry) GetFromWheels() bool {
 	return false
 }
 
+func (x *SnapshotEntry) GetLandmark() int32 {
+	if x != nil {
+		return x.Landmark
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetLandmarkSeeded() bool {
+	if x != nil {
+		return x.LandmarkSeeded
+	}
+	return false
+}
+
 // SnapshotMeasurement is a measurement as the estimator takes it.
 type SnapshotMeasurement struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1057,13 +1154,22 @@ type SnapshotMeasurement struct {
 	Robust uint32 `protobuf:"varint,8,opt,name=robust,proto3" json:"robust,omitempty"`
 	// Its parameter: Huber's k or the Student-t degrees of freedom.
 	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
-	unknownFields   protoimpl.UnknownFields
-	sizeCache       protoimpl.SizeCache
+	// The first of the three states holding the sensor's mount error (0:
+	// none; version 10, before which a restored measurement lost it).
+	MountError int32 `protobuf:"varint,10,opt,name=mount_error,json=mountError,proto3" json:"mount_error,omitempty"`
+	// The first of the two states holding the landmark's survey error (0:
+	// none; version 10).
+	LandmarkError int32 `protobuf:"varint,11,opt,name=landmark_error,json=landmarkError,proto3" json:"landmark_error,omitempty"`
+	// The landmark's survey error variance in each axis, m^2, carried as
+	// white noise of this measurement (version 10; 0: none).
+	LandmarkVarM2 float64 `protobuf:"fixed64,12,opt,name=landmark_var_m2,json=landmarkVarM2,proto3" json:"landmark_var_m2,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *SnapshotMeasurement) Reset() {
 	*x = SnapshotMeasurement{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1075,7 +1181,7 @@ func (x *SnapshotMeasurement) String() string {
 func (*SnapshotMeasurement) ProtoMessage() {}
 
 func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1088,7 +1194,7 @@ func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotMeasurement.ProtoReflect.Descriptor instead.
 func (*SnapshotMeasurement) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *SnapshotMeasurement) GetKind() uint32 {
@@ -1154,6 +1260,27 @@ func (x *SnapshotMeasurement) GetRobustParameter() float64 {
 	return 0
 }
 
+func (x *SnapshotMeasurement) GetMountError() int32 {
+	if x != nil {
+		return x.MountError
+	}
+	return 0
+}
+
+func (x *SnapshotMeasurement) GetLandmarkError() int32 {
+	if x != nil {
+		return x.LandmarkError
+	}
+	return 0
+}
+
+func (x *SnapshotMeasurement) GetLandmarkVarM2() float64 {
+	if x != nil {
+		return x.LandmarkVarM2
+	}
+	return 0
+}
+
 // SnapshotSensor is one sensor's consistency record.
 type SnapshotSensor struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1173,7 +1300,7 @@ type SnapshotSensor struct {
 
 func (x *SnapshotSensor) Reset() {
 	*x = SnapshotSensor{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1185,7 +1312,7 @@ func (x *SnapshotSensor) String() string {
 func (*SnapshotSensor) ProtoMessage() {}
 
 func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1198,7 +1325,7 @@ func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotSensor.ProtoReflect.Descriptor instead.
 func (*SnapshotSensor) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *SnapshotSensor) GetSensorId() string {
@@ -1255,7 +1382,7 @@ type SnapshotNisWindow struct {
 
 func (x *SnapshotNisWindow) Reset() {
 	*x = SnapshotNisWindow{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1267,7 +1394,7 @@ func (x *SnapshotNisWindow) String() string {
 func (*SnapshotNisWindow) ProtoMessage() {}
 
 func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1280,7 +1407,7 @@ func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotNisWindow.ProtoReflect.Descriptor instead.
 func (*SnapshotNisWindow) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *SnapshotNisWindow) GetNis() []float64 {
@@ -1340,7 +1467,7 @@ type SnapshotBiasWindow struct {
 
 func (x *SnapshotBiasWindow) Reset() {
 	*x = SnapshotBiasWindow{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1352,7 +1479,7 @@ func (x *SnapshotBiasWindow) String() string {
 func (*SnapshotBiasWindow) ProtoMessage() {}
 
 func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1365,7 +1492,7 @@ func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotBiasWindow.ProtoReflect.Descriptor instead.
 func (*SnapshotBiasWindow) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *SnapshotBiasWindow) GetScore() []float64 {
@@ -1446,7 +1573,7 @@ type SnapshotCandidate struct {
 
 func (x *SnapshotCandidate) Reset() {
 	*x = SnapshotCandidate{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1458,7 +1585,7 @@ func (x *SnapshotCandidate) String() string {
 func (*SnapshotCandidate) ProtoMessage() {}
 
 func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1471,7 +1598,7 @@ func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCandidate.ProtoReflect.Descriptor instead.
 func (*SnapshotCandidate) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *SnapshotCandidate) GetStampNs() int64 {
@@ -1563,7 +1690,7 @@ type JournalOpening struct {
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1575,7 +1702,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1588,7 +1715,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -1640,7 +1767,7 @@ type JournalInput struct {
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1652,7 +1779,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1665,7 +1792,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -1717,7 +1844,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[14]
+	mi := &file_reckon_v1_journal_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1729,7 +1856,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[14]
+	mi := &file_reckon_v1_journal_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1742,7 +1869,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -1770,7 +1897,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[15]
+	mi := &file_reckon_v1_journal_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1782,7 +1909,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[15]
+	mi := &file_reckon_v1_journal_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1795,7 +1922,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{15}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -1826,7 +1953,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x8a\f\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xd6\f\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -1876,18 +2003,23 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\vscrub_block\x18# \x01(\x03R\n" +
 	"scrubBlock\x12+\n" +
 	"\x12scrub_turn_sum_rad\x18$ \x01(\x01R\x0fscrubTurnSumRad\x12-\n" +
-	"\x13scrub_turn_peak_rad\x18% \x01(\x01R\x10scrubTurnPeakRadB\x17\n" +
-	"\x15_last_imu_heading_rad\"}\n" +
+	"\x13scrub_turn_peak_rad\x18% \x01(\x01R\x10scrubTurnPeakRad\x12J\n" +
+	"\x0flandmark_blocks\x18& \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocksB\x17\n" +
+	"\x15_last_imu_heading_rad\"T\n" +
+	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
+	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +
+	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"}\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
 	"\x04mean\x18\x02 \x03(\x01R\x04mean\x12\x1e\n" +
 	"\n" +
 	"covariance\x18\x03 \x03(\x01R\n" +
 	"covariance\x12$\n" +
-	"\x0eturn_scale_eiv\x18\x04 \x03(\x01R\fturnScaleEiv\"m\n" +
+	"\x0eturn_scale_eiv\x18\x04 \x03(\x01R\fturnScaleEiv\"\xb9\x01\n" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
-	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\"\xea\x04\n" +
+	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\x12J\n" +
+	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\xaf\x05\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -1909,7 +2041,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0fkeep_imu_offset\x18\x11 \x01(\bR\rkeepImuOffset\x12$\n" +
 	"\x0escrub_var_rad2\x18\x12 \x01(\x01R\fscrubVarRad2\x12\x1f\n" +
 	"\vfrom_wheels\x18\x13 \x01(\bR\n" +
-	"fromWheels\"\xf6\x01\n" +
+	"fromWheels\x12\x1a\n" +
+	"\blandmark\x18\x14 \x01(\x05R\blandmark\x12'\n" +
+	"\x0flandmark_seeded\x18\x15 \x01(\bR\x0elandmarkSeeded\"\xe6\x02\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
@@ -1921,7 +2055,12 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x01r\x18\x06 \x03(\x01R\x01r\x12\x12\n" +
 	"\x04bias\x18\a \x03(\x05R\x04bias\x12\x16\n" +
 	"\x06robust\x18\b \x01(\rR\x06robust\x12)\n" +
-	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\"\xbc\x01\n" +
+	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\x12\x1f\n" +
+	"\vmount_error\x18\n" +
+	" \x01(\x05R\n" +
+	"mountError\x12%\n" +
+	"\x0elandmark_error\x18\v \x01(\x05R\rlandmarkError\x12&\n" +
+	"\x0flandmark_var_m2\x18\f \x01(\x01R\rlandmarkVarM2\"\xbc\x01\n" +
 	"\x0eSnapshotSensor\x12\x1b\n" +
 	"\tsensor_id\x18\x01 \x01(\tR\bsensorId\x120\n" +
 	"\x06counts\x18\x02 \x01(\v2\x18.reckon.v1.VerdictCountsR\x06counts\x12\x17\n" +
@@ -1989,63 +2128,66 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 16)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 17)
 var file_reckon_v1_journal_proto_goTypes = []any{
-	(*JournalRecord)(nil),       // 0: reckon.v1.JournalRecord
-	(*JournalSnapshot)(nil),     // 1: reckon.v1.JournalSnapshot
-	(*JournalSession)(nil),      // 2: reckon.v1.JournalSession
-	(*RobotSnapshot)(nil),       // 3: reckon.v1.RobotSnapshot
-	(*EstimateState)(nil),       // 4: reckon.v1.EstimateState
-	(*SnapshotCheckpoint)(nil),  // 5: reckon.v1.SnapshotCheckpoint
-	(*SnapshotEntry)(nil),       // 6: reckon.v1.SnapshotEntry
-	(*SnapshotMeasurement)(nil), // 7: reckon.v1.SnapshotMeasurement
-	(*SnapshotSensor)(nil),      // 8: reckon.v1.SnapshotSensor
-	(*SnapshotNisWindow)(nil),   // 9: reckon.v1.SnapshotNisWindow
-	(*SnapshotBiasWindow)(nil),  // 10: reckon.v1.SnapshotBiasWindow
-	(*SnapshotCandidate)(nil),   // 11: reckon.v1.SnapshotCandidate
-	(*JournalOpening)(nil),      // 12: reckon.v1.JournalOpening
-	(*JournalInput)(nil),        // 13: reckon.v1.JournalInput
-	(*JournalOutput)(nil),       // 14: reckon.v1.JournalOutput
-	(*JournalClosing)(nil),      // 15: reckon.v1.JournalClosing
-	(*IngestResponse)(nil),      // 16: reckon.v1.IngestResponse
-	(*VerdictCounts)(nil),       // 17: reckon.v1.VerdictCounts
-	(*RobotConfig)(nil),         // 18: reckon.v1.RobotConfig
-	(*Sample)(nil),              // 19: reckon.v1.Sample
-	(*FusedPose)(nil),           // 20: reckon.v1.FusedPose
+	(*JournalRecord)(nil),          // 0: reckon.v1.JournalRecord
+	(*JournalSnapshot)(nil),        // 1: reckon.v1.JournalSnapshot
+	(*JournalSession)(nil),         // 2: reckon.v1.JournalSession
+	(*RobotSnapshot)(nil),          // 3: reckon.v1.RobotSnapshot
+	(*SnapshotLandmarkBlocks)(nil), // 4: reckon.v1.SnapshotLandmarkBlocks
+	(*EstimateState)(nil),          // 5: reckon.v1.EstimateState
+	(*SnapshotCheckpoint)(nil),     // 6: reckon.v1.SnapshotCheckpoint
+	(*SnapshotEntry)(nil),          // 7: reckon.v1.SnapshotEntry
+	(*SnapshotMeasurement)(nil),    // 8: reckon.v1.SnapshotMeasurement
+	(*SnapshotSensor)(nil),         // 9: reckon.v1.SnapshotSensor
+	(*SnapshotNisWindow)(nil),      // 10: reckon.v1.SnapshotNisWindow
+	(*SnapshotBiasWindow)(nil),     // 11: reckon.v1.SnapshotBiasWindow
+	(*SnapshotCandidate)(nil),      // 12: reckon.v1.SnapshotCandidate
+	(*JournalOpening)(nil),         // 13: reckon.v1.JournalOpening
+	(*JournalInput)(nil),           // 14: reckon.v1.JournalInput
+	(*JournalOutput)(nil),          // 15: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),         // 16: reckon.v1.JournalClosing
+	(*IngestResponse)(nil),         // 17: reckon.v1.IngestResponse
+	(*VerdictCounts)(nil),          // 18: reckon.v1.VerdictCounts
+	(*RobotConfig)(nil),            // 19: reckon.v1.RobotConfig
+	(*Sample)(nil),                 // 20: reckon.v1.Sample
+	(*FusedPose)(nil),              // 21: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	12, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	13, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	14, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	15, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	13, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	14, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	15, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	16, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
 	1,  // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
 	2,  // 5: reckon.v1.JournalSnapshot.sessions:type_name -> reckon.v1.JournalSession
-	16, // 6: reckon.v1.JournalSession.verdicts:type_name -> reckon.v1.IngestResponse
-	4,  // 7: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
-	5,  // 8: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
-	6,  // 9: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
-	6,  // 10: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
-	17, // 11: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
-	17, // 12: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
-	8,  // 13: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
-	9,  // 14: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
-	9,  // 15: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
-	11, // 16: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
-	10, // 17: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
-	4,  // 18: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
-	7,  // 19: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
-	5,  // 20: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
-	17, // 21: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
-	7,  // 22: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
-	18, // 23: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	19, // 24: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	16, // 25: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	20, // 26: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	27, // [27:27] is the sub-list for method output_type
-	27, // [27:27] is the sub-list for method input_type
-	27, // [27:27] is the sub-list for extension type_name
-	27, // [27:27] is the sub-list for extension extendee
-	0,  // [0:27] is the sub-list for field type_name
+	17, // 6: reckon.v1.JournalSession.verdicts:type_name -> reckon.v1.IngestResponse
+	5,  // 7: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
+	6,  // 8: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
+	7,  // 9: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
+	7,  // 10: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
+	18, // 11: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
+	18, // 12: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
+	9,  // 13: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
+	10, // 14: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
+	10, // 15: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
+	12, // 16: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
+	11, // 17: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
+	4,  // 18: reckon.v1.RobotSnapshot.landmark_blocks:type_name -> reckon.v1.SnapshotLandmarkBlocks
+	5,  // 19: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
+	4,  // 20: reckon.v1.SnapshotCheckpoint.landmark_blocks:type_name -> reckon.v1.SnapshotLandmarkBlocks
+	8,  // 21: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
+	6,  // 22: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
+	18, // 23: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
+	8,  // 24: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
+	19, // 25: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	20, // 26: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	17, // 27: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	21, // 28: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	29, // [29:29] is the sub-list for method output_type
+	29, // [29:29] is the sub-list for method input_type
+	29, // [29:29] is the sub-list for extension type_name
+	29, // [29:29] is the sub-list for extension extendee
+	0,  // [0:29] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -2070,7 +2212,7 @@ func file_reckon_v1_journal_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   16,
+			NumMessages:   17,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

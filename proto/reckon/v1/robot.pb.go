@@ -440,9 +440,17 @@ type RobotConfig struct {
 	// heading stamped stamp_ns was read at stamp_ns - imu_latency_ns, and is
 	// applied there. An IMU read over a serial link and stamped on arrival
 	// lags every turn by its transfer and filtering time.
-	ImuLatencyNs  int64 `protobuf:"varint,21,opt,name=imu_latency_ns,json=imuLatencyNs,proto3" json:"imu_latency_ns,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	ImuLatencyNs int64 `protobuf:"varint,21,opt,name=imu_latency_ns,json=imuLatencyNs,proto3" json:"imu_latency_ns,omitempty"`
+	// The survey error of the landmarks' mapped positions, metres (standard
+	// deviation in each axis; default 0, an exact map; at most 10): for
+	// landmarks without their own position_std_m. Above 0 the estimate
+	// carries each landmark's error while it sees the landmark, so that many
+	// fixes of one mismapped marker do not make it overconfident
+	// (DEVELOPERS.md, "Design: Landmark survey error"); this takes two
+	// states per landmark block, up to three blocks as the state has room.
+	LandmarkPositionStdM float64 `protobuf:"fixed64,22,opt,name=landmark_position_std_m,json=landmarkPositionStdM,proto3" json:"landmark_position_std_m,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
 }
 
 func (x *RobotConfig) Reset() {
@@ -618,6 +626,13 @@ func (x *RobotConfig) GetMaxOdometryGapNs() int64 {
 func (x *RobotConfig) GetImuLatencyNs() int64 {
 	if x != nil {
 		return x.ImuLatencyNs
+	}
+	return 0
+}
+
+func (x *RobotConfig) GetLandmarkPositionStdM() float64 {
+	if x != nil {
+		return x.LandmarkPositionStdM
 	}
 	return 0
 }
@@ -1475,7 +1490,10 @@ type Landmark struct {
 	// Field x, metres.
 	XM float64 `protobuf:"fixed64,2,opt,name=x_m,json=xM,proto3" json:"x_m,omitempty"`
 	// Field y, metres.
-	YM            float64 `protobuf:"fixed64,3,opt,name=y_m,json=yM,proto3" json:"y_m,omitempty"`
+	YM float64 `protobuf:"fixed64,3,opt,name=y_m,json=yM,proto3" json:"y_m,omitempty"`
+	// The survey error of this landmark's position, metres (standard
+	// deviation in each axis; 0: the robot's landmark_position_std_m).
+	PositionStdM  float64 `protobuf:"fixed64,4,opt,name=position_std_m,json=positionStdM,proto3" json:"position_std_m,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1531,6 +1549,13 @@ func (x *Landmark) GetYM() float64 {
 	return 0
 }
 
+func (x *Landmark) GetPositionStdM() float64 {
+	if x != nil {
+		return x.PositionStdM
+	}
+	return 0
+}
+
 var File_reckon_v1_robot_proto protoreflect.FileDescriptor
 
 const file_reckon_v1_robot_proto_rawDesc = "" +
@@ -1545,7 +1570,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x05state\x18\x05 \x01(\x0e2\x15.reckon.v1.RobotStateR\x05state\x12!\n" +
 	"\fstate_detail\x18\x06 \x01(\tR\vstateDetail\x12\x10\n" +
 	"\x03run\x18\a \x01(\x04R\x03run\x12\x17\n" +
-	"\aboot_id\x18\b \x01(\tR\x06bootId\"\xca\a\n" +
+	"\aboot_id\x18\b \x01(\tR\x06bootId\"\x81\b\n" +
 	"\vRobotConfig\x12/\n" +
 	"\x06wheels\x18\x01 \x03(\v2\x17.reckon.v1.EncoderWheelR\x06wheels\x12 \n" +
 	"\fno_side_slip\x18\x02 \x01(\bR\n" +
@@ -1570,7 +1595,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\asensors\x18\x12 \x03(\v2\x14.reckon.v1.FixSensorR\asensors\x12@\n" +
 	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\x12-\n" +
 	"\x13max_odometry_gap_ns\x18\x14 \x01(\x03R\x10maxOdometryGapNs\x12$\n" +
-	"\x0eimu_latency_ns\x18\x15 \x01(\x03R\fimuLatencyNs\"\xb0\x03\n" +
+	"\x0eimu_latency_ns\x18\x15 \x01(\x03R\fimuLatencyNs\x125\n" +
+	"\x17landmark_position_std_m\x18\x16 \x01(\x01R\x14landmarkPositionStdM\"\xb0\x03\n" +
 	"\tFixSensor\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12&\n" +
 	"\x04kind\x18\x02 \x01(\x0e2\x12.reckon.v1.FixKindR\x04kind\x12*\n" +
@@ -1643,11 +1669,12 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\n" +
 	"Covariance\x12\x1c\n" +
 	"\tdimension\x18\x01 \x01(\rR\tdimension\x12\x16\n" +
-	"\x06values\x18\x02 \x03(\x01R\x06values\"<\n" +
+	"\x06values\x18\x02 \x03(\x01R\x06values\"b\n" +
 	"\bLandmark\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12\x0f\n" +
 	"\x03x_m\x18\x02 \x01(\x01R\x02xM\x12\x0f\n" +
-	"\x03y_m\x18\x03 \x01(\x01R\x02yM*w\n" +
+	"\x03y_m\x18\x03 \x01(\x01R\x02yM\x12$\n" +
+	"\x0eposition_std_m\x18\x04 \x01(\x01R\fpositionStdM*w\n" +
 	"\n" +
 	"RobotState\x12\x1b\n" +
 	"\x17ROBOT_STATE_UNSPECIFIED\x10\x00\x12\x17\n" +

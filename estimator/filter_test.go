@@ -370,7 +370,8 @@ func TestMeasurementConformance(t *testing.T) {
 // P' = (I-KH) P (I-KH)^T + K R K^T, NIS = v^T S^-1 v (Bar-Shalom, Li and
 // Kirubarajan, 2001, sections 5.2 and 5.4); with a robust model R becomes
 // R / w in S, K and P' (w of the raw NIS), and the gain rows of the bias
-// states (consider states, Schmidt 1966) are zero.
+// and mount states (consider states, Schmidt 1966) are zero; a landmark
+// block's are not.
 func TestUpdateMatchesGonum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(7, 7))
 	for _, c := range conformanceCases(rng) {
@@ -431,9 +432,12 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		}
 		var K, ikh, a, want, krk mat.Dense
 		K.Mul(&pht, &Sinv)
-		if f.layout.Biases() > 0 {
-			at, _ := f.layout.Bias(0)
-			for i := at; i < n; i++ {
+		for k := 0; k < f.layout.Biases(); k++ {
+			if f.layout.IsLandmark(k) {
+				continue // estimated
+			}
+			at, dim := f.layout.Bias(k)
+			for i := at; i < at+dim; i++ {
 				for j := 0; j < d; j++ {
 					K.Set(i, j, 0)
 				}

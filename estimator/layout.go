@@ -175,8 +175,17 @@ func (l *Layout) Angles() uint16 {
 	return a
 }
 
-// consider reports whether state i is a consider state (a bias), whose
-// gain row is zero (DEVELOPERS.md, "Design: Measurement updates").
+// consider reports whether state i is a consider state (a bias or mount
+// block's), whose gain row is zero (DEVELOPERS.md, "Design: Measurement
+// updates"). A landmark block's states are estimated.
 func (l *Layout) consider(i int) bool {
-	return l.nb > 0 && i >= l.blocks[0].at
+	if l.nb == 0 || i < l.blocks[0].at {
+		return false
+	}
+	for k := l.nb - 1; k >= 0; k-- {
+		if b := &l.blocks[k]; i >= b.at {
+			return !b.Landmark
+		}
+	}
+	return true
 }

@@ -167,11 +167,15 @@ func (r *Robot) foldBias(m *estimator.Measurement) {
 		m.MountError = 0
 	}
 	if le, v := m.LandmarkError, m.LandmarkVar; le > 0 || v > 0 {
-		// The landmark's survey error (a consider block's, or white)
-		// joins R through its Jacobian, minus the robot position's.
+		// The landmark's survey error (its block's estimate, or white)
+		// joins R through its Jacobian, minus the robot position's; the
+		// block's mean moves the landmark.
 		x := make([]float64, r.n)
 		for i := range x {
 			x[i] = st.MeanAt(i)
+		}
+		if le > 0 {
+			m.LandmarkX, m.LandmarkY = m.LandmarkX+x[le], m.LandmarkY+x[le+1]
 		}
 		m.LandmarkError, m.LandmarkVar = 0, 0
 		if _, h, err := m.Predicted(x); err == nil {

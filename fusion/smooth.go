@@ -183,11 +183,11 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			if e.seeded && c.open {
 				// The landmark block stands for another landmark from
 				// here: to the smoother a new state, independent of the
-				// one before, which the step's prediction starts at its
-				// prior (the block's covariance after, which no update
-				// changes: a consider state's).
+				// one before, which the step's prediction starts at the
+				// landmark's prior.
 				at := e.meas.LandmarkError
-				c4 := [4]float64{cur.Post.At(at, at), cur.Post.At(at, at+1), cur.Post.At(at+1, at), cur.Post.At(at+1, at+1)}
+				v := r.lmVar[e.lm-1]
+				c4 := [4]float64{v, 0, 0, v}
 				cur.Pred.SeedBlock(at, &c4)
 				for i := at; i < at+2; i++ {
 					for j := 0; j < r.n; j++ {

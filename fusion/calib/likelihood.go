@@ -30,6 +30,7 @@ const (
 	levelCovScale                  // a factor on a sensor's covariance
 	levelCorrTime                  // a sensor's correlation_time_s
 	levelTail                      // a Student-t sensor's degrees of freedom
+	levelSurvey                    // the map's landmark_position_std_m
 )
 
 // NoiseLevel is one noise level of a configuration that the likelihood fit
@@ -73,14 +74,25 @@ var noiseLevels = []struct {
 }
 
 func wheels(c *fusion.Config) bool { return len(c.Wheels) > 0 }
-func steps(c *fusion.Config) bool  { return len(c.Wheels) == 0 }
+
+// landmarkSensor reports whether a sensor of c takes landmark fixes.
+func landmarkSensor(c *fusion.Config) bool {
+	for i := range c.Sensors {
+		if c.Sensors[i].Kind == fusion.FixLandmark {
+			return true
+		}
+	}
+	return false
+}
+func steps(c *fusion.Config) bool { return len(c.Wheels) == 0 }
 
 // Levels returns the noise levels that the configuration uses, in a fixed
 // order: the terms of fusion.Noise its odometry and IMU use (a per-second
 // body-step term and the IMU offset's walk per radian only when set: zero
 // leaves it out, and a log scale cannot start from zero), then per sensor its covariance factor, its correlation
 // time when it has a correlated part, and its degrees of freedom when it is
-// Student-t weighted. cfg must be valid.
+// Student-t weighted, and the map's survey error when it is set and a
+// sensor takes landmark fixes. cfg must be valid.
 func Levels(cfg fusion.Config) []NoiseLevel {
 	cfg = withDefaults(cfg)
 	var out []NoiseLevel
@@ -89,6 +101,9 @@ func Levels(cfg fusion.Config) []NoiseLevel {
 			continue
 		}
 		out = append(out, NoiseLevel{Field: l.field, Unit: l.unit, Sensor: -1, kind: levelNoise, noise: l.ptr})
+	}
+	if cfg.LandmarkPositionStdM > 0 && landmarkSensor(&cfg) {
+		out = append(out, NoiseLevel{Field: "landmark_position_std_m", Unit: "m", Sensor: -1, kind: levelSurvey})
 	}
 	for i, s := range cfg.Sensors {
 		f := fmt.Sprintf("sensors[%d]", i)
@@ -122,6 +137,8 @@ func (l NoiseLevel) Value(cfg *fusion.Config) float64 {
 		return cfg.Sensors[l.Sensor].CorrelationTimeS
 	case levelTail:
 		return cfg.Sensors[l.Sensor].RobustParameter
+	case levelSurvey:
+		return cfg.LandmarkPositionStdM
 	}
 	return 1
 }
@@ -143,6 +160,8 @@ func (l NoiseLevel) set(cfg *fusion.Config, v float64) {
 		cfg.Sensors[l.Sensor].CorrelationTimeS = v
 	case levelTail:
 		cfg.Sensors[l.Sensor].RobustParameter = v
+	case levelSurvey:
+		cfg.LandmarkPositionStdM = v
 	}
 }
 

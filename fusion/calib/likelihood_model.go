@@ -98,6 +98,29 @@ func chooseModel(cfg fusion.Config, inputs []RecordedInput) (fusion.Config, []Mo
 		cfg.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
 		cfg.Sensors[i] = best
 	}
+	if cfg.LandmarkPositionStdM == 0 && landmarkSensor(&cfg) && !ownSurvey(&cfg) {
+		// A marker map is surveyed ("Design: Landmark survey error"):
+		// markers 1 cm, 3 cm or 10 cm off, where the state has room
+		// for landmark blocks.
+		ll0 := p.configLogLik(cfg, nil)
+		best, bestLL := 0.0, ll0
+		for _, sd := range surveyCandidates {
+			c := cfg
+			c.LandmarkPositionStdM = sd
+			if c.Validate() != nil {
+				break
+			}
+			replays++
+			if ll := p.configLogLik(c, nil) - aicPenalty; ll > bestLL {
+				best, bestLL = sd, ll
+			}
+		}
+		replays++
+		if best > 0 {
+			cfg.LandmarkPositionStdM = best
+			changes = append(changes, ModelChange{"landmark_position_std_m", "0", g(best)})
+		}
+	}
 	if cfg.IMU == fusion.IMUAbsolute && cfg.Noise.IMUOffsetVarRad2PerRad == 0 {
 		// A gyro's scale error moves its heading's zero with every turn
 		// (noise.imu_offset_var_rad2_per_rad, "Design: Process noise"):
@@ -153,6 +176,21 @@ func g(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
 // an uncalibrated MEMS gyro's scale is within 1% to 3%, a calibrated one's
 // within a few tenths of a percent).
 var gyroScaleCandidates = []float64{1e-6, 1e-5, 1e-4}
+
+// surveyCandidates are the survey errors of a marker map the model choice
+// tries, metres.
+var surveyCandidates = []float64{0.01, 0.03, 0.1}
+
+// ownSurvey reports whether a landmark of c declares its own survey error:
+// the map is then described already.
+func ownSurvey(c *fusion.Config) bool {
+	for i := range c.Landmarks {
+		if c.Landmarks[i].PositionStdM > 0 {
+			return true
+		}
+	}
+	return false
+}
 
 // configLogLik is the log-likelihood of the run's innovations under cfg,
 // each sensor i's covariance taken scale[i] times as the fixes carry it

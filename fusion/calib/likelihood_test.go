@@ -369,3 +369,54 @@ func TestModelChoosesGyroScaleWalk(t *testing.T) {
 		}
 	}
 }
+
+// TestSurveyErrorFit: markers 3 cm off their map. The model choice adds
+// landmark_position_std_m (at 3 cm among 1, 3 and 10 cm) for that map and
+// nothing for an exact one; from 1 cm, the level fit finds the survey error
+// from the innovations' likelihood within a factor of 1.5 of the 3 cm the
+// simulator drew (the truth is known). The landmark blocks are estimated
+// states: as consider states their innovations' likelihood chose 1 cm.
+func TestSurveyErrorFit(t *testing.T) {
+	if testing.Short() {
+		t.Skip("replays a 2-minute run a dozen times")
+	}
+	for _, c := range []struct {
+		survey, want float64
+	}{{0.03, 0.03}, {0, 0}} {
+		sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 5, IMU: true, MarkerCount: 16, DurationS: 120, CameraHz: 10 / 3.0,
+			Errors: fusiontest.Errors{LandmarkSurveyM: c.survey}}
+		s, inputs := recorded(sc)
+		cfg, changes, _, replays, err := chooseModel(s.Config(), inputs)
+		if err != nil {
+			t.Fatal(err)
+		}
+		got := cfg.LandmarkPositionStdM
+		t.Logf("markers %g m off: chose %g m, changes %v, %d replays", c.survey, got, changes, replays)
+		if got != c.want {
+			t.Errorf("markers %g m off: %g m chosen, want %g", c.survey, got, c.want)
+		}
+		if c.survey == 0 {
+			continue
+		}
+		off := s.TrueModelConfig()
+		off.LandmarkPositionStdM = 0.01
+		var levels []NoiseLevel
+		for _, l := range Levels(off) {
+			if l.Field == "landmark_position_std_m" {
+				levels = append(levels, l)
+			}
+		}
+		if len(levels) != 1 {
+			t.Fatalf("levels with the survey error set: %d of landmark_position_std_m, want 1", len(levels))
+		}
+		fit, err := FitNoise(off, inputs, NoiseFitOptions{Levels: levels})
+		if err != nil {
+			t.Fatal(err)
+		}
+		l := fit.Levels[0]
+		t.Logf("%s configured %.3g fitted %.3g, 95%% [%.3g, %.3g] %v %s; %d replays", l.Field, l.Configured, l.Fitted, l.Lo, l.Hi, l.Identifiable, l.Note, fit.Replays)
+		if !l.Identifiable || l.Fitted < c.survey/1.5 || l.Fitted > 1.5*c.survey {
+			t.Errorf("fitted %.3g m (determined: %v), want within a factor of 1.5 of %g m", l.Fitted, l.Identifiable, c.survey)
+		}
+	}
+}

@@ -28,12 +28,12 @@ const (
 
 // raisesWhenUndetermined says whether a level is a variance, set to the
 // upper end of its interval when the run does not determine it: a process
-// noise term or a sensor's covariance factor. The filter's covariance
+// noise term, a sensor's covariance factor or the map's survey error. The filter's covariance
 // does not decrease as any of them grows (the Riccati recursion is
 // monotone in Q and R), so the upper end is the cautious side. A
 // correlation time or degrees of freedom have no such side and are kept.
 func (l NoiseLevel) raisesWhenUndetermined() bool {
-	return l.kind == levelNoise || l.kind == levelCovScale
+	return l.kind == levelNoise || l.kind == levelCovScale || l.kind == levelSurvey
 }
 
 // raiseUndetermined sets each variance level of levels that the run does

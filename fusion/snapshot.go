@@ -289,6 +289,21 @@ func (r *Robot) checkRestored() error {
 			if q[i].kind == entMeas && (q[i].sensor < 0 || q[i].sensor >= len(r.stats.sensors)) {
 				return fmt.Errorf("%w: entry of sensor %d of %d", ErrSnapshot, q[i].sensor, len(r.stats.sensors))
 			}
+			if err := r.checkStates(&q[i]); err != nil {
+				return err
+			}
+			if q[i].after.Slot != 0 {
+				var cp checkpoint
+				r.loadInto(&cp, &q[i].after)
+				if err := r.checkTable(&cp.lm); err != nil {
+					return err
+				}
+			}
+		}
+	}
+	for _, t := range []*lmTable{&r.lm, &r.base.lm} {
+		if err := r.checkTable(t); err != nil {
+			return err
 		}
 	}
 	for _, s := range states {
@@ -305,6 +320,37 @@ func (r *Robot) checkRestored() error {
 	for _, w := range []*nisWindow{&r.trust.fixes, &r.trust.imu} {
 		if len(w.nis) != len(w.dims) || len(w.nis) > 0 && (w.pos < 0 || w.pos >= len(w.nis) || w.fill < 0 || w.fill > len(w.nis)) {
 			return fmt.Errorf("%w: trust window of %d values, %d dimensions, at %d, %d filled", ErrSnapshot, len(w.nis), len(w.dims), w.pos, w.fill)
+		}
+	}
+	return nil
+}
+
+// checkStates checks that the states an entry's measurement names lie in
+// the robot's state, and its landmark in the configuration: a damaged
+// snapshot must not make the estimator panic at the next replay.
+func (r *Robot) checkStates(e *entry) error {
+	m := &e.meas
+	bad := func(at, dim int) bool { return at != 0 && (at < 3 || at+dim > r.n) }
+	for _, b := range m.Bias {
+		if bad(b, 1) {
+			return fmt.Errorf("%w: a measurement's bias state %d of %d", ErrSnapshot, b, r.n)
+		}
+	}
+	if bad(m.MountError, 3) || bad(m.LandmarkError, 2) {
+		return fmt.Errorf("%w: a measurement's mount states at %d or landmark states at %d of %d", ErrSnapshot, m.MountError, m.LandmarkError, r.n)
+	}
+	if e.lm < 0 || int(e.lm) > len(r.cfg.Landmarks) || !(m.LandmarkVar >= 0 && m.LandmarkVar <= maxLandmarkStdM*maxLandmarkStdM) {
+		return fmt.Errorf("%w: a fix of landmark %d of %d, survey variance %v", ErrSnapshot, e.lm, len(r.cfg.Landmarks), m.LandmarkVar)
+	}
+	return nil
+}
+
+// checkTable checks that a landmark block table names configured
+// landmarks.
+func (r *Robot) checkTable(t *lmTable) error {
+	for i := range t {
+		if t[i].id < 0 || int(t[i].id) > len(r.cfg.Landmarks) || i >= len(r.lmAt) && t[i].id != 0 {
+			return fmt.Errorf("%w: landmark block %d of %d stands for landmark %d of %d", ErrSnapshot, i, len(r.lmAt), t[i].id, len(r.cfg.Landmarks))
 		}
 	}
 	return nil

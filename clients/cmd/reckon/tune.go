@@ -41,7 +41,8 @@ not reject (set low it would make the covariance overconfident);
 times and degrees of freedom the run does not determine are always kept).
 With -model it first chooses the form of the noise model by the run's
 likelihood (a Gauss-Markov part and Student-t tails for each white
-Gaussian sensor, body-step noise per second instead of per metre), then
+Gaussian sensor, body-step noise per second instead of per metre, the IMU
+offset's walk per radian turned, the marker map's survey error), then
 fits its levels (the body-step levels on the run thinned to one fix per
 3 s, where a correlated camera's errors have mostly decorrelated). It
 writes the new configuration to -out and never overwrites the input. No
@@ -60,7 +61,7 @@ after into one HTML report with a calibration section at the top.`)
 	robot := fs.String("robot", "", "the robot, when the run is a journal directory")
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after")
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
-	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps, the IMU offset's walk per radian turned (a gyro's scale error); then fit its levels")
+	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps, the IMU offset's walk per radian turned (a gyro's scale error), the marker map's survey error (landmark_position_std_m); then fit its levels")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
 	keep := fs.Bool("keep-undetermined", false, "keep the variances the run does not determine at their configured values (default: the upper end of each one's 95% likelihood interval)")
 	pos, err := parseArgs(fs, args, stdout, stderr)

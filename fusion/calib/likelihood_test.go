@@ -299,15 +299,7 @@ func TestGyroScaleWalkFit(t *testing.T) {
 		Errors: fusiontest.Errors{GyroScale: 0.02}}
 	s, inputs := recorded(sc)
 	truth := s.TrueModelConfig()
-	var levels []NoiseLevel
-	for _, l := range Levels(truth) {
-		if l.Field == "noise.imu_offset_var_rad2_per_rad" {
-			levels = append(levels, l)
-		}
-	}
-	if len(levels) != 1 {
-		t.Fatalf("levels of a configuration with the walk set: %d of imu_offset_var_rad2_per_rad, want 1", len(levels))
-	}
+	levels := []NoiseLevel{levelNamed(t, truth, "noise.imu_offset_var_rad2_per_rad")}
 	want := levels[0].Value(&truth)
 	off := Apply(truth, levels, []float64{want / 100})
 	fit, err := FitNoise(off, inputs, NoiseFitOptions{Levels: levels})
@@ -400,15 +392,7 @@ func TestSurveyErrorFit(t *testing.T) {
 		}
 		off := s.TrueModelConfig()
 		off.LandmarkPositionStdM = 0.01
-		var levels []NoiseLevel
-		for _, l := range Levels(off) {
-			if l.Field == "landmark_position_std_m" {
-				levels = append(levels, l)
-			}
-		}
-		if len(levels) != 1 {
-			t.Fatalf("levels with the survey error set: %d of landmark_position_std_m, want 1", len(levels))
-		}
+		levels := []NoiseLevel{levelNamed(t, off, "landmark_position_std_m")}
 		fit, err := FitNoise(off, inputs, NoiseFitOptions{Levels: levels})
 		if err != nil {
 			t.Fatal(err)
@@ -419,4 +403,17 @@ func TestSurveyErrorFit(t *testing.T) {
 			t.Errorf("fitted %.3g m (determined: %v), want within a factor of 1.5 of %g m", l.Fitted, l.Identifiable, c.survey)
 		}
 	}
+}
+
+// levelNamed returns cfg's level of the field, which must be among its
+// levels (Levels).
+func levelNamed(t *testing.T, cfg fusion.Config, field string) NoiseLevel {
+	t.Helper()
+	for _, l := range Levels(cfg) {
+		if l.Field == field {
+			return l
+		}
+	}
+	t.Fatalf("no level %s among the configuration's", field)
+	return NoiseLevel{}
 }

@@ -8,8 +8,8 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	"reckon.example/fusion/fusiontest"
-	"reckon.example/server/journal"
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/journal"
 )
 
 // TestLandmarkBlocksRestore: a robot whose marker map has a survey error

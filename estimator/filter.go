@@ -596,9 +596,10 @@ func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u 
 // raw NIS (with the measurement's own covariance). A gated measurement, or
 // one that fails with an error, leaves the filter unchanged. With a robust
 // model the update uses the noise R / w, w the model's weight of the raw
-// NIS (DEVELOPERS.md, "Design: Measurement updates"). Bias states are
-// consider states: their gain rows are zero, and so are those of the states
-// m.Hold marks for this update. The update is in Joseph form,
+// NIS (DEVELOPERS.md, "Design: Measurement updates"). Bias and mount
+// states are consider states (a landmark block's are estimated): their gain
+// rows are zero, and so are those of the states m.Hold marks for this
+// update. The update is in Joseph form,
 //
 //	P' = (I - K H) P (I - K H)^T + K R K^T,
 //

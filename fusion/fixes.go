@@ -145,6 +145,9 @@ func (r *Robot) applyMeas(e *entry) error {
 	}
 	var err error
 	e.out, err = r.f.Update(&e.meas, r.gateFor(e))
+	if e.seeded && (err != nil || e.out.Gated) {
+		r.unseed(e)
+	}
 	return err
 }
 

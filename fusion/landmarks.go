@@ -122,14 +122,36 @@ func (r *Robot) landmarkBlock(e *entry) error {
 			return nil
 		}
 		c := [4]float64{v, 0, 0, v}
+		r.f.StateInto(&r.lmUndo.est)
+		r.lmUndo.k, r.lmUndo.was = k, r.lm[k]
 		if err := r.f.SeedBlock(r.lmAt[k], &c); err != nil {
 			return err
 		}
-		r.lm[k].id, e.seeded = e.lm, true
+		r.lm[k].id, r.lm[k].last, e.seeded = e.lm, math.MinInt64, true
 	}
 	r.lm[k].last = max(r.lm[k].last, e.t1)
 	e.meas.LandmarkError = r.lmAt[k]
 	return nil
+}
+
+// lmUndo keeps what landmarkBlock changed when it seeded a block: the
+// estimate before and the block's table entry.
+type lmUndo struct {
+	est estimator.State
+	k   int
+	was struct {
+		id   int32
+		last int64
+	}
+}
+
+// unseed takes back the seeding of entry e's block when its fix was gated
+// or failed: an outlier of a new landmark does not take the block of one
+// in view.
+func (r *Robot) unseed(e *entry) {
+	r.f.SetState(&r.lmUndo.est)
+	r.lm[r.lmUndo.k] = r.lmUndo.was
+	e.seeded = false
 }
 
 // packTable writes t into dst (lmWords values), bit for bit.

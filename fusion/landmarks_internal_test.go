@@ -151,6 +151,21 @@ func TestLandmarkBlockAssignment(t *testing.T) {
 	if len(seeded) != 2 || seeded[0] != 1 || seeded[1] != 3 {
 		t.Errorf("seeded by landmarks %v, want [1 3] (a, then c)", seeded)
 	}
+	// An outlier of b, 2 m long, when c's block is free to go (c last seen
+	// at 600 ms): gated, it leaves the block c's and the estimate as it
+	// was; the next good fix of b takes the block.
+	until(1.2e9)
+	before := r.f.State()
+	table := r.lm
+	rg, br := 5.0, math.Pi/2
+	res := r.AddFix(Fix{StampNs: 1.2e9, SensorID: "cam", Kind: FixLandmark, LandmarkID: "b", RangeM: &rg, BearingRad: &br})
+	if res.Verdict != VerdictGated {
+		t.Fatalf("outlier of b: %v %v, want gated", res.Verdict, res.Err)
+	}
+	if e := entryOf(res.Seq); e.seeded || r.lm != table || r.f.State() != before {
+		t.Errorf("a gated fix of b seeded a block (%v) or changed the table (%v, was %v) or the estimate", e.seeded, r.lm, table)
+	}
+	check(fix(1.25e9, "b"), true, true, 0)
 }
 
 // TestSnapshotKeepsMeasurementBlocks: a fix's mount and landmark error

@@ -22,9 +22,10 @@ type Robot struct {
 	// lmAt holds the first state of each landmark block, lm which
 	// landmark each stands for, lmVar each landmark's survey error
 	// variance (landmarks.go).
-	lmAt  []int
-	lm    lmTable
-	lmVar []float64
+	lmAt   []int
+	lm     lmTable
+	lmVar  []float64
+	lmUndo lmUndo
 	// cpSize is the length of a packed checkpoint in cps: the filter's
 	// packed estimate and, with landmark blocks, lm.
 	cpSize int

@@ -169,3 +169,147 @@ func unpackTable(t *lmTable, src []float64) {
 		t[i].last = int64(math.Float64bits(src[2*i+1]))
 	}
 }
+
+// LandmarkOffset is what a run learnt of one mapped landmark's survey
+// error while a landmark block stood for it: the estimated offset of its
+// true position from the mapped one (metres, field frame) with its
+// covariance, from the block's prior (PriorVarM2 in each axis) and that
+// visit's fixes. A landmark seen on several visits has one per visit;
+// CombineOffsets joins them.
+type LandmarkOffset struct {
+	ID string
+	// UntilNs is the stamp up to which the visit's fixes count: where the
+	// block went to another landmark, or the run's end.
+	UntilNs    int64
+	DXM, DYM   float64
+	Cov        [4]float64
+	PriorVarM2 float64
+}
+
+// CollectLandmarkOffsets makes the robot keep, as each becomes final,
+// what its landmark blocks learnt of each landmark (a map check: a marker
+// far off its mapped position shows as an offset many standard errors
+// long). Without landmark blocks there is nothing to keep.
+func (r *Robot) CollectLandmarkOffsets() {
+	if r.offsets == nil {
+		r.offsets = &offsetCollector{}
+	}
+}
+
+// FinishLandmarkOffsets makes every input of the run final and returns
+// the offsets not yet taken, the visits still open at the run's end
+// included (as FinishSteps: the robot takes no late samples older than its
+// newest odometry afterwards).
+func (r *Robot) FinishLandmarkOffsets() []LandmarkOffset {
+	if r.offsets == nil {
+		return nil
+	}
+	if n := len(r.live()); n > 0 {
+		r.dropFront(n)
+	}
+	st := r.f.State()
+	for b := range r.lmAt {
+		r.offsets.visit(r, &st, &r.lm, b, r.newest)
+	}
+	out := r.offsets.ready
+	r.offsets.ready = nil
+	return out
+}
+
+// offsetCollector keeps the landmark offsets of visits that ended.
+type offsetCollector struct {
+	ready []LandmarkOffset
+}
+
+// collect takes the visits that the seeding entries among the first k
+// live entries ended: the block's landmark and estimate just before each.
+func (c *offsetCollector) collect(r *Robot, k int) {
+	for i := range r.live()[:k] {
+		e := &r.live()[i]
+		if !e.seeded {
+			continue
+		}
+		cp := r.before(i)
+		for b, at := range r.lmAt {
+			if at == e.meas.LandmarkError {
+				c.visit(r, &cp.est, &cp.lm, b, e.t1)
+			}
+		}
+	}
+}
+
+// visit adds block b's estimate in st as a visit of the landmark table t
+// gives it, ending at until; nothing for an empty block.
+func (c *offsetCollector) visit(r *Robot, st *estimator.State, t *lmTable, b int, until int64) {
+	id := t[b].id
+	if id == 0 {
+		return
+	}
+	at := r.lmAt[b]
+	c.ready = append(c.ready, LandmarkOffset{ID: r.cfg.Landmarks[id-1].ID, UntilNs: until,
+		DXM: st.MeanAt(at), DYM: st.MeanAt(at + 1),
+		Cov:        [4]float64{st.At(at, at), st.At(at, at+1), st.At(at+1, at), st.At(at+1, at+1)},
+		PriorVarM2: r.lmVar[id-1]})
+}
+
+// CombineOffsets joins the visits of each landmark into one estimate, in
+// the order of first visit: each visit's posterior is its prior times the
+// likelihood of its fixes, so the likelihoods are the posteriors'
+// information less the prior's, and their sum with one prior is the
+// estimate from every visit (information form; the visits' fixes taken as
+// independent given the offset, which the pose errors they share make a
+// little optimistic).
+func CombineOffsets(visits []LandmarkOffset) []LandmarkOffset {
+	type acc struct {
+		info [4]float64 // information, 2x2
+		vec  [2]float64 // information times mean
+		out  LandmarkOffset
+	}
+	var order []string
+	by := map[string]*acc{}
+	for _, v := range visits {
+		a, ok := by[v.ID]
+		if !ok {
+			p := 1 / v.PriorVarM2
+			a = &acc{info: [4]float64{p, 0, 0, p}, out: LandmarkOffset{ID: v.ID, PriorVarM2: v.PriorVarM2}}
+			by[v.ID] = a
+			order = append(order, v.ID)
+		}
+		inv, ok := inverse2(v.Cov)
+		if !ok {
+			continue
+		}
+		p := 1 / v.PriorVarM2
+		a.info[0] += inv[0] - p
+		a.info[1] += inv[1]
+		a.info[2] += inv[2]
+		a.info[3] += inv[3] - p
+		a.vec[0] += inv[0]*v.DXM + inv[1]*v.DYM
+		a.vec[1] += inv[2]*v.DXM + inv[3]*v.DYM
+		a.out.UntilNs = max(a.out.UntilNs, v.UntilNs)
+	}
+	out := make([]LandmarkOffset, 0, len(order))
+	for _, id := range order {
+		a := by[id]
+		cov, ok := inverse2(a.info)
+		if !ok {
+			continue
+		}
+		a.out.Cov = cov
+		a.out.DXM = cov[0]*a.vec[0] + cov[1]*a.vec[1]
+		a.out.DYM = cov[2]*a.vec[0] + cov[3]*a.vec[1]
+		out = append(out, a.out)
+	}
+	return out
+}
+
+// inverse2 inverts the symmetric 2x2 matrix m; false unless it is
+// positive definite.
+func inverse2(m [4]float64) ([4]float64, bool) {
+	s := (m[1] + m[2]) / 2
+	det := m[0]*m[3] - s*s
+	if !(m[0] > 0 && det > 0) {
+		return [4]float64{}, false
+	}
+	return [4]float64{m[3] / det, -s / det, -s / det, m[0] / det}, true
+}

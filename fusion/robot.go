@@ -26,6 +26,9 @@ type Robot struct {
 	lm     lmTable
 	lmVar  []float64
 	lmUndo lmUndo
+	// offsets, when not nil, keeps what the blocks learnt of each
+	// landmark as it becomes final (CollectLandmarkOffsets).
+	offsets *offsetCollector
 	// cpSize is the length of a packed checkpoint in cps: the filter's
 	// packed estimate and, with landmark blocks, lm.
 	cpSize int

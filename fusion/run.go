@@ -63,12 +63,22 @@ func (r *Robot) StartRun(s RunStart) Result {
 		res.Resolved = append(res.Resolved, Resolution{Seq: e.seq, Verdict: VerdictTooOld,
 			Err: fmt.Errorf("%w: stamp_ns %d is on the clock of run %d, which ended", ErrTooOld, e.t1, r.Run())})
 	}
-	if r.steps != nil {
+	if r.steps != nil || r.offsets != nil {
 		if n := len(r.live()); n > 0 {
 			r.dropFront(n)
 		}
+	}
+	if r.steps != nil {
 		r.steps.emit()
 		r.steps.restart = true
+	}
+	if r.offsets != nil {
+		// The run's open visits end with it: the new run's blocks start
+		// empty.
+		st := r.f.State()
+		for b := range r.lmAt {
+			r.offsets.visit(r, &st, &r.lm, b, r.newest)
+		}
 	}
 	fresh, err := New(r.cfg)
 	if err != nil {
@@ -79,7 +89,7 @@ func (r *Robot) StartRun(s RunStart) Result {
 	carryInto(&st, &last, &fresh.layout, &s)
 	fresh.f.SetState(&st)
 	fresh.base = checkpoint{est: fresh.f.State()}
-	fresh.seq, fresh.stats, fresh.steps = r.seq, r.stats, r.steps
+	fresh.seq, fresh.stats, fresh.steps, fresh.offsets = r.seq, r.stats, r.steps, r.offsets
 	fresh.run, fresh.bootID = r.run+1, s.BootID
 	fresh.trust.reasons = r.trust.reasons
 	*r = *fresh

@@ -358,6 +358,9 @@ func (r *Robot) dropFront(k int) {
 	if r.innov != nil {
 		r.innov.collect(r, k)
 	}
+	if r.offsets != nil {
+		r.offsets.collect(r, k)
+	}
 	for i := range live[:k] {
 		if live[i].failed {
 			r.setErr(live[i].seq, nil)

@@ -85,6 +85,18 @@ func (run *Run) lines() [][2]string {
 		out = append(out, [2]string{"NEES against truth", fmt.Sprintf("mean %.2f filtered, %.2f smoothed (3 if consistent); median %.2f filtered, %.2f smoothed (2.37 if consistent)",
 			s.FilteredNEES, s.SmoothedNEES, s.FilteredNEESMedian, s.SmoothedNEESMedian)})
 	}
+	if s.MarkersSeen > 0 {
+		m := fmt.Sprintf("%d of %d markers carried in landmark blocks stand off their mapped positions beyond the 99%% region (the map's survey error declared %g m)",
+			len(s.MarkersOff), s.MarkersSeen, run.Config.LandmarkPositionStdM)
+		for i, o := range s.MarkersOff {
+			if i == 8 {
+				m += fmt.Sprintf("; and %d more", len(s.MarkersOff)-8)
+				break
+			}
+			m += fmt.Sprintf("; %s by (%+.3f, %+.3f) m, standard deviation (%.3f, %.3f)", o.ID, o.DXM, o.DYM, math.Sqrt(o.Cov[0]), math.Sqrt(o.Cov[3]))
+		}
+		out = append(out, [2]string{"map check", m})
+	}
 	for _, g := range s.Gaps {
 		out = append(out, [2]string{"GAP", g + "; the review goes on past it"})
 	}

@@ -151,6 +151,12 @@ type Summary struct {
 	Gaps     []string
 	GapsAt   []int64
 	HasTruth bool
+	// Markers is the map check, with landmark blocks in the configuration
+	// (landmark_position_std_m): how many markers the blocks carried
+	// (MarkersSeen) and, most significant first, those whose offset from
+	// the map the recording shows beyond its 99% region (MarkersOff).
+	MarkersSeen int
+	MarkersOff  []fusion.LandmarkOffset
 	// TruthMatched counts the estimate's steps the truth was interpolated
 	// to, of TruthSteps steps; TruthMaxGapNs is the largest gap between
 	// the two truth rows used for one of them.
@@ -369,6 +375,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	rc.add(fr, true, fr.Run() == rc.want)
+	run.Summary.markers(fr.FinishLandmarkOffsets())
 	if err := fw.close(); err != nil {
 		return nil, err
 	}
@@ -658,6 +665,7 @@ func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
 func (rc *recorder) opened(fr *fusion.Robot) {
 	rc.run.Config = fr.Config()
 	fr.CollectSteps()
+	fr.CollectLandmarkOffsets()
 	fr.SwapSteps(rc.fw.batch())
 	rc.last = fr.Run()
 }
@@ -1342,4 +1350,35 @@ func (h *logHistogram) median() float64 {
 		}
 	}
 	return math.NaN()
+}
+
+// markerOffGate is the 99% quantile of the chi-square with 2 degrees of
+// freedom, -2 ln(0.01) (closed form for 2 dof): an offset beyond it is a
+// marker off its map.
+var markerOffGate = -2 * math.Log(0.01)
+
+// markers sets the map check from the visits the robot's landmark blocks
+// made (fusion.Robot.FinishLandmarkOffsets), every run of the recording
+// replayed: the markers' offsets joined over their visits, and those
+// beyond markerOffGate, most significant first.
+func (s *Summary) markers(visits []fusion.LandmarkOffset) {
+	offs := fusion.CombineOffsets(visits)
+	s.MarkersSeen = len(offs)
+	type scored struct {
+		o fusion.LandmarkOffset
+		q float64
+	}
+	var off []scored
+	for _, o := range offs {
+		det := o.Cov[0]*o.Cov[3] - o.Cov[1]*o.Cov[2]
+		q := (o.Cov[3]*o.DXM*o.DXM - (o.Cov[1]+o.Cov[2])*o.DXM*o.DYM + o.Cov[0]*o.DYM*o.DYM) / det
+		if det > 0 && q > markerOffGate {
+			off = append(off, scored{o, q})
+		}
+	}
+	sort.SliceStable(off, func(i, j int) bool { return off[i].q > off[j].q })
+	s.MarkersOff = s.MarkersOff[:0]
+	for _, x := range off {
+		s.MarkersOff = append(s.MarkersOff, x.o)
+	}
 }

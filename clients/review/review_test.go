@@ -350,3 +350,50 @@ func TestTruthTapeOrFile(t *testing.T) {
 		}
 	}
 }
+
+// TestReviewMapCheck: the cart drives among 16 aisle markers each 3 cm off
+// its map; reviewed with the map's survey error declared (Override), the
+// summary's map check names the markers whose offset the recording shows
+// beyond its 99% region, each offset within four of its standard
+// deviations of the simulator's truth (fusiontest's MarkerOffset), and the
+// text says so. Reviewed with the map taken as exact, it has no map check.
+func TestReviewMapCheck(t *testing.T) {
+	sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 74, DurationS: 60,
+		Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}
+	dir, _ := writeRun(t, sc)
+	sim := fusiontest.New(sc)
+	for _, ok := sim.Next(); ok; _, ok = sim.Next() {
+	}
+	cfg := sim.Config()
+	cfg.LandmarkPositionStdM = 0.03
+	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Override: convert.ConfigToProto(cfg)}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := run.Summary
+	t.Logf("map check: %d of %d markers off", len(s.MarkersOff), s.MarkersSeen)
+	if s.MarkersSeen < 8 || len(s.MarkersOff) == 0 {
+		t.Fatalf("map check of %d markers, %d off; want most of the 16 seen and some off", s.MarkersSeen, len(s.MarkersOff))
+	}
+	for _, o := range s.MarkersOff {
+		dx, dy, ok := sim.MarkerOffset(o.ID)
+		if !ok {
+			t.Fatalf("%s named off the map, but the camera never saw it", o.ID)
+		}
+		if math.Abs(o.DXM-dx) > 4*math.Sqrt(o.Cov[0]) || math.Abs(o.DYM-dy) > 4*math.Sqrt(o.Cov[3]) {
+			t.Errorf("%s: found (%+.3f, %+.3f) m, sd (%.3f, %.3f); true (%+.3f, %+.3f)", o.ID, o.DXM, o.DYM, math.Sqrt(o.Cov[0]), math.Sqrt(o.Cov[3]), dx, dy)
+		}
+	}
+	var txt bytes.Buffer
+	WriteText(&txt, run)
+	if !strings.Contains(txt.String(), "map check:") || !strings.Contains(txt.String(), s.MarkersOff[0].ID+" by (") {
+		t.Errorf("the summary does not name the markers off the map:\n%s", txt.String())
+	}
+	exact, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if exact.Summary.MarkersSeen != 0 {
+		t.Errorf("a map check (%d markers) without landmark blocks", exact.Summary.MarkersSeen)
+	}
+}

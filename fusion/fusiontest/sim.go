@@ -657,6 +657,14 @@ func (sm *Sim) surveyed(i int, m fusion.Landmark) (float64, float64) {
 	return m.XM + off[0], m.YM + off[1]
 }
 
+// MarkerOffset returns how far marker id stands off its mapped position
+// in this run (Errors.LandmarkSurveyM), in the simulator's frame, once the
+// camera has seen it; ok is false before.
+func (sm *Sim) MarkerOffset(id string) (dx, dy float64, ok bool) {
+	off, ok := sm.survey[id]
+	return off[0], off[1], ok
+}
+
 func (sm *Sim) emitCamera(t int64) {
 	lat := sm.s.LatencyMinS + sm.rng.Float64()*(sm.s.LatencyMaxS-sm.s.LatencyMinS)
 	in := Input{ArrivalNs: t + int64(lat*1e9), Truth: sm.s.ToField(sm.truth), Bumped: sm.bumped}

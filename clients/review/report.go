@@ -106,7 +106,11 @@ func (run *Run) lines() [][2]string {
 	if s.RunNote != "" {
 		out = append(out, [2]string{"NOTE", s.RunNote})
 	}
-	out = append(out, [2]string{"exports", run.FilteredCSV + ", " + run.SmoothedCSV + ", " + run.FixesCSV})
+	exports := run.FilteredCSV + ", " + run.SmoothedCSV + ", " + run.FixesCSV
+	if run.MarkersCSV != "" {
+		exports += ", " + run.MarkersCSV
+	}
+	out = append(out, [2]string{"exports", exports})
 	return out
 }
 

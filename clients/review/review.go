@@ -157,6 +157,9 @@ type Summary struct {
 	// the map the recording shows beyond its 99% region (MarkersOff).
 	MarkersSeen int
 	MarkersOff  []fusion.LandmarkOffset
+	// Markers holds every marker's joined offset, in the order of first
+	// visit.
+	Markers []fusion.LandmarkOffset
 	// TruthMatched counts the estimate's steps the truth was interpolated
 	// to, of TruthSteps steps; TruthMaxGapNs is the largest gap between
 	// the two truth rows used for one of them.
@@ -192,6 +195,10 @@ type Run struct {
 	// FilteredCSV and SmoothedCSV are the exports written, and FixesCSV
 	// (every fix with its final verdict).
 	FilteredCSV, SmoothedCSV, FixesCSV string
+	// MarkersCSV is the map check's export (every marker the landmark
+	// blocks carried, its offset and a corrected position), "" without
+	// landmark blocks.
+	MarkersCSV string
 }
 
 // truthReader reads a truth CSV forwards and interpolates it to stamps
@@ -380,6 +387,12 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		return nil, err
 	}
 	run.Config = fr.Config()
+	if run.Summary.MarkersSeen > 0 {
+		run.MarkersCSV = filepath.Join(outDir, run.Label+"-markers.csv")
+		if err := writeMarkers(run.MarkersCSV, &run.Config, run.Summary.Markers); err != nil {
+			return nil, err
+		}
+	}
 	rc.a.finish(rc.ending(fr))
 	// The fixes are final now: their export is written while the smoother
 	// runs.
@@ -1357,22 +1370,28 @@ func (h *logHistogram) median() float64 {
 // marker off its map.
 var markerOffGate = -2 * math.Log(0.01)
 
+// offMap returns the squared Mahalanobis length of a marker's offset and
+// whether it lies beyond markerOffGate.
+func offMap(o *fusion.LandmarkOffset) (float64, bool) {
+	det := o.Cov[0]*o.Cov[3] - o.Cov[1]*o.Cov[2]
+	q := (o.Cov[3]*o.DXM*o.DXM - (o.Cov[1]+o.Cov[2])*o.DXM*o.DYM + o.Cov[0]*o.DYM*o.DYM) / det
+	return q, det > 0 && q > markerOffGate
+}
+
 // markers sets the map check from the visits the robot's landmark blocks
 // made (fusion.Robot.FinishLandmarkOffsets), every run of the recording
 // replayed: the markers' offsets joined over their visits, and those
 // beyond markerOffGate, most significant first.
 func (s *Summary) markers(visits []fusion.LandmarkOffset) {
 	offs := fusion.CombineOffsets(visits)
-	s.MarkersSeen = len(offs)
+	s.MarkersSeen, s.Markers = len(offs), offs
 	type scored struct {
 		o fusion.LandmarkOffset
 		q float64
 	}
 	var off []scored
 	for _, o := range offs {
-		det := o.Cov[0]*o.Cov[3] - o.Cov[1]*o.Cov[2]
-		q := (o.Cov[3]*o.DXM*o.DXM - (o.Cov[1]+o.Cov[2])*o.DXM*o.DYM + o.Cov[0]*o.DYM*o.DYM) / det
-		if det > 0 && q > markerOffGate {
+		if q, ok := offMap(&o); ok {
 			off = append(off, scored{o, q})
 		}
 	}
@@ -1381,4 +1400,35 @@ func (s *Summary) markers(visits []fusion.LandmarkOffset) {
 	for _, x := range off {
 		s.MarkersOff = append(s.MarkersOff, x.o)
 	}
+}
+
+// writeMarkers writes the map check's export: per marker its mapped
+// position, the offset the recording shows with its standard deviations
+// and correlation, the position corrected by it, and whether it lies
+// beyond the 99% region (off_map).
+func writeMarkers(path string, cfg *fusion.Config, offs []fusion.LandmarkOffset) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return err
+	}
+	w := csv.NewWriter(f)
+	w.Write([]string{"id", "mapped_x_m", "mapped_y_m", "offset_x_m", "offset_y_m", "sd_x_m", "sd_y_m", "corr_xy", "corrected_x_m", "corrected_y_m", "off_map"})
+	at := map[string]fusion.Landmark{}
+	for _, l := range cfg.Landmarks {
+		at[l.ID] = l
+	}
+	num := func(v float64) string { return strconv.FormatFloat(v, 'f', 4, 64) }
+	for _, o := range offs {
+		l := at[o.ID]
+		sx, sy := math.Sqrt(o.Cov[0]), math.Sqrt(o.Cov[3])
+		_, off := offMap(&o)
+		w.Write([]string{o.ID, num(l.XM), num(l.YM), num(o.DXM), num(o.DYM), num(sx), num(sy), num(o.Cov[1] / (sx * sy)),
+			num(l.XM + o.DXM), num(l.YM + o.DYM), strconv.FormatBool(off)})
+	}
+	w.Flush()
+	if err := w.Error(); err != nil {
+		f.Close()
+		return err
+	}
+	return f.Close()
 }

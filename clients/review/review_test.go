@@ -389,6 +389,24 @@ func TestReviewMapCheck(t *testing.T) {
 	if !strings.Contains(txt.String(), "map check:") || !strings.Contains(txt.String(), s.MarkersOff[0].ID+" by (") {
 		t.Errorf("the summary does not name the markers off the map:\n%s", txt.String())
 	}
+	f, err := os.Open(run.MarkersCSV)
+	if err != nil {
+		t.Fatal(err)
+	}
+	rows, err := csv.NewReader(f).ReadAll()
+	f.Close()
+	if err != nil || len(rows) != s.MarkersSeen+1 || len(rows[0]) != 11 {
+		t.Fatalf("%s: %d rows (%v), want a header and %d markers of 11 columns", run.MarkersCSV, len(rows), err, s.MarkersSeen)
+	}
+	off := 0
+	for _, r := range rows[1:] {
+		if r[10] == "true" {
+			off++
+		}
+	}
+	if off != len(s.MarkersOff) {
+		t.Errorf("%d markers marked off the map in the export, %d in the summary", off, len(s.MarkersOff))
+	}
 	exact, err := Analyze(Source{JournalDir: dir, Robot: "cart"}, t.TempDir(), Options{})
 	if err != nil {
 		t.Fatal(err)

@@ -111,3 +111,37 @@ func TestSnapshotErrors(t *testing.T) {
 		}
 	}
 }
+
+// TestOlderSnapshotsRestore: the golden snapshot of every version this
+// build reads (5 to SnapshotVersion) restores with the golden robot's
+// configuration, and the restored robot takes more of the greenhouse run
+// (its first fix after the restore included).
+func TestOlderSnapshotsRestore(t *testing.T) {
+	cfg, _ := goldenRobot()
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 4,
+		OutlierFraction: 0.2, Bump: &fusiontest.Bump{AtS: 2, DXM: 1}}
+	_, ins := collect(sc)
+	for v := 5; v <= fusion.SnapshotVersion; v++ {
+		b, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", fmt.Sprintf("greenhouse-v%d.bin", v)))
+		if err != nil {
+			t.Fatalf("version %d: %v", v, err)
+		}
+		r, err := fusion.RestoreSnapshot(cfg, b)
+		if err != nil {
+			t.Fatalf("version %d does not restore: %v", v, err)
+		}
+		fixes, from := 0, r.NewestNs()
+		for i := range ins {
+			if ins[i].StampNs() <= from {
+				continue
+			}
+			res := fusiontest.Feed(r, &ins[i])
+			if ins[i].Fix != nil && res.Verdict != fusion.VerdictInvalid {
+				fixes++
+			}
+		}
+		if p := r.Pose(); fixes == 0 || p.StampNs <= 3e9 {
+			t.Errorf("version %d: restored robot took %d fixes, ends at %d ns", v, fixes, p.StampNs)
+		}
+	}
+}

@@ -69,6 +69,8 @@ type Layout struct {
 	offset, forwardScale, turnScale, rate int
 	blocks                                [maxBlocks]biasBlock
 	nb                                    int
+	// cons has bit i set for each consider state i (consider).
+	cons uint16
 }
 
 // biasBlock is a placed BiasSpec.
@@ -126,6 +128,9 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 		symmetrise(b.Cov[:], b.Dim, 3) // symmetric to the bit, as the filter keeps P
 		l.blocks[l.nb] = biasBlock{at: l.n, BiasSpec: b}
 		l.nb++
+		if !b.Landmark {
+			l.cons |= (1<<b.Dim - 1) << l.n
+		}
 		l.n += b.Dim
 	}
 	return l, nil
@@ -178,14 +183,4 @@ func (l *Layout) Angles() uint16 {
 // consider reports whether state i is a consider state (a bias or mount
 // block's), whose gain row is zero (DEVELOPERS.md, "Design: Measurement
 // updates"). A landmark block's states are estimated.
-func (l *Layout) consider(i int) bool {
-	if l.nb == 0 || i < l.blocks[0].at {
-		return false
-	}
-	for k := l.nb - 1; k >= 0; k-- {
-		if b := &l.blocks[k]; i >= b.at {
-			return !b.Landmark
-		}
-	}
-	return true
-}
+func (l *Layout) consider(i int) bool { return l.cons&(1<<i) != 0 }

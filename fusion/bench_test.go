@@ -79,10 +79,22 @@ func BenchmarkHour(b *testing.B) {
 		}
 		ins = append(ins, in)
 	}
-	for _, c := range []struct {
-		name string
-		cfg  fusion.Config
-	}{{"plain", base}, {"all-options", allOptions(base)}} {
+	benchRuns(b, ins, []benchCase{{"plain", base}, {"all-options", allOptions(base)}}, func(b *testing.B) {
+		b.ReportMetric(float64(len(ins)), "samples/op")
+	})
+}
+
+// benchCase is one configuration a benchmark runs the same inputs under.
+type benchCase struct {
+	name string
+	cfg  fusion.Config
+}
+
+// benchRuns runs the inputs through a new robot of each case's
+// configuration per iteration, as a sub-benchmark each, and reports with
+// report at its end.
+func benchRuns(b *testing.B, ins []fusiontest.Input, cases []benchCase, report func(*testing.B)) {
+	for _, c := range cases {
 		b.Run(c.name, func(b *testing.B) {
 			b.ReportAllocs()
 			for b.Loop() {
@@ -94,7 +106,7 @@ func BenchmarkHour(b *testing.B) {
 					b.Fatal("NaN")
 				}
 			}
-			b.ReportMetric(float64(len(ins)), "samples/op")
+			report(b)
 		})
 	}
 }
@@ -119,22 +131,7 @@ func BenchmarkLandmarkTenMinutes(b *testing.B) {
 		}
 		ins = append(ins, in)
 	}
-	for _, c := range []struct {
-		name string
-		cfg  fusion.Config
-	}{{"exact-map", exact}, {"survey", survey}} {
-		b.Run(c.name, func(b *testing.B) {
-			b.ReportAllocs()
-			for b.Loop() {
-				r, _ := fusion.New(c.cfg)
-				for i := range ins {
-					fusiontest.Feed(r, &ins[i])
-				}
-				if p := r.Pose(); math.IsNaN(p.Pose.X) {
-					b.Fatal("NaN")
-				}
-			}
-			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*len(ins)), "ns/sample")
-		})
-	}
+	benchRuns(b, ins, []benchCase{{"exact-map", exact}, {"survey", survey}}, func(b *testing.B) {
+		b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*len(ins)), "ns/sample")
+	})
 }

@@ -12,9 +12,9 @@ import (
 // off its map, the offsets the landmark blocks learnt, joined over each
 // marker's visits (CombineOffsets), are consistent with the simulator's
 // true offsets (the mean of their normalised squared errors, 2 degrees of
-// freedom each, within the chi-square band of 2N degrees over N markers,
-// quantiles by the Wilson-Hilferty approximation, from memory) and closer
-// to them than the map is (their RMS error below the survey error's RMS).
+// freedom each, within the two-sided 95% chi-square band of 2N degrees
+// over N markers, quantiles from gonum stat/distuv: chiBand) and closer to
+// them than the map is (their RMS error below the survey error's RMS).
 func TestLandmarkOffsets(t *testing.T) {
 	sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 12, DurationS: 120,
 		Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}
@@ -38,8 +38,11 @@ func TestLandmarkOffsets(t *testing.T) {
 			t.Fatalf("an offset of %s, which the camera never saw", o.ID)
 		}
 		ex, ey := o.DXM-dx, o.DYM-dy
-		det := o.Cov[0]*o.Cov[3] - o.Cov[1]*o.Cov[2]
-		nees += (o.Cov[3]*ex*ex - 2*o.Cov[1]*ex*ey + o.Cov[0]*ey*ey) / det
+		q, ok := o.Mahalanobis(dx, dy)
+		if !ok {
+			t.Fatalf("%s: covariance %v not positive definite", o.ID, o.Cov)
+		}
+		nees += q
 		errSq += ex*ex + ey*ey
 		mapSq += dx*dx + dy*dy
 		n++
@@ -48,9 +51,7 @@ func TestLandmarkOffsets(t *testing.T) {
 	if n < 8 {
 		t.Fatalf("offsets of %d markers from %d visits", n, len(visits))
 	}
-	k := float64(2 * n)
-	band := func(z float64) float64 { return k * math.Pow(1-2/(9*k)+z*math.Sqrt(2/(9*k)), 3) / float64(n) }
-	lo, hi := band(-1.96), band(1.96)
+	lo, hi := chiBand(2*n, n)
 	mean := nees / float64(n)
 	rmsErr, rmsMap := math.Sqrt(errSq/float64(n)), math.Sqrt(mapSq/float64(n))
 	t.Logf("%d markers, %d visits: mean normalised squared error %.2f, band [%.2f, %.2f]; RMS error %.4f m against the map's %.4f m", n, len(visits), mean, lo, hi, rmsErr, rmsMap)

@@ -186,6 +186,15 @@ type LandmarkOffset struct {
 	PriorVarM2 float64
 }
 
+// Mahalanobis returns the squared Mahalanobis length of the offset less
+// (dx, dy) under its covariance (from its own origin: 0, 0); false if the
+// covariance is not positive definite.
+func (o *LandmarkOffset) Mahalanobis(dx, dy float64) (float64, bool) {
+	d := [3]float64{o.DXM - dx, o.DYM - dy}
+	c := [9]float64{o.Cov[0], o.Cov[1], 0, o.Cov[2], o.Cov[3], 0, 0, 0, 1}
+	return estimator.Mahalanobis(&d, &c)
+}
+
 // CollectLandmarkOffsets makes the robot keep, as each becomes final,
 // what its landmark blocks learnt of each landmark (a map check: a marker
 // far off its mapped position shows as an offset many standard errors

@@ -143,58 +143,59 @@ func (r *Robot) foldBias(m *estimator.Measurement) {
 		}
 	}
 	m.Bias = [3]int{}
+	if m.MountError == 0 && m.LandmarkError == 0 && m.LandmarkVar == 0 {
+		return
+	}
+	x := make([]float64, r.n)
+	for i := range x {
+		x[i] = st.MeanAt(i)
+	}
 	if me := m.MountError; me > 0 {
 		// The mount's error (consider states, mean 0) joins R through
 		// its Jacobian: R += H_m P_mm H_m^T.
-		x := make([]float64, r.n)
-		for i := range x {
-			x[i] = st.MeanAt(i)
-		}
 		if _, h, err := m.Predicted(x); err == nil {
-			n := r.n
-			for i := 0; i < d; i++ {
-				for j := 0; j < d; j++ {
-					var v float64
-					for a := range 3 {
-						for b := range 3 {
-							v += h[i*n+me+a] * st.At(me+a, me+b) * h[j*n+me+b]
-						}
-					}
-					m.R[i*3+j] += v
+			var c [9]float64
+			for a := range 3 {
+				for b := range 3 {
+					c[a*3+b] = st.At(me+a, me+b)
 				}
 			}
+			addThroughJacobian(m, h, r.n, me, 3, c[:])
 		}
 		m.MountError = 0
 	}
 	if le, v := m.LandmarkError, m.LandmarkVar; le > 0 || v > 0 {
 		// The landmark's survey error (its block's estimate, or white)
-		// joins R through its Jacobian, minus the robot position's; the
-		// block's mean moves the landmark.
-		x := make([]float64, r.n)
-		for i := range x {
-			x[i] = st.MeanAt(i)
-		}
+		// joins R through its Jacobian, minus the robot position's (the
+		// sign squares out); the block's mean moves the landmark.
 		if le > 0 {
 			m.LandmarkX, m.LandmarkY = m.LandmarkX+x[le], m.LandmarkY+x[le+1]
 		}
 		m.LandmarkError, m.LandmarkVar = 0, 0
 		if _, h, err := m.Predicted(x); err == nil {
-			n := r.n
 			c := [4]float64{v, 0, 0, v}
 			if le > 0 {
 				c = [4]float64{st.At(le, le), st.At(le, le+1), st.At(le+1, le), st.At(le+1, le+1)}
 			}
-			for i := 0; i < d; i++ {
-				for j := 0; j < d; j++ {
-					var acc float64
-					for a := range 2 {
-						for b := range 2 {
-							acc += h[i*n+a] * c[a*2+b] * h[j*n+b]
-						}
-					}
-					m.R[i*3+j] += acc
+			addThroughJacobian(m, h, r.n, 0, 2, c[:])
+		}
+	}
+}
+
+// addThroughJacobian adds H_c C H_c^T to m.R: H_c the k columns from col
+// of the Jacobian h (Dim() x n, row-major), C the k x k covariance c
+// (row-major) of the states or quantities those columns stand for.
+func addThroughJacobian(m *estimator.Measurement, h []float64, n, col, k int, c []float64) {
+	d := m.Kind.Dim()
+	for i := 0; i < d; i++ {
+		for j := 0; j < d; j++ {
+			var acc float64
+			for a := range k {
+				for b := range k {
+					acc += h[i*n+col+a] * c[a*k+b] * h[j*n+col+b]
 				}
 			}
+			m.R[i*3+j] += acc
 		}
 	}
 }

@@ -1366,16 +1366,15 @@ func (h *logHistogram) median() float64 {
 }
 
 // markerOffGate is the 99% quantile of the chi-square with 2 degrees of
-// freedom, -2 ln(0.01) (closed form for 2 dof): an offset beyond it is a
-// marker off its map.
-var markerOffGate = -2 * math.Log(0.01)
+// freedom (the estimator's gate): an offset beyond it is a marker off its
+// map.
+var markerOffGate, _ = estimator.GateThreshold(0.99, 2)
 
 // offMap returns the squared Mahalanobis length of a marker's offset and
 // whether it lies beyond markerOffGate.
 func offMap(o *fusion.LandmarkOffset) (float64, bool) {
-	det := o.Cov[0]*o.Cov[3] - o.Cov[1]*o.Cov[2]
-	q := (o.Cov[3]*o.DXM*o.DXM - (o.Cov[1]+o.Cov[2])*o.DXM*o.DYM + o.Cov[0]*o.DYM*o.DYM) / det
-	return q, det > 0 && q > markerOffGate
+	q, ok := o.Mahalanobis(0, 0)
+	return q, ok && q > markerOffGate
 }
 
 // markers sets the map check from the visits the robot's landmark blocks

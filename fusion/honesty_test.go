@@ -57,6 +57,10 @@ func honestyCases() []honestyCase {
 		// A 2% gyro scale error, the true model a random walk of the IMU
 		// offset of 4e-4 rad^2 per radian turned.
 		{name: "gyro-scale", sc: pose(fusiontest.Errors{GyroScale: 0.02}), conservative: true},
+		// A gyro's rate bias of 3e-4 rad/s (a standard deviation over
+		// runs), the true model a random walk of the IMU offset spread over
+		// the offset's time constant.
+		{name: "gyro-bias", sc: pose(fusiontest.Errors{GyroBiasRadPerS: 3e-4})},
 		// An IMU stamped 40 ms after it read its heading.
 		{name: "imu-late", sc: pose(fusiontest.Errors{IMUStampLateNs: 40e6})},
 		// Markers 3 cm off the map in each axis (placed by tape measure).
@@ -123,7 +127,8 @@ func TestHonestWhiteModelFails(t *testing.T) {
 // 88% (noise per second), 3.08 and 92% (commanded with scale), 2.63
 // and 84% (a 2% gyro scale error under a random walk of the IMU offset per
 // radian turned; every checkpoint outside lies below the band: the walk
-// describes the scale's bias on average, on the safe side).
+// describes the scale's bias on average, on the safe side), 2.90 and 96%
+// (a gyro's rate bias, its walk spread over the offset's time constant).
 func TestHonestTrueModel(t *testing.T) {
 
 	for _, c := range honestyCases() {

@@ -30,8 +30,9 @@
 //     angle random walk is a random walk of the heading with variance N^2
 //     per second. Bias instability and rate random walk make the heading
 //     drift faster than a random walk; the filter has no state for them, so
-//     they are spread over a horizon T (the time between the fixes or
-//     headings that correct the offset): a bias of B held over T gives an
+//     they are spread over a horizon T, the time constant of the filter's
+//     estimate of the offset (Noise.OffsetHorizon; far longer than the time
+//     between the fixes that correct it): a bias of B held over T gives an
 //     angle variance B^2 T^2, a rate random walk K^2 T^3 / 3, each divided
 //     by T. This is an approximation, good near T and pessimistic below it.
 //     B enters only when the plot shows a flat segment.

@@ -141,6 +141,42 @@ func TestIMUTermsMapping(t *testing.T) {
 	within(t, "offset without B", nz.IMUTerms(10, 0.5).OffsetVarRad2PerS, 4e-6+9e-10*100/3, 1e-12)
 }
 
+// The offset's horizon against the closed forms of T = sqrt(R / q(T))
+// for each term alone (OffsetHorizon's comment): N alone, T = sqrt(R) / N;
+// B alone, B^2 T^3 = R, so that the walk B^2 T is B^(4/3) R^(1/3); K alone,
+// K^2 T^4 / 3 = R.
+func TestOffsetHorizonClosedForms(t *testing.T) {
+	const fixVar, interval = 4e-4, 0.3 // 0.02 rad at 3.3 Hz
+	r := fixVar * interval
+	cases := []struct {
+		name string
+		nz   Noise
+		want float64
+	}{
+		{"N", Noise{N: Term{Coef: 1e-3, Found: true}}, math.Sqrt(r) / 1e-3},
+		{"B", Noise{B: Term{Coef: 3e-4, Found: true}}, math.Cbrt(r / 9e-8)},
+		{"K", Noise{K: Term{Coef: 2e-5, Found: true}}, math.Pow(3*r/4e-10, 0.25)},
+	}
+	for _, c := range cases {
+		got, ok := c.nz.OffsetHorizon(fixVar, interval)
+		if !ok {
+			t.Fatalf("%s: no horizon", c.name)
+		}
+		within(t, c.name, got, c.want, 1e-9)
+	}
+	b := Noise{B: Term{Coef: 3e-4, Found: true}}
+	h, _ := b.OffsetHorizon(fixVar, interval)
+	within(t, "B's walk", b.IMUTerms(h, 0.5).OffsetVarRad2PerS, math.Pow(3e-4, 4.0/3)*math.Cbrt(r), 1e-9)
+	if _, ok := (Noise{Q: Term{Coef: 1e-3, Found: true}}).OffsetHorizon(fixVar, interval); ok {
+		t.Error("a horizon for reading noise alone, which never moves the offset")
+	}
+	for _, bad := range [][2]float64{{0, 0.3}, {4e-4, 0}, {math.NaN(), 0.3}, {math.Inf(1), 0.3}, {-1, 0.3}} {
+		if _, ok := b.OffsetHorizon(bad[0], bad[1]); ok {
+			t.Errorf("a horizon for fix variance %v every %v s", bad[0], bad[1])
+		}
+	}
+}
+
 func TestRatesFromHeadingsRefuses(t *testing.T) {
 	stamps := []int64{0, 10, 20, 30, 40, 50, 60, 70}
 	h := make([]float64, 8)

@@ -70,6 +70,12 @@ type Errors struct {
 	// measure: 1 to 5 cm). Each marker's draw is its own, whatever the
 	// order the camera sees them in.
 	LandmarkSurveyM float64
+	// GyroBiasRadPerS is the standard deviation of a gyro's rate bias left
+	// after its zeroing at start: each run draws one bias from a normal of
+	// this deviation, and the IMU's heading zero drifts at that rate all
+	// run (3e-4 rad/s, 60 degrees an hour, for an inexpensive MEMS gyro
+	// whose temperature changes; from memory).
+	GyroBiasRadPerS float64
 }
 
 // camera reports whether any camera error process is on.

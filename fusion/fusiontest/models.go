@@ -33,7 +33,9 @@ func (s Scenario) WhiteConfig() fusion.Config { return s.Config() }
 //     (CommandedForwardVarM2PerS and its siblings) instead of the per-metre
 //     spread of WhiteConfig, the per-metre terms left negligible
 //     (commandedTrueNoise);
-//   - a marker map's survey error: LandmarkPositionStdM.
+//   - a marker map's survey error: LandmarkPositionStdM;
+//   - a gyro's rate bias: a random walk of the IMU offset that spreads it
+//     over the time constant of the offset's estimate.
 //
 // Everything else is Config.
 func (s Scenario) TrueModelConfig() fusion.Config {
@@ -59,6 +61,14 @@ func (s Scenario) TrueModelConfig() fusion.Config {
 	}
 	c.IMULatencyNs = s.IMUStampLateNs
 	c.LandmarkPositionStdM = s.LandmarkSurveyM
+	if s.GyroBiasRadPerS > 0 {
+		// A drift of b rad/s spread over the offset's time constant T:
+		// q = b^2 T with T = sqrt(R / q), R the pose fixes' heading noise
+		// density, which gives b^(4/3) R^(1/3) (calib's OffsetHorizon and
+		// its closed-form test).
+		r := s.Heading.CameraStdRad * s.Heading.CameraStdRad / s.CameraHz
+		c.Noise.IMUOffsetVarRad2PerS += math.Pow(s.GyroBiasRadPerS, 4.0/3) * math.Cbrt(r)
+	}
 	if s.GyroScale != 0 {
 		// A random walk of f^2 per radian covers a scale error f over
 		// the turn of about a radian between fixes (DEVELOPERS.md,

@@ -354,7 +354,8 @@ type Sim struct {
 	turnAbs                             float64        // true angle turned since the last odometry sample, rad
 	gyroErr                             float64        // the gyro's accumulated heading error, rad
 
-	errs errorState // the real error processes, with their own random source
+	errs     errorState // the real error processes, with their own random source
+	gyroBias float64    // the gyro's rate bias (Errors.GyroBiasRadPerS), rad/s
 	// survey holds each marker's survey error (Errors.LandmarkSurveyM)
 	// once drawn, by id.
 	survey map[string][2]float64
@@ -392,6 +393,9 @@ func New(s Scenario) *Sim {
 	sm.nextCam = 50e6
 	sm.imuOffset = 0.7 // the IMU zeroed at power-on, facing elsewhere
 	sm.errs = newErrorState(s.Seed)
+	if s.GyroBiasRadPerS > 0 { // drawn only then: the other processes' draws stay as they were
+		sm.gyroBias = sm.errs.rng.NormFloat64() * s.GyroBiasRadPerS
+	}
 	return sm
 }
 
@@ -567,6 +571,8 @@ func (sm *Sim) generate() {
 	// A gyro whose scale is off reads every turn, the hand's included, that
 	// fraction wrong.
 	sm.imuOffset += sm.s.GyroScale * estimator.Wrap(sm.truth.Heading-prev.Heading)
+	// A gyro's rate bias moves the zero at its rate.
+	sm.imuOffset += sm.gyroBias * float64(t-prevT) * 1e-9
 	if !sm.s.NoiseFree && t > prevT {
 		sm.imuOffset += sm.rng.NormFloat64() * math.Sqrt(sm.s.Heading.IMUOffsetVarRad2PerS*float64(t-prevT)*1e-9)
 	}

@@ -29,7 +29,9 @@ configuration with those terms; it never overwrites the input.`)
 	config := fs.String("config", "", "YAML robot configuration to start from (with -out)")
 	out := fs.String("out", "", "the new YAML configuration (with -config); refused if it exists, unless -force")
 	force := fs.Bool("force", false, "replace -out if it exists")
-	horizon := fs.Float64("horizon", 10, "seconds over which bias instability and rate random walk are spread into the offset's random walk: the time between the fixes or headings that correct it")
+	horizon := fs.Float64("horizon", 10, "seconds over which bias instability and rate random walk are spread into the offset's random walk: the time constant with which the fixes correct the offset, far longer than the time between them (-fix-heading-std and -fix-interval solve it)")
+	fixStd := fs.Float64("fix-heading-std", 0, "standard deviation of the heading of the fixes that correct the IMU's offset, rad (with -fix-interval, instead of -horizon)")
+	fixInterval := fs.Float64("fix-interval", 0, "seconds between those fixes (with -fix-heading-std)")
 	turnRate := fs.Float64("turn-rate", 0.5, "a typical turn rate, rad/s, for the printed imu_turn_var_rad2_per_rad, the angle random walk per radian turned (not written: imu_mode rotation takes the walk per second, imu_offset_var_rad2_per_s)")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
@@ -44,6 +46,12 @@ configuration with those terms; it never overwrites the input.`)
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
 	case !(*horizon > 0) || !(*turnRate > 0):
 		return usagef(fs, "-horizon and -turn-rate must be positive")
+	case (*fixStd != 0) != (*fixInterval != 0):
+		return usagef(fs, "-fix-heading-std and -fix-interval go together")
+	case *fixStd != 0 && !(*fixStd > 0 && *fixStd < 10 && *fixInterval > 0 && *fixInterval < 1e6):
+		return usagef(fs, "-fix-heading-std %v rad and -fix-interval %v s must be positive (below 10 rad and 1e6 s)", *fixStd, *fixInterval)
+	case *fixStd != 0 && isSet(fs, "horizon"):
+		return usagef(fs, "-horizon, or -fix-heading-std with -fix-interval, not both")
 	}
 	if *out != "" && !*force {
 		if _, err := os.Stat(*out); err == nil {
@@ -63,8 +71,16 @@ configuration with those terms; it never overwrites the input.`)
 	}
 	pts := calib.AllanDeviation(nil, rates, dt, calib.ClusterSizes(len(rates)/2, 10))
 	nz := calib.Fit(pts, len(rates))
+	how := "-horizon"
+	if *fixStd > 0 {
+		how = "no drift term to spread: -horizon, unused"
+		if h, ok := nz.OffsetHorizon(*fixStd**fixStd, *fixInterval); ok {
+			*horizon = h
+			how = fmt.Sprintf("the time constant of the offset's estimate under fixes of heading std %g rad every %g s", *fixStd, *fixInterval)
+		}
+	}
 	terms := nz.IMUTerms(*horizon, *turnRate)
-	if err := printIMUNoise(stdout, pos[0], len(headings), dt, pts, nz, terms, *horizon, *turnRate); err != nil {
+	if err := printIMUNoise(stdout, pos[0], len(headings), dt, pts, nz, terms, *horizon, how, *turnRate); err != nil {
 		return err
 	}
 	if *config == "" {
@@ -132,7 +148,7 @@ func termRows(nz calib.Noise) []struct {
 	}
 }
 
-func printIMUNoise(w io.Writer, file string, n int, dt float64, pts []calib.Point, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64) error {
+func printIMUNoise(w io.Writer, file string, n int, dt float64, pts []calib.Point, nz calib.Noise, terms calib.IMUTerms, horizon float64, horizonHow string, turnRate float64) error {
 	fmt.Fprintf(w, "%s: %d headings every %.4g s (%.0f s)\n\n", file, n, dt, float64(n-1)*dt)
 	fmt.Fprintln(w, "overlapping Allan deviation of the heading rate (IEEE Std 952-1997, Annex C):")
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
@@ -158,7 +174,7 @@ func printIMUNoise(w io.Writer, file string, n int, dt float64, pts []calib.Poin
 		}
 	}
 	tw.Flush()
-	fmt.Fprintf(w, "\nconfiguration terms (horizon %g s, turn rate %g rad/s; fusion/calib has the mapping):\n", horizon, turnRate)
+	fmt.Fprintf(w, "\nconfiguration terms (horizon T %.3g s: %s; turn rate %g rad/s; fusion/calib has the mapping):\n", horizon, horizonHow, turnRate)
 	for _, c := range configRows(terms) {
 		if c.value > 0 {
 			fmt.Fprintf(w, "  noise.%s: %.4g\t# %s\n", c.key, c.value, c.how)
@@ -220,7 +236,7 @@ func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, 
 		return fmt.Errorf("%w: the Allan deviation of %s determines none of the IMU terms this robot uses", errRefused, file)
 	}
 	changes, err := writeConfigEdits(in, out, edits, func(changes []string) string {
-		return fmt.Sprintf("reckon imu-noise: %s; from the overlapping Allan deviation (IEEE Std 952-1997, Annex C) of the static recording %s: %s; horizon T %g s, turn rate %g rad/s",
+		return fmt.Sprintf("reckon imu-noise: %s; from the overlapping Allan deviation (IEEE Std 952-1997, Annex C) of the static recording %s: %s; horizon T %.3g s, turn rate %g rad/s",
 			strings.Join(changes, ", "), file, termSummary(nz), horizon, turnRate)
 	})
 	if err != nil {

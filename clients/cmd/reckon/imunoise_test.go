@@ -7,6 +7,7 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 
@@ -165,6 +166,41 @@ func TestIMUNoiseRefuses(t *testing.T) {
 	} {
 		if _, stderr, code := runCode(t, ctx, "", c.args...); code != c.code {
 			t.Errorf("%s: exit %d, want %d: %s", c.name, code, c.code, stderr)
+		}
+	}
+}
+
+// TestIMUNoiseHorizonFromFixes: -fix-heading-std and -fix-interval solve
+// the horizon, the time constant of the offset's estimate; for angle random
+// walk alone it is sqrt(R) / N with R the fixes' heading variance times
+// their interval (calib's OffsetHorizon, closed form). The flags go
+// together and exclude -horizon.
+func TestIMUNoiseHorizonFromFixes(t *testing.T) {
+	const arw, q = 1e-3, 5e-4
+	rec := filepath.Join(t.TempDir(), "static.jsonl")
+	writeStatic(t, rec, 60_000, arw, q)
+	ctx := context.Background()
+	stdout, stderr, code := runCode(t, ctx, "", "imu-noise", "-fix-heading-std", "0.02", "-fix-interval", "0.3", rec)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	_, after, ok := strings.Cut(stdout, "horizon T ")
+	var got float64
+	if ok {
+		got, _ = strconv.ParseFloat(strings.Fields(after)[0], 64)
+	}
+	if want := math.Sqrt(0.02*0.02*0.3) / arw; math.Abs(got-want) > 0.1*want || !strings.Contains(stdout, "time constant") {
+		t.Errorf("horizon %v s, want %.3g within 10%% (N read within 5%%), said to be the offset's time constant:\n%s", got, want, stdout)
+	}
+	for _, args := range [][]string{
+		{"-fix-heading-std", "0.02"},
+		{"-fix-interval", "0.3"},
+		{"-fix-heading-std", "0.02", "-fix-interval", "0.3", "-horizon", "5"},
+		{"-fix-heading-std", "-0.02", "-fix-interval", "0.3"},
+		{"-fix-heading-std", "NaN", "-fix-interval", "0.3"},
+	} {
+		if _, _, code := runCode(t, ctx, "", append(append([]string{"imu-noise"}, args...), rec)...); code != exitUsage {
+			t.Errorf("%v: exit %d, want %d", args, code, exitUsage)
 		}
 	}
 }

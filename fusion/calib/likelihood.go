@@ -221,14 +221,15 @@ func newReplayer(cfg fusion.Config, inputs []RecordedInput, levels []NoiseLevel)
 }
 
 // stampOf returns input i's place in stamp order: its stamp (a fix's
-// capture time) and 0 for odometry, 1 for the rest.
+// capture time, an IMU heading's reading) and 0 for odometry, 1 for the
+// rest.
 func (p *replayer) stampOf(i int) (int64, int) {
 	in := &p.inputs[i]
 	switch {
 	case in.Odometry != nil:
 		return in.Odometry.StampNs, 0
 	case in.Heading != nil:
-		return in.Heading.StampNs, 1
+		return in.Heading.StampNs - p.base.IMULatencyNs, 1
 	}
 	t := in.Fix.StampNs
 	if si, ok := p.sensor[in.Fix.SensorID]; ok {

@@ -417,3 +417,38 @@ func levelNamed(t *testing.T, cfg fusion.Config, field string) NoiseLevel {
 	t.Fatalf("no level %s among the configuration's", field)
 	return NoiseLevel{}
 }
+
+// TestIMULatencyChoice: the model choice finds the latency of an IMU
+// stamped after its reading from the run's likelihood alone, to the 5 ms of
+// its grid, and none for an IMU stamped when read (fusiontest's
+// IMUStampLateNs; two minutes of the greenhouse cart with pose fixes at
+// 3.3 Hz). The likelihood of a run stamped L late, replayed with latency
+// L, equals that of the run stamped when read with none
+// (TestIMULatencyEqualsStampShift in fusion), so each true latency is a
+// peak; 100 ms lies between the candidates 80 and 160 ms.
+func TestIMULatencyChoice(t *testing.T) {
+	if testing.Short() {
+		t.Skip("replays a 2-minute run 60 times a case")
+	}
+	// The likelihood ratio test's threshold: half the chi-square quantile
+	// of one degree of freedom at 0.999 (gonum stat/distuv).
+	if q := (distuv.ChiSquared{K: 1}).Quantile(0.999) / 2; math.Abs(q-latencyGain) > 1e-3 {
+		t.Errorf("latencyGain %v, want %v", latencyGain, q)
+	}
+	for _, late := range []int64{0, 40e6, 100e6} {
+		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 5, IMU: true, DurationS: 120, CameraHz: 10 / 3.0,
+			Errors: fusiontest.Errors{IMUStampLateNs: late}}
+		s, inputs := recorded(sc)
+		cfg, changes, _, replays, err := chooseModel(s.Config(), inputs)
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Logf("stamped %d ms late: chose %d ms, changes %v, %d replays", late/1e6, cfg.IMULatencyNs/1e6, changes, replays)
+		if d := cfg.IMULatencyNs - late; d < -latencyStepNs || d > latencyStepNs {
+			t.Errorf("stamped %d ms late: chose %.1f ms", late/1e6, float64(cfg.IMULatencyNs)/1e6)
+		}
+		if late > 0 && (len(changes) == 0 || changes[0].Field != "imu_latency_ns") {
+			t.Errorf("changes %v do not name imu_latency_ns first", changes)
+		}
+	}
+}

@@ -307,7 +307,7 @@ func printTune(w io.Writer, file string, inputs []calib.RecordedInput, skipped i
 		for _, m := range fit.Model {
 			ch = append(ch, fmt.Sprintf("%s %s -> %s", m.Field, m.From, m.To))
 		}
-		fmt.Fprintf(w, "noise model chosen by likelihood (Akaike's criterion), the levels below fitted in it: %s\n\n", strings.Join(ch, ", "))
+		fmt.Fprintf(w, "noise model chosen by likelihood (Akaike's criterion; the IMU latency by a likelihood ratio test), the levels below fitted in it: %s\n\n", strings.Join(ch, ", "))
 	}
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 	cols, rows := levelTable(fit)

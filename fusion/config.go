@@ -94,7 +94,11 @@ func (n *Noise) stepNoise(dst *[9]float64, s estimator.Step, dtS float64) {
 // DefaultNoise returns the noise model used where a Noise field is zero. It
 // suits small robots with free-rolling encoder wheels and a MEMS gyro
 // (common practice: about half a percent of travel, a few milliradians of
-// IMU heading noise).
+// IMU heading noise). The IMU offset's walk, 1e-6 rad^2/s, covers a gyro
+// whose zero drifts 3e-4 rad/s (about a degree a minute, an inexpensive
+// MEMS gyro's; from memory) under fixes a few times a second: the honesty
+// case gyro-bias, where 1e-7 left the filter overconfident (DEVELOPERS.md,
+// "Design: Process noise").
 func DefaultNoise() Noise {
 	return Noise{
 		WheelVarM2PerM:        2.5e-5,
@@ -106,7 +110,7 @@ func DefaultNoise() Noise {
 		StepTurnVarRad2PerRad: 1e-4,
 		IMUHeadingVarRad2:     2.5e-5,
 		IMUTurnVarRad2PerRad:  1e-6,
-		IMUOffsetVarRad2PerS:  1e-7,
+		IMUOffsetVarRad2PerS:  1e-6,
 	}
 }
 

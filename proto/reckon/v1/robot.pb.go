@@ -1061,7 +1061,7 @@ type NoiseModel struct {
 	ImuHeadingVarRad2 float64 `protobuf:"fixed64,8,opt,name=imu_heading_var_rad2,json=imuHeadingVarRad2,proto3" json:"imu_heading_var_rad2,omitempty"`
 	// Variance of the IMU turn row per radian turned (1e-6).
 	ImuTurnVarRad2PerRad float64 `protobuf:"fixed64,9,opt,name=imu_turn_var_rad2_per_rad,json=imuTurnVarRad2PerRad,proto3" json:"imu_turn_var_rad2_per_rad,omitempty"`
-	// Random walk of the IMU's heading zero per second (1e-7): the offset
+	// Random walk of the IMU's heading zero per second (1e-6): the offset
 	// state's in IMU_MODE_ABSOLUTE, the heading's in IMU_MODE_ROTATION (the
 	// zero's drift enters every turn the IMU reports).
 	ImuOffsetVarRad2PerS float64 `protobuf:"fixed64,10,opt,name=imu_offset_var_rad2_per_s,json=imuOffsetVarRad2PerS,proto3" json:"imu_offset_var_rad2_per_s,omitempty"`

@@ -151,3 +151,34 @@ func first(data []byte) string {
 	line, _, _ := strings.Cut(string(data), "\n")
 	return line
 }
+
+// TestTuneIMULatency: tune -model finds the latency of an IMU that stamps
+// its headings 40 ms after reading them (fusiontest's IMUStampLateNs) from
+// a simulated minute, to the 5 ms of its grid, says so, and writes it to
+// the new configuration, which loads (calib's TestIMULatencyChoice has the
+// method).
+func TestTuneIMULatency(t *testing.T) {
+	dir := t.TempDir()
+	samples, truth := filepath.Join(dir, "run.jsonl"), filepath.Join(dir, "truth.csv")
+	writeSim(t, fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 5, IMU: true, Counts: true, DurationS: 60, SensorCovariance: true,
+		Errors: fusiontest.Errors{IMUStampLateNs: 40e6}}), samples, truth)
+	out := filepath.Join(dir, "tuned.yaml")
+	stdout, stderr, code := runCode(t, context.Background(), "", "tune", "-model", "-config", exampleConfig, "-samples", samples, "-out", out)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	if !strings.Contains(stdout, "imu_latency_ns 0 -> ") {
+		t.Errorf("the summary does not name the latency chosen:\n%s", stdout)
+	}
+	data, err := os.ReadFile(out)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, cfg, err := convert.LoadConfigYAML(data)
+	if err != nil {
+		t.Fatalf("the new configuration: %v\n%s", err, data)
+	}
+	if d := cfg.IMULatencyNs - 40e6; d < -5e6 || d > 5e6 {
+		t.Errorf("imu_latency_ns %d, want 40 ms within 5 ms\n%s", cfg.IMULatencyNs, stdout)
+	}
+}

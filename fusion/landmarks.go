@@ -48,6 +48,11 @@ func (c *Config) landmarkVar(l *Landmark) float64 {
 	return s * s
 }
 
+// LandmarkSurveyVar returns the variance of landmark l's survey error in
+// each axis (m^2): its own position_std_m squared, or the configuration's
+// landmark_position_std_m squared.
+func (c *Config) LandmarkSurveyVar(l *Landmark) float64 { return c.landmarkVar(l) }
+
 // landmarkVarMax returns the largest survey error variance of the
 // landmarks (m^2), or 0 when no sensor takes landmark fixes.
 func (c *Config) landmarkVarMax() float64 {

@@ -184,12 +184,24 @@ func (m *sysModel) intervals(odo []fusion.Odometry) {
 }
 
 // prepareFixes keeps the fixes of configured sensors with a covariance,
-// inside the odometry's span, sorted by stamp, and whitens them.
+// inside the odometry's span, sorted by stamp, and whitens them. A landmark
+// fix that carries a range takes its landmark's survey error
+// (fusion.Config.LandmarkSurveyVar, v per axis) into its covariance as
+// white noise: a landmark off its map by d errs in range by d along the
+// line of sight and in bearing by d across it over the range r, so that
+// v I in the plane adds diag(v, v / r^2) to (range, bearing) whatever the
+// direction. The filter carries the error as landmark blocks, which
+// correlate a landmark's sightings ("Design: Landmark survey error"); the
+// fit's segments, robust standard errors take up what repeats within a
+// segment. A bearing-only fix, whose range the fit does not know here,
+// keeps its own covariance.
 func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
 	first, last := m.ivs[0].t0, m.ivs[len(m.ivs)-1].t1
 	lms := map[string][2]float64{}
-	for _, l := range m.cfg.Landmarks {
+	survey := map[string]float64{}
+	for i, l := range m.cfg.Landmarks {
 		lms[l.ID] = [2]float64{l.XM, l.YM}
+		survey[l.ID] = m.cfg.LandmarkSurveyVar(&m.cfg.Landmarks[i])
 	}
 	for k := range fixes {
 		fx := &fixes[k]
@@ -242,6 +254,15 @@ func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
 		if len(cov) == 0 {
 			cov = sen.Cov
 		}
+		if v := survey[fx.LandmarkID]; f.kind == fusion.FixLandmark && f.rng && v > 0 && len(cov) == f.dim*f.dim {
+			cov = append([]float64(nil), cov...)
+			cov[0] += v
+			if r := *fx.RangeM; f.brg && r > minSurveyRangeM {
+				cov[3] += v / (r * r)
+			} else if f.brg {
+				cov[3] += v / (minSurveyRangeM * minSurveyRangeM)
+			}
+		}
 		if len(cov) != f.dim*f.dim || !whiten(&f.winv, cov, f.dim) {
 			continue
 		}
@@ -252,6 +273,11 @@ func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
 	}
 	slices.SortStableFunc(m.fixes, func(a, b sysFix) int { return cmp.Compare(a.stamp, b.stamp) })
 }
+
+// minSurveyRangeM bounds the range by which prepareFixes divides a survey
+// error into bearing: a landmark a few centimetres away (or a range that
+// says so) would otherwise give its bearing a variance of radians squared.
+const minSurveyRangeM = 0.1
 
 // gaussMarkov sets f.gm for its sensor's correlated error (fusion.Sensor:
 // the stationary covariance CorrelatedFraction times the sensor's

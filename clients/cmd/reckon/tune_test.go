@@ -170,14 +170,7 @@ func TestTuneIMULatency(t *testing.T) {
 	if !strings.Contains(stdout, "imu_latency_ns 0 -> ") {
 		t.Errorf("the summary does not name the latency chosen:\n%s", stdout)
 	}
-	data, err := os.ReadFile(out)
-	if err != nil {
-		t.Fatal(err)
-	}
-	_, cfg, err := convert.LoadConfigYAML(data)
-	if err != nil {
-		t.Fatalf("the new configuration: %v\n%s", err, data)
-	}
+	_, cfg := readConfigFile(t, out)
 	if d := cfg.IMULatencyNs - 40e6; d < -5e6 || d > 5e6 {
 		t.Errorf("imu_latency_ns %d, want 40 ms within 5 ms\n%s", cfg.IMULatencyNs, stdout)
 	}

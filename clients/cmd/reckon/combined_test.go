@@ -39,8 +39,9 @@ func combinedScenario(seed uint64) fusiontest.Scenario {
 // Tune chose the IMU latency (35, 30 and 30 ms for 30) and a survey error
 // (fitted 6.4, 6.1 and 22.6 cm for 3), and the camera's Gauss-Markov part
 // on seeds 2 and 3: honest, but on seed 3 far on the safe side, at twice
-// the calibrated configuration's error (a known limit, DEVELOPERS.md,
-// "Design: Landmark survey error"). A minute or three of calibrate and tune
+// the calibrated configuration's error: the survey error takes up what the
+// calibration left (a known limit, DEVELOPERS.md, "Design: Landmark survey
+// error"). A minute or three of calibrate and tune
 // a seed, so it runs only with RECKON_COMBINED=n, for n seeds.
 func TestCombinedErrors(t *testing.T) {
 	n, _ := strconv.Atoi(os.Getenv("RECKON_COMBINED"))

@@ -71,9 +71,9 @@ configuration with those terms; it never overwrites the input.`)
 	}
 	pts := calib.AllanDeviation(nil, rates, dt, calib.ClusterSizes(len(rates)/2, 10))
 	nz := calib.Fit(pts, len(rates))
-	how := "-horizon"
+	how := "set by -horizon; -fix-heading-std and -fix-interval would solve it"
 	if *fixStd > 0 {
-		how = "no drift term to spread: -horizon, unused"
+		how = "set by -horizon, unused: no drift term to spread"
 		if h, ok := nz.OffsetHorizon(*fixStd**fixStd, *fixInterval); ok {
 			*horizon = h
 			how = fmt.Sprintf("the time constant of the offset's estimate under fixes of heading std %g rad every %g s", *fixStd, *fixInterval)

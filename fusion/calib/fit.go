@@ -340,19 +340,7 @@ func (nz Noise) OffsetHorizon(fixVarRad2, intervalS float64) (horizonS float64, 
 	if !(r > 0) || math.IsInf(r, 0) || !(intervalS > 0) || !(nz.N.Found || nz.B.Found || nz.K.Found) {
 		return 0, false
 	}
-	walk := func(t float64) float64 {
-		var n2, b2, k2 float64
-		if nz.N.Found {
-			n2 = nz.N.Coef * nz.N.Coef
-		}
-		if nz.B.Found {
-			b2 = nz.B.Coef * nz.B.Coef
-		}
-		if nz.K.Found {
-			k2 = nz.K.Coef * nz.K.Coef
-		}
-		return n2 + b2*t + k2*t*t/3
-	}
+	walk := func(t float64) float64 { return nz.IMUTerms(t, 1).OffsetVarRad2PerS }
 	// t^2 q(t) - R rises with t: bisect its root on a logarithmic scale.
 	lo, hi := 1e-6, 1e9
 	if hi*hi*walk(hi) < r {

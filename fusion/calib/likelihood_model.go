@@ -66,8 +66,8 @@ func chooseModel(cfg fusion.Config, inputs []RecordedInput) (fusion.Config, []Mo
 	replays := 1
 	var changes []ModelChange
 	if cfg.IMU == fusion.IMUAbsolute && cfg.IMULatencyNs == 0 && hasHeadings(inputs) {
-		// An IMU stamped after its reading lags every turn (imu_latency_ns,
-		// "Design: Noise by likelihood"). First, before the gyro's scale
+		// An IMU stamped after its reading lags every turn (imu_latency_ns;
+		// DEVELOPERS.md, "Design: Gating and recovery"). First, before the gyro's scale
 		// below: a lag's heading errors grow with the turn too.
 		lat, n := p.imuLatency(cfg)
 		replays += n
@@ -234,7 +234,7 @@ func (p *replayer) imuLatency(cfg fusion.Config) (int64, int) {
 	}
 	step := max(int64(latencyStepNs), (hi-lo)/16)
 	for lat := lo; lat <= hi; lat += step {
-		if lat == bestLat || slices.Contains(latencyCandidates, lat) {
+		if slices.Contains(latencyCandidates, lat) { // evaluated above
 			continue
 		}
 		replays++

@@ -257,10 +257,8 @@ func (m *sysModel) prepareFixes(fixes []fusion.Fix) {
 		if v := survey[fx.LandmarkID]; f.kind == fusion.FixLandmark && f.rng && v > 0 && len(cov) == f.dim*f.dim {
 			cov = append([]float64(nil), cov...)
 			cov[0] += v
-			if r := *fx.RangeM; f.brg && r > minSurveyRangeM {
+			if r := max(*fx.RangeM, minSurveyRangeM); f.brg {
 				cov[3] += v / (r * r)
-			} else if f.brg {
-				cov[3] += v / (minSurveyRangeM * minSurveyRangeM)
 			}
 		}
 		if len(cov) != f.dim*f.dim || !whiten(&f.winv, cov, f.dim) {

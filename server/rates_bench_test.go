@@ -114,8 +114,8 @@ func p99(d []time.Duration) time.Duration {
 // p99s are the medians of the runs' p99s (a run whose machine stalled for
 // a moment sets the p99 of all the runs' verdicts pooled: pooled-p99-ratio).
 // A third run in each iteration, of the service without a journal (memory
-// only, a mode of its own), gives memory-only-cpu-ratio: the journal's
-// share is the difference.
+// only, a mode of its own), gives memory-only-cpu-ratio and
+// memory-only-p99-ratio: the journal's share is the difference.
 func BenchmarkRobotRates(b *testing.B) {
 	samp, cfg := cartRun(31, ratesWarm.Seconds()+ratesSeconds)
 	stampNs := make([]int64, len(samp))
@@ -151,7 +151,7 @@ func BenchmarkRobotRates(b *testing.B) {
 		return float64(c.Nanoseconds()) / float64(len(l)), l
 	}
 	fullRun := func() (float64, []time.Duration) { return serviceRun(b.TempDir()) }
-	var bareCPU, fullCPU, memCPU, pairs, bareP99, fullP99 []float64
+	var bareCPU, fullCPU, memCPU, pairs, bareP99, fullP99, memP99 []float64
 	var bareLat, fullLat []time.Duration
 	for b.Loop() {
 		var bc, fc float64
@@ -163,8 +163,9 @@ func BenchmarkRobotRates(b *testing.B) {
 			fc, fl = fullRun()
 			bc, bl = bareRun()
 		}
-		mc, _ := serviceRun("")
+		mc, ml := serviceRun("")
 		bareCPU, fullCPU, memCPU, pairs = append(bareCPU, bc), append(fullCPU, fc), append(memCPU, mc), append(pairs, fc/bc)
+		memP99 = append(memP99, float64(p99(ml)))
 		bareLat, fullLat = append(bareLat, bl...), append(fullLat, fl...)
 		bareP99, fullP99 = append(bareP99, float64(p99(bl))), append(fullP99, float64(p99(fl)))
 	}
@@ -178,6 +179,7 @@ func BenchmarkRobotRates(b *testing.B) {
 	b.ReportMetric(bp/1e3, "bare-p99-us")
 	b.ReportMetric(fp/1e3, "p99-us")
 	b.ReportMetric(fp/bp, "p99-ratio")
+	b.ReportMetric(median(memP99)/bp, "memory-only-p99-ratio")
 	b.ReportMetric(float64(p99(fullLat))/float64(p99(bareLat)), "pooled-p99-ratio")
 }
 

@@ -37,7 +37,20 @@ func failSegment(op faultfs.Op, n int, err error) faultfs.Injector {
 // injector.
 func newJournal(t *testing.T, inject faultfs.Injector, opt journal.Options) (*journal.Writer, *faultfs.MemFS) {
 	t.Helper()
+	return newJournalOn(t, faultfs.NewMem(), inject, opt)
+}
+
+// newPlainJournal is newJournal on a file system that cannot reserve: the
+// journal appends by write(2).
+func newPlainJournal(t *testing.T, inject faultfs.Injector, opt journal.Options) (*journal.Writer, *faultfs.MemFS) {
+	t.Helper()
 	mem := faultfs.NewMem()
+	mem.Plain = true
+	return newJournalOn(t, mem, inject, opt)
+}
+
+func newJournalOn(t *testing.T, mem *faultfs.MemFS, inject faultfs.Injector, opt journal.Options) (*journal.Writer, *faultfs.MemFS) {
+	t.Helper()
 	mem.MkdirAll(dir, 0o755)
 	ffs := faultfs.New(mem, inject)
 	ffs.ShortWrite = true
@@ -63,7 +76,7 @@ func addPairs(t *testing.T, w *journal.Writer, from, to uint64) {
 // their end, and the writer goes on: the next Flush writes the other
 // three.
 func TestFlushPartialWrite(t *testing.T) {
-	w, mem := newJournal(t, failSegment(faultfs.OpWrite, 0, syscall.ENOSPC), journal.Options{})
+	w, mem := newPlainJournal(t, failSegment(faultfs.OpWrite, 0, syscall.ENOSPC), journal.Options{})
 	addPairs(t, w, 1, 5)
 	complete, err := w.Flush()
 	if complete != 2 || !errors.Is(err, journal.ErrNoSpace) {
@@ -71,6 +84,40 @@ func TestFlushPartialWrite(t *testing.T) {
 	}
 	addPairs(t, w, 3, 5)
 	if complete, err := w.Flush(); complete != 3 || err != nil {
+		t.Fatalf("second Flush = %d, %v", complete, err)
+	}
+	w.Close()
+	check(t, mem, 5, true)
+}
+
+// TestFlushPartialCopy: appending by a copy, a copy that fails part way
+// through the headers of five entries (the frames' payloads are copied
+// first, then their headers in order) counts the two entries whose frames
+// have their headers, takes the segment back to their end, and the writer
+// goes on; a reservation that finds the disk full counts none and says
+// ErrNoSpace, and the next Flush writes them.
+func TestFlushPartialCopy(t *testing.T) {
+	// 10 frames: copies 0 to 9 are their payloads, 10 to 19 their headers;
+	// copy 14 is the header of frame 4, the third entry's input.
+	w, mem := newJournal(t, failSegment(faultfs.OpWrite, 14, syscall.EIO), journal.Options{})
+	addPairs(t, w, 1, 5)
+	if complete, err := w.Flush(); complete != 2 || !errors.Is(err, syscall.EIO) {
+		t.Fatalf("Flush = %d, %v; want 2 and EIO", complete, err)
+	}
+	addPairs(t, w, 3, 5)
+	if complete, err := w.Flush(); complete != 3 || err != nil {
+		t.Fatalf("second Flush = %d, %v", complete, err)
+	}
+	w.Close()
+	check(t, mem, 5, true)
+
+	w, mem = newJournal(t, failSegment(faultfs.OpReserve, 0, syscall.ENOSPC), journal.Options{})
+	addPairs(t, w, 1, 5)
+	if complete, err := w.Flush(); complete != 0 || !errors.Is(err, journal.ErrNoSpace) {
+		t.Fatalf("Flush with the disk full = %d, %v; want 0 and ErrNoSpace", complete, err)
+	}
+	addPairs(t, w, 1, 5)
+	if complete, err := w.Flush(); complete != 5 || err != nil {
 		t.Fatalf("second Flush = %d, %v", complete, err)
 	}
 	w.Close()
@@ -491,7 +538,7 @@ func TestReplayOnFS(t *testing.T) {
 // write counts complete are fsynced before Flush returns, so a power loss
 // right after keeps them; when that fsync fails none is complete.
 func TestFlushPartialWriteSyncEach(t *testing.T) {
-	w, mem := newJournal(t, failSegment(faultfs.OpWrite, 0, syscall.ENOSPC), journal.Options{SyncEach: true})
+	w, mem := newPlainJournal(t, failSegment(faultfs.OpWrite, 0, syscall.ENOSPC), journal.Options{SyncEach: true})
 	addPairs(t, w, 1, 5)
 	complete, err := w.Flush()
 	if complete != 2 || !errors.Is(err, journal.ErrNoSpace) {
@@ -501,7 +548,7 @@ func TestFlushPartialWriteSyncEach(t *testing.T) {
 
 	syncs := failSegment(faultfs.OpSync, 0, syscall.EIO)
 	writes := failSegment(faultfs.OpWrite, 0, syscall.ENOSPC)
-	w, mem = newJournal(t, func(op faultfs.Op, path string) error {
+	w, mem = newPlainJournal(t, func(op faultfs.Op, path string) error {
 		if err := writes(op, path); err != nil {
 			return err
 		}

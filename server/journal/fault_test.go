@@ -143,53 +143,61 @@ func check(t *testing.T, fsys journal.FS, min int, exact bool) int {
 }
 
 // TestFaultEachOperation fails every create, write, sync, truncate,
-// rename and directory sync in turn, once (a transient fault) or from
-// then on (a full disk), with ENOSPC and with EIO, failed writes writing
-// half their bytes; then it restarts on the file system without faults.
+// rename, directory sync and reservation in turn, once (a transient
+// fault) or from then on (a full disk), with ENOSPC and with EIO, failed
+// writes (and copies into reserved space) writing half their bytes; then
+// it restarts on the file system without faults. It does so on a file
+// system that reserves (the journal appends by a copy) and on one that
+// does not (by write).
 // The journal holds exactly the pairs Flush counted complete, each once;
 // a Create that failed left nothing behind; a Flush error says ErrNoSpace
 // exactly when the disk was full.
 func TestFaultEachOperation(t *testing.T) {
-	ops := []faultfs.Op{faultfs.OpCreate, faultfs.OpWrite, faultfs.OpSync, faultfs.OpTruncate, faultfs.OpRename, faultfs.OpSyncDir}
+	ops := []faultfs.Op{faultfs.OpCreate, faultfs.OpWrite, faultfs.OpSync, faultfs.OpTruncate, faultfs.OpRename, faultfs.OpSyncDir, faultfs.OpReserve}
 	cases := 0
-	for _, syncEach := range []bool{false, true} {
-		clean := faultfs.New(faultfs.NewMem(), nil)
-		clean.MkdirAll(dir, 0o755)
-		var o outcome
-		workload(clean, syncEach, &o)
-		if o.acked != 36 || len(o.errs) > 0 {
-			t.Fatalf("without faults: %d acked, %v", o.acked, o.errs)
-		}
-		for _, op := range ops {
-			for _, errno := range []syscall.Errno{syscall.ENOSPC, syscall.EIO} {
-				for _, lasting := range []bool{false, true} {
-					for n := 0; n < clean.Count(op); n++ {
-						name := fmt.Sprintf("syncEach=%v/%v/%v/lasting=%v/%d", syncEach, op, errno, lasting, n)
-						inject := faultfs.Nth(op, "", n, errno)
-						if lasting {
-							inject = faultfs.From(op, "", n, errno)
+	for _, mode := range modes {
+		for _, syncEach := range []bool{false, true} {
+			cmem := faultfs.NewMem()
+			cmem.Plain = mode.plain
+			clean := faultfs.New(cmem, nil)
+			clean.MkdirAll(dir, 0o755)
+			var o outcome
+			workload(clean, syncEach, &o)
+			if o.acked != 36 || len(o.errs) > 0 {
+				t.Fatalf("without faults: %d acked, %v", o.acked, o.errs)
+			}
+			for _, op := range ops {
+				for _, errno := range []syscall.Errno{syscall.ENOSPC, syscall.EIO} {
+					for _, lasting := range []bool{false, true} {
+						for n := 0; n < clean.Count(op); n++ {
+							name := fmt.Sprintf("%s/syncEach=%v/%v/%v/lasting=%v/%d", mode.name, syncEach, op, errno, lasting, n)
+							inject := faultfs.Nth(op, "", n, errno)
+							if lasting {
+								inject = faultfs.From(op, "", n, errno)
+							}
+							mem := faultfs.NewMem()
+							mem.Plain = mode.plain
+							mem.MkdirAll(dir, 0o755)
+							ffs := faultfs.New(mem, inject)
+							ffs.ShortWrite = true
+							var o outcome
+							workload(ffs, syncEach, &o)
+							cases++
+							t.Run(name, func(t *testing.T) {
+								for _, err := range o.errs {
+									if full := errors.Is(err, journal.ErrNoSpace); full != (errno == syscall.ENOSPC) && !errors.Is(err, journal.ErrBroken) {
+										t.Errorf("ErrNoSpace %v for %v: %v", full, errno, err)
+									}
+								}
+								if !o.created {
+									if names, _ := mem.List(dir); len(names) > 0 {
+										t.Fatalf("a failed Create left %v", names)
+									}
+									return
+								}
+								restart(t, mem, o.acked, true)
+							})
 						}
-						mem := faultfs.NewMem()
-						mem.MkdirAll(dir, 0o755)
-						ffs := faultfs.New(mem, inject)
-						ffs.ShortWrite = true
-						var o outcome
-						workload(ffs, syncEach, &o)
-						cases++
-						t.Run(name, func(t *testing.T) {
-							for _, err := range o.errs {
-								if full := errors.Is(err, journal.ErrNoSpace); full != (errno == syscall.ENOSPC) && !errors.Is(err, journal.ErrBroken) {
-									t.Errorf("ErrNoSpace %v for %v: %v", full, errno, err)
-								}
-							}
-							if !o.created {
-								if names, _ := mem.List(dir); len(names) > 0 {
-									t.Fatalf("a failed Create left %v", names)
-								}
-								return
-							}
-							restart(t, mem, o.acked, true)
-						})
 					}
 				}
 			}
@@ -198,6 +206,13 @@ func TestFaultEachOperation(t *testing.T) {
 	t.Logf("%d faults injected", cases)
 }
 
+// modes are the two ways the journal appends: a copy into space reserved
+// ahead (journal.ReserveFile; a memory map on Linux) and write(2).
+var modes = []struct {
+	name  string
+	plain bool
+}{{"copy", false}, {"write", true}}
+
 // TestPowerLossAtEveryOperation takes the state a power loss would leave
 // (faultfs.MemFS.Crash: only what was synced) before every operation of
 // the workload, with and without SyncEach, and restarts on each: every
@@ -205,35 +220,82 @@ func TestFaultEachOperation(t *testing.T) {
 // before Create returned leaves a journal that reads or none at all, and
 // a robot of the same name can then be created.
 func TestPowerLossAtEveryOperation(t *testing.T) {
-	for _, syncEach := range []bool{false, true} {
-		mem := faultfs.NewMem()
-		mem.MkdirAll(dir, 0o755)
-		type point struct {
-			fs      *faultfs.MemFS
-			durable int
-			what    string
-		}
-		var points []point
-		var o outcome
-		ffs := faultfs.New(mem, func(op faultfs.Op, path string) error {
-			points = append(points, point{mem.Crash(), o.durable, fmt.Sprintf("%v %s", op, path)})
-			return nil
-		})
-		workload(ffs, syncEach, &o)
-		points = append(points, point{mem.Crash(), o.durable, "the end"})
-		for i, p := range points {
-			t.Run(fmt.Sprintf("syncEach=%v/%d", syncEach, i), func(t *testing.T) {
-				if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.durable == 0 {
-					if _, err := journal.Create(dir, "cart", opening, journal.Options{FS: p.fs}); err != nil {
-						t.Fatalf("crash before %s: no journal (%v), and none can be created: %v", p.what, err, err)
-					}
-					return
-				}
-				restart(t, p.fs, p.durable, false)
+	for _, mode := range modes {
+		for _, syncEach := range []bool{false, true} {
+			mem := faultfs.NewMem()
+			mem.Plain = mode.plain
+			mem.MkdirAll(dir, 0o755)
+			type point struct {
+				fs      *faultfs.MemFS
+				durable int
+				what    string
+			}
+			var points []point
+			var o outcome
+			ffs := faultfs.New(mem, func(op faultfs.Op, path string) error {
+				points = append(points, point{mem.Crash(), o.durable, fmt.Sprintf("%v %s", op, path)})
+				return nil
 			})
+			workload(ffs, syncEach, &o)
+			points = append(points, point{mem.Crash(), o.durable, "the end"})
+			for i, p := range points {
+				t.Run(fmt.Sprintf("%s/syncEach=%v/%d", mode.name, syncEach, i), func(t *testing.T) {
+					if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.durable == 0 {
+						if _, err := journal.Create(dir, "cart", opening, journal.Options{FS: p.fs}); err != nil {
+							t.Fatalf("crash before %s: no journal (%v), and none can be created: %v", p.what, err, err)
+						}
+						return
+					}
+					restart(t, p.fs, p.durable, false)
+				})
+			}
+			if o.acked != 36 {
+				t.Fatalf("%d acked", o.acked)
+			}
 		}
-		if o.acked != 36 {
-			t.Fatalf("%d acked", o.acked)
+	}
+}
+
+// TestKillAtEveryOperation takes the state the daemon's SIGKILL would
+// leave (faultfs.MemFS.Kill: everything written, synced or not) before
+// every operation of the workload, including every copy of a frame's
+// payload or header, and restarts on each: every pair acknowledged by then
+// is there, in order, once, with no damage and no gap, whatever the kill
+// cut short (the kill-and-restart test of storage systems, here at every
+// step rather than at random ones as TestSIGKILLSoak does).
+func TestKillAtEveryOperation(t *testing.T) {
+	for _, mode := range modes {
+		for _, syncEach := range []bool{false, true} {
+			mem := faultfs.NewMem()
+			mem.Plain = mode.plain
+			mem.MkdirAll(dir, 0o755)
+			type point struct {
+				fs    *faultfs.MemFS
+				acked int
+				what  string
+			}
+			var points []point
+			var o outcome
+			ffs := faultfs.New(mem, func(op faultfs.Op, path string) error {
+				points = append(points, point{mem.Kill(), o.acked, fmt.Sprintf("%v %s", op, path)})
+				return nil
+			})
+			workload(ffs, syncEach, &o)
+			points = append(points, point{mem.Kill(), o.acked, "the end"})
+			for i, p := range points {
+				t.Run(fmt.Sprintf("%s/syncEach=%v/%d", mode.name, syncEach, i), func(t *testing.T) {
+					if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.acked == 0 {
+						if _, err := journal.Create(dir, "cart", opening, journal.Options{FS: p.fs}); err != nil {
+							t.Fatalf("kill before %s: no journal (%v), and none can be created: %v", p.what, err, err)
+						}
+						return
+					}
+					restart(t, p.fs, p.acked, false)
+				})
+			}
+			if o.acked != 36 {
+				t.Fatalf("%d acked", o.acked)
+			}
 		}
 	}
 }

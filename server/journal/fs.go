@@ -195,3 +195,21 @@ func asideName(fsys FS, base string) (string, error) {
 		name = base + "." + strconv.Itoa(i)
 	}
 }
+
+// ReserveFile is a File that the journal appends to by copying into space
+// reserved ahead on disk, rather than by write(2): an operating-system
+// file through a shared memory map (see mapRegion), a test's file system
+// by a copy under its lock. What a copy leaves is what a write leaves: the
+// page cache, which a crash of the process keeps and a power loss keeps as
+// far as it was synced.
+type ReserveFile interface {
+	File
+	// Reserve makes the file size bytes long (never shorter), the new
+	// bytes zeros allocated on disk, so that copying into them needs no
+	// more space. It returns an error wrapping errors.ErrUnsupported when
+	// the file system cannot reserve; the journal then writes.
+	Reserve(size int64) error
+	// CopyAt copies p into the file at byte off; off+len(p) is at most the
+	// reserved size. On an error, n bytes may have been copied.
+	CopyAt(p []byte, off int64) (n int, err error)
+}

@@ -35,6 +35,11 @@ type Scan struct {
 	// copied aside, after which the scan went on at the next valid frame.
 	// Damage that cost inputs also makes Read return an ErrGap.
 	Damage []*DamageError
+	// Spare counts the zeros after the last complete entry of the last
+	// segment: space the writer reserved and had not used when it stopped
+	// without closing the journal (a crash; see journal.ReserveFile). It
+	// is not a torn tail, and appending resumes at Good.
+	Spare int64
 	// Unanswered is true when the tail held an input without its output:
 	// it was never acknowledged and is dropped with the tail.
 	Unanswered bool
@@ -359,18 +364,25 @@ func (st *scanState) tail(path string, b []byte, off int, reason string, last bo
 		return st.damage(path, b, off, len(b), reason)
 	}
 	sc := st.sc
+	rest := b[off:]
+	if off > 0 && int64(off) == sc.Good && st.pending == nil && allZero(rest) {
+		sc.Spare = int64(len(rest))
+		return nil
+	}
 	sc.Torn, sc.TornSegment = &TornError{int64(off), reason}, path
 	sc.Unanswered = st.pending != nil
 	st.pending = nil
-	rest := b[off:]
-	if allZero(rest) || (off == 0 && bytes.HasPrefix(header(), rest)) || cutShort(rest) {
+	// The zeros at the end are the unused reserve of a segment appended to
+	// by a copy (or a file system's zero fill): not kept.
+	rest = bytes.TrimRight(rest, "\x00")
+	if len(rest) == 0 || (off == 0 && bytes.HasPrefix(header(), rest)) || cutShort(rest) {
 		// Nothing written, the start of a header, or a frame whose write
 		// was cut short: never acknowledged, and what a reader of a journal
 		// being written meets at its end.
 		return nil
 	}
 	var err error
-	sc.TornKept, err = st.keep(path, b, off, len(b))
+	sc.TornKept, err = st.keep(path, b, off, off+len(rest))
 	return err
 }
 

@@ -32,6 +32,8 @@ type Writer struct {
 	dir, robot string
 	opt        Options
 	f          File
+	reg        region // nil: the segment is appended to by write(2)
+	reserved   int64  // with reg, the segment file's size (>= size)
 	seg        int
 	size       int64 // bytes in the segment, all complete entries
 	buf        []byte
@@ -192,20 +194,22 @@ func (w *Writer) unmake(path string, err error) error {
 
 // open makes segment n, of size bytes, the one appended to.
 func (w *Writer) open(n int, path string, size int64) error {
-	f, err := w.fs.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
+	f, err := w.fs.OpenFile(path, os.O_RDWR|os.O_APPEND, 0)
 	if err != nil {
 		return err
 	}
 	if w.f != nil {
-		w.f.Close() // fsynced before the rotation
+		w.release()
+		w.f.Close() // trimmed and fsynced before the rotation
 	}
 	w.f, w.seg, w.size, w.dirty = f, n, size, false
+	w.reg, w.reserved = regionOf(f), size
 	return nil
 }
 
 // Resume reopens segment seg, the last, for appending at offset good (the
-// end of its last complete entry, Scan.Good), truncating the torn tail
-// after it; Read has copied aside any damaged bytes there. It removes
+// end of its last complete entry, Scan.Good), truncating the torn tail or
+// the unused reserve (Scan.Spare) after it; Read has copied aside any damaged bytes there. It removes
 // temporary files left by an interrupted creation, completes a segment
 // whose header is short or invalid (the original is kept as
 // {segment}.damaged, the records Read recovered from it are kept), and
@@ -226,11 +230,12 @@ func Resume(dir, robot string, seg int, good int64, opt Options) (*Writer, error
 	if good, err = w.completeHeader(path, good); err != nil {
 		return nil, err
 	}
-	f, err := w.fs.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
+	f, err := w.fs.OpenFile(path, os.O_RDWR|os.O_APPEND, 0)
 	if err != nil {
 		return nil, err
 	}
 	w.f, w.seg, w.size = f, seg, good
+	w.reg, w.reserved = regionOf(f), good
 	if err := f.Truncate(good); err != nil {
 		f.Close()
 		return nil, fmt.Errorf("journal %s: %w", path, err)
@@ -391,8 +396,9 @@ func (w *Writer) AddSessionPair(in EncodedInput, response []byte, pose *pb.Fused
 	return nil
 }
 
-// Flush writes the entries added since the last Flush with one write,
-// fsyncs with SyncEach, and starts the next segment when this one is full.
+// Flush writes the entries added since the last Flush with one write (a
+// copy into space reserved ahead, where the file system can reserve; see
+// ReserveFile), fsyncs with SyncEach, and starts the next segment when this one is full.
 // complete is how many of those entries, in order, are whole in the
 // journal. On an error the segment is taken back to the end of the last
 // complete entry and the other entries are dropped from the buffer; the
@@ -409,7 +415,7 @@ func (w *Writer) Flush() (complete int, err error) {
 		return 0, nil
 	}
 	entries := len(w.ends)
-	n, err := w.f.Write(w.buf)
+	n, err := w.appendEntries(w.buf)
 	if err != nil {
 		return w.takeBack(n, err)
 	}
@@ -445,7 +451,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 	w.drop()
 	err = fmt.Errorf("journal %s: %w", w.segPath(), classify(err))
 	if n > keep {
-		if terr := w.f.Truncate(w.size + int64(keep)); terr != nil {
+		if terr := w.truncate(w.size + int64(keep)); terr != nil {
 			w.broken = fmt.Errorf("%w: %v; truncating the incomplete entry: %v", ErrBroken, err, terr)
 			return complete, w.broken
 		}
@@ -474,7 +480,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 // before) and the truncation fsynced, or the writer is broken.
 func (w *Writer) unsync(before int64, err error) error {
 	err = fmt.Errorf("journal %s: fsync: %w", w.segPath(), classify(err))
-	if terr := w.f.Truncate(before); terr != nil {
+	if terr := w.truncate(before); terr != nil {
 		w.broken = fmt.Errorf("%w: %v; truncating: %v", ErrBroken, err, terr)
 		return w.broken
 	}
@@ -500,10 +506,14 @@ func (w *Writer) limit() int64 {
 
 func (w *Writer) segPath() string { return SegmentPath(w.dir, w.robot, w.seg) }
 
-// rotate fsyncs the full segment, so that no later segment exists while
-// it could still lose its tail, and starts the next one with its header;
-// then the manifest names it. A failure is a *RotateError.
+// rotate gives back the full segment's unused reserve and fsyncs it, so
+// that no later segment exists while it could still lose its tail or end
+// in zeros, and starts the next one with its header; then the manifest
+// names it. A failure is a *RotateError.
 func (w *Writer) rotate() error {
+	if err := w.trim(); err != nil {
+		return &RotateError{Segment: SegmentPath(w.dir, w.robot, w.seg+1), Err: err}
+	}
 	if err := w.Sync(); err != nil {
 		return &RotateError{Segment: SegmentPath(w.dir, w.robot, w.seg+1), Err: err}
 	}
@@ -549,7 +559,7 @@ func (w *Writer) Sync() error {
 	return nil
 }
 
-// Close syncs and closes the journal. It does not flush: entries added
+// Close gives back the unused reserve, syncs and closes the journal. It does not flush: entries added
 // since the last Flush are dropped, not written. An owner acknowledges an
 // entry only after Flush counts it complete, so the dropped entries were
 // never acknowledged, and the journal keeps exactly what was (the server
@@ -558,7 +568,14 @@ func (w *Writer) Close() error {
 	if w.f == nil {
 		return nil
 	}
-	err := w.Sync()
+	var err error
+	if w.broken == nil {
+		err = w.trim()
+	}
+	if serr := w.Sync(); err == nil {
+		err = serr
+	}
+	w.release()
 	if cerr := w.f.Close(); err == nil {
 		err = cerr
 	}

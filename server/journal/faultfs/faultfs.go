@@ -1,6 +1,7 @@
 package faultfs
 
 import (
+	"errors"
 	"fmt"
 	"os"
 	"strings"
@@ -27,10 +28,11 @@ const (
 	OpStat               // Stat and File.Stat
 	OpSyncDir            // SyncDir
 	OpLock               // Lock
+	OpReserve            // File.Reserve (File.CopyAt counts as OpWrite)
 	numOps
 )
 
-var opNames = [numOps]string{"create", "open", "write", "sync", "truncate", "read", "rename", "remove", "list", "mkdir", "stat", "syncdir", "lock"}
+var opNames = [numOps]string{"create", "open", "write", "sync", "truncate", "read", "rename", "remove", "list", "mkdir", "stat", "syncdir", "lock", "reserve"}
 
 // String returns the operation's name.
 func (op Op) String() string {
@@ -219,6 +221,37 @@ func (ff *faultFile) Write(p []byte) (int, error) {
 		return n, err
 	}
 	return ff.f.Write(p)
+}
+
+// Reserve reserves in the base file, unless OpReserve is failed; a base
+// file that cannot reserve gives errors.ErrUnsupported.
+func (ff *faultFile) Reserve(size int64) error {
+	rf, ok := ff.f.(journal.ReserveFile)
+	if !ok {
+		return fmt.Errorf("reserve %s: %w", ff.name, errors.ErrUnsupported)
+	}
+	if err := ff.fs.check(OpReserve, ff.name); err != nil {
+		return err
+	}
+	return rf.Reserve(size)
+}
+
+// CopyAt copies into the base file, unless OpWrite is failed: with
+// ShortWrite the first half of p is copied first, as a fault part way
+// through a copy leaves it.
+func (ff *faultFile) CopyAt(p []byte, off int64) (int, error) {
+	rf, ok := ff.f.(journal.ReserveFile)
+	if !ok {
+		return 0, fmt.Errorf("copy %s: %w", ff.name, errors.ErrUnsupported)
+	}
+	if err := ff.fs.check(OpWrite, ff.name); err != nil {
+		n := 0
+		if ff.fs.ShortWrite {
+			n, _ = rf.CopyAt(p[:len(p)/2], off)
+		}
+		return n, err
+	}
+	return rf.CopyAt(p, off)
 }
 
 func (ff *faultFile) Sync() error {

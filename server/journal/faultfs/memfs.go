@@ -1,6 +1,7 @@
 package faultfs
 
 import (
+	"errors"
 	"fmt"
 	"io"
 	"io/fs"
@@ -8,6 +9,7 @@ import (
 	"path/filepath"
 	"sort"
 	"sync"
+	"syscall"
 	"time"
 
 	"reckon.example/server/journal"
@@ -17,6 +19,11 @@ import (
 // made by MkdirAll are kept by a crash; files and directory entries only
 // as far as they were synced. It is safe for concurrent use.
 type MemFS struct {
+	// Plain makes the files unable to reserve space (Reserve fails with
+	// errors.ErrUnsupported), so that the journal appends by Write. Set
+	// it before the first OpenFile.
+	Plain bool
+
 	mu    sync.Mutex
 	dirs  map[string]*memDir
 	locks map[string]bool // names locked by Lock
@@ -51,6 +58,37 @@ func (m *MemFS) Crash() *MemFS {
 			data := append([]byte(nil), ino.synced...)
 			n := &inode{data: data, synced: append([]byte(nil), data...)}
 			nd.live[name], nd.synced[name] = n, n
+		}
+		c.dirs[path] = nd
+	}
+	return c
+}
+
+// Kill returns the file system as the daemon's SIGKILL would leave this
+// one: each directory with the entries it has now, each file with the
+// contents it has now (the page cache outlives the process), synced as
+// far as it was. This one is left as it was.
+func (m *MemFS) Kill() *MemFS {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	c := NewMem()
+	c.Plain = m.Plain
+	copies := map[*inode]*inode{}
+	clone := func(ino *inode) *inode {
+		if n := copies[ino]; n != nil {
+			return n
+		}
+		n := &inode{data: append([]byte(nil), ino.data...), synced: append([]byte(nil), ino.synced...)}
+		copies[ino] = n
+		return n
+	}
+	for path, d := range m.dirs {
+		nd := &memDir{live: map[string]*inode{}, synced: map[string]*inode{}}
+		for name, ino := range d.live {
+			nd.live[name] = clone(ino)
+		}
+		for name, ino := range d.synced {
+			nd.synced[name] = clone(ino)
 		}
 		c.dirs[path] = nd
 	}
@@ -256,6 +294,37 @@ func (f *memFile) Write(p []byte) (int, error) {
 	copy(f.ino.data[f.pos:], p)
 	f.pos = end
 	return len(p), nil
+}
+
+// Reserve extends the file with zeros to size bytes (journal.ReserveFile).
+func (f *memFile) Reserve(size int64) error {
+	f.m.mu.Lock()
+	defer f.m.mu.Unlock()
+	if f.closed {
+		return os.ErrClosed
+	}
+	if f.m.Plain {
+		return fmt.Errorf("reserve %s: %w", f.name, errors.ErrUnsupported)
+	}
+	if size > int64(len(f.ino.data)) {
+		f.ino.data = append(f.ino.data, make([]byte, size-int64(len(f.ino.data)))...)
+	}
+	return nil
+}
+
+// CopyAt copies p into the file at off, inside its size, as a store into
+// a shared memory map of the file does: a copy past the end fails with
+// EIO, as such a store's SIGBUS does in the journal.
+func (f *memFile) CopyAt(p []byte, off int64) (int, error) {
+	f.m.mu.Lock()
+	defer f.m.mu.Unlock()
+	if f.closed {
+		return 0, os.ErrClosed
+	}
+	if off < 0 || off+int64(len(p)) > int64(len(f.ino.data)) {
+		return 0, &os.PathError{Op: "copy", Path: f.name, Err: syscall.EIO}
+	}
+	return copy(f.ino.data[off:], p), nil
 }
 
 func (f *memFile) Sync() error {

@@ -220,40 +220,7 @@ var modes = []struct {
 // before Create returned leaves a journal that reads or none at all, and
 // a robot of the same name can then be created.
 func TestPowerLossAtEveryOperation(t *testing.T) {
-	for _, mode := range modes {
-		for _, syncEach := range []bool{false, true} {
-			mem := faultfs.NewMem()
-			mem.Plain = mode.plain
-			mem.MkdirAll(dir, 0o755)
-			type point struct {
-				fs      *faultfs.MemFS
-				durable int
-				what    string
-			}
-			var points []point
-			var o outcome
-			ffs := faultfs.New(mem, func(op faultfs.Op, path string) error {
-				points = append(points, point{mem.Crash(), o.durable, fmt.Sprintf("%v %s", op, path)})
-				return nil
-			})
-			workload(ffs, syncEach, &o)
-			points = append(points, point{mem.Crash(), o.durable, "the end"})
-			for i, p := range points {
-				t.Run(fmt.Sprintf("%s/syncEach=%v/%d", mode.name, syncEach, i), func(t *testing.T) {
-					if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.durable == 0 {
-						if _, err := journal.Create(dir, "cart", opening, journal.Options{FS: p.fs}); err != nil {
-							t.Fatalf("crash before %s: no journal (%v), and none can be created: %v", p.what, err, err)
-						}
-						return
-					}
-					restart(t, p.fs, p.durable, false)
-				})
-			}
-			if o.acked != 36 {
-				t.Fatalf("%d acked", o.acked)
-			}
-		}
-	}
+	atEveryOperation(t, "crash", (*faultfs.MemFS).Crash, func(o *outcome) int { return o.durable })
 }
 
 // TestKillAtEveryOperation takes the state the daemon's SIGKILL would
@@ -264,33 +231,43 @@ func TestPowerLossAtEveryOperation(t *testing.T) {
 // cut short (the kill-and-restart test of storage systems, here at every
 // step rather than at random ones as TestSIGKILLSoak does).
 func TestKillAtEveryOperation(t *testing.T) {
+	atEveryOperation(t, "kill", (*faultfs.MemFS).Kill, func(o *outcome) int { return o.acked })
+}
+
+// atEveryOperation runs the workload both ways and with and without
+// SyncEach, takes the state stop leaves (a crash or a kill) before every
+// operation and at the end, and restarts on each: the pairs kept(outcome)
+// counted by then are there, in order, once; a stop before Create
+// returned leaves a journal that reads or none at all, and a robot of the
+// same name can then be created.
+func atEveryOperation(t *testing.T, what string, stop func(*faultfs.MemFS) *faultfs.MemFS, kept func(*outcome) int) {
 	for _, mode := range modes {
 		for _, syncEach := range []bool{false, true} {
 			mem := faultfs.NewMem()
 			mem.Plain = mode.plain
 			mem.MkdirAll(dir, 0o755)
 			type point struct {
-				fs    *faultfs.MemFS
-				acked int
-				what  string
+				fs   *faultfs.MemFS
+				kept int
+				what string
 			}
 			var points []point
 			var o outcome
 			ffs := faultfs.New(mem, func(op faultfs.Op, path string) error {
-				points = append(points, point{mem.Kill(), o.acked, fmt.Sprintf("%v %s", op, path)})
+				points = append(points, point{stop(mem), kept(&o), fmt.Sprintf("%v %s", op, path)})
 				return nil
 			})
 			workload(ffs, syncEach, &o)
-			points = append(points, point{mem.Kill(), o.acked, "the end"})
+			points = append(points, point{stop(mem), kept(&o), "the end"})
 			for i, p := range points {
 				t.Run(fmt.Sprintf("%s/syncEach=%v/%d", mode.name, syncEach, i), func(t *testing.T) {
-					if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.acked == 0 {
+					if _, err := journal.ReadFS(p.fs, dir, "cart", journal.Visitor{}); err != nil && p.kept == 0 {
 						if _, err := journal.Create(dir, "cart", opening, journal.Options{FS: p.fs}); err != nil {
-							t.Fatalf("kill before %s: no journal (%v), and none can be created: %v", p.what, err, err)
+							t.Fatalf("%s before %s: no journal (%v), and none can be created: %v", what, p.what, err, err)
 						}
 						return
 					}
-					restart(t, p.fs, p.acked, false)
+					restart(t, p.fs, p.kept, false)
 				})
 			}
 			if o.acked != 36 {

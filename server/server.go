@@ -105,6 +105,9 @@ type Server struct {
 	// (journal.WholeSync; the operating system's file system on Linux 5.8
 	// and later).
 	whole *journal.WholeSync
+	// prefaultNoted is set once a journal's pages could not be readied
+	// (prefault).
+	prefaultNoted atomic.Bool
 }
 
 // robot is one robot and everything attached to it.
@@ -237,6 +240,7 @@ func (s *Server) SyncJournals() {
 		if err == nil {
 			for _, d := range ds {
 				d.r.sync.synced(d.j, d.path, d.writes)
+				s.prefault(d.r, d.j)
 			}
 			return
 		}
@@ -247,7 +251,32 @@ func (s *Server) SyncJournals() {
 			d.r.mu.Lock()
 			s.journalFailed(d.r, "journal sync", err)
 			d.r.mu.Unlock()
+			continue
 		}
+		s.prefault(d.r, d.j)
+	}
+}
+
+// prefault readies the pages of r's journal j that its next appends will
+// copy into, which the sync just made read-only (journal.Writer.Prefault),
+// unless the robot's journal changed meanwhile. It is done under the
+// robot's lock, which owns the writer; it costs about what the page
+// faults it saves would have, but outside the verdicts' path. A kernel
+// that cannot (Linux before 5.14) is noted once; the appends then fault
+// as before.
+func (s *Server) prefault(r *robot, j journalWriter) {
+	p, ok := j.(interface{ Prefault() error })
+	if !ok {
+		return
+	}
+	r.mu.Lock()
+	var err error
+	if r.journal == j {
+		err = p.Prefault()
+	}
+	r.mu.Unlock()
+	if err != nil && s.prefaultNoted.CompareAndSwap(false, true) {
+		s.log.Info("journal pages are not readied ahead of appends; each append that reaches a new page takes a page fault", "robot", r.name, "err", err)
 	}
 }
 

@@ -18,6 +18,9 @@ type region interface {
 	// of copyOrdered, and returns how many leading bytes of b are whole
 	// frames in the file (all of b unless err).
 	copyFrames(b []byte, off int64) (int, error)
+	// prefault readies the pages of [off, end) for copies (see
+	// Writer.Prefault); a region without pages of its own does nothing.
+	prefault(off, end int64) error
 	release() error
 }
 
@@ -69,8 +72,9 @@ func regionOf(f File) region {
 // fileRegion is a ReserveFile as a region: a CopyAt a piece.
 type fileRegion struct{ f ReserveFile }
 
-func (r fileRegion) reserve(size int64) error { return r.f.Reserve(size) }
-func (r fileRegion) release() error           { return nil }
+func (r fileRegion) reserve(size int64) error    { return r.f.Reserve(size) }
+func (r fileRegion) release() error              { return nil }
+func (r fileRegion) prefault(int64, int64) error { return nil }
 
 func (r fileRegion) copyFrames(b []byte, off int64) (int, error) {
 	return copyOrdered(b, func(dst int, src []byte) error {

@@ -85,6 +85,28 @@ func (r *mapRegion) remap(off, end int64) error {
 	return nil
 }
 
+// prefault makes the pages of [off, end) that the window holds present
+// and writable with one madvise(MADV_POPULATE_WRITE) (Linux 5.14 and
+// later): the kernel does for them what the copies' page faults would, in
+// one system call, and a page it cannot ready is an error (EFAULT where a
+// copy would have met SIGBUS), not a signal. Pages outside the window are
+// left to the copies: remapping here would cost what it saves.
+func (r *mapRegion) prefault(off, end int64) error {
+	if r.mem == nil {
+		return nil
+	}
+	page := int64(os.Getpagesize())
+	off = max(off&^(page-1), r.base)
+	end = min(end, r.base+int64(len(r.mem)))
+	if end <= off {
+		return nil
+	}
+	if err := unix.Madvise(r.mem[off-r.base:end-r.base], unix.MADV_POPULATE_WRITE); err != nil {
+		return &os.PathError{Op: "madvise", Path: r.f.Name(), Err: err}
+	}
+	return nil
+}
+
 func (r *mapRegion) release() error {
 	if r.mem == nil {
 		return nil

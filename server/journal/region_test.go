@@ -26,7 +26,7 @@ func checkSeqs(t *testing.T, seqs []uint64, n int) {
 // TestCopyAppendSurvivesAKill: a writer that stops without closing (the
 // daemon killed) leaves its last segment ending in the zeros of its
 // reserve; a reader finds every flushed pair, calls the zeros Spare and
-// nothing torn; the journal resumes after the last pair, and once closed
+// nothing torn (the pages readied ahead by Prefault included); the journal resumes after the last pair, and once closed
 // every segment ends at its last entry. On Linux the segments are written
 // through a memory map, whose stores a reader sees through the page cache
 // (POSIX mmap, MAP_SHARED: "write references shall change the underlying
@@ -49,6 +49,14 @@ func TestCopyAppendSurvivesAKill(t *testing.T) {
 			if _, err := w.Flush(); err != nil {
 				t.Fatal(err)
 			}
+		}
+		if i%100 == 50 {
+			// As after the service's periodic sync: the pages ahead are
+			// readied, which a reader must not see.
+			if err := w.Sync(); err != nil {
+				t.Fatal(err)
+			}
+			w.Prefault()
 		}
 	}
 	// w is abandoned here, as a killed daemon's is.
@@ -160,15 +168,18 @@ func TestCopyFaultIsAnError(t *testing.T) {
 // robot whose samples arrive one at a time does, with an fsync every 31
 // flushes (a robot at 310 samples a second and the service's 100 ms
 // fsync), on the operating system's file system: by a copy into the
-// memory-mapped reserve (copy; Linux) and by write(2) (write: the same
+// memory-mapped reserve (copy; Linux), the same with the pages ahead
+// readied after each fsync as the service does (copy-prefault), and by
+// write(2) (write: the same
 // files behind a file system wrapper whose files cannot reserve).
 func BenchmarkFlushOnePair(b *testing.B) {
 	in := &pb.JournalInput{Sequence: 1, Sample: &pb.Sample{Sample: &pb.Sample_Heading{Heading: &pb.HeadingSample{StampNs: 1, HeadingRad: 0.1}}}, SessionId: "bench-session", ClientSequence: 1}
 	out := &pb.JournalOutput{Response: &pb.IngestResponse{Sequence: 1, Verdict: pb.Verdict_VERDICT_APPLIED}}
 	for _, mode := range []struct {
-		name string
-		fs   FS
-	}{{"copy", nil}, {"write", plainFS{OS}}} {
+		name     string
+		fs       FS
+		prefault bool
+	}{{"copy", nil, false}, {"copy-prefault", nil, true}, {"write", plainFS{OS}, false}} {
 		b.Run(mode.name, func(b *testing.B) {
 			w, err := Create(b.TempDir(), "cart", &pb.JournalOpening{Robot: "robots/cart", Config: &pb.RobotConfig{}}, Options{FS: mode.fs})
 			if err != nil {
@@ -187,6 +198,9 @@ func BenchmarkFlushOnePair(b *testing.B) {
 				if i%31 == 30 {
 					if err := w.Sync(); err != nil {
 						b.Fatal(err)
+					}
+					if mode.prefault {
+						w.Prefault()
 					}
 				}
 			}

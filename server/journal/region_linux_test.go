@@ -71,9 +71,15 @@ func flushFaults(t *testing.T, prefault bool) int64 {
 // present, faults; common practice, Linux's mm documentation on
 // page_mkwrite). Counted with getrusage(RUSAGE_THREAD) around the flush on
 // a locked thread.
+//
+// Each side is the fewest of three tries, so that a fault of the runtime's
+// own on the thread (a garbage collector's assist) does not count.
 func TestPrefaultSparesTheCopiesFaults(t *testing.T) {
-	without := flushFaults(t, false)
-	with := flushFaults(t, true)
+	without, with := int64(1<<62), int64(1<<62)
+	for range 3 {
+		without = min(without, flushFaults(t, false))
+		with = min(with, flushFaults(t, true))
+	}
 	t.Logf("page faults of a 16 KiB flush after a sync: %d without Prefault, %d with", without, with)
 	if without < 4 {
 		t.Fatalf("without Prefault the flush took %d page faults, want one a page (at least 4): the test cannot tell", without)

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"os"
 	"runtime/debug"
+	"sync/atomic"
 	"syscall"
 
 	"golang.org/x/sys/unix"
@@ -90,9 +91,11 @@ func (r *mapRegion) remap(off, end int64) error {
 // later): the kernel does for them what the copies' page faults would, in
 // one system call, and a page it cannot ready is an error (EFAULT where a
 // copy would have met SIGBUS), not a signal. Pages outside the window are
-// left to the copies: remapping here would cost what it saves.
+// left to the copies: remapping here would cost what it saves. A kernel
+// that does not know the advice (EINVAL; the range is page-aligned) is
+// told so once, and not asked again by any writer (populateRefused).
 func (r *mapRegion) prefault(off, end int64) error {
-	if r.mem == nil {
+	if r.mem == nil || populateRefused.Load() {
 		return nil
 	}
 	page := int64(os.Getpagesize())
@@ -102,10 +105,16 @@ func (r *mapRegion) prefault(off, end int64) error {
 		return nil
 	}
 	if err := unix.Madvise(r.mem[off-r.base:end-r.base], unix.MADV_POPULATE_WRITE); err != nil {
+		if err == unix.EINVAL {
+			populateRefused.Store(true)
+		}
 		return &os.PathError{Op: "madvise", Path: r.f.Name(), Err: err}
 	}
 	return nil
 }
+
+// populateRefused is set once the kernel refused MADV_POPULATE_WRITE.
+var populateRefused atomic.Bool
 
 func (r *mapRegion) release() error {
 	if r.mem == nil {

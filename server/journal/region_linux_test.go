@@ -66,11 +66,12 @@ func flushFaults(t *testing.T, prefault bool) int64 {
 
 // TestPrefaultSparesTheCopiesFaults: after a sync, a flush into the pages
 // Prefault readied takes no page fault, where the same flush without it
-// takes one for each page it dirties (the kernel's dirty tracking of a
-// shared file mapping: a store into a page written back since, or not yet
-// present, faults; common practice, Linux's mm documentation on
-// page_mkwrite). Counted with getrusage(RUSAGE_THREAD) around the flush on
-// a locked thread.
+// takes one for each page it dirties. That a store into a shared file
+// mapping faults on a page not yet present, or written back since (the
+// kernel tracks dirty pages so), is common practice; that
+// MADV_POPULATE_WRITE faults the range in writable "as if manually writing
+// to each page" is madvise(2)'s wording, from memory. Counted with
+// getrusage(RUSAGE_THREAD) around the flush on a locked thread.
 //
 // Each side is the fewest of three tries, so that a fault of the runtime's
 // own on the thread (a garbage collector's assist) does not count.

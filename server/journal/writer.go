@@ -558,7 +558,8 @@ func (w *Writer) SyncPoint() (path string, writes uint64) {
 // changes nothing a reader or a crash can see: the pages hold what the
 // file holds (the reserve reads as zeros). An error (a kernel without
 // MADV_POPULATE_WRITE, Linux before 5.14) leaves the writer as it was;
-// the copies then take their faults as before.
+// the copies then take their faults as before. Such a kernel is reported
+// by the first call only; later calls do nothing.
 func (w *Writer) Prefault() error {
 	if w.reg == nil || w.broken != nil {
 		return nil

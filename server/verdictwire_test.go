@@ -16,12 +16,13 @@ import (
 
 // TestPlainVerdictMatchesProto: the verdicts appendPlainVerdict encodes
 // get the bytes proto.Marshal (protobuf-go, the reference encoder) makes
-// of them, and those it leaves to proto are the ones it must: with
-// resolutions, events or unknown fields, or a string that is not UTF-8.
+// of them, and those it leaves to proto are the ones it must: with events
+// or unknown fields (in the verdict or a resolution), or a string that is
+// not UTF-8.
 func TestPlainVerdictMatchesProto(t *testing.T) {
-	// appendPlainVerdict writes fields 1 to 6 and 9 to 11 and leaves
-	// verdicts with 7 (resolved) or 8 (events) to proto; a field added to
-	// IngestResponse would be dropped silently, so the message must still
+	// appendPlainVerdict writes fields 1 to 7 and 9 to 11 and leaves
+	// verdicts with 8 (events) to proto; a field added to IngestResponse
+	// or Resolution would be dropped silently, so the messages must still
 	// have exactly those.
 	fields := (&pb.IngestResponse{}).ProtoReflect().Descriptor().Fields()
 	if fields.Len() != 11 {
@@ -32,6 +33,9 @@ func TestPlainVerdictMatchesProto(t *testing.T) {
 			t.Fatalf("IngestResponse has no field %d; appendPlainVerdict writes fields 1 to 11", n)
 		}
 	}
+	if rf := (&pb.Resolution{}).ProtoReflect().Descriptor().Fields(); rf.Len() != 6 {
+		t.Fatalf("Resolution has %d fields; appendResolution knows 6: teach it the new ones", rf.Len())
+	}
 	cases := []*pb.IngestResponse{
 		{},
 		{ClientSequence: 1, Sequence: 1, Verdict: pb.Verdict_VERDICT_APPLIED},
@@ -41,6 +45,11 @@ func TestPlainVerdictMatchesProto(t *testing.T) {
 		{Nis: math.NaN(), NisDimension: -1, StatusCode: -7, Verdict: pb.Verdict(-2), Refusal: pb.Refusal(-3)},
 		{Nis: math.Inf(1), Reason: strings.Repeat("ü", 100)}, // a length of two bytes
 		{Reason: strings.Repeat("x", 300)},                   // past the stack buffer
+		{Sequence: 4, Resolved: []*pb.Resolution{{}}},
+		{Sequence: 7, Resolved: []*pb.Resolution{{Sequence: 6, Verdict: pb.Verdict_VERDICT_APPLIED, Nis: 0.25, ClientSequence: 9}, {Sequence: 5, Verdict: pb.Verdict_VERDICT_TOO_OLD, Reason: "too_old", Refusal: pb.Refusal_REFUSAL_TOO_OLD}}},
+		{Resolved: []*pb.Resolution{{Nis: math.Copysign(0, -1), Verdict: pb.Verdict(-1), Refusal: pb.Refusal(-4)}}},
+		{Resolved: []*pb.Resolution{{Sequence: 1, Reason: strings.Repeat("y", 130)}}},   // a length of two bytes, past the stack buffer
+		{Resolved: []*pb.Resolution{{Sequence: 1, Reason: strings.Repeat("y", 20000)}}}, // a length of three bytes
 	}
 	rng := rand.New(rand.NewPCG(1, 1))
 	for range 2000 {
@@ -65,6 +74,16 @@ func TestPlainVerdictMatchesProto(t *testing.T) {
 		if rng.IntN(4) == 0 {
 			r.Field = "sample.fix.x_m"
 		}
+		for range rng.IntN(4) {
+			res := &pb.Resolution{Sequence: rng.Uint64() >> rng.IntN(64), Verdict: pb.Verdict(rng.IntN(6)), ClientSequence: rng.Uint64() >> rng.IntN(64)}
+			if rng.IntN(2) == 0 {
+				res.Nis = rng.ExpFloat64()
+			}
+			if rng.IntN(3) == 0 {
+				res.Reason, res.Refusal = strings.Repeat("q", rng.IntN(140)), pb.Refusal(rng.IntN(5))
+			}
+			r.Resolved = append(r.Resolved, res)
+		}
 		cases = append(cases, r)
 	}
 	for i, r := range cases {
@@ -77,20 +96,24 @@ func TestPlainVerdictMatchesProto(t *testing.T) {
 		if err != nil || !bytes.Equal(got, want) {
 			t.Fatalf("case %d (%v): %x, %v; proto.Marshal gives %x", i, r, got, err, want)
 		}
-		if _, ok := appendPlainVerdict(nil, r); !ok {
+		if plain, ok := appendPlainVerdict(nil, r); !ok {
 			t.Errorf("case %d (%v) left to proto", i, r)
+		} else if !bytes.Equal(plain, want) {
+			t.Fatalf("case %d (%v): appendPlainVerdict gives %x; proto.Marshal gives %x", i, r, plain, want)
 		}
 	}
 
 	others := []*pb.IngestResponse{
 		{Sequence: 4, Events: []*pb.FusionEvent{{}}},
-		{Sequence: 4, Resolved: []*pb.Resolution{{}}},
+		{Sequence: 4, Resolved: []*pb.Resolution{{Reason: "bad \xfe"}}},
 		{Sequence: 4, Reason: "bad \xff"},
 		{Sequence: 4, Field: "\xc3"},
 	}
 	withUnknown := &pb.IngestResponse{Sequence: 4}
 	withUnknown.ProtoReflect().SetUnknown(protowire.AppendVarint(protowire.AppendTag(nil, 99, protowire.VarintType), 1))
-	others = append(others, withUnknown)
+	resUnknown := &pb.Resolution{Sequence: 3}
+	resUnknown.ProtoReflect().SetUnknown(protowire.AppendVarint(protowire.AppendTag(nil, 98, protowire.VarintType), 1))
+	others = append(others, withUnknown, &pb.IngestResponse{Sequence: 4, Resolved: []*pb.Resolution{resUnknown}})
 	for i, r := range others {
 		if _, ok := appendPlainVerdict(nil, r); ok {
 			t.Errorf("other %d (%v) encoded without proto", i, r)

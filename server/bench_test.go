@@ -235,12 +235,12 @@ func BenchmarkIngestCore(b *testing.B) {
 		reqs[i] = mem.BufferSlice{mem.SliceBuffer(b)}
 	}
 	cd := newCodec()
-	sl := &slab{}
+	sl, dec := &slab{}, &requestDecoder{}
 	batch := make([]*arrivedRequest, 0, maxBatch)
 	i := 0
 	b.ReportAllocs()
 	for b.Loop() {
-		req := &arrivedRequest{slab: sl}
+		req := &arrivedRequest{slab: sl, dec: dec}
 		if err := cd.Unmarshal(reqs[i], req); err != nil {
 			b.Fatal(err)
 		}

@@ -2,13 +2,16 @@ package server
 
 import (
 	"fmt"
+	"unicode/utf8"
 
 	"google.golang.org/grpc/encoding"
 	_ "google.golang.org/grpc/encoding/proto" // registers the protobuf codec that codec wraps
 	"google.golang.org/grpc/mem"
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/journal"
 )
 
 // codec is the service's gRPC codec: protobuf, except on the ingest path,
@@ -39,11 +42,84 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	}
 	b := r.slab.take(data.Len())
 	data.CopyTo(b)
-	if err := proto.Unmarshal(b, &r.IngestRequest); err != nil {
-		return fmt.Errorf("ingest request: %w", err)
+	if r.dec == nil || !decodeRequest(r.dec, b, &r.IngestRequest) {
+		r.IngestRequest.Reset()
+		if err := proto.Unmarshal(b, &r.IngestRequest); err != nil {
+			return fmt.Errorf("ingest request: %w", err)
+		}
 	}
 	r.wire = b
 	return nil
+}
+
+// requestDecoder is one ingest stream's decoder of requests by hand: its
+// samples' decoder, and the robot's name and the session id of its last
+// request, which the next ones repeat (kept, they cost no allocation).
+type requestDecoder struct {
+	samples        journal.SampleDecoder
+	robot, session string
+}
+
+// decodeRequest sets req, a zero IngestRequest, to the request encoded in
+// b, its sample decoded by dec, and reports whether it could. Whatever dec
+// leaves to proto.Unmarshal, and a field given twice, a field it does not
+// know, a wire type other than the field's or a string that is not UTF-8,
+// it leaves to proto.Unmarshal too (false; req may then hold part of the
+// request), so that a request means the same whichever decoder read it
+// (FuzzDecodeRequest).
+func decodeRequest(dec *requestDecoder, b []byte, req *pb.IngestRequest) bool {
+	var seen uint8 // fields met, by number
+	for len(b) > 0 {
+		num, typ, n := protowire.ConsumeTag(b)
+		if n < 0 || num < 1 || num > 4 || seen&(1<<num) != 0 {
+			return false
+		}
+		seen |= 1 << num
+		b = b[n:]
+		if num == 2 {
+			if typ != protowire.VarintType {
+				return false
+			}
+			v, m := protowire.ConsumeVarint(b)
+			if m < 0 {
+				return false
+			}
+			req.ClientSequence, b = v, b[m:]
+			continue
+		}
+		if typ != protowire.BytesType {
+			return false
+		}
+		v, m := protowire.ConsumeBytes(b)
+		if m < 0 {
+			return false
+		}
+		b = b[m:]
+		switch num {
+		case 1, 4:
+			if !utf8.Valid(v) {
+				return false // proto.Unmarshal's error, from proto.Unmarshal
+			}
+			if num == 1 {
+				if string(v) != dec.robot {
+					dec.robot = string(v)
+				}
+				req.Robot = dec.robot
+			} else {
+				if string(v) != dec.session {
+					dec.session = string(v)
+				}
+				req.SessionId = dec.session
+			}
+		default:
+			s, ok := dec.samples.Decode(v)
+			if !ok {
+				return false
+			}
+			req.Sample = s
+		}
+	}
+	return true
 }
 
 // arrivedRequest is an ingest request and, under codec, the bytes it
@@ -53,6 +129,8 @@ type arrivedRequest struct {
 	pb.IngestRequest
 	wire []byte
 	slab *slab
+	// dec, when set, decodes the common samples by hand (decodeRequest).
+	dec *requestDecoder
 }
 
 // encodedResponse is a verdict and, when it was journaled, its encoding;

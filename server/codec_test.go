@@ -2,13 +2,17 @@ package server
 
 import (
 	"bytes"
+	"fmt"
+	"os"
 	"testing"
 
 	"google.golang.org/grpc/encoding"
 	"google.golang.org/grpc/mem"
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/convert"
 )
 
 // TestCodec: the service's codec keeps an ingest request's bytes and sends
@@ -116,4 +120,103 @@ func TestSlabMarshal(t *testing.T) {
 			t.Errorf("no buffer of %d bytes among %v", c, caps)
 		}
 	}
+}
+
+// requestSeeds returns encoded requests of every kind of sample in the
+// greenhouse run, for two robots and sessions in turns.
+func requestSeeds(tb testing.TB, n int) [][]byte {
+	fh, err := os.Open("../testdata/samples/greenhouse-10s.jsonl")
+	if err != nil {
+		tb.Fatal(err)
+	}
+	defer fh.Close()
+	sr := convert.NewSampleReader(fh)
+	var out [][]byte
+	for i := 0; i < n; i++ {
+		s, err := sr.Next()
+		if err != nil {
+			break
+		}
+		req := &pb.IngestRequest{Robot: fmt.Sprintf("robots/cart-%d", i%2), ClientSequence: uint64(i), Sample: s}
+		if i%3 != 0 {
+			req.SessionId = fmt.Sprintf("feed-%d", i%2)
+		}
+		b, _ := proto.Marshal(req)
+		out = append(out, b)
+	}
+	return out
+}
+
+// checkRequest decodes b with the service's codec (one stream's decoder,
+// dec) and with proto.Unmarshal, the protobuf module's decoder (the
+// reference): both refuse it, or both give the same request, unknown
+// fields and all. It returns whether the hand decoder took it.
+func checkRequest(t testing.TB, dec *requestDecoder, b []byte) bool {
+	t.Helper()
+	var want pb.IngestRequest
+	werr := proto.Unmarshal(b, &want)
+	var hand pb.IngestRequest
+	took := decodeRequest(dec, b, &hand)
+	if took && (werr != nil || !proto.Equal(&hand, &want)) {
+		t.Fatalf("decodeRequest took %x as %v; proto.Unmarshal gives %v, %v", b, &hand, &want, werr)
+	}
+	got := &arrivedRequest{slab: &slab{}, dec: dec}
+	gerr := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b)}, got)
+	if (gerr != nil) != (werr != nil) || werr == nil && !proto.Equal(&got.IngestRequest, &want) {
+		t.Fatalf("the codec gives %v, %v for %x; proto.Unmarshal %v, %v", &got.IngestRequest, gerr, b, &want, werr)
+	}
+	return took
+}
+
+// TestDecodeRequest: the requests a robot sends nearly always, odometry
+// and IMU headings, are decoded by hand into the messages proto.Unmarshal
+// gives; fixes and everything proto.Unmarshal would merge, replace, keep
+// or refuse are left to it, with the same outcome.
+func TestDecodeRequest(t *testing.T) {
+	dec := &requestDecoder{}
+	took, kinds := 0, map[string]int{}
+	for _, b := range requestSeeds(t, 400) {
+		var req pb.IngestRequest
+		proto.Unmarshal(b, &req)
+		kind := fmt.Sprintf("%T", req.GetSample().GetSample())
+		kinds[kind]++
+		if checkRequest(t, dec, b) {
+			took++
+		} else if req.GetSample().GetOdometry() != nil || req.GetSample().GetHeading() != nil {
+			t.Errorf("a %s request left to proto.Unmarshal: %v", kind, &req)
+		}
+	}
+	if took < 300 || len(kinds) < 3 {
+		t.Fatalf("%d of 400 taken by hand, kinds %v", took, kinds)
+	}
+	odo, _ := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: 3, SessionId: "s",
+		Sample: &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StampNs: 5, StartNs: 1,
+			Motion: &pb.OdometrySample_Counts{Counts: &pb.WheelCounts{Counts: []int64{-1, 1 << 40}}}}}}})
+	unknown := protowire.AppendVarint(protowire.AppendTag(append([]byte(nil), odo...), 9, protowire.VarintType), 1)
+	robotTwice := protowire.AppendString(protowire.AppendTag(append([]byte(nil), odo...), 1, protowire.BytesType), "robots/other")
+	seqTwice := protowire.AppendVarint(protowire.AppendTag(append([]byte(nil), odo...), 2, protowire.VarintType), 8)
+	seqAsBytes := protowire.AppendString(protowire.AppendTag(nil, 2, protowire.BytesType), "x")
+	badRobot := protowire.AppendString(protowire.AppendTag(nil, 1, protowire.BytesType), "robots/\xff")
+	badSession := protowire.AppendString(protowire.AppendTag(nil, 4, protowire.BytesType), "\xc3")
+	for name, b := range map[string][]byte{"unknown field": unknown, "robot twice": robotTwice, "sequence twice": seqTwice,
+		"sequence as bytes": seqAsBytes, "robot not UTF-8": badRobot, "session not UTF-8": badSession, "cut": odo[:len(odo)-1]} {
+		if checkRequest(t, dec, b) {
+			t.Errorf("%s: taken by hand", name)
+		}
+	}
+	if !checkRequest(t, dec, odo) || !checkRequest(t, dec, nil) {
+		t.Error("an odometry request or an empty one left to proto.Unmarshal")
+	}
+}
+
+// FuzzDecodeRequest: whatever the bytes, the service's codec and
+// proto.Unmarshal agree on the request, or both refuse it.
+func FuzzDecodeRequest(f *testing.F) {
+	for _, b := range requestSeeds(f, 40) {
+		f.Add(b)
+	}
+	dec := &requestDecoder{}
+	f.Fuzz(func(t *testing.T, b []byte) {
+		checkRequest(t, dec, b)
+	})
 }

@@ -646,12 +646,12 @@ type scratch struct {
 // arrived alone, or with the few sent with it, it takes itself when no one
 // else is taking.
 func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
-	sl := &slab{}
+	sl, dec := &slab{}, &requestDecoder{}
 	// here counts the requests taken here since the last that arrived
 	// alone (0: the stream's requests go to the batches).
 	here := 0
 	for {
-		req := &arrivedRequest{slab: sl}
+		req := &arrivedRequest{slab: sl, dec: dec}
 		before := time.Now()
 		err := stream.RecvMsg(req)
 		if err == nil {

@@ -225,9 +225,18 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 		r.start(e.t0)
 	}
 	r.slipInflate(e)
-	r.appendOdo(e)
+	// A measurement held for this interval (an IMU heading stamped between
+	// two odometry samples) goes in as the interval is appended, unless
+	// the sample's own IMU heading goes in first.
+	split := (imu == nil || r.cfg.IMU != IMUAbsolute) && r.heldInside(e)
+	if !split {
+		r.appendOdo(e)
+	}
 	res.Verdict = VerdictApplied
 	r.stats.count(VerdictApplied, true)
+	if split {
+		r.appendSplit(e, &res)
+	}
 	if imu != nil && r.cfg.IMU == IMUAbsolute {
 		r.odometryHeading(&res, e.t1, *imu)
 	}

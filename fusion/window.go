@@ -229,6 +229,48 @@ func (r *Robot) appendOdo(e *entry) {
 	r.newest = e.t1
 }
 
+// heldInside reports whether the first held input is a measurement
+// stamped strictly inside odometry entry e, which ends after every live
+// entry.
+func (r *Robot) heldInside(e *entry) bool {
+	return len(r.held) > 0 && r.held[0].kind == entMeas && r.held[0].t1 > e.t0 && r.held[0].t1 < e.t1
+}
+
+// appendSplit appends odometry entry e, which ends after every live entry,
+// with the first held measurement (heldInside) released into it: e split
+// at the measurement's stamp by twist fractions, the measurement between
+// the two parts, all three applied from the checkpoint before them, and
+// the measurement's resolution added to res. That is what appendOdo and
+// then releaseHeld make, bit for bit, without applying e whole first only
+// to split it and apply it again: at robot rates an IMU heading stamped
+// between two odometry samples (the common case) is held until the second
+// comes, and that prediction and its checkpoint were a fifth of the
+// robot's work a sample (callgrind of BenchmarkRobotRates' inputs, session
+// 18). TestHeldSplitMatchesInsert checks it against the general path.
+func (r *Robot) appendSplit(e *entry, res *Result) {
+	h := &r.held[0]
+	r.reserve(3)
+	i := len(r.live())
+	r.ents = append(r.ents, entry{}, *h, entry{})
+	n := copy(r.held, r.held[1:])
+	r.held[n] = entry{}
+	r.held = r.held[:n]
+	live := r.live()
+	// a and b take slots of their own when applied, as the general path's
+	// b does; a keeps its slot as the whole interval's should the
+	// measurement be taken back (insertion.original).
+	splitOdo(e, live[i+1].t1, &live[i], &live[i+2])
+	r.newest = e.t1
+	r.replayFrom(i)
+	ins := insertion{at: i + 1, split: true, original: *e}
+	ins.original.after = live[i].after
+	m := &live[i+1]
+	sub := Result{Seq: m.seq}
+	r.decideMeas(&sub, &ins, r.stats.sensors[m.sensor].ID)
+	res.Resolved = append(res.Resolved, Resolution{Seq: sub.Seq, Verdict: sub.Verdict, NIS: sub.NIS, Err: sub.Err})
+	res.Events = append(res.Events, sub.Events...)
+}
+
 // insertion records how a measurement was inserted, so that it can be
 // taken back exactly.
 type insertion struct {

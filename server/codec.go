@@ -2,6 +2,7 @@ package server
 
 import (
 	"fmt"
+	"time"
 	"unicode/utf8"
 
 	"google.golang.org/grpc/encoding"
@@ -131,6 +132,8 @@ type arrivedRequest struct {
 	slab *slab
 	// dec, when set, decodes the common samples by hand (decodeRequest).
 	dec *requestDecoder
+	// arrived is when it was received (zero: it came without a stream).
+	arrived time.Time
 }
 
 // encodedResponse is a verdict and, when it was journaled, its encoding;

@@ -32,7 +32,7 @@ func newRobotVecs() robotVecs {
 		gaps:       g("reckon_robot_odometry_gaps", "Odometry gaps since the robot was created (its statistics)."),
 		held:       g("reckon_robot_held_inputs", "Inputs held now, waiting for odometry to reach their stamp."),
 		run:        g("reckon_robot_run", "The robot's current run, from 1: a controller restart (a run start) begins the next."),
-		journalLag: g("reckon_robot_journal_lag_seconds", "For the robot's last batch: seconds from taking its inputs to the end of their journal write (to the operating system; fsynced with it under -fsync each, else within the sync interval)."),
+		journalLag: g("reckon_robot_journal_lag_seconds", "For the robot's last batch: seconds from the arrival of its first input to the end of their journal write (to the operating system; fsynced with it under -fsync each, else within the sync interval)."),
 	}
 }
 

@@ -8,7 +8,6 @@ import (
 	"google.golang.org/grpc/encoding"
 	_ "google.golang.org/grpc/encoding/proto" // registers the protobuf codec that codec wraps
 	"google.golang.org/grpc/mem"
-	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -69,51 +68,35 @@ type requestDecoder struct {
 // request), so that a request means the same whichever decoder read it
 // (FuzzDecodeRequest).
 func decodeRequest(dec *requestDecoder, b []byte, req *pb.IngestRequest) bool {
-	var seen uint8 // fields met, by number
+	var seen uint32
 	for len(b) > 0 {
-		num, typ, n := protowire.ConsumeTag(b)
-		if n < 0 || num < 1 || num > 4 || seen&(1<<num) != 0 {
+		// Field 2 (client sequence) is a varint, the others
+		// length-delimited.
+		num, v, p, rest, ok := journal.NextField(b, &seen, 4, 1<<1|1<<3|1<<4)
+		if !ok {
 			return false
 		}
-		seen |= 1 << num
-		b = b[n:]
-		if num == 2 {
-			if typ != protowire.VarintType {
-				return false
-			}
-			v, m := protowire.ConsumeVarint(b)
-			if m < 0 {
-				return false
-			}
-			req.ClientSequence, b = v, b[m:]
-			continue
-		}
-		if typ != protowire.BytesType {
-			return false
-		}
-		v, m := protowire.ConsumeBytes(b)
-		if m < 0 {
-			return false
-		}
-		b = b[m:]
+		b = rest
 		switch num {
+		case 2:
+			req.ClientSequence = v
 		case 1, 4:
-			if !utf8.Valid(v) {
+			if !utf8.Valid(p) {
 				return false // proto.Unmarshal's error, from proto.Unmarshal
 			}
 			if num == 1 {
-				if string(v) != dec.robot {
-					dec.robot = string(v)
+				if string(p) != dec.robot {
+					dec.robot = string(p)
 				}
 				req.Robot = dec.robot
 			} else {
-				if string(v) != dec.session {
-					dec.session = string(v)
+				if string(p) != dec.session {
+					dec.session = string(p)
 				}
 				req.SessionId = dec.session
 			}
 		default:
-			s, ok := dec.samples.Decode(v)
+			s, ok := dec.samples.Decode(p)
 			if !ok {
 				return false
 			}

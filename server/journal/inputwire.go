@@ -68,56 +68,72 @@ func take[T any](d *inputDecoder, blk *[]T) *T {
 // input, and the caller decodes b with proto.Unmarshal into a zero
 // message.
 func (d *inputDecoder) decode(b []byte, in *pb.JournalInput) bool {
-	var seen uint8 // fields met, by number
+	var seen uint32
 	for len(b) > 0 {
-		num, typ, n := protowire.ConsumeTag(b)
-		if n < 0 || num < 1 || num > 5 || seen&(1<<num) != 0 {
+		// Fields 2 (sample) and 4 (session id) are length-delimited, the
+		// others varints.
+		num, v, p, rest, ok := NextField(b, &seen, 5, 1<<2|1<<4)
+		if !ok {
 			return false
 		}
-		seen |= 1 << num
-		b = b[n:]
+		b = rest
 		switch num {
-		case 1, 3, 5:
-			if typ != protowire.VarintType {
-				return false
+		case 1:
+			in.Sequence = v
+		case 3:
+			in.ArrivalUnixNs = int64(v)
+		case 5:
+			in.ClientSequence = v
+		case 4:
+			if !utf8.Valid(p) {
+				return false // proto.Unmarshal's error, from proto.Unmarshal
 			}
-			v, m := protowire.ConsumeVarint(b)
-			if m < 0 {
-				return false
-			}
-			b = b[m:]
-			switch num {
-			case 1:
-				in.Sequence = v
-			case 3:
-				in.ArrivalUnixNs = int64(v)
-			default:
-				in.ClientSequence = v
-			}
-		case 2, 4:
-			if typ != protowire.BytesType {
-				return false
-			}
-			v, m := protowire.ConsumeBytes(b)
-			if m < 0 {
-				return false
-			}
-			b = b[m:]
-			if num == 4 {
-				if !utf8.Valid(v) {
-					return false // proto.Unmarshal's error, from proto.Unmarshal
-				}
-				in.SessionId = string(v)
-				continue
-			}
+			in.SessionId = string(p)
+		default:
 			s := take(d, &d.samples)
-			if !d.sample(v, s) {
+			if !d.sample(p, s) {
 				return false
 			}
 			in.Sample = s
 		}
 	}
 	return true
+}
+
+// NextField reads the field at the start of b, a message whose fields are
+// numbered 1 to maxNum, each given at most once (seen marks those met, by
+// number), the length-delimited ones marked in bytesMask by number and
+// the others varints: its number, its value (v for a varint, p for a
+// length-delimited field) and the bytes after it. ok is false for
+// anything else (a field it does not know, a field given twice, another
+// wire type, bytes that do not parse), which a hand decoder leaves to
+// proto.Unmarshal.
+func NextField(b []byte, seen *uint32, maxNum int, bytesMask uint32) (num int, v uint64, p, rest []byte, ok bool) {
+	n0, typ, n := protowire.ConsumeTag(b)
+	num = int(n0)
+	if n < 0 || num < 1 || num > maxNum || *seen&(1<<num) != 0 {
+		return 0, 0, nil, nil, false
+	}
+	*seen |= 1 << num
+	b = b[n:]
+	if bytesMask&(1<<num) == 0 {
+		if typ != protowire.VarintType {
+			return 0, 0, nil, nil, false
+		}
+		v, m := protowire.ConsumeVarint(b)
+		if m < 0 {
+			return 0, 0, nil, nil, false
+		}
+		return num, v, nil, b[m:], true
+	}
+	if typ != protowire.BytesType {
+		return 0, 0, nil, nil, false
+	}
+	p, m := protowire.ConsumeBytes(b)
+	if m < 0 {
+		return 0, 0, nil, nil, false
+	}
+	return num, 0, p, b[m:], true
 }
 
 // sample decodes a Sample holding odometry or an IMU heading.

@@ -194,11 +194,13 @@ func TestDecodeRequest(t *testing.T) {
 			Motion: &pb.OdometrySample_Counts{Counts: &pb.WheelCounts{Counts: []int64{-1, 1 << 40}}}}}}})
 	unknown := protowire.AppendVarint(protowire.AppendTag(append([]byte(nil), odo...), 9, protowire.VarintType), 1)
 	robotTwice := protowire.AppendString(protowire.AppendTag(append([]byte(nil), odo...), 1, protowire.BytesType), "robots/other")
+	// An unknown field holding what a sample holds: kept as unknown.
+	unknownSample := protowire.AppendBytes(protowire.AppendTag(append([]byte(nil), odo...), 5, protowire.BytesType), requestSample(odo))
 	seqTwice := protowire.AppendVarint(protowire.AppendTag(append([]byte(nil), odo...), 2, protowire.VarintType), 8)
 	seqAsBytes := protowire.AppendString(protowire.AppendTag(nil, 2, protowire.BytesType), "x")
 	badRobot := protowire.AppendString(protowire.AppendTag(nil, 1, protowire.BytesType), "robots/\xff")
 	badSession := protowire.AppendString(protowire.AppendTag(nil, 4, protowire.BytesType), "\xc3")
-	for name, b := range map[string][]byte{"unknown field": unknown, "robot twice": robotTwice, "sequence twice": seqTwice,
+	for name, b := range map[string][]byte{"unknown field": unknown, "unknown field like a sample": unknownSample, "robot twice": robotTwice, "sequence twice": seqTwice,
 		"sequence as bytes": seqAsBytes, "robot not UTF-8": badRobot, "session not UTF-8": badSession, "cut": odo[:len(odo)-1]} {
 		if checkRequest(t, dec, b) {
 			t.Errorf("%s: taken by hand", name)

@@ -1,6 +1,7 @@
 package server
 
 import (
+	"cmp"
 	"context"
 	"fmt"
 	"math/rand/v2"
@@ -12,6 +13,8 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/mem"
+	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
 )
@@ -133,16 +136,25 @@ func p99(d []time.Duration) time.Duration {
 // instant every 100 ms: the worst case of the rates, whose p99 is that
 // burst's.
 func BenchmarkRobotRates(b *testing.B) {
+	b.Run("independent", func(b *testing.B) { benchRates(b, ratesPhases()) })
+	b.Run("aligned", func(b *testing.B) { benchRates(b, nil) })
+}
+
+// ratesPhases returns the robots' phases of RobotRates/independent.
+func ratesPhases() []time.Duration {
 	rng := rand.New(rand.NewPCG(31, 7))
 	phases := make([]time.Duration, ratesRobots)
 	for k := range phases {
 		phases[k] = time.Duration(rng.Int64N(int64(100 * time.Millisecond)))
 	}
-	b.Run("independent", func(b *testing.B) { benchRates(b, phases) })
-	b.Run("aligned", func(b *testing.B) { benchRates(b, nil) })
+	return phases
 }
 
-func benchRates(b *testing.B, phases []time.Duration) {
+// ratesSamples returns one robot's run of RobotRates (its first seconds and
+// the measured ones), each sample's send time from the start (its stamp;
+// a fix's, which comes late, that of the sample before it), and the
+// robot's configuration.
+func ratesSamples() ([]*pb.Sample, []int64, *pb.RobotConfig) {
 	samp, cfg := cartRun(31, ratesWarm.Seconds()+ratesSeconds)
 	stampNs := make([]int64, len(samp))
 	for i, s := range samp {
@@ -155,6 +167,11 @@ func benchRates(b *testing.B, phases []time.Duration) {
 			stampNs[i] = stampNs[max(i-1, 0)]
 		}
 	}
+	return samp, stampNs, cfg
+}
+
+func benchRates(b *testing.B, phases []time.Duration) {
+	samp, stampNs, cfg := ratesSamples()
 	lis, _ := net.Listen("tcp", "127.0.0.1:0")
 	gs := grpc.NewServer()
 	pb.RegisterFusionServiceServer(gs, bare{})
@@ -218,4 +235,94 @@ func median(v []float64) float64 {
 		return v[n/2]
 	}
 	return (v[n/2-1] + v[n/2]) / 2
+}
+
+// BenchmarkRatesPath feeds RobotRates/independent's requests, as they are
+// encoded on the wire, to the service without the transport: one at a
+// time, in the order of their send times across the robots, through the
+// service's codec and the path of a request taken where it was received
+// (ingestStream), each robot on a stream of its own, the service in memory
+// only. It reports the time and the allocations of a sample, warm: it is
+// for what the service's own path does, which RobotRates' CPU figure,
+// moved by the host, cannot show. Its instruction count does not move
+// with the host: run it under callgrind (DEVELOPERS.md, "Benchmarks").
+func BenchmarkRatesPath(b *testing.B) {
+	samp, stampNs, cfg := ratesSamples()
+	phases := ratesPhases()
+	type item struct {
+		at    time.Duration
+		robot int
+		req   mem.BufferSlice
+	}
+	var items []item
+	for k := range ratesRobots {
+		robot := fmt.Sprintf("robots/cart-%d", k)
+		for i, sm := range samp {
+			enc, _ := proto.Marshal(&pb.IngestRequest{Robot: robot, ClientSequence: uint64(i + 1), Sample: sm, SessionId: "rates-" + robot})
+			items = append(items, item{time.Duration(stampNs[i]-stampNs[0]) + phases[k], k, mem.BufferSlice{mem.SliceBuffer(enc)}})
+		}
+	}
+	slices.SortStableFunc(items, func(x, y item) int { return cmp.Compare(x.at, y.at) })
+	// A stream's own: its slab and decoder of requests, its outbox and
+	// its scratch, as Ingest makes them.
+	type stream struct {
+		sl  *slab
+		dec *requestDecoder
+		ob  *outbox
+		sc  *scratch
+	}
+	var s *Server
+	var streams []stream
+	fresh := func() {
+		if s != nil {
+			s.Close()
+		}
+		var err error
+		if s, err = New(Options{}); err != nil {
+			b.Fatal(err)
+		}
+		streams = streams[:0]
+		for k := range ratesRobots {
+			if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: fmt.Sprintf("cart-%d", k), Config: cfg}); err != nil {
+				b.Fatal(err)
+			}
+			streams = append(streams, stream{&slab{}, &requestDecoder{}, newOutbox(), &scratch{verdicts: slab{next: verdictSlabStart}}})
+		}
+	}
+	fresh()
+	defer func() { s.Close() }()
+	cd := newCodec()
+	batch := make([]*arrivedRequest, 1)
+	i := 0
+	b.ReportAllocs()
+	for b.Loop() {
+		st := &streams[items[i].robot]
+		if out := ratesPathTake(s, cd, items[i].req, st.sl, st.dec, st.ob, st.sc, batch); out.Verdict == pb.Verdict_VERDICT_INVALID {
+			b.Fatalf("sample %d refused: %s", i, out.Reason)
+		}
+		i++
+		if i == len(items) {
+			b.StopTimer()
+			fresh()
+			i = 0
+			b.StartTimer()
+		}
+	}
+}
+
+// ratesPathTake decodes one request and takes it as a request taken where
+// it was received is; a function of its own, so that callgrind can count
+// it alone (--toggle-collect='*ratesPathTake*').
+//
+//go:noinline
+func ratesPathTake(s *Server, cd codec, wire mem.BufferSlice, sl *slab, dec *requestDecoder, ob *outbox, sc *scratch, batch []*arrivedRequest) *encodedResponse {
+	req := &arrivedRequest{slab: sl, dec: dec}
+	if err := cd.Unmarshal(wire, req); err != nil {
+		panic(err)
+	}
+	batch[0] = req
+	out := s.ingestStream(batch, ob, sc)
+	sc.out = out
+	ob.drain()
+	return &out[0]
 }

@@ -50,7 +50,7 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 		r, rep := s.restoreRobot(id)
 		s.mu.Lock()
 		s.robots[r.name] = r
-		s.opt.Metrics.robots(len(s.robots))
+		s.robotsChanged()
 		s.mu.Unlock()
 		if rep.State == pb.RobotState_ROBOT_STATE_QUARANTINED {
 			s.opt.Metrics.quarantined(1)

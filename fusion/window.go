@@ -244,9 +244,9 @@ func (r *Robot) heldInside(e *entry) bool {
 // then releaseHeld make, bit for bit, without applying e whole first only
 // to split it and apply it again: at robot rates an IMU heading stamped
 // between two odometry samples (the common case) is held until the second
-// comes, and that prediction and its checkpoint were a fifth of the
-// robot's work a sample (callgrind of BenchmarkRobotRates' inputs, session
-// 18). TestHeldSplitMatchesInsert checks it against the general path.
+// comes, and that prediction, its checkpoint and the window's shift were
+// about 6% of the robot's instructions (8 M of 135 M over
+// BenchmarkRatesPath's inputs under callgrind, session 18). TestHeldSplitMatchesInsert checks it against the general path.
 func (r *Robot) appendSplit(e *entry, res *Result) {
 	h := &r.held[0]
 	r.reserve(3)

@@ -80,20 +80,13 @@ func decodeRequest(dec *requestDecoder, b []byte, req *pb.IngestRequest) bool {
 		switch num {
 		case 2:
 			req.ClientSequence = v
-		case 1, 4:
-			if !utf8.Valid(p) {
-				return false // proto.Unmarshal's error, from proto.Unmarshal
+		case 1:
+			if req.Robot, ok = keep(&dec.robot, p); !ok {
+				return false
 			}
-			if num == 1 {
-				if string(p) != dec.robot {
-					dec.robot = string(p)
-				}
-				req.Robot = dec.robot
-			} else {
-				if string(p) != dec.session {
-					dec.session = string(p)
-				}
-				req.SessionId = dec.session
+		case 4:
+			if req.SessionId, ok = keep(&dec.session, p); !ok {
+				return false
 			}
 		default:
 			s, ok := dec.samples.Decode(p)
@@ -106,6 +99,21 @@ func decodeRequest(dec *requestDecoder, b []byte, req *pb.IngestRequest) bool {
 	return true
 }
 
+// keep returns p as a string: the one kept in *last when p holds the same
+// bytes (no allocation, and it was checked when kept), otherwise p's,
+// kept in its place. ok is false when p is not UTF-8, which proto.Unmarshal
+// refuses in a string field: the caller leaves the request to it.
+func keep(last *string, p []byte) (s string, ok bool) {
+	if string(p) == *last {
+		return *last, true
+	}
+	if !utf8.Valid(p) {
+		return "", false
+	}
+	*last = string(p)
+	return *last, true
+}
+
 // arrivedRequest is an ingest request and, under codec, the bytes it
 // arrived as. It is a proto.Message through the embedded request, so the
 // standard codec decodes it too (and leaves wire nil).
@@ -115,7 +123,8 @@ type arrivedRequest struct {
 	slab *slab
 	// dec, when set, decodes the common samples by hand (decodeRequest).
 	dec *requestDecoder
-	// arrived is when it was received (zero: it came without a stream).
+	// arrived is when it was received (zero until ingestStream sets it
+	// for a request that came without a stream).
 	arrived time.Time
 }
 

@@ -151,9 +151,9 @@ func ratesPhases() []time.Duration {
 }
 
 // ratesSamples returns one robot's run of RobotRates (its first seconds and
-// the measured ones), each sample's send time from the start (its stamp;
-// a fix's, which comes late, that of the sample before it), and the
-// robot's configuration.
+// the measured ones), the stamp each sample is sent at (its own; a fix's,
+// which comes late, that of the sample before it), and the robot's
+// configuration.
 func ratesSamples() ([]*pb.Sample, []int64, *pb.RobotConfig) {
 	samp, cfg := cartRun(31, ratesWarm.Seconds()+ratesSeconds)
 	stampNs := make([]int64, len(samp))
@@ -239,7 +239,9 @@ func median(v []float64) float64 {
 
 // BenchmarkRatesPath feeds RobotRates/independent's requests, as they are
 // encoded on the wire, to the service without the transport: one at a
-// time, in the order of their send times across the robots, through the
+// time, each robot's in its order, as paced sends them (a sample whose
+// stamp is before the one sent last goes right after it), merged across
+// the robots by send time, through the
 // service's codec and the path of a request taken where it was received
 // (ingestStream), each robot on a stream of its own, the service in memory
 // only. It reports the time and the allocations of a sample, warm: it is
@@ -257,9 +259,11 @@ func BenchmarkRatesPath(b *testing.B) {
 	var items []item
 	for k := range ratesRobots {
 		robot := fmt.Sprintf("robots/cart-%d", k)
+		var at time.Duration
 		for i, sm := range samp {
 			enc, _ := proto.Marshal(&pb.IngestRequest{Robot: robot, ClientSequence: uint64(i + 1), Sample: sm, SessionId: "rates-" + robot})
-			items = append(items, item{time.Duration(stampNs[i]-stampNs[0]) + phases[k], k, mem.BufferSlice{mem.SliceBuffer(enc)}})
+			at = max(at, time.Duration(stampNs[i]-stampNs[0])+phases[k])
+			items = append(items, item{at, k, mem.BufferSlice{mem.SliceBuffer(enc)}})
 		}
 	}
 	slices.SortStableFunc(items, func(x, y item) int { return cmp.Compare(x.at, y.at) })

@@ -895,8 +895,18 @@ func (s *Server) ingestBatch(batch []*arrivedRequest) []encodedResponse {
 // ingestStream applies samples of one stream (ob) in order: per run of
 // samples for one robot, the robot (which checks each input first) under
 // its lock, one journal write, then the watchers. The verdicts are in
-// sc.out's space when it has room.
+// sc.out's space when it has room. A request without an arrival time (it
+// came without a stream) arrived now.
 func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) []encodedResponse {
+	var now time.Time
+	for _, req := range batch {
+		if req.arrived.IsZero() {
+			if now.IsZero() {
+				now = time.Now()
+			}
+			req.arrived = now
+		}
+	}
 	var out []encodedResponse
 	if cap(sc.out) >= len(batch) {
 		out = sc.out[:len(batch)]
@@ -933,12 +943,7 @@ type taking struct {
 // samples, one journal write and the routing of resolutions to their
 // senders; then the watchers and the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *outbox, sc *scratch) {
-	// start is when the run's first input arrived (now, for inputs that
-	// came without a stream).
-	start := run[0].arrived
-	if start.IsZero() {
-		start = time.Now()
-	}
+	start := run[0].arrived // ingestStream set it
 	r, err := s.lookup(run[0].GetRobot())
 	if err != nil {
 		st := status.Convert(err)
@@ -953,7 +958,7 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	}
 	var pose *pb.FusedPose
 	r.mu.Lock()
-	tk := s.takeRun(r, run, out, sc, start)
+	tk := s.takeRun(r, run, out, sc)
 	written, cause := s.flushJournal(r, &tk)
 	var lag time.Duration
 	if len(tk.entries) > 0 && r.fr != nil && (s.opt.Metrics != nil || r.hub.count() > 0 || s.live.watched()) {
@@ -1032,7 +1037,7 @@ func (r *robot) refusal() (codes.Code, string) {
 
 // takeRun gives the samples to the robot in order and adds those it takes,
 // with their verdicts, to the journal's buffer. The caller holds r.mu.
-func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse, sc *scratch, arrival time.Time) taking {
+func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse, sc *scratch) taking {
 	tk := taking{lost: -1, entries: sc.entries[:0]}
 	for k, req := range run {
 		if code, reason := r.refusal(); code != codes.OK {
@@ -1062,11 +1067,7 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 			s.opt.Metrics.refused(codes.Code(resp.StatusCode))
 			continue
 		}
-		at := req.arrived
-		if at.IsZero() {
-			at = arrival
-		}
-		if err := r.record(req, &out[k], &sc.verdicts, at); err != nil {
+		if err := r.record(req, &out[k], &sc.verdicts); err != nil {
 			tk.lost, tk.cause = k, err
 			continue
 		}
@@ -1093,7 +1094,7 @@ func (s *Server) answerAgain(out *encodedResponse, wire []byte) {
 // the sample, as the bytes it arrived as (encoded here when it came
 // without them), and the verdict to the journal's buffer. On error nothing
 // was added. The caller holds r.mu.
-func (r *robot) record(req *arrivedRequest, out *encodedResponse, vs *slab, arrival time.Time) error {
+func (r *robot) record(req *arrivedRequest, out *encodedResponse, vs *slab) error {
 	resp := &out.IngestResponse
 	wire, err := vs.marshalVerdict(resp)
 	if err != nil {
@@ -1115,7 +1116,7 @@ func (r *robot) record(req *arrivedRequest, out *encodedResponse, vs *slab, arri
 	if resp.Sequence%journal.PoseEvery == 0 {
 		p = convert.PoseToProto(r.name, r.fr.Pose(), resp.Sequence)
 	}
-	in := journal.EncodedInput{Sequence: resp.Sequence, Sample: sample, ArrivalUnixNs: arrival.UnixNano(),
+	in := journal.EncodedInput{Sequence: resp.Sequence, Sample: sample, ArrivalUnixNs: req.arrived.UnixNano(),
 		SessionID: req.GetSessionId(), ClientSequence: req.GetClientSequence()}
 	return r.journal.AddSessionPair(in, out.wire, p)
 }

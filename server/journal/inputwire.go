@@ -101,7 +101,7 @@ func (d *inputDecoder) decode(b []byte, in *pb.JournalInput) bool {
 }
 
 // NextField reads the field at the start of b, a message whose fields are
-// numbered 1 to maxNum, each given at most once (seen marks those met, by
+// numbered 1 to maxNum (at most 31), each given at most once (seen marks those met, by
 // number), the length-delimited ones marked in bytesMask by number and
 // the others varints: its number, its value (v for a varint, p for a
 // length-delimited field) and the bytes after it. ok is false for
@@ -208,11 +208,7 @@ func (d *inputDecoder) odometry(b []byte, o *pb.OdometrySample) bool {
 				return false
 			}
 			b = b[m:]
-			if len(d.floats) == 0 {
-				d.floats = make([]float64, 4*d.block())
-			}
-			h := &d.floats[0]
-			d.floats = d.floats[1:]
+			h := take(d, &d.floats)
 			*h = math.Float64frombits(v)
 			o.ImuHeadingRad = h
 		default:
@@ -384,8 +380,8 @@ func doubles(b []byte, dst ...*float64) bool {
 // SampleDecoder decodes samples of the two kinds that make up nearly all
 // of a run, odometry and IMU headings, by hand, as a replay does
 // (inputDecoder): the service decodes each arriving request with it, where
-// proto.Unmarshal spent 8,000 instructions a sample, a quarter of the
-// service's own (callgrind, session 18), mostly walking its tables and
+// proto.Unmarshal spent about 5,000 instructions a sample, a quarter of
+// the service's own (callgrind, session 18), mostly walking its tables and
 // setting oneofs by reflection. Its messages come from blocks it shares
 // among the samples it decodes, starting at 8 messages a block. One
 // goroutine at a time may use it.

@@ -72,6 +72,12 @@ type sessionLog struct {
 	index map[uint64]int // client sequence -> position in ring; nil while they rise
 	ring  []sessionVerdict
 	next  int // the ring position written next once it is full
+	// last is the client sequence of the verdict written into the ring
+	// last (the newest, at(len(ring)-1)), kept here so that a sample's
+	// lookup and add compare with it without reading the ring, whose end
+	// is out of the cache when the sample comes (BenchmarkRobotRates'
+	// profile, session 19: sessionLog.find 0.4% of the process's CPU).
+	last uint64
 }
 
 type sessionVerdict struct {
@@ -94,7 +100,7 @@ func (l *sessionLog) find(clientSeq uint64) (int, bool) {
 		return i, ok
 	}
 	n := len(l.ring)
-	if n == 0 || clientSeq > l.at(n-1).clientSeq {
+	if n == 0 || clientSeq > l.last {
 		return 0, false
 	}
 	k := sort.Search(n, func(k int) bool { return l.at(k).clientSeq >= clientSeq })
@@ -139,7 +145,7 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 		ss.lastID, ss.last = id, l
 	}
 	l.used = ss.tick
-	if n := len(l.ring); l.index != nil || n > 0 && clientSeq <= l.at(n-1).clientSeq {
+	if l.index != nil || len(l.ring) > 0 && clientSeq <= l.last {
 		if i, ok := l.find(clientSeq); ok {
 			ss.grow(l, len(wire)-len(l.ring[i].wire))
 			l.ring[i].wire = wire
@@ -159,6 +165,7 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 			l.index[clientSeq] = len(l.ring)
 		}
 		l.ring = append(l.ring, sessionVerdict{clientSeq, wire})
+		l.last = clientSeq
 		ss.grow(l, len(wire))
 		ss.trim(l)
 		return
@@ -169,6 +176,7 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 	}
 	ss.grow(l, len(wire)-len(l.ring[l.next].wire))
 	l.ring[l.next] = sessionVerdict{clientSeq, wire}
+	l.last = clientSeq
 	l.next = (l.next + 1) % sessionVerdicts
 	ss.trim(l)
 }

@@ -35,7 +35,10 @@ import (
 // (10 to 25 us): without a journal about 300 a second from 2 to 7 s, under
 // 10 a second after 20 s, against 2 a second for the bare service
 // (perf stat -I 1000 -e page-faults). So the targets are judged after
-// ratesWarm, when the rings are full; the start is reported beside them.
+// ratesWarm, when the rings are full (the heap's goal settles at about
+// 17 s); the start is reported beside them. On this machine the host's
+// noise moved the ratios more than the start did (DEVELOPERS.md,
+// "Benchmarks": session 19's runs).
 const (
 	ratesRobots  = 10
 	ratesStart   = 2 * time.Second

@@ -246,7 +246,8 @@ func (r *Robot) heldInside(e *entry) bool {
 // between two odometry samples (the common case) is held until the second
 // comes, and that prediction, its checkpoint and the window's shift were
 // about 6% of the robot's instructions (8 M of 135 M over
-// BenchmarkRatesPath's inputs under callgrind, session 18). TestHeldSplitMatchesInsert checks it against the general path.
+// BenchmarkRatesPath's inputs under callgrind, session 18).
+// TestHeldSplitMatchesInsert checks it against the general path.
 func (r *Robot) appendSplit(e *entry, res *Result) {
 	h := &r.held[0]
 	r.reserve(3)

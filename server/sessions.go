@@ -72,12 +72,13 @@ type sessionLog struct {
 	index map[uint64]int // client sequence -> position in ring; nil while they rise
 	ring  []sessionVerdict
 	next  int // the ring position written next once it is full
-	// last is the client sequence of the verdict written into the ring
-	// last (the newest, at(len(ring)-1)), kept here so that a sample's
-	// lookup and add compare with it without reading the ring, whose end
-	// is out of the cache when the sample comes (BenchmarkRobotRates'
-	// profile, session 19: sessionLog.find 0.4% of the process's CPU).
-	last uint64
+	// lastSeq is the client sequence of the verdict written into the
+	// ring last (the newest, at(len(ring)-1)), kept here so that a
+	// sample's lookup and add compare with it without reading the ring,
+	// whose end is out of the cache when the sample comes
+	// (BenchmarkRobotRates' profile, session 19: sessionLog.find 0.4% of
+	// the process's CPU).
+	lastSeq uint64
 }
 
 type sessionVerdict struct {
@@ -100,7 +101,7 @@ func (l *sessionLog) find(clientSeq uint64) (int, bool) {
 		return i, ok
 	}
 	n := len(l.ring)
-	if n == 0 || clientSeq > l.last {
+	if n == 0 || clientSeq > l.lastSeq {
 		return 0, false
 	}
 	k := sort.Search(n, func(k int) bool { return l.at(k).clientSeq >= clientSeq })
@@ -145,7 +146,7 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 		ss.lastID, ss.last = id, l
 	}
 	l.used = ss.tick
-	if l.index != nil || len(l.ring) > 0 && clientSeq <= l.last {
+	if l.index != nil || len(l.ring) > 0 && clientSeq <= l.lastSeq {
 		if i, ok := l.find(clientSeq); ok {
 			ss.grow(l, len(wire)-len(l.ring[i].wire))
 			l.ring[i].wire = wire
@@ -165,7 +166,7 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 			l.index[clientSeq] = len(l.ring)
 		}
 		l.ring = append(l.ring, sessionVerdict{clientSeq, wire})
-		l.last = clientSeq
+		l.lastSeq = clientSeq
 		ss.grow(l, len(wire))
 		ss.trim(l)
 		return
@@ -176,7 +177,7 @@ func (ss *sessions) add(id string, clientSeq uint64, wire []byte) {
 	}
 	ss.grow(l, len(wire)-len(l.ring[l.next].wire))
 	l.ring[l.next] = sessionVerdict{clientSeq, wire}
-	l.last = clientSeq
+	l.lastSeq = clientSeq
 	l.next = (l.next + 1) % sessionVerdicts
 	ss.trim(l)
 }

@@ -38,7 +38,7 @@ import (
 // ratesWarm, when the rings are full (the heap's goal settles at about
 // 17 s); the start is reported beside them. On this machine the host's
 // noise moved the ratios more than the start did (DEVELOPERS.md,
-// "Benchmarks": session 19's runs).
+// "RobotRates, session by session": session 19).
 const (
 	ratesRobots  = 10
 	ratesStart   = 2 * time.Second

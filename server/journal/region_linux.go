@@ -13,9 +13,10 @@ import (
 
 // mapRegion appends to an operating-system file through a shared memory
 // map of a window of it. A copy costs no system call, where write(2) cost
-// 4.8 us a sample of the service's CPU (DEVELOPERS.md, "RobotRates"); the
-// kernel takes a page fault when a copy first dirties a page after it was
-// written back (one in 20 or so samples). The space is reserved with
+// 4.8 us a sample of the service's CPU (DEVELOPERS.md, "RobotRates,
+// session by session": session 14); the kernel takes a page fault when a
+// copy first dirties a page after it was written back (one in 20 or so
+// samples). The space is reserved with
 // fallocate(2) before anything is copied into it, so that a copy never
 // needs a block the disk has not got (which would be a SIGBUS); a fault
 // that happens anyway (an I/O error reading a page in, the file cut short

@@ -21,7 +21,7 @@ import (
 // needs a block the disk has not got (which would be a SIGBUS); a fault
 // that happens anyway (an I/O error reading a page in, the file cut short
 // by another program) is caught and returned as an error wrapping EIO
-// (guardedCopy).
+// (guarded).
 type mapRegion struct {
 	f    *os.File
 	mem  []byte // the window

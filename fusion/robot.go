@@ -259,3 +259,14 @@ func (r *Robot) start(t int64) {
 
 // Sequence returns the arrival sequence number of the last input taken.
 func (r *Robot) Sequence() uint64 { return r.seq }
+
+// SkipTo makes seq the sequence number of the last input taken when it is
+// later than the robot's: the numbers between belong to inputs the robot
+// never saw, as a replay past a gap in a journal meets them, so that the
+// inputs after the gap keep the numbers they arrived with (and a held
+// input's resolution names it by its own). It changes nothing else.
+func (r *Robot) SkipTo(seq uint64) {
+	if seq > r.seq {
+		r.seq = seq
+	}
+}

@@ -3,6 +3,7 @@ package server
 import (
 	"context"
 	"os"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
@@ -32,21 +33,34 @@ func twoCarts(t *testing.T, dir string, opt Options) {
 	srv.stop()
 }
 
-// TestQuarantineAtRestore: a robot whose journal cannot be restored stays
-// listed as quarantined, naming the problem and the file; every rpc on it
-// answers FAILED_PRECONDITION; the other robot serves.
-func TestQuarantineAtRestore(t *testing.T) {
-	dir := t.TempDir()
+// twoCartsOneGarbled makes twoCarts' journals in a new directory and
+// writes garbage over a stretch of cart-b's records: the journal keeps the
+// bytes aside and reads on, but the inputs in them are lost, a gap that
+// restore cannot replay across. It returns the directory and the segment.
+func twoCartsOneGarbled(t *testing.T) (dir, bad string) {
+	t.Helper()
+	dir = t.TempDir()
 	twoCarts(t, dir, Options{})
-	bad := journal.SegmentPath(dir, "cart-b", 0)
-	b, _ := os.ReadFile(bad)
-	// Garbage over a stretch of records: the journal keeps the bytes aside
-	// and reads on, but the inputs in them are lost, a gap it cannot replay
-	// across.
+	bad = journal.SegmentPath(dir, "cart-b", 0)
+	b, err := os.ReadFile(bad)
+	if err != nil {
+		t.Fatal(err)
+	}
 	for i := len(b) / 2; i < len(b)/2+4096; i++ {
 		b[i] = 0xa5
 	}
-	os.WriteFile(bad, b, 0o644)
+	if err := os.WriteFile(bad, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return dir, bad
+}
+
+// TestQuarantineAtRestore: a robot whose journal cannot be restored stays
+// listed as quarantined, naming the problem and the file; every rpc on it
+// but DeleteRobot (TestDeleteQuarantined) answers FAILED_PRECONDITION; the
+// other robot serves.
+func TestQuarantineAtRestore(t *testing.T) {
+	dir, bad := twoCartsOneGarbled(t)
 
 	s, err := New(Options{JournalDir: dir})
 	if err != nil {
@@ -82,7 +96,6 @@ func TestQuarantineAtRestore(t *testing.T) {
 	_, calls["GetPoseAt"] = api.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart-b"})
 	_, calls["GetStatistics"] = api.GetStatistics(ctx, &pb.GetStatisticsRequest{Robot: "robots/cart-b"})
 	_, calls["ReseedRobot"] = api.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: "robots/cart-b", Reseed: &pb.Reseed{StampNs: 1, Pose: &pb.FloorPose{}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}}})
-	_, calls["DeleteRobot"] = api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart-b"})
 	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: "robots/cart-b"})
 	if err == nil {
 		_, err = w.Recv()
@@ -249,5 +262,149 @@ func TestThisBuild(t *testing.T) {
 	scan, err := journal.Read(dir, "cart", journal.Visitor{})
 	if err != nil || scan.Opening.GetBuild() != ThisBuild() {
 		t.Errorf("opening build %q (%v), want %q", scan.Opening.GetBuild(), err, ThisBuild())
+	}
+}
+
+// robotFiles returns the contents of the files in dir whose names start
+// with the robot's id and a dot, by name.
+func robotFiles(t *testing.T, dir, id string) map[string]string {
+	t.Helper()
+	ents, err := os.ReadDir(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	out := map[string]string{}
+	for _, e := range ents {
+		if strings.HasPrefix(e.Name(), id+".") {
+			b, err := os.ReadFile(dir + "/" + e.Name())
+			if err != nil {
+				t.Fatal(err)
+			}
+			out[e.Name()] = string(b)
+		}
+	}
+	return out
+}
+
+// assertSetAside checks that every file of before is now in after under
+// its name with one ".deleted-{ns}" suffix, byte for byte if exact (a
+// journal closed in the delete gives its segment's reserve back, so it is
+// shorter by zeros), and that after holds nothing else.
+func assertSetAside(t *testing.T, before, after map[string]string, exact bool) {
+	t.Helper()
+	if len(after) != len(before) {
+		t.Errorf("%d files before the delete, %d after: %v", len(before), len(after), keys(after))
+	}
+	for name, b := range before {
+		found := false
+		for aside, a := range after {
+			if rest, ok := strings.CutPrefix(aside, name+journal.DeletedMark); ok && !strings.Contains(rest, ".") {
+				found = true
+				if exact && a != b {
+					t.Errorf("%s set aside as %s with other bytes", name, aside)
+				}
+			}
+		}
+		if !found {
+			t.Errorf("%s not set aside: %v", name, keys(after))
+		}
+	}
+}
+
+// asideScan writes the files set aside, after, under their own names into
+// a directory of their own and replays the robot's journal there.
+func asideScan(t *testing.T, after map[string]string, id string) journal.Scan {
+	t.Helper()
+	back := t.TempDir()
+	for aside, a := range after {
+		name, _, _ := strings.Cut(aside, journal.DeletedMark)
+		if err := os.WriteFile(back+"/"+name, []byte(a), 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	_, scan, err := journal.Replay(back, id, journal.ReplayOptions{})
+	if err != nil {
+		t.Errorf("the journal set aside: %v", err)
+	}
+	return scan
+}
+
+// deleteSetsAside deletes robot id of s and checks that its journal in dir
+// is set aside (assertSetAside, not byte for byte) holding inputs inputs.
+func deleteSetsAside(t *testing.T, s *Server, dir, id string, inputs int) {
+	t.Helper()
+	before := robotFiles(t, dir, id)
+	if _, err := s.DeleteRobot(context.Background(), &pb.DeleteRobotRequest{Name: RobotName(id)}); err != nil {
+		t.Fatalf("delete: %v", err)
+	}
+	after := robotFiles(t, dir, id)
+	assertSetAside(t, before, after, false)
+	if scan := asideScan(t, after, id); scan.Pairs != inputs {
+		t.Errorf("the journal set aside holds %d inputs, want %d", scan.Pairs, inputs)
+	}
+}
+
+func keys(m map[string]string) []string {
+	var out []string
+	for k := range m {
+		out = append(out, k)
+	}
+	slices.Sort(out)
+	return out
+}
+
+// TestDeleteQuarantined: a robot quarantined at restore is deleted without
+// a restart of the service: its journal, the damaged bytes kept aside
+// included, is set aside byte for byte, the other robot serves on, and the
+// name can be created again, serves, and is what the next restart restores.
+func TestDeleteQuarantined(t *testing.T) {
+	dir, _ := twoCartsOneGarbled(t)
+	cartA := robotFiles(t, dir, "cart-a")
+
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	before := robotFiles(t, dir, "cart-b")
+	damaged := 0
+	for name := range before {
+		if strings.Contains(name, ".damaged-") {
+			damaged++
+		}
+	}
+	if damaged != 1 {
+		t.Fatalf("restore kept %d copies of damaged bytes: %v", damaged, keys(before))
+	}
+	if _, err := api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart-b"}); err != nil {
+		t.Fatalf("delete of the quarantined robot: %v", err)
+	}
+	assertSetAside(t, before, robotFiles(t, dir, "cart-b"), true)
+	list, err := api.ListRobots(ctx, &pb.ListRobotsRequest{})
+	if err != nil || len(list.GetRobots()) != 1 || list.GetRobots()[0].GetName() != "robots/cart-a" {
+		t.Fatalf("after the delete: %v %v", err, list)
+	}
+	samp, cfg := cartRun(9, 2)
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart-b", Config: cfg}); err != nil {
+		t.Fatalf("create the name again: %v", err)
+	}
+	for _, v := range feedStub(t, api, "robots/cart-b", "", 1, samp) {
+		if v.GetSequence() == 0 {
+			t.Fatalf("the new cart-b refused %v", v)
+		}
+	}
+	srv.stop()
+
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer s.Close()
+	reports, err := s.Restore()
+	if err != nil || len(reports) != 2 || reports[0].State != pb.RobotState_ROBOT_STATE_SERVING || reports[1].State != pb.RobotState_ROBOT_STATE_SERVING || reports[1].Inputs != len(samp) {
+		t.Fatalf("restart: %v %+v; want both serving, cart-b with %d inputs", err, reports, len(samp))
+	}
+	for name, b := range cartA {
+		if a := robotFiles(t, dir, "cart-a")[name]; !strings.HasPrefix(a, b) {
+			t.Errorf("cart-a's %s changed", name)
+		}
 	}
 }

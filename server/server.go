@@ -508,18 +508,14 @@ func (s *Server) ListRobots(ctx context.Context, req *pb.ListRobotsRequest) (*pb
 	return out, nil
 }
 
-// DeleteRobot deletes a robot; its journal is closed and set aside. A
-// quarantined robot is not deleted: its journal needs an operator.
+// DeleteRobot deletes a robot; its journal is closed and set aside
+// (journal.SetAside), every record kept. A quarantined robot's journal is
+// set aside as it is, without a closing record, damage and all: its name
+// is free again and the service need not restart.
 func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*pb.DeleteRobotResponse, error) {
 	r, err := s.lookup(req.GetName())
 	if err != nil {
 		return nil, err
-	}
-	r.mu.Lock()
-	q, detail := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED, r.detail
-	r.mu.Unlock()
-	if q {
-		return nil, status.Errorf(codes.FailedPrecondition, "robot: %s is quarantined (%s); move its journal files aside and restart the service to remove it", r.name, detail)
 	}
 	s.mu.Lock()
 	if s.robots[r.name] != r {
@@ -538,15 +534,33 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
-	if r.journal != nil {
-		err = r.journal.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Closing{Closing: &pb.JournalClosing{DeleteTimeUnixNs: time.Now().UnixNano()}}})
-		if err == nil {
-			_, err = r.journal.flush()
+	quarantined := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED
+	switch {
+	case quarantined && r.journal != nil:
+		// Its journal could no longer be written: no closing record.
+		err = r.journal.Remove()
+	case quarantined:
+		// Its journal could not be restored, so it was never opened.
+		err = journal.SetAside(s.opt.FS, s.opt.JournalDir, r.id)
+	case r.journal != nil:
+		// The closing record says when; a journal that cannot take it (a
+		// full disk) is set aside without it, so that the robot does not
+		// come back at the next restart.
+		cerr := r.journal.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Closing{Closing: &pb.JournalClosing{DeleteTimeUnixNs: time.Now().UnixNano()}}})
+		if cerr == nil {
+			_, cerr = r.journal.flush()
 		}
-		if err == nil {
-			err = r.journal.Remove()
+		if cerr != nil {
+			s.log.Warn("journal closing record not written; the journal is set aside without it", "robot", r.name, "err", cerr)
 		}
-		r.journal = nil
+		err = r.journal.Remove()
+	}
+	r.journal = nil
+	if quarantined {
+		s.opt.Metrics.quarantined(-1)
+	}
+	if r.state == pb.RobotState_ROBOT_STATE_PAUSED {
+		s.opt.Metrics.paused(-1)
 	}
 	r.gauges = nil
 	r.mu.Unlock()

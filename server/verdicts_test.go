@@ -219,6 +219,39 @@ func TestWriteFailureQuarantines(t *testing.T) {
 	if _, err := s.GetPoseAt(ctx, &pb.GetPoseAtRequest{Robot: "robots/cart"}); codeOf(err) != codes.FailedPrecondition {
 		t.Errorf("GetPoseAt of a quarantined robot: %v", err)
 	}
+	// Deleted, it sets its broken journal aside as it is; the name serves
+	// again.
+	deleteSetsAside(t, s, dir, "cart", 50)
+	if _, err := s.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	if o := take(s, requests("robots/cart", "", 1, samp[:1]))[0]; o.Sequence != 1 {
+		t.Errorf("the new robot of the name: %v", o)
+	}
+}
+
+// TestDeletePaused: a robot paused on a full disk is deleted although its
+// journal cannot take the closing record: its journal is set aside without
+// it (every input journaled before is kept), so that the robot does not
+// come back at the next restart.
+func TestDeletePaused(t *testing.T) {
+	dir := t.TempDir()
+	s, js := faultyServer(t, Options{JournalDir: dir, SnapshotEvery: 20})
+	samp, cfg := cartRun(5, 2)
+	ctx := context.Background()
+	s.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	take(s, requests("robots/cart", "", 1, samp[:10]))
+	js["0"].failSnapshot = fmt.Errorf("journal cart.000000.rjl: %w: %w", journal.ErrNoSpace, syscall.ENOSPC)
+	take(s, requests("robots/cart", "", 11, samp[10:20]))
+	if r := robotState(t, s, "robots/cart"); r.GetState() != pb.RobotState_ROBOT_STATE_PAUSED {
+		t.Fatalf("after a failed snapshot on a full disk: %v", r.GetState())
+	}
+	s.SyncJournals()
+	deleteSetsAside(t, s, dir, "cart", 20)
+	// A restart restores the robots that have journals: none.
+	if ids, err := journal.Robots(dir); err != nil || len(ids) != 0 {
+		t.Errorf("journals left to restore: %v %v", ids, err)
+	}
 }
 
 // TestSnapshotFailureKeepsVerdicts: a snapshot that fails after the

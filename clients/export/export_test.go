@@ -311,3 +311,64 @@ func TestExportOfATornJournal(t *testing.T) {
 		t.Errorf("runs %+v, %d input rows; want torn with the scan's %d inputs", rows, len(inputs), scan.Pairs)
 	}
 }
+
+// TestExportPastALostHeldInput: a journal that lost a held input in its
+// middle (a gap, as damage leaves one) still exports: the runs row names
+// the gap, the rows after it keep the journal's sequence numbers, and
+// every held input's final verdict is the one its resolution recorded
+// (the replay numbers the inputs after the gap as they arrived,
+// fusion.Robot.SkipTo).
+func TestExportPastALostHeldInput(t *testing.T) {
+	dir := t.TempDir()
+	w := writeJournal(t, dir, "cart-1", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 71, DurationS: 16, CameraHz: 5},
+		lagOdometry{FromS: 8, ToS: 12, LagS: 0.4, LoseHeld: 3})
+	if err := w.Close(); err != nil {
+		t.Fatal(err)
+	}
+	// What the journal recorded: every input's sequence, and the final
+	// verdict of each held one.
+	final := map[int64]string{}
+	var seqs []int64
+	if _, err := journal.Read(dir, "cart-1", journal.Visitor{ReadOnly: true, Gap: func(error) error { return nil },
+		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+			seqs = append(seqs, int64(in.GetSequence()))
+			for _, res := range out.GetResponse().GetResolved() {
+				final[int64(res.GetSequence())] = convert.VerdictName(res.GetVerdict())
+			}
+			return nil
+		}}); !errors.Is(err, journal.ErrGap) {
+		t.Fatalf("the journal: %v, want a gap", err)
+	}
+	out := t.TempDir()
+	rows, err := Export(context.Background(), dir, out, Options{})
+	if err != nil {
+		t.Fatalf("export past the gap: %v", err)
+	}
+	if len(rows) != 1 || !strings.Contains(rows[0].Gap, "follows input") {
+		t.Errorf("runs %+v: want one, naming the gap", rows)
+	}
+	inputs := readTable[InputRow](t, out, InputsFile)
+	if len(inputs) != len(seqs) {
+		t.Fatalf("%d input rows, the journal holds %d", len(inputs), len(seqs))
+	}
+	resolved := 0
+	for i, in := range inputs {
+		if in.Sequence != seqs[i] {
+			t.Fatalf("row %d: input %d, the journal's is %d", i, in.Sequence, seqs[i])
+		}
+		if in.Verdict != "held" {
+			continue
+		}
+		want, ok := final[in.Sequence]
+		if !ok {
+			want = "held" // not decided when the journal ends
+		}
+		if in.FinalVerdict != want {
+			t.Errorf("held input %d: final verdict %q, recorded %q", in.Sequence, in.FinalVerdict, want)
+		}
+		resolved++
+	}
+	if resolved < 3 {
+		t.Errorf("only %d held inputs: the run does not test resolutions past the gap", resolved)
+	}
+}

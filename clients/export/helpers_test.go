@@ -13,9 +13,12 @@ import (
 // lagOdometry delays the odometry between FromS and ToS seconds by LagS
 // on the way to the robot, so that fixes and headings arrive ahead of it
 // and are held until it comes: the run then has held inputs with final
-// verdicts decided later.
+// verdicts decided later. With LoseHeld n > 0 the journal loses the n-th
+// held input (its pair is not written, as damage in the middle of a
+// journal loses one): a gap, with the input's resolution after it.
 type lagOdometry struct {
 	FromS, ToS, LagS float64
+	LoseHeld         int
 }
 
 // writeJournal writes the journal of a simulated greenhouse-cart run for
@@ -35,6 +38,7 @@ func writeJournal(t testing.TB, dir, robot string, sc fusiontest.Scenario, lag l
 		t.Fatal(err)
 	}
 	var client uint64
+	held := 0
 	take := func(sample *pb.Sample, arrivalNs int64) {
 		client++
 		resp, taken := convert.Take(fr, sample, client)
@@ -42,6 +46,11 @@ func writeJournal(t testing.TB, dir, robot string, sc fusiontest.Scenario, lag l
 			return
 		}
 		in := &pb.JournalInput{Sequence: resp.GetSequence(), Sample: sample, ArrivalUnixNs: 1_767_225_600_000_000_000 + arrivalNs}
+		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+			if held++; held == lag.LoseHeld {
+				return
+			}
+		}
 		if err := j.AddPair(in, &pb.JournalOutput{Response: resp}); err != nil {
 			t.Fatal(err)
 		}

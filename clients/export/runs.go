@@ -29,15 +29,11 @@ type Run struct {
 // liveRun is the Run.ID of a robot's journal.
 const liveRun = "live"
 
-// deletedMark starts the suffix a delete appends to a journal's file names
-// (journal.Writer.Remove).
-const deletedMark = ".deleted-"
-
 // Runs lists the journals in dir: for each robot, in order of id, the ones
 // set aside by deletes (oldest first) when deleted is true, then the live
 // one if there is one. A journal set aside is recognised by the suffix
 // ".deleted-{unix ns}" of its manifest and segments; when a delete had to
-// add a further ".1" to a name that was taken (Writer.Remove), that file
+// add a further ".1" to a name that was taken (journal.SetAside), that file
 // is read as part of a run of its own, which then reports a gap.
 func Runs(dir string, deleted bool) ([]Run, error) {
 	live, err := journal.Robots(dir)
@@ -89,7 +85,7 @@ func Runs(dir string, deleted bool) ([]Run, error) {
 // asideRun returns the run a set-aside file name belongs to: a segment
 // "{robot}.{n}.rjl.deleted-{ns}" or a manifest "{robot}.manifest.deleted-{ns}".
 func asideRun(name string) (Run, bool) {
-	i := strings.Index(name, deletedMark)
+	i := strings.Index(name, journal.DeletedMark)
 	if i < 0 {
 		return Run{}, false
 	}
@@ -98,7 +94,7 @@ func asideRun(name string) (Run, bool) {
 	if !journal.ValidID(robot) || base != filepath.Base(journal.ManifestPath("", robot)) && !strings.HasSuffix(base, journal.Ext) {
 		return Run{}, false
 	}
-	stamp, _, _ := strings.Cut(suffix[len(deletedMark):], ".")
+	stamp, _, _ := strings.Cut(suffix[len(journal.DeletedMark):], ".")
 	ns, err := strconv.ParseInt(stamp, 10, 64)
 	if err != nil {
 		return Run{}, false

@@ -7,6 +7,7 @@ import (
 	"io"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"syscall"
@@ -394,6 +395,20 @@ func TestDamageKeptAndResynchronised(t *testing.T) {
 					os.WriteFile(p, segs[i], 0o644)
 				}
 			}
+			// Read only first: the same damage, nothing kept aside, and
+			// the report says the bytes are where they were.
+			ro, _ := journal.Read(d, "cart", journal.Visitor{ReadOnly: true, Gap: func(error) error { return nil }})
+			if len(ro.Damage) != c.ranges {
+				t.Errorf("read only: damage %v", ro.Damage)
+			}
+			for _, dm := range ro.Damage {
+				if dm.Kept != "" || !strings.Contains(dm.Error(), "left in place") {
+					t.Errorf("read only: %v, kept in %q", dm, dm.Kept)
+				}
+			}
+			if names, _ := filepath.Glob(filepath.Join(d, "*.damaged*")); len(names) > 0 {
+				t.Errorf("read only: kept %v", names)
+			}
 			var handed int
 			sc, err := journal.Read(d, "cart", journal.Visitor{
 				Pair: func(*pb.JournalInput, *pb.JournalOutput) error { handed++; return nil },
@@ -420,7 +435,7 @@ func TestDamageKeptAndResynchronised(t *testing.T) {
 					continue
 				}
 				kept, err := os.ReadFile(dm.Kept)
-				if err != nil || !bytes.Equal(kept, segs[i][dm.Offset:dm.Offset+dm.Length]) {
+				if err != nil || !bytes.Equal(kept, segs[i][dm.Offset:dm.Offset+dm.Length]) || !strings.Contains(dm.Error(), "kept in "+dm.Kept) {
 					t.Errorf("%v: kept %d bytes (%v), not the damaged ones", dm, len(kept), err)
 				}
 			}
@@ -515,6 +530,56 @@ func TestRemoveKeepsAndNeverOverwrites(t *testing.T) {
 	}
 	if ids, _ := journal.RobotsFS(mem, dir); len(ids) != 0 {
 		t.Errorf("deleted robots listed: %v", ids)
+	}
+}
+
+// TestSetAsideTakesItsOwnOnly: SetAside moves a robot's manifest,
+// segments and kept damaged bytes aside, leaves another robot whose id it
+// begins untouched, and a robot of the same name made after it starts with
+// none of its files.
+func TestSetAsideTakesItsOwnOnly(t *testing.T) {
+	mem := faultfs.NewMem()
+	mem.MkdirAll(dir, 0o755)
+	for _, id := range []string{"cart", "cart-b"} {
+		w, err := journal.Create(dir, id, opening, journal.Options{FS: mem})
+		if err != nil {
+			t.Fatal(err)
+		}
+		addPairs(t, w, 1, 3)
+		w.Flush()
+		w.Close()
+	}
+	for _, name := range []string{"cart.000000.rjl.damaged-40", "cart.000000.rjl.damaged-40.1", "cart.000000.rjl.damaged", "cart-b.000000.rjl.damaged-40"} {
+		f, err := mem.OpenFile(filepath.Join(dir, name), os.O_WRONLY|os.O_CREATE|os.O_EXCL, 0o644)
+		if err != nil {
+			t.Fatal(err)
+		}
+		f.Write([]byte(name))
+		f.Close()
+	}
+	if err := journal.SetAside(mem, dir, "cart"); err != nil {
+		t.Fatal(err)
+	}
+	names, _ := mem.List(dir)
+	var live, aside []string
+	for _, n := range names {
+		if strings.Contains(n, journal.DeletedMark) {
+			aside = append(aside, n)
+		} else {
+			live = append(live, n)
+		}
+	}
+	want := []string{"cart-b.000000.rjl", "cart-b.000000.rjl.damaged-40", "cart-b.manifest"}
+	if !slices.Equal(live, want) || len(aside) != 5 {
+		t.Errorf("left %v and set aside %v; want %v left and cart's 5 set aside", live, aside, want)
+	}
+	for _, n := range aside {
+		if !strings.HasPrefix(n, "cart.") {
+			t.Errorf("%s set aside with cart's", n)
+		}
+	}
+	if ids, _ := journal.RobotsFS(mem, dir); !slices.Equal(ids, []string{"cart-b"}) {
+		t.Errorf("robots with journals: %v", ids)
 	}
 }
 

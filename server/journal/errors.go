@@ -29,20 +29,26 @@ var ErrLockHeld = errors.New("lock held by another")
 
 // DamageError reports damaged bytes inside a journal: a frame whose length,
 // CRC-32C or payload is wrong, followed by valid frames. The damaged range
-// [Offset, Offset+Length) of File was copied, untouched, into Kept; the
+// [Offset, Offset+Length) of File was copied, untouched, into Kept (by a
+// scan that may write; a read-only scan leaves them where they are); the
 // scan went on at the next valid frame.
 type DamageError struct {
 	File   string
 	Offset int64 // bytes from the start of File
 	Length int64 // bytes
 	Reason string
-	// Kept is the path of the copy of the damaged bytes.
+	// Kept is the path of the copy of the damaged bytes; empty when the
+	// scan was read only (Visitor.ReadOnly).
 	Kept string
 }
 
 // Error says where the damage is, how long, why, and where it was kept.
 func (e *DamageError) Error() string {
-	return fmt.Sprintf("journal damage in %s at byte %d (%d bytes, kept in %s): %s", e.File, e.Offset, e.Length, e.Kept, e.Reason)
+	where := "kept in " + e.Kept
+	if e.Kept == "" {
+		where = "left in place"
+	}
+	return fmt.Sprintf("journal damage in %s at byte %d (%d bytes, %s): %s", e.File, e.Offset, e.Length, where, e.Reason)
 }
 
 // RotateError reports a rotation (starting the next segment) that failed

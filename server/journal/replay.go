@@ -249,6 +249,11 @@ func (rp *replayer) input(in *pb.JournalInput, out *pb.JournalOutput) error {
 	}
 	resp := &rp.resps[0]
 	rp.resps = rp.resps[1:]
+	if seq := in.GetSequence(); seq > rp.fr.Sequence()+1 {
+		// Past a gap (ReplayOptions.Gap): the inputs after it keep their
+		// numbers.
+		rp.fr.SkipTo(seq - 1)
+	}
 	taken := convert.TakeInto(resp, rp.fr, in.GetSample(), out.GetResponse().GetClientSequence())
 	if rp.opt.Check {
 		if err := check(rp.fr, in, resp, taken, out); err != nil {

@@ -614,38 +614,61 @@ func (w *Writer) Close() error {
 	return err
 }
 
-// Remove closes the journal and renames its segments and manifest to
-// {name}.deleted-{unix nanoseconds}, a name that no other file has (a
-// suffix .1, .2 ... is added if one does), so that a deleted robot's
-// record stays for review, is not restored, and is never overwritten by
-// the record of a later robot of the same name.
+// Remove closes the journal and sets it aside (SetAside), so that a
+// deleted robot's record stays for review, is not restored, and is never
+// overwritten by the record of a later robot of the same name. A journal
+// that broke (ErrBroken) is set aside as it is.
 func (w *Writer) Remove() error {
 	if err := w.Close(); err != nil && !errors.Is(err, ErrBroken) {
 		return err
 	}
-	segs, err := listSegments(w.fs, w.dir, w.robot)
+	return SetAside(w.fs, w.dir, w.robot)
+}
+
+// SetAside renames a robot's journal files in dir on fsys (nil: the OS) to
+// {name}.deleted-{unix nanoseconds}, a name that no other file has (a
+// suffix .1, .2 ... is added if one does): its manifest, its segments and
+// the copies of damaged bytes kept beside them ({segment}.damaged-{offset},
+// {segment}.damaged), so that a later robot of the same name starts with
+// none of them. Nothing is rewritten or removed. The journal must not be
+// open for writing; a journal that cannot be restored is set aside as it
+// is, so that the robot's name can be used again.
+func SetAside(fsys FS, dir, robot string) error {
+	fsys = orOS(fsys)
+	names, err := fsys.List(dir)
 	if err != nil {
 		return err
 	}
 	// The manifest first: a crash part way leaves segments without their
 	// first ones, which Read reports, rather than fewer segments that it
-	// could not tell from a whole journal.
-	var paths []string
-	if _, err := w.fs.Stat(ManifestPath(w.dir, w.robot)); err == nil {
-		paths = append(paths, ManifestPath(w.dir, w.robot))
+	// could not tell from a whole journal. The damaged copies last: they
+	// are not read.
+	var segs, kept []string
+	if _, err := fsys.Stat(ManifestPath(dir, robot)); err == nil {
+		segs = append(segs, ManifestPath(dir, robot))
 	}
-	for _, s := range segs {
-		paths = append(paths, s.path)
+	for _, name := range names { // sorted, and the numbers have six digits
+		if _, ok := segmentNumber(name, robot); ok {
+			segs = append(segs, filepath.Join(dir, name))
+		} else if i := strings.Index(name, Ext+".damaged"); i > 0 && !strings.Contains(name, DeletedMark) {
+			if _, ok := segmentNumber(name[:i+len(Ext)], robot); ok {
+				kept = append(kept, filepath.Join(dir, name))
+			}
+		}
 	}
-	suffix := ".deleted-" + strconv.FormatInt(time.Now().UnixNano(), 10)
-	for _, p := range paths {
-		to, err := asideName(w.fs, p+suffix)
+	suffix := DeletedMark + strconv.FormatInt(time.Now().UnixNano(), 10)
+	for _, p := range append(segs, kept...) {
+		to, err := asideName(fsys, p+suffix)
 		if err != nil {
 			return err
 		}
-		if err := w.fs.Rename(p, to); err != nil {
+		if err := fsys.Rename(p, to); err != nil {
 			return err
 		}
 	}
-	return w.fs.SyncDir(w.dir)
+	return fsys.SyncDir(dir)
 }
+
+// DeletedMark starts the suffix SetAside appends to the names of a journal's
+// files: ".deleted-{unix nanoseconds}".
+const DeletedMark = ".deleted-"

@@ -24,7 +24,9 @@ output a held fix's row shows its final verdict once it was resolved.
 -format samples writes the raw samples back as JSON Lines instead, which
 "reckon replay -config ROBOT.yaml -samples FILE" takes again. -run N writes
 only run N of a robot whose controller restarted (its run start included,
-so that its samples replay as a run of their own).`)
+so that its samples replay as a run of their own). A journal that lost
+inputs to damage is replayed past each gap, which is named; the exit status
+is then 1.`)
 	fs.SetOutput(stderr)
 	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
 	robot := fs.String("robot", "", "robot id or name in the journal")
@@ -231,33 +233,55 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 		id = n
 	}
 	name := server.RobotName(id)
-	same, differ := 0, 0
-	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true, Input: func(r *journal.Replayed) error {
-		if err := ctx.Err(); err != nil {
-			return err
-		}
-		if proto.Equal(r.Response, r.Recorded.GetResponse()) {
-			same++
-		} else {
-			differ++
-		}
-		return ow.input(r.Robot.Run(), r.Input.GetSample(), convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
-	}})
-	if err != nil {
+	// The verdicts replayed as recorded and not; after a gap (inputs lost
+	// to damage) the robot lacks what was lost, so they are counted apart.
+	same, differ, differPast := 0, 0, 0
+	gaps := 0
+	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true,
+		Input: func(r *journal.Replayed) error {
+			if err := ctx.Err(); err != nil {
+				return err
+			}
+			switch {
+			case proto.Equal(r.Response, r.Recorded.GetResponse()):
+				same++
+			case gaps > 0:
+				differPast++
+			default:
+				differ++
+			}
+			return ow.input(r.Robot.Run(), r.Input.GetSample(), convert.PoseToProto(name, r.Robot.Pose(), r.Robot.Sequence()), r.Response)
+		},
+		Gap: func(err error) error {
+			gaps++
+			fmt.Fprintf(stderr, "note: %v; the replay goes on past it without the inputs lost\n", err)
+			return nil
+		}})
+	if err != nil && !errors.Is(err, journal.ErrGap) {
 		return err
 	}
 	fmt.Fprintf(stderr, "replayed %d inputs of %s", scan.Pairs, name)
 	if override == nil {
-		fmt.Fprintf(stderr, ": %d verdicts as recorded, %d different", same, differ)
+		fmt.Fprintf(stderr, ": %d verdicts as recorded, %d different", same, differ+differPast)
 	} else {
-		fmt.Fprintf(stderr, " with the other configuration: %d verdicts as recorded, %d different", same, differ)
+		fmt.Fprintf(stderr, " with the other configuration: %d verdicts as recorded, %d different", same, differ+differPast)
+	}
+	if differPast > 0 {
+		fmt.Fprintf(stderr, " (%d of them after a gap)", differPast)
 	}
 	fmt.Fprintln(stderr)
 	if scan.Torn != nil {
 		fmt.Fprintf(stderr, "note: the journal is truncated: %v (everything before it was replayed)\n", scan.Torn)
 	}
-	if override == nil && differ > 0 {
+	switch {
+	case override == nil && differ > 0 && gaps > 0:
+		return fmt.Errorf("replay differs from the journal in %d verdicts before its first gap", differ)
+	case override == nil && differ > 0:
 		return fmt.Errorf("replay differs from the journal in %d verdicts", differ)
+	case gaps == 1:
+		return errors.New("the journal lost inputs (the gap named above): the output goes on past it, without those inputs")
+	case gaps > 1:
+		return fmt.Errorf("the journal lost inputs (%d gaps, named above): the output goes on past them, without those inputs", gaps)
 	}
 	return nil
 }

@@ -2,8 +2,8 @@ package main
 
 import (
 	"bufio"
-
 	"encoding/csv"
+	"errors"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -179,5 +179,35 @@ func TestReplayTimeSpan(t *testing.T) {
 	}
 	if _, _, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", exampleSamples, "-from", "soon"); err == nil {
 		t.Errorf("-from soon accepted")
+	}
+}
+
+// TestReplayPastAGap: a journal that lost inputs in its middle (bytes
+// damaged) replays past the gap: every input the journal still holds has
+// its row, the gap is named, and the exit status is 1, not 0.
+func TestReplayPastAGap(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	seg := journal.SegmentPath(dir, "cart", 0)
+	b, err := os.ReadFile(seg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := len(b) / 3; i < len(b)/3+200; i++ {
+		b[i] ^= 0x5a
+	}
+	if err := os.WriteFile(seg, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	scan, err := journal.Read(dir, "cart", journal.Visitor{ReadOnly: true, Gap: func(error) error { return nil }})
+	if !errors.Is(err, journal.ErrGap) || scan.Pairs < 100 {
+		t.Fatalf("the damaged journal: %d inputs, %v; want a gap", scan.Pairs, err)
+	}
+	out, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart")
+	if err == nil || exitCode(err) != exitFailure || !strings.Contains(errs, "goes on past it") {
+		t.Errorf("replay of a journal with a gap: %v (exit %d)\n%s", err, exitCode(err), errs)
+	}
+	rows, cerr := csv.NewReader(strings.NewReader(out)).ReadAll()
+	if cerr != nil || len(rows)-1 != scan.Pairs {
+		t.Errorf("%d rows (%v), the journal holds %d inputs", len(rows)-1, cerr, scan.Pairs)
 	}
 }

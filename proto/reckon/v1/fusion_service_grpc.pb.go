@@ -46,7 +46,9 @@ type FusionServiceClient interface {
 	GetRobot(ctx context.Context, in *GetRobotRequest, opts ...grpc.CallOption) (*GetRobotResponse, error)
 	// Lists robots in name order.
 	ListRobots(ctx context.Context, in *ListRobotsRequest, opts ...grpc.CallOption) (*ListRobotsResponse, error)
-	// Deletes a robot and closes its journal.
+	// Deletes a robot and closes its journal, which is set aside with every
+	// record kept (a quarantined robot's as it is, damage and all), so that
+	// the name can be created again.
 	DeleteRobot(ctx context.Context, in *DeleteRobotRequest, opts ...grpc.CallOption) (*DeleteRobotResponse, error)
 	// Takes a stream of samples; answers each, in order, with its verdict
 	// once it is in the journal under the server's fsync policy.
@@ -204,7 +206,9 @@ type FusionServiceServer interface {
 	GetRobot(context.Context, *GetRobotRequest) (*GetRobotResponse, error)
 	// Lists robots in name order.
 	ListRobots(context.Context, *ListRobotsRequest) (*ListRobotsResponse, error)
-	// Deletes a robot and closes its journal.
+	// Deletes a robot and closes its journal, which is set aside with every
+	// record kept (a quarantined robot's as it is, damage and all), so that
+	// the name can be created again.
 	DeleteRobot(context.Context, *DeleteRobotRequest) (*DeleteRobotResponse, error)
 	// Takes a stream of samples; answers each, in order, with its verdict
 	// once it is in the journal under the server's fsync policy.

@@ -112,17 +112,51 @@ func TestFlushPartialCopy(t *testing.T) {
 	w.Close()
 	check(t, mem, 5, true)
 
-	w, mem = newJournal(t, failSegment(faultfs.OpReserve, 0, syscall.ENOSPC), journal.Options{})
+	// A disk with no room left: the reservation, and then the one of the
+	// write's own bytes, fail.
+	mem = faultfs.NewMem()
+	w, _ = newJournalOn(t, mem, nil, journal.Options{})
+	mem.SetCapacity(mem.Used())
 	addPairs(t, w, 1, 5)
 	if complete, err := w.Flush(); complete != 0 || !errors.Is(err, journal.ErrNoSpace) {
 		t.Fatalf("Flush with the disk full = %d, %v; want 0 and ErrNoSpace", complete, err)
 	}
+	mem.SetCapacity(0)
 	addPairs(t, w, 1, 5)
 	if complete, err := w.Flush(); complete != 5 || err != nil {
 		t.Fatalf("second Flush = %d, %v", complete, err)
 	}
 	w.Close()
 	check(t, mem, 5, true)
+}
+
+// TestNearlyFullDiskStillTakes: with less room on the disk than the
+// reserve's chunk (a mebibyte), the writer reserves what each write needs
+// and journals until the disk is really full; only then does a Flush say
+// ErrNoSpace, and every entry it counted complete is in the journal.
+func TestNearlyFullDiskStillTakes(t *testing.T) {
+	mem := faultfs.NewMem()
+	w, _ := newJournalOn(t, mem, nil, journal.Options{})
+	room := int64(64 << 10)
+	size := mem.Used() + room
+	mem.SetCapacity(size)
+	var taken uint64
+	for seq := uint64(1); ; seq++ {
+		addPairs(t, w, seq, seq)
+		complete, err := w.Flush()
+		if err != nil {
+			if complete != 0 || !errors.Is(err, journal.ErrNoSpace) {
+				t.Fatalf("Flush of input %d = %d, %v; want 0 and ErrNoSpace", seq, complete, err)
+			}
+			break
+		}
+		taken = seq
+	}
+	if left := size - mem.Used(); taken < 100 || left > 1024 {
+		t.Errorf("took %d inputs, with %d bytes of %d still free", taken, left, room)
+	}
+	w.Close()
+	check(t, mem, int(taken), true)
 }
 
 // TestFlushEIOIsNotNoSpace: an I/O error is not reported as a full disk.

@@ -95,6 +95,13 @@ func (w *Writer) appendEntries(b []byte) (int, error) {
 	if need := w.size + int64(len(b)); need > w.reserved {
 		size := max(need, min(w.size+reserveChunk, w.limit()))
 		err := w.reg.reserve(size)
+		if size > need && isNoSpace(err) {
+			// Less than a chunk left on the disk: this write's own bytes
+			// may still fit, and the robot keeps journaling until the
+			// disk is full, a fallocate(2) a write.
+			size = need
+			err = w.reg.reserve(size)
+		}
 		if errors.Is(err, errors.ErrUnsupported) {
 			if err := w.plain(); err != nil {
 				return 0, err

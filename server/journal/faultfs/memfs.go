@@ -27,6 +27,8 @@ type MemFS struct {
 	mu    sync.Mutex
 	dirs  map[string]*memDir
 	locks map[string]bool // names locked by Lock
+	// capacity, if above 0, is the size of the disk (SetCapacity).
+	capacity int64
 }
 
 // memDir is a directory: its entries now and as of its last sync.
@@ -52,6 +54,7 @@ func (m *MemFS) Crash() *MemFS {
 	m.mu.Lock()
 	defer m.mu.Unlock()
 	c := NewMem()
+	c.capacity = m.capacity
 	for path, d := range m.dirs {
 		nd := &memDir{live: map[string]*inode{}, synced: map[string]*inode{}}
 		for name, ino := range d.synced {
@@ -72,7 +75,7 @@ func (m *MemFS) Kill() *MemFS {
 	m.mu.Lock()
 	defer m.mu.Unlock()
 	c := NewMem()
-	c.Plain = m.Plain
+	c.Plain, c.capacity = m.Plain, m.capacity
 	copies := map[*inode]*inode{}
 	clone := func(ino *inode) *inode {
 		if n := copies[ino]; n != nil {
@@ -287,13 +290,60 @@ func (f *memFile) Write(p []byte) (int, error) {
 	if f.flag&os.O_APPEND != 0 {
 		f.pos = int64(len(f.ino.data))
 	}
+	var full error
+	if room := f.room(); room >= 0 && f.pos+int64(len(p))-int64(len(f.ino.data)) > room {
+		p = p[:max(int64(len(f.ino.data))+room-f.pos, 0)]
+		full = &os.PathError{Op: "write", Path: f.name, Err: syscall.ENOSPC}
+	}
 	end := f.pos + int64(len(p))
 	if end > int64(len(f.ino.data)) {
 		f.ino.data = append(f.ino.data, make([]byte, end-int64(len(f.ino.data)))...)
 	}
 	copy(f.ino.data[f.pos:], p)
 	f.pos = end
-	return len(p), nil
+	return len(p), full
+}
+
+// SetCapacity makes n bytes the size of the disk (0: no limit): the bytes
+// of all files together may not grow past it. A Write past it writes what
+// fits and fails with ENOSPC, as write(2) does; a Reserve past it reserves
+// nothing and fails with ENOSPC, as fallocate(2) does. A crash or kill
+// keeps it.
+func (m *MemFS) SetCapacity(n int64) {
+	m.mu.Lock()
+	m.capacity = n
+	m.mu.Unlock()
+}
+
+// Used returns the bytes of all files.
+func (m *MemFS) Used() int64 {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	return m.used()
+}
+
+// used returns the bytes of all live files. The caller holds m.mu.
+func (m *MemFS) used() int64 {
+	seen := map[*inode]bool{}
+	var n int64
+	for _, d := range m.dirs {
+		for _, ino := range d.live {
+			if !seen[ino] {
+				seen[ino] = true
+				n += int64(len(ino.data))
+			}
+		}
+	}
+	return n
+}
+
+// room returns how many bytes file f may grow by (Capacity), or -1 for
+// any number. The caller holds m.mu.
+func (f *memFile) room() int64 {
+	if f.m.capacity <= 0 {
+		return -1
+	}
+	return max(f.m.capacity-f.m.used(), 0)
 }
 
 // Reserve extends the file with zeros to size bytes (journal.ReserveFile).
@@ -306,8 +356,11 @@ func (f *memFile) Reserve(size int64) error {
 	if f.m.Plain {
 		return fmt.Errorf("reserve %s: %w", f.name, errors.ErrUnsupported)
 	}
-	if size > int64(len(f.ino.data)) {
-		f.ino.data = append(f.ino.data, make([]byte, size-int64(len(f.ino.data)))...)
+	if grow := size - int64(len(f.ino.data)); grow > 0 {
+		if room := f.room(); room >= 0 && grow > room {
+			return &os.PathError{Op: "fallocate", Path: f.name, Err: syscall.ENOSPC}
+		}
+		f.ino.data = append(f.ino.data, make([]byte, grow)...)
 	}
 	return nil
 }

@@ -567,6 +567,38 @@ func TestRemoveKeepsAndNeverOverwrites(t *testing.T) {
 	}
 }
 
+// TestDamagedManifest: a manifest that is not one stops the read with an
+// error naming the file, quoting at most its first 64 bytes, and saying
+// what to do; moved aside, the segments read whole and a resume writes the
+// manifest again.
+func TestDamagedManifest(t *testing.T) {
+	d := t.TempDir()
+	writeCart(t, d, 30)
+	mf := journal.ManifestPath(d, "cart")
+	if err := os.WriteFile(mf, bytes.Repeat([]byte("garbage "), 100_000), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, err := journal.Read(d, "cart", journal.Visitor{})
+	if err == nil || !strings.Contains(err.Error(), mf) || !strings.Contains(err.Error(), "move it aside") || len(err.Error()) > 400 {
+		t.Fatalf("read with a damaged manifest: %.500v", err)
+	}
+	if err := os.Rename(mf, mf+".bad"); err != nil {
+		t.Fatal(err)
+	}
+	sc, err := journal.Read(d, "cart", journal.Visitor{})
+	if err != nil || sc.Pairs != 30 {
+		t.Fatalf("read without the manifest: %d pairs, %v", sc.Pairs, err)
+	}
+	w, err := journal.Resume(d, "cart", sc.Segment, sc.Good, journal.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	w.Close()
+	if _, err := os.Stat(mf); err != nil {
+		t.Errorf("resume wrote no manifest: %v", err)
+	}
+}
+
 // TestSetAsideTakesItsOwnOnly: SetAside moves a robot's manifest,
 // segments and kept damaged bytes aside, leaves another robot whose id it
 // begins untouched, and a robot of the same name made after it starts with

@@ -41,7 +41,11 @@ func readManifest(fsys FS, dir, robot string) (newest int, ok bool, err error) {
 		newest, err = strconv.Atoi(strings.TrimSuffix(s, "\n"))
 	}
 	if !found || err != nil || newest < 0 {
-		return 0, false, fmt.Errorf("%s: not a journal manifest (%q)", path, b)
+		head, more := b[:min(len(b), 64)], ""
+		if len(head) < len(b) {
+			more = fmt.Sprintf(" and %d bytes more", len(b)-len(head))
+		}
+		return 0, false, fmt.Errorf("%s: not a journal manifest (%q%s); if the robot's segments are whole, move it aside and restart: it is written again from them", path, head, more)
 	}
 	return newest, true, nil
 }

@@ -125,13 +125,15 @@ func Serve(ctx context.Context, dc Config) error {
 	if dc.MetricsListen != "" && dc.Metrics == nil {
 		dc.Metrics = server.NewMetrics()
 	}
-	srv, err := startService(ctx, &dc)
+	// The address first: one that cannot be listened on (taken, or not
+	// an address) is said at once, before a restore that may take long.
+	lis, err := net.Listen("tcp", dc.Listen)
 	if err != nil {
 		return err
 	}
-	lis, err := net.Listen("tcp", dc.Listen)
+	srv, err := startService(ctx, &dc)
 	if err != nil {
-		srv.Close()
+		lis.Close()
 		return err
 	}
 	gs, hs := newGRPCServer(srv, opts)

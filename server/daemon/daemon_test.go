@@ -4,7 +4,9 @@ import (
 	"context"
 	"crypto/tls"
 	"log/slog"
+	"net"
 	"os"
+	"path/filepath"
 	"strings"
 	"testing"
 	"time"
@@ -15,6 +17,7 @@ import (
 
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
 	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
@@ -114,5 +117,24 @@ func TestServeRefusesMessagesLargerThanRecords(t *testing.T) {
 	err := Serve(context.Background(), Config{Listen: "127.0.0.1:0", MaxMessageBytes: journal.MaxRecordBytes})
 	if err == nil || !strings.Contains(err.Error(), "max message bytes") {
 		t.Fatalf("Serve with max message bytes %d: %v", journal.MaxRecordBytes, err)
+	}
+}
+
+// TestServeNamesATakenAddressFirst: an address that cannot be listened on
+// (another process has it) is said before the journal is touched: the
+// directory is not even made, let alone locked or restored.
+func TestServeNamesATakenAddressFirst(t *testing.T) {
+	taken, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer taken.Close()
+	dir := filepath.Join(t.TempDir(), "journal")
+	err = Serve(context.Background(), Config{Listen: taken.Addr().String(), Options: server.Options{JournalDir: dir}})
+	if err == nil || !strings.Contains(err.Error(), "address already in use") {
+		t.Fatalf("Serve on a taken address: %v", err)
+	}
+	if _, serr := os.Stat(dir); !os.IsNotExist(serr) {
+		t.Errorf("the journal directory was made before the address failed: %v", serr)
 	}
 }

@@ -283,3 +283,132 @@ func TestCountsWrap(t *testing.T) {
 		t.Errorf("after the reset: %v", res.Err)
 	}
 }
+
+// countsRun feeds r 200 samples of cumulative 16-bit counts every 5 ms
+// (each wheel a steady 7, 8 and 1 counts a sample: common practice for a
+// cart rolling along a gentle curve), with edit applied to each sample's
+// counts before it is sent; a sample edit returns nil for is not sent. It
+// returns the verdict of each sample sent, by index.
+func countsRun(t *testing.T, r *Robot, edit func(k int, c []int64) []int64) map[int]Result {
+	t.Helper()
+	counts := []int64{65000, 100, 30}
+	out := map[int]Result{}
+	for k := range 200 {
+		for i, s := range []int64{7, 8, 1} {
+			counts[i] = (counts[i] + s) & 0xffff
+		}
+		c := edit(k, append([]int64(nil), counts...))
+		if c == nil {
+			continue
+		}
+		out[k] = r.AddOdometry(Odometry{StampNs: int64(k+1) * 5e6, Counts: c})
+	}
+	return out
+}
+
+// jumpOnceAt100 fails unless countsRun's sample 100 was refused as an
+// implausible jump (what) and every sample after it applied.
+func jumpOnceAt100(t *testing.T, what string, res map[int]Result) {
+	t.Helper()
+	if !errors.Is(res[100].Err, ErrAbsurdJump) {
+		t.Errorf("%s: %v, want ErrAbsurdJump", what, res[100].Err)
+	}
+	for k := 101; k < 200; k++ {
+		if res[k].Verdict != VerdictApplied {
+			t.Fatalf("sample %d after %s: %v %v", k, what, res[k].Verdict, res[k].Err)
+		}
+	}
+}
+
+// samePose fails unless a and b hold the very same pose and covariance.
+func samePose(t *testing.T, what string, a, b *Robot) {
+	t.Helper()
+	pa, pb := a.Pose(), b.Pose()
+	if pa.Pose != pb.Pose || pa.Cov != pb.Cov {
+		t.Errorf("%s: %+v, want %+v", what, pa.Pose, pb.Pose)
+	}
+}
+
+// TestCountsGlitchCostsNothing: one bad reading of cumulative counts (a
+// bit flipped on the wire) is refused as an implausible jump, and the next
+// sample is taken from the counts before it: the robot ends exactly where
+// it would had the bad sample never been sent (counts are cumulative, so
+// no travel is lost). A snapshot taken between the two restores a robot
+// that goes on the same way.
+func TestCountsGlitchCostsNothing(t *testing.T) {
+	cfg := threeWheels()
+	cfg.IMU = IMUNone
+	glitched, _ := New(cfg)
+	dropped, _ := New(cfg)
+	var mid []byte
+	res := countsRun(t, glitched, func(k int, c []int64) []int64 {
+		if k == 100 {
+			c[1] ^= 1 << 14
+		}
+		if k == 101 {
+			mid, _ = glitched.Snapshot()
+		}
+		return c
+	})
+	countsRun(t, dropped, func(k int, c []int64) []int64 {
+		if k == 100 {
+			return nil
+		}
+		return c
+	})
+	jumpOnceAt100(t, "the bad reading", res)
+	samePose(t, "after a bad reading", glitched, dropped)
+	restored, err := RestoreSnapshot(cfg, mid)
+	if err != nil {
+		t.Fatal(err)
+	}
+	countsRun(t, restored, func(k int, c []int64) []int64 {
+		if k <= 100 {
+			return nil
+		}
+		return c
+	})
+	samePose(t, "restored between the bad reading and the next", restored, glitched)
+}
+
+// TestCountsRestartTakesNextSample: counts that start afresh (the encoder
+// controller restarted and counts from zero again) are refused once, as an
+// implausible jump, and the next sample is taken from them: the robot ends
+// exactly where one fed the same motion as unbroken counts, without the
+// jump's sample, does (only the jump's interval is lost).
+func TestCountsRestartTakesNextSample(t *testing.T) {
+	cfg := threeWheels()
+	cfg.IMU = IMUNone
+	restarted, _ := New(cfg)
+	unbroken, _ := New(cfg)
+	var at100, at99 []int64
+	res := countsRun(t, restarted, func(k int, c []int64) []int64 {
+		if k == 99 {
+			at99 = append([]int64(nil), c...)
+		}
+		if k == 100 {
+			at100 = append([]int64(nil), c...)
+		}
+		if k >= 100 {
+			// The controller counts from where it restarted.
+			for i := range c {
+				c[i] = (c[i] - at100[i] + 40000) & 0xffff
+			}
+		}
+		return c
+	})
+	countsRun(t, unbroken, func(k int, c []int64) []int64 {
+		switch {
+		case k == 100:
+			return nil
+		case k > 100:
+			// The motion after the restart from where the counts were.
+			for i := range c {
+				c[i] = (c[i] - at100[i] + at99[i]) & 0xffff
+			}
+		}
+		return c
+	})
+	jumpOnceAt100(t, "the restart", res)
+	samePose(t, "after a restart of the counts", restarted, unbroken)
+}

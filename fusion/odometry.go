@@ -104,9 +104,14 @@ func countDelta(cur, prev int64, bits int) int64 {
 // res, which must be the zero odoResult: the entry is built where the
 // caller keeps it, not copied out (BenchmarkRobotRates; entries are 520
 // bytes). res.has tells whether it holds one. It changes nothing on error,
-// with one exception: an implausible jump in cumulative counts (an encoder
-// controller restarted) re-references the counts, so that the following
-// samples are usable; the travel of that interval is lost.
+// with one exception: the counts of a sample refused as an implausible
+// jump are kept (jumpCounts) until the next sample of counts says what
+// they were. Its travel from the counts before the jump plausible, the
+// jump was one bad reading (a glitch on the wire): the sample is taken
+// from them and no travel is lost. Otherwise, its travel from the jump's
+// counts plausible, the counts started afresh (an encoder controller
+// restarted): they become the reference, and only the jump's interval is
+// lost. Neither, the sample is refused too and its counts wait in turn.
 func (r *Robot) odometryEntry(o *Odometry, res *odoResult) error {
 	res.imu = o.IMUHeadingRad
 	nw := len(r.cfg.Wheels)
@@ -132,8 +137,16 @@ func (r *Robot) odometryEntry(o *Odometry, res *odoResult) error {
 		return err
 	}
 	jump := r.checkJump(e.step, float64(dtNs)*1e-9)
+	if jump != nil && o.Counts != nil && r.jumpCounts != nil && r.fromJumpCounts(o, t0, dtNs, res) {
+		jump = nil
+	}
 	if o.Counts != nil {
+		if jump != nil {
+			r.jumpCounts = append(r.jumpCounts[:0], o.Counts...)
+			return jump
+		}
 		copy(r.lastCounts, o.Counts)
+		r.jumpCounts = nil
 	}
 	if jump != nil {
 		return jump
@@ -144,6 +157,26 @@ func (r *Robot) odometryEntry(o *Odometry, res *odoResult) error {
 	}
 	res.has = true
 	return nil
+}
+
+// fromJumpCounts builds o's entry in res again from its travel since the
+// counts of the jump refused just before (jumpCounts), over the same
+// interval, and reports whether that step is plausible: if so the counts
+// started afresh at the jump, and res holds the entry.
+func (r *Robot) fromJumpCounts(o *Odometry, t0, dtNs int64, res *odoResult) bool {
+	travel := r.travel[:len(r.cfg.Wheels)]
+	for i, w := range r.cfg.Wheels {
+		travel[i] = float64(countDelta(o.Counts[i], r.jumpCounts[i], w.CounterBits)) / w.CountsPerM
+	}
+	imu, gapNs := res.imu, res.gapNs
+	*res = odoResult{imu: imu, gapNs: gapNs}
+	e := &res.e
+	e.kind, e.t0, e.t1 = entOdo, t0, o.StampNs
+	e.scrub, e.wheels = 0, true
+	if err := r.solveWheels(o, travel, e, res); err != nil {
+		return false
+	}
+	return r.checkJump(e.step, float64(dtNs)*1e-9) == nil
 }
 
 // interval writes each wheel's travel over o's interval into travel and

@@ -61,6 +61,10 @@ type Robot struct {
 	restoreErr error
 
 	lastCounts []int64
+	// jumpCounts are the counts of the last sample, when it was refused as
+	// an implausible jump (nil otherwise): the next sample tells whether
+	// they were one bad reading or the counts starting afresh (odometry.go).
+	jumpCounts []int64
 	lastIMU    *float64 // IMU heading at newest, IMURotation mode
 	rows       []estimator.Row
 	travel     []float64

@@ -39,10 +39,14 @@ import (
 // lack their mount error states, which RestoreSnapshot takes from their
 // sensors again (before, a replay of its window after a late fix took
 // them without the sensor's mount block).
-const SnapshotVersion = 10
+// Version 11: the counts of an odometry sample refused as an implausible
+// jump, kept until the next sample says what they were (odometry.go); a
+// version 10 to 5 snapshot has none (the builds that wrote them took a
+// jump's counts as the reference at once).
+const SnapshotVersion = 11
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -119,6 +123,7 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	if len(r.lmAt) > 0 {
 		e.message(38, func(e *wenc) { encTable(e, &r.lm) })
 	}
+	e.ints(39, r.jumpCounts)
 	return e.b, nil
 }
 
@@ -265,6 +270,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.scrub.peak = d.double(num)
 	case 38:
 		d.message(num, func(d *wdec) { decTable(d, &r.lm) })
+	case 39:
+		r.jumpCounts = d.intSlice(num)
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -313,6 +320,9 @@ func (r *Robot) checkRestored() error {
 	}
 	if r.lastCounts != nil && len(r.lastCounts) != len(r.cfg.Wheels) {
 		return fmt.Errorf("%w: %d counts for %d wheels", ErrSnapshot, len(r.lastCounts), len(r.cfg.Wheels))
+	}
+	if r.jumpCounts != nil && (len(r.jumpCounts) != len(r.cfg.Wheels) || r.lastCounts == nil) {
+		return fmt.Errorf("%w: %d counts of a jump for %d wheels", ErrSnapshot, len(r.jumpCounts), len(r.cfg.Wheels))
 	}
 	if b := &r.trust.bias; len(b.score) != len(b.info) || len(b.score) > 0 && (b.pos < 0 || b.pos >= len(b.score) || b.fill < 0 || b.fill > len(b.score)) {
 		return fmt.Errorf("%w: bias window of %d scores, %d informations, at %d, %d filled", ErrSnapshot, len(b.score), len(b.info), b.pos, b.fill)

@@ -312,10 +312,11 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 9 reads 8 to 5: a version 8 snapshot lacks the turn
-	// scale's errors-in-variables moments and the odometry entries' scrub
-	// and wheels fields, 7 the scrub's block sum, 6 the carried odometry's
-	// white part, 5 the run).
+	// knows (version 11 reads 10 to 5: a version 10 snapshot lacks
+	// jump_counts, 9 the landmark blocks and the measurements' mount error
+	// states, 8 the turn scale's errors-in-variables moments and the
+	// odometry entries' scrub and wheels fields, 7 the scrub's block sum, 6
+	// the carried odometry's white part, 5 the run).
 	Version uint32 `protobuf:"varint,1,opt,name=version,proto3" json:"version,omitempty"`
 	// The filter's estimate now.
 	Filter *EstimateState `protobuf:"bytes,2,opt,name=filter,proto3" json:"filter,omitempty"`
@@ -400,8 +401,14 @@ type RobotSnapshot struct {
 	// Which landmark each landmark block of the estimate stands for now
 	// (version 10); absent without landmark blocks.
 	LandmarkBlocks *SnapshotLandmarkBlocks `protobuf:"bytes,38,opt,name=landmark_blocks,json=landmarkBlocks,proto3" json:"landmark_blocks,omitempty"`
-	unknownFields  protoimpl.UnknownFields
-	sizeCache      protoimpl.SizeCache
+	// The encoder counts of the last odometry sample, when it was refused as
+	// an implausible jump: the next sample of counts says whether they were
+	// one bad reading or the counts starting afresh (version 11; absent
+	// otherwise, and in older versions, whose builds took a jump's counts as
+	// the reference at once).
+	JumpCounts    []int64 `protobuf:"varint,39,rep,packed,name=jump_counts,json=jumpCounts,proto3" json:"jump_counts,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -696,6 +703,13 @@ func (x *RobotSnapshot) GetScrubTurnPeakRad() float64 {
 func (x *RobotSnapshot) GetLandmarkBlocks() *SnapshotLandmarkBlocks {
 	if x != nil {
 		return x.LandmarkBlocks
+	}
+	return nil
+}
+
+func (x *RobotSnapshot) GetJumpCounts() []int64 {
+	if x != nil {
+		return x.JumpCounts
 	}
 	return nil
 }
@@ -1953,7 +1967,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xd6\f\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xf7\f\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -2004,7 +2018,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"scrubBlock\x12+\n" +
 	"\x12scrub_turn_sum_rad\x18$ \x01(\x01R\x0fscrubTurnSumRad\x12-\n" +
 	"\x13scrub_turn_peak_rad\x18% \x01(\x01R\x10scrubTurnPeakRad\x12J\n" +
-	"\x0flandmark_blocks\x18& \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocksB\x17\n" +
+	"\x0flandmark_blocks\x18& \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\x12\x1f\n" +
+	"\vjump_counts\x18' \x03(\x03R\n" +
+	"jumpCountsB\x17\n" +
 	"\x15_last_imu_heading_rad\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +

@@ -267,7 +267,11 @@ func (x *WheelTravel) GetTravelM() []float64 {
 	return nil
 }
 
-// WheelCounts is each wheel's cumulative encoder count.
+// WheelCounts is each wheel's cumulative encoder count. Counts whose
+// motion since the last sample is implausible (max_speed_m_per_s,
+// max_turn_rate_rad_per_s) are refused and kept: the next sample's counts
+// are taken from the counts before them if that motion is plausible (one
+// bad reading), else from them if that is (the counts started afresh).
 type WheelCounts struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Count per wheel (wrapping at the wheel's counter_bits).

@@ -1,6 +1,8 @@
 package review
 
 import (
+	"context"
+	"fmt"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -8,7 +10,9 @@ import (
 	"slices"
 	"strconv"
 	"strings"
+	"syscall"
 	"testing"
+	"time"
 
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
@@ -27,6 +31,96 @@ func chromium(t *testing.T) (string, []string) {
 	}
 	return browser, []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
 		"--disable-component-update", "--disable-sync", "--hide-scrollbars", "--user-data-dir=" + t.TempDir()}
+}
+
+// browserTimeout bounds one run of headless Chromium: a few seconds as a
+// rule, tens of seconds on a loaded machine.
+var browserTimeout = 2 * time.Minute
+
+// runChromium runs headless Chromium with args (chromium's, and a profile
+// directory of its own each time) and returns its standard output. Now and
+// then Chromium never exits after a --dump-dom or --screenshot on a loaded
+// machine: once in session 20, for 9 minutes (until go test's deadline),
+// with two test suites and a CI run sharing the 2 cores, its processes
+// left running after the test binary died. So a run has browserTimeout,
+// its whole process group is killed when it ends, and a run that timed out
+// is tried once more; a second timeout fails the test.
+func runChromium(t *testing.T, browser string, args ...string) []byte {
+	t.Helper()
+	out, err := runBrowser(t, browser, args...)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return out
+}
+
+// runBrowser is runChromium's run, returning its error.
+func runBrowser(t *testing.T, browser string, args ...string) ([]byte, error) {
+	t.Helper()
+	var kept []string
+	for _, a := range args {
+		if !strings.HasPrefix(a, "--user-data-dir=") {
+			kept = append(kept, a)
+		}
+	}
+	for attempt := 1; ; attempt++ {
+		ctx, cancel := context.WithTimeout(context.Background(), browserTimeout)
+		cmd := exec.CommandContext(ctx, browser, append([]string{"--user-data-dir=" + t.TempDir()}, kept...)...)
+		cmd.SysProcAttr = &syscall.SysProcAttr{Setpgid: true}
+		cmd.Cancel = func() error { return syscall.Kill(-cmd.Process.Pid, syscall.SIGKILL) }
+		out, err := cmd.Output()
+		timedOut := ctx.Err() != nil
+		cancel()
+		if cmd.Process != nil {
+			// Its zygote, GPU and renderer processes go with it.
+			syscall.Kill(-cmd.Process.Pid, syscall.SIGKILL)
+		}
+		switch {
+		case timedOut && attempt == 1:
+			t.Logf("chromium %s did not finish in %v; trying again", strings.Join(kept, " "), browserTimeout)
+			continue
+		case timedOut:
+			err = fmt.Errorf("did not finish in %v, twice: %w", browserTimeout, err)
+		}
+		if err != nil {
+			return out, fmt.Errorf("chromium %s: %w", strings.Join(kept, " "), err)
+		}
+		return out, nil
+	}
+}
+
+// TestHungBrowserIsKilled: a browser that never exits, and leaves a child
+// behind it as Chromium's helpers are, is given up after browserTimeout
+// twice, with an error saying so, and neither it nor its child is left
+// running.
+func TestHungBrowserIsKilled(t *testing.T) {
+	defer func(d time.Duration) { browserTimeout = d }(browserTimeout)
+	browserTimeout = 300 * time.Millisecond
+	marker := fmt.Sprintf("hung-browser-%d", time.Now().UnixNano())
+	script := filepath.Join(t.TempDir(), "browser")
+	// The child is a sleep of its own, named by the marker in its
+	// arguments; the script waits for it.
+	if err := os.WriteFile(script, []byte("#!/bin/sh\nsh -c 'sleep 3600; : "+marker+"' &\nwait\n"), 0o755); err != nil {
+		t.Fatal(err)
+	}
+	start := time.Now()
+	_, err := runBrowser(t, script, "--headless")
+	if err == nil || !strings.Contains(err.Error(), "twice") {
+		t.Fatalf("a browser that never exits: %v", err)
+	}
+	if d := time.Since(start); d > 10*time.Second {
+		t.Errorf("given up after %v", d)
+	}
+	time.Sleep(100 * time.Millisecond)
+	cmdlines, _ := filepath.Glob("/proc/[0-9]*/cmdline")
+	if len(cmdlines) == 0 {
+		t.Fatal("no /proc to look for what is left running")
+	}
+	for _, c := range cmdlines {
+		if b, _ := os.ReadFile(c); strings.Contains(string(b), marker) {
+			t.Errorf("left running: %s: %q", c, b)
+		}
+	}
 }
 
 // reverseIMU flips the sign of IMU headings, as an IMU mounted upside down
@@ -76,10 +170,7 @@ func TestReportShowsWhereAndWhy(t *testing.T) {
 				t.Fatal(err)
 			}
 			f.Close()
-			dom, err := exec.Command(browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report)...).Output()
-			if err != nil {
-				t.Fatalf("chromium --dump-dom: %v", err)
-			}
+			dom := runChromium(t, browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report)...)
 			page := string(dom)
 			if !strings.Contains(page, `data-zoom="ready"`) {
 				t.Fatalf("the page's script did not run")
@@ -104,10 +195,7 @@ func TestReportShowsWhereAndWhy(t *testing.T) {
 			if m == nil {
 				t.Fatal("no link to a moment")
 			}
-			zoomed, err := exec.Command(browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report+m[1])...).Output()
-			if err != nil {
-				t.Fatalf("chromium --dump-dom: %v", err)
-			}
+			zoomed := runChromium(t, browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report+m[1])...)
 			if !strings.Contains(string(zoomed), `data-moment="`) || strings.Count(string(zoomed), `class="cursor"`) < 2 {
 				t.Errorf("following %s did not zoom the figures", m[1])
 			}
@@ -121,9 +209,7 @@ func TestReportShowsWhereAndWhy(t *testing.T) {
 				width, _, _ := strings.Cut(size, ",")
 				shot, _ := filepath.Abs("../../testdata/out/review-" + c.name + "-" + width + ".png")
 				os.MkdirAll(filepath.Dir(shot), 0o755)
-				if err := exec.Command(browser, append(args, "--window-size="+size, "--screenshot="+shot, "file://"+report)...).Run(); err != nil {
-					t.Fatalf("chromium --screenshot: %v", err)
-				}
+				runChromium(t, browser, append(args, "--window-size="+size, "--screenshot="+shot, "file://"+report)...)
 				if st, err := os.Stat(shot); err != nil || st.Size() < 10000 {
 					t.Fatalf("screenshot %s: %v", shot, err)
 				}
@@ -166,10 +252,7 @@ func TestCalibrationSection(t *testing.T) {
 		t.Fatal(err)
 	}
 	f.Close()
-	dom, err := exec.Command(browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report)...).Output()
-	if err != nil {
-		t.Fatalf("chromium --dump-dom: %v", err)
-	}
+	dom := runChromium(t, browser, append(args, "--window-size=1400,2000", "--dump-dom", "file://"+report)...)
 	page := string(dom)
 	if !strings.Contains(page, `data-zoom="ready"`) {
 		t.Fatalf("the page's script did not run")

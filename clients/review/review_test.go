@@ -217,10 +217,7 @@ func TestReportInABrowser(t *testing.T) {
 	f.Close()
 	args := []string{"--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
 		"--disable-component-update", "--disable-sync", "--user-data-dir=" + t.TempDir(), "--window-size=1300,2400"}
-	dom, err := exec.Command(browser, append(args, "--dump-dom", "file://"+report)...).Output()
-	if err != nil {
-		t.Fatalf("chromium --dump-dom: %v", err)
-	}
+	dom := runChromium(t, browser, append(args, "--dump-dom", "file://"+report)...)
 	m := regexp.MustCompile(`data-figures="([^"]*)"`).FindSubmatch(dom)
 	if m == nil {
 		t.Fatalf("the page did not mark its figures; DOM starts %.300s", dom)
@@ -240,9 +237,7 @@ func TestReportInABrowser(t *testing.T) {
 	}
 	shot, _ := filepath.Abs("../../testdata/out/review-report.png")
 	os.MkdirAll(filepath.Dir(shot), 0o755)
-	if err := exec.Command(browser, append(args, "--screenshot="+shot, "file://"+report)...).Run(); err != nil {
-		t.Fatalf("chromium --screenshot: %v", err)
-	}
+	runChromium(t, browser, append(args, "--screenshot="+shot, "file://"+report)...)
 	if st, err := os.Stat(shot); err != nil || st.Size() < 10000 {
 		t.Fatalf("screenshot %s: %v", shot, err)
 	}

@@ -270,11 +270,9 @@ func TestCountsWrap(t *testing.T) {
 		}
 		b.AddOdometry(Odometry{StartNs: k * 5e6, StampNs: (k + 1) * 5e6, TravelM: tr})
 	}
-	pa, pb := a.Pose(), b.Pose()
-	if pa.Pose != pb.Pose || pa.Cov != pb.Cov {
-		t.Errorf("counts %+v, travel %+v", pa.Pose, pb.Pose)
-	}
-	// A counter reset is refused and re-references the counts.
+	samePose(t, "counts against travel", a, b)
+	// A counter reset is refused, and the next sample is taken from the
+	// reset's counts (TestCountsRestartTakesNextSample).
 	res := a.AddOdometry(Odometry{StampNs: 2000e6, Counts: []int64{30000, 0, 0}})
 	if !errors.Is(res.Err, ErrAbsurdJump) {
 		t.Errorf("counter reset: %v", res.Err)
@@ -285,8 +283,8 @@ func TestCountsWrap(t *testing.T) {
 }
 
 // countsRun feeds r 200 samples of cumulative 16-bit counts every 5 ms
-// (each wheel a steady 7, 8 and 1 counts a sample: common practice for a
-// cart rolling along a gentle curve), with edit applied to each sample's
+// (each wheel a steady 7, 8 and 1 counts a sample, as TestCountsWrap's
+// cart: invented motion, a gentle curve), with edit applied to each sample's
 // counts before it is sent; a sample edit returns nil for is not sent. It
 // returns the verdict of each sample sent, by index.
 func countsRun(t *testing.T, r *Robot, edit func(k int, c []int64) []int64) map[int]Result {

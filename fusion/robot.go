@@ -80,9 +80,10 @@ type Robot struct {
 	trust  trustState
 	cands  []candidate
 	// slip compares the IMU's turn with the wheels' (slip.go); turnGate
-	// caches the comparison's 1-dof gate.
-	slip     slipState
-	turnGate float64
+	// and longTurnGate cache the short and the long comparison's 1-dof
+	// gates.
+	slip                   slipState
+	turnGate, longTurnGate float64
 	// scrub is the block sum the scrub in turns is charged on (scrub.go).
 	scrub scrubState
 }

@@ -10,14 +10,16 @@ import (
 )
 
 // slipNEES runs Monte Carlo runs of the three-wheel cart (no wheel
-// residual) in which the left wheel reads 60% of its travel from 10 s to
-// 10.8 s, and returns the pose NEES of the reported estimate at each
-// odometry sample from 10 s to 12 s, averaged over the runs, and the slip
-// events seen.
-func slipNEES(t *testing.T, imu bool, runs int) (avg []float64, slips int) {
-	const fromNs, untilNs, endNs = 10e9, 10.8e9, 12e9
+// residual) in which the left wheel reads the fraction keep of its travel
+// from 10 s for slipS seconds, and returns the pose NEES of the reported
+// estimate at each odometry sample from 10 s to 1.2 s after the slip,
+// averaged over the runs, and the slip events seen.
+func slipNEES(t *testing.T, imu bool, runs int, keep, slipS float64) (avg []float64, slips int) {
+	const fromNs = 10e9
+	untilNs := fromNs + int64(slipS*1e9)
+	endNs := untilNs + 1.2e9
 	for run := 0; run < runs; run++ {
-		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: imu, Seed: uint64(500 + run), DurationS: 12.5}
+		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: imu, Seed: uint64(500 + run), DurationS: float64(endNs)*1e-9 + 0.5}
 		s := fusiontest.New(sc)
 		r, err := fusion.New(s.Config())
 		if err != nil {
@@ -28,7 +30,7 @@ func slipNEES(t *testing.T, imu bool, runs int) (avg []float64, slips int) {
 			if o := in.Odometry; o != nil && o.StampNs > fromNs && o.StampNs <= untilNs {
 				c := *o
 				c.TravelM = append([]float64(nil), o.TravelM...)
-				c.TravelM[0] *= 0.6
+				c.TravelM[0] *= keep
 				in.Odometry = &c
 			}
 			res := fusiontest.Feed(r, &in)
@@ -70,7 +72,7 @@ func TestSlipSeenByIMU(t *testing.T) {
 	const runs, settle = 30, 20 // settle: 0.1 s of 5 ms samples
 	step := distuv.ChiSquared{K: 3 * runs}.Quantile(0.99) / runs
 	for _, imu := range []bool{true, false} {
-		avg, slips := slipNEES(t, imu, runs)
+		avg, slips := slipNEES(t, imu, runs, 0.6, 0.8)
 		k := len(avg)
 		whole := distuv.ChiSquared{K: float64(3 * runs * k)}.Quantile(0.99) / float64(runs*k)
 		var mean, worst, onset float64
@@ -110,5 +112,42 @@ func TestSlipSeenByIMU(t *testing.T) {
 	t.Logf("no slip: %d slip events in %.0f s", r.Stats().Slips, sc.DurationS)
 	if n := r.Stats().Slips; n > 90 {
 		t.Errorf("no slip: %d slip events in ten minutes", n)
+	}
+}
+
+// TestModerateSlipSeenByIMU: a wheel slipping a little for long. The left
+// wheel of the three-wheel cart reads 90% of its travel for 1.5 s: it
+// turns the estimate about 17 mrad every 0.1 s, under two standard
+// deviations of the short comparison (the IMU's 5 mrad readings), so that
+// hardly an interval of 0.1 s stands out, while the distance it loses grows
+// to 3 cm, three of the cart's standard deviations between fixes. Summed
+// over the long comparison's 0.8 s the disagreement stands out (slip.go).
+// Over 30 Monte Carlo runs the test asks, as TestSlipSeenByIMU does, that
+// the average NEES over the runs at each odometry sample from 0.5 s into
+// the slip (it cannot be seen before its turn has added up) to 1.2 s after
+// it lies below chi2_{3N}(0.99)/N (Bar-Shalom, Li and Kirubarajan 2001,
+// sec. 5.4.2; quantile from gonum stat/distuv), allowing 1% of the samples
+// above it, as many as the bound's own 1% would put there. Found with an
+// independent simulator (a warehouse cart on a wet floor,
+// cartsim_test.go), whose slips of 5% to 15% left the estimate trusted
+// outside its 99.9% region for up to 0.8 s while fixes arrived. Measured
+// with the short comparison alone (slips ended at its gate): above the
+// bound at 440 of 440 samples, at most 16.5; with the long comparison and
+// the slip's end at the 95% quantile: at 0, at most 3.77.
+func TestModerateSlipSeenByIMU(t *testing.T) {
+	const runs, settle = 30, 100 // settle: 0.5 s of 5 ms samples
+	avg, slips := slipNEES(t, true, runs, 0.9, 1.5)
+	step := distuv.ChiSquared{K: 3 * runs}.Quantile(0.99) / runs
+	over, worst := 0, 0.0
+	for _, v := range avg[settle:] {
+		worst = max(worst, v)
+		if v > step {
+			over++
+		}
+	}
+	n := len(avg) - settle
+	t.Logf("%d slip events in %d runs; from 0.5 s into the slip, the average NEES over the runs at most %.2f, above its bound %.2f at %d of %d samples", slips, runs, worst, step, over, n)
+	if over > n/100 {
+		t.Errorf("a wheel slipping 10%% for 1.5 s: the average NEES above %.2f at %d of %d samples (at most %.2f)", step, over, n, worst)
 	}
 }

@@ -43,10 +43,13 @@ import (
 // jump, kept until the next sample says what they were (odometry.go); a
 // version 10 to 5 snapshot has none (the builds that wrote them took a
 // jump's counts as the reference at once).
-const SnapshotVersion = 11
+// Version 12: the anchor of the IMU slip comparison's long interval
+// (slip.go); a version 11 to 5 snapshot has none, and its robot starts
+// the long comparison at its next IMU heading.
+const SnapshotVersion = 12
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -124,6 +127,11 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		e.message(38, func(e *wenc) { encTable(e, &r.lm) })
 	}
 	e.ints(39, r.jumpCounts)
+	if a := &r.slip.long; a.set {
+		e.int(40, a.stamp)
+		e.double(41, a.heading)
+		e.double(42, a.varRad2)
+	}
 	return e.b, nil
 }
 
@@ -272,6 +280,12 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		d.message(num, func(d *wdec) { decTable(d, &r.lm) })
 	case 39:
 		r.jumpCounts = d.intSlice(num)
+	case 40:
+		r.slip.long.set, r.slip.long.stamp = true, d.int(num)
+	case 41:
+		r.slip.long.heading = d.double(num)
+	case 42:
+		r.slip.long.varRad2 = d.double(num)
 	default:
 		d.fail("unknown field %d", num)
 	}

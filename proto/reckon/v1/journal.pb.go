@@ -312,11 +312,12 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 11 reads 10 to 5: a version 10 snapshot lacks
-	// jump_counts, 9 the landmark blocks and the measurements' mount error
-	// states, 8 the turn scale's errors-in-variables moments and the
-	// odometry entries' scrub and wheels fields, 7 the scrub's block sum, 6
-	// the carried odometry's white part, 5 the run).
+	// knows (version 12 reads 11 to 5: a version 11 snapshot lacks the long
+	// turn anchor, 10 jump_counts, 9 the landmark blocks and the
+	// measurements' mount error states, 8 the turn scale's
+	// errors-in-variables moments and the odometry entries' scrub and wheels
+	// fields, 7 the scrub's block sum, 6 the carried odometry's white part, 5
+	// the run).
 	Version uint32 `protobuf:"varint,1,opt,name=version,proto3" json:"version,omitempty"`
 	// The filter's estimate now.
 	Filter *EstimateState `protobuf:"bytes,2,opt,name=filter,proto3" json:"filter,omitempty"`
@@ -406,9 +407,18 @@ type RobotSnapshot struct {
 	// one bad reading or the counts starting afresh (version 11; absent
 	// otherwise, and in older versions, whose builds took a jump's counts as
 	// the reference at once).
-	JumpCounts    []int64 `protobuf:"varint,39,rep,packed,name=jump_counts,json=jumpCounts,proto3" json:"jump_counts,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	JumpCounts []int64 `protobuf:"varint,39,rep,packed,name=jump_counts,json=jumpCounts,proto3" json:"jump_counts,omitempty"`
+	// The IMU heading that starts the long comparison of the IMU's turn
+	// with the wheels' (version 12; absent before the first, and in older
+	// versions, whose robots start it at their next heading): its stamp,
+	// nanoseconds,
+	LongTurnAnchorStampNs int64 `protobuf:"varint,40,opt,name=long_turn_anchor_stamp_ns,json=longTurnAnchorStampNs,proto3" json:"long_turn_anchor_stamp_ns,omitempty"`
+	// its value, radians in the IMU's own frame,
+	LongTurnAnchorHeadingRad float64 `protobuf:"fixed64,41,opt,name=long_turn_anchor_heading_rad,json=longTurnAnchorHeadingRad,proto3" json:"long_turn_anchor_heading_rad,omitempty"`
+	// and its reading's variance, rad^2.
+	LongTurnAnchorVarRad2 float64 `protobuf:"fixed64,42,opt,name=long_turn_anchor_var_rad2,json=longTurnAnchorVarRad2,proto3" json:"long_turn_anchor_var_rad2,omitempty"`
+	unknownFields         protoimpl.UnknownFields
+	sizeCache             protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -712,6 +722,27 @@ func (x *RobotSnapshot) GetJumpCounts() []int64 {
 		return x.JumpCounts
 	}
 	return nil
+}
+
+func (x *RobotSnapshot) GetLongTurnAnchorStampNs() int64 {
+	if x != nil {
+		return x.LongTurnAnchorStampNs
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetLongTurnAnchorHeadingRad() float64 {
+	if x != nil {
+		return x.LongTurnAnchorHeadingRad
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetLongTurnAnchorVarRad2() float64 {
+	if x != nil {
+		return x.LongTurnAnchorVarRad2
+	}
+	return 0
 }
 
 // SnapshotLandmarkBlocks says which landmark each landmark block of an
@@ -1967,7 +1998,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xf7\f\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xab\x0e\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -2020,7 +2051,10 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x13scrub_turn_peak_rad\x18% \x01(\x01R\x10scrubTurnPeakRad\x12J\n" +
 	"\x0flandmark_blocks\x18& \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\x12\x1f\n" +
 	"\vjump_counts\x18' \x03(\x03R\n" +
-	"jumpCountsB\x17\n" +
+	"jumpCounts\x128\n" +
+	"\x19long_turn_anchor_stamp_ns\x18( \x01(\x03R\x15longTurnAnchorStampNs\x12>\n" +
+	"\x1clong_turn_anchor_heading_rad\x18) \x01(\x01R\x18longTurnAnchorHeadingRad\x128\n" +
+	"\x19long_turn_anchor_var_rad2\x18* \x01(\x01R\x15longTurnAnchorVarRad2B\x17\n" +
 	"\x15_last_imu_heading_rad\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +

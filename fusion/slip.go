@@ -36,8 +36,8 @@ import (
 // summed since the slip began covers the square of the disagreements summed
 // since then (a bias's variance, not a random walk's), and, while the slip
 // lasts, each new step's covariance is multiplied by the last k too. The
-// slip ends when an interval of twice turnBaselineNs agrees with the
-// steps' own, uninflated variance as 95% of honest intervals do (below).
+// slip ends when an interval of turnBaselineNs agrees with the steps' own,
+// uninflated variance and disagrees, if at all, the other way (below).
 //
 // The comparison runs at every IMU heading at least turnMinNs after the
 // anchor, over the interval since it; the anchor moves to the heading that
@@ -80,9 +80,6 @@ const (
 	turnTests      = turnBaselineNs / 10e6
 	turnHorizonNs  = 800e6
 	longTurnTests  = turnHorizonNs / 10e6
-	// slipEndNS is the 1-dof chi-square's 95% quantile (gonum
-	// stat/distuv.ChiSquared{K: 1}.Quantile(0.95)).
-	slipEndNS = 3.841458820694124
 )
 
 // slipState is the IMU's slip comparison.
@@ -155,16 +152,18 @@ func (r *Robot) checkTurn(res *Result, at int) {
 		}
 		return
 	}
-	if b.stamp-a.stamp < turnBaselineNs || slipping && b.stamp-a.stamp < 2*turnBaselineNs {
+	if b.stamp-a.stamp < turnBaselineNs {
 		return
 	}
-	// The interval agrees; does it without the slip's inflation? A slip
-	// ends only when an interval of twice the baseline agrees as 95% of
-	// honest ones do (ns at most slipEndNS, about two deviations; a
-	// hysteresis between it and the gate): ended at the gate after 0.1 s,
-	// a slip of a few percent, under the gate in every such interval,
-	// ended after its first and went on unseen.
-	if vw0 := vw / max(sl.factor, 1); slipping && delta*delta/(vw0+vi) > slipEndNS {
+	// The interval agrees; does it without the slip's inflation? The slip
+	// goes on while the interval disagrees beyond the gate without it, or
+	// the way the slip went (the sign of its summed disagreement): a slip
+	// of a few percent stays under the gate in every interval of 0.1 s,
+	// and ended there it went on unseen, while an honest interval points
+	// either way with even odds (a sign test), so the factor outlasts a
+	// slip that is over by one interval on average.
+	vw0 := vw / max(sl.factor, 1)
+	if slipping && (delta*sl.turnSum > 0 || delta*delta/(vw0+vi) > r.turnGate) {
 		sl.anchor, sl.turnSum, sl.varSum = b, sum, sl.varSum+vw
 		return
 	}

@@ -133,7 +133,8 @@ func TestSlipSeenByIMU(t *testing.T) {
 // outside its 99.9% region for up to 0.8 s while fixes arrived. Measured
 // with the short comparison alone (slips ended at its gate): above the
 // bound at 440 of 440 samples, at most 16.5; with the long comparison and
-// the slip's end at the 95% quantile: at 0, at most 3.77.
+// a slip going on while the disagreement keeps its sign: at 0, at most
+// 3.77.
 func TestModerateSlipSeenByIMU(t *testing.T) {
 	const runs, settle = 30, 100 // settle: 0.5 s of 5 ms samples
 	avg, slips := slipNEES(t, true, runs, 0.9, 1.5)

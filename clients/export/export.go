@@ -132,7 +132,7 @@ func exportRun(ctx context.Context, t *tables, dir string, r Run, only int64) ([
 		x.row.DeleteTimeUnixNs = &r.DeleteTimeUnixNs
 	}
 	var gap error
-	_, scan, err := journal.Replay(filepath.Clean(dir), r.Robot, journal.ReplayOptions{ReadOnly: true, FS: r.fs(),
+	fr, scan, err := journal.Replay(filepath.Clean(dir), r.Robot, journal.ReplayOptions{ReadOnly: true, FS: r.fs(),
 		Opened: func(fr *fusion.Robot) error { x.cfg = fr.Config(); return nil },
 		Input:  x.input,
 		Gap: func(err error) error {
@@ -141,7 +141,9 @@ func exportRun(ctx context.Context, t *tables, dir string, r Run, only int64) ([
 			}
 			return nil
 		}})
-	if err != nil && !errors.Is(err, journal.ErrGap) {
+	// A gap is gone past (and noted by Gap) only once the journal opened a
+	// robot: without one (no segment left) there is nothing to export.
+	if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 		return nil, err
 	}
 	if err := x.flushInputs(true); err != nil {

@@ -312,6 +312,30 @@ func TestExportOfATornJournal(t *testing.T) {
 	}
 }
 
+// TestExportOfAJournalWithoutSegments: a journal whose manifest names a
+// segment of which none is left (a half-copied directory) is an error
+// naming the missing segment, not a run exported with no inputs and no
+// configuration.
+func TestExportOfAJournalWithoutSegments(t *testing.T) {
+	dir := t.TempDir()
+	if err := writeJournal(t, dir, "cart-1", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 9, DurationS: 2}, lagOdometry{}).Close(); err != nil {
+		t.Fatal(err)
+	}
+	segs, err := journal.Segments(dir, "cart-1")
+	if err != nil || len(segs) == 0 {
+		t.Fatalf("segments %v: %v", segs, err)
+	}
+	for _, s := range segs {
+		if err := os.Remove(s); err != nil {
+			t.Fatal(err)
+		}
+	}
+	rows, err := Export(context.Background(), dir, t.TempDir(), Options{})
+	if err == nil || !strings.Contains(err.Error(), "no segment of cart-1") {
+		t.Errorf("export of a journal without segments: %d runs, %v; want an error naming the missing segment", len(rows), err)
+	}
+}
+
 // TestExportPastALostHeldInput: a journal that lost a held input in its
 // middle (a gap, as damage leaves one) still exports: the runs row names
 // the gap, the rows after it keep the journal's sequence numbers, and

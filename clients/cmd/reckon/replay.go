@@ -237,7 +237,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	// to damage) the robot lacks what was lost, so they are counted apart.
 	same, differ, differPast := 0, 0, 0
 	gaps := 0
-	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true,
+	fr, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true,
 		Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
@@ -257,7 +257,9 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 			fmt.Fprintf(stderr, "note: %v; the replay goes on past it without the inputs lost\n", err)
 			return nil
 		}})
-	if err != nil && !errors.Is(err, journal.ErrGap) {
+	// A gap is gone past (and named by Gap) only once the journal opened a
+	// robot: without one (no segment left) nothing was replayed.
+	if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 		return err
 	}
 	fmt.Fprintf(stderr, "replayed %d inputs of %s", scan.Pairs, name)

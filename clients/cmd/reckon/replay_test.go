@@ -211,3 +211,18 @@ func TestReplayPastAGap(t *testing.T) {
 		t.Errorf("%d rows (%v), the journal holds %d inputs", len(rows)-1, cerr, scan.Pairs)
 	}
 }
+
+// TestReplayOfAJournalWithoutSegments: a journal whose manifest names
+// segments of which none is left (a half-copied directory) replays
+// nothing; replay says so and fails instead of writing an empty track
+// with exit status 0.
+func TestReplayOfAJournalWithoutSegments(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	if err := os.Remove(journal.SegmentPath(dir, "cart", 0)); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart")
+	if err == nil || exitCode(err) != exitFailure || !strings.Contains(err.Error(), "no segment of cart") {
+		t.Errorf("replay of a journal without segments: %v (exit %d)\n%s", err, exitCode(err), errs)
+	}
+}

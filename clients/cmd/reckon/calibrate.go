@@ -8,6 +8,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -32,7 +33,8 @@ each fix sensor's mount and latency by a batch least-squares fit to the
 fixes, and prints each with its standard error and whether the run
 determines it (if not, the driving that would). It writes the corrected
 configuration to -out, each change commented; a parameter the configuration
-has no field for is printed as a factor to apply by hand. A journal's run
+has no field for is printed as a factor to apply by hand. A run that
+determines none of them writes nothing (exit status 5). A journal's run
 is calibrated from its own configuration unless -config names another.
 With -report, the run is replayed under the configuration before and after
 into one HTML report with a calibration section at the top.`)
@@ -281,6 +283,12 @@ func byHandNotes(fit *calib.SystematicFit) []string {
 // its fitted value and standard error, and a first comment line naming
 // every change. It returns the changes.
 func writeCalibratedConfig(in string, data []byte, out, run string, cfg fusion.Config, fit *calib.SystematicFit) ([]string, error) {
+	if !slices.ContainsFunc(fit.Params, func(p calib.Param) bool { return p.Determined }) {
+		// Nothing was fitted: the mounts' standard errors would be the
+		// fit's weak prior (DEVELOPERS.md, "Design: Systematic
+		// parameters"), written as if the run had measured them.
+		return nil, fmt.Errorf("%w: the run determines none of the parameters (the table says what driving would); nothing written", errRefused)
+	}
 	var edits []configEdit
 	var kept []string
 	for _, p := range fit.Params {

@@ -76,7 +76,8 @@ type Options struct {
 	// nanoseconds from the run's start (the stamp of its first input). The
 	// run is replayed from its start all the same, so that the estimate at
 	// FromNs is the one the robot had; only the stretch is summarised,
-	// exported and drawn. ToNs 0 means the end.
+	// exported and drawn. FromNs 0 means the whole run, inputs stamped
+	// before its first included; ToNs 0 means the end.
 	FromNs, ToNs int64
 }
 
@@ -712,6 +713,11 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 		start := convert.SampleStamp(s)
 		rc.run.Summary.RunStartNs = start
 		rc.a.fromNs, rc.a.toNs = start+rc.fromNs, math.MaxInt64
+		if rc.fromNs == 0 {
+			// Inputs stamped before the first (a late fix that arrived
+			// first) belong to the run too.
+			rc.a.fromNs = math.MinInt64
+		}
 		if rc.toNs > 0 {
 			rc.a.toNs = start + rc.toNs
 		}

@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"encoding/csv"
 	"errors"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -224,5 +225,77 @@ func TestReplayOfAJournalWithoutSegments(t *testing.T) {
 	_, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart")
 	if err == nil || exitCode(err) != exitFailure || !strings.Contains(err.Error(), "no segment of cart") {
 		t.Errorf("replay of a journal without segments: %v (exit %d)\n%s", err, exitCode(err), errs)
+	}
+}
+
+// lateFixFirst writes the example samples with their first fix moved to
+// the top, as a recording starts when a camera's late fix arrives before
+// the odometry it was captured after, and returns the file and the number
+// of samples.
+func lateFixFirst(t *testing.T) (string, int) {
+	t.Helper()
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var samples []string
+	fix := -1
+	for _, l := range strings.Split(string(b), "\n") {
+		if l == "" || strings.HasPrefix(l, "#") {
+			continue
+		}
+		if fix < 0 && strings.HasPrefix(l, `{"fix"`) {
+			fix = len(samples)
+		}
+		samples = append(samples, l)
+	}
+	if fix < 1 {
+		t.Fatal("the example samples have no fix after their first line")
+	}
+	samples = append(append([]string{samples[fix]}, samples[:fix]...), samples[fix+1:]...)
+	path := filepath.Join(t.TempDir(), "late-fix-first.jsonl")
+	if err := os.WriteFile(path, []byte(strings.Join(samples, "\n")+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return path, len(samples)
+}
+
+// TestReplayInputsBeforeTheFirst: a recording whose first input is a late
+// fix, stamped after the odometry that follows it, replays with a row for
+// every input: without -from nothing is left out, though the inputs after
+// the fix are stamped before the run's start (its first input's stamp);
+// they were dropped without a word.
+func TestReplayInputsBeforeTheFirst(t *testing.T) {
+	path, n := lateFixFirst(t)
+	out, errs, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", path)
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	rows, err := csv.NewReader(strings.NewReader(out)).ReadAll()
+	if err != nil || len(rows)-1 != n {
+		t.Errorf("%d rows (%v) for %d samples", len(rows)-1, err, n)
+	}
+	// -to alone keeps them too: the stretch starts with the run.
+	out, errs, err = runCmd(t, "replay", "-config", exampleConfig, "-samples", path, "-to", "1")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if rows, _ := csv.NewReader(strings.NewReader(out)).ReadAll(); len(rows) < 2 || rows[1][1] != "1" || rows[2][1] != "2" {
+		t.Errorf("-to 1: the rows start with %v", rows[1:min(3, len(rows))])
+	}
+}
+
+// TestReviewInputsBeforeTheFirst: review, like replay, covers the inputs
+// stamped before the run's first input when no -from is given: the
+// summary counts every sample.
+func TestReviewInputsBeforeTheFirst(t *testing.T) {
+	path, n := lateFixFirst(t)
+	out := filepath.Join(t.TempDir(), "review")
+	txt, errs, err := runCmd(t, "review", "-config", exampleConfig, "-samples", path, "-out", out)
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if want := fmt.Sprintf(", %d inputs\n", n); !strings.Contains(txt, want) {
+		t.Errorf("the summary does not count the %d samples:\n%s", n, txt)
 	}
 }

@@ -47,8 +47,10 @@ func (ts *timeSpan) add(fs *flag.FlagSet) {
 }
 
 // holds reports whether an offset from the run's start lies in the span.
+// Without -from the span has no lower bound: an input stamped before the
+// run's first input (a late fix that arrived first) is part of the run.
 func (ts timeSpan) holds(offsetNs int64) bool {
-	return offsetNs >= ts.fromNs && (ts.toNs == 0 || offsetNs <= ts.toNs)
+	return (ts.fromNs == 0 || offsetNs >= ts.fromNs) && (ts.toNs == 0 || offsetNs <= ts.toNs)
 }
 
 // offsetFlag is a time offset flag: seconds, with or without "s", or

@@ -9,6 +9,7 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
+	"reckon.example/clients/review"
 	"reckon.example/server/convert"
 )
 
@@ -54,7 +55,7 @@ func exitCode(err error) int {
 		return exitInterrupted
 	case errors.As(err, &ue):
 		return exitUsage
-	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL):
+	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL), errors.Is(err, review.ErrTruth):
 		return exitRefused
 	}
 	// status.FromError finds a status wrapped anywhere in err.

@@ -2,6 +2,7 @@ package main
 
 import (
 	"bufio"
+	"context"
 	"encoding/csv"
 	"errors"
 	"fmt"
@@ -297,5 +298,68 @@ func TestReviewInputsBeforeTheFirst(t *testing.T) {
 	}
 	if want := fmt.Sprintf(", %d inputs\n", n); !strings.Contains(txt, want) {
 		t.Errorf("the summary does not count the %d samples:\n%s", n, txt)
+	}
+}
+
+// TestReviewRefusesABadTruthFile: review stops at a truth file that is not
+// a time-ordered table of stamp_ns,x_m,y_m,heading_rad, naming the file
+// and its line, with exit status 5 (input refused). It went on: a row
+// with a number it could not read took it as 0 or NaN (an RMS error of
+// NaN), short rows and stamps in seconds were skipped as headers (no truth
+// matched, or one step), rows out of order matched one step, all without
+// a word.
+func TestReviewRefusesABadTruthFile(t *testing.T) {
+	dir := t.TempDir()
+	samples, truth := filepath.Join(dir, "run.jsonl"), filepath.Join(dir, "truth.csv")
+	writeRun(t, samples, truth, 5)
+	b, err := os.ReadFile(truth)
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.Split(strings.TrimSuffix(string(b), "\n"), "\n")
+	if len(lines) < 100 {
+		t.Fatalf("the truth has %d lines", len(lines))
+	}
+	edit := func(f func(i int, fields []string) []string) string {
+		out := []string{lines[0]}
+		for i, l := range lines[1:] {
+			out = append(out, strings.Join(f(i+2, strings.Split(l, ",")), ","))
+		}
+		return strings.Join(out, "\n") + "\n"
+	}
+	for _, c := range []struct {
+		name, text, want string
+	}{
+		{"a NaN", edit(func(i int, f []string) []string {
+			if i == 50 {
+				f[1] = "NaN"
+			}
+			return f
+		}), `line 50: x_m "NaN" is not a finite number`},
+		{"no heading column", edit(func(_ int, f []string) []string { return f[:3] }), "line 2: 3 fields"},
+		{"stamps in seconds", edit(func(_ int, f []string) []string {
+			ns, _ := strconv.ParseInt(f[0], 10, 64)
+			f[0] = strconv.FormatFloat(float64(ns)*1e-9, 'f', -1, 64)
+			return f
+		}), "is not an integer (nanoseconds)"},
+		{"out of order", edit(func(i int, f []string) []string {
+			if i == 60 {
+				f[0] = "1"
+			}
+			return f
+		}), "line 60: stamp_ns 1 is not after"},
+		{"header only", lines[0] + "\n", "no rows"},
+	} {
+		bad := filepath.Join(dir, "bad.csv")
+		if err := os.WriteFile(bad, []byte(c.text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", samples, "-truth", bad, "-out", filepath.Join(dir, "review"))
+		if code != exitRefused || !strings.Contains(errs, bad) || !strings.Contains(errs, c.want) {
+			t.Errorf("%s: exit %d, want %d; stderr %q lacks the file and %q", c.name, code, exitRefused, errs, c.want)
+		}
+	}
+	if _, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", samples, "-truth", truth, "-out", filepath.Join(dir, "review")); code != exitOK {
+		t.Errorf("the good truth: exit %d\n%s", code, errs)
 	}
 }

@@ -35,7 +35,9 @@ determines it (if not, the driving that would). It writes the corrected
 configuration to -out, each change commented; a parameter the configuration
 has no field for is printed as a factor to apply by hand. A run that
 determines none of them writes nothing (exit status 5). A journal's run
-is calibrated from its own configuration unless -config names another.
+is calibrated from its own configuration unless -config names another. A
+recording of several runs (a controller restart begins one) is calibrated
+one run at a time: run 1, or -run N.
 With -report, the run is replayed under the configuration before and after
 into one HTML report with a calibration section at the top.`)
 	fs.SetOutput(stderr)
@@ -47,6 +49,7 @@ into one HTML report with a calibration section at the top.`)
 	force := fs.Bool("force", false, "replace -out if it exists")
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after (default: truth.csv in the journal directory, if there)")
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
+	runN := fs.Uint64("run", 0, "the run to calibrate, from 1 (a controller restart begins a run, on a clock of its own; default 1)")
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
@@ -92,10 +95,11 @@ into one HTML report with a calibration section at the top.`)
 		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
 	}
 	cfg = r.Config()
-	inputs, _, err := readRun(ctx, run, *robot, cfgProto)
+	rec, err := readRun(ctx, run, *robot, cfgProto, *runN)
 	if err != nil {
 		return err
 	}
+	inputs := rec.inputs
 	var truthPoses []calib.StampedPose
 	if *truth != "" {
 		if truthPoses, err = readTruthCSV(*truth); err != nil {
@@ -103,7 +107,7 @@ into one HTML report with a calibration section at the top.`)
 		}
 	}
 	odo, imu, fixes := splitInputs(inputs)
-	fmt.Fprintf(stdout, "%s: %d odometry samples, %d IMU headings, %d fixes\n", src, len(odo), len(imu), len(fixes))
+	fmt.Fprintf(stdout, "%s%s: %d odometry samples, %d IMU headings, %d fixes\n", src, rec.note(), len(odo), len(imu), len(fixes))
 
 	wiring, sensors := calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)
 	findings := printFindings(stdout, wiring, sensors)
@@ -164,7 +168,7 @@ into one HTML report with a calibration section at the top.`)
 	if *reportDir == "" {
 		return nil
 	}
-	rs := review.Source{JournalDir: *dir, Robot: *robot, Samples: *samples, Config: cfgProto, Truth: *truth}
+	rs := review.Source{JournalDir: *dir, Robot: *robot, Samples: *samples, Config: cfgProto, Truth: *truth, Run: rec.run}
 	cal := review.Calibration{By: "reckon calibrate", Findings: findings, Columns: cols, Rows: rows, Notes: append(byHand, wrote)}
 	return writeCalibrationReport(stdout, *reportDir, rs, cfgProto, *out, cal)
 }

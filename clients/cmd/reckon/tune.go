@@ -50,8 +50,10 @@ ground truth is needed for the fit. The run is named as for calibrate
 (-journal and -robot, or -samples); a journal's run is tuned from its own
 configuration unless -config names another. The older form, the run as the
 last argument (a JSON Lines file, or a journal directory with -robot), still
-works. With -report, the run is replayed under the configuration before and
-after into one HTML report with a calibration section at the top.`)
+works. A recording of several runs (a controller restart begins one) is
+tuned one run at a time: run 1, or -run N. With -report, the run is replayed
+under the configuration before and after into one HTML report with a
+calibration section at the top.`)
 	fs.SetOutput(stderr)
 	dir := fs.String("journal", "", "journal directory (with -robot)")
 	samples := fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)")
@@ -63,6 +65,7 @@ after into one HTML report with a calibration section at the top.`)
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
 	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps, the IMU offset's walk per radian turned (a gyro's scale error), the marker map's survey error (landmark_position_std_m); then fit its levels")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
+	runN := fs.Uint64("run", 0, "the run to tune, from 1 (a controller restart begins a run, on a clock of its own; default 1)")
 	keep := fs.Bool("keep-undetermined", false, "keep the variances the run does not determine at their configured values (default: the upper end of each one's 95% likelihood interval)")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
@@ -119,10 +122,11 @@ after into one HTML report with a calibration section at the top.`)
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
 	}
-	inputs, skipped, err := readRun(ctx, run, *robot, cfgProto)
+	rec, err := readRun(ctx, run, *robot, cfgProto, *runN)
 	if err != nil {
 		return err
 	}
+	inputs := rec.inputs
 	var truthPoses []calib.StampedPose
 	if *truth != "" {
 		if truthPoses, err = readTruthCSV(*truth); err != nil {
@@ -133,7 +137,7 @@ after into one HTML report with a calibration section at the top.`)
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", run, errRefused, err)
 	}
-	printTune(stdout, run, inputs, skipped, fit)
+	printTune(stdout, run+rec.note(), inputs, rec.skipped, fit)
 	if truthPoses != nil {
 		if err := printNEES(stdout, cfg, fit.Config, inputs, truthPoses); err != nil {
 			return fmt.Errorf("%s: %w", *truth, err)
@@ -143,9 +147,9 @@ after into one HTML report with a calibration section at the top.`)
 	if err != nil || *reportDir == "" {
 		return err
 	}
-	src := review.Source{Samples: *samples, Config: cfgProto, Truth: *truth}
+	src := review.Source{Samples: *samples, Config: cfgProto, Truth: *truth, Run: rec.run}
 	if *dir != "" {
-		src = review.Source{JournalDir: *dir, Robot: *robot, Config: cfgProto, Truth: *truth}
+		src = review.Source{JournalDir: *dir, Robot: *robot, Config: cfgProto, Truth: *truth, Run: rec.run}
 	}
 	cols, rows := levelTable(fit)
 	cal := review.Calibration{By: "reckon tune", Columns: cols, Rows: rows, Notes: []string{wrote}}
@@ -172,11 +176,42 @@ func levelTable(fit *calib.NoiseFit) ([]string, [][]string) {
 	return cols, rows
 }
 
-// readRun reads a run's inputs in arrival order from a JSON Lines file of
-// samples or from a journal directory (with robot); reseeds are counted in
-// skipped and left out.
-func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inputs []calib.RecordedInput, skipped int, err error) {
+// recording is what readRun read: the inputs of the run asked for in
+// arrival order, the reseeds left out of it, and how many runs the
+// recording holds (each controller restart, a run start sample, begins
+// one on a clock of its own).
+type recording struct {
+	inputs  []calib.RecordedInput
+	skipped int
+	run     uint64
+	runs    uint64
+}
+
+// note says which run of several the recording's inputs are, or nothing
+// for a recording of one run.
+func (rec *recording) note() string {
+	if rec.runs < 2 {
+		return ""
+	}
+	return fmt.Sprintf(" (run %d of %d runs: a controller restart begins a run on a clock of its own; -run N for another)", rec.run, rec.runs)
+}
+
+// readRun reads the inputs of run want (from 1; 0 is 1) in arrival order
+// from a JSON Lines file of samples or from a journal directory (with
+// robot); reseeds are counted in skipped and left out. The runs of a
+// recording are never mixed: their clocks differ.
+func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64) (*recording, error) {
+	want = max(want, 1)
+	var inputs []calib.RecordedInput
+	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
+		if s.GetRunStart() != nil {
+			run++
+			return nil
+		}
+		if run != want {
+			return nil
+		}
 		d, err := convert.Decode(s)
 		if err != nil {
 			return err
@@ -195,7 +230,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inpu
 	}
 	if st, err := os.Stat(path); err == nil && st.IsDir() {
 		if robot == "" {
-			return nil, 0, &usageError{err: fmt.Errorf("%s is a journal directory: name the robot with -robot", path)}
+			return nil, &usageError{err: fmt.Errorf("%s is a journal directory: name the robot with -robot", path)}
 		}
 		id := robot
 		if n, err := server.RobotID(robot); err == nil {
@@ -211,18 +246,18 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inpu
 			return nil
 		}})
 		if err != nil {
-			return nil, 0, err
+			return nil, err
 		}
 	} else {
 		f, err := os.Open(path)
 		if err != nil {
-			return nil, 0, err
+			return nil, err
 		}
 		defer f.Close()
 		sr := convert.NewSampleReader(f)
 		for {
 			if err := ctx.Err(); err != nil {
-				return nil, 0, err
+				return nil, err
 			}
 			s, err := sr.Next()
 			if errors.Is(err, io.EOF) {
@@ -232,14 +267,17 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inpu
 				err = add(s)
 			}
 			if err != nil {
-				return nil, 0, fmt.Errorf("%s: %w: %w", path, errRefused, err)
+				return nil, fmt.Errorf("%s: %w: %w", path, errRefused, err)
 			}
 		}
 	}
-	if len(inputs) == 0 {
-		return nil, 0, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
+	if want > run {
+		return nil, fmt.Errorf("%s: %w: run %d asked for; the recording holds runs 1 to %d", path, errRefused, want, run)
 	}
-	return inputs, skipped, nil
+	if len(inputs) == 0 {
+		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
+	}
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

@@ -199,7 +199,8 @@ func (hw *heldWriter) flush() error {
 	return nil
 }
 
-// spanWriter passes on the inputs stamped inside a time span.
+// spanWriter passes on the inputs stamped inside a time span, counted
+// from the start of each run (its first input after the run start).
 type spanWriter struct {
 	next    outputWriter
 	span    timeSpan
@@ -210,7 +211,9 @@ type spanWriter struct {
 func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
 	stamp := convert.SampleStamp(s)
 	if s.GetRunStart() != nil {
-		// It has no stamp; the run's start is its first input's after it.
+		// It has no stamp; the run's start is its first input's after it,
+		// on the restarted controller's clock.
+		sw.started = false
 		return sw.next.input(s, p, resp)
 	}
 	if !sw.started {

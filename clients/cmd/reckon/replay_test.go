@@ -363,3 +363,71 @@ func TestReviewRefusesABadTruthFile(t *testing.T) {
 		t.Errorf("the good truth: exit %d\n%s", code, errs)
 	}
 }
+
+// TestReplayTimeSpanPerRun: -from and -to count from each run's own start
+// when replay writes every run: a controller restart begins a clock of
+// its own, here 100 s behind the first run's (which started at the
+// controller's uptime of 100 s). The second run's rows were measured from
+// the first run's start, so that -from 1 left every one of them out.
+func TestReplayTimeSpanPerRun(t *testing.T) {
+	var b strings.Builder
+	for i, path := range []string{rebootSamples1, rebootSamples2} {
+		f, err := os.Open(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		sr := convert.NewSampleReader(f)
+		for {
+			s, err := sr.Next()
+			if err != nil {
+				break
+			}
+			if i == 0 {
+				switch v := s.GetSample().(type) {
+				case *pb.Sample_Odometry:
+					v.Odometry.StampNs += 100e9
+				case *pb.Sample_Heading:
+					v.Heading.StampNs += 100e9
+				case *pb.Sample_Fix:
+					v.Fix.StampNs += 100e9
+				}
+			}
+			convert.WriteJSONLine(&b, s)
+		}
+		f.Close()
+		if i == 0 {
+			b.WriteString(`{"run_start":{"boot_id":"boot-2"}}` + "\n")
+		}
+	}
+	path := filepath.Join(t.TempDir(), "two-runs.jsonl")
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errs, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", path, "-from", "1", "-to", "2")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	rows, _ := csv.NewReader(strings.NewReader(out)).ReadAll()
+	// The rows' stamps are the poses' (the newest odometry), which follow
+	// the samples' by an odometry period (20 ms), a late fix's by its
+	// lateness (up to 200 ms in the simulator's camera); the run start's
+	// row, written whatever the span, has the new run's pose before its
+	// first odometry (stamp 0).
+	var one, two, starts int
+	for _, r := range rows[1:] {
+		switch ns, _ := strconv.ParseInt(r[0], 10, 64); {
+		case ns >= 101e9 && ns <= 102.25e9:
+			one++
+		case ns >= 1e9 && ns <= 2.25e9:
+			two++
+		case ns == 0 && starts == 0:
+			starts++
+		default:
+			t.Errorf("a row stamped %d ns, outside 1 to 2 s of either run", ns)
+		}
+	}
+	// Each second holds 50 odometry samples, 25 headings and some fixes.
+	if one < 75 || two < 75 {
+		t.Errorf("-from 1 -to 2: %d rows of run 1 and %d of run 2; want each run's second", one, two)
+	}
+}

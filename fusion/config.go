@@ -3,6 +3,7 @@ package fusion
 import (
 	"errors"
 	"fmt"
+	"math"
 
 	"gonum.org/v1/gonum/mat"
 
@@ -366,7 +367,8 @@ func (c *Config) checkNoise() error {
 // bounds a new robot is held to, naming the field: a client that creates a
 // robot must not be able to make the service allocate without bound
 // (trust.nis_window allocates its windows at creation; the others grow
-// with input). Each bound is far beyond its use. New and Validate do not
+// with input), and an angle beyond a full turn was written in degrees.
+// Each bound is far beyond its use. New and Validate do not
 // check them, so that a journal written before they existed restores as
 // it was; the service checks them where robots are created (CreateRobot,
 // configuration files).
@@ -384,6 +386,26 @@ func (c Config) CheckBounds() error {
 	} {
 		if n.v > n.most {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
+		}
+	}
+	// Angles within a full turn: one beyond it was written in degrees.
+	angle := func(name string, v float64) error {
+		if math.Abs(v) > 2*math.Pi {
+			return cfgErr(name, "%v is more than a full turn (2 pi rad): an angle in degrees? Angles are in radians", v)
+		}
+		return nil
+	}
+	if err := angle("start_pose.heading_rad", c.StartPose.Heading); err != nil {
+		return err
+	}
+	for i, w := range c.Wheels {
+		if err := angle(fmt.Sprintf("wheels[%d].direction_rad", i), w.DirectionRad); err != nil {
+			return err
+		}
+	}
+	for i, s := range c.Sensors {
+		if err := angle(fmt.Sprintf("sensors[%d].mount.heading_rad", i), s.Mount.Heading); err != nil {
+			return err
 		}
 	}
 	// Positions as samples' (maxFieldM).

@@ -70,6 +70,38 @@ func TestConfigUpperBounds(t *testing.T) {
 	}
 }
 
+// TestConfigAnglesInDegrees: an angle of a configuration beyond a full
+// turn (2 pi rad) is an angle in degrees, the units mistake a person
+// makes writing one by hand (direction_rad: 90 for a lateral wheel):
+// CheckBounds refuses it naming the field, where it was taken as 90 rad
+// (116.6 degrees after wrapping) and every lateral count went a wrong
+// way. New still takes it (a journal written before the bound may hold
+// one); a full turn is taken.
+func TestConfigAnglesInDegrees(t *testing.T) {
+	for _, c := range []struct {
+		field string
+		set   func(c *Config, v float64)
+	}{
+		{"wheels[2].direction_rad", func(c *Config, v float64) { c.Wheels[2].DirectionRad = v }},
+		{"start_pose.heading_rad", func(c *Config, v float64) { c.StartPose.Heading = -v }},
+		{"sensors[1].mount.heading_rad", func(c *Config, v float64) { c.Sensors[1].Mount.Heading = v }},
+	} {
+		cfg := threeWheels()
+		c.set(&cfg, 90)
+		if err := cfg.CheckBounds(); !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "degrees") {
+			t.Errorf("%s of 90: %v", c.field, err)
+		}
+		if _, err := New(cfg); err != nil {
+			t.Errorf("New refuses %s of 90, as an old journal may hold it: %v", c.field, err)
+		}
+		cfg = threeWheels()
+		c.set(&cfg, 2*math.Pi)
+		if err := cfg.CheckBounds(); err != nil {
+			t.Errorf("%s of 2 pi: %v", c.field, err)
+		}
+	}
+}
+
 // TestWindowEntryLimit: odometry stamped 1 us apart (a controller that
 // stamps in microseconds but says nanoseconds) keeps at most
 // maxWindowEntries in the window, not the second's million; a late fix

@@ -69,6 +69,29 @@ func TestJournalRoundTripAndRotation(t *testing.T) {
 	}
 }
 
+// TestJournalFirstSegmentMissing: a journal whose first segment is gone
+// (a half-copied directory) is a gap naming that segment, with or without
+// Visitor.Gap: only the first segment holds the opening record, so nothing
+// can be read past it. The scan said "an input before the opening record"
+// of the second segment.
+func TestJournalFirstSegmentMissing(t *testing.T) {
+	dir := t.TempDir()
+	writeJournal(t, dir, 500, Options{SegmentBytes: 4096})
+	segs, _ := Segments(dir, "cart")
+	if len(segs) < 3 {
+		t.Fatalf("%d segments, want rotation", len(segs))
+	}
+	if err := os.Remove(segs[0]); err != nil {
+		t.Fatal(err)
+	}
+	for _, v := range []Visitor{{}, {Gap: func(error) error { return nil }}} {
+		_, err := Read(dir, "cart", v)
+		if !errors.Is(err, ErrGap) || !strings.Contains(err.Error(), "segment 000000 missing") || !strings.Contains(err.Error(), segs[1]) {
+			t.Errorf("scan without the first segment (Gap set %v): %v", v.Gap != nil, err)
+		}
+	}
+}
+
 // TestJournalTornTail: a journal cut anywhere, or with its last record
 // corrupted, gives every complete input and output before the damage.
 func TestJournalTornTail(t *testing.T) {

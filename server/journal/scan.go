@@ -139,6 +139,11 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		}
 		return sc, fmt.Errorf("no journal for %s in %s", robot, dir)
 	}
+	if segs[0].n != 0 {
+		// Only the first holds the opening record: nothing after it can
+		// be read as this robot's.
+		return sc, fmt.Errorf("%w: segment 000000 missing: the first of %s in %s is %s, and only the first holds the opening record (the robot's configuration)", ErrGap, robot, dir, segs[0].path)
+	}
 	for i, s := range segs {
 		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {
 			if err := st.noteGap(fmt.Errorf("%w: %s: segment %06d missing before it", ErrGap, s.path, want)); err != nil {

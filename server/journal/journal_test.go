@@ -92,6 +92,24 @@ func TestJournalFirstSegmentMissing(t *testing.T) {
 	}
 }
 
+// TestJournalFirstSegmentEmpty: a first segment that holds no opening
+// record (empty, as a copy cut short leaves it, or not a journal at all)
+// is an error naming that segment; it said only "journal for cart has no
+// opening record".
+func TestJournalFirstSegmentEmpty(t *testing.T) {
+	for _, content := range [][]byte{nil, []byte("NOTAJOURNAL12345 and more bytes that are no frames")} {
+		dir := t.TempDir()
+		writeJournal(t, dir, 20, Options{})
+		if err := os.WriteFile(SegmentPath(dir, "cart", 0), content, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, err := Read(dir, "cart", Visitor{ReadOnly: true})
+		if err == nil || !strings.Contains(err.Error(), "no opening record") || !strings.Contains(err.Error(), SegmentPath(dir, "cart", 0)) {
+			t.Errorf("first segment of %d bytes: %v; want an error naming it", len(content), err)
+		}
+	}
+}
+
 // TestJournalTornTail: a journal cut anywhere, or with its last record
 // corrupted, gives every complete input and output before the damage.
 func TestJournalTornTail(t *testing.T) {

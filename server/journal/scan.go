@@ -161,7 +161,7 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		}
 	}
 	if sc.Opening == nil {
-		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record", robot), st.gap, st.firstDamage())
+		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record: its first segment %s holds none (empty, cut short or not a journal segment)", robot, segs[0].path), st.gap, st.firstDamage())
 	}
 	if err := st.fromSnapshot(); err != nil {
 		return sc, err

@@ -308,6 +308,16 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, o
 	name := server.RobotName("replay")
 	sr := convert.NewSampleReader(f)
 	n := 0
+	// The verdicts by kind (a held fix's final one once resolved) and, as
+	// feed names them, the first refusals with their file and line.
+	counts := map[pb.Verdict]int{}
+	held := map[uint64]int{} // sequence -> line
+	var reasons []string
+	reason := func(line int, v pb.Verdict, why string) {
+		if why != "" && len(reasons) < 10 {
+			reasons = append(reasons, fmt.Sprintf("%s:%d: %s: %s", path, line, convert.VerdictName(v), why))
+		}
+	}
 	for {
 		if err := ctx.Err(); err != nil {
 			return err
@@ -326,7 +336,23 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, o
 			return err
 		}
 		n++
+		counts[resp.GetVerdict()]++
+		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+			held[resp.GetSequence()] = sr.Line()
+		}
+		reason(sr.Line(), resp.GetVerdict(), resp.GetReason())
+		for _, r := range resp.GetResolved() {
+			if line, ok := held[r.GetSequence()]; ok {
+				delete(held, r.GetSequence())
+				counts[pb.Verdict_VERDICT_HELD]--
+				counts[r.GetVerdict()]++
+				reason(line, r.GetVerdict(), r.GetReason())
+			}
+		}
 	}
-	fmt.Fprintf(stderr, "replayed %d samples from %s\n", n, path)
+	fmt.Fprintf(stderr, "replayed %d samples from %s: %s\n", n, path, verdictLine(counts))
+	for _, r := range reasons {
+		fmt.Fprintln(stderr, "  "+r)
+	}
 	return nil
 }

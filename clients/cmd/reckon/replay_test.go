@@ -431,3 +431,28 @@ func TestReplayTimeSpanPerRun(t *testing.T) {
 		t.Errorf("-from 1 -to 2: %d rows of run 1 and %d of run 2; want each run's second", one, two)
 	}
 }
+
+// TestReplaySamplesNamesRefusals: replay of a samples file says, as feed
+// does, how many samples got which verdict and names the file and line of
+// each refused one with its reason; it said only "replayed N samples", the
+// line of a refused sample left to be worked out from the track's rows.
+func TestReplaySamplesNamesRefusals(t *testing.T) {
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.SplitAfter(string(b), "\n")
+	bad := `{"heading":{"stamp_ns":"3000000000","heading_rad":"NaN"}}` + "\n"
+	lines = append(lines[:400], append([]string{bad}, lines[400:]...)...)
+	path := filepath.Join(t.TempDir(), "nan.jsonl")
+	if err := os.WriteFile(path, []byte(strings.Join(lines, "")), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", path, "-out", filepath.Join(t.TempDir(), "track.csv"))
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if !strings.Contains(errs, path+":401: invalid: ") || !strings.Contains(errs, "heading_rad NaN") || !strings.Contains(errs, "invalid 1") {
+		t.Errorf("replay does not name the refused sample's line 401 and count it:\n%s", errs)
+	}
+}

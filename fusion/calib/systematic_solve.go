@@ -766,8 +766,10 @@ func (s *sysSolver) result(cfg *fusion.Config) (SystematicFit, error) {
 		if p.Kind == MountHeading {
 			p.Fitted = estimator.Wrap(p.Fitted)
 		}
-		p.ModelStdErr = math.Sqrt(stated.At(j, j))
-		p.StdErr = math.Max(p.ModelStdErr, math.Sqrt(robust.At(j, j)))
+		// A variance a rounding below zero (a sandwich of scores that are
+		// all but zero for an unexcited parameter) is zero, not a NaN.
+		p.ModelStdErr = math.Sqrt(math.Max(stated.At(j, j), 0))
+		p.StdErr = math.Max(p.ModelStdErr, math.Sqrt(math.Max(robust.At(j, j), 0)))
 		p.Determined = p.StdErr <= p.Bound
 		if p.Determined {
 			apply(&out.Config, &p, s.m.counts)

@@ -44,6 +44,9 @@ is then 1.`)
 	if len(pos) != 0 {
 		return usagef(fs, "takes no arguments")
 	}
+	if err := span.check(fs); err != nil {
+		return err
+	}
 	var w io.Writer = stdout
 	if *out != "" {
 		f, err := os.Create(*out)

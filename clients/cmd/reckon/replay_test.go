@@ -456,3 +456,21 @@ func TestReplaySamplesNamesRefusals(t *testing.T) {
 		t.Errorf("replay does not name the refused sample's line 401 and count it:\n%s", errs)
 	}
 }
+
+// TestTimeSpanToBeforeFrom: -to before -from is a usage error (exit 2) in
+// replay, review and compare; replay wrote nothing at all (not even the
+// CSV header) and review an empty report of "no problem found", both with
+// exit status 0.
+func TestTimeSpanToBeforeFrom(t *testing.T) {
+	out := t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-config", exampleConfig, "-samples", exampleSamples, "-from", "5", "-to", "2"},
+		{"review", "-config", exampleConfig, "-samples", exampleSamples, "-from", "5", "-to", "2", "-out", filepath.Join(out, "review")},
+		{"compare", "-config", exampleConfig, "-samples", exampleSamples, "-b", exampleConfig, "-from", "5s", "-to", "2000000000ns", "-out", filepath.Join(out, "compare")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitUsage || !strings.Contains(errs, "-to 2s is before -from 5s") {
+			t.Errorf("%s -from 5 -to 2: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+	}
+}

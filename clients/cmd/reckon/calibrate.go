@@ -107,6 +107,7 @@ into one HTML report with a calibration section at the top.`)
 		}
 	}
 	odo, imu, fixes := splitInputs(inputs)
+	fmt.Fprint(stdout, rec.tornNote())
 	fmt.Fprintf(stdout, "%s%s: %d odometry samples, %d IMU headings, %d fixes\n", src, rec.note(), len(odo), len(imu), len(fixes))
 
 	wiring, sensors := calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)

@@ -127,6 +127,7 @@ calibration section at the top.`)
 		return err
 	}
 	inputs := rec.inputs
+	fmt.Fprint(stdout, rec.tornNote())
 	var truthPoses []calib.StampedPose
 	if *truth != "" {
 		if truthPoses, err = readTruthCSV(*truth); err != nil {
@@ -185,6 +186,17 @@ type recording struct {
 	skipped int
 	run     uint64
 	runs    uint64
+	// torn says where a journal was cut short (the inputs before it are
+	// read), or is empty.
+	torn string
+}
+
+// tornNote is a line that says the journal was cut short, or nothing.
+func (rec *recording) tornNote() string {
+	if rec.torn == "" {
+		return ""
+	}
+	return "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
 }
 
 // note says which run of several the recording's inputs are, or nothing
@@ -203,6 +215,7 @@ func (rec *recording) note() string {
 func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64) (*recording, error) {
 	want = max(want, 1)
 	var inputs []calib.RecordedInput
+	var torn string
 	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
 		if s.GetRunStart() != nil {
@@ -236,7 +249,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if n, err := server.RobotID(robot); err == nil {
 			id = n
 		}
-		_, _, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
+		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
 			}
@@ -247,6 +260,9 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		}})
 		if err != nil {
 			return nil, err
+		}
+		if scan.Torn != nil {
+			torn = fmt.Sprintf("%v in %s", scan.Torn, filepath.Base(scan.TornSegment))
 		}
 	} else {
 		f, err := os.Open(path)
@@ -277,7 +293,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	if len(inputs) == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
 	}
-	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run}, nil
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

@@ -12,6 +12,7 @@ import (
 
 	"reckon.example/fusion/fusiontest"
 	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // writeRun writes a simulated run of the greenhouse cart (free wheels with
@@ -233,5 +234,27 @@ func TestTuneAndCalibrateTakeOneRun(t *testing.T) {
 	}
 	if _, errs, code := runCode(t, ctx, "", "tune", "-config", exampleConfig, "-samples", both, "-out", filepath.Join(dir, "new.yaml"), "-force", "-run", "3"); code != exitRefused || !strings.Contains(errs, "runs 1 to 2") {
 		t.Errorf("tune -run 3 of 2 runs: exit %d, stderr %q", code, errs)
+	}
+}
+
+// TestTuneAndCalibrateSayATornJournal: a journal cut short (a crash, or a
+// copy of it taken half way) is tuned and calibrated on the inputs before
+// the cut, and both say so, as replay and review do; they said nothing,
+// the fit quietly on part of the run.
+func TestTuneAndCalibrateSayATornJournal(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	seg := journal.SegmentPath(dir, "cart", 0)
+	st, err := os.Stat(seg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Truncate(seg, st.Size()*2/3); err != nil {
+		t.Fatal(err)
+	}
+	for _, cmd := range []string{"tune", "calibrate"} {
+		out, errs, _ := runCode(t, context.Background(), "", cmd, "-journal", dir, "-robot", "cart", "-out", filepath.Join(t.TempDir(), "new.yaml"))
+		if !strings.Contains(out, "the journal is truncated") {
+			t.Errorf("%s of a torn journal does not say so:\n%s%s", cmd, out, errs)
+		}
 	}
 }

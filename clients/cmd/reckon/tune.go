@@ -297,7 +297,9 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,
-// heading_rad; a header and short rows skipped), sorted by stamp.
+// heading_rad; a header only as the first record), sorted by stamp. A row
+// that is not an integer stamp and three finite numbers is an error
+// naming its line.
 func readTruthCSV(path string) ([]calib.StampedPose, error) {
 	f, err := os.Open(path)
 	if err != nil {
@@ -307,7 +309,7 @@ func readTruthCSV(path string) ([]calib.StampedPose, error) {
 	r := csv.NewReader(bufio.NewReader(f))
 	r.FieldsPerRecord = -1
 	var out []calib.StampedPose
-	for line := 1; ; line++ {
+	for n := 1; ; n++ {
 		rec, err := r.Read()
 		if errors.Is(err, io.EOF) {
 			break
@@ -315,12 +317,19 @@ func readTruthCSV(path string) ([]calib.StampedPose, error) {
 		if err != nil {
 			return nil, fmt.Errorf("%s: %w: %w", path, errRefused, err)
 		}
-		if len(rec) < 4 {
-			continue
+		line, _ := r.FieldPos(0)
+		if n == 1 {
+			rec[0] = strings.TrimPrefix(rec[0], "\ufeff")
 		}
 		stamp, err := strconv.ParseInt(rec[0], 10, 64)
-		if err != nil {
+		if err != nil && n == 1 {
 			continue // the header
+		}
+		if err != nil {
+			return nil, fmt.Errorf("%s:%d: %w: stamp_ns %q is not an integer (nanoseconds)", path, line, errRefused, rec[0])
+		}
+		if len(rec) < 4 {
+			return nil, fmt.Errorf("%s:%d: %w: %d fields, want stamp_ns,x_m,y_m,heading_rad", path, line, errRefused, len(rec))
 		}
 		var v [3]float64
 		for i := range v {

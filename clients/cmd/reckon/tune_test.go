@@ -258,3 +258,37 @@ func TestTuneAndCalibrateSayATornJournal(t *testing.T) {
 		}
 	}
 }
+
+// TestReadTruthCSV: the truth file of tune and calibrate is read as review
+// reads it: a header only first (a byte order mark before it skipped),
+// then rows of an integer stamp and three finite numbers, a row that is
+// not one an error naming its line (input refused). Short rows and a
+// stamp that is no integer after the first line were skipped as headers
+// without a word: a file with its heading column missing, or a row cut
+// short, lost rows silently.
+func TestReadTruthCSV(t *testing.T) {
+	dir := t.TempDir()
+	for _, c := range []struct {
+		name, text, want string
+		rows             int
+	}{
+		{"good", "\ufeffstamp_ns,x_m,y_m,heading_rad\n20,1,2,0.5\n10,0,0,0\n", "", 2},
+		{"no header", "10,0,0,0\n20,1,2,0.5\n", "", 2},
+		{"short row", "stamp_ns,x_m,y_m,heading_rad\n10,0,0,0\n20,1,2\n30,1,2,3\n", ":3: refused: 3 fields", 0},
+		{"stamp in seconds", "stamp_ns,x_m,y_m,heading_rad\n0.01,0,0,0\n", `:2: refused: stamp_ns "0.01" is not an integer`, 0},
+		{"NaN", "stamp_ns,x_m,y_m,heading_rad\n10,0,NaN,0\n", ":2: refused: column 3 is not a finite number", 0},
+		{"header only", "stamp_ns,x_m,y_m,heading_rad\n", "no truth rows", 0},
+	} {
+		path := filepath.Join(dir, "truth.csv")
+		if err := os.WriteFile(path, []byte(c.text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		rows, err := readTruthCSV(path)
+		switch {
+		case c.want == "" && (err != nil || len(rows) != c.rows || rows[0].StampNs != 10):
+			t.Errorf("%s: %d rows, %v; want %d sorted", c.name, len(rows), err, c.rows)
+		case c.want != "" && (err == nil || !strings.Contains(err.Error(), path) || !strings.Contains(err.Error(), c.want) || exitCode(err) != exitRefused):
+			t.Errorf("%s: %v (exit %d); want %q, exit %d", c.name, err, exitCode(err), c.want, exitRefused)
+		}
+	}
+}

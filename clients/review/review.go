@@ -256,6 +256,9 @@ func (t *truthReader) record() ([][]byte, bool) {
 			break
 		}
 		if err != nil && len(line) == 0 {
+			if !errors.Is(err, io.EOF) {
+				t.err = err // a directory, say
+			}
 			return nil, false
 		}
 		t.lines++

@@ -349,9 +349,12 @@ func TestReviewRefusesABadTruthFile(t *testing.T) {
 			return f
 		}), "line 60: stamp_ns 1 is not after"},
 		{"header only", lines[0] + "\n", "no rows"},
+		{"a directory", "", "is a directory"},
 	} {
 		bad := filepath.Join(dir, "bad.csv")
-		if err := os.WriteFile(bad, []byte(c.text), 0o644); err != nil {
+		if c.name == "a directory" {
+			bad = t.TempDir()
+		} else if err := os.WriteFile(bad, []byte(c.text), 0o644); err != nil {
 			t.Fatal(err)
 		}
 		_, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", samples, "-truth", bad, "-out", filepath.Join(dir, "review"))

@@ -833,12 +833,17 @@ func (rc *recorder) replaySamples(src Source) (*fusion.Robot, error) {
 	}
 	defer f.Close()
 	sr := convert.NewSampleReader(f)
-	for {
+	for n := 0; ; n++ {
 		s, err := sr.Next()
-		if errors.Is(err, io.EOF) {
+		switch {
+		case errors.Is(err, io.EOF) && n == 0:
+			return nil, fmt.Errorf("%s: %w: no samples", src.Samples, convert.ErrJSONL)
+		case errors.Is(err, io.EOF):
 			return fr, nil
-		}
-		if err != nil {
+		case err != nil && n == 0:
+			// Nothing to review: not a samples file, or not yet one.
+			return nil, fmt.Errorf("%s: %w", src.Samples, err)
+		case err != nil:
 			rc.run.Summary.Truncated = fmt.Sprintf("the samples file stops being readable: %v; this report covers the %d samples before it", err, rc.run.Summary.Inputs)
 			return fr, nil
 		}

@@ -477,3 +477,40 @@ func TestTimeSpanToBeforeFrom(t *testing.T) {
 		}
 	}
 }
+
+// TestReviewOfUnreadableSamples: a samples file with no sample that can
+// be read (not JSON Lines at all, or empty) is refused naming the file
+// and line, exit 5, as replay refuses it; review wrote a report of 0
+// inputs ("no problem found") and exited 0. A file that stops being
+// readable after some samples (its last line cut) is still reviewed up
+// to there, the report saying so.
+func TestReviewOfUnreadableSamples(t *testing.T) {
+	dir := t.TempDir()
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct {
+		name string
+		text []byte
+		code int
+		want string
+	}{
+		{"binary", []byte("\x00\x01\x02 not json\n{}\n"), exitRefused, "line 1: "},
+		{"empty", nil, exitRefused, "no samples"},
+		{"comments only", []byte("# a header\n\n"), exitRefused, "no samples"},
+		{"last line cut", b[:len(b)-20], exitOK, ""},
+	} {
+		path := filepath.Join(dir, "samples.jsonl")
+		if err := os.WriteFile(path, c.text, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		out, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", path, "-out", filepath.Join(dir, "review"))
+		switch {
+		case c.code == exitOK && (code != exitOK || !strings.Contains(out, "stops being readable")):
+			t.Errorf("%s: exit %d; the report should say where the file stops being readable:\n%s%s", c.name, code, out, errs)
+		case c.code != exitOK && (code != c.code || !strings.Contains(errs, path) || !strings.Contains(errs, c.want)):
+			t.Errorf("%s: exit %d, want %d; stderr %q lacks the file and %q", c.name, code, c.code, errs, c.want)
+		}
+	}
+}

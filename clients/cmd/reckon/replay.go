@@ -353,6 +353,9 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, o
 			}
 		}
 	}
+	if n == 0 {
+		return fmt.Errorf("%s: %w: no samples", path, convert.ErrJSONL)
+	}
 	fmt.Fprintf(stderr, "replayed %d samples from %s: %s\n", n, path, verdictLine(counts))
 	for _, r := range reasons {
 		fmt.Fprintln(stderr, "  "+r)

@@ -514,3 +514,19 @@ func TestReviewOfUnreadableSamples(t *testing.T) {
 		}
 	}
 }
+
+// TestReplayOfNoSamples: a samples file without a sample (empty, or
+// comments only) is refused, exit 5, as review refuses it; replay wrote
+// an empty output, not even the CSV header, and exited 0.
+func TestReplayOfNoSamples(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "samples.jsonl")
+	for _, text := range []string{"", "# a header\n\n"} {
+		if err := os.WriteFile(path, []byte(text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, errs, code := runCode(t, context.Background(), "", "replay", "-config", exampleConfig, "-samples", path)
+		if code != exitRefused || !strings.Contains(errs, path) || !strings.Contains(errs, "no samples") {
+			t.Errorf("%q: exit %d, want %d\n%s", text, code, exitRefused, errs)
+		}
+	}
+}

@@ -48,13 +48,10 @@ is then 1.`)
 		return err
 	}
 	var w io.Writer = stdout
+	var lf *lazyFile
 	if *out != "" {
-		f, err := os.Create(*out)
-		if err != nil {
-			return err
-		}
-		defer f.Close()
-		w = f
+		lf = &lazyFile{path: *out}
+		w = lf
 	}
 	var ow outputWriter
 	if *format == "samples" {
@@ -88,7 +85,45 @@ is then 1.`)
 	if err == nil && rf.want > rf.last {
 		err = fmt.Errorf("run %d asked for; the recording holds runs 1 to %d", rf.want, rf.last)
 	}
+	if lf != nil {
+		if cerr := lf.close(err == nil); err == nil {
+			err = cerr
+		}
+	}
 	return err
+}
+
+// lazyFile creates the file at path at the first write, so that a replay
+// that fails before it has anything to write leaves an existing file as it
+// was.
+type lazyFile struct {
+	path string
+	f    *os.File
+}
+
+func (l *lazyFile) Write(b []byte) (int, error) {
+	if l.f == nil {
+		f, err := os.Create(l.path)
+		if err != nil {
+			return 0, err
+		}
+		l.f = f
+	}
+	return l.f.Write(b)
+}
+
+// close closes the file; done creates it if nothing was written, so that
+// a replay that succeeds without a row leaves no older file in its place.
+func (l *lazyFile) close(done bool) error {
+	if l.f == nil && done {
+		if _, err := l.Write(nil); err != nil {
+			return err
+		}
+	}
+	if l.f == nil {
+		return nil
+	}
+	return l.f.Close()
 }
 
 // runFilter passes on the inputs of one run (want; 0: every run), and the

@@ -530,3 +530,49 @@ func TestReplayOfNoSamples(t *testing.T) {
 		}
 	}
 }
+
+// TestReplayFailureKeepsTheOutput: a replay that fails before it has a row
+// to write (a samples file or journal that is missing or unreadable, a bad
+// configuration) leaves -out as it was: it created (truncated) -out first,
+// so that a typo in the samples path emptied the track written before.
+func TestReplayFailureKeepsTheOutput(t *testing.T) {
+	dir := t.TempDir()
+	out := filepath.Join(dir, "track.csv")
+	const before = "stamp_ns,sequence\n1,1\n"
+	bad := filepath.Join(dir, "bad.yaml")
+	if err := os.WriteFile(bad, []byte("gate_probability: 99\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for _, args := range [][]string{
+		{"-config", exampleConfig, "-samples", filepath.Join(dir, "missing.jsonl")},
+		{"-config", exampleConfig, "-samples", dir},
+		{"-config", bad, "-samples", exampleSamples},
+		{"-journal", dir, "-robot", "cart"},
+	} {
+		if err := os.WriteFile(out, []byte(before), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, errs, err := runCmd(t, append([]string{"replay", "-out", out}, args...)...)
+		if err == nil {
+			t.Errorf("%v: replay succeeded", args)
+		}
+		if b, _ := os.ReadFile(out); string(b) != before {
+			t.Errorf("%v: the failed replay (%v) changed -out to %q\n%s", args, err, b, errs)
+		}
+	}
+	// A replay that succeeds without a row (a stretch past the run's end)
+	// leaves an empty file, not the older one.
+	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples, "-from", "100"); err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if b, err := os.ReadFile(out); err != nil || len(b) != 0 {
+		t.Errorf("a replay of no rows left %q (%v)", b, err)
+	}
+	// A replay that succeeds writes it.
+	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples); err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if b, _ := os.ReadFile(out); !strings.HasPrefix(string(b), "stamp_ns,sequence,x_m") {
+		t.Errorf("the replay wrote %.100q", b)
+	}
+}

@@ -63,8 +63,9 @@ var ErrNoRuns = errors.New("no journal to export")
 
 // Export replays the journals in dir and writes the four tables into out,
 // which it creates if needed; it returns the rows of runs.parquet. A
-// journal that cannot be read, or ctx ending, stops the export and the
-// files are removed.
+// journal that cannot be read, or ctx ending, stops the export and its
+// files are removed; the tables of an earlier export in out are replaced
+// only by a whole export.
 func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error) {
 	runs, err := Runs(dir, opt.Deleted)
 	if err != nil {

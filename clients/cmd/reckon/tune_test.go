@@ -292,3 +292,31 @@ func TestReadTruthCSV(t *testing.T) {
 		}
 	}
 }
+
+// TestTuneWithoutOdometry: a recording of IMU headings alone (the
+// odometry left out of the file) has no innovations, since nothing is
+// applied without odometry; tune says that, exit 5. It said the run had
+// "no IMU headings and no fixes", of a file of thousands of headings.
+func TestTuneWithoutOdometry(t *testing.T) {
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var headings []string
+	for _, l := range strings.Split(string(b), "\n") {
+		if strings.HasPrefix(l, `{"heading"`) {
+			headings = append(headings, l)
+		}
+	}
+	if len(headings) < 100 {
+		t.Fatalf("%d headings in the example", len(headings))
+	}
+	path := filepath.Join(t.TempDir(), "headings.jsonl")
+	if err := os.WriteFile(path, []byte(strings.Join(headings, "\n")+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, code := runCode(t, context.Background(), "", "tune", "-config", exampleConfig, "-samples", path, "-out", filepath.Join(t.TempDir(), "new.yaml"))
+	if code != exitRefused || !strings.Contains(errs, "no IMU heading or fix was applied") {
+		t.Errorf("tune of headings alone: exit %d, want %d\n%s", code, exitRefused, errs)
+	}
+}

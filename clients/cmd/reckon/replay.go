@@ -102,21 +102,29 @@ type lazyFile struct {
 }
 
 func (l *lazyFile) Write(b []byte) (int, error) {
-	if l.f == nil {
-		f, err := os.Create(l.path)
-		if err != nil {
-			return 0, err
-		}
-		l.f = f
+	if len(b) == 0 && l.f == nil {
+		return 0, nil
+	}
+	if err := l.create(); err != nil {
+		return 0, err
 	}
 	return l.f.Write(b)
+}
+
+func (l *lazyFile) create() error {
+	if l.f != nil {
+		return nil
+	}
+	f, err := os.Create(l.path)
+	l.f = f
+	return err
 }
 
 // close closes the file; done creates it if nothing was written, so that
 // a replay that succeeds without a row leaves no older file in its place.
 func (l *lazyFile) close(done bool) error {
-	if l.f == nil && done {
-		if _, err := l.Write(nil); err != nil {
+	if done {
+		if err := l.create(); err != nil {
 			return err
 		}
 	}

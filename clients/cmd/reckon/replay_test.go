@@ -548,6 +548,7 @@ func TestReplayFailureKeepsTheOutput(t *testing.T) {
 		{"-config", exampleConfig, "-samples", dir},
 		{"-config", bad, "-samples", exampleSamples},
 		{"-journal", dir, "-robot", "cart"},
+		{"-config", exampleConfig, "-samples", exampleSamples, "-run", "2"},
 	} {
 		if err := os.WriteFile(out, []byte(before), 0o644); err != nil {
 			t.Fatal(err)

@@ -47,6 +47,11 @@ is then 1.`)
 	if err := span.check(fs); err != nil {
 		return err
 	}
+	for _, in := range []string{*samples, *config} {
+		if *out != "" && in != "" && samePath(in, *out) {
+			return usagef(fs, "-out is the input %s; it is never overwritten", in)
+		}
+	}
 	var w io.Writer = stdout
 	var lf *lazyFile
 	if *out != "" {

@@ -577,3 +577,35 @@ func TestReplayFailureKeepsTheOutput(t *testing.T) {
 		t.Errorf("the replay wrote %.100q", b)
 	}
 }
+
+// TestReplayNeverOverwritesItsInput: -out naming the samples file or the
+// configuration is a usage error (exit 2) and the file stays as it was:
+// replay -format samples -out of the file it read emptied it (0 samples
+// replayed, exit 0), the recording lost.
+func TestReplayNeverOverwritesItsInput(t *testing.T) {
+	dir := t.TempDir()
+	samples, config := filepath.Join(dir, "run.jsonl"), filepath.Join(dir, "robot.yaml")
+	for src, dst := range map[string]string{exampleSamples: samples, exampleConfig: config} {
+		b, err := os.ReadFile(src)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(dst, b, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	want, _ := os.ReadFile(samples)
+	wantCfg, _ := os.ReadFile(config)
+	for _, out := range []string{samples, filepath.Join(dir, ".", "run.jsonl"), config} {
+		_, errs, code := runCode(t, context.Background(), "", "replay", "-config", config, "-samples", samples, "-format", "samples", "-out", out)
+		if code != exitUsage || !strings.Contains(errs, "never overwritten") {
+			t.Errorf("-out %s: exit %d, want %d\n%s", out, code, exitUsage, errs)
+		}
+	}
+	if b, _ := os.ReadFile(samples); string(b) != string(want) {
+		t.Errorf("the samples file was changed: %d bytes, were %d", len(b), len(want))
+	}
+	if b, _ := os.ReadFile(config); string(b) != string(wantCfg) {
+		t.Errorf("the configuration was changed")
+	}
+}

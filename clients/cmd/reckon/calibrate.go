@@ -64,6 +64,8 @@ into one HTML report with a calibration section at the top.`)
 		return usagef(fs, "needs -out NEW.yaml")
 	case *config != "" && samePath(*config, *out):
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
+	case *samples != "" && samePath(*samples, *out):
+		return usagef(fs, "-out is the recording %s; it is never overwritten", *samples)
 	}
 	if !*force {
 		if _, err := os.Stat(*out); err == nil {

@@ -109,6 +109,9 @@ calibration section at the top.`)
 	if *config != "" && samePath(*config, *out) {
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
 	}
+	if *samples != "" && samePath(*samples, *out) {
+		return usagef(fs, "-out is the recording %s; it is never overwritten", *samples)
+	}
 	if !*force {
 		if _, err := os.Stat(*out); err == nil {
 			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)

@@ -320,3 +320,32 @@ func TestTuneWithoutOdometry(t *testing.T) {
 		t.Errorf("tune of headings alone: exit %d, want %d\n%s", code, exitRefused, errs)
 	}
 }
+
+// TestNewConfigNeverOverwritesTheRecording: imu-noise, tune and calibrate
+// refuse an -out that names the recording they read (exit 2), -force or
+// not, and leave it as it was: with -force they wrote the new YAML
+// configuration over the recording.
+func TestNewConfigNeverOverwritesTheRecording(t *testing.T) {
+	dir := t.TempDir()
+	samples := filepath.Join(dir, "run.jsonl")
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(samples, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for _, args := range [][]string{
+		{"imu-noise", samples, "-config", exampleConfig, "-out", samples, "-force"},
+		{"tune", "-config", exampleConfig, "-samples", samples, "-out", samples, "-force"},
+		{"calibrate", "-config", exampleConfig, "-samples", samples, "-out", samples, "-force"},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitUsage || !strings.Contains(errs, "never overwritten") {
+			t.Errorf("%s -out the recording: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+		if got, _ := os.ReadFile(samples); string(got) != string(b) {
+			t.Fatalf("%s -out the recording -force overwrote it: %.100q", args[0], got)
+		}
+	}
+}

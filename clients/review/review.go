@@ -288,6 +288,12 @@ func (t *truthReader) record() ([][]byte, bool) {
 		return nil, false
 	}
 	if err != nil {
+		var pe *csv.ParseError
+		if errors.As(err, &pe) {
+			// Its lines count from the line handed to encoding/csv.
+			pe.StartLine += t.csvBase
+			pe.Line += t.csvBase
+		}
 		t.err = err
 		return nil, false
 	}

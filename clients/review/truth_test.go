@@ -115,7 +115,7 @@ func TestTruthReaderSplitsAsCSV(t *testing.T) {
 		"",
 	} {
 		var want []truthRow
-		wantLine := 0
+		wantLine, wantErr := 0, ""
 		r := csv.NewReader(strings.NewReader(text))
 		r.FieldsPerRecord = -1
 		for n := 1; ; n++ {
@@ -125,7 +125,8 @@ func TestTruthReaderSplitsAsCSV(t *testing.T) {
 			}
 			line, _ := r.FieldPos(0)
 			if err != nil {
-				wantLine = -1 // encoding/csv's own error
+				wantLine = -1 // encoding/csv's own error, its line as the file's
+				wantErr = err.Error()
 				break
 			}
 			stamp, err := strconv.ParseInt(rec[0], 10, 64)
@@ -160,6 +161,8 @@ func TestTruthReaderSplitsAsCSV(t *testing.T) {
 			t.Errorf("%q: error %v, want one at line %d", text[:min(len(text), 60)], tr.err, wantLine)
 		case wantLine > 0 && !strings.HasPrefix(tr.err.Error(), fmt.Sprintf("line %d: ", wantLine)):
 			t.Errorf("%q: error %v, want it at line %d", text[:min(len(text), 60)], tr.err, wantLine)
+		case wantLine < 0 && tr.err.Error() != wantErr:
+			t.Errorf("%q: error %v, want encoding/csv's %v", text[:min(len(text), 60)], tr.err, wantErr)
 		}
 	}
 }

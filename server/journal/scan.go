@@ -122,8 +122,15 @@ func Read(dir, robot string, v Visitor) (Scan, error) { return ReadFS(nil, dir, 
 // keeping aside every damaged range. The torn
 // tail of the last segment (Scan.Torn) is not an error: it was never
 // acknowledged. An error from v stops the scan and is returned.
+//
+// A robot named as a set-aside journal, "{robot}.deleted-{unix ns}" (Aside),
+// is read from the files SetAside renamed, read only.
 func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 	var sc Scan
+	name := robot
+	if id, suffix, ok := Aside(robot); ok {
+		fsys, robot = AsideFS(fsys, suffix), id
+	}
 	st := &scanState{fs: orOS(fsys), sc: &sc, v: v}
 	segs, err := listSegments(st.fs, dir, robot)
 	if err != nil {
@@ -137,7 +144,7 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		if manifest {
 			return sc, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, newest)
 		}
-		return sc, fmt.Errorf("no journal for %s in %s", robot, dir)
+		return sc, fmt.Errorf("no journal for %s in %s", name, dir)
 	}
 	for i, s := range segs {
 		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {

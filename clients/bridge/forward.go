@@ -56,7 +56,11 @@ type forwardOptions struct {
 // no stream is open (a live link does not keep them: cumulative counts
 // lose nothing by a missing sample), and opens the session again with
 // reopen at the next frame, waiting 0.1 s after a failed attempt and
-// twice as long after each further one, up to 5 s.
+// twice as long after each further one, up to 5 s. A run start (the
+// controller restarted) decoded while no stream is open, or not answered
+// before the stream ended, is not dropped: it is sent on the stream opened
+// again before the next sample (with its own client sequence if it was
+// sent before, so that it is not taken twice).
 func Reconnect(reopen Reopen, log io.Writer) ForwardOption {
 	return func(o *forwardOptions) { o.reopen, o.log = reopen, log }
 }
@@ -83,7 +87,13 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	// The session a reopened stream continues, and the client sequence of
 	// the last sample sent on it.
 	id, lastSeq := sess.ID(), sess.Last()
-	var mu sync.Mutex // protects sum.Verdicts and sum.Reasons
+	var mu sync.Mutex // protects sum.Verdicts, sum.Reasons and run
+	// run is the last run start decoded until the service answers it: one
+	// lost with a stream (decoded while none was open, or sent on one
+	// that ended before its verdict came) is sent again before the next
+	// sample, or the new boot's odometry would be refused as time going
+	// backwards for as long as the link runs.
+	var run pendingRun
 	// listen receives s's verdicts until its stream ends, and then sends
 	// the stream's error (nil at its normal end) on the channel it returns.
 	listen := func(s *client.Session) chan error {
@@ -103,6 +113,7 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 				}
 				mu.Lock()
 				tally(&sum, resp)
+				run.answered(resp)
 				mu.Unlock()
 			}
 		}()
@@ -136,6 +147,9 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 			return false
 		}
 		sess, ended = s, listen(s)
+		mu.Lock()
+		run.sent = false
+		mu.Unlock()
 		sum.Reconnects++
 		fmt.Fprintf(o.log, "the stream is open again (session %s); %d samples dropped while it was not\n", id, sum.Dropped)
 		return true
@@ -150,21 +164,37 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		n, err := src.Read(buf)
 		samples = dec.Decode(samples[:0], buf[:n])
 		for _, s := range samples {
+			isRun := s.GetRunStart() != nil
+			if isRun {
+				mu.Lock()
+				run = pendingRun{sample: s}
+				mu.Unlock()
+			}
 			if !connected() {
-				sum.Dropped++
+				if !isRun {
+					sum.Dropped++
+				}
 				continue
 			}
-			if _, err := sess.Send(s); err != nil {
+			err := sendRun(&mu, &run, sess, &sum)
+			if err == nil && !isRun {
+				_, err = sess.Send(s)
+			}
+			if err != nil {
 				if o.reopen == nil {
 					readErr = fmt.Errorf("send: %w", err)
 					break
 				}
 				// The stream ended; its listener says why.
-				sum.Dropped++
+				if !isRun {
+					sum.Dropped++
+				}
 				continue
 			}
 			lastSeq = sess.Last()
-			sum.Sent++
+			if !isRun {
+				sum.Sent++
+			}
 		}
 		switch {
 		case err == nil:
@@ -193,6 +223,64 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		return sum, readErr
 	}
 	return sum, err
+}
+
+// pendingRun is a run start that the service has not yet answered.
+type pendingRun struct {
+	sample *pb.Sample // nil: none
+	seq    uint64     // its client sequence once sent, 0 before
+	sent   bool       // sent on the stream now open
+	done   bool       // answered (taken, or refused for good)
+}
+
+// answered notes resp if it answers the run start: a verdict other than
+// not taken (client.NotTaken: the robot paused) settles it.
+func (r *pendingRun) answered(resp *pb.IngestResponse) {
+	if r.sample == nil || r.seq == 0 || resp.GetClientSequence() != r.seq || client.OnlyResolutions(resp) {
+		return
+	}
+	if client.NotTaken(resp) {
+		r.sent = false
+		return
+	}
+	r.done = true
+}
+
+// sendRun sends the pending run start on sess if it is not settled and
+// not yet sent on this stream: with its own client sequence again if it
+// had one (a run start the service took is answered, not taken twice),
+// otherwise as a new sample, counted in sum.Sent. Only Forward's sending
+// goroutine calls it; mu guards r against the listener.
+func sendRun(mu *sync.Mutex, r *pendingRun, sess *client.Session, sum *Summary) error {
+	mu.Lock()
+	if r.sample == nil || r.done || r.sent {
+		mu.Unlock()
+		return nil
+	}
+	again := r.seq != 0
+	if !again {
+		r.seq = sess.Last() + 1 // what Send gives it: no other goroutine sends
+	}
+	r.sent = true
+	seq, sample := r.seq, r.sample
+	mu.Unlock()
+	var err error
+	if again {
+		err = sess.SendAs(seq, sample)
+	} else {
+		_, err = sess.Send(sample)
+	}
+	mu.Lock()
+	defer mu.Unlock()
+	switch {
+	case err != nil && !again:
+		r.seq, r.sent = 0, false // never sent: its number is the next sample's
+	case err != nil:
+		r.sent = false
+	case !again:
+		sum.Sent++
+	}
+	return err
 }
 
 // tally counts one response's verdict and resolutions into sum.

@@ -21,7 +21,7 @@ type Stats struct {
 	// Invalid is the number of frames with a good CRC that this decoder
 	// does not take: unknown type or flags, a stamp past MaxStampUs or a
 	// heading that is not finite, or, within one boot, a wheel count that
-	// differs from the earlier frames' or a stamp behind the last taken
+	// differs from the earlier frames' or a stamp not after the last taken
 	// frame's although its counter is ahead.
 	Invalid uint64
 	// Duplicates is the number of frames dropped because a frame with the
@@ -121,8 +121,9 @@ const staleBootLimit = 16
 // # Invariants
 //
 // The samples it produces within one boot have strictly increasing frame
-// counters and non-decreasing stamps, so the service never sees time go
-// backwards because of the link. A frame is taken when its counter is
+// counters and strictly increasing stamps, so the service never sees time
+// go backwards because of the link (it refuses odometry stamped at or
+// before its newest). A frame is taken when its counter is
 // ahead of the last taken one's in serial number arithmetic (RFC 1982):
 // (Counter - last) as a signed 32-bit integer is positive.
 //
@@ -197,7 +198,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 	case ahead < 0:
 		s.stats.Reordered++
 		return nil
-	case len(f.Counts) != len(s.counts) || f.StampUs < s.stampUs:
+	case len(f.Counts) != len(s.counts) || f.StampUs <= s.stampUs:
 		s.stats.Invalid++
 		return nil
 	}

@@ -80,6 +80,11 @@ func TestSequencer(t *testing.T) {
 			[]sampleOf{{late * 1000, []int64{0}, -100}, {(late + 1000) * 1000, []int64{1}, -100}}, Stats{Samples: 2}},
 		{"stamp behind with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 4000, 1), wheels(0, 3, 6000, 2)},
 			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+		// The service refuses odometry not after the newest (time_backwards):
+		// a frame read within the same microsecond is the link's to drop,
+		// its counts carried by the next frame.
+		{"same stamp with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 5000, 1), wheels(0, 3, 6000, 2)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
 		{"frame counter wraps", []Frame{wheels(0, 1<<32-1, 10, 0), wheels(0, 0, 20, 1), wheels(0, 1<<32-1, 10, 0)},
 			[]sampleOf{{10_000, []int64{0}, -100}, {20_000, []int64{1}, -100}}, Stats{Samples: 2, Reordered: 1}},
 		{"int32 counts unwrap", []Frame{wheels(0, 1, 10, 2147483000, -2147483000), wheels(0, 2, 20, -2147483000, 2147483000)},

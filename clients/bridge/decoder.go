@@ -52,13 +52,38 @@ type Splitter struct {
 	frames    uint64
 	corrupted uint64
 	invalid   uint64
+	drops     []Drop // those of the last AppendFrames call, at most maxDrops
+	base, n   int    // len(dst) when AppendFrames was called, and now
+}
+
+// Drop is a frame dropped as corrupted or invalid, and why.
+type Drop struct {
+	// Err is a *FrameError naming the field that was wrong.
+	Err *FrameError
+	at  int // the Splitter's: how many frames of its call came before it
+}
+
+// maxDrops bounds the drops a Decoder keeps until Drops takes them; the
+// ones past it are only counted in Stats.
+const maxDrops = 64
+
+func (s *Splitter) drop(err error) {
+	var fe *FrameError
+	if !errors.As(err, &fe) {
+		fe = &FrameError{Kind: ErrCorrupt, Field: "stuffing", Detail: err.Error()}
+	}
+	if len(s.drops) < maxDrops {
+		s.drops = append(s.drops, Drop{Err: fe, at: s.n - s.base})
+	}
 }
 
 // AppendFrames appends to dst every frame that ends in p (the bytes of p
 // after its last delimiter are kept for the next call) and returns dst.
 // Each appended frame has its own Counts slice.
 func (s *Splitter) AppendFrames(dst []Frame, p []byte) []Frame {
+	s.drops, s.base = s.drops[:0], len(dst)
 	for len(p) > 0 {
+		s.n = len(dst)
 		i := 0
 		for i < len(p) && p[i] != 0 {
 			i++
@@ -86,6 +111,7 @@ func (s *Splitter) end() (Frame, bool) {
 	defer func() { s.buf, s.overlong = s.buf[:0], false }()
 	if s.overlong {
 		s.corrupted++
+		s.drop(frameErr(ErrCorrupt, "length", "more than %d bytes before a 0x00 delimiter", MaxEncodedLen))
 		return Frame{}, false
 	}
 	if len(s.buf) == 0 {
@@ -94,7 +120,9 @@ func (s *Splitter) end() (Frame, bool) {
 	var err error
 	s.raw, err = AppendUnCOBS(s.raw[:0], s.buf)
 	var f Frame
-	if err == nil {
+	if err != nil {
+		err = frameErr(ErrCorrupt, "stuffing", "malformed COBS: a code byte points past the frame's end")
+	} else {
 		err = ParseFrame(&f, s.raw)
 	}
 	switch {
@@ -107,6 +135,7 @@ func (s *Splitter) end() (Frame, bool) {
 	default:
 		s.corrupted++
 	}
+	s.drop(err)
 	return Frame{}, false
 }
 
@@ -160,6 +189,7 @@ type Sequencer struct {
 	counts     []int32 // the last taken frame's counts
 	cumulative []int64
 	stats      Stats
+	invalid    *FrameError // why the last frame counted Invalid was
 	// resumed: the robot's current run is of boot byte resumedBoot
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
@@ -198,8 +228,14 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 	case ahead < 0:
 		s.stats.Reordered++
 		return nil
-	case len(f.Counts) != len(s.counts) || f.StampUs <= s.stampUs:
+	case len(f.Counts) != len(s.counts):
 		s.stats.Invalid++
+		s.invalid = frameErr(ErrInvalid, "wheels", "%d, the earlier frames of boot %d had %d", len(f.Counts), s.boot, len(s.counts))
+		return nil
+	case f.StampUs <= s.stampUs:
+		s.stats.Invalid++
+		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is not after the last taken frame's %d us although its counter %d is ahead of %d (the controller's clock must not go back within a boot)",
+			f.StampUs, s.stampUs, f.Counter, s.counter)
 		return nil
 	}
 	s.stats.Skipped += uint64(ahead - 1)
@@ -232,6 +268,13 @@ type Decoder struct {
 	split  Splitter
 	seq    Sequencer
 	frames []Frame
+	drops  []Drop // in arrival order, until Drops takes them; at most maxDrops
+}
+
+func (d *Decoder) drop(dr Drop) {
+	if len(d.drops) < maxDrops {
+		d.drops = append(d.drops, dr)
+	}
 }
 
 // Decode appends to dst the samples of the frames that end in p and
@@ -240,14 +283,26 @@ type Decoder struct {
 // next call.
 func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 	d.frames = d.split.AppendFrames(d.frames[:0], p)
+	split := d.split.drops // the frames the splitter dropped, among d.frames
+	j := 0
 	for i := range d.frames {
-		restarts := d.seq.stats.Restarts
-		if s := d.seq.Take(&d.frames[i]); s != nil {
+		for ; j < len(split) && split[j].at <= i; j++ {
+			d.drop(split[j])
+		}
+		restarts, invalid := d.seq.stats.Restarts, d.seq.stats.Invalid
+		s := d.seq.Take(&d.frames[i])
+		if d.seq.stats.Invalid != invalid {
+			d.drop(Drop{Err: d.seq.invalid})
+		}
+		if s != nil {
 			if d.seq.stats.Restarts != restarts {
 				dst = append(dst, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: BootID(d.seq.boot)}}})
 			}
 			dst = append(dst, s)
 		}
+	}
+	for ; j < len(split); j++ {
+		d.drop(split[j])
 	}
 	return dst
 }
@@ -266,6 +321,15 @@ func (d *Decoder) Resume(bootID string) {
 	if _, err := fmt.Sscanf(bootID, "link-boot-%02x", &b); err == nil && bootID == BootID(b) {
 		d.seq.resumed, d.seq.resumedBoot = true, b
 	}
+}
+
+// Drops appends to dst the frames dropped as corrupted or invalid since
+// the last call, with why (at most 64 of them; the counts in Stats are
+// complete), and returns dst.
+func (d *Decoder) Drops(dst []Drop) []Drop {
+	dst = append(dst, d.drops...)
+	d.drops = d.drops[:0]
+	return dst
 }
 
 // Stats returns the counts so far.

@@ -2,7 +2,9 @@ package bridge
 
 import (
 	"bytes"
+	"errors"
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"strings"
 	"testing"
@@ -260,5 +262,58 @@ func TestDecoderRunStart(t *testing.T) {
 		if got := kinds(d.Decode(nil, encode(wheels(5, 0, 30, 0)))); got != c.want {
 			t.Errorf("resumed on %q: %s, want %s", c.resume, got, c.want)
 		}
+	}
+}
+
+// TestDecoderDrops: every frame dropped as corrupted or invalid is given
+// back by Drops with the field that was wrong, as many as Stats counts:
+// random bytes between delimiters of every length from 0 to 300 (seeded;
+// a random block passes the CRC once in 2^32), then frames each wrong in
+// one field.
+func TestDecoderDrops(t *testing.T) {
+	var d Decoder
+	var drops []Drop
+	r := rand.New(rand.NewPCG(3, 3))
+	for n := 0; n <= 300; n++ {
+		b := make([]byte, n)
+		for i := range b {
+			b[i] = byte(1 + r.IntN(255))
+		}
+		if ss := d.Decode(nil, append(b, 0)); len(ss) != 0 {
+			t.Fatalf("%d random bytes gave samples %v", n, shorts(ss))
+		}
+		drops = d.Drops(drops)
+	}
+	st := d.Stats()
+	if uint64(len(drops)) != st.Corrupted+st.Invalid || st.Corrupted != 300 {
+		t.Fatalf("%d drops, stats %+v: want one per non-empty block", len(drops), st)
+	}
+	for _, dr := range drops {
+		if dr.Err.Field == "" || !errors.Is(dr.Err, ErrCorrupt) && !errors.Is(dr.Err, ErrInvalid) {
+			t.Errorf("drop %v: no field or kind", dr.Err)
+		}
+	}
+
+	badCRC := AppendRawFrame(nil, &Frame{Type: FrameWheels, Counter: 2, StampUs: 20, Counts: []int32{1}})
+	badCRC[len(badCRC)-1] ^= 1
+	nan := wheels(0, 3, 30, 1)
+	nan.HasHeading, nan.HeadingRad = true, float32(math.NaN())
+	typ := wheels(0, 4, 40, 1)
+	typ.Type = 7
+	stream := cat(encode(wheels(0, 1, 10, 0)), AppendCOBS(nil, badCRC), []byte{0}, encode(nan, typ),
+		encode(wheels(0, 5, 5, 2), wheels(0, 6, 60, 2, 2), wheels(0, 7, 70, 3)), bytes.Repeat([]byte{9}, MaxEncodedLen+1), []byte{0})
+	var fresh Decoder
+	ss := fresh.Decode(nil, stream)
+	var got []string
+	for _, dr := range fresh.Drops(nil) {
+		got = append(got, fmt.Sprintf("%v/%s", dr.Err.Kind, dr.Err.Field))
+	}
+	want := []string{"bridge: corrupted frame/crc", "bridge: invalid frame/heading", "bridge: invalid frame/type",
+		"bridge: invalid frame/stamp", "bridge: invalid frame/wheels", "bridge: corrupted frame/length"}
+	if strings.Join(got, ", ") != strings.Join(want, ", ") || len(ss) != 2 {
+		t.Errorf("drops %q, want %q; %d samples, want 2", got, want, len(ss))
+	}
+	if more := fresh.Drops(nil); len(more) != 0 {
+		t.Errorf("drops given twice: %v", more)
 	}
 }

@@ -29,6 +29,9 @@ type Summary struct {
 	NotTaken int
 	// Reasons holds the reasons the service gave, the first ten.
 	Reasons []string
+	// Drops holds why frames were dropped as corrupted or invalid: the
+	// first frame of each kind (FrameError's Kind and Field).
+	Drops []string
 	// Reconnects counts the streams opened again after the service ended
 	// one, and Dropped the samples decoded while none was open (Reconnect).
 	Reconnects, Dropped int
@@ -36,6 +39,49 @@ type Summary struct {
 
 // maxReasons is how many refusal reasons a Summary keeps.
 const maxReasons = 10
+
+// dropSayEvery is how often at most Forward says again on its log that
+// frames of one kind are being dropped.
+const dropSayEvery = time.Minute
+
+// dropNotes says on a log why frames are dropped: the first of each kind
+// at once, then at most once every dropSayEvery with how many more there
+// were, so that a controller whose clock went back (every frame then
+// invalid) is named while the link runs, not only in its summary.
+type dropNotes struct {
+	log   io.Writer // nil: none
+	kinds map[string]*dropKind
+}
+
+type dropKind struct {
+	said  time.Time
+	since int // dropped since said
+}
+
+func (n *dropNotes) note(sum *Summary, d Drop, now time.Time) {
+	key := d.Err.Kind.Error() + "/" + d.Err.Field
+	k, seen := n.kinds[key]
+	if !seen {
+		if n.kinds == nil {
+			n.kinds = map[string]*dropKind{}
+		}
+		k = &dropKind{}
+		n.kinds[key] = k
+		sum.Drops = append(sum.Drops, d.Err.Error())
+	}
+	k.since++
+	if seen && now.Sub(k.said) < dropSayEvery {
+		return
+	}
+	if n.log != nil {
+		more := ""
+		if k.since > 1 {
+			more = fmt.Sprintf(" (%d such frames since this was last said)", k.since)
+		}
+		fmt.Fprintf(n.log, "frame dropped: %v%s\n", d.Err, more)
+	}
+	k.said, k.since = now, 0
+}
 
 // Reopen opens a new ingest stream that continues session id, whose last
 // sample had client sequence last (client.Resume): Forward calls it when
@@ -56,7 +102,9 @@ type forwardOptions struct {
 // no stream is open (a live link does not keep them: cumulative counts
 // lose nothing by a missing sample), and opens the session again with
 // reopen at the next frame, waiting 0.1 s after a failed attempt and
-// twice as long after each further one, up to 5 s. A run start (the
+// twice as long after each further one, up to 5 s. It also says on log why
+// frames are dropped as corrupted or invalid: the first of each kind at
+// once, then at most once a minute. A run start (the
 // controller restarted) decoded while no stream is open, or not answered
 // before the stream ended, is not dropped: it is sent on the stream opened
 // again before the next sample (with its own client sequence if it was
@@ -160,9 +208,15 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	var readErr error
 	buf := make([]byte, 64<<10)
 	var samples []*pb.Sample
+	var drops []Drop
+	notes := dropNotes{log: o.log}
 	for readErr == nil {
 		n, err := src.Read(buf)
 		samples = dec.Decode(samples[:0], buf[:n])
+		drops = dec.Drops(drops[:0])
+		for _, d := range drops {
+			notes.note(&sum, d, time.Now())
+		}
 		for _, s := range samples {
 			isRun := s.GetRunStart() != nil
 			if isRun {

@@ -107,4 +107,7 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 	for _, r := range sum.Reasons {
 		fmt.Fprintln(w, "  "+r)
 	}
+	for _, d := range sum.Drops {
+		fmt.Fprintln(w, "  first of its kind: "+d)
+	}
 }

@@ -170,3 +170,89 @@ func TestLinkReboot(t *testing.T) {
 		t.Errorf("summary:\n%s", s)
 	}
 }
+
+// TestLinkSaysWhyFramesDrop: frames with a bad CRC, of an unknown type (a
+// newer protocol) and stamped behind the last taken frame (a controller
+// clock that went back, after which every frame is dropped until it
+// catches up) are named, with the field that was wrong, on standard error
+// while the link runs and in its summary. Before, the summary only counted
+// them ("1 corrupted, 2 invalid") and nothing was said while it ran.
+func TestLinkSaysWhyFramesDrop(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	linkCtx, stop := context.WithCancel(context.Background())
+	var out, errb bytes.Buffer
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+	}()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	frame := func(k int) bridge.Frame {
+		return bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+	}
+	waitNewest := func(k int) {
+		for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(50 * time.Millisecond) {
+			if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == int64(k)*10_000_000 {
+				return
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("frame %d never arrived\n%s%s", k, out.String(), errb.String())
+			}
+			f := frame(k) // until the link listens, datagrams may be lost
+			conn.Write(bridge.AppendFrame(nil, &f, nil))
+		}
+	}
+	waitNewest(1) // stamp 0 is a new robot's newest too
+	var b []byte
+	for k := 2; k < 40; k++ {
+		f := frame(k)
+		switch k {
+		case 10:
+			raw := bridge.AppendRawFrame(nil, &f)
+			raw[len(raw)-1] ^= 0x5a
+			b = append(bridge.AppendCOBS(b, raw), 0)
+			continue
+		case 20:
+			f.Type = 2
+		case 30:
+			f.StampUs = 50_000 // behind frame 29's 290 ms
+		}
+		b = bridge.AppendFrame(b, &f, nil)
+	}
+	conn.Write(b)
+	waitNewest(39)
+	stop()
+	if err := <-linkDone; exitCode(err) != exitInterrupted {
+		t.Fatalf("link interrupted: %v (exit %d)\n%s", err, exitCode(err), errb.String())
+	}
+	for _, want := range []string{
+		"bridge: corrupted frame: crc: CRC ",
+		"bridge: invalid frame: type: 2, only 1 (wheel counts) is known",
+		"bridge: invalid frame: stamp: 50000 us is not after the last taken frame's 290000 us although its counter 30 is ahead of 29",
+	} {
+		if !strings.Contains(errb.String(), "frame dropped: "+want) {
+			t.Errorf("stderr does not say %q:\n%s", want, errb.String())
+		}
+		if !strings.Contains(out.String(), "first of its kind: "+want) {
+			t.Errorf("summary does not say %q:\n%s", want, out.String())
+		}
+	}
+	if s := out.String(); !strings.Contains(s, "1 corrupted, 2 invalid") {
+		t.Errorf("summary:\n%s", s)
+	}
+}

@@ -34,8 +34,8 @@ type Stats struct {
 	// Skipped is the number of counter values jumped over when a frame
 	// was taken: frames lost, or arriving later and then Reordered.
 	Skipped uint64
-	// Restarts is the number of times the boot byte changed (or differed
-	// from the one Decoder.Resume named): each begins a new run.
+	// Restarts is the number of times the boot byte changed (or the first
+	// frame showed a restart to Decoder.Resume): each begins a new run.
 	Restarts uint64
 	// Samples is the number of samples produced.
 	Samples uint64
@@ -194,6 +194,10 @@ type Sequencer struct {
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
 	resumedBoot uint8
+	// resumedNs: the robot's newest odometry, of a run whose boot the
+	// link does not know (0: none); a first frame stamped at or before it
+	// is of a controller that restarted (Decoder.Resume).
+	resumedNs int64
 }
 
 // Take returns the sample for f, or nil if f is dropped.
@@ -208,7 +212,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		if s.started {
 			s.stats.Restarts++
 			s.retired, s.old = true, s.boot
-		} else if s.resumed && f.Boot != s.resumedBoot {
+		} else if s.resumed && f.Boot != s.resumedBoot || s.resumedNs > 0 && int64(f.StampUs)*1000 <= s.resumedNs {
 			s.stats.Restarts++
 		}
 		s.started, s.boot, s.counter, s.stampUs = true, f.Boot, f.Counter, f.StampUs
@@ -313,14 +317,22 @@ func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 func BootID(boot uint8) string { return fmt.Sprintf("link-boot-%02x", boot) }
 
 // Resume tells the decoder the boot id of the robot's current run
-// (Robot.boot_id): when it is a link boot id and the first frame's boot
-// byte differs, the controller restarted while no bridge was listening,
-// and the decoder begins a new run there too. Call it before Decode.
-func (d *Decoder) Resume(bootID string) {
+// (Robot.boot_id) and its newest odometry stamp (Robot.newest_stamp_ns),
+// so that it begins a new run at its first frame if the controller
+// restarted while no bridge was listening. When the run's boot id is a
+// link boot id, the first frame's boot byte says so precisely. Otherwise
+// (the robot's first run, or a run started by hand) a first frame stamped
+// at or before the newest odometry says so: the controller's clock started
+// again, and the service would refuse its odometry as time going
+// backwards; a controller that ran on stamps after it. Call it before
+// Decode.
+func (d *Decoder) Resume(bootID string, newestNs int64) {
 	var b uint8
 	if _, err := fmt.Sscanf(bootID, "link-boot-%02x", &b); err == nil && bootID == BootID(b) {
 		d.seq.resumed, d.seq.resumedBoot = true, b
+		return
 	}
+	d.seq.resumedNs = newestNs
 }
 
 // Drops appends to dst the frames dropped as corrupted or invalid since

@@ -232,7 +232,9 @@ func FuzzDecoder(f *testing.F) {
 // TestDecoderRunStart: a controller restart (another boot byte) puts a run
 // start naming the new boot before its first sample; a decoder resumed on
 // a robot whose current run is of another boot starts a run at its first
-// frame, and one resumed on the same boot does not.
+// frame, and one resumed on the same boot does not; on a run of no link
+// boot, the first frame's stamp decides: at or before the robot's newest
+// odometry, the controller's clock started again.
 func TestDecoderRunStart(t *testing.T) {
 	kinds := func(samples []*pb.Sample) string {
 		var b strings.Builder
@@ -250,15 +252,24 @@ func TestDecoderRunStart(t *testing.T) {
 	if want := "odo(9000000) start(link-boot-05) odo(30000) odo(40000) "; got != want {
 		t.Errorf("restart:\n got %s\nwant %s", got, want)
 	}
-	for _, c := range []struct{ resume, want string }{
-		{"link-boot-04", "start(link-boot-05) odo(30000) "},
-		{"link-boot-05", "odo(30000) "},
-		{"", "odo(30000) "},
-		{"by-hand-1", "odo(30000) "},
-		{"link-boot-5", "odo(30000) "}, // not a link boot id: two hex digits
+	for _, c := range []struct {
+		resume string
+		newest int64 // the robot's newest odometry, ns
+		want   string
+	}{
+		{"link-boot-04", 0, "start(link-boot-05) odo(30000) "},
+		{"link-boot-04", 9_000_000, "start(link-boot-05) odo(30000) "},
+		{"link-boot-05", 9_000_000, "odo(30000) "}, // the boot byte decides
+		{"", 0, "odo(30000) "},                     // a new robot
+		{"", 29_999, "odo(30000) "},                // the controller ran on
+		{"", 30_000, "start(link-boot-05) odo(30000) "},
+		{"", 9_000_000, "start(link-boot-05) odo(30000) "}, // its clock started again
+		{"by-hand-1", 20_000, "odo(30000) "},
+		{"by-hand-1", 9_000_000, "start(link-boot-05) odo(30000) "},
+		{"link-boot-5", 9_000_000, "start(link-boot-05) odo(30000) "}, // not a link boot id: two hex digits
 	} {
 		var d Decoder
-		d.Resume(c.resume)
+		d.Resume(c.resume, c.newest)
 		if got := kinds(d.Decode(nil, encode(wheels(5, 0, 30, 0)))); got != c.want {
 			t.Errorf("resumed on %q: %s, want %s", c.resume, got, c.want)
 		}

@@ -78,7 +78,7 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	if err != nil {
 		return err
 	}
-	dec.Resume(r.GetBootId())
+	dec.Resume(r.GetBootId(), r.GetNewestStampNs())
 	// The service's restarts (an upgrade, a crash) do not end the link: it
 	// opens the session again and goes on.
 	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {

@@ -256,3 +256,82 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 		t.Errorf("summary:\n%s", s)
 	}
 }
+
+// TestLinkAfterPowerCycle: the whole robot is switched off and on. The
+// robot's first run was fed by reckon link without a controller restart,
+// so it carries no link boot id; the new link's first frame, of the
+// rebooted controller, is stamped on a clock started again, behind the
+// robot's newest odometry: the link starts run 2 there (PROTOCOL.md,
+// "Reboots"). Before, it compared boot ids only, found none to compare,
+// and every frame of the new boot was refused as time_backwards for as
+// long as the first run had lasted. A link restarted while the controller
+// ran on (its stamps after the newest) starts no run.
+func TestLinkAfterPowerCycle(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	// One link process per step: its boot byte, its first counter and
+	// stamp step (10 ms frames), and the run the robot is then in.
+	for i, step := range []struct {
+		boot        uint8
+		from, count int
+		run         uint64
+	}{
+		{1, 0, 150, 1},  // created by the link; run 1 has no boot id
+		{1, 150, 50, 1}, // the link restarted, the controller ran on
+		{2, 0, 60, 2},   // power cycle: boot 2, clock from zero
+	} {
+		pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+		if err != nil {
+			t.Fatal(err)
+		}
+		udpAddr := pc.LocalAddr().String()
+		pc.Close()
+		linkCtx, stop := context.WithCancel(context.Background())
+		var out, errb bytes.Buffer
+		linkDone := make(chan error, 1)
+		go func() {
+			linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+				"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+		}()
+		conn, err := net.Dial("udp", udpAddr)
+		if err != nil {
+			t.Fatal(err)
+		}
+		last := int64(step.from+step.count-1) * 10_000_000
+		var r interface {
+			GetNewestStampNs() int64
+			GetRun() uint64
+		}
+		for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(50 * time.Millisecond) {
+			var b []byte
+			for k := step.from; k < step.from+step.count; k++ {
+				f := bridge.Frame{Type: bridge.FrameWheels, Boot: step.boot, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+				b = bridge.AppendFrame(b, &f, nil)
+				if k%20 == 19 || k == step.from+step.count-1 {
+					conn.Write(b)
+					b = b[:0]
+				}
+			}
+			robot, err := c.GetRobot(context.Background(), "robots/cart")
+			if err == nil && robot.GetNewestStampNs() == last {
+				r = robot
+				break
+			}
+			if time.Now().After(deadline) {
+				stop()
+				<-linkDone
+				t.Fatalf("link %d: the last frame never arrived (%v)\n%s%s", i+1, robot, out.String(), errb.String())
+			}
+		}
+		conn.Close()
+		stop()
+		<-linkDone
+		if r.GetRun() != step.run || !strings.Contains(out.String(), "invalid 0") {
+			t.Errorf("link %d: robot in run %d, want %d; summary:\n%s", i+1, r.GetRun(), step.run, out.String())
+		}
+	}
+}

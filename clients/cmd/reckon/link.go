@@ -86,6 +86,10 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	}
 	sum, err := bridge.Forward(ctx, src, &dec, sess, bridge.Reconnect(reopen, stderr))
 	printLinkSummary(stdout, name, sum)
+	if err != nil {
+		// With Reconnect, Forward fails only on reading its source.
+		err = fmt.Errorf("reading %s: %w", from, err)
+	}
 	if ctx.Err() != nil && (err == nil || exitCode(err) == exitInterrupted) {
 		return errInterrupted
 	}

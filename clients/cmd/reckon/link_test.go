@@ -8,6 +8,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/creack/pty"
+
 	"reckon.example/clients/bridge"
 	"reckon.example/clients/client"
 )
@@ -333,5 +335,51 @@ func TestLinkAfterPowerCycle(t *testing.T) {
 		if r.GetRun() != step.run || !strings.Contains(out.String(), "invalid 0") {
 			t.Errorf("link %d: robot in run %d, want %d; summary:\n%s", i+1, r.GetRun(), step.run, out.String())
 		}
+	}
+}
+
+// TestLinkPortGone: the serial port goes away under the link (a USB
+// adapter pulled out; here the pseudo-terminal's master end closed): the
+// link prints its summary and exits 1 with an error naming the port.
+// Before, the error was the serial library's bare "Port has been closed".
+func TestLinkPortGone(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	master, tty, err := pty.Open()
+	if err != nil {
+		t.Skipf("no pseudo-terminal: %v", err)
+	}
+	defer tty.Close()
+	var out, errb bytes.Buffer
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-serial", tty.Name(), "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+	}()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(20 * time.Millisecond) {
+		f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
+		master.Write(bridge.AppendFrame(nil, &f, nil))
+		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == 10_000_000 {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("the frame never arrived\n%s%s", out.String(), errb.String())
+		}
+	}
+	master.Close()
+	select {
+	case err = <-linkDone:
+	case <-time.After(20 * time.Second):
+		t.Fatal("the link did not end when its port went away")
+	}
+	if exitCode(err) != exitFailure || !strings.Contains(err.Error(), tty.Name()) {
+		t.Errorf("link ended with %v (exit %d), want exit %d naming %s", err, exitCode(err), exitFailure, tty.Name())
+	}
+	if !strings.Contains(out.String(), "samples sent to robots/cart: applied ") {
+		t.Errorf("summary:\n%s", out.String())
 	}
 }

@@ -56,7 +56,8 @@ type Splitter struct {
 	base, n   int    // len(dst) when AppendFrames was called, and now
 }
 
-// Drop is a frame dropped as corrupted or invalid, and why.
+// Drop is a frame dropped as corrupted or invalid, and why; or, of Kind
+// ErrBehind, a long run of frames dropped as duplicates or reordered.
 type Drop struct {
 	// Err is a *FrameError naming the field that was wrong.
 	Err *FrameError
@@ -139,6 +140,13 @@ func (s *Splitter) end() (Frame, bool) {
 	return Frame{}, false
 }
 
+// behindLimit is how many frames of the current boot in a row dropped as
+// duplicates or reordered make a Sequencer say so (and again at every
+// further behindLimit): a link reorders a few frames, not a second's worth;
+// a controller that restarted without changing its boot byte sends
+// nothing but such frames until its counter passes the old one.
+const behindLimit = 100
+
 // staleBootLimit is how many frames of the previous boot in a row make a
 // Sequencer take that boot as a new one.
 const staleBootLimit = 16
@@ -190,6 +198,8 @@ type Sequencer struct {
 	cumulative []int64
 	stats      Stats
 	invalid    *FrameError // why the last frame counted Invalid was
+	behind     int         // frames of this boot dropped in a row as duplicates or reordered
+	behindErr  *FrameError // said at every behindLimit of them
 	// resumed: the robot's current run is of boot byte resumedBoot
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
@@ -215,7 +225,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		} else if s.resumed && f.Boot != s.resumedBoot || s.resumedNs > 0 && int64(f.StampUs)*1000 <= s.resumedNs {
 			s.stats.Restarts++
 		}
-		s.started, s.boot, s.counter, s.stampUs = true, f.Boot, f.Counter, f.StampUs
+		s.started, s.boot, s.counter, s.stampUs, s.behind = true, f.Boot, f.Counter, f.StampUs, 0
 		s.counts = append(s.counts[:0], f.Counts...)
 		s.cumulative = s.cumulative[:0]
 		for _, c := range f.Counts {
@@ -225,13 +235,19 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 	}
 	s.stale = 0
 	ahead := int32(f.Counter - s.counter)
+	if ahead <= 0 {
+		if ahead == 0 {
+			s.stats.Duplicates++
+		} else {
+			s.stats.Reordered++
+		}
+		if s.behind++; s.behind%behindLimit == 0 {
+			s.behindErr = frameErr(ErrBehind, "counter", "%d frames in a row not ahead of the last taken frame's counter %d (the latest: counter %d, stamp %d us); did the controller restart without changing its boot byte? (PROTOCOL.md, \"Reboots\")",
+				s.behind, s.counter, f.Counter, f.StampUs)
+		}
+		return nil
+	}
 	switch {
-	case ahead == 0:
-		s.stats.Duplicates++
-		return nil
-	case ahead < 0:
-		s.stats.Reordered++
-		return nil
 	case len(f.Counts) != len(s.counts):
 		s.stats.Invalid++
 		s.invalid = frameErr(ErrInvalid, "wheels", "%d, the earlier frames of boot %d had %d", len(f.Counts), s.boot, len(s.counts))
@@ -242,6 +258,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 			f.StampUs, s.stampUs, f.Counter, s.counter)
 		return nil
 	}
+	s.behind = 0
 	s.stats.Skipped += uint64(ahead - 1)
 	s.counter, s.stampUs = f.Counter, f.StampUs
 	for i, c := range f.Counts {
@@ -293,10 +310,13 @@ func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 		for ; j < len(split) && split[j].at <= i; j++ {
 			d.drop(split[j])
 		}
-		restarts, invalid := d.seq.stats.Restarts, d.seq.stats.Invalid
+		restarts, invalid, behind := d.seq.stats.Restarts, d.seq.stats.Invalid, d.seq.behindErr
 		s := d.seq.Take(&d.frames[i])
 		if d.seq.stats.Invalid != invalid {
 			d.drop(Drop{Err: d.seq.invalid})
+		}
+		if d.seq.behindErr != behind {
+			d.drop(Drop{Err: d.seq.behindErr})
 		}
 		if s != nil {
 			if d.seq.stats.Restarts != restarts {

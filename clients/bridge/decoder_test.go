@@ -328,3 +328,35 @@ func TestDecoderDrops(t *testing.T) {
 		t.Errorf("drops given twice: %v", more)
 	}
 }
+
+// TestDecoderBehindRun: a controller that restarts without changing its
+// boot byte sends frames whose counters are behind the last taken one; they
+// are dropped as reordered until its counter passes the old one (at 100
+// frames a second, 10000 frames behind take 100 s), and at every 100 in a
+// row Drops says so, naming the boot byte. A few reordered frames among
+// ones taken say nothing.
+func TestDecoderBehindRun(t *testing.T) {
+	var d Decoder
+	var frames []Frame
+	for k := range 10 {
+		frames = append(frames, wheels(7, uint32(10_000+k), uint64(1_000_000+10_000*k), int32(k)))
+	}
+	frames = append(frames, wheels(7, 10_005, 1_050_000, 5), wheels(7, 10_010, 1_100_000, 10)) // reordered, then taken
+	for k := range 250 {                                                                       // restarted: counter and clock from zero
+		frames = append(frames, wheels(7, uint32(k), uint64(10_000*k), int32(k)))
+	}
+	ss := d.Decode(nil, encode(frames...))
+	drops := d.Drops(nil)
+	if len(ss) != 11 || len(drops) != 2 {
+		t.Fatalf("%d samples, drops %v; want 11 samples and 2 drops", len(ss), drops)
+	}
+	for i, dr := range drops {
+		want := fmt.Sprintf("bridge: frames behind: counter: %d frames in a row not ahead of the last taken frame's counter 10010", 100*(i+1))
+		if !strings.HasPrefix(dr.Err.Error(), want) || !strings.Contains(dr.Err.Error(), "without changing its boot byte") {
+			t.Errorf("drop %d: %v", i, dr.Err)
+		}
+	}
+	if st := d.Stats(); st.Reordered != 251 || st.Duplicates != 0 {
+		t.Errorf("stats %+v", st)
+	}
+}

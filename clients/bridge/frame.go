@@ -45,6 +45,9 @@ const MaxStampUs = math.MaxInt64 / 1000
 var (
 	ErrCorrupt = errors.New("bridge: corrupted frame")
 	ErrInvalid = errors.New("bridge: invalid frame")
+	// ErrBehind is the Kind of a Drop that reports a long run of frames
+	// that are not ahead of the last taken one (Decoder.Drops).
+	ErrBehind = errors.New("bridge: frames behind")
 )
 
 // FrameError is why a frame was dropped: Kind is ErrCorrupt (damaged on

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"strings"
 	"sync"
 	"time"
 
@@ -41,47 +42,51 @@ type Summary struct {
 // maxReasons is how many refusal reasons a Summary keeps.
 const maxReasons = 10
 
-// dropSayEvery is how often at most Forward says again on its log that
-// frames of one kind are being dropped.
-const dropSayEvery = time.Minute
+// sayEvery is how often at most Forward says again on its log that frames
+// of one kind are being dropped, or samples refused for one reason.
+const sayEvery = time.Minute
 
-// dropNotes says on a log why frames are dropped: the first of each kind
-// at once, then at most once every dropSayEvery with how many more there
+// notes says on a log what goes wrong again and again: the first of each
+// kind at once, then at most once every sayEvery with how many more there
 // were, so that a controller whose clock went back (every frame then
-// invalid) is named while the link runs, not only in its summary.
-type dropNotes struct {
+// invalid) or a configuration that does not fit the frames (every sample
+// refused) is named while the link runs, not only in its summary.
+type notes struct {
 	log   io.Writer // nil: none
-	kinds map[string]*dropKind
+	what  string    // what "such" counts, plural: "frames", "samples"
+	kinds map[string]*noteKind
 }
 
-type dropKind struct {
+type noteKind struct {
 	said  time.Time
-	since int // dropped since said
+	since int // seen since said
 }
 
-func (n *dropNotes) note(sum *Summary, d Drop, now time.Time) {
-	key := d.Err.Kind.Error() + "/" + d.Err.Field
+// note counts one of kind key, says text if it is the first or sayEvery
+// has passed since it was last said, and reports whether it is the
+// first.
+func (n *notes) note(key, text string, now time.Time) (first bool) {
 	k, seen := n.kinds[key]
 	if !seen {
 		if n.kinds == nil {
-			n.kinds = map[string]*dropKind{}
+			n.kinds = map[string]*noteKind{}
 		}
-		k = &dropKind{}
+		k = &noteKind{}
 		n.kinds[key] = k
-		sum.Drops = append(sum.Drops, d.Err.Error())
 	}
 	k.since++
-	if seen && now.Sub(k.said) < dropSayEvery {
-		return
+	if seen && now.Sub(k.said) < sayEvery {
+		return false
 	}
 	if n.log != nil {
 		more := ""
 		if k.since > 1 {
-			more = fmt.Sprintf(" (%d such frames since this was last said)", k.since)
+			more = fmt.Sprintf(" (%d such %s since this was last said)", k.since, n.what)
 		}
-		fmt.Fprintf(n.log, "frame dropped: %v%s\n", d.Err, more)
+		fmt.Fprintf(n.log, "%s%s\n", text, more)
 	}
 	k.said, k.since = now, 0
+	return !seen
 }
 
 // Reopen opens a new ingest stream that continues session id, whose last
@@ -104,12 +109,12 @@ type forwardOptions struct {
 // lose nothing by a missing sample), and opens the session again with
 // reopen at the next frame, waiting 0.1 s after a failed attempt and
 // twice as long after each further one, up to 5 s. It also says on log why
-// frames are dropped as corrupted or invalid: the first of each kind at
-// once, then at most once a minute. A run start (the
-// controller restarted) decoded while no stream is open, or not answered
-// before the stream ended, is not dropped: it is sent on the stream opened
-// again before the next sample (with its own client sequence if it was
-// sent before, so that it is not taken twice).
+// frames are dropped as corrupted or invalid, and why the service refuses
+// samples: the first of each kind at once, then at most once a minute. A
+// run start (the controller restarted) decoded while no stream is open,
+// or not answered before the stream ended, is not dropped: it is sent on
+// the stream opened again before the next sample (with its own client
+// sequence if it was sent before, so that it is not taken twice).
 func Reconnect(reopen Reopen, log io.Writer) ForwardOption {
 	return func(o *forwardOptions) { o.reopen, o.log = reopen, log }
 }
@@ -143,6 +148,7 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	// sample, or the new boot's odometry would be refused as time going
 	// backwards for as long as the link runs.
 	var run pendingRun
+	refused := notes{log: o.log, what: "samples"} // under mu
 	// listen receives s's verdicts until its stream ends, and then sends
 	// the stream's error (nil at its normal end) on the channel it returns.
 	listen := func(s *client.Session) chan error {
@@ -163,6 +169,10 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 				mu.Lock()
 				tally(&sum, resp)
 				run.answered(resp)
+				if resp.GetReason() != "" && !client.OnlyResolutions(resp) {
+					refused.note(fmt.Sprintf("%v/%d", resp.GetVerdict(), resp.GetStatusCode()),
+						fmt.Sprintf("the service refused a sample (%s): client sequence %d: %s", verdictName(resp.GetVerdict()), resp.GetClientSequence(), resp.GetReason()), time.Now())
+				}
 				mu.Unlock()
 			}
 		}()
@@ -210,13 +220,15 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	buf := make([]byte, 64<<10)
 	var samples []*pb.Sample
 	var drops []Drop
-	notes := dropNotes{log: o.log}
+	dropped := notes{log: o.log, what: "frames"}
 	for readErr == nil {
 		n, err := src.Read(buf)
 		samples = dec.Decode(samples[:0], buf[:n])
 		drops = dec.Drops(drops[:0])
 		for _, d := range drops {
-			notes.note(&sum, d, time.Now())
+			if dropped.note(d.Err.Kind.Error()+"/"+d.Err.Field, "frame dropped: "+d.Err.Error(), time.Now()) {
+				sum.Drops = append(sum.Drops, d.Err.Error())
+			}
 		}
 		for _, s := range samples {
 			isRun := s.GetRunStart() != nil
@@ -336,6 +348,11 @@ func sendRun(mu *sync.Mutex, r *pendingRun, sess *client.Session, sum *Summary) 
 		sum.Sent++
 	}
 	return err
+}
+
+// verdictName is a verdict's short name: "invalid", "too_old", ...
+func verdictName(v pb.Verdict) string {
+	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
 }
 
 // tally counts one response's verdict and resolutions into sum.

@@ -3,8 +3,10 @@ package main
 import (
 	"bytes"
 	"context"
+	"io"
 	"net"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -382,4 +384,67 @@ func TestLinkPortGone(t *testing.T) {
 	if !strings.Contains(out.String(), "samples sent to robots/cart: applied ") {
 		t.Errorf("summary:\n%s", out.String())
 	}
+}
+
+// TestLinkSaysRefusalsWhileRunning: frames of three wheels to a robot
+// configured with two (the firmware's wheel order or count not matching
+// the configuration): the service refuses every sample, and the link says
+// so on standard error while it runs, naming the field, once and not at
+// every sample. Before, the refusals were named only in the summary at
+// its end; a link under systemd fed a robot nothing for hours in silence.
+func TestLinkSaysRefusalsWhileRunning(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	linkCtx, stop := context.WithCancel(context.Background())
+	defer stop()
+	errb := &lockedBuffer{}
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/drive-wheel-turn.yaml"}, nil, io.Discard, errb)
+	}()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	const want = "counts has 3 entries for 2 wheels"
+	for k, deadline := 0, time.Now().Add(20*time.Second); !strings.Contains(errb.String(), want); k++ {
+		if time.Now().After(deadline) {
+			t.Fatalf("the refusals were not said while the link runs:\n%s", errb.String())
+		}
+		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+		conn.Write(bridge.AppendFrame(nil, &f, nil))
+		time.Sleep(10 * time.Millisecond)
+	}
+	time.Sleep(200 * time.Millisecond) // more refusals, not said again
+	stop()
+	<-linkDone
+	if n := strings.Count(errb.String(), want); n != 1 {
+		t.Errorf("said %d times, want once:\n%s", n, errb.String())
+	}
+}
+
+// lockedBuffer is a bytes.Buffer that a running command writes while the
+// test reads it.
+type lockedBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (l *lockedBuffer) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+func (l *lockedBuffer) String() string {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.String()
 }

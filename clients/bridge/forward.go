@@ -7,7 +7,11 @@ import (
 	"io"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
@@ -108,7 +112,10 @@ type forwardOptions struct {
 // no stream is open (a live link does not keep them: cumulative counts
 // lose nothing by a missing sample), and opens the session again with
 // reopen at the next frame, waiting 0.1 s after a failed attempt and
-// twice as long after each further one, up to 5 s. It also says on log why
+// twice as long after each further one, up to 5 s (also after a stream
+// that ended before it answered anything). A stream refused for good (the
+// token or client certificate no longer accepted: codes Unauthenticated,
+// PermissionDenied) ends Forward with that error. It also says on log why
 // frames are dropped as corrupted or invalid, and why the service refuses
 // samples: the first of each kind at once, then at most once a minute. A
 // run start (the controller restarted) decoded while no stream is open,
@@ -149,10 +156,14 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	// backwards for as long as the link runs.
 	var run pendingRun
 	refused := notes{log: o.log, what: "samples"} // under mu
+	// answered says whether the stream now open has answered anything:
+	// one that ends before it did is opened again only after a pause.
+	var answered atomic.Bool
 	// listen receives s's verdicts until its stream ends, and then sends
 	// the stream's error (nil at its normal end) on the channel it returns.
 	listen := func(s *client.Session) chan error {
 		ended := make(chan error, 1)
+		answered.Store(false)
 		go func() {
 			for {
 				resp, err := s.Recv()
@@ -160,12 +171,17 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 					if errors.Is(err, io.EOF) {
 						err = nil
 					}
-					if err != nil && o.reopen != nil && ctx.Err() == nil {
+					switch {
+					case err == nil || o.reopen == nil || ctx.Err() != nil:
+					case refusedForGood(err):
+						fmt.Fprintf(o.log, "the service refused the stream (%v); ending\n", err)
+					default:
 						fmt.Fprintf(o.log, "the service ended the stream (%v); opening it again at the next frame\n", err)
 					}
 					ended <- err
 					return
 				}
+				answered.Store(true)
 				mu.Lock()
 				tally(&sum, resp)
 				run.answered(resp)
@@ -181,16 +197,27 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 	ended := listen(sess)
 	var retryAt time.Time
 	pause := reopenFirst
+	var fatal error // the stream refused for good (refusedForGood)
 	// connected reports whether a stream is open, opening one again
-	// (Reconnect) when the last has ended and its pause is over.
+	// (Reconnect) when the last has ended and its pause is over; it sets
+	// fatal instead when the service refused the stream for good.
 	connected := func() bool {
 		if o.reopen == nil {
 			return true
 		}
 		if sess != nil {
 			select {
-			case <-ended:
-				sess, retryAt, pause = nil, time.Time{}, reopenFirst
+			case err := <-ended:
+				sess = nil
+				switch {
+				case refusedForGood(err):
+					fatal = fmt.Errorf("the service refused the stream: %w", err)
+					return false
+				case answered.Load():
+					retryAt, pause = time.Time{}, reopenFirst
+				default: // it ended as soon as it was opened: wait before the next
+					retryAt, pause = time.Now().Add(pause), min(2*pause, reopenMost)
+				}
 			default:
 				return true
 			}
@@ -238,6 +265,10 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 				mu.Unlock()
 			}
 			if !connected() {
+				if fatal != nil {
+					readErr = fatal
+					break
+				}
 				if !isRun {
 					sum.Dropped++
 				}
@@ -353,6 +384,14 @@ func sendRun(mu *sync.Mutex, r *pendingRun, sess *client.Session, sum *Summary) 
 // verdictName is a verdict's short name: "invalid", "too_old", ...
 func verdictName(v pb.Verdict) string {
 	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
+}
+
+// refusedForGood tells whether a stream's error will not go away by
+// opening it again: the token or the client certificate is refused, and
+// this process sends the same ones again.
+func refusedForGood(err error) bool {
+	c := status.Code(err)
+	return c == codes.Unauthenticated || c == codes.PermissionDenied
 }
 
 // tally counts one response's verdict and resolutions into sum.

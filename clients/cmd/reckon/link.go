@@ -6,6 +6,8 @@ import (
 	"io"
 	"time"
 
+	"google.golang.org/grpc/status"
+
 	"reckon.example/clients/bridge"
 	"reckon.example/clients/client"
 )
@@ -86,8 +88,9 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	}
 	sum, err := bridge.Forward(ctx, src, &dec, sess, bridge.Reconnect(reopen, stderr))
 	printLinkSummary(stdout, name, sum)
-	if err != nil {
-		// With Reconnect, Forward fails only on reading its source.
+	if _, fromService := status.FromError(err); !fromService {
+		// With Reconnect, Forward fails otherwise only on reading its
+		// source.
 		err = fmt.Errorf("reading %s: %w", from, err)
 	}
 	if ctx.Err() != nil && (err == nil || exitCode(err) == exitInterrupted) {

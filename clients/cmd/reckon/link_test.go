@@ -4,16 +4,22 @@ import (
 	"bytes"
 	"context"
 	"io"
+	"log/slog"
 	"net"
+	"os"
 	"strings"
 	"sync"
 	"testing"
 	"time"
 
 	"github.com/creack/pty"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	"reckon.example/clients/bridge"
 	"reckon.example/clients/client"
+	"reckon.example/server"
+	"reckon.example/server/daemon"
 )
 
 // TestLink: reckon link listens on UDP, creates the robot, takes 200 frames
@@ -447,4 +453,89 @@ func (l *lockedBuffer) String() string {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	return l.b.String()
+}
+
+// TestLinkTokenRefused: the service restarts with another token (rotated
+// on the coprocessor; the link read its token file when it started). The
+// stream it opens again is refused at once: the link ends with the
+// refusal (exit 1), so that its unit restarts it with the new token. Before,
+// it opened the stream again at every frame, two lines on standard error
+// each time, for as long as it ran.
+func TestLinkTokenRefused(t *testing.T) {
+	dir := t.TempDir()
+	tokenFile := dir + "/token"
+	if err := os.WriteFile(tokenFile, []byte("alpha-token\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	serveToken := func(listen, token string) (string, func()) {
+		ctx, cancel := context.WithCancel(context.Background())
+		ready, done := make(chan string, 1), make(chan error, 1)
+		go func() {
+			done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Token: token, Ready: func(a, _ string) { ready <- a }, ShutdownGrace: 100 * time.Millisecond,
+				Options: server.Options{JournalDir: dir + "/journal", Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+		}()
+		select {
+		case addr := <-ready:
+			return addr, func() { cancel(); <-done }
+		case err := <-done:
+			cancel()
+			t.Fatalf("serve: %v", err)
+			return "", nil
+		}
+	}
+	addr, stop := serveToken("127.0.0.1:0", "alpha-token")
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	errb := &lockedBuffer{}
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-token-file", tokenFile, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, io.Discard, errb)
+	}()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	send := func(k int) {
+		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+		conn.Write(bridge.AppendFrame(nil, &f, nil))
+	}
+	k := 0
+	for deadline := time.Now().Add(20 * time.Second); !strings.Contains(errb.String(), "linking udp"); k++ {
+		if time.Now().After(deadline) {
+			t.Fatalf("the link did not start:\n%s", errb.String())
+		}
+		send(k)
+		time.Sleep(10 * time.Millisecond)
+	}
+	stop()
+	_, stop = serveToken(addr, "beta-token")
+	defer stop()
+	var linkErr error
+	for deadline := time.Now().Add(30 * time.Second); linkErr == nil; k++ {
+		select {
+		case linkErr = <-linkDone:
+			if linkErr == nil {
+				t.Fatal("the link ended without an error")
+			}
+			continue
+		default:
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("the link did not end when its token was refused; %d lines on stderr", strings.Count(errb.String(), "\n"))
+		}
+		send(k)
+		time.Sleep(10 * time.Millisecond)
+	}
+	if exitCode(linkErr) != exitFailure || status.Code(linkErr) != codes.Unauthenticated {
+		t.Errorf("link ended with %v (exit %d), want Unauthenticated, exit %d", linkErr, exitCode(linkErr), exitFailure)
+	}
+	if n := strings.Count(errb.String(), "opening it again"); n > 3 {
+		t.Errorf("the stream was opened again %d times:\n%s", n, errb.String())
+	}
 }

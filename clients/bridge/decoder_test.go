@@ -204,21 +204,32 @@ func FuzzDecoder(f *testing.F) {
 		samples := d.Decode(nil, data)
 		st := d.Stats()
 		var odometry, starts uint64
-		var last int64
+		var last int64 = -1
 		for i, s := range samples {
 			if s.GetRunStart() != nil {
 				if i+1 == len(samples) || samples[i+1].GetOdometry() == nil {
 					t.Fatalf("run start %d is not followed by odometry", i)
 				}
 				starts++
-				last = 0
+				last = -1
 				continue
 			}
 			odometry++
-			if s.GetOdometry().GetStampNs() < last {
-				t.Fatalf("sample %d goes back in time within a run: %d after %d", i, s.GetOdometry().GetStampNs(), last)
+			// The service refuses odometry not after its newest.
+			if s.GetOdometry().GetStampNs() <= last {
+				t.Fatalf("sample %d does not go forward in time within a run: %d after %d", i, s.GetOdometry().GetStampNs(), last)
 			}
 			last = s.GetOdometry().GetStampNs()
+		}
+		// Every frame dropped is given back with why (up to maxDrops).
+		drops := d.Drops(nil)
+		if dropped := st.Corrupted + st.Invalid; uint64(len(drops)) < min(dropped, maxDrops) {
+			t.Fatalf("%d drops for %d frames dropped: %+v", len(drops), dropped, st)
+		}
+		for _, dr := range drops {
+			if dr.Err == nil || dr.Err.Field == "" {
+				t.Fatalf("a drop without its reason: %+v", dr)
+			}
 		}
 		if odometry != st.Samples || starts != st.Restarts || odometry > uint64(len(frames)) || st.Frames != uint64(len(frames))+sp.invalid {
 			t.Fatalf("%d samples (%d run starts), %d frames (+%d invalid), stats %+v", odometry, starts, len(frames), sp.invalid, st)

@@ -11,6 +11,7 @@ import (
 	"strings"
 	"sync"
 	"testing"
+	"time"
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
@@ -234,5 +235,35 @@ func TestGatedWhy(t *testing.T) {
 		if got := gatedWhy(c.s); got != c.want {
 			t.Errorf("%v: %q, want %q", c.s, got, c.want)
 		}
+	}
+}
+
+// TestPrefaceHint: a listener that closes each connection before speaking
+// gRPC, as a service serving TLS does to a plain-text client (reckond
+// -tls-cert, tried by hand: the same error), leaves
+// grpc-go's "error reading server preface: EOF"; reckon adds what to check.
+func TestPrefaceHint(t *testing.T) {
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer lis.Close()
+	go func() {
+		for {
+			c, err := lis.Accept()
+			if err != nil {
+				return
+			}
+			// It reads the client's first bytes (a TLS server, its
+			// record header) and closes.
+			c.Read(make([]byte, 1024))
+			c.Close()
+		}
+	}()
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	defer cancel()
+	_, errs, code := runCode(t, ctx, "", "robots", "-addr", lis.Addr().String())
+	if code != exitUnreachable || !strings.Contains(errs, "server preface") || !strings.Contains(errs, "-tls-ca") {
+		t.Errorf("exit %d, stderr %q; want exit %d with the hint", code, errs, exitUnreachable)
 	}
 }

@@ -296,7 +296,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		reason = err.Error()
 	}
 	if reason != "" && !rd.full {
-		if err := rd.all(); err != nil {
+		if err := rd.rest(path, 0); err != nil {
 			return err
 		}
 		b = rd.b
@@ -312,7 +312,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		off = resync(b, 0)
 		if off < 0 {
 			sc.Good = 0
-			return st.tail(path, b, 0, reason, last)
+			return st.tail(path, b, 0, reason, last, rd.zeros)
 		}
 		if err := st.damage(path, b, 0, off, reason); err != nil {
 			return err
@@ -329,7 +329,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		}
 		end, reason := frameAt(b, off)
 		if reason != "" && !rd.full {
-			if err := rd.all(); err != nil {
+			if err := rd.rest(path, off); err != nil {
 				return err
 			}
 			b = rd.b
@@ -344,7 +344,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		}
 		next := resync(b, off+1)
 		if next < 0 {
-			return st.tail(path, b, off, reason, last)
+			return st.tail(path, b, off, reason, last, rd.zeros)
 		}
 		if err := st.damage(path, b, off, next, reason); err != nil {
 			return err
@@ -365,15 +365,20 @@ func (st *scanState) segment(path string, first, last bool) error {
 
 // tail takes the bytes from off to the end of a segment, where no valid
 // frame follows a bad one: the torn tail of the last segment, or damage at
-// the end of another.
-func (st *scanState) tail(path string, b []byte, off int, reason string, last bool) error {
+// the end of another. zeros counts the zero bytes past the end of b, of a
+// file too large to read whole (segmentReader.rest): they are spare, or
+// part of the torn tail or damage, but never kept.
+func (st *scanState) tail(path string, b []byte, off int, reason string, last bool, zeros int64) error {
 	if !last {
+		if zeros > 0 {
+			reason += fmt.Sprintf(" (then %d bytes of zeros to the end of the file, not kept)", zeros)
+		}
 		return st.damage(path, b, off, len(b), reason)
 	}
 	sc := st.sc
 	rest := b[off:]
 	if off > 0 && int64(off) == sc.Good && st.pending == nil && allZero(rest) {
-		sc.Spare = int64(len(rest))
+		sc.Spare = int64(len(rest)) + zeros
 		return nil
 	}
 	sc.Torn, sc.TornSegment = &TornError{int64(off), reason}, path

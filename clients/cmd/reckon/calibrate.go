@@ -42,7 +42,7 @@ With -report, the run is replayed under the configuration before and after
 into one HTML report with a calibration section at the top.`)
 	fs.SetOutput(stderr)
 	dir := fs.String("journal", "", "journal directory (with -robot)")
-	robot := fs.String("robot", "", "robot id or name in the journal")
+	robot := fs.String("robot", "", journalRobotHelp)
 	config := fs.String("config", "", "YAML robot configuration to start from (for -samples; for a journal it replaces the journal's own)")
 	samples := fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)")
 	out := fs.String("out", "", "the new YAML configuration; refused if it exists, unless -force")

@@ -29,7 +29,7 @@ inputs to damage is replayed past each gap, which is named; the exit status
 is then 1.`)
 	fs.SetOutput(stderr)
 	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
-	robot := fs.String("robot", "", "robot id or name in the journal")
+	robot := fs.String("robot", "", journalRobotHelp)
 	config := fs.String("config", "", "YAML robot configuration: replaces the journal's, or configures -samples")
 	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
 	format := fs.String("format", "csv", "csv, jsonl, or samples (the raw samples as JSON Lines); table also works")

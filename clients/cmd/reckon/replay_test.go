@@ -609,3 +609,29 @@ func TestReplayNeverOverwritesItsInput(t *testing.T) {
 		t.Errorf("the configuration was changed")
 	}
 }
+
+// TestReplaySetAside: a deleted robot's journal, set aside by the service,
+// replays under the name its files carry, {id}.deleted-{unix ns}, exactly
+// as it did live; a name that is not there is refused naming it.
+func TestReplaySetAside(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	live, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if err := journal.SetAside(nil, dir, "cart"); err != nil {
+		t.Fatal(err)
+	}
+	names, _ := filepath.Glob(filepath.Join(dir, "cart.manifest"+journal.DeletedMark+"*"))
+	if len(names) != 1 {
+		t.Fatalf("set aside as %v", names)
+	}
+	_, suffix, _ := strings.Cut(filepath.Base(names[0]), journal.DeletedMark)
+	aside, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart"+journal.DeletedMark+suffix)
+	if err != nil || aside != live {
+		t.Errorf("the set-aside journal replays differently (%d and %d bytes): %v\n%s", len(aside), len(live), err, errs)
+	}
+	if _, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart"); err == nil || !strings.Contains(err.Error()+errs, "no journal for cart") {
+		t.Errorf("replay of the deleted live name: %v\n%s", err, errs)
+	}
+}

@@ -28,7 +28,7 @@ type sourceFlags struct {
 func addSourceFlags(fs *flag.FlagSet) sourceFlags {
 	return sourceFlags{
 		journal: fs.String("journal", "", "journal directory (with -robot)"),
-		robot:   fs.String("robot", "", "robot id or name in the journal"),
+		robot:   fs.String("robot", "", journalRobotHelp),
 		config:  fs.String("config", "", "YAML robot configuration, for -samples"),
 		samples: fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)"),
 		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),

@@ -98,6 +98,12 @@ func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error)
 		}
 		rows = append(rows, got...)
 	}
+	if len(rows) == 0 && opt.Run > 0 {
+		// Empty tables with no word said that the journals hold no
+		// inputs, which they may.
+		t.abandon()
+		return nil, fmt.Errorf("%w: no journal holds a run %d", ErrNoRuns, opt.Run)
+	}
 	return rows, t.close()
 }
 

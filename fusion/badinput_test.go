@@ -2,7 +2,9 @@ package fusion
 
 import (
 	"errors"
+	"fmt"
 	"math"
+	"strings"
 	"testing"
 
 	"reckon.example/estimator"
@@ -409,4 +411,34 @@ func TestCountsRestartTakesNextSample(t *testing.T) {
 	})
 	jumpOnceAt100(t, "the restart", res)
 	samePose(t, "after a restart of the counts", restarted, unbroken)
+}
+
+// TestStampsNotInNanoseconds: a cart's ordinary motion (2 mm per 5 ms
+// interval, 0.4 m/s) stamped in microseconds or milliseconds looks a
+// thousand or a million times too fast. The refusal names the interval in
+// units that show it and asks whether the stamps are in nanoseconds; a
+// jump over an ordinary interval does not.
+func TestStampsNotInNanoseconds(t *testing.T) {
+	for _, c := range []struct {
+		unit     int64 // nanoseconds per stamp unit
+		interval string
+		hint     bool
+	}{{1e3, "5µs", true}, {1e6, "5ns", true}, {1, "5ms", false}} {
+		r, err := New(threeWheels())
+		if err != nil {
+			t.Fatal(err)
+		}
+		var res Result
+		for k := int64(0); k < 3 && res.Err == nil; k++ {
+			tr := []float64{0.002, 0.0021, 0.0001}
+			if c.unit == 1 && k == 2 {
+				tr = []float64{0.2, 0.2, 0} // 40 m/s: a jump
+			}
+			res = r.AddOdometry(Odometry{StartNs: k * 5e6 / c.unit, StampNs: (k + 1) * 5e6 / c.unit, TravelM: tr})
+		}
+		msg := fmt.Sprint(res.Err)
+		if !errors.Is(res.Err, ErrAbsurdJump) || !strings.Contains(msg, "over "+c.interval) || strings.Contains(msg, "nanoseconds?") != c.hint {
+			t.Errorf("stamps in units of %d ns: %v; want a jump over %s, asking about nanoseconds: %v", c.unit, res.Err, c.interval, c.hint)
+		}
+	}
 }

@@ -3,6 +3,7 @@ package fusion
 import (
 	"errors"
 	"fmt"
+	"math"
 
 	"gonum.org/v1/gonum/mat"
 
@@ -366,7 +367,10 @@ func (c *Config) checkNoise() error {
 // bounds a new robot is held to, naming the field: a client that creates a
 // robot must not be able to make the service allocate without bound
 // (trust.nis_window allocates its windows at creation; the others grow
-// with input). Each bound is far beyond its use. New and Validate do not
+// with input), an angle beyond a full turn was written in degrees, and a
+// length or duration far out of a small robot's range in another unit
+// (checkUnits).
+// Each bound is far beyond its use. New and Validate do not
 // check them, so that a journal written before they existed restores as
 // it was; the service checks them where robots are created (CreateRobot,
 // configuration files).
@@ -386,6 +390,29 @@ func (c Config) CheckBounds() error {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
 		}
 	}
+	// Angles within a full turn: one beyond it was written in degrees.
+	angle := func(name string, v float64) error {
+		if math.Abs(v) > 2*math.Pi {
+			return cfgErr(name, "%v is more than a full turn (2 pi rad): an angle in degrees? Angles are in radians", v)
+		}
+		return nil
+	}
+	if err := angle("start_pose.heading_rad", c.StartPose.Heading); err != nil {
+		return err
+	}
+	for i, w := range c.Wheels {
+		if err := angle(fmt.Sprintf("wheels[%d].direction_rad", i), w.DirectionRad); err != nil {
+			return err
+		}
+	}
+	for i, s := range c.Sensors {
+		if err := angle(fmt.Sprintf("sensors[%d].mount.heading_rad", i), s.Mount.Heading); err != nil {
+			return err
+		}
+	}
+	if err := c.checkUnits(); err != nil {
+		return err
+	}
 	// Positions as samples' (maxFieldM).
 	if !lengthsOK(c.StartPose.X, c.StartPose.Y) {
 		return cfgErr("start_pose", "%+v is not a field position within %g m of the origin", c.StartPose, maxFieldM)
@@ -401,6 +428,53 @@ func (c Config) CheckBounds() error {
 		}
 		if s.LatencyNs > maxWindowNs {
 			return cfgErr(fmt.Sprintf("sensors[%d].latency_ns", i), "%d is more than %d (a fix captured longer before its stamp than the longest history window could never be placed)", s.LatencyNs, int64(maxWindowNs))
+		}
+	}
+	return nil
+}
+
+// maxRobotM bounds how far from the reference point a wheel or a sensor's
+// mount may be (10 m: these are small robots, and a cart a few metres
+// long is the largest), and minDurationNs the durations a configuration
+// may set other than 0 (0.1 ms; no latency, window or gap is that short).
+const (
+	maxRobotM     = 10
+	minDurationNs = 100_000
+)
+
+// checkUnits refuses the values that were written in another unit than
+// their field's: a wheel or mount 120 m from the reference point was
+// meant in millimetres, a window of 1 ns in seconds, a latency of 20 ns in
+// milliseconds (common practice: the units mistakes of a configuration
+// written by hand).
+func (c *Config) checkUnits() error {
+	far := func(name string, x, y float64) error {
+		if math.Hypot(x, y) > maxRobotM {
+			return cfgErr(name, "(%g, %g) is more than %d m from the reference point: millimetres? Lengths are in metres", x, y, maxRobotM)
+		}
+		return nil
+	}
+	for i, w := range c.Wheels {
+		if err := far(fmt.Sprintf("wheels[%d]", i), w.XM, w.YM); err != nil {
+			return err
+		}
+	}
+	durations := []struct {
+		name string
+		v    int64
+	}{{"window_ns", c.WindowNs}, {"imu_latency_ns", c.IMULatencyNs}, {"max_odometry_gap_ns", c.MaxOdometryGapNs}}
+	for i, sen := range c.Sensors {
+		if err := far(fmt.Sprintf("sensors[%d].mount", i), sen.Mount.X, sen.Mount.Y); err != nil {
+			return err
+		}
+		durations = append(durations, struct {
+			name string
+			v    int64
+		}{fmt.Sprintf("sensors[%d].latency_ns", i), sen.LatencyNs})
+	}
+	for _, d := range durations {
+		if d.v > 0 && d.v < minDurationNs {
+			return cfgErr(d.name, "%d ns is less than 0.1 ms: seconds or milliseconds? Durations are in nanoseconds (0 for none or the default)", d.v)
 		}
 	}
 	return nil

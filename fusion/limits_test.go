@@ -45,14 +45,14 @@ func TestConfigUpperBounds(t *testing.T) {
 		}
 	}
 	// Positions that a float64 cannot keep to the millimetre (maxFieldM),
-	// as samples may not carry them either.
+	// as samples may not carry them either (a sensor's mount is bound to
+	// the robot's size: TestConfigUnitsMistakes).
 	for _, c := range []struct {
 		field string
 		set   func(c *Config, v float64)
 	}{
 		{"start_pose", func(c *Config, v float64) { c.StartPose.X = v }},
 		{"landmarks[0]", func(c *Config, v float64) { c.Landmarks[0].YM = -v }},
-		{"sensors[1].mount", func(c *Config, v float64) { c.Sensors[1].Mount.X = v }},
 	} {
 		cfg := threeWheels()
 		c.set(&cfg, 1e20)
@@ -66,6 +66,38 @@ func TestConfigUpperBounds(t *testing.T) {
 		c.set(&cfg, maxFieldM)
 		if err := cfg.CheckBounds(); err != nil {
 			t.Errorf("%s at %g m: %v", c.field, maxFieldM, err)
+		}
+	}
+}
+
+// TestConfigAnglesInDegrees: an angle of a configuration beyond a full
+// turn (2 pi rad) is an angle in degrees, the units mistake a person
+// makes writing one by hand (direction_rad: 90 for a lateral wheel):
+// CheckBounds refuses it naming the field, where it was taken as 90 rad
+// (116.6 degrees after wrapping) and every lateral count went a wrong
+// way. New still takes it (a journal written before the bound may hold
+// one); a full turn is taken.
+func TestConfigAnglesInDegrees(t *testing.T) {
+	for _, c := range []struct {
+		field string
+		set   func(c *Config, v float64)
+	}{
+		{"wheels[2].direction_rad", func(c *Config, v float64) { c.Wheels[2].DirectionRad = v }},
+		{"start_pose.heading_rad", func(c *Config, v float64) { c.StartPose.Heading = -v }},
+		{"sensors[1].mount.heading_rad", func(c *Config, v float64) { c.Sensors[1].Mount.Heading = v }},
+	} {
+		cfg := threeWheels()
+		c.set(&cfg, 90)
+		if err := cfg.CheckBounds(); !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "degrees") {
+			t.Errorf("%s of 90: %v", c.field, err)
+		}
+		if _, err := New(cfg); err != nil {
+			t.Errorf("New refuses %s of 90, as an old journal may hold it: %v", c.field, err)
+		}
+		cfg = threeWheels()
+		c.set(&cfg, 2*math.Pi)
+		if err := cfg.CheckBounds(); err != nil {
+			t.Errorf("%s of 2 pi: %v", c.field, err)
 		}
 	}
 }
@@ -105,5 +137,39 @@ func TestWindowEntryLimit(t *testing.T) {
 	}
 	if res := fix(start + 5000); res.Verdict != VerdictApplied && res.Verdict != VerdictGated {
 		t.Errorf("a fix inside the window: %v %v", res.Verdict, res.Err)
+	}
+}
+
+// TestConfigUnitsMistakes: lengths written in millimetres and durations
+// in seconds or milliseconds, where their fields take metres and
+// nanoseconds, are refused by CheckBounds naming the field and the unit
+// it takes; New still takes them (a journal written before the bound may
+// hold one), and the values of a small robot pass.
+func TestConfigUnitsMistakes(t *testing.T) {
+	for _, c := range []struct {
+		field, unit string
+		set         func(c *Config)
+	}{
+		{"wheels[0]", "metres", func(c *Config) { c.Wheels[0].YM = 120 }},
+		{"sensors[1].mount", "metres", func(c *Config) { c.Sensors[1].Mount.X = 150 }},
+		{"window_ns", "nanoseconds", func(c *Config) { c.WindowNs = 1 }},
+		{"imu_latency_ns", "nanoseconds", func(c *Config) { c.IMULatencyNs = 20 }},
+		{"max_odometry_gap_ns", "nanoseconds", func(c *Config) { c.MaxOdometryGapNs = 30 }},
+		{"sensors[0].latency_ns", "nanoseconds", func(c *Config) { c.Sensors[0].LatencyNs = 80 }},
+	} {
+		cfg := threeWheels()
+		c.set(&cfg)
+		if err := cfg.CheckBounds(); !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), c.unit) {
+			t.Errorf("%s: %v; want a refusal naming it and %s", c.field, err, c.unit)
+		}
+		if _, err := New(cfg); err != nil {
+			t.Errorf("New refuses the %s mistake, as an old journal may hold it: %v", c.field, err)
+		}
+	}
+	// A cart 1.2 m long with a camera on a mast, 80 ms late, a 2 s window.
+	cfg := threeWheels()
+	cfg.Wheels[0].XM, cfg.Sensors[1].Mount.X, cfg.Sensors[0].LatencyNs, cfg.WindowNs = 0.6, 0.9, 80e6, 2e9
+	if err := cfg.CheckBounds(); err != nil {
+		t.Errorf("a small robot's values: %v", err)
 	}
 }

@@ -3,6 +3,7 @@ package fusion
 import (
 	"fmt"
 	"math"
+	"time"
 
 	"reckon.example/estimator"
 )
@@ -212,11 +213,27 @@ func (r *Robot) interval(o *Odometry, travel []float64, res *odoResult) (t0, dtN
 // max_turn_rate_rad_per_s over dt seconds.
 func (r *Robot) checkJump(s estimator.Step, dt float64) error {
 	if v := math.Hypot(s.ForwardM, s.LeftM) / dt; v > r.cfg.MaxSpeedMPerS {
-		return fmt.Errorf("%w: %.3g m/s over %.3f s exceeds max_speed_m_per_s %g", ErrAbsurdJump, v, dt, r.cfg.MaxSpeedMPerS)
+		return fmt.Errorf("%w: %.3g m/s over %v exceeds max_speed_m_per_s %g%s", ErrAbsurdJump, v, seconds(dt), r.cfg.MaxSpeedMPerS, shortHint(dt))
 	} else if w := math.Abs(s.TurnRad) / dt; w > r.cfg.MaxTurnRateRadPerS {
-		return fmt.Errorf("%w: %.3g rad/s over %.3f s exceeds max_turn_rate_rad_per_s %g", ErrAbsurdJump, w, dt, r.cfg.MaxTurnRateRadPerS)
+		return fmt.Errorf("%w: %.3g rad/s over %v exceeds max_turn_rate_rad_per_s %g%s", ErrAbsurdJump, w, seconds(dt), r.cfg.MaxTurnRateRadPerS, shortHint(dt))
 	}
 	return nil
+}
+
+// seconds is dt seconds as a duration, for messages (0.000 s said nothing
+// of an interval of microseconds).
+func seconds(dt float64) time.Duration { return time.Duration(math.Round(dt * 1e9)) }
+
+// shortHint adds to the refusal of a jump over an interval shorter than a
+// millisecond that the stamps may not be in nanoseconds: odometry read
+// faster than 1 kHz is rare (common practice), while stamps in
+// microseconds or milliseconds are a common wiring mistake, and make a
+// robot's ordinary motion look a thousand or a million times too fast.
+func shortHint(dt float64) string {
+	if dt >= 1e-3 {
+		return ""
+	}
+	return " (odometry samples this close: are the stamps in nanoseconds? stamp_ns counts nanoseconds)"
 }
 
 // checkOdometry reports what is wrong with o before it is taken: shape,

@@ -59,7 +59,7 @@ func serveLoopback(tc testConfig) (addr string, stop func() error, err error) {
 	served := make(chan error, 1)
 	go func() { served <- gs.Serve(lis) }()
 	return lis.Addr().String(), func() error {
-		srv.EndWatches()
+		srv.EndStreams()
 		gs.GracefulStop()
 		return errors.Join(<-served, srv.Close())
 	}, nil

@@ -80,9 +80,16 @@ func (b *inbox) takeNow(prev []*arrivedRequest) []*arrivedRequest {
 
 // wait waits until requests wait to be taken, or a signal on wake (nil:
 // none) comes, and returns nil; once receiving has ended and nothing waits,
-// it returns the end's error.
-func (b *inbox) wait(ctx context.Context, wake <-chan struct{}) error {
+// it returns the end's error, and once stop is closed, errStopping.
+func (b *inbox) wait(ctx context.Context, wake, stop <-chan struct{}) error {
 	for {
+		select {
+		case <-stop:
+			// Before what waits: a client that keeps sending would
+			// otherwise keep the stream going.
+			return errStopping
+		default:
+		}
 		b.mu.Lock()
 		n, ended := len(b.pending), b.ended
 		b.mu.Unlock()
@@ -96,6 +103,8 @@ func (b *inbox) wait(ctx context.Context, wake <-chan struct{}) error {
 		case <-b.ready:
 		case <-wake:
 			return nil
+		case <-stop:
+			return errStopping
 		case <-ctx.Done():
 			return ctx.Err()
 		}

@@ -28,7 +28,7 @@ func TestInbox(t *testing.T) {
 	var batch []*arrivedRequest
 	next := uint64(0)
 	for {
-		if err := b.wait(ctx, nil); err != nil {
+		if err := b.wait(ctx, nil, nil); err != nil {
 			if err != io.EOF {
 				t.Fatal(err)
 			}
@@ -62,7 +62,7 @@ func TestInboxCancel(t *testing.T) {
 	}
 	putErr, takeErr := make(chan error), make(chan error)
 	go func() { putErr <- full.put(ctx, &arrivedRequest{}, true) }()
-	go func() { takeErr <- newInbox().wait(ctx, nil) }()
+	go func() { takeErr <- newInbox().wait(ctx, nil, nil) }()
 	time.Sleep(10 * time.Millisecond)
 	cancel()
 	for _, c := range []chan error{putErr, takeErr} {

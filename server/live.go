@@ -125,7 +125,7 @@ func (s *Server) OpenLive() (*Live, error) {
 // Notify receives a value when updates are waiting.
 func (l *Live) Notify() <-chan struct{} { return l.notify }
 
-// Done is closed when the server ends its watches (EndWatches, Close).
+// Done is closed when the server ends its watches (EndStreams, Close).
 func (l *Live) Done() <-chan struct{} {
 	h := &l.s.live
 	h.mu.Lock()
@@ -232,7 +232,7 @@ func (h *liveHub) publish(u func() LiveUpdate) {
 // watched tells whether a live view is open; it costs one atomic load.
 func (h *liveHub) watched() bool { return h.open.Load() > 0 }
 
-// end ends every live view (EndWatches, Close).
+// end ends every live view (EndStreams, Close).
 func (h *liveHub) end() {
 	h.mu.Lock()
 	defer h.mu.Unlock()

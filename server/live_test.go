@@ -84,7 +84,7 @@ func TestLiveConflates(t *testing.T) {
 
 // TestLiveLimit: past MaxViewers open views, another is refused
 // RESOURCE_EXHAUSTED naming -max-viewers; a closed view frees its place;
-// EndWatches ends the views.
+// EndStreams ends the views.
 func TestLiveLimit(t *testing.T) {
 	s, err := New(Options{Limits: Limits{MaxViewers: 2}})
 	if err != nil {
@@ -108,10 +108,10 @@ func TestLiveLimit(t *testing.T) {
 	if err != nil {
 		t.Fatalf("view after one closed: %v", err)
 	}
-	s.EndWatches()
+	s.EndStreams()
 	select {
 	case <-c.Done():
 	default:
-		t.Error("EndWatches left a view open")
+		t.Error("EndStreams left a view open")
 	}
 }

@@ -107,6 +107,10 @@ type Server struct {
 
 	stopSync chan struct{}
 	syncDone chan struct{}
+	// stopping is closed by EndStreams: ingest streams then end after
+	// taking what they have received.
+	stopping chan struct{}
+	stopOnce sync.Once
 	// whole, when not nil, syncs every due journal with one syncfs
 	// (journal.WholeSync; the operating system's file system on Linux 5.8
 	// and later).
@@ -179,7 +183,7 @@ func New(opt Options) (*Server, error) {
 			return nil, err
 		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{})}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
 		// each journal syncs by itself as elsewhere.
@@ -286,14 +290,23 @@ func (s *Server) prefault(r *robot, j journalWriter) {
 	}
 }
 
-// EndWatches ends every open watch stream (before a graceful stop, which
-// would otherwise wait for them).
-func (s *Server) EndWatches() {
+// EndStreams ends every open stream, before a graceful stop, which would
+// otherwise wait for them: a robot's controller streams its samples for as
+// long as the service runs. Watch streams and live views end at once; an
+// ingest stream takes and answers what it has received, then ends with
+// UNAVAILABLE (errStopping). A sample sent after that has no verdict: it
+// was not taken, and is resent on the same session when the service
+// serves again.
+func (s *Server) EndStreams() {
+	s.stopOnce.Do(func() { close(s.stopping) })
 	for _, r := range s.list() {
 		r.hub.close()
 	}
 	s.live.end()
 }
+
+// errStopping ends the ingest streams when the service stops (EndStreams).
+var errStopping = status.Error(codes.Unavailable, "the service is stopping: every sample without a verdict was not taken; resend it on the same session when the service serves again")
 
 // Close syncs and closes every journal and ends every watch.
 func (s *Server) Close() error {
@@ -601,7 +614,7 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	sendErr := make(chan error, 1)
 	go func() { sendErr <- snd.run() }()
 	ob := newOutbox()
-	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob, done: ctx.Done(), sc: scratch{verdicts: slab{next: verdictSlabStart}}}
+	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob, done: ctx.Done(), stop: s.stopping, sc: scratch{verdicts: slab{next: verdictSlabStart}}}
 	go t.receive(ctx, stream)
 	err := t.takeBatches(ctx)
 	if err == nil {
@@ -653,6 +666,8 @@ type ingestTurn struct {
 	// every take walks grpc-go's chain of contexts to the one that is
 	// cancelled (BenchmarkRobotRates' profile).
 	done <-chan struct{}
+	// stop is closed when the service stops (Server.EndStreams).
+	stop <-chan struct{}
 
 	mu       sync.Mutex
 	batch    []*arrivedRequest // reused by the holder of mu
@@ -758,18 +773,32 @@ func (t *ingestTurn) takeHere(ctx context.Context) (took bool, end time.Time) {
 // for this one's held inputs (ob), waking for them too.
 func (t *ingestTurn) takeBatches(ctx context.Context) error {
 	for {
-		if err := t.in.wait(ctx, t.ob.ready); err != nil {
-			if err != io.EOF {
-				return err
-			}
-			// Ended: take what the receiver left.
+		if err := t.in.wait(ctx, t.ob.ready, t.stop); err != nil {
 			t.mu.Lock()
 			defer t.mu.Unlock()
-			for t.err == nil {
-				if t.batch = t.in.takeNow(t.batch); len(t.batch) == 0 {
-					break
+			switch {
+			case err == io.EOF:
+				// Ended: take what the receiver left.
+				for t.err == nil {
+					if t.batch = t.in.takeNow(t.batch); len(t.batch) == 0 {
+						break
+					}
+					t.err = t.takeOne(ctx, t.batch)
 				}
+			case err == errStopping && t.err == nil:
+				// The service stops: take what was received, once (a
+				// client that keeps sending would keep it going).
+				t.batch = t.in.takeNow(t.batch)
 				t.err = t.takeOne(ctx, t.batch)
+			}
+			if t.err == nil {
+				// Holding the turn, so that the receiver, which takes
+				// nothing once t.err is set, is not taking either when
+				// the stream's sender is closed.
+				t.err = err
+			}
+			if err == io.EOF && t.err == err {
+				return nil
 			}
 			return t.err
 		}

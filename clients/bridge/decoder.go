@@ -21,7 +21,7 @@ type Stats struct {
 	// Invalid is the number of frames with a good CRC that this decoder
 	// does not take: unknown type or flags, a stamp past MaxStampUs or a
 	// heading that is not finite, or, within one boot, a wheel count that
-	// differs from the earlier frames' or a stamp behind the last taken
+	// differs from the earlier frames' or a stamp not after the last taken
 	// frame's although its counter is ahead.
 	Invalid uint64
 	// Duplicates is the number of frames dropped because a frame with the
@@ -34,8 +34,8 @@ type Stats struct {
 	// Skipped is the number of counter values jumped over when a frame
 	// was taken: frames lost, or arriving later and then Reordered.
 	Skipped uint64
-	// Restarts is the number of times the boot byte changed (or differed
-	// from the one Decoder.Resume named): each begins a new run.
+	// Restarts is the number of times the boot byte changed (or the first
+	// frame showed a restart to Decoder.Resume): each begins a new run.
 	Restarts uint64
 	// Samples is the number of samples produced.
 	Samples uint64
@@ -52,13 +52,39 @@ type Splitter struct {
 	frames    uint64
 	corrupted uint64
 	invalid   uint64
+	drops     []Drop // those of the last AppendFrames call, at most maxDrops
+	base, n   int    // len(dst) when AppendFrames was called, and now
+}
+
+// Drop is a frame dropped as corrupted or invalid, and why; or, of Kind
+// ErrBehind, a long run of frames dropped as duplicates or reordered.
+type Drop struct {
+	// Err is a *FrameError naming the field that was wrong.
+	Err *FrameError
+	at  int // the Splitter's: how many frames of its call came before it
+}
+
+// maxDrops bounds the drops a Decoder keeps until Drops takes them; the
+// ones past it are only counted in Stats.
+const maxDrops = 64
+
+func (s *Splitter) drop(err error) {
+	var fe *FrameError
+	if !errors.As(err, &fe) {
+		fe = &FrameError{Kind: ErrCorrupt, Field: "stuffing", Detail: err.Error()}
+	}
+	if len(s.drops) < maxDrops {
+		s.drops = append(s.drops, Drop{Err: fe, at: s.n - s.base})
+	}
 }
 
 // AppendFrames appends to dst every frame that ends in p (the bytes of p
 // after its last delimiter are kept for the next call) and returns dst.
 // Each appended frame has its own Counts slice.
 func (s *Splitter) AppendFrames(dst []Frame, p []byte) []Frame {
+	s.drops, s.base = s.drops[:0], len(dst)
 	for len(p) > 0 {
+		s.n = len(dst)
 		i := 0
 		for i < len(p) && p[i] != 0 {
 			i++
@@ -86,6 +112,7 @@ func (s *Splitter) end() (Frame, bool) {
 	defer func() { s.buf, s.overlong = s.buf[:0], false }()
 	if s.overlong {
 		s.corrupted++
+		s.drop(frameErr(ErrCorrupt, "length", "more than %d bytes before a 0x00 delimiter", MaxEncodedLen))
 		return Frame{}, false
 	}
 	if len(s.buf) == 0 {
@@ -94,7 +121,9 @@ func (s *Splitter) end() (Frame, bool) {
 	var err error
 	s.raw, err = AppendUnCOBS(s.raw[:0], s.buf)
 	var f Frame
-	if err == nil {
+	if err != nil {
+		err = frameErr(ErrCorrupt, "stuffing", "malformed COBS: a code byte points past the frame's end")
+	} else {
 		err = ParseFrame(&f, s.raw)
 	}
 	switch {
@@ -107,8 +136,16 @@ func (s *Splitter) end() (Frame, bool) {
 	default:
 		s.corrupted++
 	}
+	s.drop(err)
 	return Frame{}, false
 }
+
+// behindLimit is how many frames of the current boot in a row dropped as
+// duplicates or reordered make a Sequencer say so (and again at every
+// further behindLimit): a link reorders a few frames, not a second's worth;
+// a controller that restarted without changing its boot byte sends
+// nothing but such frames until its counter passes the old one.
+const behindLimit = 100
 
 // staleBootLimit is how many frames of the previous boot in a row make a
 // Sequencer take that boot as a new one.
@@ -121,8 +158,9 @@ const staleBootLimit = 16
 // # Invariants
 //
 // The samples it produces within one boot have strictly increasing frame
-// counters and non-decreasing stamps, so the service never sees time go
-// backwards because of the link. A frame is taken when its counter is
+// counters and strictly increasing stamps, so the service never sees time
+// go backwards because of the link (it refuses odometry stamped at or
+// before its newest). A frame is taken when its counter is
 // ahead of the last taken one's in serial number arithmetic (RFC 1982):
 // (Counter - last) as a signed 32-bit integer is positive.
 //
@@ -159,10 +197,17 @@ type Sequencer struct {
 	counts     []int32 // the last taken frame's counts
 	cumulative []int64
 	stats      Stats
+	invalid    *FrameError // why the last frame counted Invalid was
+	behind     int         // frames of this boot dropped in a row as duplicates or reordered
+	behindErr  *FrameError // said at every behindLimit of them
 	// resumed: the robot's current run is of boot byte resumedBoot
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
 	resumedBoot uint8
+	// resumedNs: the robot's newest odometry, of a run whose boot the
+	// link does not know (0: none); a first frame stamped at or before it
+	// is of a controller that restarted (Decoder.Resume).
+	resumedNs int64
 }
 
 // Take returns the sample for f, or nil if f is dropped.
@@ -177,10 +222,10 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		if s.started {
 			s.stats.Restarts++
 			s.retired, s.old = true, s.boot
-		} else if s.resumed && f.Boot != s.resumedBoot {
+		} else if s.resumed && f.Boot != s.resumedBoot || s.resumedNs > 0 && int64(f.StampUs)*1000 <= s.resumedNs {
 			s.stats.Restarts++
 		}
-		s.started, s.boot, s.counter, s.stampUs = true, f.Boot, f.Counter, f.StampUs
+		s.started, s.boot, s.counter, s.stampUs, s.behind = true, f.Boot, f.Counter, f.StampUs, 0
 		s.counts = append(s.counts[:0], f.Counts...)
 		s.cumulative = s.cumulative[:0]
 		for _, c := range f.Counts {
@@ -190,17 +235,30 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 	}
 	s.stale = 0
 	ahead := int32(f.Counter - s.counter)
-	switch {
-	case ahead == 0:
-		s.stats.Duplicates++
-		return nil
-	case ahead < 0:
-		s.stats.Reordered++
-		return nil
-	case len(f.Counts) != len(s.counts) || f.StampUs < s.stampUs:
-		s.stats.Invalid++
+	if ahead <= 0 {
+		if ahead == 0 {
+			s.stats.Duplicates++
+		} else {
+			s.stats.Reordered++
+		}
+		if s.behind++; s.behind%behindLimit == 0 {
+			s.behindErr = frameErr(ErrBehind, "counter", "%d frames in a row not ahead of the last taken frame's counter %d (the latest: counter %d, stamp %d us); did the controller restart without changing its boot byte? (PROTOCOL.md, \"Reboots\")",
+				s.behind, s.counter, f.Counter, f.StampUs)
+		}
 		return nil
 	}
+	switch {
+	case len(f.Counts) != len(s.counts):
+		s.stats.Invalid++
+		s.invalid = frameErr(ErrInvalid, "wheels", "%d, the earlier frames of boot %d had %d", len(f.Counts), s.boot, len(s.counts))
+		return nil
+	case f.StampUs <= s.stampUs:
+		s.stats.Invalid++
+		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is not after the last taken frame's %d us although its counter %d is ahead of %d (the controller's clock must not go back within a boot)",
+			f.StampUs, s.stampUs, f.Counter, s.counter)
+		return nil
+	}
+	s.behind = 0
 	s.stats.Skipped += uint64(ahead - 1)
 	s.counter, s.stampUs = f.Counter, f.StampUs
 	for i, c := range f.Counts {
@@ -231,6 +289,13 @@ type Decoder struct {
 	split  Splitter
 	seq    Sequencer
 	frames []Frame
+	drops  []Drop // in arrival order, until Drops takes them; at most maxDrops
+}
+
+func (d *Decoder) drop(dr Drop) {
+	if len(d.drops) < maxDrops {
+		d.drops = append(d.drops, dr)
+	}
 }
 
 // Decode appends to dst the samples of the frames that end in p and
@@ -239,14 +304,29 @@ type Decoder struct {
 // next call.
 func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 	d.frames = d.split.AppendFrames(d.frames[:0], p)
+	split := d.split.drops // the frames the splitter dropped, among d.frames
+	j := 0
 	for i := range d.frames {
-		restarts := d.seq.stats.Restarts
-		if s := d.seq.Take(&d.frames[i]); s != nil {
+		for ; j < len(split) && split[j].at <= i; j++ {
+			d.drop(split[j])
+		}
+		restarts, invalid, behind := d.seq.stats.Restarts, d.seq.stats.Invalid, d.seq.behindErr
+		s := d.seq.Take(&d.frames[i])
+		if d.seq.stats.Invalid != invalid {
+			d.drop(Drop{Err: d.seq.invalid})
+		}
+		if d.seq.behindErr != behind {
+			d.drop(Drop{Err: d.seq.behindErr})
+		}
+		if s != nil {
 			if d.seq.stats.Restarts != restarts {
 				dst = append(dst, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: BootID(d.seq.boot)}}})
 			}
 			dst = append(dst, s)
 		}
+	}
+	for ; j < len(split); j++ {
+		d.drop(split[j])
 	}
 	return dst
 }
@@ -257,14 +337,31 @@ func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 func BootID(boot uint8) string { return fmt.Sprintf("link-boot-%02x", boot) }
 
 // Resume tells the decoder the boot id of the robot's current run
-// (Robot.boot_id): when it is a link boot id and the first frame's boot
-// byte differs, the controller restarted while no bridge was listening,
-// and the decoder begins a new run there too. Call it before Decode.
-func (d *Decoder) Resume(bootID string) {
+// (Robot.boot_id) and its newest odometry stamp (Robot.newest_stamp_ns),
+// so that it begins a new run at its first frame if the controller
+// restarted while no bridge was listening. When the run's boot id is a
+// link boot id, the first frame's boot byte says so precisely. Otherwise
+// (the robot's first run, or a run started by hand) a first frame stamped
+// at or before the newest odometry says so: the controller's clock started
+// again, and the service would refuse its odometry as time going
+// backwards; a controller that ran on stamps after it. Call it before
+// Decode.
+func (d *Decoder) Resume(bootID string, newestNs int64) {
 	var b uint8
 	if _, err := fmt.Sscanf(bootID, "link-boot-%02x", &b); err == nil && bootID == BootID(b) {
 		d.seq.resumed, d.seq.resumedBoot = true, b
+		return
 	}
+	d.seq.resumedNs = newestNs
+}
+
+// Drops appends to dst the frames dropped as corrupted or invalid since
+// the last call, with why (at most 64 of them; the counts in Stats are
+// complete), and returns dst.
+func (d *Decoder) Drops(dst []Drop) []Drop {
+	dst = append(dst, d.drops...)
+	d.drops = d.drops[:0]
+	return dst
 }
 
 // Stats returns the counts so far.

@@ -2,7 +2,9 @@ package bridge
 
 import (
 	"bytes"
+	"errors"
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"strings"
 	"testing"
@@ -79,6 +81,11 @@ func TestSequencer(t *testing.T) {
 		{"stamp past 2^32 us", []Frame{wheels(0, 1, late, 0), wheels(0, 2, late+1000, 1)},
 			[]sampleOf{{late * 1000, []int64{0}, -100}, {(late + 1000) * 1000, []int64{1}, -100}}, Stats{Samples: 2}},
 		{"stamp behind with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 4000, 1), wheels(0, 3, 6000, 2)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+		// The service refuses odometry not after the newest (time_backwards):
+		// a frame read within the same microsecond is the link's to drop,
+		// its counts carried by the next frame.
+		{"same stamp with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 5000, 1), wheels(0, 3, 6000, 2)},
 			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
 		{"frame counter wraps", []Frame{wheels(0, 1<<32-1, 10, 0), wheels(0, 0, 20, 1), wheels(0, 1<<32-1, 10, 0)},
 			[]sampleOf{{10_000, []int64{0}, -100}, {20_000, []int64{1}, -100}}, Stats{Samples: 2, Reordered: 1}},
@@ -197,21 +204,32 @@ func FuzzDecoder(f *testing.F) {
 		samples := d.Decode(nil, data)
 		st := d.Stats()
 		var odometry, starts uint64
-		var last int64
+		var last int64 = -1
 		for i, s := range samples {
 			if s.GetRunStart() != nil {
 				if i+1 == len(samples) || samples[i+1].GetOdometry() == nil {
 					t.Fatalf("run start %d is not followed by odometry", i)
 				}
 				starts++
-				last = 0
+				last = -1
 				continue
 			}
 			odometry++
-			if s.GetOdometry().GetStampNs() < last {
-				t.Fatalf("sample %d goes back in time within a run: %d after %d", i, s.GetOdometry().GetStampNs(), last)
+			// The service refuses odometry not after its newest.
+			if s.GetOdometry().GetStampNs() <= last {
+				t.Fatalf("sample %d does not go forward in time within a run: %d after %d", i, s.GetOdometry().GetStampNs(), last)
 			}
 			last = s.GetOdometry().GetStampNs()
+		}
+		// Every frame dropped is given back with why (up to maxDrops).
+		drops := d.Drops(nil)
+		if dropped := st.Corrupted + st.Invalid; uint64(len(drops)) < min(dropped, maxDrops) {
+			t.Fatalf("%d drops for %d frames dropped: %+v", len(drops), dropped, st)
+		}
+		for _, dr := range drops {
+			if dr.Err == nil || dr.Err.Field == "" {
+				t.Fatalf("a drop without its reason: %+v", dr)
+			}
 		}
 		if odometry != st.Samples || starts != st.Restarts || odometry > uint64(len(frames)) || st.Frames != uint64(len(frames))+sp.invalid {
 			t.Fatalf("%d samples (%d run starts), %d frames (+%d invalid), stats %+v", odometry, starts, len(frames), sp.invalid, st)
@@ -225,7 +243,9 @@ func FuzzDecoder(f *testing.F) {
 // TestDecoderRunStart: a controller restart (another boot byte) puts a run
 // start naming the new boot before its first sample; a decoder resumed on
 // a robot whose current run is of another boot starts a run at its first
-// frame, and one resumed on the same boot does not.
+// frame, and one resumed on the same boot does not; on a run of no link
+// boot, the first frame's stamp decides: at or before the robot's newest
+// odometry, the controller's clock started again.
 func TestDecoderRunStart(t *testing.T) {
 	kinds := func(samples []*pb.Sample) string {
 		var b strings.Builder
@@ -243,17 +263,111 @@ func TestDecoderRunStart(t *testing.T) {
 	if want := "odo(9000000) start(link-boot-05) odo(30000) odo(40000) "; got != want {
 		t.Errorf("restart:\n got %s\nwant %s", got, want)
 	}
-	for _, c := range []struct{ resume, want string }{
-		{"link-boot-04", "start(link-boot-05) odo(30000) "},
-		{"link-boot-05", "odo(30000) "},
-		{"", "odo(30000) "},
-		{"by-hand-1", "odo(30000) "},
-		{"link-boot-5", "odo(30000) "}, // not a link boot id: two hex digits
+	for _, c := range []struct {
+		resume string
+		newest int64 // the robot's newest odometry, ns
+		want   string
+	}{
+		{"link-boot-04", 0, "start(link-boot-05) odo(30000) "},
+		{"link-boot-04", 9_000_000, "start(link-boot-05) odo(30000) "},
+		{"link-boot-05", 9_000_000, "odo(30000) "}, // the boot byte decides
+		{"", 0, "odo(30000) "},                     // a new robot
+		{"", 29_999, "odo(30000) "},                // the controller ran on
+		{"", 30_000, "start(link-boot-05) odo(30000) "},
+		{"", 9_000_000, "start(link-boot-05) odo(30000) "}, // its clock started again
+		{"by-hand-1", 20_000, "odo(30000) "},
+		{"by-hand-1", 9_000_000, "start(link-boot-05) odo(30000) "},
+		{"link-boot-5", 9_000_000, "start(link-boot-05) odo(30000) "}, // not a link boot id: two hex digits
 	} {
 		var d Decoder
-		d.Resume(c.resume)
+		d.Resume(c.resume, c.newest)
 		if got := kinds(d.Decode(nil, encode(wheels(5, 0, 30, 0)))); got != c.want {
 			t.Errorf("resumed on %q: %s, want %s", c.resume, got, c.want)
 		}
+	}
+}
+
+// TestDecoderDrops: every frame dropped as corrupted or invalid is given
+// back by Drops with the field that was wrong, as many as Stats counts:
+// random bytes between delimiters of every length from 0 to 300 (seeded;
+// a random block passes the CRC once in 2^32), then frames each wrong in
+// one field.
+func TestDecoderDrops(t *testing.T) {
+	var d Decoder
+	var drops []Drop
+	r := rand.New(rand.NewPCG(3, 3))
+	for n := 0; n <= 300; n++ {
+		b := make([]byte, n)
+		for i := range b {
+			b[i] = byte(1 + r.IntN(255))
+		}
+		if ss := d.Decode(nil, append(b, 0)); len(ss) != 0 {
+			t.Fatalf("%d random bytes gave samples %v", n, shorts(ss))
+		}
+		drops = d.Drops(drops)
+	}
+	st := d.Stats()
+	if uint64(len(drops)) != st.Corrupted+st.Invalid || st.Corrupted != 300 {
+		t.Fatalf("%d drops, stats %+v: want one per non-empty block", len(drops), st)
+	}
+	for _, dr := range drops {
+		if dr.Err.Field == "" || !errors.Is(dr.Err, ErrCorrupt) && !errors.Is(dr.Err, ErrInvalid) {
+			t.Errorf("drop %v: no field or kind", dr.Err)
+		}
+	}
+
+	badCRC := AppendRawFrame(nil, &Frame{Type: FrameWheels, Counter: 2, StampUs: 20, Counts: []int32{1}})
+	badCRC[len(badCRC)-1] ^= 1
+	nan := wheels(0, 3, 30, 1)
+	nan.HasHeading, nan.HeadingRad = true, float32(math.NaN())
+	typ := wheels(0, 4, 40, 1)
+	typ.Type = 7
+	stream := cat(encode(wheels(0, 1, 10, 0)), AppendCOBS(nil, badCRC), []byte{0}, encode(nan, typ),
+		encode(wheels(0, 5, 5, 2), wheels(0, 6, 60, 2, 2), wheels(0, 7, 70, 3)), bytes.Repeat([]byte{9}, MaxEncodedLen+1), []byte{0})
+	var fresh Decoder
+	ss := fresh.Decode(nil, stream)
+	var got []string
+	for _, dr := range fresh.Drops(nil) {
+		got = append(got, fmt.Sprintf("%v/%s", dr.Err.Kind, dr.Err.Field))
+	}
+	want := []string{"bridge: corrupted frame/crc", "bridge: invalid frame/heading", "bridge: invalid frame/type",
+		"bridge: invalid frame/stamp", "bridge: invalid frame/wheels", "bridge: corrupted frame/length"}
+	if strings.Join(got, ", ") != strings.Join(want, ", ") || len(ss) != 2 {
+		t.Errorf("drops %q, want %q; %d samples, want 2", got, want, len(ss))
+	}
+	if more := fresh.Drops(nil); len(more) != 0 {
+		t.Errorf("drops given twice: %v", more)
+	}
+}
+
+// TestDecoderBehindRun: a controller that restarts without changing its
+// boot byte sends frames whose counters are behind the last taken one; they
+// are dropped as reordered until its counter passes the old one (at 100
+// frames a second, 10000 frames behind take 100 s), and at every 100 in a
+// row Drops says so, naming the boot byte. A few reordered frames among
+// ones taken say nothing.
+func TestDecoderBehindRun(t *testing.T) {
+	var d Decoder
+	var frames []Frame
+	for k := range 10 {
+		frames = append(frames, wheels(7, uint32(10_000+k), uint64(1_000_000+10_000*k), int32(k)))
+	}
+	frames = append(frames, wheels(7, 10_005, 1_050_000, 5), wheels(7, 10_010, 1_100_000, 10)) // reordered, then taken
+	for k := range 250 {                                                                       // restarted: counter and clock from zero
+		frames = append(frames, wheels(7, uint32(k), uint64(10_000*k), int32(k)))
+	}
+	ss := d.Decode(nil, encode(frames...))
+	drops := d.Drops(nil)
+	if len(ss) != 11 || len(drops) != 2 {
+		t.Fatalf("%d samples, drops %v; want 11 samples and 2 drops", len(ss), drops)
+	}
+	for i, dr := range drops {
+		want := fmt.Sprintf("bridge: frames behind: counter: %d frames in a row not ahead of the last taken frame's counter 10010", 100*(i+1))
+		if !strings.HasPrefix(dr.Err.Error(), want) || !strings.Contains(dr.Err.Error(), "without changing its boot byte") {
+			t.Errorf("drop %d: %v", i, dr.Err)
+		}
+	}
+	if st := d.Stats(); st.Reordered != 251 || st.Duplicates != 0 {
+		t.Errorf("stats %+v", st)
 	}
 }

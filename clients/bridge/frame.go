@@ -45,7 +45,31 @@ const MaxStampUs = math.MaxInt64 / 1000
 var (
 	ErrCorrupt = errors.New("bridge: corrupted frame")
 	ErrInvalid = errors.New("bridge: invalid frame")
+	// ErrBehind is the Kind of a Drop that reports a long run of frames
+	// that are not ahead of the last taken one (Decoder.Drops).
+	ErrBehind = errors.New("bridge: frames behind")
 )
+
+// FrameError is why a frame was dropped: Kind is ErrCorrupt (damaged on
+// the way) or ErrInvalid (a good CRC, but not a frame this decoder takes),
+// Field the part of the frame that was wrong ("length", "crc",
+// "stuffing", "type", "flags", "wheels", "stamp", "heading"), and Detail
+// its value and what was expected. errors.Is(err, ErrCorrupt) and
+// errors.Is(err, ErrInvalid) tell the kinds apart.
+type FrameError struct {
+	Kind   error
+	Field  string
+	Detail string
+}
+
+func (e *FrameError) Error() string { return e.Kind.Error() + ": " + e.Field + ": " + e.Detail }
+
+// Unwrap returns Kind.
+func (e *FrameError) Unwrap() error { return e.Kind }
+
+func frameErr(kind error, field, format string, args ...any) *FrameError {
+	return &FrameError{Kind: kind, Field: field, Detail: fmt.Sprintf(format, args...)}
+}
 
 // Frame is one message of the reckon link protocol, as the controller
 // built it. See the package documentation for the byte layout.
@@ -111,11 +135,11 @@ func AppendRawFrame(dst []byte, f *Frame) []byte {
 // finite.
 func ParseFrame(f *Frame, raw []byte) error {
 	if len(raw) < HeaderLen+4+4 || len(raw) > MaxFrameLen {
-		return fmt.Errorf("%w: %d bytes", ErrCorrupt, len(raw))
+		return frameErr(ErrCorrupt, "length", "%d bytes, a frame has %d to %d", len(raw), HeaderLen+4+4, MaxFrameLen)
 	}
 	body := raw[:len(raw)-4]
 	if got, want := binary.LittleEndian.Uint32(raw[len(body):]), Checksum(body); got != want {
-		return fmt.Errorf("%w: CRC %08x, computed %08x", ErrCorrupt, got, want)
+		return frameErr(ErrCorrupt, "crc", "CRC %08x, computed %08x", got, want)
 	}
 	typ, flags, n := FrameType(body[0]), body[1], int(body[3])
 	want := HeaderLen + 4*n
@@ -124,15 +148,15 @@ func ParseFrame(f *Frame, raw []byte) error {
 	}
 	switch {
 	case typ != FrameWheels:
-		return fmt.Errorf("%w: type %d", ErrInvalid, typ)
+		return frameErr(ErrInvalid, "type", "%d, only %d (wheel counts) is known", typ, FrameWheels)
 	case flags&^FlagHeading != 0:
-		return fmt.Errorf("%w: flags %02x", ErrInvalid, flags)
+		return frameErr(ErrInvalid, "flags", "%02x, only bit 0 (heading) is defined", flags)
 	case n == 0 || n > MaxWheels:
-		return fmt.Errorf("%w: %d wheels", ErrInvalid, n)
+		return frameErr(ErrInvalid, "wheels", "%d, want 1 to %d", n, MaxWheels)
 	case len(body) != want:
-		return fmt.Errorf("%w: %d bytes for %d wheels", ErrInvalid, len(body), n)
+		return frameErr(ErrInvalid, "length", "%d bytes for %d wheels (flags %02x), want %d", len(body)+4, n, flags, want+4)
 	case binary.LittleEndian.Uint64(body[8:]) > MaxStampUs:
-		return fmt.Errorf("%w: stamp %d us", ErrInvalid, binary.LittleEndian.Uint64(body[8:]))
+		return frameErr(ErrInvalid, "stamp", "%d us, past the largest %d us", binary.LittleEndian.Uint64(body[8:]), uint64(MaxStampUs))
 	}
 	f.Type, f.Boot = typ, body[2]
 	f.Counter = binary.LittleEndian.Uint32(body[4:])
@@ -145,7 +169,7 @@ func ParseFrame(f *Frame, raw []byte) error {
 	if f.HasHeading {
 		f.HeadingRad = math.Float32frombits(binary.LittleEndian.Uint32(body[HeaderLen+4*n:]))
 		if h := float64(f.HeadingRad); math.IsNaN(h) || math.IsInf(h, 0) {
-			return fmt.Errorf("%w: heading %v", ErrInvalid, h)
+			return frameErr(ErrInvalid, "heading", "%v rad, not finite", h)
 		}
 	}
 	return nil

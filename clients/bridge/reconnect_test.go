@@ -9,12 +9,19 @@ import (
 	"time"
 
 	"reckon.example/clients/client"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // lockedWriter serialises the writes of Forward's two goroutines.
 type lockedWriter struct {
 	mu sync.Mutex
 	b  []byte
+}
+
+func (w *lockedWriter) text() string {
+	w.mu.Lock()
+	defer w.mu.Unlock()
+	return string(w.b)
 }
 
 func (w *lockedWriter) Write(p []byte) (int, error) {
@@ -118,5 +125,107 @@ func TestLinkReconnects(t *testing.T) {
 	got := p.GetPose()
 	if math.Abs(got.GetXM()-want.GetXM()) > 1e-9 || math.Abs(got.GetYM()-want.GetYM()) > 1e-9 || math.Abs(got.GetHeadingRad()-want.GetHeadingRad()) > 1e-9 {
 		t.Errorf("final pose across the outage %v, without it %v", got, want)
+	}
+}
+
+// TestLinkRunStartAcrossOutage: the controller restarts while the service
+// is away (a brown-out that resets both, the service slower to come
+// back). The run start the decoder makes of the new boot byte is decoded
+// while no stream is open; Forward must still send it before the new
+// boot's odometry once the stream is open again. Before, it was dropped
+// with the odometry, and the new boot's samples, on a clock started again
+// near zero, were refused as time_backwards for as long as the link ran.
+func TestLinkRunStartAcrossOutage(t *testing.T) {
+	dir := t.TempDir()
+	addr, stop := serveAt(t, "127.0.0.1:0", dir)
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	createCarts(t, c)
+
+	sessCtx, endSess := context.WithCancel(context.Background())
+	defer endSess()
+	sess, err := c.OpenIngest(sessCtx, "robots/link")
+	if err != nil {
+		t.Fatal(err)
+	}
+	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
+		return c.OpenIngest(sessCtx, "robots/link", client.Resume(id, last))
+	}
+	pr, pw := io.Pipe()
+	log := &lockedWriter{}
+	ctx, stopForward := context.WithCancel(context.Background())
+	type result struct {
+		sum Summary
+		err error
+	}
+	done := make(chan result, 1)
+	go func() {
+		var d Decoder
+		sum, err := Forward(ctx, pr, &d, sess, Reconnect(reopen, log))
+		done <- result{sum, err}
+	}()
+	// Boot 1 is the cart's arc; boot 2 drives it on from counts, counter
+	// and clock started again (10 ms frames from 0.1 s).
+	frame := func(k int) Frame {
+		if k < 300 {
+			return cartFrame(k)
+		}
+		j := k - 300
+		return wheels(2, uint32(j), uint64(100_000+cartStepUs*j), int32(185*j), int32(215*j), int32(-10*j))
+	}
+	stampOf := func(k int) int64 { f := frame(k); return int64(f.StampUs) * 1000 }
+	send := func(from, to int) {
+		for k := from; k < to; k++ {
+			f := frame(k)
+			if _, err := pw.Write(AppendFrame(nil, &f, nil)); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	robot := func() *pb.Robot {
+		r, err := c.GetRobot(context.Background(), "robots/link")
+		if err != nil {
+			return nil
+		}
+		return r
+	}
+	waitFor := func(stamp int64) {
+		for deadline := time.Now().Add(30 * time.Second); robot().GetNewestStampNs() != stamp; time.Sleep(20 * time.Millisecond) {
+			if time.Now().After(deadline) {
+				r := robot()
+				t.Fatalf("the service never saw stamp %d: newest %d in run %d (boot %q); link's log:\n%s", stamp, r.GetNewestStampNs(), r.GetRun(), r.GetBootId(), log.text())
+			}
+		}
+	}
+	send(0, 300)
+	waitFor(stampOf(299))
+	stop()
+	send(300, 340) // the controller restarted while the service is away
+	_, stop = serveAt(t, addr, dir)
+	defer stop()
+	// Frames until the link is through again (gRPC's own reconnection
+	// backs off for seconds) and the robot has all of them.
+	k := 340
+	for ; k < 3300 && robot().GetNewestStampNs() != stampOf(k-1); k += 10 {
+		send(k, k+10)
+		time.Sleep(50 * time.Millisecond)
+	}
+	send(k, k+10)
+	waitFor(stampOf(k + 9))
+	stopForward()
+	pw.Close()
+	res := <-done
+	if res.err != nil {
+		t.Fatalf("Forward: %v", res.err)
+	}
+	t.Logf("summary %+v\nlog:\n%s", res.sum, log.b)
+	if r := robot(); r.GetRun() != 2 || r.GetBootId() != BootID(2) {
+		t.Errorf("robot in run %d of boot %q, want run 2 of %q", r.GetRun(), r.GetBootId(), BootID(2))
+	}
+	if n := res.sum.Verdicts[pb.Verdict_VERDICT_INVALID]; n != 0 {
+		t.Errorf("%d samples refused: %v", n, res.sum.Reasons)
 	}
 }

@@ -31,3 +31,30 @@ func TestTallyNotTaken(t *testing.T) {
 		t.Errorf("not taken %d, reasons %q", sum.NotTaken, sum.Reasons)
 	}
 }
+
+// TestPendingRunAnswered: a run start is settled by its own verdict, taken
+// or refused for good; not taken (the robot paused) it is to be sent again;
+// other samples' verdicts and responses carrying only resolutions leave it
+// as it was.
+func TestPendingRunAnswered(t *testing.T) {
+	run := &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: BootID(2)}}}
+	for _, c := range []struct {
+		name       string
+		resp       *pb.IngestResponse
+		sent, done bool
+	}{
+		{"taken", &pb.IngestResponse{ClientSequence: 5, Sequence: 9, Verdict: pb.Verdict_VERDICT_APPLIED}, true, true},
+		{"refused", &pb.IngestResponse{ClientSequence: 5, Verdict: pb.Verdict_VERDICT_INVALID, StatusCode: int32(codes.FailedPrecondition)}, true, true},
+		{"not taken", &pb.IngestResponse{ClientSequence: 5, Verdict: pb.Verdict_VERDICT_INVALID, StatusCode: int32(codes.Unavailable)}, false, false},
+		{"another sample", &pb.IngestResponse{ClientSequence: 6, Sequence: 10, Verdict: pb.Verdict_VERDICT_APPLIED}, true, false},
+		{"resolutions only", &pb.IngestResponse{Resolved: []*pb.Resolution{{Sequence: 7, Verdict: pb.Verdict_VERDICT_APPLIED}}}, true, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			r := pendingRun{sample: run, seq: 5, sent: true}
+			r.answered(c.resp)
+			if r.sent != c.sent || r.done != c.done {
+				t.Errorf("sent %v, done %v; want %v, %v", r.sent, r.done, c.sent, c.done)
+			}
+		})
+	}
+}

@@ -63,8 +63,9 @@ var ErrNoRuns = errors.New("no journal to export")
 
 // Export replays the journals in dir and writes the four tables into out,
 // which it creates if needed; it returns the rows of runs.parquet. A
-// journal that cannot be read, or ctx ending, stops the export and the
-// files are removed.
+// journal that cannot be read, or ctx ending, stops the export and its
+// files are removed; the tables of an earlier export in out are replaced
+// only by a whole export.
 func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error) {
 	runs, err := Runs(dir, opt.Deleted)
 	if err != nil {
@@ -96,6 +97,12 @@ func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error)
 			return nil, fmt.Errorf("%s, journal %s: %w", r.Robot, r.ID, err)
 		}
 		rows = append(rows, got...)
+	}
+	if len(rows) == 0 && opt.Run > 0 {
+		// Empty tables with no word said that the journals hold no
+		// inputs, which they may.
+		t.abandon()
+		return nil, fmt.Errorf("%w: no journal holds a run %d", ErrNoRuns, opt.Run)
 	}
 	return rows, t.close()
 }
@@ -132,7 +139,7 @@ func exportRun(ctx context.Context, t *tables, dir string, r Run, only int64) ([
 		x.row.DeleteTimeUnixNs = &r.DeleteTimeUnixNs
 	}
 	var gap error
-	_, scan, err := journal.Replay(filepath.Clean(dir), r.Robot, journal.ReplayOptions{ReadOnly: true, FS: r.fs(),
+	fr, scan, err := journal.Replay(filepath.Clean(dir), r.Robot, journal.ReplayOptions{ReadOnly: true, FS: r.fs(),
 		Opened: func(fr *fusion.Robot) error { x.cfg = fr.Config(); return nil },
 		Input:  x.input,
 		Gap: func(err error) error {
@@ -141,7 +148,9 @@ func exportRun(ctx context.Context, t *tables, dir string, r Run, only int64) ([
 			}
 			return nil
 		}})
-	if err != nil && !errors.Is(err, journal.ErrGap) {
+	// A gap is gone past (and noted by Gap) only once the journal opened a
+	// robot: without one (no segment left) there is nothing to export.
+	if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 		return nil, err
 	}
 	if err := x.flushInputs(true); err != nil {

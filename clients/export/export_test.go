@@ -1,6 +1,7 @@
 package export
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"fmt"
@@ -309,6 +310,69 @@ func TestExportOfATornJournal(t *testing.T) {
 	inputs := readTable[InputRow](t, out, InputsFile)
 	if len(rows) != 1 || !rows[0].Torn || rows[0].Inputs != int64(scan.Pairs) || len(inputs) != scan.Pairs || scan.Pairs == 0 {
 		t.Errorf("runs %+v, %d input rows; want torn with the scan's %d inputs", rows, len(inputs), scan.Pairs)
+	}
+}
+
+// TestExportOfAJournalWithoutSegments: a journal whose manifest names a
+// segment of which none is left (a half-copied directory) is an error
+// naming the missing segment, not a run exported with no inputs and no
+// configuration.
+func TestExportOfAJournalWithoutSegments(t *testing.T) {
+	dir := t.TempDir()
+	if err := writeJournal(t, dir, "cart-1", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 9, DurationS: 2}, lagOdometry{}).Close(); err != nil {
+		t.Fatal(err)
+	}
+	segs, err := journal.Segments(dir, "cart-1")
+	if err != nil || len(segs) == 0 {
+		t.Fatalf("segments %v: %v", segs, err)
+	}
+	for _, s := range segs {
+		if err := os.Remove(s); err != nil {
+			t.Fatal(err)
+		}
+	}
+	rows, err := Export(context.Background(), dir, t.TempDir(), Options{})
+	if err == nil || !strings.Contains(err.Error(), "no segment of cart-1") {
+		t.Errorf("export of a journal without segments: %d runs, %v; want an error naming the missing segment", len(rows), err)
+	}
+}
+
+// TestFailedExportKeepsTheLastOne: an export that fails (a journal that
+// cannot be read) leaves the tables an earlier export wrote into the same
+// directory as they were, and no file of its own: it wrote over them as it
+// went and removed them all at the failure, so that one damaged journal
+// cost the last good export.
+func TestFailedExportKeepsTheLastOne(t *testing.T) {
+	out := t.TempDir()
+	if _, err := Export(context.Background(), fleet(t), out, Options{}); err != nil {
+		t.Fatal(err)
+	}
+	before := map[string][]byte{}
+	for _, name := range []string{RunsFile, InputsFile, PosesFile, EventsFile} {
+		b, err := os.ReadFile(filepath.Join(out, name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		before[name] = b
+	}
+	bad := t.TempDir()
+	if err := writeJournal(t, bad, "cart-1", fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 9, DurationS: 2}, lagOdometry{}).Close(); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(journal.SegmentPath(bad, "cart-1", 0), nil, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := Export(context.Background(), bad, out, Options{}); err == nil {
+		t.Fatal("the export of an unreadable journal succeeded")
+	}
+	names, _ := os.ReadDir(out)
+	if len(names) != len(before) {
+		t.Errorf("the failed export left %v", names)
+	}
+	for name, b := range before {
+		if got, err := os.ReadFile(filepath.Join(out, name)); err != nil || !bytes.Equal(got, b) {
+			t.Errorf("%s: %v; the failed export changed it (%d bytes, were %d)", name, err, len(got), len(b))
+		}
 	}
 }
 

@@ -1,9 +1,6 @@
 package export
 
 import (
-	"errors"
-	"fmt"
-	"os"
 	"path/filepath"
 	"sort"
 	"strconv"
@@ -109,43 +106,5 @@ func (r Run) fs() journal.FS {
 	if r.suffix == "" {
 		return journal.OS
 	}
-	return asideFS{suffix: r.suffix}
-}
-
-// errReadOnly refuses every change through an asideFS.
-var errReadOnly = errors.New("export: a set-aside journal is read only")
-
-// asideFS shows the files of the OS whose names end with suffix under
-// their names without it, read only.
-type asideFS struct{ suffix string }
-
-func (a asideFS) OpenFile(name string, flag int, perm os.FileMode) (journal.File, error) {
-	if flag != os.O_RDONLY {
-		return nil, fmt.Errorf("%s: %w", name, errReadOnly)
-	}
-	return journal.OS.OpenFile(name+a.suffix, flag, perm)
-}
-
-func (a asideFS) List(dir string) ([]string, error) {
-	names, err := journal.OS.List(dir)
-	var out []string
-	for _, n := range names {
-		if s, ok := strings.CutSuffix(n, a.suffix); ok {
-			out = append(out, s)
-		}
-	}
-	sort.Strings(out)
-	return out, err
-}
-
-func (a asideFS) Stat(name string) (os.FileInfo, error) { return journal.OS.Stat(name + a.suffix) }
-
-func (a asideFS) Rename(oldname, _ string) error { return fmt.Errorf("%s: %w", oldname, errReadOnly) }
-func (a asideFS) Remove(name string) error       { return fmt.Errorf("%s: %w", name, errReadOnly) }
-func (a asideFS) MkdirAll(dir string, _ os.FileMode) error {
-	return fmt.Errorf("%s: %w", dir, errReadOnly)
-}
-func (a asideFS) SyncDir(dir string) error { return fmt.Errorf("%s: %w", dir, errReadOnly) }
-func (a asideFS) Lock(name string) (journal.File, error) {
-	return nil, fmt.Errorf("%s: %w", name, errReadOnly)
+	return journal.AsideFS(nil, r.suffix)
 }

@@ -2,6 +2,9 @@ package export
 
 import (
 	"context"
+	"errors"
+	"os"
+	"strings"
 	"testing"
 
 	"reckon.example/fusion"
@@ -127,8 +130,14 @@ func TestExportRunsOfARebootedJournal(t *testing.T) {
 	if n := len(readTable[PoseRow](t, only, PosesFile)); n != int(r2.Inputs) {
 		t.Errorf("%d pose rows of run 2, want %d", n, r2.Inputs)
 	}
-	if none, err := Export(context.Background(), dir, t.TempDir(), Options{Run: 3}); err != nil || len(none) != 0 {
-		t.Errorf("Options.Run 3: %v %v", none, err)
+	// No journal holds a run 3: an error, as replay's and review's -run
+	// past the last, not empty tables that say the runs had no inputs.
+	empty := t.TempDir()
+	if none, err := Export(context.Background(), dir, empty, Options{Run: 3}); !errors.Is(err, ErrNoRuns) || !strings.Contains(err.Error(), "run 3") || len(none) != 0 {
+		t.Errorf("Options.Run 3: %v %v; want ErrNoRuns naming run 3", none, err)
+	}
+	if left, _ := os.ReadDir(empty); len(left) != 0 {
+		t.Errorf("Options.Run 3 left %v", left)
 	}
 }
 

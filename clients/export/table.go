@@ -15,8 +15,8 @@ const batchRows = 1024
 // table streams rows of type T to one Parquet file, a row group at a time,
 // so that memory stays bounded by the row group however long the run.
 type table[T any] struct {
-	path    string
-	f       *os.File
+	path    string   // the file's name once the export is done
+	f       *os.File // a temporary file beside it until then
 	w       *parquet.GenericWriter[T]
 	batch   []T
 	inGroup int // rows written since the last row group ended
@@ -24,9 +24,10 @@ type table[T any] struct {
 	rows    int64
 }
 
-// newTable creates the file at path.
+// newTable creates a temporary file beside path, which done renames to
+// path.
 func newTable[T any](path string, group int) (*table[T], error) {
-	f, err := os.Create(path)
+	f, err := os.CreateTemp(filepath.Dir(path), "."+filepath.Base(path)+".*.tmp")
 	if err != nil {
 		return nil, err
 	}
@@ -76,10 +77,18 @@ func (t *table[T]) close() error {
 	return err
 }
 
+// done gives the closed file its name.
+func (t *table[T]) done() error {
+	if err := os.Chmod(t.f.Name(), 0o644); err != nil {
+		return err
+	}
+	return os.Rename(t.f.Name(), t.path)
+}
+
 // abandon closes and removes the file after a failure.
 func (t *table[T]) abandon() {
 	t.f.Close()
-	os.Remove(t.path)
+	os.Remove(t.f.Name())
 }
 
 // tables are the four files of an export.
@@ -123,13 +132,16 @@ func openTables(dir string, group int) (*tables, error) {
 	return &t, nil
 }
 
-// close finishes the four files; after a failure it removes them all.
+// close finishes the four files and gives them their names, replacing
+// those of an earlier export; after a failure it removes them all, and an
+// earlier export's files stay as they were.
 func (t *tables) close() error {
 	err := errors.Join(t.runs.close(), t.inputs.close(), t.poses.close(), t.events.close())
 	if err != nil {
 		t.abandon()
+		return err
 	}
-	return err
+	return errors.Join(t.runs.done(), t.inputs.done(), t.poses.done(), t.events.done())
 }
 
 // abandon removes the four files.

@@ -76,7 +76,8 @@ type Options struct {
 	// nanoseconds from the run's start (the stamp of its first input). The
 	// run is replayed from its start all the same, so that the estimate at
 	// FromNs is the one the robot had; only the stretch is summarised,
-	// exported and drawn. ToNs 0 means the end.
+	// exported and drawn. FromNs 0 means the whole run, inputs stamped
+	// before its first included; ToNs 0 means the end.
 	FromNs, ToNs int64
 }
 
@@ -206,12 +207,23 @@ type Run struct {
 // one before the newline) are split at their commas as encoding/csv would
 // split them, at a third of its cost; at the first other line, the rest of
 // the file is read with encoding/csv.
+//
+// The first record may be a header (its stamp is no integer); every other
+// must be a row of four or more fields: an integer stamp after the row
+// before's and three finite numbers. At the first that is not, the reader
+// ends as at the end of the file and err says what was wrong and where.
 type truthReader struct {
 	br                 *bufio.Reader
 	r                  *csv.Reader // from the first line that needs it on
 	fields             [][]byte
 	prev, next         truthRow
 	havePrev, haveNext bool
+	// lines counts the lines split here; csvBase those before the line
+	// handed to encoding/csv; line is the line of the last record; records
+	// counts the records.
+	lines, csvBase, line, records int
+	rows                          int
+	err                           error
 }
 
 type truthRow struct {
@@ -240,16 +252,21 @@ func (t *truthReader) record() ([][]byte, bool) {
 		line, err := t.br.ReadSlice('\n')
 		if err == bufio.ErrBufferFull {
 			// A line longer than the buffer: encoding/csv from here.
-			t.useCSV(line)
+			t.useCSV(line, t.lines)
 			break
 		}
 		if err != nil && len(line) == 0 {
+			if !errors.Is(err, io.EOF) {
+				t.err = err // a directory, say
+			}
 			return nil, false
 		}
+		t.lines++
+		t.line = t.lines
 		body := bytes.TrimSuffix(line, []byte{'\n'})
 		body = bytes.TrimSuffix(body, []byte{'\r'})
 		if bytes.IndexByte(body, '"') >= 0 || bytes.IndexByte(body, '\r') >= 0 {
-			t.useCSV(line)
+			t.useCSV(line, t.lines-1)
 			break
 		}
 		if len(body) == 0 {
@@ -267,9 +284,21 @@ func (t *truthReader) record() ([][]byte, bool) {
 		return append(t.fields, body), true
 	}
 	rec, err := t.r.Read()
-	if err != nil {
+	if errors.Is(err, io.EOF) {
 		return nil, false
 	}
+	if err != nil {
+		var pe *csv.ParseError
+		if errors.As(err, &pe) {
+			// Its lines count from the line handed to encoding/csv.
+			pe.StartLine += t.csvBase
+			pe.Line += t.csvBase
+		}
+		t.err = err
+		return nil, false
+	}
+	t.line, _ = t.r.FieldPos(0)
+	t.line += t.csvBase
 	t.fields = t.fields[:0]
 	for _, f := range rec {
 		t.fields = append(t.fields, []byte(f))
@@ -278,7 +307,9 @@ func (t *truthReader) record() ([][]byte, bool) {
 }
 
 // useCSV reads the rest of the file, from line on, with encoding/csv.
-func (t *truthReader) useCSV(line []byte) {
+// csvBase is the number of lines before line.
+func (t *truthReader) useCSV(line []byte, csvBase int) {
+	t.csvBase = csvBase
 	t.r = csv.NewReader(io.MultiReader(bytes.NewReader(bytes.Clone(line)), t.br))
 	t.r.ReuseRecord = true
 	t.r.FieldsPerRecord = -1
@@ -290,22 +321,40 @@ func (t *truthReader) advance() {
 		t.prev, t.havePrev = t.next, true
 	}
 	t.haveNext = false
-	for {
+	for t.err == nil {
 		rec, ok := t.record()
 		if !ok {
 			return
 		}
-		if len(rec) < 4 {
-			continue
+		t.records++
+		if t.records == 1 {
+			rec[0] = bytes.TrimPrefix(rec[0], []byte("\xef\xbb\xbf"))
 		}
 		stamp, err := strconv.ParseInt(string(rec[0]), 10, 64)
-		if err != nil {
+		if err != nil && t.records == 1 {
 			continue // the header
 		}
-		x, _ := strconv.ParseFloat(string(rec[1]), 64)
-		y, _ := strconv.ParseFloat(string(rec[2]), 64)
-		h, _ := strconv.ParseFloat(string(rec[3]), 64)
-		t.next, t.haveNext = truthRow{stamp, estimator.Pose{X: x, Y: y, Heading: h}}, true
+		if err != nil {
+			t.err = fmt.Errorf("line %d: stamp_ns %q is not an integer (nanoseconds)", t.line, rec[0])
+			return
+		}
+		if len(rec) < 4 {
+			t.err = fmt.Errorf("line %d: %d fields, want stamp_ns,x_m,y_m,heading_rad", t.line, len(rec))
+			return
+		}
+		var v [3]float64
+		for i, name := range []string{"x_m", "y_m", "heading_rad"} {
+			if v[i], err = strconv.ParseFloat(string(rec[i+1]), 64); err != nil || math.IsNaN(v[i]) || math.IsInf(v[i], 0) {
+				t.err = fmt.Errorf("line %d: %s %q is not a finite number", t.line, name, rec[i+1])
+				return
+			}
+		}
+		if t.rows > 0 && stamp <= t.next.stamp {
+			t.err = fmt.Errorf("line %d: stamp_ns %d is not after the row before's %d: the rows must be in time order", t.line, stamp, t.next.stamp)
+			return
+		}
+		t.rows++
+		t.next, t.haveNext = truthRow{stamp, estimator.Pose{X: v[0], Y: v[1], Heading: v[2]}}, true
 		return
 	}
 }
@@ -384,6 +433,9 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	rc.add(fr, true, fr.Run() == rc.want)
 	run.Summary.markers(fr.FinishLandmarkOffsets())
 	if err := fw.close(); err != nil {
+		return nil, err
+	}
+	if err := walk.truthErr(); err != nil {
 		return nil, err
 	}
 	run.Config = fr.Config()
@@ -663,6 +715,10 @@ func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
 // ErrNoRun is returned for a run the recording does not hold.
 var ErrNoRun = errors.New("no such run")
 
+// ErrTruth is wrapped by the errors of a truth file that is not a time
+// ordered table of stamp_ns,x_m,y_m,heading_rad rows.
+var ErrTruth = errors.New("truth file")
+
 // replay replays the source and returns the robot after its last input.
 func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
 	switch {
@@ -712,6 +768,11 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 		start := convert.SampleStamp(s)
 		rc.run.Summary.RunStartNs = start
 		rc.a.fromNs, rc.a.toNs = start+rc.fromNs, math.MaxInt64
+		if rc.fromNs == 0 {
+			// Inputs stamped before the first (a late fix that arrived
+			// first) belong to the run too.
+			rc.a.fromNs = math.MinInt64
+		}
 		if rc.toNs > 0 {
 			rc.a.toNs = start + rc.toNs
 		}
@@ -778,12 +839,17 @@ func (rc *recorder) replaySamples(src Source) (*fusion.Robot, error) {
 	}
 	defer f.Close()
 	sr := convert.NewSampleReader(f)
-	for {
+	for n := 0; ; n++ {
 		s, err := sr.Next()
-		if errors.Is(err, io.EOF) {
+		switch {
+		case errors.Is(err, io.EOF) && n == 0:
+			return nil, fmt.Errorf("%s: %w: no samples", src.Samples, convert.ErrJSONL)
+		case errors.Is(err, io.EOF):
 			return fr, nil
-		}
-		if err != nil {
+		case err != nil && n == 0:
+			// Nothing to review: not a samples file, or not yet one.
+			return nil, fmt.Errorf("%s: %w", src.Samples, err)
+		case err != nil:
 			rc.run.Summary.Truncated = fmt.Sprintf("the samples file stops being readable: %v; this report covers the %d samples before it", err, rc.run.Summary.Inputs)
 			return fr, nil
 		}
@@ -1088,8 +1154,9 @@ func neesOf(p estimator.Pose, c *[9]float64, tr estimator.Pose) float64 {
 // (in chunks: an hour's take 12 MB). It writes those fields of the run
 // and nothing else until the step writer is closed.
 type filteredWalk struct {
-	run   *Run
-	truth *truthReader
+	run       *Run
+	truth     *truthReader
+	truthPath string
 	// tape keeps the truth at each step's stamp for the walk after the
 	// smoother, which reads it instead of the truth file (parsing the
 	// file's numbers is most of the cost of reading it).
@@ -1116,10 +1183,24 @@ func newFilteredWalk(run *Run, truthPath, tempDir string) (*filteredWalk, error)
 		if err != nil {
 			return nil, fmt.Errorf("truth: %w", err)
 		}
-		w.truth, w.f = tr, f
+		w.truth, w.f, w.truthPath = tr, f, truthPath
 		w.tape = newTruthTape(tempDir)
 	}
 	return w, nil
+}
+
+// truthErr returns what was wrong with the truth file, as far as the walk
+// read it: a row that is not one, or no row at all.
+func (w *filteredWalk) truthErr() error {
+	switch {
+	case w.truth == nil:
+		return nil
+	case w.truth.err != nil:
+		return fmt.Errorf("%w %s: %w", ErrTruth, w.truthPath, w.truth.err)
+	case w.truth.rows == 0:
+		return fmt.Errorf("%w %s: no rows (stamp_ns,x_m,y_m,heading_rad)", ErrTruth, w.truthPath)
+	}
+	return nil
 }
 
 func (w *filteredWalk) close() {

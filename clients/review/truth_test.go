@@ -3,6 +3,7 @@ package review
 import (
 	"encoding/csv"
 	"fmt"
+	"io"
 	"math"
 	"math/rand/v2"
 	"sort"
@@ -92,46 +93,76 @@ func TestLogHistogramMedian(t *testing.T) {
 // before), whatever the file holds: CRLF line ends, empty lines, a last
 // line without its newline, quoted fields (one spanning two lines), a bare
 // carriage return, a bare quote (encoding/csv stops there), a line longer
-// than the reader's buffer, short rows and a header.
+// than the reader's buffer, short rows and a header. The reference applies
+// the reader's rules to encoding/csv's records (a header only first; then
+// rows of an integer stamp after the last and three finite numbers), and
+// the reader stops with an error naming encoding/csv's line where the
+// reference stops.
 func TestTruthReaderSplitsAsCSV(t *testing.T) {
 	long := "7," + strings.Repeat("1", 70000) + ",2,3\n"
 	for _, text := range []string{
 		"stamp_ns,x_m,y_m,heading_rad\n1,2,3,4\n5,6,7,8\n",
 		"stamp_ns,x_m,y_m,heading_rad\r\n1,2,3,4\r\n\r\n\n5,6,7,8\r\n9,1,2,3",
 		"1,2,3,4\n5,6\n7,8,9,1,2\n\n3,4,5,6\r",
+		"1,2,3,4\n7,8,9,1,2\n\n13,4,5,6\r",
 		"1,2,3,4\n\"5\",6,7,8\n9,\"1\n2\",3,4\n5,6,7,8\n",
+		"1,2,3,4\n\"5\",6,7,8\n9,\"1\n2\",3,4\n\n15,6,7,8\nx,1,2,3\n",
 		"1,2,3,4\n5,6\r7,8,9\n1,2,3,4\n",
 		"1,2,3,4\n5,6\"7,8,9\n1,2,3,4\n",
-		"1,2,3,4\n" + long + "5,6,7,8\n",
+		"1,2,3,4\n" + long + "8,6,7,8\n",
+		"1,2,3,4\n" + long + "8,6,7,8\n9,1,2\n",
 		"x,1e3,-2.5e-1,0x1p-2\n10,1e3,-2.5e-1,0x1p-2\n11,nan,inf,-0\n",
 		"",
 	} {
 		var want []truthRow
+		wantLine, wantErr := 0, ""
 		r := csv.NewReader(strings.NewReader(text))
 		r.FieldsPerRecord = -1
-		for {
+		for n := 1; ; n++ {
 			rec, err := r.Read()
-			if err != nil {
+			if err == io.EOF {
 				break
 			}
-			if len(rec) < 4 {
-				continue
+			line, _ := r.FieldPos(0)
+			if err != nil {
+				wantLine = -1 // encoding/csv's own error, its line as the file's
+				wantErr = err.Error()
+				break
 			}
 			stamp, err := strconv.ParseInt(rec[0], 10, 64)
-			if err != nil {
+			if err != nil && n == 1 {
 				continue
 			}
-			x, _ := strconv.ParseFloat(rec[1], 64)
-			y, _ := strconv.ParseFloat(rec[2], 64)
-			h, _ := strconv.ParseFloat(rec[3], 64)
-			want = append(want, truthRow{stamp, estimator.Pose{X: x, Y: y, Heading: h}})
+			if err != nil || len(rec) < 4 || (len(want) > 0 && stamp <= want[len(want)-1].stamp) {
+				wantLine = line
+				break
+			}
+			var v [3]float64
+			for i := range v {
+				if v[i], err = strconv.ParseFloat(rec[i+1], 64); err != nil || math.IsNaN(v[i]) || math.IsInf(v[i], 0) {
+					wantLine = line
+				}
+			}
+			if wantLine != 0 {
+				break
+			}
+			want = append(want, truthRow{stamp, estimator.Pose{X: v[0], Y: v[1], Heading: v[2]}})
 		}
 		var got []truthRow
-		for tr := newTruthReader(strings.NewReader(text)); tr.haveNext; tr.advance() {
+		tr := newTruthReader(strings.NewReader(text))
+		for ; tr.haveNext; tr.advance() {
 			got = append(got, tr.next)
 		}
 		if fmt.Sprint(got) != fmt.Sprint(want) {
 			t.Errorf("%q:\n got %v\nwant %v", text[:min(len(text), 60)], got, want)
+		}
+		switch {
+		case wantLine == 0 && tr.err != nil, wantLine != 0 && tr.err == nil:
+			t.Errorf("%q: error %v, want one at line %d", text[:min(len(text), 60)], tr.err, wantLine)
+		case wantLine > 0 && !strings.HasPrefix(tr.err.Error(), fmt.Sprintf("line %d: ", wantLine)):
+			t.Errorf("%q: error %v, want it at line %d", text[:min(len(text), 60)], tr.err, wantLine)
+		case wantLine < 0 && tr.err.Error() != wantErr:
+			t.Errorf("%q: error %v, want encoding/csv's %v", text[:min(len(text), 60)], tr.err, wantErr)
 		}
 	}
 }

@@ -20,7 +20,7 @@ import (
 
 // ErrNoInnovations: the run gave no innovation to fit (no IMU heading and
 // no fix applied).
-var ErrNoInnovations = errors.New("the run has no innovations: no IMU headings and no fixes")
+var ErrNoInnovations = errors.New("the run has no innovations: no IMU heading or fix was applied (none is without odometry)")
 
 // levelKind says how a NoiseLevel acts on a configuration.
 type levelKind uint8

@@ -126,15 +126,16 @@ func newSysModel(cfg *fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, 
 // much as the robot decodes them (DEVELOPERS.md, "Design: Odometry
 // samples"): a sample whose stamp is not after the one before is dropped,
 // and a count jump past the speed limit (checked per wheel here, on the
-// body step by the robot) drops its interval and re-references the counts.
-// Since session 20 the robot keeps a jump's counts for the next sample to
-// judge, so that after one bad reading it loses no travel; here the next
-// interval is dropped too, as the robot did before. For a fit over minutes
-// that is two intervals of a few milliseconds' motion left out, not a bias.
+// body step by the robot) is refused, its counts kept for the next sample
+// to judge. The next sample's travel plausible from the counts before the
+// jump, the jump was one bad reading and its interval spans both samples'
+// periods (no travel lost); otherwise, plausible from the jump's counts,
+// the counts started afresh and only the jump's period is left out (a gap,
+// where the robot, which cannot leave one, spreads the travel over both).
 func (m *sysModel) intervals(odo []fusion.Odometry) {
 	odo = slices.Clone(odo)
 	slices.SortStableFunc(odo, func(a, b fusion.Odometry) int { return cmp.Compare(a.StampNs, b.StampNs) })
-	var prevCounts []int64
+	var ref, jump countsRef
 	var prevIMU *float64
 	newest := int64(math.MinInt64)
 	tr := make([]float64, m.nw)
@@ -143,41 +144,40 @@ func (m *sysModel) intervals(odo []fusion.Odometry) {
 		if o.StampNs <= newest {
 			continue
 		}
+		newest = o.StampNs
 		iv := sysInterval{t0: o.StartNs, t1: o.StampNs, off: len(m.travel), imu: math.NaN()}
 		ok := true
+		imuRef := prevIMU
 		switch {
 		case o.Step != nil:
 			iv.step, iv.isStep = *o.Step, true
 		case o.Counts != nil && len(o.Counts) == m.nw:
 			m.counts = true
-			ok = prevCounts != nil
-			iv.t0 = newest
-			for i, w := range m.cfg.Wheels {
-				if ok && w.CountsPerM > 0 {
-					tr[i] = float64(countDelta(o.Counts[i], prevCounts[i], w.CounterBits)) / w.CountsPerM
-					ok = ok && math.Abs(tr[i]) <= m.cfg.MaxSpeedMPerS*float64(o.StampNs-newest)*1e-9+1e-3
-				}
+			from := &ref
+			ok = ref.counts != nil && m.countTravel(tr, o, &ref)
+			if !ok && ref.counts != nil && jump.counts != nil && m.countTravel(tr, o, &jump) {
+				ok, from = true, &jump
 			}
-			prevCounts = append(prevCounts[:0], o.Counts...)
+			iv.t0, imuRef = from.stamp, from.imu
+			if ref.counts != nil && !ok {
+				jump.set(o)
+				continue
+			}
+			ref.set(o)
+			jump.counts = nil
 		case len(o.TravelM) == m.nw && m.nw > 0:
 			copy(tr, o.TravelM)
 		default:
 			ok = false
 		}
 		if m.rotation && o.Step == nil {
-			if o.IMUHeadingRad == nil {
+			if o.IMUHeadingRad == nil || imuRef == nil {
 				ok = false
 			} else {
-				if prevIMU == nil {
-					ok = false
-				} else {
-					iv.imu = estimator.Wrap(*o.IMUHeadingRad - *prevIMU)
-				}
-				v := *o.IMUHeadingRad
-				prevIMU = &v
+				iv.imu = estimator.Wrap(*o.IMUHeadingRad - *imuRef)
 			}
+			prevIMU = o.IMUHeadingRad
 		}
-		newest = o.StampNs
 		if !ok || iv.t0 >= iv.t1 {
 			continue
 		}
@@ -186,6 +186,35 @@ func (m *sysModel) intervals(odo []fusion.Odometry) {
 		}
 		m.ivs = append(m.ivs, iv)
 	}
+}
+
+// countsRef is a sample of encoder counts that later samples' travel is
+// measured from: its counts, stamp and IMU heading.
+type countsRef struct {
+	counts []int64
+	stamp  int64
+	imu    *float64
+}
+
+// set makes o's counts the reference.
+func (c *countsRef) set(o *fusion.Odometry) {
+	c.counts = append(c.counts[:0], o.Counts...)
+	c.stamp, c.imu = o.StampNs, o.IMUHeadingRad
+}
+
+// countTravel writes each wheel's travel from c to o into tr and reports
+// whether every wheel's speed over the interval is within the limit.
+func (m *sysModel) countTravel(tr []float64, o *fusion.Odometry, c *countsRef) bool {
+	limit := m.cfg.MaxSpeedMPerS*float64(o.StampNs-c.stamp)*1e-9 + 1e-3
+	for i, w := range m.cfg.Wheels {
+		if w.CountsPerM > 0 {
+			tr[i] = float64(countDelta(o.Counts[i], c.counts[i], w.CounterBits)) / w.CountsPerM
+			if math.Abs(tr[i]) > limit {
+				return false
+			}
+		}
+	}
+	return true
 }
 
 // prepareFixes keeps the fixes of configured sensors with a covariance,

@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"math"
 	"slices"
+	"strings"
 
 	"gonum.org/v1/gonum/blas"
 	"gonum.org/v1/gonum/blas/blas64"
@@ -766,8 +767,10 @@ func (s *sysSolver) result(cfg *fusion.Config) (SystematicFit, error) {
 		if p.Kind == MountHeading {
 			p.Fitted = estimator.Wrap(p.Fitted)
 		}
-		p.ModelStdErr = math.Sqrt(stated.At(j, j))
-		p.StdErr = math.Max(p.ModelStdErr, math.Sqrt(robust.At(j, j)))
+		// A variance a rounding below zero (a sandwich of scores that are
+		// all but zero for an unexcited parameter) is zero, not a NaN.
+		p.ModelStdErr = math.Sqrt(math.Max(stated.At(j, j), 0))
+		p.StdErr = math.Max(p.ModelStdErr, math.Sqrt(math.Max(robust.At(j, j), 0)))
 		p.Determined = p.StdErr <= p.Bound
 		if p.Determined {
 			apply(&out.Config, &p, s.m.counts)
@@ -823,6 +826,11 @@ func (s *sysSolver) whiteness() []SensorWhiteness {
 	return out
 }
 
+// silentMount times a mount number's bound is the standard error past
+// which the run says next to nothing about it (mountStds): 10 cm and 5
+// degrees, a tenth of the fit's weak prior.
+const silentMount = 10
+
 // mountStds writes each fitted sensor's mount standard errors into
 // f.Config (sensors[i].mount_std), so that the filter carries the
 // calibrated mount's uncertainty as consider states (DEVELOPERS.md,
@@ -832,10 +840,19 @@ func (s *sysSolver) whiteness() []SensorWhiteness {
 // 0.97 ("Design: Systematic parameters"). A mount
 // number the run does not determine keeps its configured value, and its
 // standard deviation is sqrt(se^2 + d^2), d the distance between the kept
-// and the fitted value. Where the mount blocks do not fit in the state
-// (estimator.MaxStates), none is written and MountStdNote says so.
+// and the fitted value; but one whose standard error is past
+// silentMount times its bound, where the run says next to nothing about it
+// (the fit's weak prior is priorFactor times the bound), keeps its
+// configured mount_std too: a straight 15 s run gave standard errors of
+// 0.5 m for a mount's x and y, which written as its uncertainty would
+// have kept the filter's position uncertain by as much for ever, the
+// mount being a consider state, although the mount was measured to a few
+// centimetres. MountStdNote names those numbers. Where the mount blocks do
+// not fit in the state (estimator.MaxStates), none is written and
+// MountStdNote says so.
 func (f *SystematicFit) mountStds(cfg *fusion.Config) {
 	before := slices.Clone(f.Config.Sensors)
+	var silent []string
 	for si := range f.Config.Sensors {
 		var std [3]float64
 		fitted := false
@@ -844,6 +861,10 @@ func (f *SystematicFit) mountStds(cfg *fusion.Config) {
 				continue
 			}
 			v := p.StdErr
+			if !p.Determined && p.StdErr > silentMount*p.Bound {
+				silent = append(silent, p.Name)
+				continue
+			}
 			if !p.Determined {
 				d := p.Fitted - p.Configured
 				if p.Kind == MountHeading {
@@ -864,6 +885,9 @@ func (f *SystematicFit) mountStds(cfg *fusion.Config) {
 		}
 		f.Config.Sensors[si].MountStd = std
 		f.MountStd = append(f.MountStd, si)
+	}
+	if len(silent) > 0 {
+		f.MountStdNote = fmt.Sprintf("the run says next to nothing about %s (standard errors past %g times their bounds): mount_std keeps its configured value for them (the table says what would determine them)", strings.Join(silent, ", "), float64(silentMount))
 	}
 	if len(f.MountStd) == 0 {
 		return

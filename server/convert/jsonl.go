@@ -17,6 +17,10 @@ import (
 // MaxLineBytes bounds one JSON Lines record.
 const MaxLineBytes = 1 << 20
 
+// byteOrderMark is U+FEFF in UTF-8, which some editors write at the start
+// of a text file.
+var byteOrderMark = []byte("\xef\xbb\xbf")
+
 // ErrJSONL marks an error in a JSON Lines file.
 var ErrJSONL = errors.New("JSON Lines")
 
@@ -39,7 +43,8 @@ func (e *LineError) Unwrap() error { return e.Err }
 func (e *LineError) Is(target error) bool { return target == ErrJSONL }
 
 // SampleReader reads samples from JSON Lines: one protojson Sample per
-// line; blank lines and lines starting with # are skipped.
+// line; blank lines and lines starting with # are skipped, and so is a
+// UTF-8 byte order mark at the start of the file (RFC 8259, sec. 8.1).
 type SampleReader struct {
 	sc   *bufio.Scanner
 	line int
@@ -59,7 +64,14 @@ func (sr *SampleReader) Line() int { return sr.line }
 func (sr *SampleReader) Next() (*pb.Sample, error) {
 	for sr.sc.Scan() {
 		sr.line++
-		b := bytes.TrimSpace(sr.sc.Bytes())
+		b := sr.sc.Bytes()
+		if sr.line == 1 {
+			b = bytes.TrimPrefix(b, byteOrderMark)
+		}
+		b = bytes.TrimSpace(b)
+		if bytes.HasPrefix(b, byteOrderMark) {
+			return nil, &LineError{Line: sr.line, Err: errors.New("starts with a UTF-8 byte order mark (U+FEFF), which may only begin the file (were two files joined?)")}
+		}
 		if len(b) == 0 || b[0] == '#' {
 			continue
 		}

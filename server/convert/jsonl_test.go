@@ -106,6 +106,33 @@ func TestSampleReaderErrors(t *testing.T) {
 	}
 }
 
+// TestSampleReaderByteOrderMark: a file that starts with a UTF-8 byte
+// order mark (as Windows editors save one) reads as the same file without
+// it (RFC 8259, sec. 8.1: a parser may ignore one); one further on, as two
+// such files joined leave it, is an error that names it instead of an
+// invisible "invalid value".
+func TestSampleReaderByteOrderMark(t *testing.T) {
+	const bom = "\xef\xbb\xbf"
+	const line = "{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"
+	for _, in := range []string{bom + line + line, bom + "# a comment\r\n" + line} {
+		sr := NewSampleReader(strings.NewReader(in))
+		s, err := sr.Next()
+		if err != nil || s.GetHeading().GetHeadingRad() != 0.1 {
+			t.Errorf("%q: %v, %v; want the heading", in, s, err)
+		}
+	}
+	sr := NewSampleReader(strings.NewReader(line + bom + line))
+	_, err := sr.Next()
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, err = sr.Next()
+	var le *LineError
+	if !errors.As(err, &le) || le.Line != 2 || !strings.Contains(err.Error(), "byte order mark") {
+		t.Errorf("a byte order mark on line 2: %v; want an error naming it at line 2", err)
+	}
+}
+
 // FuzzSampleReader: any bytes give samples or an error naming a line, and
 // every sample read goes through Take (decoding and the robot's checks)
 // without a panic or a NaN.

@@ -67,6 +67,7 @@ func TestConfigYAMLErrors(t *testing.T) {
 		{"negative counter width", "wheels:\n  - {y_m: 0.12, counter_bits: -16}\n", 2, "wheels[0].counter_bits", "-16 must be 0 (no wrap) or 8 to 64"},
 		{"list for a number", wheels + "window_ns: [1, 2]\n", 5, "window_ns", "must be a single value"},
 		{"past a robot's bound", wheels + "trust:\n  nis_window: 2000000000\n", 6, "trust.nis_window", "2000000000 is more than 1000"},
+		{"degrees for radians", "wheels:\n  - {y_m: 0.12}\n  - {y_m: -0.12}\n  - {x_m: -0.08, direction_rad: 90}\n", 4, "wheels[2].direction_rad", "an angle in degrees?"},
 		{"scalar for a list", "wheels: 3\n", 1, "wheels", "must be a list"},
 		{"scalar for a message", wheels + "noise: high\n", 5, "noise", "must be a mapping"},
 		{"number for a name", "wheels:\n  - {name: 7, y_m: 0.1}\n", 2, "wheels[0].name", `"7" is not text`},

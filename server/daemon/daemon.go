@@ -302,7 +302,7 @@ func wait(ctx context.Context, dc *Config, serveErr <-chan error, gs *grpc.Serve
 	}
 	dc.Logger.Info("shutting down")
 	hs.Shutdown()
-	srv.EndWatches()
+	srv.EndStreams()
 	stopped := make(chan struct{})
 	go func() { gs.GracefulStop(); close(stopped) }()
 	select {

@@ -69,6 +69,47 @@ func TestJournalRoundTripAndRotation(t *testing.T) {
 	}
 }
 
+// TestJournalFirstSegmentMissing: a journal whose first segment is gone
+// (a half-copied directory) is a gap naming that segment, with or without
+// Visitor.Gap: only the first segment holds the opening record, so nothing
+// can be read past it. The scan said "an input before the opening record"
+// of the second segment.
+func TestJournalFirstSegmentMissing(t *testing.T) {
+	dir := t.TempDir()
+	writeJournal(t, dir, 500, Options{SegmentBytes: 4096})
+	segs, _ := Segments(dir, "cart")
+	if len(segs) < 3 {
+		t.Fatalf("%d segments, want rotation", len(segs))
+	}
+	if err := os.Remove(segs[0]); err != nil {
+		t.Fatal(err)
+	}
+	for _, v := range []Visitor{{}, {Gap: func(error) error { return nil }}} {
+		_, err := Read(dir, "cart", v)
+		if !errors.Is(err, ErrGap) || !strings.Contains(err.Error(), "segment 000000 missing") || !strings.Contains(err.Error(), segs[1]) {
+			t.Errorf("scan without the first segment (Gap set %v): %v", v.Gap != nil, err)
+		}
+	}
+}
+
+// TestJournalFirstSegmentEmpty: a first segment that holds no opening
+// record (empty, as a copy cut short leaves it, or not a journal at all)
+// is an error naming that segment; it said only "journal for cart has no
+// opening record".
+func TestJournalFirstSegmentEmpty(t *testing.T) {
+	for _, content := range [][]byte{nil, []byte("NOTAJOURNAL12345 and more bytes that are no frames")} {
+		dir := t.TempDir()
+		writeJournal(t, dir, 20, Options{})
+		if err := os.WriteFile(SegmentPath(dir, "cart", 0), content, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, err := Read(dir, "cart", Visitor{ReadOnly: true})
+		if err == nil || !strings.Contains(err.Error(), "no opening record") || !strings.Contains(err.Error(), SegmentPath(dir, "cart", 0)) {
+			t.Errorf("first segment of %d bytes: %v; want an error naming it", len(content), err)
+		}
+	}
+}
+
 // TestJournalTornTail: a journal cut anywhere, or with its last record
 // corrupted, gives every complete input and output before the damage.
 func TestJournalTornTail(t *testing.T) {

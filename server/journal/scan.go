@@ -122,8 +122,15 @@ func Read(dir, robot string, v Visitor) (Scan, error) { return ReadFS(nil, dir, 
 // keeping aside every damaged range. The torn
 // tail of the last segment (Scan.Torn) is not an error: it was never
 // acknowledged. An error from v stops the scan and is returned.
+//
+// A robot named as a set-aside journal, "{robot}.deleted-{unix ns}" (Aside),
+// is read from the files SetAside renamed, read only.
 func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 	var sc Scan
+	name := robot
+	if id, suffix, ok := Aside(robot); ok {
+		fsys, robot = AsideFS(fsys, suffix), id
+	}
 	st := &scanState{fs: orOS(fsys), sc: &sc, v: v}
 	segs, err := listSegments(st.fs, dir, robot)
 	if err != nil {
@@ -137,7 +144,12 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		if manifest {
 			return sc, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, newest)
 		}
-		return sc, fmt.Errorf("no journal for %s in %s", robot, dir)
+		return sc, fmt.Errorf("no journal for %s in %s", name, dir)
+	}
+	if segs[0].n != 0 {
+		// Only the first holds the opening record: nothing after it can
+		// be read as this robot's.
+		return sc, fmt.Errorf("%w: segment 000000 missing: the first of %s in %s is %s, and only the first holds the opening record (the robot's configuration)", ErrGap, robot, dir, segs[0].path)
 	}
 	for i, s := range segs {
 		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {
@@ -156,7 +168,7 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		}
 	}
 	if sc.Opening == nil {
-		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record", robot), st.gap, st.firstDamage())
+		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record: its first segment %s holds none (empty, cut short or not a journal segment)", robot, segs[0].path), st.gap, st.firstDamage())
 	}
 	if err := st.fromSnapshot(); err != nil {
 		return sc, err
@@ -289,7 +301,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		reason = err.Error()
 	}
 	if reason != "" && !rd.full {
-		if err := rd.all(); err != nil {
+		if err := rd.rest(path, 0); err != nil {
 			return err
 		}
 		b = rd.b
@@ -305,7 +317,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		off = resync(b, 0)
 		if off < 0 {
 			sc.Good = 0
-			return st.tail(path, b, 0, reason, last)
+			return st.tail(path, b, 0, reason, last, rd.zeros)
 		}
 		if err := st.damage(path, b, 0, off, reason); err != nil {
 			return err
@@ -322,7 +334,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		}
 		end, reason := frameAt(b, off)
 		if reason != "" && !rd.full {
-			if err := rd.all(); err != nil {
+			if err := rd.rest(path, off); err != nil {
 				return err
 			}
 			b = rd.b
@@ -337,7 +349,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 		}
 		next := resync(b, off+1)
 		if next < 0 {
-			return st.tail(path, b, off, reason, last)
+			return st.tail(path, b, off, reason, last, rd.zeros)
 		}
 		if err := st.damage(path, b, off, next, reason); err != nil {
 			return err
@@ -358,15 +370,20 @@ func (st *scanState) segment(path string, first, last bool) error {
 
 // tail takes the bytes from off to the end of a segment, where no valid
 // frame follows a bad one: the torn tail of the last segment, or damage at
-// the end of another.
-func (st *scanState) tail(path string, b []byte, off int, reason string, last bool) error {
+// the end of another. zeros counts the zero bytes past the end of b, of a
+// file too large to read whole (segmentReader.rest): they are spare, or
+// part of the torn tail or damage, but never kept.
+func (st *scanState) tail(path string, b []byte, off int, reason string, last bool, zeros int64) error {
 	if !last {
+		if zeros > 0 {
+			reason += fmt.Sprintf(" (then %d bytes of zeros to the end of the file, not kept)", zeros)
+		}
 		return st.damage(path, b, off, len(b), reason)
 	}
 	sc := st.sc
 	rest := b[off:]
 	if off > 0 && int64(off) == sc.Good && st.pending == nil && allZero(rest) {
-		sc.Spare = int64(len(rest))
+		sc.Spare = int64(len(rest)) + zeros
 		return nil
 	}
 	sc.Torn, sc.TornSegment = &TornError{int64(off), reason}, path

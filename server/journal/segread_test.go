@@ -2,6 +2,7 @@ package journal
 
 import (
 	"bytes"
+	"errors"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -68,5 +69,69 @@ func TestSegmentReadInPieces(t *testing.T) {
 				}
 			}
 		}
+	}
+}
+
+// TestSegmentPastReadLimit: a segment file past maxSegmentRead whose end
+// is zeros (a sparse file, a reserve grown wild) scans as if read whole,
+// its zeros spare or part of the torn tail, without reading them into
+// memory; one whose end is not zeros is refused naming the file and where
+// its records end, and a restore then quarantines only its robot.
+func TestSegmentPastReadLimit(t *testing.T) {
+	src := t.TempDir()
+	writeJournal(t, src, 3000, Options{})
+	clean, err := os.ReadFile(SegmentPath(src, "cart", 0))
+	if err != nil {
+		t.Fatal(err)
+	}
+	n := len(clean)
+	const zeros = 8 << 20
+	defer func(m int64) { maxSegmentRead = m }(maxSegmentRead)
+	scan := func(seg []byte, tail []byte, limit int64) (string, error) {
+		maxSegmentRead = limit
+		d := filepath.Join(t.TempDir(), "j")
+		os.MkdirAll(d, 0o755)
+		p := SegmentPath(d, "cart", 0)
+		if err := os.WriteFile(p, seg, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		// Sparse: the zeros take no disk.
+		if err := os.Truncate(p, int64(len(seg))+zeros); err != nil {
+			t.Fatal(err)
+		}
+		if len(tail) > 0 {
+			f, _ := os.OpenFile(p, os.O_WRONLY|os.O_APPEND, 0)
+			f.Write(tail)
+			f.Close()
+		}
+		sc, err := Read(d, "cart", Visitor{ReadOnly: true})
+		return fmt.Sprintf("good %d pairs %d spare %d torn %v damage %d", sc.Good, sc.Pairs, sc.Spare, sc.Torn, len(sc.Damage)), err
+	}
+	for _, seg := range [][]byte{clean, clean[:n-3]} {
+		whole, err := scan(seg, nil, 1<<30)
+		if err != nil {
+			t.Fatal(err)
+		}
+		streamed, err := scan(seg, nil, 1<<20)
+		if err != nil || streamed != whole {
+			t.Errorf("past the limit: %s (%v); read whole: %s", streamed, err, whole)
+		}
+	}
+	// What is read into memory stays within the limit (and its last piece).
+	maxSegmentRead = 1 << 20
+	p := filepath.Join(t.TempDir(), "big.rjl")
+	os.WriteFile(p, clean, 0o644)
+	os.Truncate(p, int64(n)+zeros)
+	rd, err := openSegment(OS, p, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer rd.close()
+	if err := rd.rest(p, n); err != nil || cap(rd.b) > 1<<20+1 || int64(len(rd.b))+rd.zeros != int64(n)+zeros {
+		t.Errorf("read %d bytes into a buffer of %d, counted %d zeros (%v); want at most %d in memory", len(rd.b), cap(rd.b), rd.zeros, err, 1<<20+1)
+	}
+	_, err = scan(clean, []byte("garbage"), 1<<20)
+	if !errors.Is(err, ErrSegmentTooLarge) || !strings.Contains(err.Error(), "cart.000000.rjl") || !strings.Contains(err.Error(), fmt.Sprintf("truncate -s %d", n)) {
+		t.Errorf("garbage after the zeros: %v", err)
 	}
 }

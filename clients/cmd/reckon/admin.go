@@ -266,7 +266,7 @@ func printStats(w io.Writer, name string, st *pb.RobotStatistics) error {
 		fmt.Fprintln(w, "\nconsistency (mean NIS of applied fixes against its two-sided 95% band):")
 		tw := tabwriter.NewWriter(w, 0, 8, 2, ' ', 0)
 		for _, s := range st.GetSensors() {
-			fmt.Fprintf(tw, "  %s\tmean NIS %.3f\tband [%.3f, %.3f]\t%s\n", s.GetSensorId(), s.GetMeanNis(), s.GetBandLow(), s.GetBandHigh(), convert.ConsistencyName(s.GetVerdict()))
+			fmt.Fprintf(tw, "  %s\tmean NIS %.3f\tband [%.3f, %.3f]\t%s%s\n", s.GetSensorId(), s.GetMeanNis(), s.GetBandLow(), s.GetBandHigh(), convert.ConsistencyName(s.GetVerdict()), gatedWhy(s))
 		}
 		tw.Flush()
 	}
@@ -281,6 +281,17 @@ func printStats(w io.Writer, name string, st *pb.RobotStatistics) error {
 	_, err := fmt.Fprintf(w, "\nslips %d, gaps %d, move recoveries %d, held now %d, window entries %d\n%s\n",
 		st.GetSlips(), st.GetGaps(), st.GetRecoveries(), st.GetHeld(), st.GetWindowEntries(), trust)
 	return err
+}
+
+// gatedWhy says why a sensor whose mean NIS lies inside its band is
+// overconfident: its gate refused more of its fixes than it allows
+// (fusion.SensorStats.Consistency), which the band alone does not show.
+func gatedWhy(s *pb.SensorConsistency) string {
+	if s.GetVerdict() != pb.ConsistencyVerdict_CONSISTENCY_VERDICT_OVERCONFIDENT || s.GetMeanNis() > s.GetBandHigh() {
+		return ""
+	}
+	c := s.GetCounts()
+	return fmt.Sprintf(" (%d of %d fixes gated, more than its gate allows)", c.GetGated(), c.GetApplied()+c.GetGated())
 }
 
 // isSet reports whether the flag name was given on the command line.

@@ -8,6 +8,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -32,19 +33,23 @@ each fix sensor's mount and latency by a batch least-squares fit to the
 fixes, and prints each with its standard error and whether the run
 determines it (if not, the driving that would). It writes the corrected
 configuration to -out, each change commented; a parameter the configuration
-has no field for is printed as a factor to apply by hand. A journal's run
-is calibrated from its own configuration unless -config names another.
+has no field for is printed as a factor to apply by hand. A run that
+determines none of them writes nothing (exit status 5). A journal's run
+is calibrated from its own configuration unless -config names another. A
+recording of several runs (a controller restart begins one) is calibrated
+one run at a time: run 1, or -run N.
 With -report, the run is replayed under the configuration before and after
 into one HTML report with a calibration section at the top.`)
 	fs.SetOutput(stderr)
 	dir := fs.String("journal", "", "journal directory (with -robot)")
-	robot := fs.String("robot", "", "robot id or name in the journal")
+	robot := fs.String("robot", "", journalRobotHelp)
 	config := fs.String("config", "", "YAML robot configuration to start from (for -samples; for a journal it replaces the journal's own)")
 	samples := fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)")
 	out := fs.String("out", "", "the new YAML configuration; refused if it exists, unless -force")
 	force := fs.Bool("force", false, "replace -out if it exists")
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after (default: truth.csv in the journal directory, if there)")
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
+	runN := fs.Uint64("run", 0, "the run to calibrate, from 1 (a controller restart begins a run, on a clock of its own; default 1)")
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
@@ -59,6 +64,8 @@ into one HTML report with a calibration section at the top.`)
 		return usagef(fs, "needs -out NEW.yaml")
 	case *config != "" && samePath(*config, *out):
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
+	case *samples != "" && samePath(*samples, *out):
+		return usagef(fs, "-out is the recording %s; it is never overwritten", *samples)
 	}
 	if !*force {
 		if _, err := os.Stat(*out); err == nil {
@@ -90,10 +97,11 @@ into one HTML report with a calibration section at the top.`)
 		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
 	}
 	cfg = r.Config()
-	inputs, _, err := readRun(ctx, run, *robot, cfgProto)
+	rec, err := readRun(ctx, run, *robot, cfgProto, *runN)
 	if err != nil {
 		return err
 	}
+	inputs := rec.inputs
 	var truthPoses []calib.StampedPose
 	if *truth != "" {
 		if truthPoses, err = readTruthCSV(*truth); err != nil {
@@ -101,7 +109,8 @@ into one HTML report with a calibration section at the top.`)
 		}
 	}
 	odo, imu, fixes := splitInputs(inputs)
-	fmt.Fprintf(stdout, "%s: %d odometry samples, %d IMU headings, %d fixes\n", src, len(odo), len(imu), len(fixes))
+	fmt.Fprint(stdout, rec.tornNote())
+	fmt.Fprintf(stdout, "%s%s: %d odometry samples, %d IMU headings, %d fixes\n", src, rec.note(), len(odo), len(imu), len(fixes))
 
 	wiring, sensors := calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)
 	findings := printFindings(stdout, wiring, sensors)
@@ -162,7 +171,7 @@ into one HTML report with a calibration section at the top.`)
 	if *reportDir == "" {
 		return nil
 	}
-	rs := review.Source{JournalDir: *dir, Robot: *robot, Samples: *samples, Config: cfgProto, Truth: *truth}
+	rs := review.Source{JournalDir: *dir, Robot: *robot, Samples: *samples, Config: cfgProto, Truth: *truth, Run: rec.run}
 	cal := review.Calibration{By: "reckon calibrate", Findings: findings, Columns: cols, Rows: rows, Notes: append(byHand, wrote)}
 	return writeCalibrationReport(stdout, *reportDir, rs, cfgProto, *out, cal)
 }
@@ -281,6 +290,12 @@ func byHandNotes(fit *calib.SystematicFit) []string {
 // its fitted value and standard error, and a first comment line naming
 // every change. It returns the changes.
 func writeCalibratedConfig(in string, data []byte, out, run string, cfg fusion.Config, fit *calib.SystematicFit) ([]string, error) {
+	if !slices.ContainsFunc(fit.Params, func(p calib.Param) bool { return p.Determined }) {
+		// Nothing was fitted: the mounts' standard errors would be the
+		// fit's weak prior (DEVELOPERS.md, "Design: Systematic
+		// parameters"), written as if the run had measured them.
+		return nil, fmt.Errorf("%w: the run determines none of the parameters (the table says what driving would); nothing written", errRefused)
+	}
 	var edits []configEdit
 	var kept []string
 	for _, p := range fit.Params {

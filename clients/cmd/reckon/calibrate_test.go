@@ -2,7 +2,9 @@ package main
 
 import (
 	"context"
+	"fmt"
 	"math"
+	"math/rand/v2"
 	"os"
 	"path/filepath"
 	"regexp"
@@ -214,6 +216,47 @@ func TestCalibrateRefusals(t *testing.T) {
 	}
 	if b, _ := os.ReadFile(exists); string(b) != string(orig) {
 		t.Error("an existing -out was overwritten")
+	}
+}
+
+// TestCalibrateStandingStill: a run of the robot standing still in view
+// of a marker determines none of the parameters (no wheel turns, no
+// motion that would show a mount or a latency). Calibrate says so and
+// writes nothing: it wrote a configuration whose only change was each
+// mount's standard error at the fit's weak prior (1 m and 50 degrees), as
+// if fitted, and exited 0.
+func TestCalibrateStandingStill(t *testing.T) {
+	// 30 s at 200 Hz odometry, 100 Hz IMU and 10 Hz camera: the example
+	// robot at its start pose (0, 0, 0), its camera (mounted at x 0.15 m)
+	// seeing itself there exactly, or with 1 cm and 5 mrad of noise,
+	// seeded.
+	for _, noise := range []float64{0, 1} {
+		dir := t.TempDir()
+		samples, out := filepath.Join(dir, "still.jsonl"), filepath.Join(dir, "new.yaml")
+		rng := rand.New(rand.NewPCG(5, 5))
+		var b strings.Builder
+		for i := range 6000 {
+			ns := int64(i) * 5e6
+			fmt.Fprintf(&b, "{\"odometry\":{\"stamp_ns\":\"%d\",\"counts\":{\"counts\":[\"0\",\"0\",\"0\"]}}}\n", ns)
+			if i%2 == 0 {
+				fmt.Fprintf(&b, "{\"heading\":{\"stamp_ns\":\"%d\",\"heading_rad\":%g}}\n", ns, 0.7+noise*0.005*rng.NormFloat64())
+			}
+			if i%20 == 10 {
+				fmt.Fprintf(&b, "{\"fix\":{\"stamp_ns\":\"%d\",\"sensor_id\":\"camera\",\"pose\":{\"x_m\":%g,\"y_m\":%g,\"heading_rad\":%g}}}\n",
+					ns, 0.15+noise*0.01*rng.NormFloat64(), noise*0.01*rng.NormFloat64(), noise*0.005*rng.NormFloat64())
+			}
+		}
+		if err := os.WriteFile(samples, []byte(b.String()), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		stdout, errs, code := runCode(t, context.Background(), "", "calibrate", "-config", exampleConfig, "-samples", samples, "-out", out)
+		if code != exitRefused || !strings.Contains(errs, "determines none") {
+			t.Errorf("noise %g: calibrate of a run standing still: exit %d, want %d; stderr %q\n%s", noise, code, exitRefused, errs, stdout)
+		}
+		if _, err := os.Stat(out); err == nil {
+			b, _ := os.ReadFile(out)
+			t.Errorf("noise %g: a configuration was written from a run that determines nothing:\n%.600s", noise, b)
+		}
 	}
 }
 

@@ -11,7 +11,9 @@ import (
 	"strings"
 	"sync"
 	"testing"
+	"time"
 
+	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
 	"reckon.example/server/daemon"
 )
@@ -214,5 +216,54 @@ func TestAdminCommands(t *testing.T) {
 	os.WriteFile(bad, []byte("imu_mode: absolute\nwheels:\n  - {y_m: 0.1, spokes: 3}\n"), 0o644)
 	if _, errs, code := rc("", "create", "cart", "-config", bad); code != exitRefused || !strings.Contains(errs, "bad.yaml: robot configuration file: line 3") {
 		t.Errorf("bad configuration: exit %d, %s", code, errs)
+	}
+}
+
+// TestGatedWhy: a sensor called overconfident although its mean NIS lies
+// inside its band was gated more than its gate allows, and stats says so;
+// one whose mean NIS is above the band needs no such word.
+func TestGatedWhy(t *testing.T) {
+	over := pb.ConsistencyVerdict_CONSISTENCY_VERDICT_OVERCONFIDENT
+	for _, c := range []struct {
+		s    *pb.SensorConsistency
+		want string
+	}{
+		{&pb.SensorConsistency{MeanNis: 2.87, BandLow: 2.44, BandHigh: 3.35, Verdict: over, Counts: &pb.VerdictCounts{Applied: 90, Gated: 10}}, " (10 of 100 fixes gated, more than its gate allows)"},
+		{&pb.SensorConsistency{MeanNis: 5.26, BandLow: 2.28, BandHigh: 3.51, Verdict: over, Counts: &pb.VerdictCounts{Applied: 49, Gated: 51}}, ""},
+		{&pb.SensorConsistency{MeanNis: 2.9, BandLow: 2.44, BandHigh: 3.35, Verdict: pb.ConsistencyVerdict_CONSISTENCY_VERDICT_CONSISTENT, Counts: &pb.VerdictCounts{Applied: 99, Gated: 1}}, ""},
+	} {
+		if got := gatedWhy(c.s); got != c.want {
+			t.Errorf("%v: %q, want %q", c.s, got, c.want)
+		}
+	}
+}
+
+// TestPrefaceHint: a listener that closes each connection before speaking
+// gRPC, as a service serving TLS does to a plain-text client (reckond
+// -tls-cert, tried by hand: the same error), leaves
+// grpc-go's "error reading server preface: EOF"; reckon adds what to check.
+func TestPrefaceHint(t *testing.T) {
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer lis.Close()
+	go func() {
+		for {
+			c, err := lis.Accept()
+			if err != nil {
+				return
+			}
+			// It reads the client's first bytes (a TLS server, its
+			// record header) and closes.
+			c.Read(make([]byte, 1024))
+			c.Close()
+		}
+	}()
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	defer cancel()
+	_, errs, code := runCode(t, ctx, "", "robots", "-addr", lis.Addr().String())
+	if code != exitUnreachable || !strings.Contains(errs, "server preface") || !strings.Contains(errs, "-tls-ca") {
+		t.Errorf("exit %d, stderr %q; want exit %d with the hint", code, errs, exitUnreachable)
 	}
 }

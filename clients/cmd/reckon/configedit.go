@@ -3,6 +3,7 @@ package main
 import (
 	"fmt"
 	"os"
+	"path/filepath"
 	"strconv"
 	"strings"
 
@@ -80,10 +81,35 @@ func editConfig(in string, data []byte, out string, edits []configEdit, note fun
 	if _, _, err := convert.LoadConfigYAML([]byte(b.String())); err != nil {
 		return nil, fmt.Errorf("the new configuration does not load: %w", err)
 	}
-	if err := os.WriteFile(out, []byte(b.String()), 0o644); err != nil {
+	if err := writeWhole(out, []byte(b.String())); err != nil {
 		return nil, err
 	}
 	return changes, nil
+}
+
+// writeWhole writes data to path through a temporary file beside it that
+// replaces path only once written whole: a write that fails part way (a
+// full disk) leaves no cut file, and an existing one as it was.
+func writeWhole(path string, data []byte) error {
+	f, err := os.CreateTemp(filepath.Dir(path), "."+filepath.Base(path)+".*.tmp")
+	if err != nil {
+		return fmt.Errorf("write %s: %w", path, err)
+	}
+	_, err = f.Write(data)
+	if cerr := f.Close(); err == nil {
+		err = cerr
+	}
+	if err == nil {
+		err = os.Chmod(f.Name(), 0o644)
+	}
+	if err == nil {
+		err = os.Rename(f.Name(), path)
+	}
+	if err != nil {
+		os.Remove(f.Name())
+		return fmt.Errorf("write %s: %w", path, err)
+	}
+	return nil
 }
 
 // setField makes one edit in a configuration's root mapping, adding

@@ -5,10 +5,12 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"strings"
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
+	"reckon.example/clients/review"
 	"reckon.example/server/convert"
 )
 
@@ -54,7 +56,7 @@ func exitCode(err error) int {
 		return exitInterrupted
 	case errors.As(err, &ue):
 		return exitUsage
-	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL):
+	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL), errors.Is(err, review.ErrTruth):
 		return exitRefused
 	}
 	// status.FromError finds a status wrapped anywhere in err.
@@ -86,6 +88,15 @@ func report(err error, stderr io.Writer) int {
 		fmt.Fprintln(stderr, "reckon: interrupted")
 	default:
 		fmt.Fprintln(stderr, "reckon:", err)
+		if code == exitUnreachable && strings.Contains(err.Error(), "server preface") {
+			fmt.Fprintln(stderr, prefaceHint)
+		}
 	}
 	return code
 }
+
+// prefaceHint follows an error of a connection that the other end closed
+// before it spoke gRPC: a service that serves TLS does that to a client
+// speaking plain text, which grpc-go reports only as "error reading server
+// preface: EOF".
+const prefaceHint = "reckon: the other end closed the connection before speaking gRPC: if the service serves TLS (reckond -tls-cert), give -tls-ca with the CA that signed its certificate; otherwise check -addr"

@@ -162,6 +162,11 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 			continue
 		}
 		s, err := sr.Next()
+		if errors.Is(err, io.EOF) && fd.from > sr.Line() {
+			// A mistyped line, or another file than the one an earlier
+			// feed named.
+			return &usageError{err: fmt.Errorf("%s has %d lines: -from-line %d lies past its end; nothing sent", fd.label, sr.Line(), fd.from)}
+		}
 		if errors.Is(err, io.EOF) {
 			// The last samples may still be answered not taken.
 			fd.t.drain(ctx)

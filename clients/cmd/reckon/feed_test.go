@@ -5,6 +5,8 @@ import (
 	"io"
 	"log/slog"
 	"net/http"
+	"os"
+	"strconv"
 	"strings"
 	"testing"
 
@@ -52,5 +54,28 @@ func TestFeedAndWatch(t *testing.T) {
 	}
 	if _, _, err := runCmd(t, "feed", "-addr", addrs[0], "-robot", "robots/cart", "/nonexistent.jsonl"); err == nil {
 		t.Errorf("feeding a missing file succeeded")
+	}
+}
+
+// TestFeedFromLinePastTheEnd: -from-line past the file's last line (a
+// mistyped number, or another file than the one an earlier feed named)
+// sends nothing, and feed says so with exit status 2 (a bad argument)
+// instead of reporting "0 samples sent" as done.
+func TestFeedFromLinePastTheEnd(t *testing.T) {
+	addr, stop := serve(t, "127.0.0.1:0", t.TempDir())
+	defer stop()
+	samples := "../../../testdata/samples/greenhouse-10s.jsonl"
+	b, err := os.ReadFile(samples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.Count(string(b), "\n")
+	out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-from-line", strconv.Itoa(lines+10), samples)
+	if code != exitUsage || !strings.Contains(errs, "past its end") || !strings.Contains(errs, strconv.Itoa(lines)+" lines") {
+		t.Errorf("feed -from-line %d of a file of %d lines: exit %d\n%s\n%s", lines+10, lines, code, out, errs)
+	}
+	// The last line is a sample and is sent.
+	if out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-from-line", strconv.Itoa(lines), samples); code != exitOK || !strings.Contains(out, "1 samples sent") {
+		t.Errorf("feed -from-line %d (the last line): exit %d\n%s\n%s", lines, code, out, errs)
 	}
 }

@@ -92,3 +92,7 @@ func parseNone(fs *flag.FlagSet, args []string, stdout, stderr io.Writer) error 
 	}
 	return err
 }
+
+// journalRobotHelp is the help of the -robot flag of the tools that read a
+// journal.
+const journalRobotHelp = "robot id or name in the journal; a deleted robot's journal is {id}.deleted-{unix ns}, the suffix its files carry"

@@ -44,6 +44,8 @@ configuration with those terms; it never overwrites the input.`)
 		return usagef(fs, "-config and -out go together")
 	case *config != "" && samePath(*config, *out):
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
+	case *out != "" && samePath(pos[0], *out):
+		return usagef(fs, "-out is the recording %s; it is never overwritten", pos[0])
 	case !(*horizon > 0) || !(*turnRate > 0):
 		return usagef(fs, "-horizon and -turn-rate must be positive")
 	case (*fixStd != 0) != (*fixInterval != 0):

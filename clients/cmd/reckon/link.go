@@ -6,6 +6,8 @@ import (
 	"io"
 	"time"
 
+	"google.golang.org/grpc/status"
+
 	"reckon.example/clients/bridge"
 	"reckon.example/clients/client"
 )
@@ -78,7 +80,7 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	if err != nil {
 		return err
 	}
-	dec.Resume(r.GetBootId())
+	dec.Resume(r.GetBootId(), r.GetNewestStampNs())
 	// The service's restarts (an upgrade, a crash) do not end the link: it
 	// opens the session again and goes on.
 	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
@@ -86,6 +88,11 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	}
 	sum, err := bridge.Forward(ctx, src, &dec, sess, bridge.Reconnect(reopen, stderr))
 	printLinkSummary(stdout, name, sum)
+	if _, fromService := status.FromError(err); !fromService {
+		// With Reconnect, Forward fails otherwise only on reading its
+		// source.
+		err = fmt.Errorf("reading %s: %w", from, err)
+	}
 	if ctx.Err() != nil && (err == nil || exitCode(err) == exitInterrupted) {
 		return errInterrupted
 	}
@@ -106,5 +113,8 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 	}
 	for _, r := range sum.Reasons {
 		fmt.Fprintln(w, "  "+r)
+	}
+	for _, d := range sum.Drops {
+		fmt.Fprintln(w, "  first of its kind: "+d)
 	}
 }

@@ -3,13 +3,23 @@ package main
 import (
 	"bytes"
 	"context"
+	"io"
+	"log/slog"
 	"net"
+	"os"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
+	"github.com/creack/pty"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
 	"reckon.example/clients/bridge"
 	"reckon.example/clients/client"
+	"reckon.example/server"
+	"reckon.example/server/daemon"
 )
 
 // TestLink: reckon link listens on UDP, creates the robot, takes 200 frames
@@ -168,5 +178,364 @@ func TestLinkReboot(t *testing.T) {
 	<-linkDone
 	if s := out.String(); !strings.Contains(s, " 1 restarts") || !strings.Contains(s, "too_old 0, invalid 0") {
 		t.Errorf("summary:\n%s", s)
+	}
+}
+
+// TestLinkSaysWhyFramesDrop: frames with a bad CRC, of an unknown type (a
+// newer protocol) and stamped behind the last taken frame (a controller
+// clock that went back, after which every frame is dropped until it
+// catches up) are named, with the field that was wrong, on standard error
+// while the link runs and in its summary. Before, the summary only counted
+// them ("1 corrupted, 2 invalid") and nothing was said while it ran.
+func TestLinkSaysWhyFramesDrop(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	linkCtx, stop := context.WithCancel(context.Background())
+	var out, errb bytes.Buffer
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+	}()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	frame := func(k int) bridge.Frame {
+		return bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+	}
+	waitNewest := func(k int) {
+		for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(50 * time.Millisecond) {
+			if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == int64(k)*10_000_000 {
+				return
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("frame %d never arrived\n%s%s", k, out.String(), errb.String())
+			}
+			f := frame(k) // until the link listens, datagrams may be lost
+			conn.Write(bridge.AppendFrame(nil, &f, nil))
+		}
+	}
+	waitNewest(1) // stamp 0 is a new robot's newest too
+	var b []byte
+	for k := 2; k < 40; k++ {
+		f := frame(k)
+		switch k {
+		case 10:
+			raw := bridge.AppendRawFrame(nil, &f)
+			raw[len(raw)-1] ^= 0x5a
+			b = append(bridge.AppendCOBS(b, raw), 0)
+			continue
+		case 20:
+			f.Type = 2
+		case 30:
+			f.StampUs = 50_000 // behind frame 29's 290 ms
+		}
+		b = bridge.AppendFrame(b, &f, nil)
+	}
+	conn.Write(b)
+	waitNewest(39)
+	stop()
+	if err := <-linkDone; exitCode(err) != exitInterrupted {
+		t.Fatalf("link interrupted: %v (exit %d)\n%s", err, exitCode(err), errb.String())
+	}
+	for _, want := range []string{
+		"bridge: corrupted frame: crc: CRC ",
+		"bridge: invalid frame: type: 2, only 1 (wheel counts) is known",
+		"bridge: invalid frame: stamp: 50000 us is not after the last taken frame's 290000 us although its counter 30 is ahead of 29",
+	} {
+		if !strings.Contains(errb.String(), "frame dropped: "+want) {
+			t.Errorf("stderr does not say %q:\n%s", want, errb.String())
+		}
+		if !strings.Contains(out.String(), "first of its kind: "+want) {
+			t.Errorf("summary does not say %q:\n%s", want, out.String())
+		}
+	}
+	if s := out.String(); !strings.Contains(s, "1 corrupted, 2 invalid") {
+		t.Errorf("summary:\n%s", s)
+	}
+}
+
+// TestLinkAfterPowerCycle: the whole robot is switched off and on. The
+// robot's first run was fed by reckon link without a controller restart,
+// so it carries no link boot id; the new link's first frame, of the
+// rebooted controller, is stamped on a clock started again, behind the
+// robot's newest odometry: the link starts run 2 there (PROTOCOL.md,
+// "Reboots"). Before, it compared boot ids only, found none to compare,
+// and every frame of the new boot was refused as time_backwards for as
+// long as the first run had lasted. A link restarted while the controller
+// ran on (its stamps after the newest) starts no run.
+func TestLinkAfterPowerCycle(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	// One link process per step: its boot byte, its first counter and
+	// stamp step (10 ms frames), and the run the robot is then in.
+	for i, step := range []struct {
+		boot        uint8
+		from, count int
+		run         uint64
+	}{
+		{1, 0, 150, 1},  // created by the link; run 1 has no boot id
+		{1, 150, 50, 1}, // the link restarted, the controller ran on
+		{2, 0, 60, 2},   // power cycle: boot 2, clock from zero
+	} {
+		pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+		if err != nil {
+			t.Fatal(err)
+		}
+		udpAddr := pc.LocalAddr().String()
+		pc.Close()
+		linkCtx, stop := context.WithCancel(context.Background())
+		var out, errb bytes.Buffer
+		linkDone := make(chan error, 1)
+		go func() {
+			linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+				"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+		}()
+		conn, err := net.Dial("udp", udpAddr)
+		if err != nil {
+			t.Fatal(err)
+		}
+		last := int64(step.from+step.count-1) * 10_000_000
+		var r interface {
+			GetNewestStampNs() int64
+			GetRun() uint64
+		}
+		for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(50 * time.Millisecond) {
+			var b []byte
+			for k := step.from; k < step.from+step.count; k++ {
+				f := bridge.Frame{Type: bridge.FrameWheels, Boot: step.boot, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+				b = bridge.AppendFrame(b, &f, nil)
+				if k%20 == 19 || k == step.from+step.count-1 {
+					conn.Write(b)
+					b = b[:0]
+				}
+			}
+			robot, err := c.GetRobot(context.Background(), "robots/cart")
+			if err == nil && robot.GetNewestStampNs() == last {
+				r = robot
+				break
+			}
+			if time.Now().After(deadline) {
+				stop()
+				<-linkDone
+				t.Fatalf("link %d: the last frame never arrived (%v)\n%s%s", i+1, robot, out.String(), errb.String())
+			}
+		}
+		conn.Close()
+		stop()
+		<-linkDone
+		if r.GetRun() != step.run || !strings.Contains(out.String(), "invalid 0") {
+			t.Errorf("link %d: robot in run %d, want %d; summary:\n%s", i+1, r.GetRun(), step.run, out.String())
+		}
+	}
+}
+
+// TestLinkPortGone: the serial port goes away under the link (a USB
+// adapter pulled out; here the pseudo-terminal's master end closed): the
+// link prints its summary and exits 1 with an error naming the port.
+// Before, the error was the serial library's bare "Port has been closed".
+func TestLinkPortGone(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	master, tty, err := pty.Open()
+	if err != nil {
+		t.Skipf("no pseudo-terminal: %v", err)
+	}
+	defer tty.Close()
+	var out, errb bytes.Buffer
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-serial", tty.Name(), "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
+	}()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(20 * time.Millisecond) {
+		f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
+		master.Write(bridge.AppendFrame(nil, &f, nil))
+		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == 10_000_000 {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("the frame never arrived\n%s%s", out.String(), errb.String())
+		}
+	}
+	master.Close()
+	select {
+	case err = <-linkDone:
+	case <-time.After(20 * time.Second):
+		t.Fatal("the link did not end when its port went away")
+	}
+	if exitCode(err) != exitFailure || !strings.Contains(err.Error(), tty.Name()) {
+		t.Errorf("link ended with %v (exit %d), want exit %d naming %s", err, exitCode(err), exitFailure, tty.Name())
+	}
+	if !strings.Contains(out.String(), "samples sent to robots/cart: applied ") {
+		t.Errorf("summary:\n%s", out.String())
+	}
+}
+
+// TestLinkSaysRefusalsWhileRunning: frames of three wheels to a robot
+// configured with two (the firmware's wheel order or count not matching
+// the configuration): the service refuses every sample, and the link says
+// so on standard error while it runs, naming the field, once and not at
+// every sample. Before, the refusals were named only in the summary at
+// its end; a link under systemd fed a robot nothing for hours in silence.
+func TestLinkSaysRefusalsWhileRunning(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	linkCtx, stop := context.WithCancel(context.Background())
+	defer stop()
+	errb := &lockedBuffer{}
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/drive-wheel-turn.yaml"}, nil, io.Discard, errb)
+	}()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	const want = "counts has 3 entries for 2 wheels"
+	for k, deadline := 0, time.Now().Add(20*time.Second); !strings.Contains(errb.String(), want); k++ {
+		if time.Now().After(deadline) {
+			t.Fatalf("the refusals were not said while the link runs:\n%s", errb.String())
+		}
+		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+		conn.Write(bridge.AppendFrame(nil, &f, nil))
+		time.Sleep(10 * time.Millisecond)
+	}
+	time.Sleep(200 * time.Millisecond) // more refusals, not said again
+	stop()
+	<-linkDone
+	if n := strings.Count(errb.String(), want); n != 1 {
+		t.Errorf("said %d times, want once:\n%s", n, errb.String())
+	}
+}
+
+// lockedBuffer is a bytes.Buffer that a running command writes while the
+// test reads it.
+type lockedBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (l *lockedBuffer) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+func (l *lockedBuffer) String() string {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.String()
+}
+
+// TestLinkTokenRefused: the service restarts with another token (rotated
+// on the coprocessor; the link read its token file when it started). The
+// stream it opens again is refused at once: the link ends with the
+// refusal (exit 1), so that its unit restarts it with the new token. Before,
+// it opened the stream again at every frame, two lines on standard error
+// each time, for as long as it ran.
+func TestLinkTokenRefused(t *testing.T) {
+	dir := t.TempDir()
+	tokenFile := dir + "/token"
+	if err := os.WriteFile(tokenFile, []byte("alpha-token\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	serveToken := func(listen, token string) (string, func()) {
+		ctx, cancel := context.WithCancel(context.Background())
+		ready, done := make(chan string, 1), make(chan error, 1)
+		go func() {
+			done <- daemon.Serve(ctx, daemon.Config{Listen: listen, Token: token, Ready: func(a, _ string) { ready <- a }, ShutdownGrace: 100 * time.Millisecond,
+				Options: server.Options{JournalDir: dir + "/journal", Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}})
+		}()
+		select {
+		case addr := <-ready:
+			return addr, func() { cancel(); <-done }
+		case err := <-done:
+			cancel()
+			t.Fatalf("serve: %v", err)
+			return "", nil
+		}
+	}
+	addr, stop := serveToken("127.0.0.1:0", "alpha-token")
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	udpAddr := pc.LocalAddr().String()
+	pc.Close()
+	errb := &lockedBuffer{}
+	linkDone := make(chan error, 1)
+	go func() {
+		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-token-file", tokenFile, "-udp", udpAddr, "-robot", "robots/cart",
+			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, io.Discard, errb)
+	}()
+	conn, err := net.Dial("udp", udpAddr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	send := func(k int) {
+		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
+		conn.Write(bridge.AppendFrame(nil, &f, nil))
+	}
+	k := 0
+	for deadline := time.Now().Add(20 * time.Second); !strings.Contains(errb.String(), "linking udp"); k++ {
+		if time.Now().After(deadline) {
+			t.Fatalf("the link did not start:\n%s", errb.String())
+		}
+		send(k)
+		time.Sleep(10 * time.Millisecond)
+	}
+	stop()
+	_, stop = serveToken(addr, "beta-token")
+	defer stop()
+	var linkErr error
+	for deadline := time.Now().Add(30 * time.Second); linkErr == nil; k++ {
+		select {
+		case linkErr = <-linkDone:
+			if linkErr == nil {
+				t.Fatal("the link ended without an error")
+			}
+			continue
+		default:
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("the link did not end when its token was refused; %d lines on stderr", strings.Count(errb.String(), "\n"))
+		}
+		send(k)
+		time.Sleep(10 * time.Millisecond)
+	}
+	if exitCode(linkErr) != exitFailure || status.Code(linkErr) != codes.Unauthenticated {
+		t.Errorf("link ended with %v (exit %d), want Unauthenticated, exit %d", linkErr, exitCode(linkErr), exitFailure)
+	}
+	if n := strings.Count(errb.String(), "opening it again"); n > 3 {
+		t.Errorf("the stream was opened again %d times:\n%s", n, errb.String())
 	}
 }

@@ -29,7 +29,7 @@ inputs to damage is replayed past each gap, which is named; the exit status
 is then 1.`)
 	fs.SetOutput(stderr)
 	journal := fs.String("journal", "", "journal directory to replay (with -robot)")
-	robot := fs.String("robot", "", "robot id or name in the journal")
+	robot := fs.String("robot", "", journalRobotHelp)
 	config := fs.String("config", "", "YAML robot configuration: replaces the journal's, or configures -samples")
 	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
 	format := fs.String("format", "csv", "csv, jsonl, or samples (the raw samples as JSON Lines); table also works")
@@ -44,14 +44,19 @@ is then 1.`)
 	if len(pos) != 0 {
 		return usagef(fs, "takes no arguments")
 	}
-	var w io.Writer = stdout
-	if *out != "" {
-		f, err := os.Create(*out)
-		if err != nil {
-			return err
+	if err := span.check(fs); err != nil {
+		return err
+	}
+	for _, in := range []string{*samples, *config} {
+		if *out != "" && in != "" && samePath(in, *out) {
+			return usagef(fs, "-out is the input %s; it is never overwritten", in)
 		}
-		defer f.Close()
-		w = f
+	}
+	var w io.Writer = stdout
+	var lf *lazyFile
+	if *out != "" {
+		lf = &lazyFile{path: *out}
+		w = lf
 	}
 	var ow outputWriter
 	if *format == "samples" {
@@ -85,7 +90,53 @@ is then 1.`)
 	if err == nil && rf.want > rf.last {
 		err = fmt.Errorf("run %d asked for; the recording holds runs 1 to %d", rf.want, rf.last)
 	}
+	if lf != nil {
+		if cerr := lf.close(err == nil); err == nil {
+			err = cerr
+		}
+	}
 	return err
+}
+
+// lazyFile creates the file at path at the first write, so that a replay
+// that fails before it has anything to write leaves an existing file as it
+// was.
+type lazyFile struct {
+	path string
+	f    *os.File
+}
+
+func (l *lazyFile) Write(b []byte) (int, error) {
+	if len(b) == 0 && l.f == nil {
+		return 0, nil
+	}
+	if err := l.create(); err != nil {
+		return 0, err
+	}
+	return l.f.Write(b)
+}
+
+func (l *lazyFile) create() error {
+	if l.f != nil {
+		return nil
+	}
+	f, err := os.Create(l.path)
+	l.f = f
+	return err
+}
+
+// close closes the file; done creates it if nothing was written, so that
+// a replay that succeeds without a row leaves no older file in its place.
+func (l *lazyFile) close(done bool) error {
+	if done {
+		if err := l.create(); err != nil {
+			return err
+		}
+	}
+	if l.f == nil {
+		return nil
+	}
+	return l.f.Close()
 }
 
 // runFilter passes on the inputs of one run (want; 0: every run), and the
@@ -199,7 +250,8 @@ func (hw *heldWriter) flush() error {
 	return nil
 }
 
-// spanWriter passes on the inputs stamped inside a time span.
+// spanWriter passes on the inputs stamped inside a time span, counted
+// from the start of each run (its first input after the run start).
 type spanWriter struct {
 	next    outputWriter
 	span    timeSpan
@@ -210,7 +262,9 @@ type spanWriter struct {
 func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
 	stamp := convert.SampleStamp(s)
 	if s.GetRunStart() != nil {
-		// It has no stamp; the run's start is its first input's after it.
+		// It has no stamp; the run's start is its first input's after it,
+		// on the restarted controller's clock.
+		sw.started = false
 		return sw.next.input(s, p, resp)
 	}
 	if !sw.started {
@@ -237,7 +291,7 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	// to damage) the robot lacks what was lost, so they are counted apart.
 	same, differ, differPast := 0, 0, 0
 	gaps := 0
-	_, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true,
+	fr, scan, err := journal.Replay(dir, id, journal.ReplayOptions{Config: override, ReadOnly: true,
 		Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
@@ -257,7 +311,9 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 			fmt.Fprintf(stderr, "note: %v; the replay goes on past it without the inputs lost\n", err)
 			return nil
 		}})
-	if err != nil && !errors.Is(err, journal.ErrGap) {
+	// A gap is gone past (and named by Gap) only once the journal opened a
+	// robot: without one (no segment left) nothing was replayed.
+	if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 		return err
 	}
 	fmt.Fprintf(stderr, "replayed %d inputs of %s", scan.Pairs, name)
@@ -303,6 +359,16 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, o
 	name := server.RobotName("replay")
 	sr := convert.NewSampleReader(f)
 	n := 0
+	// The verdicts by kind (a held fix's final one once resolved) and, as
+	// feed names them, the first refusals with their file and line.
+	counts := map[pb.Verdict]int{}
+	held := map[uint64]int{} // sequence -> line
+	var reasons []string
+	reason := func(line int, v pb.Verdict, why string) {
+		if why != "" && len(reasons) < 10 {
+			reasons = append(reasons, fmt.Sprintf("%s:%d: %s: %s", path, line, convert.VerdictName(v), why))
+		}
+	}
 	for {
 		if err := ctx.Err(); err != nil {
 			return err
@@ -321,7 +387,26 @@ func replaySamples(ctx context.Context, path string, cfgProto *pb.RobotConfig, o
 			return err
 		}
 		n++
+		counts[resp.GetVerdict()]++
+		if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
+			held[resp.GetSequence()] = sr.Line()
+		}
+		reason(sr.Line(), resp.GetVerdict(), resp.GetReason())
+		for _, r := range resp.GetResolved() {
+			if line, ok := held[r.GetSequence()]; ok {
+				delete(held, r.GetSequence())
+				counts[pb.Verdict_VERDICT_HELD]--
+				counts[r.GetVerdict()]++
+				reason(line, r.GetVerdict(), r.GetReason())
+			}
+		}
 	}
-	fmt.Fprintf(stderr, "replayed %d samples from %s\n", n, path)
+	if n == 0 {
+		return fmt.Errorf("%s: %w: no samples", path, convert.ErrJSONL)
+	}
+	fmt.Fprintf(stderr, "replayed %d samples from %s: %s\n", n, path, verdictLine(counts))
+	for _, r := range reasons {
+		fmt.Fprintln(stderr, "  "+r)
+	}
 	return nil
 }

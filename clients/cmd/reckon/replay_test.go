@@ -2,8 +2,10 @@ package main
 
 import (
 	"bufio"
+	"context"
 	"encoding/csv"
 	"errors"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -209,5 +211,427 @@ func TestReplayPastAGap(t *testing.T) {
 	rows, cerr := csv.NewReader(strings.NewReader(out)).ReadAll()
 	if cerr != nil || len(rows)-1 != scan.Pairs {
 		t.Errorf("%d rows (%v), the journal holds %d inputs", len(rows)-1, cerr, scan.Pairs)
+	}
+}
+
+// TestReplayOfAJournalWithoutSegments: a journal whose manifest names
+// segments of which none is left (a half-copied directory) replays
+// nothing; replay says so and fails instead of writing an empty track
+// with exit status 0.
+func TestReplayOfAJournalWithoutSegments(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	if err := os.Remove(journal.SegmentPath(dir, "cart", 0)); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart")
+	if err == nil || exitCode(err) != exitFailure || !strings.Contains(err.Error(), "no segment of cart") {
+		t.Errorf("replay of a journal without segments: %v (exit %d)\n%s", err, exitCode(err), errs)
+	}
+}
+
+// lateFixFirst writes the example samples with their first fix moved to
+// the top, as a recording starts when a camera's late fix arrives before
+// the odometry it was captured after, and returns the file and the number
+// of samples.
+func lateFixFirst(t *testing.T) (string, int) {
+	t.Helper()
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var samples []string
+	fix := -1
+	for _, l := range strings.Split(string(b), "\n") {
+		if l == "" || strings.HasPrefix(l, "#") {
+			continue
+		}
+		if fix < 0 && strings.HasPrefix(l, `{"fix"`) {
+			fix = len(samples)
+		}
+		samples = append(samples, l)
+	}
+	if fix < 1 {
+		t.Fatal("the example samples have no fix after their first line")
+	}
+	samples = append(append([]string{samples[fix]}, samples[:fix]...), samples[fix+1:]...)
+	path := filepath.Join(t.TempDir(), "late-fix-first.jsonl")
+	if err := os.WriteFile(path, []byte(strings.Join(samples, "\n")+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return path, len(samples)
+}
+
+// TestReplayInputsBeforeTheFirst: a recording whose first input is a late
+// fix, stamped after the odometry that follows it, replays with a row for
+// every input: without -from nothing is left out, though the inputs after
+// the fix are stamped before the run's start (its first input's stamp);
+// they were dropped without a word.
+func TestReplayInputsBeforeTheFirst(t *testing.T) {
+	path, n := lateFixFirst(t)
+	out, errs, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", path)
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	rows, err := csv.NewReader(strings.NewReader(out)).ReadAll()
+	if err != nil || len(rows)-1 != n {
+		t.Errorf("%d rows (%v) for %d samples", len(rows)-1, err, n)
+	}
+	// -to alone keeps them too: the stretch starts with the run.
+	out, errs, err = runCmd(t, "replay", "-config", exampleConfig, "-samples", path, "-to", "1")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if rows, _ := csv.NewReader(strings.NewReader(out)).ReadAll(); len(rows) < 2 || rows[1][1] != "1" || rows[2][1] != "2" {
+		t.Errorf("-to 1: the rows start with %v", rows[1:min(3, len(rows))])
+	}
+}
+
+// TestReviewInputsBeforeTheFirst: review, like replay, covers the inputs
+// stamped before the run's first input when no -from is given: the
+// summary counts every sample.
+func TestReviewInputsBeforeTheFirst(t *testing.T) {
+	path, n := lateFixFirst(t)
+	out := filepath.Join(t.TempDir(), "review")
+	txt, errs, err := runCmd(t, "review", "-config", exampleConfig, "-samples", path, "-out", out)
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if want := fmt.Sprintf(", %d inputs\n", n); !strings.Contains(txt, want) {
+		t.Errorf("the summary does not count the %d samples:\n%s", n, txt)
+	}
+}
+
+// TestReviewRefusesABadTruthFile: review stops at a truth file that is not
+// a time-ordered table of stamp_ns,x_m,y_m,heading_rad, naming the file
+// and its line, with exit status 5 (input refused). It went on: a row
+// with a number it could not read took it as 0 or NaN (an RMS error of
+// NaN), short rows and stamps in seconds were skipped as headers (no truth
+// matched, or one step), rows out of order matched one step, all without
+// a word.
+func TestReviewRefusesABadTruthFile(t *testing.T) {
+	dir := t.TempDir()
+	samples, truth := filepath.Join(dir, "run.jsonl"), filepath.Join(dir, "truth.csv")
+	writeRun(t, samples, truth, 5)
+	b, err := os.ReadFile(truth)
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.Split(strings.TrimSuffix(string(b), "\n"), "\n")
+	if len(lines) < 100 {
+		t.Fatalf("the truth has %d lines", len(lines))
+	}
+	edit := func(f func(i int, fields []string) []string) string {
+		out := []string{lines[0]}
+		for i, l := range lines[1:] {
+			out = append(out, strings.Join(f(i+2, strings.Split(l, ",")), ","))
+		}
+		return strings.Join(out, "\n") + "\n"
+	}
+	for _, c := range []struct {
+		name, text, want string
+	}{
+		{"a NaN", edit(func(i int, f []string) []string {
+			if i == 50 {
+				f[1] = "NaN"
+			}
+			return f
+		}), `line 50: x_m "NaN" is not a finite number`},
+		{"no heading column", edit(func(_ int, f []string) []string { return f[:3] }), "line 2: 3 fields"},
+		{"stamps in seconds", edit(func(_ int, f []string) []string {
+			ns, _ := strconv.ParseInt(f[0], 10, 64)
+			f[0] = strconv.FormatFloat(float64(ns)*1e-9, 'f', -1, 64)
+			return f
+		}), "is not an integer (nanoseconds)"},
+		{"out of order", edit(func(i int, f []string) []string {
+			if i == 60 {
+				f[0] = "1"
+			}
+			return f
+		}), "line 60: stamp_ns 1 is not after"},
+		{"header only", lines[0] + "\n", "no rows"},
+		{"a directory", "", "is a directory"},
+	} {
+		bad := filepath.Join(dir, "bad.csv")
+		if c.name == "a directory" {
+			bad = t.TempDir()
+		} else if err := os.WriteFile(bad, []byte(c.text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", samples, "-truth", bad, "-out", filepath.Join(dir, "review"))
+		if code != exitRefused || !strings.Contains(errs, bad) || !strings.Contains(errs, c.want) {
+			t.Errorf("%s: exit %d, want %d; stderr %q lacks the file and %q", c.name, code, exitRefused, errs, c.want)
+		}
+	}
+	if _, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", samples, "-truth", truth, "-out", filepath.Join(dir, "review")); code != exitOK {
+		t.Errorf("the good truth: exit %d\n%s", code, errs)
+	}
+}
+
+// TestReplayTimeSpanPerRun: -from and -to count from each run's own start
+// when replay writes every run: a controller restart begins a clock of
+// its own, here 100 s behind the first run's (which started at the
+// controller's uptime of 100 s). The second run's rows were measured from
+// the first run's start, so that -from 1 left every one of them out.
+func TestReplayTimeSpanPerRun(t *testing.T) {
+	var b strings.Builder
+	for i, path := range []string{rebootSamples1, rebootSamples2} {
+		f, err := os.Open(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		sr := convert.NewSampleReader(f)
+		for {
+			s, err := sr.Next()
+			if err != nil {
+				break
+			}
+			if i == 0 {
+				switch v := s.GetSample().(type) {
+				case *pb.Sample_Odometry:
+					v.Odometry.StampNs += 100e9
+				case *pb.Sample_Heading:
+					v.Heading.StampNs += 100e9
+				case *pb.Sample_Fix:
+					v.Fix.StampNs += 100e9
+				}
+			}
+			convert.WriteJSONLine(&b, s)
+		}
+		f.Close()
+		if i == 0 {
+			b.WriteString(`{"run_start":{"boot_id":"boot-2"}}` + "\n")
+		}
+	}
+	path := filepath.Join(t.TempDir(), "two-runs.jsonl")
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errs, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", path, "-from", "1", "-to", "2")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	rows, _ := csv.NewReader(strings.NewReader(out)).ReadAll()
+	// The rows' stamps are the poses' (the newest odometry), which follow
+	// the samples' by an odometry period (20 ms), a late fix's by its
+	// lateness (up to 200 ms in the simulator's camera); the run start's
+	// row, written whatever the span, has the new run's pose before its
+	// first odometry (stamp 0).
+	var one, two, starts int
+	for _, r := range rows[1:] {
+		switch ns, _ := strconv.ParseInt(r[0], 10, 64); {
+		case ns >= 101e9 && ns <= 102.25e9:
+			one++
+		case ns >= 1e9 && ns <= 2.25e9:
+			two++
+		case ns == 0 && starts == 0:
+			starts++
+		default:
+			t.Errorf("a row stamped %d ns, outside 1 to 2 s of either run", ns)
+		}
+	}
+	// Each second holds 50 odometry samples, 25 headings and some fixes.
+	if one < 75 || two < 75 {
+		t.Errorf("-from 1 -to 2: %d rows of run 1 and %d of run 2; want each run's second", one, two)
+	}
+}
+
+// TestReplaySamplesNamesRefusals: replay of a samples file says, as feed
+// does, how many samples got which verdict and names the file and line of
+// each refused one with its reason; it said only "replayed N samples", the
+// line of a refused sample left to be worked out from the track's rows.
+func TestReplaySamplesNamesRefusals(t *testing.T) {
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.SplitAfter(string(b), "\n")
+	bad := `{"heading":{"stamp_ns":"3000000000","heading_rad":"NaN"}}` + "\n"
+	lines = append(lines[:400], append([]string{bad}, lines[400:]...)...)
+	path := filepath.Join(t.TempDir(), "nan.jsonl")
+	if err := os.WriteFile(path, []byte(strings.Join(lines, "")), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, err := runCmd(t, "replay", "-config", exampleConfig, "-samples", path, "-out", filepath.Join(t.TempDir(), "track.csv"))
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if !strings.Contains(errs, path+":401: invalid: ") || !strings.Contains(errs, "heading_rad NaN") || !strings.Contains(errs, "invalid 1") {
+		t.Errorf("replay does not name the refused sample's line 401 and count it:\n%s", errs)
+	}
+}
+
+// TestTimeSpanToBeforeFrom: -to before -from is a usage error (exit 2) in
+// replay, review and compare; replay wrote nothing at all (not even the
+// CSV header) and review an empty report of "no problem found", both with
+// exit status 0.
+func TestTimeSpanToBeforeFrom(t *testing.T) {
+	out := t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-config", exampleConfig, "-samples", exampleSamples, "-from", "5", "-to", "2"},
+		{"review", "-config", exampleConfig, "-samples", exampleSamples, "-from", "5", "-to", "2", "-out", filepath.Join(out, "review")},
+		{"compare", "-config", exampleConfig, "-samples", exampleSamples, "-b", exampleConfig, "-from", "5s", "-to", "2000000000ns", "-out", filepath.Join(out, "compare")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitUsage || !strings.Contains(errs, "-to 2s is before -from 5s") {
+			t.Errorf("%s -from 5 -to 2: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+	}
+}
+
+// TestReviewOfUnreadableSamples: a samples file with no sample that can
+// be read (not JSON Lines at all, or empty) is refused naming the file
+// and line, exit 5, as replay refuses it; review wrote a report of 0
+// inputs ("no problem found") and exited 0. A file that stops being
+// readable after some samples (its last line cut) is still reviewed up
+// to there, the report saying so.
+func TestReviewOfUnreadableSamples(t *testing.T) {
+	dir := t.TempDir()
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct {
+		name string
+		text []byte
+		code int
+		want string
+	}{
+		{"binary", []byte("\x00\x01\x02 not json\n{}\n"), exitRefused, "line 1: "},
+		{"empty", nil, exitRefused, "no samples"},
+		{"comments only", []byte("# a header\n\n"), exitRefused, "no samples"},
+		{"last line cut", b[:len(b)-20], exitOK, ""},
+	} {
+		path := filepath.Join(dir, "samples.jsonl")
+		if err := os.WriteFile(path, c.text, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		out, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", path, "-out", filepath.Join(dir, "review"))
+		switch {
+		case c.code == exitOK && (code != exitOK || !strings.Contains(out, "stops being readable")):
+			t.Errorf("%s: exit %d; the report should say where the file stops being readable:\n%s%s", c.name, code, out, errs)
+		case c.code != exitOK && (code != c.code || !strings.Contains(errs, path) || !strings.Contains(errs, c.want)):
+			t.Errorf("%s: exit %d, want %d; stderr %q lacks the file and %q", c.name, code, c.code, errs, c.want)
+		}
+	}
+}
+
+// TestReplayOfNoSamples: a samples file without a sample (empty, or
+// comments only) is refused, exit 5, as review refuses it; replay wrote
+// an empty output, not even the CSV header, and exited 0.
+func TestReplayOfNoSamples(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "samples.jsonl")
+	for _, text := range []string{"", "# a header\n\n"} {
+		if err := os.WriteFile(path, []byte(text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, errs, code := runCode(t, context.Background(), "", "replay", "-config", exampleConfig, "-samples", path)
+		if code != exitRefused || !strings.Contains(errs, path) || !strings.Contains(errs, "no samples") {
+			t.Errorf("%q: exit %d, want %d\n%s", text, code, exitRefused, errs)
+		}
+	}
+}
+
+// TestReplayFailureKeepsTheOutput: a replay that fails before it has a row
+// to write (a samples file or journal that is missing or unreadable, a bad
+// configuration) leaves -out as it was: it created (truncated) -out first,
+// so that a typo in the samples path emptied the track written before.
+func TestReplayFailureKeepsTheOutput(t *testing.T) {
+	dir := t.TempDir()
+	out := filepath.Join(dir, "track.csv")
+	const before = "stamp_ns,sequence\n1,1\n"
+	bad := filepath.Join(dir, "bad.yaml")
+	if err := os.WriteFile(bad, []byte("gate_probability: 99\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for _, args := range [][]string{
+		{"-config", exampleConfig, "-samples", filepath.Join(dir, "missing.jsonl")},
+		{"-config", exampleConfig, "-samples", dir},
+		{"-config", bad, "-samples", exampleSamples},
+		{"-journal", dir, "-robot", "cart"},
+		{"-config", exampleConfig, "-samples", exampleSamples, "-run", "2"},
+	} {
+		if err := os.WriteFile(out, []byte(before), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, errs, err := runCmd(t, append([]string{"replay", "-out", out}, args...)...)
+		if err == nil {
+			t.Errorf("%v: replay succeeded", args)
+		}
+		if b, _ := os.ReadFile(out); string(b) != before {
+			t.Errorf("%v: the failed replay (%v) changed -out to %q\n%s", args, err, b, errs)
+		}
+	}
+	// A replay that succeeds without a row (a stretch past the run's end)
+	// leaves an empty file, not the older one.
+	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples, "-from", "100"); err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if b, err := os.ReadFile(out); err != nil || len(b) != 0 {
+		t.Errorf("a replay of no rows left %q (%v)", b, err)
+	}
+	// A replay that succeeds writes it.
+	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples); err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if b, _ := os.ReadFile(out); !strings.HasPrefix(string(b), "stamp_ns,sequence,x_m") {
+		t.Errorf("the replay wrote %.100q", b)
+	}
+}
+
+// TestReplayNeverOverwritesItsInput: -out naming the samples file or the
+// configuration is a usage error (exit 2) and the file stays as it was:
+// replay -format samples -out of the file it read emptied it (0 samples
+// replayed, exit 0), the recording lost.
+func TestReplayNeverOverwritesItsInput(t *testing.T) {
+	dir := t.TempDir()
+	samples, config := filepath.Join(dir, "run.jsonl"), filepath.Join(dir, "robot.yaml")
+	for src, dst := range map[string]string{exampleSamples: samples, exampleConfig: config} {
+		b, err := os.ReadFile(src)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(dst, b, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	want, _ := os.ReadFile(samples)
+	wantCfg, _ := os.ReadFile(config)
+	for _, out := range []string{samples, filepath.Join(dir, ".", "run.jsonl"), config} {
+		_, errs, code := runCode(t, context.Background(), "", "replay", "-config", config, "-samples", samples, "-format", "samples", "-out", out)
+		if code != exitUsage || !strings.Contains(errs, "never overwritten") {
+			t.Errorf("-out %s: exit %d, want %d\n%s", out, code, exitUsage, errs)
+		}
+	}
+	if b, _ := os.ReadFile(samples); string(b) != string(want) {
+		t.Errorf("the samples file was changed: %d bytes, were %d", len(b), len(want))
+	}
+	if b, _ := os.ReadFile(config); string(b) != string(wantCfg) {
+		t.Errorf("the configuration was changed")
+	}
+}
+
+// TestReplaySetAside: a deleted robot's journal, set aside by the service,
+// replays under the name its files carry, {id}.deleted-{unix ns}, exactly
+// as it did live; a name that is not there is refused naming it.
+func TestReplaySetAside(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	live, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart")
+	if err != nil {
+		t.Fatalf("%v\n%s", err, errs)
+	}
+	if err := journal.SetAside(nil, dir, "cart"); err != nil {
+		t.Fatal(err)
+	}
+	names, _ := filepath.Glob(filepath.Join(dir, "cart.manifest"+journal.DeletedMark+"*"))
+	if len(names) != 1 {
+		t.Fatalf("set aside as %v", names)
+	}
+	_, suffix, _ := strings.Cut(filepath.Base(names[0]), journal.DeletedMark)
+	aside, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart"+journal.DeletedMark+suffix)
+	if err != nil || aside != live {
+		t.Errorf("the set-aside journal replays differently (%d and %d bytes): %v\n%s", len(aside), len(live), err, errs)
+	}
+	if _, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart"); err == nil || !strings.Contains(err.Error()+errs, "no journal for cart") {
+		t.Errorf("replay of the deleted live name: %v\n%s", err, errs)
 	}
 }

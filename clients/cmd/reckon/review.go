@@ -28,7 +28,7 @@ type sourceFlags struct {
 func addSourceFlags(fs *flag.FlagSet) sourceFlags {
 	return sourceFlags{
 		journal: fs.String("journal", "", "journal directory (with -robot)"),
-		robot:   fs.String("robot", "", "robot id or name in the journal"),
+		robot:   fs.String("robot", "", journalRobotHelp),
 		config:  fs.String("config", "", "YAML robot configuration, for -samples"),
 		samples: fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)"),
 		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),
@@ -46,9 +46,19 @@ func (ts *timeSpan) add(fs *flag.FlagSet) {
 	fs.Var(offsetFlag{&ts.toNs}, "to", "end of the stretch to cover, from the run's start, as -from (default: the end)")
 }
 
+// check refuses a span that ends before it starts.
+func (ts timeSpan) check(fs *flag.FlagSet) error {
+	if ts.toNs != 0 && ts.toNs < ts.fromNs {
+		return usagef(fs, "-to %v is before -from %v", offsetFlag{&ts.toNs}, offsetFlag{&ts.fromNs})
+	}
+	return nil
+}
+
 // holds reports whether an offset from the run's start lies in the span.
+// Without -from the span has no lower bound: an input stamped before the
+// run's first input (a late fix that arrived first) is part of the run.
 func (ts timeSpan) holds(offsetNs int64) bool {
-	return offsetNs >= ts.fromNs && (ts.toNs == 0 || offsetNs <= ts.toNs)
+	return (ts.fromNs == 0 || offsetNs >= ts.fromNs) && (ts.toNs == 0 || offsetNs <= ts.toNs)
 }
 
 // offsetFlag is a time offset flag: seconds, with or without "s", or
@@ -144,6 +154,9 @@ its own; the default is run 1, and the summary names the others).`)
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}
+	if err := span.check(fs); err != nil {
+		return err
+	}
 	src, err := sf.source()
 	if err != nil {
 		return err
@@ -176,6 +189,9 @@ their differences.`)
 	var span timeSpan
 	span.add(fs)
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
+		return err
+	}
+	if err := span.check(fs); err != nil {
 		return err
 	}
 	if *b == "" {

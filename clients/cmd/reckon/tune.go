@@ -50,19 +50,22 @@ ground truth is needed for the fit. The run is named as for calibrate
 (-journal and -robot, or -samples); a journal's run is tuned from its own
 configuration unless -config names another. The older form, the run as the
 last argument (a JSON Lines file, or a journal directory with -robot), still
-works. With -report, the run is replayed under the configuration before and
-after into one HTML report with a calibration section at the top.`)
+works. A recording of several runs (a controller restart begins one) is
+tuned one run at a time: run 1, or -run N. With -report, the run is replayed
+under the configuration before and after into one HTML report with a
+calibration section at the top.`)
 	fs.SetOutput(stderr)
 	dir := fs.String("journal", "", "journal directory (with -robot)")
 	samples := fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)")
 	config := fs.String("config", "", "YAML robot configuration to start from (for -samples; for a journal it replaces the journal's own)")
 	out := fs.String("out", "", "the new YAML configuration (default: ROBOT-tuned.yaml beside -config); refused if it exists, unless -force")
 	force := fs.Bool("force", false, "replace -out if it exists")
-	robot := fs.String("robot", "", "the robot, when the run is a journal directory")
+	robot := fs.String("robot", "", journalRobotHelp)
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after")
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
 	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps, the IMU offset's walk per radian turned (a gyro's scale error), the marker map's survey error (landmark_position_std_m); then fit its levels")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
+	runN := fs.Uint64("run", 0, "the run to tune, from 1 (a controller restart begins a run, on a clock of its own; default 1)")
 	keep := fs.Bool("keep-undetermined", false, "keep the variances the run does not determine at their configured values (default: the upper end of each one's 95% likelihood interval)")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {
@@ -106,6 +109,9 @@ after into one HTML report with a calibration section at the top.`)
 	if *config != "" && samePath(*config, *out) {
 		return usagef(fs, "-out is the input configuration %s; it is never overwritten", *config)
 	}
+	if *samples != "" && samePath(*samples, *out) {
+		return usagef(fs, "-out is the recording %s; it is never overwritten", *samples)
+	}
 	if !*force {
 		if _, err := os.Stat(*out); err == nil {
 			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)
@@ -119,10 +125,12 @@ after into one HTML report with a calibration section at the top.`)
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
 	}
-	inputs, skipped, err := readRun(ctx, run, *robot, cfgProto)
+	rec, err := readRun(ctx, run, *robot, cfgProto, *runN)
 	if err != nil {
 		return err
 	}
+	inputs := rec.inputs
+	fmt.Fprint(stdout, rec.tornNote())
 	var truthPoses []calib.StampedPose
 	if *truth != "" {
 		if truthPoses, err = readTruthCSV(*truth); err != nil {
@@ -133,7 +141,7 @@ after into one HTML report with a calibration section at the top.`)
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", run, errRefused, err)
 	}
-	printTune(stdout, run, inputs, skipped, fit)
+	printTune(stdout, run+rec.note(), inputs, rec.skipped, fit)
 	if truthPoses != nil {
 		if err := printNEES(stdout, cfg, fit.Config, inputs, truthPoses); err != nil {
 			return fmt.Errorf("%s: %w", *truth, err)
@@ -143,9 +151,9 @@ after into one HTML report with a calibration section at the top.`)
 	if err != nil || *reportDir == "" {
 		return err
 	}
-	src := review.Source{Samples: *samples, Config: cfgProto, Truth: *truth}
+	src := review.Source{Samples: *samples, Config: cfgProto, Truth: *truth, Run: rec.run}
 	if *dir != "" {
-		src = review.Source{JournalDir: *dir, Robot: *robot, Config: cfgProto, Truth: *truth}
+		src = review.Source{JournalDir: *dir, Robot: *robot, Config: cfgProto, Truth: *truth, Run: rec.run}
 	}
 	cols, rows := levelTable(fit)
 	cal := review.Calibration{By: "reckon tune", Columns: cols, Rows: rows, Notes: []string{wrote}}
@@ -172,11 +180,54 @@ func levelTable(fit *calib.NoiseFit) ([]string, [][]string) {
 	return cols, rows
 }
 
-// readRun reads a run's inputs in arrival order from a JSON Lines file of
-// samples or from a journal directory (with robot); reseeds are counted in
-// skipped and left out.
-func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inputs []calib.RecordedInput, skipped int, err error) {
+// recording is what readRun read: the inputs of the run asked for in
+// arrival order, the reseeds left out of it, and how many runs the
+// recording holds (each controller restart, a run start sample, begins
+// one on a clock of its own).
+type recording struct {
+	inputs  []calib.RecordedInput
+	skipped int
+	run     uint64
+	runs    uint64
+	// torn says where a journal was cut short (the inputs before it are
+	// read), or is empty.
+	torn string
+}
+
+// tornNote is a line that says the journal was cut short, or nothing.
+func (rec *recording) tornNote() string {
+	if rec.torn == "" {
+		return ""
+	}
+	return "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
+}
+
+// note says which run of several the recording's inputs are, or nothing
+// for a recording of one run.
+func (rec *recording) note() string {
+	if rec.runs < 2 {
+		return ""
+	}
+	return fmt.Sprintf(" (run %d of %d runs: a controller restart begins a run on a clock of its own; -run N for another)", rec.run, rec.runs)
+}
+
+// readRun reads the inputs of run want (from 1; 0 is 1) in arrival order
+// from a JSON Lines file of samples or from a journal directory (with
+// robot); reseeds are counted in skipped and left out. The runs of a
+// recording are never mixed: their clocks differ.
+func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64) (*recording, error) {
+	want = max(want, 1)
+	var inputs []calib.RecordedInput
+	var torn string
+	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
+		if s.GetRunStart() != nil {
+			run++
+			return nil
+		}
+		if run != want {
+			return nil
+		}
 		d, err := convert.Decode(s)
 		if err != nil {
 			return err
@@ -195,13 +246,13 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inpu
 	}
 	if st, err := os.Stat(path); err == nil && st.IsDir() {
 		if robot == "" {
-			return nil, 0, &usageError{err: fmt.Errorf("%s is a journal directory: name the robot with -robot", path)}
+			return nil, &usageError{err: fmt.Errorf("%s is a journal directory: name the robot with -robot", path)}
 		}
 		id := robot
 		if n, err := server.RobotID(robot); err == nil {
 			id = n
 		}
-		_, _, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
+		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
 			}
@@ -211,18 +262,21 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inpu
 			return nil
 		}})
 		if err != nil {
-			return nil, 0, err
+			return nil, err
+		}
+		if scan.Torn != nil {
+			torn = fmt.Sprintf("%v in %s", scan.Torn, filepath.Base(scan.TornSegment))
 		}
 	} else {
 		f, err := os.Open(path)
 		if err != nil {
-			return nil, 0, err
+			return nil, err
 		}
 		defer f.Close()
 		sr := convert.NewSampleReader(f)
 		for {
 			if err := ctx.Err(); err != nil {
-				return nil, 0, err
+				return nil, err
 			}
 			s, err := sr.Next()
 			if errors.Is(err, io.EOF) {
@@ -232,18 +286,23 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig) (inpu
 				err = add(s)
 			}
 			if err != nil {
-				return nil, 0, fmt.Errorf("%s: %w: %w", path, errRefused, err)
+				return nil, fmt.Errorf("%s: %w: %w", path, errRefused, err)
 			}
 		}
 	}
-	if len(inputs) == 0 {
-		return nil, 0, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
+	if want > run {
+		return nil, fmt.Errorf("%s: %w: run %d asked for; the recording holds runs 1 to %d", path, errRefused, want, run)
 	}
-	return inputs, skipped, nil
+	if len(inputs) == 0 {
+		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
+	}
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,
-// heading_rad; a header and short rows skipped), sorted by stamp.
+// heading_rad; a header only as the first record), sorted by stamp. A row
+// that is not an integer stamp and three finite numbers is an error
+// naming its line.
 func readTruthCSV(path string) ([]calib.StampedPose, error) {
 	f, err := os.Open(path)
 	if err != nil {
@@ -253,7 +312,7 @@ func readTruthCSV(path string) ([]calib.StampedPose, error) {
 	r := csv.NewReader(bufio.NewReader(f))
 	r.FieldsPerRecord = -1
 	var out []calib.StampedPose
-	for line := 1; ; line++ {
+	for n := 1; ; n++ {
 		rec, err := r.Read()
 		if errors.Is(err, io.EOF) {
 			break
@@ -261,12 +320,19 @@ func readTruthCSV(path string) ([]calib.StampedPose, error) {
 		if err != nil {
 			return nil, fmt.Errorf("%s: %w: %w", path, errRefused, err)
 		}
-		if len(rec) < 4 {
-			continue
+		line, _ := r.FieldPos(0)
+		if n == 1 {
+			rec[0] = strings.TrimPrefix(rec[0], "\ufeff")
 		}
 		stamp, err := strconv.ParseInt(rec[0], 10, 64)
-		if err != nil {
+		if err != nil && n == 1 {
 			continue // the header
+		}
+		if err != nil {
+			return nil, fmt.Errorf("%s:%d: %w: stamp_ns %q is not an integer (nanoseconds)", path, line, errRefused, rec[0])
+		}
+		if len(rec) < 4 {
+			return nil, fmt.Errorf("%s:%d: %w: %d fields, want stamp_ns,x_m,y_m,heading_rad", path, line, errRefused, len(rec))
 		}
 		var v [3]float64
 		for i := range v {

@@ -12,6 +12,7 @@ import (
 
 	"reckon.example/fusion/fusiontest"
 	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // writeRun writes a simulated run of the greenhouse cart (free wheels with
@@ -173,5 +174,178 @@ func TestTuneIMULatency(t *testing.T) {
 	_, cfg := readConfigFile(t, out)
 	if d := cfg.IMULatencyNs - 40e6; d < -5e6 || d > 5e6 {
 		t.Errorf("imu_latency_ns %d, want 40 ms within 5 ms\n%s", cfg.IMULatencyNs, stdout)
+	}
+}
+
+// TestTuneAndCalibrateTakeOneRun: a recording of two runs (the controller
+// restarted: a run start, then samples on a new clock) is tuned and
+// calibrated one run at a time, as review reviews it: run 1 by default,
+// -run N for another, each giving the table the run alone gives, and the
+// output says which of how many runs it covers. Both read every run as
+// one: the second run's samples, on the restarted clock, went into the
+// first run's fit (tune fitted the camera's covariance 660 times too
+// large on the README's reboot example) and the run start was counted as
+// a reseed left out.
+func TestTuneAndCalibrateTakeOneRun(t *testing.T) {
+	dir := t.TempDir()
+	one, two, both := filepath.Join(dir, "one.jsonl"), filepath.Join(dir, "two.jsonl"), filepath.Join(dir, "both.jsonl")
+	writeRun(t, one, filepath.Join(dir, "truth1.csv"), 20)
+	writeSim(t, fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 6, IMU: true, Counts: true, DurationS: 20, SensorCovariance: true}), two, filepath.Join(dir, "truth2.csv"))
+	a, _ := os.ReadFile(one)
+	b, _ := os.ReadFile(two)
+	if err := os.WriteFile(both, append(append(a, []byte("{\"run_start\":{\"boot_id\":\"boot-2\"}}\n")...), b...), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	// table keeps the lines of a command's output from its table to the
+	// file written (which names the file).
+	table := func(out, first string) string {
+		i := strings.Index(out, first)
+		if i < 0 {
+			t.Fatalf("no %q in:\n%s", first, out)
+		}
+		out = out[i:]
+		if j := strings.Index(out, "\nwrote "); j >= 0 {
+			out = out[:j]
+		}
+		return out
+	}
+	ctx := context.Background()
+	for _, c := range []struct {
+		cmd, run, alone, first string
+	}{
+		{"tune", "", one, "log-likelihood"},
+		{"tune", "2", two, "log-likelihood"},
+		{"calibrate", "", one, "wiring:"},
+		{"calibrate", "2", two, "wiring:"},
+	} {
+		args := []string{c.cmd, "-config", exampleConfig, "-samples", both, "-out", filepath.Join(dir, "new.yaml"), "-force"}
+		if c.run != "" {
+			args = append(args, "-run", c.run)
+		}
+		got, errs, _ := runCode(t, ctx, "", args...)
+		want, _, _ := runCode(t, ctx, "", c.cmd, "-config", exampleConfig, "-samples", c.alone, "-out", filepath.Join(dir, "alone.yaml"), "-force")
+		run := max(c.run, "1")
+		if !strings.Contains(got, "run "+run+" of 2 runs") {
+			t.Errorf("%s -run %q: the output does not say it covers run %s of 2:\n%s%s", c.cmd, c.run, run, got, errs)
+		}
+		if g, w := table(got, c.first), table(want, c.first); g != w {
+			t.Errorf("%s -run %q: the two runs' recording gives\n%s\nthe run alone\n%s", c.cmd, c.run, g, w)
+		}
+	}
+	if _, errs, code := runCode(t, ctx, "", "tune", "-config", exampleConfig, "-samples", both, "-out", filepath.Join(dir, "new.yaml"), "-force", "-run", "3"); code != exitRefused || !strings.Contains(errs, "runs 1 to 2") {
+		t.Errorf("tune -run 3 of 2 runs: exit %d, stderr %q", code, errs)
+	}
+}
+
+// TestTuneAndCalibrateSayATornJournal: a journal cut short (a crash, or a
+// copy of it taken half way) is tuned and calibrated on the inputs before
+// the cut, and both say so, as replay and review do; they said nothing,
+// the fit quietly on part of the run.
+func TestTuneAndCalibrateSayATornJournal(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	seg := journal.SegmentPath(dir, "cart", 0)
+	st, err := os.Stat(seg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Truncate(seg, st.Size()*2/3); err != nil {
+		t.Fatal(err)
+	}
+	for _, cmd := range []string{"tune", "calibrate"} {
+		out, errs, _ := runCode(t, context.Background(), "", cmd, "-journal", dir, "-robot", "cart", "-out", filepath.Join(t.TempDir(), "new.yaml"))
+		if !strings.Contains(out, "the journal is truncated") {
+			t.Errorf("%s of a torn journal does not say so:\n%s%s", cmd, out, errs)
+		}
+	}
+}
+
+// TestReadTruthCSV: the truth file of tune and calibrate is read as review
+// reads it: a header only first (a byte order mark before it skipped),
+// then rows of an integer stamp and three finite numbers, a row that is
+// not one an error naming its line (input refused). Short rows and a
+// stamp that is no integer after the first line were skipped as headers
+// without a word: a file with its heading column missing, or a row cut
+// short, lost rows silently.
+func TestReadTruthCSV(t *testing.T) {
+	dir := t.TempDir()
+	for _, c := range []struct {
+		name, text, want string
+		rows             int
+	}{
+		{"good", "\ufeffstamp_ns,x_m,y_m,heading_rad\n20,1,2,0.5\n10,0,0,0\n", "", 2},
+		{"no header", "10,0,0,0\n20,1,2,0.5\n", "", 2},
+		{"short row", "stamp_ns,x_m,y_m,heading_rad\n10,0,0,0\n20,1,2\n30,1,2,3\n", ":3: refused: 3 fields", 0},
+		{"stamp in seconds", "stamp_ns,x_m,y_m,heading_rad\n0.01,0,0,0\n", `:2: refused: stamp_ns "0.01" is not an integer`, 0},
+		{"NaN", "stamp_ns,x_m,y_m,heading_rad\n10,0,NaN,0\n", ":2: refused: column 3 is not a finite number", 0},
+		{"header only", "stamp_ns,x_m,y_m,heading_rad\n", "no truth rows", 0},
+	} {
+		path := filepath.Join(dir, "truth.csv")
+		if err := os.WriteFile(path, []byte(c.text), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		rows, err := readTruthCSV(path)
+		switch {
+		case c.want == "" && (err != nil || len(rows) != c.rows || rows[0].StampNs != 10):
+			t.Errorf("%s: %d rows, %v; want %d sorted", c.name, len(rows), err, c.rows)
+		case c.want != "" && (err == nil || !strings.Contains(err.Error(), path) || !strings.Contains(err.Error(), c.want) || exitCode(err) != exitRefused):
+			t.Errorf("%s: %v (exit %d); want %q, exit %d", c.name, err, exitCode(err), c.want, exitRefused)
+		}
+	}
+}
+
+// TestTuneWithoutOdometry: a recording of IMU headings alone (the
+// odometry left out of the file) has no innovations, since nothing is
+// applied without odometry; tune says that, exit 5. It said the run had
+// "no IMU headings and no fixes", of a file of thousands of headings.
+func TestTuneWithoutOdometry(t *testing.T) {
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var headings []string
+	for _, l := range strings.Split(string(b), "\n") {
+		if strings.HasPrefix(l, `{"heading"`) {
+			headings = append(headings, l)
+		}
+	}
+	if len(headings) < 100 {
+		t.Fatalf("%d headings in the example", len(headings))
+	}
+	path := filepath.Join(t.TempDir(), "headings.jsonl")
+	if err := os.WriteFile(path, []byte(strings.Join(headings, "\n")+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, code := runCode(t, context.Background(), "", "tune", "-config", exampleConfig, "-samples", path, "-out", filepath.Join(t.TempDir(), "new.yaml"))
+	if code != exitRefused || !strings.Contains(errs, "no IMU heading or fix was applied") {
+		t.Errorf("tune of headings alone: exit %d, want %d\n%s", code, exitRefused, errs)
+	}
+}
+
+// TestNewConfigNeverOverwritesTheRecording: imu-noise, tune and calibrate
+// refuse an -out that names the recording they read (exit 2), -force or
+// not, and leave it as it was: with -force they wrote the new YAML
+// configuration over the recording.
+func TestNewConfigNeverOverwritesTheRecording(t *testing.T) {
+	dir := t.TempDir()
+	samples := filepath.Join(dir, "run.jsonl")
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(samples, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for _, args := range [][]string{
+		{"imu-noise", samples, "-config", exampleConfig, "-out", samples, "-force"},
+		{"tune", "-config", exampleConfig, "-samples", samples, "-out", samples, "-force"},
+		{"calibrate", "-config", exampleConfig, "-samples", samples, "-out", samples, "-force"},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitUsage || !strings.Contains(errs, "never overwritten") {
+			t.Errorf("%s -out the recording: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+		if got, _ := os.ReadFile(samples); string(got) != string(b) {
+			t.Fatalf("%s -out the recording -force overwrote it: %.100q", args[0], got)
+		}
 	}
 }

@@ -51,7 +51,9 @@ type FusionServiceClient interface {
 	// the name can be created again.
 	DeleteRobot(ctx context.Context, in *DeleteRobotRequest, opts ...grpc.CallOption) (*DeleteRobotResponse, error)
 	// Takes a stream of samples; answers each, in order, with its verdict
-	// once it is in the journal under the server's fsync policy.
+	// once it is in the journal under the server's fsync policy. When the
+	// service stops, the stream ends with UNAVAILABLE after the verdicts of
+	// the samples received; a sample without a verdict was not taken.
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
@@ -211,7 +213,9 @@ type FusionServiceServer interface {
 	// the name can be created again.
 	DeleteRobot(context.Context, *DeleteRobotRequest) (*DeleteRobotResponse, error)
 	// Takes a stream of samples; answers each, in order, with its verdict
-	// once it is in the journal under the server's fsync policy.
+	// once it is in the journal under the server's fsync policy. When the
+	// service stops, the stream ends with UNAVAILABLE after the verdicts of
+	// the samples received; a sample without a verdict was not taken.
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The

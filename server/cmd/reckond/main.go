@@ -48,6 +48,11 @@ func (r robotFlags) Set(v string) error {
 	return nil
 }
 
+// maxSegmentBytes bounds -segment-bytes well inside what a journal scan
+// reads of a segment into memory (1 GiB): a segment may pass the size by a
+// batch and its reserve.
+const maxSegmentBytes = 512 << 20
+
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := flag.NewFlagSet("reckond", flag.ContinueOnError)
 	fs.SetOutput(stderr)
@@ -84,6 +89,30 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	}
 	if *maxStreams == 0 || *maxStreams > 1<<20 {
 		return fmt.Errorf("max-streams: %d is not between 1 and %d", *maxStreams, 1<<20)
+	}
+	// A value out of its range was taken as the default before, in
+	// silence: -max-watchers 0 meant 1024, -segment-bytes 100 a segment
+	// file per batch.
+	for _, b := range []struct {
+		name      string
+		v, lo, hi int64
+	}{
+		{"segment-bytes", *segment, 1 << 20, maxSegmentBytes},
+		{"snapshot-every", int64(*snapshotEvery), 1, 1 << 30},
+		{"max-robots", int64(lim.MaxRobots), 1, 1 << 20},
+		{"max-string-bytes", int64(lim.MaxStringBytes), 16, 1 << 16},
+		{"max-watchers-per-robot", int64(lim.MaxWatchersPerRobot), 1, 1 << 20},
+		{"max-watchers", int64(lim.MaxWatchers), 1, 1 << 20},
+		{"max-viewers", int64(lim.MaxViewers), 1, 1 << 16},
+		{"max-message-bytes", int64(*maxMsg), 1 << 10, 1 << 40},
+		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
+	} {
+		if b.v < b.lo || b.v > b.hi {
+			if b.name == "fsync-interval" {
+				return fmt.Errorf("%s: %v is not between %v and %v", b.name, time.Duration(b.v), time.Duration(b.lo), time.Duration(b.hi))
+			}
+			return fmt.Errorf("%s: %d is not between %d and %d", b.name, b.v, b.lo, b.hi)
+		}
 	}
 	dc := daemon.Config{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, ViewListen: *view, MaxMessageBytes: *maxMsg,
 		Insecure: *insecure, MaxStreams: uint32(*maxStreams),

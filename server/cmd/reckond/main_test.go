@@ -29,6 +29,18 @@ func TestFlagErrors(t *testing.T) {
 		{[]string{"-log-level", "loud"}, "log-level"},
 		{[]string{"-token-file", filepath.Join(dir, "none")}, "token-file"},
 		{[]string{"-journal", dir, "-listen", "127.0.0.1:0", "-tls-client-ca", bad}, "tls-client-ca needs tls-cert"},
+		// Out of range, each was taken as its default before.
+		{[]string{"-segment-bytes", "100"}, "segment-bytes: 100 is not between"},
+		{[]string{"-segment-bytes", "4294967296"}, "segment-bytes"},
+		{[]string{"-snapshot-every", "-1"}, "snapshot-every"},
+		{[]string{"-max-robots", "0"}, "max-robots"},
+		{[]string{"-max-watchers", "0"}, "max-watchers: 0"},
+		{[]string{"-max-watchers-per-robot", "-2"}, "max-watchers-per-robot"},
+		{[]string{"-max-viewers", "-1"}, "max-viewers"},
+		{[]string{"-max-string-bytes", "0"}, "max-string-bytes"},
+		{[]string{"-max-message-bytes", "-1"}, "max-message-bytes"},
+		{[]string{"-fsync-interval", "-1s"}, "fsync-interval: -1s is not between"},
+		{[]string{"-fsync-interval", "0"}, "fsync-interval"},
 	}
 	for _, c := range cases {
 		var out, errb bytes.Buffer

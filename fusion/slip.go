@@ -60,8 +60,9 @@ import (
 // without them until the next). Its disagreements add up, and the noise
 // does not: over 0.8 s the same slip stands five to ten deviations out. So
 // beside the short comparison a long one runs from its own anchor, which
-// moves once its interval reaches turnHorizonNs (or with a slip), made at the
-// gate's probability divided by turnHorizonNs / 10 ms: the sequential
+// moves once its interval reaches turnHorizonNs to the IMU heading half of
+// it before (midAnchor; the intervals overlap by half), or with a slip,
+// made at the gate's probability divided by longTurnTests: the sequential
 // detection of a change in a mean by its cumulative sum over a window
 // (Basseville and Nikiforov, Detection of Abrupt Changes, 1993, sec. 2.2,
 // from memory). An honest run raises at most an eighth more false alarms.

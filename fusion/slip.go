@@ -344,19 +344,33 @@ const (
 // before it started distrust its position for seconds (a 95% radius of
 // 2.3 m after 2.5 s of driving, against 0.16 m; TestIMUGlitchAtRest).
 func (r *Robot) wheelsStill(ta, tb int64) bool {
-	live := r.live()
 	var travel, turn float64
+	r.odometryOver(ta, tb, func(e *entry, f float64, _ int64) {
+		travel += math.Hypot(e.step.ForwardM, e.step.LeftM) * f
+		turn += math.Abs(e.step.TurnRad) * f
+	})
+	return travel <= stillM && turn <= stillRad
+}
+
+// odometryOver calls fn with each odometry entry of the window that
+// overlaps [ta, tb], the fraction f of its interval inside, and the
+// nanoseconds inside, in stamp order, and returns the first one's index
+// (-1: none).
+func (r *Robot) odometryOver(ta, tb int64, fn func(e *entry, f float64, ns int64)) (first int) {
+	first = -1
+	live := r.live()
 	for i := r.locate(ta); i < len(live) && live[i].t0 < tb; i++ {
 		e := &live[i]
 		lo, hi := max(e.t0, ta), min(e.t1, tb)
 		if e.kind != entOdo || hi <= lo {
 			continue
 		}
-		f := float64(hi-lo) / float64(e.t1-e.t0)
-		travel += math.Hypot(e.step.ForwardM, e.step.LeftM) * f
-		turn += math.Abs(e.step.TurnRad) * f
+		if first < 0 {
+			first = i
+		}
+		fn(e, float64(hi-lo)/float64(e.t1-e.t0), hi-lo)
 	}
-	return travel <= stillM && turn <= stillRad
+	return first
 }
 
 // wheelTurn returns the window's odometry turn over [ta, tb] and its
@@ -367,23 +381,12 @@ func (r *Robot) wheelsStill(ta, tb int64) bool {
 // the variance the calibration's uncertainty adds, [dth dt] C [dth dt]^T,
 // kept apart from the steps' so that a slip's inflation leaves it alone.
 func (r *Robot) wheelTurn(ta, tb int64) (turn, v, vc float64, first int) {
-	first = -1
-	live := r.live()
 	var raw, dtS float64
-	for i := r.locate(ta); i < len(live) && live[i].t0 < tb; i++ {
-		e := &live[i]
-		lo, hi := max(e.t0, ta), min(e.t1, tb)
-		if e.kind != entOdo || hi <= lo {
-			continue
-		}
-		if first < 0 {
-			first = i
-		}
-		f := float64(hi-lo) / float64(e.t1-e.t0)
+	first = r.odometryOver(ta, tb, func(e *entry, f float64, ns int64) {
 		raw += e.step.TurnRad * f
-		dtS += float64(hi-lo) * 1e-9
+		dtS += float64(ns) * 1e-9
 		v += e.cov[8] * f
-	}
+	})
 	turn = raw
 	if first >= 0 {
 		if cal := r.priorCalibration(); cal.on {

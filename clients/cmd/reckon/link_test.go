@@ -22,6 +22,29 @@ import (
 	"reckon.example/server/daemon"
 )
 
+// freeUDP returns a free UDP port on loopback: taken, then let go for
+// reckon link to take.
+func freeUDP(t *testing.T) string {
+	t.Helper()
+	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer pc.Close()
+	return pc.LocalAddr().String()
+}
+
+// dialUDP connects to the link's UDP port for the rest of the test.
+func dialUDP(t *testing.T, addr string) net.Conn {
+	t.Helper()
+	conn, err := net.Dial("udp", addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { conn.Close() })
+	return conn
+}
+
 // TestLink: reckon link listens on UDP, creates the robot, takes 200 frames
 // of a cart driving straight (one sent twice) and, interrupted, prints its
 // summary.
@@ -29,12 +52,7 @@ func TestLink(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
 
 	// A free UDP port: taken, then let go for reckon link to take.
-	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	udpAddr := pc.LocalAddr().String()
-	pc.Close()
+	udpAddr := freeUDP(t)
 
 	linkCtx, stop := context.WithCancel(context.Background())
 	var out, errb bytes.Buffer
@@ -48,11 +66,7 @@ func TestLink(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer c.Close()
-	conn, err := net.Dial("udp", udpAddr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
+	conn := dialUDP(t, udpAddr)
 	const last = int64(199 * 10_000_000)
 	deadline := time.Now().Add(20 * time.Second)
 	for {
@@ -119,12 +133,7 @@ func TestLinkFlags(t *testing.T) {
 // the robot and its frames go on being taken on the new clock.
 func TestLinkReboot(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	udpAddr := pc.LocalAddr().String()
-	pc.Close()
+	udpAddr := freeUDP(t)
 	linkCtx, stop := context.WithCancel(context.Background())
 	var out, errb bytes.Buffer
 	linkDone := make(chan error, 1)
@@ -137,11 +146,7 @@ func TestLinkReboot(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer c.Close()
-	conn, err := net.Dial("udp", udpAddr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
+	conn := dialUDP(t, udpAddr)
 	// Each boot's feed is sent again until its last stamp arrives (until
 	// the link listens, datagrams may be lost; duplicates are dropped).
 	for _, boot := range []struct {
@@ -189,12 +194,7 @@ func TestLinkReboot(t *testing.T) {
 // them ("1 corrupted, 2 invalid") and nothing was said while it ran.
 func TestLinkSaysWhyFramesDrop(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	udpAddr := pc.LocalAddr().String()
-	pc.Close()
+	udpAddr := freeUDP(t)
 	linkCtx, stop := context.WithCancel(context.Background())
 	var out, errb bytes.Buffer
 	linkDone := make(chan error, 1)
@@ -207,11 +207,7 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer c.Close()
-	conn, err := net.Dial("udp", udpAddr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
+	conn := dialUDP(t, udpAddr)
 	frame := func(k int) bridge.Frame {
 		return bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 	}
@@ -294,12 +290,7 @@ func TestLinkAfterPowerCycle(t *testing.T) {
 		{1, 150, 50, 1}, // the link restarted, the controller ran on
 		{2, 0, 60, 2},   // power cycle: boot 2, clock from zero
 	} {
-		pc, err := net.ListenPacket("udp", "127.0.0.1:0")
-		if err != nil {
-			t.Fatal(err)
-		}
-		udpAddr := pc.LocalAddr().String()
-		pc.Close()
+		udpAddr := freeUDP(t)
 		linkCtx, stop := context.WithCancel(context.Background())
 		var out, errb bytes.Buffer
 		linkDone := make(chan error, 1)
@@ -307,10 +298,7 @@ func TestLinkAfterPowerCycle(t *testing.T) {
 			linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
 				"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
 		}()
-		conn, err := net.Dial("udp", udpAddr)
-		if err != nil {
-			t.Fatal(err)
-		}
+		conn := dialUDP(t, udpAddr)
 		last := int64(step.from+step.count-1) * 10_000_000
 		var r interface {
 			GetNewestStampNs() int64
@@ -400,12 +388,7 @@ func TestLinkPortGone(t *testing.T) {
 // its end; a link under systemd fed a robot nothing for hours in silence.
 func TestLinkSaysRefusalsWhileRunning(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	udpAddr := pc.LocalAddr().String()
-	pc.Close()
+	udpAddr := freeUDP(t)
 	linkCtx, stop := context.WithCancel(context.Background())
 	defer stop()
 	errb := &lockedBuffer{}
@@ -414,11 +397,7 @@ func TestLinkSaysRefusalsWhileRunning(t *testing.T) {
 		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
 			"-create", "../../../testdata/robots/drive-wheel-turn.yaml"}, nil, io.Discard, errb)
 	}()
-	conn, err := net.Dial("udp", udpAddr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
+	conn := dialUDP(t, udpAddr)
 	const want = "counts has 3 entries for 2 wheels"
 	for k, deadline := 0, time.Now().Add(20*time.Second); !strings.Contains(errb.String(), want); k++ {
 		if time.Now().After(deadline) {
@@ -484,23 +463,14 @@ func TestLinkTokenRefused(t *testing.T) {
 		}
 	}
 	addr, stop := serveToken("127.0.0.1:0", "alpha-token")
-	pc, err := net.ListenPacket("udp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	udpAddr := pc.LocalAddr().String()
-	pc.Close()
+	udpAddr := freeUDP(t)
 	errb := &lockedBuffer{}
 	linkDone := make(chan error, 1)
 	go func() {
 		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-token-file", tokenFile, "-udp", udpAddr, "-robot", "robots/cart",
 			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, io.Discard, errb)
 	}()
-	conn, err := net.Dial("udp", udpAddr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
+	conn := dialUDP(t, udpAddr)
 	send := func(k int) {
 		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 		conn.Write(bridge.AppendFrame(nil, &f, nil))

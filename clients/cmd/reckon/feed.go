@@ -113,7 +113,7 @@ first verdict instead of taken twice.`)
 	}
 	recvErr := <-done
 	interrupted := ctx.Err() != nil
-	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart())
+	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart()+t.earlierPart())
 	for _, r := range t.reasons {
 		fmt.Fprintln(std.out, "  "+r)
 	}
@@ -339,6 +339,10 @@ type tally struct {
 	ended   bool   // collect returned
 	counts  map[pb.Verdict]int
 	reasons []string
+	// earlier counts, by final verdict, the samples an earlier feed on the
+	// session left held whose resolutions came to this one; they are none
+	// of this feed's samples (like counts, collect's alone).
+	earlier map[pb.Verdict]int
 }
 
 // retry is a sample the service did not take.
@@ -468,6 +472,19 @@ func (t *tally) unanswered(err error) error {
 		t.label, line, len(t.pending), err, line, t.session)
 }
 
+// earlierPart is the summary's count of the samples an earlier feed on the
+// session left held and that were decided during this one, when any.
+func (t *tally) earlierPart() string {
+	n := 0
+	for _, c := range t.earlier {
+		n += c
+	}
+	if n == 0 {
+		return ""
+	}
+	return fmt.Sprintf("; and %d held by an earlier feed on the session decided: %s", n, verdictLine(t.earlier))
+}
+
 // notTakenPart is the summary's count of samples not taken, when any.
 func (t *tally) notTakenPart() string {
 	if n := t.notTakenCount(); n > 0 {
@@ -530,12 +547,21 @@ func (t *tally) collect(sess *client.Session) error {
 			}
 		}
 		for _, r := range resp.GetResolved() {
-			t.counts[r.GetVerdict()]++
-			t.counts[pb.Verdict_VERDICT_HELD]--
 			t.mu.Lock()
-			hl := t.held[r.GetSequence()]
+			hl, ours := t.held[r.GetSequence()]
 			delete(t.held, r.GetSequence())
 			t.mu.Unlock()
+			if !ours {
+				// Held by an earlier feed on the session: counted apart,
+				// or this feed's held count went below zero.
+				if t.earlier == nil {
+					t.earlier = map[pb.Verdict]int{}
+				}
+				t.earlier[r.GetVerdict()]++
+				continue
+			}
+			t.counts[r.GetVerdict()]++
+			t.counts[pb.Verdict_VERDICT_HELD]--
 			t.reason(hl, r.GetVerdict(), r.GetReason())
 		}
 	}

@@ -6,6 +6,7 @@ import (
 	"log/slog"
 	"net/http"
 	"os"
+	"path/filepath"
 	"strconv"
 	"strings"
 	"testing"
@@ -77,5 +78,37 @@ func TestFeedFromLinePastTheEnd(t *testing.T) {
 	// The last line is a sample and is sent.
 	if out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-from-line", strconv.Itoa(lines), samples); code != exitOK || !strings.Contains(out, "1 samples sent") {
 		t.Errorf("feed -from-line %d (the last line): exit %d\n%s\n%s", lines, code, out, errs)
+	}
+}
+
+// TestFeedHeldByAnEarlierFeed: a fix that one feed left held (stamped
+// after the odometry it had sent) is decided during the next feed on the
+// same session. That feed counts it apart, as an earlier feed's sample:
+// it took it from its own held count, which went to -1.
+func TestFeedHeldByAnEarlierFeed(t *testing.T) {
+	addr, stop := serve(t, "127.0.0.1:0", t.TempDir())
+	defer stop()
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.SplitAfter(string(b), "\n")
+	const cut = 201 // the line of the odometry at 2.32 s
+	if !strings.Contains(lines[cut-1], `"stamp_ns":"2320000000"`) || !strings.Contains(lines[cut-2], `"fix"`) {
+		t.Fatalf("the example samples changed: line %d is %q", cut, lines[cut-1])
+	}
+	held := strings.Replace(lines[cut-2], `"stamp_ns":"2250000000"`, `"stamp_ns":"2330000000"`, 1)
+	dir := t.TempDir()
+	first, whole := filepath.Join(dir, "first.jsonl"), filepath.Join(dir, "whole.jsonl")
+	os.WriteFile(first, []byte(strings.Join(lines[:cut], "")+held), 0o644)
+	os.WriteFile(whole, []byte(strings.Join(lines[:cut], "")+held+strings.Join(lines[cut:], "")), 0o644)
+	const session = "5e55101ddeadbeef5e55101ddeadbeef"
+	out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-session", session, first)
+	if code != exitOK || !strings.Contains(out, "held 1") {
+		t.Fatalf("first feed: exit %d\n%s\n%s", code, out, errs)
+	}
+	out, errs, code = runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-session", session, "-from-line", strconv.Itoa(cut+2), whole)
+	if code != exitOK || strings.Contains(out, "held -1") || !strings.Contains(out, "and 1 held by an earlier feed on the session decided: applied 1") {
+		t.Errorf("second feed: exit %d\n%s\n%s", code, out, errs)
 	}
 }

@@ -199,6 +199,7 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		seq := fd.ordinal
 		fd.t.sending(sr.Line(), seq, s)
 		if err := fd.sess.SendAs(seq, s); err != nil {
+			fd.t.unsend(seq)
 			return err
 		}
 		fd.sent++
@@ -339,6 +340,8 @@ type tally struct {
 	ended   bool   // collect returned
 	counts  map[pb.Verdict]int
 	reasons []string
+	// unsent is the line of the sample whose send failed (0: none).
+	unsent int
 	// earlier counts, by final verdict, the samples an earlier feed on the
 	// session left held whose resolutions came to this one; they are none
 	// of this feed's samples (like counts, collect's alone).
@@ -464,12 +467,29 @@ func (t *tally) unanswered(err error) error {
 			first = seq
 		}
 	}
-	if first == 0 {
+	if first == 0 && t.unsent == 0 {
 		return fmt.Errorf("the stream ended after %s:%d, whose verdict came: %w", t.label, t.lastLineLocked(), err)
 	}
+	what := fmt.Sprintf("is the first of %d samples sent without a verdict", len(t.pending))
 	line := t.lineOfLocked(first)
-	return fmt.Errorf("%s:%d is the first of %d samples without a verdict: the stream ended (%w); feed again from there, on the same session (what the service took is answered again, not applied twice): -from-line %d -session %s",
-		t.label, line, len(t.pending), err, line, t.session)
+	switch {
+	case first == 0:
+		what, line = "was not sent", t.unsent
+	case t.unsent > 0:
+		what += fmt.Sprintf(" (and line %d was not sent)", t.unsent)
+	}
+	return fmt.Errorf("%s:%d %s: the stream ended (%w); feed again from there, on the same session (what the service took is answered again, not applied twice): -from-line %d -session %s",
+		t.label, line, what, err, line, t.session)
+}
+
+// unsend takes back the sample of client sequence seq, whose send failed
+// (the stream had ended): it is not among the samples without a verdict,
+// which were sent, but where a feed again would start if they were none.
+func (t *tally) unsend(seq uint64) {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	delete(t.pending, seq)
+	t.unsent = t.lineOfLocked(seq)
 }
 
 // earlierPart is the summary's count of the samples an earlier feed on the

@@ -315,7 +315,7 @@ func TestGoldenFormatV1(t *testing.T) {
 		t.Fatalf("scan %+v, snapshot %d, pairs after it %v", sc, snap, seqs)
 	}
 	// Resuming the older journal writes its manifest; the records stay.
-	w, err := journal.Resume(tmp, "cart", sc.Segment, sc.Good, journal.Options{})
+	w, err := journal.Resume(tmp, "cart", &sc, journal.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -589,7 +589,7 @@ func TestDamagedManifest(t *testing.T) {
 	if err != nil || sc.Pairs != 30 {
 		t.Fatalf("read without the manifest: %d pairs, %v", sc.Pairs, err)
 	}
-	w, err := journal.Resume(d, "cart", sc.Segment, sc.Good, journal.Options{})
+	w, err := journal.Resume(d, "cart", &sc, journal.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -87,7 +87,7 @@ func restart(t *testing.T, fsys journal.FS, min int, exact bool) int {
 	t.Helper()
 	n := check(t, fsys, min, exact)
 	sc, _ := journal.ReadFS(fsys, dir, "cart", journal.Visitor{})
-	w, err := journal.Resume(dir, "cart", sc.Segment, sc.Good, journal.Options{FS: fsys, SegmentBytes: 1024})
+	w, err := journal.Resume(dir, "cart", &sc, journal.Options{FS: fsys, SegmentBytes: 1024})
 	if err != nil {
 		t.Fatalf("resume: %v", err)
 	}

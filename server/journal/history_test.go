@@ -23,24 +23,24 @@ const historySegment = 8 << 10
 // returns the segment paths.
 func writeHistory(t *testing.T, d string, n uint64) []string {
 	t.Helper()
-	return writeHistoryState(t, d, n, nil)
+	return writeSegmented(t, d, n, historySegment, 100, nil)
 }
 
-// writeHistoryState is writeHistory with the state of the first snapshot
-// given.
-func writeHistoryState(t *testing.T, d string, n uint64, first []byte) []string {
+// writeSegmented writes the cart's journal in d on the OS: n pairs, a
+// Flush each, with a snapshot after every every-th (0: none), the first
+// of them holding first if it is not nil, in segments of segment bytes;
+// it returns the segment paths.
+func writeSegmented(t *testing.T, d string, n uint64, segment int64, every uint64, first []byte) []string {
 	t.Helper()
-	w, err := journal.Create(d, "cart", opening, journal.Options{SegmentBytes: historySegment})
+	w, err := journal.Create(d, "cart", opening, journal.Options{SegmentBytes: segment})
 	if err != nil {
 		t.Fatal(err)
 	}
 	for seq := uint64(1); seq <= n; seq++ {
-		if err := w.AddPair(input(seq), output(seq)); err != nil {
-			t.Fatal(err)
-		}
-		if seq%100 == 0 {
+		addPairs(t, w, seq, seq)
+		if every > 0 && seq%every == 0 {
 			state := []byte("state at " + fmt.Sprint(seq))
-			if seq == 100 && first != nil {
+			if seq == every && first != nil {
 				state = first
 			}
 			w.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: seq, State: state}}})
@@ -63,14 +63,7 @@ func writeHistoryState(t *testing.T, d string, n uint64, first []byte) []string 
 func restoreCounting(t *testing.T, d string) (journal.Scan, []uint64, int64) {
 	t.Helper()
 	ffs := faultfs.New(journal.OS, nil)
-	var snap uint64
-	var seqs []uint64
-	sc, err := journal.ReadFS(ffs, d, "cart", journal.Visitor{
-		Snapshot: func(s *pb.JournalSnapshot) error { snap = s.GetSequence(); return nil },
-		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
-			seqs = append(seqs, in.GetSequence())
-			return nil
-		}})
+	sc, snap, seqs, err := readFromSnapshot(ffs, d)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -83,6 +76,31 @@ func restoreCounting(t *testing.T, d string) (journal.Scan, []uint64, int64) {
 	}
 	w.Close()
 	return sc, seqs, ffs.BytesRead()
+}
+
+// readFromSnapshot reads the cart's journal in d on fsys (nil: OS) from
+// its last snapshot and returns the scan, the snapshot's sequence and the
+// inputs after it.
+func readFromSnapshot(fsys journal.FS, d string) (sc journal.Scan, snap uint64, seqs []uint64, err error) {
+	sc, err = journal.ReadFS(fsys, d, "cart", journal.Visitor{
+		Snapshot: func(s *pb.JournalSnapshot) error { snap = s.GetSequence(); return nil },
+		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+			seqs = append(seqs, in.GetSequence())
+			return nil
+		}})
+	return sc, snap, seqs, err
+}
+
+// copyGolden copies the golden journal of format version 1 into a new
+// directory and returns it with the golden files' paths.
+func copyGolden(t *testing.T) (string, []string) {
+	tmp := t.TempDir()
+	names, _ := filepath.Glob("testdata/v1/*")
+	for _, n := range names {
+		b, _ := os.ReadFile(n)
+		os.WriteFile(filepath.Join(tmp, filepath.Base(n)), b, 0o644)
+	}
+	return tmp, names
 }
 
 // TestRestoreReadsFromTheLastSnapshot: a restart reads the journal from
@@ -120,12 +138,7 @@ func TestRestoreReadsFromTheLastSnapshot(t *testing.T) {
 // the same. No segment is rewritten (TestGoldenFormatV1).
 func TestOldJournalGetsItsManifestCompleted(t *testing.T) {
 	for _, v1Manifest := range []bool{false, true} {
-		tmp := t.TempDir()
-		names, _ := filepath.Glob("testdata/v1/*")
-		for _, n := range names {
-			b, _ := os.ReadFile(n)
-			os.WriteFile(filepath.Join(tmp, filepath.Base(n)), b, 0o644)
-		}
+		tmp, _ := copyGolden(t)
 		if v1Manifest {
 			os.WriteFile(journal.ManifestPath(tmp, "cart"), []byte("reckon journal manifest 1\nnewest-segment 2\n"), 0o644)
 		}
@@ -205,7 +218,7 @@ func TestOldSegmentCutOrMissingAtRestore(t *testing.T) {
 			d := t.TempDir()
 			// A first snapshot larger than a segment: its segment ends
 			// with it.
-			segs := writeHistoryState(t, d, 2050, make([]byte, historySegment))
+			segs := writeSegmented(t, d, 2050, historySegment, 100, make([]byte, historySegment))
 			var bad string
 			var cut int
 			switch c {

@@ -79,6 +79,9 @@ type Options struct {
 
 	// wrapJournal, if set (tests), wraps every journal writer.
 	wrapJournal func(journalWriter) journalWriter
+	// afterRun, if set (tests), is called after a run of samples released
+	// its robot's lock.
+	afterRun func()
 }
 
 // Server implements pb.FusionServiceServer.
@@ -983,8 +986,8 @@ type taking struct {
 }
 
 // ingestRun takes a run of samples for one robot: under its lock, the
-// samples, one journal write and the routing of resolutions to their
-// senders; then the watchers and the metrics.
+// samples, one journal write, the routing of resolutions to their senders
+// and the pose for the watchers; then the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *outbox, sc *scratch) {
 	start := run[0].arrived // ingestStream set it
 	r, err := s.lookup(run[0].GetRobot())
@@ -1020,26 +1023,40 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	}
 	if pose != nil {
 		s.observeRobot(r, pose, lag)
+		s.publish(r, pose, run, out, tk.entries[:written])
 	}
-	state := r.state
 	r.mu.Unlock()
+	if s.opt.afterRun != nil {
+		s.opt.afterRun()
+	}
 	if pose == nil {
 		sc.entries = tk.entries[:0]
 		return
 	}
-	var events []*pb.FusionEvent
-	for _, k := range tk.entries[:written] {
-		events = append(events, out[k].Events...)
-	}
-	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
-	s.live.publish(func() LiveUpdate {
-		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, tk.entries[:written])}
-	})
 	d := time.Since(start)
 	for _, k := range tk.entries[:written] {
 		s.opt.Metrics.verdict(out[k].Verdict, d)
 	}
 	sc.entries = tk.entries[:0]
+}
+
+// publish hands the watchers and the live views the robot's pose after a
+// run and the events of its entries. The caller holds r.mu, so that they
+// get the robot's poses in the order the robot made them: published after
+// the unlock, a run that took the lock first could publish after a later
+// one, and its older pose would replace the newest in every mailbox (and
+// a run's pose could follow the robot's deletion and show it again in the
+// live views). A publish never blocks: it only fills mailboxes.
+func (s *Server) publish(r *robot, pose *pb.FusedPose, run []*arrivedRequest, out []encodedResponse, entries []int) {
+	var events []*pb.FusionEvent
+	for _, k := range entries {
+		events = append(events, out[k].Events...)
+	}
+	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	state := r.state
+	s.live.publish(func() LiveUpdate {
+		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, entries)}
+	})
 }
 
 // unapply answers the samples taken but not journaled UNAVAILABLE, not

@@ -134,33 +134,30 @@ func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer
 	if err != nil {
 		return err
 	}
-	r.mu.Lock()
-	err = r.usable()
-	r.mu.Unlock()
-	if err != nil {
-		return err
-	}
 	lim := s.opt.Limits
 	if n := s.watching.Add(1); n > int64(lim.MaxWatchers) {
 		s.watching.Add(-1)
 		return status.Errorf(codes.ResourceExhausted, "watch: the service already has %d open watches, the limit (-max-watchers)", lim.MaxWatchers)
 	}
 	defer s.watching.Add(-1)
-	w, done, ok := r.hub.add(lim.MaxWatchersPerRobot)
-	if !ok {
-		return status.Errorf(codes.ResourceExhausted, "watch: %s already has %d open watches, the limit (-max-watchers-per-robot)", r.name, lim.MaxWatchersPerRobot)
-	}
-	defer r.hub.remove(w)
-	s.opt.Metrics.watchers(1)
-	defer s.opt.Metrics.watchers(-1)
-	// Start with the current estimate.
+	// Start with the current estimate, taken under the robot's lock with
+	// the watcher's entry, so that the watcher gets every later pose and
+	// none before it (ingestRun publishes under the lock).
 	r.mu.Lock()
 	if err := r.usable(); err != nil {
 		r.mu.Unlock()
 		return err
 	}
+	w, done, ok := r.hub.add(lim.MaxWatchersPerRobot)
+	if !ok {
+		r.mu.Unlock()
+		return status.Errorf(codes.ResourceExhausted, "watch: %s already has %d open watches, the limit (-max-watchers-per-robot)", r.name, lim.MaxWatchersPerRobot)
+	}
 	first := &pb.WatchResponse{Pose: poseNow(r)}
 	r.mu.Unlock()
+	defer r.hub.remove(w)
+	s.opt.Metrics.watchers(1)
+	defer s.opt.Metrics.watchers(-1)
 	if err := stream.Send(first); err != nil {
 		return err
 	}

@@ -1241,6 +1241,9 @@ func (s *Server) quarantine(r *robot, detail string) {
 	}
 	r.state, r.detail = pb.RobotState_ROBOT_STATE_QUARANTINED, detail
 	s.log.Error("robot quarantined", "robot", r.name, "problem", detail)
+	// Its watches end naming the problem, as a new watch is refused:
+	// otherwise they would wait for poses that no longer come.
+	r.hub.close()
 }
 
 // rebuild makes the robot's memory equal its journal again after inputs it

@@ -114,21 +114,21 @@ func (h *hub) close() {
 }
 
 // watchEnded is how a watch of r ends when the service ends it: NOT_FOUND
-// when r was deleted, so that a client tells it from the service stopping
+// when r was deleted and FAILED_PRECONDITION, naming the problem, when it
+// was quarantined, so that a client tells them from the service stopping
 // (OK), after which it may connect again.
 func watchEnded(r *robot) error {
 	r.mu.Lock()
-	deleted := r.deleted
-	r.mu.Unlock()
-	if deleted {
+	defer r.mu.Unlock()
+	if r.deleted {
 		return status.Errorf(codes.NotFound, "robot: %s was deleted", r.name)
 	}
-	return nil
+	return r.usable()
 }
 
 // Watch streams a robot's poses, conflated for slow readers and rate
 // limited by min_interval_ns. It ends with NOT_FOUND when the robot is
-// deleted.
+// deleted and with FAILED_PRECONDITION when it is quarantined.
 func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer) error {
 	r, err := s.lookup(req.GetRobot())
 	if err != nil {

@@ -57,8 +57,9 @@ type FusionServiceClient interface {
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
-	// stream ends with NOT_FOUND when the robot is deleted, and with OK when
-	// the service stops.
+	// stream ends with NOT_FOUND when the robot is deleted, with
+	// FAILED_PRECONDITION naming the problem when it is quarantined, and with
+	// OK when the service stops.
 	Watch(ctx context.Context, in *WatchRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchResponse], error)
 	// Gets the estimate at a stamp inside the history window, or shortly
 	// past the newest odometry (extrapolated).
@@ -219,8 +220,9 @@ type FusionServiceServer interface {
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
-	// stream ends with NOT_FOUND when the robot is deleted, and with OK when
-	// the service stops.
+	// stream ends with NOT_FOUND when the robot is deleted, with
+	// FAILED_PRECONDITION naming the problem when it is quarantined, and with
+	// OK when the service stops.
 	Watch(*WatchRequest, grpc.ServerStreamingServer[WatchResponse]) error
 	// Gets the estimate at a stamp inside the history window, or shortly
 	// past the newest odometry (extrapolated).

@@ -130,6 +130,9 @@ func watchEnded(r *robot) error {
 // limited by min_interval_ns. It ends with NOT_FOUND when the robot is
 // deleted and with FAILED_PRECONDITION when it is quarantined.
 func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer) error {
+	if n := req.GetMinIntervalNs(); n < 0 {
+		return status.Errorf(codes.InvalidArgument, "min_interval_ns: %d is negative", n)
+	}
 	r, err := s.lookup(req.GetRobot())
 	if err != nil {
 		return err

@@ -111,3 +111,25 @@ func TestWatchEndsWhenQuarantined(t *testing.T) {
 		t.Errorf("watch of a quarantined robot ended with %v, want FAILED_PRECONDITION naming the problem", err)
 	}
 }
+
+// TestWatchNegativeInterval: a watch asking for a negative least interval
+// between poses is refused with INVALID_ARGUMENT naming min_interval_ns,
+// as ListRobots refuses a negative page_size; before, it was taken as 0
+// without a word.
+func TestWatchNegativeInterval(t *testing.T) {
+	srv := start(t, testConfig{})
+	defer srv.stop()
+	api := dial(t, srv.addr)
+	ctx := context.Background()
+	_, cfg := cartRun(3, 1)
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: "robots/cart", MinIntervalNs: -1})
+	if err == nil {
+		_, err = w.Recv()
+	}
+	if codeOf(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "min_interval_ns") {
+		t.Errorf("watch with min_interval_ns -1: %v, want INVALID_ARGUMENT naming min_interval_ns", err)
+	}
+}

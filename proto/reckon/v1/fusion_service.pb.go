@@ -1444,7 +1444,9 @@ type WatchRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// "robots/{robot}".
 	Robot string `protobuf:"bytes,1,opt,name=robot,proto3" json:"robot,omitempty"`
-	// Least time between two poses sent, nanoseconds (0: every input).
+	// Least time between two poses sent, nanoseconds (0: every pose, one for
+	// each group of inputs the robot takes together; negative is
+	// INVALID_ARGUMENT).
 	MinIntervalNs int64 `protobuf:"varint,2,opt,name=min_interval_ns,json=minIntervalNs,proto3" json:"min_interval_ns,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

@@ -912,10 +912,14 @@ type IngestResponse struct {
 	Events []*FusionEvent `protobuf:"bytes,8,rep,name=events,proto3" json:"events,omitempty"`
 	// The google.rpc.Code of the outcome, so that one bad sample does not end
 	// the stream: 0 (OK) for applied, held and gated samples; 3
-	// (INVALID_ARGUMENT) for a malformed or refused one; 5 (NOT_FOUND) for an
-	// unknown robot or landmark; 9 (FAILED_PRECONDITION) for a sample the
-	// robot's configuration does not take; 11 (OUT_OF_RANGE) for time running
-	// backwards or a sample too old; 14 (UNAVAILABLE) if the journal failed.
+	// (INVALID_ARGUMENT) for a malformed or refused one (a malformed value or
+	// robot name, implausible motion, a stamp too far ahead, held inputs
+	// full, a numerical fault, a string past its limit); 5 (NOT_FOUND) for an
+	// unknown or deleted robot, an unknown landmark or sensor; 9
+	// (FAILED_PRECONDITION) for a sample the robot's configuration does not
+	// take, a run start out of order, or a quarantined robot; 11
+	// (OUT_OF_RANGE) for time running backwards or a sample too old; 14
+	// (UNAVAILABLE) if the journal failed or the robot is paused.
 	StatusCode int32 `protobuf:"varint,9,opt,name=status_code,json=statusCode,proto3" json:"status_code,omitempty"`
 	// Why the sample was refused, as a value (REFUSAL_UNSPECIFIED if not).
 	Refusal Refusal `protobuf:"varint,10,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`

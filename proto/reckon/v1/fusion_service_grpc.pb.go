@@ -64,7 +64,10 @@ type FusionServiceClient interface {
 	// Gets the estimate at a stamp inside the history window, or shortly
 	// past the newest odometry (extrapolated).
 	GetPoseAt(ctx context.Context, in *GetPoseAtRequest, opts ...grpc.CallOption) (*GetPoseAtResponse, error)
-	// Re-seeds a robot's pose by hand.
+	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
+	// stamped after the newest odometry is held (VERDICT_HELD) until odometry
+	// reaches its stamp; its final verdict is sent nowhere, as the call has
+	// no stream: a watcher sees EVENT_KIND_RESEEDED when it is applied.
 	ReseedRobot(ctx context.Context, in *ReseedRobotRequest, opts ...grpc.CallOption) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	GetStatistics(ctx context.Context, in *GetStatisticsRequest, opts ...grpc.CallOption) (*GetStatisticsResponse, error)
@@ -227,7 +230,10 @@ type FusionServiceServer interface {
 	// Gets the estimate at a stamp inside the history window, or shortly
 	// past the newest odometry (extrapolated).
 	GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error)
-	// Re-seeds a robot's pose by hand.
+	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
+	// stamped after the newest odometry is held (VERDICT_HELD) until odometry
+	// reaches its stamp; its final verdict is sent nowhere, as the call has
+	// no stream: a watcher sees EVENT_KIND_RESEEDED when it is applied.
 	ReseedRobot(context.Context, *ReseedRobotRequest) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	GetStatistics(context.Context, *GetStatisticsRequest) (*GetStatisticsResponse, error)

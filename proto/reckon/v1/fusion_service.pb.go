@@ -904,8 +904,9 @@ type IngestResponse struct {
 	// session_id, after the responses to its first requests (any request for
 	// the robot, even a refused one, collects them); a sample sent without a
 	// session_id loses it with its stream. A retried sample is answered with
-	// its response as first sent. The journal records, in the deciding
-	// sample's response, every resolution it caused, without
+	// its response as first sent. A held sample of a robot that is deleted
+	// before deciding it gets no resolution. The journal records, in the
+	// deciding sample's response, every resolution it caused, without
 	// client_sequence.
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`
 	// Notable moments this sample caused.

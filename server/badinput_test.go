@@ -157,3 +157,35 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Errorf("statistics of an unknown robot: %v", err)
 	}
 }
+
+// TestReseedRPCNamesField: ReseedRobot refuses a bad re-seed with a status
+// whose message starts with the request's own field (ReseedRobotRequest
+// has no sample: the message began "bad sample: sample.reseed" before).
+func TestReseedRPCNamesField(t *testing.T) {
+	srv := start(t, testConfig{})
+	defer srv.stop()
+	c := dial(t, srv.addr)
+	ctx := context.Background()
+	_, cfg := cartRun(3, 1)
+	if _, err := c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	cases := []struct {
+		name   string
+		robot  string
+		reseed *pb.Reseed
+		code   codes.Code
+		field  string
+	}{
+		{"missing", "robots/cart", nil, codes.InvalidArgument, "reseed"},
+		{"no pose", "robots/cart", &pb.Reseed{}, codes.InvalidArgument, "reseed.pose"},
+		{"covariance size", "robots/cart", &pb.Reseed{Pose: &pb.FloorPose{}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1}}}, codes.InvalidArgument, "reseed.covariance"},
+		{"unknown robot", "robots/tractor", &pb.Reseed{Pose: &pb.FloorPose{}}, codes.NotFound, "robot"},
+	}
+	for _, tc := range cases {
+		_, err := c.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: tc.robot, Reseed: tc.reseed})
+		if st := status.Convert(err); st.Code() != tc.code || !strings.HasPrefix(st.Message(), tc.field+":") {
+			t.Errorf("%s: %v, want %v starting with %s", tc.name, err, tc.code, tc.field)
+		}
+	}
+}

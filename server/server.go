@@ -30,6 +30,7 @@ import (
 	"log/slog"
 	"maps"
 	"sort"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -1310,9 +1311,19 @@ func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: req.GetReseed()}})
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
-		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+		return nil, callRefused(resp)
 	}
 	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+}
+
+// callRefused is the status of a call (ReseedRobot, StartRun) whose input
+// the robot refused before taking it. The reason names the field as in a
+// sample ("bad sample: sample.reseed.pose: missing"); the call's request
+// has no sample, so the status names the request's own field
+// ("reseed.pose: missing").
+func callRefused(resp *pb.IngestResponse) error {
+	reason := strings.TrimPrefix(resp.Reason, convert.ErrSample.Error()+": ")
+	return status.Error(codes.Code(resp.StatusCode), strings.TrimPrefix(reason, "sample."))
 }
 
 // StartRun starts a new run of a robot by hand (DEVELOPERS.md, "Design:
@@ -1324,7 +1335,7 @@ func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.Sta
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
-		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+		return nil, callRefused(resp)
 	}
 	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
 	for _, e := range resp.Events {

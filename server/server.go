@@ -122,6 +122,11 @@ type Server struct {
 	// prefaultNoted is set once a journal's pages could not be readied
 	// (prefault).
 	prefaultNoted atomic.Bool
+	// verifying counts the passes of VerifyHistories running, which the
+	// end of verifyCtx (stopVerify, by Close) stops.
+	verifying  sync.WaitGroup
+	verifyCtx  context.Context
+	stopVerify context.CancelFunc
 }
 
 // robot is one robot and everything attached to it.
@@ -137,7 +142,12 @@ type robot struct {
 	detail        string // why paused or quarantined; or a note from restore
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
-	sessions      sessions
+	// unread counts the journal's segments that restore did not read
+	// whole (from segment 0), which VerifyHistories reads, and
+	// historySnap is the sequence of the snapshot restore started from.
+	unread      int
+	historySnap uint64
+	sessions    sessions
 	// holders are the senders of the inputs held now, by sequence;
 	// parked, the resolutions kept for sessions whose stream is gone
 	// (resolutions.go).
@@ -188,6 +198,7 @@ func New(opt Options) (*Server, error) {
 		}
 	}
 	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
+	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
 		// each journal syncs by itself as elsewhere.
@@ -316,6 +327,8 @@ var errStopping = status.Error(codes.Unavailable, "the service is stopping: ever
 func (s *Server) Close() error {
 	close(s.stopSync)
 	<-s.syncDone
+	s.stopVerify()
+	s.verifying.Wait()
 	var errs []error
 	if s.whole != nil {
 		errs = append(errs, s.whole.Close())

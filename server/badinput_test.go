@@ -162,14 +162,8 @@ func TestBadInputOverTheWire(t *testing.T) {
 // whose message starts with the request's own field (ReseedRobotRequest
 // has no sample: the message began "bad sample: sample.reseed" before).
 func TestReseedRPCNamesField(t *testing.T) {
-	srv := start(t, testConfig{})
-	defer srv.stop()
-	c := dial(t, srv.addr)
+	c := serveCart(t, testConfig{})
 	ctx := context.Background()
-	_, cfg := cartRun(3, 1)
-	if _, err := c.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
 	cases := []struct {
 		name   string
 		robot  string

@@ -23,24 +23,13 @@ import (
 // service stopping, which ends a watch with OK (and after which it may
 // connect again).
 func TestWatchEndsNotFoundOnDelete(t *testing.T) {
-	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
-	defer srv.stop()
-	api := dial(t, srv.addr)
+	api := serveCart(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
 	ctx := context.Background()
-	_, cfg := cartRun(3, 1)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
-	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: "robots/cart"})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := w.Recv(); err != nil {
-		t.Fatalf("first pose: %v", err)
-	}
+	w := openWatch(t, ctx, api, "robots/cart")
 	if _, err := api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart"}); err != nil {
 		t.Fatal(err)
 	}
+	var err error
 	for {
 		_, err = w.Recv()
 		if err != nil {
@@ -72,10 +61,7 @@ func TestWatchEndsWhenQuarantined(t *testing.T) {
 	defer gs.Stop()
 	api := dial(t, lis.Addr().String())
 	ctx := context.Background()
-	samp, cfg := cartRun(4, 1)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
+	samp := createCart(t, api, 4)
 	f, err := openFeed(ctx, api, "robots/cart")
 	if err != nil {
 		t.Fatal(err)
@@ -88,13 +74,7 @@ func TestWatchEndsWhenQuarantined(t *testing.T) {
 	// A watch that would outlive the test on the old code ends with it.
 	wctx, cancel := context.WithTimeout(ctx, 10*time.Second)
 	defer cancel()
-	w, err := api.Watch(wctx, &pb.WatchRequest{Robot: "robots/cart"})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := w.Recv(); err != nil {
-		t.Fatalf("first pose: %v", err)
-	}
+	w := openWatch(t, wctx, api, "robots/cart")
 	s.mu.RLock()
 	r := s.robots["robots/cart"]
 	s.mu.RUnlock()
@@ -117,15 +97,8 @@ func TestWatchEndsWhenQuarantined(t *testing.T) {
 // as ListRobots refuses a negative page_size; before, it was taken as 0
 // without a word.
 func TestWatchNegativeInterval(t *testing.T) {
-	srv := start(t, testConfig{})
-	defer srv.stop()
-	api := dial(t, srv.addr)
-	ctx := context.Background()
-	_, cfg := cartRun(3, 1)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
-	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: "robots/cart", MinIntervalNs: -1})
+	api := serveCart(t, testConfig{})
+	w, err := api.Watch(context.Background(), &pb.WatchRequest{Robot: "robots/cart", MinIntervalNs: -1})
 	if err == nil {
 		_, err = w.Recv()
 	}

@@ -51,18 +51,8 @@ func reseedAt(t *testing.T, api pb.FusionServiceClient, robot string) uint64 {
 // the robot took nothing more.
 func TestWatchKeepsRobotOrder(t *testing.T) {
 	pause := newPauseAfterRun()
-	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir(), afterRun: pause.hook}})
-	defer srv.stop()
-	api := dial(t, srv.addr)
-	ctx := context.Background()
-	_, cfg := cartRun(3, 1)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
-	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: "robots/cart"})
-	if err != nil {
-		t.Fatal(err)
-	}
+	api := serveCart(t, testConfig{Options: Options{JournalDir: t.TempDir(), afterRun: pause.hook}})
+	w := openWatch(t, context.Background(), api, "robots/cart")
 	var last uint64
 	until := func(seq uint64) {
 		t.Helper()
@@ -78,7 +68,6 @@ func TestWatchKeepsRobotOrder(t *testing.T) {
 			last = s
 		}
 	}
-	until(0)
 	pause.armed.Store(true)
 	var wg sync.WaitGroup
 	wg.Add(1)

@@ -183,3 +183,17 @@ func TestReseedRPCNamesField(t *testing.T) {
 		}
 	}
 }
+
+// TestPoseAtWithoutOdometry: GetPoseAt of a robot that has taken no
+// odometry is OUT_OF_RANGE saying so, at any stamp; before, the message
+// said the stamp was "before the history window", also for a stamp after
+// every input (a client asking for "now").
+func TestPoseAtWithoutOdometry(t *testing.T) {
+	c := serveCart(t, testConfig{})
+	for _, stamp := range []int64{-1, 0, 1e9} {
+		_, err := c.GetPoseAt(context.Background(), &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: stamp})
+		if st := status.Convert(err); st.Code() != codes.OutOfRange || !strings.Contains(st.Message(), "no odometry") || strings.Contains(st.Message(), "before the history window") {
+			t.Errorf("GetPoseAt(%d) without odometry: %v, want OUT_OF_RANGE saying the robot has no odometry", stamp, err)
+		}
+	}
+}

@@ -1312,6 +1312,11 @@ func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.G
 	}
 	p, err := r.fr.PoseAt(req.GetStampNs())
 	if err != nil {
+		if r.fr.Pose().Distrust&fusion.TrustNoOdometry != 0 {
+			// fusion says "stamped before the history window", which
+			// misleads for a stamp after every input: there is no window.
+			return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %s has taken no odometry yet, so it has a pose at no stamp", r.name)
+		}
 		return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %v", err)
 	}
 	return &pb.GetPoseAtResponse{Pose: convert.PoseToProto(r.name, p, r.fr.Sequence())}, nil

@@ -62,7 +62,8 @@ type FusionServiceClient interface {
 	// OK when the service stops.
 	Watch(ctx context.Context, in *WatchRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchResponse], error)
 	// Gets the estimate at a stamp inside the history window, or shortly
-	// past the newest odometry (extrapolated).
+	// past the newest odometry (extrapolated). Another stamp, or any before
+	// the robot's first odometry, is OUT_OF_RANGE.
 	GetPoseAt(ctx context.Context, in *GetPoseAtRequest, opts ...grpc.CallOption) (*GetPoseAtResponse, error)
 	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
 	// stamped after the newest odometry is held (VERDICT_HELD) until odometry
@@ -228,7 +229,8 @@ type FusionServiceServer interface {
 	// OK when the service stops.
 	Watch(*WatchRequest, grpc.ServerStreamingServer[WatchResponse]) error
 	// Gets the estimate at a stamp inside the history window, or shortly
-	// past the newest odometry (extrapolated).
+	// past the newest odometry (extrapolated). Another stamp, or any before
+	// the robot's first odometry, is OUT_OF_RANGE.
 	GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error)
 	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
 	// stamped after the newest odometry is held (VERDICT_HELD) until odometry

@@ -68,20 +68,24 @@ type FusionServiceClient interface {
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
-	// stream ends with NOT_FOUND when the robot is deleted, and with OK when
-	// the service stops. RESOURCE_EXHAUSTED past the service's watch limits
-	// (-max-watchers, -max-watchers-per-robot); FAILED_PRECONDITION for a
-	// quarantined robot.
+	// stream ends with NOT_FOUND when the robot is deleted, with
+	// FAILED_PRECONDITION naming the problem when it is quarantined (and
+	// begins so for a quarantined robot), and with OK when the service stops.
+	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
+	// -max-watchers-per-robot).
 	Watch(ctx context.Context, in *WatchRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchResponse], error)
 	// Gets the estimate at a stamp inside the history window, or shortly
 	// past the newest odometry (extrapolated, up to the configuration's
-	// max_extrapolation_ns). OUT_OF_RANGE for a stamp outside those;
-	// FAILED_PRECONDITION for a quarantined robot.
+	// max_extrapolation_ns). Another stamp, or any before the robot's first
+	// odometry, is OUT_OF_RANGE; FAILED_PRECONDITION for a quarantined robot.
 	GetPoseAt(ctx context.Context, in *GetPoseAtRequest, opts ...grpc.CallOption) (*GetPoseAtResponse, error)
-	// Re-seeds a robot's pose by hand; journaled like any input. A reseed
+	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
 	// the robot refuses before taking it (sequence 0) ends the call with the
 	// status of IngestResponse.status_code and the reason; one it took is
-	// answered with its verdict.
+	// answered with its verdict. A re-seed stamped after the newest odometry
+	// is held (VERDICT_HELD) until odometry reaches its stamp; its final
+	// verdict is sent nowhere, as the call has no stream: a watcher sees
+	// EVENT_KIND_RESEEDED when it is applied.
 	ReseedRobot(ctx context.Context, in *ReseedRobotRequest, opts ...grpc.CallOption) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	// FAILED_PRECONDITION for a quarantined robot.
@@ -250,20 +254,24 @@ type FusionServiceServer interface {
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
-	// stream ends with NOT_FOUND when the robot is deleted, and with OK when
-	// the service stops. RESOURCE_EXHAUSTED past the service's watch limits
-	// (-max-watchers, -max-watchers-per-robot); FAILED_PRECONDITION for a
-	// quarantined robot.
+	// stream ends with NOT_FOUND when the robot is deleted, with
+	// FAILED_PRECONDITION naming the problem when it is quarantined (and
+	// begins so for a quarantined robot), and with OK when the service stops.
+	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
+	// -max-watchers-per-robot).
 	Watch(*WatchRequest, grpc.ServerStreamingServer[WatchResponse]) error
 	// Gets the estimate at a stamp inside the history window, or shortly
 	// past the newest odometry (extrapolated, up to the configuration's
-	// max_extrapolation_ns). OUT_OF_RANGE for a stamp outside those;
-	// FAILED_PRECONDITION for a quarantined robot.
+	// max_extrapolation_ns). Another stamp, or any before the robot's first
+	// odometry, is OUT_OF_RANGE; FAILED_PRECONDITION for a quarantined robot.
 	GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error)
-	// Re-seeds a robot's pose by hand; journaled like any input. A reseed
+	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
 	// the robot refuses before taking it (sequence 0) ends the call with the
 	// status of IngestResponse.status_code and the reason; one it took is
-	// answered with its verdict.
+	// answered with its verdict. A re-seed stamped after the newest odometry
+	// is held (VERDICT_HELD) until odometry reaches its stamp; its final
+	// verdict is sent nowhere, as the call has no stream: a watcher sees
+	// EVENT_KIND_RESEEDED when it is applied.
 	ReseedRobot(context.Context, *ReseedRobotRequest) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
 	// FAILED_PRECONDITION for a quarantined robot.

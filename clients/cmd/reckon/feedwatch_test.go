@@ -81,7 +81,12 @@ func TestFeedErrorsNameTheLine(t *testing.T) {
 		`{"odometry":{"stamp_ns":"80000000"` + "\n" // line 9: broken
 	file := filepath.Join(t.TempDir(), "bad.jsonl")
 	os.WriteFile(file, []byte(text), 0o644)
-	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, file)
+	// Not -create, which checks the whole file before it creates the robot
+	// (TestFeedCreateChecksFileFirst).
+	if _, errs, code := runCode(t, ctx, "", "create", "cart", "-addr", addr, "-config", exampleConfig); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", file)
 	if code != exitRefused || !strings.Contains(errs, "reckon: "+file+":9: ") || strings.Contains(errs, "line 9") {
 		t.Errorf("exit %d, stderr %q", code, errs)
 	}

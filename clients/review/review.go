@@ -430,6 +430,11 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	if err := rc.runs(fr, src.Run); err != nil {
 		return nil, err
 	}
+	if (opt.FromNs > 0 || opt.ToNs > 0) && run.Summary.Inputs == 0 {
+		fw.close()
+		os.Remove(run.FilteredCSV)
+		return nil, EmptyStretch(opt.FromNs, opt.ToNs, rc.endNewestNs-run.Summary.RunStartNs)
+	}
 	rc.add(fr, true, fr.Run() == rc.want)
 	run.Summary.markers(fr.FinishLandmarkOffsets())
 	if err := fw.close(); err != nil {
@@ -714,6 +719,21 @@ func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
 
 // ErrNoRun is returned for a run the recording does not hold.
 var ErrNoRun = errors.New("no such run")
+
+// ErrEmptyStretch is returned when no input of the run is stamped inside
+// the stretch asked for (Options.FromNs, ToNs).
+var ErrEmptyStretch = errors.New("an empty stretch")
+
+// EmptyStretch is the ErrEmptyStretch of the stretch from fromNs to toNs
+// (0: the end) after the run's start, of a run whose inputs reach lastNs
+// after it.
+func EmptyStretch(fromNs, toNs, lastNs int64) error {
+	to := "its end"
+	if toNs > 0 {
+		to = fmt.Sprintf("%.3f s", secs(toNs))
+	}
+	return fmt.Errorf("%w: no input is stamped from %.3f s to %s after the run's start; the inputs reach %.3f s", ErrEmptyStretch, secs(fromNs), to, secs(lastNs))
+}
 
 // ErrTruth is wrapped by the errors of a truth file that is not a time
 // ordered table of stamp_ns,x_m,y_m,heading_rad rows.

@@ -54,7 +54,7 @@ func exitCode(err error) int {
 		return exitOK
 	case errors.Is(err, errInterrupted), errors.Is(err, context.Canceled):
 		return exitInterrupted
-	case errors.As(err, &ue):
+	case errors.As(err, &ue), errors.Is(err, review.ErrEmptyStretch):
 		return exitUsage
 	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL), errors.Is(err, review.ErrTruth):
 		return exitRefused

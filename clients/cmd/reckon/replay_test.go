@@ -478,6 +478,31 @@ func TestTimeSpanToBeforeFrom(t *testing.T) {
 	}
 }
 
+// TestTimeSpanPastTheEnd: a -from past the end of the run (20 s of a run
+// of 10 s) holds no input: replay, review and compare say so, naming
+// where the run's inputs end, with exit 2 (a bad argument), and write no
+// output. Before, replay wrote nothing at all (not even the CSV header),
+// and review and compare a report of 0 inputs that still showed the whole
+// run's NIS, all with exit status 0.
+func TestTimeSpanPastTheEnd(t *testing.T) {
+	dir := t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-config", exampleConfig, "-samples", exampleSamples, "-from", "20", "-out", filepath.Join(dir, "replay.csv")},
+		{"review", "-config", exampleConfig, "-samples", exampleSamples, "-from", "20", "-out", filepath.Join(dir, "review")},
+		{"compare", "-config", exampleConfig, "-samples", exampleSamples, "-b", exampleConfig, "-from", "20s", "-out", filepath.Join(dir, "compare")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitUsage || !strings.Contains(errs, "no input is stamped from 20.000 s to its end after the run's start; the inputs reach 10.000 s") {
+			t.Errorf("%s -from 20: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+	}
+	for _, out := range []string{"replay.csv", "review/report.html", "compare/report.html"} {
+		if _, err := os.Stat(filepath.Join(dir, out)); !os.IsNotExist(err) {
+			t.Errorf("%s written (%v)", out, err)
+		}
+	}
+}
+
 // TestReviewOfUnreadableSamples: a samples file with no sample that can
 // be read (not JSON Lines at all, or empty) is refused naming the file
 // and line, exit 5, as replay refuses it; review wrote a report of 0
@@ -549,6 +574,7 @@ func TestReplayFailureKeepsTheOutput(t *testing.T) {
 		{"-config", bad, "-samples", exampleSamples},
 		{"-journal", dir, "-robot", "cart"},
 		{"-config", exampleConfig, "-samples", exampleSamples, "-run", "2"},
+		{"-config", exampleConfig, "-samples", exampleSamples, "-from", "100"}, // TestTimeSpanPastTheEnd
 	} {
 		if err := os.WriteFile(out, []byte(before), 0o644); err != nil {
 			t.Fatal(err)
@@ -560,14 +586,6 @@ func TestReplayFailureKeepsTheOutput(t *testing.T) {
 		if b, _ := os.ReadFile(out); string(b) != before {
 			t.Errorf("%v: the failed replay (%v) changed -out to %q\n%s", args, err, b, errs)
 		}
-	}
-	// A replay that succeeds without a row (a stretch past the run's end)
-	// leaves an empty file, not the older one.
-	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples, "-from", "100"); err != nil {
-		t.Fatalf("%v\n%s", err, errs)
-	}
-	if b, err := os.ReadFile(out); err != nil || len(b) != 0 {
-		t.Errorf("a replay of no rows left %q (%v)", b, err)
 	}
 	// A replay that succeeds writes it.
 	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples); err != nil {

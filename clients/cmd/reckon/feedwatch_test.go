@@ -121,6 +121,25 @@ func TestInterrupted(t *testing.T) {
 	}
 }
 
+// TestWatchNegativeFlags: a negative -count, -interval or -reconnect is a
+// usage error (exit 2). Before, -count -1 watched until interrupted, as 0
+// does, and the others were taken as 0, all without a word.
+func TestWatchNegativeFlags(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	if _, errs, code := runCode(t, context.Background(), "", "create", "cart", "-config", exampleConfig, "-addr", addr); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	for _, flag := range [][]string{{"-count", "-1"}, {"-interval", "-1s", "-count", "1"}, {"-reconnect", "-1s", "-count", "1"}} {
+		// The old code watched on until the context ended (exit 130).
+		ctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
+		_, errs, code := runCode(t, ctx, "", append([]string{"watch", "-addr", addr, "-robot", "cart"}, flag...)...)
+		cancel()
+		if code != exitUsage || !strings.Contains(errs, "none may be negative") {
+			t.Errorf("watch %v: exit %d, want %d\n%s", flag, code, exitUsage, errs)
+		}
+	}
+}
+
 // syncBuffer is a bytes.Buffer safe for one writer and one reader.
 type syncBuffer struct {
 	mu sync.Mutex

@@ -144,7 +144,7 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		if manifest {
 			return sc, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, newest)
 		}
-		return sc, fmt.Errorf("no journal for %s in %s", name, dir)
+		return sc, fmt.Errorf("%w for %s in %s", ErrNoJournal, name, dir)
 	}
 	if segs[0].n != 0 {
 		// Only the first holds the opening record: nothing after it can

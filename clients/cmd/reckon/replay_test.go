@@ -653,3 +653,21 @@ func TestReplaySetAside(t *testing.T) {
 		t.Errorf("replay of the deleted live name: %v\n%s", err, errs)
 	}
 }
+
+// TestOfflineNoSuchRobot: the offline commands given a robot that the
+// journal directory holds no journal of exit 4, "no such robot", as the
+// commands that ask the service do. Before, they exited 1 (any other
+// failure) with the same message.
+func TestOfflineNoSuchRobot(t *testing.T) {
+	dir, out := t.TempDir(), t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-journal", dir, "-robot", "nosuch"},
+		{"review", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "review")},
+		{"compare", "-journal", dir, "-robot", "nosuch", "-b", exampleConfig, "-out", filepath.Join(out, "compare")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitNotFound || !strings.Contains(errs, "no journal for nosuch in "+dir) {
+			t.Errorf("%s of a robot without a journal: exit %d, want %d\n%s", args[0], code, exitNotFound, errs)
+		}
+	}
+}

@@ -37,7 +37,7 @@ stream (it stopped), feed names the first line without a verdict and exits
 3. Either way it names its session too: fed again with -session and that
 id, each sample keeps the client sequence it had (its place among the
 file's samples), and one the service took already is answered with its
-first verdict instead of taken twice.`)
+first verdict instead of taken twice; the summary says how many were.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
@@ -98,14 +98,23 @@ first verdict instead of taken twice.`)
 	sessCtx, stop := sessionContext(ctx)
 	defer stop()
 	var opts []client.IngestOption
+	var takenBefore uint64
 	if *session != "" {
 		opts = append(opts, client.Resume(*session, 0))
+		// The samples the robot answers with a sequence up to its input
+		// count now were taken by an earlier feed on the session.
+		r, err := c.GetRobot(ctx, name)
+		if err != nil {
+			return err
+		}
+		takenBefore = r.GetInputCount()
 	}
 	sess, err := c.OpenIngest(sessCtx, name, opts...)
 	if err != nil {
 		return err
 	}
 	t := newTally(label, sess.ID())
+	t.takenBefore = takenBefore
 	done := make(chan error, 1)
 	go func() { done <- t.collect(sess) }()
 	fd := feeder{sess: sess, t: t, label: label, pace: pacer{pace: *pace}, from: *fromLine, wait: *wait, std: std,
@@ -119,7 +128,7 @@ first verdict instead of taken twice.`)
 	}
 	recvErr := <-done
 	interrupted := ctx.Err() != nil
-	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart()+t.earlierPart())
+	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart()+t.againPart()+t.earlierPart())
 	for _, r := range t.reasons {
 		fmt.Fprintln(std.out, "  "+r)
 	}
@@ -418,6 +427,11 @@ type tally struct {
 	// session left held whose resolutions came to this one; they are none
 	// of this feed's samples (like counts, collect's alone).
 	earlier map[pb.Verdict]int
+	// takenBefore is the robot's input count when a feed continuing a
+	// session (-session) began; again counts the samples answered with a
+	// sequence up to it, taken by an earlier feed (collect's alone).
+	takenBefore uint64
+	again       int
 }
 
 // retry is a sample the service did not take.
@@ -577,6 +591,16 @@ func (t *tally) earlierPart() string {
 	return fmt.Sprintf("; and %d held by an earlier feed on the session decided: %s", n, verdictLine(t.earlier))
 }
 
+// againPart is the summary's count of the samples that an earlier feed on
+// the session sent and the robot took, when any: they were answered with
+// their first verdicts, which the counts hold, and not applied again.
+func (t *tally) againPart() string {
+	if t.again == 0 {
+		return ""
+	}
+	return fmt.Sprintf("; %d of them taken by an earlier feed on the session, answered with their first verdicts and not applied again", t.again)
+}
+
 // notTakenPart is the summary's count of samples not taken, when any.
 func (t *tally) notTakenPart() string {
 	if n := t.notTakenCount(); n > 0 {
@@ -635,6 +659,9 @@ func (t *tally) collect(sess *client.Session) error {
 		if !client.OnlyResolutions(resp) {
 			if line, ok := t.answered(resp); ok {
 				t.counts[resp.GetVerdict()]++
+				if seq := resp.GetSequence(); seq > 0 && seq <= t.takenBefore {
+					t.again++
+				}
 				t.reason(line, resp.GetVerdict(), resp.GetReason())
 			}
 		}

@@ -175,3 +175,32 @@ func TestFeedCreateChecksFileFirst(t *testing.T) {
 			after.GetInputCount(), before.GetInputCount(), after.GetConfig().GetGateProbability(), err)
 	}
 }
+
+// TestFeedSessionTakenBefore: a feed continuing a session (-session) over
+// samples an earlier feed on it sent says how many the robot had taken
+// already, answered with their first verdicts and not applied again.
+// Before, the summary counted them among this feed's verdicts alone
+// ("applied 851" for 834 new samples), as if they were applied twice.
+func TestFeedSessionTakenBefore(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	ctx := context.Background()
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	first := filepath.Join(t.TempDir(), "first.jsonl")
+	if err := os.WriteFile(first, []byte(strings.Join(strings.SplitAfter(string(b), "\n")[:20], "")), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-session", "cart-s1", first)
+	if code != exitOK || !strings.HasPrefix(out, "17 samples sent") || strings.Contains(out, "earlier feed") {
+		t.Fatalf("first feed: exit %d\n%s%s", code, out, errs)
+	}
+	out, errs, code = runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-session", "cart-s1", exampleSamples)
+	if code != exitOK || !strings.Contains(out, "; 17 of them taken by an earlier feed on the session, answered with their first verdicts and not applied again") {
+		t.Errorf("second feed: exit %d\n%s%s", code, out, errs)
+	}
+	if r, err := dialService(t, addr).GetRobot(ctx, "robots/cart"); err != nil || r.GetInputCount() != 851 {
+		t.Errorf("the robot took %d inputs (%v), want the file's 851 once", r.GetInputCount(), err)
+	}
+}

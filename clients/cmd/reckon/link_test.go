@@ -456,3 +456,33 @@ func TestLinkTokenRefused(t *testing.T) {
 		t.Errorf("the stream was opened again %d times:\n%s", n, l.errb.String())
 	}
 }
+
+// TestLinkOpensItsPortFirst: the link opens its serial port (or UDP
+// socket) before it creates the robot. A mistyped port exits 1 naming it
+// and creates no robot, and with -replace the robot that existed keeps its
+// configuration. Before, the robot was created (or replaced, its journal
+// set aside) first and left behind when the port failed to open.
+func TestLinkOpensItsPortFirst(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	ctx := context.Background()
+	c := dialService(t, addr)
+	const tty = "/nonexistent/ttyACM9"
+	link := func(args ...string) {
+		t.Helper()
+		_, errs, code := runCode(t, ctx, "", append([]string{"link", "-addr", addr, "-robot", "cart", "-serial", tty, "-create", exampleConfig}, args...)...)
+		if code != exitFailure || !strings.Contains(errs, tty) {
+			t.Errorf("link %v on a missing port: exit %d, want %d naming it\n%s", args, code, exitFailure, errs)
+		}
+	}
+	link()
+	if r, err := c.GetRobot(ctx, "robots/cart"); status.Code(err) != codes.NotFound {
+		t.Fatalf("robot after the link failed to open its port: %v %v", r, err)
+	}
+	if _, errs, code := runCode(t, ctx, "", "create", "cart", "-addr", addr, "-config", otherConfig(t)); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	link("-replace")
+	if r, err := c.GetRobot(ctx, "robots/cart"); err != nil || r.GetConfig().GetGateProbability() != 0.9 {
+		t.Errorf("the robot after link -replace failed to open its port: %v %v", r.GetConfig(), err)
+	}
+}

@@ -16,6 +16,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -630,6 +631,12 @@ type recorder struct {
 	startStats, endStats fusion.Stats
 	ended                bool
 	endNewestNs          int64
+	// With a stretch (fromNs, toNs), stretch adds up what each input of
+	// the run stamped inside it added to the sensors' records (a held
+	// fix's verdict counts with the input that resolved it); prevStats
+	// are the statistics after the run's input before.
+	stretch   []fusion.SensorStats
+	prevStats fusion.Stats
 }
 
 // add takes the steps that became final with the input just taken (all of
@@ -683,8 +690,17 @@ func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
 	if rc.ended {
 		end, newest = rc.endStats, rc.endNewestNs
 	}
+	if rc.fromNs > 0 || rc.toNs > 0 {
+		return newest, rc.stretch
+	}
+	return newest, sensorDelta(end, rc.startStats)
+}
+
+// sensorDelta returns the sensors' records in end less those in start,
+// leaving out the sensors without a verdict between them.
+func sensorDelta(end, start fusion.Stats) []fusion.SensorStats {
 	before := map[string]fusion.SensorStats{}
-	for _, s := range rc.startStats.Sensors {
+	for _, s := range start.Sensors {
 		before[s.ID] = s
 	}
 	var out []fusion.SensorStats
@@ -697,7 +713,24 @@ func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
 			out = append(out, s)
 		}
 	}
-	return newest, out
+	return out
+}
+
+// addSensors adds the records d to sum, sensor by sensor, in the order
+// the sensors first appear.
+func addSensors(sum, d []fusion.SensorStats) []fusion.SensorStats {
+	for _, s := range d {
+		i := slices.IndexFunc(sum, func(x fusion.SensorStats) bool { return x.ID == s.ID })
+		if i < 0 {
+			sum = append(sum, s)
+			continue
+		}
+		c, e := &sum[i].VerdictCounts, &s.VerdictCounts
+		c.Applied, c.Held, c.Gated, c.TooOld, c.Invalid = c.Applied+e.Applied, c.Held+e.Held, c.Gated+e.Gated, c.TooOld+e.TooOld, c.Invalid+e.Invalid
+		sum[i].NISSum += s.NISSum
+		sum[i].DOFSum += s.DOFSum
+	}
+	return sum
 }
 
 // runs notes which run was reviewed of how many, and refuses a run the
@@ -796,6 +829,16 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 		if rc.toNs > 0 {
 			rc.a.toNs = start + rc.toNs
 		}
+	}
+	if rc.fromNs > 0 || rc.toNs > 0 {
+		if rc.seen == 0 {
+			rc.prevStats = rc.startStats
+		}
+		cur := fr.Stats()
+		if rc.a.in(convert.SampleStamp(s)) {
+			rc.stretch = addSensors(rc.stretch, sensorDelta(cur, rc.prevStats))
+		}
+		rc.prevStats = cur
 	}
 	rc.seen++
 	rc.a.input(s, resp)

@@ -503,6 +503,32 @@ func TestTimeSpanPastTheEnd(t *testing.T) {
 	}
 }
 
+// TestReviewStretchNIS: the NIS record of a sensor in the review of a
+// stretch (-from 5 -to 6) is the stretch's: its applied count is the
+// stretch's applied fixes (all of them the camera's). Before, it was the
+// whole run's (94 applied against the stretch's 9), and so was the
+// consistency verdict it gave.
+func TestReviewStretchNIS(t *testing.T) {
+	out, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", exampleSamples, "-from", "5", "-to", "6", "-out", filepath.Join(t.TempDir(), "review"))
+	if code != exitOK {
+		t.Fatalf("review: exit %d\n%s", code, errs)
+	}
+	var fixes, nis int
+	for _, line := range strings.Split(out, "\n") {
+		line = strings.TrimSpace(line)
+		if v, ok := strings.CutPrefix(line, "fixes:"); ok {
+			fmt.Sscanf(strings.TrimSpace(v), "applied %d", &fixes)
+		}
+		if _, v, ok := strings.Cut(line, "NIS of camera:"); ok {
+			_, after, _ := strings.Cut(v, " over ")
+			fmt.Sscanf(after, "%d applied", &nis)
+		}
+	}
+	if fixes == 0 || nis != fixes {
+		t.Errorf("the stretch applied %d fixes; the camera's NIS line counts %d\n%s", fixes, nis, out)
+	}
+}
+
 // TestReviewOfUnreadableSamples: a samples file with no sample that can
 // be read (not JSON Lines at all, or empty) is refused naming the file
 // and line, exit 5, as replay refuses it; review wrote a report of 0

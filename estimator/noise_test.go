@@ -90,3 +90,41 @@ func TestSandwichAndMahalanobisMatchGonum(t *testing.T) {
 		t.Errorf("indefinite covariance: %v", err)
 	}
 }
+
+// TestSandwichWrittenOut: Sandwich, written out, gives the bits of the
+// loops it replaced (the products and sums in the same order), so that
+// journals written before it replay to the same outputs. The loops are
+// kept here as the reference; NaN and infinities are among the inputs.
+func TestSandwichWrittenOut(t *testing.T) {
+	loops := func(dst, j, r *[9]float64) {
+		var jr [9]float64
+		for i := 0; i < 3; i++ {
+			for k := 0; k < 3; k++ {
+				jr[i*3+k] = j[i*3+0]*r[0*3+k] + j[i*3+1]*r[1*3+k] + j[i*3+2]*r[2*3+k]
+			}
+		}
+		for i := 0; i < 3; i++ {
+			for k := 0; k < 3; k++ {
+				dst[i*3+k] = jr[i*3+0]*j[k*3+0] + jr[i*3+1]*j[k*3+1] + jr[i*3+2]*j[k*3+2]
+			}
+		}
+	}
+	rng := rand.New(rand.NewPCG(22, 1))
+	special := []float64{0, math.Copysign(0, -1), 1e-310, -1e300, math.Inf(1), math.NaN()}
+	for n := 0; n < 20000; n++ {
+		var j, r, got, want [9]float64
+		for i := range j {
+			j[i], r[i] = rng.NormFloat64()*math.Exp(rng.NormFloat64()*5), rng.NormFloat64()*math.Exp(rng.NormFloat64()*5)
+			if n%50 == 0 && rng.IntN(9) == 0 {
+				j[i] = special[rng.IntN(len(special))]
+			}
+		}
+		Sandwich(&got, &j, &r)
+		loops(&want, &j, &r)
+		for i := range got {
+			if math.Float64bits(got[i]) != math.Float64bits(want[i]) && !(math.IsNaN(got[i]) && math.IsNaN(want[i])) {
+				t.Fatalf("entry %d of J R J^T for J %v, R %v: %v, the loops %v", i, j, r, got[i], want[i])
+			}
+		}
+	}
+}

@@ -73,3 +73,48 @@ func TestLandmarkBlockLayout(t *testing.T) {
 		t.Errorf("NaN survey error: %v", err)
 	}
 }
+
+// TestSnapshotKeepsMeasurementBlocks: a fix's mount and landmark error
+// states survive a snapshot, so that a late fix inserted before it after a
+// restore replays it as the robot that wrote the snapshot does. Regression:
+// snapshots before version 10 dropped the mount error states, and the
+// restored robot replayed such a fix without its sensor's mount block.
+func TestSnapshotKeepsMeasurementBlocks(t *testing.T) {
+	cfg := surveyConfig(false)
+	cfg.Sensors[0].MountStd = [3]float64{0.01, 0.01, 0.01}
+	cfg.Sensors[0].Mount.X = 0.1
+	a, err := New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(a.lmAt) == 0 || a.sensorMount[0] == 0 {
+		t.Fatalf("%d landmark blocks and mount block at %d: the test needs both", len(a.lmAt), a.sensorMount[0])
+	}
+	odo := func(r *Robot, until int64) {
+		for ts := r.NewestNs() + 10e6; ts <= until; ts += 10e6 {
+			if r.seq == 0 {
+				ts = 0
+			}
+			r.AddOdometry(Odometry{StampNs: ts, Counts: []int64{0, 0}})
+		}
+	}
+	fix := func(r *Robot, stamp int64, rg, br float64) Result {
+		return r.AddFix(Fix{StampNs: stamp, SensorID: "cam", Kind: FixLandmark, LandmarkID: "a", RangeM: &rg, BearingRad: &br})
+	}
+	odo(a, 600e6)
+	if res := fix(a, 500e6, 2.91, 0.01); res.Verdict != VerdictApplied {
+		t.Fatalf("fix: %v %v", res.Verdict, res.Err)
+	}
+	snap, err := a.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := RestoreSnapshot(cfg, snap)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ra, rb := fix(a, 300e6, 2.88, -0.01), fix(b, 300e6, 2.88, -0.01)
+	if ra.Verdict != VerdictApplied || a.Pose() != b.Pose() {
+		t.Errorf("after a late fix: %v %+v, restored %v %+v", ra.Verdict, a.Pose(), rb.Verdict, b.Pose())
+	}
+}

@@ -84,6 +84,9 @@ type Robot struct {
 	// gates.
 	slip                   slipState
 	turnGate, longTurnGate float64
+	// turnSums are the short and the long comparison's running sums
+	// (wheelSums).
+	turnSums [2]wheelSums
 	// scrub is the block sum the scrub in turns is charged on (scrub.go).
 	scrub scrubState
 }

@@ -290,6 +290,7 @@ type insertion struct {
 // more cache misses (BenchmarkRobotRates).
 func (r *Robot) insert(e *entry, ins *insertion) {
 	t := e.t1
+	r.wheelsChanged(t)
 	i := r.locate(t)
 	live := r.live()
 	if i < len(live) && live[i].kind == entOdo && live[i].t0 < t {
@@ -324,6 +325,7 @@ func (r *Robot) open(i, n int) int {
 // takeBack removes an inserted entry, merges the interval it split and
 // replays, which restores every checkpoint bit for bit.
 func (r *Robot) takeBack(ins *insertion) {
+	r.wheelsChanged(r.live()[ins.at].t1)
 	if e := &r.live()[ins.at]; e.failed {
 		r.setErr(e.seq, nil)
 	}

@@ -157,3 +157,43 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Errorf("statistics of an unknown robot: %v", err)
 	}
 }
+
+// TestReseedRPCNamesField: ReseedRobot refuses a bad re-seed with a status
+// whose message starts with the request's own field (ReseedRobotRequest
+// has no sample: the message began "bad sample: sample.reseed" before).
+func TestReseedRPCNamesField(t *testing.T) {
+	c := serveCart(t, testConfig{})
+	ctx := context.Background()
+	cases := []struct {
+		name   string
+		robot  string
+		reseed *pb.Reseed
+		code   codes.Code
+		field  string
+	}{
+		{"missing", "robots/cart", nil, codes.InvalidArgument, "reseed"},
+		{"no pose", "robots/cart", &pb.Reseed{}, codes.InvalidArgument, "reseed.pose"},
+		{"covariance size", "robots/cart", &pb.Reseed{Pose: &pb.FloorPose{}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1}}}, codes.InvalidArgument, "reseed.covariance"},
+		{"unknown robot", "robots/tractor", &pb.Reseed{Pose: &pb.FloorPose{}}, codes.NotFound, "robot"},
+	}
+	for _, tc := range cases {
+		_, err := c.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: tc.robot, Reseed: tc.reseed})
+		if st := status.Convert(err); st.Code() != tc.code || !strings.HasPrefix(st.Message(), tc.field+":") {
+			t.Errorf("%s: %v, want %v starting with %s", tc.name, err, tc.code, tc.field)
+		}
+	}
+}
+
+// TestPoseAtWithoutOdometry: GetPoseAt of a robot that has taken no
+// odometry is OUT_OF_RANGE saying so, at any stamp; before, the message
+// said the stamp was "before the history window", also for a stamp after
+// every input (a client asking for "now").
+func TestPoseAtWithoutOdometry(t *testing.T) {
+	c := serveCart(t, testConfig{})
+	for _, stamp := range []int64{-1, 0, 1e9} {
+		_, err := c.GetPoseAt(context.Background(), &pb.GetPoseAtRequest{Robot: "robots/cart", StampNs: stamp})
+		if st := status.Convert(err); st.Code() != codes.OutOfRange || !strings.Contains(st.Message(), "no odometry") || strings.Contains(st.Message(), "before the history window") {
+			t.Errorf("GetPoseAt(%d) without odometry: %v, want OUT_OF_RANGE saying the robot has no odometry", stamp, err)
+		}
+	}
+}

@@ -235,3 +235,38 @@ func samples(sc fusiontest.Scenario) ([]*pb.Sample, []fusiontest.Input, *pb.Robo
 }
 
 func wireConfig(c fusion.Config) *pb.RobotConfig { return convert.ConfigToProto(c) }
+
+// createCart creates robots/cart, the simulated cart of cartRun(seed, 1),
+// and returns that run's samples.
+func createCart(t testing.TB, api pb.FusionServiceClient, seed uint64) []*pb.Sample {
+	t.Helper()
+	samp, cfg := cartRun(seed, 1)
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	return samp
+}
+
+// serveCart starts a service for the rest of the test, connects to it and
+// creates robots/cart in it (createCart with seed 3).
+func serveCart(t testing.TB, tc testConfig) pb.FusionServiceClient {
+	t.Helper()
+	srv := start(t, tc)
+	t.Cleanup(srv.stop)
+	api := dial(t, srv.addr)
+	createCart(t, api, 3)
+	return api
+}
+
+// openWatch opens a watch of robot and receives its first pose.
+func openWatch(t testing.TB, ctx context.Context, api pb.FusionServiceClient, robot string) pb.FusionService_WatchClient {
+	t.Helper()
+	w, err := api.Watch(ctx, &pb.WatchRequest{Robot: robot})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := w.Recv(); err != nil {
+		t.Fatalf("first pose: %v", err)
+	}
+	return w
+}

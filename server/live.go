@@ -54,7 +54,8 @@ type LiveUpdate struct {
 
 // Live is one live view's mailbox: the newest state of every robot and
 // what happened since the last Take, fed where the Watch streams are fed
-// (after a batch's journal write, outside the robot's lock). Publishing
+// (after a batch's journal write, under the robot's lock, so in the
+// robot's order). Publishing
 // overwrites the pose and bounds the events and fixes, so a view that
 // does not read conflates and never slows ingest; it holds at most one
 // LiveUpdate per robot. Its methods are safe for concurrent use.

@@ -231,7 +231,7 @@ func TestUnreadableSnapshotSkipped(t *testing.T) {
 	take(s, requests("robots/cart", "", 1, samp[:250]))
 	s.Close()
 	_, scan, _ := journal.Replay(dir, "cart", journal.ReplayOptions{})
-	w, err := journal.Resume(dir, "cart", scan.Segment, scan.Good, journal.Options{})
+	w, err := journal.Resume(dir, "cart", &scan, journal.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -34,7 +34,10 @@ type RestoreReport struct {
 
 // Restore brings back every robot with a journal in the journal directory:
 // it replays each journal from its last snapshot, drops a torn or corrupt
-// tail (reporting it), and resumes appending. A robot whose journal cannot
+// tail (reporting it), and resumes appending. It reads each journal from
+// the last snapshot its manifest records; the sealed segments before are
+// checked only by their sizes against the manifest, and VerifyHistories
+// reads them once the service serves. A robot whose journal cannot
 // be restored is kept quarantined and the others serve; the error is only
 // for a journal directory that cannot be listed.
 func (s *Server) Restore() ([]RestoreReport, error) {
@@ -80,11 +83,14 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 		return quarantined(err)
 	}
 	rep.Torn = s.noteDamage(name, rp.scan)
-	w, err := journal.Resume(s.opt.JournalDir, id, rp.scan.Segment, rp.scan.Good, s.journalOptions())
+	w, err := journal.Resume(s.opt.JournalDir, id, &rp.scan, s.journalOptions())
 	if err != nil {
 		return quarantined(err)
 	}
 	r.fr, r.journal, r.sessions, r.sinceSnapshot, r.holders = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.scan.Replayed, rp.holders
+	if rp.scan.FromSegment > 0 || rp.scan.FromOffset > 0 {
+		r.unread, r.historySnap = rp.scan.FromSegment+1, rp.scan.SnapshotSequence
+	}
 	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
 	r.detail, rep.Detail = rp.note, rp.note
 	if rp.differing > 0 {
@@ -99,6 +105,83 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 	s.observeRobot(r, nil, -1)
 	r.mu.Unlock()
 	return r, rep
+}
+
+// VerifyHistories reads, in a goroutine of its own, the part of each
+// serving robot's journal that Restore did not read: the sealed segments
+// before the snapshot it started from, which it checked only against the
+// manifest (journal.Verify; they are never written again). It returns a
+// channel closed when the pass ends; Close stops it. Call it once the
+// service serves, after Restore. The robots are read one after another.
+//
+// Damage found there (a bad CRC-32C, a missing or cut record, a segment
+// that differs from its record in the manifest) is logged with its file
+// and offset and noted in the robot's state_detail; the robot goes on
+// serving. Its state came from a snapshot and the inputs after it, which
+// restore read and checked whole, so what it serves is what was
+// acknowledged; quarantine would stop a working robot for the sake of a
+// record it no longer depends on. The damaged bytes are left where they
+// are (the segment is sealed), and the offline tools name the gap. A
+// later restore that has to replay from the start (a snapshot of another
+// version) reads that history and quarantines the robot if inputs are
+// missing, as before.
+func (s *Server) VerifyHistories() <-chan struct{} {
+	done := make(chan struct{})
+	var todo []*robot
+	for _, r := range s.list() {
+		r.mu.Lock()
+		if r.unread > 0 && r.state != pb.RobotState_ROBOT_STATE_QUARANTINED {
+			todo = append(todo, r)
+		}
+		r.mu.Unlock()
+	}
+	s.verifying.Add(1)
+	go func() {
+		defer s.verifying.Done()
+		defer close(done)
+		for _, r := range todo {
+			if s.verifyCtx.Err() != nil {
+				return
+			}
+			s.verifyHistory(r)
+		}
+	}()
+	return done
+}
+
+// verifyHistory reads what restore did not read of r's journal and
+// reports any damage in it (VerifyHistories).
+func (s *Server) verifyHistory(r *robot) {
+	sc, err := journal.Verify(s.verifyCtx, s.opt.FS, s.opt.JournalDir, r.id, r.unread-1)
+	if s.verifyCtx.Err() != nil {
+		return
+	}
+	var problems []string
+	for _, d := range sc.Damage {
+		problems = append(problems, d.Error())
+	}
+	if err != nil {
+		problems = append(problems, err.Error())
+	}
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	if r.deleted {
+		return // its journal was set aside, perhaps while it was read
+	}
+	if len(problems) == 0 {
+		s.log.Info("journal history verified", "robot", r.name, "segments", r.unread)
+		return
+	}
+	for _, p := range problems {
+		s.log.Warn("journal history damaged; the robot serves from its snapshot", "robot", r.name, "snapshot_input", r.historySnap, "damage", p)
+	}
+	note := fmt.Sprintf("journal history damaged before the snapshot at input %d that the robot was restored from (its state and the inputs since are intact): %s", r.historySnap, problems[0])
+	if len(problems) > 1 {
+		note += fmt.Sprintf(" (and %d more, in the log)", len(problems)-1)
+	}
+	if r.state == pb.RobotState_ROBOT_STATE_SERVING {
+		r.detail = strings.TrimPrefix(r.detail+"; "+note, "; ")
+	}
 }
 
 // problem names a restore problem and the journal it is in.

@@ -193,16 +193,18 @@ func TestStartRunRPC(t *testing.T) {
 		field string
 	}{
 		{"missing", nil, codes.InvalidArgument, "run_start"},
-		{"empty boot id", &pb.RunStart{}, codes.InvalidArgument, "sample.run_start.boot_id"},
-		{"boot id too long", &pb.RunStart{BootId: strings.Repeat("b", 129)}, codes.InvalidArgument, "sample.run_start.boot_id"},
-		{"run backwards", &pb.RunStart{BootId: "x", Run: 1}, codes.FailedPrecondition, "sample.run_start.run"},
-		{"same boot", &pb.RunStart{BootId: "by-hand"}, codes.FailedPrecondition, "sample.run_start.boot_id"},
-		{"covariance without pose", &pb.RunStart{BootId: "x", Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}}, codes.InvalidArgument, "sample.run_start.pose"},
+		{"empty boot id", &pb.RunStart{}, codes.InvalidArgument, "run_start.boot_id"},
+		{"boot id too long", &pb.RunStart{BootId: strings.Repeat("b", 129)}, codes.InvalidArgument, "run_start.boot_id"},
+		{"run backwards", &pb.RunStart{BootId: "x", Run: 1}, codes.FailedPrecondition, "run_start.run"},
+		{"same boot", &pb.RunStart{BootId: "by-hand"}, codes.FailedPrecondition, "run_start.boot_id"},
+		{"covariance without pose", &pb.RunStart{BootId: "x", Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}}, codes.InvalidArgument, "run_start.pose"},
 	}
 	for _, tc := range cases {
 		_, err := c.StartRun(ctx, &pb.StartRunRequest{Robot: "robots/cart", RunStart: tc.rs})
-		if st := status.Convert(err); st.Code() != tc.code || !strings.Contains(st.Message(), tc.field) {
-			t.Errorf("%s: %v, want %v naming %s", tc.name, err, tc.code, tc.field)
+		// The request's own field first: StartRunRequest has no sample
+		// (the message began "bad sample: sample.run_start" before).
+		if st := status.Convert(err); st.Code() != tc.code || !strings.HasPrefix(st.Message(), tc.field+":") {
+			t.Errorf("%s: %v, want %v starting with %s", tc.name, err, tc.code, tc.field)
 		}
 	}
 	got, err := c.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})

@@ -30,6 +30,7 @@ import (
 	"log/slog"
 	"maps"
 	"sort"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -79,6 +80,9 @@ type Options struct {
 
 	// wrapJournal, if set (tests), wraps every journal writer.
 	wrapJournal func(journalWriter) journalWriter
+	// afterRun, if set (tests), is called after a run of samples released
+	// its robot's lock.
+	afterRun func()
 }
 
 // Server implements pb.FusionServiceServer.
@@ -118,6 +122,11 @@ type Server struct {
 	// prefaultNoted is set once a journal's pages could not be readied
 	// (prefault).
 	prefaultNoted atomic.Bool
+	// verifying counts the passes of VerifyHistories running, which the
+	// end of verifyCtx (stopVerify, by Close) stops.
+	verifying  sync.WaitGroup
+	verifyCtx  context.Context
+	stopVerify context.CancelFunc
 }
 
 // robot is one robot and everything attached to it.
@@ -133,7 +142,12 @@ type robot struct {
 	detail        string // why paused or quarantined; or a note from restore
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
-	sessions      sessions
+	// unread counts the journal's segments that restore did not read
+	// whole (from segment 0), which VerifyHistories reads, and
+	// historySnap is the sequence of the snapshot restore started from.
+	unread      int
+	historySnap uint64
+	sessions    sessions
 	// holders are the senders of the inputs held now, by sequence;
 	// parked, the resolutions kept for sessions whose stream is gone
 	// (resolutions.go).
@@ -184,6 +198,7 @@ func New(opt Options) (*Server, error) {
 		}
 	}
 	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
+	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
 		// each journal syncs by itself as elsewhere.
@@ -312,6 +327,8 @@ var errStopping = status.Error(codes.Unavailable, "the service is stopping: ever
 func (s *Server) Close() error {
 	close(s.stopSync)
 	<-s.syncDone
+	s.stopVerify()
+	s.verifying.Wait()
 	var errs []error
 	if s.whole != nil {
 		errs = append(errs, s.whole.Close())
@@ -983,8 +1000,8 @@ type taking struct {
 }
 
 // ingestRun takes a run of samples for one robot: under its lock, the
-// samples, one journal write and the routing of resolutions to their
-// senders; then the watchers and the metrics.
+// samples, one journal write, the routing of resolutions to their senders
+// and the pose for the watchers; then the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *outbox, sc *scratch) {
 	start := run[0].arrived // ingestStream set it
 	r, err := s.lookup(run[0].GetRobot())
@@ -1020,26 +1037,40 @@ func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *out
 	}
 	if pose != nil {
 		s.observeRobot(r, pose, lag)
+		s.publish(r, pose, run, out, tk.entries[:written])
 	}
-	state := r.state
 	r.mu.Unlock()
+	if s.opt.afterRun != nil {
+		s.opt.afterRun()
+	}
 	if pose == nil {
 		sc.entries = tk.entries[:0]
 		return
 	}
-	var events []*pb.FusionEvent
-	for _, k := range tk.entries[:written] {
-		events = append(events, out[k].Events...)
-	}
-	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
-	s.live.publish(func() LiveUpdate {
-		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, tk.entries[:written])}
-	})
 	d := time.Since(start)
 	for _, k := range tk.entries[:written] {
 		s.opt.Metrics.verdict(out[k].Verdict, d)
 	}
 	sc.entries = tk.entries[:0]
+}
+
+// publish hands the watchers and the live views the robot's pose after a
+// run and the events of its entries. The caller holds r.mu, so that they
+// get the robot's poses in the order the robot made them: published after
+// the unlock, a run that took the lock first could publish after a later
+// one, and its older pose would replace the newest in every mailbox (and
+// a run's pose could follow the robot's deletion and show it again in the
+// live views). A publish never blocks: it only fills mailboxes.
+func (s *Server) publish(r *robot, pose *pb.FusedPose, run []*arrivedRequest, out []encodedResponse, entries []int) {
+	var events []*pb.FusionEvent
+	for _, k := range entries {
+		events = append(events, out[k].Events...)
+	}
+	r.hub.publish(pose, events, s.opt.MaxWatchEvents)
+	state := r.state
+	s.live.publish(func() LiveUpdate {
+		return LiveUpdate{Robot: r.name, State: state, Pose: pose, Events: events, Fixes: liveFixes(run, out, entries)}
+	})
 }
 
 // unapply answers the samples taken but not journaled UNAVAILABLE, not
@@ -1224,6 +1255,9 @@ func (s *Server) quarantine(r *robot, detail string) {
 	}
 	r.state, r.detail = pb.RobotState_ROBOT_STATE_QUARANTINED, detail
 	s.log.Error("robot quarantined", "robot", r.name, "problem", detail)
+	// Its watches end naming the problem, as a new watch is refused:
+	// otherwise they would wait for poses that no longer come.
+	r.hub.close()
 }
 
 // rebuild makes the robot's memory equal its journal again after inputs it
@@ -1278,6 +1312,11 @@ func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.G
 	}
 	p, err := r.fr.PoseAt(req.GetStampNs())
 	if err != nil {
+		if r.fr.Pose().Distrust&fusion.TrustNoOdometry != 0 {
+			// fusion says "stamped before the history window", which
+			// misleads for a stamp after every input: there is no window.
+			return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %s has taken no odometry yet, so it has a pose at no stamp", r.name)
+		}
 		return nil, status.Errorf(codes.OutOfRange, "stamp_ns: %v", err)
 	}
 	return &pb.GetPoseAtResponse{Pose: convert.PoseToProto(r.name, p, r.fr.Sequence())}, nil
@@ -1290,9 +1329,19 @@ func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: req.GetReseed()}})
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
-		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+		return nil, callRefused(resp)
 	}
 	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+}
+
+// callRefused is the status of a call (ReseedRobot, StartRun) whose input
+// the robot refused before taking it. The reason names the field as in a
+// sample ("bad sample: sample.reseed.pose: missing"); the call's request
+// has no sample, so the status names the request's own field
+// ("reseed.pose: missing").
+func callRefused(resp *pb.IngestResponse) error {
+	reason := strings.TrimPrefix(resp.Reason, convert.ErrSample.Error()+": ")
+	return status.Error(codes.Code(resp.StatusCode), strings.TrimPrefix(reason, "sample."))
 }
 
 // StartRun starts a new run of a robot by hand (DEVELOPERS.md, "Design:
@@ -1304,7 +1353,7 @@ func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.Sta
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
-		return nil, status.Error(codes.Code(resp.StatusCode), resp.Reason)
+		return nil, callRefused(resp)
 	}
 	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
 	for _, e := range resp.Events {

@@ -114,29 +114,26 @@ func (h *hub) close() {
 }
 
 // watchEnded is how a watch of r ends when the service ends it: NOT_FOUND
-// when r was deleted, so that a client tells it from the service stopping
+// when r was deleted and FAILED_PRECONDITION, naming the problem, when it
+// was quarantined, so that a client tells them from the service stopping
 // (OK), after which it may connect again.
 func watchEnded(r *robot) error {
 	r.mu.Lock()
-	deleted := r.deleted
-	r.mu.Unlock()
-	if deleted {
+	defer r.mu.Unlock()
+	if r.deleted {
 		return status.Errorf(codes.NotFound, "robot: %s was deleted", r.name)
 	}
-	return nil
+	return r.usable()
 }
 
 // Watch streams a robot's poses, conflated for slow readers and rate
 // limited by min_interval_ns. It ends with NOT_FOUND when the robot is
-// deleted.
+// deleted and with FAILED_PRECONDITION when it is quarantined.
 func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer) error {
-	r, err := s.lookup(req.GetRobot())
-	if err != nil {
-		return err
+	if n := req.GetMinIntervalNs(); n < 0 {
+		return status.Errorf(codes.InvalidArgument, "min_interval_ns: %d is negative", n)
 	}
-	r.mu.Lock()
-	err = r.usable()
-	r.mu.Unlock()
+	r, err := s.lookup(req.GetRobot())
 	if err != nil {
 		return err
 	}
@@ -146,21 +143,24 @@ func (s *Server) Watch(req *pb.WatchRequest, stream pb.FusionService_WatchServer
 		return status.Errorf(codes.ResourceExhausted, "watch: the service already has %d open watches, the limit (-max-watchers)", lim.MaxWatchers)
 	}
 	defer s.watching.Add(-1)
-	w, done, ok := r.hub.add(lim.MaxWatchersPerRobot)
-	if !ok {
-		return status.Errorf(codes.ResourceExhausted, "watch: %s already has %d open watches, the limit (-max-watchers-per-robot)", r.name, lim.MaxWatchersPerRobot)
-	}
-	defer r.hub.remove(w)
-	s.opt.Metrics.watchers(1)
-	defer s.opt.Metrics.watchers(-1)
-	// Start with the current estimate.
+	// Start with the current estimate, taken under the robot's lock with
+	// the watcher's entry, so that the watcher gets every later pose and
+	// none before it (ingestRun publishes under the lock).
 	r.mu.Lock()
 	if err := r.usable(); err != nil {
 		r.mu.Unlock()
 		return err
 	}
+	w, done, ok := r.hub.add(lim.MaxWatchersPerRobot)
+	if !ok {
+		r.mu.Unlock()
+		return status.Errorf(codes.ResourceExhausted, "watch: %s already has %d open watches, the limit (-max-watchers-per-robot)", r.name, lim.MaxWatchersPerRobot)
+	}
 	first := &pb.WatchResponse{Pose: poseNow(r)}
 	r.mu.Unlock()
+	defer r.hub.remove(w)
+	s.opt.Metrics.watchers(1)
+	defer s.opt.Metrics.watchers(-1)
 	if err := stream.Send(first); err != nil {
 		return err
 	}

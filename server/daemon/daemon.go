@@ -161,6 +161,9 @@ func Serve(ctx context.Context, dc Config) error {
 	if dc.Ready != nil {
 		dc.Ready(lis.Addr().String(), metricsAddr)
 	}
+	// The journal history that restore did not read is read while the
+	// robots serve; Close stops it.
+	srv.VerifyHistories()
 	err = wait(ctx, &dc, serveErr, gs, hs, srv)
 	for _, h := range []*http.Server{hsrv, vsrv} {
 		if h != nil {

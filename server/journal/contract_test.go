@@ -294,20 +294,8 @@ func TestCreateFullDiskLeavesNothing(t *testing.T) {
 // holding only its header, twelve pairs and a snapshot at the sixth. It has
 // no rewrite flag on purpose: it must stay as the older build wrote it.
 func TestGoldenFormatV1(t *testing.T) {
-	tmp := t.TempDir()
-	names, _ := filepath.Glob("testdata/v1/*")
-	for _, n := range names {
-		b, _ := os.ReadFile(n)
-		os.WriteFile(filepath.Join(tmp, filepath.Base(n)), b, 0o644)
-	}
-	var seqs []uint64
-	var snap uint64
-	sc, err := journal.Read(tmp, "cart", journal.Visitor{
-		Snapshot: func(s *pb.JournalSnapshot) error { snap = s.GetSequence(); return nil },
-		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
-			seqs = append(seqs, in.GetSequence())
-			return nil
-		}})
+	tmp, names := copyGolden(t)
+	sc, snap, seqs, err := readFromSnapshot(nil, tmp)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -315,7 +303,7 @@ func TestGoldenFormatV1(t *testing.T) {
 		t.Fatalf("scan %+v, snapshot %d, pairs after it %v", sc, snap, seqs)
 	}
 	// Resuming the older journal writes its manifest; the records stay.
-	w, err := journal.Resume(tmp, "cart", sc.Segment, sc.Good, journal.Options{})
+	w, err := journal.Resume(tmp, "cart", &sc, journal.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -341,21 +329,7 @@ func TestGoldenFormatV1(t *testing.T) {
 // 1 KiB segments, and returns the segment paths.
 func writeCart(t *testing.T, d string, n int) []string {
 	t.Helper()
-	w, err := journal.Create(d, "cart", opening, journal.Options{SegmentBytes: 1024})
-	if err != nil {
-		t.Fatal(err)
-	}
-	for seq := uint64(1); seq <= uint64(n); seq++ {
-		addPairs(t, w, seq, seq)
-		if _, err := w.Flush(); err != nil {
-			t.Fatal(err)
-		}
-	}
-	if err := w.Close(); err != nil {
-		t.Fatal(err)
-	}
-	segs, _ := journal.Segments(d, "cart")
-	return segs
+	return writeSegmented(t, d, uint64(n), 1024, 0, nil)
 }
 
 // TestDamageKeptAndResynchronised damages a journal of 60 pairs in three
@@ -589,7 +563,7 @@ func TestDamagedManifest(t *testing.T) {
 	if err != nil || sc.Pairs != 30 {
 		t.Fatalf("read without the manifest: %d pairs, %v", sc.Pairs, err)
 	}
-	w, err := journal.Resume(d, "cart", sc.Segment, sc.Good, journal.Options{})
+	w, err := journal.Resume(d, "cart", &sc, journal.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -9,10 +9,14 @@
 // segments atomically (temporary file, fsync, rename, directory fsync),
 // appends entries with one write per Flush, reports how many of them are
 // complete when a write fails, rotates, and keeps a manifest naming the
-// newest segment. Read scans a robot's segments in order and hands what it
+// newest segment and recording each sealed one (its size, last input and
+// last snapshot). Read scans a robot's segments in order and hands what it
 // finds to a Visitor: damaged bytes are copied aside and reported
 // (DamageError), the scan resynchronises at the next valid frame, and
-// missing inputs or segments are reported (ErrGap). Replay, the one replay
+// missing inputs or segments are reported (ErrGap); given a Snapshot
+// visitor it starts at the last snapshot the manifest records and checks
+// the older segments only by their sizes, and Verify reads those later.
+// Replay, the one replay
 // of a journal (restore, reckon replay and reckon review use it), runs the
 // inputs through a new fusion robot as the service took them, decoding in
 // a goroutine of its own while the caller's goroutine replays; it can

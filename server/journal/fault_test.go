@@ -30,6 +30,10 @@ func output(seq uint64) *pb.JournalOutput {
 	return &pb.JournalOutput{Response: &pb.IngestResponse{Sequence: seq, Verdict: pb.Verdict_VERDICT_APPLIED}}
 }
 
+func snapshot(seq uint64) *pb.JournalRecord {
+	return &pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: seq, State: []byte("the robot's state")}}}
+}
+
 // outcome is what a workload was told.
 type outcome struct {
 	created bool
@@ -74,6 +78,20 @@ func workload(fsys journal.FS, syncEach bool, o *outcome) {
 		if !syncEach && batch%2 == 1 && w.Sync() == nil {
 			o.durable = o.acked
 		}
+		if batch%3 == 2 {
+			// A snapshot, as the service writes one: added and flushed on
+			// its own, so that a restart can start from it.
+			if err := w.Add(snapshot(uint64(o.acked))); err != nil {
+				panic(err)
+			}
+			if _, err := w.Flush(); err != nil {
+				o.errs = append(o.errs, err)
+				if errors.Is(err, journal.ErrBroken) {
+					w.Close()
+					return
+				}
+			}
+		}
 	}
 	if w.Close() == nil {
 		o.durable = o.acked
@@ -86,8 +104,8 @@ func workload(fsys journal.FS, syncEach bool, o *outcome) {
 func restart(t *testing.T, fsys journal.FS, min int, exact bool) int {
 	t.Helper()
 	n := check(t, fsys, min, exact)
-	sc, _ := journal.ReadFS(fsys, dir, "cart", journal.Visitor{})
-	w, err := journal.Resume(dir, "cart", sc.Segment, sc.Good, journal.Options{FS: fsys, SegmentBytes: 1024})
+	sc := checkFromSnapshot(t, fsys, n)
+	w, err := journal.Resume(dir, "cart", &sc, journal.Options{FS: fsys, SegmentBytes: 1024})
 	if err != nil {
 		t.Fatalf("resume: %v", err)
 	}
@@ -109,7 +127,44 @@ func restart(t *testing.T, fsys journal.FS, min int, exact bool) int {
 		}
 	}
 	check(t, fsys, n+3, true)
+	checkFromSnapshot(t, fsys, n+3)
 	return n
+}
+
+// checkFromSnapshot reads the journal as a restart does, from the last
+// snapshot the manifest records (or, when the manifest cannot say, the
+// whole of it), and checks that it hands over a snapshot and then the
+// pairs after it up to n, in order, once each, without an error and
+// without damage; it returns the scan, for Resume, as the service takes
+// it.
+func checkFromSnapshot(t *testing.T, fsys journal.FS, n int) journal.Scan {
+	t.Helper()
+	var snap uint64
+	var seqs []uint64
+	sc, err := journal.ReadFS(fsys, dir, "cart", journal.Visitor{
+		Snapshot: func(s *pb.JournalSnapshot) error {
+			snap, seqs = s.GetSequence(), seqs[:0]
+			return nil
+		},
+		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+			seqs = append(seqs, in.GetSequence())
+			return nil
+		}})
+	if err != nil {
+		t.Fatalf("read from the last snapshot: %v", err)
+	}
+	if len(sc.Damage) > 0 {
+		t.Errorf("read from the last snapshot: damage in a journal that only met faults and crashes: %v", sc.Damage[0])
+	}
+	for i, s := range seqs {
+		if s != snap+uint64(i)+1 {
+			t.Fatalf("read from the last snapshot (%d): pair %d has sequence %d", snap, i+1, s)
+		}
+	}
+	if int(snap)+len(seqs) != n {
+		t.Fatalf("read from the last snapshot (%d): %d pairs after it, want up to %d", snap, len(seqs), n)
+	}
+	return sc
 }
 
 // check reads the journal and checks that it holds the pairs 1 to n, in
@@ -275,4 +330,36 @@ func atEveryOperation(t *testing.T, what string, stop func(*faultfs.MemFS) *faul
 			}
 		}
 	}
+}
+
+// TestFaultWorkloadStartsFromSnapshot: the fault tests' workload leaves a
+// journal that a restart reads from its last snapshot (checkFromSnapshot
+// then checks the way a restart reads, not only the whole read): without
+// faults, the read from the snapshot reads fewer bytes than the whole read
+// (which it falls back to when the manifest cannot say where to start) and
+// hands over the snapshot after the last batch.
+func TestFaultWorkloadStartsFromSnapshot(t *testing.T) {
+	mem := faultfs.NewMem()
+	mem.MkdirAll(dir, 0o755)
+	ffs := faultfs.New(mem, nil)
+	var o outcome
+	workload(ffs, false, &o)
+	if o.acked != 36 || len(o.errs) > 0 {
+		t.Fatalf("without faults: %d acked, %v", o.acked, o.errs)
+	}
+	before := ffs.BytesRead()
+	check(t, ffs, 36, true)
+	whole := ffs.BytesRead() - before
+	var snap uint64
+	if _, err := journal.ReadFS(ffs, dir, "cart", journal.Visitor{Snapshot: func(s *pb.JournalSnapshot) error {
+		snap = s.GetSequence()
+		return nil
+	}, Pair: func(*pb.JournalInput, *pb.JournalOutput) error { return nil }}); err != nil {
+		t.Fatal(err)
+	}
+	fromSnap := ffs.BytesRead() - before - whole
+	if snap != 36 || fromSnap >= whole {
+		t.Errorf("read from snapshot %d: %d bytes, the whole read %d", snap, fromSnap, whole)
+	}
+	checkFromSnapshot(t, ffs, 36)
 }

@@ -144,7 +144,7 @@ func TestJournalTornTail(t *testing.T) {
 		t.Errorf("corrupt last record: torn %v, %d pairs", sc.Torn, len(seqs))
 	}
 	// Resuming truncates the damage and appends after the last good pair.
-	w, err := Resume(dir, "cart", sc.Segment, sc.Good, Options{})
+	w, err := Resume(dir, "cart", &sc, Options{})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -83,7 +83,7 @@ func TestCopyAppendSurvivesAKill(t *testing.T) {
 		}
 	}
 
-	r, err := Resume(dir, "cart", sc.Segment, sc.Good, opt)
+	r, err := Resume(dir, "cart", &sc, opt)
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -72,7 +72,7 @@ func TestRegressionHalfMadeSegment(t *testing.T) {
 			if err != nil || len(seqs) != c.pairs {
 				t.Fatalf("first restart: %d pairs, %v", len(seqs), err)
 			}
-			w, err := Resume(dir, "cart", sc.Segment, sc.Good, opt)
+			w, err := Resume(dir, "cart", &sc, opt)
 			if err != nil {
 				t.Fatal(err)
 			}

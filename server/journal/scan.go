@@ -2,10 +2,12 @@ package journal
 
 import (
 	"bytes"
+	"context"
 	"encoding/binary"
 	"errors"
 	"fmt"
 	"hash/crc32"
+	"io"
 	"os"
 	"path/filepath"
 	"regexp"
@@ -52,6 +54,20 @@ type Scan struct {
 	LastSequence uint64
 	// SnapshotSequence is the sequence of the snapshot used (0: none).
 	SnapshotSequence uint64
+	// FromSegment and FromOffset are where the scan began to read records
+	// (0, 0: at the start). A scan with a Snapshot visitor of a journal
+	// whose manifest records its sealed segments starts at the last
+	// snapshot the manifest records; of the journal before it, it reads
+	// only the opening record, and checks each older segment's size
+	// against the manifest. Pairs then counts the inputs before that
+	// snapshot by its sequence number. Verify reads the rest.
+	FromSegment int
+	FromOffset  int64
+	// sealed are the segments read whole before the last (what the
+	// manifest records of them, as found), and lastSeg the last one as
+	// far as it was read; Resume completes the manifest from them.
+	sealed  []sealedSegment
+	lastSeg sealedSegment
 }
 
 // Visitor receives what Read reads.
@@ -99,6 +115,12 @@ type scanState struct {
 	// decodes most of them.
 	inputs []pb.JournalInput
 	dec    inputDecoder
+	// man is the manifest (the zero value when there is none), and seg
+	// what was read of the segment being read (sealedSegment).
+	man manifest
+	seg sealedSegment
+	// ctx, if set, stops the scan between segments (Verify).
+	ctx context.Context
 }
 
 // Read reads a robot's journal in the OS file system (ReadFS).
@@ -123,6 +145,17 @@ func Read(dir, robot string, v Visitor) (Scan, error) { return ReadFS(nil, dir, 
 // tail of the last segment (Scan.Torn) is not an error: it was never
 // acknowledged. An error from v stops the scan and is returned.
 //
+// With a Snapshot visitor, when the manifest records the sealed segments
+// (from segment 0 on), the scan starts at the last snapshot recorded: it
+// checks that each recorded segment is there with the size recorded, reads
+// segment 0's opening record and the snapshot's frame (both CRC-checked),
+// and reads the rest of that segment and every later one as above
+// (Scan.FromSegment, Scan.FromOffset). The part before is read by Verify.
+// When any of that does not hold, it reads the whole journal, which reports
+// what is wrong; a sealed segment that differs from its record without
+// damage inside it (cut or grown at a frame's end) is then reported as a
+// DamageError.
+//
 // A robot named as a set-aside journal, "{robot}.deleted-{unix ns}" (Aside),
 // is read from the files SetAside renamed, read only.
 func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
@@ -132,38 +165,21 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		fsys, robot = AsideFS(fsys, suffix), id
 	}
 	st := &scanState{fs: orOS(fsys), sc: &sc, v: v}
-	segs, err := listSegments(st.fs, dir, robot)
+	segs, err := st.open(dir, robot, name)
 	if err != nil {
 		return sc, err
 	}
-	newest, manifest, err := readManifest(st.fs, dir, robot)
-	if err != nil {
-		return sc, err
-	}
-	if len(segs) == 0 {
-		if manifest {
-			return sc, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, newest)
-		}
-		return sc, fmt.Errorf("%w for %s in %s", ErrNoJournal, name, dir)
-	}
-	if segs[0].n != 0 {
-		// Only the first holds the opening record: nothing after it can
-		// be read as this robot's.
-		return sc, fmt.Errorf("%w: segment 000000 missing: the first of %s in %s is %s, and only the first holds the opening record (the robot's configuration)", ErrGap, robot, dir, segs[0].path)
-	}
-	for i, s := range segs {
-		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {
-			if err := st.noteGap(fmt.Errorf("%w: %s: segment %06d missing before it", ErrGap, s.path, want)); err != nil {
-				return sc, err
-			}
-		}
-		sc.Segment = s.n
-		if err := st.segment(s.path, s.n == 0, i == len(segs)-1); err != nil {
+	from := 0
+	if v.Snapshot != nil {
+		if from, err = st.fromManifest(segs); err != nil {
 			return sc, err
 		}
 	}
-	if manifest && newest > sc.Segment {
-		if err := st.noteGap(fmt.Errorf("%w: segment %06d missing: the manifest names it the newest, the last found is %s", ErrGap, newest, segs[len(segs)-1].path)); err != nil {
+	if err := st.segments(segs[from:], true); err != nil {
+		return sc, err
+	}
+	if st.man.newest > sc.Segment {
+		if err := st.noteGap(fmt.Errorf("%w: segment %06d missing: the manifest names it the newest, the last found is %s", ErrGap, st.man.newest, segs[len(segs)-1].path)); err != nil {
 			return sc, err
 		}
 	}
@@ -177,6 +193,173 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 		return sc, errors.Join(st.gap, st.firstDamage())
 	}
 	return sc, nil
+}
+
+// open lists a robot's segments and reads its manifest; name is the name
+// the robot was asked for.
+func (st *scanState) open(dir, robot, name string) ([]segFile, error) {
+	segs, err := listSegments(st.fs, dir, robot)
+	if err != nil {
+		return nil, err
+	}
+	man, ok, err := readManifest(st.fs, dir, robot)
+	if err != nil {
+		return nil, err
+	}
+	st.man = man
+	if len(segs) == 0 {
+		if ok {
+			return nil, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, man.newest)
+		}
+		return nil, fmt.Errorf("%w for %s in %s", ErrNoJournal, name, dir)
+	}
+	if segs[0].n != 0 {
+		// Only the first holds the opening record: nothing after it can
+		// be read as this robot's.
+		return nil, fmt.Errorf("%w: segment 000000 missing: the first of %s in %s is %s, and only the first holds the opening record (the robot's configuration)", ErrGap, robot, dir, segs[0].path)
+	}
+	return segs, nil
+}
+
+// segments scans segs in order; the last of them is the journal's last
+// when toEnd.
+func (st *scanState) segments(segs []segFile, toEnd bool) error {
+	for i, s := range segs {
+		if want := segs[max(i-1, 0)].n + min(i, 1); s.n != want {
+			if err := st.noteGap(fmt.Errorf("%w: %s: segment %06d missing before it", ErrGap, s.path, want)); err != nil {
+				return err
+			}
+		}
+		if st.ctx != nil && st.ctx.Err() != nil {
+			return st.ctx.Err()
+		}
+		st.sc.Segment = s.n
+		from := int64(0)
+		if i == 0 {
+			from = st.sc.FromOffset
+		}
+		if err := st.segment(s.path, s.n == 0, toEnd && i == len(segs)-1, from); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// fromManifest finds where a scan with a Snapshot visitor can start: at
+// the last snapshot the manifest records, when the manifest records every
+// segment before the last from segment 0 on, each of them is there with
+// the size recorded, segment 0 starts with a valid opening record and the
+// recorded snapshot is there. It then hands the visitor the opening,
+// readies the scan to go on from the snapshot and returns the index in
+// segs of its segment; else it returns 0, and the scan reads the whole
+// journal (which finds and reports what is wrong, if anything is).
+func (st *scanState) fromManifest(segs []segFile) (int, error) {
+	rec := st.man.sealed
+	k := 0
+	for k < len(rec) && k < len(segs)-1 && rec[k].n == k && segs[k].n == k {
+		k++
+	}
+	from := -1
+	for i := range k {
+		fi, err := st.fs.Stat(segs[i].path)
+		if err != nil || fi.Size() != rec[i].size {
+			return 0, nil
+		}
+		if rec[i].snapAt >= 0 {
+			from = i
+		}
+	}
+	if from < 0 {
+		return 0, nil
+	}
+	b, err := readFrame(st.fs, segs[0].path, headerSize)
+	if err != nil || b[0] != KindOpening {
+		return 0, nil
+	}
+	var orec pb.JournalRecord
+	if proto.Unmarshal(b, &orec) != nil || orec.GetOpening() == nil {
+		return 0, nil
+	}
+	snap := rec[from]
+	b, err = readFrame(st.fs, segs[from].path, snap.snapAt)
+	if err != nil || b[0] != KindSnapshot || leadingVarint(b) != snap.snapSeq {
+		return 0, nil
+	}
+	sc := st.sc
+	sc.Opening, sc.FromSegment, sc.FromOffset = orec.GetOpening(), from, snap.snapAt
+	sc.LastSequence, sc.Pairs = snap.snapSeq, int(snap.snapSeq)
+	if st.v.Opening != nil {
+		if err := st.v.Opening(sc.Opening); err != nil {
+			return 0, err
+		}
+	}
+	return from, nil
+}
+
+// readFrame reads the frame at off of the file at path and returns its
+// payload when it is whole and its CRC-32C matches: from segment 0 at
+// headerSize, also the header is checked.
+func readFrame(fsys FS, path string, off int64) ([]byte, error) {
+	f, err := fsys.OpenFile(path, os.O_RDONLY, 0)
+	if err != nil {
+		return nil, err
+	}
+	defer f.Close()
+	var fr [headerSize]byte
+	if off == headerSize {
+		if _, err := io.ReadFull(f, fr[:headerSize]); err != nil {
+			return nil, err
+		}
+		if err := checkHeader(fr[:]); err != nil {
+			return nil, err
+		}
+	} else if err := skip(f, off); err != nil {
+		return nil, err
+	}
+	if _, err := io.ReadFull(f, fr[:frameSize]); err != nil {
+		return nil, err
+	}
+	size := binary.LittleEndian.Uint32(fr[:])
+	if reason := checkLength(size); reason != "" {
+		return nil, errors.New(reason)
+	}
+	b := make([]byte, size)
+	if _, err := io.ReadFull(f, b); err != nil {
+		return nil, err
+	}
+	if crc32.Checksum(b, castagnoli) != binary.LittleEndian.Uint32(fr[4:]) {
+		return nil, errors.New("CRC-32C mismatch")
+	}
+	return b, nil
+}
+
+// Verify reads the sealed segments 0 to through of a robot's journal in
+// fsys (nil: OS), which a restore from a snapshot did not read
+// (Scan.FromSegment), and checks them as ReadFS does: every frame's
+// CRC-32C, the opening record, the continuity of segments and inputs, and
+// each segment's size and last input against what the manifest recorded
+// when it was sealed. It writes nothing: damage is reported where it is
+// (DamageError.Kept is empty), as a read-only scan does. Damage is in
+// Scan.Damage; a break of continuity is the error (wrapping ErrGap), as
+// from ReadFS. The end of ctx stops it between segments, with its error.
+func Verify(ctx context.Context, fsys FS, dir, robot string, through int) (Scan, error) {
+	var sc Scan
+	st := &scanState{fs: orOS(fsys), sc: &sc, v: Visitor{ReadOnly: true}, ctx: ctx}
+	segs, err := st.open(dir, robot, robot)
+	if err != nil {
+		return sc, err
+	}
+	n := 0
+	for n < len(segs) && segs[n].n <= through {
+		n++
+	}
+	if err := st.segments(segs[:n], false); err != nil {
+		return sc, err
+	}
+	if sc.Opening == nil {
+		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record: its first segment %s holds none", robot, segs[0].path), st.gap)
+	}
+	return sc, st.gap
 }
 
 // fromSnapshot hands a Snapshot visitor the last snapshot and the pairs
@@ -275,9 +458,9 @@ func (st *scanState) input(b []byte) (*pb.JournalInput, error) {
 // inputBlock is the number of JournalInputs allocated at once.
 const inputBlock = 128
 
-// segment scans one segment file: first is segment 0, last the last one
-// found.
-func (st *scanState) segment(path string, first, last bool) error {
+// segment scans one segment file from byte from (0: its header; else a
+// record the manifest names): first is segment 0, last the last one found.
+func (st *scanState) segment(path string, first, last bool, from int64) error {
 	var reuse []byte
 	if st.v.Snapshot == nil {
 		reuse = st.buf
@@ -286,7 +469,7 @@ func (st *scanState) segment(path string, first, last bool) error {
 	// a frame is scanned once it is whole in what was read, and anything
 	// that is not a valid frame (damage, a torn tail) only once the whole
 	// file is read, as if it had been read at once.
-	rd, err := openSegment(st.fs, path, reuse)
+	rd, err := openSegment(st.fs, path, reuse, from)
 	if err != nil {
 		return err
 	}
@@ -294,13 +477,41 @@ func (st *scanState) segment(path string, first, last bool) error {
 	b := rd.b
 	defer func() { st.buf = b }()
 	sc := st.sc
+	st.seg = sealedSegment{n: sc.Segment, snapAt: -1}
+	damaged := len(sc.Damage)
+	if err := st.frames(rd, path, first, last, from); err != nil {
+		return err
+	}
+	b = rd.b
+	st.seg.size, st.seg.last = int64(len(b))+rd.zeros, sc.LastSequence
+	if last {
+		sc.lastSeg = st.seg
+		return nil
+	}
+	sc.sealed = append(sc.sealed, st.seg)
+	// A segment that differs from its record without damage in it (cut
+	// or grown at a frame's end) is damage too; damage found in it
+	// already says what changed.
+	if r, ok := st.man.recorded(st.seg.n); ok && len(sc.Damage) == damaged && (r.size != st.seg.size || r.last != st.seg.last) {
+		st.sc.Damage = append(st.sc.Damage, &DamageError{File: path, Offset: min(r.size, st.seg.size), Length: max(r.size, st.seg.size) - min(r.size, st.seg.size),
+			Reason: fmt.Sprintf("the segment is %d bytes and ends after input %d; the manifest recorded %d bytes and input %d when it was sealed", st.seg.size, st.seg.last, r.size, r.last)})
+	}
+	return nil
+}
+
+// frames scans the frames of a segment being read by rd (segment).
+func (st *scanState) frames(rd *segmentReader, path string, first, last bool, from int64) error {
+	b := rd.b
+	sc := st.sc
 	off, reason := headerSize, ""
-	if len(b) < headerSize {
+	if from > 0 {
+		off = int(from)
+	} else if len(b) < headerSize {
 		reason = fmt.Sprintf("header cut after %d of %d bytes", len(b), headerSize)
 	} else if err := checkHeader(b); err != nil {
 		reason = err.Error()
 	}
-	if reason != "" && !rd.full {
+	if reason != "" && !rd.full && from == 0 {
 		if err := rd.rest(path, 0); err != nil {
 			return err
 		}
@@ -614,12 +825,14 @@ func (st *scanState) snapshot(path string, b []byte, end int64) error {
 	if st.pending != nil {
 		return fmt.Errorf("%s: a snapshot between an input and its output", path)
 	}
-	if seq := leadingVarint(b); seq != st.sc.LastSequence {
+	seq := leadingVarint(b)
+	if seq != st.sc.LastSequence {
 		if err := st.noteGap(fmt.Errorf("%w: %s at byte %d: a snapshot at input %d follows input %d", ErrGap, path, end, seq, st.sc.LastSequence)); err != nil {
 			return err
 		}
 	}
 	st.sc.Good = end
+	st.seg.snapAt, st.seg.snapSeq = end-frameSize-int64(len(b)), seq
 	if st.v.Snapshot != nil && !st.stopped {
 		st.snap = b
 		st.kept = st.kept[:0]

@@ -35,9 +35,11 @@ var maxSegmentRead int64 = 1 << 30
 // (a variable for the tests).
 var segmentPiece = 1 << 20
 
-// openSegment opens a segment and reads its first piece into buf (when it
-// fits in its capacity) or into a new buffer.
-func openSegment(fsys FS, name string, buf []byte) (*segmentReader, error) {
+// openSegment opens a segment and reads its first piece from byte from
+// into buf (when it fits in its capacity) or into a new buffer, at the
+// same offset as in the file: the first from bytes of the buffer are not
+// read (skip).
+func openSegment(fsys FS, name string, buf []byte, from int64) (*segmentReader, error) {
 	f, err := fsys.OpenFile(name, os.O_RDONLY, 0)
 	if err != nil {
 		return nil, err
@@ -49,6 +51,17 @@ func openSegment(fsys FS, name string, buf []byte) (*segmentReader, error) {
 	r := &segmentReader{f: f, b: buf[:0], size: size}
 	if want := min(size, maxSegmentRead) + 1; int64(cap(r.b)) < want {
 		r.b = make([]byte, 0, want) // +1: EOF seen without growing
+	}
+	if from > 0 {
+		if from > min(size, maxSegmentRead) {
+			f.Close()
+			return nil, fmt.Errorf("%s: %d bytes, the scan was to start at byte %d", name, size, from)
+		}
+		if err := skip(f, from); err != nil {
+			f.Close()
+			return nil, err
+		}
+		r.b = r.b[:from]
 	}
 	if err := r.more(segmentPiece); err != nil {
 		f.Close()
@@ -120,3 +133,16 @@ func (r *segmentReader) rest(path string, good int) error {
 var ErrSegmentTooLarge = errors.New("journal: segment file too large")
 
 func (r *segmentReader) close() error { return r.f.Close() }
+
+// skip moves f's offset n bytes on from the start: by a seek where f can
+// (the OS's files and faultfs's), else by reading n bytes.
+func skip(f File, n int64) error {
+	if s, ok := f.(io.Seeker); ok {
+		_, err := s.Seek(n, io.SeekStart)
+		if !errors.Is(err, errors.ErrUnsupported) {
+			return err
+		}
+	}
+	_, err := io.CopyN(io.Discard, f, n)
+	return err
+}

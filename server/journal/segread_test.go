@@ -122,7 +122,7 @@ func TestSegmentPastReadLimit(t *testing.T) {
 	p := filepath.Join(t.TempDir(), "big.rjl")
 	os.WriteFile(p, clean, 0o644)
 	os.Truncate(p, int64(n)+zeros)
-	rd, err := openSegment(OS, p, nil)
+	rd, err := openSegment(OS, p, nil, 0)
 	if err != nil {
 		t.Fatal(err)
 	}

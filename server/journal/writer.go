@@ -43,6 +43,23 @@ type Writer struct {
 	writes     uint64
 	// prefaulted is the segment's size at the last Prefault.
 	prefaulted int64
+	// man is the manifest as last written (or to be written again, after
+	// a failed write), and cur what it will record of the segment being
+	// written when it is sealed: its last input and last snapshot so far
+	// (marks, one per entry in buf, say what each entry adds).
+	man   manifest
+	cur   sealedSegment
+	marks []entryMark
+}
+
+// entryMark is what an entry adds to what the manifest records of its
+// segment: the sequence number of its last input with its output (0:
+// none), and the offset in the buffer of its last snapshot record (-1:
+// none) with its sequence number.
+type entryMark struct {
+	last    uint64
+	snapAt  int
+	snapSeq uint64
 }
 
 // SegmentPath returns the path of segment n of a robot's journal.
@@ -156,7 +173,8 @@ func Create(dir, robot string, opening *pb.JournalOpening, opt Options) (*Writer
 	if err != nil {
 		return nil, err
 	}
-	if err := writeManifest(w.fs, dir, robot, 0); err != nil {
+	w.cur = sealedSegment{snapAt: -1}
+	if err := writeManifest(w.fs, dir, robot, w.man); err != nil {
 		w.fs.Remove(ManifestPath(dir, robot))
 		return nil, w.unmake(path, err)
 	}
@@ -216,21 +234,33 @@ func (w *Writer) open(n int, path string, size int64) error {
 // whose header is short or invalid (the original is kept as
 // {segment}.damaged, the records Read recovered from it are kept), and
 // writes the manifest if it is missing or behind.
-func Resume(dir, robot string, seg int, good int64, opt Options) (*Writer, error) {
+//
+// The manifest also gets the records of the sealed segments (all but the
+// last) that it lacks, from what the scan read of them whole: an older
+// journal's manifest has none, and the first restart by this build reads
+// the whole journal and records them, so that the next one reads only
+// from the last snapshot on. No segment is rewritten for it.
+func Resume(dir, robot string, sc *Scan, opt Options) (*Writer, error) {
+	seg, good := sc.Segment, sc.Good
 	w := &Writer{fs: orOS(opt.FS), dir: dir, robot: robot, opt: opt}
 	if err := removeLeftovers(w.fs, dir, robot); err != nil {
 		return nil, err
 	}
-	newest, ok, err := readManifest(w.fs, dir, robot)
+	man, ok, err := readManifest(w.fs, dir, robot)
 	if err != nil {
 		return nil, err
 	}
-	if ok && newest > seg {
-		return nil, fmt.Errorf("%w: resuming %s at segment %06d, but the manifest names segment %06d", ErrGap, robot, seg, newest)
+	if ok && man.newest > seg {
+		return nil, fmt.Errorf("%w: resuming %s at segment %06d, but the manifest names segment %06d", ErrGap, robot, seg, man.newest)
 	}
 	path := SegmentPath(dir, robot, seg)
+	before := good
 	if good, err = w.completeHeader(path, good); err != nil {
 		return nil, err
+	}
+	w.cur = sealedSegment{n: seg, last: sc.LastSequence, snapAt: -1}
+	if s := sc.lastSeg; s.n == seg && s.snapAt >= 0 && good == before {
+		w.cur.snapAt, w.cur.snapSeq = s.snapAt, s.snapSeq
 	}
 	f, err := w.fs.OpenFile(path, os.O_RDWR|os.O_APPEND, 0)
 	if err != nil {
@@ -246,8 +276,12 @@ func Resume(dir, robot string, seg int, good int64, opt Options) (*Writer, error
 		f.Close()
 		return nil, fmt.Errorf("journal %s: %w", path, err)
 	}
-	if !ok || newest < seg {
-		if err := writeManifest(w.fs, dir, robot, seg); err != nil {
+	had := len(man.sealed)
+	man.complete(sc.sealed, seg)
+	w.man = man
+	if !ok || man.newest < seg || len(man.sealed) > had {
+		w.man.newest = seg
+		if err := writeManifest(w.fs, dir, robot, w.man); err != nil {
 			f.Close()
 			return nil, classify(err)
 		}
@@ -335,14 +369,23 @@ func (w *Writer) Append(recs ...*pb.JournalRecord) error {
 // writing them; Flush writes what was added (group commit).
 func (w *Writer) Add(recs ...*pb.JournalRecord) error {
 	n := len(w.buf)
+	mark := entryMark{snapAt: -1}
 	var err error
-	for _, r := range recs {
+	for i, r := range recs {
+		at := len(w.buf)
 		if w.buf, err = AppendFrame(w.buf, r); err != nil {
 			w.buf = w.buf[:n]
 			return err
 		}
+		switch {
+		case r.GetOutput() != nil && i > 0 && recs[i-1].GetInput() != nil:
+			mark.last = recs[i-1].GetInput().GetSequence()
+		case r.GetSnapshot() != nil:
+			mark.snapAt, mark.snapSeq = at, r.GetSnapshot().GetSequence()
+		}
 	}
 	w.ends = append(w.ends, len(w.buf))
+	w.marks = append(w.marks, mark)
 	return nil
 }
 
@@ -395,6 +438,7 @@ func (w *Writer) AddSessionPair(in EncodedInput, response []byte, pose *pb.Fused
 	}
 	w.buf = b
 	w.ends = append(w.ends, len(b))
+	w.marks = append(w.marks, entryMark{last: in.Sequence, snapAt: -1})
 	return nil
 }
 
@@ -423,6 +467,7 @@ func (w *Writer) Flush() (complete int, err error) {
 	}
 	before := w.size
 	w.size += int64(len(w.buf))
+	marks := w.marks
 	w.drop()
 	w.dirty = true
 	w.writes++
@@ -432,6 +477,7 @@ func (w *Writer) Flush() (complete int, err error) {
 		}
 		w.dirty = false
 	}
+	w.mark(marks, before)
 	if w.size >= w.limit() {
 		if err := w.rotate(); err != nil {
 			return entries, err
@@ -450,6 +496,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 		keep = w.ends[complete]
 		complete++
 	}
+	marks := w.marks[:complete]
 	w.drop()
 	err = fmt.Errorf("journal %s: %w", w.segPath(), classify(err))
 	if n > keep {
@@ -474,6 +521,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 			w.dirty = false
 		}
 	}
+	w.mark(marks, before)
 	return complete, err
 }
 
@@ -496,7 +544,20 @@ func (w *Writer) unsync(before int64, err error) error {
 
 // drop empties the buffer.
 func (w *Writer) drop() {
-	w.buf, w.ends = w.buf[:0], w.ends[:0]
+	w.buf, w.ends, w.marks = w.buf[:0], w.ends[:0], w.marks[:0]
+}
+
+// mark notes what the complete entries whose marks these are add to the
+// segment's record; base is the segment's size before them.
+func (w *Writer) mark(marks []entryMark, base int64) {
+	for _, m := range marks {
+		if m.last != 0 {
+			w.cur.last = m.last
+		}
+		if m.snapAt >= 0 {
+			w.cur.snapAt, w.cur.snapSeq = base+int64(m.snapAt), m.snapSeq
+		}
+	}
 }
 
 func (w *Writer) limit() int64 {
@@ -520,6 +581,8 @@ func (w *Writer) rotate() error {
 		return &RotateError{Segment: SegmentPath(w.dir, w.robot, w.seg+1), Err: err}
 	}
 	n := w.seg + 1
+	sealed := w.cur
+	sealed.n, sealed.size = w.seg, w.size
 	path, err := w.makeSegment(n, header())
 	if err == nil {
 		if err = w.open(n, path, headerSize); err != nil {
@@ -527,7 +590,11 @@ func (w *Writer) rotate() error {
 		}
 	}
 	if err == nil {
-		err = writeManifest(w.fs, w.dir, w.robot, n) // a lagging manifest is safe
+		// The segment sealed is recorded even if this write fails: the
+		// next rotation's write records it (a lagging manifest is safe).
+		w.cur = sealedSegment{n: n, last: sealed.last, snapAt: -1}
+		w.man.newest, w.man.sealed = n, append(w.man.sealed, sealed)
+		err = writeManifest(w.fs, w.dir, w.robot, w.man)
 	}
 	if err != nil {
 		return &RotateError{Segment: SegmentPath(w.dir, w.robot, n), Err: classify(err)}

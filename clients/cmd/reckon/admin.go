@@ -120,7 +120,7 @@ the same configuration nothing changes; with another one, create refuses
 }
 
 func runDelete(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := newFlagSet("delete", "NAME [flags]", "Deletes robots/NAME; the service closes its journal and sets it aside,\nevery record kept (reckon export -deleted reads it). A quarantined\nrobot's journal is set aside as it is, damage and all; create the robot\nagain to put it back to work.")
+	fs := newFlagSet("delete", "NAME [flags]", "Deletes robots/NAME; the service closes its journal and sets it aside,\nevery record kept: reckon export reads it, and replay and review read it\nas -robot NAME.deleted-{unix ns}, the suffix its files carry. A quarantined\nrobot's journal is set aside as it is, damage and all; create the robot\nagain to put it back to work.")
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	name, _, err := oneRobot(fs, args, stdout, stderr)

@@ -372,8 +372,8 @@ func (d *demoRun) summary(ctx context.Context, stdout io.Writer) error {
 	fmt.Fprintf(stdout, "fix verdicts: %s\n", review.FormatCounts(v.verdicts))
 	fmt.Fprintf(stdout, "recoveries %d, slips suspected %d, odometry gaps %d\n", stats.GetRecoveries(), stats.GetSlips(), stats.GetGaps())
 	for _, ss := range stats.GetSensors() {
-		fmt.Fprintf(stdout, "sensor %-7s applied %5d gated %4d  mean NIS %.2f (95%% band %.2f-%.2f): %s\n", ss.GetSensorId(),
-			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), convert.ConsistencyName(ss.GetVerdict()))
+		fmt.Fprintf(stdout, "sensor %-7s applied %5d gated %4d  mean NIS %.2f (95%% band %.2f-%.2f): %s%s\n", ss.GetSensorId(),
+			ss.GetCounts().GetApplied(), ss.GetCounts().GetGated(), ss.GetMeanNis(), ss.GetBandLow(), ss.GetBandHigh(), convert.ConsistencyName(ss.GetVerdict()), gatedWhy(ss))
 	}
 	if b := d.opt.bumpAtS; b > 0 && b < d.opt.duration {
 		fmt.Fprintf(stdout, "(the cart was lifted aside and turned by hand at %g s: the means include the moments the IMU saw it turn and the wheels did not)\n", b)

@@ -55,6 +55,17 @@ func TestDemo(t *testing.T) {
 					t.Errorf("output lacks %q:\n%s", want, out)
 				}
 			}
+			// A sensor called overconfident with its mean NIS inside its
+			// band says why: its gate refused more fixes than it allows
+			// (the demo's camera, whose outliers are many; the line read
+			// "mean NIS 3.02 (95% band 2.72-3.06): overconfident" alone).
+			for _, m := range regexp.MustCompile(`(?m)^sensor (\S+) .*mean NIS ([0-9.]+) \(95% band [0-9.]+-([0-9.]+)\): overconfident(.*)$`).FindAllStringSubmatch(out, -1) {
+				mean, _ := strconv.ParseFloat(m[2], 64)
+				hi, _ := strconv.ParseFloat(m[3], 64)
+				if mean <= hi && !strings.Contains(m[4], "gated, more than its gate allows") {
+					t.Errorf("sensor %s: overconfident inside its band without the reason: %q", m[1], m[0])
+				}
+			}
 			// The journal the demo left replays to the same verdicts.
 			csvPath := filepath.Join(t.TempDir(), "track.csv")
 			_, errs, err = runCmd(t, "replay", "-journal", dir, "-robot", "greenhouse-cart", "-out", csvPath)

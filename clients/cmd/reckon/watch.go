@@ -24,8 +24,8 @@ func runWatch(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	fs := newFlagSet("watch", "-robot NAME [flags]", `
 Prints a robot's fused poses as they change, as a table, CSV or JSON Lines.
 When the service goes away it reconnects, with growing pauses, for up to
--reconnect, and says so on standard error. Interrupted, it prints how many
-poses it printed and exits 130.`)
+-reconnect, and says so on standard error. When the robot is deleted it
+exits 4. Interrupted, it prints how many poses it printed and exits 130.`)
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")

@@ -370,7 +370,8 @@ class Client:
 
     def watch(self, robot: str, min_interval_ns: int = 0) -> Watch:
         """watch subscribes to robot's fused poses, at most one every
-        min_interval_ns nanoseconds (0: after every input)."""
+        min_interval_ns nanoseconds (0: every pose, one for each group of
+        inputs the robot takes together; negative is refused)."""
         return Watch(self._stub.Watch(fs_pb2.WatchRequest(robot=robot_name(robot), min_interval_ns=min_interval_ns),
                                       metadata=self._md))
 

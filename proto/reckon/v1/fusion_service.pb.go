@@ -904,18 +904,24 @@ type IngestResponse struct {
 	// session_id, after the responses to its first requests (any request for
 	// the robot, even a refused one, collects them); a sample sent without a
 	// session_id loses it with its stream. A retried sample is answered with
-	// its response as first sent. The journal records, in the deciding
-	// sample's response, every resolution it caused, without
+	// its response as first sent. A held sample of a robot that is deleted
+	// before deciding it gets no resolution. The journal records, in the
+	// deciding sample's response, every resolution it caused, without
 	// client_sequence.
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`
 	// Notable moments this sample caused.
 	Events []*FusionEvent `protobuf:"bytes,8,rep,name=events,proto3" json:"events,omitempty"`
 	// The google.rpc.Code of the outcome, so that one bad sample does not end
 	// the stream: 0 (OK) for applied, held and gated samples; 3
-	// (INVALID_ARGUMENT) for a malformed or refused one; 5 (NOT_FOUND) for an
-	// unknown robot or landmark; 9 (FAILED_PRECONDITION) for a sample the
-	// robot's configuration does not take; 11 (OUT_OF_RANGE) for time running
-	// backwards or a sample too old; 14 (UNAVAILABLE) if the journal failed.
+	// (INVALID_ARGUMENT) for a malformed or refused one (a malformed value or
+	// robot name, implausible motion, a stamp too far ahead, held inputs
+	// full, a numerical fault, a string past its limit, -max-string-bytes);
+	// 5 (NOT_FOUND) for an unknown or deleted robot, an unknown landmark or
+	// sensor; 9 (FAILED_PRECONDITION) for a sample the robot's configuration
+	// does not take, a run start out of order, or a quarantined robot; 11
+	// (OUT_OF_RANGE) for time running backwards or a sample too old; 14
+	// (UNAVAILABLE) when the journal failed or the robot is paused: not
+	// applied, resend.
 	StatusCode int32 `protobuf:"varint,9,opt,name=status_code,json=statusCode,proto3" json:"status_code,omitempty"`
 	// Why the sample was refused, as a value (REFUSAL_UNSPECIFIED if not).
 	Refusal Refusal `protobuf:"varint,10,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
@@ -1444,7 +1450,9 @@ type WatchRequest struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// "robots/{robot}".
 	Robot string `protobuf:"bytes,1,opt,name=robot,proto3" json:"robot,omitempty"`
-	// Least time between two poses sent, nanoseconds (0: every input).
+	// Least time between two poses sent, nanoseconds (0: every pose, one for
+	// each group of inputs the robot takes together; negative is
+	// INVALID_ARGUMENT).
 	MinIntervalNs int64 `protobuf:"varint,2,opt,name=min_interval_ns,json=minIntervalNs,proto3" json:"min_interval_ns,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

@@ -38,38 +38,62 @@ const (
 // FusionService estimates the pose of robots from wheel odometry, IMU
 // heading and absolute fixes. Every robot's inputs are serialised: several
 // clients may feed one robot at once (say the controller's odometry bridge
-// and a vision process), and every input gets a verdict.
+// and a vision process), and every input gets a verdict. Every rpc that
+// names a robot answers INVALID_ARGUMENT for a malformed name and NOT_FOUND
+// for a robot that does not exist; with a token configured, every rpc
+// answers UNAUTHENTICATED without it.
 type FusionServiceClient interface {
-	// Creates a robot from a configuration.
+	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
+	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
+	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots),
+	// UNAVAILABLE when its journal's disk is full.
 	CreateRobot(ctx context.Context, in *CreateRobotRequest, opts ...grpc.CallOption) (*CreateRobotResponse, error)
-	// Gets a robot.
+	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(ctx context.Context, in *GetRobotRequest, opts ...grpc.CallOption) (*GetRobotResponse, error)
-	// Lists robots in name order.
+	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size.
 	ListRobots(ctx context.Context, in *ListRobotsRequest, opts ...grpc.CallOption) (*ListRobotsResponse, error)
 	// Deletes a robot and closes its journal, which is set aside with every
 	// record kept (a quarantined robot's as it is, damage and all), so that
-	// the name can be created again.
+	// the name can be created again. INTERNAL when the journal could not be
+	// set aside (the robot is deleted all the same).
 	DeleteRobot(ctx context.Context, in *DeleteRobotRequest, opts ...grpc.CallOption) (*DeleteRobotResponse, error)
 	// Takes a stream of samples; answers each, in order, with its verdict
 	// once it is in the journal under the server's fsync policy. When the
 	// service stops, the stream ends with UNAVAILABLE after the verdicts of
-	// the samples received; a sample without a verdict was not taken.
+	// the samples received; a sample without a verdict was not taken. A bad
+	// sample, an unknown, deleted, paused or quarantined robot and a journal
+	// that failed do not end the stream: each is the sample's own verdict
+	// (IngestResponse.status_code). A message past the service's size limit
+	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
-	// stream ends with NOT_FOUND when the robot is deleted, and with OK when
-	// the service stops.
+	// stream ends with NOT_FOUND when the robot is deleted, with
+	// FAILED_PRECONDITION naming the problem when it is quarantined (and
+	// begins so for a quarantined robot), and with OK when the service stops.
+	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
+	// -max-watchers-per-robot).
 	Watch(ctx context.Context, in *WatchRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchResponse], error)
 	// Gets the estimate at a stamp inside the history window, or shortly
-	// past the newest odometry (extrapolated).
+	// past the newest odometry (extrapolated, up to the configuration's
+	// max_extrapolation_ns). Another stamp, or any before the robot's first
+	// odometry, is OUT_OF_RANGE; FAILED_PRECONDITION for a quarantined robot.
 	GetPoseAt(ctx context.Context, in *GetPoseAtRequest, opts ...grpc.CallOption) (*GetPoseAtResponse, error)
-	// Re-seeds a robot's pose by hand.
+	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
+	// the robot refuses before taking it (sequence 0) ends the call with the
+	// status of IngestResponse.status_code and the reason; one it took is
+	// answered with its verdict. A re-seed stamped after the newest odometry
+	// is held (VERDICT_HELD) until odometry reaches its stamp; its final
+	// verdict is sent nowhere, as the call has no stream: a watcher sees
+	// EVENT_KIND_RESEEDED when it is applied.
 	ReseedRobot(ctx context.Context, in *ReseedRobotRequest, opts ...grpc.CallOption) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
+	// FAILED_PRECONDITION for a quarantined robot.
 	GetStatistics(ctx context.Context, in *GetStatisticsRequest, opts ...grpc.CallOption) (*GetStatisticsResponse, error)
 	// Starts a new run of a robot by hand, as a run_start sample does: use it
 	// when the robot's controller restarted (its clock jumped back) and its
-	// sender cannot say so itself. Journaled like any input.
+	// sender cannot say so itself. Journaled like any input; refused as
+	// ReseedRobot is (FAILED_PRECONDITION for a run start out of order).
 	StartRun(ctx context.Context, in *StartRunRequest, opts ...grpc.CallOption) (*StartRunResponse, error)
 }
 
@@ -200,38 +224,62 @@ func (c *fusionServiceClient) StartRun(ctx context.Context, in *StartRunRequest,
 // FusionService estimates the pose of robots from wheel odometry, IMU
 // heading and absolute fixes. Every robot's inputs are serialised: several
 // clients may feed one robot at once (say the controller's odometry bridge
-// and a vision process), and every input gets a verdict.
+// and a vision process), and every input gets a verdict. Every rpc that
+// names a robot answers INVALID_ARGUMENT for a malformed name and NOT_FOUND
+// for a robot that does not exist; with a token configured, every rpc
+// answers UNAUTHENTICATED without it.
 type FusionServiceServer interface {
-	// Creates a robot from a configuration.
+	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
+	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
+	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots),
+	// UNAVAILABLE when its journal's disk is full.
 	CreateRobot(context.Context, *CreateRobotRequest) (*CreateRobotResponse, error)
-	// Gets a robot.
+	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(context.Context, *GetRobotRequest) (*GetRobotResponse, error)
-	// Lists robots in name order.
+	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size.
 	ListRobots(context.Context, *ListRobotsRequest) (*ListRobotsResponse, error)
 	// Deletes a robot and closes its journal, which is set aside with every
 	// record kept (a quarantined robot's as it is, damage and all), so that
-	// the name can be created again.
+	// the name can be created again. INTERNAL when the journal could not be
+	// set aside (the robot is deleted all the same).
 	DeleteRobot(context.Context, *DeleteRobotRequest) (*DeleteRobotResponse, error)
 	// Takes a stream of samples; answers each, in order, with its verdict
 	// once it is in the journal under the server's fsync policy. When the
 	// service stops, the stream ends with UNAVAILABLE after the verdicts of
-	// the samples received; a sample without a verdict was not taken.
+	// the samples received; a sample without a verdict was not taken. A bad
+	// sample, an unknown, deleted, paused or quarantined robot and a journal
+	// that failed do not end the stream: each is the sample's own verdict
+	// (IngestResponse.status_code). A message past the service's size limit
+	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
-	// stream ends with NOT_FOUND when the robot is deleted, and with OK when
-	// the service stops.
+	// stream ends with NOT_FOUND when the robot is deleted, with
+	// FAILED_PRECONDITION naming the problem when it is quarantined (and
+	// begins so for a quarantined robot), and with OK when the service stops.
+	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
+	// -max-watchers-per-robot).
 	Watch(*WatchRequest, grpc.ServerStreamingServer[WatchResponse]) error
 	// Gets the estimate at a stamp inside the history window, or shortly
-	// past the newest odometry (extrapolated).
+	// past the newest odometry (extrapolated, up to the configuration's
+	// max_extrapolation_ns). Another stamp, or any before the robot's first
+	// odometry, is OUT_OF_RANGE; FAILED_PRECONDITION for a quarantined robot.
 	GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error)
-	// Re-seeds a robot's pose by hand.
+	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
+	// the robot refuses before taking it (sequence 0) ends the call with the
+	// status of IngestResponse.status_code and the reason; one it took is
+	// answered with its verdict. A re-seed stamped after the newest odometry
+	// is held (VERDICT_HELD) until odometry reaches its stamp; its final
+	// verdict is sent nowhere, as the call has no stream: a watcher sees
+	// EVENT_KIND_RESEEDED when it is applied.
 	ReseedRobot(context.Context, *ReseedRobotRequest) (*ReseedRobotResponse, error)
 	// Gets a robot's running statistics and sensor consistency.
+	// FAILED_PRECONDITION for a quarantined robot.
 	GetStatistics(context.Context, *GetStatisticsRequest) (*GetStatisticsResponse, error)
 	// Starts a new run of a robot by hand, as a run_start sample does: use it
 	// when the robot's controller restarted (its clock jumped back) and its
-	// sender cannot say so itself. Journaled like any input.
+	// sender cannot say so itself. Journaled like any input; refused as
+	// ReseedRobot is (FAILED_PRECONDITION for a run start out of order).
 	StartRun(context.Context, *StartRunRequest) (*StartRunResponse, error)
 	mustEmbedUnimplementedFusionServiceServer()
 }

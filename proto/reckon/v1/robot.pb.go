@@ -34,9 +34,9 @@ const (
 	RobotState_ROBOT_STATE_PAUSED RobotState = 2
 	// Its journal could not be restored (damage, a gap, a bad configuration,
 	// a divergence of the same build) or failed for good: its rpcs but
-	// DeleteRobot answer FAILED_PRECONDITION naming the problem and the file;
-	// DeleteRobot sets its journal aside as it is, so that the robot can be
-	// created anew.
+	// DeleteRobot answer FAILED_PRECONDITION naming the problem and the file,
+	// and its open watches end so; DeleteRobot sets its journal aside as it
+	// is, so that the robot can be created anew.
 	RobotState_ROBOT_STATE_QUARANTINED RobotState = 3
 )
 

@@ -5,7 +5,9 @@
 package main
 
 import (
+	"bytes"
 	"context"
+	"errors"
 	"flag"
 	"fmt"
 	"io"
@@ -55,7 +57,14 @@ const maxSegmentBytes = 512 << 20
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := flag.NewFlagSet("reckond", flag.ContinueOnError)
-	fs.SetOutput(stderr)
+	// The usage goes to standard output for -h, which is no failure, and
+	// with the error to standard error for a bad flag.
+	var usage bytes.Buffer
+	fs.SetOutput(&usage)
+	fs.Usage = func() {
+		fmt.Fprintln(&usage, "usage: reckond [-listen 127.0.0.1:7460] [-journal DIR] [-robot ID=CONFIG.yaml ...] [-view 127.0.0.1:7470] [flags]\n\nflags:")
+		fs.PrintDefaults()
+	}
 	listen := fs.String("listen", "127.0.0.1:7460", "gRPC listen address (loopback by default)")
 	journal := fs.String("journal", "reckon-journal", "journal directory (empty: keep no journal)")
 	fsync := fs.String("fsync", "interval", "journal fsync policy: each (before every verdict) or interval")
@@ -81,6 +90,11 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	robots := robotFlags{}
 	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it; a restored robot keeps its journal's, and a differing file is logged (repeatable)")
 	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			_, err := usage.WriteTo(stdout)
+			return err
+		}
+		usage.WriteTo(stderr)
 		return err
 	}
 	var lv slog.Level

@@ -98,3 +98,18 @@ func (l *lockedBuffer) String() string {
 	defer l.mu.Unlock()
 	return l.b.String()
 }
+
+// TestHelp: -h prints the usage and the flags on standard output and is
+// no failure, as reckon's -h (it returned flag.ErrHelp before, and reckond
+// exited 1 with "flag: help requested" after the usage on standard error).
+func TestHelp(t *testing.T) {
+	for _, arg := range []string{"-h", "-help"} {
+		var out, errb bytes.Buffer
+		if err := run(context.Background(), []string{arg}, &out, &errb); err != nil {
+			t.Errorf("%s: %v", arg, err)
+		}
+		if !strings.HasPrefix(out.String(), "usage: reckond") || !strings.Contains(out.String(), "-max-message-bytes") || errb.Len() != 0 {
+			t.Errorf("%s: standard output %q, standard error %q", arg, out.String(), errb.String())
+		}
+	}
+}

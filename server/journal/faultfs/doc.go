@@ -5,7 +5,7 @@
 //   - FS wraps another journal.FS and fails chosen operations (by kind,
 //     path and count) with a chosen error, ENOSPC or EIO for instance; a
 //     failed write or copy can write part of its bytes first (a short
-//     write).
+//     write). It counts the operations, and the bytes read.
 //   - MemFS is an in-memory file system that can crash: Crash returns the
 //     file system as a power loss would leave it, each file with its
 //     contents as of its last fsync and each directory with its entries

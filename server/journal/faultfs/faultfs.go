@@ -3,6 +3,7 @@ package faultfs
 import (
 	"errors"
 	"fmt"
+	"io"
 	"os"
 	"strings"
 	"sync"
@@ -57,6 +58,7 @@ type FS struct {
 
 	mu     sync.Mutex
 	counts [numOps]int
+	read   int64 // bytes read, by every file
 }
 
 // New returns an FS over base that fails what inject says.
@@ -76,6 +78,14 @@ func (f *FS) Count(op Op) int {
 	f.mu.Lock()
 	defer f.mu.Unlock()
 	return f.counts[op]
+}
+
+// BytesRead returns how many bytes the reads of every file of the FS
+// returned so far (a seek reads none).
+func (f *FS) BytesRead() int64 {
+	f.mu.Lock()
+	defer f.mu.Unlock()
+	return f.read
 }
 
 // check counts an operation and returns the error to inject, if any, as
@@ -209,7 +219,11 @@ func (ff *faultFile) Read(p []byte) (int, error) {
 	if err := ff.fs.check(OpRead, ff.name); err != nil {
 		return 0, err
 	}
-	return ff.f.Read(p)
+	n, err := ff.f.Read(p)
+	ff.fs.mu.Lock()
+	ff.fs.read += int64(n)
+	ff.fs.mu.Unlock()
+	return n, err
 }
 
 func (ff *faultFile) Write(p []byte) (int, error) {
@@ -273,6 +287,16 @@ func (ff *faultFile) Stat() (os.FileInfo, error) {
 		return nil, err
 	}
 	return ff.f.Stat()
+}
+
+// Seek sets the offset of the next Read in the base file; a base file
+// that cannot seek gives errors.ErrUnsupported.
+func (ff *faultFile) Seek(offset int64, whence int) (int64, error) {
+	s, ok := ff.f.(io.Seeker)
+	if !ok {
+		return 0, fmt.Errorf("seek %s: %w", ff.name, errors.ErrUnsupported)
+	}
+	return s.Seek(offset, whence)
 }
 
 func (ff *faultFile) Close() error { return ff.f.Close() }

@@ -278,6 +278,26 @@ func (f *memFile) Read(p []byte) (int, error) {
 	return n, nil
 }
 
+// Seek sets the offset of the next Read or Write.
+func (f *memFile) Seek(offset int64, whence int) (int64, error) {
+	f.m.mu.Lock()
+	defer f.m.mu.Unlock()
+	if f.closed {
+		return 0, os.ErrClosed
+	}
+	switch whence {
+	case io.SeekCurrent:
+		offset += f.pos
+	case io.SeekEnd:
+		offset += int64(len(f.ino.data))
+	}
+	if offset < 0 {
+		return 0, &os.PathError{Op: "seek", Path: f.name, Err: os.ErrInvalid}
+	}
+	f.pos = offset
+	return offset, nil
+}
+
 func (f *memFile) Write(p []byte) (int, error) {
 	f.m.mu.Lock()
 	defer f.m.mu.Unlock()

@@ -127,13 +127,8 @@ func TestFeedHeldByAnEarlierFeed(t *testing.T) {
 func TestFeedCreateChecksFileFirst(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
 	ctx := context.Background()
-	b, err := os.ReadFile(exampleSamples)
-	if err != nil {
-		t.Fatal(err)
-	}
-	lines := strings.SplitAfter(string(b), "\n")
 	bad := filepath.Join(t.TempDir(), "bad.jsonl")
-	if err := os.WriteFile(bad, []byte(strings.Join(lines[:6], "")+"{\"odometry\": \n"+lines[6]), 0o644); err != nil {
+	if err := os.WriteFile(bad, []byte(firstLines(t, 6)+"{\"odometry\": \n"), 0o644); err != nil {
 		t.Fatal(err)
 	}
 	c := dialService(t, addr)
@@ -184,12 +179,8 @@ func TestFeedCreateChecksFileFirst(t *testing.T) {
 func TestFeedSessionTakenBefore(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
 	ctx := context.Background()
-	b, err := os.ReadFile(exampleSamples)
-	if err != nil {
-		t.Fatal(err)
-	}
 	first := filepath.Join(t.TempDir(), "first.jsonl")
-	if err := os.WriteFile(first, []byte(strings.Join(strings.SplitAfter(string(b), "\n")[:20], "")), 0o644); err != nil {
+	if err := os.WriteFile(first, []byte(firstLines(t, 20)), 0o644); err != nil {
 		t.Fatal(err)
 	}
 	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-session", "cart-s1", first)

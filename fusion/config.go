@@ -367,8 +367,8 @@ func (c *Config) checkNoise() error {
 // bounds a new robot is held to, naming the field: a client that creates a
 // robot must not be able to make the service allocate without bound
 // (trust.nis_window allocates its windows at creation; the others grow
-// with input), an angle beyond a full turn was written in degrees, and a
-// length or duration far out of a small robot's range in another unit
+// with input), and an angle beyond a full turn, a length or a duration
+// far out of a small robot's range was written in another unit
 // (checkUnits).
 // Each bound is far beyond its use. New and Validate do not
 // check them, so that a journal written before they existed restores as
@@ -388,26 +388,6 @@ func (c Config) CheckBounds() error {
 	} {
 		if n.v > n.most {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
-		}
-	}
-	// Angles within a full turn: one beyond it was written in degrees.
-	angle := func(name string, v float64) error {
-		if math.Abs(v) > 2*math.Pi {
-			return cfgErr(name, "%v is more than a full turn (2 pi rad): an angle in degrees? Angles are in radians", v)
-		}
-		return nil
-	}
-	if err := angle("start_pose.heading_rad", c.StartPose.Heading); err != nil {
-		return err
-	}
-	for i, w := range c.Wheels {
-		if err := angle(fmt.Sprintf("wheels[%d].direction_rad", i), w.DirectionRad); err != nil {
-			return err
-		}
-	}
-	for i, s := range c.Sensors {
-		if err := angle(fmt.Sprintf("sensors[%d].mount.heading_rad", i), s.Mount.Heading); err != nil {
-			return err
 		}
 	}
 	if err := c.checkUnits(); err != nil {
@@ -443,16 +423,35 @@ const (
 )
 
 // checkUnits refuses the values that were written in another unit than
-// their field's: a wheel or mount 120 m from the reference point was
-// meant in millimetres, a window of 1 ns in seconds, a latency of 20 ns in
-// milliseconds (common practice: the units mistakes of a configuration
-// written by hand).
+// their field's: an angle beyond a full turn was meant in degrees, a wheel
+// or mount 120 m from the reference point in millimetres, a window of
+// 1 ns in seconds, a latency of 20 ns in milliseconds (common practice:
+// the units mistakes of a configuration written by hand).
 func (c *Config) checkUnits() error {
+	angle := func(name string, v float64) error {
+		if math.Abs(v) > 2*math.Pi {
+			return cfgErr(name, "%v is more than a full turn (2 pi rad): an angle in degrees? Angles are in radians", v)
+		}
+		return nil
+	}
 	far := func(name string, x, y float64) error {
 		if math.Hypot(x, y) > maxRobotM {
 			return cfgErr(name, "(%g, %g) is more than %d m from the reference point: millimetres? Lengths are in metres", x, y, maxRobotM)
 		}
 		return nil
+	}
+	if err := angle("start_pose.heading_rad", c.StartPose.Heading); err != nil {
+		return err
+	}
+	for i, w := range c.Wheels {
+		if err := angle(fmt.Sprintf("wheels[%d].direction_rad", i), w.DirectionRad); err != nil {
+			return err
+		}
+	}
+	for i, sen := range c.Sensors {
+		if err := angle(fmt.Sprintf("sensors[%d].mount.heading_rad", i), sen.Mount.Heading); err != nil {
+			return err
+		}
 	}
 	for i, w := range c.Wheels {
 		if err := far(fmt.Sprintf("wheels[%d]", i), w.XM, w.YM); err != nil {

@@ -12,6 +12,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server/journal"
 )
 
 // heapMiB returns the live heap after a collection, MiB.
@@ -201,5 +202,42 @@ func TestCreateRobotBounds(t *testing.T) {
 	}
 	if list, err := api.ListRobots(context.Background(), &pb.ListRobotsRequest{}); err != nil || len(list.GetRobots()) != 0 {
 		t.Errorf("robots after the refusals: %v %v", list.GetRobots(), err)
+	}
+}
+
+// TestJournalPastBoundsRestores: a journal written before the bounds of a
+// new robot existed may hold a configuration past them (here an angle in
+// degrees and a wheel in millimetres, fusion.Config.CheckBounds'
+// checkUnits): the robot restores and serves with it as written, while
+// CreateRobot refuses the same configuration naming the field.
+func TestJournalPastBoundsRestores(t *testing.T) {
+	dir := t.TempDir()
+	_, cfg := cartRun(6, 1)
+	cfg.Wheels[len(cfg.Wheels)-1].DirectionRad = 90
+	cfg.Wheels[0].YM = 120
+	w, err := journal.Create(dir, "cart", &pb.JournalOpening{Robot: RobotName("cart"), Config: cfg, CreateTimeUnixNs: 1}, journal.Options{})
+	if err == nil {
+		_, err = w.Flush()
+	}
+	if err != nil {
+		t.Fatal(err)
+	}
+	w.Close()
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer s.Close()
+	reports, err := s.Restore()
+	if err != nil || len(reports) != 1 || reports[0].State != pb.RobotState_ROBOT_STATE_SERVING {
+		t.Fatalf("restore: %+v %v", reports, err)
+	}
+	r := robotState(t, s, "robots/cart")
+	if got := r.GetConfig().GetWheels(); got[len(got)-1].GetDirectionRad() != 90 || got[0].GetYM() != 120 {
+		t.Errorf("restored configuration: %v", got)
+	}
+	_, err = s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart-2", Config: cfg})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "degrees") {
+		t.Errorf("CreateRobot of the same configuration: %v", err)
 	}
 }

@@ -382,6 +382,11 @@ func sendRun(mu *sync.Mutex, r *pendingRun, sess *client.Session, sum *Summary) 
 }
 
 // verdictName is a verdict's short name: "invalid", "too_old", ...
+// server/convert.VerdictName gives the same label from fusion's table (the
+// lowercase suffix of the wire name, which a test there checks against the
+// wire enum); it is derived here from the wire name instead so that the
+// link, which runs on the robot, imports neither the server's packages nor
+// fusion. The generated package holds generated code only.
 func verdictName(v pb.Verdict) string {
 	return strings.ToLower(strings.TrimPrefix(v.String(), "VERDICT_"))
 }

@@ -16,6 +16,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -430,6 +431,11 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	if err := rc.runs(fr, src.Run); err != nil {
 		return nil, err
 	}
+	if (opt.FromNs > 0 || opt.ToNs > 0) && run.Summary.Inputs == 0 {
+		fw.close()
+		os.Remove(run.FilteredCSV)
+		return nil, EmptyStretch(opt.FromNs, opt.ToNs, rc.endNewestNs-run.Summary.RunStartNs)
+	}
 	rc.add(fr, true, fr.Run() == rc.want)
 	run.Summary.markers(fr.FinishLandmarkOffsets())
 	if err := fw.close(); err != nil {
@@ -625,6 +631,12 @@ type recorder struct {
 	startStats, endStats fusion.Stats
 	ended                bool
 	endNewestNs          int64
+	// With a stretch (fromNs, toNs), stretch adds up what each input of
+	// the run stamped inside it added to the sensors' records (a held
+	// fix's verdict counts with the input that resolved it); prevStats
+	// are the statistics after the run's input before.
+	stretch   []fusion.SensorStats
+	prevStats fusion.Stats
 }
 
 // add takes the steps that became final with the input just taken (all of
@@ -678,8 +690,17 @@ func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
 	if rc.ended {
 		end, newest = rc.endStats, rc.endNewestNs
 	}
+	if rc.fromNs > 0 || rc.toNs > 0 {
+		return newest, rc.stretch
+	}
+	return newest, sensorDelta(end, rc.startStats)
+}
+
+// sensorDelta returns the sensors' records in end less those in start,
+// leaving out the sensors without a verdict between them.
+func sensorDelta(end, start fusion.Stats) []fusion.SensorStats {
 	before := map[string]fusion.SensorStats{}
-	for _, s := range rc.startStats.Sensors {
+	for _, s := range start.Sensors {
 		before[s.ID] = s
 	}
 	var out []fusion.SensorStats
@@ -692,7 +713,24 @@ func (rc *recorder) ending(fr *fusion.Robot) (int64, []fusion.SensorStats) {
 			out = append(out, s)
 		}
 	}
-	return newest, out
+	return out
+}
+
+// addSensors adds the records d to sum, sensor by sensor, in the order
+// the sensors first appear.
+func addSensors(sum, d []fusion.SensorStats) []fusion.SensorStats {
+	for _, s := range d {
+		i := slices.IndexFunc(sum, func(x fusion.SensorStats) bool { return x.ID == s.ID })
+		if i < 0 {
+			sum = append(sum, s)
+			continue
+		}
+		c, e := &sum[i].VerdictCounts, &s.VerdictCounts
+		c.Applied, c.Held, c.Gated, c.TooOld, c.Invalid = c.Applied+e.Applied, c.Held+e.Held, c.Gated+e.Gated, c.TooOld+e.TooOld, c.Invalid+e.Invalid
+		sum[i].NISSum += s.NISSum
+		sum[i].DOFSum += s.DOFSum
+	}
+	return sum
 }
 
 // runs notes which run was reviewed of how many, and refuses a run the
@@ -714,6 +752,21 @@ func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
 
 // ErrNoRun is returned for a run the recording does not hold.
 var ErrNoRun = errors.New("no such run")
+
+// ErrEmptyStretch is returned when no input of the run is stamped inside
+// the stretch asked for (Options.FromNs, ToNs).
+var ErrEmptyStretch = errors.New("an empty stretch")
+
+// EmptyStretch is the ErrEmptyStretch of the stretch from fromNs to toNs
+// (0: the end) after the run's start, of a run whose inputs reach lastNs
+// after it.
+func EmptyStretch(fromNs, toNs, lastNs int64) error {
+	to := "its end"
+	if toNs > 0 {
+		to = fmt.Sprintf("%.3f s", secs(toNs))
+	}
+	return fmt.Errorf("%w: no input is stamped from %.3f s to %s after the run's start; the inputs reach %.3f s", ErrEmptyStretch, secs(fromNs), to, secs(lastNs))
+}
 
 // ErrTruth is wrapped by the errors of a truth file that is not a time
 // ordered table of stamp_ns,x_m,y_m,heading_rad rows.
@@ -776,6 +829,16 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 		if rc.toNs > 0 {
 			rc.a.toNs = start + rc.toNs
 		}
+	}
+	if rc.fromNs > 0 || rc.toNs > 0 {
+		if rc.seen == 0 {
+			rc.prevStats = rc.startStats
+		}
+		cur := fr.Stats()
+		if rc.a.in(convert.SampleStamp(s)) {
+			rc.stretch = addSensors(rc.stretch, sensorDelta(cur, rc.prevStats))
+		}
+		rc.prevStats = cur
 	}
 	rc.seen++
 	rc.a.input(s, resp)

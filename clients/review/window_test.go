@@ -3,6 +3,7 @@ package review
 import (
 	"bytes"
 	"encoding/csv"
+	"errors"
 	"os"
 	"strconv"
 	"strings"
@@ -104,23 +105,19 @@ func TestCompareOverlays(t *testing.T) {
 	}
 }
 
-// TestReviewOfAnEmptyStretch: a stretch past the run's end gives an empty
-// review and a report, not a hang (the smoothed track's writer once read
-// its channel after the review had let go of it).
+// TestReviewOfAnEmptyStretch: a stretch past the run's end is refused
+// with ErrEmptyStretch naming where the run's inputs end, and leaves no
+// track export behind; it returns rather than hangs (the smoothed track's
+// writer once read its channel after the review had let go of it). Before,
+// it gave a report of 0 inputs, "no problem found".
 func TestReviewOfAnEmptyStretch(t *testing.T) {
 	dir, truth := writeRun(t, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 81, DurationS: 5})
-	run, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, t.TempDir(), Options{FromNs: 100e9})
-	if err != nil {
-		t.Fatal(err)
+	out := t.TempDir()
+	_, err := Analyze(Source{JournalDir: dir, Robot: "cart", Truth: truth}, out, Options{FromNs: 100e9})
+	if !errors.Is(err, ErrEmptyStretch) || !strings.Contains(err.Error(), "from 100.000 s to its end") || !strings.Contains(err.Error(), "the inputs reach 4.9") {
+		t.Fatalf("a stretch past the run's end: %v", err)
 	}
-	if run.Summary.Inputs != 0 || len(run.Filtered) != 0 {
-		t.Errorf("%d inputs and %d points past the run's end", run.Summary.Inputs, len(run.Filtered))
-	}
-	var page bytes.Buffer
-	if err := WriteHTML(&page, "empty", run); err != nil {
-		t.Fatal(err)
-	}
-	if !strings.Contains(page.String(), "No problem found") {
-		t.Errorf("the empty report does not say that it found nothing")
+	if files, _ := os.ReadDir(out); len(files) != 0 {
+		t.Errorf("left %v", files)
 	}
 }

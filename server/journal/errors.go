@@ -23,6 +23,10 @@ var ErrBroken = errors.New("journal broken")
 // The records on both sides of the gap are kept.
 var ErrGap = errors.New("journal gap")
 
+// ErrNoJournal is wrapped by the error of a read of a robot that the
+// directory holds no journal of.
+var ErrNoJournal = errors.New("no journal")
+
 // ErrLockHeld is wrapped by the error of an FS's Lock when another holder
 // has the lock; Lock turns it into a *LockedError.
 var ErrLockHeld = errors.New("lock held by another")

@@ -211,7 +211,7 @@ func (st *scanState) open(dir, robot, name string) ([]segFile, error) {
 		if ok {
 			return nil, fmt.Errorf("%w: no segment of %s in %s, its manifest names segment %06d", ErrGap, robot, dir, man.newest)
 		}
-		return nil, fmt.Errorf("no journal for %s in %s", name, dir)
+		return nil, fmt.Errorf("%w for %s in %s", ErrNoJournal, name, dir)
 	}
 	if segs[0].n != 0 {
 		// Only the first holds the opening record: nothing after it can

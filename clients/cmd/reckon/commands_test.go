@@ -178,6 +178,12 @@ func TestAdminCommands(t *testing.T) {
 		{[]string{"pose", "cart", "-at", "9500000000", "-format", "csv"}, exitOK, "\n9500000000,"},
 		{[]string{"pose", "cart", "-at", "1000000000000"}, exitRefused, "stamp_ns"},
 		{[]string{"reseed", "cart", "-x", "1.5", "-y", "-2", "-heading", "0.5"}, exitOK, "robots/cart reseeded at 10.000 s to x 1.500 m, y -2.000 m, heading 28.6 deg"},
+		// A heading beyond a full turn was given in degrees: refused before
+		// it reaches the robot (the pose below is still the reseed's).
+		// Before, 90 was taken as 90 rad (116.6 degrees once wrapped).
+		{[]string{"reseed", "cart", "-x", "1.5", "-y", "-2", "-heading", "90"}, exitUsage, "-heading 90 is more than a full turn (2 pi rad): degrees? It is in radians"},
+		{[]string{"start-run", "cart", "-x", "1.5", "-y", "-2", "-heading", "-180"}, exitUsage, "-heading -180 is more than a full turn"},
+		{[]string{"reseed", "cart", "-x", "1.5", "-y", "-2", "-heading", "0.5", "-std-rad", "10"}, exitUsage, "-std-rad 10 is more than a full turn"},
 		{[]string{"pose", "cart", "-format", "csv"}, exitOK, "\n10000000000,"},
 		// The reseed's pose and covariance: 0.05^2 and 0.035^2 as float64 computes them.
 		{[]string{"pose", "cart", "-format", "csv"}, exitOK, ",1.5,-2,0.5,0.0025000000000000005,0,0,0.0025000000000000005,0,0.0012250000000000002,"},

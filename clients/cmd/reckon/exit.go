@@ -12,6 +12,7 @@ import (
 
 	"reckon.example/clients/review"
 	"reckon.example/server/convert"
+	"reckon.example/server/journal"
 )
 
 // The exit codes of reckon, documented in the package comment and the README.
@@ -54,8 +55,10 @@ func exitCode(err error) int {
 		return exitOK
 	case errors.Is(err, errInterrupted), errors.Is(err, context.Canceled):
 		return exitInterrupted
-	case errors.As(err, &ue):
+	case errors.As(err, &ue), errors.Is(err, review.ErrEmptyStretch):
 		return exitUsage
+	case errors.Is(err, journal.ErrNoJournal):
+		return exitNotFound
 	case errors.Is(err, errRefused), errors.Is(err, convert.ErrConfigFile), errors.Is(err, convert.ErrJSONL), errors.Is(err, review.ErrTruth):
 		return exitRefused
 	}

@@ -37,11 +37,11 @@ stream (it stopped), feed names the first line without a verdict and exits
 3. Either way it names its session too: fed again with -session and that
 id, each sample keeps the client sequence it had (its place among the
 file's samples), and one the service took already is answered with its
-first verdict instead of taken twice.`)
+first verdict instead of taken twice; the summary says how many were.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
-	create, replace := addCreateFlags(fs, "create", "create the robot first from this YAML configuration; an existing robot must have the same one (or -replace)")
+	create, replace := addCreateFlags(fs, "create", "create the robot first from this YAML configuration; an existing robot must have the same one (or -replace). The samples are checked first (a file to its end, standard input to its first sample): a malformed one creates nothing")
 	pace := fs.Float64("pace", 0, "send at this multiple of real time by the samples' stamps: 1 real time, 2 twice as fast, 0 as fast as possible")
 	fromLine := fs.Int("from-line", 1, "start at this line of the file (where an earlier feed says its samples were not taken)")
 	session := fs.String("session", "", "continue an earlier feed's session (its id, as the earlier feed printed it): a sample of the file it sent is answered with its first verdict, not applied twice")
@@ -81,6 +81,12 @@ first verdict instead of taken twice.`)
 		defer f.Close()
 		in, label = f, pos[0]
 	}
+	var samples sampleSource = convert.NewSampleReader(in)
+	if *create != "" {
+		if samples, err = checkSamples(in, label, *fromLine); err != nil {
+			return err
+		}
+	}
 	c, err := cf.dial()
 	if err != nil {
 		return err
@@ -92,14 +98,23 @@ first verdict instead of taken twice.`)
 	sessCtx, stop := sessionContext(ctx)
 	defer stop()
 	var opts []client.IngestOption
+	var takenBefore uint64
 	if *session != "" {
 		opts = append(opts, client.Resume(*session, 0))
+		// The samples the robot answers with a sequence up to its input
+		// count now were taken by an earlier feed on the session.
+		r, err := c.GetRobot(ctx, name)
+		if err != nil {
+			return err
+		}
+		takenBefore = r.GetInputCount()
 	}
 	sess, err := c.OpenIngest(sessCtx, name, opts...)
 	if err != nil {
 		return err
 	}
 	t := newTally(label, sess.ID())
+	t.takenBefore = takenBefore
 	done := make(chan error, 1)
 	go func() { done <- t.collect(sess) }()
 	fd := feeder{sess: sess, t: t, label: label, pace: pacer{pace: *pace}, from: *fromLine, wait: *wait, std: std,
@@ -107,13 +122,13 @@ first verdict instead of taken twice.`)
 			r, err := c.GetRobot(ctx, name)
 			return r.GetState() == pb.RobotState_ROBOT_STATE_SERVING, err
 		}}
-	sendErr := fd.run(ctx, convert.NewSampleReader(in))
+	sendErr := fd.run(ctx, samples)
 	if err := sess.CloseSend(); err != nil && sendErr == nil {
 		sendErr = err
 	}
 	recvErr := <-done
 	interrupted := ctx.Err() != nil
-	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart()+t.earlierPart())
+	fmt.Fprintf(std.out, "%d samples sent to %s: %s\n", fd.sent, name, verdictLine(t.counts)+t.notTakenPart()+t.againPart()+t.earlierPart())
 	for _, r := range t.reasons {
 		fmt.Fprintln(std.out, "  "+r)
 	}
@@ -153,7 +168,7 @@ type feeder struct {
 // run sends every sample of sr from the line from on, until the end of
 // the input, an error, ctx done (not an error here) or samples not taken
 // that the wait does not get taken.
-func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
+func (fd *feeder) run(ctx context.Context, sr sampleSource) error {
 	for ctx.Err() == nil {
 		if fd.t.stopped() {
 			if again, err := fd.resend(ctx); !again {
@@ -163,9 +178,7 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		}
 		s, err := sr.Next()
 		if errors.Is(err, io.EOF) && fd.from > sr.Line() {
-			// A mistyped line, or another file than the one an earlier
-			// feed named.
-			return &usageError{err: fmt.Errorf("%s has %d lines: -from-line %d lies past its end; nothing sent", fd.label, sr.Line(), fd.from)}
+			return fromPastEnd(fd.label, sr.Line(), fd.from)
 		}
 		if errors.Is(err, io.EOF) {
 			// The last samples may still be answered not taken.
@@ -205,6 +218,74 @@ func (fd *feeder) run(ctx context.Context, sr *convert.SampleReader) error {
 		fd.sent++
 	}
 	return nil
+}
+
+// sampleSource is where feed reads its samples: a *convert.SampleReader,
+// or the readAhead that checkSamples leaves.
+type sampleSource interface {
+	Next() (*pb.Sample, error)
+	Line() int
+}
+
+// fromPastEnd refuses a -from-line past the input's end: a mistyped line,
+// or another file than the one an earlier feed named.
+func fromPastEnd(label string, lines, from int) error {
+	return &usageError{err: fmt.Errorf("%s has %d lines: -from-line %d lies past its end; nothing sent", label, lines, from)}
+}
+
+// checkSamples reads and checks the samples of in before feed -create
+// creates the robot, so that a malformed input or a -from-line past its
+// end leaves no new robot behind (nor, with -replace, a replaced one). A
+// regular file is read to its end and then again from where it started;
+// other input (a pipe, which may be live and never end) cannot be read
+// again, and only its first sample is checked. It returns the source to
+// send from.
+func checkSamples(in io.Reader, label string, from int) (sampleSource, error) {
+	f, _ := in.(*os.File)
+	var start int64 = -1
+	if f != nil {
+		if st, err := f.Stat(); err == nil && st.Mode().IsRegular() {
+			if start, err = f.Seek(0, io.SeekCurrent); err != nil {
+				start = -1
+			}
+		}
+	}
+	sr := convert.NewSampleReader(in)
+	for {
+		s, err := sr.Next()
+		eof := errors.Is(err, io.EOF)
+		switch {
+		case eof && from > sr.Line():
+			return nil, fromPastEnd(label, sr.Line(), from)
+		case err != nil && !eof:
+			return nil, lineError(label, sr.Line(), err)
+		case start < 0:
+			return &readAhead{SampleReader: sr, s: s, err: err, held: true}, nil
+		case eof:
+			if _, err := f.Seek(start, io.SeekStart); err != nil {
+				return nil, fmt.Errorf("%s: reading it again after checking it: %w", label, err)
+			}
+			return convert.NewSampleReader(f), nil
+		}
+	}
+}
+
+// readAhead is a SampleReader whose first result (a sample, or io.EOF)
+// checkSamples has read already; Line is the reader's, which has read no
+// further.
+type readAhead struct {
+	*convert.SampleReader
+	s    *pb.Sample
+	err  error
+	held bool
+}
+
+func (r *readAhead) Next() (*pb.Sample, error) {
+	if r.held {
+		r.held = false
+		return r.s, r.err
+	}
+	return r.SampleReader.Next()
 }
 
 // resend waits for the verdicts of every sample sent, then, with a wait,
@@ -346,6 +427,11 @@ type tally struct {
 	// session left held whose resolutions came to this one; they are none
 	// of this feed's samples (like counts, collect's alone).
 	earlier map[pb.Verdict]int
+	// takenBefore is the robot's input count when a feed continuing a
+	// session (-session) began; again counts the samples answered with a
+	// sequence up to it, taken by an earlier feed (collect's alone).
+	takenBefore uint64
+	again       int
 }
 
 // retry is a sample the service did not take.
@@ -505,6 +591,16 @@ func (t *tally) earlierPart() string {
 	return fmt.Sprintf("; and %d held by an earlier feed on the session decided: %s", n, verdictLine(t.earlier))
 }
 
+// againPart is the summary's count of the samples that an earlier feed on
+// the session sent and the robot took, when any: they were answered with
+// their first verdicts, which the counts hold, and not applied again.
+func (t *tally) againPart() string {
+	if t.again == 0 {
+		return ""
+	}
+	return fmt.Sprintf("; %d of them taken by an earlier feed on the session, answered with their first verdicts and not applied again", t.again)
+}
+
 // notTakenPart is the summary's count of samples not taken, when any.
 func (t *tally) notTakenPart() string {
 	if n := t.notTakenCount(); n > 0 {
@@ -563,6 +659,9 @@ func (t *tally) collect(sess *client.Session) error {
 		if !client.OnlyResolutions(resp) {
 			if line, ok := t.answered(resp); ok {
 				t.counts[resp.GetVerdict()]++
+				if seq := resp.GetSequence(); seq > 0 && seq <= t.takenBefore {
+					t.again++
+				}
 				t.reason(line, resp.GetVerdict(), resp.GetReason())
 			}
 		}

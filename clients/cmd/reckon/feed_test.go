@@ -11,6 +11,9 @@ import (
 	"strings"
 	"testing"
 
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
 	"reckon.example/server"
 	"reckon.example/server/daemon"
 )
@@ -110,5 +113,85 @@ func TestFeedHeldByAnEarlierFeed(t *testing.T) {
 	out, errs, code = runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-session", session, "-from-line", strconv.Itoa(cut+2), whole)
 	if code != exitOK || strings.Contains(out, "held -1") || !strings.Contains(out, "and 1 held by an earlier feed on the session decided: applied 1") {
 		t.Errorf("second feed: exit %d\n%s\n%s", code, out, errs)
+	}
+}
+
+// TestFeedCreateChecksFileFirst: feed -create reads and checks the samples
+// file before it creates the robot. A file malformed at its seventh line
+// (after three samples), a
+// file that is not JSON Lines at all (on standard input, where the first
+// sample is checked) and -from-line past the end create nothing, and with
+// -replace the robot that existed keeps its configuration and its inputs.
+// Before, the robot was created (or replaced, its journal set aside)
+// first, and the error left a new robot with nothing in it.
+func TestFeedCreateChecksFileFirst(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	ctx := context.Background()
+	bad := filepath.Join(t.TempDir(), "bad.jsonl")
+	if err := os.WriteFile(bad, []byte(firstLines(t, 6)+"{\"odometry\": \n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	c := dialService(t, addr)
+	for _, tc := range []struct {
+		stdin string
+		args  []string
+		code  int
+		says  string
+	}{
+		{"", []string{bad}, exitRefused, bad + ":7: "},
+		{"robot: cart\nwheels: []\n", []string{"-"}, exitRefused, "stdin:1: "},
+		{"", []string{"-from-line", "100000", exampleSamples}, exitUsage, "past its end"},
+	} {
+		args := append([]string{"feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig}, tc.args...)
+		out, errs, code := runCode(t, ctx, tc.stdin, args...)
+		if code != tc.code || !strings.Contains(errs, tc.says) {
+			t.Errorf("%v: exit %d, want %d saying %q\n%s%s", tc.args, code, tc.code, tc.says, out, errs)
+		}
+		if r, err := c.GetRobot(ctx, "robots/cart"); status.Code(err) != codes.NotFound {
+			t.Fatalf("%v: robot after the refusal: %v %v", tc.args, r, err)
+		}
+	}
+	// An existing robot with another configuration, fed; -replace with a
+	// malformed file leaves it as it was.
+	other := otherConfig(t)
+	if _, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", other, exampleSamples); code != exitOK {
+		t.Fatalf("feed: exit %d\n%s", code, errs)
+	}
+	before, err := c.GetRobot(ctx, "robots/cart")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-replace", bad); code != exitRefused || !strings.Contains(errs, bad+":7: ") {
+		t.Errorf("feed -replace of a malformed file: exit %d\n%s", code, errs)
+	}
+	after, err := c.GetRobot(ctx, "robots/cart")
+	if err != nil || after.GetInputCount() != before.GetInputCount() || after.GetConfig().GetGateProbability() != 0.9 {
+		t.Errorf("the robot after feed -replace of a malformed file: %d inputs (had %d), gate_probability %v (had 0.9), %v",
+			after.GetInputCount(), before.GetInputCount(), after.GetConfig().GetGateProbability(), err)
+	}
+}
+
+// TestFeedSessionTakenBefore: a feed continuing a session (-session) over
+// samples an earlier feed on it sent says how many the robot had taken
+// already, answered with their first verdicts and not applied again.
+// Before, the summary counted them among this feed's verdicts alone
+// ("applied 851" for 834 new samples), as if they were applied twice.
+func TestFeedSessionTakenBefore(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	ctx := context.Background()
+	first := filepath.Join(t.TempDir(), "first.jsonl")
+	if err := os.WriteFile(first, []byte(firstLines(t, 20)), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-session", "cart-s1", first)
+	if code != exitOK || !strings.HasPrefix(out, "17 samples sent") || strings.Contains(out, "earlier feed") {
+		t.Fatalf("first feed: exit %d\n%s%s", code, out, errs)
+	}
+	out, errs, code = runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-session", "cart-s1", exampleSamples)
+	if code != exitOK || !strings.Contains(out, "; 17 of them taken by an earlier feed on the session, answered with their first verdicts and not applied again") {
+		t.Errorf("second feed: exit %d\n%s%s", code, out, errs)
+	}
+	if r, err := dialService(t, addr).GetRobot(ctx, "robots/cart"); err != nil || r.GetInputCount() != 851 {
+		t.Errorf("the robot took %d inputs (%v), want the file's 851 once", r.GetInputCount(), err)
 	}
 }

@@ -81,7 +81,12 @@ func TestFeedErrorsNameTheLine(t *testing.T) {
 		`{"odometry":{"stamp_ns":"80000000"` + "\n" // line 9: broken
 	file := filepath.Join(t.TempDir(), "bad.jsonl")
 	os.WriteFile(file, []byte(text), 0o644)
-	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, file)
+	// Not -create, which checks the whole file before it creates the robot
+	// (TestFeedCreateChecksFileFirst).
+	if _, errs, code := runCode(t, ctx, "", "create", "cart", "-addr", addr, "-config", exampleConfig); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", file)
 	if code != exitRefused || !strings.Contains(errs, "reckon: "+file+":9: ") || strings.Contains(errs, "line 9") {
 		t.Errorf("exit %d, stderr %q", code, errs)
 	}
@@ -113,6 +118,25 @@ func TestInterrupted(t *testing.T) {
 	out, errs, code = runCode(t, ctx, "", "watch", "-addr", addr, "-robot", "cart", "-format", "csv")
 	if code != exitInterrupted || !strings.HasPrefix(out, "stamp_ns,") || errs != "reckon watch: 1 poses of robots/cart printed, 0 reconnections\n" {
 		t.Errorf("watch: exit %d, stdout %q, stderr %q", code, out, errs)
+	}
+}
+
+// TestWatchNegativeFlags: a negative -count, -interval or -reconnect is a
+// usage error (exit 2). Before, -count -1 watched until interrupted, as 0
+// does, and the others were taken as 0, all without a word.
+func TestWatchNegativeFlags(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	if _, errs, code := runCode(t, context.Background(), "", "create", "cart", "-config", exampleConfig, "-addr", addr); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	for _, flag := range [][]string{{"-count", "-1"}, {"-interval", "-1s", "-count", "1"}, {"-reconnect", "-1s", "-count", "1"}} {
+		// The old code watched on until the context ended (exit 130).
+		ctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
+		_, errs, code := runCode(t, ctx, "", append([]string{"watch", "-addr", addr, "-robot", "cart"}, flag...)...)
+		cancel()
+		if code != exitUsage || !strings.Contains(errs, "none may be negative") {
+			t.Errorf("watch %v: exit %d, want %d\n%s", flag, code, exitUsage, errs)
+		}
 	}
 }
 

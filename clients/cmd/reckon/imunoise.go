@@ -24,7 +24,9 @@ rates, and prints their overlapping Allan deviation (IEEE Std 952-1997,
 Annex C), the noise terms read from its slopes (reading noise Q, angle
 random walk N, bias instability B, rate random walk K) and the IMU terms of
 the robot configuration they give. With -config and -out it writes a new
-configuration with those terms; it never overwrites the input.`)
+configuration with those terms; it never overwrites the input, and refuses
+a configuration whose imu_mode is none (the terms written depend on the
+mode).`)
 	fs.SetOutput(stderr)
 	config := fs.String("config", "", "YAML robot configuration to start from (with -out)")
 	out := fs.String("out", "", "the new YAML configuration (with -config); refused if it exists, unless -force")
@@ -60,6 +62,12 @@ configuration with those terms; it never overwrites the input.`)
 			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)
 		}
 	}
+	var cfg *pb.RobotConfig
+	if *config != "" {
+		if cfg, err = imuConfig(*config); err != nil {
+			return err
+		}
+	}
 	stamps, headings, err := readHeadings(ctx, pos[0])
 	if err != nil {
 		return err
@@ -85,10 +93,25 @@ configuration with those terms; it never overwrites the input.`)
 	if err := printIMUNoise(stdout, pos[0], len(headings), dt, pts, nz, terms, *horizon, how, *turnRate); err != nil {
 		return err
 	}
-	if *config == "" {
+	if cfg == nil {
 		return nil
 	}
-	return writeIMUConfig(*config, *out, filepath.Base(pos[0]), nz, terms, *horizon, *turnRate, stdout)
+	return writeIMUConfig(cfg, *config, *out, filepath.Base(pos[0]), nz, terms, *horizon, *turnRate, stdout)
+}
+
+// imuConfig reads the configuration to write the IMU terms into. One
+// whose imu_mode is none (or unset) is refused: its robot uses no IMU, so
+// the terms would change nothing, and which terms to write depends on the
+// mode the IMU will be used in.
+func imuConfig(path string) (*pb.RobotConfig, error) {
+	c, err := loadYAML(path)
+	if err != nil {
+		return nil, err
+	}
+	if m := c.GetImuMode(); m == pb.ImuMode_IMU_MODE_NONE || m == pb.ImuMode_IMU_MODE_UNSPECIFIED {
+		return nil, fmt.Errorf("%w: %s: imu_mode is none (or unset): the robot uses no IMU, and IMU terms would change nothing; set imu_mode to absolute or rotation (the terms written depend on it) and run again, or leave out -config and -out to print the terms only", errRefused, path)
+	}
+	return c, nil
 }
 
 // samePath says whether two paths name the same file, or would.
@@ -202,18 +225,15 @@ func configRows(t calib.IMUTerms) []configRow {
 	}
 }
 
-// writeIMUConfig writes the configuration at in, with the IMU terms the
-// robot uses set, to out, with a comment saying what changed. The terms
-// set depend on imu_mode: rotation sets the offset's random walk, which
-// is the heading's there (the IMU's zero drifting enters every turn it
-// reports; fusion.Config.HeadingDriftVarPerS), and keeps the turn term per
-// radian, which a static recording cannot see (scale factor errors); the
-// others set the heading and offset terms.
-func writeIMUConfig(in, out, file string, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64, stdout io.Writer) error {
-	c, err := loadYAML(in)
-	if err != nil {
-		return err
-	}
+// writeIMUConfig writes the configuration c, read from in, with the IMU
+// terms the robot uses set, to out, with a comment saying what changed.
+// The terms set depend on imu_mode: rotation sets the offset's random
+// walk, which is the heading's there (the IMU's zero drifting enters every
+// turn it reports; fusion.Config.HeadingDriftVarPerS), and keeps the turn
+// term per radian, which a static recording cannot see (scale factor
+// errors); absolute sets the heading and offset terms (imuConfig refuses
+// none).
+func writeIMUConfig(c *pb.RobotConfig, in, out, file string, nz calib.Noise, terms calib.IMUTerms, horizon, turnRate float64, stdout io.Writer) error {
 	rows := configRows(terms)
 	if c.GetImuMode() == pb.ImuMode_IMU_MODE_ROTATION {
 		rows = rows[1:2]

@@ -3,6 +3,7 @@ package main
 import (
 	"bufio"
 	"context"
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -201,6 +202,38 @@ func TestIMUNoiseHorizonFromFixes(t *testing.T) {
 	} {
 		if _, _, code := runCode(t, ctx, "", append(append([]string{"imu-noise"}, args...), rec)...); code != exitUsage {
 			t.Errorf("%v: exit %d, want %d", args, code, exitUsage)
+		}
+	}
+}
+
+// TestIMUNoiseConfigWithoutIMU: a configuration whose imu_mode is none,
+// or unset (none too), uses no IMU: imu-noise refuses to write its IMU
+// terms into it (exit 5, naming imu_mode and the remedy) before it reads
+// the recording, and writes no file. Before, it wrote the heading and
+// offset terms, which changed nothing, and said "wrote".
+func TestIMUNoiseConfigWithoutIMU(t *testing.T) {
+	dir := t.TempDir()
+	rec := filepath.Join(dir, "static.jsonl")
+	writeStatic(t, rec, 6000, 1e-3, 5e-4)
+	b, err := os.ReadFile("../../../testdata/robots/drive-wheel-turn.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i, mode := range []string{"imu_mode: none\n", ""} {
+		cfgText := strings.Replace(string(b), "imu_mode: absolute\n", mode, 1)
+		if cfgText == string(b) {
+			t.Fatal("drive-wheel-turn.yaml has no imu_mode: absolute")
+		}
+		cfg, out := filepath.Join(dir, "robot.yaml"), filepath.Join(dir, fmt.Sprintf("tuned-%d.yaml", i))
+		if err := os.WriteFile(cfg, []byte(cfgText), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		_, stderr, code := runCode(t, context.Background(), "", "imu-noise", rec, "-config", cfg, "-out", out)
+		if code != exitRefused || !strings.Contains(stderr, "imu_mode") || !strings.Contains(stderr, "absolute or rotation") {
+			t.Errorf("%q: exit %d, want %d naming imu_mode: %s", mode, code, exitRefused, stderr)
+		}
+		if _, err := os.Stat(out); !os.IsNotExist(err) {
+			t.Errorf("%q: %s written (%v)", mode, out, err)
 		}
 	}
 }

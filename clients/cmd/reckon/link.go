@@ -43,14 +43,8 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	if err != nil {
 		return err
 	}
-	c, err := cf.dial()
-	if err != nil {
-		return err
-	}
-	defer c.Close()
-	if err := createFirst(ctx, c, id, *create, *replace, stderr); err != nil {
-		return err
-	}
+	// The port first: a mistyped one must not leave a robot created (or
+	// replaced) behind.
 	var src io.ReadCloser
 	from := *port
 	if *port != "" {
@@ -66,6 +60,14 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 		return err
 	}
 	defer src.Close()
+	c, err := cf.dial()
+	if err != nil {
+		return err
+	}
+	defer c.Close()
+	if err := createFirst(ctx, c, id, *create, *replace, stderr); err != nil {
+		return err
+	}
 	sessCtx, stop := sessionContext(ctx)
 	defer stop()
 	sess, err := c.OpenIngest(sessCtx, name)

@@ -1,14 +1,12 @@
 package main
 
 import (
-	"bytes"
 	"context"
 	"io"
 	"log/slog"
 	"net"
 	"os"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -45,28 +43,60 @@ func dialUDP(t *testing.T, addr string) net.Conn {
 	return conn
 }
 
+// dialService connects to the service for the rest of the test.
+func dialService(t *testing.T, addr string) *client.Client {
+	t.Helper()
+	c, err := client.Dial(addr, client.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { c.Close() })
+	return c
+}
+
+// background is a command that startBackground runs.
+type background struct {
+	out, errb *syncBuffer // its standard output and standard error
+	done      chan error  // run's result, once it ends; closed after
+	stop      func()      // interrupts it, as Ctrl-C does (exit 130)
+}
+
+// startBackground runs "reckon args..." in a goroutine. It is interrupted
+// and waited for when the test ends, if it has not ended before.
+func startBackground(t *testing.T, args ...string) *background {
+	ctx, stop := context.WithCancel(context.Background())
+	r := &background{out: &syncBuffer{}, errb: &syncBuffer{}, done: make(chan error, 1), stop: stop}
+	go func() {
+		r.done <- run(ctx, args, nil, r.out, r.errb)
+		close(r.done)
+	}()
+	t.Cleanup(func() { stop(); <-r.done })
+	return r
+}
+
+// linkRun is a reckon link that startLink started.
+type linkRun struct {
+	*background
+	udpAddr string   // the UDP port it listens on
+	conn    net.Conn // dialled to that port
+}
+
+// startLink runs "reckon link args... -udp port" on a free UDP port of
+// loopback and dials that port.
+func startLink(t *testing.T, args ...string) *linkRun {
+	t.Helper()
+	udpAddr := freeUDP(t)
+	bg := startBackground(t, append(append([]string{"link"}, args...), "-udp", udpAddr)...)
+	return &linkRun{background: bg, udpAddr: udpAddr, conn: dialUDP(t, udpAddr)}
+}
+
 // TestLink: reckon link listens on UDP, creates the robot, takes 200 frames
 // of a cart driving straight (one sent twice) and, interrupted, prints its
 // summary.
 func TestLink(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-
-	// A free UDP port: taken, then let go for reckon link to take.
-	udpAddr := freeUDP(t)
-
-	linkCtx, stop := context.WithCancel(context.Background())
-	var out, errb bytes.Buffer
-	linkDone := make(chan error, 1)
-	go func() {
-		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
-	}()
-	c, err := client.Dial(addr, client.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer c.Close()
-	conn := dialUDP(t, udpAddr)
+	l := startLink(t, "-addr", addr, "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
+	c := dialService(t, addr)
 	const last = int64(199 * 10_000_000)
 	deadline := time.Now().Add(20 * time.Second)
 	for {
@@ -78,7 +108,7 @@ func TestLink(t *testing.T) {
 			f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 			b = bridge.AppendFrame(b, &f, nil)
 			if k%20 == 19 || k == 199 {
-				conn.Write(b)
+				l.conn.Write(b)
 				b = b[:0]
 			}
 		}
@@ -86,20 +116,20 @@ func TestLink(t *testing.T) {
 			break
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("the last frame never arrived\n%s%s", out.String(), errb.String())
+			t.Fatalf("the last frame never arrived\n%s%s", l.out.String(), l.errb.String())
 		}
 		time.Sleep(50 * time.Millisecond)
 	}
-	stop()
-	if err := <-linkDone; exitCode(err) != exitInterrupted {
-		t.Fatalf("link interrupted: %v (exit %d), want exit %d\n%s", err, exitCode(err), exitInterrupted, errb.String())
+	l.stop()
+	if err := <-l.done; exitCode(err) != exitInterrupted {
+		t.Fatalf("link interrupted: %v (exit %d), want exit %d\n%s", err, exitCode(err), exitInterrupted, l.errb.String())
 	}
-	s := out.String()
+	s := l.out.String()
 	if !strings.Contains(s, "frames: ") || !strings.Contains(s, " samples sent to robots/cart: applied ") || !strings.Contains(s, "too_old 0, invalid 0") {
 		t.Errorf("summary:\n%s", s)
 	}
-	if !strings.Contains(errb.String(), "linking udp "+udpAddr+" to robots/cart") {
-		t.Errorf("stderr: %s", errb.String())
+	if !strings.Contains(l.errb.String(), "linking udp "+l.udpAddr+" to robots/cart") {
+		t.Errorf("stderr: %s", l.errb.String())
 	}
 }
 
@@ -133,20 +163,8 @@ func TestLinkFlags(t *testing.T) {
 // the robot and its frames go on being taken on the new clock.
 func TestLinkReboot(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	udpAddr := freeUDP(t)
-	linkCtx, stop := context.WithCancel(context.Background())
-	var out, errb bytes.Buffer
-	linkDone := make(chan error, 1)
-	go func() {
-		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
-	}()
-	c, err := client.Dial(addr, client.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer c.Close()
-	conn := dialUDP(t, udpAddr)
+	l := startLink(t, "-addr", addr, "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
+	c := dialService(t, addr)
 	// Each boot's feed is sent again until its last stamp arrives (until
 	// the link listens, datagrams may be lost; duplicates are dropped).
 	for _, boot := range []struct {
@@ -161,7 +179,7 @@ func TestLinkReboot(t *testing.T) {
 				f := bridge.Frame{Type: bridge.FrameWheels, Boot: boot.boot, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 				b = bridge.AppendFrame(b, &f, nil)
 				if k%20 == 19 || k == boot.frames-1 {
-					conn.Write(b)
+					l.conn.Write(b)
 					b = b[:0]
 				}
 			}
@@ -170,7 +188,7 @@ func TestLinkReboot(t *testing.T) {
 				break
 			}
 			if time.Now().After(deadline) {
-				t.Fatalf("boot %d: the last frame never arrived (%v)\n%s%s", boot.boot, r, out.String(), errb.String())
+				t.Fatalf("boot %d: the last frame never arrived (%v)\n%s%s", boot.boot, r, l.out.String(), l.errb.String())
 			}
 			time.Sleep(50 * time.Millisecond)
 		}
@@ -179,9 +197,9 @@ func TestLinkReboot(t *testing.T) {
 	if err != nil || r.GetRun() != 2 || r.GetBootId() != bridge.BootID(2) {
 		t.Errorf("after the reboot: %v %v", r, err)
 	}
-	stop()
-	<-linkDone
-	if s := out.String(); !strings.Contains(s, " 1 restarts") || !strings.Contains(s, "too_old 0, invalid 0") {
+	l.stop()
+	<-l.done
+	if s := l.out.String(); !strings.Contains(s, " 1 restarts") || !strings.Contains(s, "too_old 0, invalid 0") {
 		t.Errorf("summary:\n%s", s)
 	}
 }
@@ -194,20 +212,8 @@ func TestLinkReboot(t *testing.T) {
 // them ("1 corrupted, 2 invalid") and nothing was said while it ran.
 func TestLinkSaysWhyFramesDrop(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	udpAddr := freeUDP(t)
-	linkCtx, stop := context.WithCancel(context.Background())
-	var out, errb bytes.Buffer
-	linkDone := make(chan error, 1)
-	go func() {
-		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
-	}()
-	c, err := client.Dial(addr, client.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer c.Close()
-	conn := dialUDP(t, udpAddr)
+	l := startLink(t, "-addr", addr, "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
+	c := dialService(t, addr)
 	frame := func(k int) bridge.Frame {
 		return bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 	}
@@ -217,10 +223,10 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 				return
 			}
 			if time.Now().After(deadline) {
-				t.Fatalf("frame %d never arrived\n%s%s", k, out.String(), errb.String())
+				t.Fatalf("frame %d never arrived\n%s%s", k, l.out.String(), l.errb.String())
 			}
 			f := frame(k) // until the link listens, datagrams may be lost
-			conn.Write(bridge.AppendFrame(nil, &f, nil))
+			l.conn.Write(bridge.AppendFrame(nil, &f, nil))
 		}
 	}
 	waitNewest(1) // stamp 0 is a new robot's newest too
@@ -240,25 +246,25 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 		}
 		b = bridge.AppendFrame(b, &f, nil)
 	}
-	conn.Write(b)
+	l.conn.Write(b)
 	waitNewest(39)
-	stop()
-	if err := <-linkDone; exitCode(err) != exitInterrupted {
-		t.Fatalf("link interrupted: %v (exit %d)\n%s", err, exitCode(err), errb.String())
+	l.stop()
+	if err := <-l.done; exitCode(err) != exitInterrupted {
+		t.Fatalf("link interrupted: %v (exit %d)\n%s", err, exitCode(err), l.errb.String())
 	}
 	for _, want := range []string{
 		"bridge: corrupted frame: crc: CRC ",
 		"bridge: invalid frame: type: 2, only 1 (wheel counts) is known",
 		"bridge: invalid frame: stamp: 50000 us is not after the last taken frame's 290000 us although its counter 30 is ahead of 29",
 	} {
-		if !strings.Contains(errb.String(), "frame dropped: "+want) {
-			t.Errorf("stderr does not say %q:\n%s", want, errb.String())
+		if !strings.Contains(l.errb.String(), "frame dropped: "+want) {
+			t.Errorf("stderr does not say %q:\n%s", want, l.errb.String())
 		}
-		if !strings.Contains(out.String(), "first of its kind: "+want) {
-			t.Errorf("summary does not say %q:\n%s", want, out.String())
+		if !strings.Contains(l.out.String(), "first of its kind: "+want) {
+			t.Errorf("summary does not say %q:\n%s", want, l.out.String())
 		}
 	}
-	if s := out.String(); !strings.Contains(s, "1 corrupted, 2 invalid") {
+	if s := l.out.String(); !strings.Contains(s, "1 corrupted, 2 invalid") {
 		t.Errorf("summary:\n%s", s)
 	}
 }
@@ -274,11 +280,7 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 // ran on (its stamps after the newest) starts no run.
 func TestLinkAfterPowerCycle(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	c, err := client.Dial(addr, client.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer c.Close()
+	c := dialService(t, addr)
 	// One link process per step: its boot byte, its first counter and
 	// stamp step (10 ms frames), and the run the robot is then in.
 	for i, step := range []struct {
@@ -290,15 +292,7 @@ func TestLinkAfterPowerCycle(t *testing.T) {
 		{1, 150, 50, 1}, // the link restarted, the controller ran on
 		{2, 0, 60, 2},   // power cycle: boot 2, clock from zero
 	} {
-		udpAddr := freeUDP(t)
-		linkCtx, stop := context.WithCancel(context.Background())
-		var out, errb bytes.Buffer
-		linkDone := make(chan error, 1)
-		go func() {
-			linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
-				"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
-		}()
-		conn := dialUDP(t, udpAddr)
+		l := startLink(t, "-addr", addr, "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
 		last := int64(step.from+step.count-1) * 10_000_000
 		var r interface {
 			GetNewestStampNs() int64
@@ -310,7 +304,7 @@ func TestLinkAfterPowerCycle(t *testing.T) {
 				f := bridge.Frame{Type: bridge.FrameWheels, Boot: step.boot, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
 				b = bridge.AppendFrame(b, &f, nil)
 				if k%20 == 19 || k == step.from+step.count-1 {
-					conn.Write(b)
+					l.conn.Write(b)
 					b = b[:0]
 				}
 			}
@@ -320,16 +314,13 @@ func TestLinkAfterPowerCycle(t *testing.T) {
 				break
 			}
 			if time.Now().After(deadline) {
-				stop()
-				<-linkDone
-				t.Fatalf("link %d: the last frame never arrived (%v)\n%s%s", i+1, robot, out.String(), errb.String())
+				t.Fatalf("link %d: the last frame never arrived (%v)\n%s%s", i+1, robot, l.out.String(), l.errb.String())
 			}
 		}
-		conn.Close()
-		stop()
-		<-linkDone
-		if r.GetRun() != step.run || !strings.Contains(out.String(), "invalid 0") {
-			t.Errorf("link %d: robot in run %d, want %d; summary:\n%s", i+1, r.GetRun(), step.run, out.String())
+		l.stop()
+		<-l.done
+		if r.GetRun() != step.run || !strings.Contains(l.out.String(), "invalid 0") {
+			t.Errorf("link %d: robot in run %d, want %d; summary:\n%s", i+1, r.GetRun(), step.run, l.out.String())
 		}
 	}
 }
@@ -345,17 +336,8 @@ func TestLinkPortGone(t *testing.T) {
 		t.Skipf("no pseudo-terminal: %v", err)
 	}
 	defer tty.Close()
-	var out, errb bytes.Buffer
-	linkDone := make(chan error, 1)
-	go func() {
-		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-serial", tty.Name(), "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, &out, &errb)
-	}()
-	c, err := client.Dial(addr, client.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer c.Close()
+	l := startBackground(t, "link", "-addr", addr, "-serial", tty.Name(), "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
+	c := dialService(t, addr)
 	for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(20 * time.Millisecond) {
 		f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
 		master.Write(bridge.AppendFrame(nil, &f, nil))
@@ -363,20 +345,20 @@ func TestLinkPortGone(t *testing.T) {
 			break
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("the frame never arrived\n%s%s", out.String(), errb.String())
+			t.Fatalf("the frame never arrived\n%s%s", l.out.String(), l.errb.String())
 		}
 	}
 	master.Close()
 	select {
-	case err = <-linkDone:
+	case err = <-l.done:
 	case <-time.After(20 * time.Second):
 		t.Fatal("the link did not end when its port went away")
 	}
 	if exitCode(err) != exitFailure || !strings.Contains(err.Error(), tty.Name()) {
 		t.Errorf("link ended with %v (exit %d), want exit %d naming %s", err, exitCode(err), exitFailure, tty.Name())
 	}
-	if !strings.Contains(out.String(), "samples sent to robots/cart: applied ") {
-		t.Errorf("summary:\n%s", out.String())
+	if !strings.Contains(l.out.String(), "samples sent to robots/cart: applied ") {
+		t.Errorf("summary:\n%s", l.out.String())
 	}
 }
 
@@ -388,50 +370,22 @@ func TestLinkPortGone(t *testing.T) {
 // its end; a link under systemd fed a robot nothing for hours in silence.
 func TestLinkSaysRefusalsWhileRunning(t *testing.T) {
 	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
-	udpAddr := freeUDP(t)
-	linkCtx, stop := context.WithCancel(context.Background())
-	defer stop()
-	errb := &lockedBuffer{}
-	linkDone := make(chan error, 1)
-	go func() {
-		linkDone <- run(linkCtx, []string{"link", "-addr", addr, "-udp", udpAddr, "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/drive-wheel-turn.yaml"}, nil, io.Discard, errb)
-	}()
-	conn := dialUDP(t, udpAddr)
+	l := startLink(t, "-addr", addr, "-robot", "robots/cart", "-create", "../../../testdata/robots/drive-wheel-turn.yaml")
 	const want = "counts has 3 entries for 2 wheels"
-	for k, deadline := 0, time.Now().Add(20*time.Second); !strings.Contains(errb.String(), want); k++ {
+	for k, deadline := 0, time.Now().Add(20*time.Second); !strings.Contains(l.errb.String(), want); k++ {
 		if time.Now().After(deadline) {
-			t.Fatalf("the refusals were not said while the link runs:\n%s", errb.String())
+			t.Fatalf("the refusals were not said while the link runs:\n%s", l.errb.String())
 		}
 		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
-		conn.Write(bridge.AppendFrame(nil, &f, nil))
+		l.conn.Write(bridge.AppendFrame(nil, &f, nil))
 		time.Sleep(10 * time.Millisecond)
 	}
 	time.Sleep(200 * time.Millisecond) // more refusals, not said again
-	stop()
-	<-linkDone
-	if n := strings.Count(errb.String(), want); n != 1 {
-		t.Errorf("said %d times, want once:\n%s", n, errb.String())
+	l.stop()
+	<-l.done
+	if n := strings.Count(l.errb.String(), want); n != 1 {
+		t.Errorf("said %d times, want once:\n%s", n, l.errb.String())
 	}
-}
-
-// lockedBuffer is a bytes.Buffer that a running command writes while the
-// test reads it.
-type lockedBuffer struct {
-	mu sync.Mutex
-	b  bytes.Buffer
-}
-
-func (l *lockedBuffer) Write(p []byte) (int, error) {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.b.Write(p)
-}
-
-func (l *lockedBuffer) String() string {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.b.String()
 }
 
 // TestLinkTokenRefused: the service restarts with another token (rotated
@@ -463,22 +417,15 @@ func TestLinkTokenRefused(t *testing.T) {
 		}
 	}
 	addr, stop := serveToken("127.0.0.1:0", "alpha-token")
-	udpAddr := freeUDP(t)
-	errb := &lockedBuffer{}
-	linkDone := make(chan error, 1)
-	go func() {
-		linkDone <- run(context.Background(), []string{"link", "-addr", addr, "-token-file", tokenFile, "-udp", udpAddr, "-robot", "robots/cart",
-			"-create", "../../../testdata/robots/free-wheel-turn.yaml"}, nil, io.Discard, errb)
-	}()
-	conn := dialUDP(t, udpAddr)
+	l := startLink(t, "-addr", addr, "-token-file", tokenFile, "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
 	send := func(k int) {
 		f := bridge.Frame{Type: bridge.FrameWheels, Counter: uint32(k), StampUs: uint64(10_000 * k), Counts: []int32{int32(200 * k), int32(200 * k), 0}}
-		conn.Write(bridge.AppendFrame(nil, &f, nil))
+		l.conn.Write(bridge.AppendFrame(nil, &f, nil))
 	}
 	k := 0
-	for deadline := time.Now().Add(20 * time.Second); !strings.Contains(errb.String(), "linking udp"); k++ {
+	for deadline := time.Now().Add(20 * time.Second); !strings.Contains(l.errb.String(), "linking udp"); k++ {
 		if time.Now().After(deadline) {
-			t.Fatalf("the link did not start:\n%s", errb.String())
+			t.Fatalf("the link did not start:\n%s", l.errb.String())
 		}
 		send(k)
 		time.Sleep(10 * time.Millisecond)
@@ -489,7 +436,7 @@ func TestLinkTokenRefused(t *testing.T) {
 	var linkErr error
 	for deadline := time.Now().Add(30 * time.Second); linkErr == nil; k++ {
 		select {
-		case linkErr = <-linkDone:
+		case linkErr = <-l.done:
 			if linkErr == nil {
 				t.Fatal("the link ended without an error")
 			}
@@ -497,7 +444,7 @@ func TestLinkTokenRefused(t *testing.T) {
 		default:
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("the link did not end when its token was refused; %d lines on stderr", strings.Count(errb.String(), "\n"))
+			t.Fatalf("the link did not end when its token was refused; %d lines on stderr", strings.Count(l.errb.String(), "\n"))
 		}
 		send(k)
 		time.Sleep(10 * time.Millisecond)
@@ -505,7 +452,37 @@ func TestLinkTokenRefused(t *testing.T) {
 	if exitCode(linkErr) != exitFailure || status.Code(linkErr) != codes.Unauthenticated {
 		t.Errorf("link ended with %v (exit %d), want Unauthenticated, exit %d", linkErr, exitCode(linkErr), exitFailure)
 	}
-	if n := strings.Count(errb.String(), "opening it again"); n > 3 {
-		t.Errorf("the stream was opened again %d times:\n%s", n, errb.String())
+	if n := strings.Count(l.errb.String(), "opening it again"); n > 3 {
+		t.Errorf("the stream was opened again %d times:\n%s", n, l.errb.String())
+	}
+}
+
+// TestLinkOpensItsPortFirst: the link opens its serial port (or UDP
+// socket) before it creates the robot. A mistyped port exits 1 naming it
+// and creates no robot, and with -replace the robot that existed keeps its
+// configuration. Before, the robot was created (or replaced, its journal
+// set aside) first and left behind when the port failed to open.
+func TestLinkOpensItsPortFirst(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	ctx := context.Background()
+	c := dialService(t, addr)
+	const tty = "/nonexistent/ttyACM9"
+	link := func(args ...string) {
+		t.Helper()
+		_, errs, code := runCode(t, ctx, "", append([]string{"link", "-addr", addr, "-robot", "cart", "-serial", tty, "-create", exampleConfig}, args...)...)
+		if code != exitFailure || !strings.Contains(errs, tty) {
+			t.Errorf("link %v on a missing port: exit %d, want %d naming it\n%s", args, code, exitFailure, errs)
+		}
+	}
+	link()
+	if r, err := c.GetRobot(ctx, "robots/cart"); status.Code(err) != codes.NotFound {
+		t.Fatalf("robot after the link failed to open its port: %v %v", r, err)
+	}
+	if _, errs, code := runCode(t, ctx, "", "create", "cart", "-addr", addr, "-config", otherConfig(t)); code != exitOK {
+		t.Fatalf("create: exit %d, %s", code, errs)
+	}
+	link("-replace")
+	if r, err := c.GetRobot(ctx, "robots/cart"); err != nil || r.GetConfig().GetGateProbability() != 0.9 {
+		t.Errorf("the robot after link -replace failed to open its port: %v %v", r.GetConfig(), err)
 	}
 }

@@ -9,6 +9,7 @@ import (
 
 	"google.golang.org/protobuf/proto"
 
+	"reckon.example/clients/review"
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server"
@@ -68,7 +69,8 @@ is then 1.`)
 		}
 		ow = &heldWriter{pw: pw, resolve: *format != "jsonl"}
 	}
-	ow = &spanWriter{next: ow, span: span}
+	sw := &spanWriter{next: ow, span: span}
+	ow = sw
 	rf := &runFilter{next: ow, want: *run}
 	var override *pb.RobotConfig
 	if *config != "" {
@@ -89,6 +91,9 @@ is then 1.`)
 	}
 	if err == nil && rf.want > rf.last {
 		err = fmt.Errorf("run %d asked for; the recording holds runs 1 to %d", rf.want, rf.last)
+	}
+	if err == nil && span != (timeSpan{}) && sw.inside == 0 {
+		err = review.EmptyStretch(span.fromNs, span.toNs, sw.lastNs)
 	}
 	if lf != nil {
 		if cerr := lf.close(err == nil); err == nil {
@@ -257,6 +262,8 @@ type spanWriter struct {
 	span    timeSpan
 	started bool
 	startNs int64
+	inside  int   // inputs passed on, run starts aside
+	lastNs  int64 // the latest input's offset from its run's start
 }
 
 func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestResponse) error {
@@ -270,10 +277,12 @@ func (sw *spanWriter) input(s *pb.Sample, p *pb.FusedPose, resp *pb.IngestRespon
 	if !sw.started {
 		sw.started, sw.startNs = true, stamp
 	}
+	sw.lastNs = max(sw.lastNs, stamp-sw.startNs)
 	if !sw.span.holds(stamp - sw.startNs) {
 		// It may still resolve a held fix inside the span.
 		return sw.next.outside(resp)
 	}
+	sw.inside++
 	return sw.next.input(s, p, resp)
 }
 

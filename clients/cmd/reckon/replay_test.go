@@ -478,6 +478,57 @@ func TestTimeSpanToBeforeFrom(t *testing.T) {
 	}
 }
 
+// TestTimeSpanPastTheEnd: a -from past the end of the run (20 s of a run
+// of 10 s) holds no input: replay, review and compare say so, naming
+// where the run's inputs end, with exit 2 (a bad argument), and write no
+// output. Before, replay wrote nothing at all (not even the CSV header),
+// and review and compare a report of 0 inputs that still showed the whole
+// run's NIS, all with exit status 0.
+func TestTimeSpanPastTheEnd(t *testing.T) {
+	dir := t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-config", exampleConfig, "-samples", exampleSamples, "-from", "20", "-out", filepath.Join(dir, "replay.csv")},
+		{"review", "-config", exampleConfig, "-samples", exampleSamples, "-from", "20", "-out", filepath.Join(dir, "review")},
+		{"compare", "-config", exampleConfig, "-samples", exampleSamples, "-b", exampleConfig, "-from", "20s", "-out", filepath.Join(dir, "compare")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitUsage || !strings.Contains(errs, "no input is stamped from 20.000 s to its end after the run's start; the inputs reach 10.000 s") {
+			t.Errorf("%s -from 20: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+	}
+	for _, out := range []string{"replay.csv", "review/report.html", "compare/report.html"} {
+		if _, err := os.Stat(filepath.Join(dir, out)); !os.IsNotExist(err) {
+			t.Errorf("%s written (%v)", out, err)
+		}
+	}
+}
+
+// TestReviewStretchNIS: the NIS record of a sensor in the review of a
+// stretch (-from 5 -to 6) is the stretch's: its applied count is the
+// stretch's applied fixes (all of them the camera's). Before, it was the
+// whole run's (94 applied against the stretch's 9), and so was the
+// consistency verdict it gave.
+func TestReviewStretchNIS(t *testing.T) {
+	out, errs, code := runCode(t, context.Background(), "", "review", "-config", exampleConfig, "-samples", exampleSamples, "-from", "5", "-to", "6", "-out", filepath.Join(t.TempDir(), "review"))
+	if code != exitOK {
+		t.Fatalf("review: exit %d\n%s", code, errs)
+	}
+	var fixes, nis int
+	for _, line := range strings.Split(out, "\n") {
+		line = strings.TrimSpace(line)
+		if v, ok := strings.CutPrefix(line, "fixes:"); ok {
+			fmt.Sscanf(strings.TrimSpace(v), "applied %d", &fixes)
+		}
+		if _, v, ok := strings.Cut(line, "NIS of camera:"); ok {
+			_, after, _ := strings.Cut(v, " over ")
+			fmt.Sscanf(after, "%d applied", &nis)
+		}
+	}
+	if fixes == 0 || nis != fixes {
+		t.Errorf("the stretch applied %d fixes; the camera's NIS line counts %d\n%s", fixes, nis, out)
+	}
+}
+
 // TestReviewOfUnreadableSamples: a samples file with no sample that can
 // be read (not JSON Lines at all, or empty) is refused naming the file
 // and line, exit 5, as replay refuses it; review wrote a report of 0
@@ -549,6 +600,7 @@ func TestReplayFailureKeepsTheOutput(t *testing.T) {
 		{"-config", bad, "-samples", exampleSamples},
 		{"-journal", dir, "-robot", "cart"},
 		{"-config", exampleConfig, "-samples", exampleSamples, "-run", "2"},
+		{"-config", exampleConfig, "-samples", exampleSamples, "-from", "100"}, // TestTimeSpanPastTheEnd
 	} {
 		if err := os.WriteFile(out, []byte(before), 0o644); err != nil {
 			t.Fatal(err)
@@ -560,14 +612,6 @@ func TestReplayFailureKeepsTheOutput(t *testing.T) {
 		if b, _ := os.ReadFile(out); string(b) != before {
 			t.Errorf("%v: the failed replay (%v) changed -out to %q\n%s", args, err, b, errs)
 		}
-	}
-	// A replay that succeeds without a row (a stretch past the run's end)
-	// leaves an empty file, not the older one.
-	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples, "-from", "100"); err != nil {
-		t.Fatalf("%v\n%s", err, errs)
-	}
-	if b, err := os.ReadFile(out); err != nil || len(b) != 0 {
-		t.Errorf("a replay of no rows left %q (%v)", b, err)
 	}
 	// A replay that succeeds writes it.
 	if _, errs, err := runCmd(t, "replay", "-out", out, "-config", exampleConfig, "-samples", exampleSamples); err != nil {
@@ -633,5 +677,23 @@ func TestReplaySetAside(t *testing.T) {
 	}
 	if _, errs, err := runCmd(t, "replay", "-journal", dir, "-robot", "cart"); err == nil || !strings.Contains(err.Error()+errs, "no journal for cart") {
 		t.Errorf("replay of the deleted live name: %v\n%s", err, errs)
+	}
+}
+
+// TestOfflineNoSuchRobot: the offline commands given a robot that the
+// journal directory holds no journal of exit 4, "no such robot", as the
+// commands that ask the service do. Before, they exited 1 (any other
+// failure) with the same message.
+func TestOfflineNoSuchRobot(t *testing.T) {
+	dir, out := t.TempDir(), t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-journal", dir, "-robot", "nosuch"},
+		{"review", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "review")},
+		{"compare", "-journal", dir, "-robot", "nosuch", "-b", exampleConfig, "-out", filepath.Join(out, "compare")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitNotFound || !strings.Contains(errs, "no journal for nosuch in "+dir) {
+			t.Errorf("%s of a robot without a journal: exit %d, want %d\n%s", args[0], code, exitNotFound, errs)
+		}
 	}
 }

@@ -5,6 +5,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math"
 	"time"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -36,8 +37,18 @@ func (p *poseFlags) given(fs *flag.FlagSet) bool {
 	return isSet(fs, "x") && isSet(fs, "y") && isSet(fs, "heading")
 }
 
-// read returns the pose and its covariance, or a usage error.
+// read returns the pose and its covariance, or a usage error. A heading,
+// or its standard deviation, beyond a full turn was given in degrees
+// (the check fusion.Config.CheckBounds makes of a configuration's angles).
 func (p *poseFlags) read(fs *flag.FlagSet) (*pb.FloorPose, []float64, error) {
+	for _, a := range []struct {
+		name string
+		v    float64
+	}{{"heading", *p.heading}, {"std-rad", *p.stdRad}} {
+		if math.Abs(a.v) > 2*math.Pi {
+			return nil, nil, usagef(fs, "-%s %v is more than a full turn (2 pi rad): degrees? It is in radians", a.name, a.v)
+		}
+	}
 	var cov []float64
 	switch {
 	case *p.cov != "" && (isSet(fs, "std-m") || isSet(fs, "std-rad")):

@@ -40,6 +40,9 @@ exits 4. Interrupted, it prints how many poses it printed and exits 130.`)
 	if *robot == "" || len(pos) != 0 {
 		return usagef(fs, "needs -robot NAME")
 	}
+	if *count < 0 || *interval < 0 || *reconnect < 0 {
+		return usagef(fs, "-count %d, -interval %v, -reconnect %v: none may be negative", *count, *interval, *reconnect)
+	}
 	name, _, err := robotName(*robot)
 	if err != nil {
 		return err

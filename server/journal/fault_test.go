@@ -139,58 +139,56 @@ func restart(t *testing.T, fsys journal.FS, min int, exact bool) int {
 // it.
 func checkFromSnapshot(t *testing.T, fsys journal.FS, n int) journal.Scan {
 	t.Helper()
-	var snap uint64
-	var seqs []uint64
-	sc, err := journal.ReadFS(fsys, dir, "cart", journal.Visitor{
-		Snapshot: func(s *pb.JournalSnapshot) error {
-			snap, seqs = s.GetSequence(), seqs[:0]
-			return nil
-		},
-		Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
-			seqs = append(seqs, in.GetSequence())
-			return nil
-		}})
-	if err != nil {
-		t.Fatalf("read from the last snapshot: %v", err)
-	}
-	if len(sc.Damage) > 0 {
-		t.Errorf("read from the last snapshot: damage in a journal that only met faults and crashes: %v", sc.Damage[0])
-	}
-	for i, s := range seqs {
-		if s != snap+uint64(i)+1 {
-			t.Fatalf("read from the last snapshot (%d): pair %d has sequence %d", snap, i+1, s)
-		}
-	}
+	snap, seqs, sc := readChecked(t, fsys, true)
 	if int(snap)+len(seqs) != n {
 		t.Fatalf("read from the last snapshot (%d): %d pairs after it, want up to %d", snap, len(seqs), n)
 	}
 	return sc
 }
 
-// check reads the journal and checks that it holds the pairs 1 to n, in
-// order, once each, n at least min (exactly if exact), without an error
-// and without damage (a torn tail is not damage).
-func check(t *testing.T, fsys journal.FS, min int, exact bool) int {
+// readChecked reads the journal, from its last snapshot if fromSnapshot,
+// and checks that it reads without an error and without damage (a torn
+// tail is not damage), that every input is paired with its own output and
+// that the inputs follow the snapshot (or start at 1) in order, once each.
+// It returns the snapshot's sequence (0: none) and the inputs' after it.
+func readChecked(t *testing.T, fsys journal.FS, fromSnapshot bool) (snap uint64, seqs []uint64, sc journal.Scan) {
 	t.Helper()
-	var seqs []uint64
-	sc, err := journal.ReadFS(fsys, dir, "cart", journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
+	what := "read"
+	v := journal.Visitor{Pair: func(in *pb.JournalInput, out *pb.JournalOutput) error {
 		if in.GetSequence() != out.GetResponse().GetSequence() {
-			t.Errorf("input %d paired with output %d", in.GetSequence(), out.GetResponse().GetSequence())
+			t.Errorf("%s: input %d paired with output %d", what, in.GetSequence(), out.GetResponse().GetSequence())
 		}
 		seqs = append(seqs, in.GetSequence())
 		return nil
-	}})
-	if err != nil {
-		t.Fatalf("read: %v", err)
-	}
-	if len(sc.Damage) > 0 {
-		t.Errorf("damage in a journal that only met faults and crashes: %v", sc.Damage[0])
-	}
-	for i, s := range seqs {
-		if s != uint64(i+1) {
-			t.Fatalf("pair %d has sequence %d", i+1, s)
+	}}
+	if fromSnapshot {
+		what = "read from the last snapshot"
+		v.Snapshot = func(s *pb.JournalSnapshot) error {
+			snap, seqs = s.GetSequence(), seqs[:0]
+			return nil
 		}
 	}
+	sc, err := journal.ReadFS(fsys, dir, "cart", v)
+	if err != nil {
+		t.Fatalf("%s: %v", what, err)
+	}
+	if len(sc.Damage) > 0 {
+		t.Errorf("%s: damage in a journal that only met faults and crashes: %v", what, sc.Damage[0])
+	}
+	for i, s := range seqs {
+		if s != snap+uint64(i)+1 {
+			t.Fatalf("%s (snapshot %d): pair %d has sequence %d", what, snap, i+1, s)
+		}
+	}
+	return snap, seqs, sc
+}
+
+// check reads the journal and checks that it holds the pairs 1 to n, in
+// order, once each, n at least min (exactly if exact), without an error
+// and without damage (readChecked).
+func check(t *testing.T, fsys journal.FS, min int, exact bool) int {
+	t.Helper()
+	_, seqs, _ := readChecked(t, fsys, false)
 	if len(seqs) < min || (exact && len(seqs) != min) {
 		t.Fatalf("%d pairs in the journal, want %d (exact %v)", len(seqs), min, exact)
 	}

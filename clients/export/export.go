@@ -51,15 +51,16 @@ type Options struct {
 	Deleted bool
 	// Run, if not 0, exports only run Run of each journal (RunRow.RunNumber;
 	// a controller restart begins a run); journals with fewer runs give
-	// no rows.
+	// no rows, and when no journal holds run Run the error wraps
+	// journal.ErrNoRun.
 	Run int64
 	// RowGroupRows is the number of rows per Parquet row group (0: 65536).
 	RowGroupRows int
 }
 
 // ErrNoRuns is returned when the directory holds no journal of the robots
-// asked for.
-var ErrNoRuns = errors.New("no journal to export")
+// asked for; it wraps journal.ErrNoJournal.
+var ErrNoRuns = fmt.Errorf("%w to export", journal.ErrNoJournal)
 
 // Export replays the journals in dir and writes the four tables into out,
 // which it creates if needed; it returns the rows of runs.parquet. A
@@ -102,7 +103,7 @@ func Export(ctx context.Context, dir, out string, opt Options) ([]RunRow, error)
 		// Empty tables with no word said that the journals hold no
 		// inputs, which they may.
 		t.abandon()
-		return nil, fmt.Errorf("%w: no journal holds a run %d", ErrNoRuns, opt.Run)
+		return nil, fmt.Errorf("%w: no journal holds a run %d", journal.ErrNoRun, opt.Run)
 	}
 	return rows, t.close()
 }

@@ -133,8 +133,8 @@ func TestExportRunsOfARebootedJournal(t *testing.T) {
 	// No journal holds a run 3: an error, as replay's and review's -run
 	// past the last, not empty tables that say the runs had no inputs.
 	empty := t.TempDir()
-	if none, err := Export(context.Background(), dir, empty, Options{Run: 3}); !errors.Is(err, ErrNoRuns) || !strings.Contains(err.Error(), "run 3") || len(none) != 0 {
-		t.Errorf("Options.Run 3: %v %v; want ErrNoRuns naming run 3", none, err)
+	if none, err := Export(context.Background(), dir, empty, Options{Run: 3}); !errors.Is(err, journal.ErrNoRun) || !strings.Contains(err.Error(), "run 3") || len(none) != 0 {
+		t.Errorf("Options.Run 3: %v %v; want journal.ErrNoRun naming run 3", none, err)
 	}
 	if left, _ := os.ReadDir(empty); len(left) != 0 {
 		t.Errorf("Options.Run 3 left %v", left)

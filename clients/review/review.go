@@ -422,19 +422,21 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	defer fw.close()
 	a := &accumulator{run: run, fixAt: map[uint64]int{}, nis: map[string]*nisSeries{}, maxPoints: opt.MaxPoints}
 	rc := &recorder{run: run, a: a, fw: fw, progress: opt.Progress, fromNs: opt.FromNs, toNs: opt.ToNs, keep: true, want: max(src.Run, 1)}
+	// An input refused leaves no export of a track behind.
+	discard := func(err error) (*Run, error) {
+		fw.close()
+		os.Remove(run.FilteredCSV)
+		return nil, err
+	}
 	fr, err := rc.replay(src)
 	if err != nil {
-		fw.close()
-		os.Remove(run.FilteredCSV)
-		return nil, err
+		return discard(err)
 	}
 	if err := rc.runs(fr, src.Run); err != nil {
-		return nil, err
+		return discard(err)
 	}
 	if (opt.FromNs > 0 || opt.ToNs > 0) && run.Summary.Inputs == 0 {
-		fw.close()
-		os.Remove(run.FilteredCSV)
-		return nil, EmptyStretch(opt.FromNs, opt.ToNs, rc.endNewestNs-run.Summary.RunStartNs)
+		return discard(EmptyStretch(opt.FromNs, opt.ToNs, rc.endNewestNs-run.Summary.RunStartNs))
 	}
 	rc.add(fr, true, fr.Run() == rc.want)
 	run.Summary.markers(fr.FinishLandmarkOffsets())
@@ -739,7 +741,7 @@ func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
 	sum := &rc.run.Summary
 	sum.Run, sum.Runs = rc.want, fr.Run()
 	if rc.want > fr.Run() {
-		return fmt.Errorf("%w: run %d asked for; the recording holds runs 1 to %d", ErrNoRun, rc.want, fr.Run())
+		return NoRun(rc.want, fr.Run())
 	}
 	if fr.Run() > 1 {
 		sum.RunNote = fmt.Sprintf("this report covers run %d of the %d runs recorded (a controller restart begins a run, on a clock of its own); review another with -run N", rc.want, fr.Run())
@@ -750,8 +752,11 @@ func (rc *recorder) runs(fr *fusion.Robot, asked uint64) error {
 	return nil
 }
 
-// ErrNoRun is returned for a run the recording does not hold.
-var ErrNoRun = errors.New("no such run")
+// NoRun is the journal.ErrNoRun of run want asked of a recording that
+// holds runs 1 to runs.
+func NoRun(want, runs uint64) error {
+	return fmt.Errorf("%w: run %d asked for; the recording holds runs 1 to %d", journal.ErrNoRun, want, runs)
+}
 
 // ErrEmptyStretch is returned when no input of the run is stamped inside
 // the stretch asked for (Options.FromNs, ToNs).

@@ -27,6 +27,10 @@ var ErrGap = errors.New("journal gap")
 // directory holds no journal of.
 var ErrNoJournal = errors.New("no journal")
 
+// ErrNoRun is wrapped by the error of a reader of a journal asked for a
+// run (a controller restart begins one) that the journal does not hold.
+var ErrNoRun = errors.New("no such run")
+
 // ErrLockHeld is wrapped by the error of an FS's Lock when another holder
 // has the lock; Lock turns it into a *LockedError.
 var ErrLockHeld = errors.New("lock held by another")

@@ -55,7 +55,7 @@ func exitCode(err error) int {
 		return exitOK
 	case errors.Is(err, errInterrupted), errors.Is(err, context.Canceled):
 		return exitInterrupted
-	case errors.As(err, &ue), errors.Is(err, review.ErrEmptyStretch):
+	case errors.As(err, &ue), errors.Is(err, review.ErrEmptyStretch), errors.Is(err, journal.ErrNoRun):
 		return exitUsage
 	case errors.Is(err, journal.ErrNoJournal):
 		return exitNotFound

@@ -8,6 +8,7 @@ import (
 	"path/filepath"
 
 	"reckon.example/clients/export"
+	"reckon.example/server/journal"
 )
 
 func runExport(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -47,8 +48,12 @@ names carry their units (stamp_ns, x_m, cov_xx_m2).`)
 	if *run < 0 {
 		return usagef(fs, "-run must be 0 (every run) or a run number, got %d", *run)
 	}
+	made := newDirs(*out)
 	runs, err := export.Export(ctx, *dir, *out, export.Options{Robots: robots, Deleted: *deleted, RowGroupRows: *rowGroup, Run: *run})
-	if errors.Is(err, export.ErrNoRuns) {
+	if err != nil {
+		made()
+	}
+	if errors.Is(err, export.ErrNoRuns) || errors.Is(err, journal.ErrNoRun) {
 		return fmt.Errorf("%s: %w", *dir, err)
 	}
 	if err != nil {

@@ -90,7 +90,7 @@ is then 1.`)
 		err = ferr
 	}
 	if err == nil && rf.want > rf.last {
-		err = fmt.Errorf("run %d asked for; the recording holds runs 1 to %d", rf.want, rf.last)
+		err = review.NoRun(rf.want, rf.last)
 	}
 	if err == nil && span != (timeSpan{}) && sw.inside == 0 {
 		err = review.EmptyStretch(span.fromNs, span.toNs, sw.lastNs)

@@ -682,18 +682,70 @@ func TestReplaySetAside(t *testing.T) {
 
 // TestOfflineNoSuchRobot: the offline commands given a robot that the
 // journal directory holds no journal of exit 4, "no such robot", as the
-// commands that ask the service do. Before, they exited 1 (any other
-// failure) with the same message.
+// commands that ask the service do, and leave no -out directory of their
+// own behind. Before, they exited 1 (any other failure) with the same
+// message; then export still did, and review, compare and export left an
+// empty -out directory.
 func TestOfflineNoSuchRobot(t *testing.T) {
 	dir, out := t.TempDir(), t.TempDir()
-	for _, args := range [][]string{
-		{"replay", "-journal", dir, "-robot", "nosuch"},
-		{"review", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "review")},
-		{"compare", "-journal", dir, "-robot", "nosuch", "-b", exampleConfig, "-out", filepath.Join(out, "compare")},
+	for _, c := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"replay", "-journal", dir, "-robot", "nosuch"}, "no journal for nosuch in " + dir},
+		{[]string{"review", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "review")}, "no journal for nosuch in " + dir},
+		{[]string{"compare", "-journal", dir, "-robot", "nosuch", "-b", exampleConfig, "-out", filepath.Join(out, "compare")}, "no journal for nosuch in " + dir},
+		{[]string{"export", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "export", "tables")}, `no journal to export for robot "nosuch"`},
 	} {
-		_, errs, code := runCode(t, context.Background(), "", args...)
-		if code != exitNotFound || !strings.Contains(errs, "no journal for nosuch in "+dir) {
-			t.Errorf("%s of a robot without a journal: exit %d, want %d\n%s", args[0], code, exitNotFound, errs)
+		_, errs, code := runCode(t, context.Background(), "", c.args...)
+		if code != exitNotFound || !strings.Contains(errs, c.want) {
+			t.Errorf("%s of a robot without a journal: exit %d, want %d and %q\n%s", c.args[0], code, exitNotFound, c.want, errs)
 		}
+	}
+	if left, _ := os.ReadDir(out); len(left) != 0 {
+		t.Errorf("left behind: %v", left)
+	}
+}
+
+// TestOfflineNoSuchRun: every command that takes -run refuses a run past
+// the recording's last as a usage error (exit 2), as -from and -to outside
+// it, naming the runs it holds, and leaves no output behind: no -out
+// directory of its own (review, compare, export) and no file (replay,
+// tune). Before, replay, review and export exited 1, tune and calibrate 5,
+// export left an empty -out directory and review one holding the filtered
+// track's header.
+func TestOfflineNoSuchRun(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	out := t.TempDir()
+	src := []string{"-journal", dir, "-robot", "cart", "-run", "2"}
+	for _, c := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"replay", "-out", filepath.Join(out, "replay.csv")}, "the recording holds runs 1 to 1"},
+		{[]string{"review", "-out", filepath.Join(out, "review")}, "the recording holds runs 1 to 1"},
+		{[]string{"compare", "-b", exampleConfig, "-out", filepath.Join(out, "compare")}, "the recording holds runs 1 to 1"},
+		{[]string{"export", "-out", filepath.Join(out, "export")}, "no journal holds a run 2"},
+		{[]string{"tune", "-out", filepath.Join(out, "tuned.yaml")}, "the recording holds runs 1 to 1"},
+		{[]string{"calibrate", "-out", filepath.Join(out, "calibrated.yaml")}, "the recording holds runs 1 to 1"},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", append(c.args, src...)...)
+		if code != exitUsage || !strings.Contains(errs, c.want) {
+			t.Errorf("%s -run 2 of 1 run: exit %d, want %d and %q\n%s", c.args[0], code, exitUsage, c.want, errs)
+		}
+	}
+	if left, _ := os.ReadDir(out); len(left) != 0 {
+		t.Errorf("left behind: %v", left)
+	}
+	// A directory that was there before is the user's: it stays.
+	mine := filepath.Join(out, "mine")
+	if err := os.Mkdir(mine, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	if _, _, code := runCode(t, context.Background(), "", append([]string{"review", "-out", mine}, src...)...); code != exitUsage {
+		t.Errorf("review -run 2 into an existing directory: exit %d", code)
+	}
+	if _, err := os.Stat(mine); err != nil {
+		t.Errorf("review removed the existing -out directory: %v", err)
 	}
 }

@@ -169,9 +169,11 @@ its own; the default is run 1, and the summary names the others).`)
 	label := review.Label(src)
 	dir := sf.outDir(label)
 	prog, done := progress(stderr, "replaying and smoothing")
+	made := newDirs(dir)
 	run, err := review.Analyze(src, dir, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 	done()
 	if err != nil {
+		made()
 		return err
 	}
 	return writeReports(stdout, dir, "Review of "+run.Robot+" ("+run.Label+")", run)
@@ -202,20 +204,26 @@ their differences.`)
 		return err
 	}
 	dir := sf.outDir(review.Label(src) + "-compare")
-	var runs []*review.Run
+	// Both configurations are read before either run is replayed, so that a
+	// bad -b leaves no half of a comparison behind.
+	srcs := []review.Source{src, src}
 	for i, path := range []string{*a, *b} {
-		s := src
-		s.Label = fmt.Sprintf("%c-%s", 'a'+i, "own")
+		srcs[i].Label = fmt.Sprintf("%c-%s", 'a'+i, "own")
 		if path != "" {
-			if s.Override, err = loadYAML(path); err != nil {
+			if srcs[i].Override, err = loadYAML(path); err != nil {
 				return err
 			}
-			s.Label = fmt.Sprintf("%c-%s", 'a'+i, strings.TrimSuffix(filepath.Base(path), filepath.Ext(path)))
+			srcs[i].Label = fmt.Sprintf("%c-%s", 'a'+i, strings.TrimSuffix(filepath.Base(path), filepath.Ext(path)))
 		}
+	}
+	made := newDirs(dir)
+	var runs []*review.Run
+	for _, s := range srcs {
 		prog, done := progress(stderr, "replaying "+s.Label)
 		run, err := review.Analyze(s, dir, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 		done()
 		if err != nil {
+			made()
 			return fmt.Errorf("%s: %w", s.Label, err)
 		}
 		runs = append(runs, run)

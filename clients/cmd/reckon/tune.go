@@ -291,7 +291,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		}
 	}
 	if want > run {
-		return nil, fmt.Errorf("%s: %w: run %d asked for; the recording holds runs 1 to %d", path, errRefused, want, run)
+		return nil, fmt.Errorf("%s: %w", path, review.NoRun(want, run))
 	}
 	if len(inputs) == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)

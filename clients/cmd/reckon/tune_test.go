@@ -232,7 +232,7 @@ func TestTuneAndCalibrateTakeOneRun(t *testing.T) {
 			t.Errorf("%s -run %q: the two runs' recording gives\n%s\nthe run alone\n%s", c.cmd, c.run, g, w)
 		}
 	}
-	if _, errs, code := runCode(t, ctx, "", "tune", "-config", exampleConfig, "-samples", both, "-out", filepath.Join(dir, "new.yaml"), "-force", "-run", "3"); code != exitRefused || !strings.Contains(errs, "runs 1 to 2") {
+	if _, errs, code := runCode(t, ctx, "", "tune", "-config", exampleConfig, "-samples", both, "-out", filepath.Join(dir, "new.yaml"), "-force", "-run", "3"); code != exitUsage || !strings.Contains(errs, "runs 1 to 2") {
 		t.Errorf("tune -run 3 of 2 runs: exit %d, stderr %q", code, errs)
 	}
 }

@@ -25,7 +25,7 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	port := fs.String("serial", "", "serial port of the controller, for instance /dev/ttyACM0")
-	baud := fs.Int("baud", 115200, "serial bit rate (8 data bits, no parity, one stop bit)")
+	baud := fs.Int("baud", 115200, "serial bit rate (8 data bits, no parity, one stop bit); only with -serial")
 	udp := fs.String("udp", "", "listen for frames in UDP datagrams on host:port, for instance 0.0.0.0:7461")
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
 	create, replace := addCreateFlags(fs, "create", "create the robot first from this YAML configuration; an existing robot must have the same one (or -replace)")
@@ -38,6 +38,12 @@ start again) begins a new run of the robot (boot id link-boot-{byte}), as
 	}
 	if *replace && *create == "" {
 		return usagef(fs, "-replace needs -create")
+	}
+	if *udp != "" && isSet(fs, "baud") {
+		return usagef(fs, "-baud is for -serial; a UDP datagram has no bit rate")
+	}
+	if *baud <= 0 {
+		return usagef(fs, "-baud must be a positive bit rate, got %d", *baud)
 	}
 	name, id, err := robotName(*robot)
 	if err != nil {

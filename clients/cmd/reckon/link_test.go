@@ -151,6 +151,18 @@ func TestLinkFlags(t *testing.T) {
 			t.Errorf("%v: err %v, stderr %q", c.args, err, errs)
 		}
 	}
+	// -baud with -udp was ignored, and one of 0 or less went to the serial
+	// library, which refused it in its own words (exit 1).
+	for args, want := range map[string]string{
+		"-udp 127.0.0.1:0 -baud 9600":          "link: -baud is for -serial",
+		"-serial /nonexistent/tty -baud 0":     "link: -baud must be a positive bit rate, got 0",
+		"-serial /nonexistent/tty -baud -9600": "link: -baud must be a positive bit rate, got -9600",
+	} {
+		_, errs, code := runCode(t, context.Background(), "", append([]string{"link", "-robot", "cart", "-addr", "127.0.0.1:1"}, strings.Fields(args)...)...)
+		if code != exitUsage || !strings.Contains(errs, want) {
+			t.Errorf("link %s: exit %d, want %d and %q\n%s", args, code, exitUsage, want, errs)
+		}
+	}
 	// -h prints the usage on standard output (TestHelpAndUsage checks it
 	// for every command).
 	if out, _, err := runCmd(t, "link", "-h"); err != nil || !strings.Contains(out, "usage: reckon link") {

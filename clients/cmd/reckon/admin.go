@@ -210,7 +210,10 @@ func runStats(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	fs := newFlagSet("stats", "NAME [flags]", `
 Prints robots/NAME's running statistics: odometry and measurement verdicts,
 each sensor's verdicts and the consistency of its mean NIS with the 95% band
-of a consistent filter, slips, gaps, move recoveries and trust.`)
+of a consistent filter, slips, gaps, move recoveries and trust. The verdict
+counts are totals; "held" counts fixes held on arrival, each counted again
+under its final verdict once resolved, and the last line the samples
+waiting for odometry now.`)
 	fs.SetOutput(stderr)
 	cf := addConnFlags(fs)
 	jsonl := fs.Bool("json", false, "print the statistics as one line of JSON (proto field names)")
@@ -262,6 +265,9 @@ func printStats(w io.Writer, name string, st *pb.RobotStatistics) error {
 		}
 		fmt.Fprintln(w)
 	}
+	// The held column counts first verdicts, not the samples held now,
+	// which the last line gives.
+	fmt.Fprintln(w, "(held: held on arrival, in all; each is counted again under its final verdict once resolved)")
 	if len(st.GetSensors()) > 0 {
 		fmt.Fprintln(w, "\nconsistency (mean NIS of applied fixes against its two-sided 95% band):")
 		tw := tabwriter.NewWriter(w, 0, 8, 2, ' ', 0)
@@ -278,7 +284,7 @@ func printStats(w io.Writer, name string, st *pb.RobotStatistics) error {
 		}
 		trust = "not trusted: " + strings.Join(why, ", ")
 	}
-	_, err := fmt.Fprintf(w, "\nslips %d, gaps %d, move recoveries %d, held now %d, window entries %d\n%s\n",
+	_, err := fmt.Fprintf(w, "\nslips %d, gaps %d, move recoveries %d, samples waiting for odometry now %d, window entries %d\n%s\n",
 		st.GetSlips(), st.GetGaps(), st.GetRecoveries(), st.GetHeld(), st.GetWindowEntries(), trust)
 	return err
 }

@@ -244,6 +244,27 @@ func TestGatedWhy(t *testing.T) {
 	}
 }
 
+// TestStatsSaysWhatHeldCounts: the held column counts fixes held on
+// arrival, in all, and the last line the samples held now. Before, the
+// table's "held 250" stood beside "held now 0" with nothing to tell them
+// apart.
+func TestStatsSaysWhatHeldCounts(t *testing.T) {
+	var b strings.Builder
+	st := &pb.RobotStatistics{Odometry: &pb.VerdictCounts{Applied: 900}, Measurements: &pb.VerdictCounts{Applied: 240, Held: 250, Gated: 10}}
+	if err := printStats(&b, "cart", st); err != nil {
+		t.Fatal(err)
+	}
+	out := b.String()
+	for _, want := range []string{"held: held on arrival, in all; each is counted again under its final verdict", "samples waiting for odometry now 0"} {
+		if !strings.Contains(out, want) {
+			t.Errorf("stats does not say %q:\n%s", want, out)
+		}
+	}
+	if strings.Contains(out, "held now") {
+		t.Errorf("stats says \"held now\" beside a held column that counts first verdicts:\n%s", out)
+	}
+}
+
 // TestPrefaceHint: a listener that closes each connection before speaking
 // gRPC, as a service serving TLS does to a plain-text client (reckond
 // -tls-cert, tried by hand: the same error), leaves

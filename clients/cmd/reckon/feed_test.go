@@ -169,6 +169,20 @@ func TestFeedCreateChecksFileFirst(t *testing.T) {
 		t.Errorf("the robot after feed -replace of a malformed file: %d inputs (had %d), gate_probability %v (had 0.9), %v",
 			after.GetInputCount(), before.GetInputCount(), after.GetConfig().GetGateProbability(), err)
 	}
+	// Standard input that is not a file (runCode's is a reader, as a pipe)
+	// cannot be read twice: only its first sample is checked, so a later
+	// malformed line stops the feed after the robot was created and the
+	// samples before it were sent, as the help and README say.
+	if err := c.DeleteRobot(ctx, "robots/cart"); err != nil {
+		t.Fatal(err)
+	}
+	piped := firstLines(t, 6) + "{\"odometry\": \n"
+	if _, errs, code := runCode(t, ctx, piped, "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-"); code != exitRefused || !strings.Contains(errs, "stdin:7: ") {
+		t.Errorf("feed -create of a pipe malformed at line 7: exit %d\n%s", code, errs)
+	}
+	if r, err := c.GetRobot(ctx, "robots/cart"); err != nil || r.GetInputCount() == 0 {
+		t.Errorf("feed -create of a pipe malformed at line 7: the robot %v, %v; want it created with the samples before line 7", r, err)
+	}
 }
 
 // TestFeedSessionTakenBefore: a feed continuing a session (-session) over

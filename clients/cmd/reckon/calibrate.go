@@ -194,8 +194,11 @@ func startConfig(config, dir, robot string) (string, []byte, error) {
 		return errOpened
 	}})
 	if !errors.Is(err, errOpened) {
-		if err == nil {
+		switch {
+		case err == nil:
 			err = errors.New("the journal has no opening record")
+		case errors.Is(err, journal.ErrNoJournal):
+			return "", nil, err // it names dir
 		}
 		return "", nil, fmt.Errorf("%s: %w", dir, err)
 	}

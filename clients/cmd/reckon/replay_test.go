@@ -696,6 +696,11 @@ func TestOfflineNoSuchRobot(t *testing.T) {
 		{[]string{"review", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "review")}, "no journal for nosuch in " + dir},
 		{[]string{"compare", "-journal", dir, "-robot", "nosuch", "-b", exampleConfig, "-out", filepath.Join(out, "compare")}, "no journal for nosuch in " + dir},
 		{[]string{"export", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "export", "tables")}, `no journal to export for robot "nosuch"`},
+		// tune and calibrate named the directory twice ("DIR: no journal
+		// for nosuch in DIR") when they read its configuration from the
+		// journal.
+		{[]string{"tune", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "tuned.yaml")}, "reckon: no journal for nosuch in " + dir},
+		{[]string{"calibrate", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "calibrated.yaml")}, "reckon: no journal for nosuch in " + dir},
 	} {
 		_, errs, code := runCode(t, context.Background(), "", c.args...)
 		if code != exitNotFound || !strings.Contains(errs, c.want) {

@@ -97,16 +97,19 @@ first verdict instead of taken twice; the summary says how many were.`)
 	}
 	sessCtx, stop := sessionContext(ctx)
 	defer stop()
+	// A robot that does not exist ends the feed before it sends (exit 4,
+	// as link and the other commands that name a robot), rather than
+	// every sample answered "invalid: does not exist" with exit 0.
+	r, err := c.GetRobot(ctx, name)
+	if err != nil {
+		return err
+	}
 	var opts []client.IngestOption
 	var takenBefore uint64
 	if *session != "" {
 		opts = append(opts, client.Resume(*session, 0))
 		// The samples the robot answers with a sequence up to its input
 		// count now were taken by an earlier feed on the session.
-		r, err := c.GetRobot(ctx, name)
-		if err != nil {
-			return err
-		}
 		takenBefore = r.GetInputCount()
 	}
 	sess, err := c.OpenIngest(sessCtx, name, opts...)

@@ -78,8 +78,9 @@ func TestFeedFromLinePastTheEnd(t *testing.T) {
 	if code != exitUsage || !strings.Contains(errs, "past its end") || !strings.Contains(errs, strconv.Itoa(lines)+" lines") {
 		t.Errorf("feed -from-line %d of a file of %d lines: exit %d\n%s\n%s", lines+10, lines, code, out, errs)
 	}
-	// The last line is a sample and is sent.
-	if out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-from-line", strconv.Itoa(lines), samples); code != exitOK || !strings.Contains(out, "1 samples sent") {
+	// The last line is a sample and is sent (to the robot created now: the
+	// refused feed created none).
+	if out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-from-line", strconv.Itoa(lines), samples); code != exitOK || !strings.Contains(out, "1 samples sent") {
 		t.Errorf("feed -from-line %d (the last line): exit %d\n%s\n%s", lines, code, out, errs)
 	}
 }
@@ -182,6 +183,23 @@ func TestFeedCreateChecksFileFirst(t *testing.T) {
 	}
 	if r, err := c.GetRobot(ctx, "robots/cart"); err != nil || r.GetInputCount() == 0 {
 		t.Errorf("feed -create of a pipe malformed at line 7: the robot %v, %v; want it created with the samples before line 7", r, err)
+	}
+}
+
+// TestFeedNoSuchRobot: feed to a robot that does not exist exits 4, no
+// such robot, and sends nothing, as link and the other commands that name
+// a robot do. Before, it sent every sample, each answered "invalid: robot:
+// robots/nosuch does not exist", and exited 0.
+func TestFeedNoSuchRobot(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	for _, args := range [][]string{
+		{"feed", "-addr", addr, "-robot", "nosuch", exampleSamples},
+		{"link", "-addr", addr, "-robot", "nosuch", "-udp", "127.0.0.1:0"},
+	} {
+		out, errs, code := runCode(t, context.Background(), "", args...)
+		if code != exitNotFound || !strings.Contains(errs, "robot: robots/nosuch does not exist") || strings.Contains(out, "sent") {
+			t.Errorf("%s to a robot that does not exist: exit %d, want %d\n%s%s", args[0], code, exitNotFound, out, errs)
+		}
 	}
 }
 

@@ -17,7 +17,6 @@ import (
 	"reckon.example/fusion"
 	"reckon.example/fusion/calib"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server"
 	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
@@ -183,13 +182,13 @@ func startConfig(config, dir, robot string) (string, []byte, error) {
 		data, err := os.ReadFile(config)
 		return config, data, err
 	}
-	id := robot
-	if n, err := server.RobotID(robot); err == nil {
-		id = n
+	id, err := journalRobot(robot)
+	if err != nil {
+		return "", nil, err
 	}
 	errOpened := errors.New("opened")
 	var c fusion.Config
-	_, _, err := journal.Replay(dir, id, journal.ReplayOptions{ReadOnly: true, SkipOutputs: true, Opened: func(r *fusion.Robot) error {
+	_, _, err = journal.Replay(dir, id, journal.ReplayOptions{ReadOnly: true, SkipOutputs: true, Opened: func(r *fusion.Robot) error {
 		c = r.Config()
 		return errOpened
 	}})

@@ -9,6 +9,7 @@ import (
 	"strings"
 
 	"reckon.example/server"
+	"reckon.example/server/journal"
 )
 
 // newFlagSet returns the flag set of a command whose usage is
@@ -81,6 +82,21 @@ func robotName(s string) (name, id string, err error) {
 		return "", "", &usageError{err: err}
 	}
 	return s, id, nil
+}
+
+// journalRobot returns the journal of an offline command's -robot: a
+// robot id or robots/ID, or a deleted robot's {id}.deleted-{unix ns}.
+// Anything else can name no journal and is a usage error, as a bad name is
+// to export and to the commands that ask the service.
+func journalRobot(s string) (string, error) {
+	id := strings.TrimPrefix(s, "robots/")
+	if _, _, aside := journal.Aside(id); aside {
+		return id, nil
+	}
+	if _, err := server.RobotID("robots/" + id); err != nil {
+		return "", &usageError{err: fmt.Errorf("-robot: %w, nor a deleted robot's journal ({id}.deleted-{unix ns})", err)}
+	}
+	return id, nil
 }
 
 // parseNone parses the flags of a command that takes no positional

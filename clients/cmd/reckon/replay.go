@@ -291,9 +291,9 @@ func (sw *spanWriter) outside(resp *pb.IngestResponse) error { return sw.next.ou
 func (sw *spanWriter) flush() error { return sw.next.flush() }
 
 func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotConfig, ow *runFilter, stderr io.Writer) error {
-	id := robot
-	if n, err := server.RobotID(robot); err == nil {
-		id = n
+	id, err := journalRobot(robot)
+	if err != nil {
+		return err
 	}
 	name := server.RobotName(id)
 	// The verdicts replayed as recorded and not; after a gap (inputs lost

@@ -754,3 +754,28 @@ func TestOfflineNoSuchRun(t *testing.T) {
 		t.Errorf("review removed the existing -out directory: %v", err)
 	}
 }
+
+// TestOfflineBadRobotName: a -robot that is no robot id or name, nor a
+// deleted robot's journal, is a usage error (exit 2) naming it in every
+// offline command, as export and the commands that ask the service refuse
+// it. Before, replay, review, compare, tune and calibrate looked for a
+// journal of it and exited 4, no such robot.
+func TestOfflineBadRobotName(t *testing.T) {
+	dir, out := t.TempDir(), t.TempDir()
+	for _, args := range [][]string{
+		{"replay"},
+		{"review", "-out", filepath.Join(out, "review")},
+		{"compare", "-b", exampleConfig, "-out", filepath.Join(out, "compare")},
+		{"tune", "-out", filepath.Join(out, "tuned.yaml")},
+		{"calibrate", "-out", filepath.Join(out, "calibrated.yaml")},
+		{"export", "-out", filepath.Join(out, "export")},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", append(args, "-journal", dir, "-robot", "Not_A_Name")...)
+		if code != exitUsage || !strings.Contains(errs, `"robots/Not_A_Name" is not a robot name`) {
+			t.Errorf("%s -robot Not_A_Name: exit %d, want %d\n%s", args[0], code, exitUsage, errs)
+		}
+	}
+	if left, _ := os.ReadDir(out); len(left) != 0 {
+		t.Errorf("left behind: %v", left)
+	}
+}

@@ -105,6 +105,11 @@ func (sf sourceFlags) source() (review.Source, error) {
 	src := review.Source{JournalDir: *sf.journal, Robot: *sf.robot, Samples: *sf.samples, Truth: *sf.truth, Run: *sf.run}
 	switch {
 	case *sf.journal != "" && *sf.robot != "":
+		id, err := journalRobot(*sf.robot)
+		if err != nil {
+			return src, err
+		}
+		src.Robot = id
 		if *sf.truth == "" {
 			if _, err := os.Stat(filepath.Join(*sf.journal, "truth.csv")); err == nil {
 				src.Truth = filepath.Join(*sf.journal, "truth.csv")

@@ -20,7 +20,6 @@ import (
 	"reckon.example/fusion"
 	"reckon.example/fusion/calib"
 	pb "reckon.example/proto/reckon/v1"
-	"reckon.example/server"
 	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
@@ -248,9 +247,9 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if robot == "" {
 			return nil, &usageError{err: fmt.Errorf("%s is a journal directory: name the robot with -robot", path)}
 		}
-		id := robot
-		if n, err := server.RobotID(robot); err == nil {
-			id = n
+		id, err := journalRobot(robot)
+		if err != nil {
+			return nil, err
 		}
 		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {

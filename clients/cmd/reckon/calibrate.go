@@ -48,7 +48,7 @@ into one HTML report with a calibration section at the top.`)
 	force := fs.Bool("force", false, "replace -out if it exists")
 	truth := fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad), for the NEES before and after (default: truth.csv in the journal directory, if there)")
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
-	runN := fs.Uint64("run", 0, "the run to calibrate, from 1 (a controller restart begins a run, on a clock of its own; default 1)")
+	runN := fs.Uint64("run", 0, "the run to calibrate, from 1 (a controller restart begins a run, on a clock of its own; default 1)"+noRunHelp)
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err
 	}

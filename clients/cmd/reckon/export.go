@@ -34,7 +34,7 @@ names carry their units (stamp_ns, x_m, cov_xx_m2).`)
 	})
 	out := fs.String("out", "", "directory for the four .parquet files (created if needed)")
 	deleted := fs.Bool("deleted", true, "also export the journals of deleted robots")
-	run := fs.Int64("run", 0, "export only this run of each journal, from 1 (default: every run)")
+	run := fs.Int64("run", 0, "export only this run of each journal, from 1 (default: every run)"+noRunHelp)
 	rowGroup := fs.Int("row-group", 1<<16, "rows per Parquet row group")
 	if err := parseNone(fs, args, stdout, stderr); err != nil {
 		return err

@@ -109,6 +109,10 @@ func parseNone(fs *flag.FlagSet, args []string, stdout, stderr io.Writer) error 
 	return err
 }
 
+// noRunHelp ends the help of the -run flag of the tools that read a
+// recording.
+const noRunHelp = ". A run the recording does not hold is a usage error (exit 2)"
+
 // journalRobotHelp is the help of the -robot flag of the tools that read a
 // journal.
 const journalRobotHelp = "robot id or name in the journal; a deleted robot's journal is {id}.deleted-{unix ns}, the suffix its files carry"

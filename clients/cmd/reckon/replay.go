@@ -35,7 +35,7 @@ is then 1.`)
 	samples := fs.String("samples", "", "JSON Lines file of samples, in arrival order (with -config)")
 	format := fs.String("format", "csv", "csv, jsonl, or samples (the raw samples as JSON Lines); table also works")
 	out := fs.String("out", "", "output file (default standard output)")
-	run := fs.Uint64("run", 0, "write only this run, from 1 (default: every run)")
+	run := fs.Uint64("run", 0, "write only this run, from 1 (default: every run)"+noRunHelp)
 	var span timeSpan
 	span.add(fs)
 	pos, err := parseArgs(fs, args, stdout, stderr)

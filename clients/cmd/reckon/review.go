@@ -33,7 +33,7 @@ func addSourceFlags(fs *flag.FlagSet) sourceFlags {
 		samples: fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)"),
 		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),
 		out:     fs.String("out", "", "directory for the report and the exports (default review-<robot>, review-<robot>-run<N> with -run)"),
-		run:     fs.Uint64("run", 0, "the run to review, from 1 (a controller restart begins a run; default 1)"),
+		run:     fs.Uint64("run", 0, "the run to review, from 1 (a controller restart begins a run; default 1)"+noRunHelp),
 	}
 }
 

@@ -64,7 +64,7 @@ calibration section at the top.`)
 	reportDir := fs.String("report", "", "also write an HTML report comparing the run before and after into this directory")
 	model := fs.Bool("model", false, "first choose the noise model's form by the run's likelihood (Akaike's criterion): a Gauss-Markov part and Student-t tails for each white Gaussian sensor, noise per second instead of per metre for body steps, the IMU offset's walk per radian turned (a gyro's scale error), the marker map's survey error (landmark_position_std_m); then fit its levels")
 	maxSE := fs.Float64("max-se", 0.35, "largest standard error of a level's natural log for the run to count as determining it")
-	runN := fs.Uint64("run", 0, "the run to tune, from 1 (a controller restart begins a run, on a clock of its own; default 1)")
+	runN := fs.Uint64("run", 0, "the run to tune, from 1 (a controller restart begins a run, on a clock of its own; default 1)"+noRunHelp)
 	keep := fs.Bool("keep-undetermined", false, "keep the variances the run does not determine at their configured values (default: the upper end of each one's 95% likelihood interval)")
 	pos, err := parseArgs(fs, args, stdout, stderr)
 	if err != nil {

@@ -56,6 +56,9 @@ type Options struct {
 	SyncInterval time.Duration
 	// SegmentBytes rotates journal segments past this size (64 MiB).
 	SegmentBytes int64
+	// VerifyBytesPerSecond bounds the rate at which VerifyHistories reads
+	// (DefaultVerifyBytesPerSecond if 0 or less).
+	VerifyBytesPerSecond int64
 	// MaxWatchEvents bounds the events a slow watcher keeps (256).
 	MaxWatchEvents int
 	// SnapshotEvery writes the robot's state into its journal after this

@@ -779,3 +779,23 @@ func TestOfflineBadRobotName(t *testing.T) {
 		t.Errorf("left behind: %v", left)
 	}
 }
+
+// TestCompareReadsBothConfigurationsFirst: compare with a -b it cannot
+// read refuses it before replaying the run under -a, and leaves no -out
+// directory. Before, it wrote the first run's exports into a new -out
+// directory, then failed.
+func TestCompareReadsBothConfigurationsFirst(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	out := filepath.Join(t.TempDir(), "compare")
+	bad := filepath.Join(t.TempDir(), "bad.yaml")
+	if err := os.WriteFile(bad, []byte("wheels: [\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	_, errs, code := runCode(t, context.Background(), "", "compare", "-journal", dir, "-robot", "cart", "-b", bad, "-out", out)
+	if code != exitRefused || !strings.Contains(errs, bad) {
+		t.Errorf("compare -b of a malformed file: exit %d, want %d naming it\n%s", code, exitRefused, errs)
+	}
+	if _, err := os.Stat(out); !errors.Is(err, os.ErrNotExist) {
+		t.Errorf("compare -b of a malformed file left %s: %v", out, err)
+	}
+}

@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"strings"
 	"testing"
 
@@ -199,5 +200,85 @@ func TestCountsWrapBothWays(t *testing.T) {
 	samePose(t, "counts across the wrap and back", counted, travelled)
 	if !errors.Is(wrapErr, ErrAbsurdJump) || !strings.Contains(fmt.Sprint(wrapErr), "wheels[0]'s count moved by -65516, as a 16-bit counter does when it wraps: is its counter_bits 16?") {
 		t.Errorf("counter_bits unset, a wrap: %v", wrapErr)
+	}
+}
+
+// turnThenStraight returns the cumulative counts and true heading of an
+// invented greenhouse cart at 5 ms sample k: 1 m/s, turning at 2 rad/s
+// for samples [turnFrom, turnTo), straight otherwise.
+func turnThenStraight(cfg Config, k, turnFrom, turnTo int) ([]int64, float64) {
+	turned := 0.01 * float64(min(max(k-turnFrom, 0), turnTo-turnFrom))
+	out := make([]int64, len(cfg.Wheels))
+	for i, w := range cfg.Wheels {
+		c := estimator.WheelCoef(w.XM, w.YM, w.DirectionRad)
+		out[i] = int64(math.Round((c[0]*0.005*float64(k)+c[2]*turned)*w.CountsPerM)) & 0xffff
+	}
+	return out, turned
+}
+
+// TestFrozenIMUDistrusted: an IMU whose driver goes on sending its last
+// heading after the device hung (common practice: drivers publish a
+// cached value rather than nothing) freezes as the cart starts a 0.6 rad
+// turn at 2 rad/s. The estimate follows the IMU (the slip comparison takes
+// the disagreement for wheels that slip), so the robot must not be
+// trusted: imu_unchanged is raised once the wheels turned 0.1 rad
+// (10 samples), stands through the straight after the turn, and clears
+// once the IMU reads again. Before, the robot stayed trusted with its
+// heading 0.3 rad off and a heading standard deviation of 0.035 rad. A
+// snapshot taken while it stands restores a robot that clears it at the
+// same input, and an honest IMU quantised to 0.1 degree never raises it,
+// driving straight or turning.
+func TestFrozenIMUDistrusted(t *testing.T) {
+	cfg := threeWheels()
+	const turnFrom, turnTo, recover = 200, 260, 400
+	feed := func(r *Robot, from, to int, imu func(k int, truth float64) float64) []TrustReason {
+		var out []TrustReason
+		for k := from; k < to; k++ {
+			c, th := turnThenStraight(cfg, k, turnFrom, turnTo)
+			h := imu(k, th)
+			if res := r.AddOdometry(Odometry{StampNs: int64(k) * 5e6, Counts: c, IMUHeadingRad: &h}); res.Err != nil {
+				t.Fatalf("sample %d: %v", k, res.Err)
+			}
+			out = append(out, r.Pose().Distrust)
+		}
+		return out
+	}
+	frozen := func(k int, th float64) float64 {
+		if k >= turnFrom && k < recover {
+			_, th = turnThenStraight(cfg, turnFrom, turnFrom, turnTo)
+		}
+		return estimator.Wrap(th + 0.3)
+	}
+	r, _ := New(cfg)
+	reasons := feed(r, 0, 300, frozen)
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	reasons = append(reasons, feed(r, 300, 500, frozen)...)
+	for k, d := range reasons {
+		want := k >= turnFrom+10 && k < recover
+		if got := d&TrustIMUUnchanged != 0; got != want {
+			t.Fatalf("sample %d: distrust %v, want imu_unchanged %v", k, d, want)
+		}
+	}
+	restored, err := RestoreSnapshot(cfg, b)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if again := feed(restored, 300, 500, frozen); !slices.Equal(again, reasons[300:]) {
+		t.Errorf("restored mid-freeze: reasons %v, want %v", again, reasons[300:])
+	}
+	// 0.1 degree steps (from memory: a common resolution of IMU heading
+	// outputs).
+	quantised := func(k int, th float64) float64 {
+		const q = 0.1 * math.Pi / 180
+		return math.Round(estimator.Wrap(th+0.3)/q) * q
+	}
+	honest, _ := New(cfg)
+	for k, d := range feed(honest, 0, 500, quantised) {
+		if d&TrustIMUUnchanged != 0 {
+			t.Fatalf("quantised honest IMU, sample %d: %v", k, d)
+		}
 	}
 }

@@ -298,6 +298,10 @@ const (
 	// camera frame) was applied, or two fixes were refused in a row, or a move
 	// recovery reseeded the pose, and no fix has been applied since.
 	DistrustReason_DISTRUST_REASON_FIX_DISAGREES DistrustReason = 7
+	// The IMU's newest headings read exactly the same while the wheels
+	// turned by 0.1 rad or more (imu_mode absolute): a frozen IMU that
+	// repeats its last value, or wheels spinning in place.
+	DistrustReason_DISTRUST_REASON_IMU_UNCHANGED DistrustReason = 8
 )
 
 // Enum value maps for DistrustReason.
@@ -311,6 +315,7 @@ var (
 		5: "DISTRUST_REASON_FIXES_REFUSED",
 		6: "DISTRUST_REASON_NUMERICAL_FAULT",
 		7: "DISTRUST_REASON_FIX_DISAGREES",
+		8: "DISTRUST_REASON_IMU_UNCHANGED",
 	}
 	DistrustReason_value = map[string]int32{
 		"DISTRUST_REASON_UNSPECIFIED":        0,
@@ -321,6 +326,7 @@ var (
 		"DISTRUST_REASON_FIXES_REFUSED":      5,
 		"DISTRUST_REASON_NUMERICAL_FAULT":    6,
 		"DISTRUST_REASON_FIX_DISAGREES":      7,
+		"DISTRUST_REASON_IMU_UNCHANGED":      8,
 	}
 )
 
@@ -2487,7 +2493,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x15EVENT_KIND_TRUST_LOST\x10\x05\x12\x1d\n" +
 	"\x19EVENT_KIND_TRUST_REGAINED\x10\x06\x12\x17\n" +
 	"\x13EVENT_KIND_RESEEDED\x10\a\x12\x1a\n" +
-	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xae\x02\n" +
+	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xd1\x02\n" +
 	"\x0eDistrustReason\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_NO_ODOMETRY\x10\x01\x12&\n" +
@@ -2496,7 +2502,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x1cDISTRUST_REASON_INCONSISTENT\x10\x04\x12!\n" +
 	"\x1dDISTRUST_REASON_FIXES_REFUSED\x10\x05\x12#\n" +
 	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x06\x12!\n" +
-	"\x1dDISTRUST_REASON_FIX_DISAGREES\x10\a*\xd3\x01\n" +
+	"\x1dDISTRUST_REASON_FIX_DISAGREES\x10\a\x12!\n" +
+	"\x1dDISTRUST_REASON_IMU_UNCHANGED\x10\b*\xd3\x01\n" +
 	"\x12ConsistencyVerdict\x12#\n" +
 	"\x1fCONSISTENCY_VERDICT_UNSPECIFIED\x10\x00\x12\"\n" +
 	"\x1eCONSISTENCY_VERDICT_CONSISTENT\x10\x01\x12%\n" +

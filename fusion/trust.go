@@ -48,7 +48,9 @@ const (
 	// TrustIMUUnchanged: the IMU's newest headings all read exactly the
 	// same while the wheels turned by frozenTurnRad or more (imu_mode
 	// absolute): a frozen IMU whose driver repeats its last value, which
-	// the heading then follows, or wheels spinning in place.
+	// the heading then follows, or wheels that turned while the robot did
+	// not (a wheel off the floor, or spinning) beside an IMU that holds
+	// its heading exactly while it senses no rotation.
 	TrustIMUUnchanged
 )
 

@@ -300,7 +300,8 @@ const (
 	DistrustReason_DISTRUST_REASON_FIX_DISAGREES DistrustReason = 7
 	// The IMU's newest headings read exactly the same while the wheels
 	// turned by 0.1 rad or more (imu_mode absolute): a frozen IMU that
-	// repeats its last value, or wheels spinning in place.
+	// repeats its last value, or wheels that turned while the robot did not
+	// (a wheel off the floor) beside an IMU that holds its heading exactly.
 	DistrustReason_DISTRUST_REASON_IMU_UNCHANGED DistrustReason = 8
 )
 

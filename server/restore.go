@@ -112,7 +112,9 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 // before the snapshot it started from, which it checked only against the
 // manifest (journal.Verify; they are never written again). It returns a
 // channel closed when the pass ends; Close stops it. Call it once the
-// service serves, after Restore. The robots are read one after another.
+// service serves, after Restore. The robots are read one after another,
+// at most Options.VerifyBytesPerSecond on average (pacedFS), so that the
+// pass does not take the disk from the journals' writes.
 //
 // Damage found there (a bad CRC-32C, a missing or cut record, a segment
 // that differs from its record in the manifest) is logged with its file
@@ -135,6 +137,15 @@ func (s *Server) VerifyHistories() <-chan struct{} {
 		}
 		r.mu.Unlock()
 	}
+	rate := s.opt.VerifyBytesPerSecond
+	if rate <= 0 {
+		rate = DefaultVerifyBytesPerSecond
+	}
+	fs := s.opt.FS
+	if fs == nil {
+		fs = journal.OS
+	}
+	paced := newPacedFS(s.verifyCtx, fs, rate)
 	s.verifying.Add(1)
 	go func() {
 		defer s.verifying.Done()
@@ -143,7 +154,7 @@ func (s *Server) VerifyHistories() <-chan struct{} {
 			if s.verifyCtx.Err() != nil {
 				return
 			}
-			s.verifyHistory(r)
+			s.verifyHistory(r, paced)
 		}
 	}()
 	return done
@@ -151,8 +162,8 @@ func (s *Server) VerifyHistories() <-chan struct{} {
 
 // verifyHistory reads what restore did not read of r's journal and
 // reports any damage in it (VerifyHistories).
-func (s *Server) verifyHistory(r *robot) {
-	sc, err := journal.Verify(s.verifyCtx, s.opt.FS, s.opt.JournalDir, r.id, r.unread-1)
+func (s *Server) verifyHistory(r *robot, fs journal.FS) {
+	sc, err := journal.Verify(s.verifyCtx, fs, s.opt.JournalDir, r.id, r.unread-1)
 	if s.verifyCtx.Err() != nil {
 		return
 	}

@@ -56,6 +56,9 @@ type Options struct {
 	SyncInterval time.Duration
 	// SegmentBytes rotates journal segments past this size (64 MiB).
 	SegmentBytes int64
+	// VerifyBytesPerSecond bounds the rate at which VerifyHistories reads
+	// (DefaultVerifyBytesPerSecond if 0 or less).
+	VerifyBytesPerSecond int64
 	// MaxWatchEvents bounds the events a slow watcher keeps (256).
 	MaxWatchEvents int
 	// SnapshotEvery writes the robot's state into its journal after this
@@ -110,7 +113,10 @@ type Server struct {
 	unlock   func() error // releases the journal directory
 
 	stopSync chan struct{}
-	syncDone chan struct{}
+	// closeOnce makes Close idempotent; closeErr is its result.
+	closeOnce sync.Once
+	closeErr  error
+	syncDone  chan struct{}
 	// stopping is closed by EndStreams: ingest streams then end after
 	// taking what they have received.
 	stopping chan struct{}
@@ -323,8 +329,14 @@ func (s *Server) EndStreams() {
 // errStopping ends the ingest streams when the service stops (EndStreams).
 var errStopping = status.Error(codes.Unavailable, "the service is stopping: every sample without a verdict was not taken; resend it on the same session when the service serves again")
 
-// Close syncs and closes every journal and ends every watch.
+// Close syncs and closes every journal and ends every watch. Closing again
+// does nothing and returns what the first Close returned.
 func (s *Server) Close() error {
+	s.closeOnce.Do(func() { s.closeErr = s.close() })
+	return s.closeErr
+}
+
+func (s *Server) close() error {
 	close(s.stopSync)
 	<-s.syncDone
 	s.stopVerify()

@@ -78,3 +78,23 @@ func TestStopEndsIngest(t *testing.T) {
 		t.Errorf("restored %d inputs (%v), want the %d answered", r.GetRobot().GetInputCount(), err, newest)
 	}
 }
+
+// TestCloseTwice: a second Close of a server does nothing and returns
+// what the first returned (a deferred Close after an explicit one is
+// common practice in Go); it panicked closing a closed channel.
+func TestCloseTwice(t *testing.T) {
+	s, err := New(Options{JournalDir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, cfg := cartRun(1, 1)
+	if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	if err := s.Close(); err != nil {
+		t.Fatalf("first close: %v", err)
+	}
+	if err := s.Close(); err != nil {
+		t.Fatalf("second close: %v", err)
+	}
+}

@@ -70,6 +70,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fsync := fs.String("fsync", "interval", "journal fsync policy: each (before every verdict) or interval")
 	syncEvery := fs.Duration("fsync-interval", 100*time.Millisecond, "fsync interval for -fsync interval")
 	segment := fs.Int64("segment-bytes", 64<<20, "rotate journal segments past this size")
+	verifyRate := fs.Int64("verify-mib-per-s", server.DefaultVerifyBytesPerSecond>>20, "read the journal history that a restart did not read, once serving, at most this many MiB a second")
 	snapshotEvery := fs.Int("snapshot-every", 20000, "write a robot's state into its journal every this many inputs")
 	cert := fs.String("tls-cert", "", "server certificate PEM file (turns TLS on)")
 	key := fs.String("tls-key", "", "server key PEM file")
@@ -112,6 +113,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		v, lo, hi int64
 	}{
 		{"segment-bytes", *segment, 1 << 20, maxSegmentBytes},
+		{"verify-mib-per-s", *verifyRate, 1, 1 << 20},
 		{"snapshot-every", int64(*snapshotEvery), 1, 1 << 30},
 		{"max-robots", int64(lim.MaxRobots), 1, 1 << 20},
 		{"max-string-bytes", int64(lim.MaxStringBytes), 16, 1 << 16},
@@ -130,7 +132,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	}
 	dc := daemon.Config{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, ViewListen: *view, MaxMessageBytes: *maxMsg,
 		Insecure: *insecure, MaxStreams: uint32(*maxStreams),
-		Options: server.Options{JournalDir: *journal, SyncInterval: *syncEvery, SegmentBytes: *segment, SnapshotEvery: *snapshotEvery, Limits: lim,
+		Options: server.Options{JournalDir: *journal, SyncInterval: *syncEvery, SegmentBytes: *segment, VerifyBytesPerSecond: *verifyRate << 20, SnapshotEvery: *snapshotEvery, Limits: lim,
 			Logger: slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))},
 		Robots: map[string]*pb.RobotConfig{}}
 	switch *fsync {

@@ -32,6 +32,7 @@ func TestFlagErrors(t *testing.T) {
 		// Out of range, each was taken as its default before.
 		{[]string{"-segment-bytes", "100"}, "segment-bytes: 100 is not between"},
 		{[]string{"-segment-bytes", "4294967296"}, "segment-bytes"},
+		{[]string{"-verify-mib-per-s", "0"}, "verify-mib-per-s: 0 is not between 1 and"},
 		{[]string{"-snapshot-every", "-1"}, "snapshot-every"},
 		{[]string{"-max-robots", "0"}, "max-robots"},
 		{[]string{"-max-watchers", "0"}, "max-watchers: 0"},

@@ -51,6 +51,7 @@ var (
 		{TrustFixesRefused, "fixes_refused", 5},
 		{TrustNumericalFault, "numerical_fault", 6},
 		{TrustFixDisagrees, "fix_disagrees", 7},
+		{TrustIMUUnchanged, "imu_unchanged", 8},
 	}
 	fixKindTable = [...]Label[FixKind]{
 		{FixPose, "pose", 1},
@@ -193,4 +194,4 @@ func (t TrustReason) String() string {
 }
 
 // allTrustReasons is the union of the defined reasons.
-const allTrustReasons = TrustNoOdometry | TrustPositionUncertain | TrustHeadingUncertain | TrustInconsistent | TrustFixesRefused | TrustNumericalFault | TrustFixDisagrees
+const allTrustReasons = TrustNoOdometry | TrustPositionUncertain | TrustHeadingUncertain | TrustInconsistent | TrustFixesRefused | TrustNumericalFault | TrustFixDisagrees | TrustIMUUnchanged

@@ -3,6 +3,7 @@ package fusion
 import (
 	"fmt"
 	"math"
+	"slices"
 	"time"
 
 	"reckon.example/estimator"
@@ -143,6 +144,7 @@ func (r *Robot) odometryEntry(o *Odometry, res *odoResult) error {
 	}
 	if o.Counts != nil {
 		if jump != nil {
+			jump = r.wrapHint(jump, o.Counts, dtNs)
 			r.jumpCounts = append(r.jumpCounts[:0], o.Counts...)
 			return jump
 		}
@@ -209,6 +211,28 @@ func (r *Robot) interval(o *Odometry, travel []float64, res *odoResult) (t0, dtN
 	return r.newest, o.StampNs - r.newest, true
 }
 
+// wrapHint adds to jump, the refusal of counts over dtNs, the counter
+// width that would explain it: a wheel whose count moved by about
+// 2^16 or 2^32 has a counter of that width which wrapped while its
+// counter_bits says a wider one (or none). Without the hint a cart with
+// 16-bit counters and counter_bits unset read "implausible motion:
+// 1.31e+04 m/s" at each wrap and lost that interval's travel, trusted.
+func (r *Robot) wrapHint(jump error, counts []int64, dtNs int64) error {
+	for i, w := range r.cfg.Wheels {
+		d := countDelta(counts[i], r.lastCounts[i], w.CounterBits)
+		for _, bits := range []int{16, 32} {
+			if w.CounterBits != 0 && w.CounterBits <= bits {
+				continue
+			}
+			wrapped := countDelta(counts[i], r.lastCounts[i], bits)
+			if wrapped != d && math.Abs(float64(wrapped)/w.CountsPerM)/(float64(dtNs)*1e-9) <= r.cfg.MaxSpeedMPerS {
+				return fmt.Errorf("%w; wheels[%d]'s count moved by %d, as a %d-bit counter does when it wraps: is its counter_bits %d?", jump, i, d, bits, bits)
+			}
+		}
+	}
+	return jump
+}
+
 // checkJump refuses a step faster than max_speed_m_per_s or
 // max_turn_rate_rad_per_s over dt seconds.
 func (r *Robot) checkJump(s estimator.Step, dt float64) error {
@@ -233,8 +257,14 @@ func shortHint(dt float64) string {
 	if dt >= 1e-3 {
 		return ""
 	}
-	return " (odometry samples this close: are the stamps in nanoseconds? stamp_ns counts nanoseconds)"
+	return " (odometry samples this close: are the stamps in nanoseconds? stamp_ns counts nanoseconds. Or " + burstHint + ")"
 }
+
+// burstHint names a common cause of odometry stamped at one instant, or
+// microseconds apart: samples stamped when they arrive, which a USB or
+// CAN link delivers several at once (common practice), rather than when
+// their wheels were read.
+const burstHint = "stamped on arrival, several samples in one burst? Stamp each sample when its wheels are read"
 
 // checkOdometry reports what is wrong with o before it is taken: shape,
 // finite values, the configuration's needs, and time running backwards.
@@ -248,7 +278,13 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 	if set != 1 {
 		return badf("odometry needs exactly one of travel_m, counts and step, got %d", set)
 	}
-	if r.started && o.StampNs <= r.newest {
+	if r.started && o.StampNs == r.newest {
+		if o.Counts != nil && slices.Equal(o.Counts, r.lastCounts) {
+			return fmt.Errorf("%w: odometry at stamp_ns %d has the newest odometry's stamp and counts: a sample sent twice? (refusing it loses nothing)", ErrRepeated, o.StampNs)
+		}
+		return fmt.Errorf("%w: odometry stamp_ns %d is the newest odometry's stamp: %s", ErrTimeBackwards, o.StampNs, burstHint)
+	}
+	if r.started && o.StampNs < r.newest {
 		return fmt.Errorf("%w: odometry stamp_ns %d is not after the newest odometry %d%s", ErrTimeBackwards, o.StampNs, r.newest, r.restartHint(o.StampNs))
 	}
 	if gap := nsAfter(o.StampNs, r.newest); r.started && gap > uint64(r.cfg.MaxOdometryGapNs) {

@@ -26,6 +26,7 @@ const (
 	RefusalNotConfigured                    // ErrNoIMU: the configuration does not take the sample
 	RefusalNumericalFault                   // an update the filter could not make (covariance not positive definite, degenerate)
 	RefusalRunOutOfOrder                    // ErrRunOutOfOrder: a run start that does not start the next run
+	RefusalRepeated                         // ErrRepeated: a reading sent again
 )
 
 var refusalTable = [...]Label[Refusal]{
@@ -40,6 +41,7 @@ var refusalTable = [...]Label[Refusal]{
 	{RefusalNotConfigured, "not_configured", 9},
 	{RefusalNumericalFault, "numerical_fault", 10},
 	{RefusalRunOutOfOrder, "run_out_of_order", 13},
+	{RefusalRepeated, "repeated", 14},
 }
 
 // RefusalLabels returns the label table of refusals (a copy). The wire enum
@@ -79,6 +81,8 @@ func RefusalOf(err error) Refusal {
 		return RefusalNotConfigured
 	case errors.Is(err, ErrRunOutOfOrder):
 		return RefusalRunOutOfOrder
+	case errors.Is(err, ErrRepeated):
+		return RefusalRepeated
 	case errors.Is(err, estimator.ErrNotPositiveDefinite) && !errors.Is(err, ErrBadSample),
 		errors.Is(err, estimator.ErrDegenerate), errors.Is(err, estimator.ErrUnobservable):
 		return RefusalNumericalFault

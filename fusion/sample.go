@@ -117,6 +117,7 @@ var (
 	ErrHeldFull        = errors.New("too many samples already wait for odometry")
 	ErrAbsurdJump      = errors.New("implausible motion")
 	ErrBadSample       = errors.New("malformed sample")
+	ErrRepeated        = errors.New("repeats an input already taken")
 	ErrUnknownLandmark = errors.New("unknown landmark")
 	ErrNoIMU           = errors.New("robot's imu_mode does not take this sample")
 )

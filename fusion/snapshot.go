@@ -46,10 +46,12 @@ import (
 // Version 12: the anchor of the IMU slip comparison's long interval
 // (slip.go); a version 11 to 5 snapshot has none, and its robot starts
 // the long comparison at its next IMU heading.
-const SnapshotVersion = 12
+// Version 13: the IMU heading that raised imu_unchanged (imufrozen.go);
+// a version 12 to 5 snapshot has none (its builds had no such reason).
+const SnapshotVersion = 13
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -131,6 +133,9 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		e.int(40, a.stamp)
 		e.double(41, a.heading)
 		e.double(42, a.varRad2)
+	}
+	if r.trust.frozen {
+		e.double(43, r.trust.frozenZ)
 	}
 	return e.b, nil
 }
@@ -286,6 +291,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.slip.long.heading = d.double(num)
 	case 42:
 		r.slip.long.varRad2 = d.double(num)
+	case 43:
+		r.trust.frozen, r.trust.frozenZ = true, d.double(num)
 	default:
 		d.fail("unknown field %d", num)
 	}

@@ -45,6 +45,13 @@ const (
 	// reseeded the pose, and no fix has been applied since: the estimate is
 	// far from where a sensor says the robot is.
 	TrustFixDisagrees
+	// TrustIMUUnchanged: the IMU's newest headings all read exactly the
+	// same while the wheels turned by frozenTurnRad or more (imu_mode
+	// absolute): a frozen IMU whose driver repeats its last value, which
+	// the heading then follows, or wheels that turned while the robot did
+	// not (a wheel off the floor, or spinning) beside an IMU that holds
+	// its heading exactly while it senses no rotation.
+	TrustIMUUnchanged
 )
 
 // DisagreeProbability is the chi-square probability beyond which one refused
@@ -69,6 +76,11 @@ type trustState struct {
 	// recent fixes' scores for a shared offset (bias.go).
 	fixes, imu nisWindow
 	bias       biasWindow
+	// frozen: TrustIMUUnchanged was raised while the IMU read frozenZ,
+	// and no IMU heading that differs from it has come since
+	// (imufrozen.go).
+	frozen  bool
+	frozenZ float64
 }
 
 // The IMU window holds imuWindowFactor times as many headings as the fix
@@ -184,6 +196,9 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 	}
 	if t.disagree {
 		now |= TrustFixDisagrees
+	}
+	if t.imuFrozen(r) {
+		now |= TrustIMUUnchanged
 	}
 	stamp := r.newest
 	switch {

@@ -47,6 +47,8 @@ func TestRefusalsAsValues(t *testing.T) {
 		{"run start covariance without pose", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: "b", Covariance: cov3}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.run_start.pose"},
 		{"applied", fix(&pb.Fix{StampNs: newest, SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{}},
 			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{100, 0, 0, 0, 100, 0, 0, 0, 9}}}), pb.Refusal_REFUSAL_UNSPECIFIED, ""},
+		{"the same fix again", fix(&pb.Fix{StampNs: newest, SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{}},
+			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{100, 0, 0, 0, 100, 0, 0, 0, 9}}}), pb.Refusal_REFUSAL_REPEATED, ""},
 	}
 	for _, c := range cases {
 		resp, _ := Take(r, c.sample, 0)

@@ -58,6 +58,10 @@ const (
 	// A run start that does not start the next run: its run number is not
 	// the current run's plus one, or its boot id is the current run's.
 	Refusal_REFUSAL_RUN_OUT_OF_ORDER Refusal = 13
+	// A fix or IMU heading equal in sensor, stamp and values to one the
+	// robot already took (a sensor that sends its last reading again):
+	// taken twice, one reading would count as two.
+	Refusal_REFUSAL_REPEATED Refusal = 14
 )
 
 // Enum value maps for Refusal.
@@ -77,6 +81,7 @@ var (
 		11: "REFUSAL_NOT_JOURNALED",
 		12: "REFUSAL_LIMIT",
 		13: "REFUSAL_RUN_OUT_OF_ORDER",
+		14: "REFUSAL_REPEATED",
 	}
 	Refusal_value = map[string]int32{
 		"REFUSAL_UNSPECIFIED":        0,
@@ -93,6 +98,7 @@ var (
 		"REFUSAL_NOT_JOURNALED":      11,
 		"REFUSAL_LIMIT":              12,
 		"REFUSAL_RUN_OUT_OF_ORDER":   13,
+		"REFUSAL_REPEATED":           14,
 	}
 )
 
@@ -292,6 +298,11 @@ const (
 	// camera frame) was applied, or two fixes were refused in a row, or a move
 	// recovery reseeded the pose, and no fix has been applied since.
 	DistrustReason_DISTRUST_REASON_FIX_DISAGREES DistrustReason = 7
+	// The IMU's newest headings read exactly the same while the wheels
+	// turned by 0.1 rad or more (imu_mode absolute): a frozen IMU that
+	// repeats its last value, or wheels that turned while the robot did not
+	// (a wheel off the floor) beside an IMU that holds its heading exactly.
+	DistrustReason_DISTRUST_REASON_IMU_UNCHANGED DistrustReason = 8
 )
 
 // Enum value maps for DistrustReason.
@@ -305,6 +316,7 @@ var (
 		5: "DISTRUST_REASON_FIXES_REFUSED",
 		6: "DISTRUST_REASON_NUMERICAL_FAULT",
 		7: "DISTRUST_REASON_FIX_DISAGREES",
+		8: "DISTRUST_REASON_IMU_UNCHANGED",
 	}
 	DistrustReason_value = map[string]int32{
 		"DISTRUST_REASON_UNSPECIFIED":        0,
@@ -315,6 +327,7 @@ var (
 		"DISTRUST_REASON_FIXES_REFUSED":      5,
 		"DISTRUST_REASON_NUMERICAL_FAULT":    6,
 		"DISTRUST_REASON_FIX_DISAGREES":      7,
+		"DISTRUST_REASON_IMU_UNCHANGED":      8,
 	}
 )
 
@@ -2447,7 +2460,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"recoveries\x125\n" +
 	"\bdistrust\x18\a \x03(\x0e2\x19.reckon.v1.DistrustReasonR\bdistrust\x12\x12\n" +
 	"\x04held\x18\b \x01(\x05R\x04held\x12%\n" +
-	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xfb\x02\n" +
+	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\x91\x03\n" +
 	"\aRefusal\x12\x17\n" +
 	"\x13REFUSAL_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fREFUSAL_TOO_OLD\x10\x01\x12\x1a\n" +
@@ -2463,7 +2476,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x12\x19\n" +
 	"\x15REFUSAL_NOT_JOURNALED\x10\v\x12\x11\n" +
 	"\rREFUSAL_LIMIT\x10\f\x12\x1c\n" +
-	"\x18REFUSAL_RUN_OUT_OF_ORDER\x10\r*\x86\x01\n" +
+	"\x18REFUSAL_RUN_OUT_OF_ORDER\x10\r\x12\x14\n" +
+	"\x10REFUSAL_REPEATED\x10\x0e*\x86\x01\n" +
 	"\aVerdict\x12\x17\n" +
 	"\x13VERDICT_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fVERDICT_APPLIED\x10\x01\x12\x10\n" +
@@ -2480,7 +2494,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x15EVENT_KIND_TRUST_LOST\x10\x05\x12\x1d\n" +
 	"\x19EVENT_KIND_TRUST_REGAINED\x10\x06\x12\x17\n" +
 	"\x13EVENT_KIND_RESEEDED\x10\a\x12\x1a\n" +
-	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xae\x02\n" +
+	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xd1\x02\n" +
 	"\x0eDistrustReason\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_NO_ODOMETRY\x10\x01\x12&\n" +
@@ -2489,7 +2503,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x1cDISTRUST_REASON_INCONSISTENT\x10\x04\x12!\n" +
 	"\x1dDISTRUST_REASON_FIXES_REFUSED\x10\x05\x12#\n" +
 	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x06\x12!\n" +
-	"\x1dDISTRUST_REASON_FIX_DISAGREES\x10\a*\xd3\x01\n" +
+	"\x1dDISTRUST_REASON_FIX_DISAGREES\x10\a\x12!\n" +
+	"\x1dDISTRUST_REASON_IMU_UNCHANGED\x10\b*\xd3\x01\n" +
 	"\x12ConsistencyVerdict\x12#\n" +
 	"\x1fCONSISTENCY_VERDICT_UNSPECIFIED\x10\x00\x12\"\n" +
 	"\x1eCONSISTENCY_VERDICT_CONSISTENT\x10\x01\x12%\n" +

@@ -312,9 +312,10 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 12 reads 11 to 5: a version 11 snapshot lacks the long
-	// turn anchor, 10 jump_counts, 9 the landmark blocks and the
-	// measurements' mount error states, 8 the turn scale's
+	// knows (version 13 reads 12 to 5: a version 12 snapshot lacks
+	// imu_unchanged_heading_rad, 11 the long turn anchor, 10 jump_counts, 9
+	// the landmark blocks and the measurements' mount error states, 8 the
+	// turn scale's
 	// errors-in-variables moments and the odometry entries' scrub and wheels
 	// fields, 7 the scrub's block sum, 6 the carried odometry's white part, 5
 	// the run).
@@ -417,8 +418,13 @@ type RobotSnapshot struct {
 	LongTurnAnchorHeadingRad float64 `protobuf:"fixed64,41,opt,name=long_turn_anchor_heading_rad,json=longTurnAnchorHeadingRad,proto3" json:"long_turn_anchor_heading_rad,omitempty"`
 	// and its reading's variance, rad^2.
 	LongTurnAnchorVarRad2 float64 `protobuf:"fixed64,42,opt,name=long_turn_anchor_var_rad2,json=longTurnAnchorVarRad2,proto3" json:"long_turn_anchor_var_rad2,omitempty"`
-	unknownFields         protoimpl.UnknownFields
-	sizeCache             protoimpl.SizeCache
+	// The IMU heading, radians in the IMU's own frame, that the IMU read
+	// unchanged while the wheels turned, raising DISTRUST_REASON_IMU_UNCHANGED,
+	// which stands until a heading that differs from it comes (version 13;
+	// absent when the reason is not raised, and in older versions).
+	ImuUnchangedHeadingRad *float64 `protobuf:"fixed64,43,opt,name=imu_unchanged_heading_rad,json=imuUnchangedHeadingRad,proto3,oneof" json:"imu_unchanged_heading_rad,omitempty"`
+	unknownFields          protoimpl.UnknownFields
+	sizeCache              protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -741,6 +747,13 @@ func (x *RobotSnapshot) GetLongTurnAnchorHeadingRad() float64 {
 func (x *RobotSnapshot) GetLongTurnAnchorVarRad2() float64 {
 	if x != nil {
 		return x.LongTurnAnchorVarRad2
+	}
+	return 0
+}
+
+func (x *RobotSnapshot) GetImuUnchangedHeadingRad() float64 {
+	if x != nil && x.ImuUnchangedHeadingRad != nil {
+		return *x.ImuUnchangedHeadingRad
 	}
 	return 0
 }
@@ -1998,7 +2011,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xab\x0e\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x89\x0f\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -2054,8 +2067,10 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"jumpCounts\x128\n" +
 	"\x19long_turn_anchor_stamp_ns\x18( \x01(\x03R\x15longTurnAnchorStampNs\x12>\n" +
 	"\x1clong_turn_anchor_heading_rad\x18) \x01(\x01R\x18longTurnAnchorHeadingRad\x128\n" +
-	"\x19long_turn_anchor_var_rad2\x18* \x01(\x01R\x15longTurnAnchorVarRad2B\x17\n" +
-	"\x15_last_imu_heading_rad\"T\n" +
+	"\x19long_turn_anchor_var_rad2\x18* \x01(\x01R\x15longTurnAnchorVarRad2\x12>\n" +
+	"\x19imu_unchanged_heading_rad\x18+ \x01(\x01H\x01R\x16imuUnchangedHeadingRad\x88\x01\x01B\x17\n" +
+	"\x15_last_imu_heading_radB\x1c\n" +
+	"\x1a_imu_unchanged_heading_rad\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +
 	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"}\n" +

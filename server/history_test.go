@@ -218,3 +218,33 @@ func TestOldSegmentGoneAtRestore(t *testing.T) {
 		})
 	}
 }
+
+// TestOldDamageNotedWhilePaused: damage that VerifyHistories finds while
+// the robot is paused (journal disk full) is in its state_detail once it
+// serves again, as when it is found while the robot serves. The code
+// before noted it only when the robot served at that moment, and the
+// resume cleared the detail: the note was lost (only the log kept it).
+func TestOldDamageNotedWhilePaused(t *testing.T) {
+	dir := t.TempDir()
+	cartHistory(t, dir, 10000)
+	bad, frame := flipOldBit(t, dir)
+	s, err := New(historyOptions(dir))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer s.Close()
+	if reports, err := s.Restore(); err != nil || reports[0].State != pb.RobotState_ROBOT_STATE_SERVING {
+		t.Fatalf("restore: %v %+v", err, reports)
+	}
+	r, _ := s.lookup("robots/cart")
+	r.mu.Lock()
+	s.journalFailed(r, "journal write", fmt.Errorf("test: %w", journal.ErrNoSpace))
+	r.mu.Unlock()
+	<-s.VerifyHistories()
+	s.probePaused()
+	where := fmt.Sprintf("%s at byte %d", bad, frame)
+	got := robotState(t, s, "robots/cart")
+	if got.GetState() != pb.RobotState_ROBOT_STATE_SERVING || !strings.Contains(got.GetStateDetail(), where) {
+		t.Errorf("after the pause: %v %q, want serving with a note naming %s", got.GetState(), got.GetStateDetail(), where)
+	}
+}

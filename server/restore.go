@@ -92,7 +92,7 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 		r.unread, r.historySnap = rp.scan.FromSegment+1, rp.scan.SnapshotSequence
 	}
 	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
-	r.detail, rep.Detail = rp.note, rp.note
+	r.detail, r.note, rep.Detail = rp.note, rp.note, rp.note
 	if rp.differing > 0 {
 		s.opt.Metrics.differing(rp.differing)
 		s.log.Warn("journal written by another build: outputs differ on replay; kept as recorded", "robot", name, "differing", rp.differing, "build", rp.build, "this_build", s.opt.Build)
@@ -190,8 +190,10 @@ func (s *Server) verifyHistory(r *robot, fs journal.FS) {
 	if len(problems) > 1 {
 		note += fmt.Sprintf(" (and %d more, in the log)", len(problems)-1)
 	}
+	// A paused robot gets the note when it serves again (probePaused).
+	r.note = strings.TrimPrefix(r.note+"; "+note, "; ")
 	if r.state == pb.RobotState_ROBOT_STATE_SERVING {
-		r.detail = strings.TrimPrefix(r.detail+"; "+note, "; ")
+		r.detail = r.note
 	}
 }
 

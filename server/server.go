@@ -153,7 +153,10 @@ type robot struct {
 	// historySnap is the sequence of the snapshot restore started from.
 	unread      int
 	historySnap uint64
-	sessions    sessions
+	// note is the detail of a serving robot (restore's note, damage
+	// VerifyHistories found), which it gets again after a pause.
+	note     string
+	sessions sessions
 	// holders are the senders of the inputs held now, by sequence;
 	// parked, the resolutions kept for sessions whose stream is gone
 	// (resolutions.go).
@@ -1291,7 +1294,7 @@ func (s *Server) probePaused() {
 		r.mu.Lock()
 		if r.state == pb.RobotState_ROBOT_STATE_PAUSED && r.journal != nil {
 			if err := s.writeSnapshot(r); err == nil {
-				r.state, r.detail = pb.RobotState_ROBOT_STATE_SERVING, ""
+				r.state, r.detail = pb.RobotState_ROBOT_STATE_SERVING, r.note
 				s.opt.Metrics.paused(-1)
 				s.log.Info("journal writable again; the robot serves", "robot", r.name)
 			} else if !isNoSpace(err) {

@@ -1,7 +1,9 @@
 package server
 
 import (
+	"runtime"
 	"runtime/debug"
+	"strings"
 	"sync"
 )
 
@@ -11,12 +13,12 @@ import (
 var buildStamp string
 
 var thisBuild = sync.OnceValue(func() string {
-	if buildStamp != "" {
-		return buildStamp
-	}
 	bi, ok := debug.ReadBuildInfo()
 	if !ok {
-		return "unknown"
+		return "unknown " + runtime.GOARCH
+	}
+	if buildStamp != "" {
+		return buildStamp + " " + archOf(bi.Settings)
 	}
 	b := bi.Main.Version
 	var rev, modified string
@@ -33,11 +35,27 @@ var thisBuild = sync.OnceValue(func() string {
 	if rev != "" {
 		b += " " + rev + modified
 	}
-	return b
+	return b + " " + archOf(bi.Settings)
 })
+
+// archOf names the architecture a build's floating point depends on: its
+// GOARCH and, where set, the instruction-set level that lets the compiler
+// fuse a multiply and an add (GOAMD64 v3 and up; arm64 always may). The
+// same source computes other bits on another one, so a journal restored
+// there is another build's (its outputs are replayed and their
+// differences noted, not taken for damage).
+func archOf(settings []debug.BuildSetting) string {
+	arch := runtime.GOARCH
+	for _, s := range settings {
+		if s.Key == "GO"+strings.ToUpper(runtime.GOARCH) && s.Value != "" {
+			arch += "/" + s.Value
+		}
+	}
+	return arch
+}
 
 // ThisBuild names the running build as journals record it
 // (JournalOpening.build, JournalSnapshot.build): the module version, the
 // VCS revision and "+modified" for a modified tree, or the link-time
-// stamp.
+// stamp; then the architecture (archOf), such as "amd64" or "arm64".
 func ThisBuild() string { return thisBuild() }

@@ -3,6 +3,7 @@ package server
 import (
 	"context"
 	"os"
+	"runtime"
 	"slices"
 	"strconv"
 	"strings"
@@ -248,11 +249,14 @@ func TestUnreadableSnapshotSkipped(t *testing.T) {
 	assertMemoryIsJournal(t, s, dir, "cart", 250)
 }
 
-// TestThisBuild: the build a journal records names something, and
+// TestThisBuild: the build a journal records names something, and its
+// architecture (the same source computes other floating-point bits on
+// arm64, whose compiler fuses a multiply and an add, than on amd64: a
+// journal moved between them is another build's; common practice), and
 // CreateRobot records it in the opening.
 func TestThisBuild(t *testing.T) {
-	if ThisBuild() == "" {
-		t.Fatal("ThisBuild is empty")
+	if ThisBuild() == "" || !strings.HasSuffix(strings.SplitN(ThisBuild(), "/", 2)[0], " "+runtime.GOARCH) {
+		t.Fatalf("ThisBuild is %q, want it to end in the architecture %s", ThisBuild(), runtime.GOARCH)
 	}
 	dir := t.TempDir()
 	s, _ := New(Options{JournalDir: dir})

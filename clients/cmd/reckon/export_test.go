@@ -50,7 +50,7 @@ func TestExport(t *testing.T) {
 			t.Errorf("%v: exit %d, want %d; stderr %q", args, code, exitUsage, errs)
 		}
 	}
-	if _, errs, code := runCode(t, ctx, "", "export", "-journal", dir, "-out", t.TempDir(), "-robot", "cart-9"); code != exitFailure || !strings.Contains(errs, "no journal to export") {
+	if _, errs, code := runCode(t, ctx, "", "export", "-journal", dir, "-out", t.TempDir(), "-robot", "cart-9"); code != exitNotFound || !strings.Contains(errs, "no journal to export") {
 		t.Errorf("export of a robot without a journal: exit %d, stderr %q", code, errs)
 	}
 }

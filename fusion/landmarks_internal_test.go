@@ -118,3 +118,93 @@ func TestSnapshotKeepsMeasurementBlocks(t *testing.T) {
 		t.Errorf("after a late fix: %v %+v, restored %v %+v", ra.Verdict, a.Pose(), rb.Verdict, b.Pose())
 	}
 }
+
+// TestLandmarkBlockAssignment: with one block, the first landmark of a
+// frame takes it (seeded) and the second carries its survey error as white
+// noise; the block stays with its landmark across frames while the
+// landmark is seen, and goes to another once its landmark has not been
+// seen for landmarkKeepNs. A landmark's own survey error replaces the
+// map's (c's white variance).
+func TestLandmarkBlockAssignment(t *testing.T) {
+	r, err := New(surveyConfig(true))
+	if err != nil {
+		t.Fatal(err)
+	}
+	entryOf := func(seq uint64) *entry {
+		for i := range r.live() {
+			if e := &r.live()[i]; e.seq == seq {
+				return e
+			}
+		}
+		t.Fatalf("no entry of input %d", seq)
+		return nil
+	}
+	next := int64(0)
+	until := func(stamp int64) { // odometry up to stamp, standing still
+		for ; next <= stamp; next += 10e6 {
+			if res := r.AddOdometry(Odometry{StampNs: next, Counts: []int64{0, 0}}); res.Verdict != VerdictApplied {
+				t.Fatalf("odometry at %d: %v %v", next, res.Verdict, res.Err)
+			}
+		}
+	}
+	fix := func(stamp int64, id string) *entry {
+		var rg, br float64
+		switch id {
+		case "a":
+			rg, br = 3, 0
+		case "b":
+			rg, br = 3, math.Pi/2
+		case "c":
+			rg, br = 3, math.Pi
+		}
+		until(stamp)
+		res := r.AddFix(Fix{StampNs: stamp, SensorID: "cam", Kind: FixLandmark, LandmarkID: id, RangeM: &rg, BearingRad: &br})
+		if res.Verdict != VerdictApplied {
+			t.Fatalf("fix of %s at %d: %v %v", id, stamp, res.Verdict, res.Err)
+		}
+		return entryOf(res.Seq)
+	}
+	at := r.lmAt[0]
+	sq := func(s float64) float64 { return s * s } // as the robot squares it
+	check := func(e *entry, block, seeded bool, v float64) {
+		t.Helper()
+		if (e.meas.LandmarkError == at) != block || e.seeded != seeded || e.meas.LandmarkVar != v {
+			t.Errorf("landmark %d at %d: block %d seeded %v white %v; want block %v seeded %v white %v",
+				e.lm, e.t1, e.meas.LandmarkError, e.seeded, e.meas.LandmarkVar, block, seeded, v)
+		}
+	}
+	check(fix(100e6, "a"), true, true, 0)
+	check(fix(100e6, "b"), false, false, sq(0.03))
+	check(fix(200e6, "a"), true, false, 0)
+	check(fix(200e6, "b"), false, false, sq(0.03))
+	check(fix(400e6, "c"), false, false, sq(0.1)) // a was seen 200 ms ago
+	check(fix(600e6, "c"), true, true, 0)         // and 400 ms
+	check(fix(650e6, "b"), false, false, sq(0.03))
+	// A late fix of a, before c took the block, replays the window: the
+	// block is a's again there and c's from 600 ms, as in stamp order.
+	check(fix(300e6, "a"), true, false, 0)
+	var seeded []int32
+	for i := range r.live() {
+		if e := &r.live()[i]; e.seeded {
+			seeded = append(seeded, e.lm)
+		}
+	}
+	if len(seeded) != 2 || seeded[0] != 1 || seeded[1] != 3 {
+		t.Errorf("seeded by landmarks %v, want [1 3] (a, then c)", seeded)
+	}
+	// An outlier of b, 2 m long, when c's block is free to go (c last seen
+	// at 600 ms): gated, it leaves the block c's and the estimate as it
+	// was; the next good fix of b takes the block.
+	until(1.2e9)
+	before := r.f.State()
+	table := r.lm
+	rg, br := 5.0, math.Pi/2
+	res := r.AddFix(Fix{StampNs: 1.2e9, SensorID: "cam", Kind: FixLandmark, LandmarkID: "b", RangeM: &rg, BearingRad: &br})
+	if res.Verdict != VerdictGated {
+		t.Fatalf("outlier of b: %v %v, want gated", res.Verdict, res.Err)
+	}
+	if e := entryOf(res.Seq); e.seeded || r.lm != table || r.f.State() != before {
+		t.Errorf("a gated fix of b seeded a block (%v) or changed the table (%v, was %v) or the estimate", e.seeded, r.lm, table)
+	}
+	check(fix(1.25e9, "b"), true, true, 0)
+}

@@ -62,6 +62,9 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	var usage bytes.Buffer
 	fs.SetOutput(&usage)
 	fs.Usage = func() {
+		// The flag package wrote a bad flag's error first; run returns it,
+		// and main prints it once.
+		usage.Reset()
 		fmt.Fprintln(&usage, "usage: reckond [-listen 127.0.0.1:7460] [-journal DIR] [-robot ID=CONFIG.yaml ...] [-view 127.0.0.1:7470] [flags]\n\nflags:")
 		fs.PrintDefaults()
 	}

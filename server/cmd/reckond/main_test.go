@@ -114,3 +114,18 @@ func TestHelp(t *testing.T) {
 		}
 	}
 }
+
+// TestBadFlagSaidOnce: a flag reckond does not know is named once, by the
+// error run returns (which main prints), and the usage follows on
+// standard error; the flag package's own copy of the error was printed
+// before the usage too.
+func TestBadFlagSaidOnce(t *testing.T) {
+	var stdout, stderr bytes.Buffer
+	err := run(context.Background(), []string{"-no-such-flag"}, &stdout, &stderr)
+	if err == nil || !strings.Contains(err.Error(), "no-such-flag") {
+		t.Fatalf("run: %v", err)
+	}
+	if strings.Contains(stderr.String(), "no-such-flag") || !strings.Contains(stderr.String(), "usage: reckond") {
+		t.Errorf("standard error: %q, want the usage without the error (main prints it)", stderr.String())
+	}
+}

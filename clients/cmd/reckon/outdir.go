@@ -34,7 +34,7 @@ func newDirs(path string) (remove func()) {
 	}
 }
 
-// staging is a directory beside a command's output directory where the
+// staging is a directory inside a command's output directory where the
 // command writes its files; commit moves them into the output directory
 // once all are written, each by a rename that replaces the file of that
 // name. A command that fails before leaves the files of an earlier one
@@ -45,16 +45,16 @@ type staging struct {
 	made     func()
 }
 
-// stage makes the staging directory of dir, in dir's parent, named
-// ".{dir}.*.tmp".
+// stage makes dir if it does not exist and the staging directory in it,
+// named ".reckon-*.tmp" (inside dir, so that it needs no more than dir
+// does and its renames stay on one file system).
 func stage(dir string) (*staging, error) {
 	made := newDirs(dir)
-	parent := filepath.Dir(filepath.Clean(dir))
-	if err := os.MkdirAll(parent, 0o755); err != nil {
+	if err := os.MkdirAll(dir, 0o755); err != nil {
 		made()
 		return nil, err
 	}
-	tmp, err := os.MkdirTemp(parent, "."+filepath.Base(filepath.Clean(dir))+".*.tmp")
+	tmp, err := os.MkdirTemp(dir, ".reckon-*.tmp")
 	if err != nil {
 		made()
 		return nil, err
@@ -84,10 +84,6 @@ func (s *staging) place(runs ...*review.Run) {
 // commit moves every file of the staging directory into dir and removes
 // the staging directory; on an error it abandons what is left.
 func (s *staging) commit() error {
-	if err := os.MkdirAll(s.dir, 0o755); err != nil {
-		s.abandon()
-		return err
-	}
 	entries, err := os.ReadDir(s.tmp)
 	if err != nil {
 		s.abandon()

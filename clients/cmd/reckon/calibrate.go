@@ -419,7 +419,8 @@ func writeCalibrationReport(stdout io.Writer, dir string, src review.Source, bef
 	if err != nil {
 		return err
 	}
-	if err := os.MkdirAll(dir, 0o755); err != nil {
+	st, err := stage(dir)
+	if err != nil {
 		return err
 	}
 	var runs []*review.Run
@@ -429,13 +430,14 @@ func writeCalibrationReport(stdout io.Writer, dir string, src review.Source, bef
 	}{{"before", before}, {"after", afterProto}} {
 		s := src
 		s.Override, s.Label = c.cfg, c.label
-		run, err := review.Analyze(s, dir, review.Options{})
+		run, err := review.Analyze(s, st.tmp, review.Options{})
 		if err != nil {
+			st.abandon()
 			return fmt.Errorf("report, %s: %w", c.label, err)
 		}
 		runs = append(runs, run)
 	}
-	return writeReport(stdout, dir, false, runs, func(w io.Writer) error {
+	return writeReport(stdout, st, false, runs, func(w io.Writer) error {
 		return review.WriteCalibrationHTML(w, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1])
 	})
 }

@@ -294,3 +294,23 @@ func TestPrefaceHint(t *testing.T) {
 		t.Errorf("exit %d, stderr %q; want exit %d with the hint", code, errs, exitUnreachable)
 	}
 }
+
+// TestOnlineErrorsPlain: an online command's error from the service is
+// printed as the status message after the command's name, "reckon stats:
+// robot: robots/nosuch does not exist", not in grpc-go's form "rpc error:
+// code = NotFound desc = ..."; the exit code still follows the status code.
+func TestOnlineErrorsPlain(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	for _, args := range [][]string{
+		{"stats", "nosuch"},
+		{"pose", "nosuch"},
+		{"delete", "nosuch"},
+		{"reseed", "nosuch", "-x", "1", "-y", "2", "-heading", "0"},
+		{"feed", "-robot", "nosuch", exampleSamples},
+	} {
+		_, errs, code := runCode(t, context.Background(), "", append(args, "-addr", addr)...)
+		if want := "reckon " + args[0] + ": robot: robots/nosuch does not exist\n"; code != exitNotFound || errs != want {
+			t.Errorf("%s of a robot that does not exist: exit %d, stderr %q; want %d, %q", args[0], code, errs, exitNotFound, want)
+		}
+	}
+}

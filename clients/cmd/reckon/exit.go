@@ -36,6 +36,16 @@ type usageError struct {
 func (e *usageError) Error() string { return e.err.Error() }
 func (e *usageError) Unwrap() error { return e.err }
 
+// commandError is the error of the command name, which report prints as
+// "reckon name: ...".
+type commandError struct {
+	name string
+	err  error
+}
+
+func (e *commandError) Error() string { return e.err.Error() }
+func (e *commandError) Unwrap() error { return e.err }
+
 // errInterrupted ends a command that was interrupted after it printed its
 // summary; main prints nothing more.
 var errInterrupted = errors.New("interrupted")
@@ -90,12 +100,40 @@ func report(err error, stderr io.Writer) int {
 	case code == exitInterrupted:
 		fmt.Fprintln(stderr, "reckon: interrupted")
 	default:
-		fmt.Fprintln(stderr, "reckon:", err)
-		if code == exitUnreachable && strings.Contains(err.Error(), "server preface") {
+		prefix := "reckon:"
+		var ce *commandError
+		if errors.As(err, &ce) {
+			prefix = "reckon " + ce.name + ":"
+		}
+		msg := plain(err)
+		fmt.Fprintln(stderr, prefix, msg)
+		if code == exitUnreachable && strings.Contains(msg, "server preface") {
 			fmt.Fprintln(stderr, prefaceHint)
 		}
 	}
 	return code
+}
+
+// plain is the text of err with the gRPC status in it, which grpc-go
+// renders "rpc error: code = NotFound desc = robot: ... does not exist",
+// replaced by its message alone (its code when it has none): the exit
+// code tells the status code already.
+func plain(err error) string {
+	msg := err.Error()
+	var gs interface{ GRPCStatus() *status.Status }
+	if !errors.As(err, &gs) {
+		return msg
+	}
+	raw, ok := gs.(error)
+	if !ok {
+		return msg
+	}
+	st := gs.GRPCStatus()
+	desc := st.Message()
+	if desc == "" {
+		desc = st.Code().String()
+	}
+	return strings.Replace(msg, raw.Error(), desc, 1)
 }
 
 // prefaceHint follows an error of a connection that the other end closed

@@ -11,6 +11,9 @@ import (
 	"sync"
 	"time"
 
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
@@ -37,7 +40,11 @@ stream (it stopped), feed names the first line without a verdict and exits
 3. Either way it names its session too: fed again with -session and that
 id, each sample keeps the client sequence it had (its place among the
 file's samples), and one the service took already is answered with its
-first verdict instead of taken twice; the summary says how many were.`)
+first verdict instead of taken twice; the summary says how many were.
+
+When the robot is deleted during the feed, feed stops sending at the first
+sample answered that the robot is gone, names its line and exits 4; the
+summary keeps the verdicts of the samples sent before.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
@@ -139,6 +146,10 @@ first verdict instead of taken twice; the summary says how many were.`)
 	case interrupted:
 		fmt.Fprintf(std.err, "reckon feed: interrupted after %s:%d\n", label, t.lastLine())
 		return errInterrupted
+	case t.goneLine() > 0:
+		// Deleted while feeding: the samples after this one would each be
+		// answered so too.
+		return status.Error(codes.NotFound, fmt.Sprintf("%s:%d was answered that the robot is gone (%s); feed stopped there", label, t.goneLine(), t.whyGone))
 	case errors.Is(sendErr, io.EOF) || sendErr == nil && recvErr != nil:
 		// The service ended the stream: Send says only io.EOF, the
 		// stream's status is what Recv returned.
@@ -173,6 +184,9 @@ type feeder struct {
 // that the wait does not get taken.
 func (fd *feeder) run(ctx context.Context, sr sampleSource) error {
 	for ctx.Err() == nil {
+		if fd.t.goneLine() > 0 {
+			return nil
+		}
 		if fd.t.stopped() {
 			if again, err := fd.resend(ctx); !again {
 				return err
@@ -421,7 +435,12 @@ type tally struct {
 	pending map[uint64]*pb.Sample
 	retries []retry
 	whyNot  string // the first not-taken reason
-	ended   bool   // collect returned
+	// gone is the line of the first sample answered that the robot does
+	// not exist (status NOT_FOUND: deleted during the feed), whyGone its
+	// reason; 0 while the robot is there.
+	gone    int
+	whyGone string
+	ended   bool // collect returned
 	counts  map[pb.Verdict]int
 	reasons []string
 	// unsent is the line of the sample whose send failed (0: none).
@@ -486,6 +505,14 @@ func (t *tally) lineOfLocked(clientSeq uint64) int {
 		return 0
 	}
 	return t.lines[clientSeq-t.base-1]
+}
+
+// goneLine returns the line of the first sample answered that the robot
+// is gone (0: none).
+func (t *tally) goneLine() int {
+	t.mu.Lock()
+	defer t.mu.Unlock()
+	return t.gone
 }
 
 // stopped tells whether samples wait to be sent again.
@@ -635,6 +662,9 @@ func (t *tally) answered(resp *pb.IngestResponse) (line int, counts bool) {
 		}
 		t.retries = append(t.retries, retry{seq: seq, line: line, sample: s})
 		return line, false
+	}
+	if resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && codes.Code(resp.GetStatusCode()) == codes.NotFound && t.gone == 0 {
+		t.gone, t.whyGone = line, resp.GetReason()
 	}
 	if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 		t.held[resp.GetSequence()] = line

@@ -17,7 +17,7 @@ import (
 
 // TestFeedServiceStops: the service stops in the middle of a paced feed
 // (SIGTERM; it ends the stream with UNAVAILABLE, EndStreams). Feed
-// says that the stream ended with the service's status, names the first
+// says that the stream ended with the service's status message, names the first
 // line without a verdict and exits 3 (unreachable), not "EOF" and 1. Every
 // sample answered is in the journal: restarted, the robot holds at least
 // the samples before that line, and at most those and the ones without a
@@ -41,7 +41,7 @@ func TestFeedServiceStops(t *testing.T) {
 	t.Logf("feed:\n%s%s", out, errs)
 	// The line is the first sent without a verdict, or, when every sample
 	// sent was answered, the one whose send failed.
-	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) (?:is the first of (\d+) samples sent without a verdict(?: \(and line \d+ was not sent\))?|was not sent): the stream ended \(.*code = Unavailable.*\); feed again from there, on the same session \(.*\): -from-line (\d+) -session ([0-9a-f]+)`).FindStringSubmatch(errs)
+	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) (?:is the first of (\d+) samples sent without a verdict(?: \(and line \d+ was not sent\))?|was not sent): the stream ended \(the service is stopping: [^)]*\); feed again from there, on the same session \(.*\): -from-line (\d+) -session ([0-9a-f]+)`).FindStringSubmatch(errs)
 	if code != exitUnreachable || m == nil || m[1] != m[3] {
 		t.Fatalf("feed exit %d, want %d naming the line to feed again from\nstderr:\n%s", code, exitUnreachable, errs)
 	}

@@ -7,9 +7,11 @@ import (
 	"net/http"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strconv"
 	"strings"
 	"testing"
+	"time"
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
@@ -225,5 +227,38 @@ func TestFeedSessionTakenBefore(t *testing.T) {
 	}
 	if r, err := dialService(t, addr).GetRobot(ctx, "robots/cart"); err != nil || r.GetInputCount() != 851 {
 		t.Errorf("the robot took %d inputs (%v), want the file's 851 once", r.GetInputCount(), err)
+	}
+}
+
+// TestFeedRobotDeleted: the robot is deleted in the middle of a paced feed.
+// Feed stops sending at the first sample answered that the robot is gone
+// (status NOT_FOUND: "was deleted", or "does not exist" once the service
+// forgot it), names that line and exits 4, as watch does. Before, it sent the
+// rest of the file, each sample answered "was deleted", and exited 0.
+func TestFeedRobotDeleted(t *testing.T) {
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	time.AfterFunc(400*time.Millisecond, func() {
+		if _, errs, code := runCode(t, context.Background(), "", "delete", "-addr", addr, "cart"); code != 0 {
+			t.Errorf("delete: exit %d\n%s", code, errs)
+		}
+	})
+	out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-pace", "4", exampleSamples)
+	t.Logf("feed:\n%s%s", out, errs)
+	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) was answered that the robot is gone \(robot: robots/cart (?:was deleted|does not exist)\); feed stopped there`).FindStringSubmatch(errs)
+	if code != exitNotFound || m == nil {
+		t.Fatalf("feed to a robot deleted meanwhile: exit %d, want %d naming the line\n%s", code, exitNotFound, errs)
+	}
+	line, _ := strconv.Atoi(m[1])
+	sent := regexp.MustCompile(`(\d+) samples sent to robots/cart: applied (\d+)`).FindStringSubmatch(out)
+	if sent == nil {
+		t.Fatalf("no summary:\n%s", out)
+	}
+	// It stops within the samples in flight when the first answer came,
+	// well before the file's 854 lines (2.5 s at 4 times real time).
+	if n, _ := strconv.Atoi(sent[1]); line < 2 || n >= line+200 {
+		t.Errorf("feed sent %d samples, stopping at line %d: it did not stop at the first deleted verdict", n, line)
+	}
+	if applied, _ := strconv.Atoi(sent[2]); applied == 0 {
+		t.Errorf("the samples sent before the delete lost their verdicts in the summary:\n%s", out)
 	}
 }

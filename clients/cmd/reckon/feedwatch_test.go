@@ -87,14 +87,14 @@ func TestFeedErrorsNameTheLine(t *testing.T) {
 		t.Fatalf("create: exit %d, %s", code, errs)
 	}
 	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", file)
-	if code != exitRefused || !strings.Contains(errs, "reckon: "+file+":9: ") || strings.Contains(errs, "line 9") {
+	if code != exitRefused || !strings.Contains(errs, "reckon feed: "+file+":9: ") || strings.Contains(errs, "line 9") {
 		t.Errorf("exit %d, stderr %q", code, errs)
 	}
 	if !strings.HasPrefix(out, "4 samples sent to robots/cart:") || !strings.Contains(out, "invalid 1") || !strings.Contains(out, "\n  "+file+":7: invalid: ") {
 		t.Errorf("stdout:\n%s", out)
 	}
 	_, errs, code = runCode(t, ctx, "{}\n", "feed", "-addr", addr, "-robot", "cart", "-")
-	if code != exitRefused || !strings.Contains(errs, "reckon: stdin:1: none of odometry") {
+	if code != exitRefused || !strings.Contains(errs, "reckon feed: stdin:1: none of odometry") {
 		t.Errorf("stdin: exit %d, stderr %q", code, errs)
 	}
 	if _, errs, code = runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "/nonexistent.jsonl"); code != exitFailure {

@@ -145,10 +145,13 @@ func run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 	for _, c := range commands() {
 		if c.name == args[0] && c.run != nil {
 			err := c.run(ctx, args[1:], stdio{in: stdin, out: stdout, err: stderr})
-			if err == errHelp {
+			switch err {
+			case nil:
+				return nil
+			case errHelp:
 				return nil
 			}
-			return err
+			return &commandError{name: c.name, err: err}
 		}
 	}
 	fmt.Fprint(stderr, usage())

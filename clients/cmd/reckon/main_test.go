@@ -167,3 +167,54 @@ func TestDemoPage(t *testing.T) {
 		t.Errorf("demo -page 0.0.0.0:0: %v", err)
 	}
 }
+
+// TestReviewFailedKeepsEarlier: a review (or comparison) into a directory
+// that holds an earlier one, which fails after it has begun writing (a
+// truth file with a malformed row 5 s into the run, found once the
+// filtered track is written), leaves the earlier files as they were and
+// nothing beside them. Before, the filtered track was rewritten in place,
+// and the earlier set was left a mix of old and new.
+func TestReviewFailedKeepsEarlier(t *testing.T) {
+	for _, args := range [][]string{
+		{"review"},
+		{"compare", "-b", exampleConfig},
+	} {
+		t.Run(args[0], func(t *testing.T) {
+			parent := t.TempDir()
+			out := filepath.Join(parent, "out")
+			cmd := append(args, "-config", exampleConfig, "-samples", exampleSamples, "-out", out)
+			if _, errs, code := runCode(t, context.Background(), "", cmd...); code != 0 {
+				t.Fatalf("first %s: exit %d\n%s", args[0], code, errs)
+			}
+			before := map[string]string{}
+			entries, _ := os.ReadDir(out)
+			for _, e := range entries {
+				b, err := os.ReadFile(filepath.Join(out, e.Name()))
+				if err != nil {
+					t.Fatal(err)
+				}
+				before[e.Name()] = string(b)
+			}
+			truth := filepath.Join(parent, "truth.csv")
+			if err := os.WriteFile(truth, []byte("stamp_ns,x_m,y_m,heading_rad\n0,0,0,0\n2500000000,1,0,0\n5000000000,2,0,zero\n"), 0o644); err != nil {
+				t.Fatal(err)
+			}
+			_, errs, code := runCode(t, context.Background(), "", append(cmd, "-from", "1", "-truth", truth)...)
+			if code != exitRefused || !strings.Contains(errs, "truth.csv") {
+				t.Fatalf("%s with a malformed truth file: exit %d, want %d naming it\n%s", args[0], code, exitRefused, errs)
+			}
+			entries, _ = os.ReadDir(out)
+			if len(entries) != len(before) {
+				t.Errorf("the output directory holds %d files after the failure, want the earlier %d", len(entries), len(before))
+			}
+			for name, want := range before {
+				if b, err := os.ReadFile(filepath.Join(out, name)); err != nil || string(b) != want {
+					t.Errorf("%s changed by the failed %s (%v)", name, args[0], err)
+				}
+			}
+			if entries, _ := os.ReadDir(parent); len(entries) != 2 {
+				t.Errorf("beside the output directory: %v, want only it and the truth file", entries)
+			}
+		})
+	}
+}

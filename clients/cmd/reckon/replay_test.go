@@ -699,8 +699,8 @@ func TestOfflineNoSuchRobot(t *testing.T) {
 		// tune and calibrate named the directory twice ("DIR: no journal
 		// for nosuch in DIR") when they read its configuration from the
 		// journal.
-		{[]string{"tune", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "tuned.yaml")}, "reckon: no journal for nosuch in " + dir},
-		{[]string{"calibrate", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "calibrated.yaml")}, "reckon: no journal for nosuch in " + dir},
+		{[]string{"tune", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "tuned.yaml")}, "reckon tune: no journal for nosuch in " + dir},
+		{[]string{"calibrate", "-journal", dir, "-robot", "nosuch", "-out", filepath.Join(out, "calibrated.yaml")}, "reckon calibrate: no journal for nosuch in " + dir},
 	} {
 		_, errs, code := runCode(t, context.Background(), "", c.args...)
 		if code != exitNotFound || !strings.Contains(errs, c.want) {

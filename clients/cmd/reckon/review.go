@@ -173,15 +173,18 @@ its own; the default is run 1, and the summary names the others).`)
 	}
 	label := review.Label(src)
 	dir := sf.outDir(label)
-	prog, done := progress(stderr, "replaying and smoothing")
-	made := newDirs(dir)
-	run, err := review.Analyze(src, dir, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
-	done()
+	st, err := stage(dir)
 	if err != nil {
-		made()
 		return err
 	}
-	return writeReports(stdout, dir, "Review of "+run.Robot+" ("+run.Label+")", run)
+	prog, done := progress(stderr, "replaying and smoothing")
+	run, err := review.Analyze(src, st.tmp, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
+	done()
+	if err != nil {
+		st.abandon()
+		return err
+	}
+	return writeReports(stdout, st, "Review of "+run.Robot+" ("+run.Label+")", run)
 }
 
 func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -221,29 +224,48 @@ their differences.`)
 			srcs[i].Label = fmt.Sprintf("%c-%s", 'a'+i, strings.TrimSuffix(filepath.Base(path), filepath.Ext(path)))
 		}
 	}
-	made := newDirs(dir)
+	st, err := stage(dir)
+	if err != nil {
+		return err
+	}
 	var runs []*review.Run
 	for _, s := range srcs {
 		prog, done := progress(stderr, "replaying "+s.Label)
-		run, err := review.Analyze(s, dir, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
+		run, err := review.Analyze(s, st.tmp, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 		done()
 		if err != nil {
-			made()
+			st.abandon()
 			return fmt.Errorf("%s: %w", s.Label, err)
 		}
 		runs = append(runs, run)
 	}
-	return writeReports(stdout, dir, "Comparison: "+runs[0].Label+" and "+runs[1].Label, runs...)
+	return writeReports(stdout, st, "Comparison: "+runs[0].Label+" and "+runs[1].Label, runs...)
 }
 
-func writeReports(stdout io.Writer, dir, title string, runs ...*review.Run) error {
-	return writeReport(stdout, dir, true, runs, func(w io.Writer) error { return review.WriteHTML(w, title, runs...) })
+func writeReports(stdout io.Writer, st *staging, title string, runs ...*review.Run) error {
+	return writeReport(stdout, st, true, runs, func(w io.Writer) error { return review.WriteHTML(w, title, runs...) })
 }
 
-// writeReport writes the runs' text summary to dir/summary.txt (and to
-// stdout with echo) and the HTML report that html writes to
-// dir/report.html, and says where it is.
-func writeReport(stdout io.Writer, dir string, echo bool, runs []*review.Run, html func(io.Writer) error) error {
+// writeReport writes the runs' text summary to summary.txt (and to stdout
+// with echo) and the HTML report that html writes to report.html, in the
+// staging directory beside the exports of runs, moves them all into the
+// output directory, and says where the report is. On an error it abandons
+// the staging directory, and the output directory keeps what it held.
+func writeReport(stdout io.Writer, st *staging, echo bool, runs []*review.Run, html func(io.Writer) error) error {
+	st.place(runs...)
+	err := writeReportFiles(stdout, st.tmp, echo, runs, html)
+	if err != nil {
+		st.abandon()
+		return err
+	}
+	if err := st.commit(); err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "\nreport: %s\n", filepath.Join(st.dir, "report.html"))
+	return nil
+}
+
+func writeReportFiles(stdout io.Writer, dir string, echo bool, runs []*review.Run, html func(io.Writer) error) error {
 	var txt strings.Builder
 	if err := review.WriteText(&txt, runs...); err != nil {
 		return err
@@ -254,8 +276,7 @@ func writeReport(stdout io.Writer, dir string, echo bool, runs []*review.Run, ht
 	if err := os.WriteFile(filepath.Join(dir, "summary.txt"), []byte(txt.String()), 0o644); err != nil {
 		return err
 	}
-	path := filepath.Join(dir, "report.html")
-	f, err := os.Create(path)
+	f, err := os.Create(filepath.Join(dir, "report.html"))
 	if err != nil {
 		return err
 	}
@@ -263,9 +284,5 @@ func writeReport(stdout io.Writer, dir string, echo bool, runs []*review.Run, ht
 		f.Close()
 		return err
 	}
-	if err := f.Close(); err != nil {
-		return err
-	}
-	fmt.Fprintf(stdout, "\nreport: %s\n", path)
-	return nil
+	return f.Close()
 }

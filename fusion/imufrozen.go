@@ -79,24 +79,18 @@ func (r *Robot) imuUnchanged(b int) bool {
 		if e.meas.Z[0] != z {
 			break
 		}
-		if ta == tb && math.Abs(r.turnOver(i, e.t1, tb))*frozenSpanNs < frozenTurnRad*float64(tb-e.t1) {
+		if ta == tb && math.Abs(r.turnOver(e.t1, tb))*frozenSpanNs < frozenTurnRad*float64(tb-e.t1) {
 			return false
 		}
 		ta = e.t1
 	}
-	return ta != tb && math.Abs(r.turnOver(max(i, 0), ta, tb)) >= frozenTurnRad
+	return ta != tb && math.Abs(r.turnOver(ta, tb)) >= frozenTurnRad
 }
 
-// turnOver returns the wheels' turn over [ta, tb], reading the live
-// entries from index from (none before it may overlap ta).
-func (r *Robot) turnOver(from int, ta, tb int64) float64 {
-	live := r.live()
+// turnOver returns the wheels' turn over [ta, tb], by the steps' time
+// fractions, as the slip comparison reads it (odometryOver).
+func (r *Robot) turnOver(ta, tb int64) float64 {
 	var turn float64
-	for i := from; i < len(live) && live[i].t0 < tb; i++ {
-		e := &live[i]
-		if lo, hi := max(e.t0, ta), min(e.t1, tb); e.kind == entOdo && lo < hi {
-			turn += e.step.TurnRad * float64(hi-lo) / float64(e.t1-e.t0)
-		}
-	}
+	r.odometryOver(ta, tb, func(e *entry, f float64, _ int64) { turn += e.step.TurnRad * f })
 	return turn
 }

@@ -29,15 +29,8 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Fatal(err)
 	}
 	sess, _ := openFeed(ctx, c, "robots/cart")
-	var newest int64
-	for _, s := range samp {
-		if _, err := sess.apply(s); err != nil {
-			t.Fatal(err)
-		}
-		if o := s.GetOdometry(); o != nil {
-			newest = o.GetStampNs()
-		}
-	}
+	applyAll(t, sess, samp)
+	newest := newestOdometry(samp)
 	sess.close()
 	odo := func(start, stamp int64, travel ...float64) *pb.Sample {
 		return &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StartNs: start, StampNs: stamp,
@@ -214,17 +207,12 @@ func TestReseedTooFarAheadReplays(t *testing.T) {
 	if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 		t.Fatal(err)
 	}
-	var newest int64
 	for _, v := range take(s, requests("robots/cart", "", 1, samp)) {
 		if v.GetSequence() == 0 {
 			t.Fatalf("a sample of the run refused: %v", v)
 		}
 	}
-	for _, sm := range samp {
-		if o := sm.GetOdometry(); o != nil {
-			newest = o.GetStampNs()
-		}
-	}
+	newest := newestOdometry(samp)
 	before, seq := memoryPose(s)
 	resp, err := s.ReseedRobot(context.Background(), &pb.ReseedRobotRequest{Robot: "robots/cart", Reseed: &pb.Reseed{StampNs: newest + 2e9,
 		Pose: &pb.FloorPose{XM: 5, YM: 1}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, 0.01}}}})

@@ -54,15 +54,8 @@ func TestStateRefusalCodes(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer f.close()
-	var newest int64
-	for _, s := range samp {
-		if _, err := f.apply(s); err != nil {
-			t.Fatal(err)
-		}
-		if o := s.GetOdometry(); o != nil {
-			newest = o.GetStampNs()
-		}
-	}
+	applyAll(t, f, samp)
+	newest := newestOdometry(samp)
 	fix := func(stamp int64) *pb.Sample {
 		return &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{StampNs: stamp, SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{}},
 			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{100, 0, 0, 0, 100, 0, 0, 0, 9}}}}}

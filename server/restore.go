@@ -127,11 +127,11 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 // robot goes on serving. Its state came from a snapshot and the inputs
 // after it, which restore read and checked whole, so what it serves is
 // what was acknowledged; quarantine would stop a working robot for the
-// sake of a record it no longer depends on. The damaged bytes are left where they
-// are (the segment is sealed), and the offline tools name the gap. A
-// later restore that has to replay from the start (a snapshot of another
-// version) reads that history and quarantines the robot if inputs are
-// missing, as before.
+// sake of a record it no longer depends on. The damaged bytes are left
+// where they are (the segment is sealed), and the offline tools name the
+// gap. A later restore that has to replay from the start (a snapshot of
+// another version) reads that history and quarantines the robot if inputs
+// are missing, as before.
 func (s *Server) VerifyHistories() <-chan struct{} {
 	done := make(chan struct{})
 	var todo []*robot

@@ -6,6 +6,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"log/slog"
+	"net/http/httptest"
 	"os"
 	"strings"
 	"testing"
@@ -76,6 +77,7 @@ func TestRestoreReadsOnlyTheTail(t *testing.T) {
 		ffs := faultfs.New(journal.OS, nil)
 		opt := historyOptions(dir)
 		opt.FS = ffs
+		opt.Metrics = NewMetrics()
 		s, err := New(opt)
 		if err != nil {
 			t.Fatal(err)
@@ -96,6 +98,12 @@ func TestRestoreReadsOnlyTheTail(t *testing.T) {
 		if verified := ffs.BytesRead() - read; verified < total/2 {
 			t.Errorf("the verification read %d bytes of %d", verified, total)
 		}
+		hs := httptest.NewServer(opt.Metrics.Handler())
+		const metric = `reckon_robot_history_damage{robot="robots/cart"}`
+		if v, ok := scrape(t, hs.URL, metric)[metric]; !ok || v != 0 {
+			t.Errorf("%s = %v (present %v) for a whole history, want 0", metric, v, ok)
+		}
+		hs.Close()
 		s.Close()
 		t.Logf("%d segments, %d bytes: restore read %d", len(segs), total, read)
 	}
@@ -130,8 +138,9 @@ func flipOldBit(t *testing.T, dir string) (string, int) {
 // robot serves with its acknowledged state (pose and inputs as before the
 // restart) and takes input. VerifyHistories then finds the damage and
 // reports it with the file and the frame's offset, in the log and in the
-// robot's state_detail; the robot goes on serving. A restart afterwards
-// serves again.
+// robot's state_detail, and counts it in the robot's metric
+// reckon_robot_history_damage (the code before had no metric of it); the
+// robot goes on serving. A restart afterwards serves again.
 func TestOldDamageFoundAfterRestore(t *testing.T) {
 	dir := t.TempDir()
 	want, wantSeq := cartHistory(t, dir, 10000)
@@ -139,6 +148,10 @@ func TestOldDamageFoundAfterRestore(t *testing.T) {
 	var logs bytes.Buffer
 	opt := historyOptions(dir)
 	opt.Logger = slog.New(slog.NewTextHandler(&logs, nil))
+	opt.Metrics = NewMetrics()
+	hs := httptest.NewServer(opt.Metrics.Handler())
+	defer hs.Close()
+	const metric = `reckon_robot_history_damage{robot="robots/cart"}`
 	s, err := New(opt)
 	if err != nil {
 		t.Fatal(err)
@@ -151,7 +164,15 @@ func TestOldDamageFoundAfterRestore(t *testing.T) {
 	if got, seq := memoryPose(s); seq != wantSeq || !proto.Equal(got, want) {
 		t.Errorf("restored at input %d, pose %v; before the restart %d, %v", seq, got, wantSeq, want)
 	}
+	if v, ok := scrape(t, hs.URL, metric)[metric]; ok {
+		t.Errorf("%s = %v before the verification, want absent", metric, v)
+	}
 	<-s.VerifyHistories()
+	// One bit flipped: two problems, the damaged record and the gap in the
+	// inputs it leaves.
+	if v, ok := scrape(t, hs.URL, metric)[metric]; v != 2 {
+		t.Errorf("%s = %v (present %v) after the verification, want 2", metric, v, ok)
+	}
 	where := fmt.Sprintf("%s at byte %d", bad, frame)
 	r := robotState(t, s, "robots/cart")
 	if r.GetState() != pb.RobotState_ROBOT_STATE_SERVING || !strings.Contains(r.GetStateDetail(), where) || !strings.Contains(r.GetStateDetail(), "journal history damaged") {

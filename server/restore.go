@@ -122,15 +122,16 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 //
 // Damage found there (a bad CRC-32C, a missing or cut record, a segment
 // that differs from its record in the manifest) is logged with its file
-// and offset and noted in the robot's state_detail; the robot goes on
-// serving. Its state came from a snapshot and the inputs after it, which
-// restore read and checked whole, so what it serves is what was
-// acknowledged; quarantine would stop a working robot for the sake of a
-// record it no longer depends on. The damaged bytes are left where they
-// are (the segment is sealed), and the offline tools name the gap. A
-// later restore that has to replay from the start (a snapshot of another
-// version) reads that history and quarantines the robot if inputs are
-// missing, as before.
+// and offset, noted in the robot's state_detail and counted in its
+// metric reckon_robot_history_damage (0 when the history read whole); the
+// robot goes on serving. Its state came from a snapshot and the inputs
+// after it, which restore read and checked whole, so what it serves is
+// what was acknowledged; quarantine would stop a working robot for the
+// sake of a record it no longer depends on. The damaged bytes are left
+// where they are (the segment is sealed), and the offline tools name the
+// gap. A later restore that has to replay from the start (a snapshot of
+// another version) reads that history and quarantines the robot if inputs
+// are missing, as before.
 func (s *Server) VerifyHistories() <-chan struct{} {
 	done := make(chan struct{})
 	var todo []*robot
@@ -183,6 +184,7 @@ func (s *Server) verifyHistory(r *robot, fs journal.FS) {
 	if r.deleted {
 		return // its journal was set aside, perhaps while it was read
 	}
+	s.opt.Metrics.historyDamage(r.name, len(problems))
 	if len(problems) == 0 {
 		s.log.Info("journal history verified", "robot", r.name, "segments", r.unread)
 		return

@@ -1,6 +1,7 @@
 package fusion_test
 
 import (
+	"cmp"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -271,15 +272,7 @@ func ghSimulate(seed uint64, durS float64) []ghInput {
 			}
 		}
 	}
-	slices.SortStableFunc(ins, func(a, b ghInput) int {
-		switch {
-		case a.arrival < b.arrival:
-			return -1
-		case a.arrival > b.arrival:
-			return 1
-		}
-		return 0
-	})
+	slices.SortStableFunc(ins, func(a, b ghInput) int { return cmp.Compare(a.arrival, b.arrival) })
 	return ins
 }
 
@@ -353,7 +346,10 @@ type ghTally struct {
 	pull                float64
 	fixes, gated        int
 	recoveries          uint64
-	verdict             string
+	// camOverconfident counts runs whose camera SensorStats.Consistency
+	// calls overconfident; camNIS sums their mean NIS.
+	camOverconfident int
+	camNIS           float64
 	// The longest stretch trusted outside the 99.9% region, seconds, and
 	// the largest position error while trusted, metres.
 	longestS, worstTrustedM float64
@@ -463,8 +459,11 @@ func ghRun(seed uint64, durS float64, cfg fusion.Config) (ghTally, error) {
 	st := r.Stats()
 	tl.recoveries = st.Recoveries
 	for _, ss := range st.Sensors {
-		m, lo, hi, v := ss.Consistency()
-		tl.verdict = fmt.Sprintf("%s: applied %d gated %d, mean NIS %.2f [%.2f, %.2f] verdict %d", ss.ID, ss.Applied, ss.Gated, m, lo, hi, v)
+		m, _, _, v := ss.Consistency()
+		tl.camNIS = m
+		if v == fusion.Overconfident {
+			tl.camOverconfident = 1
+		}
 	}
 	return tl, nil
 }
@@ -480,14 +479,16 @@ func ghMahal2(ex, ey float64, cov *[9]float64) float64 {
 // ghCheckPose checks the invariants a user relies on: a finite pose and a
 // symmetric positive-definite covariance.
 func ghCheckPose(p *fusion.FusedPose) error {
-	if !finite(p.Pose.X, p.Pose.Y, p.Pose.Heading) {
-		return fmt.Errorf("pose not finite: %+v", p.Pose)
+	// x - x is NaN exactly when x is NaN or infinite.
+	for _, x := range append([]float64{p.Pose.X, p.Pose.Y, p.Pose.Heading}, p.Cov[:]...) {
+		if math.IsNaN(x - x) {
+			return fmt.Errorf("pose or covariance not finite: %+v %v", p.Pose, p.Cov)
+		}
 	}
 	for i := range 3 {
-		for j := range 3 {
-			a, b := p.Cov[3*i+j], p.Cov[3*j+i]
-			if !finite(a) || math.Abs(a-b) > 1e-12*math.Max(math.Abs(p.Cov[4*i]), math.Abs(p.Cov[4*j])) {
-				return fmt.Errorf("covariance not symmetric and finite: %v", p.Cov)
+		for j := range i {
+			if math.Abs(p.Cov[3*i+j]-p.Cov[3*j+i]) > 1e-12*math.Max(p.Cov[4*i], p.Cov[4*j]) {
+				return fmt.Errorf("covariance not symmetric: %v", p.Cov)
 			}
 		}
 	}
@@ -496,15 +497,6 @@ func ghCheckPose(p *fusion.FusedPose) error {
 		return fmt.Errorf("covariance not positive definite: %v", p.Cov)
 	}
 	return nil
-}
-
-func finite(v ...float64) bool {
-	for _, x := range v {
-		if math.IsNaN(x) || math.IsInf(x, 0) {
-			return false
-		}
-	}
-	return true
 }
 
 // add pools b into a.
@@ -524,6 +516,8 @@ func (a *ghTally) add(b *ghTally) {
 	a.fixes += b.fixes
 	a.gated += b.gated
 	a.recoveries += b.recoveries
+	a.camOverconfident += b.camOverconfident
+	a.camNIS += b.camNIS
 	a.longestS = math.Max(a.longestS, b.longestS)
 	a.worstTrustedM = math.Max(a.worstTrustedM, b.worstTrustedM)
 	if a.cpSum == nil {
@@ -587,10 +581,10 @@ func (v *ghVerdict) String() string {
 	pct := func(k int) float64 { return 100 * float64(k) / float64(tl.samples) }
 	return fmt.Sprintf("%d runs, %d samples: trusted %.1f%%, mean NEES %.2f; Monte Carlo mean NEES %.2f in [%.2f, %.2f], %d of %d checkpoints above; "+
 		"outside the 95%% / 99.9%% regions %.2f / %.3f%%, trusted so %.2f / %.3f%%, longest trusted outside 99.9%% %.2f s; position outside its 95%% ellipse %.2f%%, trusted so %.2f%%; "+
-		"largest position error while trusted %.3f m; %d fixes, %d gated; %d wrong markers, %d applied, pull %.2g sd; %d recoveries",
+		"largest position error while trusted %.3f m; %d fixes, %d gated; %d wrong markers, %d applied, pull %.2g sd; %d recoveries; camera called overconfident in %d runs, its mean NIS %.2f",
 		v.runs, tl.samples, pct(tl.trusted), tl.neesSum/float64(tl.samples), v.mcMean, v.mcLo, v.mcHi, v.mcAbove, v.mcCounted,
 		pct(tl.out95), pct(tl.out999), pct(tl.trustedOut95), pct(tl.trustedOut999), tl.longestS, pct(tl.posOut95), pct(tl.trustedPosOut95),
-		tl.worstTrustedM, tl.fixes, tl.gated, tl.wrong, tl.wrongApplied, tl.pull, tl.recoveries)
+		tl.worstTrustedM, tl.fixes, tl.gated, tl.wrong, tl.wrongApplied, tl.pull, tl.recoveries, tl.camOverconfident, tl.camNIS/float64(v.runs))
 }
 
 // overconfidence returns what of the honesty checks the runs break: the

@@ -90,6 +90,9 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 	r.fr, r.journal, r.sessions, r.sinceSnapshot, r.holders = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.scan.Replayed, rp.holders
 	if rp.scan.FromSegment > 0 || rp.scan.FromOffset > 0 {
 		r.unread, r.historySnap = rp.scan.FromSegment+1, rp.scan.SnapshotSequence
+		if rp.scan.FromSegment == rp.scan.Segment {
+			r.unreadTo = rp.scan.FromOffset
+		}
 	}
 	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
 	r.detail, r.note, rep.Detail = rp.note, rp.note, rp.note
@@ -108,9 +111,10 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 }
 
 // VerifyHistories reads, in a goroutine of its own, the part of each
-// serving robot's journal that Restore did not read: the sealed segments
-// before the snapshot it started from, which it checked only against the
-// manifest (journal.Verify; they are never written again). It returns a
+// serving robot's journal that Restore did not read: the segments before
+// the snapshot it started from, which it checked only against the
+// manifest (journal.Verify; sealed, they are never written again), and the
+// part of the snapshot's own segment before it. It returns a
 // channel closed when the pass ends; Close stops it. Call it once the
 // service serves, after Restore. The robots are read one after another,
 // at most Options.VerifyBytesPerSecond on average (pacedFS), so that the
@@ -163,7 +167,7 @@ func (s *Server) VerifyHistories() <-chan struct{} {
 // verifyHistory reads what restore did not read of r's journal and
 // reports any damage in it (VerifyHistories).
 func (s *Server) verifyHistory(r *robot, fs journal.FS) {
-	sc, err := journal.Verify(s.verifyCtx, fs, s.opt.JournalDir, r.id, r.unread-1)
+	sc, err := journal.Verify(s.verifyCtx, fs, s.opt.JournalDir, r.id, r.unread-1, r.unreadTo)
 	if s.verifyCtx.Err() != nil {
 		return
 	}

@@ -247,7 +247,7 @@ func (r *Robot) AddFix(fx Fix) Result {
 	}
 	res := r.next()
 	id := fx.SensorID
-	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, sensor: r.stats.sensor(id, r.cfg.GateProbability)}
+	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, sensor: r.statsSensor(id, r.cfg.GateProbability)}
 	if fx.Kind == FixLandmark {
 		e.lm = r.landmarks[fx.LandmarkID].id
 	}

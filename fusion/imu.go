@@ -51,7 +51,7 @@ func (r *Robot) odometryHeading(res *Result, t int64, z float64) {
 	if read, err := readAt(t, r.cfg.IMULatencyNs, "imu_latency_ns"); err == nil {
 		t = read
 	}
-	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
+	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.statsSensor(imuSensor, r.imuGate())}
 	var ins insertion
 	r.insert(&e, &ins)
 	r.decideMeas(res, &ins, imuSensor)
@@ -77,7 +77,7 @@ func (r *Robot) AddHeading(h Heading) Result {
 		return refused(err)
 	}
 	res := r.next()
-	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.stats.sensor(imuSensor, r.imuGate())}
+	e := entry{kind: entMeas, t0: t, t1: t, seq: res.Seq, meas: m, imu: true, sensor: r.statsSensor(imuSensor, r.imuGate())}
 	return r.finish(r.addMeasurement(res, &e, imuSensor))
 }
 

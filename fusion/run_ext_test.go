@@ -2,6 +2,7 @@ package fusion_test
 
 import (
 	"fmt"
+	"math"
 	"os"
 	"path/filepath"
 	"testing"
@@ -36,7 +37,7 @@ func TestSnapshotVersion5Restores(t *testing.T) {
 	want := append([]byte{old[0], fusion.SnapshotVersion}, old[2:]...)
 	want = protowire.AppendVarint(protowire.AppendTag(want, 33, protowire.VarintType), 0)
 	want = protowire.AppendString(protowire.AppendTag(want, 34, protowire.BytesType), "")
-	want = withFreshScrub(want)
+	want = withSensorRobust(t, cfg, withFreshScrub(want))
 	if string(b) != string(want) {
 		t.Errorf("version 5 restored writes %d bytes, not its own %d with the run fields", len(b), len(want))
 	}
@@ -69,10 +70,56 @@ func TestSnapshotVersion6And7Restore(t *testing.T) {
 		if v < 8 {
 			want = withFreshScrub(want)
 		}
+		want = withSensorRobust(t, cfg, want)
 		if string(b) != string(want) {
 			t.Errorf("version %d restored writes %d bytes, not its own %d with a fresh scrub block", v, len(b), len(want))
 		}
 	}
+}
+
+// withSensorRobust returns the snapshot b with each sensor record (field
+// 15) given its robust weighting and parameter (fields 6 and 7, version 14)
+// from cfg, as a robot restored from a snapshot older than version 14
+// writes them: the IMU's none and 0.
+func withSensorRobust(t *testing.T, cfg fusion.Config, b []byte) []byte {
+	t.Helper()
+	var out []byte
+	for len(b) > 0 {
+		num, typ, n := protowire.ConsumeTag(b)
+		m := protowire.ConsumeFieldValue(num, typ, b[n:])
+		if n < 0 || m < 0 {
+			t.Fatalf("snapshot does not parse")
+		}
+		if num != 15 {
+			out = append(out, b[:n+m]...)
+			b = b[n+m:]
+			continue
+		}
+		rec, _ := protowire.ConsumeBytes(b[n:])
+		robust, param := fusion.RobustNone, 0.0
+		for r := rec; len(r) > 0; {
+			f, ft, k := protowire.ConsumeTag(r)
+			l := protowire.ConsumeFieldValue(f, ft, r[k:])
+			if f == 1 {
+				id, _ := protowire.ConsumeString(r[k:])
+				for _, s := range cfg.Sensors {
+					if s.ID == id {
+						robust, param = s.Robust, s.RobustParameter
+						if param == 0 && robust == fusion.RobustHuber {
+							param = fusion.DefaultHuberK
+						}
+					}
+				}
+			}
+			r = r[k+l:]
+		}
+		rec = append(append([]byte(nil), rec...), protowire.AppendTag(nil, 6, protowire.VarintType)...)
+		rec = protowire.AppendVarint(rec, uint64(robust))
+		rec = protowire.AppendFixed64(protowire.AppendTag(rec, 7, protowire.Fixed64Type), math.Float64bits(param))
+		out = protowire.AppendBytes(protowire.AppendTag(out, 15, protowire.BytesType), rec)
+		b = b[n+m:]
+	}
+	return out
 }
 
 // withFreshScrub appends the scrub's block fields of a snapshot older than

@@ -48,7 +48,11 @@ import (
 // the long comparison at its next IMU heading.
 // Version 13: the IMU heading that raised imu_unchanged (imufrozen.go);
 // a version 12 to 5 snapshot has none (its builds had no such reason).
-const SnapshotVersion = 13
+// Version 14: each sensor record's robust weighting and parameter
+// (SensorStats.Robust), by which Consistency judges a Student-t sensor; a
+// version 13 to 5 snapshot lacks them, and its records take the robot's
+// configuration's.
+const SnapshotVersion = 14
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
 // this one; 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
@@ -235,7 +239,12 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 	case 15:
 		d.message(num, func(d *wdec) {
 			s := decSensor(d)
-			r.stats.sensors[r.stats.sensor(s.ID, s.GateProbability)] = s
+			i := r.statsSensor(s.ID, s.GateProbability)
+			if s.Robust == 0 {
+				// Before version 14: the configuration's.
+				s.Robust, s.RobustParameter = r.stats.sensors[i].Robust, r.stats.sensors[i].RobustParameter
+			}
+			r.stats.sensors[i] = s
 		})
 	case 16:
 		r.stats.slips = d.uint(num)
@@ -679,6 +688,8 @@ func encSensor(e *wenc, s *SensorStats) {
 	e.double(3, s.NISSum)
 	e.int(4, int64(s.DOFSum))
 	e.double(5, s.GateProbability)
+	e.uint(6, uint64(s.Robust))
+	e.double(7, s.RobustParameter)
 }
 
 func decSensor(d *wdec) SensorStats {
@@ -695,6 +706,10 @@ func decSensor(d *wdec) SensorStats {
 			s.DOFSum = int(d.int(num))
 		case 5:
 			s.GateProbability = d.double(num)
+		case 6:
+			s.Robust = RobustLoss(d.uint(num))
+		case 7:
+			s.RobustParameter = d.double(num)
 		default:
 			d.fail("sensor: unknown field %d", num)
 		}

@@ -145,3 +145,60 @@ func TestOlderSnapshotsRestore(t *testing.T) {
 		}
 	}
 }
+
+// TestSnapshotKeepsSensorRobust: a sensor record carries its sensor's
+// robust weighting (by which Consistency judges a Student-t sensor), and
+// a snapshot keeps it; a version 13 snapshot, which lacks it, restores with
+// the configuration's (the golden robot's camera is Huber-weighted, with the
+// default k).
+func TestSnapshotKeepsSensorRobust(t *testing.T) {
+	cfg, _ := goldenRobot()
+	st := cfg
+	st.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+	st.Sensors[0].Robust, st.Sensors[0].RobustParameter = fusion.RobustStudentT, 6
+	r, err := fusion.New(st)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sim := fusiontest.New(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 8, DurationS: 3})
+	for in, ok := sim.Next(); ok; in, ok = sim.Next() {
+		fusiontest.Feed(r, &in)
+	}
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	restored, err := fusion.RestoreSnapshot(st, b)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := map[string]fusion.RobustLoss{st.Sensors[0].ID: fusion.RobustStudentT, "imu": fusion.RobustNone}
+	for name, rr := range map[string]*fusion.Robot{"running": r, "restored": restored} {
+		got := rr.Stats().Sensors
+		if len(got) != len(want) {
+			t.Fatalf("%s: %d sensor records, want %d", name, len(got), len(want))
+		}
+		for _, s := range got {
+			if s.Robust != want[s.ID] || (s.Robust == fusion.RobustStudentT) != (s.RobustParameter == 6) {
+				t.Errorf("%s: sensor %q: robust %v parameter %v, want %v", name, s.ID, s.Robust, s.RobustParameter, want[s.ID])
+			}
+		}
+	}
+	old, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", "greenhouse-v13.bin"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	r13, err := fusion.RestoreSnapshot(cfg, old)
+	if err != nil {
+		t.Fatalf("version 13: %v", err)
+	}
+	for _, s := range r13.Stats().Sensors {
+		w, k := fusion.RobustNone, 0.0
+		if s.ID == cfg.Sensors[0].ID {
+			w, k = fusion.RobustHuber, fusion.DefaultHuberK
+		}
+		if s.Robust != w || s.RobustParameter != k {
+			t.Errorf("version 13: sensor %q: robust %v parameter %v, want the configuration's %v %v", s.ID, s.Robust, s.RobustParameter, w, k)
+		}
+	}
+}

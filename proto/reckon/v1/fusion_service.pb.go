@@ -361,7 +361,8 @@ func (DistrustReason) EnumDescriptor() ([]byte, []int) {
 // ConsistencyVerdict compares a sensor's mean NIS over its applied fixes
 // with the two-sided 95% band of a consistent filter and, for a gated
 // sensor, its gated count with its gate (a one-sided binomial test at
-// significance 0.001; DEVELOPERS.md, "Design: Trust").
+// significance 0.001, against the share a consistent sensor's own error
+// distribution puts beyond the gate; DEVELOPERS.md, "Design: Trust").
 type ConsistencyVerdict int32
 
 const (
@@ -2112,7 +2113,9 @@ func (x *VerdictCounts) GetInvalid() uint64 {
 	return 0
 }
 
-// SensorConsistency is one sensor's NIS record against its chi-square band.
+// SensorConsistency is one sensor's NIS record against its band: chi-square,
+// or for a sensor with robust student_t that of its own Student-t errors
+// (d F(d, nu), computed by the service; DEVELOPERS.md, "Design: Trust").
 type SensorConsistency struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The sensor ("imu" for the IMU).
@@ -2122,7 +2125,8 @@ type SensorConsistency struct {
 	// Mean NIS of its applied fixes: the raw NIS, with each fix's own
 	// covariance, also for a sensor with a robust loss.
 	MeanNis float64 `protobuf:"fixed64,3,opt,name=mean_nis,json=meanNis,proto3" json:"mean_nis,omitempty"`
-	// Two-sided 95% band of the mean NIS.
+	// Two-sided 95% band of the mean NIS (of the NIS truncated at the gate
+	// for a gated sensor).
 	BandLow float64 `protobuf:"fixed64,4,opt,name=band_low,json=bandLow,proto3" json:"band_low,omitempty"`
 	// Upper end of the band.
 	BandHigh float64 `protobuf:"fixed64,5,opt,name=band_high,json=bandHigh,proto3" json:"band_high,omitempty"`

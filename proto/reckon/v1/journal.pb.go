@@ -312,7 +312,8 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 13 reads 12 to 5: a version 12 snapshot lacks
+	// knows (version 14 reads 13 to 5: a version 13 snapshot lacks the
+	// sensors' robust and robust_parameter, 12
 	// imu_unchanged_heading_rad, 11 the long turn anchor, 10 jump_counts, 9
 	// the landmark blocks and the measurements' mount error states, 8 the
 	// turn scale's
@@ -1352,6 +1353,12 @@ type SnapshotSensor struct {
 	DofSum int64 `protobuf:"varint,4,opt,name=dof_sum,json=dofSum,proto3" json:"dof_sum,omitempty"`
 	// The gate probability its inputs passed (1: not gated).
 	GateProbability float64 `protobuf:"fixed64,5,opt,name=gate_probability,json=gateProbability,proto3" json:"gate_probability,omitempty"`
+	// Its robust weighting as fusion's RobustLoss holds it (1 none, 2 huber,
+	// 3 student_t; 0, absent, in snapshots before version 14, whose records
+	// take the configuration's) and its parameter; a Student-t sensor's
+	// consistency is judged against its own distribution.
+	Robust          uint32  `protobuf:"varint,6,opt,name=robust,proto3" json:"robust,omitempty"`
+	RobustParameter float64 `protobuf:"fixed64,7,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
 	unknownFields   protoimpl.UnknownFields
 	sizeCache       protoimpl.SizeCache
 }
@@ -1417,6 +1424,20 @@ func (x *SnapshotSensor) GetDofSum() int64 {
 func (x *SnapshotSensor) GetGateProbability() float64 {
 	if x != nil {
 		return x.GateProbability
+	}
+	return 0
+}
+
+func (x *SnapshotSensor) GetRobust() uint32 {
+	if x != nil {
+		return x.Robust
+	}
+	return 0
+}
+
+func (x *SnapshotSensor) GetRobustParameter() float64 {
+	if x != nil {
+		return x.RobustParameter
 	}
 	return 0
 }
@@ -2125,13 +2146,15 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	" \x01(\x05R\n" +
 	"mountError\x12%\n" +
 	"\x0elandmark_error\x18\v \x01(\x05R\rlandmarkError\x12&\n" +
-	"\x0flandmark_var_m2\x18\f \x01(\x01R\rlandmarkVarM2\"\xbc\x01\n" +
+	"\x0flandmark_var_m2\x18\f \x01(\x01R\rlandmarkVarM2\"\xff\x01\n" +
 	"\x0eSnapshotSensor\x12\x1b\n" +
 	"\tsensor_id\x18\x01 \x01(\tR\bsensorId\x120\n" +
 	"\x06counts\x18\x02 \x01(\v2\x18.reckon.v1.VerdictCountsR\x06counts\x12\x17\n" +
 	"\anis_sum\x18\x03 \x01(\x01R\x06nisSum\x12\x17\n" +
 	"\adof_sum\x18\x04 \x01(\x03R\x06dofSum\x12)\n" +
-	"\x10gate_probability\x18\x05 \x01(\x01R\x0fgateProbability\"\x8d\x01\n" +
+	"\x10gate_probability\x18\x05 \x01(\x01R\x0fgateProbability\x12\x16\n" +
+	"\x06robust\x18\x06 \x01(\rR\x06robust\x12)\n" +
+	"\x10robust_parameter\x18\a \x01(\x01R\x0frobustParameter\"\x8d\x01\n" +
 	"\x11SnapshotNisWindow\x12\x10\n" +
 	"\x03nis\x18\x01 \x03(\x01R\x03nis\x12\x1e\n" +
 	"\n" +

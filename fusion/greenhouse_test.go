@@ -346,10 +346,11 @@ type ghTally struct {
 	pull                float64
 	fixes, gated        int
 	recoveries          uint64
-	// camOverconfident counts runs whose camera SensorStats.Consistency
-	// calls overconfident; camNIS sums their mean NIS.
-	camOverconfident int
-	camNIS           float64
+	// camOverconfident and camUnderconfident count runs whose camera
+	// SensorStats.Consistency calls overconfident or underconfident;
+	// camNIS sums their mean NIS.
+	camOverconfident, camUnderconfident int
+	camNIS                              float64
 	// The longest stretch trusted outside the 99.9% region, seconds, and
 	// the largest position error while trusted, metres.
 	longestS, worstTrustedM float64
@@ -459,10 +460,16 @@ func ghRun(seed uint64, durS float64, cfg fusion.Config) (ghTally, error) {
 	st := r.Stats()
 	tl.recoveries = st.Recoveries
 	for _, ss := range st.Sensors {
+		if ss.ID != "camera" {
+			continue
+		}
 		m, _, _, v := ss.Consistency()
 		tl.camNIS = m
-		if v == fusion.Overconfident {
+		switch v {
+		case fusion.Overconfident:
 			tl.camOverconfident = 1
+		case fusion.Underconfident:
+			tl.camUnderconfident = 1
 		}
 	}
 	return tl, nil
@@ -517,6 +524,7 @@ func (a *ghTally) add(b *ghTally) {
 	a.gated += b.gated
 	a.recoveries += b.recoveries
 	a.camOverconfident += b.camOverconfident
+	a.camUnderconfident += b.camUnderconfident
 	a.camNIS += b.camNIS
 	a.longestS = math.Max(a.longestS, b.longestS)
 	a.worstTrustedM = math.Max(a.worstTrustedM, b.worstTrustedM)
@@ -581,10 +589,10 @@ func (v *ghVerdict) String() string {
 	pct := func(k int) float64 { return 100 * float64(k) / float64(tl.samples) }
 	return fmt.Sprintf("%d runs, %d samples: trusted %.1f%%, mean NEES %.2f; Monte Carlo mean NEES %.2f in [%.2f, %.2f], %d of %d checkpoints above; "+
 		"outside the 95%% / 99.9%% regions %.2f / %.3f%%, trusted so %.2f / %.3f%%, longest trusted outside 99.9%% %.2f s; position outside its 95%% ellipse %.2f%%, trusted so %.2f%%; "+
-		"largest position error while trusted %.3f m; %d fixes, %d gated; %d wrong markers, %d applied, pull %.2g sd; %d recoveries; camera called overconfident in %d runs, its mean NIS %.2f",
+		"largest position error while trusted %.3f m; %d fixes, %d gated; %d wrong markers, %d applied, pull %.2g sd; %d recoveries; camera called overconfident in %d runs, underconfident in %d, its mean NIS %.2f",
 		v.runs, tl.samples, pct(tl.trusted), tl.neesSum/float64(tl.samples), v.mcMean, v.mcLo, v.mcHi, v.mcAbove, v.mcCounted,
 		pct(tl.out95), pct(tl.out999), pct(tl.trustedOut95), pct(tl.trustedOut999), tl.longestS, pct(tl.posOut95), pct(tl.trustedPosOut95),
-		tl.worstTrustedM, tl.fixes, tl.gated, tl.wrong, tl.wrongApplied, tl.pull, tl.recoveries, tl.camOverconfident, tl.camNIS/float64(v.runs))
+		tl.worstTrustedM, tl.fixes, tl.gated, tl.wrong, tl.wrongApplied, tl.pull, tl.recoveries, tl.camOverconfident, tl.camUnderconfident, tl.camNIS/float64(v.runs))
 }
 
 // overconfidence returns what of the honesty checks the runs break: the

@@ -110,7 +110,11 @@ type Server struct {
 
 	watching atomic.Int64 // open Watch streams
 	live     liveHub      // open live views (live.go)
-	unlock   func() error // releases the journal directory
+	// dirLock is the journal directory's lock (nil: no journal), which
+	// the sync loop checks is still the directory's (checkJournalDir);
+	// dirGone is set, with why, once it is not.
+	dirLock *journal.DirLock
+	dirGone atomic.Pointer[error]
 
 	stopSync chan struct{}
 	// closeOnce makes Close idempotent; closeErr is its result.
@@ -192,7 +196,7 @@ func New(opt Options) (*Server, error) {
 		opt.ProbeInterval = 2 * time.Second
 	}
 	opt.Limits = opt.Limits.withDefaults()
-	unlock := func() error { return nil }
+	var dirLock *journal.DirLock
 	if opt.JournalDir != "" {
 		fsys := opt.FS
 		if fsys == nil {
@@ -202,11 +206,11 @@ func New(opt Options) (*Server, error) {
 			return nil, fmt.Errorf("journal directory: %w", err)
 		}
 		var err error
-		if unlock, err = journal.Lock(opt.FS, opt.JournalDir); err != nil {
+		if dirLock, err = journal.Lock(opt.FS, opt.JournalDir); err != nil {
 			return nil, err
 		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, dirLock: dirLock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
 	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
@@ -234,10 +238,40 @@ func (s *Server) syncLoop() {
 		case <-s.stopSync:
 			return
 		case <-t.C:
+			s.checkJournalDir()
 			s.SyncJournals()
 		case <-p.C:
 			s.probePaused()
 		}
+	}
+}
+
+// checkJournalDir quarantines every robot that keeps a journal once the
+// journal directory is no longer the one locked at start (removed, renamed,
+// replaced by a file or another directory: journal.ErrDirGone). Its
+// journals then write to files that no path reaches, and a restart would
+// find none of it; before this check the robots went on answering
+// verdicts, and the operator learnt it only from the next restart. The
+// inputs answered between the change and the check (one SyncInterval) are
+// lost with the directory.
+func (s *Server) checkJournalDir() {
+	if s.dirLock == nil || s.dirGone.Load() != nil {
+		return
+	}
+	err := s.dirLock.Check()
+	if !errors.Is(err, journal.ErrDirGone) {
+		// A stat that failed otherwise (EIO) does not say the
+		// directory is gone; the journals' own writes report such faults.
+		return
+	}
+	s.dirGone.Store(&err)
+	s.log.Error("the journal directory is gone; the robots stop taking input, as nothing they take could be recorded: restart reckond on a journal directory", "dir", s.opt.JournalDir, "err", err)
+	for _, r := range s.list() {
+		r.mu.Lock()
+		if r.journal != nil {
+			s.quarantine(r, err.Error())
+		}
+		r.mu.Unlock()
 	}
 }
 
@@ -359,7 +393,9 @@ func (s *Server) close() error {
 		r.hub.close()
 	}
 	s.live.end()
-	errs = append(errs, s.unlock())
+	if s.dirLock != nil {
+		errs = append(errs, s.dirLock.Unlock())
+	}
 	return errors.Join(errs...)
 }
 
@@ -425,6 +461,10 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		return nil, err
 	}
 	defer close(done)
+	if gone := s.dirGone.Load(); gone != nil {
+		s.release(name, true)
+		return nil, status.Errorf(codes.FailedPrecondition, "journal: %v", *gone)
+	}
 	if s.opt.JournalDir != "" {
 		// Without s.mu: making a journal waits for the disk (fsyncs), and
 		// every other robot's samples look their robot up under it.

@@ -152,6 +152,9 @@ type robot struct {
 	detail        string // why paused or quarantined; or a note from restore
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
+	// retrying counts the journal failures retried (journalFailed) since
+	// the journal last wrote without one; 0: it does.
+	retrying int
 	// unread counts the journal's segments that restore did not read
 	// whole (from segment 0), which VerifyHistories reads, and
 	// historySnap is the sequence of the snapshot restore started from.
@@ -1268,6 +1271,9 @@ func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
 	if err != nil {
 		cause = err
 		s.journalFailed(r, "journal write", err)
+	} else if r.retrying > 0 {
+		s.log.Info("the journal writes again", "robot", r.name, "failures", r.retrying)
+		r.retrying = 0
 	}
 	if cause == nil && tk.lost >= 0 {
 		cause = tk.cause
@@ -1295,7 +1301,13 @@ func (s *Server) journalFailed(r *robot, what string, err error) {
 			s.log.Error("journal disk full; the robot pauses until space returns", "robot", r.name, "op", what, "err", err)
 		}
 	default:
-		s.log.Warn(what+" failed; retried later", "robot", r.name, "err", err)
+		// Said once until the journal writes again (flushJournal): a
+		// failing rotation (no file descriptor left, say) is tried again
+		// at every batch, hundreds a second, and each logged a line.
+		if r.retrying == 0 {
+			s.log.Warn(what+" failed; retried at every write, logged again when it works", "robot", r.name, "err", err)
+		}
+		r.retrying++
 	}
 }
 

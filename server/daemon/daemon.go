@@ -15,6 +15,7 @@ import (
 	"net/http"
 	"os"
 	"strings"
+	"syscall"
 	"time"
 
 	"google.golang.org/grpc"
@@ -67,6 +68,11 @@ type Config struct {
 	MaxMessageBytes int
 	// ShutdownGrace bounds the graceful stop before a hard stop (5 s).
 	ShutdownGrace time.Duration
+	// HandshakeTimeout closes a connection that has not finished its
+	// TLS and HTTP/2 handshakes in this time (10 s): one that connects and
+	// sends nothing holds a file descriptor until then (grpc-go's default
+	// was 120 s).
+	HandshakeTimeout time.Duration
 	// Ready, if set, is called with the bound addresses once serving.
 	Ready func(grpcAddr, metricsAddr string)
 	// ViewReady, if set, is called with the live view's bound address once
@@ -153,7 +159,7 @@ func Serve(ctx context.Context, dc Config) error {
 		return err
 	}
 	serveErr := make(chan error, 1)
-	go func() { serveErr <- gs.Serve(lis) }()
+	go func() { serveErr <- gs.Serve(&acceptLog{Listener: lis, log: dc.Logger}) }()
 	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr, "view", viewAddr)
 	if dc.ViewReady != nil && vsrv != nil {
 		dc.ViewReady(viewAddr)
@@ -187,6 +193,9 @@ func (dc *Config) defaults() {
 	if dc.ShutdownGrace <= 0 {
 		dc.ShutdownGrace = 5 * time.Second
 	}
+	if dc.HandshakeTimeout <= 0 {
+		dc.HandshakeTimeout = 10 * time.Second
+	}
 	if dc.Logger == nil {
 		dc.Logger = slog.Default()
 	}
@@ -201,6 +210,7 @@ func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
 	}
 	opts = append(opts,
 		grpc.MaxConcurrentStreams(dc.MaxStreams),
+		grpc.ConnectionTimeout(dc.HandshakeTimeout),
 		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
 		grpc.UnaryInterceptor(func(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (any, error) {
@@ -315,4 +325,36 @@ func wait(ctx context.Context, dc *Config, serveErr <-chan error, gs *grpc.Serve
 		gs.Stop()
 	}
 	return nil
+}
+
+// acceptLog is the gRPC listener, logging when accepting connections
+// starts to fail and when it works again. grpc-go retries a failed accept
+// (EMFILE: the process has no file descriptor left) with a backoff and says
+// nothing through slog; before, no client could connect and the log was
+// silent. Serve calls Accept from one goroutine.
+type acceptLog struct {
+	net.Listener
+	log      *slog.Logger
+	failures int // since the last accept that succeeded
+}
+
+// Accept accepts a connection as the listener does.
+func (l *acceptLog) Accept() (net.Conn, error) {
+	c, err := l.Listener.Accept()
+	switch {
+	case err != nil && errors.Is(err, net.ErrClosed):
+	case err != nil:
+		if l.failures == 0 {
+			msg := "accepting connections fails; no new client can connect until it works"
+			if errors.Is(err, syscall.EMFILE) || errors.Is(err, syscall.ENFILE) {
+				msg += " (no file descriptor left: raise ulimit -n, or LimitNOFILE= of its unit, or connect fewer clients)"
+			}
+			l.log.Error(msg, "listen", l.Addr().String(), "err", err)
+		}
+		l.failures++
+	case l.failures > 0:
+		l.log.Info("accepting connections works again", "listen", l.Addr().String(), "failures", l.failures)
+		l.failures = 0
+	}
+	return c, err
 }

@@ -1331,7 +1331,7 @@ func (s *Server) quarantine(r *robot, detail string) {
 // took were not journaled: its state, sessions and sensors from the last
 // snapshot and the inputs after it. The caller holds r.mu.
 func (s *Server) rebuild(r *robot, cause error) {
-	rp, err := s.replayRobot(r.id)
+	rp, err := s.replayRobot(context.Background(), r.id)
 	if err != nil {
 		s.quarantine(r, fmt.Sprintf("rebuilding from the journal after %v: %v", cause, err))
 		return

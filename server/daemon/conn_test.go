@@ -1,11 +1,18 @@
 package daemon
 
 import (
+	"context"
 	"errors"
+	"log/slog"
 	"net"
 	"os"
+	"strings"
 	"testing"
 	"time"
+
+	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
+	"reckon.example/server"
 )
 
 // TestSilentConnectionClosed: a connection that sends nothing, or half of
@@ -39,5 +46,23 @@ func TestSilentConnectionClosed(t *testing.T) {
 				t.Fatalf("the connection is still open after 60 s")
 			}
 		})
+	}
+}
+
+// TestStopDuringRestore: a stop asked while the journal is being restored
+// (SIGTERM to a reckond restoring many robots) ends Serve with no error
+// before it serves, and the log says so. Before, the restore went on to the
+// end, the service said "serving", and only then stopped: a long restore
+// outlasted a supervisor's stop timeout and was killed.
+func TestStopDuringRestore(t *testing.T) {
+	dir := t.TempDir()
+	_, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 3, DurationS: 1})
+	start(t, Config{Options: server.Options{JournalDir: dir}, Robots: map[string]*pb.RobotConfig{"cart": cfg}}).stop()
+	var logs strings.Builder
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	err := Serve(ctx, Config{Listen: "127.0.0.1:0", Options: server.Options{JournalDir: dir, Logger: slog.New(slog.NewTextHandler(&logs, nil))}})
+	if err != nil || strings.Contains(logs.String(), "msg=serving") || !strings.Contains(logs.String(), "stopped before serving") {
+		t.Fatalf("Serve: %v, want nil, stopped before serving:\n%s", err, logs.String())
 	}
 }

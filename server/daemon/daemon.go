@@ -140,6 +140,11 @@ func Serve(ctx context.Context, dc Config) error {
 	srv, err := startService(ctx, &dc)
 	if err != nil {
 		lis.Close()
+		if cerr := ctx.Err(); cerr != nil && errors.Is(err, cerr) {
+			// SIGTERM during a long restore: a stop, not a failure.
+			dc.Logger.Info("stopped before serving, as asked during the restore; the journals not restored yet are as they were", "why", err.Error())
+			return nil
+		}
 		return err
 	}
 	gs, hs := newGRPCServer(srv, opts)
@@ -176,7 +181,13 @@ func Serve(ctx context.Context, dc Config) error {
 			h.Close()
 		}
 	}
-	if cerr := srv.Close(); err == nil {
+	cerr := srv.Close()
+	if cerr != nil {
+		dc.Logger.Error("stopped; closing the journals failed", "err", cerr)
+	} else {
+		dc.Logger.Info("stopped; the journals are closed")
+	}
+	if err == nil {
 		err = cerr
 	}
 	return err
@@ -246,7 +257,10 @@ func startService(ctx context.Context, dc *Config) (*server.Server, error) {
 	if err != nil {
 		return nil, err
 	}
-	reports, err := srv.Restore()
+	if dc.JournalDir != "" {
+		dc.Logger.Info("restoring the robots of the journal directory", "journal", dc.JournalDir)
+	}
+	reports, err := srv.RestoreContext(ctx)
 	for _, r := range reports {
 		dc.Logger.Info("restored", "robot", r.Robot, "state", r.State.String(), "inputs", r.Inputs, "torn", r.Torn, "detail", r.Detail)
 	}

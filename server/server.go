@@ -108,8 +108,9 @@ type Server struct {
 	busy   map[string]chan struct{}
 	making int
 
-	watching atomic.Int64 // open Watch streams
-	live     liveHub      // open live views (live.go)
+	watching  atomic.Int64 // open Watch streams
+	ingesting atomic.Int64 // open Ingest streams
+	live      liveHub      // open live views (live.go)
 	// dirLock is the journal directory's lock (nil: no journal), which
 	// the sync loop checks is still the directory's (checkJournalDir);
 	// dirGone is set, with why, once it is not.
@@ -681,6 +682,11 @@ const maxBatch = 256
 // which takes them in batches while the receiver goes on receiving
 // (BenchmarkIngestThroughput).
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
+	if lim := s.opt.Limits.MaxIngestStreams; s.ingesting.Add(1) > int64(lim) {
+		s.ingesting.Add(-1)
+		return status.Errorf(codes.ResourceExhausted, "ingest: the service already has %d open ingest streams, the limit (-max-ingest-streams)", lim)
+	}
+	defer s.ingesting.Add(-1)
 	ctx := stream.Context()
 	in := newInbox()
 	// A third goroutine sends the verdicts of large batches, so that taking

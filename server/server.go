@@ -1277,6 +1277,14 @@ func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
 	if err != nil {
 		cause = err
 		s.journalFailed(r, "journal write", err)
+		if written < len(tk.entries) && r.retrying >= 2 && r.state == pb.RobotState_ROBOT_STATE_SERVING {
+			// A write failing again, not for a full disk, nor broken: a
+			// file system remounted read-only, say. (A fault once is
+			// retried at once with the next batch.) Before, the robot
+			// served on, each batch answered UNAVAILABLE after a rebuild
+			// from its journal.
+			s.pause(r, fmt.Sprintf("journal not writable: %v", err), "journal write failed; the robot pauses until its journal can be written", "journal write", err)
+		}
 	} else if r.retrying > 0 {
 		s.log.Info("the journal writes again", "robot", r.name, "failures", r.retrying)
 		r.retrying = 0
@@ -1301,11 +1309,7 @@ func (s *Server) journalFailed(r *robot, what string, err error) {
 		// unusable whatever else the error says (a full disk among it).
 		s.quarantine(r, fmt.Sprintf("%s failed: %v", what, err))
 	case isNoSpace(err):
-		if r.state != pb.RobotState_ROBOT_STATE_PAUSED {
-			r.state, r.detail = pb.RobotState_ROBOT_STATE_PAUSED, "journal disk full"
-			s.opt.Metrics.paused(1)
-			s.log.Error("journal disk full; the robot pauses until space returns", "robot", r.name, "op", what, "err", err)
-		}
+		s.pause(r, "journal disk full", "journal disk full; the robot pauses until space returns", what, err)
 	default:
 		// Said once until the journal writes again (flushJournal): a
 		// failing rotation (no file descriptor left, say) is tried again
@@ -1315,6 +1319,18 @@ func (s *Server) journalFailed(r *robot, what string, err error) {
 		}
 		r.retrying++
 	}
+}
+
+// pause stops the robot taking input, answered UNAVAILABLE with detail,
+// until probePaused writes its journal again; msg is logged. The caller
+// holds r.mu.
+func (s *Server) pause(r *robot, detail, msg, what string, err error) {
+	if r.state == pb.RobotState_ROBOT_STATE_PAUSED {
+		return
+	}
+	r.state, r.detail = pb.RobotState_ROBOT_STATE_PAUSED, detail
+	s.opt.Metrics.paused(1)
+	s.log.Error(msg, "robot", r.name, "op", what, "err", err)
 }
 
 // quarantine stops the robot taking input for good (until a restart
@@ -1353,6 +1369,7 @@ func (s *Server) probePaused() {
 		if r.state == pb.RobotState_ROBOT_STATE_PAUSED && r.journal != nil {
 			if err := s.writeSnapshot(r); err == nil {
 				r.state, r.detail = pb.RobotState_ROBOT_STATE_SERVING, r.note
+				r.retrying = 0
 				s.opt.Metrics.paused(-1)
 				s.log.Info("journal writable again; the robot serves", "robot", r.name)
 			} else if !isNoSpace(err) {

@@ -29,15 +29,8 @@ func TestBadInputOverTheWire(t *testing.T) {
 		t.Fatal(err)
 	}
 	sess, _ := openFeed(ctx, c, "robots/cart")
-	var newest int64
-	for _, s := range samp {
-		if _, err := sess.apply(s); err != nil {
-			t.Fatal(err)
-		}
-		if o := s.GetOdometry(); o != nil {
-			newest = o.GetStampNs()
-		}
-	}
+	applyAll(t, sess, samp)
+	newest := newestOdometry(samp)
 	sess.close()
 	odo := func(start, stamp int64, travel ...float64) *pb.Sample {
 		return &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StartNs: start, StampNs: stamp,
@@ -195,5 +188,60 @@ func TestPoseAtWithoutOdometry(t *testing.T) {
 		if st := status.Convert(err); st.Code() != codes.OutOfRange || !strings.Contains(st.Message(), "no odometry") || strings.Contains(st.Message(), "before the history window") {
 			t.Errorf("GetPoseAt(%d) without odometry: %v, want OUT_OF_RANGE saying the robot has no odometry", stamp, err)
 		}
+	}
+}
+
+// TestReseedTooFarAheadReplays: a re-seed stamped past max_hold_ahead_ns
+// is refused after the robot took it, as a fix stamped so is: it has a
+// sequence number and is journaled, and changes nothing else. That is
+// harmless: the journal replays it refused again (every output equal), a
+// restart restores the same pose and sequence with no note of outputs
+// that differ, and the inputs after it keep their numbers.
+func TestReseedTooFarAheadReplays(t *testing.T) {
+	dir := t.TempDir()
+	s, err := New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	samp, cfg := cartRun(41, 2)
+	if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	for _, v := range take(s, requests("robots/cart", "", 1, samp)) {
+		if v.GetSequence() == 0 {
+			t.Fatalf("a sample of the run refused: %v", v)
+		}
+	}
+	newest := newestOdometry(samp)
+	before, seq := memoryPose(s)
+	resp, err := s.ReseedRobot(context.Background(), &pb.ReseedRobotRequest{Robot: "robots/cart", Reseed: &pb.Reseed{StampNs: newest + 2e9,
+		Pose: &pb.FloorPose{XM: 5, YM: 1}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{0.01, 0, 0, 0, 0.01, 0, 0, 0, 0.01}}}})
+	if err != nil || resp.GetVerdict() != pb.Verdict_VERDICT_INVALID || resp.GetSequence() != seq+1 || !strings.Contains(resp.GetReason(), "max_hold_ahead_ns") {
+		t.Fatalf("reseed 2 s ahead: %v %v, want invalid with sequence %d naming max_hold_ahead_ns", resp, err, seq+1)
+	}
+	if after, _ := memoryPose(s); !proto.Equal(after, before) {
+		t.Errorf("the refused reseed moved the robot from %v to %v", before, after)
+	}
+	more, _ := cartRun(41, 3)
+	if v := take(s, requests("robots/cart", "", 1000, more[len(samp):len(samp)+1]))[0]; v.GetSequence() != seq+2 {
+		t.Errorf("the input after the refused reseed: sequence %d, want %d", v.GetSequence(), seq+2)
+	}
+	want, wantSeq := memoryPose(s)
+	s.Close()
+
+	if got, gotSeq := offline(t, dir, "cart"); gotSeq != wantSeq || !proto.Equal(got, want) {
+		t.Errorf("offline replay: input %d, pose %v; served %d, %v", gotSeq, got, wantSeq, want)
+	}
+	s, err = New(Options{JournalDir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer s.Close()
+	reports, err := s.Restore()
+	if err != nil || len(reports) != 1 || reports[0].State != pb.RobotState_ROBOT_STATE_SERVING || reports[0].Detail != "" {
+		t.Fatalf("restore: %v %+v", err, reports)
+	}
+	if got, gotSeq := memoryPose(s); gotSeq != wantSeq || !proto.Equal(got, want) {
+		t.Errorf("restored at input %d, pose %v; before the restart %d, %v", gotSeq, got, wantSeq, want)
 	}
 }

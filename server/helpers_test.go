@@ -275,3 +275,15 @@ func openWatch(t testing.TB, ctx context.Context, api pb.FusionServiceClient, ro
 	}
 	return w
 }
+
+// newestOdometry returns the stamp of the last odometry sample in samp
+// (0 if none).
+func newestOdometry(samp []*pb.Sample) int64 {
+	var newest int64
+	for _, s := range samp {
+		if o := s.GetOdometry(); o != nil {
+			newest = o.GetStampNs()
+		}
+	}
+	return newest
+}

@@ -6,6 +6,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"log/slog"
+	"net/http/httptest"
 	"os"
 	"strings"
 	"testing"
@@ -76,6 +77,7 @@ func TestRestoreReadsOnlyTheTail(t *testing.T) {
 		ffs := faultfs.New(journal.OS, nil)
 		opt := historyOptions(dir)
 		opt.FS = ffs
+		opt.Metrics = NewMetrics()
 		s, err := New(opt)
 		if err != nil {
 			t.Fatal(err)
@@ -96,6 +98,12 @@ func TestRestoreReadsOnlyTheTail(t *testing.T) {
 		if verified := ffs.BytesRead() - read; verified < total/2 {
 			t.Errorf("the verification read %d bytes of %d", verified, total)
 		}
+		hs := httptest.NewServer(opt.Metrics.Handler())
+		const metric = `reckon_robot_history_damage{robot="robots/cart"}`
+		if v, ok := scrape(t, hs.URL, metric)[metric]; !ok || v != 0 {
+			t.Errorf("%s = %v (present %v) for a whole history, want 0", metric, v, ok)
+		}
+		hs.Close()
 		s.Close()
 		t.Logf("%d segments, %d bytes: restore read %d", len(segs), total, read)
 	}
@@ -130,8 +138,9 @@ func flipOldBit(t *testing.T, dir string) (string, int) {
 // robot serves with its acknowledged state (pose and inputs as before the
 // restart) and takes input. VerifyHistories then finds the damage and
 // reports it with the file and the frame's offset, in the log and in the
-// robot's state_detail; the robot goes on serving. A restart afterwards
-// serves again.
+// robot's state_detail, and counts it in the robot's metric
+// reckon_robot_history_damage (the code before had no metric of it); the
+// robot goes on serving. A restart afterwards serves again.
 func TestOldDamageFoundAfterRestore(t *testing.T) {
 	dir := t.TempDir()
 	want, wantSeq := cartHistory(t, dir, 10000)
@@ -139,6 +148,10 @@ func TestOldDamageFoundAfterRestore(t *testing.T) {
 	var logs bytes.Buffer
 	opt := historyOptions(dir)
 	opt.Logger = slog.New(slog.NewTextHandler(&logs, nil))
+	opt.Metrics = NewMetrics()
+	hs := httptest.NewServer(opt.Metrics.Handler())
+	defer hs.Close()
+	const metric = `reckon_robot_history_damage{robot="robots/cart"}`
 	s, err := New(opt)
 	if err != nil {
 		t.Fatal(err)
@@ -151,7 +164,15 @@ func TestOldDamageFoundAfterRestore(t *testing.T) {
 	if got, seq := memoryPose(s); seq != wantSeq || !proto.Equal(got, want) {
 		t.Errorf("restored at input %d, pose %v; before the restart %d, %v", seq, got, wantSeq, want)
 	}
+	if v, ok := scrape(t, hs.URL, metric)[metric]; ok {
+		t.Errorf("%s = %v before the verification, want absent", metric, v)
+	}
 	<-s.VerifyHistories()
+	// One bit flipped: two problems, the damaged record and the gap in the
+	// inputs it leaves.
+	if v, ok := scrape(t, hs.URL, metric)[metric]; v != 2 {
+		t.Errorf("%s = %v (present %v) after the verification, want 2", metric, v, ok)
+	}
 	where := fmt.Sprintf("%s at byte %d", bad, frame)
 	r := robotState(t, s, "robots/cart")
 	if r.GetState() != pb.RobotState_ROBOT_STATE_SERVING || !strings.Contains(r.GetStateDetail(), where) || !strings.Contains(r.GetStateDetail(), "journal history damaged") {
@@ -246,5 +267,83 @@ func TestOldDamageNotedWhilePaused(t *testing.T) {
 	got := robotState(t, s, "robots/cart")
 	if got.GetState() != pb.RobotState_ROBOT_STATE_SERVING || !strings.Contains(got.GetStateDetail(), where) {
 		t.Errorf("after the pause: %v %q, want serving with a note naming %s", got.GetState(), got.GetStateDetail(), where)
+	}
+}
+
+// TestRestoreFromTheSegmentBeingWritten: a robot whose journal is still in
+// its first segment (64 MiB: hours of a robot's inputs) is restored from
+// its newest snapshot, which the journal's snapshot hint names, reading
+// about what the snapshot interval holds, not the segment from its start
+// (the code before read it whole, and fails this). VerifyHistories then
+// reads the segment up to that snapshot while the robot takes input: a
+// bit flipped in an input there is not read by the restore (the robot
+// serves its acknowledged state) and is then noted with its file and
+// offset.
+func TestRestoreFromTheSegmentBeingWritten(t *testing.T) {
+	for _, flip := range []bool{false, true} {
+		dir := t.TempDir()
+		opt := Options{JournalDir: dir, SnapshotEvery: 500}
+		s, err := New(opt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		samp, cfg := cartRun(21, 3300.0/300+3)
+		if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+			t.Fatal(err)
+		}
+		for i := 0; i < 3300; i += 100 {
+			take(s, requests("robots/cart", "", uint64(i+1), samp[i:i+100]))
+		}
+		want, wantSeq := memoryPose(s)
+		s.Close()
+		segs, _ := journal.Segments(dir, "cart")
+		fi, _ := os.Stat(segs[0])
+		if len(segs) != 1 {
+			t.Fatalf("%d segments", len(segs))
+		}
+		bad, frame := segs[0], 0
+		if flip {
+			b, _ := os.ReadFile(bad)
+			for off := 16; off+8 <= len(b); off += 8 + int(binary.LittleEndian.Uint32(b[off:])) {
+				if off > len(b)/3 && b[off+8] == journal.KindInput {
+					b[off+20] ^= 0x04
+					frame = off
+					break
+				}
+			}
+			os.WriteFile(bad, b, 0o644)
+		}
+		var logs bytes.Buffer
+		ffs := faultfs.New(journal.OS, nil)
+		opt.FS, opt.Logger = ffs, slog.New(slog.NewTextHandler(&logs, nil))
+		if s, err = New(opt); err != nil {
+			t.Fatal(err)
+		}
+		reports, err := s.Restore()
+		read := ffs.BytesRead()
+		if err != nil || len(reports) != 1 || reports[0].State != pb.RobotState_ROBOT_STATE_SERVING || reports[0].Inputs != 3300 {
+			t.Fatalf("restore: %v %+v", err, reports)
+		}
+		if got, seq := memoryPose(s); seq != wantSeq || !proto.Equal(got, want) {
+			t.Errorf("restored at input %d, pose %v; before the restart %d, %v", seq, got, wantSeq, want)
+		}
+		if read > fi.Size()/3 {
+			t.Errorf("restore read %d bytes of a segment of %d", read, fi.Size())
+		}
+		done := s.VerifyHistories()
+		take(s, requests("robots/cart", "", 3301, samp[3300:3400]))
+		<-done
+		r := robotState(t, s, "robots/cart")
+		where := fmt.Sprintf("%s at byte %d", bad, frame)
+		switch {
+		case r.GetState() != pb.RobotState_ROBOT_STATE_SERVING:
+			t.Errorf("after the verification: %v %q", r.GetState(), r.GetStateDetail())
+		case flip && !strings.Contains(r.GetStateDetail(), where):
+			t.Errorf("state_detail %q, want a note naming %s", r.GetStateDetail(), where)
+		case !flip && (r.GetStateDetail() != "" || !strings.Contains(logs.String(), "journal history verified")):
+			t.Errorf("undamaged: state_detail %q, log %s", r.GetStateDetail(), logs.String())
+		}
+		s.Close()
+		t.Logf("flip %v: segment of %d bytes, restore read %d", flip, fi.Size(), read)
 	}
 }

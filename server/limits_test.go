@@ -36,13 +36,7 @@ func limitedCart(t *testing.T, opt Options) (pb.FusionServiceClient, []*pb.Sampl
 		t.Fatal(err)
 	}
 	feedStub(t, api, "robots/cart", "", 1, samp[:600])
-	var newest int64
-	for _, s := range samp[:600] {
-		if o := s.GetOdometry(); o != nil {
-			newest = o.GetStampNs()
-		}
-	}
-	return api, samp, newest
+	return api, samp, newestOdometry(samp[:600])
 }
 
 // TestUnknownSensorIDs: fixes from 10,000 sensor ids the robot's

@@ -116,6 +116,9 @@ func (s *Server) restoreRobot(ctx context.Context, id string) (*robot, RestoreRe
 	r.fr, r.journal, r.sessions, r.sinceSnapshot, r.holders = rp.fr, s.wrap(openJournal(w)), rp.sessions, rp.scan.Replayed, rp.holders
 	if rp.scan.FromSegment > 0 || rp.scan.FromOffset > 0 {
 		r.unread, r.historySnap = rp.scan.FromSegment+1, rp.scan.SnapshotSequence
+		if rp.scan.FromSegment == rp.scan.Segment {
+			r.unreadTo = rp.scan.FromOffset
+		}
 	}
 	r.state, rep.State = pb.RobotState_ROBOT_STATE_SERVING, pb.RobotState_ROBOT_STATE_SERVING
 	r.detail, r.note, rep.Detail = rp.note, rp.note, rp.note
@@ -134,9 +137,10 @@ func (s *Server) restoreRobot(ctx context.Context, id string) (*robot, RestoreRe
 }
 
 // VerifyHistories reads, in a goroutine of its own, the part of each
-// serving robot's journal that Restore did not read: the sealed segments
-// before the snapshot it started from, which it checked only against the
-// manifest (journal.Verify; they are never written again). It returns a
+// serving robot's journal that Restore did not read: the segments before
+// the snapshot it started from, which it checked only against the
+// manifest (journal.Verify; sealed, they are never written again), and the
+// part of the snapshot's own segment before it. It returns a
 // channel closed when the pass ends; Close stops it. Call it once the
 // service serves, after Restore. The robots are read one after another,
 // at most Options.VerifyBytesPerSecond on average (pacedFS), so that the
@@ -144,15 +148,16 @@ func (s *Server) restoreRobot(ctx context.Context, id string) (*robot, RestoreRe
 //
 // Damage found there (a bad CRC-32C, a missing or cut record, a segment
 // that differs from its record in the manifest) is logged with its file
-// and offset and noted in the robot's state_detail; the robot goes on
-// serving. Its state came from a snapshot and the inputs after it, which
-// restore read and checked whole, so what it serves is what was
-// acknowledged; quarantine would stop a working robot for the sake of a
-// record it no longer depends on. The damaged bytes are left where they
-// are (the segment is sealed), and the offline tools name the gap. A
-// later restore that has to replay from the start (a snapshot of another
-// version) reads that history and quarantines the robot if inputs are
-// missing, as before.
+// and offset, noted in the robot's state_detail and counted in its
+// metric reckon_robot_history_damage (0 when the history read whole); the
+// robot goes on serving. Its state came from a snapshot and the inputs
+// after it, which restore read and checked whole, so what it serves is
+// what was acknowledged; quarantine would stop a working robot for the
+// sake of a record it no longer depends on. The damaged bytes are left
+// where they are (the segment is sealed), and the offline tools name the
+// gap. A later restore that has to replay from the start (a snapshot of
+// another version) reads that history and quarantines the robot if inputs
+// are missing, as before.
 func (s *Server) VerifyHistories() <-chan struct{} {
 	done := make(chan struct{})
 	var todo []*robot
@@ -189,7 +194,7 @@ func (s *Server) VerifyHistories() <-chan struct{} {
 // verifyHistory reads what restore did not read of r's journal and
 // reports any damage in it (VerifyHistories).
 func (s *Server) verifyHistory(r *robot, fs journal.FS) {
-	sc, err := journal.Verify(s.verifyCtx, fs, s.opt.JournalDir, r.id, r.unread-1)
+	sc, err := journal.Verify(s.verifyCtx, fs, s.opt.JournalDir, r.id, r.unread-1, r.unreadTo)
 	if s.verifyCtx.Err() != nil {
 		return
 	}
@@ -205,6 +210,7 @@ func (s *Server) verifyHistory(r *robot, fs journal.FS) {
 	if r.deleted {
 		return // its journal was set aside, perhaps while it was read
 	}
+	s.opt.Metrics.historyDamage(r.name, len(problems))
 	if len(problems) == 0 {
 		s.log.Info("journal history verified", "robot", r.name, "segments", r.unread)
 		return

@@ -16,6 +16,7 @@ type robotVecs struct {
 	nis                             *prometheus.GaugeVec
 	slips, gaps, held, journalLag   *prometheus.GaugeVec
 	run                             *prometheus.GaugeVec
+	historyDamage                   *prometheus.GaugeVec
 }
 
 func newRobotVecs() robotVecs {
@@ -28,16 +29,17 @@ func newRobotVecs() robotVecs {
 		headingStd: g("reckon_robot_heading_std_radians", "Standard deviation of the estimate's heading, radians."),
 		nis: g("reckon_robot_nis_mean", "Running mean NIS of the sensor's applied fixes (a consistent ungated sensor averages its dimension).",
 			"sensor"),
-		slips:      g("reckon_robot_slips", "Wheel slips suspected since the robot was created (its statistics)."),
-		gaps:       g("reckon_robot_odometry_gaps", "Odometry gaps since the robot was created (its statistics)."),
-		held:       g("reckon_robot_held_inputs", "Inputs held now, waiting for odometry to reach their stamp."),
-		run:        g("reckon_robot_run", "The robot's current run, from 1: a controller restart (a run start) begins the next."),
-		journalLag: g("reckon_robot_journal_lag_seconds", "For the robot's last batch: seconds from the arrival of its first input to the end of their journal write (to the operating system; fsynced with it under -fsync each, else within the sync interval)."),
+		slips:         g("reckon_robot_slips", "Wheel slips suspected since the robot was created (its statistics)."),
+		gaps:          g("reckon_robot_odometry_gaps", "Odometry gaps since the robot was created (its statistics)."),
+		held:          g("reckon_robot_held_inputs", "Inputs held now, waiting for odometry to reach their stamp."),
+		run:           g("reckon_robot_run", "The robot's current run, from 1: a controller restart (a run start) begins the next."),
+		historyDamage: g("reckon_robot_history_damage", "Damage found in the robot's journal history before the snapshot it was restored from, by the verification after the last restart: the problems found, 0 when it read whole. Absent until that verification ends."),
+		journalLag:    g("reckon_robot_journal_lag_seconds", "For the robot's last batch: seconds from the arrival of its first input to the end of their journal write (to the operating system; fsynced with it under -fsync each, else within the sync interval)."),
 	}
 }
 
 func (v robotVecs) collectors() []prometheus.Collector {
-	return []prometheus.Collector{v.trusted, v.position95, v.headingStd, v.nis, v.slips, v.gaps, v.held, v.journalLag, v.run}
+	return []prometheus.Collector{v.trusted, v.position95, v.headingStd, v.nis, v.slips, v.gaps, v.held, v.journalLag, v.run, v.historyDamage}
 }
 
 // robotGauges are one robot's series, looked up once; the robot's mutex
@@ -68,6 +70,14 @@ func (m *Metrics) forget(name string) {
 	}
 	for _, c := range m.perRobot.collectors() {
 		c.(*prometheus.GaugeVec).DeletePartialMatch(prometheus.Labels{"robot": name})
+	}
+}
+
+// historyDamage records what VerifyHistories found in the named robot's
+// history: the number of problems, 0 when none.
+func (m *Metrics) historyDamage(name string, problems int) {
+	if m != nil {
+		m.perRobot.historyDamage.WithLabelValues(name).Set(float64(problems))
 	}
 }
 

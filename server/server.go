@@ -157,9 +157,12 @@ type robot struct {
 	// the journal last wrote without one; 0: it does.
 	retrying int
 	// unread counts the journal's segments that restore did not read
-	// whole (from segment 0), which VerifyHistories reads, and
-	// historySnap is the sequence of the snapshot restore started from.
+	// whole (from segment 0), which VerifyHistories reads, the last of
+	// them only up to byte unreadTo when that is not 0 (the segment being
+	// written, which restore read from its snapshot on), and historySnap
+	// is the sequence of the snapshot restore started from.
 	unread      int
+	unreadTo    int64
 	historySnap uint64
 	// note is the detail of a serving robot (restore's note, damage
 	// VerifyHistories found), which it gets again after a pause.

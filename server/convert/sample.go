@@ -187,17 +187,25 @@ const (
 	CodeOK                 int32 = 0
 	CodeInvalidArgument    int32 = 3
 	CodeNotFound           int32 = 5
+	CodeResourceExhausted  int32 = 8
 	CodeFailedPrecondition int32 = 9
 	CodeOutOfRange         int32 = 11
 )
 
 // errorCode returns the status code for the error that refused a sample.
+// A refusal that the robot's state decides, not the sample alone, is no
+// INVALID_ARGUMENT (gRPC's status code guide; common practice): a stamp
+// outside the range the robot takes now (too old, backwards, too far past
+// its newest odometry) is OUT_OF_RANGE, and a full queue of held samples,
+// which odometry empties, is RESOURCE_EXHAUSTED.
 func errorCode(err error) int32 {
 	switch {
 	case err == nil:
 		return CodeOK
-	case errors.Is(err, fusion.ErrTimeBackwards), errors.Is(err, fusion.ErrTooOld):
+	case errors.Is(err, fusion.ErrTimeBackwards), errors.Is(err, fusion.ErrTooOld), errors.Is(err, fusion.ErrTooFarAhead):
 		return CodeOutOfRange
+	case errors.Is(err, fusion.ErrHeldFull):
+		return CodeResourceExhausted
 	case errors.Is(err, fusion.ErrNoIMU), errors.Is(err, fusion.ErrRunOutOfOrder):
 		return CodeFailedPrecondition
 	case errors.Is(err, fusion.ErrUnknownLandmark), errors.Is(err, fusion.ErrUnknownSensor):

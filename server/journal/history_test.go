@@ -8,6 +8,7 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"testing"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -192,7 +193,7 @@ func TestVerifyFindsOldDamage(t *testing.T) {
 	if sc.FromSegment <= 2 || len(sc.Damage) != 0 {
 		t.Fatalf("restore from segment %d, damage %v", sc.FromSegment, sc.Damage)
 	}
-	vs, err := journal.Verify(context.Background(), nil, d, "cart", sc.FromSegment)
+	vs, err := journal.Verify(context.Background(), nil, d, "cart", sc.FromSegment, 0)
 	if len(vs.Damage) != 1 || vs.Damage[0].File != bad || vs.Damage[0].Offset != int64(frame) || vs.Damage[0].Kept != "" || !errors.Is(err, journal.ErrGap) {
 		t.Fatalf("verify: damage %v, %v; want at %s byte %d", vs.Damage, err, bad, frame)
 	}
@@ -202,7 +203,7 @@ func TestVerifyFindsOldDamage(t *testing.T) {
 	// Undamaged, the same segments verify clean.
 	b[at] ^= 0x10
 	os.WriteFile(bad, b, 0o644)
-	if vs, err := journal.Verify(context.Background(), nil, d, "cart", sc.FromSegment); err != nil || len(vs.Damage) != 0 {
+	if vs, err := journal.Verify(context.Background(), nil, d, "cart", sc.FromSegment, 0); err != nil || len(vs.Damage) != 0 {
 		t.Errorf("verify of the whole journal: %v %v", vs.Damage, err)
 	}
 }
@@ -258,5 +259,185 @@ func TestOldSegmentCutOrMissingAtRestore(t *testing.T) {
 				t.Errorf("read: %v, want a gap naming %s", err, bad)
 			}
 		})
+	}
+}
+
+// TestRestoreFromTheSegmentBeingWritten: a journal of one segment (a young
+// robot's: a segment holds up to 64 MiB, hours of inputs) is read at a
+// restart from the newest snapshot on, which the snapshot hint names,
+// not from the segment's start: what a restart reads is bounded by the
+// snapshot interval. The code before read the whole segment (about 180
+// kB here) and fails this. Verify then reads the segment up to the
+// snapshot: a bit flipped there is not read by the restart, and Verify
+// reports it.
+func TestRestoreFromTheSegmentBeingWritten(t *testing.T) {
+	d := t.TempDir()
+	segs := writeSegmented(t, d, 3050, 64<<20, 100, nil)
+	if len(segs) != 1 {
+		t.Fatalf("%d segments", len(segs))
+	}
+	sc, seqs, bytes := restoreCounting(t, d)
+	if sc.FromSegment != 0 || sc.FromOffset == 0 || sc.SnapshotSequence != 3000 || len(seqs) != 50 || seqs[0] != 3001 || sc.Pairs != 3050 {
+		t.Fatalf("restore from segment %d byte %d, snapshot %d, %d pairs, %d after it", sc.FromSegment, sc.FromOffset, sc.SnapshotSequence, sc.Pairs, len(seqs))
+	}
+	fi, _ := os.Stat(segs[0])
+	if limit := fi.Size() - sc.FromOffset + 4096; bytes > limit {
+		t.Errorf("restore read %d bytes of a segment of %d, from byte %d: want at most %d", bytes, fi.Size(), sc.FromOffset, limit)
+	}
+	t.Logf("segment of %d bytes, snapshot at %d: %d bytes read", fi.Size(), sc.FromOffset, bytes)
+	if vs, err := journal.Verify(context.Background(), nil, d, "cart", 0, sc.FromOffset); err != nil || len(vs.Damage) != 0 || vs.LastSequence != 3000 {
+		t.Fatalf("verify up to the snapshot: %v, %v, last input %d", vs.Damage, err, vs.LastSequence)
+	}
+	b, _ := os.ReadFile(segs[0])
+	at := int(sc.FromOffset) / 2
+	b[at] ^= 0x10
+	os.WriteFile(segs[0], b, 0o644)
+	frame := frameAround(t, b, at)
+	if sc2, _, _ := restoreCounting(t, d); sc2.FromOffset != sc.FromOffset || len(sc2.Damage) != 0 {
+		t.Fatalf("restore after a flip before the snapshot: from %d, damage %v", sc2.FromOffset, sc2.Damage)
+	}
+	vs, err := journal.Verify(context.Background(), nil, d, "cart", 0, sc.FromOffset)
+	if len(vs.Damage) != 1 || vs.Damage[0].Offset != int64(frame) || !errors.Is(err, journal.ErrGap) {
+		t.Errorf("verify: damage %v, %v; want at byte %d and a gap", vs.Damage, err, frame)
+	}
+}
+
+// TestSnapshotHintIsOnlyAdvice: a snapshot hint that is missing, older
+// than the newest snapshot, unparsable, or names a place that holds no
+// such snapshot (another offset, another input, past the end, another
+// segment) never changes what a restart finds: the same last input and,
+// from the snapshot it starts at, every input after it. A wrong hint
+// sends it back to the manifest's record and the whole read.
+func TestSnapshotHintIsOnlyAdvice(t *testing.T) {
+	d := t.TempDir()
+	writeSegmented(t, d, 1250, historySegment, 100, nil)
+	hint := journal.HintPath(d, "cart")
+	good, err := os.ReadFile(hint)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var n int
+	var at int64
+	var seq uint64
+	if _, err := fmt.Sscanf(strings.TrimPrefix(string(good), "reckon journal snapshot hint 1\n"), "segment %d at %d input %d", &n, &at, &seq); err != nil || seq != 1200 {
+		t.Fatalf("hint %q: %v", good, err)
+	}
+	cases := map[string]string{
+		"missing":     "",
+		"older":       "", // written below: the snapshot before the newest
+		"garbage":     "reckon journal snapshot hint 1\nsegment x\n",
+		"other head":  strings.Replace(string(good), "hint 1", "hint 9", 1),
+		"offset":      fmt.Sprintf("reckon journal snapshot hint 1\nsegment %06d at %d input %d\n", n, at+8, seq),
+		"input":       fmt.Sprintf("reckon journal snapshot hint 1\nsegment %06d at %d input %d\n", n, at, seq+1),
+		"past end":    fmt.Sprintf("reckon journal snapshot hint 1\nsegment %06d at %d input %d\n", n, at+1<<20, seq),
+		"segment":     fmt.Sprintf("reckon journal snapshot hint 1\nsegment %06d at %d input %d\n", n+5, at, seq),
+		"trailing":    string(good) + "x",
+		"not newline": strings.TrimSuffix(string(good), "\n"),
+	}
+	for name, text := range cases {
+		t.Run(name, func(t *testing.T) {
+			switch name {
+			case "missing":
+				os.Remove(hint)
+			case "older":
+				// The previous snapshot's place: found by a whole read.
+				var prev []int64
+				for off, b := int64(16), mustRead(t, journal.SegmentPath(d, "cart", n)); off < int64(len(b)); off += 8 + int64(binary.LittleEndian.Uint32(b[off:])) {
+					if b[off+8] == journal.KindSnapshot && off < at {
+						prev = append(prev, off)
+					}
+				}
+				if len(prev) == 0 {
+					t.Skip("no older snapshot in the hint's segment")
+				}
+				text = fmt.Sprintf("reckon journal snapshot hint 1\nsegment %06d at %d input %d\n", n, prev[len(prev)-1], seq-100)
+				os.WriteFile(hint, []byte(text), 0o644)
+			default:
+				os.WriteFile(hint, []byte(text), 0o644)
+			}
+			defer os.WriteFile(hint, good, 0o644)
+			sc, snap, seqs, err := readFromSnapshot(nil, d)
+			// The newest snapshot, whichever the scan started from (an
+			// older one is read on to the newest).
+			if err != nil || sc.Pairs != 1250 || sc.LastSequence != 1250 || snap != seq || len(seqs) != int(1250-snap) || seqs[0] != snap+1 {
+				t.Errorf("read: %v, %d pairs, last %d, snapshot %d, %d after it", err, sc.Pairs, sc.LastSequence, snap, len(seqs))
+			}
+		})
+	}
+}
+
+func mustRead(t *testing.T, path string) []byte {
+	t.Helper()
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return b
+}
+
+// TestSnapshotHintFailureCostsNothing: a hint that cannot be written (the
+// disk full at its creation or its rename) fails no Flush and leaves no
+// temporary file; the next snapshot's hint is written.
+func TestSnapshotHintFailureCostsNothing(t *testing.T) {
+	for _, op := range []faultfs.Op{faultfs.OpCreate, faultfs.OpWrite, faultfs.OpRename} {
+		t.Run(op.String(), func(t *testing.T) {
+			d := t.TempDir()
+			failing := true
+			ffs := faultfs.New(journal.OS, func(o faultfs.Op, path string) error {
+				if failing && o == op && strings.Contains(path, ".lastsnap") {
+					return syscall.ENOSPC
+				}
+				return nil
+			})
+			w, err := journal.Create(d, "cart", opening, journal.Options{FS: ffs})
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer w.Close()
+			addPairs(t, w, 1, 10)
+			w.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: 10, State: []byte("s")}}})
+			if n, err := w.Flush(); err != nil || n != 11 {
+				t.Fatalf("Flush with the hint failing: %d, %v", n, err)
+			}
+			if names, _ := filepath.Glob(filepath.Join(d, "*.tmp")); len(names) != 0 {
+				t.Errorf("left %v", names)
+			}
+			if _, err := os.Stat(journal.HintPath(d, "cart")); err == nil {
+				t.Errorf("a hint after its write failed")
+			}
+			failing = false
+			addPairs(t, w, 11, 20)
+			w.Add(&pb.JournalRecord{Entry: &pb.JournalRecord_Snapshot{Snapshot: &pb.JournalSnapshot{Sequence: 20, State: []byte("s")}}})
+			if _, err := w.Flush(); err != nil {
+				t.Fatal(err)
+			}
+			if b, err := os.ReadFile(journal.HintPath(d, "cart")); err != nil || !strings.Contains(string(b), "input 20\n") {
+				t.Errorf("hint after the next snapshot: %q, %v", b, err)
+			}
+		})
+	}
+}
+
+// TestSetAsideTakesTheHint: a deleted robot's hint goes with its journal,
+// so that a later robot of the same name starts without one; the
+// set-aside journal is read from its snapshot as before.
+func TestSetAsideTakesTheHint(t *testing.T) {
+	d := t.TempDir()
+	writeSegmented(t, d, 250, historySegment, 100, nil)
+	if err := journal.SetAside(nil, d, "cart"); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := os.Stat(journal.HintPath(d, "cart")); err == nil {
+		t.Fatal("the hint stayed behind")
+	}
+	names, _ := filepath.Glob(filepath.Join(d, "cart.lastsnap.deleted-*"))
+	if len(names) != 1 {
+		t.Fatalf("set aside: %v", names)
+	}
+	aside := "cart" + strings.TrimPrefix(filepath.Base(names[0]), "cart.lastsnap")
+	var snap uint64
+	sc, err := journal.Read(d, aside, journal.Visitor{Snapshot: func(s *pb.JournalSnapshot) error { snap = s.GetSequence(); return nil }})
+	if err != nil || snap != 200 || sc.Pairs != 250 || sc.FromOffset == 0 {
+		t.Errorf("set-aside journal: %v, snapshot %d, %d pairs, from byte %d", err, snap, sc.Pairs, sc.FromOffset)
 	}
 }

@@ -99,6 +99,8 @@ type Visitor struct {
 // the segments' buffers, which are never reused.
 type scanState struct {
 	fs      FS
+	dir     string
+	robot   string // its files' names (not a set-aside journal's name)
 	sc      *Scan
 	v       Visitor
 	pending []byte   // an input's payload waiting for its output
@@ -198,6 +200,7 @@ func ReadFS(fsys FS, dir, robot string, v Visitor) (Scan, error) {
 // open lists a robot's segments and reads its manifest; name is the name
 // the robot was asked for.
 func (st *scanState) open(dir, robot, name string) ([]segFile, error) {
+	st.dir, st.robot = dir, robot
 	segs, err := listSegments(st.fs, dir, robot)
 	if err != nil {
 		return nil, err
@@ -246,30 +249,35 @@ func (st *scanState) segments(segs []segFile, toEnd bool) error {
 }
 
 // fromManifest finds where a scan with a Snapshot visitor can start: at
-// the last snapshot the manifest records, when the manifest records every
-// segment before the last from segment 0 on, each of them is there with
-// the size recorded, segment 0 starts with a valid opening record and the
-// recorded snapshot is there. It then hands the visitor the opening,
-// readies the scan to go on from the snapshot and returns the index in
-// segs of its segment; else it returns 0, and the scan reads the whole
-// journal (which finds and reports what is wrong, if anything is).
+// the newest snapshot known, the last one the manifest records or the one
+// the snapshot hint names (hint.go), when the manifest records every
+// segment before it from segment 0 on, each of them is there with the
+// size recorded, segment 0 starts with a valid opening record, the
+// snapshot's segment with a valid header, and the snapshot is there. It
+// then hands the visitor the opening, readies the scan to go on from the
+// snapshot and returns the index in segs of its segment; else it returns
+// 0, and the scan reads the whole journal (which finds and reports what is
+// wrong, if anything is).
 func (st *scanState) fromManifest(segs []segFile) (int, error) {
 	rec := st.man.sealed
 	k := 0
 	for k < len(rec) && k < len(segs)-1 && rec[k].n == k && segs[k].n == k {
 		k++
 	}
-	from := -1
+	start := snapshotHint{n: -1}
 	for i := range k {
 		fi, err := st.fs.Stat(segs[i].path)
 		if err != nil || fi.Size() != rec[i].size {
 			return 0, nil
 		}
 		if rec[i].snapAt >= 0 {
-			from = i
+			start = snapshotHint{n: i, at: rec[i].snapAt, seq: rec[i].snapSeq}
 		}
 	}
-	if from < 0 {
+	if h, ok := readHint(st.fs, st.dir, st.robot); ok && h.n <= k && h.n < len(segs) && segs[h.n].n == h.n && h.seq > start.seq &&
+		(h.n == 0 || headerOK(st.fs, segs[h.n].path)) && snapshotAt(st.fs, segs[h.n].path, h) {
+		start = h
+	} else if start.n < 0 || !snapshotAt(st.fs, segs[start.n].path, start) {
 		return 0, nil
 	}
 	b, err := readFrame(st.fs, segs[0].path, headerSize)
@@ -280,20 +288,34 @@ func (st *scanState) fromManifest(segs []segFile) (int, error) {
 	if proto.Unmarshal(b, &orec) != nil || orec.GetOpening() == nil {
 		return 0, nil
 	}
-	snap := rec[from]
-	b, err = readFrame(st.fs, segs[from].path, snap.snapAt)
-	if err != nil || b[0] != KindSnapshot || leadingVarint(b) != snap.snapSeq {
-		return 0, nil
-	}
 	sc := st.sc
-	sc.Opening, sc.FromSegment, sc.FromOffset = orec.GetOpening(), from, snap.snapAt
-	sc.LastSequence, sc.Pairs = snap.snapSeq, int(snap.snapSeq)
+	sc.Opening, sc.FromSegment, sc.FromOffset = orec.GetOpening(), start.n, start.at
+	sc.LastSequence, sc.Pairs = start.seq, int(start.seq)
 	if st.v.Opening != nil {
 		if err := st.v.Opening(sc.Opening); err != nil {
 			return 0, err
 		}
 	}
-	return from, nil
+	return start.n, nil
+}
+
+// snapshotAt reports whether the segment at path holds, at s.at, a whole
+// snapshot record of input s.seq whose CRC-32C matches.
+func snapshotAt(fsys FS, path string, s snapshotHint) bool {
+	b, err := readFrame(fsys, path, s.at)
+	return err == nil && b[0] == KindSnapshot && leadingVarint(b) == s.seq
+}
+
+// headerOK reports whether the segment at path starts with a valid header.
+func headerOK(fsys FS, path string) bool {
+	f, err := fsys.OpenFile(path, os.O_RDONLY, 0)
+	if err != nil {
+		return false
+	}
+	defer f.Close()
+	var h [headerSize]byte
+	_, err = io.ReadFull(f, h[:])
+	return err == nil && checkHeader(h[:]) == nil
 }
 
 // readFrame reads the frame at off of the file at path and returns its
@@ -342,9 +364,19 @@ func readFrame(fsys FS, path string, off int64) ([]byte, error) {
 // (DamageError.Kept is empty), as a read-only scan does. Damage is in
 // Scan.Damage; a break of continuity is the error (wrapping ErrGap), as
 // from ReadFS. The end of ctx stops it between segments, with its error.
-func Verify(ctx context.Context, fsys FS, dir, robot string, through int) (Scan, error) {
+//
+// When upTo > 0, segment through is the one being written, which a restore
+// started from at the snapshot at byte upTo (the snapshot hint): it is
+// read only up to that byte, while the writer appends after it, and its
+// last input there must be the snapshot's.
+func Verify(ctx context.Context, fsys FS, dir, robot string, through int, upTo int64) (Scan, error) {
 	var sc Scan
-	st := &scanState{fs: orOS(fsys), sc: &sc, v: Visitor{ReadOnly: true}, ctx: ctx}
+	fsys = orOS(fsys)
+	st := &scanState{fs: fsys, sc: &sc, v: Visitor{ReadOnly: true}, ctx: ctx}
+	last := SegmentPath(dir, robot, through)
+	if upTo > 0 {
+		st.fs = prefixFS{FS: fsys, path: last, n: upTo}
+	}
 	segs, err := st.open(dir, robot, robot)
 	if err != nil {
 		return sc, err
@@ -358,6 +390,15 @@ func Verify(ctx context.Context, fsys FS, dir, robot string, through int) (Scan,
 	}
 	if sc.Opening == nil {
 		return sc, errors.Join(fmt.Errorf("journal for %s has no opening record: its first segment %s holds none", robot, segs[0].path), st.gap)
+	}
+	if upTo > 0 && st.gap == nil {
+		b, err := readFrame(fsys, last, upTo)
+		if err == nil && (b[0] != KindSnapshot || leadingVarint(b) != sc.LastSequence) {
+			err = fmt.Errorf("a snapshot at input %d follows input %d", leadingVarint(b), sc.LastSequence)
+		}
+		if err != nil {
+			st.gap = fmt.Errorf("%w: %s at byte %d: the snapshot the restore started from: %v", ErrGap, last, upTo, err)
+		}
 	}
 	return sc, st.gap
 }

@@ -50,6 +50,10 @@ type Writer struct {
 	man   manifest
 	cur   sealedSegment
 	marks []entryMark
+	// hinted is what the snapshot hint last written says (hintSnapshot),
+	// hintErr why the last write of one failed.
+	hinted  snapshotHint
+	hintErr error
 }
 
 // entryMark is what an entry adds to what the manifest records of its
@@ -289,8 +293,8 @@ func Resume(dir, robot string, sc *Scan, opt Options) (*Writer, error) {
 	return w, nil
 }
 
-// removeLeftovers removes a robot's temporary files: segments and
-// manifests whose creation was interrupted, never acknowledged.
+// removeLeftovers removes a robot's temporary files: segments, manifests
+// and snapshot hints whose creation was interrupted, never acknowledged.
 func removeLeftovers(fsys FS, dir, robot string) error {
 	names, err := fsys.List(dir)
 	if err != nil {
@@ -302,7 +306,7 @@ func removeLeftovers(fsys FS, dir, robot string) error {
 		if !ok {
 			continue
 		}
-		if _, seg := segmentNumber(base, robot); seg || base == robot+manifestExt {
+		if _, seg := segmentNumber(base, robot); seg || base == robot+manifestExt || base == robot+hintExt {
 			if err := fsys.Remove(filepath.Join(dir, name)); err != nil {
 				return err
 			}
@@ -478,6 +482,7 @@ func (w *Writer) Flush() (complete int, err error) {
 		w.dirty = false
 	}
 	w.mark(marks, before)
+	w.hintSnapshot()
 	if w.size >= w.limit() {
 		if err := w.rotate(); err != nil {
 			return entries, err
@@ -522,6 +527,7 @@ func (w *Writer) takeBack(n int, err error) (int, error) {
 		}
 	}
 	w.mark(marks, before)
+	w.hintSnapshot()
 	return complete, err
 }
 
@@ -694,9 +700,9 @@ func (w *Writer) Remove() error {
 
 // SetAside renames a robot's journal files in dir on fsys (nil: the OS) to
 // {name}.deleted-{unix nanoseconds}, a name that no other file has (a
-// suffix .1, .2 ... is added if one does): its manifest, its segments and
-// the copies of damaged bytes kept beside them ({segment}.damaged-{offset},
-// {segment}.damaged), so that a later robot of the same name starts with
+// suffix .1, .2 ... is added if one does): its manifest, its segments, its
+// snapshot hint and the copies of damaged bytes kept beside them
+// ({segment}.damaged-{offset}, {segment}.damaged), so that a later robot of the same name starts with
 // none of them. Nothing is rewritten or removed. The journal must not be
 // open for writing; a journal that cannot be restored is set aside as it
 // is, so that the robot's name can be used again.
@@ -713,6 +719,9 @@ func SetAside(fsys FS, dir, robot string) error {
 	var segs, kept []string
 	if _, err := fsys.Stat(ManifestPath(dir, robot)); err == nil {
 		segs = append(segs, ManifestPath(dir, robot))
+	}
+	if _, err := fsys.Stat(HintPath(dir, robot)); err == nil {
+		kept = append(kept, HintPath(dir, robot))
 	}
 	for _, name := range names { // sorted, and the numbers have six digits
 		if _, ok := segmentNumber(name, robot); ok {

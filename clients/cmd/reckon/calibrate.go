@@ -66,6 +66,9 @@ into one HTML report with a calibration section at the top.`)
 	case *samples != "" && samePath(*samples, *out):
 		return usagef(fs, "-out is the recording %s; it is never overwritten", *samples)
 	}
+	if err := journalDir(*dir); err != nil {
+		return err
+	}
 	if !*force {
 		if _, err := os.Stat(*out); err == nil {
 			return fmt.Errorf("%w: %s exists (-force replaces it)", errRefused, *out)

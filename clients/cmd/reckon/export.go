@@ -48,6 +48,9 @@ names carry their units (stamp_ns, x_m, cov_xx_m2).`)
 	if *run < 0 {
 		return usagef(fs, "-run must be 0 (every run) or a run number, got %d", *run)
 	}
+	if err := journalDir(*dir); err != nil {
+		return err
+	}
 	made := newDirs(*out)
 	runs, err := export.Export(ctx, *dir, *out, export.Options{Robots: robots, Deleted: *deleted, RowGroupRows: *rowGroup, Run: *run})
 	if err != nil {

@@ -6,6 +6,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"os"
 	"strings"
 
 	"reckon.example/server"
@@ -97,6 +98,24 @@ func journalRobot(s string) (string, error) {
 		return "", &usageError{err: fmt.Errorf("-robot: %w, nor a deleted robot's journal ({id}.deleted-{unix ns})", err)}
 	}
 	return id, nil
+}
+
+// journalDir refuses a -journal that names no directory, as a usage error
+// naming it: a mistyped path is a mistake in the command line, as a bad
+// -robot is. An empty dir (no -journal) passes; other errors of the file
+// system are left to the reading, which names them.
+func journalDir(dir string) error {
+	if dir == "" {
+		return nil
+	}
+	st, err := os.Stat(dir)
+	switch {
+	case errors.Is(err, os.ErrNotExist):
+		return &usageError{err: fmt.Errorf("-journal %s: no such directory", dir)}
+	case err == nil && !st.IsDir():
+		return &usageError{err: fmt.Errorf("-journal %s: not a directory", dir)}
+	}
+	return nil
 }
 
 // parseNone parses the flags of a command that takes no positional

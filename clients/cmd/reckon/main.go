@@ -33,8 +33,9 @@
 //
 //	0    done
 //	1    any other failure
-//	2    usage: a bad flag or argument, or a -run, -from or -to outside
-//	     the recording (replay, review, compare, tune, calibrate, export)
+//	2    usage: a bad flag or argument, a -journal that names no
+//	     directory, or a -run, -from or -to outside the recording (replay,
+//	     review, compare, tune, calibrate, export)
 //	3    the service is unreachable (gRPC Unavailable)
 //	4    no such robot (gRPC NotFound; offline, no journal of it)
 //	5    input refused: a bad configuration or samples file, a configuration
@@ -126,8 +127,9 @@ func usage() string {
 		b.WriteString(line + "\n")
 	}
 	b.WriteString("\n\"reckon <command> -h\" prints a command's flags. Exit codes: 0 done, 1 failure,\n" +
-		"2 usage (also a -run, -from or -to outside the recording), 3 service unreachable,\n" +
-		"4 no such robot, 5 input refused, 130 interrupted.\n")
+		"2 usage (also a -journal that names no directory, or a -run, -from or -to outside\n" +
+		"the recording), 3 service unreachable, 4 no such robot, 5 input refused,\n" +
+		"130 interrupted.\n")
 	return b.String()
 }
 

@@ -48,6 +48,9 @@ is then 1.`)
 	if err := span.check(fs); err != nil {
 		return err
 	}
+	if err := journalDir(*journal); err != nil {
+		return err
+	}
 	for _, in := range []string{*samples, *config} {
 		if *out != "" && in != "" && samePath(in, *out) {
 			return usagef(fs, "-out is the input %s; it is never overwritten", in)

@@ -712,6 +712,41 @@ func TestOfflineNoSuchRobot(t *testing.T) {
 	}
 }
 
+// TestOfflineNoJournalDirectory: every command that takes -journal refuses
+// one that names no directory (none there, or a file) as a usage error
+// (exit 2) naming it, and leaves no output behind. Before, each failed with
+// the file system's error ("open DIR: no such file or directory", or "not a
+// directory") and exit 1, any other failure.
+func TestOfflineNoJournalDirectory(t *testing.T) {
+	out := t.TempDir()
+	file := filepath.Join(t.TempDir(), "journal.txt")
+	if err := os.WriteFile(file, []byte("not a journal\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct{ dir, want string }{
+		{filepath.Join(out, "nosuch"), "no such directory"},
+		{file, "not a directory"},
+	} {
+		for _, args := range [][]string{
+			{"replay", "-robot", "cart", "-out", filepath.Join(out, "replay.csv")},
+			{"review", "-robot", "cart", "-out", filepath.Join(out, "review")},
+			{"compare", "-robot", "cart", "-b", exampleConfig, "-out", filepath.Join(out, "compare")},
+			{"export", "-out", filepath.Join(out, "export")},
+			{"tune", "-robot", "cart", "-out", filepath.Join(out, "tuned.yaml")},
+			{"calibrate", "-robot", "cart", "-out", filepath.Join(out, "calibrated.yaml")},
+		} {
+			_, errs, code := runCode(t, context.Background(), "", append(args, "-journal", c.dir)...)
+			want := "reckon " + args[0] + ": -journal " + c.dir + ": " + c.want
+			if code != exitUsage || !strings.Contains(errs, want) {
+				t.Errorf("%s -journal %s: exit %d, want %d and %q\n%s", args[0], c.dir, code, exitUsage, want, errs)
+			}
+		}
+	}
+	if left, _ := os.ReadDir(out); len(left) != 0 {
+		t.Errorf("left behind: %v", left)
+	}
+}
+
 // TestOfflineNoSuchRun: every command that takes -run refuses a run past
 // the recording's last as a usage error (exit 2), as -from and -to outside
 // it, naming the runs it holds, and leaves no output behind: no -out

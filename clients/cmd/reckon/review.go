@@ -106,6 +106,9 @@ func (sf sourceFlags) source() (review.Source, error) {
 	switch {
 	case *sf.journal != "" && *sf.robot != "":
 		id, err := journalRobot(*sf.robot)
+		if err == nil {
+			err = journalDir(*sf.journal)
+		}
 		if err != nil {
 			return src, err
 		}

@@ -102,6 +102,9 @@ calibration section at the top.`)
 	case *config == "" && *out == "":
 		return usagef(fs, "a journal's own configuration needs -out NEW.yaml")
 	}
+	if err := journalDir(*dir); err != nil {
+		return err
+	}
 	if *out == "" {
 		*out = strings.TrimSuffix(*config, filepath.Ext(*config)) + "-tuned.yaml"
 	}

@@ -79,8 +79,8 @@ class Verdict:
     the robot took it). verdict is its label ("applied", "held", "gated",
     "too_old", "invalid"); final is False only for "held", whose final
     verdict comes later. status_code is the google.rpc.Code of the outcome
-    (0 OK, 3 INVALID_ARGUMENT, 5 NOT_FOUND, 9 FAILED_PRECONDITION, 11
-    OUT_OF_RANGE, 14 UNAVAILABLE), None for the resolution of a held sample
+    (0 OK, 3 INVALID_ARGUMENT, 5 NOT_FOUND, 8 RESOURCE_EXHAUSTED, 9
+    FAILED_PRECONDITION, 11 OUT_OF_RANGE, 14 UNAVAILABLE), None for the resolution of a held sample
     (the wire carries none). reason names the field of a refused sample.
     nis is a fix's normalised innovation squared with nis_dimension
     degrees of freedom. events are the reckon.v1.FusionEvent messages the

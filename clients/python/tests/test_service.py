@@ -207,6 +207,33 @@ class RobotCallsTest(unittest.TestCase):
                 session.send(s)
         self.assertEqual([v.verdict for v in collector.finish()], ["applied"] * 20)
 
+    def test_refusals_for_the_robots_state(self):
+        # A fix stamped past max_hold_ahead_ns (1 s) is out of range for the
+        # robot now (11, OUT_OF_RANGE); with max_held (2) fixes already
+        # waiting for odometry, the next is refused for the full queue (8,
+        # RESOURCE_EXHAUSTED). Both are taken, with a sequence; neither is
+        # INVALID_ARGUMENT (3), which would say the sample itself is bad.
+        config = support.cart_config()
+        config.max_held = 2
+        self.client.create_robot("cart-h", config)
+        odometry = [s for s in support.read_samples() if s.WhichOneof("sample") == "odometry"][:20]
+        newest = odometry[-1].odometry.stamp_ns
+        cov = reckonpy.diag(0.01, 0.01, 0.01)
+        with self.client.ingest("cart-h") as session:
+            collector = support.Collector(session)
+            for s in odometry:
+                session.send(s)
+            ahead = session.send(reckonpy.pose_fix(newest + 2_000_000_000, "camera", 0.0, 0.0, 0.0, cov))
+            for k in (1, 2):
+                session.send(reckonpy.pose_fix(newest + k * 1_000_000, "camera", 0.0, 0.0, 0.0, cov))
+            full = session.send(reckonpy.pose_fix(newest + 3_000_000, "camera", 0.0, 0.0, 0.0, cov))
+        first = {v.client_sequence: v for v in support.arrival_verdicts(collector.finish())}
+        self.assertEqual([first[ahead + k].verdict for k in (1, 2)], ["held", "held"])
+        for seq, code in ((ahead, 11), (full, 8)):
+            v = first[seq]
+            self.assertEqual((v.verdict, v.status_code), ("invalid", code), v.reason)
+            self.assertGreater(v.sequence, 0)
+
     def test_unknown_robot(self):
         with self.assertRaises(grpc.RpcError) as ctx:
             self.client.statistics("nobody")

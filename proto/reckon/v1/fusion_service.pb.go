@@ -927,14 +927,16 @@ type IngestResponse struct {
 	// The google.rpc.Code of the outcome, so that one bad sample does not end
 	// the stream: 0 (OK) for applied, held and gated samples; 3
 	// (INVALID_ARGUMENT) for a malformed or refused one (a malformed value or
-	// robot name, implausible motion, a stamp too far ahead, held inputs
-	// full, a numerical fault, a string past its limit, -max-string-bytes);
-	// 5 (NOT_FOUND) for an unknown or deleted robot, an unknown landmark or
-	// sensor; 9 (FAILED_PRECONDITION) for a sample the robot's configuration
-	// does not take, a run start out of order, or a quarantined robot; 11
-	// (OUT_OF_RANGE) for time running backwards or a sample too old; 14
-	// (UNAVAILABLE) when the journal failed or the robot is paused: not
-	// applied, resend.
+	// robot name, implausible motion, a repeated reading, a numerical fault,
+	// a string past its limit, -max-string-bytes); 5 (NOT_FOUND) for an
+	// unknown or deleted robot, an unknown landmark or sensor; 8
+	// (RESOURCE_EXHAUSTED) when max_held samples already wait for odometry
+	// (REFUSAL_HELD_FULL); 9 (FAILED_PRECONDITION) for a sample the robot's
+	// configuration does not take, a run start out of order, or a quarantined
+	// robot; 11 (OUT_OF_RANGE) for a stamp outside what the robot takes now:
+	// time running backwards, a sample too old, or one stamped too far past
+	// the newest odometry (REFUSAL_TOO_FAR_AHEAD); 14 (UNAVAILABLE) when the
+	// journal failed or the robot is paused: not applied, resend.
 	StatusCode int32 `protobuf:"varint,9,opt,name=status_code,json=statusCode,proto3" json:"status_code,omitempty"`
 	// Why the sample was refused, as a value (REFUSAL_UNSPECIFIED if not).
 	Refusal Refusal `protobuf:"varint,10,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`

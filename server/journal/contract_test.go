@@ -269,15 +269,21 @@ func TestLock(t *testing.T) {
 // directory removed, replaced by a file, or by another directory (where a
 // second daemon could take a lock of its own).
 func TestLockCheck(t *testing.T) {
-	for name, change := range map[string]func(dir string) error{
-		"removed": os.RemoveAll,
-		"replaced by a file": func(dir string) error {
+	mem := faultfs.NewMem()
+	mem.MkdirAll(dir, 0o755)
+	for name, c := range map[string]struct {
+		fs     journal.FS
+		dir    string
+		change func(dir string) error
+	}{
+		"removed": {nil, "", os.RemoveAll},
+		"replaced by a file": {nil, "", func(dir string) error {
 			if err := os.RemoveAll(dir); err != nil {
 				return err
 			}
 			return os.WriteFile(dir, []byte("x"), 0o644)
-		},
-		"replaced by a directory": func(dir string) error {
+		}},
+		"replaced by a directory": {nil, "", func(dir string) error {
 			if err := os.Rename(dir, dir+".old"); err != nil {
 				return err
 			}
@@ -285,12 +291,15 @@ func TestLockCheck(t *testing.T) {
 				return err
 			}
 			return os.WriteFile(filepath.Join(dir, journal.LockName), nil, 0o644)
-		},
+		}},
+		"mem, lock file removed": {mem, dir, func(dir string) error { return mem.Remove(filepath.Join(dir, journal.LockName)) }},
 	} {
 		t.Run(name, func(t *testing.T) {
-			dir := filepath.Join(t.TempDir(), "j")
-			os.Mkdir(dir, 0o755)
-			l, err := journal.Lock(nil, dir)
+			if c.dir == "" {
+				c.dir = filepath.Join(t.TempDir(), "j")
+				os.Mkdir(c.dir, 0o755)
+			}
+			l, err := journal.Lock(c.fs, c.dir)
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -298,32 +307,14 @@ func TestLockCheck(t *testing.T) {
 			if err := l.Check(); err != nil {
 				t.Fatalf("check before: %v", err)
 			}
-			if err := change(dir); err != nil {
+			if err := c.change(c.dir); err != nil {
 				t.Fatal(err)
 			}
-			if err := l.Check(); !errors.Is(err, journal.ErrDirGone) || !strings.Contains(err.Error(), dir) {
-				t.Fatalf("check after: %v, want ErrDirGone naming %s", err, dir)
+			if err := l.Check(); !errors.Is(err, journal.ErrDirGone) || !strings.Contains(err.Error(), c.dir) {
+				t.Fatalf("check after: %v, want ErrDirGone naming %s", err, c.dir)
 			}
 		})
 	}
-	t.Run("mem", func(t *testing.T) {
-		mem := faultfs.NewMem()
-		mem.MkdirAll(dir, 0o755)
-		l, err := journal.Lock(mem, dir)
-		if err != nil {
-			t.Fatal(err)
-		}
-		defer l.Unlock()
-		if err := l.Check(); err != nil {
-			t.Fatalf("check before: %v", err)
-		}
-		if err := mem.Remove(filepath.Join(dir, journal.LockName)); err != nil {
-			t.Fatal(err)
-		}
-		if err := l.Check(); !errors.Is(err, journal.ErrDirGone) {
-			t.Fatalf("check after: %v, want ErrDirGone", err)
-		}
-	})
 }
 
 // TestCreateFullDiskLeavesNothing: a robot created on a full disk fails

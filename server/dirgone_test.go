@@ -62,8 +62,8 @@ func TestJournalDirRemoved(t *testing.T) {
 				t.Fatalf("robot %v %q, want quarantined naming %s", got.GetState(), got.GetStateDetail(), dir)
 			}
 			resp, err := f.apply(samp[10])
-			if err == nil && (resp.GetSequence() != 0 || !strings.Contains(resp.GetReason(), "journal directory gone")) {
-				t.Fatalf("sample after: %v, want no sequence and a reason naming the journal directory", resp)
+			if err == nil && (resp.GetSequence() != 0 || resp.GetRefusal() != pb.Refusal_REFUSAL_QUARANTINED || !strings.Contains(resp.GetReason(), "journal directory gone")) {
+				t.Fatalf("sample after: %v, want no sequence, REFUSAL_QUARANTINED and a reason naming the journal directory", resp)
 			}
 			_, err = api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart-b", Config: got.GetConfig()})
 			if status.Code(err) != codes.FailedPrecondition || !strings.Contains(err.Error(), dir) {

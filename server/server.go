@@ -1004,6 +1004,9 @@ func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason stri
 		out.Refusal = pb.Refusal_REFUSAL_NOT_JOURNALED
 	case codes.ResourceExhausted, codes.InvalidArgument:
 		out.Refusal = pb.Refusal_REFUSAL_LIMIT
+	case codes.FailedPrecondition:
+		// robot.refusal's only FAILED_PRECONDITION.
+		out.Refusal = pb.Refusal_REFUSAL_QUARANTINED
 	}
 }
 

@@ -230,6 +230,31 @@ func TestFeedSessionTakenBefore(t *testing.T) {
 	}
 }
 
+// TestFeedRobotQuarantined: a robot quarantined during a feed (its
+// journal directory removed) stops the feed at the first sample answered
+// so (REFUSAL_QUARANTINED), naming its line and why, with exit 5. Before,
+// feed sent the rest of the file, counted each sample invalid and exited
+// 0.
+func TestFeedRobotQuarantined(t *testing.T) {
+	dir := filepath.Join(t.TempDir(), "journal")
+	addr, _ := serve(t, "127.0.0.1:0", dir)
+	time.AfterFunc(400*time.Millisecond, func() { os.RemoveAll(dir) })
+	out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-pace", "4", exampleSamples)
+	t.Logf("feed:\n%s%s", out, errs)
+	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) was answered that the robot takes no input \(robot: robots/cart is quarantined: journal directory gone: .*\); feed stopped there`).FindStringSubmatch(errs)
+	if code != exitRefused || m == nil {
+		t.Fatalf("feed to a robot quarantined meanwhile: exit %d, want %d naming the line\n%s", code, exitRefused, errs)
+	}
+	line, _ := strconv.Atoi(m[1])
+	sent := regexp.MustCompile(`(\d+) samples sent to robots/cart: applied (\d+)`).FindStringSubmatch(out)
+	if sent == nil {
+		t.Fatalf("no summary:\n%s", out)
+	}
+	if n, _ := strconv.Atoi(sent[1]); line < 2 || n >= line+200 {
+		t.Errorf("feed sent %d samples, stopping at line %d: it did not stop at the first quarantined verdict", n, line)
+	}
+}
+
 // TestFeedRobotDeleted: the robot is deleted in the middle of a paced feed.
 // Feed stops sending at the first sample answered that the robot is gone
 // (status NOT_FOUND: "was deleted", or "does not exist" once the service

@@ -116,6 +116,8 @@ type Server struct {
 	// dirGone is set, with why, once it is not.
 	dirLock *journal.DirLock
 	dirGone atomic.Pointer[error]
+	// goneCh is closed when dirGone is set (JournalDirGone).
+	goneCh chan struct{}
 
 	stopSync chan struct{}
 	// closeOnce makes Close idempotent; closeErr is its result.
@@ -217,7 +219,7 @@ func New(opt Options) (*Server, error) {
 			return nil, err
 		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, dirLock: dirLock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, dirLock: dirLock, goneCh: make(chan struct{}), stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
 	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
@@ -272,6 +274,7 @@ func (s *Server) checkJournalDir() {
 		return
 	}
 	s.dirGone.Store(&err)
+	close(s.goneCh)
 	s.log.Error("the journal directory is gone; the robots stop taking input, as nothing they take could be recorded: restart reckond on a journal directory", "dir", s.opt.JournalDir, "err", err)
 	for _, r := range s.list() {
 		r.mu.Lock()
@@ -281,6 +284,13 @@ func (s *Server) checkJournalDir() {
 		r.mu.Unlock()
 	}
 }
+
+// JournalDirGone returns a channel that is closed once the journal
+// directory is found gone (checkJournalDir), when the service can record
+// nothing and every robot is quarantined: the daemon then reports itself
+// not serving on gRPC's health service, so that a supervisor or a load
+// balancer sees it, not only the log.
+func (s *Server) JournalDirGone() <-chan struct{} { return s.goneCh }
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the

@@ -321,11 +321,25 @@ func startMetrics(dc *Config) (*http.Server, string, error) {
 
 // wait returns when the gRPC server fails (its error) or ctx is done (nil,
 // after a graceful stop, hard after dc.ShutdownGrace).
+//
+// Once the journal directory is gone (Server.JournalDirGone), the health
+// service says NOT_SERVING for the whole service and FusionService: every
+// robot is quarantined and nothing new can be recorded until reckond is
+// restarted on a journal directory.
 func wait(ctx context.Context, dc *Config, serveErr <-chan error, gs *grpc.Server, hs *health.Server, srv *server.Server) error {
-	select {
-	case err := <-serveErr:
-		return err
-	case <-ctx.Done():
+	gone := srv.JournalDirGone()
+	for done := false; !done; {
+		select {
+		case err := <-serveErr:
+			return err
+		case <-gone:
+			gone = nil
+			hs.SetServingStatus("", healthpb.HealthCheckResponse_NOT_SERVING)
+			hs.SetServingStatus(pb.FusionService_ServiceDesc.ServiceName, healthpb.HealthCheckResponse_NOT_SERVING)
+			dc.Logger.Error("health: not serving, the journal directory is gone; restart reckond on a journal directory", "dir", dc.Options.JournalDir)
+		case <-ctx.Done():
+			done = true
+		}
 	}
 	dc.Logger.Info("shutting down")
 	hs.Shutdown()

@@ -45,8 +45,8 @@ var refusalTable = [...]Label[Refusal]{
 }
 
 // RefusalLabels returns the label table of refusals (a copy). The wire enum
-// (reckon.v1.Refusal) has two more values that only the service gives:
-// not_journaled and limit.
+// (reckon.v1.Refusal) has three more values that only the service gives:
+// quarantined, not_journaled and limit.
 func RefusalLabels() []Label[Refusal] { return slices.Clone(refusalTable[:]) }
 
 // String returns the refusal's label.

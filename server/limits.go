@@ -27,6 +27,11 @@ type Limits struct {
 	// MaxViewers bounds open live views (16; -max-viewers): one more is
 	// RESOURCE_EXHAUSTED.
 	MaxViewers int
+	// MaxIngestStreams bounds open Ingest streams in all (2048;
+	// -max-ingest-streams): one more ends at once with
+	// RESOURCE_EXHAUSTED. Each holds three goroutines and gRPC's buffers,
+	// about 24 KiB (10,000 idle streams took 240 MB of reckond's memory).
+	MaxIngestStreams int
 }
 
 // withDefaults returns l with its zero fields set to the defaults.
@@ -41,6 +46,7 @@ func (l Limits) withDefaults() Limits {
 	def(&l.MaxWatchersPerRobot, 64)
 	def(&l.MaxWatchers, 1024)
 	def(&l.MaxViewers, 16)
+	def(&l.MaxIngestStreams, 2048)
 	return l
 }
 

@@ -235,3 +235,52 @@ func TestJournalPastBoundsRestores(t *testing.T) {
 		t.Errorf("CreateRobot of the same configuration: %v", err)
 	}
 }
+
+// TestIngestStreamLimit: of 1,000 ingest streams opened at once, 50
+// (MaxIngestStreams) are served and the rest end RESOURCE_EXHAUSTED naming
+// -max-ingest-streams; closed streams free their places. Before, every
+// stream was served: 10,000 idle ones took 240 MB of reckond's memory.
+func TestIngestStreamLimit(t *testing.T) {
+	api, samp, _ := limitedCart(t, Options{Limits: Limits{MaxIngestStreams: 50}})
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	open := func() (pb.FusionService_IngestClient, error) {
+		st, err := api.Ingest(ctx)
+		if err != nil {
+			return nil, err
+		}
+		// A sample already taken: a served stream answers it again.
+		st.Send(&pb.IngestRequest{Robot: "robots/cart", Sample: samp[0]})
+		_, err = st.Recv()
+		return st, err
+	}
+	var served []pb.FusionService_IngestClient
+	refused := 0
+	for i := 0; i < 1000; i++ {
+		switch st, err := open(); {
+		case err == nil:
+			served = append(served, st)
+		case codeOf(err) == codes.ResourceExhausted && strings.Contains(err.Error(), "-max-ingest-streams"):
+			refused++
+		default:
+			t.Fatalf("stream %d: %v", i, err)
+		}
+	}
+	if len(served) != 50 || refused != 950 {
+		t.Fatalf("%d ingest streams served, %d refused; want 50 and 950", len(served), refused)
+	}
+	for _, st := range served[:10] {
+		st.CloseSend()
+		for _, err := st.Recv(); err == nil; _, err = st.Recv() {
+		}
+	}
+	var err error
+	for deadline := time.Now().Add(5 * time.Second); time.Now().Before(deadline); time.Sleep(10 * time.Millisecond) {
+		if _, err = open(); err == nil {
+			break
+		}
+	}
+	if err != nil {
+		t.Errorf("a stream after 10 closed: %v", err)
+	}
+}

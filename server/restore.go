@@ -1,6 +1,8 @@
 package server
 
 import (
+	"context"
+	"errors"
 	"fmt"
 	"path/filepath"
 	"strings"
@@ -41,6 +43,16 @@ type RestoreReport struct {
 // be restored is kept quarantined and the others serve; the error is only
 // for a journal directory that cannot be listed.
 func (s *Server) Restore() ([]RestoreReport, error) {
+	return s.RestoreContext(context.Background())
+}
+
+// RestoreContext is Restore, stopped when ctx is done (the daemon asked
+// to stop): between robots, and within a robot's replay every
+// stopCheckInputs inputs, before its journal is resumed (which may write).
+// It then returns the reports of the robots restored so far and an error
+// wrapping ctx's, naming the robot it stopped at; the robot is not
+// restored and its journal is as it was. Close the server then.
+func (s *Server) RestoreContext(ctx context.Context) ([]RestoreReport, error) {
 	if s.opt.JournalDir == "" {
 		return nil, nil
 	}
@@ -49,8 +61,14 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 		return nil, err
 	}
 	var reports []RestoreReport
-	for _, id := range ids {
-		r, rep := s.restoreRobot(id)
+	for i, id := range ids {
+		if err := ctx.Err(); err != nil {
+			return reports, fmt.Errorf("restore stopped before %s (%d of %d robots restored): %w", RobotName(id), i, len(ids), err)
+		}
+		r, rep, err := s.restoreRobot(ctx, id)
+		if err != nil {
+			return reports, fmt.Errorf("restore stopped in the replay of %s (%d of %d robots restored): %w", RobotName(id), i, len(ids), err)
+		}
 		s.mu.Lock()
 		s.robots[r.name] = r
 		s.robotsChanged()
@@ -66,17 +84,25 @@ func (s *Server) Restore() ([]RestoreReport, error) {
 	return reports, nil
 }
 
-// restoreRobot restores one robot, serving or quarantined.
-func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
+// stopCheckInputs is how many inputs a restore replays between two looks
+// at whether it is to stop (RestoreContext).
+const stopCheckInputs = 4096
+
+// restoreRobot restores one robot, serving or quarantined; the error is
+// only ctx's, when it was done during the replay.
+func (s *Server) restoreRobot(ctx context.Context, id string) (*robot, RestoreReport, error) {
 	name := RobotName(id)
 	rep := RestoreReport{Robot: name, State: pb.RobotState_ROBOT_STATE_QUARANTINED}
 	r := &robot{name: name, id: id, state: pb.RobotState_ROBOT_STATE_QUARANTINED}
-	quarantined := func(err error) (*robot, RestoreReport) {
+	quarantined := func(err error) (*robot, RestoreReport, error) {
 		r.detail = s.problem(id, err)
 		rep.Detail = r.detail
-		return r, rep
+		return r, rep, nil
 	}
-	rp, err := s.replayRobot(id)
+	rp, err := s.replayRobot(ctx, id)
+	if cerr := ctx.Err(); cerr != nil && errors.Is(err, cerr) {
+		return nil, rep, err
+	}
 	r.cfg = rp.scan.Opening.GetConfig()
 	rep.Inputs, rep.Build, rep.Differing = rp.scan.Pairs, rp.build, rp.differing
 	if err != nil {
@@ -107,7 +133,7 @@ func (s *Server) restoreRobot(id string) (*robot, RestoreReport) {
 	}
 	s.observeRobot(r, nil, -1)
 	r.mu.Unlock()
-	return r, rep
+	return r, rep, nil
 }
 
 // VerifyHistories reads, in a goroutine of its own, the part of each
@@ -254,11 +280,11 @@ type replayedRobot struct {
 // version), rebuilding its sessions and comparing every output. Outputs that
 // differ are a note when another build wrote them (an upgrade; the records
 // stay as they are) and damage when this build did.
-func (s *Server) replayRobot(id string) (*replayedRobot, error) {
-	rp, err := s.replayFrom(id, true)
-	if err != nil && rp.scan.SnapshotSequence != 0 && rp.fr == nil && !rp.snapUsed {
+func (s *Server) replayRobot(ctx context.Context, id string) (*replayedRobot, error) {
+	rp, err := s.replayFrom(ctx, id, true)
+	if err != nil && ctx.Err() == nil && rp.scan.SnapshotSequence != 0 && rp.fr == nil && !rp.snapUsed {
 		skipped := fmt.Sprintf("snapshot at input %d not restored (%v); replayed from the start", rp.scan.SnapshotSequence, err)
-		if rp, err = s.replayFrom(id, false); err == nil {
+		if rp, err = s.replayFrom(ctx, id, false); err == nil {
 			rp.note = skipped
 			s.log.Warn("journal snapshot skipped", "robot", RobotName(id), "why", skipped)
 		}
@@ -283,10 +309,14 @@ func (s *Server) replayRobot(id string) (*replayedRobot, error) {
 type replaying struct {
 	replayedRobot
 	snapUsed bool
+	// ctx stops the replay (RestoreContext); inputs counts the inputs
+	// replayed, for its look every stopCheckInputs.
+	ctx    context.Context
+	inputs int
 }
 
-func (s *Server) replayFrom(id string, fromSnapshot bool) (*replaying, error) {
-	rp := &replaying{}
+func (s *Server) replayFrom(ctx context.Context, id string, fromSnapshot bool) (*replaying, error) {
+	rp := &replaying{ctx: ctx}
 	rp.holders = map[uint64]holder{}
 	opt := journal.ReplayOptions{FromSnapshot: fromSnapshot,
 		Snapshot: func(sn *pb.JournalSnapshot) error {
@@ -311,6 +341,11 @@ func (s *Server) replayFrom(id string, fromSnapshot bool) (*replaying, error) {
 // input compares a replayed input's outcome with the recorded output and
 // remembers its session's verdict.
 func (rp *replaying) input(x *journal.Replayed) error {
+	if rp.inputs++; rp.inputs%stopCheckInputs == 0 {
+		if err := rp.ctx.Err(); err != nil {
+			return err
+		}
+	}
 	if !x.Taken || !sameOutput(x) {
 		if rp.differing == 0 {
 			rp.first = x.Input.GetSequence()

@@ -108,9 +108,16 @@ type Server struct {
 	busy   map[string]chan struct{}
 	making int
 
-	watching atomic.Int64 // open Watch streams
-	live     liveHub      // open live views (live.go)
-	unlock   func() error // releases the journal directory
+	watching  atomic.Int64 // open Watch streams
+	ingesting atomic.Int64 // open Ingest streams
+	live      liveHub      // open live views (live.go)
+	// dirLock is the journal directory's lock (nil: no journal), which
+	// the sync loop checks is still the directory's (checkJournalDir);
+	// dirGone is set, with why, once it is not.
+	dirLock *journal.DirLock
+	dirGone atomic.Pointer[error]
+	// goneCh is closed when dirGone is set (JournalDirGone).
+	goneCh chan struct{}
 
 	stopSync chan struct{}
 	// closeOnce makes Close idempotent; closeErr is its result.
@@ -148,6 +155,9 @@ type robot struct {
 	detail        string // why paused or quarantined; or a note from restore
 	deleted       bool
 	sinceSnapshot int // inputs journaled since the last snapshot
+	// retrying counts the journal failures retried (journalFailed) since
+	// the journal last wrote without one; 0: it does.
+	retrying int
 	// unread counts the journal's segments that restore did not read
 	// whole (from segment 0), which VerifyHistories reads, the last of
 	// them only up to byte unreadTo when that is not 0 (the segment being
@@ -195,7 +205,7 @@ func New(opt Options) (*Server, error) {
 		opt.ProbeInterval = 2 * time.Second
 	}
 	opt.Limits = opt.Limits.withDefaults()
-	unlock := func() error { return nil }
+	var dirLock *journal.DirLock
 	if opt.JournalDir != "" {
 		fsys := opt.FS
 		if fsys == nil {
@@ -205,11 +215,11 @@ func New(opt Options) (*Server, error) {
 			return nil, fmt.Errorf("journal directory: %w", err)
 		}
 		var err error
-		if unlock, err = journal.Lock(opt.FS, opt.JournalDir); err != nil {
+		if dirLock, err = journal.Lock(opt.FS, opt.JournalDir); err != nil {
 			return nil, err
 		}
 	}
-	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, unlock: unlock, stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
+	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, dirLock: dirLock, goneCh: make(chan struct{}), stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
 	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
@@ -237,12 +247,50 @@ func (s *Server) syncLoop() {
 		case <-s.stopSync:
 			return
 		case <-t.C:
+			s.checkJournalDir()
 			s.SyncJournals()
 		case <-p.C:
 			s.probePaused()
 		}
 	}
 }
+
+// checkJournalDir quarantines every robot that keeps a journal once the
+// journal directory is no longer the one locked at start (removed, renamed,
+// replaced by a file or another directory: journal.ErrDirGone). Its
+// journals then write to files that no path reaches, and a restart would
+// find none of it; before this check the robots went on answering
+// verdicts, and the operator learnt it only from the next restart. The
+// inputs answered between the change and the check (one SyncInterval) are
+// lost with the directory.
+func (s *Server) checkJournalDir() {
+	if s.dirLock == nil || s.dirGone.Load() != nil {
+		return
+	}
+	err := s.dirLock.Check()
+	if !errors.Is(err, journal.ErrDirGone) {
+		// A stat that failed otherwise (EIO) does not say the
+		// directory is gone; the journals' own writes report such faults.
+		return
+	}
+	s.dirGone.Store(&err)
+	close(s.goneCh)
+	s.log.Error("the journal directory is gone; the robots stop taking input, as nothing they take could be recorded: restart reckond on a journal directory", "dir", s.opt.JournalDir, "err", err)
+	for _, r := range s.list() {
+		r.mu.Lock()
+		if r.journal != nil {
+			s.quarantine(r, err.Error())
+		}
+		r.mu.Unlock()
+	}
+}
+
+// JournalDirGone returns a channel that is closed once the journal
+// directory is found gone (checkJournalDir), when the service can record
+// nothing and every robot is quarantined: the daemon then reports itself
+// not serving on gRPC's health service, so that a supervisor or a load
+// balancer sees it, not only the log.
+func (s *Server) JournalDirGone() <-chan struct{} { return s.goneCh }
 
 // SyncJournals fsyncs every robot's journal now (a paused or quarantined
 // robot's too: what it wrote before is acknowledged), without holding the
@@ -362,7 +410,9 @@ func (s *Server) close() error {
 		r.hub.close()
 	}
 	s.live.end()
-	errs = append(errs, s.unlock())
+	if s.dirLock != nil {
+		errs = append(errs, s.dirLock.Unlock())
+	}
 	return errors.Join(errs...)
 }
 
@@ -428,6 +478,10 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		return nil, err
 	}
 	defer close(done)
+	if gone := s.dirGone.Load(); gone != nil {
+		s.release(name, true)
+		return nil, status.Errorf(codes.FailedPrecondition, "journal: %v", *gone)
+	}
 	if s.opt.JournalDir != "" {
 		// Without s.mu: making a journal waits for the disk (fsyncs), and
 		// every other robot's samples look their robot up under it.
@@ -641,6 +695,11 @@ const maxBatch = 256
 // which takes them in batches while the receiver goes on receiving
 // (BenchmarkIngestThroughput).
 func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
+	if lim := s.opt.Limits.MaxIngestStreams; s.ingesting.Add(1) > int64(lim) {
+		s.ingesting.Add(-1)
+		return status.Errorf(codes.ResourceExhausted, "ingest: the service already has %d open ingest streams, the limit (-max-ingest-streams)", lim)
+	}
+	defer s.ingesting.Add(-1)
 	ctx := stream.Context()
 	in := newInbox()
 	// A third goroutine sends the verdicts of large batches, so that taking
@@ -955,6 +1014,9 @@ func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason stri
 		out.Refusal = pb.Refusal_REFUSAL_NOT_JOURNALED
 	case codes.ResourceExhausted, codes.InvalidArgument:
 		out.Refusal = pb.Refusal_REFUSAL_LIMIT
+	case codes.FailedPrecondition:
+		// robot.refusal's only FAILED_PRECONDITION.
+		out.Refusal = pb.Refusal_REFUSAL_QUARANTINED
 	}
 }
 
@@ -1231,6 +1293,17 @@ func (s *Server) flushJournal(r *robot, tk *taking) (written int, cause error) {
 	if err != nil {
 		cause = err
 		s.journalFailed(r, "journal write", err)
+		if written < len(tk.entries) && r.retrying >= 2 && r.state == pb.RobotState_ROBOT_STATE_SERVING {
+			// A write failing again, not for a full disk, nor broken: a
+			// file system remounted read-only, say. (A fault once is
+			// retried at once with the next batch.) Before, the robot
+			// served on, each batch answered UNAVAILABLE after a rebuild
+			// from its journal.
+			s.pause(r, fmt.Sprintf("journal not writable: %v", err), "journal write failed; the robot pauses until its journal can be written", "journal write", err)
+		}
+	} else if r.retrying > 0 {
+		s.log.Info("the journal writes again", "robot", r.name, "failures", r.retrying)
+		r.retrying = 0
 	}
 	if cause == nil && tk.lost >= 0 {
 		cause = tk.cause
@@ -1252,14 +1325,28 @@ func (s *Server) journalFailed(r *robot, what string, err error) {
 		// unusable whatever else the error says (a full disk among it).
 		s.quarantine(r, fmt.Sprintf("%s failed: %v", what, err))
 	case isNoSpace(err):
-		if r.state != pb.RobotState_ROBOT_STATE_PAUSED {
-			r.state, r.detail = pb.RobotState_ROBOT_STATE_PAUSED, "journal disk full"
-			s.opt.Metrics.paused(1)
-			s.log.Error("journal disk full; the robot pauses until space returns", "robot", r.name, "op", what, "err", err)
-		}
+		s.pause(r, "journal disk full", "journal disk full; the robot pauses until space returns", what, err)
 	default:
-		s.log.Warn(what+" failed; retried later", "robot", r.name, "err", err)
+		// Said once until the journal writes again (flushJournal): a
+		// failing rotation (no file descriptor left, say) is tried again
+		// at every batch, hundreds a second, and each logged a line.
+		if r.retrying == 0 {
+			s.log.Warn(what+" failed; retried at every write, logged again when it works", "robot", r.name, "err", err)
+		}
+		r.retrying++
 	}
+}
+
+// pause stops the robot taking input, answered UNAVAILABLE with detail,
+// until probePaused writes its journal again; msg is logged. The caller
+// holds r.mu.
+func (s *Server) pause(r *robot, detail, msg, what string, err error) {
+	if r.state == pb.RobotState_ROBOT_STATE_PAUSED {
+		return
+	}
+	r.state, r.detail = pb.RobotState_ROBOT_STATE_PAUSED, detail
+	s.opt.Metrics.paused(1)
+	s.log.Error(msg, "robot", r.name, "op", what, "err", err)
 }
 
 // quarantine stops the robot taking input for good (until a restart
@@ -1282,7 +1369,7 @@ func (s *Server) quarantine(r *robot, detail string) {
 // took were not journaled: its state, sessions and sensors from the last
 // snapshot and the inputs after it. The caller holds r.mu.
 func (s *Server) rebuild(r *robot, cause error) {
-	rp, err := s.replayRobot(r.id)
+	rp, err := s.replayRobot(context.Background(), r.id)
 	if err != nil {
 		s.quarantine(r, fmt.Sprintf("rebuilding from the journal after %v: %v", cause, err))
 		return
@@ -1298,6 +1385,7 @@ func (s *Server) probePaused() {
 		if r.state == pb.RobotState_ROBOT_STATE_PAUSED && r.journal != nil {
 			if err := s.writeSnapshot(r); err == nil {
 				r.state, r.detail = pb.RobotState_ROBOT_STATE_SERVING, r.note
+				r.retrying = 0
 				s.opt.Metrics.paused(-1)
 				s.log.Info("journal writable again; the robot serves", "robot", r.name)
 			} else if !isNoSpace(err) {

@@ -15,6 +15,7 @@ import (
 	"net/http"
 	"os"
 	"strings"
+	"syscall"
 	"time"
 
 	"google.golang.org/grpc"
@@ -67,6 +68,11 @@ type Config struct {
 	MaxMessageBytes int
 	// ShutdownGrace bounds the graceful stop before a hard stop (5 s).
 	ShutdownGrace time.Duration
+	// HandshakeTimeout closes a connection that has not finished its
+	// TLS and HTTP/2 handshakes in this time (10 s): one that connects and
+	// sends nothing holds a file descriptor until then (grpc-go's default
+	// was 120 s).
+	HandshakeTimeout time.Duration
 	// Ready, if set, is called with the bound addresses once serving.
 	Ready func(grpcAddr, metricsAddr string)
 	// ViewReady, if set, is called with the live view's bound address once
@@ -134,6 +140,11 @@ func Serve(ctx context.Context, dc Config) error {
 	srv, err := startService(ctx, &dc)
 	if err != nil {
 		lis.Close()
+		if cerr := ctx.Err(); cerr != nil && errors.Is(err, cerr) {
+			// SIGTERM during a long restore: a stop, not a failure.
+			dc.Logger.Info("stopped before serving, as asked during the restore; the journals not restored yet are as they were", "why", err.Error())
+			return nil
+		}
 		return err
 	}
 	gs, hs := newGRPCServer(srv, opts)
@@ -153,7 +164,7 @@ func Serve(ctx context.Context, dc Config) error {
 		return err
 	}
 	serveErr := make(chan error, 1)
-	go func() { serveErr <- gs.Serve(lis) }()
+	go func() { serveErr <- gs.Serve(&acceptLog{Listener: lis, log: dc.Logger}) }()
 	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr, "view", viewAddr)
 	if dc.ViewReady != nil && vsrv != nil {
 		dc.ViewReady(viewAddr)
@@ -170,7 +181,13 @@ func Serve(ctx context.Context, dc Config) error {
 			h.Close()
 		}
 	}
-	if cerr := srv.Close(); err == nil {
+	cerr := srv.Close()
+	if cerr != nil {
+		dc.Logger.Error("stopped; closing the journals failed", "err", cerr)
+	} else {
+		dc.Logger.Info("stopped; the journals are closed")
+	}
+	if err == nil {
 		err = cerr
 	}
 	return err
@@ -187,6 +204,9 @@ func (dc *Config) defaults() {
 	if dc.ShutdownGrace <= 0 {
 		dc.ShutdownGrace = 5 * time.Second
 	}
+	if dc.HandshakeTimeout <= 0 {
+		dc.HandshakeTimeout = 10 * time.Second
+	}
 	if dc.Logger == nil {
 		dc.Logger = slog.Default()
 	}
@@ -201,6 +221,7 @@ func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
 	}
 	opts = append(opts,
 		grpc.MaxConcurrentStreams(dc.MaxStreams),
+		grpc.ConnectionTimeout(dc.HandshakeTimeout),
 		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
 		grpc.UnaryInterceptor(func(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (any, error) {
@@ -236,7 +257,10 @@ func startService(ctx context.Context, dc *Config) (*server.Server, error) {
 	if err != nil {
 		return nil, err
 	}
-	reports, err := srv.Restore()
+	if dc.JournalDir != "" {
+		dc.Logger.Info("restoring the robots of the journal directory", "journal", dc.JournalDir)
+	}
+	reports, err := srv.RestoreContext(ctx)
 	for _, r := range reports {
 		dc.Logger.Info("restored", "robot", r.Robot, "state", r.State.String(), "inputs", r.Inputs, "torn", r.Torn, "detail", r.Detail)
 	}
@@ -297,11 +321,25 @@ func startMetrics(dc *Config) (*http.Server, string, error) {
 
 // wait returns when the gRPC server fails (its error) or ctx is done (nil,
 // after a graceful stop, hard after dc.ShutdownGrace).
+//
+// Once the journal directory is gone (Server.JournalDirGone), the health
+// service says NOT_SERVING for the whole service and FusionService: every
+// robot is quarantined and nothing new can be recorded until reckond is
+// restarted on a journal directory.
 func wait(ctx context.Context, dc *Config, serveErr <-chan error, gs *grpc.Server, hs *health.Server, srv *server.Server) error {
-	select {
-	case err := <-serveErr:
-		return err
-	case <-ctx.Done():
+	gone := srv.JournalDirGone()
+	for done := false; !done; {
+		select {
+		case err := <-serveErr:
+			return err
+		case <-gone:
+			gone = nil
+			hs.SetServingStatus("", healthpb.HealthCheckResponse_NOT_SERVING)
+			hs.SetServingStatus(pb.FusionService_ServiceDesc.ServiceName, healthpb.HealthCheckResponse_NOT_SERVING)
+			dc.Logger.Error("health: not serving, the journal directory is gone; restart reckond on a journal directory", "dir", dc.Options.JournalDir)
+		case <-ctx.Done():
+			done = true
+		}
 	}
 	dc.Logger.Info("shutting down")
 	hs.Shutdown()
@@ -315,4 +353,36 @@ func wait(ctx context.Context, dc *Config, serveErr <-chan error, gs *grpc.Serve
 		gs.Stop()
 	}
 	return nil
+}
+
+// acceptLog is the gRPC listener, logging when accepting connections
+// starts to fail and when it works again. grpc-go retries a failed accept
+// (EMFILE: the process has no file descriptor left) with a backoff and says
+// nothing through slog; before, no client could connect and the log was
+// silent. Serve calls Accept from one goroutine.
+type acceptLog struct {
+	net.Listener
+	log      *slog.Logger
+	failures int // since the last accept that succeeded
+}
+
+// Accept accepts a connection as the listener does.
+func (l *acceptLog) Accept() (net.Conn, error) {
+	c, err := l.Listener.Accept()
+	switch {
+	case err != nil && errors.Is(err, net.ErrClosed):
+	case err != nil:
+		if l.failures == 0 {
+			msg := "accepting connections fails; no new client can connect until it works"
+			if errors.Is(err, syscall.EMFILE) || errors.Is(err, syscall.ENFILE) {
+				msg += " (no file descriptor left: raise ulimit -n, or LimitNOFILE= of its unit, or connect fewer clients)"
+			}
+			l.log.Error(msg, "listen", l.Addr().String(), "err", err)
+		}
+		l.failures++
+	case l.failures > 0:
+		l.log.Info("accepting connections works again", "listen", l.Addr().String(), "failures", l.failures)
+		l.failures = 0
+	}
+	return c, err
 }

@@ -243,7 +243,7 @@ func TestLock(t *testing.T) {
 		dir string
 	}{"os": {nil, t.TempDir()}, "mem": {mem, dir}} {
 		t.Run(name, func(t *testing.T) {
-			unlock, err := journal.Lock(c.fs, c.dir)
+			l, err := journal.Lock(c.fs, c.dir)
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -252,14 +252,67 @@ func TestLock(t *testing.T) {
 			if !errors.As(err, &le) || le.PID != os.Getpid() || !strings.Contains(err.Error(), strconv.Itoa(os.Getpid())) {
 				t.Fatalf("second lock: %v, want a *LockedError naming pid %d", err, os.Getpid())
 			}
-			if err := unlock(); err != nil {
+			if err := l.Unlock(); err != nil {
 				t.Fatal(err)
 			}
-			unlock, err = journal.Lock(c.fs, c.dir)
+			l, err = journal.Lock(c.fs, c.dir)
 			if err != nil {
 				t.Fatalf("lock after unlock: %v", err)
 			}
-			unlock()
+			l.Unlock()
+		})
+	}
+}
+
+// TestLockCheck: DirLock.Check passes while the locked directory is where
+// it was, and says ErrDirGone once its lock file is not the one held: the
+// directory removed, replaced by a file, or by another directory (where a
+// second daemon could take a lock of its own).
+func TestLockCheck(t *testing.T) {
+	mem := faultfs.NewMem()
+	mem.MkdirAll(dir, 0o755)
+	for name, c := range map[string]struct {
+		fs     journal.FS
+		dir    string
+		change func(dir string) error
+	}{
+		"removed": {nil, "", os.RemoveAll},
+		"replaced by a file": {nil, "", func(dir string) error {
+			if err := os.RemoveAll(dir); err != nil {
+				return err
+			}
+			return os.WriteFile(dir, []byte("x"), 0o644)
+		}},
+		"replaced by a directory": {nil, "", func(dir string) error {
+			if err := os.Rename(dir, dir+".old"); err != nil {
+				return err
+			}
+			if err := os.Mkdir(dir, 0o755); err != nil {
+				return err
+			}
+			return os.WriteFile(filepath.Join(dir, journal.LockName), nil, 0o644)
+		}},
+		"mem, lock file removed": {mem, dir, func(dir string) error { return mem.Remove(filepath.Join(dir, journal.LockName)) }},
+	} {
+		t.Run(name, func(t *testing.T) {
+			if c.dir == "" {
+				c.dir = filepath.Join(t.TempDir(), "j")
+				os.Mkdir(c.dir, 0o755)
+			}
+			l, err := journal.Lock(c.fs, c.dir)
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer l.Unlock()
+			if err := l.Check(); err != nil {
+				t.Fatalf("check before: %v", err)
+			}
+			if err := c.change(c.dir); err != nil {
+				t.Fatal(err)
+			}
+			if err := l.Check(); !errors.Is(err, journal.ErrDirGone) || !strings.Contains(err.Error(), c.dir) {
+				t.Fatalf("check after: %v, want ErrDirGone naming %s", err, c.dir)
+			}
 		})
 	}
 }

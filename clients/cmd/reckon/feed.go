@@ -43,8 +43,10 @@ file's samples), and one the service took already is answered with its
 first verdict instead of taken twice; the summary says how many were.
 
 When the robot is deleted during the feed, feed stops sending at the first
-sample answered that the robot is gone, names its line and exits 4; the
-summary keeps the verdicts of the samples sent before.`)
+sample answered that the robot is gone, names its line and exits 4; when it
+is quarantined (it takes no input until deleted or restored by a restart),
+the same with exit 5. The summary keeps the verdicts of the samples sent
+before.`)
 	fs.SetOutput(std.err)
 	cf := addConnFlags(fs)
 	robot := fs.String("robot", "", "robot: NAME or robots/NAME (required)")
@@ -146,6 +148,11 @@ summary keeps the verdicts of the samples sent before.`)
 	case interrupted:
 		fmt.Fprintf(std.err, "reckon feed: interrupted after %s:%d\n", label, t.lastLine())
 		return errInterrupted
+	case t.goneLine() > 0 && t.goneCode == codes.FailedPrecondition:
+		// Quarantined while feeding (its journal directory removed, say):
+		// it takes nothing until deleted or restored by a restart. Before,
+		// every later sample was counted invalid and feed exited 0.
+		return status.Error(codes.FailedPrecondition, fmt.Sprintf("%s:%d was answered that the robot takes no input (%s); feed stopped there", label, t.goneLine(), t.whyGone))
 	case t.goneLine() > 0:
 		// Deleted while feeding: the samples after this one would each be
 		// answered so too.
@@ -436,13 +443,15 @@ type tally struct {
 	retries []retry
 	whyNot  string // the first not-taken reason
 	// gone is the line of the first sample answered that the robot does
-	// not exist (status NOT_FOUND: deleted during the feed), whyGone its
-	// reason; 0 while the robot is there.
-	gone    int
-	whyGone string
-	ended   bool // collect returned
-	counts  map[pb.Verdict]int
-	reasons []string
+	// not exist (status NOT_FOUND: deleted during the feed) or takes no
+	// input (REFUSAL_QUARANTINED), whyGone its reason and goneCode its
+	// status; 0 while the robot is there.
+	gone     int
+	whyGone  string
+	goneCode codes.Code // NOT_FOUND, or FAILED_PRECONDITION: quarantined
+	ended    bool       // collect returned
+	counts   map[pb.Verdict]int
+	reasons  []string
 	// unsent is the line of the sample whose send failed (0: none).
 	unsent int
 	// earlier counts, by final verdict, the samples an earlier feed on the
@@ -663,8 +672,8 @@ func (t *tally) answered(resp *pb.IngestResponse) (line int, counts bool) {
 		t.retries = append(t.retries, retry{seq: seq, line: line, sample: s})
 		return line, false
 	}
-	if resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && codes.Code(resp.GetStatusCode()) == codes.NotFound && t.gone == 0 {
-		t.gone, t.whyGone = line, resp.GetReason()
+	if t.gone == 0 && resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && (codes.Code(resp.GetStatusCode()) == codes.NotFound || resp.GetRefusal() == pb.Refusal_REFUSAL_QUARANTINED) {
+		t.gone, t.whyGone, t.goneCode = line, resp.GetReason(), codes.Code(resp.GetStatusCode())
 	}
 	if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 		t.held[resp.GetSequence()] = line

@@ -230,6 +230,45 @@ func TestFeedSessionTakenBefore(t *testing.T) {
 	}
 }
 
+// TestFeedRobotQuarantined: a robot quarantined during a feed (its
+// journal directory removed) stops the feed at the first sample answered
+// so (REFUSAL_QUARANTINED), naming its line and why, with exit 5. Before,
+// feed sent the rest of the file, counted each sample invalid and exited
+// 0.
+func TestFeedRobotQuarantined(t *testing.T) {
+	dir := filepath.Join(t.TempDir(), "journal")
+	addr, _ := serve(t, "127.0.0.1:0", dir)
+	time.AfterFunc(400*time.Millisecond, func() { os.RemoveAll(dir) })
+	feedStopped(t, addr, exitRefused, `was answered that the robot takes no input \(robot: robots/cart is quarantined: journal directory gone: .*\); feed stopped there`)
+}
+
+// feedStopped feeds the example file to robots/cart at addr at 4 times
+// real time, and checks that feed exits with code, its error naming the
+// line it stopped at and then matching stop, and that it sent no more
+// than the samples in flight when that line's answer came. It returns the
+// summary's applied count.
+func feedStopped(t *testing.T, addr string, code int, stop string) (applied int) {
+	t.Helper()
+	out, errs, got := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-pace", "4", exampleSamples)
+	t.Logf("feed:\n%s%s", out, errs)
+	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) ` + stop).FindStringSubmatch(errs)
+	if got != code || m == nil {
+		t.Fatalf("feed: exit %d, want %d naming the line it stopped at\n%s", got, code, errs)
+	}
+	line, _ := strconv.Atoi(m[1])
+	sent := regexp.MustCompile(`(\d+) samples sent to robots/cart: applied (\d+)`).FindStringSubmatch(out)
+	if sent == nil {
+		t.Fatalf("no summary:\n%s", out)
+	}
+	// It stops within the samples in flight when the first answer came,
+	// well before the file's 854 lines (2.5 s at 4 times real time).
+	if n, _ := strconv.Atoi(sent[1]); line < 2 || n >= line+200 {
+		t.Errorf("feed sent %d samples, stopping at line %d: it did not stop at the first such verdict", n, line)
+	}
+	applied, _ = strconv.Atoi(sent[2])
+	return applied
+}
+
 // TestFeedRobotDeleted: the robot is deleted in the middle of a paced feed.
 // Feed stops sending at the first sample answered that the robot is gone
 // (status NOT_FOUND: "was deleted", or "does not exist" once the service
@@ -242,23 +281,7 @@ func TestFeedRobotDeleted(t *testing.T) {
 			t.Errorf("delete: exit %d\n%s", code, errs)
 		}
 	})
-	out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, "-pace", "4", exampleSamples)
-	t.Logf("feed:\n%s%s", out, errs)
-	m := regexp.MustCompile(`greenhouse-10s.jsonl:(\d+) was answered that the robot is gone \(robot: robots/cart (?:was deleted|does not exist)\); feed stopped there`).FindStringSubmatch(errs)
-	if code != exitNotFound || m == nil {
-		t.Fatalf("feed to a robot deleted meanwhile: exit %d, want %d naming the line\n%s", code, exitNotFound, errs)
-	}
-	line, _ := strconv.Atoi(m[1])
-	sent := regexp.MustCompile(`(\d+) samples sent to robots/cart: applied (\d+)`).FindStringSubmatch(out)
-	if sent == nil {
-		t.Fatalf("no summary:\n%s", out)
-	}
-	// It stops within the samples in flight when the first answer came,
-	// well before the file's 854 lines (2.5 s at 4 times real time).
-	if n, _ := strconv.Atoi(sent[1]); line < 2 || n >= line+200 {
-		t.Errorf("feed sent %d samples, stopping at line %d: it did not stop at the first deleted verdict", n, line)
-	}
-	if applied, _ := strconv.Atoi(sent[2]); applied == 0 {
-		t.Errorf("the samples sent before the delete lost their verdicts in the summary:\n%s", out)
+	if feedStopped(t, addr, exitNotFound, `was answered that the robot is gone \(robot: robots/cart (?:was deleted|does not exist)\); feed stopped there`) == 0 {
+		t.Errorf("the samples sent before the delete lost their verdicts in the summary")
 	}
 }

@@ -62,6 +62,9 @@ const (
 	// robot already took (a sensor that sends its last reading again):
 	// taken twice, one reading would count as two.
 	Refusal_REFUSAL_REPEATED Refusal = 14
+	// The robot is quarantined (Robot.state_detail says why): it takes no
+	// input until it is deleted, or restored by a restart (status 9).
+	Refusal_REFUSAL_QUARANTINED Refusal = 15
 )
 
 // Enum value maps for Refusal.
@@ -82,6 +85,7 @@ var (
 		12: "REFUSAL_LIMIT",
 		13: "REFUSAL_RUN_OUT_OF_ORDER",
 		14: "REFUSAL_REPEATED",
+		15: "REFUSAL_QUARANTINED",
 	}
 	Refusal_value = map[string]int32{
 		"REFUSAL_UNSPECIFIED":        0,
@@ -99,6 +103,7 @@ var (
 		"REFUSAL_LIMIT":              12,
 		"REFUSAL_RUN_OUT_OF_ORDER":   13,
 		"REFUSAL_REPEATED":           14,
+		"REFUSAL_QUARANTINED":        15,
 	}
 )
 
@@ -2466,7 +2471,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"recoveries\x125\n" +
 	"\bdistrust\x18\a \x03(\x0e2\x19.reckon.v1.DistrustReasonR\bdistrust\x12\x12\n" +
 	"\x04held\x18\b \x01(\x05R\x04held\x12%\n" +
-	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\x91\x03\n" +
+	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xaa\x03\n" +
 	"\aRefusal\x12\x17\n" +
 	"\x13REFUSAL_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fREFUSAL_TOO_OLD\x10\x01\x12\x1a\n" +
@@ -2483,7 +2488,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x15REFUSAL_NOT_JOURNALED\x10\v\x12\x11\n" +
 	"\rREFUSAL_LIMIT\x10\f\x12\x1c\n" +
 	"\x18REFUSAL_RUN_OUT_OF_ORDER\x10\r\x12\x14\n" +
-	"\x10REFUSAL_REPEATED\x10\x0e*\x86\x01\n" +
+	"\x10REFUSAL_REPEATED\x10\x0e\x12\x17\n" +
+	"\x13REFUSAL_QUARANTINED\x10\x0f*\x86\x01\n" +
 	"\aVerdict\x12\x17\n" +
 	"\x13VERDICT_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fVERDICT_APPLIED\x10\x01\x12\x10\n" +

@@ -65,6 +65,8 @@ type FusionServiceClient interface {
 	// that failed do not end the stream: each is the sample's own verdict
 	// (IngestResponse.status_code). A message past the service's size limit
 	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
+	// A stream opened past the service's limit of open ingest streams
+	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
@@ -251,6 +253,8 @@ type FusionServiceServer interface {
 	// that failed do not end the stream: each is the sample's own verdict
 	// (IngestResponse.status_code). A message past the service's size limit
 	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
+	// A stream opened past the service's limit of open ingest streams
+	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The

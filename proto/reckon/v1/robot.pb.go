@@ -29,8 +29,10 @@ const (
 	RobotState_ROBOT_STATE_UNSPECIFIED RobotState = 0
 	// It takes input.
 	RobotState_ROBOT_STATE_SERVING RobotState = 1
-	// Its journal's disk is full: inputs are answered UNAVAILABLE, not
-	// applied, until space returns; it resumes by itself.
+	// Its journal's disk is full, or its journal's writes failed twice in a
+	// row (a file system remounted read-only; state_detail names the error):
+	// inputs are answered UNAVAILABLE, not applied, until the journal can be
+	// written; it resumes by itself.
 	RobotState_ROBOT_STATE_PAUSED RobotState = 2
 	// Its journal could not be restored (damage, a gap, a bad configuration,
 	// a divergence of the same build) or failed for good: its rpcs but

@@ -89,6 +89,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&lim.MaxWatchersPerRobot, "max-watchers-per-robot", 64, "open watch streams per robot")
 	fs.IntVar(&lim.MaxWatchers, "max-watchers", 1024, "open watch streams in all")
 	fs.IntVar(&lim.MaxViewers, "max-viewers", 16, "open live view pages (event streams) in all")
+	fs.IntVar(&lim.MaxIngestStreams, "max-ingest-streams", 2048, "open ingest streams in all")
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
@@ -123,6 +124,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		{"max-watchers-per-robot", int64(lim.MaxWatchersPerRobot), 1, 1 << 20},
 		{"max-watchers", int64(lim.MaxWatchers), 1, 1 << 20},
 		{"max-viewers", int64(lim.MaxViewers), 1, 1 << 16},
+		{"max-ingest-streams", int64(lim.MaxIngestStreams), 1, 1 << 20},
 		{"max-message-bytes", int64(*maxMsg), 1 << 10, 1 << 40},
 		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
 	} {

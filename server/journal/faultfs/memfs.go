@@ -216,7 +216,7 @@ func (m *MemFS) Stat(name string) (os.FileInfo, error) {
 	if ino == nil {
 		return nil, notExist("stat", name)
 	}
-	return memInfo{name: base, size: int64(len(ino.data))}, nil
+	return memInfo{name: base, size: int64(len(ino.data)), ino: ino}, nil
 }
 
 // SyncDir makes a directory's entries as they are now survive a crash.
@@ -427,7 +427,7 @@ func (f *memFile) Truncate(size int64) error {
 func (f *memFile) Stat() (os.FileInfo, error) {
 	f.m.mu.Lock()
 	defer f.m.mu.Unlock()
-	return memInfo{name: filepath.Base(f.name), size: int64(len(f.ino.data))}, nil
+	return memInfo{name: filepath.Base(f.name), size: int64(len(f.ino.data)), ino: f.ino}, nil
 }
 
 func (f *memFile) Close() error {
@@ -448,6 +448,7 @@ type memInfo struct {
 	name string
 	size int64
 	dir  bool
+	ino  *inode // a file's, which Sys gives (journal.DirLock.Check compares it)
 }
 
 func (i memInfo) Name() string { return i.name }
@@ -460,4 +461,9 @@ func (i memInfo) Mode() os.FileMode {
 }
 func (i memInfo) ModTime() time.Time { return time.Time{} }
 func (i memInfo) IsDir() bool        { return i.dir }
-func (i memInfo) Sys() any           { return nil }
+func (i memInfo) Sys() any {
+	if i.ino == nil {
+		return nil
+	}
+	return i.ino
+}

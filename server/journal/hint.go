@@ -11,7 +11,8 @@ import (
 // The snapshot hint, {dir}/{robot}.lastsnap, says where the newest
 // snapshot the writer wrote starts: its segment, its offset and its
 // sequence number. The manifest records snapshots only when their segment
-// is sealed, and a segment holds up to 64 MiB (hours of a robot's inputs),
+// is sealed, and a segment holds up to 64 MiB (about 35 minutes of a robot at
+// robot rates, hours of a quieter one),
 // so without the hint a restart reads the segment being written from its
 // start; with it, a restart reads from the newest snapshot on, what the
 // snapshot interval bounds (ReadFS).

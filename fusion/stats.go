@@ -252,17 +252,26 @@ func (s *statsState) count(v Verdict, odometry bool) {
 // sensor returns the index of the named sensor, adding it if new with the
 // gate probability and robust weighting of its inputs.
 func (s *statsState) sensor(id string, gateProbability float64, robust RobustLoss, robustParameter float64) int {
-	if i := s.last; i < len(s.sensors) && s.sensors[i].ID == id {
-		return i
-	}
-	if i, ok := s.index[id]; ok {
-		s.last = i
+	if i, ok := s.find(id); ok {
 		return i
 	}
 	s.index[id] = len(s.sensors)
 	s.sensors = append(s.sensors, SensorStats{ID: id, GateProbability: gateProbability, Robust: robust, RobustParameter: robustParameter})
 	s.last = len(s.sensors) - 1
 	return s.last
+}
+
+// find returns the index of the named sensor's record, if it has one: the
+// one found last without the map.
+func (s *statsState) find(id string) (int, bool) {
+	if i := s.last; i < len(s.sensors) && s.sensors[i].ID == id {
+		return i, true
+	}
+	i, ok := s.index[id]
+	if ok {
+		s.last = i
+	}
+	return i, ok
 }
 
 func (s *statsState) sensorVerdict(i int, v Verdict, nis float64, dim int) {
@@ -279,12 +288,13 @@ func (s *statsState) sensorVerdict(i int, v Verdict, nis float64, dim int) {
 
 // statsSensor returns the index of the named sensor's record (the IMU's
 // for imuSensor), adding it if new with the gate probability of its inputs
-// and its configured robust weighting. The sensor of the last call (at a
-// robot's rates, the IMU's) is found without a map lookup, as in
-// statsState.sensor: a miss out of the cache at every IMU heading
-// (BenchmarkRobotRates' profile, session 18).
+// and its configured robust weighting, which is looked up only for a new
+// record: a known one (at a robot's rates, the IMU's, found without a map
+// lookup by statsState.find) costs no lookup of the configuration, a miss
+// out of the cache at every IMU heading (BenchmarkRobotRates' profile,
+// session 18).
 func (r *Robot) statsSensor(id string, gateProbability float64) int {
-	if i := r.stats.last; i < len(r.stats.sensors) && r.stats.sensors[i].ID == id {
+	if i, ok := r.stats.find(id); ok {
 		return i
 	}
 	robust, param := RobustNone, 0.0

@@ -10,6 +10,7 @@ import (
 	"crypto/x509"
 	"errors"
 	"fmt"
+	"log"
 	"log/slog"
 	"net"
 	"net/http"
@@ -310,13 +311,22 @@ func startMetrics(dc *Config) (*http.Server, string, error) {
 	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", dc.Metrics.Handler())
-	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second, ErrorLog: httpErrorLog(dc.Logger, "metrics")}
 	go func() {
 		if err := hsrv.Serve(ml); err != nil && !errors.Is(err, http.ErrServerClosed) {
 			dc.Logger.Error("metrics server", "err", err)
 		}
 	}()
 	return hsrv, ml.Addr().String(), nil
+}
+
+// httpErrorLog is the ErrorLog of the HTTP server named server: what
+// net/http logs (a failed accept, a failed TLS handshake, a handler's
+// panic) goes to the service's logger at warning level, with the server's
+// name, rather than to the standard logger, which wrote it to standard
+// error apart from the service's log.
+func httpErrorLog(logger *slog.Logger, server string) *log.Logger {
+	return slog.NewLogLogger(logger.With("server", server).Handler(), slog.LevelWarn)
 }
 
 // wait returns when the gRPC server fails (its error) or ctx is done (nil,

@@ -165,7 +165,9 @@ func Serve(ctx context.Context, dc Config) error {
 		return err
 	}
 	serveErr := make(chan error, 1)
-	go func() { serveErr <- gs.Serve(&acceptLog{Listener: lis, log: dc.Logger}) }()
+	go func() {
+		serveErr <- gs.Serve(&acceptLog{Listener: srv.LimitConnections(userTimeout{lis}), log: dc.Logger})
+	}()
 	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr, "view", viewAddr)
 	if dc.ViewReady != nil && vsrv != nil {
 		dc.ViewReady(viewAddr)
@@ -213,6 +215,11 @@ func (dc *Config) defaults() {
 	}
 }
 
+// keepaliveTimeout is how long the gRPC server waits for the answer to a
+// keepalive ping, and for data it sent to be acknowledged (userTimeout),
+// before it closes the connection.
+const keepaliveTimeout = 10 * time.Second
+
 // grpcOptions returns the options of the gRPC server: the service's own,
 // keepalive, the token check and TLS.
 func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
@@ -223,7 +230,7 @@ func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
 	opts = append(opts,
 		grpc.MaxConcurrentStreams(dc.MaxStreams),
 		grpc.ConnectionTimeout(dc.HandshakeTimeout),
-		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
+		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: keepaliveTimeout}),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
 		grpc.UnaryInterceptor(func(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (any, error) {
 			if err := checkToken(ctx, info.FullMethod, dc.Token); err != nil {
@@ -393,6 +400,23 @@ func (l *acceptLog) Accept() (net.Conn, error) {
 	case l.failures > 0:
 		l.log.Info("accepting connections works again", "listen", l.Addr().String(), "failures", l.failures)
 		l.failures = 0
+	}
+	return c, err
+}
+
+// userTimeout is the gRPC listener under the connection limit: it sets
+// TCP_USER_TIMEOUT to keepaliveTimeout on each connection it accepts, as
+// grpc-go does with keepalive on, but only on a *net.TCPConn, which the
+// limit's connections (server.LimitConnections) are not.
+type userTimeout struct{ net.Listener }
+
+// Accept accepts a connection as the listener does.
+func (l userTimeout) Accept() (net.Conn, error) {
+	c, err := l.Listener.Accept()
+	if tc, ok := c.(*net.TCPConn); ok {
+		// As grpc-go does, but a connection whose option cannot be set is
+		// still served: the keepalive pings find a dead peer too.
+		setUserTimeout(tc, keepaliveTimeout)
 	}
 	return c, err
 }

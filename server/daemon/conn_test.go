@@ -82,9 +82,9 @@ func TestStopDuringRestore(t *testing.T) {
 // need.
 func TestConnectionLimit(t *testing.T) {
 	samp, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 5, DurationS: 4})
-	logs := &lockedBuffer{}
+	logger, logs := fileLog(t, slog.LevelInfo)
 	srv := start(t, Config{MetricsListen: "127.0.0.1:0", HandshakeTimeout: time.Minute, Robots: map[string]*pb.RobotConfig{"cart": cfg},
-		Options: server.Options{Limits: server.Limits{MaxConnections: 3}, Logger: slog.New(slog.NewTextHandler(logs, nil))}})
+		Options: server.Options{Limits: server.Limits{MaxConnections: 3}, Logger: logger}})
 	defer srv.stop()
 	robot := dial(t, srv.addr, nil, "")
 	half := len(samp) / 2
@@ -136,7 +136,7 @@ func TestConnectionLimit(t *testing.T) {
 	if _, err := over.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"}, grpc.WaitForReady(true)); err != nil {
 		t.Errorf("a new connection once one closed: %v", err)
 	}
-	s := logs.String()
+	s := logs()
 	if n := strings.Count(s, "connections at the limit"); n != 1 || !strings.Contains(s, "-max-connections") {
 		t.Errorf("the limit logged %d times, want once naming -max-connections:\n%s", n, s)
 	}

@@ -13,7 +13,6 @@ import (
 	"regexp"
 	"strconv"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -386,38 +385,19 @@ func TestViewTLS(t *testing.T) {
 func TestHTTPErrorsLogged(t *testing.T) {
 	p := newPKI(t, "reckon test CA")
 	cert, key := p.issue(t, "reckond", true)
-	logs := &lockedBuffer{}
-	v := startViewing(t, Config{TLSCert: cert, TLSKey: key, Token: "greenhouse-7",
-		Options: server.Options{Logger: slog.New(slog.NewTextHandler(logs, &slog.HandlerOptions{Level: slog.LevelWarn}))}}, nil)
+	logger, logs := fileLog(t, slog.LevelWarn)
+	v := startViewing(t, Config{TLSCert: cert, TLSKey: key, Token: "greenhouse-7", Options: server.Options{Logger: logger}}, nil)
 	c, err := net.Dial("tcp", v.view)
 	if err != nil {
 		t.Fatal(err)
 	}
 	c.Close() // before the TLS handshake
 	for deadline := time.Now().Add(10 * time.Second); time.Now().Before(deadline); time.Sleep(10 * time.Millisecond) {
-		if strings.Contains(logs.String(), "TLS handshake error") {
+		if strings.Contains(logs(), "TLS handshake error") {
 			break
 		}
 	}
-	if s := logs.String(); !strings.Contains(s, "level=WARN") || !strings.Contains(s, "TLS handshake error") || !strings.Contains(s, "server=view") {
+	if s := logs(); !strings.Contains(s, "level=WARN") || !strings.Contains(s, "TLS handshake error") || !strings.Contains(s, "server=view") {
 		t.Errorf("the view server's handshake error is not in the service's log as a warning naming server=view:\n%s", s)
 	}
-}
-
-// lockedBuffer is a buffer that the daemon's logger and the test share.
-type lockedBuffer struct {
-	mu sync.Mutex
-	b  strings.Builder
-}
-
-func (l *lockedBuffer) Write(p []byte) (int, error) {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.b.Write(p)
-}
-
-func (l *lockedBuffer) String() string {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.b.String()
 }

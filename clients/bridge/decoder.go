@@ -22,7 +22,8 @@ type Stats struct {
 	// does not take: unknown type or flags, a stamp past MaxStampUs or a
 	// heading that is not finite, or, within one boot, a wheel count that
 	// differs from the earlier frames' or a stamp not after the last taken
-	// frame's although its counter is ahead.
+	// frame's although its counter is ahead, or one more than maxStepUs a
+	// counter step after it that the next frame does not confirm.
 	Invalid uint64
 	// Duplicates is the number of frames dropped because a frame with the
 	// same counter was taken.
@@ -147,6 +148,16 @@ func (s *Splitter) end() (Frame, bool) {
 // nothing but such frames until its counter passes the old one.
 const behindLimit = 100
 
+// maxStepUs bounds how far, per counter step, a frame's stamp may run
+// ahead of the last taken frame's (60 s): a controller sends frames many
+// times a second, and one stamped over a minute a frame later is more
+// likely a glitch of its clock (a 32-bit timer extended in firmware with
+// a race between its halves puts one frame 2^32 us, 71.6 min, ahead) than
+// a controller that sent nothing for that long. Such a frame is dropped
+// as invalid unless the frame after it confirms the jump: taken, a glitch
+// would put the robot's clock out of reach of every frame after it.
+const maxStepUs = 60_000_000
+
 // staleBootLimit is how many frames of the previous boot in a row make a
 // Sequencer take that boot as a new one.
 const staleBootLimit = 16
@@ -200,6 +211,12 @@ type Sequencer struct {
 	invalid    *FrameError // why the last frame counted Invalid was
 	behind     int         // frames of this boot dropped in a row as duplicates or reordered
 	behindErr  *FrameError // said at every behindLimit of them
+	// jumped: the last frame dropped for a stamp too far ahead
+	// (maxStepUs), jumpCounter and jumpUs its counter and stamp; a frame
+	// that follows it within maxStepUs a step confirms the jump.
+	jumped      bool
+	jumpCounter uint32
+	jumpUs      uint64
 	// resumed: the robot's current run is of boot byte resumedBoot
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
@@ -225,7 +242,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		} else if s.resumed && f.Boot != s.resumedBoot || s.resumedNs > 0 && int64(f.StampUs)*1000 <= s.resumedNs {
 			s.stats.Restarts++
 		}
-		s.started, s.boot, s.counter, s.stampUs, s.behind = true, f.Boot, f.Counter, f.StampUs, 0
+		s.started, s.boot, s.counter, s.stampUs, s.behind, s.jumped = true, f.Boot, f.Counter, f.StampUs, 0, false
 		s.counts = append(s.counts[:0], f.Counts...)
 		s.cumulative = s.cumulative[:0]
 		for _, c := range f.Counts {
@@ -257,8 +274,14 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is not after the last taken frame's %d us although its counter %d is ahead of %d (the controller's clock must not go back within a boot)",
 			f.StampUs, s.stampUs, f.Counter, s.counter)
 		return nil
+	case f.StampUs-s.stampUs > uint64(ahead)*maxStepUs && !s.confirms(f):
+		s.stats.Invalid++
+		s.jumped, s.jumpCounter, s.jumpUs = true, f.Counter, f.StampUs
+		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is %.0f s after the last taken frame's %d us, %d frames later (more than %d s a frame: a glitch of the controller's clock? the next frame is taken if it follows this one)",
+			f.StampUs, float64(f.StampUs-s.stampUs)*1e-6, s.stampUs, ahead, maxStepUs/1_000_000)
+		return nil
 	}
-	s.behind = 0
+	s.behind, s.jumped = 0, false
 	s.stats.Skipped += uint64(ahead - 1)
 	s.counter, s.stampUs = f.Counter, f.StampUs
 	for i, c := range f.Counts {
@@ -266,6 +289,14 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 		s.counts[i] = c
 	}
 	return s.sample(f)
+}
+
+// confirms reports whether f, stamped too far past the last taken frame
+// (maxStepUs), follows the frame last dropped for that reason: the clock
+// did jump, and f is taken.
+func (s *Sequencer) confirms(f *Frame) bool {
+	ahead := int32(f.Counter - s.jumpCounter)
+	return s.jumped && ahead > 0 && f.StampUs > s.jumpUs && f.StampUs-s.jumpUs <= uint64(ahead)*maxStepUs
 }
 
 func (s *Sequencer) sample(f *Frame) *pb.Sample {

@@ -87,6 +87,16 @@ func TestSequencer(t *testing.T) {
 		// its counts carried by the next frame.
 		{"same stamp with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 5000, 1), wheels(0, 3, 6000, 2)},
 			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+		// A firmware that extends a 32-bit microsecond timer and reads its
+		// two halves without care puts one frame 2^32 us (71.6 min) ahead
+		// (PROTOCOL.md, "Stamps"). Taken, it would send the service a
+		// sample over an hour ahead and drop every later frame as behind it.
+		{"one stamp jumps 2^32 us ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 5000+10000+1<<32, 1), wheels(0, 3, 25000, 2), wheels(0, 4, 35000, 3)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {25_000_000, []int64{2}, -100}, {35_000_000, []int64{3}, -100}}, Stats{Samples: 3, Invalid: 1, Skipped: 1}},
+		// A controller that really sent nothing for two hours (held in a
+		// debugger): the frame after the jump confirms it and is taken.
+		{"a jump confirmed by the next frame", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 7_200_005_000, 1), wheels(0, 3, 7_200_015_000, 2)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {7_200_015_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
 		{"frame counter wraps", []Frame{wheels(0, 1<<32-1, 10, 0), wheels(0, 0, 20, 1), wheels(0, 1<<32-1, 10, 0)},
 			[]sampleOf{{10_000, []int64{0}, -100}, {20_000, []int64{1}, -100}}, Stats{Samples: 2, Reordered: 1}},
 		{"int32 counts unwrap", []Frame{wheels(0, 1, 10, 2147483000, -2147483000), wheels(0, 2, 20, -2147483000, 2147483000)},

@@ -48,13 +48,26 @@ func (e *LineError) Is(target error) bool { return target == ErrJSONL }
 type SampleReader struct {
 	sc   *bufio.Scanner
 	line int
+	// cut: the line read last ended at the end of the input without a
+	// newline (a file still being written may end inside a line).
+	cut bool
 }
 
 // NewSampleReader returns a reader of r.
 func NewSampleReader(r io.Reader) *SampleReader {
 	sc := bufio.NewScanner(r)
 	sc.Buffer(make([]byte, 64<<10), MaxLineBytes)
-	return &SampleReader{sc: sc}
+	sr := &SampleReader{sc: sc}
+	sc.Split(sr.split)
+	return sr
+}
+
+// split is bufio.ScanLines noting whether the line ended without a
+// newline at the end of the input.
+func (sr *SampleReader) split(data []byte, atEOF bool) (int, []byte, error) {
+	n, tok, err := bufio.ScanLines(data, atEOF)
+	sr.cut = tok != nil && atEOF && n == len(data) && data[n-1] != '\n'
+	return n, tok, err
 }
 
 // Line returns the line number of the last sample read.
@@ -77,6 +90,9 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		}
 		s := &pb.Sample{}
 		if err := protojson.Unmarshal(b, s); err != nil {
+			if sr.cut {
+				err = fmt.Errorf("%w; the file ends inside this line, without a newline: was it still being written?", err)
+			}
 			return nil, &LineError{Line: sr.line, Err: err}
 		}
 		if s.GetSample() == nil {

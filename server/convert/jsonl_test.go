@@ -185,3 +185,30 @@ func TestReadmeExamples(t *testing.T) {
 		t.Errorf("%d README example lines", n)
 	}
 }
+
+// TestSampleReaderCutLine: a file read while it is still being written
+// (feed of a recording in progress) can end inside its last line; the
+// error says the line has no end instead of the parser's bare "unexpected
+// EOF". A last line without a newline that parses is a sample.
+func TestSampleReaderCutLine(t *testing.T) {
+	const line = "{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}"
+	sr := NewSampleReader(strings.NewReader(line + "\n" + line[:20]))
+	if _, err := sr.Next(); err != nil {
+		t.Fatal(err)
+	}
+	_, err := sr.Next()
+	var le *LineError
+	if !errors.As(err, &le) || le.Line != 2 || !strings.Contains(err.Error(), "the file ends inside this line") {
+		t.Errorf("a file cut inside line 2: %v; want an error at line 2 saying it ends inside it", err)
+	}
+	sr = NewSampleReader(strings.NewReader(line + "\n" + line))
+	for i := range 2 {
+		if s, err := sr.Next(); err != nil || s.GetHeading() == nil {
+			t.Errorf("sample %d: %v, %v", i+1, s, err)
+		}
+	}
+	sr = NewSampleReader(strings.NewReader(line[:20] + "\n" + line + "\n"))
+	if _, err := sr.Next(); err == nil || strings.Contains(err.Error(), "ends inside") {
+		t.Errorf("a malformed line with its newline: %v; want an error that does not say the file ends in it", err)
+	}
+}

@@ -44,7 +44,9 @@ func (e *LineError) Is(target error) bool { return target == ErrJSONL }
 
 // SampleReader reads samples from JSON Lines: one protojson Sample per
 // line; blank lines and lines starting with # are skipped, and so is a
-// UTF-8 byte order mark at the start of the file (RFC 8259, sec. 8.1).
+// UTF-8 byte order mark at the start of the file (RFC 8259, sec. 8.1). A
+// file that starts with a UTF-16 byte order mark is refused at line 1,
+// naming its encoding.
 type SampleReader struct {
 	sc   *bufio.Scanner
 	line int
@@ -80,6 +82,9 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		b := sr.sc.Bytes()
 		if sr.line == 1 {
 			b = bytes.TrimPrefix(b, byteOrderMark)
+			if bytes.HasPrefix(b, []byte("\xff\xfe")) || bytes.HasPrefix(b, []byte("\xfe\xff")) {
+				return nil, &LineError{Line: 1, Err: fmt.Errorf("the file is UTF-16 (it starts with the byte order mark % x); JSON Lines are UTF-8: convert it, for instance with iconv -f UTF-16 -t UTF-8", b[:2])}
+			}
 		}
 		b = bytes.TrimSpace(b)
 		if bytes.HasPrefix(b, byteOrderMark) {

@@ -8,6 +8,7 @@ import (
 	"os"
 	"strings"
 	"testing"
+	"unicode/utf8"
 
 	"google.golang.org/protobuf/proto"
 
@@ -210,5 +211,29 @@ func TestSampleReaderCutLine(t *testing.T) {
 	sr = NewSampleReader(strings.NewReader(line[:20] + "\n" + line + "\n"))
 	if _, err := sr.Next(); err == nil || strings.Contains(err.Error(), "ends inside") {
 		t.Errorf("a malformed line with its newline: %v; want an error that does not say the file ends in it", err)
+	}
+}
+
+// TestSampleReaderUTF16: a samples file saved as UTF-16 (a Windows editor's
+// "Unicode") is named as such at line 1, instead of the parser's "invalid
+// value" followed by the raw bytes of its byte order mark. JSON exchanged
+// between systems is UTF-8 (RFC 8259, sec. 8.1).
+func TestSampleReaderUTF16(t *testing.T) {
+	const line = "{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"
+	for _, bom := range []string{"\xff\xfe", "\xfe\xff"} {
+		var b []byte
+		for _, r := range line {
+			if bom == "\xff\xfe" {
+				b = append(b, byte(r), 0)
+			} else {
+				b = append(b, 0, byte(r))
+			}
+		}
+		sr := NewSampleReader(bytes.NewReader(append([]byte(bom), b...)))
+		_, err := sr.Next()
+		var le *LineError
+		if !errors.As(err, &le) || le.Line != 1 || !strings.Contains(err.Error(), "UTF-16") || !utf8.ValidString(err.Error()) {
+			t.Errorf("% x: %q; want an error at line 1 naming UTF-16, in valid UTF-8", bom, err)
+		}
 	}
 }

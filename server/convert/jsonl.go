@@ -95,7 +95,9 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		}
 		s := &pb.Sample{}
 		if err := protojson.Unmarshal(b, s); err != nil {
-			if sr.cut {
+			if bytes.IndexByte(b, '\r') >= 0 {
+				err = fmt.Errorf("%w; the line holds a carriage return (\\r) inside it: are the file's lines ended by a carriage return alone? End them with \\n or \\r\\n", err)
+			} else if sr.cut {
 				err = fmt.Errorf("%w; the file ends inside this line, without a newline: was it still being written?", err)
 			}
 			return nil, &LineError{Line: sr.line, Err: err}

@@ -237,3 +237,17 @@ func TestSampleReaderUTF16(t *testing.T) {
 		}
 	}
 }
+
+// TestSampleReaderCROnly: a file whose lines end in a carriage return
+// alone (as old Mac editors write them) reads as one line; the error says
+// that the line holds carriage returns instead of only the parser's
+// "unexpected token" in its middle.
+func TestSampleReaderCROnly(t *testing.T) {
+	const line = "{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}"
+	sr := NewSampleReader(strings.NewReader(line + "\r" + line + "\r"))
+	_, err := sr.Next()
+	var le *LineError
+	if !errors.As(err, &le) || le.Line != 1 || !strings.Contains(err.Error(), "carriage return") || strings.Contains(err.Error(), "ends inside") {
+		t.Errorf("lines ended by CR alone: %v; want an error at line 1 naming the carriage returns", err)
+	}
+}

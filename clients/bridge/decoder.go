@@ -55,10 +55,24 @@ type Splitter struct {
 	invalid   uint64
 	drops     []Drop // those of the last AppendFrames call, at most maxDrops
 	base, n   int    // len(dst) when AppendFrames was called, and now
+	// since is how many bytes arrived since the last good frame ended
+	// (or the start); at every lineHint of them a drop of field "line"
+	// says that none makes a frame.
+	since int
 }
 
+// lineHint is how many bytes in a row that make no good frame make a
+// Splitter say so (and again at every further lineHint): a controller
+// sends a good frame every 26 to 58 bytes; bytes read at another bit rate
+// than they were sent at make corrupted frames, or no delimiter at all
+// and so no frame to count.
+const lineHint = 4 << 10
+
 // Drop is a frame dropped as corrupted or invalid, and why; or, of Kind
-// ErrBehind, a long run of frames dropped as duplicates or reordered.
+// ErrBehind, a long run of frames dropped as duplicates or reordered; or,
+// of Kind ErrCorrupt and Field "line", every lineHint bytes in a row that
+// made no good frame (read at another bit rate than the controller sends
+// at, they make corrupted frames, or no delimiter and so no frame at all).
 type Drop struct {
 	// Err is a *FrameError naming the field that was wrong.
 	Err *FrameError
@@ -90,6 +104,11 @@ func (s *Splitter) AppendFrames(dst []Frame, p []byte) []Frame {
 		for i < len(p) && p[i] != 0 {
 			i++
 		}
+		n := min(i+1, len(p)) // the bytes up to the delimiter and it
+		if (s.since+n)/lineHint > s.since/lineHint {
+			s.drop(frameErr(ErrCorrupt, "line", "%d bytes in a row make no good frame: over a serial port, is -baud the controller's bit rate, TX and RX crossed and ground shared? (PROTOCOL.md, \"Wiring\")", (s.since+n)/lineHint*lineHint))
+		}
+		s.since += n
 		if !s.overlong {
 			if len(s.buf)+i > MaxEncodedLen {
 				s.overlong, s.buf = true, s.buf[:0]
@@ -130,6 +149,7 @@ func (s *Splitter) end() (Frame, bool) {
 	switch {
 	case err == nil:
 		s.frames++
+		s.since = 0
 		return f, true
 	case errors.Is(err, ErrInvalid):
 		s.frames++

@@ -34,9 +34,10 @@ type Summary struct {
 	NotTaken int
 	// Reasons holds the reasons the service gave, the first ten.
 	Reasons []string
-	// Drops holds why frames were dropped as corrupted or invalid, or a
-	// long run of them as behind (ErrBehind): the first of each kind
-	// (FrameError's Kind and Field).
+	// Drops holds why frames were dropped as corrupted or invalid, a
+	// long run of them as behind (ErrBehind), or a run of bytes that made
+	// no good frame (Field "line"): the first of each kind (FrameError's
+	// Kind and Field).
 	Drops []string
 	// Reconnects counts the streams opened again after the service ended
 	// one, and Dropped the samples decoded while none was open (Reconnect).

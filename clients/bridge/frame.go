@@ -53,7 +53,8 @@ var (
 // FrameError is why a frame was dropped: Kind is ErrCorrupt (damaged on
 // the way) or ErrInvalid (a good CRC, but not a frame this decoder takes),
 // Field the part of the frame that was wrong ("length", "crc",
-// "stuffing", "type", "flags", "wheels", "stamp", "heading"), and Detail
+// "stuffing", "type", "flags", "wheels", "stamp", "heading"; "line" for
+// bytes that make no good frame, see Drop), and Detail
 // its value and what was expected. errors.Is(err, ErrCorrupt) and
 // errors.Is(err, ErrInvalid) tell the kinds apart.
 type FrameError struct {

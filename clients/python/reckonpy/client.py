@@ -195,12 +195,17 @@ class IngestSession:
         """send_as sends a sample again with the client sequence number seq
         it had before, in this session or the one it resumes: the service
         answers it with its original verdict if it took it, and takes it
-        otherwise."""
+        otherwise. A number past last, which send() has not given yet, is
+        refused (ValueError): send() would give it to another sample later,
+        and the service would answer that one with this one's verdict."""
         if seq < 1:
             raise ValueError("IngestSession.send_as: client sequence numbers start at 1")
         with self._lock:
             if self._closed:
                 raise ValueError("IngestSession.send_as: the session is closed")
+            if seq > self._next:
+                raise ValueError(f"IngestSession.send_as: client sequence {seq} was never given (last is {self._next});"
+                                 " send a new sample with send()")
             self._put(fs_pb2.IngestRequest(robot=self._robot, client_sequence=seq, sample=sample,
                                            session_id=self._session_id))
 

@@ -71,6 +71,23 @@ class ResendTest(unittest.TestCase):
         with self.assertRaises(ValueError):
             s.send_as(0, support.read_samples()[0])
 
+    def test_send_as_refuses_a_number_not_given(self):
+        # A number send() has not given yet: send() gives it later to
+        # another sample, which the service then answers with the first
+        # one's verdict and does not take. Before, send_as sent it.
+        client = self.cart()
+        samples = support.read_samples()
+        a = client.ingest("cart")
+        self.addCleanup(a.cancel)
+        a.send(samples[0])
+        with self.assertRaisesRegex(ValueError, "client sequence 2 .*last is 1"):
+            a.send_as(2, samples[1])
+        b = client.ingest("cart", resume=(a.session_id, 5))
+        self.addCleanup(b.cancel)
+        b.send_as(5, samples[0])  # numbers up to the resumed session's last are its own
+        with self.assertRaises(ValueError):
+            b.send_as(6, samples[1])
+
 
 if __name__ == "__main__":
     unittest.main()

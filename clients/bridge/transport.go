@@ -1,9 +1,11 @@
 package bridge
 
 import (
+	"errors"
 	"fmt"
 	"io"
 	"net"
+	"sync/atomic"
 
 	"go.bug.st/serial"
 )
@@ -11,13 +13,39 @@ import (
 // OpenSerial opens the serial port name (for instance /dev/ttyACM0) at baud
 // bits per second, 8 data bits, no parity, one stop bit, in raw mode (no
 // line editing, no echo, no newline translation: every byte reaches the
-// decoder as sent). Closing it ends a Read in progress.
+// decoder as sent). Closing it ends a Read in progress. A Read of a port
+// that went away (a USB adapter pulled out: the kernel hangs its terminal
+// up) returns ErrPortGone.
 func OpenSerial(name string, baud int) (io.ReadCloser, error) {
 	p, err := serial.Open(name, &serial.Mode{BaudRate: baud, DataBits: 8, Parity: serial.NoParity, StopBits: serial.OneStopBit})
 	if err != nil {
 		return nil, fmt.Errorf("serial port %s: %w", name, err)
 	}
-	return p, nil
+	return &serialPort{Port: p}, nil
+}
+
+// ErrPortGone is the error of a Read of a serial port that went away.
+var ErrPortGone = errors.New("the serial port went away (hung up: a USB adapter unplugged, or the device reset)")
+
+// serialPort tells a port hung up from one closed by its reader: the
+// serial library reports both as "Port has been closed".
+type serialPort struct {
+	serial.Port
+	closed atomic.Bool
+}
+
+func (p *serialPort) Read(b []byte) (int, error) {
+	n, err := p.Port.Read(b)
+	var pe *serial.PortError
+	if err != nil && errors.As(err, &pe) && pe.Code() == serial.PortClosed && !p.closed.Load() {
+		err = ErrPortGone
+	}
+	return n, err
+}
+
+func (p *serialPort) Close() error {
+	p.closed.Store(true)
+	return p.Port.Close()
 }
 
 // UDPSource is a listening UDP socket read as a byte stream of frames: each

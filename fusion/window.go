@@ -41,12 +41,14 @@ type entry struct {
 	scrub float64
 
 	// entMeas; lm, the landmark of a landmark fix (from 1), and seeded,
-	// that its update gave a landmark block to it (landmarks.go).
+	// that its update gave a landmark block to it (landmarks.go); marker,
+	// the key of a pose fix's marker (markerKey; 0: none named).
 	meas   estimator.Measurement
 	imu    bool
 	seeded bool
 	lm     int32
 	sensor int
+	marker uint64
 
 	// entReset; keepOffset: a move recovery that keeps the IMU offset (and
 	// whether it is initialised) instead of marking it for initialisation.
@@ -491,7 +493,7 @@ func (r *Robot) repeatOf(e *entry) uint64 {
 // the fields that the update leaves as they were given (it sets Hold and
 // the landmark terms).
 func sameReading(a, b *entry) bool {
-	return a.kind == entMeas && b.kind == entMeas && a.t1 == b.t1 && a.imu == b.imu && a.sensor == b.sensor && a.lm == b.lm &&
+	return a.kind == entMeas && b.kind == entMeas && a.t1 == b.t1 && a.imu == b.imu && a.sensor == b.sensor && a.lm == b.lm && a.marker == b.marker &&
 		a.meas.Kind == b.meas.Kind && a.meas.Mount == b.meas.Mount && a.meas.Z == b.meas.Z && a.meas.R == b.meas.R
 }
 

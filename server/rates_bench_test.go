@@ -8,6 +8,7 @@ import (
 	"net"
 	"slices"
 	"sync"
+	"sync/atomic"
 	"syscall"
 	"testing"
 	"time"
@@ -110,11 +111,19 @@ func paced(b testing.TB, api pb.FusionServiceClient, robot string, samp []*pb.Sa
 	return lat
 }
 
+// pathTotal adds up what Options.afterTake reports: the time of the
+// service's takes, from their start to their verdicts sent, in
+// nanoseconds.
+type pathTotal struct{ ns atomic.Int64 }
+
+func (p *pathTotal) took(_ int, d time.Duration) { p.ns.Add(int64(d)) }
+
 // ratesRun feeds ratesRobots robots at their rates into the service at
 // addr, robot k starting phases[k] late (nil: all at once), and returns
-// for each of ratesWindows the CPU time the process took in it and the
-// latency of every verdict of a sample it holds.
-func ratesRun(b testing.TB, addr string, samp []*pb.Sample, stampNs []int64, phases []time.Duration) (cpu [2]time.Duration, lat [2][]time.Duration) {
+// for each of ratesWindows the CPU time the process took in it, the
+// latency of every verdict of a sample it holds, and the time of the
+// service's takes in it (path, nil for the bare service: zero).
+func ratesRun(b testing.TB, addr string, samp []*pb.Sample, stampNs []int64, phases []time.Duration, path *pathTotal) (cpu [2]time.Duration, lat [2][]time.Duration, took [2]time.Duration) {
 	api := stub(b, addr)
 	var wg sync.WaitGroup
 	lats := make([][2][]time.Duration, ratesRobots)
@@ -133,8 +142,15 @@ func ratesRun(b testing.TB, addr string, samp []*pb.Sample, stampNs []int64, pha
 	for w, win := range ratesWindows {
 		time.Sleep(win.from - time.Since(t0))
 		c0 := cpuTime()
+		var p0 int64
+		if path != nil {
+			p0 = path.ns.Load()
+		}
 		time.Sleep(win.from + ratesSeconds*time.Second - time.Since(t0))
 		cpu[w] = cpuTime() - c0
+		if path != nil {
+			took[w] = time.Duration(path.ns.Load() - p0)
+		}
 	}
 	wg.Wait()
 	for w := range ratesWindows {
@@ -142,7 +158,7 @@ func ratesRun(b testing.TB, addr string, samp []*pb.Sample, stampNs []int64, pha
 			lat[w] = append(lat[w], lats[k][w]...)
 		}
 	}
-	return cpu, lat
+	return cpu, lat, took
 }
 
 func p99(d []time.Duration) time.Duration {
@@ -165,6 +181,16 @@ func p99(d []time.Duration) time.Duration {
 // A third run in each iteration, of the service without a journal (memory
 // only, a mode of its own), gives memory-only-cpu-ratio and
 // memory-only-p99-ratio: the journal's share is the difference.
+//
+// The service's runs also time their own path where it runs, among the
+// transport's work and with the caches that work leaves it (Options.
+// afterTake: from the start of a take to its verdicts sent, the robot,
+// the journal, the sessions and the send; not the decoding, which the
+// receive does): path-ns/sample, and path-of-bare and
+// memory-only-path-of-bare, that time a sample as a share of the bare
+// service's CPU a sample. A path-of-bare over 0.15 is a CPU ratio over
+// the target whatever the transport does beside it. The timing adds a
+// clock read a take to the service's CPU.
 //
 // Each run is 20 s, measured twice (ratesWindows): the robots' rates, 5 s
 // after the first 15, which the targets are judged on, and their start,
@@ -223,22 +249,24 @@ func benchRates(b *testing.B, phases []time.Duration) {
 	defer gs.Stop()
 	// A run's CPU a sample and verdicts, for each of ratesWindows.
 	type run struct {
-		cpu [2]float64
-		lat [2][]time.Duration
+		cpu, path [2]float64
+		lat       [2][]time.Duration
 	}
-	measured := func(cpu [2]time.Duration, lat [2][]time.Duration) run {
+	measured := func(cpu [2]time.Duration, lat [2][]time.Duration, took [2]time.Duration) run {
 		var r run
 		for w := range ratesWindows {
 			r.cpu[w] = float64(cpu[w].Nanoseconds()) / float64(len(lat[w]))
+			r.path[w] = float64(took[w].Nanoseconds()) / float64(len(lat[w]))
 		}
 		r.lat = lat
 		return r
 	}
 	bareRun := func() run {
-		return measured(ratesRun(b, lis.Addr().String(), samp, stampNs, phases))
+		return measured(ratesRun(b, lis.Addr().String(), samp, stampNs, phases, nil))
 	}
 	serviceRun := func(journalDir string) run {
-		srv := start(b, testConfig{Options: Options{JournalDir: journalDir}})
+		path := &pathTotal{}
+		srv := start(b, testConfig{Options: Options{JournalDir: journalDir, afterTake: path.took}})
 		defer srv.stop()
 		api := stub(b, srv.addr)
 		for k := range ratesRobots {
@@ -246,12 +274,13 @@ func benchRates(b *testing.B, phases []time.Duration) {
 				b.Fatal(err)
 			}
 		}
-		return measured(ratesRun(b, srv.addr, samp, stampNs, phases))
+		return measured(ratesRun(b, srv.addr, samp, stampNs, phases, path))
 	}
 	fullRun := func() run { return serviceRun(b.TempDir()) }
 	// The figures of each window, over the iterations.
 	type figures struct {
 		bareCPU, fullCPU, memCPU, pairs, bareP99, fullP99, memP99 []float64
+		fullPath, memPath                                         []float64
 		bareLat, fullLat                                          []time.Duration
 	}
 	var fig [2]figures
@@ -268,6 +297,7 @@ func benchRates(b *testing.B, phases []time.Duration) {
 		for w := range ratesWindows {
 			f := &fig[w]
 			f.bareCPU, f.fullCPU, f.memCPU = append(f.bareCPU, br.cpu[w]), append(f.fullCPU, fr.cpu[w]), append(f.memCPU, mr.cpu[w])
+			f.fullPath, f.memPath = append(f.fullPath, fr.path[w]), append(f.memPath, mr.path[w])
 			f.pairs = append(f.pairs, fr.cpu[w]/br.cpu[w])
 			f.memP99 = append(f.memP99, float64(p99(mr.lat[w])))
 			f.bareLat, f.fullLat = append(f.bareLat, br.lat[w]...), append(f.fullLat, fr.lat[w]...)
@@ -285,6 +315,9 @@ func benchRates(b *testing.B, phases []time.Duration) {
 		b.ReportMetric(fm/bm, prefix+"cpu-ratio")
 		b.ReportMetric(median(f.pairs), prefix+"pair-ratio")
 		b.ReportMetric(median(f.memCPU)/bm, prefix+"memory-only-cpu-ratio")
+		b.ReportMetric(median(f.fullPath), prefix+"path-ns/sample")
+		b.ReportMetric(median(f.fullPath)/bm, prefix+"path-of-bare")
+		b.ReportMetric(median(f.memPath)/bm, prefix+"memory-only-path-of-bare")
 		b.ReportMetric(bp/1e3, prefix+"bare-p99-us")
 		b.ReportMetric(fp/1e3, prefix+"p99-us")
 		b.ReportMetric(fp/bp, prefix+"p99-ratio")

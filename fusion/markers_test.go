@@ -144,19 +144,7 @@ func kidnapRun(t *testing.T, sc fusiontest.Scenario, periodNs int64, distinct in
 	if err != nil {
 		t.Fatal(err)
 	}
-	at, k := -1, 0
-	for i := range ins {
-		res := fusiontest.Feed(r, &ins[i])
-		if ins[i].Bumped {
-			k++
-		}
-		for _, e := range res.Events {
-			if e.Kind == fusion.EventMoveRecovered && at < 0 {
-				at = k
-			}
-		}
-	}
-	return at, r
+	return recoveredAt(r, ins), r
 }
 
 // TestKidnapRecoveredByTwoMarkers: a cart lifted 1.5 m aside and turned is

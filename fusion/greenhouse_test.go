@@ -762,3 +762,89 @@ func TestGreenhouseMisreadMarkers(t *testing.T) {
 		t.Errorf("distinct_markers 2: trusted more than 1 m off for %.2f s, %.2f m at most", now.tl.trustedOffS, now.tl.worstTrustedM)
 	}
 }
+
+// ghPush moves the cart by hand one post gap (5 m) along the field's x
+// axis at atNs: the truth from then on is 5 m further, the odometry does
+// not see it, and the camera sees the posts of the moved place. The posts
+// repeat every 5 m along x, so what the camera sees there is what it saw
+// before, one post further: each fix 5 m further in x, naming the next
+// post (but near a path's end, where the run's posts end).
+func ghPush(ins []ghInput, atNs int64) {
+	for i := range ins {
+		if f := ins[i].fix; f != nil && f.StampNs-ghCamStampNs >= atNs {
+			g := *f
+			g.XM += ghPostGapM
+			var a, b int
+			if _, err := fmt.Sscanf(g.Marker, "post-%d-%d", &a, &b); err == nil {
+				g.Marker = fmt.Sprintf("post-%d-%d", a+1, b)
+			}
+			ins[i].fix = &g
+		}
+		if ins[i].odo != nil && ins[i].odo.StampNs >= atNs {
+			ins[i].truth.X += ghPostGapM
+		}
+	}
+}
+
+// ghPushRun feeds one run pushed at 60 s under cfg and returns the seconds
+// from the push to the recovery and to the first sample trusted within 0.3
+// m of the truth (-1: none).
+func ghPushRun(t *testing.T, seed uint64, cfg fusion.Config) (recovered, trusted float64) {
+	t.Helper()
+	const at = 60e9
+	ins := ghSimulate(seed, 120, ghMarkers{})
+	ghPush(ins, at)
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	recovered, trusted = -1, -1
+	for _, in := range ins {
+		var res fusion.Result
+		switch {
+		case in.fix != nil:
+			res = r.AddFix(*in.fix)
+		case in.head != nil:
+			res = r.AddHeading(*in.head)
+		default:
+			res = r.AddOdometry(*in.odo)
+		}
+		for _, e := range res.Events {
+			if e.Kind == fusion.EventMoveRecovered && e.StampNs >= at && recovered < 0 {
+				recovered = float64(e.StampNs-at) * 1e-9
+			}
+		}
+		if in.odo != nil && in.odo.StampNs > at && trusted < 0 {
+			p := r.Pose()
+			if p.Distrust == 0 && math.Hypot(p.Pose.X-in.truth.X, p.Pose.Y-in.truth.Y) < 0.3 {
+				trusted = float64(in.odo.StampNs-at) * 1e-9
+			}
+		}
+	}
+	return recovered, trusted
+}
+
+// TestGreenhousePushRecovered: the cart pushed 5 m along its path by hand,
+// its camera naming the posts, is recovered in each of 8 runs under the
+// default recovery.distinct_markers 2 within the minute after the push,
+// and trusted again near its truth. Its posts stand 5 m apart with no fix
+// between them, so the second post's refused fixes come seconds after the
+// first's, long after the 1 s window has passed them: the candidates that
+// name a marker are carried on past the window (carryNamed); without that,
+// 2 of the 8 runs were not recovered within the minute and the others took
+// 37 to 56 s. Logged beside distinct_markers 1.
+func TestGreenhousePushRecovered(t *testing.T) {
+	if testing.Short() {
+		t.Skip("8 runs of 120 s, twice")
+	}
+	for seed := uint64(1); seed <= 8; seed++ {
+		one := ghConfig()
+		one.Recovery.DistinctMarkers = 1
+		r1, t1 := ghPushRun(t, seed, one)
+		r2, t2 := ghPushRun(t, seed, ghConfig())
+		t.Logf("seed %d: recovered %.1f s after the push with distinct_markers 1 (trusted near the truth at %.1f s), %.1f s with 2 (%.1f s)", seed, r1, t1, r2, t2)
+		if r2 < 0 || t2 < 0 {
+			t.Errorf("seed %d: not recovered (%.1f s) or not trusted near the truth (%.1f s) within 60 s of the push", seed, r2, t2)
+		}
+	}
+}

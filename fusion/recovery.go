@@ -296,6 +296,28 @@ func (r *Robot) addCandidate(c candidate) bool {
 	return true
 }
 
+// carryNamed keeps pose candidates that name a marker as the window moves
+// on: when its start is to pass their stamp (newBase), it carries them to
+// the newest odometry stamp, and drops those that name none, as the next
+// candidate would have. A moved robot's second marker may come into view
+// seconds after the first (on the greenhouse simulator, posts 5 m apart
+// with no fix between), and the first marker's candidates must still count
+// then. Only while recovery.distinct_markers asks for more than one:
+// otherwise, and for landmark fixes, candidates leave with the window as
+// before.
+func (r *Robot) carryNamed(newBase int64) {
+	if r.cfg.Recovery.DistinctMarkers <= 1 || r.cands[0].stamp >= newBase || r.cands[0].isLandmark() || namedMarkers(r.cands) == 0 {
+		return
+	}
+	kept := r.cands[:0]
+	for _, c := range r.cands {
+		if c.marker != 0 && r.carry(&c, r.newest) {
+			kept = append(kept, c)
+		}
+	}
+	r.cands = kept
+}
+
 // keepMarkers drops the oldest over of the candidates kept, in fix-stamp
 // order, except, for pose fixes, the newest of each marker not among the
 // newer ones while those number fewer than recovery.distinct_markers: a

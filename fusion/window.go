@@ -378,7 +378,11 @@ func (r *Robot) trim() {
 	for k < len(live)-1 && live[k].t1 < cutoff {
 		k++
 	}
-	r.dropFront(max(k, min(len(live)-maxWindowEntries, len(live)-1)))
+	n := max(k, min(len(live)-maxWindowEntries, len(live)-1))
+	if n > 0 && len(r.cands) > 0 {
+		r.carryNamed(live[n-1].t1)
+	}
+	r.dropFront(n)
 }
 
 // maxWindowEntries bounds the history window by its number of entries as

@@ -33,26 +33,27 @@ type candidate struct {
 	// keepOffset: the IMU offset was initialised at the fix.
 	keepOffset bool
 	// marker is a pose fix's marker key (markerKey; 0: none named).
-	marker uint64
+	marker uint32
 }
 
 // isLandmark reports whether c is a landmark fix.
 func (c *candidate) isLandmark() bool { return c.meas.Kind != 0 }
 
 // markerKey returns the key by which recovery tells a pose fix's marker
-// apart: the 64-bit FNV-1a hash of its name (Fowler, Noll and Vo; offset
+// apart: the 32-bit FNV-1a hash of its name (Fowler, Noll and Vo; offset
 // basis and prime as published, from memory), 0 for none named and never 0
-// for a name. Two names of one hash count as one marker, which delays a
-// recovery and never hastens it; the key holds no pointer, as entries must
-// not (entry.after).
-func markerKey(name string) uint64 {
+// for a name. Two names of one hash count as one marker (among a thousand
+// markers, about one chance in ten thousand that any two do), which delays a
+// recovery and never hastens it. The key holds no pointer, as entries must
+// not (entry.after), and fits in the entry's padding.
+func markerKey(name string) uint32 {
 	if name == "" {
 		return 0
 	}
-	h := uint64(14695981039346656037)
+	h := uint32(2166136261)
 	for i := 0; i < len(name); i++ {
-		h ^= uint64(name[i])
-		h *= 1099511628211
+		h ^= uint32(name[i])
+		h *= 16777619
 	}
 	return max(h, 1)
 }
@@ -329,7 +330,7 @@ func (r *Robot) keepMarkers(kept []candidate, over int, landmark bool) []candida
 	if landmark || need <= 1 {
 		return append(kept[:0], kept[over:]...)
 	}
-	var markers []uint64
+	var markers []uint32
 	for i := over; i < len(kept); i++ {
 		if k := kept[i].marker; k != 0 && !slices.Contains(markers, k) {
 			markers = append(markers, k)
@@ -589,7 +590,7 @@ func (r *Robot) posesAgree() (pose estimator.Pose, cov [9]float64, detail string
 
 // namedMarkers counts the different markers the candidates name.
 func namedMarkers(set []candidate) int {
-	var seen []uint64
+	var seen []uint32
 	for i := range set {
 		if k := set[i].marker; k != 0 && !slices.Contains(seen, k) {
 			seen = append(seen, k)

@@ -536,7 +536,7 @@ func (r *Robot) encEntry(e *wenc, en *entry) {
 		e.bool(21, en.seeded)
 	}
 	if en.marker != 0 {
-		e.uint(22, en.marker)
+		e.uint(22, uint64(en.marker))
 	}
 }
 
@@ -595,7 +595,7 @@ func (r *Robot) decEntry(d *wdec) entry {
 		case 21:
 			en.seeded = d.bool(num)
 		case 22:
-			en.marker = d.uint(num)
+			en.marker = d.uint32(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}
@@ -790,7 +790,7 @@ func encCandidate(e *wenc, c *candidate) {
 		e.doubles(11, c.relD[:])
 	}
 	if c.marker != 0 {
-		e.uint(12, c.marker)
+		e.uint(12, uint64(c.marker))
 	}
 }
 
@@ -821,7 +821,7 @@ func decCandidate(d *wdec) candidate {
 		case 11:
 			d.doubles(num, c.relD[:])
 		case 12:
-			c.marker = d.uint(num)
+			c.marker = d.uint32(num)
 		default:
 			d.fail("candidate: unknown field %d", num)
 		}

@@ -41,14 +41,13 @@ type entry struct {
 	scrub float64
 
 	// entMeas; lm, the landmark of a landmark fix (from 1), and seeded,
-	// that its update gave a landmark block to it (landmarks.go); marker,
-	// the key of a pose fix's marker (markerKey; 0: none named).
+	// that its update gave a landmark block to it (landmarks.go); marker
+	// (below) the key of a pose fix's marker.
 	meas   estimator.Measurement
 	imu    bool
 	seeded bool
 	lm     int32
 	sensor int
-	marker uint64
 
 	// entReset; keepOffset: a move recovery that keeps the IMU offset (and
 	// whether it is initialised) instead of marking it for initialisation.
@@ -70,6 +69,9 @@ type entry struct {
 	// (estimator's PredictReported). Beside the other flags, where it
 	// takes no padding of its own.
 	wheels bool
+	// marker is the key of a pose fix's marker (markerKey; 0: none named),
+	// in the padding after the flags: the entry is no larger for it.
+	marker uint32
 }
 
 // live returns the entries in the window.

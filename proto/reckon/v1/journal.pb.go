@@ -1022,10 +1022,10 @@ type SnapshotEntry struct {
 	// landmark block (seeded afresh: the smoother starts the block there).
 	Landmark       int32 `protobuf:"varint,20,opt,name=landmark,proto3" json:"landmark,omitempty"`
 	LandmarkSeeded bool  `protobuf:"varint,21,opt,name=landmark_seeded,json=landmarkSeeded,proto3" json:"landmark_seeded,omitempty"`
-	// Measurement, a pose fix that named its marker (version 15): a 64-bit
+	// Measurement, a pose fix that named its marker (version 15): the 32-bit
 	// FNV-1a hash of PoseFix.marker, never 0 (absent: no marker named, and
 	// in older versions). Move recovery tells markers apart by it.
-	MarkerKey     uint64 `protobuf:"varint,22,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	MarkerKey     uint32 `protobuf:"varint,22,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1207,7 +1207,7 @@ func (x *SnapshotEntry) GetLandmarkSeeded() bool {
 	return false
 }
 
-func (x *SnapshotEntry) GetMarkerKey() uint64 {
+func (x *SnapshotEntry) GetMarkerKey() uint32 {
 	if x != nil {
 		return x.MarkerKey
 	}
@@ -1671,7 +1671,7 @@ type SnapshotCandidate struct {
 	RelativeCalibrationJacobian []float64 `protobuf:"fixed64,11,rep,packed,name=relative_calibration_jacobian,json=relativeCalibrationJacobian,proto3" json:"relative_calibration_jacobian,omitempty"`
 	// Pose fix: its marker's key, as SnapshotEntry.marker_key (version 15;
 	// absent: no marker named, and in older versions).
-	MarkerKey     uint64 `protobuf:"varint,12,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	MarkerKey     uint32 `protobuf:"varint,12,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1776,7 +1776,7 @@ func (x *SnapshotCandidate) GetRelativeCalibrationJacobian() []float64 {
 	return nil
 }
 
-func (x *SnapshotCandidate) GetMarkerKey() uint64 {
+func (x *SnapshotCandidate) GetMarkerKey() uint32 {
 	if x != nil {
 		return x.MarkerKey
 	}
@@ -2165,7 +2165,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\blandmark\x18\x14 \x01(\x05R\blandmark\x12'\n" +
 	"\x0flandmark_seeded\x18\x15 \x01(\bR\x0elandmarkSeeded\x12\x1d\n" +
 	"\n" +
-	"marker_key\x18\x16 \x01(\x04R\tmarkerKey\"\xe6\x02\n" +
+	"marker_key\x18\x16 \x01(\rR\tmarkerKey\"\xe6\x02\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
@@ -2222,7 +2222,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	" \x03(\x01R\x17relativeWhiteCovariance\x12B\n" +
 	"\x1drelative_calibration_jacobian\x18\v \x03(\x01R\x1brelativeCalibrationJacobian\x12\x1d\n" +
 	"\n" +
-	"marker_key\x18\f \x01(\x04R\tmarkerKeyJ\x04\b\x03\x10\x04R\n" +
+	"marker_key\x18\f \x01(\rR\tmarkerKeyJ\x04\b\x03\x10\x04R\n" +
 	"correction\"\x9b\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +

@@ -72,23 +72,17 @@ func (r *Robot) clearCandidates() {
 // recovery.distinct_markers. Candidates that name none wait for nothing,
 // as before markers were named.
 func (r *Robot) markersShort(set []candidate) bool {
-	need := r.cfg.Recovery.DistinctMarkers
-	if need <= 1 {
+	named := namedMarkers(set)
+	if named == 0 {
 		return false
 	}
-	named, distinct := false, 0
+	distinct := named
 	for i := range set {
-		k := set[i].marker
-		named = named || k != 0
-		seen := false
-		for j := 0; j < i && k != 0 && !seen; j++ {
-			seen = set[j].marker == k
-		}
-		if !seen {
+		if set[i].marker == 0 {
 			distinct++
 		}
 	}
-	return named && distinct < need
+	return distinct < r.cfg.Recovery.DistinctMarkers
 }
 
 // maxLandmarkCandidates bounds the refused landmark fixes kept for a

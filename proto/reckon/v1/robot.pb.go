@@ -1232,8 +1232,10 @@ type MoveRecovery struct {
 	// reseeded and DISTRUST_REASON_MOVE_UNCONFIRMED stands. Pose fixes
 	// without a marker count as before: a run of them with none named
 	// recovers at count; a fix without one beside named ones counts as a
-	// marker of its own. 1 recovers from one marker's fixes, as builds
-	// before this option did.
+	// marker of its own. Refused pose fixes that name a marker are kept past
+	// window_ns while recovery waits, so that a second marker seen seconds
+	// later still confirms the first. 1 recovers from one marker's fixes, as
+	// builds before this option did.
 	DistinctMarkers int32 `protobuf:"varint,4,opt,name=distinct_markers,json=distinctMarkers,proto3" json:"distinct_markers,omitempty"`
 	unknownFields   protoimpl.UnknownFields
 	sizeCache       protoimpl.SizeCache

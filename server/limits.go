@@ -32,6 +32,10 @@ type Limits struct {
 	// RESOURCE_EXHAUSTED. Each holds three goroutines and gRPC's buffers,
 	// about 24 KiB (10,000 idle streams took 240 MB of reckond's memory).
 	MaxIngestStreams int
+	// MaxConnections bounds the open connections of a listener that
+	// LimitConnections wraps (2048; -max-connections): one more is closed
+	// at once. Each holds a file descriptor, which the journals need too.
+	MaxConnections int
 }
 
 // withDefaults returns l with its zero fields set to the defaults.
@@ -47,6 +51,7 @@ func (l Limits) withDefaults() Limits {
 	def(&l.MaxWatchers, 1024)
 	def(&l.MaxViewers, 16)
 	def(&l.MaxIngestStreams, 2048)
+	def(&l.MaxConnections, 2048)
 	return l
 }
 

@@ -28,6 +28,8 @@ type Metrics struct {
 	diverged prometheus.Counter
 	viewers  prometheus.Gauge
 	viewConf prometheus.Counter
+	conns    prometheus.Gauge
+	connRef  prometheus.Counter
 	perRobot robotVecs
 }
 
@@ -52,8 +54,12 @@ func NewMetrics() *Metrics {
 	m.viewers = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_viewers", Help: "Open live views (event streams of the live view page)."})
 	m.viewConf = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_view_updates_conflated_total",
 		Help: "Live view updates replaced by a newer one before their view took them (a slow or stuck page)."})
+	m.conns = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_connections", Help: "Open gRPC connections (Server.LimitConnections)."})
+	m.connRef = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_connections_refused_total",
+		Help: "Connections closed at once because -max-connections were open."})
 	m.perRobot = newRobotVecs()
 	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged, m.viewers, m.viewConf,
+		m.conns, m.connRef,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
 	m.reg.MustRegister(m.perRobot.collectors()...)
 	return m
@@ -127,5 +133,17 @@ func (m *Metrics) views(n int) {
 func (m *Metrics) viewConflated() {
 	if m != nil {
 		m.viewConf.Inc()
+	}
+}
+
+func (m *Metrics) connections(n int) {
+	if m != nil {
+		m.conns.Set(float64(n))
+	}
+}
+
+func (m *Metrics) connectionRefused() {
+	if m != nil {
+		m.connRef.Inc()
 	}
 }

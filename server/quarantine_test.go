@@ -10,6 +10,7 @@ import (
 	"testing"
 
 	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -409,6 +410,86 @@ func TestDeleteQuarantined(t *testing.T) {
 	for name, b := range cartA {
 		if a := robotFiles(t, dir, "cart-a")[name]; !strings.HasPrefix(a, b) {
 			t.Errorf("cart-a's %s changed", name)
+		}
+	}
+}
+
+// TestCallRefusalValue: ReseedRobot and StartRun say a refusal as a value,
+// as ingest does: in their response for an input the robot took
+// (REFUSAL_TOO_FAR_AHEAD), and otherwise in the details of the status,
+// where refusals with the same code differ (a run start out of order and a
+// quarantined robot are both FAILED_PRECONDITION). Before, only the
+// reason's text told them apart.
+func TestCallRefusalValue(t *testing.T) {
+	dir, _ := twoCartsOneGarbled(t)
+	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	samp, _ := cartRun(6, 3)
+	newest := newestOdometry(samp)
+	unit := &pb.Covariance{Dimension: 3, Values: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}
+	reseed := func(robot string, rs *pb.Reseed) (*pb.ReseedRobotResponse, error) {
+		return api.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: robot, Reseed: rs})
+	}
+	startRun := func(robot string, rs *pb.RunStart) (*pb.StartRunResponse, error) {
+		return api.StartRun(ctx, &pb.StartRunRequest{Robot: robot, RunStart: rs})
+	}
+	type refusal interface {
+		GetSequence() uint64
+		GetVerdict() pb.Verdict
+		GetRefusal() pb.Refusal
+		GetField() string
+		GetReason() string
+	}
+	// detail is the call's response in a refused call's status, with the
+	// status's message as its reason.
+	detail := func(err error) (refusal, codes.Code) {
+		st := status.Convert(err)
+		for _, d := range st.Details() {
+			if r, ok := d.(refusal); ok {
+				if r.GetReason() != st.Message() {
+					t.Errorf("the details' reason %q differs from the status message %q", r.GetReason(), st.Message())
+				}
+				return r, st.Code()
+			}
+		}
+		return nil, st.Code()
+	}
+	cases := []struct {
+		name    string
+		call    func() (refusal, error)
+		code    codes.Code
+		refusal pb.Refusal
+		field   string
+	}{
+		{"reseed quarantined", func() (refusal, error) {
+			return reseed("robots/cart-b", &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{}, Covariance: unit})
+		}, codes.FailedPrecondition, pb.Refusal_REFUSAL_QUARANTINED, ""},
+		{"run start quarantined", func() (refusal, error) { return startRun("robots/cart-b", &pb.RunStart{BootId: "by-hand"}) },
+			codes.FailedPrecondition, pb.Refusal_REFUSAL_QUARANTINED, ""},
+		{"run start out of order", func() (refusal, error) { return startRun("robots/cart-a", &pb.RunStart{BootId: "by-hand", Run: 1}) },
+			codes.FailedPrecondition, pb.Refusal_REFUSAL_RUN_OUT_OF_ORDER, "run_start.run"},
+		{"reseed malformed", func() (refusal, error) {
+			return reseed("robots/cart-a", &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1}}})
+		}, codes.InvalidArgument, pb.Refusal_REFUSAL_MALFORMED, "reseed.covariance"},
+		{"reseed taken, too far ahead", func() (refusal, error) {
+			return reseed("robots/cart-a", &pb.Reseed{StampNs: newest + 2e9, Pose: &pb.FloorPose{}, Covariance: unit})
+		}, codes.OK, pb.Refusal_REFUSAL_TOO_FAR_AHEAD, ""},
+	}
+	for _, tc := range cases {
+		resp, err := tc.call()
+		code := codes.OK
+		if err != nil {
+			resp, code = detail(err)
+		}
+		switch {
+		case code != tc.code:
+			t.Errorf("%s: %v, want %v", tc.name, err, tc.code)
+		case resp == nil:
+			t.Errorf("%s: %v, with no response in its details", tc.name, err)
+		case resp.GetRefusal() != tc.refusal || resp.GetField() != tc.field || resp.GetVerdict() != pb.Verdict_VERDICT_INVALID || (err != nil) != (resp.GetSequence() == 0):
+			t.Errorf("%s: %v (%v), want %v, field %q, VERDICT_INVALID, sequence 0 if and only if refused before taken", tc.name, resp, err, tc.refusal, tc.field)
 		}
 	}
 }

@@ -39,6 +39,7 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
+	"google.golang.org/protobuf/protoadapt"
 
 	"reckon.example/fusion"
 	pb "reckon.example/proto/reckon/v1"
@@ -1447,20 +1448,39 @@ func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*
 		return nil, status.Errorf(codes.InvalidArgument, "reseed: missing")
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: req.GetReseed()}})
+	out := &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason, Refusal: resp.Refusal, Field: callField(resp.Field)}
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
-		return nil, callRefused(resp)
+		out.Reason = callReason(resp.Reason)
+		return nil, callRefused(resp.StatusCode, out.Reason, out)
 	}
-	return &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}, nil
+	return out, nil
 }
 
-// callRefused is the status of a call (ReseedRobot, StartRun) whose input
+// callReason is the reason of a call's (ReseedRobot, StartRun) input that
 // the robot refused before taking it. The reason names the field as in a
 // sample ("bad sample: sample.reseed.pose: missing"); the call's request
-// has no sample, so the status names the request's own field
-// ("reseed.pose: missing").
-func callRefused(resp *pb.IngestResponse) error {
-	reason := strings.TrimPrefix(resp.Reason, convert.ErrSample.Error()+": ")
-	return status.Error(codes.Code(resp.StatusCode), strings.TrimPrefix(reason, "sample."))
+// has no sample, so it names the request's own field ("reseed.pose:
+// missing").
+func callReason(reason string) string {
+	return callField(strings.TrimPrefix(reason, convert.ErrSample.Error()+": "))
+}
+
+// callField is a sample's field as a call's request names it:
+// "sample.reseed.pose" is "reseed.pose".
+func callField(field string) string { return strings.TrimPrefix(field, "sample.") }
+
+// callRefused is the status of a call whose input the robot refused before
+// taking it: the refusal's status code and reason, with the call's response
+// in its details, which says the refusal as a value (two refusals may share
+// a code: a run start out of order and a quarantined robot are both
+// FAILED_PRECONDITION).
+func callRefused(code int32, reason string, resp protoadapt.MessageV1) error {
+	st := status.New(codes.Code(code), reason)
+	if withResp, err := st.WithDetails(resp); err == nil {
+		// It fails only for code OK, which a refusal does not have.
+		st = withResp
+	}
+	return st.Err()
 }
 
 // StartRun starts a new run of a robot by hand (DEVELOPERS.md, "Design:
@@ -1471,10 +1491,11 @@ func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.Sta
 		return nil, status.Errorf(codes.InvalidArgument, "run_start: missing")
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
+	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason, Refusal: resp.Refusal, Field: callField(resp.Field)}
 	if resp.StatusCode != 0 && resp.Sequence == 0 {
-		return nil, callRefused(resp)
+		out.Reason = callReason(resp.Reason)
+		return nil, callRefused(resp.StatusCode, out.Reason, out)
 	}
-	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason}
 	for _, e := range resp.Events {
 		if e.GetKind() == pb.EventKind_EVENT_KIND_RUN_STARTED {
 			out.Run = uint64(e.GetValue()) // the run this input started, not a later one's

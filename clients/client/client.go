@@ -199,8 +199,11 @@ func (c *Client) Statistics(ctx context.Context, robot string) (*pb.RobotStatist
 // Reseed restarts robot's ("robots/{id}") estimate from pose (field frame:
 // metres, radians) at stampNs with cov, its 3x3 row-major covariance
 // (m^2, m*rad, rad^2). Samples stamped before stampNs are no longer taken.
-// The response carries the reseed's sequence number and verdict; a refused
-// reseed is a response with its reason, not an error.
+// The response carries the reseed's sequence number and verdict; a reseed
+// the robot took and refused (stamped too far ahead) is a response with its
+// reason and refusal, one it refused before taking it (malformed, or a
+// quarantined robot) an error whose gRPC status details hold the response
+// with its refusal and field (sequence 0).
 func (c *Client) Reseed(ctx context.Context, robot string, stampNs int64, pose *pb.FloorPose, cov []float64) (*pb.ReseedRobotResponse, error) {
 	return c.api.ReseedRobot(ctx, &pb.ReseedRobotRequest{Robot: robot, Reseed: &pb.Reseed{
 		StampNs: stampNs, Pose: pose, Covariance: &pb.Covariance{Dimension: 3, Values: cov}}})

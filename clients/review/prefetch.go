@@ -1,6 +1,7 @@
 package review
 
 import (
+	"context"
 	"fmt"
 
 	"reckon.example/estimator"
@@ -67,8 +68,9 @@ type prefetchRun[T any] struct {
 const prefetchLen = 256
 
 // startPrefetch reads records 0 to n-1 (n-1 to 0 with backwards) with
-// fill, which sets dst[j] to record lo+j.
-func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) error) *prefetch[T] {
+// fill, which sets dst[j] to record lo+j. Once ctx is done, the next run
+// is its error instead.
+func startPrefetch[T any](ctx context.Context, n int, backwards bool, fill func(lo int, dst []T) error) *prefetch[T] {
 	// Four runs at most: two sent, one read, one being filled.
 	p := &prefetch[T]{n: n, step: 1, runs: make(chan prefetchRun[T], 2), pool: newBatchPool[T](4, prefetchLen), stop: make(chan struct{}), done: make(chan struct{})}
 	if backwards {
@@ -90,7 +92,10 @@ func startPrefetch[T any](n int, backwards bool, fill func(lo int, dst []T) erro
 			if !ok {
 				return
 			}
-			err := fill(lo, items[:hi-lo])
+			err := ctx.Err()
+			if err == nil {
+				err = fill(lo, items[:hi-lo])
+			}
 			select {
 			case p.runs <- prefetchRun[T]{lo, items[:hi-lo], err}:
 			case <-p.stop:
@@ -171,7 +176,7 @@ type gainedStep struct {
 // and 0.8 s.
 func prefetchGains(k int) bool { return k%4 != 3 }
 
-func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
+func prefetchSteps(ctx context.Context, steps *stepStore, every int) *prefetchedSteps {
 	rd := steps.reader()
 	n := steps.Len()
 	// next holds step hi of the run being filled, [lo, hi): the lowest of
@@ -181,7 +186,7 @@ func prefetchSteps(steps *stepStore, every int) *prefetchedSteps {
 	// lo-1 and lo), for the run filled next, if stored is set.
 	var carry gainMatrix
 	stored := false
-	return &prefetchedSteps{n: n, every: every, posts: map[int]*estimator.State{}, p: startPrefetch(n, true, func(lo int, dst []gainedStep) error {
+	return &prefetchedSteps{n: n, every: every, posts: map[int]*estimator.State{}, p: startPrefetch(ctx, n, true, func(lo int, dst []gainedStep) error {
 		// The gain between steps k and k+1 that the step writer stored
 		// came with step k+1; it goes to the item of step k: from the run
 		// filled before (carry) for the last item.
@@ -266,8 +271,8 @@ type trackItem struct {
 // prefetchTrack reads the smoothed states forwards, with the stamps the
 // filtered walk kept and the truth (if not nil), ahead of the walk of the
 // smoothed track.
-func prefetchTrack(sm *smoothedRows, fw *filteredWalk, truth truthSource) *prefetch[trackItem] {
-	return startPrefetch(fw.n, false, func(lo int, dst []trackItem) error {
+func prefetchTrack(ctx context.Context, sm *smoothedRows, fw *filteredWalk, truth truthSource) *prefetch[trackItem] {
+	return startPrefetch(ctx, fw.n, false, func(lo int, dst []trackItem) error {
 		for j := range dst {
 			it := &dst[j]
 			i := lo + j

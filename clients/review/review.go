@@ -9,6 +9,7 @@ package review
 import (
 	"bufio"
 	"bytes"
+	"context"
 	"encoding/csv"
 	"errors"
 	"fmt"
@@ -396,6 +397,15 @@ func wrap(a float64) float64 {
 // Analyze replays a recorded run with the smoother and writes the track
 // exports into outDir as <label>-filtered.csv and <label>-smoothed.csv.
 func Analyze(src Source, outDir string, opt Options) (*Run, error) {
+	return AnalyzeContext(context.Background(), src, outDir, opt)
+}
+
+// AnalyzeContext is Analyze stopping once ctx is done, with its error:
+// the replay at its next input, the smoother and the walk of the smoothed
+// track at their next run of steps. Exports it began are left in outDir
+// as they are: the caller removes them (reckon review writes into a
+// staging directory that it removes).
+func AnalyzeContext(ctx context.Context, src Source, outDir string, opt Options) (*Run, error) {
 	if opt.MaxPoints <= 0 {
 		opt.MaxPoints = 4000
 	}
@@ -428,7 +438,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 		os.Remove(run.FilteredCSV)
 		return nil, err
 	}
-	fr, err := rc.replay(src)
+	fr, err := rc.replay(ctx, src)
 	if err != nil {
 		return discard(err)
 	}
@@ -459,7 +469,7 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 	run.FixesCSV = filepath.Join(outDir, run.Label+"-fixes.csv")
 	fixesDone := make(chan error, 1)
 	go func() { fixesDone <- writeFixes(run.FixesCSV, run.Fixes) }()
-	err = smoothAndTrack(rc.a, steps, walk, src.Truth, opt)
+	err = smoothAndTrack(ctx, rc.a, steps, walk, src.Truth, opt)
 	if ferr := <-fixesDone; err == nil {
 		err = ferr
 	}
@@ -471,14 +481,14 @@ func Analyze(src Source, outDir string, opt Options) (*Run, error) {
 }
 
 // smoothAndTrack smooths the steps and walks the smoothed track forwards.
-func smoothAndTrack(a *accumulator, steps *stepStore, walk *filteredWalk, truth string, opt Options) error {
+func smoothAndTrack(ctx context.Context, a *accumulator, steps *stepStore, walk *filteredWalk, truth string, opt Options) error {
 	every := thinEvery(steps.Len(), opt.MaxPoints)
-	smoothed, err := smooth(steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
+	smoothed, err := smooth(ctx, steps, opt.TempDir, every, rowBudget(opt.MemoryBytes))
 	if err != nil {
 		return err
 	}
 	defer smoothed.close()
-	return a.tracks(smoothed, walk, truth)
+	return a.tracks(ctx, smoothed, walk, truth)
 }
 
 // thinEvery returns the stride of the tracks' points drawn: every
@@ -493,7 +503,7 @@ func rowBudget(memoryBytes int64) int64 { return 4 * memoryBytes }
 
 // smooth runs the smoother over the steps into a store of its own, which
 // keeps whole the states at every every-th step.
-func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothedRows, error) {
+func smooth(ctx context.Context, steps *stepStore, tempDir string, every int, budget int64) (*smoothedRows, error) {
 	k := estimator.MaxStates
 	if steps.onDisk() {
 		k = steps.file.k
@@ -502,7 +512,7 @@ func smooth(steps *stepStore, tempDir string, every int, budget int64) (*smoothe
 	if err != nil {
 		return nil, err
 	}
-	src := prefetchSteps(steps, every)
+	src := prefetchSteps(ctx, steps, every)
 	err = fusion.Smooth(src, smoothed)
 	src.p.close()
 	// The steps are read: their file goes now, before the walk writes the
@@ -778,12 +788,12 @@ func EmptyStretch(fromNs, toNs, lastNs int64) error {
 var ErrTruth = errors.New("truth file")
 
 // replay replays the source and returns the robot after its last input.
-func (rc *recorder) replay(src Source) (*fusion.Robot, error) {
+func (rc *recorder) replay(ctx context.Context, src Source) (*fusion.Robot, error) {
 	switch {
 	case src.JournalDir != "":
-		return rc.replayJournal(src)
+		return rc.replayJournal(ctx, src)
 	case src.Samples != "":
-		return rc.replaySamples(src)
+		return rc.replaySamples(ctx, src)
 	}
 	return nil, errors.New("review needs a journal or a samples file")
 }
@@ -853,7 +863,7 @@ func (rc *recorder) took(fr *fusion.Robot, s *pb.Sample, resp *pb.IngestResponse
 	}
 }
 
-func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
+func (rc *recorder) replayJournal(ctx context.Context, src Source) (*fusion.Robot, error) {
 	id := robotID(src.Robot)
 	rc.run.Robot = "robots/" + id
 	var gaps []string
@@ -868,6 +878,9 @@ func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
 			return nil
 		},
 		Input: func(r *journal.Replayed) error {
+			if err := ctx.Err(); err != nil {
+				return err
+			}
 			rc.took(r.Robot, r.Input.GetSample(), r.Response)
 			return nil
 		}})
@@ -883,7 +896,7 @@ func (rc *recorder) replayJournal(src Source) (*fusion.Robot, error) {
 	return fr, nil
 }
 
-func (rc *recorder) replaySamples(src Source) (*fusion.Robot, error) {
+func (rc *recorder) replaySamples(ctx context.Context, src Source) (*fusion.Robot, error) {
 	c := src.Config
 	if src.Override != nil {
 		c = src.Override
@@ -908,6 +921,9 @@ func (rc *recorder) replaySamples(src Source) (*fusion.Robot, error) {
 	defer f.Close()
 	sr := convert.NewSampleReader(f)
 	for n := 0; ; n++ {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
 		s, err := sr.Next()
 		switch {
 		case errors.Is(err, io.EOF) && n == 0:
@@ -1331,7 +1347,7 @@ func (w *filteredWalk) step(s *fusion.Step, row *trackRow) {
 // tracks walks the smoothed states forwards once the smoother and the
 // filtered walk are done: the smoothed track's export, its decimated
 // series and, with a truth file, the smoothed errors.
-func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath string) error {
+func (a *accumulator) tracks(ctx context.Context, sm *smoothedRows, fw *filteredWalk, truthPath string) error {
 	run, sum := a.run, &a.run.Summary
 	run.SmoothedCSV = strings.TrimSuffix(run.FilteredCSV, "-filtered.csv") + "-smoothed.csv"
 	// The smoothed track's rows are formatted and written by a goroutine
@@ -1355,7 +1371,7 @@ func (a *accumulator) tracks(sm *smoothedRows, fw *filteredWalk, truthPath strin
 	}
 	n := fw.n
 	every := sm.every
-	pf := prefetchTrack(sm, fw, truth)
+	pf := prefetchTrack(ctx, sm, fw, truth)
 	defer pf.close()
 	var sSq, fNees, sNees float64
 	var fAll, sAll logHistogram

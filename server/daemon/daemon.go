@@ -10,6 +10,7 @@ import (
 	"crypto/x509"
 	"errors"
 	"fmt"
+	"log"
 	"log/slog"
 	"net"
 	"net/http"
@@ -164,7 +165,9 @@ func Serve(ctx context.Context, dc Config) error {
 		return err
 	}
 	serveErr := make(chan error, 1)
-	go func() { serveErr <- gs.Serve(&acceptLog{Listener: lis, log: dc.Logger}) }()
+	go func() {
+		serveErr <- gs.Serve(&acceptLog{Listener: srv.LimitConnections(userTimeout{lis}), log: dc.Logger})
+	}()
 	dc.Logger.Info("serving", "listen", lis.Addr().String(), "tls", dc.TLSCert != "", "mtls", dc.TLSClientCA != "", "token", dc.Token != "", "journal", dc.JournalDir, "metrics", metricsAddr, "view", viewAddr)
 	if dc.ViewReady != nil && vsrv != nil {
 		dc.ViewReady(viewAddr)
@@ -212,6 +215,11 @@ func (dc *Config) defaults() {
 	}
 }
 
+// keepaliveTimeout is how long the gRPC server waits for the answer to a
+// keepalive ping, and for data it sent to be acknowledged (userTimeout),
+// before it closes the connection.
+const keepaliveTimeout = 10 * time.Second
+
 // grpcOptions returns the options of the gRPC server: the service's own,
 // keepalive, the token check and TLS.
 func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
@@ -222,7 +230,7 @@ func grpcOptions(dc *Config) ([]grpc.ServerOption, error) {
 	opts = append(opts,
 		grpc.MaxConcurrentStreams(dc.MaxStreams),
 		grpc.ConnectionTimeout(dc.HandshakeTimeout),
-		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
+		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: keepaliveTimeout}),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
 		grpc.UnaryInterceptor(func(ctx context.Context, req any, info *grpc.UnaryServerInfo, h grpc.UnaryHandler) (any, error) {
 			if err := checkToken(ctx, info.FullMethod, dc.Token); err != nil {
@@ -310,13 +318,22 @@ func startMetrics(dc *Config) (*http.Server, string, error) {
 	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", dc.Metrics.Handler())
-	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second, ErrorLog: httpErrorLog(dc.Logger, "metrics")}
 	go func() {
 		if err := hsrv.Serve(ml); err != nil && !errors.Is(err, http.ErrServerClosed) {
 			dc.Logger.Error("metrics server", "err", err)
 		}
 	}()
 	return hsrv, ml.Addr().String(), nil
+}
+
+// httpErrorLog is the ErrorLog of the HTTP server named server: what
+// net/http logs (a failed accept, a failed TLS handshake, a handler's
+// panic) goes to the service's logger at warning level, with the server's
+// name, rather than to the standard logger, which wrote it to standard
+// error apart from the service's log.
+func httpErrorLog(logger *slog.Logger, server string) *log.Logger {
+	return slog.NewLogLogger(logger.With("server", server).Handler(), slog.LevelWarn)
 }
 
 // wait returns when the gRPC server fails (its error) or ctx is done (nil,
@@ -383,6 +400,23 @@ func (l *acceptLog) Accept() (net.Conn, error) {
 	case l.failures > 0:
 		l.log.Info("accepting connections works again", "listen", l.Addr().String(), "failures", l.failures)
 		l.failures = 0
+	}
+	return c, err
+}
+
+// userTimeout is the gRPC listener under the connection limit: it sets
+// TCP_USER_TIMEOUT to keepaliveTimeout on each connection it accepts, as
+// grpc-go does with keepalive on, but only on a *net.TCPConn, which the
+// limit's connections (server.LimitConnections) are not.
+type userTimeout struct{ net.Listener }
+
+// Accept accepts a connection as the listener does.
+func (l userTimeout) Accept() (net.Conn, error) {
+	c, err := l.Listener.Accept()
+	if tc, ok := c.(*net.TCPConn); ok {
+		// As grpc-go does, but a connection whose option cannot be set is
+		// still served: the keepalive pings find a dead peer too.
+		setUserTimeout(tc, keepaliveTimeout)
 	}
 	return c, err
 }

@@ -60,6 +60,25 @@ func start(t testing.TB, dc Config) *running {
 	return nil
 }
 
+// fileLog is a logger at level writing to a file of the test, and a
+// function reading what it wrote so far, which a test may call while the
+// daemon logs (the handler writes each record with one write).
+func fileLog(t testing.TB, level slog.Level) (*slog.Logger, func() string) {
+	t.Helper()
+	f, err := os.Create(filepath.Join(t.TempDir(), "reckond.log"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { f.Close() })
+	return slog.New(slog.NewTextHandler(f, &slog.HandlerOptions{Level: level})), func() string {
+		b, err := os.ReadFile(f.Name())
+		if err != nil {
+			t.Fatal(err)
+		}
+		return string(b)
+	}
+}
+
 // bearer is a token sent as "authorization: Bearer <token>" with every
 // call. It does not require transport security, so that a test can send it
 // in plain text and see the TLS listener refuse the connection.

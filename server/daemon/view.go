@@ -236,7 +236,8 @@ func startView(dc *Config, srv *server.Server) (*http.Server, string, error) {
 	if err != nil {
 		return nil, "", fmt.Errorf("view: %w", err)
 	}
-	hsrv := &http.Server{Handler: viewHandler(srv, dc.Token), ReadHeaderTimeout: 5 * time.Second, IdleTimeout: time.Minute}
+	hsrv := &http.Server{Handler: viewHandler(srv, dc.Token), ReadHeaderTimeout: 5 * time.Second, IdleTimeout: time.Minute,
+		ErrorLog: httpErrorLog(dc.Logger, "view")}
 	serve := func() error { return hsrv.Serve(vl) }
 	if dc.TLSCert != "" {
 		tc, err := LoadTLS(dc.TLSCert, dc.TLSKey, dc.TLSClientCA)

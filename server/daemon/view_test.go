@@ -7,6 +7,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
+	"log/slog"
 	"net"
 	"net/http"
 	"regexp"
@@ -374,5 +375,29 @@ func TestViewTLS(t *testing.T) {
 		if resp.StatusCode == http.StatusOK {
 			t.Error("plain HTTP to the TLS view served the page")
 		}
+	}
+}
+
+// TestHTTPErrorsLogged: what net/http logs of the live view's server (here
+// a TLS handshake that a client broke off) goes to the service's logger,
+// naming the server. Before, it went to Go's standard logger, on standard
+// error apart from the service's log and its level.
+func TestHTTPErrorsLogged(t *testing.T) {
+	p := newPKI(t, "reckon test CA")
+	cert, key := p.issue(t, "reckond", true)
+	logger, logs := fileLog(t, slog.LevelWarn)
+	v := startViewing(t, Config{TLSCert: cert, TLSKey: key, Token: "greenhouse-7", Options: server.Options{Logger: logger}}, nil)
+	c, err := net.Dial("tcp", v.view)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c.Close() // before the TLS handshake
+	for deadline := time.Now().Add(10 * time.Second); time.Now().Before(deadline); time.Sleep(10 * time.Millisecond) {
+		if strings.Contains(logs(), "TLS handshake error") {
+			break
+		}
+	}
+	if s := logs(); !strings.Contains(s, "level=WARN") || !strings.Contains(s, "TLS handshake error") || !strings.Contains(s, "server=view") {
+		t.Errorf("the view server's handshake error is not in the service's log as a warning naming server=view:\n%s", s)
 	}
 }

@@ -175,7 +175,7 @@ into one HTML report with a calibration section at the top.`)
 	}
 	rs := review.Source{JournalDir: *dir, Robot: *robot, Samples: *samples, Config: cfgProto, Truth: *truth, Run: rec.run}
 	cal := review.Calibration{By: "reckon calibrate", Findings: findings, Columns: cols, Rows: rows, Notes: append(byHand, wrote)}
-	return writeCalibrationReport(stdout, *reportDir, rs, cfgProto, *out, cal)
+	return writeCalibrationReport(ctx, stdout, *reportDir, rs, cfgProto, *out, cal)
 }
 
 // startConfig returns the configuration to calibrate, as YAML, and its
@@ -417,7 +417,7 @@ func scan(s, format string, args ...any) bool {
 // (before) and after (the file after) a calibration into one report in
 // dir with the calibration section at the top (review.WriteCalibrationHTML),
 // and its summary.
-func writeCalibrationReport(stdout io.Writer, dir string, src review.Source, before *pb.RobotConfig, after string, cal review.Calibration) error {
+func writeCalibrationReport(ctx context.Context, stdout io.Writer, dir string, src review.Source, before *pb.RobotConfig, after string, cal review.Calibration) error {
 	afterProto, err := loadYAML(after)
 	if err != nil {
 		return err
@@ -433,14 +433,14 @@ func writeCalibrationReport(stdout io.Writer, dir string, src review.Source, bef
 	}{{"before", before}, {"after", afterProto}} {
 		s := src
 		s.Override, s.Label = c.cfg, c.label
-		run, err := review.Analyze(s, st.tmp, review.Options{})
+		run, err := review.AnalyzeContext(ctx, s, st.tmp, review.Options{})
 		if err != nil {
 			st.abandon()
 			return fmt.Errorf("report, %s: %w", c.label, err)
 		}
 		runs = append(runs, run)
 	}
-	return writeReport(stdout, st, false, runs, func(w io.Writer) error {
+	return writeReport(ctx, stdout, st, false, runs, func(w io.Writer) error {
 		return review.WriteCalibrationHTML(w, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1])
 	})
 }

@@ -314,3 +314,19 @@ func TestOnlineErrorsPlain(t *testing.T) {
 		}
 	}
 }
+
+// TestLimitRefused: a call the service refuses at one of its limits
+// (RESOURCE_EXHAUSTED: here a robot past -max-robots) exits 5, input
+// refused, as its other refusals do. Before, it exited 1, any other
+// failure.
+func TestLimitRefused(t *testing.T) {
+	addr, _ := serveWith(t, "127.0.0.1:0", server.Options{JournalDir: t.TempDir(), Limits: server.Limits{MaxRobots: 1}})
+	ctx := context.Background()
+	if _, errs, code := runCode(t, ctx, "", "create", "cart", "-config", exampleConfig, "-addr", addr); code != exitOK {
+		t.Fatalf("create cart: exit %d: %s", code, errs)
+	}
+	_, errs, code := runCode(t, ctx, "", "create", "cart-b", "-config", exampleConfig, "-addr", addr)
+	if code != exitRefused || !strings.Contains(errs, "-max-robots") {
+		t.Errorf("create past -max-robots: exit %d, stderr %q; want %d naming -max-robots", code, errs, exitRefused)
+	}
+}

@@ -22,7 +22,7 @@ const (
 	exitUsage       = 2   // bad flags or arguments
 	exitUnreachable = 3   // the service did not answer
 	exitNotFound    = 4   // no such robot
-	exitRefused     = 5   // input refused: a bad configuration or samples file, a differing configuration, a refused reseed
+	exitRefused     = 5   // input refused: a bad configuration or samples file, a differing configuration, a refused reseed, a limit of the service
 	exitInterrupted = 130 // interrupted (Ctrl-C or SIGTERM), 128 + SIGINT as shells report it
 )
 
@@ -79,7 +79,7 @@ func exitCode(err error) int {
 			return exitUnreachable
 		case codes.NotFound:
 			return exitNotFound
-		case codes.InvalidArgument, codes.FailedPrecondition, codes.AlreadyExists, codes.OutOfRange:
+		case codes.InvalidArgument, codes.FailedPrecondition, codes.AlreadyExists, codes.OutOfRange, codes.ResourceExhausted:
 			return exitRefused
 		case codes.Canceled:
 			return exitInterrupted

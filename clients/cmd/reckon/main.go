@@ -40,7 +40,8 @@
 //	4    no such robot (gRPC NotFound; offline, no journal of it)
 //	5    input refused: a bad configuration or samples file, a configuration
 //	     that differs from the existing robot's, or a refusal by the service
-//	     (gRPC InvalidArgument, FailedPrecondition, AlreadyExists, OutOfRange)
+//	     (gRPC InvalidArgument, FailedPrecondition, AlreadyExists, OutOfRange,
+//	     and ResourceExhausted for one of its limits, -max-robots say)
 //	130  interrupted by Ctrl-C or SIGTERM; feed, link and watch print a
 //	     summary of what they did first
 package main

@@ -181,13 +181,13 @@ its own; the default is run 1, and the summary names the others).`)
 		return err
 	}
 	prog, done := progress(stderr, "replaying and smoothing")
-	run, err := review.Analyze(src, st.tmp, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
+	run, err := review.AnalyzeContext(ctx, src, st.tmp, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 	done()
 	if err != nil {
 		st.abandon()
 		return err
 	}
-	return writeReports(stdout, st, "Review of "+run.Robot+" ("+run.Label+")", run)
+	return writeReports(ctx, stdout, st, "Review of "+run.Robot+" ("+run.Label+")", run)
 }
 
 func runCompare(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -234,7 +234,7 @@ their differences.`)
 	var runs []*review.Run
 	for _, s := range srcs {
 		prog, done := progress(stderr, "replaying "+s.Label)
-		run, err := review.Analyze(s, st.tmp, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
+		run, err := review.AnalyzeContext(ctx, s, st.tmp, review.Options{Progress: prog, FromNs: span.fromNs, ToNs: span.toNs})
 		done()
 		if err != nil {
 			st.abandon()
@@ -242,21 +242,28 @@ their differences.`)
 		}
 		runs = append(runs, run)
 	}
-	return writeReports(stdout, st, "Comparison: "+runs[0].Label+" and "+runs[1].Label, runs...)
+	return writeReports(ctx, stdout, st, "Comparison: "+runs[0].Label+" and "+runs[1].Label, runs...)
 }
 
-func writeReports(stdout io.Writer, st *staging, title string, runs ...*review.Run) error {
-	return writeReport(stdout, st, true, runs, func(w io.Writer) error { return review.WriteHTML(w, title, runs...) })
+func writeReports(ctx context.Context, stdout io.Writer, st *staging, title string, runs ...*review.Run) error {
+	return writeReport(ctx, stdout, st, true, runs, func(w io.Writer) error { return review.WriteHTML(w, title, runs...) })
 }
 
 // writeReport writes the runs' text summary to summary.txt (and to stdout
 // with echo) and the HTML report that html writes to report.html, in the
 // staging directory beside the exports of runs, moves them all into the
-// output directory, and says where the report is. On an error it abandons
-// the staging directory, and the output directory keeps what it held.
-func writeReport(stdout io.Writer, st *staging, echo bool, runs []*review.Run, html func(io.Writer) error) error {
+// output directory, and says where the report is. On an error, or once
+// ctx is done (Ctrl-C while the report was drawn), it abandons the staging
+// directory, and the output directory keeps what it held.
+func writeReport(ctx context.Context, stdout io.Writer, st *staging, echo bool, runs []*review.Run, html func(io.Writer) error) error {
 	st.place(runs...)
-	err := writeReportFiles(stdout, st.tmp, echo, runs, html)
+	err := ctx.Err()
+	if err == nil {
+		err = writeReportFiles(stdout, st.tmp, echo, runs, html)
+	}
+	if err == nil {
+		err = ctx.Err()
+	}
 	if err != nil {
 		st.abandon()
 		return err

@@ -159,7 +159,7 @@ calibration section at the top.`)
 	}
 	cols, rows := levelTable(fit)
 	cal := review.Calibration{By: "reckon tune", Columns: cols, Rows: rows, Notes: []string{wrote}}
-	return writeCalibrationReport(stdout, *reportDir, src, cfgProto, *out, cal)
+	return writeCalibrationReport(ctx, stdout, *reportDir, src, cfgProto, *out, cal)
 }
 
 // levelTable is the table of a noise fit's levels: each as configured and

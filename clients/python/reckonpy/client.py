@@ -392,7 +392,10 @@ class Client:
         """reseed restarts robot's estimate from the field pose (x_m, y_m,
         heading_rad) at stamp_ns with cov, its 3x3 covariance (m^2, m*rad,
         rad^2). Samples stamped before stamp_ns are no longer taken. A
-        refused reseed is a response with its verdict and reason."""
+        reseed the robot took and refused (stamped too far ahead) is a
+        response with its verdict, reason and refusal; one refused before
+        it was taken raises grpc.RpcError, whose gRPC status details
+        hold the response with its refusal and field (sequence 0)."""
         req = fs_pb2.ReseedRobotRequest(robot=robot_name(robot), reseed=samples_pb2.Reseed(
             stamp_ns=int(stamp_ns), pose=robot_pb2.FloorPose(x_m=x_m, y_m=y_m, heading_rad=heading_rad),
             covariance=covariance(cov, 3)))

@@ -1760,7 +1760,8 @@ func (x *ReseedRobotRequest) GetReseed() *Reseed {
 	return nil
 }
 
-// ReseedRobotResponse is the verdict.
+// ReseedRobotResponse is the verdict; for a re-seed refused before the
+// robot took it, the details of the call's status (sequence 0).
 type ReseedRobotResponse struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The input's sequence number.
@@ -1768,7 +1769,14 @@ type ReseedRobotResponse struct {
 	// Its verdict.
 	Verdict Verdict `protobuf:"varint,2,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`
 	// Why it was refused.
-	Reason        string `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
+	Reason string `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
+	// Why it was refused, as a value (REFUSAL_UNSPECIFIED if not, and for
+	// a robot that does not exist: the status code says it), as
+	// IngestResponse.refusal.
+	Refusal Refusal `protobuf:"varint,4,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
+	// The snake_case path of the request's field that was wrong, when one
+	// was ("reseed.covariance"), for a refusal.
+	Field         string `protobuf:"bytes,5,opt,name=field,proto3" json:"field,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1820,6 +1828,20 @@ func (x *ReseedRobotResponse) GetVerdict() Verdict {
 func (x *ReseedRobotResponse) GetReason() string {
 	if x != nil {
 		return x.Reason
+	}
+	return ""
+}
+
+func (x *ReseedRobotResponse) GetRefusal() Refusal {
+	if x != nil {
+		return x.Refusal
+	}
+	return Refusal_REFUSAL_UNSPECIFIED
+}
+
+func (x *ReseedRobotResponse) GetField() string {
+	if x != nil {
+		return x.Field
 	}
 	return ""
 }
@@ -1879,7 +1901,8 @@ func (x *StartRunRequest) GetRunStart() *RunStart {
 	return nil
 }
 
-// StartRunResponse is the verdict.
+// StartRunResponse is the verdict; for a run start refused before the
+// robot took it, the details of the call's status (sequence 0).
 type StartRunResponse struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The input's sequence number.
@@ -1889,7 +1912,14 @@ type StartRunResponse struct {
 	// Why it was refused.
 	Reason string `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
 	// The number of the run it started, from 1.
-	Run           uint64 `protobuf:"varint,4,opt,name=run,proto3" json:"run,omitempty"`
+	Run uint64 `protobuf:"varint,4,opt,name=run,proto3" json:"run,omitempty"`
+	// Why it was refused, as a value (REFUSAL_UNSPECIFIED if not, and for
+	// a robot that does not exist: the status code says it), as
+	// IngestResponse.refusal.
+	Refusal Refusal `protobuf:"varint,5,opt,name=refusal,proto3,enum=reckon.v1.Refusal" json:"refusal,omitempty"`
+	// The snake_case path of the request's field that was wrong, when one
+	// was ("run_start.boot_id"), for a refusal.
+	Field         string `protobuf:"bytes,6,opt,name=field,proto3" json:"field,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1950,6 +1980,20 @@ func (x *StartRunResponse) GetRun() uint64 {
 		return x.Run
 	}
 	return 0
+}
+
+func (x *StartRunResponse) GetRefusal() Refusal {
+	if x != nil {
+		return x.Refusal
+	}
+	return Refusal_REFUSAL_UNSPECIFIED
+}
+
+func (x *StartRunResponse) GetField() string {
+	if x != nil {
+		return x.Field
+	}
+	return ""
 }
 
 // GetStatisticsRequest names a robot.
@@ -2435,19 +2479,23 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x04pose\x18\x01 \x01(\v2\x14.reckon.v1.FusedPoseR\x04pose\"U\n" +
 	"\x12ReseedRobotRequest\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12)\n" +
-	"\x06reseed\x18\x02 \x01(\v2\x11.reckon.v1.ReseedR\x06reseed\"w\n" +
+	"\x06reseed\x18\x02 \x01(\v2\x11.reckon.v1.ReseedR\x06reseed\"\xbb\x01\n" +
 	"\x13ReseedRobotResponse\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
 	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x16\n" +
-	"\x06reason\x18\x03 \x01(\tR\x06reason\"Y\n" +
+	"\x06reason\x18\x03 \x01(\tR\x06reason\x12,\n" +
+	"\arefusal\x18\x04 \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\x12\x14\n" +
+	"\x05field\x18\x05 \x01(\tR\x05field\"Y\n" +
 	"\x0fStartRunRequest\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x120\n" +
-	"\trun_start\x18\x02 \x01(\v2\x13.reckon.v1.RunStartR\brunStart\"\x86\x01\n" +
+	"\trun_start\x18\x02 \x01(\v2\x13.reckon.v1.RunStartR\brunStart\"\xca\x01\n" +
 	"\x10StartRunResponse\x12\x1a\n" +
 	"\bsequence\x18\x01 \x01(\x04R\bsequence\x12,\n" +
 	"\averdict\x18\x02 \x01(\x0e2\x12.reckon.v1.VerdictR\averdict\x12\x16\n" +
 	"\x06reason\x18\x03 \x01(\tR\x06reason\x12\x10\n" +
-	"\x03run\x18\x04 \x01(\x04R\x03run\",\n" +
+	"\x03run\x18\x04 \x01(\x04R\x03run\x12,\n" +
+	"\arefusal\x18\x05 \x01(\x0e2\x12.reckon.v1.RefusalR\arefusal\x12\x14\n" +
+	"\x05field\x18\x06 \x01(\tR\x05field\",\n" +
 	"\x14GetStatisticsRequest\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\"S\n" +
 	"\x15GetStatisticsResponse\x12:\n" +
@@ -2622,40 +2670,42 @@ var file_reckon_v1_fusion_service_proto_depIdxs = []int32{
 	17, // 18: reckon.v1.GetPoseAtResponse.pose:type_name -> reckon.v1.FusedPose
 	37, // 19: reckon.v1.ReseedRobotRequest.reseed:type_name -> reckon.v1.Reseed
 	1,  // 20: reckon.v1.ReseedRobotResponse.verdict:type_name -> reckon.v1.Verdict
-	38, // 21: reckon.v1.StartRunRequest.run_start:type_name -> reckon.v1.RunStart
-	1,  // 22: reckon.v1.StartRunResponse.verdict:type_name -> reckon.v1.Verdict
-	31, // 23: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
-	29, // 24: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
-	4,  // 25: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
-	29, // 26: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
-	29, // 27: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
-	30, // 28: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
-	3,  // 29: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
-	5,  // 30: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
-	7,  // 31: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
-	9,  // 32: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
-	11, // 33: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
-	13, // 34: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
-	19, // 35: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
-	21, // 36: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
-	23, // 37: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
-	27, // 38: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
-	25, // 39: reckon.v1.FusionService.StartRun:input_type -> reckon.v1.StartRunRequest
-	6,  // 40: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
-	8,  // 41: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
-	10, // 42: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
-	12, // 43: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
-	14, // 44: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
-	20, // 45: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
-	22, // 46: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
-	24, // 47: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
-	28, // 48: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
-	26, // 49: reckon.v1.FusionService.StartRun:output_type -> reckon.v1.StartRunResponse
-	40, // [40:50] is the sub-list for method output_type
-	30, // [30:40] is the sub-list for method input_type
-	30, // [30:30] is the sub-list for extension type_name
-	30, // [30:30] is the sub-list for extension extendee
-	0,  // [0:30] is the sub-list for field type_name
+	0,  // 21: reckon.v1.ReseedRobotResponse.refusal:type_name -> reckon.v1.Refusal
+	38, // 22: reckon.v1.StartRunRequest.run_start:type_name -> reckon.v1.RunStart
+	1,  // 23: reckon.v1.StartRunResponse.verdict:type_name -> reckon.v1.Verdict
+	0,  // 24: reckon.v1.StartRunResponse.refusal:type_name -> reckon.v1.Refusal
+	31, // 25: reckon.v1.GetStatisticsResponse.statistics:type_name -> reckon.v1.RobotStatistics
+	29, // 26: reckon.v1.SensorConsistency.counts:type_name -> reckon.v1.VerdictCounts
+	4,  // 27: reckon.v1.SensorConsistency.verdict:type_name -> reckon.v1.ConsistencyVerdict
+	29, // 28: reckon.v1.RobotStatistics.odometry:type_name -> reckon.v1.VerdictCounts
+	29, // 29: reckon.v1.RobotStatistics.measurements:type_name -> reckon.v1.VerdictCounts
+	30, // 30: reckon.v1.RobotStatistics.sensors:type_name -> reckon.v1.SensorConsistency
+	3,  // 31: reckon.v1.RobotStatistics.distrust:type_name -> reckon.v1.DistrustReason
+	5,  // 32: reckon.v1.FusionService.CreateRobot:input_type -> reckon.v1.CreateRobotRequest
+	7,  // 33: reckon.v1.FusionService.GetRobot:input_type -> reckon.v1.GetRobotRequest
+	9,  // 34: reckon.v1.FusionService.ListRobots:input_type -> reckon.v1.ListRobotsRequest
+	11, // 35: reckon.v1.FusionService.DeleteRobot:input_type -> reckon.v1.DeleteRobotRequest
+	13, // 36: reckon.v1.FusionService.Ingest:input_type -> reckon.v1.IngestRequest
+	19, // 37: reckon.v1.FusionService.Watch:input_type -> reckon.v1.WatchRequest
+	21, // 38: reckon.v1.FusionService.GetPoseAt:input_type -> reckon.v1.GetPoseAtRequest
+	23, // 39: reckon.v1.FusionService.ReseedRobot:input_type -> reckon.v1.ReseedRobotRequest
+	27, // 40: reckon.v1.FusionService.GetStatistics:input_type -> reckon.v1.GetStatisticsRequest
+	25, // 41: reckon.v1.FusionService.StartRun:input_type -> reckon.v1.StartRunRequest
+	6,  // 42: reckon.v1.FusionService.CreateRobot:output_type -> reckon.v1.CreateRobotResponse
+	8,  // 43: reckon.v1.FusionService.GetRobot:output_type -> reckon.v1.GetRobotResponse
+	10, // 44: reckon.v1.FusionService.ListRobots:output_type -> reckon.v1.ListRobotsResponse
+	12, // 45: reckon.v1.FusionService.DeleteRobot:output_type -> reckon.v1.DeleteRobotResponse
+	14, // 46: reckon.v1.FusionService.Ingest:output_type -> reckon.v1.IngestResponse
+	20, // 47: reckon.v1.FusionService.Watch:output_type -> reckon.v1.WatchResponse
+	22, // 48: reckon.v1.FusionService.GetPoseAt:output_type -> reckon.v1.GetPoseAtResponse
+	24, // 49: reckon.v1.FusionService.ReseedRobot:output_type -> reckon.v1.ReseedRobotResponse
+	28, // 50: reckon.v1.FusionService.GetStatistics:output_type -> reckon.v1.GetStatisticsResponse
+	26, // 51: reckon.v1.FusionService.StartRun:output_type -> reckon.v1.StartRunResponse
+	42, // [42:52] is the sub-list for method output_type
+	32, // [32:42] is the sub-list for method input_type
+	32, // [32:32] is the sub-list for extension type_name
+	32, // [32:32] is the sub-list for extension extendee
+	0,  // [0:32] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_fusion_service_proto_init() }

@@ -83,8 +83,10 @@ type FusionServiceClient interface {
 	GetPoseAt(ctx context.Context, in *GetPoseAtRequest, opts ...grpc.CallOption) (*GetPoseAtResponse, error)
 	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
 	// the robot refuses before taking it (sequence 0) ends the call with the
-	// status of IngestResponse.status_code and the reason; one it took is
-	// answered with its verdict. A re-seed stamped after the newest odometry
+	// status of IngestResponse.status_code and the reason, whose details hold
+	// a ReseedRobotResponse saying the refusal as a value (sequence 0,
+	// VERDICT_INVALID, refusal and field); one it took is answered with its
+	// verdict. A re-seed stamped after the newest odometry
 	// is held (VERDICT_HELD) until odometry reaches its stamp; its final
 	// verdict is sent nowhere, as the call has no stream: a watcher sees
 	// EVENT_KIND_RESEEDED when it is applied.
@@ -95,7 +97,10 @@ type FusionServiceClient interface {
 	// Starts a new run of a robot by hand, as a run_start sample does: use it
 	// when the robot's controller restarted (its clock jumped back) and its
 	// sender cannot say so itself. Journaled like any input; refused as
-	// ReseedRobot is (FAILED_PRECONDITION for a run start out of order).
+	// ReseedRobot is, with a StartRunResponse in the status's details
+	// (FAILED_PRECONDITION for a run start out of order,
+	// REFUSAL_RUN_OUT_OF_ORDER, or to a quarantined robot,
+	// REFUSAL_QUARANTINED).
 	StartRun(ctx context.Context, in *StartRunRequest, opts ...grpc.CallOption) (*StartRunResponse, error)
 }
 
@@ -271,8 +276,10 @@ type FusionServiceServer interface {
 	GetPoseAt(context.Context, *GetPoseAtRequest) (*GetPoseAtResponse, error)
 	// Re-seeds a robot's pose by hand; journaled like any input. A re-seed
 	// the robot refuses before taking it (sequence 0) ends the call with the
-	// status of IngestResponse.status_code and the reason; one it took is
-	// answered with its verdict. A re-seed stamped after the newest odometry
+	// status of IngestResponse.status_code and the reason, whose details hold
+	// a ReseedRobotResponse saying the refusal as a value (sequence 0,
+	// VERDICT_INVALID, refusal and field); one it took is answered with its
+	// verdict. A re-seed stamped after the newest odometry
 	// is held (VERDICT_HELD) until odometry reaches its stamp; its final
 	// verdict is sent nowhere, as the call has no stream: a watcher sees
 	// EVENT_KIND_RESEEDED when it is applied.
@@ -283,7 +290,10 @@ type FusionServiceServer interface {
 	// Starts a new run of a robot by hand, as a run_start sample does: use it
 	// when the robot's controller restarted (its clock jumped back) and its
 	// sender cannot say so itself. Journaled like any input; refused as
-	// ReseedRobot is (FAILED_PRECONDITION for a run start out of order).
+	// ReseedRobot is, with a StartRunResponse in the status's details
+	// (FAILED_PRECONDITION for a run start out of order,
+	// REFUSAL_RUN_OUT_OF_ORDER, or to a quarantined robot,
+	// REFUSAL_QUARANTINED).
 	StartRun(context.Context, *StartRunRequest) (*StartRunResponse, error)
 	mustEmbedUnimplementedFusionServiceServer()
 }

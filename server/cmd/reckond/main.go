@@ -90,6 +90,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&lim.MaxWatchers, "max-watchers", 1024, "open watch streams in all")
 	fs.IntVar(&lim.MaxViewers, "max-viewers", 16, "open live view pages (event streams) in all")
 	fs.IntVar(&lim.MaxIngestStreams, "max-ingest-streams", 2048, "open ingest streams in all")
+	fs.IntVar(&lim.MaxConnections, "max-connections", 2048, "open gRPC connections in all; one more is closed at once")
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
@@ -125,6 +126,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		{"max-watchers", int64(lim.MaxWatchers), 1, 1 << 20},
 		{"max-viewers", int64(lim.MaxViewers), 1, 1 << 16},
 		{"max-ingest-streams", int64(lim.MaxIngestStreams), 1, 1 << 20},
+		{"max-connections", int64(lim.MaxConnections), 1, 1 << 20},
 		{"max-message-bytes", int64(*maxMsg), 1 << 10, 1 << 40},
 		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
 	} {

@@ -38,6 +38,7 @@ func TestFlagErrors(t *testing.T) {
 		{[]string{"-max-watchers", "0"}, "max-watchers: 0"},
 		{[]string{"-max-watchers-per-robot", "-2"}, "max-watchers-per-robot"},
 		{[]string{"-max-viewers", "-1"}, "max-viewers"},
+		{[]string{"-max-connections", "0"}, "max-connections: 0"},
 		{[]string{"-max-string-bytes", "0"}, "max-string-bytes"},
 		{[]string{"-max-message-bytes", "-1"}, "max-message-bytes"},
 		{[]string{"-fsync-interval", "-1s"}, "fsync-interval: -1s is not between"},

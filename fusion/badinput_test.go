@@ -157,6 +157,9 @@ func TestBadInputChangesNothing(t *testing.T) {
 		{"landmark without range or bearing", func(r *Robot) Result {
 			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},
+		{"landmark fix naming a marker", func(r *Robot) Result {
+			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", Marker: "post-1", RangeM: f(2), Cov: []float64{0.01}})
+		}, ErrBadSample, VerdictInvalid},
 		{"negative range", func(r *Robot) Result {
 			return r.AddFix(Fix{SensorID: "landmark", StampNs: newest - 100e6, Kind: FixLandmark, LandmarkID: "post-1", RangeM: f(-2), Cov: []float64{0.01}})
 		}, ErrBadSample, VerdictInvalid},

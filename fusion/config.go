@@ -116,8 +116,8 @@ func DefaultNoise() Noise {
 }
 
 // Recovery is the move-recovery policy: Count consecutive refused pose
-// fixes that agree with one another re-initialise the pose from the last
-// of them.
+// fixes that agree with one another, from DistinctMarkers markers when
+// they name theirs, re-initialise the pose from the last of them.
 type Recovery struct {
 	// Enabled turns move recovery on.
 	Enabled bool
@@ -126,6 +126,13 @@ type Recovery struct {
 	// AgreeProbability is the chi-square probability within which the
 	// fixes must agree with one another (default 0.99).
 	AgreeProbability float64
+	// DistinctMarkers is how many different markers the agreeing refused
+	// fixes must come from (default 2, at most maxDistinctMarkers): pose
+	// fixes by Fix.Marker, landmark fixes by their landmark (at least two
+	// of those anyway, for the heading). A run of pose fixes that name no
+	// marker recovers as before; 1 recovers from one marker's fixes
+	// (DEVELOPERS.md, "Design: Gating and recovery").
+	DistinctMarkers int
 }
 
 // TrustLimits say when the estimate must not be trusted. Zero fields take
@@ -222,7 +229,10 @@ const (
 	maxWindowNs      = 5e9
 	maxHeldLimit     = 1024
 	maxRecoveryCount = 100
-	maxNISWindow     = 1000
+	// maxDistinctMarkers bounds recovery.distinct_markers (checked by
+	// Validate): each marker beyond the first keeps one more candidate.
+	maxDistinctMarkers = 8
+	maxNISWindow       = 1000
 	// maxIMULatencyNs bounds imu_latency_ns (checked by Validate): an IMU
 	// that lags its readings by more than a second is no heading source.
 	maxIMULatencyNs = 1e9
@@ -275,6 +285,9 @@ func (c Config) withDefaults() Config {
 		c.Recovery.Count = 3
 	}
 	def(&c.Recovery.AgreeProbability, 0.99)
+	if c.Recovery.DistinctMarkers == 0 {
+		c.Recovery.DistinctMarkers = 2
+	}
 	def(&c.Trust.MaxPosition95M, 0.5)
 	def(&c.Trust.MaxHeadingStdRad, 0.1)
 	if c.Trust.NISWindow == 0 {
@@ -513,6 +526,9 @@ func (c *Config) checkLimits() error {
 	}
 	if c.Recovery.Count < 2 {
 		return cfgErr("recovery.count", "%d must be at least 2: one refused fix proves nothing", c.Recovery.Count)
+	}
+	if c.Recovery.DistinctMarkers < 1 || c.Recovery.DistinctMarkers > maxDistinctMarkers {
+		return cfgErr("recovery.distinct_markers", "%d must be in [1, %d]", c.Recovery.DistinctMarkers, maxDistinctMarkers)
 	}
 	switch {
 	case c.IMULatencyNs < 0 || c.IMULatencyNs > maxIMULatencyNs:

@@ -34,6 +34,8 @@ func TestConfigValidate(t *testing.T) {
 		{"gate", func(c *Config) { c.GateProbability = 1.5 }, "gate_probability"},
 		{"window", func(c *Config) { c.WindowNs = -5 }, "window_ns"},
 		{"recovery count", func(c *Config) { c.Recovery.Count = 1 }, "recovery.count"},
+		{"distinct markers negative", func(c *Config) { c.Recovery.DistinctMarkers = -1 }, "recovery.distinct_markers"},
+		{"distinct markers too many", func(c *Config) { c.Recovery.DistinctMarkers = 9 }, "recovery.distinct_markers"},
 		{"initial cov", func(c *Config) { c.StartCov = []float64{1, 2, 0, 2, 1, 0, 0, 0, 1} }, "start_covariance"},
 		{"initial cov size", func(c *Config) { c.StartCov = []float64{1} }, "start_covariance"},
 		{"landmark twice", func(c *Config) { c.Landmarks = []Landmark{{ID: "a"}, {ID: "a"}} }, "landmarks[1].id"},

@@ -47,6 +47,9 @@ func (r *Robot) fixMeasurement(f *Fix) (estimator.Measurement, int, error) {
 	default:
 		return m, si, badf("fix kind %d is not pose, position, heading or landmark", f.Kind)
 	}
+	if f.Marker != "" && f.Kind != FixPose {
+		return m, si, &FieldError{Path: "marker", Err: fmt.Errorf("%w: a %s fix names marker %q; only pose fixes name their marker (a landmark fix names its landmark)", ErrBadSample, f.Kind, f.Marker)}
+	}
 	si, ok := r.sensorIndex[f.SensorID]
 	if !ok {
 		return m, -1, &FieldError{Path: "sensor_id", Err: fmt.Errorf("%w: sensor_id %q is not among the robot's configured sensors", ErrUnknownSensor, f.SensorID)}
@@ -123,7 +126,7 @@ func (r *Robot) decideMeas(res *Result, ins *insertion, sensor string) {
 		}
 		if !e.imu {
 			r.fixApplied(ins.at)
-			r.cands = r.cands[:0]
+			r.clearCandidates()
 		} else {
 			r.checkTurn(res, ins.at)
 		}
@@ -251,5 +254,6 @@ func (r *Robot) AddFix(fx Fix) Result {
 	if fx.Kind == FixLandmark {
 		e.lm = r.landmarks[fx.LandmarkID].id
 	}
+	e.marker = markerKey(fx.Marker)
 	return r.finish(r.addMeasurement(res, &e, id))
 }

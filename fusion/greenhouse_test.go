@@ -50,7 +50,11 @@ import (
 //     the driver stamps the frame 15 ms after the exposure (jitter 3 ms) and
 //     the fix arrives 40 to 120 ms after the exposure; 2% of fixes read the
 //     wrong marker's code and put the cart where that marker would have put
-//     it, 5 m along the path or 1.6 m across.
+//     it, 5 m along the path or 1.6 m across. Each fix names the marker it
+//     read ("post-i-j", the i-th post along the j-th bench line), as
+//     WIRING.md asks a vision process to. Optionally (ghMarkers) a share of
+//     the posts read as the next post along on every frame (a dirty or
+//     mislabelled tag).
 //
 // The magnitudes are common practice for a small cart with MEMS sensors and
 // printed markers (from memory). The configuration is what the README and
@@ -80,6 +84,23 @@ const (
 
 // ghCountsPerM is the configured counts per metre (nominal radius).
 var ghCountsPerM = ghCountsPerRev / (2 * math.Pi * ghRadiusM)
+
+// ghMarkers chooses the posts whose marker reads as the next post's on
+// every frame: a share of them, drawn per post from a stream of its own, so
+// that the runs' other draws are those of runs without the fault.
+type ghMarkers struct {
+	share float64
+	seed  uint64
+}
+
+// misread reports whether post (i, j) reads as post (i+1, j).
+func (m ghMarkers) misread(i, j int) bool {
+	if m.share == 0 {
+		return false
+	}
+	r := rand.New(rand.NewPCG(m.seed, uint64(uint32(i))<<32|uint64(uint32(j))))
+	return r.Float64() < m.share
+}
 
 // ghInput is one input in arrival order; truth is the pose at an odometry
 // sample's stamp; wrong marks a fix read from the wrong marker.
@@ -157,9 +178,9 @@ func ghHeavy(r *rand.Rand, studentT bool) float64 {
 	return z / math.Sqrt(2.2)
 }
 
-// ghSimulate runs one cart for durS seconds and returns its inputs in
-// arrival order.
-func ghSimulate(seed uint64, durS float64) []ghInput {
+// ghSimulate runs one cart for durS seconds, its posts misread as mk
+// says, and returns its inputs in arrival order.
+func ghSimulate(seed uint64, durS float64, mk ghMarkers) []ghInput {
 	r := rand.New(rand.NewPCG(seed, 0x6e7e5))
 	pm := func() float64 { return float64(1 - 2*r.IntN(2)) }
 	// Build errors, fixed for the run.
@@ -267,7 +288,7 @@ func ghSimulate(seed uint64, durS float64) []ghInput {
 		}
 		if t >= nextCam {
 			nextCam += int64(1e9 / camHz)
-			if fx, ok := ghCamera(r, t, estimator.Pose{X: x, Y: y, Heading: th}, studentT); ok {
+			if fx, ok := ghCamera(r, t, estimator.Pose{X: x, Y: y, Heading: th}, studentT, mk); ok {
 				ins = append(ins, fx)
 			}
 		}
@@ -278,7 +299,7 @@ func ghSimulate(seed uint64, durS float64) []ghInput {
 
 // ghCamera returns the camera's fix from an exposure at t with the cart
 // at pose p, if it sees a post's marker.
-func ghCamera(r *rand.Rand, t int64, p estimator.Pose, studentT bool) (ghInput, bool) {
+func ghCamera(r *rand.Rand, t int64, p estimator.Pose, studentT bool, mk ghMarkers) (ghInput, bool) {
 	if r.IntN(3) == 0 {
 		return ghInput{}, false // leaves in the way
 	}
@@ -298,15 +319,26 @@ func ghCamera(r *rand.Rand, t int64, p estimator.Pose, studentT bool) (ghInput, 
 		HeadingRad: estimator.Wrap(cam.Heading + ghCamStdRad*ghHeavy(r, studentT)),
 		StampNs:    t + ghCamStampNs + int64((2*r.Float64()-1)*3e6),
 	}
+	i, j := int(math.Round(px/ghPostGapM)), int(math.Round(py/ghRowGapM-0.5))
+	if mk.misread(i, j) {
+		// This post's tag reads as the next one's on every frame.
+		f.XM += ghPostGapM
+		i++
+	}
 	wrong := r.Float64() < 0.02
 	if wrong {
 		// The code of the next post along, or across the bench.
 		if r.IntN(2) == 0 {
-			f.XM += float64(1-2*r.IntN(2)) * ghPostGapM
+			d := 1 - 2*r.IntN(2)
+			f.XM += float64(d) * ghPostGapM
+			i += d
 		} else {
-			f.YM += float64(1-2*r.IntN(2)) * ghRowGapM
+			d := 1 - 2*r.IntN(2)
+			f.YM += float64(d) * ghRowGapM
+			j += d
 		}
 	}
+	f.Marker = fmt.Sprintf("post-%d-%d", i, j)
 	return ghInput{arrival: t + int64((0.04+0.08*r.Float64())*1e9), fix: f, wrong: wrong}, true
 }
 
@@ -352,16 +384,18 @@ type ghTally struct {
 	camOverconfident, camUnderconfident int
 	camNIS                              float64
 	// The longest stretch trusted outside the 99.9% region, seconds, and
-	// the largest position error while trusted, metres.
-	longestS, worstTrustedM float64
+	// the largest position error while trusted, metres; the longest
+	// stretch trusted with the position more than 1 m off, seconds.
+	longestS, worstTrustedM, trustedOffS float64
 	// Checkpoint NEES sums, one per second, for the Monte Carlo test.
 	cpSum []float64
 	cpN   []int
 }
 
-// ghRun feeds one run to a robot as the service does and measures it.
-func ghRun(seed uint64, durS float64, cfg fusion.Config) (ghTally, error) {
-	ins := ghSimulate(seed, durS)
+// ghRun feeds one run, its posts misread as mk says, to a robot as the
+// service does and measures it.
+func ghRun(seed uint64, durS float64, mk ghMarkers, cfg fusion.Config) (ghTally, error) {
+	ins := ghSimulate(seed, durS, mk)
 	r, err := fusion.New(cfg)
 	if err != nil {
 		return ghTally{}, err
@@ -372,7 +406,7 @@ func ghRun(seed uint64, durS float64, cfg fusion.Config) (ghTally, error) {
 	q999 := distuv.ChiSquared{K: 3}.Quantile(0.999)
 	q95xy := distuv.ChiSquared{K: 2}.Quantile(0.95)
 	nextCP := int64(5e9)
-	outFrom := int64(-1)
+	outFrom, offFrom := int64(-1), int64(-1)
 	for _, in := range ins {
 		if in.fix != nil {
 			res := r.AddFix(*in.fix)
@@ -439,6 +473,14 @@ func ghRun(seed uint64, durS float64, cfg fusion.Config) (ghTally, error) {
 		}
 		if trusted {
 			tl.worstTrustedM = math.Max(tl.worstTrustedM, math.Hypot(in.truth.X-p.Pose.X, in.truth.Y-p.Pose.Y))
+		}
+		if trusted && math.Hypot(in.truth.X-p.Pose.X, in.truth.Y-p.Pose.Y) > 1 {
+			if offFrom < 0 {
+				offFrom = in.odo.StampNs
+			}
+			tl.trustedOffS = math.Max(tl.trustedOffS, float64(in.odo.StampNs-offFrom)*1e-9)
+		} else {
+			offFrom = -1
 		}
 		ex, ey := in.truth.X-p.Pose.X, in.truth.Y-p.Pose.Y
 		if ghMahal2(ex, ey, &p.Cov) > q95xy {
@@ -528,6 +570,7 @@ func (a *ghTally) add(b *ghTally) {
 	a.camNIS += b.camNIS
 	a.longestS = math.Max(a.longestS, b.longestS)
 	a.worstTrustedM = math.Max(a.worstTrustedM, b.worstTrustedM)
+	a.trustedOffS = math.Max(a.trustedOffS, b.trustedOffS)
 	if a.cpSum == nil {
 		a.cpSum, a.cpN = make([]float64, len(b.cpSum)), make([]int, len(b.cpN))
 	}
@@ -550,6 +593,13 @@ type ghVerdict struct {
 // edit if set, and pools them.
 func ghRuns(t *testing.T, runs int, durS float64, edit func(*fusion.Config)) ghVerdict {
 	t.Helper()
+	return ghRunsMisread(t, runs, durS, 0, edit)
+}
+
+// ghRunsMisread is ghRuns with a share of each run's posts read as the next
+// post on every frame (ghMarkers).
+func ghRunsMisread(t *testing.T, runs int, durS, misread float64, edit func(*fusion.Config)) ghVerdict {
+	t.Helper()
 	var v ghVerdict
 	v.runs = runs
 	for k := range runs {
@@ -557,7 +607,7 @@ func ghRuns(t *testing.T, runs int, durS float64, edit func(*fusion.Config)) ghV
 		if edit != nil {
 			edit(&cfg)
 		}
-		tl, err := ghRun(uint64(k+1), durS, cfg)
+		tl, err := ghRun(uint64(k+1), durS, ghMarkers{share: misread, seed: uint64(k + 1)}, cfg)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -666,10 +716,13 @@ func TestGreenhouseCart(t *testing.T) {
 // TestGreenhouseCartCanFail shows that the checks of TestGreenhouseCart
 // catch an overconfident configuration: the wheels', the camera's and the
 // IMU reading's variances at a quarter of the careful user's, and the
-// gyro's scale error left out. Measured: Monte Carlo mean NEES 9.24, 96%
-// of checkpoints above the band, trusted outside the 99.9% region 2.18%
-// of the time (the position outside its 95% ellipse while trusted 3.25%,
-// which that check alone lets pass).
+// gyro's scale error left out. Measured: Monte Carlo mean NEES 14.55, 89%
+// of checkpoints above the band, trusted outside the 99.9% region 2.23%
+// of the time (the position outside its 95% ellipse while trusted 2.72%,
+// which that check alone lets pass). Before fixes named their marker
+// (recovery.distinct_markers 1) 9.24, 96%, 2.18% and 3.25%: the diverged
+// estimate's refused fixes of one post reseeded it, and now wait for the
+// next post's.
 func TestGreenhouseCartCanFail(t *testing.T) {
 	v := ghRuns(t, 16, 240, func(c *fusion.Config) {
 		c.Noise.WheelVarM2PerM /= 4
@@ -683,5 +736,115 @@ func TestGreenhouseCartCanFail(t *testing.T) {
 	t.Logf("%v; caught: %q", &v, caught)
 	if len(caught) == 0 {
 		t.Error("the checks let an overconfident configuration pass")
+	}
+}
+
+// TestGreenhouseMisreadMarkers: 5% of the posts read as the next post
+// along on every frame (session 23's probe, now a test). Under
+// recovery.distinct_markers 1, as every build before the option, the
+// refused fixes of a misread post agree, move recovery reseeds the cart 5
+// m off, and it is trusted there until the next post's fix is refused
+// (measured: 14.6 s at most over 8 runs of 240 s in session 23). Under the
+// default 2 a misread post's fixes name one marker and reseed nothing: the
+// cart is never trusted more than 1 m off.
+func TestGreenhouseMisreadMarkers(t *testing.T) {
+	if testing.Short() {
+		t.Skip("8 runs of 240 s, twice")
+	}
+	old := ghRunsMisread(t, 8, 240, 0.05, func(c *fusion.Config) { c.Recovery.DistinctMarkers = 1 })
+	now := ghRunsMisread(t, 8, 240, 0.05, nil)
+	t.Logf("distinct_markers 1: longest trusted more than 1 m off %.2f s, largest error while trusted %.2f m, %d recoveries", old.tl.trustedOffS, old.tl.worstTrustedM, old.tl.recoveries)
+	t.Logf("distinct_markers 2: longest trusted more than 1 m off %.2f s, largest error while trusted %.2f m, %d recoveries", now.tl.trustedOffS, now.tl.worstTrustedM, now.tl.recoveries)
+	if old.tl.trustedOffS < 1 {
+		t.Errorf("distinct_markers 1 was trusted 1 m off for only %.2f s: the fault did not show, so the test shows nothing", old.tl.trustedOffS)
+	}
+	if now.tl.trustedOffS > 0 || now.tl.worstTrustedM > 1 {
+		t.Errorf("distinct_markers 2: trusted more than 1 m off for %.2f s, %.2f m at most", now.tl.trustedOffS, now.tl.worstTrustedM)
+	}
+}
+
+// ghPush moves the cart by hand one post gap (5 m) along the field's x
+// axis at atNs: the truth from then on is 5 m further, the odometry does
+// not see it, and the camera sees the posts of the moved place. The posts
+// repeat every 5 m along x, so what the camera sees there is what it saw
+// before, one post further: each fix 5 m further in x, naming the next
+// post (but near a path's end, where the run's posts end).
+func ghPush(ins []ghInput, atNs int64) {
+	for i := range ins {
+		if f := ins[i].fix; f != nil && f.StampNs-ghCamStampNs >= atNs {
+			g := *f
+			g.XM += ghPostGapM
+			var a, b int
+			if _, err := fmt.Sscanf(g.Marker, "post-%d-%d", &a, &b); err == nil {
+				g.Marker = fmt.Sprintf("post-%d-%d", a+1, b)
+			}
+			ins[i].fix = &g
+		}
+		if ins[i].odo != nil && ins[i].odo.StampNs >= atNs {
+			ins[i].truth.X += ghPostGapM
+		}
+	}
+}
+
+// ghPushRun feeds one run pushed at 60 s under cfg and returns the seconds
+// from the push to the recovery and to the first sample trusted within 0.3
+// m of the truth (-1: none).
+func ghPushRun(t *testing.T, seed uint64, cfg fusion.Config) (recovered, trusted float64) {
+	t.Helper()
+	const at = 60e9
+	ins := ghSimulate(seed, 120, ghMarkers{})
+	ghPush(ins, at)
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	recovered, trusted = -1, -1
+	for _, in := range ins {
+		var res fusion.Result
+		switch {
+		case in.fix != nil:
+			res = r.AddFix(*in.fix)
+		case in.head != nil:
+			res = r.AddHeading(*in.head)
+		default:
+			res = r.AddOdometry(*in.odo)
+		}
+		for _, e := range res.Events {
+			if e.Kind == fusion.EventMoveRecovered && e.StampNs >= at && recovered < 0 {
+				recovered = float64(e.StampNs-at) * 1e-9
+			}
+		}
+		if in.odo != nil && in.odo.StampNs > at && trusted < 0 {
+			p := r.Pose()
+			if p.Distrust == 0 && math.Hypot(p.Pose.X-in.truth.X, p.Pose.Y-in.truth.Y) < 0.3 {
+				trusted = float64(in.odo.StampNs-at) * 1e-9
+			}
+		}
+	}
+	return recovered, trusted
+}
+
+// TestGreenhousePushRecovered: the cart pushed 5 m along its path by hand,
+// its camera naming the posts, is recovered in each of 8 runs under the
+// default recovery.distinct_markers 2 within the minute after the push,
+// and trusted again near its truth. Its posts stand 5 m apart with no fix
+// between them, so the second post's refused fixes come seconds after the
+// first's, long after the 1 s window has passed them: the candidates that
+// name a marker are carried on past the window (carryNamed); without that,
+// 2 of the 8 runs were not recovered within the minute and the others took
+// 37 to 56 s. Logged beside distinct_markers 1.
+func TestGreenhousePushRecovered(t *testing.T) {
+	if testing.Short() {
+		t.Skip("8 runs of 120 s, twice")
+	}
+	for seed := uint64(1); seed <= 8; seed++ {
+		one := ghConfig()
+		one.Recovery.DistinctMarkers = 1
+		r1, t1 := ghPushRun(t, seed, one)
+		r2, t2 := ghPushRun(t, seed, ghConfig())
+		t.Logf("seed %d: recovered %.1f s after the push with distinct_markers 1 (trusted near the truth at %.1f s), %.1f s with 2 (%.1f s)", seed, r1, t1, r2, t2)
+		if r2 < 0 || t2 < 0 {
+			t.Errorf("seed %d: not recovered (%.1f s) or not trusted near the truth (%.1f s) within 60 s of the push", seed, r2, t2)
+		}
 	}
 }

@@ -52,6 +52,7 @@ var (
 		{TrustNumericalFault, "numerical_fault", 6},
 		{TrustFixDisagrees, "fix_disagrees", 7},
 		{TrustIMUUnchanged, "imu_unchanged", 8},
+		{TrustMoveUnconfirmed, "move_unconfirmed", 9},
 	}
 	fixKindTable = [...]Label[FixKind]{
 		{FixPose, "pose", 1},
@@ -194,4 +195,4 @@ func (t TrustReason) String() string {
 }
 
 // allTrustReasons is the union of the defined reasons.
-const allTrustReasons = TrustNoOdometry | TrustPositionUncertain | TrustHeadingUncertain | TrustInconsistent | TrustFixesRefused | TrustNumericalFault | TrustFixDisagrees | TrustIMUUnchanged
+const allTrustReasons = TrustNoOdometry | TrustPositionUncertain | TrustHeadingUncertain | TrustInconsistent | TrustFixesRefused | TrustNumericalFault | TrustFixDisagrees | TrustIMUUnchanged | TrustMoveUnconfirmed

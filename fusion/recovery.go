@@ -3,6 +3,7 @@ package fusion
 import (
 	"fmt"
 	"math"
+	"slices"
 
 	"reckon.example/estimator"
 )
@@ -31,10 +32,58 @@ type candidate struct {
 	relW, relD [9]float64
 	// keepOffset: the IMU offset was initialised at the fix.
 	keepOffset bool
+	// marker is a pose fix's marker key (markerKey; 0: none named).
+	marker uint32
 }
 
 // isLandmark reports whether c is a landmark fix.
 func (c *candidate) isLandmark() bool { return c.meas.Kind != 0 }
+
+// markerKey returns the key by which recovery tells a pose fix's marker
+// apart: the 32-bit FNV-1a hash of its name (Fowler, Noll and Vo; offset
+// basis and prime as published, from memory), 0 for none named and never 0
+// for a name. Two names of one hash count as one marker (among a thousand
+// markers, about one chance in ten thousand that any two do), which delays a
+// recovery and never hastens it. The key holds no pointer, as entries must
+// not (entry.after), and fits in the entry's padding.
+func markerKey(name string) uint32 {
+	if name == "" {
+		return 0
+	}
+	h := uint32(2166136261)
+	for i := 0; i < len(name); i++ {
+		h ^= uint32(name[i])
+		h *= 16777619
+	}
+	return max(h, 1)
+}
+
+// clearCandidates forgets the candidates (an applied fix or a reseed: the
+// estimate agrees with a sensor again, or was set anew), and with them the
+// wait for another marker.
+func (r *Robot) clearCandidates() {
+	r.cands = r.cands[:0]
+	r.trust.unconfirmed = false
+}
+
+// markersShort reports whether pose candidates that agree would still wait
+// for another marker: some name their marker, and the markers, each fix
+// naming none counting as one of its own, number fewer than
+// recovery.distinct_markers. Candidates that name none wait for nothing,
+// as before markers were named.
+func (r *Robot) markersShort(set []candidate) bool {
+	named := namedMarkers(set)
+	if named == 0 {
+		return false
+	}
+	distinct := named
+	for i := range set {
+		if set[i].marker == 0 {
+			distinct++
+		}
+	}
+	return distinct < r.cfg.Recovery.DistinctMarkers
+}
 
 // maxLandmarkCandidates bounds the refused landmark fixes kept for a
 // relocation: a few seconds of one camera.
@@ -52,7 +101,7 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	if !r.cfg.Recovery.Enabled || kind != estimator.KindPose && !landmark {
 		return
 	}
-	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady}
+	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady, marker: e.marker}
 	meas := e.meas
 	if landmark {
 		// Folded at each relocation, at the newest bias (relocate). The
@@ -73,13 +122,18 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	}
 	var pose estimator.Pose
 	var cov [9]float64
-	var ok bool
+	var ok, short bool
 	var detail string
 	if landmark {
-		pose, cov, detail, ok = r.relocate()
+		pose, cov, detail, ok, short = r.relocate()
 	} else {
-		pose, cov, detail, ok = r.posesAgree()
+		pose, cov, detail, ok, short = r.posesAgree()
 	}
+	// Agreeing fixes of too few markers do not reseed, but the robot may
+	// have been moved, or a marker reads as another on every frame: not
+	// trusted until a fix of another marker agrees or one is applied
+	// (DEVELOPERS.md, "Design: Trust").
+	r.trust.unconfirmed = short
 	if !ok {
 		return
 	}
@@ -231,10 +285,66 @@ func (r *Robot) addCandidate(c candidate) bool {
 		limit = max(limit, maxLandmarkCandidates)
 	}
 	if over := len(kept) - limit; over > 0 {
-		kept = append(kept[:0], kept[over:]...)
+		kept = r.keepMarkers(kept, over, c.isLandmark())
 	}
 	r.cands = kept
 	return true
+}
+
+// carryNamed keeps pose candidates that name a marker as the window moves
+// on: when its start is to pass their stamp (newBase), it carries them to
+// the newest odometry stamp, and drops those that name none, as the next
+// candidate would have. A moved robot's second marker may come into view
+// seconds after the first (on the greenhouse simulator, posts 5 m apart
+// with no fix between), and the first marker's candidates must still count
+// then. Only while recovery.distinct_markers asks for more than one:
+// otherwise, and for landmark fixes, candidates leave with the window as
+// before.
+func (r *Robot) carryNamed(newBase int64) {
+	if r.cfg.Recovery.DistinctMarkers <= 1 || r.cands[0].stamp >= newBase || r.cands[0].isLandmark() || namedMarkers(r.cands) == 0 {
+		return
+	}
+	kept := r.cands[:0]
+	for _, c := range r.cands {
+		if c.marker != 0 && r.carry(&c, r.newest) {
+			kept = append(kept, c)
+		}
+	}
+	r.cands = kept
+}
+
+// keepMarkers drops the oldest over of the candidates kept, in fix-stamp
+// order, except, for pose fixes, the newest of each marker not among the
+// newer ones while those number fewer than recovery.distinct_markers: a
+// marker passed before the next came into view still counts for the
+// recovery, at most distinct_markers - 1 candidates more than
+// recovery.count. Candidates that name no marker are dropped as before.
+func (r *Robot) keepMarkers(kept []candidate, over int, landmark bool) []candidate {
+	need := r.cfg.Recovery.DistinctMarkers
+	if landmark || need <= 1 {
+		return append(kept[:0], kept[over:]...)
+	}
+	var markers []uint32
+	for i := over; i < len(kept); i++ {
+		if k := kept[i].marker; k != 0 && !slices.Contains(markers, k) {
+			markers = append(markers, k)
+		}
+	}
+	// Walk the dropped from the newest back, marking those kept.
+	keep := make([]bool, over)
+	for i := over - 1; i >= 0 && len(markers) < need; i-- {
+		if k := kept[i].marker; k != 0 && !slices.Contains(markers, k) {
+			markers = append(markers, k)
+			keep[i] = true
+		}
+	}
+	out := kept[:0]
+	for i := range kept {
+		if i >= over || keep[i] {
+			out = append(out, kept[i])
+		}
+	}
+	return out
 }
 
 // carry moves candidate c from its stamp to the later stamp to by the
@@ -419,8 +529,11 @@ func composeJacobians(a, b estimator.Pose) (ja, jb [9]float64) {
 	return [9]float64{1, 0, -(s*b.X + c*b.Y), 0, 1, c*b.X - s*b.Y, 0, 0, 1}, [9]float64{c, -s, 0, s, c, 0, 0, 0, 1}
 }
 
-// posesAgree reports whether the last recovery.count pose candidates agree
-// on the robot's pose at the newest one's stamp, and returns that pose.
+// posesAgree reports whether the pose candidates (the last recovery.count,
+// and older ones of other markers that keepMarkers kept) agree on the
+// robot's pose at the newest one's stamp, and returns that pose; short
+// reports candidates that agree but come from too few markers
+// (markersShort), which are not taken (ok false).
 //
 // Each candidate i is carried to the newest stamp: P_i = implied_i (+) rel_i,
 // with covariance C_i = Ja R_i Ja^T + Jb O_i Jb^T (R_i = J R J^T of the fix,
@@ -436,10 +549,10 @@ func composeJacobians(a, b estimator.Pose) (ja, jb [9]float64) {
 // implied poses alike and leaves the body-frame odometry as it is, so d and
 // S, and the decision, do not change: a robot far from the origin recovers
 // as one near it.
-func (r *Robot) posesAgree() (estimator.Pose, [9]float64, string, bool) {
+func (r *Robot) posesAgree() (pose estimator.Pose, cov [9]float64, detail string, ok, short bool) {
 	n := len(r.cands)
 	if n < r.cfg.Recovery.Count {
-		return estimator.Pose{}, [9]float64{}, "", false
+		return estimator.Pose{}, [9]float64{}, "", false, false
 	}
 	last := &r.cands[n-1]
 	ln, lc := composeCov(last.implied, &last.cov, last.rel, &last.relCov)
@@ -456,10 +569,28 @@ func (r *Robot) posesAgree() (estimator.Pose, [9]float64, string, bool) {
 		}
 		estimator.Sandwich(&sb, &b, &sum)
 		if m, ok := estimator.Mahalanobis(&d, &sb); !ok || m > r.agreeGate {
-			return estimator.Pose{}, [9]float64{}, "", false
+			return estimator.Pose{}, [9]float64{}, "", false, false
 		}
 	}
-	return ln, lc, fmt.Sprintf("%d agreeing pose fixes refused", n), true
+	if r.markersShort(r.cands) {
+		return estimator.Pose{}, [9]float64{}, "", false, true
+	}
+	detail = fmt.Sprintf("%d agreeing pose fixes refused", n)
+	if m := namedMarkers(r.cands); m > 0 {
+		detail += fmt.Sprintf(", of %d named markers", m)
+	}
+	return ln, lc, detail, true, false
+}
+
+// namedMarkers counts the different markers the candidates name.
+func namedMarkers(set []candidate) int {
+	var seen []uint32
+	for i := range set {
+		if k := set[i].marker; k != 0 && !slices.Contains(seen, k) {
+			seen = append(seen, k)
+		}
+	}
+	return len(seen)
 }
 
 // detachCov returns the covariance of Detach(s, m) for a sensor pose s with

@@ -76,11 +76,20 @@ func recoveryRun(t *testing.T, sc fusiontest.Scenario, f frame) (int, *fusion.Ro
 	if err != nil {
 		t.Fatal(err)
 	}
-	at, k := -1, 0
+	var ins []fusiontest.Input
 	for in, ok := s.Next(); ok; in, ok = s.Next() {
-		in = f.input(in)
-		res := fusiontest.Feed(r, &in)
-		if in.Bumped {
+		ins = append(ins, f.input(in))
+	}
+	return recoveredAt(r, ins), r
+}
+
+// recoveredAt feeds ins to r and returns the index of the input that
+// recovered (-1: none), counted from the first input after the bump.
+func recoveredAt(r *fusion.Robot, ins []fusiontest.Input) int {
+	at, k := -1, 0
+	for i := range ins {
+		res := fusiontest.Feed(r, &ins[i])
+		if ins[i].Bumped {
 			k++
 		}
 		for _, e := range res.Events {
@@ -89,7 +98,7 @@ func recoveryRun(t *testing.T, sc fusiontest.Scenario, f frame) (int, *fusion.Ro
 			}
 		}
 	}
-	return at, r
+	return at
 }
 
 // TestRecoveryFrameInvariant: the same bumped run with the field frame at

@@ -59,8 +59,10 @@ type relocation struct {
 // 3, weighted by the joint covariance of all the residuals (refineJoint);
 // (3) is well conditioned: its covariance, the inverse of J^T W J, is
 // positive definite and would be trusted (95% radius and heading standard
-// deviation within the trust limits).
-func (r *Robot) relocate() (estimator.Pose, [9]float64, string, bool) {
+// deviation within the trust limits); and (4) sees recovery.distinct_markers
+// landmarks. A fit that passes the first three and not the fourth is not
+// taken, and short reports it (the robot waits for another landmark).
+func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, ok, short bool) {
 	n := len(r.cands)
 	st := r.f.State()
 	// Each candidate a measurement of the pose alone, the bias of a
@@ -98,7 +100,7 @@ func (r *Robot) relocate() (estimator.Pose, [9]float64, string, bool) {
 		if err := ch.InverseTo(&inv); err != nil {
 			continue
 		}
-		var cov [9]float64
+		cov = [9]float64{}
 		for i := 0; i < 3; i++ {
 			for j := 0; j < 3; j++ {
 				cov[i*3+j] = inv.At(i, j)
@@ -111,9 +113,13 @@ func (r *Robot) relocate() (estimator.Pose, [9]float64, string, bool) {
 		if st.Position95() > r.cfg.Trust.MaxPosition95M || math.Sqrt(cov[8]) > r.cfg.Trust.MaxHeadingStdRad {
 			continue
 		}
-		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true
+		if distinctLandmarks(set) < r.cfg.Recovery.DistinctMarkers {
+			short = true
+			continue
+		}
+		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true, false
 	}
-	return estimator.Pose{}, [9]float64{}, "", false
+	return estimator.Pose{}, [9]float64{}, "", false, short
 }
 
 // distinctLandmarks counts the landmarks the candidates see.

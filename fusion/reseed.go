@@ -42,7 +42,7 @@ func (r *Robot) insertReset(e *entry, res *Result) {
 	var ins insertion
 	r.insert(e, &ins)
 	r.dropFront(ins.at + 1)
-	r.cands = r.cands[:0]
+	r.clearCandidates()
 	r.trust.refusedRun = 0
 	r.trust.disagree = false
 	// A pose set by hand or recovered follows a move the wheels did not

@@ -81,6 +81,11 @@ type Fix struct {
 	Mount *estimator.Pose
 	// XM, YM, HeadingRad are the measured field pose, position or heading.
 	XM, YM, HeadingRad float64
+	// Marker names the marker (or rigid board of markers) a pose fix was
+	// computed from, the same name on every frame; empty is unknown, and
+	// other kinds of fix name none. Move recovery counts markers by it
+	// (Recovery.DistinctMarkers).
+	Marker string
 	// LandmarkID, RangeM, BearingRad are the landmark fix: at least one of
 	// range and bearing (radians from the sensor's +x, counter-clockwise).
 	LandmarkID string

@@ -52,10 +52,14 @@ import (
 // (SensorStats.Robust), by which Consistency judges a Student-t sensor; a
 // version 13 to 5 snapshot lacks them, and its records take the robot's
 // configuration's.
-const SnapshotVersion = 14
+// Version 15: a pose fix's marker key in its entry and its recovery
+// candidate, and whether the candidates wait for another marker
+// (move_unconfirmed); a version 14 to 5 snapshot has none (its fixes named
+// no marker).
+const SnapshotVersion = 15
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -140,6 +144,10 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	}
 	if r.trust.frozen {
 		e.double(43, r.trust.frozenZ)
+	}
+	if r.trust.unconfirmed {
+		// Absent otherwise, as in snapshots before version 15.
+		e.bool(44, true)
 	}
 	return e.b, nil
 }
@@ -302,6 +310,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.slip.long.varRad2 = d.double(num)
 	case 43:
 		r.trust.frozen, r.trust.frozenZ = true, d.double(num)
+	case 44:
+		r.trust.unconfirmed = d.bool(num)
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -525,6 +535,9 @@ func (r *Robot) encEntry(e *wenc, en *entry) {
 		e.int(20, int64(en.lm))
 		e.bool(21, en.seeded)
 	}
+	if en.marker != 0 {
+		e.uint(22, uint64(en.marker))
+	}
 }
 
 // decEntry reads an entry and stores its checkpoint in a slot of r's.
@@ -581,6 +594,8 @@ func (r *Robot) decEntry(d *wdec) entry {
 			en.lm = int32(d.int(num))
 		case 21:
 			en.seeded = d.bool(num)
+		case 22:
+			en.marker = d.uint32(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}
@@ -774,6 +789,9 @@ func encCandidate(e *wenc, c *candidate) {
 		e.doubles(10, c.relW[:])
 		e.doubles(11, c.relD[:])
 	}
+	if c.marker != 0 {
+		e.uint(12, uint64(c.marker))
+	}
 }
 
 func decCandidate(d *wdec) candidate {
@@ -802,6 +820,8 @@ func decCandidate(d *wdec) candidate {
 			white = true
 		case 11:
 			d.doubles(num, c.relD[:])
+		case 12:
+			c.marker = d.uint32(num)
 		default:
 			d.fail("candidate: unknown field %d", num)
 		}

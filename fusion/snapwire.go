@@ -137,6 +137,16 @@ func (d *wdec) uint(num protowire.Number) uint64 {
 
 func (d *wdec) int(num protowire.Number) int64 { return int64(d.uint(num)) }
 
+// uint32 reads a uint32 field: a value beyond 32 bits is damage.
+func (d *wdec) uint32(num protowire.Number) uint32 {
+	v := d.uint(num)
+	if v > math.MaxUint32 {
+		d.fail("field %d: %d does not fit in 32 bits", num, v)
+		return 0
+	}
+	return uint32(v)
+}
+
 func (d *wdec) bool(num protowire.Number) bool { return d.uint(num) != 0 }
 
 func (d *wdec) double(num protowire.Number) float64 {

@@ -52,6 +52,12 @@ const (
 	// not (a wheel off the floor, or spinning) beside an IMU that holds
 	// its heading exactly while it senses no rotation.
 	TrustIMUUnchanged
+	// TrustMoveUnconfirmed: refused pose or landmark fixes agree on a pose
+	// the estimate is not at, but from fewer markers than
+	// recovery.distinct_markers, so move recovery waits for a fix of
+	// another marker: the robot may have been moved, or one marker may read
+	// as another on every frame. An applied fix or a reseed ends it.
+	TrustMoveUnconfirmed
 )
 
 // DisagreeProbability is the chi-square probability beyond which one refused
@@ -81,6 +87,9 @@ type trustState struct {
 	// (imufrozen.go).
 	frozen  bool
 	frozenZ float64
+	// unconfirmed: the candidates agree on a pose but come from fewer
+	// markers than recovery.distinct_markers (considerRecovery).
+	unconfirmed bool
 }
 
 // The IMU window holds imuWindowFactor times as many headings as the fix
@@ -199,6 +208,9 @@ func (t *trustState) evaluate(r *Robot, res *Result) {
 	}
 	if t.imuFrozen(r) {
 		now |= TrustIMUUnchanged
+	}
+	if t.unconfirmed {
+		now |= TrustMoveUnconfirmed
 	}
 	stamp := r.newest
 	switch {

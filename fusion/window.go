@@ -41,7 +41,8 @@ type entry struct {
 	scrub float64
 
 	// entMeas; lm, the landmark of a landmark fix (from 1), and seeded,
-	// that its update gave a landmark block to it (landmarks.go).
+	// that its update gave a landmark block to it (landmarks.go); marker
+	// (below) the key of a pose fix's marker.
 	meas   estimator.Measurement
 	imu    bool
 	seeded bool
@@ -68,6 +69,9 @@ type entry struct {
 	// (estimator's PredictReported). Beside the other flags, where it
 	// takes no padding of its own.
 	wheels bool
+	// marker is the key of a pose fix's marker (markerKey; 0: none named),
+	// in the padding after the flags: the entry is no larger for it.
+	marker uint32
 }
 
 // live returns the entries in the window.
@@ -376,7 +380,11 @@ func (r *Robot) trim() {
 	for k < len(live)-1 && live[k].t1 < cutoff {
 		k++
 	}
-	r.dropFront(max(k, min(len(live)-maxWindowEntries, len(live)-1)))
+	n := max(k, min(len(live)-maxWindowEntries, len(live)-1))
+	if n > 0 && len(r.cands) > 0 {
+		r.carryNamed(live[n-1].t1)
+	}
+	r.dropFront(n)
 }
 
 // maxWindowEntries bounds the history window by its number of entries as
@@ -491,7 +499,7 @@ func (r *Robot) repeatOf(e *entry) uint64 {
 // the fields that the update leaves as they were given (it sets Hold and
 // the landmark terms).
 func sameReading(a, b *entry) bool {
-	return a.kind == entMeas && b.kind == entMeas && a.t1 == b.t1 && a.imu == b.imu && a.sensor == b.sensor && a.lm == b.lm &&
+	return a.kind == entMeas && b.kind == entMeas && a.t1 == b.t1 && a.imu == b.imu && a.sensor == b.sensor && a.lm == b.lm && a.marker == b.marker &&
 		a.meas.Kind == b.meas.Kind && a.meas.Mount == b.meas.Mount && a.meas.Z == b.meas.Z && a.meas.R == b.meas.R
 }
 

@@ -211,12 +211,43 @@ func TestDecodeRequest(t *testing.T) {
 	}
 }
 
+// markerFixRequest is a request carrying a pose fix that names its marker
+// (PoseFix.marker), beside a mount and a covariance.
+func markerFixRequest() []byte {
+	b, _ := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: 5, SessionId: "s",
+		Sample: &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{StampNs: 7e8, SensorId: "camera", Mount: &pb.FloorPose{XM: 0.25},
+			Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{XM: 5, YM: 0.8, HeadingRad: 0.1, Marker: "post-1-0"}},
+			Covariance:  &pb.Covariance{Dimension: 3, Values: []float64{4e-4, 0, 0, 0, 4e-4, 0, 0, 0, 6e-4}}}}}})
+	return b
+}
+
+// TestDecodeMarkerFix: a pose fix's marker arrives through the service's
+// codec as proto.Unmarshal reads it (the hand decoder leaves fixes to it),
+// and a cut or doubled marker field is refused or merged by both alike.
+func TestDecodeMarkerFix(t *testing.T) {
+	dec := &requestDecoder{}
+	b := markerFixRequest()
+	checkRequest(t, dec, b)
+	got := &arrivedRequest{slab: &slab{}, dec: dec}
+	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b)}, got); err != nil {
+		t.Fatal(err)
+	}
+	if m := got.GetSample().GetFix().GetPose().GetMarker(); m != "post-1-0" || !bytes.Equal(got.wire, b) {
+		t.Errorf("marker %q, kept %x", m, got.wire)
+	}
+	for _, c := range [][]byte{b[:len(b)-3], append(append([]byte(nil), b...), b...)} {
+		checkRequest(t, dec, c)
+	}
+}
+
 // FuzzDecodeRequest: whatever the bytes, the service's codec and
 // proto.Unmarshal agree on the request, or both refuse it.
 func FuzzDecodeRequest(f *testing.F) {
 	for _, b := range requestSeeds(f, 40) {
 		f.Add(b)
 	}
+	// A pose fix naming its marker (PoseFix.marker, field 4).
+	f.Add(markerFixRequest())
 	dec := &requestDecoder{}
 	f.Fuzz(func(t *testing.T, b []byte) {
 		checkRequest(t, dec, b)

@@ -32,6 +32,16 @@ func landmarkBlocksRestore(t *testing.T, lat float64) {
 	samp, _, cfg := samples(fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 41, DurationS: 40,
 		LatencyMinS: lat, LatencyMaxS: 6 * lat, Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}})
 	cfg.LandmarkPositionStdM = 0.03
+	restartedServes(t, dir, samp, cfg)
+}
+
+// restartedServes feeds samp to robots/cart of configuration cfg, journaled
+// in dir with snapshots every 2,000 inputs, in four parts with a restart
+// before each of the last three: each restore serves the pose the robot
+// had before the restart, and the last pose is where an offline replay of
+// the whole journal ends. It returns the served poses after each part.
+func restartedServes(t *testing.T, dir string, samp []*pb.Sample, cfg *pb.RobotConfig) []*pb.FusedPose {
+	t.Helper()
 	opt := Options{JournalDir: dir, SnapshotEvery: 2000}
 	quarter := len(samp) / 4
 	poseNow := func(s *Server) *pb.FusedPose {
@@ -46,6 +56,7 @@ func landmarkBlocksRestore(t *testing.T, lat float64) {
 		return at.GetPose()
 	}
 	var last *pb.FusedPose
+	var served []*pb.FusedPose
 	for part := range 4 {
 		s, err := New(opt)
 		if err != nil {
@@ -69,6 +80,7 @@ func landmarkBlocksRestore(t *testing.T, lat float64) {
 			s.ingestBatch(requests("robots/cart", "", uint64(i+1), samp[i:j]))
 		}
 		last = poseNow(s)
+		served = append(served, last)
 		s.Close()
 	}
 	_, scan, err := journal.Replay(dir, "cart", journal.ReplayOptions{FromSnapshot: true})
@@ -80,4 +92,5 @@ func landmarkBlocksRestore(t *testing.T, lat float64) {
 	if p.GetXM() != pose.GetXM() || p.GetYM() != pose.GetYM() || p.GetHeadingRad() != pose.GetHeadingRad() {
 		t.Errorf("served %v, offline replay %v", p, pose)
 	}
+	return served
 }

@@ -16,8 +16,8 @@ import (
 type Limits struct {
 	// MaxRobots bounds the robots of the server (1000; -max-robots).
 	MaxRobots int
-	// MaxStringBytes bounds session_id, sensor_id, landmark_id and
-	// boot_id (128 bytes; -max-string-bytes): a longer one is
+	// MaxStringBytes bounds session_id, sensor_id, landmark_id, a pose
+	// fix's marker and boot_id (128 bytes; -max-string-bytes): a longer one is
 	// INVALID_ARGUMENT.
 	MaxStringBytes int
 	// MaxWatchersPerRobot and MaxWatchers bound open Watch streams per
@@ -78,6 +78,9 @@ func (s *Server) checkLimits(r *robot, req *pb.IngestRequest) *limitError {
 	}
 	if id := fix.GetLandmark().GetLandmarkId(); len(id) > max {
 		return long("sample.fix.landmark.landmark_id", id)
+	}
+	if id := fix.GetPose().GetMarker(); len(id) > max {
+		return long("sample.fix.pose.marker", id)
 	}
 	if id := req.GetSample().GetRunStart().GetBootId(); len(id) > max {
 		return long("sample.run_start.boot_id", id)

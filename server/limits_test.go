@@ -79,7 +79,8 @@ func TestUnknownSensorIDs(t *testing.T) {
 	}
 }
 
-// TestLongStrings: 64 KiB strings in session_id, sensor_id and landmark_id
+// TestLongStrings: 64 KiB strings in session_id, sensor_id, landmark_id and
+// a pose fix's marker
 // are refused INVALID_ARGUMENT naming the field and -max-string-bytes,
 // before the robot sees them; the robot is unharmed.
 func TestLongStrings(t *testing.T) {
@@ -97,6 +98,7 @@ func TestLongStrings(t *testing.T) {
 		{"session_id", long, samp[600]},
 		{"sample.fix.sensor_id", "", fix(&pb.Fix{SensorId: long, Measurement: &pb.Fix_Position{Position: &pb.PositionFix{}}})},
 		{"sample.fix.landmark.landmark_id", "", fix(&pb.Fix{Measurement: &pb.Fix_Landmark{Landmark: &pb.LandmarkFix{LandmarkId: long}}})},
+		{"sample.fix.pose.marker", "", fix(&pb.Fix{SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{Marker: long}}})},
 	}
 	for _, c := range cases {
 		v := feedStub(t, api, "robots/cart", c.session, 1, []*pb.Sample{c.sample})[0]

@@ -58,7 +58,8 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	cfg.LandmarkPositionStdM = c.GetLandmarkPositionStdM()
 	cfg.MaxSpeedMPerS = c.GetMaxSpeedMPerS()
 	cfg.MaxTurnRateRadPerS = c.GetMaxTurnRateRadPerS()
-	cfg.Recovery = fusion.Recovery{Enabled: c.GetRecovery().GetEnabled(), Count: int(c.GetRecovery().GetCount()), AgreeProbability: c.GetRecovery().GetAgreeProbability()}
+	cfg.Recovery = fusion.Recovery{Enabled: c.GetRecovery().GetEnabled(), Count: int(c.GetRecovery().GetCount()), AgreeProbability: c.GetRecovery().GetAgreeProbability(),
+		DistinctMarkers: int(c.GetRecovery().GetDistinctMarkers())}
 	t := c.GetTrust()
 	cfg.Trust = fusion.TrustLimits{MaxPosition95M: t.GetMaxPosition95M(), MaxHeadingStdRad: t.GetMaxHeadingStdRad(), NISWindow: int(t.GetNisWindow()),
 		ConsistencyProbability: t.GetConsistencyProbability(), RefusedInARow: int(t.GetRefusedInARow())}
@@ -105,7 +106,8 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 		LandmarkPositionStdM: cfg.LandmarkPositionStdM,
 		MaxSpeedMPerS:        cfg.MaxSpeedMPerS,
 		MaxTurnRateRadPerS:   cfg.MaxTurnRateRadPerS,
-		Recovery:             &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability},
+		Recovery: &pb.MoveRecovery{Enabled: cfg.Recovery.Enabled, Count: int32(cfg.Recovery.Count), AgreeProbability: cfg.Recovery.AgreeProbability,
+			DistinctMarkers: int32(cfg.Recovery.DistinctMarkers)},
 		Trust: &pb.TrustLimits{MaxPosition95M: cfg.Trust.MaxPosition95M, MaxHeadingStdRad: cfg.Trust.MaxHeadingStdRad, NisWindow: int32(cfg.Trust.NISWindow),
 			ConsistencyProbability: cfg.Trust.ConsistencyProbability, RefusedInARow: int32(cfg.Trust.RefusedInARow)},
 		StartPose: poseToProto(cfg.StartPose),

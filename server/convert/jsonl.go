@@ -156,7 +156,7 @@ func FixToProto(f *fusion.Fix) *pb.Sample {
 	dim := 0
 	switch f.Kind {
 	case fusion.FixPose:
-		x.Measurement, dim = &pb.Fix_Pose{Pose: &pb.PoseFix{XM: f.XM, YM: f.YM, HeadingRad: f.HeadingRad}}, 3
+		x.Measurement, dim = &pb.Fix_Pose{Pose: &pb.PoseFix{XM: f.XM, YM: f.YM, HeadingRad: f.HeadingRad, Marker: f.Marker}}, 3
 	case fusion.FixPosition:
 		x.Measurement, dim = &pb.Fix_Position{Position: &pb.PositionFix{XM: f.XM, YM: f.YM}}, 2
 	case fusion.FixHeading:

@@ -251,3 +251,33 @@ func TestSampleReaderCROnly(t *testing.T) {
 		t.Errorf("lines ended by CR alone: %v; want an error at line 1 naming the carriage returns", err)
 	}
 }
+
+// TestFixMarkerLine: a pose fix's marker goes through a JSON Lines file
+// (FixToProto, WriteJSONLine, SampleReader) and Decode into fusion.Fix
+// unchanged, as reckon feed and replays read it; the README's example
+// line names one.
+func TestFixMarkerLine(t *testing.T) {
+	want := fusion.Fix{StampNs: 150e6, SensorID: "camera", Kind: fusion.FixPose, XM: 0.21, YM: 0.01, HeadingRad: 0.03, Marker: "row-end-e"}
+	var buf bytes.Buffer
+	if err := WriteJSONLine(&buf, FixToProto(&want)); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(buf.String(), `"marker":"row-end-e"`) {
+		t.Errorf("line %s lacks the marker", buf.String())
+	}
+	s, err := NewSampleReader(&buf).Next()
+	if err != nil {
+		t.Fatal(err)
+	}
+	d, err := Decode(s)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if d.Kind != fusion.InputFix || d.Fix.Marker != want.Marker || d.Fix.XM != want.XM {
+		t.Errorf("decoded %+v, want %+v", d.Fix, want)
+	}
+	readme, _ := os.ReadFile("../../README.md")
+	if !strings.Contains(string(readme), `"marker":"row-end-e"`) {
+		t.Error("the README's example lines name no marker")
+	}
+}

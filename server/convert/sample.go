@@ -127,6 +127,7 @@ func decodeFix(f *pb.Fix, out *fusion.Fix) error {
 	case *pb.Fix_Pose:
 		out.Kind, dim = fusion.FixPose, 3
 		out.XM, out.YM, out.HeadingRad = m.Pose.GetXM(), m.Pose.GetYM(), m.Pose.GetHeadingRad()
+		out.Marker = m.Pose.GetMarker()
 	case *pb.Fix_Position:
 		out.Kind, dim = fusion.FixPosition, 2
 		out.XM, out.YM = m.Position.GetXM(), m.Position.GetYM()

@@ -150,7 +150,8 @@ def main(argv=None):
                 continue
             if controller:
                 controller.feed_until(stamp_ns + int(args.latency_ms * 1e6))
-            fix = reckonpy.fix_from_camera(stamp_ns, "camera", MARKERS[marker_id], marker_in_camera, COV, MOUNT)
+            fix = reckonpy.fix_from_camera(stamp_ns, "camera", MARKERS[marker_id], marker_in_camera, COV, MOUNT,
+                                           marker=marker_id)
             session.send(fix)
             sent += 1
         if controller:

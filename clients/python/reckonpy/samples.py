@@ -57,16 +57,20 @@ def _mount(mount: Optional[Sequence[float]]) -> Optional[robot_pb2.FloorPose]:
 
 
 def pose_fix(stamp_ns: int, sensor_id: str, x_m: float, y_m: float, heading_rad: float,
-             cov, mount: Optional[Sequence[float]] = None) -> samples_pb2.Sample:
+             cov, mount: Optional[Sequence[float]] = None, marker: str = "") -> samples_pb2.Sample:
     """pose_fix returns a Sample carrying a pose fix: the sensor's measured
     field pose (x_m, y_m, heading_rad) at stamp_ns (capture time on the
     robot's time base), its 3x3 covariance cov (m^2, m*rad, rad^2), and,
     if given, the sensor's mount (x_m, y_m, heading_rad) in the body frame,
     which overrides the mount in the robot's sensors configuration (None:
-    the configured mount)."""
+    the configured mount). marker names the marker the pose was computed
+    from, as the detector decoded it (at most 128 bytes; "" unknown): move
+    recovery then waits for refused fixes of two markers to agree before it
+    reseeds the robot, so that one marker misread as another on every frame
+    does not move the estimate."""
     fix = samples_pb2.Fix(
         stamp_ns=int(stamp_ns), sensor_id=sensor_id,
-        pose=samples_pb2.PoseFix(x_m=x_m, y_m=y_m, heading_rad=heading_rad),
+        pose=samples_pb2.PoseFix(x_m=x_m, y_m=y_m, heading_rad=heading_rad, marker=marker),
         covariance=covariance(cov, 3))
     if mount is not None:
         fix.mount.CopyFrom(_mount(mount))
@@ -154,7 +158,7 @@ def optical_to_planar(rotation: Sequence[Sequence[float]], translation_m: Sequen
 
 
 def fix_from_camera(stamp_ns: int, sensor_id: str, marker_field: Pose2, marker_in_camera: Pose2,
-                    cov, mount: Optional[Sequence[float]] = None) -> samples_pb2.Sample:
+                    cov, mount: Optional[Sequence[float]] = None, marker: str = "") -> samples_pb2.Sample:
     """fix_from_camera returns a pose fix of the camera from its detection
     of a mapped marker: marker_field is the marker's field pose (x_m, y_m,
     heading_rad), marker_in_camera its planar pose as the camera saw it
@@ -163,9 +167,10 @@ def fix_from_camera(stamp_ns: int, sensor_id: str, marker_field: Pose2, marker_i
     the 3x3 covariance of the camera's field pose (m^2, m*rad, rad^2);
     mount, if given, the camera's pose in the body frame, which the service
     uses to relate the camera's pose to the robot's (None: the mount of the
-    robot's sensors configuration)."""
+    robot's sensors configuration); marker, the detected marker's name (see
+    pose_fix)."""
     x, y, h = camera_pose_from_marker(marker_field, marker_in_camera)
-    return pose_fix(stamp_ns, sensor_id, x, y, h, cov, mount)
+    return pose_fix(stamp_ns, sensor_id, x, y, h, cov, mount, marker)
 
 
 def landmark_fix_from_camera(stamp_ns: int, sensor_id: str, landmark_id: str,

@@ -80,6 +80,15 @@ class BuilderTest(unittest.TestCase):
         self.assertEqual(s.fix.covariance.dimension, 3)
         self.assertEqual(list(s.fix.covariance.values), [0.0009, 0, 0, 0, 0.0009, 0, 0, 0, 0.0004])
 
+    def test_fix_names_its_marker(self):
+        # The marker's name rides in the pose fix (PoseFix.marker); none
+        # given leaves it empty, unknown.
+        s = reckonpy.fix_from_camera(1, "camera", (4.0, 2.0, 0.0), (2.0, 0.0, math.pi),
+                                     reckonpy.diag(0.0009, 0.0009, 0.0004), marker="row-end-e")
+        self.assertEqual(s.fix.pose.marker, "row-end-e")
+        plain = reckonpy.pose_fix(1, "camera", 0.0, 0.0, 0.0, reckonpy.diag(0.0009, 0.0009, 0.0004))
+        self.assertEqual(plain.fix.pose.marker, "")
+
     def test_landmark_fix_from_camera(self):
         # Hand computed: a marker 2 m ahead and 1 m left is sqrt(5) m away at
         # atan2(1, 2) radians.

@@ -308,6 +308,12 @@ const (
 	// repeats its last value, or wheels that turned while the robot did not
 	// (a wheel off the floor) beside an IMU that holds its heading exactly.
 	DistrustReason_DISTRUST_REASON_IMU_UNCHANGED DistrustReason = 8
+	// Refused pose or landmark fixes agree on a pose the estimate is not at,
+	// but they come from fewer markers than MoveRecovery.distinct_markers:
+	// the robot may have been moved, or one marker may read as another on
+	// every frame. The pose is not reseeded until a fix of another marker
+	// agrees; an applied fix or a reseed ends it.
+	DistrustReason_DISTRUST_REASON_MOVE_UNCONFIRMED DistrustReason = 9
 )
 
 // Enum value maps for DistrustReason.
@@ -322,6 +328,7 @@ var (
 		6: "DISTRUST_REASON_NUMERICAL_FAULT",
 		7: "DISTRUST_REASON_FIX_DISAGREES",
 		8: "DISTRUST_REASON_IMU_UNCHANGED",
+		9: "DISTRUST_REASON_MOVE_UNCONFIRMED",
 	}
 	DistrustReason_value = map[string]int32{
 		"DISTRUST_REASON_UNSPECIFIED":        0,
@@ -333,6 +340,7 @@ var (
 		"DISTRUST_REASON_NUMERICAL_FAULT":    6,
 		"DISTRUST_REASON_FIX_DISAGREES":      7,
 		"DISTRUST_REASON_IMU_UNCHANGED":      8,
+		"DISTRUST_REASON_MOVE_UNCONFIRMED":   9,
 	}
 )
 
@@ -2554,7 +2562,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x15EVENT_KIND_TRUST_LOST\x10\x05\x12\x1d\n" +
 	"\x19EVENT_KIND_TRUST_REGAINED\x10\x06\x12\x17\n" +
 	"\x13EVENT_KIND_RESEEDED\x10\a\x12\x1a\n" +
-	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xd1\x02\n" +
+	"\x16EVENT_KIND_RUN_STARTED\x10\b*\xf7\x02\n" +
 	"\x0eDistrustReason\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bDISTRUST_REASON_NO_ODOMETRY\x10\x01\x12&\n" +
@@ -2564,7 +2572,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\x1dDISTRUST_REASON_FIXES_REFUSED\x10\x05\x12#\n" +
 	"\x1fDISTRUST_REASON_NUMERICAL_FAULT\x10\x06\x12!\n" +
 	"\x1dDISTRUST_REASON_FIX_DISAGREES\x10\a\x12!\n" +
-	"\x1dDISTRUST_REASON_IMU_UNCHANGED\x10\b*\xd3\x01\n" +
+	"\x1dDISTRUST_REASON_IMU_UNCHANGED\x10\b\x12$\n" +
+	" DISTRUST_REASON_MOVE_UNCONFIRMED\x10\t*\xd3\x01\n" +
 	"\x12ConsistencyVerdict\x12#\n" +
 	"\x1fCONSISTENCY_VERDICT_UNSPECIFIED\x10\x00\x12\"\n" +
 	"\x1eCONSISTENCY_VERDICT_CONSISTENT\x10\x01\x12%\n" +

@@ -424,8 +424,13 @@ type RobotSnapshot struct {
 	// which stands until a heading that differs from it comes (version 13;
 	// absent when the reason is not raised, and in older versions).
 	ImuUnchangedHeadingRad *float64 `protobuf:"fixed64,43,opt,name=imu_unchanged_heading_rad,json=imuUnchangedHeadingRad,proto3,oneof" json:"imu_unchanged_heading_rad,omitempty"`
-	unknownFields          protoimpl.UnknownFields
-	sizeCache              protoimpl.SizeCache
+	// Whether the refused fixes kept as candidates agree on one pose but come
+	// from fewer markers than MoveRecovery.distinct_markers, raising
+	// DISTRUST_REASON_MOVE_UNCONFIRMED (version 15; absent in older versions,
+	// whose builds had no such reason).
+	MoveUnconfirmed bool `protobuf:"varint,44,opt,name=move_unconfirmed,json=moveUnconfirmed,proto3" json:"move_unconfirmed,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -759,6 +764,13 @@ func (x *RobotSnapshot) GetImuUnchangedHeadingRad() float64 {
 	return 0
 }
 
+func (x *RobotSnapshot) GetMoveUnconfirmed() bool {
+	if x != nil {
+		return x.MoveUnconfirmed
+	}
+	return false
+}
+
 // SnapshotLandmarkBlocks says which landmark each landmark block of an
 // estimate stands for (DEVELOPERS.md, "Design: Landmark survey error").
 type SnapshotLandmarkBlocks struct {
@@ -1010,8 +1022,12 @@ type SnapshotEntry struct {
 	// landmark block (seeded afresh: the smoother starts the block there).
 	Landmark       int32 `protobuf:"varint,20,opt,name=landmark,proto3" json:"landmark,omitempty"`
 	LandmarkSeeded bool  `protobuf:"varint,21,opt,name=landmark_seeded,json=landmarkSeeded,proto3" json:"landmark_seeded,omitempty"`
-	unknownFields  protoimpl.UnknownFields
-	sizeCache      protoimpl.SizeCache
+	// Measurement, a pose fix that named its marker (version 15): the 32-bit
+	// FNV-1a hash of PoseFix.marker, never 0 (absent: no marker named, and
+	// in older versions). Move recovery tells markers apart by it.
+	MarkerKey     uint32 `protobuf:"varint,22,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *SnapshotEntry) Reset() {
@@ -1189,6 +1205,13 @@ func (x *SnapshotEntry) GetLandmarkSeeded() bool {
 		return x.LandmarkSeeded
 	}
 	return false
+}
+
+func (x *SnapshotEntry) GetMarkerKey() uint32 {
+	if x != nil {
+		return x.MarkerKey
+	}
+	return 0
 }
 
 // SnapshotMeasurement is a measurement as the estimator takes it.
@@ -1646,8 +1669,11 @@ type SnapshotCandidate struct {
 	// D, the Jacobian of relative_motion in the odometry calibration (forward
 	// scale, turn scale, heading-rate bias), 3x3 row-major; absent is zero.
 	RelativeCalibrationJacobian []float64 `protobuf:"fixed64,11,rep,packed,name=relative_calibration_jacobian,json=relativeCalibrationJacobian,proto3" json:"relative_calibration_jacobian,omitempty"`
-	unknownFields               protoimpl.UnknownFields
-	sizeCache                   protoimpl.SizeCache
+	// Pose fix: its marker's key, as SnapshotEntry.marker_key (version 15;
+	// absent: no marker named, and in older versions).
+	MarkerKey     uint32 `protobuf:"varint,12,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *SnapshotCandidate) Reset() {
@@ -1748,6 +1774,13 @@ func (x *SnapshotCandidate) GetRelativeCalibrationJacobian() []float64 {
 		return x.RelativeCalibrationJacobian
 	}
 	return nil
+}
+
+func (x *SnapshotCandidate) GetMarkerKey() uint32 {
+	if x != nil {
+		return x.MarkerKey
+	}
+	return 0
 }
 
 // JournalOpening starts a robot's journal.
@@ -2032,7 +2065,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x89\x0f\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xb4\x0f\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -2089,7 +2122,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x19long_turn_anchor_stamp_ns\x18( \x01(\x03R\x15longTurnAnchorStampNs\x12>\n" +
 	"\x1clong_turn_anchor_heading_rad\x18) \x01(\x01R\x18longTurnAnchorHeadingRad\x128\n" +
 	"\x19long_turn_anchor_var_rad2\x18* \x01(\x01R\x15longTurnAnchorVarRad2\x12>\n" +
-	"\x19imu_unchanged_heading_rad\x18+ \x01(\x01H\x01R\x16imuUnchangedHeadingRad\x88\x01\x01B\x17\n" +
+	"\x19imu_unchanged_heading_rad\x18+ \x01(\x01H\x01R\x16imuUnchangedHeadingRad\x88\x01\x01\x12)\n" +
+	"\x10move_unconfirmed\x18, \x01(\bR\x0fmoveUnconfirmedB\x17\n" +
 	"\x15_last_imu_heading_radB\x1c\n" +
 	"\x1a_imu_unchanged_heading_rad\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
@@ -2105,7 +2139,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
 	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\x12J\n" +
-	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\xaf\x05\n" +
+	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\xce\x05\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -2129,7 +2163,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\vfrom_wheels\x18\x13 \x01(\bR\n" +
 	"fromWheels\x12\x1a\n" +
 	"\blandmark\x18\x14 \x01(\x05R\blandmark\x12'\n" +
-	"\x0flandmark_seeded\x18\x15 \x01(\bR\x0elandmarkSeeded\"\xe6\x02\n" +
+	"\x0flandmark_seeded\x18\x15 \x01(\bR\x0elandmarkSeeded\x12\x1d\n" +
+	"\n" +
+	"marker_key\x18\x16 \x01(\rR\tmarkerKey\"\xe6\x02\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +
@@ -2169,7 +2205,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
 	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
 	"\x06raised\x18\x05 \x01(\bR\x06raised\x12\x18\n" +
-	"\achanged\x18\x06 \x01(\bR\achanged\"\xf1\x03\n" +
+	"\achanged\x18\x06 \x01(\bR\achanged\"\x90\x04\n" +
 	"\x11SnapshotCandidate\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x18\n" +
 	"\aimplied\x18\x02 \x03(\x01R\aimplied\x12\x1e\n" +
@@ -2184,7 +2220,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0fkeep_imu_offset\x18\t \x01(\bR\rkeepImuOffset\x12:\n" +
 	"\x19relative_white_covariance\x18\n" +
 	" \x03(\x01R\x17relativeWhiteCovariance\x12B\n" +
-	"\x1drelative_calibration_jacobian\x18\v \x03(\x01R\x1brelativeCalibrationJacobianJ\x04\b\x03\x10\x04R\n" +
+	"\x1drelative_calibration_jacobian\x18\v \x03(\x01R\x1brelativeCalibrationJacobian\x12\x1d\n" +
+	"\n" +
+	"marker_key\x18\f \x01(\rR\tmarkerKeyJ\x04\b\x03\x10\x04R\n" +
 	"correction\"\x9b\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +

@@ -1214,7 +1214,8 @@ func (x *NoiseModel) GetImuOffsetVarRad2PerRad() float64 {
 }
 
 // MoveRecovery re-initialises the pose when several consecutive refused pose
-// fixes agree with one another (the robot was picked up and moved).
+// fixes, or refused landmark fixes, agree with one another (the robot was
+// picked up and moved).
 type MoveRecovery struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Turns recovery on.
@@ -1224,8 +1225,20 @@ type MoveRecovery struct {
 	Count int32 `protobuf:"varint,2,opt,name=count,proto3" json:"count,omitempty"`
 	// Chi-square probability within which they must agree (default 0.99).
 	AgreeProbability float64 `protobuf:"fixed64,3,opt,name=agree_probability,json=agreeProbability,proto3" json:"agree_probability,omitempty"`
-	unknownFields    protoimpl.UnknownFields
-	sizeCache        protoimpl.SizeCache
+	// How many different markers the agreeing refused fixes must come from
+	// (default 2, at least 1, at most 8): pose fixes by PoseFix.marker,
+	// landmark fixes by their landmark (these need two anyway, for the
+	// heading). While refused fixes of fewer markers agree, the pose is not
+	// reseeded and DISTRUST_REASON_MOVE_UNCONFIRMED stands. Pose fixes
+	// without a marker count as before: a run of them with none named
+	// recovers at count; a fix without one beside named ones counts as a
+	// marker of its own. Refused pose fixes that name a marker are kept past
+	// window_ns while recovery waits, so that a second marker seen seconds
+	// later still confirms the first. 1 recovers from one marker's fixes, as
+	// builds before this option did.
+	DistinctMarkers int32 `protobuf:"varint,4,opt,name=distinct_markers,json=distinctMarkers,proto3" json:"distinct_markers,omitempty"`
+	unknownFields   protoimpl.UnknownFields
+	sizeCache       protoimpl.SizeCache
 }
 
 func (x *MoveRecovery) Reset() {
@@ -1275,6 +1288,13 @@ func (x *MoveRecovery) GetCount() int32 {
 func (x *MoveRecovery) GetAgreeProbability() float64 {
 	if x != nil {
 		return x.AgreeProbability
+	}
+	return 0
+}
+
+func (x *MoveRecovery) GetDistinctMarkers() int32 {
+	if x != nil {
+		return x.DistinctMarkers
 	}
 	return 0
 }
@@ -1653,11 +1673,12 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x19step_forward_var_m2_per_s\x18\v \x01(\x01R\x14stepForwardVarM2PerS\x121\n" +
 	"\x16step_left_var_m2_per_s\x18\f \x01(\x01R\x11stepLeftVarM2PerS\x125\n" +
 	"\x18step_turn_var_rad2_per_s\x18\r \x01(\x01R\x13stepTurnVarRad2PerS\x12;\n" +
-	"\x1bimu_offset_var_rad2_per_rad\x18\x0e \x01(\x01R\x16imuOffsetVarRad2PerRad\"k\n" +
+	"\x1bimu_offset_var_rad2_per_rad\x18\x0e \x01(\x01R\x16imuOffsetVarRad2PerRad\"\x96\x01\n" +
 	"\fMoveRecovery\x12\x18\n" +
 	"\aenabled\x18\x01 \x01(\bR\aenabled\x12\x14\n" +
 	"\x05count\x18\x02 \x01(\x05R\x05count\x12+\n" +
-	"\x11agree_probability\x18\x03 \x01(\x01R\x10agreeProbability\"\xe7\x01\n" +
+	"\x11agree_probability\x18\x03 \x01(\x01R\x10agreeProbability\x12)\n" +
+	"\x10distinct_markers\x18\x04 \x01(\x05R\x0fdistinctMarkers\"\xe7\x01\n" +
 	"\vTrustLimits\x12(\n" +
 	"\x10max_position95_m\x18\x01 \x01(\x01R\x0emaxPosition95M\x12-\n" +
 	"\x13max_heading_std_rad\x18\x02 \x01(\x01R\x10maxHeadingStdRad\x12\x1d\n" +

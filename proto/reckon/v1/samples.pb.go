@@ -617,7 +617,18 @@ type PoseFix struct {
 	// y, metres.
 	YM float64 `protobuf:"fixed64,2,opt,name=y_m,json=yM,proto3" json:"y_m,omitempty"`
 	// Heading, radians.
-	HeadingRad    float64 `protobuf:"fixed64,3,opt,name=heading_rad,json=headingRad,proto3" json:"heading_rad,omitempty"`
+	HeadingRad float64 `protobuf:"fixed64,3,opt,name=heading_rad,json=headingRad,proto3" json:"heading_rad,omitempty"`
+	// The marker (or rigid board of markers solved as one) whose surveyed
+	// place the pose was computed from, as the camera's decoder names it:
+	// the same name on every frame it is seen, at most -max-string-bytes
+	// (128) bytes; empty is unknown. Move recovery counts the markers of the
+	// refused fixes it would reseed from and waits for
+	// MoveRecovery.distinct_markers of them, so that one marker misread as
+	// another on every frame of a pass (its pose computed from the other's
+	// place) does not put the robot where that marker says and trust it
+	// (DEVELOPERS.md, "Design: Gating and recovery"). Fixes without it
+	// recover as before.
+	Marker        string `protobuf:"bytes,4,opt,name=marker,proto3" json:"marker,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -671,6 +682,13 @@ func (x *PoseFix) GetHeadingRad() float64 {
 		return x.HeadingRad
 	}
 	return 0
+}
+
+func (x *PoseFix) GetMarker() string {
+	if x != nil {
+		return x.Marker
+	}
+	return ""
 }
 
 // PositionFix is a measured field position of the mounted point.
@@ -1166,12 +1184,13 @@ const file_reckon_v1_samples_proto_rawDesc = "" +
 	"\n" +
 	"covariance\x18\b \x01(\v2\x15.reckon.v1.CovarianceR\n" +
 	"covarianceB\r\n" +
-	"\vmeasurement\"L\n" +
+	"\vmeasurement\"d\n" +
 	"\aPoseFix\x12\x0f\n" +
 	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
 	"\x03y_m\x18\x02 \x01(\x01R\x02yM\x12\x1f\n" +
 	"\vheading_rad\x18\x03 \x01(\x01R\n" +
-	"headingRad\"/\n" +
+	"headingRad\x12\x16\n" +
+	"\x06marker\x18\x04 \x01(\tR\x06marker\"/\n" +
 	"\vPositionFix\x12\x0f\n" +
 	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
 	"\x03y_m\x18\x02 \x01(\x01R\x02yM\"-\n" +

@@ -85,7 +85,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	maxStreams := fs.Uint("max-streams", 1024, "concurrent streams per connection")
 	var lim server.Limits
 	fs.IntVar(&lim.MaxRobots, "max-robots", 1000, "robots in all")
-	fs.IntVar(&lim.MaxStringBytes, "max-string-bytes", 128, "longest session_id, sensor_id, landmark_id and boot_id")
+	fs.IntVar(&lim.MaxStringBytes, "max-string-bytes", 128, "longest session_id, sensor_id, landmark_id, pose fix marker and boot_id")
 	fs.IntVar(&lim.MaxWatchersPerRobot, "max-watchers-per-robot", 64, "open watch streams per robot")
 	fs.IntVar(&lim.MaxWatchers, "max-watchers", 1024, "open watch streams in all")
 	fs.IntVar(&lim.MaxViewers, "max-viewers", 16, "open live view pages (event streams) in all")

@@ -250,16 +250,7 @@ func remainder(a float64) float64 { return math.Remainder(a, 2*math.Pi) }
 // (OpenSerial, as a USB serial adapter would be opened).
 func TestLinkPTY(t *testing.T) {
 	c := service(t)
-	master, tty, err := pty.Open()
-	if err != nil {
-		t.Skipf("no pseudo-terminal: %v", err)
-	}
-	defer master.Close()
-	defer tty.Close()
-	port, err := OpenSerial(tty.Name(), 115200)
-	if err != nil {
-		t.Fatal(err)
-	}
+	master, _, port := openPTY(t)
 	link(t, c, port, func(frames [][]byte) error {
 		for _, f := range frames {
 			if _, err := master.Write(f); err != nil {
@@ -300,6 +291,23 @@ func TestLinkUDP(t *testing.T) {
 		}
 		return nil
 	})
+}
+
+// openPTY opens a pseudo-terminal and its terminal end as a serial port
+// (OpenSerial at 115200 bit/s); both ends are closed when the test ends.
+// It skips the test where there is no pseudo-terminal.
+func openPTY(t *testing.T) (master, tty *os.File, port io.ReadCloser) {
+	t.Helper()
+	master, tty, err := pty.Open()
+	if err != nil {
+		t.Skipf("no pseudo-terminal: %v", err)
+	}
+	t.Cleanup(func() { master.Close(); tty.Close() })
+	port, err = OpenSerial(tty.Name(), 115200)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return master, tty, port
 }
 
 // udpWindow is how many datagrams TestLinkUDP's sender keeps ahead of the

@@ -5,7 +5,6 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/creack/pty"
 	"golang.org/x/sys/unix"
 )
 
@@ -17,23 +16,14 @@ import (
 // needs CAP_SYS_ADMIN; skipped without it). A port the link closed itself
 // still reads as closed.
 func TestSerialHangUp(t *testing.T) {
-	master, tty, err := pty.Open()
-	if err != nil {
-		t.Skipf("no pseudo-terminal: %v", err)
-	}
-	defer master.Close()
-	defer tty.Close()
-	p, err := OpenSerial(tty.Name(), 115200)
-	if err != nil {
-		t.Fatal(err)
-	}
+	_, tty, p := openPTY(t)
 	defer p.Close()
 	if err := unix.IoctlSetInt(int(tty.Fd()), unix.TIOCVHANGUP, 0); errors.Is(err, unix.EPERM) {
 		t.Skipf("hanging up a terminal needs CAP_SYS_ADMIN: %v", err)
 	} else if err != nil {
 		t.Fatal(err)
 	}
-	_, err = p.Read(make([]byte, 64))
+	_, err := p.Read(make([]byte, 64))
 	if err == nil || !strings.Contains(err.Error(), "went away") {
 		t.Errorf("read of a hung up port: %v; want an error saying the port went away", err)
 	}

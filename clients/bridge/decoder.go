@@ -297,7 +297,7 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 	case f.StampUs-s.stampUs > uint64(ahead)*maxStepUs && !s.confirms(f):
 		s.stats.Invalid++
 		s.jumped, s.jumpCounter, s.jumpUs = true, f.Counter, f.StampUs
-		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is %.0f s after the last taken frame's %d us, %d frames later (more than %d s a frame: a glitch of the controller's clock? the next frame is taken if it follows this one)",
+		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is %.0f s after the last taken frame's %d us, its counter %d ahead (more than %d s a counter step: a glitch of the controller's clock? the next frame is taken if it follows this one)",
 			f.StampUs, float64(f.StampUs-s.stampUs)*1e-6, s.stampUs, ahead, maxStepUs/1_000_000)
 		return nil
 	}

@@ -146,8 +146,10 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 		f(&o)
 	}
 	sum := Summary{Verdicts: map[pb.Verdict]int{}}
-	// The session a reopened stream continues, and the client sequence of
-	// the last sample sent on it.
+	// The session a reopened stream continues, and the last client
+	// sequence given out on it: a reopened stream goes on after it, so that
+	// no number goes to two samples, whether or not the service saw the
+	// sample that had it (a gap costs nothing).
 	id, lastSeq := sess.ID(), sess.Last()
 	var mu sync.Mutex // protects sum.Verdicts, sum.Reasons and run
 	// run is the last run start decoded until the service answers it: one
@@ -279,6 +281,11 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 			if err == nil && !isRun {
 				_, err = sess.Send(s)
 			}
+			// Sent or not: a run start sent before a sample whose send
+			// failed has its number, and a reopened stream must not give
+			// it to the next sample (the service would answer that sample
+			// with the run start's verdict, and not take it).
+			lastSeq = sess.Last()
 			if err != nil {
 				if o.reopen == nil {
 					readErr = fmt.Errorf("send: %w", err)
@@ -290,7 +297,6 @@ func Forward(ctx context.Context, src io.ReadCloser, dec *Decoder, sess *client.
 				}
 				continue
 			}
-			lastSeq = sess.Last()
 			if !isRun {
 				sum.Sent++
 			}
@@ -373,7 +379,7 @@ func sendRun(mu *sync.Mutex, r *pendingRun, sess *client.Session, sum *Summary) 
 	defer mu.Unlock()
 	switch {
 	case err != nil && !again:
-		r.seq, r.sent = 0, false // never sent: its number is the next sample's
+		r.seq, r.sent = 0, false // never sent: sent again, it takes the number then next
 	case err != nil:
 		r.sent = false
 	case !again:

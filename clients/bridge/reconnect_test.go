@@ -1,12 +1,16 @@
 package bridge
 
 import (
+	"bytes"
 	"context"
 	"io"
 	"math"
 	"sync"
 	"testing"
 	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/protobuf/proto"
 
 	"reckon.example/clients/client"
 	pb "reckon.example/proto/reckon/v1"
@@ -227,5 +231,196 @@ func TestLinkRunStartAcrossOutage(t *testing.T) {
 	}
 	if n := res.sum.Verdicts[pb.Verdict_VERDICT_INVALID]; n != 0 {
 		t.Errorf("%d samples refused: %v", n, res.sum.Reasons)
+	}
+}
+
+// sendFaults is a stream interceptor on the link's connection: it fails
+// the sends it is armed for (the request is not sent and its stream ends,
+// as when the connection drops between two sends) and records every
+// ingest request sent, so that a test can see whether one client sequence
+// went out with two different samples.
+type sendFaults struct {
+	mu      sync.Mutex
+	streams int               // streams opened so far
+	fail    []sendFault       // armed, in order: the first is tried on each send
+	sent    map[uint64][]byte // a client sequence's sample as first sent
+	twice   []uint64          // client sequences sent with another sample
+}
+
+// sendFault fails the first send on the stream-th stream (from 1) whose
+// request match says.
+type sendFault struct {
+	stream int
+	match  func(*pb.IngestRequest) bool
+}
+
+func (f *sendFaults) intercept(ctx context.Context, desc *grpc.StreamDesc, cc *grpc.ClientConn, method string, streamer grpc.Streamer, opts ...grpc.CallOption) (grpc.ClientStream, error) {
+	ctx, cancel := context.WithCancel(ctx)
+	cs, err := streamer(ctx, desc, cc, method, opts...)
+	if err != nil {
+		cancel()
+		return nil, err
+	}
+	f.mu.Lock()
+	f.streams++
+	n := f.streams
+	f.mu.Unlock()
+	return &faultStream{ClientStream: cs, f: f, n: n, cancel: cancel}, nil
+}
+
+type faultStream struct {
+	grpc.ClientStream
+	f      *sendFaults
+	n      int
+	cancel context.CancelFunc
+	dead   bool // a send failed: every later one fails too (f.mu)
+}
+
+func (s *faultStream) SendMsg(m any) error {
+	req, ok := m.(*pb.IngestRequest)
+	if !ok {
+		return s.ClientStream.SendMsg(m)
+	}
+	f := s.f
+	f.mu.Lock()
+	if s.dead {
+		f.mu.Unlock()
+		return io.EOF
+	}
+	if len(f.fail) > 0 && f.fail[0].stream == s.n && f.fail[0].match(req) {
+		f.fail = f.fail[1:]
+		s.dead = true
+		f.mu.Unlock()
+		s.cancel()
+		return io.EOF // what a stream that ended answers a send
+	}
+	f.mu.Unlock()
+	if err := s.ClientStream.SendMsg(m); err != nil {
+		return err
+	}
+	b, err := proto.MarshalOptions{Deterministic: true}.Marshal(req.GetSample())
+	if err != nil {
+		return err
+	}
+	f.mu.Lock()
+	defer f.mu.Unlock()
+	if first, ok := f.sent[req.GetClientSequence()]; !ok {
+		f.sent[req.GetClientSequence()] = b
+	} else if !bytes.Equal(first, b) {
+		f.twice = append(f.twice, req.GetClientSequence())
+	}
+	return nil
+}
+
+// TestLinkNeverReusesASequence: the controller restarts, and the
+// connection drops first as the new boot's run start is sent, then again
+// right after it was sent again, before the sample behind it. Every stream
+// the link opens again must go on after every client sequence it gave out:
+// the service answers a sample whose number it has seen with the verdict
+// it gave that number, and does not take it. Before, the link reopened
+// after the last sample it had sent whole, the run start's number went to
+// the next odometry sample too, and the service answered that sample as
+// the run start.
+func TestLinkNeverReusesASequence(t *testing.T) {
+	addr, stop := serveAt(t, "127.0.0.1:0", t.TempDir())
+	defer stop()
+	runStart := func(r *pb.IngestRequest) bool { return r.GetSample().GetRunStart() != nil }
+	odometry := func(r *pb.IngestRequest) bool { return r.GetSample().GetOdometry() != nil }
+	faults := &sendFaults{sent: map[uint64][]byte{}}
+	c, err := client.Dial(addr, client.Options{DialOptions: []grpc.DialOption{grpc.WithStreamInterceptor(faults.intercept)}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	createCarts(t, c)
+	sessCtx, endSess := context.WithCancel(context.Background())
+	defer endSess()
+	sess, err := c.OpenIngest(sessCtx, "robots/link")
+	if err != nil {
+		t.Fatal(err)
+	}
+	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
+		return c.OpenIngest(sessCtx, "robots/link", client.Resume(id, last))
+	}
+	pr, pw := io.Pipe()
+	log := &lockedWriter{}
+	ctx, stopForward := context.WithCancel(context.Background())
+	type result struct {
+		sum Summary
+		err error
+	}
+	done := make(chan result, 1)
+	go func() {
+		var d Decoder
+		sum, err := Forward(ctx, pr, &d, sess, Reconnect(reopen, log))
+		done <- result{sum, err}
+	}()
+	// Boot 1 is the cart's arc; boot 2 drives it on from counts, counter
+	// and clock started again.
+	frame := func(k int) Frame {
+		if k < 300 {
+			return cartFrame(k)
+		}
+		j := k - 300
+		return wheels(2, uint32(j), uint64(100_000+cartStepUs*j), int32(185*j), int32(215*j), int32(-10*j))
+	}
+	stampOf := func(k int) int64 { f := frame(k); return int64(f.StampUs) * 1000 }
+	send := func(from, to int) {
+		for k := from; k < to; k++ {
+			f := frame(k)
+			if _, err := pw.Write(AppendFrame(nil, &f, nil)); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	robot := func() *pb.Robot {
+		r, err := c.GetRobot(context.Background(), "robots/link")
+		if err != nil {
+			return nil
+		}
+		return r
+	}
+	send(0, 300)
+	for deadline := time.Now().Add(30 * time.Second); robot().GetNewestStampNs() != stampOf(299); time.Sleep(20 * time.Millisecond) {
+		if time.Now().After(deadline) {
+			t.Fatalf("the service never saw boot 1's last frame; link's log:\n%s", log.text())
+		}
+	}
+	faults.mu.Lock()
+	faults.fail = []sendFault{{1, runStart}, {2, odometry}}
+	faults.mu.Unlock()
+	// Frames, a few at a time, until both faults were met and the robot
+	// has every frame sent.
+	k := 300
+	for deadline := time.Now().Add(60 * time.Second); ; k += 5 {
+		if time.Now().After(deadline) {
+			t.Fatalf("the link never got through both faults to frame %d; link's log:\n%s", k, log.text())
+		}
+		send(k, k+5)
+		time.Sleep(30 * time.Millisecond)
+		faults.mu.Lock()
+		armed := len(faults.fail)
+		faults.mu.Unlock()
+		if armed == 0 && robot().GetNewestStampNs() == stampOf(k+4) {
+			break
+		}
+	}
+	stopForward()
+	pw.Close()
+	res := <-done
+	if res.err != nil {
+		t.Fatalf("Forward: %v", res.err)
+	}
+	t.Logf("summary %+v\nlog:\n%s", res.sum, log.text())
+	faults.mu.Lock()
+	defer faults.mu.Unlock()
+	if len(faults.twice) > 0 {
+		t.Errorf("client sequences %v went out with two different samples", faults.twice)
+	}
+	if faults.streams < 3 {
+		t.Errorf("%d streams opened: want the link to reopen after each fault", faults.streams)
+	}
+	if r := robot(); r.GetRun() != 2 || r.GetBootId() != BootID(2) {
+		t.Errorf("robot in run %d of boot %q, want run 2 of %q", r.GetRun(), r.GetBootId(), BootID(2))
 	}
 }

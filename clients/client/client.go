@@ -54,6 +54,9 @@ type Options struct {
 	// token may travel in plain text only to a loopback address: Dial
 	// refuses a token without TLS to any other address.
 	RequireSecureToken bool
+	// DialOptions are more gRPC dial options (interceptors, for instance),
+	// applied after the client's own.
+	DialOptions []grpc.DialOption
 }
 
 // ErrPlaintextToken is returned by Dial for a token without TLS to an
@@ -115,7 +118,7 @@ func Dial(addr string, opt Options) (*Client, error) {
 	if opt.Token != "" {
 		dopts = append(dopts, grpc.WithPerRPCCredentials(bearer{token: opt.Token, secure: opt.TLS != nil || opt.RequireSecureToken}))
 	}
-	conn, err := grpc.NewClient(addr, dopts...)
+	conn, err := grpc.NewClient(addr, append(dopts, opt.DialOptions...)...)
 	if err != nil {
 		return nil, err
 	}

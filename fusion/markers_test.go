@@ -285,3 +285,43 @@ func TestSnapshotKeepsMarkers(t *testing.T) {
 		t.Error("the snapshots at the end differ")
 	}
 }
+
+// TestNamedOutlierDoesNotBlockUnnamedRecovery: one refused pose fix that
+// names its marker and is far off (a misread marker, just before the
+// cart is moved by hand), then fixes that name none. The unnamed fixes
+// after the move must recover as they would with distinct_markers 1 (each
+// counts as a marker of its own, recovery.distinct_markers); before, the
+// named candidate was kept beside them as the newest of its marker, and
+// carried past the window while they were dropped, so its disagreement
+// stopped every recovery to the end of the run.
+func TestNamedOutlierDoesNotBlockUnnamedRecovery(t *testing.T) {
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 51, DurationS: 12, Bump: &fusiontest.Bump{AtS: 4.3, DXM: 1.5, DYM: -0.4, DRad: 0.6}}
+	at := [2]int{}
+	for k, distinct := range []int{1, 2} {
+		s, ins := collect(sc)
+		last := -1
+		for i := range ins {
+			if f := ins[i].Fix; f != nil && f.Kind == fusion.FixPose && ins[i].Bumped {
+				last = i
+				break
+			}
+		}
+		if last < 0 {
+			t.Fatal("no pose fix after the move")
+		}
+		g := *ins[last].Fix
+		g.XM += 5
+		g.Marker = "post-2-misread"
+		ins[last].Fix = &g
+		cfg := s.Config()
+		cfg.Recovery.DistinctMarkers = distinct
+		r, err := fusion.New(cfg)
+		if err != nil {
+			t.Fatal(err)
+		}
+		at[k] = recoveredAt(r, ins)
+	}
+	if at[0] < 0 || at[1] != at[0] {
+		t.Errorf("recovered %d inputs after the move with distinct_markers 1, %d with 2 (-1: never); want the same", at[0], at[1])
+	}
+}

@@ -315,26 +315,35 @@ func (r *Robot) carryNamed(newBase int64) {
 
 // keepMarkers drops the oldest over of the candidates kept, in fix-stamp
 // order, except, for pose fixes, the newest of each marker not among the
-// newer ones while those number fewer than recovery.distinct_markers: a
-// marker passed before the next came into view still counts for the
-// recovery, at most distinct_markers - 1 candidates more than
-// recovery.count. Candidates that name no marker are dropped as before.
+// newer ones while those number fewer than recovery.distinct_markers
+// (counted as markersShort does: each newer candidate that names none is
+// a marker of its own): a marker passed before the next came into view
+// still counts for the recovery, at most distinct_markers - 1 candidates
+// more than recovery.count. Candidates that name no marker are dropped as
+// before, and so is every older one once the newer ones are enough, so
+// that a named fix far off (a misread marker) does not stay beside a run
+// of fixes that name none and stop its recovery.
 func (r *Robot) keepMarkers(kept []candidate, over int, landmark bool) []candidate {
 	need := r.cfg.Recovery.DistinctMarkers
 	if landmark || need <= 1 {
 		return append(kept[:0], kept[over:]...)
 	}
 	var markers []uint32
+	distinct := 0
 	for i := over; i < len(kept); i++ {
-		if k := kept[i].marker; k != 0 && !slices.Contains(markers, k) {
+		if k := kept[i].marker; k == 0 {
+			distinct++
+		} else if !slices.Contains(markers, k) {
 			markers = append(markers, k)
+			distinct++
 		}
 	}
 	// Walk the dropped from the newest back, marking those kept.
 	keep := make([]bool, over)
-	for i := over - 1; i >= 0 && len(markers) < need; i-- {
+	for i := over - 1; i >= 0 && distinct < need; i-- {
 		if k := kept[i].marker; k != 0 && !slices.Contains(markers, k) {
 			markers = append(markers, k)
+			distinct++
 			keep[i] = true
 		}
 	}

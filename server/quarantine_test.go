@@ -418,8 +418,9 @@ func TestDeleteQuarantined(t *testing.T) {
 // as ingest does: in their response for an input the robot took
 // (REFUSAL_TOO_FAR_AHEAD), and otherwise in the details of the status,
 // where refusals with the same code differ (a run start out of order and a
-// quarantined robot are both FAILED_PRECONDITION). Before, only the
-// reason's text told them apart.
+// quarantined robot are both FAILED_PRECONDITION), a request without its
+// reseed or run start included. Before, only the reason's text told them
+// apart, and a request without its input had no details at all.
 func TestCallRefusalValue(t *testing.T) {
 	dir, _ := twoCartsOneGarbled(t)
 	srv := start(t, testConfig{Options: Options{JournalDir: dir}})
@@ -473,6 +474,10 @@ func TestCallRefusalValue(t *testing.T) {
 		{"reseed malformed", func() (refusal, error) {
 			return reseed("robots/cart-a", &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{}, Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1}}})
 		}, codes.InvalidArgument, pb.Refusal_REFUSAL_MALFORMED, "reseed.covariance"},
+		{"reseed missing", func() (refusal, error) { return reseed("robots/cart-a", nil) },
+			codes.InvalidArgument, pb.Refusal_REFUSAL_MALFORMED, "reseed"},
+		{"run start missing", func() (refusal, error) { return startRun("robots/cart-a", nil) },
+			codes.InvalidArgument, pb.Refusal_REFUSAL_MALFORMED, "run_start"},
 		{"reseed taken, too far ahead", func() (refusal, error) {
 			return reseed("robots/cart-a", &pb.Reseed{StampNs: newest + 2e9, Pose: &pb.FloorPose{}, Covariance: unit})
 		}, codes.OK, pb.Refusal_REFUSAL_TOO_FAR_AHEAD, ""},

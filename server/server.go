@@ -1445,7 +1445,9 @@ func (s *Server) GetPoseAt(ctx context.Context, req *pb.GetPoseAtRequest) (*pb.G
 // ReseedRobot restarts a robot's filter from a given pose; it is journaled like any input.
 func (s *Server) ReseedRobot(ctx context.Context, req *pb.ReseedRobotRequest) (*pb.ReseedRobotResponse, error) {
 	if req.GetReseed() == nil {
-		return nil, status.Errorf(codes.InvalidArgument, "reseed: missing")
+		const reason = "reseed: missing"
+		return nil, callRefused(int32(codes.InvalidArgument), reason, &pb.ReseedRobotResponse{Verdict: pb.Verdict_VERDICT_INVALID, Reason: reason,
+			Refusal: pb.Refusal_REFUSAL_MALFORMED, Field: "reseed"})
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: req.GetReseed()}})
 	out := &pb.ReseedRobotResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason, Refusal: resp.Refusal, Field: callField(resp.Field)}
@@ -1488,7 +1490,9 @@ func callRefused(code int32, reason string, resp protoadapt.MessageV1) error {
 // run as the robot took it.
 func (s *Server) StartRun(ctx context.Context, req *pb.StartRunRequest) (*pb.StartRunResponse, error) {
 	if req.GetRunStart() == nil {
-		return nil, status.Errorf(codes.InvalidArgument, "run_start: missing")
+		const reason = "run_start: missing"
+		return nil, callRefused(int32(codes.InvalidArgument), reason, &pb.StartRunResponse{Verdict: pb.Verdict_VERDICT_INVALID, Reason: reason,
+			Refusal: pb.Refusal_REFUSAL_MALFORMED, Field: "run_start"})
 	}
 	resp := s.ingest(req.GetRobot(), 0, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: req.GetRunStart()}})
 	out := &pb.StartRunResponse{Sequence: resp.Sequence, Verdict: resp.Verdict, Reason: resp.Reason, Refusal: resp.Refusal, Field: callField(resp.Field)}

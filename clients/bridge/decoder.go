@@ -55,9 +55,9 @@ type Splitter struct {
 	invalid   uint64
 	drops     []Drop // those of the last AppendFrames call, at most maxDrops
 	base, n   int    // len(dst) when AppendFrames was called, and now
-	// since is how many bytes arrived since the last good frame ended
-	// (or the start); at every lineHint of them a drop of field "line"
-	// says that none makes a frame.
+	// since is how many bytes arrived since the last frame with a good
+	// CRC ended, taken or invalid (or the start); at every lineHint of
+	// them a drop of field "line" says that none makes a frame.
 	since int
 }
 
@@ -152,8 +152,10 @@ func (s *Splitter) end() (Frame, bool) {
 		s.since = 0
 		return f, true
 	case errors.Is(err, ErrInvalid):
+		// A good CRC: the bit rate is right, whatever else is wrong.
 		s.frames++
 		s.invalid++
+		s.since = 0
 	default:
 		s.corrupted++
 	}

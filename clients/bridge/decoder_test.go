@@ -389,3 +389,41 @@ func TestDecoderBehindRun(t *testing.T) {
 		t.Errorf("stats %+v", st)
 	}
 }
+
+// TestLineHintNotForValidCRC: frames with a good CRC that this decoder does
+// not take (here an unknown type, as from firmware newer than the link)
+// prove the bit rate right: each is named for what is wrong with it, and no
+// run of them, however long, is said to make no good frame (field "line",
+// which asks whether -baud is wrong). Before, the bytes of invalid frames
+// counted toward it, so that every 4096 of them the link asked about the
+// bit rate, wiring and ground of a line that worked.
+func TestLineHintNotForValidCRC(t *testing.T) {
+	var frames []Frame
+	for k := range 400 {
+		f := wheels(0, uint32(k+1), uint64(10*(k+1)), int32(k))
+		f.Type = 7
+		frames = append(frames, f)
+	}
+	stream := encode(frames...)
+	if len(stream) < 2*lineHint {
+		t.Fatalf("%d bytes, want over %d", len(stream), 2*lineHint)
+	}
+	var d Decoder
+	var drops []Drop
+	for i := 0; i < len(stream); i += 512 {
+		d.Decode(nil, stream[i:min(i+512, len(stream))])
+		drops = d.Drops(drops)
+	}
+	types := 0
+	for _, dr := range drops {
+		switch dr.Err.Field {
+		case "line":
+			t.Errorf("a line of good-CRC frames of an unknown type named as one that makes no good frame: %v", dr.Err)
+		case "type":
+			types++
+		}
+	}
+	if st := d.Stats(); st.Invalid != 400 || types == 0 {
+		t.Errorf("stats %+v, %d drops of field type; want 400 invalid, named by their type", st, types)
+	}
+}

@@ -117,7 +117,11 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 	}
 	fmt.Fprintf(w, "%d samples sent to %s: %s%s\n", sum.Sent, robot, verdictLine(sum.Verdicts), notTaken)
 	if sum.Reconnects > 0 {
-		fmt.Fprintf(w, "the service ended the stream %d times; %d samples dropped while it was not open\n", sum.Reconnects, sum.Dropped)
+		times := "times"
+		if sum.Reconnects == 1 {
+			times = "time"
+		}
+		fmt.Fprintf(w, "the service ended the stream %d %s; %d samples dropped while it was not open\n", sum.Reconnects, times, sum.Dropped)
 	}
 	for _, r := range sum.Reasons {
 		fmt.Fprintln(w, "  "+r)

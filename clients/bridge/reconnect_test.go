@@ -53,36 +53,8 @@ func TestLinkReconnects(t *testing.T) {
 	createCarts(t, c)
 	want, lastNs := cleanPose(t, c)
 
-	sessCtx, endSess := context.WithCancel(context.Background())
-	defer endSess()
-	sess, err := c.OpenIngest(sessCtx, "robots/link")
-	if err != nil {
-		t.Fatal(err)
-	}
-	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
-		return c.OpenIngest(sessCtx, "robots/link", client.Resume(id, last))
-	}
-	pr, pw := io.Pipe()
-	log := &lockedWriter{}
-	ctx, stopForward := context.WithCancel(context.Background())
-	type result struct {
-		sum Summary
-		err error
-	}
-	done := make(chan result, 1)
-	go func() {
-		var d Decoder
-		sum, err := Forward(ctx, pr, &d, sess, Reconnect(reopen, log))
-		done <- result{sum, err}
-	}()
-	send := func(from, to int) {
-		for k := from; k < to; k++ {
-			f := cartFrame(k)
-			if _, err := pw.Write(AppendFrame(nil, &f, nil)); err != nil {
-				t.Fatal(err)
-			}
-		}
-	}
+	l := startRelink(t, c, cartFrame)
+	send := l.send
 	newest := func() int64 {
 		r, err := c.GetRobot(context.Background(), "robots/link")
 		if err != nil {
@@ -112,13 +84,11 @@ func TestLinkReconnects(t *testing.T) {
 	}
 	send(k, cartFrames)
 	waitFor(lastNs)
-	stopForward()
-	pw.Close()
-	res := <-done
+	res := l.end()
 	if res.err != nil {
 		t.Fatalf("Forward: %v", res.err)
 	}
-	t.Logf("summary %+v\nlog:\n%s", res.sum, log.b)
+	t.Logf("summary %+v\nlog:\n%s", res.sum, l.log.text())
 	if res.sum.Reconnects < 1 || res.sum.Dropped < 1 {
 		t.Errorf("%d reconnects, %d dropped: want the outage seen", res.sum.Reconnects, res.sum.Dropped)
 	}
@@ -149,53 +119,8 @@ func TestLinkRunStartAcrossOutage(t *testing.T) {
 	defer c.Close()
 	createCarts(t, c)
 
-	sessCtx, endSess := context.WithCancel(context.Background())
-	defer endSess()
-	sess, err := c.OpenIngest(sessCtx, "robots/link")
-	if err != nil {
-		t.Fatal(err)
-	}
-	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
-		return c.OpenIngest(sessCtx, "robots/link", client.Resume(id, last))
-	}
-	pr, pw := io.Pipe()
-	log := &lockedWriter{}
-	ctx, stopForward := context.WithCancel(context.Background())
-	type result struct {
-		sum Summary
-		err error
-	}
-	done := make(chan result, 1)
-	go func() {
-		var d Decoder
-		sum, err := Forward(ctx, pr, &d, sess, Reconnect(reopen, log))
-		done <- result{sum, err}
-	}()
-	// Boot 1 is the cart's arc; boot 2 drives it on from counts, counter
-	// and clock started again (10 ms frames from 0.1 s).
-	frame := func(k int) Frame {
-		if k < 300 {
-			return cartFrame(k)
-		}
-		j := k - 300
-		return wheels(2, uint32(j), uint64(100_000+cartStepUs*j), int32(185*j), int32(215*j), int32(-10*j))
-	}
-	stampOf := func(k int) int64 { f := frame(k); return int64(f.StampUs) * 1000 }
-	send := func(from, to int) {
-		for k := from; k < to; k++ {
-			f := frame(k)
-			if _, err := pw.Write(AppendFrame(nil, &f, nil)); err != nil {
-				t.Fatal(err)
-			}
-		}
-	}
-	robot := func() *pb.Robot {
-		r, err := c.GetRobot(context.Background(), "robots/link")
-		if err != nil {
-			return nil
-		}
-		return r
-	}
+	l := startRelink(t, c, rebootFrame)
+	log, send, robot := l.log, l.send, l.robot
 	waitFor := func(stamp int64) {
 		for deadline := time.Now().Add(30 * time.Second); robot().GetNewestStampNs() != stamp; time.Sleep(20 * time.Millisecond) {
 			if time.Now().After(deadline) {
@@ -205,7 +130,7 @@ func TestLinkRunStartAcrossOutage(t *testing.T) {
 		}
 	}
 	send(0, 300)
-	waitFor(stampOf(299))
+	waitFor(rebootStamp(299))
 	stop()
 	send(300, 340) // the controller restarted while the service is away
 	_, stop = serveAt(t, addr, dir)
@@ -213,19 +138,17 @@ func TestLinkRunStartAcrossOutage(t *testing.T) {
 	// Frames until the link is through again (gRPC's own reconnection
 	// backs off for seconds) and the robot has all of them.
 	k := 340
-	for ; k < 3300 && robot().GetNewestStampNs() != stampOf(k-1); k += 10 {
+	for ; k < 3300 && robot().GetNewestStampNs() != rebootStamp(k-1); k += 10 {
 		send(k, k+10)
 		time.Sleep(50 * time.Millisecond)
 	}
 	send(k, k+10)
-	waitFor(stampOf(k + 9))
-	stopForward()
-	pw.Close()
-	res := <-done
+	waitFor(rebootStamp(k + 9))
+	res := l.end()
 	if res.err != nil {
 		t.Fatalf("Forward: %v", res.err)
 	}
-	t.Logf("summary %+v\nlog:\n%s", res.sum, log.b)
+	t.Logf("summary %+v\nlog:\n%s", res.sum, log.text())
 	if r := robot(); r.GetRun() != 2 || r.GetBootId() != BootID(2) {
 		t.Errorf("robot in run %d of boot %q, want run 2 of %q", r.GetRun(), r.GetBootId(), BootID(2))
 	}
@@ -333,55 +256,10 @@ func TestLinkNeverReusesASequence(t *testing.T) {
 	}
 	defer c.Close()
 	createCarts(t, c)
-	sessCtx, endSess := context.WithCancel(context.Background())
-	defer endSess()
-	sess, err := c.OpenIngest(sessCtx, "robots/link")
-	if err != nil {
-		t.Fatal(err)
-	}
-	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
-		return c.OpenIngest(sessCtx, "robots/link", client.Resume(id, last))
-	}
-	pr, pw := io.Pipe()
-	log := &lockedWriter{}
-	ctx, stopForward := context.WithCancel(context.Background())
-	type result struct {
-		sum Summary
-		err error
-	}
-	done := make(chan result, 1)
-	go func() {
-		var d Decoder
-		sum, err := Forward(ctx, pr, &d, sess, Reconnect(reopen, log))
-		done <- result{sum, err}
-	}()
-	// Boot 1 is the cart's arc; boot 2 drives it on from counts, counter
-	// and clock started again.
-	frame := func(k int) Frame {
-		if k < 300 {
-			return cartFrame(k)
-		}
-		j := k - 300
-		return wheels(2, uint32(j), uint64(100_000+cartStepUs*j), int32(185*j), int32(215*j), int32(-10*j))
-	}
-	stampOf := func(k int) int64 { f := frame(k); return int64(f.StampUs) * 1000 }
-	send := func(from, to int) {
-		for k := from; k < to; k++ {
-			f := frame(k)
-			if _, err := pw.Write(AppendFrame(nil, &f, nil)); err != nil {
-				t.Fatal(err)
-			}
-		}
-	}
-	robot := func() *pb.Robot {
-		r, err := c.GetRobot(context.Background(), "robots/link")
-		if err != nil {
-			return nil
-		}
-		return r
-	}
+	l := startRelink(t, c, rebootFrame)
+	log, send, robot := l.log, l.send, l.robot
 	send(0, 300)
-	for deadline := time.Now().Add(30 * time.Second); robot().GetNewestStampNs() != stampOf(299); time.Sleep(20 * time.Millisecond) {
+	for deadline := time.Now().Add(30 * time.Second); robot().GetNewestStampNs() != rebootStamp(299); time.Sleep(20 * time.Millisecond) {
 		if time.Now().After(deadline) {
 			t.Fatalf("the service never saw boot 1's last frame; link's log:\n%s", log.text())
 		}
@@ -401,13 +279,11 @@ func TestLinkNeverReusesASequence(t *testing.T) {
 		faults.mu.Lock()
 		armed := len(faults.fail)
 		faults.mu.Unlock()
-		if armed == 0 && robot().GetNewestStampNs() == stampOf(k+4) {
+		if armed == 0 && robot().GetNewestStampNs() == rebootStamp(k+4) {
 			break
 		}
 	}
-	stopForward()
-	pw.Close()
-	res := <-done
+	res := l.end()
 	if res.err != nil {
 		t.Fatalf("Forward: %v", res.err)
 	}
@@ -424,3 +300,84 @@ func TestLinkNeverReusesASequence(t *testing.T) {
 		t.Errorf("robot in run %d of boot %q, want run 2 of %q", r.GetRun(), r.GetBootId(), BootID(2))
 	}
 }
+
+// relink is a link to robots/link that Forward runs with Reconnect over a
+// pipe, for the tests of a link across outages and faults.
+type relink struct {
+	t     *testing.T
+	c     *client.Client
+	pw    *io.PipeWriter
+	log   *lockedWriter
+	stop  context.CancelFunc
+	done  chan forwardResult
+	frame func(int) Frame // the frames send sends
+}
+
+// forwardResult is what Forward returned.
+type forwardResult struct {
+	sum Summary
+	err error
+}
+
+// startRelink opens a session of robots/link on c and starts Forward on
+// it; send sends frame's frames.
+func startRelink(t *testing.T, c *client.Client, frame func(int) Frame) *relink {
+	sessCtx, endSess := context.WithCancel(context.Background())
+	t.Cleanup(endSess)
+	sess, err := c.OpenIngest(sessCtx, "robots/link")
+	if err != nil {
+		t.Fatal(err)
+	}
+	reopen := func(ctx context.Context, id string, last uint64) (*client.Session, error) {
+		return c.OpenIngest(sessCtx, "robots/link", client.Resume(id, last))
+	}
+	pr, pw := io.Pipe()
+	ctx, stop := context.WithCancel(context.Background())
+	l := &relink{t: t, c: c, pw: pw, log: &lockedWriter{}, stop: stop, done: make(chan forwardResult, 1), frame: frame}
+	go func() {
+		var d Decoder
+		sum, err := Forward(ctx, pr, &d, sess, Reconnect(reopen, l.log))
+		l.done <- forwardResult{sum, err}
+	}()
+	return l
+}
+
+// send writes frames from to to to the link.
+func (l *relink) send(from, to int) {
+	for k := from; k < to; k++ {
+		f := l.frame(k)
+		if _, err := l.pw.Write(AppendFrame(nil, &f, nil)); err != nil {
+			l.t.Fatal(err)
+		}
+	}
+}
+
+// robot returns robots/link as the service has it (nil: not reached).
+func (l *relink) robot() *pb.Robot {
+	r, err := l.c.GetRobot(context.Background(), "robots/link")
+	if err != nil {
+		return nil
+	}
+	return r
+}
+
+// end stops the link and returns what Forward returned.
+func (l *relink) end() forwardResult {
+	l.stop()
+	l.pw.Close()
+	return <-l.done
+}
+
+// rebootFrame is frame k of a controller that restarts at frame 300: boot
+// 1 is the cart's arc; boot 2 drives it on from counts, counter and clock
+// started again (10 ms frames from 0.1 s).
+func rebootFrame(k int) Frame {
+	if k < 300 {
+		return cartFrame(k)
+	}
+	j := k - 300
+	return wheels(2, uint32(j), uint64(100_000+cartStepUs*j), int32(185*j), int32(215*j), int32(-10*j))
+}
+
+// rebootStamp is rebootFrame k's stamp, nanoseconds.
+func rebootStamp(k int) int64 { f := rebootFrame(k); return int64(f.StampUs) * 1000 }

@@ -126,7 +126,11 @@ func (r *Robot) decideMeas(res *Result, ins *insertion, sensor string) {
 		}
 		if !e.imu {
 			r.fixApplied(ins.at)
+			held := !r.confirmsReseed(e.marker)
 			r.clearCandidates()
+			if held {
+				r.holdReseed(e.marker)
+			}
 		} else {
 			r.checkTurn(res, ins.at)
 		}

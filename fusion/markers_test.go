@@ -325,3 +325,51 @@ func TestNamedOutlierDoesNotBlockUnnamedRecovery(t *testing.T) {
 		t.Errorf("recovered %d inputs after the move with distinct_markers 1, %d with 2 (-1: never); want the same", at[0], at[1])
 	}
 }
+
+// TestOldMisreadDoesNotConfirmAnother: a marker read 5 m along on every
+// frame of one pass, then three minutes with no fix (a cart driving an
+// aisle with no marker in view), then another marker read as a third on
+// every frame, its fixes 1.5 m from where the first misread, carried by
+// the wheels, puts the cart. The first pass's candidates, carried past
+// the window all that time (95% radius 4.5 m, heading standard deviation
+// 0.31 rad), had grown so uncertain that the second's agreed with them:
+// the cart was reseeded at the second misread and trusted more than 1 m
+// off for 1.94 s (DEVELOPERS.md, "Design: Gating and recovery"). A
+// candidate too uncertain to be trusted itself confirms nothing: the
+// reseed is held untrusted until a fix of another marker is applied, and
+// the cart is never trusted more than 1 m off. Ten seconds apart, the same
+// two misreads do not agree, before the change or after it; the control
+// checks that the second offset differs enough to tell them apart.
+func TestOldMisreadDoesNotConfirmAnother(t *testing.T) {
+	const period = 2e9
+	run := func(gapS float64) (float64, int) {
+		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 41, DurationS: 18 + gapS}
+		s, ins := collect(sc)
+		nameMarkers(ins, period)
+		if n := misread(ins, 6e9, 8e9, 5, period); n < 10 {
+			t.Fatalf("only %d fixes misread", n)
+		}
+		second := int64(8e9 + gapS*1e9)
+		kept := ins[:0]
+		for _, in := range ins {
+			if f := in.Fix; f != nil && f.Kind == fusion.FixPose && f.StampNs >= 8e9 && f.StampNs < second {
+				continue
+			}
+			kept = append(kept, in)
+		}
+		if n := misread(kept, second, second+period, 3.5, period); n < 10 {
+			t.Fatalf("only %d fixes of the second pass misread", n)
+		}
+		longest, recoveries, _ := trustedOff(t, s.Config(), kept, 1)
+		return longest, recoveries
+	}
+	nearS, nearRec := run(10)
+	farS, farRec := run(180)
+	t.Logf("trusted more than 1 m off: %.2f s (%d recoveries) with the misreads 10 s apart, %.2f s (%d recoveries) 180 s apart", nearS, nearRec, farS, farRec)
+	if nearS > 0 || nearRec != 0 {
+		t.Errorf("10 s apart: trusted off %.2f s after %d recoveries; the misreads agree without any carry, so the test shows nothing", nearS, nearRec)
+	}
+	if farS > 0 {
+		t.Errorf("180 s apart: trusted more than 1 m off for %.2f s after %d recoveries", farS, farRec)
+	}
+}

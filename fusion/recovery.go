@@ -64,6 +64,42 @@ func markerKey(name string) uint32 {
 func (r *Robot) clearCandidates() {
 	r.cands = r.cands[:0]
 	r.trust.unconfirmed = false
+	r.trust.held, r.trust.heldMarker = false, 0
+}
+
+// confirmsReseed reports whether an applied pose fix naming marker key k
+// ends the hold on a reseed (holdReseed): a fix of another marker, or one
+// naming none (a marker of its own), confirms the reseeded pose; another fix
+// of the reseed's own marker does not, since a misread marker's fixes agree
+// with one another.
+func (r *Robot) confirmsReseed(k uint32) bool {
+	return !r.trust.held || k == 0 || k != r.trust.heldMarker
+}
+
+// firmMarkersShort reports whether the agreeing pose candidates would still
+// lack markers (markersShort) were those dropped that name a marker and
+// whose carried pose would not be trusted (wouldTrust: the 95% radius or
+// the heading standard deviation of implied (+) rel beyond the trust
+// limits); the newest is always counted. Carried past the window
+// (carryNamed), a candidate's covariance grows with the odometry, and so
+// does what agrees with it: a misread of one marker, carried three
+// minutes, agreed with a misread of another 1.5 m from it
+// (TestOldMisreadDoesNotConfirmAnother). A pose too uncertain to be
+// trusted itself is no confirmation that another marker's is right.
+func (r *Robot) firmMarkersShort() bool {
+	n := len(r.cands)
+	firm := make([]candidate, 0, n)
+	for i := range r.cands[:n-1] {
+		c := &r.cands[i]
+		if c.marker != 0 {
+			p, pc := composeCov(c.implied, &c.cov, c.rel, &c.relCov)
+			if !r.wouldTrust(p, &pc) {
+				continue
+			}
+		}
+		firm = append(firm, *c)
+	}
+	return r.markersShort(append(firm, r.cands[n-1]))
 }
 
 // markersShort reports whether pose candidates that agree would still wait
@@ -138,6 +174,11 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		return
 	}
 	newest := &r.cands[len(r.cands)-1]
+	// Confirmed only by candidates too uncertain to be trusted, the pose
+	// is taken, and held untrusted until a fix of another marker is
+	// applied (holdReseed).
+	hold := !landmark && r.firmMarkersShort()
+	marker := newest.marker
 	fp, _ := r.PoseAt(newest.stamp)
 	filt := fp.Pose
 	jump := math.Hypot(pose.X-filt.X, pose.Y-filt.Y)
@@ -167,9 +208,19 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	var sub Result
 	r.insertReset(&reset, &sub)
 	r.trust.disagree = true
+	if hold {
+		r.holdReseed(marker)
+		detail += "; confirmed only by candidates too uncertain to be trusted, held untrusted until a fix of another marker is applied"
+	}
 	r.stats.recoveries++
 	res.Events = append(res.Events, Event{Kind: EventMoveRecovered, StampNs: newest.stamp, Value: jump,
 		Detail: fmt.Sprintf("%s; pose re-initialised %.2f m and %.2f rad from the estimate", detail, jump, turn)})
+}
+
+// holdReseed holds a reseed at a fix of marker key k untrusted
+// (move_unconfirmed) until an applied fix confirms it (confirmsReseed).
+func (r *Robot) holdReseed(k uint32) {
+	r.trust.unconfirmed, r.trust.held, r.trust.heldMarker = true, true, k
 }
 
 // foldBias makes m a measurement of the pose alone: a correlated sensor's

@@ -109,8 +109,7 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 		if estimator.CheckCovariance(cov[:], 3) != nil {
 			continue
 		}
-		st := estimator.NewState(3, 1<<estimator.IHead, []float64{sol.pose.X, sol.pose.Y, sol.pose.Heading}, cov[:])
-		if st.Position95() > r.cfg.Trust.MaxPosition95M || math.Sqrt(cov[8]) > r.cfg.Trust.MaxHeadingStdRad {
+		if !r.wouldTrust(sol.pose, &cov) {
 			continue
 		}
 		if distinctLandmarks(set) < r.cfg.Recovery.DistinctMarkers {
@@ -120,6 +119,14 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true, false
 	}
 	return estimator.Pose{}, [9]float64{}, "", false, short
+}
+
+// wouldTrust reports whether a pose with covariance cov (3x3) is within the
+// trust limits: its 95% position radius at most trust.max_position95_m and
+// its heading standard deviation at most trust.max_heading_std_rad.
+func (r *Robot) wouldTrust(pose estimator.Pose, cov *[9]float64) bool {
+	st := estimator.NewState(3, 1<<estimator.IHead, []float64{pose.X, pose.Y, pose.Heading}, cov[:])
+	return st.Position95() <= r.cfg.Trust.MaxPosition95M && math.Sqrt(cov[8]) <= r.cfg.Trust.MaxHeadingStdRad
 }
 
 // distinctLandmarks counts the landmarks the candidates see.

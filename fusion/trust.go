@@ -88,8 +88,13 @@ type trustState struct {
 	frozen  bool
 	frozenZ float64
 	// unconfirmed: the candidates agree on a pose but come from fewer
-	// markers than recovery.distinct_markers (considerRecovery).
+	// markers than recovery.distinct_markers (considerRecovery), or a
+	// reseed is held: held, taken at a fix of marker heldMarker and
+	// confirmed only by candidates too uncertain to be trusted, until a
+	// fix of another marker is applied (holdReseed).
 	unconfirmed bool
+	held        bool
+	heldMarker  uint32
 }
 
 // The IMU window holds imuWindowFactor times as many headings as the fix

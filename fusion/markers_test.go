@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"reflect"
+	"strings"
 	"testing"
 
 	"reckon.example/estimator"
@@ -341,26 +342,9 @@ func TestNamedOutlierDoesNotBlockUnnamedRecovery(t *testing.T) {
 // two misreads do not agree, before the change or after it; the control
 // checks that the second offset differs enough to tell them apart.
 func TestOldMisreadDoesNotConfirmAnother(t *testing.T) {
-	const period = 2e9
 	run := func(gapS float64) (float64, int) {
-		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 41, DurationS: 18 + gapS}
-		s, ins := collect(sc)
-		nameMarkers(ins, period)
-		if n := misread(ins, 6e9, 8e9, 5, period); n < 10 {
-			t.Fatalf("only %d fixes misread", n)
-		}
-		second := int64(8e9 + gapS*1e9)
-		kept := ins[:0]
-		for _, in := range ins {
-			if f := in.Fix; f != nil && f.Kind == fusion.FixPose && f.StampNs >= 8e9 && f.StampNs < second {
-				continue
-			}
-			kept = append(kept, in)
-		}
-		if n := misread(kept, second, second+period, 3.5, period); n < 10 {
-			t.Fatalf("only %d fixes of the second pass misread", n)
-		}
-		longest, recoveries, _ := trustedOff(t, s.Config(), kept, 1)
+		cfg, ins := twoMisreads(t, gapS)
+		longest, recoveries, _ := trustedOff(t, cfg, ins, 1)
 		return longest, recoveries
 	}
 	nearS, nearRec := run(10)
@@ -371,5 +355,122 @@ func TestOldMisreadDoesNotConfirmAnother(t *testing.T) {
 	}
 	if farS > 0 {
 		t.Errorf("180 s apart: trusted more than 1 m off for %.2f s after %d recoveries", farS, farRec)
+	}
+}
+
+// twoMisreads returns the run of TestOldMisreadDoesNotConfirmAnother, its
+// two misread passes gapS seconds apart, and its configuration.
+func twoMisreads(t *testing.T, gapS float64) (fusion.Config, []fusiontest.Input) {
+	t.Helper()
+	const period = 2e9
+	sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 41, DurationS: 18 + gapS}
+	s, ins := collect(sc)
+	nameMarkers(ins, period)
+	if n := misread(ins, 6e9, 8e9, 5, period); n < 10 {
+		t.Fatalf("only %d fixes misread", n)
+	}
+	second := int64(8e9 + gapS*1e9)
+	kept := ins[:0]
+	for _, in := range ins {
+		if f := in.Fix; f != nil && f.Kind == fusion.FixPose && f.StampNs >= 8e9 && f.StampNs < second {
+			continue
+		}
+		kept = append(kept, in)
+	}
+	if n := misread(kept, second, second+period, 3.5, period); n < 10 {
+		t.Fatalf("only %d fixes of the second pass misread", n)
+	}
+	return s.Config(), kept
+}
+
+// TestSnapshotKeepsHeldReseed: a robot snapshotted just after a reseed held
+// untrusted (TestOldMisreadDoesNotConfirmAnother's, 180 s apart; the held
+// marker's key in the snapshot, version 16) goes on exactly as the robot
+// that wrote it, input by input, through the held marker's later fixes,
+// which are applied and do not end the hold, to the end of the run.
+// Without the key the restored robot is trusted at the next applied fix.
+func TestSnapshotKeepsHeldReseed(t *testing.T) {
+	cfg, ins := twoMisreads(t, 180)
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cut := -1
+	for i := range ins {
+		res := fusiontest.Feed(r, &ins[i])
+		for _, e := range res.Events {
+			if e.Kind == fusion.EventMoveRecovered && strings.Contains(e.Detail, "held untrusted") {
+				cut = i + 1
+			}
+		}
+		if cut >= 0 {
+			break
+		}
+	}
+	if cut < 0 {
+		t.Fatal("no reseed held")
+	}
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	back, err := fusion.RestoreSnapshot(cfg, b)
+	if err != nil {
+		t.Fatal(err)
+	}
+	applied := 0
+	for i := cut; i < len(ins); i++ {
+		a, c := fusiontest.Feed(r, &ins[i]), fusiontest.Feed(back, &ins[i])
+		if !reflect.DeepEqual(a, c) || r.Pose() != back.Pose() {
+			t.Fatalf("input %d after the restore: %+v, restored %+v", i, a, c)
+		}
+		if ins[i].Fix != nil && a.Verdict == fusion.VerdictApplied && r.Pose().Distrust&fusion.TrustMoveUnconfirmed != 0 {
+			applied++
+		}
+	}
+	if applied == 0 {
+		t.Error("no fix applied while the reseed was held: the test shows nothing")
+	}
+	x, _ := r.Snapshot()
+	y, _ := back.Snapshot()
+	if !bytes.Equal(x, y) {
+		t.Error("the snapshots at the end differ")
+	}
+}
+
+// TestHeldReseedLateEqualsStampOrder: the run of
+// TestOldMisreadDoesNotConfirmAnother, its fixes 50 to 200 ms late, cut
+// while the reseed is held, ends with the same pose and distrust as its
+// inputs in stamp order: the hold is decided at the same fixes in both
+// (DEVELOPERS.md, "Design: Time ordering and late measurements").
+func TestHeldReseedLateEqualsStampOrder(t *testing.T) {
+	cfg, all := twoMisreads(t, 180)
+	var arrival []fusiontest.Input
+	for _, in := range all {
+		if in.StampNs() < 189.5e9 {
+			arrival = append(arrival, in)
+		}
+	}
+	stamped := stampOrder(arrival)
+	late, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	inOrder, _ := fusion.New(cfg)
+	held := 0
+	for i := range arrival {
+		for _, e := range fusiontest.Feed(late, &arrival[i]).Events {
+			if e.Kind == fusion.EventMoveRecovered && strings.Contains(e.Detail, "held untrusted") {
+				held++
+			}
+		}
+		fusiontest.Feed(inOrder, &stamped[i])
+	}
+	a, b := late.Pose(), inOrder.Pose()
+	if held == 0 || a.Distrust&fusion.TrustMoveUnconfirmed == 0 {
+		t.Fatalf("%d reseeds held, distrust %v at the cut: the test shows nothing", held, a.Distrust)
+	}
+	if a.Distrust != b.Distrust || math.Hypot(a.Pose.X-b.Pose.X, a.Pose.Y-b.Pose.Y) > 1e-9 {
+		t.Errorf("late %+v (%v), in stamp order %+v (%v)", a.Pose, a.Distrust, b.Pose, b.Distrust)
 	}
 }

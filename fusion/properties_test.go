@@ -161,6 +161,27 @@ func collect(sc fusiontest.Scenario) (*fusiontest.Sim, []fusiontest.Input) {
 	}
 }
 
+// stampOrder returns the inputs sorted by stamp, odometry first at one
+// stamp (a fix at an odometry stamp is then inserted, not held, in both
+// orders).
+func stampOrder(arrival []fusiontest.Input) []fusiontest.Input {
+	stamped := slices.Clone(arrival)
+	slices.SortStableFunc(stamped, func(a, b fusiontest.Input) int {
+		sa, sb := a.StampNs(), b.StampNs()
+		switch {
+		case sa < sb:
+			return -1
+		case sa > sb:
+			return 1
+		}
+		if (a.Odometry != nil) != (b.Odometry != nil) && a.Odometry != nil {
+			return -1
+		}
+		return 0
+	})
+	return stamped
+}
+
 // TestLateEqualsStampOrder: camera fixes delivered 150 ms late, and IMU
 // samples arriving out of order with odometry, give the same estimate as the
 // same samples delivered in stamp order (DEVELOPERS.md, "Design: Time ordering and late measurements"), to 1e-9.
@@ -200,22 +221,7 @@ func TestLateEqualsStampOrder(t *testing.T) {
 			// recovery counts markers (recovery.distinct_markers 2) in both
 			// orders.
 			nameMarkers(arrival, 1e9)
-			stamped := slices.Clone(arrival)
-			slices.SortStableFunc(stamped, func(a, b fusiontest.Input) int {
-				sa, sb := a.StampNs(), b.StampNs()
-				switch {
-				case sa < sb:
-					return -1
-				case sa > sb:
-					return 1
-				}
-				// At one stamp, odometry first: a fix at an odometry stamp is
-				// then inserted, not held, in both orders.
-				if (a.Odometry != nil) != (b.Odometry != nil) && a.Odometry != nil {
-					return -1
-				}
-				return 0
-			})
+			stamped := stampOrder(arrival)
 			cfg := s.Config()
 			switch {
 			case c.survey:

@@ -56,10 +56,13 @@ import (
 // candidate, and whether the candidates wait for another marker
 // (move_unconfirmed); a version 14 to 5 snapshot has none (its fixes named
 // no marker).
-const SnapshotVersion = 15
+// Version 16: a reseed held untrusted until a fix of another marker is
+// applied, and its marker's key (recovery.go, holdReseed); a version 15 to
+// 5 snapshot has none (its builds held no reseed).
+const SnapshotVersion = 16
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -148,6 +151,11 @@ func (r *Robot) Snapshot() ([]byte, error) {
 	if r.trust.unconfirmed {
 		// Absent otherwise, as in snapshots before version 15.
 		e.bool(44, true)
+	}
+	if r.trust.held {
+		// Absent otherwise, as in snapshots before version 16; present
+		// with key 0 for a reseed at a fix that named no marker.
+		e.uint(45, uint64(r.trust.heldMarker))
 	}
 	return e.b, nil
 }
@@ -312,6 +320,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.trust.frozen, r.trust.frozenZ = true, d.double(num)
 	case 44:
 		r.trust.unconfirmed = d.bool(num)
+	case 45:
+		r.trust.held, r.trust.heldMarker = true, d.uint32(num)
 	default:
 		d.fail("unknown field %d", num)
 	}

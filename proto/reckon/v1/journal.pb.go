@@ -429,8 +429,15 @@ type RobotSnapshot struct {
 	// DISTRUST_REASON_MOVE_UNCONFIRMED (version 15; absent in older versions,
 	// whose builds had no such reason).
 	MoveUnconfirmed bool `protobuf:"varint,44,opt,name=move_unconfirmed,json=moveUnconfirmed,proto3" json:"move_unconfirmed,omitempty"`
-	unknownFields   protoimpl.UnknownFields
-	sizeCache       protoimpl.SizeCache
+	// A move recovery confirmed only by carried candidates too uncertain to
+	// be trusted themselves: the key of the marker the pose was taken from
+	// (as SnapshotEntry.marker_key; 0 when that fix named none), and
+	// DISTRUST_REASON_MOVE_UNCONFIRMED stands until a fix naming another
+	// marker, or none, is applied (version 16; absent when no reseed is held,
+	// and in older versions).
+	HeldReseedMarkerKey *uint64 `protobuf:"varint,45,opt,name=held_reseed_marker_key,json=heldReseedMarkerKey,proto3,oneof" json:"held_reseed_marker_key,omitempty"`
+	unknownFields       protoimpl.UnknownFields
+	sizeCache           protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -769,6 +776,13 @@ func (x *RobotSnapshot) GetMoveUnconfirmed() bool {
 		return x.MoveUnconfirmed
 	}
 	return false
+}
+
+func (x *RobotSnapshot) GetHeldReseedMarkerKey() uint64 {
+	if x != nil && x.HeldReseedMarkerKey != nil {
+		return *x.HeldReseedMarkerKey
+	}
+	return 0
 }
 
 // SnapshotLandmarkBlocks says which landmark each landmark block of an
@@ -2065,7 +2079,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xb4\x0f\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x89\x10\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -2123,9 +2137,11 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x1clong_turn_anchor_heading_rad\x18) \x01(\x01R\x18longTurnAnchorHeadingRad\x128\n" +
 	"\x19long_turn_anchor_var_rad2\x18* \x01(\x01R\x15longTurnAnchorVarRad2\x12>\n" +
 	"\x19imu_unchanged_heading_rad\x18+ \x01(\x01H\x01R\x16imuUnchangedHeadingRad\x88\x01\x01\x12)\n" +
-	"\x10move_unconfirmed\x18, \x01(\bR\x0fmoveUnconfirmedB\x17\n" +
+	"\x10move_unconfirmed\x18, \x01(\bR\x0fmoveUnconfirmed\x128\n" +
+	"\x16held_reseed_marker_key\x18- \x01(\x04H\x02R\x13heldReseedMarkerKey\x88\x01\x01B\x17\n" +
 	"\x15_last_imu_heading_radB\x1c\n" +
-	"\x1a_imu_unchanged_heading_rad\"T\n" +
+	"\x1a_imu_unchanged_heading_radB\x19\n" +
+	"\x17_held_reseed_marker_key\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +
 	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"}\n" +

@@ -56,7 +56,10 @@ const (
 	// the estimate is not at, but from fewer markers than
 	// recovery.distinct_markers, so move recovery waits for a fix of
 	// another marker: the robot may have been moved, or one marker may read
-	// as another on every frame. An applied fix or a reseed ends it.
+	// as another on every frame. An applied fix or a reseed ends it. It
+	// also stands after a reseed that only candidates too uncertain to be
+	// trusted themselves confirmed, until a fix naming another marker than
+	// the reseed's, or none, is applied (holdReseed).
 	TrustMoveUnconfirmed
 )
 

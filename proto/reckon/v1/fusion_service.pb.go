@@ -312,7 +312,10 @@ const (
 	// but they come from fewer markers than MoveRecovery.distinct_markers:
 	// the robot may have been moved, or one marker may read as another on
 	// every frame. The pose is not reseeded until a fix of another marker
-	// agrees; an applied fix or a reseed ends it.
+	// agrees; an applied fix or a reseed ends it. It also stands after a
+	// reseed that only candidates too uncertain to be trusted themselves
+	// confirmed (carried long after their fix), until a fix naming another
+	// marker than the reseed's, or none, is applied.
 	DistrustReason_DISTRUST_REASON_MOVE_UNCONFIRMED DistrustReason = 9
 )
 

@@ -2,6 +2,8 @@ package fusion
 
 import (
 	"fmt"
+	"hash/fnv"
+	"io"
 	"math"
 	"slices"
 
@@ -40,22 +42,19 @@ type candidate struct {
 func (c *candidate) isLandmark() bool { return c.meas.Kind != 0 }
 
 // markerKey returns the key by which recovery tells a pose fix's marker
-// apart: the 32-bit FNV-1a hash of its name (Fowler, Noll and Vo; offset
-// basis and prime as published, from memory), 0 for none named and never 0
-// for a name. Two names of one hash count as one marker (among a thousand
-// markers, about one chance in ten thousand that any two do), which delays a
-// recovery and never hastens it. The key holds no pointer, as entries must
-// not (entry.after), and fits in the entry's padding.
+// apart: the 32-bit FNV-1a hash of its name (hash/fnv), 0 for none named
+// and never 0 for a name. Two names of one hash count as one marker (among
+// a thousand markers, about one chance in nine thousand that any two do:
+// n^2/2^33), which delays a recovery and never hastens it. The key holds
+// no pointer, as entries must not (entry.after), and fits in the entry's
+// padding.
 func markerKey(name string) uint32 {
 	if name == "" {
 		return 0
 	}
-	h := uint32(2166136261)
-	for i := 0; i < len(name); i++ {
-		h ^= uint32(name[i])
-		h *= 16777619
-	}
-	return max(h, 1)
+	h := fnv.New32a()
+	io.WriteString(h, name)
+	return max(h.Sum32(), 1)
 }
 
 // clearCandidates forgets the candidates (an applied fix or a reseed: the
@@ -108,17 +107,24 @@ func (r *Robot) firmMarkersShort() bool {
 // recovery.distinct_markers. Candidates that name none wait for nothing,
 // as before markers were named.
 func (r *Robot) markersShort(set []candidate) bool {
-	named := namedMarkers(set)
-	if named == 0 {
-		return false
-	}
-	distinct := named
+	named, distinct := tallyMarkers(set, nil)
+	return len(named) > 0 && distinct < r.cfg.Recovery.DistinctMarkers
+}
+
+// tallyMarkers adds to named the different markers that set names and
+// returns it with the number of markers in set, each candidate naming none
+// counting as one of its own (markersShort's count).
+func tallyMarkers(set []candidate, named []uint32) ([]uint32, int) {
+	distinct := 0
 	for i := range set {
-		if set[i].marker == 0 {
+		if k := set[i].marker; k == 0 {
+			distinct++
+		} else if !slices.Contains(named, k) {
+			named = append(named, k)
 			distinct++
 		}
 	}
-	return distinct < r.cfg.Recovery.DistinctMarkers
+	return named, distinct
 }
 
 // maxLandmarkCandidates bounds the refused landmark fixes kept for a
@@ -379,16 +385,7 @@ func (r *Robot) keepMarkers(kept []candidate, over int, landmark bool) []candida
 	if landmark || need <= 1 {
 		return append(kept[:0], kept[over:]...)
 	}
-	var markers []uint32
-	distinct := 0
-	for i := over; i < len(kept); i++ {
-		if k := kept[i].marker; k == 0 {
-			distinct++
-		} else if !slices.Contains(markers, k) {
-			markers = append(markers, k)
-			distinct++
-		}
-	}
+	markers, distinct := tallyMarkers(kept[over:], nil)
 	// Walk the dropped from the newest back, marking those kept.
 	keep := make([]bool, over)
 	for i := over - 1; i >= 0 && distinct < need; i-- {
@@ -644,13 +641,8 @@ func (r *Robot) posesAgree() (pose estimator.Pose, cov [9]float64, detail string
 
 // namedMarkers counts the different markers the candidates name.
 func namedMarkers(set []candidate) int {
-	var seen []uint32
-	for i := range set {
-		if k := set[i].marker; k != 0 && !slices.Contains(seen, k) {
-			seen = append(seen, k)
-		}
-	}
-	return len(seen)
+	named, _ := tallyMarkers(set, nil)
+	return len(named)
 }
 
 // detachCov returns the covariance of Detach(s, m) for a sensor pose s with

@@ -440,7 +440,7 @@ func (r *Robot) wheelTurn(ta, tb int64, c *wheelSums) (turn, v, vc float64, firs
 // the 0.1 to 0.8 s since its anchor, and walked all of it each time: 16%
 // of the service's own instructions over BenchmarkRatesPath's inputs
 // under callgrind (80 M of 500 M, session 22), with every window entry
-// read a cache line or two each (520 bytes apart).
+// read a cache line or two each (552 bytes apart).
 //
 // The sums stand while no step they cover changes: wheelsChanged ends
 // them at every change to entries already in the window before upTo (an

@@ -289,7 +289,7 @@ type insertion struct {
 // replays from there; ins records how. The stamp must lie in [baseT,
 // newest].
 //
-// Entries (520 bytes) are passed by pointer and written where they end
+// Entries (552 bytes) are passed by pointer and written where they end
 // up, not copied through the stack: at robot rates every copy is a few
 // more cache misses (BenchmarkRobotRates).
 func (r *Robot) insert(e *entry, ins *insertion) {
@@ -390,7 +390,7 @@ func (r *Robot) trim() {
 // maxWindowEntries bounds the history window by its number of entries as
 // well as by window_ns: samples stamped microseconds apart (a controller
 // that stamps in microseconds but says nanoseconds) would otherwise keep
-// a second of them, each entry 520 bytes in memory and about 590 in a
+// a second of them, each entry 552 bytes in memory and about 590 in a
 // snapshot. 2048 entries is 6.6 s at 200 Hz odometry, 100 Hz IMU and 10
 // Hz fixes, more than the longest window_ns (5 s); past it the window is
 // shorter than window_ns, and a late sample before its start is refused as

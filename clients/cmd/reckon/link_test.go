@@ -237,13 +237,16 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 			if time.Now().After(deadline) {
 				t.Fatalf("frame %d never arrived\n%s%s", k, l.out.String(), l.errb.String())
 			}
-			f := frame(k) // until the link listens, datagrams may be lost
-			l.conn.Write(bridge.AppendFrame(nil, &f, nil))
+			// Until the link listens, datagrams may be lost; the frame
+			// before it confirms the boot's first frame (a lone frame
+			// is held: PROTOCOL.md, "The first frames of a boot").
+			f, g := frame(k-1), frame(k)
+			l.conn.Write(bridge.AppendFrame(bridge.AppendFrame(nil, &f, nil), &g, nil))
 		}
 	}
-	waitNewest(1) // stamp 0 is a new robot's newest too
+	waitNewest(2) // frame 1: stamp 0 is a new robot's newest too
 	var b []byte
-	for k := 2; k < 40; k++ {
+	for k := 3; k < 40; k++ {
 		f := frame(k)
 		switch k {
 		case 10:
@@ -351,9 +354,12 @@ func TestLinkPortGone(t *testing.T) {
 	l := startBackground(t, "link", "-addr", addr, "-serial", tty.Name(), "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
 	c := dialService(t, addr)
 	for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(20 * time.Millisecond) {
+		// Two frames: the second confirms the first (a lone frame is
+		// held: PROTOCOL.md, "The first frames of a boot").
 		f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
-		master.Write(bridge.AppendFrame(nil, &f, nil))
-		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == 10_000_000 {
+		g := bridge.Frame{Type: bridge.FrameWheels, Counter: 2, StampUs: 20_000, Counts: []int32{2, 2, 0}}
+		master.Write(bridge.AppendFrame(bridge.AppendFrame(nil, &f, nil), &g, nil))
+		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == 20_000_000 {
 			break
 		}
 		if time.Now().After(deadline) {

@@ -504,3 +504,25 @@ func TestLinkOpensItsPortFirst(t *testing.T) {
 		t.Errorf("the robot after link -replace failed to open its port: %v %v", r.GetConfig(), err)
 	}
 }
+
+// TestLinkSummarySaysHeld: frames held unconfirmed when the link ends (a
+// boot's first frame that no later frame followed) are said in the
+// summary, as they are never sent; with none held, the summary is as
+// before.
+func TestLinkSummarySaysHeld(t *testing.T) {
+	var d bridge.Decoder
+	f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
+	if ss := d.Decode(nil, bridge.AppendFrame(nil, &f, nil)); len(ss) != 0 {
+		t.Fatalf("a lone frame gave %d samples", len(ss))
+	}
+	var b strings.Builder
+	printLinkSummary(&b, "robots/cart", bridge.Summary{Stats: d.Stats()})
+	if !strings.Contains(b.String(), "1 frames held at the end, not sent") {
+		t.Errorf("summary:\n%s", b.String())
+	}
+	b.Reset()
+	printLinkSummary(&b, "robots/cart", bridge.Summary{})
+	if strings.Contains(b.String(), "held at the end") {
+		t.Errorf("summary without held frames:\n%s", b.String())
+	}
+}

@@ -3,13 +3,14 @@ package bridge
 import (
 	"errors"
 	"fmt"
+	"slices"
 
 	pb "reckon.example/proto/reckon/v1"
 )
 
 // Stats counts what a Decoder saw. Every frame that arrives whole ends in
-// exactly one of Samples, Duplicates, Reordered and Invalid; a damaged one
-// in Corrupted.
+// exactly one of Samples, Duplicates, Reordered and Invalid, or is Held
+// until it does; a damaged one ends in Corrupted.
 type Stats struct {
 	// Frames is the number of frames with a good length and CRC.
 	Frames uint64
@@ -23,23 +24,34 @@ type Stats struct {
 	// heading that is not finite, or, within one boot, a wheel count that
 	// differs from the earlier frames' or a stamp not after the last taken
 	// frame's although its counter is ahead, or one more than maxStepUs a
-	// counter step after it that the next frame does not confirm.
+	// counter step after it that the next frame does not confirm; or a
+	// frame held at the start of a boot that no later frame confirmed
+	// (Sequencer, "Start").
 	Invalid uint64
 	// Duplicates is the number of frames dropped because a frame with the
-	// same counter was taken.
+	// same counter was taken (or is held).
 	Duplicates uint64
 	// Reordered is the number of frames dropped because a newer one was
-	// taken already (or because they come from the boot before the
-	// current one); the newer frame's cumulative counts cover theirs.
+	// taken (or is held) already, or because they come from the boot
+	// before the current one (Sequencer, "Restarts"); the newer frame's
+	// cumulative counts cover theirs.
 	Reordered uint64
 	// Skipped is the number of counter values jumped over when a frame
-	// was taken: frames lost, or arriving later and then Reordered.
+	// was taken that no frame counted above had: frames lost, or arriving
+	// later and then Reordered (or Invalid before their counter is read:
+	// an unknown type or flags, a bad length). A frame of the boot dropped
+	// as Invalid in between is not counted again here (up to maxDrops of
+	// them between two frames taken).
 	Skipped uint64
 	// Restarts is the number of times the boot byte changed (or the first
 	// frame showed a restart to Decoder.Resume): each begins a new run.
 	Restarts uint64
 	// Samples is the number of samples produced.
 	Samples uint64
+	// Held is the number of frames held now, not yet confirmed or dropped
+	// (Sequencer, "Start" and "Restarts"); the link's end leaves them
+	// unsent.
+	Held uint64
 }
 
 // Splitter cuts a byte stream into frames at 0x00 delimiters, undoes the
@@ -177,12 +189,21 @@ const behindLimit = 100
 // a race between its halves puts one frame 2^32 us, 71.6 min, ahead) than
 // a controller that sent nothing for that long. Such a frame is dropped
 // as invalid unless the frame after it confirms the jump: taken, a glitch
-// would put the robot's clock out of reach of every frame after it.
+// would put the robot's clock out of reach of every frame after it. The
+// same bound confirms the first frame of a boot (Sequencer, "Start").
 const maxStepUs = 60_000_000
 
-// staleBootLimit is how many frames of the previous boot in a row make a
-// Sequencer take that boot as a new one.
-const staleBootLimit = 16
+// lateUs is the longest a datagram is taken to arrive late (2 s; a link
+// reorders frames by milliseconds). A frame of the previous boot sent
+// before the current boot started and arriving after a frame of the
+// current boot stamped S (microseconds since that boot) is at least S
+// late, so while the current boot's newest stamp is under lateUs a frame of
+// the previous boot's byte may be a late one (Sequencer, "Restarts").
+const lateUs = 2_000_000
+
+// maxHeld bounds the frames a Sequencer holds until they are confirmed
+// (Sequencer, "Start"); past it the oldest is dropped.
+const maxHeld = 1024
 
 // Sequencer turns frames, in arrival order, into odometry samples on the
 // robot's time base, dropping duplicated and out-of-order frames. The zero
@@ -208,37 +229,81 @@ const staleBootLimit = 16
 // the service's counter_bits applies (32 for counts that use the whole
 // int32, as a bridge restarted mid-run starts again from the raw value).
 //
+// # Start
+//
+// The first frame of a boot (the link's first, or the first of another
+// boot byte) is the reference of every later one: taken with a glitched
+// stamp (2^32 us ahead, or far behind), it would make every good frame
+// after it invalid, or a jump. So it is held, not taken, until a later
+// frame of its boot follows it: its counter ahead, its stamp after it by
+// at most maxStepUs a counter step (the rule that confirms a jump). Then
+// the boot starts at the earliest held frame some later frame follows:
+// the held frames before it are dropped as invalid, and those after it
+// and the confirming frame are taken as usual, so a normal start loses no
+// frame. Frames not ahead of the last held one are dropped as duplicates
+// or reordered. A frame that no later frame of its boot follows is never
+// taken: held while no frame of another boot arrives and the current boot's
+// clock runs on less than lateUs, then dropped as invalid (at most
+// maxHeld are held; past that the oldest is dropped).
+//
 // # Restarts
 //
-// A frame with another Boot byte starts afresh: counters, clock and counts
-// begin again from that frame, and its sample carries the rebooted
-// controller's stamp, which is usually far behind the last one. The Decoder
-// sends a run start (boot id BootID of the new byte) before that sample, so
-// that the service begins a new run of the robot instead of refusing the
-// new clock (DEVELOPERS.md, "Design: Runs"). The
-// previous boot's byte is remembered, and its late frames are dropped as
-// Reordered, unless staleBootLimit of them arrive in a row: then the
-// controller has rebooted again and drawn the old byte once more.
+// A frame with another Boot byte starts afresh once confirmed: counters,
+// clock and counts begin again from the boot's first frame, and its sample
+// carries the rebooted controller's stamp, which is usually far behind the
+// last one. Take puts a run start (boot id BootID of the new byte) before
+// that sample, so that the service begins a new run of the robot instead
+// of refusing the new clock (DEVELOPERS.md, "Design: Runs").
+//
+// The previous boot's byte is remembered. Its frames are late ones from
+// before the reboot, or a controller that booted again and drew that byte
+// once more (one that toggles between two bytes). A late frame was sent
+// before the current boot started, so one arriving after a frame of the
+// current boot stamped S is at least S late: once the current boot's
+// newest stamp reaches lateUs, a frame of the previous byte is a new boot
+// and held as any other. Before that, its frames are held as long as each
+// follows the one before, until they span lateUs less that newest stamp on
+// their own clock (late frames sent within the last lateUs - S before the
+// current boot began span less): then they are a new boot, and every one
+// held is taken, none lost (past maxHeld, the oldest is dropped). Held
+// frames of the previous byte that do not get there (the current boot's
+// newest stamp reaches lateUs, a frame of another byte comes, or one of
+// theirs breaks their order) are dropped as reordered, however many: late
+// frames (less than lateUs late) never start a run again.
 type Sequencer struct {
 	started    bool
 	boot       uint8
 	retired    bool // whether old holds a previous boot's byte
 	old        uint8
-	stale      int // frames of the old boot in a row
 	counter    uint32
 	stampUs    uint64
 	counts     []int32 // the last taken frame's counts
 	cumulative []int64
 	stats      Stats
-	invalid    *FrameError // why the last frame counted Invalid was
-	behind     int         // frames of this boot dropped in a row as duplicates or reordered
-	behindErr  *FrameError // said at every behindLimit of them
+	// errs says why frames were dropped as invalid, or that a run of them
+	// is behind, in order, until the Decoder takes them.
+	errs   []*FrameError
+	behind int // frames of this boot dropped in a row as duplicates or reordered
 	// jumped: the last frame dropped for a stamp too far ahead
 	// (maxStepUs), jumpCounter and jumpUs its counter and stamp; a frame
 	// that follows it within maxStepUs a step confirms the jump.
 	jumped      bool
 	jumpCounter uint32
 	jumpUs      uint64
+	// invalidAhead holds the counters of the frames of this boot dropped
+	// as invalid since the last taken one, ahead of it (at most maxDrops):
+	// they arrived, so a frame taken past them does not count them as
+	// skipped.
+	invalidAhead []uint32
+	// held: frames of boot heldBoot not yet taken, in counter order (Start);
+	// heldLate: of the previous boot's byte while they may be late ones,
+	// the first stamped heldFromUs (Restarts); heldAtUs: the current boot's
+	// newest stamp when the first was held.
+	held       []Frame
+	heldBoot   uint8
+	heldLate   bool
+	heldFromUs uint64
+	heldAtUs   uint64
 	// resumed: the robot's current run is of boot byte resumedBoot
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
@@ -249,30 +314,162 @@ type Sequencer struct {
 	resumedNs int64
 }
 
-// Take returns the sample for f, or nil if f is dropped.
-func (s *Sequencer) Take(f *Frame) *pb.Sample {
-	switch {
-	case s.retired && f.Boot == s.old && f.Boot != s.boot && s.stale < staleBootLimit:
-		s.stale++
-		s.stats.Reordered++
-		return nil
-	case !s.started || f.Boot != s.boot:
-		s.stale = 0
-		if s.started {
-			s.stats.Restarts++
-			s.retired, s.old = true, s.boot
-		} else if s.resumed && f.Boot != s.resumedBoot || s.resumedNs > 0 && int64(f.StampUs)*1000 <= s.resumedNs {
-			s.stats.Restarts++
+// Take appends to dst the samples that f makes: none when f is dropped or
+// held; when f confirms a boot, a run start if it is a restart, then the
+// samples of the held frames taken and of f.
+func (s *Sequencer) Take(dst []*pb.Sample, f *Frame) []*pb.Sample {
+	if s.started && f.Boot == s.boot {
+		n := len(dst)
+		dst = s.next(dst, f)
+		if len(dst) > n && len(s.held) > 0 && (s.heldLate && s.stampUs >= lateUs || s.stampUs-s.heldAtUs >= lateUs) {
+			s.dropHeld()
 		}
-		s.started, s.boot, s.counter, s.stampUs, s.behind, s.jumped = true, f.Boot, f.Counter, f.StampUs, 0, false
-		s.counts = append(s.counts[:0], f.Counts...)
-		s.cumulative = s.cumulative[:0]
-		for _, c := range f.Counts {
-			s.cumulative = append(s.cumulative, int64(c))
-		}
-		return s.sample(f)
+		return dst
 	}
-	s.stale = 0
+	late := s.started && s.retired && f.Boot == s.old && s.stampUs < lateUs
+	if len(s.held) > 0 && (f.Boot != s.heldBoot || s.heldLate && !late) {
+		s.dropHeld()
+	}
+	if len(s.held) == 0 {
+		s.heldBoot, s.heldLate, s.heldFromUs, s.heldAtUs = f.Boot, late, f.StampUs, s.stampUs
+		s.held = append(s.held, cloneFrame(f))
+		return dst
+	}
+	if s.heldLate {
+		return s.holdLate(dst, f)
+	}
+	return s.hold(dst, f)
+}
+
+// hold takes f, of the boot of the held frames, as Start says.
+func (s *Sequencer) hold(dst []*pb.Sample, f *Frame) []*pb.Sample {
+	if int32(f.Counter-s.held[len(s.held)-1].Counter) <= 0 {
+		for i := range s.held {
+			if s.held[i].Counter == f.Counter {
+				s.stats.Duplicates++
+				return dst
+			}
+		}
+		s.stats.Reordered++
+		return dst
+	}
+	for i := range s.held {
+		if follows(s.held[i].Counter, s.held[i].StampUs, len(s.held[i].Counts), f) {
+			held := s.held
+			for j := range held[:i] {
+				g := &held[j]
+				s.dropInvalid(frameErr(ErrInvalid, "stamp", "%d us (counter %d) at the start of boot %d: no later frame follows it, frame %d at %d us follows a later one (a glitch of the controller's clock?)",
+					g.StampUs, g.Counter, g.Boot, f.Counter, f.StampUs))
+			}
+			dst = s.start(dst, &held[i])
+			for j := i + 1; j < len(held); j++ {
+				dst = s.next(dst, &held[j])
+			}
+			s.held = held[:0]
+			return s.next(dst, f)
+		}
+	}
+	s.held = append(s.held, cloneFrame(f))
+	if len(s.held) > maxHeld {
+		g := &s.held[0]
+		s.dropInvalid(frameErr(ErrInvalid, "stamp", "%d us (counter %d) at the start of boot %d: none of the %d frames after it follows it", g.StampUs, g.Counter, g.Boot, maxHeld))
+		s.held = append(s.held[:0], s.held[1:]...)
+	}
+	return dst
+}
+
+// holdLate takes f, of the previous boot's byte like the held frames, while
+// they may be late ones (Restarts).
+func (s *Sequencer) holdLate(dst []*pb.Sample, f *Frame) []*pb.Sample {
+	last := &s.held[len(s.held)-1]
+	switch {
+	case f.Counter == last.Counter:
+		s.stats.Duplicates++
+		return dst
+	case int32(f.Counter-last.Counter) < 0:
+		s.stats.Reordered++
+		return dst
+	case !follows(last.Counter, last.StampUs, len(last.Counts), f):
+		s.dropHeld()
+		s.heldBoot, s.heldLate, s.heldFromUs, s.heldAtUs = f.Boot, true, f.StampUs, s.stampUs
+		s.held = append(s.held, cloneFrame(f))
+		return dst
+	}
+	s.held = append(s.held, cloneFrame(f))
+	if f.StampUs-s.heldFromUs >= lateUs-s.heldAtUs {
+		held := s.held
+		dst = s.start(dst, &held[0])
+		for j := 1; j < len(held); j++ {
+			dst = s.next(dst, &held[j])
+		}
+		s.held = held[:0]
+		return dst
+	}
+	if len(s.held) > maxHeld {
+		s.stats.Reordered++
+		s.held = append(s.held[:0], s.held[1:]...)
+	}
+	return dst
+}
+
+// dropHeld drops the held frames: as reordered if they may be late frames
+// of the previous boot, otherwise as invalid.
+func (s *Sequencer) dropHeld() {
+	for i := range s.held {
+		g := &s.held[i]
+		if s.heldLate {
+			s.stats.Reordered++
+			continue
+		}
+		s.dropInvalid(frameErr(ErrInvalid, "boot", "%d: no later frame of that boot followed the frame with counter %d, stamp %d us (a frame of another boot came, or boot %d's clock ran on %d s)",
+			g.Boot, g.Counter, g.StampUs, s.boot, lateUs/1_000_000))
+	}
+	s.held = s.held[:0]
+}
+
+// follows reports whether f follows a frame of its boot with counter c,
+// stamp us and n wheels: f's counter is ahead, its wheels as many, and its
+// stamp after it by at most maxStepUs a counter step.
+func follows(c uint32, us uint64, n int, f *Frame) bool {
+	ahead := int32(f.Counter - c)
+	return ahead > 0 && len(f.Counts) == n && f.StampUs > us && f.StampUs-us <= uint64(ahead)*maxStepUs
+}
+
+func cloneFrame(f *Frame) Frame {
+	g := *f
+	g.Counts = append([]int32(nil), f.Counts...)
+	return g
+}
+
+// start begins a boot at f, confirmed (Start), and appends its sample,
+// after a run start if it is a restart.
+func (s *Sequencer) start(dst []*pb.Sample, f *Frame) []*pb.Sample {
+	restart := s.started || s.resumed && f.Boot != s.resumedBoot || s.resumedNs > 0 && int64(f.StampUs)*1000 <= s.resumedNs
+	if s.started {
+		s.retired, s.old = true, s.boot
+	}
+	if restart {
+		s.stats.Restarts++
+		dst = append(dst, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: BootID(f.Boot)}}})
+	}
+	s.started, s.boot, s.counter, s.stampUs, s.behind, s.jumped = true, f.Boot, f.Counter, f.StampUs, 0, false
+	s.invalidAhead = s.invalidAhead[:0]
+	s.counts = append(s.counts[:0], f.Counts...)
+	s.cumulative = s.cumulative[:0]
+	for _, c := range f.Counts {
+		s.cumulative = append(s.cumulative, int64(c))
+	}
+	return append(dst, s.sample(f))
+}
+
+// dropInvalid counts a frame dropped as invalid, for err.
+func (s *Sequencer) dropInvalid(err *FrameError) {
+	s.stats.Invalid++
+	s.errs = append(s.errs, err)
+}
+
+// next takes f, of the current boot, after the boot's first frame.
+func (s *Sequencer) next(dst []*pb.Sample, f *Frame) []*pb.Sample {
 	ahead := int32(f.Counter - s.counter)
 	if ahead <= 0 {
 		if ahead == 0 {
@@ -281,44 +478,52 @@ func (s *Sequencer) Take(f *Frame) *pb.Sample {
 			s.stats.Reordered++
 		}
 		if s.behind++; s.behind%behindLimit == 0 {
-			s.behindErr = frameErr(ErrBehind, "counter", "%d frames in a row not ahead of the last taken frame's counter %d (the latest: counter %d, stamp %d us); did the controller restart without changing its boot byte? (PROTOCOL.md, \"Reboots\")",
-				s.behind, s.counter, f.Counter, f.StampUs)
+			s.errs = append(s.errs, frameErr(ErrBehind, "counter", "%d frames in a row not ahead of the last taken frame's counter %d (the latest: counter %d, stamp %d us); did the controller restart without changing its boot byte? (PROTOCOL.md, \"Reboots\")",
+				s.behind, s.counter, f.Counter, f.StampUs))
 		}
-		return nil
+		return dst
 	}
+	var invalid *FrameError
 	switch {
 	case len(f.Counts) != len(s.counts):
-		s.stats.Invalid++
-		s.invalid = frameErr(ErrInvalid, "wheels", "%d, the earlier frames of boot %d had %d", len(f.Counts), s.boot, len(s.counts))
-		return nil
+		invalid = frameErr(ErrInvalid, "wheels", "%d, the earlier frames of boot %d had %d", len(f.Counts), s.boot, len(s.counts))
 	case f.StampUs <= s.stampUs:
-		s.stats.Invalid++
-		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is not after the last taken frame's %d us although its counter %d is ahead of %d (the controller's clock must not go back within a boot)",
+		invalid = frameErr(ErrInvalid, "stamp", "%d us is not after the last taken frame's %d us although its counter %d is ahead of %d (the controller's clock must not go back within a boot)",
 			f.StampUs, s.stampUs, f.Counter, s.counter)
-		return nil
-	case f.StampUs-s.stampUs > uint64(ahead)*maxStepUs && !s.confirms(f):
-		s.stats.Invalid++
+	case f.StampUs-s.stampUs > uint64(ahead)*maxStepUs && !(s.jumped && follows(s.jumpCounter, s.jumpUs, len(s.counts), f)):
 		s.jumped, s.jumpCounter, s.jumpUs = true, f.Counter, f.StampUs
-		s.invalid = frameErr(ErrInvalid, "stamp", "%d us is %.0f s after the last taken frame's %d us, its counter %d ahead (more than %d s a counter step: a glitch of the controller's clock? the next frame is taken if it follows this one)",
+		invalid = frameErr(ErrInvalid, "stamp", "%d us is %.0f s after the last taken frame's %d us, its counter %d ahead (more than %d s a counter step: a glitch of the controller's clock? the next frame is taken if it follows this one)",
 			f.StampUs, float64(f.StampUs-s.stampUs)*1e-6, s.stampUs, ahead, maxStepUs/1_000_000)
-		return nil
 	}
+	if invalid != nil {
+		s.dropInvalid(invalid)
+		if len(s.invalidAhead) < maxDrops && !slices.Contains(s.invalidAhead, f.Counter) {
+			s.invalidAhead = append(s.invalidAhead, f.Counter)
+		}
+		return dst
+	}
+	// The counter values between the last taken frame and f, less those of
+	// frames that arrived and were dropped as invalid: those are counted
+	// once, as invalid.
+	skipped := uint64(ahead - 1)
+	keep := s.invalidAhead[:0]
+	for _, c := range s.invalidAhead {
+		switch d := int32(c - s.counter); {
+		case d < ahead:
+			skipped--
+		case d > ahead:
+			keep = append(keep, c)
+		}
+	}
+	s.invalidAhead = keep
 	s.behind, s.jumped = 0, false
-	s.stats.Skipped += uint64(ahead - 1)
+	s.stats.Skipped += skipped
 	s.counter, s.stampUs = f.Counter, f.StampUs
 	for i, c := range f.Counts {
 		s.cumulative[i] += int64(c - s.counts[i])
 		s.counts[i] = c
 	}
-	return s.sample(f)
-}
-
-// confirms reports whether f, stamped too far past the last taken frame
-// (maxStepUs), follows the frame last dropped for that reason: the clock
-// did jump, and f is taken.
-func (s *Sequencer) confirms(f *Frame) bool {
-	ahead := int32(f.Counter - s.jumpCounter)
-	return s.jumped && ahead > 0 && f.StampUs > s.jumpUs && f.StampUs-s.jumpUs <= uint64(ahead)*maxStepUs
+	return append(dst, s.sample(f))
 }
 
 func (s *Sequencer) sample(f *Frame) *pb.Sample {
@@ -363,20 +568,11 @@ func (d *Decoder) Decode(dst []*pb.Sample, p []byte) []*pb.Sample {
 		for ; j < len(split) && split[j].at <= i; j++ {
 			d.drop(split[j])
 		}
-		restarts, invalid, behind := d.seq.stats.Restarts, d.seq.stats.Invalid, d.seq.behindErr
-		s := d.seq.Take(&d.frames[i])
-		if d.seq.stats.Invalid != invalid {
-			d.drop(Drop{Err: d.seq.invalid})
+		dst = d.seq.Take(dst, &d.frames[i])
+		for _, err := range d.seq.errs {
+			d.drop(Drop{Err: err})
 		}
-		if d.seq.behindErr != behind {
-			d.drop(Drop{Err: d.seq.behindErr})
-		}
-		if s != nil {
-			if d.seq.stats.Restarts != restarts {
-				dst = append(dst, &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: BootID(d.seq.boot)}}})
-			}
-			dst = append(dst, s)
-		}
+		d.seq.errs = d.seq.errs[:0]
 	}
 	for ; j < len(split); j++ {
 		d.drop(split[j])
@@ -421,5 +617,6 @@ func (d *Decoder) Drops(dst []Drop) []Drop {
 func (d *Decoder) Stats() Stats {
 	st := d.seq.stats
 	st.Frames, st.Corrupted, st.Invalid = d.split.frames, d.split.corrupted, d.split.invalid+st.Invalid
+	st.Held = uint64(len(d.seq.held))
 	return st
 }

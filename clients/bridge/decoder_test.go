@@ -81,43 +81,64 @@ func TestSequencer(t *testing.T) {
 		{"stamp past 2^32 us", []Frame{wheels(0, 1, late, 0), wheels(0, 2, late+1000, 1)},
 			[]sampleOf{{late * 1000, []int64{0}, -100}, {(late + 1000) * 1000, []int64{1}, -100}}, Stats{Samples: 2}},
 		{"stamp behind with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 4000, 1), wheels(0, 3, 6000, 2)},
-			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1}},
 		// The service refuses odometry not after the newest (time_backwards):
 		// a frame read within the same microsecond is the link's to drop,
 		// its counts carried by the next frame.
 		{"same stamp with counter ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 5000, 1), wheels(0, 3, 6000, 2)},
-			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {6_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1}},
 		// A firmware that extends a 32-bit microsecond timer and reads its
 		// two halves without care puts one frame 2^32 us (71.6 min) ahead
 		// (PROTOCOL.md, "Stamps"). Taken, it would send the service a
 		// sample over an hour ahead and drop every later frame as behind it.
+		// The frame dropped counts once, as invalid: it arrived, so its
+		// counter is not skipped (before, it counted under both).
 		{"one stamp jumps 2^32 us ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 5000+10000+1<<32, 1), wheels(0, 3, 25000, 2), wheels(0, 4, 35000, 3)},
-			[]sampleOf{{5_000_000, []int64{0}, -100}, {25_000_000, []int64{2}, -100}, {35_000_000, []int64{3}, -100}}, Stats{Samples: 3, Invalid: 1, Skipped: 1}},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {25_000_000, []int64{2}, -100}, {35_000_000, []int64{3}, -100}}, Stats{Samples: 3, Invalid: 1}},
 		// A controller that really sent nothing for two hours (held in a
 		// debugger): the frame after the jump confirms it and is taken.
-		{"a jump confirmed by the next frame", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 7_200_005_000, 1), wheels(0, 3, 7_200_015_000, 2)},
-			[]sampleOf{{5_000_000, []int64{0}, -100}, {7_200_015_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
+		{"a jump confirmed by the next frame", []Frame{wheels(0, 0, 4000, 0), wheels(0, 1, 5000, 0), wheels(0, 2, 7_200_005_000, 1), wheels(0, 3, 7_200_015_000, 2)},
+			[]sampleOf{{4_000_000, []int64{0}, -100}, {5_000_000, []int64{0}, -100}, {7_200_015_000_000, []int64{2}, -100}}, Stats{Samples: 3, Invalid: 1}},
+		// The same glitch in the link's very first frame: held until a
+		// later frame follows it, it is dropped, and the frames after it
+		// are taken. Before, it was the reference: every later frame was
+		// dropped as behind it.
+		{"first frame 2^32 us ahead", []Frame{wheels(0, 1, 5000+1<<32, 0), wheels(0, 2, 15000, 1), wheels(0, 3, 25000, 2), wheels(0, 4, 35000, 3)},
+			[]sampleOf{{15_000_000, []int64{1}, -100}, {25_000_000, []int64{2}, -100}, {35_000_000, []int64{3}, -100}}, Stats{Samples: 3, Invalid: 1}},
+		// A first frame far behind the ones that follow: before, it was
+		// taken, the robot's clock two hours behind its controller's.
+		{"first frame far behind", []Frame{wheels(0, 1, 1000, 0), wheels(0, 2, 7_200_005_000, 1), wheels(0, 3, 7_200_015_000, 2)},
+			[]sampleOf{{7_200_005_000_000, []int64{1}, -100}, {7_200_015_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1}},
+		// The first frame good and the second glitched: the third follows
+		// the first, which is taken, and the second is a jump.
+		{"second frame 2^32 us ahead", []Frame{wheels(0, 1, 5000, 0), wheels(0, 2, 15000+1<<32, 1), wheels(0, 3, 25000, 2)},
+			[]sampleOf{{5_000_000, []int64{0}, -100}, {25_000_000, []int64{2}, -100}}, Stats{Samples: 2, Invalid: 1}},
+		// The first frame of a new boot glitched alike: the run starts at
+		// the boot's first good frame.
+		{"restart, its first frame 2^32 us ahead", []Frame{wheels(4, 900, 9000, 50), wheels(4, 901, 10000, 51), wheels(5, 0, 30+1<<32, 0), wheels(5, 1, 40, 2), wheels(5, 2, 50, 3)},
+			[]sampleOf{{9_000_000, []int64{50}, -100}, {10_000_000, []int64{51}, -100}, {40_000, []int64{2}, -100}, {50_000, []int64{3}, -100}},
+			Stats{Samples: 4, Restarts: 1, Invalid: 1}},
+		// A lone frame is held, not taken: nothing confirms it yet.
+		{"a lone first frame", []Frame{wheels(0, 1, 5000, 0)}, nil, Stats{}},
 		{"frame counter wraps", []Frame{wheels(0, 1<<32-1, 10, 0), wheels(0, 0, 20, 1), wheels(0, 1<<32-1, 10, 0)},
 			[]sampleOf{{10_000, []int64{0}, -100}, {20_000, []int64{1}, -100}}, Stats{Samples: 2, Reordered: 1}},
 		{"int32 counts unwrap", []Frame{wheels(0, 1, 10, 2147483000, -2147483000), wheels(0, 2, 20, -2147483000, 2147483000)},
 			[]sampleOf{{10_000, []int64{2147483000, -2147483000}, -100}, {20_000, []int64{2147484296, -2147484296}, -100}}, Stats{Samples: 2}},
 		{"wheel count changes", []Frame{wheels(0, 1, 10, 1, 2), wheels(0, 2, 20, 1), wheels(0, 3, 30, 3, 4)},
-			[]sampleOf{{10_000, []int64{1, 2}, -100}, {30_000, []int64{3, 4}, -100}}, Stats{Samples: 2, Invalid: 1, Skipped: 1}},
-		{"restart, late frame of the old boot dropped", []Frame{wheels(4, 900, 9000, 50), wheels(5, 0, 30, 0), wheels(4, 899, 8000, 40), wheels(5, 1, 40, 2)},
-			[]sampleOf{{9_000_000, []int64{50}, -100}, {30_000, []int64{0}, -100}, {40_000, []int64{2}, -100}},
-			Stats{Samples: 3, Restarts: 1, Reordered: 1}},
+			[]sampleOf{{10_000, []int64{1, 2}, -100}, {30_000, []int64{3, 4}, -100}}, Stats{Samples: 2, Invalid: 1}},
+		{"restart, late frame of the old boot dropped", []Frame{wheels(4, 900, 9000, 50), wheels(4, 901, 10000, 51), wheels(5, 0, 30, 0), wheels(4, 899, 8000, 40), wheels(5, 1, 40, 2)},
+			[]sampleOf{{9_000_000, []int64{50}, -100}, {10_000_000, []int64{51}, -100}, {30_000, []int64{0}, -100}, {40_000, []int64{2}, -100}},
+			Stats{Samples: 4, Restarts: 1, Reordered: 1}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			var s Sequencer
 			var got []*pb.Sample
 			for i := range c.frames {
-				if smp := s.Take(&c.frames[i]); smp != nil {
-					got = append(got, smp)
-				}
+				got = s.Take(got, &c.frames[i])
 			}
-			if !sameSamples(shorts(got), c.want) {
-				t.Errorf("samples\n got %v\nwant %v", shorts(got), c.want)
+			if !sameSamples(shorts(odometry(got)), c.want) {
+				t.Errorf("samples\n got %v\nwant %v", shorts(odometry(got)), c.want)
 			}
 			if s.stats != c.stats {
 				t.Errorf("stats %+v, want %+v", s.stats, c.stats)
@@ -126,21 +147,140 @@ func TestSequencer(t *testing.T) {
 	}
 }
 
-// TestStaleBootTakenAfterLimit: a controller that reboots twice and draws
-// its earlier boot byte again is followed after staleBootLimit frames.
-func TestStaleBootTakenAfterLimit(t *testing.T) {
-	var s Sequencer
-	s.Take(&Frame{Type: FrameWheels, Boot: 1, Counter: 5, StampUs: 100, Counts: []int32{0}})
-	s.Take(&Frame{Type: FrameWheels, Boot: 2, Counter: 0, StampUs: 10, Counts: []int32{0}})
-	taken := 0
-	for i := range staleBootLimit + 3 {
-		if s.Take(&Frame{Type: FrameWheels, Boot: 1, Counter: uint32(i), StampUs: uint64(10 * i), Counts: []int32{0}}) != nil {
-			taken++
+// odometry is ss without its run starts.
+func odometry(ss []*pb.Sample) []*pb.Sample {
+	var out []*pb.Sample
+	for _, s := range ss {
+		if s.GetOdometry() != nil {
+			out = append(out, s)
 		}
 	}
-	if taken != 3 || s.stats.Restarts != 2 || s.stats.Reordered != staleBootLimit {
-		t.Errorf("taken %d, stats %+v", taken, s.stats)
+	return out
+}
+
+// boots returns frames of a controller that boots with each byte of bytes
+// in turn, running each boot for the matching number of frames, 10 ms
+// apart, its clock from 50 ms at its first frame and its counter from 0.
+func boots(bytes []uint8, frames []int) []Frame {
+	var out []Frame
+	for i, b := range bytes {
+		for k := range frames[i] {
+			out = append(out, wheels(b, uint32(k), uint64(50_000+10_000*k), int32(3*k+i)))
+		}
 	}
+	return out
+}
+
+// runStarts lists the boot ids of the run starts in ss.
+func runStarts(ss []*pb.Sample) []string {
+	var out []string
+	for _, s := range ss {
+		if rs := s.GetRunStart(); rs != nil {
+			out = append(out, rs.GetBootId())
+		}
+	}
+	return out
+}
+
+// TestBootToggle: a controller that toggles its boot byte between two
+// values (a single bit in EEPROM) reboots to the byte before the last at
+// every second boot. Each reboot starts a run and every frame of every
+// boot is taken, also when the boot in between ran only half a second
+// (then the new boot's frames are held until they span 2 s less its last
+// stamp, lateUs, and then taken). Before, the first 16 frames of every
+// such boot were dropped as late frames of the old one (staleBootLimit).
+func TestBootToggle(t *testing.T) {
+	for _, c := range []struct {
+		name   string
+		frames []int
+	}{
+		{"3 s boots", []int{300, 300, 300, 300}},
+		{"a 0.5 s boot in between", []int{300, 50, 300, 50, 300}},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			bytes := []uint8{1, 2, 1, 2, 1}[:len(c.frames)]
+			var d Decoder
+			ss := d.Decode(nil, encode(boots(bytes, c.frames)...))
+			total := 0
+			for _, n := range c.frames {
+				total += n
+			}
+			want := []string{"link-boot-02", "link-boot-01", "link-boot-02", "link-boot-01"}[:len(c.frames)-1]
+			if got := runStarts(ss); strings.Join(got, " ") != strings.Join(want, " ") || len(odometry(ss)) != total {
+				t.Errorf("run starts %v, %d samples; want %v and all %d frames", got, len(odometry(ss)), want, total)
+			}
+			if st := d.Stats(); st.Samples != uint64(total) || st.Reordered+st.Invalid+st.Held != 0 || st.Restarts != uint64(len(want)) {
+				t.Errorf("stats %+v", st)
+			}
+		})
+	}
+}
+
+// TestLateFramesOfOldBoot: over UDP the last frames of a boot can arrive
+// after the first frames of the next. 120 of them in a row (1.2 s of the
+// old clock, arriving after the new boot's frame stamped 0.09 s) are
+// dropped as reordered, however many: they never start a run of the old
+// boot again, and every frame of the new boot is taken. Before, the 17th
+// (staleBootLimit) started a run of the old boot, and the new boot's
+// next frame another run.
+func TestLateFramesOfOldBoot(t *testing.T) {
+	old := boots([]uint8{1}, []int{300})
+	cur := boots([]uint8{2}, []int{300})
+	for i := range old {
+		old[i].StampUs += 5_000_000 // the old boot ran 5 s before
+	}
+	frames := cat2(old[:180], cur[:5], old[180:], cur[5:])
+	var d Decoder
+	ss := d.Decode(nil, encode(frames...))
+	if got := runStarts(ss); len(got) != 1 || got[0] != "link-boot-02" || len(odometry(ss)) != 480 {
+		t.Errorf("run starts %v, %d samples; want one of link-boot-02 and 480 samples", got, len(odometry(ss)))
+	}
+	if st := d.Stats(); st.Reordered != 120 || st.Restarts != 1 || st.Held != 0 || st.Invalid != 0 {
+		t.Errorf("stats %+v, want 120 reordered, 1 restart", st)
+	}
+	// Interleaved with the new boot's frames, the same.
+	var mixed []Frame
+	mixed = append(mixed, old[:180]...)
+	mixed = append(mixed, cur[:5]...)
+	for k := range 120 {
+		mixed = append(mixed, old[180+k], cur[5+k])
+	}
+	mixed = append(mixed, cur[125:]...)
+	var d2 Decoder
+	ss = d2.Decode(nil, encode(mixed...))
+	if got := runStarts(ss); len(got) != 1 || len(odometry(ss)) != 480 {
+		t.Errorf("interleaved: run starts %v, %d samples", got, len(odometry(ss)))
+	}
+	if st := d2.Stats(); st.Reordered != 120 || st.Restarts != 1 || st.Held != 0 {
+		t.Errorf("interleaved: stats %+v", st)
+	}
+}
+
+// TestStrayBootDropped: a frame of another boot byte that no frame of its
+// boot follows (a stray frame, another controller's) is held while the
+// current boot's clock runs on less than 2 s (lateUs), then dropped as
+// invalid naming its boot; it starts no run.
+func TestStrayBootDropped(t *testing.T) {
+	frames := boots([]uint8{4}, []int{400})
+	frames = append(frames[:100:100], append([]Frame{wheels(9, 0, 30, 0)}, frames[100:]...)...)
+	var d Decoder
+	ss := d.Decode(nil, encode(frames[:250]...))
+	if st := d.Stats(); st.Held != 1 || st.Invalid != 0 || len(ss) != 249 {
+		t.Fatalf("after 1.5 s: stats %+v, %d samples; want the stray frame held", st, len(ss))
+	}
+	ss = d.Decode(ss, encode(frames[250:]...))
+	drops := d.Drops(nil)
+	if st := d.Stats(); st.Held != 0 || st.Invalid != 1 || st.Restarts != 0 || len(ss) != 400 || len(drops) != 1 || drops[0].Err.Field != "boot" {
+		t.Errorf("stats %+v, %d samples, drops %v; want the stray frame dropped as invalid (boot)", st, len(ss), drops)
+	}
+}
+
+func cat2(parts ...[]Frame) []Frame {
+	var out []Frame
+	for _, p := range parts {
+		out = append(out, p...)
+	}
+	return out
 }
 
 // TestDecoderResync: garbage, a frame cut short, a run without delimiter
@@ -244,7 +384,7 @@ func FuzzDecoder(f *testing.F) {
 		if odometry != st.Samples || starts != st.Restarts || odometry > uint64(len(frames)) || st.Frames != uint64(len(frames))+sp.invalid {
 			t.Fatalf("%d samples (%d run starts), %d frames (+%d invalid), stats %+v", odometry, starts, len(frames), sp.invalid, st)
 		}
-		if st.Samples+st.Duplicates+st.Reordered+st.Invalid != st.Frames {
+		if st.Samples+st.Duplicates+st.Reordered+st.Invalid+st.Held != st.Frames {
 			t.Fatalf("frames do not add up: %+v", st)
 		}
 	})
@@ -269,8 +409,8 @@ func TestDecoderRunStart(t *testing.T) {
 		return b.String()
 	}
 	var d Decoder
-	got := kinds(d.Decode(nil, encode(wheels(4, 900, 9000, 50), wheels(5, 0, 30, 0), wheels(4, 899, 8000, 40), wheels(5, 1, 40, 2))))
-	if want := "odo(9000000) start(link-boot-05) odo(30000) odo(40000) "; got != want {
+	got := kinds(d.Decode(nil, encode(wheels(4, 900, 9000, 50), wheels(4, 901, 10000, 51), wheels(5, 0, 30, 0), wheels(4, 899, 8000, 40), wheels(5, 1, 40, 2))))
+	if want := "odo(9000000) odo(10000000) start(link-boot-05) odo(30000) odo(40000) "; got != want {
 		t.Errorf("restart:\n got %s\nwant %s", got, want)
 	}
 	for _, c := range []struct {
@@ -291,7 +431,7 @@ func TestDecoderRunStart(t *testing.T) {
 	} {
 		var d Decoder
 		d.Resume(c.resume, c.newest)
-		if got := kinds(d.Decode(nil, encode(wheels(5, 0, 30, 0)))); got != c.want {
+		if got := kinds(d.Decode(nil, encode(wheels(5, 0, 30, 0), wheels(5, 1, 40, 1)))); got != c.want+"odo(40000) " {
 			t.Errorf("resumed on %q: %s, want %s", c.resume, got, c.want)
 		}
 	}

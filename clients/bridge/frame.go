@@ -53,8 +53,9 @@ var (
 // FrameError is why a frame was dropped: Kind is ErrCorrupt (damaged on
 // the way) or ErrInvalid (a good CRC, but not a frame this decoder takes),
 // Field the part of the frame that was wrong ("length", "crc",
-// "stuffing", "type", "flags", "wheels", "stamp", "heading"; "line" for
-// bytes that make no good frame, see Drop), and Detail
+// "stuffing", "type", "flags", "wheels", "stamp", "heading"; "boot" for a
+// frame of another boot that no later frame of its boot confirmed; "line"
+// for bytes that make no good frame, see Drop), and Detail
 // its value and what was expected. errors.Is(err, ErrCorrupt) and
 // errors.Is(err, ErrInvalid) tell the kinds apart.
 type FrameError struct {

@@ -111,6 +111,9 @@ func printLinkSummary(w io.Writer, robot string, sum bridge.Summary) {
 	st := sum.Stats
 	fmt.Fprintf(w, "frames: %d ok, %d corrupted, %d invalid, %d duplicates, %d reordered, %d skipped, %d restarts\n",
 		st.Frames, st.Corrupted, st.Invalid, st.Duplicates, st.Reordered, st.Skipped, st.Restarts)
+	if st.Held > 0 {
+		fmt.Fprintf(w, "%d frames held at the end, not sent: no later frame of their boot confirmed them\n", st.Held)
+	}
 	notTaken := ""
 	if sum.NotTaken > 0 {
 		notTaken = fmt.Sprintf(", not taken %d (the robot was paused: see its state)", sum.NotTaken)

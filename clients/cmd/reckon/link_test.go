@@ -237,13 +237,16 @@ func TestLinkSaysWhyFramesDrop(t *testing.T) {
 			if time.Now().After(deadline) {
 				t.Fatalf("frame %d never arrived\n%s%s", k, l.out.String(), l.errb.String())
 			}
-			f := frame(k) // until the link listens, datagrams may be lost
-			l.conn.Write(bridge.AppendFrame(nil, &f, nil))
+			// Until the link listens, datagrams may be lost; the frame
+			// before it confirms the boot's first frame (a lone frame
+			// is held: PROTOCOL.md, "The first frames of a boot").
+			f, g := frame(k-1), frame(k)
+			l.conn.Write(bridge.AppendFrame(bridge.AppendFrame(nil, &f, nil), &g, nil))
 		}
 	}
-	waitNewest(1) // stamp 0 is a new robot's newest too
+	waitNewest(2) // frame 1: stamp 0 is a new robot's newest too
 	var b []byte
-	for k := 2; k < 40; k++ {
+	for k := 3; k < 40; k++ {
 		f := frame(k)
 		switch k {
 		case 10:
@@ -351,9 +354,12 @@ func TestLinkPortGone(t *testing.T) {
 	l := startBackground(t, "link", "-addr", addr, "-serial", tty.Name(), "-robot", "robots/cart", "-create", "../../../testdata/robots/free-wheel-turn.yaml")
 	c := dialService(t, addr)
 	for deadline := time.Now().Add(20 * time.Second); ; time.Sleep(20 * time.Millisecond) {
+		// Two frames: the second confirms the first (a lone frame is
+		// held: PROTOCOL.md, "The first frames of a boot").
 		f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
-		master.Write(bridge.AppendFrame(nil, &f, nil))
-		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == 10_000_000 {
+		g := bridge.Frame{Type: bridge.FrameWheels, Counter: 2, StampUs: 20_000, Counts: []int32{2, 2, 0}}
+		master.Write(bridge.AppendFrame(bridge.AppendFrame(nil, &f, nil), &g, nil))
+		if r, err := c.GetRobot(context.Background(), "robots/cart"); err == nil && r.GetNewestStampNs() == 20_000_000 {
 			break
 		}
 		if time.Now().After(deadline) {
@@ -496,5 +502,27 @@ func TestLinkOpensItsPortFirst(t *testing.T) {
 	link("-replace")
 	if r, err := c.GetRobot(ctx, "robots/cart"); err != nil || r.GetConfig().GetGateProbability() != 0.9 {
 		t.Errorf("the robot after link -replace failed to open its port: %v %v", r.GetConfig(), err)
+	}
+}
+
+// TestLinkSummarySaysHeld: frames held unconfirmed when the link ends (a
+// boot's first frame that no later frame followed) are said in the
+// summary, as they are never sent; with none held, the summary is as
+// before.
+func TestLinkSummarySaysHeld(t *testing.T) {
+	var d bridge.Decoder
+	f := bridge.Frame{Type: bridge.FrameWheels, Counter: 1, StampUs: 10_000, Counts: []int32{1, 1, 0}}
+	if ss := d.Decode(nil, bridge.AppendFrame(nil, &f, nil)); len(ss) != 0 {
+		t.Fatalf("a lone frame gave %d samples", len(ss))
+	}
+	var b strings.Builder
+	printLinkSummary(&b, "robots/cart", bridge.Summary{Stats: d.Stats()})
+	if !strings.Contains(b.String(), "1 frames held at the end, not sent") {
+		t.Errorf("summary:\n%s", b.String())
+	}
+	b.Reset()
+	printLinkSummary(&b, "robots/cart", bridge.Summary{})
+	if strings.Contains(b.String(), "held at the end") {
+		t.Errorf("summary without held frames:\n%s", b.String())
 	}
 }

@@ -137,20 +137,12 @@ func TestPoseFixesNameMarkers(t *testing.T) {
 	named.NamePoseMarkers = true
 	a, b := New(sc), New(named)
 	var withName, without int
-	for n := 0; ; n++ {
-		x, okx := a.Next()
-		y, oky := b.Next()
-		if okx != oky {
-			t.Fatalf("input %d: one run ended", n)
-		}
-		if !okx {
-			break
-		}
+	eachPair(t, a, b, func(n int, x, y Input) {
 		if y.Fix == nil {
 			if !reflect.DeepEqual(x, y) {
 				t.Fatalf("input %d differs", n)
 			}
-			continue
+			return
 		}
 		f := *y.Fix
 		f.Marker = ""
@@ -173,9 +165,26 @@ func TestPoseFixesNameMarkers(t *testing.T) {
 		} else {
 			without++
 		}
-	}
+	})
 	t.Logf("%d pose fixes name a post, %d none", withName, without)
 	if withName < 50 || without < 50 {
 		t.Errorf("%d pose fixes name a post, %d none: the run shows too little", withName, without)
+	}
+}
+
+// eachPair hands fn the inputs of a and b in step, and fails when one run
+// ends before the other.
+func eachPair(t *testing.T, a, b *Sim, fn func(n int, x, y Input)) {
+	t.Helper()
+	for n := 0; ; n++ {
+		x, okx := a.Next()
+		y, oky := b.Next()
+		if okx != oky {
+			t.Fatalf("input %d: one run ended", n)
+		}
+		if !okx {
+			return
+		}
+		fn(n, x, y)
 	}
 }

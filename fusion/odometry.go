@@ -349,9 +349,9 @@ func (r *Robot) solveWheels(o *Odometry, travel []float64, e *entry, res *odoRes
 	n := &r.cfg.Noise
 	r.rows = r.rows[:0]
 	var dist float64
-	for i, w := range r.cfg.Wheels {
+	for i := range r.cfg.Wheels {
 		r.rows = append(r.rows, estimator.Row{
-			Coef:  estimator.WheelCoef(w.XM, w.YM, w.DirectionRad),
+			Coef:  r.wheelCoef[i],
 			Value: travel[i],
 			Var:   n.WheelVarM2PerM * math.Abs(travel[i]),
 		})

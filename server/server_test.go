@@ -8,6 +8,7 @@ import (
 	"testing"
 	"time"
 
+	"google.golang.org/grpc/codes"
 	"google.golang.org/protobuf/proto"
 
 	"reckon.example/fusion"
@@ -256,5 +257,54 @@ func TestRestoreTornTail(t *testing.T) {
 func TestJournalFileName(t *testing.T) {
 	if got := filepath.Base(journal.SegmentPath("/j", "cart", 3)); got != "cart.000003.rjl" {
 		t.Errorf("segment name %q", got)
+	}
+}
+
+// TestStreamFollowsRobotRecreated: a stream keeps the robot it fed last
+// (lookupFrom); once that robot is deleted the stream's samples for its
+// name are refused as for no robot, and once a robot of the same name is
+// made again they go to the new one, over a real connection on loopback.
+func TestStreamFollowsRobotRecreated(t *testing.T) {
+	srv := start(t, testConfig{})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	samp, cfg := cartRun(3, 1)
+	ctx := context.Background()
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	st, err := api.Ingest(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	send := func(i int) *pb.IngestResponse {
+		t.Helper()
+		if err := st.Send(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(i + 1), Sample: samp[i]}); err != nil {
+			t.Fatal(err)
+		}
+		resp, err := st.Recv()
+		if err != nil {
+			t.Fatal(err)
+		}
+		return resp
+	}
+	for i := range 3 {
+		if r := send(i); r.GetSequence() != uint64(i+1) || r.GetStatusCode() != 0 {
+			t.Fatalf("sample %d to the first robot: %v", i, r)
+		}
+	}
+	if _, err := api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart"}); err != nil {
+		t.Fatal(err)
+	}
+	if r := send(3); r.GetVerdict() != pb.Verdict_VERDICT_INVALID || codes.Code(r.GetStatusCode()) != codes.NotFound {
+		t.Fatalf("sample for the deleted robot: %v", r)
+	}
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	// The new robot's first input is numbered 1: the stream feeds it, not
+	// the deleted one (which had taken 3).
+	if r := send(0); r.GetSequence() != 1 || r.GetStatusCode() != 0 {
+		t.Fatalf("first sample to the robot made again: %v", r)
 	}
 }

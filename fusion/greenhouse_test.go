@@ -830,7 +830,8 @@ func ghPushRun(t *testing.T, seed uint64, cfg fusion.Config) (recovered, trusted
 // and trusted again near its truth. Its posts stand 5 m apart with no fix
 // between them, so the second post's refused fixes come seconds after the
 // first's, long after the 1 s window has passed them: the candidates that
-// name a marker are carried on past the window (carryNamed); without that,
+// name a marker are carried on past the window (carryCandidates,
+// leftBehind); without that,
 // 2 of the 8 runs were not recovered within the minute and the others took
 // 37 to 56 s. Logged beside distinct_markers 1.
 func TestGreenhousePushRecovered(t *testing.T) {

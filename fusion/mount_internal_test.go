@@ -37,11 +37,11 @@ func TestFoldMountBlock(t *testing.T) {
 		t.Fatal("the sensor's fix names no mount error states")
 	}
 	before := m
-	r.foldBias(&m)
+	st := r.f.State()
+	r.foldBias(&m, &st)
 	if m.MountError != 0 {
 		t.Fatalf("MountError %d left after folding", m.MountError)
 	}
-	st := r.f.State()
 	x := make([]float64, r.n)
 	for i := range x {
 		x[i] = st.MeanAt(i)

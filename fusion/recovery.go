@@ -80,9 +80,9 @@ func (r *Robot) confirmsReseed(k uint32) bool {
 // whose carried pose would not be trusted (wouldTrust: the 95% radius or
 // the heading standard deviation of implied (+) rel beyond the trust
 // limits); the newest is always counted. Carried past the window
-// (carryNamed), a candidate's covariance grows with the odometry, and so
-// does what agrees with it: a misread of one marker, carried three
-// minutes, agreed with a misread of another 1.5 m from it
+// (carryCandidates, leftBehind), a candidate's covariance grows with the
+// odometry, and so does what agrees with it: a misread of one marker,
+// carried three minutes, agreed with a misread of another 1.5 m from it
 // (TestOldMisreadDoesNotConfirmAnother). A pose too uncertain to be
 // trusted itself is no confirmation that another marker's is right.
 func (r *Robot) firmMarkersShort() bool {
@@ -154,7 +154,8 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 			c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
 		}
 	} else {
-		r.foldBias(&meas)
+		st := r.stateThrough(e.t1)
+		r.foldBias(&meas, &st)
 		sensor := estimator.Pose{X: meas.Z[0], Y: meas.Z[1], Heading: meas.Z[2]}
 		c.implied = estimator.Detach(sensor, meas.Mount)
 		c.cov = detachCov(c.implied, meas.Mount, &meas.R)
@@ -223,6 +224,15 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		Detail: fmt.Sprintf("%s; pose re-initialised %.2f m and %.2f rad from the estimate", detail, jump, turn)})
 }
 
+// stateThrough returns the estimate after the window's entries that end by
+// t: what recovery reads at a candidate's stamp. The newest estimate would
+// depend on what had come after t by the time the fix came, and a late fix
+// would fold another bias than the same fix in stamp order
+// (DEVELOPERS.md, "Design: Time ordering and late measurements").
+func (r *Robot) stateThrough(t int64) estimator.State {
+	return r.before(r.locate(t)).est
+}
+
 // holdReseed holds a reseed at a fix of marker key k untrusted
 // (move_unconfirmed) until an applied fix confirms it (confirmsReseed).
 func (r *Robot) holdReseed(k uint32) {
@@ -234,10 +244,10 @@ func (r *Robot) holdReseed(k uint32) {
 // z, and its covariance (the bias block of P, the stationary C of a
 // consider state) joins the white R, since a candidate's error is the sum
 // of both; a sensor's mount block and a landmark's survey error join R
-// through their Jacobians the same way. Without them m is unchanged.
-func (r *Robot) foldBias(m *estimator.Measurement) {
+// through their Jacobians the same way. Without them m is unchanged. st is
+// the estimate at the candidate's stamp (stateThrough).
+func (r *Robot) foldBias(m *estimator.Measurement, st *estimator.State) {
 	d := m.Kind.Dim()
-	st := r.f.State()
 	for i := 0; i < d; i++ {
 		bi := m.Bias[i]
 		if bi == 0 {
@@ -312,9 +322,8 @@ func addThroughJacobian(m *estimator.Measurement, h []float64, n, col, k int, c 
 }
 
 // addCandidate carries the candidates and c to the newest stamp among them
-// and adds c; it drops those that cannot be carried (their stamp left the
-// window) and the oldest beyond what recovery needs. It reports whether c
-// was kept.
+// and adds c; it drops those left behind (leftBehind) and the oldest beyond
+// what recovery needs. It reports whether c was kept.
 func (r *Robot) addCandidate(c candidate) bool {
 	to := c.stamp
 	if n := len(r.cands); n > 0 && r.cands[n-1].stamp > to {
@@ -323,9 +332,10 @@ func (r *Robot) addCandidate(c candidate) bool {
 	if !r.carry(&c, to) {
 		return false
 	}
+	gap := r.candidateGap(c.fixStamp)
 	kept := r.cands[:0]
 	for _, o := range r.cands {
-		if o.isLandmark() == c.isLandmark() && r.carry(&o, to) {
+		if o.isLandmark() == c.isLandmark() && !r.leftBehind(&o, gap) && r.carry(&o, to) {
 			kept = append(kept, o)
 		}
 	}
@@ -348,26 +358,42 @@ func (r *Robot) addCandidate(c candidate) bool {
 	return true
 }
 
-// carryNamed keeps pose candidates that name a marker as the window moves
-// on: when its start is to pass their stamp (newBase), it carries them to
-// the newest odometry stamp, and drops those that name none, as the next
-// candidate would have. A moved robot's second marker may come into view
+// candidateGap reports whether a refused fix stamped t comes more than
+// window_ns after the newest candidate's fix: the refused fixes before it
+// are then no evidence beside it (leftBehind).
+func (r *Robot) candidateGap(t int64) bool {
+	n := len(r.cands)
+	return n > 0 && t > r.cands[n-1].fixStamp && uint64(t-r.cands[n-1].fixStamp) > uint64(r.cfg.WindowNs)
+}
+
+// leftBehind reports whether candidate o is dropped at a gap of more than
+// window_ns before the next refused fix (candidateGap): all are, except,
+// while recovery.distinct_markers asks for more than one, pose candidates
+// that name a marker. A moved robot's second marker may come into view
 // seconds after the first (on the greenhouse simulator, posts 5 m apart
 // with no fix between), and the first marker's candidates must still count
-// then. Only while recovery.distinct_markers asks for more than one:
-// otherwise, and for landmark fixes, candidates leave with the window as
-// before.
-func (r *Robot) carryNamed(newBase int64) {
-	if r.cfg.Recovery.DistinctMarkers <= 1 || r.cands[0].stamp >= newBase || r.cands[0].isLandmark() || namedMarkers(r.cands) == 0 {
-		return
-	}
-	kept := r.cands[:0]
-	for _, c := range r.cands {
-		if c.marker != 0 && r.carry(&c, r.newest) {
-			kept = append(kept, c)
+// then. The rule reads stamps alone: until session 25 a candidate was
+// dropped when the window's start passed it, which a fix 150 ms late
+// reaches 150 ms sooner, and a late run recovered from other candidates
+// than the same run in stamp order.
+func (r *Robot) leftBehind(o *candidate, gap bool) bool {
+	return gap && (o.marker == 0 || o.isLandmark() || r.cfg.Recovery.DistinctMarkers <= 1)
+}
+
+// carryCandidates carries the candidates whose stamp the window's start is
+// to pass (newBase) to that start, so that they can be carried on from
+// there when the next refused fix comes, however late it comes: the
+// window's start runs with the newest odometry, and a fix 150 ms late
+// finds it 150 ms further on than the same fix in stamp order would. The
+// window's start is where an entry ended, which it is in either order, so
+// the carry gives the same bits as one straight to the next fix (carry).
+// Whether they are kept then is the stamps' matter (leftBehind).
+func (r *Robot) carryCandidates(newBase int64) {
+	for i := range r.cands {
+		if c := &r.cands[i]; c.stamp < newBase {
+			r.carry(c, newBase)
 		}
 	}
-	r.cands = kept
 }
 
 // keepMarkers drops the oldest over of the candidates kept, in fix-stamp
@@ -405,29 +431,21 @@ func (r *Robot) keepMarkers(kept []candidate, over int, landmark bool) []candida
 }
 
 // carry moves candidate c from its stamp to the later stamp to by the
-// window's odometry between them; false if its stamp left the window.
+// window's odometry between them; false if its stamp left the window. The
+// motion is extended step by step from where it stood (extendMotion), so
+// that carrying it to a stamp b and on to to gives the same bits as
+// carrying it to to at once whenever b is where a window entry ends: the
+// window's start, to which trim carries the candidates as it moves on
+// (carryCandidates), or another candidate's stamp. Which of those a
+// candidate passed depends on when fixes arrived; its motion must not
+// (DEVELOPERS.md, "Design: Time ordering and late measurements").
 func (r *Robot) carry(c *candidate, to int64) bool {
 	if c.stamp == to {
 		return true
 	}
-	m, mw, md, ok := r.relativeMotion(c.stamp, to)
-	if !ok {
+	if !r.extendMotion(&c.rel, &c.relW, &c.relD, c.stamp, to) {
 		return false
 	}
-	ja, jb := composeJacobians(c.rel, m)
-	var x, y [9]float64
-	estimator.Sandwich(&x, &ja, &c.relW)
-	estimator.Sandwich(&y, &jb, &mw)
-	for k := range x {
-		c.relW[k] = x[k] + y[k]
-	}
-	// The calibration is one for the whole window: its Jacobians add.
-	mul3(&x, &ja, &c.relD)
-	mul3(&y, &jb, &md)
-	for k := range x {
-		c.relD[k] = x[k] + y[k]
-	}
-	c.rel = estimator.Compose(c.rel, m)
 	c.relCov = r.motionCov(&c.relW, &c.relD)
 	c.stamp = to
 	return true
@@ -449,20 +467,23 @@ func (r *Robot) motionCov(w, d *[9]float64) [9]float64 {
 	return out
 }
 
-// relativeMotion composes the window's odometry over [ta, tb] into the
-// robot's motion in its body frame at ta, with the covariance of the steps'
-// noise propagated through the arc model (DEVELOPERS.md, "Design: Motion
-// prediction"): C' = Fx C Fx^T + Fu Cu Fu^T, plus the heading random walk.
-// Being a motion in the body frame, it does not depend on the field frame.
-// With calibration states each step is the calibrated one, (s_f a, s_f b,
-// s_t dth + b_r dt) at the calibration's prior (priorCalibration), and the
-// motion's Jacobian in the calibration is jc (accumulated as dRel' = Fx dRel
-// + Fu dStep; zero without calibration states), so that the motion's whole
-// covariance is cov + jc C_cal jc^T (motionCov). ok is false when ta is
-// before the window.
-func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov, jc [9]float64, ok bool) {
+// extendMotion extends the robot's motion rel from a stamp t0 to ta, in
+// its body frame at t0, to tb by the window's odometry over [ta, tb], with
+// the covariance cov of the steps' noise propagated through the arc model
+// (DEVELOPERS.md, "Design: Motion prediction"): C' = Fx C Fx^T + Fu Cu
+// Fu^T, plus the heading random walk. Being a motion in the body frame, it
+// does not depend on the field frame. With calibration states each step is
+// the calibrated one, (s_f a, s_f b, s_t dth + b_r dt) at the calibration's
+// prior (priorCalibration), and the motion's Jacobian in the calibration is
+// jc (accumulated as dRel' = Fx dRel + Fu dStep; zero without calibration
+// states), so that the motion's whole covariance is cov + jc C_cal jc^T
+// (motionCov). From the zero motion it is the motion over [ta, tb]; from
+// the motion over [t0, ta] it is the one over [t0, tb] (the arc model
+// composes: "Design: Motion prediction"). It changes nothing and returns
+// false when ta is before the window.
+func (r *Robot) extendMotion(rel *estimator.Pose, cov, jc *[9]float64, ta, tb int64) bool {
 	if ta < r.baseT || tb > r.newest || tb < ta {
-		return rel, cov, jc, false
+		return false
 	}
 	live := r.live()
 	first := r.locate(ta)
@@ -483,8 +504,8 @@ func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov, jc [9]flo
 			cu[k] = e.cov[k] * f
 		}
 		cal.scaleCov(&cu)
-		estimator.ArcJacobians(rel, step, &fx, &fu)
-		estimator.Sandwich(&a, &fx, &cov)
+		estimator.ArcJacobians(*rel, step, &fx, &fu)
+		estimator.Sandwich(&a, &fx, cov)
 		estimator.Sandwich(&b, &fu, &cu)
 		for k := range cov {
 			cov[k] = a[k] + b[k]
@@ -493,7 +514,7 @@ func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov, jc [9]flo
 			// d(step)/d(s_f, s_t, b_r) = [a 0 0; b 0 0; 0 dth dt].
 			ds := [9]float64{raw.ForwardM, 0, 0, raw.LeftM, 0, 0, 0, raw.TurnRad, dtS}
 			var x, y [9]float64
-			mul3(&x, &fx, &jc)
+			mul3(&x, &fx, jc)
 			mul3(&y, &fu, &ds)
 			for k := range jc {
 				jc[k] = x[k] + y[k]
@@ -501,9 +522,9 @@ func (r *Robot) relativeMotion(ta, tb int64) (rel estimator.Pose, cov, jc [9]flo
 		}
 		// The heading random walk over the stretch (Design: Process noise).
 		cov[8] += r.cfg.HeadingDriftVarPerS() * dtS
-		rel = estimator.Advance(rel, step)
+		*rel = estimator.Advance(*rel, step)
 	}
-	return rel, cov, jc, true
+	return true
 }
 
 // calibration is the odometry calibration of the estimate at one point of

@@ -64,23 +64,24 @@ type relocation struct {
 // taken, and short reports it (the robot waits for another landmark).
 func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, ok, short bool) {
 	n := len(r.cands)
-	st := r.f.State()
+	st := r.stateThrough(r.cands[n-1].stamp)
 	// Each candidate a measurement of the pose alone, the bias of a
 	// correlated sensor folded into its R (foldBias) at the estimate's
-	// newest bias; bias keeps the states folded, for the cross terms.
+	// bias at the newest candidate's stamp; bias keeps the states folded,
+	// for the cross terms.
 	folded := make([]candidate, n)
 	bias := make([][3]int, n)
 	for i := range r.cands {
 		folded[i] = r.cands[i]
 		bias[i] = folded[i].meas.Bias
-		r.foldBias(&folded[i].meas)
+		r.foldBias(&folded[i].meas, &st)
 	}
 	for k := n; k >= r.cfg.Recovery.Count; k = min(k-1, k*2/3) {
 		set := folded[n-k:]
 		if distinctLandmarks(set) < 2 {
 			continue
 		}
-		sol := r.solvePose(set)
+		sol := r.solvePose(set, st.Pose())
 		if !sol.ok {
 			continue
 		}
@@ -149,10 +150,10 @@ func distinctLandmarks(set []candidate) int {
 // (Nocedal and Wright, Numerical Optimization, 2nd ed., sec. 10.3), from
 // several starts: the estimate, and for each of relocateHeadings headings
 // the pose that the newest range-and-bearing fix gives with that heading. It
-// returns the converged solution of least cost.
-func (r *Robot) solvePose(set []candidate) relocation {
+// returns the converged solution of least cost. est is the estimate at the
+// candidates' stamp.
+func (r *Robot) solvePose(set []candidate, est estimator.Pose) relocation {
 	var starts []estimator.Pose
-	est := r.f.Pose()
 	starts = append(starts, est)
 	newest := -1
 	for i := len(set) - 1; i >= 0 && newest < 0; i-- {

@@ -47,7 +47,7 @@ func (r *Robot) insertReset(e *entry, res *Result) {
 	r.trust.disagree = false
 	// A pose set by hand or recovered follows a move the wheels did not
 	// see; the turn comparison starts afresh.
-	r.slip = slipState{}
+	r.restartSlip(res)
 	res.Verdict = VerdictApplied
 	res.Events = append(res.Events, Event{Kind: EventReseeded, StampNs: e.t1})
 }

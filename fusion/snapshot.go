@@ -59,10 +59,14 @@ import (
 // Version 16: a reseed held untrusted until a fix of another marker is
 // applied, and its marker's key (recovery.go, holdReseed); a version 15 to
 // 5 snapshot has none (its builds held no reseed).
-const SnapshotVersion = 16
+// Version 17: in odometry entries, the IMU slip comparison's factor that a
+// step's covariance carries (slip.go), which a reset takes back from the
+// steps after it; a version 16 to 5 snapshot has none, and a reset inside
+// its window leaves the steps after it as they were, as its builds did.
+const SnapshotVersion = 17
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -548,6 +552,9 @@ func (r *Robot) encEntry(e *wenc, en *entry) {
 	if en.marker != 0 {
 		e.uint(22, uint64(en.marker))
 	}
+	if en.slipK != 0 {
+		e.double(23, en.slipK)
+	}
 }
 
 // decEntry reads an entry and stores its checkpoint in a slot of r's.
@@ -606,6 +613,8 @@ func (r *Robot) decEntry(d *wdec) entry {
 			en.seeded = d.bool(num)
 		case 22:
 			en.marker = d.uint32(num)
+		case 23:
+			en.slipK = d.double(num)
 		default:
 			d.fail("entry: unknown field %d", num)
 		}

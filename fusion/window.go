@@ -39,6 +39,10 @@ type entry struct {
 	step  estimator.Step
 	cov   [9]float64
 	scrub float64
+	// slipK is the factor of the IMU's slip comparison that cov and scrub
+	// carry (0: none; slip.go), which a reset takes back from the steps
+	// after it (restartSlip).
+	slipK float64
 
 	// entMeas; lm, the landmark of a landmark fix (from 1), and seeded,
 	// that its update gave a landmark block to it (landmarks.go); marker
@@ -230,7 +234,7 @@ func (r *Robot) reserve(n int) {
 // windowSlack is how many times the live entries the dropped ones may be
 // before dropFront moves them out. maxReserve bounds what reserve sets
 // aside: room for the most entries a window keeps (maxWindowEntries)
-// windowSlack+1 times, 3.4 MB; a window that needs more grows as append
+// windowSlack+1 times, 3.5 MB; a window that needs more grows as append
 // grows it.
 const (
 	windowSlack = 2
@@ -302,7 +306,7 @@ type insertion struct {
 // replays from there; ins records how. The stamp must lie in [baseT,
 // newest].
 //
-// Entries (552 bytes) are passed by pointer and written where they end
+// Entries (560 bytes) are passed by pointer and written where they end
 // up, not copied through the stack: at robot rates every copy is a few
 // more cache misses (BenchmarkRobotRates).
 func (r *Robot) insert(e *entry, ins *insertion) {
@@ -395,7 +399,7 @@ func (r *Robot) trim() {
 	}
 	n := max(k, min(len(live)-maxWindowEntries, len(live)-1))
 	if n > 0 && len(r.cands) > 0 {
-		r.carryNamed(live[n-1].t1)
+		r.carryCandidates(live[n-1].t1)
 	}
 	r.dropFront(n)
 }
@@ -403,7 +407,7 @@ func (r *Robot) trim() {
 // maxWindowEntries bounds the history window by its number of entries as
 // well as by window_ns: samples stamped microseconds apart (a controller
 // that stamps in microseconds but says nanoseconds) would otherwise keep
-// a second of them, each entry 552 bytes in memory and about 590 in a
+// a second of them, each entry 560 bytes in memory and about 590 in a
 // snapshot. 2048 entries is 6.6 s at 200 Hz odometry, 100 Hz IMU and 10
 // Hz fixes, more than the longest window_ns (5 s); past it the window is
 // shorter than window_ns, and a late sample before its start is refused as

@@ -236,15 +236,7 @@ func TestFieldFrame(t *testing.T) {
 				t.Errorf("landmark %s at %+v, moved back %+v", m.ID, m, p)
 			}
 		}
-		for n := 0; ; n++ {
-			x, okx := a.Next()
-			y, oky := b.Next()
-			if okx != oky {
-				t.Fatalf("input %d: one run ended", n)
-			}
-			if !okx {
-				break
-			}
+		eachPair(t, a, b, func(n int, x, y Input) {
 			if !same(x.Truth, moved.ToLocal(y.Truth)) {
 				t.Fatalf("input %d: truth %+v, moved back %+v", n, x.Truth, moved.ToLocal(y.Truth))
 			}
@@ -261,7 +253,7 @@ func TestFieldFrame(t *testing.T) {
 			if !reflect.DeepEqual(x, y) {
 				t.Fatalf("input %d differs: %+v, moved %+v", n, x, y)
 			}
-		}
+		})
 	}
 }
 

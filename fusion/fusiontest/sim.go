@@ -122,6 +122,12 @@ type Scenario struct {
 	// MarkerCount, if positive, maps that many markers along the aisles
 	// (AisleMarkers) instead of the posts, and turns Markers on.
 	MarkerCount int
+	// NamePoseMarkers makes each pose fix name the marker the camera took
+	// it from (Fix.Marker): the nearest of the map's markers in view, as
+	// the landmark camera chooses (within 5 m and 1 rad of the camera's
+	// axis); a fix with none in view names none, and an outlier names the
+	// marker it was read from. Without Markers only.
+	NamePoseMarkers bool
 	// NoiseFree turns off every noise source (outliers, slip and Errors too).
 	NoiseFree bool
 	// Bump, if set, moves the cart by hand.
@@ -663,6 +669,20 @@ func (sm *Sim) surveyed(i int, m fusion.Landmark) (float64, float64) {
 	return m.XM + off[0], m.YM + off[1]
 }
 
+// markerInView returns the index of the nearest of marks that camera pose
+// cam sees (within 5 m, and within 1 rad of its axis), or -1.
+func markerInView(marks []fusion.Landmark, cam estimator.Pose) int {
+	best, bestR := -1, 5.0
+	for i, m := range marks {
+		dx, dy := m.XM-cam.X, m.YM-cam.Y
+		r := math.Hypot(dx, dy)
+		if b := estimator.Wrap(math.Atan2(dy, dx) - cam.Heading); r < bestR && math.Abs(b) < 1 {
+			best, bestR = i, r
+		}
+	}
+	return best
+}
+
 // MarkerOffset returns how far marker id stands off its mapped position
 // in this run (Errors.LandmarkSurveyM), in the simulator's frame, once the
 // camera has seen it; ok is false before.
@@ -678,15 +698,8 @@ func (sm *Sim) emitCamera(t int64) {
 	outlier := !sm.s.NoiseFree && sm.rng.Float64() < sm.s.OutlierFraction
 	sm.errs.startFix(&sm.s, t)
 	if sm.s.Markers {
-		best, bestR := -1, 5.0
 		marks := sm.s.localMarkers()
-		for i, m := range marks {
-			dx, dy := m.XM-cam.X, m.YM-cam.Y
-			r := math.Hypot(dx, dy)
-			if b := estimator.Wrap(math.Atan2(dy, dx) - cam.Heading); r < bestR && math.Abs(b) < 1 {
-				best, bestR = i, r
-			}
-		}
+		best := markerInView(marks, cam)
 		if best < 0 {
 			return
 		}
@@ -711,6 +724,12 @@ func (sm *Sim) emitCamera(t int64) {
 		p := sm.s.ToField(estimator.Pose{X: x, Y: y, Heading: estimator.Wrap(h)})
 		in.Fix = &fusion.Fix{StampNs: t, SensorID: "camera", Kind: fusion.FixPose, XM: p.X, YM: p.Y, HeadingRad: p.Heading,
 			Cov: []float64{cameraStdM * cameraStdM, 0, 0, 0, cameraStdM * cameraStdM, 0, 0, 0, sm.s.Heading.CameraStdRad * sm.s.Heading.CameraStdRad}}
+		if sm.s.NamePoseMarkers {
+			marks := sm.s.localMarkers()
+			if best := markerInView(marks, cam); best >= 0 {
+				in.Fix.Marker = marks[best].ID
+			}
+		}
 	}
 	in.Outlier = outlier
 	switch {

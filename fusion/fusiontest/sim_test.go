@@ -125,3 +125,66 @@ func TestGyroNoisePerRadian(t *testing.T) {
 		t.Errorf("mean ratio %.3f over %d intervals, want 1 within 0.02", ratio, n)
 	}
 }
+
+// TestPoseFixesNameMarkers: with NamePoseMarkers, the demo's run (70 s
+// up and down the aisles) names on each pose fix the nearest post in the
+// camera's view, within 5 m and 1 rad of its axis at the fix's true pose,
+// and none where no post is in view; every other value, and the run
+// without it, is the same, draw for draw.
+func TestPoseFixesNameMarkers(t *testing.T) {
+	sc := Scenario{Layout: FreeWheelTurn, IMU: true, Counts: true, Seed: 1, DurationS: 70, OutlierFraction: 0.05, SlipPerS: 0.02}
+	named := sc
+	named.NamePoseMarkers = true
+	a, b := New(sc), New(named)
+	var withName, without int
+	eachPair(t, a, b, func(n int, x, y Input) {
+		if y.Fix == nil {
+			if !reflect.DeepEqual(x, y) {
+				t.Fatalf("input %d differs", n)
+			}
+			return
+		}
+		f := *y.Fix
+		f.Marker = ""
+		if x.Fix == nil || !reflect.DeepEqual(*x.Fix, f) {
+			t.Fatalf("input %d: fix %+v, without names %+v", n, *y.Fix, x.Fix)
+		}
+		cam := estimator.Compose(y.Truth, CameraMount())
+		nearest, nearestR := "", math.Inf(1)
+		for _, m := range Markers() {
+			r := math.Hypot(m.XM-cam.X, m.YM-cam.Y)
+			if b := estimator.Wrap(math.Atan2(m.YM-cam.Y, m.XM-cam.X) - cam.Heading); r <= 5 && math.Abs(b) < 1 && r < nearestR {
+				nearest, nearestR = m.ID, r
+			}
+		}
+		if y.Fix.Marker != nearest {
+			t.Errorf("fix at %d ns names %q, the nearest post in view is %q", y.Fix.StampNs, y.Fix.Marker, nearest)
+		}
+		if nearest != "" {
+			withName++
+		} else {
+			without++
+		}
+	})
+	t.Logf("%d pose fixes name a post, %d none", withName, without)
+	if withName < 50 || without < 50 {
+		t.Errorf("%d pose fixes name a post, %d none: the run shows too little", withName, without)
+	}
+}
+
+// eachPair hands fn the inputs of a and b in step, and fails when one run
+// ends before the other.
+func eachPair(t *testing.T, a, b *Sim, fn func(n int, x, y Input)) {
+	t.Helper()
+	for n := 0; ; n++ {
+		x, okx := a.Next()
+		y, oky := b.Next()
+		if okx != oky {
+			t.Fatalf("input %d: one run ended", n)
+		}
+		if !okx {
+			return
+		}
+		fn(n, x, y)
+	}
+}

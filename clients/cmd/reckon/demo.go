@@ -151,7 +151,7 @@ gRPC clients, and shows the live estimate; leaves the journal for review.`)
 // scenario is the simulated run the options ask for.
 func (o demoOptions) scenario() fusiontest.Scenario {
 	sc := fusiontest.Scenario{Layout: o.layout, Seed: o.seed, DurationS: o.duration, OutlierFraction: o.outliers, SlipPerS: 0.02,
-		IMU: o.layout != fusiontest.GyroTurn, Counts: true, Markers: o.markers}
+		IMU: o.layout != fusiontest.GyroTurn, Counts: true, Markers: o.markers, NamePoseMarkers: !o.markers}
 	sc.CameraStampLateNs = int64(math.Round(o.lateS * 1e9))
 	if o.bumpAtS > 0 {
 		sc.Bump = &fusiontest.Bump{AtS: o.bumpAtS, DXM: 0.8, DYM: 0.6, DRad: 0.35}

@@ -1039,7 +1039,12 @@ type SnapshotEntry struct {
 	// Measurement, a pose fix that named its marker (version 15): the 32-bit
 	// FNV-1a hash of PoseFix.marker, never 0 (absent: no marker named, and
 	// in older versions). Move recovery tells markers apart by it.
-	MarkerKey     uint32 `protobuf:"varint,22,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	MarkerKey uint32 `protobuf:"varint,22,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	// Odometry (version 17): the factor of the IMU slip comparison that
+	// step_covariance and scrub_var_rad2 carry, which a reseed or move
+	// recovery takes back from the steps after it (absent: none, and in
+	// older versions).
+	SlipFactor    float64 `protobuf:"fixed64,23,opt,name=slip_factor,json=slipFactor,proto3" json:"slip_factor,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1224,6 +1229,13 @@ func (x *SnapshotEntry) GetLandmarkSeeded() bool {
 func (x *SnapshotEntry) GetMarkerKey() uint32 {
 	if x != nil {
 		return x.MarkerKey
+	}
+	return 0
+}
+
+func (x *SnapshotEntry) GetSlipFactor() float64 {
+	if x != nil {
+		return x.SlipFactor
 	}
 	return 0
 }
@@ -2155,7 +2167,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
 	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\x12J\n" +
-	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\xce\x05\n" +
+	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\xef\x05\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -2181,7 +2193,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\blandmark\x18\x14 \x01(\x05R\blandmark\x12'\n" +
 	"\x0flandmark_seeded\x18\x15 \x01(\bR\x0elandmarkSeeded\x12\x1d\n" +
 	"\n" +
-	"marker_key\x18\x16 \x01(\rR\tmarkerKey\"\xe6\x02\n" +
+	"marker_key\x18\x16 \x01(\rR\tmarkerKey\x12\x1f\n" +
+	"\vslip_factor\x18\x17 \x01(\x01R\n" +
+	"slipFactor\"\xe6\x02\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +

@@ -200,9 +200,9 @@ func (r *Robot) replayFrom(i int) {
 
 // reserve makes room for n more entries. While the window is still
 // filling, and once what it holds spans an eighth of it, the room is what
-// the whole window will hold at the rates seen so far, twice over
-// (dropFront moves the dropped entries out once they are as many as the
-// live ones), up to maxReserve entries: one allocation where growing as
+// the whole window will hold at the rates seen so far, windowSlack+1
+// times over (dropFront moves the dropped entries out once they are
+// windowSlack times the live ones), up to maxReserve entries: one allocation where growing as
 // append does took about ten, each copying the entries before, in the
 // robot's first second (BenchmarkRobotRates). Beyond that, or with too
 // short a span to tell a rate, it grows as append does.
@@ -213,16 +213,29 @@ func (r *Robot) reserve(n int) {
 	want := len(r.ents) + n
 	if span := r.newest - r.baseT; span >= r.cfg.WindowNs/8 && span < r.cfg.WindowNs {
 		full := float64(len(r.live())) * float64(r.cfg.WindowNs) / float64(span)
-		want = max(want, min(2*int(full)+64, maxReserve))
+		want = max(want, min((windowSlack+1)*int(full)+64, maxReserve))
+	} else if want <= maxReserve {
+		// Doubling, as append would, but not past maxReserve: a window
+		// of maxWindowEntries (microsecond stamps) then stays within it.
+		want = max(want, min(2*cap(r.ents), maxReserve))
 	}
 	if want > len(r.ents)+n {
-		r.ents = slices.Grow(r.ents, want-len(r.ents))
+		// Not slices.Grow, which may round want up by append's steps.
+		ents := make([]entry, len(r.ents), want)
+		copy(ents, r.ents)
+		r.ents = ents
 	}
 }
 
-// maxReserve bounds what reserve sets aside (2 MB of entries); a window
-// that needs more grows as append grows it.
-const maxReserve = 4096
+// windowSlack is how many times the live entries the dropped ones may be
+// before dropFront moves them out. maxReserve bounds what reserve sets
+// aside: room for the most entries a window keeps (maxWindowEntries)
+// windowSlack+1 times, 3.4 MB; a window that needs more grows as append
+// grows it.
+const (
+	windowSlack = 2
+	maxReserve  = (windowSlack+1)*maxWindowEntries + 64
+)
 
 // appendOdo appends an odometry entry ending after every live entry.
 func (r *Robot) appendOdo(e *entry) {
@@ -425,15 +438,19 @@ func (r *Robot) dropFront(k int) {
 	}
 	r.baseT = live[k-1].t1
 	r.head += k
-	// The dropped entries are moved out once there are as many as live
-	// ones (and at least 64): each entry is copied at most once on
-	// average, and the slice stays near twice the window (a window of 1 s
-	// at 310 inputs a second is 160 kB). Waiting for 1024 dropped entries
-	// as before made a new robot grow it to four times that, reallocating
-	// as it went, in its first seconds (BenchmarkRobotRates).
-	if r.head >= 64 && r.head >= len(r.ents)-r.head {
+	// The dropped entries are moved out once there are twice as many as
+	// live ones (and at least 64): each entry is copied half a time on
+	// average as it leaves, and the slice stays near three times the
+	// window (a window of 1 s at 310 inputs a second is 160 kB). The
+	// room past the live entries is not cleared: entries hold no
+	// pointers, and each is written whole when appended. At robot rates
+	// the copy and the clearing were 26 of the 1,100 cache lines a sample
+	// touches cold, moving each entry once (BenchmarkRatesPathCold under
+	// callgrind, session 25). Waiting for 1024 dropped entries, as before
+	// that, made a new robot grow the slice to four times the window,
+	// reallocating as it went, in its first seconds (BenchmarkRobotRates).
+	if r.head >= 64 && r.head >= windowSlack*(len(r.ents)-r.head) {
 		n := copy(r.ents, r.ents[r.head:])
-		clear(r.ents[n:])
 		r.ents = r.ents[:n]
 		r.head = 0
 	}

@@ -348,7 +348,36 @@ func median(v []float64) float64 {
 // for what the service's own path does, which RobotRates' CPU figure,
 // moved by the host, cannot show. Its instruction count does not move
 // with the host: run it under callgrind (DEVELOPERS.md, "Benchmarks").
-func BenchmarkRatesPath(b *testing.B) {
+func BenchmarkRatesPath(b *testing.B) { ratesPath(b, nil) }
+
+// BenchmarkRatesPathCold is BenchmarkRatesPath with the caches made cold
+// before each sample, as the transport's work between two samples of a
+// robot leaves them in RobotRates: 2 MB written, a 64-byte line at a
+// time. Its figure is cold-ns/sample, the samples' own time (a clock read
+// on either side of each); ns/op includes the writing. Under callgrind's
+// cache simulation (DEVELOPERS.md, "Benchmarks") it counts the cache
+// lines, of code and of data, that a sample's path touches: what the path
+// costs where it runs, as no warm figure shows.
+func BenchmarkRatesPathCold(b *testing.B) { ratesPath(b, make([]byte, 2<<20)) }
+
+// evictSink keeps evictCaches' loads from being optimised away.
+var evictSink byte
+
+// evictCaches writes every 64-byte line of buf.
+//
+//go:noinline
+func evictCaches(buf []byte) {
+	var x byte
+	for i := 0; i < len(buf); i += 64 {
+		x += buf[i]
+		buf[i] = x
+	}
+	evictSink = x
+}
+
+// ratesPath is BenchmarkRatesPath; with evict (not nil), each sample is
+// taken after evictCaches(evict) and timed alone (cold-ns/sample).
+func ratesPath(b *testing.B, evict []byte) {
 	samp, stampNs, cfg := ratesSamples()
 	phases := ratesPhases()
 	type item struct {
@@ -370,10 +399,11 @@ func BenchmarkRatesPath(b *testing.B) {
 	// A stream's own: its slab and decoder of requests, its outbox and
 	// its scratch, as Ingest makes them.
 	type stream struct {
-		sl  *slab
-		dec *requestDecoder
-		ob  *outbox
-		sc  *scratch
+		sl   *slab
+		dec  *requestDecoder
+		ob   *outbox
+		sc   *scratch
+		reqs []arrivedRequest
 	}
 	var s *Server
 	var streams []stream
@@ -390,7 +420,7 @@ func BenchmarkRatesPath(b *testing.B) {
 			if _, err := s.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: fmt.Sprintf("cart-%d", k), Config: cfg}); err != nil {
 				b.Fatal(err)
 			}
-			streams = append(streams, stream{&slab{}, &requestDecoder{}, newOutbox(), &scratch{verdicts: slab{next: verdictSlabStart}}})
+			streams = append(streams, stream{&slab{}, &requestDecoder{}, newOutbox(), &scratch{verdicts: slab{next: verdictSlabStart}}, nil})
 		}
 	}
 	fresh()
@@ -398,10 +428,25 @@ func BenchmarkRatesPath(b *testing.B) {
 	cd := newCodec()
 	batch := make([]*arrivedRequest, 1)
 	i := 0
+	var took time.Duration
 	b.ReportAllocs()
 	for b.Loop() {
+		var t0 time.Time
+		if evict != nil {
+			evictCaches(evict)
+			t0 = time.Now()
+		}
 		st := &streams[items[i].robot]
-		if out := ratesPathTake(s, cd, items[i].req, st.sl, st.dec, st.ob, st.sc, batch); out.Verdict == pb.Verdict_VERDICT_INVALID {
+		if len(st.reqs) == 0 {
+			st.reqs = make([]arrivedRequest, requestBlock) // as receive does
+		}
+		req := &st.reqs[0]
+		st.reqs = st.reqs[1:]
+		out := ratesPathTake(s, cd, items[i].req, req, st.sl, st.dec, st.ob, st.sc, batch)
+		if evict != nil {
+			took += time.Since(t0)
+		}
+		if out.Verdict == pb.Verdict_VERDICT_INVALID {
 			b.Fatalf("sample %d refused: %s", i, out.Reason)
 		}
 		i++
@@ -412,6 +457,9 @@ func BenchmarkRatesPath(b *testing.B) {
 			b.StartTimer()
 		}
 	}
+	if evict != nil {
+		b.ReportMetric(float64(took.Nanoseconds())/float64(b.N), "cold-ns/sample")
+	}
 }
 
 // ratesPathTake decodes one request and takes it as a request taken where
@@ -419,8 +467,8 @@ func BenchmarkRatesPath(b *testing.B) {
 // it alone (--toggle-collect='*ratesPathTake*').
 //
 //go:noinline
-func ratesPathTake(s *Server, cd codec, wire mem.BufferSlice, sl *slab, dec *requestDecoder, ob *outbox, sc *scratch, batch []*arrivedRequest) *encodedResponse {
-	req := &arrivedRequest{slab: sl, dec: dec}
+func ratesPathTake(s *Server, cd codec, wire mem.BufferSlice, req *arrivedRequest, sl *slab, dec *requestDecoder, ob *outbox, sc *scratch, batch []*arrivedRequest) *encodedResponse {
+	req.slab, req.dec = sl, dec
 	if err := cd.Unmarshal(wire, req); err != nil {
 		panic(err)
 	}

@@ -137,7 +137,9 @@ func (r *robot) route(run []*arrivedRequest, out []encodedResponse, entries []in
 	for _, k := range entries {
 		resp := &out[k].IngestResponse
 		if len(resp.Resolved) > 0 {
-			own := resp.Resolved[:0:0]
+			// Kept in place: the response's own slice, which the journal's
+			// record has encoded already.
+			own := resp.Resolved[:0]
 			for _, res := range resp.Resolved {
 				h, ok := r.holders[res.Sequence]
 				if !ok {

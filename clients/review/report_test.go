@@ -5,32 +5,11 @@ import (
 	"context"
 	"errors"
 	"io"
-	"sync/atomic"
 	"testing"
 
+	"reckon.example/clients/internal/checkctx"
 	"reckon.example/fusion/fusiontest"
 )
-
-// checkCounter is a context cancelled at its nth Err call; it counts the
-// calls.
-type checkCounter struct {
-	context.Context
-	cancel context.CancelFunc
-	n      int64
-	checks atomic.Int64
-}
-
-func newCheckCounter(n int64) *checkCounter {
-	ctx, cancel := context.WithCancel(context.Background())
-	return &checkCounter{Context: ctx, cancel: cancel, n: n}
-}
-
-func (c *checkCounter) Err() error {
-	if c.checks.Add(1) == c.n {
-		c.cancel()
-	}
-	return c.Context.Err()
-}
 
 // TestWriteHTMLInterrupted: drawing a report (one run, a comparison, a
 // calibration), interrupted at any of its checks (one before each figure,
@@ -62,17 +41,17 @@ func TestWriteHTMLInterrupted(t *testing.T) {
 			if err := draw(done, &b); !errors.Is(err, context.Canceled) || b.Len() > 0 {
 				t.Fatalf("interrupted before it began: %v, %d bytes written; want context.Canceled and nothing", err, b.Len())
 			}
-			whole := newCheckCounter(-1)
+			whole := checkctx.CancelAfter(-1)
 			if err := draw(whole, &b); err != nil || b.Len() == 0 {
 				t.Fatalf("the whole report: %v, %d bytes", err, b.Len())
 			}
-			total := whole.checks.Load()
+			total := whole.Checks()
 			// Each figure is a check: six for one run, more for two.
 			if total < 6 {
 				t.Fatalf("%d checks for an interrupt in the whole report, want one a figure at least", total)
 			}
 			for n := int64(1); n <= total; n++ {
-				ctx := newCheckCounter(n)
+				ctx := checkctx.CancelAfter(n)
 				b.Reset()
 				err := draw(ctx, &b)
 				if !errors.Is(err, context.Canceled) || b.Len() > 0 {
@@ -81,7 +60,7 @@ func TestWriteHTMLInterrupted(t *testing.T) {
 				// A figure not begun checks once and is skipped; one begun
 				// is finished (tens of milliseconds); then the figures'
 				// end checks once more.
-				if after := ctx.checks.Load() - n; after > 7 {
+				if after := ctx.Checks() - n; after > 7 {
 					t.Errorf("interrupted at check %d of %d: %d checks more before it returned", n, total, after)
 				}
 			}

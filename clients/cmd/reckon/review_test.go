@@ -9,31 +9,10 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
-	"sync/atomic"
 	"testing"
+
+	"reckon.example/clients/internal/checkctx"
 )
-
-// cancelAfter is a context cancelled at the n-th call of its Err, so that
-// a command that checks it as it works is interrupted at a point of its
-// work, whatever the speed of the machine; checks counts the calls.
-type cancelAfter struct {
-	context.Context
-	cancel context.CancelFunc
-	n      int64
-	checks atomic.Int64
-}
-
-func newCancelAfter(n int64) *cancelAfter {
-	ctx, cancel := context.WithCancel(context.Background())
-	return &cancelAfter{Context: ctx, cancel: cancel, n: n}
-}
-
-func (c *cancelAfter) Err() error {
-	if c.checks.Add(1) == c.n {
-		c.cancel()
-	}
-	return c.Context.Err()
-}
 
 // TestReviewInterrupted: review and compare interrupted (Ctrl-C, SIGTERM)
 // at any point, from the replay's first input through the drawing of the
@@ -57,12 +36,12 @@ func TestReviewInterrupted(t *testing.T) {
 				return []string{"-config", exampleConfig, "-samples", exampleSamples, "-out", out}
 			}
 			// The whole command, to count its checks.
-			whole := newCancelAfter(math.MaxInt64)
+			whole := checkctx.CancelAfter(math.MaxInt64)
 			var out bytes.Buffer
 			if err := run(whole, args(filepath.Join(t.TempDir(), "whole")), &out); err != nil {
 				t.Fatalf("%v\n%s", err, out.String())
 			}
-			total := whole.checks.Load()
+			total := whole.Checks()
 			if total < 10 {
 				t.Fatalf("%d checks for an interrupt in the whole %s, want one an input at least", total, name)
 			}
@@ -77,7 +56,7 @@ func TestReviewInterrupted(t *testing.T) {
 				points = append(points, n)
 			}
 			for _, n := range points {
-				ctx := newCancelAfter(n)
+				ctx := checkctx.CancelAfter(n)
 				dir := filepath.Join(t.TempDir(), "out")
 				out.Reset()
 				err := run(ctx, args(dir), &out)
@@ -89,7 +68,7 @@ func TestReviewInterrupted(t *testing.T) {
 				// the drawing draws no figure it had not begun, each of
 				// which checks once (six in a run's report), then checks
 				// once more.
-				if after := ctx.checks.Load() - n; after > 7 {
+				if after := ctx.Checks() - n; after > 7 {
 					t.Errorf("interrupted at check %d of %d: %d checks more before it returned", n, total, after)
 				}
 				if _, err := os.Stat(dir); !errors.Is(err, fs.ErrNotExist) || strings.Contains(out.String(), "report:") {

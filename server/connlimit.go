@@ -18,15 +18,31 @@ import (
 // a client could open connections until the process has no descriptor
 // left.
 func (s *Server) LimitConnections(l net.Listener) net.Listener {
-	return &connLimit{Listener: l, max: s.opt.Limits.MaxConnections, log: s.opt.Logger, metrics: s.opt.Metrics}
+	m := s.opt.Metrics
+	return &connLimit{Listener: l, max: s.opt.Limits.MaxConnections, flag: "-max-connections", log: s.opt.Logger,
+		count: m.connections, refuse: m.connectionRefused}
 }
 
-// connLimit is the listener of LimitConnections.
+// LimitHTTPConnections is LimitConnections for an HTTP listener of the
+// daemon, server naming it ("metrics" or "view"): at most
+// Limits.MaxHTTPConnections open connections, counted apart from the gRPC
+// listener's and every other's (reckon_http_connections and
+// reckon_http_connections_refused_total, label server), so that a flood
+// of one listener takes no place of another's clients.
+func (s *Server) LimitHTTPConnections(l net.Listener, server string) net.Listener {
+	m := s.opt.Metrics
+	return &connLimit{Listener: l, max: s.opt.Limits.MaxHTTPConnections, flag: "-max-http-connections", log: s.opt.Logger.With("server", server),
+		count: func(n int) { m.httpConnections(server, n) }, refuse: func() { m.httpConnectionRefused(server) }}
+}
+
+// connLimit is the listener of LimitConnections and LimitHTTPConnections.
 type connLimit struct {
 	net.Listener
-	max     int
-	log     *slog.Logger
-	metrics *Metrics
+	max    int
+	flag   string // the reckond flag that sets max
+	log    *slog.Logger
+	count  func(open int) // called with the open connections on each change
+	refuse func()         // called for each connection refused
 
 	mu      sync.Mutex
 	open    int // connections accepted and not closed; mu protects it
@@ -54,14 +70,14 @@ func (l *connLimit) admit() bool {
 	defer l.mu.Unlock()
 	if l.open < l.max {
 		l.open++
-		l.metrics.connections(l.open)
+		l.count(l.open)
 		return true
 	}
 	if l.refused == 0 {
-		l.log.Warn("connections at the limit: new ones are closed at once until one closes (-max-connections)", "listen", l.Addr().String(), "limit", l.max)
+		l.log.Warn("connections at the limit: new ones are closed at once until one closes ("+l.flag+")", "listen", l.Addr().String(), "limit", l.max)
 	}
 	l.refused++
-	l.metrics.connectionRefused()
+	l.refuse()
 	return false
 }
 
@@ -70,7 +86,7 @@ func (l *connLimit) release() {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	l.open--
-	l.metrics.connections(l.open)
+	l.count(l.open)
 	if l.refused > 0 {
 		l.log.Info("connections below the limit again", "listen", l.Addr().String(), "limit", l.max, "refused", l.refused)
 		l.refused = 0

@@ -36,6 +36,12 @@ type Limits struct {
 	// LimitConnections wraps (2048; -max-connections): one more is closed
 	// at once. Each holds a file descriptor, which the journals need too.
 	MaxConnections int
+	// MaxHTTPConnections bounds the open connections of each of the
+	// daemon's HTTP listeners, the metrics and the live view, on its own
+	// (64; -max-http-connections): one more is closed at once. A live
+	// view's event stream holds one, so it should be more than
+	// MaxViewers.
+	MaxHTTPConnections int
 }
 
 // withDefaults returns l with its zero fields set to the defaults.
@@ -52,6 +58,7 @@ func (l Limits) withDefaults() Limits {
 	def(&l.MaxViewers, 16)
 	def(&l.MaxIngestStreams, 2048)
 	def(&l.MaxConnections, 2048)
+	def(&l.MaxHTTPConnections, 64)
 	return l
 }
 

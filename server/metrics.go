@@ -30,6 +30,8 @@ type Metrics struct {
 	viewConf prometheus.Counter
 	conns    prometheus.Gauge
 	connRef  prometheus.Counter
+	httpConn *prometheus.GaugeVec
+	httpRef  *prometheus.CounterVec
 	perRobot robotVecs
 }
 
@@ -57,9 +59,13 @@ func NewMetrics() *Metrics {
 	m.conns = prometheus.NewGauge(prometheus.GaugeOpts{Name: "reckon_connections", Help: "Open gRPC connections (Server.LimitConnections)."})
 	m.connRef = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_connections_refused_total",
 		Help: "Connections closed at once because -max-connections were open."})
+	m.httpConn = prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "reckon_http_connections",
+		Help: "Open connections of the metrics and live view HTTP servers (Server.LimitHTTPConnections), by server."}, []string{"server"})
+	m.httpRef = prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_http_connections_refused_total",
+		Help: "Connections of an HTTP server closed at once because -max-http-connections of its were open, by server."}, []string{"server"})
 	m.perRobot = newRobotVecs()
 	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged, m.viewers, m.viewConf,
-		m.conns, m.connRef,
+		m.conns, m.connRef, m.httpConn, m.httpRef,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
 	m.reg.MustRegister(m.perRobot.collectors()...)
 	return m
@@ -145,5 +151,17 @@ func (m *Metrics) connections(n int) {
 func (m *Metrics) connectionRefused() {
 	if m != nil {
 		m.connRef.Inc()
+	}
+}
+
+func (m *Metrics) httpConnections(server string, n int) {
+	if m != nil {
+		m.httpConn.WithLabelValues(server).Set(float64(n))
+	}
+}
+
+func (m *Metrics) httpConnectionRefused(server string) {
+	if m != nil {
+		m.httpRef.WithLabelValues(server).Inc()
 	}
 }

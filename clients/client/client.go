@@ -288,11 +288,42 @@ func (s *Session) Last() uint64 {
 	return s.next
 }
 
-// SendAs resends a sample with the client sequence number seq it had in
-// an earlier stream of this session (Resume); the service answers it with
-// its original verdict if it took it, and takes it otherwise.
+// ErrSequenceNotGiven is returned by SendAs for a client sequence number
+// the session has not given (0, or past Last): Send would give it to
+// another sample later, which the service would then answer with this
+// one's verdict and not take.
+var ErrSequenceNotGiven = errors.New("client sequence not given by this session")
+
+// SendAs resends a sample with the client sequence number seq it had
+// before, on this stream or an earlier one of this session (Resume); the
+// service answers it with its original verdict if it took it, and takes
+// it otherwise. A seq of 0 or past Last is refused with
+// ErrSequenceNotGiven, sending nothing; a caller numbering samples itself
+// gives its numbers out with Skip first.
 func (s *Session) SendAs(seq uint64, sample *pb.Sample) error {
+	s.mu.Lock()
+	last := s.next
+	s.mu.Unlock()
+	if seq == 0 || seq > last {
+		return fmt.Errorf("Session.SendAs: client sequence %d (last is %d; send a new sample with Send): %w", seq, last, ErrSequenceNotGiven)
+	}
 	return s.stream.Send(&pb.IngestRequest{Robot: s.robot, ClientSequence: seq, Sample: sample, SessionId: s.id})
+}
+
+// Skip gives out the client sequence numbers up to last without sending:
+// the next Send gives last+1, and SendAs takes numbers up to last. A
+// caller that numbers its samples itself (reckon feed numbers each by its
+// place in the file, so that a feed continuing a session sends each under
+// the number it had) skips the numbers of the samples it does not send.
+// A last below Last is refused: those numbers are given already.
+func (s *Session) Skip(last uint64) error {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if last < s.next {
+		return fmt.Errorf("Session.Skip: to %d, below the last number given (%d)", last, s.next)
+	}
+	s.next = last
+	return nil
 }
 
 // NotTaken tells whether a verdict says the service did not take its

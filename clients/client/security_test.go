@@ -2,34 +2,57 @@ package client
 
 import (
 	"errors"
+	"os"
+	"strconv"
 	"strings"
 	"testing"
 )
 
-// TestIsLoopback: the addresses a token may travel to in plain text.
+// TestIsLoopback: the targets a token may travel to in plain text, from
+// testdata/reference/loopback-targets.tsv, the table the Python client's
+// is_loopback is tested against too (test_samples.py), so that both
+// accept the same forms.
 func TestIsLoopback(t *testing.T) {
-	cases := []struct {
-		addr string
-		want bool
-	}{
-		{"127.0.0.1:7460", true},
-		{"127.3.2.1:7460", true},
-		{"[::1]:7460", true},
-		{"localhost:7460", true},
-		{"dns:///localhost:7460", true},
-		{"unix:///run/reckon.sock", true},
-		{"0.0.0.0:7460", false},
-		{"10.0.0.5:7460", false},
-		{"[2001:db8::1]:7460", false},
-		{"cart-7.greenhouse.lan:7460", false},
-		{"dns:///cart-7.greenhouse.lan:7460", false},
-		{"localhost.evil.example:7460", false},
-	}
-	for _, c := range cases {
-		if got := IsLoopback(c.addr); got != c.want {
-			t.Errorf("IsLoopback(%q) = %v, want %v", c.addr, got, c.want)
+	for _, c := range loopbackTargets(t) {
+		if got := IsLoopback(c.target); got != c.want {
+			t.Errorf("IsLoopback(%q) = %v, want %v", c.target, got, c.want)
 		}
 	}
+}
+
+// loopbackTargets reads the shared table of targets: one a line, a tab,
+// then true or false; lines starting with # are comments.
+func loopbackTargets(t *testing.T) []struct {
+	target string
+	want   bool
+} {
+	t.Helper()
+	b, err := os.ReadFile("../../testdata/reference/loopback-targets.tsv")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var out []struct {
+		target string
+		want   bool
+	}
+	for i, line := range strings.Split(strings.TrimSpace(string(b)), "\n") {
+		if strings.HasPrefix(line, "#") {
+			continue
+		}
+		target, want, ok := strings.Cut(line, "\t")
+		w, err := strconv.ParseBool(want)
+		if !ok || err != nil {
+			t.Fatalf("loopback-targets.tsv:%d: %q is not TARGET<tab>true|false", i+1, line)
+		}
+		out = append(out, struct {
+			target string
+			want   bool
+		}{target, w})
+	}
+	if len(out) < 20 {
+		t.Fatalf("loopback-targets.tsv: %d targets, want the whole table", len(out))
+	}
+	return out
 }
 
 // TestDialRefusesPlaintextToken: a token without TLS to an address that is

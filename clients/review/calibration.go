@@ -1,6 +1,7 @@
 package review
 
 import (
+	"context"
 	"fmt"
 	"html"
 	"io"
@@ -33,7 +34,13 @@ type Calibration struct {
 // sensor's mean NIS against its 95% band and, with truth, the filtered
 // track's mean NEES and RMS position error.
 func WriteCalibrationHTML(w io.Writer, title string, cal Calibration, before, after *Run) error {
-	return writeHTML(w, title, func(b *strings.Builder) { calibrationHTML(b, cal, before, after) }, []*Run{before, after})
+	return WriteCalibrationHTMLContext(context.Background(), w, title, cal, before, after)
+}
+
+// WriteCalibrationHTMLContext is WriteCalibrationHTML stopping once ctx is
+// done, as WriteHTMLContext does.
+func WriteCalibrationHTMLContext(ctx context.Context, w io.Writer, title string, cal Calibration, before, after *Run) error {
+	return writeHTML(ctx, w, title, func(b *strings.Builder) { calibrationHTML(b, cal, before, after) }, []*Run{before, after})
 }
 
 func calibrationHTML(b *strings.Builder, cal Calibration, before, after *Run) {

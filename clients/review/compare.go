@@ -1,6 +1,7 @@
 package review
 
 import (
+	"context"
 	"fmt"
 	"html"
 	"image/color"
@@ -26,7 +27,7 @@ func cssOf(c color.RGBA) string { return fmt.Sprintf("#%02x%02x%02x", c.R, c.G, 
 
 // compareHTML writes the comparison of runs of one recording: a table of
 // their differences and their tracks, deviations and NIS overlaid.
-func compareHTML(b *strings.Builder, runs []*Run) error {
+func compareHTML(ctx context.Context, b *strings.Builder, runs []*Run) error {
 	b.WriteString("<h2>Differences</h2>\n<table class=\"differences\"><tr><th></th>")
 	for i, run := range runs {
 		fmt.Fprintf(b, "<th style=\"color:%s\">%s</th>", cssOf(runColour(i)), html.EscapeString(run.Label))
@@ -56,7 +57,7 @@ func compareHTML(b *strings.Builder, runs []*Run) error {
 		problemsHTML(b, run)
 	}
 	b.WriteString("<h2>Overlaid</h2>\n")
-	figs, err := compareFigures(runs)
+	figs, err := compareFigures(ctx, runs)
 	if err != nil {
 		return err
 	}
@@ -119,8 +120,12 @@ func differences(runs []*Run) []difference {
 }
 
 // compareFigures overlays the runs: their tracks, position deviations and
-// the NIS of each sensor, on shared axes.
-func compareFigures(runs []*Run) ([]Figure, error) {
+// the NIS of each sensor, on shared axes. It stops with ctx's error once
+// ctx is done, before the next figure.
+func compareFigures(ctx context.Context, runs []*Run) ([]Figure, error) {
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
 	first := runs[0]
 	var figs []Figure
 	// The tracks.
@@ -190,7 +195,7 @@ func compareFigures(runs []*Run) ([]Figure, error) {
 		line(p, errs, runColour(i), vg.Points(1), "error against truth, "+run.Label, false)
 	}
 	p.Legend.Top = true
-	f, err := compareTime(runs, "cmp-deviation", "The 95% position radius (dashed) and, with truth, the position error (solid) of each run; shaded: each run's stretches not to be trusted.", p, vg.Points(300), nil)
+	f, err := compareTime(ctx, runs, "cmp-deviation", "The 95% position radius (dashed) and, with truth, the position error (solid) of each run; shaded: each run's stretches not to be trusted.", p, vg.Points(300), nil)
 	if err != nil {
 		return nil, err
 	}
@@ -244,7 +249,7 @@ func compareFigures(runs []*Run) ([]Figure, error) {
 		}
 		p.Y.Min, p.Y.Max = lo/1.5, hi*1.5
 		p.Legend.Top = true
-		f, err := compareTime(runs, "cmp-nis-"+id, "NIS of "+id+" in each run: dots accepted, crosses refused; lines are each run's gate.", p, vg.Points(280), func(o *overlay) {
+		f, err := compareTime(ctx, runs, "cmp-nis-"+id, "NIS of "+id+" in each run: dots accepted, crosses refused; lines are each run's gate.", p, vg.Points(280), func(o *overlay) {
 			x0, _, x1, _ := o.box()
 			for i, g := range gates {
 				if math.IsNaN(g) {
@@ -264,7 +269,10 @@ func compareFigures(runs []*Run) ([]Figure, error) {
 
 // compareTime renders a time figure of a comparison, with each run's
 // stretches not to be trusted shaded in its colour.
-func compareTime(runs []*Run, id, caption string, p *plot.Plot, h vg.Length, extra func(o *overlay)) (Figure, error) {
+func compareTime(ctx context.Context, runs []*Run, id, caption string, p *plot.Plot, h vg.Length, extra func(o *overlay)) (Figure, error) {
+	if err := ctx.Err(); err != nil {
+		return Figure{}, err
+	}
 	first := runs[0]
 	f, err := first.timeFigureWith(id, caption, p, h, func(o *overlay) {
 		_, y0, _, y1 := o.box()

@@ -2,6 +2,7 @@ package review
 
 import (
 	"bytes"
+	"context"
 	"fmt"
 	"html"
 	"image/color"
@@ -506,7 +507,11 @@ func outliers(o *overlay, pts plotter.XYs, what, colour string) {
 
 // Figures draws a run's figures, each in a goroutine of its own: they
 // share nothing but the run, which they only read.
-func (run *Run) Figures() ([]Figure, error) {
+func (run *Run) Figures() ([]Figure, error) { return run.figures(context.Background()) }
+
+// figures is Figures stopping once ctx is done, with its error: a figure
+// not yet begun is not drawn.
+func (run *Run) figures(ctx context.Context) ([]Figure, error) {
 	draw := []func() (Figure, error){run.trackFigure, run.positionStdFigure, run.headingStdFigure}
 	sensors := make([]string, 0, len(run.NIS))
 	for k := range run.NIS {
@@ -523,9 +528,16 @@ func (run *Run) Figures() ([]Figure, error) {
 	errs := make([]error, len(draw))
 	var wg sync.WaitGroup
 	for i, f := range draw {
-		wg.Go(func() { figs[i], errs[i] = f() })
+		wg.Go(func() {
+			if errs[i] = ctx.Err(); errs[i] == nil {
+				figs[i], errs[i] = f()
+			}
+		})
 	}
 	wg.Wait()
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
 	for _, err := range errs {
 		if err != nil {
 			return nil, err

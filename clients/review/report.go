@@ -1,6 +1,7 @@
 package review
 
 import (
+	"context"
 	"fmt"
 	"html"
 	"io"
@@ -226,9 +227,10 @@ func notesHTML(b *strings.Builder, runs []*Run) {
 }
 
 // runHTML writes one run's problems, summary and figures; n numbers the
-// run's figures in the page.
-func runHTML(b *strings.Builder, run *Run, n int) error {
-	figs, err := run.Figures()
+// run's figures in the page. It stops with ctx's error once ctx is done,
+// at the next figure.
+func runHTML(ctx context.Context, b *strings.Builder, run *Run, n int) error {
+	figs, err := run.figures(ctx)
 	if err != nil {
 		return err
 	}
@@ -252,12 +254,20 @@ func runHTML(b *strings.Builder, run *Run, n int) error {
 // (inline styles, SVG figures and a small script for zoom and pan; no
 // network).
 func WriteHTML(w io.Writer, title string, runs ...*Run) error {
-	return writeHTML(w, title, nil, runs)
+	return WriteHTMLContext(context.Background(), w, title, runs...)
 }
 
-// writeHTML is WriteHTML with top, if set, writing a section before the
-// runs' own.
-func writeHTML(w io.Writer, title string, top func(b *strings.Builder), runs []*Run) error {
+// WriteHTMLContext is WriteHTML stopping once ctx is done, with its
+// error: the figures are drawn one by one (at most tens of milliseconds
+// each), ctx is checked before each, and the page goes to w only once
+// whole, so that w gets nothing from a report stopped part-way.
+func WriteHTMLContext(ctx context.Context, w io.Writer, title string, runs ...*Run) error {
+	return writeHTML(ctx, w, title, nil, runs)
+}
+
+// writeHTML is WriteHTMLContext with top, if set, writing a section before
+// the runs' own.
+func writeHTML(ctx context.Context, w io.Writer, title string, top func(b *strings.Builder), runs []*Run) error {
 	var b strings.Builder
 	b.WriteString("<!doctype html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><meta name=\"viewport\" content=\"width=device-width\"><title>" + html.EscapeString(title) + "</title><style>" + css + "</style></head><body>\n")
 	b.WriteString("<h1>" + html.EscapeString(title) + "</h1>\n")
@@ -267,22 +277,25 @@ func writeHTML(w io.Writer, title string, top func(b *strings.Builder), runs []*
 	}
 	notesHTML(&b, runs)
 	if len(runs) == 1 {
-		if err := runHTML(&b, runs[0], 0); err != nil {
+		if err := runHTML(ctx, &b, runs[0], 0); err != nil {
 			return err
 		}
 	} else if len(runs) > 1 {
-		if err := compareHTML(&b, runs); err != nil {
+		if err := compareHTML(ctx, &b, runs); err != nil {
 			return err
 		}
 		for i, run := range runs {
 			b.WriteString("<details class=\"run\"><summary>The review of " + html.EscapeString(run.Label) + " alone</summary>\n")
-			if err := runHTML(&b, run, i); err != nil {
+			if err := runHTML(ctx, &b, run, i); err != nil {
 				return err
 			}
 			b.WriteString("</details>\n")
 		}
 	}
 	b.WriteString("<script>" + script + "</script>\n</body></html>\n")
+	if err := ctx.Err(); err != nil {
+		return err
+	}
 	_, err := io.WriteString(w, b.String())
 	return err
 }

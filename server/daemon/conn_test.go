@@ -6,7 +6,10 @@ import (
 	"io"
 	"log/slog"
 	"net"
+	"net/http"
 	"os"
+	"regexp"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -143,4 +146,135 @@ func TestConnectionLimit(t *testing.T) {
 	if n := strings.Count(s, "connections below the limit again"); n != 1 {
 		t.Errorf("the end of the limit logged %d times, want once:\n%s", n, s)
 	}
+}
+
+// TestHTTPConnectionLimit: with MaxHTTPConnections 4, four idle
+// connections held on the view and four on the metrics listener, each
+// further connection to either is closed at once without an answer to its
+// request, while the gRPC service serves: a robot's ingest takes every
+// sample, and its journal restores them all after a restart. The limits
+// are apart: the view's flood leaves the metrics served, and the
+// refusals are counted by server. Once the held connections close, the
+// metrics serve again. Before, every connection was served, each holding
+// a file descriptor the journals need.
+func TestHTTPConnectionLimit(t *testing.T) {
+	samp, cfg := samples(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 5, DurationS: 2})
+	dir := t.TempDir()
+	logger, logs := fileLog(t, slog.LevelInfo)
+	viewAddr := make(chan string, 1)
+	dc := Config{MetricsListen: "127.0.0.1:0", ViewListen: "127.0.0.1:0", ViewReady: func(a string) { viewAddr <- a },
+		Robots:  map[string]*pb.RobotConfig{"cart": cfg},
+		Options: server.Options{JournalDir: dir, Limits: server.Limits{MaxHTTPConnections: 4, MaxViewers: 2}, Logger: logger}}
+	srv := start(t, dc)
+	view := <-viewAddr
+	hold := func(addr string) []net.Conn {
+		var held []net.Conn
+		for range 4 {
+			c, err := net.Dial("tcp", addr)
+			if err != nil {
+				t.Fatal(err)
+			}
+			held = append(held, c)
+		}
+		return held
+	}
+	// refused checks that connections past the limit get no answer to a
+	// request: the server closed them unread.
+	refused := func(addr, path string) {
+		t.Helper()
+		for i := range 10 {
+			c, err := net.Dial("tcp", addr)
+			if err != nil {
+				t.Fatal(err)
+			}
+			c.Write([]byte("GET " + path + " HTTP/1.1\r\nHost: reckon\r\n\r\n"))
+			c.SetReadDeadline(time.Now().Add(20 * time.Second))
+			got, _ := io.ReadAll(c)
+			c.Close()
+			if len(got) > 0 {
+				t.Fatalf("%s connection %d past the limit answered:\n%s", addr, i+1, got)
+			}
+		}
+	}
+	heldView := hold(view)
+	refused(view, "/")
+	if got := httpMetric(t, srv.metrics, "reckon_http_connections_refused_total", "view"); got < 10 {
+		t.Errorf(`reckon_http_connections_refused_total{server="view"} = %v, want at least 10`, got)
+	}
+	heldMetrics := hold(srv.metrics)
+	refused(srv.metrics, "/metrics")
+	api := dial(t, srv.addr, nil, "")
+	if n := feedAll(t, api, "", samp); n != len(samp) {
+		t.Errorf("%d of %d samples taken with both HTTP listeners at their limit", n, len(samp))
+	}
+	for _, c := range append(heldView, heldMetrics...) {
+		c.Close()
+	}
+	// The server sees the closes when it reads them: wait for a place.
+	var got float64
+	for deadline := time.Now().Add(30 * time.Second); ; time.Sleep(10 * time.Millisecond) {
+		if body, err := scrape(srv.metrics); err == nil {
+			got = httpMetricIn(t, body, "reckon_http_connections_refused_total", "metrics")
+			break
+		} else if time.Now().After(deadline) {
+			t.Fatalf("the metrics after the held connections closed: %v", err)
+		}
+	}
+	if got < 10 {
+		t.Errorf(`reckon_http_connections_refused_total{server="metrics"} = %v, want at least 10`, got)
+	}
+	srv.stop()
+	s := logs()
+	for _, server := range []string{"view", "metrics"} {
+		if n := strings.Count(s, "connections at the limit: new ones are closed at once until one closes (-max-http-connections)\" server="+server); n != 1 {
+			t.Errorf("the %s limit logged %d times, want once naming -max-http-connections:\n%s", server, n, s)
+		}
+	}
+	// The journal holds every sample: a restart restores them.
+	dc.Robots, dc.ViewListen, dc.ViewReady = nil, "", nil
+	again := start(t, dc)
+	defer again.stop()
+	r, err := dial(t, again.addr, nil, "").GetRobot(context.Background(), &pb.GetRobotRequest{Name: "robots/cart"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if r.GetRobot().GetInputCount() != uint64(len(samp)) {
+		t.Errorf("restored %d inputs, want %d", r.GetRobot().GetInputCount(), len(samp))
+	}
+}
+
+// scrape returns the metrics' text, or why it could not.
+func scrape(addr string) (string, error) {
+	resp, err := http.Get("http://" + addr + "/metrics")
+	if err != nil {
+		return "", err
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	return string(b), err
+}
+
+// httpMetric scrapes the metric name of the HTTP server server.
+func httpMetric(t *testing.T, addr, name, server string) float64 {
+	t.Helper()
+	body, err := scrape(addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return httpMetricIn(t, body, name, server)
+}
+
+// httpMetricIn reads the metric name of the HTTP server server from a
+// scrape's text.
+func httpMetricIn(t *testing.T, body, name, server string) float64 {
+	t.Helper()
+	m := regexp.MustCompile(`(?m)^` + name + `\{server="` + server + `"\} (\S+)$`).FindStringSubmatch(body)
+	if m == nil {
+		t.Fatalf("no metric %s{server=%q}", name, server)
+	}
+	v, err := strconv.ParseFloat(m[1], 64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return v
 }

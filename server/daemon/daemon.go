@@ -149,7 +149,7 @@ func Serve(ctx context.Context, dc Config) error {
 		return err
 	}
 	gs, hs := newGRPCServer(srv, opts)
-	hsrv, metricsAddr, err := startMetrics(&dc)
+	hsrv, metricsAddr, err := startMetrics(&dc, srv)
 	if err != nil {
 		lis.Close()
 		srv.Close()
@@ -308,7 +308,13 @@ func newGRPCServer(srv *server.Server, opts []grpc.ServerOption) (*grpc.Server, 
 
 // startMetrics serves the metrics over HTTP if dc.MetricsListen is set; it
 // returns the HTTP server (nil if off) and its address.
-func startMetrics(dc *Config) (*http.Server, string, error) {
+// Its connections are bounded (server.LimitHTTPConnections), and each
+// is timed: a request's header must come within 5 s and the whole request
+// within 10 s, the answer must be taken within 30 s, and an idle
+// connection is closed after a minute; without the idle timeout a
+// connection kept alive after a scrape stayed open for as long as its
+// client liked.
+func startMetrics(dc *Config, srv *server.Server) (*http.Server, string, error) {
 	if dc.MetricsListen == "" {
 		return nil, "", nil
 	}
@@ -318,9 +324,11 @@ func startMetrics(dc *Config) (*http.Server, string, error) {
 	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", dc.Metrics.Handler())
-	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second, ErrorLog: httpErrorLog(dc.Logger, "metrics")}
+	hsrv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second, ReadTimeout: 10 * time.Second, WriteTimeout: 30 * time.Second,
+		IdleTimeout: time.Minute, ErrorLog: httpErrorLog(dc.Logger, "metrics")}
+	limited := srv.LimitHTTPConnections(ml, "metrics")
 	go func() {
-		if err := hsrv.Serve(ml); err != nil && !errors.Is(err, http.ErrServerClosed) {
+		if err := hsrv.Serve(limited); err != nil && !errors.Is(err, http.ErrServerClosed) {
 			dc.Logger.Error("metrics server", "err", err)
 		}
 	}()

@@ -227,7 +227,8 @@ func finite(v float64) float64 {
 
 // startView serves the live view if dc.ViewListen is set, over TLS when
 // the service has a certificate; it returns the HTTP server (nil if off)
-// and its address.
+// and its address. Its connections are bounded
+// (server.LimitHTTPConnections), apart from the metrics'.
 func startView(dc *Config, srv *server.Server) (*http.Server, string, error) {
 	if dc.ViewListen == "" {
 		return nil, "", nil
@@ -238,15 +239,16 @@ func startView(dc *Config, srv *server.Server) (*http.Server, string, error) {
 	}
 	hsrv := &http.Server{Handler: viewHandler(srv, dc.Token), ReadHeaderTimeout: 5 * time.Second, IdleTimeout: time.Minute,
 		ErrorLog: httpErrorLog(dc.Logger, "view")}
-	serve := func() error { return hsrv.Serve(vl) }
+	limited := srv.LimitHTTPConnections(vl, "view")
+	serve := func() error { return hsrv.Serve(limited) }
 	if dc.TLSCert != "" {
 		tc, err := LoadTLS(dc.TLSCert, dc.TLSKey, dc.TLSClientCA)
 		if err != nil {
-			vl.Close()
+			limited.Close()
 			return nil, "", err
 		}
 		hsrv.TLSConfig = tc
-		serve = func() error { return hsrv.ServeTLS(vl, "", "") }
+		serve = func() error { return hsrv.ServeTLS(limited, "", "") }
 	}
 	go func() {
 		if err := serve(); err != nil && !errors.Is(err, http.ErrServerClosed) {

@@ -441,6 +441,6 @@ func writeCalibrationReport(ctx context.Context, stdout io.Writer, dir string, s
 		runs = append(runs, run)
 	}
 	return writeReport(ctx, stdout, st, false, runs, func(w io.Writer) error {
-		return review.WriteCalibrationHTML(w, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1])
+		return review.WriteCalibrationHTMLContext(ctx, w, "Calibration of "+runs[0].Robot, cal, runs[0], runs[1])
 	})
 }

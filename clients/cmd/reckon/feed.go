@@ -233,9 +233,15 @@ func (fd *feeder) run(ctx context.Context, sr sampleSource) error {
 		} else if !fd.pace.wait(ctx, convert.SampleStamp(s)) {
 			break
 		}
+		// The numbers of the samples before -from-line are given out
+		// unsent (on a continued session, an earlier feed gave them to
+		// the same samples), so that Send gives this one its ordinal.
 		seq := fd.ordinal
+		if err := fd.sess.Skip(seq - 1); err != nil {
+			return err
+		}
 		fd.t.sending(sr.Line(), seq, s)
-		if err := fd.sess.SendAs(seq, s); err != nil {
+		if _, err := fd.sess.Send(s); err != nil {
 			fd.t.unsend(seq)
 			return err
 		}

@@ -246,15 +246,16 @@ their differences.`)
 }
 
 func writeReports(ctx context.Context, stdout io.Writer, st *staging, title string, runs ...*review.Run) error {
-	return writeReport(ctx, stdout, st, true, runs, func(w io.Writer) error { return review.WriteHTML(w, title, runs...) })
+	return writeReport(ctx, stdout, st, true, runs, func(w io.Writer) error { return review.WriteHTMLContext(ctx, w, title, runs...) })
 }
 
 // writeReport writes the runs' text summary to summary.txt (and to stdout
 // with echo) and the HTML report that html writes to report.html, in the
 // staging directory beside the exports of runs, moves them all into the
 // output directory, and says where the report is. On an error, or once
-// ctx is done (Ctrl-C while the report was drawn), it abandons the staging
-// directory, and the output directory keeps what it held.
+// ctx is done (Ctrl-C while the report was drawn: html stops at its next
+// figure with ctx's error), it abandons the staging directory, and the
+// output directory keeps what it held.
 func writeReport(ctx context.Context, stdout io.Writer, st *staging, echo bool, runs []*review.Run, html func(io.Writer) error) error {
 	st.place(runs...)
 	err := ctx.Err()

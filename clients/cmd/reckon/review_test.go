@@ -9,37 +9,18 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
-	"sync/atomic"
 	"testing"
+
+	"reckon.example/clients/internal/checkctx"
 )
 
-// cancelAfter is a context cancelled at the n-th call of its Err, so that
-// a command that checks it as it works is interrupted at a point of its
-// work, whatever the speed of the machine; checks counts the calls.
-type cancelAfter struct {
-	context.Context
-	cancel context.CancelFunc
-	n      int64
-	checks atomic.Int64
-}
-
-func newCancelAfter(n int64) *cancelAfter {
-	ctx, cancel := context.WithCancel(context.Background())
-	return &cancelAfter{Context: ctx, cancel: cancel, n: n}
-}
-
-func (c *cancelAfter) Err() error {
-	if c.checks.Add(1) == c.n {
-		c.cancel()
-	}
-	return c.Context.Err()
-}
-
 // TestReviewInterrupted: review and compare interrupted (Ctrl-C, SIGTERM)
-// at any point, from the replay's first input to the report written and
-// not yet moved into place, stop at their next check, exit 130 and leave
-// no output directory: no report posing as whole. Before, both ignored
-// the interrupt and ran to the end, writing the whole report.
+// at any point, from the replay's first input through the drawing of the
+// report to the report written and not yet moved into place, stop at their
+// next check, exit 130 and leave no output directory: no report posing as
+// whole. Before, both ignored the interrupt and ran to the end, writing
+// the whole report; later the drawing still ran to its end
+// (TestWriteHTMLInterrupted in clients/review).
 func TestReviewInterrupted(t *testing.T) {
 	commands := map[string]func(context.Context, []string, *bytes.Buffer) error{
 		"review": func(ctx context.Context, args []string, out *bytes.Buffer) error {
@@ -55,22 +36,27 @@ func TestReviewInterrupted(t *testing.T) {
 				return []string{"-config", exampleConfig, "-samples", exampleSamples, "-out", out}
 			}
 			// The whole command, to count its checks.
-			whole := newCancelAfter(math.MaxInt64)
+			whole := checkctx.CancelAfter(math.MaxInt64)
 			var out bytes.Buffer
 			if err := run(whole, args(filepath.Join(t.TempDir(), "whole")), &out); err != nil {
 				t.Fatalf("%v\n%s", err, out.String())
 			}
-			total := whole.checks.Load()
+			total := whole.Checks()
 			if total < 10 {
 				t.Fatalf("%d checks for an interrupt in the whole %s, want one an input at least", total, name)
 			}
-			// At the first input, halfway through the replay, past it in
-			// the smoother's and the smoothed track's runs of 256 steps
-			// (854 samples a check each, then a check a run, and two in
-			// writeReport), and at the last check, once the report is
-			// written.
-			for _, n := range []int64{1, total / 2, total - 5, total - 3, total} {
-				ctx := newCancelAfter(n)
+			// At the first input, halfway through the replay, and at each
+			// of the last 30 checks: the smoothed track's runs of 256
+			// steps, writeReport's before the report (then one before
+			// each figure, one after a run's figures and one before the
+			// page is written: 8 for review, 19 for compare), and the last
+			// check, once the report is written.
+			points := []int64{1, total / 2}
+			for n := max(total-30, total/2+1); n <= total; n++ {
+				points = append(points, n)
+			}
+			for _, n := range points {
+				ctx := checkctx.CancelAfter(n)
 				dir := filepath.Join(t.TempDir(), "out")
 				out.Reset()
 				err := run(ctx, args(dir), &out)
@@ -78,8 +64,11 @@ func TestReviewInterrupted(t *testing.T) {
 					t.Errorf("interrupted at check %d of %d: %v (exit %d), want exit %d", n, total, err, exitCode(err), exitInterrupted)
 				}
 				// Each loop stops at its next check: the replay's next
-				// input, the smoother's or the track's next run of steps.
-				if after := ctx.checks.Load() - n; after > 4 {
+				// input, the smoother's or the track's next run of steps;
+				// the drawing draws no figure it had not begun, each of
+				// which checks once (six in a run's report), then checks
+				// once more.
+				if after := ctx.Checks() - n; after > 7 {
 					t.Errorf("interrupted at check %d of %d: %d checks more before it returned", n, total, after)
 				}
 				if _, err := os.Stat(dir); !errors.Is(err, fs.ErrNotExist) || strings.Contains(out.String(), "report:") {

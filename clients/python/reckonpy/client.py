@@ -40,19 +40,55 @@ def verdict_label(verdict: int) -> str:
 
 
 def is_loopback(address: str) -> bool:
-    """is_loopback reports whether address ("host:port", "[v6]:port" or a
-    "unix:" path) stays on this machine. Host names other than "localhost"
-    count as remote: they are not resolved."""
+    """is_loopback reports whether a gRPC target names this machine only: a
+    unix socket, "localhost", or a loopback IP (127.0.0.0/8, ::1), with or
+    without a port and a "dns:///" or "passthrough:///" scheme. Other host
+    names are not resolved and count as remote. It accepts the same forms
+    as the Go client's IsLoopback (both are tested against
+    testdata/reference/loopback-targets.tsv)."""
     if address.startswith(("unix:", "unix-abstract:")):
         return True
-    host = address.rsplit(":", 1)[0] if address.count(":") == 1 or address.startswith("[") else address
-    host = host.strip("[]")
+    for scheme in ("dns:///", "passthrough:///"):
+        if address.startswith(scheme):
+            address = address[len(scheme):]
+    host = _split_host(address)
+    if host is None:
+        host = address
     if host == "localhost":
         return True
+    host = host.strip("[]")
+    if "%" in host:
+        return False  # a zone: not an address that Go's net.ParseIP takes
     try:
-        return ipaddress.ip_address(host).is_loopback
+        ip = ipaddress.ip_address(host)
     except ValueError:
         return False
+    if isinstance(ip, ipaddress.IPv6Address) and ip.ipv4_mapped is not None:
+        ip = ip.ipv4_mapped
+    return ip.is_loopback
+
+
+def _split_host(address: str) -> Optional[str]:
+    """_split_host returns the host of "host:port" or "[host]:port" (the
+    port may be empty), or None if address is not of that form: the rules
+    of Go's net.SplitHostPort, which the Go client uses."""
+    i = address.rfind(":")
+    if i < 0:
+        return None
+    j = k = 0
+    if address.startswith("["):
+        end = address.find("]")
+        if end < 0 or end + 1 != i:
+            return None
+        host = address[1:end]
+        j, k = 1, end + 1
+    else:
+        host = address[:i]
+        if ":" in host:
+            return None
+    if "[" in address[j:] or "]" in address[k:]:
+        return None
+    return host
 
 
 @dataclasses.dataclass(frozen=True)

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"net"
 	"os"
 	"os/exec"
@@ -10,6 +11,11 @@ import (
 	"syscall"
 	"testing"
 	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials/insecure"
+
+	pb "reckon.example/proto/reckon/v1"
 )
 
 // TestMain runs reckond itself when RECKOND_TEST_NOFILE is set: with that
@@ -71,5 +77,89 @@ func TestOutOfFileDescriptors(t *testing.T) {
 	cmd.Process.Signal(syscall.SIGTERM)
 	if err := cmd.Wait(); err != nil {
 		t.Fatalf("reckond after SIGTERM: %v\n%s", err, logs.String())
+	}
+}
+
+// TestHTTPFloodLeavesDescriptors: reckond with 64 file descriptors, the
+// metrics and the live view on, and 100 idle connections opened to each
+// of their ports still serves a gRPC client that creates a robot (its
+// journal files) and feeds it, and never runs out of descriptors:
+// -max-http-connections (8 here) closes the connections past it at once.
+// Before, the HTTP servers took every connection and the process ran out
+// of descriptors: no client could connect, nor a robot be created, until
+// the servers closed the idle connections 5 s later.
+func TestHTTPFloodLeavesDescriptors(t *testing.T) {
+	cmd := exec.Command(os.Args[0], "-test.run=^$")
+	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=64",
+		"RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -metrics-listen 127.0.0.1:0 -view 127.0.0.1:0 -max-http-connections 8 -max-viewers 4 -journal "+t.TempDir())
+	logs := &lockedBuffer{}
+	cmd.Stderr = logs
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	defer cmd.Process.Kill()
+	var m []string
+	for deadline := time.Now().Add(30 * time.Second); m == nil; waitABit() {
+		m = regexp.MustCompile(`msg=serving listen=(\S+) .*metrics=(\S+) view=(\S+)`).FindStringSubmatch(logs.String())
+		if m == nil && time.Now().After(deadline) {
+			t.Fatalf("not serving:\n%s", logs.String())
+		}
+	}
+	var held []net.Conn
+	defer func() {
+		for _, c := range held {
+			c.Close()
+		}
+	}()
+	for _, addr := range m[2:] {
+		for range 100 {
+			c, err := net.DialTimeout("tcp", addr, 5*time.Second)
+			if err != nil {
+				t.Fatal(err)
+			}
+			held = append(held, c)
+		}
+	}
+	conn, err := grpc.NewClient(m[1], grpc.WithTransportCredentials(insecure.NewCredentials()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	api := pb.NewFusionServiceClient(conn)
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	defer cancel()
+	cfg := &pb.RobotConfig{Wheels: []*pb.EncoderWheel{{Name: "left", YM: 0.2}, {Name: "right", YM: -0.2}}, NoSideSlip: true}
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatalf("CreateRobot with the HTTP ports flooded: %v\n%s", err, logs.String())
+	}
+	st, err := api.Ingest(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for k := range int64(10) {
+		odo := &pb.Sample{Sample: &pb.Sample_Odometry{Odometry: &pb.OdometrySample{StartNs: k * 100e6, StampNs: (k + 1) * 100e6,
+			Motion: &pb.OdometrySample_Travel{Travel: &pb.WheelTravel{TravelM: []float64{0.1, 0.1}}}}}}
+		if err := st.Send(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(k + 1), Sample: odo}); err != nil {
+			t.Fatal(err)
+		}
+		resp, err := st.Recv()
+		if err != nil || resp.GetVerdict() != pb.Verdict_VERDICT_APPLIED {
+			t.Fatalf("sample %d with the HTTP ports flooded: %v, %v\n%s", k+1, resp, err, logs.String())
+		}
+	}
+	st.CloseSend()
+	cmd.Process.Signal(syscall.SIGTERM)
+	if err := cmd.Wait(); err != nil {
+		t.Fatalf("reckond after SIGTERM: %v\n%s", err, logs.String())
+	}
+	// The HTTP servers close an idle connection after 5 s (its header's
+	// timeout), which let the robot be created in the end before; the
+	// log says whether descriptors ran out meanwhile.
+	s := logs.String()
+	if strings.Contains(s, "too many open files") || strings.Contains(s, "accepting connections fails") {
+		t.Errorf("reckond ran out of file descriptors:\n%s", s)
+	}
+	if !strings.Contains(s, "-max-http-connections") {
+		t.Errorf("the log does not name -max-http-connections:\n%s", s)
 	}
 }

@@ -91,6 +91,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&lim.MaxViewers, "max-viewers", 16, "open live view pages (event streams) in all")
 	fs.IntVar(&lim.MaxIngestStreams, "max-ingest-streams", 2048, "open ingest streams in all")
 	fs.IntVar(&lim.MaxConnections, "max-connections", 2048, "open gRPC connections in all; one more is closed at once")
+	fs.IntVar(&lim.MaxHTTPConnections, "max-http-connections", 64, "open connections of each HTTP listener (-metrics-listen, -view), each on its own; one more is closed at once; more than -max-viewers")
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
@@ -127,6 +128,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		{"max-viewers", int64(lim.MaxViewers), 1, 1 << 16},
 		{"max-ingest-streams", int64(lim.MaxIngestStreams), 1, 1 << 20},
 		{"max-connections", int64(lim.MaxConnections), 1, 1 << 20},
+		{"max-http-connections", int64(lim.MaxHTTPConnections), 2, 1 << 20},
 		{"max-message-bytes", int64(*maxMsg), 1 << 10, 1 << 40},
 		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
 	} {
@@ -136,6 +138,10 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 			}
 			return fmt.Errorf("%s: %d is not between %d and %d", b.name, b.v, b.lo, b.hi)
 		}
+	}
+	if *view != "" && lim.MaxHTTPConnections <= lim.MaxViewers {
+		// Each page's event stream holds a connection of the view.
+		return fmt.Errorf("max-http-connections: %d is not more than -max-viewers (%d): the live view could not serve all its viewers and a page besides", lim.MaxHTTPConnections, lim.MaxViewers)
 	}
 	dc := daemon.Config{Listen: *listen, TLSCert: *cert, TLSKey: *key, TLSClientCA: *clientCA, MetricsListen: *metrics, ViewListen: *view, MaxMessageBytes: *maxMsg,
 		Insecure: *insecure, MaxStreams: uint32(*maxStreams),

@@ -38,6 +38,8 @@ func TestFlagErrors(t *testing.T) {
 		{[]string{"-max-watchers", "0"}, "max-watchers: 0"},
 		{[]string{"-max-watchers-per-robot", "-2"}, "max-watchers-per-robot"},
 		{[]string{"-max-viewers", "-1"}, "max-viewers"},
+		{[]string{"-max-http-connections", "1"}, "max-http-connections: 1 is not between 2 and"},
+		{[]string{"-journal", dir, "-view", "127.0.0.1:0", "-max-http-connections", "16"}, "max-http-connections: 16 is not more than -max-viewers (16)"},
 		{[]string{"-max-connections", "0"}, "max-connections: 0"},
 		{[]string{"-max-string-bytes", "0"}, "max-string-bytes"},
 		{[]string{"-max-message-bytes", "-1"}, "max-message-bytes"},

@@ -52,19 +52,20 @@ func (r *Robot) insertReset(e *entry, res *Result) {
 	res.Events = append(res.Events, Event{Kind: EventReseeded, StampNs: e.t1})
 }
 
-// checkPose reports what is wrong with a reseed before it is taken.
+// checkPose reports what is wrong with a reseed's (or a run start's) pose
+// before it is taken, naming the field at fault: pose or covariance.
 func checkPose(pose estimator.Pose, cov []float64) error {
 	if !finiteAll(pose.X, pose.Y) || !anglesOK(pose.Heading) {
-		return fmt.Errorf("%w: pose %+v is not finite, or its heading not within %g rad of 0", ErrBadSample, pose, maxAngleRad)
+		return &FieldError{Path: "pose", Err: fmt.Errorf("%w: pose %+v is not finite, or its heading not within %g rad of 0", ErrBadSample, pose, maxAngleRad)}
 	}
 	if !lengthsOK(pose.X, pose.Y) {
-		return fmt.Errorf("%w: pose %+v is not a field position within %g m of the origin", ErrBadSample, pose, maxFieldM)
+		return &FieldError{Path: "pose", Err: fmt.Errorf("%w: pose %+v is not a field position within %g m of the origin", ErrBadSample, pose, maxFieldM)}
 	}
 	if err := estimator.CheckCovariance(cov, 3); err != nil {
-		return fmt.Errorf("%w: cov: %v", ErrBadSample, err)
+		return &FieldError{Path: "covariance", Err: fmt.Errorf("%w: cov: %v", ErrBadSample, err)}
 	}
 	if err := checkVariances(cov, 3, poseAngle); err != nil {
-		return fmt.Errorf("%w: cov: %v", ErrBadSample, err)
+		return &FieldError{Path: "covariance", Err: fmt.Errorf("%w: cov: %v", ErrBadSample, err)}
 	}
 	return nil
 }

@@ -148,7 +148,7 @@ func (r *Robot) checkRunStart(s *RunStart) error {
 		return FieldErrorf(ErrBadSample, "pose", "missing, but a covariance is given")
 	case s.Pose != nil:
 		if err := checkPose(*s.Pose, s.Cov); err != nil {
-			return &FieldError{Path: "pose", Err: err}
+			return err // naming pose or covariance
 		}
 	}
 	return nil

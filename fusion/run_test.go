@@ -161,8 +161,10 @@ func TestStartRunBadInput(t *testing.T) {
 		{"the current run again", RunStart{BootID: "three", Run: 2}, ErrRunOutOfOrder, "run"},
 		{"a run skipped", RunStart{BootID: "three", Run: 4}, ErrRunOutOfOrder, "run"},
 		{"covariance without pose", RunStart{BootID: "three", Cov: []float64{1, 0, 0, 0, 1, 0, 0, 0, 1}}, ErrBadSample, "pose"},
-		{"pose without covariance", RunStart{BootID: "three", Pose: &bad}, ErrBadSample, "pose"},
-		{"covariance not positive definite", RunStart{BootID: "three", Pose: &bad, Cov: []float64{1, 2, 0, 2, 1, 0, 0, 0, 1}}, ErrBadSample, "pose"},
+		// The covariance at fault is named as such (session 25; it was
+		// named "pose").
+		{"pose without covariance", RunStart{BootID: "three", Pose: &bad}, ErrBadSample, "covariance"},
+		{"covariance not positive definite", RunStart{BootID: "three", Pose: &bad, Cov: []float64{1, 2, 0, 2, 1, 0, 0, 0, 1}}, ErrBadSample, "covariance"},
 	}
 	for _, c := range cases {
 		was, seq, stats := snap(r), r.Sequence(), r.Stats()

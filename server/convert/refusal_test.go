@@ -1,6 +1,7 @@
 package convert
 
 import (
+	"math"
 	"testing"
 
 	"reckon.example/fusion"
@@ -45,6 +46,15 @@ func TestRefusalsAsValues(t *testing.T) {
 		{"run start without boot id", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.run_start.boot_id"},
 		{"run start going back", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: "b", Run: 1}}}, pb.Refusal_REFUSAL_RUN_OUT_OF_ORDER, "sample.run_start.run"},
 		{"run start covariance without pose", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: "b", Covariance: cov3}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.run_start.pose"},
+		// A reseed's and a run start's pose and covariance name themselves
+		// (until session 25 a reseed's named only "sample.reseed", and a
+		// run start's covariance "sample.run_start.pose").
+		{"reseed pose not finite", &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{XM: math.NaN()}, Covariance: cov3}}},
+			pb.Refusal_REFUSAL_MALFORMED, "sample.reseed.pose"},
+		{"reseed covariance not positive definite", &pb.Sample{Sample: &pb.Sample_Reseed{Reseed: &pb.Reseed{StampNs: newest, Pose: &pb.FloorPose{},
+			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 2, 0, 2, 1, 0, 0, 0, 1}}}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.reseed.covariance"},
+		{"run start covariance not positive definite", &pb.Sample{Sample: &pb.Sample_RunStart{RunStart: &pb.RunStart{BootId: "b", Pose: &pb.FloorPose{},
+			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{1, 2, 0, 2, 1, 0, 0, 0, 1}}}}}, pb.Refusal_REFUSAL_MALFORMED, "sample.run_start.covariance"},
 		{"applied", fix(&pb.Fix{StampNs: newest, SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{}},
 			Covariance: &pb.Covariance{Dimension: 3, Values: []float64{100, 0, 0, 0, 100, 0, 0, 0, 9}}}), pb.Refusal_REFUSAL_UNSPECIFIED, ""},
 		{"the same fix again", fix(&pb.Fix{StampNs: newest, SensorId: "camera", Measurement: &pb.Fix_Pose{Pose: &pb.PoseFix{}},

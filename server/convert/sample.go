@@ -401,8 +401,9 @@ func TakeInto(resp *pb.IngestResponse, r *fusion.Robot, s *pb.Sample, clientSeq 
 			return true
 		}
 		field := in.field
-		if p := fusion.FieldOf(res.Err); in.kind == fusion.InputRunStart && p != "" {
-			// A run start's fields are all its own: name the one at fault.
+		if p := fusion.FieldOf(res.Err); (in.kind == fusion.InputRunStart || in.kind == fusion.InputReseed) && p != "" {
+			// A run start's and a reseed's fields are all their own:
+			// name the one at fault.
 			field += "." + p
 		}
 		err = sampleErr(field, res.Err)

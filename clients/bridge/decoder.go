@@ -308,9 +308,9 @@ type Sequencer struct {
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
 	resumedBoot uint8
-	// resumedNs: the robot's newest odometry, of a run whose boot the
-	// link does not know (0: none); a first frame stamped at or before it
-	// is of a controller that restarted (Decoder.Resume).
+	// resumedNs: the robot's newest odometry (0: none); a first frame
+	// stamped at or before it is of a controller that restarted
+	// (Decoder.Resume).
 	resumedNs int64
 }
 
@@ -589,17 +589,16 @@ func BootID(boot uint8) string { return fmt.Sprintf("link-boot-%02x", boot) }
 // (Robot.boot_id) and its newest odometry stamp (Robot.newest_stamp_ns),
 // so that it begins a new run at its first frame if the controller
 // restarted while no bridge was listening. When the run's boot id is a
-// link boot id, the first frame's boot byte says so precisely. Otherwise
-// (the robot's first run, or a run started by hand) a first frame stamped
-// at or before the newest odometry says so: the controller's clock started
-// again, and the service would refuse its odometry as time going
-// backwards; a controller that ran on stamps after it. Call it before
-// Decode.
+// link boot id, a first frame of another boot byte says so. So does,
+// whatever the run's boot id, a first frame stamped at or before the
+// newest odometry: the controller's clock started again (with the same
+// byte: it booted twice, toggling a bit back), and the service would
+// refuse its odometry as time going backwards; a controller that ran on
+// stamps after it. Call it before Decode.
 func (d *Decoder) Resume(bootID string, newestNs int64) {
 	var b uint8
 	if _, err := fmt.Sscanf(bootID, "link-boot-%02x", &b); err == nil && bootID == BootID(b) {
 		d.seq.resumed, d.seq.resumedBoot = true, b
-		return
 	}
 	d.seq.resumedNs = newestNs
 }

@@ -393,9 +393,9 @@ func FuzzDecoder(f *testing.F) {
 // TestDecoderRunStart: a controller restart (another boot byte) puts a run
 // start naming the new boot before its first sample; a decoder resumed on
 // a robot whose current run is of another boot starts a run at its first
-// frame, and one resumed on the same boot does not; on a run of no link
-// boot, the first frame's stamp decides: at or before the robot's newest
-// odometry, the controller's clock started again.
+// frame, and one resumed on the same boot does not, unless its stamp says
+// otherwise; as on a run of no link boot, a first frame stamped at or
+// before the robot's newest odometry is of a clock started again.
 func TestDecoderRunStart(t *testing.T) {
 	kinds := func(samples []*pb.Sample) string {
 		var b strings.Builder
@@ -420,9 +420,15 @@ func TestDecoderRunStart(t *testing.T) {
 	}{
 		{"link-boot-04", 0, "start(link-boot-05) odo(30000) "},
 		{"link-boot-04", 9_000_000, "start(link-boot-05) odo(30000) "},
-		{"link-boot-05", 9_000_000, "odo(30000) "}, // the boot byte decides
-		{"", 0, "odo(30000) "},                     // a new robot
-		{"", 29_999, "odo(30000) "},                // the controller ran on
+		{"link-boot-05", 20_000, "odo(30000) "}, // the same boot, its clock ran on
+		// The same byte, its clock started again: the controller booted
+		// twice while no bridge listened, toggling a bit back (PROTOCOL.md,
+		// "Reboots"). Before, no run started, and the service refused
+		// every sample as time going backwards.
+		{"link-boot-05", 9_000_000, "start(link-boot-05) odo(30000) "},
+		{"link-boot-05", 30_000, "start(link-boot-05) odo(30000) "},
+		{"", 0, "odo(30000) "},      // a new robot
+		{"", 29_999, "odo(30000) "}, // the controller ran on
 		{"", 30_000, "start(link-boot-05) odo(30000) "},
 		{"", 9_000_000, "start(link-boot-05) odo(30000) "}, // its clock started again
 		{"by-hand-1", 20_000, "odo(30000) "},

@@ -24,9 +24,9 @@ type Stats struct {
 	// heading that is not finite, or, within one boot, a wheel count that
 	// differs from the earlier frames' or a stamp not after the last taken
 	// frame's although its counter is ahead, or one more than maxStepUs a
-	// counter step after it that the next frame does not confirm; or a
-	// frame held at the start of a boot that no later frame confirmed
-	// (Sequencer, "Start").
+	// counter step after it (even when the next frame confirms the jump:
+	// that one is taken); or a frame held at the start of a boot that no
+	// later frame confirmed (Sequencer, "Start").
 	Invalid uint64
 	// Duplicates is the number of frames dropped because a frame with the
 	// same counter was taken (or is held).
@@ -188,8 +188,9 @@ const behindLimit = 100
 // likely a glitch of its clock (a 32-bit timer extended in firmware with
 // a race between its halves puts one frame 2^32 us, 71.6 min, ahead) than
 // a controller that sent nothing for that long. Such a frame is dropped
-// as invalid unless the frame after it confirms the jump: taken, a glitch
-// would put the robot's clock out of reach of every frame after it. The
+// as invalid, and the frame after it taken if it confirms the jump: taken,
+// a glitch would put the robot's clock out of reach of every frame after
+// it. The
 // same bound confirms the first frame of a boot (Sequencer, "Start").
 const maxStepUs = 60_000_000
 

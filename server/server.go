@@ -530,10 +530,12 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	r.mu.Lock()
 	s.observeRobot(r, nil, -1)
 	created := LiveUpdate{Robot: name, State: r.state, Pose: poseNow(r)}
+	// Under r.mu: published, the robot may take samples already.
+	resp := &pb.CreateRobotResponse{Robot: r.proto()}
 	r.mu.Unlock()
 	s.live.publish(func() LiveUpdate { return created })
 	s.log.Info("robot created", "robot", name, "wheels", len(cfg.Wheels), "imu", cfg.IMU.String())
-	return &pb.CreateRobotResponse{Robot: r.proto()}, nil
+	return resp, nil
 }
 
 // robotsChanged publishes the robots for lookup and counts them; the

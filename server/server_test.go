@@ -308,3 +308,61 @@ func TestStreamFollowsRobotRecreated(t *testing.T) {
 		t.Fatalf("first sample to the robot made again: %v", r)
 	}
 }
+
+// TestCreateRobotWhileFed: a stream feeding a robot's name while the robot
+// is made again (deleted and created, 20 times) takes its samples into
+// each new robot as soon as it is published; CreateRobot's response,
+// which describes the new robot (input count, newest stamp), must be read
+// under the robot's lock. Before, it was read after the lock was let go,
+// a data race with the stream that go test -race reports (the race
+// detector, not timing, is what fails).
+func TestCreateRobotWhileFed(t *testing.T) {
+	srv := start(t, testConfig{})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	samp, cfg := cartRun(3, 1)
+	ctx := context.Background()
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	done := make(chan error, 1)
+	go func() {
+		for range 20 {
+			if _, err := api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart"}); err != nil {
+				done <- err
+				return
+			}
+			if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+				done <- err
+				return
+			}
+		}
+		done <- nil
+	}()
+	st, err := api.Ingest(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := 0; ; i++ {
+		select {
+		case err := <-done:
+			if err != nil {
+				t.Fatal(err)
+			}
+			return
+		default:
+		}
+		if err := st.Send(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(i + 1), Sample: samp[i%len(samp)]}); err != nil {
+			t.Fatal(err)
+		}
+		resp, err := st.Recv()
+		if err != nil {
+			t.Fatal(err)
+		}
+		// Taken by a robot, refused for none (deleted meanwhile), or as
+		// too old for a new one that took a later sample of the cycle.
+		if c := codes.Code(resp.GetStatusCode()); c != codes.OK && c != codes.NotFound && resp.GetRefusal() != pb.Refusal_REFUSAL_TOO_OLD {
+			t.Fatalf("sample %d: %v", i, resp)
+		}
+	}
+}

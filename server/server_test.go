@@ -260,19 +260,28 @@ func TestJournalFileName(t *testing.T) {
 	}
 }
 
+// cartServed starts a service with robots/cart made (cartRun's, seed 3,
+// one second) and returns a client of it, the run's samples and the
+// robot's configuration; the service stops at the test's end.
+func cartServed(t *testing.T) (pb.FusionServiceClient, []*pb.Sample, *pb.RobotConfig) {
+	t.Helper()
+	srv := start(t, testConfig{})
+	t.Cleanup(srv.stop)
+	api := stub(t, srv.addr)
+	samp, cfg := cartRun(3, 1)
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	return api, samp, cfg
+}
+
 // TestStreamFollowsRobotRecreated: a stream keeps the robot it fed last
 // (lookupFrom); once that robot is deleted the stream's samples for its
 // name are refused as for no robot, and once a robot of the same name is
 // made again they go to the new one, over a real connection on loopback.
 func TestStreamFollowsRobotRecreated(t *testing.T) {
-	srv := start(t, testConfig{})
-	defer srv.stop()
-	api := stub(t, srv.addr)
-	samp, cfg := cartRun(3, 1)
+	api, samp, cfg := cartServed(t)
 	ctx := context.Background()
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
 	st, err := api.Ingest(ctx)
 	if err != nil {
 		t.Fatal(err)
@@ -317,14 +326,8 @@ func TestStreamFollowsRobotRecreated(t *testing.T) {
 // a data race with the stream that go test -race reports (the race
 // detector, not timing, is what fails).
 func TestCreateRobotWhileFed(t *testing.T) {
-	srv := start(t, testConfig{})
-	defer srv.stop()
-	api := stub(t, srv.addr)
-	samp, cfg := cartRun(3, 1)
+	api, samp, cfg := cartServed(t)
 	ctx := context.Background()
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
 	done := make(chan error, 1)
 	go func() {
 		for range 20 {

@@ -614,7 +614,12 @@ func (r *Robot) decEntry(d *wdec) entry {
 		case 22:
 			en.marker = d.uint32(num)
 		case 23:
-			en.slipK = d.double(num)
+			// Written only when set: a slip's factor is positive and
+			// finite; anything else would scale the step's covariance
+			// into nonsense when a reset gives it back (restartSlip).
+			if en.slipK = d.double(num); !(en.slipK > 0) || math.IsInf(en.slipK, 1) {
+				d.fail("entry: slip factor %v is not a positive finite number", en.slipK)
+			}
 		default:
 			d.fail("entry: unknown field %d", num)
 		}

@@ -445,7 +445,7 @@ func (r *Robot) dropFront(k int) {
 	// The dropped entries are moved out once there are twice as many as
 	// live ones (and at least 64): each entry is copied half a time on
 	// average as it leaves, and the slice stays near three times the
-	// window (a window of 1 s at 310 inputs a second is 160 kB). The
+	// window (a window of 1 s at 310 inputs a second is about 170 kB). The
 	// room past the live entries is not cleared: entries hold no
 	// pointers, and each is written whole when appended. At robot rates
 	// the copy and the clearing were 26 of the 1,100 cache lines a sample

@@ -259,6 +259,189 @@ func dpRuns(t *testing.T, n int, durS float64, site dpSite, e dpErrors, edit fun
 }
 
 // dpMove returns the run in another field frame: every field pose p
+// becomes site + rot(turn) (p - from), the IMU's readings unchanged.
+func dpMove(run *dpRun, from estimator.Pose, turn float64, to dpSite) dpRun {
+	c, sn := math.Cos(turn), math.Sin(turn)
+	move := func(x, y, h float64) (float64, float64, float64) {
+		dx, dy := x-from.X, y-from.Y
+		return to.e + c*dx - sn*dy, to.n + sn*dx + c*dy, estimator.Wrap(h + turn)
+	}
+	out := dpRun{ins: make([]dpInput, len(run.ins))}
+	out.start.X, out.start.Y, out.start.Heading = move(run.start.X, run.start.Y, run.start.Heading)
+	for i, in := range run.ins {
+		if in.fix != nil {
+			f := *in.fix
+			f.XM, f.YM, f.HeadingRad = move(f.XM, f.YM, f.HeadingRad)
+			in.fix = &f
+		}
+		in.truth.X, in.truth.Y, in.truth.Heading = move(in.truth.X, in.truth.Y, in.truth.Heading)
+		out.ins[i] = in
+	}
+	return out
+}
+
+// dpSame reports the first difference between the answers of a run (a)
+// and of the same run in a frame turned by turn (b): verdicts, NIS,
+// events, held inputs' resolutions and trust the same, the pose turned
+// back to 1e-6 m and rad about the runs' start poses, the covariance to
+// 1e-6 of its largest variance.
+func dpSame(a, b []dpAnswer, sa, sb estimator.Pose, turn float64) error {
+	near := func(x, y float64) bool { return math.Abs(x-y) <= 1e-6*math.Max(1, math.Max(math.Abs(x), math.Abs(y))) }
+	c, sn := math.Cos(turn), math.Sin(turn)
+	for i := range a {
+		p, q := &a[i], &b[i]
+		if p.res.Verdict != q.res.Verdict || !near(p.res.NIS, q.res.NIS) || len(p.res.Events) != len(q.res.Events) ||
+			len(p.res.Resolved) != len(q.res.Resolved) || p.pose.Distrust != q.pose.Distrust {
+			return fmt.Errorf("input %d: %v NIS %g events %v resolved %v %v; moved %v %g %v %v %v", i, p.res.Verdict, p.res.NIS, p.res.Events,
+				p.res.Resolved, p.pose.Distrust, q.res.Verdict, q.res.NIS, q.res.Events, q.res.Resolved, q.pose.Distrust)
+		}
+		for k, e := range p.res.Events {
+			if f := q.res.Events[k]; e.Kind != f.Kind || e.StampNs != f.StampNs || !near(e.Value, f.Value) {
+				return fmt.Errorf("input %d: event %+v, moved %+v", i, e, f)
+			}
+		}
+		for k, r := range p.res.Resolved {
+			if f := q.res.Resolved[k]; r.Seq != f.Seq || r.Verdict != f.Verdict || !near(r.NIS, f.NIS) {
+				return fmt.Errorf("input %d: resolved %+v, moved %+v", i, r, f)
+			}
+		}
+		// b's pose taken back: rot(-turn) (b - sb) + sa.
+		dx, dy := q.pose.Pose.X-sb.X, q.pose.Pose.Y-sb.Y
+		bx, by := sa.X+c*dx+sn*dy, sa.Y-sn*dx+c*dy
+		if math.Hypot(bx-p.pose.Pose.X, by-p.pose.Pose.Y) > 1e-6 || math.Abs(estimator.Wrap(q.pose.Pose.Heading-turn-p.pose.Pose.Heading)) > 1e-6 {
+			return fmt.Errorf("input %d: pose %+v, moved back (%.9f, %.9f)", i, p.pose.Pose, bx, by)
+		}
+		// The position block turned back: R^T C R; the cross terms R^T c.
+		pc, qc := &p.pose.Cov, &q.pose.Cov
+		back := [9]float64{
+			c*c*qc[0] + 2*c*sn*qc[1] + sn*sn*qc[4], (c*c-sn*sn)*qc[1] + c*sn*(qc[4]-qc[0]), c*qc[2] + sn*qc[5],
+			0, sn*sn*qc[0] - 2*c*sn*qc[1] + c*c*qc[4], -sn*qc[2] + c*qc[5],
+			0, 0, qc[8],
+		}
+		back[3], back[6], back[7] = back[1], back[2], back[5]
+		for k := range back {
+			if math.Abs(back[k]-pc[k]) > 1e-6*math.Max(pc[0], math.Max(pc[4], pc[8])) {
+				return fmt.Errorf("input %d: covariance %v, moved back %v", i, *pc, back)
+			}
+		}
+	}
+	return nil
+}
+
+// dpLimits are the honesty limits of TestDepotTug, as shares of the
+// samples, seconds or counts; each check is named in violations.
+type dpLimits struct {
+	inside95, meanNEES, trustedOut999, longestS, validGated float64
+}
+
+// violations returns what of tl breaks the limits, and the refusals and
+// faults, which no run may have.
+func (l dpLimits) violations(tl *dpTally) []string {
+	var v []string
+	share := func(k int) float64 { return float64(k) / float64(max(tl.samples, 1)) }
+	if got := share(tl.inside95); got < l.inside95 {
+		v = append(v, fmt.Sprintf("share inside the 95%% region %.4f, below %.4f", got, l.inside95))
+	}
+	if got := tl.neesSum / float64(max(tl.samples, 1)); got > l.meanNEES {
+		v = append(v, fmt.Sprintf("mean NEES %.2f, above %.2f", got, l.meanNEES))
+	}
+	if got := share(tl.trustedOut999); got > l.trustedOut999 {
+		v = append(v, fmt.Sprintf("share trusted outside the 99.9%% region %.5f, above %.5f", got, l.trustedOut999))
+	}
+	if tl.longestS > l.longestS {
+		v = append(v, fmt.Sprintf("trusted outside the 99.9%% region for %.2f s (%s), above %.2f s", tl.longestS, tl.longestAt, l.longestS))
+	}
+	if got := float64(tl.validGated) / float64(max(tl.fixes-tl.outliers, 1)); got > l.validGated {
+		v = append(v, fmt.Sprintf("share of valid fixes gated %.4f, above %.4f", got, l.validGated))
+	}
+	if tl.outliersApplied > 0 {
+		v = append(v, fmt.Sprintf("%d of %d outlying fixes applied", tl.outliersApplied, tl.outliers))
+	}
+	for _, r := range tl.refusals[:min(len(tl.refusals), 5)] {
+		v = append(v, "valid input refused: "+r)
+	}
+	for _, f := range tl.faults[:min(len(tl.faults), 5)] {
+		v = append(v, "fault: "+f)
+	}
+	return v
+}
+
+// dpHonest are the limits with every error process on: 8 runs of 300 s
+// measured 98.84% of samples inside the 95% region, mean NEES 1.59,
+// 0.106% trusted outside the 99.9% region (the README's floor is 0.1%),
+// the longest 2.24 s, 4.1% of valid fixes gated (Student-t errors of 3
+// degrees of freedom beside a gate at 0.99), none of 17 outliers applied,
+// no refusal and no fault. The limits are about twice what was measured,
+// regression guards rather than promises, and no refusal or fault at all.
+var dpHonest = dpLimits{inside95: 0.95, meanNEES: 3, trustedOut999: 0.002, longestS: 5, validGated: 0.08}
+
+// TestDepotTug drives the depot tug (depotsim_test.go: its survey grid 43
+// and 87 km from the origin, 50 Hz odometry on 16-bit counters, a 25 Hz
+// IMU, 3 Hz fixes 30 to 250 ms late with Student-t errors and 3%
+// outliers, a camera that stalls and reboots, odometry dropouts, stamp
+// jitter, AR(1) wheel slip, a gyro off in scale with a walking bias,
+// spins across +-pi, reversing and a stand of minutes) through a Robot as
+// the service does, 8 seeded runs of 300 s, and checks at every odometry
+// sample after the first 5 s that the truth lies inside the published
+// regions about as stated, that the estimate is not trusted where it does
+// not (chi-square quantiles from gonum stat/distuv; Bar-Shalom, Li and
+// Kirubarajan 2001, sec. 5.4.2), that no valid input is refused and that
+// no numerical fault occurs (dpHonest).
+func TestDepotTug(t *testing.T) {
+	sum := dpRuns(t, 8, 300, dpFar, dpAllErrors(), nil)
+	t.Log(&sum)
+	for _, v := range dpHonest.violations(&sum) {
+		t.Error(v)
+	}
+}
+
+// TestDepotTugCanFail: the same limits catch a configuration that claims
+// too much: the wheels' noise, the camera's covariance and the IMU
+// offset's walk at a quarter of depotConfig's.
+func TestDepotTugCanFail(t *testing.T) {
+	sum := dpRuns(t, 8, 300, dpFar, dpAllErrors(), func(c *fusion.Config) {
+		c.Noise.WheelVarM2PerM /= 4
+		c.Noise.IMUOffsetVarRad2PerS /= 4
+		for k := range c.Sensors[0].Cov {
+			c.Sensors[0].Cov[k] /= 4
+		}
+	})
+	v := dpHonest.violations(&sum)
+	t.Logf("overconfident: %v; caught: %q", &sum, v)
+	if len(v) == 0 {
+		t.Error("the limits let an overconfident configuration pass")
+	}
+}
+
+// TestDepotTugFieldFrame: the depot tug's runs with every error process,
+// their survey grid turned and moved to another place 99 km from the
+// origin and to the origin itself, give the same answers and, turned
+// back, the same track and covariance (dpSame, 1e-6): the filter's models
+// are covariant under rigid motions of the field frame (DEVELOPERS.md,
+// "Design: Conventions"), and a float64 keeps 1.5e-11 m of 1e5 m.
+func TestDepotTugFieldFrame(t *testing.T) {
+	for _, seed := range []uint64{100, 101, 102} {
+		run := dpSimulate(seed, 300, dpFar, dpAllErrors())
+		a, _, err := dpFeed(&run, depotConfig(run.start))
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, m := range []struct {
+			turn float64
+			to   dpSite
+		}{{-2.9, dpSite{1200.5, 99000.25}}, {1.1, dpSite{}}} {
+			moved := dpMove(&run, run.start, m.turn, m.to)
+			b, _, err := dpFeed(&moved, depotConfig(moved.start))
+			if err != nil {
+				t.Fatal(err)
+			}
+			if err := dpSame(a, b, run.start, moved.start, m.turn); err != nil {
+				t.Errorf("seed %d, turned %g and moved to %+v: %v", seed, m.turn, m.to, err)
+			}
+		}
+	}
+}
+
 // TestDepotTurnScaleQuietWheels: wheels quieter than configured (none of
 // their own noise but the counts' quantisation, or half the configured
 // variance) under the turn scale, with the IMU offset walking per radian

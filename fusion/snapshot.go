@@ -436,16 +436,25 @@ func (r *Robot) checkValues() error {
 }
 
 // stateFault says what is wrong with an estimate's numbers ("" if
-// nothing): a mean or covariance value not finite, a variance below 0, a
-// correlation past 1 (with a relative slack of 1e-6 for rounding: a
-// covariance matrix's off-diagonal values are bounded by the geometric
-// mean of their variances, a property of every positive semidefinite
-// matrix).
+// nothing): a mean, covariance or errors-in-variables moment not finite,
+// a variance below 0, a correlation past 1 (with a relative slack of 1e-6
+// for rounding: a covariance matrix's off-diagonal values are bounded by
+// the geometric mean of their variances, a property of every positive
+// semidefinite matrix).
 func stateFault(s *estimator.State) string {
 	n := s.Size()
 	for i := 0; i < n; i++ {
 		if v := s.MeanAt(i); math.IsNaN(v) || math.IsInf(v, 0) {
 			return fmt.Sprintf("has mean %v in state %d", v, i)
+		}
+	}
+	// The turn scale's moments: every update that moves the scale
+	// subtracts their pull from its mean, which one not finite would make
+	// not finite.
+	m := s.EIV()
+	for k, v := range m {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return fmt.Sprintf("has errors-in-variables moment %v at (%d, %d)", v, k/estimator.EIVDim, k%estimator.EIVDim)
 		}
 	}
 	return covFault(n, s.At)

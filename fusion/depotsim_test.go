@@ -176,8 +176,8 @@ func dpPlan(r *rand.Rand, durS float64, stand bool) []dpManoeuvre {
 }
 
 // dpInput is one input in arrival order. An odometry sample carries the
-// truth at its stamp and what the tug was doing; a fix says whether it is
-// an outlier and whether it came in a burst after the camera's reboot.
+// truth at its stamp, what the tug was doing and how long since the
+// camera's reboot ended; a fix says whether it is an outlier.
 type dpInput struct {
 	arrivalUs int64
 	odo       *fusion.Odometry

@@ -730,24 +730,26 @@ func (f *Filter) updateEIV(d int) {
 		}
 		t[a*eivDim+a]++
 	}
-	m := &f.st.eiv
-	var tm [eivSize]float64
+	var tm, tt [eivSize]float64
 	for a := 0; a < k; a++ {
 		for b := 0; b < k; b++ {
-			var acc float64
-			for c := 0; c < k; c++ {
-				acc += t[a*eivDim+c] * m[c*eivDim+b]
-			}
-			tm[a*eivDim+b] = acc
+			tt[a*eivDim+b] = t[b*eivDim+a]
 		}
 	}
-	for a := 0; a < k; a++ {
-		for b := 0; b < k; b++ {
+	eivMul(&tm, &t, &f.st.eiv, k)
+	eivMul(&f.st.eiv, &tm, &tt, k)
+}
+
+// eivMul writes the product a b of the leading k x k blocks of two
+// moment-sized matrices into dst (which must be neither).
+func eivMul(dst, a, b *[eivSize]float64, k int) {
+	for i := 0; i < k; i++ {
+		for j := 0; j < k; j++ {
 			var acc float64
 			for c := 0; c < k; c++ {
-				acc += tm[a*eivDim+c] * t[b*eivDim+c]
+				acc += a[i*eivDim+c] * b[c*eivDim+j]
 			}
-			m[a*eivDim+b] = acc
+			dst[i*eivDim+j] = acc
 		}
 	}
 }

@@ -108,17 +108,24 @@ func TestSnapshotValuesChecked(t *testing.T) {
 	} {
 		r := busyRobot(t)
 		c.harm(r)
-		b, err := r.Snapshot()
-		if err != nil {
-			t.Fatal(err)
-		}
-		_, err = RestoreSnapshot(r.Config(), b)
-		switch {
-		case c.want == "" && err != nil:
-			t.Errorf("%s: %v", c.name, err)
-		case c.want != "" && (!errors.Is(err, ErrSnapshot) || !strings.Contains(err.Error(), c.want)):
-			t.Errorf("%s: %v, want ErrSnapshot saying %q", c.name, err, c.want)
-		}
+		restoreSays(t, r, c.name, c.want)
+	}
+}
+
+// restoreSays fails unless r's snapshot restores (want empty) or is
+// refused with ErrSnapshot saying want.
+func restoreSays(t *testing.T, r *Robot, name, want string) {
+	t.Helper()
+	b, err := r.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, err = RestoreSnapshot(r.Config(), b)
+	switch {
+	case want == "" && err != nil:
+		t.Errorf("%s: %v", name, err)
+	case want != "" && (!errors.Is(err, ErrSnapshot) || !strings.Contains(err.Error(), want)):
+		t.Errorf("%s: %v, want ErrSnapshot saying %q", name, err, want)
 	}
 }
 
@@ -175,16 +182,6 @@ func TestSnapshotMomentsChecked(t *testing.T) {
 	} {
 		r := busy(t)
 		c.harm(r)
-		b, err := r.Snapshot()
-		if err != nil {
-			t.Fatal(err)
-		}
-		_, err = RestoreSnapshot(r.Config(), b)
-		switch {
-		case c.want == "" && err != nil:
-			t.Errorf("%s: %v", c.name, err)
-		case c.want != "" && (!errors.Is(err, ErrSnapshot) || !strings.Contains(err.Error(), c.want)):
-			t.Errorf("%s: %v, want ErrSnapshot saying %q", c.name, err, c.want)
-		}
+		restoreSays(t, r, c.name, c.want)
 	}
 }

@@ -196,6 +196,14 @@ func TestCreateRobotBounds(t *testing.T) {
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "window_ns") {
 		t.Fatalf("a window of an hour: %v", err)
 	}
+	// The smallest float64 is inside (0, 1); its chi-square quantile made
+	// fusion.New panic, which ended the service (fusion's
+	// TestTinyProbabilities).
+	cfg.WindowNs, cfg.GateProbability = 0, 5e-324
+	_, err = api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "gate_probability") {
+		t.Fatalf("a gate probability of 5e-324: %v", err)
+	}
 	if list, err := api.ListRobots(context.Background(), &pb.ListRobotsRequest{}); err != nil || len(list.GetRobots()) != 0 {
 		t.Errorf("robots after the refusals: %v %v", list.GetRobots(), err)
 	}

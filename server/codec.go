@@ -8,6 +8,7 @@ import (
 	"google.golang.org/grpc/encoding"
 	_ "google.golang.org/grpc/encoding/proto" // registers the protobuf codec that codec wraps
 	"google.golang.org/grpc/mem"
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -45,12 +46,49 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	if r.dec == nil || !decodeRequest(r.dec, b, &r.IngestRequest) {
 		r.IngestRequest.Reset()
 		if err := proto.Unmarshal(b, &r.IngestRequest); err != nil {
-			return fmt.Errorf("ingest request: %w", err)
+			// Not an IngestRequest (a string that is not UTF-8, a
+			// field cut short): answered as its own verdict, as a bad
+			// sample is, so that the stream goes on. An error here
+			// ended the whole stream with INTERNAL.
+			r.IngestRequest.Reset()
+			r.ClientSequence, r.malformed = clientSequenceOf(b), err
+			return nil
 		}
 	}
 	r.wire = b
 	return nil
 }
+
+// clientSequenceOf returns the client sequence an encoded IngestRequest
+// gives as far as it can be read (the last one, as a decoder keeps), or 0,
+// so that the verdict on a request that does not decode still names it.
+func clientSequenceOf(b []byte) uint64 {
+	var cs uint64
+	for len(b) > 0 {
+		num, typ, n := protowire.ConsumeTag(b)
+		if n < 0 {
+			return cs
+		}
+		b = b[n:]
+		if num == clientSequenceField && typ == protowire.VarintType {
+			v, m := protowire.ConsumeVarint(b)
+			if m < 0 {
+				return cs
+			}
+			cs, b = v, b[m:]
+			continue
+		}
+		m := protowire.ConsumeFieldValue(num, typ, b)
+		if m < 0 {
+			return cs
+		}
+		b = b[m:]
+	}
+	return cs
+}
+
+// clientSequenceField is the field number of IngestRequest.client_sequence.
+var clientSequenceField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("client_sequence").Number()
 
 // requestDecoder is one ingest stream's decoder of requests by hand: its
 // samples' decoder, and the robot's name and the session id of its last
@@ -120,7 +158,10 @@ func keep(last *string, p []byte) (s string, ok bool) {
 type arrivedRequest struct {
 	pb.IngestRequest
 	wire []byte
-	slab *slab
+	// malformed, when set, is why the bytes are not an IngestRequest (only
+	// ClientSequence is set then): the request is refused, naming it.
+	malformed error
+	slab      *slab
 	// dec, when set, decodes the common samples by hand (decodeRequest).
 	dec *requestDecoder
 	// arrived is when it was received (zero until ingestStream sets it

@@ -1097,8 +1097,16 @@ func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) 
 	}
 	sc.out = nil
 	for i := 0; i < len(batch); {
+		if err := batch[i].malformed; err != nil {
+			s.opt.Metrics.refused(codes.InvalidArgument)
+			refuse(&out[i], batch[i].GetClientSequence(), codes.InvalidArgument,
+				fmt.Sprintf("request: not a valid reckon.v1.IngestRequest encoding (%v); nothing was taken", err))
+			out[i].Refusal = pb.Refusal_REFUSAL_MALFORMED
+			i++
+			continue
+		}
 		j := i + 1
-		for j < len(batch) && batch[j].GetRobot() == batch[i].GetRobot() {
+		for j < len(batch) && batch[j].malformed == nil && batch[j].GetRobot() == batch[i].GetRobot() {
 			j++
 		}
 		s.ingestRun(batch[i:j], out[i:j], ob, sc)

@@ -63,7 +63,10 @@ type FusionServiceClient interface {
 	// the samples received; a sample without a verdict was not taken. A bad
 	// sample, an unknown, deleted, paused or quarantined robot and a journal
 	// that failed do not end the stream: each is the sample's own verdict
-	// (IngestResponse.status_code). A message past the service's size limit
+	// (IngestResponse.status_code). So is a request whose bytes are not an
+	// IngestRequest (a string that is not UTF-8, a field cut short):
+	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
+	// far as the bytes give it (else 0). A message past the service's size limit
 	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
@@ -256,7 +259,10 @@ type FusionServiceServer interface {
 	// the samples received; a sample without a verdict was not taken. A bad
 	// sample, an unknown, deleted, paused or quarantined robot and a journal
 	// that failed do not end the stream: each is the sample's own verdict
-	// (IngestResponse.status_code). A message past the service's size limit
+	// (IngestResponse.status_code). So is a request whose bytes are not an
+	// IngestRequest (a string that is not UTF-8, a field cut short):
+	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
+	// far as the bytes give it (else 0). A message past the service's size limit
 	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.

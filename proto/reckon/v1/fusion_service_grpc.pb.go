@@ -75,7 +75,9 @@ type FusionServiceClient interface {
 	// newest pose and a count of what it skipped; it never slows ingest. The
 	// stream ends with NOT_FOUND when the robot is deleted, with
 	// FAILED_PRECONDITION naming the problem when it is quarantined (and
-	// begins so for a quarantined robot), and with OK when the service stops.
+	// begins so for a quarantined robot), and with OK when the service stops
+	// (only then: CANCELLED or DEADLINE_EXCEEDED when the client cancels it
+	// or its deadline passes).
 	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
 	// -max-watchers-per-robot).
 	Watch(ctx context.Context, in *WatchRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchResponse], error)
@@ -271,7 +273,9 @@ type FusionServiceServer interface {
 	// newest pose and a count of what it skipped; it never slows ingest. The
 	// stream ends with NOT_FOUND when the robot is deleted, with
 	// FAILED_PRECONDITION naming the problem when it is quarantined (and
-	// begins so for a quarantined robot), and with OK when the service stops.
+	// begins so for a quarantined robot), and with OK when the service stops
+	// (only then: CANCELLED or DEADLINE_EXCEEDED when the client cancels it
+	// or its deadline passes).
 	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
 	// -max-watchers-per-robot).
 	Watch(*WatchRequest, grpc.ServerStreamingServer[WatchResponse]) error

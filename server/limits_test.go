@@ -10,6 +10,7 @@ import (
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/journal"
@@ -292,5 +293,56 @@ func TestIngestStreamLimit(t *testing.T) {
 	}
 	if err != nil {
 		t.Errorf("a stream after 10 closed: %v", err)
+	}
+}
+
+// TestConfigIDsPastStringLimit: a configuration naming a sensor or a
+// landmark by an id longer than -max-string-bytes (129 bytes at 128) is
+// refused at CreateRobot naming the field and the flag. It was created,
+// and every fix naming that sensor or landmark was then refused at the
+// limit: a robot that could never take one. An id at the limit is taken,
+// and so is a fix naming it.
+func TestConfigIDsPastStringLimit(t *testing.T) {
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	samp, cfg := cartRun(5, 1)
+	past, at := strings.Repeat("s", 129), strings.Repeat("s", 128)
+	for _, c := range []struct {
+		field string
+		set   func(c *pb.RobotConfig)
+	}{
+		{"sensors[0].id", func(c *pb.RobotConfig) { c.Sensors[0].Id = past }},
+		{"landmarks[0].id", func(c *pb.RobotConfig) { c.Landmarks = []*pb.Landmark{{Id: past, XM: 3}} }},
+	} {
+		bad := proto.Clone(cfg).(*pb.RobotConfig)
+		c.set(bad)
+		_, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "past", Config: bad})
+		if codeOf(err) != codes.InvalidArgument || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "-max-string-bytes") {
+			api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/past"})
+			t.Errorf("%s of 129 bytes: %v", c.field, err)
+		}
+	}
+	id := cfg.Sensors[0].GetId()
+	cfg.Sensors[0].Id = at
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatalf("a sensor id of 128 bytes: %v", err)
+	}
+	var fixes int
+	for _, s := range samp {
+		if f := s.GetFix(); f != nil && f.GetSensorId() == id {
+			f.SensorId = at
+			fixes++
+		}
+	}
+	taken := 0
+	for k, v := range feedStub(t, api, "robots/cart", "", 1, samp) {
+		if samp[k].GetFix() != nil && v.GetSequence() > 0 {
+			taken++
+		}
+	}
+	if fixes == 0 || taken != fixes {
+		t.Errorf("%d of %d fixes naming the 128-byte sensor taken", taken, fixes)
 	}
 }

@@ -492,6 +492,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
+	if err := s.checkConfigStrings(req.GetConfig()); err != nil {
+		return nil, err
+	}
 	fr, err := fusion.New(cfg)
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)

@@ -646,7 +646,8 @@ func (x *RobotConfig) GetLandmarkPositionStdM() float64 {
 // sits, its default covariance and its error model.
 type FixSensor struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its id, as fixes name it in sensor_id; "imu" is reserved.
+	// Its id, as fixes name it in sensor_id; "imu" is reserved. At most
+	// -max-string-bytes (128) bytes, as a fix's sensor_id.
 	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
 	// What its fixes measure; a fix of another kind is refused.
 	Kind FixKind `protobuf:"varint,2,opt,name=kind,proto3,enum=reckon.v1.FixKind" json:"kind,omitempty"`
@@ -1512,7 +1513,8 @@ func (x *Covariance) GetValues() []float64 {
 // Landmark is a mapped marker.
 type Landmark struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its id, as fixes name it.
+	// Its id, as fixes name it; at most -max-string-bytes (128) bytes, as a
+	// fix's landmark_id.
 	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
 	// Field x, metres.
 	XM float64 `protobuf:"fixed64,2,opt,name=x_m,json=xM,proto3" json:"x_m,omitempty"`

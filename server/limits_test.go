@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"runtime"
 	"strings"
+	"syscall"
 	"testing"
 	"time"
 
@@ -14,6 +15,7 @@ import (
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/journal"
+	"reckon.example/server/journal/faultfs"
 )
 
 // heapMiB returns the live heap after a collection, MiB.
@@ -344,5 +346,28 @@ func TestConfigIDsPastStringLimit(t *testing.T) {
 	}
 	if fixes == 0 || taken != fixes {
 		t.Errorf("%d of %d fixes naming the 128-byte sensor taken", taken, fixes)
+	}
+}
+
+// TestCreateRobotOutOfFiles: a robot's journal that cannot be made
+// because the process has no file descriptor left (EMFILE: each robot
+// keeps its journal open, so -max-robots robots under a low ulimit -n
+// reach it; reckond under ulimit -n 300 created 285 of 400) is refused
+// RESOURCE_EXHAUSTED naming ulimit -n and -max-robots, not INTERNAL, which
+// says the service is at fault; the name is free once descriptors are.
+func TestCreateRobotOutOfFiles(t *testing.T) {
+	ffs := faultfs.New(faultfs.NewMem(), nil)
+	srv := start(t, testConfig{Options: Options{JournalDir: "/j", FS: ffs}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	_, cfg := cartRun(6, 1)
+	ffs.SetInject(faultfs.From(faultfs.OpCreate, "cart", 0, syscall.EMFILE))
+	_, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	if codeOf(err) != codes.ResourceExhausted || !strings.Contains(err.Error(), "ulimit -n") || !strings.Contains(err.Error(), "-max-robots") {
+		t.Errorf("out of file descriptors: %v; want RESOURCE_EXHAUSTED naming ulimit -n and -max-robots", err)
+	}
+	ffs.SetInject(nil)
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Errorf("with descriptors again: %v", err)
 	}
 }

@@ -516,11 +516,15 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		j, err := journal.Create(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano(), Build: s.opt.Build}, s.journalOptions())
 		if err != nil {
 			s.release(name, true)
-			code := codes.Internal
-			if isNoSpace(err) {
-				code = codes.Unavailable
+			switch {
+			case isNoSpace(err):
+				return nil, status.Errorf(codes.Unavailable, "journal: %v", err)
+			case isOutOfFiles(err):
+				// Each robot keeps its journal open: INTERNAL said a
+				// fault of the service's, not a limit of the host's.
+				return nil, status.Errorf(codes.ResourceExhausted, "journal: %v: the service has no file descriptor left for another robot's journal (each robot keeps one open): raise ulimit -n (LimitNOFILE= of its unit), or lower -max-robots", err)
 			}
-			return nil, status.Errorf(code, "journal: %v", err)
+			return nil, status.Errorf(codes.Internal, "journal: %v", err)
 		}
 		r.journal = s.wrap(openJournal(j))
 	}

@@ -45,7 +45,8 @@ const (
 type FusionServiceClient interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
-	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots),
+	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots)
+	// or with no file descriptor left for its journal (naming ulimit -n),
 	// UNAVAILABLE when its journal's disk is full.
 	CreateRobot(ctx context.Context, in *CreateRobotRequest, opts ...grpc.CallOption) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
@@ -243,7 +244,8 @@ func (c *fusionServiceClient) StartRun(ctx context.Context, in *StartRunRequest,
 type FusionServiceServer interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
-	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots),
+	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots)
+	// or with no file descriptor left for its journal (naming ulimit -n),
 	// UNAVAILABLE when its journal's disk is full.
 	CreateRobot(context.Context, *CreateRobotRequest) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).

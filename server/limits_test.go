@@ -371,3 +371,44 @@ func TestCreateRobotOutOfFiles(t *testing.T) {
 		t.Errorf("with descriptors again: %v", err)
 	}
 }
+
+// TestListRobotsPageToken: ListRobots pages through the robots in name
+// order by next_page_token, and refuses a page token it did not give,
+// naming page_token. Before, any string was taken as a place in the name
+// order: "garbage" and "\x00" listed from the start, as if no token were
+// given.
+func TestListRobotsPageToken(t *testing.T) {
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	_, cfg := cartRun(7, 1)
+	for _, id := range []string{"e", "b", "d", "a", "c"} {
+		if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var names []string
+	req := &pb.ListRobotsRequest{PageSize: 2}
+	for pages := 0; pages < 5; pages++ {
+		list, err := api.ListRobots(ctx, req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, r := range list.GetRobots() {
+			names = append(names, r.GetName())
+		}
+		if req.PageToken = list.GetNextPageToken(); req.PageToken == "" {
+			break
+		}
+	}
+	if got := strings.Join(names, " "); got != "robots/a robots/b robots/c robots/d robots/e" {
+		t.Errorf("pages of 2 listed %s", got)
+	}
+	for _, tok := range []string{"garbage", "\x00", "robots/", "robots/B"} {
+		_, err := api.ListRobots(ctx, &pb.ListRobotsRequest{PageToken: tok})
+		if codeOf(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "page_token") {
+			t.Errorf("page token %q: %v", tok, err)
+		}
+	}
+}

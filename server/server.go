@@ -628,6 +628,13 @@ func (s *Server) ListRobots(ctx context.Context, req *pb.ListRobotsRequest) (*pb
 	if size == 0 || size > 1000 {
 		size = 1000
 	}
+	if tok := req.GetPageToken(); tok != "" {
+		// A token is the last name of a page; any other string listed
+		// from wherever it sorted (from the start for "garbage").
+		if _, err := RobotID(tok); err != nil {
+			return nil, status.Errorf(codes.InvalidArgument, "page_token: %q is not a token this service gave (a previous response's next_page_token)", tok)
+		}
+	}
 	out := &pb.ListRobotsResponse{}
 	for _, r := range s.list() {
 		if r.name <= req.GetPageToken() {

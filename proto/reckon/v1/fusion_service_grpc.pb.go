@@ -51,7 +51,8 @@ type FusionServiceClient interface {
 	CreateRobot(ctx context.Context, in *CreateRobotRequest, opts ...grpc.CallOption) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(ctx context.Context, in *GetRobotRequest, opts ...grpc.CallOption) (*GetRobotResponse, error)
-	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size.
+	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size
+	// or a page_token it did not give.
 	ListRobots(ctx context.Context, in *ListRobotsRequest, opts ...grpc.CallOption) (*ListRobotsResponse, error)
 	// Deletes a robot and closes its journal, which is set aside with every
 	// record kept (a quarantined robot's as it is, damage and all), so that
@@ -250,7 +251,8 @@ type FusionServiceServer interface {
 	CreateRobot(context.Context, *CreateRobotRequest) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(context.Context, *GetRobotRequest) (*GetRobotResponse, error)
-	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size.
+	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size
+	// or a page_token it did not give.
 	ListRobots(context.Context, *ListRobotsRequest) (*ListRobotsResponse, error)
 	// Deletes a robot and closes its journal, which is set aside with every
 	// record kept (a quarantined robot's as it is, damage and all), so that

@@ -349,26 +349,44 @@ func TestConfigIDsPastStringLimit(t *testing.T) {
 	}
 }
 
-// TestCreateRobotOutOfFiles: a robot's journal that cannot be made
-// because the process has no file descriptor left (EMFILE: each robot
-// keeps its journal open, so -max-robots robots under a low ulimit -n
-// reach it; reckond under ulimit -n 300 created 285 of 400) is refused
-// RESOURCE_EXHAUSTED naming ulimit -n and -max-robots, not INTERNAL, which
-// says the service is at fault; the name is free once descriptors are.
-func TestCreateRobotOutOfFiles(t *testing.T) {
-	ffs := faultfs.New(faultfs.NewMem(), nil)
-	srv := start(t, testConfig{Options: Options{JournalDir: "/j", FS: ffs}})
-	defer srv.stop()
-	api := stub(t, srv.addr)
-	_, cfg := cartRun(6, 1)
-	ffs.SetInject(faultfs.From(faultfs.OpCreate, "cart", 0, syscall.EMFILE))
-	_, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
-	if codeOf(err) != codes.ResourceExhausted || !strings.Contains(err.Error(), "ulimit -n") || !strings.Contains(err.Error(), "-max-robots") {
-		t.Errorf("out of file descriptors: %v; want RESOURCE_EXHAUSTED naming ulimit -n and -max-robots", err)
-	}
-	ffs.SetInject(nil)
-	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Errorf("with descriptors again: %v", err)
+// TestCreateRobotJournalErrors: a robot whose journal cannot be made says
+// why by its status, not INTERNAL, which says the service is at fault:
+// with no file descriptor left (EMFILE: each robot keeps its journal
+// open, so -max-robots robots under a low ulimit -n reach it; reckond
+// under ulimit -n 300 created 285 of 400) RESOURCE_EXHAUSTED naming
+// ulimit -n and -max-robots; in a directory it may not write (EACCES, as
+// reckond's own user met a directory made read-only; EROFS)
+// FAILED_PRECONDITION saying so. The name is free once the journal can be
+// made.
+func TestCreateRobotJournalErrors(t *testing.T) {
+	for _, c := range []struct {
+		errno syscall.Errno
+		code  codes.Code
+		says  []string
+	}{
+		{syscall.EMFILE, codes.ResourceExhausted, []string{"ulimit -n", "-max-robots"}},
+		{syscall.EACCES, codes.FailedPrecondition, []string{"cannot be written"}},
+		{syscall.EROFS, codes.FailedPrecondition, []string{"read-only"}},
+	} {
+		ffs := faultfs.New(faultfs.NewMem(), nil)
+		srv := start(t, testConfig{Options: Options{JournalDir: "/j", FS: ffs}})
+		api := stub(t, srv.addr)
+		_, cfg := cartRun(6, 1)
+		ffs.SetInject(faultfs.From(faultfs.OpCreate, "cart", 0, c.errno))
+		_, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+		if codeOf(err) != c.code {
+			t.Errorf("%v: %v; want %v", c.errno, err, c.code)
+		}
+		for _, w := range c.says {
+			if err == nil || !strings.Contains(err.Error(), w) {
+				t.Errorf("%v: %v; want it to say %q", c.errno, err, w)
+			}
+		}
+		ffs.SetInject(nil)
+		if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+			t.Errorf("%v, then the journal can be made: %v", c.errno, err)
+		}
+		srv.stop()
 	}
 }
 

@@ -523,6 +523,8 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 				// Each robot keeps its journal open: INTERNAL said a
 				// fault of the service's, not a limit of the host's.
 				return nil, status.Errorf(codes.ResourceExhausted, "journal: %v: the service has no file descriptor left for another robot's journal (each robot keeps one open): raise ulimit -n (LimitNOFILE= of its unit), or lower -max-robots", err)
+			case isNotWritable(err):
+				return nil, status.Errorf(codes.FailedPrecondition, "journal: %v: the journal directory cannot be written (its permissions, or a file system mounted read-only); create the robot again once it can", err)
 			}
 			return nil, status.Errorf(codes.Internal, "journal: %v", err)
 		}

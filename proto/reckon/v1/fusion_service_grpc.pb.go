@@ -47,7 +47,8 @@ type FusionServiceClient interface {
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
 	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots)
 	// or with no file descriptor left for its journal (naming ulimit -n),
-	// UNAVAILABLE when its journal's disk is full.
+	// UNAVAILABLE when its journal's disk is full, FAILED_PRECONDITION when
+	// the journal directory cannot be written (or is gone).
 	CreateRobot(ctx context.Context, in *CreateRobotRequest, opts ...grpc.CallOption) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(ctx context.Context, in *GetRobotRequest, opts ...grpc.CallOption) (*GetRobotResponse, error)
@@ -247,7 +248,8 @@ type FusionServiceServer interface {
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
 	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots)
 	// or with no file descriptor left for its journal (naming ulimit -n),
-	// UNAVAILABLE when its journal's disk is full.
+	// UNAVAILABLE when its journal's disk is full, FAILED_PRECONDITION when
+	// the journal directory cannot be written (or is gone).
 	CreateRobot(context.Context, *CreateRobotRequest) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(context.Context, *GetRobotRequest) (*GetRobotResponse, error)

@@ -8,7 +8,6 @@ import (
 	"google.golang.org/grpc/encoding"
 	_ "google.golang.org/grpc/encoding/proto" // registers the protobuf codec that codec wraps
 	"google.golang.org/grpc/mem"
-	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -58,37 +57,6 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	r.wire = b
 	return nil
 }
-
-// clientSequenceOf returns the client sequence an encoded IngestRequest
-// gives as far as it can be read (the last one, as a decoder keeps), or 0,
-// so that the verdict on a request that does not decode still names it.
-func clientSequenceOf(b []byte) uint64 {
-	var cs uint64
-	for len(b) > 0 {
-		num, typ, n := protowire.ConsumeTag(b)
-		if n < 0 {
-			return cs
-		}
-		b = b[n:]
-		if num == clientSequenceField && typ == protowire.VarintType {
-			v, m := protowire.ConsumeVarint(b)
-			if m < 0 {
-				return cs
-			}
-			cs, b = v, b[m:]
-			continue
-		}
-		m := protowire.ConsumeFieldValue(num, typ, b)
-		if m < 0 {
-			return cs
-		}
-		b = b[m:]
-	}
-	return cs
-}
-
-// clientSequenceField is the field number of IngestRequest.client_sequence.
-var clientSequenceField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("client_sequence").Number()
 
 // requestDecoder is one ingest stream's decoder of requests by hand: its
 // samples' decoder, and the robot's name and the session id of its last

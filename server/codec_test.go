@@ -50,10 +50,12 @@ func TestCodec(t *testing.T) {
 			}
 		}
 	}
-	// A request that does not decode is an error, and is not kept.
+	// A request that does not decode is marked malformed with its client
+	// sequence (answered as its own verdict, the stream going on), and is
+	// not kept.
 	got := &arrivedRequest{slab: &slab{}}
-	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b[:len(b)-1])}, got); err == nil || got.wire != nil {
-		t.Errorf("a cut request: err %v, kept %x", err, got.wire)
+	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b[:len(b)-1])}, got); err != nil || got.malformed == nil || got.GetClientSequence() != 4 || got.wire != nil {
+		t.Errorf("a cut request: err %v, malformed %v, client sequence %d, kept %x", err, got.malformed, got.GetClientSequence(), got.wire)
 	}
 }
 

@@ -233,6 +233,14 @@ const (
 	// Validate): each marker beyond the first keeps one more candidate.
 	maxDistinctMarkers = 8
 	maxNISWindow       = 1000
+	// maxHoldAheadLimitNs, maxExtrapolationLimitNs and
+	// maxOdometryGapLimitNs bound max_hold_ahead_ns, max_extrapolation_ns
+	// and max_odometry_gap_ns (CheckBounds): unbounded, a robot created
+	// with int64's largest extrapolated its pose 292 years ahead
+	// (GetPoseAt answered x = 4.6e8 m).
+	maxHoldAheadLimitNs     = 60e9
+	maxExtrapolationLimitNs = 10e9
+	maxOdometryGapLimitNs   = 30 * 86400e9
 	// maxIMULatencyNs bounds imu_latency_ns (checked by Validate): an IMU
 	// that lags its readings by more than a second is no heading source.
 	maxIMULatencyNs = 1e9
@@ -409,6 +417,9 @@ func (c Config) CheckBounds() error {
 		{"max_held", int64(c.MaxHeld), maxHeldLimit, "inputs waiting for odometry"},
 		{"recovery.count", int64(c.Recovery.Count), maxRecoveryCount, "refused fixes kept as evidence of a move"},
 		{"trust.nis_window", int64(c.Trust.NISWindow), maxNISWindow, "fixes in the consistency window"},
+		{"max_hold_ahead_ns", c.MaxHoldAheadNs, maxHoldAheadLimitNs, "a minute: a fix waits for odometry that comes within a second or two"},
+		{"max_extrapolation_ns", c.MaxExtrapolationNs, maxExtrapolationLimitNs, "10 s: a pose predicted further past the newest odometry is no estimate"},
+		{"max_odometry_gap_ns", c.MaxOdometryGapNs, maxOdometryGapLimitNs, "30 days: after a longer pause start a new run"},
 	} {
 		if n.v > n.most {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)

@@ -16,7 +16,10 @@ import (
 // snapshot past a journal record. CheckBounds refuses each, naming the
 // field, and takes its largest value; New still takes a configuration
 // past them (one a journal written before the bounds may hold), except
-// the allocation at creation, which is not tried here.
+// the allocation at creation, which is not tried here. max_hold_ahead_ns,
+// max_extrapolation_ns and max_odometry_gap_ns were unbounded: with
+// int64's largest, GetPoseAt extrapolated a pose 292 years ahead (the
+// service probe of session 26).
 func TestConfigUpperBounds(t *testing.T) {
 	for _, c := range []struct {
 		field      string
@@ -28,6 +31,9 @@ func TestConfigUpperBounds(t *testing.T) {
 		{"recovery.count", func(c *Config, v int64) { c.Recovery.Count = int(v) }, maxRecoveryCount, maxRecoveryCount + 1},
 		{"trust.nis_window", func(c *Config, v int64) { c.Trust.NISWindow = int(v) }, maxNISWindow, 2_000_000_000},
 		{"sensors[0].latency_ns", func(c *Config, v int64) { c.Sensors[0].LatencyNs = v }, maxWindowNs, math.MaxInt64},
+		{"max_hold_ahead_ns", func(c *Config, v int64) { c.MaxHoldAheadNs = v }, maxHoldAheadLimitNs, math.MaxInt64},
+		{"max_extrapolation_ns", func(c *Config, v int64) { c.MaxExtrapolationNs = v }, maxExtrapolationLimitNs, math.MaxInt64},
+		{"max_odometry_gap_ns", func(c *Config, v int64) { c.MaxOdometryGapNs = v }, maxOdometryGapLimitNs, maxOdometryGapLimitNs + 1},
 	} {
 		cfg := threeWheels()
 		c.set(&cfg, c.past)

@@ -407,10 +407,10 @@ type RobotConfig struct {
 	// Most samples held waiting for odometry (default 256, at most 1024).
 	MaxHeld int32 `protobuf:"varint,8,opt,name=max_held,json=maxHeld,proto3" json:"max_held,omitempty"`
 	// How far past the newest odometry a held sample may be stamped,
-	// nanoseconds (default 1 s).
+	// nanoseconds (default 1 s, at most 60 s).
 	MaxHoldAheadNs int64 `protobuf:"varint,9,opt,name=max_hold_ahead_ns,json=maxHoldAheadNs,proto3" json:"max_hold_ahead_ns,omitempty"`
 	// How far past the newest odometry a pose may be extrapolated,
-	// nanoseconds (default 250 ms).
+	// nanoseconds (default 250 ms, at most 10 s).
 	MaxExtrapolationNs int64 `protobuf:"varint,10,opt,name=max_extrapolation_ns,json=maxExtrapolationNs,proto3" json:"max_extrapolation_ns,omitempty"`
 	// Odometry faster than this is refused as implausible (default 5 m/s).
 	MaxSpeedMPerS float64 `protobuf:"fixed64,11,opt,name=max_speed_m_per_s,json=maxSpeedMPerS,proto3" json:"max_speed_m_per_s,omitempty"`
@@ -434,7 +434,8 @@ type RobotConfig struct {
 	// Online calibration of the odometry (default off).
 	Calibration *OdometryCalibration `protobuf:"bytes,19,opt,name=calibration,proto3" json:"calibration,omitempty"`
 	// Odometry stamped more than this past the newest odometry is refused
-	// (REFUSAL_TOO_FAR_AHEAD), nanoseconds (default 1 day): a stamp that
+	// (REFUSAL_TOO_FAR_AHEAD), nanoseconds (default 1 day, at most 30
+	// days): a stamp that
 	// jumps that far is a corrupt stamp or message, and taking it would put
 	// the robot's clock out of reach of every sample after it. A controller
 	// whose odometry really stopped for longer starts a new run (run_start)

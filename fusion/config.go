@@ -241,6 +241,11 @@ const (
 	maxHoldAheadLimitNs     = 60e9
 	maxExtrapolationLimitNs = 10e9
 	maxOdometryGapLimitNs   = 30 * 86400e9
+	// minHuberK bounds a Huber sensor's robust_parameter from below
+	// (CheckBounds): at 5e-324 each fix's covariance was inflated past
+	// float64 and the fix refused as a numerical fault (session 26's
+	// probe).
+	minHuberK = 0.01
 	// maxIMULatencyNs bounds imu_latency_ns (checked by Validate): an IMU
 	// that lags its readings by more than a second is no heading source.
 	maxIMULatencyNs = 1e9
@@ -427,6 +432,17 @@ func (c Config) CheckBounds() error {
 	}
 	if err := c.checkUnits(); err != nil {
 		return err
+	}
+	for i, sen := range c.Sensors {
+		// Validate takes any positive parameter and ignores it without
+		// a robust loss; a new robot is held to values that mean one.
+		f := fmt.Sprintf("sensors[%d].robust_parameter", i)
+		switch p := sen.RobustParameter; {
+		case math.IsNaN(p) || math.IsInf(p, 0):
+			return cfgErr(f, "%v is not a number (0 for the default)", p)
+		case sen.Robust == RobustHuber && p != 0 && p < minHuberK:
+			return cfgErr(f, "%v is less than %g: Huber's k is in standard deviations (common practice %g), and one this small makes every fix count for almost nothing, down to a covariance no float64 holds", p, minHuberK, DefaultHuberK)
+		}
 	}
 	// Positions as samples' (maxFieldM).
 	if !lengthsOK(c.StartPose.X, c.StartPose.Y) {

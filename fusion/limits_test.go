@@ -222,3 +222,37 @@ func TestTinyProbabilities(t *testing.T) {
 		}
 	}
 }
+
+// TestRobustParameterBounds: a new robot's Huber sensor takes a k of at
+// least minHuberK (at 5e-324, which Validate takes, each fix's covariance
+// was inflated past float64 and the fix refused as a numerical fault: the
+// service probe of session 26), and no sensor takes a robust_parameter
+// that is not a number, which Validate ignores without a robust loss.
+// CheckBounds refuses each naming the field; the default and a k at the
+// bound pass.
+func TestRobustParameterBounds(t *testing.T) {
+	for _, c := range []struct {
+		name  string
+		robst RobustLoss
+		p     float64
+		ok    bool
+	}{
+		{"huber tiny", RobustHuber, 5e-324, false},
+		{"huber below the bound", RobustHuber, minHuberK / 2, false},
+		{"huber at the bound", RobustHuber, minHuberK, true},
+		{"huber default", RobustHuber, 0, true},
+		{"none NaN", RobustNone, math.NaN(), false},
+		{"student_t infinite", RobustStudentT, math.Inf(1), false},
+		{"student_t 3", RobustStudentT, 3, true},
+	} {
+		cfg := threeWheels()
+		cfg.Sensors[0].Robust, cfg.Sensors[0].RobustParameter = c.robst, c.p
+		err := cfg.CheckBounds()
+		switch {
+		case c.ok && err != nil:
+			t.Errorf("%s: %v", c.name, err)
+		case !c.ok && (!errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), "sensors[0].robust_parameter")):
+			t.Errorf("%s: %v, want ErrConfig naming sensors[0].robust_parameter", c.name, err)
+		}
+	}
+}

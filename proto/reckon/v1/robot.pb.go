@@ -669,8 +669,8 @@ type FixSensor struct {
 	CorrelatedFraction float64 `protobuf:"fixed64,7,opt,name=correlated_fraction,json=correlatedFraction,proto3" json:"correlated_fraction,omitempty"`
 	// Robust weighting of the sensor's fixes (default none).
 	Robust RobustLoss `protobuf:"varint,8,opt,name=robust,proto3,enum=reckon.v1.RobustLoss" json:"robust,omitempty"`
-	// Huber's k in standard deviations (default 1.345) or the Student-t
-	// degrees of freedom (default 4; more than 1).
+	// Huber's k in standard deviations (default 1.345; at least 0.01) or
+	// the Student-t degrees of freedom (default 4; more than 1).
 	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
 	// Standard deviations of the error of mount (as reckon calibrate
 	// writes them: the fitted mount's standard errors). When set, the

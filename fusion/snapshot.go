@@ -180,6 +180,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		if num == 1 {
 			version = d.uint(num)
+			d.version = version
 		} else if !readsVersion(version) {
 			return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrSnapshot, version, SnapshotVersion)
 		}
@@ -605,19 +606,25 @@ func decState(d *wdec) estimator.State {
 // decEIV reads an estimate's errors-in-variables moments: 16 values
 // (version 18, the pose and the IMU offset), or the 9 of the pose alone
 // (versions 9 to 17), which take the pose block and leave the offset's
-// row and column zero.
+// row and column zero. Another count than the version's is a damaged or
+// mislabelled snapshot: read as the other version's, the moments would
+// land in the wrong places.
 func decEIV(d *wdec, num protowire.Number) estimator.EIVMoments {
 	var m estimator.EIVMoments
 	v := d.doubleSlice(num)
-	switch len(v) {
-	case len(m):
-		copy(m[:], v)
-	case 9:
+	want := len(m)
+	if d.version < 18 {
+		want = 9
+	}
+	switch {
+	case len(v) != want:
+		d.fail("estimate: %d errors-in-variables moments in a version %d snapshot, want %d", len(v), d.version, want)
+	case want == 9:
 		for a := 0; a < 3; a++ {
 			copy(m[a*estimator.EIVDim:a*estimator.EIVDim+3], v[a*3:a*3+3])
 		}
 	default:
-		d.fail("estimate: %d errors-in-variables moments, want %d or 9", len(v), len(m))
+		copy(m[:], v)
 	}
 	return m
 }

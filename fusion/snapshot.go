@@ -411,6 +411,9 @@ func (r *Robot) checkValues() error {
 	if what := stateFault(&cur); what != "" {
 		return fmt.Errorf("%w: the estimate %s", ErrSnapshot, what)
 	}
+	if what := r.robotFault(); what != "" {
+		return fmt.Errorf("%w: %s", ErrSnapshot, what)
+	}
 	if r.base.est.Size() != 0 {
 		if what := stateFault(&r.base.est); what != "" {
 			return fmt.Errorf("%w: the window's starting estimate %s", ErrSnapshot, what)
@@ -434,6 +437,39 @@ func (r *Robot) checkValues() error {
 		}
 	}
 	return nil
+}
+
+// robotFault says what is wrong with the numbers the robot computes new
+// steps with ("" if nothing): the IMU slip comparison's (its factor 0 or
+// at least 1 and finite, its sums finite, its variances not negative, its
+// anchors' headings finite), the scrub block's turn sums, the last IMU
+// heading and the one that raised imu_unchanged. A slip factor of +Inf
+// multiplies every new step's covariance into infinities: the restored
+// robot answered each sample with a NaN covariance and numerical_fault.
+func (r *Robot) robotFault() string {
+	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	sl := &r.slip
+	switch {
+	case !finite(sl.factor) || sl.factor != 0 && sl.factor < 1:
+		return fmt.Sprintf("slip factor %v is neither 0 nor a finite number of at least 1", sl.factor)
+	case !finite(sl.turnSum) || !finite(sl.varSum) || sl.varSum < 0:
+		return fmt.Sprintf("slip sums %v rad and %v rad^2 are not a finite sum and variance", sl.turnSum, sl.varSum)
+	}
+	for _, a := range []*turnAnchor{&sl.anchor, &sl.long} {
+		if a.set && (!finite(a.heading) || !finite(a.varRad2) || a.varRad2 < 0) {
+			return fmt.Sprintf("slip comparison anchor heading %v rad with variance %v is not finite or not a variance", a.heading, a.varRad2)
+		}
+	}
+	if !finite(r.scrub.sum) || !finite(r.scrub.peak) || r.scrub.peak < 0 {
+		return fmt.Sprintf("scrub block sum %v rad and peak %v rad are not finite, or the peak negative", r.scrub.sum, r.scrub.peak)
+	}
+	if r.lastIMU != nil && !finite(*r.lastIMU) {
+		return fmt.Sprintf("last IMU heading %v is not finite", *r.lastIMU)
+	}
+	if r.trust.frozen && !finite(r.trust.frozenZ) {
+		return fmt.Sprintf("unchanged IMU heading %v is not finite", r.trust.frozenZ)
+	}
+	return ""
 }
 
 // stateFault says what is wrong with an estimate's numbers ("" if

@@ -236,6 +236,17 @@ const (
 	// maxIMULatencyNs bounds imu_latency_ns (checked by Validate): an IMU
 	// that lags its readings by more than a second is no heading source.
 	maxIMULatencyNs = 1e9
+	// minProbability bounds gate_probability,
+	// recovery.agree_probability and trust.consistency_probability from
+	// below (checked by Validate): each becomes a threshold through
+	// gonum's chi-square quantile, which panics below about 1e-45 for
+	// some degrees of freedom (measured for 1 to 3100: 1e-250 and less at
+	// 1, 1e-200 at 2, 1e-100 at 26, 5e-324 at every one), and a
+	// probability that small passes nothing anyway. No journal can hold
+	// one below it for gate_probability or the agreement (New panicked);
+	// one holding a consistency probability below it is refused (it
+	// panicked once a sensor's consistency window filled).
+	minProbability = 1e-30
 )
 
 // ErrConfig marks every configuration error.
@@ -509,6 +520,9 @@ func (c *Config) checkLimits() error {
 	for _, p := range probs {
 		if !(p.v > 0 && p.v < 1) {
 			return cfgErr(p.name, "%v must be inside (0, 1)", p.v)
+		}
+		if p.v < minProbability {
+			return cfgErr(p.name, "%v is less than %g: it is the probability that a consistent input passes (0.99), and one this small passes none", p.v, minProbability)
 		}
 	}
 	ints := []struct {

@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"errors"
+	"fmt"
 	"math"
 	"strings"
 	"testing"
@@ -174,5 +175,44 @@ func TestConfigUnitsMistakes(t *testing.T) {
 	cfg.Wheels[0].XM, cfg.Sensors[1].Mount.X, cfg.Sensors[0].LatencyNs, cfg.WindowNs = 0.6, 0.9, 80e6, 2e9
 	if err := cfg.CheckBounds(); err != nil {
 		t.Errorf("a small robot's values: %v", err)
+	}
+}
+
+// TestTinyProbabilities: a probability of the configuration at the
+// smallest float64 (5e-324) is inside (0, 1), and gate_probability there
+// made New panic inside gonum's chi-square quantile ("Initial interval is
+// not a bounding interval"): one CreateRobot stopped the whole service.
+// Validate refuses each probability below minProbability, naming the
+// field, and New takes one at it.
+func TestTinyProbabilities(t *testing.T) {
+	for _, c := range []struct {
+		field string
+		set   func(c *Config, p float64)
+	}{
+		{"gate_probability", func(c *Config, p float64) { c.GateProbability = p }},
+		{"recovery.agree_probability", func(c *Config, p float64) { c.Recovery.AgreeProbability = p }},
+		{"trust.consistency_probability", func(c *Config, p float64) { c.Trust.ConsistencyProbability = p }},
+	} {
+		for _, p := range []float64{5e-324, 1e-300} {
+			cfg := threeWheels()
+			c.set(&cfg, p)
+			var err error
+			func() {
+				defer func() {
+					if v := recover(); v != nil {
+						err = fmt.Errorf("panic: %v", v)
+					}
+				}()
+				_, err = New(cfg)
+			}()
+			if !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) {
+				t.Errorf("%s = %g: %v; want a refusal naming it", c.field, p, err)
+			}
+		}
+		cfg := threeWheels()
+		c.set(&cfg, minProbability)
+		if _, err := New(cfg); err != nil {
+			t.Errorf("%s at %g: %v", c.field, minProbability, err)
+		}
 	}
 }

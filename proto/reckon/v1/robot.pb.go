@@ -395,7 +395,8 @@ type RobotConfig struct {
 	ImuMode ImuMode `protobuf:"varint,3,opt,name=imu_mode,json=imuMode,proto3,enum=reckon.v1.ImuMode" json:"imu_mode,omitempty"`
 	// The noise model; zero fields take the defaults.
 	Noise *NoiseModel `protobuf:"bytes,4,opt,name=noise,proto3" json:"noise,omitempty"`
-	// Chi-square probability of the fix gate (default 0.99).
+	// Chi-square probability of the fix gate (default 0.99), inside
+	// [1e-30, 1).
 	GateProbability float64 `protobuf:"fixed64,5,opt,name=gate_probability,json=gateProbability,proto3" json:"gate_probability,omitempty"`
 	// Gate IMU headings too (default off: wheels slip, IMUs rarely jump).
 	GateImu bool `protobuf:"varint,6,opt,name=gate_imu,json=gateImu,proto3" json:"gate_imu,omitempty"`
@@ -645,7 +646,8 @@ func (x *RobotConfig) GetLandmarkPositionStdM() float64 {
 // sits, its default covariance and its error model.
 type FixSensor struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its id, as fixes name it in sensor_id; "imu" is reserved.
+	// Its id, as fixes name it in sensor_id; "imu" is reserved. At most
+	// -max-string-bytes (128) bytes, as a fix's sensor_id.
 	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
 	// What its fixes measure; a fix of another kind is refused.
 	Kind FixKind `protobuf:"varint,2,opt,name=kind,proto3,enum=reckon.v1.FixKind" json:"kind,omitempty"`
@@ -1223,7 +1225,8 @@ type MoveRecovery struct {
 	// Consecutive refused pose fixes it takes (default 3, at least 2, at
 	// most 100).
 	Count int32 `protobuf:"varint,2,opt,name=count,proto3" json:"count,omitempty"`
-	// Chi-square probability within which they must agree (default 0.99).
+	// Chi-square probability within which they must agree (default 0.99),
+	// inside [1e-30, 1).
 	AgreeProbability float64 `protobuf:"fixed64,3,opt,name=agree_probability,json=agreeProbability,proto3" json:"agree_probability,omitempty"`
 	// How many different markers the agreeing refused fixes must come from
 	// (default 2, at least 1, at most 8): pose fixes by PoseFix.marker,
@@ -1312,7 +1315,8 @@ type TrustLimits struct {
 	// Probability the windowed NIS sum must stay below (default 0.999; for
 	// the IMU window a tenth of the rest, 0.9999, because IMU headings come
 	// about ten times as often). Once above, DISTRUST_REASON_INCONSISTENT
-	// stands until the sum is back to its chi-square median.
+	// stands until the sum is back to its chi-square median. Inside
+	// [1e-30, 1).
 	ConsistencyProbability float64 `protobuf:"fixed64,4,opt,name=consistency_probability,json=consistencyProbability,proto3" json:"consistency_probability,omitempty"`
 	// Consecutive refused fixes that raise distrust (default 5).
 	RefusedInARow int32 `protobuf:"varint,5,opt,name=refused_in_a_row,json=refusedInARow,proto3" json:"refused_in_a_row,omitempty"`
@@ -1509,7 +1513,8 @@ func (x *Covariance) GetValues() []float64 {
 // Landmark is a mapped marker.
 type Landmark struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its id, as fixes name it.
+	// Its id, as fixes name it; at most -max-string-bytes (128) bytes, as a
+	// fix's landmark_id.
 	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
 	// Field x, metres.
 	XM float64 `protobuf:"fixed64,2,opt,name=x_m,json=xM,proto3" json:"x_m,omitempty"`

@@ -217,3 +217,38 @@ func TestInitOffsetEIV(t *testing.T) {
 		}
 	}
 }
+
+// TestResetKeepsOffsetEIV: Reset sets the pose alone. The offset keeps its
+// covariance with the turn scale (c's offset component, P[imu_offset,
+// s_t]) and its error, so its own moment E[c_off e_off] stays as it was;
+// the pose's c is zero after the reset and its new error (the reseed's or
+// the fix's) is independent of the reported turns, so every moment with a
+// pose index is zero (the definition M = E[c e^T], DEVELOPERS.md "Design:
+// State"; expectation of independent variables, common practice). A move
+// recovery that keeps the IMU offset (fusion's keepOffset) goes on with
+// that moment; zeroing it dropped the pull the offset's part of an IMU
+// heading's update carries.
+func TestResetKeepsOffsetEIV(t *testing.T) {
+	rng := rand.New(rand.NewPCG(47, 48))
+	f := eivFilter(t, rng)
+	ts := f.Layout().TurnScale()
+	before, pOffTs := f.st.eiv, f.st.p[IOffset*stride+ts]
+	c := [9]float64{1e-2, 0, 0, 0, 1e-2, 0, 0, 0, 1e-3}
+	if err := f.Reset(Pose{1, 2, 0.3}, &c); err != nil {
+		t.Fatal(err)
+	}
+	if got := f.st.p[IOffset*stride+ts]; got != pOffTs {
+		t.Fatalf("P[imu_offset, s_t] = %g after the reset, was %g", got, pOffTs)
+	}
+	for a := 0; a < EIVDim; a++ {
+		for b := 0; b < EIVDim; b++ {
+			want := 0.0
+			if a == IOffset && b == IOffset {
+				want = before[a*EIVDim+b]
+			}
+			if got := f.st.eiv[a*EIVDim+b]; got != want {
+				t.Errorf("M[%d][%d] = %g after the reset, want %g", a, b, got, want)
+			}
+		}
+	}
+}

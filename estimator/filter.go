@@ -963,7 +963,11 @@ func (f *Filter) InitOffset(z, r float64) error {
 // Reset sets the pose part of the estimate to pose with 3x3 covariance c
 // (row-major), clearing its correlation with every other state (the IMU
 // offset, the calibration, the biases), whose own covariance is kept. The
-// caller re-initialises the offset on the next IMU sample.
+// caller re-initialises the offset on the next IMU sample, unless it keeps
+// it (a move recovery): so the errors-in-variables moments keep the
+// offset's own, E[c_off e_off], neither of which a reset changes, and
+// lose every one with a pose index (the pose's c is zero now, and its new
+// error is the reset's, independent of the reported turns).
 func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	if !finite(pose.X) || !finite(pose.Y) || !finite(pose.Heading) {
 		return fmt.Errorf("pose: %w", ErrNotFinite)
@@ -972,7 +976,9 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 		return fmt.Errorf("pose covariance: %w", err)
 	}
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = pose.X, pose.Y, Wrap(pose.Heading)
-	f.st.eiv = [eivSize]float64{} // the pose no longer correlates with the scales
+	off := f.st.eiv[IOffset*eivDim+IOffset] // zero without an offset
+	f.st.eiv = [eivSize]float64{}
+	f.st.eiv[IOffset*eivDim+IOffset] = off
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
 			f.st.p[i*stride+j] = c[i*3+j]

@@ -180,6 +180,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		if num == 1 {
 			version = d.uint(num)
+			d.version = version
 		} else if !readsVersion(version) {
 			return nil, fmt.Errorf("%w: version %d, this build reads %d", ErrSnapshot, version, SnapshotVersion)
 		}
@@ -410,6 +411,9 @@ func (r *Robot) checkValues() error {
 	if what := stateFault(&cur); what != "" {
 		return fmt.Errorf("%w: the estimate %s", ErrSnapshot, what)
 	}
+	if what := r.robotFault(); what != "" {
+		return fmt.Errorf("%w: %s", ErrSnapshot, what)
+	}
 	if r.base.est.Size() != 0 {
 		if what := stateFault(&r.base.est); what != "" {
 			return fmt.Errorf("%w: the window's starting estimate %s", ErrSnapshot, what)
@@ -433,6 +437,39 @@ func (r *Robot) checkValues() error {
 		}
 	}
 	return nil
+}
+
+// robotFault says what is wrong with the numbers the robot computes new
+// steps with ("" if nothing): the IMU slip comparison's (its factor 0 or
+// at least 1 and finite, its sums finite, its variances not negative, its
+// anchors' headings finite), the scrub block's turn sums, the last IMU
+// heading and the one that raised imu_unchanged. A slip factor of +Inf
+// multiplies every new step's covariance into infinities: the restored
+// robot answered each sample with a NaN covariance and numerical_fault.
+func (r *Robot) robotFault() string {
+	finite := func(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+	sl := &r.slip
+	switch {
+	case !finite(sl.factor) || sl.factor != 0 && sl.factor < 1:
+		return fmt.Sprintf("slip factor %v is neither 0 nor a finite number of at least 1", sl.factor)
+	case !finite(sl.turnSum) || !finite(sl.varSum) || sl.varSum < 0:
+		return fmt.Sprintf("slip sums %v rad and %v rad^2 are not a finite sum and variance", sl.turnSum, sl.varSum)
+	}
+	for _, a := range []*turnAnchor{&sl.anchor, &sl.long} {
+		if a.set && (!finite(a.heading) || !finite(a.varRad2) || a.varRad2 < 0) {
+			return fmt.Sprintf("slip comparison anchor heading %v rad with variance %v is not finite or not a variance", a.heading, a.varRad2)
+		}
+	}
+	if !finite(r.scrub.sum) || !finite(r.scrub.peak) || r.scrub.peak < 0 {
+		return fmt.Sprintf("scrub block sum %v rad and peak %v rad are not finite, or the peak negative", r.scrub.sum, r.scrub.peak)
+	}
+	if r.lastIMU != nil && !finite(*r.lastIMU) {
+		return fmt.Sprintf("last IMU heading %v is not finite", *r.lastIMU)
+	}
+	if r.trust.frozen && !finite(r.trust.frozenZ) {
+		return fmt.Sprintf("unchanged IMU heading %v is not finite", r.trust.frozenZ)
+	}
+	return ""
 }
 
 // stateFault says what is wrong with an estimate's numbers ("" if
@@ -605,19 +642,25 @@ func decState(d *wdec) estimator.State {
 // decEIV reads an estimate's errors-in-variables moments: 16 values
 // (version 18, the pose and the IMU offset), or the 9 of the pose alone
 // (versions 9 to 17), which take the pose block and leave the offset's
-// row and column zero.
+// row and column zero. Another count than the version's is a damaged or
+// mislabelled snapshot: read as the other version's, the moments would
+// land in the wrong places.
 func decEIV(d *wdec, num protowire.Number) estimator.EIVMoments {
 	var m estimator.EIVMoments
 	v := d.doubleSlice(num)
-	switch len(v) {
-	case len(m):
-		copy(m[:], v)
-	case 9:
+	want := len(m)
+	if d.version < 18 {
+		want = 9
+	}
+	switch {
+	case len(v) != want:
+		d.fail("estimate: %d errors-in-variables moments in a version %d snapshot, want %d", len(v), d.version, want)
+	case want == 9:
 		for a := 0; a < 3; a++ {
 			copy(m[a*estimator.EIVDim:a*estimator.EIVDim+3], v[a*3:a*3+3])
 		}
 	default:
-		d.fail("estimate: %d errors-in-variables moments, want %d or 9", len(v), len(m))
+		copy(m[:], v)
 	}
 	return m
 }

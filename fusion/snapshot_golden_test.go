@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"reckon.example/fusion"
@@ -203,6 +204,36 @@ func TestSnapshotKeepsSensorRobust(t *testing.T) {
 		}
 		if s.Robust != w || s.RobustParameter != k {
 			t.Errorf("version 13: sensor %q: robust %v parameter %v, want the configuration's %v %v", s.ID, s.Robust, s.RobustParameter, w, k)
+		}
+	}
+}
+
+// TestSnapshotMomentsMatchVersion: the count of an estimate's
+// errors-in-variables moments is its snapshot version's, 16 from version
+// 18 and 9 before (testdata/README.md; the protocol buffer layout,
+// proto/reckon/v1/journal.proto): the golden snapshot of version 17
+// relabelled 18, and that of 18 relabelled 17, are refused with
+// ErrSnapshot naming the count. Without the check the first restored with
+// its pose block's moments read as if they covered the IMU offset too, and
+// the second its 16 as a version 17's.
+func TestSnapshotMomentsMatchVersion(t *testing.T) {
+	cfg, _ := goldenRobot()
+	for _, c := range []struct{ from, to byte }{{17, 18}, {18, 17}} {
+		b, err := os.ReadFile(filepath.Join("..", "testdata", "snapshots", fmt.Sprintf("greenhouse-v%d.bin", c.from)))
+		if err != nil {
+			t.Fatal(err)
+		}
+		// Field 1, the version, is the first: tag 0x08 and a one-byte varint.
+		if b[0] != 0x08 || b[1] != c.from {
+			t.Fatalf("version %d: starts % x, not its version", c.from, b[:2])
+		}
+		if _, err := fusion.RestoreSnapshot(cfg, b); err != nil {
+			t.Fatalf("version %d as it is: %v", c.from, err)
+		}
+		b = append([]byte{0x08, c.to}, b[2:]...)
+		_, err = fusion.RestoreSnapshot(cfg, b)
+		if !errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "errors-in-variables moments") {
+			t.Errorf("version %d relabelled %d: %v, want ErrSnapshot naming the moments", c.from, c.to, err)
 		}
 	}
 }

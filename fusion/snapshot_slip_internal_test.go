@@ -112,6 +112,35 @@ func TestSnapshotValuesChecked(t *testing.T) {
 	}
 }
 
+// TestSnapshotRobotValuesChecked: a snapshot whose numbers that new steps
+// are computed with are not finite, or not a variance, in the IMU slip
+// comparison, the scrub block or the last IMU headings (a damaged or
+// forged snapshot, as above) is refused with ErrSnapshot naming the value.
+// Restored with a slip factor of +Inf, the robot multiplied every new
+// step's covariance by it and answered each sample with a NaN covariance
+// and numerical_fault; checkValues looked at the estimates and the
+// entries only.
+func TestSnapshotRobotValuesChecked(t *testing.T) {
+	nan, inf := math.NaN(), math.Inf(1)
+	for _, c := range []struct {
+		name, want string
+		harm       func(r *Robot)
+	}{
+		{"slip factor infinite", "slip factor +Inf", func(r *Robot) { r.slip.factor = inf }},
+		{"slip factor below 1", "slip factor 0.5", func(r *Robot) { r.slip.factor = 0.5 }},
+		{"slip variance negative", "slip sums 0 rad and -1 rad^2", func(r *Robot) { r.slip.varSum = -1 }},
+		{"slip anchor NaN", "anchor heading NaN", func(r *Robot) { r.slip.anchor.set, r.slip.anchor.heading = true, nan }},
+		{"scrub sum infinite", "scrub block sum +Inf", func(r *Robot) { r.scrub.sum, r.scrub.peak = inf, inf }},
+		{"last IMU heading NaN", "last IMU heading NaN", func(r *Robot) { v := nan; r.lastIMU = &v }},
+		{"frozen IMU heading infinite", "unchanged IMU heading -Inf", func(r *Robot) { r.trust.frozen, r.trust.frozenZ = true, -inf }},
+	} {
+		r := busyRobot(t)
+		restoreSays(t, r, c.name+" (before the harm)", "")
+		c.harm(r)
+		restoreSays(t, r, c.name, c.want)
+	}
+}
+
 // restoreSays fails unless r's snapshot restores (want empty) or is
 // refused with ErrSnapshot saying want.
 func restoreSays(t *testing.T, r *Robot, name, want string) {

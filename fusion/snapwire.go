@@ -78,6 +78,9 @@ type wdec struct {
 	err error
 	// angles is the robot's set of angular states, for the estimates.
 	angles uint16
+	// version is the snapshot's (field 1, which comes first), for the
+	// estimates' errors-in-variables moments (decEIV).
+	version uint64
 	// The field just read.
 	typ protowire.Type
 	v   uint64 // varint or fixed64
@@ -214,7 +217,7 @@ func (d *wdec) message(num protowire.Number, body func(*wdec)) {
 	if !d.want(num, protowire.BytesType) {
 		return
 	}
-	sub := wdec{b: d.raw, angles: d.angles}
+	sub := wdec{b: d.raw, angles: d.angles, version: d.version}
 	body(&sub)
 	if sub.err != nil && d.err == nil {
 		d.err = sub.err

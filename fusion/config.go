@@ -255,10 +255,13 @@ const (
 	// gonum's chi-square quantile, which panics below about 1e-45 for
 	// some degrees of freedom (measured for 1 to 3100: 1e-250 and less at
 	// 1, 1e-200 at 2, 1e-100 at 26, 5e-324 at every one), and a
-	// probability that small passes nothing anyway. No journal can hold
-	// one below it for gate_probability or the agreement (New panicked);
-	// one holding a consistency probability below it is refused (it
-	// panicked once a sensor's consistency window filled).
+	// probability that small passes nothing anyway. A journal whose robot
+	// was made with one below it is refused at restore: for the gate and
+	// the agreement one below about 1e-45 (New panicked), and one between
+	// that and 1e-30, which New took at 1 to 3 degrees of freedom (a
+	// probability no one configures; the review of session 26); for the
+	// consistency probability any (it panicked once a sensor's consistency
+	// window filled, or would have at the lowest).
 	minProbability = 1e-30
 )
 

@@ -1199,10 +1199,12 @@ func thinFixes(fixes []FixPoint, bound int) []FixPoint {
 }
 
 // Label is the name a run gets in reports and export file names unless
-// Source.Label says otherwise: the robot's id, or the samples file's name,
-// with "-run{N}" when Source.Run selects a run.
+// Source.Label says otherwise: the robot's id, or the samples file's name
+// without its extension (both of a .jsonl.gz), with "-run{N}" when
+// Source.Run selects a run.
 func Label(src Source) string {
-	label := strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
+	base := strings.TrimSuffix(filepath.Base(src.Samples), ".gz")
+	label := strings.TrimSuffix(base, filepath.Ext(base))
 	if src.JournalDir != "" {
 		label = robotID(src.Robot)
 	}

@@ -98,6 +98,10 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		if len(b) == 0 || b[0] == '#' {
 			continue
 		}
+		if bytes.IndexByte(b, 0) >= 0 {
+			// The parser would quote the NUL bytes into its message.
+			return nil, &LineError{Line: sr.line, Err: fmt.Errorf("holds NUL bytes: a file whose writer lost power can end in zeros; the lines before this one were read whole, so cut the file before it (head -n %d)", sr.line-1)}
+		}
 		s := &pb.Sample{}
 		if err := protojson.Unmarshal(b, s); err != nil {
 			if sr.cut && sr.src.err != nil {

@@ -150,6 +150,8 @@ func FuzzSampleReader(f *testing.F) {
 	gz := gzipped(f, []byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"))
 	f.Add(gz)
 	f.Add(gz[:len(gz)-10])
+	// A line, then the NUL bytes a logger that lost power leaves.
+	f.Add([]byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n{\"head\x00\x00\x00\x00"))
 	f.Fuzz(func(t *testing.T, b []byte) {
 		cfg := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true}.Config()
 		r, _ := fusion.New(cfg)
@@ -385,5 +387,24 @@ func TestSampleReaderGzip(t *testing.T) {
 	// A file that begins "BZh" and is text is read as text.
 	if _, err := NewSampleReader(strings.NewReader("BZh, no\n")).Next(); err == nil || strings.Contains(err.Error(), "compressed") {
 		t.Errorf("text starting BZh: %v", err)
+	}
+}
+
+// TestSampleReaderZeroTail: a recording whose logger lost power can end in
+// NUL bytes where the file system had extended it but not yet written it
+// (common practice: an SD card pulled from a robot that browned out), after
+// a whole line or inside one. The error names the NUL bytes at that line
+// and says how to keep the lines before it, instead of the parser's
+// "invalid value" followed by the NUL bytes themselves.
+func TestSampleReaderZeroTail(t *testing.T) {
+	const line = "{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"
+	zeros := strings.Repeat("\x00", 4096)
+	for _, in := range []string{line + line + zeros, line + line + line[:20] + zeros, line + line + zeros + "\n" + line} {
+		samples, _, err := readAll(NewSampleReader(strings.NewReader(in)))
+		var le *LineError
+		if len(samples) != 2 || !errors.As(err, &le) || le.Line != 3 || !strings.Contains(err.Error(), "NUL bytes") ||
+			!strings.Contains(err.Error(), "head -n 2") || strings.ContainsRune(err.Error(), 0) {
+			t.Errorf("%.60q...: %d samples, %q; want 2 and an error at line 3 naming the NUL bytes, without them", in, len(samples), err)
+		}
 	}
 }

@@ -144,6 +144,9 @@ type Summary struct {
 	// refused in a row (Detail names the sensor and the count).
 	RefusedStretches []Interval
 	Truncated        string
+	// Damaged names the journal's damaged byte ranges ("" when none),
+	// also those that cost no input.
+	Damaged string
 	// Run is the run reviewed, of Runs in the recording; RunNote says
 	// which runs were left out ("" when there is only one).
 	Run, Runs uint64
@@ -892,6 +895,9 @@ func (rc *recorder) replayJournal(ctx context.Context, src Source) (*fusion.Robo
 	}
 	if scan.Torn != nil {
 		rc.run.Summary.Truncated = fmt.Sprintf("the journal is truncated: %v in %s; this report covers the %d inputs before it", scan.Torn, filepath.Base(scan.TornSegment), scan.Pairs)
+	}
+	if note := scan.DamageNote(); note != "" {
+		rc.run.Summary.Damaged = note + "; the review read every intact record around it"
 	}
 	return fr, nil
 }

@@ -192,16 +192,22 @@ type recording struct {
 	run     uint64
 	runs    uint64
 	// torn says where a journal was cut short (the inputs before it are
-	// read), or is empty.
-	torn string
+	// read), or is empty; damaged names its damaged byte ranges
+	// (journal.Scan.DamageNote), or is empty.
+	torn, damaged string
 }
 
-// tornNote is a line that says the journal was cut short, or nothing.
+// tornNote is the lines that say the journal was cut short or damaged, or
+// nothing.
 func (rec *recording) tornNote() string {
-	if rec.torn == "" {
-		return ""
+	note := ""
+	if rec.torn != "" {
+		note = "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
 	}
-	return "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
+	if rec.damaged != "" {
+		note += "note: " + rec.damaged + " (every intact record around it is used)\n"
+	}
+	return note
 }
 
 // note says which run of several the recording's inputs are, or nothing
@@ -220,7 +226,7 @@ func (rec *recording) note() string {
 func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64) (*recording, error) {
 	want = max(want, 1)
 	var inputs []calib.RecordedInput
-	var torn string
+	var torn, damaged string
 	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
 		if s.GetRunStart() != nil {
@@ -269,6 +275,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if scan.Torn != nil {
 			torn = fmt.Sprintf("%v in %s", scan.Torn, filepath.Base(scan.TornSegment))
 		}
+		damaged = scan.DamageNote()
 	} else {
 		f, err := os.Open(path)
 		if err != nil {
@@ -298,7 +305,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	if len(inputs) == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
 	}
-	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn}, nil
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn, damaged: damaged}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

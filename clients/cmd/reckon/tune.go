@@ -240,13 +240,19 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if err != nil {
 			return err
 		}
+		// Each input is copied out of d, so that the recording keeps only
+		// its own kind: a pointer into d kept all of d (248 bytes an input,
+		// where odometry needs 80).
 		switch d.Kind {
 		case fusion.InputOdometry:
-			inputs = append(inputs, calib.RecordedInput{Odometry: &d.Odometry})
+			o := d.Odometry
+			inputs = append(inputs, calib.RecordedInput{Odometry: &o})
 		case fusion.InputHeading:
-			inputs = append(inputs, calib.RecordedInput{Heading: &d.Heading})
+			h := d.Heading
+			inputs = append(inputs, calib.RecordedInput{Heading: &h})
 		case fusion.InputFix:
-			inputs = append(inputs, calib.RecordedInput{Fix: &d.Fix})
+			f := d.Fix
+			inputs = append(inputs, calib.RecordedInput{Fix: &f})
 		default:
 			skipped++
 		}

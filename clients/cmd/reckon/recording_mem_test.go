@@ -2,12 +2,10 @@ package main
 
 import (
 	"context"
-	"os"
 	"runtime"
 	"testing"
 
 	"reckon.example/fusion/fusiontest"
-	"reckon.example/server/convert"
 )
 
 // TestReadRunMemory: tune and calibrate hold the run they fit in memory
@@ -22,14 +20,7 @@ import (
 func TestReadRunMemory(t *testing.T) {
 	dir := t.TempDir()
 	cfgPath, samples, _ := writeRecording(t, dir, fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 5, DurationS: 60, OdometryHz: 200, IMUHz: 100}, (*fusiontest.Sim).WhiteConfig)
-	b, err := os.ReadFile(cfgPath)
-	if err != nil {
-		t.Fatal(err)
-	}
-	cp, _, err := convert.LoadConfigYAML(b)
-	if err != nil {
-		t.Fatal(err)
-	}
+	cp, _ := readConfigFile(t, cfgPath)
 	var before, after runtime.MemStats
 	runtime.GC()
 	runtime.ReadMemStats(&before)

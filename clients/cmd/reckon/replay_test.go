@@ -184,22 +184,30 @@ func TestReplayTimeSpan(t *testing.T) {
 	}
 }
 
+// flipBytes damages the file at path: the bytes [from, to) that span
+// gives for its size are xored with mask.
+func flipBytes(t *testing.T, path string, span func(size int) (from, to int), mask byte) {
+	t.Helper()
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	from, to := span(len(b))
+	for i := from; i < to; i++ {
+		b[i] ^= mask
+	}
+	if err := os.WriteFile(path, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+}
+
 // TestReplayPastAGap: a journal that lost inputs in its middle (bytes
 // damaged) replays past the gap: every input the journal still holds has
 // its row, the gap is named, and the exit status is 1, not 0.
 func TestReplayPastAGap(t *testing.T) {
 	dir, _, _ := writeExampleJournal(t)
 	seg := journal.SegmentPath(dir, "cart", 0)
-	b, err := os.ReadFile(seg)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for i := len(b) / 3; i < len(b)/3+200; i++ {
-		b[i] ^= 0x5a
-	}
-	if err := os.WriteFile(seg, b, 0o644); err != nil {
-		t.Fatal(err)
-	}
+	flipBytes(t, seg, func(size int) (int, int) { return size / 3, size/3 + 200 }, 0x5a)
 	scan, err := journal.Read(dir, "cart", journal.Visitor{ReadOnly: true, Gap: func(error) error { return nil }})
 	if !errors.Is(err, journal.ErrGap) || scan.Pairs < 100 {
 		t.Fatalf("the damaged journal: %d inputs, %v; want a gap", scan.Pairs, err)
@@ -843,16 +851,7 @@ func TestCompareReadsBothConfigurationsFirst(t *testing.T) {
 func TestOfflineSaysJournalDamage(t *testing.T) {
 	dir, samples, _ := writeExampleJournal(t)
 	seg := journal.SegmentPath(dir, "cart", 0)
-	b, err := os.ReadFile(seg)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for i := range 8 {
-		b[i] ^= 0xff
-	}
-	if err := os.WriteFile(seg, b, 0o644); err != nil {
-		t.Fatal(err)
-	}
+	flipBytes(t, seg, func(int) (int, int) { return 0, 8 }, 0xff)
 	scan, err := journal.Read(dir, "cart", journal.Visitor{ReadOnly: true})
 	if err != nil || len(scan.Damage) != 1 || scan.Pairs != len(samples) {
 		t.Fatalf("the damaged journal: %d of %d inputs, damage %v, %v; want all of them and one damaged range", scan.Pairs, len(samples), scan.Damage, err)

@@ -193,8 +193,10 @@ type recording struct {
 	runs    uint64
 	// torn says where a journal was cut short (the inputs before it are
 	// read), or is empty; damaged names its damaged byte ranges
-	// (journal.Scan.DamageNote), or is empty.
+	// (journal.Scan.DamageNote), or is empty; gaps name where it lost
+	// inputs to damage (the inputs after each are read).
 	torn, damaged string
+	gaps          []string
 }
 
 // tornNote is the lines that say the journal was cut short or damaged, or
@@ -203,6 +205,9 @@ func (rec *recording) tornNote() string {
 	note := ""
 	if rec.torn != "" {
 		note = "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
+	}
+	for _, g := range rec.gaps {
+		note += "note: " + g + "; the inputs after it are used, without those lost\n"
 	}
 	if rec.damaged != "" {
 		note += "note: " + rec.damaged + " (every intact record around it is used)\n"
@@ -227,6 +232,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	want = max(want, 1)
 	var inputs []calib.RecordedInput
 	var torn, damaged string
+	var gaps []string
 	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
 		if s.GetRunStart() != nil {
@@ -266,7 +272,13 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if err != nil {
 			return nil, err
 		}
-		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
+		// A gap (inputs lost to damage) is gone past, as replay and review
+		// do: the inputs after it are the run's too.
+		gap := func(err error) error {
+			gaps = append(gaps, err.Error())
+			return nil
+		}
+		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Gap: gap, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
 			}
@@ -275,7 +287,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 			}
 			return nil
 		}})
-		if err != nil {
+		if err != nil && !(errors.Is(err, journal.ErrGap) && len(gaps) > 0) {
 			return nil, err
 		}
 		if scan.Torn != nil {
@@ -311,7 +323,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	if len(inputs) == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
 	}
-	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn, damaged: damaged}, nil
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn, damaged: damaged, gaps: gaps}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

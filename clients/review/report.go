@@ -101,11 +101,10 @@ func (run *Run) lines() [][2]string {
 	for _, g := range s.Gaps {
 		out = append(out, [2]string{"GAP", g + "; the review goes on past it"})
 	}
-	if s.Truncated != "" {
-		out = append(out, [2]string{"NOTE", s.Truncated})
-	}
-	if s.RunNote != "" {
-		out = append(out, [2]string{"NOTE", s.RunNote})
+	for _, note := range []string{s.Truncated, s.Damaged, s.RunNote} {
+		if note != "" {
+			out = append(out, [2]string{"NOTE", note})
+		}
 	}
 	exports := run.FilteredCSV + ", " + run.SmoothedCSV + ", " + run.FixesCSV
 	if run.MarkersCSV != "" {
@@ -218,7 +217,7 @@ func notesHTML(b *strings.Builder, runs []*Run) {
 		for _, g := range run.Summary.Gaps {
 			b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(g) + "; the review goes on past it</p>\n")
 		}
-		for _, note := range []string{run.Summary.Truncated, run.Summary.RunNote} {
+		for _, note := range []string{run.Summary.Truncated, run.Summary.Damaged, run.Summary.RunNote} {
 			if note != "" {
 				b.WriteString("<p class=\"note\"><b>" + html.EscapeString(run.Label) + ":</b> " + html.EscapeString(note) + "</p>\n")
 			}

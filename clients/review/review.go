@@ -144,6 +144,9 @@ type Summary struct {
 	// refused in a row (Detail names the sensor and the count).
 	RefusedStretches []Interval
 	Truncated        string
+	// Damaged names the journal's damaged byte ranges ("" when none),
+	// also those that cost no input.
+	Damaged string
 	// Run is the run reviewed, of Runs in the recording; RunNote says
 	// which runs were left out ("" when there is only one).
 	Run, Runs uint64
@@ -893,6 +896,9 @@ func (rc *recorder) replayJournal(ctx context.Context, src Source) (*fusion.Robo
 	if scan.Torn != nil {
 		rc.run.Summary.Truncated = fmt.Sprintf("the journal is truncated: %v in %s; this report covers the %d inputs before it", scan.Torn, filepath.Base(scan.TornSegment), scan.Pairs)
 	}
+	if note := scan.DamageNote(); note != "" {
+		rc.run.Summary.Damaged = note + "; the review read every intact record around it"
+	}
 	return fr, nil
 }
 
@@ -1199,10 +1205,12 @@ func thinFixes(fixes []FixPoint, bound int) []FixPoint {
 }
 
 // Label is the name a run gets in reports and export file names unless
-// Source.Label says otherwise: the robot's id, or the samples file's name,
-// with "-run{N}" when Source.Run selects a run.
+// Source.Label says otherwise: the robot's id, or the samples file's name
+// without its extension (both of a .jsonl.gz), with "-run{N}" when
+// Source.Run selects a run.
 func Label(src Source) string {
-	label := strings.TrimSuffix(filepath.Base(src.Samples), filepath.Ext(src.Samples))
+	base := strings.TrimSuffix(filepath.Base(src.Samples), ".gz")
+	label := strings.TrimSuffix(base, filepath.Ext(base))
 	if src.JournalDir != "" {
 		label = robotID(src.Robot)
 	}

@@ -46,9 +46,13 @@ func (e *LineError) Is(target error) bool { return target == ErrJSONL }
 // line; blank lines and lines starting with # are skipped, and so is a
 // UTF-8 byte order mark at the start of the file (RFC 8259, sec. 8.1). A
 // file that starts with a UTF-16 byte order mark is refused at line 1,
-// naming its encoding.
+// naming its encoding. A gzip-compressed file (RFC 1952; recordings are
+// often kept as .jsonl.gz) is read through its decompression, its lines
+// counted in the decompressed text; one compressed otherwise (zstd, xz,
+// bzip2, zip) is refused at line 1, naming its format.
 type SampleReader struct {
 	sc   *bufio.Scanner
+	src  *sniffReader
 	line int
 	// cut: the line read last ended at the end of the input without a
 	// newline (a file still being written may end inside a line).
@@ -57,9 +61,10 @@ type SampleReader struct {
 
 // NewSampleReader returns a reader of r.
 func NewSampleReader(r io.Reader) *SampleReader {
-	sc := bufio.NewScanner(r)
+	src := &sniffReader{r: r}
+	sc := bufio.NewScanner(src)
 	sc.Buffer(make([]byte, 64<<10), MaxLineBytes)
-	sr := &SampleReader{sc: sc}
+	sr := &SampleReader{sc: sc, src: src}
 	sc.Split(sr.split)
 	return sr
 }
@@ -93,8 +98,17 @@ func (sr *SampleReader) Next() (*pb.Sample, error) {
 		if len(b) == 0 || b[0] == '#' {
 			continue
 		}
+		if bytes.IndexByte(b, 0) >= 0 {
+			// The parser would quote the NUL bytes into its message.
+			return nil, &LineError{Line: sr.line, Err: fmt.Errorf("holds NUL bytes: a file whose writer lost power can end in zeros; the lines before this one were read whole, so cut the file before it (head -n %d)", sr.line-1)}
+		}
 		s := &pb.Sample{}
 		if err := protojson.Unmarshal(b, s); err != nil {
+			if sr.cut && sr.src.err != nil {
+				// The decompression failed inside this line: say so rather
+				// than that the file ends in it.
+				return nil, &LineError{Line: sr.line, Err: sr.src.err}
+			}
 			if bytes.IndexByte(b, '\r') >= 0 {
 				err = fmt.Errorf("%w; the line holds a carriage return (\\r) inside it: are the file's lines ended by a carriage return alone? End them with \\n or \\r\\n", err)
 			} else if sr.cut {

@@ -2,10 +2,12 @@ package convert
 
 import (
 	"bytes"
+	"compress/gzip"
 	"errors"
 	"flag"
 	"io"
 	"os"
+	"slices"
 	"strings"
 	"testing"
 	"unicode/utf8"
@@ -14,6 +16,7 @@ import (
 
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
 )
 
 var rewrite = flag.Bool("rewrite", false, "rewrite golden files in testdata")
@@ -142,6 +145,13 @@ func FuzzSampleReader(f *testing.F) {
 		f.Add(b[:min(len(b), 4000)])
 	}
 	f.Add([]byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"))
+	// The same line gzip-compressed (RFC 1952), as a .jsonl.gz holds it,
+	// whole and cut short.
+	gz := gzipped(f, []byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"))
+	f.Add(gz)
+	f.Add(gz[:len(gz)-10])
+	// A line, then the NUL bytes a logger that lost power leaves.
+	f.Add([]byte("{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n{\"head\x00\x00\x00\x00"))
 	f.Fuzz(func(t *testing.T, b []byte) {
 		cfg := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true}.Config()
 		r, _ := fusion.New(cfg)
@@ -279,5 +289,122 @@ func TestFixMarkerLine(t *testing.T) {
 	readme, _ := os.ReadFile("../../README.md")
 	if !strings.Contains(string(readme), `"marker":"row-end-e"`) {
 		t.Error("the README's example lines name no marker")
+	}
+}
+
+// readAll reads every sample of sr up to its first error (io.EOF at the
+// end), with the line of each.
+func readAll(sr *SampleReader) (samples []*pb.Sample, lines []int, err error) {
+	for {
+		s, err := sr.Next()
+		if err != nil {
+			return samples, lines, err
+		}
+		samples, lines = append(samples, s), append(lines, sr.Line())
+	}
+}
+
+func gzipped(t testing.TB, b []byte) []byte {
+	t.Helper()
+	var buf bytes.Buffer
+	zw := gzip.NewWriter(&buf)
+	if _, err := zw.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	if err := zw.Close(); err != nil {
+		t.Fatal(err)
+	}
+	return buf.Bytes()
+}
+
+// TestSampleReaderGzip: a recording kept gzip-compressed (a .jsonl.gz, as
+// robots' loggers rotate them; RFC 1952) reads as the same samples on the
+// same lines as the file itself, and so do two such files joined (cat
+// a.gz b.gz: a gzip file of two members, RFC 1952 sec. 2.2). A compressed
+// file cut short gives the samples of its whole lines and then an error
+// naming the decompression at the line it ends in, one with a damaged
+// checksum an error naming the checksum; a file compressed in another
+// format is refused at line 1, naming it. Before, a .jsonl.gz was refused
+// at line 1 as "invalid value" and the file's lines said to end in a
+// carriage return.
+func TestSampleReaderGzip(t *testing.T) {
+	plain, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want, wantLines, err := readAll(NewSampleReader(bytes.NewReader(plain)))
+	if !errors.Is(err, io.EOF) || len(want) < 500 {
+		t.Fatalf("the example: %d samples, %v", len(want), err)
+	}
+	gz := gzipped(t, plain)
+	got, gotLines, err := readAll(NewSampleReader(bytes.NewReader(gz)))
+	if !errors.Is(err, io.EOF) || len(got) != len(want) || !slices.Equal(gotLines, wantLines) {
+		t.Fatalf("gzip: %d samples, %v; want %d", len(got), err, len(want))
+	}
+	for i := range got {
+		if !proto.Equal(got[i], want[i]) {
+			t.Fatalf("gzip: sample %d (line %d) differs", i+1, gotLines[i])
+		}
+	}
+	half := bytes.Index(plain[len(plain)/2:], []byte("\n")) + len(plain)/2 + 1
+	joined := append(gzipped(t, plain[:half]), gzipped(t, plain[half:])...)
+	if got, _, err := readAll(NewSampleReader(bytes.NewReader(joined))); !errors.Is(err, io.EOF) || len(got) != len(want) {
+		t.Errorf("two gzip members: %d samples, %v; want %d", len(got), err, len(want))
+	}
+
+	cut := gz[:len(gz)*2/3]
+	got, gotLines, err = readAll(NewSampleReader(bytes.NewReader(cut)))
+	var le *LineError
+	if !errors.As(err, &le) || !strings.Contains(err.Error(), "gzip") || !strings.Contains(err.Error(), "ends early") || len(got) < len(want)/3 {
+		t.Fatalf("gzip cut short: %d samples, %v; want some and then an error naming the gzip ending early", len(got), err)
+	}
+	if le.Line <= gotLines[len(gotLines)-1] || le.Line > gotLines[len(gotLines)-1]+2 {
+		t.Errorf("gzip cut short: error at line %d, the last sample read at line %d", le.Line, gotLines[len(gotLines)-1])
+	}
+	for i := range got {
+		if !proto.Equal(got[i], want[i]) {
+			t.Fatalf("gzip cut short: sample %d differs", i+1)
+		}
+	}
+
+	damaged := bytes.Clone(gz)
+	damaged[len(damaged)-6] ^= 0xff // in the CRC-32 of the trailer (RFC 1952, sec. 2.3.1)
+	if _, _, err := readAll(NewSampleReader(bytes.NewReader(damaged))); !errors.As(err, &le) || !strings.Contains(err.Error(), "checksum") {
+		t.Errorf("gzip with a damaged checksum: %v; want an error naming the checksum", err)
+	}
+
+	for name, head := range map[string][]byte{
+		"zstd":  {0x28, 0xb5, 0x2f, 0xfd, 0x24, 0x04},
+		"xz":    {0xfd, '7', 'z', 'X', 'Z', 0, 0, 4},
+		"bzip2": []byte("BZh91AY&SY"),
+		"zip":   []byte("PK\x03\x04\x14\x00"),
+	} {
+		_, err := NewSampleReader(bytes.NewReader(head)).Next()
+		if !errors.As(err, &le) || le.Line != 1 || !strings.Contains(err.Error(), name+"-compressed") {
+			t.Errorf("%s: %v; want an error at line 1 naming %s", name, err, name)
+		}
+	}
+	// A file that begins "BZh" and is text is read as text.
+	if _, err := NewSampleReader(strings.NewReader("BZh, no\n")).Next(); err == nil || strings.Contains(err.Error(), "compressed") {
+		t.Errorf("text starting BZh: %v", err)
+	}
+}
+
+// TestSampleReaderZeroTail: a recording whose logger lost power can end in
+// NUL bytes where the file system had extended it but not yet written it
+// (common practice: an SD card pulled from a robot that browned out), after
+// a whole line or inside one. The error names the NUL bytes at that line
+// and says how to keep the lines before it, instead of the parser's
+// "invalid value" followed by the NUL bytes themselves.
+func TestSampleReaderZeroTail(t *testing.T) {
+	const line = "{\"heading\": {\"stamp_ns\": \"5\", \"heading_rad\": 0.1}}\n"
+	zeros := strings.Repeat("\x00", 4096)
+	for _, in := range []string{line + line + zeros, line + line + line[:20] + zeros, line + line + zeros + "\n" + line} {
+		samples, _, err := readAll(NewSampleReader(strings.NewReader(in)))
+		var le *LineError
+		if len(samples) != 2 || !errors.As(err, &le) || le.Line != 3 || !strings.Contains(err.Error(), "NUL bytes") ||
+			!strings.Contains(err.Error(), "head -n 2") || strings.ContainsRune(err.Error(), 0) {
+			t.Errorf("%.60q...: %d samples, %q; want 2 and an error at line 3 naming the NUL bytes, without them", in, len(samples), err)
+		}
 	}
 }

@@ -43,6 +43,18 @@ func (e *ConfigFileError) Unwrap() error { return e.Err }
 // Is makes errors.Is(err, ErrConfigFile) true.
 func (e *ConfigFileError) Is(target error) bool { return target == ErrConfigFile }
 
+// tabIndented returns the number (from 1) of the first line of data that
+// holds more than a comment and whose indentation holds a tab, or 0.
+func tabIndented(data []byte) int {
+	for n, line := range strings.Split(string(data), "\n") {
+		rest := strings.TrimLeft(line, " \t")
+		if rest != "" && rest[0] != '#' && strings.Contains(line[:len(line)-len(rest)], "\t") {
+			return n + 1
+		}
+	}
+	return 0
+}
+
 // LoadConfigYAML reads a hand-edited YAML robot configuration: the
 // RobotConfig message with its proto field names (comments allowed; an enum
 // may be written in full, IMU_MODE_ABSOLUTE, or short, absolute). It decodes
@@ -52,6 +64,11 @@ func (e *ConfigFileError) Is(target error) bool { return target == ErrConfigFile
 func LoadConfigYAML(data []byte) (*pb.RobotConfig, fusion.Config, error) {
 	var doc yaml.Node
 	if err := yaml.Unmarshal(data, &doc); err != nil {
+		if n := tabIndented(data); n > 0 {
+			// The parser's "found character that cannot start any token"
+			// does not say that the character is a tab.
+			return nil, fusion.Config{}, &ConfigFileError{Line: n, Err: fmt.Errorf("indented with a tab: YAML indents with spaces only (%w)", err)}
+		}
 		return nil, fusion.Config{}, &ConfigFileError{Err: err}
 	}
 	if len(doc.Content) == 0 {

@@ -79,6 +79,11 @@ func TestConfigYAMLErrors(t *testing.T) {
 		{"survey error of one landmark", wheels + "landmarks:\n  - {id: dock, x_m: 1, y_m: 2}\n  - {id: door, x_m: 3, y_m: 4, position_std_m: .nan}\n", 7, "landmarks[1].position_std_m", "NaN must be in [0, 10] m"},
 		{"not a mapping", "- 1\n- 2\n", 1, "", "must be a mapping"},
 		{"broken yaml", "wheels: [\n", 0, "", "robot configuration file"},
+		// An editor that indents with tabs (YAML 1.2, sec. 6.1: tabs are not
+		// indentation); before, only the parser's "found character that
+		// cannot start any token", without a line of the file's own.
+		{"tab indentation", "# a comment\nwheels:\n\t- {y_m: 0.12}\n", 3, "", "indented with a tab: YAML indents with spaces only"},
+		{"tab after spaces", "noise:\n  \twheel_var_m2_per_m: 1e-5\n", 2, "", "indented with a tab"},
 		{"field given twice", "no_side_slip: true\nno_side_slip: false\n", 2, "no_side_slip", "given twice (first on line 1)"},
 	}
 	for _, c := range cases {
@@ -95,6 +100,10 @@ func TestConfigYAMLErrors(t *testing.T) {
 				t.Errorf("error %q does not say line %d", err, c.line)
 			}
 		})
+	}
+	// A comment indented with a tab is not what broke a file.
+	if _, _, err := LoadConfigYAML([]byte("\t# a comment\nwheels: [\n")); err == nil || strings.Contains(err.Error(), "tab") {
+		t.Errorf("broken YAML after a comment indented with a tab: %v; want an error not blaming the tab", err)
 	}
 }
 
@@ -151,6 +160,7 @@ func FuzzConfigYAML(f *testing.F) {
 		b, _ := os.ReadFile("../../testdata/robots/" + p + ".yaml")
 		f.Add(b)
 	}
+	f.Add([]byte("wheels:\n\t- {y_m: 0.12}\n")) // indented with a tab
 	f.Fuzz(func(t *testing.T, b []byte) {
 		_, cfg, err := LoadConfigYAML(b)
 		if err == nil {

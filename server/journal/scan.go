@@ -70,6 +70,20 @@ type Scan struct {
 	lastSeg sealedSegment
 }
 
+// DamageNote says what Damage holds in one line for a person: the first
+// damaged range and how many more there are, or "" when there is none.
+// The offline tools print it, since damage that cost no input ends no
+// read and would otherwise go unsaid.
+func (s *Scan) DamageNote() string {
+	switch len(s.Damage) {
+	case 0:
+		return ""
+	case 1:
+		return s.Damage[0].Error()
+	}
+	return fmt.Sprintf("%v; and %d more damaged ranges", s.Damage[0], len(s.Damage)-1)
+}
+
 // Visitor receives what Read reads.
 type Visitor struct {
 	// Opening is called with the opening record before anything else.

@@ -437,15 +437,16 @@ type tally struct {
 	label string
 	mu    sync.Mutex // protects everything below but counts and reasons
 	cond  *sync.Cond // signalled as verdicts come and when collect ends
-	// session is the ingest session's id; lines[k-1-base] is the line of
-	// client sequence k.
+	// session is the ingest session's id; last is the line of the last
+	// sample sent (0: none).
 	session string
-	base    uint64
-	lines   []int
+	last    int
 	held    map[uint64]int
-	// pending holds the samples sent and not yet answered, by client
-	// sequence; retries those answered not taken, in the order sent.
-	pending map[uint64]*pb.Sample
+	// pending holds the samples sent and not yet answered, with their
+	// lines, by client sequence; retries those answered not taken, in the
+	// order sent. Nothing else is kept of a sample once it is answered,
+	// so that a feed's memory does not grow with its file.
+	pending map[uint64]pendingSample
 	retries []retry
 	whyNot  string // the first not-taken reason
 	// gone is the line of the first sample answered that the robot does
@@ -479,7 +480,7 @@ type retry struct {
 }
 
 func newTally(label, session string) *tally {
-	t := &tally{label: label, session: session, held: map[uint64]int{}, pending: map[uint64]*pb.Sample{}, counts: map[pb.Verdict]int{}}
+	t := &tally{label: label, session: session, held: map[uint64]int{}, pending: map[uint64]pendingSample{}, counts: map[pb.Verdict]int{}}
 	t.cond = sync.NewCond(&t.mu)
 	return t
 }
@@ -489,11 +490,14 @@ func newTally(label, session string) *tally {
 func (t *tally) sending(line int, seq uint64, s *pb.Sample) {
 	t.mu.Lock()
 	defer t.mu.Unlock()
-	if len(t.lines) == 0 {
-		t.base = seq - 1
-	}
-	t.lines = append(t.lines, line)
-	t.pending[seq] = s
+	t.last = line
+	t.pending[seq] = pendingSample{sample: s, line: line}
+}
+
+// pendingSample is a sample sent and not yet answered, with its line.
+type pendingSample struct {
+	sample *pb.Sample
+	line   int
 }
 
 func (t *tally) lastLine() int {
@@ -502,25 +506,7 @@ func (t *tally) lastLine() int {
 	return t.lastLineLocked()
 }
 
-func (t *tally) lastLineLocked() int {
-	if len(t.lines) == 0 {
-		return 0
-	}
-	return t.lines[len(t.lines)-1]
-}
-
-func (t *tally) lineOf(clientSeq uint64) int {
-	t.mu.Lock()
-	defer t.mu.Unlock()
-	return t.lineOfLocked(clientSeq)
-}
-
-func (t *tally) lineOfLocked(clientSeq uint64) int {
-	if clientSeq <= t.base || clientSeq-t.base > uint64(len(t.lines)) {
-		return 0
-	}
-	return t.lines[clientSeq-t.base-1]
-}
+func (t *tally) lastLineLocked() int { return t.last }
 
 // goneLine returns the line of the first sample answered that the robot
 // is gone (0: none).
@@ -561,7 +547,7 @@ func (t *tally) takeRetries() []retry {
 	rs := t.retries
 	t.retries = nil
 	for _, r := range rs {
-		t.pending[r.seq] = r.sample
+		t.pending[r.seq] = pendingSample{sample: r.sample, line: r.line}
 	}
 	return rs
 }
@@ -602,7 +588,7 @@ func (t *tally) unanswered(err error) error {
 		return fmt.Errorf("the stream ended after %s:%d, whose verdict came: %w", t.label, t.lastLineLocked(), err)
 	}
 	what := fmt.Sprintf("is the first of %d samples sent without a verdict", len(t.pending))
-	line := t.lineOfLocked(first)
+	line := t.pending[first].line
 	switch {
 	case first == 0:
 		what, line = "was not sent", t.unsent
@@ -619,8 +605,8 @@ func (t *tally) unanswered(err error) error {
 func (t *tally) unsend(seq uint64) {
 	t.mu.Lock()
 	defer t.mu.Unlock()
+	t.unsent = t.pending[seq].line
 	delete(t.pending, seq)
-	t.unsent = t.lineOfLocked(seq)
 }
 
 // earlierPart is the summary's count of the samples an earlier feed on the
@@ -668,8 +654,8 @@ func (t *tally) answered(resp *pb.IngestResponse) (line int, counts bool) {
 	defer t.mu.Unlock()
 	defer t.cond.Broadcast()
 	seq := resp.GetClientSequence()
-	line = t.lineOfLocked(seq)
-	s := t.pending[seq]
+	p := t.pending[seq]
+	line, s := p.line, p.sample
 	delete(t.pending, seq)
 	if client.NotTaken(resp) && s != nil {
 		if len(t.retries) == 0 {

@@ -341,6 +341,9 @@ func replayJournal(ctx context.Context, dir, robot string, override *pb.RobotCon
 	if scan.Torn != nil {
 		fmt.Fprintf(stderr, "note: the journal is truncated: %v (everything before it was replayed)\n", scan.Torn)
 	}
+	if note := scan.DamageNote(); note != "" {
+		fmt.Fprintf(stderr, "note: %s (every intact record around it was replayed)\n", note)
+	}
 	switch {
 	case override == nil && differ > 0 && gaps > 0:
 		return fmt.Errorf("replay differs from the journal in %d verdicts before its first gap", differ)

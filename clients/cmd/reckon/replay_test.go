@@ -184,22 +184,30 @@ func TestReplayTimeSpan(t *testing.T) {
 	}
 }
 
+// flipBytes damages the file at path: the bytes [from, to) that span
+// gives for its size are xored with mask.
+func flipBytes(t *testing.T, path string, span func(size int) (from, to int), mask byte) {
+	t.Helper()
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	from, to := span(len(b))
+	for i := from; i < to; i++ {
+		b[i] ^= mask
+	}
+	if err := os.WriteFile(path, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+}
+
 // TestReplayPastAGap: a journal that lost inputs in its middle (bytes
 // damaged) replays past the gap: every input the journal still holds has
 // its row, the gap is named, and the exit status is 1, not 0.
 func TestReplayPastAGap(t *testing.T) {
 	dir, _, _ := writeExampleJournal(t)
 	seg := journal.SegmentPath(dir, "cart", 0)
-	b, err := os.ReadFile(seg)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for i := len(b) / 3; i < len(b)/3+200; i++ {
-		b[i] ^= 0x5a
-	}
-	if err := os.WriteFile(seg, b, 0o644); err != nil {
-		t.Fatal(err)
-	}
+	flipBytes(t, seg, func(size int) (int, int) { return size / 3, size/3 + 200 }, 0x5a)
 	scan, err := journal.Read(dir, "cart", journal.Visitor{ReadOnly: true, Gap: func(error) error { return nil }})
 	if !errors.Is(err, journal.ErrGap) || scan.Pairs < 100 {
 		t.Fatalf("the damaged journal: %d inputs, %v; want a gap", scan.Pairs, err)
@@ -832,5 +840,37 @@ func TestCompareReadsBothConfigurationsFirst(t *testing.T) {
 	}
 	if _, err := os.Stat(out); !errors.Is(err, os.ErrNotExist) {
 		t.Errorf("compare -b of a malformed file left %s: %v", out, err)
+	}
+}
+
+// TestOfflineSaysJournalDamage: a journal whose segment header was
+// overwritten (the scan resynchronises at the first intact record, so no
+// input is lost and no gap is reported) is read whole by replay, review,
+// tune and calibrate, and each says where the damage is, as export does.
+// Before, they said nothing of it: damage that cost no input went unsaid.
+func TestOfflineSaysJournalDamage(t *testing.T) {
+	dir, samples, _ := writeExampleJournal(t)
+	seg := journal.SegmentPath(dir, "cart", 0)
+	flipBytes(t, seg, func(int) (int, int) { return 0, 8 }, 0xff)
+	scan, err := journal.Read(dir, "cart", journal.Visitor{ReadOnly: true})
+	if err != nil || len(scan.Damage) != 1 || scan.Pairs != len(samples) {
+		t.Fatalf("the damaged journal: %d of %d inputs, damage %v, %v; want all of them and one damaged range", scan.Pairs, len(samples), scan.Damage, err)
+	}
+	want := "journal damage in " + seg + " at byte 0"
+	out := t.TempDir()
+	for _, args := range [][]string{
+		{"replay", "-journal", dir, "-robot", "cart", "-out", filepath.Join(out, "track.csv")},
+		{"review", "-journal", dir, "-robot", "cart", "-out", filepath.Join(out, "review")},
+		{"tune", "-journal", dir, "-robot", "cart", "-config", exampleConfig, "-out", filepath.Join(out, "tuned.yaml")},
+		{"calibrate", "-journal", dir, "-robot", "cart", "-config", exampleConfig, "-out", filepath.Join(out, "calibrated.yaml")},
+	} {
+		stdout, stderr, code := runCode(t, context.Background(), "", args...)
+		if code != exitOK || !strings.Contains(stdout+stderr, want) {
+			t.Errorf("%s of a journal with a damaged header: exit %d, want 0 and a note %q\n%s%s", args[0], code, want, stdout, stderr)
+		}
+	}
+	report, err := os.ReadFile(filepath.Join(out, "review", "report.html"))
+	if err != nil || !strings.Contains(string(report), "journal damage in") {
+		t.Errorf("the review's report does not name the damage: %v", err)
 	}
 }

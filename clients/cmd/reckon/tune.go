@@ -192,16 +192,27 @@ type recording struct {
 	run     uint64
 	runs    uint64
 	// torn says where a journal was cut short (the inputs before it are
-	// read), or is empty.
-	torn string
+	// read), or is empty; damaged names its damaged byte ranges
+	// (journal.Scan.DamageNote), or is empty; gaps name where it lost
+	// inputs to damage (the inputs after each are read).
+	torn, damaged string
+	gaps          []string
 }
 
-// tornNote is a line that says the journal was cut short, or nothing.
+// tornNote is the lines that say the journal was cut short or damaged, or
+// nothing.
 func (rec *recording) tornNote() string {
-	if rec.torn == "" {
-		return ""
+	note := ""
+	if rec.torn != "" {
+		note = "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
 	}
-	return "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
+	for _, g := range rec.gaps {
+		note += "note: " + g + "; the inputs after it are used, without those lost\n"
+	}
+	if rec.damaged != "" {
+		note += "note: " + rec.damaged + " (every intact record around it is used)\n"
+	}
+	return note
 }
 
 // note says which run of several the recording's inputs are, or nothing
@@ -220,7 +231,8 @@ func (rec *recording) note() string {
 func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64) (*recording, error) {
 	want = max(want, 1)
 	var inputs []calib.RecordedInput
-	var torn string
+	var torn, damaged string
+	var gaps []string
 	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
 		if s.GetRunStart() != nil {
@@ -234,13 +246,19 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if err != nil {
 			return err
 		}
+		// Each input is copied out of d, so that the recording keeps only
+		// its own kind: a pointer into d kept all of d (248 bytes an input,
+		// where odometry needs 80).
 		switch d.Kind {
 		case fusion.InputOdometry:
-			inputs = append(inputs, calib.RecordedInput{Odometry: &d.Odometry})
+			o := d.Odometry
+			inputs = append(inputs, calib.RecordedInput{Odometry: &o})
 		case fusion.InputHeading:
-			inputs = append(inputs, calib.RecordedInput{Heading: &d.Heading})
+			h := d.Heading
+			inputs = append(inputs, calib.RecordedInput{Heading: &h})
 		case fusion.InputFix:
-			inputs = append(inputs, calib.RecordedInput{Fix: &d.Fix})
+			f := d.Fix
+			inputs = append(inputs, calib.RecordedInput{Fix: &f})
 		default:
 			skipped++
 		}
@@ -254,7 +272,13 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if err != nil {
 			return nil, err
 		}
-		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
+		// A gap (inputs lost to damage) is gone past, as replay and review
+		// do: the inputs after it are the run's too.
+		gap := func(err error) error {
+			gaps = append(gaps, err.Error())
+			return nil
+		}
+		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Gap: gap, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
 			}
@@ -263,12 +287,13 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 			}
 			return nil
 		}})
-		if err != nil {
+		if err != nil && !(errors.Is(err, journal.ErrGap) && len(gaps) > 0) {
 			return nil, err
 		}
 		if scan.Torn != nil {
 			torn = fmt.Sprintf("%v in %s", scan.Torn, filepath.Base(scan.TornSegment))
 		}
+		damaged = scan.DamageNote()
 	} else {
 		f, err := os.Open(path)
 		if err != nil {
@@ -298,7 +323,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	if len(inputs) == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
 	}
-	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn}, nil
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn, damaged: damaged, gaps: gaps}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

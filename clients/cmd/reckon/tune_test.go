@@ -3,6 +3,7 @@ package main
 import (
 	"bufio"
 	"context"
+	"errors"
 	"fmt"
 	"math"
 	"os"
@@ -11,6 +12,7 @@ import (
 	"testing"
 
 	"reckon.example/fusion/fusiontest"
+	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
 	"reckon.example/server/journal"
 )
@@ -346,6 +348,34 @@ func TestNewConfigNeverOverwritesTheRecording(t *testing.T) {
 		}
 		if got, _ := os.ReadFile(samples); string(got) != string(b) {
 			t.Fatalf("%s -out the recording -force overwrote it: %.100q", args[0], got)
+		}
+	}
+}
+
+// TestTuneAndCalibrateGoPastAGap: a journal that lost inputs in its middle
+// to damaged bytes is tuned and calibrated on every input it still holds,
+// as replay and review go past such a gap, and both name the gap. Before,
+// both stopped at it with exit 1, "journal gap: ...", and fitted nothing.
+func TestTuneAndCalibrateGoPastAGap(t *testing.T) {
+	dir, samples, _ := writeExampleJournal(t)
+	flipBytes(t, journal.SegmentPath(dir, "cart", 0), func(size int) (int, int) { return size / 3, size/3 + 200 }, 0x5a)
+	var kept int
+	_, err := journal.Read(dir, "cart", journal.Visitor{ReadOnly: true, Gap: func(error) error { return nil }, Pair: func(*pb.JournalInput, *pb.JournalOutput) error {
+		kept++
+		return nil
+	}})
+	if !errors.Is(err, journal.ErrGap) || kept < len(samples)/2 || kept >= len(samples) {
+		t.Fatalf("the damaged journal: %d of %d inputs, %v; want a gap", kept, len(samples), err)
+	}
+	rec, err := readRun(context.Background(), dir, "cart", nil, 1)
+	if err != nil || len(rec.inputs)+rec.skipped != kept {
+		t.Fatalf("readRun: %v; want the %d inputs kept", err, kept)
+	}
+	for _, cmd := range []string{"tune", "calibrate"} {
+		out := filepath.Join(t.TempDir(), "new.yaml")
+		stdout, stderr, code := runCode(t, context.Background(), "", cmd, "-journal", dir, "-robot", "cart", "-out", out)
+		if _, err := os.Stat(out); code != exitOK || err != nil || !strings.Contains(stdout, "journal gap") || !strings.Contains(stdout, "the inputs after it are used") {
+			t.Errorf("%s of a journal with a gap: exit %d, %v; want exit 0, %s written and the gap named\n%s%s", cmd, code, err, out, stdout, stderr)
 		}
 	}
 }

@@ -38,6 +38,7 @@ feeds the robot.
 
 import argparse
 import csv
+import gzip
 import math
 import os
 import sys
@@ -63,30 +64,68 @@ COV = reckonpy.diag(0.0009, 0.0009, 0.0004)
 
 
 def read_detections(path, clock_offset_ns):
-    """read_detections yields (stamp_ns on the robot's time base,
-    marker_id, marker pose in the camera frame) for each row."""
-    with open(path, newline="") as f:
-        rows = csv.DictReader(line for line in f if not line.startswith("#"))
+    """read_detections returns (stamp_ns on the robot's time base,
+    marker_id, marker pose in the camera frame) for each row; lines
+    starting with # are skipped. A file saved with a UTF-8 byte order mark
+    or CRLF line ends (as spreadsheets save CSV) reads as one without. A
+    header without one of the columns, or a row whose capture_ns is not an
+    integer or whose x_m, y_m or yaw_rad is not a number, raises ValueError
+    naming the file, its line and the column."""
+    numbers = []  # the file's line number of each line handed to the CSV reader
+
+    def lines(f):
+        for n, line in enumerate(f, 1):
+            if not line.startswith("#"):
+                numbers.append(n)
+                yield line
+
+    out = []
+    with open(path, newline="", encoding="utf-8-sig") as f:
+        rows = csv.DictReader(lines(f))
+        missing = [c for c in ("capture_ns", "marker_id", "x_m", "y_m", "yaw_rad") if c not in (rows.fieldnames or [])]
+        if missing:
+            raise ValueError(f"{path}:{numbers[0] if numbers else 1}: the header lacks the column(s) {', '.join(missing)}")
         for row in rows:
-            yield (int(row["capture_ns"]) + clock_offset_ns, row["marker_id"],
-                   (float(row["x_m"]), float(row["y_m"]), float(row["yaw_rad"])))
+            where = f"{path}:{numbers[rows.line_num - 1]}"
+            values = []
+            for column, parse in (("capture_ns", int), ("x_m", float), ("y_m", float), ("yaw_rad", float)):
+                try:
+                    values.append(parse(row[column]))
+                except (TypeError, ValueError):
+                    what = "an integer" if parse is int else "a number"
+                    raise ValueError(f"{where}: {column}: {row[column]!r} is not {what}") from None
+            out.append((values[0] + clock_offset_ns, row["marker_id"], tuple(values[1:])))
+    return out
+
+
+def read_samples(path):
+    """read_samples returns the reckon.v1.Sample of each line of a JSON Lines
+    file as reckon feed reads it: blank lines and # comments skipped, a
+    UTF-8 byte order mark at its start and CRLF line ends taken, a gzip
+    file (.jsonl.gz) read through its decompression. A line that is not a
+    Sample raises ValueError naming the file and its line."""
+    with open(path, "rb") as f:
+        gz = f.read(2) == b"\x1f\x8b"
+    with (gzip.open(path, "rt", encoding="utf-8-sig") if gz else open(path, encoding="utf-8-sig")) as f:
+        out = []
+        for n, line in enumerate(f, 1):
+            line = line.strip()
+            if line and not line.startswith("#"):
+                try:
+                    out.append(json_format.Parse(line, pb.samples_pb2.Sample()))
+                except json_format.ParseError as e:
+                    raise ValueError(f"{path}:{n}: {e}") from None
+        return out
 
 
 class Controller:
-    """Controller stands in for the robot's controller: it feeds odometry and
-    IMU headings from a JSON Lines file, up to a stamp, and waits for their
-    verdicts."""
+    """Controller stands in for the robot's controller: it feeds the odometry
+    and IMU headings among samples (read_samples of a JSON Lines file), up
+    to a stamp, and waits for their verdicts."""
 
-    def __init__(self, client, robot, path):
+    def __init__(self, client, robot, samples):
         self.session = client.ingest(robot)
-        self.samples = []
-        with open(path) as f:
-            for line in f:
-                line = line.strip()
-                if line and not line.startswith("#"):
-                    s = json_format.Parse(line, pb.samples_pb2.Sample())
-                    if s.WhichOneof("sample") in ("odometry", "heading"):
-                        self.samples.append(s)
+        self.samples = [s for s in samples if s.WhichOneof("sample") in ("odometry", "heading")]
         self.next = 0
         self.sent = 0
         self.answered = 0
@@ -137,14 +176,22 @@ def main(argv=None):
         with open(args.token_file) as f:
             token = f.read().strip()
     tls = reckonpy.TLS(ca_file=args.tls_ca) if args.tls_ca else None
+    # Both files are read whole before anything is sent, so that a bad line
+    # sends nothing.
+    try:
+        detections = read_detections(args.detections, args.clock_offset_ns)
+        samples = read_samples(args.odometry) if args.odometry else None
+    except (OSError, ValueError) as e:
+        print(f"vision_feed: {e}", file=sys.stderr)
+        return 1
     with reckonpy.connect(args.addr, token=token, tls=tls) as client:
-        controller = Controller(client, args.robot, args.odometry) if args.odometry else None
+        controller = Controller(client, args.robot, samples) if args.odometry else None
         session = client.ingest(args.robot)
         verdicts = []
         reader = threading.Thread(target=lambda: verdicts.extend(session.verdicts()), daemon=True)
         reader.start()
         sent = 0
-        for stamp_ns, marker_id, marker_in_camera in read_detections(args.detections, args.clock_offset_ns):
+        for stamp_ns, marker_id, marker_in_camera in detections:
             if marker_id not in MARKERS:
                 print(f"skipping marker {marker_id}: not in the map", file=sys.stderr)
                 continue

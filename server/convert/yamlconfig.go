@@ -3,6 +3,8 @@ package convert
 import (
 	"errors"
 	"fmt"
+	"regexp"
+	"strconv"
 	"strings"
 
 	"go.yaml.in/yaml/v3"
@@ -43,17 +45,35 @@ func (e *ConfigFileError) Unwrap() error { return e.Err }
 // Is makes errors.Is(err, ErrConfigFile) true.
 func (e *ConfigFileError) Is(target error) bool { return target == ErrConfigFile }
 
-// tabIndented returns the number (from 1) of the first line of data that
-// holds more than a comment and whose indentation holds a tab, or 0.
-func tabIndented(data []byte) int {
-	for n, line := range strings.Split(string(data), "\n") {
+// tabIndented returns the number (from 1) of the line of data whose
+// indentation holds the tab that err, the parser's, stumbled on, or 0 if
+// err is not about such a tab. The parser says "found character that
+// cannot start any token" at the tab's line, or "found a tab character
+// that violates indentation" at the line before it; a tab elsewhere in
+// the file (a legal one, in a flow sequence or a block scalar) is not
+// what broke it.
+func tabIndented(data []byte, err error) int {
+	m := yamlTabError.FindStringSubmatch(err.Error())
+	if m == nil {
+		return 0
+	}
+	n, _ := strconv.Atoi(m[1])
+	lines := strings.Split(string(data), "\n")
+	for _, k := range []int{n, n + 1} {
+		if k < 1 || k > len(lines) {
+			continue
+		}
+		line := lines[k-1]
 		rest := strings.TrimLeft(line, " \t")
 		if rest != "" && rest[0] != '#' && strings.Contains(line[:len(line)-len(rest)], "\t") {
-			return n + 1
+			return k
 		}
 	}
 	return 0
 }
+
+// yamlTabError matches the parser's errors that a tab can cause.
+var yamlTabError = regexp.MustCompile(`line (\d+): found (?:character that cannot start any token|a tab character)`)
 
 // LoadConfigYAML reads a hand-edited YAML robot configuration: the
 // RobotConfig message with its proto field names (comments allowed; an enum
@@ -64,7 +84,7 @@ func tabIndented(data []byte) int {
 func LoadConfigYAML(data []byte) (*pb.RobotConfig, fusion.Config, error) {
 	var doc yaml.Node
 	if err := yaml.Unmarshal(data, &doc); err != nil {
-		if n := tabIndented(data); n > 0 {
+		if n := tabIndented(data, err); n > 0 {
 			// The parser's "found character that cannot start any token"
 			// does not say that the character is a tab.
 			return nil, fusion.Config{}, &ConfigFileError{Line: n, Err: fmt.Errorf("indented with a tab: YAML indents with spaces only (%w)", err)}

@@ -43,6 +43,7 @@ import math
 import os
 import sys
 import threading
+import zlib
 from collections import Counter
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
@@ -108,13 +109,21 @@ def read_samples(path):
         gz = f.read(2) == b"\x1f\x8b"
     with (gzip.open(path, "rt", encoding="utf-8-sig") if gz else open(path, encoding="utf-8-sig")) as f:
         out = []
-        for n, line in enumerate(f, 1):
-            line = line.strip()
-            if line and not line.startswith("#"):
-                try:
-                    out.append(json_format.Parse(line, pb.samples_pb2.Sample()))
-                except json_format.ParseError as e:
-                    raise ValueError(f"{path}:{n}: {e}") from None
+        n = 0
+        try:
+            for n, line in enumerate(f, 1):
+                line = line.strip()
+                if line and not line.startswith("#"):
+                    try:
+                        out.append(json_format.Parse(line, pb.samples_pb2.Sample()))
+                    except json_format.ParseError as e:
+                        raise ValueError(f"{path}:{n}: {e}") from None
+        except (EOFError, zlib.error) as e:
+            # A gzip file cut short ends in EOFError, a damaged one in
+            # zlib.error: neither is an OSError, and neither named the file.
+            raise ValueError(f"{path}:{n + 1}: the compressed file is cut short or damaged here ({e}); the lines before it are whole") from None
+        except UnicodeDecodeError as e:
+            raise ValueError(f"{path}:{n + 1}: not UTF-8 text ({e})") from None
         return out
 
 

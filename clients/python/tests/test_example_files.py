@@ -80,6 +80,23 @@ class ExampleFilesTest(unittest.TestCase):
         self.assertIn(f"{path}:10: ", str(cm.exception))
         self.assertIn("colour", str(cm.exception))
 
+    def test_damaged_gzip_named(self):
+        # A .jsonl.gz cut short raised EOFError and a damaged one zlib.error,
+        # which the example did not catch: a traceback naming no file (the
+        # review of session 26). Both are named with the file and the line.
+        packed = gzip.compress(support.SAMPLES.read_bytes())
+        cut = self.write("cut.jsonl.gz", packed[: len(packed) // 2])
+        damaged = bytearray(packed)
+        for i in range(len(damaged) // 2, len(damaged) // 2 + 64):
+            damaged[i] ^= 0x5A
+        bad = self.write("damaged.jsonl.gz", bytes(damaged))
+        for path, says in ((cut, "the compressed file is cut short or damaged here"), (bad, "")):
+            # Damaged deflate data may decode into garbage a line's parse
+            # refuses before the stream's check fails: named either way.
+            with self.assertRaises(ValueError) as cm:
+                self.vf.read_samples(path)
+            self.assertRegex(str(cm.exception), "^" + path.replace(".", r"\.") + r":\d+: " + says)
+
 
 if __name__ == "__main__":
     unittest.main()

@@ -194,14 +194,22 @@ type recording struct {
 	// torn says where a journal was cut short (the inputs before it are
 	// read), or is empty.
 	torn string
+	// gaps name the continuity breaks of a damaged journal, each a loss
+	// of inputs that the reading went on past, as review and replay do.
+	gaps []string
 }
 
-// tornNote is a line that says the journal was cut short, or nothing.
+// tornNote is a line that says the journal was cut short, and one for
+// each gap damage left in it, or nothing.
 func (rec *recording) tornNote() string {
-	if rec.torn == "" {
-		return ""
+	var b strings.Builder
+	if rec.torn != "" {
+		b.WriteString("note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n")
 	}
-	return "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
+	for _, g := range rec.gaps {
+		b.WriteString("note: " + g + "; the inputs lost are left out, those on either side used\n")
+	}
+	return b.String()
 }
 
 // note says which run of several the recording's inputs are, or nothing
@@ -221,6 +229,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	want = max(want, 1)
 	var inputs []calib.RecordedInput
 	var torn string
+	var gaps []string
 	skipped, run := 0, uint64(1)
 	add := func(s *pb.Sample) error {
 		if s.GetRunStart() != nil {
@@ -254,7 +263,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if err != nil {
 			return nil, err
 		}
-		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
+		fr, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
 			}
@@ -262,8 +271,13 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 				return add(s)
 			}
 			return nil
+		}, Gap: func(err error) error {
+			gaps = append(gaps, err.Error())
+			return nil
 		}})
-		if err != nil {
+		// A gap is gone past (and named by Gap) only once the journal
+		// opened a robot, as in replay.
+		if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 			return nil, err
 		}
 		if scan.Torn != nil {
@@ -298,7 +312,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	if len(inputs) == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
 	}
-	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn}, nil
+	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn, gaps: gaps}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

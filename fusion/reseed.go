@@ -56,16 +56,16 @@ func (r *Robot) insertReset(e *entry, res *Result) {
 // before it is taken, naming the field at fault: pose or covariance.
 func checkPose(pose estimator.Pose, cov []float64) error {
 	if !finiteAll(pose.X, pose.Y) || !anglesOK(pose.Heading) {
-		return &FieldError{Path: "pose", Err: fmt.Errorf("%w: pose %+v is not finite, or its heading not within %g rad of 0", ErrBadSample, pose, maxAngleRad)}
+		return FieldErrorf(ErrBadSample, "pose", "%+v is not finite, or its heading not within %g rad of 0", pose, maxAngleRad)
 	}
 	if !lengthsOK(pose.X, pose.Y) {
-		return &FieldError{Path: "pose", Err: fmt.Errorf("%w: pose %+v is not a field position within %g m of the origin", ErrBadSample, pose, maxFieldM)}
+		return FieldErrorf(ErrBadSample, "pose", "%+v is not a field position within %g m of the origin", pose, maxFieldM)
 	}
 	if err := estimator.CheckCovariance(cov, 3); err != nil {
-		return &FieldError{Path: "covariance", Err: fmt.Errorf("%w: cov: %v", ErrBadSample, err)}
+		return FieldErrorf(ErrBadSample, "covariance", "%v", err)
 	}
 	if err := checkVariances(cov, 3, poseAngle); err != nil {
-		return &FieldError{Path: "covariance", Err: fmt.Errorf("%w: cov: %v", ErrBadSample, err)}
+		return FieldErrorf(ErrBadSample, "covariance", "%v", err)
 	}
 	return nil
 }

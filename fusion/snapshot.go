@@ -372,6 +372,9 @@ func (r *Robot) checkRestored() error {
 			return fmt.Errorf("%w: a checkpoint of %d states for a %d-state robot", ErrSnapshot, s.Size(), r.n)
 		}
 	}
+	if err := r.checkValues(); err != nil {
+		return err
+	}
 	if r.lastCounts != nil && len(r.lastCounts) != len(r.cfg.Wheels) {
 		return fmt.Errorf("%w: %d counts for %d wheels", ErrSnapshot, len(r.lastCounts), len(r.cfg.Wheels))
 	}
@@ -387,6 +390,128 @@ func (r *Robot) checkRestored() error {
 		}
 	}
 	return nil
+}
+
+// checkValues checks the numbers a replay of the window computes with:
+// the estimate now, at the window's start and after each entry (means
+// finite; covariances finite, with variances not negative and no
+// correlation past 1), and each entry's step, fix or reset (finite, their
+// covariances likewise). The CRC of a journal record guards only against
+// damage in it: a snapshot that a faulty build wrote, or one forged, with
+// a NaN or a negative variance in it would otherwise restore into a robot
+// that serves that nonsense, or fails every sample as a numerical fault,
+// where refusing it replays the journal's inputs from the start instead
+// (server, restore.go).
+func (r *Robot) checkValues() error {
+	cur := r.f.State()
+	if what := stateFault(&cur); what != "" {
+		return fmt.Errorf("%w: the estimate %s", ErrSnapshot, what)
+	}
+	if r.base.est.Size() != 0 {
+		if what := stateFault(&r.base.est); what != "" {
+			return fmt.Errorf("%w: the window's starting estimate %s", ErrSnapshot, what)
+		}
+	}
+	var st estimator.State
+	for k, q := range [][]entry{r.ents, r.held} {
+		name := [2]string{"window", "held"}[k]
+		for i := range q {
+			e := &q[i]
+			if what := entryFault(e); what != "" {
+				return fmt.Errorf("%w: %s entry %d (stamp_ns %d): %s", ErrSnapshot, name, i, e.t1, what)
+			}
+			if e.after.Slot == 0 {
+				continue
+			}
+			r.loadEst(&st, &e.after)
+			if what := stateFault(&st); what != "" {
+				return fmt.Errorf("%w: %s entry %d (stamp_ns %d): the estimate after it %s", ErrSnapshot, name, i, e.t1, what)
+			}
+		}
+	}
+	return nil
+}
+
+// stateFault says what is wrong with an estimate's numbers ("" if
+// nothing): a mean or covariance value not finite, a variance below 0, a
+// correlation past 1 (with a relative slack of 1e-6 for rounding: a
+// covariance matrix's off-diagonal values are bounded by the geometric
+// mean of their variances, a property of every positive semidefinite
+// matrix).
+func stateFault(s *estimator.State) string {
+	n := s.Size()
+	for i := 0; i < n; i++ {
+		if v := s.MeanAt(i); math.IsNaN(v) || math.IsInf(v, 0) {
+			return fmt.Sprintf("has mean %v in state %d", v, i)
+		}
+	}
+	return covFault(n, s.At)
+}
+
+// covFault is stateFault's check of an n x n covariance whose (i, j)
+// value at gives.
+func covFault(n int, at func(i, j int) float64) string {
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			v := at(i, j)
+			switch {
+			case math.IsNaN(v) || math.IsInf(v, 0):
+				return fmt.Sprintf("has covariance %v at (%d, %d)", v, i, j)
+			case i == j && v < 0:
+				return fmt.Sprintf("has variance %v in state %d", v, i)
+			}
+		}
+	}
+	for i := 0; i < n; i++ {
+		for j := 0; j < i; j++ {
+			if lim := math.Sqrt(at(i, i) * at(j, j)); math.Abs(at(i, j)) > lim*(1+1e-6) || math.Abs(at(j, i)) > lim*(1+1e-6) {
+				return fmt.Sprintf("has covariance %v at (%d, %d), past the %v its variances allow", at(i, j), i, j, lim)
+			}
+		}
+	}
+	return ""
+}
+
+// entryFault says what is wrong with the numbers of an entry's input (""
+// if nothing).
+func entryFault(e *entry) string {
+	finite := func(v ...float64) bool {
+		for _, x := range v {
+			if math.IsNaN(x) || math.IsInf(x, 0) {
+				return false
+			}
+		}
+		return true
+	}
+	cov3 := func(c *[9]float64) string { return covFault(3, func(i, j int) float64 { return c[3*i+j] }) }
+	switch e.kind {
+	case entOdo:
+		if s := e.step; !finite(s.ForwardM, s.LeftM, s.TurnRad) {
+			return fmt.Sprintf("step %+v is not finite", s)
+		}
+		if !(e.scrub >= 0) || math.IsInf(e.scrub, 1) {
+			return fmt.Sprintf("scrub variance %v is not a variance", e.scrub)
+		}
+		if what := cov3(&e.cov); what != "" {
+			return "step " + what
+		}
+	case entMeas:
+		m := &e.meas
+		if !finite(m.Z[:]...) || !finite(m.Mount.X, m.Mount.Y, m.Mount.Heading, m.LandmarkX, m.LandmarkY) {
+			return fmt.Sprintf("fix %v at mount %+v, landmark (%v, %v), is not finite", m.Z, m.Mount, m.LandmarkX, m.LandmarkY)
+		}
+		if what := cov3(&m.R); what != "" {
+			return "fix " + what
+		}
+	case entReset:
+		if p := e.pose; !finite(p.X, p.Y, p.Heading) {
+			return fmt.Sprintf("reset pose %+v is not finite", p)
+		}
+		if what := cov3(&e.poseCov); what != "" {
+			return "reset pose " + what
+		}
+	}
+	return ""
 }
 
 // checkStates checks that the states an entry's measurement names lie in

@@ -3,7 +3,10 @@ package fusion
 import (
 	"errors"
 	"math"
+	"strings"
 	"testing"
+
+	"reckon.example/estimator"
 )
 
 // TestSnapshotSlipFactorChecked: a snapshot whose window step carries a
@@ -42,6 +45,79 @@ func TestSnapshotSlipFactorChecked(t *testing.T) {
 			t.Errorf("%s: restored factor %v, want %v", c.name, got.live()[odo].slipK, c.k)
 		case !c.ok && !errors.Is(err, ErrSnapshot):
 			t.Errorf("%s: %v, want ErrSnapshot", c.name, err)
+		}
+	}
+}
+
+// TestSnapshotValuesChecked: a snapshot whose numbers a replay would
+// compute with are not an estimate's or an input's (a NaN, an infinity, a
+// negative variance, a correlation past 1: a damaged or forged snapshot,
+// as above) is refused with ErrSnapshot naming what and where, so that
+// the service replays the journal's inputs from the start instead of
+// serving a robot restored into nonsense. The same robot's snapshot
+// unchanged restores.
+func TestSnapshotValuesChecked(t *testing.T) {
+	nan, inf := math.NaN(), math.Inf(1)
+	find := func(r *Robot, k entryKind) *entry {
+		for i := range r.ents {
+			if e := &r.ents[i]; e.kind == k && i >= r.head {
+				return e
+			}
+		}
+		t.Fatalf("no entry of kind %d in the window", k)
+		return nil
+	}
+	badState := func(r *Robot, at int, v float64) estimator.State {
+		st := r.f.State()
+		n := st.Size()
+		x := make([]float64, n)
+		p := make([]float64, n*n)
+		st.MeanInto(x)
+		st.CovarianceInto(p)
+		if at < 0 {
+			x[0] = v
+		} else {
+			p[at] = v
+		}
+		return estimator.NewState(n, st.Angles(), x, p)
+	}
+	for _, c := range []struct {
+		name, want string
+		harm       func(r *Robot)
+	}{
+		{"unchanged", "", func(*Robot) {}},
+		{"step covariance NaN", "step has covariance NaN", func(r *Robot) { find(r, entOdo).cov[4] = nan }},
+		{"step not finite", "step {", func(r *Robot) { find(r, entOdo).step.TurnRad = inf }},
+		{"scrub negative", "scrub variance -1", func(r *Robot) { find(r, entOdo).scrub = -1 }},
+		{"fix infinite", "is not finite", func(r *Robot) { find(r, entMeas).meas.Z[0] = inf }},
+		{"fix correlation past 1", "fix has covariance 0.02 at (1, 0)", func(r *Robot) {
+			m := &find(r, entMeas).meas
+			m.R[1], m.R[3] = 0.02, 0.02
+		}},
+		{"checkpoint variance negative", "the estimate after it has variance -1 in state 0", func(r *Robot) {
+			d := r.slotData(find(r, entOdo).after.Slot)
+			d[r.n] = -1
+		}},
+		{"estimate NaN", "the estimate has mean NaN", func(r *Robot) {
+			st := badState(r, -1, nan)
+			r.f.SetState(&st)
+		}},
+		{"starting estimate infinite", "the window's starting estimate has covariance +Inf at (0, 1)", func(r *Robot) {
+			r.base.est = badState(r, 1, inf)
+		}},
+	} {
+		r := busyRobot(t)
+		c.harm(r)
+		b, err := r.Snapshot()
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, err = RestoreSnapshot(r.Config(), b)
+		switch {
+		case c.want == "" && err != nil:
+			t.Errorf("%s: %v", c.name, err)
+		case c.want != "" && (!errors.Is(err, ErrSnapshot) || !strings.Contains(err.Error(), c.want)):
+			t.Errorf("%s: %v, want ErrSnapshot saying %q", c.name, err, c.want)
 		}
 	}
 }

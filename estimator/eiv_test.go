@@ -1,6 +1,7 @@
 package estimator
 
 import (
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"testing"
@@ -37,7 +38,9 @@ func closeMats(t *testing.T, what string, got, want *mat.Dense, tol float64) {
 // (checked against finite differences in arc_test.go), D = J diag(P[s_f,
 // s_t], P[s_f, s_t], P[s_t, s_t]) and G = J diag(s_f, s_f, s_t) for the
 // step Jacobian J at the calibrated step (linear algebra, common practice).
-// Without a report (rep nil) only F M F^T remains.
+// Without a report (rep nil) only F M F^T remains. The moments cover the
+// pose and the IMU offset, which a step does not move: F is the pose's
+// transition bordered by a 1, and D R G^T lies in the pose block.
 func TestPredictEIVMatrixForm(t *testing.T) {
 	rng := rand.New(rand.NewPCG(41, 42))
 	for k := 0; k < 20; k++ {
@@ -60,8 +63,14 @@ func TestPredictEIVMatrixForm(t *testing.T) {
 		tu := Step{sf * u.ForwardM, sf * u.LeftM, st*u.TurnRad + br*dt}
 		var fx, j [9]float64
 		ArcJacobians(f.Pose(), tu, &fx, &j)
-		F, J := mat.NewDense(3, 3, fx[:]), mat.NewDense(3, 3, j[:])
-		m := mat.NewDense(3, 3, append([]float64(nil), f.st.eiv[:]...))
+		F, J := mat.NewDense(EIVDim, EIVDim, nil), mat.NewDense(3, 3, j[:])
+		for a := 0; a < 3; a++ {
+			for b := 0; b < 3; b++ {
+				F.Set(a, b, fx[a*3+b])
+			}
+		}
+		F.Set(IOffset, IOffset, 1)
+		m := mat.NewDense(EIVDim, EIVDim, append([]float64(nil), f.st.eiv[:]...))
 		pfs, pts := f.st.p[fs*stride+ts], f.st.p[ts*stride+ts]
 		var want, fm, d, g, dr mat.Dense
 		fm.Mul(F, m)
@@ -73,7 +82,8 @@ func TestPredictEIVMatrixForm(t *testing.T) {
 			dr.Mul(&d, &r)
 			var drg mat.Dense
 			drg.Mul(&dr, g.T())
-			want.Sub(&want, &drg)
+			pose := want.Slice(0, 3, 0, 3).(*mat.Dense)
+			pose.Sub(pose, &drg)
 		}
 		cu := rep
 		cu[0] += 1e-6
@@ -83,48 +93,80 @@ func TestPredictEIVMatrixForm(t *testing.T) {
 		} else {
 			f.PredictReported(u, &cu, nil, dt, &q)
 		}
-		closeMats(t, "M after the prediction", mat.NewDense(3, 3, f.st.eiv[:]), &want, 1e-12)
+		closeMats(t, "M after the prediction", mat.NewDense(EIVDim, EIVDim, f.st.eiv[:]), &want, 1e-12)
 	}
 }
 
-// TestUpdateEIVMatrixForm: a pose fix with no mount (H = [I 0]) on 7
-// states. The turn scale's correction is the Kalman one less the expected
-// pull sum_ab (S^-1)_ab M_ab (A = H^T S^-1 H = S^-1 here), and the moments
-// become (I - K_p) M (I - K_p)^T with K_p = P_pp S^-1 and S = P_pp + R:
-// the Kalman gain and innovation covariance (Bar-Shalom, Li and Kirubarajan
-// 2001, sec. 5.2) in gonum mat. A twin filter with the moments at zero
-// gives the correction without the pull.
+// TestUpdateEIVMatrixForm: a pose fix with no mount (H = [I 0]) and an
+// IMU heading (H = [0 0 1 1 0 ...]) on 7 states. The turn scale's
+// correction is the Kalman one less the expected pull sum_ab A_ab M_ab,
+// A = H_p^T S^-1 H_p over the pose and offset columns, and the moments
+// become T M T^T with T = I - K_p H_p, K_p the pose and offset rows of
+// the gain K = P H^T S^-1 and S = H P H^T + R: the Kalman gain and
+// innovation covariance (Bar-Shalom, Li and Kirubarajan 2001, sec. 5.2)
+// in gonum mat. A twin filter with the moments at zero gives the
+// correction without the pull.
 func TestUpdateEIVMatrixForm(t *testing.T) {
 	rng := rand.New(rand.NewPCG(43, 44))
-	for k := 0; k < 20; k++ {
+	for k := 0; k < 40; k++ {
 		f := eivFilter(t, rng)
 		twin := *f
-		twin.st.eiv = [9]float64{}
-		ts := f.Layout().TurnScale()
-		m := Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
-			R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
-		ppp := mat.NewDense(3, 3, nil)
-		for a := 0; a < 3; a++ {
-			for b := 0; b < 3; b++ {
-				ppp.Set(a, b, f.st.p[a*stride+b])
+		twin.st.eiv = EIVMoments{}
+		ts, n := f.Layout().TurnScale(), f.st.n
+		var m Measurement
+		var h *mat.Dense
+		if k%2 == 0 {
+			m = Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
+				R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
+			h = mat.NewDense(3, n, nil)
+			for a := 0; a < 3; a++ {
+				h.Set(a, a, 1)
+			}
+		} else {
+			m = Measurement{Kind: KindIMUHeading, Z: [3]float64{Wrap(f.st.x[IHead] + f.st.x[IOffset] + 0.01*rng.NormFloat64())}, R: [9]float64{2e-5}}
+			h = mat.NewDense(1, n, nil)
+			h.Set(0, IHead, 1)
+			h.Set(0, IOffset, 1)
+		}
+		d, _ := h.Dims()
+		p := mat.NewDense(n, n, nil)
+		for a := 0; a < n; a++ {
+			for b := 0; b < n; b++ {
+				p.Set(a, b, f.st.p[a*stride+b])
 			}
 		}
-		var s, sInv mat.Dense
-		s.Add(ppp, mat.NewDense(3, 3, m.R[:]))
+		r := mat.NewDense(d, d, nil)
+		for a := 0; a < d; a++ {
+			for b := 0; b < d; b++ {
+				r.Set(a, b, m.R[a*3+b])
+			}
+		}
+		var hp, s, sInv, gain mat.Dense
+		hp.Mul(h, p)
+		s.Mul(&hp, h.T())
+		s.Add(&s, r)
 		if err := sInv.Inverse(&s); err != nil {
 			t.Fatal(err)
 		}
-		M := mat.NewDense(3, 3, append([]float64(nil), f.st.eiv[:]...))
+		gain.Mul(hp.T(), &sInv)
+		hpo := h.Slice(0, d, 0, EIVDim)
+		var hs, a mat.Dense
+		hs.Mul(hpo.T(), &sInv)
+		a.Mul(&hs, hpo)
+		M := mat.NewDense(EIVDim, EIVDim, append([]float64(nil), f.st.eiv[:]...))
 		var pull float64
-		for a := 0; a < 3; a++ {
-			for b := 0; b < 3; b++ {
-				pull += sInv.At(a, b) * M.At(a, b)
+		for i := 0; i < EIVDim; i++ {
+			for j := 0; j < EIVDim; j++ {
+				pull += a.At(i, j) * M.At(i, j)
 			}
 		}
-		var kp, tm, want mat.Dense
-		kp.Mul(ppp, &sInv)
-		tMat := mat.NewDense(3, 3, []float64{1, 0, 0, 0, 1, 0, 0, 0, 1})
-		tMat.Sub(tMat, &kp)
+		var kh, tm, want mat.Dense
+		kh.Mul(gain.Slice(0, EIVDim, 0, d), hpo)
+		tMat := mat.NewDense(EIVDim, EIVDim, nil)
+		for i := 0; i < EIVDim; i++ {
+			tMat.Set(i, i, 1)
+		}
+		tMat.Sub(tMat, &kh)
 		tm.Mul(tMat, M)
 		want.Mul(&tm, tMat.T())
 
@@ -135,11 +177,43 @@ func TestUpdateEIVMatrixForm(t *testing.T) {
 			t.Fatal(err)
 		}
 		if got := twin.st.x[ts] - f.st.x[ts]; math.Abs(got-pull) > 1e-9*math.Abs(pull)+1e-15 {
-			t.Errorf("case %d: the turn scale's pull %.6g, want %.6g", k, got, pull)
+			t.Errorf("case %d (%v): the turn scale's pull %.6g, want %.6g", k, m.Kind, got, pull)
 		}
-		closeMats(t, "M after the update", mat.NewDense(3, 3, f.st.eiv[:]), &want, 1e-9)
-		if twin.st.eiv != [9]float64{} {
+		closeMats(t, fmt.Sprintf("case %d (%v): M after the update", k, m.Kind), mat.NewDense(EIVDim, EIVDim, f.st.eiv[:]), &want, 1e-9)
+		if twin.st.eiv != (EIVMoments{}) {
 			t.Errorf("case %d: zero moments became %v", k, twin.st.eiv)
+		}
+	}
+}
+
+// TestInitOffsetEIV: the IMU offset initialised from a heading z is z - th,
+// so its covariance with the turn scale is minus the heading's and its
+// error minus the heading's (the reading's own error is independent of
+// both): the moments' offset row and column become minus the heading's,
+// the offset's diagonal the heading's, and the pose block stays (linear
+// covariance propagation, common practice).
+func TestInitOffsetEIV(t *testing.T) {
+	rng := rand.New(rand.NewPCG(45, 46))
+	f := eivFilter(t, rng)
+	before := f.st.eiv
+	if err := f.InitOffset(0.3, 1e-4); err != nil {
+		t.Fatal(err)
+	}
+	m := &f.st.eiv
+	for a := 0; a < EIVDim; a++ {
+		for b := 0; b < EIVDim; b++ {
+			want := before[a*EIVDim+b]
+			switch {
+			case a == IOffset && b == IOffset:
+				want = before[IHead*EIVDim+IHead]
+			case a == IOffset:
+				want = -before[IHead*EIVDim+b]
+			case b == IOffset:
+				want = -before[a*EIVDim+IHead]
+			}
+			if m[a*EIVDim+b] != want {
+				t.Errorf("M[%d][%d] = %g, want %g", a, b, m[a*EIVDim+b], want)
+			}
 		}
 	}
 }

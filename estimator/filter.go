@@ -29,14 +29,31 @@ type State struct {
 	x [MaxStates]float64
 	// p is the n x n covariance, row-major with stride MaxStates.
 	p [MaxStates * MaxStates]float64
-	// eiv is, with a turn scale in the layout, M = E[c e^T] (3x3
-	// row-major): c = P[pose, s_t], the turn scale's covariance with the
-	// pose, and e the pose's error. The reported turns enter c, and their
-	// own noise enters e, so the two correlate and an update would pull
-	// s_t towards 0 (errors in variables); Update takes that expected pull
-	// out (DEVELOPERS.md, "Design: State"). Zero without a turn scale.
-	eiv [9]float64
+	// eiv is, with a turn scale in the layout, M = E[c e^T] (EIVDim x
+	// EIVDim row-major): c = P[q, s_t], the turn scale's covariance with
+	// q, the pose and the IMU offset, and e their error. The reported
+	// turns enter c, and their own noise enters e, so the two correlate
+	// and an update would pull s_t towards 0 (errors in variables); Update
+	// takes that expected pull out (DEVELOPERS.md, "Design: State"). The
+	// offset's row and column are zero without one; all of it is zero
+	// without a turn scale.
+	eiv [eivSize]float64
 }
+
+// EIVDim is the order of the errors-in-variables moments (State's eiv):
+// the pose and the IMU offset, whose row and column stay zero in a layout
+// without one.
+const EIVDim = 4
+
+// eivDim and eivSize are EIVDim and the number of moments.
+const (
+	eivDim  = EIVDim
+	eivSize = eivDim * eivDim
+)
+
+// EIVMoments are the errors-in-variables moments, EIVDim x EIVDim
+// row-major (State.EIV).
+type EIVMoments = [eivSize]float64
 
 // NewState returns the state of size n (3 to MaxStates) whose angular
 // states are the bits of angles (Layout.Angles), with mean x (length n) and
@@ -74,10 +91,10 @@ func (s *State) CopyFrom(src *State) {
 
 // EIV returns the errors-in-variables moments of the turn scale (State's
 // eiv; zero without a turn scale).
-func (s *State) EIV() [9]float64 { return s.eiv }
+func (s *State) EIV() [eivSize]float64 { return s.eiv }
 
 // SetEIV sets them (a state read back from a snapshot).
-func (s *State) SetEIV(m [9]float64) { s.eiv = m }
+func (s *State) SetEIV(m [eivSize]float64) { s.eiv = m }
 
 // SetPacked makes s the state of size n with angular states angles whose
 // packed form (Filter.Pack) is src, copying only what is in use when s
@@ -91,8 +108,8 @@ func (s *State) SetPacked(n int, angles uint16, src []float64) {
 	for i := 0; i < n; i++ {
 		copy(s.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
 	}
-	s.eiv = [9]float64{}
-	if len(src) >= n+n*n+9 {
+	s.eiv = [eivSize]float64{}
+	if len(src) >= n+n*n+eivSize {
 		copy(s.eiv[:], src[n+n*n:])
 	}
 }
@@ -271,12 +288,12 @@ func (f *Filter) Var(i int) float64 { return f.st.Var(i) }
 func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
 
 // PackedSize returns the length of the filter's packed estimate: the mean
-// and the covariance, N + N*N values, and with a turn scale the 9
+// and the covariance, N + N*N values, and with a turn scale the 16
 // errors-in-variables moments (State's eiv).
 func (f *Filter) PackedSize() int {
 	n := f.st.n + f.st.n*f.st.n
 	if f.layout.turnScale >= 0 {
-		n += 9
+		n += eivSize
 	}
 	return n
 }
@@ -291,7 +308,7 @@ func (f *Filter) Pack(dst []float64) {
 		copy(dst[n+i*n:n+(i+1)*n], f.st.p[i*stride:i*stride+n])
 	}
 	if f.layout.turnScale >= 0 {
-		copy(dst[n+n*n:n+n*n+9], f.st.eiv[:])
+		copy(dst[n+n*n:n+n*n+eivSize], f.st.eiv[:])
 	}
 }
 
@@ -304,7 +321,7 @@ func (f *Filter) Unpack(src []float64) {
 		copy(f.st.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
 	}
 	if f.layout.turnScale >= 0 {
-		copy(f.st.eiv[:], src[n+n*n:n+n*n+9])
+		copy(f.st.eiv[:], src[n+n*n:n+n*n+eivSize])
 	}
 }
 
@@ -402,8 +419,9 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 //
 //	M' = F M F^T - sum_k d_k (G rep_k)^T
 //
-// F the pose block of the transition, G the step Jacobian times the
-// scales, d_k the change of P[pose, s_t] per unit of reported step
+// F the pose block of the transition (bordered by a 1 for the IMU offset,
+// which a step does not move), G the step Jacobian times the scales, and,
+// on the pose block alone, d_k the change of P[pose, s_t] per unit of reported step
 // component k (d(pose')/d(step_k) times P[s_f, s_t] for forward and left,
 // times P[s_t, s_t] for the turn) and rep_k column k of rep: the reported
 // step enters P[pose, s_t] and its noise enters the pose's error with the
@@ -411,7 +429,7 @@ func (f *Filter) Predict(u Step, cu *[9]float64, dtS float64, q *[MaxStates]floa
 func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[MaxStates]float64) {
 	var t transition
 	f.motion(&t, &f.st, u, dtS)
-	if f.layout.turnScale >= 0 && (rep != nil || f.st.eiv != [9]float64{}) {
+	if f.layout.turnScale >= 0 && (rep != nil || f.st.eiv != [eivSize]float64{}) {
 		f.predictEIV(&t, rep)
 	}
 	n := f.st.n
@@ -480,19 +498,23 @@ func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[M
 // runs on every step, replays of the window included.
 func (f *Filter) predictEIV(t *transition, rep *[9]float64) {
 	m := &f.st.eiv
-	// F = I + e in the heading column, e = (e0, e1, 0): F M adds e_a times
-	// row 2 to rows 0 and 1; (F M) F^T adds e_b times column 2 to columns
-	// 0 and 1.
+	// F = I + e in the heading column of the position rows, e = (e0,
+	// e1): F M adds e_a times row 2 to rows 0 and 1; (F M) F^T adds e_b
+	// times column 2 to columns 0 and 1. The offset's row and column move
+	// only with F's position rows (the offset is not moved by a step).
 	e0, e1 := t.e[0][0], t.e[1][0]
-	m0, m1, m2 := m[0]+e0*m[6], m[1]+e0*m[7], m[2]+e0*m[8]
-	m3, m4, m5 := m[3]+e1*m[6], m[4]+e1*m[7], m[5]+e1*m[8]
-	m6, m7, m8 := m[6], m[7], m[8]
-	m0, m1 = m0+m2*e0, m1+m2*e1
-	m3, m4 = m3+m5*e0, m4+m5*e1
-	m6, m7 = m6+m8*e0, m7+m8*e1
+	for b := 0; b < eivDim; b++ {
+		m[b] += e0 * m[2*eivDim+b]
+		m[eivDim+b] += e1 * m[2*eivDim+b]
+	}
+	for a := 0; a < eivDim; a++ {
+		r := m[a*eivDim : a*eivDim+eivDim]
+		r[0] += e0 * r[2]
+		r[1] += e1 * r[2]
+	}
 	if rep != nil {
-		// M -= D R G^T: D = raw diag(c), c = (P[s_f,s_t], P[s_f,s_t],
-		// P[s_t,s_t]); R = rep; G = t.fu.
+		// M -= D R G^T on the pose block: D = raw diag(c), c =
+		// (P[s_f,s_t], P[s_f,s_t], P[s_t,s_t]); R = rep; G = t.fu.
 		ts, fs := f.layout.turnScale, f.layout.forwardScale
 		pts, pfs := f.st.p[ts*stride+ts], f.st.p[fs*stride+ts]
 		r, g, w := rep, &t.fu, &t.raw
@@ -508,17 +530,12 @@ func (f *Filter) predictEIV(t *transition, rep *[9]float64) {
 			rg[k][1] = r0*g[3] + r1*g[4] + r2*g[5]
 			rg[k][2] = r0*g[6] + r1*g[7] + r2*g[8]
 		}
-		m0 -= w[0]*rg[0][0] + w[1]*rg[1][0] + w[2]*rg[2][0]
-		m1 -= w[0]*rg[0][1] + w[1]*rg[1][1] + w[2]*rg[2][1]
-		m2 -= w[0]*rg[0][2] + w[1]*rg[1][2] + w[2]*rg[2][2]
-		m3 -= w[3]*rg[0][0] + w[4]*rg[1][0] + w[5]*rg[2][0]
-		m4 -= w[3]*rg[0][1] + w[4]*rg[1][1] + w[5]*rg[2][1]
-		m5 -= w[3]*rg[0][2] + w[4]*rg[1][2] + w[5]*rg[2][2]
-		m6 -= w[6]*rg[0][0] + w[7]*rg[1][0] + w[8]*rg[2][0]
-		m7 -= w[6]*rg[0][1] + w[7]*rg[1][1] + w[8]*rg[2][1]
-		m8 -= w[6]*rg[0][2] + w[7]*rg[1][2] + w[8]*rg[2][2]
+		for a := 0; a < 3; a++ {
+			for b := 0; b < 3; b++ {
+				m[a*eivDim+b] -= w[a*3]*rg[0][b] + w[a*3+1]*rg[1][b] + w[a*3+2]*rg[2][b]
+			}
+		}
 	}
-	*m = [9]float64{m0, m1, m2, m3, m4, m5, m6, m7, m8}
 }
 
 // decay applies the bias blocks' Gauss-Markov transition over dtS seconds:
@@ -647,24 +664,27 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 
 // eivPull returns the expected pull of this update on the turn scale that
 // the reported turns' own noise causes, sum_ab A_ab M_ab with A = H_p^T
-// S^-1 H_p over the pose columns: E[K_s v] = E[c^T H_p^T S^-1 (H_p e + w)]
+// S^-1 H_p over the pose and IMU offset columns: E[K_s v] = E[c^T H_p^T S^-1 (H_p e + w)]
 // for the scale's gain row K_s = c^T H_p^T S^-1 (bias-compensated least
 // squares; T. Soderstrom, "Errors-in-variables methods in system
 // identification", Automatica 43(6), 2007, from memory). 0 when the update
 // leaves the turn scale where it is.
 func (f *Filter) eivPull(d int) float64 {
 	ts := f.layout.turnScale
-	if ts < 0 || f.st.eiv == [9]float64{} || (f.k[ts*3] == 0 && f.k[ts*3+1] == 0 && f.k[ts*3+2] == 0) {
+	if ts < 0 || f.st.eiv == [eivSize]float64{} || (f.k[ts*3] == 0 && f.k[ts*3+1] == 0 && f.k[ts*3+2] == 0) {
 		return 0
 	}
+	k := f.eivStates()
 	// sum_ab A_ab M_ab = sum_ij (S^-1)_ij (H_p M H_p^T)_ij: d solves for
-	// the columns of S^-1 instead of three for S^-1 H_p.
+	// the columns of S^-1 instead of k for S^-1 H_p.
 	m := &f.st.eiv
-	var hm [3][3]float64 // H_p M
+	var hm [3][eivDim]float64 // H_p M
 	for i := 0; i < d; i++ {
-		h := f.h[i*stride : i*stride+3]
-		for b := 0; b < 3; b++ {
-			hm[i][b] = h[0]*m[b] + h[1]*m[3+b] + h[2]*m[6+b]
+		h := f.h[i*stride : i*stride+k]
+		for b := 0; b < k; b++ {
+			for a, ha := range h {
+				hm[i][b] += ha * m[a*eivDim+b]
+			}
 		}
 	}
 	var pull float64
@@ -672,39 +692,64 @@ func (f *Filter) eivPull(d int) float64 {
 		var e, sj [3]float64 // column j of S^-1
 		e[j] = 1
 		cholSolveVec(f.l[:], d, measStride, e[:], sj[:])
+		h := f.h[j*stride : j*stride+k]
 		for i := 0; i < d; i++ {
-			h := f.h[j*stride : j*stride+3]
-			pull += sj[i] * (hm[i][0]*h[0] + hm[i][1]*h[1] + hm[i][2]*h[2])
+			var acc float64
+			for b, hb := range h {
+				acc += hm[i][b] * hb
+			}
+			pull += sj[i] * acc
 		}
 	}
 	return pull
 }
 
+// eivStates returns how many states the moments cover: the pose, and the
+// IMU offset when the layout has it.
+func (f *Filter) eivStates() int {
+	if f.layout.offset == IOffset {
+		return 4
+	}
+	return 3
+}
+
 // updateEIV moves the errors-in-variables moments through an update with
-// gain f.k: both c and the pose's error are multiplied by T = I - K_p H_p,
-// the pose block of I - K H, so M' = T M T^T.
+// gain f.k: both c and the error of the pose (and IMU offset) are
+// multiplied by T = I - K_p H_p, the pose and offset block of I - K H, so
+// M' = T M T^T.
 func (f *Filter) updateEIV(d int) {
-	var t [9]float64
-	for a := 0; a < 3; a++ {
-		for b := 0; b < 3; b++ {
+	k := f.eivStates()
+	var t [eivSize]float64
+	for a := 0; a < k; a++ {
+		for b := 0; b < k; b++ {
 			var kh float64
 			for j := 0; j < d; j++ {
 				kh += f.k[a*3+j] * f.h[j*stride+b]
 			}
-			t[a*3+b] = -kh
+			t[a*eivDim+b] = -kh
 		}
-		t[a*3+a]++
+		t[a*eivDim+a]++
 	}
-	m := &f.st.eiv
-	var tm [9]float64
-	for a := 0; a < 3; a++ {
-		for b := 0; b < 3; b++ {
-			tm[a*3+b] = t[a*3]*m[b] + t[a*3+1]*m[3+b] + t[a*3+2]*m[6+b]
+	var tm, tt [eivSize]float64
+	for a := 0; a < k; a++ {
+		for b := 0; b < k; b++ {
+			tt[a*eivDim+b] = t[b*eivDim+a]
 		}
 	}
-	for a := 0; a < 3; a++ {
-		for b := 0; b < 3; b++ {
-			m[a*3+b] = tm[a*3]*t[b*3] + tm[a*3+1]*t[b*3+1] + tm[a*3+2]*t[b*3+2]
+	eivMul(&tm, &t, &f.st.eiv, k)
+	eivMul(&f.st.eiv, &tm, &tt, k)
+}
+
+// eivMul writes the product a b of the leading k x k blocks of two
+// moment-sized matrices into dst (which must be neither).
+func eivMul(dst, a, b *[eivSize]float64, k int) {
+	for i := 0; i < k; i++ {
+		for j := 0; j < k; j++ {
+			var acc float64
+			for c := 0; c < k; c++ {
+				acc += a[i*eivDim+c] * b[c*eivDim+j]
+			}
+			dst[i*eivDim+j] = acc
 		}
 	}
 }
@@ -829,7 +874,7 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 		}
 		f.st.x[i] += acc
 	}
-	if ts := f.layout.turnScale; ts >= 0 && f.st.eiv != [9]float64{} {
+	if ts := f.layout.turnScale; ts >= 0 && f.st.eiv != [eivSize]float64{} {
 		f.st.x[ts] -= pull
 		f.updateEIV(d)
 	}
@@ -902,6 +947,16 @@ func (f *Filter) InitOffset(z, r float64) error {
 		P[s*stride+IOffset] = -P[IHead*stride+s]
 	}
 	P[IOffset*stride+IOffset] = P[IHead*stride+IHead] + r
+	// So do the moments: the offset's covariance with the turn scale is
+	// minus the heading's, and its error minus the heading's (the
+	// reading's own error is independent of both).
+	m := &f.st.eiv
+	for a := 0; a < eivDim; a++ {
+		m[a*eivDim+IOffset] = -m[a*eivDim+IHead]
+	}
+	for b := 0; b < eivDim; b++ {
+		m[IOffset*eivDim+b] = -m[IHead*eivDim+b]
+	}
 	return nil
 }
 
@@ -917,7 +972,7 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 		return fmt.Errorf("pose covariance: %w", err)
 	}
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = pose.X, pose.Y, Wrap(pose.Heading)
-	f.st.eiv = [9]float64{} // the pose no longer correlates with the scales
+	f.st.eiv = [eivSize]float64{} // the pose no longer correlates with the scales
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
 			f.st.p[i*stride+j] = c[i*3+j]

@@ -233,6 +233,31 @@ func TestBadInputChangesNothing(t *testing.T) {
 	}
 }
 
+// TestHugeTravelRefused: a wheel travel that is finite but far past any
+// field (1e20 m, 1e308 m) was taken, given a sequence, and refused by
+// the wheel solve as "rows do not determine forward, left and turn",
+// which names neither the field nor the value. It is refused before it
+// is taken, naming travel_m, and changes nothing.
+func TestHugeTravelRefused(t *testing.T) {
+	newest := int64(300 * 5e6)
+	for _, v := range []float64{1e20, -1e20, 1e308} {
+		r := busyRobot(t)
+		before, seq := snap(r), r.Sequence()
+		res := r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{0, v, 0}})
+		if res.Verdict != VerdictInvalid || !errors.Is(res.Err, ErrBadSample) || res.Seq != 0 || r.Sequence() != seq ||
+			!strings.Contains(res.Err.Error(), "travel_m") || !strings.Contains(res.Err.Error(), "1e+08 m") {
+			t.Errorf("travel %g: sequence %d, %v %v; want refused before it is taken, naming travel_m and 1e+08 m", v, res.Seq, res.Verdict, res.Err)
+		}
+		sameSnapshot(t, "huge travel", before, snap(r))
+	}
+	// The largest travel a field holds is still taken (and refused as
+	// implausible motion, the robot's own limit).
+	r := busyRobot(t)
+	if res := r.AddOdometry(Odometry{StartNs: newest, StampNs: newest + 5e6, TravelM: []float64{1e8, 1e8, 0}}); res.Seq == 0 || !errors.Is(res.Err, ErrAbsurdJump) {
+		t.Errorf("travel of 1e8 m: sequence %d, %v", res.Seq, res.Err)
+	}
+}
+
 // TestHeldFull: held samples are bounded.
 func TestHeldFull(t *testing.T) {
 	cfg := threeWheels()

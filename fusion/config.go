@@ -233,9 +233,33 @@ const (
 	// Validate): each marker beyond the first keeps one more candidate.
 	maxDistinctMarkers = 8
 	maxNISWindow       = 1000
+	// maxHoldAheadLimitNs, maxExtrapolationLimitNs and
+	// maxOdometryGapLimitNs bound max_hold_ahead_ns, max_extrapolation_ns
+	// and max_odometry_gap_ns (CheckBounds): unbounded, a robot created
+	// with int64's largest extrapolated its pose 292 years ahead
+	// (GetPoseAt answered x = 4.6e8 m).
+	maxHoldAheadLimitNs     = 60e9
+	maxExtrapolationLimitNs = 10e9
+	maxOdometryGapLimitNs   = 30 * 86400e9
+	// minHuberK bounds a Huber sensor's robust_parameter from below
+	// (CheckBounds): at 5e-324 each fix's covariance was inflated past
+	// float64 and the fix refused as a numerical fault (session 26's
+	// probe).
+	minHuberK = 0.01
 	// maxIMULatencyNs bounds imu_latency_ns (checked by Validate): an IMU
 	// that lags its readings by more than a second is no heading source.
 	maxIMULatencyNs = 1e9
+	// minProbability bounds gate_probability,
+	// recovery.agree_probability and trust.consistency_probability from
+	// below (checked by Validate): each becomes a threshold through
+	// gonum's chi-square quantile, which panics below about 1e-45 for
+	// some degrees of freedom (measured for 1 to 3100: 1e-250 and less at
+	// 1, 1e-200 at 2, 1e-100 at 26, 5e-324 at every one), and a
+	// probability that small passes nothing anyway. No journal can hold
+	// one below it for gate_probability or the agreement (New panicked);
+	// one holding a consistency probability below it is refused (it
+	// panicked once a sensor's consistency window filled).
+	minProbability = 1e-30
 )
 
 // ErrConfig marks every configuration error.
@@ -398,6 +422,9 @@ func (c Config) CheckBounds() error {
 		{"max_held", int64(c.MaxHeld), maxHeldLimit, "inputs waiting for odometry"},
 		{"recovery.count", int64(c.Recovery.Count), maxRecoveryCount, "refused fixes kept as evidence of a move"},
 		{"trust.nis_window", int64(c.Trust.NISWindow), maxNISWindow, "fixes in the consistency window"},
+		{"max_hold_ahead_ns", c.MaxHoldAheadNs, maxHoldAheadLimitNs, "a minute: a fix waits for odometry that comes within a second or two"},
+		{"max_extrapolation_ns", c.MaxExtrapolationNs, maxExtrapolationLimitNs, "10 s: a pose predicted further past the newest odometry is no estimate"},
+		{"max_odometry_gap_ns", c.MaxOdometryGapNs, maxOdometryGapLimitNs, "30 days: after a longer pause start a new run"},
 	} {
 		if n.v > n.most {
 			return cfgErr(n.name, "%d is more than %d (%s)", n.v, n.most, n.why)
@@ -405,6 +432,17 @@ func (c Config) CheckBounds() error {
 	}
 	if err := c.checkUnits(); err != nil {
 		return err
+	}
+	for i, sen := range c.Sensors {
+		// Validate takes any positive parameter and ignores it without
+		// a robust loss; a new robot is held to values that mean one.
+		f := fmt.Sprintf("sensors[%d].robust_parameter", i)
+		switch p := sen.RobustParameter; {
+		case math.IsNaN(p) || math.IsInf(p, 0):
+			return cfgErr(f, "%v is not a number (0 for the default)", p)
+		case sen.Robust == RobustHuber && p != 0 && p < minHuberK:
+			return cfgErr(f, "%v is less than %g: Huber's k is in standard deviations (common practice %g), and one this small makes every fix count for almost nothing, down to a covariance no float64 holds", p, minHuberK, DefaultHuberK)
+		}
 	}
 	// Positions as samples' (maxFieldM).
 	if !lengthsOK(c.StartPose.X, c.StartPose.Y) {
@@ -509,6 +547,9 @@ func (c *Config) checkLimits() error {
 	for _, p := range probs {
 		if !(p.v > 0 && p.v < 1) {
 			return cfgErr(p.name, "%v must be inside (0, 1)", p.v)
+		}
+		if p.v < minProbability {
+			return cfgErr(p.name, "%v is less than %g: it is the probability that a consistent input passes (0.99), and one this small passes none", p.v, minProbability)
 		}
 	}
 	ints := []struct {

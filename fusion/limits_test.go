@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"errors"
+	"fmt"
 	"math"
 	"strings"
 	"testing"
@@ -15,7 +16,10 @@ import (
 // snapshot past a journal record. CheckBounds refuses each, naming the
 // field, and takes its largest value; New still takes a configuration
 // past them (one a journal written before the bounds may hold), except
-// the allocation at creation, which is not tried here.
+// the allocation at creation, which is not tried here. max_hold_ahead_ns,
+// max_extrapolation_ns and max_odometry_gap_ns were unbounded: with
+// int64's largest, GetPoseAt extrapolated a pose 292 years ahead (the
+// service probe of session 26).
 func TestConfigUpperBounds(t *testing.T) {
 	for _, c := range []struct {
 		field      string
@@ -27,6 +31,9 @@ func TestConfigUpperBounds(t *testing.T) {
 		{"recovery.count", func(c *Config, v int64) { c.Recovery.Count = int(v) }, maxRecoveryCount, maxRecoveryCount + 1},
 		{"trust.nis_window", func(c *Config, v int64) { c.Trust.NISWindow = int(v) }, maxNISWindow, 2_000_000_000},
 		{"sensors[0].latency_ns", func(c *Config, v int64) { c.Sensors[0].LatencyNs = v }, maxWindowNs, math.MaxInt64},
+		{"max_hold_ahead_ns", func(c *Config, v int64) { c.MaxHoldAheadNs = v }, maxHoldAheadLimitNs, math.MaxInt64},
+		{"max_extrapolation_ns", func(c *Config, v int64) { c.MaxExtrapolationNs = v }, maxExtrapolationLimitNs, math.MaxInt64},
+		{"max_odometry_gap_ns", func(c *Config, v int64) { c.MaxOdometryGapNs = v }, maxOdometryGapLimitNs, maxOdometryGapLimitNs + 1},
 	} {
 		cfg := threeWheels()
 		c.set(&cfg, c.past)
@@ -174,5 +181,78 @@ func TestConfigUnitsMistakes(t *testing.T) {
 	cfg.Wheels[0].XM, cfg.Sensors[1].Mount.X, cfg.Sensors[0].LatencyNs, cfg.WindowNs = 0.6, 0.9, 80e6, 2e9
 	if err := cfg.CheckBounds(); err != nil {
 		t.Errorf("a small robot's values: %v", err)
+	}
+}
+
+// TestTinyProbabilities: a probability of the configuration at the
+// smallest float64 (5e-324) is inside (0, 1), and gate_probability there
+// made New panic inside gonum's chi-square quantile ("Initial interval is
+// not a bounding interval"): one CreateRobot stopped the whole service.
+// Validate refuses each probability below minProbability, naming the
+// field, and New takes one at it.
+func TestTinyProbabilities(t *testing.T) {
+	for _, c := range []struct {
+		field string
+		set   func(c *Config, p float64)
+	}{
+		{"gate_probability", func(c *Config, p float64) { c.GateProbability = p }},
+		{"recovery.agree_probability", func(c *Config, p float64) { c.Recovery.AgreeProbability = p }},
+		{"trust.consistency_probability", func(c *Config, p float64) { c.Trust.ConsistencyProbability = p }},
+	} {
+		for _, p := range []float64{5e-324, 1e-300} {
+			cfg := threeWheels()
+			c.set(&cfg, p)
+			var err error
+			func() {
+				defer func() {
+					if v := recover(); v != nil {
+						err = fmt.Errorf("panic: %v", v)
+					}
+				}()
+				_, err = New(cfg)
+			}()
+			if !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), c.field) {
+				t.Errorf("%s = %g: %v; want a refusal naming it", c.field, p, err)
+			}
+		}
+		cfg := threeWheels()
+		c.set(&cfg, minProbability)
+		if _, err := New(cfg); err != nil {
+			t.Errorf("%s at %g: %v", c.field, minProbability, err)
+		}
+	}
+}
+
+// TestRobustParameterBounds: a new robot's Huber sensor takes a k of at
+// least minHuberK (at 5e-324, which Validate takes, each fix's covariance
+// was inflated past float64 and the fix refused as a numerical fault: the
+// service probe of session 26), and no sensor takes a robust_parameter
+// that is not a number, which Validate ignores without a robust loss.
+// CheckBounds refuses each naming the field; the default and a k at the
+// bound pass.
+func TestRobustParameterBounds(t *testing.T) {
+	for _, c := range []struct {
+		name  string
+		robst RobustLoss
+		p     float64
+		ok    bool
+	}{
+		{"huber tiny", RobustHuber, 5e-324, false},
+		{"huber below the bound", RobustHuber, minHuberK / 2, false},
+		{"huber at the bound", RobustHuber, minHuberK, true},
+		{"huber default", RobustHuber, 0, true},
+		{"none NaN", RobustNone, math.NaN(), false},
+		{"student_t infinite", RobustStudentT, math.Inf(1), false},
+		{"student_t 3", RobustStudentT, 3, true},
+	} {
+		cfg := threeWheels()
+		cfg.Sensors[0].Robust, cfg.Sensors[0].RobustParameter = c.robst, c.p
+		err := cfg.CheckBounds()
+		switch {
+		case c.ok && err != nil:
+			t.Errorf("%s: %v", c.name, err)
+		case !c.ok && (!errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), "sensors[0].robust_parameter")):
+			t.Errorf("%s: %v, want ErrConfig naming sensors[0].robust_parameter", c.name, err)
+		}
 	}
 }

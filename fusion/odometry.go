@@ -324,6 +324,12 @@ func (r *Robot) checkOdometry(o *Odometry) error {
 		if !finiteAll(o.TravelM...) {
 			return badf("travel_m %v is not finite", o.TravelM)
 		}
+		// A travel past maxFieldM overflowed the wheel solve, which
+		// refused it as "rows do not determine forward, left and turn",
+		// naming no field, after taking it.
+		if !lengthsOK(o.TravelM...) {
+			return badf("travel_m %v is more than %g m in one sample: counts sent as metres?", o.TravelM, float64(maxFieldM))
+		}
 	default:
 		if !finiteAll(o.Step.ForwardM, o.Step.LeftM, o.Step.TurnRad) {
 			return badf("step %+v is not finite", *o.Step)

@@ -63,10 +63,13 @@ import (
 // step's covariance carries (slip.go), which a reset takes back from the
 // steps after it; a version 16 to 5 snapshot has none, and a reset inside
 // its window leaves the steps after it as they were, as its builds did.
-const SnapshotVersion = 17
+// Version 18: the errors-in-variables moments cover the IMU offset too
+// (4x4: estimator.EIVDim); a version 17 to 9 snapshot's 3x3 moments take
+// the pose block, and the offset's row and column start at zero.
+const SnapshotVersion = 18
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -433,16 +436,25 @@ func (r *Robot) checkValues() error {
 }
 
 // stateFault says what is wrong with an estimate's numbers ("" if
-// nothing): a mean or covariance value not finite, a variance below 0, a
-// correlation past 1 (with a relative slack of 1e-6 for rounding: a
-// covariance matrix's off-diagonal values are bounded by the geometric
-// mean of their variances, a property of every positive semidefinite
-// matrix).
+// nothing): a mean, covariance or errors-in-variables moment not finite,
+// a variance below 0, a correlation past 1 (with a relative slack of 1e-6
+// for rounding: a covariance matrix's off-diagonal values are bounded by
+// the geometric mean of their variances, a property of every positive
+// semidefinite matrix).
 func stateFault(s *estimator.State) string {
 	n := s.Size()
 	for i := 0; i < n; i++ {
 		if v := s.MeanAt(i); math.IsNaN(v) || math.IsInf(v, 0) {
 			return fmt.Sprintf("has mean %v in state %d", v, i)
+		}
+	}
+	// The turn scale's moments: every update that moves the scale
+	// subtracts their pull from its mean, which one not finite would make
+	// not finite.
+	m := s.EIV()
+	for k, v := range m {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return fmt.Sprintf("has errors-in-variables moment %v at (%d, %d)", v, k/estimator.EIVDim, k%estimator.EIVDim)
 		}
 	}
 	return covFault(n, s.At)
@@ -554,7 +566,7 @@ func encState(e *wenc, s *estimator.State) {
 	e.uint(1, uint64(n))
 	e.doubles(2, x[:n])
 	e.doubles(3, p[:n*n])
-	if m := s.EIV(); m != ([9]float64{}) {
+	if m := s.EIV(); m != (estimator.EIVMoments{}) {
 		e.doubles(4, m[:])
 	}
 }
@@ -562,7 +574,7 @@ func encState(e *wenc, s *estimator.State) {
 func decState(d *wdec) estimator.State {
 	var n uint64
 	var x, p []float64
-	var m [9]float64
+	var m estimator.EIVMoments
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
@@ -572,7 +584,7 @@ func decState(d *wdec) estimator.State {
 		case 3:
 			p = d.doubleSlice(num)
 		case 4:
-			d.doubles(num, m[:])
+			m = decEIV(d, num)
 		default:
 			d.fail("estimate: unknown field %d", num)
 		}
@@ -588,6 +600,26 @@ func decState(d *wdec) estimator.State {
 	st := estimator.NewState(int(n), d.angles, x, p)
 	st.SetEIV(m)
 	return st
+}
+
+// decEIV reads an estimate's errors-in-variables moments: 16 values
+// (version 18, the pose and the IMU offset), or the 9 of the pose alone
+// (versions 9 to 17), which take the pose block and leave the offset's
+// row and column zero.
+func decEIV(d *wdec, num protowire.Number) estimator.EIVMoments {
+	var m estimator.EIVMoments
+	v := d.doubleSlice(num)
+	switch len(v) {
+	case len(m):
+		copy(m[:], v)
+	case 9:
+		for a := 0; a < 3; a++ {
+			copy(m[a*estimator.EIVDim:a*estimator.EIVDim+3], v[a*3:a*3+3])
+		}
+	default:
+		d.fail("estimate: %d errors-in-variables moments, want %d or 9", len(v), len(m))
+	}
+	return m
 }
 
 func encCheckpoint(e *wenc, c *checkpoint) {

@@ -2,11 +2,13 @@ package server
 
 import (
 	"context"
+	"io"
 	"math"
 	"os"
 	"strings"
 	"testing"
 
+	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
@@ -243,5 +245,88 @@ func TestReseedTooFarAheadReplays(t *testing.T) {
 	}
 	if got, gotSeq := memoryPose(s); gotSeq != wantSeq || !proto.Equal(got, want) {
 		t.Errorf("restored at input %d, pose %v; before the restart %d, %v", gotSeq, got, wantSeq, want)
+	}
+}
+
+// rawCodec sends requests as the bytes given, so that a test can send
+// what no protobuf encoder makes, and decodes responses with proto.
+type rawCodec struct{}
+
+func (rawCodec) Marshal(v any) ([]byte, error)      { return *v.(*[]byte), nil }
+func (rawCodec) Unmarshal(data []byte, v any) error { return proto.Unmarshal(data, v.(proto.Message)) }
+func (rawCodec) Name() string                       { return "proto" }
+
+// TestMalformedRequestIsItsVerdict: a request whose bytes are not an
+// IngestRequest (a robot name that is not UTF-8, which a C encoder on a
+// robot's controller sends as readily as any, or a field cut short) is
+// answered as its own verdict, INVALID_ARGUMENT with REFUSAL_MALFORMED
+// and its client sequence, and the samples after it on the stream are
+// taken. Before, the codec's error ended the whole stream with INTERNAL
+// ("grpc: failed to unmarshal the received message"), against the
+// contract that a bad sample does not end it.
+func TestMalformedRequestIsItsVerdict(t *testing.T) {
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	defer srv.stop()
+	conn, err := connect(srv.addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	api := pb.NewFusionServiceClient(conn)
+	ctx := context.Background()
+	samp, cfg := cartRun(4, 1)
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	good := func(cs uint64, s *pb.Sample) []byte {
+		b, err := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: cs, Sample: s})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return b
+	}
+	notUTF8, _ := proto.Marshal(&pb.IngestRequest{ClientSequence: 2, Sample: samp[1]})
+	notUTF8 = append(notUTF8, 0x0a, 3, 'r', 0xff, 0xfe) // robot: "r\xff\xfe"
+	cut := good(3, samp[1])
+	cut = cut[:len(cut)-1] // the sample's last field cut short
+	st, err := conn.NewStream(ctx, &grpc.StreamDesc{ServerStreams: true, ClientStreams: true}, "/reckon.v1.FusionService/Ingest", grpc.ForceCodec(rawCodec{}))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, b := range [][]byte{good(1, samp[0]), notUTF8, cut, good(4, samp[1])} {
+		if err := st.SendMsg(&b); err != nil {
+			t.Fatal(err)
+		}
+	}
+	st.CloseSend()
+	var got []*pb.IngestResponse
+	for {
+		resp := &pb.IngestResponse{}
+		if err := st.RecvMsg(resp); err != nil {
+			if err != io.EOF {
+				t.Fatalf("the stream ended with %v after %d verdicts", err, len(got))
+			}
+			break
+		}
+		if !resolutionOnly(resp) {
+			got = append(got, resp)
+		}
+	}
+	if len(got) != 4 {
+		t.Fatalf("%d verdicts, want 4: %v", len(got), got)
+	}
+	for k, want := range []string{"UTF-8", "cannot parse"} {
+		r := got[k+1]
+		if r.GetClientSequence() != uint64(k+2) || r.GetSequence() != 0 || r.GetVerdict() != pb.Verdict_VERDICT_INVALID ||
+			codes.Code(r.GetStatusCode()) != codes.InvalidArgument || r.GetRefusal() != pb.Refusal_REFUSAL_MALFORMED ||
+			!strings.Contains(r.GetReason(), "not a valid reckon.v1.IngestRequest") || !strings.Contains(r.GetReason(), want) {
+			t.Errorf("malformed request %d: %v", k+2, r)
+		}
+	}
+	if got[0].GetSequence() != 1 || got[3].GetSequence() != 2 || got[3].GetClientSequence() != 4 {
+		t.Errorf("the good requests around them: %v, %v", got[0], got[3])
+	}
+	if rb, err := api.GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"}); err != nil || rb.GetRobot().GetInputCount() != 2 {
+		t.Errorf("robot after: %v %v", rb.GetRobot(), err)
 	}
 }

@@ -45,7 +45,13 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	if r.dec == nil || !decodeRequest(r.dec, b, &r.IngestRequest) {
 		r.IngestRequest.Reset()
 		if err := proto.Unmarshal(b, &r.IngestRequest); err != nil {
-			return fmt.Errorf("ingest request: %w", err)
+			// Not an IngestRequest (a string that is not UTF-8, a
+			// field cut short): answered as its own verdict, as a bad
+			// sample is, so that the stream goes on. An error here
+			// ended the whole stream with INTERNAL.
+			r.IngestRequest.Reset()
+			r.ClientSequence, r.malformed = clientSequenceOf(b), err
+			return nil
 		}
 	}
 	r.wire = b
@@ -120,7 +126,10 @@ func keep(last *string, p []byte) (s string, ok bool) {
 type arrivedRequest struct {
 	pb.IngestRequest
 	wire []byte
-	slab *slab
+	// malformed, when set, is why the bytes are not an IngestRequest (only
+	// ClientSequence is set then): the request is refused, naming it.
+	malformed error
+	slab      *slab
 	// dec, when set, decodes the common samples by hand (decodeRequest).
 	dec *requestDecoder
 	// arrived is when it was received (zero until ingestStream sets it

@@ -50,10 +50,12 @@ func TestCodec(t *testing.T) {
 			}
 		}
 	}
-	// A request that does not decode is an error, and is not kept.
+	// A request that does not decode is marked malformed with its client
+	// sequence (answered as its own verdict, the stream going on), and is
+	// not kept.
 	got := &arrivedRequest{slab: &slab{}}
-	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b[:len(b)-1])}, got); err == nil || got.wire != nil {
-		t.Errorf("a cut request: err %v, kept %x", err, got.wire)
+	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b[:len(b)-1])}, got); err != nil || got.malformed == nil || got.GetClientSequence() != 4 || got.wire != nil {
+		t.Errorf("a cut request: err %v, malformed %v, client sequence %d, kept %x", err, got.malformed, got.GetClientSequence(), got.wire)
 	}
 }
 
@@ -149,8 +151,8 @@ func requestSeeds(tb testing.TB, n int) [][]byte {
 
 // checkRequest decodes b with the service's codec (one stream's decoder,
 // dec) and with proto.Unmarshal, the protobuf module's decoder (the
-// reference): both refuse it, or both give the same request, unknown
-// fields and all. It returns whether the hand decoder took it.
+// reference): both refuse it (the codec marking it malformed), or both
+// give the same request, unknown fields and all. It returns whether the hand decoder took it.
 func checkRequest(t testing.TB, dec *requestDecoder, b []byte) bool {
 	t.Helper()
 	var want pb.IngestRequest
@@ -161,8 +163,12 @@ func checkRequest(t testing.TB, dec *requestDecoder, b []byte) bool {
 		t.Fatalf("decodeRequest took %x as %v; proto.Unmarshal gives %v, %v", b, &hand, &want, werr)
 	}
 	got := &arrivedRequest{slab: &slab{}, dec: dec}
-	gerr := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b)}, got)
-	if (gerr != nil) != (werr != nil) || werr == nil && !proto.Equal(&got.IngestRequest, &want) {
+	if err := newCodec().Unmarshal(mem.BufferSlice{mem.SliceBuffer(b)}, got); err != nil {
+		// A request it refuses is answered as its own verdict
+		// (arrivedRequest.malformed), not the stream's end.
+		t.Fatalf("the codec fails on %x: %v", b, err)
+	}
+	if gerr := got.malformed; (gerr != nil) != (werr != nil) || werr == nil && !proto.Equal(&got.IngestRequest, &want) {
 		t.Fatalf("the codec gives %v, %v for %x; proto.Unmarshal %v, %v", &got.IngestRequest, gerr, b, &want, werr)
 	}
 	return took

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"os"
 	"sync"
+	"syscall"
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/journal"
@@ -45,6 +46,19 @@ func (j *osJournal) flush() (int, error) { return j.Writer.Flush() }
 
 // isNoSpace tells whether a journal error means the disk is full.
 func isNoSpace(err error) bool { return errors.Is(err, journal.ErrNoSpace) }
+
+// isNotWritable tells whether a journal error means the journal directory
+// may not be written: its permissions (EACCES, EPERM) or a file system
+// mounted read-only (EROFS).
+func isNotWritable(err error) bool {
+	return errors.Is(err, syscall.EACCES) || errors.Is(err, syscall.EPERM) || errors.Is(err, syscall.EROFS)
+}
+
+// isOutOfFiles tells whether a journal error means the process (EMFILE) or
+// the system (ENFILE) has no file descriptor left.
+func isOutOfFiles(err error) bool {
+	return errors.Is(err, syscall.EMFILE) || errors.Is(err, syscall.ENFILE)
+}
 
 // isBroken tells whether a journal error leaves the writer unusable: the
 // segment could not be taken back to its last complete entry, or an fsync

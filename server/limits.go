@@ -4,6 +4,7 @@ import (
 	"fmt"
 
 	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	pb "reckon.example/proto/reckon/v1"
 )
@@ -91,6 +92,27 @@ func (s *Server) checkLimits(r *robot, req *pb.IngestRequest) *limitError {
 	}
 	if id := req.GetSample().GetRunStart().GetBootId(); len(id) > max {
 		return long("sample.run_start.boot_id", id)
+	}
+	return nil
+}
+
+// checkConfigStrings refuses a configuration naming a sensor or a landmark
+// by an id longer than -max-string-bytes: every fix naming it would be
+// refused at the limit (checkLimits), so the robot could never take one.
+func (s *Server) checkConfigStrings(cfg *pb.RobotConfig) error {
+	max := s.opt.Limits.MaxStringBytes
+	long := func(field, v string) error {
+		return status.Errorf(codes.InvalidArgument, "config: %s: %d bytes exceeds the limit of %d (-max-string-bytes): no fix could name it", field, len(v), max)
+	}
+	for i, sen := range cfg.GetSensors() {
+		if len(sen.GetId()) > max {
+			return long(fmt.Sprintf("sensors[%d].id", i), sen.GetId())
+		}
+	}
+	for i, l := range cfg.GetLandmarks() {
+		if len(l.GetId()) > max {
+			return long(fmt.Sprintf("landmarks[%d].id", i), l.GetId())
+		}
 	}
 	return nil
 }

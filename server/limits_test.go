@@ -5,14 +5,17 @@ import (
 	"fmt"
 	"runtime"
 	"strings"
+	"syscall"
 	"testing"
 	"time"
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/journal"
+	"reckon.example/server/journal/faultfs"
 )
 
 // heapMiB returns the live heap after a collection, MiB.
@@ -196,6 +199,14 @@ func TestCreateRobotBounds(t *testing.T) {
 	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "window_ns") {
 		t.Fatalf("a window of an hour: %v", err)
 	}
+	// The smallest float64 is inside (0, 1); its chi-square quantile made
+	// fusion.New panic, which ended the service (fusion's
+	// TestTinyProbabilities).
+	cfg.WindowNs, cfg.GateProbability = 0, 5e-324
+	_, err = api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "gate_probability") {
+		t.Fatalf("a gate probability of 5e-324: %v", err)
+	}
 	if list, err := api.ListRobots(context.Background(), &pb.ListRobotsRequest{}); err != nil || len(list.GetRobots()) != 0 {
 		t.Errorf("robots after the refusals: %v %v", list.GetRobots(), err)
 	}
@@ -284,5 +295,138 @@ func TestIngestStreamLimit(t *testing.T) {
 	}
 	if err != nil {
 		t.Errorf("a stream after 10 closed: %v", err)
+	}
+}
+
+// TestConfigIDsPastStringLimit: a configuration naming a sensor or a
+// landmark by an id longer than -max-string-bytes (129 bytes at 128) is
+// refused at CreateRobot naming the field and the flag. It was created,
+// and every fix naming that sensor or landmark was then refused at the
+// limit: a robot that could never take one. An id at the limit is taken,
+// and so is a fix naming it.
+func TestConfigIDsPastStringLimit(t *testing.T) {
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	samp, cfg := cartRun(5, 1)
+	past, at := strings.Repeat("s", 129), strings.Repeat("s", 128)
+	for _, c := range []struct {
+		field string
+		set   func(c *pb.RobotConfig)
+	}{
+		{"sensors[0].id", func(c *pb.RobotConfig) { c.Sensors[0].Id = past }},
+		{"landmarks[0].id", func(c *pb.RobotConfig) { c.Landmarks = []*pb.Landmark{{Id: past, XM: 3}} }},
+	} {
+		bad := proto.Clone(cfg).(*pb.RobotConfig)
+		c.set(bad)
+		_, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "past", Config: bad})
+		if codeOf(err) != codes.InvalidArgument || !strings.Contains(err.Error(), c.field) || !strings.Contains(err.Error(), "-max-string-bytes") {
+			api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/past"})
+			t.Errorf("%s of 129 bytes: %v", c.field, err)
+		}
+	}
+	id := cfg.Sensors[0].GetId()
+	cfg.Sensors[0].Id = at
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatalf("a sensor id of 128 bytes: %v", err)
+	}
+	var fixes int
+	for _, s := range samp {
+		if f := s.GetFix(); f != nil && f.GetSensorId() == id {
+			f.SensorId = at
+			fixes++
+		}
+	}
+	taken := 0
+	for k, v := range feedStub(t, api, "robots/cart", "", 1, samp) {
+		if samp[k].GetFix() != nil && v.GetSequence() > 0 {
+			taken++
+		}
+	}
+	if fixes == 0 || taken != fixes {
+		t.Errorf("%d of %d fixes naming the 128-byte sensor taken", taken, fixes)
+	}
+}
+
+// TestCreateRobotJournalErrors: a robot whose journal cannot be made says
+// why by its status, not INTERNAL, which says the service is at fault:
+// with no file descriptor left (EMFILE: each robot keeps its journal
+// open, so -max-robots robots under a low ulimit -n reach it; reckond
+// under ulimit -n 300 created 285 of 400) RESOURCE_EXHAUSTED naming
+// ulimit -n and -max-robots; in a directory it may not write (EACCES, as
+// reckond's own user met a directory made read-only; EROFS)
+// FAILED_PRECONDITION saying so. The name is free once the journal can be
+// made.
+func TestCreateRobotJournalErrors(t *testing.T) {
+	for _, c := range []struct {
+		errno syscall.Errno
+		code  codes.Code
+		says  []string
+	}{
+		{syscall.EMFILE, codes.ResourceExhausted, []string{"ulimit -n", "-max-robots"}},
+		{syscall.EACCES, codes.FailedPrecondition, []string{"cannot be written"}},
+		{syscall.EROFS, codes.FailedPrecondition, []string{"read-only"}},
+	} {
+		ffs := faultfs.New(faultfs.NewMem(), nil)
+		srv := start(t, testConfig{Options: Options{JournalDir: "/j", FS: ffs}})
+		api := stub(t, srv.addr)
+		_, cfg := cartRun(6, 1)
+		ffs.SetInject(faultfs.From(faultfs.OpCreate, "cart", 0, c.errno))
+		_, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg})
+		if codeOf(err) != c.code {
+			t.Errorf("%v: %v; want %v", c.errno, err, c.code)
+		}
+		for _, w := range c.says {
+			if err == nil || !strings.Contains(err.Error(), w) {
+				t.Errorf("%v: %v; want it to say %q", c.errno, err, w)
+			}
+		}
+		ffs.SetInject(nil)
+		if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+			t.Errorf("%v, then the journal can be made: %v", c.errno, err)
+		}
+		srv.stop()
+	}
+}
+
+// TestListRobotsPageToken: ListRobots pages through the robots in name
+// order by next_page_token, and refuses a page token it did not give,
+// naming page_token. Before, any string was taken as a place in the name
+// order: "garbage" and "\x00" listed from the start, as if no token were
+// given.
+func TestListRobotsPageToken(t *testing.T) {
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	defer srv.stop()
+	api := stub(t, srv.addr)
+	ctx := context.Background()
+	_, cfg := cartRun(7, 1)
+	for _, id := range []string{"e", "b", "d", "a", "c"} {
+		if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: id, Config: cfg}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var names []string
+	req := &pb.ListRobotsRequest{PageSize: 2}
+	for pages := 0; pages < 5; pages++ {
+		list, err := api.ListRobots(ctx, req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, r := range list.GetRobots() {
+			names = append(names, r.GetName())
+		}
+		if req.PageToken = list.GetNextPageToken(); req.PageToken == "" {
+			break
+		}
+	}
+	if got := strings.Join(names, " "); got != "robots/a robots/b robots/c robots/d robots/e" {
+		t.Errorf("pages of 2 listed %s", got)
+	}
+	for _, tok := range []string{"garbage", "\x00", "robots/", "robots/B"} {
+		_, err := api.ListRobots(ctx, &pb.ListRobotsRequest{PageToken: tok})
+		if codeOf(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "page_token") {
+			t.Errorf("page token %q: %v", tok, err)
+		}
 	}
 }

@@ -17,28 +17,51 @@ var sampleField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByN
 func requestSample(req []byte) []byte {
 	var out []byte
 	n := 0
-	for len(req) > 0 {
-		num, typ, k := protowire.ConsumeTag(req)
-		if k < 0 {
-			return nil
-		}
-		req = req[k:]
+	ok := eachField(req, func(num protowire.Number, typ protowire.Type, v []byte) {
 		if num == sampleField && typ == protowire.BytesType {
-			v, m := protowire.ConsumeBytes(req)
-			if m < 0 {
-				return nil
-			}
-			out, n, req = v, n+1, req[m:]
-			continue
+			out, _ = protowire.ConsumeBytes(v)
+			n++
 		}
-		m := protowire.ConsumeFieldValue(num, typ, req)
-		if m < 0 {
-			return nil
-		}
-		req = req[m:]
-	}
-	if n != 1 {
+	})
+	if !ok || n != 1 {
 		return nil
 	}
 	return out
+}
+
+// clientSequenceField is the field number of IngestRequest.client_sequence.
+var clientSequenceField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("client_sequence").Number()
+
+// clientSequenceOf returns the client sequence an encoded IngestRequest
+// gives as far as it can be read (the last one, as a decoder keeps), or 0,
+// so that the verdict on a request that does not decode still names it.
+func clientSequenceOf(req []byte) uint64 {
+	var cs uint64
+	eachField(req, func(num protowire.Number, typ protowire.Type, v []byte) {
+		if num == clientSequenceField && typ == protowire.VarintType {
+			cs, _ = protowire.ConsumeVarint(v)
+		}
+	})
+	return cs
+}
+
+// eachField calls f with each field of an encoded message in order: its
+// number, wire type and encoded value (a length-delimited value with its
+// length). It stops at the first field that does not parse, reporting
+// false.
+func eachField(b []byte, f func(num protowire.Number, typ protowire.Type, v []byte)) bool {
+	for len(b) > 0 {
+		num, typ, k := protowire.ConsumeTag(b)
+		if k < 0 {
+			return false
+		}
+		b = b[k:]
+		m := protowire.ConsumeFieldValue(num, typ, b)
+		if m < 0 {
+			return false
+		}
+		f(num, typ, b[:m])
+		b = b[m:]
+	}
+	return true
 }

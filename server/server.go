@@ -492,6 +492,9 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
 	}
+	if err := s.checkConfigStrings(req.GetConfig()); err != nil {
+		return nil, err
+	}
 	fr, err := fusion.New(cfg)
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "config: %v", err)
@@ -513,11 +516,17 @@ func (s *Server) CreateRobot(ctx context.Context, req *pb.CreateRobotRequest) (*
 		j, err := journal.Create(s.opt.JournalDir, r.id, &pb.JournalOpening{Robot: name, Config: r.cfg, CreateTimeUnixNs: time.Now().UnixNano(), Build: s.opt.Build}, s.journalOptions())
 		if err != nil {
 			s.release(name, true)
-			code := codes.Internal
-			if isNoSpace(err) {
-				code = codes.Unavailable
+			switch {
+			case isNoSpace(err):
+				return nil, status.Errorf(codes.Unavailable, "journal: %v", err)
+			case isOutOfFiles(err):
+				// Each robot keeps its journal open: INTERNAL said a
+				// fault of the service's, not a limit of the host's.
+				return nil, status.Errorf(codes.ResourceExhausted, "journal: %v: the service has no file descriptor left for another robot's journal (each robot keeps one open): raise ulimit -n (LimitNOFILE= of its unit), or lower -max-robots", err)
+			case isNotWritable(err):
+				return nil, status.Errorf(codes.FailedPrecondition, "journal: %v: the journal directory cannot be written (its permissions, or a file system mounted read-only); create the robot again once it can", err)
 			}
-			return nil, status.Errorf(code, "journal: %v", err)
+			return nil, status.Errorf(codes.Internal, "journal: %v", err)
 		}
 		r.journal = s.wrap(openJournal(j))
 	}
@@ -620,6 +629,13 @@ func (s *Server) ListRobots(ctx context.Context, req *pb.ListRobotsRequest) (*pb
 	}
 	if size == 0 || size > 1000 {
 		size = 1000
+	}
+	if tok := req.GetPageToken(); tok != "" {
+		// A token is the last name of a page; any other string listed
+		// from wherever it sorted (from the start for "garbage").
+		if _, err := RobotID(tok); err != nil {
+			return nil, status.Errorf(codes.InvalidArgument, "page_token: %q is not a token this service gave (a previous response's next_page_token)", tok)
+		}
 	}
 	out := &pb.ListRobotsResponse{}
 	for _, r := range s.list() {
@@ -1097,8 +1113,16 @@ func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) 
 	}
 	sc.out = nil
 	for i := 0; i < len(batch); {
+		if err := batch[i].malformed; err != nil {
+			s.opt.Metrics.refused(codes.InvalidArgument)
+			refuse(&out[i], batch[i].GetClientSequence(), codes.InvalidArgument,
+				fmt.Sprintf("request: not a valid reckon.v1.IngestRequest encoding (%v); nothing was taken", err))
+			out[i].Refusal = pb.Refusal_REFUSAL_MALFORMED
+			i++
+			continue
+		}
 		j := i + 1
-		for j < len(batch) && batch[j].GetRobot() == batch[i].GetRobot() {
+		for j < len(batch) && batch[j].malformed == nil && batch[j].GetRobot() == batch[i].GetRobot() {
 			j++
 		}
 		s.ingestRun(batch[i:j], out[i:j], ob, sc)

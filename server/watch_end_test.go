@@ -106,3 +106,49 @@ func TestWatchNegativeInterval(t *testing.T) {
 		t.Errorf("watch with min_interval_ns -1: %v, want INVALID_ARGUMENT naming min_interval_ns", err)
 	}
 }
+
+// TestWatchCancelledNotOK: a watch whose client cancels it (or whose
+// deadline passes) ends with CANCELLED (DEADLINE_EXCEEDED), as the
+// handler's own status. It ended with OK, which says that the service
+// stops: a client with a deadline that got the service's status before
+// its own took its deadline for a stop. The handler's status is read by
+// an interceptor on the real server, as the client, once cancelled, no
+// longer receives it.
+func TestWatchCancelledNotOK(t *testing.T) {
+	opts, err := ServiceOptions(0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ended := make(chan error, 1)
+	opts = append(opts, grpc.ChainStreamInterceptor(func(srv any, ss grpc.ServerStream, info *grpc.StreamServerInfo, handler grpc.StreamHandler) error {
+		err := handler(srv, ss)
+		if strings.HasSuffix(info.FullMethod, "/Watch") {
+			ended <- err
+		}
+		return err
+	}))
+	s, err := New(Options{JournalDir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer s.Close()
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	gs := grpc.NewServer(opts...)
+	pb.RegisterFusionServiceServer(gs, s)
+	go gs.Serve(lis)
+	defer gs.Stop()
+	api := dial(t, lis.Addr().String())
+	_, cfg := cartRun(3, 1)
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	openWatch(t, ctx, api, "robots/cart")
+	cancel()
+	if err := <-ended; codeOf(err) != codes.Canceled {
+		t.Errorf("a cancelled watch's handler returned %v (%v), want CANCELLED", err, codeOf(err))
+	}
+}

@@ -45,12 +45,15 @@ const (
 type FusionServiceClient interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
-	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots),
-	// UNAVAILABLE when its journal's disk is full.
+	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots)
+	// or with no file descriptor left for its journal (naming ulimit -n),
+	// UNAVAILABLE when its journal's disk is full, FAILED_PRECONDITION when
+	// the journal directory cannot be written (or is gone).
 	CreateRobot(ctx context.Context, in *CreateRobotRequest, opts ...grpc.CallOption) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(ctx context.Context, in *GetRobotRequest, opts ...grpc.CallOption) (*GetRobotResponse, error)
-	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size.
+	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size
+	// or a page_token it did not give.
 	ListRobots(ctx context.Context, in *ListRobotsRequest, opts ...grpc.CallOption) (*ListRobotsResponse, error)
 	// Deletes a robot and closes its journal, which is set aside with every
 	// record kept (a quarantined robot's as it is, damage and all), so that
@@ -63,7 +66,10 @@ type FusionServiceClient interface {
 	// the samples received; a sample without a verdict was not taken. A bad
 	// sample, an unknown, deleted, paused or quarantined robot and a journal
 	// that failed do not end the stream: each is the sample's own verdict
-	// (IngestResponse.status_code). A message past the service's size limit
+	// (IngestResponse.status_code). So is a request whose bytes are not an
+	// IngestRequest (a string that is not UTF-8, a field cut short):
+	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
+	// far as the bytes give it (else 0). A message past the service's size limit
 	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
@@ -72,7 +78,9 @@ type FusionServiceClient interface {
 	// newest pose and a count of what it skipped; it never slows ingest. The
 	// stream ends with NOT_FOUND when the robot is deleted, with
 	// FAILED_PRECONDITION naming the problem when it is quarantined (and
-	// begins so for a quarantined robot), and with OK when the service stops.
+	// begins so for a quarantined robot), and with OK when the service stops
+	// (only then: CANCELLED or DEADLINE_EXCEEDED when the client cancels it
+	// or its deadline passes).
 	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
 	// -max-watchers-per-robot).
 	Watch(ctx context.Context, in *WatchRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchResponse], error)
@@ -238,12 +246,15 @@ func (c *fusionServiceClient) StartRun(ctx context.Context, in *StartRunRequest,
 type FusionServiceServer interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
-	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots),
-	// UNAVAILABLE when its journal's disk is full.
+	// in use, RESOURCE_EXHAUSTED past the service's robot limit (-max-robots)
+	// or with no file descriptor left for its journal (naming ulimit -n),
+	// UNAVAILABLE when its journal's disk is full, FAILED_PRECONDITION when
+	// the journal directory cannot be written (or is gone).
 	CreateRobot(context.Context, *CreateRobotRequest) (*CreateRobotResponse, error)
 	// Gets a robot, in whatever state (a quarantined one too).
 	GetRobot(context.Context, *GetRobotRequest) (*GetRobotResponse, error)
-	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size.
+	// Lists robots in name order. INVALID_ARGUMENT for a negative page_size
+	// or a page_token it did not give.
 	ListRobots(context.Context, *ListRobotsRequest) (*ListRobotsResponse, error)
 	// Deletes a robot and closes its journal, which is set aside with every
 	// record kept (a quarantined robot's as it is, damage and all), so that
@@ -256,7 +267,10 @@ type FusionServiceServer interface {
 	// the samples received; a sample without a verdict was not taken. A bad
 	// sample, an unknown, deleted, paused or quarantined robot and a journal
 	// that failed do not end the stream: each is the sample's own verdict
-	// (IngestResponse.status_code). A message past the service's size limit
+	// (IngestResponse.status_code). So is a request whose bytes are not an
+	// IngestRequest (a string that is not UTF-8, a field cut short):
+	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
+	// far as the bytes give it (else 0). A message past the service's size limit
 	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
@@ -265,7 +279,9 @@ type FusionServiceServer interface {
 	// newest pose and a count of what it skipped; it never slows ingest. The
 	// stream ends with NOT_FOUND when the robot is deleted, with
 	// FAILED_PRECONDITION naming the problem when it is quarantined (and
-	// begins so for a quarantined robot), and with OK when the service stops.
+	// begins so for a quarantined robot), and with OK when the service stops
+	// (only then: CANCELLED or DEADLINE_EXCEEDED when the client cancels it
+	// or its deadline passes).
 	// RESOURCE_EXHAUSTED past the service's watch limits (-max-watchers,
 	// -max-watchers-per-robot).
 	Watch(*WatchRequest, grpc.ServerStreamingServer[WatchResponse]) error

@@ -856,10 +856,12 @@ type EstimateState struct {
 	Mean []float64 `protobuf:"fixed64,2,rep,packed,name=mean,proto3" json:"mean,omitempty"`
 	// The covariance, size x size row-major.
 	Covariance []float64 `protobuf:"fixed64,3,rep,packed,name=covariance,proto3" json:"covariance,omitempty"`
-	// With a turn scale (version 9): E[c e^T], 3x3 row-major, c the turn
-	// scale's covariance with the pose and e the pose's error, which the
-	// update takes the errors-in-variables pull out with (DEVELOPERS.md,
-	// "Design: State"). Absent when all zero.
+	// With a turn scale (version 9): E[c e^T], c the turn scale's
+	// covariance with the pose and the IMU offset and e their error, which
+	// the update takes the errors-in-variables pull out with (DEVELOPERS.md,
+	// "Design: State"): 4x4 row-major over x, y, heading and the IMU offset
+	// (its row and column zero without one) from version 18, 3x3 over the
+	// pose before. Absent when all zero.
 	TurnScaleEiv  []float64 `protobuf:"fixed64,4,rep,packed,name=turn_scale_eiv,json=turnScaleEiv,proto3" json:"turn_scale_eiv,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

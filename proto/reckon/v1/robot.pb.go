@@ -395,7 +395,8 @@ type RobotConfig struct {
 	ImuMode ImuMode `protobuf:"varint,3,opt,name=imu_mode,json=imuMode,proto3,enum=reckon.v1.ImuMode" json:"imu_mode,omitempty"`
 	// The noise model; zero fields take the defaults.
 	Noise *NoiseModel `protobuf:"bytes,4,opt,name=noise,proto3" json:"noise,omitempty"`
-	// Chi-square probability of the fix gate (default 0.99).
+	// Chi-square probability of the fix gate (default 0.99), inside
+	// [1e-30, 1).
 	GateProbability float64 `protobuf:"fixed64,5,opt,name=gate_probability,json=gateProbability,proto3" json:"gate_probability,omitempty"`
 	// Gate IMU headings too (default off: wheels slip, IMUs rarely jump).
 	GateImu bool `protobuf:"varint,6,opt,name=gate_imu,json=gateImu,proto3" json:"gate_imu,omitempty"`
@@ -406,10 +407,10 @@ type RobotConfig struct {
 	// Most samples held waiting for odometry (default 256, at most 1024).
 	MaxHeld int32 `protobuf:"varint,8,opt,name=max_held,json=maxHeld,proto3" json:"max_held,omitempty"`
 	// How far past the newest odometry a held sample may be stamped,
-	// nanoseconds (default 1 s).
+	// nanoseconds (default 1 s, at most 60 s).
 	MaxHoldAheadNs int64 `protobuf:"varint,9,opt,name=max_hold_ahead_ns,json=maxHoldAheadNs,proto3" json:"max_hold_ahead_ns,omitempty"`
 	// How far past the newest odometry a pose may be extrapolated,
-	// nanoseconds (default 250 ms).
+	// nanoseconds (default 250 ms, at most 10 s).
 	MaxExtrapolationNs int64 `protobuf:"varint,10,opt,name=max_extrapolation_ns,json=maxExtrapolationNs,proto3" json:"max_extrapolation_ns,omitempty"`
 	// Odometry faster than this is refused as implausible (default 5 m/s).
 	MaxSpeedMPerS float64 `protobuf:"fixed64,11,opt,name=max_speed_m_per_s,json=maxSpeedMPerS,proto3" json:"max_speed_m_per_s,omitempty"`
@@ -433,7 +434,8 @@ type RobotConfig struct {
 	// Online calibration of the odometry (default off).
 	Calibration *OdometryCalibration `protobuf:"bytes,19,opt,name=calibration,proto3" json:"calibration,omitempty"`
 	// Odometry stamped more than this past the newest odometry is refused
-	// (REFUSAL_TOO_FAR_AHEAD), nanoseconds (default 1 day): a stamp that
+	// (REFUSAL_TOO_FAR_AHEAD), nanoseconds (default 1 day, at most 30
+	// days): a stamp that
 	// jumps that far is a corrupt stamp or message, and taking it would put
 	// the robot's clock out of reach of every sample after it. A controller
 	// whose odometry really stopped for longer starts a new run (run_start)
@@ -645,7 +647,8 @@ func (x *RobotConfig) GetLandmarkPositionStdM() float64 {
 // sits, its default covariance and its error model.
 type FixSensor struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its id, as fixes name it in sensor_id; "imu" is reserved.
+	// Its id, as fixes name it in sensor_id; "imu" is reserved. At most
+	// -max-string-bytes (128) bytes, as a fix's sensor_id.
 	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
 	// What its fixes measure; a fix of another kind is refused.
 	Kind FixKind `protobuf:"varint,2,opt,name=kind,proto3,enum=reckon.v1.FixKind" json:"kind,omitempty"`
@@ -666,8 +669,8 @@ type FixSensor struct {
 	CorrelatedFraction float64 `protobuf:"fixed64,7,opt,name=correlated_fraction,json=correlatedFraction,proto3" json:"correlated_fraction,omitempty"`
 	// Robust weighting of the sensor's fixes (default none).
 	Robust RobustLoss `protobuf:"varint,8,opt,name=robust,proto3,enum=reckon.v1.RobustLoss" json:"robust,omitempty"`
-	// Huber's k in standard deviations (default 1.345) or the Student-t
-	// degrees of freedom (default 4; more than 1).
+	// Huber's k in standard deviations (default 1.345; at least 0.01) or
+	// the Student-t degrees of freedom (default 4; more than 1).
 	RobustParameter float64 `protobuf:"fixed64,9,opt,name=robust_parameter,json=robustParameter,proto3" json:"robust_parameter,omitempty"`
 	// Standard deviations of the error of mount (as reckon calibrate
 	// writes them: the fitted mount's standard errors). When set, the
@@ -1223,7 +1226,8 @@ type MoveRecovery struct {
 	// Consecutive refused pose fixes it takes (default 3, at least 2, at
 	// most 100).
 	Count int32 `protobuf:"varint,2,opt,name=count,proto3" json:"count,omitempty"`
-	// Chi-square probability within which they must agree (default 0.99).
+	// Chi-square probability within which they must agree (default 0.99),
+	// inside [1e-30, 1).
 	AgreeProbability float64 `protobuf:"fixed64,3,opt,name=agree_probability,json=agreeProbability,proto3" json:"agree_probability,omitempty"`
 	// How many different markers the agreeing refused fixes must come from
 	// (default 2, at least 1, at most 8): pose fixes by PoseFix.marker,
@@ -1312,7 +1316,8 @@ type TrustLimits struct {
 	// Probability the windowed NIS sum must stay below (default 0.999; for
 	// the IMU window a tenth of the rest, 0.9999, because IMU headings come
 	// about ten times as often). Once above, DISTRUST_REASON_INCONSISTENT
-	// stands until the sum is back to its chi-square median.
+	// stands until the sum is back to its chi-square median. Inside
+	// [1e-30, 1).
 	ConsistencyProbability float64 `protobuf:"fixed64,4,opt,name=consistency_probability,json=consistencyProbability,proto3" json:"consistency_probability,omitempty"`
 	// Consecutive refused fixes that raise distrust (default 5).
 	RefusedInARow int32 `protobuf:"varint,5,opt,name=refused_in_a_row,json=refusedInARow,proto3" json:"refused_in_a_row,omitempty"`
@@ -1509,7 +1514,8 @@ func (x *Covariance) GetValues() []float64 {
 // Landmark is a mapped marker.
 type Landmark struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// Its id, as fixes name it.
+	// Its id, as fixes name it; at most -max-string-bytes (128) bytes, as a
+	// fix's landmark_id.
 	Id string `protobuf:"bytes,1,opt,name=id,proto3" json:"id,omitempty"`
 	// Field x, metres.
 	XM float64 `protobuf:"fixed64,2,opt,name=x_m,json=xM,proto3" json:"x_m,omitempty"`

@@ -69,8 +69,8 @@ func (r *Robot) StartRun(s RunStart) Result {
 		}
 	}
 	if r.steps != nil {
-		r.steps.emit()
-		r.steps.restart = true
+		r.steps.endRun(r)
+		r.steps.restart, r.steps.begun = true, false
 	}
 	if r.offsets != nil {
 		// The run's open visits end with it: the new run's blocks start

@@ -234,3 +234,81 @@ func TestStartRunSteps(t *testing.T) {
 		t.Fatalf("smoothing across the run start: %v", err)
 	}
 }
+
+// TestOneSampleRunHasItsStep: a run whose only odometry is its first
+// sample has an estimate (the robot serves its start pose and covariance
+// from that sample on), so it has one step there for the smoother and
+// the review; before, its base never left the window as an entry and the
+// run had no step at all, so that a review of it showed a 95% radius of
+// 0 m, as certain as a run can be. The same for a run 1 of one sample
+// ended by a run start, and for a run 2 of one sample; a run without
+// odometry, and a second FinishSteps, give none.
+func TestOneSampleRunHasItsStep(t *testing.T) {
+	one := func(r *Robot, stamp int64) {
+		t.Helper()
+		if res := r.AddOdometry(Odometry{StampNs: stamp, Counts: []int64{0, 0, 0}}); res.Verdict != VerdictApplied {
+			t.Fatalf("odometry: %v %v", res.Verdict, res.Err)
+		}
+	}
+	// only checks that steps is a single Start step at stamp whose
+	// prediction and estimate are what the robot served there.
+	only := func(what string, steps []Step, stamp int64, served FusedPose) {
+		t.Helper()
+		if len(steps) != 1 {
+			t.Fatalf("%s: %d steps, want 1", what, len(steps))
+		}
+		s := steps[0]
+		var cov [9]float64
+		s.Post.PoseCovarianceInto(&cov)
+		if !s.Start || s.StampNs != stamp || s.Post.Pose() != served.Pose || cov != served.Cov || s.Pred.Pose() != s.Post.Pose() {
+			t.Errorf("%s: step start %v at %d, pose %v cov %v; want a start at %d with the served %v, %v", what, s.Start, s.StampNs, s.Post.Pose(), cov, stamp, served.Pose, served.Cov)
+		}
+	}
+	newRobot := func() *Robot {
+		r, err := New(threeWheels())
+		if err != nil {
+			t.Fatal(err)
+		}
+		r.CollectSteps()
+		return r
+	}
+
+	r := newRobot()
+	one(r, 5e6)
+	served := r.Pose()
+	only("a run of one sample", r.FinishSteps(), 5e6, served)
+	if again := r.FinishSteps(); len(again) != 0 {
+		t.Errorf("FinishSteps again: %d steps, want none", len(again))
+	}
+
+	r = newRobot()
+	one(r, 7e6)
+	served = r.Pose()
+	r.StartRun(RunStart{BootID: "two"})
+	only("run 1 of one sample, at the run start", r.TakeSteps(), 7e6, served)
+	feedRun(t, r, 20)
+	second := r.FinishSteps()
+	if len(second) < 20 || !second[0].Start || second[0].StampNs != 5e6 {
+		t.Errorf("run 2 after it: %d steps, the first a start %v at %d", len(second), second[0].Start, second[0].StampNs)
+	}
+
+	r = newRobot()
+	feedRun(t, r, 20)
+	r.StartRun(RunStart{BootID: "two"})
+	r.TakeSteps()
+	one(r, 3e6)
+	served = r.Pose()
+	only("run 2 of one sample", r.FinishSteps(), 3e6, served)
+
+	r = newRobot()
+	if steps := r.FinishSteps(); len(steps) != 0 {
+		t.Errorf("a robot without odometry: %d steps", len(steps))
+	}
+	r = newRobot()
+	feedRun(t, r, 20)
+	r.StartRun(RunStart{BootID: "two"})
+	r.TakeSteps()
+	if steps := r.FinishSteps(); len(steps) != 0 {
+		t.Errorf("a run 2 without odometry: %d steps", len(steps))
+	}
+}

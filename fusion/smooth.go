@@ -64,6 +64,10 @@ type stepCollector struct {
 	// restart: a new run began (StartRun); its first step has no
 	// predecessor.
 	restart bool
+	// begun: a step was started at the run's base (start); StartRun
+	// clears it. A run whose only odometry is its first sample leaves its
+	// base in no entry to collect; endRun gives it its step.
+	begun bool
 }
 
 // CollectSteps makes the robot keep the steps of its run for smoothing;
@@ -148,8 +152,21 @@ func (r *Robot) FinishSteps() []Step {
 	if n := len(r.live()); n > 0 {
 		r.dropFront(n)
 	}
-	r.steps.emit()
+	r.steps.endRun(r)
 	return r.TakeSteps()
+}
+
+// endRun makes the run's last step final. A run whose base became no step
+// (its first odometry sample was its last: no entry followed it into the
+// window) gets one there, with no predecessor: the estimate the robot
+// served from that sample on.
+func (c *stepCollector) endRun(r *Robot) {
+	if r.started && !c.begun {
+		c.emit()
+		c.restart = false
+		c.start(r.baseT, &r.base.est, r.n)
+	}
+	c.emit()
 }
 
 // collect takes the first k live entries, about to be folded into the base.
@@ -229,7 +246,7 @@ func (c *stepCollector) start(stampNs int64, s *estimator.State, n int) {
 	cur := c.cur()
 	cur.StampNs, cur.Pred, cur.Post, cur.Start = stampNs, *s, *s, true
 	cur.F = identity(n)
-	c.open = true
+	c.open, c.begun = true, true
 }
 
 // emit moves the step in progress, if any, to the finished ones.

@@ -227,14 +227,24 @@ func (run *Run) ts(ns int64) float64 { return float64(ns-run.startNs()) * 1e-9 }
 
 // clipID returns a clip path id for figure id of the run, unique in a page
 // of several runs.
-func (run *Run) clipID(id string) string {
+func (run *Run) clipID(id string) string { return "clip-" + id + "-" + idPart(run.Label) }
+
+// idPart writes s, a name the user chose (a sensor's id, a run's label),
+// as part of an element id: ASCII letters, digits and hyphens stay, every
+// other rune becomes an underscore and its code point in six hex digits.
+// The result holds no space, quote or angle bracket, so that it can stand
+// in an attribute unescaped and in url(#...), and two names never share
+// it (the encoding is one to one), so that ids stay unique in a page.
+func idPart(s string) string {
 	var b strings.Builder
-	for _, r := range run.Label {
+	for _, r := range s {
 		if r >= 'a' && r <= 'z' || r >= 'A' && r <= 'Z' || r >= '0' && r <= '9' || r == '-' {
 			b.WriteRune(r)
+		} else {
+			fmt.Fprintf(&b, "_%06x", r)
 		}
 	}
-	return "clip-" + id + "-" + b.String()
+	return b.String()
 }
 
 // timeFigure renders a plot over time with the run's intervals and events
@@ -654,7 +664,7 @@ func (run *Run) nisFigure(id string) (Figure, error) {
 	if !math.IsNaN(gate) {
 		caption += " and the gate line above which inputs are refused"
 	}
-	return run.timeFigure("fig-nis-"+id, caption+".", p, vg.Points(280), func(o *overlay) {
+	return run.timeFigure("fig-nis-"+idPart(id), caption+".", p, vg.Points(280), func(o *overlay) {
 		x0, _, x1, _ := o.box()
 		if !math.IsNaN(gate) {
 			_, y := o.xy(t0, gate)

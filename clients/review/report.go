@@ -37,6 +37,13 @@ func FormatCounts(m map[string]int) string {
 // lines returns the summary as label and value pairs.
 func (run *Run) lines() [][2]string {
 	s := &run.Summary
+	r95 := fmt.Sprintf("largest %.3f m (at %.2f s), final %.3f m", s.Max95M, secs(s.Max95AtNs), s.Final95M)
+	hs := fmt.Sprintf("largest %.2f deg, final %.2f deg", s.MaxHeadingStd*180/math.Pi, s.FinalHeadingSt*180/math.Pi)
+	if s.Estimates == 0 {
+		// Zero would read as a pose known exactly.
+		r95 = "none: no odometry reviewed, so no estimate"
+		hs = r95
+	}
 	out := [][2]string{
 		{"robot", run.Robot},
 		{"configuration", fmt.Sprintf("%d wheels, imu %s, gate probability %g", len(run.Config.Wheels), run.Config.IMU, run.Config.GateProbability)},
@@ -44,8 +51,8 @@ func (run *Run) lines() [][2]string {
 		{"distance", fmt.Sprintf("%.2f m", s.DistanceM)},
 		{"fixes", FormatCounts(s.Fixes)},
 		{"refusals by reason", FormatCounts(s.Reasons)},
-		{"95% position radius", fmt.Sprintf("largest %.3f m (at %.2f s), final %.3f m", s.Max95M, secs(s.Max95AtNs), s.Final95M)},
-		{"heading standard deviation", fmt.Sprintf("largest %.2f deg, final %.2f deg", s.MaxHeadingStd*180/math.Pi, s.FinalHeadingSt*180/math.Pi)},
+		{"95% position radius", r95},
+		{"heading standard deviation", hs},
 	}
 	for _, ss := range s.Sensors {
 		out = append(out, [2]string{"NIS of " + ss.GetSensorId(), fmt.Sprintf("mean %.2f, 95%% band %.2f to %.2f over %d applied: %s",

@@ -127,6 +127,10 @@ type Summary struct {
 	DistanceM      float64
 	Fixes          map[string]int // by verdict
 	Reasons        map[string]int // refusal reasons
+	// Estimates counts the run's estimates reviewed (its steps: one at
+	// each odometry stamp); without one the uncertainty figures below
+	// are not numbers of the run and the summary says so.
+	Estimates      int
 	Max95M         float64
 	Max95AtNs      int64
 	Final95M       float64
@@ -1327,6 +1331,7 @@ func (w *filteredWalk) step(s *fusion.Step, row *trackRow) {
 		sum.Max95M, sum.Max95AtNs = r95, stamp
 	}
 	sum.Final95M = r95
+	sum.Estimates = w.n
 	hs := math.Sqrt(p.Var(2))
 	sum.MaxHeadingStd = max(sum.MaxHeadingStd, hs)
 	sum.FinalHeadingSt = hs

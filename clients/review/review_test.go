@@ -30,9 +30,18 @@ func writeRun(t testing.TB, sc fusiontest.Scenario) (string, string) {
 // writeRunWith is writeRun with each sample changed by alter (if set)
 // before the robot takes it, as a miswired sensor would change it.
 func writeRunWith(t testing.TB, sc fusiontest.Scenario, alter func(*pb.Sample)) (string, string) {
+	return writeRunConfigured(t, sc, nil, alter)
+}
+
+// writeRunConfigured is writeRunWith with the robot's configuration
+// changed by configure (if set) before the robot is made and journaled.
+func writeRunConfigured(t testing.TB, sc fusiontest.Scenario, configure func(*fusion.Config), alter func(*pb.Sample)) (string, string) {
 	dir := t.TempDir()
 	s := fusiontest.New(sc)
 	cfg := s.Config()
+	if configure != nil {
+		configure(&cfg)
+	}
 	fr, err := fusion.New(cfg)
 	if err != nil {
 		t.Fatal(err)

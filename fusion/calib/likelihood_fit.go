@@ -129,6 +129,10 @@ func FitNoise(cfg fusion.Config, inputs []RecordedInput, opt NoiseFitOptions) (*
 			covFrom = append(covFrom, k)
 		}
 	}
+	// A level left zero in the configuration takes its default, as in
+	// the robot: it is fitted from there, as is the same level written
+	// out (a journal's configuration, which holds the defaults).
+	cfg = withDefaults(cfg)
 	levels := opt.Levels
 	if levels == nil {
 		for _, l := range Levels(cfg) {

@@ -452,3 +452,46 @@ func TestIMULatencyChoice(t *testing.T) {
 		}
 	}
 }
+
+// TestNoiseFitOfDefaultedLevels: a noise level left zero in a
+// configuration takes its default (fusion.DefaultNoise), in the robot and
+// in the fit: FitNoise of a configuration that leaves the wheels' turn
+// and heading-walk levels zero gives the fit of the same configuration
+// with those defaults written out (as a journal holds it, the service
+// having filled them in), the same levels with the same values. Before,
+// the zero levels were taken for levels switched off and not fitted, so
+// that `tune -config ROBOT.yaml -samples` and `tune -journal` of the same
+// run and configuration wrote different configurations.
+func TestNoiseFitOfDefaultedLevels(t *testing.T) {
+	sim, ins := recorded(fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 31, DurationS: 20})
+	written := sim.Config()
+	def := fusion.DefaultNoise()
+	written.Noise.TurnVarRad2PerRad, written.Noise.HeadingVarRad2PerS = def.TurnVarRad2PerRad, def.HeadingVarRad2PerS
+	left := written
+	left.Noise.TurnVarRad2PerRad, left.Noise.HeadingVarRad2PerS = 0, 0
+	fits := map[string]map[string]FittedLevel{}
+	for name, cfg := range map[string]fusion.Config{"written": written, "left zero": left} {
+		fit, err := FitNoise(cfg, ins, NoiseFitOptions{})
+		if err != nil {
+			t.Fatalf("%s: %v", name, err)
+		}
+		fits[name] = map[string]FittedLevel{}
+		for _, l := range fit.Levels {
+			fits[name][l.Field] = l
+		}
+	}
+	for _, f := range []string{"noise.turn_var_rad2_per_rad", "noise.heading_var_rad2_per_s"} {
+		if _, ok := fits["left zero"][f]; !ok {
+			t.Errorf("%s left zero: not among the levels fitted", f)
+		}
+	}
+	if len(fits["left zero"]) != len(fits["written"]) {
+		t.Errorf("%d levels fitted with defaults left zero, %d with them written", len(fits["left zero"]), len(fits["written"]))
+	}
+	for f, w := range fits["written"] {
+		g := fits["left zero"][f]
+		if g.Configured != w.Configured || g.Fitted != w.Fitted || g.Identifiable != w.Identifiable || g.Raised != w.Raised {
+			t.Errorf("%s: left zero %g -> %g (determined %v, raised %v); written %g -> %g (%v, %v)", f, g.Configured, g.Fitted, g.Identifiable, g.Raised, w.Configured, w.Fitted, w.Identifiable, w.Raised)
+		}
+	}
+}

@@ -192,6 +192,10 @@ type replayer struct {
 	// replayBatch at a time (each lives as long as any of its block).
 	resps    []pb.IngestResponse
 	replayed []Replayed
+	// refused counts the journal's inputs the robot refused before taking
+	// them (another configuration's, ReplayOptions.Config): they hold
+	// journal numbers but take none of the robot's.
+	refused uint64
 }
 
 func (rp *replayer) apply(it replayItem) error {
@@ -249,12 +253,16 @@ func (rp *replayer) input(in *pb.JournalInput, out *pb.JournalOutput) error {
 	}
 	resp := &rp.resps[0]
 	rp.resps = rp.resps[1:]
-	if seq := in.GetSequence(); seq > rp.fr.Sequence()+1 {
+	if seq := in.GetSequence() - rp.refused; seq > rp.fr.Sequence()+1 {
 		// Past a gap (ReplayOptions.Gap): the inputs after it keep their
-		// numbers.
+		// numbers, less those of the inputs refused before it, which a
+		// robot so configured would not have numbered.
 		rp.fr.SkipTo(seq - 1)
 	}
 	taken := convert.TakeInto(resp, rp.fr, in.GetSample(), out.GetResponse().GetClientSequence())
+	if !taken {
+		rp.refused++
+	}
 	if rp.opt.Check {
 		if err := check(rp.fr, in, resp, taken, out); err != nil {
 			return err

@@ -207,7 +207,7 @@ func (rec *recording) tornNote() string {
 		note = "note: the journal is truncated: " + rec.torn + " (the inputs before it are used)\n"
 	}
 	for _, g := range rec.gaps {
-		note += "note: " + g + "; the inputs after it are used, without those lost\n"
+		note += "note: " + g + "; the inputs lost are left out, the inputs after it are used\n"
 	}
 	if rec.damaged != "" {
 		note += "note: " + rec.damaged + " (every intact record around it is used)\n"
@@ -272,13 +272,7 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		if err != nil {
 			return nil, err
 		}
-		// A gap (inputs lost to damage) is gone past, as replay and review
-		// do: the inputs after it are the run's too.
-		gap := func(err error) error {
-			gaps = append(gaps, err.Error())
-			return nil
-		}
-		_, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Gap: gap, Input: func(r *journal.Replayed) error {
+		fr, scan, err := journal.Replay(path, id, journal.ReplayOptions{Config: cfg, ReadOnly: true, SkipOutputs: true, Input: func(r *journal.Replayed) error {
 			if err := ctx.Err(); err != nil {
 				return err
 			}
@@ -286,8 +280,13 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 				return add(s)
 			}
 			return nil
+		}, Gap: func(err error) error {
+			gaps = append(gaps, err.Error())
+			return nil
 		}})
-		if err != nil && !(errors.Is(err, journal.ErrGap) && len(gaps) > 0) {
+		// A gap is gone past (and named by Gap) only once the journal
+		// opened a robot, as in replay.
+		if err != nil && (fr == nil || !errors.Is(err, journal.ErrGap)) {
 			return nil, err
 		}
 		if scan.Torn != nil {

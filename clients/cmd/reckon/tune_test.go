@@ -8,9 +8,11 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"reflect"
 	"strings"
 	"testing"
 
+	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
@@ -261,6 +263,65 @@ func TestTuneAndCalibrateSayATornJournal(t *testing.T) {
 	}
 }
 
+// TestTuneAndCalibrateGoPastAGap: bytes flipped in the middle of a
+// journal cost the inputs of the damaged frames; tune and calibrate name
+// the gap, go on past it as review, replay and export do, and write the
+// configuration that the inputs left give when read from a file of
+// samples (replay -format samples, which goes past the gap too): the
+// same lines, comments aside. Before, both stopped at the gap with exit
+// 1, so that a day's recording with one damaged frame could not be
+// calibrated or tuned at all.
+func TestTuneAndCalibrateGoPastAGap(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	seg := journal.SegmentPath(dir, "cart", 0)
+	b, err := os.ReadFile(seg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := len(b) / 2; i < len(b)/2+16; i++ {
+		b[i] ^= 0x5a
+	}
+	if err := os.WriteFile(seg, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	left := filepath.Join(t.TempDir(), "left.jsonl")
+	if _, errs, code := runCode(t, context.Background(), "", "replay", "-journal", dir, "-robot", "cart", "-format", "samples", "-out", left); code != exitFailure || !strings.Contains(errs, "journal gap") {
+		t.Fatalf("replay of the damaged journal: exit %d, want %d naming the gap:\n%s", code, exitFailure, errs)
+	}
+	// settings is the configuration a file gives a robot, its defaults
+	// filled in (one file writes them, the other leaves them out).
+	settings := func(path string) fusion.Config {
+		b, err := os.ReadFile(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, c, err := convert.LoadConfigYAML(b)
+		if err != nil {
+			t.Fatalf("%s: %v", path, err)
+		}
+		fr, err := fusion.New(c)
+		if err != nil {
+			t.Fatalf("%s: %v", path, err)
+		}
+		return fr.Config()
+	}
+	for _, cmd := range []string{"tune", "calibrate"} {
+		fromJournal := filepath.Join(t.TempDir(), "new.yaml")
+		out, errs, code := runCode(t, context.Background(), "", cmd, "-journal", dir, "-robot", "cart", "-out", fromJournal)
+		if code != 0 || !strings.Contains(out, "note: journal gap") || !strings.Contains(out, "the inputs lost are left out") {
+			t.Errorf("%s of a journal with a gap: exit %d, want 0 with the gap named:\n%s%s", cmd, code, out, errs)
+			continue
+		}
+		fromSamples := filepath.Join(t.TempDir(), "new.yaml")
+		if _, errs, code := runCode(t, context.Background(), "", cmd, "-config", exampleConfig, "-samples", left, "-out", fromSamples); code != 0 {
+			t.Fatalf("%s of the samples left: exit %d\n%s", cmd, code, errs)
+		}
+		if a, b := settings(fromJournal), settings(fromSamples); !reflect.DeepEqual(a, b) {
+			t.Errorf("%s: the journal past its gap gives\n%+v\nthe samples left\n%+v", cmd, a, b)
+		}
+	}
+}
+
 // TestReadTruthCSV: the truth file of tune and calibrate is read as review
 // reads it: a header only first (a byte order mark before it skipped),
 // then rows of an integer stamp and three finite numbers, a row that is
@@ -352,11 +413,12 @@ func TestNewConfigNeverOverwritesTheRecording(t *testing.T) {
 	}
 }
 
-// TestTuneAndCalibrateGoPastAGap: a journal that lost inputs in its middle
-// to damaged bytes is tuned and calibrated on every input it still holds,
-// as replay and review go past such a gap, and both name the gap. Before,
-// both stopped at it with exit 1, "journal gap: ...", and fitted nothing.
-func TestTuneAndCalibrateGoPastAGap(t *testing.T) {
+// TestTuneAndCalibrateReadAllPastAGap: a journal that lost inputs in its
+// middle to damaged bytes is tuned and calibrated on every input it still
+// holds (readRun keeps as many as the journal's own reading), as replay and
+// review go past such a gap, and both name the gap. Before, both stopped
+// at it with exit 1, "journal gap: ...", and fitted nothing.
+func TestTuneAndCalibrateReadAllPastAGap(t *testing.T) {
 	dir, samples, _ := writeExampleJournal(t)
 	flipBytes(t, journal.SegmentPath(dir, "cart", 0), func(size int) (int, int) { return size / 3, size/3 + 200 }, 0x5a)
 	var kept int

@@ -451,10 +451,11 @@ func TestDepotTugFieldFrame(t *testing.T) {
 // while its moments covered the pose alone, an IMU heading's update moved
 // the turn scale through the offset's covariance with it, which the
 // moments left out, and each spin pushed the scale 3% to 4% high (12 of
-// its standard deviations): 1.05% of samples trusted outside the 99.9%
-// region, for up to 24.8 s, with quiet wheels, 1.01% with half the noise
-// (0.097% with the noise as configured). Limits: the README's floor of
-// 0.1% and 1 s (measured after: none).
+// its standard deviations): 0.959% of samples trusted outside the 99.9%
+// region, for up to 13.6 s (mean NEES 960), with quiet wheels, 0.747%
+// (13.7 s) with half the noise (measured on the code before the change, 8
+// runs of 300 s). Limits: the README's floor of 0.1% and 1 s (measured
+// after: none).
 func TestDepotTurnScaleQuietWheels(t *testing.T) {
 	for _, c := range []struct {
 		name string

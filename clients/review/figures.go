@@ -227,7 +227,11 @@ func (run *Run) ts(ns int64) float64 { return float64(ns-run.startNs()) * 1e-9 }
 
 // clipID returns a clip path id for figure id of the run, unique in a page
 // of several runs.
-func (run *Run) clipID(id string) string { return "clip-" + id + "-" + idPart(run.Label) }
+//
+// The two parts are joined by "__", which neither holds (idPart writes an
+// underscore only before six hex digits): joined by a hyphen, which idPart
+// keeps, sensor "a" in run "b-x" and sensor "a-b" in run "x" shared one id.
+func (run *Run) clipID(id string) string { return "clip-" + id + "__" + idPart(run.Label) }
 
 // idPart writes s, a name the user chose (a sensor's id, a run's label),
 // as part of an element id: ASCII letters, digits and hyphens stay, every

@@ -112,3 +112,20 @@ func TestReportIDsOfOddSensorNames(t *testing.T) {
 		}
 	}
 }
+
+// TestClipIDsDistinct: the clip path ids of two NIS figures stay apart when
+// a sensor's id and a run's label share a hyphen at their join: sensor "a"
+// in run "b-x" and sensor "a-b" in run "x" gave both
+// clip-fig-nis-a-b-x (the review of session 26), two elements of one id
+// in a page of both runs.
+func TestClipIDsDistinct(t *testing.T) {
+	pairs := [][2]string{{"a", "b-x"}, {"a-b", "x"}, {"a-b-x", ""}, {"a_b", "x"}, {"a", "b_x"}}
+	seen := map[string][2]string{}
+	for _, p := range pairs {
+		id := (&Run{Label: p[1]}).clipID("fig-nis-" + idPart(p[0]))
+		if q, ok := seen[id]; ok {
+			t.Errorf("sensor %q in run %q and sensor %q in run %q share clip id %q", q[0], q[1], p[0], p[1], id)
+		}
+		seen[id] = p
+	}
+}

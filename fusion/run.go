@@ -131,6 +131,19 @@ func carryInto(st, last *estimator.State, l *estimator.Layout, s *RunStart) {
 		}
 	}
 	*st = estimator.NewState(n, st.Angles(), x, p)
+	if s.Pose == nil && l.TurnScale() >= 0 {
+		// The pose and the turn scale keep their covariance, and with it
+		// the pose's errors-in-variables moments (State's eiv), which an
+		// update's pull correction reads: dropped, the first updates of
+		// the run took no pull out. The IMU offset starts afresh, without
+		// moments (InitOffset gives them).
+		m := last.EIV()
+		var kept estimator.EIVMoments
+		for a := 0; a < 3; a++ {
+			copy(kept[a*estimator.EIVDim:a*estimator.EIVDim+3], m[a*estimator.EIVDim:a*estimator.EIVDim+3])
+		}
+		st.SetEIV(kept)
+	}
 }
 
 // checkRunStart reports what is wrong with a run start before it is taken.

@@ -114,7 +114,17 @@ into one HTML report with a calibration section at the top.`)
 	fmt.Fprint(stdout, rec.tornNote())
 	fmt.Fprintf(stdout, "%s%s: %d odometry samples, %d IMU headings, %d fixes\n", src, rec.note(), len(odo), len(imu), len(fixes))
 
-	wiring, sensors := calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)
+	type diagnosis struct {
+		wiring  []calib.Finding
+		sensors []calib.Finding
+	}
+	diag, err := interruptible(ctx, func() (diagnosis, error) {
+		return diagnosis{calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)}, nil
+	})
+	if err != nil {
+		return err
+	}
+	wiring, sensors := diag.wiring, diag.sensors
 	findings := printFindings(stdout, wiring, sensors)
 	for _, f := range wiring {
 		if !f.Undetermined {
@@ -122,7 +132,12 @@ into one HTML report with a calibration section at the top.`)
 		}
 	}
 
-	fit, err := calib.FitSystematic(cfg, odo, fixes, calib.SystematicOptions{})
+	fit, err := interruptible(ctx, func() (calib.SystematicFit, error) {
+		return calib.FitSystematic(cfg, odo, fixes, calib.SystematicOptions{})
+	})
+	if errors.Is(err, context.Canceled) {
+		return err
+	}
 	if err != nil {
 		return fmt.Errorf("%s: %w: %w", run, errRefused, err)
 	}

@@ -441,3 +441,30 @@ func TestTuneAndCalibrateReadAllPastAGap(t *testing.T) {
 		}
 	}
 }
+
+// TestInterruptibleEndsWithContext: a fit that does not return (as a
+// calibrate of a long run ran on for 37 minutes after SIGTERM: the probe
+// of session 26) gives way to the end of the command's context, which
+// Ctrl-C and SIGTERM end: interruptible returns context.Canceled while
+// the fit still runs (were it to wait for the fit, the test would hang
+// until go test's timeout). A fit that ends gives its result and error.
+func TestInterruptibleEndsWithContext(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	release, started := make(chan struct{}), make(chan struct{})
+	defer close(release)
+	go func() {
+		<-started
+		cancel()
+	}()
+	if _, err := interruptible(ctx, func() (int, error) {
+		close(started)
+		<-release
+		return 1, nil
+	}); !errors.Is(err, context.Canceled) {
+		t.Fatalf("a fit interrupted: %v, want context.Canceled", err)
+	}
+	want := errors.New("no fixes")
+	if v, err := interruptible(context.Background(), func() (int, error) { return 7, want }); v != 7 || err != want {
+		t.Errorf("a fit that ends: %d, %v; want 7, %v", v, err, want)
+	}
+}

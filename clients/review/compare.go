@@ -113,7 +113,14 @@ func differences(runs []*Run) []difference {
 		row("fixes refused", "", 0, func(s *Summary) float64 { return float64(s.refusedFixes()) }),
 		row("time trusted", "s", 1, func(s *Summary) float64 { return secs(s.EndNs - s.StartNs - s.untrustedNs()) }),
 		row("time not trusted", "s", 1, func(s *Summary) float64 { return secs(s.untrustedNs()) }),
-		row("largest 95% position radius", "m", 3, func(s *Summary) float64 { return s.Max95M }),
+		row("largest 95% position radius", "m", 3, func(s *Summary) float64 {
+			if s.Estimates == 0 {
+				// A run without odometry has no estimate: 0 would read as a
+				// pose known exactly (the review's summary says none).
+				return math.NaN()
+			}
+			return s.Max95M
+		}),
 		row("slips suspected", "", 0, func(s *Summary) float64 { return float64(s.Slips) }),
 	}
 	return rows

@@ -104,3 +104,22 @@ func TestReviewOfTheShortestRuns(t *testing.T) {
 		}
 	}
 }
+
+// TestCompareRadiusOfARunWithoutEstimate: the comparison's table shows no
+// largest 95% radius ("-") for a run that had no odometry, and so no
+// estimate, as the review's summary says none; it showed 0.000 m, a pose
+// known exactly (the probe of session 26). A run with estimates shows its
+// radius.
+func TestCompareRadiusOfARunWithoutEstimate(t *testing.T) {
+	runs := []*Run{{Summary: Summary{Estimates: 0}}, {Summary: Summary{Estimates: 10, Max95M: 0.25}}}
+	for _, d := range differences(runs) {
+		if d.name != "largest 95% position radius" {
+			continue
+		}
+		if got := [2]string{d.format(d.values[0]), d.format(d.values[1])}; got != [2]string{"-", "0.250 m"} {
+			t.Errorf("largest 95%% radius of a run without and one with estimates: %q, want [- 0.250 m]", got)
+		}
+		return
+	}
+	t.Fatal("no largest 95% radius row")
+}

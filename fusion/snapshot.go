@@ -477,7 +477,8 @@ func (r *Robot) robotFault() string {
 // a variance below 0, a correlation past 1 (with a relative slack of 1e-6
 // for rounding: a covariance matrix's off-diagonal values are bounded by
 // the geometric mean of their variances, a property of every positive
-// semidefinite matrix).
+// semidefinite matrix: each 2x2 principal minor is not negative, Horn and
+// Johnson, Matrix Analysis, 1985, sec. 7.1, from memory).
 func stateFault(s *estimator.State) string {
 	n := s.Size()
 	for i := 0; i < n; i++ {

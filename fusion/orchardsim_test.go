@@ -435,19 +435,23 @@ func ocSimulate(seed uint64, durS float64, e ocErrors) ocRun {
 
 // ocConfig is the careful user's configuration for the carrier, from the
 // README: nominal geometry and counters from the drawings, no_side_slip
-// for a differential drive, imu_mode absolute with
+// for a differential drive with lateral_slip_var_m2_per_m 2e-3 for a robot
+// that creeps across a slope (20 times the default, the README's figure
+// for 1% to 2% of creep), imu_mode absolute with
 // imu_offset_var_rad2_per_rad at the datasheet's 1% gyro scale error
 // squared and the default walk, the IMU's reading noise and quantisation,
-// online scale states (an uncalibrated carrier on soft soil), the map's
-// tape survey as landmark_position_std_m, the camera's spread from a
-// static test as its covariance with the half that a marker keeps from
-// frame to frame as correlated_fraction 0.5 over the README's 1.5 s, and
-// move recovery on. The IMU's clock offset is not known to the user and
-// not configured.
+// online scale states (an uncalibrated carrier on soft soil) with the
+// forward scale walking 1e-5 a metre (soil whose rolling radius changes
+// by 0.5% over some metres: 2 sigma^2 / L), the map's tape survey as
+// landmark_position_std_m, the camera's spread from a static test as its
+// covariance with the half that a marker keeps from frame to frame as
+// correlated_fraction 0.5 over the README's 1.5 s, and move recovery on.
+// The IMU's clock offset is not known to the user and not configured.
 func ocConfig(run *ocRun) fusion.Config {
 	n := fusion.DefaultNoise()
 	n.IMUOffsetVarRad2PerRad = 1e-4
 	n.IMUHeadingVarRad2 = ocIMUNoiseRad*ocIMUNoiseRad + ocIMUQuantum*ocIMUQuantum/12
+	n.LateralSlipVarM2PerM = 2e-3
 	lms := make([]fusion.Landmark, len(run.posts))
 	for k, p := range run.posts {
 		lms[k] = fusion.Landmark{ID: p.id, XM: p.mapX, YM: p.mapY}
@@ -468,6 +472,6 @@ func ocConfig(run *ocRun) fusion.Config {
 		Sensors: []fusion.Sensor{{ID: "rowcam", Kind: fusion.FixLandmark, Mount: estimator.Pose{X: ocCamAheadM},
 			Cov:              []float64{ocRangeStdM * ocRangeStdM, 0, 0, ocBearStdRad * ocBearStdRad},
 			CorrelationTimeS: 1.5, CorrelatedFraction: 0.5}},
-		Calibration: fusion.Calibration{Scale: true},
+		Calibration: fusion.Calibration{Scale: true, ForwardScaleVarPerM: 1e-5},
 	}
 }

@@ -215,9 +215,8 @@ func gaussNewton(x estimator.Pose, eq func(estimator.Pose) (*mat.SymDense, *mat.
 }
 
 // solveNormal returns info^-1 grad for the 3 x 3 normal equations, and
-// false where info is not positive definite (a pivot of its Cholesky
-// factorisation not positive) or is as ill-conditioned as gonum's
-// Cholesky solve refuses (invertSmall).
+// false where info is not positive definite or is as ill-conditioned as
+// gonum's Cholesky solve refuses (invertSPD).
 func solveNormal(info *mat.SymDense, grad *mat.VecDense) ([3]float64, bool) {
 	var a [9]float64
 	for p := range 3 {
@@ -225,12 +224,8 @@ func solveNormal(info *mat.SymDense, grad *mat.VecDense) ([3]float64, bool) {
 			a[p*3+q] = info.At(p, q)
 		}
 	}
-	// The leading principal minors of a positive definite matrix are
-	// positive (Golub and Van Loan, sec. 4.2), as its Cholesky pivots are.
-	m1, m2 := a[0], a[0]*a[4]-a[1]*a[3]
-	m3 := a[0]*(a[4]*a[8]-a[5]*a[7]) - a[1]*(a[3]*a[8]-a[5]*a[6]) + a[2]*(a[3]*a[7]-a[4]*a[6])
-	inv, ok := invertSmall(&a, 3)
-	if !ok || !(m1 > 0) || !(m2 > 0) || !(m3 > 0) {
+	inv, ok := invertSPD(&a, 3)
+	if !ok {
 		return [3]float64{}, false
 	}
 	var d [3]float64
@@ -275,7 +270,7 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 				v[a] = estimator.Wrap(v[a])
 			}
 		}
-		w, ok := invertSmall(&wInv, d)
+		w, ok := invertSPD(&wInv, d)
 		if !ok {
 			return nil, nil, 0, 0, false
 		}
@@ -321,46 +316,54 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 	return info, mat.NewVecDense(3, gr[:]), cost, dim, true
 }
 
-// invertSmall returns the inverse of the d x d (d at most 3, stride 3)
-// matrix a by its adjugate (Cramer's rule), and false where a is singular
-// or its 1-norm condition number passes gonum's mat.ConditionTolerance,
-// where mat.Dense.Inverse refuses it too.
-func invertSmall(a *[9]float64, d int) ([9]float64, bool) {
-	var inv [9]float64
-	var det float64
-	switch d {
-	case 1:
-		det = a[0]
-		inv[0] = 1
-	case 2:
-		det = a[0]*a[4] - a[1]*a[3]
-		inv[0], inv[1], inv[3], inv[4] = a[4], -a[1], -a[3], a[0]
-	case 3:
-		inv[0] = a[4]*a[8] - a[5]*a[7]
-		inv[1] = a[2]*a[7] - a[1]*a[8]
-		inv[2] = a[1]*a[5] - a[2]*a[4]
-		inv[3] = a[5]*a[6] - a[3]*a[8]
-		inv[4] = a[0]*a[8] - a[2]*a[6]
-		inv[5] = a[2]*a[3] - a[0]*a[5]
-		inv[6] = a[3]*a[7] - a[4]*a[6]
-		inv[7] = a[1]*a[6] - a[0]*a[7]
-		inv[8] = a[0]*a[4] - a[1]*a[3]
-		det = a[0]*inv[0] + a[1]*inv[3] + a[2]*inv[6]
-	default:
-		return inv, false
+// invertSPD returns the inverse of the d x d (d at most 3, stride 3)
+// symmetric positive definite matrix a through its Cholesky factor, a = L
+// L^T and a^-1 = L^-T L^-1 (Golub and Van Loan, Matrix Computations, 4th
+// ed., sec. 4.2; backward stable, where the adjugate, tried first, lost
+// five digits to cancellation at a condition number of 4e6), and false
+// where a is not positive definite (a pivot not positive) or its 1-norm
+// condition number passes gonum's mat.ConditionTolerance, where gonum's
+// solves refuse it too.
+func invertSPD(a *[9]float64, d int) ([9]float64, bool) {
+	var l, li, inv [9]float64
+	for j := range d {
+		s := a[j*3+j]
+		for k := range j {
+			s -= l[j*3+k] * l[j*3+k]
+		}
+		if !(s > 0) || math.IsInf(s, 0) {
+			return inv, false
+		}
+		l[j*3+j] = math.Sqrt(s)
+		for i := j + 1; i < d; i++ {
+			t := a[i*3+j]
+			for k := range j {
+				t -= l[i*3+k] * l[j*3+k]
+			}
+			l[i*3+j] = t / l[j*3+j]
+		}
 	}
-	if det == 0 || math.IsNaN(det) || math.IsInf(det, 0) {
-		return inv, false
+	for j := range d {
+		li[j*3+j] = 1 / l[j*3+j]
+		for i := j + 1; i < d; i++ {
+			var t float64
+			for k := j; k < i; k++ {
+				t += l[i*3+k] * li[k*3+j]
+			}
+			li[i*3+j] = -t / l[i*3+i]
+		}
 	}
-	if d == 1 {
-		inv[0] = 1 / det
-	} else {
-		for k := range inv {
-			inv[k] /= det
+	for p := range d {
+		for q := range d {
+			var t float64
+			for k := max(p, q); k < d; k++ {
+				t += li[k*3+p] * li[k*3+q]
+			}
+			inv[p*3+q] = t
 		}
 	}
 	// The 1-norm condition number, ||a||_1 ||a^-1||_1 (Golub and Van Loan,
-	// Matrix Computations, 4th ed., sec. 2.6.2).
+	// sec. 2.6.2).
 	var na, ni float64
 	for col := range d {
 		var sa, si float64

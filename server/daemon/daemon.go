@@ -297,7 +297,7 @@ func startService(ctx context.Context, dc *Config) (*server.Server, error) {
 // newGRPCServer registers the service, health and reflection.
 func newGRPCServer(srv *server.Server, opts []grpc.ServerOption) (*grpc.Server, *health.Server) {
 	gs := grpc.NewServer(opts...)
-	pb.RegisterFusionServiceServer(gs, srv)
+	server.Register(gs, srv)
 	hs := health.NewServer()
 	hs.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
 	hs.SetServingStatus(pb.FusionService_ServiceDesc.ServiceName, healthpb.HealthCheckResponse_SERVING)

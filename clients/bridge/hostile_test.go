@@ -155,7 +155,6 @@ func sameSample(a, b *pb.Sample) bool {
 	return sameSamples([]sampleOf{short(a)}, []sampleOf{short(b)})
 }
 
-
 // TestFastBootToggleKeepsItsStart: a controller sending 1000 frames a
 // second that boots to the byte before the last while the last boot's
 // clock is at 0.5 s has its frames held until they span 1.5 s (lateUs less

@@ -14,8 +14,9 @@ import (
 )
 
 // TestFlagFilesNotRegular: a -robot configuration, a -token-file, a TLS
-// certificate, key or client CA that is a named pipe, a directory or a
-// device is refused at once naming the flag and what the file is. Before,
+// certificate or key that is a named pipe no process writes to, a
+// directory or a device is refused at once naming the flag and what the
+// file is (a pipe with a writer is read: daemon's TestReadFlagFile). Before,
 // a named pipe with no writer held the start for ever (open(2) waits for
 // a writer; SIGTERM did not end the wait) and a device was read as a file
 // (/dev/zero without end).
@@ -29,9 +30,9 @@ func TestFlagFilesNotRegular(t *testing.T) {
 		args []string
 		want string
 	}{
-		{[]string{"-robot", "cart=" + fifo}, "robot cart: " + fifo + " is a named pipe (FIFO), not a regular file"},
-		{[]string{"-token-file", fifo}, "token-file: " + fifo + " is a named pipe"},
-		{[]string{"-tls-cert", fifo, "-tls-key", fifo}, "tls-cert: " + fifo + " is a named pipe"},
+		{[]string{"-robot", "cart=" + fifo}, "robot cart: " + fifo + " is a named pipe that no process writes to"},
+		{[]string{"-token-file", fifo}, "token-file: " + fifo + " is a named pipe that no process writes to"},
+		{[]string{"-tls-cert", fifo, "-tls-key", fifo}, "tls-cert: " + fifo + " is a named pipe that no process writes to"},
 		{[]string{"-robot", "cart=" + dir}, "robot cart: " + dir + " is a directory"},
 		{[]string{"-robot", "cart=/dev/null"}, "robot cart: /dev/null is a character device"},
 		{[]string{"-token-file", "/dev/null"}, "token-file: /dev/null is a character device"},

@@ -26,19 +26,8 @@ import (
 // failed to unmarshal the received message"), as though the service were
 // at fault.
 func TestMalformedCallIsInvalidArgument(t *testing.T) {
-	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
-	defer srv.stop()
-	conn, err := connect(srv.addr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
-	api := pb.NewFusionServiceClient(conn)
+	conn, api, samp := serveCartOn(t, 2, 1)
 	ctx := context.Background()
-	samp, cfg := cartRun(2, 1)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
 	sess, _ := openFeed(ctx, api, "robots/cart")
 	applyAll(t, sess, samp)
 	sess.close()
@@ -116,6 +105,26 @@ func TestMalformedCallIsInvalidArgument(t *testing.T) {
 	if err != nil || after.GetRobot().GetInputCount() != before.GetRobot().GetInputCount() {
 		t.Errorf("robot after: %v %v, before %v", after.GetRobot(), err, before.GetRobot())
 	}
+}
+
+// serveCartOn serves a new service with a journal for the test, creates
+// robots/cart on it from cartRun(seed, seconds) and returns a connection,
+// a client on it and the run's samples.
+func serveCartOn(t *testing.T, seed uint64, seconds float64) (*grpc.ClientConn, pb.FusionServiceClient, []*pb.Sample) {
+	t.Helper()
+	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+	t.Cleanup(srv.stop)
+	conn, err := connect(srv.addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { conn.Close() })
+	api := pb.NewFusionServiceClient(conn)
+	samp, cfg := cartRun(seed, seconds)
+	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+		t.Fatal(err)
+	}
+	return conn, api, samp
 }
 
 // rawReplyCodec sends a []byte as it is and keeps the reply's bytes.

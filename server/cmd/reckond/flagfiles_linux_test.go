@@ -4,9 +4,7 @@ import (
 	"bytes"
 	"context"
 	"os"
-	"os/exec"
 	"path/filepath"
-	"regexp"
 	"strings"
 	"syscall"
 	"testing"
@@ -68,19 +66,8 @@ func TestFlagFilesNotRegular(t *testing.T) {
 // exit 0 after its graceful stop. Before, the signal was not handled and
 // ended the process at once, without a word in its log.
 func TestHangupStopsGracefully(t *testing.T) {
-	cmd := exec.Command(os.Args[0], "-test.run=^$")
-	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=1024", "RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -journal "+t.TempDir())
-	logs := &lockedBuffer{}
-	cmd.Stderr = logs
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
-	defer cmd.Process.Kill()
-	for deadline := time.Now().Add(30 * time.Second); !regexp.MustCompile(`msg=serving`).MatchString(logs.String()); waitABit() {
-		if time.Now().After(deadline) {
-			t.Fatalf("not serving:\n%s", logs.String())
-		}
-	}
+	cmd, logs := startChild(t, 1024, "-listen 127.0.0.1:0 -journal "+t.TempDir())
+	waitServing(t, logs, `msg=serving`)
 	cmd.Process.Signal(syscall.SIGHUP)
 	if err := cmd.Wait(); err != nil {
 		t.Fatalf("reckond after SIGHUP: %v\n%s", err, logs.String())

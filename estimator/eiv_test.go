@@ -32,6 +32,16 @@ func closeMats(t *testing.T, what string, got, want *mat.Dense, tol float64) {
 	}
 }
 
+// eivMeasurement returns a pose fix with no mount near f's pose, or an
+// IMU heading near its heading and offset.
+func eivMeasurement(f *Filter, rng *rand.Rand, pose bool) Measurement {
+	if pose {
+		return Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
+			R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
+	}
+	return Measurement{Kind: KindIMUHeading, Z: [3]float64{Wrap(f.st.x[IHead] + f.st.x[IOffset] + 0.01*rng.NormFloat64())}, R: [9]float64{2e-5}}
+}
+
 // TestPredictEIVMatrixForm: PredictReported moves the moments by
 // M' = F M F^T - D R G^T, written out by hand in predictEIV; here the same
 // products in gonum mat, with F and the step Jacobian from ArcJacobians
@@ -113,17 +123,14 @@ func TestUpdateEIVMatrixForm(t *testing.T) {
 		twin := *f
 		twin.st.eiv = EIVMoments{}
 		ts, n := f.Layout().TurnScale(), f.st.n
-		var m Measurement
+		m := eivMeasurement(f, rng, k%2 == 0)
 		var h *mat.Dense
 		if k%2 == 0 {
-			m = Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
-				R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
 			h = mat.NewDense(3, n, nil)
 			for a := 0; a < 3; a++ {
 				h.Set(a, a, 1)
 			}
 		} else {
-			m = Measurement{Kind: KindIMUHeading, Z: [3]float64{Wrap(f.st.x[IHead] + f.st.x[IOffset] + 0.01*rng.NormFloat64())}, R: [9]float64{2e-5}}
 			h = mat.NewDense(1, n, nil)
 			h.Set(0, IHead, 1)
 			h.Set(0, IOffset, 1)
@@ -308,13 +315,7 @@ func TestUpdateEIVConsider(t *testing.T) {
 		twin := *f
 		twin.st.eiv = EIVMoments{}
 		ts, n := f.Layout().TurnScale(), f.st.n
-		var m Measurement
-		if k%2 == 0 {
-			m = Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
-				R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
-		} else {
-			m = Measurement{Kind: KindIMUHeading, Z: [3]float64{Wrap(f.st.x[IHead] + f.st.x[IOffset] + 0.01*rng.NormFloat64())}, R: [9]float64{2e-5}}
-		}
+		m := eivMeasurement(f, rng, k%2 == 0)
 		before := augmented(f)
 		if _, err := f.Update(&m, NoGate()); err != nil {
 			t.Fatal(err)

@@ -587,14 +587,7 @@ func TestSnapshotKeepsEIVConsider(t *testing.T) {
 	if psi := st.EIVConsider(); psi[a.Layout().TurnScale()] == 0 {
 		t.Fatalf("consider column %v at the snapshot: the test says nothing", psi)
 	}
-	snap, err := a.Snapshot()
-	if err != nil {
-		t.Fatal(err)
-	}
-	b, err := fusion.RestoreSnapshot(cfg, snap)
-	if err != nil {
-		t.Fatal(err)
-	}
+	snap, b := snapshotRestored(t, a, cfg)
 	for i := mid; i < len(run.ins); i++ {
 		ra, rb := feed(a, &run.ins[i]), feed(b, &run.ins[i])
 		if ra.Verdict != rb.Verdict || ra.NIS != rb.NIS || a.Pose() != b.Pose() {

@@ -1,6 +1,7 @@
 package estimator
 
 import (
+	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -390,6 +391,25 @@ func TestPredictEIVConsider(t *testing.T) {
 			if math.Abs(f.st.eivc[i]-want[i]) > 1e-12 {
 				t.Errorf("case %d: psi[%d] = %.12g, want %.12g", k, i, f.st.eivc[i], want[i])
 			}
+		}
+	}
+}
+
+// TestLayoutNoiseRatioStd: NewLayout refuses a consider parameter's
+// standard deviation that is NaN, negative or infinite, or whose square,
+// the variance the consider updates add, is not finite (1e155 was taken,
+// and every update that took a pull out failed as not positive definite);
+// 0 and 0.5 are taken, their squares kept.
+func TestLayoutNoiseRatioStd(t *testing.T) {
+	for _, s := range []float64{math.NaN(), -0.5, math.Inf(1), 1e155} {
+		if _, err := NewLayout(LayoutSpec{OdometryScale: true, NoiseRatioStd: s}); !errors.Is(err, ErrNotFinite) {
+			t.Errorf("noise ratio standard deviation %v: err %v, want ErrNotFinite", s, err)
+		}
+	}
+	for _, s := range []float64{0, 0.5} {
+		l, err := NewLayout(LayoutSpec{OdometryScale: true, NoiseRatioStd: s})
+		if err != nil || l.eivVar != s*s {
+			t.Errorf("noise ratio standard deviation %v: variance %v, err %v", s, l.eivVar, err)
 		}
 	}
 }

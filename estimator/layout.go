@@ -98,10 +98,11 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 		l.offset = next()
 	}
 	if spec.OdometryScale {
-		if !(spec.NoiseRatioStd >= 0) || math.IsInf(spec.NoiseRatioStd, 0) {
+		// Its square too: 1e155 is finite, its square is not.
+		l.eivVar = spec.NoiseRatioStd * spec.NoiseRatioStd
+		if !(spec.NoiseRatioStd >= 0) || math.IsInf(l.eivVar, 0) {
 			return Layout{}, fmt.Errorf("noise ratio standard deviation %v: %w", spec.NoiseRatioStd, ErrNotFinite)
 		}
-		l.eivVar = spec.NoiseRatioStd * spec.NoiseRatioStd
 		l.forwardScale, l.turnScale = next(), next()
 	}
 	if spec.RateBias {

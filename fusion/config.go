@@ -439,6 +439,11 @@ func (c Config) CheckBounds() error {
 	if err := c.checkUnits(); err != nil {
 		return err
 	}
+	// 1e100 was taken, and failed most of a depot run's updates as not
+	// positive definite (the compensation's variance s^2 pull^2).
+	if s := c.Calibration.NoiseRatioStd; s > maxNoiseRatioStd {
+		return cfgErr("calibration.noise_ratio_std", "%v is more than %d (the ratio of the true to the configured wheel noise not known at all: fit the noise with reckon tune)", s, maxNoiseRatioStd)
+	}
 	for i, sen := range c.Sensors {
 		// Validate takes any positive parameter and ignores it without
 		// a robust loss; a new robot is held to values that mean one.

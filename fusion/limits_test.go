@@ -76,6 +76,23 @@ func TestConfigUpperBounds(t *testing.T) {
 			t.Errorf("%s at %g m: %v", c.field, maxFieldM, err)
 		}
 	}
+	// calibration.noise_ratio_std: 1e100 was taken by CheckBounds, and
+	// failed most of a depot run's updates as not positive definite.
+	for _, v := range []float64{maxNoiseRatioStd + 0.5, 1e100} {
+		cfg := threeWheels()
+		cfg.Calibration.Scale, cfg.Calibration.NoiseRatioStd = true, v
+		if err := cfg.CheckBounds(); !errors.Is(err, ErrConfig) || !strings.Contains(err.Error(), "calibration.noise_ratio_std") || !strings.Contains(err.Error(), "is more than") {
+			t.Errorf("calibration.noise_ratio_std %g: %v", v, err)
+		}
+		if _, err := New(cfg); err != nil {
+			t.Errorf("New refuses calibration.noise_ratio_std %g, as an old journal may hold it: %v", v, err)
+		}
+	}
+	cfg := threeWheels()
+	cfg.Calibration.Scale, cfg.Calibration.NoiseRatioStd = true, maxNoiseRatioStd
+	if err := cfg.CheckBounds(); err != nil {
+		t.Errorf("calibration.noise_ratio_std at its limit: %v", err)
+	}
 }
 
 // TestConfigAnglesInDegrees: an angle of a configuration beyond a full

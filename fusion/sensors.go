@@ -133,6 +133,12 @@ type Calibration struct {
 	NoiseRatioStd float64
 }
 
+// maxNoiseRatioStd is the most Calibration.NoiseRatioStd a new robot may
+// have (Config.CheckBounds): a true noise spread evenly from none to 20
+// times the configured has a ratio whose departure from 1 has a root mean
+// square of 10.7; beyond that the noise is not known at all.
+const maxNoiseRatioStd = 10
+
 // fixDim returns the dimension of a fix kind's full measurement (a
 // landmark's range and bearing).
 func fixDim(k FixKind) int {
@@ -287,6 +293,12 @@ func (c *Config) checkCalibration() error {
 		if !finiteAll(v.v) || v.v < 0 || v.positive && v.v == 0 {
 			return cfgErr(v.name, "%v must be a finite positive value", v.v)
 		}
+	}
+	// Its square is the variance the turn scale's updates add: past
+	// float64's range every update taking a pull out failed (CheckBounds
+	// holds a new robot to maxNoiseRatioStd).
+	if math.IsInf(k.NoiseRatioStd*k.NoiseRatioStd, 0) {
+		return cfgErr("calibration.noise_ratio_std", "%v squared is not a finite variance", k.NoiseRatioStd)
 	}
 	if k.RateBias {
 		ok := c.IMU == IMUAbsolute

@@ -16,18 +16,18 @@ import "gonum.org/v1/gonum/mat"
 // covariance). The gain is the solve's for equal travels (the wheels'
 // weights all scale with travel, and the no-side-slip row's with their
 // mean), so for a differential drive, whose rows determine the step
-// exactly, it is exact. 0 without counting wheels, and in imu_mode
-// rotation, where the IMU, not the wheels, reports the turn.
+// exactly, it is exact. 0 unless every wheel counts (a sample of counts
+// is refused while any wheel's counts_per_m is unset, so such a robot's
+// travels are never counts), and in imu_mode rotation, where the IMU, not
+// the wheels, reports the turn.
 func (c *Config) countsTurnVar() float64 {
-	if c.IMU == IMURotation {
+	if c.IMU == IMURotation || len(c.Wheels) == 0 {
 		return 0
 	}
-	counting := false
 	for _, w := range c.Wheels {
-		counting = counting || w.CountsPerM > 0
-	}
-	if !counting {
-		return 0
+		if !(w.CountsPerM > 0) {
+			return 0
+		}
 	}
 	k := len(c.Wheels)
 	rows := c.layoutRows()
@@ -55,9 +55,6 @@ func (c *Config) countsTurnVar() float64 {
 	}
 	var sum float64
 	for i, w := range c.Wheels {
-		if w.CountsPerM <= 0 {
-			continue
-		}
 		// The turn's gain on wheel i: (N^-1 a_i w_i)[turn].
 		g := wt[i] * (inv.At(2, 0)*a.At(i, 0) + inv.At(2, 1)*a.At(i, 1) + inv.At(2, 2)*a.At(i, 2))
 		sum += g * g / (12 * w.CountsPerM * w.CountsPerM)

@@ -11,13 +11,17 @@ import (
 // for a floored reading), enters divided by the track: 2 / (12 c^2 b^2).
 // Three wheels, two parallel at +-b/2 and one lateral wheel, give the same
 // turn from the parallel pair (the lateral wheel's row fixes only the
-// sideways travel). Travels in metres or imu_mode rotation: none.
+// sideways travel). Travels in metres or imu_mode rotation: none. Nor
+// when one wheel counts and the other does not: a sample of counts is
+// refused while any wheel lacks counts_per_m, so that robot's travels
+// are never quantised (its IMU's variance had 1 / (12 c^2 b^2) added).
 func TestCountsTurnVar(t *testing.T) {
 	const c, b = 179.0, 0.45
 	diff := []Wheel{{Name: "l", YM: b / 2, CountsPerM: c}, {Name: "r", YM: -b / 2, CountsPerM: c}}
 	want := 2 / (12 * c * c * b * b)
 	three := append(append([]Wheel(nil), diff...), Wheel{Name: "s", XM: -0.2, DirectionRad: math.Pi / 2, CountsPerM: c})
 	metres := []Wheel{{Name: "l", YM: b / 2}, {Name: "r", YM: -b / 2}}
+	mixed := []Wheel{{Name: "l", YM: b / 2, CountsPerM: c}, {Name: "r", YM: -b / 2}}
 	for _, tc := range []struct {
 		name string
 		cfg  Config
@@ -26,6 +30,7 @@ func TestCountsTurnVar(t *testing.T) {
 		{"differential", Config{Wheels: diff, NoSideSlip: true, IMU: IMUAbsolute}, want},
 		{"two and a lateral", Config{Wheels: three, IMU: IMUAbsolute}, want},
 		{"metres", Config{Wheels: metres, NoSideSlip: true, IMU: IMUAbsolute}, 0},
+		{"one wheel counting", Config{Wheels: mixed, NoSideSlip: true, IMU: IMUAbsolute}, 0},
 		{"rotation", Config{Wheels: diff, NoSideSlip: true, IMU: IMURotation}, 0},
 	} {
 		cfg := tc.cfg.withDefaults()

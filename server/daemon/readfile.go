@@ -17,13 +17,21 @@ const MaxFlagFileBytes = 1 << 20
 
 // ReadFlagFile reads the file at path that a flag names: a regular file,
 // or a named pipe (a shell's process substitution, <(...), hands a secret
-// over so). Anything else is refused naming what it is, before a byte is
-// read: a device such as /dev/zero would never end. A named pipe that no
+// over so). Anything else is refused naming what it is, before it is
+// opened: a device such as /dev/zero would never end, and opening a serial
+// port may reset the controller on it. A named pipe that no
 // process writes to is refused at once, and one whose writer does not
 // close it within pipeWait: before, the open waited for a writer for
 // ever, and SIGTERM did not end the wait. So is a file past
 // MaxFlagFileBytes.
 func ReadFlagFile(path string) ([]byte, error) {
+	// What it is, before it is opened: opening a device may act (a serial
+	// port's open resets many a robot's controller, a watchdog's arms
+	// it), and a socket cannot be opened at all (ENXIO, naming nothing).
+	// The opened file is checked again below.
+	if st, err := os.Stat(path); err == nil && !st.Mode().IsRegular() && st.Mode()&fs.ModeNamedPipe == 0 {
+		return nil, fmt.Errorf("%s is %s, not a regular file", path, fileKind(st.Mode()))
+	}
 	// O_NONBLOCK: the open of a named pipe returns at once, and its reads
 	// wait in Go's poller, with a deadline.
 	f, err := os.OpenFile(path, os.O_RDONLY|syscall.O_NONBLOCK, 0)

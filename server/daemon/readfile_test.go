@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"net"
 	"os"
 	"path/filepath"
 	"strings"
@@ -10,8 +11,8 @@ import (
 
 // TestReadFlagFile: a regular file and a named pipe whose writer writes
 // and closes it are read (a shell's <(...) hands a secret over so); a
-// named pipe no process writes to, a directory, a device and a file past
-// MaxFlagFileBytes are refused naming what they are.
+// named pipe no process writes to, a directory, a device, a socket and a
+// file past MaxFlagFileBytes are refused naming what they are.
 func TestReadFlagFile(t *testing.T) {
 	dir := t.TempDir()
 	plain := filepath.Join(dir, "token")
@@ -46,6 +47,16 @@ func TestReadFlagFile(t *testing.T) {
 	}
 	if string(b) != "from-a-pipe" {
 		t.Errorf("a pipe with a writer: %q", b)
+	}
+	// A Unix socket: its open failed with "no such device or address",
+	// naming nothing; it is refused as what it is before any open (as a
+	// device is, whose open may reset the controller on a serial port).
+	sock := filepath.Join(dir, "sock")
+	if l, err := net.Listen("unix", sock); err == nil {
+		defer l.Close()
+		if _, err := ReadFlagFile(sock); err == nil || !strings.Contains(err.Error(), sock+" is a socket, not a regular file") {
+			t.Errorf("a socket: %v", err)
+		}
 	}
 	big := filepath.Join(dir, "big")
 	os.WriteFile(big, make([]byte, MaxFlagFileBytes+1), 0o600)

@@ -55,6 +55,11 @@ func (r robotFlags) Set(v string) error {
 // batch and its reserve.
 const maxSegmentBytes = 512 << 20
 
+// maxMessageBytes bounds -max-message-bytes as server.ServiceOptions does
+// (half a journal record, so that a sample fits its record), checked
+// here with the other flags so that the error names the flag.
+const maxMessageBytes = journal.MaxRecordBytes / 2
+
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := flag.NewFlagSet("reckond", flag.ContinueOnError)
 	// The usage goes to standard output for -h, which is no failure, and
@@ -129,7 +134,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		{"max-ingest-streams", int64(lim.MaxIngestStreams), 1, 1 << 20},
 		{"max-connections", int64(lim.MaxConnections), 1, 1 << 20},
 		{"max-http-connections", int64(lim.MaxHTTPConnections), 2, 1 << 20},
-		{"max-message-bytes", int64(*maxMsg), 1 << 10, 1 << 40},
+		{"max-message-bytes", int64(*maxMsg), 1 << 10, maxMessageBytes},
 		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
 	} {
 		if b.v < b.lo || b.v > b.hi {

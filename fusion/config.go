@@ -56,7 +56,9 @@ type Noise struct {
 	StepForwardVarM2PerS float64
 	StepLeftVarM2PerS    float64
 	StepTurnVarRad2PerS  float64
-	// IMUHeadingVarRad2: variance of one absolute IMU heading reading.
+	// IMUHeadingVarRad2: variance of one absolute IMU heading reading, the
+	// IMU's own; the update adds the latest counts' quantisation
+	// (Config.countsTurnVar).
 	IMUHeadingVarRad2 float64
 	// IMUTurnVarRad2PerRad: variance of an IMU turn row per radian turned.
 	IMUTurnVarRad2PerRad float64

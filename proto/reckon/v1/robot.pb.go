@@ -1064,7 +1064,9 @@ type NoiseModel struct {
 	StepLeftVarM2PerM float64 `protobuf:"fixed64,6,opt,name=step_left_var_m2_per_m,json=stepLeftVarM2PerM,proto3" json:"step_left_var_m2_per_m,omitempty"`
 	// Body-step turn variance per radian (1e-4).
 	StepTurnVarRad2PerRad float64 `protobuf:"fixed64,7,opt,name=step_turn_var_rad2_per_rad,json=stepTurnVarRad2PerRad,proto3" json:"step_turn_var_rad2_per_rad,omitempty"`
-	// Variance of one absolute IMU heading reading (2.5e-5).
+	// Variance of one absolute IMU heading reading (2.5e-5), the IMU's own:
+	// the service adds the variance that the wheels' latest counts'
+	// quantisation gives the counted heading it is compared with.
 	ImuHeadingVarRad2 float64 `protobuf:"fixed64,8,opt,name=imu_heading_var_rad2,json=imuHeadingVarRad2,proto3" json:"imu_heading_var_rad2,omitempty"`
 	// Variance of the IMU turn row per radian turned (1e-6).
 	ImuTurnVarRad2PerRad float64 `protobuf:"fixed64,9,opt,name=imu_turn_var_rad2_per_rad,json=imuTurnVarRad2PerRad,proto3" json:"imu_turn_var_rad2_per_rad,omitempty"`

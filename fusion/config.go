@@ -335,6 +335,7 @@ func (c Config) withDefaults() Config {
 	}
 	def(&c.Calibration.ScaleStd, 0.1)
 	def(&c.Calibration.RateBiasStdRadPerS, 0.01)
+	def(&c.Calibration.NoiseRatioStd, 0.5)
 	return c
 }
 

@@ -163,6 +163,7 @@ type ocRun struct {
 	posts     []ocPost
 	start     estimator.Pose
 	setDownUs int64 // -1: no kidnap
+	liftUs    int64 // the carry's start; -1: no kidnap
 }
 
 // ocGrade is the ground's grade along row j at x.
@@ -193,7 +194,7 @@ func ocSimulate(seed uint64, durS float64, e ocErrors) ocRun {
 	imuZero := 2 * math.Pi * r.Float64()
 
 	var run ocRun
-	run.setDownUs = -1
+	run.setDownUs, run.liftUs = -1, -1
 	for j := 0; j <= ocRows; j++ {
 		for i := 0; i <= int(ocRowLenM/ocPostGapM); i++ {
 			p := ocPost{id: ocPostName(i, j), mapX: float64(i) * ocPostGapM, mapY: (float64(j) - 0.5) * ocRowGapM}
@@ -246,7 +247,7 @@ func ocSimulate(seed uint64, durS float64, e ocErrors) ocRun {
 	if e.kidnap {
 		liftUs = int64((0.5 + 0.2*r.Float64()) * durS * 1e6)
 		carryUs = int64((6 + 6*r.Float64()) * 1e6)
-		run.setDownUs = liftUs + carryUs
+		run.setDownUs, run.liftUs = liftUs+carryUs, liftUs
 	}
 
 	const h = ocStepUs * 1e-6

@@ -26,7 +26,10 @@ import (
 )
 
 func main() {
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	// SIGHUP (the terminal closed, or an operator who expects a reload)
+	// stops the service gracefully as SIGTERM does: unhandled, it ended
+	// the process at once, without a word or a graceful stop.
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM, syscall.SIGHUP)
 	defer stop()
 	if err := run(ctx, os.Args[1:], os.Stdout, os.Stderr); err != nil {
 		fmt.Fprintln(os.Stderr, "reckond:", err)
@@ -55,9 +58,8 @@ func (r robotFlags) Set(v string) error {
 // batch and its reserve.
 const maxSegmentBytes = 512 << 20
 
-// maxMessageBytes bounds -max-message-bytes as server.ServiceOptions does
-// (half a journal record, so that a sample fits its record), checked
-// here with the other flags so that the error names the flag.
+// maxMessageBytes bounds -max-message-bytes: half a journal record, so
+// that a sample always fits its record (server.ServiceOptions).
 const maxMessageBytes = journal.MaxRecordBytes / 2
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -161,7 +163,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return fmt.Errorf("fsync: %q is not each or interval", *fsync)
 	}
 	if *tokenFile != "" {
-		b, err := os.ReadFile(*tokenFile)
+		b, err := daemon.ReadFlagFile(*tokenFile)
 		if err != nil {
 			return fmt.Errorf("token-file: %w", err)
 		}
@@ -170,7 +172,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		}
 	}
 	for id, file := range robots {
-		b, err := os.ReadFile(file)
+		b, err := daemon.ReadFlagFile(file)
 		if err != nil {
 			return fmt.Errorf("robot %s: %w", id, err)
 		}

@@ -312,8 +312,12 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 14 reads 13 to 5: a version 13 snapshot lacks the
-	// sensors' robust and robust_parameter, 12
+	// knows (version 19 reads 18 to 5: a version 18 snapshot lacks the
+	// estimates' turn_scale_eiv_consider, 17 has the turn scale's
+	// errors-in-variables moments over the pose alone, 16 lacks the
+	// odometry entries' slip_factor, 15 held_reseed_marker_key, 14 the
+	// pose fixes' marker_key and move_unconfirmed, 13 the sensors' robust
+	// and robust_parameter, 12
 	// imu_unchanged_heading_rad, 11 the long turn anchor, 10 jump_counts, 9
 	// the landmark blocks and the measurements' mount error states, 8 the
 	// turn scale's

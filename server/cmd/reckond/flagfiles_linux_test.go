@@ -3,8 +3,13 @@ package main
 import (
 	"bytes"
 	"context"
+	"fmt"
 	"os"
+	"os/exec"
+	"os/signal"
 	"path/filepath"
+	"regexp"
+	"strconv"
 	"strings"
 	"syscall"
 	"testing"
@@ -66,6 +71,9 @@ func TestFlagFilesNotRegular(t *testing.T) {
 // exit 0 after its graceful stop. Before, the signal was not handled and
 // ended the process at once, without a word in its log.
 func TestHangupStopsGracefully(t *testing.T) {
+	if signal.Ignored(syscall.SIGHUP) {
+		t.Skip("SIGHUP is ignored here (under nohup?), so in the child too, which keeps it so (TestHangupIgnoredUnderNohup)")
+	}
 	cmd, logs := startChild(t, 1024, "-listen 127.0.0.1:0 -journal "+t.TempDir())
 	waitServing(t, logs, `msg=serving`)
 	cmd.Process.Signal(syscall.SIGHUP)
@@ -74,5 +82,46 @@ func TestHangupStopsGracefully(t *testing.T) {
 	}
 	if !strings.Contains(logs.String(), "shutting down") {
 		t.Errorf("no graceful stop in the log:\n%s", logs.String())
+	}
+}
+
+// TestHangupIgnoredUnderNohup: reckond started by nohup(1), SIGHUP
+// ignored, keeps it ignored once serving (/proc/PID/status, SigIgn, bit
+// 0 for signal 1: proc(5)), so the terminal's closing leaves it running
+// as nohup means. Before, signal.NotifyContext installed a handler in the
+// ignore's place (os/signal's documentation says so) and the hangup
+// stopped the service. SIGTERM still stops it with exit 0.
+func TestHangupIgnoredUnderNohup(t *testing.T) {
+	nohup, err := exec.LookPath("nohup")
+	if err != nil {
+		t.Skip("no nohup")
+	}
+	cmd := exec.Command(nohup, os.Args[0], "-test.run=^$")
+	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=1024", "RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -journal "+t.TempDir())
+	logs := &lockedBuffer{}
+	cmd.Stderr = logs
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { cmd.Process.Kill() })
+	waitServing(t, logs, `msg=serving`)
+	status, err := os.ReadFile(fmt.Sprintf("/proc/%d/status", cmd.Process.Pid))
+	if err != nil {
+		t.Skip(err)
+	}
+	m := regexp.MustCompile(`(?m)^SigIgn:\s*([0-9a-f]+)$`).FindSubmatch(status)
+	if m == nil {
+		t.Fatalf("no SigIgn in /proc/PID/status:\n%s", status)
+	}
+	ign, err := strconv.ParseUint(string(m[1]), 16, 64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if ign&1 == 0 {
+		t.Errorf("SIGHUP no longer ignored under nohup (SigIgn %s): a hangup would stop the service", m[1])
+	}
+	cmd.Process.Signal(syscall.SIGTERM)
+	if err := cmd.Wait(); err != nil {
+		t.Fatalf("reckond after SIGTERM: %v\n%s", err, logs.String())
 	}
 }

@@ -28,8 +28,15 @@ import (
 func main() {
 	// SIGHUP (the terminal closed, or an operator who expects a reload)
 	// stops the service gracefully as SIGTERM does: unhandled, it ended
-	// the process at once, without a word or a graceful stop.
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM, syscall.SIGHUP)
+	// the process at once, without a word or a graceful stop. Under nohup
+	// (SIGHUP ignored) it stays ignored: Notify would install a handler in
+	// the ignore's place (os/signal), and the closing terminal would stop
+	// the service that nohup was to keep.
+	sigs := []os.Signal{os.Interrupt, syscall.SIGTERM}
+	if !signal.Ignored(syscall.SIGHUP) {
+		sigs = append(sigs, syscall.SIGHUP)
+	}
+	ctx, stop := signal.NotifyContext(context.Background(), sigs...)
 	defer stop()
 	if err := run(ctx, os.Args[1:], os.Stdout, os.Stderr); err != nil {
 		fmt.Fprintln(os.Stderr, "reckond:", err)

@@ -129,7 +129,8 @@ type Calibration struct {
 	// (DEVELOPERS.md, "Design: State"). The default covers a true noise
 	// anywhere from none to 1.5 times the configured (the root mean square
 	// of the ratio's departure from 1 over that range); a noise fitted
-	// with `reckon tune` from long runs is known better.
+	// with `reckon tune` from long runs is known better. 0 takes the
+	// default; a tiny value (1e-9) leaves the spread out.
 	NoiseRatioStd float64
 }
 

@@ -874,8 +874,9 @@ type OdometryCalibration struct {
 	// deviation of the ratio of its true noise to the configured, which
 	// the turn scale's compensation of the pull of that noise carries as a
 	// consider parameter, dimensionless (default 0.5: a true noise anywhere
-	// from none to 1.5 times the configured). A new robot takes at most 10;
-	// one whose square is not a finite number is refused.
+	// from none to 1.5 times the configured; 0 or unset takes it, so a value
+	// such as 1e-9 is how to leave the spread out). A new robot takes at
+	// most 10; one whose square is not a finite number is refused.
 	NoiseRatioStd float64 `protobuf:"fixed64,8,opt,name=noise_ratio_std,json=noiseRatioStd,proto3" json:"noise_ratio_std,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

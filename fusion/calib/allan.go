@@ -21,7 +21,10 @@
 // The filter models an IMU heading reading as the robot's heading plus the
 // IMU's zero (offset) plus white noise of variance imu_heading_var_rad2, the
 // offset walking randomly at imu_offset_var_rad2_per_s (DEVELOPERS.md,
-// "Design: Process noise"). For a heading integrated from a gyro:
+// "Design: Process noise"); the filter adds the wheels' latest counts'
+// quantisation to that variance itself (the coarse encoders, same
+// section), so the IMU's own figure is what belongs here. For a heading
+// integrated from a gyro:
 //
 //   - imu_heading_var_rad2 = Q^2: white noise on each heading reading is the
 //     -1 slope, sigma(tau) = sqrt(3) Q / tau (IEEE Std 952-1997, Annex C).

@@ -32,6 +32,16 @@ func closeMats(t *testing.T, what string, got, want *mat.Dense, tol float64) {
 	}
 }
 
+// eivMeasurement returns a pose fix with no mount near f's pose, or an
+// IMU heading near its heading and offset.
+func eivMeasurement(f *Filter, rng *rand.Rand, pose bool) Measurement {
+	if pose {
+		return Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
+			R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
+	}
+	return Measurement{Kind: KindIMUHeading, Z: [3]float64{Wrap(f.st.x[IHead] + f.st.x[IOffset] + 0.01*rng.NormFloat64())}, R: [9]float64{2e-5}}
+}
+
 // TestPredictEIVMatrixForm: PredictReported moves the moments by
 // M' = F M F^T - D R G^T, written out by hand in predictEIV; here the same
 // products in gonum mat, with F and the step Jacobian from ArcJacobians
@@ -113,17 +123,14 @@ func TestUpdateEIVMatrixForm(t *testing.T) {
 		twin := *f
 		twin.st.eiv = EIVMoments{}
 		ts, n := f.Layout().TurnScale(), f.st.n
-		var m Measurement
+		m := eivMeasurement(f, rng, k%2 == 0)
 		var h *mat.Dense
 		if k%2 == 0 {
-			m = Measurement{Kind: KindPose, Z: [3]float64{f.st.x[IX] + 0.02*rng.NormFloat64(), f.st.x[IY] + 0.02*rng.NormFloat64(), f.st.x[IHead] + 0.01*rng.NormFloat64()},
-				R: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}}
 			h = mat.NewDense(3, n, nil)
 			for a := 0; a < 3; a++ {
 				h.Set(a, a, 1)
 			}
 		} else {
-			m = Measurement{Kind: KindIMUHeading, Z: [3]float64{Wrap(f.st.x[IHead] + f.st.x[IOffset] + 0.01*rng.NormFloat64())}, R: [9]float64{2e-5}}
 			h = mat.NewDense(1, n, nil)
 			h.Set(0, IHead, 1)
 			h.Set(0, IOffset, 1)
@@ -248,6 +255,140 @@ func TestResetKeepsOffsetEIV(t *testing.T) {
 			}
 			if got := f.st.eiv[a*EIVDim+b]; got != want {
 				t.Errorf("M[%d][%d] = %g after the reset, want %g", a, b, got, want)
+			}
+		}
+	}
+}
+
+// considerFilter is eivFilter with the consider parameter's standard
+// deviation 0.5 and a consider column psi of the compensation, its part
+// 0.25 psi psi^T in P.
+func considerFilter(t *testing.T, rng *rand.Rand) *Filter {
+	t.Helper()
+	f := eivFilter(t, rng)
+	f.layout.eivVar = 0.25
+	n := f.st.n
+	for i := 0; i < n; i++ {
+		f.st.eivc[i] = 0.05 * rng.NormFloat64()
+	}
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			f.st.p[i*stride+j] += f.layout.eivVar * f.st.eivc[i] * f.st.eivc[j]
+		}
+	}
+	return f
+}
+
+// augmented returns the covariance of the state and the consider
+// parameter d: [[P, s^2 psi], [s^2 psi^T, s^2]], s^2 the layout's
+// eivVar.
+func augmented(f *Filter) *mat.Dense {
+	n, v := f.st.n, f.layout.eivVar
+	a := mat.NewDense(n+1, n+1, nil)
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			a.Set(i, j, f.st.p[i*stride+j])
+		}
+		a.Set(i, n, v*f.st.eivc[i])
+		a.Set(n, i, v*f.st.eivc[i])
+	}
+	a.Set(n, n, v)
+	return a
+}
+
+// TestUpdateEIVConsider: the compensation's consider column through an
+// update (a pose fix and an IMU heading on 7 states). The true pull is
+// (1 + d) times the one taken out, d the consider parameter of variance
+// s^2 (LayoutSpec.NoiseRatioStd squared), so the update's error is e' = (I - K H) e + K w + d pull
+// u_s: the augmented state (x, d) moves by A = [[I - K H, pull u_s], [0,
+// 1]] with gain [K; 0], and its covariance by the Joseph form A P A^T +
+// [K; 0] R [K; 0]^T (Bar-Shalom, Li and Kirubarajan 2001, eq.
+// 5.2.3-18; a consider parameter's gain row is zero, S. F. Schmidt 1966,
+// from memory), in gonum mat. The filter's P must be its state block and
+// s^2 psi its column of d. The gain is the filter's, checked
+// against the Kalman one in TestUpdateEIVMatrixForm; the pull is the
+// difference to a twin without moments, checked there too.
+func TestUpdateEIVConsider(t *testing.T) {
+	rng := rand.New(rand.NewPCG(49, 50))
+	for k := 0; k < 20; k++ {
+		f := considerFilter(t, rng)
+		twin := *f
+		twin.st.eiv = EIVMoments{}
+		ts, n := f.Layout().TurnScale(), f.st.n
+		m := eivMeasurement(f, rng, k%2 == 0)
+		before := augmented(f)
+		if _, err := f.Update(&m, NoGate()); err != nil {
+			t.Fatal(err)
+		}
+		if _, err := twin.Update(&m, NoGate()); err != nil {
+			t.Fatal(err)
+		}
+		pull := twin.st.x[ts] - f.st.x[ts]
+		if pull == 0 {
+			t.Fatalf("case %d: no pull", k)
+		}
+		d := m.Kind.Dim()
+		h := mat.NewDense(d, n+1, nil)
+		for j := 0; j < d; j++ {
+			for i := 0; i < n; i++ {
+				h.Set(j, i, f.h[j*stride+i])
+			}
+		}
+		gain := mat.NewDense(n+1, d, nil)
+		for i := 0; i < n; i++ {
+			for j := 0; j < d; j++ {
+				gain.Set(i, j, f.k[i*3+j])
+			}
+		}
+		r := mat.NewDense(d, d, nil)
+		for a := 0; a < d; a++ {
+			for b := 0; b < d; b++ {
+				r.Set(a, b, m.R[a*3+b])
+			}
+		}
+		a := mat.NewDense(n+1, n+1, nil)
+		a.Mul(gain, h)
+		a.Scale(-1, a)
+		for i := 0; i <= n; i++ {
+			a.Set(i, i, a.At(i, i)+1)
+		}
+		a.Set(ts, n, pull)
+		var ap, want, kr, krk mat.Dense
+		ap.Mul(a, before)
+		want.Mul(&ap, a.T())
+		kr.Mul(gain, r)
+		krk.Mul(&kr, gain.T())
+		want.Add(&want, &krk)
+		closeMats(t, fmt.Sprintf("case %d (%v): augmented covariance after the update", k, m.Kind), augmented(f), &want, 1e-9)
+	}
+}
+
+// TestPredictEIVConsider: a prediction moves the consider column as a
+// column of P, psi' = F psi (F from Transition, checked against finite
+// differences in filter_test.go), whatever the report; the augmented
+// covariance's d block is untouched (the parameter is constant), so P
+// keeps s^2 psi' psi'^T with the rest.
+func TestPredictEIVConsider(t *testing.T) {
+	rng := rand.New(rand.NewPCG(51, 52))
+	for k := 0; k < 10; k++ {
+		f := considerFilter(t, rng)
+		n := f.st.n
+		u := Step{0.004 * rng.Float64(), 0.001 * rng.NormFloat64(), 0.01 * rng.NormFloat64()}
+		var tr [MaxStates * MaxStates]float64
+		from := f.st
+		f.Transition(&tr, &from, u, 0.005)
+		want := make([]float64, n)
+		for i := 0; i < n; i++ {
+			for j := 0; j < n; j++ {
+				want[i] += tr[i*stride+j] * from.eivc[j]
+			}
+		}
+		cu := [9]float64{1e-6, 0, 0, 0, 1e-6, 0, 0, 0, 1e-6}
+		var q [MaxStates]float64
+		f.PredictReported(u, &cu, &cu, 0.005, &q)
+		for i := 0; i < n; i++ {
+			if math.Abs(f.st.eivc[i]-want[i]) > 1e-12 {
+				t.Errorf("case %d: psi[%d] = %.12g, want %.12g", k, i, f.st.eivc[i], want[i])
 			}
 		}
 	}

@@ -38,6 +38,16 @@ type State struct {
 	// offset's row and column are zero without one; all of it is zero
 	// without a turn scale.
 	eiv [eivSize]float64
+	// eivc is the compensation's consider column psi: the sensitivity of
+	// the estimate's error to d, the unknown relative error of the
+	// noise of the reported steps that PredictReported is given (the pull
+	// Update takes out is computed from it; the true one is (1 + d) times
+	// that), a consider parameter of mean 0 and standard deviation
+	// LayoutSpec.NoiseRatioStd, s. p includes s^2 psi psi^T, and the
+	// covariance of the state with d is s^2 psi (DEVELOPERS.md, "Design:
+	// State"). Zero until an update takes a pull out; entries past n are
+	// zero.
+	eivc [MaxStates]float64
 }
 
 // EIVDim is the order of the errors-in-variables moments (State's eiv):
@@ -87,6 +97,7 @@ func (s *State) CopyFrom(src *State) {
 	// columns past n between rows are zero in both.
 	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
 	s.eiv = src.eiv
+	copy(s.eivc[:n], src.eivc[:n])
 }
 
 // EIV returns the errors-in-variables moments of the turn scale (State's
@@ -95,6 +106,18 @@ func (s *State) EIV() [eivSize]float64 { return s.eiv }
 
 // SetEIV sets them (a state read back from a snapshot).
 func (s *State) SetEIV(m [eivSize]float64) { s.eiv = m }
+
+// EIVConsider returns the consider column of the turn scale's
+// compensation (State's eivc; entries past Size() are zero, all of it
+// zero without a turn scale).
+func (s *State) EIVConsider() [MaxStates]float64 { return s.eivc }
+
+// SetEIVConsider sets it (a state read back from a snapshot); entries
+// past Size() are taken as zero.
+func (s *State) SetEIVConsider(c [MaxStates]float64) {
+	s.eivc = [MaxStates]float64{}
+	copy(s.eivc[:s.n], c[:s.n])
+}
 
 // SetPacked makes s the state of size n with angular states angles whose
 // packed form (Filter.Pack) is src, copying only what is in use when s
@@ -109,8 +132,10 @@ func (s *State) SetPacked(n int, angles uint16, src []float64) {
 		copy(s.p[i*stride:i*stride+n], src[n+i*n:n+(i+1)*n])
 	}
 	s.eiv = [eivSize]float64{}
-	if len(src) >= n+n*n+eivSize {
+	s.eivc = [MaxStates]float64{}
+	if len(src) >= n+n*n+eivSize+n {
 		copy(s.eiv[:], src[n+n*n:])
+		copy(s.eivc[:n], src[n+n*n+eivSize:])
 	}
 }
 
@@ -289,18 +314,19 @@ func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
 
 // PackedSize returns the length of the filter's packed estimate: the mean
 // and the covariance, N + N*N values, and with a turn scale the 16
-// errors-in-variables moments (State's eiv).
+// errors-in-variables moments (State's eiv) and the N values of their
+// consider column (eivc).
 func (f *Filter) PackedSize() int {
 	n := f.st.n + f.st.n*f.st.n
 	if f.layout.turnScale >= 0 {
-		n += eivSize
+		n += eivSize + f.st.n
 	}
 	return n
 }
 
 // Pack writes the estimate into dst (PackedSize values: the mean, then the
-// covariance row-major, then the moments), the compact form a history of
-// checkpoints keeps.
+// covariance row-major, then the moments and their consider column), the
+// compact form a history of checkpoints keeps.
 func (f *Filter) Pack(dst []float64) {
 	n := f.st.n
 	copy(dst[:n], f.st.x[:n])
@@ -309,6 +335,7 @@ func (f *Filter) Pack(dst []float64) {
 	}
 	if f.layout.turnScale >= 0 {
 		copy(dst[n+n*n:n+n*n+eivSize], f.st.eiv[:])
+		copy(dst[n+n*n+eivSize:n+n*n+eivSize+n], f.st.eivc[:n])
 	}
 }
 
@@ -322,6 +349,7 @@ func (f *Filter) Unpack(src []float64) {
 	}
 	if f.layout.turnScale >= 0 {
 		copy(f.st.eiv[:], src[n+n*n:n+n*n+eivSize])
+		copy(f.st.eivc[:n], src[n+n*n+eivSize:n+n*n+eivSize+n])
 	}
 }
 
@@ -431,6 +459,17 @@ func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[M
 	f.motion(&t, &f.st, u, dtS)
 	if f.layout.turnScale >= 0 && (rep != nil || f.st.eiv != [eivSize]float64{}) {
 		f.predictEIV(&t, rep)
+	}
+	if f.st.eivc != [MaxStates]float64{} {
+		// The consider column moves as a column of P: psi' = F psi.
+		c := &f.st.eivc
+		var d [3]float64
+		for a := 0; a < 3; a++ {
+			for k := 0; k < t.nc; k++ {
+				d[a] += t.e[a][k] * c[t.cols[k]]
+			}
+		}
+		c[IX], c[IY], c[IHead] = c[IX]+d[0], c[IY]+d[1], c[IHead]+d[2]
 	}
 	n := f.st.n
 	np := t.c.advance(f.st.Pose(), t.u)
@@ -553,6 +592,7 @@ func (f *Filter) decay(dtS float64) {
 		phi := phis[k]
 		for i := b.at; i < b.at+b.Dim; i++ {
 			f.st.x[i] *= phi
+			f.st.eivc[i] *= phi
 			for j := 0; j < n; j++ {
 				P[i*stride+j] *= phi
 				P[j*stride+i] *= phi
@@ -880,11 +920,59 @@ func (f *Filter) correct(m *Measurement, v *[3]float64) error {
 	}
 	f.st.wrapAngles()
 	f.joseph(n, d)
+	if f.layout.eivVar > 0 && (pull != 0 || f.st.eivc != [MaxStates]float64{}) {
+		f.considerEIV(n, d, pull)
+	}
 	if !cholesky(f.st.p[:], f.chol[:], n, stride) {
 		f.st.CopyFrom(&f.saved)
 		return fmt.Errorf("state covariance after %s update: %w", m.Kind, ErrNotPositiveDefinite)
 	}
 	return nil
+}
+
+// considerEIV carries the compensation's own uncertainty through an
+// update that took pull out of the turn scale (correct), after the Joseph
+// form. The true pull is (1 + d) pull, d the consider parameter of
+// variance s^2 (State's eivc, LayoutSpec.NoiseRatioStd), so the update
+// leaves d pull in the scale's error:
+//
+//	e' = (I - K H) e + K w + d pull u_s,   psi' = q + pull u_s,   q = (I - K H) psi
+//
+// (u_s the turn scale's unit vector). The Joseph form has already moved
+// the part s^2 psi psi^T of P to s^2 q q^T; the consider covariance adds
+// s^2 (psi' psi'^T - q q^T), the rest of the Joseph form of the state
+// augmented by d (the Schmidt-Kalman consider covariance: K's row of d is
+// zero; S. F. Schmidt 1966; B. D. Tapley, B. E. Schutz and G. H. Born,
+// Statistical Orbit Determination, 2004, ch. 6, from memory).
+func (f *Filter) considerEIV(n, d int, pull float64) {
+	c := &f.st.eivc
+	// H psi, then q = psi - K (H psi).
+	var hc [3]float64
+	for j := 0; j < d; j++ {
+		h := f.h[j*stride : j*stride+n]
+		for i, v := range h {
+			hc[j] += v * c[i]
+		}
+	}
+	for i := 0; i < n; i++ {
+		k := f.k[i*3 : i*3+d]
+		for j, v := range k {
+			c[i] -= v * hc[j]
+		}
+	}
+	if pull == 0 {
+		return
+	}
+	// psi' psi'^T - q q^T = pull (q u^T + u q^T) + pull^2 u u^T.
+	ts := f.layout.turnScale
+	P := &f.st.p
+	for i := 0; i < n; i++ {
+		v := f.layout.eivVar * pull * c[i]
+		P[i*stride+ts] += v
+		P[ts*stride+i] += v
+	}
+	P[ts*stride+ts] += f.layout.eivVar * pull * pull
+	c[ts] += pull
 }
 
 // joseph replaces P by (I-KH) P (I-KH)^T + K R K^T (R = f.r), formed as
@@ -947,6 +1035,7 @@ func (f *Filter) InitOffset(z, r float64) error {
 		P[s*stride+IOffset] = -P[IHead*stride+s]
 	}
 	P[IOffset*stride+IOffset] = P[IHead*stride+IHead] + r
+	f.st.eivc[IOffset] = -f.st.eivc[IHead]
 	// So do the moments: the offset's covariance with the turn scale is
 	// minus the heading's, and its error minus the heading's (the
 	// reading's own error is independent of both).
@@ -979,6 +1068,7 @@ func (f *Filter) Reset(pose Pose, c *[9]float64) error {
 	off := f.st.eiv[IOffset*eivDim+IOffset] // zero without an offset
 	f.st.eiv = [eivSize]float64{}
 	f.st.eiv[IOffset*eivDim+IOffset] = off
+	f.st.eivc[IX], f.st.eivc[IY], f.st.eivc[IHead] = 0, 0, 0
 	for i := 0; i < 3; i++ {
 		for j := 0; j < 3; j++ {
 			f.st.p[i*stride+j] = c[i*3+j]
@@ -1020,6 +1110,17 @@ func (f *Filter) CorrelateBias(bias [3]int, j *[9]float64) error {
 			P[a*stride+s], P[s*stride+a] = acc, acc
 		}
 	}
+	// So does the consider column: the pose's error is -j times the
+	// bias's.
+	for a := 0; a < 3; a++ {
+		var acc float64
+		for c := 0; c < 3; c++ {
+			if b := bias[c]; b > 0 {
+				acc -= j[a*3+c] * f.saved.eivc[b]
+			}
+		}
+		f.st.eivc[a] = acc
+	}
 	if !cholesky(P[:], f.chol[:], n, stride) {
 		f.st.CopyFrom(&f.saved)
 		return fmt.Errorf("pose correlated with its fix's bias: %w", ErrNotPositiveDefinite)
@@ -1041,6 +1142,7 @@ func (s *State) SeedBlock(at int, c *[4]float64) {
 	}
 	for i := at; i < at+2; i++ {
 		s.x[i] = 0
+		s.eivc[i] = 0
 		for j := 0; j < n; j++ {
 			s.p[i*stride+j], s.p[j*stride+i] = 0, 0
 		}

@@ -57,6 +57,13 @@ type LayoutSpec struct {
 	// RateBias adds the heading-rate bias b_r (rad/s): the true turn gains
 	// b_r dt.
 	RateBias bool
+	// NoiseRatioStd is, with OdometryScale, the standard deviation of the
+	// consider parameter of the turn scale's errors-in-variables
+	// compensation: the reported steps' true noise is (1 + d) times the
+	// one PredictReported is given (State's eivc). 0 takes that noise
+	// for the truth, as the compensation did before it carried its own
+	// uncertainty.
+	NoiseRatioStd float64
 	// Biases are the bias blocks of correlated sensors, in order.
 	Biases []BiasSpec
 }
@@ -71,6 +78,8 @@ type Layout struct {
 	nb                                    int
 	// cons has bit i set for each consider state i (consider).
 	cons uint16
+	// eivVar is LayoutSpec.NoiseRatioStd squared, with a turn scale.
+	eivVar float64
 }
 
 // biasBlock is a placed BiasSpec.
@@ -89,6 +98,10 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 		l.offset = next()
 	}
 	if spec.OdometryScale {
+		if !(spec.NoiseRatioStd >= 0) || math.IsInf(spec.NoiseRatioStd, 0) {
+			return Layout{}, fmt.Errorf("noise ratio standard deviation %v: %w", spec.NoiseRatioStd, ErrNotFinite)
+		}
+		l.eivVar = spec.NoiseRatioStd * spec.NoiseRatioStd
 		l.forwardScale, l.turnScale = next(), next()
 	}
 	if spec.RateBias {

@@ -237,6 +237,21 @@ func (m *Measurement) predict(x []float64, n int, z *[3]float64, H *[3 * MaxStat
 	return nil
 }
 
+// PredictedPose is Predicted for a state of the pose alone, without
+// allocating: it writes h(p) into z and its Jacobian (Dim() x 3,
+// row-major) into h.
+func (m *Measurement) PredictedPose(p Pose, z *[3]float64, h *[9]float64) error {
+	var hh [3 * MaxStates]float64
+	x := [3]float64{p.X, p.Y, p.Heading}
+	if err := m.predict(x[:], 3, z, &hh); err != nil {
+		return err
+	}
+	for i := range m.Kind.Dim() {
+		copy(h[i*3:i*3+3], hh[i*stride:i*stride+3])
+	}
+	return nil
+}
+
 // Predicted returns h(x), the measurement the state x (length 3 to
 // MaxStates) predicts, and its Jacobian (Dim() x len(x), row-major). It
 // allocates; the filter uses the same code without allocating.

@@ -135,3 +135,30 @@ func BenchmarkLandmarkTenMinutes(b *testing.B) {
 		b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*len(ins)), "ns/sample")
 	})
 }
+
+// BenchmarkOrchardCarry: the orchard carrier (orchardsim_test.go) for 150
+// s, once with every error process but the outage and a carry of 6 to 12
+// s to another row (every range-and-bearing fix of the carry refused and
+// tried for a relocation, fusion/relocate.go), and once without the carry.
+// The difference is what a carry costs the robot.
+func BenchmarkOrchardCarry(b *testing.B) {
+	for _, kidnap := range []bool{false, true} {
+		name := "working"
+		if kidnap {
+			name = "carried"
+		}
+		b.Run(name, func(b *testing.B) {
+			e := ocAllErrors()
+			e.kidnap, e.outage = kidnap, false
+			run := ocSimulate(500, 150, e)
+			cfg := ocConfig(&run)
+			b.ReportAllocs()
+			b.ResetTimer()
+			for b.Loop() {
+				if _, err := ocRunOne(500, &run, cfg); err != nil {
+					b.Fatal(err)
+				}
+			}
+		})
+	}
+}

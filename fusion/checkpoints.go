@@ -106,8 +106,9 @@ func (r *Robot) setCheckpoint(c *cpSlot, cp *checkpoint) {
 	cp.est.MeanInto(d[:r.n])
 	cp.est.CovarianceInto(d[r.n:])
 	if k := r.n + r.n*r.n; r.f.PackedSize() > k {
-		m := cp.est.EIV()
+		m, c := cp.est.EIV(), cp.est.EIVConsider()
 		copy(d[k:], m[:])
+		copy(d[k+len(m):k+len(m)+r.n], c[:r.n])
 	}
 	if len(r.lmAt) > 0 {
 		packTable(d[len(d)-lmWords:], &cp.lm)

@@ -56,7 +56,9 @@ type Noise struct {
 	StepForwardVarM2PerS float64
 	StepLeftVarM2PerS    float64
 	StepTurnVarRad2PerS  float64
-	// IMUHeadingVarRad2: variance of one absolute IMU heading reading.
+	// IMUHeadingVarRad2: variance of one absolute IMU heading reading, the
+	// IMU's own; the update adds the latest counts' quantisation
+	// (Config.countsTurnVar).
 	IMUHeadingVarRad2 float64
 	// IMUTurnVarRad2PerRad: variance of an IMU turn row per radian turned.
 	IMUTurnVarRad2PerRad float64
@@ -333,6 +335,7 @@ func (c Config) withDefaults() Config {
 	}
 	def(&c.Calibration.ScaleStd, 0.1)
 	def(&c.Calibration.RateBiasStdRadPerS, 0.01)
+	def(&c.Calibration.NoiseRatioStd, 0.5)
 	return c
 }
 

@@ -69,6 +69,8 @@ func TestConfigValidate(t *testing.T) {
 			}
 		}, "sensors"},
 		{"scale std", func(c *Config) { c.Calibration.ScaleStd = -0.1 }, "calibration.scale_std"},
+		{"noise ratio std", func(c *Config) { c.Calibration.NoiseRatioStd = math.Inf(1) }, "calibration.noise_ratio_std"},
+		{"negative noise ratio std", func(c *Config) { c.Calibration.NoiseRatioStd = -0.5 }, "calibration.noise_ratio_std"},
 		{"rate bias without heading reference", func(c *Config) { c.Sensors = c.Sensors[1:2]; c.Calibration.RateBias = true }, "calibration.rate_bias"},
 		{"step noise per second", func(c *Config) { c.Noise.StepTurnVarRad2PerS = -1 }, "noise.step_turn_var_rad2_per_s"},
 		{"IMU offset walk per radian", func(c *Config) { c.Noise.IMUOffsetVarRad2PerRad = math.Inf(1) }, "noise.imu_offset_var_rad2_per_rad"},

@@ -36,7 +36,10 @@ func (r *Robot) imuMeasurement(z, v float64) (estimator.Measurement, error) {
 	if !finiteAll(v) || v < minVar || v > maxAngleVar {
 		return estimator.Measurement{}, badf("var_rad2 %v is outside the plausible [%g, %g]", v, minVar, maxAngleVar)
 	}
-	return estimator.Measurement{Kind: estimator.KindIMUHeading, Z: [3]float64{estimator.Wrap(z)}, R: [9]float64{v}}, nil
+	// The counted heading the IMU is compared with is off the true one by
+	// the latest counts' quantisation, which does not add up along the way
+	// and so is no process noise (Config.countsTurnVar).
+	return estimator.Measurement{Kind: estimator.KindIMUHeading, Z: [3]float64{estimator.Wrap(z)}, R: [9]float64{v + r.quantTurnVar}}, nil
 }
 
 // odometryHeading applies the absolute IMU heading z that came with the

@@ -202,89 +202,205 @@ func gaussNewton(x estimator.Pose, eq func(estimator.Pose) (*mat.SymDense, *mat.
 		if !ok {
 			return relocation{}
 		}
-		var ch mat.Cholesky
-		if !ch.Factorize(info) {
+		d, ok := solveNormal(info, grad)
+		if !ok {
 			return relocation{}
 		}
-		var d mat.VecDense
-		if err := ch.SolveVecTo(&d, grad); err != nil {
-			return relocation{}
-		}
-		if math.Abs(d.AtVec(0))+math.Abs(d.AtVec(1))+math.Abs(d.AtVec(2)) < relocateStepM {
+		if math.Abs(d[0])+math.Abs(d[1])+math.Abs(d[2]) < relocateStepM {
 			return relocation{pose: x, info: info, cost: cost, dim: dim, ok: true}
 		}
-		x = estimator.Pose{X: x.X + d.AtVec(0), Y: x.Y + d.AtVec(1), Heading: estimator.Wrap(x.Heading + d.AtVec(2))}
+		x = estimator.Pose{X: x.X + d[0], Y: x.Y + d[1], Heading: estimator.Wrap(x.Heading + d[2])}
 	}
 	return relocation{}
 }
 
+// solveNormal returns info^-1 grad for the 3 x 3 normal equations, and
+// false where info is not positive definite or is as ill-conditioned as
+// gonum's Cholesky solve refuses (invertSPD).
+func solveNormal(info *mat.SymDense, grad *mat.VecDense) ([3]float64, bool) {
+	var a [9]float64
+	for p := range 3 {
+		for q := range 3 {
+			a[p*3+q] = info.At(p, q)
+		}
+	}
+	inv, ok := invertSPD(&a, 3)
+	if !ok {
+		return [3]float64{}, false
+	}
+	var d [3]float64
+	for p := range 3 {
+		d[p] = inv[p*3]*grad.AtVec(0) + inv[p*3+1]*grad.AtVec(1) + inv[p*3+2]*grad.AtVec(2)
+	}
+	return d, true
+}
+
 // normalEquations returns J^T W J, J^T W v and v^T W v over the candidates
-// at pose x, with the sum of their dimensions.
+// at pose x, with the sum of their dimensions. A fix is at most 3 x 3, so
+// the products are written out on arrays: a relocation runs this for every
+// start and iteration at each refused fix of a moved robot, and with
+// gonum's matrices (an allocation each) a carry of 6 to 12 s cost the
+// orchard carrier 2 s of CPU (BenchmarkOrchardCarry).
 func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, grad *mat.VecDense, cost float64, dim int, ok bool) {
-	info, grad = mat.NewSymDense(3, nil), mat.NewVecDense(3, nil)
+	var in [9]float64
+	var gr [3]float64
 	for i := range set {
 		c := &set[i]
 		m := &c.meas
 		d := m.Kind.Dim()
-		var hx, hr, o mat.Dense
-		z, ok := seenJacobians(c, x, &hx, &hr)
+		var z [3]float64
+		var hx, hr [9]float64 // d x 3, row-major
+		if !seenJacobiansInto(c, x, &z, &hx, &hr) {
+			return nil, nil, 0, 0, false
+		}
+		// W^-1 = R + Hr O Hr^T, O the odometry's covariance (d x d).
+		var o, wInv [9]float64
+		for a := range d {
+			for b := range 3 {
+				o[a*3+b] = hr[a*3]*c.relCov[b] + hr[a*3+1]*c.relCov[3+b] + hr[a*3+2]*c.relCov[6+b]
+			}
+		}
+		var v [3]float64
+		for a := range d {
+			for b := range d {
+				wInv[a*3+b] = o[a*3]*hr[b*3] + o[a*3+1]*hr[b*3+1] + o[a*3+2]*hr[b*3+2] + m.R[a*3+b]
+			}
+			v[a] = m.Z[a] - z[a]
+			if m.Kind.IsAngle(a) {
+				v[a] = estimator.Wrap(v[a])
+			}
+		}
+		w, ok := invertSPD(&wInv, d)
 		if !ok {
 			return nil, nil, 0, 0, false
 		}
-		o.Mul(&hr, mat.NewDense(3, 3, c.relCov[:]))
-		wInv := mat.NewDense(d, d, nil)
-		wInv.Mul(&o, hr.T())
-		v := mat.NewVecDense(d, nil)
-		for a := 0; a < d; a++ {
-			for b := 0; b < d; b++ {
-				wInv.Set(a, b, wInv.At(a, b)+m.R[a*3+b])
-			}
-			v.SetVec(a, m.Z[a]-z[a])
-			if m.Kind.IsAngle(a) {
-				v.SetVec(a, estimator.Wrap(v.AtVec(a)))
+		// Hx^T W (3 x d), then its products with Hx and v.
+		var hw [9]float64
+		for p := range 3 {
+			for b := range d {
+				var sum float64
+				for a := range d {
+					sum += hx[a*3+p] * w[a*3+b]
+				}
+				hw[p*3+b] = sum
 			}
 		}
-		var w mat.Dense
-		if err := w.Inverse(wInv); err != nil {
-			return nil, nil, 0, 0, false
-		}
-		var hw, hwh mat.Dense
-		var g, wv mat.VecDense
-		hw.Mul(hx.T(), &w)
-		hwh.Mul(&hw, &hx)
-		g.MulVec(&hw, v)
-		wv.MulVec(&w, v)
-		cost += mat.Dot(v, &wv)
-		for a := 0; a < 3; a++ {
-			grad.SetVec(a, grad.AtVec(a)+g.AtVec(a))
-			for b := a; b < 3; b++ {
-				info.SetSym(a, b, info.At(a, b)+(hwh.At(a, b)+hwh.At(b, a))/2)
+		for p := range 3 {
+			for b := range d {
+				gr[p] += hw[p*3+b] * v[b]
 			}
+			for q := p; q < 3; q++ {
+				var pq, qp float64
+				for b := range d {
+					pq += hw[p*3+b] * hx[b*3+q]
+					qp += hw[q*3+b] * hx[b*3+p]
+				}
+				in[p*3+q] += (pq + qp) / 2
+			}
+		}
+		for a := range d {
+			var wv float64
+			for b := range d {
+				wv += w[a*3+b] * v[b]
+			}
+			cost += v[a] * wv
 		}
 		dim += d
 	}
-	return info, grad, cost, dim, true
+	info = mat.NewSymDense(3, nil)
+	for p := range 3 {
+		for q := p; q < 3; q++ {
+			info.SetSym(p, q, in[p*3+q])
+		}
+	}
+	return info, mat.NewVecDense(3, gr[:]), cost, dim, true
 }
 
-// seenJacobians predicts candidate c's measurement from the pose p = x (+)
-// rel^-1 at its stamp, and writes into hx and hr (d x 3, sized or empty)
-// its Jacobians in x and in rel, H dp/dx and H dp/drel (the Jacobians of p
-// at the head of this file).
-func seenJacobians(c *candidate, x estimator.Pose, hx, hr *mat.Dense) ([]float64, bool) {
+// invertSPD returns the inverse of the d x d (d at most 3, stride 3)
+// symmetric positive definite matrix a through its Cholesky factor, a = L
+// L^T and a^-1 = L^-T L^-1 (Golub and Van Loan, Matrix Computations, 4th
+// ed., sec. 4.2; backward stable, where the adjugate, tried first, lost
+// five digits to cancellation at a condition number of 4e6), and false
+// where a is not positive definite (a pivot not positive) or its 1-norm
+// condition number passes gonum's mat.ConditionTolerance, where gonum's
+// solves refuse it too.
+func invertSPD(a *[9]float64, d int) ([9]float64, bool) {
+	var l, li, inv [9]float64
+	for j := range d {
+		s := a[j*3+j]
+		for k := range j {
+			s -= l[j*3+k] * l[j*3+k]
+		}
+		if !(s > 0) || math.IsInf(s, 0) {
+			return inv, false
+		}
+		l[j*3+j] = math.Sqrt(s)
+		for i := j + 1; i < d; i++ {
+			t := a[i*3+j]
+			for k := range j {
+				t -= l[i*3+k] * l[j*3+k]
+			}
+			l[i*3+j] = t / l[j*3+j]
+		}
+	}
+	for j := range d {
+		li[j*3+j] = 1 / l[j*3+j]
+		for i := j + 1; i < d; i++ {
+			var t float64
+			for k := j; k < i; k++ {
+				t += l[i*3+k] * li[k*3+j]
+			}
+			li[i*3+j] = -t / l[i*3+i]
+		}
+	}
+	for p := range d {
+		for q := range d {
+			var t float64
+			for k := max(p, q); k < d; k++ {
+				t += li[k*3+p] * li[k*3+q]
+			}
+			inv[p*3+q] = t
+		}
+	}
+	// The 1-norm condition number, ||a||_1 ||a^-1||_1 (Golub and Van Loan,
+	// sec. 2.6.2).
+	var na, ni float64
+	for col := range d {
+		var sa, si float64
+		for row := range d {
+			sa += math.Abs(a[row*3+col])
+			si += math.Abs(inv[row*3+col])
+		}
+		na, ni = max(na, sa), max(ni, si)
+	}
+	if !(na*ni <= mat.ConditionTolerance) {
+		return inv, false
+	}
+	return inv, true
+}
+
+// seenJacobiansInto predicts candidate c's measurement from the pose p = x
+// (+) rel^-1 at its stamp into z, and writes into hx and hr (d x 3,
+// row-major) its Jacobians in x and in rel, H dp/dx and H dp/drel (the
+// Jacobians of p at the head of this file).
+func seenJacobiansInto(c *candidate, x estimator.Pose, z *[3]float64, hx, hr *[9]float64) bool {
 	m := &c.meas
 	p := estimator.Compose(x, inversePose(c.rel))
-	z, h, err := m.Predicted([]float64{p.X, p.Y, p.Heading})
-	if err != nil {
-		return nil, false
+	var h [9]float64
+	if err := m.PredictedPose(p, z, &h); err != nil {
+		return false
 	}
 	s, co := math.Sincos(p.Heading)
 	tx, ty := c.rel.X, c.rel.Y
-	jx := mat.NewDense(3, 3, []float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1})
-	jr := mat.NewDense(3, 3, []float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1})
-	hp := mat.NewDense(m.Kind.Dim(), 3, h)
-	hx.Mul(hp, jx)
-	hr.Mul(hp, jr)
-	return z, true
+	jx := [9]float64{1, 0, s*tx + co*ty, 0, 1, -co*tx + s*ty, 0, 0, 1}
+	jr := [9]float64{-co, s, -s*tx - co*ty, -s, -co, co*tx - s*ty, 0, 0, -1}
+	for a := range m.Kind.Dim() {
+		for b := range 3 {
+			hx[a*3+b] = h[a*3]*jx[b] + h[a*3+1]*jx[3+b] + h[a*3+2]*jx[6+b]
+			hr[a*3+b] = h[a*3]*jr[b] + h[a*3+1]*jr[3+b] + h[a*3+2]*jr[6+b]
+		}
+	}
+	return true
 }
 
 // inversePose returns q with Compose(p, q) the identity pose.
@@ -332,62 +448,73 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 	}
 	dim = off[len(set)]
 	a := mat.NewDense(dim, 3, nil)
-	g := mat.NewDense(dim, 3, nil)
+	g := make([][9]float64, len(set)) // each fix's Hr (d x 3, row-major)
 	v := mat.NewVecDense(dim, nil)
 	for i := range set {
 		c := &set[i]
 		m := &c.meas
-		d := m.Kind.Dim()
-		z, ok := seenJacobians(c, x, a.Slice(off[i], off[i+1], 0, 3).(*mat.Dense), g.Slice(off[i], off[i+1], 0, 3).(*mat.Dense))
-		if !ok {
+		var z [3]float64
+		var hx [9]float64
+		if !seenJacobiansInto(c, x, &z, &hx, &g[i]) {
 			return nil, nil, 0, 0, false
 		}
-		for k := 0; k < d; k++ {
+		for k := range m.Kind.Dim() {
 			vk := m.Z[k] - z[k]
 			if m.Kind.IsAngle(k) {
 				vk = estimator.Wrap(vk)
 			}
 			v.SetVec(off[i]+k, vk)
+			a.SetRow(off[i]+k, hx[k*3:k*3+3])
 		}
 	}
-	cc := mat.NewDense(3, 3, cal.cov[:])
 	sigma := mat.NewSymDense(dim, nil)
-	var cov, t, blk mat.Dense
 	for i := range set {
 		ci := &set[i]
-		di := mat.NewDense(3, 3, ci.relD[:])
-		gi := g.Slice(off[i], off[i+1], 0, 3)
+		di := ci.meas.Kind.Dim()
+		var dc [9]float64 // D_i C
+		if cal.on {
+			dc = mul33(&ci.relD, &cal.cov)
+		}
 		for j := i; j < len(set); j++ {
 			cj := &set[j]
+			dj := cj.meas.Kind.Dim()
 			// cov = Cov(rel_i, rel_j).
-			cov.Reset()
+			var cov [9]float64
 			if i == j {
-				cov.CloneFrom(mat.NewDense(3, 3, ci.relW[:]))
+				cov = ci.relW
 			} else {
 				_, jb := composeJacobians(estimator.Pose{Heading: ci.rel.Heading - cj.rel.Heading}, estimator.Pose{})
-				cov.Mul(mat.NewDense(3, 3, jb[:]), mat.NewDense(3, 3, cj.relW[:]))
+				cov = mul33(&jb, &cj.relW)
 			}
 			if cal.on {
-				var dc, dcd mat.Dense
-				dc.Mul(di, cc)
-				dcd.Mul(&dc, mat.NewDense(3, 3, cj.relD[:]).T())
-				cov.Add(&cov, &dcd)
+				for p := range 3 {
+					for q := range 3 {
+						cov[p*3+q] += dc[p*3]*cj.relD[q*3] + dc[p*3+1]*cj.relD[q*3+1] + dc[p*3+2]*cj.relD[q*3+2]
+					}
+				}
 			}
-			gj := g.Slice(off[j], off[j+1], 0, 3)
-			t.Reset()
-			t.Mul(gi, &cov)
-			blk.Reset()
-			blk.Mul(&t, gj.T())
-			for p := 0; p < off[i+1]-off[i]; p++ {
-				for q := 0; q < off[j+1]-off[j]; q++ {
-					e := blk.At(p, q)
+			// blk = G_i cov G_j^T.
+			var t, blk [9]float64
+			for p := range di {
+				for q := range 3 {
+					t[p*3+q] = g[i][p*3]*cov[q] + g[i][p*3+1]*cov[3+q] + g[i][p*3+2]*cov[6+q]
+				}
+			}
+			for p := range di {
+				for q := range dj {
+					blk[p*3+q] = t[p*3]*g[j][q*3] + t[p*3+1]*g[j][q*3+1] + t[p*3+2]*g[j][q*3+2]
+				}
+			}
+			for p := range di {
+				for q := range dj {
+					e := blk[p*3+q]
 					if i == j {
-						e = (e+blk.At(q, p))/2 + ci.meas.R[p*3+q]
+						if q < p {
+							continue
+						}
+						e = (e+blk[q*3+p])/2 + ci.meas.R[p*3+q]
 					} else if bp, bq := bias[i][p], bias[j][q]; bp > 0 && bq > 0 {
 						e += st.At(bp, bq)
-					}
-					if i == j && q < p {
-						continue
 					}
 					sigma.SetSym(off[i]+p, off[j]+q, e)
 				}
@@ -417,4 +544,15 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 	grad = mat.NewVecDense(3, nil)
 	grad.MulVec(a.T(), &sv)
 	return info, grad, mat.Dot(v, &sv), dim, true
+}
+
+// mul33 returns the product a b of two 3 x 3 row-major matrices.
+func mul33(a, b *[9]float64) [9]float64 {
+	var c [9]float64
+	for p := range 3 {
+		for q := range 3 {
+			c[p*3+q] = a[p*3]*b[q] + a[p*3+1]*b[3+q] + a[p*3+2]*b[6+q]
+		}
+	}
+	return c
 }

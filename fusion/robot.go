@@ -74,6 +74,9 @@ type Robot struct {
 	// touched at robot rates (BenchmarkRatesPathCold under callgrind,
 	// session 25).
 	wheelCoef [][3]float64
+	// quantTurnVar is the variance the latest counts' quantisation gives
+	// the counted heading against an IMU's (Config.countsTurnVar).
+	quantTurnVar float64
 
 	seq uint64
 	// run counts the run starts taken (Run is run+1); bootID is the
@@ -133,6 +136,7 @@ func New(cfg Config) (*Robot, error) {
 	for _, w := range cfg.Wheels {
 		r.wheelCoef = append(r.wheelCoef, estimator.WheelCoef(w.XM, w.YM, w.DirectionRad))
 	}
+	r.quantTurnVar = cfg.countsTurnVar()
 	r.lmAt = landmarkBlocks(&r.layout)
 	x := make([]float64, r.n)
 	p := make([]float64, r.n*r.n)

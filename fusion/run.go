@@ -144,6 +144,18 @@ func carryInto(st, last *estimator.State, l *estimator.Layout, s *RunStart) {
 		}
 		st.SetEIV(kept)
 	}
+	if l.TurnScale() >= 0 {
+		// So does the compensation's consider column for the states kept
+		// with their covariance (the pose's only without a new pose).
+		c := last.EIVConsider()
+		var kept [estimator.MaxStates]float64
+		for _, i := range keep {
+			if i >= 3 || s.Pose == nil {
+				kept[i] = c[i]
+			}
+		}
+		st.SetEIVConsider(kept)
+	}
 }
 
 // checkRunStart reports what is wrong with a run start before it is taken.

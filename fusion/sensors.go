@@ -121,6 +121,16 @@ type Calibration struct {
 	// RateBiasVarRad2PerS3 is its random walk, (rad/s)^2 per second (0:
 	// constant).
 	RateBiasVarRad2PerS3 float64
+	// NoiseRatioStd is how well the odometry's configured noise is known,
+	// as the standard deviation of the ratio of the true noise to it
+	// (0.5): the turn scale's update takes out the pull the configured
+	// noise of the reported turns would give it, and carries the spread
+	// of that pull over the ratio in its covariance, a consider parameter
+	// (DEVELOPERS.md, "Design: State"). The default covers a true noise
+	// anywhere from none to 1.5 times the configured (the root mean square
+	// of the ratio's departure from 1 over that range); a noise fitted
+	// with `reckon tune` from long runs is known better.
+	NoiseRatioStd float64
 }
 
 // fixDim returns the dimension of a fix kind's full measurement (a
@@ -272,6 +282,7 @@ func (c *Config) checkCalibration() error {
 		{"calibration.turn_scale_var_per_rad", k.TurnScaleVarPerRad, false},
 		{"calibration.rate_bias_std_rad_per_s", k.RateBiasStdRadPerS, true},
 		{"calibration.rate_bias_var_rad2_per_s3", k.RateBiasVarRad2PerS3, false},
+		{"calibration.noise_ratio_std", k.NoiseRatioStd, true},
 	} {
 		if !finiteAll(v.v) || v.v < 0 || v.positive && v.v == 0 {
 			return cfgErr(v.name, "%v must be a finite positive value", v.v)
@@ -292,7 +303,8 @@ func (c *Config) checkCalibration() error {
 // layoutSpec returns the state layout the configuration asks for and, for
 // each sensor, the index of its bias block's first state (0: none).
 func (c *Config) layoutSpec() (estimator.LayoutSpec, []int) {
-	spec := estimator.LayoutSpec{IMUOffset: c.IMU == IMUAbsolute, OdometryScale: c.Calibration.Scale, RateBias: c.Calibration.RateBias}
+	spec := estimator.LayoutSpec{IMUOffset: c.IMU == IMUAbsolute, OdometryScale: c.Calibration.Scale, RateBias: c.Calibration.RateBias,
+		NoiseRatioStd: c.Calibration.NoiseRatioStd}
 	at := 3
 	for _, b := range []bool{spec.IMUOffset, spec.OdometryScale, spec.OdometryScale, spec.RateBias} {
 		if b {

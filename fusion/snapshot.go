@@ -66,10 +66,14 @@ import (
 // Version 18: the errors-in-variables moments cover the IMU offset too
 // (4x4: estimator.EIVDim); a version 17 to 9 snapshot's 3x3 moments take
 // the pose block, and the offset's row and column start at zero.
-const SnapshotVersion = 18
+// Version 19: the consider column of the turn scale's compensation
+// (estimator.State's EIVConsider) in each estimate; a version 18 to 5
+// snapshot has none, and its robot's compensation starts its own
+// uncertainty at zero, as its builds carried none.
+const SnapshotVersion = 19
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 18, whose estimates lack the compensation's consider column; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -495,6 +499,14 @@ func stateFault(s *estimator.State) string {
 			return fmt.Sprintf("has errors-in-variables moment %v at (%d, %d)", v, k/estimator.EIVDim, k%estimator.EIVDim)
 		}
 	}
+	// Their consider column, which every update that takes a pull out
+	// adds to the covariance.
+	c := s.EIVConsider()
+	for i, v := range c[:n] {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return fmt.Sprintf("has errors-in-variables consider value %v in state %d", v, i)
+		}
+	}
 	return covFault(n, s.At)
 }
 
@@ -607,12 +619,16 @@ func encState(e *wenc, s *estimator.State) {
 	if m := s.EIV(); m != (estimator.EIVMoments{}) {
 		e.doubles(4, m[:])
 	}
+	if c := s.EIVConsider(); c != ([estimator.MaxStates]float64{}) {
+		e.doubles(5, c[:n])
+	}
 }
 
 func decState(d *wdec) estimator.State {
 	var n uint64
 	var x, p []float64
 	var m estimator.EIVMoments
+	var c []float64
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
@@ -623,6 +639,11 @@ func decState(d *wdec) estimator.State {
 			p = d.doubleSlice(num)
 		case 4:
 			m = decEIV(d, num)
+		case 5:
+			c = d.doubleSlice(num)
+			if d.version < 19 {
+				d.fail("estimate: errors-in-variables consider column in a version %d snapshot (from version 19)", d.version)
+			}
 		default:
 			d.fail("estimate: unknown field %d", num)
 		}
@@ -635,8 +656,15 @@ func decState(d *wdec) estimator.State {
 		d.fail("estimate of size %d with %d mean and %d covariance values", n, len(x), len(p))
 		return estimator.State{}
 	}
+	if c != nil && len(c) != int(n) {
+		d.fail("estimate of size %d with %d errors-in-variables consider values", n, len(c))
+		return estimator.State{}
+	}
 	st := estimator.NewState(int(n), d.angles, x, p)
 	st.SetEIV(m)
+	var col [estimator.MaxStates]float64
+	copy(col[:], c)
+	st.SetEIVConsider(col)
 	return st
 }
 

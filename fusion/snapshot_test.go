@@ -44,14 +44,7 @@ func TestSnapshotContinuesExactly(t *testing.T) {
 		for i := 0; i < mid; i++ {
 			fusiontest.Feed(a, &ins[i])
 		}
-		snap, err := a.Snapshot()
-		if err != nil {
-			t.Fatal(err)
-		}
-		b, err := fusion.RestoreSnapshot(cfg, snap)
-		if err != nil {
-			t.Fatal(err)
-		}
+		snap, b := snapshotRestored(t, a, cfg)
 		if !reflect.DeepEqual(a.Stats(), b.Stats()) || a.Pose() != b.Pose() {
 			t.Fatalf("%v: restored robot differs at once", sc.Layout)
 		}
@@ -101,4 +94,19 @@ func TestSnapshotWithHeldFix(t *testing.T) {
 			t.Fatalf("input %d: %+v vs %+v", i, ra, rb)
 		}
 	}
+}
+
+// snapshotRestored returns a's snapshot and the robot restored from it
+// with configuration cfg.
+func snapshotRestored(t *testing.T, a *fusion.Robot, cfg fusion.Config) ([]byte, *fusion.Robot) {
+	t.Helper()
+	snap, err := a.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := fusion.RestoreSnapshot(cfg, snap)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return snap, b
 }

@@ -265,19 +265,8 @@ func (rawCodec) Name() string                       { return "proto" }
 // ("grpc: failed to unmarshal the received message"), against the
 // contract that a bad sample does not end it.
 func TestMalformedRequestIsItsVerdict(t *testing.T) {
-	srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
-	defer srv.stop()
-	conn, err := connect(srv.addr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
-	api := pb.NewFusionServiceClient(conn)
+	conn, api, samp := serveCartOn(t, 4, 1)
 	ctx := context.Background()
-	samp, cfg := cartRun(4, 1)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
 	good := func(cs uint64, s *pb.Sample) []byte {
 		b, err := proto.Marshal(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: cs, Sample: s})
 		if err != nil {

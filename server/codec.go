@@ -36,6 +36,10 @@ func (c codec) Marshal(v any) (mem.BufferSlice, error) {
 }
 
 func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
+	if u, ok := v.(*unaryRequest); ok {
+		c.decodeUnary(data, u)
+		return nil
+	}
 	r, ok := v.(*arrivedRequest)
 	if !ok {
 		return c.std.Unmarshal(data, v)

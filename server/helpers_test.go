@@ -55,7 +55,7 @@ func serveLoopback(tc testConfig) (addr string, stop func() error, err error) {
 		return "", nil, err
 	}
 	gs := grpc.NewServer(opts...)
-	pb.RegisterFusionServiceServer(gs, srv)
+	Register(gs, srv)
 	served := make(chan error, 1)
 	go func() { served <- gs.Serve(lis) }()
 	return lis.Addr().String(), func() error {

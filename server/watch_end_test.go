@@ -52,7 +52,7 @@ func TestWatchEndsWhenQuarantined(t *testing.T) {
 		t.Fatal(err)
 	}
 	gs := grpc.NewServer(opts...)
-	pb.RegisterFusionServiceServer(gs, s)
+	Register(gs, s)
 	lis, err := net.Listen("tcp", "127.0.0.1:0")
 	if err != nil {
 		t.Fatal(err)
@@ -137,7 +137,7 @@ func TestWatchCancelledNotOK(t *testing.T) {
 		t.Fatal(err)
 	}
 	gs := grpc.NewServer(opts...)
-	pb.RegisterFusionServiceServer(gs, s)
+	Register(gs, s)
 	go gs.Serve(lis)
 	defer gs.Stop()
 	api := dial(t, lis.Addr().String())

@@ -202,8 +202,9 @@ const maxStepUs = 60_000_000
 // the previous boot's byte may be a late one (Sequencer, "Restarts").
 const lateUs = 2_000_000
 
-// maxHeld bounds the frames a Sequencer holds until they are confirmed
-// (Sequencer, "Start"); past it the oldest is dropped.
+// maxHeld bounds the frames a Sequencer holds until they are confirmed:
+// past it the oldest is dropped (Sequencer, "Start"), or, of frames held
+// as possibly late ones, the one after the first (Sequencer, "Restarts").
 const maxHeld = 1024
 
 // Sequencer turns frames, in arrival order, into odometry samples on the
@@ -266,7 +267,9 @@ const maxHeld = 1024
 // follows the one before, until they span lateUs less that newest stamp on
 // their own clock (late frames sent within the last lateUs - S before the
 // current boot began span less): then they are a new boot, and every one
-// held is taken, none lost (past maxHeld, the oldest is dropped). Held
+// held is taken, none lost (past maxHeld, the one after the first is
+// dropped as reordered: the first is the reference of the boot's counts,
+// and the newer ones cover the dropped one's, so no travel is lost). Held
 // frames of the previous byte that do not get there (the current boot's
 // newest stamp reaches lateUs, a frame of another byte comes, or one of
 // theirs breaks their order) are dropped as reordered, however many: late
@@ -305,6 +308,9 @@ type Sequencer struct {
 	heldLate   bool
 	heldFromUs uint64
 	heldAtUs   uint64
+	// merged: how many frames held as late ones were dropped past
+	// maxHeld between the first held and the newest (Restarts).
+	merged uint64
 	// resumed: the robot's current run is of boot byte resumedBoot
 	// (Decoder.Resume), compared with the first frame's.
 	resumed     bool
@@ -403,12 +409,18 @@ func (s *Sequencer) holdLate(dst []*pb.Sample, f *Frame) []*pb.Sample {
 		for j := 1; j < len(held); j++ {
 			dst = s.next(dst, &held[j])
 		}
-		s.held = held[:0]
+		// The frames merged away arrived: not skipped.
+		s.stats.Skipped -= s.merged
+		s.held, s.merged = held[:0], 0
 		return dst
 	}
 	if len(s.held) > maxHeld {
+		// The first held frame is the reference of the boot's counts;
+		// the one after it is dropped, its counts covered by the newer
+		// ones: a boot taken loses no travel, only a sample.
 		s.stats.Reordered++
-		s.held = append(s.held[:0], s.held[1:]...)
+		s.merged++
+		s.held = append(s.held[:1], s.held[2:]...)
 	}
 	return dst
 }
@@ -425,7 +437,7 @@ func (s *Sequencer) dropHeld() {
 		s.dropInvalid(frameErr(ErrInvalid, "boot", "%d: no later frame of that boot followed the frame with counter %d, stamp %d us (a frame of another boot came, or boot %d's clock ran on %d s)",
 			g.Boot, g.Counter, g.StampUs, s.boot, lateUs/1_000_000))
 	}
-	s.held = s.held[:0]
+	s.held, s.merged = s.held[:0], 0
 }
 
 // follows reports whether f follows a frame of its boot with counter c,

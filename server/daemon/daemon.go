@@ -14,7 +14,6 @@ import (
 	"log/slog"
 	"net"
 	"net/http"
-	"os"
 	"strings"
 	"syscall"
 	"time"
@@ -86,13 +85,21 @@ type Config struct {
 // LoadTLS loads the server's TLS configuration: its certificate and key,
 // and with clientCA the CA whose client certificates it requires.
 func LoadTLS(cert, key, clientCA string) (*tls.Config, error) {
-	pair, err := tls.LoadX509KeyPair(cert, key)
+	certPEM, err := ReadFlagFile(cert)
+	if err != nil {
+		return nil, fmt.Errorf("tls-cert: %w", err)
+	}
+	keyPEM, err := ReadFlagFile(key)
+	if err != nil {
+		return nil, fmt.Errorf("tls-key: %w", err)
+	}
+	pair, err := tls.X509KeyPair(certPEM, keyPEM)
 	if err != nil {
 		return nil, fmt.Errorf("tls-cert/tls-key: %w", err)
 	}
 	cfg := &tls.Config{Certificates: []tls.Certificate{pair}, MinVersion: tls.VersionTLS12}
 	if clientCA != "" {
-		pem, err := os.ReadFile(clientCA)
+		pem, err := ReadFlagFile(clientCA)
 		if err != nil {
 			return nil, fmt.Errorf("tls-client-ca: %w", err)
 		}
@@ -297,7 +304,7 @@ func startService(ctx context.Context, dc *Config) (*server.Server, error) {
 // newGRPCServer registers the service, health and reflection.
 func newGRPCServer(srv *server.Server, opts []grpc.ServerOption) (*grpc.Server, *health.Server) {
 	gs := grpc.NewServer(opts...)
-	pb.RegisterFusionServiceServer(gs, srv)
+	server.Register(gs, srv)
 	hs := health.NewServer()
 	hs.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
 	hs.SetServingStatus(pb.FusionService_ServiceDesc.ServiceName, healthpb.HealthCheckResponse_SERVING)

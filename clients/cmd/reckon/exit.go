@@ -94,17 +94,17 @@ func exitCode(err error) int {
 // "interrupted" rather than the context's or the stream's error.
 func report(err error, stderr io.Writer) int {
 	code := exitCode(err)
+	prefix := "reckon:"
+	var ce *commandError
+	if errors.As(err, &ce) {
+		prefix = "reckon " + ce.name + ":"
+	}
 	var ue *usageError
 	switch {
 	case err == nil, errors.Is(err, errInterrupted), errors.As(err, &ue) && ue.shown:
 	case code == exitInterrupted:
-		fmt.Fprintln(stderr, "reckon: interrupted")
+		fmt.Fprintln(stderr, prefix, "interrupted")
 	default:
-		prefix := "reckon:"
-		var ce *commandError
-		if errors.As(err, &ce) {
-			prefix = "reckon " + ce.name + ":"
-		}
 		msg := plain(err)
 		fmt.Fprintln(stderr, prefix, msg)
 		if code == exitUnreachable && strings.Contains(msg, "server preface") {

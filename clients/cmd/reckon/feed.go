@@ -664,13 +664,32 @@ func (t *tally) answered(resp *pb.IngestResponse) (line int, counts bool) {
 		t.retries = append(t.retries, retry{seq: seq, line: line, sample: s})
 		return line, false
 	}
-	if t.gone == 0 && resp.GetVerdict() == pb.Verdict_VERDICT_INVALID && (codes.Code(resp.GetStatusCode()) == codes.NotFound || resp.GetRefusal() == pb.Refusal_REFUSAL_QUARANTINED) {
+	if t.gone == 0 && refusedForItsRobot(resp) {
 		t.gone, t.whyGone, t.goneCode = line, resp.GetReason(), codes.Code(resp.GetStatusCode())
 	}
 	if resp.GetVerdict() == pb.Verdict_VERDICT_HELD {
 		t.held[resp.GetSequence()] = line
 	}
 	return line, true
+}
+
+// refusedForItsRobot reports whether resp refuses its sample because of
+// the robot rather than the sample: the robot was deleted (NOT_FOUND
+// without a refusal of the sample's own) or quarantined. A fix naming a
+// sensor or landmark the configuration lacks is NOT_FOUND too, but only
+// that sample is refused; before, feed took it for the robot gone and
+// stopped with exit 4.
+func refusedForItsRobot(resp *pb.IngestResponse) bool {
+	if resp.GetVerdict() != pb.Verdict_VERDICT_INVALID {
+		return false
+	}
+	switch resp.GetRefusal() {
+	case pb.Refusal_REFUSAL_QUARANTINED:
+		return true
+	case pb.Refusal_REFUSAL_UNSPECIFIED:
+		return codes.Code(resp.GetStatusCode()) == codes.NotFound
+	}
+	return false
 }
 
 // collect receives the verdicts until the stream ends; io.EOF and a

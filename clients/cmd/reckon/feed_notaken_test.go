@@ -5,6 +5,7 @@ import (
 	"regexp"
 	"strconv"
 	"strings"
+	"sync"
 	"syscall"
 	"testing"
 	"time"
@@ -102,9 +103,20 @@ func TestFeedNotTaken(t *testing.T) {
 	})
 
 	t.Run("wait and send again", func(t *testing.T) {
-		ffs := faultfs.New(journal.OS, faultfs.From(faultfs.OpWrite, ".rjl", 3, syscall.ENOSPC))
+		// Space returns 300 ms after the first write it failed, however
+		// long the feed took to get there (a timer from the start let a
+		// slow machine's feed finish before the disk filled).
+		full := faultfs.From(faultfs.OpWrite, ".rjl", 3, syscall.ENOSPC)
+		var once sync.Once
+		ffs := faultfs.New(journal.OS, nil)
+		ffs.SetInject(func(op faultfs.Op, path string) error {
+			err := full(op, path)
+			if err != nil {
+				once.Do(func() { time.AfterFunc(300*time.Millisecond, func() { ffs.SetInject(nil) }) })
+			}
+			return err
+		})
 		addr := faultyService(t, ffs)
-		time.AfterFunc(300*time.Millisecond, func() { ffs.SetInject(nil) })
 		out, errs, code := runCode(t, context.Background(), "", "feed", "-addr", addr, "-robot", "cart", "-create", cfg, "-wait", "20s", samples)
 		t.Logf("feed -wait:\n%s%s", out, errs)
 		if code != 0 || strings.Contains(out, "not taken") || !strings.Contains(errs, "waiting up to 20s for the robot to serve") || !strings.Contains(errs, "the robot serves; sending") {

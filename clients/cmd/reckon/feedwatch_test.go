@@ -102,6 +102,35 @@ func TestFeedErrorsNameTheLine(t *testing.T) {
 	}
 }
 
+// TestFeedGoesOnPastAnUnknownSensor: a fix naming a sensor the robot's
+// configuration lacks is refused alone (NOT_FOUND naming sensor_id), and
+// feed goes on with the file and exits 0. Before, it took that NOT_FOUND
+// for the robot deleted: it stopped there, saying "the robot is gone", and
+// exited 4.
+func TestFeedGoesOnPastAnUnknownSensor(t *testing.T) {
+	ctx := context.Background()
+	addr, _ := serve(t, "127.0.0.1:0", t.TempDir())
+	b, err := os.ReadFile(exampleSamples)
+	if err != nil {
+		t.Fatal(err)
+	}
+	text := strings.Replace(string(b), `"sensor_id":"camera"`, `"sensor_id":"front-camera"`, 1)
+	if text == string(b) {
+		t.Fatal("the example samples name no camera fix")
+	}
+	file := filepath.Join(t.TempDir(), "misnamed.jsonl")
+	if err := os.WriteFile(file, []byte(text), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errs, code := runCode(t, ctx, "", "feed", "-addr", addr, "-robot", "cart", "-create", exampleConfig, file)
+	if code != exitOK || strings.Contains(errs, "gone") {
+		t.Errorf("feed: exit %d, want %d\n%s%s", code, exitOK, out, errs)
+	}
+	if !strings.HasPrefix(out, "851 samples sent to robots/cart:") || !strings.Contains(out, "invalid 1") || !strings.Contains(out, `unknown sensor: sensor_id "front-camera"`) {
+		t.Errorf("stdout:\n%s", out)
+	}
+}
+
 // TestInterrupted: feed (paced at real time) and watch, interrupted, print
 // their summary and exit 130 without the context's error.
 func TestInterrupted(t *testing.T) {

@@ -843,6 +843,35 @@ func TestCompareReadsBothConfigurationsFirst(t *testing.T) {
 	}
 }
 
+// TestCompareOutDefault: compare's -h names the directory compare writes
+// without -out, review-<robot>-compare. Before, it showed review's
+// default, review-<robot>, a directory compare never writes.
+func TestCompareOutDefault(t *testing.T) {
+	dir, _, _ := writeExampleJournal(t)
+	cfg, err := filepath.Abs(exampleConfig)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Chdir(t.TempDir())
+	help, _, _ := runCode(t, context.Background(), "", "compare", "-h")
+	if !strings.Contains(help, "(default review-<robot>-compare, review-<robot>-run<N>-compare with -run)") {
+		t.Errorf("compare -h does not name its default -out directory:\n%s", help)
+	}
+	for _, run := range []string{"", "1"} {
+		args := []string{"compare", "-journal", dir, "-robot", "cart", "-b", cfg}
+		want := "review-cart-compare"
+		if run != "" {
+			args, want = append(args, "-run", run), "review-cart-run1-compare"
+		}
+		if _, errs, code := runCode(t, context.Background(), "", args...); code != exitOK {
+			t.Fatalf("%v: exit %d\n%s", args, code, errs)
+		}
+		if _, err := os.Stat(filepath.Join(want, "report.html")); err != nil {
+			t.Errorf("%v: %v", args, err)
+		}
+	}
+}
+
 // TestOfflineSaysJournalDamage: a journal whose segment header was
 // overwritten (the scan resynchronises at the first intact record, so no
 // input is lost and no gap is reported) is read whole by replay, review,

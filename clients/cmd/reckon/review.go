@@ -23,16 +23,20 @@ import (
 type sourceFlags struct {
 	journal, robot, config, samples, truth, out *string
 	run                                         *uint64
+	// suffix ends the default -out directory's name ("-compare" for
+	// compare), so that -h states the directory outDir makes.
+	suffix string
 }
 
-func addSourceFlags(fs *flag.FlagSet) sourceFlags {
+func addSourceFlags(fs *flag.FlagSet, suffix string) sourceFlags {
 	return sourceFlags{
+		suffix:  suffix,
 		journal: fs.String("journal", "", "journal directory (with -robot)"),
 		robot:   fs.String("robot", "", journalRobotHelp),
 		config:  fs.String("config", "", "YAML robot configuration, for -samples"),
 		samples: fs.String("samples", "", "JSON Lines file of samples in arrival order (with -config)"),
 		truth:   fs.String("truth", "", "CSV of the true pose (stamp_ns,x_m,y_m,heading_rad); the demo leaves truth.csv in its journal directory"),
-		out:     fs.String("out", "", "directory for the report and the exports (default review-<robot>, review-<robot>-run<N> with -run)"),
+		out:     fs.String("out", "", fmt.Sprintf("directory for the report and the exports (default review-<robot>%s, review-<robot>-run<N>%s with -run)", suffix, suffix)),
 		run:     fs.Uint64("run", 0, "the run to review, from 1 (a controller restart begins a run; default 1)"+noRunHelp),
 	}
 }
@@ -134,7 +138,7 @@ func (sf sourceFlags) outDir(label string) string {
 	if *sf.out != "" {
 		return *sf.out
 	}
-	return "review-" + label
+	return "review-" + label + sf.suffix
 }
 
 func progress(stderr io.Writer, what string) (func(int), func()) {
@@ -155,7 +159,7 @@ fixes with their final verdicts. -from and -to limit it to a stretch; -run N
 reviews run N of a robot whose controller restarted (each run has a clock of
 its own; the default is run 1, and the summary names the others).`)
 	fs.SetOutput(stderr)
-	sf := addSourceFlags(fs)
+	sf := addSourceFlags(fs, "")
 	other := fs.String("with", "", "replay the run with this YAML configuration instead of its own")
 	var span timeSpan
 	span.add(fs)
@@ -196,7 +200,7 @@ Reviews a run under two configurations, the run's own (or -a) and -b: one
 report with both runs' tracks, deviations and NIS overlaid and a table of
 their differences.`)
 	fs.SetOutput(stderr)
-	sf := addSourceFlags(fs)
+	sf := addSourceFlags(fs, "-compare")
 	a := fs.String("a", "", "first YAML configuration (default: the run's own)")
 	b := fs.String("b", "", "second YAML configuration")
 	var span timeSpan
@@ -214,7 +218,7 @@ their differences.`)
 	if err != nil {
 		return err
 	}
-	dir := sf.outDir(review.Label(src) + "-compare")
+	dir := sf.outDir(review.Label(src))
 	// Both configurations are read before either run is replayed, so that a
 	// bad -b leaves no half of a comparison behind.
 	srcs := []review.Source{src, src}

@@ -468,3 +468,22 @@ func TestInterruptibleEndsWithContext(t *testing.T) {
 		t.Errorf("a fit that ends: %d, %v; want 7, %v", v, err, want)
 	}
 }
+
+// TestInterruptedNamesTheCommand: a command interrupted without a summary
+// of its own (tune, calibrate) says so in one line naming itself, as every
+// other failure does, and exits 130. Before, it printed "reckon:
+// interrupted".
+func TestInterruptedNamesTheCommand(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	out := filepath.Join(t.TempDir(), "tuned.yaml")
+	for _, cmd := range []string{"tune", "calibrate"} {
+		_, errs, code := runCode(t, ctx, "", cmd, "-config", exampleConfig, "-samples", exampleSamples, "-out", out)
+		if code != exitInterrupted || errs != "reckon "+cmd+": interrupted\n" {
+			t.Errorf("%s interrupted: exit %d, stderr %q; want %d and %q", cmd, code, errs, exitInterrupted, "reckon "+cmd+": interrupted\n")
+		}
+		if _, err := os.Stat(out); !errors.Is(err, os.ErrNotExist) {
+			t.Errorf("%s interrupted wrote %s: %v", cmd, out, err)
+		}
+	}
+}

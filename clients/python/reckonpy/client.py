@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import ipaddress
+import math
 import queue
 import secrets
 import threading
@@ -345,7 +346,8 @@ class Watch:
 
 class Client:
     """Client is a connection to the service; see connect(). Unary calls
-    take an optional timeout in seconds (default the client's timeout_s).
+    take an optional timeout in seconds (default the client's timeout_s;
+    math.inf for none).
     It is safe to use from several threads."""
 
     def __init__(self, channel: grpc.Channel, metadata: Sequence[Tuple[str, str]], timeout_s: float):
@@ -367,7 +369,8 @@ class Client:
         return self._md
 
     def _unary(self, method, request, timeout):
-        return method(request, metadata=self._md, timeout=self.timeout_s if timeout is None else timeout)
+        t = _deadline(self.timeout_s if timeout is None else timeout, "timeout")
+        return method(request, metadata=self._md, timeout=t)
 
     def wait_ready(self, timeout_s: float = 10.0) -> None:
         """wait_ready blocks until the channel is connected, raising
@@ -471,6 +474,42 @@ class Client:
         self.close()
 
 
+def _deadline(timeout_s, name: str) -> Optional[float]:
+    """_deadline returns the gRPC timeout for a call's timeout_s seconds:
+    None (no deadline) for infinity, which gRPC itself would take as a
+    deadline already past; a NaN, zero or negative value is refused (a
+    ValueError naming it), gRPC would answer every call DEADLINE_EXCEEDED
+    without sending it."""
+    t = float(timeout_s)
+    if math.isinf(t) and t > 0:
+        return None
+    if not t > 0:
+        raise ValueError(f"{name} must be a positive number of seconds (math.inf for none), got {timeout_s!r}")
+    return t
+
+
+# The keepalive of connect's channels, as the Go client's: a ping after
+# KEEPALIVE_TIME_MS without anything received, and the connection given up
+# (every call and stream on it UNAVAILABLE) if no answer comes within
+# KEEPALIVE_TIMEOUT_MS. Without it a service that stops answering while
+# its host keeps the connection open (a stopped or hung process, a
+# machine gone behind a router that holds the connection) leaves send(),
+# a watch and the verdicts waiting for ever.
+KEEPALIVE_TIME_MS = 30_000
+KEEPALIVE_TIMEOUT_MS = 10_000
+
+
+def _channel_options(options: Sequence[Tuple[str, object]]) -> List[Tuple[str, object]]:
+    """_channel_options is options after the keepalive defaults, those that
+    options does not set itself."""
+    given = {k for k, _ in options}
+    defaults = [("grpc.keepalive_time_ms", KEEPALIVE_TIME_MS), ("grpc.keepalive_timeout_ms", KEEPALIVE_TIMEOUT_MS),
+                # gRPC stops pinging after two pings without data by
+                # default: a stream waiting on a silent service is such.
+                ("grpc.http2.max_pings_without_data", 0)]
+    return [(k, v) for k, v in defaults if k not in given] + list(options)
+
+
 def _read(path: Optional[str]) -> Optional[bytes]:
     if path is None:
         return None
@@ -487,9 +526,14 @@ def connect(address: str = DEFAULT_ADDRESS, token: Optional[str] = None, tls: Op
     "authorization: Bearer <token>" with every call; it is refused (a
     ValueError) in plain text to an address that is not loopback, where
     anyone on the way could read it. timeout_s is the default deadline of
-    unary calls, seconds. options are extra gRPC channel options.
-    Connecting is lazy: the first call (or wait_ready) dials."""
-    opts = list(options)
+    unary calls, seconds (math.inf: none; NaN, zero or less is a
+    ValueError). options are extra gRPC channel options; those it does not
+    set keep connect's keepalive (KEEPALIVE_TIME_MS, KEEPALIVE_TIMEOUT_MS),
+    which ends the calls and streams of a service that stops answering
+    with UNAVAILABLE. Connecting is lazy: the first call (or wait_ready)
+    dials."""
+    _deadline(timeout_s, "connect: timeout_s")
+    opts = _channel_options(options)
     if tls is not None:
         if (tls.cert_file is None) != (tls.key_file is None):
             raise ValueError("connect: TLS needs both cert_file and key_file, or neither")

@@ -41,7 +41,10 @@ const (
 // and a vision process), and every input gets a verdict. Every rpc that
 // names a robot answers INVALID_ARGUMENT for a malformed name and NOT_FOUND
 // for a robot that does not exist; with a token configured, every rpc
-// answers UNAUTHENTICATED without it.
+// answers UNAUTHENTICATED without it. A request whose bytes are not a
+// valid encoding of its message (a string that is not UTF-8, a field cut
+// short) is INVALID_ARGUMENT naming the field and changes nothing; on
+// Ingest it is that request's verdict (REFUSAL_MALFORMED).
 type FusionServiceClient interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
@@ -242,7 +245,10 @@ func (c *fusionServiceClient) StartRun(ctx context.Context, in *StartRunRequest,
 // and a vision process), and every input gets a verdict. Every rpc that
 // names a robot answers INVALID_ARGUMENT for a malformed name and NOT_FOUND
 // for a robot that does not exist; with a token configured, every rpc
-// answers UNAUTHENTICATED without it.
+// answers UNAUTHENTICATED without it. A request whose bytes are not a
+// valid encoding of its message (a string that is not UTF-8, a field cut
+// short) is INVALID_ARGUMENT naming the field and changes nothing; on
+// Ingest it is that request's verdict (REFUSAL_MALFORMED).
 type FusionServiceServer interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name

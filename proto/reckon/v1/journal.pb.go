@@ -312,8 +312,12 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 14 reads 13 to 5: a version 13 snapshot lacks the
-	// sensors' robust and robust_parameter, 12
+	// knows (version 19 reads 18 to 5: a version 18 snapshot lacks the
+	// estimates' turn_scale_eiv_consider, 17 has the turn scale's
+	// errors-in-variables moments over the pose alone, 16 lacks the
+	// odometry entries' slip_factor, 15 held_reseed_marker_key, 14 the
+	// pose fixes' marker_key and move_unconfirmed, 13 the sensors' robust
+	// and robust_parameter, 12
 	// imu_unchanged_heading_rad, 11 the long turn anchor, 10 jump_counts, 9
 	// the landmark blocks and the measurements' mount error states, 8 the
 	// turn scale's
@@ -862,9 +866,15 @@ type EstimateState struct {
 	// "Design: State"): 4x4 row-major over x, y, heading and the IMU offset
 	// (its row and column zero without one) from version 18, 3x3 over the
 	// pose before. Absent when all zero.
-	TurnScaleEiv  []float64 `protobuf:"fixed64,4,rep,packed,name=turn_scale_eiv,json=turnScaleEiv,proto3" json:"turn_scale_eiv,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	TurnScaleEiv []float64 `protobuf:"fixed64,4,rep,packed,name=turn_scale_eiv,json=turnScaleEiv,proto3" json:"turn_scale_eiv,omitempty"`
+	// With a turn scale (version 19): the consider column of that
+	// compensation, size entries: the sensitivity of each state's error to
+	// the unknown relative error of the configured noise of the reported
+	// steps, whose spread the covariance includes (DEVELOPERS.md, "Design:
+	// State"). Absent when all zero.
+	TurnScaleEivConsider []float64 `protobuf:"fixed64,5,rep,packed,name=turn_scale_eiv_consider,json=turnScaleEivConsider,proto3" json:"turn_scale_eiv_consider,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
 }
 
 func (x *EstimateState) Reset() {
@@ -921,6 +931,13 @@ func (x *EstimateState) GetCovariance() []float64 {
 func (x *EstimateState) GetTurnScaleEiv() []float64 {
 	if x != nil {
 		return x.TurnScaleEiv
+	}
+	return nil
+}
+
+func (x *EstimateState) GetTurnScaleEivConsider() []float64 {
+	if x != nil {
+		return x.TurnScaleEivConsider
 	}
 	return nil
 }
@@ -2158,14 +2175,15 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x17_held_reseed_marker_key\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +
-	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"}\n" +
+	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"\xb4\x01\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
 	"\x04mean\x18\x02 \x03(\x01R\x04mean\x12\x1e\n" +
 	"\n" +
 	"covariance\x18\x03 \x03(\x01R\n" +
 	"covariance\x12$\n" +
-	"\x0eturn_scale_eiv\x18\x04 \x03(\x01R\fturnScaleEiv\"\xb9\x01\n" +
+	"\x0eturn_scale_eiv\x18\x04 \x03(\x01R\fturnScaleEiv\x125\n" +
+	"\x17turn_scale_eiv_consider\x18\x05 \x03(\x01R\x14turnScaleEivConsider\"\xb9\x01\n" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
 	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\x12J\n" +

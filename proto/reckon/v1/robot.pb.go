@@ -870,8 +870,14 @@ type OdometryCalibration struct {
 	RateBiasStdRadPerS float64 `protobuf:"fixed64,6,opt,name=rate_bias_std_rad_per_s,json=rateBiasStdRadPerS,proto3" json:"rate_bias_std_rad_per_s,omitempty"`
 	// Random walk of the rate bias, (rad/s)^2 per second (default 0).
 	RateBiasVarRad2PerS3 float64 `protobuf:"fixed64,7,opt,name=rate_bias_var_rad2_per_s3,json=rateBiasVarRad2PerS3,proto3" json:"rate_bias_var_rad2_per_s3,omitempty"`
-	unknownFields        protoimpl.UnknownFields
-	sizeCache            protoimpl.SizeCache
+	// How well the odometry's configured noise is known: the standard
+	// deviation of the ratio of its true noise to the configured, which
+	// the turn scale's compensation of the pull of that noise carries as a
+	// consider parameter, dimensionless (default 0.5: a true noise anywhere
+	// from none to 1.5 times the configured).
+	NoiseRatioStd float64 `protobuf:"fixed64,8,opt,name=noise_ratio_std,json=noiseRatioStd,proto3" json:"noise_ratio_std,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *OdometryCalibration) Reset() {
@@ -949,6 +955,13 @@ func (x *OdometryCalibration) GetRateBiasStdRadPerS() float64 {
 func (x *OdometryCalibration) GetRateBiasVarRad2PerS3() float64 {
 	if x != nil {
 		return x.RateBiasVarRad2PerS3
+	}
+	return 0
+}
+
+func (x *OdometryCalibration) GetNoiseRatioStd() float64 {
+	if x != nil {
+		return x.NoiseRatioStd
 	}
 	return 0
 }
@@ -1064,7 +1077,9 @@ type NoiseModel struct {
 	StepLeftVarM2PerM float64 `protobuf:"fixed64,6,opt,name=step_left_var_m2_per_m,json=stepLeftVarM2PerM,proto3" json:"step_left_var_m2_per_m,omitempty"`
 	// Body-step turn variance per radian (1e-4).
 	StepTurnVarRad2PerRad float64 `protobuf:"fixed64,7,opt,name=step_turn_var_rad2_per_rad,json=stepTurnVarRad2PerRad,proto3" json:"step_turn_var_rad2_per_rad,omitempty"`
-	// Variance of one absolute IMU heading reading (2.5e-5).
+	// Variance of one absolute IMU heading reading (2.5e-5), the IMU's own:
+	// the service adds the variance that the wheels' latest counts'
+	// quantisation gives the counted heading it is compared with.
 	ImuHeadingVarRad2 float64 `protobuf:"fixed64,8,opt,name=imu_heading_var_rad2,json=imuHeadingVarRad2,proto3" json:"imu_heading_var_rad2,omitempty"`
 	// Variance of the IMU turn row per radian turned (1e-6).
 	ImuTurnVarRad2PerRad float64 `protobuf:"fixed64,9,opt,name=imu_turn_var_rad2_per_rad,json=imuTurnVarRad2PerRad,proto3" json:"imu_turn_var_rad2_per_rad,omitempty"`
@@ -1646,7 +1661,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
 	"\x03y_m\x18\x02 \x01(\x01R\x02yM\x12\x1f\n" +
 	"\vheading_rad\x18\x03 \x01(\x01R\n" +
-	"headingRad\"\xbd\x02\n" +
+	"headingRad\"\xe5\x02\n" +
 	"\x13OdometryCalibration\x12\x14\n" +
 	"\x05scale\x18\x01 \x01(\bR\x05scale\x12\x1b\n" +
 	"\tscale_std\x18\x02 \x01(\x01R\bscaleStd\x124\n" +
@@ -1654,7 +1669,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x16turn_scale_var_per_rad\x18\x04 \x01(\x01R\x12turnScaleVarPerRad\x12\x1b\n" +
 	"\trate_bias\x18\x05 \x01(\bR\brateBias\x123\n" +
 	"\x17rate_bias_std_rad_per_s\x18\x06 \x01(\x01R\x12rateBiasStdRadPerS\x127\n" +
-	"\x19rate_bias_var_rad2_per_s3\x18\a \x01(\x01R\x14rateBiasVarRad2PerS3\"\xae\x01\n" +
+	"\x19rate_bias_var_rad2_per_s3\x18\a \x01(\x01R\x14rateBiasVarRad2PerS3\x12&\n" +
+	"\x0fnoise_ratio_std\x18\b \x01(\x01R\rnoiseRatioStd\"\xae\x01\n" +
 	"\fEncoderWheel\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x0f\n" +
 	"\x03x_m\x18\x02 \x01(\x01R\x02xM\x12\x0f\n" +

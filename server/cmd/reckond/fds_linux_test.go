@@ -33,20 +33,43 @@ func TestMain(m *testing.M) {
 	os.Exit(m.Run())
 }
 
+// startChild starts reckond in a child process (TestMain) with nofile
+// file descriptors at most and the arguments args; it returns the process
+// and its log (standard error), and kills it when the test ends.
+func startChild(t *testing.T, nofile int, args string) (*exec.Cmd, *lockedBuffer) {
+	t.Helper()
+	cmd := exec.Command(os.Args[0], "-test.run=^$")
+	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE="+strconv.Itoa(nofile), "RECKOND_TEST_ARGS="+args)
+	logs := &lockedBuffer{}
+	cmd.Stderr = logs
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { cmd.Process.Kill() })
+	return cmd, logs
+}
+
+// waitServing waits until logs match the regular expression re (a
+// "serving" line) and returns the match and its groups.
+func waitServing(t *testing.T, logs *lockedBuffer, re string) []string {
+	t.Helper()
+	var m []string
+	for deadline := time.Now().Add(30 * time.Second); m == nil; waitABit() {
+		m = regexp.MustCompile(re).FindStringSubmatch(logs.String())
+		if m == nil && time.Now().After(deadline) {
+			t.Fatalf("not serving:\n%s", logs.String())
+		}
+	}
+	return m
+}
+
 // TestOutOfFileDescriptors: reckond with 40 file descriptors and 60 idle
 // connections cannot accept more; it says so once, naming the limit, and
 // that it accepts again once they close; SIGTERM then stops it with exit
 // 0. Before, grpc-go retried the accepts in silence: nothing in the log
 // said why no client could connect.
 func TestOutOfFileDescriptors(t *testing.T) {
-	cmd := exec.Command(os.Args[0], "-test.run=^$")
-	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=40", "RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -journal "+t.TempDir())
-	logs := &lockedBuffer{}
-	cmd.Stderr = logs
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
-	defer cmd.Process.Kill()
+	cmd, logs := startChild(t, 40, "-listen 127.0.0.1:0 -journal "+t.TempDir())
 	waitFor := func(what string) string {
 		t.Helper()
 		for deadline := time.Now().Add(30 * time.Second); time.Now().Before(deadline); waitABit() {
@@ -89,22 +112,8 @@ func TestOutOfFileDescriptors(t *testing.T) {
 // of descriptors: no client could connect, nor a robot be created, until
 // the servers closed the idle connections 5 s later.
 func TestHTTPFloodLeavesDescriptors(t *testing.T) {
-	cmd := exec.Command(os.Args[0], "-test.run=^$")
-	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=64",
-		"RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -metrics-listen 127.0.0.1:0 -view 127.0.0.1:0 -max-http-connections 8 -max-viewers 4 -journal "+t.TempDir())
-	logs := &lockedBuffer{}
-	cmd.Stderr = logs
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
-	defer cmd.Process.Kill()
-	var m []string
-	for deadline := time.Now().Add(30 * time.Second); m == nil; waitABit() {
-		m = regexp.MustCompile(`msg=serving listen=(\S+) .*metrics=(\S+) view=(\S+)`).FindStringSubmatch(logs.String())
-		if m == nil && time.Now().After(deadline) {
-			t.Fatalf("not serving:\n%s", logs.String())
-		}
-	}
+	cmd, logs := startChild(t, 64, "-listen 127.0.0.1:0 -metrics-listen 127.0.0.1:0 -view 127.0.0.1:0 -max-http-connections 8 -max-viewers 4 -journal "+t.TempDir())
+	m := waitServing(t, logs, `msg=serving listen=(\S+) .*metrics=(\S+) view=(\S+)`)
 	var held []net.Conn
 	defer func() {
 		for _, c := range held {

@@ -26,7 +26,10 @@ import (
 )
 
 func main() {
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	// SIGHUP (the terminal closed, or an operator who expects a reload)
+	// stops the service gracefully as SIGTERM does: unhandled, it ended
+	// the process at once, without a word or a graceful stop.
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM, syscall.SIGHUP)
 	defer stop()
 	if err := run(ctx, os.Args[1:], os.Stdout, os.Stderr); err != nil {
 		fmt.Fprintln(os.Stderr, "reckond:", err)
@@ -54,6 +57,10 @@ func (r robotFlags) Set(v string) error {
 // reads of a segment into memory (1 GiB): a segment may pass the size by a
 // batch and its reserve.
 const maxSegmentBytes = 512 << 20
+
+// maxMessageBytes bounds -max-message-bytes: half a journal record, so
+// that a sample always fits its record (server.ServiceOptions).
+const maxMessageBytes = journal.MaxRecordBytes / 2
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := flag.NewFlagSet("reckond", flag.ContinueOnError)
@@ -129,7 +136,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		{"max-ingest-streams", int64(lim.MaxIngestStreams), 1, 1 << 20},
 		{"max-connections", int64(lim.MaxConnections), 1, 1 << 20},
 		{"max-http-connections", int64(lim.MaxHTTPConnections), 2, 1 << 20},
-		{"max-message-bytes", int64(*maxMsg), 1 << 10, 1 << 40},
+		{"max-message-bytes", int64(*maxMsg), 1 << 10, maxMessageBytes},
 		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
 	} {
 		if b.v < b.lo || b.v > b.hi {
@@ -156,7 +163,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return fmt.Errorf("fsync: %q is not each or interval", *fsync)
 	}
 	if *tokenFile != "" {
-		b, err := os.ReadFile(*tokenFile)
+		b, err := daemon.ReadFlagFile(*tokenFile)
 		if err != nil {
 			return fmt.Errorf("token-file: %w", err)
 		}
@@ -165,7 +172,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		}
 	}
 	for id, file := range robots {
-		b, err := os.ReadFile(file)
+		b, err := daemon.ReadFlagFile(file)
 		if err != nil {
 			return fmt.Errorf("robot %s: %w", id, err)
 		}

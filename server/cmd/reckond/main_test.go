@@ -43,6 +43,9 @@ func TestFlagErrors(t *testing.T) {
 		{[]string{"-max-connections", "0"}, "max-connections: 0"},
 		{[]string{"-max-string-bytes", "0"}, "max-string-bytes"},
 		{[]string{"-max-message-bytes", "-1"}, "max-message-bytes"},
+		// The range named the upper bound 2^40 before, which a second
+		// check refused past 2 MiB in other words.
+		{[]string{"-max-message-bytes", "999999999999"}, "max-message-bytes: 999999999999 is not between 1024 and 2097152"},
 		{[]string{"-fsync-interval", "-1s"}, "fsync-interval: -1s is not between"},
 		{[]string{"-fsync-interval", "0"}, "fsync-interval"},
 	}

@@ -1,0 +1,78 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"os"
+	"path/filepath"
+	"strings"
+	"syscall"
+	"testing"
+	"time"
+)
+
+// TestFlagFilesNotRegular: a -robot configuration, a -token-file, a TLS
+// certificate or key that is a named pipe no process writes to, a
+// directory or a device is refused at once naming the flag and what the
+// file is (a pipe with a writer is read: daemon's TestReadFlagFile). Before,
+// a named pipe with no writer held the start for ever (open(2) waits for
+// a writer; SIGTERM did not end the wait) and a device was read as a file
+// (/dev/zero without end).
+func TestFlagFilesNotRegular(t *testing.T) {
+	dir := t.TempDir()
+	fifo := filepath.Join(dir, "fifo")
+	if err := syscall.Mkfifo(fifo, 0o600); err != nil {
+		t.Skipf("mkfifo: %v", err)
+	}
+	cases := []struct {
+		args []string
+		want string
+	}{
+		{[]string{"-robot", "cart=" + fifo}, "robot cart: " + fifo + " is a named pipe that no process writes to"},
+		{[]string{"-token-file", fifo}, "token-file: " + fifo + " is a named pipe that no process writes to"},
+		{[]string{"-tls-cert", fifo, "-tls-key", fifo}, "tls-cert: " + fifo + " is a named pipe that no process writes to"},
+		{[]string{"-robot", "cart=" + dir}, "robot cart: " + dir + " is a directory"},
+		{[]string{"-robot", "cart=/dev/null"}, "robot cart: /dev/null is a character device"},
+		{[]string{"-token-file", "/dev/null"}, "token-file: /dev/null is a character device"},
+	}
+	for _, c := range cases {
+		args := append([]string{"-listen", "127.0.0.1:0", "-journal", filepath.Join(dir, "journal")}, c.args...)
+		done := make(chan error, 1)
+		go func() { done <- run(context.Background(), args, &bytes.Buffer{}, &bytes.Buffer{}) }()
+		var err error
+		select {
+		case err = <-done:
+		case <-time.After(30 * time.Second): // a bound on a hang, not a timing check
+			t.Errorf("%v: still waiting for the file after 30 s", c.args)
+			// Let the old build's opens go on: a writer that closes at
+			// once gives each end of file.
+			for err == nil {
+				if w, werr := os.OpenFile(fifo, os.O_WRONLY|syscall.O_NONBLOCK, 0); werr == nil {
+					w.Close()
+				}
+				select {
+				case err = <-done:
+				case <-time.After(10 * time.Millisecond):
+				}
+			}
+		}
+		if err == nil || !strings.Contains(err.Error(), c.want) {
+			t.Errorf("%v: %v, want an error with %q", c.args, err, c.want)
+		}
+	}
+}
+
+// TestHangupStopsGracefully: SIGHUP stops reckond as SIGTERM does, with
+// exit 0 after its graceful stop. Before, the signal was not handled and
+// ended the process at once, without a word in its log.
+func TestHangupStopsGracefully(t *testing.T) {
+	cmd, logs := startChild(t, 1024, "-listen 127.0.0.1:0 -journal "+t.TempDir())
+	waitServing(t, logs, `msg=serving`)
+	cmd.Process.Signal(syscall.SIGHUP)
+	if err := cmd.Wait(); err != nil {
+		t.Fatalf("reckond after SIGHUP: %v\n%s", err, logs.String())
+	}
+	if !strings.Contains(logs.String(), "shutting down") {
+		t.Errorf("no graceful stop in the log:\n%s", logs.String())
+	}
+}

@@ -89,6 +89,10 @@ type SystematicOptions struct {
 	// SensorsOnly fits only the sensors' mounts and latencies, holding the
 	// odometry's geometry and scales as configured.
 	SensorsOnly bool
+
+	// keepRegressorBias leaves out correctRegressorNoise (for the tests
+	// that measure what it corrects).
+	keepRegressorBias bool
 }
 
 func (o *SystematicOptions) defaults() {
@@ -285,6 +289,9 @@ func FitSystematic(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix,
 	}
 	s := newSysSolver(m, opt)
 	s.solve()
+	if !opt.keepRegressorBias {
+		s.correctRegressorNoise()
+	}
 	return s.result(&cfg)
 }
 

@@ -36,7 +36,7 @@ type segBlock struct {
 	fixes []int // the fixes with weight, in capture order
 	off   []int // each fix's first row in the block
 	rows  int
-	l     mat.TriDense // the lower Cholesky factor of C
+	l     packedL // the lower Cholesky factor of C
 	ok    bool
 }
 
@@ -137,6 +137,19 @@ func (s *sysSolver) buildBlocks(x []float64) {
 
 // block builds segment k's block from the fixes [from, to).
 func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fusion.Noise, anchor estimator.Pose) segBlock {
+	b, c := s.blockCov(k, from, to, g, gain, nz, anchor, true)
+	if c == nil {
+		return b
+	}
+	b.l, b.ok = factorPacked(c)
+	return b
+}
+
+// blockCov returns segment k's block without its factor, and its
+// covariance (nil for a block without rows): with fixes, as block states
+// it (and each fix's drift covariance set for reweight); without, the
+// odometry's drift alone.
+func (s *sysSolver) blockCov(k, from, to int, g []float64, gain *mat.Dense, nz *fusion.Noise, anchor estimator.Pose, fixes bool) (segBlock, *mat.SymDense) {
 	m := s.m
 	var b segBlock
 	tau := map[int]float64{}
@@ -152,7 +165,7 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 		b.rows += s.dim[i]
 	}
 	if b.rows == 0 {
-		return b
+		return b, nil
 	}
 	c := mat.NewSymDense(b.rows, nil)
 	// The rotation of the odometry frame's pose errors into the field
@@ -204,6 +217,9 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 				}
 			}
 		}
+		if !fixes {
+			continue
+		}
 		var drift [9]float64
 		for r := range s.dim[i] {
 			for q := range s.dim[i] {
@@ -213,11 +229,7 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 		s.drift[i] = drift
 		s.fixNoise(c, &b, n, i)
 	}
-	var ch mat.Cholesky
-	if b.ok = ch.Factorize(c); b.ok {
-		ch.LTo(&b.l)
-	}
-	return b
+	return b, c
 }
 
 // fixNoise adds the fixes' own errors to segment block b's covariance c

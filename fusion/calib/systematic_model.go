@@ -77,10 +77,12 @@ type sysModel struct {
 	// prediction's shift in latency starts (relative).
 	lat0 []float64
 
-	// Scratch of one dead reckoning: poses at each interval's start and
-	// end, and each interval's step.
-	p0, p1 []estimator.Pose
+	// Scratch of one dead reckoning: the pose at each interval's start
+	// (each interval ends where the next starts), each interval's step,
+	// and the pose at the last interval's end.
+	p0     []estimator.Pose
 	u      []estimator.Step
+	end    estimator.Pose
 	segInv []estimator.Pose
 
 	// The expected dead reckoning under the odometry's heading noise
@@ -117,7 +119,7 @@ func newSysModel(cfg *fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, 
 		m.lat0 = append(m.lat0, float64(sen.LatencyNs)*1e-9)
 	}
 	n := len(m.ivs)
-	m.p0, m.p1, m.u = make([]estimator.Pose, n), make([]estimator.Pose, n), make([]estimator.Step, n)
+	m.p0, m.u = make([]estimator.Pose, n), make([]estimator.Step, n)
 	m.epochs()
 	return m, nil
 }
@@ -133,8 +135,13 @@ func newSysModel(cfg *fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, 
 // the counts started afresh and only the jump's period is left out (a gap,
 // where the robot, which cannot leave one, spreads the travel over both).
 func (m *sysModel) intervals(odo []fusion.Odometry) {
-	odo = slices.Clone(odo)
-	slices.SortStableFunc(odo, func(a, b fusion.Odometry) int { return cmp.Compare(a.StampNs, b.StampNs) })
+	// A recording in stamp order (the usual case) is read as it is: a
+	// sorted copy of an hour's samples is 58 MB.
+	byStamp := func(a, b fusion.Odometry) int { return cmp.Compare(a.StampNs, b.StampNs) }
+	if !slices.IsSortedFunc(odo, byStamp) {
+		odo = slices.Clone(odo)
+		slices.SortStableFunc(odo, byStamp)
+	}
 	var ref, jump countsRef
 	var prevIMU *float64
 	newest := int64(math.MinInt64)
@@ -546,13 +553,13 @@ func (m *sysModel) deadReckon(g []float64) {
 		}
 		m.p0[k], m.u[k] = p, u
 		q := estimator.Advance(p, u)
-		m.p1[k] = q
 		f := math.Exp(-(hv - m.base[m.epochOf[k]]) / 2)
 		ex[0], ex[1] = ex[0]+f*(q.X-p.X), ex[1]+f*(q.Y-p.Y)
 		hv += m.turnVar(k, g, gain)
 		p = q
 	}
 	m.hv[len(m.ivs)], m.ex[len(m.ivs)] = hv, ex
+	m.end = p
 }
 
 // epochs finds each segment's epoch of intervals (sysModel.hv): from the
@@ -623,7 +630,7 @@ func idxOr(s []int, i int) int {
 func (m *sysModel) poseAt(t float64) estimator.Pose {
 	k := m.intervalAt(t)
 	if k >= len(m.ivs) {
-		return m.p1[len(m.ivs)-1]
+		return m.end
 	}
 	iv := &m.ivs[k]
 	if t <= float64(iv.t0) {

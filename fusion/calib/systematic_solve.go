@@ -6,8 +6,6 @@ import (
 	"slices"
 	"strings"
 
-	"gonum.org/v1/gonum/blas"
-	"gonum.org/v1/gonum/blas/blas64"
 	"gonum.org/v1/gonum/mat"
 	"gonum.org/v1/gonum/stat/distuv"
 
@@ -250,7 +248,7 @@ func (s *sysSolver) blockCost(e [][3]float64) float64 {
 			continue
 		}
 		y := s.gather(b, e)
-		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), y.RawVector())
+		b.l.solveVec(y.RawVector().Data)
 		cost += mat.Dot(y, y)
 	}
 	return cost
@@ -364,8 +362,8 @@ func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
 		// factor is known to be regular).
 		y := s.blockJac(b)
 		ye := s.gather(b, s.e)
-		blas64.Trsm(blas.Left, blas.NoTrans, 1, b.l.RawTriangular(), y.RawMatrix())
-		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), ye.RawVector())
+		b.l.solve(y.RawMatrix())
+		b.l.solveVec(ye.RawVector().Data)
 		var jtj mat.Dense
 		var jte mat.VecDense
 		jtj.Mul(y.T(), y)
@@ -433,8 +431,8 @@ func (s *sysSolver) meat() (*mat.SymDense, float64) {
 		}
 		a[k] = s.blockJac(b)
 		raw := a[k].RawMatrix()
-		blas64.Trsm(blas.Left, blas.NoTrans, 1, b.l.RawTriangular(), raw)
-		blas64.Trsm(blas.Left, blas.Trans, 1, b.l.RawTriangular(), raw)
+		b.l.solve(raw)
+		b.l.solveTrans(raw)
 	}
 	w := slices.Clone(s.w)
 	for i, v := range s.w {
@@ -459,7 +457,7 @@ func (s *sysSolver) meat() (*mat.SymDense, float64) {
 		}
 		// L^T A, with C = L L^T: its Gram matrix is A^T C A.
 		t := a[k]
-		blas64.Trmm(blas.Left, blas.Trans, 1, b.l.RawTriangular(), t.RawMatrix())
+		b.l.mulTrans(t.RawMatrix())
 		var g mat.Dense
 		g.Mul(t.T(), t)
 		for x := range cols {
@@ -800,7 +798,7 @@ func (s *sysSolver) whiteness() []SensorWhiteness {
 			continue
 		}
 		y := s.gather(b, s.e)
-		blas64.Trsv(blas.NoTrans, b.l.RawTriangular(), y.RawVector())
+		b.l.solveVec(y.RawVector().Data)
 		last := make([]int, n) // position in b.fixes of each sensor's last fix, plus one
 		for pos, i := range b.fixes {
 			si := s.m.fixes[i].sensor

@@ -125,3 +125,44 @@ func TestHangupIgnoredUnderNohup(t *testing.T) {
 		t.Fatalf("reckond after SIGTERM: %v\n%s", err, logs.String())
 	}
 }
+
+// TestInterruptIgnoredWhenInherited: a service started with SIGINT
+// ignored (in the background by a non-interactive shell, or as here by a
+// shell that traps it to nothing; POSIX, sh's trap) keeps it ignored, as
+// under nohup with SIGHUP: Ctrl-C in the starting script's terminal is
+// not for it.
+func TestInterruptIgnoredWhenInherited(t *testing.T) {
+	sh, err := exec.LookPath("sh")
+	if err != nil {
+		t.Skip("no sh")
+	}
+	cmd := exec.Command(sh, "-c", `trap "" INT; exec "$0" -test.run='^$'`, os.Args[0])
+	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=1024", "RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -journal "+t.TempDir())
+	logs := &lockedBuffer{}
+	cmd.Stderr = logs
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { cmd.Process.Kill() })
+	waitServing(t, logs, `msg=serving`)
+	status, err := os.ReadFile(fmt.Sprintf("/proc/%d/status", cmd.Process.Pid))
+	if err != nil {
+		t.Skip(err)
+	}
+	m := regexp.MustCompile(`(?m)^SigIgn:\s*([0-9a-f]+)$`).FindSubmatch(status)
+	if m == nil {
+		t.Fatalf("no SigIgn in /proc/PID/status:\n%s", status)
+	}
+	ign, err := strconv.ParseUint(string(m[1]), 16, 64)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Bit n-1 stands for signal n (proc(5)); SIGINT is 2.
+	if ign&(1<<(syscall.SIGINT-1)) == 0 {
+		t.Errorf("SIGINT no longer ignored (SigIgn %s): the starting terminal's Ctrl-C would stop the service", m[1])
+	}
+	cmd.Process.Signal(syscall.SIGTERM)
+	if err := cmd.Wait(); err != nil {
+		t.Fatalf("reckond after SIGTERM: %v\n%s", err, logs.String())
+	}
+}

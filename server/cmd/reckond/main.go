@@ -31,10 +31,14 @@ func main() {
 	// the process at once, without a word or a graceful stop. Under nohup
 	// (SIGHUP ignored) it stays ignored: Notify would install a handler in
 	// the ignore's place (os/signal), and the closing terminal would stop
-	// the service that nohup was to keep.
-	sigs := []os.Signal{os.Interrupt, syscall.SIGTERM}
-	if !signal.Ignored(syscall.SIGHUP) {
-		sigs = append(sigs, syscall.SIGHUP)
+	// the service that nohup was to keep. So does an ignored SIGINT (a
+	// service started in the background by a script: Ctrl-C in the
+	// script's terminal is not for it).
+	sigs := []os.Signal{syscall.SIGTERM}
+	for _, sig := range []os.Signal{os.Interrupt, syscall.SIGHUP} {
+		if !signal.Ignored(sig) {
+			sigs = append(sigs, sig)
+		}
 	}
 	ctx, stop := signal.NotifyContext(context.Background(), sigs...)
 	defer stop()

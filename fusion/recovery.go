@@ -7,6 +7,8 @@ import (
 	"math"
 	"slices"
 
+	"gonum.org/v1/gonum/stat/distuv"
+
 	"reckon.example/estimator"
 )
 
@@ -443,12 +445,56 @@ func (r *Robot) carry(c *candidate, to int64) bool {
 	if c.stamp == to {
 		return true
 	}
+	if r.turnedByHand(c.stamp, to) {
+		return false
+	}
 	if !r.extendMotion(&c.rel, &c.relW, &c.relD, c.stamp, to) {
 		return false
 	}
 	c.relCov = r.motionCov(&c.relW, &c.relD)
 	c.stamp = to
 	return true
+}
+
+// turnedByHand reports whether the IMU saw the robot turn over [ta, tb]
+// while its wheels stood still (wheelsStill): it was being carried or
+// turned by hand, and the odometry's motion over the stretch, none with
+// no uncertainty, is no carry of a candidate across it. The comparison is
+// the slip rule's (turnDisagreement), between the first and the last IMU
+// heading of the window in [ta, tb], at its gate. Carried across a carry of
+// the orchard carrier, fixes of frames 0.2 s apart counted as seen from
+// one place, and the relocation put it where it had been a frame before,
+// 0.3 m off with a covariance of a few centimetres (DEVELOPERS.md, "Design:
+// Gating and recovery"). Without an absolute IMU and wheels it reports
+// false.
+func (r *Robot) turnedByHand(ta, tb int64) bool {
+	if r.cfg.IMU != IMUAbsolute || len(r.cfg.Wheels) == 0 {
+		return false
+	}
+	live := r.live()
+	a, b := -1, -1
+	for i := r.locate(ta - 1); i < len(live) && live[i].t1 <= tb; i++ {
+		if e := &live[i]; e.kind == entMeas && e.imu && !e.failed && e.t1 >= ta {
+			if a < 0 {
+				a = i
+			}
+			b = i
+		}
+	}
+	if a < 0 || live[b].t1 <= live[a].t1 || !r.wheelsStill(live[a].t1, live[b].t1) {
+		return false
+	}
+	ea, eb := &live[a], &live[b]
+	var sums wheelSums
+	w, vw, vc, _ := r.wheelTurn(ea.t1, eb.t1, &sums)
+	dt := float64(eb.t1-ea.t1) * 1e-9
+	delta := estimator.Wrap(eb.meas.Z[0]-ea.meas.Z[0]) - w
+	// The variances turnDisagreement takes; the steps' vw may be 0 here.
+	v := vw + ea.meas.R[0] + eb.meas.R[0] + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + r.cfg.Noise.IMUOffsetVarRad2PerRad*math.Abs(w) + vc
+	if r.turnGate == 0 {
+		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)
+	}
+	return delta*delta > r.turnGate*v
 }
 
 // motionCov returns a relative motion's covariance from its white part w

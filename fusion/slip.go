@@ -384,7 +384,8 @@ const (
 // disagreement with the IMU over such an interval is no slip (a free-rolling
 // wheel that does not turn does not slip; the IMU read noise, a glitch, or
 // the robot was turned by hand, which the IMU's heading update and the
-// fixes take): taken as one, its covariance-matching factor, set against
+// fixes take, and across which recovery carries no candidate,
+// turnedByHand): taken as one, its covariance-matching factor, set against
 // steps of no motion, came out at the bound, and carried into the steps
 // once the robot drove off, it made a robot whose IMU glitched 0.1 s
 // before it started distrust its position for seconds (a 95% radius of

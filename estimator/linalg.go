@@ -109,6 +109,26 @@ func (e errAsymmetric) Error() string {
 	return fmt.Sprintf("covariance is not symmetric at (%d,%d)", e.i, e.j)
 }
 
+// InvertSPD3 returns the inverse of the d x d (d at most 3; row-major,
+// stride 3) symmetric positive-definite a, through its Cholesky factor
+// (cholesky, then cholSolveVec against each column of the identity), and
+// false where a is not positive definite. It allocates nothing.
+func InvertSPD3(a *[9]float64, d int) (inv [9]float64, ok bool) {
+	var l [9]float64
+	if d < 1 || d > 3 || !cholesky(a[:], l[:], d, 3) {
+		return inv, false
+	}
+	for j := 0; j < d; j++ {
+		var e, x [3]float64
+		e[j] = 1
+		cholSolveVec(l[:], d, 3, e[:], x[:])
+		for i := 0; i < d; i++ {
+			inv[i*3+j] = x[i]
+		}
+	}
+	return inv, true
+}
+
 // SolveSPD solves a x = b for the n x n symmetric positive-definite a
 // (row-major, stride MaxStates) and the n x m right-hand side b (stride
 // MaxStates), writing x into b. It reports false, leaving b unchanged, if a

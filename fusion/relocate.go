@@ -317,50 +317,16 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 }
 
 // invertSPD returns the inverse of the d x d (d at most 3, stride 3)
-// symmetric positive definite matrix a through its Cholesky factor, a = L
-// L^T and a^-1 = L^-T L^-1 (Golub and Van Loan, Matrix Computations, 4th
-// ed., sec. 4.2; backward stable, where the adjugate, tried first, lost
+// symmetric positive definite matrix a (estimator.InvertSPD3, by its
+// Cholesky factor: backward stable, Golub and Van Loan, Matrix
+// Computations, 4th ed., sec. 4.2, where the adjugate, tried first, lost
 // five digits to cancellation at a condition number of 4e6), and false
-// where a is not positive definite (a pivot not positive) or its 1-norm
-// condition number passes gonum's mat.ConditionTolerance, where gonum's
-// solves refuse it too.
+// where a is not positive definite or its 1-norm condition number passes
+// gonum's mat.ConditionTolerance, where gonum's solves refuse it too.
 func invertSPD(a *[9]float64, d int) ([9]float64, bool) {
-	var l, li, inv [9]float64
-	for j := range d {
-		s := a[j*3+j]
-		for k := range j {
-			s -= l[j*3+k] * l[j*3+k]
-		}
-		if !(s > 0) || math.IsInf(s, 0) {
-			return inv, false
-		}
-		l[j*3+j] = math.Sqrt(s)
-		for i := j + 1; i < d; i++ {
-			t := a[i*3+j]
-			for k := range j {
-				t -= l[i*3+k] * l[j*3+k]
-			}
-			l[i*3+j] = t / l[j*3+j]
-		}
-	}
-	for j := range d {
-		li[j*3+j] = 1 / l[j*3+j]
-		for i := j + 1; i < d; i++ {
-			var t float64
-			for k := j; k < i; k++ {
-				t += l[i*3+k] * li[k*3+j]
-			}
-			li[i*3+j] = -t / l[i*3+i]
-		}
-	}
-	for p := range d {
-		for q := range d {
-			var t float64
-			for k := max(p, q); k < d; k++ {
-				t += li[k*3+p] * li[k*3+q]
-			}
-			inv[p*3+q] = t
-		}
+	inv, ok := estimator.InvertSPD3(a, d)
+	if !ok {
+		return inv, false
 	}
 	// The 1-norm condition number, ||a||_1 ||a^-1||_1 (Golub and Van Loan,
 	// sec. 2.6.2).
@@ -473,7 +439,7 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 		di := ci.meas.Kind.Dim()
 		var dc [9]float64 // D_i C
 		if cal.on {
-			dc = mul33(&ci.relD, &cal.cov)
+			mul3(&dc, &ci.relD, &cal.cov)
 		}
 		for j := i; j < len(set); j++ {
 			cj := &set[j]
@@ -484,7 +450,7 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 				cov = ci.relW
 			} else {
 				_, jb := composeJacobians(estimator.Pose{Heading: ci.rel.Heading - cj.rel.Heading}, estimator.Pose{})
-				cov = mul33(&jb, &cj.relW)
+				mul3(&cov, &jb, &cj.relW)
 			}
 			if cal.on {
 				for p := range 3 {
@@ -544,15 +510,4 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 	grad = mat.NewVecDense(3, nil)
 	grad.MulVec(a.T(), &sv)
 	return info, grad, mat.Dot(v, &sv), dim, true
-}
-
-// mul33 returns the product a b of two 3 x 3 row-major matrices.
-func mul33(a, b *[9]float64) [9]float64 {
-	var c [9]float64
-	for p := range 3 {
-		for q := range 3 {
-			c[p*3+q] = a[p*3]*b[q] + a[p*3+1]*b[3+q] + a[p*3+2]*b[6+q]
-		}
-	}
-	return c
 }

@@ -86,44 +86,17 @@ func TestHangupStopsGracefully(t *testing.T) {
 }
 
 // TestHangupIgnoredUnderNohup: reckond started by nohup(1), SIGHUP
-// ignored, keeps it ignored once serving (/proc/PID/status, SigIgn, bit
-// 0 for signal 1: proc(5)), so the terminal's closing leaves it running
-// as nohup means. Before, signal.NotifyContext installed a handler in the
-// ignore's place (os/signal's documentation says so) and the hangup
-// stopped the service. SIGTERM still stops it with exit 0.
+// ignored, keeps it ignored once serving, so the terminal's closing leaves
+// it running as nohup means. Before, signal.NotifyContext installed a
+// handler in the ignore's place (os/signal's documentation says so) and
+// the hangup stopped the service. SIGTERM still stops it with exit 0.
 func TestHangupIgnoredUnderNohup(t *testing.T) {
 	nohup, err := exec.LookPath("nohup")
 	if err != nil {
 		t.Skip("no nohup")
 	}
-	cmd := exec.Command(nohup, os.Args[0], "-test.run=^$")
-	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=1024", "RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -journal "+t.TempDir())
-	logs := &lockedBuffer{}
-	cmd.Stderr = logs
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { cmd.Process.Kill() })
-	waitServing(t, logs, `msg=serving`)
-	status, err := os.ReadFile(fmt.Sprintf("/proc/%d/status", cmd.Process.Pid))
-	if err != nil {
-		t.Skip(err)
-	}
-	m := regexp.MustCompile(`(?m)^SigIgn:\s*([0-9a-f]+)$`).FindSubmatch(status)
-	if m == nil {
-		t.Fatalf("no SigIgn in /proc/PID/status:\n%s", status)
-	}
-	ign, err := strconv.ParseUint(string(m[1]), 16, 64)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if ign&1 == 0 {
-		t.Errorf("SIGHUP no longer ignored under nohup (SigIgn %s): a hangup would stop the service", m[1])
-	}
-	cmd.Process.Signal(syscall.SIGTERM)
-	if err := cmd.Wait(); err != nil {
-		t.Fatalf("reckond after SIGTERM: %v\n%s", err, logs.String())
-	}
+	checkStillIgnored(t, exec.Command(nohup, os.Args[0], "-test.run=^$"), syscall.SIGHUP,
+		"a hangup would stop the service")
 }
 
 // TestInterruptIgnoredWhenInherited: a service started with SIGINT
@@ -136,7 +109,16 @@ func TestInterruptIgnoredWhenInherited(t *testing.T) {
 	if err != nil {
 		t.Skip("no sh")
 	}
-	cmd := exec.Command(sh, "-c", `trap "" INT; exec "$0" -test.run='^$'`, os.Args[0])
+	checkStillIgnored(t, exec.Command(sh, "-c", `trap "" INT; exec "$0" -test.run='^$'`, os.Args[0]), syscall.SIGINT,
+		"the starting terminal's Ctrl-C would stop the service")
+}
+
+// checkStillIgnored starts reckond by cmd, which runs this test binary
+// with sig ignored, and checks that the service, once serving, still
+// ignores it (/proc/PID/status, SigIgn: bit n-1 for signal n, proc(5));
+// then that SIGTERM stops it with exit 0.
+func checkStillIgnored(t *testing.T, cmd *exec.Cmd, sig syscall.Signal, why string) {
+	t.Helper()
 	cmd.Env = append(os.Environ(), "RECKOND_TEST_NOFILE=1024", "RECKOND_TEST_ARGS=-listen 127.0.0.1:0 -journal "+t.TempDir())
 	logs := &lockedBuffer{}
 	cmd.Stderr = logs
@@ -157,9 +139,8 @@ func TestInterruptIgnoredWhenInherited(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// Bit n-1 stands for signal n (proc(5)); SIGINT is 2.
-	if ign&(1<<(syscall.SIGINT-1)) == 0 {
-		t.Errorf("SIGINT no longer ignored (SigIgn %s): the starting terminal's Ctrl-C would stop the service", m[1])
+	if ign&(1<<(sig-1)) == 0 {
+		t.Errorf("%v no longer ignored (SigIgn %s): %s", sig, m[1], why)
 	}
 	cmd.Process.Signal(syscall.SIGTERM)
 	if err := cmd.Wait(); err != nil {

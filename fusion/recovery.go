@@ -7,8 +7,6 @@ import (
 	"math"
 	"slices"
 
-	"gonum.org/v1/gonum/stat/distuv"
-
 	"reckon.example/estimator"
 )
 
@@ -484,17 +482,10 @@ func (r *Robot) turnedByHand(ta, tb int64) bool {
 	if a < 0 || live[b].t1 <= live[a].t1 || !r.wheelsStill(live[a].t1, live[b].t1) {
 		return false
 	}
-	ea, eb := &live[a], &live[b]
 	var sums wheelSums
-	w, vw, vc, _ := r.wheelTurn(ea.t1, eb.t1, &sums)
-	dt := float64(eb.t1-ea.t1) * 1e-9
-	delta := estimator.Wrap(eb.meas.Z[0]-ea.meas.Z[0]) - w
-	// The variances turnDisagreement takes; the steps' vw may be 0 here.
-	v := vw + ea.meas.R[0] + eb.meas.R[0] + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + r.cfg.Noise.IMUOffsetVarRad2PerRad*math.Abs(w) + vc
-	if r.turnGate == 0 {
-		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)
-	}
-	return delta*delta > r.turnGate*v
+	_, _, _, ns, _, _ := r.turnDisagreement(imuAnchor(&live[a]), imuAnchor(&live[b]), &sums)
+	r.initTurnGate()
+	return ns > r.turnGate
 }
 
 // motionCov returns a relative motion's covariance from its white part w

@@ -102,6 +102,11 @@ type turnAnchor struct {
 	varRad2 float64 // its reading's variance
 }
 
+// imuAnchor is the IMU heading of window entry e as a comparison's end.
+func imuAnchor(e *entry) turnAnchor {
+	return turnAnchor{set: true, stamp: e.t1, heading: e.meas.Z[0], varRad2: e.meas.R[0]}
+}
+
 // checkTurn compares the IMU heading of window entry at, just applied, with
 // the anchor, as above. It does nothing unless the robot has an absolute
 // IMU and wheels.
@@ -110,7 +115,7 @@ func (r *Robot) checkTurn(res *Result, at int) {
 		return
 	}
 	e := &r.live()[at]
-	b := turnAnchor{set: true, stamp: e.t1, heading: e.meas.Z[0], varRad2: e.meas.R[0]}
+	b := imuAnchor(e)
 	sl := &r.slip
 	if r.longTurn(res, b) {
 		return
@@ -129,9 +134,7 @@ func (r *Robot) checkTurn(res *Result, at int) {
 		return
 	}
 	dt := float64(b.stamp-a.stamp) * 1e-9
-	if r.turnGate == 0 {
-		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)
-	}
+	r.initTurnGate()
 	// The covariance-matching factor: of this interval outside a slip, of
 	// the slip so far inside one.
 	sum, slipping := sl.turnSum+delta, sl.factor > 0
@@ -182,14 +185,23 @@ func (r *Robot) checkTurn(res *Result, at int) {
 // entry of the interval (-1: none); c holds the comparison's sums
 // (wheelTurn).
 func (r *Robot) turnDisagreement(a, b turnAnchor, c *wheelSums) (delta, vw, vi, ns, w float64, first int) {
+	// Standing wheels' steps carry no variance (vw 0), and a stretch
+	// without odometry has none (first -1): the comparison still holds,
+	// on the IMU's variance alone (turnedByHand); the slip rule's callers
+	// leave such stretches alone.
 	w, vw, vc, first := r.wheelTurn(a.stamp, b.stamp, c)
-	if first < 0 || !(vw > 0) {
-		return 0, vw, 0, 0, w, first
-	}
 	dt := float64(b.stamp-a.stamp) * 1e-9
 	delta = estimator.Wrap(b.heading-a.heading) - w
 	vi = a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + r.cfg.Noise.IMUOffsetVarRad2PerRad*math.Abs(w) + vc
 	return delta, vw, vi, delta * delta / (vw + vi), w, first
+}
+
+// initTurnGate sets turnGate, the short comparison's chi-square gate with
+// 1 degree of freedom, on first use.
+func (r *Robot) initTurnGate() {
+	if r.turnGate == 0 {
+		r.turnGate = distuv.ChiSquared{K: 1}.Quantile(1 - (1-r.cfg.GateProbability)/turnTests)
+	}
 }
 
 // longTurn runs the long comparison at IMU heading b (see the top of the
@@ -247,7 +259,7 @@ func (r *Robot) midAnchor(a, b turnAnchor) turnAnchor {
 			continue
 		}
 		if d, bd := absNs(e.t1-want), absNs(best.stamp-want); d < bd {
-			best = turnAnchor{set: true, stamp: e.t1, heading: e.meas.Z[0], varRad2: e.meas.R[0]}
+			best = imuAnchor(e)
 		}
 	}
 	return best

@@ -397,7 +397,6 @@ const ocKidnapRuns = 12
 // kept from being carried across a turn by hand (turnedByHand), one run
 // with the IMU on was reseeded while still carried, 0.3 m off, and trusted
 // outside the region for 4.08 s after the set-down (1.47% of the samples).
-
 func TestOrchardKidnap(t *testing.T) {
 	for _, c := range []struct {
 		name     string

@@ -26,9 +26,24 @@ const (
 // the fitted correction (metres of mount offset, or seconds of latency)
 // and R2 is NaN. A run the fit cannot use is one undetermined finding.
 func DiagnoseSensors(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix) []Finding {
-	fit, err := FitSystematic(cfg, odo, fixes, SystematicOptions{SensorsOnly: true})
+	out, _ := DiagnoseSensorsFrom(cfg, Samples(odo), fixes)
+	return out
+}
+
+// DiagnoseSensorsFrom is DiagnoseSensors with the odometry handed over by
+// a source (FitSystematicFrom); it returns the source's error, if it had
+// one, and no findings.
+func DiagnoseSensorsFrom(cfg fusion.Config, odo OdometrySource, fixes []fusion.Fix) ([]Finding, error) {
+	var readErr error
+	fit, err := FitSystematicFrom(cfg, func(yield func(*fusion.Odometry) bool) error {
+		readErr = odo(yield)
+		return readErr
+	}, fixes, SystematicOptions{SensorsOnly: true})
+	if readErr != nil {
+		return nil, readErr
+	}
 	if err != nil {
-		return []Finding{{Field: "sensors", Sentence: err.Error(), Slope: math.NaN(), R2: math.NaN(), Undetermined: true}}
+		return []Finding{{Field: "sensors", Sentence: err.Error(), Slope: math.NaN(), R2: math.NaN(), Undetermined: true}}, nil
 	}
 	var out []Finding
 	for si, s := range cfg.Sensors {
@@ -66,5 +81,5 @@ func DiagnoseSensors(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fi
 			}
 		}
 	}
-	return out
+	return out, nil
 }

@@ -275,6 +275,36 @@ var patterns = map[ParamKind]string{
 // with the reference point and cannot be told apart from it; the wheels'
 // rolling directions, whose errors are second order in a run.
 func FitSystematic(cfg fusion.Config, odo []fusion.Odometry, fixes []fusion.Fix, opt SystematicOptions) (SystematicFit, error) {
+	return FitSystematicFrom(cfg, Samples(odo), fixes, opt)
+}
+
+// OdometrySource hands a recording's odometry samples to yield one after
+// another, in stamp order or not, until yield returns false or they end;
+// it returns why it could not (a read that failed), or nil. A source may
+// be called more than once (FitSystematicFrom reads an unsorted one
+// twice) and must hand over the same samples each time; it may reuse the
+// sample it passes once yield has returned.
+type OdometrySource func(yield func(*fusion.Odometry) bool) error
+
+// Samples is the source of the samples odo.
+func Samples(odo []fusion.Odometry) OdometrySource {
+	return func(yield func(*fusion.Odometry) bool) error {
+		for k := range odo {
+			if !yield(&odo[k]) {
+				break
+			}
+		}
+		return nil
+	}
+}
+
+// FitSystematicFrom is FitSystematic with the odometry handed over by a
+// source (an error of the source's is returned wrapped): the fit keeps
+// only its own compact intervals of the samples (32 bytes and the wheels'
+// travels, where a fusion.Odometry takes 80 and its counts and heading),
+// so that a caller that reads the recording from a file need not hold
+// it (reckon calibrate reads the journal again).
+func FitSystematicFrom(cfg fusion.Config, odo OdometrySource, fixes []fusion.Fix, opt SystematicOptions) (SystematicFit, error) {
 	r, err := fusion.New(cfg)
 	if err != nil {
 		return SystematicFit{}, fmt.Errorf("%w: %w", ErrSystematic, err)

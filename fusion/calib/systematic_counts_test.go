@@ -20,11 +20,13 @@ func ivTotals(t *testing.T, c fusion.Config, odo []fusion.Odometry) (travel []fl
 	}
 	cfg := r.Config()
 	m := &sysModel{cfg: &cfg, nw: len(cfg.Wheels), rotation: cfg.IMU == fusion.IMURotation}
-	m.intervals(odo)
+	if err := m.intervals(Samples(odo)); err != nil {
+		t.Fatal(err)
+	}
 	travel = make([]float64, m.nw)
 	for _, iv := range m.ivs {
 		for i := range travel {
-			travel[i] += m.travel[iv.off+i]
+			travel[i] += m.travel[int(iv.off)+i]
 		}
 		covered += iv.t1 - iv.t0
 		turn += iv.imu

@@ -62,7 +62,7 @@ func (m *sysModel) stepCov(k int, g []float64, gain *mat.Dense, nz *fusion.Noise
 	clear(vars)
 	var mean float64
 	for i := range m.nw {
-		t := math.Abs(get(g, idxOr(m.wheelScale, i), 1) * m.travel[iv.off+i])
+		t := math.Abs(get(g, idxOr(m.wheelScale, i), 1) * m.travel[int(iv.off)+i])
 		vars[i] = nz.WheelVarM2PerM * t
 		mean += t / float64(m.nw)
 	}
@@ -137,7 +137,7 @@ func (s *sysSolver) buildBlocks(x []float64) {
 
 // block builds segment k's block from the fixes [from, to).
 func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fusion.Noise, anchor estimator.Pose) segBlock {
-	b, c := s.blockCov(k, from, to, g, gain, nz, anchor, true)
+	b, c := s.blockCov(k, from, to, g, gain, nz, anchor, &s.cov)
 	if c == nil {
 		return b
 	}
@@ -146,10 +146,10 @@ func (s *sysSolver) block(k, from, to int, g []float64, gain *mat.Dense, nz *fus
 }
 
 // blockCov returns segment k's block without its factor, and its
-// covariance (nil for a block without rows): with fixes, as block states
-// it (and each fix's drift covariance set for reweight); without, the
-// odometry's drift alone.
-func (s *sysSolver) blockCov(k, from, to int, g []float64, gain *mat.Dense, nz *fusion.Noise, anchor estimator.Pose, fixes bool) (segBlock, *mat.SymDense) {
+// covariance (nil for a block without rows): with dst, as block states it,
+// in dst (and each fix's drift covariance set for reweight); without, the
+// odometry's drift alone, in a matrix of its own.
+func (s *sysSolver) blockCov(k, from, to int, g []float64, gain *mat.Dense, nz *fusion.Noise, anchor estimator.Pose, dst *mat.SymDense) (segBlock, *mat.SymDense) {
 	m := s.m
 	var b segBlock
 	tau := map[int]float64{}
@@ -167,7 +167,17 @@ func (s *sysSolver) blockCov(k, from, to int, g []float64, gain *mat.Dense, nz *
 	if b.rows == 0 {
 		return b, nil
 	}
-	c := mat.NewSymDense(b.rows, nil)
+	fixes := dst != nil
+	var c *mat.SymDense
+	if fixes {
+		// One segment's matrix after another: each is factorised
+		// (factorPacked) before the next is built.
+		dst.Reset()
+		dst.ReuseAsSym(b.rows)
+		c = dst
+	} else {
+		c = mat.NewSymDense(b.rows, nil)
+	}
 	// The rotation of the odometry frame's pose errors into the field
 	// frame.
 	sp, cp := math.Sincos(anchor.Heading + m.segInv[k].Heading)

@@ -81,19 +81,19 @@ func (s *sysSolver) correctRegressorNoise() {
 	// Back to the solution, and its normal matrix.
 	s.evaluate(s.x, s.e)
 	s.jacobian(s.x)
-	nm, _ := s.normal(nil)
-	var ch mat.Cholesky
-	if !ch.Factorize(nm) {
+	nm := s.normal(nil)
+	sf, ok := nm.factor(0)
+	if !ok {
 		return
 	}
-	bv := mat.NewVecDense(s.p, nil)
-	bv.SetVec(j, bj)
-	var dx mat.VecDense
-	if ch.SolveVecTo(&dx, bv) != nil {
+	bg := make([]float64, s.ng)
+	bg[j] = bj
+	dg, da, ok := sf.solve(bg, make([][3]float64, len(nm.ga)))
+	if !ok {
 		return
 	}
-	for i := range s.p {
-		s.x[i] += dx.AtVec(i)
+	for i, v := range stepVector(dg, da) {
+		s.x[i] += v
 	}
 	s.evaluate(s.x, s.e)
 }
@@ -147,7 +147,7 @@ func (s *sysSolver) readingDrift(k, from, to int, x []float64, r reckoning) *mat
 	g := x[:s.ng]
 	nz := s.m.cfg.Noise
 	nz.TurnVarRad2PerRad, nz.LateralSlipVarM2PerM = 0, 0
-	_, c := s.blockCov(k, from, to, g, s.m.solver(g), &nz, s.anchors(x)[k], false)
+	_, c := s.blockCov(k, from, to, g, s.m.solver(g), &nz, s.anchors(x)[k], nil)
 	return c
 }
 

@@ -43,7 +43,7 @@ func TestExpectedChord(t *testing.T) {
 		ts := (k + 1) * 500_000_000
 		fixes = append(fixes, fusion.Fix{StampNs: ts, SensorID: cfg.Sensors[0].ID, Kind: fusion.FixPose, XM: v * float64(ts) * 1e-9, Cov: []float64{1e-4, 0, 0, 0, 1e-4, 0, 0, 0, 1e-4}})
 	}
-	m, err := newSysModel(&cfg, odo, fixes, SystematicOptions{SegmentS: 100})
+	m, err := newSysModel(&cfg, Samples(odo), fixes, SystematicOptions{SegmentS: 100})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -36,6 +36,9 @@ type sysSolver struct {
 	// whitened residual (zero before the first blocks).
 	blocks []segBlock
 	drift  [][9]float64
+	// cov is the scratch in which each segment's covariance is built
+	// before its factor (block).
+	cov mat.SymDense
 	// noise is each fix's own error covariance in its whitened residual
 	// (I for a white sensor; sysModel.ownNoise).
 	noise      [][9]float64
@@ -339,24 +342,17 @@ func (s *sysSolver) jacobian(x []float64) {
 }
 
 // normal returns J^T C^-1 J (prior included) and J^T C^-1 e at the last
-// jacobian, over the segments' blocks; with scores, also each segment's
-// score J^T C^-1 e (length p).
-func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
+// jacobian, over the segments' blocks, as a block arrow (arrowNormal);
+// with scores, also each segment's score J^T C^-1 e over its columns (the
+// globals, then its anchor's three).
+func (s *sysSolver) normal(scores [][]float64) *arrowNormal {
 	m := s.m
-	ng, cols := s.ng, s.ng+3
-	nm := mat.NewSymDense(s.p, nil)
-	gr := mat.NewVecDense(s.p, nil)
-	idx := make([]int, cols)
-	for j := range ng {
-		idx[j] = j
-	}
+	ng := s.ng
+	nm := newArrowNormal(ng, len(m.segStart))
 	for k := range s.blocks {
 		b := &s.blocks[k]
 		if b.rows == 0 || !b.ok {
 			continue
-		}
-		for c := range 3 {
-			idx[ng+c] = ng + 3*k + c
 		}
 		// Whitened by the block's factor (plain triangular solves: the
 		// factor is known to be regular).
@@ -368,24 +364,15 @@ func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
 		var jte mat.VecDense
 		jtj.Mul(y.T(), y)
 		jte.MulVec(y.T(), ye)
-		for a := range cols {
-			gr.SetVec(idx[a], gr.AtVec(idx[a])+jte.AtVec(a))
-			if scores != nil {
-				scores[k][idx[a]] += jte.AtVec(a)
-			}
-			for c := a; c < cols; c++ {
-				ia, ic := idx[a], idx[c]
-				if ia > ic {
-					ia, ic = ic, ia
-				}
-				nm.SetSym(ia, ic, nm.At(ia, ic)+jtj.At(a, c))
-			}
+		nm.addBlock(k, &jtj, &jte)
+		if scores != nil {
+			copy(scores[k], jte.RawVector().Data)
 		}
 	}
 	for j, pr := range m.params {
 		v := 1 / (s.prior[j] * s.prior[j])
-		nm.SetSym(j, j, nm.At(j, j)+v)
-		gr.SetVec(j, gr.AtVec(j)+v*(s.x[j]-pr.Configured))
+		nm.a[j*ng+j] += v
+		nm.gg[j] += v * (s.x[j] - pr.Configured)
 	}
 	// An anchor the fixes leave free in some direction would make N
 	// singular: all its fixes lost their weight, or the robot stood before
@@ -397,10 +384,12 @@ func (s *sysSolver) normal(scores [][]float64) (*mat.SymDense, *mat.VecDense) {
 	// (30 km)^2, as before, lay below the rounding of N's largest entries
 	// (3e6 on a ten-minute run): its factorisation failed, and the fit
 	// reported no standard errors.
-	for j := ng; j < s.p; j++ {
-		nm.SetSym(j, j, nm.At(j, j)+1e-4)
+	for k := range nm.d {
+		for c := range 3 {
+			nm.d[k][c*4] += 1e-4
+		}
 	}
-	return nm, gr
+	return nm
 }
 
 // blockJac returns the block's rows of the last jacobian: the globals'
@@ -416,13 +405,14 @@ func (s *sysSolver) blockJac(b *segBlock) *mat.Dense {
 	return jb
 }
 
-// meat returns, at the last jacobian, sum J^T C_w^-1 C C_w^-1 J over the
-// segments (prior included, as in normal) and the cost e^T C^-1 e, where
-// C_w is each segment's covariance with the fixes' robust weights (the
-// blocks as built) and C the one the configuration states, every fix with
-// weight taking weight 1. The blocks are rebuilt as they were.
-func (s *sysSolver) meat() (*mat.SymDense, float64) {
-	ng, cols := s.ng, s.ng+3
+// meat returns, at the last jacobian, each segment's J^T C_w^-1 C C_w^-1 J
+// over its columns (the globals, then its anchor's three; nil for a
+// segment without rows), without the prior (covariances adds it), and
+// the cost e^T C^-1 e, where C_w is each segment's covariance with the
+// fixes' robust weights (the blocks as built) and C the one the
+// configuration states, every fix with weight taking weight 1. The
+// blocks are rebuilt as they were.
+func (s *sysSolver) meat() ([]*mat.Dense, float64) {
 	a := make([]*mat.Dense, len(s.blocks))
 	for k := range s.blocks {
 		b := &s.blocks[k]
@@ -442,36 +432,19 @@ func (s *sysSolver) meat() (*mat.SymDense, float64) {
 	}
 	s.buildBlocks(s.x)
 	chi2 := s.blockCost(s.e)
-	mt := mat.NewSymDense(s.p, nil)
-	idx := make([]int, cols)
-	for j := range ng {
-		idx[j] = j
-	}
+	mt := make([]*mat.Dense, len(s.blocks))
 	for k := range s.blocks {
 		b := &s.blocks[k]
 		if a[k] == nil || !b.ok {
 			continue
-		}
-		for c := range 3 {
-			idx[ng+c] = ng + 3*k + c
 		}
 		// L^T A, with C = L L^T: its Gram matrix is A^T C A.
 		t := a[k]
 		b.l.mulTrans(t.RawMatrix())
 		var g mat.Dense
 		g.Mul(t.T(), t)
-		for x := range cols {
-			for y := x; y < cols; y++ {
-				ix, iy := idx[x], idx[y]
-				if ix > iy {
-					ix, iy = iy, ix
-				}
-				mt.SetSym(ix, iy, mt.At(ix, iy)+g.At(x, y))
-			}
-		}
-	}
-	for j := range s.m.params {
-		mt.SetSym(j, j, mt.At(j, j)+1/(s.prior[j]*s.prior[j]))
+		mt[k] = &g
+		a[k] = nil
 	}
 	copy(s.w, w)
 	s.buildBlocks(s.x)
@@ -491,24 +464,20 @@ func (s *sysSolver) lm(maxIter int) {
 	for it := 0; it < maxIter; it++ {
 		s.iterations++
 		s.jacobian(s.x)
-		nm, gr := s.normal(nil)
+		nm := s.normal(nil)
 		accepted := false
 		for try := 0; try < 12 && !accepted; try++ {
-			a := mat.NewSymDense(s.p, nil)
-			a.CopySym(nm)
-			for j := range s.p {
-				a.SetSym(j, j, nm.At(j, j)*(1+lambda))
-			}
-			var ch mat.Cholesky
-			if !ch.Factorize(a) {
+			sf, ok := nm.factor(lambda)
+			if !ok {
 				lambda *= 10
 				continue
 			}
-			var d mat.VecDense
-			if err := ch.SolveVecTo(&d, gr); err != nil {
+			dg, da, ok := sf.solve(nm.gg, nm.ga)
+			if !ok {
 				lambda *= 10
 				continue
 			}
+			d := mat.NewVecDense(s.p, stepVector(dg, da))
 			for j := range s.p {
 				xn[j] = s.x[j] - d.AtVec(j)
 			}
@@ -520,7 +489,7 @@ func (s *sysSolver) lm(maxIter int) {
 				accepted = true
 				// A damped step is small far from the minimum too: test
 				// the Gauss-Newton step at the old point instead.
-				s.converged = s.small(&d) && lambda <= 1e-3
+				s.converged = s.small(d) && lambda <= 1e-3
 			}
 			if !accepted {
 				lambda *= 10
@@ -713,12 +682,17 @@ func (s *sysSolver) covariances() (stated, robust *mat.Dense, s2 float64) {
 	nseg := len(s.blocks)
 	scores := make([][]float64, nseg)
 	for k := range scores {
-		scores[k] = make([]float64, s.p)
+		scores[k] = make([]float64, ng+3)
 	}
-	nm, _ := s.normal(scores)
-	var ch mat.Cholesky
-	inv := mat.NewSymDense(s.p, nil)
-	if !ch.Factorize(nm) || ch.InverseTo(inv) != nil {
+	nm := s.normal(scores)
+	sf, ok := nm.factor(0)
+	if !ok {
+		return nil, nil, 0
+	}
+	// The globals' rows of N^-1, segment by segment (arrowNormal): the
+	// sandwiches below are sums over the segments of their columns.
+	sinv, w, ok := sf.globalRows()
+	if !ok {
 		return nil, nil, 0
 	}
 	var rows int
@@ -727,26 +701,49 @@ func (s *sysSolver) covariances() (stated, robust *mat.Dense, s2 float64) {
 			rows += b.rows
 		}
 	}
-	var full mat.Dense
-	full.CloneFrom(inv)
-	sub := full.Slice(0, ng, 0, s.p)
 	mt, chi2 := s.meat()
 	s2 = chi2 / math.Max(float64(rows-s.p), 1)
+	// The prior's part of the meat, on the globals' diagonal.
+	pr := mat.NewDiagDense(ng, nil)
+	for j := range s.m.params {
+		pr.SetDiag(j, 1/(s.prior[j]*s.prior[j]))
+	}
 	var tm mat.Dense
-	tm.Mul(sub, mt)
+	tm.Mul(sinv, pr)
 	stated = mat.NewDense(ng, ng, nil)
-	stated.Mul(&tm, sub.T())
-	meat := mat.NewSymDense(s.p, nil)
-	for _, g := range scores {
-		meat.SymRankOne(meat, 1, mat.NewVecDense(s.p, g))
+	stated.Mul(&tm, sinv)
+	sw := mat.NewDense(ng, ng, nil)
+	var t, u mat.Dense
+	var v mat.VecDense
+	for k := range nseg {
+		r := segRows(sinv, w[k])
+		if mt[k] != nil {
+			t.Reset()
+			u.Reset()
+			t.Mul(r, mt[k])
+			u.Mul(&t, r.T())
+			stated.Add(stated, &u)
+		}
+		v.Reset()
+		v.MulVec(r, mat.NewVecDense(ng+3, scores[k]))
+		u.Reset()
+		u.Outer(1, &v, &v)
+		sw.Add(sw, &u)
 	}
-	var tmp, sw mat.Dense
-	tmp.Mul(sub, meat)
-	sw.Mul(&tmp, sub.T())
 	if nseg > 1 {
-		sw.Scale(float64(nseg)/float64(nseg-1), &sw)
+		sw.Scale(float64(nseg)/float64(nseg-1), sw)
 	}
-	return stated, &sw, s2
+	return stated, sw, s2
+}
+
+// stepVector is a step's globals, then each anchor's three, as one vector.
+func stepVector(g []float64, a [][3]float64) []float64 {
+	d := make([]float64, 0, len(g)+3*len(a))
+	d = append(d, g...)
+	for _, v := range a {
+		d = append(d, v[:]...)
+	}
+	return d
 }
 
 // result assembles the fit; it fails when the fit has no covariance (its

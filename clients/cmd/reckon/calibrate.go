@@ -100,30 +100,66 @@ into one HTML report with a calibration section at the top.`)
 		return fmt.Errorf("%s: %w: %w", cfgName, errRefused, err)
 	}
 	cfg = r.Config()
-	rec, err := readRun(ctx, run, *robot, cfgProto, *runN)
+	// The run is kept by kind for the wiring's diagnosis, not as a list of
+	// inputs (a RecordedInput and a copy of each: 190 MB of the demo's
+	// hour, held through the fit), and let go after it: the two fits read
+	// the odometry again (odometry below), keeping only their compact
+	// intervals (calib.FitSystematicFrom), and the NEES the whole run.
+	var odo []fusion.Odometry
+	var imu []fusion.Heading
+	var fixes []fusion.Fix
+	rec, err := readRunEach(ctx, run, *robot, cfgProto, *runN, func(d *convert.Decoded) {
+		switch d.Kind {
+		case fusion.InputOdometry:
+			odo = append(odo, d.Odometry)
+		case fusion.InputHeading:
+			imu = append(imu, d.Heading)
+		case fusion.InputFix:
+			fixes = append(fixes, d.Fix)
+		}
+	})
 	if err != nil {
 		return err
 	}
-	inputs := rec.inputs
 	var truthPoses []calib.StampedPose
 	if *truth != "" {
 		if truthPoses, err = readTruthCSV(*truth); err != nil {
 			return err
 		}
 	}
-	odo, imu, fixes := splitInputs(inputs)
 	fmt.Fprint(stdout, rec.tornNote())
 	fmt.Fprintf(stdout, "%s%s: %d odometry samples, %d IMU headings, %d fixes\n", src, rec.note(), len(odo), len(imu), len(fixes))
+	// odometry hands the fits the run's odometry read again, the first
+	// len(odo) samples (a journal the service still writes to has more
+	// by now).
+	nOdo := len(odo)
+	odometry := func(yield func(*fusion.Odometry) bool) error {
+		n, stopped := 0, false
+		_, err := readRunEach(ctx, run, *robot, cfgProto, *runN, func(d *convert.Decoded) {
+			if d.Kind != fusion.InputOdometry || stopped || n == nOdo {
+				return
+			}
+			n++
+			stopped = !yield(&d.Odometry)
+		})
+		return err
+	}
 
 	type diagnosis struct {
 		wiring  []calib.Finding
 		sensors []calib.Finding
 	}
 	diag, err := interruptible(ctx, func() (diagnosis, error) {
-		return diagnosis{calib.Diagnose(cfg, odo, imu), calib.DiagnoseSensors(cfg, odo, fixes)}, nil
+		wiring := calib.Diagnose(cfg, odo, imu)
+		odo, imu = nil, nil
+		sensors, err := calib.DiagnoseSensorsFrom(cfg, odometry, fixes)
+		return diagnosis{wiring, sensors}, err
 	})
-	if err != nil {
+	if errors.Is(err, context.Canceled) {
 		return err
+	}
+	if err != nil {
+		return fmt.Errorf("%s: %w", run, err)
 	}
 	wiring, sensors := diag.wiring, diag.sensors
 	findings := printFindings(stdout, wiring, sensors)
@@ -134,7 +170,7 @@ into one HTML report with a calibration section at the top.`)
 	}
 
 	fit, err := interruptible(ctx, func() (calib.SystematicFit, error) {
-		return calib.FitSystematic(cfg, odo, fixes, calib.SystematicOptions{})
+		return calib.FitSystematicFrom(cfg, odometry, fixes, calib.SystematicOptions{})
 	})
 	if errors.Is(err, context.Canceled) {
 		return err
@@ -182,7 +218,13 @@ into one HTML report with a calibration section at the top.`)
 	wrote := fmt.Sprintf("wrote %s: %s", *out, strings.Join(changes, ", "))
 	fmt.Fprintf(stdout, "\n%s\n", wrote)
 	if truthPoses != nil {
-		if err := printNEES(stdout, cfg, fit.Config, inputs, truthPoses); err != nil {
+		// Read again, in arrival order, now that the fit's memory is free:
+		// the inputs read at first.
+		all, err := readRun(ctx, run, *robot, cfgProto, *runN)
+		if err != nil {
+			return err
+		}
+		if err := printNEES(stdout, cfg, fit.Config, all.inputs[:min(len(all.inputs), rec.kept)], truthPoses); err != nil {
 			return fmt.Errorf("%s: %w", *truth, err)
 		}
 	}

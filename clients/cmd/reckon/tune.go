@@ -192,7 +192,10 @@ func levelTable(fit *calib.NoiseFit) ([]string, [][]string) {
 // recording holds (each controller restart, a run start sample, begins
 // one on a clock of its own).
 type recording struct {
-	inputs  []calib.RecordedInput
+	inputs []calib.RecordedInput
+	// kept is how many odometry samples, headings and fixes were read
+	// (those in inputs, or handed to readRunEach's keep).
+	kept    int
 	skipped int
 	run     uint64
 	runs    uint64
@@ -234,23 +237,8 @@ func (rec *recording) note() string {
 // robot); reseeds are counted in skipped and left out. The runs of a
 // recording are never mixed: their clocks differ.
 func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64) (*recording, error) {
-	want = max(want, 1)
 	var inputs []calib.RecordedInput
-	var torn, damaged string
-	var gaps []string
-	skipped, run := 0, uint64(1)
-	add := func(s *pb.Sample) error {
-		if s.GetRunStart() != nil {
-			run++
-			return nil
-		}
-		if run != want {
-			return nil
-		}
-		d, err := convert.Decode(s)
-		if err != nil {
-			return err
-		}
+	rec, err := readRunEach(ctx, path, robot, cfg, want, func(d *convert.Decoded) {
 		// Each input is copied out of d, so that the recording keeps only
 		// its own kind: a pointer into d kept all of d (248 bytes an input,
 		// where odometry needs 80).
@@ -264,6 +252,39 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 		case fusion.InputFix:
 			f := d.Fix
 			inputs = append(inputs, calib.RecordedInput{Fix: &f})
+		}
+	})
+	if err != nil {
+		return nil, err
+	}
+	rec.inputs = inputs
+	return rec, nil
+}
+
+// readRunEach reads run want as readRun does, but hands each odometry
+// sample, IMU heading and fix to keep, in arrival order, instead of
+// keeping them: the recording it returns has no inputs.
+func readRunEach(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want uint64, keep func(*convert.Decoded)) (*recording, error) {
+	want = max(want, 1)
+	var torn, damaged string
+	var gaps []string
+	kept, skipped, run := 0, 0, uint64(1)
+	add := func(s *pb.Sample) error {
+		if s.GetRunStart() != nil {
+			run++
+			return nil
+		}
+		if run != want {
+			return nil
+		}
+		d, err := convert.Decode(s)
+		if err != nil {
+			return err
+		}
+		switch d.Kind {
+		case fusion.InputOdometry, fusion.InputHeading, fusion.InputFix:
+			keep(&d)
+			kept++
 		default:
 			skipped++
 		}
@@ -324,10 +345,10 @@ func readRun(ctx context.Context, path, robot string, cfg *pb.RobotConfig, want 
 	if want > run {
 		return nil, fmt.Errorf("%s: %w", path, review.NoRun(want, run))
 	}
-	if len(inputs) == 0 {
+	if kept == 0 {
 		return nil, fmt.Errorf("%s: %w: no odometry, headings or fixes", path, errRefused)
 	}
-	return &recording{inputs: inputs, skipped: skipped, run: want, runs: run, torn: torn, damaged: damaged, gaps: gaps}, nil
+	return &recording{kept: kept, skipped: skipped, run: want, runs: run, torn: torn, damaged: damaged, gaps: gaps}, nil
 }
 
 // readTruthCSV reads a truth file as review takes it (stamp_ns, x_m, y_m,

@@ -78,7 +78,7 @@ func TestGyroScaleLayout(t *testing.T) {
 // GyroTurn propagates the covariance with (F = I + dpsi e_offset e_g^T),
 // equals the central differences of its mean (gonum diff/fd), and the
 // covariance equals F P F^T formed with gonum mat (the EKF's prediction,
-// Bar-Shalom, Li and Kirubarajan 2001, sec. 10.3.2, with no process noise).
+// Bar-Shalom, Li and Kirubarajan 2001, sec. 5.2, with no process noise).
 func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
 	rng := rand.New(rand.NewPCG(41, 41))
 	for _, l := range gyroLayouts() {
@@ -124,7 +124,7 @@ func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
 
 // TestGyroUpdateMatchesGonum: an IMU heading on a layout with a gyro scale
 // is the textbook extended Kalman filter (Bar-Shalom, Li and Kirubarajan
-// 2001, sec. 5.2 and 10.3.2) of the prediction x' = x + u g e_offset,
+// 2001, sec. 5.2) of the prediction x' = x + u g e_offset,
 // P' = F P F^T, u the IMU's turn summed up to its last heading, followed
 // by the update with H = [0 0 1 1 0 ...], in Joseph form (eq. 5.2.3-18),
 // formed with gonum mat; the turn then restarts from wrap(z - last

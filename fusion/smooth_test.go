@@ -29,9 +29,9 @@ func TestSmootherEqualsBatch(t *testing.T) { smootherEqualsBatch(t, 0) }
 // sample: the offset's random walk gains g u, u the IMU's turn summed
 // until it reaches the filter's step (estimator.GyroStepSigmas standard
 // deviations of a difference of two readings), which the batch's rows
-// carry as known coefficients of g (Bar-Shalom, Li and Kirubarajan 2001,
-// sec. 8.6: a fixed-interval smoother equals the batch solution of a
-// linear-Gaussian problem).
+// carry as known coefficients of g (a fixed-interval smoother of a
+// linear-Gaussian problem equals its batch least-squares solution; Rauch,
+// Tung and Striebel 1965, from memory).
 func TestSmootherEqualsBatchGyroScale(t *testing.T) { smootherEqualsBatch(t, 0.03) }
 
 // smootherEqualsBatch is TestSmootherEqualsBatch with a gyro scale of

@@ -721,19 +721,20 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 //	offset' = offset + g u,   P' = F P F^T,   F = I + u e_offset e_g^T,
 //
 // noise-free, with u the IMU's turn summed over its headings before z
-// since the last step (State's imuTurn), once abs(u) reaches GyroStepRad.
-// Not the turn up to z: that carries z's own noise, which the innovation
-// carries too, so every update would pull g by about P[g, g] R / S the
-// same way (errors in variables: g ran from 0 to 0.18 in 300 s on the
-// depot tug). Not every interval's turn either: the noise of two headings
-// that the estimate has just averaged in is in each, and on a straight,
-// where u is that noise alone, the update regressed it on itself (g ran
-// to -0.03 in 300 s). Summed to GyroStepRad, the noise is a share of
-// about 2 R / GyroStepRad^2 of the step (2e-3 for R = 2.5e-5), and steps
-// come only with turning. The price is a lag of the offset by up to g
-// GyroStepRad (1 mrad for a gyro 1% off). After the update the turn
-// gains wrap(z - imuRef) and the reference becomes z. A gated or failed
-// update takes the step back too and leaves both.
+// since the last step (State's imuTurn), once abs(u) reaches
+// GyroStepSigmas standard deviations of a difference of two readings,
+// sqrt(2 R). Not the turn up to z: that carries z's own noise, which the
+// innovation carries too, so every update would pull g by about
+// P[g, g] R / S the same way (errors in variables: g ran from 0 to 0.18 in
+// 300 s on the depot tug). Not every interval's turn either: the noise of
+// the readings that the estimate has just averaged in is in each, and on
+// a straight, where u is that noise alone, the update regressed it on
+// itself (g to -0.026 in 145 s). Summed to the threshold, the noise is at
+// most a share 1 / GyroStepSigmas^2 of a step's turn, a straight makes no
+// step, and the offset lags by at most g GyroStepSigmas sqrt(2 R), a
+// tenth of a reading's standard deviation for a gyro 1.5% off. After the
+// update the turn gains wrap(z - imuRef) and the reference becomes z. A
+// gated or failed update takes the step back too and leaves both.
 func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
 	z := Wrap(m.Z[0])
 	f.unturned.CopyFrom(&f.st)

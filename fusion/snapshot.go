@@ -657,8 +657,10 @@ func decState(d *wdec) estimator.State {
 			if d.version < 20 {
 				d.fail("estimate: IMU heading and turn of a gyro scale in a version %d snapshot (from version 20)", d.version)
 			}
-			if len(gyro) != 2 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || math.IsNaN(gyro[1]) || math.Abs(gyro[1]) > math.Pi {
-				d.fail("estimate: IMU heading and turn of a gyro scale %v are not two wrapped angles", gyro)
+			// The heading is wrapped; the turn is a sum of wrapped
+			// turns, below the step's threshold before the last.
+			if len(gyro) != 2 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !finiteAll(gyro[1]) {
+				d.fail("estimate: IMU heading and turn of a gyro scale %v are not a wrapped angle and a finite one", gyro)
 				gyro = nil
 			}
 		default:
@@ -873,9 +875,8 @@ func (r *Robot) decEntry(d *wdec) entry {
 				d.fail("entry: slip factor %v is not a positive finite number", en.slipK)
 			}
 		case 24:
-			// A turn between two wrapped headings, wrapped.
-			if en.out.GyroTurnRad = d.double(num); d.version < 20 || math.IsNaN(en.out.GyroTurnRad) || math.Abs(en.out.GyroTurnRad) > math.Pi {
-				d.fail("entry: gyro turn %v in a version %d snapshot (a wrapped angle, from version 20)", en.out.GyroTurnRad, d.version)
+			if en.out.GyroTurnRad = d.double(num); d.version < 20 || !finiteAll(en.out.GyroTurnRad) {
+				d.fail("entry: gyro turn %v in a version %d snapshot (a finite angle, from version 20)", en.out.GyroTurnRad, d.version)
 			}
 		default:
 			d.fail("entry: unknown field %d", num)

@@ -265,11 +265,6 @@ type Outcome struct {
 	// filter its components are independent standard normals, white in
 	// time (Mehra 1970); NIS is its squared length.
 	Whitened [3]float64
-	// GyroTurnRad is, for an IMU heading applied on a layout with a gyro
-	// scale, the IMU's turn between its two headings before this one
-	// (State's imuTurn), by whose gyro scale times the offset moved
-	// before the update; 0 otherwise, and when gated.
-	GyroTurnRad float64
 }
 
 // Filter is the extended Kalman filter. The zero value is not usable; make
@@ -738,12 +733,9 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
 	z := Wrap(m.Z[0])
 	f.unturned.CopyFrom(&f.st)
-	u := f.st.imuTurn
-	if math.Abs(u) >= GyroStepSigmas*math.Sqrt(2*m.R[0]) {
+	if u := f.st.GyroStep(&f.layout, m.R[0]); u != 0 {
 		f.GyroTurn(u)
 		f.st.imuTurn = 0
-	} else {
-		u = 0
 	}
 	out, err := f.update(m, gate)
 	if err != nil || out.Gated {
@@ -752,8 +744,18 @@ func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
 	}
 	f.st.imuTurn += Wrap(z - f.st.imuRef)
 	f.st.imuRef = z
-	out.GyroTurnRad = u
 	return out, nil
+}
+
+// GyroStep returns the turn u by which an IMU heading of variance r
+// applied to the state s of layout l moves the offset first (u times the
+// gyro scale; Filter.Update), or 0 for none: the IMU's summed turn once it
+// reaches GyroStepSigmas sqrt(2 r), and 0 without a gyro scale.
+func (s *State) GyroStep(l *Layout, r float64) float64 {
+	if l.gyro >= 0 && math.Abs(s.imuTurn) >= GyroStepSigmas*math.Sqrt(2*r) {
+		return s.imuTurn
+	}
+	return 0
 }
 
 // GyroStepSigmas is the IMU turn that a gyro scale's step waits for, in

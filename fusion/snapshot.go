@@ -71,9 +71,9 @@ import (
 // snapshot has none, and its robot's compensation starts its own
 // uncertainty at zero, as its builds carried none.
 // Version 20: the IMU's last heading and turn of a gyro scale
-// (estimator.State's IMUGyro) in each estimate, and an applied IMU heading's gyro turn in its
-// entry; a version 19 to 5 snapshot has neither, and its robots had no
-// gyro scale (calibration.gyro_scale_std is new), so it restores as it was.
+// (estimator.State's IMUGyro) in each estimate; a version 19 to 5
+// snapshot has none, and its robots had no gyro scale
+// (calibration.gyro_scale_std is new), so it restores as it was.
 const SnapshotVersion = 20
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
@@ -806,9 +806,6 @@ func (r *Robot) encEntry(e *wenc, en *entry) {
 	if en.slipK != 0 {
 		e.double(23, en.slipK)
 	}
-	if en.out.GyroTurnRad != 0 {
-		e.double(24, en.out.GyroTurnRad)
-	}
 }
 
 // decEntry reads an entry and stores its checkpoint in a slot of r's.
@@ -873,10 +870,6 @@ func (r *Robot) decEntry(d *wdec) entry {
 			// into nonsense when a reset gives it back (restartSlip).
 			if en.slipK = d.double(num); !(en.slipK > 0) || math.IsInf(en.slipK, 1) {
 				d.fail("entry: slip factor %v is not a positive finite number", en.slipK)
-			}
-		case 24:
-			if en.out.GyroTurnRad = d.double(num); d.version < 20 || !finiteAll(en.out.GyroTurnRad) {
-				d.fail("entry: gyro turn %v in a version %d snapshot (a finite angle, from version 20)", en.out.GyroTurnRad, d.version)
 			}
 		default:
 			d.fail("entry: unknown field %d", num)

@@ -313,8 +313,8 @@ type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
 	// knows (version 20 reads 19 to 5: a version 19 snapshot lacks the
-	// estimates' imu_gyro_rad and the IMU headings'
-	// gyro_turn_rad, which its robots, without a gyro scale, had no use for;
+	// estimates' imu_gyro_rad, which its robots, without a gyro scale, had
+	// no use for;
 	// 18 lacks the
 	// estimates' turn_scale_eiv_consider, 17 has the turn scale's
 	// errors-in-variables moments over the pose alone, 16 lacks the
@@ -1079,12 +1079,7 @@ type SnapshotEntry struct {
 	// step_covariance and scrub_var_rad2 carry, which a reseed or move
 	// recovery takes back from the steps after it (absent: none, and in
 	// older versions).
-	SlipFactor float64 `protobuf:"fixed64,23,opt,name=slip_factor,json=slipFactor,proto3" json:"slip_factor,omitempty"`
-	// Measurement, an applied IMU heading with a gyro scale (version 20):
-	// the IMU's turn between its two headings before it, rad, by the gyro
-	// scale times which the offset moved before the update (the smoother's
-	// prediction takes it). Absent when zero.
-	GyroTurnRad   float64 `protobuf:"fixed64,24,opt,name=gyro_turn_rad,json=gyroTurnRad,proto3" json:"gyro_turn_rad,omitempty"`
+	SlipFactor    float64 `protobuf:"fixed64,23,opt,name=slip_factor,json=slipFactor,proto3" json:"slip_factor,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1276,13 +1271,6 @@ func (x *SnapshotEntry) GetMarkerKey() uint32 {
 func (x *SnapshotEntry) GetSlipFactor() float64 {
 	if x != nil {
 		return x.SlipFactor
-	}
-	return 0
-}
-
-func (x *SnapshotEntry) GetGyroTurnRad() float64 {
-	if x != nil {
-		return x.GyroTurnRad
 	}
 	return 0
 }
@@ -2217,7 +2205,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
 	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\x12J\n" +
-	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\x93\x06\n" +
+	"\x0flandmark_blocks\x18\x03 \x01(\v2!.reckon.v1.SnapshotLandmarkBlocksR\x0elandmarkBlocks\"\xef\x05\n" +
 	"\rSnapshotEntry\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x19\n" +
 	"\bstart_ns\x18\x02 \x01(\x03R\astartNs\x12\x15\n" +
@@ -2245,8 +2233,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\n" +
 	"marker_key\x18\x16 \x01(\rR\tmarkerKey\x12\x1f\n" +
 	"\vslip_factor\x18\x17 \x01(\x01R\n" +
-	"slipFactor\x12\"\n" +
-	"\rgyro_turn_rad\x18\x18 \x01(\x01R\vgyroTurnRad\"\xe6\x02\n" +
+	"slipFactor\"\xe6\x02\n" +
 	"\x13SnapshotMeasurement\x12\x12\n" +
 	"\x04kind\x18\x01 \x01(\rR\x04kind\x12\x14\n" +
 	"\x05mount\x18\x02 \x03(\x01R\x05mount\x12 \n" +

@@ -18,6 +18,7 @@ import (
 	"reckon.example/fusion/calib"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
+	"reckon.example/server/daemon"
 	"reckon.example/server/journal"
 )
 
@@ -197,7 +198,7 @@ into one HTML report with a calibration section at the top.`)
 // name: the file config, or the journal's own configuration.
 func startConfig(config, dir, robot string) (string, []byte, error) {
 	if config != "" {
-		data, err := os.ReadFile(config)
+		data, err := daemon.ReadFlagFile(config)
 		return config, data, err
 	}
 	id, err := journalRobot(robot)

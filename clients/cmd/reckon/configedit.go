@@ -10,6 +10,7 @@ import (
 	"go.yaml.in/yaml/v3"
 
 	"reckon.example/server/convert"
+	"reckon.example/server/daemon"
 )
 
 // configEdit is one change to a YAML robot configuration: the field's path
@@ -32,7 +33,7 @@ type configEdit struct {
 // configurations (imu-noise, tune, calibrate) share it; out is never in (the callers
 // refuse that).
 func writeConfigEdits(in, out string, edits []configEdit, note func(changes []string) string) ([]string, error) {
-	data, err := os.ReadFile(in)
+	data, err := daemon.ReadFlagFile(in)
 	if err != nil {
 		return nil, err
 	}

@@ -5,10 +5,10 @@ import (
 	"crypto/x509"
 	"flag"
 	"fmt"
-	"os"
 	"strings"
 
 	"reckon.example/clients/client"
+	"reckon.example/server/daemon"
 )
 
 // connFlags are the flags every command that talks to the service shares.
@@ -30,14 +30,14 @@ func addConnFlags(fs *flag.FlagSet) connFlags {
 func (c connFlags) dial() (*client.Client, error) {
 	var opt client.Options
 	if *c.tokenFile != "" {
-		b, err := os.ReadFile(*c.tokenFile)
+		b, err := daemon.ReadFlagFile(*c.tokenFile)
 		if err != nil {
 			return nil, fmt.Errorf("token-file: %w", err)
 		}
 		opt.Token = strings.TrimSpace(string(b))
 	}
 	if *c.ca != "" {
-		pem, err := os.ReadFile(*c.ca)
+		pem, err := daemon.ReadFlagFile(*c.ca)
 		if err != nil {
 			return nil, fmt.Errorf("tls-ca: %w", err)
 		}
@@ -47,7 +47,15 @@ func (c connFlags) dial() (*client.Client, error) {
 		}
 		opt.TLS = &tls.Config{RootCAs: pool, ServerName: *c.serverName, MinVersion: tls.VersionTLS12}
 		if *c.cert != "" {
-			pair, err := tls.LoadX509KeyPair(*c.cert, *c.key)
+			certPEM, err := daemon.ReadFlagFile(*c.cert)
+			if err != nil {
+				return nil, fmt.Errorf("tls-cert: %w", err)
+			}
+			keyPEM, err := daemon.ReadFlagFile(*c.key)
+			if err != nil {
+				return nil, fmt.Errorf("tls-key: %w", err)
+			}
+			pair, err := tls.X509KeyPair(certPEM, keyPEM)
 			if err != nil {
 				return nil, fmt.Errorf("tls-cert/tls-key: %w", err)
 			}

@@ -17,6 +17,7 @@ import (
 	"reckon.example/clients/review"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/convert"
+	"reckon.example/server/daemon"
 )
 
 // sourceFlags name a recorded run.
@@ -94,7 +95,7 @@ func (f offsetFlag) Set(v string) error {
 }
 
 func loadYAML(path string) (*pb.RobotConfig, error) {
-	b, err := os.ReadFile(path)
+	b, err := daemon.ReadFlagFile(path)
 	if err != nil {
 		return nil, err
 	}

@@ -7,7 +7,6 @@ import (
 	"math/rand/v2"
 	"testing"
 
-	"gonum.org/v1/gonum/diff/fd"
 	"gonum.org/v1/gonum/mat"
 )
 
@@ -36,18 +35,7 @@ func gyroFilter(t *testing.T, rng *rand.Rand, l Layout) *Filter {
 		x[l.TurnScale()] += 1
 	}
 	x[l.GyroScale()] = 0.02 * rng.NormFloat64()
-	a := mat.NewDense(n, n, nil)
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			a.Set(i, j, 0.05*rng.NormFloat64())
-		}
-	}
-	var p mat.Dense
-	p.Mul(a, a.T())
-	for i := 0; i < n; i++ {
-		p.Set(i, i, p.At(i, i)+0.001)
-	}
-	f, err := NewFilter(&l, x, p.RawMatrix().Data)
+	f, err := NewFilter(&l, x, randomCov(rng, n, 0.05, 0.001))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -92,18 +80,7 @@ func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
 				s.GyroTurn(&l, dpsi)
 				copy(dst, s.x[:n])
 			}
-			x0 := append([]float64(nil), st.x[:n]...)
-			ref := make([]float64, n)
-			mean(ref, x0)
-			num := mat.NewDense(n, n, nil)
-			fd.Jacobian(num, func(dst, x []float64) {
-				mean(dst, x)
-				for i := range dst {
-					if st.isAngle(i) {
-						dst[i] = ref[i] + Wrap(dst[i]-ref[i])
-					}
-				}
-			}, x0, &fd.JacobianSettings{Formula: fd.Central})
+			num := meanJacobian(&st, append([]float64(nil), st.x[:n]...), mean)
 			F := eye(n)
 			F.Set(l.Offset(), l.GyroScale(), dpsi)
 			what := fmt.Sprintf("%d states, dpsi %.3f", n, dpsi)

@@ -48,6 +48,13 @@ type State struct {
 	// State"). Zero until an update takes a pull out; entries past n are
 	// zero.
 	eivc [MaxStates]float64
+	// imuRef and imuTurn are, with a gyro scale in the layout, the IMU
+	// heading (wrapped, radians) of the last IMU update or offset
+	// initialisation, and the IMU's turn from the heading before it to
+	// that one (0 after an initialisation): the next IMU heading's update
+	// first moves the offset by the gyro scale times imuTurn
+	// (Filter.Update). Both zero without a gyro scale.
+	imuRef, imuTurn float64
 }
 
 // EIVDim is the order of the errors-in-variables moments (State's eiv):
@@ -98,7 +105,16 @@ func (s *State) CopyFrom(src *State) {
 	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
 	s.eiv = src.eiv
 	copy(s.eivc[:n], src.eivc[:n])
+	s.imuRef, s.imuTurn = src.imuRef, src.imuTurn
 }
+
+// IMUGyro returns the IMU heading of the last IMU update and the IMU's
+// turn up to it, by whose gyro scale times the next IMU update moves the
+// offset (State's imuRef and imuTurn; zero without a gyro scale).
+func (s *State) IMUGyro() (ref, turn float64) { return s.imuRef, s.imuTurn }
+
+// SetIMUGyro sets them (a state read back from a snapshot).
+func (s *State) SetIMUGyro(ref, turn float64) { s.imuRef, s.imuTurn = ref, turn }
 
 // EIV returns the errors-in-variables moments of the turn scale (State's
 // eiv; zero without a turn scale).
@@ -121,7 +137,10 @@ func (s *State) SetEIVConsider(c [MaxStates]float64) {
 
 // SetPacked makes s the state of size n with angular states angles whose
 // packed form (Filter.Pack) is src, copying only what is in use when s
-// already has that size.
+// already has that size. The packed form's length says what it holds:
+// the moments and their consider column follow the covariance when there
+// are EIVDim^2 + n more values, and the IMU heading and turn of a gyro
+// scale are the last two values when two more are left.
 func (s *State) SetPacked(n int, angles uint16, src []float64) {
 	if s.n != n {
 		*s = State{n: n}
@@ -133,9 +152,15 @@ func (s *State) SetPacked(n int, angles uint16, src []float64) {
 	}
 	s.eiv = [eivSize]float64{}
 	s.eivc = [MaxStates]float64{}
-	if len(src) >= n+n*n+eivSize+n {
+	rest := len(src) - n - n*n
+	if rest >= eivSize+n {
 		copy(s.eiv[:], src[n+n*n:])
 		copy(s.eivc[:n], src[n+n*n+eivSize:])
+		rest -= eivSize + n
+	}
+	s.imuRef, s.imuTurn = 0, 0
+	if rest == 2 {
+		s.imuRef, s.imuTurn = src[len(src)-2], src[len(src)-1]
 	}
 }
 
@@ -256,6 +281,9 @@ type Filter struct {
 	pht   [MaxStates * 3]float64
 	chol  [MaxStates * MaxStates]float64
 	saved State
+	// unturned is the estimate before an IMU heading's gyro turn, kept
+	// for a gated or failed update (Update).
+	unturned State
 	// phi caches the bias blocks' decay exp(-dt/tau) for the intervals
 	// phiDt (odometry mostly comes at one rate, split now and then by a
 	// late fix); a pure function of dt, so the cache changes no result.
@@ -313,20 +341,25 @@ func (f *Filter) Var(i int) float64 { return f.st.Var(i) }
 func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
 
 // PackedSize returns the length of the filter's packed estimate: the mean
-// and the covariance, N + N*N values, and with a turn scale the 16
+// and the covariance, N + N*N values, with a turn scale the 16
 // errors-in-variables moments (State's eiv) and the N values of their
-// consider column (eivc).
+// consider column (eivc), and with a gyro scale the IMU's last heading
+// and turn (imuRef, imuTurn).
 func (f *Filter) PackedSize() int {
 	n := f.st.n + f.st.n*f.st.n
 	if f.layout.turnScale >= 0 {
 		n += eivSize + f.st.n
 	}
+	if f.layout.gyro >= 0 {
+		n += 2
+	}
 	return n
 }
 
 // Pack writes the estimate into dst (PackedSize values: the mean, then the
-// covariance row-major, then the moments and their consider column), the
-// compact form a history of checkpoints keeps.
+// covariance row-major, then the moments and their consider column, then
+// the IMU's last heading and turn), the compact form a history of checkpoints
+// keeps.
 func (f *Filter) Pack(dst []float64) {
 	n := f.st.n
 	copy(dst[:n], f.st.x[:n])
@@ -336,6 +369,9 @@ func (f *Filter) Pack(dst []float64) {
 	if f.layout.turnScale >= 0 {
 		copy(dst[n+n*n:n+n*n+eivSize], f.st.eiv[:])
 		copy(dst[n+n*n+eivSize:n+n*n+eivSize+n], f.st.eivc[:n])
+	}
+	if k := f.PackedSize(); f.layout.gyro >= 0 {
+		dst[k-2], dst[k-1] = f.st.imuRef, f.st.imuTurn
 	}
 }
 
@@ -350,6 +386,9 @@ func (f *Filter) Unpack(src []float64) {
 	if f.layout.turnScale >= 0 {
 		copy(f.st.eiv[:], src[n+n*n:n+n*n+eivSize])
 		copy(f.st.eivc[:n], src[n+n*n+eivSize:n+n*n+eivSize+n])
+	}
+	if k := f.PackedSize(); f.layout.gyro >= 0 {
+		f.st.imuRef, f.st.imuTurn = src[k-2], src[k-1]
 	}
 }
 
@@ -663,6 +702,101 @@ func (f *Filter) Transition(dst *[MaxStates * MaxStates]float64, from *State, u 
 // which holds for any gain, symmetrised and checked by Cholesky
 // (Bar-Shalom, Li and Kirubarajan, 2001, eq. 5.2.3-18 for the Joseph form).
 func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
+	if m.Kind == KindIMUHeading && f.layout.gyro >= 0 {
+		return f.updateGyro(m, gate)
+	}
+	return f.update(m, gate)
+}
+
+// updateGyro applies an IMU heading z on a layout with a gyro scale g
+// (DEVELOPERS.md, "Design: State"). The IMU's heading zero moves by g
+// times the IMU's own turn, a known input, so before an update the offset
+// may take the step
+//
+//	offset' = offset + g u,   P' = F P F^T,   F = I + u e_offset e_g^T,
+//
+// noise-free, with u the IMU's turn summed over its headings before z
+// since the last step (State's imuTurn), once abs(u) reaches
+// GyroStepSigmas standard deviations of a difference of two readings,
+// sqrt(2 R). Not the turn up to z: that carries z's own noise, which the
+// innovation carries too, so every update would pull g by about
+// P[g, g] R / S the same way (errors in variables: g ran from 0 to 0.18 in
+// 300 s on the depot tug). Not every interval's turn either: the noise of
+// the readings that the estimate has just averaged in is in each, and on
+// a straight, where u is that noise alone, the update regressed it on
+// itself (g to -0.026 in 145 s). Summed to the threshold, the noise is at
+// most a share 1 / GyroStepSigmas^2 of a step's turn, a straight makes no
+// step, and the offset lags by at most g GyroStepSigmas sqrt(2 R), a
+// tenth of a reading's standard deviation for a gyro 1.5% off. After the
+// update the turn gains wrap(z - imuRef) and the reference becomes z. A
+// gated or failed update takes the step back too and leaves both.
+func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
+	z := Wrap(m.Z[0])
+	f.unturned.CopyFrom(&f.st)
+	if u := f.st.GyroStep(&f.layout, m.R[0]); u != 0 {
+		f.GyroTurn(u)
+		f.st.imuTurn = 0
+	}
+	out, err := f.update(m, gate)
+	if err != nil || out.Gated {
+		f.st.CopyFrom(&f.unturned)
+		return out, err
+	}
+	f.st.imuTurn += Wrap(z - f.st.imuRef)
+	f.st.imuRef = z
+	return out, nil
+}
+
+// GyroStep returns the turn u by which an IMU heading of variance r
+// applied to the state s of layout l moves the offset first (u times the
+// gyro scale; Filter.Update), or 0 for none: the IMU's summed turn once it
+// reaches GyroStepSigmas sqrt(2 r), and 0 without a gyro scale.
+func (s *State) GyroStep(l *Layout, r float64) float64 {
+	if l.gyro >= 0 && math.Abs(s.imuTurn) >= GyroStepSigmas*math.Sqrt(2*r) {
+		return s.imuTurn
+	}
+	return 0
+}
+
+// GyroStepSigmas is the IMU turn that a gyro scale's step waits for, in
+// standard deviations of the difference of two of the IMU's readings,
+// sqrt(2 R) (Filter.Update of an IMU heading).
+const GyroStepSigmas = 5.0
+
+// GyroTurn moves the IMU offset by the gyro scale times the IMU's turn
+// dpsi (radians), with the covariance P' = F P F^T for F = I + dpsi
+// e_offset e_g^T (the Jacobian of the offset in the gyro scale is dpsi):
+// the offset's row and column gain dpsi times the scale's, and its
+// variance dpsi^2 P[g, g] besides. The compensation's consider column
+// moves as a column of P. The errors-in-variables moments stay: they are
+// over the pose and the offset, and the step adds to the offset's the
+// moments with the gyro scale, which they leave out as they do every
+// state beyond the offset. It panics on a layout without a gyro scale.
+func (f *Filter) GyroTurn(dpsi float64) { f.st.GyroTurn(&f.layout, dpsi) }
+
+// GyroTurn is Filter.GyroTurn on the state s of layout l (the smoother's
+// prediction of a step with an IMU heading in it).
+func (s *State) GyroTurn(l *Layout, dpsi float64) {
+	g := l.gyro
+	if g < 0 || s.n != l.n {
+		panic("estimator: GyroTurn on a state without a gyro scale")
+	}
+	o, n, P := l.offset, s.n, &s.p
+	s.x[o] = Wrap(s.x[o] + s.x[g]*dpsi)
+	s.eivc[o] += dpsi * s.eivc[g]
+	pgg := P[g*stride+g]
+	poo := P[o*stride+o] + 2*dpsi*P[o*stride+g] + dpsi*dpsi*pgg
+	for j := 0; j < n; j++ {
+		if j != o {
+			v := P[o*stride+j] + dpsi*P[g*stride+j]
+			P[o*stride+j], P[j*stride+o] = v, v
+		}
+	}
+	P[o*stride+o] = poo
+}
+
+// update is Update without the gyro scale's turn.
+func (f *Filter) update(m *Measurement, gate Gate) (Outcome, error) {
 	d := m.Kind.Dim()
 	out := Outcome{Dim: d}
 	var v [3]float64
@@ -1036,6 +1170,9 @@ func (f *Filter) InitOffset(z, r float64) error {
 	}
 	P[IOffset*stride+IOffset] = P[IHead*stride+IHead] + r
 	f.st.eivc[IOffset] = -f.st.eivc[IHead]
+	if f.layout.gyro >= 0 {
+		f.st.imuRef, f.st.imuTurn = Wrap(z), 0
+	}
 	// So do the moments: the offset's covariance with the turn scale is
 	// minus the heading's, and its error minus the heading's (the
 	// reading's own error is independent of both).

@@ -60,22 +60,29 @@ func randomFilter(t testing.TB, rng *rand.Rand, n int) *Filter {
 			x[i] *= 0.02
 		}
 	}
+	f, err := NewFilter(&l, x, randomCov(rng, n, 0.1, 0.01))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return f
+}
+
+// randomCov returns a random well-conditioned n x n covariance, row-major:
+// A A^T for A of standard normal entries times s, plus floor on the
+// diagonal.
+func randomCov(rng *rand.Rand, n int, s, floor float64) []float64 {
 	a := mat.NewDense(n, n, nil)
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
-			a.Set(i, j, 0.1*rng.NormFloat64())
+			a.Set(i, j, s*rng.NormFloat64())
 		}
 	}
 	var p mat.Dense
 	p.Mul(a, a.T())
 	for i := 0; i < n; i++ {
-		p.Set(i, i, p.At(i, i)+0.01)
+		p.Set(i, i, p.At(i, i)+floor)
 	}
-	f, err := NewFilter(&l, x, p.RawMatrix().Data)
-	if err != nil {
-		t.Fatal(err)
-	}
-	return f
+	return p.RawMatrix().Data
 }
 
 func stateDense(s *State) *mat.Dense {
@@ -204,17 +211,7 @@ func TestTransitionMatchesFiniteDifferences(t *testing.T) {
 				h.Predict(u, &zero, dt, &q)
 				copy(dst, h.st.x[:n])
 			}
-			ref := make([]float64, n)
-			mean(ref, x0)
-			num := mat.NewDense(n, n, nil)
-			fd.Jacobian(num, func(dst, x []float64) {
-				mean(dst, x)
-				for i := range dst {
-					if st.isAngle(i) {
-						dst[i] = ref[i] + Wrap(dst[i]-ref[i])
-					}
-				}
-			}, x0, &fd.JacobianSettings{Formula: fd.Central})
+			num := meanJacobian(&st, x0, mean)
 			var tr [MaxStates * MaxStates]float64
 			f.Transition(&tr, &st, u, dt)
 			got := make([]float64, 0, n*n)
@@ -224,6 +221,25 @@ func TestTransitionMatchesFiniteDifferences(t *testing.T) {
 			compareMat(t, fmt.Sprintf("transition of %d states", n), float64(trial), got, num, 1e-6)
 		}
 	}
+}
+
+// meanJacobian returns the central differences (gonum diff/fd) at x0 of
+// mean, a map of the states of st's layout, its angular outputs unwrapped
+// around their value at x0.
+func meanJacobian(st *State, x0 []float64, mean func(dst, x []float64)) *mat.Dense {
+	n := len(x0)
+	ref := make([]float64, n)
+	mean(ref, x0)
+	num := mat.NewDense(n, n, nil)
+	fd.Jacobian(num, func(dst, x []float64) {
+		mean(dst, x)
+		for i := range dst {
+			if st.isAngle(i) {
+				dst[i] = ref[i] + Wrap(dst[i]-ref[i])
+			}
+		}
+	}, x0, &fd.JacobianSettings{Formula: fd.Central})
+	return num
 }
 
 // measurementCases returns one measurement of every kind with a mount and a

@@ -6,7 +6,7 @@ import (
 )
 
 // MaxStates is the largest state the filter holds: the pose (3), the IMU
-// offset (1), the odometry calibration (up to 3) and the bias blocks of
+// offset (1), the odometry calibration (up to 3), the gyro scale (1) and the bias blocks of
 // correlated sensors in what is left. Every matrix of the filter is a
 // fixed-size array of this order, so that nothing allocates.
 const MaxStates = 12
@@ -46,8 +46,8 @@ type BiasSpec struct {
 
 // LayoutSpec says which optional states a filter has. The state is
 // [x, y, heading], then imu_offset, then forward_scale and turn_scale, then
-// the heading-rate bias, then one bias block per entry of Biases, each
-// present only when asked for.
+// the heading-rate bias, then the gyro scale, then one bias block per
+// entry of Biases, each present only when asked for.
 type LayoutSpec struct {
 	// IMUOffset adds the absolute IMU's heading zero (radians).
 	IMUOffset bool
@@ -57,6 +57,11 @@ type LayoutSpec struct {
 	// RateBias adds the heading-rate bias b_r (rad/s): the true turn gains
 	// b_r dt.
 	RateBias bool
+	// GyroScale adds the absolute IMU's gyro scale g (dimensionless, near
+	// 0; needs IMUOffset): the IMU's heading zero moves by g times the
+	// IMU's own turn between its headings (Filter.Update of an IMU
+	// heading; DEVELOPERS.md, "Design: State").
+	GyroScale bool
 	// NoiseRatioStd is, with OdometryScale, the standard deviation of the
 	// consider parameter of the turn scale's errors-in-variables
 	// compensation: the reported steps' true noise is (1 + d) times the
@@ -74,6 +79,7 @@ type LayoutSpec struct {
 type Layout struct {
 	n                                     int
 	offset, forwardScale, turnScale, rate int
+	gyro                                  int
 	blocks                                [maxBlocks]biasBlock
 	nb                                    int
 	// cons has bit i set for each consider state i (consider).
@@ -92,7 +98,7 @@ type biasBlock struct {
 // ErrShape if they exceed MaxStates, and one naming the block if a bias
 // block's size, correlation time or covariance is unusable.
 func NewLayout(spec LayoutSpec) (Layout, error) {
-	l := Layout{n: 3, offset: -1, forwardScale: -1, turnScale: -1, rate: -1}
+	l := Layout{n: 3, offset: -1, forwardScale: -1, turnScale: -1, rate: -1, gyro: -1}
 	next := func() int { l.n++; return l.n - 1 }
 	if spec.IMUOffset {
 		l.offset = next()
@@ -107,6 +113,12 @@ func NewLayout(spec LayoutSpec) (Layout, error) {
 	}
 	if spec.RateBias {
 		l.rate = next()
+	}
+	if spec.GyroScale {
+		if !spec.IMUOffset {
+			return Layout{}, fmt.Errorf("%w: a gyro scale without an IMU offset", ErrShape)
+		}
+		l.gyro = next()
 	}
 	need := l.n
 	for _, b := range spec.Biases {
@@ -174,6 +186,9 @@ func (l *Layout) TurnScale() int { return l.turnScale }
 
 // RateBias returns the index of the heading-rate bias, or -1.
 func (l *Layout) RateBias() int { return l.rate }
+
+// GyroScale returns the index of the IMU's gyro scale, or -1.
+func (l *Layout) GyroScale() int { return l.gyro }
 
 // Biases returns the number of bias blocks.
 func (l *Layout) Biases() int { return l.nb }

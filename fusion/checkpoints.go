@@ -105,10 +105,13 @@ func (r *Robot) setCheckpoint(c *cpSlot, cp *checkpoint) {
 	d := r.slotData(c.Slot)
 	cp.est.MeanInto(d[:r.n])
 	cp.est.CovarianceInto(d[r.n:])
-	if k := r.n + r.n*r.n; r.f.PackedSize() > k {
+	if k := r.n + r.n*r.n; r.layout.TurnScale() >= 0 {
 		m, c := cp.est.EIV(), cp.est.EIVConsider()
 		copy(d[k:], m[:])
 		copy(d[k+len(m):k+len(m)+r.n], c[:r.n])
+	}
+	if k := r.f.PackedSize(); r.layout.GyroScale() >= 0 {
+		d[k-2], d[k-1] = cp.est.IMUGyro()
 	}
 	if len(r.lmAt) > 0 {
 		packTable(d[len(d)-lmWords:], &cp.lm)

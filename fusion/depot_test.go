@@ -29,8 +29,8 @@ type dpTally struct {
 	longestS  float64
 	longestAt string
 	// By what the tug was doing: samples and of them inside the 95%
-	// region, and trusted outside it.
-	kindN, kindIn, kindTrustedOut [dpKinds]int
+	// region, trusted outside it, and trusted outside the 99.9% region.
+	kindN, kindIn, kindTrustedOut, kindTrustedOut999 [dpKinds]int
 	// Heading within 0.15 rad of +-pi; the 10 s after the camera's reboot.
 	westN, westIn, westTrustedOut    int
 	rebootN, rebootIn, rebootTrusted int
@@ -56,6 +56,7 @@ func (a *dpTally) add(b *dpTally) {
 		a.kindN[k] += b.kindN[k]
 		a.kindIn[k] += b.kindIn[k]
 		a.kindTrustedOut[k] += b.kindTrustedOut[k]
+		a.kindTrustedOut999[k] += b.kindTrustedOut999[k]
 	}
 	a.westN += b.westN
 	a.westIn += b.westIn
@@ -104,19 +105,21 @@ func dpFeed(run *dpRun, cfg fusion.Config) ([]dpAnswer, *fusion.Robot, error) {
 	}
 	out := make([]dpAnswer, 0, len(run.ins))
 	for i := range run.ins {
-		in := &run.ins[i]
-		var res fusion.Result
-		switch {
-		case in.odo != nil:
-			res = r.AddOdometry(*in.odo)
-		case in.head != nil:
-			res = r.AddHeading(*in.head)
-		default:
-			res = r.AddFix(*in.fix)
-		}
+		res := dpFeedOne(r, &run.ins[i])
 		out = append(out, dpAnswer{res, r.Pose()})
 	}
 	return out, r, nil
+}
+
+// dpFeedOne feeds one input to r.
+func dpFeedOne(r *fusion.Robot, in *dpInput) fusion.Result {
+	switch {
+	case in.odo != nil:
+		return r.AddOdometry(*in.odo)
+	case in.head != nil:
+		return r.AddHeading(*in.head)
+	}
+	return r.AddFix(*in.fix)
 }
 
 // dpMeasure measures one run's answers against its truth.
@@ -212,6 +215,7 @@ func dpMeasure(seed uint64, run *dpRun, ans []dpAnswer, stats fusion.Stats) dpTa
 		}
 		if trusted && nees > q999 {
 			tl.trustedOut999++
+			tl.kindTrustedOut999[in.kind]++
 			if outFrom < 0 {
 				outFrom = t
 			}
@@ -570,15 +574,7 @@ func TestSnapshotKeepsEIVConsider(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	feed := func(r *fusion.Robot, in *dpInput) fusion.Result {
-		switch {
-		case in.odo != nil:
-			return r.AddOdometry(*in.odo)
-		case in.head != nil:
-			return r.AddHeading(*in.head)
-		}
-		return r.AddFix(*in.fix)
-	}
+	feed := dpFeedOne
 	mid := len(run.ins) * 2 / 3
 	for i := range run.ins[:mid] {
 		feed(a, &run.ins[i])

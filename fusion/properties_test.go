@@ -216,55 +216,67 @@ func TestLateEqualsStampOrder(t *testing.T) {
 			name += "/landmark-blocks"
 		}
 		t.Run(name, func(t *testing.T) {
-			s, arrival := collect(sc)
-			// Pose fixes name their marker, a new one every second, so that
-			// recovery counts markers (recovery.distinct_markers 2) in both
-			// orders.
-			nameMarkers(arrival, 1e9)
-			stamped := stampOrder(arrival)
-			cfg := s.Config()
-			switch {
-			case c.survey:
-				cfg = surveyed(cfg, c.options)
-			case c.options:
-				cfg = allOptions(cfg)
-			}
-			late, err := fusion.New(cfg)
-			if err != nil {
-				t.Fatal(err)
-			}
-			inOrder, _ := fusion.New(cfg)
-			var lateFixes int
-			for i := range arrival {
-				res := fusiontest.Feed(late, &arrival[i])
-				if arrival[i].Fix != nil && res.Verdict != fusion.VerdictHeld {
-					lateFixes++
+			lateEqualsStampOrder(t, sc, func(cfg fusion.Config) fusion.Config {
+				switch {
+				case c.survey:
+					cfg = surveyed(cfg, c.options)
+				case c.options:
+					cfg = allOptions(cfg)
 				}
-				fusiontest.Feed(inOrder, &stamped[i])
-			}
-			if lateFixes < 100 {
-				t.Fatalf("only %d fixes were inserted late", lateFixes)
-			}
-			a, b := late.Pose(), inOrder.Pose()
-			if d := math.Hypot(a.Pose.X-b.Pose.X, a.Pose.Y-b.Pose.Y) + math.Abs(estimator.Wrap(a.Pose.Heading-b.Pose.Heading)); d > 1e-9 {
-				t.Errorf("late %+v, in stamp order %+v (difference %g)", a.Pose, b.Pose, d)
-			}
-			for i := range a.Cov {
-				if math.Abs(a.Cov[i]-b.Cov[i]) > 1e-9*math.Max(1e-6, math.Abs(b.Cov[i])) {
-					t.Errorf("covariance %d: late %g, in stamp order %g", i, a.Cov[i], b.Cov[i])
-				}
-			}
-			// Every stamp inside the window agrees too.
-			for ts := late.WindowStartNs(); ts <= late.NewestNs(); ts += 37e6 {
-				pa, ea := late.PoseAt(ts)
-				pb, eb := inOrder.PoseAt(ts)
-				if ea != nil || eb != nil {
-					continue // the two window starts may differ by one entry
-				}
-				if d := math.Hypot(pa.Pose.X-pb.Pose.X, pa.Pose.Y-pb.Pose.Y); d > 1e-9 {
-					t.Errorf("PoseAt(%d) differs by %g m", ts, d)
-				}
-			}
+				return cfg
+			})
 		})
+	}
+}
+
+// lateEqualsStampOrder feeds scenario sc's samples to a robot of its
+// configuration, edited by edit, in arrival order (fixes 150 ms late, IMU
+// samples out of order with odometry) and to another in stamp order, and
+// checks that both end with the same estimate, and agree at every stamp
+// of the window, to 1e-9 (TestLateEqualsStampOrder).
+func lateEqualsStampOrder(t *testing.T, sc fusiontest.Scenario, edit func(fusion.Config) fusion.Config) {
+	t.Helper()
+	s, arrival := collect(sc)
+	// Pose fixes name their marker, a new one every second, so that
+	// recovery counts markers (recovery.distinct_markers 2) in both
+	// orders.
+	nameMarkers(arrival, 1e9)
+	stamped := stampOrder(arrival)
+	cfg := edit(s.Config())
+	late, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	inOrder, _ := fusion.New(cfg)
+	var lateFixes int
+	for i := range arrival {
+		res := fusiontest.Feed(late, &arrival[i])
+		if arrival[i].Fix != nil && res.Verdict != fusion.VerdictHeld {
+			lateFixes++
+		}
+		fusiontest.Feed(inOrder, &stamped[i])
+	}
+	if lateFixes < 100 {
+		t.Fatalf("only %d fixes were inserted late", lateFixes)
+	}
+	a, b := late.Pose(), inOrder.Pose()
+	if d := math.Hypot(a.Pose.X-b.Pose.X, a.Pose.Y-b.Pose.Y) + math.Abs(estimator.Wrap(a.Pose.Heading-b.Pose.Heading)); d > 1e-9 {
+		t.Errorf("late %+v, in stamp order %+v (difference %g)", a.Pose, b.Pose, d)
+	}
+	for i := range a.Cov {
+		if math.Abs(a.Cov[i]-b.Cov[i]) > 1e-9*math.Max(1e-6, math.Abs(b.Cov[i])) {
+			t.Errorf("covariance %d: late %g, in stamp order %g", i, a.Cov[i], b.Cov[i])
+		}
+	}
+	// Every stamp inside the window agrees too.
+	for ts := late.WindowStartNs(); ts <= late.NewestNs(); ts += 37e6 {
+		pa, ea := late.PoseAt(ts)
+		pb, eb := inOrder.PoseAt(ts)
+		if ea != nil || eb != nil {
+			continue // the two window starts may differ by one entry
+		}
+		if d := math.Hypot(pa.Pose.X-pb.Pose.X, pa.Pose.Y-pb.Pose.Y); d > 1e-9 {
+			t.Errorf("PoseAt(%d) differs by %g m", ts, d)
+		}
 	}
 }

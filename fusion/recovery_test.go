@@ -1,10 +1,12 @@
 package fusion_test
 
 import (
-	"gonum.org/v1/gonum/stat/distuv"
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"testing"
+
+	"gonum.org/v1/gonum/stat/distuv"
 
 	"reckon.example/estimator"
 	"reckon.example/fusion"
@@ -456,6 +458,107 @@ func TestRecoveryLearnsJumpedIMUOffset(t *testing.T) {
 			if rms > 0.1 {
 				t.Errorf("jump %.1f rad, seed %d: RMS heading error %.4f rad after the recovery", jump, sc.Seed, rms)
 			}
+		}
+	}
+}
+
+// renamedRun drives a robot at 0.3 m/s along a row of posts 5 m apart on
+// either side (y = +-1.75 m, 3 cm off their mapped positions, the map's
+// survey error declared, so landmark blocks track the posts in view), a
+// camera at 5 Hz reporting every post 1 to 7 m ahead within 0.6 rad with 5
+// cm and 10 mrad of white error. From 15 s to 17 s, while the posts at 10
+// m have been in view for 4 s, every post is reported under the name of the
+// post one spacing further along (renamed); or (move) at 15 s the robot is
+// set down moveM further along. It returns the
+// recoveries, the misnamed fixes applied and the final position error.
+func renamedRun(t *testing.T, renamed bool, moveM float64) (recoveries, misApplied int, errM float64) {
+	t.Helper()
+	const gap, half, rangeStd, bearingStd = 5.0, 1.75, 0.05, 0.010
+	rng := rand.New(rand.NewPCG(7, 8))
+	name := func(i int, side float64) string { return fmt.Sprintf("post-%d-%+.0f", i, side) }
+	type post struct {
+		i          int
+		side, x, y float64
+	}
+	var posts []post
+	var lms []fusion.Landmark
+	for i := 0; i <= 12; i++ {
+		for _, side := range []float64{-1, 1} {
+			p := post{i, side, float64(i)*gap + 0.03*rng.NormFloat64(), side*half + 0.03*rng.NormFloat64()}
+			posts = append(posts, p)
+			lms = append(lms, fusion.Landmark{ID: name(i, side), XM: float64(i) * gap, YM: side * half})
+		}
+	}
+	cfg := fusion.Config{Recovery: fusion.Recovery{Enabled: true}, Landmarks: lms, LandmarkPositionStdM: 0.03,
+		Sensors: []fusion.Sensor{{ID: "camera", Kind: fusion.FixLandmark,
+			Cov: []float64{rangeStd * rangeStd, 0, 0, bearingStd * bearingStd}}}}
+	r, err := fusion.New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var truth estimator.Pose
+	step := estimator.Step{ForwardM: 0.003} // 0.3 m/s at 100 Hz
+	for k := int64(0); k < 3000; k++ {
+		t0, t1 := k*10e6, (k+1)*10e6
+		truth = estimator.Advance(truth, step)
+		if k == 1500 {
+			truth.X += moveM
+		}
+		r.AddOdometry(fusion.Odometry{StartNs: t0, StampNs: t1, Step: &step})
+		if k%20 != 19 {
+			continue
+		}
+		for _, p := range posts {
+			dx, dy := p.x-truth.X, p.y-truth.Y
+			rg, b := math.Hypot(dx, dy), estimator.Wrap(math.Atan2(dy, dx)-truth.Heading)
+			if rg < 1 || rg > 7 || math.Abs(b) > 0.6 {
+				continue
+			}
+			rg += rangeStd * rng.NormFloat64()
+			b += bearingStd * rng.NormFloat64()
+			id, wrong := name(p.i, p.side), renamed && k >= 1500 && k < 1700
+			if wrong {
+				id = name(p.i+1, p.side)
+			}
+			res := r.AddFix(fusion.Fix{StampNs: t1, SensorID: "camera", Kind: fusion.FixLandmark, LandmarkID: id, RangeM: &rg, BearingRad: &b})
+			if wrong && res.Verdict == fusion.VerdictApplied {
+				misApplied++
+			}
+			for _, e := range res.Events {
+				if e.Kind == fusion.EventMoveRecovered {
+					recoveries++
+					t.Logf("%s at %.2f s", e.Detail, float64(e.StampNs)*1e-9)
+				}
+			}
+		}
+	}
+	p := r.Pose().Pose
+	return recoveries, misApplied, math.Hypot(p.X-truth.X, p.Y-truth.Y)
+}
+
+// TestRenamedLandmarksNotAMove: both posts of a frame read for 2 s as
+// their neighbours one spacing along agree on a pose 5 m along, from two
+// landmarks, as a carry there would; but the estimate explains the same
+// refused fixes as readings of the posts its landmark blocks track, under
+// other names (their joint cost at the estimate within the relocation's
+// own chi-square quantile: joint compatibility, Neira and Tardos 2001,
+// from memory), so the robot is not reseeded: no recovery, no misnamed fix
+// applied, the estimate where it was. Before, it was reseeded 5 m along,
+// the misnamed fixes were applied (16), and a second recovery brought it
+// back (the orchard carrier's seeds 518, 536 and 539 of 40: 12, 5 and 15
+// misread fixes applied; DEVELOPERS.md, "Design: Gating and recovery",
+// renamed views). A robot set down 2.4 m along, whose readings no tracked
+// post explains, is still reseeded, and so is one set down exactly a
+// spacing along, whose view is the tracked one renamed, once its
+// candidates are no longer so explained.
+func TestRenamedLandmarksNotAMove(t *testing.T) {
+	rec, mis, e := renamedRun(t, true, 0)
+	if rec != 0 || mis != 0 || e > 0.2 {
+		t.Errorf("posts renamed for 2 s: %d recoveries, %d misnamed fixes applied, final error %.2f m; want none, none, within 0.2 m", rec, mis, e)
+	}
+	for _, move := range []float64{2.4, 5} {
+		if rec, _, e := renamedRun(t, false, move); rec == 0 || e > 0.2 {
+			t.Errorf("set down %.1f m along: %d recoveries, final error %.2f m; want a recovery, within 0.2 m", move, rec, e)
 		}
 	}
 }

@@ -117,9 +117,77 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 			short = true
 			continue
 		}
+		if r.renamed(set, bias[n-k:], &st) {
+			continue
+		}
 		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true, false
 	}
 	return estimator.Pose{}, [9]float64{}, "", false, short
+}
+
+// renamed reports whether the estimate st explains the folded landmark
+// candidates of set as well as a relocation does: as readings, under other
+// names, of the landmarks its landmark blocks track, those seen within the
+// last landmarkKeepNs or kept since (no applied fix took their blocks).
+// Each candidate is renamed to the tracked landmark other than its own
+// nearest to where it saw its own from the estimate, and the joint cost
+// of the renamed set at the estimate's pose (jointEquations, the
+// estimate's own covariance left out, which only makes the test
+// stricter) is compared with the chi-square quantile at
+// recovery.agree_probability for its dimension, the pose not fitted: the
+// relocation's own agreement test. When both explain the refused fixes,
+// they are no evidence of a move: the names, not the pose, are in doubt
+// (joint compatibility; Neira and Tardos, IEEE Trans. Robotics and
+// Automation 17(6), 2001, from memory). Two markers of one frame both
+// read as their neighbours along a row of evenly spaced posts agree on a
+// pose one spacing along, from two landmarks, as a carry there would;
+// taken, they reseeded the orchard carrier 5 m off (DEVELOPERS.md,
+// "Design: Gating and recovery"). Without landmark blocks (no survey
+// error declared) nothing is tracked and nothing is renamed; nor is a set
+// with a range-only or bearing-only fix, which sees its landmark at no
+// one point.
+func (r *Robot) renamed(set []candidate, bias [][3]int, st *estimator.State) bool {
+	if len(r.lmAt) == 0 {
+		return false
+	}
+	tracked := r.before(r.locate(set[len(set)-1].stamp)).lm
+	x := st.Pose()
+	alt := make([]candidate, len(set))
+	copy(alt, set)
+	for i := range alt {
+		m := &alt[i].meas
+		from := estimator.Compose(x, inversePose(alt[i].rel))
+		var seen [2]float64 // where the fix puts its landmark, seen from the estimate
+		switch m.Kind {
+		case estimator.KindRangeBearing:
+			th := from.Heading + m.Mount.Heading + m.Z[1]
+			o := estimator.Compose(from, m.Mount)
+			seen = [2]float64{o.X + m.Z[0]*math.Cos(th), o.Y + m.Z[0]*math.Sin(th)}
+		default:
+			return false
+		}
+		best := math.Inf(1)
+		for k := range tracked {
+			id := tracked[k].id
+			if id == 0 {
+				continue
+			}
+			l := &r.cfg.Landmarks[id-1]
+			if l.XM == m.LandmarkX && l.YM == m.LandmarkY {
+				continue
+			}
+			if d := math.Hypot(l.XM-seen[0], l.YM-seen[1]); d < best {
+				best = d
+				alt[i].meas.LandmarkX, alt[i].meas.LandmarkY = l.XM, l.YM
+			}
+		}
+		if math.IsInf(best, 1) {
+			return false
+		}
+	}
+	cal := r.priorCalibration()
+	_, _, cost, dim, ok := jointEquations(alt, bias, st, &cal, x)
+	return ok && cost <= distuv.ChiSquared{K: float64(dim)}.Quantile(r.cfg.Recovery.AgreeProbability)
 }
 
 // wouldTrust reports whether a pose with covariance cov (3x3) is within the

@@ -132,7 +132,22 @@ type Calibration struct {
 	// with `reckon tune` from long runs is known better. 0 takes the
 	// default; a tiny value (1e-9) leaves the spread out.
 	NoiseRatioStd float64
+	// GyroScaleStd adds, with imu_mode absolute, a gyro scale state g
+	// (dimensionless, near 0) of this prior standard deviation; 0 (the
+	// default) adds none. A gyro whose scale factor is off by a fraction f
+	// reads every turn f of it wrong: its heading zero moves by g = f /
+	// (1 + f) times the IMU's own turn, which the filter applies between
+	// consecutive IMU headings and so estimates g (DEVELOPERS.md, "Design:
+	// State"). 0.03 covers an uncalibrated MEMS gyro (1% to 3%, from
+	// memory); at most maxGyroScaleStd. It takes a state: a configuration
+	// whose state has no room for it is refused.
+	GyroScaleStd float64
 }
+
+// maxGyroScaleStd is the most Calibration.GyroScaleStd may be: a gyro off
+// by half of every turn is broken, not uncalibrated, and the linearised
+// step g dpsi is no model of it.
+const maxGyroScaleStd = 0.5
 
 // maxNoiseRatioStd is the most Calibration.NoiseRatioStd a new robot may
 // have (Config.CheckBounds): a true noise spread evenly from none to 20
@@ -301,6 +316,12 @@ func (c *Config) checkCalibration() error {
 	if math.IsInf(k.NoiseRatioStd*k.NoiseRatioStd, 0) {
 		return cfgErr("calibration.noise_ratio_std", "%v squared is not a finite variance", k.NoiseRatioStd)
 	}
+	if g := k.GyroScaleStd; !finiteAll(g) || g < 0 || g > maxGyroScaleStd {
+		return cfgErr("calibration.gyro_scale_std", "%v must be a finite standard deviation from 0 (none) to %g (a gyro off by more than half of every turn is broken)", g, maxGyroScaleStd)
+	}
+	if k.GyroScaleStd > 0 && c.IMU != IMUAbsolute {
+		return cfgErr("calibration.gyro_scale_std", "needs imu_mode absolute (the gyro scale moves the absolute IMU's offset); imu_mode is %s", c.IMU)
+	}
 	if k.RateBias {
 		ok := c.IMU == IMUAbsolute
 		for _, s := range c.Sensors {
@@ -317,13 +338,8 @@ func (c *Config) checkCalibration() error {
 // each sensor, the index of its bias block's first state (0: none).
 func (c *Config) layoutSpec() (estimator.LayoutSpec, []int) {
 	spec := estimator.LayoutSpec{IMUOffset: c.IMU == IMUAbsolute, OdometryScale: c.Calibration.Scale, RateBias: c.Calibration.RateBias,
-		NoiseRatioStd: c.Calibration.NoiseRatioStd}
-	at := 3
-	for _, b := range []bool{spec.IMUOffset, spec.OdometryScale, spec.OdometryScale, spec.RateBias} {
-		if b {
-			at++
-		}
-	}
+		GyroScale: c.IMU == IMUAbsolute && c.Calibration.GyroScaleStd > 0, NoiseRatioStd: c.Calibration.NoiseRatioStd}
+	at := fixedStates(&spec)
 	first := make([]int, len(c.Sensors))
 	for i := range c.Sensors {
 		s := &c.Sensors[i]
@@ -353,16 +369,24 @@ func (c *Config) layoutSpec() (estimator.LayoutSpec, []int) {
 	return spec, first
 }
 
-// mountStates returns, for each sensor, the index of its mount block's
-// first state (0: none), in the layout of layoutSpec.
-func (c *Config) mountStates() []int {
-	spec, _ := c.layoutSpec()
+// fixedStates returns the number of states before the bias blocks in
+// the layout of spec: the pose and the optional states that do not depend
+// on the sensors.
+func fixedStates(spec *estimator.LayoutSpec) int {
 	at := 3
-	for _, b := range []bool{spec.IMUOffset, spec.OdometryScale, spec.OdometryScale, spec.RateBias} {
+	for _, b := range []bool{spec.IMUOffset, spec.OdometryScale, spec.OdometryScale, spec.RateBias, spec.GyroScale} {
 		if b {
 			at++
 		}
 	}
+	return at
+}
+
+// mountStates returns, for each sensor, the index of its mount block's
+// first state (0: none), in the layout of layoutSpec.
+func (c *Config) mountStates() []int {
+	spec, _ := c.layoutSpec()
+	at := fixedStates(&spec)
 	for _, b := range spec.Biases {
 		if !b.Mount && !b.Landmark {
 			at += b.Dim
@@ -381,6 +405,16 @@ func (c *Config) mountStates() []int {
 // checkState checks that the layout fits in the filter.
 func (c *Config) checkState() error {
 	spec, _ := c.layoutSpec()
+	if spec.GyroScale {
+		// The gyro scale comes before the sensors' blocks: a layout that
+		// fits without it and not with it is its doing.
+		without := spec
+		without.GyroScale = false
+		_, errWithout := estimator.NewLayout(without)
+		if _, err := estimator.NewLayout(spec); err != nil && errWithout == nil {
+			return cfgErr("calibration.gyro_scale_std", "no room in the state for the gyro scale (1 state; at most %d in all, which the sensors' bias and mount blocks take): %v; set it to 0 and keep noise.imu_offset_var_rad2_per_rad, or take a block out", estimator.MaxStates, err)
+		}
+	}
 	if _, err := estimator.NewLayout(spec); err != nil {
 		return cfgErr("sensors", "the state does not fit: %v (each correlated sensor adds its fix's dimension)", err)
 	}
@@ -403,6 +437,9 @@ func (c *Config) initialState(l *estimator.Layout, x, p []float64) {
 	}
 	if i := l.RateBias(); i >= 0 {
 		p[i*n+i] = c.Calibration.RateBiasStdRadPerS * c.Calibration.RateBiasStdRadPerS
+	}
+	if i := l.GyroScale(); i >= 0 {
+		p[i*n+i] = c.Calibration.GyroScaleStd * c.Calibration.GyroScaleStd
 	}
 	specs := c.biasSpecs()
 	for k := 0; k < l.Biases(); k++ {

@@ -16,10 +16,12 @@ import (
 // headings, the wheels' turn W (the window's steps, split by time fraction)
 // and the IMU's heading change D = wrap(z_b - z_a) differ by
 //
-//	delta = D - W,   var(delta) = V_w + V_i,   V_i = R_a + R_b + q_o (b - a),
+//	delta = D - W,   var(delta) = V_w + V_i,   V_i = R_a + R_b + q_o (b - a) + q_r abs(W) + s_g^2 D^2,
 //
 // with V_w the steps' turn variance plus the heading random walk, R the two
-// readings' variances and q_o the IMU offset's random walk. When delta^2 /
+// readings' variances, q_o and q_r the IMU offset's random walks per second
+// and per radian, and s_g the gyro scale's prior standard deviation
+// (calibration.gyro_scale_std; the zero moves by the gyro scale times D). When delta^2 /
 // var(delta) exceeds the 1-dof chi-square quantile at gate_probability
 // (corrected for repeated tests, below), the wheels slipped, and the steps' covariances over [a, b] are multiplied by
 // the covariance-matching factor k, the one that makes the expected squared
@@ -191,8 +193,16 @@ func (r *Robot) turnDisagreement(a, b turnAnchor, c *wheelSums) (delta, vw, vi, 
 	// leave such stretches alone.
 	w, vw, vc, first := r.wheelTurn(a.stamp, b.stamp, c)
 	dt := float64(b.stamp-a.stamp) * 1e-9
-	delta = estimator.Wrap(b.heading-a.heading) - w
+	d := estimator.Wrap(b.heading - a.heading)
+	delta = d - w
 	vi = a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + r.cfg.Noise.IMUOffsetVarRad2PerRad*math.Abs(w) + vc
+	if r.layout.GyroScale() >= 0 {
+		// The IMU's zero moved by its gyro scale times its turn d; like
+		// the wheels' calibration (wheelTurn), at the scale's prior, so
+		// that the decision does not depend on which fixes have arrived.
+		g := r.cfg.Calibration.GyroScaleStd
+		vi += g * g * d * d
+	}
 	return delta, vw, vi, delta * delta / (vw + vi), w, first
 }
 

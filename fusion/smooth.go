@@ -196,7 +196,23 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			c.open = true
 		case entMeas:
 			cur := c.cur()
+			var d float64
+			if e.imu && !e.initialised && !e.out.Gated && c.open {
+				d = prev.GyroStep(&r.layout, e.meas.R[0])
+			}
 			r.loadEst(&cur.Post, &e.after)
+			if ref, _ := cur.Post.IMUGyro(); d != 0 && ref == estimator.Wrap(e.meas.Z[0]) {
+				// The IMU heading moved the offset by the gyro scale
+				// times the IMU's turn before its update (applied: its
+				// heading is the reference now), a noise-free linear step
+				// G = I + d e_offset e_g^T: the step's prediction is G's
+				// image (G Pred G^T, G F), as for the landmark block below.
+				cur.Pred.GyroTurn(&r.layout, d)
+				o, g := r.layout.Offset(), r.layout.GyroScale()
+				for j := 0; j < r.n; j++ {
+					cur.F[o*estimator.MaxStates+j] += d * cur.F[g*estimator.MaxStates+j]
+				}
+			}
 			if e.seeded && c.open {
 				// The landmark block stands for another landmark from
 				// here: to the smoother a new state, independent of the

@@ -22,7 +22,21 @@ import (
 // (the motion model is then the identity) whose heading and IMU offset
 // are random walks, with IMU headings (heading + offset), heading fixes and
 // position fixes; every measurement is linear.
-func TestSmootherEqualsBatch(t *testing.T) {
+func TestSmootherEqualsBatch(t *testing.T) { smootherEqualsBatch(t, 0) }
+
+// TestSmootherEqualsBatchGyroScale: the same with a gyro scale g (prior
+// standard deviation 0.03) and an IMU whose headings turn 0.04 rad a
+// sample: the offset's random walk gains g u, u the IMU's turn summed
+// until it reaches the filter's step (estimator.GyroStepSigmas standard
+// deviations of a difference of two readings), which the batch's rows
+// carry as known coefficients of g (a fixed-interval smoother of a
+// linear-Gaussian problem equals its batch least-squares solution; Rauch,
+// Tung and Striebel 1965, from memory).
+func TestSmootherEqualsBatchGyroScale(t *testing.T) { smootherEqualsBatch(t, 0.03) }
+
+// smootherEqualsBatch is TestSmootherEqualsBatch with a gyro scale of
+// prior standard deviation gs (0: none).
+func smootherEqualsBatch(t *testing.T, gs float64) {
 	const (
 		steps = 60
 		dtNs  = int64(10e6)
@@ -40,6 +54,7 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		WindowNs: int64(steps) * dtNs * 2,
 		Sensors:  []fusion.Sensor{{ID: "compass", Kind: fusion.FixHeading}, {ID: "beacon", Kind: fusion.FixPosition}},
 	}
+	cfg.Calibration.GyroScaleStd = gs
 	r, err := fusion.New(cfg)
 	if err != nil {
 		t.Fatal(err)
@@ -52,6 +67,10 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		z    [2]float64
 	}
 	var ms []meas
+	// With a gyro scale, the IMU's turn since the offset last stepped, and
+	// each step's coefficient of g (the offset steps before the update).
+	var acc, ref float64
+	gstep := make([]float64, steps+1)
 	// The IMU's first sample at the start initialises the offset.
 	for k := 0; k <= steps; k++ {
 		stamp := int64(k) * dtNs
@@ -62,6 +81,16 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		}
 		if k%2 == 0 {
 			z := 0.3 + 0.05*rng.NormFloat64()
+			if gs > 0 {
+				z = estimator.Wrap(0.3 + 0.02*float64(k) + 0.01*rng.NormFloat64())
+				if k > 0 {
+					if math.Abs(acc) >= estimator.GyroStepSigmas*math.Sqrt(2*rImu) {
+						gstep[k], acc = acc, 0
+					}
+					acc += estimator.Wrap(z - ref)
+				}
+				ref = z
+			}
 			r.AddHeading(fusion.Heading{StampNs: stamp, HeadingRad: z})
 			ms = append(ms, meas{k, 0, [2]float64{z}})
 		}
@@ -85,9 +114,13 @@ func TestSmootherEqualsBatch(t *testing.T) {
 		t.Fatal(err)
 	}
 
-	// Batch: unknowns x, y, heading_0..N, offset_0..N.
+	// Batch: unknowns x, y, heading_0..N, offset_0..N (and g).
 	N := steps + 1
 	nu := 2 + 2*N
+	ig := nu
+	if gs > 0 {
+		nu++
+	}
 	ih := func(k int) int { return 2 + k }
 	io := func(k int) int { return 2 + N + k }
 	info := mat.NewSymDense(nu, nil)
@@ -106,9 +139,16 @@ func TestSmootherEqualsBatch(t *testing.T) {
 	add(map[int]float64{1: 1}, 0, 0.09)
 	add(map[int]float64{ih(0): 1}, 0, 0.01)
 	dt := float64(dtNs) * 1e-9
+	if gs > 0 {
+		add(map[int]float64{ig: 1}, 0, gs*gs)
+	}
 	for k := 0; k+1 < N; k++ {
 		add(map[int]float64{ih(k + 1): 1, ih(k): -1}, 0, qh*dt)
-		add(map[int]float64{io(k + 1): 1, io(k): -1}, 0, qo*dt)
+		row := map[int]float64{io(k + 1): 1, io(k): -1}
+		if gstep[k+1] != 0 {
+			row[ig] = -gstep[k+1]
+		}
+		add(row, 0, qo*dt)
 	}
 	for _, m := range ms {
 		switch m.kind {
@@ -136,11 +176,14 @@ func TestSmootherEqualsBatch(t *testing.T) {
 	for k := 0; k < N; k++ {
 		s := sm[k]
 		idx := []int{0, 1, ih(k), io(k)}
-		for a := 0; a < 4; a++ {
+		if gs > 0 {
+			idx = append(idx, ig)
+		}
+		for a := range idx {
 			if d := math.Abs(s.MeanAt(a) - sol.AtVec(idx[a])); d > 1e-9 {
 				t.Errorf("step %d state %d: smoothed %.12f, batch %.12f", k, a, s.MeanAt(a), sol.AtVec(idx[a]))
 			}
-			for b := 0; b < 4; b++ {
+			for b := range idx {
 				if d := math.Abs(s.At(a, b) - cov.At(idx[a], idx[b])); d > 1e-9 {
 					t.Errorf("step %d covariance (%d,%d): smoothed %.3g, batch %.3g", k, a, b, s.At(a, b), cov.At(idx[a], idx[b]))
 				}

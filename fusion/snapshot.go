@@ -70,10 +70,14 @@ import (
 // (estimator.State's EIVConsider) in each estimate; a version 18 to 5
 // snapshot has none, and its robot's compensation starts its own
 // uncertainty at zero, as its builds carried none.
-const SnapshotVersion = 19
+// Version 20: the IMU's last heading and turn of a gyro scale
+// (estimator.State's IMUGyro) in each estimate; a version 19 to 5
+// snapshot has none, and its robots had no gyro scale
+// (calibration.gyro_scale_std is new), so it restores as it was.
+const SnapshotVersion = 20
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 18, whose estimates lack the compensation's consider column; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 19, whose robots had no gyro scale; 18, whose estimates lack the compensation's consider column; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -622,6 +626,9 @@ func encState(e *wenc, s *estimator.State) {
 	if c := s.EIVConsider(); c != ([estimator.MaxStates]float64{}) {
 		e.doubles(5, c[:n])
 	}
+	if z, u := s.IMUGyro(); z != 0 || u != 0 {
+		e.doubles(6, []float64{z, u})
+	}
 }
 
 func decState(d *wdec) estimator.State {
@@ -629,6 +636,7 @@ func decState(d *wdec) estimator.State {
 	var x, p []float64
 	var m estimator.EIVMoments
 	var c []float64
+	var gyro []float64
 	for num, ok := d.next(); ok; num, ok = d.next() {
 		switch num {
 		case 1:
@@ -643,6 +651,17 @@ func decState(d *wdec) estimator.State {
 			c = d.doubleSlice(num)
 			if d.version < 19 {
 				d.fail("estimate: errors-in-variables consider column in a version %d snapshot (from version 19)", d.version)
+			}
+		case 6:
+			gyro = d.doubleSlice(num)
+			if d.version < 20 {
+				d.fail("estimate: IMU heading and turn of a gyro scale in a version %d snapshot (from version 20)", d.version)
+			}
+			// The heading is wrapped; the turn is a sum of wrapped
+			// turns, below the step's threshold before the last.
+			if len(gyro) != 2 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !finiteAll(gyro[1]) {
+				d.fail("estimate: IMU heading and turn of a gyro scale %v are not a wrapped angle and a finite one", gyro)
+				gyro = nil
 			}
 		default:
 			d.fail("estimate: unknown field %d", num)
@@ -665,6 +684,9 @@ func decState(d *wdec) estimator.State {
 	var col [estimator.MaxStates]float64
 	copy(col[:], c)
 	st.SetEIVConsider(col)
+	if gyro != nil {
+		st.SetIMUGyro(gyro[0], gyro[1])
+	}
 	return st
 }
 

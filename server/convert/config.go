@@ -84,7 +84,7 @@ func ConfigFromProto(c *pb.RobotConfig) (fusion.Config, error) {
 	k := c.GetCalibration()
 	cfg.Calibration = fusion.Calibration{Scale: k.GetScale(), ScaleStd: k.GetScaleStd(), ForwardScaleVarPerM: k.GetForwardScaleVarPerM(),
 		TurnScaleVarPerRad: k.GetTurnScaleVarPerRad(), RateBias: k.GetRateBias(), RateBiasStdRadPerS: k.GetRateBiasStdRadPerS(),
-		RateBiasVarRad2PerS3: k.GetRateBiasVarRad2PerS3(), NoiseRatioStd: k.GetNoiseRatioStd()}
+		RateBiasVarRad2PerS3: k.GetRateBiasVarRad2PerS3(), NoiseRatioStd: k.GetNoiseRatioStd(), GyroScaleStd: k.GetGyroScaleStd()}
 	if err := cfg.Validate(); err != nil {
 		return cfg, err
 	}
@@ -145,7 +145,7 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 	if k != (fusion.Calibration{}) {
 		c.Calibration = &pb.OdometryCalibration{Scale: k.Scale, ScaleStd: k.ScaleStd, ForwardScaleVarPerM: k.ForwardScaleVarPerM,
 			TurnScaleVarPerRad: k.TurnScaleVarPerRad, RateBias: k.RateBias, RateBiasStdRadPerS: k.RateBiasStdRadPerS,
-			RateBiasVarRad2PerS3: k.RateBiasVarRad2PerS3, NoiseRatioStd: k.NoiseRatioStd}
+			RateBiasVarRad2PerS3: k.RateBiasVarRad2PerS3, NoiseRatioStd: k.NoiseRatioStd, GyroScaleStd: k.GyroScaleStd}
 	}
 	return c
 }

@@ -312,7 +312,10 @@ func (x *JournalSession) GetVerdicts() []*IngestResponse {
 type RobotSnapshot struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The layout version; a robot reads its own and the older ones it
-	// knows (version 19 reads 18 to 5: a version 18 snapshot lacks the
+	// knows (version 20 reads 19 to 5: a version 19 snapshot lacks the
+	// estimates' imu_gyro_rad, which its robots, without a gyro scale, had
+	// no use for;
+	// 18 lacks the
 	// estimates' turn_scale_eiv_consider, 17 has the turn scale's
 	// errors-in-variables moments over the pose alone, 16 lacks the
 	// odometry entries' slip_factor, 15 held_reseed_marker_key, 14 the
@@ -854,7 +857,7 @@ type EstimateState struct {
 	Size uint32 `protobuf:"varint,1,opt,name=size,proto3" json:"size,omitempty"`
 	// The mean, size entries: x m, y m, heading rad, then as configured the
 	// IMU offset rad, the forward and turn scales, the heading-rate bias
-	// rad/s, one bias block per correlated sensor, one mount block per
+	// rad/s, the gyro scale, one bias block per correlated sensor, one mount block per
 	// sensor with mount_std and the landmark blocks (DEVELOPERS.md, "Design:
 	// State" and "Design: Landmark survey error").
 	Mean []float64 `protobuf:"fixed64,2,rep,packed,name=mean,proto3" json:"mean,omitempty"`
@@ -873,8 +876,14 @@ type EstimateState struct {
 	// steps, whose spread the covariance includes (DEVELOPERS.md, "Design:
 	// State"). Absent when all zero.
 	TurnScaleEivConsider []float64 `protobuf:"fixed64,5,rep,packed,name=turn_scale_eiv_consider,json=turnScaleEivConsider,proto3" json:"turn_scale_eiv_consider,omitempty"`
-	unknownFields        protoimpl.UnknownFields
-	sizeCache            protoimpl.SizeCache
+	// With a gyro scale (version 20): the IMU heading of the last IMU update
+	// or offset initialisation and the IMU's turn from the heading before
+	// it, rad (2 values): the next IMU update moves the offset by the gyro
+	// scale times the turn, and takes its turn from the heading. Absent when
+	// both are zero.
+	ImuGyroRad    []float64 `protobuf:"fixed64,6,rep,packed,name=imu_gyro_rad,json=imuGyroRad,proto3" json:"imu_gyro_rad,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *EstimateState) Reset() {
@@ -938,6 +947,13 @@ func (x *EstimateState) GetTurnScaleEiv() []float64 {
 func (x *EstimateState) GetTurnScaleEivConsider() []float64 {
 	if x != nil {
 		return x.TurnScaleEivConsider
+	}
+	return nil
+}
+
+func (x *EstimateState) GetImuGyroRad() []float64 {
+	if x != nil {
+		return x.ImuGyroRad
 	}
 	return nil
 }
@@ -2175,7 +2191,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x17_held_reseed_marker_key\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +
-	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"\xb4\x01\n" +
+	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"\xd6\x01\n" +
 	"\rEstimateState\x12\x12\n" +
 	"\x04size\x18\x01 \x01(\rR\x04size\x12\x12\n" +
 	"\x04mean\x18\x02 \x03(\x01R\x04mean\x12\x1e\n" +
@@ -2183,7 +2199,9 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"covariance\x18\x03 \x03(\x01R\n" +
 	"covariance\x12$\n" +
 	"\x0eturn_scale_eiv\x18\x04 \x03(\x01R\fturnScaleEiv\x125\n" +
-	"\x17turn_scale_eiv_consider\x18\x05 \x03(\x01R\x14turnScaleEivConsider\"\xb9\x01\n" +
+	"\x17turn_scale_eiv_consider\x18\x05 \x03(\x01R\x14turnScaleEivConsider\x12 \n" +
+	"\fimu_gyro_rad\x18\x06 \x03(\x01R\n" +
+	"imuGyroRad\"\xb9\x01\n" +
 	"\x12SnapshotCheckpoint\x124\n" +
 	"\bestimate\x18\x01 \x01(\v2\x18.reckon.v1.EstimateStateR\bestimate\x12!\n" +
 	"\foffset_ready\x18\x02 \x01(\bR\voffsetReady\x12J\n" +

@@ -850,7 +850,7 @@ func (x *MountStd) GetHeadingRad() float64 {
 
 // OdometryCalibration adds states that calibrate the odometry online:
 // forward and turn scales and a heading-rate bias, random constants or
-// slow random walks.
+// slow random walks, and an absolute IMU's gyro scale.
 type OdometryCalibration struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Adds forward_scale and turn_scale: the true step is
@@ -878,6 +878,18 @@ type OdometryCalibration struct {
 	// such as 1e-9 is how to leave the spread out). A new robot takes at
 	// most 10; one whose square is not a finite number is refused.
 	NoiseRatioStd float64 `protobuf:"fixed64,8,opt,name=noise_ratio_std,json=noiseRatioStd,proto3" json:"noise_ratio_std,omitempty"`
+	// Adds a gyro scale state g for an absolute IMU (imu_mode
+	// IMU_MODE_ABSOLUTE only), with this prior standard deviation,
+	// dimensionless (0, the default: no such state). A gyro whose scale
+	// factor is off by a fraction f reads every turn f of it wrong, so the
+	// IMU's heading zero moves by g times the IMU's own turn between its
+	// headings (g = f / (1 + f)); the filter estimates g against the wheels
+	// and fixes. 0.03 suits an uncalibrated MEMS gyro (1% to 3% off, from
+	// memory). At most 0.5; NaN, infinite and negative values are refused,
+	// and so is a robot whose state has no room left for it (at most 12
+	// states: correlated sensors, mount errors and landmark blocks take
+	// room too). With it, leave imu_offset_var_rad2_per_rad at 0.
+	GyroScaleStd  float64 `protobuf:"fixed64,9,opt,name=gyro_scale_std,json=gyroScaleStd,proto3" json:"gyro_scale_std,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -964,6 +976,13 @@ func (x *OdometryCalibration) GetRateBiasVarRad2PerS3() float64 {
 func (x *OdometryCalibration) GetNoiseRatioStd() float64 {
 	if x != nil {
 		return x.NoiseRatioStd
+	}
+	return 0
+}
+
+func (x *OdometryCalibration) GetGyroScaleStd() float64 {
+	if x != nil {
+		return x.GyroScaleStd
 	}
 	return 0
 }
@@ -1099,7 +1118,10 @@ type NoiseModel struct {
 	// Random walk of the IMU's heading zero per radian the robot turns, in
 	// IMU_MODE_ABSOLUTE (default 0: none). A gyro whose scale factor is off by
 	// a fraction f reads every turn f of it wrong; about f^2 (1e-4 for 1%)
-	// keeps the covariance honest for an uncalibrated MEMS gyro.
+	// covers a turn of about a radian between fixes; over longer turns it is
+	// short, as a constant scale error grows with the angle and the walk
+	// with its root: calibration.gyro_scale_std models the scale error
+	// itself and takes its place.
 	ImuOffsetVarRad2PerRad float64 `protobuf:"fixed64,14,opt,name=imu_offset_var_rad2_per_rad,json=imuOffsetVarRad2PerRad,proto3" json:"imu_offset_var_rad2_per_rad,omitempty"`
 	unknownFields          protoimpl.UnknownFields
 	sizeCache              protoimpl.SizeCache
@@ -1663,7 +1685,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
 	"\x03y_m\x18\x02 \x01(\x01R\x02yM\x12\x1f\n" +
 	"\vheading_rad\x18\x03 \x01(\x01R\n" +
-	"headingRad\"\xe5\x02\n" +
+	"headingRad\"\x8b\x03\n" +
 	"\x13OdometryCalibration\x12\x14\n" +
 	"\x05scale\x18\x01 \x01(\bR\x05scale\x12\x1b\n" +
 	"\tscale_std\x18\x02 \x01(\x01R\bscaleStd\x124\n" +
@@ -1672,7 +1694,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\trate_bias\x18\x05 \x01(\bR\brateBias\x123\n" +
 	"\x17rate_bias_std_rad_per_s\x18\x06 \x01(\x01R\x12rateBiasStdRadPerS\x127\n" +
 	"\x19rate_bias_var_rad2_per_s3\x18\a \x01(\x01R\x14rateBiasVarRad2PerS3\x12&\n" +
-	"\x0fnoise_ratio_std\x18\b \x01(\x01R\rnoiseRatioStd\"\xae\x01\n" +
+	"\x0fnoise_ratio_std\x18\b \x01(\x01R\rnoiseRatioStd\x12$\n" +
+	"\x0egyro_scale_std\x18\t \x01(\x01R\fgyroScaleStd\"\xae\x01\n" +
 	"\fEncoderWheel\x12\x12\n" +
 	"\x04name\x18\x01 \x01(\tR\x04name\x12\x0f\n" +
 	"\x03x_m\x18\x02 \x01(\x01R\x02xM\x12\x0f\n" +

@@ -1,0 +1,233 @@
+package estimator
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"gonum.org/v1/gonum/mat"
+)
+
+// gyroLayouts are layouts with a gyro scale: with the IMU offset alone (5
+// states), and after the odometry calibration and before a bias block (10).
+func gyroLayouts() []Layout {
+	return []Layout{
+		MustLayout(LayoutSpec{IMUOffset: true, GyroScale: true}),
+		MustLayout(LayoutSpec{IMUOffset: true, OdometryScale: true, RateBias: true, GyroScale: true, Biases: []BiasSpec{
+			{Dim: 3, TauS: 1.5, Cov: [9]float64{4e-4, 1e-5, 0, 1e-5, 4e-4, 0, 0, 0, 1e-4}},
+		}}),
+	}
+}
+
+// gyroFilter returns a filter of layout l with a random mean (scales near
+// 1, gyro scale near 0), a random well-conditioned covariance and a random
+// IMU heading and turn (the turn well above the step's threshold).
+func gyroFilter(t *testing.T, rng *rand.Rand, l Layout) *Filter {
+	n := l.Size()
+	x := make([]float64, n)
+	for i := range x {
+		x[i] = 0.3 * rng.NormFloat64()
+	}
+	if l.ForwardScale() >= 0 {
+		x[l.ForwardScale()] += 1
+		x[l.TurnScale()] += 1
+	}
+	x[l.GyroScale()] = 0.02 * rng.NormFloat64()
+	f, err := NewFilter(&l, x, randomCov(rng, n, 0.05, 0.001))
+	if err != nil {
+		t.Fatal(err)
+	}
+	f.st.imuRef = Wrap(3 * rng.NormFloat64())
+	f.st.imuTurn = (0.3 + rng.Float64()) * float64(1-2*rng.IntN(2))
+	return f
+}
+
+// TestGyroScaleLayout: the gyro scale follows the odometry calibration,
+// comes before the bias blocks, and needs the IMU offset.
+func TestGyroScaleLayout(t *testing.T) {
+	ls := gyroLayouts()
+	if g := ls[0].GyroScale(); g != 4 || ls[0].Size() != 5 {
+		t.Errorf("offset and gyro scale: gyro at %d of %d, want 4 of 5", g, ls[0].Size())
+	}
+	if at, _ := ls[1].Bias(0); ls[1].GyroScale() != 7 || at != 8 {
+		t.Errorf("full layout: gyro at %d, bias block at %d, want 7 and 8", ls[1].GyroScale(), at)
+	}
+	if l := MustLayout(LayoutSpec{IMUOffset: true}); l.GyroScale() != -1 {
+		t.Errorf("layout without it: gyro at %d, want -1", l.GyroScale())
+	}
+	if _, err := NewLayout(LayoutSpec{GyroScale: true}); !errors.Is(err, ErrShape) {
+		t.Errorf("gyro scale without an IMU offset: %v, want ErrShape", err)
+	}
+}
+
+// TestGyroTurnMatchesFiniteDifferences: the gyro turn's Jacobian, which
+// GyroTurn propagates the covariance with (F = I + dpsi e_offset e_g^T),
+// equals the central differences of its mean (gonum diff/fd), and the
+// covariance equals F P F^T formed with gonum mat (the EKF's prediction,
+// Bar-Shalom, Li and Kirubarajan 2001, sec. 5.2, with no process noise).
+func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
+	rng := rand.New(rand.NewPCG(41, 41))
+	for _, l := range gyroLayouts() {
+		n := l.Size()
+		for trial := 0; trial < 5; trial++ {
+			f := gyroFilter(t, rng, l)
+			st := f.State()
+			dpsi := Wrap(2 * rng.NormFloat64())
+			mean := func(dst, x []float64) {
+				s := NewState(n, st.angles, x, flatP(&st))
+				s.GyroTurn(&l, dpsi)
+				copy(dst, s.x[:n])
+			}
+			num := meanJacobian(&st, append([]float64(nil), st.x[:n]...), mean)
+			F := eye(n)
+			F.Set(l.Offset(), l.GyroScale(), dpsi)
+			what := fmt.Sprintf("%d states, dpsi %.3f", n, dpsi)
+			closeMats(t, what+": Jacobian", num, F, 1e-7)
+
+			var want mat.Dense
+			want.Product(F, stateDense(&st), F.T())
+			f.GyroTurn(dpsi)
+			got := f.State()
+			closeMats(t, what+": covariance", stateDense(&got), &want, 1e-14)
+			o, g := l.Offset(), l.GyroScale()
+			if w := Wrap(st.x[o] + st.x[g]*dpsi); got.x[o] != w {
+				t.Errorf("%s: offset %v, want %v", what, got.x[o], w)
+			}
+		}
+	}
+}
+
+// TestGyroUpdateMatchesGonum: an IMU heading on a layout with a gyro scale
+// is the textbook extended Kalman filter (Bar-Shalom, Li and Kirubarajan
+// 2001, sec. 5.2) of the prediction x' = x + u g e_offset,
+// P' = F P F^T, u the IMU's turn summed up to its last heading, followed
+// by the update with H = [0 0 1 1 0 ...], in Joseph form (eq. 5.2.3-18),
+// formed with gonum mat; the turn then restarts from wrap(z - last
+// heading) and the last heading becomes z. Below the step's threshold
+// (GyroStepSigmas) the turn only adds up. A gated heading changes
+// nothing, heading and turn included.
+func TestGyroUpdateMatchesGonum(t *testing.T) {
+	rng := rand.New(rand.NewPCG(43, 43))
+	for _, l := range gyroLayouts() {
+		n := l.Size()
+		for trial := 0; trial < 5; trial++ {
+			f := gyroFilter(t, rng, l)
+			st := f.State()
+			o, g := l.Offset(), l.GyroScale()
+			z := Wrap(st.imuRef + 2*rng.NormFloat64())
+			m := Measurement{Kind: KindIMUHeading, Z: [3]float64{z}, R: [9]float64{2.5e-5}}
+			dpsi := st.imuTurn
+			if trial == 4 {
+				// Below the threshold: no step, the turn adds up.
+				dpsi = 0
+				f.st.imuTurn = 0.5 * GyroStepSigmas * math.Sqrt(2*m.R[0])
+				st = f.State()
+			}
+			what := fmt.Sprintf("%d states, turn %.3f", n, dpsi)
+
+			F := eye(n)
+			F.Set(o, g, dpsi)
+			x := mat.NewVecDense(n, append([]float64(nil), st.x[:n]...))
+			x.SetVec(o, x.AtVec(o)+dpsi*x.AtVec(g))
+			var P mat.Dense
+			P.Product(F, stateDense(&st), F.T())
+			H := mat.NewDense(1, n, nil)
+			H.Set(0, IHead, 1)
+			H.Set(0, o, 1)
+			v := Wrap(z - x.AtVec(IHead) - x.AtVec(o))
+			var pht, S mat.Dense
+			pht.Mul(&P, H.T())
+			S.Mul(H, &pht)
+			s := S.At(0, 0) + m.R[0]
+			K := mat.NewDense(n, 1, nil)
+			for i := 0; i < n; i++ {
+				if !l.consider(i) {
+					K.Set(i, 0, pht.At(i, 0)/s)
+				}
+			}
+			var kh, ikh, want, krk mat.Dense
+			kh.Mul(K, H)
+			ikh.Sub(eye(n), &kh)
+			want.Product(&ikh, &P, ikh.T())
+			krk.Mul(K, K.T())
+			krk.Scale(m.R[0], &krk)
+			want.Add(&want, &krk)
+			var wantX mat.VecDense
+			wantX.AddScaledVec(x, v, K.ColView(0))
+
+			out, err := f.Update(&m, NoGate())
+			if err != nil {
+				t.Fatal(err)
+			}
+			got := f.State()
+			if math.Abs(out.NIS-v*v/s) > 1e-9*out.NIS+1e-12 || st.GyroStep(&l, m.R[0]) != dpsi {
+				t.Errorf("%s: NIS %v, step %v; want %v, %v", what, out.NIS, st.GyroStep(&l, m.R[0]), v*v/s, dpsi)
+			}
+			for i := 0; i < n; i++ {
+				d := got.x[i] - wantX.AtVec(i)
+				if st.isAngle(i) {
+					d = Wrap(d)
+				}
+				if math.Abs(d) > 1e-12 {
+					t.Errorf("%s: mean %d %v, want %v", what, i, got.x[i], wantX.AtVec(i))
+				}
+			}
+			closeMats(t, what+": covariance", stateDense(&got), &want, 1e-12)
+			wantTurn := Wrap(z - st.imuRef)
+			if dpsi == 0 {
+				wantTurn += st.imuTurn
+			}
+			if got.imuRef != z || got.imuTurn != wantTurn {
+				t.Errorf("%s: heading %v and turn %v after the update, want %v and %v", what, got.imuRef, got.imuTurn, z, wantTurn)
+			}
+
+			// Gated: nothing moves, the reference stays.
+			before := f.State()
+			m.Z[0] = Wrap(z + 1)
+			if out, err := f.Update(&m, GateAbove(1e-9)); err != nil || !out.Gated {
+				t.Fatalf("%s: gated update: %+v %v", what, out, err)
+			}
+			if after := f.State(); after != before {
+				t.Errorf("%s: a gated IMU heading changed the state", what)
+			}
+		}
+	}
+}
+
+// TestGyroNoAllocations: an IMU heading with a gyro scale allocates
+// nothing (slog's habit: a zero-allocation test on the hot path).
+func TestGyroNoAllocations(t *testing.T) {
+	rng := rand.New(rand.NewPCG(44, 44))
+	f := gyroFilter(t, rng, gyroLayouts()[1])
+	m := Measurement{Kind: KindIMUHeading, Z: [3]float64{0.3}, R: [9]float64{2.5e-5}}
+	allocs := testing.AllocsPerRun(100, func() {
+		m.Z[0] = Wrap(m.Z[0] + 0.01)
+		_, _ = f.Update(&m, NoGate())
+	})
+	if allocs != 0 {
+		t.Errorf("an IMU heading with a gyro scale allocates %v times per update", allocs)
+	}
+}
+
+// TestGyroPackRoundTrip: the packed estimate of a layout with a gyro scale
+// carries the IMU reference heading (Pack, Unpack, SetPacked).
+func TestGyroPackRoundTrip(t *testing.T) {
+	rng := rand.New(rand.NewPCG(45, 45))
+	for _, l := range gyroLayouts() {
+		f := gyroFilter(t, rng, l)
+		buf := make([]float64, f.PackedSize())
+		f.Pack(buf)
+		var s State
+		s.SetPacked(l.Size(), l.Angles(), buf)
+		if st := f.State(); s != st {
+			t.Errorf("%d states: SetPacked of the packed estimate differs (reference %v, want %v)", l.Size(), s.imuRef, st.imuRef)
+		}
+		h := gyroFilter(t, rng, l)
+		h.Unpack(buf)
+		if a, b := h.State(), f.State(); a != b {
+			t.Errorf("%d states: Unpack of the packed estimate differs", l.Size())
+		}
+	}
+}

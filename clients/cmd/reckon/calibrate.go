@@ -101,7 +101,7 @@ into one HTML report with a calibration section at the top.`)
 	}
 	cfg = r.Config()
 	// The run is kept by kind for the wiring's diagnosis, not as a list of
-	// inputs (a RecordedInput and a copy of each: 190 MB of the demo's
+	// inputs (a RecordedInput and a copy of each: about 190 MB of the demo's
 	// hour, held through the fit), and let go after it: the two fits read
 	// the odometry again (odometry below), keeping only their compact
 	// intervals (calib.FitSystematicFrom), and the NEES the whole run.

@@ -1,6 +1,8 @@
 package fusion_test
 
 import (
+	"bytes"
+	le "encoding/binary"
 	"errors"
 	"fmt"
 	"math"
@@ -281,6 +283,40 @@ func TestSnapshotKeepsGyroScale(t *testing.T) {
 	old := append([]byte{0x08, 19}, snap[2:]...)
 	if _, err := fusion.RestoreSnapshot(cfg, old); !errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "gyro") {
 		t.Errorf("relabelled version 19: %v, want ErrSnapshot naming the gyro scale's heading and turn", err)
+	}
+}
+
+// TestSnapshotRefusesAbsurdGyroTurn: a snapshot whose estimates hold an
+// IMU turn no robot sums (one wrapped turn past the step's threshold for
+// the largest IMU variance, Robot.gyroTurnMax) is refused naming it. A
+// turn of 1e200 restored made every later IMU heading invalid (its step
+// took the offset's variance to infinity), one of 1e6 took the gyro
+// scale's standard deviation from 8e-4 to 1e-9 at the next heading. The
+// snapshot as taken restores.
+func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
+	cfg := gsConfig()
+	a := gsRun(t, 300, 0.015, 20, cfg)
+	snap, err := a.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	st := a.Estimate()
+	_, turn := st.IMUGyro()
+	var was [8]byte
+	le.LittleEndian.PutUint64(was[:], math.Float64bits(turn))
+	if turn == 0 || bytes.Count(snap, was[:]) == 0 {
+		t.Fatalf("turn %v not in the snapshot: the test says nothing", turn)
+	}
+	for _, v := range []float64{turn, 1e6, -1e200, math.Inf(1)} {
+		var now [8]byte
+		le.LittleEndian.PutUint64(now[:], math.Float64bits(v))
+		_, err := fusion.RestoreSnapshot(cfg, bytes.ReplaceAll(snap, was[:], now[:]))
+		switch {
+		case v == turn && err != nil:
+			t.Errorf("the snapshot as taken: %v", err)
+		case v != turn && (!errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "turn")):
+			t.Errorf("IMU turn %v: %v, want ErrSnapshot naming the turn", v, err)
+		}
 	}
 }
 

@@ -42,7 +42,8 @@ func (r *Robot) BootID() string { return r.bootID }
 // start. The pose with its covariance carries over, and so do the
 // odometry scale states with their covariance and their cross-covariance
 // with the pose, because they describe the wheels, which a reboot does not
-// change. The IMU offset is initialised again from the next IMU heading (an
+// change, and the gyro scale (calibration.gyro_scale_std), which describes
+// the gyro, with them. The IMU offset is initialised again from the next IMU heading (an
 // IMU zeroes its heading at power-on), and the heading-rate bias and the
 // sensors' bias blocks start again from their priors (a gyro's turn-on bias
 // differs from one power-on to the next; a correlated sensor error decays
@@ -100,14 +101,20 @@ func (r *Robot) StartRun(s RunStart) Result {
 }
 
 // carryInto puts into st (a fresh robot's prior) what carries over from
-// last: the pose, the odometry scales and their joint covariance, or the
-// re-seed's pose and covariance (with the scales kept, uncorrelated with
-// the new pose, as Reseed does).
+// last: the pose, the odometry scales, the gyro scale and their joint
+// covariance, or the re-seed's pose and covariance (with the scales kept,
+// uncorrelated with the new pose, as Reseed does).
 func carryInto(st, last *estimator.State, l *estimator.Layout, s *RunStart) {
 	n := st.Size()
 	keep := []int{0, 1, 2}
 	if i := l.ForwardScale(); i >= 0 {
 		keep = append(keep, i, l.TurnScale())
+	}
+	if i := l.GyroScale(); i >= 0 {
+		// The gyro's scale is the gyro's, as the wheels' scales are the
+		// wheels': a reboot does not change it (the IMU offset it moves
+		// starts afresh).
+		keep = append(keep, i)
 	}
 	x := make([]float64, n)
 	p := make([]float64, n*n)

@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"errors"
+	"math"
 	"strings"
 	"testing"
 
@@ -136,6 +137,59 @@ func TestStartRunCarriesScales(t *testing.T) {
 	st := r.f.State()
 	if st.MeanAt(0) != 4 || st.MeanAt(1) != -1 || st.MeanAt(2) != estimator.Wrap(7) || st.Var(1) != 0.02 || st.At(0, fs) != 0 || st.Var(fs) != before.Var(fs) {
 		t.Errorf("re-seeded run: mean %v %v %v, var y %v, cov(x, scale) %v", st.MeanAt(0), st.MeanAt(1), st.MeanAt(2), st.Var(1), st.At(0, fs))
+	}
+	checkFinitePD(t, r)
+}
+
+// TestStartRunCarriesGyroScale: the gyro scale (a property of the gyro,
+// which a reboot does not change, as the wheels' scales are the wheels')
+// carries over with its covariance with the pose and the odometry scales,
+// with and without a re-seed's pose (which leaves it uncorrelated with the
+// pose); the IMU offset, which the IMU zeroes at power-on, starts afresh,
+// uncorrelated with it. Before, it started again from its prior, 0 with
+// the configured standard deviation, at every run.
+func TestStartRunCarriesGyroScale(t *testing.T) {
+	cfg := threeWheels()
+	cfg.Sensors = nil
+	cfg.Calibration = Calibration{Scale: true, GyroScaleStd: 0.03}
+	r, err := New(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	feedRun(t, r, 200)
+	l := r.Layout()
+	g, o, ts := l.GyroScale(), l.Offset(), l.TurnScale()
+	// A learnt gyro scale, correlated with the heading, the offset and
+	// the turn scale (a positive definite covariance: the prior's, with
+	// small cross terms).
+	st := r.f.State()
+	n := st.Size()
+	x, p := make([]float64, n), make([]float64, n*n)
+	st.MeanInto(x)
+	st.CovarianceInto(p)
+	x[g] = 0.012
+	p[g*n+g] = 4e-6
+	for _, i := range []int{2, o, ts} {
+		c := 0.3 * math.Sqrt(p[g*n+g]*p[i*n+i])
+		p[g*n+i], p[i*n+g] = c, c
+	}
+	learnt := estimator.NewState(n, st.Angles(), x, p)
+	r.f.SetState(&learnt)
+	if res := r.StartRun(RunStart{BootID: "b"}); res.Verdict != VerdictApplied {
+		t.Fatal(res.Err)
+	}
+	after := r.f.State()
+	if after.MeanAt(g) != 0.012 || after.Var(g) != 4e-6 || after.At(g, 2) != learnt.At(g, 2) || after.At(g, ts) != learnt.At(g, ts) || after.At(g, o) != 0 {
+		t.Errorf("gyro scale %v var %v, cov with heading %v, turn scale %v, offset %v; want 0.012, 4e-6, %v, %v and 0 (the offset afresh)",
+			after.MeanAt(g), after.Var(g), after.At(g, 2), after.At(g, ts), after.At(g, o), learnt.At(g, 2), learnt.At(g, ts))
+	}
+	checkFinitePD(t, r)
+	pose := estimator.Pose{X: 4, Y: -1}
+	if res := r.StartRun(RunStart{BootID: "c", Run: 3, Pose: &pose, Cov: []float64{0.01, 0, 0, 0, 0.02, 0, 0, 0, 0.003}}); res.Verdict != VerdictApplied {
+		t.Fatal(res.Err)
+	}
+	if st := r.f.State(); st.MeanAt(g) != 0.012 || st.Var(g) != 4e-6 || st.At(g, 2) != 0 || st.At(g, ts) != learnt.At(g, ts) {
+		t.Errorf("re-seeded run: gyro scale %v var %v, cov with heading %v, turn scale %v; want 0.012, 4e-6, 0, %v", st.MeanAt(g), st.Var(g), st.At(g, 2), st.At(g, ts), learnt.At(g, ts))
 	}
 	checkFinitePD(t, r)
 }

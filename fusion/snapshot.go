@@ -182,7 +182,7 @@ func RestoreSnapshot(cfg Config, b []byte) (*Robot, error) {
 	if err != nil {
 		return nil, err
 	}
-	d := wdec{b: b, angles: r.layout.Angles()}
+	d := wdec{b: b, angles: r.layout.Angles(), gyroTurnMax: r.gyroTurnMax()}
 	version := uint64(0)
 	var filter estimator.State
 	for num, ok := d.next(); ok; num, ok = d.next() {
@@ -341,6 +341,19 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 	default:
 		d.fail("unknown field %d", num)
 	}
+}
+
+// gyroTurnMax is the largest IMU turn an estimate of r's gyro scale holds
+// (estimator.State's IMUGyro): the turn is summed until it reaches the
+// step's threshold, GyroStepSigmas sqrt(2 R), for the next heading's
+// variance R, at most maxAngleVar with the counts' quantisation
+// (imuMeasurement), and gains one wrapped turn after it, at most pi. 0
+// without a gyro scale, whose turn stays 0.
+func (r *Robot) gyroTurnMax() float64 {
+	if r.layout.GyroScale() < 0 {
+		return 0
+	}
+	return estimator.GyroStepSigmas*math.Sqrt(2*(maxAngleVar+r.quantTurnVar)) + math.Pi
 }
 
 // checkRestored checks what the rest of the robot relies on: every state
@@ -658,9 +671,11 @@ func decState(d *wdec) estimator.State {
 				d.fail("estimate: IMU heading and turn of a gyro scale in a version %d snapshot (from version 20)", d.version)
 			}
 			// The heading is wrapped; the turn is a sum of wrapped
-			// turns, below the step's threshold before the last.
-			if len(gyro) != 2 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !finiteAll(gyro[1]) {
-				d.fail("estimate: IMU heading and turn of a gyro scale %v are not a wrapped angle and a finite one", gyro)
+			// turns, below the step's threshold before the last
+			// (Robot.gyroTurnMax): a larger one would move the offset
+			// by the gyro scale times it at the next IMU heading.
+			if len(gyro) != 2 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !(math.Abs(gyro[1]) <= d.gyroTurnMax) {
+				d.fail("estimate: IMU heading and turn of a gyro scale %v are not a wrapped angle and a turn within %g rad", gyro, d.gyroTurnMax)
 				gyro = nil
 			}
 		default:

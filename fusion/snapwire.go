@@ -81,6 +81,9 @@ type wdec struct {
 	// version is the snapshot's (field 1, which comes first), for the
 	// estimates' errors-in-variables moments (decEIV).
 	version uint64
+	// gyroTurnMax is the largest IMU turn of a gyro scale an estimate
+	// may hold (Robot.gyroTurnMax); 0 refuses any but 0.
+	gyroTurnMax float64
 	// The field just read.
 	typ protowire.Type
 	v   uint64 // varint or fixed64
@@ -217,7 +220,7 @@ func (d *wdec) message(num protowire.Number, body func(*wdec)) {
 	if !d.want(num, protowire.BytesType) {
 		return
 	}
-	sub := wdec{b: d.raw, angles: d.angles, version: d.version}
+	sub := wdec{b: d.raw, angles: d.angles, version: d.version, gyroTurnMax: d.gyroTurnMax}
 	body(&sub)
 	if sub.err != nil && d.err == nil {
 		d.err = sub.err

@@ -1062,9 +1062,9 @@ func (x *Reseed) GetCovariance() *Covariance {
 // clock (and its counts) start again, and the inputs after this one are
 // stamped on the new clock. The robot goes on from the pose and covariance
 // the last run ended with (or the re-seed given here), keeps its odometry
-// scale states, initialises the IMU offset again from the next IMU heading
-// and starts the rate bias and sensor bias states from their priors; the
-// inputs held for odometry are resolved too old. Nothing is deleted: the
+// scale states and its gyro scale state, initialises the IMU offset again
+// from the next IMU heading and starts the rate bias and sensor bias states
+// from their priors; the inputs held for odometry are resolved too old. Nothing is deleted: the
 // journal keeps every run, and review, replay and export select one
 // (DEVELOPERS.md, "Design: Runs"). A run start that does not start the next
 // run is refused (REFUSAL_RUN_OUT_OF_ORDER) and changes nothing.

@@ -105,8 +105,10 @@ func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
 // P' = F P F^T, u the IMU's turn summed up to its last heading, followed
 // by the update with H = [0 0 1 1 0 ...], in Joseph form (eq. 5.2.3-18),
 // formed with gonum mat; the turn then restarts from wrap(z - last
-// heading) and the last heading becomes z. Below the step's threshold
-// (GyroStepSigmas) the turn only adds up. A gated heading changes
+// heading) and the last heading becomes z. A heading that turned past
+// GyroJumpSigmas since the last one has u include that turn, and the turn
+// restarts from 0. Below the step's threshold (GyroStepSigmas) the turn
+// only adds up. A gated heading changes
 // nothing, heading and turn included.
 func TestGyroUpdateMatchesGonum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(43, 43))
@@ -116,13 +118,25 @@ func TestGyroUpdateMatchesGonum(t *testing.T) {
 			f := gyroFilter(t, rng, l)
 			st := f.State()
 			o, g := l.Offset(), l.GyroScale()
-			z := Wrap(st.imuRef + 2*rng.NormFloat64())
+			// Trials 0 and 1: a heading that turned past GyroJumpSigmas
+			// since the last one (a silence of the IMU), whose own turn
+			// the step takes too; 2 and 3: a heading at the robot's rates
+			// (0.1 of the jump), the step the summed turn alone.
+			sd := math.Sqrt(2 * 2.5e-5)
+			d := (1 + rng.Float64()) * GyroJumpSigmas * sd * float64(1-2*(trial%2))
+			if trial >= 2 {
+				d *= 0.1
+			}
+			z := Wrap(st.imuRef + d)
 			m := Measurement{Kind: KindIMUHeading, Z: [3]float64{z}, R: [9]float64{2.5e-5}}
-			dpsi := st.imuTurn
+			dpsi, own := st.imuTurn, trial < 2
+			if own {
+				dpsi += Wrap(z - st.imuRef)
+			}
 			if trial == 4 {
 				// Below the threshold: no step, the turn adds up.
 				dpsi = 0
-				f.st.imuTurn = 0.5 * GyroStepSigmas * math.Sqrt(2*m.R[0])
+				f.st.imuTurn = 0.5 * GyroStepSigmas * sd
 				st = f.State()
 			}
 			what := fmt.Sprintf("%d states, turn %.3f", n, dpsi)
@@ -162,8 +176,8 @@ func TestGyroUpdateMatchesGonum(t *testing.T) {
 				t.Fatal(err)
 			}
 			got := f.State()
-			if math.Abs(out.NIS-v*v/s) > 1e-9*out.NIS+1e-12 || st.GyroStep(&l, m.R[0]) != dpsi {
-				t.Errorf("%s: NIS %v, step %v; want %v, %v", what, out.NIS, st.GyroStep(&l, m.R[0]), v*v/s, dpsi)
+			if step, stepOwn := st.GyroStep(&l, m.R[0], z); math.Abs(out.NIS-v*v/s) > 1e-9*out.NIS+1e-12 || step != dpsi || stepOwn != own {
+				t.Errorf("%s: NIS %v, step %v (own turn %v); want %v, %v (%v)", what, out.NIS, step, stepOwn, v*v/s, dpsi, own)
 			}
 			for i := 0; i < n; i++ {
 				d := got.x[i] - wantX.AtVec(i)
@@ -176,7 +190,10 @@ func TestGyroUpdateMatchesGonum(t *testing.T) {
 			}
 			closeMats(t, what+": covariance", stateDense(&got), &want, 1e-12)
 			wantTurn := Wrap(z - st.imuRef)
-			if dpsi == 0 {
+			switch {
+			case own:
+				wantTurn = 0
+			case dpsi == 0:
 				wantTurn += st.imuTurn
 			}
 			if got.imuRef != z || got.imuTurn != wantTurn {

@@ -41,7 +41,59 @@ func gyroFilter(t *testing.T, rng *rand.Rand, l Layout) *Filter {
 	}
 	f.st.imuRef = Wrap(3 * rng.NormFloat64())
 	f.st.imuTurn = (0.3 + rng.Float64()) * float64(1-2*rng.IntN(2))
+	f.st.imuWheel = 0.01 * rng.NormFloat64()
 	return f
+}
+
+// TestGyroTurnUnwrapped: the IMU's turn to a heading after a silence in
+// which the robot turned more than half a turn keeps its whole turns: the
+// predictions' heading changes since the last IMU heading (imuWheel) sum
+// to the turn, 5 rad in 100 steps, and unwrap the difference of the two
+// wrapped headings (5 - 2 pi taken alone), which the heading's step then
+// takes whole; an IMU heading, and an offset initialisation, start the
+// sum again. Before, the step took 5 - 2 pi.
+func TestGyroTurnUnwrapped(t *testing.T) {
+	rng := rand.New(rand.NewPCG(46, 46))
+	for _, l := range gyroLayouts() {
+		f := gyroFilter(t, rng, l)
+		f.st.imuTurn, f.st.imuWheel = 0, 0
+		if ts := l.TurnScale(); ts >= 0 {
+			f.st.x[ts] = 1 // the random one may be 0.6
+		}
+		if rb := l.RateBias(); rb >= 0 {
+			f.st.x[rb] = 0
+		}
+		turn := 5.0 * float64(1-2*rng.IntN(2))
+		cu := [9]float64{1e-6, 0, 0, 0, 1e-6, 0, 0, 0, 1e-6}
+		var q [MaxStates]float64
+		for range 100 {
+			f.Predict(Step{ForwardM: 0.001, TurnRad: turn / 100}, &cu, 0.01, &q)
+		}
+		// The estimate's own turn is the steps' sum (a turn scale of 1,
+		// no rate bias); the IMU's, (1 + g) times the true one.
+		if w := f.st.imuWheel; math.Abs(w-turn) > 1e-9 {
+			t.Fatalf("%d states: the estimate's turn since the IMU heading %v, want about %v", l.Size(), w, turn)
+		}
+		z := Wrap(f.st.imuRef + turn*1.01)
+		m := Measurement{Kind: KindIMUHeading, Z: [3]float64{z}, R: [9]float64{2.5e-5}}
+		u, own := f.st.GyroStep(&l, m.R[0], z)
+		if !own || math.Abs(u-turn*1.01) > 1e-9 {
+			t.Errorf("%d states: step of %v (own turn %v), want the whole %v", l.Size(), u, own, turn*1.01)
+		}
+		if _, err := f.Update(&m, NoGate()); err != nil {
+			t.Fatal(err)
+		}
+		if f.st.imuWheel != 0 || f.st.imuRef != z || f.st.imuTurn != 0 {
+			t.Errorf("%d states: after the heading, wheel turn %v, reference %v, turn %v; want 0, %v, 0", l.Size(), f.st.imuWheel, f.st.imuRef, f.st.imuTurn, z)
+		}
+		f.st.imuWheel = 1
+		if err := f.InitOffset(0.2, 1e-4); err != nil {
+			t.Fatal(err)
+		}
+		if f.st.imuWheel != 0 {
+			t.Errorf("%d states: the offset initialised, wheel turn %v, want 0", l.Size(), f.st.imuWheel)
+		}
+	}
 }
 
 // TestGyroScaleLayout: the gyro scale follows the odometry calibration,

@@ -305,8 +305,9 @@ func TestSnapshotKeepsGyroScale(t *testing.T) {
 // the largest IMU variance, Robot.gyroTurnMax) is refused naming it. A
 // turn of 1e200 restored made every later IMU heading invalid (its step
 // took the offset's variance to infinity), one of 1e6 took the gyro
-// scale's standard deviation from 8e-4 to 1e-9 at the next heading. The
-// snapshot as taken restores.
+// scale's standard deviation from 8e-4 to 1e-9 at the next heading. So is
+// one whose estimate's own turn since the IMU's last heading is past
+// maxAngleRad or NaN. The snapshot as taken restores.
 func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
 	cfg := gsConfig()
 	a := gsRun(t, 300, 0.015, 20, cfg)
@@ -315,7 +316,7 @@ func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
 		t.Fatal(err)
 	}
 	st := a.Estimate()
-	_, turn := st.IMUGyro()
+	_, turn, _ := st.IMUGyro()
 	var was [8]byte
 	le.LittleEndian.PutUint64(was[:], math.Float64bits(turn))
 	if turn == 0 || bytes.Count(snap, was[:]) == 0 {
@@ -330,6 +331,29 @@ func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
 			t.Errorf("the snapshot as taken: %v", err)
 		case v != turn && (!errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "turn")):
 			t.Errorf("IMU turn %v: %v, want ErrSnapshot naming the turn", v, err)
+		}
+	}
+	// The estimate's own turn since the IMU's last heading (the IMU
+	// silent for the last second): within maxAngleRad, as every angle.
+	b := gsRunSilent(t, 300, 0.015, 20, cfg, 19, 21, nil)
+	if snap, err = b.Snapshot(); err != nil {
+		t.Fatal(err)
+	}
+	st = b.Estimate()
+	_, _, wheel := st.IMUGyro()
+	le.LittleEndian.PutUint64(was[:], math.Float64bits(wheel))
+	if wheel == 0 || bytes.Count(snap, was[:]) == 0 {
+		t.Fatalf("the estimate's turn %v not in the snapshot: the test says nothing", wheel)
+	}
+	for _, v := range []float64{wheel, 2e6, math.NaN()} {
+		var now [8]byte
+		le.LittleEndian.PutUint64(now[:], math.Float64bits(v))
+		_, err := fusion.RestoreSnapshot(cfg, bytes.ReplaceAll(snap, was[:], now[:]))
+		switch {
+		case v == wheel && err != nil:
+			t.Errorf("the snapshot as taken: %v", err)
+		case v != wheel && (!errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "turn")):
+			t.Errorf("the estimate's turn %v: %v, want ErrSnapshot naming the turn", v, err)
 		}
 	}
 }
@@ -419,48 +443,40 @@ func TestHonestGyroScaleState(t *testing.T) {
 
 // TestGyroScaleIMUSilence: an IMU silent for 0.2 to 10 s while the robot
 // spins (a loose connector, a driver restart) leaves the IMU's zero and
-// the heading within their standard deviations when the silence turned
-// less than half a turn: over 8 seeds each, from 5 to 15 s after the
-// silence, no error of either is past 3.29 standard deviations (the
-// normal's two-sided 99.9% point, from memory). Before, the silence's turn
-// entered the offset's step one heading late, after the first heading's
-// update had already taken part of it, so the step counted it twice and
-// its update put the double count on the gyro scale: the zero was 5.6
-// standard deviations off after a 3 s silence, for good. A silence that
-// turned more than half a turn aliases (the IMU's turn is the difference
-// of two wrapped headings: whole turns are lost), logged and not checked:
-// 6 of the 10 s silences, 2.7 to 3.6 standard deviations off.
+// the heading within their standard deviations: over 8 seeds each, from 5
+// to 15 s after the silence, no error of either is past 3.29 standard
+// deviations (the normal's two-sided 99.9% point, from memory); 6 of the
+// 10 s silences turn more than half a turn (up to 8 rad). Before, the
+// silence's turn entered the offset's step one heading late, after the
+// first heading's update had already taken part of it, so the step
+// counted it twice and its update put the double count on the gyro scale
+// (5.63 standard deviations after a 3 s silence, for good); and with that
+// mended, a silence through more than half a turn lost its whole turns,
+// the IMU's turn being the difference of two wrapped headings (3.65 after
+// the 10 s silences), until the estimate's own turn unwrapped it.
 func TestGyroScaleIMUSilence(t *testing.T) {
 	cfg := gsConfig()
 	for _, silence := range []float64{0.2, 1, 3, 10} {
-		worst, aliased := 0.0, 0.0
+		worst, most := 0.0, 0.0
 		for s := range 8 {
 			const from = 31.0
-			var th0, th1, w float64
+			var th0 float64
 			gsRunSilent(t, uint64(700+s), 0.02, from+silence+15, cfg, from, from+silence, func(k int, th, zero float64, r *fusion.Robot) {
-				at := float64(k) * 0.02
-				switch {
+				switch at := float64(k) * 0.02; {
 				case k == int(math.Round(from/0.02)):
 					th0 = th
 				case k == int(math.Round((from+silence)/0.02)):
-					th1 = th
+					most = max(most, math.Abs(th-th0))
+				case at >= from+silence+5:
+					st := r.Estimate()
+					o := r.Layout().Offset()
+					eo := estimator.Wrap(st.MeanAt(o)-zero) / math.Sqrt(st.Var(o))
+					eh := estimator.Wrap(st.MeanAt(estimator.IHead)-th) / math.Sqrt(st.Var(estimator.IHead))
+					worst = max(worst, math.Abs(eo), math.Abs(eh))
 				}
-				if at < from+silence+5 {
-					return
-				}
-				st := r.Estimate()
-				o := r.Layout().Offset()
-				eo := estimator.Wrap(st.MeanAt(o)-zero) / math.Sqrt(st.Var(o))
-				eh := estimator.Wrap(st.MeanAt(estimator.IHead)-th) / math.Sqrt(st.Var(estimator.IHead))
-				w = max(w, math.Abs(eo), math.Abs(eh))
 			})
-			if math.Abs(th1-th0) >= math.Pi {
-				aliased = max(aliased, w)
-				continue
-			}
-			worst = max(worst, w)
 		}
-		t.Logf("silence %.1f s: worst error after it %.2f standard deviations (%.2f after a silence past half a turn, not checked)", silence, worst, aliased)
+		t.Logf("silence %.1f s (turning up to %.2f rad): worst error after it %.2f standard deviations", silence, most, worst)
 		if worst > 3.29 {
 			t.Errorf("silence %.1f s: the IMU's zero or the heading %.2f standard deviations off 5 to 15 s after it", silence, worst)
 		}

@@ -201,7 +201,7 @@ func (c *stepCollector) collect(r *Robot, k int) {
 				d, _ = prev.GyroStep(&r.layout, e.meas.R[0], estimator.Wrap(e.meas.Z[0]))
 			}
 			r.loadEst(&cur.Post, &e.after)
-			if ref, _ := cur.Post.IMUGyro(); d != 0 && ref == estimator.Wrap(e.meas.Z[0]) {
+			if ref, _, _ := cur.Post.IMUGyro(); d != 0 && ref == estimator.Wrap(e.meas.Z[0]) {
 				// The IMU heading moved the offset by the gyro scale
 				// times the IMU's turn before its update (applied: its
 				// heading is the reference now), a noise-free linear step

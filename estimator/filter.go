@@ -53,8 +53,11 @@ type State struct {
 	// initialisation, and the IMU's turn from the heading before it to
 	// that one (0 after an initialisation): the next IMU heading's update
 	// first moves the offset by the gyro scale times imuTurn
-	// (Filter.Update). Both zero without a gyro scale.
-	imuRef, imuTurn float64
+	// (Filter.Update). imuWheel is the estimate's own turn since then,
+	// its predictions' heading changes summed unwrapped, by which the
+	// IMU's turn to the next heading is unwrapped (State.imuDelta). All
+	// zero without a gyro scale.
+	imuRef, imuTurn, imuWheel float64
 }
 
 // EIVDim is the order of the errors-in-variables moments (State's eiv):
@@ -105,16 +108,19 @@ func (s *State) CopyFrom(src *State) {
 	copy(s.p[:(n-1)*stride+n], src.p[:(n-1)*stride+n])
 	s.eiv = src.eiv
 	copy(s.eivc[:n], src.eivc[:n])
-	s.imuRef, s.imuTurn = src.imuRef, src.imuTurn
+	s.imuRef, s.imuTurn, s.imuWheel = src.imuRef, src.imuTurn, src.imuWheel
 }
 
-// IMUGyro returns the IMU heading of the last IMU update and the IMU's
-// turn up to it, by whose gyro scale times the next IMU update moves the
-// offset (State's imuRef and imuTurn; zero without a gyro scale).
-func (s *State) IMUGyro() (ref, turn float64) { return s.imuRef, s.imuTurn }
+// IMUGyro returns the IMU heading of the last IMU update, the IMU's turn
+// up to it, by whose gyro scale times the next IMU update moves the
+// offset, and the estimate's own turn since (State's imuRef, imuTurn and
+// imuWheel; zero without a gyro scale).
+func (s *State) IMUGyro() (ref, turn, wheel float64) { return s.imuRef, s.imuTurn, s.imuWheel }
 
 // SetIMUGyro sets them (a state read back from a snapshot).
-func (s *State) SetIMUGyro(ref, turn float64) { s.imuRef, s.imuTurn = ref, turn }
+func (s *State) SetIMUGyro(ref, turn, wheel float64) {
+	s.imuRef, s.imuTurn, s.imuWheel = ref, turn, wheel
+}
 
 // EIV returns the errors-in-variables moments of the turn scale (State's
 // eiv; zero without a turn scale).
@@ -139,8 +145,8 @@ func (s *State) SetEIVConsider(c [MaxStates]float64) {
 // packed form (Filter.Pack) is src, copying only what is in use when s
 // already has that size. The packed form's length says what it holds:
 // the moments and their consider column follow the covariance when there
-// are EIVDim^2 + n more values, and the IMU heading and turn of a gyro
-// scale are the last two values when two more are left.
+// are EIVDim^2 + n more values, and the IMU heading, turn and wheel turn
+// of a gyro scale are the last three values when three more are left.
 func (s *State) SetPacked(n int, angles uint16, src []float64) {
 	if s.n != n {
 		*s = State{n: n}
@@ -158,9 +164,9 @@ func (s *State) SetPacked(n int, angles uint16, src []float64) {
 		copy(s.eivc[:n], src[n+n*n+eivSize:])
 		rest -= eivSize + n
 	}
-	s.imuRef, s.imuTurn = 0, 0
-	if rest == 2 {
-		s.imuRef, s.imuTurn = src[len(src)-2], src[len(src)-1]
+	s.imuRef, s.imuTurn, s.imuWheel = 0, 0, 0
+	if rest == 3 {
+		s.imuRef, s.imuTurn, s.imuWheel = src[len(src)-3], src[len(src)-2], src[len(src)-1]
 	}
 }
 
@@ -343,23 +349,23 @@ func (f *Filter) StateInto(dst *State) { dst.CopyFrom(&f.st) }
 // PackedSize returns the length of the filter's packed estimate: the mean
 // and the covariance, N + N*N values, with a turn scale the 16
 // errors-in-variables moments (State's eiv) and the N values of their
-// consider column (eivc), and with a gyro scale the IMU's last heading
-// and turn (imuRef, imuTurn).
+// consider column (eivc), and with a gyro scale the IMU's last heading,
+// its turn and the estimate's since (imuRef, imuTurn, imuWheel).
 func (f *Filter) PackedSize() int {
 	n := f.st.n + f.st.n*f.st.n
 	if f.layout.turnScale >= 0 {
 		n += eivSize + f.st.n
 	}
 	if f.layout.gyro >= 0 {
-		n += 2
+		n += 3
 	}
 	return n
 }
 
 // Pack writes the estimate into dst (PackedSize values: the mean, then the
 // covariance row-major, then the moments and their consider column, then
-// the IMU's last heading and turn), the compact form a history of checkpoints
-// keeps.
+// the IMU's last heading, its turn and the estimate's since), the compact
+// form a history of checkpoints keeps.
 func (f *Filter) Pack(dst []float64) {
 	n := f.st.n
 	copy(dst[:n], f.st.x[:n])
@@ -371,7 +377,7 @@ func (f *Filter) Pack(dst []float64) {
 		copy(dst[n+n*n+eivSize:n+n*n+eivSize+n], f.st.eivc[:n])
 	}
 	if k := f.PackedSize(); f.layout.gyro >= 0 {
-		dst[k-2], dst[k-1] = f.st.imuRef, f.st.imuTurn
+		dst[k-3], dst[k-2], dst[k-1] = f.st.imuRef, f.st.imuTurn, f.st.imuWheel
 	}
 }
 
@@ -388,7 +394,7 @@ func (f *Filter) Unpack(src []float64) {
 		copy(f.st.eivc[:n], src[n+n*n+eivSize:n+n*n+eivSize+n])
 	}
 	if k := f.PackedSize(); f.layout.gyro >= 0 {
-		f.st.imuRef, f.st.imuTurn = src[k-2], src[k-1]
+		f.st.imuRef, f.st.imuTurn, f.st.imuWheel = src[k-3], src[k-2], src[k-1]
 	}
 }
 
@@ -512,6 +518,12 @@ func (f *Filter) PredictReported(u Step, cu, rep *[9]float64, dtS float64, q *[M
 	}
 	n := f.st.n
 	np := t.c.advance(f.st.Pose(), t.u)
+	if f.layout.gyro >= 0 {
+		// Bounded: past maxIMUWheel the gyro scale's own error over the
+		// turn is past half a turn, and the unwrapping means nothing.
+		w := f.st.imuWheel + Wrap(np.Heading-f.st.x[IHead])
+		f.st.imuWheel = math.Max(-maxIMUWheel, math.Min(maxIMUWheel, w))
+	}
 	f.st.x[IX], f.st.x[IY], f.st.x[IHead] = np.X, np.Y, np.Heading
 
 	// P = F P F^T with F = I + E, E non-zero only in the pose rows: the
@@ -733,7 +745,8 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
 	z := Wrap(m.Z[0])
 	f.unturned.CopyFrom(&f.st)
-	if u := f.st.GyroStep(&f.layout, m.R[0]); u != 0 {
+	u, own := f.st.GyroStep(&f.layout, m.R[0], z)
+	if u != 0 {
 		f.GyroTurn(u)
 		f.st.imuTurn = 0
 	}
@@ -742,26 +755,71 @@ func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
 		f.st.CopyFrom(&f.unturned)
 		return out, err
 	}
-	f.st.imuTurn += Wrap(z - f.st.imuRef)
-	f.st.imuRef = z
+	if !own {
+		f.st.imuTurn += f.unturned.imuDelta(z)
+	}
+	f.st.imuRef, f.st.imuWheel = z, 0
 	return out, nil
 }
 
-// GyroStep returns the turn u by which an IMU heading of variance r
-// applied to the state s of layout l moves the offset first (u times the
-// gyro scale; Filter.Update), or 0 for none: the IMU's summed turn once it
-// reaches GyroStepSigmas sqrt(2 r), and 0 without a gyro scale.
-func (s *State) GyroStep(l *Layout, r float64) float64 {
-	if l.gyro >= 0 && math.Abs(s.imuTurn) >= GyroStepSigmas*math.Sqrt(2*r) {
-		return s.imuTurn
+// maxIMUWheel bounds the estimate's own turn since the IMU's last heading
+// (State's imuWheel), radians: an IMU silent while the robot turned that
+// far, 16,000 turns, is no longer unwrapped by it (a gyro 0.1% off is
+// 100 rad off by then).
+const maxIMUWheel = 1e5
+
+// imuDelta returns the IMU's turn from its last heading to z (wrapped):
+// their difference, unwrapped by the estimate's own turn since
+// (imuWheel), so that a silence of the IMU through more than half a turn
+// keeps its whole turns (the gyro scale's error over them is far below
+// half a turn).
+func (s *State) imuDelta(z float64) float64 {
+	d := Wrap(z - s.imuRef)
+	return d + 2*math.Pi*math.Round((s.imuWheel-d)/(2*math.Pi))
+}
+
+// GyroStep returns the turn u by which an IMU heading z (wrapped) of
+// variance r applied to the state s of layout l moves the offset first (u
+// times the gyro scale; Filter.Update), or 0 for none, and whether u
+// holds z's own turn from the last heading: the IMU's summed turn once it
+// reaches GyroStepSigmas sqrt(2 r); and with z's own turn added when that
+// turn alone reaches GyroJumpSigmas sqrt(2 r), the turn over a silence of
+// the IMU (or a spin faster than its readings). 0 without a gyro scale.
+func (s *State) GyroStep(l *Layout, r, z float64) (u float64, own bool) {
+	if l.gyro < 0 {
+		return 0, false
 	}
-	return 0
+	d, sd := s.imuDelta(z), math.Sqrt(2*r)
+	switch {
+	case math.Abs(d) >= GyroJumpSigmas*sd:
+		return s.imuTurn + d, true
+	case math.Abs(s.imuTurn) >= GyroStepSigmas*sd:
+		return s.imuTurn, false
+	}
+	return 0, false
 }
 
 // GyroStepSigmas is the IMU turn that a gyro scale's step waits for, in
 // standard deviations of the difference of two of the IMU's readings,
 // sqrt(2 R) (Filter.Update of an IMU heading).
 const GyroStepSigmas = 5.0
+
+// GyroJumpSigmas is the turn since the IMU's last heading, in the same
+// standard deviations, past which a heading's step takes that turn too,
+// before its update (Filter.Update of an IMU heading). Left for the next
+// heading's step, as a shorter one is, the turn over a silence of the IMU
+// was taken twice: the heading's update, seeing the offset's move by g
+// times it unexplained, gave part of it to the offset and the heading,
+// and the next step moved the offset by the whole of it again, whose
+// update put the double count on g (the zero 6.5 standard deviations off
+// after a 3 s silence in a spin, TestGyroScaleIMUSilence). Its own
+// reading's noise in the step's turn pulls g by about r / d^2 at the
+// equilibrium of such steps (errors in variables, the reason the step
+// waits otherwise): at most 1 / (2 GyroJumpSigmas^2), 0.08% of scale, and
+// only at such jumps; the turns of readings that come at a robot's rates
+// stay under it (0.02 rad at 1 rad/s and 50 Hz, against 0.053 rad for a
+// reading of 1.5 mrad).
+const GyroJumpSigmas = 25.0
 
 // GyroTurn moves the IMU offset by the gyro scale times the IMU's turn
 // dpsi (radians), with the covariance P' = F P F^T for F = I + dpsi
@@ -1171,7 +1229,7 @@ func (f *Filter) InitOffset(z, r float64) error {
 	P[IOffset*stride+IOffset] = P[IHead*stride+IHead] + r
 	f.st.eivc[IOffset] = -f.st.eivc[IHead]
 	if f.layout.gyro >= 0 {
-		f.st.imuRef, f.st.imuTurn = Wrap(z), 0
+		f.st.imuRef, f.st.imuTurn, f.st.imuWheel = Wrap(z), 0, 0
 	}
 	// So do the moments: the offset's covariance with the turn scale is
 	// minus the heading's, and its error minus the heading's (the

@@ -41,7 +41,59 @@ func gyroFilter(t *testing.T, rng *rand.Rand, l Layout) *Filter {
 	}
 	f.st.imuRef = Wrap(3 * rng.NormFloat64())
 	f.st.imuTurn = (0.3 + rng.Float64()) * float64(1-2*rng.IntN(2))
+	f.st.imuWheel = 0.01 * rng.NormFloat64()
 	return f
+}
+
+// TestGyroTurnUnwrapped: the IMU's turn to a heading after a silence in
+// which the robot turned more than half a turn keeps its whole turns: the
+// predictions' heading changes since the last IMU heading (imuWheel) sum
+// to the turn, 5 rad in 100 steps, and unwrap the difference of the two
+// wrapped headings (5 - 2 pi taken alone), which the heading's step then
+// takes whole; an IMU heading, and an offset initialisation, start the
+// sum again. Before, the step took 5 - 2 pi.
+func TestGyroTurnUnwrapped(t *testing.T) {
+	rng := rand.New(rand.NewPCG(46, 46))
+	for _, l := range gyroLayouts() {
+		f := gyroFilter(t, rng, l)
+		f.st.imuTurn, f.st.imuWheel = 0, 0
+		if ts := l.TurnScale(); ts >= 0 {
+			f.st.x[ts] = 1 // the random one may be 0.6
+		}
+		if rb := l.RateBias(); rb >= 0 {
+			f.st.x[rb] = 0
+		}
+		turn := 5.0 * float64(1-2*rng.IntN(2))
+		cu := [9]float64{1e-6, 0, 0, 0, 1e-6, 0, 0, 0, 1e-6}
+		var q [MaxStates]float64
+		for range 100 {
+			f.Predict(Step{ForwardM: 0.001, TurnRad: turn / 100}, &cu, 0.01, &q)
+		}
+		// The estimate's own turn is the steps' sum (a turn scale of 1,
+		// no rate bias); the IMU's, (1 + g) times the true one.
+		if w := f.st.imuWheel; math.Abs(w-turn) > 1e-9 {
+			t.Fatalf("%d states: the estimate's turn since the IMU heading %v, want about %v", l.Size(), w, turn)
+		}
+		z := Wrap(f.st.imuRef + turn*1.01)
+		m := Measurement{Kind: KindIMUHeading, Z: [3]float64{z}, R: [9]float64{2.5e-5}}
+		u, own := f.st.GyroStep(&l, m.R[0], z)
+		if !own || math.Abs(u-turn*1.01) > 1e-9 {
+			t.Errorf("%d states: step of %v (own turn %v), want the whole %v", l.Size(), u, own, turn*1.01)
+		}
+		if _, err := f.Update(&m, NoGate()); err != nil {
+			t.Fatal(err)
+		}
+		if f.st.imuWheel != 0 || f.st.imuRef != z || f.st.imuTurn != 0 {
+			t.Errorf("%d states: after the heading, wheel turn %v, reference %v, turn %v; want 0, %v, 0", l.Size(), f.st.imuWheel, f.st.imuRef, f.st.imuTurn, z)
+		}
+		f.st.imuWheel = 1
+		if err := f.InitOffset(0.2, 1e-4); err != nil {
+			t.Fatal(err)
+		}
+		if f.st.imuWheel != 0 {
+			t.Errorf("%d states: the offset initialised, wheel turn %v, want 0", l.Size(), f.st.imuWheel)
+		}
+	}
 }
 
 // TestGyroScaleLayout: the gyro scale follows the odometry calibration,
@@ -105,8 +157,10 @@ func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
 // P' = F P F^T, u the IMU's turn summed up to its last heading, followed
 // by the update with H = [0 0 1 1 0 ...], in Joseph form (eq. 5.2.3-18),
 // formed with gonum mat; the turn then restarts from wrap(z - last
-// heading) and the last heading becomes z. Below the step's threshold
-// (GyroStepSigmas) the turn only adds up. A gated heading changes
+// heading) and the last heading becomes z. A heading that turned past
+// GyroJumpSigmas since the last one has u include that turn, and the turn
+// restarts from 0. Below the step's threshold (GyroStepSigmas) the turn
+// only adds up. A gated heading changes
 // nothing, heading and turn included.
 func TestGyroUpdateMatchesGonum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(43, 43))
@@ -116,13 +170,25 @@ func TestGyroUpdateMatchesGonum(t *testing.T) {
 			f := gyroFilter(t, rng, l)
 			st := f.State()
 			o, g := l.Offset(), l.GyroScale()
-			z := Wrap(st.imuRef + 2*rng.NormFloat64())
+			// Trials 0 and 1: a heading that turned past GyroJumpSigmas
+			// since the last one (a silence of the IMU), whose own turn
+			// the step takes too; 2 and 3: a heading at the robot's rates
+			// (0.1 of the jump), the step the summed turn alone.
+			sd := math.Sqrt(2 * 2.5e-5)
+			d := (1 + rng.Float64()) * GyroJumpSigmas * sd * float64(1-2*(trial%2))
+			if trial >= 2 {
+				d *= 0.1
+			}
+			z := Wrap(st.imuRef + d)
 			m := Measurement{Kind: KindIMUHeading, Z: [3]float64{z}, R: [9]float64{2.5e-5}}
-			dpsi := st.imuTurn
+			dpsi, own := st.imuTurn, trial < 2
+			if own {
+				dpsi += Wrap(z - st.imuRef)
+			}
 			if trial == 4 {
 				// Below the threshold: no step, the turn adds up.
 				dpsi = 0
-				f.st.imuTurn = 0.5 * GyroStepSigmas * math.Sqrt(2*m.R[0])
+				f.st.imuTurn = 0.5 * GyroStepSigmas * sd
 				st = f.State()
 			}
 			what := fmt.Sprintf("%d states, turn %.3f", n, dpsi)
@@ -162,8 +228,8 @@ func TestGyroUpdateMatchesGonum(t *testing.T) {
 				t.Fatal(err)
 			}
 			got := f.State()
-			if math.Abs(out.NIS-v*v/s) > 1e-9*out.NIS+1e-12 || st.GyroStep(&l, m.R[0]) != dpsi {
-				t.Errorf("%s: NIS %v, step %v; want %v, %v", what, out.NIS, st.GyroStep(&l, m.R[0]), v*v/s, dpsi)
+			if step, stepOwn := st.GyroStep(&l, m.R[0], z); math.Abs(out.NIS-v*v/s) > 1e-9*out.NIS+1e-12 || step != dpsi || stepOwn != own {
+				t.Errorf("%s: NIS %v, step %v (own turn %v); want %v, %v (%v)", what, out.NIS, step, stepOwn, v*v/s, dpsi, own)
 			}
 			for i := 0; i < n; i++ {
 				d := got.x[i] - wantX.AtVec(i)
@@ -176,7 +242,10 @@ func TestGyroUpdateMatchesGonum(t *testing.T) {
 			}
 			closeMats(t, what+": covariance", stateDense(&got), &want, 1e-12)
 			wantTurn := Wrap(z - st.imuRef)
-			if dpsi == 0 {
+			switch {
+			case own:
+				wantTurn = 0
+			case dpsi == 0:
 				wantTurn += st.imuTurn
 			}
 			if got.imuRef != z || got.imuTurn != wantTurn {

@@ -111,7 +111,7 @@ func (r *Robot) setCheckpoint(c *cpSlot, cp *checkpoint) {
 		copy(d[k+len(m):k+len(m)+r.n], c[:r.n])
 	}
 	if k := r.f.PackedSize(); r.layout.GyroScale() >= 0 {
-		d[k-2], d[k-1] = cp.est.IMUGyro()
+		d[k-3], d[k-2], d[k-1] = cp.est.IMUGyro()
 	}
 	if len(r.lmAt) > 0 {
 		packTable(d[len(d)-lmWords:], &cp.lm)

@@ -133,6 +133,15 @@ func TestDepotGyroScaleSpins(t *testing.T) {
 // variance), and returns the robot.
 func gsRun(t *testing.T, seed uint64, f, durS float64, cfg fusion.Config) *fusion.Robot {
 	t.Helper()
+	return gsRunSilent(t, seed, f, durS, cfg, 0, 0, nil)
+}
+
+// gsRunSilent is gsRun with the IMU silent from fromS to toS seconds (no
+// heading sent), calling check, if not nil, after each step k with the
+// true heading th (unwrapped) and the IMU's true zero as the filter models
+// it (its heading less the true one: the zero plus f th).
+func gsRunSilent(t *testing.T, seed uint64, f, durS float64, cfg fusion.Config, fromS, toS float64, check func(k int, th, zero float64, r *fusion.Robot)) *fusion.Robot {
+	t.Helper()
 	r, err := fusion.New(cfg)
 	if err != nil {
 		t.Fatal(err)
@@ -169,8 +178,13 @@ func gsRun(t *testing.T, seed uint64, f, durS float64, cfg fusion.Config) *fusio
 			t.Fatalf("odometry at %d: %v %v", k, res.Verdict, res.Err)
 		}
 		z := estimator.Wrap((1+f)*th + zero + imuStd*rng.NormFloat64())
-		if res := r.AddHeading(fusion.Heading{StampNs: t1, HeadingRad: z}); res.Verdict != fusion.VerdictApplied {
-			t.Fatalf("heading at %d: %v %v", k, res.Verdict, res.Err)
+		if at := float64(k) * dt; at < fromS || at >= toS {
+			if res := r.AddHeading(fusion.Heading{StampNs: t1, HeadingRad: z}); res.Verdict != fusion.VerdictApplied {
+				t.Fatalf("heading at %d: %v %v", k, res.Verdict, res.Err)
+			}
+		}
+		if check != nil {
+			check(k, th, zero+f*th, r)
 		}
 	}
 	return r
@@ -291,8 +305,9 @@ func TestSnapshotKeepsGyroScale(t *testing.T) {
 // the largest IMU variance, Robot.gyroTurnMax) is refused naming it. A
 // turn of 1e200 restored made every later IMU heading invalid (its step
 // took the offset's variance to infinity), one of 1e6 took the gyro
-// scale's standard deviation from 8e-4 to 1e-9 at the next heading. The
-// snapshot as taken restores.
+// scale's standard deviation from 8e-4 to 1e-9 at the next heading. So is
+// one whose estimate's own turn since the IMU's last heading is past
+// maxAngleRad or NaN. The snapshot as taken restores.
 func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
 	cfg := gsConfig()
 	a := gsRun(t, 300, 0.015, 20, cfg)
@@ -301,7 +316,7 @@ func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
 		t.Fatal(err)
 	}
 	st := a.Estimate()
-	_, turn := st.IMUGyro()
+	_, turn, _ := st.IMUGyro()
 	var was [8]byte
 	le.LittleEndian.PutUint64(was[:], math.Float64bits(turn))
 	if turn == 0 || bytes.Count(snap, was[:]) == 0 {
@@ -316,6 +331,29 @@ func TestSnapshotRefusesAbsurdGyroTurn(t *testing.T) {
 			t.Errorf("the snapshot as taken: %v", err)
 		case v != turn && (!errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "turn")):
 			t.Errorf("IMU turn %v: %v, want ErrSnapshot naming the turn", v, err)
+		}
+	}
+	// The estimate's own turn since the IMU's last heading (the IMU
+	// silent for the last second): within maxAngleRad, as every angle.
+	b := gsRunSilent(t, 300, 0.015, 20, cfg, 19, 21, nil)
+	if snap, err = b.Snapshot(); err != nil {
+		t.Fatal(err)
+	}
+	st = b.Estimate()
+	_, _, wheel := st.IMUGyro()
+	le.LittleEndian.PutUint64(was[:], math.Float64bits(wheel))
+	if wheel == 0 || bytes.Count(snap, was[:]) == 0 {
+		t.Fatalf("the estimate's turn %v not in the snapshot: the test says nothing", wheel)
+	}
+	for _, v := range []float64{wheel, 2e6, math.NaN()} {
+		var now [8]byte
+		le.LittleEndian.PutUint64(now[:], math.Float64bits(v))
+		_, err := fusion.RestoreSnapshot(cfg, bytes.ReplaceAll(snap, was[:], now[:]))
+		switch {
+		case v == wheel && err != nil:
+			t.Errorf("the snapshot as taken: %v", err)
+		case v != wheel && (!errors.Is(err, fusion.ErrSnapshot) || !strings.Contains(err.Error(), "turn")):
+			t.Errorf("the estimate's turn %v: %v, want ErrSnapshot naming the turn", v, err)
 		}
 	}
 }
@@ -400,5 +438,47 @@ func TestHonestGyroScaleState(t *testing.T) {
 	})
 	if !res.Consistent(0.85) {
 		t.Errorf("inconsistent: %v", &res)
+	}
+}
+
+// TestGyroScaleIMUSilence: an IMU silent for 0.2 to 10 s while the robot
+// spins (a loose connector, a driver restart) leaves the IMU's zero and
+// the heading within their standard deviations: over 8 seeds each, from 5
+// to 15 s after the silence, no error of either is past 3.29 standard
+// deviations (the normal's two-sided 99.9% point, from memory); 6 of the
+// 10 s silences turn more than half a turn (up to 8 rad). Before, the
+// silence's turn entered the offset's step one heading late, after the
+// first heading's update had already taken part of it, so the step
+// counted it twice and its update put the double count on the gyro scale
+// (5.63 standard deviations after a 3 s silence, for good); and with that
+// mended, a silence through more than half a turn lost its whole turns,
+// the IMU's turn being the difference of two wrapped headings (3.65 after
+// the 10 s silences), until the estimate's own turn unwrapped it.
+func TestGyroScaleIMUSilence(t *testing.T) {
+	cfg := gsConfig()
+	for _, silence := range []float64{0.2, 1, 3, 10} {
+		worst, most := 0.0, 0.0
+		for s := range 8 {
+			const from = 31.0
+			var th0 float64
+			gsRunSilent(t, uint64(700+s), 0.02, from+silence+15, cfg, from, from+silence, func(k int, th, zero float64, r *fusion.Robot) {
+				switch at := float64(k) * 0.02; {
+				case k == int(math.Round(from/0.02)):
+					th0 = th
+				case k == int(math.Round((from+silence)/0.02)):
+					most = max(most, math.Abs(th-th0))
+				case at >= from+silence+5:
+					st := r.Estimate()
+					o := r.Layout().Offset()
+					eo := estimator.Wrap(st.MeanAt(o)-zero) / math.Sqrt(st.Var(o))
+					eh := estimator.Wrap(st.MeanAt(estimator.IHead)-th) / math.Sqrt(st.Var(estimator.IHead))
+					worst = max(worst, math.Abs(eo), math.Abs(eh))
+				}
+			})
+		}
+		t.Logf("silence %.1f s (turning up to %.2f rad): worst error after it %.2f standard deviations", silence, most, worst)
+		if worst > 3.29 {
+			t.Errorf("silence %.1f s: the IMU's zero or the heading %.2f standard deviations off 5 to 15 s after it", silence, worst)
+		}
 	}
 }

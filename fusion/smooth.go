@@ -198,10 +198,10 @@ func (c *stepCollector) collect(r *Robot, k int) {
 			cur := c.cur()
 			var d float64
 			if e.imu && !e.initialised && !e.out.Gated && c.open {
-				d = prev.GyroStep(&r.layout, e.meas.R[0])
+				d, _ = prev.GyroStep(&r.layout, e.meas.R[0], estimator.Wrap(e.meas.Z[0]))
 			}
 			r.loadEst(&cur.Post, &e.after)
-			if ref, _ := cur.Post.IMUGyro(); d != 0 && ref == estimator.Wrap(e.meas.Z[0]) {
+			if ref, _, _ := cur.Post.IMUGyro(); d != 0 && ref == estimator.Wrap(e.meas.Z[0]) {
 				// The IMU heading moved the offset by the gyro scale
 				// times the IMU's turn before its update (applied: its
 				// heading is the reference now), a noise-free linear step

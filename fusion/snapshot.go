@@ -70,8 +70,10 @@ import (
 // (estimator.State's EIVConsider) in each estimate; a version 18 to 5
 // snapshot has none, and its robot's compensation starts its own
 // uncertainty at zero, as its builds carried none.
-// Version 20: the IMU's last heading and turn of a gyro scale
-// (estimator.State's IMUGyro) in each estimate; a version 19 to 5
+// Version 20: the IMU's last heading, its turn and the estimate's own
+// turn since of a gyro scale (estimator.State's IMUGyro) in each estimate
+// (the estimate's turn absent, 0, in the snapshots of session 28's first
+// builds); a version 19 to 5
 // snapshot has none, and its robots had no gyro scale
 // (calibration.gyro_scale_std is new), so it restores as it was.
 const SnapshotVersion = 20
@@ -639,8 +641,8 @@ func encState(e *wenc, s *estimator.State) {
 	if c := s.EIVConsider(); c != ([estimator.MaxStates]float64{}) {
 		e.doubles(5, c[:n])
 	}
-	if z, u := s.IMUGyro(); z != 0 || u != 0 {
-		e.doubles(6, []float64{z, u})
+	if z, u, w := s.IMUGyro(); z != 0 || u != 0 || w != 0 {
+		e.doubles(6, []float64{z, u, w})
 	}
 }
 
@@ -673,9 +675,16 @@ func decState(d *wdec) estimator.State {
 			// The heading is wrapped; the turn is a sum of wrapped
 			// turns, below the step's threshold before the last
 			// (Robot.gyroTurnMax): a larger one would move the offset
-			// by the gyro scale times it at the next IMU heading.
-			if len(gyro) != 2 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !(math.Abs(gyro[1]) <= d.gyroTurnMax) {
-				d.fail("estimate: IMU heading and turn of a gyro scale %v are not a wrapped angle and a turn within %g rad", gyro, d.gyroTurnMax)
+			// by the gyro scale times it at the next IMU heading. The
+			// estimate's own turn since the heading (third; absent in
+			// the snapshots of session 28's first builds) unwraps the
+			// IMU's next turn: an angle within maxAngleRad, as every
+			// heading.
+			if len(gyro) == 2 {
+				gyro = append(gyro, 0)
+			}
+			if len(gyro) != 3 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !(math.Abs(gyro[1]) <= d.gyroTurnMax) || !(math.Abs(gyro[2]) <= maxAngleRad) {
+				d.fail("estimate: IMU heading, turn and the estimate's turn since of a gyro scale %v are not a wrapped angle, a turn within %g rad and one within %g rad", gyro, d.gyroTurnMax, maxAngleRad)
 				gyro = nil
 			}
 		default:
@@ -700,7 +709,7 @@ func decState(d *wdec) estimator.State {
 	copy(col[:], c)
 	st.SetEIVConsider(col)
 	if gyro != nil {
-		st.SetIMUGyro(gyro[0], gyro[1])
+		st.SetIMUGyro(gyro[0], gyro[1], gyro[2])
 	}
 	return st
 }

@@ -132,24 +132,41 @@ func chooseModel(cfg fusion.Config, inputs []RecordedInput) (fusion.Config, []Mo
 			changes = append(changes, ModelChange{"landmark_position_std_m", "0", g(best)})
 		}
 	}
-	if cfg.IMU == fusion.IMUAbsolute && cfg.Noise.IMUOffsetVarRad2PerRad == 0 {
-		// A gyro's scale error moves its heading's zero with every turn
-		// (noise.imu_offset_var_rad2_per_rad, "Design: Process noise"):
-		// the walk of a gyro 0.1%, 0.3% or 1% off in scale, at the
-		// covariances the sensors' choice above left.
+	if cfg.IMU == fusion.IMUAbsolute && cfg.Noise.IMUOffsetVarRad2PerRad == 0 && cfg.Calibration.GyroScaleStd == 0 {
+		// A gyro's scale error moves its heading's zero with every turn:
+		// the walk of a gyro 0.1%, 0.3% or 1% off in scale
+		// (noise.imu_offset_var_rad2_per_rad, "Design: Process noise"),
+		// or the gyro scale state at a prior of 1% or 3%
+		// (calibration.gyro_scale_std, "Design: State") where the state
+		// has room, at the covariances the sensors' choice above left;
+		// each one parameter more. A configuration with the state models
+		// the error already and is left alone.
 		ll0 := p.configLogLik(cfg, nil)
-		best, bestLL := 0.0, ll0
+		best, bestLL := cfg, ll0
+		var change *ModelChange
+		try := func(c fusion.Config, ch ModelChange) {
+			replays++
+			if ll := p.configLogLik(c, nil) - aicPenalty; ll > bestLL {
+				best, bestLL, change = c, ll, &ch
+			}
+		}
 		for _, q := range gyroScaleCandidates {
 			c := cfg
 			c.Noise.IMUOffsetVarRad2PerRad = q
-			if ll := p.configLogLik(c, nil) - aicPenalty; ll > bestLL {
-				best, bestLL = q, ll
-			}
+			try(c, ModelChange{"noise.imu_offset_var_rad2_per_rad", "0", g(q)})
 		}
-		replays += 1 + len(gyroScaleCandidates)
-		if best > 0 {
-			cfg.Noise.IMUOffsetVarRad2PerRad = best
-			changes = append(changes, ModelChange{"noise.imu_offset_var_rad2_per_rad", "0", g(best)})
+		for _, sd := range gyroStateCandidates {
+			c := cfg
+			c.Calibration.GyroScaleStd = sd
+			if c.Validate() != nil {
+				break // no room in the state
+			}
+			try(c, ModelChange{"calibration.gyro_scale_std", "0", g(sd)})
+		}
+		replays++
+		if change != nil {
+			cfg = best
+			changes = append(changes, *change)
 		}
 	}
 	if len(cfg.Wheels) == 0 {
@@ -265,6 +282,11 @@ func g(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
 // an uncalibrated MEMS gyro's scale is within 1% to 3%, a calibrated one's
 // within a few tenths of a percent).
 var gyroScaleCandidates = []float64{1e-6, 1e-5, 1e-4}
+
+// gyroStateCandidates are the gyro scale state's prior standard deviations
+// chooseModel tries: a gyro off by up to 1% (a datasheet's figure for a
+// calibrated part) or 3% (an uncalibrated MEMS gyro, from memory).
+var gyroStateCandidates = []float64{0.01, 0.03}
 
 // surveyCandidates are the survey errors of a marker map the model choice
 // tries, metres.

@@ -6,6 +6,7 @@ import (
 
 	"gonum.org/v1/gonum/stat/distuv"
 
+	"reckon.example/estimator"
 	"reckon.example/fusion"
 	"reckon.example/fusion/fusiontest"
 )
@@ -335,29 +336,42 @@ func TestGyroScaleWalkFit(t *testing.T) {
 	}
 }
 
-// TestModelChoosesGyroScaleWalk: choosing the noise model's form (tune
-// -model) adds the IMU offset's walk per radian turned when the run's
-// likelihood supports it by more than Akaike's penalty of one parameter:
-// on two simulated minutes of a cart whose gyro is 1% off in scale it
-// chooses the candidate nearest the true model's f^2 = 1e-4, and on the
-// same run with an exact gyro none.
-func TestModelChoosesGyroScaleWalk(t *testing.T) {
+// TestModelChoosesGyroScale: choosing the noise model's form (tune
+// -model) models a gyro's scale error when the run's likelihood supports
+// it by more than Akaike's penalty of one parameter, among the IMU
+// offset's walk per radian turned and the gyro scale state: on two
+// simulated minutes of a cart whose gyro is 1% off in scale it chooses
+// the state at the prior nearest the truth (1%), on the same run with an
+// exact gyro nothing, and a configuration that has the state already is
+// left alone. Where the state has no room (a sensor bias block and mount
+// errors beside the odometry scales fill it) the walk is the candidate,
+// and it chooses the walk nearest the true model's f^2 = 1e-4.
+func TestModelChoosesGyroScale(t *testing.T) {
 	if testing.Short() {
 		t.Skip("replays a 2-minute run a dozen times")
 	}
 	for _, c := range []struct {
-		scale, want float64
-	}{{0.01, 1e-4}, {0, 0}} {
+		scale       float64
+		full, has   bool
+		walk, state float64
+	}{{0.01, false, false, 0, 0.01}, {0, false, false, 0, 0}, {0.01, false, true, 0, 0.03}, {0.01, true, false, 1e-4, 0}} {
 		sc := fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 5, IMU: true, DurationS: 120, Errors: fusiontest.Errors{GyroScale: c.scale}}
 		s, inputs := recorded(sc)
-		cfg, changes, _, replays, err := chooseModel(s.Config(), inputs)
+		cfg := s.Config()
+		if c.has {
+			cfg.Calibration.GyroScaleStd = 0.03
+		}
+		if c.full {
+			fillState(t, &cfg)
+		}
+		cfg, changes, _, replays, err := chooseModel(cfg, inputs)
 		if err != nil {
 			t.Fatal(err)
 		}
-		got := cfg.Noise.IMUOffsetVarRad2PerRad
-		t.Logf("gyro %g%% off: walk per radian %g, changes %v, %d replays", 100*c.scale, got, changes, replays)
-		if got != c.want {
-			t.Errorf("gyro %g%% off: walk per radian %g chosen, want %g", 100*c.scale, got, c.want)
+		walk, state := cfg.Noise.IMUOffsetVarRad2PerRad, cfg.Calibration.GyroScaleStd
+		t.Logf("gyro %g%% off (state configured %v, no room %v): walk per radian %g, state %g, changes %v, %d replays", 100*c.scale, c.has, c.full, walk, state, changes, replays)
+		if walk != c.walk || state != c.state {
+			t.Errorf("gyro %g%% off (state configured %v, no room %v): walk per radian %g and state %g chosen, want %g and %g", 100*c.scale, c.has, c.full, walk, state, c.walk, c.state)
 		}
 	}
 }
@@ -493,5 +507,28 @@ func TestNoiseFitOfDefaultedLevels(t *testing.T) {
 		if g.Configured != w.Configured || g.Fitted != w.Fitted || g.Identifiable != w.Identifiable || g.Raised != w.Raised {
 			t.Errorf("%s: left zero %g -> %g (determined %v, raised %v); written %g -> %g (%v, %v)", f, g.Configured, g.Fitted, g.Identifiable, g.Raised, w.Configured, w.Fitted, w.Identifiable, w.Raised)
 		}
+	}
+}
+
+// fillState fills cfg's state to estimator.MaxStates without a gyro scale
+// (the odometry scales, then mount errors of its pose camera and a
+// correlated part of its errors: 4 + 2 + 3 + 3 states), so that the gyro
+// scale state has no room.
+func fillState(t *testing.T, cfg *fusion.Config) {
+	t.Helper()
+	cfg.Calibration.Scale = true
+	if len(cfg.Sensors) != 1 {
+		t.Fatalf("%d sensors, want the pose camera alone", len(cfg.Sensors))
+	}
+	cfg.Sensors[0].MountStd = [3]float64{1e-3, 1e-3, 1e-3}
+	cfg.Sensors[0].CorrelatedFraction, cfg.Sensors[0].CorrelationTimeS = 0.1, 2
+	r, err := fusion.New(*cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c := *cfg
+	c.Calibration.GyroScaleStd = 0.01
+	if r.StateSize() != estimator.MaxStates || c.Validate() == nil {
+		t.Fatalf("%d states: the gyro scale still has room", r.StateSize())
 	}
 }

@@ -160,8 +160,8 @@ func TestGyroTurnMatchesFiniteDifferences(t *testing.T) {
 // heading) and the last heading becomes z. A heading that turned past
 // GyroJumpSigmas since the last one has u include that turn, and the turn
 // restarts from 0. Below the step's threshold (GyroStepSigmas) the turn
-// only adds up. A gated heading changes
-// nothing, heading and turn included.
+// only adds up. A gated heading changes nothing, heading and turn
+// included.
 func TestGyroUpdateMatchesGonum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(43, 43))
 	for _, l := range gyroLayouts() {

@@ -884,11 +884,13 @@ type OdometryCalibration struct {
 	// factor is off by a fraction f reads every turn f of it wrong, so the
 	// IMU's heading zero moves by g times the IMU's own turn between its
 	// headings (g = f / (1 + f)); the filter estimates g against the wheels
-	// and fixes. 0.03 suits an uncalibrated MEMS gyro (1% to 3% off, from
-	// memory). At most 0.5; NaN, infinite and negative values are refused,
-	// and so is a robot whose state has no room left for it (at most 12
-	// states: correlated sensors, mount errors and landmark blocks take
-	// room too). With it, leave imu_offset_var_rad2_per_rad at 0.
+	// and fixes. Set the datasheet's scale-factor error, or 0.03 for an
+	// uncalibrated MEMS gyro (1% to 3% off, from memory). At most 0.5; NaN,
+	// infinite and negative values are refused, and so is a robot whose
+	// state has no room left for it (at most 12 states: correlated sensors
+	// and mount errors take room too; landmark blocks take what is left, so
+	// where they would fill it the state takes one of them). With it, leave
+	// imu_offset_var_rad2_per_rad at 0.
 	GyroScaleStd  float64 `protobuf:"fixed64,9,opt,name=gyro_scale_std,json=gyroScaleStd,proto3" json:"gyro_scale_std,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

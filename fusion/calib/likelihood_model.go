@@ -8,6 +8,7 @@ import (
 
 	"gonum.org/v1/gonum/stat/distuv"
 
+	"reckon.example/estimator"
 	"reckon.example/fusion"
 )
 
@@ -158,8 +159,8 @@ func chooseModel(cfg fusion.Config, inputs []RecordedInput) (fusion.Config, []Mo
 		for _, sd := range gyroStateCandidates {
 			c := cfg
 			c.Calibration.GyroScaleStd = sd
-			if c.Validate() != nil {
-				break // no room in the state
+			if !gyroStateFits(cfg, c) {
+				break
 			}
 			try(c, ModelChange{"calibration.gyro_scale_std", "0", g(sd)})
 		}
@@ -282,6 +283,34 @@ func g(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
 // an uncalibrated MEMS gyro's scale is within 1% to 3%, a calibrated one's
 // within a few tenths of a percent).
 var gyroScaleCandidates = []float64{1e-6, 1e-5, 1e-4}
+
+// gyroStateFits reports whether with, cfg with a gyro scale state, makes
+// a robot with as many landmark blocks as cfg: the state has room, and
+// takes none of the blocks, which take what is left of the state
+// (README: on the orchard carrier, left one block instead of two, the
+// estimate was trusted outside its 99.9% region on 3.7% of samples,
+// against 0.08% with the walk per radian).
+func gyroStateFits(cfg, with fusion.Config) bool {
+	a, err := fusion.New(cfg)
+	if err != nil {
+		return false
+	}
+	b, err := fusion.New(with)
+	if err != nil {
+		return false
+	}
+	return landmarkBlocks(a.Layout()) == landmarkBlocks(b.Layout())
+}
+
+func landmarkBlocks(l *estimator.Layout) int {
+	n := 0
+	for k := range l.Biases() {
+		if l.IsLandmark(k) {
+			n++
+		}
+	}
+	return n
+}
 
 // gyroStateCandidates are the gyro scale state's prior standard deviations
 // chooseModel tries: a gyro off by up to 1% (a datasheet's figure for a

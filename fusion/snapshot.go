@@ -71,9 +71,7 @@ import (
 // snapshot has none, and its robot's compensation starts its own
 // uncertainty at zero, as its builds carried none.
 // Version 20: the IMU's last heading, its turn and the estimate's own
-// turn since of a gyro scale (estimator.State's IMUGyro) in each estimate
-// (the estimate's turn absent, 0, in the snapshots of session 28's first
-// builds); a version 19 to 5
+// turn since of a gyro scale (estimator.State's IMUGyro) in each estimate; a version 19 to 5
 // snapshot has none, and its robots had no gyro scale
 // (calibration.gyro_scale_std is new), so it restores as it was.
 const SnapshotVersion = 20
@@ -676,13 +674,9 @@ func decState(d *wdec) estimator.State {
 			// turns, below the step's threshold before the last
 			// (Robot.gyroTurnMax): a larger one would move the offset
 			// by the gyro scale times it at the next IMU heading. The
-			// estimate's own turn since the heading (third; absent in
-			// the snapshots of session 28's first builds) unwraps the
+			// estimate's own turn since the heading (third) unwraps the
 			// IMU's next turn: an angle within maxAngleRad, as every
 			// heading.
-			if len(gyro) == 2 {
-				gyro = append(gyro, 0)
-			}
 			if len(gyro) != 3 || math.IsNaN(gyro[0]) || math.Abs(gyro[0]) > math.Pi || !(math.Abs(gyro[1]) <= d.gyroTurnMax) || !(math.Abs(gyro[2]) <= maxAngleRad) {
 				d.fail("estimate: IMU heading, turn and the estimate's turn since of a gyro scale %v are not a wrapped angle, a turn within %g rad and one within %g rad", gyro, d.gyroTurnMax, maxAngleRad)
 				gyro = nil

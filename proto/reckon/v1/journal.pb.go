@@ -877,10 +877,11 @@ type EstimateState struct {
 	// State"). Absent when all zero.
 	TurnScaleEivConsider []float64 `protobuf:"fixed64,5,rep,packed,name=turn_scale_eiv_consider,json=turnScaleEivConsider,proto3" json:"turn_scale_eiv_consider,omitempty"`
 	// With a gyro scale (version 20): the IMU heading of the last IMU update
-	// or offset initialisation and the IMU's turn from the heading before
-	// it, rad (2 values): the next IMU update moves the offset by the gyro
-	// scale times the turn, and takes its turn from the heading. Absent when
-	// both are zero.
+	// or offset initialisation, the IMU's turn from the heading before it,
+	// and the estimate's own turn since that update (its predictions'
+	// heading changes, which unwrap the IMU's next turn), rad (3 values):
+	// the next IMU update moves the offset by the gyro scale times the turn,
+	// and takes its turn from the heading. Absent when all are zero.
 	ImuGyroRad    []float64 `protobuf:"fixed64,6,rep,packed,name=imu_gyro_rad,json=imuGyroRad,proto3" json:"imu_gyro_rad,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

@@ -275,3 +275,40 @@ func TestParkedBounds(t *testing.T) {
 		t.Error("taken twice")
 	}
 }
+
+// TestOrphansBound: the resolutions of deleted robots are kept for the
+// orphanRobots robots most recently given one; a robot's are collected
+// once, by its session.
+func TestOrphansBound(t *testing.T) {
+	var o orphans
+	robots := make([]*robot, orphanRobots+1)
+	for k := range robots {
+		robots[k] = &robot{name: fmt.Sprintf("robots/r%d", k), deleted: true}
+		o.add(robots[k], "s", &pb.Resolution{Sequence: uint64(k + 1)})
+	}
+	if int(o.n.Load()) != orphanRobots {
+		t.Fatalf("%d robots kept, want %d", o.n.Load(), orphanRobots)
+	}
+	got := func(name, sid string) []*pb.Resolution {
+		ob := newOutbox()
+		o.collect(name, sid, ob)
+		var out []*pb.Resolution
+		resps := ob.drain()
+		for k := range resps {
+			out = append(out, resps[k].Resolved...)
+		}
+		return out
+	}
+	if len(got("robots/r0", "s")) != 0 {
+		t.Error("the robot given one longest ago was kept")
+	}
+	if len(got("robots/r1", "other")) != 0 {
+		t.Error("collected by another session")
+	}
+	if r := got("robots/r1", "s"); len(r) != 1 || r[0].GetSequence() != 2 {
+		t.Errorf("collected %v, want robots/r1's resolution of input 2", r)
+	}
+	if len(got("robots/r1", "s")) != 0 || int(o.n.Load()) != orphanRobots-1 {
+		t.Errorf("collected twice, or still counted (%d robots)", o.n.Load())
+	}
+}

@@ -147,6 +147,9 @@ type Server struct {
 	verifying  sync.WaitGroup
 	verifyCtx  context.Context
 	stopVerify context.CancelFunc
+	// orphans keeps deleted robots' resolutions for sessions whose stream
+	// was gone (resolutions.go).
+	orphans orphans
 }
 
 // robot is one robot and everything attached to it.
@@ -679,6 +682,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
+	r.resolveDeleted(&s.orphans)
 	quarantined := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED
 	switch {
 	case quarantined && r.journal != nil:
@@ -756,11 +760,11 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	err := t.takeBatches(ctx)
 	if err == nil {
 		// The client closed its side: what is pending still goes out.
-		if rest := ob.close(false); len(rest) > 0 {
+		if rest := ob.close(false, nil); len(rest) > 0 {
 			_, err = snd.send(ctx, rest)
 		}
 	} else {
-		ob.close(true)
+		ob.close(true, &s.orphans)
 	}
 	close(snd.out)
 	if serr := <-sendErr; err == nil {
@@ -1149,6 +1153,9 @@ type taking struct {
 // and the pose for the watchers; then the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *outbox, sc *scratch) {
 	start := run[0].arrived // ingestStream set it
+	// Resolutions of a deleted robot of the name kept for the session go
+	// out after the run's verdicts, whatever the name names now.
+	s.orphans.collect(run[0].GetRobot(), run[0].GetSessionId(), ob)
 	r, err := s.lookupFrom(run[0].GetRobot(), sc)
 	if err != nil {
 		st := status.Convert(err)

@@ -236,7 +236,9 @@ func (c *Client) StartRun(ctx context.Context, robot, bootID string, run uint64,
 // session sent it, otherwise in a response carrying only resolutions
 // (OnlyResolutions). While no stream of the session is open, the service
 // keeps them for its id (within bounds: IngestResponse.resolved) and sends
-// them after the first response of a stream opened with Resume.
+// them after the first response of a stream opened with Resume. A robot
+// deleted while it holds a sample resolves it VERDICT_INVALID,
+// REFUSAL_ROBOT_DELETED.
 type Session struct {
 	robot  string
 	id     string

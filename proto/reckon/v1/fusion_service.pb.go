@@ -65,6 +65,10 @@ const (
 	// The robot is quarantined (Robot.state_detail says why): it takes no
 	// input until it is deleted, or restored by a restart (status 9).
 	Refusal_REFUSAL_QUARANTINED Refusal = 15
+	// The robot was deleted while the input was held waiting for odometry
+	// (only in a Resolution): it was never applied; the journal, set aside,
+	// keeps it.
+	Refusal_REFUSAL_ROBOT_DELETED Refusal = 16
 )
 
 // Enum value maps for Refusal.
@@ -86,6 +90,7 @@ var (
 		13: "REFUSAL_RUN_OUT_OF_ORDER",
 		14: "REFUSAL_REPEATED",
 		15: "REFUSAL_QUARANTINED",
+		16: "REFUSAL_ROBOT_DELETED",
 	}
 	Refusal_value = map[string]int32{
 		"REFUSAL_UNSPECIFIED":        0,
@@ -104,6 +109,7 @@ var (
 		"REFUSAL_RUN_OUT_OF_ORDER":   13,
 		"REFUSAL_REPEATED":           14,
 		"REFUSAL_QUARANTINED":        15,
+		"REFUSAL_ROBOT_DELETED":      16,
 	}
 )
 
@@ -935,9 +941,15 @@ type IngestResponse struct {
 	// the robot, even a refused one, collects them); a sample sent without a
 	// session_id loses it with its stream. A retried sample is answered with
 	// its response as first sent. A held sample of a robot that is deleted
-	// before deciding it gets no resolution. The journal records, in the
+	// before deciding it is resolved when the robot is deleted:
+	// VERDICT_INVALID, REFUSAL_ROBOT_DELETED, naming the robot; while its
+	// sending stream is gone, this resolution and those kept for the robot's
+	// sessions are kept by the robot's name (of the 16 robots most recently
+	// deleted with some) and sent on the next stream that sends a request
+	// naming it with that session_id. The journal records, in the
 	// deciding sample's response, every resolution it caused, without
-	// client_sequence.
+	// client_sequence (a deletion's resolutions are in no record: the
+	// journal's closing record says the robot was deleted).
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`
 	// Notable moments this sample caused.
 	Events []*FusionEvent `protobuf:"bytes,8,rep,name=events,proto3" json:"events,omitempty"`
@@ -2530,7 +2542,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"recoveries\x125\n" +
 	"\bdistrust\x18\a \x03(\x0e2\x19.reckon.v1.DistrustReasonR\bdistrust\x12\x12\n" +
 	"\x04held\x18\b \x01(\x05R\x04held\x12%\n" +
-	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xaa\x03\n" +
+	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xc5\x03\n" +
 	"\aRefusal\x12\x17\n" +
 	"\x13REFUSAL_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fREFUSAL_TOO_OLD\x10\x01\x12\x1a\n" +
@@ -2548,7 +2560,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\rREFUSAL_LIMIT\x10\f\x12\x1c\n" +
 	"\x18REFUSAL_RUN_OUT_OF_ORDER\x10\r\x12\x14\n" +
 	"\x10REFUSAL_REPEATED\x10\x0e\x12\x17\n" +
-	"\x13REFUSAL_QUARANTINED\x10\x0f*\x86\x01\n" +
+	"\x13REFUSAL_QUARANTINED\x10\x0f\x12\x19\n" +
+	"\x15REFUSAL_ROBOT_DELETED\x10\x10*\x86\x01\n" +
 	"\aVerdict\x12\x17\n" +
 	"\x13VERDICT_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fVERDICT_APPLIED\x10\x01\x12\x10\n" +

@@ -31,22 +31,33 @@ import (
 // decoding error back beside the message rather than through grpc-go's
 // status. Under another codec a malformed request is INTERNAL as before.
 func Register(gs grpc.ServiceRegistrar, s pb.FusionServiceServer) {
-	gs.RegisterService(checkedServiceDesc(), s)
+	gs.RegisterService(checkedServiceDesc(&pb.FusionService_ServiceDesc, false), s)
 }
 
-// checkedServiceDesc is pb.FusionService_ServiceDesc with its unary
-// handlers, and the handlers of its streams that receive one request
-// (Watch), decoding through checkedDecode.
-func checkedServiceDesc() *grpc.ServiceDesc {
-	sd := pb.FusionService_ServiceDesc
-	sd.Methods = make([]grpc.MethodDesc, len(pb.FusionService_ServiceDesc.Methods))
-	for i, md := range pb.FusionService_ServiceDesc.Methods {
+// RegisterChecked registers impl on gs as the service desc describes, each
+// request that is not a valid protobuf encoding of its type answered
+// INVALID_ARGUMENT naming the field, as Register does, on every rpc and
+// on each message of a stream (which then ends with it). reckond registers
+// gRPC's health and reflection services so, which grpc-go would answer
+// INTERNAL. It needs the service's codec too (ServiceOptions).
+func RegisterChecked(gs grpc.ServiceRegistrar, desc *grpc.ServiceDesc, impl any) {
+	gs.RegisterService(checkedServiceDesc(desc, true), impl)
+}
+
+// checkedServiceDesc is desc with its unary handlers, and the handlers of
+// its streams, decoding through checkedDecode: the streams whose client
+// sends one request (Watch) only, unless clientStreams (the ingest
+// stream's requests are answered one by one, codec.go).
+func checkedServiceDesc(desc *grpc.ServiceDesc, clientStreams bool) *grpc.ServiceDesc {
+	sd := *desc
+	sd.Methods = make([]grpc.MethodDesc, len(desc.Methods))
+	for i, md := range desc.Methods {
 		md.Handler = checkedHandler(md.Handler, "/"+sd.ServiceName+"/"+md.MethodName)
 		sd.Methods[i] = md
 	}
-	sd.Streams = make([]grpc.StreamDesc, len(pb.FusionService_ServiceDesc.Streams))
-	for i, d := range pb.FusionService_ServiceDesc.Streams {
-		if !d.ClientStreams {
+	sd.Streams = make([]grpc.StreamDesc, len(desc.Streams))
+	for i, d := range desc.Streams {
+		if !d.ClientStreams || clientStreams {
 			h := d.Handler
 			d.Handler = func(srv any, ss grpc.ServerStream) error { return h(srv, checkedStream{ss}) }
 		}
@@ -79,8 +90,8 @@ func checkedHandler(h grpc.MethodHandler, full string) grpc.MethodHandler {
 	}
 }
 
-// checkedStream is a server stream whose client sends one request,
-// decoded through checkedDecode.
+// checkedStream is a server stream whose requests are decoded through
+// checkedDecode.
 type checkedStream struct{ grpc.ServerStream }
 
 func (s checkedStream) RecvMsg(m any) error { return checkedDecode(s.ServerStream.RecvMsg, m) }

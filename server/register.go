@@ -119,6 +119,10 @@ func checkedDecode(dec func(any) error, v any) error {
 	if err := dec(&u); err != nil {
 		return err
 	}
+	if big, ok := u.err.(tooLargeError); ok {
+		return malformedError{status.Newf(codes.ResourceExhausted, "request: a %s of %d bytes exceeds the limit of %d (-max-message-bytes); nothing was done",
+			m.ProtoReflect().Descriptor().FullName(), big.size, big.max)}
+	}
 	if u.err != nil {
 		return malformedError{status.Newf(codes.InvalidArgument, "request: not a valid %s encoding (%v); nothing was done",
 			m.ProtoReflect().Descriptor().FullName(), u.err)}

@@ -1081,6 +1081,20 @@ func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason stri
 	}
 }
 
+// refuseMalformed makes out the refusal of a request the codec could not
+// take (arrivedRequest.malformed): RESOURCE_EXHAUSTED, REFUSAL_LIMIT for
+// one past -max-message-bytes, otherwise INVALID_ARGUMENT,
+// REFUSAL_MALFORMED.
+func refuseMalformed(out *encodedResponse, clientSeq uint64, err error) {
+	if big, ok := err.(tooLargeError); ok {
+		refuse(out, clientSeq, codes.ResourceExhausted, big.Error()+"; nothing was taken")
+		return
+	}
+	refuse(out, clientSeq, codes.InvalidArgument,
+		fmt.Sprintf("request: not a valid reckon.v1.IngestRequest encoding (%v); nothing was taken", err))
+	out.Refusal = pb.Refusal_REFUSAL_MALFORMED
+}
+
 // ingest applies one sample (ReseedRobot and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
 	req := &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
@@ -1118,10 +1132,8 @@ func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) 
 	sc.out = nil
 	for i := 0; i < len(batch); {
 		if err := batch[i].malformed; err != nil {
-			s.opt.Metrics.refused(codes.InvalidArgument)
-			refuse(&out[i], batch[i].GetClientSequence(), codes.InvalidArgument,
-				fmt.Sprintf("request: not a valid reckon.v1.IngestRequest encoding (%v); nothing was taken", err))
-			out[i].Refusal = pb.Refusal_REFUSAL_MALFORMED
+			refuseMalformed(&out[i], batch[i].GetClientSequence(), err)
+			s.opt.Metrics.refused(codes.Code(out[i].StatusCode))
 			i++
 			continue
 		}
@@ -1278,6 +1290,7 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
 			s.opt.Metrics.refused(le.code)
 			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
+			out[k].Field = le.field
 			continue
 		}
 		sid := req.GetSessionId()

@@ -66,7 +66,8 @@ type Config struct {
 	// 1024).
 	MaxStreams uint32
 	// MaxMessageBytes bounds one received message (default
-	// server.DefaultMaxMessageBytes; see server.ServiceOptions for its limit).
+	// server.DefaultMaxMessageBytes; see server.ServiceOptions for its limit
+	// and how a larger one is refused).
 	MaxMessageBytes int
 	// ShutdownGrace bounds the graceful stop before a hard stop (5 s).
 	ShutdownGrace time.Duration

@@ -53,7 +53,8 @@ const (
 	// The service could not journal it, or the robot is paused (its
 	// journal's disk is full): not applied, resend (status 14).
 	Refusal_REFUSAL_NOT_JOURNALED Refusal = 11
-	// Past one of the service's limits (a string's length).
+	// Past one of the service's limits (a string's length, status 3; the
+	// request's size, status 8).
 	Refusal_REFUSAL_LIMIT Refusal = 12
 	// A run start that does not start the next run: its run number is not
 	// the current run's plus one, or its boot id is the current run's.
@@ -960,7 +961,8 @@ type IngestResponse struct {
 	// a string past its limit, -max-string-bytes); 5 (NOT_FOUND) for an
 	// unknown or deleted robot, an unknown landmark or sensor; 8
 	// (RESOURCE_EXHAUSTED) when max_held samples already wait for odometry
-	// (REFUSAL_HELD_FULL); 9 (FAILED_PRECONDITION) for a sample the robot's
+	// (REFUSAL_HELD_FULL), or for a request past -max-message-bytes
+	// (REFUSAL_LIMIT); 9 (FAILED_PRECONDITION) for a sample the robot's
 	// configuration does not take, a run start out of order, or a quarantined
 	// robot; 11 (OUT_OF_RANGE) for a stamp outside what the robot takes now:
 	// time running backwards, a sample too old, or one stamped too far past

@@ -113,21 +113,8 @@ func TestHeldResolvedWhenDeleted(t *testing.T) {
 			api := dial(t, srv.addr)
 			ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 			defer cancel()
-			before, _, fixes, cfg := splitRun(33)
-			if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-				t.Fatal(err)
-			}
-			odo, err := openFeed(ctx, api, "robots/cart")
-			if err != nil {
-				t.Fatal(err)
-			}
-			cam, err := openFeed(ctx, api, "robots/cart")
-			if err != nil {
-				t.Fatal(err)
-			}
-			cam.session = "camera-d31e"
-			applyAll(t, odo, before)
-			held := heldFixes(t, applyAll(t, cam, fixes))
+			c := heldCamera(t, ctx, api, 33, "camera-d31e")
+			odo, cam, held, before, cfg := c.odo, c.cam, c.held, c.before, c.cfg
 			if tc.streamGone {
 				if err := cam.close(); err != nil {
 					t.Fatal(err)

@@ -289,13 +289,7 @@ func (o *orphans) add(r *robot, id string, res *pb.Resolution) {
 	l := o.byName[name]
 	if l == nil {
 		if len(o.byName) >= orphanRobots {
-			var oldest string
-			for n, l := range o.byName {
-				if oldest == "" || l.used < o.byName[oldest].used {
-					oldest = n
-				}
-			}
-			delete(o.byName, oldest)
+			evictOldest(o.byName, func(l *orphanLog) uint64 { return l.used })
 		}
 		l = &orphanLog{}
 		o.byName[name] = l
@@ -353,7 +347,7 @@ func (p *parkedResolutions) add(id string, res *pb.Resolution) {
 	l := p.byID[id]
 	if l == nil {
 		if len(p.byID) >= parkedSessions {
-			p.evict()
+			evictOldest(p.byID, func(l *parkedLog) uint64 { return l.used })
 		}
 		l = &parkedLog{}
 		p.byID[id] = l
@@ -365,15 +359,16 @@ func (p *parkedResolutions) add(id string, res *pb.Resolution) {
 	l.res = append(l.res, res)
 }
 
-func (p *parkedResolutions) evict() {
+// evictOldest deletes the entry of m with the least used.
+func evictOldest[V any](m map[string]V, used func(V) uint64) {
 	var oldest string
 	var at uint64
-	for id, l := range p.byID {
-		if oldest == "" || l.used < at {
-			oldest, at = id, l.used
+	for k, v := range m {
+		if u := used(v); oldest == "" || u < at {
+			oldest, at = k, u
 		}
 	}
-	delete(p.byID, oldest)
+	delete(m, oldest)
 }
 
 // take returns and forgets the resolutions parked for a session.

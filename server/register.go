@@ -21,11 +21,12 @@ import (
 // Register registers s on gs as the FusionService, with every request
 // message that is not a valid protobuf encoding of its type (a string that
 // is not UTF-8, a field cut short) answered INVALID_ARGUMENT naming the
-// field and what is wrong with it, and nothing done. grpc-go answers a
-// codec's unmarshal error INTERNAL ("grpc: failed to unmarshal the received
-// message", rpc_util.go's recv, in grpc-go 1.85), as though the service
-// were at fault. The ingest stream's requests are answered one by one
-// (REFUSAL_MALFORMED, codec.go) and are not touched here.
+// field and what is wrong with it, and nothing done; one past the codec's
+// size limit is RESOURCE_EXHAUSTED naming its size and the limit. grpc-go
+// answers a codec's unmarshal error INTERNAL ("grpc: failed to unmarshal
+// the received message", rpc_util.go's recv, in grpc-go 1.85), as though
+// the service were at fault. The ingest stream's requests are answered one by one
+// (REFUSAL_MALFORMED, REFUSAL_LIMIT; codec.go) and are not touched here.
 //
 // The mapping needs the service's codec (ServiceOptions): it hands the
 // decoding error back beside the message rather than through grpc-go's

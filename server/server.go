@@ -1095,6 +1095,36 @@ func refuseMalformed(out *encodedResponse, clientSeq uint64, err error) {
 	out.Refusal = pb.Refusal_REFUSAL_MALFORMED
 }
 
+// retriedTooLarge answers a request too large to take (tooLargeError)
+// whose (session_id, client_sequence) its robot took before as takeRun
+// answers any retry: with the verdict sent then, or with why the robot
+// takes nothing now. It reports whether the request was such a retry.
+// Otherwise a client resending, after a restart that lowered
+// -max-message-bytes, a sample the robot holds would be told it was
+// refused.
+func (s *Server) retriedTooLarge(out *encodedResponse, req *pb.IngestRequest, err error) bool {
+	if _, ok := err.(tooLargeError); !ok || req.GetSessionId() == "" {
+		return false
+	}
+	r, lerr := s.lookup(req.GetRobot())
+	if lerr != nil {
+		return false
+	}
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	wire := r.sessions.lookup(req.GetSessionId(), req.GetClientSequence())
+	if wire == nil {
+		return false
+	}
+	if code, reason := r.refusal(); code != codes.OK {
+		s.opt.Metrics.refused(code)
+		refuse(out, req.GetClientSequence(), code, reason)
+		return true
+	}
+	s.answerAgain(out, wire)
+	return true
+}
+
 // ingest applies one sample (ReseedRobot and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
 	req := &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
@@ -1132,8 +1162,10 @@ func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) 
 	sc.out = nil
 	for i := 0; i < len(batch); {
 		if err := batch[i].malformed; err != nil {
-			refuseMalformed(&out[i], batch[i].GetClientSequence(), err)
-			s.opt.Metrics.refused(codes.Code(out[i].StatusCode))
+			if !s.retriedTooLarge(&out[i], &batch[i].IngestRequest, err) {
+				refuseMalformed(&out[i], batch[i].GetClientSequence(), err)
+				s.opt.Metrics.refused(codes.Code(out[i].StatusCode))
+			}
 			i++
 			continue
 		}

@@ -947,7 +947,10 @@ type IngestResponse struct {
 	// sending stream is gone, this resolution and those kept for the robot's
 	// sessions are kept by the robot's name (of the 16 robots most recently
 	// deleted with some) and sent on the next stream that sends a request
-	// naming it with that session_id. The journal records, in the
+	// naming it with that session_id. What is kept for a session is in the
+	// service's memory only: a restart of the service forgets it (a held
+	// sample is held again after it, Resolution.client_sequence, but a
+	// deleted robot's resolutions are lost). The journal records, in the
 	// deciding sample's response, every resolution it caused, without
 	// client_sequence (a deletion's resolutions are in no record: the
 	// journal's closing record says the robot was deleted).

@@ -1319,12 +1319,8 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "not applied: an earlier input of the batch could not be journaled ("+tk.cause.Error()+"); resend")
 			continue
 		}
-		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
-			s.opt.Metrics.refused(le.code)
-			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
-			out[k].Field = le.field
-			continue
-		}
+		// A retry first: one of a sample taken before a restart that
+		// lowered a limit is answered as first sent, not refused.
 		sid := req.GetSessionId()
 		if sid != "" {
 			if wire := r.sessions.lookup(sid, req.GetClientSequence()); wire != nil {
@@ -1332,6 +1328,12 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 				tk.dups = append(tk.dups, k)
 				continue
 			}
+		}
+		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
+			s.opt.Metrics.refused(le.code)
+			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
+			out[k].Field = le.field
+			continue
 		}
 		resp := &out[k].IngestResponse
 		if !convert.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {

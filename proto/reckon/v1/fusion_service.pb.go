@@ -846,7 +846,8 @@ type IngestRequest struct {
 	// at most 128 bytes). With it, a request whose (session_id,
 	// client_sequence) the robot already took is answered with the original
 	// verdict and not applied again, so that a client may resend what it
-	// has no verdict for. Empty: no deduplication.
+	// has no verdict for, even past a limit lowered since (-max-message-bytes,
+	// -max-string-bytes). Empty: no deduplication.
 	SessionId     string `protobuf:"bytes,4,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

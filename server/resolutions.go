@@ -221,8 +221,9 @@ func (r *robot) deliver(h holder, res *pb.Resolution) {
 }
 
 // resolveDeleted gives each input the robot holds a final verdict as the
-// robot is deleted (DeleteRobot, under r.mu, r.deleted set): not applied,
-// REFUSAL_ROBOT_DELETED. Each goes to its sender's stream; those of senders
+// robot is deleted (DeleteRobot, under r.mu, r.deleted set, once its
+// journal is set aside: a journal left in place is restored at the next
+// start, holding the inputs still): not applied, REFUSAL_ROBOT_DELETED. Each goes to its sender's stream; those of senders
 // whose stream is gone, and the resolutions parked for the robot's
 // sessions, are kept in gone by the robot's name. An input whose sender is
 // unknown (held before a restart, or sent without a session and its stream

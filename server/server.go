@@ -682,7 +682,6 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
-	r.resolveDeleted(&s.orphans)
 	quarantined := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED
 	switch {
 	case quarantined && r.journal != nil:
@@ -705,6 +704,11 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 		err = r.journal.Remove()
 	}
 	r.journal = nil
+	if err == nil {
+		// Only once its journal is set aside: one that is not comes back
+		// at the next start, holding these inputs still, to decide them.
+		r.resolveDeleted(&s.orphans)
+	}
 	if quarantined {
 		s.opt.Metrics.quarantined(-1)
 	}

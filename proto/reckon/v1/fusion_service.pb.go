@@ -944,7 +944,9 @@ type IngestResponse struct {
 	// session_id loses it with its stream. A retried sample is answered with
 	// its response as first sent. A held sample of a robot that is deleted
 	// before deciding it is resolved when the robot is deleted:
-	// VERDICT_INVALID, REFUSAL_ROBOT_DELETED, naming the robot; while its
+	// VERDICT_INVALID, REFUSAL_ROBOT_DELETED, naming the robot (unless the
+	// deletion fails, INTERNAL: its journal, left in place, holds the sample
+	// still, and the robot restored from it at the next start decides it); while its
 	// sending stream is gone, this resolution and those kept for the robot's
 	// sessions are kept by the robot's name (of the 16 robots most recently
 	// deleted with some) and sent on the next stream that sends a request

@@ -1095,7 +1095,9 @@ func (x *IngestResponse) GetField() string {
 // IngestResponse.resolved for which stream receives it).
 type Resolution struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// The held sample's sequence number (the robot's).
+	// The held sample's sequence number (the robot's; for
+	// REFUSAL_ROBOT_DELETED the deleted robot's, which a robot made again
+	// under its name numbers afresh: match a resolution by client_sequence).
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// Its verdict.
 	Verdict Verdict `protobuf:"varint,2,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`

@@ -112,3 +112,66 @@ func TestSlipComparisonIMUSilence(t *testing.T) {
 		}
 	}
 }
+
+// TestRotationIMUAcrossBodySteps: a cart whose wheels cannot see rotation
+// (one parallel wheel and one lateral, imu_mode rotation) spinning at 1
+// rad/s sends 0.1 or 0.3 s of body steps without the IMU's heading (its
+// own odometry while the wheels' link was down) between wheel samples with
+// it. No sample is refused, its heading stays within the normal's
+// two-sided 99.9% point, 3.29 standard deviations (gonum stat/distuv), of
+// the truth at every sample, and the wheel sample after the steps reports
+// a gap in odometry: the IMU's heading at its start is unknown, so its
+// interval is the next one's reference. Before, the IMU's turn since its
+// last heading, the steps' turn included, was that sample's turn row: the
+// steps' turn counted twice, 0.09 rad off after 0.1 s of steps, and after
+// 0.3 s every later wheel sample refused (31 rad/s and more, past
+// max_turn_rate_rad_per_s), the heading's reference never moving on.
+func TestRotationIMUAcrossBodySteps(t *testing.T) {
+	limit := distuv.UnitNormal.Quantile(0.9995)
+	for _, steps := range []int64{10, 30} {
+		r, err := fusion.New(fusion.Config{Wheels: []fusion.Wheel{{YM: 0.1}, {XM: -0.08, DirectionRad: math.Pi / 2}}, IMU: fusion.IMURotation, Noise: fusion.DefaultNoise()})
+		if err != nil {
+			t.Fatal(err)
+		}
+		const rate, dt = 1.0, 0.01
+		gaps, refused := 0, 0
+		for k := int64(1); k <= 200; k++ {
+			t1 := k * 10e6
+			th := rate * float64(t1) * 1e-9
+			turn := rate * dt
+			o := fusion.Odometry{StartNs: t1 - 10e6, StampNs: t1}
+			if k >= 50 && k < 50+steps {
+				o.Step = &estimator.Step{TurnRad: turn}
+			} else {
+				z := estimator.Wrap(th)
+				o.IMUHeadingRad = &z
+				// A spin's wheel travel, (px sin(phi) - py cos(phi)) dth
+				// (DEVELOPERS.md, "Design: Motion prediction").
+				o.TravelM = []float64{-0.1 * turn, -0.08 * turn}
+			}
+			res := r.AddOdometry(o)
+			if res.Verdict != fusion.VerdictApplied {
+				refused++
+				continue
+			}
+			for _, e := range res.Events {
+				if e.Kind == fusion.EventOdometryGap {
+					gaps++
+					if k != 50+steps {
+						t.Errorf("%d steps: sample %d: a gap in odometry of %.3f s", steps, k, e.Value)
+					}
+				}
+			}
+			p := r.Pose()
+			if e := estimator.Wrap(p.Pose.Heading - th); math.Abs(e) > limit*math.Sqrt(p.Cov[8]) {
+				t.Errorf("%d steps: sample %d: heading %.4f rad off, %.1f standard deviations", steps, k, e, e/math.Sqrt(p.Cov[8]))
+			}
+		}
+		if refused > 0 {
+			t.Errorf("%d steps: %d of 200 samples refused", steps, refused)
+		}
+		if gaps != 1 {
+			t.Errorf("%d steps: %d gaps in odometry reported; want the one after the body steps", steps, gaps)
+		}
+	}
+}

@@ -774,8 +774,7 @@ const maxIMUWheel = 1e5
 // keeps its whole turns (the gyro scale's error over them is far below
 // half a turn).
 func (s *State) imuDelta(z float64) float64 {
-	d := Wrap(z - s.imuRef)
-	return d + 2*math.Pi*math.Round((s.imuWheel-d)/(2*math.Pi))
+	return Unwrap(Wrap(z-s.imuRef), s.imuWheel)
 }
 
 // GyroStep returns the turn u by which an IMU heading z (wrapped) of

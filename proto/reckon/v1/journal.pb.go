@@ -346,7 +346,8 @@ type RobotSnapshot struct {
 	Held []*SnapshotEntry `protobuf:"bytes,9,rep,name=held,proto3" json:"held,omitempty"`
 	// The wheels' last cumulative counts, when odometry carries counts.
 	LastCounts []int64 `protobuf:"varint,10,rep,packed,name=last_counts,json=lastCounts,proto3" json:"last_counts,omitempty"`
-	// The IMU heading at newest_ns in IMU rotation mode, radians.
+	// The IMU heading at newest_ns in IMU rotation mode, radians (unset
+	// after a body step that came without one).
 	LastImuHeadingRad *float64 `protobuf:"fixed64,11,opt,name=last_imu_heading_rad,json=lastImuHeadingRad,proto3,oneof" json:"last_imu_heading_rad,omitempty"`
 	// The last arrival sequence number given.
 	Sequence uint64 `protobuf:"varint,12,opt,name=sequence,proto3" json:"sequence,omitempty"`

@@ -172,7 +172,7 @@ func (r *Robot) previousFix(e *entry, si int32, horizon int64) (int64, bool) {
 	if i >= 0 {
 		return 0, false // the window reaches past the horizon
 	}
-	if t, ok := r.marks.lookup(si, e.lm); ok && t >= from {
+	if t, ok := r.marks.lookup(si, e.lm); ok && t >= from && t <= e.t1 {
 		return t, true
 	}
 	return 0, false

@@ -32,6 +32,7 @@ type Metrics struct {
 	connRef  prometheus.Counter
 	httpConn *prometheus.GaugeVec
 	httpRef  *prometheus.CounterVec
+	waits    prometheus.Counter
 	perRobot robotVecs
 }
 
@@ -63,9 +64,11 @@ func NewMetrics() *Metrics {
 		Help: "Open connections of the metrics and live view HTTP servers (Server.LimitHTTPConnections), by server."}, []string{"server"})
 	m.httpRef = prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_http_connections_refused_total",
 		Help: "Connections of an HTTP server closed at once because -max-http-connections of its were open, by server."}, []string{"server"})
+	m.waits = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_ingest_receive_waits_total",
+		Help: "Times an ingest stream waited before receiving more because -max-pending-bytes of received samples waited to be taken (its client's sends blocked meanwhile)."})
 	m.perRobot = newRobotVecs()
 	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged, m.viewers, m.viewConf,
-		m.conns, m.connRef, m.httpConn, m.httpRef,
+		m.conns, m.connRef, m.httpConn, m.httpRef, m.waits,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
 	m.reg.MustRegister(m.perRobot.collectors()...)
 	return m
@@ -80,6 +83,13 @@ func (m *Metrics) verdict(v pb.Verdict, d time.Duration) {
 	}
 	m.inputs.WithLabelValues(convert.VerdictName(v)).Inc()
 	m.latency.Observe(d.Seconds())
+}
+
+// pendingWait counts a receiver's wait at -max-pending-bytes.
+func (m *Metrics) pendingWait() {
+	if m != nil {
+		m.waits.Inc()
+	}
 }
 
 func (m *Metrics) refused(c codes.Code) {

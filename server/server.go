@@ -125,7 +125,7 @@ type Server struct {
 	// pending bounds the bytes of the ingest requests received and not
 	// yet taken (Limits.MaxPendingBytes).
 	pending pendingBudget
-	live      liveHub      // open live views (live.go)
+	live    liveHub // open live views (live.go)
 	// dirLock is the journal directory's lock (nil: no journal), which
 	// the sync loop checks is still the directory's (checkJournalDir);
 	// dirGone is set, with why, once it is not.

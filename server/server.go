@@ -240,6 +240,7 @@ func New(opt Options) (*Server, error) {
 	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, dirLock: dirLock, goneCh: make(chan struct{}), stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
 	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
 	s.pending.max, s.pending.waited = int64(opt.Limits.MaxPendingBytes), opt.Metrics.pendingWait
+	opt.Metrics.pendingBytes(&s.pending)
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
 		// each journal syncs by itself as elsewhere.

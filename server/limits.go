@@ -52,8 +52,8 @@ type Limits struct {
 	// client's sends block through gRPC's flow control: nothing is
 	// refused. A stream holding none may always receive one, so the bytes
 	// held stay below the bound plus one request per stream. Without it,
-	// each stream could hold 2 x 256 requests of -max-message-bytes:
-	// 512 streams of 64 KiB requests drove reckond to 2.0 GB.
+	// each stream could hold 2 x 256 requests of -max-message-bytes: 64
+	// GiB at the defaults.
 	MaxPendingBytes int
 }
 
@@ -78,9 +78,9 @@ func (l Limits) withDefaults() Limits {
 
 // DefaultMaxPendingBytes is Limits.MaxPendingBytes' default, 64 MiB: a
 // small coprocessor's memory (a few hundred MiB free for the service) can
-// spare it, and it holds a backlog of about 128,000 ordinary samples (about
-// 500 bytes each with their decoded struct), 256 for each of 500 streams,
-// or 1,000 requests of the default -max-message-bytes.
+// spare it, and it holds a backlog of about 200,000 ordinary samples (100
+// to 200 bytes encoded, and 184 for the struct), 256 for each of 800
+// streams, or 1,000 requests of the default -max-message-bytes.
 const DefaultMaxPendingBytes = 64 << 20
 
 // limitError is a refusal at a limit: the status code, a reason naming

@@ -36,7 +36,7 @@ type Metrics struct {
 	waits    prometheus.Counter
 	// pending is the budget that reckon_ingest_pending_bytes reads, the
 	// last server's made with these metrics.
-	pending atomic.Pointer[pendingBudget]
+	pending  atomic.Pointer[pendingBudget]
 	perRobot robotVecs
 }
 

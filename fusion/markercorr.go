@@ -2,6 +2,7 @@ package fusion
 
 import (
 	"math"
+	"slices"
 
 	"reckon.example/estimator"
 )
@@ -45,53 +46,61 @@ const repeatHorizonTaus = 6
 // repeat their correlated share entirely.
 const maxRepeatFactor = 1e4
 
-// maxMarks bounds the landmarks whose last applied fix the base keeps
-// (markTable).
-const maxMarks = 8
-
 // markTable keeps, for the landmarks of per-landmark sensors whose fixes
 // were folded into the base checkpoint (dropFront), the stamp of each
 // one's last applied fix: a fix whose previous fix of its landmark has
 // left the window finds it here, so that a replay after a late fix
 // weighs it as the first pass did. sensor is the configuration's index,
-// lm the landmark's (from 1; 0: an empty slot). In the snapshot (version
-// 21).
-type markTable [maxMarks]struct {
+// lm the landmark's (from 1). An entry stays while a fix in the window
+// may still look it up (within repeatHorizonTaus of the base), so the
+// table holds at most one entry per configured landmark and per-landmark
+// sensor, however many landmarks a frame holds (bounded at 8 entries, a
+// camera seeing more landmarks in a frame lost some, and a replay
+// weighed their next fixes as first ones: TestManyLandmarksLateEqualsStampOrder).
+// In the snapshot (version 21).
+type markTable []markEntry
+
+type markEntry struct {
 	lm, sensor int32
 	last       int64
 }
 
-// note records an applied fix of landmark lm by sensor si at t, taking
-// the slot of the landmark fixed longest ago when the table is full.
+// note records an applied fix of landmark lm by sensor si at t.
 func (m *markTable) note(si, lm int32, t int64) {
-	for i := range m {
-		if m[i].lm == lm && m[i].sensor == si {
-			m[i].last = max(m[i].last, t)
+	for i := range *m {
+		if e := &(*m)[i]; e.lm == lm && e.sensor == si {
+			e.last = max(e.last, t)
 			return
 		}
 	}
-	k := 0
-	for i := range m {
-		if m[i].lm == 0 {
-			k = i
-			break
-		}
-		if m[i].last < m[k].last {
-			k = i
-		}
-	}
-	m[k].lm, m[k].sensor, m[k].last = lm, si, t
+	*m = append(*m, markEntry{lm: lm, sensor: si, last: t})
+}
+
+// prune drops the entries that no fix stamped at or after base can look
+// up: those older than the horizon of their sensor (cfg's).
+func (m *markTable) prune(cfg *Config, base int64) {
+	*m = slices.DeleteFunc(*m, func(e markEntry) bool {
+		return e.last < base-repeatHorizon(&cfg.Sensors[e.sensor])
+	})
 }
 
 // lookup returns the stamp of the last applied fix of landmark lm by
 // sensor si in the table.
-func (m *markTable) lookup(si, lm int32) (int64, bool) {
+func (m markTable) lookup(si, lm int32) (int64, bool) {
 	for i := range m {
 		if m[i].lm == lm && m[i].sensor == si {
 			return m[i].last, true
 		}
 	}
 	return 0, false
+}
+
+// repeatHorizon is how far back, in nanoseconds, the previous fix of a
+// landmark of per-landmark sensor s is looked for: repeatHorizonTaus
+// correlation times, at most a century (a longer correlation time is a
+// constant error; the conversion stays inside int64).
+func repeatHorizon(s *Sensor) int64 {
+	return int64(min(repeatHorizonTaus*s.CorrelationTimeS, 100*365.25*86400) * 1e9)
 }
 
 // perLandmark reports whether the sensor's correlated part is per
@@ -135,7 +144,7 @@ func (r *Robot) repeatExtra(e *entry) (extra [9]float64, ok bool) {
 		return extra, false
 	}
 	s := &r.cfg.Sensors[si]
-	prev, found := r.previousFix(e, int32(si), int64(repeatHorizonTaus*s.CorrelationTimeS*1e9))
+	prev, found := r.previousFix(e, int32(si), repeatHorizon(s))
 	if !found {
 		return extra, false
 	}
@@ -192,6 +201,9 @@ func (r *Robot) foldMarks(dropped []entry) {
 		if si, ok := r.perLandmarkSensor(e); ok {
 			r.marks.note(int32(si), e.lm, e.t1)
 		}
+	}
+	if len(dropped) > 0 {
+		r.marks.prune(&r.cfg, dropped[len(dropped)-1].t1)
 	}
 }
 

@@ -9,6 +9,7 @@ import (
 	"testing"
 
 	"gonum.org/v1/gonum/mat"
+	"gonum.org/v1/gonum/stat/distuv"
 
 	"reckon.example/estimator"
 )
@@ -35,63 +36,73 @@ func standingCamera(t *testing.T, f, tau, rangeStd float64) *Robot {
 }
 
 // TestRepeatFactorInformation: n range fixes of one landmark dt apart, by
-// a robot standing still, carry the information that generalised least
-// squares draws from n observations of a constant in noise of covariance
-// s^2 ((1 - f) I + f rho^|i-j|), rho = exp(-dt / tau): 1^T Sigma^-1 1,
-// computed here by gonum's Cholesky inverse. The filter's first fix counts
-// in full and each next at (1 - rho) / (1 + rho) of its correlated share
-// (markercorr.go), which for an AR(1) error (f near 1) is that sum
-// exactly (from memory: the AR(1) precision matrix is tridiagonal, its
-// entries summing to (n (1 - rho) + 2 rho) / ((1 + rho) s^2)). Without the
-// inflation (every fix at its full covariance as white noise) the
-// information is n / s^2: 11 times too much here.
+// a robot standing still, carry at most the information that generalised
+// least squares draws from n observations of a constant in noise of
+// covariance s^2 ((1 - f) I + f rho^|i-j|), rho = exp(-dt / tau):
+// 1^T Sigma^-1 1, computed here by gonum's Cholesky inverse, the best
+// any linear estimate draws (Gauss-Markov theorem); a filter that claims
+// more is optimistic. The filter's first fix counts in full and each next
+// at (1 - rho) / (1 + rho) of its correlated share (markercorr.go), which
+// for an AR(1) error (f near 1) is that sum exactly (from memory: the
+// AR(1) precision matrix is tridiagonal, its entries summing to
+// (n (1 - rho) + 2 rho) / ((1 + rho) s^2)), but the filter's estimate is
+// not that least-squares one, and its error is larger
+// (TestRepeatCovarianceHonest): with f above a half the gain's white
+// share is raised to the correlated one's, and the filter claims less,
+// 82% of it at f 0.999 (1439.4 m^-2 before, at the bound), 92% at 0.5
+// and 89% at 0.2 (as before: the white share is the larger). At least 75%
+// is asked. Without the inflation (every
+// fix at its full covariance as white noise) the information is n / s^2:
+// 11 times too much at f 0.999.
 func TestRepeatFactorInformation(t *testing.T) {
-	const f, tau, s, n, dtNs = 0.999, 1.5, 0.05, 40, int64(200e6)
-	r := standingCamera(t, f, tau, s)
-	for k := 0; k <= n; k++ {
-		stamp := int64(k+1) * dtNs
-		if res := r.AddOdometry(Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0}}); res.Err != nil {
-			t.Fatal(res.Err)
-		}
-		if k == 0 {
-			continue
-		}
-		rng := 4.0
-		if res := r.AddFix(Fix{StampNs: stamp, SensorID: "cam", Kind: FixLandmark, LandmarkID: "m", RangeM: &rng}); res.Verdict != VerdictApplied {
-			t.Fatalf("fix %d: %v %v", k, res.Verdict, res.Err)
-		}
-	}
-	p := r.Pose()
-	got := 1/p.Cov[0] - 1.0/100
-	rho := math.Exp(-float64(dtNs) * 1e-9 / tau)
-	sigma := mat.NewSymDense(n, nil)
-	for i := 0; i < n; i++ {
-		for j := i; j < n; j++ {
-			v := f * math.Pow(rho, float64(j-i))
-			if i == j {
-				v += 1 - f
+	const tau, s, n, dtNs = 1.5, 0.05, 40, int64(200e6)
+	for _, f := range []float64{0.999, 0.5, 0.2} {
+		r := standingCamera(t, f, tau, s)
+		for k := 0; k <= n; k++ {
+			stamp := int64(k+1) * dtNs
+			if res := r.AddOdometry(Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0}}); res.Err != nil {
+				t.Fatal(res.Err)
 			}
-			sigma.SetSym(i, j, s*s*v)
+			if k == 0 {
+				continue
+			}
+			rng := 4.0
+			if res := r.AddFix(Fix{StampNs: stamp, SensorID: "cam", Kind: FixLandmark, LandmarkID: "m", RangeM: &rng}); res.Verdict != VerdictApplied {
+				t.Fatalf("fix %d: %v %v", k, res.Verdict, res.Err)
+			}
 		}
-	}
-	var ch mat.Cholesky
-	if !ch.Factorize(sigma) {
-		t.Fatal("noise covariance not positive definite")
-	}
-	var inv mat.SymDense
-	if err := ch.InverseTo(&inv); err != nil {
-		t.Fatal(err)
-	}
-	var want float64
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			want += inv.At(i, j)
+		p := r.Pose()
+		got := 1/p.Cov[0] - 1.0/100
+		rho := math.Exp(-float64(dtNs) * 1e-9 / tau)
+		sigma := mat.NewSymDense(n, nil)
+		for i := 0; i < n; i++ {
+			for j := i; j < n; j++ {
+				v := f * math.Pow(rho, float64(j-i))
+				if i == j {
+					v += 1 - f
+				}
+				sigma.SetSym(i, j, s*s*v)
+			}
 		}
-	}
-	closed := (float64(n)*(1-rho) + 2*rho) / ((1 + rho) * s * s)
-	t.Logf("information in x: filter %.1f, GLS %.1f, AR(1) closed form %.1f, as white %.1f", got, want, closed, float64(n)/(s*s))
-	if math.Abs(got/want-1) > 0.01 {
-		t.Errorf("the filter drew %.1f m^-2 of information from %d fixes; generalised least squares draws %.1f", got, n, want)
+		var ch mat.Cholesky
+		if !ch.Factorize(sigma) {
+			t.Fatal("noise covariance not positive definite")
+		}
+		var inv mat.SymDense
+		if err := ch.InverseTo(&inv); err != nil {
+			t.Fatal(err)
+		}
+		var want float64
+		for i := 0; i < n; i++ {
+			for j := 0; j < n; j++ {
+				want += inv.At(i, j)
+			}
+		}
+		closed := (float64(n)*(1-rho) + 2*rho) / ((1 + rho) * s * s)
+		t.Logf("f %.3f: information in x: filter %.1f, GLS %.1f (%.1f%%), AR(1) closed form %.1f, as white %.1f", f, got, want, 100*got/want, closed, float64(n)/(s*s))
+		if got > want*1.001 || got < 0.75*want {
+			t.Errorf("f %.3f: the filter drew %.1f m^-2 of information from %d fixes; generalised least squares draws %.1f", f, got, n, want)
+		}
 	}
 }
 
@@ -219,6 +230,95 @@ func TestManyLandmarksLateEqualsStampOrder(t *testing.T) {
 			if math.Abs(got.Cov[j]-want.Cov[j]) > 1e-9*math.Max(1e-6, math.Abs(want.Cov[j])) {
 				t.Errorf("robot %d: covariance %d %g, in stamp order %g", i, j, got.Cov[j], want.Cov[j])
 			}
+		}
+	}
+}
+
+// TestRepeatCovarianceHonest: the filter's covariance after repeated
+// fixes of per-landmark sensors is not below the true error's, measured
+// by Monte Carlo against per-landmark AR(1) errors drawn as the model
+// says (white share (1 - f) s^2, correlated share f s^2 decaying by rho
+// between fixes of one landmark). A robot stands at the origin with
+// landmarks 4 m ahead and behind, whose range fixes measure x alone; 2000
+// runs of n fixes each, and the mean of x^2 / P_xx (the NEES of x, chi-
+// square with 1 degree of freedom when P is the error's variance: Bar-
+// Shalom, Li and Kirubarajan 2001, sec. 5.4.2) must stay below the 99.9%
+// point of a chi-square with 2000 degrees of freedom over 2000 (1.10;
+// gonum's quantile). The gain is not the optimal one for correlated
+// errors, so the Joseph form's covariance with the inflated noise is
+// that of its gain only when the prior error does not share the fix's
+// correlated error; it does, through the landmark's earlier fixes, and
+// with a correlated share above half the covariance the filter's
+// variance was that much too small: the mean NEES 1.24 at f 0.999, 0.05
+// s apart with tau 1.5 s, 1.15 at 0.2 s, 1.10 at f 0.8 (from a
+// scalar analysis: a correlated share at most the white one is never
+// optimistic, and f 0.5 is exact for two fixes). The gain's white share
+// is now raised to the correlated one's (markercorr.go).
+func TestRepeatCovarianceHonest(t *testing.T) {
+	const runs, s = 2000, 0.05
+	limit := distuv.ChiSquared{K: runs}.Quantile(0.999) / runs
+	for _, c := range []struct {
+		f, dt float64
+		n     int
+		both  bool // the two landmarks in turns
+	}{
+		{0.999, 0.05, 40, false},
+		{0.999, 0.2, 40, false},
+		{0.8, 0.1, 40, false},
+		{0.999, 0.1, 40, true},
+		{0.5, 0.2, 40, false},
+	} {
+		const tau = 1.5
+		rho := math.Exp(-c.dt / tau)
+		if c.both {
+			rho = math.Exp(-2 * c.dt / tau)
+		}
+		rng := rand.New(rand.NewPCG(5, uint64(c.n)))
+		var nees, mse, pxx float64
+		gated := 0
+		for run := 0; run < runs; run++ {
+			r := standingCamera(t, c.f, tau, s)
+			r.cfg.Landmarks = append(r.cfg.Landmarks, Landmark{ID: "back", XM: -4})
+			r.cfg.GateProbability = 1 - 1e-9
+			r, err := New(r.cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var corr [2]float64
+			var seen [2]bool
+			dtNs := int64(c.dt * 1e9)
+			for k := 0; k <= c.n; k++ {
+				stamp := int64(k+1) * dtNs
+				if res := r.AddOdometry(Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0}}); res.Err != nil {
+					t.Fatal(res.Err)
+				}
+				if k == 0 {
+					continue
+				}
+				l := 0
+				if c.both {
+					l = k % 2
+				}
+				e := math.Sqrt(c.f) * s * rng.NormFloat64()
+				if seen[l] {
+					e = rho*corr[l] + math.Sqrt(1-rho*rho)*e
+				}
+				corr[l], seen[l] = e, true
+				rg := 4 + corr[l] + math.Sqrt(1-c.f)*s*rng.NormFloat64()
+				id := [2]string{"m", "back"}[l]
+				if res := r.AddFix(Fix{StampNs: stamp, SensorID: "cam", Kind: FixLandmark, LandmarkID: id, RangeM: &rg}); res.Verdict != VerdictApplied {
+					gated++
+				}
+			}
+			p := r.Pose()
+			nees += p.Pose.X * p.Pose.X / p.Cov[0]
+			mse += p.Pose.X * p.Pose.X / runs
+			pxx += p.Cov[0] / runs
+		}
+		nees /= runs
+		t.Logf("f %.3f, %.2f s apart, %d fixes, in turns %v: mean NEES of x %.3f (limit %.3f), %d fixes gated; mean P_xx %.3g m^2, mean square error %.3g m^2", c.f, c.dt, c.n, c.both, nees, limit, gated, pxx, mse)
+		if nees > limit {
+			t.Errorf("f %.3f, %.2f s apart, %d fixes, in turns %v: mean NEES of x %.3f, past %.3f: the covariance is smaller than the error's", c.f, c.dt, c.n, c.both, nees, limit)
 		}
 	}
 }

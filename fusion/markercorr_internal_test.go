@@ -107,8 +107,10 @@ func TestRepeatFactorInformation(t *testing.T) {
 }
 
 // TestMarkTableSnapshot: the fixes folded out of the window (markTable)
-// and a recovery candidate's per-landmark sensor survive a snapshot, and
-// a snapshot that names a sensor without per-landmark errors is refused.
+// and a recovery candidate's per-landmark sensor survive a snapshot, the
+// empty slots of the first version 21 snapshots read as none, and a
+// snapshot that names one landmark twice or a sensor without per-landmark
+// errors is refused.
 func TestMarkTableSnapshot(t *testing.T) {
 	r := standingCamera(t, 0.5, 1.5, 0.05)
 	r.marks.note(0, 1, 12345)
@@ -126,6 +128,26 @@ func TestMarkTableSnapshot(t *testing.T) {
 	if !slices.Equal(got.marks, r.marks) || len(got.cands) != 1 || got.cands[0].corrSensor != 1 || got.cands[0].corr != c.corr {
 		t.Errorf("restored %+v and %+v, want %+v and %+v", got.marks, got.cands, r.marks, c)
 	}
+	// The first version 21 snapshots wrote 8 slots, landmark 0 for an
+	// empty one: read as no entry.
+	var e wenc
+	e.ints(1, []int64{1, 0, 0, 0, 0, 0, 0, 0})
+	e.ints(2, make([]int64, 8))
+	e.ints(3, []int64{12345, 0, 0, 0, 0, 0, 0, 0})
+	var old markTable
+	d := wdec{b: e.b}
+	decMarks(&d, &old)
+	if d.err != nil || !slices.Equal(old, r.marks) {
+		t.Errorf("8 slots of a first version 21 snapshot read as %+v (%v), want %+v", old, d.err, r.marks)
+	}
+	r.marks = append(r.marks, r.marks[0])
+	if b, err = r.Snapshot(); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := RestoreSnapshot(r.Config(), b); !errors.Is(err, ErrSnapshot) {
+		t.Errorf("two last fixes of one landmark by one sensor restored: %v", err)
+	}
+	r.marks = r.marks[:1]
 	r.marks[0].sensor = 3
 	b, err = r.Snapshot()
 	if err != nil {

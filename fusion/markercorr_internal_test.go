@@ -35,6 +35,24 @@ func standingCamera(t *testing.T, f, tau, rangeStd float64) *Robot {
 	return r
 }
 
+// stand feeds robot r, standing still, the odometry up to its k-th fix
+// (from 1), the fixes dtNs apart after a first odometry sample at dtNs,
+// and returns the fix's stamp.
+func stand(t *testing.T, r *Robot, k int, dtNs int64) int64 {
+	t.Helper()
+	from := k + 1
+	if k == 1 {
+		from = 1
+	}
+	for j := from; j <= k+1; j++ {
+		stamp := int64(j) * dtNs
+		if res := r.AddOdometry(Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0}}); res.Err != nil {
+			t.Fatal(res.Err)
+		}
+	}
+	return int64(k+1) * dtNs
+}
+
 // TestRepeatFactorInformation: n range fixes of one landmark dt apart, by
 // a robot standing still, carry at most the information that generalised
 // least squares draws from n observations of a constant in noise of
@@ -58,14 +76,8 @@ func TestRepeatFactorInformation(t *testing.T) {
 	const tau, s, n, dtNs = 1.5, 0.05, 40, int64(200e6)
 	for _, f := range []float64{0.999, 0.5, 0.2} {
 		r := standingCamera(t, f, tau, s)
-		for k := 0; k <= n; k++ {
-			stamp := int64(k+1) * dtNs
-			if res := r.AddOdometry(Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0}}); res.Err != nil {
-				t.Fatal(res.Err)
-			}
-			if k == 0 {
-				continue
-			}
+		for k := 1; k <= n; k++ {
+			stamp := stand(t, r, k, dtNs)
 			rng := 4.0
 			if res := r.AddFix(Fix{StampNs: stamp, SensorID: "cam", Kind: FixLandmark, LandmarkID: "m", RangeM: &rng}); res.Verdict != VerdictApplied {
 				t.Fatalf("fix %d: %v %v", k, res.Verdict, res.Err)
@@ -309,14 +321,8 @@ func TestRepeatCovarianceHonest(t *testing.T) {
 			var corr [2]float64
 			var seen [2]bool
 			dtNs := int64(c.dt * 1e9)
-			for k := 0; k <= c.n; k++ {
-				stamp := int64(k+1) * dtNs
-				if res := r.AddOdometry(Odometry{StartNs: stamp - dtNs, StampNs: stamp, TravelM: []float64{0, 0}}); res.Err != nil {
-					t.Fatal(res.Err)
-				}
-				if k == 0 {
-					continue
-				}
+			for k := 1; k <= c.n; k++ {
+				stamp := stand(t, r, k, dtNs)
 				l := 0
 				if c.both {
 					l = k % 2

@@ -40,7 +40,10 @@ func arcPose(v, w, t float64) estimator.Pose {
 // check); fast, refused as past max_speed_m_per_s (with a wrong hint of a
 // 16-bit counter), the sample after it taken from the refused one's counts.
 // In rotation mode body steps without the IMU's heading were spared
-// (TestRotationIMUAcrossBodySteps), travels with it were not.
+// (TestRotationIMUAcrossBodySteps), travels with it were not. A robot
+// restored from a snapshot taken after the steps ends where the live one
+// does, bit for bit. With an absolute IMU every heading but the run's
+// first is applied, the new reference's too (before, it was dropped).
 func TestCountsAcrossBodySteps(t *testing.T) {
 	limit := distuv.ChiSquared{K: 3}.Quantile(0.999)
 	const base, dtNs = int64(1e9), int64(10e6)
@@ -58,6 +61,7 @@ func TestCountsAcrossBodySteps(t *testing.T) {
 				// (DEVELOPERS.md, "Design: Motion prediction").
 				wheelAt := func(i int, s float64) float64 { return (sp.v - wheels[i].YM*sp.w) * s }
 				var gaps []int
+				var twin *fusion.Robot
 				for k := int64(0); k <= 230; k++ {
 					s := float64(k) * dt
 					o := fusion.Odometry{StartNs: base + (k-1)*dtNs, StampNs: base + k*dtNs}
@@ -80,7 +84,21 @@ func TestCountsAcrossBodySteps(t *testing.T) {
 					default:
 						o.Step = &estimator.Step{ForwardM: sp.v * dt, TurnRad: sp.w * dt}
 					}
+					if twin != nil {
+						twin.AddOdometry(o)
+					}
 					res := r.AddOdometry(o)
+					if k == 130 {
+						// A snapshot after the steps restores a robot that
+						// goes on the same way (the reference's end kept).
+						b, err := r.Snapshot()
+						if err != nil {
+							t.Fatal(err)
+						}
+						if twin, err = fusion.RestoreSnapshot(r.Config(), b); err != nil {
+							t.Fatal(err)
+						}
+					}
 					if res.Verdict != fusion.VerdictApplied {
 						t.Errorf("%s: sample %d: %v %v", name, k, res.Verdict, res.Err)
 						continue
@@ -97,7 +115,20 @@ func TestCountsAcrossBodySteps(t *testing.T) {
 				if len(gaps) != 1 || gaps[0] != 131 {
 					t.Errorf("%s: gaps in odometry at samples %v, want at 131 alone", name, gaps)
 				}
+				if imu == fusion.IMUAbsolute {
+					// Every heading sent but the run's first (whose stamp
+					// starts the history) is applied, the new
+					// reference's too.
+					for _, ss := range r.Stats().Sensors {
+						if ss.ID == "imu" && ss.Applied != 200 {
+							t.Errorf("%s: %d IMU headings applied of the 200 after the run's first", name, ss.Applied)
+						}
+					}
+				}
 				p := r.Pose()
+				if q := twin.Pose(); q.Pose != p.Pose || q.Cov != p.Cov {
+					t.Errorf("%s: restored after the steps: %+v, want %+v", name, q.Pose, p.Pose)
+				}
 				truth := arcPose(sp.v, sp.w, 2.3)
 				// One interval's motion: its chord is below v dt, its turn w dt.
 				dpos := math.Hypot(p.Pose.X-truth.X, p.Pose.Y-truth.Y)

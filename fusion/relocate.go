@@ -549,6 +549,8 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 						e = (e+blk[q*3+p])/2 + ci.meas.R[p*3+q]
 					} else if bp, bq := bias[i][p], bias[j][q]; bp > 0 && bq > 0 {
 						e += st.At(bp, bq)
+					} else {
+						e += ci.sharedWith(cj, p, q)
 					}
 					sigma.SetSym(off[i]+p, off[j]+q, e)
 				}

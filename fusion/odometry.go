@@ -179,8 +179,8 @@ func (r *Robot) fromJumpCounts(o *Odometry, t0, dtNs int64, res *odoResult) bool
 	return r.checkJump(e.step, float64(dtNs)*1e-9) == nil
 }
 
-// noteCounts notes the counts of an odometry sample o that is taken as the
-// reference the next sample of counts is differenced from. A sample
+// noteCounts makes the counts of a taken odometry sample o the reference
+// the next sample of counts is differenced from. A sample
 // without counts (a body step, or travels) ends the reference: the next
 // sample of counts is a reference again (interval), its interval a gap in
 // odometry, as a run's first is (DEVELOPERS.md, "Design: Odometry

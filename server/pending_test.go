@@ -5,47 +5,15 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"net"
 	"strings"
 	"sync"
 	"testing"
 	"time"
 
-	"google.golang.org/grpc"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
 )
-
-// pendingServer serves a Server made with opt, memory only, on a loopback
-// port with the service's gRPC options; stop ends it.
-func pendingServer(t *testing.T, opt Options) (s *Server, api pb.FusionServiceClient, stop func()) {
-	t.Helper()
-	opts, err := ServiceOptions(0)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if s, err = New(opt); err != nil {
-		t.Fatal(err)
-	}
-	lis, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	gs := grpc.NewServer(opts...)
-	Register(gs, s)
-	go gs.Serve(lis)
-	var once sync.Once
-	stop = func() {
-		once.Do(func() {
-			s.EndStreams()
-			gs.GracefulStop()
-			s.Close()
-		})
-	}
-	t.Cleanup(stop)
-	return s, dial(t, lis.Addr().String()), stop
-}
 
 // bigSession is a session id that makes a request of an ordinary sample
 // nearly DefaultMaxMessageBytes long (-max-string-bytes raised for it).
@@ -138,7 +106,7 @@ func TestPendingBytesBounded(t *testing.T) {
 	)
 	gate := make(chan struct{})
 	m := NewMetrics()
-	s, api, _ := pendingServer(t, Options{Metrics: m, Limits: Limits{MaxPendingBytes: bound, MaxStringBytes: 64 << 10},
+	s, api, _ := serveServer(t, Options{Metrics: m, Limits: Limits{MaxPendingBytes: bound, MaxStringBytes: 64 << 10},
 		takingBatch: func([]*arrivedRequest) { <-gate }})
 	samp, cfg := cartRun(29, 2)
 	samp = samp[:each]
@@ -213,7 +181,7 @@ func TestPendingBytesBounded(t *testing.T) {
 func TestPendingBytesHeldTakerStarvesNoOne(t *testing.T) {
 	const bound = 1 << 20
 	gate := make(chan struct{})
-	s, api, _ := pendingServer(t, Options{Limits: Limits{MaxPendingBytes: bound, MaxStringBytes: 64 << 10},
+	s, api, _ := serveServer(t, Options{Limits: Limits{MaxPendingBytes: bound, MaxStringBytes: 64 << 10},
 		takingBatch: func(batch []*arrivedRequest) {
 			if len(batch) > 0 && batch[0].Robot == "robots/held" {
 				<-gate
@@ -270,7 +238,7 @@ func TestPendingWaitEnds(t *testing.T) {
 			var gateOnce sync.Once
 			open := func() { gateOnce.Do(func() { close(gate) }) }
 			defer open()
-			s, api, stop := pendingServer(t, Options{Limits: Limits{MaxPendingBytes: 1 << 20, MaxStringBytes: 64 << 10},
+			s, api, stop := serveServer(t, Options{Limits: Limits{MaxPendingBytes: 1 << 20, MaxStringBytes: 64 << 10},
 				takingBatch: func([]*arrivedRequest) { <-gate }})
 			samp, cfg := cartRun(37, 4)
 			ctx, cancel := context.WithCancel(context.Background())
@@ -353,7 +321,7 @@ func TestTakenRequestsHoldNoBytes(t *testing.T) {
 		streams = 16
 		each    = requestBlock - 1
 	)
-	_, api, _ := pendingServer(t, Options{Limits: Limits{MaxStringBytes: 64 << 10}})
+	_, api, _ := serveServer(t, Options{Limits: Limits{MaxStringBytes: 64 << 10}})
 	samp, cfg := cartRun(41, 2)
 	feeds := make([]*feed, streams)
 	for k := range feeds {

@@ -91,6 +91,8 @@ type Options struct {
 	// ingest stream's batch-taking goroutine took from its inbox, before
 	// it is applied, holding the stream's taking turn: a test that blocks
 	// in it holds the stream's taker, as a robot's lock held long would.
+	// Every request then goes to the batches (none is taken where it was
+	// received), so that no receiver is held with the taker.
 	takingBatch func(batch []*arrivedRequest)
 	// afterTake, if set (benchmarks), is called after an ingest stream's
 	// take with the number of samples it took and the time from its start
@@ -890,7 +892,7 @@ func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
 			now := time.Now()
 			req.arrived = now
 			switch {
-			case now.Sub(before) >= aloneAfter && now.UnixNano()-t.lastTake.Load() >= int64(quietFor):
+			case now.Sub(before) >= aloneAfter && now.UnixNano()-t.lastTake.Load() >= int64(quietFor) && t.s.opt.takingBatch == nil:
 				here = 1
 			case here > 0 && here < togetherHere:
 				here++

@@ -276,9 +276,18 @@ func ocRunOne(seed uint64, run *ocRun, cfg fusion.Config) (ocTally, error) {
 // if set.
 func ocRuns(t *testing.T, n int, durS float64, e ocErrors, edit func(*fusion.Config)) ocTally {
 	t.Helper()
+	seeds := make([]uint64, n)
+	for k := range seeds {
+		seeds[k] = uint64(500 + k)
+	}
+	return ocRunsOf(t, seeds, durS, e, edit)
+}
+
+// ocRunsOf is ocRuns for the runs of the given seeds.
+func ocRunsOf(t *testing.T, seeds []uint64, durS float64, e ocErrors, edit func(*fusion.Config)) ocTally {
+	t.Helper()
 	var sum ocTally
-	for k := range n {
-		seed := uint64(500 + k)
+	for _, seed := range seeds {
 		run := ocSimulate(seed, durS, e)
 		cfg := ocConfig(&run)
 		if edit != nil {
@@ -424,6 +433,35 @@ func TestOrchardKidnap(t *testing.T) {
 				t.Error(r)
 			}
 		})
+	}
+}
+
+// TestOrchardKidnapStanding: the carries after which the carrier stands at
+// a tree, seeing the same two posts for seconds (seeds 526 and 535 of the
+// first 40 of TestOrchardKidnap's runs, IMU on and off): each is reseeded
+// within 10 s of the set-down, and is trusted outside its 99.9% region for
+// at most 2 s at a stretch in the 30 s after it (chi-square quantile from
+// gonum stat/distuv). Before session 29 the reseed kept what the landmark
+// blocks had learnt while the carried carrier's fixes were applied where
+// it was not (offsets of 5 to 6 cm), and the applied fixes of the two
+// posts pulled the reseeded pose off by as much: seed 535 was trusted
+// outside the region for 9.46 s with the IMU off, and 9.00 s with the
+// survey error shared but the blocks kept; with the survey error counted
+// white in each fix, seed 535 with the IMU on for 4.44 s and seed 526
+// with it off for 5.48 s (DEVELOPERS.md, the orchard carrier).
+func TestOrchardKidnapStanding(t *testing.T) {
+	for _, imuOff := range []bool{false, true} {
+		for _, seed := range []uint64{526, 535} {
+			e := ocAllErrors()
+			e.kidnap, e.imuOff, e.outage = true, imuOff, false
+			sum := ocRunsOf(t, []uint64{seed}, 150, e, nil)
+			t.Logf("seed %d, IMU off %v: reseeded %.2f s after the set-down, inside the 99.9%% region after %.2f s, trusted outside it on %.2f%% of the 30 s after, for %.2f s at most",
+				seed, imuOff, sum.worstReseedS, sum.worstBackS, 100*float64(sum.trustedOut999[ocAfterSetDown])/float64(max(sum.n[ocAfterSetDown], 1)), sum.setDownS)
+			if sum.reseeded < 1 || sum.worstReseedS > 10 || sum.setDownS > 2 {
+				t.Errorf("seed %d, IMU off %v: reseeded %d times, %.2f s after the set-down; trusted outside the 99.9%% region for %.2f s (%s), above 2 s",
+					seed, imuOff, sum.reseeded, sum.worstReseedS, sum.setDownS, sum.setDownAt)
+			}
+		}
 	}
 }
 

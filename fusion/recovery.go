@@ -212,6 +212,11 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		// reset keeps that correlation (applyReset).
 		reset.meas = e.meas
 	}
+	if landmark {
+		// A relocation from landmark fixes: the landmark blocks start
+		// again from the map (applyReset).
+		reset.meas.Kind = estimator.KindRangeBearing
+	}
 	var sub Result
 	r.insertReset(&reset, &sub)
 	r.trust.disagree = true
@@ -738,6 +743,23 @@ func (r *Robot) applyReset(e *entry) error {
 		j := detachJacobian(e.pose, e.meas.Mount)
 		// Not positive definite leaves the pose uncorrelated, as before.
 		_ = r.f.CorrelateBias(e.meas.Bias, &j)
+	}
+	if e.meas.Kind == estimator.KindRangeBearing {
+		// A relocation from landmark fixes fitted the pose to the mapped
+		// landmarks with their survey error; what the landmark blocks
+		// learnt, they learnt through the pose now found wrong (a
+		// carried robot's fixes applied where it was not), and kept,
+		// their offsets pulled the reseeded pose off by as much
+		// (DEVELOPERS.md, "Design: Gating and recovery"). Each block
+		// starts again from its landmark's survey error.
+		for b, at := range r.lmAt {
+			if id := r.lm[b].id; id != 0 && r.lmVar[id-1] > 0 {
+				v := r.lmVar[id-1]
+				if err := r.f.SeedBlock(at, &[4]float64{v, 0, 0, v}); err != nil {
+					return err
+				}
+			}
+		}
 	}
 	return nil
 }

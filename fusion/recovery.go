@@ -147,8 +147,9 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 	meas := e.meas
 	if landmark {
 		// Folded at each relocation, at the newest bias (relocate). The
-		// landmark's survey error goes with it as white: its block may
-		// stand for another landmark by then.
+		// landmark's survey error goes with it from the map, not its
+		// block (which may stand for another landmark by then); the
+		// relocation shares it among the fixes of one landmark.
 		c.meas = meas
 		if e.lm != 0 {
 			c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]

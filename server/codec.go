@@ -21,9 +21,30 @@ import (
 // through the standard protobuf codec. ServiceOptions installs it; a Server
 // registered on a gRPC server without it works the same, only with an
 // encoding more per sample.
-type codec struct{ std encoding.CodecV2 }
+//
+// It refuses a request larger than max bytes (0: no limit) before decoding
+// it: an ingest request as its own verdict, so that the stream goes on; a
+// request of another rpc with RESOURCE_EXHAUSTED (through unaryRequest).
+// gRPC's own limit, which ends the whole stream, is set above it
+// (ServiceOptions).
+type codec struct {
+	std encoding.CodecV2
+	max int
+}
 
 func newCodec() codec { return codec{std: encoding.GetCodecV2("proto")} }
+
+// tooLargeError is the codec's refusal of a request past its limit.
+type tooLargeError struct{ size, max int }
+
+func (e tooLargeError) Error() string {
+	return fmt.Sprintf("request: %d bytes exceeds the limit of %d (-max-message-bytes)", e.size, e.max)
+}
+
+// sizePrefix bounds the bytes of a request too large to take that are
+// read for its client sequence, which encoders write before the sample
+// (field 2, after the robot's name).
+const sizePrefix = 1 << 10
 
 // Name is the content subtype: the codec speaks plain protobuf.
 func (codec) Name() string { return "proto" }
@@ -36,6 +57,23 @@ func (c codec) Marshal(v any) (mem.BufferSlice, error) {
 }
 
 func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
+	if n := data.Len(); c.max > 0 && n > c.max {
+		err := tooLargeError{n, c.max}
+		switch v := v.(type) {
+		case *unaryRequest:
+			v.err = err
+		case *arrivedRequest:
+			// Its client sequence as far as a prefix gives it: the
+			// request is not copied.
+			v.IngestRequest.Reset()
+			v.ClientSequence, v.malformed = clientSequenceOf(prefix(data, sizePrefix)), err
+		default:
+			// A service not registered through checkedServiceDesc:
+			// grpc-go answers INTERNAL, with these words.
+			return err
+		}
+		return nil
+	}
 	if u, ok := v.(*unaryRequest); ok {
 		c.decodeUnary(data, u)
 		return nil
@@ -60,6 +98,16 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	}
 	r.wire = b
 	return nil
+}
+
+// prefix returns a copy of data's first n bytes (all of them if fewer).
+func prefix(data mem.BufferSlice, n int) []byte {
+	b := make([]byte, 0, min(n, data.Len()))
+	for _, buf := range data {
+		d := buf.ReadOnlyData()
+		b = append(b, d[:min(len(d), cap(b)-len(b))]...)
+	}
+	return b
 }
 
 // requestDecoder is one ingest stream's decoder of requests by hand: its
@@ -130,8 +178,9 @@ func keep(last *string, p []byte) (s string, ok bool) {
 type arrivedRequest struct {
 	pb.IngestRequest
 	wire []byte
-	// malformed, when set, is why the bytes are not an IngestRequest (only
-	// ClientSequence is set then): the request is refused, naming it.
+	// malformed, when set, is why the bytes are not an IngestRequest, or
+	// a tooLargeError (only ClientSequence is set then): the request is
+	// refused, naming it.
 	malformed error
 	slab      *slab
 	// dec, when set, decodes the common samples by hand (decodeRequest).

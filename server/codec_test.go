@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"fmt"
 	"os"
+	"strings"
 	"testing"
 
 	"google.golang.org/grpc/encoding"
@@ -258,4 +259,41 @@ func FuzzDecodeRequest(f *testing.F) {
 	f.Fuzz(func(t *testing.T, b []byte) {
 		checkRequest(t, dec, b)
 	})
+}
+
+// TestCodecTooLarge: past its limit the codec decodes nothing and copies
+// nothing: an ingest request is marked too large with its client sequence
+// (read from a prefix that spans the first of several buffers) and takes
+// no piece of the slab; another rpc's request carries the error beside it
+// (checkedDecode answers RESOURCE_EXHAUSTED); any other message is an
+// error. At the limit the request decodes.
+func TestCodecTooLarge(t *testing.T) {
+	req := &pb.IngestRequest{Robot: "robots/cart", ClientSequence: 300, Sample: &pb.Sample{Sample: &pb.Sample_Fix{Fix: &pb.Fix{SensorId: strings.Repeat("c", 3000)}}}}
+	b, err := proto.Marshal(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	split := mem.BufferSlice{mem.SliceBuffer(b[:5]), mem.SliceBuffer(b[5:17]), mem.SliceBuffer(b[17:])}
+	c := newCodec()
+	c.max = len(b) - 1
+	sl := &slab{}
+	got := &arrivedRequest{slab: sl}
+	if err := c.Unmarshal(split, got); err != nil || got.malformed != (tooLargeError{len(b), len(b) - 1}) || got.GetClientSequence() != 300 || got.wire != nil || sl.buf != nil {
+		t.Errorf("an ingest request 1 byte too large: err %v, malformed %v, client sequence %d, kept %d bytes, slab %d", err, got.malformed, got.GetClientSequence(), len(got.wire), len(sl.buf))
+	}
+	u := &unaryRequest{Message: &pb.IngestRequest{}}
+	if err := c.Unmarshal(split, u); err != nil || u.err != (tooLargeError{len(b), len(b) - 1}) {
+		t.Errorf("a unary request 1 byte too large: %v, %v", err, u.err)
+	}
+	if err := c.Unmarshal(split, &pb.IngestRequest{}); err == nil || !strings.Contains(err.Error(), "-max-message-bytes") {
+		t.Errorf("another message 1 byte too large: %v", err)
+	}
+	c.max = len(b)
+	got = &arrivedRequest{slab: &slab{}}
+	if err := c.Unmarshal(split, got); err != nil || got.malformed != nil || !proto.Equal(&got.IngestRequest, req) {
+		t.Errorf("a request at the limit: %v, %v", err, got.malformed)
+	}
+	if p := prefix(split, 10); string(p) != string(b[:10]) {
+		t.Errorf("prefix %x, want %x", p, b[:10])
+	}
 }

@@ -7,6 +7,9 @@ import (
 	"testing"
 	"time"
 
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
 	"reckon.example/fusion/fusiontest"
 	pb "reckon.example/proto/reckon/v1"
 	"reckon.example/server/journal"
@@ -84,5 +87,85 @@ func TestCreateWhileDeleting(t *testing.T) {
 	r, err := dial(t, srv.addr).GetRobot(ctx, &pb.GetRobotRequest{Name: "robots/cart"})
 	if err != nil || r.GetRobot().GetInputCount() != 5 {
 		t.Errorf("restored robot: %v inputs, want the new robot's 5 (%v)", r.GetRobot().GetInputCount(), err)
+	}
+}
+
+// TestHeldResolvedWhenDeleted: a camera's fixes held waiting for odometry
+// when their robot is deleted each get a final verdict, VERDICT_INVALID
+// with REFUSAL_ROBOT_DELETED and a reason naming the robot, with their
+// client sequences: on the camera's stream while it is open; while it is
+// gone, on the next stream of its session that sends a request naming the
+// robot, whether the name is free (that request refused NOT_FOUND) or names
+// a robot created again. The bridge's stream receives none. Before, a held
+// fix of a deleted robot was never answered.
+func TestHeldResolvedWhenDeleted(t *testing.T) {
+	for _, tc := range []struct {
+		name               string
+		streamGone, create bool
+	}{
+		{"stream open", false, false},
+		{"stream gone, name free", true, false},
+		{"stream gone, name created again", true, true},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			srv := start(t, testConfig{Options: Options{JournalDir: t.TempDir()}})
+			defer srv.stop()
+			api := dial(t, srv.addr)
+			ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+			defer cancel()
+			c := heldCamera(t, ctx, api, 33, "camera-d31e")
+			odo, cam, held, before, cfg := c.odo, c.cam, c.held, c.before, c.cfg
+			if tc.streamGone {
+				if err := cam.close(); err != nil {
+					t.Fatal(err)
+				}
+			}
+			if _, err := api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart"}); err != nil {
+				t.Fatal(err)
+			}
+			if tc.create {
+				if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+					t.Fatal(err)
+				}
+			}
+			if tc.streamGone {
+				again, err := openFeed(ctx, api, "robots/cart")
+				if err != nil {
+					t.Fatal(err)
+				}
+				again.session = cam.session
+				again.sent.Store(cam.sent.Load())
+				resp, err := again.apply(before[0])
+				wantCode := codes.NotFound
+				if tc.create {
+					wantCode = codes.OK
+				}
+				if err != nil || codes.Code(resp.GetStatusCode()) != wantCode {
+					t.Fatalf("first request of the new stream: %v, %v; want status %v", resp, err, wantCode)
+				}
+				cam = again
+			}
+			if err := cam.close(); err != nil {
+				t.Fatal(err)
+			}
+			seen := map[uint64]bool{}
+			for _, r := range cam.resolved {
+				if want, ok := held[r.GetSequence()]; !ok || seen[r.GetSequence()] || r.GetClientSequence() != want ||
+					r.GetVerdict() != pb.Verdict_VERDICT_INVALID || r.GetRefusal() != pb.Refusal_REFUSAL_ROBOT_DELETED ||
+					!strings.Contains(r.GetReason(), "robots/cart was deleted") {
+					t.Errorf("resolution %v; want each held input (robot sequence: client sequence %v) once, invalid, robot deleted, naming robots/cart", r, held)
+				}
+				seen[r.GetSequence()] = true
+			}
+			if len(seen) != len(held) {
+				t.Errorf("%d of %d held inputs resolved", len(seen), len(held))
+			}
+			if err := odo.close(); err != nil && status.Code(err) != codes.OK {
+				t.Fatal(err)
+			}
+			if len(odo.resolved) != 0 {
+				t.Errorf("the odometry stream received %d resolutions", len(odo.resolved))
+			}
+		})
 	}
 }

@@ -63,11 +63,11 @@ func (l Limits) withDefaults() Limits {
 	return l
 }
 
-// limitError is a refusal at a limit: the status code and a reason naming
-// the field, the limit and its flag.
+// limitError is a refusal at a limit: the status code, a reason naming
+// the field, the limit and its flag, and the field's path.
 type limitError struct {
-	code   codes.Code
-	reason string
+	code          codes.Code
+	reason, field string
 }
 
 // checkLimits refuses a request past a limit before its robot sees it. The
@@ -75,7 +75,7 @@ type limitError struct {
 func (s *Server) checkLimits(r *robot, req *pb.IngestRequest) *limitError {
 	max := s.opt.Limits.MaxStringBytes
 	long := func(field, v string) *limitError {
-		return &limitError{codes.InvalidArgument, fmt.Sprintf("%s: %d bytes exceeds the limit of %d (-max-string-bytes)", field, len(v), max)}
+		return &limitError{codes.InvalidArgument, fmt.Sprintf("%s: %d bytes exceeds the limit of %d (-max-string-bytes)", field, len(v), max), field}
 	}
 	if len(req.GetSessionId()) > max {
 		return long("session_id", req.GetSessionId())

@@ -21,32 +21,44 @@ import (
 // Register registers s on gs as the FusionService, with every request
 // message that is not a valid protobuf encoding of its type (a string that
 // is not UTF-8, a field cut short) answered INVALID_ARGUMENT naming the
-// field and what is wrong with it, and nothing done. grpc-go answers a
-// codec's unmarshal error INTERNAL ("grpc: failed to unmarshal the received
-// message", rpc_util.go's recv, in grpc-go 1.85), as though the service
-// were at fault. The ingest stream's requests are answered one by one
-// (REFUSAL_MALFORMED, codec.go) and are not touched here.
+// field and what is wrong with it, and nothing done; one past the codec's
+// size limit is RESOURCE_EXHAUSTED naming its size and the limit. grpc-go
+// answers a codec's unmarshal error INTERNAL ("grpc: failed to unmarshal
+// the received message", rpc_util.go's recv, in grpc-go 1.85), as though
+// the service were at fault. The ingest stream's requests are answered one by one
+// (REFUSAL_MALFORMED, REFUSAL_LIMIT; codec.go) and are not touched here.
 //
 // The mapping needs the service's codec (ServiceOptions): it hands the
 // decoding error back beside the message rather than through grpc-go's
 // status. Under another codec a malformed request is INTERNAL as before.
 func Register(gs grpc.ServiceRegistrar, s pb.FusionServiceServer) {
-	gs.RegisterService(checkedServiceDesc(), s)
+	gs.RegisterService(checkedServiceDesc(&pb.FusionService_ServiceDesc, false), s)
 }
 
-// checkedServiceDesc is pb.FusionService_ServiceDesc with its unary
-// handlers, and the handlers of its streams that receive one request
-// (Watch), decoding through checkedDecode.
-func checkedServiceDesc() *grpc.ServiceDesc {
-	sd := pb.FusionService_ServiceDesc
-	sd.Methods = make([]grpc.MethodDesc, len(pb.FusionService_ServiceDesc.Methods))
-	for i, md := range pb.FusionService_ServiceDesc.Methods {
+// RegisterChecked registers impl on gs as the service desc describes, each
+// request that is not a valid protobuf encoding of its type answered
+// INVALID_ARGUMENT naming the field, as Register does, on every rpc and
+// on each message of a stream (which then ends with it). reckond registers
+// gRPC's health and reflection services so, which grpc-go would answer
+// INTERNAL. It needs the service's codec too (ServiceOptions).
+func RegisterChecked(gs grpc.ServiceRegistrar, desc *grpc.ServiceDesc, impl any) {
+	gs.RegisterService(checkedServiceDesc(desc, true), impl)
+}
+
+// checkedServiceDesc is desc with its unary handlers, and the handlers of
+// its streams, decoding through checkedDecode: the streams whose client
+// sends one request (Watch) only, unless clientStreams (the ingest
+// stream's requests are answered one by one, codec.go).
+func checkedServiceDesc(desc *grpc.ServiceDesc, clientStreams bool) *grpc.ServiceDesc {
+	sd := *desc
+	sd.Methods = make([]grpc.MethodDesc, len(desc.Methods))
+	for i, md := range desc.Methods {
 		md.Handler = checkedHandler(md.Handler, "/"+sd.ServiceName+"/"+md.MethodName)
 		sd.Methods[i] = md
 	}
-	sd.Streams = make([]grpc.StreamDesc, len(pb.FusionService_ServiceDesc.Streams))
-	for i, d := range pb.FusionService_ServiceDesc.Streams {
-		if !d.ClientStreams {
+	sd.Streams = make([]grpc.StreamDesc, len(desc.Streams))
+	for i, d := range desc.Streams {
+		if !d.ClientStreams || clientStreams {
 			h := d.Handler
 			d.Handler = func(srv any, ss grpc.ServerStream) error { return h(srv, checkedStream{ss}) }
 		}
@@ -79,8 +91,8 @@ func checkedHandler(h grpc.MethodHandler, full string) grpc.MethodHandler {
 	}
 }
 
-// checkedStream is a server stream whose client sends one request,
-// decoded through checkedDecode.
+// checkedStream is a server stream whose requests are decoded through
+// checkedDecode.
 type checkedStream struct{ grpc.ServerStream }
 
 func (s checkedStream) RecvMsg(m any) error { return checkedDecode(s.ServerStream.RecvMsg, m) }
@@ -107,6 +119,10 @@ func checkedDecode(dec func(any) error, v any) error {
 	u := unaryRequest{Message: m}
 	if err := dec(&u); err != nil {
 		return err
+	}
+	if big, ok := u.err.(tooLargeError); ok {
+		return malformedError{status.Newf(codes.ResourceExhausted, "request: a %s of %d bytes exceeds the limit of %d (-max-message-bytes); nothing was done",
+			m.ProtoReflect().Descriptor().FullName(), big.size, big.max)}
 	}
 	if u.err != nil {
 		return malformedError{status.Newf(codes.InvalidArgument, "request: not a valid %s encoding (%v); nothing was done",

@@ -3,6 +3,7 @@ package server
 import (
 	"sort"
 	"sync"
+	"sync/atomic"
 
 	"google.golang.org/protobuf/proto"
 
@@ -89,8 +90,9 @@ func (ob *outbox) drain() []encodedResponse {
 }
 
 // close ends the outbox: later resolutions for the stream are parked for
-// its session. It returns what was pending; park parks them instead.
-func (ob *outbox) close(park bool) []encodedResponse {
+// its session. It returns what was pending; park parks them instead, those
+// of a deleted robot in gone.
+func (ob *outbox) close(park bool, gone *orphans) []encodedResponse {
 	ob.mu.Lock()
 	ps := ob.pending
 	ob.pending, ob.closed = nil, true
@@ -99,8 +101,13 @@ func (ob *outbox) close(park bool) []encodedResponse {
 		return resolutionResponses(ps)
 	}
 	for _, p := range ps {
+		if p.sessionID == "" {
+			continue
+		}
 		p.r.mu.Lock()
-		if !p.r.deleted && p.sessionID != "" {
+		if p.r.deleted {
+			gone.add(p.r, p.sessionID, p.res)
+		} else {
 			p.r.parked.add(p.sessionID, p.res)
 		}
 		p.r.mu.Unlock()
@@ -213,6 +220,111 @@ func (r *robot) deliver(h holder, res *pb.Resolution) {
 	}
 }
 
+// resolveDeleted gives each input the robot holds a final verdict as the
+// robot is deleted (DeleteRobot, under r.mu, r.deleted set): not applied,
+// REFUSAL_ROBOT_DELETED. Each goes to its sender's stream; those of senders
+// whose stream is gone, and the resolutions parked for the robot's
+// sessions, are kept in gone by the robot's name. An input whose sender is
+// unknown (held before a restart, or sent without a session and its stream
+// gone) is told no one.
+func (r *robot) resolveDeleted(gone *orphans) {
+	seqs := make([]uint64, 0, len(r.holders))
+	for seq := range r.holders {
+		seqs = append(seqs, seq)
+	}
+	sort.Slice(seqs, func(i, j int) bool { return seqs[i] < seqs[j] })
+	for _, seq := range seqs {
+		h := r.holders[seq]
+		res := &pb.Resolution{Sequence: seq, Verdict: pb.Verdict_VERDICT_INVALID, Refusal: pb.Refusal_REFUSAL_ROBOT_DELETED,
+			Reason: "robot: " + r.name + " was deleted while the input was held waiting for odometry; not applied", ClientSequence: h.clientSeq}
+		if h.ob != nil && h.ob.put(parcel{r: r, sessionID: h.sessionID, res: res}) {
+			continue
+		}
+		if h.sessionID != "" {
+			r.parked.add(h.sessionID, res)
+		}
+	}
+	r.holders = nil
+	for id, l := range r.parked.byID {
+		for _, res := range l.res {
+			gone.add(r, id, res)
+		}
+	}
+	r.parked = parkedResolutions{}
+}
+
+// orphanRobots bounds the deleted robots whose resolutions orphans keeps:
+// the orphanRobots most recently given one.
+const orphanRobots = 16
+
+// orphans are the resolutions of deleted robots kept for sessions whose
+// stream was gone, by the robot's name and the session, to be collected by
+// the next stream that sends a request naming the robot with that session
+// id, whether the name is free now or names a new robot.
+type orphans struct {
+	// n counts the robots kept, read without mu on every run of samples
+	// (collect's fast path).
+	n      atomic.Int32
+	mu     sync.Mutex // protects byName and tick
+	byName map[string]*orphanLog
+	tick   uint64
+}
+
+type orphanLog struct {
+	r      *robot // the deleted robot of the name last given one
+	used   uint64
+	parked parkedResolutions
+}
+
+// add keeps a resolution of the deleted robot r for session id, forgetting
+// the robot given one longest ago past orphanRobots.
+func (o *orphans) add(r *robot, id string, res *pb.Resolution) {
+	name := r.name
+	o.mu.Lock()
+	defer o.mu.Unlock()
+	if o.byName == nil {
+		o.byName = map[string]*orphanLog{}
+	}
+	o.tick++
+	l := o.byName[name]
+	if l == nil {
+		if len(o.byName) >= orphanRobots {
+			evictOldest(o.byName, func(l *orphanLog) uint64 { return l.used })
+		}
+		l = &orphanLog{}
+		o.byName[name] = l
+	}
+	l.r, l.used = r, o.tick
+	l.parked.add(id, res)
+	o.n.Store(int32(len(o.byName)))
+}
+
+// collect hands ob the resolutions kept for the deleted robot name and
+// session id (none: nothing).
+func (o *orphans) collect(name, id string, ob *outbox) {
+	if o.n.Load() == 0 || id == "" || ob == nil {
+		return
+	}
+	o.mu.Lock()
+	var res []*pb.Resolution
+	var r *robot
+	if l := o.byName[name]; l != nil {
+		r, res = l.r, l.parked.take(id)
+		if len(l.parked.byID) == 0 {
+			delete(o.byName, name)
+			o.n.Store(int32(len(o.byName)))
+		}
+	}
+	o.mu.Unlock()
+	for _, rs := range res {
+		// Kept again, if the stream ends before sending it, as a deleted
+		// robot's (close).
+		if !ob.put(parcel{r: r, sessionID: id, res: rs}) {
+			o.add(r, id, rs)
+		}
+	}
+}
+
 // parkedResolutions are the resolutions kept for sessions whose stream is
 // gone; the robot's mutex protects them.
 type parkedResolutions struct {
@@ -235,7 +347,7 @@ func (p *parkedResolutions) add(id string, res *pb.Resolution) {
 	l := p.byID[id]
 	if l == nil {
 		if len(p.byID) >= parkedSessions {
-			p.evict()
+			evictOldest(p.byID, func(l *parkedLog) uint64 { return l.used })
 		}
 		l = &parkedLog{}
 		p.byID[id] = l
@@ -247,15 +359,16 @@ func (p *parkedResolutions) add(id string, res *pb.Resolution) {
 	l.res = append(l.res, res)
 }
 
-func (p *parkedResolutions) evict() {
+// evictOldest deletes the entry of m with the least used.
+func evictOldest[V any](m map[string]V, used func(V) uint64) {
 	var oldest string
 	var at uint64
-	for id, l := range p.byID {
-		if oldest == "" || l.used < at {
-			oldest, at = id, l.used
+	for k, v := range m {
+		if u := used(v); oldest == "" || u < at {
+			oldest, at = k, u
 		}
 	}
-	delete(p.byID, oldest)
+	delete(m, oldest)
 }
 
 // take returns and forgets the resolutions parked for a session.

@@ -33,6 +33,39 @@ func splitRun(seed uint64) (before, after, fixes []*pb.Sample, cfg *pb.RobotConf
 	return before, after, fixes, cfg
 }
 
+// cameraHeld is a robot fed by an odometry bridge and a camera on two
+// streams, the camera's fixes held (heldCamera).
+type cameraHeld struct {
+	odo, cam             *feed
+	before, after, fixes []*pb.Sample
+	cfg                  *pb.RobotConfig
+	odoResps             []*pb.IngestResponse // the bridge's verdicts
+	held                 map[uint64]uint64    // the camera's held fixes (heldFixes)
+}
+
+// heldCamera creates robots/cart on api from splitRun(seed), opens the
+// bridge's stream and the camera's (with session id session), and applies
+// the motion up to the cut on the first and the fixes on the second.
+func heldCamera(t *testing.T, ctx context.Context, api pb.FusionServiceClient, seed uint64, session string) *cameraHeld {
+	t.Helper()
+	c := &cameraHeld{}
+	c.before, c.after, c.fixes, c.cfg = splitRun(seed)
+	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: c.cfg}); err != nil {
+		t.Fatal(err)
+	}
+	var err error
+	if c.odo, err = openFeed(ctx, api, "robots/cart"); err != nil {
+		t.Fatal(err)
+	}
+	if c.cam, err = openFeed(ctx, api, "robots/cart"); err != nil {
+		t.Fatal(err)
+	}
+	c.cam.session = session
+	c.odoResps = applyAll(t, c.odo, c.before)
+	c.held = heldFixes(t, applyAll(t, c.cam, c.fixes))
+	return c
+}
+
 // applyAll applies samples on f, failing on a refusal; it returns the
 // verdicts.
 func applyAll(t *testing.T, f *feed, samp []*pb.Sample) []*pb.IngestResponse {
@@ -139,22 +172,9 @@ func TestResolutionsReachSender(t *testing.T) {
 	api := dial(t, srv.addr)
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
-	before, after, fixes, cfg := splitRun(31)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
-	odo, err := openFeed(ctx, api, "robots/cart")
-	if err != nil {
-		t.Fatal(err)
-	}
-	cam, err := openFeed(ctx, api, "robots/cart")
-	if err != nil {
-		t.Fatal(err)
-	}
-	odoResps := applyAll(t, odo, before)
-	camResps := applyAll(t, cam, fixes)
-	held := heldFixes(t, camResps)
-	odoResps = append(odoResps, applyAll(t, odo, after)...)
+	c := heldCamera(t, ctx, api, 31, "")
+	odo, cam, held := c.odo, c.cam, c.held
+	odoResps := append(c.odoResps, applyAll(t, odo, c.after)...)
 	// The bridge's own held inputs (IMU headings stamped ahead of the
 	// odometry), decided by its own odometry, and nothing else.
 	checkResolutions(t, inlineResolutions(odoResps), heldOf(odoResps))
@@ -202,27 +222,14 @@ func TestResolutionsKeptForSession(t *testing.T) {
 	api := dial(t, srv.addr)
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
-	before, after, fixes, cfg := splitRun(32)
-	if _, err := api.CreateRobot(ctx, &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
-		t.Fatal(err)
-	}
-	odo, err := openFeed(ctx, api, "robots/cart")
-	if err != nil {
-		t.Fatal(err)
-	}
-	cam, err := openFeed(ctx, api, "robots/cart")
-	if err != nil {
-		t.Fatal(err)
-	}
-	cam.session = "camera-7f3a"
-	odoResps := applyAll(t, odo, before)
+	c := heldCamera(t, ctx, api, 32, "camera-7f3a")
+	odo, cam, held, fixes := c.odo, c.cam, c.held, c.fixes
 	half := len(fixes) / 2
-	held := heldFixes(t, applyAll(t, cam, fixes))
 	// The stream ends (the service has seen the end when close returns).
 	if err := cam.close(); err != nil {
 		t.Fatal(err)
 	}
-	odoResps = append(odoResps, applyAll(t, odo, after)...)
+	odoResps := append(c.odoResps, applyAll(t, odo, c.after)...)
 	checkResolutions(t, inlineResolutions(odoResps), heldOf(odoResps))
 	again, err := openFeed(ctx, api, "robots/cart")
 	if err != nil {
@@ -273,5 +280,42 @@ func TestParkedBounds(t *testing.T) {
 	}
 	if p.take("a") != nil {
 		t.Error("taken twice")
+	}
+}
+
+// TestOrphansBound: the resolutions of deleted robots are kept for the
+// orphanRobots robots most recently given one; a robot's are collected
+// once, by its session.
+func TestOrphansBound(t *testing.T) {
+	var o orphans
+	robots := make([]*robot, orphanRobots+1)
+	for k := range robots {
+		robots[k] = &robot{name: fmt.Sprintf("robots/r%d", k), deleted: true}
+		o.add(robots[k], "s", &pb.Resolution{Sequence: uint64(k + 1)})
+	}
+	if int(o.n.Load()) != orphanRobots {
+		t.Fatalf("%d robots kept, want %d", o.n.Load(), orphanRobots)
+	}
+	got := func(name, sid string) []*pb.Resolution {
+		ob := newOutbox()
+		o.collect(name, sid, ob)
+		var out []*pb.Resolution
+		resps := ob.drain()
+		for k := range resps {
+			out = append(out, resps[k].Resolved...)
+		}
+		return out
+	}
+	if len(got("robots/r0", "s")) != 0 {
+		t.Error("the robot given one longest ago was kept")
+	}
+	if len(got("robots/r1", "other")) != 0 {
+		t.Error("collected by another session")
+	}
+	if r := got("robots/r1", "s"); len(r) != 1 || r[0].GetSequence() != 2 {
+		t.Errorf("collected %v, want robots/r1's resolution of input 2", r)
+	}
+	if len(got("robots/r1", "s")) != 0 || int(o.n.Load()) != orphanRobots-1 {
+		t.Errorf("collected twice, or still counted (%d robots)", o.n.Load())
 	}
 }

@@ -147,6 +147,9 @@ type Server struct {
 	verifying  sync.WaitGroup
 	verifyCtx  context.Context
 	stopVerify context.CancelFunc
+	// orphans keeps deleted robots' resolutions for sessions whose stream
+	// was gone (resolutions.go).
+	orphans orphans
 }
 
 // robot is one robot and everything attached to it.
@@ -679,6 +682,7 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
+	r.resolveDeleted(&s.orphans)
 	quarantined := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED
 	switch {
 	case quarantined && r.journal != nil:
@@ -756,11 +760,11 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	err := t.takeBatches(ctx)
 	if err == nil {
 		// The client closed its side: what is pending still goes out.
-		if rest := ob.close(false); len(rest) > 0 {
+		if rest := ob.close(false, nil); len(rest) > 0 {
 			_, err = snd.send(ctx, rest)
 		}
 	} else {
-		ob.close(true)
+		ob.close(true, &s.orphans)
 	}
 	close(snd.out)
 	if serr := <-sendErr; err == nil {
@@ -1077,6 +1081,20 @@ func refuse(out *encodedResponse, clientSeq uint64, code codes.Code, reason stri
 	}
 }
 
+// refuseMalformed makes out the refusal of a request the codec could not
+// take (arrivedRequest.malformed): RESOURCE_EXHAUSTED, REFUSAL_LIMIT for
+// one past -max-message-bytes, otherwise INVALID_ARGUMENT,
+// REFUSAL_MALFORMED.
+func refuseMalformed(out *encodedResponse, clientSeq uint64, err error) {
+	if big, ok := err.(tooLargeError); ok {
+		refuse(out, clientSeq, codes.ResourceExhausted, big.Error()+"; nothing was taken")
+		return
+	}
+	refuse(out, clientSeq, codes.InvalidArgument,
+		fmt.Sprintf("request: not a valid reckon.v1.IngestRequest encoding (%v); nothing was taken", err))
+	out.Refusal = pb.Refusal_REFUSAL_MALFORMED
+}
+
 // ingest applies one sample (ReseedRobot and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
 	req := &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
@@ -1114,10 +1132,8 @@ func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) 
 	sc.out = nil
 	for i := 0; i < len(batch); {
 		if err := batch[i].malformed; err != nil {
-			s.opt.Metrics.refused(codes.InvalidArgument)
-			refuse(&out[i], batch[i].GetClientSequence(), codes.InvalidArgument,
-				fmt.Sprintf("request: not a valid reckon.v1.IngestRequest encoding (%v); nothing was taken", err))
-			out[i].Refusal = pb.Refusal_REFUSAL_MALFORMED
+			refuseMalformed(&out[i], batch[i].GetClientSequence(), err)
+			s.opt.Metrics.refused(codes.Code(out[i].StatusCode))
 			i++
 			continue
 		}
@@ -1149,6 +1165,9 @@ type taking struct {
 // and the pose for the watchers; then the metrics.
 func (s *Server) ingestRun(run []*arrivedRequest, out []encodedResponse, ob *outbox, sc *scratch) {
 	start := run[0].arrived // ingestStream set it
+	// Resolutions of a deleted robot of the name kept for the session go
+	// out after the run's verdicts, whatever the name names now.
+	s.orphans.collect(run[0].GetRobot(), run[0].GetSessionId(), ob)
 	r, err := s.lookupFrom(run[0].GetRobot(), sc)
 	if err != nil {
 		st := status.Convert(err)
@@ -1271,6 +1290,7 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
 			s.opt.Metrics.refused(le.code)
 			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
+			out[k].Field = le.field
 			continue
 		}
 		sid := req.GetSessionId()

@@ -236,7 +236,16 @@ func (c *Client) StartRun(ctx context.Context, robot, bootID string, run uint64,
 // session sent it, otherwise in a response carrying only resolutions
 // (OnlyResolutions). While no stream of the session is open, the service
 // keeps them for its id (within bounds: IngestResponse.resolved) and sends
-// them after the first response of a stream opened with Resume.
+// them after the first response of a stream opened with Resume. A robot
+// deleted while it holds a sample resolves it VERDICT_INVALID,
+// REFUSAL_ROBOT_DELETED.
+//
+// A request larger than the service's -max-message-bytes (64 KiB by
+// default) is refused alone, VERDICT_INVALID, status RESOURCE_EXHAUSTED,
+// REFUSAL_LIMIT, the reason naming its size and the limit; the stream goes
+// on. One past twice the limit ends the stream (Recv returns
+// RESOURCE_EXHAUSTED): open another with Resume and resend with SendAs
+// what has no verdict, without it.
 type Session struct {
 	robot  string
 	id     string

@@ -244,6 +244,7 @@ var noRefusal = pb.Refusal(fusion.ProtoOf(refusalLabels, fusion.RefusalOf(nil)))
 // serviceRefusals are the refusals only the service gives, beyond the
 // robot's (fusion.RefusalLabels); their Go values are past the robot's.
 var serviceRefusals = []fusion.Label[fusion.Refusal]{
+	{Value: fusion.Refusal(252), Name: "robot_deleted", Proto: int32(pb.Refusal_REFUSAL_ROBOT_DELETED)},
 	{Value: fusion.Refusal(253), Name: "quarantined", Proto: int32(pb.Refusal_REFUSAL_QUARANTINED)},
 	{Value: fusion.Refusal(254), Name: "not_journaled", Proto: int32(pb.Refusal_REFUSAL_NOT_JOURNALED)},
 	{Value: fusion.Refusal(255), Name: "limit", Proto: int32(pb.Refusal_REFUSAL_LIMIT)},

@@ -26,6 +26,8 @@ import (
 	"google.golang.org/grpc/keepalive"
 	"google.golang.org/grpc/metadata"
 	"google.golang.org/grpc/reflection"
+	reflectionv1 "google.golang.org/grpc/reflection/grpc_reflection_v1"
+	reflectionv1alpha "google.golang.org/grpc/reflection/grpc_reflection_v1alpha"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
@@ -64,7 +66,8 @@ type Config struct {
 	// 1024).
 	MaxStreams uint32
 	// MaxMessageBytes bounds one received message (default
-	// server.DefaultMaxMessageBytes; see server.ServiceOptions for its limit).
+	// server.DefaultMaxMessageBytes; see server.ServiceOptions for its limit
+	// and how a larger one is refused).
 	MaxMessageBytes int
 	// ShutdownGrace bounds the graceful stop before a hard stop (5 s).
 	ShutdownGrace time.Duration
@@ -308,8 +311,13 @@ func newGRPCServer(srv *server.Server, opts []grpc.ServerOption) (*grpc.Server, 
 	hs := health.NewServer()
 	hs.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
 	hs.SetServingStatus(pb.FusionService_ServiceDesc.ServiceName, healthpb.HealthCheckResponse_SERVING)
-	healthpb.RegisterHealthServer(gs, hs)
-	reflection.Register(gs)
+	// Registered as reflection.Register and healthpb.RegisterHealthServer
+	// do, with malformed requests answered INVALID_ARGUMENT rather than
+	// grpc-go's INTERNAL.
+	server.RegisterChecked(gs, &healthpb.Health_ServiceDesc, hs)
+	ro := reflection.ServerOptions{Services: gs}
+	server.RegisterChecked(gs, &reflectionv1.ServerReflection_ServiceDesc, reflection.NewServerV1(ro))
+	server.RegisterChecked(gs, &reflectionv1alpha.ServerReflection_ServiceDesc, reflection.NewServer(ro))
 	return gs, hs
 }
 

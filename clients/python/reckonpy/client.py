@@ -175,7 +175,12 @@ class IngestSession:
     with send_as(seq, sample). A sample answered "invalid" with status_code
     14 (UNAVAILABLE: the robot paused, as when its journal's disk is full,
     or its journal not written) was not taken: send it again, with send_as
-    and its own number, once the robot serves (get_robot's state).
+    and its own number, once the robot serves (get_robot's state). One
+    answered "invalid" with status_code 8 (RESOURCE_EXHAUSTED) and a reason
+    naming -max-message-bytes was larger than the service takes (64 KiB by
+    default): the stream goes on; only a request past twice the limit ends
+    it. A sample held when its robot is deleted is decided "invalid", its
+    reason saying the robot was deleted.
 
     send() and send_as() wait while MAX_QUEUED requests wait to be sent,
     and raise the stream's grpc.RpcError once the stream has ended (the

@@ -234,6 +234,27 @@ class RobotCallsTest(unittest.TestCase):
             self.assertEqual((v.verdict, v.status_code), ("invalid", code), v.reason)
             self.assertGreater(v.sequence, 0)
 
+    def test_oversized_sample_refused_alone(self):
+        # A sample past reckond's -max-message-bytes (64 KiB) is refused as
+        # its own verdict (8, RESOURCE_EXHAUSTED, naming its size and the
+        # limit) and the stream goes on: the odometry after it is taken.
+        # Before, gRPC's own limit ended the whole stream.
+        self.client.create_robot("cart-m", support.cart_config())
+        odometry = [s for s in support.read_samples() if s.WhichOneof("sample") == "odometry"][:20]
+        cov = reckonpy.diag(0.01, 0.01, 0.01)
+        with self.client.ingest("cart-m") as session:
+            collector = support.Collector(session)
+            for s in odometry[:10]:
+                session.send(s)
+            big = session.send(reckonpy.pose_fix(odometry[9].odometry.stamp_ns, "c" * 70_000, 0.0, 0.0, 0.0, cov))
+            for s in odometry[10:]:
+                session.send(s)
+        verdicts = {v.client_sequence: v for v in collector.finish()}
+        v = verdicts.pop(big)
+        self.assertEqual((v.verdict, v.status_code, v.sequence), ("invalid", 8, 0))
+        self.assertIn("exceeds the limit of 65536 (-max-message-bytes)", v.reason)
+        self.assertEqual([v.verdict for v in verdicts.values()], ["applied"] * 20)
+
     def test_unknown_robot(self):
         with self.assertRaises(grpc.RpcError) as ctx:
             self.client.statistics("nobody")

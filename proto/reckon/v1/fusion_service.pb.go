@@ -53,7 +53,8 @@ const (
 	// The service could not journal it, or the robot is paused (its
 	// journal's disk is full): not applied, resend (status 14).
 	Refusal_REFUSAL_NOT_JOURNALED Refusal = 11
-	// Past one of the service's limits (a string's length).
+	// Past one of the service's limits (a string's length, status 3; the
+	// request's size, status 8).
 	Refusal_REFUSAL_LIMIT Refusal = 12
 	// A run start that does not start the next run: its run number is not
 	// the current run's plus one, or its boot id is the current run's.
@@ -65,6 +66,10 @@ const (
 	// The robot is quarantined (Robot.state_detail says why): it takes no
 	// input until it is deleted, or restored by a restart (status 9).
 	Refusal_REFUSAL_QUARANTINED Refusal = 15
+	// The robot was deleted while the input was held waiting for odometry
+	// (only in a Resolution): it was never applied; the journal, set aside,
+	// keeps it.
+	Refusal_REFUSAL_ROBOT_DELETED Refusal = 16
 )
 
 // Enum value maps for Refusal.
@@ -86,6 +91,7 @@ var (
 		13: "REFUSAL_RUN_OUT_OF_ORDER",
 		14: "REFUSAL_REPEATED",
 		15: "REFUSAL_QUARANTINED",
+		16: "REFUSAL_ROBOT_DELETED",
 	}
 	Refusal_value = map[string]int32{
 		"REFUSAL_UNSPECIFIED":        0,
@@ -104,6 +110,7 @@ var (
 		"REFUSAL_RUN_OUT_OF_ORDER":   13,
 		"REFUSAL_REPEATED":           14,
 		"REFUSAL_QUARANTINED":        15,
+		"REFUSAL_ROBOT_DELETED":      16,
 	}
 )
 
@@ -935,9 +942,15 @@ type IngestResponse struct {
 	// the robot, even a refused one, collects them); a sample sent without a
 	// session_id loses it with its stream. A retried sample is answered with
 	// its response as first sent. A held sample of a robot that is deleted
-	// before deciding it gets no resolution. The journal records, in the
+	// before deciding it is resolved when the robot is deleted:
+	// VERDICT_INVALID, REFUSAL_ROBOT_DELETED, naming the robot; while its
+	// sending stream is gone, this resolution and those kept for the robot's
+	// sessions are kept by the robot's name (of the 16 robots most recently
+	// deleted with some) and sent on the next stream that sends a request
+	// naming it with that session_id. The journal records, in the
 	// deciding sample's response, every resolution it caused, without
-	// client_sequence.
+	// client_sequence (a deletion's resolutions are in no record: the
+	// journal's closing record says the robot was deleted).
 	Resolved []*Resolution `protobuf:"bytes,7,rep,name=resolved,proto3" json:"resolved,omitempty"`
 	// Notable moments this sample caused.
 	Events []*FusionEvent `protobuf:"bytes,8,rep,name=events,proto3" json:"events,omitempty"`
@@ -948,7 +961,8 @@ type IngestResponse struct {
 	// a string past its limit, -max-string-bytes); 5 (NOT_FOUND) for an
 	// unknown or deleted robot, an unknown landmark or sensor; 8
 	// (RESOURCE_EXHAUSTED) when max_held samples already wait for odometry
-	// (REFUSAL_HELD_FULL); 9 (FAILED_PRECONDITION) for a sample the robot's
+	// (REFUSAL_HELD_FULL), or for a request past -max-message-bytes
+	// (REFUSAL_LIMIT); 9 (FAILED_PRECONDITION) for a sample the robot's
 	// configuration does not take, a run start out of order, or a quarantined
 	// robot; 11 (OUT_OF_RANGE) for a stamp outside what the robot takes now:
 	// time running backwards, a sample too old, or one stamped too far past
@@ -2530,7 +2544,7 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"recoveries\x125\n" +
 	"\bdistrust\x18\a \x03(\x0e2\x19.reckon.v1.DistrustReasonR\bdistrust\x12\x12\n" +
 	"\x04held\x18\b \x01(\x05R\x04held\x12%\n" +
-	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xaa\x03\n" +
+	"\x0ewindow_entries\x18\t \x01(\x05R\rwindowEntries*\xc5\x03\n" +
 	"\aRefusal\x12\x17\n" +
 	"\x13REFUSAL_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fREFUSAL_TOO_OLD\x10\x01\x12\x1a\n" +
@@ -2548,7 +2562,8 @@ const file_reckon_v1_fusion_service_proto_rawDesc = "" +
 	"\rREFUSAL_LIMIT\x10\f\x12\x1c\n" +
 	"\x18REFUSAL_RUN_OUT_OF_ORDER\x10\r\x12\x14\n" +
 	"\x10REFUSAL_REPEATED\x10\x0e\x12\x17\n" +
-	"\x13REFUSAL_QUARANTINED\x10\x0f*\x86\x01\n" +
+	"\x13REFUSAL_QUARANTINED\x10\x0f\x12\x19\n" +
+	"\x15REFUSAL_ROBOT_DELETED\x10\x10*\x86\x01\n" +
 	"\aVerdict\x12\x17\n" +
 	"\x13VERDICT_UNSPECIFIED\x10\x00\x12\x13\n" +
 	"\x0fVERDICT_APPLIED\x10\x01\x12\x10\n" +

@@ -44,7 +44,10 @@ const (
 // answers UNAUTHENTICATED without it. A request whose bytes are not a
 // valid encoding of its message (a string that is not UTF-8, a field cut
 // short) is INVALID_ARGUMENT naming the field and changes nothing; on
-// Ingest it is that request's verdict (REFUSAL_MALFORMED).
+// Ingest it is that request's verdict (REFUSAL_MALFORMED). A request past
+// the service's size limit (-max-message-bytes) is RESOURCE_EXHAUSTED
+// naming its size and the limit, and changes nothing; on Ingest it is that
+// request's verdict (REFUSAL_LIMIT).
 type FusionServiceClient interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
@@ -72,8 +75,11 @@ type FusionServiceClient interface {
 	// (IngestResponse.status_code). So is a request whose bytes are not an
 	// IngestRequest (a string that is not UTF-8, a field cut short):
 	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
-	// far as the bytes give it (else 0). A message past the service's size limit
-	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
+	// far as the bytes give it (else 0). So is a request past the service's
+	// size limit (-max-message-bytes): RESOURCE_EXHAUSTED, REFUSAL_LIMIT, the
+	// reason naming its size and the limit, answering its client_sequence as
+	// far as its first KiB gives it. Only a message past twice the limit ends
+	// the stream, with RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
@@ -248,7 +254,10 @@ func (c *fusionServiceClient) StartRun(ctx context.Context, in *StartRunRequest,
 // answers UNAUTHENTICATED without it. A request whose bytes are not a
 // valid encoding of its message (a string that is not UTF-8, a field cut
 // short) is INVALID_ARGUMENT naming the field and changes nothing; on
-// Ingest it is that request's verdict (REFUSAL_MALFORMED).
+// Ingest it is that request's verdict (REFUSAL_MALFORMED). A request past
+// the service's size limit (-max-message-bytes) is RESOURCE_EXHAUSTED
+// naming its size and the limit, and changes nothing; on Ingest it is that
+// request's verdict (REFUSAL_LIMIT).
 type FusionServiceServer interface {
 	// Creates a robot from a configuration. INVALID_ARGUMENT for a bad
 	// robot_id or configuration (naming the field), ALREADY_EXISTS for a name
@@ -276,8 +285,11 @@ type FusionServiceServer interface {
 	// (IngestResponse.status_code). So is a request whose bytes are not an
 	// IngestRequest (a string that is not UTF-8, a field cut short):
 	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
-	// far as the bytes give it (else 0). A message past the service's size limit
-	// (-max-message-bytes) ends it with RESOURCE_EXHAUSTED (grpc-go's own).
+	// far as the bytes give it (else 0). So is a request past the service's
+	// size limit (-max-message-bytes): RESOURCE_EXHAUSTED, REFUSAL_LIMIT, the
+	// reason naming its size and the limit, answering its client_sequence as
+	// far as its first KiB gives it. Only a message past twice the limit ends
+	// the stream, with RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error

@@ -110,7 +110,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&lim.MaxIngestStreams, "max-ingest-streams", 2048, "open ingest streams in all")
 	fs.IntVar(&lim.MaxConnections, "max-connections", 2048, "open gRPC connections in all; one more is closed at once")
 	fs.IntVar(&lim.MaxHTTPConnections, "max-http-connections", 64, "open connections of each HTTP listener (-metrics-listen, -view), each on its own; one more is closed at once; more than -max-viewers")
-	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message accepted (at most 2 MiB, half a journal record)")
+	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message taken: a larger one is refused alone, one past twice this ends its stream (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
 	fs.Var(robots, "robot", "create robot ID from a YAML configuration if the journal does not restore it; a restored robot keeps its journal's, and a differing file is logged (repeatable)")

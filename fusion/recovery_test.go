@@ -341,12 +341,25 @@ func TestRecoveryKeepsBiasCorrelation(t *testing.T) {
 // mean NEES of 4.41 here (one run 38): two dozen fixes carried over seconds
 // of the same odometry shrank its error as if it were a fresh one each time.
 func TestRelocationCovarianceHonest(t *testing.T) {
+	relocatedNEESInBand(t, func(k int) fusiontest.Scenario {
+		return fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(300 + k), DurationS: 40,
+			Errors: fusiontest.Errors{ForwardScale: -0.08, TurnScale: 0.12},
+			Bump:   &fusiontest.Bump{AtS: 20 + 0.37*float64(k%7), DXM: 0.4, DYM: -0.3, DRad: 0.2}}
+	})
+}
+
+// relocatedNEESInBand runs 40 bumped scenarios (scenario(k) for k from 0)
+// under their true model, takes the NEES of the pose the first recovery
+// after the bump relocates against the truth at its stamp, and checks
+// that its mean over the runs lies inside the two-sided 95% band of the
+// chi-square with 3 dof per run (Bar-Shalom, Li and Kirubarajan 2001,
+// sec. 5.4.2; quantiles from gonum stat/distuv).
+func relocatedNEESInBand(t *testing.T, scenario func(k int) fusiontest.Scenario) {
+	t.Helper()
 	var sum float64
 	runs := 0
 	for k := 0; k < 40; k++ {
-		sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(300 + k), DurationS: 40,
-			Errors: fusiontest.Errors{ForwardScale: -0.08, TurnScale: 0.12},
-			Bump:   &fusiontest.Bump{AtS: 20 + 0.37*float64(k%7), DXM: 0.4, DYM: -0.3, DRad: 0.2}}
+		sc := scenario(k)
 		s := fusiontest.New(sc)
 		r, err := fusion.New(s.TrueModelConfig())
 		if err != nil {
@@ -577,53 +590,9 @@ func TestRenamedLandmarksNotAMove(t *testing.T) {
 // fix, as relocation did until session 29, the survey error shrank with
 // the number of fixes: a mean NEES of 18.22 here.
 func TestRelocationSharesSurveyError(t *testing.T) {
-	var sum float64
-	runs := 0
-	for k := 0; k < 40; k++ {
-		sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(400 + k), DurationS: 30,
+	relocatedNEESInBand(t, func(k int) fusiontest.Scenario {
+		return fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(400 + k), DurationS: 30,
 			Errors: fusiontest.Errors{LandmarkSurveyM: 0.05},
 			Bump:   &fusiontest.Bump{AtS: 15 + 0.37*float64(k%7), DXM: 0.5, DYM: -0.3, DRad: 0.2}}
-		s := fusiontest.New(sc)
-		r, err := fusion.New(s.TrueModelConfig())
-		if err != nil {
-			t.Fatal(err)
-		}
-		found := false
-		truth := map[int64]estimator.Pose{}
-		for in, ok := s.Next(); ok && !found; in, ok = s.Next() {
-			truth[in.StampNs()] = in.Truth
-			res := fusiontest.Feed(r, &in)
-			for _, e := range res.Events {
-				if e.Kind != fusion.EventMoveRecovered || !in.Bumped {
-					continue
-				}
-				p, err := r.PoseAt(e.StampNs)
-				if err != nil {
-					t.Fatal(err)
-				}
-				tr, ok := truth[e.StampNs]
-				if !ok {
-					t.Fatalf("seed %d: no input stamped at the recovery's %d ns", sc.Seed, e.StampNs)
-				}
-				nees, err := estimator.PoseNEES(p.Pose, &p.Cov, tr)
-				if err != nil {
-					t.Fatal(err)
-				}
-				t.Logf("seed %d: %s, NEES %.2f", sc.Seed, e.Detail, nees)
-				sum += nees
-				runs++
-				found = true
-			}
-		}
-	}
-	if runs < 30 {
-		t.Fatalf("only %d of 40 runs recovered after the bump", runs)
-	}
-	chi := distuv.ChiSquared{K: float64(3 * runs)}
-	lo, hi := chi.Quantile(0.025)/float64(runs), chi.Quantile(0.975)/float64(runs)
-	mean := sum / float64(runs)
-	t.Logf("%d relocations: mean NEES %.2f, band [%.2f, %.2f]", runs, mean, lo, hi)
-	if mean < lo || mean > hi {
-		t.Errorf("relocated pose: mean NEES %.2f over %d runs outside the 95%% band [%.2f, %.2f]", mean, runs, lo, hi)
-	}
+	})
 }

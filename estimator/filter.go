@@ -717,7 +717,21 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 	if m.Kind == KindIMUHeading && f.layout.gyro >= 0 {
 		return f.updateGyro(m, gate)
 	}
-	return f.update(m, gate)
+	return f.update(m, gate, nil)
+}
+
+// UpdateRepeat is Update with the covariance extra (m.Kind.Dim() square,
+// stride 3) added to the noise of the gain and the Joseph form, not to the
+// NIS or the gate: the noise of a measurement that repeats part of earlier
+// ones' error carries less information than its covariance says, while
+// its own innovation is still distributed with its covariance (fusion's
+// per-landmark correlated errors; DEVELOPERS.md, "Design: Sensors"). Not
+// for IMU headings.
+func (f *Filter) UpdateRepeat(m *Measurement, gate Gate, extra *[9]float64) (Outcome, error) {
+	if m.Kind == KindIMUHeading {
+		return Outcome{Dim: m.Kind.Dim()}, fmt.Errorf("estimator: UpdateRepeat of an IMU heading")
+	}
+	return f.update(m, gate, extra)
 }
 
 // updateGyro applies an IMU heading z on a layout with a gyro scale g
@@ -750,7 +764,7 @@ func (f *Filter) updateGyro(m *Measurement, gate Gate) (Outcome, error) {
 		f.GyroTurn(u)
 		f.st.imuTurn = 0
 	}
-	out, err := f.update(m, gate)
+	out, err := f.update(m, gate, nil)
 	if err != nil || out.Gated {
 		f.st.CopyFrom(&f.unturned)
 		return out, err
@@ -774,8 +788,7 @@ const maxIMUWheel = 1e5
 // keeps its whole turns (the gyro scale's error over them is far below
 // half a turn).
 func (s *State) imuDelta(z float64) float64 {
-	d := Wrap(z - s.imuRef)
-	return d + 2*math.Pi*math.Round((s.imuWheel-d)/(2*math.Pi))
+	return Unwrap(Wrap(z-s.imuRef), s.imuWheel)
 }
 
 // GyroStep returns the turn u by which an IMU heading z (wrapped) of
@@ -853,8 +866,9 @@ func (s *State) GyroTurn(l *Layout, dpsi float64) {
 	P[o*stride+o] = poo
 }
 
-// update is Update without the gyro scale's turn.
-func (f *Filter) update(m *Measurement, gate Gate) (Outcome, error) {
+// update is Update without the gyro scale's turn; extra, if not nil, is
+// UpdateRepeat's.
+func (f *Filter) update(m *Measurement, gate Gate, extra *[9]float64) (Outcome, error) {
 	d := m.Kind.Dim()
 	out := Outcome{Dim: d}
 	var v [3]float64
@@ -888,6 +902,18 @@ func (f *Filter) update(m *Measurement, gate Gate) (Outcome, error) {
 		}
 		if !cholesky(f.s[:], f.l[:], d, measStride) {
 			return out, fmt.Errorf("re-weighted innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
+		}
+	}
+	if extra != nil {
+		// S = H P H^T + R / w + extra, for the gain alone.
+		for i := 0; i < d; i++ {
+			for j := 0; j < d; j++ {
+				f.r[i*3+j] += extra[i*3+j]
+				f.s[i*3+j] += extra[i*3+j]
+			}
+		}
+		if !cholesky(f.s[:], f.l[:], d, measStride) {
+			return out, fmt.Errorf("repeat-inflated innovation covariance of %s: %w", m.Kind, ErrNotPositiveDefinite)
 		}
 	}
 	f.gain(d, m.Hold)

@@ -387,7 +387,8 @@ func TestMeasurementConformance(t *testing.T) {
 // Kirubarajan, 2001, sections 5.2 and 5.4); with a robust model R becomes
 // R / w in S, K and P' (w of the raw NIS), and the gain rows of the bias
 // and mount states (consider states, Schmidt 1966) are zero; a landmark
-// block's are not.
+// block's are not. With UpdateRepeat (half the fixes) the extra noise
+// joins R / w in S, K and P' but not the NIS.
 func TestUpdateMatchesGonum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(7, 7))
 	for _, c := range conformanceCases(rng) {
@@ -441,6 +442,23 @@ func TestUpdateMatchesGonum(t *testing.T) {
 			w = math.Min(1, (m.Robust.Param+float64(d)-2)/(m.Robust.Param+nis))
 		}
 		R.Scale(1/w, R)
+		var extra [9]float64
+		repeat := m.Kind != KindIMUHeading && rng.IntN(2) == 0
+		if repeat {
+			// A repeat's extra noise: positive definite, up to 10 times R.
+			for i := 0; i < d; i++ {
+				extra[i*3+i] = 10 * rng.Float64() * m.R[i*3+i]
+				for j := 0; j < i; j++ {
+					c := 0.3 * math.Sqrt(extra[i*3+i]*extra[j*3+j])
+					extra[i*3+j], extra[j*3+i] = c, c
+				}
+			}
+			for i := 0; i < d; i++ {
+				for j := 0; j < d; j++ {
+					R.Set(i, j, R.At(i, j)+extra[i*3+j])
+				}
+			}
+		}
 		S.Mul(H, &pht)
 		S.Add(&S, R)
 		if err := Sinv.Inverse(&S); err != nil {
@@ -476,7 +494,13 @@ func TestUpdateMatchesGonum(t *testing.T) {
 		krk.Mul(&kr, K.T())
 		want.Add(&want, &krk)
 
-		out, err := f.Update(&m, NoGate())
+		var out Outcome
+		var err error
+		if repeat {
+			out, err = f.UpdateRepeat(&m, NoGate(), &extra)
+		} else {
+			out, err = f.Update(&m, NoGate())
+		}
 		if err != nil {
 			t.Fatal(err)
 		}

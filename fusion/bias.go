@@ -93,13 +93,14 @@ func (w *biasWindow) check(p float64) bool {
 func (r *Robot) fixApplied(at int) {
 	r.trust.noteApplied()
 	e := &r.live()[at]
-	if e.meas.Bias != [3]int{} || e.meas.LandmarkError != 0 || e.meas.LandmarkVar != 0 {
+	if _, own := r.perLandmarkSensor(e); own || e.meas.Bias != [3]int{} || e.meas.LandmarkError != 0 || e.meas.LandmarkVar != 0 {
 		// A correlated sensor's fixes share their error by design, so
 		// their scores are not independent and their sum is no
 		// chi-square; the offset the test looks for is what the sensor's
 		// bias block models. Its fixes stay in the NIS window and the
 		// gated count. So do those of a mapped landmark with survey
-		// error: every fix of the landmark shares it.
+		// error, and of a sensor whose correlated part is per landmark:
+		// every fix of the landmark shares it.
 		return
 	}
 	g, info, ok := fixScore(&r.before(at).est, &e.meas)

@@ -53,6 +53,7 @@ func TestConfigValidate(t *testing.T) {
 		{"correlated fraction", func(c *Config) { c.Sensors[0].CorrelatedFraction = 1 }, "sensors[0].correlated_fraction"},
 		{"correlated without time", func(c *Config) { c.Sensors[0].CorrelationTimeS = 0 }, "sensors[0].correlation_time_s"},
 		{"correlated without cov", func(c *Config) { c.Sensors[1].CorrelatedFraction, c.Sensors[1].CorrelationTimeS = 0.5, 2 }, "sensors[1].covariance"},
+		{"per-landmark correlation of a position sensor", func(c *Config) { c.Sensors[1].CorrelatedPerLandmark = true }, "sensors[1].correlated_per_landmark"},
 		{"robust loss", func(c *Config) { c.Sensors[1].Robust = 7 }, "sensors[1].robust"},
 		{"robust parameter", func(c *Config) { c.Sensors[1].RobustParameter = -1 }, "sensors[1].robust_parameter"},
 		{"student-t with one degree of freedom", func(c *Config) {

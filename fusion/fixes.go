@@ -151,7 +151,11 @@ func (r *Robot) applyMeas(e *entry) error {
 		return err
 	}
 	var err error
-	e.out, err = r.f.Update(&e.meas, r.gateFor(e))
+	if extra, ok := r.repeatExtra(e); ok {
+		e.out, err = r.f.UpdateRepeat(&e.meas, r.gateFor(e), &extra)
+	} else {
+		e.out, err = r.f.Update(&e.meas, r.gateFor(e))
+	}
 	if e.seeded && (err != nil || e.out.Gated) {
 		r.unseed(e)
 	}

@@ -92,10 +92,23 @@ func (r *Robot) imuGate() float64 {
 	return 1
 }
 
+// noteIMU notes the IMU heading of an accepted odometry sample o in
+// rotation mode, the start of the next interval's IMU turn. A body step
+// without one leaves the IMU's heading at its end unknown: the next wheel
+// sample's interval then starts no IMU turn and is its reference
+// (referenceIMU, a gap in odometry). Kept, the heading before the step
+// started it, and the IMU's turn over the step entered the wheel sample's
+// turn row too, counted twice (0.09 rad off after 0.1 s of body steps
+// in a spin at 1 rad/s, and after 0.3 s every later wheel sample refused
+// as turning past max_turn_rate_rad_per_s; TestRotationIMUAcrossBodySteps).
 func (r *Robot) noteIMU(o *Odometry) {
-	if r.cfg.IMU == IMURotation && o.IMUHeadingRad != nil {
+	switch {
+	case r.cfg.IMU != IMURotation:
+	case o.IMUHeadingRad != nil:
 		v := *o.IMUHeadingRad
 		r.lastIMU = &v
+	case o.Step != nil:
+		r.lastIMU = nil
 	}
 }
 

@@ -446,7 +446,9 @@ func ocSimulate(seed uint64, durS float64, e ocErrors) ocRun {
 // by 0.5% over some metres: 2 sigma^2 / L), the map's tape survey as
 // landmark_position_std_m, the camera's spread from a static test as its
 // covariance with the half that a marker keeps from frame to frame as
-// correlated_fraction 0.5 over the README's 1.5 s, and move recovery on.
+// correlated_fraction 0.5 over the README's 1.5 s, each marker's own
+// (correlated_per_landmark, as the README tells a user of fiducial
+// markers), and move recovery on.
 // The IMU's clock offset is not known to the user and not configured.
 func ocConfig(run *ocRun) fusion.Config {
 	n := fusion.DefaultNoise()
@@ -472,7 +474,7 @@ func ocConfig(run *ocRun) fusion.Config {
 		LandmarkPositionStdM: ocMapStdM,
 		Sensors: []fusion.Sensor{{ID: "rowcam", Kind: fusion.FixLandmark, Mount: estimator.Pose{X: ocCamAheadM},
 			Cov:              []float64{ocRangeStdM * ocRangeStdM, 0, 0, ocBearStdRad * ocBearStdRad},
-			CorrelationTimeS: 1.5, CorrelatedFraction: 0.5}},
+			CorrelationTimeS: 1.5, CorrelatedFraction: 0.5, CorrelatedPerLandmark: true}},
 		Calibration: fusion.Calibration{Scale: true, ForwardScaleVarPerM: 1e-5},
 	}
 }

@@ -1,6 +1,7 @@
 package fusion_test
 
 import (
+	"fmt"
 	"math"
 	"slices"
 	"testing"
@@ -44,6 +45,19 @@ func surveyed(cfg fusion.Config, calibration bool) fusion.Config {
 		cfg.Calibration = fusion.Calibration{Scale: true, ForwardScaleVarPerM: 1e-6, TurnScaleVarPerRad: 1e-6,
 			RateBias: true, RateBiasVarRad2PerS3: 1e-8}
 	}
+	return cfg
+}
+
+// perLandmarkCamera returns cfg with its landmark camera's errors half
+// correlated over 1.5 s, each landmark's own (correlated_per_landmark),
+// and the markers' survey error (3 cm) unless exact is set.
+func perLandmarkCamera(cfg fusion.Config, exact bool) fusion.Config {
+	if !exact {
+		cfg.LandmarkPositionStdM = 0.03
+	}
+	cfg.Sensors = append([]fusion.Sensor(nil), cfg.Sensors...)
+	cam := &cfg.Sensors[0]
+	cam.CorrelationTimeS, cam.CorrelatedFraction, cam.CorrelatedPerLandmark = 1.5, 0.5, true
 	return cfg
 }
 
@@ -191,21 +205,28 @@ func stampOrder(arrival []fusiontest.Input) []fusiontest.Input {
 // an interval.
 func TestLateEqualsStampOrder(t *testing.T) {
 	for _, c := range []struct {
-		sc      fusiontest.Scenario
-		options bool
-		survey  bool
+		sc          fusiontest.Scenario
+		options     bool
+		survey      bool
+		perLandmark int // 1: with the survey error, 2: an exact map
 	}{
-		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, false, false},
-		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false, false},
-		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false, false},
-		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 24, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, true, false},
-		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 25, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true, false},
-		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 26, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true, false},
+		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 21, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, false, false, 0},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 22, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false, false, 0},
+		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 23, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, false, false, 0},
+		{fusiontest.Scenario{Layout: fusiontest.FreeWheelTurn, Seed: 24, IMU: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, OutlierFraction: 0.05, DurationS: 30}, true, false, 0},
+		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 25, IMU: true, Markers: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true, false, 0},
+		{fusiontest.Scenario{Layout: fusiontest.GyroTurn, Seed: 26, Counts: true, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, true, false, 0},
 		// Landmark blocks: three, and one that the markers take in turns.
 		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 27, IMU: true, MarkerCount: 16, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30,
-			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, false, true},
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, false, true, 0},
 		{fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 28, IMU: true, MarkerCount: 16, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30,
-			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, true, true},
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, true, true, 0},
+		// Per-landmark correlated camera errors (markercorr.go): 16
+		// markers taken in turns, so that a marker comes back after its
+		// last fix left the 1 s window, with landmark blocks, and without.
+		{sc: fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 29, IMU: true, MarkerCount: 16, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30,
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}}, perLandmark: 1},
+		{sc: fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, Seed: 30, IMU: true, MarkerCount: 16, LatencyMinS: 0.15, LatencyMaxS: 0.15, DurationS: 30}, perLandmark: 2},
 	} {
 		sc := c.sc
 		name := sc.Layout.String()
@@ -215,9 +236,14 @@ func TestLateEqualsStampOrder(t *testing.T) {
 		if c.survey {
 			name += "/landmark-blocks"
 		}
+		if c.perLandmark > 0 {
+			name += fmt.Sprintf("/per-landmark-%d", c.perLandmark)
+		}
 		t.Run(name, func(t *testing.T) {
 			lateEqualsStampOrder(t, sc, func(cfg fusion.Config) fusion.Config {
 				switch {
+				case c.perLandmark > 0:
+					cfg = perLandmarkCamera(cfg, c.perLandmark == 2)
 				case c.survey:
 					cfg = surveyed(cfg, c.options)
 				case c.options:

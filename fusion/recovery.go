@@ -36,6 +36,11 @@ type candidate struct {
 	keepOffset bool
 	// marker is a pose fix's marker key (markerKey; 0: none named).
 	marker uint32
+	// corrSensor is a landmark fix's sensor (configuration index + 1)
+	// when its correlated part is per landmark (markercorr.go; 0: none),
+	// and corr that part's covariance, f C (range, bearing).
+	corrSensor int32
+	corr       [4]float64
 }
 
 // isLandmark reports whether c is a landmark fix.
@@ -153,6 +158,9 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		c.meas = meas
 		if e.lm != 0 {
 			c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
+		}
+		if si, ok := r.perLandmarkSensor(e); ok {
+			c.setCorr(&r.cfg, si)
 		}
 	} else {
 		st := r.stateThrough(e.t1)

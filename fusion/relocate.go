@@ -568,6 +568,8 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 						e = (e+blk[q*3+p])/2 + ci.meas.R[p*3+q]
 					} else if bp, bq := bias[i][p], bias[j][q]; bp > 0 && bq > 0 {
 						e += st.At(bp, bq)
+					} else {
+						e += ci.sharedWith(cj, p, q)
 					}
 					if v := ci.meas.LandmarkVar; v > 0 && ci.meas.LandmarkX == cj.meas.LandmarkX && ci.meas.LandmarkY == cj.meas.LandmarkY {
 						// One survey error for both: H_l v H_l^T, H_l

@@ -38,6 +38,11 @@ type Robot struct {
 	sensorBias  []int
 	// sensorMount holds each sensor's first mount error state (0: none).
 	sensorMount []int
+	// lmCorr: a sensor's correlated part is per landmark; marks keeps the
+	// last applied fix of each of their landmarks folded into the base
+	// (markercorr.go).
+	lmCorr bool
+	marks  markTable
 
 	f       *estimator.Filter
 	scratch *estimator.Filter
@@ -110,6 +115,7 @@ func New(cfg Config) (*Robot, error) {
 	r := &Robot{cfg: cfg, landmarks: map[string]landmarkRef{}, sensorIndex: map[string]int{}}
 	for i, s := range cfg.Sensors {
 		r.sensorIndex[s.ID] = i
+		r.lmCorr = r.lmCorr || s.perLandmark()
 	}
 	spec, first := cfg.layoutSpec()
 	r.sensorBias, r.sensorMount = first, cfg.mountStates()

@@ -24,7 +24,9 @@ type Odometry struct {
 	Step *estimator.Step
 	// IMUHeadingRad is the IMU's heading at StampNs, if read with the
 	// wheels: an absolute heading update in IMUAbsolute mode, the source of
-	// the turn row in IMURotation mode.
+	// the turn row in IMURotation mode (where a Step without it leaves the
+	// next wheel sample no heading to turn from: that sample is the
+	// reference, its interval a gap).
 	IMUHeadingRad *float64
 }
 

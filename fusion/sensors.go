@@ -67,6 +67,15 @@ type Sensor struct {
 	// CorrelationTimeS seconds, held in a bias block of the state.
 	CorrelationTimeS   float64
 	CorrelatedFraction float64
+	// CorrelatedPerLandmark (landmark sensors with a CorrelatedFraction):
+	// the correlated part is each landmark's own, independent from
+	// landmark to landmark (a fiducial marker's error follows its viewing
+	// geometry), not one error all fixes share. The sensor then has no
+	// bias block: a fix's correlated share counts at its full covariance
+	// for its NIS and gate, and inflated for the gain by the AR(1) factor
+	// of the time since the last applied fix of the same landmark
+	// (DEVELOPERS.md, "Design: Sensors"; markercorr.go).
+	CorrelatedPerLandmark bool
 	// Robust is the robust weighting of the sensor's fixes (none).
 	Robust RobustLoss
 	// RobustParameter is Huber's k in standard deviations (1.345) or the
@@ -266,6 +275,9 @@ func (c *Config) checkSensors() error {
 		if !(s.CorrelationTimeS >= 0) || math.IsInf(s.CorrelationTimeS, 0) {
 			return cfgErr(f+".correlation_time_s", "%v must be a finite time, not negative", s.CorrelationTimeS)
 		}
+		if s.CorrelatedPerLandmark && s.Kind != FixLandmark {
+			return cfgErr(f+".correlated_per_landmark", "is for landmark sensors (their fixes name a landmark); this one gives %s fixes", s.Kind)
+		}
 		if s.CorrelatedFraction > 0 {
 			if s.CorrelationTimeS == 0 {
 				return cfgErr(f+".correlation_time_s", "must be set with a correlated_fraction")
@@ -343,7 +355,7 @@ func (c *Config) layoutSpec() (estimator.LayoutSpec, []int) {
 	first := make([]int, len(c.Sensors))
 	for i := range c.Sensors {
 		s := &c.Sensors[i]
-		if s.CorrelatedFraction > 0 {
+		if s.CorrelatedFraction > 0 && !s.perLandmark() {
 			b := s.biasSpec()
 			spec.Biases = append(spec.Biases, b)
 			first[i] = at
@@ -510,6 +522,15 @@ func (s *Sensor) sensorFix(f *Fix, first, mount int, m *estimator.Measurement) e
 		}
 		if first > 0 {
 			m.Bias[i] = first + comps[i]
+		}
+	}
+	if s.perLandmark() {
+		// No bias block: the correlated share is noise of the fix's own,
+		// in full for its NIS and gate (markercorr.go).
+		var c [9]float64
+		s.correlatedShare(m.Kind, 1, &c)
+		for k := range c {
+			m.R[k] += c[k]
 		}
 	}
 	m.Robust = s.robust()

@@ -14,7 +14,9 @@ import (
 // residual; with four, one slipping wheel can hide in the fit. An absolute
 // IMU sees the turn on its own: over an interval [a, b] between two IMU
 // headings, the wheels' turn W (the window's steps, split by time fraction)
-// and the IMU's heading change D = wrap(z_b - z_a) differ by
+// and the IMU's heading change D, wrap(z_b - z_a) plus the whole turns that
+// bring it nearest W (imuTurn: an IMU silent through more than half a turn
+// keeps them), differ by
 //
 //	delta = D - W,   var(delta) = V_w + V_i,   V_i = R_a + R_b + q_o (b - a) + q_r abs(W) + s_g^2 D^2,
 //
@@ -193,7 +195,7 @@ func (r *Robot) turnDisagreement(a, b turnAnchor, c *wheelSums) (delta, vw, vi, 
 	// leave such stretches alone.
 	w, vw, vc, first := r.wheelTurn(a.stamp, b.stamp, c)
 	dt := float64(b.stamp-a.stamp) * 1e-9
-	d := estimator.Wrap(b.heading - a.heading)
+	d := imuTurn(a, b, w)
 	delta = d - w
 	vi = a.varRad2 + b.varRad2 + r.cfg.Noise.IMUOffsetVarRad2PerS*dt + r.cfg.Noise.IMUOffsetVarRad2PerRad*math.Abs(w) + vc
 	if r.layout.GyroScale() >= 0 {
@@ -287,7 +289,21 @@ func (r *Robot) slipEvent(res *Result, a, b turnAnchor, w, dt, ns, k float64) {
 	r.stats.slips++
 	res.Events = append(res.Events, Event{Kind: EventSlipSuspected, StampNs: b.stamp, Value: ns,
 		Detail: fmt.Sprintf("IMU turned %.3f rad, wheels %.3f rad over %.3f s: chi-square %.1f with 1 degree of freedom; step covariance x %.1f",
-			estimator.Wrap(b.heading-a.heading), w, dt, ns, k)})
+			imuTurn(a, b, w), w, dt, ns, k)})
+}
+
+// imuTurn returns the IMU's turn from anchor a to b: the difference of
+// their wrapped headings, unwrapped by the wheels' turn w over [a, b]
+// (estimator.Unwrap), the estimate's own turn there, as the gyro scale's
+// step unwraps the IMU's turn (estimator.State.GyroStep). Taken wrapped,
+// the turn of an IMU silent through more than half a turn (or of a spin
+// past pi per long comparison, 3.9 rad/s) lost its whole turns, and good
+// wheels were taken for slipping by a whole turn (factor 5e4 to 1e5;
+// TestSlipComparisonIMUSilence). Wheels off the IMU by more than half a
+// turn over [a, b] are compared off by whole turns: a slip of more than
+// half a turn in one interval is seen as a smaller one.
+func imuTurn(a, b turnAnchor, w float64) float64 {
+	return estimator.Unwrap(estimator.Wrap(b.heading-a.heading), w)
 }
 
 // inflateSteps multiplies the covariances of the odometry steps from live

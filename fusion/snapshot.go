@@ -74,10 +74,15 @@ import (
 // turn since of a gyro scale (estimator.State's IMUGyro) in each estimate; a version 19 to 5
 // snapshot has none, and its robots had no gyro scale
 // (calibration.gyro_scale_std is new), so it restores as it was.
-const SnapshotVersion = 20
+// Version 21: for sensors whose correlated error is per landmark
+// (sensors[].correlated_per_landmark, new), the newest fix of each
+// landmark folded out of the window (markTable) and a recovery
+// candidate's sensor; a version 20 to 5 snapshot has neither, and its
+// robots had no such sensors, so it restores as it was.
+const SnapshotVersion = 21
 
 // readsVersion tells whether RestoreSnapshot reads snapshots of version v:
-// this one; 19, whose robots had no gyro scale; 18, whose estimates lack the compensation's consider column; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
+// this one; 20, whose robots had no per-landmark correlated sensor; 19, whose robots had no gyro scale; 18, whose estimates lack the compensation's consider column; 17, whose moments lack the IMU offset; 16, which lacks the steps' slip factors; 15, which lacks the held reseed; 14 and 13, which lack the markers (13 also the sensor records' robust weighting); 12, which lacks the frozen IMU heading; 11, which lacks the slip comparison's long anchor; 10, which lacks the kept counts of a jump; 9, which lacks the landmark blocks and the measurements' mount
 // error states; 8, which lacks the moments and the odometry entries' scrub;
 // 7, which lacks the scrub's block sum; 6, whose recovery candidates lack the white part and the
 // calibration Jacobian of their carried odometry (all of its covariance is
@@ -171,6 +176,10 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		// Absent otherwise, as in snapshots before version 16; present
 		// with key 0 for a reseed at a fix that named no marker.
 		e.uint(45, uint64(r.trust.heldMarker))
+	}
+	if r.marks != (markTable{}) {
+		// Absent otherwise, as in snapshots before version 21.
+		e.message(46, func(e *wenc) { encMarks(e, &r.marks) })
 	}
 	return e.b, nil
 }
@@ -338,6 +347,8 @@ func (r *Robot) decodeField(d *wdec, num protowire.Number) {
 		r.trust.unconfirmed = d.bool(num)
 	case 45:
 		r.trust.held, r.trust.heldMarker = true, d.uint32(num)
+	case 46:
+		d.message(num, func(d *wdec) { decMarks(d, &r.marks) })
 	default:
 		d.fail("unknown field %d", num)
 	}
@@ -391,6 +402,9 @@ func (r *Robot) checkRestored() error {
 		if err := r.checkTable(t); err != nil {
 			return err
 		}
+	}
+	if err := r.checkMarks(); err != nil {
+		return err
 	}
 	for _, s := range states {
 		if s.Size() != r.n {
@@ -1085,6 +1099,9 @@ func encCandidate(e *wenc, c *candidate) {
 	if c.marker != 0 {
 		e.uint(12, uint64(c.marker))
 	}
+	if c.corrSensor != 0 {
+		e.uint(13, uint64(c.corrSensor))
+	}
 }
 
 func decCandidate(d *wdec) candidate {
@@ -1115,6 +1132,8 @@ func decCandidate(d *wdec) candidate {
 			d.doubles(num, c.relD[:])
 		case 12:
 			c.marker = d.uint32(num)
+		case 13:
+			c.corrSensor = int32(d.uint32(num))
 		default:
 			d.fail("candidate: unknown field %d", num)
 		}
@@ -1173,4 +1192,64 @@ func decBias(d *wdec, w *biasWindow) {
 	if len(w.score) == 0 {
 		w.score, w.info = nil, nil
 	}
+}
+
+func encMarks(e *wenc, m *markTable) {
+	lm, sensor, stamp := make([]int64, len(m)), make([]int64, len(m)), make([]int64, len(m))
+	for i := range m {
+		lm[i], sensor[i], stamp[i] = int64(m[i].lm), int64(m[i].sensor), m[i].last
+	}
+	e.ints(1, lm)
+	e.ints(2, sensor)
+	e.ints(3, stamp)
+}
+
+func decMarks(d *wdec, m *markTable) {
+	for num, ok := d.next(); ok; num, ok = d.next() {
+		v := d.intSlice(num)
+		if len(v) != len(m) || num < 1 || num > 3 {
+			d.fail("landmark fixes: field %d of %d values", num, len(v))
+			return
+		}
+		for i := range m {
+			switch num {
+			case 1, 2:
+				if v[i] < 0 || v[i] > math.MaxInt32 {
+					d.fail("landmark fixes: field %d value %d", num, v[i])
+					return
+				}
+				if num == 1 {
+					m[i].lm = int32(v[i])
+				} else {
+					m[i].sensor = int32(v[i])
+				}
+			case 3:
+				m[i].last = v[i]
+			}
+		}
+	}
+}
+
+// checkMarks checks the landmarks and sensors that markTable and the
+// recovery candidates name for per-landmark correlated errors, and sets
+// the candidates' correlated covariance from the configuration.
+func (r *Robot) checkMarks() error {
+	perLandmark := func(si int) bool { return si >= 0 && si < len(r.cfg.Sensors) && r.cfg.Sensors[si].perLandmark() }
+	for i := range r.marks {
+		m := &r.marks[i]
+		if m.lm != 0 && (int(m.lm) > len(r.cfg.Landmarks) || !perLandmark(int(m.sensor))) {
+			return fmt.Errorf("%w: a landmark fix of landmark %d of %d by sensor %d, which is not one with per-landmark correlated errors", ErrSnapshot, m.lm, len(r.cfg.Landmarks), m.sensor)
+		}
+	}
+	for i := range r.cands {
+		c := &r.cands[i]
+		if c.corrSensor == 0 {
+			continue
+		}
+		if !c.isLandmark() || !perLandmark(int(c.corrSensor)-1) {
+			return fmt.Errorf("%w: a recovery candidate of sensor %d, which is not a landmark sensor with per-landmark correlated errors", ErrSnapshot, c.corrSensor-1)
+		}
+		c.setCorr(&r.cfg, int(c.corrSensor)-1)
+	}
+	return nil
 }

@@ -13,8 +13,10 @@ import (
 // for the rest of the run, also with every option on (the fourth case:
 // 9 states and robust, correlated landmark fixes) and with landmark blocks
 // (the sixth and seventh: three blocks, and one that the markers take in
-// turns), and with pose fixes naming their markers, moved by hand (the
-// last).
+// turns), with pose fixes naming their markers, moved by hand (the
+// eighth), and with a landmark camera whose correlated errors are per
+// landmark, moved by hand (the last: landmark fixes folded out of the
+// window weigh later ones, markcorr.go, and candidates wait).
 func TestSnapshotContinuesExactly(t *testing.T) {
 	for k, sc := range []fusiontest.Scenario{
 		{Layout: fusiontest.FreeWheelTurn, IMU: true, Counts: true, Seed: 51, DurationS: 40, OutlierFraction: 0.1, Bump: &fusiontest.Bump{AtS: 25, DXM: 1}},
@@ -25,6 +27,8 @@ func TestSnapshotContinuesExactly(t *testing.T) {
 		{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 55, DurationS: 20, LatencyMinS: 0.15, LatencyMaxS: 0.15, Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}},
 		{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 56, DurationS: 20, LatencyMinS: 0.15, LatencyMaxS: 0.15, Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}},
 		{Layout: fusiontest.FreeWheelTurn, IMU: true, Seed: 58, DurationS: 20, LatencyMinS: 0.02, LatencyMaxS: 0.2, Bump: &fusiontest.Bump{AtS: 11.5, DXM: 1, DRad: 0.3}},
+		{Layout: fusiontest.DriveWheelTurn, IMU: true, MarkerCount: 16, Seed: 29, DurationS: 30, LatencyMinS: 0.15, LatencyMaxS: 0.15,
+			Errors: fusiontest.Errors{LandmarkSurveyM: 0.03}},
 	} {
 		_, ins := collect(sc)
 		if k == 7 {
@@ -38,6 +42,8 @@ func TestSnapshotContinuesExactly(t *testing.T) {
 			cfg = allOptions(cfg)
 		case 5, 6: // three landmark blocks, and one
 			cfg = surveyed(cfg, k == 6)
+		case 8: // per-landmark correlated errors, moved by hand
+			cfg = perLandmarkCamera(cfg, false)
 		}
 		a, _ := fusion.New(cfg)
 		mid := len(ins) * 3 / 5

@@ -436,6 +436,7 @@ func (r *Robot) dropFront(k int) {
 			r.setErr(live[i].seq, nil)
 		}
 	}
+	r.foldMarks(live[:k])
 	r.loadInto(&r.base, &live[k-1].after)
 	for i := range live[:k] {
 		r.freeSlot(&live[i].after)

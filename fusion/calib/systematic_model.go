@@ -240,6 +240,13 @@ func (d *intervalDecoder) take(o *fusion.Odometry) {
 		} else {
 			iv.imu = estimator.Wrap(*o.IMUHeadingRad - imuRef.rad)
 		}
+	}
+	if m.rotation {
+		// A body step's heading too, as the robot notes it: one sent
+		// without leaves the next wheel sample no heading to turn from
+		// (fusion's noteIMU). Kept from before the step, the steps' turn
+		// entered that sample's IMU turn as well
+		// (TestRotationIntervalsAcrossBodySteps).
 		d.prevIMU = headingOf(o)
 	}
 	if !ok || iv.t0 >= iv.t1 {

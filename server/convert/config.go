@@ -131,7 +131,8 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 	for _, s := range cfg.Sensors {
 		ps := &pb.FixSensor{Id: s.ID, Kind: pb.FixKind(fusion.ProtoOf(fixKindLabels, s.Kind)), Mount: poseToProto(s.Mount),
 			LatencyNs: s.LatencyNs, CorrelationTimeS: s.CorrelationTimeS, CorrelatedFraction: s.CorrelatedFraction,
-			Robust: pb.RobustLoss(fusion.ProtoOf(robustLabels, s.Robust)), RobustParameter: s.RobustParameter}
+			Robust: pb.RobustLoss(fusion.ProtoOf(robustLabels, s.Robust)), RobustParameter: s.RobustParameter,
+			CorrelatedPerLandmark: s.CorrelatedPerLandmark}
 		if s.Cov != nil {
 			d := int(math.Round(math.Sqrt(float64(len(s.Cov)))))
 			ps.Covariance = &pb.Covariance{Dimension: uint32(d), Values: append([]float64(nil), s.Cov...)}
@@ -153,8 +154,9 @@ func ConfigToProto(cfg fusion.Config) *pb.RobotConfig {
 // sensorFromProto converts one wire sensor; field is its path.
 func sensorFromProto(s *pb.FixSensor, field string) (fusion.Sensor, error) {
 	out := fusion.Sensor{ID: s.GetId(), Mount: poseFromProto(s.GetMount()), LatencyNs: s.GetLatencyNs(),
-		CorrelationTimeS: s.GetCorrelationTimeS(), CorrelatedFraction: s.GetCorrelatedFraction(), RobustParameter: s.GetRobustParameter(),
-		MountStd: [3]float64{s.GetMountStd().GetXM(), s.GetMountStd().GetYM(), s.GetMountStd().GetHeadingRad()}}
+		CorrelationTimeS: s.GetCorrelationTimeS(), CorrelatedFraction: s.GetCorrelatedFraction(), CorrelatedPerLandmark: s.GetCorrelatedPerLandmark(),
+		RobustParameter: s.GetRobustParameter(),
+		MountStd:        [3]float64{s.GetMountStd().GetXM(), s.GetMountStd().GetYM(), s.GetMountStd().GetHeadingRad()}}
 	k, ok := fusion.ValueOfProto(fixKindLabels, int32(s.GetKind()))
 	if !ok {
 		return out, fusion.FieldErrorf(fusion.ErrConfig, field+".kind", "%d is not pose, position, heading or landmark", s.GetKind())

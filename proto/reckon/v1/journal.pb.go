@@ -346,7 +346,8 @@ type RobotSnapshot struct {
 	Held []*SnapshotEntry `protobuf:"bytes,9,rep,name=held,proto3" json:"held,omitempty"`
 	// The wheels' last cumulative counts, when odometry carries counts.
 	LastCounts []int64 `protobuf:"varint,10,rep,packed,name=last_counts,json=lastCounts,proto3" json:"last_counts,omitempty"`
-	// The IMU heading at newest_ns in IMU rotation mode, radians.
+	// The IMU heading at newest_ns in IMU rotation mode, radians (unset
+	// after a body step that came without one).
 	LastImuHeadingRad *float64 `protobuf:"fixed64,11,opt,name=last_imu_heading_rad,json=lastImuHeadingRad,proto3,oneof" json:"last_imu_heading_rad,omitempty"`
 	// The last arrival sequence number given.
 	Sequence uint64 `protobuf:"varint,12,opt,name=sequence,proto3" json:"sequence,omitempty"`
@@ -443,8 +444,14 @@ type RobotSnapshot struct {
 	// marker, or none, is applied (version 16; absent when no reseed is held,
 	// and in older versions).
 	HeldReseedMarkerKey *uint64 `protobuf:"varint,45,opt,name=held_reseed_marker_key,json=heldReseedMarkerKey,proto3,oneof" json:"held_reseed_marker_key,omitempty"`
-	unknownFields       protoimpl.UnknownFields
-	sizeCache           protoimpl.SizeCache
+	// For the landmarks of sensors whose correlated error is per landmark
+	// (FixSensor.correlated_per_landmark), the newest fix of each among the
+	// inputs folded out of the history window, which weighs the landmark's
+	// next fix (version 21; absent when there is none, and in older
+	// versions, whose robots had no such sensors).
+	LandmarkFixes *SnapshotLandmarkFixes `protobuf:"bytes,46,opt,name=landmark_fixes,json=landmarkFixes,proto3" json:"landmark_fixes,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *RobotSnapshot) Reset() {
@@ -792,6 +799,80 @@ func (x *RobotSnapshot) GetHeldReseedMarkerKey() uint64 {
 	return 0
 }
 
+func (x *RobotSnapshot) GetLandmarkFixes() *SnapshotLandmarkFixes {
+	if x != nil {
+		return x.LandmarkFixes
+	}
+	return nil
+}
+
+// SnapshotLandmarkFixes holds, slot by slot (at most 8), a landmark's
+// newest fix by a sensor whose correlated error is per landmark
+// (DEVELOPERS.md, "Design: Sensors").
+type SnapshotLandmarkFixes struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The landmark's place in the configuration's landmarks, from 1 (0: an
+	// empty slot).
+	Landmark []int32 `protobuf:"varint,1,rep,packed,name=landmark,proto3" json:"landmark,omitempty"`
+	// The sensor's place in the configuration's sensors, from 0.
+	Sensor []int32 `protobuf:"varint,2,rep,packed,name=sensor,proto3" json:"sensor,omitempty"`
+	// The fix's stamp, nanoseconds.
+	StampNs       []int64 `protobuf:"varint,3,rep,packed,name=stamp_ns,json=stampNs,proto3" json:"stamp_ns,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SnapshotLandmarkFixes) Reset() {
+	*x = SnapshotLandmarkFixes{}
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SnapshotLandmarkFixes) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SnapshotLandmarkFixes) ProtoMessage() {}
+
+func (x *SnapshotLandmarkFixes) ProtoReflect() protoreflect.Message {
+	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SnapshotLandmarkFixes.ProtoReflect.Descriptor instead.
+func (*SnapshotLandmarkFixes) Descriptor() ([]byte, []int) {
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+}
+
+func (x *SnapshotLandmarkFixes) GetLandmark() []int32 {
+	if x != nil {
+		return x.Landmark
+	}
+	return nil
+}
+
+func (x *SnapshotLandmarkFixes) GetSensor() []int32 {
+	if x != nil {
+		return x.Sensor
+	}
+	return nil
+}
+
+func (x *SnapshotLandmarkFixes) GetStampNs() []int64 {
+	if x != nil {
+		return x.StampNs
+	}
+	return nil
+}
+
 // SnapshotLandmarkBlocks says which landmark each landmark block of an
 // estimate stands for (DEVELOPERS.md, "Design: Landmark survey error").
 type SnapshotLandmarkBlocks struct {
@@ -808,7 +889,7 @@ type SnapshotLandmarkBlocks struct {
 
 func (x *SnapshotLandmarkBlocks) Reset() {
 	*x = SnapshotLandmarkBlocks{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -820,7 +901,7 @@ func (x *SnapshotLandmarkBlocks) String() string {
 func (*SnapshotLandmarkBlocks) ProtoMessage() {}
 
 func (x *SnapshotLandmarkBlocks) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[4]
+	mi := &file_reckon_v1_journal_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -833,7 +914,7 @@ func (x *SnapshotLandmarkBlocks) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotLandmarkBlocks.ProtoReflect.Descriptor instead.
 func (*SnapshotLandmarkBlocks) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{4}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *SnapshotLandmarkBlocks) GetLandmark() []int32 {
@@ -889,7 +970,7 @@ type EstimateState struct {
 
 func (x *EstimateState) Reset() {
 	*x = EstimateState{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -901,7 +982,7 @@ func (x *EstimateState) String() string {
 func (*EstimateState) ProtoMessage() {}
 
 func (x *EstimateState) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[5]
+	mi := &file_reckon_v1_journal_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -914,7 +995,7 @@ func (x *EstimateState) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EstimateState.ProtoReflect.Descriptor instead.
 func (*EstimateState) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{5}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *EstimateState) GetSize() uint32 {
@@ -974,7 +1055,7 @@ type SnapshotCheckpoint struct {
 
 func (x *SnapshotCheckpoint) Reset() {
 	*x = SnapshotCheckpoint{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -986,7 +1067,7 @@ func (x *SnapshotCheckpoint) String() string {
 func (*SnapshotCheckpoint) ProtoMessage() {}
 
 func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[6]
+	mi := &file_reckon_v1_journal_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -999,7 +1080,7 @@ func (x *SnapshotCheckpoint) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCheckpoint.ProtoReflect.Descriptor instead.
 func (*SnapshotCheckpoint) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{6}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *SnapshotCheckpoint) GetEstimate() *EstimateState {
@@ -1087,7 +1168,7 @@ type SnapshotEntry struct {
 
 func (x *SnapshotEntry) Reset() {
 	*x = SnapshotEntry{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1099,7 +1180,7 @@ func (x *SnapshotEntry) String() string {
 func (*SnapshotEntry) ProtoMessage() {}
 
 func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[7]
+	mi := &file_reckon_v1_journal_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1112,7 +1193,7 @@ func (x *SnapshotEntry) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotEntry.ProtoReflect.Descriptor instead.
 func (*SnapshotEntry) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{7}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *SnapshotEntry) GetKind() uint32 {
@@ -1313,7 +1394,7 @@ type SnapshotMeasurement struct {
 
 func (x *SnapshotMeasurement) Reset() {
 	*x = SnapshotMeasurement{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1325,7 +1406,7 @@ func (x *SnapshotMeasurement) String() string {
 func (*SnapshotMeasurement) ProtoMessage() {}
 
 func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[8]
+	mi := &file_reckon_v1_journal_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1338,7 +1419,7 @@ func (x *SnapshotMeasurement) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotMeasurement.ProtoReflect.Descriptor instead.
 func (*SnapshotMeasurement) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{8}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *SnapshotMeasurement) GetKind() uint32 {
@@ -1450,7 +1531,7 @@ type SnapshotSensor struct {
 
 func (x *SnapshotSensor) Reset() {
 	*x = SnapshotSensor{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1462,7 +1543,7 @@ func (x *SnapshotSensor) String() string {
 func (*SnapshotSensor) ProtoMessage() {}
 
 func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[9]
+	mi := &file_reckon_v1_journal_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1475,7 +1556,7 @@ func (x *SnapshotSensor) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotSensor.ProtoReflect.Descriptor instead.
 func (*SnapshotSensor) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{9}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *SnapshotSensor) GetSensorId() string {
@@ -1546,7 +1627,7 @@ type SnapshotNisWindow struct {
 
 func (x *SnapshotNisWindow) Reset() {
 	*x = SnapshotNisWindow{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1558,7 +1639,7 @@ func (x *SnapshotNisWindow) String() string {
 func (*SnapshotNisWindow) ProtoMessage() {}
 
 func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[10]
+	mi := &file_reckon_v1_journal_proto_msgTypes[11]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1571,7 +1652,7 @@ func (x *SnapshotNisWindow) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotNisWindow.ProtoReflect.Descriptor instead.
 func (*SnapshotNisWindow) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{10}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
 }
 
 func (x *SnapshotNisWindow) GetNis() []float64 {
@@ -1631,7 +1712,7 @@ type SnapshotBiasWindow struct {
 
 func (x *SnapshotBiasWindow) Reset() {
 	*x = SnapshotBiasWindow{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1643,7 +1724,7 @@ func (x *SnapshotBiasWindow) String() string {
 func (*SnapshotBiasWindow) ProtoMessage() {}
 
 func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[11]
+	mi := &file_reckon_v1_journal_proto_msgTypes[12]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1656,7 +1737,7 @@ func (x *SnapshotBiasWindow) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotBiasWindow.ProtoReflect.Descriptor instead.
 func (*SnapshotBiasWindow) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{11}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
 }
 
 func (x *SnapshotBiasWindow) GetScore() []float64 {
@@ -1733,14 +1814,18 @@ type SnapshotCandidate struct {
 	RelativeCalibrationJacobian []float64 `protobuf:"fixed64,11,rep,packed,name=relative_calibration_jacobian,json=relativeCalibrationJacobian,proto3" json:"relative_calibration_jacobian,omitempty"`
 	// Pose fix: its marker's key, as SnapshotEntry.marker_key (version 15;
 	// absent: no marker named, and in older versions).
-	MarkerKey     uint32 `protobuf:"varint,12,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	MarkerKey uint32 `protobuf:"varint,12,opt,name=marker_key,json=markerKey,proto3" json:"marker_key,omitempty"`
+	// Landmark fix of a sensor whose correlated error is per landmark: the
+	// sensor's place in the configuration's sensors, from 1 (version 21;
+	// absent: none such, and in older versions).
+	PerLandmarkSensor uint32 `protobuf:"varint,13,opt,name=per_landmark_sensor,json=perLandmarkSensor,proto3" json:"per_landmark_sensor,omitempty"`
+	unknownFields     protoimpl.UnknownFields
+	sizeCache         protoimpl.SizeCache
 }
 
 func (x *SnapshotCandidate) Reset() {
 	*x = SnapshotCandidate{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1752,7 +1837,7 @@ func (x *SnapshotCandidate) String() string {
 func (*SnapshotCandidate) ProtoMessage() {}
 
 func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[12]
+	mi := &file_reckon_v1_journal_proto_msgTypes[13]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1765,7 +1850,7 @@ func (x *SnapshotCandidate) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use SnapshotCandidate.ProtoReflect.Descriptor instead.
 func (*SnapshotCandidate) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{12}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
 }
 
 func (x *SnapshotCandidate) GetStampNs() int64 {
@@ -1845,6 +1930,13 @@ func (x *SnapshotCandidate) GetMarkerKey() uint32 {
 	return 0
 }
 
+func (x *SnapshotCandidate) GetPerLandmarkSensor() uint32 {
+	if x != nil {
+		return x.PerLandmarkSensor
+	}
+	return 0
+}
+
 // JournalOpening starts a robot's journal.
 type JournalOpening struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1864,7 +1956,7 @@ type JournalOpening struct {
 
 func (x *JournalOpening) Reset() {
 	*x = JournalOpening{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1876,7 +1968,7 @@ func (x *JournalOpening) String() string {
 func (*JournalOpening) ProtoMessage() {}
 
 func (x *JournalOpening) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[13]
+	mi := &file_reckon_v1_journal_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1889,7 +1981,7 @@ func (x *JournalOpening) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOpening.ProtoReflect.Descriptor instead.
 func (*JournalOpening) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{13}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *JournalOpening) GetRobot() string {
@@ -1941,7 +2033,7 @@ type JournalInput struct {
 
 func (x *JournalInput) Reset() {
 	*x = JournalInput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[14]
+	mi := &file_reckon_v1_journal_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1953,7 +2045,7 @@ func (x *JournalInput) String() string {
 func (*JournalInput) ProtoMessage() {}
 
 func (x *JournalInput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[14]
+	mi := &file_reckon_v1_journal_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1966,7 +2058,7 @@ func (x *JournalInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalInput.ProtoReflect.Descriptor instead.
 func (*JournalInput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{14}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *JournalInput) GetSequence() uint64 {
@@ -2018,7 +2110,7 @@ type JournalOutput struct {
 
 func (x *JournalOutput) Reset() {
 	*x = JournalOutput{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[15]
+	mi := &file_reckon_v1_journal_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2030,7 +2122,7 @@ func (x *JournalOutput) String() string {
 func (*JournalOutput) ProtoMessage() {}
 
 func (x *JournalOutput) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[15]
+	mi := &file_reckon_v1_journal_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2043,7 +2135,7 @@ func (x *JournalOutput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalOutput.ProtoReflect.Descriptor instead.
 func (*JournalOutput) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{15}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *JournalOutput) GetResponse() *IngestResponse {
@@ -2071,7 +2163,7 @@ type JournalClosing struct {
 
 func (x *JournalClosing) Reset() {
 	*x = JournalClosing{}
-	mi := &file_reckon_v1_journal_proto_msgTypes[16]
+	mi := &file_reckon_v1_journal_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2083,7 +2175,7 @@ func (x *JournalClosing) String() string {
 func (*JournalClosing) ProtoMessage() {}
 
 func (x *JournalClosing) ProtoReflect() protoreflect.Message {
-	mi := &file_reckon_v1_journal_proto_msgTypes[16]
+	mi := &file_reckon_v1_journal_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2096,7 +2188,7 @@ func (x *JournalClosing) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use JournalClosing.ProtoReflect.Descriptor instead.
 func (*JournalClosing) Descriptor() ([]byte, []int) {
-	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{16}
+	return file_reckon_v1_journal_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *JournalClosing) GetDeleteTimeUnixNs() int64 {
@@ -2127,7 +2219,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x0eJournalSession\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x01 \x01(\tR\tsessionId\x125\n" +
-	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\x89\x10\n" +
+	"\bverdicts\x18\x02 \x03(\v2\x19.reckon.v1.IngestResponseR\bverdicts\"\xd2\x10\n" +
 	"\rRobotSnapshot\x12\x18\n" +
 	"\aversion\x18\x01 \x01(\rR\aversion\x120\n" +
 	"\x06filter\x18\x02 \x01(\v2\x18.reckon.v1.EstimateStateR\x06filter\x12!\n" +
@@ -2186,10 +2278,15 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\x19long_turn_anchor_var_rad2\x18* \x01(\x01R\x15longTurnAnchorVarRad2\x12>\n" +
 	"\x19imu_unchanged_heading_rad\x18+ \x01(\x01H\x01R\x16imuUnchangedHeadingRad\x88\x01\x01\x12)\n" +
 	"\x10move_unconfirmed\x18, \x01(\bR\x0fmoveUnconfirmed\x128\n" +
-	"\x16held_reseed_marker_key\x18- \x01(\x04H\x02R\x13heldReseedMarkerKey\x88\x01\x01B\x17\n" +
+	"\x16held_reseed_marker_key\x18- \x01(\x04H\x02R\x13heldReseedMarkerKey\x88\x01\x01\x12G\n" +
+	"\x0elandmark_fixes\x18. \x01(\v2 .reckon.v1.SnapshotLandmarkFixesR\rlandmarkFixesB\x17\n" +
 	"\x15_last_imu_heading_radB\x1c\n" +
 	"\x1a_imu_unchanged_heading_radB\x19\n" +
-	"\x17_held_reseed_marker_key\"T\n" +
+	"\x17_held_reseed_marker_key\"f\n" +
+	"\x15SnapshotLandmarkFixes\x12\x1a\n" +
+	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x16\n" +
+	"\x06sensor\x18\x02 \x03(\x05R\x06sensor\x12\x19\n" +
+	"\bstamp_ns\x18\x03 \x03(\x03R\astampNs\"T\n" +
 	"\x16SnapshotLandmarkBlocks\x12\x1a\n" +
 	"\blandmark\x18\x01 \x03(\x05R\blandmark\x12\x1e\n" +
 	"\vlast_fix_ns\x18\x02 \x03(\x03R\tlastFixNs\"\xd6\x01\n" +
@@ -2274,7 +2371,7 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	"\bposition\x18\x03 \x01(\x03R\bposition\x12\x12\n" +
 	"\x04fill\x18\x04 \x01(\x03R\x04fill\x12\x16\n" +
 	"\x06raised\x18\x05 \x01(\bR\x06raised\x12\x18\n" +
-	"\achanged\x18\x06 \x01(\bR\achanged\"\x90\x04\n" +
+	"\achanged\x18\x06 \x01(\bR\achanged\"\xc0\x04\n" +
 	"\x11SnapshotCandidate\x12\x19\n" +
 	"\bstamp_ns\x18\x01 \x01(\x03R\astampNs\x12\x18\n" +
 	"\aimplied\x18\x02 \x03(\x01R\aimplied\x12\x1e\n" +
@@ -2291,7 +2388,8 @@ const file_reckon_v1_journal_proto_rawDesc = "" +
 	" \x03(\x01R\x17relativeWhiteCovariance\x12B\n" +
 	"\x1drelative_calibration_jacobian\x18\v \x03(\x01R\x1brelativeCalibrationJacobian\x12\x1d\n" +
 	"\n" +
-	"marker_key\x18\f \x01(\rR\tmarkerKeyJ\x04\b\x03\x10\x04R\n" +
+	"marker_key\x18\f \x01(\rR\tmarkerKey\x12.\n" +
+	"\x13per_landmark_sensor\x18\r \x01(\rR\x11perLandmarkSensorJ\x04\b\x03\x10\x04R\n" +
 	"correction\"\x9b\x01\n" +
 	"\x0eJournalOpening\x12\x14\n" +
 	"\x05robot\x18\x01 \x01(\tR\x05robot\x12.\n" +
@@ -2323,66 +2421,68 @@ func file_reckon_v1_journal_proto_rawDescGZIP() []byte {
 	return file_reckon_v1_journal_proto_rawDescData
 }
 
-var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 17)
+var file_reckon_v1_journal_proto_msgTypes = make([]protoimpl.MessageInfo, 18)
 var file_reckon_v1_journal_proto_goTypes = []any{
 	(*JournalRecord)(nil),          // 0: reckon.v1.JournalRecord
 	(*JournalSnapshot)(nil),        // 1: reckon.v1.JournalSnapshot
 	(*JournalSession)(nil),         // 2: reckon.v1.JournalSession
 	(*RobotSnapshot)(nil),          // 3: reckon.v1.RobotSnapshot
-	(*SnapshotLandmarkBlocks)(nil), // 4: reckon.v1.SnapshotLandmarkBlocks
-	(*EstimateState)(nil),          // 5: reckon.v1.EstimateState
-	(*SnapshotCheckpoint)(nil),     // 6: reckon.v1.SnapshotCheckpoint
-	(*SnapshotEntry)(nil),          // 7: reckon.v1.SnapshotEntry
-	(*SnapshotMeasurement)(nil),    // 8: reckon.v1.SnapshotMeasurement
-	(*SnapshotSensor)(nil),         // 9: reckon.v1.SnapshotSensor
-	(*SnapshotNisWindow)(nil),      // 10: reckon.v1.SnapshotNisWindow
-	(*SnapshotBiasWindow)(nil),     // 11: reckon.v1.SnapshotBiasWindow
-	(*SnapshotCandidate)(nil),      // 12: reckon.v1.SnapshotCandidate
-	(*JournalOpening)(nil),         // 13: reckon.v1.JournalOpening
-	(*JournalInput)(nil),           // 14: reckon.v1.JournalInput
-	(*JournalOutput)(nil),          // 15: reckon.v1.JournalOutput
-	(*JournalClosing)(nil),         // 16: reckon.v1.JournalClosing
-	(*IngestResponse)(nil),         // 17: reckon.v1.IngestResponse
-	(*VerdictCounts)(nil),          // 18: reckon.v1.VerdictCounts
-	(*RobotConfig)(nil),            // 19: reckon.v1.RobotConfig
-	(*Sample)(nil),                 // 20: reckon.v1.Sample
-	(*FusedPose)(nil),              // 21: reckon.v1.FusedPose
+	(*SnapshotLandmarkFixes)(nil),  // 4: reckon.v1.SnapshotLandmarkFixes
+	(*SnapshotLandmarkBlocks)(nil), // 5: reckon.v1.SnapshotLandmarkBlocks
+	(*EstimateState)(nil),          // 6: reckon.v1.EstimateState
+	(*SnapshotCheckpoint)(nil),     // 7: reckon.v1.SnapshotCheckpoint
+	(*SnapshotEntry)(nil),          // 8: reckon.v1.SnapshotEntry
+	(*SnapshotMeasurement)(nil),    // 9: reckon.v1.SnapshotMeasurement
+	(*SnapshotSensor)(nil),         // 10: reckon.v1.SnapshotSensor
+	(*SnapshotNisWindow)(nil),      // 11: reckon.v1.SnapshotNisWindow
+	(*SnapshotBiasWindow)(nil),     // 12: reckon.v1.SnapshotBiasWindow
+	(*SnapshotCandidate)(nil),      // 13: reckon.v1.SnapshotCandidate
+	(*JournalOpening)(nil),         // 14: reckon.v1.JournalOpening
+	(*JournalInput)(nil),           // 15: reckon.v1.JournalInput
+	(*JournalOutput)(nil),          // 16: reckon.v1.JournalOutput
+	(*JournalClosing)(nil),         // 17: reckon.v1.JournalClosing
+	(*IngestResponse)(nil),         // 18: reckon.v1.IngestResponse
+	(*VerdictCounts)(nil),          // 19: reckon.v1.VerdictCounts
+	(*RobotConfig)(nil),            // 20: reckon.v1.RobotConfig
+	(*Sample)(nil),                 // 21: reckon.v1.Sample
+	(*FusedPose)(nil),              // 22: reckon.v1.FusedPose
 }
 var file_reckon_v1_journal_proto_depIdxs = []int32{
-	13, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
-	14, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
-	15, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
-	16, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
+	14, // 0: reckon.v1.JournalRecord.opening:type_name -> reckon.v1.JournalOpening
+	15, // 1: reckon.v1.JournalRecord.input:type_name -> reckon.v1.JournalInput
+	16, // 2: reckon.v1.JournalRecord.output:type_name -> reckon.v1.JournalOutput
+	17, // 3: reckon.v1.JournalRecord.closing:type_name -> reckon.v1.JournalClosing
 	1,  // 4: reckon.v1.JournalRecord.snapshot:type_name -> reckon.v1.JournalSnapshot
 	2,  // 5: reckon.v1.JournalSnapshot.sessions:type_name -> reckon.v1.JournalSession
-	17, // 6: reckon.v1.JournalSession.verdicts:type_name -> reckon.v1.IngestResponse
-	5,  // 7: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
-	6,  // 8: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
-	7,  // 9: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
-	7,  // 10: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
-	18, // 11: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
-	18, // 12: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
-	9,  // 13: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
-	10, // 14: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
-	10, // 15: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
-	12, // 16: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
-	11, // 17: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
-	4,  // 18: reckon.v1.RobotSnapshot.landmark_blocks:type_name -> reckon.v1.SnapshotLandmarkBlocks
-	5,  // 19: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
-	4,  // 20: reckon.v1.SnapshotCheckpoint.landmark_blocks:type_name -> reckon.v1.SnapshotLandmarkBlocks
-	8,  // 21: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
-	6,  // 22: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
-	18, // 23: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
-	8,  // 24: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
-	19, // 25: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
-	20, // 26: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
-	17, // 27: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
-	21, // 28: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
-	29, // [29:29] is the sub-list for method output_type
-	29, // [29:29] is the sub-list for method input_type
-	29, // [29:29] is the sub-list for extension type_name
-	29, // [29:29] is the sub-list for extension extendee
-	0,  // [0:29] is the sub-list for field type_name
+	18, // 6: reckon.v1.JournalSession.verdicts:type_name -> reckon.v1.IngestResponse
+	6,  // 7: reckon.v1.RobotSnapshot.filter:type_name -> reckon.v1.EstimateState
+	7,  // 8: reckon.v1.RobotSnapshot.base:type_name -> reckon.v1.SnapshotCheckpoint
+	8,  // 9: reckon.v1.RobotSnapshot.entries:type_name -> reckon.v1.SnapshotEntry
+	8,  // 10: reckon.v1.RobotSnapshot.held:type_name -> reckon.v1.SnapshotEntry
+	19, // 11: reckon.v1.RobotSnapshot.odometry:type_name -> reckon.v1.VerdictCounts
+	19, // 12: reckon.v1.RobotSnapshot.measurements:type_name -> reckon.v1.VerdictCounts
+	10, // 13: reckon.v1.RobotSnapshot.sensors:type_name -> reckon.v1.SnapshotSensor
+	11, // 14: reckon.v1.RobotSnapshot.fix_window:type_name -> reckon.v1.SnapshotNisWindow
+	11, // 15: reckon.v1.RobotSnapshot.imu_window:type_name -> reckon.v1.SnapshotNisWindow
+	13, // 16: reckon.v1.RobotSnapshot.candidates:type_name -> reckon.v1.SnapshotCandidate
+	12, // 17: reckon.v1.RobotSnapshot.bias_window:type_name -> reckon.v1.SnapshotBiasWindow
+	5,  // 18: reckon.v1.RobotSnapshot.landmark_blocks:type_name -> reckon.v1.SnapshotLandmarkBlocks
+	4,  // 19: reckon.v1.RobotSnapshot.landmark_fixes:type_name -> reckon.v1.SnapshotLandmarkFixes
+	6,  // 20: reckon.v1.SnapshotCheckpoint.estimate:type_name -> reckon.v1.EstimateState
+	5,  // 21: reckon.v1.SnapshotCheckpoint.landmark_blocks:type_name -> reckon.v1.SnapshotLandmarkBlocks
+	9,  // 22: reckon.v1.SnapshotEntry.measurement:type_name -> reckon.v1.SnapshotMeasurement
+	7,  // 23: reckon.v1.SnapshotEntry.after:type_name -> reckon.v1.SnapshotCheckpoint
+	19, // 24: reckon.v1.SnapshotSensor.counts:type_name -> reckon.v1.VerdictCounts
+	9,  // 25: reckon.v1.SnapshotCandidate.landmark_measurement:type_name -> reckon.v1.SnapshotMeasurement
+	20, // 26: reckon.v1.JournalOpening.config:type_name -> reckon.v1.RobotConfig
+	21, // 27: reckon.v1.JournalInput.sample:type_name -> reckon.v1.Sample
+	18, // 28: reckon.v1.JournalOutput.response:type_name -> reckon.v1.IngestResponse
+	22, // 29: reckon.v1.JournalOutput.pose:type_name -> reckon.v1.FusedPose
+	30, // [30:30] is the sub-list for method output_type
+	30, // [30:30] is the sub-list for method input_type
+	30, // [30:30] is the sub-list for extension type_name
+	30, // [30:30] is the sub-list for extension extendee
+	0,  // [0:30] is the sub-list for field type_name
 }
 
 func init() { file_reckon_v1_journal_proto_init() }
@@ -2407,7 +2507,7 @@ func file_reckon_v1_journal_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_reckon_v1_journal_proto_rawDesc), len(file_reckon_v1_journal_proto_rawDesc)),
 			NumEnums:      0,
-			NumMessages:   17,
+			NumMessages:   18,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

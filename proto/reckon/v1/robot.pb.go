@@ -678,9 +678,21 @@ type FixSensor struct {
 	// never estimated), so that the covariance allows for a mount known
 	// only this well; fixes that carry their own mount do not use them.
 	// Unset: the mount is exact.
-	MountStd      *MountStd `protobuf:"bytes,10,opt,name=mount_std,json=mountStd,proto3" json:"mount_std,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	MountStd *MountStd `protobuf:"bytes,10,opt,name=mount_std,json=mountStd,proto3" json:"mount_std,omitempty"`
+	// Landmark sensors: the correlated part is each landmark's own,
+	// independent from landmark to landmark (a fiducial marker's error
+	// follows its viewing geometry while it is in view), not one error that
+	// all fixes share. The sensor then takes no bias states: each fix
+	// counts its correlated part in full for its NIS and gate and, for the
+	// update, inflated by (1 + rho) / (1 - rho), rho = exp(-dt /
+	// correlation_time_s) for the time dt since the sensor's last fix of the
+	// same landmark. Set it when two or more markers are often in view at
+	// once: with one shared error the filter takes their difference as white
+	// news frame after frame. Default false: the error is shared. Refused on
+	// sensors of other kinds.
+	CorrelatedPerLandmark bool `protobuf:"varint,11,opt,name=correlated_per_landmark,json=correlatedPerLandmark,proto3" json:"correlated_per_landmark,omitempty"`
+	unknownFields         protoimpl.UnknownFields
+	sizeCache             protoimpl.SizeCache
 }
 
 func (x *FixSensor) Reset() {
@@ -781,6 +793,13 @@ func (x *FixSensor) GetMountStd() *MountStd {
 		return x.MountStd
 	}
 	return nil
+}
+
+func (x *FixSensor) GetCorrelatedPerLandmark() bool {
+	if x != nil {
+		return x.CorrelatedPerLandmark
+	}
+	return false
 }
 
 // MountStd is the standard deviation of each of a mount's three numbers;
@@ -1667,7 +1686,7 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\vcalibration\x18\x13 \x01(\v2\x1e.reckon.v1.OdometryCalibrationR\vcalibration\x12-\n" +
 	"\x13max_odometry_gap_ns\x18\x14 \x01(\x03R\x10maxOdometryGapNs\x12$\n" +
 	"\x0eimu_latency_ns\x18\x15 \x01(\x03R\fimuLatencyNs\x125\n" +
-	"\x17landmark_position_std_m\x18\x16 \x01(\x01R\x14landmarkPositionStdM\"\xb0\x03\n" +
+	"\x17landmark_position_std_m\x18\x16 \x01(\x01R\x14landmarkPositionStdM\"\xe8\x03\n" +
 	"\tFixSensor\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12&\n" +
 	"\x04kind\x18\x02 \x01(\x0e2\x12.reckon.v1.FixKindR\x04kind\x12*\n" +
@@ -1682,7 +1701,8 @@ const file_reckon_v1_robot_proto_rawDesc = "" +
 	"\x06robust\x18\b \x01(\x0e2\x15.reckon.v1.RobustLossR\x06robust\x12)\n" +
 	"\x10robust_parameter\x18\t \x01(\x01R\x0frobustParameter\x120\n" +
 	"\tmount_std\x18\n" +
-	" \x01(\v2\x13.reckon.v1.MountStdR\bmountStd\"M\n" +
+	" \x01(\v2\x13.reckon.v1.MountStdR\bmountStd\x126\n" +
+	"\x17correlated_per_landmark\x18\v \x01(\bR\x15correlatedPerLandmark\"M\n" +
 	"\bMountStd\x12\x0f\n" +
 	"\x03x_m\x18\x01 \x01(\x01R\x02xM\x12\x0f\n" +
 	"\x03y_m\x18\x02 \x01(\x01R\x02yM\x12\x1f\n" +

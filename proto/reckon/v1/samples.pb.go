@@ -104,7 +104,9 @@ type OdometrySample struct {
 	//	*OdometrySample_Step
 	Motion isOdometrySample_Motion `protobuf_oneof:"motion"`
 	// The IMU heading read with the wheels, radians: an absolute update in
-	// IMU_MODE_ABSOLUTE, the turn row in IMU_MODE_ROTATION (required there).
+	// IMU_MODE_ABSOLUTE, the turn row in IMU_MODE_ROTATION (required there
+	// with travel or counts; a step sent without it leaves the next wheel
+	// sample no heading to turn from, and that sample's interval is a gap).
 	ImuHeadingRad *float64 `protobuf:"fixed64,6,opt,name=imu_heading_rad,json=imuHeadingRad,proto3,oneof" json:"imu_heading_rad,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache

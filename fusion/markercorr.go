@@ -1,0 +1,224 @@
+package fusion
+
+import (
+	"math"
+
+	"reckon.example/estimator"
+)
+
+// Per-landmark correlated errors (DEVELOPERS.md, "Design: Sensors"). A
+// landmark sensor with correlated_per_landmark set has no bias block: the
+// correlated share f of its covariance is each landmark's own, a
+// first-order Gauss-Markov process per landmark (a marker's error follows
+// its viewing geometry, which holds while it is in view), independent
+// from landmark to landmark. Without a state for it, a fix's error is
+// taken at its full covariance, (1 - f) R + f C, for its NIS and its gate
+// (its marginal distribution), and its correlated share is inflated for
+// the gain by the AR(1) factor
+//
+//	k = (1 + rho) / (1 - rho),   rho = exp(-dt / tau),
+//
+// dt the time since the same sensor's last applied fix of the same
+// landmark (k = 1 for the first, or after more than repeatHorizonTaus
+// correlation times). This is the information of correlated observations
+// counted as the equivalent number of independent ones (from memory: the
+// AR(1) precision matrix, tridiagonal with 1 and 1 + rho^2 on its
+// diagonal and -rho beside it over s^2 (1 - rho^2), sums to
+// (n (1 - rho) + 2 rho) / ((1 + rho) s^2) for n observations of one
+// constant; the first at weight 1 and each next at (1 - rho) / (1 + rho)
+// is exactly that). It is the weighting that measurement differencing
+// gives (A. E. Bryson and L. J. Henrikson, "Estimation using sampled data
+// containing sequentially correlated noise", J. Spacecraft and Rockets
+// 5(6), 1968; Gelb, Applied Optimal Estimation, 1974, sec. 4.5, from
+// memory): z_k - rho z_{k-1} has white noise of (1 - rho^2) f C and
+// measures (1 - rho) of the pose. Differencing itself needs the previous
+// fix of the same quantity at the filter's hand, which late fixes of
+// changing landmarks do not give; the factor needs only its stamp.
+// TestRepeatFactorInformation checks it against that closed form.
+
+// repeatHorizonTaus is how many correlation times back the previous fix of
+// a landmark is looked for: beyond, rho is below 0.25% and k below
+// 1.005, taken as 1.
+const repeatHorizonTaus = 6
+
+// maxRepeatFactor bounds k: two fixes of one landmark at one stamp (rho 1)
+// repeat their correlated share entirely.
+const maxRepeatFactor = 1e4
+
+// maxMarks bounds the landmarks whose last applied fix the base keeps
+// (markTable).
+const maxMarks = 8
+
+// markTable keeps, for the landmarks of per-landmark sensors whose fixes
+// were folded into the base checkpoint (dropFront), the stamp of each
+// one's last applied fix: a fix whose previous fix of its landmark has
+// left the window finds it here, so that a replay after a late fix
+// weighs it as the first pass did. sensor is the configuration's index,
+// lm the landmark's (from 1; 0: an empty slot). In the snapshot (version
+// 21).
+type markTable [maxMarks]struct {
+	lm, sensor int32
+	last       int64
+}
+
+// note records an applied fix of landmark lm by sensor si at t, taking
+// the slot of the landmark fixed longest ago when the table is full.
+func (m *markTable) note(si, lm int32, t int64) {
+	for i := range m {
+		if m[i].lm == lm && m[i].sensor == si {
+			m[i].last = max(m[i].last, t)
+			return
+		}
+	}
+	k := 0
+	for i := range m {
+		if m[i].lm == 0 {
+			k = i
+			break
+		}
+		if m[i].last < m[k].last {
+			k = i
+		}
+	}
+	m[k].lm, m[k].sensor, m[k].last = lm, si, t
+}
+
+// lookup returns the stamp of the last applied fix of landmark lm by
+// sensor si in the table.
+func (m *markTable) lookup(si, lm int32) (int64, bool) {
+	for i := range m {
+		if m[i].lm == lm && m[i].sensor == si {
+			return m[i].last, true
+		}
+	}
+	return 0, false
+}
+
+// perLandmark reports whether the sensor's correlated part is per
+// landmark.
+func (s *Sensor) perLandmark() bool {
+	return s.CorrelatedPerLandmark && s.Kind == FixLandmark && s.CorrelatedFraction > 0
+}
+
+// perLandmarkSensor returns the configuration index of the sensor of
+// measurement entry e when it is a landmark fix of a per-landmark sensor.
+func (r *Robot) perLandmarkSensor(e *entry) (int, bool) {
+	if !r.lmCorr || e.lm == 0 || e.imu || e.kind != entMeas {
+		return 0, false
+	}
+	si, ok := r.sensorIndex[r.stats.sensors[e.sensor].ID]
+	return si, ok && r.cfg.Sensors[si].perLandmark()
+}
+
+// correlatedShare writes f C of sensor s for the components of kind into
+// out (stride 3), times k.
+func (s *Sensor) correlatedShare(kind estimator.Kind, k float64, out *[9]float64) {
+	d := kind.Dim()
+	comps := [3]int{0, 1, 2}
+	if kind == estimator.KindBearing {
+		comps[0] = 1
+	}
+	full := fixDim(s.Kind)
+	for i := 0; i < d; i++ {
+		for j := 0; j < d; j++ {
+			out[i*3+j] = k * s.CorrelatedFraction * s.Cov[comps[i]*full+comps[j]]
+		}
+	}
+}
+
+// repeatExtra returns, for a fix entry e of a per-landmark sensor, the
+// covariance its update adds for the gain, (k - 1) f C, and whether there
+// is any.
+func (r *Robot) repeatExtra(e *entry) (extra [9]float64, ok bool) {
+	si, ok := r.perLandmarkSensor(e)
+	if !ok {
+		return extra, false
+	}
+	s := &r.cfg.Sensors[si]
+	prev, found := r.previousFix(e, int32(si), int64(repeatHorizonTaus*s.CorrelationTimeS*1e9))
+	if !found {
+		return extra, false
+	}
+	rho := math.Exp(-float64(e.t1-prev) * 1e-9 / s.CorrelationTimeS)
+	k := maxRepeatFactor
+	if rho < 1 {
+		k = min((1+rho)/(1-rho), maxRepeatFactor)
+	}
+	s.correlatedShare(e.meas.Kind, k-1, &extra)
+	return extra, true
+}
+
+// previousFix returns the stamp of the last applied fix before e (in the
+// window's order) of e's landmark by e's sensor (configuration index si),
+// within horizon of e's stamp: from the window, else from the base's
+// markTable.
+func (r *Robot) previousFix(e *entry, si int32, horizon int64) (int64, bool) {
+	live := r.live()
+	i := r.locate(e.t1) - 1
+	// Entries at e's stamp after it have not been applied in this pass.
+	for i >= 0 && live[i].t1 == e.t1 && &live[i] != e {
+		i--
+	}
+	if i >= 0 && &live[i] == e {
+		i--
+	}
+	from := e.t1 - horizon
+	for ; i >= 0 && live[i].t1 >= from; i-- {
+		p := &live[i]
+		if p.kind == entMeas && p.lm == e.lm && p.sensor == e.sensor && !p.imu && !p.failed {
+			return p.t1, true
+		}
+	}
+	if i >= 0 {
+		return 0, false // the window reaches past the horizon
+	}
+	if t, ok := r.marks.lookup(si, e.lm); ok && t >= from && t <= e.t1 {
+		return t, true
+	}
+	return 0, false
+}
+
+// foldMarks notes the applied fixes of per-landmark sensors among the
+// entries about to be folded into the base.
+func (r *Robot) foldMarks(dropped []entry) {
+	if !r.lmCorr {
+		return
+	}
+	for i := range dropped {
+		e := &dropped[i]
+		if e.failed {
+			continue
+		}
+		if si, ok := r.perLandmarkSensor(e); ok {
+			r.marks.note(int32(si), e.lm, e.t1)
+		}
+	}
+}
+
+// setCorr marks c a fix of per-landmark sensor si (configuration index).
+func (c *candidate) setCorr(cfg *Config, si int) {
+	s := &cfg.Sensors[si]
+	c.corrSensor = int32(si) + 1
+	for k := range c.corr {
+		c.corr[k] = s.CorrelatedFraction * s.Cov[k]
+	}
+}
+
+// sharedWith returns the covariance that relocation gives components p of
+// c's error and q of b's, both landmark candidates: a per-landmark
+// sensor's correlated share, f C, between fixes of one sensor, as the
+// bias block of a shared correlated error gives it (foldBias, and
+// jointEquations' cross terms), so that relocation weighs them as it did
+// before the option; 0 otherwise.
+func (c *candidate) sharedWith(b *candidate, p, q int) float64 {
+	if c.corrSensor == 0 || c.corrSensor != b.corrSensor {
+		return 0
+	}
+	if c.meas.Kind == estimator.KindBearing {
+		p = 1
+	}
+	if b.meas.Kind == estimator.KindBearing {
+		q = 1
+	}
+	return c.corr[p*2+q]
+}

@@ -1,13 +1,17 @@
 package server
 
 import (
+	"encoding/binary"
 	"fmt"
+	"io"
+	"math"
 	"time"
 	"unicode/utf8"
 
 	"google.golang.org/grpc/encoding"
 	_ "google.golang.org/grpc/encoding/proto" // registers the protobuf codec that codec wraps
 	"google.golang.org/grpc/mem"
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	pb "reckon.example/proto/reckon/v1"
@@ -41,10 +45,10 @@ func (e tooLargeError) Error() string {
 	return fmt.Sprintf("request: %d bytes exceeds the limit of %d (-max-message-bytes)", e.size, e.max)
 }
 
-// sizePrefix bounds the bytes of a request too large to take that are
-// read for its client sequence, which encoders write before the sample
-// (field 2, after the robot's name).
-const sizePrefix = 1 << 10
+// headerStringBytes bounds the robot's name and the session id read from
+// a request too large to take (tooLargeRequest): a longer one is left
+// out, as no robot or session has it (-max-string-bytes).
+const headerStringBytes = 1 << 10
 
 // Name is the content subtype: the codec speaks plain protobuf.
 func (codec) Name() string { return "proto" }
@@ -63,10 +67,10 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 		case *unaryRequest:
 			v.err = err
 		case *arrivedRequest:
-			// Its client sequence as far as a prefix gives it: the
-			// request is not copied.
-			v.IngestRequest.Reset()
-			v.ClientSequence, v.malformed = clientSequenceOf(prefix(data, sizePrefix)), err
+			// Its robot, client sequence and session id, read past
+			// the sample: the request is not copied.
+			tooLargeRequest(data, &v.IngestRequest)
+			v.malformed = err
 		default:
 			// A service not registered through checkedServiceDesc:
 			// grpc-go answers INTERNAL, with these words.
@@ -100,14 +104,71 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	return nil
 }
 
-// prefix returns a copy of data's first n bytes (all of them if fewer).
-func prefix(data mem.BufferSlice, n int) []byte {
-	b := make([]byte, 0, min(n, data.Len()))
-	for _, buf := range data {
-		d := buf.ReadOnlyData()
-		b = append(b, d[:min(len(d), cap(b)-len(b))]...)
+// tooLargeRequest sets req, reset, to the robot's name, the client
+// sequence and the session id of an encoded IngestRequest too large to
+// take, read from its top-level fields as a decoder keeps them (the last
+// of each), the sample skipped over without being copied: the refusal
+// answers its client sequence, and a retry of a request taken before is
+// answered with its first verdict (retriedTooLarge). A name or an id past
+// headerStringBytes or not UTF-8 is left out; so is what follows a field
+// that does not parse.
+func tooLargeRequest(data mem.BufferSlice, req *pb.IngestRequest) {
+	req.Reset()
+	rd := data.Reader()
+	defer rd.Close()
+	for rd.Remaining() > 0 {
+		tag, err := binary.ReadUvarint(rd)
+		if err != nil || tag>>3 == 0 || tag>>3 > math.MaxInt32 {
+			return
+		}
+		num, typ := protowire.DecodeTag(tag)
+		skip := 0
+		switch typ {
+		case protowire.VarintType:
+			v, err := binary.ReadUvarint(rd)
+			if err != nil {
+				return
+			}
+			if num == clientSequenceField {
+				req.ClientSequence = v
+			}
+		case protowire.Fixed32Type:
+			skip = 4
+		case protowire.Fixed64Type:
+			skip = 8
+		case protowire.BytesType:
+			n, err := binary.ReadUvarint(rd)
+			if err != nil || n > uint64(rd.Remaining()) {
+				return
+			}
+			skip = int(n)
+			if num != robotField && num != sessionIDField {
+				break
+			}
+			v := "" // too long to be a robot's or a session's, or not UTF-8
+			if n <= headerStringBytes {
+				b := make([]byte, n)
+				if _, err := io.ReadFull(rd, b); err != nil {
+					return
+				}
+				if skip = 0; utf8.Valid(b) {
+					v = string(b)
+				}
+			}
+			if num == robotField {
+				req.Robot = v
+			} else {
+				req.SessionId = v
+			}
+		default:
+			return
+		}
+		if skip > 0 {
+			if k, err := rd.Discard(skip); err != nil || k != skip {
+				return
+			}
+		}
 	}
-	return b
 }
 
 // requestDecoder is one ingest stream's decoder of requests by hand: its

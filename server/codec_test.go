@@ -172,6 +172,15 @@ func checkRequest(t testing.TB, dec *requestDecoder, b []byte) bool {
 	if gerr := got.malformed; (gerr != nil) != (werr != nil) || werr == nil && !proto.Equal(&got.IngestRequest, &want) {
 		t.Fatalf("the codec gives %v, %v for %x; proto.Unmarshal %v, %v", &got.IngestRequest, gerr, b, &want, werr)
 	}
+	// Read as a request too large to take, across two buffers, it gives
+	// the robot, client sequence and session id proto.Unmarshal gives
+	// (strings no longer than headerStringBytes).
+	var big pb.IngestRequest
+	tooLargeRequest(mem.BufferSlice{mem.SliceBuffer(b[:len(b)/2]), mem.SliceBuffer(b[len(b)/2:])}, &big)
+	short := len(want.GetRobot()) <= headerStringBytes && len(want.GetSessionId()) <= headerStringBytes
+	if werr == nil && short && (big.GetRobot() != want.GetRobot() || big.GetClientSequence() != want.GetClientSequence() || big.GetSessionId() != want.GetSessionId()) {
+		t.Fatalf("tooLargeRequest reads %x as %v; proto.Unmarshal gives %v", b, &big, &want)
+	}
 	return took
 }
 
@@ -263,7 +272,7 @@ func FuzzDecodeRequest(f *testing.F) {
 
 // TestCodecTooLarge: past its limit the codec decodes nothing and copies
 // nothing: an ingest request is marked too large with its client sequence
-// (read from a prefix that spans the first of several buffers) and takes
+// (read past the sample, across several buffers) and takes
 // no piece of the slab; another rpc's request carries the error beside it
 // (checkedDecode answers RESOURCE_EXHAUSTED); any other message is an
 // error. At the limit the request decodes.
@@ -293,7 +302,19 @@ func TestCodecTooLarge(t *testing.T) {
 	if err := c.Unmarshal(split, got); err != nil || got.malformed != nil || !proto.Equal(&got.IngestRequest, req) {
 		t.Errorf("a request at the limit: %v, %v", err, got.malformed)
 	}
-	if p := prefix(split, 10); string(p) != string(b[:10]) {
-		t.Errorf("prefix %x, want %x", p, b[:10])
+	// Its robot, client sequence and session id are read from the
+	// fields past the sample, the last of each as a decoder keeps it; a
+	// robot's name too long for any robot is left out.
+	req.SessionId, req.ClientSequence = "s-1", 0
+	if b, err = proto.Marshal(req); err != nil {
+		t.Fatal(err)
+	}
+	b = protowire.AppendVarint(protowire.AppendTag(b, clientSequenceField, protowire.VarintType), 301)
+	b = protowire.AppendString(protowire.AppendTag(b, robotField, protowire.BytesType), strings.Repeat("r", headerStringBytes+1))
+	c.max = 100
+	got = &arrivedRequest{slab: &slab{}}
+	if err := c.Unmarshal(mem.BufferSlice{mem.SliceBuffer(b[:2000]), mem.SliceBuffer(b[2000:])}, got); err != nil ||
+		got.GetClientSequence() != 301 || got.GetSessionId() != "s-1" || got.GetRobot() != "" || got.GetSample() != nil {
+		t.Errorf("a request past the limit with its client sequence after the sample: %v, %v", err, &got.IngestRequest)
 	}
 }

@@ -4,6 +4,7 @@ import (
 	"context"
 	"strings"
 	"sync"
+	"syscall"
 	"testing"
 	"time"
 
@@ -167,5 +168,74 @@ func TestHeldResolvedWhenDeleted(t *testing.T) {
 				t.Errorf("the odometry stream received %d resolutions", len(odo.resolved))
 			}
 		})
+	}
+}
+
+// TestHeldNotResolvedWhenDeleteFails: a deletion whose journal cannot be
+// set aside (its manifest's rename fails, EIO) leaves the journal to be
+// restored at the next start, the held inputs in it: their senders are
+// told nothing then, and after a restart the restored robot decides them,
+// each resolution sent once, to the camera's session, none
+// REFUSAL_ROBOT_DELETED. Before, the deletion resolved them invalid, never
+// to be applied, before the journal was set aside, and the restored robot
+// then decided the same inputs again: two final verdicts, the first
+// false.
+func TestHeldNotResolvedWhenDeleteFails(t *testing.T) {
+	dir := t.TempDir()
+	ffs := faultfs.New(journal.OS, nil)
+	srv := start(t, testConfig{Options: Options{JournalDir: dir, FS: ffs}})
+	api := dial(t, srv.addr)
+	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+	defer cancel()
+	c := heldCamera(t, ctx, api, 33, "camera-5b20")
+	ffs.SetInject(func(op faultfs.Op, path string) error {
+		if op == faultfs.OpRename && strings.HasSuffix(path, "cart.manifest") {
+			return syscall.EIO
+		}
+		return nil
+	})
+	if _, err := api.DeleteRobot(ctx, &pb.DeleteRobotRequest{Name: "robots/cart"}); status.Code(err) != codes.Internal {
+		t.Fatalf("delete with the rename failing: %v, want INTERNAL", err)
+	}
+	if err := c.cam.close(); err != nil {
+		t.Fatal(err)
+	}
+	if len(c.cam.resolved) != 0 {
+		t.Errorf("the camera received %d resolutions of inputs its journal still holds: %v", len(c.cam.resolved), c.cam.resolved)
+	}
+	if err := c.odo.close(); err != nil {
+		t.Fatal(err)
+	}
+	srv.stop()
+
+	srv = start(t, testConfig{Options: Options{JournalDir: dir}})
+	defer srv.stop()
+	api = dial(t, srv.addr)
+	odo, err := openFeed(ctx, api, "robots/cart")
+	if err != nil {
+		t.Fatal(err)
+	}
+	odo.sent.Store(c.odo.sent.Load())
+	applyAll(t, odo, c.after)
+	again, err := openFeed(ctx, api, "robots/cart")
+	if err != nil {
+		t.Fatal(err)
+	}
+	again.session = c.cam.session
+	again.sent.Store(c.cam.sent.Load())
+	if _, err := again.apply(c.before[0]); err != nil {
+		t.Fatal(err)
+	}
+	if err := again.close(); err != nil {
+		t.Fatal(err)
+	}
+	checkResolutions(t, again.resolved, c.held)
+	for _, r := range again.resolved {
+		if r.GetRefusal() == pb.Refusal_REFUSAL_ROBOT_DELETED {
+			t.Errorf("the restored robot's resolution %v says it was deleted", r)
+		}
+	}
+	if err := odo.close(); err != nil {
+		t.Fatal(err)
 	}
 }

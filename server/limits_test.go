@@ -533,3 +533,61 @@ func TestOversizedRequestRefusedAlone(t *testing.T) {
 		t.Errorf("robot holds %d inputs (%v), want the 21 samples taken", r.GetRobot().GetInputCount(), err)
 	}
 }
+
+// TestRetryPastLoweredLimits: a client resends, with its session id and
+// client sequences, samples the service took before a restart that lowered
+// a limit they are past: -max-message-bytes below their size, or
+// -max-string-bytes below their session id's length. Each is answered with
+// its original verdict and not applied again, as any retry of a sample
+// taken (IngestRequest.session_id); the session's next sample, not taken
+// before, is refused REFUSAL_LIMIT, and so is a resend under another
+// session id. Before, every one was refused REFUSAL_LIMIT (the limits were
+// checked before the session): the client was told that samples the robot
+// holds were not taken.
+func TestRetryPastLoweredLimits(t *testing.T) {
+	const sid, other, n = "c41d7e09", "another-session", 20
+	samp, cfg := cartRun(14, 2)
+	// The smallest of the requests resent, less a byte.
+	smallest := 1 << 20
+	for k, s := range samp[:n+1] {
+		smallest = min(smallest, proto.Size(&pb.IngestRequest{Robot: "robots/cart", ClientSequence: uint64(k + 1), Sample: s, SessionId: sid})-1)
+	}
+	for _, tc := range []struct {
+		name  string
+		lower testConfig
+		code  codes.Code
+	}{
+		{"max-message-bytes", testConfig{MaxMessageBytes: smallest}, codes.ResourceExhausted},
+		{"max-string-bytes", testConfig{Options: Options{Limits: Limits{MaxStringBytes: len(sid) - 1}}}, codes.InvalidArgument},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			dir := t.TempDir()
+			srv := start(t, testConfig{Options: Options{JournalDir: dir}})
+			api := stub(t, srv.addr)
+			if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
+				t.Fatal(err)
+			}
+			first := feedStub(t, api, "robots/cart", sid, 1, samp[:n])
+			srv.stop()
+			tc.lower.JournalDir = dir
+			srv = start(t, tc.lower)
+			defer srv.stop()
+			api = stub(t, srv.addr)
+			again := feedStub(t, api, "robots/cart", sid, 1, samp[:n+1])
+			for k, v := range again[:n] {
+				if !proto.Equal(v, first[k]) {
+					t.Errorf("retry of %d: %v, want the original %v", k+1, v, first[k])
+				}
+			}
+			for _, v := range []*pb.IngestResponse{again[n], feedStub(t, api, "robots/cart", other, 1, samp[:1])[0]} {
+				if v.GetRefusal() != pb.Refusal_REFUSAL_LIMIT || codes.Code(v.GetStatusCode()) != tc.code || v.GetSequence() != 0 {
+					t.Errorf("a request past the limit not taken before: %v, want %v, REFUSAL_LIMIT", v, tc.code)
+				}
+			}
+			r, err := api.GetRobot(context.Background(), &pb.GetRobotRequest{Name: "robots/cart"})
+			if err != nil || r.GetRobot().GetInputCount() != n {
+				t.Errorf("robot holds %d inputs (%v), want the %d taken before the restart", r.GetRobot().GetInputCount(), err, n)
+			}
+		})
+	}
+}

@@ -29,6 +29,13 @@ func requestSample(req []byte) []byte {
 	return out
 }
 
+// robotField and sessionIDField are the field numbers of
+// IngestRequest.robot and IngestRequest.session_id.
+var (
+	robotField     = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("robot").Number()
+	sessionIDField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("session_id").Number()
+)
+
 // clientSequenceField is the field number of IngestRequest.client_sequence.
 var clientSequenceField = (&pb.IngestRequest{}).ProtoReflect().Descriptor().Fields().ByName("client_sequence").Number()
 

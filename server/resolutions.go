@@ -221,8 +221,9 @@ func (r *robot) deliver(h holder, res *pb.Resolution) {
 }
 
 // resolveDeleted gives each input the robot holds a final verdict as the
-// robot is deleted (DeleteRobot, under r.mu, r.deleted set): not applied,
-// REFUSAL_ROBOT_DELETED. Each goes to its sender's stream; those of senders
+// robot is deleted (DeleteRobot, under r.mu, r.deleted set, once its
+// journal is set aside: a journal left in place is restored at the next
+// start, holding the inputs still): not applied, REFUSAL_ROBOT_DELETED. Each goes to its sender's stream; those of senders
 // whose stream is gone, and the resolutions parked for the robot's
 // sessions, are kept in gone by the robot's name. An input whose sender is
 // unknown (held before a restart, or sent without a session and its stream
@@ -271,7 +272,12 @@ type orphans struct {
 }
 
 type orphanLog struct {
-	r      *robot // the deleted robot of the name last given one
+	// gone stands for the deleted robots of the name in the parcels that
+	// collect hands out: only its name and deleted are set, so that a
+	// stream that ends before sending them keeps them here again (close),
+	// and the robot itself, its filter and its sessions' verdicts (up to
+	// maxSessionBytes), is not kept with them.
+	gone   *robot
 	used   uint64
 	parked parkedResolutions
 }
@@ -291,10 +297,10 @@ func (o *orphans) add(r *robot, id string, res *pb.Resolution) {
 		if len(o.byName) >= orphanRobots {
 			evictOldest(o.byName, func(l *orphanLog) uint64 { return l.used })
 		}
-		l = &orphanLog{}
+		l = &orphanLog{gone: &robot{name: name, deleted: true}}
 		o.byName[name] = l
 	}
-	l.r, l.used = r, o.tick
+	l.used = o.tick
 	l.parked.add(id, res)
 	o.n.Store(int32(len(o.byName)))
 }
@@ -309,7 +315,7 @@ func (o *orphans) collect(name, id string, ob *outbox) {
 	var res []*pb.Resolution
 	var r *robot
 	if l := o.byName[name]; l != nil {
-		r, res = l.r, l.parked.take(id)
+		r, res = l.gone, l.parked.take(id)
 		if len(l.parked.byID) == 0 {
 			delete(o.byName, name)
 			o.n.Store(int32(len(o.byName)))

@@ -682,7 +682,6 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 	defer r.sync.close()
 	r.mu.Lock()
 	r.deleted = true
-	r.resolveDeleted(&s.orphans)
 	quarantined := r.state == pb.RobotState_ROBOT_STATE_QUARANTINED
 	switch {
 	case quarantined && r.journal != nil:
@@ -705,6 +704,11 @@ func (s *Server) DeleteRobot(ctx context.Context, req *pb.DeleteRobotRequest) (*
 		err = r.journal.Remove()
 	}
 	r.journal = nil
+	if err == nil {
+		// Only once its journal is set aside: one that is not comes back
+		// at the next start, holding these inputs still, to decide them.
+		r.resolveDeleted(&s.orphans)
+	}
 	if quarantined {
 		s.opt.Metrics.quarantined(-1)
 	}
@@ -1095,6 +1099,36 @@ func refuseMalformed(out *encodedResponse, clientSeq uint64, err error) {
 	out.Refusal = pb.Refusal_REFUSAL_MALFORMED
 }
 
+// retriedTooLarge answers a request too large to take (tooLargeError)
+// whose (session_id, client_sequence) its robot took before as takeRun
+// answers any retry: with the verdict sent then, or with why the robot
+// takes nothing now. It reports whether the request was such a retry.
+// Otherwise a client resending, after a restart that lowered
+// -max-message-bytes, a sample the robot holds would be told it was
+// refused.
+func (s *Server) retriedTooLarge(out *encodedResponse, req *pb.IngestRequest, err error) bool {
+	if _, ok := err.(tooLargeError); !ok || req.GetSessionId() == "" {
+		return false
+	}
+	r, lerr := s.lookup(req.GetRobot())
+	if lerr != nil {
+		return false
+	}
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	wire := r.sessions.lookup(req.GetSessionId(), req.GetClientSequence())
+	if wire == nil {
+		return false
+	}
+	if code, reason := r.refusal(); code != codes.OK {
+		s.opt.Metrics.refused(code)
+		refuse(out, req.GetClientSequence(), code, reason)
+		return true
+	}
+	s.answerAgain(out, wire)
+	return true
+}
+
 // ingest applies one sample (ReseedRobot and tests).
 func (s *Server) ingest(name string, clientSeq uint64, sample *pb.Sample) *pb.IngestResponse {
 	req := &arrivedRequest{IngestRequest: pb.IngestRequest{Robot: name, ClientSequence: clientSeq, Sample: sample}}
@@ -1132,8 +1166,10 @@ func (s *Server) ingestStream(batch []*arrivedRequest, ob *outbox, sc *scratch) 
 	sc.out = nil
 	for i := 0; i < len(batch); {
 		if err := batch[i].malformed; err != nil {
-			refuseMalformed(&out[i], batch[i].GetClientSequence(), err)
-			s.opt.Metrics.refused(codes.Code(out[i].StatusCode))
+			if !s.retriedTooLarge(&out[i], &batch[i].IngestRequest, err) {
+				refuseMalformed(&out[i], batch[i].GetClientSequence(), err)
+				s.opt.Metrics.refused(codes.Code(out[i].StatusCode))
+			}
 			i++
 			continue
 		}
@@ -1287,12 +1323,8 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 			refuse(&out[k], req.GetClientSequence(), codes.Unavailable, "not applied: an earlier input of the batch could not be journaled ("+tk.cause.Error()+"); resend")
 			continue
 		}
-		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
-			s.opt.Metrics.refused(le.code)
-			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
-			out[k].Field = le.field
-			continue
-		}
+		// A retry first: one of a sample taken before a restart that
+		// lowered a limit is answered as first sent, not refused.
 		sid := req.GetSessionId()
 		if sid != "" {
 			if wire := r.sessions.lookup(sid, req.GetClientSequence()); wire != nil {
@@ -1300,6 +1332,12 @@ func (s *Server) takeRun(r *robot, run []*arrivedRequest, out []encodedResponse,
 				tk.dups = append(tk.dups, k)
 				continue
 			}
+		}
+		if le := s.checkLimits(r, &req.IngestRequest); le != nil {
+			s.opt.Metrics.refused(le.code)
+			refuse(&out[k], req.GetClientSequence(), le.code, le.reason)
+			out[k].Field = le.field
+			continue
 		}
 		resp := &out[k].IngestResponse
 		if !convert.TakeInto(resp, r.fr, req.GetSample(), req.GetClientSequence()) {

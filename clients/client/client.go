@@ -235,10 +235,10 @@ func (c *Client) StartRun(ctx context.Context, robot, bootID string, run uint64,
 // client's sample decided it: in the response to that sample when this
 // session sent it, otherwise in a response carrying only resolutions
 // (OnlyResolutions). While no stream of the session is open, the service
-// keeps them for its id (within bounds: IngestResponse.resolved) and sends
-// them after the first response of a stream opened with Resume. A robot
-// deleted while it holds a sample resolves it VERDICT_INVALID,
-// REFUSAL_ROBOT_DELETED.
+// keeps them for its id (within bounds: IngestResponse.resolved; in
+// memory, so not across a restart of the service) and sends them after the
+// first response of a stream opened with Resume. A robot deleted while it
+// holds a sample resolves it VERDICT_INVALID, REFUSAL_ROBOT_DELETED.
 //
 // A request larger than the service's -max-message-bytes (64 KiB by
 // default) is refused alone, VERDICT_INVALID, status RESOURCE_EXHAUSTED,

@@ -846,7 +846,8 @@ type IngestRequest struct {
 	// at most 128 bytes). With it, a request whose (session_id,
 	// client_sequence) the robot already took is answered with the original
 	// verdict and not applied again, so that a client may resend what it
-	// has no verdict for. Empty: no deduplication.
+	// has no verdict for, even past a limit lowered since (-max-message-bytes,
+	// -max-string-bytes). Empty: no deduplication.
 	SessionId     string `protobuf:"bytes,4,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -943,11 +944,16 @@ type IngestResponse struct {
 	// session_id loses it with its stream. A retried sample is answered with
 	// its response as first sent. A held sample of a robot that is deleted
 	// before deciding it is resolved when the robot is deleted:
-	// VERDICT_INVALID, REFUSAL_ROBOT_DELETED, naming the robot; while its
+	// VERDICT_INVALID, REFUSAL_ROBOT_DELETED, naming the robot (unless the
+	// deletion fails, INTERNAL: its journal, left in place, holds the sample
+	// still, and the robot restored from it at the next start decides it); while its
 	// sending stream is gone, this resolution and those kept for the robot's
 	// sessions are kept by the robot's name (of the 16 robots most recently
 	// deleted with some) and sent on the next stream that sends a request
-	// naming it with that session_id. The journal records, in the
+	// naming it with that session_id. What is kept for a session is in the
+	// service's memory only: a restart of the service forgets it (a held
+	// sample is held again after it, Resolution.client_sequence, but a
+	// deleted robot's resolutions are lost). The journal records, in the
 	// deciding sample's response, every resolution it caused, without
 	// client_sequence (a deletion's resolutions are in no record: the
 	// journal's closing record says the robot was deleted).
@@ -1089,7 +1095,9 @@ func (x *IngestResponse) GetField() string {
 // IngestResponse.resolved for which stream receives it).
 type Resolution struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
-	// The held sample's sequence number (the robot's).
+	// The held sample's sequence number (the robot's; for
+	// REFUSAL_ROBOT_DELETED the deleted robot's, which a robot made again
+	// under its name numbers afresh: match a resolution by client_sequence).
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
 	// Its verdict.
 	Verdict Verdict `protobuf:"varint,2,opt,name=verdict,proto3,enum=reckon.v1.Verdict" json:"verdict,omitempty"`

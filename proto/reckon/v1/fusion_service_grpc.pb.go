@@ -77,9 +77,12 @@ type FusionServiceClient interface {
 	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
 	// far as the bytes give it (else 0). So is a request past the service's
 	// size limit (-max-message-bytes): RESOURCE_EXHAUSTED, REFUSAL_LIMIT, the
-	// reason naming its size and the limit, answering its client_sequence as
-	// far as its first KiB gives it. Only a message past twice the limit ends
-	// the stream, with RESOURCE_EXHAUSTED (grpc-go's own).
+	// reason naming its size and the limit, answering its client_sequence
+	// (read without decoding its sample); but one whose (session_id,
+	// client_sequence) the robot took before is answered as any retry, with
+	// the original verdict (a client resending after a restart that lowered
+	// the limit). Only a message past twice the limit ends the stream, with
+	// RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
@@ -287,9 +290,12 @@ type FusionServiceServer interface {
 	// INVALID_ARGUMENT, REFUSAL_MALFORMED, answering its client_sequence as
 	// far as the bytes give it (else 0). So is a request past the service's
 	// size limit (-max-message-bytes): RESOURCE_EXHAUSTED, REFUSAL_LIMIT, the
-	// reason naming its size and the limit, answering its client_sequence as
-	// far as its first KiB gives it. Only a message past twice the limit ends
-	// the stream, with RESOURCE_EXHAUSTED (grpc-go's own).
+	// reason naming its size and the limit, answering its client_sequence
+	// (read without decoding its sample); but one whose (session_id,
+	// client_sequence) the robot took before is answered as any retry, with
+	// the original verdict (a client resending after a restart that lowered
+	// the limit). Only a message past twice the limit ends the stream, with
+	// RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error

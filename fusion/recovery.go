@@ -43,6 +43,11 @@ type candidate struct {
 	corr       [4]float64
 }
 
+// isLandmarkKind reports whether k is a landmark fix's kind.
+func isLandmarkKind(k estimator.Kind) bool {
+	return k == estimator.KindRangeBearing || k == estimator.KindRange || k == estimator.KindBearing
+}
+
 // isLandmark reports whether c is a landmark fix.
 func (c *candidate) isLandmark() bool { return c.meas.Kind != 0 }
 
@@ -60,6 +65,43 @@ func markerKey(name string) uint32 {
 	h := fnv.New32a()
 	io.WriteString(h, name)
 	return max(h.Sum32(), 1)
+}
+
+// landmarkCandidate fills c's measurement from landmark fix entry e.
+// Folded at each relocation, at the newest bias (relocate). The landmark's
+// survey error goes with it from the map, not its block (which may stand
+// for another landmark by then); the relocation shares it among the fixes
+// of one landmark.
+func (r *Robot) landmarkCandidate(e *entry, c *candidate) {
+	c.meas = e.meas
+	if e.lm != 0 {
+		c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
+	}
+	if si, ok := r.perLandmarkSensor(e); ok {
+		c.setCorr(&r.cfg, si)
+	}
+}
+
+// clearLandmarkCandidates forgets, at an applied fix of the landmark at
+// (x, y), the candidates of that landmark and every pose candidate, and
+// keeps the landmark candidates of other landmarks: range and bearing to
+// one landmark see two of the pose's three dimensions, and a pose off by a
+// turn about it passes its fixes (the orchard carrier after a carry, IMU
+// off: one post's fixes applied at NIS 1 to 7 for seconds while the other
+// post's, in the same frames, were refused at NIS 18 to 41). What the other
+// landmarks' refused fixes say stands, and relocation weighs it with the
+// applied fixes of their frames (withSupports). Otherwise as
+// clearCandidates.
+func (r *Robot) clearLandmarkCandidates(x, y float64) {
+	kept := r.cands[:0]
+	for _, c := range r.cands {
+		if c.isLandmark() && (c.meas.LandmarkX != x || c.meas.LandmarkY != y) {
+			kept = append(kept, c)
+		}
+	}
+	r.cands = kept
+	r.trust.unconfirmed = false
+	r.trust.held, r.trust.heldMarker = false, 0
 }
 
 // clearCandidates forgets the candidates (an applied fix or a reseed: the
@@ -144,24 +186,14 @@ const maxLandmarkCandidates = 24
 func (r *Robot) considerRecovery(res *Result, at int) {
 	e := &r.live()[at]
 	kind := e.meas.Kind
-	landmark := kind == estimator.KindRangeBearing || kind == estimator.KindRange || kind == estimator.KindBearing
+	landmark := isLandmarkKind(kind)
 	if !r.cfg.Recovery.Enabled || kind != estimator.KindPose && !landmark {
 		return
 	}
 	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady, marker: e.marker}
 	meas := e.meas
 	if landmark {
-		// Folded at each relocation, at the newest bias (relocate). The
-		// landmark's survey error goes with it from the map, not its
-		// block (which may stand for another landmark by then); the
-		// relocation shares it among the fixes of one landmark.
-		c.meas = meas
-		if e.lm != 0 {
-			c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
-		}
-		if si, ok := r.perLandmarkSensor(e); ok {
-			c.setCorr(&r.cfg, si)
-		}
+		r.landmarkCandidate(e, &c)
 	} else {
 		st := r.stateThrough(e.t1)
 		r.foldBias(&meas, &st)

@@ -85,15 +85,19 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 		folded[i].meas.LandmarkVar = survey
 	}
 	for k := n; k >= r.cfg.Recovery.Count; k = min(k-1, k*2/3) {
-		set := folded[n-k:]
+		set, sb := folded[n-k:], bias[n-k:]
+		supported := 0
 		if distinctLandmarks(set) < 2 {
-			continue
+			set, sb = r.withSupports(set, sb, &st)
+			if supported = len(set) - k; supported == 0 {
+				continue
+			}
 		}
 		sol := r.solvePose(set, st.Pose())
 		if !sol.ok {
 			continue
 		}
-		sol = r.refineJoint(set, bias[n-k:], &st, sol.pose)
+		sol = r.refineJoint(set, sb, &st, sol.pose)
 		if !sol.ok || sol.dim <= 3 {
 			continue
 		}
@@ -125,12 +129,63 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 			short = true
 			continue
 		}
-		if r.renamed(set, bias[n-k:], &st) {
+		if r.renamed(set, sb, &st) {
 			continue
+		}
+		if supported > 0 {
+			return sol.pose, cov, fmt.Sprintf("%d refused fixes of one landmark and %d applied fixes of %d others in their frames agree on one pose", k, supported, distinctLandmarks(set)-1), true, false
 		}
 		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true, false
 	}
 	return estimator.Pose{}, [9]float64{}, "", false, short
+}
+
+// withSupports returns the folded candidates set of one landmark (with
+// their folded biases sb) together with the applied landmark fixes of other
+// landmarks at the same stamps (the same camera frames) that the window
+// holds, made candidates, carried to the newest candidate's stamp and
+// folded at st, all in fix-stamp order (jointEquations' cross terms need
+// it), each support before the refused candidates of its stamp. One
+// landmark leaves the pose's turn about it free; an applied fix of another
+// in the same frame pins it, and an estimate off by such a turn passes
+// that landmark's fixes while it refuses the first's (clearLandmarkCandidates).
+// Without supports it returns set and sb unchanged.
+func (r *Robot) withSupports(set []candidate, sb [][3]int, st *estimator.State) ([]candidate, [][3]int) {
+	lx, ly := set[0].meas.LandmarkX, set[0].meas.LandmarkY
+	to := set[len(set)-1].stamp
+	live := r.live()
+	var out []candidate
+	var outB [][3]int
+	j := 0
+	for i := r.locate(set[0].fixStamp - 1); i < len(live) && live[i].t1 <= set[len(set)-1].fixStamp; i++ {
+		e := &live[i]
+		if e.kind != entMeas || e.imu || e.failed || e.out.Gated || !isLandmarkKind(e.meas.Kind) ||
+			e.meas.LandmarkX == lx && e.meas.LandmarkY == ly {
+			continue
+		}
+		for j < len(set) && set[j].fixStamp < e.t1 {
+			out, outB = append(out, set[j]), append(outB, sb[j])
+			j++
+		}
+		if j == len(set) || set[j].fixStamp != e.t1 {
+			continue
+		}
+		c := candidate{stamp: e.t1, fixStamp: e.t1}
+		r.landmarkCandidate(e, &c)
+		if !r.carry(&c, to) {
+			continue
+		}
+		b := c.meas.Bias
+		survey := c.meas.LandmarkVar
+		c.meas.LandmarkVar = 0
+		r.foldBias(&c.meas, st)
+		c.meas.LandmarkVar = survey
+		out, outB = append(out, c), append(outB, b)
+	}
+	if len(out) == j {
+		return set, sb
+	}
+	return append(out, set[j:]...), append(outB, sb[j:]...)
 }
 
 // renamed reports whether the estimate st explains the folded landmark

@@ -725,8 +725,9 @@ func (f *Filter) Update(m *Measurement, gate Gate) (Outcome, error) {
 // NIS or the gate: the noise of a measurement that repeats part of earlier
 // ones' error carries less information than its covariance says, while
 // its own innovation is still distributed with its covariance (fusion's
-// per-landmark correlated errors; DEVELOPERS.md, "Design: Sensors"). Not
-// for IMU headings.
+// per-landmark correlated errors, whose extra also raises the white share
+// of the noise to the correlated one so that the Joseph form bounds the
+// error; DEVELOPERS.md, "Design: Sensors"). Not for IMU headings.
 func (f *Filter) UpdateRepeat(m *Measurement, gate Gate, extra *[9]float64) (Outcome, error) {
 	if m.Kind == KindIMUHeading {
 		return Outcome{Dim: m.Kind.Dim()}, fmt.Errorf("estimator: UpdateRepeat of an IMU heading")

@@ -116,9 +116,7 @@ func (r *Robot) noteIMU(o *Odometry) {
 // reference for the next interval: this interval's motion cannot be
 // resolved.
 func (r *Robot) referenceIMU(o *Odometry, res *odoResult) {
-	if o.Counts != nil {
-		copy(r.lastCounts, o.Counts)
-	}
+	r.noteCounts(o)
 	if !r.started {
 		r.start(o.StampNs)
 	} else {

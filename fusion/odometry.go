@@ -142,18 +142,15 @@ func (r *Robot) odometryEntry(o *Odometry, res *odoResult) error {
 	if jump != nil && o.Counts != nil && r.jumpCounts != nil && r.fromJumpCounts(o, t0, dtNs, res) {
 		jump = nil
 	}
-	if o.Counts != nil {
-		if jump != nil {
-			jump = r.wrapHint(jump, o.Counts, dtNs)
-			r.jumpCounts = append(r.jumpCounts[:0], o.Counts...)
-			return jump
-		}
-		copy(r.lastCounts, o.Counts)
-		r.jumpCounts = nil
+	if o.Counts != nil && jump != nil {
+		jump = r.wrapHint(jump, o.Counts, dtNs)
+		r.jumpCounts = append(r.jumpCounts[:0], o.Counts...)
+		return jump
 	}
 	if jump != nil {
 		return jump
 	}
+	r.noteCounts(o)
 	r.noteIMU(o)
 	if o.Step == nil && r.cfg.IMU != IMURotation {
 		r.scrub = res.scrub
@@ -182,9 +179,29 @@ func (r *Robot) fromJumpCounts(o *Odometry, t0, dtNs int64, res *odoResult) bool
 	return r.checkJump(e.step, float64(dtNs)*1e-9) == nil
 }
 
+// noteCounts makes the counts of a taken odometry sample o the reference
+// the next sample of counts is differenced from. A sample
+// without counts (a body step, or travels) ends the reference: the next
+// sample of counts is a reference again (interval), its interval a gap in
+// odometry, as a run's first is (DEVELOPERS.md, "Design: Odometry
+// samples"). Kept, the counts before the sample without them gave the
+// next one its travel since then, the other sample's included, over its own
+// interval: travel counted twice (0.03 m and 0.06 rad off after 0.3 s of
+// body steps at 0.1 m/s), or, faster, that sample refused as past
+// max_speed_m_per_s (TestCountsAcrossBodySteps).
+func (r *Robot) noteCounts(o *Odometry) {
+	if o.Counts == nil {
+		r.lastCounts = nil
+	} else {
+		copy(r.lastCounts, o.Counts)
+	}
+	r.jumpCounts = nil
+}
+
 // interval writes each wheel's travel over o's interval into travel and
-// returns the interval's start and length. ok is false for the first
-// sample of counts, which only sets the reference.
+// returns the interval's start and length. ok is false for a sample of
+// counts without a reference (a run's first, or the first after a sample
+// without counts), which only sets the reference.
 func (r *Robot) interval(o *Odometry, travel []float64, res *odoResult) (t0, dtNs int64, ok bool) {
 	if o.Counts == nil {
 		copy(travel, o.TravelM)
@@ -199,6 +216,8 @@ func (r *Robot) interval(o *Odometry, travel []float64, res *odoResult) (t0, dtN
 		if !r.started {
 			r.start(o.StampNs)
 		} else {
+			// The travel since the newest odometry is unknown: a gap.
+			res.gapNs = o.StampNs - r.newest
 			r.newest = o.StampNs
 		}
 		r.lastCounts = append([]int64(nil), o.Counts...)

@@ -236,6 +236,13 @@ func (r *Robot) AddOdometry(o Odometry) Result {
 			r.stats.gaps++
 		}
 		r.stats.count(VerdictApplied, true)
+		if imu != nil && r.cfg.IMU == IMUAbsolute && gapNs > 0 {
+			// A reference within a run (counts after travels or a body step) keeps
+			// its IMU heading, as a heading sample at its stamp would be
+			// taken; a run's first, whose stamp starts the history, still
+			// does not.
+			r.odometryHeading(&res, o.StampNs, *imu)
+		}
 		return r.finish(res)
 	}
 	if gapNs > 0 {

@@ -177,7 +177,7 @@ func (r *Robot) Snapshot() ([]byte, error) {
 		// with key 0 for a reseed at a fix that named no marker.
 		e.uint(45, uint64(r.trust.heldMarker))
 	}
-	if r.marks != (markTable{}) {
+	if len(r.marks) > 0 {
 		// Absent otherwise, as in snapshots before version 21.
 		e.message(46, func(e *wenc) { encMarks(e, &r.marks) })
 	}
@@ -1195,37 +1195,39 @@ func decBias(d *wdec, w *biasWindow) {
 }
 
 func encMarks(e *wenc, m *markTable) {
-	lm, sensor, stamp := make([]int64, len(m)), make([]int64, len(m)), make([]int64, len(m))
-	for i := range m {
-		lm[i], sensor[i], stamp[i] = int64(m[i].lm), int64(m[i].sensor), m[i].last
+	lm, sensor, stamp := make([]int64, len(*m)), make([]int64, len(*m)), make([]int64, len(*m))
+	for i, x := range *m {
+		lm[i], sensor[i], stamp[i] = int64(x.lm), int64(x.sensor), x.last
 	}
 	e.ints(1, lm)
 	e.ints(2, sensor)
 	e.ints(3, stamp)
 }
 
+// decMarks reads a markTable: three equally long lists, landmarks,
+// sensors and stamps. Entries of landmark 0 are the empty slots of the
+// first version 21 snapshots, whose table had 8.
 func decMarks(d *wdec, m *markTable) {
+	var f [3][]int64
 	for num, ok := d.next(); ok; num, ok = d.next() {
-		v := d.intSlice(num)
-		if len(v) != len(m) || num < 1 || num > 3 {
-			d.fail("landmark fixes: field %d of %d values", num, len(v))
+		if num < 1 || num > 3 || f[num-1] != nil {
+			d.fail("landmark fixes: field %d", num)
 			return
 		}
-		for i := range m {
-			switch num {
-			case 1, 2:
-				if v[i] < 0 || v[i] > math.MaxInt32 {
-					d.fail("landmark fixes: field %d value %d", num, v[i])
-					return
-				}
-				if num == 1 {
-					m[i].lm = int32(v[i])
-				} else {
-					m[i].sensor = int32(v[i])
-				}
-			case 3:
-				m[i].last = v[i]
-			}
+		f[num-1] = d.intSlice(num)
+	}
+	if len(f[0]) != len(f[1]) || len(f[0]) != len(f[2]) {
+		d.fail("landmark fixes: %d landmarks, %d sensors and %d stamps", len(f[0]), len(f[1]), len(f[2]))
+		return
+	}
+	*m = (*m)[:0]
+	for i := range f[0] {
+		if f[0][i] < 0 || f[0][i] > math.MaxInt32 || f[1][i] < 0 || f[1][i] > math.MaxInt32 {
+			d.fail("landmark fixes: landmark %d, sensor %d", f[0][i], f[1][i])
+			return
+		}
+		if f[0][i] != 0 {
+			*m = append(*m, markEntry{lm: int32(f[0][i]), sensor: int32(f[1][i]), last: f[2][i]})
 		}
 	}
 }
@@ -1237,8 +1239,11 @@ func (r *Robot) checkMarks() error {
 	perLandmark := func(si int) bool { return si >= 0 && si < len(r.cfg.Sensors) && r.cfg.Sensors[si].perLandmark() }
 	for i := range r.marks {
 		m := &r.marks[i]
-		if m.lm != 0 && (int(m.lm) > len(r.cfg.Landmarks) || !perLandmark(int(m.sensor))) {
+		if m.lm <= 0 || int(m.lm) > len(r.cfg.Landmarks) || !perLandmark(int(m.sensor)) {
 			return fmt.Errorf("%w: a landmark fix of landmark %d of %d by sensor %d, which is not one with per-landmark correlated errors", ErrSnapshot, m.lm, len(r.cfg.Landmarks), m.sensor)
+		}
+		if _, twice := r.marks[:i].lookup(m.sensor, m.lm); twice {
+			return fmt.Errorf("%w: two last fixes of landmark %d by sensor %d", ErrSnapshot, m.lm, m.sensor)
 		}
 	}
 	for i := range r.cands {

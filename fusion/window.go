@@ -26,8 +26,10 @@ const (
 
 // entry is one input in the history window, kept in stamp order: odometry
 // intervals by their end, measurements and resets at their stamp (after the
-// odometry that ends there). Odometry entries are contiguous: each starts
-// where the previous one ended.
+// odometry that ends there). Odometry entries do not overlap: each starts
+// where the previous one ended, or later after a sample that only set a
+// reference (counts or, in rotation mode, the IMU's heading), whose
+// interval is a gap in odometry without an entry.
 type entry struct {
 	kind   entryKind
 	t0, t1 int64

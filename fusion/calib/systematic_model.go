@@ -138,6 +138,8 @@ func newSysModel(cfg *fusion.Config, odo OdometrySource, fixes []fusion.Fix, opt
 // periods (no travel lost); otherwise, plausible from the jump's counts,
 // the counts started afresh and only the jump's period is left out (a gap,
 // where the robot, which cannot leave one, spreads the travel over both).
+// A body step or travels end the counts' reference, as at the robot: the
+// next sample of counts only sets it again.
 //
 // A recording in stamp order (the usual case) is taken sample by sample as
 // odo hands them over, and nothing of it is kept but the intervals; one
@@ -215,6 +217,7 @@ func (d *intervalDecoder) take(o *fusion.Odometry) {
 	switch {
 	case o.Step != nil:
 		iv.off, iv.isStep = int32(len(m.steps)), true
+		d.endCounts()
 	case o.Counts != nil && len(o.Counts) == m.nw:
 		m.counts = true
 		from := &d.ref
@@ -231,6 +234,7 @@ func (d *intervalDecoder) take(o *fusion.Odometry) {
 		d.jump.counts = nil
 	case len(o.TravelM) == m.nw && m.nw > 0:
 		copy(tr, o.TravelM)
+		d.endCounts()
 	default:
 		ok = false
 	}
@@ -258,6 +262,16 @@ func (d *intervalDecoder) take(o *fusion.Odometry) {
 		m.steps = append(m.steps, *o.Step)
 	}
 	m.ivs = append(m.ivs, iv)
+}
+
+// endCounts ends the counts' reference at a sample without counts (a body
+// step, or travels), as the robot does (fusion's noteCounts): the next
+// sample of counts is the reference again and gives no interval. Kept,
+// that sample's interval ran from the counts before the other sample,
+// over its period too, and the dead reckoning took that period's travel
+// twice (TestCountsIntervalsAcrossBodySteps).
+func (d *intervalDecoder) endCounts() {
+	d.ref.counts, d.jump.counts = nil, nil
 }
 
 // countsRef is a sample of encoder counts that later samples' travel is

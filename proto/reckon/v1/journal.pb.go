@@ -806,13 +806,16 @@ func (x *RobotSnapshot) GetLandmarkFixes() *SnapshotLandmarkFixes {
 	return nil
 }
 
-// SnapshotLandmarkFixes holds, slot by slot (at most 8), a landmark's
-// newest fix by a sensor whose correlated error is per landmark
-// (DEVELOPERS.md, "Design: Sensors").
+// SnapshotLandmarkFixes holds, entry by entry (three lists of one
+// length, at most one entry per landmark and sensor), a landmark's newest
+// fix by a sensor whose correlated error is per landmark, among those
+// within 6 correlation times of the history window's start (DEVELOPERS.md,
+// "Design: Sensors").
 type SnapshotLandmarkFixes struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// The landmark's place in the configuration's landmarks, from 1 (0: an
-	// empty slot).
+	// empty slot, written by the first version 21 snapshots, which had 8
+	// slots; read as no entry).
 	Landmark []int32 `protobuf:"varint,1,rep,packed,name=landmark,proto3" json:"landmark,omitempty"`
 	// The sensor's place in the configuration's sensors, from 0.
 	Sensor []int32 `protobuf:"varint,2,rep,packed,name=sensor,proto3" json:"sensor,omitempty"`

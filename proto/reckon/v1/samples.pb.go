@@ -269,7 +269,11 @@ func (x *WheelTravel) GetTravelM() []float64 {
 	return nil
 }
 
-// WheelCounts is each wheel's cumulative encoder count. Counts whose
+// WheelCounts is each wheel's cumulative encoder count. A run's first
+// sample of counts only sets the reference the next is differenced from;
+// so does the first after a sample of travel or a step (the counts' travel
+// since the sample before those would count theirs again), and its
+// interval from the newest odometry is reported as a gap. Counts whose
 // motion since the last sample is implausible (max_speed_m_per_s,
 // max_turn_rate_rad_per_s) are refused and kept: the next sample's counts
 // are taken from the counts before them if that motion is plausible (one

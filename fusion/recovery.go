@@ -104,9 +104,10 @@ func (r *Robot) clearLandmarkCandidates(x, y float64) {
 	r.trust.held, r.trust.heldMarker = false, 0
 }
 
-// clearCandidates forgets the candidates (an applied fix or a reseed: the
-// estimate agrees with a sensor again, or was set anew), and with them the
-// wait for another marker.
+// clearCandidates forgets the candidates (an applied fix other than a
+// landmark's, clearLandmarkCandidates, or a reseed: the estimate agrees
+// with a sensor again, or was set anew), and with them the wait for
+// another marker.
 func (r *Robot) clearCandidates() {
 	r.cands = r.cands[:0]
 	r.trust.unconfirmed = false

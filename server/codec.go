@@ -88,6 +88,7 @@ func (c codec) Unmarshal(data mem.BufferSlice, v any) error {
 	}
 	b := r.slab.take(data.Len())
 	data.CopyTo(b)
+	r.size = len(b)
 	if r.dec == nil || !decodeRequest(r.dec, b, &r.IngestRequest) {
 		r.IngestRequest.Reset()
 		if err := proto.Unmarshal(b, &r.IngestRequest); err != nil {
@@ -249,6 +250,12 @@ type arrivedRequest struct {
 	// arrived is when it was received (zero until ingestStream sets it
 	// for a request that came without a stream).
 	arrived time.Time
+	// size is the length of the bytes the codec copied it into (0: none
+	// were: a request too large, or another codec's).
+	size int
+	// charged is what its stream charged the server's budget for it
+	// (inbox.put, pendingBudget).
+	charged int64
 }
 
 // encodedResponse is a verdict and, when it was journaled, its encoding;

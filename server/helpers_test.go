@@ -8,6 +8,7 @@ import (
 	"log/slog"
 	"net"
 	"os"
+	"sync"
 	"sync/atomic"
 	"testing"
 
@@ -68,6 +69,37 @@ func serveLoopback(tc testConfig) (addr string, stop func() error, err error) {
 		}
 		return errors.Join(err, srv.Close())
 	}, nil
+}
+
+// serveServer serves a Server made with opt on a loopback port with the
+// service's gRPC options and extra, for a test that looks into the Server;
+// stop ends it (and the test's cleanup does, if it did not).
+func serveServer(t *testing.T, opt Options, extra ...grpc.ServerOption) (s *Server, api pb.FusionServiceClient, stop func()) {
+	t.Helper()
+	opts, err := ServiceOptions(0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if s, err = New(opt); err != nil {
+		t.Fatal(err)
+	}
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	gs := grpc.NewServer(append(opts, extra...)...)
+	Register(gs, s)
+	go gs.Serve(lis)
+	var once sync.Once
+	stop = func() {
+		once.Do(func() {
+			s.EndStreams()
+			gs.GracefulStop()
+			s.Close()
+		})
+	}
+	t.Cleanup(stop)
+	return s, dial(t, lis.Addr().String()), stop
 }
 
 func start(t testing.TB, tc testConfig) *running {

@@ -12,7 +12,7 @@ import (
 // most maxBatch, and the end comes after the last of them.
 func TestInbox(t *testing.T) {
 	ctx := context.Background()
-	b := newInbox()
+	b := newInbox(&pendingBudget{max: 1 << 62})
 	const n = 20000
 	go func() {
 		for i := 0; i < n; i++ {
@@ -54,7 +54,7 @@ func TestInbox(t *testing.T) {
 // on an empty one both return when the stream's context ends.
 func TestInboxCancel(t *testing.T) {
 	ctx, cancel := context.WithCancel(context.Background())
-	full := newInbox()
+	full := newInbox(&pendingBudget{max: 1 << 62})
 	for i := 0; i < maxBatch; i++ {
 		if err := full.put(ctx, &arrivedRequest{}, true); err != nil {
 			t.Fatal(err)
@@ -62,7 +62,7 @@ func TestInboxCancel(t *testing.T) {
 	}
 	putErr, takeErr := make(chan error), make(chan error)
 	go func() { putErr <- full.put(ctx, &arrivedRequest{}, true) }()
-	go func() { takeErr <- newInbox().wait(ctx, nil, nil) }()
+	go func() { takeErr <- newInbox(&pendingBudget{max: 1 << 62}).wait(ctx, nil, nil) }()
 	time.Sleep(10 * time.Millisecond)
 	cancel()
 	for _, c := range []chan error{putErr, takeErr} {

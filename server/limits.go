@@ -43,6 +43,18 @@ type Limits struct {
 	// view's event stream holds one, so it should be more than
 	// MaxViewers.
 	MaxHTTPConnections int
+	// MaxPendingBytes bounds the bytes of the ingest requests that every
+	// stream has received and not yet taken, together (64 MiB;
+	// -max-pending-bytes): a request is charged its encoding and its
+	// arrivedRequest (184 bytes on 64-bit; the sample decoded besides is
+	// not charged). Past it, a stream
+	// that holds requests not taken waits before receiving more, and its
+	// client's sends block through gRPC's flow control: nothing is
+	// refused. A stream holding none may always receive one, so the bytes
+	// held stay below the bound plus one request per stream. Without it,
+	// each stream could hold 2 x 256 requests of -max-message-bytes: 64
+	// GiB at the defaults.
+	MaxPendingBytes int
 }
 
 // withDefaults returns l with its zero fields set to the defaults.
@@ -60,8 +72,16 @@ func (l Limits) withDefaults() Limits {
 	def(&l.MaxIngestStreams, 2048)
 	def(&l.MaxConnections, 2048)
 	def(&l.MaxHTTPConnections, 64)
+	def(&l.MaxPendingBytes, DefaultMaxPendingBytes)
 	return l
 }
+
+// DefaultMaxPendingBytes is Limits.MaxPendingBytes' default, 64 MiB: a
+// small coprocessor's memory (a few hundred MiB free for the service) can
+// spare it, and it holds a backlog of about 200,000 ordinary samples (100
+// to 200 bytes encoded, and 184 for the struct), 256 for each of 800
+// streams, or 1,000 requests of the default -max-message-bytes.
+const DefaultMaxPendingBytes = 64 << 20
 
 // limitError is a refusal at a limit: the status code, a reason naming
 // the field, the limit and its flag, and the field's path.

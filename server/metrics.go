@@ -2,6 +2,7 @@ package server
 
 import (
 	"net/http"
+	"sync/atomic"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -32,6 +33,10 @@ type Metrics struct {
 	connRef  prometheus.Counter
 	httpConn *prometheus.GaugeVec
 	httpRef  *prometheus.CounterVec
+	waits    prometheus.Counter
+	// pending is the budget that reckon_ingest_pending_bytes reads, the
+	// last server's made with these metrics.
+	pending  atomic.Pointer[pendingBudget]
 	perRobot robotVecs
 }
 
@@ -63,9 +68,19 @@ func NewMetrics() *Metrics {
 		Help: "Open connections of the metrics and live view HTTP servers (Server.LimitHTTPConnections), by server."}, []string{"server"})
 	m.httpRef = prometheus.NewCounterVec(prometheus.CounterOpts{Name: "reckon_http_connections_refused_total",
 		Help: "Connections of an HTTP server closed at once because -max-http-connections of its were open, by server."}, []string{"server"})
+	m.waits = prometheus.NewCounter(prometheus.CounterOpts{Name: "reckon_ingest_receive_waits_total",
+		Help: "Times an ingest stream waited before receiving more because -max-pending-bytes of received samples waited to be taken (its client's sends blocked meanwhile)."})
+	pendingG := prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "reckon_ingest_pending_bytes",
+		Help: "Bytes of ingest requests received and not yet taken, all streams together (bounded by -max-pending-bytes plus one request a stream)."},
+		func() float64 {
+			if g := m.pending.Load(); g != nil {
+				return float64(g.used.Load())
+			}
+			return 0
+		})
 	m.perRobot = newRobotVecs()
 	m.reg.MustRegister(m.inputs, m.refusals, m.latency, m.watching, m.count, m.torn, m.pausedG, m.quarG, m.dups, m.diverged, m.viewers, m.viewConf,
-		m.conns, m.connRef, m.httpConn, m.httpRef,
+		m.conns, m.connRef, m.httpConn, m.httpRef, m.waits, pendingG,
 		prometheus.NewGoCollector(), prometheus.NewProcessCollector(prometheus.ProcessCollectorOpts{}))
 	m.reg.MustRegister(m.perRobot.collectors()...)
 	return m
@@ -80,6 +95,20 @@ func (m *Metrics) verdict(v pb.Verdict, d time.Duration) {
 	}
 	m.inputs.WithLabelValues(convert.VerdictName(v)).Inc()
 	m.latency.Observe(d.Seconds())
+}
+
+// pendingBytes makes reckon_ingest_pending_bytes read g.
+func (m *Metrics) pendingBytes(g *pendingBudget) {
+	if m != nil {
+		m.pending.Store(g)
+	}
+}
+
+// pendingWait counts a receiver's wait at -max-pending-bytes.
+func (m *Metrics) pendingWait() {
+	if m != nil {
+		m.waits.Inc()
+	}
 }
 
 func (m *Metrics) refused(c codes.Code) {

@@ -343,8 +343,8 @@ func median(v []float64) float64 {
 // stamp is before the one sent last goes right after it), merged across
 // the robots by send time, through the
 // service's codec and the path of a request taken where it was received
-// (ingestStream), each robot on a stream of its own, the service in memory
-// only. It reports the time and the allocations of a sample, warm: it is
+// (ingestStream, charged to the budget of pending bytes around it), each
+// robot on a stream of its own, the service in memory only. It reports the time and the allocations of a sample, warm: it is
 // for what the service's own path does, which RobotRates' CPU figure,
 // moved by the host, cannot show. Its instruction count does not move
 // with the host: run it under callgrind (DEVELOPERS.md, "Benchmarks").
@@ -472,8 +472,12 @@ func ratesPathTake(s *Server, cd codec, wire mem.BufferSlice, req *arrivedReques
 	if err := cd.Unmarshal(wire, req); err != nil {
 		panic(err)
 	}
+	// Charged and released as inbox.put and inbox.release do.
+	req.charged = chargeOf(req)
+	s.pending.charge(req.charged)
 	batch[0] = req
 	out := s.ingestStream(batch, ob, sc)
+	s.pending.release(req.charged)
 	sc.out = out
 	ob.drain()
 	return &out[0]

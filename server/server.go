@@ -87,6 +87,13 @@ type Options struct {
 	// afterRun, if set (tests), is called after a run of samples released
 	// its robot's lock.
 	afterRun func()
+	// takingBatch, if set (tests), is called with each batch that an
+	// ingest stream's batch-taking goroutine took from its inbox, before
+	// it is applied, holding the stream's taking turn: a test that blocks
+	// in it holds the stream's taker, as a robot's lock held long would.
+	// Every request then goes to the batches (none is taken where it was
+	// received), so that no receiver is held with the taker.
+	takingBatch func(batch []*arrivedRequest)
 	// afterTake, if set (benchmarks), is called after an ingest stream's
 	// take with the number of samples it took and the time from its start
 	// to its verdicts sent: the service's own path where it runs, among
@@ -117,7 +124,10 @@ type Server struct {
 
 	watching  atomic.Int64 // open Watch streams
 	ingesting atomic.Int64 // open Ingest streams
-	live      liveHub      // open live views (live.go)
+	// pending bounds the bytes of the ingest requests received and not
+	// yet taken (Limits.MaxPendingBytes).
+	pending pendingBudget
+	live    liveHub // open live views (live.go)
 	// dirLock is the journal directory's lock (nil: no journal), which
 	// the sync loop checks is still the directory's (checkJournalDir);
 	// dirGone is set, with why, once it is not.
@@ -231,6 +241,8 @@ func New(opt Options) (*Server, error) {
 	}
 	s := &Server{opt: opt, log: opt.Logger, robots: map[string]*robot{}, busy: map[string]chan struct{}{}, dirLock: dirLock, goneCh: make(chan struct{}), stopSync: make(chan struct{}), syncDone: make(chan struct{}), stopping: make(chan struct{})}
 	s.verifyCtx, s.stopVerify = context.WithCancel(context.Background())
+	s.pending.max, s.pending.waited = int64(opt.Limits.MaxPendingBytes), opt.Metrics.pendingWait
+	opt.Metrics.pendingBytes(&s.pending)
 	if opt.JournalDir != "" && opt.FS == nil {
 		// Without it (a directory that cannot be opened for reading),
 		// each journal syncs by itself as elsewhere.
@@ -752,7 +764,7 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	}
 	defer s.ingesting.Add(-1)
 	ctx := stream.Context()
-	in := newInbox()
+	in := newInbox(&s.pending)
 	// A third goroutine sends the verdicts of large batches, so that taking
 	// the next batch overlaps with sending the last one's verdicts.
 	snd := &sender{stream: stream, out: make(chan []encodedResponse, 4)}
@@ -762,6 +774,7 @@ func (s *Server) Ingest(stream pb.FusionService_IngestServer) error {
 	t := &ingestTurn{s: s, in: in, snd: snd, ob: ob, done: ctx.Done(), stop: s.stopping, sc: scratch{verdicts: slab{next: verdictSlabStart}}}
 	go t.receive(ctx, stream)
 	err := t.takeBatches(ctx)
+	in.close()
 	if err == nil {
 		// The client closed its side: what is pending still goes out.
 		if rest := ob.close(false, nil); len(rest) > 0 {
@@ -857,6 +870,14 @@ func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
 	var before time.Time
 	var reqs []arrivedRequest // a block of requests to receive into
 	for {
+		if t.s.pending.spent() {
+			// -max-pending-bytes: received, not yet taken.
+			if err := t.s.pending.wait(ctx, t.in, t.stop); err != nil {
+				t.in.end(err)
+				return
+			}
+			before = time.Time{} // the wait was not the request's
+		}
 		if len(reqs) == 0 {
 			reqs = make([]arrivedRequest, requestBlock)
 		}
@@ -871,7 +892,7 @@ func (t *ingestTurn) receive(ctx context.Context, stream grpc.ServerStream) {
 			now := time.Now()
 			req.arrived = now
 			switch {
-			case now.Sub(before) >= aloneAfter && now.UnixNano()-t.lastTake.Load() >= int64(quietFor):
+			case now.Sub(before) >= aloneAfter && now.UnixNano()-t.lastTake.Load() >= int64(quietFor) && t.s.opt.takingBatch == nil:
 				here = 1
 			case here > 0 && here < togetherHere:
 				here++
@@ -957,6 +978,9 @@ func (t *ingestTurn) takeBatches(ctx context.Context) error {
 		t.mu.Lock()
 		if t.err == nil {
 			t.batch = t.in.takeNow(t.batch)
+			if h := t.s.opt.takingBatch; h != nil {
+				h(t.batch)
+			}
 			t.err = t.takeOne(ctx, t.batch)
 		}
 		err := t.err
@@ -984,6 +1008,7 @@ func (t *ingestTurn) takeOne(ctx context.Context, batch []*arrivedRequest) error
 	var resps []encodedResponse
 	if len(batch) > 0 {
 		resps = t.s.ingestStream(batch, t.ob, &t.sc)
+		t.in.release(batch)
 	}
 	if !t.gone() {
 		// A stream that is gone leaves them pending, to be kept for its

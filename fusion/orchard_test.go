@@ -36,10 +36,6 @@ type ocTally struct {
 	// (the worst of the runs), seconds.
 	kidnaps, reseeded        int
 	worstReseedS, worstBackS float64
-	// reseedNEES is the largest NEES of the first reseed after a
-	// set-down against the truth at its stamp, and where.
-	reseedNEES   float64
-	reseedNEESAt string
 	// reasons counts, per distrust reason (bit), the samples outside the
 	// carry that it stood at.
 	reasons [16]int
@@ -70,9 +66,6 @@ func (a *ocTally) add(b *ocTally) {
 	a.reseeded += b.reseeded
 	a.worstReseedS = max(a.worstReseedS, b.worstReseedS)
 	a.worstBackS = max(a.worstBackS, b.worstBackS)
-	if b.reseedNEES > a.reseedNEES {
-		a.reseedNEES, a.reseedNEESAt = b.reseedNEES, b.reseedNEESAt
-	}
 	for k := range a.reasons {
 		a.reasons[k] += b.reasons[k]
 	}
@@ -106,8 +99,8 @@ func (a *ocTally) String() string {
 	}
 	fmt.Fprintf(&b, "; fixes %d, misread %d of them applied %d, valid gated %.2f%%", a.fixes, a.misread, a.misreadApplied, pct(a.validGated, a.fixes-a.misread))
 	if a.kidnaps > 0 {
-		fmt.Fprintf(&b, "; kidnaps %d, reseeded %d, worst reseed %.1f s, worst first inside 99.9%% %.1f s, longest trusted outside 99.9%% after the set-down %.2f s (%s), largest NEES of a reseed %.1f (%s)",
-			a.kidnaps, a.reseeded, a.worstReseedS, a.worstBackS, a.setDownS, a.setDownAt, a.reseedNEES, a.reseedNEESAt)
+		fmt.Fprintf(&b, "; kidnaps %d, reseeded %d, worst reseed %.1f s, worst first inside 99.9%% %.1f s, longest trusted outside 99.9%% after the set-down %.2f s (%s)",
+			a.kidnaps, a.reseeded, a.worstReseedS, a.worstBackS, a.setDownS, a.setDownAt)
 	}
 	for k, c := range a.reasons {
 		if c > 0 {
@@ -163,14 +156,6 @@ func ocRunOne(seed uint64, run *ocRun, cfg fusion.Config) (ocTally, error) {
 			tl.refusals = append(tl.refusals, fmt.Sprintf("seed %d, input at %.3f s: %v %v", seed, s.at, v, err))
 		}
 	}
-	// The truth at each odometry stamp, for a reseed's: the camera's
-	// stamps are odometry stamps (orchardsim_test.go).
-	truthAt := map[int64]estimator.Pose{}
-	for i := range run.ins {
-		if o := run.ins[i].odo; o != nil {
-			truthAt[o.StampNs] = run.ins[i].truth
-		}
-	}
 	outFrom := int64(-1)
 	reseedAt, backAt := int64(-1), int64(-1)
 	carryReseed := false // reseeded while still carried
@@ -199,19 +184,6 @@ func ocRunOne(seed uint64, run *ocRun, cfg fusion.Config) (ocTally, error) {
 			switch {
 			case ev.StampNs >= run.setDownUs*1000 && reseedAt < 0:
 				reseedAt = ev.StampNs
-				// The reseed's pose and covariance against the truth
-				// at its stamp.
-				p, err := rb.PoseAt(ev.StampNs)
-				tr, ok := truthAt[ev.StampNs]
-				if err != nil || !ok {
-					tl.faults = append(tl.faults, fmt.Sprintf("seed %d: no estimate or truth at the reseed's stamp %d: %v", seed, ev.StampNs, err))
-					break
-				}
-				if nees, err := estimator.PoseNEES(p.Pose, &p.Cov, tr); err != nil {
-					tl.faults = append(tl.faults, fmt.Sprintf("seed %d: %v", seed, err))
-				} else if nees > tl.reseedNEES {
-					tl.reseedNEES, tl.reseedNEESAt = nees, fmt.Sprintf("seed %d at %.1f s", seed, float64(ev.StampNs)*1e-9)
-				}
 			case ev.StampNs >= run.liftUs*1000:
 				// Two markers seen in one frame place the carried
 				// carrier where it is then; the carry goes on, and
@@ -304,18 +276,9 @@ func ocRunOne(seed uint64, run *ocRun, cfg fusion.Config) (ocTally, error) {
 // if set.
 func ocRuns(t *testing.T, n int, durS float64, e ocErrors, edit func(*fusion.Config)) ocTally {
 	t.Helper()
-	seeds := make([]uint64, n)
-	for k := range seeds {
-		seeds[k] = uint64(500 + k)
-	}
-	return ocRunsOf(t, seeds, durS, e, edit)
-}
-
-// ocRunsOf is ocRuns for the runs of the given seeds.
-func ocRunsOf(t *testing.T, seeds []uint64, durS float64, e ocErrors, edit func(*fusion.Config)) ocTally {
-	t.Helper()
 	var sum ocTally
-	for _, seed := range seeds {
+	for k := range n {
+		seed := uint64(500 + k)
 		run := ocSimulate(seed, durS, e)
 		cfg := ocConfig(&run)
 		if edit != nil {
@@ -424,38 +387,25 @@ const ocKidnapRuns = 12
 // TestOrchardKidnap: once a run the carrier is carried 6 to 12 s to
 // another row and set down facing along it, with its IMU running (it sees
 // the turn) or switched off while carried (it comes back on a new zero).
-// Every run is reseeded from the refused landmark fixes of two markers (or
-// of one, beside applied fixes of another in the same frames) within 10 s
-// of the set-down, the estimate is inside its 99.9% region
+// Every run is reseeded from the refused landmark fixes of two markers
+// within 10 s of the set-down, the estimate is inside its 99.9% region
 // within 10 s of it, and no valid input is refused and no numerical fault
 // occurs. Over the 30 s after the set-down the estimate is trusted outside
-// its 99.9% region on at most 5% of the samples (measured over 12 runs in
-// session 29, the camera's correlated error per landmark: 0.09% with the
-// IMU on, 0.04% with it off; 0.26% and 0.04% before relocation took it per
-// landmark and took applied fixes beside refused ones; 0.42% and 0.54%
-// with it shared), and for at most 1 s at a stretch (0.02 s and 0.02 s
-// measured; 0.58 s, seed 511 reseeded only while still carried, and 0.02
-// s before; 0.12 and 0.22 s shared), and the reseed's covariance covers
-// its error: each first reseed after a set-down has its truth inside its
-// 99.9% region (NEES at most 4.7 and 7.6 measured; 6.5 and 9.5 before, and
-// shared; 13.4 and 24.7 before session 29). Before candidates were kept from being carried across a
-// turn by hand (turnedByHand), one run with the IMU on was reseeded while
-// still carried, 0.3 m off, and trusted outside the region for 4.08 s
-// after the set-down (1.47% of the samples). Before session 29, one run
-// with the IMU off (seed 500) was reseeded from its last carried frame's
-// fixes as if seen where it was set down, 0.19 m off (NEES 24.7), and
-// trusted outside the region for 1.36 s (1.08% of the samples): the limit
-// with the IMU off was 2 s until then. With the survey error shared among
-// a landmark's fixes but the stand's fixes still carried across the
-// set-down (setDownAcross), the same reseed was at NEES 20.5
-// (DEVELOPERS.md, the orchard carrier).
+// its 99.9% region on at most 5% of the samples (measured over 12 runs:
+// 0.16% with the IMU on, 0.60% with it off; 0.15% and 1.08% with the
+// camera's correlated error taken as shared), and for at most 1 s at a
+// stretch with the IMU on (0.04 s measured), 2 s with it off (1.36 s,
+// right after a reseed whose pose was 4 of its standard deviations off:
+// DEVELOPERS.md, the orchard carrier, left open). Before candidates were
+// kept from being carried across a turn by hand (turnedByHand), one run
+// with the IMU on was reseeded while still carried, 0.3 m off, and trusted
+// outside the region for 4.08 s after the set-down (1.47% of the samples).
 func TestOrchardKidnap(t *testing.T) {
-	q999 := distuv.ChiSquared{K: 3}.Quantile(0.999)
 	for _, c := range []struct {
 		name     string
 		imuOff   bool
 		longestS float64
-	}{{"imu-on", false, 1}, {"imu-off", true, 1}} {
+	}{{"imu-on", false, 1}, {"imu-off", true, 2}} {
 		t.Run(c.name, func(t *testing.T) {
 			// Without the outage, which would hide the set-down from the
 			// camera in runs this short.
@@ -467,11 +417,6 @@ func TestOrchardKidnap(t *testing.T) {
 				t.Errorf("%d of %d runs reseeded, the worst %.1f s after the set-down; first inside the 99.9%% region after %.1f s at worst",
 					sum.reseeded, sum.kidnaps, sum.worstReseedS, sum.worstBackS)
 			}
-			// The reseed's covariance covers its error: 24 reseeds
-			// of 3 dof, each inside its 99.9% region (q999).
-			if sum.reseedNEES > q999 {
-				t.Errorf("a reseed after the set-down at NEES %.1f (%s), outside its 99.9%% region (%.2f)", sum.reseedNEES, sum.reseedNEESAt, q999)
-			}
 			if sum.setDownS > c.longestS {
 				t.Errorf("trusted outside the 99.9%% region after the set-down for %.2f s (%s), above %.2f s", sum.setDownS, sum.setDownAt, c.longestS)
 			}
@@ -482,45 +427,6 @@ func TestOrchardKidnap(t *testing.T) {
 				t.Error(r)
 			}
 		})
-	}
-}
-
-// TestOrchardKidnapStanding: the carries after which the carrier stands at
-// a tree, seeing the same two posts for seconds (seeds 526 and 535 of the
-// first 40 of TestOrchardKidnap's runs, IMU on and off): each is reseeded
-// within 10 s of the set-down, and is trusted outside its 99.9% region for
-// at most 2 s at a stretch in the 30 s after it (chi-square quantile from
-// gonum stat/distuv). Before session 29 the reseed kept what the landmark
-// blocks had learnt while the carried carrier's fixes were applied where
-// it was not (offsets of 5 to 6 cm), and the applied fixes of the two
-// posts pulled the reseeded pose off by as much: seed 535 was trusted
-// outside the region for 9.46 s with the IMU off, and 9.00 s with the
-// survey error shared but the blocks kept; with the survey error counted
-// white in each fix, seed 535 with the IMU on for 4.44 s and seed 526
-// with it off for 5.48 s (DEVELOPERS.md, the orchard carrier). With the
-// camera's correlated error shared: 0.00, 0.96, 0.02 and 0.42 s (IMU on
-// 526, 535; off 526, 535). With it per landmark (the carrier's
-// configuration) 0.00, 0.06, 0.02 and 2.52 s, seed 535 with the IMU off
-// reseeded 10.04 s after its set-down, until relocation took the applied
-// fixes of one post beside the refused ones of the other (withSupports:
-// 7.62 s trusted outside, its reseed at NEES 29, with the correlated error
-// still shared between posts in the fit; 10.04 s and 1.14 s with it per
-// landmark in the fit alone); now 0.00, 0.06, 0.00 and 0.50 s, seed 535
-// with the IMU off reseeded 0.24 s after its set-down (DEVELOPERS.md, the
-// orchard carrier).
-func TestOrchardKidnapStanding(t *testing.T) {
-	for _, imuOff := range []bool{false, true} {
-		for _, seed := range []uint64{526, 535} {
-			e := ocAllErrors()
-			e.kidnap, e.imuOff, e.outage = true, imuOff, false
-			sum := ocRunsOf(t, []uint64{seed}, 150, e, nil)
-			t.Logf("seed %d, IMU off %v: reseeded %.2f s after the set-down, inside the 99.9%% region after %.2f s, trusted outside it on %.2f%% of the 30 s after, for %.2f s at most",
-				seed, imuOff, sum.worstReseedS, sum.worstBackS, 100*float64(sum.trustedOut999[ocAfterSetDown])/float64(max(sum.n[ocAfterSetDown], 1)), sum.setDownS)
-			if sum.reseeded < 1 || sum.worstReseedS > 10 || sum.setDownS > 2 {
-				t.Errorf("seed %d, IMU off %v: reseeded %d times, %.2f s after the set-down; trusted outside the 99.9%% region for %.2f s (%s), above 2 s",
-					seed, imuOff, sum.reseeded, sum.worstReseedS, sum.setDownS, sum.setDownAt)
-			}
-		}
 	}
 }
 

@@ -43,11 +43,6 @@ type candidate struct {
 	corr       [4]float64
 }
 
-// isLandmarkKind reports whether k is a landmark fix's kind.
-func isLandmarkKind(k estimator.Kind) bool {
-	return k == estimator.KindRangeBearing || k == estimator.KindRange || k == estimator.KindBearing
-}
-
 // isLandmark reports whether c is a landmark fix.
 func (c *candidate) isLandmark() bool { return c.meas.Kind != 0 }
 
@@ -67,47 +62,9 @@ func markerKey(name string) uint32 {
 	return max(h.Sum32(), 1)
 }
 
-// landmarkCandidate fills c's measurement from landmark fix entry e.
-// Folded at each relocation, at the newest bias (relocate). The landmark's
-// survey error goes with it from the map, not its block (which may stand
-// for another landmark by then); the relocation shares it among the fixes
-// of one landmark.
-func (r *Robot) landmarkCandidate(e *entry, c *candidate) {
-	c.meas = e.meas
-	if e.lm != 0 {
-		c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
-	}
-	if si, ok := r.perLandmarkSensor(e); ok {
-		c.setCorr(&r.cfg, si)
-	}
-}
-
-// clearLandmarkCandidates forgets, at an applied fix of the landmark at
-// (x, y), the candidates of that landmark and every pose candidate, and
-// keeps the landmark candidates of other landmarks: range and bearing to
-// one landmark see two of the pose's three dimensions, and a pose off by a
-// turn about it passes its fixes (the orchard carrier after a carry, IMU
-// off: one post's fixes applied at NIS 1 to 7 for seconds while the other
-// post's, in the same frames, were refused at NIS 18 to 41). What the other
-// landmarks' refused fixes say stands, and relocation weighs it with the
-// applied fixes of their frames (withSupports). Otherwise as
-// clearCandidates.
-func (r *Robot) clearLandmarkCandidates(x, y float64) {
-	kept := r.cands[:0]
-	for _, c := range r.cands {
-		if c.isLandmark() && (c.meas.LandmarkX != x || c.meas.LandmarkY != y) {
-			kept = append(kept, c)
-		}
-	}
-	r.cands = kept
-	r.trust.unconfirmed = false
-	r.trust.held, r.trust.heldMarker = false, 0
-}
-
-// clearCandidates forgets the candidates (an applied fix other than a
-// landmark's, clearLandmarkCandidates, or a reseed: the estimate agrees
-// with a sensor again, or was set anew), and with them the wait for
-// another marker.
+// clearCandidates forgets the candidates (an applied fix or a reseed: the
+// estimate agrees with a sensor again, or was set anew), and with them the
+// wait for another marker.
 func (r *Robot) clearCandidates() {
 	r.cands = r.cands[:0]
 	r.trust.unconfirmed = false
@@ -187,14 +144,23 @@ const maxLandmarkCandidates = 24
 func (r *Robot) considerRecovery(res *Result, at int) {
 	e := &r.live()[at]
 	kind := e.meas.Kind
-	landmark := isLandmarkKind(kind)
+	landmark := kind == estimator.KindRangeBearing || kind == estimator.KindRange || kind == estimator.KindBearing
 	if !r.cfg.Recovery.Enabled || kind != estimator.KindPose && !landmark {
 		return
 	}
 	c := candidate{stamp: e.t1, fixStamp: e.t1, keepOffset: r.before(at).offsetReady, marker: e.marker}
 	meas := e.meas
 	if landmark {
-		r.landmarkCandidate(e, &c)
+		// Folded at each relocation, at the newest bias (relocate). The
+		// landmark's survey error goes with it as white: its block may
+		// stand for another landmark by then.
+		c.meas = meas
+		if e.lm != 0 {
+			c.meas.LandmarkError, c.meas.LandmarkVar = 0, r.lmVar[e.lm-1]
+		}
+		if si, ok := r.perLandmarkSensor(e); ok {
+			c.setCorr(&r.cfg, si)
+		}
 	} else {
 		st := r.stateThrough(e.t1)
 		r.foldBias(&meas, &st)
@@ -253,11 +219,6 @@ func (r *Robot) considerRecovery(res *Result, at int) {
 		// The pose is this fix's, and carries its sensor's bias: the
 		// reset keeps that correlation (applyReset).
 		reset.meas = e.meas
-	}
-	if landmark {
-		// A relocation from landmark fixes: the landmark blocks start
-		// again from the map (applyReset).
-		reset.meas.Kind = estimator.KindRangeBearing
 	}
 	var sub Result
 	r.insertReset(&reset, &sub)
@@ -490,7 +451,7 @@ func (r *Robot) carry(c *candidate, to int64) bool {
 	if c.stamp == to {
 		return true
 	}
-	if r.turnedByHand(c.stamp, to) || c.isLandmark() && r.setDownAcross(c.stamp, to) {
+	if r.turnedByHand(c.stamp, to) {
 		return false
 	}
 	if !r.extendMotion(&c.rel, &c.relW, &c.relD, c.stamp, to) {
@@ -533,40 +494,6 @@ func (r *Robot) turnedByHand(ta, tb int64) bool {
 	_, _, _, ns, _, _ := r.turnDisagreement(imuAnchor(&live[a]), imuAnchor(&live[b]), &sums)
 	r.initTurnGate()
 	return ns > r.turnGate
-}
-
-// setDownAcross reports whether the wheels stood at ta (the odometry step
-// that ends at or holds ta did not move them: wheelsStill) and moved
-// before tb: a stand that ended, as a robot set down after a carry shows
-// once it drives. A landmark candidate taken while the wheels stood may
-// have been taken in the air, where the stand's odometry (no motion, no
-// uncertainty) does not carry it, and the IMU need not see the carry
-// (turnedByHand sees a turn, or nothing with the IMU off): carried across
-// such a stand, the orchard carrier's last carried frame was fitted as
-// seen from where it was set down 0.15 m on, and the reseed was 0.19 m
-// off at NEES 20 to 25, a mixed set the agreement test passed
-// (DEVELOPERS.md, "Design: Gating and recovery"). So it is not carried
-// across (carry), as one whose stamp left the window: the reseed waits for
-// fixes taken after the wheels moved, 0.2 to 0.8 s more on the orchard
-// carrier. Pose candidates are carried as before: a pushed greenhouse
-// cart's named markers are carried 7 to 18 s across its stops at posts
-// (TestGreenhousePushRecovered failed with them dropped).
-func (r *Robot) setDownAcross(ta, tb int64) bool {
-	if len(r.cfg.Wheels) == 0 || tb <= ta {
-		return false
-	}
-	live := r.live()
-	i := r.locate(ta - 1)
-	for ; i < len(live) && !(live[i].kind == entOdo && live[i].t1 >= ta); i++ {
-	}
-	if i >= len(live) || live[i].t0 >= tb {
-		return false
-	}
-	from := live[i].t0
-	if !r.wheelsStill(from, min(live[i].t1, tb)) {
-		return false
-	}
-	return !r.wheelsStill(from, tb)
 }
 
 // motionCov returns a relative motion's covariance from its white part w
@@ -819,23 +746,6 @@ func (r *Robot) applyReset(e *entry) error {
 		j := detachJacobian(e.pose, e.meas.Mount)
 		// Not positive definite leaves the pose uncorrelated, as before.
 		_ = r.f.CorrelateBias(e.meas.Bias, &j)
-	}
-	if e.meas.Kind == estimator.KindRangeBearing {
-		// A relocation from landmark fixes fitted the pose to the mapped
-		// landmarks with their survey error; what the landmark blocks
-		// learnt, they learnt through the pose now found wrong (a
-		// carried robot's fixes applied where it was not), and kept,
-		// their offsets pulled the reseeded pose off by as much
-		// (DEVELOPERS.md, "Design: Gating and recovery"). Each block
-		// starts again from its landmark's survey error.
-		for b, at := range r.lmAt {
-			if id := r.lm[b].id; id != 0 && r.lmVar[id-1] > 0 {
-				v := r.lmVar[id-1]
-				if err := r.f.SeedBlock(at, &[4]float64{v, 0, 0, v}); err != nil {
-					return err
-				}
-			}
-		}
 	}
 	return nil
 }

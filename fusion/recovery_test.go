@@ -341,25 +341,12 @@ func TestRecoveryKeepsBiasCorrelation(t *testing.T) {
 // mean NEES of 4.41 here (one run 38): two dozen fixes carried over seconds
 // of the same odometry shrank its error as if it were a fresh one each time.
 func TestRelocationCovarianceHonest(t *testing.T) {
-	relocatedNEESInBand(t, func(k int) fusiontest.Scenario {
-		return fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(300 + k), DurationS: 40,
-			Errors: fusiontest.Errors{ForwardScale: -0.08, TurnScale: 0.12},
-			Bump:   &fusiontest.Bump{AtS: 20 + 0.37*float64(k%7), DXM: 0.4, DYM: -0.3, DRad: 0.2}}
-	})
-}
-
-// relocatedNEESInBand runs 40 bumped scenarios (scenario(k) for k from 0)
-// under their true model, takes the NEES of the pose the first recovery
-// after the bump relocates against the truth at its stamp, and checks
-// that its mean over the runs lies inside the two-sided 95% band of the
-// chi-square with 3 dof per run (Bar-Shalom, Li and Kirubarajan 2001,
-// sec. 5.4.2; quantiles from gonum stat/distuv).
-func relocatedNEESInBand(t *testing.T, scenario func(k int) fusiontest.Scenario) {
-	t.Helper()
 	var sum float64
 	runs := 0
 	for k := 0; k < 40; k++ {
-		sc := scenario(k)
+		sc := fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(300 + k), DurationS: 40,
+			Errors: fusiontest.Errors{ForwardScale: -0.08, TurnScale: 0.12},
+			Bump:   &fusiontest.Bump{AtS: 20 + 0.37*float64(k%7), DXM: 0.4, DYM: -0.3, DRad: 0.2}}
 		s := fusiontest.New(sc)
 		r, err := fusion.New(s.TrueModelConfig())
 		if err != nil {
@@ -574,25 +561,4 @@ func TestRenamedLandmarksNotAMove(t *testing.T) {
 			t.Errorf("set down %.1f m along: %d recoveries, final error %.2f m; want a recovery, within 0.2 m", move, rec, e)
 		}
 	}
-}
-
-// TestRelocationSharesSurveyError: the pose that landmark relocation gives
-// must hold its truth as its covariance says on a map whose markers stand
-// off their mapped places (fusiontest's LandmarkSurveyM, declared as
-// landmark_position_std_m). A marker's survey error is one error for all
-// its fixes, so a relocation from several fixes of the same markers learns
-// no more of it than from one; over Monte Carlo runs of a bumped robot
-// (40 seeds, the survey error drawn afresh each run) the NEES of the
-// relocated pose against the truth, averaged over the runs, must lie
-// inside the two-sided 95% band of the chi-square with 3 dof per run
-// (Bar-Shalom, Li and Kirubarajan 2001, sec. 5.4.2; quantiles from gonum
-// stat/distuv): 3.18 in the band [2.29, 3.81]. Counted as white in each
-// fix, as relocation did until session 29, the survey error shrank with
-// the number of fixes: a mean NEES of 18.22 here.
-func TestRelocationSharesSurveyError(t *testing.T) {
-	relocatedNEESInBand(t, func(k int) fusiontest.Scenario {
-		return fusiontest.Scenario{Layout: fusiontest.DriveWheelTurn, MarkerCount: 16, Seed: uint64(400 + k), DurationS: 30,
-			Errors: fusiontest.Errors{LandmarkSurveyM: 0.05},
-			Bump:   &fusiontest.Bump{AtS: 15 + 0.37*float64(k%7), DXM: 0.5, DYM: -0.3, DRad: 0.2}}
-	})
 }

@@ -25,11 +25,8 @@ import (
 //	dp/drel = [-c s -s tx - c ty; -s -c c tx - s ty; 0 0 -1]
 //
 // with s, c the sine and cosine of th_p. The odometry's covariance O_i enters
-// each fix's weight: W_i^-1 = R_i + H_i (dp/drel O_i dp/drel^T) H_i^T + L_i
-// v L_i^T, with H_i the measurement's Jacobian at p_i, v the variance of
-// the landmark's survey error in each axis and L_i the Jacobian in the
-// landmark's position (the negated position columns of H_i), at the pose
-// being fitted.
+// each fix's weight: W_i^-1 = R_i + H_i (dp/drel O_i dp/drel^T) H_i^T, with
+// H_i the measurement's Jacobian at p_i.
 const (
 	// relocateIterations bounds the Gauss-Newton iterations of one start.
 	relocateIterations = 30
@@ -77,27 +74,18 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 	for i := range r.cands {
 		folded[i] = r.cands[i]
 		bias[i] = folded[i].meas.Bias
-		// The landmark's survey error is one for all the fixes of that
-		// landmark: kept apart from R, for jointEquations to share it.
-		survey := folded[i].meas.LandmarkVar
-		folded[i].meas.LandmarkVar = 0
 		r.foldBias(&folded[i].meas, &st)
-		folded[i].meas.LandmarkVar = survey
 	}
 	for k := n; k >= r.cfg.Recovery.Count; k = min(k-1, k*2/3) {
-		set, sb := folded[n-k:], bias[n-k:]
-		supported := 0
+		set := folded[n-k:]
 		if distinctLandmarks(set) < 2 {
-			set, sb = r.withSupports(set, sb, &st)
-			if supported = len(set) - k; supported == 0 {
-				continue
-			}
+			continue
 		}
 		sol := r.solvePose(set, st.Pose())
 		if !sol.ok {
 			continue
 		}
-		sol = r.refineJoint(set, sb, &st, sol.pose)
+		sol = r.refineJoint(set, bias[n-k:], &st, sol.pose)
 		if !sol.ok || sol.dim <= 3 {
 			continue
 		}
@@ -129,63 +117,12 @@ func (r *Robot) relocate() (pose estimator.Pose, cov [9]float64, detail string, 
 			short = true
 			continue
 		}
-		if r.renamed(set, sb, &st) {
+		if r.renamed(set, bias[n-k:], &st) {
 			continue
-		}
-		if supported > 0 {
-			return sol.pose, cov, fmt.Sprintf("%d refused fixes of one landmark and %d applied fixes of %d others in their frames agree on one pose", k, supported, distinctLandmarks(set)-1), true, false
 		}
 		return sol.pose, cov, fmt.Sprintf("%d refused landmark fixes of %d landmarks agree on one pose", k, distinctLandmarks(set)), true, false
 	}
 	return estimator.Pose{}, [9]float64{}, "", false, short
-}
-
-// withSupports returns the folded candidates set of one landmark (with
-// their folded biases sb) together with the applied landmark fixes of other
-// landmarks at the same stamps (the same camera frames) that the window
-// holds, made candidates, carried to the newest candidate's stamp and
-// folded at st, all in fix-stamp order (jointEquations' cross terms need
-// it), each support before the refused candidates of its stamp. One
-// landmark leaves the pose's turn about it free; an applied fix of another
-// in the same frame pins it, and an estimate off by such a turn passes
-// that landmark's fixes while it refuses the first's (clearLandmarkCandidates).
-// Without supports it returns set and sb unchanged.
-func (r *Robot) withSupports(set []candidate, sb [][3]int, st *estimator.State) ([]candidate, [][3]int) {
-	lx, ly := set[0].meas.LandmarkX, set[0].meas.LandmarkY
-	to := set[len(set)-1].stamp
-	live := r.live()
-	var out []candidate
-	var outB [][3]int
-	j := 0
-	for i := r.locate(set[0].fixStamp - 1); i < len(live) && live[i].t1 <= set[len(set)-1].fixStamp; i++ {
-		e := &live[i]
-		if e.kind != entMeas || e.imu || e.failed || e.out.Gated || !isLandmarkKind(e.meas.Kind) ||
-			e.meas.LandmarkX == lx && e.meas.LandmarkY == ly {
-			continue
-		}
-		for j < len(set) && set[j].fixStamp < e.t1 {
-			out, outB = append(out, set[j]), append(outB, sb[j])
-			j++
-		}
-		if j == len(set) || set[j].fixStamp != e.t1 {
-			continue
-		}
-		c := candidate{stamp: e.t1, fixStamp: e.t1}
-		r.landmarkCandidate(e, &c)
-		if !r.carry(&c, to) {
-			continue
-		}
-		b := c.meas.Bias
-		survey := c.meas.LandmarkVar
-		c.meas.LandmarkVar = 0
-		r.foldBias(&c.meas, st)
-		c.meas.LandmarkVar = survey
-		out, outB = append(out, c), append(outB, b)
-	}
-	if len(out) == j {
-		return set, sb
-	}
-	return append(out, set[j:]...), append(outB, sb[j:]...)
 }
 
 // renamed reports whether the estimate st explains the folded landmark
@@ -242,7 +179,6 @@ func (r *Robot) renamed(set []candidate, bias [][3]int, st *estimator.State) boo
 			if d := math.Hypot(l.XM-seen[0], l.YM-seen[1]); d < best {
 				best = d
 				alt[i].meas.LandmarkX, alt[i].meas.LandmarkY = l.XM, l.YM
-				alt[i].meas.LandmarkVar = r.lmVar[id-1]
 			}
 		}
 		if math.IsInf(best, 1) {
@@ -395,8 +331,7 @@ func normalEquations(set []candidate, x estimator.Pose) (info *mat.SymDense, gra
 		var v [3]float64
 		for a := range d {
 			for b := range d {
-				wInv[a*3+b] = o[a*3]*hr[b*3] + o[a*3+1]*hr[b*3+1] + o[a*3+2]*hr[b*3+2] + m.R[a*3+b] +
-					m.LandmarkVar*(hx[a*3]*hx[b*3]+hx[a*3+1]*hx[b*3+1])
+				wInv[a*3+b] = o[a*3]*hr[b*3] + o[a*3+1]*hr[b*3+1] + o[a*3+2]*hr[b*3+2] + m.R[a*3+b]
 			}
 			v[a] = m.Z[a] - z[a]
 			if m.Kind.IsAngle(a) {
@@ -529,16 +464,7 @@ func inversePose(p estimator.Pose) estimator.Pose {
 // Jacobians in the calibration whose prior covariance is C, Jb(m_ij) =
 // blockdiag(R(th_i - th_j), 1) the Jacobian of Compose in its second
 // argument, and P the estimate's covariance of the bias states each fix
-// carries (foldBias put the diagonal's into R_i). Two fixes of one
-// landmark share its survey error: both blocks take L_i v L_j^T besides
-// (L the Jacobian in the landmark's position, at the pose x being
-// fitted). Counted as white in each fix (foldBias, at the estimate's
-// pose), two fixes of a post took its survey error twice over: the
-// orchard carrier, set down while its last carried frame's fixes were
-// still candidates, was reseeded from them as if seen from where it
-// stood, 0.19 m off (NEES 25), and
-// the fit's residuals passed the agreement test (DEVELOPERS.md, the
-// orchard carrier).
+// carries (foldBias put the diagonal's into R_i).
 func (r *Robot) refineJoint(set []candidate, bias [][3]int, st *estimator.State, x estimator.Pose) relocation {
 	cal := r.priorCalibration()
 	return gaussNewton(x, func(x estimator.Pose) (*mat.SymDense, *mat.VecDense, float64, int, bool) {
@@ -625,12 +551,6 @@ func jointEquations(set []candidate, bias [][3]int, st *estimator.State, cal *ca
 						e += st.At(bp, bq)
 					} else {
 						e += ci.sharedWith(cj, p, q)
-					}
-					if v := ci.meas.LandmarkVar; v > 0 && ci.meas.LandmarkX == cj.meas.LandmarkX && ci.meas.LandmarkY == cj.meas.LandmarkY {
-						// One survey error for both: H_l v H_l^T, H_l
-						// the Jacobian in the landmark, the position
-						// columns of A negated (the sign squares out).
-						e += v * (a.At(off[i]+p, 0)*a.At(off[j]+q, 0) + a.At(off[i]+p, 1)*a.At(off[j]+q, 1))
 					}
 					sigma.SetSym(off[i]+p, off[j]+q, e)
 				}

@@ -19,7 +19,8 @@ import (
 //
 //	k = (1 + rho) / (1 - rho),   rho = exp(-dt / tau),
 //
-// dt the time since the same sensor's last applied fix of the same
+// dt the time since the same sensor's last fix (applied or refused; not
+// one whose update failed) of the same
 // landmark (k = 1 for the first, or after more than repeatHorizonTaus
 // correlation times). This is the information of correlated observations
 // counted as the equivalent number of independent ones (from memory: the
@@ -53,7 +54,7 @@ const maxRepeatFactor = 1e4
 
 // markTable keeps, for the landmarks of per-landmark sensors whose fixes
 // were folded into the base checkpoint (dropFront), the stamp of each
-// one's last applied fix: a fix whose previous fix of its landmark has
+// one's last fix (applied or refused): a fix whose previous fix of its landmark has
 // left the window finds it here, so that a replay after a late fix
 // weighs it as the first pass did. sensor is the configuration's index,
 // lm the landmark's (from 1). An entry stays while a fix in the window
@@ -70,7 +71,7 @@ type markEntry struct {
 	last       int64
 }
 
-// note records an applied fix of landmark lm by sensor si at t.
+// note records a fix (applied or refused) of landmark lm by sensor si at t.
 func (m *markTable) note(si, lm int32, t int64) {
 	for i := range *m {
 		if e := &(*m)[i]; e.lm == lm && e.sensor == si {
@@ -89,7 +90,7 @@ func (m *markTable) prune(cfg *Config, base int64) {
 	})
 }
 
-// lookup returns the stamp of the last applied fix of landmark lm by
+// lookup returns the stamp of the last fix (applied or refused) of landmark lm by
 // sensor si in the table.
 func (m markTable) lookup(si, lm int32) (int64, bool) {
 	for i := range m {
@@ -210,7 +211,8 @@ func whiteRaise(d int, R, fc *[9]float64) (out [9]float64) {
 	return out
 }
 
-// previousFix returns the stamp of the last applied fix before e (in the
+// previousFix returns the stamp of the last fix (applied or refused, not
+// failed) before e (in the
 // window's order) of e's landmark by e's sensor (configuration index si),
 // within horizon of e's stamp: from the window, else from the base's
 // markTable.
@@ -240,7 +242,8 @@ func (r *Robot) previousFix(e *entry, si int32, horizon int64) (int64, bool) {
 	return 0, false
 }
 
-// foldMarks notes the applied fixes of per-landmark sensors among the
+// foldMarks notes the fixes (applied or refused, not failed) of
+// per-landmark sensors among the
 // entries about to be folded into the base.
 func (r *Robot) foldMarks(dropped []entry) {
 	if !r.lmCorr {
